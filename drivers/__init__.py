@@ -1,0 +1,1 @@
+"""SCPI instrument drivers (installed as noisebench.drivers)."""

@@ -1,0 +1,2 @@
+"""noisebench."""
+__version__ = "0.1.0"

@@ -1,0 +1,1 @@
+"""Gain-method and Y-factor noise-figure methods."""

@@ -1,0 +1,1 @@
+"""Simulated bench (installed as noisebench.sims)."""
