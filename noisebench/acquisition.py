@@ -15,7 +15,14 @@ from enum import Enum
 from typing import Any
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field, field_serializer, field_validator, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    field_serializer,
+    field_validator,
+    model_validator,
+)
 
 from noisebench.errors import InputError
 from noisebench.filters import GAUSSIAN, RbwFilter
