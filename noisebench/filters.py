@@ -169,3 +169,124 @@ def stat_bw_ratio(f: RbwFilter) -> float:
     if f.kind is FilterKind.SYNCHRONOUS:
         return synchronous_stat_bw_ratio(int(f.poles or 1))
     return _window_ratios(str(f.window))[1]
+
+
+# --- correlation of detected noise power between trace points --------------------------------
+#
+# Model ("filter bank"): every trace point is the squared envelope of white Gaussian noise seen
+# through the same RBW filter, tuned to the point's frequency (non-zero span) or sampled at the
+# point's time (zero span). For jointly complex-Gaussian outputs the correlation coefficient of
+# the two detected powers is |R|^2, R being the correlation coefficient of the complex outputs:
+#   frequency offset D:  R(D)   = integral |h(t)|^2 exp(j 2 pi D t) dt / integral |h|^2
+#   time lag tau:        r(tau) = integral |H(f)|^2 exp(j 2 pi f tau) df / integral |H|^2
+# Integrals: integral |r(tau)|^2 dtau = 1 / B_stat exactly (radiometer equation);
+# integral |R(D)|^2 dD is the "correlation bandwidth" (equal to B_stat for a Gaussian filter).
+
+
+def frequency_power_correlation(f: RbwFilter, offset_hz: np.ndarray, rbw_hz: float) -> np.ndarray:
+    """Correlation coefficient of noise powers of two trace points ``offset_hz`` apart (0..1).
+
+    Gaussian: exp(-2 ln2 (D/B3)^2). Synchronous n-pole (causal stages of bandwidth b*B3):
+    (1 + (D / (2 b B3))^2)^-(2n-1). FFT window w: |DTFT(w^2)|^2 / (sum w^2)^2 at D in bins.
+    """
+    x = np.abs(np.asarray(offset_hz, dtype=float)) / float(rbw_hz)
+    if f.kind is FilterKind.GAUSSIAN:
+        return np.exp(-2.0 * math.log(2.0) * x**2)
+    if f.kind is FilterKind.SYNCHRONOUS:
+        n = int(f.poles or 1)
+        b = _stage_bw_ratio(n)
+        return (1.0 + (x / (2.0 * b)) ** 2) ** (-(2 * n - 1))
+    bins, table = _window_bin_correlation(str(f.window))
+    b3_bins = _window_ratios(str(f.window))[2]
+    return np.interp(x * b3_bins, bins, table, right=0.0)
+
+
+def time_power_correlation(f: RbwFilter, lag_s: np.ndarray, rbw_hz: float) -> np.ndarray:
+    """Correlation coefficient of noise powers sampled ``lag_s`` apart at one frequency (0..1).
+
+    |r(tau)|^2 with r the normalised Fourier transform of |H|^2. Gaussian:
+    exp(-pi^2 B3^2 tau^2 / (2 ln 2)); synchronous: squared Matern function of order n - 1/2.
+    FFT-mode filters have no continuous time response: InputError.
+    """
+    tau = np.abs(np.asarray(lag_s, dtype=float)) * float(rbw_hz)  # in units of 1/B3
+    if f.kind is FilterKind.GAUSSIAN:
+        return np.exp(-(math.pi**2) * tau**2 / (2.0 * math.log(2.0)))
+    if f.kind is FilterKind.SYNCHRONOUS:
+        from scipy.special import gamma as gamma_fn
+        from scipy.special import kv
+
+        n = int(f.poles or 1)
+        nu = n - 0.5
+        z = 2.0 * math.pi * _stage_bw_ratio(n) * tau
+        with np.errstate(invalid="ignore", over="ignore"):
+            r = 2.0 ** (1.0 - nu) / gamma_fn(nu) * z**nu * kv(nu, z)
+        r = np.where(z < 1e-12, 1.0, np.nan_to_num(r, nan=0.0))
+        return np.clip(r, 0.0, 1.0) ** 2
+    raise InputError("settings.rbw_filter", "an FFT-window filter has no zero-span time response",
+                     fix="use a swept (Gaussian or synchronous) RBW filter for zero span")
+
+
+def correlation_bw_ratio(f: RbwFilter) -> float:
+    """Integral of :func:`frequency_power_correlation` over the offset, in units of B3."""
+    if f.kind is FilterKind.GAUSSIAN:
+        return math.sqrt(math.pi / (2.0 * math.log(2.0)))
+    if f.kind is FilterKind.SYNCHRONOUS:
+        n = int(f.poles or 1)
+        return (2.0 * _stage_bw_ratio(n) * math.sqrt(math.pi) * math.gamma(2 * n - 1.5)
+                / math.gamma(2 * n - 1))
+    from scipy.signal import get_window
+
+    w = np.asarray(get_window(str(f.window), 1024, fftbins=True), dtype=float)
+    corr_bins = len(w) * np.sum(w**4) / np.sum(w**2) ** 2  # Parseval on the DTFT of w^2
+    return float(corr_bins / _window_ratios(str(f.window))[2])
+
+
+def response_halfwidth_ratio(f: RbwFilter, level: float) -> float:
+    """Largest offset, in units of B3, at which the power response is still >= ``level``.
+
+    Used to size the exclusion around a narrowband spur: a CW line of power A shows at offset D
+    as A |H(D)|^2, so beyond this half-width it contributes less than ``level`` * A.
+    """
+    level = float(level)
+    if not 0.0 < level:
+        raise InputError("level", "must be > 0", value=level)
+    if level >= 1.0:
+        return 0.0
+    if f.kind is FilterKind.GAUSSIAN:
+        return math.sqrt(math.log(1.0 / level) / (4.0 * math.log(2.0)))
+    if f.kind is FilterKind.SYNCHRONOUS:
+        n = int(f.poles or 1)
+        return _stage_bw_ratio(n) * math.sqrt(level ** (-1.0 / n) - 1.0)
+    x, spec = _window_half_spectrum(str(f.window))
+    above = np.nonzero(spec >= level)[0]
+    return float(x[above[-1] + 1]) if above[-1] + 1 < len(x) else float(x[-1])
+
+
+def _stage_bw_ratio(poles: int) -> float:
+    """Bandwidth of one of ``poles`` synchronous stages (its f_c), in units of the overall B3."""
+    return 1.0 / (2.0 * math.sqrt(2.0 ** (1.0 / poles) - 1.0))
+
+
+@lru_cache(maxsize=64)
+def _window_bin_correlation(window: str) -> tuple[np.ndarray, np.ndarray]:
+    """(offset in bins, power correlation) table for FFT bins of ``window`` (exact DTFT of w^2)."""
+    from scipy.signal import get_window
+
+    w = np.asarray(get_window(window, 1024, fftbins=True), dtype=float)
+    pad = 64
+    spec = np.abs(np.fft.rfft(w**2, len(w) * pad)) ** 2 / np.sum(w**2) ** 2
+    bins = np.arange(spec.size) / pad
+    return bins, spec
+
+
+@lru_cache(maxsize=64)
+def _window_half_spectrum(window: str) -> tuple[np.ndarray, np.ndarray]:
+    """(offset in B3 units, power response) on the positive half of the window's spectrum."""
+    from scipy.signal import get_window
+
+    _, _, b3_bins = _window_ratios(window)
+    w = np.asarray(get_window(window, 1024, fftbins=True), dtype=float)
+    pad = 64
+    spec = np.abs(np.fft.rfft(w, len(w) * pad)) ** 2
+    spec = spec / spec[0]
+    return np.arange(spec.size) / pad / b3_bins, spec

@@ -1,0 +1,170 @@
+"""Bench safety: the operator cautions and the power checks made before anything is switched on.
+
+Two checks guard the analyzer input (reference.md §11):
+
+* before the noise source goes hot, the expected **total** noise power into the analyzer
+  (broadband noise of the source, amplified by the DUT over its whole bandwidth) must stay
+  below the analyzer's rated maximum input and well below its compression point;
+* before the generator output goes on, the expected tone power at the analyzer (and at the DUT
+  input) likewise.
+
+Compression back-off: for a smooth (third-order) gain compression the error at ``d`` dB below
+the 1 dB compression point is about ``1 dB * 10**(-d/10)``: 0.1 dB at 10 dB back-off, 0.01 dB at
+20 dB [common practice, from a third-order model]. A run is refused below
+``compression_backoff_db`` (default 10 dB) and the point is flagged ``compression_risk`` below
+``caution_backoff_db`` (default 20 dB).
+
+All powers in dBm at the edges, W inside; bandwidths in Hz; temperatures in K.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+from noisebench.errors import InputError, SafetyError, require_positive
+from noisebench.physics import BOLTZMANN_J_PER_K, T0_K
+
+#: Used when neither the driver nor the plan states the rated maximum input: a conservative
+#: value for general-purpose analyzers [common practice]. Put the real rating in the plan.
+DEFAULT_MAX_INPUT_DBM = 20.0
+#: Used when the plan does not state the input compression at 0 dB attenuation (the first
+#: mixer commonly compresses between about -10 and +5 dBm) [common practice, conservative].
+DEFAULT_COMPRESSION_DBM = -10.0
+#: Assumed preamplifier gain when the preamp is on: it lowers the compression point by as much
+#: [common practice].
+PREAMP_GAIN_DB = 20.0
+
+CAUTIONS: tuple[str, ...] = (
+    "Never exceed the analyzer's rated maximum RF or DC input; it is lowest with 0 dB "
+    "attenuation and the preamplifier on.",
+    "Broadband noise adds up: total noise power, not the power in the RBW, drives the "
+    "analyzer into compression.",
+    "Use a DC block where amplifier ports may carry bias; keep its loss in the calibration "
+    "path or in the corrections.",
+    "Drive the noise source only from its rated switched supply (commonly +28 V), never into "
+    "an RF port; allow warm-up and settling.",
+    "ESD: wrist strap and grounded bench; discharge cables before connecting; GaAs, GaN and "
+    "SiGe LNAs are sensitive. Sequence FET bias (gate first on, drain first off).",
+    "Check the DUT for oscillation with a wide span first; shield against interference; "
+    "torque and clean connectors; terminate the analyzer input when idle.",
+)
+
+
+def cautions_text(*, width_prefix: str = "  - ") -> str:
+    """The cautions as a short bulleted text block."""
+    return "\n".join(width_prefix + line for line in CAUTIONS)
+
+
+# --------------------------------------------------------------------------- pure estimates
+
+
+def w_to_dbm(power_w: float) -> float:
+    return 10.0 * math.log10(power_w / 1e-3)
+
+
+def hot_source_temperature_k(enr_db: float, cold_temperature_k: float,
+                             t0_k: float = T0_K) -> float:
+    """Hot noise temperature of a source with ``enr_db`` at ``cold_temperature_k``, K.
+
+    Common assumption: the ENR is referred to T0 and the excess noise does not depend on the
+    source's physical temperature, so ``Th = T0 * ENR + Tc`` (reference.md §5).
+    """
+    require_positive("cold_temperature_k", cold_temperature_k)
+    return t0_k * 10.0 ** (enr_db / 10.0) + cold_temperature_k
+
+
+def total_noise_power_dbm(source_temperature_k: float, gain_db: float, bandwidth_hz: float,
+                          *, dut_te_k: float = 0.0) -> float:
+    """Total available noise power at the DUT output, dBm: ``k (Ts + Te) G B``."""
+    require_positive("bandwidth_hz", bandwidth_hz)
+    require_positive("source_temperature_k", source_temperature_k)
+    if dut_te_k < 0:
+        raise InputError("dut_te_k", f"must be >= 0 (got {dut_te_k!r})")
+    gain_lin = 10.0 ** (gain_db / 10.0)
+    return w_to_dbm(BOLTZMANN_J_PER_K * (source_temperature_k + dut_te_k) * gain_lin
+                    * bandwidth_hz)
+
+
+def hot_power_from_cold_density_dbm(cold_density_w_per_hz: float, enr_db: float,
+                                    bandwidth_hz: float, *, cold_temperature_k: float,
+                                    t0_k: float = T0_K) -> float:
+    """Upper bound of the total hot power from a measured cold output density, dBm.
+
+    Hot over cold output power is ``(Th + Te)/(Tc + Te) <= Th/Tc`` for any DUT noise
+    temperature Te >= 0, and a measured cold density includes the analyzer's own noise, so
+    ``N_cold * B * Th / Tc`` never underestimates the hot power.
+    """
+    require_positive("cold_density_w_per_hz", cold_density_w_per_hz)
+    require_positive("bandwidth_hz", bandwidth_hz)
+    th = hot_source_temperature_k(enr_db, cold_temperature_k, t0_k)
+    return w_to_dbm(cold_density_w_per_hz * bandwidth_hz * th / cold_temperature_k)
+
+
+# --------------------------------------------------------------------------- limits and checks
+
+
+@dataclass(frozen=True)
+class InputLimits:
+    """What the analyzer input tolerates, dBm. Compression is at 0 dB attenuation, no preamp."""
+
+    max_input_dbm: float = DEFAULT_MAX_INPUT_DBM
+    compression_dbm: float = DEFAULT_COMPRESSION_DBM
+    compression_backoff_db: float = 10.0
+    caution_backoff_db: float = 20.0
+
+    def compression_at(self, attenuation_db: float | None, preamp: bool | None) -> float:
+        """Input compression power for the applied attenuation and preamp state, dBm."""
+        level = self.compression_dbm + float(attenuation_db or 0.0)
+        if preamp:
+            level -= PREAMP_GAIN_DB
+        return level
+
+
+@dataclass(frozen=True)
+class PowerCheck:
+    """Outcome of a power check that passed: ``caution`` asks to flag ``compression_risk``."""
+
+    power_dbm: float
+    compression_dbm: float
+    backoff_db: float
+    caution: bool
+
+
+def check_input_power(power_dbm: float, limits: InputLimits, *, what: str,
+                      attenuation_db: float | None = None, preamp: bool | None = None,
+                      freq_hz: float | None = None) -> PowerCheck:
+    """Refuse (SafetyError) a power the analyzer input should not see; else report margins."""
+    if not math.isfinite(power_dbm):
+        raise InputError("power_dbm", f"expected power for {what} is not finite")
+    if power_dbm > limits.max_input_dbm:
+        raise SafetyError(
+            f"{what}: expected {power_dbm:.1f} dBm into the analyzer exceeds its rated "
+            f"maximum input {limits.max_input_dbm:.1f} dBm; add an attenuator or a filter",
+            freq_hz=freq_hz)
+    compression = limits.compression_at(attenuation_db, preamp)
+    backoff = compression - power_dbm
+    if backoff < limits.compression_backoff_db:
+        raise SafetyError(
+            f"{what}: expected {power_dbm:.1f} dBm total into the analyzer is only "
+            f"{backoff:.1f} dB below its compression ({compression:.1f} dBm with "
+            f"{float(attenuation_db or 0):g} dB attenuation); need "
+            f"{limits.compression_backoff_db:g} dB: raise the input attenuation, turn the "
+            "preamp off, or band-limit the DUT output", freq_hz=freq_hz)
+    return PowerCheck(power_dbm, compression, backoff, backoff < limits.caution_backoff_db)
+
+
+def check_generator_level(level_dbm: float, *, max_level_dbm: float,
+                          dut_gain_db: float, limits: InputLimits,
+                          dut_max_input_dbm: float | None = None,
+                          attenuation_db: float | None = None, preamp: bool | None = None,
+                          freq_hz: float | None = None) -> PowerCheck:
+    """Check a generator level before its output goes on (DUT input and analyzer input)."""
+    if level_dbm > max_level_dbm:
+        raise SafetyError(f"generator level {level_dbm:.1f} dBm exceeds the plan's "
+                          f"max_level_dbm {max_level_dbm:.1f} dBm", freq_hz=freq_hz)
+    if dut_max_input_dbm is not None and level_dbm > dut_max_input_dbm:
+        raise SafetyError(f"generator level {level_dbm:.1f} dBm exceeds the DUT's maximum "
+                          f"input {dut_max_input_dbm:.1f} dBm", freq_hz=freq_hz)
+    return check_input_power(level_dbm + dut_gain_db, limits, what="generator tone",
+                             attenuation_db=attenuation_db, preamp=preamp, freq_hz=freq_hz)

@@ -1,0 +1,178 @@
+"""Results database on SQLite and on a real PostgreSQL server.
+
+The statistics are checked against numpy (``np.mean``/``np.std(ddof=1)``) on the same numbers.
+"""
+
+from __future__ import annotations
+
+import multiprocessing as mp
+from datetime import datetime, timedelta, timezone
+
+import numpy as np
+import pytest
+from _postgres import temporary_postgres
+
+from noisebench.database import SCHEMA_VERSION, DatabaseError, ResultsDatabase
+from noisebench.errors import InputError
+from noisebench.point import Method, PointFlag, PointResult
+from noisebench.results import RunInfo, RunRecord
+
+FREQS = (1.0e9, 2.0e9, 3.0e9)
+T_START = datetime(2026, 5, 4, 8, 0, tzinfo=timezone.utc)
+
+
+def make_record(run_id: str, serial: str, nfs: tuple[float, ...], *, lot: str = "L1",
+                verdict: str | None = "pass", minutes: int = 0, station: str = "st-1",
+                status: str = "complete") -> RunRecord:
+    points = [PointResult(freq_hz=f, method=Method.Y_FACTOR, nf_db=nf,
+                          te_k=290 * (10 ** (nf / 10) - 1), gain_db=20.0 + i, y_db=10.0,
+                          u_nf_db=0.03, u_te_k=2.0,
+                          flags=[PointFlag.SPURS_EXCLUDED] if i == 0 else [])
+              for i, (f, nf) in enumerate(zip(FREQS, nfs))]
+    info = RunInfo(run_id=run_id, method=Method.Y_FACTOR, dut_id=serial, operator="op",
+                   station=station, started_at=T_START + timedelta(minutes=minutes),
+                   ended_at=T_START + timedelta(minutes=minutes + 1), status=status,
+                   notes={"lot": lot, "part_number": "LNA-1"})
+    budgets = [{"freq_hz": f, "method": "gum", "k": 2.0, "u_combined_db": 0.1,
+                "U_expanded_db": 0.2,
+                "contributions": [{"name": "enr", "u": 0.1, "unit": "dB", "sensitivity": 0.99,
+                                   "contribution_db": 0.099}]} for f in FREQS]
+    v = None if verdict is None else {
+        "unit": verdict, "points": [{"freq_hz": f, "verdict": verdict} for f in FREQS],
+        "limits": []}
+    return RunRecord(info=info, points=points, budgets=budgets, verdict=v)
+
+
+def _fill(db: ResultsDatabase) -> None:
+    # Unit A: failed first, passed on the re-test (latest counts); B failed; C in lot L2 passed.
+    db.store_run(make_record("r1", "A", (1.0, 1.2, 1.4), verdict="fail", minutes=0))
+    db.store_run(make_record("r2", "A", (0.9, 1.1, 1.3), verdict="pass", minutes=10))
+    db.store_run(make_record("r3", "B", (1.5, 1.6, 1.7), verdict="fail", minutes=20))
+    db.store_run(make_record("r4", "C", (0.8, 1.0, 1.2), lot="L2", verdict="pass", minutes=30))
+    db.store_run(make_record("r5", "D", (0.7, 0.7, 0.7), verdict=None, minutes=40,
+                             status="interrupted"))
+
+
+def _check_queries(db: ResultsDatabase) -> None:
+    yields = {y.lot: y for y in db.yield_by_lot()}
+    assert (yields["L1"].units, yields["L1"].passed, yields["L1"].failed) == (2, 1, 1)
+    assert yields["L1"].yield_fraction == pytest.approx(0.5)
+    assert (yields["L2"].units, yields["L2"].passed) == (1, 1)
+    assert "D" not in [h.run_id for h in db.unit_history("D") if h.status == "complete"]
+
+    stats = {s.freq_hz: s for s in db.nf_statistics()}
+    latest = np.array([(0.9, 1.1, 1.3), (1.5, 1.6, 1.7), (0.8, 1.0, 1.2)])  # A(r2), B, C
+    for i, f in enumerate(FREQS):
+        assert stats[f].count == 3
+        assert stats[f].mean_nf_db == pytest.approx(np.mean(latest[:, i]))
+        assert stats[f].std_nf_db == pytest.approx(np.std(latest[:, i], ddof=1))
+        assert stats[f].max_nf_db == pytest.approx(latest[:, i].max())
+    only_l2 = db.nf_statistics(lot="L2")
+    assert [s.count for s in only_l2] == [1, 1, 1]
+
+    history = db.unit_history("A")
+    assert [h.run_id for h in history] == ["r2", "r1"]  # newest first
+    assert history[0].verdict == "pass" and history[1].max_nf_db == pytest.approx(1.4)
+    assert history[0].min_gain_db == pytest.approx(20.0) and history[0].station == "st-1"
+    assert db.count("budget_terms") == 5 * 3
+    assert db.count("points") == 15 and db.count("units") == 4 and db.count("stations") == 1
+
+
+def test_sqlite_store_and_queries(tmp_path):
+    with ResultsDatabase(tmp_path / "results.sqlite") as db:
+        _fill(db)
+        _check_queries(db)
+        assert db.schema_version == SCHEMA_VERSION
+    # reopening the file keeps everything
+    with ResultsDatabase(f"sqlite:///{tmp_path / 'results.sqlite'}") as db:
+        assert db.run_ids() == ["r1", "r2", "r3", "r4", "r5"]
+
+
+def test_same_run_twice_is_refused(tmp_path):
+    with ResultsDatabase(tmp_path / "r.sqlite") as db:
+        rec = make_record("dup", "A", (1.0, 1.0, 1.0))
+        db.store_run(rec)
+        with pytest.raises(InputError, match="run_id"):
+            db.store_run(rec)
+        assert db.count("runs") == 1
+
+
+def test_schema_version_mismatch_is_refused(tmp_path):
+    path = tmp_path / "old.sqlite"
+    ResultsDatabase(path).close()
+    import sqlite3
+
+    con = sqlite3.connect(path)
+    con.execute("UPDATE schema_info SET version = 99")
+    con.commit()
+    con.close()
+    with pytest.raises(DatabaseError, match="schema version 99"):
+        ResultsDatabase(path)
+
+
+def test_bad_url_names_the_field():
+    with pytest.raises(InputError, match="database.url"):
+        ResultsDatabase("nosuchdialect://x")
+
+
+def _writer(args: tuple[str, int, int]) -> int:
+    url, worker, n = args
+    db = ResultsDatabase(url)
+    for i in range(n):
+        # every worker also writes the SAME shared unit, to race the get-or-create
+        serial = "shared" if i % 2 == 0 else f"w{worker}-u{i}"
+        db.store_run(make_record(f"w{worker}-r{i}", serial, (1.0, 1.1, 1.2),
+                                 station=f"station-{worker}", minutes=i))
+    db.close()
+    return n
+
+
+def _concurrent(url: str, workers: int = 4, runs: int = 8) -> None:
+    ResultsDatabase(url).close()  # create the schema once before the race
+    ctx = mp.get_context("spawn")
+    with ctx.Pool(workers) as pool:
+        done = sum(pool.map(_writer, [(url, w, runs) for w in range(workers)]))
+    with ResultsDatabase(url) as db:
+        assert done == workers * runs
+        assert db.count("runs") == workers * runs  # nothing lost
+        assert db.count("points") == workers * runs * len(FREQS)
+        assert db.count("stations") == workers
+        # 'shared' exists once although every worker inserted it
+        assert db.count("units") == 1 + workers * (runs // 2)
+        assert len(db.unit_history("shared")) == workers * (runs // 2)
+
+
+def test_sqlite_concurrent_writers_lose_nothing(tmp_path):
+    _concurrent(f"sqlite:///{tmp_path / 'shared.sqlite'}")
+
+
+@pytest.fixture(scope="module")
+def pg_url():
+    try:
+        with temporary_postgres() as url:
+            yield url
+    except RuntimeError as exc:
+        print(f"PostgreSQL not available: {exc}")
+        pytest.skip(f"PostgreSQL could not be started: {exc}")
+
+
+def _fresh_pg(url: str, name: str) -> str:
+    """A fresh database on the server so the PostgreSQL tests do not share rows."""
+    import sqlalchemy as sa
+
+    engine = sa.create_engine(url, isolation_level="AUTOCOMMIT")
+    with engine.connect() as con:
+        con.execute(sa.text(f'DROP DATABASE IF EXISTS "{name}"'))
+        con.execute(sa.text(f'CREATE DATABASE "{name}"'))
+    engine.dispose()
+    return url.rsplit("/", 1)[0] + f"/{name}"
+
+
+def test_postgresql_store_and_queries(pg_url):
+    with ResultsDatabase(_fresh_pg(pg_url, "nb_queries")) as db:
+        _fill(db)
+        _check_queries(db)
+
+
+def test_postgresql_concurrent_writers_lose_nothing(pg_url):
+    _concurrent(_fresh_pg(pg_url, "nb_concurrent"))
