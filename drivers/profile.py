@@ -495,6 +495,7 @@ class AnalyzerSettings(_Section):
     fft_window: TextSetting | None = None
     rbw_hz: FloatSetting
     vbw_hz: FloatSetting | None = None
+    vbw_auto: BoolSetting | None = None
     points: IntSetting
     detector: EnumSetting
     detector_samples: FloatSetting | None = None
@@ -504,6 +505,7 @@ class AnalyzerSettings(_Section):
     attenuation_db: FloatSetting | None = None
     preamp: BoolSetting | None = None
     sweep_time_s: FloatSetting | None = None
+    sweep_time_auto: BoolSetting | None = None
 
     @model_validator(mode="after")
     def _check(self) -> AnalyzerSettings:
@@ -597,14 +599,17 @@ class MarkerProfile(_Section):
     function: EnumSetting
     band: FloatSetting | None = None
     value: str = "CALC:MARK:Y?"
-    density_corrected: bool = Field(
-        default=True, description="the noise-density function already corrects detector and "
-                                  "noise bandwidth")
+    corrected: BoolSetting | None = Field(
+        default=None, description="whether the reading already has the detector and noise-"
+                                  "bandwidth corrections applied ('get' or 'fixed')")
 
     @model_validator(mode="after")
     def _check(self) -> MarkerProfile:
         _check_query(self.value)
         _require_enum_keys(self.function, {"off", "band_power", "noise_density"}, "function")
+        if self.corrected is None or not self.corrected.readable:
+            raise ValueError("marker.corrected needs a 'get' query or 'fixed': the estimator "
+                             "must know whether the instrument already corrected the reading")
         return self
 
 
@@ -720,9 +725,9 @@ class InstrumentProfile(_Section):
 
 
 DEFAULT_APPLY_ORDER: tuple[str, ...] = (
-    "continuous", "mode", "center_hz", "span_hz", "start_hz", "stop_hz", "rbw_shape",
-    "rbw_hz", "vbw_hz", "points", "detector", "averaging_scale", "averages",
-    "ref_level_dbm", "attenuation_db", "preamp", "sweep_time_s")
+    "continuous", "mode", "center_hz", "span_hz", "start_hz", "stop_hz", "rbw_hz",
+    "vbw_auto", "vbw_hz", "points", "detector", "averaging_scale", "averages",
+    "ref_level_dbm", "attenuation_db", "preamp", "sweep_time_auto", "sweep_time_s")
 
 
 # ----------------------------------------------------------------------------- loading

@@ -177,28 +177,27 @@ def stat_bw_ratio(f: RbwFilter) -> float:
 # through the same RBW filter, tuned to the point's frequency (non-zero span) or sampled at the
 # point's time (zero span). For jointly complex-Gaussian outputs the correlation coefficient of
 # the two detected powers is |R|^2, R being the correlation coefficient of the complex outputs:
-#   frequency offset D:  R(D)   = integral |h(t)|^2 exp(j 2 pi D t) dt / integral |h|^2
+#   frequency offset D:  R(D)   = integral H(f) H*(f - D) df / integral |H|^2
 #   time lag tau:        r(tau) = integral |H(f)|^2 exp(j 2 pi f tau) df / integral |H|^2
-# Integrals: integral |r(tau)|^2 dtau = 1 / B_stat exactly (radiometer equation);
-# integral |R(D)|^2 dD is the "correlation bandwidth" (equal to B_stat for a Gaussian filter).
+# r depends on |H| only; integral |r(tau)|^2 dtau = 1 / B_stat exactly (radiometer equation).
+# R depends on the phase of H. We take the zero-phase amplitude response |H|: by the triangle
+# inequality |R| <= integral |H(f)||H(f - D)| df / integral |H|^2, so this is exact for linear-phase
+# shapes (Gaussian, symmetric FFT windows up to sidelobe signs) and an upper bound for any other
+# phase, i.e. never optimistic about the number of independent points. A swept analyzer
+# decorrelates neighbours further (they are also measured at different times).
 
 
 def frequency_power_correlation(f: RbwFilter, offset_hz: np.ndarray, rbw_hz: float) -> np.ndarray:
-    """Correlation coefficient of noise powers of two trace points ``offset_hz`` apart (0..1).
+    """Correlation coefficient (0..1) of noise powers of two trace points ``offset_hz`` apart.
 
-    Gaussian: exp(-2 ln2 (D/B3)^2). Synchronous n-pole (causal stages of bandwidth b*B3):
-    (1 + (D / (2 b B3))^2)^-(2n-1). FFT window w: |DTFT(w^2)|^2 / (sum w^2)^2 at D in bins.
+    Squared autocorrelation of the amplitude response |H| (see the model above). Gaussian in
+    closed form: exp(-2 ln2 (D/B3)^2); other shapes from a cached numerical table.
     """
     x = np.abs(np.asarray(offset_hz, dtype=float)) / float(rbw_hz)
     if f.kind is FilterKind.GAUSSIAN:
         return np.exp(-2.0 * math.log(2.0) * x**2)
-    if f.kind is FilterKind.SYNCHRONOUS:
-        n = int(f.poles or 1)
-        b = _stage_bw_ratio(n)
-        return (1.0 + (x / (2.0 * b)) ** 2) ** (-(2 * n - 1))
-    bins, table = _window_bin_correlation(str(f.window))
-    b3_bins = _window_ratios(str(f.window))[2]
-    return np.interp(x * b3_bins, bins, table, right=0.0)
+    grid, table = _amplitude_autocorrelation(f)
+    return np.interp(x, grid, table, right=0.0)
 
 
 def time_power_correlation(f: RbwFilter, lag_s: np.ndarray, rbw_hz: float) -> np.ndarray:
@@ -227,18 +226,16 @@ def time_power_correlation(f: RbwFilter, lag_s: np.ndarray, rbw_hz: float) -> np
 
 
 def correlation_bw_ratio(f: RbwFilter) -> float:
-    """Integral of :func:`frequency_power_correlation` over the offset, in units of B3."""
+    """Integral of :func:`frequency_power_correlation` over the offset, in units of B3.
+
+    Equals B_stat / B3 for a Gaussian filter; the number of independent points in a band W
+    of densely spaced points is W / (ratio * B3).
+    """
     if f.kind is FilterKind.GAUSSIAN:
         return math.sqrt(math.pi / (2.0 * math.log(2.0)))
-    if f.kind is FilterKind.SYNCHRONOUS:
-        n = int(f.poles or 1)
-        return (2.0 * _stage_bw_ratio(n) * math.sqrt(math.pi) * math.gamma(2 * n - 1.5)
-                / math.gamma(2 * n - 1))
-    from scipy.signal import get_window
-
-    w = np.asarray(get_window(str(f.window), 1024, fftbins=True), dtype=float)
-    corr_bins = len(w) * np.sum(w**4) / np.sum(w**2) ** 2  # Parseval on the DTFT of w^2
-    return float(corr_bins / _window_ratios(str(f.window))[2])
+    grid, table = _amplitude_autocorrelation(f)
+    step = grid[1] - grid[0]
+    return float(2.0 * step * (np.sum(table) - 0.5 * table[0]))
 
 
 def response_halfwidth_ratio(f: RbwFilter, level: float) -> float:
@@ -267,16 +264,20 @@ def _stage_bw_ratio(poles: int) -> float:
     return 1.0 / (2.0 * math.sqrt(2.0 ** (1.0 / poles) - 1.0))
 
 
-@lru_cache(maxsize=64)
-def _window_bin_correlation(window: str) -> tuple[np.ndarray, np.ndarray]:
-    """(offset in bins, power correlation) table for FFT bins of ``window`` (exact DTFT of w^2)."""
-    from scipy.signal import get_window
+_CORR_STEP = 1.0 / 64.0  # grid step of the correlation table, in B3
+_CORR_HALF_SPAN = 256.0  # half-span of the grid, in B3
 
-    w = np.asarray(get_window(window, 1024, fftbins=True), dtype=float)
-    pad = 64
-    spec = np.abs(np.fft.rfft(w**2, len(w) * pad)) ** 2 / np.sum(w**2) ** 2
-    bins = np.arange(spec.size) / pad
-    return bins, spec
+
+@lru_cache(maxsize=64)
+def _amplitude_autocorrelation(f: RbwFilter) -> tuple[np.ndarray, np.ndarray]:
+    """(offset in B3, squared normalised autocorrelation of |H|) for offsets >= 0."""
+    x = np.arange(-_CORR_HALF_SPAN, _CORR_HALF_SPAN + _CORR_STEP / 2, _CORR_STEP)
+    amp = np.sqrt(np.maximum(f.power_response(x, 1.0), 0.0))
+    nfft = 1 << int(math.ceil(math.log2(2 * x.size)))
+    spec = np.fft.rfft(amp, nfft)
+    acf = np.fft.irfft(np.abs(spec) ** 2, nfft)[: x.size]
+    acf = np.maximum(acf / acf[0], 0.0)
+    return np.arange(x.size) * _CORR_STEP, acf**2
 
 
 @lru_cache(maxsize=64)

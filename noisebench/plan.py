@@ -43,6 +43,7 @@ from pydantic import (
     Field,
     PrivateAttr,
     ValidationError,
+    ValidationInfo,
     field_validator,
     model_validator,
 )
@@ -127,7 +128,8 @@ class NoiseSourceSection(BaseModel):
     def _check(self) -> NoiseSourceSection:
         if self.drive == "supply" and not self.resource:
             raise InputError("resource", "a supply-driven noise source needs the supply's "
-                             "resource string", fix='e.g. resource = "TCPIP0::10.0.0.5::5025::SOCKET"')
+                             "resource string",
+                             fix='e.g. resource = "TCPIP0::10.0.0.5::5025::SOCKET"')
         if self.drive_v is not None and self.drive_v > self.max_drive_v:
             raise InputError("drive_v", f"{self.drive_v} V exceeds max_drive_v "
                              f"{self.max_drive_v} V", fix="lower drive_v or raise max_drive_v")
@@ -359,14 +361,14 @@ class CorrectionsSection(BaseModel):
 
     @field_validator("input_loss", "output_loss", mode="after")
     @classmethod
-    def _loss(cls, value: LossValue) -> LossValue:
+    def _loss(cls, value: LossValue, info: ValidationInfo) -> LossValue:
         if isinstance(value, str):
             if not value.strip():
-                raise InputError("loss", "is an empty file name",
+                raise InputError(info.field_name, "is an empty file name",
                                  fix="give a dB value or a CSV/.s2p path")
             return value
         if not math.isfinite(value) or value < 0:
-            raise InputError("loss", f"must be a finite loss >= 0 dB (got {value!r})",
+            raise InputError(info.field_name, f"must be a finite loss >= 0 dB (got {value!r})",
                              fix="a loss is positive dB; an amplifier is not a loss")
         return value
 
@@ -763,6 +765,8 @@ def _check_enr(plan: Plan) -> list[str]:
         return []
     except InputError as exc:
         return [f"enr.table: {exc.message}"]
+    if table.range_hz is None:  # a flat table covers every frequency
+        return []
     return _coverage_problems("enr.table", path.name, np.asarray(table.freq_hz, float),
                               plan, allow_clamp=plan.enr.extrapolate == "clamp")
 

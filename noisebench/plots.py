@@ -14,8 +14,12 @@ global backend switch), imported lazily so the core library never needs matplotl
                             frequency (only with budgets)
 ==========================  ========================================================================
 
-Error bars are the expanded uncertainty ``U`` (coverage factor ``k`` from the budgets) when every
-point has a budget, otherwise the standard uncertainty (k = 1); the legend says which. The
+Each ``*_figure(record)`` returns a matplotlib ``Figure`` (or ``None`` when it does not apply),
+for notebooks; :func:`render_figures` turns them into PNG bytes and :func:`plot_run` into files.
+Error bars are the expanded uncertainty ``U`` (coverage factor ``k`` from the budgets; a Monte
+Carlo budget's coverage interval, which may be asymmetric) when every point has a budget,
+otherwise the standard uncertainty (k = 1); the legend says which. Sweeps of more than
+``DENSE_SWEEP_POINTS`` points show the uncertainty as a shaded band instead of bars. The
 frequency axis is logarithmic when the sweep spans more than a decade.
 """
 
@@ -26,6 +30,7 @@ import logging
 import math
 from collections.abc import Sequence
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -36,6 +41,7 @@ from noisebench.results import PLOTS_DIR, RunRecord
 logger = logging.getLogger(__name__)
 
 FIGURE_SIZE_IN = (8.0, 4.5)
+DENSE_SWEEP_POINTS = 120  # beyond this, uncertainty is drawn as a band, not as error bars
 DEFAULT_DPI = 110
 
 # A quiet palette of our own: ink for data, brick for limits, plain verdict colours.
@@ -49,7 +55,9 @@ VERDICT_STYLE: dict[str, tuple[str, str]] = {  # verdict -> (colour, marker)
     "indeterminate": ("#c07a12", "D"),
 }
 
-#: Keys of a limit band (``verdict["limits"]`` entries) drawn on each plot.
+#: Keys of a limit band (``verdict["limits"]`` entries) drawn on each plot, with legend text.
+LIMIT_LABELS = {"nf_max_db": "NF limit (max)", "gain_min_db": "gain limit (min)",
+                "gain_max_db": "gain limit (max)"}
 NF_LIMIT_KEYS = ("nf_max_db",)
 GAIN_LIMIT_KEYS = ("gain_min_db", "gain_max_db")
 
@@ -97,7 +105,14 @@ def _new_axes(title: str, ylabel: str, freq_hz: Sequence[float]):
     return figure, axes, scale
 
 
-def _png(figure, dpi: int) -> bytes:
+def plain_text(text: str) -> str:
+    """Text from the record as matplotlib shows it literally: no mathtext, no hidden label."""
+    text = str(text).replace("$", r"\$")
+    return f" {text}" if text.startswith("_") else text  # '_x' labels are skipped by legends
+
+
+def to_png(figure, dpi: int = DEFAULT_DPI) -> bytes:
+    """PNG bytes of a matplotlib figure."""
     buffer = io.BytesIO()
     figure.savefig(buffer, format="png", dpi=dpi, metadata={"Software": "noisebench"})
     return buffer.getvalue()
@@ -107,18 +122,33 @@ def _png(figure, dpi: int) -> bytes:
 
 
 def nf_error_bars(record: RunRecord) -> tuple[np.ndarray, str]:
-    """Half-widths of the NF error bars (dB) and their legend text.
+    """NF error bars as a (2, n) array of (below, above) distances in dB, and their legend text.
 
-    Expanded uncertainty when every point has a budget with ``U_expanded_db``, else standard.
+    The expanded uncertainty when every point has a budget with ``U_expanded_db`` (a Monte
+    Carlo budget's coverage interval ``monte_carlo.interval_db`` gives asymmetric bars);
+    otherwise the standard uncertainty ``u_nf_db`` (k = 1).
     """
-    budgets = [record.budget_at(p.freq_hz) for p in record.points]
-    expanded = [b.get("U_expanded_db") if b else None for b in budgets]
-    if record.points and all(isinstance(u, (int, float)) for u in expanded):
-        ks = {b.get("k") for b in budgets if b}
-        k_text = f"k = {ks.pop():g}" if len(ks) == 1 and None not in ks else "k per budget"
-        return np.array(expanded, dtype=float), f"expanded uncertainty U ({k_text})"
-    return (np.array([p.u_nf_db for p in record.points], dtype=float),
-            "standard uncertainty u (k = 1)")
+    by_freq = record.budgets_by_freq()
+    budgets = [by_freq.get(p.freq_hz) for p in record.points]
+    if not record.points or not all(
+            b and isinstance(b.get("U_expanded_db"), (int, float)) for b in budgets):
+        u = np.array([p.u_nf_db for p in record.points], dtype=float)
+        return np.vstack([u, u]), "standard uncertainty u (k = 1)"
+    bars = np.array([_expanded_bar(p.nf_db, b) for p, b in zip(record.points, budgets,
+                                                                strict=True)]).T
+    ks = {b.get("k") for b in budgets}
+    k = ks.pop() if len(ks) == 1 else None
+    k_text = f"k = {k:g}" if isinstance(k, (int, float)) else "k per point"
+    return bars, f"expanded uncertainty U ({k_text})"
+
+
+def _expanded_bar(nf_db: float, budget: dict[str, Any]) -> tuple[float, float]:
+    interval = (budget.get("monte_carlo") or {}).get("interval_db")
+    if (isinstance(interval, (list, tuple)) and len(interval) == 2
+            and all(isinstance(v, (int, float)) for v in interval)
+            and interval[0] <= nf_db <= interval[1]):
+        return nf_db - interval[0], interval[1] - nf_db
+    return budget["U_expanded_db"], budget["U_expanded_db"]
 
 
 def limit_segments(record: RunRecord, keys: Sequence[str]) -> list[tuple[float, float, float, str]]:
@@ -140,7 +170,7 @@ def limit_segments(record: RunRecord, keys: Sequence[str]) -> list[tuple[float, 
 
 def _draw_limits(axes, segments, scale: float) -> None:
     for index, (start, stop, value, key) in enumerate(segments):
-        label = key.replace("_db", "").replace("_", " ") + " limit"
+        label = LIMIT_LABELS.get(key, key)
         axes.hlines(value, start / scale, stop / scale, colors=LIMIT, linestyles="--",
                     linewidth=1.6, label=label if index == _first_index(segments, key) else None)
 
@@ -149,36 +179,50 @@ def _first_index(segments, key: str) -> int:
     return next(i for i, seg in enumerate(segments) if seg[3] == key)
 
 
+def _draw_with_uncertainty(axes, freq: np.ndarray, values: np.ndarray, bars: np.ndarray,
+                           label: str) -> None:
+    """Values with (below, above) uncertainty: error bars, or a shaded band for dense sweeps."""
+    if len(values) <= DENSE_SWEEP_POINTS:
+        axes.errorbar(freq, values, yerr=bars, color=INK, ecolor=INK, elinewidth=0.9,
+                      capsize=2.5, marker=".", markersize=5, linewidth=1.2, label=label)
+        return
+    axes.fill_between(freq, values - bars[0], values + bars[1], color=INK, alpha=0.22,
+                      linewidth=0, label=label.split(" ± ", 1)[-1])
+    axes.plot(freq, values, color=INK, linewidth=1.0, label=label.split(" ± ", 1)[0])
+
+
 def _draw_verdicts(axes, record: RunRecord, freq: np.ndarray, values: np.ndarray) -> None:
+    """Mark points by verdict; dense sweeps mark only the points that did not pass."""
+    verdicts = record.verdicts_by_freq()
+    words = np.array([str((verdicts.get(p.freq_hz) or {}).get("verdict")) for p in record.points])
+    dense = len(values) > DENSE_SWEEP_POINTS
     for verdict, (colour, marker) in VERDICT_STYLE.items():
-        mask = np.array([(record.verdict_at(p.freq_hz) or {}).get("verdict") == verdict
-                         for p in record.points])
-        if mask.any():
-            axes.scatter(freq[mask], values[mask], s=36, color=colour, marker=marker,
-                         zorder=4, label=verdict)
+        mask = words == verdict
+        if mask.any() and not (dense and verdict == "pass"):
+            axes.scatter(freq[mask], values[mask], s=14 if dense else 36, color=colour,
+                         marker=marker, zorder=4, label=verdict)
 
 
 # ----------------------------------------------------------------------------- figures
 
 
-def nf_figure(record: RunRecord, dpi: int = DEFAULT_DPI) -> bytes:
-    """PNG of NF vs frequency with error bars, limit lines and verdict markers."""
+def nf_figure(record: RunRecord):
+    """Figure of NF vs frequency with error bars, limit lines and verdict markers."""
     freq_hz = [p.freq_hz for p in record.points]
     figure, axes, scale = _new_axes(_title(record, "Noise figure"), "Noise figure (dB)", freq_hz)
     freq = np.array(freq_hz) / scale
     nf = np.array([p.nf_db for p in record.points])
     bars, bar_label = nf_error_bars(record)
-    axes.errorbar(freq, nf, yerr=bars, color=INK, ecolor=INK, elinewidth=0.9, capsize=2.5,
-                  marker=".", markersize=5, linewidth=1.2, label=f"NF ± {bar_label}")
+    _draw_with_uncertainty(axes, freq, nf, bars, f"NF ± {bar_label}")
     _draw_limits(axes, limit_segments(record, NF_LIMIT_KEYS), scale)
     if record.verdict:
         _draw_verdicts(axes, record, freq, nf)
     axes.legend(loc="best", fontsize=8, frameon=False)
-    return _png(figure, dpi)
+    return figure
 
 
-def gain_figure(record: RunRecord, dpi: int = DEFAULT_DPI) -> bytes | None:
-    """PNG of DUT gain vs frequency with standard-uncertainty bars and limit lines, or None."""
+def gain_figure(record: RunRecord):
+    """Figure of DUT gain vs frequency with standard-uncertainty bars and limits, or None."""
     points = [p for p in record.points if p.gain_db is not None]
     if not points:
         return None
@@ -187,12 +231,14 @@ def gain_figure(record: RunRecord, dpi: int = DEFAULT_DPI) -> bytes | None:
     freq = np.array(freq_hz) / scale
     gain = np.array([p.gain_db for p in points], dtype=float)
     u_gain = np.array([p.u_gain_db or 0.0 for p in points], dtype=float)
-    axes.errorbar(freq, gain, yerr=u_gain if u_gain.any() else None, color=INK, ecolor=INK,
-                  elinewidth=0.9, capsize=2.5, marker=".", markersize=5, linewidth=1.2,
-                  label="gain ± standard uncertainty (k = 1)" if u_gain.any() else "gain")
+    if u_gain.any():
+        _draw_with_uncertainty(axes, freq, gain, np.vstack([u_gain, u_gain]),
+                               "gain ± standard uncertainty (k = 1)")
+    else:
+        axes.plot(freq, gain, color=INK, marker=".", markersize=5, linewidth=1.2, label="gain")
     _draw_limits(axes, limit_segments(record, GAIN_LIMIT_KEYS), scale)
     axes.legend(loc="best", fontsize=8, frameon=False)
-    return _png(figure, dpi)
+    return figure
 
 
 def density_series(record: RunRecord) -> dict[str, tuple[np.ndarray, np.ndarray]]:
@@ -210,8 +256,8 @@ def density_series(record: RunRecord) -> dict[str, tuple[np.ndarray, np.ndarray]
     return series
 
 
-def densities_figure(record: RunRecord, dpi: int = DEFAULT_DPI) -> bytes | None:
-    """PNG of the raw noise densities (dBm/Hz) vs frequency, or None without densities."""
+def densities_figure(record: RunRecord):
+    """Figure of the raw noise densities (dBm/Hz) vs frequency, or None without densities."""
     series = density_series(record)
     if not series:
         return None
@@ -220,9 +266,9 @@ def densities_figure(record: RunRecord, dpi: int = DEFAULT_DPI) -> bytes | None:
                                     "Noise density (dBm/Hz)", freq_hz)
     for index, (name, (freq, dbm_per_hz)) in enumerate(series.items()):
         axes.plot(freq / scale, dbm_per_hz, marker=".", markersize=4, linewidth=1.1,
-                  color=SERIES[index % len(SERIES)], label=name.replace("_", " "))
+                  color=SERIES[index % len(SERIES)], label=plain_text(name.replace("_", " ")))
     axes.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0), fontsize=8, frameon=False)
-    return _png(figure, dpi)
+    return figure
 
 
 def budget_series(record: RunRecord) -> dict[str, tuple[np.ndarray, np.ndarray]]:
@@ -242,8 +288,8 @@ def budget_series(record: RunRecord) -> dict[str, tuple[np.ndarray, np.ndarray]]
     return {name: tuple(np.array(pairs).T) for name, pairs in series.items()}
 
 
-def budget_figure(record: RunRecord, dpi: int = DEFAULT_DPI) -> bytes | None:
-    """PNG of uncertainty contributions vs frequency, or None without budgets."""
+def budget_figure(record: RunRecord):
+    """Figure of uncertainty contributions vs frequency, or None without budgets."""
     series = budget_series(record)
     if not series:
         return None
@@ -255,14 +301,14 @@ def budget_figure(record: RunRecord, dpi: int = DEFAULT_DPI) -> bytes | None:
         axes.plot(freq / scale, value, linewidth=2.0 if total else 1.0,
                   linestyle="-" if total else ":", marker="" if total else ".",
                   color=INK if name == "expanded U" else SERIES[(index + 1) % len(SERIES)],
-                  label=name)
+                  label=plain_text(name))
     axes.set_ylim(bottom=0)
     axes.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0), fontsize=7, frameon=False)
-    return _png(figure, dpi)
+    return figure
 
 
 def _title(record: RunRecord, what: str) -> str:
-    dut = (record.info.dut_id or "DUT").replace("$", r"\$")  # no mathtext from user text
+    dut = plain_text(record.info.dut_id or "DUT")
     return f"{what} · {dut} · {record.info.method.value.replace('_', '-')} method"
 
 
@@ -283,9 +329,9 @@ def render_figures(record: RunRecord, dpi: int = DEFAULT_DPI) -> dict[str, bytes
         return {}
     figures = {}
     for name, make in FIGURES:
-        png = make(record, dpi)
-        if png is not None:
-            figures[name] = png
+        figure = make(record)
+        if figure is not None:
+            figures[name] = to_png(figure, dpi)
     return figures
 
 
@@ -314,6 +360,6 @@ def plot_run(record: RunRecord, folder: Path, *, dpi: int = DEFAULT_DPI) -> list
 
 __all__ = [
     "budget_figure", "densities_figure", "density_series", "frequency_scale", "gain_figure",
-    "limit_segments", "nf_error_bars", "nf_figure", "plot_run", "render_figures",
-    "use_log_axis",
+    "limit_segments", "nf_error_bars", "nf_figure", "plain_text", "plot_run", "render_figures",
+    "to_png", "use_log_axis",
 ]

@@ -24,20 +24,9 @@ from typing import Any
 from noisebench.errors import InputError
 from noisebench.point import PointFlag
 from noisebench.results import FLAG_DESCRIPTIONS, REPORT_FILE, RunRecord, nf_extremes, write_atomic
+from noisebench.safety import CAUTIONS as SAFETY_NOTE
 
 logger = logging.getLogger(__name__)
-
-#: Short bench cautions printed at the end of every report (common practice, reference.md §11).
-SAFETY_NOTE: tuple[str, ...] = (
-    "Keep the total power into the analyzer below its rated maximum, most of all with 0 dB "
-    "input attenuation or the preamplifier on: broadband noise times DUT gain adds up.",
-    "Block DC from bias tees before the analyzer input, and include the block in the "
-    "calibration path or de-embed it.",
-    "Drive the noise source only from its rated switched supply, never into an RF port; let "
-    "it settle after each hot/cold switch.",
-    "Handle LNAs as ESD-sensitive; sequence depletion-mode FET bias (gate on first, off last).",
-    "Check the DUT for oscillation and in-band spurs before trusting a noise reading.",
-)
 
 STYLE = """
 :root { --ink:#1f2a36; --muted:#5b6773; --line:#d9dde3; --band:#f4f5f7; --accent:#1f3b57;
@@ -152,19 +141,24 @@ def _table(headers: Sequence[tuple[str, bool]], rows: Iterable[Sequence[Any]],
             f"<tbody>{body}</tbody></table></div>")
 
 
-def render_value(value: Any, depth: int = 0) -> str:
-    """Any JSON-like value as escaped HTML: tables for mappings and lists of mappings."""
+def render_value(value: Any, depth: int = 0, key: str = "") -> str:
+    """Any JSON-like value as escaped HTML: tables for mappings and lists of mappings.
+
+    Numbers under a key ending in ``_hz`` are shown as frequencies (kHz/MHz/GHz).
+    """
     if isinstance(value, Mapping):
         if not value:
             return "-"
         if depth >= 3:
             return f"<pre>{_e(json.dumps(value, indent=1, default=str))}</pre>"
-        return _kv_table((str(k), render_value(v, depth + 1)) for k, v in value.items())
+        return _kv_table((str(k), render_value(v, depth + 1, str(k))) for k, v in value.items())
     if isinstance(value, (list, tuple)):
         if value and all(isinstance(v, Mapping) for v in value):
             return _records_table(value, depth)
-        shown = ", ".join(_sig(v) for v in value[:20])
+        shown = ", ".join(render_value(v, depth + 1, key) for v in value[:20])
         return shown + (f" … ({len(value)} values)" if len(value) > 20 else "")
+    if key.endswith("_hz") and isinstance(value, (int, float)) and not isinstance(value, bool):
+        return _freq(value)
     return _sig(value)
 
 
@@ -174,8 +168,8 @@ def _records_table(records: Sequence[Mapping[str, Any]], depth: int) -> str:
         keys += [str(k) for k in item if str(k) not in keys]
     numeric = {k: all(isinstance(r.get(k), (int, float)) or r.get(k) is None for r in records)
                for k in keys}
-    rows = ([render_value(r.get(k), depth + 1) if r.get(k) is not None else "-" for k in keys]
-            for r in records)
+    rows = ([render_value(r.get(k), depth + 1, k) if r.get(k) is not None else "-"
+             for k in keys] for r in records)
     return _table([(k, numeric[k]) for k in keys], rows)
 
 
@@ -281,9 +275,10 @@ def _points(record: RunRecord) -> str:
         f'<span class="flag" title="{_e(FLAG_DESCRIPTIONS.get(f, f.value))}">{_e(f.value)}</span>'
         for f in p.flags)))
     rows = []
+    budgets, verdicts = record.budgets_by_freq(), record.verdicts_by_freq()
     for point in record.points:
-        budget = record.budget_at(point.freq_hz) or {}
-        verdict = record.verdict_at(point.freq_hz) or {}
+        budget = budgets.get(point.freq_hz) or {}
+        verdict = verdicts.get(point.freq_hz) or {}
         rows.append([cell(point, budget, verdict) for _, _, cell in columns])
     table = _table([(label, num) for label, num, _ in columns], rows, css="points")
     return "<h2>Points</h2>" + table + _flag_legend(record)
@@ -337,29 +332,142 @@ def _largest(budget: Mapping[str, Any]) -> str:
 def _budget_detail(budget: Mapping[str, Any]) -> str:
     freq = budget.get("freq_hz")
     title = _freq(freq) if isinstance(freq, (int, float)) else "-"
-    rows = ([_e(c.get("name", "?")), _sig(c.get("u")), _e(c.get("unit", "")),
-             _sig(c.get("sensitivity")),
-             f"{c['contribution_db']:+.4f}" if isinstance(c.get("contribution_db"),
-                                                          (int, float)) else "-"]
-            for c in _contributions(budget))
-    table = _table([("Input", False), ("Standard uncertainty", True), ("Unit", False),
-                    ("Sensitivity", True), ("Contribution (dB)", True)], rows)
+    lines = _contributions(budget)
+    with_distribution = any("distribution" in c for c in lines)
+    headers = [("Input", False), ("Standard uncertainty", True), ("Unit", False),
+               ("Sensitivity", True), ("Contribution (dB)", True)]
+    if with_distribution:
+        headers.insert(3, ("Distribution", False))
+    rows = []
+    for c in lines:
+        value = c.get("contribution_db")
+        row = [_e(c.get("name", "?")), _sig(c.get("u")), _e(c.get("unit", "")),
+               _sig(c.get("sensitivity")),
+               f"{value:+.4f}" if isinstance(value, (int, float)) else "-"]
+        if with_distribution:
+            row.insert(3, _e(c.get("distribution", "-")))
+        rows.append(row)
+    omitted = budget.get("omitted") or []
+    note = (f"<p>Not included (no data): {', '.join(_e(o) for o in omitted)}.</p>"
+            if omitted else "")
     extra = {k: v for k, v in budget.items() if k not in (
-        "freq_hz", "contributions", "u_combined_db", "k", "U_expanded_db", "method")}
+        "freq_hz", "contributions", "u_combined_db", "k", "U_expanded_db", "method",
+        "omitted") and v is not None}
     tail = render_value(extra) if extra else ""
     return (f"<details><summary>{title}: U = {_num(budget.get('U_expanded_db'))} dB "
             f"(k = {_sig(budget.get('k'))}, {_e(budget.get('method', '-'))})</summary>"
-            f"{table}{tail}</details>")
+            f"{_table(headers, rows)}{note}{tail}</details>")
+
+
+def _verdict_section(record: RunRecord) -> str:
+    verdict = record.verdict
+    if not verdict:
+        return ""
+    rows = [("Unit verdict", _e(str(verdict.get("unit", "-")).upper()))]
+    if verdict.get("rule"):
+        rows.append(("Decision rule", _e(verdict["rule"])))
+    for note in verdict.get("notes") or []:
+        rows.append(("Note", _e(note)))
+    parts = ["<h2>Limits and verdict</h2>", _kv_table(rows)]
+    limits = [b for b in verdict.get("limits") or [] if isinstance(b, Mapping)]
+    if limits:
+        parts += ["<h3>Limit bands</h3>", _records_table(limits, depth=1)]
+    bands = [b for b in verdict.get("bands") or [] if isinstance(b, Mapping)]
+    if bands:
+        parts += ["<h3>Per band</h3>", _records_table(
+            [{**b, "flatness": _check_text(b["flatness"]) if isinstance(b.get("flatness"),
+                                                                        Mapping) else None}
+             for b in bands], depth=1)]
+    parts.append(_failed_checks(verdict))
+    return "".join(parts)
+
+
+def _check_text(check: Mapping[str, Any]) -> str:
+    value, limit, u = check.get("value"), check.get("limit"), check.get("U")
+    text = f"{_num(value)} dB vs {check.get('kind', '')} {_num(limit)} dB"
+    if isinstance(u, (int, float)):
+        text += f" (U {_num(u)} dB)"
+    return f"{text}: {check.get('verdict', '-')}"
+
+
+def _failed_checks(verdict: Mapping[str, Any]) -> str:
+    rows = []
+    for entry in verdict.get("points") or []:
+        if not isinstance(entry, Mapping):
+            continue
+        for check in entry.get("checks") or []:
+            if isinstance(check, Mapping) and check.get("verdict") in ("fail", "indeterminate"):
+                word = str(check["verdict"])
+                rows.append([
+                    _freq(entry["freq_hz"]) if isinstance(entry.get("freq_hz"), (int, float))
+                    else "-", _e(check.get("quantity", "-")), _e(check.get("kind", "-")),
+                    _num(check.get("limit")), _num(check.get("value")), _num(check.get("U")),
+                    _num(check.get("margin_db")), (_e(word), _verdict_class(word)),
+                    _e(check.get("note") or "")])
+    if not rows:
+        return ""
+    headers = [("Frequency", True), ("Quantity", False), ("Limit kind", False),
+               ("Limit", True), ("Value", True), ("U", True), ("Margin (dB)", True),
+               ("Verdict", False), ("Note", False)]
+    return "<h3>Checks not passed</h3>" + _table(headers, rows)
 
 
 def _calibration(record: RunRecord) -> str:
-    latest = record.info.calibration
-    if not latest and not record.calibrations:
+    latest = record.info.calibration or (record.calibrations[-1] if record.calibrations
+                                         else None)
+    if not latest:
         return ""
     count = len(record.calibrations)
-    intro = (f"<p>{count} calibration{'s' if count != 1 else ''} saved during the run; "
-             "the latest is shown.</p>" if count else "")
-    return "<h2>Calibration</h2>" + intro + render_value(latest or record.calibrations[-1])
+    intro = (f"<p>Calibration data saved {count} time{'s' if count != 1 else ''} during the "
+             "run; the latest is shown.</p>" if count > 1 else "")
+    entries = latest.get("entries")
+    if isinstance(entries, list) and all(isinstance(e, Mapping) for e in entries):
+        body = _calibration_entries(entries) if entries else "<p>No calibration entry.</p>"
+    else:
+        body = render_value(latest)
+    return "<h2>Calibration</h2>" + intro + body
+
+
+def _filter_text(rbw_filter: Any) -> str:
+    if not isinstance(rbw_filter, Mapping):
+        return "-" if rbw_filter is None else str(rbw_filter)
+    kind = str(rbw_filter.get("kind", "-"))
+    if rbw_filter.get("poles"):
+        return f"{kind}, {rbw_filter['poles']} poles"
+    if rbw_filter.get("window"):
+        return f"{kind}, {rbw_filter['window']} window"
+    return kind
+
+
+def _calibration_entries(entries: Sequence[Mapping[str, Any]]) -> str:
+    """One row per stored calibration (what, when, settings), then all per-frequency rows."""
+    headers = [("#", True), ("Kind", False), ("Measured at", False), ("Frequencies", False),
+               ("RBW", True), ("Filter", False), ("Detector", False), ("Averaging", False),
+               ("Averages", True), ("Atten. (dB)", True), ("Preamp", False),
+               ("Cold T (K)", True), ("Time (s)", True)]
+    rows, summary = [], []
+    for number, entry in enumerate(entries, start=1):
+        settings = entry.get("settings") if isinstance(entry.get("settings"), Mapping) else {}
+        freqs = [f for f in entry.get("freqs_hz") or [] if isinstance(f, (int, float))]
+        span = ("-" if not freqs else _freq(freqs[0]) if len(freqs) == 1 else
+                f"{len(freqs)}: {_freq(min(freqs))} to {_freq(max(freqs))}")
+        rbw = settings.get("rbw_hz")
+        rows.append([str(number), _e(entry.get("kind", "-")), _e(entry.get("measured_at", "-")),
+                     span, _freq(rbw) if isinstance(rbw, (int, float)) else "-",
+                     _e(_filter_text(settings.get("rbw_filter"))),
+                     _e(settings.get("detector", "-")), _e(settings.get("averaging_scale", "-")),
+                     _sig(settings.get("averages")), _sig(settings.get("attenuation_db")),
+                     _sig(settings.get("preamp")), _num(entry.get("cold_temperature_k"), 2),
+                     _num(entry.get("instrument_time_s"), 3)])
+        summary += [{"calibration": number, **r} for r in entry.get("summary") or []
+                    if isinstance(r, Mapping)]
+    html_text = _table(headers, rows)
+    if summary:
+        summary.sort(key=lambda r: r.get("freq_hz") if isinstance(r.get("freq_hz"),
+                                                                   (int, float)) else math.inf)
+        html_text += (f"<details><summary>Per-frequency calibration results ({len(summary)} "
+                      f"frequencies)</summary>{_records_table(summary, depth=1)}</details>")
+    return html_text
 
 
 def _settings(record: RunRecord) -> str:
@@ -400,7 +508,8 @@ def render_report(record: RunRecord, images: Mapping[str, bytes] | None = None) 
     body = "".join([
         f"<header><h1>{_e(title)}</h1><p>{_e(info.method.value.replace('_', '-'))} method · "
         f"run {_e(info.run_id)} · {_when(info.started_at)}</p></header>",
-        _summary(record), _figures(images or {}), _points(record), _budgets(record),
+        _summary(record), _figures(images or {}), _points(record), _verdict_section(record),
+        _budgets(record),
         _calibration(record), _settings(record), _plan_and_notes(record), _safety(),
         f"<footer>Generated by noisebench {_e(version)} on {_e(generated)}.</footer>",
     ])
@@ -453,4 +562,26 @@ def write_report(record: RunRecord, path: Path, plots: Sequence[Path] | None = N
     return path
 
 
-__all__ = ["SAFETY_NOTE", "render_report", "render_value", "write_report"]
+def render_run(folder: Path) -> Path:
+    """Figures and report of a saved run folder (finished or not); returns the report's path.
+
+    What ``noisebench render FOLDER`` does: :func:`~noisebench.results.load_run`, then
+    :func:`~noisebench.plots.plot_run` (skipped with a warning without matplotlib), then
+    :func:`write_report` to ``<folder>/report.html``.
+    """
+    from noisebench.plots import plot_run
+    from noisebench.results import load_run
+
+    folder = Path(folder)
+    record = load_run(folder)
+    try:
+        plots = plot_run(record, folder)
+    except InputError as exc:
+        if exc.field != "plots":
+            raise
+        logger.warning("report without figures: %s", exc)
+        plots = []
+    return write_report(record, folder / REPORT_FILE, plots=plots)
+
+
+__all__ = ["SAFETY_NOTE", "render_report", "render_run", "render_value", "write_report"]

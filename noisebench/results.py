@@ -49,6 +49,7 @@ from __future__ import annotations
 
 import contextlib
 import csv
+import functools
 import io
 import json
 import logging
@@ -57,19 +58,21 @@ import os
 import platform
 import secrets
 import tempfile
-from collections.abc import Iterable, Iterator
+import threading
+from collections.abc import Callable, Iterable, Iterator
 from datetime import datetime, timezone
 from enum import Enum
 from importlib import metadata
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any, Literal, TypeVar
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, ValidationInfo, field_validator
 
 from noisebench.errors import InputError
 from noisebench.point import Method, PointFlag, PointResult
 
 logger = logging.getLogger(__name__)
+T = TypeVar("T")
 
 RUN_INFO_FILE = "run.json"
 JOURNAL_FILE = "points.jsonl"
@@ -148,6 +151,12 @@ class RunInfo(BaseModel):
     resumed_at: list[datetime] = Field(default_factory=list)
     format_version: int = 1
 
+    @field_validator("plan", "applied_settings", "calibration", "notes", mode="before")
+    @classmethod
+    def _plain_json(cls, value: Any, info: ValidationInfo) -> Any:
+        """Accept models, numpy values and enums; store plain JSON types."""
+        return _jsonable(value, info.field_name or "info")
+
 
 class RunRecord(BaseModel):
     """A whole run: info, points (sorted by frequency), budgets, verdict.
@@ -167,21 +176,34 @@ class RunRecord(BaseModel):
     calibrations: list[dict[str, Any]] = Field(default_factory=list)
     warnings: list[str] = Field(default_factory=list)
 
+    @field_validator("budgets", "verdict", "calibrations", mode="before")
+    @classmethod
+    def _plain_json(cls, value: Any, info: ValidationInfo) -> Any:
+        """Accept budget/verdict objects (``to_dict``), models and numpy values."""
+        return _jsonable(value, info.field_name or "record")
+
+    def budgets_by_freq(self) -> dict[float, dict[str, Any]]:
+        """The budgets keyed by their ``freq_hz`` (first one wins)."""
+        out: dict[float, dict[str, Any]] = {}
+        for budget in self.budgets:
+            out.setdefault(budget.get("freq_hz"), budget)
+        return out
+
+    def verdicts_by_freq(self) -> dict[float, dict[str, Any]]:
+        """The per-point verdict entries keyed by ``freq_hz`` (empty without a verdict)."""
+        out: dict[float, dict[str, Any]] = {}
+        for entry in (self.verdict or {}).get("points") or []:
+            if isinstance(entry, dict):
+                out.setdefault(entry.get("freq_hz"), entry)
+        return out
+
     def budget_at(self, freq_hz: float) -> dict[str, Any] | None:
         """The budget stored for ``freq_hz`` (exact match), or ``None``."""
-        for budget in self.budgets:
-            if budget.get("freq_hz") == freq_hz:
-                return budget
-        return None
+        return self.budgets_by_freq().get(freq_hz)
 
     def verdict_at(self, freq_hz: float) -> dict[str, Any] | None:
         """The verdict entry for ``freq_hz`` (exact match), or ``None``."""
-        if not self.verdict:
-            return None
-        for entry in self.verdict.get("points", []) or []:
-            if isinstance(entry, dict) and entry.get("freq_hz") == freq_hz:
-                return entry
-        return None
+        return self.verdicts_by_freq().get(freq_hz)
 
 
 # ----------------------------------------------------------------------------- helpers
@@ -209,8 +231,11 @@ def _jsonable(value: Any, where: str) -> Any:
 
     Non-finite floats become ``None`` with a warning (JSON has no NaN).
     """
+    to_dict = getattr(value, "to_dict", None)
+    if callable(to_dict):  # e.g. uncertainty budgets and verdicts: their documented shape
+        return _jsonable(to_dict(), where)
     if isinstance(value, BaseModel):
-        return _jsonable(value.model_dump(mode="json"), where)
+        return _jsonable(value.model_dump(mode="python"), where)
     if isinstance(value, dict):
         return {str(k): _jsonable(v, f"{where}.{k}") for k, v in value.items()}
     if isinstance(value, (list, tuple, set, frozenset)):
@@ -300,12 +325,9 @@ class _Journal:
         self.budgets: list[dict[str, Any]] = []
         self.calibrations: list[dict[str, Any]] = []
         self.warnings: list[str] = []
+        self.done_freqs_hz: set[float] = set()
         self.valid_bytes = 0
         self.needs_newline = False
-
-    @property
-    def done_freqs_hz(self) -> set[float]:
-        return {p.freq_hz for p in self.points}
 
 
 def _parse_entry(line: bytes, where: str, journal: _Journal) -> None:
@@ -319,6 +341,7 @@ def _parse_entry(line: bytes, where: str, journal: _Journal) -> None:
             journal.warnings.append(text)
             return
         journal.points.append(point)
+        journal.done_freqs_hz.add(point.freq_hz)
         if entry.get("budget") is not None:
             journal.budgets.append(entry["budget"])
     elif kind == "calibration":
@@ -415,9 +438,22 @@ class _FolderLock:
 
 
 LOCK_FILE = ".lock"
+# O_BINARY (Windows only) keeps newlines as written; O_APPEND makes each write land at the end.
+_APPEND_FLAGS = os.O_WRONLY | os.O_APPEND | os.O_CREAT | getattr(os, "O_BINARY", 0)
 
 
 # ----------------------------------------------------------------------------- writer
+
+
+def _serialized(method: Callable[..., T]) -> Callable[..., T]:
+    """Run a writer method under the writer's lock (calls from several threads queue up)."""
+
+    @functools.wraps(method)
+    def wrapper(self: RunWriter, *args: Any, **kwargs: Any) -> T:
+        with self._mutex:
+            return method(self, *args, **kwargs)
+
+    return wrapper
 
 
 class RunWriter:
@@ -435,15 +471,14 @@ class RunWriter:
     def __init__(self, folder: Path, info: RunInfo, journal: _Journal, lock: _FolderLock) -> None:
         self.folder = folder
         self.info = info
-        self.done_freqs_hz: set[float] = journal.done_freqs_hz
+        self.done_freqs_hz: set[float] = set(journal.done_freqs_hz)
         self._points = list(journal.points)
         self._budgets = list(journal.budgets)
         self._calibrations = list(journal.calibrations)
         self._warnings = list(journal.warnings)
         self._lock = lock
-        self._fd: int | None = os.open(folder / JOURNAL_FILE,
-                                       os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
-        self._finished: RunRecord | None = None
+        self._fd: int | None = os.open(folder / JOURNAL_FILE, _APPEND_FLAGS, 0o644)
+        self._mutex = threading.RLock()  # one writer object may be shared by threads
 
     # -- opening
 
@@ -458,12 +493,12 @@ class RunWriter:
         except OSError as exc:
             raise InputError("folder", f"cannot create {folder}: {exc.strerror or exc}",
                              fix="choose a writable output folder") from exc
-        if (folder / RUN_INFO_FILE).exists() or (folder / JOURNAL_FILE).exists():
-            raise InputError("folder", f"{folder} already holds a run",
-                             fix="choose a new folder, or resume that run")
         lock = _FolderLock(folder / LOCK_FILE)
         lock.acquire()
         try:
+            if (folder / RUN_INFO_FILE).exists() or (folder / JOURNAL_FILE).exists():
+                raise InputError("folder", f"{folder} already holds a run",
+                                 fix="choose a new folder, or resume that run")
             info = info.model_copy(update={"status": "running", "ended_at": None})
             info = RunInfo.model_validate(_jsonable(info, "info"))
             write_atomic(folder / RUN_INFO_FILE, info.model_dump_json(indent=2))
@@ -486,7 +521,7 @@ class RunWriter:
                 raise InputError("folder", f"run {info.run_id} in {folder} is already complete",
                                  fix="start a new run to measure again")
             journal = _read_journal(folder / JOURNAL_FILE)
-            pass
+            _repair_journal(folder / JOURNAL_FILE, journal)
             if journal.calibrations:
                 info = info.model_copy(update={"calibration": journal.calibrations[-1]})
             info = info.model_copy(update={
@@ -511,9 +546,11 @@ class RunWriter:
         """Points written so far, in the order they were added."""
         return list(self._points)
 
+    @_serialized
     def add_point(self, point: PointResult, budget: dict | None = None) -> None:
         """Append one point (and its uncertainty budget) to the journal, durably.
 
+        ``budget`` is a dict in the budget shape or an object with ``to_dict()``.
         Raises :class:`InputError` for a frequency already in :attr:`done_freqs_hz`, for
         non-finite numbers, or for a budget whose ``freq_hz`` differs from the point's.
         """
@@ -532,18 +569,20 @@ class RunWriter:
         self.done_freqs_hz.add(point.freq_hz)
         logger.debug("point %.6g Hz stored: NF %.3f dB", point.freq_hz, point.nf_db)
 
+    @_serialized
     def save_calibration(self, calibration: dict) -> None:
         """Store a calibration (journal + ``run.json``); the latest is ``info.calibration``."""
         self._require_open()
+        calibration = _jsonable(calibration, "calibration")
         if not isinstance(calibration, dict):
             raise InputError("calibration", f"must be a dict (got {type(calibration).__name__})",
-                             fix="pass the calibration as a JSON-able dict")
-        calibration = _jsonable(calibration, "calibration")
+                             fix="pass the calibration as a JSON-able dict or a model")
         self._append({"kind": "calibration", "calibration": calibration})
         self._calibrations.append(calibration)
         self.info = self.info.model_copy(update={"calibration": calibration})
         write_atomic(self.folder / RUN_INFO_FILE, self.info.model_dump_json(indent=2))
 
+    @_serialized
     def update_info(self, **fields: Any) -> None:
         """Change run-level fields (e.g. ``identities``, ``applied_settings``) and save them."""
         self._require_open()
@@ -560,29 +599,31 @@ class RunWriter:
             raise InputError(field, err["msg"]) from None
         write_atomic(self.folder / RUN_INFO_FILE, self.info.model_dump_json(indent=2))
 
+    @_serialized
     def finish(self, status: str = "complete", verdict: dict | None = None) -> RunRecord:
         """End the run: write ``results.json`` and ``results.csv``, then ``run.json``."""
         self._require_open()
         if status not in FINAL_STATUSES:
             raise InputError("status", f"must be one of {', '.join(FINAL_STATUSES)} "
                              f"(got {status!r})")
+        verdict = _jsonable(verdict, "verdict") if verdict is not None else None
         if verdict is not None and not isinstance(verdict, dict):
-            raise InputError("verdict", f"must be a dict (got {type(verdict).__name__})")
+            raise InputError("verdict", f"must be a dict (got {type(verdict).__name__})",
+                             fix="pass UnitVerdict.to_dict() or the verdict object")
         info = self.info.model_copy(update={"status": status, "ended_at": _utc_now()})
         record = RunRecord(
             info=info, points=_sorted_points(self._points),
             budgets=_sorted_budgets(self._budgets),
-            verdict=_jsonable(verdict, "verdict") if verdict is not None else None,
-            calibrations=self._calibrations, warnings=self._warnings)
+            verdict=verdict, calibrations=self._calibrations, warnings=self._warnings)
         write_results(record, self.folder)
         write_atomic(self.folder / RUN_INFO_FILE, info.model_dump_json(indent=2))
         self.info = info
         self._close_files()
-        self._finished = record
         logger.info("run %s %s: %d points in %s", info.run_id, status, len(record.points),
                     self.folder)
         return record
 
+    @_serialized
     def close(self) -> None:
         """Release the folder without finishing (the run stays resumable). Idempotent."""
         self._close_files()
@@ -609,10 +650,11 @@ class RunWriter:
             raise InputError("run", f"run {self.info.run_id} is closed",
                              fix="resume the run folder to write to it again")
 
-    def _clean_budget(self, freq_hz: float, budget: dict) -> dict[str, Any]:
-        if not isinstance(budget, dict):
-            raise InputError("budget", f"must be a dict (got {type(budget).__name__})")
+    def _clean_budget(self, freq_hz: float, budget: Any) -> dict[str, Any]:
         budget = _jsonable(budget, "budget")
+        if not isinstance(budget, dict):
+            raise InputError("budget", f"must be a dict (got {type(budget).__name__})",
+                             fix="pass Budget.to_dict() or the budget object")
         if "freq_hz" in budget and budget["freq_hz"] != freq_hz:
             raise InputError("budget.freq_hz", f"is {budget['freq_hz']!r} but the point is at "
                              f"{freq_hz!r} Hz", fix="pass the budget computed for this point")
@@ -743,14 +785,15 @@ def csv_columns(record: RunRecord) -> list[str]:
 def csv_rows(record: RunRecord) -> Iterator[dict[str, str]]:
     """One dict of formatted cells per point, keys as :func:`csv_columns`."""
     columns = csv_columns(record)
+    budgets, verdicts = record.budgets_by_freq(), record.verdicts_by_freq()
     for point in _sorted_points(record.points):
         row: dict[str, Any] = {name: getattr(point, name, None) for name in CSV_COLUMNS}
         row["flags"] = ";".join(flag.value for flag in point.flags)
-        budget = record.budget_at(point.freq_hz) or {}
+        budget = budgets.get(point.freq_hz) or {}
         row["U_nf_db"] = budget.get("U_expanded_db")
         row["coverage_k"] = budget.get("k")
         row["budget_method"] = budget.get("method")
-        verdict = record.verdict_at(point.freq_hz) or {}
+        verdict = verdicts.get(point.freq_hz) or {}
         row["verdict"] = verdict.get("verdict")
         limit = verdict.get("limit")
         row["limit"] = json.dumps(limit) if isinstance(limit, (dict, list)) else limit
@@ -795,33 +838,35 @@ def format_summary(record: RunRecord, *, table: bool = False) -> str:
     With ``table=True`` a per-point table follows the summary.
     """
     info = record.info
-    lines = [
-        f"Run {info.run_id}: {info.method.value.replace('_', '-')} method, status {info.status}",
-        f"  DUT        {info.dut_id or '-'}    operator {info.operator or '-'}    "
-        f"station {info.station or '-'}",
-        f"  started    {info.started_at.isoformat(timespec='seconds')}"
-        + (f"    ended {info.ended_at.isoformat(timespec='seconds')}" if info.ended_at else ""),
+    rows: list[tuple[str, str]] = [
+        ("DUT", f"{info.dut_id or '-'}    operator {info.operator or '-'}    "
+                f"station {info.station or '-'}"),
+        ("started", info.started_at.isoformat(timespec="seconds") + (
+            f"    ended {info.ended_at.isoformat(timespec='seconds')}" if info.ended_at else "")),
     ]
-    for role, identity in sorted(info.identities.items()):
-        lines.append(f"  {role:<10} {identity}")
-    lines.append(f"  points     {len(record.points)}" + (
+    rows += [(role.replace("_", " "), identity)
+             for role, identity in sorted(info.identities.items())]
+    rows.append(("points", f"{len(record.points)}" + (
         f" ({_fmt_freq(record.points[0].freq_hz)} to {_fmt_freq(record.points[-1].freq_hz)})"
-        if record.points else ""))
+        if record.points else "")))
     extremes = nf_extremes(record)
     if extremes:
         low, high = extremes
-        lines.append(f"  NF         min {low.nf_db:.3f} dB at {_fmt_freq(low.freq_hz)}, "
-                     f"max {high.nf_db:.3f} dB at {_fmt_freq(high.freq_hz)}")
+        rows.append(("NF", f"min {low.nf_db:.3f} dB at {_fmt_freq(low.freq_hz)}, "
+                           f"max {high.nf_db:.3f} dB at {_fmt_freq(high.freq_hz)}"))
         gains = [p.gain_db for p in record.points if p.gain_db is not None]
         if gains:
-            lines.append(f"  gain       {min(gains):.3f} to {max(gains):.3f} dB")
+            rows.append(("gain", f"{min(gains):.3f} to {max(gains):.3f} dB"))
         flagged = sum(1 for p in record.points if p.flags)
         if flagged:
-            lines.append(f"  flagged    {flagged} of {len(record.points)} points")
+            rows.append(("flagged", f"{flagged} of {len(record.points)} points"))
     if record.verdict:
-        lines.append(f"  verdict    {str(record.verdict.get('unit', '-')).upper()}")
-    for warning in record.warnings:
-        lines.append(f"  warning    {warning}")
+        rows.append(("verdict", str(record.verdict.get("unit", "-")).upper()))
+    rows += [("warning", warning) for warning in record.warnings]
+    width = max(len(label) for label, _ in rows) + 2
+    lines = [f"Run {info.run_id}: {info.method.value.replace('_', '-')} method, "
+             f"status {info.status}"]
+    lines += [f"  {label:<{width}}{text}" for label, text in rows]
     if table and record.points:
         lines.append("")
         lines.extend(_summary_table(record))
@@ -832,9 +877,10 @@ def _summary_table(record: RunRecord) -> list[str]:
     header = (f"{'freq':>14} {'NF dB':>8} {'u dB':>7} {'U dB':>7} {'Te K':>9} "
               f"{'gain dB':>8} {'verdict':>13}  flags")
     rows = [header, "-" * len(header)]
+    budgets, verdicts = record.budgets_by_freq(), record.verdicts_by_freq()
     for point in record.points:
-        budget = record.budget_at(point.freq_hz) or {}
-        verdict = record.verdict_at(point.freq_hz) or {}
+        budget = budgets.get(point.freq_hz) or {}
+        verdict = verdicts.get(point.freq_hz) or {}
         rows.append(
             f"{_fmt_freq(point.freq_hz):>14} {point.nf_db:>8.3f} {point.u_nf_db:>7.3f} "
             f"{_fmt(budget.get('U_expanded_db')):>7} {point.te_k:>9.1f} "

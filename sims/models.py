@@ -284,9 +284,7 @@ class SpectrumAtInput:
     total_excess_w: float = 0.0
 
     def temperature_k(self, hot_fraction: np.ndarray | float) -> np.ndarray:
-        h = np.asarray(hot_fraction, dtype=float)
-        return self.base_k + h[..., None] * self.excess_k if h.ndim else (
-            self.base_k + float(h) * self.excess_k)
+        return self.base_k + np.asarray(hot_fraction, dtype=float) * self.excess_k
 
     def density_w_per_hz(self, hot_fraction: np.ndarray | float) -> np.ndarray:
         return BOLTZMANN_J_PER_K * self.temperature_k(hot_fraction)

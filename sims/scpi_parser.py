@@ -8,7 +8,7 @@ What it does:
   ``"[SENSe:]FREQuency:CENTer"`` or ``"CALCulate:MARKer<n>:X"``: case-insensitive, short form
   (the upper-case letters of the pattern) or long form, optional ``[nodes]``, numeric suffixes,
   a leading ``:`` for the root and, after a ``;``, headers relative to the previous one
-  (SCPI-1999 Vol. 1 §6.2.4: the path is the previous header minus its leaf);
+  (SCPI-1999 Vol. 1, from memory: the path is the previous header minus its leaf);
 - converts parameters: decimal numbers with suffix units and multipliers (``1 MHZ``, ``10 ms``,
   ``250 MA`` = 250 mA for a current), ``MINimum``/``MAXimum``/``DEFault``, booleans
   ``ON``/``OFF``/``1``/``0``, character data matched in short or long form, quoted strings.
@@ -73,7 +73,7 @@ ERROR_TEXT: dict[int, str] = {
     -350: "Queue overflow",
 }
 
-_MAX_MNEMONIC = 12  # IEEE 488.2 §7.6.1.4: program mnemonics are at most 12 characters
+_MAX_MNEMONIC = 12  # IEEE 488.2 (from memory): program mnemonics are at most 12 characters
 
 
 class ScpiError(Exception):
@@ -360,7 +360,7 @@ def _match_nodes(nodes: tuple[NodeSpec, ...], received: tuple[Mnemonic, ...],
 
 
 class NumericSpecial(str, Enum):
-    """Character data accepted in place of a number (SCPI-1999 Vol. 1 §7.2.1)."""
+    """Character data accepted in place of a number (SCPI-1999 Vol. 1, from memory)."""
 
     MINIMUM = "MIN"
     MAXIMUM = "MAX"
@@ -371,11 +371,11 @@ _SPECIAL = {"MIN": NumericSpecial.MINIMUM, "MINIMUM": NumericSpecial.MINIMUM,
             "MAX": NumericSpecial.MAXIMUM, "MAXIMUM": NumericSpecial.MAXIMUM,
             "DEF": NumericSpecial.DEFAULT, "DEFAULT": NumericSpecial.DEFAULT}
 
-# IEEE 488.2 §7.7.2 decimal numeric program data, then an optional suffix (§7.7.3).
+# IEEE 488.2 decimal numeric program data, then an optional suffix (from memory).
 _NUMBER_RE = re.compile(
     r"^([+-]?(?:\d+\.?\d*|\.\d+)(?:[eE]\s*[+-]?\d+)?)\s*([A-Za-z/]*)$")
 
-# SCPI-1999 Vol. 1 §7.7.3 suffix multipliers. ``M`` is milli, except in MHZ and MOHM (mega).
+# SCPI-1999 suffix multipliers (from memory). ``M`` is milli, except in MHZ and MOHM (mega).
 _MULTIPLIERS = {"EX": 1e18, "PE": 1e15, "T": 1e12, "G": 1e9, "MA": 1e6, "K": 1e3,
                 "M": 1e-3, "U": 1e-6, "N": 1e-9, "P": 1e-12, "F": 1e-15, "A": 1e-18}
 _MEGA_UNITS = {"HZ", "OHM"}
@@ -438,7 +438,7 @@ _BOOL = {"ON": True, "OFF": False}
 
 
 def parse_boolean(token: str) -> bool:
-    """``ON``/``OFF`` or a number (rounded; non-zero is ON), SCPI-1999 Vol. 1 §7.3."""
+    """``ON``/``OFF`` or a number (rounded; non-zero is ON), SCPI-1999, from memory."""
     word = token.strip().upper()
     if word in _BOOL:
         return _BOOL[word]

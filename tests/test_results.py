@@ -138,6 +138,55 @@ def test_numpy_values_in_notes_are_stored_as_plain_json(tmp_path):
     assert notes == {"trace_db": [1.5, 2.5], "n": 7, "x": 0.25}
 
 
+class BudgetLike:
+    """Stands in for an uncertainty budget object: the store uses its ``to_dict``."""
+
+    def __init__(self, freq_hz: float) -> None:
+        self.freq_hz = freq_hz
+
+    def to_dict(self) -> dict:
+        return make_budget(self.freq_hz)
+
+
+def test_objects_with_to_dict_models_and_numpy_are_stored_as_json(tmp_path):
+    from noisebench.acquisition import AcquisitionSettings, AveragingScale, Detector
+
+    settings_used = AcquisitionSettings(center_hz=1e9, span_hz=0.0, rbw_hz=1e6,
+                                        detector=Detector.RMS,
+                                        averaging_scale=AveragingScale.POWER, averages=8,
+                                        points=101)
+    info = make_info(applied_settings=[settings_used], plan={"points": np.arange(3)})
+    assert info.applied_settings[0]["rbw_filter"]["kind"] == "gaussian"
+    assert info.plan == {"points": [0, 1, 2]}
+    writer = RunWriter.create(tmp_path / "run", info)
+    writer.add_point(make_point(1e9), budget=BudgetLike(1e9))
+    record = writer.finish(verdict=type("V", (), {"to_dict": lambda self: {"unit": "pass"}})())
+    assert record.budgets == [make_budget(1e9)] and record.verdict == {"unit": "pass"}
+    assert load_run(tmp_path / "run") == record
+    assert AcquisitionSettings.model_validate(record.info.applied_settings[0]) == settings_used
+
+
+def test_points_from_several_threads_all_reach_the_journal(tmp_path):
+    import threading
+
+    writer = RunWriter.create(tmp_path / "run", make_info())
+    freqs = [1e6 * (i + 1) for i in range(120)]
+
+    def work(part: list[float]) -> None:
+        for f in part:
+            writer.add_point(make_point(f, notes={"pad": "x" * 5000}))
+
+    threads = [threading.Thread(target=work, args=(freqs[i::4],)) for i in range(4)]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    writer.close()
+    record = load_run(tmp_path / "run")
+    assert [p.freq_hz for p in record.points] == freqs
+    assert record.warnings == ["run did not finish (killed or crashed): rebuilt from the journal"]
+
+
 # ----------------------------------------------------------------------------- crash safety
 
 
@@ -462,7 +511,11 @@ def test_format_summary_reports_range_verdict_and_warnings(tmp_path):
     assert "y-factor method, status complete" in text
     assert "LNA-7 <rev B>" in text
     assert "min 1.700 dB at 1.2 GHz" in text and "max 2.900 dB at 1.4 GHz" in text
-    assert "verdict    FAIL" in text and "flagged    1 of 3 points" in text
+    labelled = {line.split()[0]: line.split(None, 1)[1] for line in text.splitlines()[1:]}
+    assert labelled["verdict"] == "FAIL" and labelled["flagged"] == "1 of 3 points"
+    assert labelled["analyzer"] == "Example,SA-1,0001,1.0"
+    starts = {line.index(line.split(None, 1)[1]) for line in text.splitlines()[1:]}
+    assert len(starts) == 1  # one column for every value
     assert "incomplete last entry" in text
     assert "\x1b[" not in text  # plain text, no terminal escapes
     table = format_summary(record, table=True).splitlines()
@@ -473,7 +526,8 @@ def test_format_summary_reports_range_verdict_and_warnings(tmp_path):
 def test_format_summary_of_an_empty_run(tmp_path):
     record = RunWriter.create(tmp_path / "run", make_info()).finish("failed")
     text = format_summary(record, table=True)
-    assert "status failed" in text and "points     0" in text
+    assert "status failed" in text
+    assert [line.split() for line in text.splitlines() if "points" in line] == [["points", "0"]]
 
 
 def test_collect_versions_and_run_id():

@@ -9,11 +9,7 @@ import numpy as np
 
 from noisebench.density import NoiseDensity
 from noisebench.errors import InputError
-from noisebench.physics import (
-    T0_K,
-    deembed_input_loss_te_k,
-    deembed_output_loss_te_k,
-)
+from noisebench.physics import T0_K
 from noisebench.point import PointFlag
 
 DEFAULT_SCATTER_LIMIT = 1.5
@@ -97,19 +93,20 @@ def check_same_frequency(reference: NoiseDensity, others: dict[str, NoiseDensity
 
 
 def deembed_path_te_k(te_path_k: np.ndarray, path_gain_lin: np.ndarray,
-                      input_loss_lin: float, input_loss_temperature_k: float,
-                      output_loss_lin: float, output_loss_temperature_k: float
+                      input_loss_lin: float, input_loss_temperature_k: float | np.ndarray,
+                      output_loss_lin: float, output_loss_temperature_k: float | np.ndarray
                       ) -> tuple[np.ndarray, np.ndarray]:
     """(Te_DUT, G_DUT) from a measured path [input loss, DUT, output loss] (Friis).
 
     Te_path = (L_in - 1) Tp_in + L_in (Te_DUT + (L_out - 1) Tp_out / G_DUT), with
-    G_DUT = G_path L_in L_out.
+    G_DUT = G_path L_in L_out. Inputs are already validated (this runs inside the models);
+    see physics.deembed_input_loss_te_k / deembed_output_loss_te_k for the checked forms.
     """
     dut_gain = np.asarray(path_gain_lin) * input_loss_lin * output_loss_lin
-    te_after_input = deembed_input_loss_te_k(te_path_k, input_loss_lin, input_loss_temperature_k)
-    te_dut = deembed_output_loss_te_k(te_after_input, dut_gain, output_loss_lin,
-                                      output_loss_temperature_k)
-    return np.asarray(te_dut), dut_gain
+    te_after_input = (np.asarray(te_path_k) - (input_loss_lin - 1.0) * input_loss_temperature_k) \
+        / input_loss_lin
+    te_dut = te_after_input - (output_loss_lin - 1.0) * output_loss_temperature_k / dut_gain
+    return te_dut, dut_gain
 
 
 def density_flags(densities: Iterable[NoiseDensity], scatter_limit: float) -> list[PointFlag]:

@@ -133,6 +133,7 @@ def gain_method_point(
     output_loss_db: float = 0.0,
     output_loss_temperature_k: float | None = None,
     floor_temperature_k: float | None = None,
+    gain_includes_losses: bool = True,
     floor_warning_db: float = DEFAULT_FLOOR_WARNING_DB,
     low_gain_db: float = DEFAULT_LOW_GAIN_DB,
     scatter_limit: float = DEFAULT_SCATTER_LIMIT,
@@ -146,6 +147,8 @@ def gain_method_point(
     ``floor``: the analyzer's own reading with a matched load at ``floor_temperature_k``
     (default: the source temperature) on its input, same settings; without it the analyzer's
     noise is counted as the DUT's. ``u_gain_db``: standard uncertainty of ``gain_db``.
+    ``gain_includes_losses=False`` says ``gain_db`` is the DUT's own gain (e.g. a gain measured
+    against a through reference, where the cables cancel); the losses then only enter the noise.
 
     Flags: NEAR_ANALYZER_FLOOR (margin < ``floor_warning_db``), LOW_GAIN (DUT gain <
     ``low_gain_db``), NEGATIVE_TE, SPURS_EXCLUDED / EXCESS_SCATTER from the densities.
@@ -169,6 +172,7 @@ def gain_method_point(
         "input_loss_temperature_k", input_loss_temperature_k)
     tp_out = ts if output_loss_temperature_k is None else check_temperature(
         "output_loss_temperature_k", output_loss_temperature_k)
+    path_gain_db = gain_db if gain_includes_losses else gain_db - 10.0 * math.log10(lin * lout)
 
     def te_dut_model(n_meas, n_floor, g_db, with_floor=floor is not None):
         g_path = 10.0 ** (g_db / 10.0)
@@ -178,13 +182,13 @@ def gain_method_point(
 
     n_m = dut.density_w_per_hz
     n_f = floor.density_w_per_hz if floor is not None else 1.0  # placeholder, unused w/o floor
-    values = {"n_meas": n_m, "n_floor": n_f, "g_db": gain_db}
+    values = {"n_meas": n_m, "n_floor": n_f, "g_db": path_gain_db}
     u_stat = {"n_meas": dut.u_density_w_per_hz}
     if floor is not None:
         u_stat["n_floor"] = floor.u_density_w_per_hz
     try:
-        stat = propagate(te_dut_model, values, u_stat)
-        gain_part = propagate(te_dut_model, values, {"g_db": u_gain_db})
+        stat = propagate(lambda **kw: {"te": te_dut_model(**kw)}, values,
+                         u_stat | {"g_db": u_gain_db})["te"]
     except MeasurementError as exc:
         raise exc.add_context(freq_hz=freq_hz, method="gain") from None
     te_k = float(stat.value)
@@ -195,11 +199,10 @@ def gain_method_point(
             freq_hz=freq_hz)
     nf_db = nf_db_from_te(te_k, t0)
     dnf_dte = DB_PER_NEPER_POWER / (t0 + te_k)  # dNF_dB / dTe
-    u_te_k = float(stat.u)
-    names = {"n_meas": "dut", "n_floor": "floor"}
+    u_te_k = float(stat.u(u_stat))
+    names = {"n_meas": "dut", "n_floor": "floor", "g_db": "gain"}
     contributions = {names[n]: float(c) * dnf_dte for n, c in stat.contributions.items()}
-    contributions["gain"] = float(gain_part.contributions["g_db"]) * dnf_dte
-    dut_gain_db = gain_db + 10.0 * math.log10(lin * lout)
+    dut_gain_db = path_gain_db + 10.0 * math.log10(lin * lout)
 
     flags = density_flags(densities.values(), scatter_limit)
     margin, correction, nf_uncorrected = None, None, None
@@ -212,7 +215,7 @@ def gain_method_point(
                 "termination's kT; check floor_temperature_k and that the floor was measured "
                 "on the analyzer input with the same settings", freq_hz=freq_hz)
         margin = margin_db(n_m - analyzer_noise, analyzer_noise)
-        te_uncorrected = float(te_dut_model(n_m, n_f, gain_db, with_floor=False))
+        te_uncorrected = float(te_dut_model(n_m, n_f, path_gain_db, with_floor=False))
         nf_uncorrected = nf_db_from_te(te_uncorrected, t0)
         correction = nf_uncorrected - nf_db
         if margin is not None and margin < floor_warning_db:
@@ -228,7 +231,7 @@ def gain_method_point(
         nf_db=nf_db,
         te_k=te_k,
         gain_db=dut_gain_db,
-        u_nf_db=float(stat.u) * dnf_dte,
+        u_nf_db=u_te_k * dnf_dte,
         u_te_k=u_te_k,
         u_gain_db=u_gain_db,
         floor_margin_db=margin,
@@ -241,7 +244,7 @@ def gain_method_point(
             "u_densities_w_per_hz": {k: d.u_density_w_per_hz for k, d in densities.items()},
             "u_nf_db_contributions": contributions,
             "u_nf_db_with_gain": math.sqrt(sum(c**2 for c in contributions.values())),
-            "path_gain_db": gain_db,
+            "path_gain_db": path_gain_db,
             "input_loss_db": input_loss_db,
             "input_loss_temperature_k": tp_in,
             "output_loss_db": output_loss_db,

@@ -138,7 +138,7 @@ def hot_temperature_k(enr_lin: ArrayLike, tc_k: ArrayLike, t0_k: float = T0_K,
     t0 = float(_positive("t0_k", t0_k, _KELVIN_FIX))
     if _check_reference(enr_reference) == "t0":
         return scalar_or_array(t0 * enr + tc)
-    return scalar_or_array(np.broadcast_to(t0 * (enr + 1.0), np.broadcast(enr, tc).shape) * 1.0)
+    return scalar_or_array(t0 * (enr + 1.0) + 0.0 * tc)  # broadcast like the 't0' form
 
 
 def te_from_y_k(y: ArrayLike, th_k: ArrayLike, tc_k: ArrayLike) -> FloatOrArray:
@@ -327,8 +327,9 @@ def calibrate_point(hot: NoiseDensity, cold: NoiseDensity, enr_db: float, *,
         return _te_of_pair(h, c, np.asarray(enr_db), tc, t0, ref, freq_hz,
                            "Y-factor calibration")[1]
 
-    prop = propagate(te2_model, {"h": hot.density_w_per_hz, "c": cold.density_w_per_hz},
-                     {"h": hot.u_density_w_per_hz, "c": cold.u_density_w_per_hz})
+    prop = propagate(lambda h, c: {"te2": te2_model(h, c)},
+                     {"h": hot.density_w_per_hz, "c": cold.density_w_per_hz},
+                     {"h": hot.u_density_w_per_hz, "c": cold.u_density_w_per_hz})["te2"]
     te2 = float(prop.value)
     if te2 <= 0:
         raise MeasurementError(
@@ -344,7 +345,7 @@ def calibrate_point(hot: NoiseDensity, cold: NoiseDensity, enr_db: float, *,
     return CalibrationPoint(
         freq_hz=freq_hz, hot=hot, cold=cold, enr_db=enr_db, u_enr_db=u_enr_db,
         enr_extrapolated=enr_extrapolated, enr_reference=ref, cold_temperature_k=tc, t0_k=t0,
-        y_db=10.0 * math.log10(y), te_k=te2, u_te_k=float(prop.u),
+        y_db=10.0 * math.log10(y), te_k=te2, u_te_k=float(prop.u()),
         nf_db=nf_db_from_te(te2, t0), calibrated_at=calibrated_at or _now(),
         settings=hot.settings, flags=flags)
 
@@ -407,10 +408,15 @@ def y_factor_point(
     tp_out = tc if output_loss_temperature_k is None else check_temperature(
         "output_loss_temperature_k", output_loss_temperature_k)
 
+    if calibration is not None and (calibration.enr_reference != ref
+                                    or calibration.t0_k != t0):
+        raise InputError("calibration", f"was made with enr_reference="
+                         f"{calibration.enr_reference!r}, t0_k={calibration.t0_k} but the "
+                         f"measurement uses {ref!r}, {t0}",
+                         fix="calibrate and measure with the same ENR convention and T0")
     # One ENR variable when calibration and measurement use the same value (same source and
     # frequency): the ENR error is then fully correlated (reference.md §9).
-    enr_shared = calibration is None or (calibration.enr_db == enr_db
-                                         and calibration.enr_reference == ref)
+    enr_shared = calibration is None or calibration.enr_db == enr_db
 
     def core(h, c, hc, cc, enr, enr_cal) -> _Core:
         cal = None
@@ -431,12 +437,16 @@ def y_factor_point(
     if not enr_shared:
         u_enr["enr_cal"] = calibration.u_enr_db  # type: ignore[union-attr]
 
+    def outputs(**kw) -> dict[str, np.ndarray]:
+        r = core(**kw)
+        out = {"te": r.te_dut_k}
+        if r.gain_dut_lin is not None:
+            out["gain_db"] = 10.0 * np.log10(r.gain_dut_lin)
+        return out
+
     try:
         result = core(**{k: np.asarray(v) for k, v in values.items()})
-        stat = propagate(lambda **kw: core(**kw).te_dut_k, values, u_stat)
-        enr_part = propagate(lambda **kw: core(**kw).te_dut_k, values, u_enr)
-        gain_u = (propagate(lambda **kw: 10.0 * np.log10(core(**kw).gain_dut_lin), values,
-                            u_stat) if calibration is not None else None)
+        props = propagate(outputs, values, u_stat | u_enr)
     except MeasurementError as exc:
         raise exc.add_context(freq_hz=freq_hz, method="y_factor") from None
 
@@ -450,8 +460,9 @@ def y_factor_point(
     dnf_dte = DB_PER_NEPER_POWER / (t0 + te_k)
     names = {"h": "hot", "c": "cold", "hc": "hot_cal", "cc": "cold_cal", "enr": "enr",
              "enr_cal": "enr_cal"}
-    contributions = {names[k]: float(v) * dnf_dte for k, v in stat.contributions.items()}
-    contributions.update({names[k]: float(v) * dnf_dte for k, v in enr_part.contributions.items()})
+    te_prop = props["te"]
+    u_te_k = float(te_prop.u(u_stat))
+    contributions = {names[k]: float(v) * dnf_dte for k, v in te_prop.contributions.items()}
     y_db = 10.0 * math.log10(float(result.y))
 
     flags = density_flags(densities.values(), scatter_limit)
@@ -463,7 +474,7 @@ def y_factor_point(
     gain_db = u_gain_db = margin = correction = nf_uncorrected = None
     if calibration is not None:
         gain_db = 10.0 * math.log10(float(result.gain_dut_lin))
-        u_gain_db = float(gain_u.u)  # type: ignore[union-attr]
+        u_gain_db = float(props["gain_db"].u(u_stat))
         g1, te1, te2 = float(result.g1_lin), float(result.te1_k), float(result.te2_k)
         margin = margin_db((tc + te1) * g1, te2)
         nf_uncorrected = nf_db_from_te(float(result.te_dut_uncorrected_k), t0)
@@ -482,8 +493,8 @@ def y_factor_point(
         te_k=te_k,
         gain_db=gain_db,
         y_db=y_db,
-        u_nf_db=float(stat.u) * dnf_dte,
-        u_te_k=float(stat.u),
+        u_nf_db=u_te_k * dnf_dte,
+        u_te_k=u_te_k,
         u_gain_db=u_gain_db,
         floor_margin_db=margin,
         floor_correction_db=correction,
@@ -585,7 +596,7 @@ def y_factor_sweep(
         y_db=10.0 * np.log10(r.y),
         gain_db=None if r.gain_dut_lin is None else 10.0 * np.log10(r.gain_dut_lin),
         nf_uncorrected_db=None if r.te_dut_uncorrected_k is None
-        else 10.0 * np.log10(np.maximum(1.0 + r.te_dut_uncorrected_k / t0, 1e-300)),
+        else 10.0 * np.log10(1.0 + r.te_dut_uncorrected_k / t0),
     )
 
 
