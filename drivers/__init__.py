@@ -19,9 +19,9 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from noisebench.drivers.analyzer import ScpiAnalyzer
-from noisebench.drivers.generator import ScpiGenerator
-from noisebench.drivers.noise_source import (
+from .analyzer import ScpiAnalyzer
+from .generator import ScpiGenerator
+from .noise_source import (
     AnalyzerDriveNoiseSource,
     CallableNoiseSource,
     OperatorNoiseSource,
@@ -29,14 +29,14 @@ from noisebench.drivers.noise_source import (
     SupplyNoiseSource,
     check_source_switching,
 )
-from noisebench.drivers.profile import (
+from .profile import (
     InstrumentProfile,
     ProfileError,
     available_profiles,
     load_profile,
 )
-from noisebench.drivers.protocol import expected_protocol
-from noisebench.drivers.transport import Transport, VisaSession
+from .protocol import expected_protocol
+from .transport import Transport, VisaSession
 
 __all__ = [
     "AnalyzerDriveNoiseSource",
@@ -119,7 +119,7 @@ def open_supply_noise_source(resource: str, *, drive_v: float | None = None,
 
     ``drive_v`` (V) defaults to ``enr_table.metadata.nominal_drive_v``; above ``max_drive_v``
     it is refused (SafetyError) before the supply is touched."""
-    from noisebench.drivers.noise_source import _drive_voltage
+    from .noise_source import _drive_voltage
 
     _drive_voltage(drive_v, enr_table, max_drive_v)  # refuse before connecting
     supply = open_supply(resource, profile, timeout_s=timeout_s, visa_library=visa_library,

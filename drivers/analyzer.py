@@ -36,14 +36,6 @@ from noisebench.acquisition import (
     SweepMode,
     Trace,
 )
-from noisebench.drivers.profile import (
-    AnalyzerProfile,
-    InstrumentProfile,
-    ReplyError,
-    load_profile,
-)
-from noisebench.drivers.scpi_channel import ScpiChannel
-from noisebench.drivers.transport import BlockError, Transport, parse_ascii_values
 from noisebench.errors import (
     CommunicationError,
     InputError,
@@ -53,6 +45,15 @@ from noisebench.errors import (
 )
 from noisebench.filters import FilterKind, RbwFilter
 from noisebench.instruments import Analyzer
+
+from .profile import (
+    AnalyzerProfile,
+    InstrumentProfile,
+    ReplyError,
+    load_profile,
+)
+from .scpi_channel import ScpiChannel
+from .transport import BlockError, Transport, parse_ascii_values
 
 logger = logging.getLogger(__name__)
 
@@ -208,7 +209,7 @@ class ScpiAnalyzer(Analyzer):
     def _apply(self, commands: list[str], request: AcquisitionRequest) -> AcquisitionSettings:
         for command in commands:
             self._channel.write(command)
-        settings = self.read_settings()
+        settings = self._read_settings()
         self._channel.check_errors("configure")
         _log_adjustments(request, settings)
         return settings
@@ -217,6 +218,9 @@ class ScpiAnalyzer(Analyzer):
 
     def read_settings(self) -> AcquisitionSettings:
         """Query every setting the profile can report; return them as applied settings."""
+        return self._channel.run("read settings", self._read_settings)
+
+    def _read_settings(self) -> AcquisitionSettings:
         with self.lock:
             s = self.spec.settings
             get = self._channel.get
@@ -260,13 +264,13 @@ class ScpiAnalyzer(Analyzer):
         """Read the settings back and return how they differ from the last applied ones."""
         applied = self._require_settings()
         return self._channel.run("verify settings",
-                                 lambda: settings_differences(applied, self.read_settings()))
+                                 lambda: settings_differences(applied, self._read_settings()))
 
     def _restore(self) -> None:
         """After a reconnect: detect lost settings, re-apply them and the output states."""
         self._format_sent = None
         if self._request is not None and self._settings is not None:
-            found = settings_differences(self._settings, self.read_settings())
+            found = settings_differences(self._settings, self._read_settings())
             if found:
                 self.settings_changes.append(found)
                 logger.warning("analyzer settings changed while disconnected (instrument "

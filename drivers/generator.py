@@ -12,11 +12,12 @@ import logging
 import math
 from pathlib import Path
 
-from noisebench.drivers.profile import GeneratorProfile, InstrumentProfile, load_profile
-from noisebench.drivers.scpi_channel import ScpiChannel
-from noisebench.drivers.transport import Transport
 from noisebench.errors import InputError, MeasurementError, NoisebenchError, SafetyError
 from noisebench.instruments import Generator
+
+from .profile import GeneratorProfile, InstrumentProfile, load_profile
+from .scpi_channel import ScpiChannel
+from .transport import Transport
 
 logger = logging.getLogger(__name__)
 

@@ -26,9 +26,6 @@ from typing import Any
 
 import numpy as np
 
-from noisebench.drivers.profile import InstrumentProfile, SupplyProfile, load_profile
-from noisebench.drivers.scpi_channel import ScpiChannel
-from noisebench.drivers.transport import Transport
 from noisebench.errors import (
     CommunicationError,
     InputError,
@@ -37,6 +34,10 @@ from noisebench.errors import (
     SafetyError,
 )
 from noisebench.instruments import Analyzer, Instrument, NoiseSource
+
+from .profile import InstrumentProfile, SupplyProfile, load_profile
+from .scpi_channel import ScpiChannel
+from .transport import Transport
 
 logger = logging.getLogger(__name__)
 

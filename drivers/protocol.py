@@ -27,11 +27,11 @@ from __future__ import annotations
 
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
-from typing import Any, TypeVar, Union
+from typing import Any, TypeVar
 
 import numpy as np
 
-from noisebench.drivers.transport import (
+from .transport import (
     Transport,
     decode_block_values,
     parse_ascii_values,
@@ -42,7 +42,7 @@ from noisebench.drivers.transport import (
 __all__ = ["RECOVER", "FakeTransport", "ProtocolError", "expected_protocol", "ieee_block"]
 
 RECOVER = "<recover>"
-Reply = Union[str, bytes, BaseException, None]
+Reply = str | bytes | BaseException | None
 T = TypeVar("T")
 
 
@@ -53,8 +53,7 @@ class ProtocolError(AssertionError):
 def ieee_block(values: Sequence[float] | np.ndarray, datatype: str = "f",
                big_endian: bool = True) -> bytes:
     """An IEEE 488.2 definite-length block of ``values`` (float32/float64), with terminator."""
-    size = {"f": 4, "d": 8}[datatype]
-    dtype = np.dtype((">" if big_endian else "<") + datatype + str(size))
+    dtype = np.dtype((">" if big_endian else "<") + {"f": "f4", "d": "f8"}[datatype])
     payload = np.asarray(values, dtype=dtype).tobytes()
     digits = str(len(payload))
     return b"#" + str(len(digits)).encode() + digits.encode() + payload + b"\n"

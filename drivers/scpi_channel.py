@@ -24,9 +24,10 @@ import time
 from collections.abc import Callable
 from typing import Any, TypeVar
 
-from noisebench.drivers.profile import CommonProfile, ReplyError
-from noisebench.drivers.transport import Transport
 from noisebench.errors import CommunicationError, InputError, InstrumentError
+
+from .profile import CommonProfile, ReplyError
+from .transport import Transport
 
 logger = logging.getLogger(__name__)
 
@@ -148,7 +149,7 @@ class ScpiChannel:
                 try:
                     return operation()
                 except InstrumentError as exc:
-                    raise exc.add_context(instrument=self.kind, operation=what)
+                    raise exc.add_context(instrument=self.kind, operation=what) from None
                 except CommunicationError as exc:
                     exc.add_context(instrument=self.kind, operation=what)
                     self.needs_recovery = True

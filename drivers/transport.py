@@ -120,7 +120,7 @@ def decode_block_values(payload: bytes, datatype: str = "f", big_endian: bool = 
     if len(payload) % size:
         raise BlockError(f"binary block from {command!r} has {len(payload)} bytes, not a "
                          f"multiple of {size}", command=command)
-    dtype = np.dtype((">" if big_endian else "<") + datatype + str(size))
+    dtype = np.dtype((">" if big_endian else "<") + f"f{size}")
     return np.frombuffer(payload, dtype=dtype).astype(np.float64)
 
 

@@ -68,9 +68,10 @@ def combine_densities(parts: Sequence[NoiseDensity], *,
             raise InputError("parts.freq_hz", f"readings at {d.freq_hz:.9g} and {f0:.9g} Hz "
                              "cannot be combined", fix="combine readings of one frequency")
     weights = [_weight(d) for d in parts]
+    pairs = list(zip(weights, parts, strict=True))
     total_w = sum(weights)
-    mean = sum(w * d.density_w_per_hz for w, d in zip(weights, parts, strict=True)) / total_w
-    u = math.sqrt(sum((w * d.u_density_w_per_hz) ** 2 for w, d in zip(weights, parts, strict=True))) / total_w
+    mean = sum(w * d.density_w_per_hz for w, d in pairs) / total_w
+    u = math.sqrt(sum((w * d.u_density_w_per_hz) ** 2 for w, d in pairs)) / total_w
     chi2, birge, excess = _scatter_test(parts, mean, alpha)
     if excess:
         u *= birge
@@ -112,8 +113,8 @@ def _merged(parts: Sequence[NoiseDensity], weights: Sequence[float], mean: float
         bins_used=first.bins_used,
         excluded_freq_hz=excluded,
         scatter_ratio=pooled,
-        bias_correction_db=sum(w * d.bias_correction_db for w, d in zip(weights, parts, strict=True))
-        / total_w,
+        bias_correction_db=sum(w * d.bias_correction_db
+                               for w, d in zip(weights, parts, strict=True)) / total_w,
         settings=settings,
         acquisition_time_s=None if any(t is None for t in times) else float(sum(times)),
     )

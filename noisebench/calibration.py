@@ -69,6 +69,8 @@ class CalibrationEntry(BaseModel):
     measured_at: datetime = Field(default_factory=_now)
     cold_temperature_k: float | None = Field(default=None, gt=0)
     instrument_time_s: float | None = Field(default=None, ge=0)
+    stopped_by: str = Field(default="target",
+                            description="target, time_limit or max_averages")
     summary: list[dict[str, Any]] = Field(default_factory=list)
 
     def index_of(self, freq_hz: float) -> int | None:

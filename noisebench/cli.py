@@ -91,7 +91,7 @@ def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
 def cmd_demo(args: argparse.Namespace, out: TextIO) -> int:
     from noisebench.demo import run_demo
 
-    summary = run_demo(Path(args.out), points=args.points, seed=args.seed, out=out)
+    summary = run_demo(Path(args.out), points=args.points, seed=args.seed, stream=out)
     return EXIT_OK if summary.complete else EXIT_FAILED
 
 
@@ -261,7 +261,8 @@ def _exit_code(exc: BaseException) -> int:
         (SafetyError, EXIT_SAFETY), (InputError, EXIT_INPUT),
         (CommunicationError, EXIT_INSTRUMENT), (InstrumentError, EXIT_INSTRUMENT),
         (MeasurementError, EXIT_MEASUREMENT), (NoisebenchError, EXIT_FAILED),
-        (OSError, EXIT_FAILED), (ValueError, EXIT_INPUT)]
+        (FileNotFoundError, EXIT_INPUT), (IsADirectoryError, EXIT_INPUT),
+        (NotADirectoryError, EXIT_INPUT), (OSError, EXIT_FAILED), (ValueError, EXIT_INPUT)]
     for kind, code in table:
         if isinstance(exc, kind):
             return code
@@ -304,3 +305,7 @@ def main(argv: Sequence[str] | None = None, *, out: TextIO | None = None) -> int
               "(run with -v for details and report it)", file=sys.stderr)
         return EXIT_FAILED
 
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

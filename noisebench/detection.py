@@ -72,6 +72,11 @@ _STATISTIC_OF_SCALE = {
 }
 
 
+def statistic_for_scale(scale: AveragingScale) -> PointStatistic:
+    """The statistic a trace point holds after averaging on ``scale``."""
+    return _STATISTIC_OF_SCALE[AveragingScale(scale)]
+
+
 # --- gamma-function helpers ------------------------------------------------------------------
 
 def _lgamma_shift(k: float, s: float) -> float:

@@ -55,7 +55,7 @@ from noisebench.acquisition import (
     TraceUnit,
 )
 from noisebench.density import NoiseDensity
-from noisebench.detection import PointModel, PointStatistic, point_model_for
+from noisebench.detection import PointModel, point_model_for, statistic_for_scale
 from noisebench.errors import InputError, MeasurementError
 from noisebench.filters import (
     frequency_power_correlation,
@@ -109,11 +109,11 @@ def estimate_densities(trace: Trace, freqs_hz: Sequence[float] | np.ndarray,
     if freqs.ndim != 1 or freqs.size == 0:
         raise InputError("freqs_hz", "must be a non-empty list of frequencies",
                          fix="pass the frequency points this trace covers")
-    bands = np.broadcast_to(np.asarray(band_hz, dtype=float), freqs.shape) \
-        if np.ndim(band_hz) == 0 or np.size(band_hz) == freqs.size else None
-    if bands is None:
-        raise InputError("band_hz", f"has {np.size(band_hz)} values for {freqs.size} frequencies",
+    bands = np.asarray(band_hz, dtype=float)
+    if bands.ndim > 1 or bands.size not in (1, freqs.size):
+        raise InputError("band_hz", f"has {bands.size} values for {freqs.size} frequencies",
                          fix="pass one band or one per frequency")
+    bands = np.broadcast_to(bands.ravel(), freqs.shape)
     prepared = _prepare(trace, reject_spurs=reject_spurs, threshold_sigma=spur_threshold_sigma)
     out = []
     for i, (f, b) in enumerate(zip(freqs, bands, strict=True)):
@@ -262,31 +262,20 @@ def _uniform_spacing(freq_hz: np.ndarray) -> float:
 def _window_time_kernel(s: AcquisitionSettings, dt: float, max_lag: int) -> np.ndarray:
     """Correlation of point averages over consecutive windows of ``dt`` (RMS/AVERAGE, zero span).
 
-    Cov(j) = integral C(u) max(0, dt - |u - j dt|) du, C the power correlation in time.
+    Cov(j) = integral C(u) max(0, dt - |u - j dt|) du, C the power correlation in time
+    (trapezoidal rule on a grid fine against both dt and the correlation time).
     """
-    from scipy.integrate import quad
-
-    def c(u: float) -> float:
-        return float(time_power_correlation(s.rbw_filter, np.array([u]), s.rbw_hz)[0])
-
-    reach = 60.0 / s.rbw_filter.stat_bw_hz(s.rbw_hz)  # C is negligible beyond this lag
-
-    def cov(j: int) -> float:
-        lo, hi = max((j - 1) * dt, 0.0), min((j + 1) * dt, reach)
-        if hi <= lo:
-            return 0.0
-        weight = (lambda u: dt - u) if j == 0 else (lambda u: dt - abs(u - j * dt))
-        val = quad(lambda u: c(u) * weight(u), lo, hi, limit=200)[0]
-        return 2.0 * val if j == 0 else val
-
-    c0 = cov(0)
-    out = [1.0]
-    for j in range(1, max_lag + 1):
-        val = cov(j) / c0
-        if val < CORRELATION_FLOOR:
-            break
-        out.append(val)
-    return np.array(out + [0.0])
+    corr_time = 1.0 / s.rbw_filter.stat_bw_hz(s.rbw_hz)
+    reach = min(60.0 * corr_time, (max_lag + 1) * dt)  # C is negligible beyond 60 / B_stat
+    step = min(dt, corr_time) / 64.0
+    u = np.linspace(0.0, reach, int(math.ceil(reach / step)) + 1)
+    c = time_power_correlation(s.rbw_filter, u, s.rbw_hz)
+    lags = np.arange(0, min(max_lag, int(reach / dt) + 1) + 1)
+    weight = np.maximum(0.0, dt - np.abs(u[None, :] - lags[:, None] * dt))
+    cov = np.trapezoid(c[None, :] * weight, u, axis=1)
+    cov[0] *= 2.0  # the window overlaps itself on both sides of u = 0
+    out = cov / cov[0]
+    return np.append(out, 0.0)
 
 
 # --- spur search ------------------------------------------------------------------------------
@@ -355,8 +344,8 @@ def _find_spurs(trace: Trace, power: np.ndarray, rel_var: float, kernel: np.ndar
 # --- per-band estimate ------------------------------------------------------------------------
 
 def _select_band(p: _Prepared, freq_hz: float | None, band_hz: float | None,
-                 min_points: int) -> tuple[float, np.ndarray]:
-    """(reported frequency, index slice as a boolean mask over the trace) for the band."""
+                 min_points: int) -> tuple[float, slice]:
+    """(reported frequency, slice of the trace points inside the band)."""
     f = p.freq_hz
     s = p.trace.settings
     if freq_hz is not None and (not math.isfinite(freq_hz) or freq_hz <= 0):
@@ -367,13 +356,12 @@ def _select_band(p: _Prepared, freq_hz: float | None, band_hz: float | None,
     if min_points < 1:
         raise InputError("min_points", "must be >= 1", value=min_points)
     lo, hi = float(f[0]), float(f[-1])
+    whole = slice(0, f.size)
     if p.zero_span:
-        centre = lo
-        if freq_hz is not None and abs(freq_hz - centre) > s.enbw_hz / 2:
+        if freq_hz is not None and abs(freq_hz - lo) > s.enbw_hz / 2:
             raise InputError("freq_hz", f"{freq_hz:g} Hz is not within the RBW of the zero-span "
-                             f"trace at {centre:g} Hz", fix="estimate at the trace's centre")
-        mask = np.ones(f.size, dtype=bool)
-        report = centre if freq_hz is None else freq_hz
+                             f"trace at {lo:g} Hz", fix="estimate at the trace's centre")
+        report, band = (lo if freq_hz is None else freq_hz), whole
     else:
         spacing = (hi - lo) / (f.size - 1)
         report = 0.5 * (lo + hi) if freq_hz is None else freq_hz
@@ -381,37 +369,35 @@ def _select_band(p: _Prepared, freq_hz: float | None, band_hz: float | None,
             if freq_hz is not None and not lo - spacing / 2 <= freq_hz <= hi + spacing / 2:
                 raise InputError("freq_hz", f"{freq_hz:g} Hz is outside the trace "
                                  f"({lo:g}..{hi:g} Hz)", fix="use a trace that covers it")
-            mask = np.ones(f.size, dtype=bool)
+            band = whole
         else:
             half = band_hz / 2
             if report - half < lo - spacing / 2 or report + half > hi + spacing / 2:
                 raise InputError("band_hz", f"{report:g} +/- {half:g} Hz extends beyond the "
                                  f"trace ({lo:g}..{hi:g} Hz)",
                                  fix="narrow the band or widen the span")
-            mask = np.abs(f - report) <= half * (1 + 1e-12) + 1e-9 * spacing
-    if int(mask.sum()) < min_points:
+            tol = half * 1e-12 + 1e-9 * spacing
+            band = slice(int(np.searchsorted(f, report - half - tol, side="left")),
+                         int(np.searchsorted(f, report + half + tol, side="right")))
+    count = band.stop - band.start
+    if count < min_points:
         raise InputError("band_hz" if band_hz is not None else "trace.values",
-                         f"holds {int(mask.sum())} trace point(s), fewer than {min_points}",
+                         f"holds {count} trace point(s), fewer than {min_points}",
                          fix="widen the band or acquire more trace points")
-    return report, mask
+    return report, band
 
 
 def _estimate_band(p: _Prepared, freq_hz: float | None, band_hz: float | None, *,
                    min_points: int) -> NoiseDensity:
-    report_hz, in_band = _select_band(p, freq_hz, band_hz, min_points)
-    lo, hi = np.flatnonzero(in_band)[[0, -1]]
-    sl = slice(int(lo), int(hi) + 1)
-    used = in_band[sl] & ~p.excluded[sl]
+    report_hz, sl = _select_band(p, freq_hz, band_hz, min_points)
+    used = ~p.excluded[sl]
     n = int(used.sum())
     if n < min_points:
         raise MeasurementError(
-            f"only {n} of {int(in_band.sum())} points in the band are free of spurs "
+            f"only {n} of {used.size} points in the band are free of spurs "
             f"(spurs at {np.round(p.spurs_hz, 1).tolist()} Hz)", freq_hz=report_hz)
     values = p.power[sl]
-    mean = float(np.mean(values[used]))
-    if not mean > 0:
-        raise MeasurementError("the mean noise power in the band is not positive",
-                               freq_hz=report_hz)
+    mean = float(np.mean(values[used]))  # > 0: every point is a positive power
     stats_ = _band_statistics(values, used, p.kernel)
     rel_var, scatter_ratio = _relative_variance(p, stats_, mean)
     rel_u = math.sqrt(rel_var * stats_.s1) / n
@@ -451,7 +437,8 @@ def _band_statistics(values: np.ndarray, used: np.ndarray, kernel: np.ndarray) -
             return x * mask
         return signal.oaconvolve(x * mask, sym, mode="same") * mask
 
-    s1 = float(np.sum(corr_apply(mask)))
+    c_mask = corr_apply(mask)
+    s1 = float(np.sum(c_mask))
     s2 = float(np.sum((signal.oaconvolve(mask, sym**2, mode="same") if kernel.size > 1
                        else mask) * mask))
     if n < 3:
@@ -463,7 +450,7 @@ def _band_statistics(values: np.ndarray, used: np.ndarray, kernel: np.ndarray) -
     beta = np.linalg.solve(xtx, x @ (values * mask))
     resid = (values - beta[0] - beta[1] * t) * mask
     rss = float(resid @ resid)
-    cx = np.stack([corr_apply(x[0]), corr_apply(x[1])])
+    cx = np.stack([c_mask, corr_apply(x[1])])
     tr_pc = float(np.trace(np.linalg.solve(xtx, x @ cx.T)))
     return _BandStats(n=n, s1=s1, s2=s2, rss=rss, expected_rss_factor=n - tr_pc)
 
@@ -517,15 +504,9 @@ def _marker_model(reading: MarkerReading) -> PointModel:
             raise
         model = None
     if model is None or not model.variance_known:
-        stat = model.statistic if model is not None else _scale_statistic(s)
+        stat = model.statistic if model is not None else statistic_for_scale(s.averaging_scale)
         model = PointModel(statistic=stat, count=float(s.averages), shape=1.0)
     return model
-
-
-def _scale_statistic(s: AcquisitionSettings) -> PointStatistic:
-    from noisebench.detection import _STATISTIC_OF_SCALE
-
-    return _STATISTIC_OF_SCALE[s.averaging_scale]
 
 
 def _marker_points(s: AcquisitionSettings, band_hz: float | None,

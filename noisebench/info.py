@@ -10,6 +10,7 @@ from __future__ import annotations
 import logging
 import platform
 import threading
+import warnings
 from importlib import metadata, resources
 from typing import Any
 
@@ -45,22 +46,27 @@ def visa_resources(timeout_s: float = 5.0, library: str = "@py") -> list[str] | 
     result: dict[str, Any] = {}
 
     def scan() -> None:
-        try:
-            import pyvisa
-
-            manager = pyvisa.ResourceManager(library)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
             try:
-                result["found"] = list(manager.list_resources())
-            finally:
-                manager.close()
-        except Exception as exc:  # noqa: BLE001
-            result["error"] = f"{type(exc).__name__}: {exc}"
+                import pyvisa
+
+                manager = pyvisa.ResourceManager(library)
+                try:
+                    result["found"] = list(manager.list_resources())
+                finally:
+                    manager.close()
+            except Exception as exc:  # noqa: BLE001
+                result["error"] = f"{type(exc).__name__}: {exc}"
+        result["notes"] = [str(w.message) for w in caught]
 
     worker = threading.Thread(target=scan, name="noisebench-info-scan", daemon=True)
     worker.start()
     worker.join(timeout_s)
     if worker.is_alive():
         return f"no answer within {timeout_s:g} s"
+    for note in result.get("notes", []):
+        logger.info("resource listing: %s", note)
     if "error" in result:
         return f"listing failed ({result['error']})"
     return result.get("found", [])

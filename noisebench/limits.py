@@ -5,7 +5,8 @@ any of: a maximum NF, a minimum and/or maximum gain, and a maximum gain flatness
 over the band's measured points). Bands may overlap; every band that contains a point applies.
 Band edges are inclusive.
 
-Decision rules (conformity assessment, JCGM 106:2012; common practice in test):
+Decision rules (conformity assessment, JCGM 106:2012 (cited from memory); common practice in
+test):
 
 ``guarded`` (default)
     the expanded uncertainty U is a guard band. For an upper limit L:
@@ -27,13 +28,16 @@ measured point; else PASS. Points outside every band are "not_judged".
 
 The expanded uncertainty of each point's NF comes from its budget (:class:`~noisebench.
 uncertainty.Budget` or its dict), or a number, or else ``k * point.u_nf_db`` (statistical part
-only, noted in the verdict's ``notes``); the gain's from ``k * point.u_gain_db``.
+only, noted in the verdict's ``notes``); the gain's from ``k * point.u_gain_db``. A Monte Carlo
+budget's coverage interval is used as it is, asymmetric (:func:`decide_interval`): PASS when
+its upper end is within an upper limit, FAIL when its lower end is beyond it.
 """
 
 from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from enum import Enum
 from typing import Any, Literal
 
@@ -52,6 +56,7 @@ __all__ = [
     "UnitVerdict",
     "Verdict",
     "decide",
+    "decide_interval",
     "judge",
 ]
 
@@ -85,24 +90,46 @@ def decide(value: float, expanded: float, limit: float, kind: Literal["max", "mi
     ``kind="max"``: ``limit`` is an upper limit; ``"min"``: a lower limit. See the module
     docstring for the rules; comparisons are exact.
     """
-    for field, x in (("value", value), ("expanded", expanded), ("limit", limit)):
-        if not (isinstance(x, (int, float)) and math.isfinite(x)):
-            raise InputError(field, f"must be a finite number (got {x!r})", value=x)
+    _finite_number("expanded", expanded)
     if expanded < 0:
         raise InputError("expanded", f"must be >= 0 (got {expanded!r})",
                          fix="an expanded uncertainty is never negative")
+    _finite_number("value", value)
+    return decide_interval(value, value - expanded, value + expanded, limit, kind, rule)
+
+
+def decide_interval(value: float, low: float, high: float, limit: float,
+                    kind: Literal["max", "min"],
+                    rule: DecisionRule | str = DecisionRule.GUARDED) -> Verdict:
+    """Verdict from a coverage interval ``[low, high]`` (dB) of the measurand.
+
+    Guarded: an upper limit passes when ``high <= limit`` and fails when ``low > limit``; a
+    lower limit passes when ``low >= limit`` and fails when ``high < limit``. This is how an
+    asymmetric Monte Carlo interval (JCGM 101:2008) is used. Simple: ``value`` alone decides.
+    """
+    for field, x in (("value", value), ("low", low), ("high", high), ("limit", limit)):
+        _finite_number(field, x)
+    if low > high:
+        raise InputError("low", f"interval [{low!r}, {high!r}] is reversed",
+                         fix="pass the lower end first")
     rule = _rule(rule)
     if kind not in ("max", "min"):
         raise InputError("kind", f"must be 'max' or 'min' (got {kind!r})")
-    sign = 1.0 if kind == "max" else -1.0  # map a lower limit onto an upper one
-    v, lim = sign * value, sign * limit
     if rule is DecisionRule.SIMPLE:
-        return Verdict.PASS if v <= lim else Verdict.FAIL
-    if v + expanded <= lim:
+        ok = value <= limit if kind == "max" else value >= limit
+        return Verdict.PASS if ok else Verdict.FAIL
+    if kind == "max":
+        if high <= limit:
+            return Verdict.PASS
+        return Verdict.FAIL if low > limit else Verdict.INDETERMINATE
+    if low >= limit:
         return Verdict.PASS
-    if v - expanded > lim:
-        return Verdict.FAIL
-    return Verdict.INDETERMINATE
+    return Verdict.FAIL if high < limit else Verdict.INDETERMINATE
+
+
+def _finite_number(field: str, x: Any) -> None:
+    if isinstance(x, bool) or not (isinstance(x, (int, float)) and math.isfinite(x)):
+        raise InputError(field, f"must be a finite number (got {x!r})", value=x)
 
 
 def _rule(rule: DecisionRule | str) -> DecisionRule:
@@ -241,6 +268,7 @@ class PointVerdict(BaseModel):
     verdict: Verdict
     nf_db: float
     U_nf_db: float
+    nf_interval_db: tuple[float, float]  # the coverage interval the guard band used
     gain_db: float | None = None
     U_gain_db: float | None = None
     limit: float | None = None  # the tightest NF limit that applied (for tables / CSV)
@@ -248,7 +276,8 @@ class PointVerdict(BaseModel):
 
     def to_dict(self) -> dict[str, Any]:
         return {"freq_hz": self.freq_hz, "verdict": self.verdict.value, "limit": self.limit,
-                "nf_db": self.nf_db, "U_nf_db": self.U_nf_db, "gain_db": self.gain_db,
+                "nf_db": self.nf_db, "U_nf_db": self.U_nf_db,
+                "nf_interval_db": list(self.nf_interval_db), "gain_db": self.gain_db,
                 "U_gain_db": self.U_gain_db, "checks": [c.to_dict() for c in self.checks]}
 
 
@@ -294,16 +323,29 @@ class UnitVerdict(BaseModel):
 # =========================================================================== judging
 
 
-def _expanded_for(point: PointResult, given: Any, k_default: float
-                  ) -> tuple[float, float, str | None]:
-    """``(U_nf_db, k, note)`` for one point from a Budget, a budget dict, a number or None."""
+@dataclass(frozen=True)
+class _NfGuard:
+    """Expanded uncertainty of one point's NF: half-width U, interval, k, and where from."""
+
+    expanded: float
+    low: float
+    high: float
+    k: float
+    statistical_only: bool = False
+
+
+def _guard_for(point: PointResult, given: Any, k_default: float) -> _NfGuard:
+    """The NF guard of one point from a Budget, a budget dict, a number (U, dB) or None."""
+    nf = point.nf_db
     if given is None:
-        return k_default * point.u_nf_db, k_default, "statistical"
+        u = k_default * point.u_nf_db
+        return _NfGuard(u, nf - u, nf + u, k_default, statistical_only=True)
     if isinstance(given, bool):
         raise InputError("uncertainties", f"got a bool for {point.freq_hz:.6g} Hz",
                          fix="pass budgets, expanded uncertainties in dB, or None")
     if isinstance(given, (int, float)):
-        return _checked_u(point, float(given)), k_default, None
+        u = _checked_u(point, float(given))
+        return _NfGuard(u, nf - u, nf + u, k_default)
     data = given.to_dict() if hasattr(given, "to_dict") else given
     if not isinstance(data, Mapping) or "U_expanded_db" not in data:
         raise InputError("uncertainties", f"entry for {point.freq_hz:.6g} Hz is neither a "
@@ -313,9 +355,19 @@ def _expanded_for(point: PointResult, given: Any, k_default: float
                                                                   rel_tol=1e-9):
         raise InputError("uncertainties", f"budget at {budget_freq:.9g} Hz given for the point "
                          f"at {point.freq_hz:.9g} Hz", fix="keep budgets in the points' order")
+    u = _checked_u(point, data["U_expanded_db"])
     k = data.get("k")
-    return (_checked_u(point, data["U_expanded_db"]),
-            float(k) if isinstance(k, (int, float)) and k > 0 else k_default, None)
+    k = float(k) if isinstance(k, (int, float)) and k > 0 else k_default
+    interval = (data.get("monte_carlo") or {}).get("interval_db")
+    if data.get("method") == "monte_carlo" and _is_interval(interval):
+        return _NfGuard(u, float(interval[0]), float(interval[1]), k)
+    return _NfGuard(u, nf - u, nf + u, k)
+
+
+def _is_interval(value: Any) -> bool:
+    return (isinstance(value, (list, tuple)) and len(value) == 2
+            and all(isinstance(v, (int, float)) and math.isfinite(v) for v in value)
+            and value[0] <= value[1])
 
 
 def _checked_u(point: PointResult, value: Any) -> float:
@@ -341,31 +393,34 @@ def _margin(value: float, limit: float, kind: str) -> float:
     return limit - value if kind == "max" else value - limit
 
 
-def _point_checks(point: PointResult, u_nf: float, u_gain: float | None,
+def _point_checks(point: PointResult, guard: _NfGuard, u_gain: float | None,
                   mask: LimitMask, rule: DecisionRule) -> list[Check]:
     checks = []
     for i, band in enumerate(mask.bands):
         if not band.contains(point.freq_hz):
             continue
         if band.nf_max_db is not None:
-            checks.append(Check(quantity="nf_db", kind="max", limit=band.nf_max_db,
-                                value=point.nf_db, U=u_nf, band=i,
-                                verdict=decide(point.nf_db, u_nf, band.nf_max_db, "max", rule),
-                                margin_db=_margin(point.nf_db, band.nf_max_db, "max")))
+            checks.append(Check(
+                quantity="nf_db", kind="max", limit=band.nf_max_db, value=point.nf_db,
+                U=guard.expanded, band=i, margin_db=_margin(point.nf_db, band.nf_max_db, "max"),
+                verdict=decide_interval(point.nf_db, guard.low, guard.high, band.nf_max_db,
+                                        "max", rule)))
         for kind, limit in (("min", band.gain_min_db), ("max", band.gain_max_db)):
-            if limit is None:
-                continue
-            if point.gain_db is None:
-                checks.append(Check(quantity="gain_db", kind=kind, limit=limit, value=None,
-                                    U=None, band=i, verdict=Verdict.INDETERMINATE,
-                                    note="gain not measured at this point"))
-                continue
-            u = u_gain if u_gain is not None else 0.0
-            checks.append(Check(quantity="gain_db", kind=kind, limit=limit, value=point.gain_db,
-                                U=u, band=i, verdict=decide(point.gain_db, u, limit, kind, rule),
-                                margin_db=_margin(point.gain_db, limit, kind),
-                                note=None if u_gain is not None else "gain has no uncertainty"))
+            if limit is not None:
+                checks.append(_gain_check(point, u_gain, kind, limit, i, rule))
     return checks
+
+
+def _gain_check(point: PointResult, u_gain: float | None, kind: Literal["max", "min"],
+                limit: float, band: int, rule: DecisionRule) -> Check:
+    if point.gain_db is None:
+        return Check(quantity="gain_db", kind=kind, limit=limit, value=None, U=None, band=band,
+                     verdict=Verdict.INDETERMINATE, note="gain not measured at this point")
+    u = u_gain if u_gain is not None else 0.0
+    return Check(quantity="gain_db", kind=kind, limit=limit, value=point.gain_db, U=u,
+                 band=band, verdict=decide(point.gain_db, u, limit, kind, rule),
+                 margin_db=_margin(point.gain_db, limit, kind),
+                 note=None if u_gain is not None else "gain has no uncertainty")
 
 
 def _flatness_check(index: int, band: LimitBand, judged: list[tuple[PointResult, float | None]],
@@ -413,15 +468,16 @@ def judge(points: Sequence[PointResult], uncertainties: Any, mask: LimitMask, *,
     statistical_only = 0
     for index, (point, given) in enumerate(zip(points, _aligned(points, uncertainties),
                                                strict=True)):
-        u_nf, k, source = _expanded_for(point, given, coverage_factor)
-        statistical_only += source == "statistical"
-        u_gain = None if point.u_gain_db is None else k * point.u_gain_db
+        guard = _guard_for(point, given, coverage_factor)
+        statistical_only += guard.statistical_only
+        u_gain = None if point.u_gain_db is None else guard.k * point.u_gain_db
         gain_u[index] = u_gain
-        checks = _point_checks(point, u_nf, u_gain, mask, chosen)
+        checks = _point_checks(point, guard, u_gain, mask, chosen)
         nf_limits = [c.limit for c in checks if c.quantity == "nf_db"]
         verdicts.append(PointVerdict(
             freq_hz=point.freq_hz, verdict=_worst([c.verdict for c in checks]),
-            nf_db=point.nf_db, U_nf_db=u_nf, gain_db=point.gain_db, U_gain_db=u_gain,
+            nf_db=point.nf_db, U_nf_db=guard.expanded, nf_interval_db=(guard.low, guard.high),
+            gain_db=point.gain_db, U_gain_db=u_gain,
             limit=min(nf_limits) if nf_limits else None, checks=checks))
     if statistical_only:
         notes.append(f"{statistical_only} point(s) without a budget: U = {coverage_factor:g} * "

@@ -382,7 +382,14 @@ class CorrectionsSection(BaseModel):
 
 
 class GainSection(BaseModel):
-    """DUT gain for the gain method: measured with the generator, from a file, or constant."""
+    """DUT gain for the gain method: measured with the generator, from a file, or constant.
+
+    ``file`` / ``value_db`` give the DUT's own gain. ``measure`` uses the substitution method
+    (noisebench.gain_measurement): a THROUGH pass then a DUT pass, so what it measures is the
+    gain between the THROUGH reference planes (the input loss and the DUT); the sequencer
+    accounts for that. ``max_gain_db`` (largest gain expected) and ``dut_p1db_out_dbm`` set
+    the generator level, kept well below compression.
+    """
 
     model_config = _STRICT
     source: Literal["measure", "file", "constant"]
@@ -390,24 +397,29 @@ class GainSection(BaseModel):
     u_gain_db: float = Field(default=0.0, ge=0, le=10,
                              description="standard uncertainty of a file/constant gain, dB")
     file: str | None = None
-    level_dbm: float | None = Field(
-        default=None, le=30, description="generator level at the DUT input (None: automatic)")
-    rbw_hz: float = Field(default=10e3, gt=0, description="RBW of the tone measurement")
+    max_gain_db: float | None = Field(default=None, ge=-50, le=100)
+    dut_p1db_out_dbm: float | None = Field(default=None, ge=-100, le=60)
+    rbw_hz: float = Field(default=1e3, gt=0, description="RBW of the tone measurement")
+    readings: int = Field(default=3, ge=2, le=100)
+    averages: int = Field(default=4, ge=1, le=10_000)
+    linearity_u_db: float = Field(default=0.02, ge=0, le=5)
 
     @model_validator(mode="after")
     def _complete(self) -> GainSection:
-        if self.source == "constant" and self.value_db is None:
-            raise InputError("value_db", 'is required with source = "constant"',
-                             fix="e.g. value_db = 20.0")
-        if self.source == "file" and not self.file:
-            raise InputError("file", 'is required with source = "file"',
-                             fix='e.g. file = "dut_gain.s2p"')
-        if self.source != "constant" and self.value_db is not None:
-            raise InputError("value_db", f'is only used with source = "constant" '
-                             f'(source is "{self.source}")', fix="remove value_db")
-        if self.source != "file" and self.file is not None:
-            raise InputError("file", f'is only used with source = "file" '
-                             f'(source is "{self.source}")', fix="remove file")
+        needs = {"constant": ("value_db", "e.g. value_db = 20.0"),
+                 "file": ("file", 'e.g. file = "dut_gain.s2p"')}
+        if self.source in needs and getattr(self, needs[self.source][0]) is None:
+            name, fix = needs[self.source]
+            raise InputError(name, f'is required with source = "{self.source}"', fix=fix)
+        if self.source == "measure":
+            for name in ("max_gain_db", "dut_p1db_out_dbm"):
+                if getattr(self, name) is None:
+                    raise InputError(name, 'is required with source = "measure" (it sets the '
+                                     'generator level)', fix="give the DUT's datasheet value")
+        for name, used_by in (("value_db", "constant"), ("file", "file")):
+            if self.source != used_by and getattr(self, name) is not None:
+                raise InputError(name, f'is only used with source = "{used_by}" '
+                                 f'(source is "{self.source}")', fix=f"remove {name}")
         return self
 
 
@@ -805,8 +817,9 @@ def _check_tables(plan: Plan) -> list[str]:
         except (InputError, OSError, ValueError) as exc:
             problems.append(f"{key}: {getattr(exc, 'message', exc)}")
             continue
-        problems += _coverage_problems(key, path.name, np.asarray(table.freq_hz, float), plan,
-                                       allow_clamp=False)
+        if table.range_hz is not None:
+            problems += _coverage_problems(key, path.name, np.asarray(table.freq_hz, float),
+                                           plan, allow_clamp=False)
     return problems
 
 

@@ -51,9 +51,12 @@ CAUTIONS: tuple[str, ...] = (
 )
 
 
-def cautions_text(*, width_prefix: str = "  - ") -> str:
-    """The cautions as a short bulleted text block."""
-    return "\n".join(width_prefix + line for line in CAUTIONS)
+def cautions_text(*, prefix: str = "  - ", width: int = 92) -> str:
+    """The cautions as a short bulleted text block, wrapped to ``width`` columns."""
+    import textwrap
+
+    return "\n".join(textwrap.fill(line, width, initial_indent=prefix,
+                                   subsequent_indent=" " * len(prefix)) for line in CAUTIONS)
 
 
 # --------------------------------------------------------------------------- pure estimates

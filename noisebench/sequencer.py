@@ -59,6 +59,7 @@ from noisebench.safety import (
     DEFAULT_MAX_INPUT_DBM,
     InputLimits,
     PowerCheck,
+    check_generator_level,
     check_input_power,
     hot_power_from_cold_density_dbm,
     hot_source_temperature_k,
@@ -198,16 +199,17 @@ def _loss_function(plan: Plan, key: str, value: float | str) -> Callable[[float]
     table = load_gain_table(plan.resolve_path(value))
 
     def loss_db(freq_hz: float) -> float:
-        loss = -float(table.at(freq_hz).gain_db)  # a cable's gain is minus its loss
+        loss = float(table.at(freq_hz).loss_db)
         if loss < -1e-3:
             raise InputError(key, f"{value} gives a gain of {-loss:.3f} dB at {freq_hz:.6g} Hz, "
-                             "not a loss", fix="give the cable's |S21| (negative dB) or gain_db")
+                             "not a loss", fix="give loss_db >= 0, or a cable's |S21| (<= 0 dB)")
         return max(loss, 0.0)
 
     return loss_db
 
 
 def _gain_function(plan: Plan) -> Callable[[float], tuple[float, float]] | None:
+    """The DUT's own gain (dB) and its standard uncertainty (dB) from a file or a constant."""
     spec = plan.gain
     if spec is None or plan.method is not Method.GAIN:
         return None
@@ -221,8 +223,8 @@ def _gain_function(plan: Plan) -> Callable[[float], tuple[float, float]] | None:
 
         def from_file(freq_hz: float) -> tuple[float, float]:
             entry = table.at(freq_hz)
-            u = getattr(entry, "u_gain_db", None)
-            return float(entry.gain_db), float(spec.u_gain_db if u is None else u)
+            u = spec.u_gain_db if entry.u_gain_db is None else entry.u_gain_db
+            return float(entry.gain_db), float(u)
 
         return from_file
     return None  # measured: filled in by the sequencer
@@ -500,7 +502,11 @@ class Sequencer:
                            identities=self.session.bench.identities())
 
     def _finish(self, writer, status: str):
-        verdict = self._verdict(writer.points)
+        try:
+            verdict = self._verdict(writer)
+        except NoisebenchError as exc:  # a verdict problem must not lose the run
+            logger.error("no verdict: %s", exc)
+            verdict = None
         return writer.finish(status, verdict=verdict)
 
     def _safe(self) -> None:
@@ -514,7 +520,7 @@ class Sequencer:
             return
         self._calibrate_all(groups, writer)
         if self.plan.method is Method.GAIN and self.corrections.gain is None:  # type: ignore
-            self._measure_gain(groups)
+            self._measure_gain(groups, writer)
         self.session.connect(Connection.DUT)
         for group in groups:
             outcome = self._with_context(group, lambda g=group: self._measure_group(g))
@@ -612,6 +618,7 @@ class Sequencer:
             Connection.THROUGH
         target = self.plan.calibration.target_ratio * policy.target_u_nf_db
         per_trace = self._first_round_averages(policy, len(names))
+        stopped_by = "target"
         while True:
             self._round(group, readings, per_trace, budget, connection)
             u_worst, settings = self._calibration_u(group, kind, readings)
@@ -622,8 +629,10 @@ class Sequencer:
                 else 2 * done
             per_trace = self._next_round_averages(policy, done, need, len(names), budget)
             if per_trace == 0:
-                logger.warning("%s: calibration stopped at %d averages (u %.4f dB > %.4f dB "
-                               "design target)", group.describe(), done, u_worst, target)
+                stopped_by = "max_averages" if done >= policy.max_averages else "time_limit"
+                logger.warning("%s: calibration stopped by its %s at %d averages (u %.4f dB > "
+                               "%.4f dB design target)", group.describe(),
+                               stopped_by.replace("_", " "), done, u_worst, target)
                 break
         self._set_source_cold(budget)
         return CalibrationEntry(
@@ -631,7 +640,7 @@ class Sequencer:
             densities={n: [readings.get(f, n).combined().density for f in group.freqs_hz]
                        for n in names},
             cold_temperature_k=self.corrections.source_temperature_k,  # type: ignore[union-attr]
-            instrument_time_s=budget.used_s,
+            instrument_time_s=budget.used_s, stopped_by=stopped_by,
             summary=self._calibration_summary(group, kind, readings))
 
     def _set_source_cold(self, budget: TimeBudget) -> None:
@@ -724,7 +733,7 @@ class Sequencer:
         if want <= 0:
             return 0
         per_trace = max(1, math.ceil(want / traces_per_state))
-        settle = self._settle_s() * (2 if states == 2 else 0)
+        settle = self._settle_s() * (3 if states == 2 else 0)  # 2 switches + final cold
         fits = budget.averages_that_fit(traces_per_state * states, settle, fallback_s=0.0)
         return min(per_trace, fits)
 
@@ -794,13 +803,19 @@ class Sequencer:
 
     @staticmethod
     def _averages_needed(points: list[PointResult], done: int, target: float) -> int | None:
-        """Averages (per reading) for every point above target to reach it; None: none can."""
+        """Averages (per reading) that bring every point to its goal; None: none can improve.
+
+        The goal is the target; where the calibration's part alone exceeds it, the goal is to
+        bring the reducible part down to the calibration's (beyond that, averaging gains
+        little)."""
         needs = []
         for point in points:
             if point.u_nf_db <= target:
                 continue
             u_red, u_fix = _split_uncertainty(point)
             need = averages_for_target(done, u_red, u_fix, target)
+            if need is None and u_red > u_fix:
+                need = averages_for_target(done, u_red, 0.0, u_fix)
             if need is not None:
                 needs.append(need)
         return max(needs) if needs else None
@@ -827,22 +842,29 @@ class Sequencer:
                 output_loss_temperature_k=corr.output_loss_temperature_k)
         from noisebench.methods.gain import gain_method_point
 
-        gain_db, u_gain_db = self._dut_gain(freq_hz)
+        path_gain_db, u_gain_db = self._path_gain(freq_hz)
         loss_in, loss_out = corr.input_loss(freq_hz), corr.output_loss(freq_hz)
         return gain_method_point(
-            readings.get(freq_hz, "dut").combined().density, gain_db - loss_in - loss_out,
+            readings.get(freq_hz, "dut").combined().density, path_gain_db,
             floor=calibration.reading("floor", freq_hz), u_gain_db=u_gain_db,
             source_temperature_k=corr.source_temperature_k, t0_k=corr.t0_k,
             input_loss_db=loss_in, input_loss_temperature_k=corr.input_loss_temperature_k,
             output_loss_db=loss_out, output_loss_temperature_k=corr.output_loss_temperature_k,
             floor_temperature_k=calibration.cold_temperature_k)
 
-    def _dut_gain(self, freq_hz: float) -> tuple[float, float]:
+    def _path_gain(self, freq_hz: float) -> tuple[float, float]:
+        """Gain from the source termination to the analyzer, dB, and its uncertainty, dB.
+
+        A file/constant gain is the DUT's own: minus both losses. A measured gain is between
+        the THROUGH planes (input loss and DUT): minus the output loss only."""
         corr = self.corrections
-        if corr is not None and corr.gain is not None:
-            return corr.gain(freq_hz)
+        assert corr is not None
+        if corr.gain is not None:
+            gain_db, u = corr.gain(freq_hz)
+            return gain_db - corr.input_loss(freq_hz) - corr.output_loss(freq_hz), u
         if freq_hz in self._measured_gain:
-            return self._measured_gain[freq_hz]
+            gain_db, u = self._measured_gain[freq_hz]
+            return gain_db - corr.output_loss(freq_hz), u
         raise MeasurementError(f"no DUT gain at {freq_hz:.6g} Hz")  # pragma: no cover
 
     def _finish_point(self, point: PointResult, readings: _Readings, budget: TimeBudget,
@@ -854,7 +876,7 @@ class Sequencer:
         if any(c.excess_scatter for c in combined) and PointFlag.EXCESS_SCATTER not in flags:
             flags.append(PointFlag.EXCESS_SCATTER)
         reached = point.u_nf_db <= group.policy.target_u_nf_db
-        if stop == "time_limit" and not reached:
+        if not reached and (stop == "time_limit" or calibration.stopped_by == "time_limit"):
             flags.append(PointFlag.TIME_LIMIT)
         if any(c.caution for c in checks) and PointFlag.COMPRESSION_RISK not in flags:
             flags.append(PointFlag.COMPRESSION_RISK)
@@ -881,30 +903,66 @@ class Sequencer:
 
     # ----------------------------------------------------------------- DUT gain
 
-    def _measure_gain(self, groups: list[PointGroup]) -> None:
-        from noisebench.gain_measurement import measure_dut_gain
+    def _measure_gain(self, groups: list[PointGroup], writer) -> None:
+        """DUT gain with the generator (substitution: THROUGH pass, then DUT pass)."""
+        from noisebench.gain_measurement import (
+            GainMeasurementPlan,
+            choose_level_dbm,
+            measure_gain,
+        )
 
-        freqs = sorted(f for g in groups for f in g.freqs_hz)
-        results = measure_dut_gain(self.plan, self.session, freqs, guard=self.guard)
-        self._measured_gain.update(results)
+        spec, bench = self.plan.gain, self.session.bench
+        if bench.generator is None:
+            raise InputError("bench.generator", "measuring the DUT gain needs a generator")
+        policy = groups[0].policy
+        limits = self.guard.limits  # type: ignore[union-attr]
+        analyzer_max = min(limits.max_input_dbm,
+                           limits.compression_at(policy.attenuation_db, False)
+                           - limits.compression_backoff_db)
+        gm_plan = GainMeasurementPlan(
+            freqs_hz=sorted(f for g in groups for f in g.freqs_hz),
+            expected_gain_db=spec.max_gain_db, dut_p1db_out_dbm=spec.dut_p1db_out_dbm,
+            analyzer_max_input_dbm=analyzer_max, rbw_hz=spec.rbw_hz, readings=spec.readings,
+            averages=spec.averages, attenuation_db=policy.attenuation_db, preamp=False,
+            generator_max_dbm=self.plan.bench.generator.max_level_dbm,
+            linearity_u_db=spec.linearity_u_db)
+        level, _ = choose_level_dbm(gm_plan)
+        check_generator_level(level, max_level_dbm=self.plan.bench.generator.max_level_dbm,
+                              dut_gain_db=spec.max_gain_db, limits=limits,
+                              dut_max_input_dbm=self.plan.safety.dut_max_input_dbm,
+                              attenuation_db=policy.attenuation_db, preamp=False)
+        self._last_request = None  # the gain procedure reconfigures the analyzer
+        result = measure_gain(bench.analyzer, bench.generator, gm_plan,
+                              lambda stage: self.session.connect(Connection(stage.value)),
+                              noise_source=bench.noise_source)
+        self._last_request = None
+        self._measured_gain = {p.freq_hz: (p.gain_db, p.u_gain_db) for p in result.points}
+        writer.update_info(notes={**writer.info.notes,
+                                  "gain_measurement": result.model_dump(mode="json")})
 
     # ----------------------------------------------------------------- budgets and verdict
 
     def _budget(self, point: PointResult) -> dict | None:
+        """The point's uncertainty budget when the plan has an [uncertainty] section."""
         inputs = self.plan.uncertainty
         if inputs is None or isinstance(inputs, dict):
             return None
         from noisebench.uncertainty import budget_for_point
 
-        return budget_for_point(point, inputs).to_dict()
+        return budget_for_point(point, inputs, base_dir=self.plan.base_dir).to_dict()
 
-    def _verdict(self, points: list[PointResult]) -> dict | None:
+    def _verdict(self, writer) -> dict | None:
+        """Pass/fail against the plan's [limits] with the stored budgets' expanded U."""
         mask = self.plan.limits
-        if mask is None or isinstance(mask, dict) or not points:
+        if mask is None or isinstance(mask, dict) or not writer.points:
             return None
         from noisebench.limits import judge
+        from noisebench.results import load_run
 
-        return judge(points, None, mask).to_dict()
+        so_far = load_run(writer.folder)  # every point and budget journalled, incl. resumed
+        budgets = {b["freq_hz"]: b for b in so_far.budgets}
+        coverage = getattr(self.plan.uncertainty, "coverage_factor", 2.0)
+        return judge(so_far.points, budgets, mask, coverage_factor=coverage).to_dict()
 
 
 def _split_uncertainty(point: PointResult) -> tuple[float, float]:

@@ -4,7 +4,8 @@
 bench's signal chain, see :class:`AnalyzerInput`) what reaches its connector, adds its own noise
 (:class:`~noisebench.sims.models.AnalyzerFrontEnd`: attenuation raises the floor, the preamp
 lowers it), applies mixer compression, IF overload against the reference level and its absolute
-amplitude error, then draws the averaged trace with :func:`~noisebench.sims.noisegen.generate_trace`.
+amplitude error, then draws the averaged trace with
+:func:`~noisebench.sims.noisegen.generate_trace`.
 
 Timing (simulated clock): a swept trace takes ``ST = k * span / (RBW * min(RBW, VBW))`` with
 ``k = sweep_time_factor`` (2.5, common practice), at least ``min_sweep_time_s``; zero span takes
@@ -26,6 +27,11 @@ from collections.abc import Callable
 from typing import Protocol
 
 import numpy as np
+from noisebench.sims.clock import SimClock
+from noisebench.sims.models import AnalyzerFrontEnd, SpectrumAtInput, dbm_to_w, w_to_dbm
+from noisebench.sims.noisegen import Axis, TraceRecipe, field_kernel, generate_trace
+from noisebench.sims.scenario import AnalyzerSpec
+from pydantic import ValidationError
 from scipy.constants import k as BOLTZMANN_J_PER_K
 
 from noisebench.acquisition import (
@@ -42,10 +48,6 @@ from noisebench.acquisition import (
 from noisebench.errors import InputError
 from noisebench.filters import FilterKind, RbwFilter, window_enbw_bins
 from noisebench.instruments import Analyzer
-from noisebench.sims.clock import SimClock
-from noisebench.sims.models import AnalyzerFrontEnd, SpectrumAtInput, dbm_to_w, w_to_dbm
-from noisebench.sims.noisegen import Axis, TraceRecipe, field_kernel, generate_trace
-from noisebench.sims.scenario import AnalyzerSpec
 
 logger = logging.getLogger(__name__)
 
@@ -67,6 +69,18 @@ class AnalyzerInput(Protocol):
 
     def steady_hot_fraction(self, t_start_s: float, t_stop_s: float) -> float | None:
         """The state if it does not change between the two times, else None."""
+
+
+def make_filter(**fields: object) -> RbwFilter:
+    """An :class:`RbwFilter`; a refused shape raises the validator's InputError, not pydantic's."""
+    try:
+        return RbwFilter(**fields)
+    except ValidationError as exc:
+        for err in exc.errors():
+            inner = (err.get("ctx") or {}).get("error")
+            if isinstance(inner, InputError):
+                raise inner from None
+        raise InputError("rbw_filter", str(exc), fix="check the filter shape") from None
 
 
 def round_125(value: float, lo: float, hi: float) -> float:
@@ -155,7 +169,7 @@ class SimAnalyzer(Analyzer):
                              fix="set mode=fft in the request, or use gaussian/synchronous")
         if kind is FilterKind.SYNCHRONOUS:
             poles = int(poles or self._filter_poles or 4)
-            RbwFilter(kind=kind, poles=poles)  # validates
+            make_filter(kind=kind, poles=poles)  # validates
             self._filter_poles = poles
         with self.lock:
             self._filter_kind = kind
@@ -163,7 +177,7 @@ class SimAnalyzer(Analyzer):
 
     def set_fft_window(self, window: str) -> None:
         """Window of FFT mode (a scipy.signal window name)."""
-        RbwFilter(kind=FilterKind.FFT, window=window)  # validates the name
+        make_filter(kind=FilterKind.FFT, window=window)  # validates the name
         with self.lock:
             self._fft_window = window
             self.configure(self._request)
@@ -218,7 +232,8 @@ class SimAnalyzer(Analyzer):
             raise InputError("center_hz", f"{req.center_hz:.6g} Hz is outside the analyzer's "
                              f"range {sp.min_freq_hz:.6g}..{sp.max_freq_hz:.6g} Hz",
                              fix="choose a centre frequency inside the range")
-        half = min(req.span_hz / 2.0, req.center_hz - sp.min_freq_hz, sp.max_freq_hz - req.center_hz)
+        half = min(req.span_hz / 2.0, req.center_hz - sp.min_freq_hz,
+                   sp.max_freq_hz - req.center_hz)
         span = 2.0 * half
         rbw = round_125(req.rbw_hz, sp.min_rbw_hz, sp.max_rbw_hz)
         vbw = rbw if req.vbw_hz is None else round_125(req.vbw_hz, 1.0, 10.0 * sp.max_rbw_hz)
@@ -229,7 +244,8 @@ class SimAnalyzer(Analyzer):
             self._current("attenuation_db", sp.default_attenuation_db)
             if req.attenuation_db is None else req.attenuation_db,
             sp.attenuation_step_db, 0.0, sp.max_attenuation_db)
-        ref = self._current("ref_level_dbm", 0.0) if req.ref_level_dbm is None else req.ref_level_dbm
+        ref = (self._current("ref_level_dbm", 0.0) if req.ref_level_dbm is None
+               else req.ref_level_dbm)
         ref = round(min(max(float(ref), REF_LEVEL_RANGE_DBM[0]), REF_LEVEL_RANGE_DBM[1]), 2)
         preamp = bool(self._current("preamp", False) if req.preamp is None else req.preamp)
         filt = self._filter(mode)

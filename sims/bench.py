@@ -26,10 +26,6 @@ from pathlib import Path as FsPath
 from typing import Any
 
 import numpy as np
-from scipy.constants import k as BOLTZMANN_J_PER_K
-
-from noisebench.errors import InputError
-from noisebench.instruments import Bench
 from noisebench.sims.analyzer import SimAnalyzer
 from noisebench.sims.clock import SimClock
 from noisebench.sims.generator import SimGenerator
@@ -50,6 +46,10 @@ from noisebench.sims.models import (
 )
 from noisebench.sims.noise_source import ANALYZER_DRIVE, SimNoiseSource, SimSupply
 from noisebench.sims.scenario import CableSpec, Scenario, load_scenario
+from scipy.constants import k as BOLTZMANN_J_PER_K
+
+from noisebench.errors import InputError
+from noisebench.instruments import Bench
 
 logger = logging.getLogger(__name__)
 
@@ -180,10 +180,12 @@ class SimulatedBench:
             nominal_drive_v=ns.nominal_drive_v,
             enr_drive_coefficient_db_per_v=ns.enr_drive_coefficient_db_per_v)
         self.front_end = AnalyzerFrontEnd(
-            freq_hz=np.asarray(an.freq_hz, dtype=float), nf_table_db=np.asarray(an.nf_db, dtype=float),
+            freq_hz=np.asarray(an.freq_hz, dtype=float),
+            nf_table_db=np.asarray(an.nf_db, dtype=float),
             preamp_nf_db=an.preamp_nf_db, preamp_gain_db=an.preamp_gain_db,
             internal_temperature_k=an.internal_temperature_k or sc.ambient_k,
-            mixer_p1db_w=float(dbm_to_w(an.mixer_p1db_dbm)), input_gamma=an.input_reflection.complex)
+            mixer_p1db_w=float(dbm_to_w(an.mixer_p1db_dbm)),
+            input_gamma=an.input_reflection.complex)
 
     def _analyzer_drive(self, on: bool) -> None:
         volts = self.scenario.noise_source.nominal_drive_v if on else 0.0

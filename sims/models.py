@@ -88,14 +88,14 @@ def mismatched_temperature_k(t_k: np.ndarray, ambient_k: float,
 
 
 def rapp_saturation_w(p1db_w: float, smoothness: float = RAPP_SMOOTHNESS) -> float:
-    """Saturation parameter of the power limiter whose output 1 dB compression point is ``p1db_w``."""
+    """Saturation power (W) of the limiter whose output 1 dB compression point is ``p1db_w``."""
     s = smoothness
     return p1db_w * 10.0 ** 0.1 / (10.0 ** (0.1 * s) - 1.0) ** (1.0 / s)
 
 
 def compression_gain_factor(linear_output_w: np.ndarray | float, p1db_w: float | None,
                             smoothness: float = RAPP_SMOOTHNESS) -> np.ndarray:
-    """Gain factor (<= 1) of a limiter driven to ``linear_output_w`` (what it would give uncompressed).
+    """Gain factor (<= 1) of a limiter whose uncompressed output would be ``linear_output_w``.
 
     ``p1db_w`` is the output power at 1 dB compression; ``None`` means no compression.
     """
@@ -209,7 +209,9 @@ class NoiseSourceModel:
 
     def hot_temperature_k(self, freq_hz: np.ndarray | float,
                           drive_v: float | None = None) -> np.ndarray:
-        return self.t0_k * db_to_lin(self.true_enr_db(freq_hz, drive_v)) + self.physical_temperature_k
+        """Hot noise temperature ``T0 * ENR + Tc``, K."""
+        enr_lin = db_to_lin(self.true_enr_db(freq_hz, drive_v))
+        return self.t0_k * enr_lin + self.physical_temperature_k
 
     def temperature_k(self, freq_hz: np.ndarray | float, hot_fraction: float,
                       drive_v: float | None = None) -> np.ndarray:
@@ -290,7 +292,8 @@ class SpectrumAtInput:
         return BOLTZMANN_J_PER_K * self.temperature_k(hot_fraction)
 
     def total_power_w(self, hot_fraction: float) -> float:
-        return self.total_base_w + hot_fraction * self.total_excess_w + sum(p for _, p in self.tones)
+        tones_w = sum(p for _, p in self.tones)
+        return self.total_base_w + hot_fraction * self.total_excess_w + tones_w
 
 
 def check_freq(field_name: str, freq_hz: np.ndarray | float) -> np.ndarray:

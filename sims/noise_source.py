@@ -17,12 +17,12 @@ import logging
 import threading
 
 import numpy as np
-
-from noisebench.errors import InputError
-from noisebench.instruments import Instrument, NoiseSource
 from noisebench.sims.clock import SimClock
 from noisebench.sims.models import NoiseSourceModel
 from noisebench.sims.scenario import NoiseSourceSpec, SupplySpec
+
+from noisebench.errors import InputError
+from noisebench.instruments import Instrument, NoiseSource
 
 logger = logging.getLogger(__name__)
 
@@ -97,7 +97,7 @@ class SimNoiseSource(NoiseSource):
         return max(self._drives.values())
 
     def set_drive(self, name: str, volts: float) -> None:
-        """Set one drive input (``"analyzer"`` or ``"supply"``) to ``volts`` and update the state."""
+        """Set one drive input (``"analyzer"`` or ``"supply"``) to ``volts``; update the state."""
         if name not in self._drives:
             raise InputError("drive", f"unknown drive input {name!r}",
                              fix=f"use one of {sorted(self._drives)}")

@@ -13,12 +13,12 @@ effects on and off (e.g. ``analyzer__amplitude_error_db=0``).
 from __future__ import annotations
 
 import copy
-import tomllib
 from importlib import resources
 from pathlib import Path as FsPath
 from typing import Any
 
 import numpy as np
+import tomllib
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from noisebench.errors import InputError

@@ -446,7 +446,11 @@ class AnalyzerScpi(ScpiInstrument):
             self._finish()
 
     def _acquire_now(self) -> TraceMemory:
+        if self.wall is not None:
+            self.wall.catch_up()
         trace = self.analyzer.acquire_trace()
+        if self.wall is not None:  # the computing time is not instrument time
+            self.wall.skip()
         return TraceMemory(trace, np.asarray(trace.values, dtype=np.float32))
 
     def _current_memory(self) -> TraceMemory:

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import logging
 import threading
+import time
 from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -183,6 +184,28 @@ def _esr_bit(code: int) -> int:
     return ESR_DDE
 
 
+class WallClock:
+    """Lets real time that passes between commands also pass on the bench's simulated clock.
+
+    ``catch_up()`` (before each command, under the bench lock) advances the simulated clock by
+    the wall time since the last mark; ``skip()`` drops the wall time spent computing an
+    acquisition, whose instrument time the simulated analyzer has already counted.
+    """
+
+    def __init__(self, clock: Any) -> None:
+        self.clock = clock
+        self._mark = time.monotonic()
+
+    def catch_up(self) -> None:
+        now = time.monotonic()
+        elapsed, self._mark = now - self._mark, now
+        if elapsed > 0:
+            self.clock.advance(elapsed)
+
+    def skip(self) -> None:
+        self._mark = time.monotonic()
+
+
 class InstrumentGone(Exception):
     """Raised inside a waiting command when the server stops or the instrument reboots."""
 
@@ -226,6 +249,7 @@ class ScpiInstrument:
         self.stop_event = stop_event
         self.idn = idn
         self.status = StatusRegisters()
+        self.wall: WallClock | None = None  # set by the server to count real time
         self.tree: CommandTree[Command] = CommandTree()
         self._add_common_commands()
         self._add_commands()
@@ -265,13 +289,16 @@ class ScpiInstrument:
         except ScpiError as exc:
             self.status.push(exc)
             return responses
-        path: tuple = ()
+        if self.wall is not None:
+            with self.lock:
+                self.wall.catch_up()
+        previous: Resolved[Command] | None = None
         for text in units:
             try:
                 unit = parse_unit(text)
-                resolved = self.tree.resolve(unit, path)
+                resolved = self.tree.resolve(unit, previous)
                 if not unit.common:
-                    path = resolved.path
+                    previous = resolved
                 reply = self._run(resolved, unit.query, unit.params, text)
                 if reply is not None:
                     responses.append(reply)

@@ -23,6 +23,7 @@ import math
 import re
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
+from decimal import Decimal
 from enum import Enum
 from typing import Any, Generic, TypeVar
 
@@ -281,12 +282,22 @@ class _Entry(Generic[H]):
 
 @dataclass
 class Resolved(Generic[H]):
-    """A header resolved to its tree entry, with the numeric suffixes of the suffixed nodes."""
+    """A header resolved to its tree entry.
+
+    ``suffixes`` holds one numeric suffix per ``<n>`` node (default 1). ``paths`` are the
+    header paths a following relative header may continue from: the received nodes minus the
+    leaf, then the full header (omitted optional nodes filled in) minus its last node, so that
+    after ``FORM REAL`` (= ``FORM:DATA REAL``) ``BORD SWAP`` means ``FORM:BORD SWAP``.
+    """
 
     handler: H
     pattern: str
-    suffixes: tuple[int, ...]  # one per ``<n>`` node, default 1
-    path: tuple[Mnemonic, ...]  # the received nodes minus the leaf (for relative headers)
+    suffixes: tuple[int, ...]
+    paths: tuple[tuple[Mnemonic, ...], ...]
+
+    @property
+    def path(self) -> tuple[Mnemonic, ...]:
+        return self.paths[0]
 
 
 @dataclass
@@ -301,26 +312,34 @@ class CommandTree(Generic[H]):
     def patterns(self) -> list[str]:
         return [entry.pattern for entry in self.entries]
 
-    def resolve(self, unit: ProgramUnit, path: Sequence[Mnemonic] = ()) -> Resolved[H]:
-        """Resolve ``unit``'s header; relative headers are tried under ``path`` first.
+    def resolve(self, unit: ProgramUnit, previous: Resolved[H] | None = None) -> Resolved[H]:
+        """Resolve ``unit``'s header; a relative header continues from ``previous``'s paths.
 
         Raises ``ScpiError(-113)`` for an unknown header and ``-114`` for a suffix out of range.
         """
-        relative = not unit.absolute and not unit.common and bool(path)
-        received = tuple(path) + unit.mnemonics if relative else unit.mnemonics
-        found = self._match(received)
-        if found is not None:
-            entry, suffixes = found
-            return Resolved(entry.handler, entry.pattern, suffixes, received[:-1])
-        if self._suffix_problem(received):
-            raise ScpiError(-114, _show(received))
-        raise ScpiError(-113, _show(received))
+        if unit.absolute or unit.common or previous is None:
+            candidates = [unit.mnemonics]
+        else:
+            candidates = [tuple(p) + unit.mnemonics for p in dict.fromkeys(previous.paths)]
+        for received in candidates:
+            found = self._match(received)
+            if found is not None:
+                entry, expanded = found
+                suffixes = tuple(m.suffix or 1
+                                 for m, node in zip(expanded, entry.nodes, strict=True)
+                                 if node.suffix_range is not None)
+                return Resolved(entry.handler, entry.pattern, suffixes,
+                                (received[:-1], expanded[:-1]))
+        if any(self._suffix_problem(received) for received in candidates):
+            raise ScpiError(-114, _show(candidates[0]))
+        raise ScpiError(-113, _show(candidates[0]))
 
-    def _match(self, received: tuple[Mnemonic, ...]) -> tuple[_Entry[H], tuple[int, ...]] | None:
+    def _match(self, received: tuple[Mnemonic, ...]
+               ) -> tuple[_Entry[H], tuple[Mnemonic, ...]] | None:
         for entry in self.entries:
-            suffixes = _match_nodes(entry.nodes, received, check_suffix=True)
-            if suffixes is not None:
-                return entry, suffixes
+            expanded = _match_nodes(entry.nodes, received, check_suffix=True)
+            if expanded is not None:
+                return entry, expanded
         return None
 
     def _suffix_problem(self, received: tuple[Mnemonic, ...]) -> bool:
@@ -333,10 +352,14 @@ def _show(received: Sequence[Mnemonic]) -> str:
 
 
 def _match_nodes(nodes: tuple[NodeSpec, ...], received: tuple[Mnemonic, ...],
-                 *, check_suffix: bool) -> tuple[int, ...] | None:
-    """Match received mnemonics against pattern nodes (optional nodes may be skipped)."""
+                 *, check_suffix: bool) -> tuple[Mnemonic, ...] | None:
+    """Match received mnemonics against pattern nodes (optional nodes may be skipped).
 
-    def walk(i: int, j: int) -> tuple[int, ...] | None:
+    Returns the full header, one mnemonic per pattern node (short form; skipped optional nodes
+    filled in), or None when the header does not match.
+    """
+
+    def walk(i: int, j: int) -> tuple[Mnemonic, ...] | None:
         if i == len(nodes):
             return () if j == len(received) else None
         node = nodes[i]
@@ -344,13 +367,11 @@ def _match_nodes(nodes: tuple[NodeSpec, ...], received: tuple[Mnemonic, ...],
                 not check_suffix or node.suffix_ok(received[j])):
             rest = walk(i + 1, j + 1)
             if rest is not None:
-                if node.suffix_range is None:
-                    return rest
-                return (received[j].suffix or 1,) + rest
+                return (Mnemonic(node.short, received[j].suffix),) + rest
         if node.optional:
             rest = walk(i + 1, j)
             if rest is not None:
-                return rest if node.suffix_range is None else (1,) + rest
+                return (Mnemonic(node.short),) + rest
         return None
 
     return walk(0, 0)
@@ -376,27 +397,27 @@ _NUMBER_RE = re.compile(
     r"^([+-]?(?:\d+\.?\d*|\.\d+)(?:[eE]\s*[+-]?\d+)?)\s*([A-Za-z/]*)$")
 
 # SCPI-1999 suffix multipliers (from memory). ``M`` is milli, except in MHZ and MOHM (mega).
-_MULTIPLIERS = {"EX": 1e18, "PE": 1e15, "T": 1e12, "G": 1e9, "MA": 1e6, "K": 1e3,
-                "M": 1e-3, "U": 1e-6, "N": 1e-9, "P": 1e-12, "F": 1e-15, "A": 1e-18}
+_MULTIPLIERS = {"EX": 18, "PE": 15, "T": 12, "G": 9, "MA": 6, "K": 3,  # powers of ten
+                "M": -3, "U": -6, "N": -9, "P": -12, "F": -15, "A": -18}
 _MEGA_UNITS = {"HZ", "OHM"}
 _LOG_UNITS = {"DB", "DBM"}  # logarithmic units take no multiplier
 
 
-def _suffix_scale(suffix: str, unit: str | None) -> float:
-    """Scale factor of a unit suffix such as ``MHZ`` for base ``unit`` (``HZ``, ``S``, ``V``...)."""
+def _suffix_exponent(suffix: str, unit: str | None) -> int:
+    """Power of ten of a unit suffix such as ``MHZ`` for base ``unit`` (``HZ``, ``S``, ``V``)."""
     s = suffix.upper()
     if not s:
-        return 1.0
+        return 0
     if unit is None:
         raise ScpiError(-138, f"{suffix!r} given for a unitless parameter")
     u = unit.upper()
     if s == u:
-        return 1.0
+        return 0
     if u in _LOG_UNITS or not s.endswith(u):
         raise ScpiError(-131, f"{suffix!r} is not a {unit} unit")
     prefix = s[: -len(u)]
     if prefix == "M" and u in _MEGA_UNITS:
-        return 1e6
+        return 6
     if prefix not in _MULTIPLIERS:
         raise ScpiError(-131, f"unknown multiplier in {suffix!r}")
     return _MULTIPLIERS[prefix]
@@ -416,11 +437,9 @@ def parse_numeric(token: str, unit: str | None = None, *,
     match = _NUMBER_RE.match(token.strip())
     if not match:
         raise ScpiError(-104, f"{token!r} is not a number")
-    try:
-        value = float(match.group(1).replace(" ", ""))
-    except ValueError as exc:  # pragma: no cover - the regex admits only floats
-        raise ScpiError(-104, f"{token!r} is not a number") from exc
-    value *= _suffix_scale(match.group(2), unit)
+    exponent = _suffix_exponent(match.group(2), unit)
+    # exact decimal scaling, one rounding: "1.001 GHZ" is the double nearest 1.001e9
+    value = float(Decimal(match.group(1).replace(" ", "")).scaleb(exponent))
     if not math.isfinite(value):
         raise ScpiError(-222, f"{token!r} overflows")
     return value

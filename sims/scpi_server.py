@@ -34,6 +34,7 @@ from .scpi_instruments import (
     Response,
     ScpiInstrument,
     SupplyScpi,
+    WallClock,
 )
 from .scpi_parser import ScpiError
 
@@ -165,8 +166,9 @@ class SimServer:
 
     ``port=0`` picks free ports; ``port=P`` uses P, P+1, P+2. ``acquisition_time_scale`` is
     the real seconds slept per simulated second of acquisition (0: as fast as computed).
-    ``wall_clock=True`` makes the bench's simulated clock also count real time, so a client
-    that waits in real time (noise-source settling) sees that time pass on the bench.
+    ``wall_clock=True``: real time that passes between commands also passes on the bench's
+    simulated clock, so a client that waits for the noise source to settle sees it settle
+    (the time the simulation spends computing an acquisition does not count twice).
     ``command_log`` keeps the last ``command_log_limit`` lines (about) when ``log_commands``.
     """
 
@@ -175,8 +177,6 @@ class SimServer:
                  wall_clock: bool = True, command_log_limit: int = 100_000) -> None:
         if acquisition_time_scale < 0:
             raise ValueError("acquisition_time_scale must be >= 0")
-        if wall_clock and hasattr(getattr(bench, "clock", None), "real_time_factor"):
-            bench.clock.real_time_factor = 1.0
         self.bench = bench
         self.host = host
         self.port = int(port)
@@ -200,6 +200,10 @@ class SimServer:
             "generator": GeneratorScpi(*common, _identity(bench, "generator")),
             "supply": SupplyScpi(*common, _identity(bench, "supply")),
         }
+        if wall_clock and hasattr(getattr(bench, "clock", None), "advance"):
+            wall = WallClock(bench.clock)
+            for instrument in self.instruments.values():
+                instrument.wall = wall
         self.faults._server = self
 
     # --- lifecycle
@@ -346,6 +350,7 @@ class SimServer:
                 data = client.sock.recv(_RECV_BYTES)
                 if not data:
                     break
+                _quick_ack(client.sock)
                 buffer += data
                 while not client.closed.is_set():
                     end = buffer.find(b"\n")
@@ -428,6 +433,19 @@ class SimServer:
             return True
         client.sock.sendall(prefix + header + payload)
         return False
+
+
+def _quick_ack(sock: socket.socket) -> None:
+    """Acknowledge received data at once (Linux), so that a client whose small writes wait
+    for an ACK (Nagle's algorithm) is not held up by delayed ACKs of a silent command."""
+    if _TCP_QUICKACK is not None:
+        try:
+            sock.setsockopt(socket.IPPROTO_TCP, _TCP_QUICKACK, 1)
+        except OSError:
+            pass
+
+
+_TCP_QUICKACK = getattr(socket, "TCP_QUICKACK", None)
 
 
 def _identity(bench: Any, name: str) -> str:

@@ -28,7 +28,7 @@ def make_record(run_id: str, serial: str, nfs: tuple[float, ...], *, lot: str = 
                           te_k=290 * (10 ** (nf / 10) - 1), gain_db=20.0 + i, y_db=10.0,
                           u_nf_db=0.03, u_te_k=2.0,
                           flags=[PointFlag.SPURS_EXCLUDED] if i == 0 else [])
-              for i, (f, nf) in enumerate(zip(FREQS, nfs))]
+              for i, (f, nf) in enumerate(zip(FREQS, nfs, strict=True))]
     info = RunInfo(run_id=run_id, method=Method.Y_FACTOR, dut_id=serial, operator="op",
                    station=station, started_at=T_START + timedelta(minutes=minutes),
                    ended_at=T_START + timedelta(minutes=minutes + 1), status=status,

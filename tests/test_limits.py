@@ -21,6 +21,7 @@ from noisebench.limits import (
     LimitMask,
     Verdict,
     decide,
+    decide_interval,
     judge,
 )
 from noisebench.point import Method, PointResult
@@ -76,6 +77,35 @@ def test_simple_rule_ignores_the_uncertainty():
     assert decide(1.9, 0.5, 2.0, "max", DecisionRule.SIMPLE) is PASS  # guarded would say I
     assert decide(20.0, 0.5, 20.0, "min", "simple") is PASS
     assert decide(_down(20.0), 0.0, 20.0, "min", "simple") is FAIL
+
+
+def test_interval_decisions_use_each_end():
+    # asymmetric coverage interval [1.5, 2.25] around 1.75 (a Monte Carlo interval, JCGM 101)
+    assert decide_interval(1.75, 1.5, 2.0, 2.0, "max") is PASS  # high == limit
+    assert decide_interval(1.75, 1.5, 2.25, 2.0, "max") is IND
+    assert decide_interval(1.75, 1.5, 2.25, 1.5, "max") is IND  # low == limit: not FAIL
+    assert decide_interval(1.75, 1.5, 2.25, _down(1.5), "max") is FAIL
+    assert decide_interval(1.75, 1.5, 2.25, 1.5, "min") is PASS  # low == limit
+    assert decide_interval(1.75, 1.5, 2.25, 2.25, "min") is IND  # high == limit: not FAIL
+    assert decide_interval(1.75, 1.5, 2.25, _up(2.25), "min") is FAIL
+    assert decide_interval(1.75, 1.5, 2.25, 1.7, "max", "simple") is FAIL
+    with pytest.raises(InputError, match="reversed"):
+        decide_interval(1.75, 2.0, 1.5, 2.0, "max")
+
+
+def test_monte_carlo_budget_interval_is_used_asymmetrically():
+    mask = _mask({"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2.0})
+    point = _point(1.5e9, 1.75)
+    skewed = {"freq_hz": 1.5e9, "method": "monte_carlo", "U_expanded_db": 0.25, "k": 2.0,
+              "monte_carlo": {"interval_db": [1.375, 1.875]}}
+    result = judge([point], [skewed], mask)
+    # symmetric 1.75 +/- 0.25 would touch 2.0 only at the edge; the interval ends at 1.875
+    assert result.points[0].nf_interval_db == (1.375, 1.875)
+    assert result.points[0].verdict is PASS
+    upper = dict(skewed, monte_carlo={"interval_db": [1.625, 2.125]})
+    assert judge([point], [upper], mask).points[0].verdict is IND
+    gum = {"freq_hz": 1.5e9, "method": "gum", "U_expanded_db": 0.25, "k": 2.0}
+    assert judge([point], [gum], mask).points[0].nf_interval_db == (1.5, 2.0)
 
 
 def test_decide_refuses_bad_arguments():

@@ -101,8 +101,8 @@ def tree() -> CommandTree[str]:
     return t
 
 
-def _resolve(tree: CommandTree[str], text: str, path=()) -> str:
-    return tree.resolve(parse_unit(text), path).handler
+def _resolve(tree: CommandTree[str], text: str) -> str:
+    return tree.resolve(parse_unit(text)).handler
 
 
 @pytest.mark.parametrize("text", [
@@ -141,12 +141,33 @@ def test_numeric_suffixes(tree):
 def test_relative_header_continues_from_previous_path(tree):
     # SCPI-1999 Vol. 1, from memory: "FREQ:CENT 1;SPAN 2" sets the span
     first = tree.resolve(parse_unit("FREQ:CENT 1"))
-    assert tree.resolve(parse_unit("SPAN 2"), first.path).handler == "span"
+    assert tree.resolve(parse_unit("SPAN 2"), first).handler == "span"
     # a header relative to FREQ that does not exist there is undefined, even if it exists at root
-    assert _code(tree.resolve, parse_unit("BAND 1"), first.path) == -113
+    assert _code(tree.resolve, parse_unit("BAND 1"), first) == -113
     # a leading colon goes back to the root; common commands ignore the path
-    assert tree.resolve(parse_unit(":BAND 1"), first.path).handler == "rbw"
-    assert tree.resolve(parse_unit("*IDN?"), first.path).handler == "idn"
+    assert tree.resolve(parse_unit(":BAND 1"), first).handler == "rbw"
+    assert tree.resolve(parse_unit("*IDN?"), first).handler == "idn"
+
+
+def test_relative_header_after_an_omitted_optional_leaf(tree):
+    # "BAND" is "BAND:RES": a following "VID" continues under BAND
+    first = tree.resolve(parse_unit("BAND 1e6"))
+    assert tree.resolve(parse_unit("VID 1e5"), first).handler == "vbw"
+    # the suffix of the previous header stays on the path
+    t: CommandTree[str] = CommandTree()
+    t.add("CALCulate:MARKer<n>:X", "x", suffix_max=4)
+    t.add("CALCulate:MARKer<n>:Y", "y", suffix_max=4)
+    t.add("SOURce:VOLTage[:LEVel]", "volt")
+    t.add("SOURce:CURRent[:LEVel]", "curr")
+    t.add("FORMat[:DATA]", "format")
+    t.add("FORMat:BORDer", "order")
+    marker = t.resolve(parse_unit("CALC:MARK3:X 1e9"))
+    assert t.resolve(parse_unit("Y?"), marker).suffixes == (3,)
+    # both readings of the path work: received nodes, and the full header
+    assert t.resolve(parse_unit("CURR 0.1"), t.resolve(parse_unit("SOUR:VOLT 28"))).handler \
+        == "curr"
+    assert t.resolve(parse_unit("BORD SWAP"), t.resolve(parse_unit("FORM REAL"))).handler \
+        == "order"
 
 
 def test_compile_pattern_forms():

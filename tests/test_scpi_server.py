@@ -10,7 +10,6 @@ import time
 
 import numpy as np
 import pytest
-
 from noisebench.sims.bench import SimulatedBench
 from noisebench.sims.scpi_server import INSTRUMENTS, SimServer
 from noisebench.sims.serve import main as serve_main
@@ -63,6 +62,10 @@ class Client:
         payload = self.read_exact(length)
         assert self.read_exact(1) == b"\n"
         return payload
+
+    def sync(self) -> None:
+        """Wait until every command sent so far has been executed."""
+        assert self.query("*OPC?") == "1"
 
     def errors(self) -> list[str]:
         """Drain the error queue (oldest first), without the final ``0,"No error"``."""
@@ -195,6 +198,7 @@ def test_generator_and_supply_round_trip(sim_server, which, command, query, repl
 
 def test_queries_return_applied_values(client, sim_server):
     client.write("BAND 130 kHz;:INP:ATT 13;:FREQ:CENT 1e9;SPAN 0")
+    client.sync()
     applied = sim_server.bench.analyzer.settings
     rbw = float(client.query("BAND?"))
     assert rbw == applied.rbw_hz != 130e3
@@ -232,7 +236,7 @@ def test_filter_shape_poles_and_window(client):
 def test_vbw_and_sweep_time_auto(client):
     client.write("BAND 100 kHz;VID 1 kHz")
     client.write("BAND:VID:AUTO ON")
-    assert client.query("BAND:VID:AUTO?;VID?") == "1;100000"
+    assert client.query("BAND:VID:AUTO?;:BAND:VID?") == "1;100000"
     client.write("SWE:TIME 2")
     assert client.query("SWE:TIME?;TIME:AUTO?") == "2;0"
     client.write("SWE:TIME:AUTO ON")
@@ -273,6 +277,72 @@ def test_compound_lines_and_relative_paths(client):
 def test_execution_error_does_not_stop_the_line(client):
     assert client.query("FREQ:CENT 1e12;:FREQ:CENT 2e9;:FREQ:CENT?") == "2000000000"
     assert client.codes() == [-222]
+
+
+def test_rst_restores_power_on_settings(client):
+    client.write("FREQ:CENT 2e9;:DET SAMP;:FORM REAL,32;:CALC:MARK:FUNC NOIS;:OUTP:NOIS ON")
+    assert client.query("*RST;:FREQ:CENT?;:DET?;:FORM?;:CALC:MARK:FUNC?;:OUTP:NOIS?") == \
+        "1000000000;RMS;ASC;OFF;0"
+    assert client.errors() == []
+
+
+def test_supply_measures_what_the_bench_delivers(sim_server):
+    s = Client(sim_server, "supply")
+    s.write("VOLT 28;CURR 0.05;OUTP ON")
+    supply = sim_server.bench.supply
+    s.sync()
+    assert float(s.query("MEAS:VOLT?")) == supply.measure_voltage() == 28.0
+    assert float(s.query("MEAS:CURR?")) == supply.measure_current() > 0
+    s.write("CURR 0.005")  # below what the source draws: constant current, voltage collapses
+    s.sync()
+    assert float(s.query("MEAS:SCAL:VOLT:DC?")) == supply.measure_voltage() < 28.0
+    s.close()
+
+
+@pytest.mark.parametrize("which, command, code", [
+    ("generator", "FREQ 1e12", -222),
+    ("generator", "POW 99", -222),
+    ("generator", "OUTP MAYBE", -104),
+    ("supply", "VOLT 1e3", -222),
+    ("supply", "CURR -1", -222),
+    ("supply", "MEAS:VOLT 3", -113),  # query only
+])
+def test_generator_and_supply_errors(sim_server, which, command, code):
+    c = Client(sim_server, which)
+    c.write(command)
+    assert c.codes() == [code]
+    c.close()
+
+
+def test_real_waits_pass_on_the_bench_clock(client, sim_server):
+    clock = sim_server.bench.clock
+    client.sync()
+    before = clock.now_s
+    time.sleep(0.1)  # an operator's (or driver's) settle wait
+    client.sync()
+    assert clock.now_s - before >= 0.1
+
+
+def test_without_wall_clock_only_instrument_time_passes():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=1)
+    with SimServer(bench, wall_clock=False) as server:
+        c = Client(server)
+        c.sync()
+        before = bench.clock.now_s
+        time.sleep(0.05)
+        c.sync()
+        assert bench.clock.now_s == before
+        _acquire(c, points=11)
+        assert bench.clock.now_s - before == pytest.approx(
+            bench.analyzer.last_trace.acquisition_time_s, rel=1e-9)
+        c.close()
+
+
+def test_overlong_line_is_too_much_data(client):
+    client.write("X" * (1 << 20) + "Y" * 100, end=b"")  # no terminator yet
+    client.write("")  # end of the overlong line
+    assert client.query("*IDN?").startswith("noisebench,")
+    assert -223 in client.codes()
 
 
 # ----------------------------------------------------------------------------- errors
@@ -392,8 +462,9 @@ def test_normal_marker_reads_the_nearest_trace_point(client):
 
 
 def test_marker_functions_use_the_last_trace(client, sim_server):
-    from noisebench.acquisition import MarkerKind
     from noisebench.sims.analyzer import marker_from_trace
+
+    from noisebench.acquisition import MarkerKind
 
     client.write("FREQ:CENT 1e9;SPAN 20e6;:BAND 1e6;:DET RMS;:CALC:MARK:FUNC NOIS")
     _acquire(client, points=201, averages=2)
@@ -404,7 +475,7 @@ def test_marker_functions_use_the_last_trace(client, sim_server):
     assert density == pytest.approx(expected.value_db, abs=1e-4)  # float32 trace memory
     assert client.query("CALC:MARK:FUNC:CORR?") == "1"  # RMS detector: corrected density
     assert float(client.query("CALC:MARK:FUNC:BAND?")) == expected.band_hz
-    client.write("CALC:MARK:FUNC BPOW;BAND 5e6")
+    client.write("CALC:MARK:FUNC BPOW;FUNC:BAND 5e6")
     band_power = float(client.query("CALC:MARK:Y?"))
     expected = marker_from_trace(trace, 1e9, MarkerKind.BAND_POWER, 5e6)
     assert band_power == pytest.approx(expected.value_db, abs=1e-4)
@@ -534,8 +605,10 @@ def test_clean_shutdown_frees_ports_and_threads(slow_server):
     for port in ports.values():
         with pytest.raises(ConnectionRefusedError):
             socket.create_connection(("127.0.0.1", port), timeout=1.0)
-        probe = socket.socket()
-        probe.bind(("127.0.0.1", port))  # the port is free again
+        probe = socket.socket()  # the port is free for a restarted server
+        probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        probe.bind(("127.0.0.1", port))
+        probe.listen(1)
         probe.close()
     slow_server.stop()  # idempotent
 
@@ -695,7 +768,8 @@ def test_fault_reboot_resets_settings_and_drops_connections(sim_server):
     sim_server.faults.reboot()
     assert a.sees_eof() and g.sees_eof() and s.sees_eof()
     a, g, s = (Client(sim_server, n) for n in INSTRUMENTS)
-    assert a.query("FREQ:CENT?;:FORM?;:SIM:PATH?") == "1000000000;ASC;DUT"
+    # settings back to power-on; the cables (simulated path) stay where the operator put them
+    assert a.query("FREQ:CENT?;:FORM?;:SIM:PATH?") == "1000000000;ASC;THR"
     assert a.query("*ESR?") == "128"  # power-on bit, and nothing else
     assert a.codes() == []  # the queue was emptied
     a.write("TRAC?")
@@ -735,7 +809,7 @@ def test_fault_stuck_noise_source_gives_y_of_one(sim_server):
     # points 2 RBW apart are practically uncorrelated (Gaussian RBW), so the standard error of
     # the trace mean follows from the trace's own scatter
     c.write("SIM:PATH THR;:FREQ:CENT 1e9;SPAN 40e6;:BAND 100e3;:SWE:POIN 201;"
-            ":DET RMS;:AVER:TYPE POW;COUN 2")
+            ":DET RMS;:AVER:TYPE POW;COUN 2;:INP:ATT 0")
     y, u_y = _y_factor(c, None, settle_s)
     assert y > 1 + 10 * u_y  # working source: hot clearly above cold
     sim_server.faults.stuck_noise_source = True

@@ -1,0 +1,573 @@
+"""The simulated bench's deterministic behaviour: settings, timing, chain physics, instruments.
+
+Statistical properties of the synthesised noise are in ``test_sim_statistics.py``.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from noisebench.sims.analyzer import round_125, round_step
+from noisebench.sims.bench import Path, SimulatedBench
+from noisebench.sims.clock import SimClock
+from noisebench.sims.models import compression_gain_factor, dbm_to_w, mismatch_factor
+from noisebench.sims.scenario import available_scenarios, load_scenario
+from scipy.constants import k as K_BOLTZMANN
+from scipy.signal import get_window
+
+from noisebench.acquisition import (
+    AcquisitionRequest,
+    AveragingScale,
+    Detector,
+    MarkerKind,
+    SweepMode,
+)
+from noisebench.errors import InputError
+from noisebench.filters import FilterKind, RbwFilter
+from noisebench.instruments import Analyzer, Bench, Generator, NoiseSource
+
+T0 = 290.0
+
+NO_CABLES = {"input_cable": {"loss_db": [0.0]}, "output_cable": {"loss_db": [0.0]}}
+
+
+def clean_bench(seed: int = 0, **overrides) -> SimulatedBench:
+    """demo-lna without systematic errors, cables or gain ripple (for hand-computed checks)."""
+    kw = {**NO_CABLES, "dut__gain_ripple_db": 0.0, **overrides}
+    return SimulatedBench.from_scenario("demo-lna", seed=seed, ideal=True, **kw)
+
+
+def request(**kw) -> AcquisitionRequest:
+    base = dict(center_hz=2e9, span_hz=10e6, rbw_hz=1e6, points=101, averages=1)
+    base.update(kw)
+    return AcquisitionRequest(**base)
+
+
+def mean_power_w(trace) -> float:
+    return float(np.mean(10 ** (trace.values / 10) * 1e-3))
+
+
+# ---------------------------------------------------------------- scenarios ------------------
+
+
+def test_packaged_scenarios_load_and_cover_their_cases():
+    names = available_scenarios()
+    assert {"demo-lna", "high-nf", "attenuator-6db"} <= set(names)
+    demo = load_scenario("demo-lna")
+    assert 0.6 <= min(demo.dut.nf_db[1:-1]) and max(demo.dut.nf_db[1:-1]) <= 1.5
+    assert 20 <= min(demo.dut.gain_db[1:-1]) and max(demo.dut.gain_db[1:-1]) <= 28
+    assert demo.dut.gain_ripple_db > 0
+    assert demo.noise_source.physical_temperature_k != T0
+    high = load_scenario("high-nf")
+    assert min(high.dut.nf_db) >= 10 and max(high.dut.gain_db) <= 10
+
+
+def test_unknown_scenario_and_bad_override_name_the_field():
+    with pytest.raises(InputError) as err:
+        load_scenario("no-such-bench")
+    assert err.value.field == "scenario" and "demo-lna" in str(err.value)
+    with pytest.raises(InputError) as err:
+        load_scenario("demo-lna", analyzer__no_such_setting=1.0)
+    assert "analyzer.no_such_setting" in str(err.value)
+    with pytest.raises(InputError) as err:
+        load_scenario("demo-lna", dut__gain_db=[1.0, 2.0])
+    assert "dut.gain_db" in str(err.value)
+
+
+def test_overrides_accept_nested_and_double_underscore_forms():
+    a = load_scenario("demo-lna", analyzer={"amplitude_error_db": 0.4})
+    b = load_scenario("demo-lna", analyzer__amplitude_error_db=0.4)
+    assert a == b and a.analyzer.amplitude_error_db == 0.4
+    assert a.analyzer.nf_db == load_scenario("demo-lna").analyzer.nf_db  # merged, not replaced
+
+
+# ---------------------------------------------------------------- clock ---------------------
+
+
+def test_clock_advances_and_refuses_going_back():
+    clock = SimClock()
+    assert clock.now_s == 0.0
+    assert clock.advance(0.25) == pytest.approx(0.25)
+    with pytest.raises(InputError):
+        clock.advance(-1e-3)
+    with pytest.raises(InputError):
+        clock.advance(float("nan"))
+
+
+# ---------------------------------------------------------------- settings ------------------
+
+
+@pytest.mark.parametrize(("asked", "applied"), [
+    (1.1e6, 1e6), (2.6e6, 3e6), (4.2e3, 5e3), (3.8e3, 3e3), (6.9e5, 5e5), (7.2e5, 1e6),
+    (1e9, 10e6), (0.1, 1.0)])
+def test_rbw_rounds_to_the_1_2_3_5_sequence_within_limits(asked, applied):
+    assert round_125(asked, 1.0, 10e6) == pytest.approx(applied)
+
+
+def test_attenuation_rounds_to_2_db_steps_halves_up():
+    assert [round_step(v, 2.0, 0.0, 70.0) for v in (5.0, 6.9, 7.0, 71.0, -1.0)] == \
+        [6.0, 6.0, 8.0, 70.0, 0.0]
+
+
+def test_configure_reports_applied_values_and_clips():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    s = bench.analyzer.configure(request(rbw_hz=2.6e6, attenuation_db=7.0, points=500_000,
+                                         averages=10**6 // 2, vbw_hz=330e3))
+    assert s.rbw_hz == 3e6 and s.vbw_hz == 300e3
+    assert s.attenuation_db == 8.0
+    assert s.points == 100_001 and s.averages == 100_000
+    assert s.rbw_filter.kind is FilterKind.GAUSSIAN
+    assert bench.analyzer.settings == s
+    # None keeps the instrument's current attenuation and preamp
+    s2 = bench.analyzer.configure(request(preamp=True))
+    assert s2.attenuation_db == 8.0 and s2.preamp is True
+    s3 = bench.analyzer.configure(request())
+    assert s3.preamp is True
+
+
+def test_span_is_clipped_to_the_frequency_range_and_bad_centre_refused():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    s = bench.analyzer.configure(request(center_hz=7.4e9, span_hz=1e9))
+    assert s.stop_hz == pytest.approx(7.5e9) and s.span_hz == pytest.approx(0.2e9)
+    with pytest.raises(InputError) as err:
+        bench.analyzer.configure(request(center_hz=9e9))
+    assert err.value.field == "center_hz"
+
+
+def test_filter_shape_and_fft_window_are_reported():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    bench.analyzer.set_filter_shape("synchronous", poles=4)
+    s = bench.analyzer.configure(request())
+    assert s.rbw_filter == RbwFilter(kind=FilterKind.SYNCHRONOUS, poles=4)
+    # reference.md §6a: 4 synchronously tuned poles have ENBW = 1.128499 x B3
+    assert s.enbw_hz == pytest.approx(1.128499e6, rel=1e-6)
+    s = bench.analyzer.configure(request(mode=SweepMode.FFT, rbw_hz=1e3))
+    assert s.rbw_filter.kind is FilterKind.FFT and s.rbw_filter.window == "hann"
+    s = bench.analyzer.configure(request(mode=SweepMode.FFT, span_hz=0.0))
+    assert s.mode is SweepMode.SWEPT  # zero span has no FFT mode
+    with pytest.raises(InputError):
+        bench.analyzer.set_fft_window("no-such-window")
+
+
+# ---------------------------------------------------------------- timing --------------------
+
+
+@pytest.mark.parametrize(("span", "rbw", "sweep"), [
+    (1e9, 1e6, 2.5e-3), (100e6, 100e3, 25e-3), (10e6, 1e3, 25.0)])
+def test_swept_sweep_time_follows_k_span_over_rbw_squared(span, rbw, sweep):
+    # common practice, reference.md §8: ST = 2.5 * span / RBW^2
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    s = bench.analyzer.configure(request(span_hz=span, rbw_hz=rbw))
+    assert s.sweep_time_s == pytest.approx(sweep)
+
+
+def test_sweep_time_vbw_minimum_and_requested():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    s = bench.analyzer.configure(request(span_hz=100e6, rbw_hz=100e3, vbw_hz=10e3))
+    assert s.sweep_time_s == pytest.approx(2.5 * 100e6 / (100e3 * 10e3))  # reference.md §8
+    s = bench.analyzer.configure(request(span_hz=1e6, rbw_hz=1e6))
+    assert s.sweep_time_s == pytest.approx(1e-3)  # the analyzer's shortest sweep
+    s = bench.analyzer.configure(request(span_hz=1e6, rbw_hz=1e6, sweep_time_s=0.2))
+    assert s.sweep_time_s == pytest.approx(0.2)
+    s = bench.analyzer.configure(request(span_hz=0.0, sweep_time_s=0.05))
+    assert s.sweep_time_s == pytest.approx(0.05)
+
+
+def test_fft_sweep_time_is_one_frame_per_segment():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    s = bench.analyzer.configure(request(mode=SweepMode.FFT, rbw_hz=1e3, span_hz=25e6))
+    # frame length = 1 / bin width, and RBW = B3 in bins x bin width; B3 of the Hann window
+    # from its zero-padded spectrum (scipy.signal.get_window), three 10 MHz segments
+    w = get_window("hann", 4096, fftbins=True)
+    spec = np.abs(np.fft.rfft(w, 4096 * 64)) ** 2
+    spec /= spec[0]
+    b3_bins = 2 * np.interp(0.5, spec[:400][::-1], np.arange(400)[::-1] / 64)
+    assert s.sweep_time_s == pytest.approx(3 * b3_bins / 1e3, rel=1e-3)
+
+
+def test_acquisition_advances_the_clock_by_the_expected_time():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    bench.analyzer.configure(request(averages=20, span_hz=100e6, rbw_hz=100e3))
+    expected = bench.analyzer.expected_acquisition_time_s()
+    # 20 sweeps of 25 ms plus 1 ms retrace each, plus a 5/RBW retune settle
+    assert expected == pytest.approx(20 * (25e-3 + 1e-3) + 5 / 100e3)
+    t0 = bench.clock.now_s
+    trace = bench.analyzer.acquire_trace()
+    assert trace.acquisition_time_s == pytest.approx(expected)
+    assert bench.clock.now_s - t0 == pytest.approx(expected)
+    assert trace.instrument == bench.analyzer.identity
+    assert trace.values.size == 101 and trace.settings == bench.analyzer.settings
+
+
+def test_detector_samples_from_sweep_time_and_statistical_bandwidth():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    s = bench.analyzer.configure(request(span_hz=0.0, sweep_time_s=10e-3, detector=Detector.RMS))
+    bstat = RbwFilter().stat_bw_hz(1e6)  # reference.md §6a: 1.505384 x B3
+    assert s.detector_samples == round(bstat * 10e-3 / 101)
+    s = bench.analyzer.configure(request(span_hz=0.0, sweep_time_s=10e-3,
+                                         detector=Detector.SAMPLE))
+    assert s.detector_samples == 1
+    s = bench.analyzer.configure(request(mode=SweepMode.FFT, rbw_hz=1e3, span_hz=1e6,
+                                         detector=Detector.RMS))
+    assert s.detector_samples == round(1e4 / s.rbw_filter.stat_bw_hz(1e3))
+
+
+# ---------------------------------------------------------------- chain physics -------------
+
+
+def test_truth_of_the_dut_follows_its_tables():
+    bench = clean_bench()
+    spec = bench.scenario.dut
+    f = np.array([1e9, 1.25e9])
+    t = bench.truth(f)
+    assert t["nf_db"][0] == pytest.approx(spec.nf_db[2])
+    assert t["nf_db"][1] == pytest.approx((spec.nf_db[2] + spec.nf_db[3]) / 2)  # linear in dB
+    assert t["te_k"] == pytest.approx(T0 * (10 ** (t["nf_db"] / 10) - 1))  # reference.md §2
+    assert t["gain_db"][0] == pytest.approx(spec.gain_db[2])
+    with pytest.raises(InputError) as err:
+        bench.truth(10e9)
+    assert err.value.field == "freq_hz"
+
+
+def test_passive_dut_noise_figure_follows_its_loss_and_temperature():
+    bench = SimulatedBench.from_scenario("attenuator-6db", seed=0)
+    t = bench.truth(np.array([1e9, 3e9]))
+    loss = 10 ** (-t["gain_db"] / 10)
+    # reference.md §3: F = 1 + (L - 1) Tp / T0
+    assert t["nf_db"] == pytest.approx(10 * np.log10(1 + (loss - 1) * 296.0 / T0))
+
+
+def test_hot_temperature_uses_enr_over_t0_plus_physical_temperature():
+    bench = clean_bench()
+    t = bench.truth(2e9)
+    # reference.md §5 (common assumption): Th = T0 * ENR + Tc, with Tc the physical temperature
+    assert t["cold_k"][0] == 296.5
+    assert t["hot_k"][0] == pytest.approx(T0 * 10 ** (t["enr_db"][0] / 10) + 296.5)
+    assert t["enr_db"][0] == pytest.approx(15.06)
+
+
+def test_operator_enr_table_differs_within_twice_its_uncertainty():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=3)
+    table = bench.enr_table
+    true = np.asarray(bench.scenario.noise_source.enr_db)
+    err = np.asarray(table.enr_db) - true
+    u = np.asarray(table.u_enr_db)
+    assert np.all(np.abs(err) <= 2 * u + 1e-4) and np.any(np.abs(err) > 0.01)
+    assert table.metadata.serial == bench.scenario.noise_source.serial
+    again = SimulatedBench.from_scenario("demo-lna", seed=3).enr_table
+    assert again.enr_db == table.enr_db  # deterministic from the seed
+    assert SimulatedBench.from_scenario("demo-lna", seed=3, ideal=True).enr_table.enr_db == \
+        pytest.approx(true.tolist(), abs=1e-4)
+
+
+def test_displayed_densities_combine_by_friis():
+    bench = clean_bench()
+    bench.analyzer.configure(request(attenuation_db=0.0, preamp=False))
+    f = np.array([2e9])
+    t = bench.truth(f)
+    an = bench.scenario.analyzer
+    f_sa = 10 ** (np.interp(f, an.freq_hz, an.nf_db) / 10)
+    te_sa = T0 * (f_sa - 1)  # reference.md §2
+    g = 10 ** (t["gain_db"] / 10)
+    tc, te, amb = 296.5, t["te_k"], bench.scenario.ambient_k
+    # reference.md §3/§4: DUT output k (Tc + Te) G, plus the analyzer's own k Te_sa
+    assert t["density_dut_cold_w_per_hz"] == pytest.approx(K_BOLTZMANN * (tc + te) * g)
+    assert t["displayed_dut_cold_w_per_hz"] == pytest.approx(K_BOLTZMANN * ((tc + te) * g + te_sa))
+    assert t["displayed_termination_cold_w_per_hz"] == pytest.approx(K_BOLTZMANN * (amb + te_sa))
+    th = T0 * 10 ** (t["enr_db"] / 10) + tc
+    assert t["displayed_through_hot_w_per_hz"] == pytest.approx(K_BOLTZMANN * (th + te_sa))
+    assert t["analyzer_nf_db"] == pytest.approx(10 * np.log10(f_sa))
+
+
+def test_attenuation_raises_the_floor_db_for_db_and_preamp_lowers_it():
+    bench = clean_bench()
+    an = bench.scenario.analyzer
+    f = np.array([3e9])
+    f_sa = 10 ** (np.interp(f, an.freq_hz, an.nf_db) / 10)
+    nf = {}
+    for att, pre in ((0.0, False), (10.0, False), (20.0, False), (0.0, True)):
+        bench.analyzer.configure(request(center_hz=3e9, attenuation_db=att, preamp=pre))
+        nf[(att, pre)] = bench.truth(f)["analyzer_nf_db"][0]
+    # Friis (reference.md §3): attenuator L at ambient, then the mixer; preamp before the mixer
+    amb = bench.scenario.ambient_k
+    for att in (10.0, 20.0):
+        loss = 10 ** (att / 10)
+        expected = 1 + (loss - 1) * amb / T0 + loss * (f_sa[0] - 1)
+        assert nf[(att, False)] == pytest.approx(10 * np.log10(expected))
+        assert nf[(att, False)] - nf[(0.0, False)] == pytest.approx(att, abs=0.05)
+    f_pre, g_pre = 10 ** (an.preamp_nf_db / 10), 10 ** (an.preamp_gain_db / 10)
+    assert nf[(0.0, True)] == pytest.approx(10 * np.log10(f_pre + (f_sa[0] - 1) / g_pre))
+    assert nf[(0.0, True)] < nf[(0.0, False)] - 5
+
+
+def test_cables_cascade_by_friis_in_the_system_figure():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0, ideal=True)
+    bench.analyzer.configure(request(attenuation_db=0.0))
+    f = np.array([4e9])
+    t = bench.truth(f)
+    l_in = 10 ** (0.20 * math.sqrt(4) / 10)  # 0.2 dB at 1 GHz scaling as sqrt(f)
+    l_out = 10 ** (0.45 * math.sqrt(4) / 10)
+    assert t["input_loss_db"][0] == pytest.approx(0.4) and t["output_loss_db"][0] == \
+        pytest.approx(0.9)
+    amb = bench.scenario.ambient_k
+    g = 10 ** (t["gain_db"] / 10)
+    # reference.md §3: Te = Te1 + Te2/G1 + Te3/(G1 G2) + ..., a loss has Te = (L - 1) Tp
+    te = ((l_in - 1) * amb + t["te_k"] * l_in + (l_out - 1) * amb * l_in / g
+          + t["analyzer_te_k"] * l_in * l_out / g)
+    assert t["system_nf_db"] == pytest.approx(10 * np.log10(1 + te / T0))
+
+
+def test_mismatch_factor_limits():
+    # reference.md §9: limits 20 log10(1 +/- |Gs||Gl|) on the transferred power
+    ga, gb = 0.1 * np.exp(1j * np.linspace(0, 2 * np.pi, 721)), 0.2
+    m_db = 10 * np.log10(mismatch_factor(ga, gb))
+    assert m_db.max() == pytest.approx(-20 * np.log10(1 - 0.02), abs=1e-4)
+    assert m_db.min() == pytest.approx(-20 * np.log10(1 + 0.02), abs=1e-4)
+
+
+def test_compression_gain_factor_is_1_db_at_p1db():
+    p1db = 1e-2
+    # the input that drives the output to P1dB gives an uncompressed output 1 dB higher
+    lin = p1db * 10 ** 0.1
+    assert 10 * np.log10(compression_gain_factor(lin, p1db)) == pytest.approx(-1.0, abs=1e-9)
+    assert compression_gain_factor(1e-9 * p1db, p1db) == pytest.approx(1.0, abs=1e-12)
+    assert compression_gain_factor(lin, None) == 1.0
+
+
+# ---------------------------------------------------------------- instruments ---------------
+
+
+def test_instruments_implement_the_abstract_interfaces():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    assert isinstance(bench.analyzer, Analyzer)
+    assert isinstance(bench.noise_source, NoiseSource)
+    assert isinstance(bench.generator, Generator)
+    b = bench.as_bench()
+    assert isinstance(b, Bench) and b.ambient_k == 296.0 and b.extras["sim"] is bench
+    assert bench.analyzer.max_input_power_dbm == 30.0
+    assert bench.noise_source.cold_temperature_k == 296.5
+    assert set(b.identities()) == {"analyzer", "noise_source", "generator"}
+    bench.noise_source.set_hot(True)
+    bench.generator.set_output(True)
+    b.safe_state()
+    assert not bench.noise_source.is_hot and not bench.generator.output_on
+
+
+def test_set_hot_waits_the_settle_time_and_drives_the_analyzer_output():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    t0 = bench.clock.now_s
+    bench.noise_source.set_hot(True)
+    assert bench.clock.now_s - t0 == pytest.approx(0.05)
+    assert bench.noise_source.is_hot and bench.analyzer.noise_drive_on
+    bench.analyzer.set_noise_drive(False)
+    assert not bench.noise_source.is_hot
+
+
+def test_reading_during_the_transition_is_between_cold_and_hot():
+    bench = clean_bench(noise_source__transition_time_s=0.02)
+    bench.noise_source.settle_time_s = 0.0  # the operator does not wait
+    s = bench.analyzer.configure(request(span_hz=0.0, points=201, sweep_time_s=0.02,
+                                         detector=Detector.RMS, attenuation_db=0.0))
+    truth = bench.truth(2e9)
+    cold = truth["displayed_dut_cold_w_per_hz"][0] * s.enbw_hz
+    hot = truth["displayed_dut_hot_w_per_hz"][0] * s.enbw_hz
+    bench.noise_source.set_hot(True)
+    power = dbm_to_w(bench.analyzer.acquire_trace().values)
+    # point i is read 5/RBW + ST (i + 1/2) / points after the switch; the source ramps linearly
+    t_i = 5 / s.rbw_hz + s.sweep_time_s * (np.arange(201) + 0.5) / 201
+    expected = cold + np.clip(t_i / 0.02, 0, 1) * (hot - cold)
+    ratio = power / expected
+    # each point is an RMS mean of k looks: relative std 1/sqrt(k); 5 sigma of the mean ratio
+    tol = 5 / math.sqrt(s.detector_samples * 201)
+    assert ratio.mean() == pytest.approx(1.0, abs=tol)
+    assert (power / hot).mean() < 0.6  # a steady hot source would read 1
+    settled = dbm_to_w(bench.analyzer.acquire_trace().values)
+    assert (settled / hot).mean() == pytest.approx(1.0, abs=tol)
+
+
+def test_supply_drives_the_source_within_its_window_only():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    sup, src = bench.supply, bench.noise_source
+    sup.set_current_limit(0.1)
+    sup.set_voltage(28.0)
+    sup.set_output(True)
+    assert src.is_hot and sup.measure_voltage() == 28.0
+    assert sup.measure_current() == pytest.approx(28.0 / 2800.0)
+    sup.set_current_limit(0.005)  # 5 mA: constant current, the voltage collapses to 14 V
+    assert sup.measure_voltage() == pytest.approx(14.0) and not src.is_hot
+    sup.set_current_limit(0.1)
+    sup.set_voltage(24.0)
+    assert not src.is_hot  # below the drive window
+    sup.set_voltage(33.0)  # above the diode's maximum: damaged for good
+    assert src.damaged and not src.is_hot
+    sup.set_voltage(28.0)
+    assert not src.is_hot
+    with pytest.raises(InputError):
+        sup.set_voltage(100.0)
+    sup.close()
+    assert not sup.output_on and sup.measure_voltage() == 0.0
+
+
+def test_enr_follows_the_drive_voltage():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    bench.supply.set_voltage(29.0)
+    bench.supply.set_output(True)
+    enr = bench.truth(2e9)["enr_db"][0]
+    assert enr == pytest.approx(15.06 + 0.01 * 1.0)  # scenario: +0.01 dB/V above 28 V
+
+
+def test_stuck_source_never_switches():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    bench.noise_source.stuck = True
+    bench.noise_source.set_hot(True)
+    assert not bench.noise_source.is_hot
+
+
+def test_generator_tone_appears_at_the_path_gain():
+    bench = clean_bench()
+    gen = bench.generator
+    gen.set_cw(2e9, -60.0)
+    gen.set_output(True)
+    bench.analyzer.configure(request(span_hz=200e3, rbw_hz=10e3, points=201,
+                                     attenuation_db=10.0))
+    gain_db = bench.truth(2e9)["gain_db"][0]
+    reading = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3)
+    # band power integrates the tone: sum P_i * spacing / ENBW = P_tone; noise adds ~1e-4
+    assert reading.value_db == pytest.approx(-60.0 + gain_db, abs=0.02)
+    bench.set_path(Path.THROUGH)
+    reading = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3)
+    assert reading.value_db == pytest.approx(-60.0, abs=0.02)
+    with pytest.raises(InputError):
+        gen.set_cw(20e9, 0.0)
+    with pytest.raises(InputError):
+        gen.set_cw(1e9, 40.0)
+
+
+def test_dut_compression_reduces_the_gain_by_1_db_at_p1db():
+    bench = clean_bench()
+    gain_db = bench.truth(2e9)["gain_db"][0]
+    p1db = bench.scenario.dut.output_p1db_dbm
+    bench.generator.set_output(True)
+    bench.analyzer.configure(request(span_hz=200e3, rbw_hz=10e3, points=201,
+                                     attenuation_db=30.0, ref_level_dbm=20.0))
+    bench.generator.set_cw(2e9, p1db + 1.0 - gain_db)  # uncompressed output 1 dB above P1dB
+    out = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3).value_db
+    # the DUT's own noise adds to the compression drive: its total power is ~1e-4 of the tone
+    assert out == pytest.approx(p1db, abs=0.01)
+
+
+def test_mixer_compression_and_if_overload_read_low():
+    bench = clean_bench()
+    bench.generator.set_output(True)
+    bench.set_path(Path.THROUGH)
+    bench.generator.set_cw(2e9, 0.0)
+    bench.analyzer.configure(request(span_hz=200e3, rbw_hz=10e3, attenuation_db=30.0,
+                                     ref_level_dbm=10.0))
+    fine = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3).value_db
+    assert fine == pytest.approx(0.0, abs=0.01)
+    bench.analyzer.configure(request(span_hz=200e3, rbw_hz=10e3, attenuation_db=0.0,
+                                     ref_level_dbm=10.0))
+    mixer = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3).value_db
+    assert mixer < fine - 1.0  # 0 dBm at a -3 dBm P1dB mixer
+    bench.analyzer.configure(request(span_hz=200e3, rbw_hz=10e3, attenuation_db=30.0,
+                                     ref_level_dbm=-30.0))
+    clipped = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3).value_db
+    assert clipped < fine - 10.0  # 30 dB above the reference level overloads the IF
+
+
+def test_input_power_above_the_rating_is_recorded():
+    bench = clean_bench()
+    bench.set_path(Path.THROUGH)
+    bench.generator.set_cw(2e9, 15.0)
+    bench.generator.set_output(True)
+    bench.analyzer.configure(request(attenuation_db=40.0))
+    bench.analyzer.acquire_trace()
+    assert bench.analyzer.overload_events == []
+    sim = SimulatedBench.from_scenario("demo-lna", seed=0, analyzer__max_input_power_dbm=10.0)
+    sim.set_path(Path.THROUGH)
+    sim.generator.set_cw(2e9, 15.0)
+    sim.generator.set_output(True)
+    sim.analyzer.acquire_trace()
+    assert len(sim.analyzer.overload_events) == 1
+    # the tone after the output cable (reflections move it by < 0.02 dB)
+    expected = 15.0 - sim.truth(2e9)["output_loss_db"][0]
+    assert sim.analyzer.overload_events[0]["input_power_dbm"] == pytest.approx(expected, abs=0.02)
+
+
+def test_interference_lines_are_present_in_every_path():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    bench.analyzer.configure(request(center_hz=1.80025e9, span_hz=2e6, rbw_hz=30e3, points=401,
+                                     attenuation_db=10.0))
+    for path in Path:
+        bench.set_path(path)
+        trace = bench.analyzer.acquire_trace()
+        peak = trace.freq_hz[np.argmax(trace.values)]
+        assert abs(peak - 1.80025e9) <= 2 * 2e6 / 400
+        # -80 dBm line (+0.15 dB level error, mains sidebands -30 dBc add 0.004 dB)
+        assert trace.values.max() == pytest.approx(-80.0 + 0.15, abs=0.3)
+
+
+def test_noise_density_marker_is_corrected_only_for_power_averaging():
+    bench = clean_bench()
+    bench.set_path(Path.TERMINATION)
+    s = bench.analyzer.configure(request(span_hz=20e6, rbw_hz=100e3, points=1001, averages=400,
+                                         attenuation_db=0.0, detector=Detector.RMS))
+    r = bench.analyzer.read_marker(2e9, MarkerKind.NOISE_DENSITY, band_hz=10e6)
+    expected = 10 * np.log10(bench.truth(2e9)["displayed_termination_cold_w_per_hz"][0] / 1e-3)
+    assert r.instrument_corrected and r.kind is MarkerKind.NOISE_DENSITY
+    # radiometer equation (reference.md §7): band / B_stat independent cells per sweep
+    looks = 10e6 / s.rbw_filter.stat_bw_hz(s.rbw_hz) * s.averages
+    c_db = 10 / np.log(10)
+    assert r.value_db == pytest.approx(expected, abs=5 * c_db / np.sqrt(looks))
+    bench.analyzer.configure(request(span_hz=20e6, rbw_hz=100e3, points=1001, averages=400,
+                                     attenuation_db=0.0, detector=Detector.SAMPLE,
+                                     averaging_scale=AveragingScale.LOG_POWER))
+    r = bench.analyzer.read_marker(2e9, MarkerKind.NOISE_DENSITY, band_hz=10e6)
+    assert not r.instrument_corrected
+    # reference.md §6b: log averaging reads 10 log10(e) gamma low; log samples scatter pi/sqrt6
+    bias = -c_db * np.euler_gamma
+    tol = 5 * c_db * (np.pi / np.sqrt(6)) / np.sqrt(looks)
+    assert r.value_db == pytest.approx(expected + bias, abs=tol)
+    with pytest.raises(InputError) as err:
+        bench.analyzer.read_marker(3e9, MarkerKind.NOISE_DENSITY)
+    assert err.value.field == "marker.freq_hz"
+
+
+def test_reset_restores_power_on_settings():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    bench.analyzer.set_filter_shape("synchronous", poles=5)
+    bench.analyzer.configure(request(attenuation_db=30.0, preamp=True))
+    bench.analyzer.set_noise_drive(True)
+    bench.reset()
+    s = bench.analyzer.settings
+    assert s.attenuation_db == 10.0 and s.preamp is False and s.center_hz == 1e9
+    assert s.rbw_filter.kind is FilterKind.GAUSSIAN
+    assert not bench.analyzer.noise_drive_on and not bench.noise_source.is_hot
+
+
+def test_paths_and_bad_path():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=0)
+    bench.set_path("THROUGH")
+    assert bench.path is Path.THROUGH
+    bench.set_path(Path.TERMINATION)
+    assert bench.path is Path.TERMINATION
+    with pytest.raises(InputError) as err:
+        bench.set_path("open")
+    assert err.value.field == "path"
+
+
+def test_same_seed_same_trace_other_seed_other_trace():
+    def trace(seed):
+        b = SimulatedBench.from_scenario("demo-lna", seed=seed)
+        b.analyzer.configure(request(averages=3))
+        return b.analyzer.acquire_trace().values
+
+    assert np.array_equal(trace(5), trace(5))
+    assert not np.array_equal(trace(5), trace(6))
+
+
+def test_dbm_conversion_helper():
+    assert dbm_to_w(0.0) == pytest.approx(1e-3)
+    assert dbm_to_w(-30.0) == pytest.approx(1e-6)

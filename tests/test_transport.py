@@ -1,0 +1,299 @@
+"""The VISA session wrapper: block codecs, and real pyvisa-py sockets against a scripted peer."""
+
+from __future__ import annotations
+
+import socket
+import threading
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from hypothesis.extra.numpy import arrays
+from noisebench.drivers.protocol import ieee_block
+from noisebench.drivers.transport import (
+    BlockError,
+    ConnectionLost,
+    VisaSession,
+    decode_block_values,
+    parse_ascii_values,
+    seconds_to_ms,
+    split_definite_block,
+)
+from pyvisa import constants
+
+from noisebench.errors import CommunicationError, InputError, InstrumentTimeout
+
+CLOSE = object()  # handler reply: close the connection instead of answering
+
+
+class ScriptedPeer:
+    """A TCP peer on loopback that answers each received line with ``handler(line)``:
+    bytes (sent as is), None (no answer) or CLOSE (drop the connection)."""
+
+    def __init__(self, handler) -> None:
+        self.handler = handler
+        self.lines: list[str] = []
+        self.connections = 0
+        self._listener = socket.create_server(("127.0.0.1", 0))
+        self._stop = threading.Event()
+        self._threads: list[threading.Thread] = []
+        self._socks: list[socket.socket] = []
+        self.port = self._listener.getsockname()[1]
+        thread = threading.Thread(target=self._accept, daemon=True)
+        thread.start()
+        self._threads.append(thread)
+
+    @property
+    def resource(self) -> str:
+        return f"TCPIP0::127.0.0.1::{self.port}::SOCKET"
+
+    def _accept(self) -> None:
+        self._listener.settimeout(0.05)
+        while not self._stop.is_set():
+            try:
+                conn, _ = self._listener.accept()
+            except OSError:
+                continue
+            self.connections += 1
+            self._socks.append(conn)
+            thread = threading.Thread(target=self._serve, args=(conn,), daemon=True)
+            thread.start()
+            self._threads.append(thread)
+
+    def _serve(self, conn: socket.socket) -> None:
+        buffer = b""
+        try:
+            conn.settimeout(0.05)
+        except OSError:
+            return
+        while not self._stop.is_set():
+            try:
+                data = conn.recv(65536)
+            except TimeoutError:
+                continue
+            except OSError:
+                return
+            if not data:
+                return
+            buffer += data
+            while b"\n" in buffer:
+                line, buffer = buffer.split(b"\n", 1)
+                self.lines.append(line.decode())
+                reply = self.handler(line.decode())
+                if reply is CLOSE:
+                    conn.shutdown(socket.SHUT_RDWR)
+                    conn.close()
+                    return
+                if reply is not None:
+                    conn.sendall(reply)
+
+    def stop(self) -> None:
+        self._stop.set()
+        for sock in self._socks:
+            try:
+                sock.close()
+            except OSError:
+                pass
+        self._listener.close()
+        for thread in self._threads:
+            thread.join(timeout=2.0)
+
+
+# a payload full of 0x0A bytes: 0x0A0A0A0A as float32 is ~6.6e-33
+NEWLINE_VALUES = np.frombuffer(b"\x0a\x0a\x0a\x0a" * 500 + b"\x3f\x80\x00\x00", dtype=">f4")
+
+
+def _instrument(line: str):
+    if line == "*IDN?":
+        return b"test,peer,0,1\n"
+    if line == "TRAC?":
+        return ieee_block(NEWLINE_VALUES)
+    if line == "SHORT?":
+        block = ieee_block(NEWLINE_VALUES)
+        return block[: len(block) // 2] + b"\n"
+    if line == "LONG?":
+        return ieee_block(NEWLINE_VALUES)[:-1] + b"\x00\x00\n"
+    if line == "BAD?":
+        return b"#X123456\n"
+    if line == "SILENT?":
+        return None
+    if line == "BYE":
+        return CLOSE
+    return None
+
+
+@pytest.fixture
+def peer():
+    server = ScriptedPeer(_instrument)
+    yield server
+    server.stop()
+
+
+@pytest.fixture
+def session(peer):
+    s = VisaSession(peer.resource, timeout_s=0.3)
+    yield s
+    s.close()
+
+
+# ----------------------------------------------------------------------------- codecs
+
+
+def test_timeout_conversion_is_in_one_place_and_rounds_up():
+    assert seconds_to_ms(0.5) == 500
+    assert seconds_to_ms(2.0001) == 2001
+    assert seconds_to_ms(1e-5) == 1
+    for bad in (0, -1.0, float("nan"), float("inf"), "fast"):
+        with pytest.raises(InputError):
+            seconds_to_ms(bad)
+
+
+def test_definite_block_round_trip_and_header_checks():
+    values = np.array([1.0, -2.5, 3.25e-7], dtype=">f4")
+    raw = ieee_block(values)
+    assert raw.startswith(b"#212") and raw.endswith(b"\n")
+    payload = split_definite_block(raw)
+    assert np.array_equal(decode_block_values(payload), values.astype(float))
+    little = ieee_block(values, big_endian=False)
+    assert np.array_equal(decode_block_values(split_definite_block(little), big_endian=False),
+                          values.astype(float))
+    with pytest.raises(BlockError, match="6 of the 12"):
+        split_definite_block(raw[:10])
+    with pytest.raises(BlockError, match="longer"):
+        split_definite_block(raw[:-1] + b"xx\n")
+    with pytest.raises(BlockError, match="not a binary block"):
+        split_definite_block(b"1.0,2.0\n")
+    with pytest.raises(BlockError, match="indefinite"):
+        split_definite_block(b"#0abcd\n")
+    with pytest.raises(BlockError, match="malformed"):
+        split_definite_block(b"#3x1\n")
+    with pytest.raises(BlockError, match="multiple of 4"):
+        decode_block_values(b"\x00" * 6)
+
+
+@settings(max_examples=100, deadline=None)
+@given(arrays(np.dtype(">f4"), st.integers(0, 300),
+              elements=st.floats(width=32, allow_nan=False, allow_infinity=False)),
+       st.booleans(), st.sampled_from(["f", "d"]))
+def test_any_block_decodes_bit_identically(values, big_endian, datatype):
+    raw = ieee_block(values, datatype=datatype, big_endian=big_endian)
+    decoded = decode_block_values(split_definite_block(raw), datatype, big_endian)
+    assert np.array_equal(decoded, values.astype(np.float64))
+
+
+def test_ascii_values_parse_and_garbage_is_refused():
+    assert np.array_equal(parse_ascii_values("1.5,-2,3e-3\n"), [1.5, -2.0, 3e-3])
+    with pytest.raises(CommunicationError, match="comma-separated"):
+        parse_ascii_values("1.5,abc")
+
+
+# ----------------------------------------------------------------------------- sockets
+
+
+def test_terminations_are_explicit_and_nagle_is_off(session):
+    # reference: ecosystem.md - pyvisa-py socket resources default to no read termination
+    assert session._res.read_termination == "\n"
+    assert session._res.write_termination == "\n"
+    assert session.query("*IDN?") == "test,peer,0,1"
+    assert session._socket().getsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY) != 0
+
+
+def test_fast_block_read_is_bit_identical_to_pyvisa_codec_with_newline_bytes(peer):
+    fast = VisaSession(peer.resource, timeout_s=1.0, binary_reader="fast")
+    codec = VisaSession(peer.resource, timeout_s=1.0, binary_reader="pyvisa")
+    try:
+        a = fast.query_binary("TRAC?")
+        b = codec.query_binary("TRAC?")
+    finally:
+        fast.close()
+        codec.close()
+    assert a.size == NEWLINE_VALUES.size == b.size
+    assert np.array_equal(a, NEWLINE_VALUES.astype(float))
+    assert np.array_equal(a, b)
+
+
+def test_scoped_timeout_is_applied_in_ms_and_restored(session):
+    assert session._res.timeout == 300
+    with session.timeout(1.25):
+        assert session._res.timeout == 1250
+        assert session.timeout_s == 1.25
+    assert session._res.timeout == 300 and session.timeout_s == 0.3
+
+
+def test_no_reply_is_instrument_timeout_with_visa_code_then_recoverable(session, peer):
+    with pytest.raises(InstrumentTimeout) as info:
+        session.query("SILENT?")
+    assert info.value.visa_code == constants.StatusCode.error_timeout
+    assert info.value.context["command"] == "SILENT?"
+    assert session.stale
+    with pytest.raises(CommunicationError, match="out of step"):
+        session.query("*IDN?")  # a late reply could be taken for this one: refused
+    assert session.recover() is True  # sockets reconnect: late replies go to the old one
+    assert session.query("*IDN?") == "test,peer,0,1"
+    assert peer.connections == 2
+
+
+def test_truncated_block_is_a_block_error_and_session_recovers(session):
+    with pytest.raises(BlockError, match="incomplete"):
+        session.query_binary("SHORT?")
+    session.recover()
+    assert np.array_equal(session.query_binary("TRAC?"), NEWLINE_VALUES.astype(float))
+
+
+def test_block_longer_than_header_and_malformed_header_are_block_errors(session):
+    with pytest.raises(BlockError, match="longer than its header"):
+        session.query_binary("LONG?")
+    session.recover()
+    with pytest.raises(BlockError, match="not a binary block"):
+        session.query_binary("BAD?")
+
+
+def test_peer_closing_is_reported_as_connection_lost_not_a_timeout(session):
+    session.write("BYE")
+    for _ in range(100):  # let the peer's close arrive (no fixed sleep)
+        if session.peer_closed():
+            break
+        threading.Event().wait(0.01)
+    with pytest.raises(ConnectionLost) as info:
+        session.query("*IDN?")
+    assert not isinstance(info.value, InstrumentTimeout)
+    session.recover()
+    assert session.query("*IDN?") == "test,peer,0,1"
+
+
+def test_port_without_listener_fails_with_a_communication_error():
+    free = socket.create_server(("127.0.0.1", 0))
+    port = free.getsockname()[1]
+    free.close()
+    try:
+        session = VisaSession(f"TCPIP0::127.0.0.1::{port}::SOCKET", timeout_s=0.3)
+    except CommunicationError:
+        return  # some systems refuse at open
+    try:
+        with pytest.raises(CommunicationError):
+            session.query("*IDN?")
+    finally:
+        session.close()
+
+
+def test_bad_arguments_are_input_errors():
+    with pytest.raises(InputError):
+        VisaSession("", timeout_s=1.0)
+    with pytest.raises(InputError):
+        VisaSession("TCPIP0::127.0.0.1::1::SOCKET", read_termination="\x00")
+    with pytest.raises(InputError):
+        VisaSession("TCPIP0::127.0.0.1::1::SOCKET", binary_reader="quick")
+    with pytest.raises(CommunicationError, match="cannot open"):
+        VisaSession("NOT::A::RESOURCE", timeout_s=0.3)
+
+
+def test_repr_does_no_io_and_close_is_idempotent(peer):
+    session = VisaSession(peer.resource, timeout_s=0.3)
+    peer.stop()
+    assert repr(session) == f"<VisaSession {peer.resource!r} open>"
+    session.close()
+    session.close()
+    assert repr(session).endswith("closed>")
+    with pytest.raises(ConnectionLost):
+        session.query("*IDN?")
