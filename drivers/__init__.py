@@ -70,7 +70,7 @@ def open_session(resource: str, profile: InstrumentProfile, *, timeout_s: float 
                        timeout_s=conn.timeout_s if timeout_s is None else timeout_s,
                        read_termination=conn.read_termination,
                        write_termination=conn.write_termination,
-                       binary_reader=conn.binary_reader)
+                       binary_reader=conn.binary_reader, baud_rate=conn.baud_rate)
 
 
 def _open(cls, resource: str, profile: str | Path | InstrumentProfile, kind: str,

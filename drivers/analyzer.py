@@ -519,11 +519,8 @@ class ScpiAnalyzer(Analyzer):
             if self._closed:
                 return
             self._closed = True
-            if self.spec.noise_drive is not None and self._noise_drive is not False:
-                try:
-                    self.transport.write(self.spec.noise_drive.command(False))
-                except NoisebenchError as exc:
-                    logger.warning("analyzer: could not switch the noise drive off: %s", exc)
+            if self.spec.noise_drive is not None:
+                self._channel.write_safe_state(self.spec.noise_drive, False)
             self._channel.close()
 
     def _require_settings(self) -> AcquisitionSettings:

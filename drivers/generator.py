@@ -12,7 +12,7 @@ import logging
 import math
 from pathlib import Path
 
-from noisebench.errors import InputError, MeasurementError, NoisebenchError, SafetyError
+from noisebench.errors import InputError, MeasurementError, SafetyError
 from noisebench.instruments import Generator
 
 from .profile import GeneratorProfile, InstrumentProfile, load_profile
@@ -123,9 +123,6 @@ class ScpiGenerator(Generator):
             if self._closed:
                 return
             self._closed = True
-            try:
-                self.transport.write(self.spec.settings.output.command(False))
+            if self._channel.write_safe_state(self.spec.settings.output, False):
                 self._output = False
-            except NoisebenchError as exc:
-                logger.warning("generator: could not switch the output off: %s", exc)
             self._channel.close()

@@ -255,11 +255,8 @@ class ScpiSupply(Instrument):
             if self._closed:
                 return
             self._closed = True
-            try:
-                self.transport.write(self.spec.settings.output.command(False))
+            if self._channel.write_safe_state(self.spec.settings.output, False):
                 self._output = False
-            except NoisebenchError as exc:
-                logger.warning("supply: could not switch the output off: %s", exc)
             self._channel.close()
 
 
@@ -437,32 +434,32 @@ class OperatorNoiseSource(_SwitchedSource):
 
 
 def check_source_switching(analyzer: Analyzer, source: NoiseSource, *,
-                           min_y_db: float = 0.1) -> float:
-    """Measure Y (dB) = mean hot power / mean cold power over one trace each, leave the source
-    cold, and raise MeasurementError below ``min_y_db`` (the source does not switch).
+                           min_y_db: float = 0.1, sigmas: float = 5.0) -> float:
+    """Measure Y (dB) from one hot and one cold trace, leave the source cold, and raise
+    MeasurementError when hot and cold cannot be told apart: Y below ``min_y_db`` or within
+    ``sigmas`` standard uncertainties of 0 dB.
 
-    Needs a configured analyzer (``configure`` first). The means are taken in linear power
-    over every trace point, so their statistical scatter is far below 0.1 dB for any trace of
-    a few hundred points."""
-    if not (isinstance(min_y_db, (int, float)) and math.isfinite(min_y_db) and min_y_db > 0):
-        raise InputError("min_y_db", "must be finite and > 0 dB", value=min_y_db)
+    Needs a configured analyzer (``configure`` first). Each trace is reduced to a noise
+    density over its whole span by :func:`noisebench.estimator.estimate_density`, whose
+    standard uncertainty follows from the applied settings (radiometer statistics), so the
+    threshold adapts to how much the traces were averaged."""
+    from noisebench.estimator import estimate_density
+
+    for name, value in (("min_y_db", min_y_db), ("sigmas", sigmas)):
+        if not (isinstance(value, (int, float)) and math.isfinite(value) and value > 0):
+            raise InputError(name, "must be finite and > 0", value=value)
     try:
         source.set_hot(True)
-        hot = _mean_power_w(analyzer.acquire_trace())
+        hot = estimate_density(analyzer.acquire_trace())
     finally:
         source.set_hot(False)
-    cold = _mean_power_w(analyzer.acquire_trace())
-    y_db = 10.0 * math.log10(hot / cold)
-    if y_db < min_y_db:
-        raise MeasurementError(f"the noise source does not switch: hot and cold read the same "
-                               f"(Y = {y_db:.3f} dB < {min_y_db:g} dB)",
-                               fix="check the drive voltage, the drive lead and the source "
-                                   "connection", y_db=round(y_db, 4))
+    cold = estimate_density(analyzer.acquire_trace())
+    y_db = 10.0 * math.log10(hot.density_w_per_hz / cold.density_w_per_hz)
+    u_y_db = 10.0 / math.log(10.0) * math.hypot(hot.relative_u, cold.relative_u)
+    if y_db < max(min_y_db, sigmas * u_y_db):
+        raise MeasurementError(
+            f"the noise source does not switch: hot and cold read the same (Y = {y_db:.3f} "
+            f"+/- {u_y_db:.3f} dB; needs {max(min_y_db, sigmas * u_y_db):.3f} dB)",
+            fix="check the drive voltage, the drive lead and the source connection; with a "
+                "small Y, average more", y_db=round(y_db, 4))
     return y_db
-
-
-def _mean_power_w(trace: Any) -> float:
-    values = np.asarray(trace.values, dtype=float)
-    unit = getattr(trace.unit, "value", trace.unit)
-    power = 10.0 ** (values / 10.0) if unit in ("dBm", "dBm/Hz") else values
-    return float(np.mean(power))

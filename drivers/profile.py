@@ -449,6 +449,8 @@ class ConnectionProfile(_Section):
     binary_reader: str = Field(default="fast", pattern="^(fast|pyvisa)$",
                                description="'fast': header then exact payload read; "
                                            "'pyvisa': pyvisa's query_binary_values")
+    baud_rate: int | None = Field(default=None, ge=50, le=10_000_000,
+                                  description="serial (ASRL) resources only")
 
     @model_validator(mode="after")
     def _check(self) -> ConnectionProfile:

@@ -24,7 +24,12 @@ import time
 from collections.abc import Callable
 from typing import Any, TypeVar
 
-from noisebench.errors import CommunicationError, InputError, InstrumentError
+from noisebench.errors import (
+    CommunicationError,
+    InputError,
+    InstrumentError,
+    NoisebenchError,
+)
 
 from .profile import CommonProfile, ReplyError
 from .transport import Transport
@@ -83,6 +88,28 @@ class ScpiChannel:
 
     def close(self) -> None:
         self.transport.close()
+
+    def write_safe_state(self, setting: Any, value: Any) -> bool:
+        """Best effort for a safe state (drive off, output off): bring a broken stream back
+        without restoring any settings, send the setting and read it back (which also makes
+        sure the instrument processed it before the connection closes). Never raises; True
+        when the instrument confirms the value."""
+        with self.lock:
+            command = setting.command(value)
+            try:
+                if self.needs_recovery or getattr(self.transport, "stale", False):
+                    self.transport.recover()
+                self.transport.write(command)
+                if setting.get_cmd is None:
+                    self.transport.query(self.common.operation_complete)
+                    return True
+                if self.get(setting) == value:
+                    return True
+                logger.error("%s: %r not confirmed by the read-back", self.kind, command)
+            except NoisebenchError as exc:
+                logger.error("%s: could not send %r for the safe state: %s", self.kind,
+                             command, exc)
+            return False
 
     # -- plain I/O ---------------------------------------------------------------------
 

@@ -223,7 +223,7 @@ class VisaSession(Transport):
     def __init__(self, resource: str, *, visa_library: str = "@py", timeout_s: float = 5.0,
                  read_termination: str = "\n", write_termination: str = "\n",
                  binary_reader: str = "fast", open_timeout_s: float = 5.0,
-                 resource_manager=None) -> None:
+                 baud_rate: int | None = None, resource_manager=None) -> None:
         if not isinstance(resource, str) or not resource.strip() or "\n" in resource:
             raise InputError("resource", f"not a VISA resource string: {resource!r}",
                              value=resource, fix="e.g. 'TCPIP0::192.168.1.20::5025::SOCKET'")
@@ -242,10 +242,10 @@ class VisaSession(Transport):
         self.write_termination = write_termination
         self.binary_reader = binary_reader
         self.open_timeout_s = float(open_timeout_s)
+        self.baud_rate = baud_rate
         self.reconnects = 0
         self._timeout_s = float(timeout_s)
         self._lock = threading.RLock()
-        self._own_rm = resource_manager is None
         self._rm = resource_manager if resource_manager is not None else \
             _resource_manager(visa_library)
         self._res = None
@@ -264,6 +264,9 @@ class VisaSession(Transport):
             res.read_termination = self.read_termination
             res.write_termination = self.write_termination
             res.timeout = seconds_to_ms(self._timeout_s)
+            if self.baud_rate is not None and \
+                    res.interface_type == pyvisa.constants.InterfaceType.asrl:
+                res.baud_rate = int(self.baud_rate)
         except (pyvisa.errors.Error, OSError, ValueError, AttributeError) as exc:
             code = getattr(exc, "error_code", None)
             raise CommunicationError(
@@ -278,7 +281,23 @@ class VisaSession(Transport):
         self._is_socket = getattr(res, "resource_class", "") == "SOCKET"
         if self._is_socket:
             self._no_delay()
+        if self.binary_reader == "fast" and not self._termchar_switchable():
+            logger.info("%s: the termination character cannot be switched off; binary blocks "
+                        "go through pyvisa's codec", self.resource)
+            self.binary_reader = "pyvisa"
         logger.info("opened %s (%s)", self.resource, self.visa_library)
+
+    def _termchar_switchable(self) -> bool:
+        """The fast block read needs VI_ATTR_TERMCHAR_EN writable (some back ends refuse)."""
+        from pyvisa import constants
+
+        try:
+            value = self._res.get_visa_attribute(constants.VI_ATTR_TERMCHAR_EN)
+            self._res.set_visa_attribute(constants.VI_ATTR_TERMCHAR_EN, value)
+            return True
+        except Exception as exc:  # noqa: BLE001 - any refusal means: use pyvisa's codec
+            logger.debug("%s: VI_ATTR_TERMCHAR_EN not writable: %s", self.resource, exc)
+            return False
 
     def _no_delay(self) -> None:
         """Send small commands at once. With Nagle's algorithm on, a command followed by a
@@ -336,14 +355,10 @@ class VisaSession(Transport):
         return self._stale
 
     def close(self) -> None:
+        """Close the resource. The resource manager stays open: pyvisa shares one per VISA
+        library, and closing it would close every other session of the process."""
         with self._lock:
             self._close_resource()
-            if self._own_rm and self._rm is not None:
-                try:
-                    self._rm.close()
-                except Exception as exc:  # noqa: BLE001
-                    logger.debug("resource manager close failed: %s", exc)
-                self._rm = None
 
     @property
     def is_open(self) -> bool:
@@ -397,9 +412,11 @@ class VisaSession(Transport):
         """pyvisa-py's socket behind a SOCKET resource (None for other back ends)."""
         if not self._is_socket or self._res is None:
             return None
+        import pyvisa
+
         try:
             session = self._res.visalib.sessions[self._res.session]
-        except (AttributeError, KeyError, TypeError):
+        except (AttributeError, KeyError, TypeError, pyvisa.errors.Error):
             return None
         sock = getattr(session, "interface", None)
         return sock if isinstance(sock, socket.socket) else None

@@ -141,6 +141,15 @@ class DensitySeries:
         return combine_densities(self.parts)
 
 
+def averages_at_target(averages: int, u_reducible: float, u_fixed: float,
+                       target: float) -> float | None:
+    """The averages that would have given exactly ``target`` (may be below ``averages``)."""
+    room = target**2 - u_fixed**2
+    if room <= 0 or averages < 1:
+        return None
+    return averages * u_reducible**2 / room
+
+
 def averages_for_target(averages: int, u_reducible: float, u_fixed: float, target: float,
                         *, margin: float = PLANNING_MARGIN) -> int | None:
     """Total averages for the point's statistical uncertainty to reach ``target``.
@@ -158,3 +167,39 @@ def averages_for_target(averages: int, u_reducible: float, u_fixed: float, targe
         return None
     needed = averages * u_reducible**2 / room * margin
     return max(averages, int(math.ceil(needed)))
+
+
+class TimeBudget:
+    """Instrument time of one group of points (s): used so far, the limit, the rate per trace
+    average measured so far, and how many averages still fit."""
+
+    def __init__(self, limit_s: float) -> None:
+        self.limit_s = limit_s
+        self.used_s = 0.0
+        self._trace_s = 0.0
+        self._trace_averages = 0
+
+    def charge(self, seconds: float) -> None:
+        self.used_s += max(0.0, seconds)
+
+    def charge_trace(self, seconds: float, averages: int) -> None:
+        self.charge(seconds)
+        self._trace_s += max(0.0, seconds)
+        self._trace_averages += averages
+
+    @property
+    def left_s(self) -> float:
+        return self.limit_s - self.used_s
+
+    def seconds_per_average(self, fallback_s: float) -> float:
+        if self._trace_averages:
+            return self._trace_s / self._trace_averages
+        return fallback_s
+
+    def averages_that_fit(self, traces: int, overhead_s: float, fallback_s: float) -> int:
+        """Largest per-trace average count of a round of ``traces`` traces that still fits."""
+        per = self.seconds_per_average(fallback_s)
+        room = self.left_s - overhead_s
+        if per <= 0:
+            return 1_000_000 if room > 0 else 0
+        return max(0, int(room / (traces * per)))

@@ -206,9 +206,7 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Run the SCPI simulator; every option after 'serve' goes "
                                    "to it (noisebench serve --help lists them).",
                        add_help=False)
-    p.add_argument("serve_args", nargs=argparse.REMAINDER,
-                   help="--scenario NAME --seed N --host H --port P ...")
-    p.set_defaults(func=cmd_serve)
+    p.set_defaults(func=cmd_serve, serve_args=[])
 
     p = sub.add_parser("render", help="plots and report from a saved run folder")
     p.add_argument("folder", help="run folder")
@@ -281,14 +279,31 @@ def _configure_logging(args: argparse.Namespace) -> None:
     root.setLevel(level)
 
 
+_GLOBAL_FLAGS = ("-v", "--verbose", "-q", "--quiet")
+
+
+def _split_serve(tokens: list[str]) -> tuple[list[str], list[str] | None]:
+    """``[globals] serve ARGS...``: every token after ``serve`` belongs to the simulator."""
+    for i, token in enumerate(tokens):
+        if token == "serve":
+            return tokens[: i + 1], tokens[i + 1:]
+        if token not in _GLOBAL_FLAGS:
+            break
+    return tokens, None
+
+
 def main(argv: Sequence[str] | None = None, *, out: TextIO | None = None) -> int:
     """Entry point of the ``noisebench`` console script; returns the exit code."""
     out = out or sys.stdout
     parser = build_parser()
+    tokens = [str(t) for t in (sys.argv[1:] if argv is None else argv)]
+    tokens, serve_args = _split_serve(tokens)
     try:
-        args = parser.parse_args(argv)
+        args = parser.parse_args(tokens)
     except SystemExit as exc:  # argparse: --help (0) or a usage error (2)
         return int(exc.code or 0)
+    if serve_args is not None:
+        args.serve_args = serve_args
     _configure_logging(args)
     func: Callable[[argparse.Namespace, TextIO], int] = args.func
     try:

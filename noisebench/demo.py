@@ -49,7 +49,8 @@ class DemoSummary:
 def _write_loss_table(path: Path, freq_hz: np.ndarray, loss_db: np.ndarray, what: str) -> None:
     lines = [f"# description: {what} (invented demo bench)", "# temperature_k: 296.0",
              "freq_hz,loss_db,u_loss_db"]
-    lines += [f"{float(f)!r},{float(loss):.4f},0.02" for f, loss in zip(freq_hz, loss_db, strict=True)]
+    lines += [f"{float(f)!r},{float(loss):.4f},0.02"
+              for f, loss in zip(freq_hz, loss_db, strict=True)]
     path.write_text("\n".join(lines) + "\n", encoding="utf-8")
 
 

@@ -23,8 +23,13 @@ by :meth:`PointModel.correlation`). For ``n`` used points, ``S = sum_ij rho(|i-j
 i.e. ``independent_samples`` is the number of independent exponential power samples that would
 give the same variance (``u_rel = 1 / sqrt(independent_samples)``). Dense points give
 ``n^2 / S -> band / (correlation bandwidth)`` (B_stat for a Gaussian RBW); sparse points give
-``n``. In zero span the points lie on a time axis ``sweep_time / points`` apart and correlate by
-the filter's time response (``integral |r|^2 = 1/B_stat``: the radiometer equation).
+``n``. In zero span the points lie on a time axis ``dt = sweep_time / points`` apart and
+correlate through the filter's time response ``C(tau)`` (``integral C = 1/B_stat``, so a long
+trace holds ``averages * sweep_time * B_stat`` independent samples: the radiometer equation). A
+SAMPLE point is an instant (``rho = C(j dt)``); an RMS/AVERAGE point averages its whole window
+(``rho_j = integral C(u) max(0, dt - |u - j dt|) du`` normalised), used when ``dt * B_stat > 1``.
+A zero-span trace needs its ``sweep_time_s``; it has no spur search (a line inside the RBW
+looks like noise there).
 
 Cross-check: the scatter of the used points about a straight line (a gain slope is not noise)
 is compared with its expectation ``r * m^2 * (n - tr(P C))`` (``P`` the projection on the line,
@@ -344,8 +349,12 @@ def _find_spurs(trace: Trace, power: np.ndarray, rel_var: float, kernel: np.ndar
 # --- per-band estimate ------------------------------------------------------------------------
 
 def _select_band(p: _Prepared, freq_hz: float | None, band_hz: float | None,
-                 min_points: int) -> tuple[float, slice]:
-    """(reported frequency, slice of the trace points inside the band)."""
+                 min_points: int) -> tuple[float, slice, int]:
+    """(reported frequency, slice of the trace points inside the band, points required).
+
+    A requested band must hold ``min_points``; the whole trace (no band) needs fewer when it
+    has fewer points.
+    """
     f = p.freq_hz
     s = p.trace.settings
     if freq_hz is not None and (not math.isfinite(freq_hz) or freq_hz <= 0):
@@ -380,19 +389,19 @@ def _select_band(p: _Prepared, freq_hz: float | None, band_hz: float | None,
             band = slice(int(np.searchsorted(f, report - half - tol, side="left")),
                          int(np.searchsorted(f, report + half + tol, side="right")))
     count = band.stop - band.start
-    if count < min_points:
-        raise InputError("band_hz" if band_hz is not None else "trace.values",
-                         f"holds {count} trace point(s), fewer than {min_points}",
+    required = min_points if band is not whole else min(min_points, f.size)
+    if count < required:
+        raise InputError("band_hz", f"holds {count} trace point(s), fewer than {required}",
                          fix="widen the band or acquire more trace points")
-    return report, band
+    return report, band, required
 
 
 def _estimate_band(p: _Prepared, freq_hz: float | None, band_hz: float | None, *,
                    min_points: int) -> NoiseDensity:
-    report_hz, sl = _select_band(p, freq_hz, band_hz, min_points)
+    report_hz, sl, required = _select_band(p, freq_hz, band_hz, min_points)
     used = ~p.excluded[sl]
     n = int(used.sum())
-    if n < min_points:
+    if n < max(required, 1):
         raise MeasurementError(
             f"only {n} of {used.size} points in the band are free of spurs "
             f"(spurs at {np.round(p.spurs_hz, 1).tolist()} Hz)", freq_hz=report_hz)

@@ -5,6 +5,10 @@ its RBW). ``ENBW = integral |H|^2 df / |H(0)|^2`` sets density = band power / EN
 ``B_stat = (integral |H|^2 df)^2 / integral |H|^4 df`` sets the number of independent samples
 (radiometer equation). Formulas: Gaussian and synchronously tuned n-pole filters in closed form,
 FFT windows numerically from their spectrum (scipy.signal.get_window).
+
+The estimator also needs how strongly the detected noise powers of two trace points correlate
+(:func:`frequency_power_correlation` between points of a trace, :func:`time_power_correlation`
+between zero-span samples) and how far a CW line's skirt reaches (:func:`response_halfwidth_ratio`).
 """
 
 from __future__ import annotations

@@ -43,6 +43,7 @@ __all__ = [
     "apply_budgets_and_verdict",
     "failing_points",
     "missing_freqs_hz",
+    "plan_for_frequencies",
     "save_record",
 ]
 
@@ -180,3 +181,55 @@ def save_record(record: RunRecord, folder: Path) -> RunRecord:
     write_results(record, folder)
     write_atomic(folder / RUN_INFO_FILE, record.info.model_dump_json(indent=2))
     return record
+
+
+# --------------------------------------------------------------------------- narrowed plans
+
+
+def _segment_of(plan: Plan, freq_hz: float) -> int | None:
+    """Index of the segment whose settings apply at ``freq_hz`` (None: the plan-wide ones)."""
+    import numpy as np
+
+    segments = plan.sweep.segments
+    for i, seg in enumerate(segments):
+        if np.any(np.isclose(seg.frequencies_hz(), freq_hz, rtol=FREQ_REL_TOL, atol=0.0)):
+            return i
+    plain = plan.sweep.freqs_hz or []
+    if any(math.isclose(f, freq_hz, rel_tol=FREQ_REL_TOL) for f in plain):
+        return None
+    for i, seg in enumerate(segments):
+        freqs = seg.frequencies_hz()
+        if freqs.min() * (1 - FREQ_REL_TOL) <= freq_hz <= freqs.max() * (1 + FREQ_REL_TOL):
+            return i
+    return None
+
+
+def plan_for_frequencies(plan: Plan, freqs_hz: Any) -> Plan:
+    """``plan`` measured at ``freqs_hz`` (Hz) only, each with the settings that apply there.
+
+    A frequency inside a segment's range takes that segment's acquisition settings, any other
+    the plan-wide ``[acquisition]``. The narrowed plan is checked like a loaded one
+    (:class:`~noisebench.plan.PlanError` naming every problem, e.g. outside the ENR table).
+    """
+    from noisebench.plan import PlanError, Segment, SweepSection, cross_check
+
+    values = [freqs_hz] if isinstance(freqs_hz, (int, float)) else list(freqs_hz)
+    if not values:
+        raise InputError("freqs_hz", "is empty", fix="give at least one frequency in Hz")
+    for i, f in enumerate(values):
+        if isinstance(f, bool) or not isinstance(f, (int, float)) or not math.isfinite(f) \
+                or f <= 0:
+            raise InputError(f"freqs_hz[{i}]", f"must be a finite frequency > 0 Hz (got {f!r})")
+    plain: list[float] = []
+    by_segment: dict[int, list[float]] = {}
+    for f in sorted(float(v) for v in values):
+        index = _segment_of(plan, f)
+        (plain if index is None else by_segment.setdefault(index, [])).append(f)
+    segments = [Segment(freqs_hz=fs, **plan.sweep.segments[i].overrides())
+                for i, fs in sorted(by_segment.items())]
+    narrowed = plan.model_copy(update={"sweep": SweepSection(freqs_hz=plain or None,
+                                                             segments=segments)})
+    problems = cross_check(narrowed)
+    if problems:
+        raise PlanError(problems, source="narrowed plan")
+    return narrowed

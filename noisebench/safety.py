@@ -171,3 +171,70 @@ def check_generator_level(level_dbm: float, *, max_level_dbm: float,
                           f"input {dut_max_input_dbm:.1f} dBm", freq_hz=freq_hz)
     return check_input_power(level_dbm + dut_gain_db, limits, what="generator tone",
                              attenuation_db=attenuation_db, preamp=preamp, freq_hz=freq_hz)
+
+
+# --------------------------------------------------------------------------- bookkeeping
+
+GAIN_PEAKING_MARGIN_DB = 3.0
+"""Added to the power bound from a measured cold density: the DUT's gain elsewhere in its band
+may exceed the gain at the frequencies measured so far."""
+
+
+class PowerGuard:
+    """What is known about the total power into the analyzer, checked before each hot switch.
+
+    The hot power is bounded by the declared maximum DUT gain (``declared_gain_db``) and/or by
+    the highest cold density read with the DUT in (:func:`hot_power_from_cold_density_dbm`
+    plus :data:`GAIN_PEAKING_MARGIN_DB`); the larger bound is used. On the THROUGH path the
+    source feeds the analyzer directly (0 dB gain). ``bandwidth_hz`` is the band over which
+    the source's noise (and the DUT's gain) reaches the analyzer.
+    """
+
+    def __init__(self, limits: InputLimits, *, bandwidth_hz: float,
+                 declared_gain_db: float | None, enr_db: float, cold_temperature_k: float,
+                 t0_k: float = T0_K) -> None:
+        require_positive("bandwidth_hz", bandwidth_hz)
+        self.limits = limits
+        self.bandwidth_hz = bandwidth_hz
+        self.declared_gain_db = declared_gain_db
+        self.enr_db = enr_db
+        self.cold_temperature_k = cold_temperature_k
+        self.t0_k = t0_k
+        self.max_cold_density_w_per_hz: float | None = None
+
+    def observe_cold(self, densities_w_per_hz: list[float]) -> None:
+        """Remember the highest cold density (W/Hz) read with the DUT in."""
+        peak = max(densities_w_per_hz)
+        if self.max_cold_density_w_per_hz is None or peak > self.max_cold_density_w_per_hz:
+            self.max_cold_density_w_per_hz = peak
+
+    @property
+    def needs_cold_look(self) -> bool:
+        """True until a bound of the DUT's output power exists (declared or measured)."""
+        return self.declared_gain_db is None and self.max_cold_density_w_per_hz is None
+
+    def expected_hot_power_dbm(self, through: bool) -> float:
+        """Upper bound of the total power into the analyzer with the source hot, dBm."""
+        th = hot_source_temperature_k(self.enr_db, self.cold_temperature_k, self.t0_k)
+        if through:
+            return total_noise_power_dbm(th, 0.0, self.bandwidth_hz)
+        estimates = []
+        if self.declared_gain_db is not None:
+            estimates.append(total_noise_power_dbm(th, self.declared_gain_db, self.bandwidth_hz))
+        if self.max_cold_density_w_per_hz is not None:
+            estimates.append(hot_power_from_cold_density_dbm(
+                self.max_cold_density_w_per_hz, self.enr_db, self.bandwidth_hz,
+                cold_temperature_k=self.cold_temperature_k, t0_k=self.t0_k)
+                + GAIN_PEAKING_MARGIN_DB)
+        if not estimates:
+            raise InputError("dut output power", "is unknown before the first hot switch",
+                             fix="read the DUT cold first, or declare safety.dut_max_gain_db")
+        return max(estimates)
+
+    def before_hot(self, *, through: bool, attenuation_db: float | None,
+                   preamp: bool | None, freq_hz: float | None = None) -> PowerCheck:
+        """Check (or refuse with SafetyError) before the noise source goes hot."""
+        path = "through" if through else "DUT"
+        return check_input_power(self.expected_hot_power_dbm(through), self.limits,
+                                 what=f"noise source hot ({path} path)",
+                                 attenuation_db=attenuation_db, preamp=preamp, freq_hz=freq_hz)

@@ -39,7 +39,12 @@ from pathlib import Path
 from typing import Any
 
 from noisebench.acquisition import AcquisitionRequest, AcquisitionSettings, Trace
-from noisebench.averaging import DensitySeries, averages_for_target
+from noisebench.averaging import (
+    DensitySeries,
+    TimeBudget,
+    averages_at_target,
+    averages_for_target,
+)
 from noisebench.calibration import (
     DEFAULT_DESIGN_GAIN_DB,
     CalibrationEntry,
@@ -48,6 +53,7 @@ from noisebench.calibration import (
     floor_design_u_db,
     system_design_u_db,
 )
+from noisebench.corrections import Corrections, resolve_corrections
 from noisebench.density import NoiseDensity
 from noisebench.errors import InputError, MeasurementError, NoisebenchError
 from noisebench.plan import AcquisitionPolicy, FrequencyPoint, Plan
@@ -59,11 +65,8 @@ from noisebench.safety import (
     DEFAULT_MAX_INPUT_DBM,
     InputLimits,
     PowerCheck,
+    PowerGuard,
     check_generator_level,
-    check_input_power,
-    hot_power_from_cold_density_dbm,
-    hot_source_temperature_k,
-    total_noise_power_dbm,
 )
 
 logger = logging.getLogger(__name__)
@@ -73,12 +76,20 @@ AUTO_POINTS_PER_RBW = 4
 are correlated (no more information), but a few per RBW let the estimator find and cut spurs."""
 MIN_AUTO_POINTS = 21
 ZERO_SPAN_POINTS = 101
+PILOT_FRACTION = 0.5
+"""Gain method: a group's first round takes half the averages the previous group needed; one
+well-planned top-up round usually follows, and a point that needs much less wastes at most
+that half."""
+PILOT_FRACTION_SWITCHED = 1.1
+"""Y-factor: every extra hot-cold-cold-hot round costs two noise-source settling times, so the
+first round takes what the previous group needed plus the planning margin, and usually ends
+the point in one round."""
+MAX_ROUND_GROWTH = 16
+"""A round may at most multiply the averages so far by 16: the first estimate of u from few
+averages scatters, and a cap keeps one noisy estimate from buying far too many averages."""
 BAND_EDGE_MARGIN = 0.02
 """Each trace is 2 % wider than its bands so an instrument's rounding of the span never puts a
 band edge outside the trace."""
-GAIN_PEAKING_MARGIN_DB = 3.0
-"""Added to the measured cold power when bounding the hot power: the DUT's gain elsewhere in
-its band may exceed the gain at the frequencies measured so far."""
 
 
 # --------------------------------------------------------------------------- groups
@@ -162,207 +173,20 @@ def _make_group(index: int, run: list[FrequencyPoint]) -> PointGroup:
     return PointGroup(index, freqs, policy, (freqs[0] + freqs[-1]) / 2, span, band, points)
 
 
-# --------------------------------------------------------------------------- corrections
-
-
-@dataclass
-class Corrections:
-    """Frequency-dependent losses, the ENR, temperatures (K) and the DUT gain source."""
-
-    t0_k: float
-    source_temperature_k: float
-    input_loss_temperature_k: float | None
-    output_loss_temperature_k: float | None
-    input_loss: Callable[[float], float]
-    output_loss: Callable[[float], float]
-    enr_table: Any = None
-    enr_extrapolate: str = "refuse"
-    gain: Callable[[float], tuple[float, float]] | None = None
-
-    def enr_at(self, freq_hz: float) -> tuple[float, float, bool]:
-        """(ENR dB, its standard uncertainty dB, extrapolated?) at ``freq_hz``."""
-        if self.enr_table is None:
-            raise InputError("enr.table", "no ENR table", fix="name the ENR table in the plan")
-        value = self.enr_table.at(freq_hz, extrapolate=self.enr_extrapolate)
-        return float(value.enr_db), float(value.u_enr_db or 0.0), bool(value.extrapolated)
-
-    def max_enr_db(self) -> float:
-        return float(max(self.enr_table.enr_db)) if self.enr_table is not None else 0.0
-
-
-def _loss_function(plan: Plan, key: str, value: float | str) -> Callable[[float], float]:
-    if not isinstance(value, str):
-        constant = float(value)
-        return lambda freq_hz: constant
-    from noisebench.gain_files import load_gain_table
-
-    table = load_gain_table(plan.resolve_path(value))
-
-    def loss_db(freq_hz: float) -> float:
-        loss = float(table.at(freq_hz).loss_db)
-        if loss < -1e-3:
-            raise InputError(key, f"{value} gives a gain of {-loss:.3f} dB at {freq_hz:.6g} Hz, "
-                             "not a loss", fix="give loss_db >= 0, or a cable's |S21| (<= 0 dB)")
-        return max(loss, 0.0)
-
-    return loss_db
-
-
-def _gain_function(plan: Plan) -> Callable[[float], tuple[float, float]] | None:
-    """The DUT's own gain (dB) and its standard uncertainty (dB) from a file or a constant."""
-    spec = plan.gain
-    if spec is None or plan.method is not Method.GAIN:
-        return None
-    if spec.source == "constant":
-        value, u = float(spec.value_db), spec.u_gain_db  # type: ignore[arg-type]
-        return lambda freq_hz: (value, u)
-    if spec.source == "file":
-        from noisebench.gain_files import load_gain_table
-
-        table = load_gain_table(plan.resolve_path(str(spec.file)))
-
-        def from_file(freq_hz: float) -> tuple[float, float]:
-            entry = table.at(freq_hz)
-            u = spec.u_gain_db if entry.u_gain_db is None else entry.u_gain_db
-            return float(entry.gain_db), float(u)
-
-        return from_file
-    return None  # measured: filled in by the sequencer
-
-
-def bench_temperature_k(session: BenchSession, *, prefer_source: bool) -> float | None:
-    """The bench's physical temperature: the noise source's (cold) or the ambient, K."""
-    source = session.bench.noise_source
-    source_t = source.cold_temperature_k if source is not None else None
-    ambient = session.bench.ambient_k
-    first, second = (source_t, ambient) if prefer_source else (ambient, source_t)
-    return first if first is not None else second
-
-
-def resolve_corrections(plan: Plan, session: BenchSession) -> Corrections:
-    """Everything the methods need besides the densities, from the plan and the bench."""
-    c = plan.corrections
-    if c.source_temperature_k == "bench":
-        ts = bench_temperature_k(session, prefer_source=plan.method is Method.Y_FACTOR)
-        if ts is None:
-            raise InputError("corrections.source_temperature_k", "the bench cannot report "
-                             "the source temperature", fix="give it in kelvin, e.g. 296.5")
-    else:
-        ts = float(c.source_temperature_k)
-    enr_table = None
-    if plan.method is Method.Y_FACTOR:
-        if plan.enr.table is not None:
-            from noisebench.enr import EnrTable
-
-            enr_table = EnrTable.from_csv(plan.resolve_path(plan.enr.table))
-        elif session.sim is not None:
-            enr_table = session.sim.enr_table
-        else:
-            raise InputError("enr.table", "the Y-factor method needs the ENR table")
-    return Corrections(
-        t0_k=c.t0_k, source_temperature_k=ts,
-        input_loss_temperature_k=c.input_loss_temperature_k,
-        output_loss_temperature_k=c.output_loss_temperature_k,
-        input_loss=_loss_function(plan, "corrections.input_loss", c.input_loss),
-        output_loss=_loss_function(plan, "corrections.output_loss", c.output_loss),
-        enr_table=enr_table, enr_extrapolate=plan.enr.extrapolate,
-        gain=_gain_function(plan))
-
-
-# --------------------------------------------------------------------------- safety bookkeeping
-
-
-class PowerGuard:
-    """Tracks what is known about the total power into the analyzer and checks it."""
-
-    def __init__(self, plan: Plan, session: BenchSession, corrections: Corrections) -> None:
-        s, a = plan.safety, plan.bench.analyzer
-        rated = a.max_input_dbm if a.max_input_dbm is not None else \
-            session.bench.analyzer.max_input_power_dbm
-        self.limits = InputLimits(
-            max_input_dbm=DEFAULT_MAX_INPUT_DBM if rated is None else rated,
-            compression_dbm=DEFAULT_COMPRESSION_DBM if a.compression_dbm is None
-            else a.compression_dbm,
-            compression_backoff_db=s.compression_backoff_db,
-            caution_backoff_db=s.caution_backoff_db)
-        self.bandwidth_hz = s.dut_bandwidth_hz or 2.0 * max(p.freq_hz for p in plan.points())
-        self.declared_gain_db = s.dut_max_gain_db
-        self.corrections = corrections
-        self.max_cold_density_w_per_hz: float | None = None
-
-    def observe_cold(self, densities: Sequence[NoiseDensity]) -> None:
-        """Remember the highest cold density read with the DUT in."""
-        peak = max(d.density_w_per_hz for d in densities)
-        if self.max_cold_density_w_per_hz is None or peak > self.max_cold_density_w_per_hz:
-            self.max_cold_density_w_per_hz = peak
-
-    @property
-    def needs_cold_look(self) -> bool:
-        return self.declared_gain_db is None and self.max_cold_density_w_per_hz is None
-
-    def expected_hot_power_dbm(self, connection: Connection) -> float:
-        c = self.corrections
-        tc = c.source_temperature_k
-        th = hot_source_temperature_k(c.max_enr_db(), tc, c.t0_k)
-        if connection is Connection.THROUGH:
-            return total_noise_power_dbm(th, 0.0, self.bandwidth_hz)
-        estimates = []
-        if self.declared_gain_db is not None:
-            estimates.append(total_noise_power_dbm(th, self.declared_gain_db, self.bandwidth_hz))
-        if self.max_cold_density_w_per_hz is not None:
-            estimates.append(hot_power_from_cold_density_dbm(
-                self.max_cold_density_w_per_hz, c.max_enr_db(), self.bandwidth_hz,
-                cold_temperature_k=tc, t0_k=c.t0_k) + GAIN_PEAKING_MARGIN_DB)
-        if not estimates:
-            raise MeasurementError("no estimate of the DUT's output power before switching the "
-                                   "noise source hot (internal: a cold reading comes first)")
-        return max(estimates)
-
-    def before_hot(self, connection: Connection, settings: AcquisitionSettings | None,
-                   freq_hz: float | None) -> PowerCheck:
-        power = self.expected_hot_power_dbm(connection)
-        return check_input_power(
-            power, self.limits, what=f"noise source hot ({connection.value} path)",
-            attenuation_db=settings.attenuation_db if settings else None,
-            preamp=settings.preamp if settings else None, freq_hz=freq_hz)
-
-
-# --------------------------------------------------------------------------- time
-
-
-class TimeBudget:
-    """Instrument time of one group: used so far, the limit, and the rate per trace average."""
-
-    def __init__(self, limit_s: float) -> None:
-        self.limit_s = limit_s
-        self.used_s = 0.0
-        self._trace_s = 0.0
-        self._trace_averages = 0
-
-    def charge(self, seconds: float) -> None:
-        self.used_s += max(0.0, seconds)
-
-    def charge_trace(self, seconds: float, averages: int) -> None:
-        self.charge(seconds)
-        self._trace_s += max(0.0, seconds)
-        self._trace_averages += averages
-
-    @property
-    def left_s(self) -> float:
-        return self.limit_s - self.used_s
-
-    def seconds_per_average(self, fallback_s: float) -> float:
-        if self._trace_averages:
-            return self._trace_s / self._trace_averages
-        return fallback_s
-
-    def averages_that_fit(self, traces: int, overhead_s: float, fallback_s: float) -> int:
-        """Largest per-trace average count of a round of ``traces`` traces that still fits."""
-        per = self.seconds_per_average(fallback_s)
-        room = self.left_s - overhead_s
-        if per <= 0:
-            return 1_000_000 if room > 0 else 0
-        return max(0, int(room / (traces * per)))
+def power_guard_for(plan: Plan, session: BenchSession, corrections: Corrections) -> PowerGuard:
+    """The pre-switch power checks for this plan and bench (rated input: plan, else driver)."""
+    s, a = plan.safety, plan.bench.analyzer
+    rated = a.max_input_dbm if a.max_input_dbm is not None else \
+        session.bench.analyzer.max_input_power_dbm
+    limits = InputLimits(
+        max_input_dbm=DEFAULT_MAX_INPUT_DBM if rated is None else rated,
+        compression_dbm=DEFAULT_COMPRESSION_DBM if a.compression_dbm is None
+        else a.compression_dbm,
+        compression_backoff_db=s.compression_backoff_db, caution_backoff_db=s.caution_backoff_db)
+    return PowerGuard(
+        limits, bandwidth_hz=s.dut_bandwidth_hz or 2.0 * max(p.freq_hz for p in plan.points()),
+        declared_gain_db=s.dut_max_gain_db, enr_db=corrections.max_enr_db(),
+        cold_temperature_k=corrections.source_temperature_k, t0_k=corrections.t0_k)
 
 
 # --------------------------------------------------------------------------- the sequencer
@@ -418,6 +242,7 @@ class Sequencer:
         self._last_request: AcquisitionRequest | None = None
         self._applied: dict[int, AcquisitionSettings] = {}
         self._measured_gain: dict[float, tuple[float, float]] = {}
+        self._prior: dict[str, int] = {}  # averages per reading the last group needed
         self.calibrations_measured = 0
 
     # ----------------------------------------------------------------- entry points
@@ -434,8 +259,10 @@ class Sequencer:
         if resume:
             if folder is None:
                 raise InputError("resume", "needs the folder of the interrupted run")
+            from noisebench.results import load_run
+
+            self._check_resumable(load_run(Path(folder)).info.plan)  # before touching it
             writer = RunWriter.resume(Path(folder))
-            self._check_resumable(writer.info.plan)
             if writer.info.identities == self.session.bench.identities():
                 stored = CalibrationStore.from_dict(writer.info.calibration)
                 self.calibrations.entries[:0] = stored.entries
@@ -497,7 +324,7 @@ class Sequencer:
 
     def _prepare(self, writer) -> None:
         self.corrections = resolve_corrections(self.plan, self.session)
-        self.guard = PowerGuard(self.plan, self.session, self.corrections)
+        self.guard = power_guard_for(self.plan, self.session, self.corrections)
         writer.update_info(cold_temperature_k=self.corrections.source_temperature_k,
                            identities=self.session.bench.identities())
 
@@ -511,6 +338,11 @@ class Sequencer:
 
     def _safe(self) -> None:
         self.session.bench.safe_state()
+
+    def _guard(self) -> PowerGuard:
+        if self.guard is None:  # pragma: no cover - _prepare runs first
+            raise MeasurementError("the power checks are not set up")
+        return self.guard
 
     # ----------------------------------------------------------------- the work
 
@@ -577,8 +409,11 @@ class Sequencer:
             return None
         check = None
         if hot:
-            check = self.guard.before_hot(connection, self.session.bench.analyzer.settings,  # type: ignore[union-attr]
-                                          group.freqs_hz[0])
+            settings = self.session.bench.analyzer.settings
+            check = self._guard().before_hot(
+                through=connection is Connection.THROUGH,
+                attenuation_db=settings.attenuation_db if settings else None,
+                preamp=settings.preamp if settings else None, freq_hz=group.freqs_hz[0])
         source.set_hot(hot)
         budget.charge(source.settle_time_s)
         return check
@@ -617,7 +452,7 @@ class Sequencer:
         connection = Connection.TERMINATION if kind is CalibrationKind.FLOOR else \
             Connection.THROUGH
         target = self.plan.calibration.target_ratio * policy.target_u_nf_db
-        per_trace = self._first_round_averages(policy, len(names))
+        per_trace = self._first_round_averages(policy, len(names), self._prior.get(kind.value))
         stopped_by = "target"
         while True:
             self._round(group, readings, per_trace, budget, connection)
@@ -635,6 +470,9 @@ class Sequencer:
                                stopped_by.replace("_", " "), done, u_worst, target)
                 break
         self._set_source_cold(budget)
+        if stopped_by == "target" and math.isfinite(u_worst):
+            done = readings.averages(names[0])
+            self._prior[kind.value] = max(1, math.ceil(done * (u_worst / target) ** 2))
         return CalibrationEntry(
             kind=kind, settings=settings, freqs_hz=list(group.freqs_hz),
             densities={n: [readings.get(f, n).combined().density for f in group.freqs_hz]
@@ -719,9 +557,16 @@ class Sequencer:
 
     # ----------------------------------------------------------------- rounds
 
-    def _first_round_averages(self, policy: AcquisitionPolicy, states: int) -> int:
+    def _first_round_averages(self, policy: AcquisitionPolicy, states: int,
+                              prior: int | None = None) -> int:
+        """Per-trace averages of a group's first round: ``min_averages``, or half of what the
+        previous group needed (neighbouring frequencies need similar averaging)."""
         traces_per_state = 2 if states == 2 else 1
-        return max(1, math.ceil(policy.min_averages / traces_per_state))
+        total = policy.min_averages
+        if prior:
+            fraction = PILOT_FRACTION_SWITCHED if states == 2 else PILOT_FRACTION
+            total = max(total, min(int(fraction * prior), policy.max_averages))
+        return max(1, math.ceil(total / traces_per_state))
 
     def _next_round_averages(self, policy: AcquisitionPolicy, done: int, need: int | None,
                              states: int, budget: TimeBudget) -> int:
@@ -729,7 +574,7 @@ class Sequencer:
         if need is None or done >= policy.max_averages:
             return 0
         traces_per_state = 2 if states == 2 else 1
-        want = min(need, policy.max_averages) - done
+        want = min(need, policy.max_averages, MAX_ROUND_GROWTH * done) - done
         if want <= 0:
             return 0
         per_trace = max(1, math.ceil(want / traces_per_state))
@@ -755,7 +600,7 @@ class Sequencer:
             densities = self._acquire(group, per_trace, budget)
             readings.add("hot" if hot else "cold", densities)
             if not hot and connection is Connection.DUT:
-                self.guard.observe_cold(densities)  # type: ignore[union-attr]
+                self._guard().observe_cold([d.density_w_per_hz for d in densities])
         return checks
 
     # ----------------------------------------------------------------- measurement
@@ -768,12 +613,12 @@ class Sequencer:
         readings = _Readings(names, group.freqs_hz)
         calibration = self._calibration_for(group)
         checks: list[PowerCheck] = []
-        if y_factor and self.guard.needs_cold_look:  # type: ignore[union-attr]
+        if y_factor and self._guard().needs_cold_look:
             self._set_source_cold(budget)
             look = self._acquire(group, self._first_round_averages(policy, 2), budget)
             readings.add("cold", look)
-            self.guard.observe_cold(look)  # type: ignore[union-attr]
-        per_trace = self._first_round_averages(policy, len(names))
+            self._guard().observe_cold([d.density_w_per_hz for d in look])
+        per_trace = self._first_round_averages(policy, len(names), self._prior.get("dut"))
         while True:
             checks += self._round(group, readings, per_trace, budget, Connection.DUT)
             points = [self._point(f, readings, calibration) for f in group.freqs_hz]
@@ -788,6 +633,10 @@ class Sequencer:
                         "max_averages" if done >= policy.max_averages else "time_limit")
                 break
         self._set_source_cold(budget)
+        prior = self._averages_at_target(points, readings.averages(names[0]),
+                                         policy.target_u_nf_db)
+        if prior is not None:
+            self._prior["dut"] = prior
         settings = self.session.bench.analyzer.settings
         points = [self._finish_point(p, readings, budget, group, checks, stop, calibration)
                   for p in points]
@@ -800,6 +649,13 @@ class Sequencer:
         if entry is None:  # pragma: no cover - _calibrate_all ran first
             raise MeasurementError(f"no valid calibration for {group.describe()}")
         return entry
+
+    @staticmethod
+    def _averages_at_target(points: list[PointResult], done: int, target: float) -> int | None:
+        """What the worst point would have needed exactly: the next group's prior."""
+        exact = [averages_at_target(done, *_split_uncertainty(p), target) for p in points]
+        known = [n for n in exact if n is not None]
+        return max(1, math.ceil(max(known))) if known else None
 
     @staticmethod
     def _averages_needed(points: list[PointResult], done: int, target: float) -> int | None:
@@ -915,7 +771,7 @@ class Sequencer:
         if bench.generator is None:
             raise InputError("bench.generator", "measuring the DUT gain needs a generator")
         policy = groups[0].policy
-        limits = self.guard.limits  # type: ignore[union-attr]
+        limits = self._guard().limits
         analyzer_max = min(limits.max_input_dbm,
                            limits.compression_at(policy.attenuation_db, False)
                            - limits.compression_backoff_db)

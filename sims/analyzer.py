@@ -27,10 +27,6 @@ from collections.abc import Callable
 from typing import Protocol
 
 import numpy as np
-from noisebench.sims.clock import SimClock
-from noisebench.sims.models import AnalyzerFrontEnd, SpectrumAtInput, dbm_to_w, w_to_dbm
-from noisebench.sims.noisegen import Axis, TraceRecipe, field_kernel, generate_trace
-from noisebench.sims.scenario import AnalyzerSpec
 from pydantic import ValidationError
 from scipy.constants import k as BOLTZMANN_J_PER_K
 
@@ -48,6 +44,10 @@ from noisebench.acquisition import (
 from noisebench.errors import InputError
 from noisebench.filters import FilterKind, RbwFilter, window_enbw_bins
 from noisebench.instruments import Analyzer
+from noisebench.sims.clock import SimClock
+from noisebench.sims.models import AnalyzerFrontEnd, SpectrumAtInput, dbm_to_w, w_to_dbm
+from noisebench.sims.noisegen import Axis, TraceRecipe, field_kernel, generate_trace
+from noisebench.sims.scenario import AnalyzerSpec
 
 logger = logging.getLogger(__name__)
 

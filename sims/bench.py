@@ -26,6 +26,10 @@ from pathlib import Path as FsPath
 from typing import Any
 
 import numpy as np
+from scipy.constants import k as BOLTZMANN_J_PER_K
+
+from noisebench.errors import InputError
+from noisebench.instruments import Bench
 from noisebench.sims.analyzer import SimAnalyzer
 from noisebench.sims.clock import SimClock
 from noisebench.sims.generator import SimGenerator
@@ -45,11 +49,7 @@ from noisebench.sims.models import (
     mismatched_temperature_k,
 )
 from noisebench.sims.noise_source import ANALYZER_DRIVE, SimNoiseSource, SimSupply
-from noisebench.sims.scenario import CableSpec, Scenario, load_scenario
-from scipy.constants import k as BOLTZMANN_J_PER_K
-
-from noisebench.errors import InputError
-from noisebench.instruments import Bench
+from noisebench.sims.scenario import CableSpec, Scenario, deep_merge, load_scenario, nest_overrides
 
 logger = logging.getLogger(__name__)
 
@@ -156,8 +156,9 @@ class SimulatedBench:
         (``analyzer__amplitude_error_db=0`` or ``analyzer={"amplitude_error_db": 0}``);
         ``ideal=True`` first applies :data:`IDEAL_OVERRIDES` (no systematic errors).
         """
-        merged = {**IDEAL_OVERRIDES, **overrides} if ideal else overrides
-        return cls(load_scenario(name_or_path, **merged), seed=seed)
+        if ideal:
+            overrides = deep_merge(nest_overrides(IDEAL_OVERRIDES), nest_overrides(overrides))
+        return cls(load_scenario(name_or_path, **overrides), seed=seed)
 
     def _build_models(self, sc: Scenario) -> None:
         d, ns, an = sc.dut, sc.noise_source, sc.analyzer

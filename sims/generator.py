@@ -10,10 +10,9 @@ from __future__ import annotations
 
 import logging
 
-from noisebench.sims.scenario import GeneratorSpec
-
 from noisebench.errors import InputError
 from noisebench.instruments import Generator
+from noisebench.sims.scenario import GeneratorSpec
 
 logger = logging.getLogger(__name__)
 

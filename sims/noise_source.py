@@ -17,12 +17,12 @@ import logging
 import threading
 
 import numpy as np
-from noisebench.sims.clock import SimClock
-from noisebench.sims.models import NoiseSourceModel
-from noisebench.sims.scenario import NoiseSourceSpec, SupplySpec
 
 from noisebench.errors import InputError
 from noisebench.instruments import Instrument, NoiseSource
+from noisebench.sims.clock import SimClock
+from noisebench.sims.models import NoiseSourceModel
+from noisebench.sims.scenario import NoiseSourceSpec, SupplySpec
 
 logger = logging.getLogger(__name__)
 

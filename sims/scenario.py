@@ -281,19 +281,19 @@ def _resolve(name_or_path: str | FsPath) -> FsPath:
                      fix=f"use one of {available_scenarios()} or a path to a .toml file")
 
 
-def _deep_merge(base: dict[str, Any], extra: dict[str, Any]) -> dict[str, Any]:
+def deep_merge(base: dict[str, Any], extra: dict[str, Any]) -> dict[str, Any]:
     out = copy.deepcopy(base)
     for key, value in extra.items():
         if isinstance(value, BaseModel):
             value = value.model_dump()
         if isinstance(value, dict) and isinstance(out.get(key), dict):
-            out[key] = _deep_merge(out[key], value)
+            out[key] = deep_merge(out[key], value)
         else:
             out[key] = value
     return out
 
 
-def _nest(overrides: dict[str, Any]) -> dict[str, Any]:
+def nest_overrides(overrides: dict[str, Any]) -> dict[str, Any]:
     """Turn ``{"analyzer__amplitude_error_db": 0}`` into ``{"analyzer": {...}}``."""
     nested: dict[str, Any] = {}
     for key, value in overrides.items():
@@ -302,7 +302,7 @@ def _nest(overrides: dict[str, Any]) -> dict[str, Any]:
         for part in parts[:-1]:
             node = node.setdefault(part, {})
         if isinstance(value, dict) and isinstance(node.get(parts[-1]), dict):
-            node[parts[-1]] = _deep_merge(node[parts[-1]], value)
+            node[parts[-1]] = deep_merge(node[parts[-1]], value)
         else:
             node[parts[-1]] = value
     return nested
@@ -328,5 +328,5 @@ def load_scenario(name_or_path: str | FsPath, **overrides: Any) -> Scenario:
         data = tomllib.loads(path.read_text(encoding="utf-8"))
     except tomllib.TOMLDecodeError as exc:
         raise InputError("scenario", f"{path.name}: {exc}", fix="fix the TOML syntax") from None
-    data = _deep_merge(data, _nest(overrides))
+    data = deep_merge(data, nest_overrides(overrides))
     return scenario_from_dict(data, source=path.name)

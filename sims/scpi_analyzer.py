@@ -16,6 +16,7 @@ these values.
 
 from __future__ import annotations
 
+import logging
 import threading
 from dataclasses import dataclass
 from enum import Enum
@@ -44,7 +45,6 @@ from .scpi_instruments import (
     InstrumentGone,
     Response,
     ScpiInstrument,
-    logger,
     short_form,
 )
 from .scpi_parser import (
@@ -58,6 +58,8 @@ from .scpi_parser import (
     parse_numeric,
     parse_string,
 )
+
+logger = logging.getLogger(__name__)
 
 N_MARKERS = 4
 MAX_FREQ_HZ = 50e9

@@ -1,16 +1,15 @@
-"""The SCPI command sets of the simulated instruments (analyzer, generator, DC supply).
+"""SCPI instruments on the simulated bench: the common base, the generator and the DC supply.
 
 Each :class:`ScpiInstrument` turns one received program message into response units, keeping
 IEEE 488.2 status (error queue, ``*ESR``, ``*STB``, ``*OPC``) and the instrument's SCPI-side
-state. Physics lives in the simulated bench (``noisebench.sims.bench``); this module only maps
-SCPI onto it. The transport (sockets, faults, command log) is :mod:`noisebench.sims.scpi_server`.
-The command set is documented in ``sims/SCPI.md``.
+state, with helpers that declare a command once (numeric with range and MIN/MAX/DEF, boolean,
+character data, query, event). Physics lives in the simulated bench
+(``noisebench.sims.bench``); these classes only map SCPI onto it. The analyzer's command set is
+:mod:`noisebench.sims.scpi_analyzer`; the transport (sockets, faults, command log) is
+:mod:`noisebench.sims.scpi_server`; the command set is documented in ``sims/SCPI.md``.
 
-Conventions: values in SI base units (Hz, s, V, A) or dB/dBm as named; the analyzer's queries
-return the settings the bench APPLIED (rounded), never the requested ones; a failing query
-returns nothing and queues its error, like a real instrument.
+A failing query returns nothing and queues its error, like a real instrument.
 """
-
 from __future__ import annotations
 
 import logging

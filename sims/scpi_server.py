@@ -61,7 +61,8 @@ class Faults:
       payload, then the terminator); the connection stays open.
     - ``corrupt_block``: the next binary block has a malformed header (``#X...``).
     - ``stuck_noise_source``: noise-source drive commands are accepted and reported, but the
-      source never switches (the drive lead is "open": the supply measures 0 A).
+      source never switches (a dead diode: the supply still measures its normal load current,
+      only Y = 1 gives it away). Clearing it lets the source follow its drives again.
 
     Block switches are one-shot: they fire on the next binary block and turn themselves off.
     """
@@ -190,9 +191,11 @@ class SimServer:
         self._log_lock = threading.Lock()
         self._clients_lock = threading.Lock()
         self._clients: set[_Client] = set()
+        self._client_threads: list[threading.Thread] = []
         self._listeners: dict[str, socket.socket] = {}
         self._acceptor: threading.Thread | None = None
-        self._wake_r, self._wake_w = socket.socketpair()
+        self._wake_r: socket.socket | None = None
+        self._wake_w: socket.socket | None = None
         common = (bench, self._bench_lock, self.faults, self._stop)
         self.instruments: dict[str, ScpiInstrument] = {
             "analyzer": AnalyzerScpi(*common, _identity(bench, "analyzer"),
@@ -219,6 +222,7 @@ class SimServer:
         except OSError:
             self._close_listeners()
             raise
+        self._wake_r, self._wake_w = socket.socketpair()
         self._acceptor = threading.Thread(target=self._accept_loop, name="sim-scpi-accept",
                                           daemon=True)
         self._acceptor.start()
@@ -241,21 +245,23 @@ class SimServer:
         if self._stop.is_set():
             return
         self._stop.set()
-        try:
+        if self._wake_w is not None:
             self._wake_w.send(b"x")
-        except OSError:
-            pass
         if self._acceptor is not None:
             self._acceptor.join(timeout=10.0)
         self._close_listeners()
         for client in self._take_clients():
             client.close()
-            if client.thread is not None and client.thread is not threading.current_thread():
-                client.thread.join(timeout=10.0)
+        with self._clients_lock:
+            threads = list(self._client_threads)
+        for thread in threads:  # also those of connections dropped earlier
+            if thread is not threading.current_thread():
+                thread.join(timeout=10.0)
         for instrument in self.instruments.values():
             instrument.shutdown()
-        self._wake_r.close()
-        self._wake_w.close()
+        for sock in (self._wake_r, self._wake_w):
+            if sock is not None:
+                sock.close()
         logger.info("simulated bench stopped")
 
     def __enter__(self) -> SimServer:
@@ -299,9 +305,6 @@ class SimServer:
         for client in self._take_clients():
             client.close()
         with self._bench_lock:
-            for instrument in self.instruments.values():
-                if isinstance(instrument, AnalyzerScpi):
-                    instrument._abort_running()
             self.bench.reset()
             for instrument in self.instruments.values():
                 instrument.power_on()
@@ -313,6 +316,7 @@ class SimServer:
     # --- accepting
     def _accept_loop(self) -> None:
         selector = selectors.DefaultSelector()
+        assert self._wake_r is not None
         selector.register(self._wake_r, selectors.EVENT_READ, None)
         for name, sock in self._listeners.items():
             selector.register(sock, selectors.EVENT_READ, name)
@@ -339,12 +343,15 @@ class SimServer:
                 sock.close()
                 return
             self._clients.add(client)
+            self._client_threads = [t for t in self._client_threads if t.is_alive()]
+            self._client_threads.append(client.thread)
         logger.debug("%s: connection from %s", name, address)
         client.thread.start()
 
     # --- serving one client
     def _serve(self, client: _Client) -> None:
         buffer = bytearray()
+        overlong = False  # the current line passed MAX_LINE_BYTES: drop it up to its end
         try:
             while not client.closed.is_set():
                 data = client.sock.recv(_RECV_BYTES)
@@ -358,11 +365,15 @@ class SimServer:
                         break
                     line = bytes(buffer[:end]).rstrip(b"\r")
                     del buffer[: end + 1]
+                    if overlong or len(line) > MAX_LINE_BYTES:
+                        overlong = False
+                        self.instruments[client.instrument].status.push(
+                            ScpiError(-223, f"line longer than {MAX_LINE_BYTES} bytes"))
+                        continue
                     self._handle_line(client, line)
                 if len(buffer) > MAX_LINE_BYTES:
-                    self.instruments[client.instrument].status.push(
-                        ScpiError(-223, f"line longer than {MAX_LINE_BYTES} bytes"))
                     buffer.clear()
+                    overlong = True
         except (OSError, InstrumentGone):
             pass
         except Exception:  # noqa: BLE001 - a server bug must not pass silently

@@ -4,6 +4,16 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
+from noisebench.acquisition import (
+    AcquisitionRequest,
+    AcquisitionSettings,
+    AveragingScale,
+    Detector,
+    MarkerKind,
+    SweepMode,
+    Trace,
+)
 from noisebench.drivers import (
     AnalyzerDriveNoiseSource,
     CallableNoiseSource,
@@ -24,16 +34,6 @@ from noisebench.drivers.protocol import (
     ieee_block,
 )
 from noisebench.drivers.transport import BlockError
-
-from noisebench.acquisition import (
-    AcquisitionRequest,
-    AcquisitionSettings,
-    AveragingScale,
-    Detector,
-    MarkerKind,
-    SweepMode,
-    Trace,
-)
 from noisebench.enr import EnrTable
 from noisebench.errors import (
     InputError,
@@ -175,6 +175,25 @@ def test_optional_settings_are_sent_only_when_requested():
     with expected_protocol(analyzer, dialogue) as sa:
         applied = sa.configure(request)
     assert applied.preamp is True and applied.vbw_hz == 1e4 and applied.ref_level_dbm == -20
+
+
+def test_profile_with_start_and_stop_only_sets_the_edges():
+    text = open(GENERIC.source).read()
+    for name in ("center_hz", "span_hz"):
+        block = text[text.index(f"[analyzer.settings.{name}]"):]
+        block = block[:block.index("\n\n") + 2]
+        text = text.replace(block, "")
+    text = text.replace('"center_hz", "span_hz",', '"start_hz", "stop_hz",')
+    edges = parse_profile(text, "edges.toml")
+    commands = [c for c in REQUEST_COMMANDS if not c.startswith("FREQ:")]
+    commands[2:2] = ["FREQ:STAR 995000000", "FREQ:STOP 1005000000"]
+    replies = readback()[2:]  # no centre/span queries: start and stop instead
+    dialogue = (connect() + sets(*commands) + [("FREQ:STAR?", "9.95E+08"),
+                                                ("FREQ:STOP?", "1.005E+09")]
+                + replies + [("SYST:ERR?", OK)])
+    with expected_protocol(lambda t: ScpiAnalyzer(t, edges), dialogue) as sa:
+        applied = sa.configure(REQUEST)
+    assert applied.center_hz == 1e9 and applied.span_hz == 10e6
 
 
 def test_request_the_profile_cannot_apply_is_refused_before_any_io():
@@ -340,7 +359,7 @@ def test_band_power_marker_reads_value_position_and_correction_state():
 def test_noise_drive_is_verified_and_switched_off_on_close():
     dialogue = (connect() + sets("OUTP:NOIS ON") + [("OUTP:NOIS?", "1")]
                 + sets("OUTP:NOIS OFF") + [("OUTP:NOIS?", "1")]
-                + [("OUTP:NOIS OFF", None)])
+                + [("OUTP:NOIS OFF", None), ("OUTP:NOIS?", "0")])  # close: off, confirmed
     with expected_protocol(analyzer, dialogue) as sa:
         sa.set_noise_drive(True)
         with pytest.raises(MeasurementError, match="reports True"):
@@ -371,7 +390,7 @@ def generator(transport, **kwargs):
 def test_generator_sets_and_reads_back_and_switches_off_on_close():
     dialogue = connect("gen,x,1,1") + [("OUTP?", "0")] + sets("FREQ 2000000000", "POW -30.0000") + [
         ("FREQ?", "2.0E+09"), ("POW?", "-30.00"), ("SYST:ERR?", OK)] + sets("OUTP ON") + [
-        ("OUTP?", "1"), ("OUTP OFF", None)]
+        ("OUTP?", "1"), ("OUTP OFF", None), ("OUTP?", "0")]
     with expected_protocol(generator, dialogue, max_level_dbm=0.0) as gen:
         with pytest.raises(SafetyError, match="no level"):
             gen.set_output(True)
@@ -402,7 +421,7 @@ def test_supply_source_sets_limit_and_voltage_before_the_output_and_verifies_the
     dialogue = supply_start() + supply_programmed() + sets("OUTP ON") + [
         ("OUTP?", "1"), ("MEAS:VOLT?", "27.9"), ("MEAS:CURR?", "0.0100")] + sets(
         "OUTP OFF") + [("OUTP?", "0")] + sets("OUTP OFF") + [("OUTP?", "0"),
-                                                              ("OUTP OFF", None)]
+                                                              ("OUTP OFF", None), ("OUTP?", "0")]
     with expected_protocol(ScpiSupply, dialogue, profile=GENERIC) as supply:
         source = SupplyNoiseSource(supply, current_limit_a=0.05, max_drive_v=32.0,
                                    settle_time_s=0.25, min_current_a=0.001,
@@ -517,10 +536,10 @@ class _StubAnalyzer:
     def acquire_trace(self):
         level = self.hot_dbm if self.source_ref[0].is_hot else self.cold_dbm
         settings = AcquisitionSettings(center_hz=1e9, span_hz=1e6, rbw_hz=1e4,
-                                       detector=Detector.RMS,
-                                       averaging_scale=AveragingScale.POWER, averages=1,
-                                       points=3)
-        return Trace(freq_hz=settings.frequencies_hz(), values=np.full(3, level),
+                                       detector=Detector.RMS, detector_samples=1.0,
+                                       averaging_scale=AveragingScale.POWER, averages=100,
+                                       points=201)
+        return Trace(freq_hz=settings.frequencies_hz(), values=np.full(201, level),
                      settings=settings)
 
 
@@ -533,3 +552,9 @@ def test_source_switching_check_measures_y_and_catches_a_stuck_source():
     with pytest.raises(MeasurementError, match="does not switch"):
         check_source_switching(_StubAnalyzer(ref, -90.0, -90.0), source)
     assert not source.is_hot
+    # 1 dB is 5 sigma for these traces (about 1e4 independent samples each) but not for a
+    # threshold raised to 2 dB
+    assert check_source_switching(_StubAnalyzer(ref, -89.0, -90.0), source) == \
+        pytest.approx(1.0)
+    with pytest.raises(MeasurementError):
+        check_source_switching(_StubAnalyzer(ref, -89.0, -90.0), source, min_y_db=2.0)

@@ -15,6 +15,8 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import signal, special, stats
 
 from noisebench.acquisition import (
@@ -531,3 +533,31 @@ def test_marker_refusals_and_variance_bound():
     g = special.gamma
     assert d.relative_u**2 == pytest.approx(g(1 + 2 / 10) ** 10 / g(1 + 1 / 10) ** 20 - 1,
                                             rel=1e-9)
+
+
+def test_single_point_trace_uses_its_averages():
+    # one point, N k samples: relative u = 1 / sqrt(N k) (reference.md §6c); no scatter check
+    s = AcquisitionSettings(center_hz=F0, span_hz=0.0, rbw_hz=1e5, detector=Detector.RMS,
+                            averaging_scale=POW, averages=50, points=1, detector_samples=8)
+    trace = Trace(freq_hz=[F0], values=[_dbm(D_TRUE * s.enbw_hz)], settings=s)
+    d = estimate_density(trace)
+    assert d.density_w_per_hz == pytest.approx(D_TRUE, rel=1e-12)
+    assert d.relative_u == pytest.approx(1 / math.sqrt(400), rel=1e-12)
+    assert d.scatter_ratio is None and d.bins_used == 1
+
+
+@given(offset_db=st.floats(-60, 60), scale=st.sampled_from([POW, LOG, VOLT]))
+@settings(max_examples=25, deadline=None)
+def test_estimate_scales_with_the_level(offset_db, scale):
+    # a level offset of the whole trace scales density and uncertainty, nothing else
+    trace = _LEVEL_TRACES[scale]
+    shifted = trace.model_copy(update={"values": trace.values + offset_db})
+    a, b = estimate_density(trace), estimate_density(shifted)
+    factor = 10 ** (offset_db / 10)
+    assert b.density_w_per_hz == pytest.approx(a.density_w_per_hz * factor, rel=1e-9)
+    assert b.relative_u == pytest.approx(a.relative_u, rel=1e-9)
+    assert b.excluded_freq_hz == a.excluded_freq_hz and b.bins_used == a.bins_used
+
+
+_LEVEL_TRACES = {sc: synthetic_traces(seed=30, scale=sc, detector=Detector.SAMPLE)[0]
+                 for sc in (POW, LOG, VOLT)}

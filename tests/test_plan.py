@@ -94,7 +94,11 @@ def test_peak_detector_refused_for_noise():
 
 
 def test_gain_measure_needs_a_generator_and_y_factor_needs_a_source():
-    data = _base(method="gain", gain={"source": "measure"})
+    (line,) = _problems(_base(method="gain", gain={"source": "measure"}))
+    assert line == ('gain.max_gain_db: is required with source = "measure" (it sets the '
+                    "generator level) (give the DUT's datasheet value)")
+    data = _base(method="gain", gain={"source": "measure", "max_gain_db": 30.0,
+                                      "dut_p1db_out_dbm": 10.0})
     assert _problems(data) == [
         'bench.generator: gain source "measure" needs a generator (or use source = "file" '
         '/ "constant")']

@@ -9,6 +9,8 @@ from pathlib import Path
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+
+from noisebench.acquisition import AveragingScale, Detector, SweepMode
 from noisebench.drivers.profile import (
     BoolSetting,
     EnumSetting,
@@ -22,8 +24,6 @@ from noisebench.drivers.profile import (
     parse_profile,
     safe_text,
 )
-
-from noisebench.acquisition import AveragingScale, Detector, SweepMode
 from noisebench.errors import CommunicationError, InputError
 
 GENERIC_TOML = (Path(__file__).resolve().parents[1] / "drivers" / "profiles"

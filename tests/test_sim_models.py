@@ -9,11 +9,6 @@ import math
 
 import numpy as np
 import pytest
-from noisebench.sims.analyzer import round_125, round_step
-from noisebench.sims.bench import Path, SimulatedBench
-from noisebench.sims.clock import SimClock
-from noisebench.sims.models import compression_gain_factor, dbm_to_w, mismatch_factor
-from noisebench.sims.scenario import available_scenarios, load_scenario
 from scipy.constants import k as K_BOLTZMANN
 from scipy.signal import get_window
 
@@ -27,6 +22,11 @@ from noisebench.acquisition import (
 from noisebench.errors import InputError
 from noisebench.filters import FilterKind, RbwFilter
 from noisebench.instruments import Analyzer, Bench, Generator, NoiseSource
+from noisebench.sims.analyzer import round_125, round_step
+from noisebench.sims.bench import Path, SimulatedBench
+from noisebench.sims.clock import SimClock
+from noisebench.sims.models import compression_gain_factor, dbm_to_w, mismatch_factor
+from noisebench.sims.scenario import available_scenarios, load_scenario
 
 T0 = 290.0
 
@@ -74,6 +74,21 @@ def test_unknown_scenario_and_bad_override_name_the_field():
     with pytest.raises(InputError) as err:
         load_scenario("demo-lna", dut__gain_db=[1.0, 2.0])
     assert "dut.gain_db" in str(err.value)
+
+
+def test_scenario_loads_from_a_path(tmp_path):
+    from noisebench.sims.scenario import scenario_dir
+
+    text = (scenario_dir() / "attenuator-6db.toml").read_text(encoding="utf-8")
+    path = tmp_path / "my-bench.toml"
+    path.write_text(text.replace('name = "attenuator-6db"', 'name = "my-bench"'),
+                    encoding="utf-8")
+    bench = SimulatedBench.from_scenario(str(path), seed=2)
+    assert bench.scenario.name == "my-bench" and bench.seed == 2
+    path.write_text("name = [", encoding="utf-8")
+    with pytest.raises(InputError) as err:
+        load_scenario(path)
+    assert "my-bench.toml" in str(err.value)
 
 
 def test_overrides_accept_nested_and_double_underscore_forms():
@@ -327,6 +342,21 @@ def test_mismatch_factor_limits():
     assert m_db.min() == pytest.approx(-20 * np.log10(1 + 0.02), abs=1e-4)
 
 
+def test_source_reflection_scales_the_excess_noise_into_a_mismatched_analyzer():
+    bench = clean_bench(noise_source__hot_reflection={"magnitude": 0.2, "angle_deg": 0.0},
+                        analyzer__input_reflection={"magnitude": 0.3, "angle_deg": 0.0})
+    bench.analyzer.configure(request(attenuation_db=0.0))
+    t = bench.truth(2e9)
+    amb = bench.scenario.ambient_k
+    # delivered excess relative to a matched interface: 1 / |1 - Gs Gl|^2, here 1 / 0.94^2,
+    # inside the limits 1 / (1 -/+ |Gs||Gl|)^2 (reference.md §9)
+    expected = amb + (t["hot_k"][0] - amb) / (1 - 0.2 * 0.3) ** 2
+    assert t["density_through_hot_w_per_hz"][0] == pytest.approx(K_BOLTZMANN * expected)
+    cold = bench.truth(2e9)["density_through_cold_w_per_hz"][0]
+    # the cold source is matched here and 0.5 K above ambient: almost no mismatch effect
+    assert cold == pytest.approx(K_BOLTZMANN * 296.5, rel=1e-4)
+
+
 def test_compression_gain_factor_is_1_db_at_p1db():
     p1db = 1e-2
     # the input that drives the output to P1dB gives an uncompressed output 1 dB higher
@@ -425,20 +455,32 @@ def test_stuck_source_never_switches():
     assert not bench.noise_source.is_hot
 
 
+def _tone_tolerance_db(noise_w_per_hz: float, enbw_hz: float, tone_w: float,
+                      looks: int = 1) -> float:
+    """5 sigma of a band-power reading of a tone: the tone x noise cross term scatters the
+    reading by sqrt(2 N / P) relative (N the noise power in one ENBW, random relative phase)."""
+    c_db = 10 / math.log(10)
+    return 5 * c_db * math.sqrt(2 * noise_w_per_hz * enbw_hz / tone_w / looks)
+
+
 def test_generator_tone_appears_at_the_path_gain():
     bench = clean_bench()
     gen = bench.generator
-    gen.set_cw(2e9, -60.0)
+    gen.set_cw(2e9, -50.0)  # far below the mixer's and the DUT's compression
     gen.set_output(True)
-    bench.analyzer.configure(request(span_hz=200e3, rbw_hz=10e3, points=201,
-                                     attenuation_db=10.0))
-    gain_db = bench.truth(2e9)["gain_db"][0]
+    s = bench.analyzer.configure(request(span_hz=200e3, rbw_hz=10e3, points=201,
+                                         attenuation_db=10.0))
+    truth = bench.truth(2e9)
+    gain_db = truth["gain_db"][0]
     reading = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3)
-    # band power integrates the tone: sum P_i * spacing / ENBW = P_tone; noise adds ~1e-4
-    assert reading.value_db == pytest.approx(-60.0 + gain_db, abs=0.02)
+    # band power integrates the tone: sum P_i * spacing / ENBW = P_tone
+    tol = _tone_tolerance_db(truth["displayed_dut_cold_w_per_hz"][0], s.enbw_hz,
+                             1e-8 * 10 ** (gain_db / 10))
+    assert reading.value_db == pytest.approx(-50.0 + gain_db, abs=tol)
     bench.set_path(Path.THROUGH)
     reading = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3)
-    assert reading.value_db == pytest.approx(-60.0, abs=0.02)
+    tol = _tone_tolerance_db(truth["displayed_through_cold_w_per_hz"][0], s.enbw_hz, 1e-8)
+    assert reading.value_db == pytest.approx(-50.0, abs=tol)
     with pytest.raises(InputError):
         gen.set_cw(20e9, 0.0)
     with pytest.raises(InputError):
@@ -498,15 +540,25 @@ def test_input_power_above_the_rating_is_recorded():
 
 def test_interference_lines_are_present_in_every_path():
     bench = SimulatedBench.from_scenario("demo-lna", seed=0)
-    bench.analyzer.configure(request(center_hz=1.80025e9, span_hz=2e6, rbw_hz=30e3, points=401,
-                                     attenuation_db=10.0))
+    f_line, band = 1.80025e9, 150e3
+    s = bench.analyzer.configure(request(center_hz=f_line, span_hz=2e6, rbw_hz=30e3,
+                                         points=401, averages=100, attenuation_db=10.0))
+    sc = bench.scenario
+    # the -80 dBm line, its mains sidebands (-30 dBc at +/-50 Hz, -36 dBc at +/-100 Hz), the
+    # analyzer's level error
+    line_w = 1e-11 * (1 + 2 * 1e-3 + 2 * 1e-3 / 4) * 10 ** (sc.analyzer.amplitude_error_db / 10)
     for path in Path:
         bench.set_path(path)
         trace = bench.analyzer.acquire_trace()
-        peak = trace.freq_hz[np.argmax(trace.values)]
-        assert abs(peak - 1.80025e9) <= 2 * 2e6 / 400
-        # -80 dBm line (+0.15 dB level error, mains sidebands -30 dBc add 0.004 dB)
-        assert trace.values.max() == pytest.approx(-80.0 + 0.15, abs=0.3)
+        assert abs(trace.freq_hz[np.argmax(trace.values)] - f_line) <= 2 * 2e6 / 400
+        reading = bench.analyzer.read_marker(f_line, MarkerKind.BAND_POWER, band_hz=band)
+        density = bench.truth(f_line)[f"displayed_{path.value}_cold_w_per_hz"][0]
+        line_read = dbm_to_w(reading.value_db) - density * band  # remove the band's noise
+        # scatter: the noise part over band / B_stat cells x 100 sweeps, and the cross term
+        cells = band / s.rbw_filter.stat_bw_hz(s.rbw_hz) * s.averages
+        sigma = math.hypot(density * band / math.sqrt(cells),
+                           math.sqrt(2 * density * s.enbw_hz * line_w / s.averages))
+        assert line_read == pytest.approx(line_w, abs=5 * sigma)
 
 
 def test_noise_density_marker_is_corrected_only_for_power_averaging():

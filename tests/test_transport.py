@@ -10,6 +10,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
+from pyvisa import constants
+
 from noisebench.drivers.protocol import ieee_block
 from noisebench.drivers.transport import (
     BlockError,
@@ -20,8 +22,6 @@ from noisebench.drivers.transport import (
     seconds_to_ms,
     split_definite_block,
 )
-from pyvisa import constants
-
 from noisebench.errors import CommunicationError, InputError, InstrumentTimeout
 
 CLOSE = object()  # handler reply: close the connection instead of answering
@@ -40,6 +40,7 @@ class ScriptedPeer:
         self._threads: list[threading.Thread] = []
         self._socks: list[socket.socket] = []
         self.port = self._listener.getsockname()[1]
+        self._listener.settimeout(0.05)
         thread = threading.Thread(target=self._accept, daemon=True)
         thread.start()
         self._threads.append(thread)
@@ -49,7 +50,6 @@ class ScriptedPeer:
         return f"TCPIP0::127.0.0.1::{self.port}::SOCKET"
 
     def _accept(self) -> None:
-        self._listener.settimeout(0.05)
         while not self._stop.is_set():
             try:
                 conn, _ = self._listener.accept()

@@ -1,0 +1,303 @@
+"""The command line: exit codes, one-line errors, demo, estimate, render, validate, info, and one
+plan run through pyvisa-py against the SCPI simulator."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import pytest
+
+from noisebench import cli
+from noisebench.results import load_run
+
+SIM_PLAN = """\
+method = "{method}"
+[dut]
+id = "CLI-TEST"
+[bench]
+analyzer = {{ resource = "sim://demo-lna?seed=2", compression_dbm = -3.0 }}
+[acquisition]
+attenuation_db = 0
+target_u_nf_db = 0.15
+[sweep]
+freqs_hz = [1e9, 2e9, 3e9]
+[expect]
+dut_gain_db = 20.0
+[output]
+folder = "runs"
+"""
+
+
+def _write(path: Path, text: str) -> Path:
+    path.write_text(textwrap.dedent(text), encoding="utf-8")
+    return path
+
+
+def _run(argv, capsys):
+    code = cli.main([str(a) for a in argv])
+    captured = capsys.readouterr()
+    return code, captured.out, captured.err
+
+
+def _error_lines(err: str) -> list[str]:
+    return [line for line in err.splitlines() if line.startswith("noisebench: error:")]
+
+
+# --------------------------------------------------------------------------- errors
+
+
+def test_bad_plan_gives_one_line_per_problem_and_exit_2(tmp_path, capsys):
+    plan = _write(tmp_path / "bad.toml", """\
+        method = "y_factor"
+        [bench]
+        analyzer = "sim://demo-lna"
+        [acquisition]
+        rbw_hz = -1
+        detector = "peak"
+        [sweep]
+        freqs_hz = [1e9]
+        """)
+    code, out, err = _run(["run", plan], capsys)
+    assert code == cli.EXIT_INPUT
+    lines = _error_lines(err)
+    assert len(lines) == 2
+    assert any("acquisition.rbw_hz: must be > 0.0 (got -1)" in line for line in lines)
+    assert any("acquisition.detector:" in line for line in lines)
+    assert "Traceback" not in err and out == ""
+
+
+def test_missing_file_is_one_line(tmp_path, capsys):
+    code, _, err = _run(["run", tmp_path / "nope.toml"], capsys)
+    assert code == cli.EXIT_INPUT
+    (line,) = err.strip().splitlines()
+    assert line.startswith("noisebench: error: No such file or directory")
+
+
+def test_usage_error_exit_2(capsys):
+    code, _, err = _run(["frobnicate"], capsys)
+    assert code == 2 and "invalid choice" in err
+
+
+def test_keyboard_interrupt_exit_130(monkeypatch, capsys, tmp_path):
+    def interrupted(args, out):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(cli, "cmd_validate", interrupted)
+    code, _, err = _run(["validate", tmp_path / "x.toml"], capsys)
+    assert code == cli.EXIT_INTERRUPTED
+    assert err.strip() == "noisebench: interrupted"
+
+
+def test_unexpected_exception_is_still_one_line(monkeypatch, capsys, tmp_path):
+    def broken(args, out):
+        raise RuntimeError("boom\nsecond line")
+
+    monkeypatch.setattr(cli, "cmd_validate", broken)
+    code, _, err = _run(["validate", tmp_path / "x.toml"], capsys)
+    assert code == cli.EXIT_FAILED
+    (line,) = err.strip().splitlines()
+    assert line.startswith("noisebench: error: unexpected RuntimeError: boom second line")
+
+
+def test_safety_refusal_exit_3(tmp_path, capsys):
+    plan = _write(tmp_path / "p.toml", SIM_PLAN.format(method="y_factor") + """
+[safety]
+dut_max_gain_db = 60.0
+dut_bandwidth_hz = 20e9
+""")
+    code, _, err = _run(["-q", "run", plan], capsys)
+    assert code == cli.EXIT_SAFETY
+    (line,) = _error_lines(err)
+    assert "below its compression" in line
+
+
+def test_console_script_never_shows_a_traceback(tmp_path):
+    plan = _write(tmp_path / "bad.toml", 'method = "gain"\n')
+    proc = subprocess.run([sys.executable, "-m", "noisebench.cli", "validate", str(plan)],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == cli.EXIT_INPUT
+    assert "Traceback" not in proc.stderr
+    assert "bad.toml: bench: is required" in proc.stderr
+
+
+def test_help_lists_commands_and_cautions(capsys):
+    code, out, _ = _run(["--help"], capsys)
+    assert code == 0
+    for command in ("run", "demo", "estimate", "serve", "render", "validate", "info"):
+        assert command in out
+    assert "Safety cautions" in out and "compression" in out
+
+
+# --------------------------------------------------------------------------- commands
+
+
+def test_validate_plan_and_enr_table(tmp_path, capsys):
+    plan = _write(tmp_path / "p.toml", SIM_PLAN.format(method="y_factor"))
+    code, out, _ = _run(["validate", plan], capsys)
+    assert code == 0 and out.startswith("ok: y-factor plan p.toml, 3 points")
+    good = _write(tmp_path / "enr.csv", "freq_hz,enr_db\n1e9,15.1\n2e9,15.0\n")
+    code, out, _ = _run(["validate", good], capsys)
+    assert code == 0 and "2 values, 1e+09-2e+09 Hz" in out
+    bad = _write(tmp_path / "bad.csv", "freq_hz,enr_db\n2e9,15.1\n1e9,15.0\n")
+    code, _, err = _run(["validate", bad], capsys)
+    assert code == cli.EXIT_INPUT
+    assert "bad.csv:" in err and "not sorted ascending" in err
+
+
+def test_estimate_without_instruments(tmp_path, capsys):
+    plan = _write(tmp_path / "p.toml", SIM_PLAN.format(method="gain") +
+                  '[gain]\nsource = "constant"\nvalue_db = 25.0\n')
+    code, out, _ = _run(["estimate", plan], capsys)
+    assert code == 0
+    assert "no instrument touched" in out
+    assert "3 points: measurement" in out
+    real = Path(__file__).parents[1] / "examples" / "gain_real_bench.toml"
+    code, out, _ = _run(["estimate", real], capsys)
+    assert code == 0 and "13 points" in out
+
+
+def test_estimate_on_instruments_needs_priors(tmp_path, capsys):
+    (tmp_path / "enr.csv").write_text("freq_hz,enr_db\n1e8,15\n1e10,15\n", encoding="utf-8")
+    plan = _write(tmp_path / "p.toml", """\
+        method = "y_factor"
+        [bench]
+        analyzer = "TCPIP0::127.0.0.1::5025::SOCKET"
+        [enr]
+        table = "enr.csv"
+        [sweep]
+        freqs_hz = [1e9]
+        """)
+    code, _, err = _run(["estimate", plan], capsys)
+    assert code == cli.EXIT_INPUT
+    assert "expect.dut_nf_db: is needed to forecast" in err
+
+
+class _CtrlCAfterFirstPoint:
+    """A progress display whose operator presses Ctrl-C once the first point is shown."""
+
+    def start(self, total_points, *, done_points=0, label=""):
+        pass
+
+    def point_done(self, point):
+        raise KeyboardInterrupt
+
+    def stop(self):
+        pass
+
+
+def test_run_writes_results_and_resume_continues(tmp_path, capsys, monkeypatch):
+    from noisebench import progress
+
+    plan = _write(tmp_path / "p.toml", SIM_PLAN.format(method="y_factor"))
+    folder = tmp_path / "run1"
+    monkeypatch.setattr(progress, "make_progress", _CtrlCAfterFirstPoint)
+    code, out, err = _run(["-q", "run", plan, "--out", folder], capsys)
+    assert code == cli.EXIT_INTERRUPTED
+    assert f"--resume {folder}" in err
+    assert len(load_run(folder).points) == 1
+    monkeypatch.undo()
+    code, out, _ = _run(["-q", "run", plan, "--resume", folder], capsys)
+    assert code == 0, out
+    record = load_run(folder)
+    assert record.info.status == "complete" and len(record.points) == 3
+    for name in ("results.json", "results.csv", "report.html"):
+        assert (folder / name).is_file()
+    assert list((folder / "plots").glob("*.png"))
+
+
+def test_render_rewrites_report(tmp_path, capsys):
+    plan = _write(tmp_path / "p.toml", SIM_PLAN.format(method="gain") +
+                  '[gain]\nsource = "constant"\nvalue_db = 25.0\n')
+    folder = tmp_path / "run"
+    assert _run(["-q", "run", plan, "--out", folder], capsys)[0] == 0
+    (folder / "report.html").unlink()
+    code, out, _ = _run(["render", folder, "--no-plots"], capsys)
+    assert code == 0 and (folder / "report.html").is_file()
+    assert "wrote" in out
+    code, _, err = _run(["render", tmp_path / "empty"], capsys)
+    assert code == cli.EXIT_INPUT and "is not a folder" in err
+
+
+def test_demo_end_to_end(tmp_path, capsys):
+    out_dir = tmp_path / "demo"
+    code, out, _ = _run(["-q", "demo", "--out", out_dir, "--points", "4"], capsys)
+    assert code == 0
+    for method in ("y_factor", "gain"):
+        record = load_run(out_dir / method)
+        assert record.info.status == "complete"
+        assert len(record.points) == 4
+        assert record.budgets and record.verdict is not None
+        assert (out_dir / method / "report.html").is_file()
+        assert (out_dir / f"demo_{method}.toml").is_file()
+    assert out.count("vs truth") == 2
+    assert (out_dir / "enr.csv").is_file() and (out_dir / "input_cable.csv").is_file()
+
+
+def test_demo_default_is_at_least_51_points():
+    parser = cli.build_parser()
+    assert parser.parse_args(["demo"]).points >= 51
+
+
+def test_info_never_fails(capsys):
+    code, out, _ = _run(["info", "--no-scan"], capsys)
+    assert code == 0
+    assert "pyvisa" in out and "VISA back ends" in out and "demo-lna" in out
+
+
+def test_serve_passes_its_options_to_the_simulator(capsys):
+    code, out, _ = _run(["serve", "--help"], capsys)
+    assert code == 0
+    assert "--scenario" in out
+
+
+# --------------------------------------------------------------------------- SCPI simulator
+
+
+def test_plan_runs_against_the_scpi_simulator_through_pyvisa(sim_server, tmp_path, capsys):
+    sim_server.bench.enr_table.to_csv(tmp_path / "enr.csv")
+    plan = _write(tmp_path / "scpi.toml", f"""\
+        method = "y_factor"
+        [dut]
+        id = "SCPI-TEST"
+        [bench]
+        noise_source = {{ drive = "analyzer", settle_time_s = 0.02 }}
+        [bench.analyzer]
+        resource = "{sim_server.resource('analyzer')}"
+        profile = "generic"
+        compression_dbm = -3.0
+        [acquisition]
+        attenuation_db = 0
+        target_u_nf_db = 0.2
+        time_limit_s = 10
+        [sweep]
+        freqs_hz = [1.5e9, 2.5e9]
+        [enr]
+        table = "enr.csv"
+        [corrections]
+        source_temperature_k = 296.5
+        [expect]
+        dut_gain_db = 20.0
+        [output]
+        folder = "runs"
+        plots = false
+        """)
+    folder = tmp_path / "run"
+    code, out, err = _run(["-q", "run", plan, "--out", folder], capsys)
+    assert code == 0, err
+    record = load_run(folder)
+    assert record.info.status == "complete"
+    assert record.info.identities["analyzer"].startswith("noisebench,simulated analyzer")
+    truth = sim_server.bench.truth([p.freq_hz for p in record.points])
+    for point, nf, loss in zip(record.points, truth["nf_db"], truth["input_loss_db"],
+                               strict=True):
+        # no input-loss correction in this plan: the reading is the DUT plus its input cable;
+        # 0.2 dB statistical target plus ENR and mismatch effects of the demo bench
+        assert point.nf_db == pytest.approx(nf + loss, abs=0.5)
+    commands = [line for who, line in sim_server.command_log if who == "analyzer"]
+    assert any(line.upper().startswith("SIM") for line in commands)  # the paths were moved
+    assert not sim_server.bench.noise_source.is_hot
+    json.loads((folder / "results.json").read_text(encoding="utf-8"))
