@@ -87,7 +87,7 @@ class ProfileError(InputError):
 
 
 def _check_command(text: str, what: str) -> str:
-    if not text or not _PRINTABLE.match(text):
+    if not text or not _PRINTABLE.fullmatch(text):
         raise ValueError(f"{what} must be one line of printable ASCII (got {text!r})")
     return text
 
@@ -109,7 +109,7 @@ def _check_template(template: str, sample: Any) -> str:
         raise ValueError(f"set template {template!r} must contain exactly one '{{value}}' field "
                          "(e.g. 'FREQ:CENT {value:.12g}')")
     spec = fields[0][1]
-    if not _FORMAT_SPEC.match(spec):
+    if not _FORMAT_SPEC.fullmatch(spec):
         raise ValueError(f"format spec {spec!r} in {template!r} is not allowed (use digits, "
                          "precision and a type such as '.12g', '.3f' or 'd')")
     try:
@@ -128,7 +128,7 @@ def _check_query(query: str) -> str:
 
 
 def _check_token(token: str, what: str) -> str:
-    if not _TOKEN.match(token):
+    if not _TOKEN.fullmatch(token):
         raise ValueError(f"{what} {token!r} must be letters, digits and '_ . + - ,' only")
     return token
 
@@ -137,7 +137,7 @@ def safe_text(field: str, value: str, *, max_length: int = 32) -> str:
     """Return ``value`` if it is safe inside a SCPI string argument, else raise InputError."""
     if not isinstance(value, str):
         raise InputError(field, f"must be text (got {type(value).__name__})", value=value)
-    if len(value) > max_length or not _TEXT.match(value):
+    if len(value) > max_length or not _TEXT.fullmatch(value):
         raise InputError(field, f"{value!r} cannot be sent to the instrument",
                          value=value,
                          fix=f"use at most {max_length} letters, digits, spaces or '_ . + - /' "
@@ -779,7 +779,7 @@ def load_profile(profile: str | Path | InstrumentProfile = "generic") -> Instrum
         return profile
     path = Path(profile)
     if not path.is_file():
-        packaged = _packaged(str(profile)) if re.match(r"^[A-Za-z0-9_\-]+$", str(profile)) \
+        packaged = _packaged(str(profile)) if re.fullmatch(r"[A-Za-z0-9_\-]+", str(profile)) \
             else None
         if packaged is None:
             raise InputError("profile", f"no profile file or packaged profile {str(profile)!r}",

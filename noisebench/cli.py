@@ -85,6 +85,13 @@ def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
         print(f"interrupted: continue with `noisebench run {args.plan} --resume {folder}`",
               file=sys.stderr)
         return EXIT_INTERRUPTED
+    skipped = record.info.notes.get("skipped_points") or []
+    if skipped:
+        first = skipped[0]
+        print(f"noisebench: error: {len(skipped)} point(s) not measured, first at "
+              f"{first['freq_hz']:.6g} Hz ({first['stage']}): {_one_line(first['reason'])}",
+              file=sys.stderr)
+        return EXIT_MEASUREMENT
     return EXIT_OK
 
 

@@ -336,14 +336,18 @@ class PlanRunner:
 
     def __call__(self, plan: Any = None, *, freqs_hz: Sequence[float] | float | None = None,
                  dut_id: str | None = None) -> Any:
+        from noisebench.errors import NoisebenchError
         from noisebench.production import apply_budgets_and_verdict, save_record
         from noisebench.sequencer import Sequencer
 
-        chosen = self._plan(plan, freqs_hz)
+        try:  # a plan or bench that cannot be used fails the test with one clear message
+            chosen = self._plan(plan, freqs_hz)
+            session = self.state.session_for(chosen.bench)
+        except (NoisebenchError, OSError) as exc:
+            _fail_setup(exc)
         if dut_id is not None:
             chosen = chosen.model_copy(update={"dut": chosen.dut.model_copy(
                 update={"id": dut_id})})
-        session = self.state.session_for(chosen.bench)
         folder = self._folder()
         seq = Sequencer(chosen, session, calibrations=self.state.calibrations_for(chosen.bench))
         try:

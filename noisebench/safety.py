@@ -46,8 +46,11 @@ CAUTIONS: tuple[str, ...] = (
     "an RF port; allow warm-up and settling.",
     "ESD: wrist strap and grounded bench; discharge cables before connecting; GaAs, GaN and "
     "SiGe LNAs are sensitive. Sequence FET bias (gate first on, drain first off).",
-    "Check the DUT for oscillation with a wide span first; shield against interference; "
-    "torque and clean connectors; terminate the analyzer input when idle.",
+    "Power the DUT from a current-limited supply; check it for oscillation with a wide span "
+    "first; shield against interference; torque and clean connectors; terminate the "
+    "analyzer input when idle.",
+    "These cautions do not replace the instrument manuals, local codes and licensed "
+    "practice: where they differ, those win.",
 )
 
 

@@ -243,6 +243,9 @@ class Sequencer:
         self._applied: dict[int, AcquisitionSettings] = {}
         self._measured_gain: dict[float, tuple[float, float]] = {}
         self._prior: dict[str, int] = {}  # averages per reading the last group needed
+        self._unmeasurable: set[int] = set()
+        self._rate_s: float | None = None  # instrument seconds per trace average, last group
+        self.skipped: list[dict[str, Any]] = []  # points the physics refused, with the reason
         self.calibrations_measured = 0
 
     # ----------------------------------------------------------------- entry points
@@ -355,7 +358,13 @@ class Sequencer:
             self._measure_gain(groups, writer)
         self.session.connect(Connection.DUT)
         for group in groups:
-            outcome = self._with_context(group, lambda g=group: self._measure_group(g))
+            if group.index in self._unmeasurable:
+                continue
+            try:
+                outcome = self._with_context(group, lambda g=group: self._measure_group(g))
+            except MeasurementError as exc:
+                self._skip(group, exc, "measurement", writer)
+                continue
             self._applied[group.index] = outcome.settings  # type: ignore[assignment]
             writer.update_info(applied_settings=self._applied_dumps())
             for point in outcome.points:
@@ -439,10 +448,23 @@ class Sequencer:
             Connection.THROUGH
         self.session.connect(connection)
         for group in needed:
-            entry = self._with_context(group, lambda g=group: self._calibrate_group(g, kind))
+            try:
+                entry = self._with_context(group, lambda g=group: self._calibrate_group(g, kind))
+            except MeasurementError as exc:
+                self._set_source_cold(TimeBudget(0.0))
+                self._skip(group, exc, "calibration", writer)
+                continue
             self.calibrations.add(entry)
             self.calibrations_measured += 1
         writer.save_calibration(self.calibrations.to_dict())
+
+    def _skip(self, group: PointGroup, exc: MeasurementError, stage: str, writer) -> None:
+        """The physics refuses this group's points: record why and go on with the others."""
+        self._unmeasurable.add(group.index)
+        for f in group.freqs_hz:
+            self.skipped.append({"freq_hz": f, "stage": stage, "reason": exc.message})
+        logger.warning("%s not measured (%s): %s", group.describe(), stage, exc.message)
+        writer.update_info(notes={**writer.info.notes, "skipped_points": self.skipped})
 
     def _calibrate_group(self, group: PointGroup, kind: CalibrationKind) -> CalibrationEntry:
         policy = group.policy
@@ -452,7 +474,8 @@ class Sequencer:
         connection = Connection.TERMINATION if kind is CalibrationKind.FLOOR else \
             Connection.THROUGH
         target = self.plan.calibration.target_ratio * policy.target_u_nf_db
-        per_trace = self._first_round_averages(policy, len(names), self._prior.get(kind.value))
+        per_trace = self._first_round_averages(policy, len(names), self._prior.get(kind.value),
+                                               budget)
         stopped_by = "target"
         while True:
             self._round(group, readings, per_trace, budget, connection)
@@ -470,6 +493,7 @@ class Sequencer:
                                stopped_by.replace("_", " "), done, u_worst, target)
                 break
         self._set_source_cold(budget)
+        self._rate_s = budget.seconds_per_average(self._rate_s or 0.0)
         if stopped_by == "target" and math.isfinite(u_worst):
             done = readings.averages(names[0])
             self._prior[kind.value] = max(1, math.ceil(done * (u_worst / target) ** 2))
@@ -558,15 +582,21 @@ class Sequencer:
     # ----------------------------------------------------------------- rounds
 
     def _first_round_averages(self, policy: AcquisitionPolicy, states: int,
-                              prior: int | None = None) -> int:
-        """Per-trace averages of a group's first round: ``min_averages``, or half of what the
-        previous group needed (neighbouring frequencies need similar averaging)."""
+                              prior: int | None = None, budget: TimeBudget | None = None) -> int:
+        """Per-trace averages of a group's first round: ``min_averages``, or a share of what
+        the previous group needed (neighbouring frequencies need similar averaging), within
+        the group's time budget at the previous group's rate."""
         traces_per_state = 2 if states == 2 else 1
         total = policy.min_averages
         if prior:
             fraction = PILOT_FRACTION_SWITCHED if states == 2 else PILOT_FRACTION
             total = max(total, min(int(fraction * prior), policy.max_averages))
-        return max(1, math.ceil(total / traces_per_state))
+        per_trace = max(1, math.ceil(total / traces_per_state))
+        if budget is not None and self._rate_s is not None and per_trace > 1:
+            settle = self._round_settle_s(states)
+            fits = budget.averages_that_fit(traces_per_state * states, settle, self._rate_s)
+            per_trace = max(1, min(per_trace, fits))
+        return per_trace
 
     def _next_round_averages(self, policy: AcquisitionPolicy, done: int, need: int | None,
                              states: int, budget: TimeBudget) -> int:
@@ -578,9 +608,18 @@ class Sequencer:
         if want <= 0:
             return 0
         per_trace = max(1, math.ceil(want / traces_per_state))
-        settle = self._settle_s() * (3 if states == 2 else 0)  # 2 switches + final cold
+        settle = self._round_settle_s(states)
         fits = budget.averages_that_fit(traces_per_state * states, settle, fallback_s=0.0)
         return min(per_trace, fits)
+
+    def _round_settle_s(self, states: int) -> float:
+        """Settling a hot-cold-cold-hot round costs: to hot (if cold now), hot to cold, cold to
+        hot, and the final switch to cold should this be the last round."""
+        if states != 2:
+            return 0.0
+        source = self.session.bench.noise_source
+        switches = 3 + (0 if source is not None and source.is_hot else 1)
+        return switches * self._settle_s()
 
     def _settle_s(self) -> float:
         source = self.session.bench.noise_source
@@ -618,7 +657,8 @@ class Sequencer:
             look = self._acquire(group, self._first_round_averages(policy, 2), budget)
             readings.add("cold", look)
             self._guard().observe_cold([d.density_w_per_hz for d in look])
-        per_trace = self._first_round_averages(policy, len(names), self._prior.get("dut"))
+        per_trace = self._first_round_averages(policy, len(names), self._prior.get("dut"),
+                                               budget)
         while True:
             checks += self._round(group, readings, per_trace, budget, Connection.DUT)
             points = [self._point(f, readings, calibration) for f in group.freqs_hz]
@@ -633,6 +673,7 @@ class Sequencer:
                         "max_averages" if done >= policy.max_averages else "time_limit")
                 break
         self._set_source_cold(budget)
+        self._rate_s = budget.seconds_per_average(self._rate_s or 0.0)
         prior = self._averages_at_target(points, readings.averages(names[0]),
                                          policy.target_u_nf_db)
         if prior is not None:

@@ -88,6 +88,7 @@ __all__ = [
     "UnitResult",
     "UnitVariation",
     "apply_simulated_unit",
+    "install_scenario_dut",
     "parse_unit_line",
     "units_from_file",
     "units_from_lines",
@@ -325,14 +326,20 @@ def apply_simulated_unit(sim: Any, base_scenario: Any, offsets: UnitOffsets) -> 
     data = base_scenario.model_dump()
     data["dut"] = {**data["dut"], **unit_dut_table(base_scenario.dut, offsets)}
     scenario = scenario_from_dict(data, source=f"unit {offsets.serial}")
+    install_scenario_dut(sim, scenario)
+    logger.debug("simulated unit %s installed: %s", offsets.serial, offsets)
+    return scenario
+
+
+def install_scenario_dut(sim: Any, scenario: Any) -> None:
+    """Make the running simulator's DUT the one of ``scenario`` (nothing else changes)."""
     replace = getattr(sim, "replace_dut", None)
     if callable(replace):
         replace(scenario.dut)
-    else:
-        sim.dut_model = type(sim)(scenario, seed=sim.seed).dut_model
-        sim.scenario = scenario
-    logger.debug("simulated unit %s installed: %s", offsets.serial, offsets)
-    return scenario
+        return
+    # the model is built exactly as the simulator builds it, from a throw-away bench
+    sim.dut_model = type(sim)(scenario, seed=sim.seed).dut_model
+    sim.scenario = scenario
 
 
 # =========================================================================== settings, results
@@ -612,6 +619,7 @@ class Station:
                 self.db.close()
             raise
         self._base_scenario = getattr(self.session.sim, "scenario", None)
+        self._units_installed = False
         self._attempts: dict[str, int] = {}
 
     # ----------------------------------------------------------------- set-up
@@ -640,9 +648,13 @@ class Station:
         return self.session.sim is not None
 
     def close(self) -> None:
-        """Safe state; close the bench (when the station opened it) and the database."""
+        """Safe state; the simulator's nominal DUT back; close the bench (when the station
+        opened it) and the database."""
         try:
             self.session.bench.safe_state()
+            if self._units_installed:
+                install_scenario_dut(self.session.sim, self._base_scenario)
+                self._units_installed = False
         finally:
             if self._own_session:
                 self.session.close()
@@ -757,6 +769,7 @@ class Station:
             return None
         offsets = variation.offsets(unit.serial)
         apply_simulated_unit(self.session.sim, self._base_scenario, offsets)
+        self._units_installed = True
         return offsets
 
     def _unit_plan(self, unit: UnitId) -> Plan:

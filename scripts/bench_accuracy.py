@@ -44,6 +44,7 @@ from noisebench.sims.bench import SimulatedBench
 T0 = 290.0
 AMBIENT_K = 296.0
 FREQS_HZ = [1.5e9, 3.0e9, 4.5e9]
+SKIPPED: dict[str, list] = {"y_factor": [], "gain": []}
 EFFICIENCY_FREQS_HZ = [1e9 + 0.5e9 * i for i in range(9)]
 IDEAL = {
     "noise_source__calibration_error_db": [0.0] * 16,
@@ -134,6 +135,10 @@ def accuracy(seeds: int, quick: bool, workdir: Path) -> dict[str, list]:
         plan = make_plan(method, gain)
         record, cpu_s, _ = run_once(method, sim, plan,
                                     workdir / f"acc_{method}_{nf}_{gain}_{margin}_{seed}")
+        for skipped in record.info.notes.get("skipped_points", []):
+            SKIPPED[method].append((nf, gain, margin, skipped["freq_hz"], skipped["reason"]))
+        if not record.points:
+            continue
         truth = sim.truth([p.freq_hz for p in record.points])
         for p, nf_true in zip(record.points, truth["nf_db"], strict=True):
             rows[method].append((nf, gain, margin, p.nf_db - float(nf_true), p.u_nf_db,
@@ -152,6 +157,10 @@ def print_accuracy(rows: dict[str, list]) -> None:
         print(f"{method:<9} {len(err):>6d} {err.mean():>+8.4f} {err.std(ddof=1):>10.4f} "
               f"{u.mean():>9.4f} {np.mean(np.abs(err) <= u):>7.1%} "
               f"{np.mean(np.abs(err) <= 2 * u):>8.1%} {flagged:>8.1%}")
+    for method, skipped in SKIPPED.items():
+        for nf, gain, margin, freq, reason in skipped[:3]:
+            print(f"  {method} refused NF {nf} dB / gain {gain} dB / margin {margin} dB at "
+                  f"{freq / 1e9:g} GHz: {reason[:90]}")
     print("  by DUT noise above the analyzer floor (both methods):")
     for margin in sorted({r[2] for d in rows.values() for r in d}):
         sel = np.array([r[3:5] for d in rows.values() for r in d if r[2] == margin])

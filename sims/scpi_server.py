@@ -214,6 +214,9 @@ class SimServer:
         """Open the listeners and start serving in background threads; returns ``self``."""
         if self._acceptor is not None:
             raise RuntimeError("server already started")
+        # FFT mode needs scipy.signal's windows; importing it lazily inside the first FFT
+        # configure took 1-3 s on a loaded machine, longer than a client's timeout.
+        import scipy.signal  # noqa: F401
         try:
             for offset, name in enumerate(INSTRUMENTS):
                 port = 0 if self.port == 0 else self.port + offset

@@ -257,14 +257,18 @@ def test_serve_passes_its_options_to_the_simulator(capsys):
 # --------------------------------------------------------------------------- SCPI simulator
 
 
-def test_plan_runs_against_the_scpi_simulator_through_pyvisa(sim_server, tmp_path, capsys):
+@pytest.mark.parametrize("drive", ["analyzer", "supply"])
+def test_plan_runs_against_the_scpi_simulator_through_pyvisa(sim_server, tmp_path, capsys,
+                                                              drive):
     sim_server.bench.enr_table.to_csv(tmp_path / "enr.csv")
+    source = ('drive = "analyzer"' if drive == "analyzer" else
+              f'drive = "supply", resource = "{sim_server.resource("supply")}", drive_v = 28.0')
     plan = _write(tmp_path / "scpi.toml", f"""\
         method = "y_factor"
         [dut]
         id = "SCPI-TEST"
         [bench]
-        noise_source = {{ drive = "analyzer", settle_time_s = 0.02 }}
+        noise_source = {{ {source}, settle_time_s = 0.02 }}
         [bench.analyzer]
         resource = "{sim_server.resource('analyzer')}"
         profile = "generic"

@@ -372,3 +372,34 @@ def test_a_narrowed_plan_is_checked_like_a_loaded_one(tmp_path):
         with pytest.raises(InputError) as info:
             plan_for_frequencies(plan, bad)
         assert info.value.field == field
+
+
+def test_the_commands_run_under_the_noisebench_cli(monkeypatch, capsys, tmp_path):
+    """Hooked into noisebench.cli (as the lead will: register() on its sub-commands), errors
+    end as one line on stderr with the CLI's exit code."""
+    from noisebench import cli
+
+    original = cli.build_parser
+
+    def build() -> argparse.ArgumentParser:
+        parser = original()
+        action = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+        if "db" not in action.choices:  # not hooked in yet
+            register(action)
+        return parser
+
+    monkeypatch.setattr(cli, "build_parser", build)
+    monkeypatch.delenv(DB_ENV, raising=False)
+    out = io.StringIO()
+    assert cli.main(["db", "yield"], out=out) == cli.EXIT_INPUT
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err == [f"noisebench: error: --db: no results database given (pass --db "
+                   f"sqlite:///station.sqlite (or a path), or set {DB_ENV})"]
+    plan = tmp_path / "plan.toml"
+    plan.write_text(_plan_toml(nf_max_db=1.3), encoding="utf-8")
+    code = cli.main(["station", str(plan), "--unit", "GOOD1", "--unit", "BAD\x1bUNIT",
+                     "--folder", str(tmp_path / "st")], out=out)
+    assert code == cli.EXIT_INPUT
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "line 2: unit: control character '\\x1b'" in err[0]
+    assert not (tmp_path / "st" / "units").exists()  # nothing measured before the list is good

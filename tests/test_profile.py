@@ -7,7 +7,7 @@ import re
 from pathlib import Path
 
 import pytest
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from noisebench.acquisition import AveragingScale, Detector, SweepMode
@@ -190,6 +190,9 @@ def test_safe_text_accepts_plain_labels():
 
 @settings(max_examples=200, deadline=None)
 @given(st.text(min_size=1, max_size=20))
+@example("\n")  # regression: a regex ending in '$' also matches before a final newline
+@example("ok\n")
+@example("a;b")
 def test_no_text_with_a_separator_quote_or_line_break_reaches_a_command(label):
     text = _bound(TextSetting.model_validate({"set": 'DISP:TEXT "{value}"'}), "title")
     try:

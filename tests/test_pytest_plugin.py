@@ -183,6 +183,15 @@ def test_a_bad_plan_or_bench_fails_setup_with_one_clear_message(inner: pytest.Py
     result = _run(inner)
     result.assert_outcomes(errors=1)
     result.stdout.fnmatch_lines(["*noisebench: no plan configured: pass --nb-plan PLAN.toml*"])
+    # a real analyzer with the quick plan: no ENR table, refused before any I/O
+    inner.makepyfile(test_visa="""
+        def test_point_on_real_hardware(nb_measure_point):
+            nb_measure_point(1.0e9)
+    """)
+    result = _run(inner, "test_visa.py", "--nb-bench", "TCPIP0::127.0.0.1::9::SOCKET")
+    result.assert_outcomes(failed=1)
+    result.stdout.fnmatch_lines(["*noisebench: enr.table: the Y-factor method needs the "
+                                 "noise source's ENR table*"])
 
 
 # =========================================================================== assert_verdict

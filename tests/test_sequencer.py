@@ -360,3 +360,81 @@ def test_session_connect_is_idempotent_and_safe():
     assert sim.path.value == "through"
     session.connect(Connection.THROUGH)
     assert session.moves == [Connection.THROUGH]
+
+
+# --------------------------------------------------------------------------- refusals, forecast
+
+
+def test_point_the_physics_refuses_is_skipped_and_reported(tmp_path):
+    # analyzer NF 60 dB at 5 GHz: the 15 dB ENR source cannot raise the system's noise, so the
+    # THROUGH calibration sees hot == cold there; 1 GHz is measured normally
+    plan = make_plan("y_factor", freqs_hz=[1e9, 5e9], acquisition={"time_limit_s": 2})
+    session = ideal_session(plan, analyzer__nf_db=[11.0, 11.0, 11.0, 11.5, 13.0, 16.0, 60.0,
+                                                   60.0])
+    seq = Sequencer(plan, session)
+    record = seq.run(tmp_path / "run")
+    assert record.info.status == "complete"
+    assert [p.freq_hz for p in record.points] == [1e9]
+    (skipped,) = record.info.notes["skipped_points"]
+    assert skipped["freq_hz"] == 5e9 and skipped["stage"] == "calibration"
+    assert "hot reading is not above the cold" in skipped["reason"]
+    assert not session.sim.noise_source.is_hot
+
+
+def test_progress_lines_name_point_nf_and_time_left(tmp_path, caplog):
+    from noisebench.progress import LogProgress
+
+    plan = make_plan("gain", freqs_hz=[1e9, 2e9])
+    with caplog.at_level("INFO", logger="noisebench.progress"):
+        Sequencer(plan, ideal_session(plan), progress=LogProgress()).run(tmp_path / "run")
+    lines = [r.getMessage() for r in caplog.records if r.name == "noisebench.progress"]
+    assert lines[0] == "gain TEST-LNA: 2 points to measure"
+    assert lines[1].startswith("point 1/2 1 GHz: NF ") and "left" in lines[1]
+    assert lines[2].startswith("point 2/2 2 GHz: NF ") and "gain 25.00 dB" in lines[2]
+
+
+def test_forecast_matches_the_measured_averaging(tmp_path):
+    from noisebench.forecast import forecast_plan
+
+    for method in ("y_factor", "gain"):
+        plan = make_plan(method, freqs_hz=[1.5e9, 2e9, 2.5e9, 3e9], target=0.05)
+        forecast = forecast_plan(plan, sim=ideal_sim(seed=21))
+        _, record = _run(plan, ideal_session(plan, seed=21), tmp_path, method)
+        for f, p in zip(forecast.points, record.points, strict=True):
+            assert 0.045 < f.u_nf_db <= 0.05 and f.limited_by is None  # averages are whole
+            # measured = forecast x planning margin 1.1, pilot rounds and the scatter of the
+            # uncertainty estimate: within a factor 0.8..2
+            assert 0.8 < p.averages / f.averages < 2.0, (method, p.averages, f.averages)
+
+
+def test_real_bench_connections_prompt_the_operator():
+    from noisebench.registry import OPERATOR_INSTRUCTIONS, BenchSession, _operator_mover
+
+    prompts: list[str] = []
+    bench = ideal_sim().as_bench()
+    session = BenchSession(bench=bench, kind="scpi", resources={},
+                           _move=_operator_mover(prompts.append))
+    session.connect("termination")
+    session.connect("termination")  # already there: no second prompt
+    session.connect("dut")
+    assert prompts == [OPERATOR_INSTRUCTIONS[Connection.TERMINATION] + " Press Enter when done. ",
+                       OPERATOR_INSTRUCTIONS[Connection.DUT] + " Press Enter when done. "]
+    assert session.real_hardware
+
+
+def test_live_progress_only_on_an_interactive_terminal(monkeypatch):
+    import io
+
+    from noisebench.progress import LogProgress, RichProgress, make_progress
+
+    class Terminal(io.StringIO):
+        def isatty(self) -> bool:
+            return True
+
+    monkeypatch.delenv("CI", raising=False)
+    monkeypatch.delenv("GITHUB_ACTIONS", raising=False)
+    monkeypatch.delenv("NOISEBENCH_NO_LIVE", raising=False)
+    assert isinstance(make_progress(Terminal()), RichProgress)
+    assert isinstance(make_progress(io.StringIO()), LogProgress)  # a pipe or a file
+    monkeypatch.setenv("CI", "true")
+    assert isinstance(make_progress(Terminal()), LogProgress)  # clean CI logs

@@ -334,9 +334,13 @@ def test_calibration_is_measured_once_and_reused(lot_run):
     assert all(u.calibrated_groups == 0 and u.calibration_reason is None for u in units[1:])
 
 
-def test_bench_is_left_safe_after_the_station(lot_run):
+def test_bench_is_left_safe_and_nominal_after_the_station(lot_run):
     sim = lot_run["sim"]
     assert not sim.noise_source.is_hot and not sim.generator.output_on
+    f = np.array(FREQS_HZ)
+    nominal = exact_sim().truth(f)
+    np.testing.assert_array_equal(sim.truth(f)["nf_db"], nominal["nf_db"])
+    np.testing.assert_array_equal(sim.truth(f)["gain_db"], nominal["gain_db"])
 
 
 # =========================================================================== calibration expiry
