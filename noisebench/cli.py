@@ -9,6 +9,7 @@ Commands (ours; see ``noisebench --help`` and ``noisebench <command> --help``):
 ``render FOLDER``                plots and report again from a run folder
 ``validate PLAN|ENR.csv``        check a plan or an ENR table; every problem on its own line
 ``info``                         versions, VISA back ends, visible resources, profiles
+``station PLAN`` / ``db ...``    production loop and results database (:mod:`noisebench.dbcli`)
 
 Errors end with one line on stderr and a non-zero exit code, never a traceback:
 2 bad input (plan, file, arguments), 3 refused for safety, 4 instrument or communication
@@ -229,6 +230,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--timeout", type=float, default=5.0, metavar="S",
                    help="give up listing resources after S seconds (default: 5)")
     p.set_defaults(func=cmd_info)
+
+    from noisebench.dbcli import register as register_production
+
+    register_production(sub)  # station, db (noisebench/dbcli.py)
     return parser
 
 

@@ -128,8 +128,9 @@ def apply_budgets_and_verdict(record: RunRecord, plan: Plan) -> RunRecord:
     Without an ``[uncertainty]`` section the budgets are left as they are; without
     ``[limits]`` the verdict is left as it is. A point whose budget cannot be computed keeps
     none (its NF is then judged with ``k * u_nf_db``, which the verdict notes) and a line in
-    ``record.warnings`` says why. A record without points gets no verdict. See the module
-    docstring for the incomplete-run rule. No file is written (see :func:`save_record`).
+    ``record.warnings`` says why. A record without any point (every point skipped or the run
+    stopped at once) is ``indeterminate``, never unjudged. See the module docstring for the
+    incomplete-run rule. No file is written (see :func:`save_record`).
     """
     if not isinstance(record, RunRecord):
         raise InputError("record", f"must be a RunRecord (got {type(record).__name__})",
@@ -141,7 +142,7 @@ def apply_budgets_and_verdict(record: RunRecord, plan: Plan) -> RunRecord:
         budgets, warnings = _complete_budgets(record, inputs, plan)
     verdict = record.verdict
     if mask is not None:
-        verdict = _judge(record, budgets, mask, inputs, plan) if record.points else None
+        verdict = _judge(record, budgets, mask, inputs, plan)
     new_warnings = [w for w in warnings if w not in record.warnings]
     return record.model_copy(update={"budgets": budgets, "verdict": verdict,
                                      "warnings": list(record.warnings) + new_warnings})

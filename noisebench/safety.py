@@ -23,7 +23,7 @@ import math
 from dataclasses import dataclass
 
 from noisebench.errors import InputError, SafetyError, require_positive
-from noisebench.physics import BOLTZMANN_J_PER_K, T0_K
+from noisebench.physics import BOLTZMANN_J_PER_K, T0_K, w_to_dbm
 
 #: Used when neither the driver nor the plan states the rated maximum input: a conservative
 #: value for general-purpose analyzers [common practice]. Put the real rating in the plan.
@@ -65,19 +65,17 @@ def cautions_text(*, prefix: str = "  - ", width: int = 92) -> str:
 # --------------------------------------------------------------------------- pure estimates
 
 
-def w_to_dbm(power_w: float) -> float:
-    return 10.0 * math.log10(power_w / 1e-3)
-
-
 def hot_source_temperature_k(enr_db: float, cold_temperature_k: float,
                              t0_k: float = T0_K) -> float:
     """Hot noise temperature of a source with ``enr_db`` at ``cold_temperature_k``, K.
 
     Common assumption: the ENR is referred to T0 and the excess noise does not depend on the
-    source's physical temperature, so ``Th = T0 * ENR + Tc`` (reference.md §5).
+    source's physical temperature, so ``Th = T0 * ENR + Tc`` (reference.md §5; the Y-factor
+    method's own :func:`~noisebench.methods.yfactor.hot_temperature_k`).
     """
-    require_positive("cold_temperature_k", cold_temperature_k)
-    return t0_k * 10.0 ** (enr_db / 10.0) + cold_temperature_k
+    from noisebench.methods.yfactor import hot_temperature_k
+
+    return float(hot_temperature_k(10.0 ** (enr_db / 10.0), cold_temperature_k, t0_k))
 
 
 def total_noise_power_dbm(source_temperature_k: float, gain_db: float, bandwidth_hz: float,

@@ -10,14 +10,19 @@ Order of a run (each step only when needed):
 3. **Measurement** with the DUT in (``DUT``), group by group. A group is a set of points one
    trace covers (same settings, bands close enough that the trace is mostly useful band).
 
-Adaptive averaging per group: a first round with ``min_averages``; then the averages that reach
-``target_u_nf_db`` are planned from the radiometer scaling ``u ~ 1/sqrt(averages)`` of the part
-of the point's uncertainty that averaging reduces (the calibration's part does not fall), and
-acquired; the estimate is checked again (estimator uncertainty widened by the measured
-between-trace scatter, :mod:`noisebench.averaging`) until the target is met, ``max_averages``
-is reached, or the group's instrument time (``time_limit_s`` per point) runs out: then the
-point is flagged ``time_limit``. Y-factor readings run as hot-cold-cold-hot rounds, so a
-linear drift of the system gain cancels in Y.
+Adaptive averaging per group: a first round with ``min_averages`` (or, after the first group,
+with what the previous group needed: neighbouring frequencies need similar averaging); then the
+averages that reach ``target_u_nf_db`` are planned from the radiometer scaling
+``u ~ 1/sqrt(averages)`` of the part of the point's uncertainty that averaging reduces (the
+calibration's part does not fall), and acquired; the estimate is checked again (estimator
+uncertainty widened by the measured between-trace scatter, :mod:`noisebench.averaging`) until
+the target is met, ``max_averages`` is reached, or the group's instrument time
+(``time_limit_s`` per point, settling included) would run out: then the point is flagged
+``time_limit``. Y-factor readings run as hot-cold-cold-hot rounds, so a linear drift of the
+system gain cancels in Y. Calibrations are averaged the same way, to a design target (see
+:mod:`noisebench.calibration`). A point the physics refuses (``MeasurementError``, e.g. a
+system calibration whose hot reading is not above the cold one) is skipped with its reason in
+``info.notes["skipped_points"]`` and the run goes on.
 
 Safety (:mod:`noisebench.safety`): the expected total noise power into the analyzer is checked
 before the noise source goes hot, the tone power before the generator output goes on; a refusal
@@ -225,8 +230,10 @@ class Sequencer:
     """Runs a plan on an opened bench; see the module docstring for the order of work.
 
     ``calibrations`` is shared between runs on the same bench (pass the same store to reuse
-    valid calibrations). ``on_point`` is called after each point is stored (progress hooks,
-    tests). ``prompt`` is used for operator instructions.
+    valid calibrations). ``progress`` shows points done, time left and the last NF.
+    ``on_point`` is called after each point is stored (hooks, tests; an exception there ends
+    the run like one from the bench, KeyboardInterrupt as Ctrl-C). Operator prompts belong to
+    the session (:func:`noisebench.registry.open_bench`).
     """
 
     def __init__(self, plan: Plan, session: BenchSession, *,
@@ -240,7 +247,7 @@ class Sequencer:
         self.corrections: Corrections | None = None
         self.guard: PowerGuard | None = None
         self._last_request: AcquisitionRequest | None = None
-        self._applied: dict[int, AcquisitionSettings] = {}
+        self._applied: list[dict[str, Any]] = []
         self._measured_gain: dict[float, tuple[float, float]] = {}
         self._prior: dict[str, int] = {}  # averages per reading the last group needed
         self._unmeasurable: set[int] = set()
@@ -318,7 +325,10 @@ class Sequencer:
             return self._finish(writer, "interrupted")
         except BaseException:
             self._safe()
-            self._finish(writer, "failed")
+            try:
+                self._finish(writer, "failed")
+            except Exception:  # noqa: BLE001 - keep the original error
+                logger.exception("could not finish the failed run")
             raise
         finally:
             self.progress.stop()
@@ -332,6 +342,8 @@ class Sequencer:
                            identities=self.session.bench.identities())
 
     def _finish(self, writer, status: str):
+        if self._applied:  # the frequencies each set of settings served, complete
+            writer.update_info(applied_settings=self._applied)
         try:
             verdict = self._verdict(writer)
         except NoisebenchError as exc:  # a verdict problem must not lose the run
@@ -365,17 +377,27 @@ class Sequencer:
             except MeasurementError as exc:
                 self._skip(group, exc, "measurement", writer)
                 continue
-            self._applied[group.index] = outcome.settings  # type: ignore[assignment]
-            writer.update_info(applied_settings=self._applied_dumps())
+            self._record_settings(outcome.settings, group, writer)
             for point in outcome.points:
                 writer.add_point(point, self._budget(point))
                 self.progress.point_done(point)
                 if self.on_point is not None:
                     self.on_point(point)
 
-    def _applied_dumps(self) -> list[dict[str, Any]]:
-        return [s.model_dump(mode="json") | {"group": i}
-                for i, s in sorted(self._applied.items()) if s is not None]
+    def _record_settings(self, settings: AcquisitionSettings | None, group: PointGroup,
+                         writer) -> None:
+        """Keep each distinct set of applied settings once (centre and averages vary per
+        group), with the frequencies it served; ``run.json`` is rewritten only when a new set
+        appears."""
+        if settings is None:
+            return
+        dump = settings.model_dump(mode="json", exclude={"center_hz", "averages"})
+        for entry in self._applied:
+            if entry["settings"] == dump:
+                entry["freqs_hz"].extend(group.freqs_hz)
+                return
+        self._applied.append({"settings": dump, "freqs_hz": list(group.freqs_hz)})
+        writer.update_info(applied_settings=self._applied)
 
     def _with_context(self, group: PointGroup, work: Callable[[], Any]) -> Any:
         try:

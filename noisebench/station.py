@@ -31,9 +31,11 @@ For every unit the station
 
 Ctrl-C during a measurement ends that unit as ``interrupted`` (the sequencer leaves the bench
 safe and keeps its finished points), stores it, and ends the station run; finished units are
-kept. A unit the physics refuses (:class:`~noisebench.errors.MeasurementError`) or that would
-endanger the bench (:class:`~noisebench.errors.SafetyError`) is recorded as an error and the
-loop goes on; an instrument or communication fault or a plan problem ends the station run.
+kept. Points the physics refuses are skipped by the sequencer and listed with the unit; a unit
+with skipped points never passes (:mod:`noisebench.production`). A unit whose run the physics
+refuses (:class:`~noisebench.errors.MeasurementError`) or that would endanger the bench
+(:class:`~noisebench.errors.SafetyError`) is recorded as an error and the loop goes on; an
+instrument or communication fault or a plan problem ends the station run.
 
 **Simulated units.** On a ``sim://`` bench every serial gets a deterministic unit-to-unit
 variation of the scenario's DUT (:class:`UnitVariation`), seeded from the SHA-256 of the serial:
@@ -412,6 +414,8 @@ class UnitResult(BaseModel):
     status: UnitStatus
     verdict: str | None = None  # pass / fail / indeterminate; None: not judged or not measured
     failing: list[dict[str, Any]] = Field(default_factory=list)
+    points: int = 0
+    skipped_points: list[dict[str, Any]] = Field(default_factory=list)
     max_nf_db: float | None = None
     min_gain_db: float | None = None
     started_at: datetime
@@ -429,11 +433,16 @@ class UnitResult(BaseModel):
         """``pass``/``fail``/``indeterminate``, ``not_judged`` (no limits), or ``error``.
 
         ``error``: the run did not complete (refused, failed, interrupted), whatever its
-        points say; as in the results database, only complete runs are judged units.
+        points say; as in the results database, only complete runs are judged units. A
+        complete run is counted by its verdict (a unit whose points were all skipped is
+        ``indeterminate``: nothing was verified), or without limits ``not_judged`` -
+        ``error`` when it measured no point at all.
         """
         if self.error is not None or self.status != "complete":
             return "error"
-        return self.verdict or "not_judged"
+        if self.verdict:
+            return self.verdict
+        return "error" if self.points == 0 else "not_judged"
 
     def line(self) -> str:
         """One line for the operator."""
@@ -452,6 +461,11 @@ class UnitResult(BaseModel):
             text += "\n    " + _failing_text(point)
         if len(self.failing) > 5:
             text += f"\n    ... {len(self.failing) - 5} more point(s)"
+        for skipped in self.skipped_points[:3]:
+            text += (f"\n    not measured: {skipped.get('freq_hz', 0.0) / 1e9:.6g} GHz "
+                     f"({skipped.get('stage')}): {skipped.get('reason')}")
+        if len(self.skipped_points) > 3:
+            text += f"\n    ... {len(self.skipped_points) - 3} more point(s) not measured"
         if self.error:
             text += f"\n    error: {self.error}"
         if self.store_error:
@@ -828,6 +842,8 @@ class Station:
         result = result.model_copy(update={
             "run_id": record.info.run_id, "status": record.info.status,
             "verdict": (record.verdict or {}).get("unit"), "failing": failing_points(record),
+            "points": len(record.points),
+            "skipped_points": list(record.info.notes.get("skipped_points") or []),
             "max_nf_db": max((p.nf_db for p in record.points), default=None),
             "min_gain_db": min((p.gain_db for p in record.points if p.gain_db is not None),
                                default=None),

@@ -308,6 +308,14 @@ def test_an_incomplete_run_never_passes(judged_run):
     assert apply_budgets_and_verdict(partial, strict).verdict["unit"] == "fail"  # fail stays
 
 
+def test_a_run_without_any_point_is_indeterminate_not_unjudged(judged_run):
+    plan, record = judged_run
+    empty = record.model_copy(update={"points": [], "budgets": [], "verdict": None})
+    verdict = apply_budgets_and_verdict(empty, plan).verdict
+    assert verdict["unit"] == "indeterminate" and verdict["points"] == []
+    assert INCOMPLETE_NOTE.format(missing=2, total=2) in verdict["notes"]
+
+
 def test_a_point_without_a_budget_is_judged_on_its_statistics_and_warned(judged_run):
     plan, record = judged_run
     odd = PointResult(freq_hz=1.5e9, method=Method.Y_FACTOR, nf_db=1.0, te_k=75.1,

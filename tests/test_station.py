@@ -468,8 +468,32 @@ def _refuse_store(record, **kwargs):
 
 
 def test_unit_result_outcomes():
-    base = {"serial": "X", "started_at": "2026-01-01T00:00:00Z", "duration_s": 1.0}
+    base = {"serial": "X", "started_at": "2026-01-01T00:00:00Z", "duration_s": 1.0,
+            "points": 2}
     assert UnitResult(status="complete", verdict="pass", **base).outcome == "pass"
     assert UnitResult(status="complete", **base).outcome == "not_judged"
     assert UnitResult(status="interrupted", verdict="fail", **base).outcome == "error"
     assert UnitResult(status="complete", verdict="pass", error="x", **base).outcome == "error"
+    assert UnitResult(status="complete", **{**base, "points": 0}).outcome == "error"
+
+
+def test_a_dead_unit_is_measured_as_nothing_verified(tmp_path):
+    """A unit without gain: the sequencer skips every point; the unit is indeterminate (as in
+    the database), never a pass, and the operator sees why."""
+    from noisebench.sims.bench import SimulatedBench
+
+    sim = SimulatedBench.from_scenario("demo-lna", seed=8, dut__gain_db=[-60.0] * 14)
+    plan = small_plan(tmp_path)
+    settings = _settings(tmp_path, unit_variation=None)
+    with Station(plan, settings, session=session_on(sim, plan)) as station:
+        summary = station.run([UnitId("Z1", "LZ")])
+        (row,) = station.db.yield_by_lot("LZ")
+    (unit,) = summary.units
+    assert unit.status == "complete" and unit.points == 0
+    assert [p["freq_hz"] for p in unit.skipped_points] == list(FREQS_HZ)
+    assert unit.verdict == "indeterminate" and unit.outcome == "indeterminate"
+    assert (row.units, row.indeterminate, row.passed) == (1, 1, 0)
+    line = unit.line()
+    assert "INDETERMINATE" in line and line.count("not measured: ") == len(FREQS_HZ)
+    notes = load_run(Path(unit.folder)).verdict["notes"]
+    assert "incomplete run: 2 of 2 planned point(s) not measured" in " ".join(notes)
