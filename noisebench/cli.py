@@ -279,11 +279,27 @@ def _exit_code(exc: BaseException) -> int:
     return EXIT_FAILED
 
 
+class _CurrentStderrHandler(logging.StreamHandler):
+    """Writes to whatever ``sys.stderr`` is at emit time (a captured or replaced stderr
+    that has since been closed must not break logging)."""
+
+    def __init__(self) -> None:
+        super().__init__(sys.stderr)
+
+    @property  # type: ignore[override]
+    def stream(self) -> TextIO:
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, _value: TextIO) -> None:
+        pass
+
+
 def _configure_logging(args: argparse.Namespace) -> None:
     level = logging.DEBUG if args.verbose else logging.WARNING if args.quiet else logging.INFO
     root = logging.getLogger("noisebench")
     if not any(getattr(h, "_noisebench_cli", False) for h in root.handlers):
-        handler = logging.StreamHandler(sys.stderr)
+        handler = _CurrentStderrHandler()
         handler.setFormatter(logging.Formatter("%(levelname)s %(name)s: %(message)s"
                                                if args.verbose else "%(message)s"))
         handler._noisebench_cli = True  # type: ignore[attr-defined]

@@ -881,7 +881,17 @@ class Sequencer:
         so_far = load_run(writer.folder)  # every point and budget journalled, incl. resumed
         budgets = {b["freq_hz"]: b for b in so_far.budgets}
         coverage = getattr(self.plan.uncertainty, "coverage_factor", 2.0)
-        return judge(so_far.points, budgets, mask, coverage_factor=coverage).to_dict()
+        verdict = judge(so_far.points, budgets, mask, coverage_factor=coverage).to_dict()
+        # A unit with points the plan asked for but the run could not measure never passes.
+        done = {p.freq_hz for p in so_far.points}
+        missing = [p.freq_hz for p in self.plan.points() if p.freq_hz not in done]
+        if missing:
+            verdict["notes"] = list(verdict.get("notes") or []) + [
+                f"{len(missing)} of {len(self.plan.points())} planned points were not "
+                "measured: the unit cannot pass"]
+            if verdict.get("unit") == "pass":
+                verdict["unit"] = "indeterminate"
+        return verdict
 
 
 def _split_uncertainty(point: PointResult) -> tuple[float, float]:

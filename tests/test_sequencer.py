@@ -368,7 +368,11 @@ def test_session_connect_is_idempotent_and_safe():
 def test_point_the_physics_refuses_is_skipped_and_reported(tmp_path):
     # analyzer NF 60 dB at 5 GHz: the 15 dB ENR source cannot raise the system's noise, so the
     # THROUGH calibration sees hot == cold there; 1 GHz is measured normally
-    plan = make_plan("y_factor", freqs_hz=[1e9, 5e9], acquisition={"time_limit_s": 2})
+    # a limit every measured point meets by far: the unit still must not pass, since a
+    # planned point is missing
+    plan = make_plan("y_factor", freqs_hz=[1e9, 5e9], acquisition={"time_limit_s": 2},
+                     limits={"bands": [{"start_hz": 0.5e9, "stop_hz": 6e9, "nf_max_db": 10.0}],
+                             "require_coverage": False})
     session = ideal_session(plan, analyzer__nf_db=[11.0, 11.0, 11.0, 11.5, 13.0, 16.0, 60.0,
                                                    60.0])
     seq = Sequencer(plan, session)
@@ -379,6 +383,9 @@ def test_point_the_physics_refuses_is_skipped_and_reported(tmp_path):
     assert skipped["freq_hz"] == 5e9 and skipped["stage"] == "calibration"
     assert "hot reading is not above the cold" in skipped["reason"]
     assert not session.sim.noise_source.is_hot
+    assert record.verdict["unit"] == "indeterminate"
+    assert any("1 of 2 planned points were not measured" in n for n in record.verdict["notes"])
+    assert [p["verdict"] for p in record.verdict["points"]] == ["pass"]
 
 
 def test_progress_lines_name_point_nf_and_time_left(tmp_path, caplog):
