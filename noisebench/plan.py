@@ -629,6 +629,10 @@ def _plain_message(err: dict[str, Any]) -> str:
     if kind in ("literal_error", "enum"):
         return f"must be one of {ctx.get('expected', '?')} (got {err.get('input')!r})"
     msg = str(err.get("msg", "invalid"))
+    # pydantic prefixes a ValueError raised in a validator with "Value error, "
+    for prefix in ("Value error, ", "Assertion failed, "):
+        if msg.startswith(prefix):
+            msg = msg[len(prefix):]
     return msg[0].lower() + msg[1:] if msg else "invalid"
 
 

@@ -60,6 +60,17 @@ def test_several_problems_reported_at_once_with_key_paths():
     ]
 
 
+def test_nested_section_messages_carry_no_pydantic_prefix():
+    data = _base(uncertainty={"enr_db": {"expanded": 0.2}},
+                 limits={"bands": [{"start_hz": 1e9, "stop_hz": 0.5e9, "nf_max_db": 2.0}]})
+    problems = _problems(data)
+    assert any(p.startswith("uncertainty.enr_db: 'expanded' and 'k' go together")
+               for p in problems), problems
+    assert any(p.startswith("limits.bands[0].stop_hz: must be above start_hz")
+               for p in problems), problems
+    assert not any("value error" in p.lower() for p in problems)
+
+
 def test_plan_error_is_an_input_error_listing_every_problem():
     data = _base(acquisition={"rbw_hz": 0}, gain={"source": "file"})
     with pytest.raises(InputError) as info:
