@@ -53,6 +53,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_valida
 
 from noisebench.errors import InputError
 from noisebench.physics import FloatOrArray
+from noisebench.tables import read_table_text
 
 logger = logging.getLogger(__name__)
 
@@ -269,19 +270,7 @@ class EnrTable(BaseModel):
 
 
 def _read_source(source: str | Path, name: str | None) -> tuple[str, str]:
-    if isinstance(source, str) and ("\n" in source or "\r" in source):
-        return source, name or "ENR text"
-    path = Path(source)
-    label = name or path.name
-    try:
-        return path.read_text(encoding="utf-8"), label
-    except FileNotFoundError:
-        raise InputError(label, f"ENR table file not found: {path}",
-                         fix="check the path in the plan") from None
-    except UnicodeDecodeError:
-        raise InputError(label, "is not UTF-8 text", fix="save the table as UTF-8 CSV") from None
-    except OSError as exc:
-        raise InputError(label, f"cannot be read: {exc.strerror or exc}") from None
+    return read_table_text(source, name, what="ENR table file", text_label="ENR text")
 
 
 def _parse_metadata(items: dict[str, tuple[int, str]], label: str

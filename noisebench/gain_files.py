@@ -43,6 +43,7 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_serializer, field_validator
 
 from noisebench.errors import InputError
+from noisebench.tables import read_table_text
 
 logger = logging.getLogger(__name__)
 
@@ -221,19 +222,7 @@ def _row(freq: list[float], gain: float, u: float | None) -> str:
 
 
 def _read_text(source: str | Path, name: str | None) -> tuple[str, str]:
-    if isinstance(source, str) and ("\n" in source or "\r" in source):
-        return source, name or "gain text"
-    path = Path(source)
-    label = name or path.name
-    try:
-        return path.read_text(encoding="utf-8"), label
-    except FileNotFoundError:
-        raise InputError(label, f"gain/loss table not found: {path}",
-                         fix="check the path") from None
-    except UnicodeDecodeError:
-        raise InputError(label, "is not UTF-8 text", fix="save the table as UTF-8 CSV") from None
-    except OSError as exc:
-        raise InputError(label, f"cannot be read: {exc.strerror or exc}") from None
+    return read_table_text(source, name, what="gain/loss table", text_label="gain text")
 
 
 def _parse_header(line: str, where: str) -> tuple[list[str], str, float]:
