@@ -297,8 +297,11 @@ def _measure_pass(analyzer: Analyzer, generator: Generator, plan: GainMeasuremen
         generator.set_output(False)
         results.append(_reduce_pass(readings, noise, freq_hz=freq, stage=stage.value,
                                     min_snr=plan.min_snr_db))
-        logger.info("%s pass %.6g Hz: tone %.2f dBm, SNR %.1f dB", stage.value, freq,
+        logger.debug("%s pass %.6g Hz: tone %.2f dBm, SNR %.1f dB", stage.value, freq,
                     results[-1].tone_dbm, results[-1].snr_db)
+    snrs = [r.snr_db for r in results]
+    logger.info("%s pass: %d frequencies, tone SNR %.1f to %.1f dB", stage.value, len(results),
+                min(snrs), max(snrs))
     return results, rbw, band
 
 
