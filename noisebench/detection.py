@@ -21,12 +21,23 @@ How detectors map onto the model (``N`` trace averages, ``k`` = ``detector_sampl
 =================  ==========================  ==============================================
 detector           shape ``k`` of each value   ``count`` of values on the averaging scale
 =================  ==========================  ==============================================
-SAMPLE             1                           N
+SAMPLE             1                           N * k  (k video samples, 1 without smoothing)
 RMS                k (power mean per point)    N
 AVERAGE            1 (scale-averaged samples)  N * k  (the detector averages on the same scale)
 PEAK, NEG. PEAK    refused: the extreme of a random number of samples has no usable
                    relation to the mean noise power
 =================  ==========================  ==============================================
+
+SAMPLE with ``k > 1``: a video filter narrower than the RBW smooths the *detected* signal,
+which on a log display is the log power and on a linear display the envelope voltage, so it
+averages on the display (= averaging) scale, exactly like the AVERAGE detector (common
+practice: a narrow VBW makes noise read low on a log display by up to the full 2.51 dB of
+reference.md §6b, however many samples it averages). A point is then the scale average of
+``N * k`` single samples, with ``k`` the effective number of independent samples in the video
+filter's averaging time (``B_stat / (pi VBW)`` for a one-pole filter, reported by the
+instrument as ``detector_samples``). On the power scale this is the power mean of ``N * k``
+samples, as for RMS. The equal-weight average is the model; a one-pole filter weights its
+samples exponentially, which ``k`` (its equivalent count) captures for the variance.
 
 Non-integer ``k`` or ``N * k`` (effective sample counts) use the same formulas: the gamma moments
 and the cumulant sums are analytic in the count, which is exact for integers and the natural
@@ -335,13 +346,13 @@ def point_model(detector: Detector, scale: AveragingScale, averages: int,
         raise InputError(
             f"{field}.detector", f"the {detector.value} detector cannot measure noise: it keeps "
             "the extreme of a random number of noise samples, whose relation to the mean noise "
-            "power depends on that number and on the video bandwidth",
+            "power depends on that number and on the VBW",
             value=detector.value, fix="use the RMS (power average) or the sample detector")
     k = None if detector_samples is None else _require_count(f"{field}.detector_samples",
                                                              detector_samples)
     stat = _STATISTIC_OF_SCALE[scale]
-    if detector is Detector.SAMPLE:
-        return PointModel(statistic=stat, count=n, shape=1.0 if k is None else k)
+    if detector is Detector.SAMPLE:  # k video samples averaged on the scale (module docstring)
+        return PointModel(statistic=stat, count=n * (1.0 if k is None else k), shape=1.0)
     if k is None:
         if stat is not PointStatistic.MEAN:
             raise _unknown_samples(scale, f"{field}.detector_samples", detector)
@@ -355,7 +366,8 @@ def point_model_for(settings: AcquisitionSettings, *, field: str = "settings") -
     """:func:`point_model` for applied acquisition settings (also checks video-filter smoothing).
 
     A video filter narrower than :data:`VBW_SMOOTHING_RATIO` x RBW averages the detected signal on
-    the averaging scale; its effective sample count must then be given in ``detector_samples``.
+    the averaging scale; its effective sample count must then be given in ``detector_samples``
+    (SAMPLE with ``k`` samples is then modelled like AVERAGE: ``N * k`` values on the scale).
     """
     samples = settings.detector_samples
     smoothed = (settings.vbw_hz is not None
@@ -363,7 +375,7 @@ def point_model_for(settings: AcquisitionSettings, *, field: str = "settings") -
     if settings.detector is Detector.SAMPLE and smoothed and samples is None:
         if settings.averaging_scale is not AveragingScale.POWER:
             raise InputError(
-                f"{field}.detector_samples", f"is unknown while the video bandwidth "
+                f"{field}.detector_samples", f"is unknown while the VBW "
                 f"({settings.vbw_hz:g} Hz) smooths the detected noise on the "
                 f"{settings.averaging_scale.value} scale, so its bias is not known",
                 fix=f"report detector_samples, set VBW >= {VBW_SMOOTHING_RATIO:g} x RBW, "

@@ -130,16 +130,51 @@ def estimate_densities(trace: Trace, freqs_hz: Sequence[float] | np.ndarray,
     return out
 
 
+def band_weights_hz(freq_hz: np.ndarray, center_hz: float, band_hz: float) -> np.ndarray:
+    """Hz of the band ``center_hz +/- band_hz/2`` that each point of a uniform axis stands for.
+
+    Point ``i`` stands for its cell ``f_i +/- spacing/2``; its weight is the overlap of that cell
+    with the band. ``sum(w * P) / ENBW`` is then the trace integrated over exactly the band
+    (``P`` the point powers in W), and ``sum(w) == band_hz`` whenever the band lies inside the
+    trace's cells (``f_0 - spacing/2 .. f_last + spacing/2``); outside it the band is cut.
+    This is the band-power definition of the markers (:func:`density_from_marker`).
+    """
+    f = np.asarray(freq_hz, dtype=float)
+    if f.ndim != 1 or f.size < 2:
+        raise InputError("freq_hz", "must hold two or more trace frequencies",
+                         fix="pass the trace's frequency axis")
+    spacing = _uniform_spacing(f)
+    center, band = float(center_hz), float(band_hz)
+    if not math.isfinite(center):
+        raise InputError("center_hz", f"must be finite (got {center_hz!r})")
+    if not math.isfinite(band) or band <= 0:
+        raise InputError("band_hz", f"must be a finite bandwidth > 0 (got {band_hz!r})",
+                         fix="give the marker band in Hz")
+    # cell edges relative to the band centre, on the ideal grid (no cancellation at GHz)
+    edges = (f[0] - center) + (np.arange(f.size + 1) - 0.5) * spacing
+    lo, hi = -band / 2.0, band / 2.0
+    return np.maximum(np.minimum(edges[1:], hi) - np.maximum(edges[:-1], lo), 0.0)
+
+
 def density_from_marker(reading: MarkerReading) -> NoiseDensity:
     """Noise density (W/Hz) from a band-power or noise-density marker reading.
 
-    BAND_POWER: band power / ``band_hz`` (the band is integrated, so no ENBW), after the detector
-    bias unless ``instrument_corrected``. NOISE_DENSITY: taken as the density when
-    ``instrument_corrected``; otherwise the reading is taken as the point power in the RBW
-    normalised by the nominal RBW, so it is multiplied by RBW/ENBW and divided by the detector
-    bias. Uncertainty from the settings: averages x detector samples x independent points in the
-    band (one point for a noise-density marker without ``band_hz``). When the sample count is
-    unknown the variance of a single-sample detector is used, an upper bound.
+    What the instrument did is stated by ``reading.instrument_corrected``; this function applies
+    exactly what is missing (and nothing twice):
+
+    * ``True``: the value is already an unbiased noise measure, detector / averaging bias
+      removed and, for NOISE_DENSITY, divided by the RBW filter's noise bandwidth (ENBW).
+    * ``False``: the value comes from the displayed (biased) trace. BAND_POWER: the trace
+      integrated over ``band_hz`` (``sum(w P) / ENBW``, :func:`band_weights_hz`), which carries
+      the ENBW already, so it is divided by the detector bias only. NOISE_DENSITY: the mean
+      displayed point power over the band divided by the *nominal* RBW, so it is multiplied
+      by RBW/ENBW and divided by the detector bias.
+
+    BAND_POWER density = band power / ``band_hz`` (the band is integrated, so no ENBW).
+    Uncertainty from the settings: averages x detector samples x the points of the band with
+    their band weights and correlations (one point for a noise-density marker without
+    ``band_hz``). When the sample count is unknown the variance of a single-sample detector is
+    used, an upper bound.
     """
     s = reading.settings
     model = _marker_model(reading)
@@ -155,13 +190,12 @@ def density_from_marker(reading: MarkerReading) -> NoiseDensity:
         band = float(reading.band_hz) if reading.band_hz is not None else s.enbw_hz
         enbw_fix = 1.0 if reading.instrument_corrected else s.rbw_hz / s.enbw_hz
         density = value_lin * enbw_fix / ratio
-    n_points, s1 = _marker_points(s, reading.band_hz, model)
-    rel_var = model.relative_variance()
-    rel_u = math.sqrt(rel_var * s1) / n_points
+    n_points, spread = _marker_points(reading, model)
+    rel_var = model.relative_variance() * spread
     return NoiseDensity(
-        freq_hz=reading.freq_hz, density_w_per_hz=density, u_density_w_per_hz=density * rel_u,
-        independent_samples=n_points**2 / s1 / rel_var, band_hz=band, bins_used=n_points,
-        excluded_freq_hz=[], scatter_ratio=None,
+        freq_hz=reading.freq_hz, density_w_per_hz=density,
+        u_density_w_per_hz=density * math.sqrt(rel_var), independent_samples=1.0 / rel_var,
+        band_hz=band, bins_used=n_points, excluded_freq_hz=[], scatter_ratio=None,
         bias_correction_db=0.0 if reading.instrument_corrected else model.correction_db,
         settings=s, acquisition_time_s=reading.acquisition_time_s)
 
@@ -412,8 +446,8 @@ def _estimate_band(p: _Prepared, freq_hz: float | None, band_hz: float | None, *
     rel_u = math.sqrt(rel_var * stats_.s1) / n
     if scatter_ratio is not None and p.rel_var is not None:
         if scatter_ratio > _widen_limit(stats_, p.model):
-            logger.info("scatter %.2fx the prediction at %.6g Hz: uncertainty widened",
-                        scatter_ratio, report_hz)
+            logger.debug("scatter %.2fx the prediction at %.6g Hz: uncertainty widened",
+                         scatter_ratio, report_hz)
             rel_u *= scatter_ratio
     density = mean * p.to_density
     f_used = p.freq_hz[sl][used]
@@ -518,14 +552,28 @@ def _marker_model(reading: MarkerReading) -> PointModel:
     return model
 
 
-def _marker_points(s: AcquisitionSettings, band_hz: float | None,
-                   model: PointModel) -> tuple[int, float]:
-    """(points in the marker band, sum of their value correlations) from the settings."""
-    if band_hz is None or s.span_hz == 0 or s.points < 2:
+def _marker_points(reading: MarkerReading, model: PointModel) -> tuple[int, float]:
+    """(points in the marker band, ``w^T R w / (sum w)^2``) from the settings.
+
+    ``w`` are the band weights of :func:`band_weights_hz` and ``R`` the correlation of the
+    point values, so the relative variance of the reading is the point's times the second.
+    """
+    s = reading.settings
+    if reading.band_hz is None or s.span_hz == 0 or s.points < 2:
         return 1, 1.0
+    weights = band_weights_hz(s.frequencies_hz(), reading.freq_hz, reading.band_hz)
+    touched = np.flatnonzero(weights > 0)
+    if touched.size == 0:  # the band misses the trace: a single point is the honest bound
+        return 1, 1.0
+    w = weights[touched[0]: touched[-1] + 1]
     spacing = s.span_hz / (s.points - 1)
-    n = max(1, min(s.points, int(math.floor(band_hz / spacing + 1e-9)) + 1))
-    lags = np.arange(n, dtype=float)
-    rho = model.correlation(frequency_power_correlation(s.rbw_filter, lags * spacing, s.rbw_hz))
-    weights = np.where(lags == 0, n, 2.0 * (n - lags))
-    return n, float(np.sum(weights * rho))
+    lags = np.arange(min(w.size, MAX_KERNEL_LAGS + 1), dtype=float)
+    rho = frequency_power_correlation(s.rbw_filter, lags * spacing, s.rbw_hz)
+    rho[0] = 1.0
+    rho = model.correlation(rho[: int(np.flatnonzero(rho >= CORRELATION_FLOOR)[-1]) + 1])
+    if rho.size == 1:
+        quad = float(w @ w)
+    else:
+        sym = np.concatenate([rho[:0:-1], rho])
+        quad = float(w @ signal.oaconvolve(w, sym, mode="same"))
+    return int(touched.size), quad / float(np.sum(w)) ** 2

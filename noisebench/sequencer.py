@@ -912,7 +912,11 @@ def _split_uncertainty(point: PointResult) -> tuple[float, float]:
 
 
 def write_outputs(record, folder: Path, *, plots: bool = True, report: bool = True) -> list[Path]:
-    """Plots and the HTML report of a stored run; returns the files written."""
+    """Plots and the HTML report of a stored run; returns the files written.
+
+    ``plots=False`` draws nothing (matplotlib is not even imported): the report then has no
+    figures. With ``plots=True`` the report embeds exactly the PNG files written.
+    """
     folder = Path(folder)
     written: list[Path] = []
     images: list[Path] = []
@@ -924,7 +928,8 @@ def write_outputs(record, folder: Path, *, plots: bool = True, report: bool = Tr
     if report:
         from noisebench.report import write_report
 
-        written.append(write_report(record, folder / "report.html", plots=images or None))
+        # a list, never None: None would make write_report draw the figures in memory
+        written.append(write_report(record, folder / "report.html", plots=images))
     return written
 
 

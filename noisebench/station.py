@@ -320,7 +320,7 @@ def apply_simulated_unit(sim: Any, base_scenario: Any, offsets: UnitOffsets) -> 
     """Install unit ``offsets`` (relative to ``base_scenario``) in the running simulator.
 
     The unit's scenario is built through the simulator's validated scenario overrides; its
-    DUT model replaces the bench's (``replace_dut`` when the simulator offers it). Returns
+    DUT model replaces the bench's (``SimulatedBench.replace_dut``). Returns
     the unit's scenario.
     """
     from noisebench.sims.scenario import scenario_from_dict
@@ -335,13 +335,7 @@ def apply_simulated_unit(sim: Any, base_scenario: Any, offsets: UnitOffsets) -> 
 
 def install_scenario_dut(sim: Any, scenario: Any) -> None:
     """Make the running simulator's DUT the one of ``scenario`` (nothing else changes)."""
-    replace = getattr(sim, "replace_dut", None)
-    if callable(replace):
-        replace(scenario.dut)
-        return
-    # the model is built exactly as the simulator builds it, from a throw-away bench
-    sim.dut_model = type(sim)(scenario, seed=sim.seed).dut_model
-    sim.scenario = scenario
+    sim.replace_dut(scenario.dut)
 
 
 # =========================================================================== settings, results

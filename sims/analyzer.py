@@ -16,7 +16,13 @@ retune settle of ``retune_settle_rbw_periods / RBW``.
 Detector samples per point (the instrument reports them): swept and zero span
 ``round(B_stat * ST / points)``, FFT ``round(spacing / B_stat)``, at least 1; SAMPLE takes 1.
 A video bandwidth below the RBW smooths on the averaging scale over
-``round(B_stat / (pi * VBW))`` samples (one-pole video filter, averaging time ``1/(pi VBW)``).
+``round(B_stat / (pi * VBW))`` samples (one-pole video filter, averaging time ``1/(pi VBW)``):
+a SAMPLE point is then the average of those samples on the averaging scale, as for AVERAGE.
+
+Markers (:func:`marker_from_trace`) integrate the trace over exactly their band
+(:func:`noisebench.estimator.band_weights_hz`). A noise marker also removes the detector bias
+of the applied settings (the instrument knows its detector) and divides by the ENBW; it says so
+with ``instrument_corrected``.
 """
 
 from __future__ import annotations
@@ -41,7 +47,9 @@ from noisebench.acquisition import (
     Trace,
     TraceUnit,
 )
+from noisebench.detection import point_model_for
 from noisebench.errors import InputError
+from noisebench.estimator import band_weights_hz
 from noisebench.filters import FilterKind, RbwFilter, window_enbw_bins
 from noisebench.instruments import Analyzer
 from noisebench.sims.clock import SimClock
@@ -309,8 +317,9 @@ class SimAnalyzer(Analyzer):
         with self.lock:
             s = self._settings
             freq = s.frequencies_hz()
-            t0 = self.clock.now_s + self._settle_s(s)
             period = s.sweep_time_s + self.spec.sweep_overhead_s
+            duration = self._settle_s(s) + s.averages * period
+            t0 = self.clock.now_s + self._settle_s(s)
             t_end = t0 + s.averages * period
             spectrum = self.source.spectrum(freq)
             hot = self._hot_fraction(s, t0, period, t_end)
@@ -325,10 +334,11 @@ class SimAnalyzer(Analyzer):
             power_w = generate_trace(self.rng, self._recipe(s), noise_w, tone_w, tone_scale,
                                      exact=self.exact_statistics)
             values = w_to_dbm(np.maximum(power_w, FLOOR_W))
-            elapsed = t_end - self.clock.now_s
-            self.clock.advance(elapsed)
+            # a clock that counts wall time may already be past t_end when the computation was
+            # slow: time then only stops moving for the rest of the acquisition
+            self.clock.advance(max(t_end - self.clock.now_s, 0.0))
             trace = Trace(freq_hz=freq, values=values, unit=TraceUnit.DBM, settings=s,
-                          acquisition_time_s=elapsed, instrument=self.identity)
+                          acquisition_time_s=duration, instrument=self.identity)
             self.last_trace = trace
             return trace
 
@@ -438,11 +448,19 @@ def marker_from_trace(trace: Trace, freq_hz: float, kind: MarkerKind,
                       band_hz: float | None = None) -> MarkerReading:
     """Marker value computed from an existing trace (what ``CALC:MARK:Y?`` reports).
 
-    BAND_POWER integrates the trace over ``band_hz`` (default 5 RBW) as
-    ``sum(P_i) * spacing / ENBW``; NOISE_DENSITY averages the points within ``band_hz``
-    (default the larger of one RBW and 5 point spacings) and divides by the ENBW. Both are
-    flagged ``instrument_corrected`` when the trace averages power (RMS detector or power
-    averaging), i.e. when no detector bias remains; otherwise the raw value is returned.
+    Both functions integrate the displayed trace over exactly ``band_hz`` around ``freq_hz``:
+    ``B = sum(w_i P_i) / ENBW`` with each point weighted by the Hz of the band its cell covers
+    (:func:`~noisebench.estimator.band_weights_hz`); in zero span ``B = mean(P) * band / ENBW``.
+    The band must lie inside the trace; the automatic band (BAND_POWER 5 RBW, NOISE_DENSITY the
+    larger of one RBW and 5 point spacings) shrinks near an edge and stays centred.
+
+    * BAND_POWER reports ``B`` (dBm). It integrates whatever is in the band, tones included, so
+      it applies no noise-only detector correction: ``instrument_corrected`` only when the
+      trace carries no detector bias (RMS detector or power averaging).
+    * NOISE_DENSITY reports ``B / band`` divided by the detector bias of the applied settings
+      (dBm/Hz, normalised by the ENBW), flagged ``instrument_corrected``. For a detector whose
+      noise statistics are unknown (peak) it reports the uncorrected form instead, the mean
+      point power over the band divided by the nominal RBW, not flagged.
     """
     s = trace.settings
     kind = MarkerKind(kind)
@@ -451,33 +469,52 @@ def marker_from_trace(trace: Trace, freq_hz: float, kind: MarkerKind,
     if band_hz is not None and not band_hz > 0:
         raise InputError("marker.band_hz", "must be > 0", value=band_hz)
     power_w = dbm_to_w(trace.values)
-    zero_span = s.span_hz == 0 or s.points == 1
-    spacing = 0.0 if zero_span else s.span_hz / (s.points - 1)
-    if not zero_span and not (s.start_hz - spacing / 2 <= freq_hz <= s.stop_hz + spacing / 2):
-        raise InputError("marker.freq_hz", f"{freq_hz:.6g} Hz is outside the trace "
-                         f"{s.start_hz:.6g}..{s.stop_hz:.6g} Hz",
-                         fix="move the marker inside the span or retune the analyzer")
-    if kind is MarkerKind.BAND_POWER:
-        band = band_hz if band_hz is not None else 5.0 * s.rbw_hz
-        if zero_span:
-            value_w = float(np.mean(power_w)) * band / s.enbw_hz
-        else:
-            sel = np.abs(trace.freq_hz - freq_hz) <= band / 2.0
-            if not np.any(sel):
-                sel = np.abs(trace.freq_hz - freq_hz) == np.min(np.abs(trace.freq_hz - freq_hz))
-            value_w = float(np.sum(power_w[sel])) * spacing / s.enbw_hz
+    if s.span_hz == 0 or s.points == 1:
+        band = band_hz if band_hz is not None else (
+            5.0 * s.rbw_hz if kind is MarkerKind.BAND_POWER else s.rbw_hz)
+        band_power_w = float(np.mean(power_w)) * band / s.enbw_hz
     else:
-        band = band_hz if band_hz is not None else max(s.rbw_hz, 5.0 * spacing)
-        if zero_span:
-            mean_w = float(np.mean(power_w))
-        else:
-            dist = np.abs(trace.freq_hz - freq_hz)
-            sel = dist <= band / 2.0
-            if not np.any(sel):
-                sel = dist == dist.min()
-            mean_w = float(np.mean(power_w[sel]))
-        value_w = mean_w / s.enbw_hz
+        spacing = s.span_hz / (s.points - 1)
+        band = _marker_band(s, freq_hz, kind, band_hz, spacing)
+        weights = band_weights_hz(trace.freq_hz, freq_hz, band)
+        band_power_w = float(weights @ power_w) / s.enbw_hz
+    if kind is MarkerKind.BAND_POWER:
+        value_w, corrected = band_power_w, _unbiased_power(s)
+    else:
+        value_w, corrected = _noise_marker_w(s, band_power_w / band)
     return MarkerReading(
         freq_hz=freq_hz, kind=kind, value_db=float(w_to_dbm(max(value_w, FLOOR_W))),
         band_hz=band, settings=s, acquisition_time_s=trace.acquisition_time_s,
-        instrument=trace.instrument, instrument_corrected=_unbiased_power(s))
+        instrument=trace.instrument, instrument_corrected=corrected)
+
+
+def _marker_band(s: AcquisitionSettings, freq_hz: float, kind: MarkerKind,
+                 band_hz: float | None, spacing: float) -> float:
+    """The marker's band, Hz: inside the trace's cells (start - spacing/2 .. stop + spacing/2)."""
+    lo, hi = s.start_hz - spacing / 2.0, s.stop_hz + spacing / 2.0
+    if not lo <= freq_hz <= hi:
+        raise InputError("marker.freq_hz", f"{freq_hz:.6g} Hz is outside the trace "
+                         f"{s.start_hz:.6g}..{s.stop_hz:.6g} Hz",
+                         fix="move the marker inside the span or retune the analyzer")
+    room = 2.0 * min(freq_hz - lo, hi - freq_hz)  # widest band centred on the marker
+    if band_hz is None:
+        default = 5.0 * s.rbw_hz if kind is MarkerKind.BAND_POWER else max(s.rbw_hz,
+                                                                           5.0 * spacing)
+        if room <= 0.0:
+            raise InputError("marker.freq_hz", f"{freq_hz:.6g} Hz is on the edge of the trace, "
+                             "so no band fits around it", fix="move the marker inside the span")
+        return min(default, room)
+    if band_hz > room * (1.0 + 1e-9) + 1e-9 * spacing:
+        raise InputError("marker.band_hz", f"{freq_hz:.6g} +/- {band_hz / 2:.6g} Hz extends "
+                         f"beyond the trace ({lo:.6g}..{hi:.6g} Hz)",
+                         fix="narrow the band, move the marker or widen the span")
+    return float(band_hz)
+
+
+def _noise_marker_w(s: AcquisitionSettings, displayed_w_per_hz: float) -> tuple[float, bool]:
+    """(noise-marker density in W/Hz, corrected?) from the displayed band power per Hz."""
+    try:
+        ratio = point_model_for(s, field="settings").mean_ratio()
+    except InputError:  # peak detectors: no known noise statistics, so no correction
+        return displayed_w_per_hz * s.enbw_hz / s.rbw_hz, False
+    return displayed_w_per_hz / ratio, True

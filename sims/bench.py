@@ -49,7 +49,14 @@ from noisebench.sims.models import (
     mismatched_temperature_k,
 )
 from noisebench.sims.noise_source import ANALYZER_DRIVE, SimNoiseSource, SimSupply
-from noisebench.sims.scenario import CableSpec, Scenario, deep_merge, load_scenario, nest_overrides
+from noisebench.sims.scenario import (
+    CableSpec,
+    DutSpec,
+    Scenario,
+    deep_merge,
+    load_scenario,
+    nest_overrides,
+)
 
 logger = logging.getLogger(__name__)
 
@@ -103,6 +110,20 @@ def _expand_lines(scenario: Scenario) -> list[tuple[float, float]]:
                      for f, p in lines for n in (-2, -1, 1, 2)]
         lines += sidebands
     return lines
+
+
+def _dut_model(d: DutSpec) -> DutModel:
+    """The DUT's physics model from its scenario spec (tables, ripple, P1dB, reflections)."""
+    return DutModel(
+        freq_hz=np.asarray(d.freq_hz, dtype=float),
+        gain_table_db=np.asarray(d.gain_db, dtype=float),
+        nf_table_db=None if d.nf_db is None else np.asarray(d.nf_db, dtype=float),
+        passive_temperature_k=d.passive_temperature_k, ripple_db=d.gain_ripple_db,
+        ripple_period_hz=d.gain_ripple_period_hz,
+        ripple_phase_rad=float(np.deg2rad(d.gain_ripple_phase_deg)),
+        output_p1db_w=None if d.output_p1db_dbm is None else float(dbm_to_w(d.output_p1db_dbm)),
+        input_gamma=d.input_reflection.complex, output_gamma=d.output_reflection.complex,
+        spurs=tuple((s.freq_hz, float(dbm_to_w(s.level_dbm))) for s in d.spurs))
 
 
 class _AnalyzerConnector:
@@ -161,17 +182,8 @@ class SimulatedBench:
         return cls(load_scenario(name_or_path, **overrides), seed=seed)
 
     def _build_models(self, sc: Scenario) -> None:
-        d, ns, an = sc.dut, sc.noise_source, sc.analyzer
-        self.dut_model = DutModel(
-            freq_hz=np.asarray(d.freq_hz, dtype=float),
-            gain_table_db=np.asarray(d.gain_db, dtype=float),
-            nf_table_db=None if d.nf_db is None else np.asarray(d.nf_db, dtype=float),
-            passive_temperature_k=d.passive_temperature_k, ripple_db=d.gain_ripple_db,
-            ripple_period_hz=d.gain_ripple_period_hz,
-            ripple_phase_rad=float(np.deg2rad(d.gain_ripple_phase_deg)),
-            output_p1db_w=None if d.output_p1db_dbm is None else float(dbm_to_w(d.output_p1db_dbm)),
-            input_gamma=d.input_reflection.complex, output_gamma=d.output_reflection.complex,
-            spurs=tuple((s.freq_hz, float(dbm_to_w(s.level_dbm))) for s in d.spurs))
+        ns, an = sc.noise_source, sc.analyzer
+        self.dut_model = _dut_model(sc.dut)
         self.input_cable = _cable(sc.input_cable, sc.ambient_k)
         self.output_cable = _cable(sc.output_cable, sc.ambient_k)
         self.source_model = NoiseSourceModel(
@@ -202,6 +214,22 @@ class SimulatedBench:
             raise InputError("path", f"unknown path {path!r}",
                              fix="use 'dut', 'through' or 'termination'") from None
         logger.debug("bench path -> %s", self.path.value)
+
+    def replace_dut(self, spec: DutSpec) -> None:
+        """Put another DUT on the bench (station mode: the next unit); nothing else changes.
+
+        The model is built from ``spec`` as at construction and ``scenario.dut`` becomes
+        ``spec``. Time, random state, the operator's ENR table, the path, the analyzer's
+        settings and the THROUGH / TERMINATION paths stay as they are.
+        """
+        if not isinstance(spec, DutSpec):
+            raise InputError("dut", f"must be a DUT spec of a scenario (got "
+                             f"{type(spec).__name__})",
+                             fix="pass Scenario.dut, e.g. load_scenario(name, dut__...).dut")
+        model = _dut_model(spec)
+        self.scenario = self.scenario.model_copy(update={"dut": spec})
+        self.dut_model = model
+        logger.debug("DUT replaced by %r", spec.name)
 
     def reset(self) -> None:
         """Reboot: analyzer settings back to their power-on defaults, noise drive off."""

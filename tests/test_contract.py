@@ -11,6 +11,8 @@ import pytest
 from noisebench.acquisition import (
     AcquisitionRequest,
     AcquisitionSettings,
+    AveragingScale,
+    Detector,
     MarkerKind,
     MarkerReading,
     Trace,
@@ -18,7 +20,7 @@ from noisebench.acquisition import (
 )
 from noisebench.drivers import AnalyzerDriveNoiseSource, ScpiAnalyzer, open_analyzer
 from noisebench.errors import InputError, InstrumentError
-from noisebench.estimator import estimate_density
+from noisebench.estimator import density_from_marker, estimate_density
 from noisebench.instruments import Analyzer, NoiseSource
 from noisebench.sims.bench import SimulatedBench
 
@@ -98,17 +100,29 @@ def test_markers_of_both_kinds(backend):
         assert reading.instrument_corrected is True  # RMS detector, power averaging
     assert power.kind is MarkerKind.BAND_POWER and power.band_hz == band
     assert density.kind is MarkerKind.NOISE_DENSITY
-    # noise: the power in the band is the density times the band. Allowed: the band's
-    # discretisation to whole trace points (one point spacing) plus 5 sigma of two
-    # independent readings, each of averages x band / B_stat independent samples
-    # (reference: radiometer equation, reference.md section 7)
-    spacing = settings.span_hz / (settings.points - 1)
+    # noise: the power in the band is the density times the band, both integrated over exactly
+    # that band; allowed: 5 sigma of two independent readings, each of averages x band / B_stat
+    # independent samples (reference: radiometer equation, reference.md section 7)
     n_independent = settings.averages * band / settings.rbw_filter.stat_bw_hz(settings.rbw_hz)
     sigma_db = 10 / math.log(10) * math.sqrt(2.0 / n_independent)
-    allowed = 10 * math.log10(1 + spacing / band) + 5 * sigma_db
-    assert abs(power.value_db - density.value_db - 10 * math.log10(band)) < allowed
+    assert abs(power.value_db - density.value_db - 10 * math.log10(band)) < 5 * sigma_db
     with pytest.raises(InputError):
         sa.read_marker(3e9, MarkerKind.NOISE_DENSITY)
+
+
+def test_noise_marker_is_corrected_for_log_averaging_on_every_back_end(backend):
+    sa = backend.analyzer
+    sa.configure(REQUEST.model_copy(update={
+        "averages": 2000, "detector": Detector.SAMPLE,
+        "averaging_scale": AveragingScale.LOG_POWER}))
+    reading = sa.read_marker(1.5e9, MarkerKind.NOISE_DENSITY, 5e6)
+    # the instrument removed the log-average bias and divided by the ENBW, and says so
+    # (CALC:MARK:FUNC:CORR? on the SCPI back end)
+    assert reading.instrument_corrected is True
+    density = density_from_marker(reading)
+    assert density.bias_correction_db == 0.0
+    truth = backend.bench.truth(1.5e9)["displayed_dut_cold_w_per_hz"][0]
+    assert abs(density.density_w_per_hz - truth) < 5 * density.u_density_w_per_hz
 
 
 def test_noise_source_switching_is_seen_in_the_trace(backend):

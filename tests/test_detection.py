@@ -269,6 +269,11 @@ def test_detector_mapping():
     assert point_model(Detector.RMS, AveragingScale.LOG_POWER, 5, 4) == PointModel(GEO, 5, 4)
     # SAMPLE detector: one sample per point, whatever else is reported as unknown
     assert point_model(Detector.SAMPLE, AveragingScale.VOLTAGE, 3, None) == PointModel(VOLT, 3)
+    assert point_model(Detector.SAMPLE, AveragingScale.VOLTAGE, 3, 1) == PointModel(VOLT, 3)
+    # SAMPLE with k > 1 video samples: the video filter averages on the display scale, like the
+    # AVERAGE detector, so N sweeps hold the scale average of N * k single samples
+    assert point_model(Detector.SAMPLE, AveragingScale.LOG_POWER, 5, 4) == PointModel(GEO, 20)
+    assert point_model(Detector.SAMPLE, AveragingScale.VOLTAGE, 3, 6) == PointModel(VOLT, 18)
     # power scale: AVERAGE and RMS agree (both are power means of N*k samples)
     a = point_model(Detector.AVERAGE, AveragingScale.POWER, 5, 4)
     r = point_model(Detector.RMS, AveragingScale.POWER, 5, 4)
@@ -312,7 +317,7 @@ def test_video_filter_smoothing_needs_the_sample_count():
     assert wide == PointModel(GEO, 10, 1.0)
     told = point_model_for(_settings(averaging_scale=AveragingScale.LOG_POWER,
                                      detector_samples=6.5, **narrow))
-    assert told == PointModel(GEO, 10, 6.5)
+    assert told == PointModel(GEO, 65, 1.0)  # 10 sweeps x 6.5 video samples on the log scale
 
 
 @pytest.mark.parametrize("bad", [0, -1, float("nan"), float("inf")])

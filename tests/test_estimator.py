@@ -12,6 +12,7 @@ domain. Seeds are fixed; tolerances come from the statistics (5 standard errors,
 from __future__ import annotations
 
 import math
+import zlib
 
 import numpy as np
 import pytest
@@ -167,7 +168,8 @@ CONFIGS = {
 
 @pytest.mark.parametrize("name", list(CONFIGS))
 def test_single_trace_recovers_density_within_stated_uncertainty(name):
-    trace = synthetic_traces(seed=hash(name) % 1000, **CONFIGS[name])[0]
+    # a fixed seed per case (str hash() changes with every interpreter: PYTHONHASHSEED)
+    trace = synthetic_traces(seed=zlib.crc32(name.encode()) % 1000, **CONFIGS[name])[0]
     d = estimate_density(trace)
     assert abs(d.density_w_per_hz - D_TRUE) < Z * d.u_density_w_per_hz
     assert d.freq_hz == pytest.approx(F0)
@@ -461,6 +463,12 @@ def _dbm(w: float) -> float:
     return 10 * math.log10(w / 1e-3)
 
 
+def _gaussian_corr_matrix(n: int, spacing_rbw: float) -> np.ndarray:
+    """rho(|i-j| spacing) for the Gaussian RBW, rho = exp(-2 ln2 x^2) [reference §6a]."""
+    lags = np.subtract.outer(np.arange(n), np.arange(n))
+    return np.exp(-2 * math.log(2) * (lags * spacing_rbw) ** 2)
+
+
 def test_band_power_marker():
     s = _marker_settings()
     r = MarkerReading(freq_hz=F0, kind=MarkerKind.BAND_POWER, value_db=_dbm(D_TRUE * 1e6),
@@ -468,11 +476,32 @@ def test_band_power_marker():
     d = density_from_marker(r)
     assert d.density_w_per_hz == pytest.approx(D_TRUE, rel=1e-12)  # integrated band: no ENBW
     assert d.bias_correction_db == 0.0 and d.band_hz == 1e6 and d.acquisition_time_s == 0.3
-    n = 101  # points 10 kHz apart in 1 MHz
-    rel_u = math.sqrt(_gaussian_corr_sum(n, 0.1) / 40) / n
-    assert d.relative_u == pytest.approx(rel_u, rel=1e-6)
+    # the band integrates exactly 1 MHz: 101 points 10 kHz apart, the two end points each
+    # standing for half a spacing inside the band
+    n = 101
+    w = np.ones(n)
+    w[[0, -1]] = 0.5
+    rel_u = math.sqrt(w @ _gaussian_corr_matrix(n, 0.1) @ w / 40) / w.sum()
+    assert d.bins_used == n and d.relative_u == pytest.approx(rel_u, rel=1e-6)
     # radiometer equation: averages x samples x band / B_stat (reference.md §7), edge effect
     assert d.independent_samples == pytest.approx(40 * 1e6 / GAUSSIAN.stat_bw_hz(1e5), rel=0.1)
+
+
+def test_band_power_marker_off_the_grid_uses_the_points_the_band_touches():
+    s = _marker_settings()
+    f = F0 + 3.7e3  # band edges inside cells, 3.7 kHz off the grid
+    r = MarkerReading(freq_hz=f, kind=MarkerKind.BAND_POWER, value_db=_dbm(D_TRUE * 55e3),
+                      band_hz=55e3, settings=s)
+    d = density_from_marker(r)
+    assert d.density_w_per_hz == pytest.approx(D_TRUE, rel=1e-12)
+    # cells [f_i - 5 kHz, f_i + 5 kHz] against the band f +/- 27.5 kHz: shares in 10 kHz units
+    lo, hi = f - 27.5e3, f + 27.5e3
+    grid = s.frequencies_hz()
+    share = np.clip(np.minimum(grid + 5e3, hi) - np.maximum(grid - 5e3, lo), 0, None) / 1e4
+    w = share[share > 0]
+    assert d.bins_used == w.size == 6
+    rel_u = math.sqrt(w @ _gaussian_corr_matrix(w.size, 0.1) @ w / 40) / w.sum()
+    assert d.relative_u == pytest.approx(rel_u, rel=1e-6)
 
 
 def test_band_power_marker_log_scale_bias():

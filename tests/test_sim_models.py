@@ -561,7 +561,7 @@ def test_interference_lines_are_present_in_every_path():
         assert line_read == pytest.approx(line_w, abs=5 * sigma)
 
 
-def test_noise_density_marker_is_corrected_only_for_power_averaging():
+def test_noise_density_marker_reads_the_true_density_with_any_averaging():
     bench = clean_bench()
     bench.set_path(Path.TERMINATION)
     s = bench.analyzer.configure(request(span_hz=20e6, rbw_hz=100e3, points=1001, averages=400,
@@ -577,14 +577,202 @@ def test_noise_density_marker_is_corrected_only_for_power_averaging():
                                      attenuation_db=0.0, detector=Detector.SAMPLE,
                                      averaging_scale=AveragingScale.LOG_POWER))
     r = bench.analyzer.read_marker(2e9, MarkerKind.NOISE_DENSITY, band_hz=10e6)
-    assert not r.instrument_corrected
-    # reference.md §6b: log averaging reads 10 log10(e) gamma low; log samples scatter pi/sqrt6
-    bias = -c_db * np.euler_gamma
+    # a noise marker removes the detector bias it knows (reference.md §6b: log averaging reads
+    # 10 log10(e) gamma = 2.51 dB low) and says so; log samples scatter pi / sqrt(6)
+    assert r.instrument_corrected
     tol = 5 * c_db * (np.pi / np.sqrt(6)) / np.sqrt(looks)
-    assert r.value_db == pytest.approx(expected + bias, abs=tol)
+    assert r.value_db == pytest.approx(expected, abs=tol)
     with pytest.raises(InputError) as err:
         bench.analyzer.read_marker(3e9, MarkerKind.NOISE_DENSITY)
     assert err.value.field == "marker.freq_hz"
+
+
+NOISE_MARKER_CASES = {
+    "rms-power": dict(detector=Detector.RMS),
+    "sample-log": dict(detector=Detector.SAMPLE, averaging_scale=AveragingScale.LOG_POWER),
+    "sample-voltage": dict(detector=Detector.SAMPLE, averaging_scale=AveragingScale.VOLTAGE),
+    "average-log": dict(detector=Detector.AVERAGE, averaging_scale=AveragingScale.LOG_POWER),
+    "sample-log-narrow-vbw": dict(detector=Detector.SAMPLE, vbw_hz=10e3,
+                                  averaging_scale=AveragingScale.LOG_POWER),
+}
+
+
+@pytest.mark.parametrize("case", list(NOISE_MARKER_CASES))
+def test_noise_density_marker_agrees_exactly_with_the_trace_estimate(case):
+    from noisebench.estimator import density_from_marker, estimate_density
+    from noisebench.sims.analyzer import marker_from_trace
+
+    bench = clean_bench(seed=4)
+    bench.set_path(Path.TERMINATION)
+    s = bench.analyzer.configure(request(span_hz=10e6, rbw_hz=100e3, points=201, averages=10,
+                                         attenuation_db=0.0, **NOISE_MARKER_CASES[case]))
+    if case in ("average-log", "sample-log-narrow-vbw"):
+        assert s.detector_samples > 1  # the cases that need the sample count
+    trace = bench.analyzer.acquire_trace()
+    band = 21 * s.span_hz / (s.points - 1)  # band edges on cell edges: exactly 21 points
+    reading = marker_from_trace(trace, 2e9, MarkerKind.NOISE_DENSITY, band)
+    # the marker is bias-corrected and divided by the ENBW, and it says so; the estimator then
+    # adds nothing, and both read the same number from the same points
+    assert reading.instrument_corrected
+    from_marker = density_from_marker(reading)
+    from_trace = estimate_density(trace, freq_hz=2e9, band_hz=band, reject_spurs=False)
+    assert from_trace.bins_used == 21
+    ratio = from_marker.density_w_per_hz / from_trace.density_w_per_hz
+    assert ratio == pytest.approx(1.0, rel=1e-9)  # (W/Hz values: compare the ratio)
+    assert from_marker.bias_correction_db == 0.0
+
+
+def test_noise_density_marker_of_a_peak_detector_is_raw_and_says_so():
+    from noisebench.sims.analyzer import marker_from_trace
+
+    bench = clean_bench()
+    bench.set_path(Path.TERMINATION)
+    s = bench.analyzer.configure(request(span_hz=10e6, rbw_hz=100e3, points=201,
+                                         detector=Detector.PEAK, attenuation_db=0.0))
+    trace = bench.analyzer.acquire_trace()
+    band = 21 * s.span_hz / (s.points - 1)
+    reading = marker_from_trace(trace, 2e9, MarkerKind.NOISE_DENSITY, band)
+    # no known noise statistics: the uncorrected form (mean point power / nominal RBW)
+    assert not reading.instrument_corrected
+    inside = np.abs(trace.freq_hz - 2e9) < band / 2
+    raw = float(np.mean(dbm_to_w(trace.values[inside]))) / s.rbw_hz
+    assert dbm_to_w(reading.value_db) / raw == pytest.approx(1.0, rel=1e-12)
+
+
+def _flat_trace(level_dbm: float = -90.0, **kw):
+    from noisebench.acquisition import AcquisitionSettings, Trace
+
+    fields = dict(center_hz=2e9, span_hz=1e6, rbw_hz=30e3, detector=Detector.RMS,
+                  averaging_scale=AveragingScale.POWER, averages=1, points=101,
+                  detector_samples=1.0)
+    fields.update(kw)
+    s = AcquisitionSettings(**fields)
+    return Trace(freq_hz=s.frequencies_hz(), values=np.full(s.points, level_dbm), settings=s)
+
+
+@pytest.mark.parametrize(("freq_hz", "band_hz"), [(2e9, 500e3), (2e9 + 3.3e3, 123.4e3),
+                                                  (2e9 - 0.2e6, 40e3), (2e9, 1e6 + 10e3),
+                                                  (2e9 + 1e3, 4e3)])
+def test_band_power_marker_integrates_exactly_the_band(freq_hz, band_hz):
+    from noisebench.sims.analyzer import marker_from_trace
+
+    trace = _flat_trace()
+    s = trace.settings
+    reading = marker_from_trace(trace, freq_hz, MarkerKind.BAND_POWER, band_hz)
+    # flat noise: P per point is density x ENBW, so the band holds density x band exactly
+    # (before: n points x spacing, one spacing too wide for a band of whole spacings)
+    density = float(dbm_to_w(-90.0)) / s.enbw_hz
+    assert reading.band_hz == band_hz
+    assert dbm_to_w(reading.value_db) / (density * band_hz) == pytest.approx(1.0, rel=1e-12)
+
+
+def test_band_power_and_noise_markers_share_one_band_definition():
+    from noisebench.sims.analyzer import marker_from_trace
+
+    bench = clean_bench(seed=2)
+    bench.set_path(Path.TERMINATION)
+    bench.analyzer.configure(request(span_hz=10e6, rbw_hz=100e3, points=201, averages=3,
+                                     attenuation_db=0.0))
+    trace = bench.analyzer.acquire_trace()
+    for freq, band in [(2e9, 1e6), (2e9 + 17e3, 333e3), (1.998e9, 60e3)]:
+        power = marker_from_trace(trace, freq, MarkerKind.BAND_POWER, band)
+        density = marker_from_trace(trace, freq, MarkerKind.NOISE_DENSITY, band)
+        assert power.instrument_corrected and density.instrument_corrected
+        # power averaging, no detector bias: the density marker is the band power / band
+        ratio = dbm_to_w(density.value_db) * band / dbm_to_w(power.value_db)
+        assert ratio == pytest.approx(1.0, rel=1e-12)
+
+
+def test_marker_band_must_lie_inside_the_trace():
+    from noisebench.sims.analyzer import marker_from_trace
+
+    trace = _flat_trace()
+    s = trace.settings
+    spacing = s.span_hz / (s.points - 1)
+    with pytest.raises(InputError) as err:  # the trace covers span + one spacing
+        marker_from_trace(trace, 2e9, MarkerKind.BAND_POWER, s.span_hz + 2 * spacing)
+    assert err.value.field == "marker.band_hz"
+    # the automatic band shrinks near an edge and stays centred on the marker
+    near = s.start_hz + 2 * spacing
+    for kind in MarkerKind:
+        reading = marker_from_trace(trace, near, kind)
+        assert reading.band_hz == pytest.approx(5 * spacing)
+        assert near - reading.band_hz / 2 >= s.start_hz - spacing / 2 - 1e-6
+
+
+def test_band_weights_integrate_the_piecewise_constant_trace():
+    from noisebench.estimator import band_weights_hz
+
+    rng = np.random.default_rng(3)
+    freq = 1e9 + np.arange(57) * 2.5e3  # cells [f - 1.25 kHz, f + 1.25 kHz]
+    values = rng.exponential(size=freq.size)
+    edges = np.append(freq - 1.25e3, freq[-1] + 1.25e3)
+    cumulative = np.concatenate([[0.0], np.cumsum(values * 2.5e3)])
+
+    def integral(lo, hi):  # the exact integral of the step function, from its antiderivative
+        return float(np.interp(hi, edges, cumulative) - np.interp(lo, edges, cumulative))
+
+    for centre, band in [(1.00007e9, 31e3), (1e9, 2.5e3), (1.0000713e9, 1.1e3),
+                         (freq.mean(), 57 * 2.5e3)]:
+        w = band_weights_hz(freq, centre, band)
+        assert np.sum(w) == pytest.approx(band, rel=1e-12)
+        assert np.all(w >= 0) and np.all(w <= 2.5e3 * (1 + 1e-12))
+        assert float(w @ values) == pytest.approx(integral(centre - band / 2, centre + band / 2),
+                                                  rel=1e-12)
+    with pytest.raises(InputError) as err:
+        band_weights_hz(freq, 1e9, 0.0)
+    assert err.value.field == "band_hz"
+
+
+def test_acquisition_on_a_real_time_clock_never_moves_time_backwards():
+    bench = clean_bench()
+    bench.analyzer.configure(request(averages=4))
+    expected = bench.analyzer.expected_acquisition_time_s()
+    # a clock that counts wall time a billion-fold: computing the trace takes longer (on this
+    # clock) than the acquisition itself, so the end time has passed when the trace is ready
+    bench.clock.real_time_factor = 1e9
+    before = bench.clock.now_s
+    trace = bench.analyzer.acquire_trace()
+    assert bench.clock.now_s >= before + expected
+    assert trace.acquisition_time_s == pytest.approx(expected, rel=1e-12)  # instrument time
+
+
+def test_replace_dut_swaps_only_the_dut():
+    bench = SimulatedBench.from_scenario("demo-lna", seed=7)
+    bench.analyzer.configure(request(averages=2))
+    bench.set_path(Path.THROUGH)
+    bench.analyzer.acquire_trace()
+    clock, enr, settings = bench.clock.now_s, bench.enr_table, bench.analyzer.settings
+    through = bench.truth(2e9)["displayed_through_cold_w_per_hz"][0]
+    dut = bench.scenario.dut
+    other = dut.model_copy(update={"name": "unit 2", "nf_db": [v + 1.0 for v in dut.nf_db],
+                                   "gain_db": [v - 2.0 for v in dut.gain_db]})
+    bench.replace_dut(other)
+    truth = bench.truth(2e9)
+    nf = np.interp(2e9, dut.freq_hz, dut.nf_db) + 1.0
+    assert truth["nf_db"][0] == pytest.approx(nf, abs=1e-9)
+    assert bench.scenario.dut == other and bench.scenario.analyzer == load_scenario(
+        "demo-lna").analyzer
+    # nothing else moved: time, the operator's ENR table, settings, path, the other paths
+    assert bench.clock.now_s == clock and bench.enr_table == enr
+    assert bench.analyzer.settings == settings and bench.path is Path.THROUGH
+    assert truth["displayed_through_cold_w_per_hz"][0] == through
+    with pytest.raises(InputError) as err:
+        bench.replace_dut({"name": "not a spec"})
+    assert err.value.field == "dut"
+
+
+def test_station_installs_a_unit_through_replace_dut():
+    from noisebench.station import install_scenario_dut
+
+    bench = SimulatedBench.from_scenario("demo-lna", seed=7)
+    calls = []
+    original = bench.replace_dut
+    bench.replace_dut = lambda spec: (calls.append(spec), original(spec))[1]
+    unit = load_scenario("demo-lna", dut__nf_db=[2.0] * 14, dut__name="unit 3")
+    install_scenario_dut(bench, unit)
+    assert calls == [unit.dut] and bench.scenario.dut == unit.dut
+    assert bench.truth(2e9)["nf_db"][0] == pytest.approx(2.0, abs=1e-9)
 
 
 def test_reset_restores_power_on_settings():

@@ -272,6 +272,46 @@ def test_reported_detector_samples_match_the_scatter():
     assert rel_var == pytest.approx(1 / k, abs=5 * (1 / k) * math.sqrt(2 / n + 6 / (k * n)))
 
 
+def _geometric_mean_moments(m: float) -> tuple[float, float]:
+    """Mean and relative variance of the geometric mean of m unit-mean exponentials, exactly:
+    E[X^s] = Gamma(1 + s) for an exponential X (reference.md §6b)."""
+    mean = special.gamma(1 + 1 / m) ** m
+    return mean, special.gamma(1 + 2 / m) ** m / mean**2 - 1
+
+
+@pytest.mark.parametrize(("scale", "vbw_hz"), [(AveragingScale.LOG_POWER, 1e3),
+                                               (AveragingScale.LOG_POWER, 300.0),
+                                               (AveragingScale.VOLTAGE, 1e3)])
+def test_sample_detector_behind_a_narrow_video_filter_is_estimated_without_bias(scale, vbw_hz):
+    # A video filter on a log (or linear-voltage) display averages the detected signal on that
+    # scale: k video samples per point, N sweeps -> the scale average of N k single samples.
+    bench = flat_bench(seed=11)
+    bench.set_path(Path.TERMINATION)
+    s = bench.analyzer.configure(AcquisitionRequest(
+        center_hz=2e9, span_hz=20e6, rbw_hz=30e3, vbw_hz=vbw_hz, points=201, averages=4,
+        attenuation_db=0.0, detector=Detector.SAMPLE, averaging_scale=scale))
+    k = s.detector_samples
+    assert k == round(s.rbw_filter.stat_bw_hz(s.rbw_hz) / (math.pi * vbw_hz))  # 14 or 48
+    trace = bench.analyzer.acquire_trace()
+    truth = bench.truth(2e9)["displayed_termination_cold_w_per_hz"][0]
+    m = s.averages * k
+    if scale is AveragingScale.LOG_POWER:
+        ratio, rel_var = _geometric_mean_moments(m)
+    else:
+        ratio, var = _squared_mean_moments(m)
+        rel_var = var / ratio**2
+    # the simulator draws what the model says: raw points read low by the exact ratio
+    # (independent points, 3.3 RBW apart: 201 samples of the point distribution)
+    points_w = dbm_to_w(trace.values) / s.enbw_hz
+    sigma = math.sqrt(rel_var / s.points)
+    assert points_w.mean() / truth == pytest.approx(ratio, abs=5 * sigma * ratio)
+    # and the estimator removes exactly that bias and states that scatter
+    d = estimate_density(trace, reject_spurs=False)
+    assert d.bias_correction_db == pytest.approx(-10 * math.log10(ratio), rel=1e-6)
+    assert d.relative_u == pytest.approx(sigma, rel=1e-3)
+    assert d.density_w_per_hz / truth == pytest.approx(1.0, abs=5 * sigma)
+
+
 # ---------------------------------------------------------------- both methods on the bench -
 
 from noisebench.estimator import estimate_density  # noqa: E402
