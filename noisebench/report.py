@@ -32,7 +32,13 @@ from pathlib import Path
 from typing import Any
 
 from noisebench.errors import InputError
-from noisebench.plots import VERDICT_STYLE, VERDICT_SYMBOL, coverage_text, frequency_scale
+from noisebench.plots import (
+    VERDICT_STYLE,
+    VERDICT_SYMBOL,
+    coverage_text,
+    frequency_scale,
+    nf_error_bars,
+)
 from noisebench.point import PointFlag, PointResult
 from noisebench.results import FLAG_DESCRIPTIONS, REPORT_FILE, RunRecord, nf_extremes, write_atomic
 from noisebench.safety import CAUTIONS as SAFETY_NOTE
@@ -295,7 +301,8 @@ def verdict_html(verdict: Any) -> str:
 
 
 def _kv_table(rows: Iterable[tuple[str, str]]) -> str:
-    body = "".join(f"<tr><th>{_e(key)}</th><td>{value}</td></tr>" for key, value in rows)
+    body = "".join(f"<tr><th>{_e(_keep_together(key))}</th><td>{value}</td></tr>"
+                   for key, value in rows)
     return f'<table class="kv">{body}</table>'
 
 
@@ -455,17 +462,20 @@ def _header(record: RunRecord) -> str:
 def _how_to_read(record: RunRecord) -> str:
     """One short paragraph on what the numbers, bars, verdicts and flags mean."""
     t0 = _t0_k(record)
-    parts = [f"NF is the DUT's noise figure referred to T0 = {t0:g} K, after the corrections "
-             "described under Calibration (the measurement system's own noise, losses, source "
-             "temperature)."]
+    parts = [f"NF is the DUT's noise figure referred to T0 = {t0:g} K, corrected for the "
+             "measurement system's own noise (second stage), the losses and the source "
+             "temperature."]
     budgets = _budget_list(record)
     if budgets:
         parts.append(f"U is the expanded uncertainty ({coverage_text(budgets)}) of the full "
-                     "budget, drawn as the error bars; u stat. is the standard uncertainty "
-                     "(k = 1) from the jitter of the noise readings alone.")
+                     "budget; u stat. is the standard uncertainty (k = 1) from the jitter of "
+                     "the noise readings alone.")
+    if nf_error_bars(record)[1].startswith("expanded"):
+        parts.append("The NF error bars are U.")
     else:
-        parts.append("Error bars are u stat., the standard uncertainty (k = 1) from the jitter "
-                     "of the noise readings alone; no full budget was computed for this run.")
+        parts.append("The NF error bars are u stat. (k = 1): "
+                     + ("not every point has a budget." if budgets
+                        else "no full budget was computed for this run."))
     if record.verdict:
         rule = str(record.verdict.get("rule") or "")
         symbols = ", ".join(f"{VERDICT_SYMBOL[w]} {w}" for w in ("pass", "fail",
@@ -626,9 +636,10 @@ def _point_columns(record: RunRecord, freq: FrequencyColumn) -> list[Column]:
                        "standard uncertainty from the jitter of the noise readings only"),
                 Column("Te (K)", lambda p, b, v: _num(p.te_k, 1),
                        "equivalent input noise temperature of the DUT")]
+    verdicts = record.verdicts_by_freq()
     gain_expanded = bool(record.verdict) and all(
-        _is_number(v.get("U_gain_db")) for p in points if p.gain_db is not None
-        for v in [record.verdicts_by_freq().get(p.freq_hz) or {}])
+        _is_number((verdicts.get(p.freq_hz) or {}).get("U_gain_db"))
+        for p in points if p.gain_db is not None)
     optional = [
         ("gain_db", Column("Gain (dB)", lambda p, b, v: _num(p.gain_db))),
         ("u_gain_db", Column("U gain (dB)", lambda p, b, v: _num(v.get("U_gain_db")),
@@ -737,17 +748,19 @@ def _failed_checks(verdict: Mapping[str, Any]) -> str:
               if check.get("verdict") in ("fail", "indeterminate")]
     failed.sort(key=lambda pair: pair[1]["margin_db"] if _is_number(pair[1].get("margin_db"))
                 else math.inf)
+    freq = FrequencyColumn.of([e["freq_hz"] for e, _ in failed if _is_number(e.get("freq_hz"))])
     rows = []
     for entry, check in failed[:FAILED_CHECKS_SHOWN]:
         quantity = str(check.get("quantity", "-"))
-        rows.append([_freq(entry["freq_hz"]) if _is_number(entry.get("freq_hz")) else "-",
+        margin = check.get("margin_db")
+        rows.append([freq.cell(entry.get("freq_hz")),
                      _e(QUANTITY_WORDS.get(quantity, quantity)), _e(check.get("kind", "-")),
                      _num(check.get("limit")), _num(check.get("value")), _num(check.get("U")),
-                     _num(check.get("margin_db")), verdict_html(check["verdict"]),
-                     _e(check.get("note") or "")])
+                     f"{margin:+.3f}" if _is_number(margin) else "-",
+                     verdict_html(check["verdict"]), _e(check.get("note") or "")])
     if not rows:
         return ""
-    headers = [("Frequency", True), ("Quantity", False), ("Limit kind", False),
+    headers = [(freq.header, True), ("Quantity", False), ("Limit kind", False),
                ("Limit (dB)", True), ("Value (dB)", True), ("U (dB)", True),
                ("Margin (dB)", True), ("Verdict", False), ("Note", False)]
     shown = (f"all {len(failed)}" if len(failed) <= FAILED_CHECKS_SHOWN

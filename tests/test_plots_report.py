@@ -464,9 +464,9 @@ def _finished_run(folder: Path, record: RunRecord) -> RunRecord:
     return load_run(folder)
 
 
-def test_plots_false_draws_nothing_and_the_report_has_no_figures(record, tmp_path):
+def test_plots_false_draws_nothing_and_the_report_has_no_figures(tmp_path):
     folder = tmp_path / "run"
-    _finished_run(folder, record)
+    _finished_run(folder, make_record(n=4))
     code = ("import sys, json\n"
             "from noisebench.results import load_run\n"
             "from noisebench.sequencer import write_outputs\n"
@@ -482,11 +482,11 @@ def test_plots_false_draws_nothing_and_the_report_has_no_figures(record, tmp_pat
     assert "<img" not in text and "Figures" not in text and "Points" in text
 
 
-def test_plots_true_embeds_exactly_the_written_figures(record, tmp_path):
+def test_plots_true_embeds_exactly_the_written_figures(tmp_path):
     from noisebench.sequencer import write_outputs
 
     folder = tmp_path / "run"
-    stored = _finished_run(folder, record)
+    stored = _finished_run(folder, make_record(n=4))
     written = write_outputs(stored, folder, plots=True, report=True)
     pngs = [p for p in written if p.suffix == ".png"]
     assert [p.name for p in written] == [p.name for p in pngs] + ["report.html"]
@@ -557,13 +557,15 @@ def test_report_opens_with_how_to_read_it(record):
     words = html.unescape(re.sub(r"<[^>]+>", "", howto))
     assert words.startswith("How to read this report.")
     assert "T0 = 290 K" in words and "U is the expanded uncertainty (k = 2)" in words
-    assert "u stat." in words and "guarded" in words
+    assert "u stat." in words and "guarded" in words and "The NF error bars are U." in words
     for word in ("pass", "fail", "indeterminate"):
         assert f"{VERDICT_SYMBOL[word]} {word}" in words
     bare = render_report(make_record(budgets=False, verdict=False), {})
     words = html.unescape(re.sub(r"<[^>]+>", "", bare.split('<p class="howto">')[1]
                                  .split("</p>")[0]))
     assert "no full budget" in words and "Decision rule" not in words
+    partial = render_report(record.model_copy(update={"budgets": record.budgets[:-1]}), {})
+    assert "The NF error bars are u stat. (k = 1): not every point has a budget." in partial
 
 
 def test_report_without_plots_argument_renders_figures_in_memory(record, tmp_path):
@@ -595,14 +597,22 @@ def test_report_lists_every_point_with_units_on_every_column(record):
     assert column["2nd-stage corr. (dB)"] == ["0.120"] * len(record.points)
 
 
+def _points_at(freqs_hz) -> RunRecord:
+    base = make_record(n=len(freqs_hz), verdict=False, budgets=False)
+    points = [p.model_copy(update={"freq_hz": f}) for p, f in zip(base.points, freqs_hz,
+                                                                   strict=True)]
+    return base.model_copy(update={"points": points})
+
+
 def test_frequency_column_uses_one_unit_and_one_precision():
-    rec = make_record(n=4, start_hz=1e9, stop_hz=1.6e9)  # 1, 1.17, 1.37, 1.6 GHz
-    rows = table_after(render_report(rec, {}), '<table class="grid points">')
-    freqs = [r[0] for r in rows[1:]]
+    rows = table_after(render_report(_points_at([1.0e9, 1.25e9, 1.5e9, 2.0e9]), {}),
+                       '<table class="grid points">')
     assert rows[0][0] == "Frequency (GHz)"
-    assert len({len(f.split(".")[1]) for f in freqs}) == 1  # the same decimals in every row
-    assert np.allclose([float(f) for f in freqs], [p.freq_hz / 1e9 for p in rec.points],
-                       rtol=0, atol=1e-9)
+    assert [r[0] for r in rows[1:]] == ["1.00", "1.25", "1.50", "2.00"]
+    # irrational (log-spaced) frequencies: 7 significant digits of the top one, no more
+    log_spaced = np.geomspace(1e9, 1.6e9, 4)
+    rows = table_after(render_report(_points_at(log_spaced), {}), '<table class="grid points">')
+    assert [r[0] for r in rows[1:]] == [f"{f / 1e9:.6f}" for f in log_spaced]
 
 
 def test_verdicts_read_as_symbol_and_word(record):
@@ -617,8 +627,9 @@ def test_verdicts_read_as_symbol_and_word(record):
     verdicts = [r[rows[0].index("Verdict")] for r in rows[1:]]
     assert verdicts == [f"{VERDICT_SYMBOL[v['verdict']]} {v['verdict']}"
                         for v in record.verdict["points"]]
+    css_names = {"pass": "pass", "fail": "fail", "indeterminate": "indet", "not_judged": "nj"}
     for word, (colour, _) in VERDICT_STYLE.items():  # the figures' colours, not a second set
-        assert f"--{'indet' if word == 'indeterminate' else 'nj' if word == 'not_judged' else word}:{colour}" in text
+        assert f"--{css_names[word]}:{colour}" in text
 
 
 def test_flags_are_explained_in_words_before_the_table(record):
@@ -817,7 +828,10 @@ def test_a_verdict_from_the_limits_module_is_rendered(record, tmp_path):
     assert judged.verdict["unit"] == verdict.unit.value
     text = render_report(judged, {})
     assert "Limits and verdict" in text and "low &lt;band&gt;" in text
-    assert "Checks not passed" in text
+    checks = table_after(text, "<h3>Checks not passed")
+    assert checks[0][0] == "Frequency (MHz)" and len(checks) > 1
+    margins = [float(r[6]) for r in checks[1:]]
+    assert margins == sorted(margins) and margins[0] < 0  # worst first
     assert f"{VERDICT_SYMBOL['not_judged']} not judged" in text  # points outside every band
     bands = table_after(text, "<h3>Limit bands</h3>")
     assert bands[0] == ["Start", "Stop", "NF max (dB)", "Gain min (dB)", "Name"]
