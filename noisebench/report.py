@@ -1091,7 +1091,9 @@ def _gain_measurement(record: RunRecord) -> str:
               and _is_number(p.get("freq_hz"))]
     level = result.get("generator_level_dbm")
     lead = ("The DUT's gain was measured with the signal generator: a THROUGH pass (cable "
-            "only), then a DUT pass, the tone read in a marker band with the noise removed")
+            "only), then a DUT pass, the tone read in a marker band with the noise removed. "
+            "These are path gains from the generator to the analyzer (the DUT with its input "
+            "cable); the points table shows the DUT's own gain after the loss corrections")
     if _is_number(level):
         lead += f"; generator level {level:.2f} dBm"
     if result.get("level_limited_by"):
