@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import argparse
 import logging
+import math
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -71,6 +72,10 @@ def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
     if args.resume and args.out:
         raise InputError("--out", "cannot be combined with --resume (the run stays in its "
                          "folder)", fix="drop --out")
+    if args.resume:
+        from noisebench.results import check_resumable
+
+        check_resumable(args.resume)  # a wrong folder is refused before any instrument
     session = open_bench(plan.bench, prompt=input)
     try:
         if session.real_hardware:
@@ -90,7 +95,8 @@ def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
     if skipped:
         first = skipped[0]
         print(f"noisebench: error: {len(skipped)} point(s) not measured, first at "
-              f"{first['freq_hz']:.6g} Hz ({first['stage']}): {_one_line(first['reason'])}",
+              f"{first['freq_hz']:.6g} Hz ({first['stage']}): {_one_line(first['reason'])} "
+              f"(once fixed, `noisebench run {args.plan} --resume {folder}` measures them)",
               file=sys.stderr)
         return EXIT_MEASUREMENT
     return EXIT_OK
@@ -156,8 +162,10 @@ def cmd_validate(args: argparse.Namespace, out: TextIO) -> int:
             print(f"ok: {plan.method.value.replace('_', '-')} plan {path.name}, "
                   f"{len(plan.points())} points, analyzer {plan.bench.analyzer.resource}",
                   file=out)
-    for line in problems:
-        print(f"{path.name}: {line}", file=sys.stderr)
+    name = path.name or str(path)
+    for line in problems:  # ENR problems already start with the file's name
+        print(line if line.startswith(f"{name}:") or line.startswith(f"{name} line")
+              else f"{name}: {line}", file=sys.stderr)
     return EXIT_INPUT if problems else EXIT_OK
 
 
@@ -169,6 +177,29 @@ def cmd_info(args: argparse.Namespace, out: TextIO) -> int:
 
 
 # --------------------------------------------------------------------------- parser
+
+
+def positive_seconds(text: str) -> float:
+    """argparse type: a finite duration > 0 s (``nan``, ``inf``, 0 and negatives refused)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds") from None
+    if not (math.isfinite(value) and value > 0):
+        raise argparse.ArgumentTypeError(f"must be a finite number of seconds > 0 (got {text})")
+    return value
+
+
+def non_negative_int(text: str) -> int:
+    """argparse type: an integer >= 0 (simulator seeds)."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"must be >= 0 (got {value})")
+    return value
+
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -199,7 +230,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default="noisebench-demo", metavar="DIR",
                    help="output folder (default: ./noisebench-demo)")
     p.add_argument("--points", type=int, default=56, help="frequency points (default: 56)")
-    p.add_argument("--seed", type=int, default=1, help="simulator seed (default: 1)")
+    p.add_argument("--seed", type=non_negative_int, default=1,
+                   help="simulator seed (default: 1)")
     p.set_defaults(func=cmd_demo)
 
     p = sub.add_parser("estimate", help="forecast time and uncertainty of a plan",
@@ -227,7 +259,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("info", help="versions, VISA back ends, resources, profiles")
     p.add_argument("--no-scan", action="store_true", help="do not list VISA resources")
-    p.add_argument("--timeout", type=float, default=5.0, metavar="S",
+    p.add_argument("--timeout", type=positive_seconds, default=5.0, metavar="S",
                    help="give up listing resources after S seconds (default: 5)")
     p.set_defaults(func=cmd_info)
 

@@ -10,7 +10,7 @@ physical temperature for the Y-factor method, the ambient for the gain method).
 Reference planes: ``input_loss`` lies between the noise source (or termination) and the DUT
 input, outside the THROUGH path; ``output_loss`` lies after the DUT. A file or constant DUT
 gain is the DUT's own; a measured one (substitution against THROUGH) spans the input loss and
-the DUT, see :meth:`noisebench.sequencer.Sequencer._path_gain`.
+the DUT, see :meth:`noisebench.sequencer.Sequencer._stated_gain`.
 """
 
 from __future__ import annotations
@@ -39,12 +39,23 @@ class Corrections:
     enr_extrapolate: str = "refuse"
     gain: Callable[[float], tuple[float, float]] | None = None
 
-    def enr_at(self, freq_hz: float) -> tuple[float, float, bool]:
-        """(ENR dB, its standard uncertainty dB, extrapolated?) at ``freq_hz``."""
+    def enr_at(self, freq_hz: float) -> tuple[float, float | None, bool]:
+        """(ENR dB, its standard uncertainty dB, extrapolated?) at ``freq_hz``.
+
+        The uncertainty is None when the table has no ``u_enr_db`` column: unknown, not zero,
+        so that budgets list the ENR term as omitted instead of showing it as exact."""
         if self.enr_table is None:
             raise InputError("enr.table", "no ENR table", fix="name the ENR table in the plan")
         value = self.enr_table.at(freq_hz, extrapolate=self.enr_extrapolate)
-        return float(value.enr_db), float(value.u_enr_db or 0.0), bool(value.extrapolated)
+        u = None if value.u_enr_db is None else float(value.u_enr_db)
+        return float(value.enr_db), u, bool(value.extrapolated)
+
+    @property
+    def enr_reference(self) -> str:
+        """How the ENR table turns into a hot temperature: its ``enr_reference`` header
+        (``"t0"`` or ``"absolute"``, see :mod:`noisebench.methods.yfactor`), else ``"t0"``."""
+        metadata = getattr(self.enr_table, "metadata", None)
+        return getattr(metadata, "enr_reference", None) or "t0"
 
     def max_enr_db(self) -> float:
         return float(max(self.enr_table.enr_db)) if self.enr_table is not None else 0.0

@@ -63,10 +63,29 @@ def _open_database(args: argparse.Namespace, *, create: bool = False) -> Any:
     from noisebench.database import ResultsDatabase
 
     target = _database_target(args)
-    if not create and "://" not in target and not Path(target).expanduser().is_file():
-        raise InputError("--db", f"no database file {target!r}",
+    missing = _missing_sqlite_file(target)
+    if not create and missing is not None:
+        raise InputError("--db", f"no database file {str(missing)!r}",
                          fix="give an existing file, or an SQLAlchemy URL")
     return ResultsDatabase(target)
+
+
+def _missing_sqlite_file(target: str) -> Path | None:
+    """The SQLite file a path or ``sqlite:///`` URL names, when it does not exist yet."""
+    if "://" not in target:
+        path = Path(target).expanduser()
+        return None if path.is_file() else path
+    try:
+        from sqlalchemy.engine import make_url
+
+        url = make_url(target)
+    except Exception:  # noqa: BLE001 - a malformed URL is reported when it is opened
+        return None
+    if not url.drivername.startswith("sqlite") or url.database in (None, "", ":memory:") \
+            or url.database.startswith("file:"):
+        return None
+    path = Path(url.database).expanduser()
+    return None if path.is_file() else path
 
 
 def _print_json(data: Any, out: TextIO) -> None:
@@ -292,6 +311,8 @@ def _add_db_option(p: argparse.ArgumentParser) -> None:
 
 
 def _register_station(sub: Any) -> None:
+    from noisebench.cli import positive_seconds  # cli imports this module only lazily
+
     p = sub.add_parser(
         "station", help="production: measure a lot unit by unit",
         description="Measure PLAN on unit after unit: serials (or barcode lines "
@@ -313,7 +334,7 @@ def _register_station(sub: Any) -> None:
     p.add_argument("--lot", metavar="LOT", help="lot of units whose line names none")
     p.add_argument("--part-number", metavar="PN", help="part number of units whose line "
                                                        "names none")
-    p.add_argument("--max-cal-age", type=float, metavar="S",
+    p.add_argument("--max-cal-age", type=positive_seconds, metavar="S",
                    help="recalibrate when the calibration is older than S seconds "
                         "(default: the plan's [calibration] max_age_s)")
     p.add_argument("--nominal-units", action="store_true",

@@ -270,7 +270,8 @@ class EnrTable(BaseModel):
 
 
 def _read_source(source: str | Path, name: str | None) -> tuple[str, str]:
-    return read_table_text(source, name, what="ENR table file", text_label="ENR text")
+    text, label = read_table_text(source, name, what="ENR table file", text_label="ENR text")
+    return text.removeprefix("\ufeff"), label  # a byte-order mark (spreadsheet export) is fine
 
 
 def _parse_metadata(items: dict[str, tuple[int, str]], label: str
@@ -301,10 +302,21 @@ def _parse_metadata(items: dict[str, tuple[int, str]], label: str
         return None, coverage_k, problems
 
 
+def _foreign_separator(header: str) -> str | None:
+    """';' or a tab when a header line uses it instead of commas (a spreadsheet's locale)."""
+    if "," in header:
+        return None
+    return next((sep for sep in (";", "\t") if sep in header), None)
+
+
 def _parse_header(line_no: int, line: str, label: str) -> tuple[list[str], list[tuple[str, str]]]:
     cols = [c.strip().lower() for c in line.split(",")]
     problems = []
     where = f"{label} line {line_no}, header"
+    separator = _foreign_separator(line)
+    if separator:
+        return cols, [(where, f"columns are separated by {separator!r}; this format uses "
+                              "commas (and '.' as the decimal point)")]
     for c in cols:
         if c not in _KNOWN_COLUMNS:
             problems.append((where, f"unknown column {c!r} (columns: freq_hz|freq_khz|freq_mhz|"

@@ -36,6 +36,7 @@ from __future__ import annotations
 import logging
 import math
 import re
+import warnings
 from pathlib import Path
 from typing import Any, Literal, NamedTuple
 
@@ -222,11 +223,16 @@ def _row(freq: list[float], gain: float, u: float | None) -> str:
 
 
 def _read_text(source: str | Path, name: str | None) -> tuple[str, str]:
-    return read_table_text(source, name, what="gain/loss table", text_label="gain text")
+    text, label = read_table_text(source, name, what="gain/loss table", text_label="gain text")
+    return text.removeprefix("\ufeff"), label  # a byte-order mark (spreadsheet export) is fine
 
 
 def _parse_header(line: str, where: str) -> tuple[list[str], str, float]:
     cols = [c.strip().lower() for c in line.split(",")]
+    if "," not in line and (";" in line or "\t" in line):
+        separator = ";" if ";" in line else "\t"
+        raise InputError(f"{where}, header", f"columns are separated by {separator!r}",
+                         fix="this format uses commas (and '.' as the decimal point)")
     known = set(_FREQ_COLUMNS) | set(_VALUE_COLUMNS) | {u for u, _ in _VALUE_COLUMNS.values()}
     unknown = [c for c in cols if c not in known]
     if unknown:
@@ -366,7 +372,9 @@ def _read_touchstone(path: Path, u_gain_db: float | None) -> GainTable:
     if not path.is_file():
         raise InputError(str(path), "Touchstone file not found", fix="check the path")
     try:
-        network = skrf.Network(str(path))
+        with warnings.catch_warnings():  # its warnings would reach the user as raw text
+            warnings.simplefilter("ignore")
+            network = skrf.Network(str(path))
     except Exception as exc:  # noqa: BLE001 - scikit-rf raises many kinds on a bad file
         raise InputError(str(path), f"is not a readable Touchstone file: {exc}",
                          fix="check the file (option line '# HZ S MA R 50', data rows)") from None
@@ -376,8 +384,20 @@ def _read_touchstone(path: Path, u_gain_db: float | None) -> GainTable:
     if np.any(magnitude <= 0):
         bad = float(network.f[np.argmax(magnitude <= 0)])
         raise InputError(f"{path.name}, S21", f"is zero at {bad:.6g} Hz (no transmission)")
-    gain = 20.0 * np.log10(magnitude)
+    with np.errstate(invalid="ignore"):
+        gain = 20.0 * np.log10(magnitude)
     u = None if u_gain_db is None else np.full(gain.shape, float(u_gain_db))
+    freq = [float(f) for f in network.f]
+    problems = _column_problems(freq, [float(g) for g in gain],
+                                None if u is None else [float(x) for x in u])
+    if problems:  # the same checks as GainTable, reported as one plain line
+        index, fld, msg = problems[0]
+        where = f"data row {index + 1}" if index >= 0 else "data"
+        if fld == "gain_db":
+            fld = "S21"
+            if not math.isfinite(float(gain[index])):
+                msg = f"is not a finite number (got {float(magnitude[index])!r})"
+        raise InputError(f"{path.name} {where}, {fld}", msg, fix="check the Touchstone file")
     metadata = {"format": "touchstone", "s_parameter": "S21"}
     comments = (network.comments or "").strip()
     if comments:

@@ -68,7 +68,11 @@ except ImportError:  # pragma: no cover
 
 T0_DEFAULT_K = 290.0
 
-_STRICT = ConfigDict(extra="forbid", validate_default=True)
+_STRICT = ConfigDict(extra="forbid", validate_default=True, allow_inf_nan=False)
+#: the most frequency points one segment may hold (a typo in step_hz must not exhaust memory)
+MAX_SEGMENT_POINTS = 100_000
+#: the largest constant loss a plan accepts, dB (beyond it the noise figure is unmeasurable)
+MAX_LOSS_DB = 100.0
 
 
 class PlanError(InputError):
@@ -225,7 +229,7 @@ class Segment(BaseModel):
     freqs_hz: list[float] | None = None
     start_hz: float | None = Field(default=None, gt=0)
     stop_hz: float | None = Field(default=None, gt=0)
-    points: int | None = Field(default=None, ge=1, le=100_000)
+    points: int | None = Field(default=None, ge=1, le=MAX_SEGMENT_POINTS)
     step_hz: float | None = Field(default=None, gt=0)
     spacing: Literal["linear", "log"] = "linear"
     # acquisition overrides (None: the plan's [acquisition] value)
@@ -289,6 +293,11 @@ class Segment(BaseModel):
         if self.step_hz is not None and self.spacing == "log":
             raise InputError("step_hz", "a fixed step needs linear spacing",
                              fix='use points with spacing = "log"')
+        if self.step_hz is not None and (self.stop_hz - self.start_hz) / self.step_hz \
+                >= MAX_SEGMENT_POINTS:
+            raise InputError("step_hz", f"{self.step_hz:g} Hz makes more than "
+                             f"{MAX_SEGMENT_POINTS} points between {self.start_hz:g} and "
+                             f"{self.stop_hz:g} Hz", fix="use a larger step (step_hz is in Hz)")
 
     def frequencies_hz(self) -> np.ndarray:
         """The segment's frequencies, Hz, ascending."""
@@ -370,6 +379,9 @@ class CorrectionsSection(BaseModel):
         if not math.isfinite(value) or value < 0:
             raise InputError(info.field_name, f"must be a finite loss >= 0 dB (got {value!r})",
                              fix="a loss is positive dB; an amplifier is not a loss")
+        if value > MAX_LOSS_DB:
+            raise InputError(info.field_name, f"{value:g} dB is not a plausible loss (at most "
+                             f"{MAX_LOSS_DB:g} dB)", fix="give the loss in dB, not linear")
         return value
 
     @field_validator("source_temperature_k", mode="after")
@@ -653,7 +665,11 @@ def parse_plan(data: dict[str, Any], *, base_dir: Path | None = None,
 def load_plan(path: str | Path, *, check_files: bool = True) -> Plan:
     """Read and validate a TOML plan file. Raises :class:`PlanError` (all problems) or OSError."""
     path = Path(path)
-    text = path.read_text(encoding="utf-8")
+    try:
+        text = path.read_text(encoding="utf-8-sig")  # a byte-order mark (Windows editors) is ok
+    except UnicodeDecodeError as exc:
+        raise PlanError([f"not UTF-8 text (byte {exc.start}); save the plan as UTF-8"],
+                        source=str(path)) from None
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -744,9 +760,11 @@ def _check_bench(plan: Plan) -> list[str]:
     analyzer_sim = plan.bench.analyzer.resource.startswith("sim://")
     if analyzer_sim:
         try:
-            parse_sim_address(plan.bench.analyzer.resource)
+            address = parse_sim_address(plan.bench.analyzer.resource)
         except InputError as exc:
             problems.append(f"bench.analyzer.resource: {exc.message.split(': ', 1)[-1]}")
+        else:
+            problems += _check_scenario(address.scenario)
     others = [("bench.generator.resource", plan.bench.generator.resource
                if plan.bench.generator else None),
               ("bench.noise_source.resource", plan.bench.noise_source.resource)]
@@ -762,6 +780,25 @@ def _check_bench(plan: Plan) -> list[str]:
     return problems
 
 
+def _check_scenario(name: str) -> list[str]:
+    """A ``sim://`` scenario must exist (packaged name or .toml path), as the run will need."""
+    try:
+        from noisebench.sims.scenario import SCENARIO_SUFFIX, available_scenarios
+    except ImportError:  # pragma: no cover - simulator not installed
+        return []
+    names = available_scenarios()
+    if name in names or (Path(name).suffix == SCENARIO_SUFFIX and Path(name).is_file()):
+        return []
+    return [f"bench.analyzer.resource: no scenario {name!r} (use one of {names} "
+            f"or a path to a {SCENARIO_SUFFIX} file)"]
+
+
+def _missing_file(key: str, path: Path) -> str:
+    if path.is_dir():
+        return f"{key}: {str(path)!r} is a folder, not a file (name the file itself)"
+    return f"{key}: file {str(path)!r} not found"
+
+
 def _check_enr(plan: Plan) -> list[str]:
     if plan.method is not Method.Y_FACTOR:
         return []
@@ -772,7 +809,7 @@ def _check_enr(plan: Plan) -> list[str]:
                 '(e.g. table = "enr_ns1234.csv")']
     path = plan.resolve_path(plan.enr.table)
     if not path.is_file():
-        return [f"enr.table: file {str(path)!r} not found"]
+        return [_missing_file("enr.table", path)]
     try:
         from noisebench.enr import EnrTable
 
@@ -794,9 +831,24 @@ def _coverage_problems(key: str, name: str, table_freq_hz: np.ndarray, plan: Pla
     outside = freqs[(freqs < lo * (1 - 1e-12)) | (freqs > hi * (1 + 1e-12))]
     if outside.size == 0 or allow_clamp:
         return []
+    fix = ('narrow the sweep or allow [enr] extrapolate = "clamp"' if key == "enr.table"
+           else "narrow the sweep or extend the table")
     return [f"{key}: {name} covers {lo:g}-{hi:g} Hz but the sweep has {outside.size} point(s) "
-            f"outside it (first {outside[0]:g} Hz); narrow the sweep or allow "
-            'extrapolate = "clamp"']
+            f"outside it (first {outside[0]:g} Hz){_unit_hint(freqs, lo, hi)}; {fix}"]
+
+
+def _unit_hint(freqs_hz: np.ndarray, lo_hz: float, hi_hz: float) -> str:
+    """A hint when the sweep or the table would fit if one of them were read in kHz/MHz/GHz."""
+    def inside(values: np.ndarray, low: float, high: float) -> bool:
+        return bool(np.all((values >= low * (1 - 1e-9)) & (values <= high * (1 + 1e-9))))
+
+    for unit, scale in (("kHz", 1e3), ("MHz", 1e6), ("GHz", 1e9)):
+        if inside(freqs_hz * scale, lo_hz, hi_hz):
+            return f" (the sweep looks like {unit}: plan frequencies are in Hz)"
+        if inside(freqs_hz, lo_hz * scale, hi_hz * scale):
+            return (f" (the table looks like {unit}: name its column "
+                    f"freq_{unit.lower()})")
+    return ""
 
 
 def _check_tables(plan: Plan) -> list[str]:
@@ -810,7 +862,7 @@ def _check_tables(plan: Plan) -> list[str]:
             continue
         path = plan.resolve_path(value)
         if not path.is_file():
-            problems.append(f"{key}: file {str(path)!r} not found")
+            problems.append(_missing_file(key, path))
             continue
         try:
             from noisebench.gain_files import load_gain_table

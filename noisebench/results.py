@@ -334,7 +334,7 @@ def _parse_entry(line: bytes, where: str, journal: _Journal) -> None:
     entry = json.loads(line)
     kind = entry.get("kind") if isinstance(entry, dict) else None
     if kind == "point":
-        point = PointResult.model_validate(entry["point"])
+        point = _clean_point(PointResult.model_validate(entry["point"]))  # finite, as written
         if point.freq_hz in journal.done_freqs_hz:
             text = f"{where}: duplicate point at {point.freq_hz!r} Hz ignored (first one kept)"
             logger.warning(text)
@@ -511,21 +511,23 @@ class RunWriter:
 
     @classmethod
     def resume(cls, folder: Path) -> RunWriter:
-        """Re-open an interrupted (or failed) run to add the missing points."""
+        """Re-open an interrupted or failed run (or a complete one with points the physics
+        refused) to add the missing points."""
         folder = Path(folder)
         info = _read_info(folder)
         lock = _FolderLock(folder / LOCK_FILE)
         lock.acquire()
         try:
-            if info.status == "complete":
-                raise InputError("folder", f"run {info.run_id} in {folder} is already complete",
-                                 fix="start a new run to measure again")
+            check_resumable(folder, info)
+            # points the physics refused are measured again: the resumed run records afresh
+            # whichever it still cannot measure
+            notes = {k: v for k, v in info.notes.items() if k != "skipped_points"}
             journal = _read_journal(folder / JOURNAL_FILE)
             _repair_journal(folder / JOURNAL_FILE, journal)
             if journal.calibrations:
                 info = info.model_copy(update={"calibration": journal.calibrations[-1]})
             info = info.model_copy(update={
-                "status": "running", "ended_at": None,
+                "status": "running", "ended_at": None, "notes": notes,
                 "resumed_at": [*info.resumed_at, _utc_now()]})
             for stale in (RESULTS_JSON_FILE, RESULTS_CSV_FILE):
                 with contextlib.suppress(FileNotFoundError):
@@ -700,6 +702,17 @@ def _repair_journal(path: Path, journal: _Journal) -> None:
 
 
 # ----------------------------------------------------------------------------- reading
+
+
+def check_resumable(folder: str | Path, info: RunInfo | None = None) -> RunInfo:
+    """The run description of ``folder`` if ``resume`` can continue it, else InputError
+    (no run there, or a complete run with no point left to measure). Touches nothing."""
+    folder = Path(folder)
+    info = info or _read_info(folder)
+    if info.status == "complete" and not info.notes.get("skipped_points"):
+        raise InputError("folder", f"run {info.run_id} in {folder} is already complete",
+                         fix="start a new run to measure again")
+    return info
 
 
 def _read_info(folder: Path) -> RunInfo:
@@ -892,7 +905,7 @@ def _summary_table(record: RunRecord) -> list[str]:
 __all__ = [
     "CSV_BUDGET_COLUMNS", "CSV_COLUMNS", "CSV_VERDICT_COLUMNS", "FLAG_DESCRIPTIONS",
     "JOURNAL_FILE", "PLOTS_DIR", "REPORT_FILE", "RESULTS_CSV_FILE", "RESULTS_JSON_FILE",
-    "RUN_INFO_FILE", "RunInfo", "RunRecord", "RunWriter", "collect_versions",
+    "RUN_INFO_FILE", "RunInfo", "RunRecord", "RunWriter", "check_resumable", "collect_versions",
     "csv_columns", "csv_rows", "format_summary", "load_run", "new_run_id", "nf_extremes",
     "results_csv_text", "write_atomic", "write_results",
 ]

@@ -193,11 +193,12 @@ class PowerGuard:
 
     def __init__(self, limits: InputLimits, *, bandwidth_hz: float,
                  declared_gain_db: float | None, enr_db: float, cold_temperature_k: float,
-                 t0_k: float = T0_K) -> None:
+                 t0_k: float = T0_K, declared_nf_db: float | None = None) -> None:
         require_positive("bandwidth_hz", bandwidth_hz)
         self.limits = limits
         self.bandwidth_hz = bandwidth_hz
         self.declared_gain_db = declared_gain_db
+        self.declared_nf_db = declared_nf_db
         self.enr_db = enr_db
         self.cold_temperature_k = cold_temperature_k
         self.t0_k = t0_k
@@ -211,8 +212,13 @@ class PowerGuard:
 
     @property
     def needs_cold_look(self) -> bool:
-        """True until a bound of the DUT's output power exists (declared or measured)."""
-        return self.declared_gain_db is None and self.max_cold_density_w_per_hz is None
+        """True until a bound of the DUT's output power exists (declared or measured).
+
+        A declared gain alone is no upper bound: the DUT adds its own noise ``k Te G B``
+        (10 log10(1 + Te/Th) more: 1.1 dB for NF 10 dB behind ENR 15 dB, 4.5 dB behind ENR 6 dB),
+        so without a declared NF (``expect.dut_nf_db``) the DUT is read cold first."""
+        declared = self.declared_gain_db is not None and self.declared_nf_db is not None
+        return not declared and self.max_cold_density_w_per_hz is None
 
     def expected_hot_power_dbm(self, through: bool) -> float:
         """Upper bound of the total power into the analyzer with the source hot, dBm."""
@@ -221,7 +227,10 @@ class PowerGuard:
             return total_noise_power_dbm(th, 0.0, self.bandwidth_hz)
         estimates = []
         if self.declared_gain_db is not None:
-            estimates.append(total_noise_power_dbm(th, self.declared_gain_db, self.bandwidth_hz))
+            te = 0.0 if self.declared_nf_db is None else \
+                self.t0_k * (10.0 ** (self.declared_nf_db / 10.0) - 1.0)
+            estimates.append(total_noise_power_dbm(th, self.declared_gain_db, self.bandwidth_hz,
+                                                   dut_te_k=te))
         if self.max_cold_density_w_per_hz is not None:
             estimates.append(hot_power_from_cold_density_dbm(
                 self.max_cold_density_w_per_hz, self.enr_db, self.bandwidth_hz,

@@ -191,7 +191,8 @@ def power_guard_for(plan: Plan, session: BenchSession, corrections: Corrections)
     return PowerGuard(
         limits, bandwidth_hz=s.dut_bandwidth_hz or 2.0 * max(p.freq_hz for p in plan.points()),
         declared_gain_db=s.dut_max_gain_db, enr_db=corrections.max_enr_db(),
-        cold_temperature_k=corrections.source_temperature_k, t0_k=corrections.t0_k)
+        cold_temperature_k=corrections.source_temperature_k, t0_k=corrections.t0_k,
+        declared_nf_db=plan.expect.dut_nf_db)
 
 
 # --------------------------------------------------------------------------- the sequencer
@@ -599,6 +600,7 @@ class Sequencer:
         enr_db, u_enr_db, extrapolated = corr.enr_at(freq_hz)
         return calibrate_point(hot, cold, enr_db, cold_temperature_k=corr.source_temperature_k,
                                u_enr_db=u_enr_db, t0_k=corr.t0_k,
+                               enr_reference=corr.enr_reference,
                                enr_extrapolated=extrapolated, calibrated_at=measured_at)
 
     # ----------------------------------------------------------------- rounds
@@ -754,36 +756,39 @@ class Sequencer:
                 readings.get(freq_hz, "hot").combined().density,
                 readings.get(freq_hz, "cold").combined().density, enr_db,
                 cold_temperature_k=corr.source_temperature_k, calibration=cal,
-                u_enr_db=u_enr_db, t0_k=corr.t0_k, enr_extrapolated=extrapolated,
-                input_loss_db=corr.input_loss(freq_hz),
+                u_enr_db=u_enr_db, t0_k=corr.t0_k, enr_reference=corr.enr_reference,
+                enr_extrapolated=extrapolated, input_loss_db=corr.input_loss(freq_hz),
                 input_loss_temperature_k=corr.input_loss_temperature_k,
                 output_loss_db=corr.output_loss(freq_hz),
                 output_loss_temperature_k=corr.output_loss_temperature_k)
         from noisebench.methods.gain import gain_method_point
 
-        path_gain_db, u_gain_db = self._path_gain(freq_hz)
+        gain_db, u_gain_db, holds_input_loss = self._stated_gain(freq_hz)
         loss_in, loss_out = corr.input_loss(freq_hz), corr.output_loss(freq_hz)
         return gain_method_point(
-            readings.get(freq_hz, "dut").combined().density, path_gain_db,
+            readings.get(freq_hz, "dut").combined().density, gain_db,
             floor=calibration.reading("floor", freq_hz), u_gain_db=u_gain_db,
             source_temperature_k=corr.source_temperature_k, t0_k=corr.t0_k,
             input_loss_db=loss_in, input_loss_temperature_k=corr.input_loss_temperature_k,
             output_loss_db=loss_out, output_loss_temperature_k=corr.output_loss_temperature_k,
-            floor_temperature_k=calibration.cold_temperature_k)
+            floor_temperature_k=calibration.cold_temperature_k,
+            gain_includes_losses=holds_input_loss, gain_includes_output_loss=False)
 
-    def _path_gain(self, freq_hz: float) -> tuple[float, float]:
-        """Gain from the source termination to the analyzer, dB, and its uncertainty, dB.
+    def _stated_gain(self, freq_hz: float) -> tuple[float, float, bool]:
+        """The DUT gain as known, dB, its uncertainty, dB, and whether it holds the input loss.
 
-        A file/constant gain is the DUT's own: minus both losses. A measured gain is between
-        the THROUGH planes (input loss and DUT): minus the output loss only."""
+        A file/constant gain is the DUT's own (neither loss). A measured gain is between the
+        THROUGH planes (input loss and DUT, not the output loss). The gain method turns it into
+        the path gain (source termination to analyzer) and records which losses it held, so
+        that budgets move the path gain with a loss's error where the loss was subtracted."""
         corr = self.corrections
         assert corr is not None
         if corr.gain is not None:
             gain_db, u = corr.gain(freq_hz)
-            return gain_db - corr.input_loss(freq_hz) - corr.output_loss(freq_hz), u
+            return gain_db, u, False
         if freq_hz in self._measured_gain:
             gain_db, u = self._measured_gain[freq_hz]
-            return gain_db - corr.output_loss(freq_hz), u
+            return gain_db, u, True
         raise MeasurementError(f"no DUT gain at {freq_hz:.6g} Hz")  # pragma: no cover
 
     def _finish_point(self, point: PointResult, readings: _Readings, budget: TimeBudget,

@@ -135,7 +135,7 @@ def _checked_name(field: str, value: str, line: str) -> str:
 
 def _parse_fields(text: str, line: str) -> dict[str, str]:
     fields: dict[str, str] = {}
-    for part in text.split(";"):
+    for part in text.removesuffix(";").split(";"):  # a scanner's trailing ';' is fine
         key, sep, value = part.partition(":")
         key, value = key.strip().upper(), value.strip()
         if not sep or not key:
@@ -234,7 +234,7 @@ def units_from_file(path: str | Path, *, lot: str | None = None,
                     part_number: str | None = None) -> list[UnitId]:
     """Units listed in a text file, one serial or barcode line per line."""
     path = Path(path)
-    with path.open(encoding="utf-8", newline="") as handle:
+    with path.open(encoding="utf-8-sig", newline="") as handle:  # a byte-order mark is fine
         return units_from_lines(handle.read().splitlines(), lot=lot, part_number=part_number,
                                 source=path.name)
 

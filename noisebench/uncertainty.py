@@ -32,6 +32,10 @@ Measurement models (reference.md §4, §5, §9)
         Te = (A*L*M_out*N_dut - A*N_floor + k*T_term) / (k*G*M_in) - Ts
         (no floor: Te = A*M_out*N_dut / (k*G*M_in) - Ts)
 
+    G is the path gain (termination to analyzer). Where it was made from a gain that did not
+    hold a loss (a DUT's own gain: both; a THROUGH-referenced gain: the output loss), that
+    loss was subtracted from it, so the loss's error enters G as well: G = G_stated / L.
+
     Then losses inside the path are de-embedded (Friis, as the methods do),
     ``Te_DUT = (Te - (L_in - 1)*Tp_in)/L_in - (L_out - 1)*Tp_out/G_DUT``, and
     ``NF = 10*log10(1 + Te_DUT/T0)`` plus any user-defined extra terms (sensitivity in dB/unit).
@@ -897,6 +901,8 @@ class _GainData:
     ts_k: float
     floor: float | None = None
     floor_tk: float | None = None
+    gain_includes_input_loss: bool = True  # False: the stated gain did not hold that loss
+    gain_includes_output_loss: bool = True
 
 
 def _gain_model(d: _GainData, losses: _Losses, t0_k: float,
@@ -908,7 +914,13 @@ def _gain_model(d: _GainData, losses: _Losses, t0_k: float,
         scale = _lin(x.get("d_abs_db", 0.0))
         n_dut = (d.dut * (1.0 + x.get("j_dut", 0.0) / 100.0) * scale
                  * _lin(x.get("d_lin_db", 0.0) + x.get("d_mm_out_db", 0.0)))
-        gain = d.gain_lin * _lin(x.get("d_gain_db", 0.0) + x.get("d_mm_in_db", 0.0))
+        # path gain; a loss the stated gain did not hold was subtracted from it, so an error
+        # in that loss moves the path gain too (dB for dB)
+        gain = d.gain_lin * _lin(x.get("d_gain_db", 0.0) + x.get("d_mm_in_db", 0.0)
+                                 - (0.0 if d.gain_includes_input_loss
+                                    else x.get("d_loss_in_db", 0.0))
+                                 - (0.0 if d.gain_includes_output_loss
+                                    else x.get("d_loss_out_db", 0.0)))
         d_t = x.get("d_ts_k", 0.0)
         ts = d.ts_k + d_t
         if d.floor is not None:
@@ -942,6 +954,8 @@ def gain_method_budget(
     t0_k: float = T0_K,
     reflections: Reflections | None = None,
     method: Literal["gum", "monte_carlo"] | None = None,
+    gain_includes_input_loss: bool = True,
+    gain_includes_output_loss: bool = True,
 ) -> Budget:
     """Budget of a gain-method NF (densities W/Hz, path gain dB, temperatures K) [reference §4].
 
@@ -950,6 +964,9 @@ def gain_method_budget(
     ``floor_w_per_hz`` the exact floor correction ``Te = (N_dut - N_floor + k*T_term)/(k*G) -
     Ts`` is used. ``u_gain_db`` (the gain's own standard uncertainty) applies when
     ``inputs.dut_gain_db`` is None. Loss and floor temperatures default to the source's.
+    ``gain_includes_*_loss=False``: the gain the path gain was made from did not hold that
+    loss (a DUT's own gain, or a THROUGH-referenced one), so the loss's error also moves the
+    path gain (the point's notes say which).
     ``reflections`` default to ``inputs.reflections_at(freq_hz)``.
     """
     freq_hz = _positive_freq(freq_hz)
@@ -961,7 +978,9 @@ def gain_method_budget(
         floor=None if floor_w_per_hz is None else _positive_density("floor_w_per_hz",
                                                                     floor_w_per_hz),
         floor_tk=None if floor_temperature_k is None else _temperature_value(
-            "floor_temperature_k", floor_temperature_k))
+            "floor_temperature_k", floor_temperature_k),
+        gain_includes_input_loss=bool(gain_includes_input_loss),
+        gain_includes_output_loss=bool(gain_includes_output_loss))
     if data.floor is not None and (data.dut - data.floor + BOLTZMANN_J_PER_K
                                    * (data.floor_tk or ts_k)) <= 0:
         raise MeasurementError(f"DUT density at {freq_hz:.6g} Hz is not above the floor minus "
@@ -1067,7 +1086,10 @@ def _gain_point_budget(point: PointResult, inputs: UncertaintyInputs, dens: dict
             floor_temperature_k=notes.get("floor_temperature_k"), gain_db=float(gain_db),
             u_gain_db=point.u_gain_db, inputs=inputs,
             source_temperature_k=point.source_temperature_k or t0_k, t0_k=t0_k,
-            reflections=refl, method=how, **_losses_from_notes(notes))
+            reflections=refl, method=how,
+            gain_includes_input_loss=bool(notes.get("gain_includes_input_loss", True)),
+            gain_includes_output_loss=bool(notes.get("gain_includes_output_loss", True)),
+            **_losses_from_notes(notes))
 
     return make(_density_u(point, dens, u_dens, keys, make), method)
 

@@ -445,3 +445,25 @@ def test_live_progress_only_on_an_interactive_terminal(monkeypatch):
     assert isinstance(make_progress(io.StringIO()), LogProgress)  # a pipe or a file
     monkeypatch.setenv("CI", "true")
     assert isinstance(make_progress(Terminal()), LogProgress)  # clean CI logs
+
+
+def test_declared_gain_alone_is_no_upper_bound_of_the_hot_power():
+    # A DUT adds k*Te*G*B of its own: with NF 10 dB behind an ENR 6 dB source the hot power is
+    # 10*log10(1 + Te/Th) = 4.48 dB above the gain-only figure (reference.md §1-§2 formulas).
+    import math
+
+    from noisebench.safety import InputLimits, PowerGuard, total_noise_power_dbm
+
+    limits = InputLimits(max_input_dbm=20.0, compression_dbm=-10.0,
+                         compression_backoff_db=10.0, caution_backoff_db=20.0)
+    kw = dict(bandwidth_hz=10e9, declared_gain_db=30.0, enr_db=6.0, cold_temperature_k=290.0)
+    gain_only = PowerGuard(limits, **kw)
+    assert gain_only.needs_cold_look  # no NF declared: read the DUT cold before going hot
+    with_nf = PowerGuard(limits, declared_nf_db=10.0, **kw)
+    assert not with_nf.needs_cold_look
+    th = 290.0 * 10 ** 0.6 + 290.0
+    te = 290.0 * (10 ** 1.0 - 1)
+    assert with_nf.expected_hot_power_dbm(through=False) == pytest.approx(
+        total_noise_power_dbm(th, 30.0, 10e9) + 10 * math.log10(1 + te / th))
+    assert with_nf.expected_hot_power_dbm(through=False) - \
+        gain_only.expected_hot_power_dbm(through=False) == pytest.approx(4.482, abs=0.001)

@@ -134,6 +134,7 @@ def gain_method_point(
     output_loss_temperature_k: float | None = None,
     floor_temperature_k: float | None = None,
     gain_includes_losses: bool = True,
+    gain_includes_output_loss: bool | None = None,
     floor_warning_db: float = DEFAULT_FLOOR_WARNING_DB,
     low_gain_db: float = DEFAULT_LOW_GAIN_DB,
     scatter_limit: float = DEFAULT_SCATTER_LIMIT,
@@ -149,6 +150,10 @@ def gain_method_point(
     noise is counted as the DUT's. ``u_gain_db``: standard uncertainty of ``gain_db``.
     ``gain_includes_losses=False`` says ``gain_db`` is the DUT's own gain (e.g. a gain measured
     against a through reference, where the cables cancel); the losses then only enter the noise.
+    ``gain_includes_output_loss`` overrides that for the output loss alone (default: as
+    ``gain_includes_losses``), e.g. ``False`` for a gain measured by substitution against a
+    THROUGH that holds the output cable but not the input one. What the gain held is recorded
+    in ``notes`` so that uncertainty budgets perturb the losses consistently.
 
     Flags: NEAR_ANALYZER_FLOOR (margin < ``floor_warning_db``), LOW_GAIN (DUT gain <
     ``low_gain_db``), NEGATIVE_TE, SPURS_EXCLUDED / EXCESS_SCATTER from the densities.
@@ -172,7 +177,11 @@ def gain_method_point(
         "input_loss_temperature_k", input_loss_temperature_k)
     tp_out = ts if output_loss_temperature_k is None else check_temperature(
         "output_loss_temperature_k", output_loss_temperature_k)
-    path_gain_db = gain_db if gain_includes_losses else gain_db - 10.0 * math.log10(lin * lout)
+    includes_in = bool(gain_includes_losses)
+    includes_out = includes_in if gain_includes_output_loss is None \
+        else bool(gain_includes_output_loss)
+    path_gain_db = (gain_db - (0.0 if includes_in else 10.0 * math.log10(lin))
+                    - (0.0 if includes_out else 10.0 * math.log10(lout)))
 
     def te_dut_model(n_meas, n_floor, g_db, with_floor=floor is not None):
         g_path = 10.0 ** (g_db / 10.0)
@@ -245,6 +254,8 @@ def gain_method_point(
             "u_nf_db_contributions": contributions,
             "u_nf_db_with_gain": math.sqrt(sum(c**2 for c in contributions.values())),
             "path_gain_db": path_gain_db,
+            "gain_includes_input_loss": includes_in,
+            "gain_includes_output_loss": includes_out,
             "input_loss_db": input_loss_db,
             "input_loss_temperature_k": tp_in,
             "output_loss_db": output_loss_db,

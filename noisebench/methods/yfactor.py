@@ -107,6 +107,14 @@ def _positive(field: str, value: ArrayLike, fix: str) -> np.ndarray:
 _KELVIN_FIX = "give an absolute temperature in kelvin (K = degC + 273.15)"
 
 
+def _check_u_enr(u_enr_db: float | None) -> float | None:
+    """The ENR's standard uncertainty in dB (>= 0), or None when it is unknown."""
+    if u_enr_db is None:
+        return None
+    return check_non_negative("u_enr_db", u_enr_db, "give a standard uncertainty in dB, or "
+                                                    "None when the table has none")
+
+
 def _check_reference(enr_reference: str) -> str:
     if enr_reference not in ("t0", "absolute"):
         raise InputError("enr_reference", f"must be 't0' or 'absolute' (got {enr_reference!r})",
@@ -237,7 +245,7 @@ class CalibrationPoint(BaseModel):
     hot: NoiseDensity
     cold: NoiseDensity
     enr_db: float
-    u_enr_db: float = Field(default=0.0, ge=0)
+    u_enr_db: float | None = Field(default=0.0, ge=0)  # None: unknown (no table column)
     enr_extrapolated: bool = False
     enr_reference: EnrReference = "t0"
     cold_temperature_k: float = Field(gt=0)
@@ -304,7 +312,8 @@ class SystemCalibration(BaseModel):
 
 
 def calibrate_point(hot: NoiseDensity, cold: NoiseDensity, enr_db: float, *,
-                    cold_temperature_k: float, u_enr_db: float = 0.0, t0_k: float = T0_K,
+                    cold_temperature_k: float, u_enr_db: float | None = 0.0,
+                    t0_k: float = T0_K,
                     enr_reference: EnrReference = "t0", enr_extrapolated: bool = False,
                     y_min_db: float = DEFAULT_Y_MIN_DB,
                     calibrated_at: datetime | None = None) -> CalibrationPoint:
@@ -312,13 +321,14 @@ def calibrate_point(hot: NoiseDensity, cold: NoiseDensity, enr_db: float, *,
 
     ``hot``/``cold``: densities with the source on/off; ``enr_db``: the source's ENR at this
     frequency; ``cold_temperature_k``: the source's physical temperature (K) when off.
+    ``u_enr_db``: the ENR's standard uncertainty, dB (None: unknown).
     Raises MeasurementError when hot <= cold or the system's Te comes out negative.
     """
     hot = check_density("hot", hot)
     cold = check_density("cold", cold)
     freq_hz = check_same_frequency(hot, {"cold": cold})
     enr_db = check_number("enr_db", enr_db)
-    u_enr_db = check_non_negative("u_enr_db", u_enr_db, "give a standard uncertainty in dB")
+    u_enr_db = _check_u_enr(u_enr_db)
     tc = check_temperature("cold_temperature_k", cold_temperature_k)
     t0 = check_temperature("t0_k", t0_k)
     ref = _check_reference(enr_reference)
@@ -360,7 +370,7 @@ def y_factor_point(
     *,
     cold_temperature_k: float,
     calibration: CalibrationPoint | None = None,
-    u_enr_db: float = 0.0,
+    u_enr_db: float | None = 0.0,
     t0_k: float = T0_K,
     enr_reference: EnrReference = "t0",
     input_loss_db: float = 0.0,
@@ -377,6 +387,8 @@ def y_factor_point(
 
     ``hot``/``cold``: densities with the DUT in place and the source on/off; ``enr_db``: ENR at
     this frequency; ``cold_temperature_k``: source physical temperature when off (K).
+    ``u_enr_db``: the ENR's standard uncertainty, dB; None (unknown) is kept as None in
+    ``notes["u_enr_db"]`` so that budgets list the ENR term as omitted.
     ``calibration``: the system calibration at this frequency; it enables the second-stage
     correction and the gain. Losses: ``input_loss_db`` between source and DUT input,
     ``output_loss_db`` after the DUT but outside the calibration path; physical temperatures
@@ -397,7 +409,7 @@ def y_factor_point(
         densities.update(hot_cal=calibration.hot, cold_cal=calibration.cold)
     freq_hz = check_same_frequency(hot, {k: v for k, v in densities.items() if k != "hot"})
     enr_db = check_number("enr_db", enr_db)
-    u_enr_db = check_non_negative("u_enr_db", u_enr_db, "give a standard uncertainty in dB")
+    u_enr_db = _check_u_enr(u_enr_db)
     tc = check_temperature("cold_temperature_k", cold_temperature_k)
     t0 = check_temperature("t0_k", t0_k)
     ref = _check_reference(enr_reference)
@@ -433,9 +445,9 @@ def y_factor_point(
     if calibration is not None:
         u_stat.update(hc=calibration.hot.u_density_w_per_hz,
                       cc=calibration.cold.u_density_w_per_hz)
-    u_enr = {"enr": u_enr_db}
+    u_enr = {"enr": u_enr_db or 0.0}
     if not enr_shared:
-        u_enr["enr_cal"] = calibration.u_enr_db  # type: ignore[union-attr]
+        u_enr["enr_cal"] = calibration.u_enr_db or 0.0  # type: ignore[union-attr]
 
     def outputs(**kw) -> dict[str, np.ndarray]:
         r = core(**kw)
