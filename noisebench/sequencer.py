@@ -583,7 +583,7 @@ class Sequencer:
                 out.append({"freq_hz": f, "floor_w_per_hz": floor.density_w_per_hz,
                             "floor_dbm_per_hz": floor.density_dbm_per_hz,
                             "averages": readings.averages("floor"),
-                            "floor_temperature_k": te_sa})
+                            "floor_noise_temperature_k": te_sa})
             else:
                 cal = self._system_point(f, readings.get(f, "hot").combined().density,
                                          readings.get(f, "cold").combined().density)

@@ -307,3 +307,27 @@ def test_a_journal_point_edited_to_nan_is_skipped_with_a_warning_not_shown(tmp_p
     assert "nan" not in nf_line  # before: "NF min nan dB at 1 GHz, max nan dB at 1 GHz"
     assert f"points.jsonl line {index + 1}: unreadable entry skipped" in err
     assert len(load_run(folder).points) == 1
+
+
+@pytest.mark.parametrize(("argv", "expected"), [
+    (["demo", "--seed", "-1"], "argument --seed: must be >= 0 (got -1)"),
+    (["info", "--no-scan", "--timeout", "nan"], "argument --timeout: must be a finite number"),
+    (["info", "--no-scan", "--timeout", "-1"], "argument --timeout: must be a finite number"),
+    (["station", "plan.toml", "--max-cal-age", "nan", "--unit", "A1", "--no-db"],
+     "argument --max-cal-age: must be a finite number of seconds > 0 (got nan)"),
+])
+def test_numeric_options_name_the_option(tmp_path, capsys, monkeypatch, argv, expected):
+    monkeypatch.chdir(tmp_path)
+    code, _, err = _cli(capsys, *argv)
+    assert code == cli.EXIT_INPUT
+    assert expected in err
+
+
+def test_validate_prints_each_table_problem_once_with_its_file(tmp_path, capsys):
+    path = tmp_path / "enr.csv"
+    path.write_text("freq_hz,enr_db\n1e9,fifteen\n", encoding="utf-8")
+    code, _, err = _cli(capsys, "validate", path)
+    assert code == cli.EXIT_INPUT
+    assert err == "enr.csv line 2, enr_db: not a number: 'fifteen'\n"  # not "enr.csv: enr.csv"
+    code, _, err = _cli(capsys, "validate", tmp_path)
+    assert code == cli.EXIT_INPUT and err.startswith(f"{tmp_path}: cannot read")
