@@ -162,10 +162,9 @@ def cmd_validate(args: argparse.Namespace, out: TextIO) -> int:
             print(f"ok: {plan.method.value.replace('_', '-')} plan {path.name}, "
                   f"{len(plan.points())} points, analyzer {plan.bench.analyzer.resource}",
                   file=out)
-    name = path.name or str(path)
-    for line in problems:  # ENR problems already start with the file's name
-        print(line if line.startswith(f"{name}:") or line.startswith(f"{name} line")
-              else f"{name}: {line}", file=sys.stderr)
+    name = path.name or str(path)  # "." has no name
+    for line in problems:
+        print(f"{name}: {line}", file=sys.stderr)
     return EXIT_INPUT if problems else EXIT_OK
 
 

@@ -73,6 +73,9 @@ _STRICT = ConfigDict(extra="forbid", validate_default=True, allow_inf_nan=False)
 MAX_SEGMENT_POINTS = 100_000
 #: the largest constant loss a plan accepts, dB (beyond it the noise figure is unmeasurable)
 MAX_LOSS_DB = 100.0
+#: the smallest statistical target, dB: 1e-3 dB needs >= 2 (4.343 / 1e-3)^2 ~ 4e7 independent
+#: samples by the radiometer equation (far beyond max_averages); smaller is a typo
+MIN_TARGET_U_NF_DB = 1e-3
 
 
 class PlanError(InputError):
@@ -193,7 +196,7 @@ class AcquisitionPolicy(BaseModel):
     ref_level_dbm: float | None = None
     min_averages: int = Field(default=4, ge=1, le=1_000_000)
     max_averages: int = Field(default=20_000, ge=1, le=1_000_000)
-    target_u_nf_db: float = Field(default=0.05, gt=0, le=10)
+    target_u_nf_db: float = Field(default=0.05, ge=MIN_TARGET_U_NF_DB, le=10)
     time_limit_s: float = Field(default=30.0, gt=0)
     max_trace_span_hz: float = Field(
         default=0.0, ge=0, description="points whose bands fit in one trace this wide share it")
@@ -246,7 +249,7 @@ class Segment(BaseModel):
     ref_level_dbm: float | None = None
     min_averages: int | None = Field(default=None, ge=1, le=1_000_000)
     max_averages: int | None = Field(default=None, ge=1, le=1_000_000)
-    target_u_nf_db: float | None = Field(default=None, gt=0, le=10)
+    target_u_nf_db: float | None = Field(default=None, ge=MIN_TARGET_U_NF_DB, le=10)
     time_limit_s: float | None = Field(default=None, gt=0)
     max_trace_span_hz: float | None = Field(default=None, ge=0)
     min_band_fill: float | None = Field(default=None, gt=0, le=1)
@@ -366,7 +369,8 @@ class CorrectionsSection(BaseModel):
     input_loss_temperature_k: float | None = Field(default=None, gt=0, le=400)
     output_loss_temperature_k: float | None = Field(default=None, gt=0, le=400)
     source_temperature_k: float | Literal["bench"] = "bench"
-    t0_k: float = Field(default=T0_DEFAULT_K, gt=0)
+    t0_k: float = Field(default=T0_DEFAULT_K, ge=200, le=400,
+                        description="reference temperature of the noise figure, K")
 
     @field_validator("input_loss", "output_loss", mode="after")
     @classmethod
@@ -656,6 +660,7 @@ def parse_plan(data: dict[str, Any], *, base_dir: Path | None = None,
     except ValidationError as exc:
         raise PlanError(format_validation_error(exc), source=source) from None
     plan.with_base_dir(base_dir or Path.cwd())
+    _resolve_profiles(plan)
     problems = cross_check(plan, check_files=check_files)
     if problems:
         raise PlanError(problems, source=source)
@@ -702,7 +707,49 @@ def cross_check(plan: Plan, *, check_files: bool = True) -> list[str]:
     if check_files:
         problems += _check_enr(plan)
         problems += _check_tables(plan)
+        problems += _check_profiles(plan)
     return problems
+
+
+def _profile_sections(plan: Plan) -> list[tuple[str, Any]]:
+    """(key, section) of each instrument whose profile a real bench will load."""
+    bench = plan.bench
+    if bench.analyzer.resource.startswith("sim://"):
+        return []
+    out: list[tuple[str, Any]] = [("bench.analyzer", bench.analyzer)]
+    if bench.generator is not None:
+        out.append(("bench.generator", bench.generator))
+    if bench.noise_source.drive == "supply":
+        out.append(("bench.noise_source", bench.noise_source))
+    return out
+
+
+def _resolve_profiles(plan: Plan) -> None:
+    """A profile file next to the plan is found from any working folder (relative file names
+    are relative to the plan); packaged names and other paths are left as given."""
+    for _key, section in _profile_sections(plan):
+        candidate = plan.resolve_path(section.profile)
+        if candidate.is_file():
+            section.profile = str(candidate)
+
+
+def _check_profiles(plan: Plan) -> list[str]:
+    """Each instrument profile must load (checked here, not when the instrument is opened)."""
+    try:
+        from noisebench.drivers.profile import load_profile
+    except ImportError:  # pragma: no cover - drivers not installed
+        return []
+    problems = []
+    for key, section in _profile_sections(plan):
+        try:
+            load_profile(section.profile)
+        except InputError as exc:
+            problems.append(f"{key}.profile: {_one_line(exc.message).removeprefix('profile: ')}")
+    return problems
+
+
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split())
 
 
 def _check_segment_policies(plan: Plan) -> list[str]:
@@ -831,7 +878,7 @@ def _coverage_problems(key: str, name: str, table_freq_hz: np.ndarray, plan: Pla
     outside = freqs[(freqs < lo * (1 - 1e-12)) | (freqs > hi * (1 + 1e-12))]
     if outside.size == 0 or allow_clamp:
         return []
-    fix = ('narrow the sweep or allow [enr] extrapolate = "clamp"' if key == "enr.table"
+    fix = ('narrow the sweep or allow extrapolate = "clamp"' if key == "enr.table"
            else "narrow the sweep or extend the table")
     return [f"{key}: {name} covers {lo:g}-{hi:g} Hz but the sweep has {outside.size} point(s) "
             f"outside it (first {outside[0]:g} Hz){_unit_hint(freqs, lo, hi)}; {fix}"]
@@ -873,10 +920,25 @@ def _check_tables(plan: Plan) -> list[str]:
         except (InputError, OSError, ValueError) as exc:
             problems.append(f"{key}: {getattr(exc, 'message', exc)}")
             continue
-        if table.range_hz is not None:
-            problems += _coverage_problems(key, path.name, np.asarray(table.freq_hz, float),
-                                           plan, allow_clamp=False)
+        coverage = [] if table.range_hz is None else _coverage_problems(
+            key, path.name, np.asarray(table.freq_hz, float), plan, allow_clamp=False)
+        problems += coverage
+        if key.startswith("corrections.") and not coverage:
+            problems += _gain_in_loss_table(key, value, table, plan)
     return problems
+
+
+def _gain_in_loss_table(key: str, name: str, table: Any, plan: Plan) -> list[str]:
+    """A loss table must not give gain at a sweep frequency (the run would refuse it there;
+    the same 1e-3 dB tolerance as :mod:`noisebench.corrections`)."""
+    freqs = plan.freqs_hz()
+    loss_db = np.asarray(table.at(freqs).loss_db, dtype=float) * np.ones_like(freqs)
+    bad = np.flatnonzero(loss_db < -1e-3)
+    if bad.size == 0:
+        return []
+    i = int(bad[0])
+    return [f"{key}: {name} gives a gain of {-loss_db[i]:.3f} dB at {freqs[i]:.6g} Hz, not a "
+            "loss (give loss_db >= 0, or a cable's |S21| (<= 0 dB))"]
 
 
 # --------------------------------------------------------------------------- addresses

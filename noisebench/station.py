@@ -135,7 +135,7 @@ def _checked_name(field: str, value: str, line: str) -> str:
 
 def _parse_fields(text: str, line: str) -> dict[str, str]:
     fields: dict[str, str] = {}
-    for part in text.removesuffix(";").split(";"):  # a scanner's trailing ';' is fine
+    for part in text.split(";"):
         key, sep, value = part.partition(":")
         key, value = key.strip().upper(), value.strip()
         if not sep or not key:

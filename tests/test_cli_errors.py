@@ -17,7 +17,7 @@ from noisebench.gain_files import GainTable, load_gain_table
 from noisebench.registry import simulated_session
 from noisebench.results import load_run
 from noisebench.sequencer import Sequencer
-from noisebench.station import parse_unit_line, units_from_file
+from noisebench.station import units_from_file
 
 PLAN = """\
 method = "y_factor"
@@ -219,13 +219,6 @@ def test_a_units_file_with_a_byte_order_mark_is_read(tmp_path):
     assert [u.serial for u in units_from_file(path)] == ["A1", "A2"]
 
 
-def test_a_scanner_line_ending_in_a_semicolon_is_accepted():
-    unit = parse_unit_line("SN:A1;LOT:L24-07;")
-    assert (unit.serial, unit.lot) == ("A1", "L24-07")
-    with pytest.raises(InputError, match="is not KEY:VALUE"):
-        parse_unit_line("SN:A1;;LOT:L1")  # an empty field inside the line is still wrong
-
-
 # --------------------------------------------------------------------------- resume
 
 
@@ -323,11 +316,86 @@ def test_numeric_options_name_the_option(tmp_path, capsys, monkeypatch, argv, ex
     assert expected in err
 
 
-def test_validate_prints_each_table_problem_once_with_its_file(tmp_path, capsys):
-    path = tmp_path / "enr.csv"
-    path.write_text("freq_hz,enr_db\n1e9,fifteen\n", encoding="utf-8")
-    code, _, err = _cli(capsys, "validate", path)
+def test_validate_of_a_folder_names_the_folder(tmp_path, capsys, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    code, _, err = _cli(capsys, "validate", ".")
     assert code == cli.EXIT_INPUT
-    assert err == "enr.csv line 2, enr_db: not a number: 'fifteen'\n"  # not "enr.csv: enr.csv"
-    code, _, err = _cli(capsys, "validate", tmp_path)
-    assert code == cli.EXIT_INPUT and err.startswith(f"{tmp_path}: cannot read")
+    assert err.startswith(".: ") and "cannot read (Is a directory)" in err  # before: ": .: "
+
+
+@pytest.mark.parametrize(("target", "t0", "expected"), [
+    # 1e-300 dB used to overflow the radiometer forecast ("unexpected OverflowError")
+    ("1e-300", "290", "acquisition.target_u_nf_db: must be >= 0.001 (got 1e-300)"),
+    # 1e-300 K used to surface as a misleading ENR complaint
+    ("0.2", "1e-300", "corrections.t0_k: must be >= 200.0 (got 1e-300)"),
+])
+def test_implausible_targets_and_reference_temperatures_are_named(tmp_path, capsys, target,
+                                                                   t0, expected):
+    path = _plan(tmp_path, target=target)
+    path.write_text(path.read_text(encoding="utf-8").replace(
+        "input_loss = 0.3", f"input_loss = 0.3\nt0_k = {t0}"), encoding="utf-8")
+    for command in ("validate", "estimate"):
+        code, _, err = _cli(capsys, command, path)
+        assert code == cli.EXIT_INPUT, command
+        _assert_clean_error(err)
+        assert expected in err
+
+
+SCPI_PLAN = """\
+method = "y_factor"
+[bench]
+analyzer = {{ resource = "TCPIP0::127.0.0.1::5025::SOCKET", profile = "{profile}" }}
+[sweep]
+freqs_hz = [1e9]
+[enr]
+table = "enr.csv"
+[corrections]
+source_temperature_k = 296.5
+[expect]
+dut_nf_db = 1.0
+dut_gain_db = 20.0
+analyzer_nf_db = 16.0
+"""
+
+
+def _scpi_plan(folder: Path, profile: str) -> Path:
+    folder.mkdir(exist_ok=True)
+    (folder / "enr.csv").write_text("enr_db\n15.0\n", encoding="utf-8")
+    path = folder / "plan.toml"
+    path.write_text(SCPI_PLAN.format(profile=profile), encoding="utf-8")
+    return path
+
+
+def test_validate_checks_the_instrument_profile_the_run_would_load(tmp_path, capsys):
+    (tmp_path / "broken.toml").write_text("[analyzer\n", encoding="utf-8")
+    for profile, expected in [("missing.toml", "no profile file or packaged profile"),
+                              ("broken.toml", "not valid TOML")]:
+        code, _, err = _cli(capsys, "validate", _scpi_plan(tmp_path, profile))
+        assert code == cli.EXIT_INPUT, profile  # before: "ok", and the run refused it later
+        assert "bench.analyzer.profile: " in err and expected in err
+
+
+def test_a_profile_next_to_the_plan_is_found_from_another_folder(tmp_path, monkeypatch):
+    from noisebench.drivers.profile import load_profile
+    from noisebench.plan import load_plan
+
+    lab = tmp_path / "lab"
+    plan_path = _scpi_plan(lab, "my_analyzer.toml")
+    generic = load_profile("generic").source
+    (lab / "my_analyzer.toml").write_text(Path(generic).read_text(encoding="utf-8"),
+                                          encoding="utf-8")
+    monkeypatch.chdir(tmp_path)  # README: relative file names are relative to the plan
+    plan = load_plan(plan_path)
+    assert Path(plan.bench.analyzer.profile) == lab / "my_analyzer.toml"
+    assert load_profile(plan.bench.analyzer.profile).source == str(lab / "my_analyzer.toml")
+
+
+def test_validate_refuses_a_loss_table_that_gives_gain_as_the_run_would(tmp_path, capsys):
+    (tmp_path / "cable.csv").write_text("freq_hz,loss_db\n0.5e9,-3\n5e9,-3\n", encoding="utf-8")
+    path = _plan(tmp_path, loss='"cable.csv"')
+    code, _, err = _cli(capsys, "validate", path)
+    assert code == cli.EXIT_INPUT  # before: "ok", then the run failed at its first point
+    assert "corrections.input_loss: cable.csv gives a gain of 3.000 dB at 1e+09 Hz" in err
+    (tmp_path / "cable.csv").write_text("freq_hz,loss_db\n0.5e9,0.3\n5e9,0.6\n",
+                                        encoding="utf-8")
+    assert _cli(capsys, "validate", path)[0] == cli.EXIT_OK
