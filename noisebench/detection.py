@@ -33,7 +33,7 @@ which on a log display is the log power and on a linear display the envelope vol
 averages on the display (= averaging) scale, exactly like the AVERAGE detector (common
 practice: a narrow VBW makes noise read low on a log display by up to the full 2.51 dB of
 reference.md §6b, however many samples it averages). A point is then the scale average of
-``N * k`` single samples, with ``k`` the effective number of independent samples in the video
+``N * k`` single samples, with ``k`` the effective number of independent samples in a video
 filter's averaging time (``B_stat / (pi VBW)`` for a one-pole filter, reported by the
 instrument as ``detector_samples``). On the power scale this is the power mean of ``N * k``
 samples, as for RMS. The equal-weight average is the model; a one-pole filter weights its

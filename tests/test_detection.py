@@ -270,7 +270,7 @@ def test_detector_mapping():
     # SAMPLE detector: one sample per point, whatever else is reported as unknown
     assert point_model(Detector.SAMPLE, AveragingScale.VOLTAGE, 3, None) == PointModel(VOLT, 3)
     assert point_model(Detector.SAMPLE, AveragingScale.VOLTAGE, 3, 1) == PointModel(VOLT, 3)
-    # SAMPLE with k > 1 video samples: the video filter averages on the display scale, like the
+    # SAMPLE with k > 1 video samples: a video filter averages on the display scale, like the
     # AVERAGE detector, so N sweeps hold the scale average of N * k single samples
     assert point_model(Detector.SAMPLE, AveragingScale.LOG_POWER, 5, 4) == PointModel(GEO, 20)
     assert point_model(Detector.SAMPLE, AveragingScale.VOLTAGE, 3, 6) == PointModel(VOLT, 18)
