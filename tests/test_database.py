@@ -1,6 +1,7 @@
 """Results database on SQLite and on a real PostgreSQL server.
 
-The statistics are checked against numpy (``np.mean``/``np.std(ddof=1)``) on the same numbers.
+The statistics are checked against numpy on the same numbers (source of the reference values:
+``np.mean`` and ``np.std(ddof=1)``, the sample standard deviation).
 """
 
 from __future__ import annotations
