@@ -18,10 +18,14 @@ from pathlib import Path as FsPath
 from typing import Any
 
 import numpy as np
-import tomllib
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from noisebench.errors import InputError
+
+try:  # Python 3.11+
+    import tomllib
+except ModuleNotFoundError:  # Python 3.10: the tomli backport (a dependency there)
+    import tomli as tomllib
 
 SCENARIO_SUFFIX = ".toml"
 
