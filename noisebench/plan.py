@@ -811,7 +811,8 @@ def _check_bench(plan: Plan) -> list[str]:
         except InputError as exc:
             problems.append(f"bench.analyzer.resource: {exc.message.split(': ', 1)[-1]}")
         else:
-            problems += _check_scenario(address.scenario)
+            scenario_problems = _check_scenario(address.scenario)
+            problems += scenario_problems or _check_sim_range(plan, address.scenario)
     others = [("bench.generator.resource", plan.bench.generator.resource
                if plan.bench.generator else None),
               ("bench.noise_source.resource", plan.bench.noise_source.resource)]
@@ -838,6 +839,30 @@ def _check_scenario(name: str) -> list[str]:
         return []
     return [f"bench.analyzer.resource: no scenario {name!r} (use one of {names} "
             f"or a path to a {SCENARIO_SUFFIX} file)"]
+
+
+def _check_sim_range(plan: Plan, scenario: str) -> list[str]:
+    """Every point's span must lie within the simulated analyzer's frequency range, so a
+    point the analyzer cannot tune to is refused now, not after earlier points were measured."""
+    try:
+        from noisebench.sims.scenario import load_scenario
+
+        spec = load_scenario(scenario).analyzer
+    except (ImportError, InputError):  # reported by _check_scenario / at run time
+        return []
+    lo, hi = spec.min_freq_hz, spec.max_freq_hz
+    try:
+        points = plan.points()
+    except (ValidationError, InputError):  # a bad segment policy: reported by its own check
+        return []
+    bad = [p.freq_hz for p in points
+           if p.freq_hz - p.policy.span_hz / 2 < lo or p.freq_hz + p.policy.span_hz / 2 > hi]
+    if not bad:
+        return []
+    shown = ", ".join(f"{f:.6g}" for f in bad[:3]) + (" ..." if len(bad) > 3 else "")
+    return [f"sweep: {len(bad)} point(s) ({shown} Hz) with their span fall outside the "
+            f"simulated analyzer's range {lo:.6g}..{hi:.6g} Hz (move them inside or narrow "
+            "span_hz)"]
 
 
 def _missing_file(key: str, path: Path) -> str:

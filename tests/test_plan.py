@@ -178,7 +178,11 @@ def test_toml_syntax_error_is_one_line(tmp_path):
 
 
 def test_linear_log_and_step_ranges():
-    data = _base(sweep={"segments": [
+    # a real analyzer (its range is not known to the plan), so the sweep may reach 50 GHz
+    data = _base(method="gain", gain={"source": "constant", "value_db": 20.0},
+                 bench={"analyzer": "TCPIP0::127.0.0.1::5025::SOCKET",
+                        "noise_source": {"drive": "none"}},
+                 sweep={"segments": [
         {"start_hz": 1e9, "stop_hz": 2e9, "points": 5},
         {"start_hz": 3e9, "stop_hz": 30e9, "points": 3, "spacing": "log"},
         {"start_hz": 40e9, "stop_hz": 40.3e9, "step_hz": 0.1e9},
@@ -265,3 +269,14 @@ def test_examples_validate():
     assert len(examples) >= 3
     for path in examples:
         assert validate_plan_file(path) == [], path.name
+
+
+def test_points_outside_the_simulated_analyzer_range_are_refused_before_the_run():
+    # demo-lna's analyzer tunes 9 kHz .. 7.5 GHz (sims/scenarios/demo-lna.toml)
+    data = _base(sweep={"freqs_hz": [1e9, 7.6e9, 10e9]})
+    problems = _problems(data)
+    assert any(p.startswith("sweep: 2 point(s) (7.6e+09, 1e+10 Hz) with their span fall "
+                            "outside the simulated analyzer's range 9000..7.5e+09 Hz")
+               for p in problems), problems
+    edge = _base(sweep={"freqs_hz": [7.5e9 - 4e6]}, acquisition={"span_hz": 10e6})
+    assert any("outside the simulated analyzer's range" in p for p in _problems(edge))
