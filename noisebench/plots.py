@@ -188,6 +188,22 @@ def _format_frequency_axis(axes, freq: np.ndarray, log: bool) -> None:
     axis.set_minor_locator(AutoMinorLocator())
 
 
+def _fix_frequency_limits(axes, freq: np.ndarray, log: bool) -> None:
+    """Set the frequency limits explicitly (sweep ends plus ``X_MARGIN``), so limit lines
+    and error bars drawn later cannot widen the axis and every matplotlib version shows the
+    same ticks."""
+    finite = freq[np.isfinite(freq)] if freq.size else freq
+    if finite.size == 0 or finite.min() <= 0 or finite.min() == finite.max():
+        return
+    lo, hi = float(finite.min()), float(finite.max())
+    if log:
+        pad = (hi / lo) ** X_MARGIN
+        axes.set_xlim(lo / pad, hi * pad)
+    else:
+        pad = (hi - lo) * X_MARGIN
+        axes.set_xlim(lo - pad, hi + pad)
+
+
 def _new_axes(title: str, ylabel: str, freq_hz: Sequence[float]):
     figure = _matplotlib()(figsize=FIGURE_SIZE_IN)
     axes = figure.add_axes(AXES_RECT)
@@ -196,6 +212,7 @@ def _new_axes(title: str, ylabel: str, freq_hz: Sequence[float]):
     _format_frequency_axis(axes, freq if freq.size else np.array([1.0]),
                            use_log_axis(freq_hz))
     axes.margins(x=X_MARGIN)  # the frequency axis ends just past the sweep's ends
+    _fix_frequency_limits(axes, freq, use_log_axis(freq_hz))
     axes.set_title(title, loc="left", fontsize=11, color=INK)
     axes.set_xlabel(f"Frequency ({unit})")
     axes.set_ylabel(ylabel)
