@@ -15,8 +15,8 @@ from pathlib import Path
 from noisebench.errors import InputError, MeasurementError, SafetyError
 from noisebench.instruments import Generator
 
-from .profile import GeneratorProfile, InstrumentProfile, load_profile
-from .scpi_channel import ScpiChannel
+from .profile import GeneratorProfile, InstrumentProfile
+from .scpi_channel import SwitchedOutputInstrument
 from .transport import Transport
 
 logger = logging.getLogger(__name__)
@@ -26,7 +26,7 @@ __all__ = ["ScpiGenerator"]
 _LEVEL_READBACK_TOL_DB = 0.05  # a generator's level resolution is usually 0.01 dB
 
 
-class ScpiGenerator(Generator):
+class ScpiGenerator(SwitchedOutputInstrument, Generator):
     """A CW generator over a :class:`~noisebench.drivers.transport.Transport`.
 
     ``max_level_dbm`` (optional) refuses any higher level with SafetyError, e.g. to keep a
@@ -39,30 +39,11 @@ class ScpiGenerator(Generator):
         super().__init__()
         if max_level_dbm is not None and not math.isfinite(float(max_level_dbm)):
             raise InputError("max_level_dbm", "must be finite", value=max_level_dbm)
-        self.profile = load_profile(profile)
-        self.spec: GeneratorProfile = self.profile.section("generator")
-        self.transport = transport
         self.max_level_dbm = None if max_level_dbm is None else float(max_level_dbm)
         self.frequency_hz: float | None = None
         self.level_dbm: float | None = None
-        self._output = False
-        self._closed = False
-        self._channel = ScpiChannel(transport, self.profile.common, kind="generator",
-                                    lock=self.lock, retries=retries, restore=self._restore)
-        self._channel.connect()
-        self._output = bool(self._channel.get(self.spec.settings.output))
-
-    @property
-    def identity(self) -> str:
-        return self._channel.identity
-
-    @property
-    def output_on(self) -> bool:
-        return self._output
-
-    @property
-    def recovery_log(self) -> list[str]:
-        return self._channel.recovery_log
+        self.spec: GeneratorProfile
+        self._connect_output(transport, profile, "generator", retries=retries)
 
     def __repr__(self) -> str:
         return f"<ScpiGenerator {self.transport.resource!r} profile={self.profile.name!r}>"

@@ -35,8 +35,8 @@ from noisebench.errors import (
 )
 from noisebench.instruments import Analyzer, Instrument, NoiseSource
 
-from .profile import InstrumentProfile, SupplyProfile, load_profile
-from .scpi_channel import ScpiChannel
+from .profile import InstrumentProfile, SupplyProfile
+from .scpi_channel import SwitchedOutputInstrument
 from .transport import Transport
 
 logger = logging.getLogger(__name__)
@@ -153,7 +153,7 @@ class AnalyzerDriveNoiseSource(_SwitchedSource):
 # ----------------------------------------------------------------------------- DC supply
 
 
-class ScpiSupply(Instrument):
+class ScpiSupply(SwitchedOutputInstrument, Instrument):
     """A DC supply over SCPI (``[supply]`` profile section): voltage, current limit, output,
     MEASure. Its output is switched off on close."""
 
@@ -161,25 +161,10 @@ class ScpiSupply(Instrument):
                  profile: InstrumentProfile | str | Path = "generic", *,
                  retries: int = 2) -> None:
         super().__init__()
-        self.profile = load_profile(profile)
-        self.spec: SupplyProfile = self.profile.section("supply")
-        self.transport = transport
         self.voltage_v: float | None = None
         self.current_limit_a: float | None = None
-        self._output = False
-        self._closed = False
-        self._channel = ScpiChannel(transport, self.profile.common, kind="supply",
-                                    lock=self.lock, retries=retries, restore=self._restore)
-        self._channel.connect()
-        self._output = bool(self._channel.get(self.spec.settings.output))
-
-    @property
-    def identity(self) -> str:
-        return self._channel.identity
-
-    @property
-    def output_on(self) -> bool:
-        return self._output
+        self.spec: SupplyProfile
+        self._connect_output(transport, profile, "supply", retries=retries)
 
     @property
     def can_measure(self) -> bool:

@@ -31,7 +31,7 @@ from noisebench.errors import (
     NoisebenchError,
 )
 
-from .profile import CommonProfile, ReplyError
+from .profile import CommonProfile, ReplyError, load_profile
 from .transport import Transport
 
 logger = logging.getLogger(__name__)
@@ -222,3 +222,39 @@ class ScpiChannel:
             raise CommunicationError(
                 f"liveness probe {self.common.identify!r} answered {reply!r}, expected "
                 f"{self.identity!r}", resource=self.transport.resource)
+
+
+class SwitchedOutputInstrument:
+    """Shared set-up of a SCPI instrument with one switched output (generator, DC supply).
+
+    Put it before the instrument's ABC in the bases; the class provides ``lock`` (from
+    :class:`noisebench.instruments.Instrument`) and ``_restore`` (what to send after a
+    reconnect)."""
+
+    lock: Any
+
+    def _connect_output(self, transport: Transport, profile: Any, section: str, *,
+                        retries: int) -> None:
+        """Load the profile section, connect, and read the output state back."""
+        self.profile = load_profile(profile)
+        self.spec = self.profile.section(section)
+        self.transport = transport
+        self._output = False
+        self._closed = False
+        self._channel = ScpiChannel(transport, self.profile.common, kind=section,
+                                    lock=self.lock, retries=retries,
+                                    restore=self._restore)  # type: ignore[attr-defined]
+        self._channel.connect()
+        self._output = bool(self._channel.get(self.spec.settings.output))
+
+    @property
+    def identity(self) -> str:
+        return self._channel.identity
+
+    @property
+    def output_on(self) -> bool:
+        return self._output
+
+    @property
+    def recovery_log(self) -> list[str]:
+        return self._channel.recovery_log

@@ -109,3 +109,17 @@ def require_positive(field: str, value: Any, *, allow_zero: bool = False) -> Non
     if np.any(bad):
         rel = ">= 0" if allow_zero else "> 0"
         raise InputError(field, f"must be {rel} (got {arr[bad].ravel()[0]!r})", value=value)
+
+
+def input_error_from_validation(exc: Any, section: str, *, fix: str | None = None) -> InputError:
+    """One :class:`InputError` from a pydantic ``ValidationError`` of a plan section: the first
+    problem's key path (``section.key[i]``) as the field, every problem in the message."""
+    problems = []
+    for err in exc.errors(include_url=False):
+        loc = "".join(f"[{p}]" if isinstance(p, int) else f".{p}" for p in err.get("loc", ()))
+        problems.append((f"{section}{loc}", str(err.get("msg", "invalid")).removeprefix(
+            "Value error, ")))
+    field, message = problems[0]
+    if len(problems) > 1:
+        message += "; also " + "; ".join(f"{f}: {m}" for f, m in problems[1:])
+    return InputError(field, message, fix=fix or f"correct the [{section}] section")

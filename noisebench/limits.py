@@ -43,7 +43,7 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
-from noisebench.errors import InputError
+from noisebench.errors import InputError, input_error_from_validation
 from noisebench.point import PointResult
 
 __all__ = [
@@ -209,7 +209,7 @@ class LimitMask(BaseModel):
         try:
             return cls.model_validate(dict(data))
         except ValidationError as exc:
-            raise _input_error(exc, "limits") from None
+            raise input_error_from_validation(exc, "limits") from None
 
     def limit_lines(self) -> list[dict[str, Any]]:
         """The bands as JSON-able dicts (what plots draw as limit lines)."""
@@ -220,19 +220,6 @@ class LimitMask(BaseModel):
               coverage_factor: float = DEFAULT_COVERAGE_FACTOR) -> UnitVerdict:
         """Shortcut for :func:`judge` with this mask."""
         return judge(points, uncertainties, self, rule=rule, coverage_factor=coverage_factor)
-
-
-def _input_error(exc: ValidationError, section: str) -> InputError:
-    """One InputError from a pydantic error: the first problem's key path, all messages."""
-    problems = []
-    for err in exc.errors(include_url=False):
-        loc = "".join(f"[{p}]" if isinstance(p, int) else f".{p}" for p in err.get("loc", ()))
-        problems.append((f"{section}{loc}", str(err.get("msg", "invalid")).removeprefix(
-            "Value error, ")))
-    field, message = problems[0]
-    if len(problems) > 1:
-        message += "; also " + "; ".join(f"{f}: {m}" for f, m in problems[1:])
-    return InputError(field, message, fix="correct the [limits] section")
 
 
 # =========================================================================== results

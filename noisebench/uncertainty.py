@@ -77,7 +77,7 @@ from pydantic import (
     model_validator,
 )
 
-from noisebench.errors import InputError, MeasurementError
+from noisebench.errors import InputError, MeasurementError, input_error_from_validation
 from noisebench.physics import BOLTZMANN_J_PER_K, T0_K
 from noisebench.point import Method, PointResult
 from noisebench.propagation import (
@@ -359,7 +359,7 @@ class UncertaintyInputs(BaseModel):
         try:
             return cls.model_validate(dict(data))
         except ValidationError as exc:
-            raise _input_error("uncertainty", exc) from None
+            raise input_error_from_validation(exc, "uncertainty") from None
 
     @model_validator(mode="before")
     @classmethod
@@ -420,19 +420,6 @@ class UncertaintyInputs(BaseModel):
             values["analyzer_input"] = _reflection_at(self.analyzer_touchstone, 1, freq_hz,
                                                       base_dir)
         return Reflections(**values)
-
-
-def _input_error(section: str, exc: ValidationError) -> InputError:
-    """One InputError from a pydantic error: the first problem's key path, all messages."""
-    problems = []
-    for err in exc.errors(include_url=False):
-        loc = "".join(f"[{p}]" if isinstance(p, int) else f".{p}" for p in err.get("loc", ()))
-        problems.append((f"{section}{loc}", str(err.get("msg", "invalid")).removeprefix(
-            "Value error, ")))
-    field, message = problems[0]
-    if len(problems) > 1:
-        message += "; also " + "; ".join(f"{f}: {m}" for f, m in problems[1:])
-    return InputError(field, message, fix=f"correct the [{section}] section")
 
 
 # =========================================================================== budget models

@@ -74,6 +74,21 @@ def check_loss_db(field: str, value: float) -> float:
                                             "(0.5 for a 0.5 dB cable)")
 
 
+def check_losses(input_loss_db: float, output_loss_db: float,
+                 input_loss_temperature_k: float | None,
+                 output_loss_temperature_k: float | None,
+                 default_temperature_k: float) -> tuple[float, float, float, float]:
+    """``(L_in, L_out, Tp_in, Tp_out)``: linear losses (>= 1) and their physical temperatures
+    in K, a missing temperature taking ``default_temperature_k``."""
+    lin = 10.0 ** (check_loss_db("input_loss_db", input_loss_db) / 10.0)
+    lout = 10.0 ** (check_loss_db("output_loss_db", output_loss_db) / 10.0)
+    tp_in = default_temperature_k if input_loss_temperature_k is None else check_temperature(
+        "input_loss_temperature_k", input_loss_temperature_k)
+    tp_out = default_temperature_k if output_loss_temperature_k is None else check_temperature(
+        "output_loss_temperature_k", output_loss_temperature_k)
+    return lin, lout, tp_in, tp_out
+
+
 def check_density(field: str, density: object) -> NoiseDensity:
     if not isinstance(density, NoiseDensity):
         raise InputError(field, f"must be a NoiseDensity (got {type(density).__name__})",

@@ -33,7 +33,7 @@ from noisebench.methods._common import (
     DEFAULT_LOW_GAIN_DB,
     DEFAULT_SCATTER_LIMIT,
     check_density,
-    check_loss_db,
+    check_losses,
     check_non_negative,
     check_number,
     check_same_frequency,
@@ -171,12 +171,9 @@ def gain_method_point(
     t0 = check_temperature("t0_k", t0_k)
     t_term = ts if floor_temperature_k is None else check_temperature("floor_temperature_k",
                                                                       floor_temperature_k)
-    lin = 10.0 ** (check_loss_db("input_loss_db", input_loss_db) / 10.0)
-    lout = 10.0 ** (check_loss_db("output_loss_db", output_loss_db) / 10.0)
-    tp_in = ts if input_loss_temperature_k is None else check_temperature(
-        "input_loss_temperature_k", input_loss_temperature_k)
-    tp_out = ts if output_loss_temperature_k is None else check_temperature(
-        "output_loss_temperature_k", output_loss_temperature_k)
+    lin, lout, tp_in, tp_out = check_losses(input_loss_db, output_loss_db,
+                                            input_loss_temperature_k,
+                                            output_loss_temperature_k, ts)
     includes_in = bool(gain_includes_losses)
     includes_out = includes_in if gain_includes_output_loss is None \
         else bool(gain_includes_output_loss)

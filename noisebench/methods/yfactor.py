@@ -43,7 +43,7 @@ from noisebench.methods._common import (
     DEFAULT_SCATTER_LIMIT,
     FREQ_REL_TOL,
     check_density,
-    check_loss_db,
+    check_losses,
     check_non_negative,
     check_number,
     check_same_frequency,
@@ -413,12 +413,9 @@ def y_factor_point(
     tc = check_temperature("cold_temperature_k", cold_temperature_k)
     t0 = check_temperature("t0_k", t0_k)
     ref = _check_reference(enr_reference)
-    lin = 10.0 ** (check_loss_db("input_loss_db", input_loss_db) / 10.0)
-    lout = 10.0 ** (check_loss_db("output_loss_db", output_loss_db) / 10.0)
-    tp_in = tc if input_loss_temperature_k is None else check_temperature(
-        "input_loss_temperature_k", input_loss_temperature_k)
-    tp_out = tc if output_loss_temperature_k is None else check_temperature(
-        "output_loss_temperature_k", output_loss_temperature_k)
+    lin, lout, tp_in, tp_out = check_losses(input_loss_db, output_loss_db,
+                                            input_loss_temperature_k,
+                                            output_loss_temperature_k, tc)
 
     if calibration is not None and (calibration.enr_reference != ref
                                     or calibration.t0_k != t0):
@@ -581,12 +578,9 @@ def y_factor_sweep(
     tc = _positive("cold_temperature_k", cold_temperature_k, _KELVIN_FIX)
     t0 = check_temperature("t0_k", t0_k)
     ref = _check_reference(enr_reference)
-    lin = 10.0 ** (check_loss_db("input_loss_db", input_loss_db) / 10.0)
-    lout = 10.0 ** (check_loss_db("output_loss_db", output_loss_db) / 10.0)
-    tp_in = tc if input_loss_temperature_k is None else check_temperature(
-        "input_loss_temperature_k", input_loss_temperature_k)
-    tp_out = tc if output_loss_temperature_k is None else check_temperature(
-        "output_loss_temperature_k", output_loss_temperature_k)
+    lin, lout, tp_in, tp_out = check_losses(input_loss_db, output_loss_db,
+                                            input_loss_temperature_k,
+                                            output_loss_temperature_k, tc)
     cal = None
     if (hot_cal_w_per_hz is None) != (cold_cal_w_per_hz is None):
         raise InputError("hot_cal_w_per_hz", "and cold_cal_w_per_hz go together",
