@@ -1,2 +1,3 @@
 """noisebench."""
+
 __version__ = "0.1.0"

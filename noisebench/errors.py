@@ -73,9 +73,7 @@ class InstrumentTimeout(CommunicationError):
 class InstrumentError(NoisebenchError):
     """The instrument reported an error-queue entry (``code``, ``text``) after ``command``."""
 
-    def __init__(
-        self, code: int, text: str, *, command: str | None = None, **context: Any
-    ) -> None:
+    def __init__(self, code: int, text: str, *, command: str | None = None, **context: Any) -> None:
         self.code = code
         self.text = text
         self.command = command
@@ -95,8 +93,12 @@ def require_finite(field: str, value: Any) -> None:
 
     arr = np.asarray(value, dtype=float)
     if not np.all(np.isfinite(arr)):
-        raise InputError(field, "must be finite (got NaN or inf)", value=value,
-                         fix="check the reading or the table it came from")
+        raise InputError(
+            field,
+            "must be finite (got NaN or inf)",
+            value=value,
+            fix="check the reading or the table it came from",
+        )
 
 
 def require_positive(field: str, value: Any, *, allow_zero: bool = False) -> None:
@@ -117,8 +119,9 @@ def input_error_from_validation(exc: Any, section: str, *, fix: str | None = Non
     problems = []
     for err in exc.errors(include_url=False):
         loc = "".join(f"[{p}]" if isinstance(p, int) else f".{p}" for p in err.get("loc", ()))
-        problems.append((f"{section}{loc}", str(err.get("msg", "invalid")).removeprefix(
-            "Value error, ")))
+        problems.append(
+            (f"{section}{loc}", str(err.get("msg", "invalid")).removeprefix("Value error, "))
+        )
     field, message = problems[0]
     if len(problems) > 1:
         message += "; also " + "; ".join(f"{f}: {m}" for f, m in problems[1:])

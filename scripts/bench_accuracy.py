@@ -31,14 +31,14 @@ from pathlib import Path
 
 import numpy as np
 
-from noisebench.forecast import (
+from noisebench.bench.registry import simulated_session
+from noisebench.running.forecast import (
     _simulated_priors,  # noqa: PLC2701 - same model, no instrument
     band_relative_variance,
     point_uncertainty_db,
 )
-from noisebench.plan import parse_plan
-from noisebench.registry import simulated_session
-from noisebench.sequencer import Sequencer, plan_groups
+from noisebench.running.plan import parse_plan
+from noisebench.running.sequencer import Sequencer, plan_groups
 from noisebench.sims.bench import SimulatedBench
 
 T0 = 290.0
@@ -48,14 +48,21 @@ SKIPPED: dict[str, list] = {"y_factor": [], "gain": []}
 EFFICIENCY_FREQS_HZ = [1e9 + 0.5e9 * i for i in range(9)]
 IDEAL = {
     "noise_source__calibration_error_db": [0.0] * 16,
-    "dut__input_reflection": {"magnitude": 0.0}, "dut__output_reflection": {"magnitude": 0.0},
+    "dut__input_reflection": {"magnitude": 0.0},
+    "dut__output_reflection": {"magnitude": 0.0},
     "noise_source__cold_reflection": {"magnitude": 0.0},
     "noise_source__hot_reflection": {"magnitude": 0.0},
-    "analyzer__input_reflection": {"magnitude": 0.0}, "analyzer__amplitude_error_db": 0.0,
-    "input_cable__loss_db": [0.0], "input_cable__sqrt_f_scaling": False,
-    "output_cable__loss_db": [0.0], "output_cable__sqrt_f_scaling": False,
-    "dut__gain_ripple_db": 0.0, "interference__tones": [], "interference__combs": [],
-    "dut__output_p1db_dbm": 40.0, "analyzer__mixer_p1db_dbm": 30.0,
+    "analyzer__input_reflection": {"magnitude": 0.0},
+    "analyzer__amplitude_error_db": 0.0,
+    "input_cable__loss_db": [0.0],
+    "input_cable__sqrt_f_scaling": False,
+    "output_cable__loss_db": [0.0],
+    "output_cable__sqrt_f_scaling": False,
+    "dut__gain_ripple_db": 0.0,
+    "interference__tones": [],
+    "interference__combs": [],
+    "dut__output_p1db_dbm": 40.0,
+    "analyzer__mixer_p1db_dbm": 30.0,
 }
 
 
@@ -70,22 +77,52 @@ def make_sim(nf_db: float, gain_db: float, margin_db: float, seed: int) -> Simul
     sa_nf = analyzer_nf_for_margin(nf_db, gain_db, margin_db)
     n_dut = 14
     return SimulatedBench.from_scenario(
-        "demo-lna", seed=seed, **IDEAL, dut__gain_db=[gain_db] * n_dut,
-        dut__nf_db=[nf_db] * n_dut, analyzer__nf_db=[sa_nf] * 8)
+        "demo-lna",
+        seed=seed,
+        **IDEAL,
+        dut__gain_db=[gain_db] * n_dut,
+        dut__nf_db=[nf_db] * n_dut,
+        analyzer__nf_db=[sa_nf] * 8,
+    )
 
 
-def make_plan(method: str, gain_db: float, *, target: float = 0.05, naive: bool = False,
-              time_limit_s: float = 30.0, freqs_hz: list[float] = FREQS_HZ):
-    acquisition = {"attenuation_db": 0, "target_u_nf_db": target, "time_limit_s": time_limit_s,
-                   "max_averages": 100_000}
+def make_plan(
+    method: str,
+    gain_db: float,
+    *,
+    target: float = 0.05,
+    naive: bool = False,
+    time_limit_s: float = 30.0,
+    freqs_hz: list[float] = FREQS_HZ,
+):
+    acquisition = {
+        "attenuation_db": 0,
+        "target_u_nf_db": target,
+        "time_limit_s": time_limit_s,
+        "max_averages": 100_000,
+    }
     if naive:
-        acquisition.update(detector="sample", averaging_scale="log_power", min_averages=512,
-                           max_averages=512, trace_points=101)
-    data = {"method": method,
-            "bench": {"analyzer": {"resource": "sim://demo-lna", "compression_dbm": 30.0,
-                                   "max_input_dbm": 40.0}},
-            "acquisition": acquisition, "sweep": {"freqs_hz": list(freqs_hz)},
-            "expect": {"dut_gain_db": gain_db}, "output": {"plots": False, "report": False}}
+        acquisition.update(
+            detector="sample",
+            averaging_scale="log_power",
+            min_averages=512,
+            max_averages=512,
+            trace_points=101,
+        )
+    data = {
+        "method": method,
+        "bench": {
+            "analyzer": {
+                "resource": "sim://demo-lna",
+                "compression_dbm": 30.0,
+                "max_input_dbm": 40.0,
+            }
+        },
+        "acquisition": acquisition,
+        "sweep": {"freqs_hz": list(freqs_hz)},
+        "expect": {"dut_gain_db": gain_db},
+        "output": {"plots": False, "report": False},
+    }
     if method == "gain":
         data["gain"] = {"source": "constant", "value_db": gain_db}
     return parse_plan(data)
@@ -98,8 +135,9 @@ def run_once(method: str, sim: SimulatedBench, plan, folder: Path):
     return record, time.process_time() - cpu0, sim.clock.now_s - clock0
 
 
-def radiometer_minimum(method: str, sim: SimulatedBench, plan, target: float
-                       ) -> tuple[float, float, float]:
+def radiometer_minimum(
+    method: str, sim: SimulatedBench, plan, target: float
+) -> tuple[float, float, float]:
     """The ideal power-averaged measurement reaching ``target``, summed over the points:
     (averages, sweep time only s, with the instrument's per-sweep overhead s). No settling,
     no calibration, no pilot round: exactly the averages the radiometer equation asks for."""
@@ -123,8 +161,9 @@ def radiometer_minimum(method: str, sim: SimulatedBench, plan, target: float
 
 
 def accuracy(seeds: int, quick: bool, workdir: Path) -> dict[str, list]:
-    grid = list(itertools.product((0.5, 2.0, 5.0, 12.0), (10.0, 20.0, 40.0),
-                                  (0.0, 5.0, 10.0, 20.0)))
+    grid = list(
+        itertools.product((0.5, 2.0, 5.0, 12.0), (10.0, 20.0, 40.0), (0.0, 5.0, 10.0, 20.0))
+    )
     if quick:
         grid = grid[::5]
     rows: dict[str, list] = {"y_factor": [], "gain": []}
@@ -133,48 +172,70 @@ def accuracy(seeds: int, quick: bool, workdir: Path) -> dict[str, list]:
         # an independent noise realisation for every case (a shared seed would repeat errors)
         sim = make_sim(nf, gain, margin, seed=1000 + 10 * index + seed + (method == "gain") * 5)
         plan = make_plan(method, gain)
-        record, cpu_s, _ = run_once(method, sim, plan,
-                                    workdir / f"acc_{method}_{nf}_{gain}_{margin}_{seed}")
+        record, cpu_s, _ = run_once(
+            method, sim, plan, workdir / f"acc_{method}_{nf}_{gain}_{margin}_{seed}"
+        )
         for skipped in record.info.notes.get("skipped_points", []):
             SKIPPED[method].append((nf, gain, margin, skipped["freq_hz"], skipped["reason"]))
         if not record.points:
             continue
         truth = sim.truth([p.freq_hz for p in record.points])
         for p, nf_true in zip(record.points, truth["nf_db"], strict=True):
-            rows[method].append((nf, gain, margin, p.nf_db - float(nf_true), p.u_nf_db,
-                                 cpu_s / len(record.points), bool(p.flags)))
+            rows[method].append(
+                (
+                    nf,
+                    gain,
+                    margin,
+                    p.nf_db - float(nf_true),
+                    p.u_nf_db,
+                    cpu_s / len(record.points),
+                    bool(p.flags),
+                )
+            )
     return rows
 
 
 def print_accuracy(rows: dict[str, list]) -> None:
     print("(a) accuracy against the simulator's truth (ideal bench, target 0.05 dB)")
-    print(f"{'method':<9} {'points':>6} {'bias dB':>8} {'scatter dB':>10} {'mean u dB':>9} "
-          f"{'|e|<=u':>7} {'|e|<=2u':>8} {'flagged':>8}")
+    print(
+        f"{'method':<9} {'points':>6} {'bias dB':>8} {'scatter dB':>10} {'mean u dB':>9} "
+        f"{'|e|<=u':>7} {'|e|<=2u':>8} {'flagged':>8}"
+    )
     for method, data in rows.items():
         arr = np.array([r[3:5] for r in data])
         err, u = arr[:, 0], arr[:, 1]
         flagged = np.mean([r[6] for r in data])
-        print(f"{method:<9} {len(err):>6d} {err.mean():>+8.4f} {err.std(ddof=1):>10.4f} "
-              f"{u.mean():>9.4f} {np.mean(np.abs(err) <= u):>7.1%} "
-              f"{np.mean(np.abs(err) <= 2 * u):>8.1%} {flagged:>8.1%}")
+        print(
+            f"{method:<9} {len(err):>6d} {err.mean():>+8.4f} {err.std(ddof=1):>10.4f} "
+            f"{u.mean():>9.4f} {np.mean(np.abs(err) <= u):>7.1%} "
+            f"{np.mean(np.abs(err) <= 2 * u):>8.1%} {flagged:>8.1%}"
+        )
     for method, skipped in SKIPPED.items():
         for nf, gain, margin, freq, reason in skipped[:3]:
-            print(f"  {method} refused NF {nf} dB / gain {gain} dB / margin {margin} dB at "
-                  f"{freq / 1e9:g} GHz: {reason[:90]}")
+            print(
+                f"  {method} refused NF {nf} dB / gain {gain} dB / margin {margin} dB at "
+                f"{freq / 1e9:g} GHz: {reason[:90]}"
+            )
     print("  by DUT noise above the analyzer floor (both methods):")
     for margin in sorted({r[2] for d in rows.values() for r in d}):
         sel = np.array([r[3:5] for d in rows.values() for r in d if r[2] == margin])
         err, u = sel[:, 0], sel[:, 1]
-        print(f"    {margin:>4.0f} dB: bias {err.mean():+.4f} dB, scatter "
-              f"{err.std(ddof=1):.4f} dB, |e|<=2u {np.mean(np.abs(err) <= 2 * u):.1%}")
+        print(
+            f"    {margin:>4.0f} dB: bias {err.mean():+.4f} dB, scatter "
+            f"{err.std(ddof=1):.4f} dB, |e|<=2u {np.mean(np.abs(err) <= 2 * u):.1%}"
+        )
 
 
 def efficiency(workdir: Path) -> None:
-    print("\n(b) efficiency per point to reach 0.05 dB (NF 2 dB, gain 20 dB, DUT noise 10 dB "
-          "above the floor; RBW 1 MHz, 10 MHz band, RMS detector)")
-    print(f"{'method':<9} {'averages':>8} {'radiom.':>8} {'ratio':>6} {'time s':>7} "
-          f"{'min sweep s':>11} {'ratio':>6} {'min instr s':>11} {'ratio':>6} {'+cal+settle':>11}"
-          f" {'naive s':>8} {'naive u':>8} {'naive->0.05 s':>13} {'vs adaptive':>11}")
+    print(
+        "\n(b) efficiency per point to reach 0.05 dB (NF 2 dB, gain 20 dB, DUT noise 10 dB "
+        "above the floor; RBW 1 MHz, 10 MHz band, RMS detector)"
+    )
+    print(
+        f"{'method':<9} {'averages':>8} {'radiom.':>8} {'ratio':>6} {'time s':>7} "
+        f"{'min sweep s':>11} {'ratio':>6} {'min instr s':>11} {'ratio':>6} {'+cal+settle':>11}"
+        f" {'naive s':>8} {'naive u':>8} {'naive->0.05 s':>13} {'vs adaptive':>11}"
+    )
     for method in ("y_factor", "gain"):
         sim = make_sim(2.0, 20.0, 10.0, seed=7)
         plan = make_plan(method, 20.0, freqs_hz=EFFICIENCY_FREQS_HZ)
@@ -183,27 +244,37 @@ def efficiency(workdir: Path) -> None:
         used = sum(p.averages for p in record.points) / n
         meas = sum(p.instrument_time_s for p in record.points) / n
         total = clock_s / n
-        need, sweep_min, instr_min = (x / n for x in radiometer_minimum(
-            method, make_sim(2.0, 20.0, 10.0, seed=7), plan, 0.05))
+        need, sweep_min, instr_min = (
+            x / n for x in radiometer_minimum(method, make_sim(2.0, 20.0, 10.0, seed=7), plan, 0.05)
+        )
         nsim = make_sim(2.0, 20.0, 10.0, seed=8)
-        naive_plan = make_plan(method, 20.0, naive=True, time_limit_s=1e4,
-                               freqs_hz=EFFICIENCY_FREQS_HZ)
+        naive_plan = make_plan(
+            method, 20.0, naive=True, time_limit_s=1e4, freqs_hz=EFFICIENCY_FREQS_HZ
+        )
         naive, _, _ = run_once(method, nsim, naive_plan, workdir / f"naive_{method}")
         naive_s = sum(p.instrument_time_s for p in naive.points) / n
         naive_u = float(np.mean([p.u_nf_db for p in naive.points]))
         naive_for_target = naive_s * (naive_u / 0.05) ** 2
-        print(f"{method:<9} {used:>8.0f} {need:>8.0f} {used / need:>6.2f} {meas:>7.3f} "
-              f"{sweep_min:>11.3f} {meas / sweep_min:>6.2f} {instr_min:>11.3f} "
-              f"{meas / instr_min:>6.2f} {total / instr_min:>11.2f} {naive_s:>8.3f} "
-              f"{naive_u:>8.4f} {naive_for_target:>13.3f} {naive_for_target / meas:>11.2f}")
-    print("  averages / radiom.: averages used over those the radiometer equation needs "
-          "(the algorithm's own waste: planning margin, pilot rounds, estimate scatter).")
-    print("  min sweep: radiometer averages x sweep time; min instr: also the simulated "
-          "instrument's 1 ms retrace per sweep. time s: the point's measurement time incl. "
-          "noise-source settling (50 ms per switch) and retune; +cal+settle: the whole run's "
-          "instrument time per point (calibration included) over min instr.")
-    print("  naive: 512 sample-detector traces averaged in dB per reading (the estimator "
-          "corrects their 2.51 dB log bias); naive->0.05 s: its time scaled by (u/0.05)^2.")
+        print(
+            f"{method:<9} {used:>8.0f} {need:>8.0f} {used / need:>6.2f} {meas:>7.3f} "
+            f"{sweep_min:>11.3f} {meas / sweep_min:>6.2f} {instr_min:>11.3f} "
+            f"{meas / instr_min:>6.2f} {total / instr_min:>11.2f} {naive_s:>8.3f} "
+            f"{naive_u:>8.4f} {naive_for_target:>13.3f} {naive_for_target / meas:>11.2f}"
+        )
+    print(
+        "  averages / radiom.: averages used over those the radiometer equation needs "
+        "(the algorithm's own waste: planning margin, pilot rounds, estimate scatter)."
+    )
+    print(
+        "  min sweep: radiometer averages x sweep time; min instr: also the simulated "
+        "instrument's 1 ms retrace per sweep. time s: the point's measurement time incl. "
+        "noise-source settling (50 ms per switch) and retune; +cal+settle: the whole run's "
+        "instrument time per point (calibration included) over min instr."
+    )
+    print(
+        "  naive: 512 sample-detector traces averaged in dB per reading (the estimator "
+        "corrects their 2.51 dB log bias); naive->0.05 s: its time scaled by (u/0.05)^2."
+    )
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -219,10 +290,12 @@ def main(argv: list[str] | None = None) -> int:
         print_accuracy(rows)
         efficiency(work)
         cpu = [r[5] for d in rows.values() for r in d]
-        print(f"\n(c) host CPU time per point (accuracy runs, incl. calibration share): "
-              f"median {np.median(cpu) * 1e3:.0f} ms, 90th percentile "
-              f"{np.percentile(cpu, 90) * 1e3:.0f} ms; whole benchmark "
-              f"{time.process_time() - t0:.1f} s CPU")
+        print(
+            f"\n(c) host CPU time per point (accuracy runs, incl. calibration share): "
+            f"median {np.median(cpu) * 1e3:.0f} ms, 90th percentile "
+            f"{np.percentile(cpu, 90) * 1e3:.0f} ms; whole benchmark "
+            f"{time.process_time() - t0:.1f} s CPU"
+        )
     return 0
 
 

@@ -18,19 +18,32 @@ import time
 
 import numpy as np
 
-from noisebench.acquisition import AcquisitionSettings, AveragingScale, Detector, Trace
-from noisebench.detection import point_model
-from noisebench.estimator import estimate_densities, estimate_density
+from noisebench.bench.acquisition import AcquisitionSettings, AveragingScale, Detector, Trace
+from noisebench.science.detection import point_model
+from noisebench.science.estimator import estimate_densities, estimate_density
 
 
-def _trace(rng: np.random.Generator, points: int, scale: AveragingScale, averages: int,
-           detector: Detector = Detector.SAMPLE, span_hz: float | None = None) -> Trace:
+def _trace(
+    rng: np.random.Generator,
+    points: int,
+    scale: AveragingScale,
+    averages: int,
+    detector: Detector = Detector.SAMPLE,
+    span_hz: float | None = None,
+) -> Trace:
     """Independent points (spacing 10 RBW) with the exact per-point distribution."""
     rbw = 1e4
     span = span_hz if span_hz is not None else 10 * rbw * (points - 1)
-    s = AcquisitionSettings(center_hz=2e9, span_hz=span, rbw_hz=rbw, detector=detector,
-                            averaging_scale=scale, averages=averages, points=points,
-                            detector_samples=1)
+    s = AcquisitionSettings(
+        center_hz=2e9,
+        span_hz=span,
+        rbw_hz=rbw,
+        detector=detector,
+        averaging_scale=scale,
+        averages=averages,
+        points=points,
+        detector_samples=1,
+    )
     x = rng.exponential(1.0, (averages, points))
     if scale is AveragingScale.POWER:
         p = x.mean(axis=0)
@@ -52,9 +65,11 @@ def bench_vectorised(rng: np.random.Generator) -> None:
     loop = [estimate_density(trace, freq_hz=float(f), band_hz=1e6) for f in freqs[:20]]
     t_loop = (time.perf_counter() - t0) * len(freqs) / 20
     assert math.isclose(loop[0].density_w_per_hz, many[0].density_w_per_hz, rel_tol=1e-12)
-    print(f"1. 201 bands of a 100 001-point trace: estimate_densities {t_vec:.3f} s, "
-          f"loop of estimate_density {t_loop:.2f} s (extrapolated from 20): "
-          f"ratio {t_loop / t_vec:.1f}x")
+    print(
+        f"1. 201 bands of a 100 001-point trace: estimate_densities {t_vec:.3f} s, "
+        f"loop of estimate_density {t_loop:.2f} s (extrapolated from 20): "
+        f"ratio {t_loop / t_vec:.1f}x"
+    )
 
 
 def bench_sizes(rng: np.random.Generator) -> None:
@@ -73,15 +88,19 @@ def bench_efficiency(rng: np.random.Generator) -> None:
     averages, seeds = 32, 1500
     out = {}
     for scale in (AveragingScale.POWER, AveragingScale.LOG_POWER, AveragingScale.VOLTAGE):
-        v = [estimate_density(_trace(rng, 101, scale, averages)).density_w_per_hz
-             for _ in range(seeds)]
+        v = [
+            estimate_density(_trace(rng, 101, scale, averages)).density_w_per_hz
+            for _ in range(seeds)
+        ]
         out[scale] = float(np.var(v, ddof=1))
     for scale in (AveragingScale.LOG_POWER, AveragingScale.VOLTAGE):
         model = point_model(Detector.SAMPLE, scale, averages, 1).relative_variance() * averages
         measured = out[scale] / out[AveragingScale.POWER]
-        print(f"3. variance {scale.value} / power averaging, N={averages}: measured "
-              f"{measured:.3f} (chi-square 2-sigma ~ +/-{2 * measured * math.sqrt(4 / seeds):.2f})"
-              f", model {model:.3f}")
+        print(
+            f"3. variance {scale.value} / power averaging, N={averages}: measured "
+            f"{measured:.3f} (chi-square 2-sigma ~ +/-{2 * measured * math.sqrt(4 / seeds):.2f})"
+            f", model {model:.3f}"
+        )
 
 
 def main() -> None:

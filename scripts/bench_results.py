@@ -18,10 +18,10 @@ from pathlib import Path
 
 import numpy as np
 
-from noisebench.plots import plot_run
-from noisebench.point import Method, PointResult
-from noisebench.report import write_report
-from noisebench.results import RunInfo, RunWriter, collect_versions, load_run
+from noisebench.results.plots import plot_run
+from noisebench.results.report import write_report
+from noisebench.results.store import RunInfo, RunWriter, collect_versions, load_run
+from noisebench.science.point import Method, PointResult
 
 T0_K = 290.0
 
@@ -32,21 +32,44 @@ def make_points(n: int) -> list[PointResult]:
     points = []
     for f in freqs:
         nf = 1.5 + 0.05 * rng.standard_normal()
-        points.append(PointResult(
-            freq_hz=float(f), method=Method.Y_FACTOR, nf_db=nf,
-            te_k=T0_K * (10 ** (nf / 10) - 1), u_nf_db=0.04, u_te_k=2.8, gain_db=20.0,
-            u_gain_db=0.03, y_db=12.9, enr_db=15.0, floor_margin_db=17.0, averages=32,
-            instrument_time_s=0.12,
-            densities_w_per_hz={"hot": 1.2e-17, "cold": 6.1e-19, "hot_cal": 1.9e-19,
-                                "cold_cal": 6.4e-20}))
+        points.append(
+            PointResult(
+                freq_hz=float(f),
+                method=Method.Y_FACTOR,
+                nf_db=nf,
+                te_k=T0_K * (10 ** (nf / 10) - 1),
+                u_nf_db=0.04,
+                u_te_k=2.8,
+                gain_db=20.0,
+                u_gain_db=0.03,
+                y_db=12.9,
+                enr_db=15.0,
+                floor_margin_db=17.0,
+                averages=32,
+                instrument_time_s=0.12,
+                densities_w_per_hz={
+                    "hot": 1.2e-17,
+                    "cold": 6.1e-19,
+                    "hot_cal": 1.9e-19,
+                    "cold_cal": 6.4e-20,
+                },
+            )
+        )
     return points
 
 
 def budget(freq_hz: float) -> dict:
-    return {"freq_hz": freq_hz, "contributions": [
-        {"name": n, "u": 0.1, "unit": "dB", "sensitivity": 1.0, "contribution_db": 0.05}
-        for n in ("ENR", "Tc", "jitter hot", "jitter cold", "linearity")],
-        "u_combined_db": 0.12, "k": 2.0, "U_expanded_db": 0.24, "method": "gum"}
+    return {
+        "freq_hz": freq_hz,
+        "contributions": [
+            {"name": n, "u": 0.1, "unit": "dB", "sensitivity": 1.0, "contribution_db": 0.05}
+            for n in ("ENR", "Tc", "jitter hot", "jitter cold", "linearity")
+        ],
+        "u_combined_db": 0.12,
+        "k": 2.0,
+        "U_expanded_db": 0.24,
+        "method": "gum",
+    }
 
 
 def buffered_append_s(lines: list[bytes], folder: Path) -> float:
@@ -65,8 +88,9 @@ def main() -> None:
     base = args.folder or Path(tempfile.mkdtemp(prefix="nb-bench-"))
     folder = base / "run"
     points = make_points(args.points)
-    info = RunInfo(run_id="bench", method=Method.Y_FACTOR, dut_id="bench DUT",
-                   versions=collect_versions())
+    info = RunInfo(
+        run_id="bench", method=Method.Y_FACTOR, dut_id="bench DUT", versions=collect_versions()
+    )
 
     writer = RunWriter.create(folder, info)
     start = time.perf_counter()
@@ -93,16 +117,20 @@ def main() -> None:
 
     n = len(points)
     print(f"points: {n}   folder: {folder}")
-    print(f"durable append (write+fsync): {1e3 * durable_s / n:.3f} ms/point; buffered "
-          f"append without fsync: {1e3 * plain_s / n:.4f} ms/point; ratio "
-          f"{durable_s / max(plain_s, 1e-12):.0f}x")
+    print(
+        f"durable append (write+fsync): {1e3 * durable_s / n:.3f} ms/point; buffered "
+        f"append without fsync: {1e3 * plain_s / n:.4f} ms/point; ratio "
+        f"{durable_s / max(plain_s, 1e-12):.0f}x"
+    )
     print(f"rebuild from journal: {1e3 * load_s:.1f} ms ({1e3 * load_s / n:.3f} ms/point)")
     print(f"finish (results.json + results.csv): {1e3 * finish_s:.1f} ms")
     print(f"figures ({len(plots)}): {plots_s:.2f} s; report: {report_s:.2f} s")
     for name in ("points.jsonl", "results.json", "results.csv"):
         print(f"{name}: {os.path.getsize(folder / name) / 1024:.0f} kB")
-    print(f"report.html: {os.path.getsize(report) / 1024:.0f} kB "
-          f"(figures {sum(os.path.getsize(p) for p in plots) / 1024:.0f} kB as PNG)")
+    print(
+        f"report.html: {os.path.getsize(report) / 1024:.0f} kB "
+        f"(figures {sum(os.path.getsize(p) for p in plots) / 1024:.0f} kB as PNG)"
+    )
 
 
 if __name__ == "__main__":

@@ -20,8 +20,8 @@ import time
 
 import numpy as np
 
-from noisebench.acquisition import AcquisitionRequest, AveragingScale, Detector
-from noisebench.filters import RbwFilter
+from noisebench.bench.acquisition import AcquisitionRequest, AveragingScale, Detector
+from noisebench.science.filters import RbwFilter
 from noisebench.sims.bench import Path, SimulatedBench
 from noisebench.sims.noisegen import Axis, _kernel_values, field_kernel
 
@@ -36,8 +36,9 @@ def timed(fn, repeat: int) -> float:
     return best
 
 
-def naive_average(rng: np.random.Generator, n_traces: int, n_points: int,
-                  spacing_rbw: float, log: bool) -> np.ndarray:
+def naive_average(
+    rng: np.random.Generator, n_traces: int, n_points: int, spacing_rbw: float, log: bool
+) -> np.ndarray:
     """Same statistics as the vectorised SAMPLE detector path, one trace per loop turn, every
     sample drawn (log-power or power averaging)."""
     kernel = field_kernel(RbwFilter(), spacing_rbw, Axis.FREQUENCY)
@@ -53,7 +54,7 @@ def naive_average(rng: np.random.Generator, n_traces: int, n_points: int,
         n_grid = (n_points // q + 1) * m + taps.size
         white = (rng.standard_normal(n_grid) + 1j * rng.standard_normal(n_grid)) / math.sqrt(2)
         if q == 1:
-            field = np.convolve(white, taps, mode="valid")[: (n_points - 1) * m + 1: m]
+            field = np.convolve(white, taps, mode="valid")[: (n_points - 1) * m + 1 : m]
         else:  # one convolution per phase of the finer point grid
             field = np.empty(n_points, dtype=complex)
             for r in range(q):
@@ -71,27 +72,62 @@ def acquisition_benchmarks(repeat: int) -> None:
     bench = SimulatedBench.from_scenario("demo-lna", seed=1)
     an = bench.analyzer
     cases = [
-        ("sample, log-power, 0.1 RBW spacing (correlated)", 1e9, Detector.SAMPLE,
-         AveragingScale.LOG_POWER, False),
-        ("sample, power, 0.1 RBW spacing (aggregated)", 1e9, Detector.SAMPLE,
-         AveragingScale.POWER, False),
-        ("sample, power, 0.1 RBW spacing (every look drawn)", 1e9, Detector.SAMPLE,
-         AveragingScale.POWER, True),
-        ("sample, voltage, 0.01 RBW spacing (correlated)", 100e6, Detector.SAMPLE,
-         AveragingScale.VOLTAGE, False),
-        ("rms, log-power, 1 RBW spacing", 10e9 / 1.34, Detector.RMS, AveragingScale.LOG_POWER,
-         False),
+        (
+            "sample, log-power, 0.1 RBW spacing (correlated)",
+            1e9,
+            Detector.SAMPLE,
+            AveragingScale.LOG_POWER,
+            False,
+        ),
+        (
+            "sample, power, 0.1 RBW spacing (aggregated)",
+            1e9,
+            Detector.SAMPLE,
+            AveragingScale.POWER,
+            False,
+        ),
+        (
+            "sample, power, 0.1 RBW spacing (every look drawn)",
+            1e9,
+            Detector.SAMPLE,
+            AveragingScale.POWER,
+            True,
+        ),
+        (
+            "sample, voltage, 0.01 RBW spacing (correlated)",
+            100e6,
+            Detector.SAMPLE,
+            AveragingScale.VOLTAGE,
+            False,
+        ),
+        (
+            "rms, log-power, 1 RBW spacing",
+            10e9 / 1.34,
+            Detector.RMS,
+            AveragingScale.LOG_POWER,
+            False,
+        ),
     ]
     print("averaged 10 001-point trace, 100 averages, RBW 1 MHz (host time per acquisition)")
     for label, span, det, scale, exact in cases:
         an.exact_statistics = exact
-        an.configure(AcquisitionRequest(center_hz=3.75e9, span_hz=span, rbw_hz=1e6,
-                                        points=10_001, averages=100, detector=det,
-                                        averaging_scale=scale))
+        an.configure(
+            AcquisitionRequest(
+                center_hz=3.75e9,
+                span_hz=span,
+                rbw_hz=1e6,
+                points=10_001,
+                averages=100,
+                detector=det,
+                averaging_scale=scale,
+            )
+        )
         an.acquire_trace()  # warm the kernel caches
         t = timed(an.acquire_trace, repeat)
-        print(f"  {label:<52s} {t * 1e3:8.1f} ms   (detector samples "
-              f"{an.settings.detector_samples:g})")
+        print(
+            f"  {label:<52s} {t * 1e3:8.1f} ms   (detector samples "
+            f"{an.settings.detector_samples:g})"
+        )
     an.exact_statistics = False
 
 
@@ -102,34 +138,50 @@ def naive_comparison(repeat: int) -> None:
     kernel = field_kernel(RbwFilter(), spacing, Axis.FREQUENCY)
     rng = np.random.default_rng(0)
     ones = np.ones(10_001)
-    print("vectorised generator vs a naive per-trace loop (same statistics, SAMPLE detector, "
-          "0.1 RBW spacing, 10 001 points, 100 averages):")
+    print(
+        "vectorised generator vs a naive per-trace loop (same statistics, SAMPLE detector, "
+        "0.1 RBW spacing, 10 001 points, 100 averages):"
+    )
     for scale, log in ((AveragingScale.LOG_POWER, True), (AveragingScale.POWER, False)):
-        recipe = TraceRecipe(n_traces=100, n_points=10_001, looks=1, detector=Detector.SAMPLE,
-                             averaging_scale=scale, kernel=kernel)
+        recipe = TraceRecipe(
+            n_traces=100,
+            n_points=10_001,
+            looks=1,
+            detector=Detector.SAMPLE,
+            averaging_scale=scale,
+            kernel=kernel,
+        )
         generate_trace(rng, recipe, ones)
         t_vec = timed(lambda r=recipe: generate_trace(rng, r, ones), repeat)
-        t_naive = timed(lambda lg=log: naive_average(rng, 100, 10_001, spacing, lg),
-                        max(1, repeat // 2))
+        t_naive = timed(
+            lambda lg=log: naive_average(rng, 100, 10_001, spacing, lg), max(1, repeat // 2)
+        )
         how = "every sample drawn" if log else "mean of 100 looks drawn in one step"
-        print(f"  {scale.value:<9s} ({how:<35s}) vectorised {t_vec * 1e3:7.1f} ms   "
-              f"naive {t_naive * 1e3:7.1f} ms   ratio {t_naive / t_vec:6.1f}x")
+        print(
+            f"  {scale.value:<9s} ({how:<35s}) vectorised {t_vec * 1e3:7.1f} ms   "
+            f"naive {t_naive * 1e3:7.1f} ms   ratio {t_naive / t_vec:6.1f}x"
+        )
 
 
 def sustained_sweeps(seconds: float) -> None:
     bench = SimulatedBench.from_scenario("demo-lna", seed=2)
     bench.set_path(Path.DUT)
     an = bench.analyzer
-    an.configure(AcquisitionRequest(center_hz=2e9, span_hz=100e6, rbw_hz=1e6, points=1001,
-                                    averages=1, detector=Detector.RMS))
+    an.configure(
+        AcquisitionRequest(
+            center_hz=2e9, span_hz=100e6, rbw_hz=1e6, points=1001, averages=1, detector=Detector.RMS
+        )
+    )
     t_sim0, t0, n = bench.clock.now_s, time.perf_counter(), 0
     while time.perf_counter() - t0 < seconds:
         an.acquire_trace()
         n += 1
     host = time.perf_counter() - t0
     sim = bench.clock.now_s - t_sim0
-    print(f"sustained single sweeps (1001 points, RMS): {n / host:8.0f} sweeps/s host; "
-          f"simulated {sim:.3f} s in {host:.3f} s host ({sim / host:.2f}x real time)")
+    print(
+        f"sustained single sweeps (1001 points, RMS): {n / host:8.0f} sweeps/s host; "
+        f"simulated {sim:.3f} s in {host:.3f} s host ({sim / host:.2f}x real time)"
+    )
 
 
 def main() -> None:

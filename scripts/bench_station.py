@@ -16,18 +16,26 @@ import tempfile
 import time
 from pathlib import Path
 
-from noisebench.calibration import CalibrationStore
-from noisebench.plan import parse_plan
-from noisebench.registry import simulated_session
-from noisebench.sequencer import Sequencer
+from noisebench.bench.registry import simulated_session
+from noisebench.frontends.station import Station, StationSettings, UnitId
+from noisebench.running.calibration import CalibrationStore
+from noisebench.running.plan import parse_plan
+from noisebench.running.sequencer import Sequencer
 from noisebench.sims.bench import SimulatedBench
-from noisebench.station import Station, StationSettings, UnitId
 
 PLAN = {
-    "method": "y_factor", "name": "station benchmark",
+    "method": "y_factor",
+    "name": "station benchmark",
     "bench": {"analyzer": "sim://demo-lna?seed=1"},
-    "acquisition": {"rbw_hz": 1e6, "span_hz": 4e6, "attenuation_db": 0.0, "min_averages": 8,
-                    "max_averages": 400, "target_u_nf_db": 0.05, "time_limit_s": 10.0},
+    "acquisition": {
+        "rbw_hz": 1e6,
+        "span_hz": 4e6,
+        "attenuation_db": 0.0,
+        "min_averages": 8,
+        "max_averages": 400,
+        "target_u_nf_db": 0.05,
+        "time_limit_s": 10.0,
+    },
     "sweep": {"freqs_hz": [1e9, 1.5e9, 2e9, 2.5e9, 3e9]},
     "uncertainty": {"enr_db": 0.1, "cold_temperature_k": 1.0, "linearity_db": 0.02},
     "limits": {"bands": [{"start_hz": 0.9e9, "stop_hz": 3.1e9, "nf_max_db": 1.3}]},
@@ -74,12 +82,18 @@ def main() -> None:
     s_first, s_next, s_instr = station(plan, args.units, folder)
     points = len(plan.points())
     print(f"{args.units} units, {points} points each, demo-lna simulated bench, in {folder}")
-    print(f"bare sequencer: first unit {b_first:.3f} s (calibration included), later units "
-          f"{b_next:.3f} s; instrument time {b_instr:.2f} s per unit")
-    print(f"station:        first unit {s_first:.3f} s, later units {s_next:.3f} s; "
-          f"instrument time {s_instr:.2f} s per unit")
-    print(f"station / bare (later units): {s_next / b_next:.2f}x host time; "
-          f"first / later unit (station): {s_first / s_next:.2f}x")
+    print(
+        f"bare sequencer: first unit {b_first:.3f} s (calibration included), later units "
+        f"{b_next:.3f} s; instrument time {b_instr:.2f} s per unit"
+    )
+    print(
+        f"station:        first unit {s_first:.3f} s, later units {s_next:.3f} s; "
+        f"instrument time {s_instr:.2f} s per unit"
+    )
+    print(
+        f"station / bare (later units): {s_next / b_next:.2f}x host time; "
+        f"first / later unit (station): {s_first / s_next:.2f}x"
+    )
 
 
 if __name__ == "__main__":

@@ -101,8 +101,10 @@ def main(argv: list[str] | None = None) -> int:
     resource = f"TCPIP0::127.0.0.1::{peer.port}::SOCKET"
     fast = VisaSession(resource, timeout_s=10.0, binary_reader="fast")
     codec = VisaSession(resource, timeout_s=10.0, binary_reader="pyvisa")
-    print(f"{'points':>8} {'bytes':>8} {'socket ms':>10} {'fast ms':>8} {'pyvisa ms':>10} "
-          f"{'ascii ms':>9} {'fast/socket':>12} {'pyvisa/fast':>12} {'ascii/fast':>11}")
+    print(
+        f"{'points':>8} {'bytes':>8} {'socket ms':>10} {'fast ms':>8} {'pyvisa ms':>10} "
+        f"{'ascii ms':>9} {'fast/socket':>12} {'pyvisa/fast':>12} {'ascii/fast':>11}"
+    )
     try:
         for n in SIZES:
             values = rng.integers(0, 2**32, n, dtype=np.uint32).view(">f4")
@@ -119,9 +121,11 @@ def main(argv: list[str] | None = None) -> int:
             t_fast = _median_s(lambda: fast.query_binary("BIN?"), args.repeats)
             t_codec = _median_s(lambda: codec.query_binary("BIN?"), args.repeats)
             t_ascii = _median_s(lambda: parse_ascii_values(fast.query("ASC?")), args.repeats)
-            print(f"{n:>8} {len(block):>8} {t_sock * 1e3:>10.3f} {t_fast * 1e3:>8.3f} "
-                  f"{t_codec * 1e3:>10.3f} {t_ascii * 1e3:>9.3f} {t_fast / t_sock:>12.2f} "
-                  f"{t_codec / t_fast:>12.2f} {t_ascii / t_fast:>11.2f}")
+            print(
+                f"{n:>8} {len(block):>8} {t_sock * 1e3:>10.3f} {t_fast * 1e3:>8.3f} "
+                f"{t_codec * 1e3:>10.3f} {t_ascii * 1e3:>9.3f} {t_fast / t_sock:>12.2f} "
+                f"{t_codec / t_fast:>12.2f} {t_ascii / t_fast:>11.2f}"
+            )
     finally:
         fast.close()
         codec.close()

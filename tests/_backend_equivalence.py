@@ -1,7 +1,8 @@
 """Compare one plan's results from two back ends that drew the same noise (same simulator seed).
 
 The in-process simulated analyzer hands the estimator float64 trace values; the SCPI simulator
-sends its trace memory, float32 dBm (sims/scpi_analyzer.py). Rounding a value v to float32
+sends its trace memory, float32 dBm (noisebench/sims/scpi_analyzer.py). Rounding a value v to
+float32
 moves it by at most half a float32 step at |v| (IEEE 754 round-to-nearest). A trace power
 10^(v/10) then moves by a relative ln(10)/10 * step/2 at most, and so does any weighted mean
 of such powers: every band density. To first order the NF then moves by at most

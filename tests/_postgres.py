@@ -45,8 +45,10 @@ def temporary_postgres() -> Iterator[str]:
         return
     initdb, pg_ctl = _find("initdb"), _find("pg_ctl")
     if not initdb or not pg_ctl:
-        raise RuntimeError("PostgreSQL binaries (initdb, pg_ctl) not found; "
-                           "apt-get install postgresql, or set NOISEBENCH_TEST_PG_URL")
+        raise RuntimeError(
+            "PostgreSQL binaries (initdb, pg_ctl) not found; "
+            "apt-get install postgresql, or set NOISEBENCH_TEST_PG_URL"
+        )
     as_user: list[str] = []
     if os.geteuid() == 0:
         runuser = shutil.which("runuser")
@@ -61,16 +63,18 @@ def temporary_postgres() -> Iterator[str]:
     env = dict(os.environ, LC_ALL="C")
 
     def run(cmd: list[str]) -> subprocess.CompletedProcess:
-        return subprocess.run(as_user + cmd, capture_output=True, text=True, env=env,
-                              timeout=120, cwd=tmp)
+        return subprocess.run(
+            as_user + cmd, capture_output=True, text=True, env=env, timeout=120, cwd=tmp
+        )
 
     r = run([initdb, "-D", str(data), "-U", "postgres", "-A", "trust", "-E", "UTF8"])
     if r.returncode != 0:
         shutil.rmtree(tmp, ignore_errors=True)
         raise RuntimeError(f"initdb failed: {r.stderr.strip()[-300:]}")
     opts = f"-p {port} -k {tmp} -c listen_addresses=127.0.0.1 -c fsync=off"
-    r = run([pg_ctl, "-D", str(data), "-o", opts, "-l", str(tmp / "log"), "-w", "-t", "60",
-             "start"])
+    r = run(
+        [pg_ctl, "-D", str(data), "-o", opts, "-l", str(tmp / "log"), "-w", "-t", "60", "start"]
+    )
     if r.returncode != 0:
         log_text = (tmp / "log").read_text() if (tmp / "log").exists() else ""
         shutil.rmtree(tmp, ignore_errors=True)

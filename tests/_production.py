@@ -9,25 +9,38 @@ from typing import Any
 
 import numpy as np
 
-from noisebench.plan import Plan, parse_plan
-from noisebench.registry import simulated_session
+from noisebench.bench.registry import simulated_session
+from noisebench.running.plan import Plan, parse_plan
 
 FREQS_HZ = (1.0e9, 2.0e9)
 NF_LIMIT_DB = 1.3
 T0_K = 290.0
 
 
-def small_plan(folder: Path, *, nf_max_db: float = NF_LIMIT_DB, rbw_hz: float = 1e6,
-               limits: bool = True, uncertainty: bool | dict[str, Any] = True,
-               **extra: Any) -> Plan:
+def small_plan(
+    folder: Path,
+    *,
+    nf_max_db: float = NF_LIMIT_DB,
+    rbw_hz: float = 1e6,
+    limits: bool = True,
+    uncertainty: bool | dict[str, Any] = True,
+    **extra: Any,
+) -> Plan:
     """A two-point Y-factor plan on sim://demo-lna with budget inputs and an NF mask
     (``uncertainty`` a dict: those budget inputs instead of the default ones)."""
     data: dict[str, Any] = {
-        "method": "y_factor", "name": "station test plan",
+        "method": "y_factor",
+        "name": "station test plan",
         "bench": {"analyzer": "sim://demo-lna?seed=1"},
-        "acquisition": {"rbw_hz": rbw_hz, "span_hz": 4 * rbw_hz, "attenuation_db": 0.0,
-                        "min_averages": 8, "max_averages": 400, "target_u_nf_db": 0.05,
-                        "time_limit_s": 10.0},
+        "acquisition": {
+            "rbw_hz": rbw_hz,
+            "span_hz": 4 * rbw_hz,
+            "attenuation_db": 0.0,
+            "min_averages": 8,
+            "max_averages": 400,
+            "target_u_nf_db": 0.05,
+            "time_limit_s": 10.0,
+        },
         "sweep": {"freqs_hz": list(FREQS_HZ)},
         "output": {"plots": False, "report": True},
     }
@@ -36,8 +49,11 @@ def small_plan(folder: Path, *, nf_max_db: float = NF_LIMIT_DB, rbw_hz: float = 
     elif uncertainty:
         data["uncertainty"] = {"enr_db": 0.05, "cold_temperature_k": 0.5, "linearity_db": 0.01}
     if limits:
-        data["limits"] = {"bands": [{"name": "1-2 GHz", "start_hz": 0.9e9, "stop_hz": 2.1e9,
-                                     "nf_max_db": nf_max_db}]}
+        data["limits"] = {
+            "bands": [
+                {"name": "1-2 GHz", "start_hz": 0.9e9, "stop_hz": 2.1e9, "nf_max_db": nf_max_db}
+            ]
+        }
     data.update(extra)
     return parse_plan(data, base_dir=folder)
 
@@ -47,8 +63,12 @@ def exact_sim(seed: int = 1) -> Any:
     from noisebench.sims.bench import SimulatedBench
 
     return SimulatedBench.from_scenario(
-        "demo-lna", seed=seed, noise_source__calibration_error_scale=0.0,
-        dut__input_reflection__magnitude=0.0, dut__output_reflection__magnitude=0.0)
+        "demo-lna",
+        seed=seed,
+        noise_source__calibration_error_scale=0.0,
+        dut__input_reflection__magnitude=0.0,
+        dut__output_reflection__magnitude=0.0,
+    )
 
 
 def session_on(sim: Any, plan: Plan) -> Any:

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from typing import Any
 
-from noisebench.plan import Plan, parse_plan
-from noisebench.registry import BenchSession, simulated_session
+from noisebench.bench.registry import BenchSession, simulated_session
+from noisebench.running.plan import Plan, parse_plan
 
 # A bench whose truth the methods can recover exactly: no ENR calibration error, no
 # reflections (mismatch changes a DUT's NF), flat known gain, no absolute level error (the
@@ -18,9 +18,12 @@ IDEAL_OVERRIDES: dict[str, Any] = {
     "noise_source__hot_reflection": {"magnitude": 0.0},
     "analyzer__input_reflection": {"magnitude": 0.0},
     "analyzer__amplitude_error_db": 0.0,
-    "input_cable__loss_db": [0.3], "input_cable__sqrt_f_scaling": False,
-    "output_cable__loss_db": [0.5], "output_cable__sqrt_f_scaling": False,
-    "dut__gain_db": [25.0] * 14, "dut__gain_ripple_db": 0.0,
+    "input_cable__loss_db": [0.3],
+    "input_cable__sqrt_f_scaling": False,
+    "output_cable__loss_db": [0.5],
+    "output_cable__sqrt_f_scaling": False,
+    "dut__gain_db": [25.0] * 14,
+    "dut__gain_ripple_db": 0.0,
 }
 IDEAL_INPUT_LOSS_DB = 0.3
 IDEAL_OUTPUT_LOSS_DB = 0.5
@@ -33,8 +36,9 @@ def ideal_sim(seed: int = 1, **extra: Any):
     return SimulatedBench.from_scenario("demo-lna", seed=seed, **{**IDEAL_OVERRIDES, **extra})
 
 
-def plan_dict(method: str = "y_factor", *, freqs_hz=(1e9, 2e9, 3e9, 4e9),
-              target: float = 0.1, **sections: Any) -> dict[str, Any]:
+def plan_dict(
+    method: str = "y_factor", *, freqs_hz=(1e9, 2e9, 3e9, 4e9), target: float = 0.1, **sections: Any
+) -> dict[str, Any]:
     """A plan for the ideal demo-lna bench; ``sections`` update the top-level tables."""
     data: dict[str, Any] = {
         "method": method,
@@ -43,8 +47,10 @@ def plan_dict(method: str = "y_factor", *, freqs_hz=(1e9, 2e9, 3e9, 4e9),
         "acquisition": {"attenuation_db": 0, "target_u_nf_db": target, "time_limit_s": 20},
         "sweep": {"freqs_hz": list(freqs_hz)},
         "expect": {"dut_gain_db": 20.0},
-        "corrections": {"input_loss": IDEAL_INPUT_LOSS_DB,
-                        "output_loss": IDEAL_OUTPUT_LOSS_DB if method == "gain" else 0.0},
+        "corrections": {
+            "input_loss": IDEAL_INPUT_LOSS_DB,
+            "output_loss": IDEAL_OUTPUT_LOSS_DB if method == "gain" else 0.0,
+        },
     }
     if method == "gain":
         data["gain"] = {"source": "constant", "value_db": IDEAL_GAIN_DB}

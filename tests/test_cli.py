@@ -12,8 +12,8 @@ from pathlib import Path
 import pytest
 from _backend_equivalence import assert_same_points
 
-from noisebench import cli
-from noisebench.results import load_run
+from noisebench.frontends import cli
+from noisebench.results.store import load_run
 
 SIM_PLAN = """\
 method = "{method}"
@@ -52,7 +52,9 @@ def _error_lines(err: str) -> list[str]:
 
 
 def test_bad_plan_gives_one_line_per_problem_and_exit_2(tmp_path, capsys):
-    plan = _write(tmp_path / "bad.toml", """\
+    plan = _write(
+        tmp_path / "bad.toml",
+        """\
         method = "y_factor"
         [bench]
         analyzer = "sim://demo-lna"
@@ -61,7 +63,8 @@ def test_bad_plan_gives_one_line_per_problem_and_exit_2(tmp_path, capsys):
         detector = "peak"
         [sweep]
         freqs_hz = [1e9]
-        """)
+        """,
+    )
     code, out, err = _run(["run", plan], capsys)
     assert code == cli.EXIT_INPUT
     lines = _error_lines(err)
@@ -105,11 +108,15 @@ def test_unexpected_exception_is_still_one_line(monkeypatch, capsys, tmp_path):
 
 
 def test_safety_refusal_exit_3(tmp_path, capsys):
-    plan = _write(tmp_path / "p.toml", SIM_PLAN.format(method="y_factor") + """
+    plan = _write(
+        tmp_path / "p.toml",
+        SIM_PLAN.format(method="y_factor")
+        + """
 [safety]
 dut_max_gain_db = 60.0
 dut_bandwidth_hz = 20e9
-""")
+""",
+    )
     code, _, err = _run(["-q", "run", plan], capsys)
     assert code == cli.EXIT_SAFETY
     (line,) = _error_lines(err)
@@ -118,8 +125,12 @@ dut_bandwidth_hz = 20e9
 
 def test_console_script_never_shows_a_traceback(tmp_path):
     plan = _write(tmp_path / "bad.toml", 'method = "gain"\n')
-    proc = subprocess.run([sys.executable, "-m", "noisebench.cli", "validate", str(plan)],
-                          capture_output=True, text=True, timeout=120)
+    proc = subprocess.run(
+        [sys.executable, "-m", "noisebench.frontends.cli", "validate", str(plan)],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
     assert proc.returncode == cli.EXIT_INPUT
     assert "Traceback" not in proc.stderr
     assert "bad.toml: bench: is required" in proc.stderr
@@ -150,8 +161,10 @@ def test_validate_plan_and_enr_table(tmp_path, capsys):
 
 
 def test_estimate_without_instruments(tmp_path, capsys):
-    plan = _write(tmp_path / "p.toml", SIM_PLAN.format(method="gain") +
-                  '[gain]\nsource = "constant"\nvalue_db = 25.0\n')
+    plan = _write(
+        tmp_path / "p.toml",
+        SIM_PLAN.format(method="gain") + '[gain]\nsource = "constant"\nvalue_db = 25.0\n',
+    )
     code, out, _ = _run(["estimate", plan], capsys)
     assert code == 0
     assert "no instrument touched" in out
@@ -163,7 +176,9 @@ def test_estimate_without_instruments(tmp_path, capsys):
 
 def test_estimate_on_instruments_needs_priors(tmp_path, capsys):
     (tmp_path / "enr.csv").write_text("freq_hz,enr_db\n1e8,15\n1e10,15\n", encoding="utf-8")
-    plan = _write(tmp_path / "p.toml", """\
+    plan = _write(
+        tmp_path / "p.toml",
+        """\
         method = "y_factor"
         [bench]
         analyzer = "TCPIP0::127.0.0.1::5025::SOCKET"
@@ -171,7 +186,8 @@ def test_estimate_on_instruments_needs_priors(tmp_path, capsys):
         table = "enr.csv"
         [sweep]
         freqs_hz = [1e9]
-        """)
+        """,
+    )
     code, _, err = _run(["estimate", plan], capsys)
     assert code == cli.EXIT_INPUT
     assert "expect.dut_nf_db: is needed to forecast" in err
@@ -191,7 +207,7 @@ class _CtrlCAfterFirstPoint:
 
 
 def test_run_writes_results_and_resume_continues(tmp_path, capsys, monkeypatch):
-    from noisebench import progress
+    from noisebench.running import progress
 
     plan = _write(tmp_path / "p.toml", SIM_PLAN.format(method="y_factor"))
     folder = tmp_path / "run1"
@@ -211,8 +227,10 @@ def test_run_writes_results_and_resume_continues(tmp_path, capsys, monkeypatch):
 
 
 def test_render_rewrites_report(tmp_path, capsys):
-    plan = _write(tmp_path / "p.toml", SIM_PLAN.format(method="gain") +
-                  '[gain]\nsource = "constant"\nvalue_db = 25.0\n')
+    plan = _write(
+        tmp_path / "p.toml",
+        SIM_PLAN.format(method="gain") + '[gain]\nsource = "constant"\nvalue_db = 25.0\n',
+    )
     folder = tmp_path / "run"
     assert _run(["-q", "run", plan, "--out", folder], capsys)[0] == 0
     (folder / "report.html").unlink()
@@ -259,11 +277,13 @@ def test_serve_passes_its_options_to_the_simulator(capsys):
 
 
 @pytest.mark.parametrize("drive", ["analyzer", "supply"])
-def test_plan_runs_against_the_scpi_simulator_through_pyvisa(sim_server, tmp_path, capsys,
-                                                              drive):
+def test_plan_runs_against_the_scpi_simulator_through_pyvisa(sim_server, tmp_path, capsys, drive):
     sim_server.bench.enr_table.to_csv(tmp_path / "enr.csv")
-    source = ('drive = "analyzer"' if drive == "analyzer" else
-              f'drive = "supply", resource = "{sim_server.resource("supply")}", drive_v = 28.0')
+    source = (
+        'drive = "analyzer"'
+        if drive == "analyzer"
+        else f'drive = "supply", resource = "{sim_server.resource("supply")}", drive_v = 28.0'
+    )
     plan_text = """\
         method = "y_factor"
         [dut]
@@ -286,9 +306,11 @@ def test_plan_runs_against_the_scpi_simulator_through_pyvisa(sim_server, tmp_pat
         folder = "runs"
         plots = false
         """
-    scpi_bench = (f'noise_source = {{ {source}, settle_time_s = 0.02 }}\n        '
-                  f'analyzer = {{ resource = "{sim_server.resource("analyzer")}", '
-                  'profile = "generic", compression_dbm = -3.0 }')
+    scpi_bench = (
+        f"noise_source = {{ {source}, settle_time_s = 0.02 }}\n        "
+        f'analyzer = {{ resource = "{sim_server.resource("analyzer")}", '
+        'profile = "generic", compression_dbm = -3.0 }'
+    )
     plan = _write(tmp_path / "scpi.toml", plan_text.format(bench=scpi_bench))
     folder = tmp_path / "run"
     code, out, err = _run(["-q", "run", plan, "--out", folder], capsys)

@@ -10,14 +10,14 @@ from pathlib import Path
 import pytest
 from _sequencer_helpers import ideal_session, ideal_sim, make_plan
 
-from noisebench import cli
-from noisebench.enr import EnrTable
+from noisebench.bench.registry import simulated_session
 from noisebench.errors import InputError
-from noisebench.gain_files import GainTable, load_gain_table
-from noisebench.registry import simulated_session
-from noisebench.results import load_run
-from noisebench.sequencer import Sequencer
-from noisebench.station import units_from_file
+from noisebench.frontends import cli
+from noisebench.frontends.station import units_from_file
+from noisebench.results.store import load_run
+from noisebench.running.sequencer import Sequencer
+from noisebench.science.enr import EnrTable
+from noisebench.science.gain_files import GainTable, load_gain_table
 
 PLAN = """\
 method = "y_factor"
@@ -38,11 +38,21 @@ dut_gain_db = 20.0
 """
 
 
-def _plan(folder: Path, *, resource: str = "sim://demo-lna?seed=1", target: str = "0.2",
-          time_limit: str = "20", sweep: str = "freqs_hz = [1e9, 2e9]", loss: str = "0.3",
-          extra: str = "", name: str = "plan.toml", prefix: str = "") -> Path:
-    text = PLAN.format(resource=resource, target=target, time_limit=time_limit, sweep=sweep,
-                       loss=loss) + textwrap.dedent(extra)
+def _plan(
+    folder: Path,
+    *,
+    resource: str = "sim://demo-lna?seed=1",
+    target: str = "0.2",
+    time_limit: str = "20",
+    sweep: str = "freqs_hz = [1e9, 2e9]",
+    loss: str = "0.3",
+    extra: str = "",
+    name: str = "plan.toml",
+    prefix: str = "",
+) -> Path:
+    text = PLAN.format(
+        resource=resource, target=target, time_limit=time_limit, sweep=sweep, loss=loss
+    ) + textwrap.dedent(extra)
     path = folder / name
     path.write_text(prefix + text, encoding="utf-8")
     return path
@@ -99,8 +109,7 @@ def test_a_plan_that_is_not_utf8_names_the_file_and_the_fix(tmp_path, capsys):
     for command in ("validate", "run"):
         code, _, err = _cli(capsys, command, path)
         assert code == cli.EXIT_INPUT, command
-        assert f"plan.toml: not UTF-8 text (byte {raw.index(0xE9)}); save the plan as UTF-8" \
-            in err
+        assert f"plan.toml: not UTF-8 text (byte {raw.index(0xE9)}); save the plan as UTF-8" in err
 
 
 def test_validate_names_an_unknown_simulator_scenario(tmp_path, capsys):
@@ -128,8 +137,7 @@ def test_an_absurd_constant_loss_is_refused_before_the_run(tmp_path, capsys):
 
 
 def test_coverage_fix_names_only_keys_that_exist_and_spots_mhz(tmp_path, capsys):
-    (tmp_path / "cable.csv").write_text("freq_mhz,loss_db\n500,0.2\n1500,0.3\n",
-                                        encoding="utf-8")
+    (tmp_path / "cable.csv").write_text("freq_mhz,loss_db\n500,0.2\n1500,0.3\n", encoding="utf-8")
     code, _, err = _cli(capsys, "validate", _plan(tmp_path, loss='"cable.csv"'))
     assert code == cli.EXIT_INPUT
     assert "corrections.input_loss: cable.csv covers 5e+08-1.5e+09 Hz" in err
@@ -140,8 +148,7 @@ def test_coverage_fix_names_only_keys_that_exist_and_spots_mhz(tmp_path, capsys)
     _, _, err = _cli(capsys, "validate", _plan(tmp_path, sweep="freqs_hz = [1000, 2000]"))
     assert "the sweep looks like MHz: plan frequencies are in Hz" not in err  # no table: ok
     sweep = "freqs_hz = [1000, 2000]"
-    (tmp_path / "cable.csv").write_text("freq_hz,loss_db\n0.5e9,0.2\n2.5e9,0.3\n",
-                                        encoding="utf-8")
+    (tmp_path / "cable.csv").write_text("freq_hz,loss_db\n0.5e9,0.2\n2.5e9,0.3\n", encoding="utf-8")
     _, _, err = _cli(capsys, "validate", _plan(tmp_path, sweep=sweep, loss='"cable.csv"'))
     assert "the sweep looks like MHz: plan frequencies are in Hz" in err
 
@@ -152,8 +159,7 @@ def test_coverage_fix_names_only_keys_that_exist_and_spots_mhz(tmp_path, capsys)
 def test_enr_and_gain_csv_with_a_byte_order_mark_load(tmp_path):
     # spreadsheet "CSV UTF-8" exports start with U+FEFF
     enr = tmp_path / "enr.csv"
-    enr.write_text("\ufeff# serial: NS-1\nfreq_hz,enr_db\n1e9,15.1\n2e9,15.3\n",
-                   encoding="utf-8")
+    enr.write_text("\ufeff# serial: NS-1\nfreq_hz,enr_db\n1e9,15.1\n2e9,15.3\n", encoding="utf-8")
     assert EnrTable.from_csv(enr).metadata.serial == "NS-1"
     gain = tmp_path / "gain.csv"
     gain.write_text("\ufefffreq_hz,gain_db\n1e9,20\n2e9,21\n", encoding="utf-8")
@@ -171,12 +177,19 @@ def test_a_semicolon_or_tab_table_says_so(tmp_path, separator):
     assert f"columns are separated by {separator!r}" in str(gain_info.value)
 
 
-@pytest.mark.parametrize(("rows", "expected"), [
-    ("0.4 -20 0 nan 0 -40 0 -15 0\n7 -20 0 20 0 -40 0 -15 0\n",
-     "g.s2p data row 1, S21: is not a finite number"),
-    ("0.4 -20 0 20 0 -40 0 -15 0\n0.4 -20 0 20 0 -40 0 -15 0\n",
-     "g.s2p data row 2, freq_hz: not strictly ascending"),
-])
+@pytest.mark.parametrize(
+    ("rows", "expected"),
+    [
+        (
+            "0.4 -20 0 nan 0 -40 0 -15 0\n7 -20 0 20 0 -40 0 -15 0\n",
+            "g.s2p data row 1, S21: is not a finite number",
+        ),
+        (
+            "0.4 -20 0 20 0 -40 0 -15 0\n0.4 -20 0 20 0 -40 0 -15 0\n",
+            "g.s2p data row 2, freq_hz: not strictly ascending",
+        ),
+    ],
+)
 def test_a_bad_touchstone_file_gets_one_plain_line(tmp_path, capsys, rows, expected):
     path = tmp_path / "g.s2p"
     path.write_text("# GHZ S DB R 50\n" + rows, encoding="utf-8")
@@ -194,8 +207,7 @@ def test_a_bad_touchstone_file_gets_one_plain_line(tmp_path, capsys, rows, expec
 
 
 @pytest.mark.parametrize("command", [["yield"], ["stats"], ["history", "SN1"], ["info"]])
-def test_a_query_on_a_missing_sqlite_url_is_refused_and_creates_nothing(tmp_path, capsys,
-                                                                        command):
+def test_a_query_on_a_missing_sqlite_url_is_refused_and_creates_nothing(tmp_path, capsys, command):
     target = tmp_path / "typo.sqlite"
     code, out, err = _cli(capsys, "db", *command, "--db", f"sqlite:///{target}")
     assert code == cli.EXIT_INPUT
@@ -205,8 +217,7 @@ def test_a_query_on_a_missing_sqlite_url_is_refused_and_creates_nothing(tmp_path
 
 def test_import_still_creates_a_new_sqlite_database(tmp_path, capsys):
     target = tmp_path / "new.sqlite"
-    code, _, err = _cli(capsys, "db", "import", tmp_path / "missing", "--db",
-                        f"sqlite:///{target}")
+    code, _, err = _cli(capsys, "db", "import", tmp_path / "missing", "--db", f"sqlite:///{target}")
     assert code == cli.EXIT_INPUT and "no database file" not in err  # the folder is wrong
 
 
@@ -244,19 +255,24 @@ def test_points_the_physics_refused_can_be_measured_by_resume(tmp_path):
 
 
 def test_cli_names_the_resume_fix_for_skipped_points_and_resume_measures_them(
-        tmp_path, capsys, monkeypatch):
+    tmp_path, capsys, monkeypatch
+):
     dead = ideal_sim()
     dead.noise_source.stuck = True  # a dead source from the start: nothing can be measured
-    monkeypatch.setattr("noisebench.registry.open_bench",
-                        lambda section, **_: simulated_session(dead, section))
+    monkeypatch.setattr(
+        "noisebench.bench.registry.open_bench",
+        lambda section, **_: simulated_session(dead, section),
+    )
     plan_path, folder = _plan(tmp_path), tmp_path / "run"
     code, _, err = _cli(capsys, "run", plan_path, "--out", folder)
     assert code == cli.EXIT_MEASUREMENT
     assert f"--resume {folder}` measures them" in err
     assert load_run(folder).points == []
 
-    monkeypatch.setattr("noisebench.registry.open_bench",
-                        lambda section, **_: simulated_session(ideal_sim(), section))
+    monkeypatch.setattr(
+        "noisebench.bench.registry.open_bench",
+        lambda section, **_: simulated_session(ideal_sim(), section),
+    )
     code, _, err = _cli(capsys, "run", plan_path, "--resume", folder)
     assert code == cli.EXIT_OK, err  # before: refused as "already complete"
     assert "not measured" not in err  # and no stale note claims skipped points
@@ -264,8 +280,9 @@ def test_cli_names_the_resume_fix_for_skipped_points_and_resume_measures_them(
 
 
 @pytest.mark.parametrize("make_folder", ["empty", "complete"])
-def test_a_wrong_resume_folder_is_refused_before_the_bench_is_opened(tmp_path, capsys,
-                                                                      monkeypatch, make_folder):
+def test_a_wrong_resume_folder_is_refused_before_the_bench_is_opened(
+    tmp_path, capsys, monkeypatch, make_folder
+):
     plan_path = _plan(tmp_path)
     folder = tmp_path / "run"
     if make_folder == "complete":
@@ -277,7 +294,7 @@ def test_a_wrong_resume_folder_is_refused_before_the_bench_is_opened(tmp_path, c
     def no_bench(*_args, **_kwargs):
         raise AssertionError("the bench was opened for a folder that cannot be resumed")
 
-    monkeypatch.setattr("noisebench.registry.open_bench", no_bench)
+    monkeypatch.setattr("noisebench.bench.registry.open_bench", no_bench)
     code, _, err = _cli(capsys, "run", plan_path, "--resume", folder)
     assert code == cli.EXIT_INPUT
     assert ("already complete" if make_folder == "complete" else "holds no run.json") in err
@@ -289,8 +306,9 @@ def test_a_journal_point_edited_to_nan_is_skipped_with_a_warning_not_shown(tmp_p
     (folder / "results.json").unlink()  # render rebuilds the run from the journal
     journal = folder / "points.jsonl"
     lines = journal.read_text(encoding="utf-8").splitlines()
-    index = next(i for i, line in enumerate(lines) if '"kind": "point"' in line
-                 or '"kind":"point"' in line)
+    index = next(
+        i for i, line in enumerate(lines) if '"kind": "point"' in line or '"kind":"point"' in line
+    )
     lines[index] = re.sub(r'"nf_db": ?[-0-9.eE+]+', '"nf_db": NaN', lines[index], count=1)
     journal.write_text("\n".join(lines) + "\n", encoding="utf-8")
     capsys.readouterr()
@@ -302,13 +320,18 @@ def test_a_journal_point_edited_to_nan_is_skipped_with_a_warning_not_shown(tmp_p
     assert len(load_run(folder).points) == 1
 
 
-@pytest.mark.parametrize(("argv", "expected"), [
-    (["demo", "--seed", "-1"], "argument --seed: must be >= 0 (got -1)"),
-    (["info", "--no-scan", "--timeout", "nan"], "argument --timeout: must be a finite number"),
-    (["info", "--no-scan", "--timeout", "-1"], "argument --timeout: must be a finite number"),
-    (["station", "plan.toml", "--max-cal-age", "nan", "--unit", "A1", "--no-db"],
-     "argument --max-cal-age: must be a finite number of seconds > 0 (got nan)"),
-])
+@pytest.mark.parametrize(
+    ("argv", "expected"),
+    [
+        (["demo", "--seed", "-1"], "argument --seed: must be >= 0 (got -1)"),
+        (["info", "--no-scan", "--timeout", "nan"], "argument --timeout: must be a finite number"),
+        (["info", "--no-scan", "--timeout", "-1"], "argument --timeout: must be a finite number"),
+        (
+            ["station", "plan.toml", "--max-cal-age", "nan", "--unit", "A1", "--no-db"],
+            "argument --max-cal-age: must be a finite number of seconds > 0 (got nan)",
+        ),
+    ],
+)
 def test_numeric_options_name_the_option(tmp_path, capsys, monkeypatch, argv, expected):
     monkeypatch.chdir(tmp_path)
     code, _, err = _cli(capsys, *argv)
@@ -323,17 +346,25 @@ def test_validate_of_a_folder_names_the_folder(tmp_path, capsys, monkeypatch):
     assert err.startswith(".: ") and "cannot read (Is a directory)" in err  # before: ": .: "
 
 
-@pytest.mark.parametrize(("target", "t0", "expected"), [
-    # 1e-300 dB used to overflow the radiometer forecast ("unexpected OverflowError")
-    ("1e-300", "290", "acquisition.target_u_nf_db: must be >= 0.001 (got 1e-300)"),
-    # 1e-300 K used to surface as a misleading ENR complaint
-    ("0.2", "1e-300", "corrections.t0_k: must be >= 200.0 (got 1e-300)"),
-])
-def test_implausible_targets_and_reference_temperatures_are_named(tmp_path, capsys, target,
-                                                                   t0, expected):
+@pytest.mark.parametrize(
+    ("target", "t0", "expected"),
+    [
+        # 1e-300 dB used to overflow the radiometer forecast ("unexpected OverflowError")
+        ("1e-300", "290", "acquisition.target_u_nf_db: must be >= 0.001 (got 1e-300)"),
+        # 1e-300 K used to surface as a misleading ENR complaint
+        ("0.2", "1e-300", "corrections.t0_k: must be >= 200.0 (got 1e-300)"),
+    ],
+)
+def test_implausible_targets_and_reference_temperatures_are_named(
+    tmp_path, capsys, target, t0, expected
+):
     path = _plan(tmp_path, target=target)
-    path.write_text(path.read_text(encoding="utf-8").replace(
-        "input_loss = 0.3", f"input_loss = 0.3\nt0_k = {t0}"), encoding="utf-8")
+    path.write_text(
+        path.read_text(encoding="utf-8").replace(
+            "input_loss = 0.3", f"input_loss = 0.3\nt0_k = {t0}"
+        ),
+        encoding="utf-8",
+    )
     for command in ("validate", "estimate"):
         code, _, err = _cli(capsys, command, path)
         assert code == cli.EXIT_INPUT, command
@@ -368,8 +399,10 @@ def _scpi_plan(folder: Path, profile: str) -> Path:
 
 def test_validate_checks_the_instrument_profile_the_run_would_load(tmp_path, capsys):
     (tmp_path / "broken.toml").write_text("[analyzer\n", encoding="utf-8")
-    for profile, expected in [("missing.toml", "no profile file or packaged profile"),
-                              ("broken.toml", "not valid TOML")]:
+    for profile, expected in [
+        ("missing.toml", "no profile file or packaged profile"),
+        ("broken.toml", "not valid TOML"),
+    ]:
         code, _, err = _cli(capsys, "validate", _scpi_plan(tmp_path, profile))
         assert code == cli.EXIT_INPUT, profile  # before: "ok", and the run refused it later
         assert "bench.analyzer.profile: " in err and expected in err
@@ -377,13 +410,14 @@ def test_validate_checks_the_instrument_profile_the_run_would_load(tmp_path, cap
 
 def test_a_profile_next_to_the_plan_is_found_from_another_folder(tmp_path, monkeypatch):
     from noisebench.drivers.profile import load_profile
-    from noisebench.plan import load_plan
+    from noisebench.running.plan import load_plan
 
     lab = tmp_path / "lab"
     plan_path = _scpi_plan(lab, "my_analyzer.toml")
     generic = load_profile("generic").source
-    (lab / "my_analyzer.toml").write_text(Path(generic).read_text(encoding="utf-8"),
-                                          encoding="utf-8")
+    (lab / "my_analyzer.toml").write_text(
+        Path(generic).read_text(encoding="utf-8"), encoding="utf-8"
+    )
     monkeypatch.chdir(tmp_path)  # README: relative file names are relative to the plan
     plan = load_plan(plan_path)
     assert Path(plan.bench.analyzer.profile) == lab / "my_analyzer.toml"
@@ -396,6 +430,5 @@ def test_validate_refuses_a_loss_table_that_gives_gain_as_the_run_would(tmp_path
     code, _, err = _cli(capsys, "validate", path)
     assert code == cli.EXIT_INPUT  # before: "ok", then the run failed at its first point
     assert "corrections.input_loss: cable.csv gives a gain of 3.000 dB at 1e+09 Hz" in err
-    (tmp_path / "cable.csv").write_text("freq_hz,loss_db\n0.5e9,0.3\n5e9,0.6\n",
-                                        encoding="utf-8")
+    (tmp_path / "cable.csv").write_text("freq_hz,loss_db\n0.5e9,0.3\n5e9,0.6\n", encoding="utf-8")
     assert _cli(capsys, "validate", path)[0] == cli.EXIT_OK

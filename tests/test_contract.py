@@ -8,7 +8,7 @@ import math
 import numpy as np
 import pytest
 
-from noisebench.acquisition import (
+from noisebench.bench.acquisition import (
     AcquisitionRequest,
     AcquisitionSettings,
     AveragingScale,
@@ -18,20 +18,23 @@ from noisebench.acquisition import (
     Trace,
     TraceUnit,
 )
+from noisebench.bench.instruments import Analyzer, NoiseSource
 from noisebench.drivers import AnalyzerDriveNoiseSource, ScpiAnalyzer, open_analyzer
 from noisebench.errors import InputError, InstrumentError
-from noisebench.estimator import density_from_marker, estimate_density
-from noisebench.instruments import Analyzer, NoiseSource
+from noisebench.science.estimator import density_from_marker, estimate_density
 from noisebench.sims.bench import SimulatedBench
 
-REQUEST = AcquisitionRequest(center_hz=1.5e9, span_hz=20e6, rbw_hz=110e3, averages=8,
-                             points=401)
+REQUEST = AcquisitionRequest(center_hz=1.5e9, span_hz=20e6, rbw_hz=110e3, averages=8, points=401)
 
 
 class Backend:
     def __init__(self, name, analyzer, noise_source, bench):
-        self.name, self.analyzer, self.noise_source, self.bench = (name, analyzer,
-                                                                   noise_source, bench)
+        self.name, self.analyzer, self.noise_source, self.bench = (
+            name,
+            analyzer,
+            noise_source,
+            bench,
+        )
 
 
 @pytest.fixture(params=["scpi", "in-process"])
@@ -60,7 +63,7 @@ def test_configure_reports_the_applied_rounded_settings(backend):
     sa = backend.analyzer
     applied = sa.configure(REQUEST.model_copy(update={"attenuation_db": 11.0}))
     assert isinstance(applied, AcquisitionSettings)
-    assert applied.rbw_hz == 100e3  # 1-2-3-5 sequence (sims/SCPI.md)
+    assert applied.rbw_hz == 100e3  # 1-2-3-5 sequence (noisebench/sims/SCPI.md)
     assert applied.attenuation_db in (10.0, 12.0)  # 2 dB steps
     assert applied.points == 401 and applied.averages == 8
     assert applied.sweep_time_s > 0 and applied.detector_samples >= 1
@@ -112,9 +115,15 @@ def test_markers_of_both_kinds(backend):
 
 def test_noise_marker_is_corrected_for_log_averaging_on_every_back_end(backend):
     sa = backend.analyzer
-    sa.configure(REQUEST.model_copy(update={
-        "averages": 2000, "detector": Detector.SAMPLE,
-        "averaging_scale": AveragingScale.LOG_POWER}))
+    sa.configure(
+        REQUEST.model_copy(
+            update={
+                "averages": 2000,
+                "detector": Detector.SAMPLE,
+                "averaging_scale": AveragingScale.LOG_POWER,
+            }
+        )
+    )
     reading = sa.read_marker(1.5e9, MarkerKind.NOISE_DENSITY, 5e6)
     # the instrument removed the log-average bias and divided by the ENBW, and says so
     # (CALC:MARK:FUNC:CORR? on the SCPI back end)

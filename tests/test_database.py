@@ -13,34 +13,79 @@ import numpy as np
 import pytest
 from _postgres import temporary_postgres
 
-from noisebench.database import SCHEMA_VERSION, DatabaseError, ResultsDatabase
 from noisebench.errors import InputError
-from noisebench.point import Method, PointFlag, PointResult
-from noisebench.results import RunInfo, RunRecord
+from noisebench.results.database import SCHEMA_VERSION, DatabaseError, ResultsDatabase
+from noisebench.results.store import RunInfo, RunRecord
+from noisebench.science.point import Method, PointFlag, PointResult
 
 FREQS = (1.0e9, 2.0e9, 3.0e9)
 T_START = datetime(2026, 5, 4, 8, 0, tzinfo=timezone.utc)
 
 
-def make_record(run_id: str, serial: str, nfs: tuple[float, ...], *, lot: str = "L1",
-                verdict: str | None = "pass", minutes: int = 0, station: str = "st-1",
-                status: str = "complete") -> RunRecord:
-    points = [PointResult(freq_hz=f, method=Method.Y_FACTOR, nf_db=nf,
-                          te_k=290 * (10 ** (nf / 10) - 1), gain_db=20.0 + i, y_db=10.0,
-                          u_nf_db=0.03, u_te_k=2.0,
-                          flags=[PointFlag.SPURS_EXCLUDED] if i == 0 else [])
-              for i, (f, nf) in enumerate(zip(FREQS, nfs, strict=True))]
-    info = RunInfo(run_id=run_id, method=Method.Y_FACTOR, dut_id=serial, operator="op",
-                   station=station, started_at=T_START + timedelta(minutes=minutes),
-                   ended_at=T_START + timedelta(minutes=minutes + 1), status=status,
-                   notes={"lot": lot, "part_number": "LNA-1"})
-    budgets = [{"freq_hz": f, "method": "gum", "k": 2.0, "u_combined_db": 0.1,
-                "U_expanded_db": 0.2,
-                "contributions": [{"name": "enr", "u": 0.1, "unit": "dB", "sensitivity": 0.99,
-                                   "contribution_db": 0.099}]} for f in FREQS]
-    v = None if verdict is None else {
-        "unit": verdict, "points": [{"freq_hz": f, "verdict": verdict} for f in FREQS],
-        "limits": []}
+def make_record(
+    run_id: str,
+    serial: str,
+    nfs: tuple[float, ...],
+    *,
+    lot: str = "L1",
+    verdict: str | None = "pass",
+    minutes: int = 0,
+    station: str = "st-1",
+    status: str = "complete",
+) -> RunRecord:
+    points = [
+        PointResult(
+            freq_hz=f,
+            method=Method.Y_FACTOR,
+            nf_db=nf,
+            te_k=290 * (10 ** (nf / 10) - 1),
+            gain_db=20.0 + i,
+            y_db=10.0,
+            u_nf_db=0.03,
+            u_te_k=2.0,
+            flags=[PointFlag.SPURS_EXCLUDED] if i == 0 else [],
+        )
+        for i, (f, nf) in enumerate(zip(FREQS, nfs, strict=True))
+    ]
+    info = RunInfo(
+        run_id=run_id,
+        method=Method.Y_FACTOR,
+        dut_id=serial,
+        operator="op",
+        station=station,
+        started_at=T_START + timedelta(minutes=minutes),
+        ended_at=T_START + timedelta(minutes=minutes + 1),
+        status=status,
+        notes={"lot": lot, "part_number": "LNA-1"},
+    )
+    budgets = [
+        {
+            "freq_hz": f,
+            "method": "gum",
+            "k": 2.0,
+            "u_combined_db": 0.1,
+            "U_expanded_db": 0.2,
+            "contributions": [
+                {
+                    "name": "enr",
+                    "u": 0.1,
+                    "unit": "dB",
+                    "sensitivity": 0.99,
+                    "contribution_db": 0.099,
+                }
+            ],
+        }
+        for f in FREQS
+    ]
+    v = (
+        None
+        if verdict is None
+        else {
+            "unit": verdict,
+            "points": [{"freq_hz": f, "verdict": verdict} for f in FREQS],
+            "limits": [],
+        }
+    )
     return RunRecord(info=info, points=points, budgets=budgets, verdict=v)
 
 
@@ -50,8 +95,9 @@ def _fill(db: ResultsDatabase) -> None:
     db.store_run(make_record("r2", "A", (0.9, 1.1, 1.3), verdict="pass", minutes=10))
     db.store_run(make_record("r3", "B", (1.5, 1.6, 1.7), verdict="fail", minutes=20))
     db.store_run(make_record("r4", "C", (0.8, 1.0, 1.2), lot="L2", verdict="pass", minutes=30))
-    db.store_run(make_record("r5", "D", (0.7, 0.7, 0.7), verdict=None, minutes=40,
-                             status="interrupted"))
+    db.store_run(
+        make_record("r5", "D", (0.7, 0.7, 0.7), verdict=None, minutes=40, status="interrupted")
+    )
 
 
 def _check_queries(db: ResultsDatabase) -> None:
@@ -122,8 +168,11 @@ def _writer(args: tuple[str, int, int]) -> int:
     for i in range(n):
         # every worker also writes the SAME shared unit, to race the get-or-create
         serial = "shared" if i % 2 == 0 else f"w{worker}-u{i}"
-        db.store_run(make_record(f"w{worker}-r{i}", serial, (1.0, 1.1, 1.2),
-                                 station=f"station-{worker}", minutes=i))
+        db.store_run(
+            make_record(
+                f"w{worker}-r{i}", serial, (1.0, 1.1, 1.2), station=f"station-{worker}", minutes=i
+            )
+        )
     db.close()
     return n
 

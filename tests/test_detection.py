@@ -1,4 +1,4 @@
-"""Detector and trace-averaging bias and variance for Gaussian noise (noisebench.detection).
+"""Detector and trace-averaging bias and variance for Gaussian noise (noisebench.science.detection).
 
 Closed forms are checked against scipy.special and against Monte Carlo draws of exponential
 (power) and Rayleigh (envelope) samples with fixed seeds. Tolerances are 5 standard errors of
@@ -17,8 +17,9 @@ from hypothesis import strategies as st
 from scipy import special
 from scipy.integrate import quad
 
-from noisebench.acquisition import AcquisitionSettings, AveragingScale, Detector
-from noisebench.detection import (
+from noisebench.bench.acquisition import AcquisitionSettings, AveragingScale, Detector
+from noisebench.errors import InputError
+from noisebench.science.detection import (
     C_DB,
     PointModel,
     PointStatistic,
@@ -30,16 +31,25 @@ from noisebench.detection import (
     trace_average_model,
     trace_average_relative_variance,
 )
-from noisebench.errors import InputError
 
-GEO, VOLT, MEAN = (PointStatistic.GEOMETRIC_MEAN, PointStatistic.SQUARED_VOLTAGE_MEAN,
-                   PointStatistic.MEAN)
+GEO, VOLT, MEAN = (
+    PointStatistic.GEOMETRIC_MEAN,
+    PointStatistic.SQUARED_VOLTAGE_MEAN,
+    PointStatistic.MEAN,
+)
 Z = 5.0  # tolerance in standard errors
 
 
 def _settings(**kw) -> AcquisitionSettings:
-    base = dict(center_hz=1e9, span_hz=1e6, rbw_hz=1e4, detector=Detector.RMS,
-                averaging_scale=AveragingScale.POWER, averages=10, points=101)
+    base = dict(
+        center_hz=1e9,
+        span_hz=1e6,
+        rbw_hz=1e4,
+        detector=Detector.RMS,
+        averaging_scale=AveragingScale.POWER,
+        averages=10,
+        points=101,
+    )
     base.update(kw)
     return AcquisitionSettings(**base)
 
@@ -57,10 +67,12 @@ def _batch_se(values: np.ndarray, stat, batches: int = 50) -> float:
 
 # --- log averaging -----------------------------------------------------------------------------
 
+
 def test_log_average_bias_closed_form():
     # reference: reference.md §6b, 10 log10(e) * Euler gamma = 2.506816 dB
-    assert log_average_bias_db() == pytest.approx(-10 * math.log10(math.e) * np.euler_gamma,
-                                                  rel=1e-13)
+    assert log_average_bias_db() == pytest.approx(
+        -10 * math.log10(math.e) * np.euler_gamma, rel=1e-13
+    )
     # E[ln X] = -gamma for a unit exponential, by numerical integration (Papoulis, from memory)
     e_ln = quad(lambda x: math.log(x) * math.exp(-x), 0, np.inf)[0]
     assert log_average_bias_db() == pytest.approx(C_DB * e_ln, rel=1e-9)
@@ -126,7 +138,8 @@ def test_geometric_mean_of_gamma_powers(k, n):
     e_s = lambda s: special.gamma(k + s) / (special.gamma(k) * k**s)  # noqa: E731
     assert model.mean_ratio() == pytest.approx(e_s(1 / n) ** n, rel=1e-12)
     assert model.relative_variance() == pytest.approx(
-        e_s(2 / n) ** n / e_s(1 / n) ** (2 * n) - 1, rel=1e-10)
+        e_s(2 / n) ** n / e_s(1 / n) ** (2 * n) - 1, rel=1e-10
+    )
     rng = np.random.default_rng(7)
     m = 400_000
     g = np.exp(np.mean(np.log(_gamma_powers(rng, k, (m, n))), axis=1)) / model.mean_ratio()
@@ -135,6 +148,7 @@ def test_geometric_mean_of_gamma_powers(k, n):
 
 
 # --- voltage (envelope) averaging ----------------------------------------------------------------
+
 
 def test_envelope_bias_closed_form_and_rayleigh_monte_carlo():
     # reference: reference.md §6b, 10 log10(pi/4) = -1.049101 dB for a Rayleigh envelope
@@ -170,10 +184,12 @@ def test_voltage_efficiency_many_averages():
     # delta method: Var((mean V)^2)/E^2 -> 4 Var(V)/(N E[V]^2) = (16/pi - 4)/N  [derived]
     model = trace_average_model(AveragingScale.VOLTAGE, 1e5)
     assert model.relative_variance() * 1e5 == pytest.approx(16 / math.pi - 4, rel=1e-4)
-    assert model.bias_db == pytest.approx(10 * math.log10(math.pi / 4 + (1 - math.pi / 4) / 1e5),
-                                          abs=1e-12)
+    assert model.bias_db == pytest.approx(
+        10 * math.log10(math.pi / 4 + (1 - math.pi / 4) / 1e5), abs=1e-12
+    )
     assert model.bias_db - envelope_average_bias_db() == pytest.approx(
-        C_DB * (4 / math.pi - 1) / 1e5, rel=1e-3)  # the 1/N term, to first order
+        C_DB * (4 / math.pi - 1) / 1e5, rel=1e-3
+    )  # the 1/N term, to first order
 
 
 @pytest.mark.parametrize("k, n", [(4, 3), (2, 10)])
@@ -191,6 +207,7 @@ def test_squared_voltage_mean_of_gamma_powers(k, n):
 
 # --- power averaging -----------------------------------------------------------------------------
 
+
 def test_power_averaging_unbiased_with_1_over_n_variance():
     # reference: reference.md §6c, linear power averaging: relative std 1/sqrt(N k)
     assert trace_average_mean_ratio(AveragingScale.POWER, 37, 3) == 1.0
@@ -203,6 +220,7 @@ def test_power_averaging_unbiased_with_1_over_n_variance():
 
 # --- correlation of neighbouring points ----------------------------------------------------------
 
+
 def _correlated_powers(rng, rho, m, n, k):
     """(m, n, k) power pairs of jointly complex-Gaussian noise with power correlation rho."""
     shape = (m, n, k)
@@ -212,8 +230,9 @@ def _correlated_powers(rng, rho, m, n, k):
     return np.abs(z1) ** 2, np.abs(z2) ** 2
 
 
-@pytest.mark.parametrize("stat, k, n", [(GEO, 1, 5), (GEO, 3, 4), (VOLT, 1, 7), (VOLT, 4, 3),
-                                        (MEAN, 2, 3)])
+@pytest.mark.parametrize(
+    "stat, k, n", [(GEO, 1, 5), (GEO, 3, 4), (VOLT, 1, 7), (VOLT, 4, 3), (MEAN, 2, 3)]
+)
 def test_point_correlation_monte_carlo(stat, k, n):
     # bivariate-gamma (Kibble) moments: E[X^s Y^t] = E[X^s] E[Y^t] 2F1(-s,-t;k;rho) [derived]
     rho = 0.6
@@ -241,8 +260,7 @@ def test_log_correlation_of_single_samples_is_the_dilogarithm():
         np.testing.assert_allclose(got, expected, rtol=3e-3, atol=1e-12)
 
 
-@given(stat=st.sampled_from([GEO, VOLT, MEAN]), k=st.floats(1.0, 500.0),
-       n=st.floats(1.0, 1e5))
+@given(stat=st.sampled_from([GEO, VOLT, MEAN]), k=st.floats(1.0, 500.0), n=st.floats(1.0, 1e5))
 @settings(max_examples=60, deadline=None)
 def test_model_invariants(stat, k, n):
     model = PointModel(stat, count=n, shape=k)
@@ -260,6 +278,7 @@ def test_model_invariants(stat, k, n):
 
 
 # --- detectors and refusals --------------------------------------------------------------------
+
 
 def test_detector_mapping():
     # AVERAGE detector on the log scale: log average of N*k single samples
@@ -288,10 +307,15 @@ def test_peak_detectors_refused(det):
     assert "RMS" in info.value.fix and "sample" in info.value.fix
 
 
-@pytest.mark.parametrize("det, scale", [(Detector.RMS, AveragingScale.LOG_POWER),
-                                        (Detector.RMS, AveragingScale.VOLTAGE),
-                                        (Detector.AVERAGE, AveragingScale.LOG_POWER),
-                                        (Detector.AVERAGE, AveragingScale.VOLTAGE)])
+@pytest.mark.parametrize(
+    "det, scale",
+    [
+        (Detector.RMS, AveragingScale.LOG_POWER),
+        (Detector.RMS, AveragingScale.VOLTAGE),
+        (Detector.AVERAGE, AveragingScale.LOG_POWER),
+        (Detector.AVERAGE, AveragingScale.VOLTAGE),
+    ],
+)
 def test_unknown_detector_samples_refused_where_they_set_the_bias(det, scale):
     with pytest.raises(InputError) as info:
         point_model_for(_settings(detector=det, averaging_scale=scale), field="trace.settings")
@@ -312,11 +336,13 @@ def test_video_filter_smoothing_needs_the_sample_count():
         point_model_for(_settings(averaging_scale=AveragingScale.LOG_POWER, **narrow))
     assert not point_model_for(_settings(**narrow)).variance_known
     # wide VBW (common practice: >= 3 x RBW does not smooth noise) or a reported count: fine
-    wide = point_model_for(_settings(detector=Detector.SAMPLE, vbw_hz=3e4,
-                                     averaging_scale=AveragingScale.LOG_POWER))
+    wide = point_model_for(
+        _settings(detector=Detector.SAMPLE, vbw_hz=3e4, averaging_scale=AveragingScale.LOG_POWER)
+    )
     assert wide == PointModel(GEO, 10, 1.0)
-    told = point_model_for(_settings(averaging_scale=AveragingScale.LOG_POWER,
-                                     detector_samples=6.5, **narrow))
+    told = point_model_for(
+        _settings(averaging_scale=AveragingScale.LOG_POWER, detector_samples=6.5, **narrow)
+    )
     assert told == PointModel(GEO, 65, 1.0)  # 10 sweeps x 6.5 video samples on the log scale
 
 

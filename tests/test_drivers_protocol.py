@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from noisebench.acquisition import (
+from noisebench.bench.acquisition import (
     AcquisitionRequest,
     AcquisitionSettings,
     AveragingScale,
@@ -34,7 +34,6 @@ from noisebench.drivers.protocol import (
     ieee_block,
 )
 from noisebench.drivers.transport import BlockError
-from noisebench.enr import EnrTable
 from noisebench.errors import (
     InputError,
     InstrumentError,
@@ -42,7 +41,8 @@ from noisebench.errors import (
     MeasurementError,
     SafetyError,
 )
-from noisebench.filters import FilterKind
+from noisebench.science.enr import EnrTable
+from noisebench.science.filters import FilterKind
 
 IDN = "noisebench,test analyzer,0,1"
 OK = '0,"No error"'
@@ -61,33 +61,66 @@ def sets(*commands: str) -> list:
     return out
 
 
-REQUEST = AcquisitionRequest(center_hz=1e9, span_hz=10e6, rbw_hz=110e3, averages=10,
-                             points=401)
-REQUEST_COMMANDS = ("INIT:CONT OFF", "SWE:MODE SWEPt", "FREQ:CENT 1000000000",
-                    "FREQ:SPAN 10000000", "BAND 110000", "BAND:VID:AUTO ON", "SWE:POIN 401",
-                    "DET RMS", "AVER:TYPE POWer", "AVER:COUN 10", "SWE:TIME:AUTO ON")
+REQUEST = AcquisitionRequest(center_hz=1e9, span_hz=10e6, rbw_hz=110e3, averages=10, points=401)
+REQUEST_COMMANDS = (
+    "INIT:CONT OFF",
+    "SWE:MODE SWEPt",
+    "FREQ:CENT 1000000000",
+    "FREQ:SPAN 10000000",
+    "BAND 110000",
+    "BAND:VID:AUTO ON",
+    "SWE:POIN 401",
+    "DET RMS",
+    "AVER:TYPE POWer",
+    "AVER:COUN 10",
+    "SWE:TIME:AUTO ON",
+)
 
 
 def readback(**replies: str) -> list:
     """The read-back queries of the generic profile (swept, Gaussian) and their replies."""
-    r = {"center": "1.0E+09", "span": "1.0E+07", "mode": "SWEP", "rbw": "1.0E+05",
-         "shape": "GAUS", "vbw": "1.0E+05", "det": "RMS", "avg_type": "POW", "avg": "10",
-         "points": "401", "ref": "0", "att": "10", "preamp": "0", "sweep": "0.01",
-         "samples": "2.5"}
+    r = {
+        "center": "1.0E+09",
+        "span": "1.0E+07",
+        "mode": "SWEP",
+        "rbw": "1.0E+05",
+        "shape": "GAUS",
+        "vbw": "1.0E+05",
+        "det": "RMS",
+        "avg_type": "POW",
+        "avg": "10",
+        "points": "401",
+        "ref": "0",
+        "att": "10",
+        "preamp": "0",
+        "sweep": "0.01",
+        "samples": "2.5",
+    }
     r.update(replies)
-    out = [("FREQ:CENT?", r["center"]), ("FREQ:SPAN?", r["span"]), ("SWE:MODE?", r["mode"]),
-           ("BAND?", r["rbw"])]
+    out = [
+        ("FREQ:CENT?", r["center"]),
+        ("FREQ:SPAN?", r["span"]),
+        ("SWE:MODE?", r["mode"]),
+        ("BAND?", r["rbw"]),
+    ]
     if r["mode"] == "FFT":
         out.append(("SWE:WIND?", '"hann"'))
     else:
         out.append(("BAND:SHAP?", r["shape"]))
         if r["shape"] == "SYNC":
             out.append(("BAND:POL?", "4"))
-    out += [("BAND:VID?", r["vbw"]), ("DET?", r["det"]), ("AVER:TYPE?", r["avg_type"]),
-            ("AVER:COUN?", r["avg"]), ("SWE:POIN?", r["points"]),
-            ("DISP:TRAC:Y:RLEV?", r["ref"]), ("INP:ATT?", r["att"]),
-            ("INP:GAIN:STAT?", r["preamp"]), ("SWE:TIME?", r["sweep"]),
-            ("DET:SAMP?", r["samples"])]
+    out += [
+        ("BAND:VID?", r["vbw"]),
+        ("DET?", r["det"]),
+        ("AVER:TYPE?", r["avg_type"]),
+        ("AVER:COUN?", r["avg"]),
+        ("SWE:POIN?", r["points"]),
+        ("DISP:TRAC:Y:RLEV?", r["ref"]),
+        ("INP:ATT?", r["att"]),
+        ("INP:GAIN:STAT?", r["preamp"]),
+        ("SWE:TIME?", r["sweep"]),
+        ("DET:SAMP?", r["samples"]),
+    ]
     return out
 
 
@@ -155,9 +188,12 @@ def test_synchronous_filter_reports_its_poles_and_fft_mode_its_window():
     with expected_protocol(analyzer, configured(shape="SYNC")) as sa:
         assert sa.configure(REQUEST).rbw_filter.poles == 4
     request = REQUEST.model_copy(update={"mode": SweepMode.FFT})
-    dialogue = (connect() + sets(*[c if c != "SWE:MODE SWEPt" else "SWE:MODE FFT"
-                                   for c in REQUEST_COMMANDS])
-                + readback(mode="FFT") + [("SYST:ERR?", OK)])
+    dialogue = (
+        connect()
+        + sets(*[c if c != "SWE:MODE SWEPt" else "SWE:MODE FFT" for c in REQUEST_COMMANDS])
+        + readback(mode="FFT")
+        + [("SYST:ERR?", OK)]
+    )
     with expected_protocol(analyzer, dialogue) as sa:
         applied = sa.configure(request)
     assert applied.mode is SweepMode.FFT
@@ -165,13 +201,18 @@ def test_synchronous_filter_reports_its_poles_and_fft_mode_its_window():
 
 
 def test_optional_settings_are_sent_only_when_requested():
-    request = REQUEST.model_copy(update={"ref_level_dbm": -20.0, "attenuation_db": 0.0,
-                                         "preamp": True, "vbw_hz": 1e4})
+    request = REQUEST.model_copy(
+        update={"ref_level_dbm": -20.0, "attenuation_db": 0.0, "preamp": True, "vbw_hz": 1e4}
+    )
     commands = [c for c in REQUEST_COMMANDS if c != "BAND:VID:AUTO ON"]
     commands.insert(5, "BAND:VID 10000")
     commands[-1:-1] = ["DISP:TRAC:Y:RLEV -20", "INP:ATT 0", "INP:GAIN:STAT ON"]
-    dialogue = (connect() + sets(*commands)
-                + readback(ref="-20", att="0", preamp="1", vbw="1.0E+04") + [("SYST:ERR?", OK)])
+    dialogue = (
+        connect()
+        + sets(*commands)
+        + readback(ref="-20", att="0", preamp="1", vbw="1.0E+04")
+        + [("SYST:ERR?", OK)]
+    )
     with expected_protocol(analyzer, dialogue) as sa:
         applied = sa.configure(request)
     assert applied.preamp is True and applied.vbw_hz == 1e4 and applied.ref_level_dbm == -20
@@ -180,26 +221,33 @@ def test_optional_settings_are_sent_only_when_requested():
 def test_profile_with_start_and_stop_only_sets_the_edges():
     text = open(GENERIC.source).read()
     for name in ("center_hz", "span_hz"):
-        block = text[text.index(f"[analyzer.settings.{name}]"):]
-        block = block[:block.index("\n\n") + 2]
+        block = text[text.index(f"[analyzer.settings.{name}]") :]
+        block = block[: block.index("\n\n") + 2]
         text = text.replace(block, "")
     text = text.replace('"center_hz", "span_hz",', '"start_hz", "stop_hz",')
     edges = parse_profile(text, "edges.toml")
     commands = [c for c in REQUEST_COMMANDS if not c.startswith("FREQ:")]
     commands[2:2] = ["FREQ:STAR 995000000", "FREQ:STOP 1005000000"]
     replies = readback()[2:]  # no centre/span queries: start and stop instead
-    dialogue = (connect() + sets(*commands) + [("FREQ:STAR?", "9.95E+08"),
-                                                ("FREQ:STOP?", "1.005E+09")]
-                + replies + [("SYST:ERR?", OK)])
+    dialogue = (
+        connect()
+        + sets(*commands)
+        + [("FREQ:STAR?", "9.95E+08"), ("FREQ:STOP?", "1.005E+09")]
+        + replies
+        + [("SYST:ERR?", OK)]
+    )
     with expected_protocol(lambda t: ScpiAnalyzer(t, edges), dialogue) as sa:
         applied = sa.configure(REQUEST)
     assert applied.center_hz == 1e9 and applied.span_hz == 10e6
 
 
 def test_request_the_profile_cannot_apply_is_refused_before_any_io():
-    text = (GENERIC.source and open(GENERIC.source).read())
-    text = text.replace('[analyzer.settings.mode]\nset = "SWE:MODE {value}"\n'
-                        'get = "SWE:MODE?"\nchoices = { swept = "SWEPt", fft = "FFT" }\n', "")
+    text = GENERIC.source and open(GENERIC.source).read()
+    text = text.replace(
+        '[analyzer.settings.mode]\nset = "SWE:MODE {value}"\n'
+        'get = "SWE:MODE?"\nchoices = { swept = "SWEPt", fft = "FFT" }\n',
+        "",
+    )
     no_fft = parse_profile(text, "no_fft.toml")
     with expected_protocol(lambda t: ScpiAnalyzer(t, no_fft), connect()) as sa:
         with pytest.raises(InputError, match="cannot set mode"):
@@ -211,9 +259,16 @@ def test_request_the_profile_cannot_apply_is_refused_before_any_io():
 
 def test_error_queue_entry_is_raised_naming_the_command():
     commands = REQUEST_COMMANDS[:4]
-    dialogue = connect() + sets(*commands[:3]) + [
-        (commands[3], None), ("SYST:ERR?", '-222,"Data out of range"'),
-        ("SYST:ERR?", '-350,"Queue overflow"'), ("SYST:ERR?", OK)]
+    dialogue = (
+        connect()
+        + sets(*commands[:3])
+        + [
+            (commands[3], None),
+            ("SYST:ERR?", '-222,"Data out of range"'),
+            ("SYST:ERR?", '-350,"Queue overflow"'),
+            ("SYST:ERR?", OK),
+        ]
+    )
     with expected_protocol(analyzer, dialogue) as sa:
         with pytest.raises(InstrumentError) as info:
             sa.configure(REQUEST)
@@ -227,8 +282,12 @@ def test_error_queue_entry_is_raised_naming_the_command():
 def test_step_mode_reads_the_queue_once_per_step_and_lists_the_commands():
     text = open(GENERIC.source).read().replace('error_check = "each"', 'error_check = "step"')
     step = parse_profile(text, "step.toml")
-    dialogue = (connect() + [(c, None) for c in REQUEST_COMMANDS] + readback()
-                + [("SYST:ERR?", '-221,"Settings conflict"'), ("SYST:ERR?", OK)])
+    dialogue = (
+        connect()
+        + [(c, None) for c in REQUEST_COMMANDS]
+        + readback()
+        + [("SYST:ERR?", '-221,"Settings conflict"'), ("SYST:ERR?", OK)]
+    )
     with expected_protocol(lambda t: ScpiAnalyzer(t, step), dialogue) as sa:
         with pytest.raises(InstrumentError) as info:
             sa.configure(REQUEST)
@@ -238,9 +297,14 @@ def test_step_mode_reads_the_queue_once_per_step_and_lists_the_commands():
 
 def test_acquire_trace_binary_with_a_timeout_sized_from_the_acquisition_time():
     values = np.linspace(-90.0, -80.0, 401, dtype=np.float32)
-    dialogue = configured() + acquisition() + sets("FORM REAL,32", "FORM:BORD NORM") + [
-        ("TRAC? TRACE1", ieee_block(values)), ("SYST:ERR?", OK)] + acquisition() + [
-        ("TRAC? TRACE1", ieee_block(values)), ("SYST:ERR?", OK)]  # format not sent again
+    dialogue = (
+        configured()
+        + acquisition()
+        + sets("FORM REAL,32", "FORM:BORD NORM")
+        + [("TRAC? TRACE1", ieee_block(values)), ("SYST:ERR?", OK)]
+        + acquisition()
+        + [("TRAC? TRACE1", ieee_block(values)), ("SYST:ERR?", OK)]
+    )  # format not sent again
     with expected_protocol(analyzer, dialogue) as sa:
         sa.configure(REQUEST)
         trace = sa.acquire_trace()
@@ -261,10 +325,19 @@ def test_acquire_trace_binary_with_a_timeout_sized_from_the_acquisition_time():
 
 def test_long_acquisition_is_awaited_by_status_polling():
     slept = []
-    dialogue = configured(sweep="20", avg="10") + [
-        ("*ESR?", "0"), ("INIT:IMM;*OPC", None), ("*ESR?", "0"), ("*ESR?", "0"),
-        ("*ESR?", "1"), ("SYST:ERR?", OK)] + sets("FORM REAL,32", "FORM:BORD NORM") + [
-        ("TRAC? TRACE1", ieee_block(np.zeros(401))), ("SYST:ERR?", OK)]
+    dialogue = (
+        configured(sweep="20", avg="10")
+        + [
+            ("*ESR?", "0"),
+            ("INIT:IMM;*OPC", None),
+            ("*ESR?", "0"),
+            ("*ESR?", "0"),
+            ("*ESR?", "1"),
+            ("SYST:ERR?", OK),
+        ]
+        + sets("FORM REAL,32", "FORM:BORD NORM")
+        + [("TRAC? TRACE1", ieee_block(np.zeros(401))), ("SYST:ERR?", OK)]
+    )
     with expected_protocol(analyzer, dialogue, sleep=slept.append) as sa:
         sa.configure(REQUEST)
         assert sa.expected_acquisition_time_s() == pytest.approx(200.0)
@@ -274,9 +347,14 @@ def test_long_acquisition_is_awaited_by_status_polling():
 
 
 def test_ascii_transfer_and_a_wrong_point_count_is_refused():
-    dialogue = configured() + acquisition() + sets("FORM ASC") + [
-        ("TRAC? TRACE1", ",".join(["-85.5"] * 401)), ("SYST:ERR?", OK)] + acquisition() + [
-        ("TRAC? TRACE1", "-85.5,-85.5")]
+    dialogue = (
+        configured()
+        + acquisition()
+        + sets("FORM ASC")
+        + [("TRAC? TRACE1", ",".join(["-85.5"] * 401)), ("SYST:ERR?", OK)]
+        + acquisition()
+        + [("TRAC? TRACE1", "-85.5,-85.5")]
+    )
     with expected_protocol(analyzer, dialogue, retries=0) as sa:
         sa.configure(REQUEST)
         sa.set_trace_transfer("ascii")
@@ -295,13 +373,20 @@ def test_acquire_before_configure_is_an_input_error():
 
 def test_broken_block_recovers_detects_lost_settings_and_reapplies_them():
     values = np.full(401, -88.0)
-    dialogue = (configured() + acquisition() + sets("FORM REAL,32", "FORM:BORD NORM")
-                + [("TRAC? TRACE1", BlockError("block incomplete"))]
-                + [(RECOVER, "reconnect"), ("*IDN?", IDN), ("SYST:ERR?", OK)]
-                + readback(rbw="1.0E+06", avg="1")       # the instrument lost our settings
-                + sets(*REQUEST_COMMANDS) + readback() + [("SYST:ERR?", OK)]
-                + acquisition() + sets("FORM REAL,32", "FORM:BORD NORM")
-                + [("TRAC? TRACE1", ieee_block(values)), ("SYST:ERR?", OK)])
+    dialogue = (
+        configured()
+        + acquisition()
+        + sets("FORM REAL,32", "FORM:BORD NORM")
+        + [("TRAC? TRACE1", BlockError("block incomplete"))]
+        + [(RECOVER, "reconnect"), ("*IDN?", IDN), ("SYST:ERR?", OK)]
+        + readback(rbw="1.0E+06", avg="1")  # the instrument lost our settings
+        + sets(*REQUEST_COMMANDS)
+        + readback()
+        + [("SYST:ERR?", OK)]
+        + acquisition()
+        + sets("FORM REAL,32", "FORM:BORD NORM")
+        + [("TRAC? TRACE1", ieee_block(values)), ("SYST:ERR?", OK)]
+    )
     with expected_protocol(analyzer, dialogue) as sa:
         sa.configure(REQUEST)
         trace = sa.acquire_trace()
@@ -311,10 +396,16 @@ def test_broken_block_recovers_detects_lost_settings_and_reapplies_them():
 
 
 def test_timeout_explained_by_the_error_queue_becomes_an_instrument_error():
-    dialogue = (connect()
-                + [("FREQ:CENT?", InstrumentTimeout("no reply", command="FREQ:CENT?"))]
-                + [(RECOVER, "reconnect"), ("*IDN?", IDN),
-                   ("SYST:ERR?", '-113,"Undefined header"'), ("SYST:ERR?", OK)])
+    dialogue = (
+        connect()
+        + [("FREQ:CENT?", InstrumentTimeout("no reply", command="FREQ:CENT?"))]
+        + [
+            (RECOVER, "reconnect"),
+            ("*IDN?", IDN),
+            ("SYST:ERR?", '-113,"Undefined header"'),
+            ("SYST:ERR?", OK),
+        ]
+    )
     with expected_protocol(analyzer, dialogue) as sa:
         with pytest.raises(InstrumentError) as info:
             sa.read_settings()
@@ -323,9 +414,12 @@ def test_timeout_explained_by_the_error_queue_becomes_an_instrument_error():
 
 
 def test_when_retries_run_out_the_error_is_raised_and_recovery_waits_for_the_next_call():
-    dialogue = (connect() + [("FREQ:CENT?", InstrumentTimeout("no reply"))]
-                + [(RECOVER, "reconnect"), ("*IDN?", IDN), ("SYST:ERR?", OK)]
-                + readback())
+    dialogue = (
+        connect()
+        + [("FREQ:CENT?", InstrumentTimeout("no reply"))]
+        + [(RECOVER, "reconnect"), ("*IDN?", IDN), ("SYST:ERR?", OK)]
+        + readback()
+    )
     with expected_protocol(analyzer, dialogue, retries=0) as sa:
         with pytest.raises(InstrumentTimeout):
             sa.read_settings()
@@ -333,8 +427,11 @@ def test_when_retries_run_out_the_error_is_raised_and_recovery_waits_for_the_nex
 
 
 def test_recovery_refuses_a_different_instrument_on_the_same_address():
-    dialogue = (connect() + [("FREQ:CENT?", InstrumentTimeout("no reply"))]
-                + [(RECOVER, "reconnect"), ("*IDN?", "other,maker,1,1")])
+    dialogue = (
+        connect()
+        + [("FREQ:CENT?", InstrumentTimeout("no reply"))]
+        + [(RECOVER, "reconnect"), ("*IDN?", "other,maker,1,1")]
+    )
     with expected_protocol(analyzer, dialogue, retries=1) as sa:
         with pytest.raises(InstrumentTimeout) as info:
             sa.read_settings()
@@ -342,10 +439,17 @@ def test_recovery_refuses_a_different_instrument_on_the_same_address():
 
 
 def test_band_power_marker_reads_value_position_and_correction_state():
-    dialogue = configured() + sets("CALC:MARK:FUNC BPOWer", "CALC:MARK:X 1001000000",
-                                   "CALC:MARK:FUNC:BAND 500000") + acquisition() + [
-        ("CALC:MARK:Y?", "-50.25"), ("CALC:MARK:X?", "1.001E+09"),
-        ("CALC:MARK:FUNC:CORR?", "1"), ("SYST:ERR?", OK)]
+    dialogue = (
+        configured()
+        + sets("CALC:MARK:FUNC BPOWer", "CALC:MARK:X 1001000000", "CALC:MARK:FUNC:BAND 500000")
+        + acquisition()
+        + [
+            ("CALC:MARK:Y?", "-50.25"),
+            ("CALC:MARK:X?", "1.001E+09"),
+            ("CALC:MARK:FUNC:CORR?", "1"),
+            ("SYST:ERR?", OK),
+        ]
+    )
     with expected_protocol(analyzer, dialogue) as sa:
         sa.configure(REQUEST)
         reading = sa.read_marker(1.001e9, MarkerKind.BAND_POWER)
@@ -357,9 +461,14 @@ def test_band_power_marker_reads_value_position_and_correction_state():
 
 
 def test_noise_drive_is_verified_and_switched_off_on_close():
-    dialogue = (connect() + sets("OUTP:NOIS ON") + [("OUTP:NOIS?", "1")]
-                + sets("OUTP:NOIS OFF") + [("OUTP:NOIS?", "1")]
-                + [("OUTP:NOIS OFF", None), ("OUTP:NOIS?", "0")])  # close: off, confirmed
+    dialogue = (
+        connect()
+        + sets("OUTP:NOIS ON")
+        + [("OUTP:NOIS?", "1")]
+        + sets("OUTP:NOIS OFF")
+        + [("OUTP:NOIS?", "1")]
+        + [("OUTP:NOIS OFF", None), ("OUTP:NOIS?", "0")]
+    )  # close: off, confirmed
     with expected_protocol(analyzer, dialogue) as sa:
         sa.set_noise_drive(True)
         with pytest.raises(MeasurementError, match="reports True"):
@@ -369,11 +478,12 @@ def test_noise_drive_is_verified_and_switched_off_on_close():
 
 
 def test_sim_path_only_when_the_profile_defines_it():
-    with expected_protocol(analyzer, connect() + sets("SIM:PATH THRough")
-                           + [("SIM:PATH?", "THR")]) as sa:
+    with expected_protocol(
+        analyzer, connect() + sets("SIM:PATH THRough") + [("SIM:PATH?", "THR")]
+    ) as sa:
         sa.set_sim_path("through")
     text = open(GENERIC.source).read()
-    cut = text[text.index("# simulator only"):text.index("# ---", text.index("# simulator"))]
+    cut = text[text.index("# simulator only") : text.index("# ---", text.index("# simulator"))]
     real = parse_profile(text.replace(cut, ""), "real.toml")
     with expected_protocol(lambda t: ScpiAnalyzer(t, real), connect()) as sa:
         with pytest.raises(InputError, match="no simulator path"):
@@ -388,9 +498,14 @@ def generator(transport, **kwargs):
 
 
 def test_generator_sets_and_reads_back_and_switches_off_on_close():
-    dialogue = connect("gen,x,1,1") + [("OUTP?", "0")] + sets("FREQ 2000000000", "POW -30.0000") + [
-        ("FREQ?", "2.0E+09"), ("POW?", "-30.00"), ("SYST:ERR?", OK)] + sets("OUTP ON") + [
-        ("OUTP?", "1"), ("OUTP OFF", None), ("OUTP?", "0")]
+    dialogue = (
+        connect("gen,x,1,1")
+        + [("OUTP?", "0")]
+        + sets("FREQ 2000000000", "POW -30.0000")
+        + [("FREQ?", "2.0E+09"), ("POW?", "-30.00"), ("SYST:ERR?", OK)]
+        + sets("OUTP ON")
+        + [("OUTP?", "1"), ("OUTP OFF", None), ("OUTP?", "0")]
+    )
     with expected_protocol(generator, dialogue, max_level_dbm=0.0) as gen:
         with pytest.raises(SafetyError, match="no level"):
             gen.set_output(True)
@@ -407,26 +522,45 @@ def test_generator_sets_and_reads_back_and_switches_off_on_close():
 
 
 def supply_programmed(volts="28", amps="0.05") -> list:
-    return sets("CURR 0.0500", "VOLT 28.0000") + [("VOLT?", volts), ("CURR?", amps),
-                                                   ("SYST:ERR?", OK)]
+    return sets("CURR 0.0500", "VOLT 28.0000") + [
+        ("VOLT?", volts),
+        ("CURR?", amps),
+        ("SYST:ERR?", OK),
+    ]
 
 
 def supply_start() -> list:
-    return connect("psu,x,1,1") + [("OUTP?", "0")] + sets("OUTP OFF") + [("OUTP?", "0")] \
+    return (
+        connect("psu,x,1,1")
+        + [("OUTP?", "0")]
+        + sets("OUTP OFF")
+        + [("OUTP?", "0")]
         + supply_programmed()
+    )
 
 
 def test_supply_source_sets_limit_and_voltage_before_the_output_and_verifies_the_drive():
     slept = []
-    dialogue = supply_start() + supply_programmed() + sets("OUTP ON") + [
-        ("OUTP?", "1"), ("MEAS:VOLT?", "27.9"), ("MEAS:CURR?", "0.0100")] + sets(
-        "OUTP OFF") + [("OUTP?", "0")] + sets("OUTP OFF") + [("OUTP?", "0"),
-                                                              ("OUTP OFF", None), ("OUTP?", "0")]
+    dialogue = (
+        supply_start()
+        + supply_programmed()
+        + sets("OUTP ON")
+        + [("OUTP?", "1"), ("MEAS:VOLT?", "27.9"), ("MEAS:CURR?", "0.0100")]
+        + sets("OUTP OFF")
+        + [("OUTP?", "0")]
+        + sets("OUTP OFF")
+        + [("OUTP?", "0"), ("OUTP OFF", None), ("OUTP?", "0")]
+    )
     with expected_protocol(ScpiSupply, dialogue, profile=GENERIC) as supply:
-        source = SupplyNoiseSource(supply, current_limit_a=0.05, max_drive_v=32.0,
-                                   settle_time_s=0.25, min_current_a=0.001,
-                                   enr_table=EnrTable.constant(15.0, nominal_drive_v=28.0),
-                                   sleep=slept.append)
+        source = SupplyNoiseSource(
+            supply,
+            current_limit_a=0.05,
+            max_drive_v=32.0,
+            settle_time_s=0.25,
+            min_current_a=0.001,
+            enr_table=EnrTable.constant(15.0, nominal_drive_v=28.0),
+            sleep=slept.append,
+        )
         assert source.drive_v == 28.0  # from the ENR table's nominal_drive_v
         source.set_hot(True)
         assert source.is_hot
@@ -436,35 +570,61 @@ def test_supply_source_sets_limit_and_voltage_before_the_output_and_verifies_the
 
 
 def test_supply_source_open_drive_lead_is_detected_and_the_output_switched_off():
-    dialogue = supply_start() + supply_programmed() + sets("OUTP ON") + [
-        ("OUTP?", "1"), ("MEAS:VOLT?", "28.0"), ("MEAS:CURR?", "0")] + sets("OUTP OFF") + [
-        ("OUTP?", "0")]
+    dialogue = (
+        supply_start()
+        + supply_programmed()
+        + sets("OUTP ON")
+        + [("OUTP?", "1"), ("MEAS:VOLT?", "28.0"), ("MEAS:CURR?", "0")]
+        + sets("OUTP OFF")
+        + [("OUTP?", "0")]
+    )
     with expected_protocol(ScpiSupply, dialogue, profile=GENERIC) as supply:
-        source = SupplyNoiseSource(supply, drive_v=28.0, current_limit_a=0.05,
-                                   max_drive_v=32.0, settle_time_s=0.0, min_current_a=0.001)
+        source = SupplyNoiseSource(
+            supply,
+            drive_v=28.0,
+            current_limit_a=0.05,
+            max_drive_v=32.0,
+            settle_time_s=0.0,
+            min_current_a=0.001,
+        )
         with pytest.raises(MeasurementError, match="drive lead is open"):
             source.set_hot(True)
         assert not supply.output_on
 
 
 def test_supply_source_refuses_an_overvoltage_before_touching_the_supply():
-    with expected_protocol(ScpiSupply, connect("psu,x,1,1") + [("OUTP?", "0")],
-                           profile=GENERIC) as supply:
+    with expected_protocol(
+        ScpiSupply, connect("psu,x,1,1") + [("OUTP?", "0")], profile=GENERIC
+    ) as supply:
         with pytest.raises(SafetyError, match="above the configured maximum"):
-            SupplyNoiseSource(supply, drive_v=35.0, current_limit_a=0.05, max_drive_v=32.0,
-                              settle_time_s=0.0)
+            SupplyNoiseSource(
+                supply, drive_v=35.0, current_limit_a=0.05, max_drive_v=32.0, settle_time_s=0.0
+            )
         with pytest.raises(InputError, match="nominal_drive_v"):
-            SupplyNoiseSource(supply, current_limit_a=0.05, max_drive_v=32.0,
-                              settle_time_s=0.0, enr_table=EnrTable.constant(15.0))
+            SupplyNoiseSource(
+                supply,
+                current_limit_a=0.05,
+                max_drive_v=32.0,
+                settle_time_s=0.0,
+                enr_table=EnrTable.constant(15.0),
+            )
 
 
 def test_supply_reporting_a_higher_voltage_than_programmed_keeps_the_output_off():
-    dialogue = connect("psu,x,1,1") + [("OUTP?", "0")] + sets("OUTP OFF") + [
-        ("OUTP?", "0")] + supply_programmed(volts="40") + sets("OUTP OFF") + [("OUTP?", "0")]
+    dialogue = (
+        connect("psu,x,1,1")
+        + [("OUTP?", "0")]
+        + sets("OUTP OFF")
+        + [("OUTP?", "0")]
+        + supply_programmed(volts="40")
+        + sets("OUTP OFF")
+        + [("OUTP?", "0")]
+    )
     with expected_protocol(ScpiSupply, dialogue, profile=GENERIC) as supply:
         with pytest.raises(SafetyError, match="reports 40 V"):
-            SupplyNoiseSource(supply, drive_v=28.0, current_limit_a=0.05, max_drive_v=32.0,
-                              settle_time_s=0.0)
+            SupplyNoiseSource(
+                supply, drive_v=28.0, current_limit_a=0.05, max_drive_v=32.0, settle_time_s=0.0
+            )
 
 
 # ----------------------------------------------------------------------------- other sources
@@ -512,8 +672,7 @@ def test_callable_source_wraps_callback_failures():
 
 def test_operator_source_prompts_and_can_be_stopped():
     prompts = []
-    source = OperatorNoiseSource(prompt=lambda text: prompts.append(text) or "",
-                                 settle_time_s=0.0)
+    source = OperatorNoiseSource(prompt=lambda text: prompts.append(text) or "", settle_time_s=0.0)
     source.set_hot(True)
     assert "ON (hot)" in prompts[0]
     stop = OperatorNoiseSource(prompt=lambda text: "q", settle_time_s=0.0)
@@ -535,12 +694,19 @@ class _StubAnalyzer:
 
     def acquire_trace(self):
         level = self.hot_dbm if self.source_ref[0].is_hot else self.cold_dbm
-        settings = AcquisitionSettings(center_hz=1e9, span_hz=1e6, rbw_hz=1e4,
-                                       detector=Detector.RMS, detector_samples=1.0,
-                                       averaging_scale=AveragingScale.POWER, averages=100,
-                                       points=201)
-        return Trace(freq_hz=settings.frequencies_hz(), values=np.full(201, level),
-                     settings=settings)
+        settings = AcquisitionSettings(
+            center_hz=1e9,
+            span_hz=1e6,
+            rbw_hz=1e4,
+            detector=Detector.RMS,
+            detector_samples=1.0,
+            averaging_scale=AveragingScale.POWER,
+            averages=100,
+            points=201,
+        )
+        return Trace(
+            freq_hz=settings.frequencies_hz(), values=np.full(201, level), settings=settings
+        )
 
 
 def test_source_switching_check_measures_y_and_catches_a_stuck_source():
@@ -554,7 +720,6 @@ def test_source_switching_check_measures_y_and_catches_a_stuck_source():
     assert not source.is_hot
     # 1 dB is 5 sigma for these traces (about 1e4 independent samples each) but not for a
     # threshold raised to 2 dB
-    assert check_source_switching(_StubAnalyzer(ref, -89.0, -90.0), source) == \
-        pytest.approx(1.0)
+    assert check_source_switching(_StubAnalyzer(ref, -89.0, -90.0), source) == pytest.approx(1.0)
     with pytest.raises(MeasurementError):
         check_source_switching(_StubAnalyzer(ref, -89.0, -90.0), source, min_y_db=2.0)

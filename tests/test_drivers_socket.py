@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from noisebench.acquisition import (
+from noisebench.bench.acquisition import (
     AcquisitionRequest,
     AveragingScale,
     Detector,
@@ -29,14 +29,13 @@ from noisebench.errors import (
     MeasurementError,
     SafetyError,
 )
-from noisebench.filters import RbwFilter
-from noisebench.gain_measurement import GainMeasurementPlan, measure_gain
+from noisebench.running.gain_measurement import GainMeasurementPlan, measure_gain
+from noisebench.science.filters import RbwFilter
 from noisebench.sims.analyzer import marker_from_trace
 
 RbwFilter(kind="fft", window="hann")  # warm scipy.signal up: its first import takes ~1.5 s
 
-REQUEST = AcquisitionRequest(center_hz=1e9, span_hz=10e6, rbw_hz=110e3, averages=4,
-                             points=401)
+REQUEST = AcquisitionRequest(center_hz=1e9, span_hz=10e6, rbw_hz=110e3, averages=4, points=401)
 
 
 @pytest.fixture
@@ -57,19 +56,45 @@ def _commands(sim_server, instrument="analyzer"):
 # ----------------------------------------------------------------------------- settings
 
 
-@pytest.mark.parametrize("request_", [
-    REQUEST,
-    AcquisitionRequest(center_hz=1.234567891e9, span_hz=7e6, rbw_hz=110e3, vbw_hz=33e3,
-                       averages=7, points=333, attenuation_db=11.0, ref_level_dbm=-17.3,
-                       preamp=True, detector=Detector.SAMPLE,
-                       averaging_scale=AveragingScale.LOG_POWER),
-    AcquisitionRequest(center_hz=2e9, span_hz=20e6, rbw_hz=30e3, mode=SweepMode.FFT,
-                       detector=Detector.AVERAGE, averaging_scale=AveragingScale.VOLTAGE),
-    AcquisitionRequest(center_hz=3e9, span_hz=0.0, rbw_hz=1e6, points=101, sweep_time_s=0.01,
-                       detector=Detector.PEAK),
-], ids=["swept", "every-option", "fft", "zero-span"])
-def test_every_setting_round_trips_exactly_as_the_instrument_applied_it(analyzer, sim_server,
-                                                                        request_):
+@pytest.mark.parametrize(
+    "request_",
+    [
+        REQUEST,
+        AcquisitionRequest(
+            center_hz=1.234567891e9,
+            span_hz=7e6,
+            rbw_hz=110e3,
+            vbw_hz=33e3,
+            averages=7,
+            points=333,
+            attenuation_db=11.0,
+            ref_level_dbm=-17.3,
+            preamp=True,
+            detector=Detector.SAMPLE,
+            averaging_scale=AveragingScale.LOG_POWER,
+        ),
+        AcquisitionRequest(
+            center_hz=2e9,
+            span_hz=20e6,
+            rbw_hz=30e3,
+            mode=SweepMode.FFT,
+            detector=Detector.AVERAGE,
+            averaging_scale=AveragingScale.VOLTAGE,
+        ),
+        AcquisitionRequest(
+            center_hz=3e9,
+            span_hz=0.0,
+            rbw_hz=1e6,
+            points=101,
+            sweep_time_s=0.01,
+            detector=Detector.PEAK,
+        ),
+    ],
+    ids=["swept", "every-option", "fft", "zero-span"],
+)
+def test_every_setting_round_trips_exactly_as_the_instrument_applied_it(
+    analyzer, sim_server, request_
+):
     applied = analyzer.configure(request_)
     assert applied == _server_settings(sim_server)  # read back, not assumed
     assert applied.detector is request_.detector
@@ -77,7 +102,7 @@ def test_every_setting_round_trips_exactly_as_the_instrument_applied_it(analyzer
 
 
 def test_rbw_and_attenuation_rounding_is_read_back(analyzer):
-    # reference: sims/SCPI.md - RBW on a 1-2-3-5 sequence, attenuation in 2 dB steps
+    # reference: noisebench/sims/SCPI.md - RBW on a 1-2-3-5 sequence, attenuation in 2 dB steps
     applied = analyzer.configure(REQUEST.model_copy(update={"attenuation_db": 11.0}))
     assert applied.rbw_hz == 100e3
     assert applied.attenuation_db in (10.0, 12.0)
@@ -157,7 +182,7 @@ def test_drop_mid_block_reconnects_reapplies_the_settings_and_retries(sim_server
     assert trace.settings == applied and trace.values.size == 401
     assert "reconnected" in analyzer.recovery_log[-1]
     log = _commands(sim_server)
-    after_drop = log[max(i for i, c in enumerate(log) if c == "*IDN?"):]
+    after_drop = log[max(i for i, c in enumerate(log) if c == "*IDN?") :]
     assert "BAND 110000" in after_drop and "SWE:POIN 401" in after_drop  # re-applied
     assert after_drop.count("INIT:IMM") == 1  # then acquired again
 
@@ -226,10 +251,15 @@ def test_stuck_noise_source_is_detected_as_hot_equal_to_cold(analyzer, sim_serve
 
 def test_supply_driven_source_switches_and_a_stuck_one_is_caught(analyzer, sim_server):
     analyzer.configure(REQUEST)
-    source = open_supply_noise_source(sim_server.resource("supply"), current_limit_a=0.05,
-                                      max_drive_v=32.0, settle_time_s=0.1,
-                                      enr_table=sim_server.bench.enr_table,
-                                      min_current_a=0.001, timeout_s=2.0)
+    source = open_supply_noise_source(
+        sim_server.resource("supply"),
+        current_limit_a=0.05,
+        max_drive_v=32.0,
+        settle_time_s=0.1,
+        enr_table=sim_server.bench.enr_table,
+        min_current_a=0.001,
+        timeout_s=2.0,
+    )
     try:
         assert source.drive_v == 28.0  # the scenario's nominal drive, from the ENR table
         source.set_hot(True)
@@ -246,8 +276,13 @@ def test_supply_driven_source_switches_and_a_stuck_one_is_caught(analyzer, sim_s
 
 def test_overvoltage_is_refused_before_connecting(sim_server):
     with pytest.raises(SafetyError):
-        open_supply_noise_source(sim_server.resource("supply"), drive_v=40.0,
-                                 current_limit_a=0.05, max_drive_v=32.0, settle_time_s=0.0)
+        open_supply_noise_source(
+            sim_server.resource("supply"),
+            drive_v=40.0,
+            current_limit_a=0.05,
+            max_drive_v=32.0,
+            settle_time_s=0.0,
+        )
     assert not any(who == "supply" for who, _ in sim_server.command_log)
 
 
@@ -267,15 +302,22 @@ def test_generator_round_trip_and_output_off_on_close(sim_server):
 def test_gain_measurement_over_scpi_recovers_the_path_gain(analyzer, sim_server):
     generator = open_generator(sim_server.resource("generator"), timeout_s=2.0)
     freqs = [1e9, 3e9]
-    plan = GainMeasurementPlan(freqs_hz=freqs, expected_gain_db=30.0, dut_p1db_out_dbm=14.0,
-                               readings=2, averages=2, points=51)
+    plan = GainMeasurementPlan(
+        freqs_hz=freqs,
+        expected_gain_db=30.0,
+        dut_p1db_out_dbm=14.0,
+        readings=2,
+        averages=2,
+        points=51,
+    )
     try:
-        result = measure_gain(analyzer, generator, plan,
-                              lambda stage: analyzer.set_sim_path(stage.value))
+        result = measure_gain(
+            analyzer, generator, plan, lambda stage: analyzer.set_sim_path(stage.value)
+        )
     finally:
         generator.close()
     truth = sim_server.bench.truth(np.array(freqs))
-    # the THROUGH pass omits the DUT's input cable (sims/bench.py), so the measured path
+    # the THROUGH pass omits the DUT's input cable (noisebench/sims/bench.py), so the measured path
     # gain is the DUT gain minus that cable's loss
     expected = truth["gain_db"] - truth["input_loss_db"]
     for point, want in zip(result.points, expected, strict=True):

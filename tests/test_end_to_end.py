@@ -31,17 +31,17 @@ from _backend_equivalence import assert_same_points
 from _sequencer_helpers import IDEAL_OVERRIDES
 from scipy.stats import norm
 
-from noisebench import cli
-from noisebench.plan import parse_plan
-from noisebench.registry import simulated_session
-from noisebench.results import (
+from noisebench.bench.registry import simulated_session
+from noisebench.frontends import cli
+from noisebench.results.store import (
     JOURNAL_FILE,
     RESULTS_CSV_FILE,
     RESULTS_JSON_FILE,
     RUN_INFO_FILE,
     load_run,
 )
-from noisebench.sequencer import run_plan
+from noisebench.running.plan import parse_plan
+from noisebench.running.sequencer import run_plan
 from noisebench.sims.bench import SimulatedBench
 from noisebench.sims.scpi_server import SimServer
 
@@ -71,8 +71,13 @@ def ideal_bench(seed: int) -> SimulatedBench:
     """demo-lna without systematic errors (``ideal=True``), with the sequencer tests' flat
     gain and losses, every temperature equal: only the noise differs between seeds."""
     return SimulatedBench.from_scenario(
-        "demo-lna", seed=seed, ideal=True, **IDEAL_OVERRIDES, ambient_k=BENCH_TEMPERATURE_K,
-        noise_source__physical_temperature_k=BENCH_TEMPERATURE_K)
+        "demo-lna",
+        seed=seed,
+        ideal=True,
+        **IDEAL_OVERRIDES,
+        ambient_k=BENCH_TEMPERATURE_K,
+        noise_source__physical_temperature_k=BENCH_TEMPERATURE_K,
+    )
 
 
 @pytest.fixture
@@ -87,19 +92,31 @@ def ideal_server():
 # --------------------------------------------------------------------------- plans
 
 
-def plan_data(method: str, bench: dict[str, Any], enr_csv: Path, *,
-              freqs_hz=FREQS_HZ, target: float = TARGET_U_NF_DB) -> dict[str, Any]:
+def plan_data(
+    method: str,
+    bench: dict[str, Any],
+    enr_csv: Path,
+    *,
+    freqs_hz=FREQS_HZ,
+    target: float = TARGET_U_NF_DB,
+) -> dict[str, Any]:
     """The plan of both back ends; only ``bench`` differs between them."""
     data: dict[str, Any] = {
         "method": method,
         "dut": {"id": "E2E-LNA"},
         "bench": bench,
-        "acquisition": {"rbw_hz": RBW_HZ, "attenuation_db": 0, "target_u_nf_db": target,
-                        "time_limit_s": 20},
+        "acquisition": {
+            "rbw_hz": RBW_HZ,
+            "attenuation_db": 0,
+            "target_u_nf_db": target,
+            "time_limit_s": 20,
+        },
         "sweep": {"freqs_hz": list(freqs_hz)},
-        "corrections": {"input_loss": INPUT_LOSS_DB,
-                        "output_loss": OUTPUT_LOSS_DB if method == "gain" else 0.0,
-                        "source_temperature_k": BENCH_TEMPERATURE_K},
+        "corrections": {
+            "input_loss": INPUT_LOSS_DB,
+            "output_loss": OUTPUT_LOSS_DB if method == "gain" else 0.0,
+            "source_temperature_k": BENCH_TEMPERATURE_K,
+        },
         "expect": {"dut_gain_db": 20.0},
         "output": {"plots": False, "report": False},
     }
@@ -111,8 +128,7 @@ def plan_data(method: str, bench: dict[str, Any], enr_csv: Path, *,
 
 
 def in_process_bench_section(method: str) -> dict[str, Any]:
-    section: dict[str, Any] = {"analyzer": {"resource": "sim://demo-lna",
-                                            "compression_dbm": -3.0}}
+    section: dict[str, Any] = {"analyzer": {"resource": "sim://demo-lna", "compression_dbm": -3.0}}
     if method == "gain":
         section["generator"] = {"resource": "sim", "max_level_dbm": -10.0}
         section["noise_source"] = {"drive": "none"}
@@ -120,15 +136,23 @@ def in_process_bench_section(method: str) -> dict[str, Any]:
 
 
 def scpi_bench_section(method: str, server: SimServer) -> dict[str, Any]:
-    section: dict[str, Any] = {"analyzer": {"resource": server.resource("analyzer"),
-                                            "profile": "generic", "compression_dbm": -3.0}}
+    section: dict[str, Any] = {
+        "analyzer": {
+            "resource": server.resource("analyzer"),
+            "profile": "generic",
+            "compression_dbm": -3.0,
+        }
+    }
     if method == "gain":
-        section["generator"] = {"resource": server.resource("generator"),
-                                "max_level_dbm": -10.0}
+        section["generator"] = {"resource": server.resource("generator"), "max_level_dbm": -10.0}
         section["noise_source"] = {"drive": "none"}
     else:
-        section["noise_source"] = {"drive": "supply", "resource": server.resource("supply"),
-                                   "drive_v": SUPPLY_DRIVE_V, "settle_time_s": 0.02}
+        section["noise_source"] = {
+            "drive": "supply",
+            "resource": server.resource("supply"),
+            "drive_v": SUPPLY_DRIVE_V,
+            "settle_time_s": 0.02,
+        }
     return section
 
 
@@ -164,8 +188,12 @@ def runs(request, tmp_path_factory) -> BackEndRuns:
     local = parse_plan(plan_data(method, in_process_bench_section(method), enr_csv))
     records = []
     for seed in (SEED_IN_PROCESS, SEED_SCPI):
-        record, _ = run_plan(local, folder=folder / f"in_process_{seed}", outputs=False,
-                             session=simulated_session(ideal_bench(seed), local.bench))
+        record, _ = run_plan(
+            local,
+            folder=folder / f"in_process_{seed}",
+            outputs=False,
+            session=simulated_session(ideal_bench(seed), local.bench),
+        )
         records.append(record)
     with SimServer(ideal_bench(SEED_SCPI)) as server:
         remote = parse_plan(plan_data(method, scpi_bench_section(method, server), enr_csv))
@@ -173,9 +201,18 @@ def runs(request, tmp_path_factory) -> BackEndRuns:
         scpi, _ = run_plan(remote, folder=folder / "scpi", outputs=False)  # opens pyvisa-py
         scpi_s = time.perf_counter() - started
         sim = server.bench
-        return BackEndRuns(method, records[0], records[1], scpi, sim.truth(list(FREQS_HZ)),
-                           list(server.command_log), sim.noise_source.is_hot,
-                           sim.supply.output_on, sim.generator.output_on, scpi_s)
+        return BackEndRuns(
+            method,
+            records[0],
+            records[1],
+            scpi,
+            sim.truth(list(FREQS_HZ)),
+            list(server.command_log),
+            sim.noise_source.is_hot,
+            sim.supply.output_on,
+            sim.generator.output_on,
+            scpi_s,
+        )
 
 
 def test_scpi_run_really_went_through_pyvisa_sockets(runs):
@@ -220,9 +257,8 @@ def test_same_noise_gives_the_same_result_over_scpi(runs):
     assert_same_points(runs.in_process_same_noise, runs.scpi, RBW_HZ)
     if runs.method == "gain":
         # measured gain: band-power marker replies are shortest round-trip reprs of doubles
-        # (sims/scpi_parser.format_number), so both back ends hold the same numbers
-        for local, remote in zip(runs.in_process_same_noise.points, runs.scpi.points,
-                                 strict=True):
+        # (noisebench/sims/scpi_parser.format_number), so both back ends hold the same numbers
+        for local, remote in zip(runs.in_process_same_noise.points, runs.scpi.points, strict=True):
             assert remote.gain_db == local.gain_db
 
 
@@ -232,8 +268,9 @@ def test_both_back_ends_agree_with_the_simulator_truth(runs):
     records = (runs.in_process, runs.scpi)
     z = z_limit(len(records) * 2 * len(FREQS_HZ))  # 4.52 for 16 comparisons
     for record in records:
-        for point, nf_db, gain_db in zip(record.points, runs.truth["nf_db"],
-                                         runs.truth["gain_db"], strict=True):
+        for point, nf_db, gain_db in zip(
+            record.points, runs.truth["nf_db"], runs.truth["gain_db"], strict=True
+        ):
             assert abs(point.nf_db - nf_db) <= z * _u_stated(point), (point.freq_hz, nf_db)
             assert abs(point.gain_db - gain_db) <= z * point.u_gain_db, (point.freq_hz, gain_db)
 
@@ -243,8 +280,9 @@ def test_both_back_ends_agree_with_the_simulator_truth(runs):
 
 SIGINT_LAUNCHER = (
     "import runpy, signal; signal.signal(signal.SIGINT, signal.default_int_handler); "
-    "runpy.run_module('noisebench.cli', run_name='__main__', alter_sys=True)")
-"""``python -m noisebench.cli`` with Python's own Ctrl-C handler installed first: a child
+    "runpy.run_module('noisebench.frontends.cli', run_name='__main__', alter_sys=True)"
+)
+"""``python -m noisebench.frontends.cli`` with Python's own Ctrl-C handler installed first: a child
 started from a non-interactive shell may inherit SIGINT as ignored, and Python then installs
 no KeyboardInterrupt handler (Python docs, signal module)."""
 
@@ -254,13 +292,14 @@ def write_scpi_plan(folder: Path, server: SimServer, freqs_hz, target: float) ->
     enr_csv = folder / "enr.csv"
     server.bench.enr_table.to_csv(enr_csv)
     plan = folder / "plan.toml"
-    plan.write_text(f"""\
+    plan.write_text(
+        f"""\
 method = "y_factor"
 [dut]
 id = "E2E-KILL"
 [bench]
-analyzer = {{ resource = "{server.resource('analyzer')}", compression_dbm = -3.0 }}
-noise_source = {{ drive = "supply", resource = "{server.resource('supply')}", \
+analyzer = {{ resource = "{server.resource("analyzer")}", compression_dbm = -3.0 }}
+noise_source = {{ drive = "supply", resource = "{server.resource("supply")}", \
 drive_v = {SUPPLY_DRIVE_V}, settle_time_s = 0.02 }}
 [acquisition]
 rbw_hz = {RBW_HZ}
@@ -278,7 +317,9 @@ dut_gain_db = 20.0
 [output]
 plots = false
 report = false
-""", encoding="utf-8")
+""",
+        encoding="utf-8",
+    )
     return plan
 
 
@@ -307,12 +348,14 @@ def read_journal(folder: Path) -> bytes:
 def start_run(argv: list[str], folder: Path, *, launcher: list[str]) -> subprocess.Popen:
     """``noisebench ARGV`` as a child process, output to files (a full pipe would block it)."""
     with open(folder / "child.out", "wb") as out, open(folder / "child.err", "wb") as err:
-        return subprocess.Popen([sys.executable, *launcher, *argv], stdout=out, stderr=err,
-                                cwd=folder)
+        return subprocess.Popen(
+            [sys.executable, *launcher, *argv], stdout=out, stderr=err, cwd=folder
+        )
 
 
-def hold_while_source_hot(proc: subprocess.Popen, run: Path, server: SimServer,
-                          min_points: int) -> None:
+def hold_while_source_hot(
+    proc: subprocess.Popen, run: Path, server: SimServer, min_points: int
+) -> None:
     """Return once ``proc`` has journalled ``min_points`` and is stopped with the noise source
     hot: every reply held back (``reply_delay_s``), so its next query cannot complete and
     it cannot switch the source cold (the ``OUTP OFF`` write comes after replies it is still
@@ -321,8 +364,10 @@ def hold_while_source_hot(proc: subprocess.Popen, run: Path, server: SimServer,
     deadline = time.monotonic() + CHILD_TIMEOUT_S
     while time.monotonic() < deadline:
         assert proc.poll() is None, "the run ended before it could be stopped: lengthen it"
-        if len(journal_points(read_journal(run))) >= min_points and \
-                server.bench.noise_source.is_hot:
+        if (
+            len(journal_points(read_journal(run))) >= min_points
+            and server.bench.noise_source.is_hot
+        ):
             server.faults.reply_delay_s = CHILD_TIMEOUT_S
             time.sleep(0.05)
             if server.bench.noise_source.is_hot:
@@ -347,8 +392,11 @@ def test_sigkill_mid_run_then_resume_loses_nothing(tmp_path, ideal_server, child
     freqs = [1e9, 1.5e9, 2e9, 2.5e9, 3e9, 3.5e9]
     plan = write_scpi_plan(tmp_path, server, freqs, target=0.12)
     run = tmp_path / "run"
-    proc = start_run(["-q", "run", str(plan), "--out", str(run)], tmp_path,
-                     launcher=["-m", "noisebench.cli"])
+    proc = start_run(
+        ["-q", "run", str(plan), "--out", str(run)],
+        tmp_path,
+        launcher=["-m", "noisebench.frontends.cli"],
+    )
     child_processes.append(proc)
     hold_while_source_hot(proc, run, server, min_points=2)
     proc.send_signal(signal.SIGKILL)
@@ -364,8 +412,21 @@ def test_sigkill_mid_run_then_resume_loses_nothing(tmp_path, ideal_server, child
     server.faults.reply_delay_s = 0.0
     first_resumed_command = len(server.command_log)
     resumed = subprocess.run(
-        [sys.executable, "-m", "noisebench.cli", "-q", "run", str(plan), "--resume", str(run)],
-        capture_output=True, text=True, timeout=CHILD_TIMEOUT_S, cwd=tmp_path)
+        [
+            sys.executable,
+            "-m",
+            "noisebench.frontends.cli",
+            "-q",
+            "run",
+            str(plan),
+            "--resume",
+            str(run),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=CHILD_TIMEOUT_S,
+        cwd=tmp_path,
+    )
     assert resumed.returncode == cli.EXIT_OK, resumed.stderr
 
     after_raw = read_journal(run)
@@ -395,13 +456,15 @@ def test_sigkill_mid_run_then_resume_loses_nothing(tmp_path, ideal_server, child
         assert abs(point["nf_db"] - nf_db) <= z * point["u_nf_db"], point["freq_hz"]
 
 
-def test_ctrl_c_mid_run_leaves_the_source_off_and_exits_130(tmp_path, ideal_server,
-                                                            child_processes):
+def test_ctrl_c_mid_run_leaves_the_source_off_and_exits_130(
+    tmp_path, ideal_server, child_processes
+):
     server = ideal_server
     plan = write_scpi_plan(tmp_path, server, FREQS_HZ, target=TARGET_U_NF_DB)
     run = tmp_path / "run"
-    proc = start_run(["run", str(plan), "--out", str(run)], tmp_path,
-                     launcher=["-c", SIGINT_LAUNCHER])
+    proc = start_run(
+        ["run", str(plan), "--out", str(run)], tmp_path, launcher=["-c", SIGINT_LAUNCHER]
+    )
     child_processes.append(proc)
     hold_while_source_hot(proc, run, server, min_points=1)
     proc.send_signal(signal.SIGINT)  # arrives while the child waits for a held reply

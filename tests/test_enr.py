@@ -1,4 +1,4 @@
-"""noisebench.enr: our ENR CSV format, strict validation with line/field, interpolation."""
+"""noisebench.science.enr: our ENR CSV format, strict validation with line/field, interpolation."""
 
 from __future__ import annotations
 
@@ -10,8 +10,8 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from noisebench.enr import EnrMetadata, EnrTable, EnrValue, validate_enr_file
 from noisebench.errors import InputError
+from noisebench.science.enr import EnrMetadata, EnrTable, EnrValue, validate_enr_file
 
 GOOD = """\
 # serial: NS-0042
@@ -40,12 +40,10 @@ def test_parse_good_table_with_metadata():
     assert t.range_hz == (10e6, 6e9) and not t.is_flat
 
 
-@pytest.mark.parametrize("column, scale", [("freq_khz", 1e3), ("freq_mhz", 1e6),
-                                           ("freq_ghz", 1e9)])
+@pytest.mark.parametrize("column, scale", [("freq_khz", 1e3), ("freq_mhz", 1e6), ("freq_ghz", 1e9)])
 def test_frequency_units_in_the_header(column, scale):
     freqs = [10e6, 1e9, 6e9]
-    rows = "\n".join(f"{f / scale!r},{e}" for f, e in zip(freqs, [15.4, 15.2, 14.8],
-                                                           strict=True))
+    rows = "\n".join(f"{f / scale!r},{e}" for f, e in zip(freqs, [15.4, 15.2, 14.8], strict=True))
     t = EnrTable.from_csv(f"{column},enr_db\n{rows}\n")
     np.testing.assert_allclose(t.freq_hz, freqs, rtol=1e-15)
 
@@ -66,37 +64,56 @@ def test_expanded_uncertainty_column_is_divided_by_its_coverage_factor():
 # --------------------------------------------------------------------------- validation
 
 
-@pytest.mark.parametrize("text, expected", [
-    ("freq_hz,enr_db\n1e9,15\n3e9,15\n2e9,15\n",
-     "enr.csv line 4, freq_hz: not sorted ascending (follows 3e+09 Hz)"),
-    ("freq_hz,enr_db\n1e9,15\n1e9,15\n", "enr.csv line 3, freq_hz: repeats 1e+09 Hz"),
-    ("freq_hz,enr_db\n1e9,nan\n", "enr.csv line 2, enr_db: must be finite (got 'nan')"),
-    ("freq_hz,enr_db\n1e9,abc\n", "enr.csv line 2, enr_db: not a number: 'abc'"),
-    ("freq_hz,enr_db\n-1e9,15\n", "enr.csv line 2, freq_hz: must be finite and > 0"),
-    ("freq_hz,enr_db\n2e12,15\n", "enr.csv line 2, freq_hz: 2e+12 Hz is above 1 THz"),
-    ("freq_hz,enr_db\n1e9,46\n", "enr.csv line 2, enr_db: 46 dB is outside the plausible "
-                                 "-10..45 dB"),
-    ("freq_hz,enr_db,u_enr_db\n1e9,15,-0.1\n", "enr.csv line 2, u_enr_db: must be finite and "
-                                               ">= 0"),
-    ("freq_hz,enr_db\n1e9,15,0.1\n", "enr.csv line 2: has 3 fields, the header has 2"),
-    ("freq_hz,enr\n1e9,15\n", "enr.csv line 1, header: unknown column 'enr'"),
-    ("freq_hz,u_enr_db\n1e9,0.1\n", "enr.csv line 1, header: has no enr_db column"),
-    ("freq_hz,freq_mhz,enr_db\n1e9,1000,15\n", "enr.csv line 1, header: has more than one "
-                                               "frequency column"),
-    ("# serial: x\n", "enr.csv: has no header line"),
-    ("freq_hz,enr_db\n", "enr.csv line 1: the table has no data rows"),
-    ("freq_hz,enr_db\n# serial: x\n1e9,15\n", "enr.csv line 2, serial: metadata must come "
-                                              "before the header"),
-    ("# serial: a\n# serial: b\nfreq_hz,enr_db\n1e9,15\n", "enr.csv line 2, serial: repeats "
-                                                           "metadata from line 1"),
-    ("# calibrated: last week\nfreq_hz,enr_db\n1e9,15\n", "enr.csv line 1, calibrated:"),
-    ("# nominal_drive_v: -28\nfreq_hz,enr_db\n1e9,15\n", "enr.csv line 1, nominal_drive_v:"),
-    ("# uncertainty_k: 0.5\nfreq_hz,enr_db\n1e9,15\n", "enr.csv line 1, uncertainty_k: must be "
-                                                       "a number >= 1"),
-    ("freq_hz,enr_db\n1,15\n2,15\n26.5,14\n", "enr.csv line 2, freq_hz: every frequency is "
-                                              "below 1 kHz: are the numbers MHz or GHz?"),
-    ("enr_db\n15\n14\n", "enr.csv, freq_hz: is missing"),
-])
+@pytest.mark.parametrize(
+    "text, expected",
+    [
+        (
+            "freq_hz,enr_db\n1e9,15\n3e9,15\n2e9,15\n",
+            "enr.csv line 4, freq_hz: not sorted ascending (follows 3e+09 Hz)",
+        ),
+        ("freq_hz,enr_db\n1e9,15\n1e9,15\n", "enr.csv line 3, freq_hz: repeats 1e+09 Hz"),
+        ("freq_hz,enr_db\n1e9,nan\n", "enr.csv line 2, enr_db: must be finite (got 'nan')"),
+        ("freq_hz,enr_db\n1e9,abc\n", "enr.csv line 2, enr_db: not a number: 'abc'"),
+        ("freq_hz,enr_db\n-1e9,15\n", "enr.csv line 2, freq_hz: must be finite and > 0"),
+        ("freq_hz,enr_db\n2e12,15\n", "enr.csv line 2, freq_hz: 2e+12 Hz is above 1 THz"),
+        (
+            "freq_hz,enr_db\n1e9,46\n",
+            "enr.csv line 2, enr_db: 46 dB is outside the plausible -10..45 dB",
+        ),
+        (
+            "freq_hz,enr_db,u_enr_db\n1e9,15,-0.1\n",
+            "enr.csv line 2, u_enr_db: must be finite and >= 0",
+        ),
+        ("freq_hz,enr_db\n1e9,15,0.1\n", "enr.csv line 2: has 3 fields, the header has 2"),
+        ("freq_hz,enr\n1e9,15\n", "enr.csv line 1, header: unknown column 'enr'"),
+        ("freq_hz,u_enr_db\n1e9,0.1\n", "enr.csv line 1, header: has no enr_db column"),
+        (
+            "freq_hz,freq_mhz,enr_db\n1e9,1000,15\n",
+            "enr.csv line 1, header: has more than one frequency column",
+        ),
+        ("# serial: x\n", "enr.csv: has no header line"),
+        ("freq_hz,enr_db\n", "enr.csv line 1: the table has no data rows"),
+        (
+            "freq_hz,enr_db\n# serial: x\n1e9,15\n",
+            "enr.csv line 2, serial: metadata must come before the header",
+        ),
+        (
+            "# serial: a\n# serial: b\nfreq_hz,enr_db\n1e9,15\n",
+            "enr.csv line 2, serial: repeats metadata from line 1",
+        ),
+        ("# calibrated: last week\nfreq_hz,enr_db\n1e9,15\n", "enr.csv line 1, calibrated:"),
+        ("# nominal_drive_v: -28\nfreq_hz,enr_db\n1e9,15\n", "enr.csv line 1, nominal_drive_v:"),
+        (
+            "# uncertainty_k: 0.5\nfreq_hz,enr_db\n1e9,15\n",
+            "enr.csv line 1, uncertainty_k: must be a number >= 1",
+        ),
+        (
+            "freq_hz,enr_db\n1,15\n2,15\n26.5,14\n",
+            "enr.csv line 2, freq_hz: every frequency is below 1 kHz: are the numbers MHz or GHz?",
+        ),
+        ("enr_db\n15\n14\n", "enr.csv, freq_hz: is missing"),
+    ],
+)
 def test_each_problem_names_line_and_field(text, expected):
     with pytest.raises(InputError) as info:
         EnrTable.from_csv(text, name="enr.csv")
@@ -105,12 +122,13 @@ def test_each_problem_names_line_and_field(text, expected):
 
 def test_validate_lists_every_problem_in_line_order(tmp_path):
     path = tmp_path / "enr.csv"
-    path.write_text("# calibrated: soon\nfreq_hz,enr_db\n1e9,15\n2e9,abc\n2e9,14\n1.5e9,60\n"
-                    "3e9\n", encoding="utf-8")
+    path.write_text(
+        "# calibrated: soon\nfreq_hz,enr_db\n1e9,15\n2e9,abc\n2e9,14\n1.5e9,60\n3e9\n",
+        encoding="utf-8",
+    )
     problems = validate_enr_file(path)
     assert problems == [
-        "enr.csv line 1, calibrated: Input should be a valid date or datetime, input is too "
-        "short",
+        "enr.csv line 1, calibrated: Input should be a valid date or datetime, input is too short",
         "enr.csv line 4, enr_db: not a number: 'abc'",
         "enr.csv line 5, freq_hz: repeats 2e+09 Hz",
         "enr.csv line 6, freq_hz: not sorted ascending (follows 2e+09 Hz)",
@@ -168,8 +186,11 @@ def test_lookup_is_vectorized():
 
 def test_outside_the_range_refused_or_clamped_and_flagged():
     t = EnrTable.from_csv(GOOD)
-    with pytest.raises(InputError, match=r"freq_hz: 7e\+09 Hz is outside the ENR table's range "
-                                         r"1e\+07\.\.6e\+09 Hz"):
+    with pytest.raises(
+        InputError,
+        match=r"freq_hz: 7e\+09 Hz is outside the ENR table's range "
+        r"1e\+07\.\.6e\+09 Hz",
+    ):
         t.at(7e9)
     with pytest.raises(InputError, match="outside"):
         t.at(np.array([1e9, 5e6]))
@@ -220,24 +241,40 @@ def test_csv_and_json_round_trip(tmp_path):
     assert EnrTable.model_validate_json(t.model_dump_json()) == t
 
 
-@given(st.lists(st.tuples(st.floats(min_value=1e4, max_value=1e11),
-                          st.floats(min_value=-10, max_value=45),
-                          st.floats(min_value=0, max_value=2)),
-                min_size=1, max_size=30, unique_by=lambda r: r[0]),
-       st.sampled_from(["", "NS-1", "a b: c"]))
+@given(
+    st.lists(
+        st.tuples(
+            st.floats(min_value=1e4, max_value=1e11),
+            st.floats(min_value=-10, max_value=45),
+            st.floats(min_value=0, max_value=2),
+        ),
+        min_size=1,
+        max_size=30,
+        unique_by=lambda r: r[0],
+    ),
+    st.sampled_from(["", "NS-1", "a b: c"]),
+)
 def test_round_trip_any_valid_table(rows, serial):
     rows = sorted(rows)
-    t = EnrTable(freq_hz=[r[0] for r in rows], enr_db=[r[1] for r in rows],
-                 u_enr_db=[r[2] for r in rows],
-                 metadata=EnrMetadata(serial=serial or None))
+    t = EnrTable(
+        freq_hz=[r[0] for r in rows],
+        enr_db=[r[1] for r in rows],
+        u_enr_db=[r[2] for r in rows],
+        metadata=EnrMetadata(serial=serial or None),
+    )
     back = EnrTable.from_csv(t.to_csv())
     assert back == t  # repr() of floats round-trips exactly
 
 
-@given(st.lists(st.tuples(st.floats(min_value=1e6, max_value=1e11),
-                          st.floats(min_value=-10, max_value=45)),
-                min_size=2, max_size=20, unique_by=lambda r: r[0]),
-       st.floats(min_value=0.0, max_value=1.0))
+@given(
+    st.lists(
+        st.tuples(st.floats(min_value=1e6, max_value=1e11), st.floats(min_value=-10, max_value=45)),
+        min_size=2,
+        max_size=20,
+        unique_by=lambda r: r[0],
+    ),
+    st.floats(min_value=0.0, max_value=1.0),
+)
 def test_interpolated_value_lies_on_the_segment_between_its_nodes(rows, where):
     rows = sorted(rows)
     freqs = [r[0] for r in rows]

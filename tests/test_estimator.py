@@ -1,4 +1,4 @@
-"""Noise-density estimator on synthetic traces made here with numpy (noisebench.estimator).
+"""Noise-density estimator on synthetic traces made here with numpy (noisebench.science.estimator).
 
 The traces are built from first principles, independently of the library: complex white
 Gaussian noise on a fine frequency grid is filtered by the RBW amplitude response at every trace
@@ -20,7 +20,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import signal, special, stats
 
-from noisebench.acquisition import (
+from noisebench.bench.acquisition import (
     AcquisitionSettings,
     AveragingScale,
     Detector,
@@ -31,8 +31,8 @@ from noisebench.acquisition import (
     TraceUnit,
 )
 from noisebench.errors import InputError, MeasurementError
-from noisebench.estimator import density_from_marker, estimate_densities, estimate_density
-from noisebench.filters import GAUSSIAN, FilterKind, RbwFilter
+from noisebench.science.estimator import density_from_marker, estimate_densities, estimate_density
+from noisebench.science.filters import GAUSSIAN, FilterKind, RbwFilter
 
 D_TRUE = 1e-17  # W/Hz (about -140 dBm/Hz)
 F0 = 1e9
@@ -43,6 +43,7 @@ HANN = RbwFilter(kind=FilterKind.FFT, window="hann")
 
 
 # --- synthetic traces ------------------------------------------------------------------------
+
 
 def _combine(x: np.ndarray, axis: int, scale: AveragingScale) -> np.ndarray:
     if scale is POW:
@@ -63,11 +64,23 @@ def _detect(power: np.ndarray, detector: Detector, scale: AveragingScale) -> np.
     return _combine(d, -2, scale)
 
 
-def synthetic_traces(seed: int, n_traces: int = 1, *, points: int = 401, span_hz: float = 8e6,
-                     rbw_hz: float = 1e5, filt: RbwFilter = GAUSSIAN, averages: int = 8,
-                     looks: int = 1, detector: Detector = Detector.RMS,
-                     scale: AveragingScale = POW, spurs=(), shape=None,
-                     report_samples: bool = True, unit: TraceUnit = TraceUnit.DBM) -> list[Trace]:
+def synthetic_traces(
+    seed: int,
+    n_traces: int = 1,
+    *,
+    points: int = 401,
+    span_hz: float = 8e6,
+    rbw_hz: float = 1e5,
+    filt: RbwFilter = GAUSSIAN,
+    averages: int = 8,
+    looks: int = 1,
+    detector: Detector = Detector.RMS,
+    scale: AveragingScale = POW,
+    spurs=(),
+    shape=None,
+    report_samples: bool = True,
+    unit: TraceUnit = TraceUnit.DBM,
+) -> list[Trace]:
     """Swept-style traces of white noise of density D_TRUE (times ``shape(f)`` if given)."""
     rng = np.random.default_rng(seed)
     spacing = span_hz / (points - 1)
@@ -91,24 +104,42 @@ def synthetic_traces(seed: int, n_traces: int = 1, *, points: int = 401, span_hz
         y = y + amp * np.exp(1j * phase)
     values = _detect(np.abs(y) ** 2, detector, scale)
     settings = AcquisitionSettings(
-        center_hz=F0, span_hz=span_hz, rbw_hz=rbw_hz, rbw_filter=filt, detector=detector,
-        averaging_scale=scale, averages=averages, points=points,
+        center_hz=F0,
+        span_hz=span_hz,
+        rbw_hz=rbw_hz,
+        rbw_filter=filt,
+        detector=detector,
+        averaging_scale=scale,
+        averages=averages,
+        points=points,
         mode=SweepMode.FFT if filt.kind is FilterKind.FFT else SweepMode.SWEPT,
-        detector_samples=(looks if report_samples and detector is not Detector.SAMPLE else None))
+        detector_samples=(looks if report_samples and detector is not Detector.SAMPLE else None),
+    )
     return [_make_trace(freqs, v, settings, unit) for v in values]
 
 
 def _make_trace(freqs, power_w, settings, unit=TraceUnit.DBM) -> Trace:
     enbw = settings.enbw_hz
-    values = {TraceUnit.DBM: 10 * np.log10(power_w / 1e-3), TraceUnit.WATT: power_w,
-              TraceUnit.W_PER_HZ: power_w / enbw,
-              TraceUnit.DBM_PER_HZ: 10 * np.log10(power_w / enbw / 1e-3)}[unit]
+    values = {
+        TraceUnit.DBM: 10 * np.log10(power_w / 1e-3),
+        TraceUnit.WATT: power_w,
+        TraceUnit.W_PER_HZ: power_w / enbw,
+        TraceUnit.DBM_PER_HZ: 10 * np.log10(power_w / enbw / 1e-3),
+    }[unit]
     return Trace(freq_hz=freqs, values=values, unit=unit, settings=settings)
 
 
-def zero_span_traces(seed: int, n_traces: int, *, points: int = 400, rbw_hz: float = 1e5,
-                     dt_periods: float = 0.2, sub: int = 1, averages: int = 4,
-                     detector: Detector = Detector.SAMPLE) -> list[Trace]:
+def zero_span_traces(
+    seed: int,
+    n_traces: int,
+    *,
+    points: int = 400,
+    rbw_hz: float = 1e5,
+    dt_periods: float = 0.2,
+    sub: int = 1,
+    averages: int = 4,
+    detector: Detector = Detector.SAMPLE,
+) -> list[Trace]:
     """Zero-span traces: noise filtered in time, points ``dt_periods``/RBW apart; an RMS point
     averages its ``sub`` sub-samples. The reported sample count is computed from the generator's
     own correlation."""
@@ -135,10 +166,20 @@ def zero_span_traces(seed: int, n_traces: int, *, points: int = 400, rbw_hz: flo
         lag = np.arange(sub)
         samples = sub**2 / float(sub + 2 * np.sum((sub - lag[1:]) * rho[1:]))
     settings = AcquisitionSettings(
-        center_hz=F0, span_hz=0.0, rbw_hz=rbw_hz, detector=detector, averaging_scale=POW,
-        averages=averages, points=points, sweep_time_s=points * dt, detector_samples=samples)
-    return [Trace(freq_hz=np.full(points, F0), values=10 * np.log10(v / 1e-3),
-                  settings=settings) for v in values]
+        center_hz=F0,
+        span_hz=0.0,
+        rbw_hz=rbw_hz,
+        detector=detector,
+        averaging_scale=POW,
+        averages=averages,
+        points=points,
+        sweep_time_s=points * dt,
+        detector_samples=samples,
+    )
+    return [
+        Trace(freq_hz=np.full(points, F0), values=10 * np.log10(v / 1e-3), settings=settings)
+        for v in values
+    ]
 
 
 def _two_sided_chi2_bounds(dof: int, p: float = 1e-3) -> tuple[float, float]:
@@ -180,8 +221,10 @@ def test_single_trace_recovers_density_within_stated_uncertainty(name):
     assert d.relative_u == pytest.approx(1 / math.sqrt(d.independent_samples), rel=1e-9)
 
 
-@pytest.mark.parametrize("name", ["rms-power", "sample-log", "average-voltage",
-                                  "sample-voltage-sparse", "sync4-rms-power"])
+@pytest.mark.parametrize(
+    "name",
+    ["rms-power", "sample-log", "average-voltage", "sample-voltage-sparse", "sync4-rms-power"],
+)
 def test_stated_uncertainty_matches_scatter_over_seeds(name):
     m = 160
     traces = synthetic_traces(seed=1, n_traces=m, **CONFIGS[name])
@@ -228,8 +271,9 @@ def test_bias_correction_reported():
 def test_uncorrected_log_average_would_read_low():
     # the same trace read naively (power-scale settings) is biased by the log-average bias
     trace = synthetic_traces(seed=6, detector=Detector.SAMPLE, scale=LOG, averages=64)[0]
-    naive = trace.model_copy(update={"settings": trace.settings.model_copy(
-        update={"averaging_scale": POW})})
+    naive = trace.model_copy(
+        update={"settings": trace.settings.model_copy(update={"averaging_scale": POW})}
+    )
     good, bad = estimate_density(trace), estimate_density(naive)
     ratio_db = 10 * math.log10(bad.density_w_per_hz / good.density_w_per_hz)
     assert ratio_db == pytest.approx(10 * math.log10(special.gamma(1 + 1 / 64) ** 64), abs=1e-9)
@@ -238,12 +282,13 @@ def test_uncorrected_log_average_would_read_low():
 
 # --- zero span ---------------------------------------------------------------------------------
 
-@pytest.mark.parametrize("detector, dt_periods, sub", [(Detector.SAMPLE, 0.2, 1),
-                                                       (Detector.RMS, 2.0, 8)])
+
+@pytest.mark.parametrize(
+    "detector, dt_periods, sub", [(Detector.SAMPLE, 0.2, 1), (Detector.RMS, 2.0, 8)]
+)
 def test_zero_span_uncertainty_matches_scatter(detector, dt_periods, sub):
     m = 120
-    traces = zero_span_traces(seed=8, n_traces=m, dt_periods=dt_periods, sub=sub,
-                              detector=detector)
+    traces = zero_span_traces(seed=8, n_traces=m, dt_periods=dt_periods, sub=sub, detector=detector)
     est = [estimate_density(t) for t in traces]
     v = np.array([d.density_w_per_hz for d in est])
     u2 = np.mean([d.u_density_w_per_hz**2 for d in est])
@@ -259,13 +304,19 @@ def test_zero_span_uncertainty_matches_scatter(detector, dt_periods, sub):
 
 def test_zero_span_needs_its_sweep_time_and_a_swept_mode():
     trace = zero_span_traces(seed=9, n_traces=1)[0]
-    no_time = trace.model_copy(update={"settings": trace.settings.model_copy(
-        update={"sweep_time_s": None})})
+    no_time = trace.model_copy(
+        update={"settings": trace.settings.model_copy(update={"sweep_time_s": None})}
+    )
     with pytest.raises(InputError) as info:
         estimate_density(no_time)
     assert info.value.field == "trace.settings.sweep_time_s"
-    fft = trace.model_copy(update={"settings": trace.settings.model_copy(
-        update={"mode": SweepMode.FFT, "rbw_filter": HANN})})
+    fft = trace.model_copy(
+        update={
+            "settings": trace.settings.model_copy(
+                update={"mode": SweepMode.FFT, "rbw_filter": HANN}
+            )
+        }
+    )
     with pytest.raises(InputError, match="trace.settings.mode"):
         estimate_density(fft)
     with pytest.raises(InputError, match="freq_hz"):
@@ -274,8 +325,11 @@ def test_zero_span_needs_its_sweep_time_and_a_swept_mode():
 
 # --- spurs -------------------------------------------------------------------------------------
 
-SPURS = ((F0 - 2.1e6, 10 * D_TRUE * 1e5), (F0 + 0.52e6, 1e3 * D_TRUE * 1e5),
-         (F0 + 2.63e6, 1e5 * D_TRUE * 1e5))  # 10, 30 and 50 dB above the noise in the RBW
+SPURS = (
+    (F0 - 2.1e6, 10 * D_TRUE * 1e5),
+    (F0 + 0.52e6, 1e3 * D_TRUE * 1e5),
+    (F0 + 2.63e6, 1e5 * D_TRUE * 1e5),
+)  # 10, 30 and 50 dB above the noise in the RBW
 
 
 def test_spurs_are_excluded_reported_and_leave_the_density_unbiased():
@@ -306,8 +360,7 @@ def test_spurs_are_excluded_reported_and_leave_the_density_unbiased():
 def test_spur_exclusion_grows_with_the_line_strength():
     kw = dict(detector=Detector.RMS, scale=POW, looks=4, averages=16, points=801)
     weak = estimate_density(synthetic_traces(seed=12, spurs=[(F0, 30 * D_TRUE * 1e5)], **kw)[0])
-    strong = estimate_density(synthetic_traces(seed=12, spurs=[(F0, 1e6 * D_TRUE * 1e5)],
-                                               **kw)[0])
+    strong = estimate_density(synthetic_traces(seed=12, spurs=[(F0, 1e6 * D_TRUE * 1e5)], **kw)[0])
     assert weak.excluded_freq_hz and strong.excluded_freq_hz
     assert strong.bins_used < weak.bins_used < 801
     # 60 dB line through a Gaussian RBW: its skirt is below the noise resolution within 3 RBW
@@ -315,8 +368,9 @@ def test_spur_exclusion_grows_with_the_line_strength():
 
 
 def test_spurs_only_reported_for_bands_they_touch():
-    trace = synthetic_traces(seed=13, spurs=[(F0 + 3e6, 1e4 * D_TRUE * 1e5)], looks=4,
-                             points=801)[0]
+    trace = synthetic_traces(seed=13, spurs=[(F0 + 3e6, 1e4 * D_TRUE * 1e5)], looks=4, points=801)[
+        0
+    ]
     far, near = estimate_densities(trace, [F0 - 2e6, F0 + 3e6], 1e6)
     assert far.excluded_freq_hz == [] and far.bins_used == 101
     assert near.excluded_freq_hz and near.bins_used < 101
@@ -331,12 +385,15 @@ def test_band_swamped_by_a_spur_is_a_measurement_error():
 
 # --- scatter cross-check -----------------------------------------------------------------------
 
+
 def test_gain_slope_does_not_count_as_scatter():
     # density rising 20 % across the trace (DUT gain slope): the band mean is the centre value
     slope = lambda f: 1 + 0.2 * (f - F0) / 4e6  # noqa: E731
     m = 40
-    est = [estimate_density(t) for t in synthetic_traces(seed=15, n_traces=m, shape=slope,
-                                                          **CONFIGS["rms-power"])]
+    est = [
+        estimate_density(t)
+        for t in synthetic_traces(seed=15, n_traces=m, shape=slope, **CONFIGS["rms-power"])
+    ]
     ratios = np.array([d.scatter_ratio for d in est])
     assert abs(ratios.mean() - 1) < Z * ratios.std(ddof=1) / math.sqrt(m) + 0.02
     v = np.array([d.density_w_per_hz for d in est])
@@ -352,16 +409,17 @@ def test_excess_scatter_widens_the_uncertainty():
     assert rippled.excluded_freq_hz == [] and rippled.bins_used == clean.bins_used
     # expected ratio: sqrt(1 + ripple variance / point variance), ripple variance 0.3^2 / 2
     assert rippled.scatter_ratio == pytest.approx(math.sqrt(1 + 0.045 * 32), rel=0.1)
-    assert rippled.relative_u == pytest.approx(clean.relative_u * rippled.scatter_ratio,
-                                               rel=1e-9)
+    assert rippled.relative_u == pytest.approx(clean.relative_u * rippled.scatter_ratio, rel=1e-9)
 
 
 def test_unknown_sample_count_on_power_scale_uses_the_observed_scatter():
     m = 100
     kw = dict(CONFIGS["rms-power"])
     known = [estimate_density(t) for t in synthetic_traces(seed=17, n_traces=m, **kw)]
-    blind = [estimate_density(t) for t in synthetic_traces(seed=17, n_traces=m,
-                                                            report_samples=False, **kw)]
+    blind = [
+        estimate_density(t)
+        for t in synthetic_traces(seed=17, n_traces=m, report_samples=False, **kw)
+    ]
     for k, b in zip(known, blind, strict=True):
         assert b.density_w_per_hz == pytest.approx(k.density_w_per_hz, rel=1e-12)
         assert b.scatter_ratio is None
@@ -374,6 +432,7 @@ def test_unknown_sample_count_on_power_scale_uses_the_observed_scatter():
 
 
 # --- units, bands, many frequencies ------------------------------------------------------------
+
 
 @pytest.mark.parametrize("unit", [TraceUnit.WATT, TraceUnit.W_PER_HZ, TraceUnit.DBM_PER_HZ])
 def test_trace_units(unit):
@@ -403,12 +462,14 @@ def test_estimate_densities_matches_single_band_estimates():
 
 def test_band_selection_errors_name_the_field():
     trace = synthetic_traces(seed=20)[0]
-    cases = [(dict(freq_hz=F0 + 3.9e6, band_hz=1e6), "band_hz"),  # beyond the trace
-             (dict(freq_hz=F0, band_hz=1e3), "band_hz"),  # fewer than min_points
-             (dict(freq_hz=F0, band_hz=-1.0), "band_hz"),
-             (dict(freq_hz=2e9), "freq_hz"),
-             (dict(freq_hz=float("nan")), "freq_hz"),
-             (dict(spur_threshold_sigma=0.0), "spur_threshold_sigma")]
+    cases = [
+        (dict(freq_hz=F0 + 3.9e6, band_hz=1e6), "band_hz"),  # beyond the trace
+        (dict(freq_hz=F0, band_hz=1e3), "band_hz"),  # fewer than min_points
+        (dict(freq_hz=F0, band_hz=-1.0), "band_hz"),
+        (dict(freq_hz=2e9), "freq_hz"),
+        (dict(freq_hz=float("nan")), "freq_hz"),
+        (dict(spur_threshold_sigma=0.0), "spur_threshold_sigma"),
+    ]
     for kw, field in cases:
         with pytest.raises(InputError) as info:
             estimate_density(trace, **kw)
@@ -438,12 +499,15 @@ def test_bad_trace_data_names_the_field():
 
 def test_peak_detector_and_unknown_sample_count_refused():
     trace = synthetic_traces(seed=22)[0]
-    for update, field in [({"detector": Detector.PEAK}, "trace.settings.detector"),
-                          ({"detector": Detector.NEGATIVE_PEAK}, "trace.settings.detector"),
-                          ({"averaging_scale": LOG, "detector_samples": None},
-                           "trace.settings.detector_samples"),
-                          ({"detector": Detector.AVERAGE, "averaging_scale": VOLT,
-                            "detector_samples": None}, "trace.settings.detector_samples")]:
+    for update, field in [
+        ({"detector": Detector.PEAK}, "trace.settings.detector"),
+        ({"detector": Detector.NEGATIVE_PEAK}, "trace.settings.detector"),
+        ({"averaging_scale": LOG, "detector_samples": None}, "trace.settings.detector_samples"),
+        (
+            {"detector": Detector.AVERAGE, "averaging_scale": VOLT, "detector_samples": None},
+            "trace.settings.detector_samples",
+        ),
+    ]:
         bad = trace.model_copy(update={"settings": trace.settings.model_copy(update=update)})
         with pytest.raises(InputError) as info:
             estimate_density(bad)
@@ -452,9 +516,18 @@ def test_peak_detector_and_unknown_sample_count_refused():
 
 # --- marker readings ---------------------------------------------------------------------------
 
+
 def _marker_settings(**kw) -> AcquisitionSettings:
-    base = dict(center_hz=F0, span_hz=10e6, rbw_hz=1e5, detector=Detector.RMS,
-                averaging_scale=POW, averages=10, points=1001, detector_samples=4)
+    base = dict(
+        center_hz=F0,
+        span_hz=10e6,
+        rbw_hz=1e5,
+        detector=Detector.RMS,
+        averaging_scale=POW,
+        averages=10,
+        points=1001,
+        detector_samples=4,
+    )
     base.update(kw)
     return AcquisitionSettings(**base)
 
@@ -471,8 +544,14 @@ def _gaussian_corr_matrix(n: int, spacing_rbw: float) -> np.ndarray:
 
 def test_band_power_marker():
     s = _marker_settings()
-    r = MarkerReading(freq_hz=F0, kind=MarkerKind.BAND_POWER, value_db=_dbm(D_TRUE * 1e6),
-                      band_hz=1e6, settings=s, acquisition_time_s=0.3)
+    r = MarkerReading(
+        freq_hz=F0,
+        kind=MarkerKind.BAND_POWER,
+        value_db=_dbm(D_TRUE * 1e6),
+        band_hz=1e6,
+        settings=s,
+        acquisition_time_s=0.3,
+    )
     d = density_from_marker(r)
     assert d.density_w_per_hz == pytest.approx(D_TRUE, rel=1e-12)  # integrated band: no ENBW
     assert d.bias_correction_db == 0.0 and d.band_hz == 1e6 and d.acquisition_time_s == 0.3
@@ -490,8 +569,13 @@ def test_band_power_marker():
 def test_band_power_marker_off_the_grid_uses_the_points_the_band_touches():
     s = _marker_settings()
     f = F0 + 3.7e3  # band edges inside cells, 3.7 kHz off the grid
-    r = MarkerReading(freq_hz=f, kind=MarkerKind.BAND_POWER, value_db=_dbm(D_TRUE * 55e3),
-                      band_hz=55e3, settings=s)
+    r = MarkerReading(
+        freq_hz=f,
+        kind=MarkerKind.BAND_POWER,
+        value_db=_dbm(D_TRUE * 55e3),
+        band_hz=55e3,
+        settings=s,
+    )
     d = density_from_marker(r)
     assert d.density_w_per_hz == pytest.approx(D_TRUE, rel=1e-12)
     # cells [f_i - 5 kHz, f_i + 5 kHz] against the band f +/- 27.5 kHz: shares in 10 kHz units
@@ -505,14 +589,19 @@ def test_band_power_marker_off_the_grid_uses_the_points_the_band_touches():
 
 
 def test_band_power_marker_log_scale_bias():
-    s = _marker_settings(detector=Detector.SAMPLE, averaging_scale=LOG, averages=20,
-                         detector_samples=None)
+    s = _marker_settings(
+        detector=Detector.SAMPLE, averaging_scale=LOG, averages=20, detector_samples=None
+    )
     ratio = special.gamma(1 + 1 / 20) ** 20  # what a log-averaged point reads, E[G]/mu
-    raw = MarkerReading(freq_hz=F0, kind=MarkerKind.BAND_POWER, band_hz=2e6, settings=s,
-                        value_db=_dbm(D_TRUE * 2e6 * ratio))
+    raw = MarkerReading(
+        freq_hz=F0,
+        kind=MarkerKind.BAND_POWER,
+        band_hz=2e6,
+        settings=s,
+        value_db=_dbm(D_TRUE * 2e6 * ratio),
+    )
     assert density_from_marker(raw).density_w_per_hz == pytest.approx(D_TRUE, rel=1e-12)
-    fixed = raw.model_copy(update={"instrument_corrected": True,
-                                   "value_db": _dbm(D_TRUE * 2e6)})
+    fixed = raw.model_copy(update={"instrument_corrected": True, "value_db": _dbm(D_TRUE * 2e6)})
     assert density_from_marker(fixed).density_w_per_hz == pytest.approx(D_TRUE, rel=1e-12)
     assert density_from_marker(fixed).bias_correction_db == 0.0
 
@@ -520,22 +609,33 @@ def test_band_power_marker_log_scale_bias():
 def test_noise_density_marker():
     s = _marker_settings(averages=25, detector_samples=2)
     enbw = s.enbw_hz
-    corrected = MarkerReading(freq_hz=F0, kind=MarkerKind.NOISE_DENSITY, settings=s,
-                              value_db=_dbm(D_TRUE), instrument_corrected=True)
+    corrected = MarkerReading(
+        freq_hz=F0,
+        kind=MarkerKind.NOISE_DENSITY,
+        settings=s,
+        value_db=_dbm(D_TRUE),
+        instrument_corrected=True,
+    )
     d = density_from_marker(corrected)
     assert d.density_w_per_hz == pytest.approx(D_TRUE, rel=1e-12)
     assert d.relative_u == pytest.approx(1 / math.sqrt(50), rel=1e-12)  # one point, N k = 50
     assert d.band_hz == pytest.approx(enbw) and d.bins_used == 1
     # uncorrected: point power in the RBW normalised by the nominal RBW -> x RBW / ENBW
-    raw = corrected.model_copy(update={"instrument_corrected": False,
-                                       "value_db": _dbm(D_TRUE * enbw / 1e5)})
+    raw = corrected.model_copy(
+        update={"instrument_corrected": False, "value_db": _dbm(D_TRUE * enbw / 1e5)}
+    )
     assert density_from_marker(raw).density_w_per_hz == pytest.approx(D_TRUE, rel=1e-12)
     # uncorrected log-averaged sample detector: also the log-average bias
-    s_log = _marker_settings(detector=Detector.SAMPLE, averaging_scale=LOG, averages=20,
-                             detector_samples=None)
+    s_log = _marker_settings(
+        detector=Detector.SAMPLE, averaging_scale=LOG, averages=20, detector_samples=None
+    )
     ratio = special.gamma(1 + 1 / 20) ** 20
-    raw_log = MarkerReading(freq_hz=F0, kind=MarkerKind.NOISE_DENSITY, settings=s_log,
-                            value_db=_dbm(D_TRUE * enbw / 1e5 * ratio))
+    raw_log = MarkerReading(
+        freq_hz=F0,
+        kind=MarkerKind.NOISE_DENSITY,
+        settings=s_log,
+        value_db=_dbm(D_TRUE * enbw / 1e5 * ratio),
+    )
     d_log = density_from_marker(raw_log)
     assert d_log.density_w_per_hz == pytest.approx(D_TRUE, rel=1e-12)
     assert d_log.bias_correction_db == pytest.approx(-10 * math.log10(ratio))
@@ -544,30 +644,45 @@ def test_noise_density_marker():
 def test_marker_refusals_and_variance_bound():
     s = _marker_settings()
     with pytest.raises(InputError, match="reading.band_hz"):
-        density_from_marker(MarkerReading(freq_hz=F0, kind=MarkerKind.BAND_POWER,
-                                          value_db=-80.0, settings=s))
+        density_from_marker(
+            MarkerReading(freq_hz=F0, kind=MarkerKind.BAND_POWER, value_db=-80.0, settings=s)
+        )
     peak = _marker_settings(detector=Detector.PEAK)
     with pytest.raises(InputError) as info:
-        density_from_marker(MarkerReading(freq_hz=F0, kind=MarkerKind.NOISE_DENSITY,
-                                          value_db=-140.0, settings=peak,
-                                          instrument_corrected=True))
+        density_from_marker(
+            MarkerReading(
+                freq_hz=F0,
+                kind=MarkerKind.NOISE_DENSITY,
+                value_db=-140.0,
+                settings=peak,
+                instrument_corrected=True,
+            )
+        )
     assert info.value.field == "reading.settings.detector"
     unknown = _marker_settings(averaging_scale=LOG, detector_samples=None)
-    raw = MarkerReading(freq_hz=F0, kind=MarkerKind.NOISE_DENSITY, value_db=-140.0,
-                        settings=unknown)
+    raw = MarkerReading(
+        freq_hz=F0, kind=MarkerKind.NOISE_DENSITY, value_db=-140.0, settings=unknown
+    )
     with pytest.raises(InputError, match="reading.settings.detector_samples"):
         density_from_marker(raw)
     # corrected by the instrument: no bias needed; variance bounded by single-sample values
     d = density_from_marker(raw.model_copy(update={"instrument_corrected": True}))
     g = special.gamma
-    assert d.relative_u**2 == pytest.approx(g(1 + 2 / 10) ** 10 / g(1 + 1 / 10) ** 20 - 1,
-                                            rel=1e-9)
+    assert d.relative_u**2 == pytest.approx(g(1 + 2 / 10) ** 10 / g(1 + 1 / 10) ** 20 - 1, rel=1e-9)
 
 
 def test_single_point_trace_uses_its_averages():
     # one point, N k samples: relative u = 1 / sqrt(N k) (reference.md §6c); no scatter check
-    s = AcquisitionSettings(center_hz=F0, span_hz=0.0, rbw_hz=1e5, detector=Detector.RMS,
-                            averaging_scale=POW, averages=50, points=1, detector_samples=8)
+    s = AcquisitionSettings(
+        center_hz=F0,
+        span_hz=0.0,
+        rbw_hz=1e5,
+        detector=Detector.RMS,
+        averaging_scale=POW,
+        averages=50,
+        points=1,
+        detector_samples=8,
+    )
     trace = Trace(freq_hz=[F0], values=[_dbm(D_TRUE * s.enbw_hz)], settings=s)
     d = estimate_density(trace)
     assert d.density_w_per_hz == pytest.approx(D_TRUE, rel=1e-12)
@@ -588,5 +703,6 @@ def test_estimate_scales_with_the_level(offset_db, scale):
     assert b.excluded_freq_hz == a.excluded_freq_hz and b.bins_used == a.bins_used
 
 
-_LEVEL_TRACES = {sc: synthetic_traces(seed=30, scale=sc, detector=Detector.SAMPLE)[0]
-                 for sc in (POW, LOG, VOLT)}
+_LEVEL_TRACES = {
+    sc: synthetic_traces(seed=30, scale=sc, detector=Detector.SAMPLE)[0] for sc in (POW, LOG, VOLT)
+}

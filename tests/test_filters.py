@@ -14,7 +14,7 @@ from scipy.integrate import quad
 from scipy.signal import get_window
 
 from noisebench.errors import InputError
-from noisebench.filters import (
+from noisebench.science.filters import (
     GAUSSIAN,
     FilterKind,
     RbwFilter,
@@ -30,8 +30,13 @@ from noisebench.filters import (
 
 SYNC4 = RbwFilter(kind=FilterKind.SYNCHRONOUS, poles=4)
 HANN = RbwFilter(kind=FilterKind.FFT, window="hann")
-ALL_SHAPES = [GAUSSIAN, SYNC4, RbwFilter(kind=FilterKind.SYNCHRONOUS, poles=5), HANN,
-              RbwFilter(kind=FilterKind.FFT, window="flattop")]
+ALL_SHAPES = [
+    GAUSSIAN,
+    SYNC4,
+    RbwFilter(kind=FilterKind.SYNCHRONOUS, poles=5),
+    HANN,
+    RbwFilter(kind=FilterKind.FFT, window="flattop"),
+]
 
 
 def _integral(fun, half_span: float = np.inf) -> float:
@@ -66,8 +71,14 @@ def test_synchronous_filters_by_integration(poles):
 
 def test_synchronous_table_values():
     # reference: reference.md §6a table (computed there with numpy/scipy)
-    table = {1: (1.570796, 3.1416), 2: (1.220331, 1.9525), 3: (1.155395, 1.7606),
-             4: (1.128499, 1.6835), 5: (1.113845, 1.6421), 8: (1.093716, 1.5859)}
+    table = {
+        1: (1.570796, 3.1416),
+        2: (1.220331, 1.9525),
+        3: (1.155395, 1.7606),
+        4: (1.128499, 1.6835),
+        5: (1.113845, 1.6421),
+        8: (1.093716, 1.5859),
+    }
     for n, (enbw, bstat) in table.items():
         assert synchronous_enbw_ratio(n) == pytest.approx(enbw, abs=1e-6)
         assert synchronous_stat_bw_ratio(n) == pytest.approx(bstat, abs=1e-4)
@@ -78,9 +89,10 @@ def test_synchronous_table_values():
     assert dev8 / dev64 == pytest.approx(8.0, rel=0.1)
 
 
-@pytest.mark.parametrize("window, expected_bins", [("boxcar", 1.0), ("hann", 1.5),
-                                                   ("blackmanharris", 2.0044),
-                                                   ("flattop", 3.7702)])
+@pytest.mark.parametrize(
+    "window, expected_bins",
+    [("boxcar", 1.0), ("hann", 1.5), ("blackmanharris", 2.0044), ("flattop", 3.7702)],
+)
 def test_fft_window_enbw_in_bins(window, expected_bins):
     # reference: Harris 1978, Proc. IEEE 66(1) (table of window ENBW); reference.md §8;
     # recomputed from scipy.signal.get_window as N sum(w^2) / sum(w)^2
@@ -107,7 +119,8 @@ def test_frequency_correlation_gaussian_closed_form_and_integral():
     for d in (0.0, 0.3, 1.0, 2.0):
         num = _integral(lambda f, d=d: amp(f) * amp(f - d))
         assert frequency_power_correlation(GAUSSIAN, np.array([d]), 1.0)[0] == pytest.approx(
-            (num / norm) ** 2, rel=1e-9)
+            (num / norm) ** 2, rel=1e-9
+        )
     # the correlation bandwidth of a Gaussian RBW equals its B_stat (reference.md §7)
     area = _integral(lambda d: float(frequency_power_correlation(GAUSSIAN, np.array([d]), 1.0)[0]))
     assert area == pytest.approx(GAUSSIAN.stat_bw_ratio, rel=1e-9)
@@ -124,7 +137,8 @@ def test_correlation_table_shapes(filt):
     assert 2 * np.trapezoid(rho, d) == pytest.approx(correlation_bw_ratio(filt), rel=5e-3)
     # scales with the RBW
     assert frequency_power_correlation(filt, np.array([3e4]), 1e5)[0] == pytest.approx(
-        frequency_power_correlation(filt, np.array([0.3]), 1.0)[0], rel=1e-12)
+        frequency_power_correlation(filt, np.array([0.3]), 1.0)[0], rel=1e-12
+    )
 
 
 @pytest.mark.parametrize("poles", [2, 4, 5])
@@ -146,8 +160,9 @@ def test_fft_bin_correlation_bounds_the_exact_window_value():
     n = np.arange(w.size)
     b3_bins = window_enbw_bins("hann") / HANN.enbw_ratio  # enbw_ratio = ENBW_bins / B3_bins
     for d_bins in (0.5, 1.0, 2.0):
-        exact = abs(np.sum(w**2 * np.exp(-2j * np.pi * n * d_bins / w.size))) ** 2 \
-            / np.sum(w**2) ** 2
+        exact = (
+            abs(np.sum(w**2 * np.exp(-2j * np.pi * n * d_bins / w.size))) ** 2 / np.sum(w**2) ** 2
+        )
         ours = frequency_power_correlation(HANN, np.array([d_bins / b3_bins]), 1.0)[0]
         assert ours >= exact - 1e-4
         if d_bins == 1.0:
@@ -155,8 +170,7 @@ def test_fft_bin_correlation_bounds_the_exact_window_value():
             assert ours == pytest.approx(exact, abs=0.02)  # sidelobe signs matter little
 
 
-@pytest.mark.parametrize("filt", [GAUSSIAN, SYNC4, RbwFilter(kind=FilterKind.SYNCHRONOUS,
-                                                             poles=2)])
+@pytest.mark.parametrize("filt", [GAUSSIAN, SYNC4, RbwFilter(kind=FilterKind.SYNCHRONOUS, poles=2)])
 def test_time_correlation_integrates_to_one_over_bstat(filt):
     # radiometer equation (Dicke 1946, from memory; reference.md §7): int |r(tau)|^2 = 1/B_stat
     fun = lambda t: float(time_power_correlation(filt, np.array([t]), 1.0)[0])  # noqa: E731
@@ -172,7 +186,8 @@ def test_time_correlation_matches_fourier_transform_of_power_response():
     for tau in (0.2, 0.5, 1.0):
         r = 2 * quad(resp, 0, np.inf, weight="cos", wvar=2 * math.pi * tau)[0]
         assert time_power_correlation(SYNC4, np.array([tau]), 1.0)[0] == pytest.approx(
-            (r / norm) ** 2, rel=1e-6, abs=1e-12)
+            (r / norm) ** 2, rel=1e-6, abs=1e-12
+        )
 
 
 @pytest.mark.parametrize("filt", ALL_SHAPES)

@@ -5,13 +5,14 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from noisebench.acquisition import (
+from noisebench.bench.acquisition import (
     AcquisitionRequest,
     AcquisitionSettings,
     AveragingScale,
     Detector,
     Trace,
 )
+from noisebench.bench.instruments import Analyzer, Bench, Generator, NoiseSource
 from noisebench.errors import (
     CommunicationError,
     InputError,
@@ -20,12 +21,18 @@ from noisebench.errors import (
     NoisebenchError,
     require_positive,
 )
-from noisebench.instruments import Analyzer, Bench, Generator, NoiseSource
 
 
 def _settings(**kw) -> AcquisitionSettings:
-    base = dict(center_hz=1e9, span_hz=2e6, rbw_hz=1e5, detector=Detector.RMS,
-                averaging_scale=AveragingScale.POWER, averages=10, points=21)
+    base = dict(
+        center_hz=1e9,
+        span_hz=2e6,
+        rbw_hz=1e5,
+        detector=Detector.RMS,
+        averaging_scale=AveragingScale.POWER,
+        averages=10,
+        points=21,
+    )
     base.update(kw)
     return AcquisitionSettings(**base)
 

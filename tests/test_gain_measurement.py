@@ -10,8 +10,7 @@ import skrf
 from pydantic import ValidationError
 
 from noisebench.errors import InputError, MeasurementError, SafetyError
-from noisebench.gain_files import GainTable, load_gain_table
-from noisebench.gain_measurement import (
+from noisebench.running.gain_measurement import (
     GainMeasurementPlan,
     GainStage,
     _reduce_pass,
@@ -19,6 +18,7 @@ from noisebench.gain_measurement import (
     measure_gain,
     snr_db,
 )
+from noisebench.science.gain_files import GainTable, load_gain_table
 from noisebench.sims.bench import Path, SimulatedBench
 
 CABLE_CSV = """# description: input cable, 1.5 m
@@ -47,7 +47,7 @@ def test_interpolation_is_linear_in_db_not_in_power():
     table = GainTable.from_csv("freq_hz,gain_db\n1e9,10\n2e9,20\n")
     mid = table.at(1.5e9).gain_db
     assert mid == pytest.approx(15.0)  # linear in dB (common practice)
-    linear_power_mid = 10 * math.log10((10 ** 1.0 + 10 ** 2.0) / 2)
+    linear_power_mid = 10 * math.log10((10**1.0 + 10**2.0) / 2)
     assert abs(mid - linear_power_mid) > 1.0  # 17.4 dB: clearly a different rule
     values = table.at(np.array([1e9, 1.25e9, 2e9]))
     assert np.allclose(values.gain_db, [10.0, 12.5, 20.0])
@@ -82,21 +82,24 @@ def test_csv_round_trip_keeps_values_and_metadata():
     assert again.metadata == table.metadata
 
 
-@pytest.mark.parametrize("text, where, message", [
-    ("freq_hz,gain_db\n1e9,20\n0.9e9,21\n", "line 3, freq_hz", "not strictly ascending"),
-    ("freq_hz,gain_db\n1e9,abc\n", "line 2, gain_db", "not a number"),
-    ("freq_hz,gain_db\n1e9,150\n", "line 2, gain_db", "not a plausible gain"),
-    ("freq_hz,loss_db\n1e9,250\n", "line 2, loss_db", "not a plausible loss"),
-    ("freq_hz,gain_db,u_gain_db\n1e9,20,-0.1\n", "line 2, u_gain_db", ">= 0"),
-    ("freq_hz,gain\n1e9,20\n", "line 1, header", "unknown column"),
-    ("freq_hz,gain_db,loss_db\n1e9,20,1\n", "line 1, header", "exactly one"),
-    ("freq_hz,loss_db,u_gain_db\n1e9,1,0.1\n", "line 1, header", "u_loss_db"),
-    ("freq_hz,gain_db\n1e9,20,3\n", "line 2", "3 fields"),
-    ("# only a comment\n", "gain text", "no header"),
-    ("freq_hz,gain_db\n", "gain text", "no data rows"),
-    ("# temperature_k: hot\nfreq_hz,gain_db\n1e9,1\n", "temperature_k", "temperature in K"),
-    ("freq_hz,gain_db\nnan,1\n", "line 2, freq_hz", "finite"),
-])
+@pytest.mark.parametrize(
+    "text, where, message",
+    [
+        ("freq_hz,gain_db\n1e9,20\n0.9e9,21\n", "line 3, freq_hz", "not strictly ascending"),
+        ("freq_hz,gain_db\n1e9,abc\n", "line 2, gain_db", "not a number"),
+        ("freq_hz,gain_db\n1e9,150\n", "line 2, gain_db", "not a plausible gain"),
+        ("freq_hz,loss_db\n1e9,250\n", "line 2, loss_db", "not a plausible loss"),
+        ("freq_hz,gain_db,u_gain_db\n1e9,20,-0.1\n", "line 2, u_gain_db", ">= 0"),
+        ("freq_hz,gain\n1e9,20\n", "line 1, header", "unknown column"),
+        ("freq_hz,gain_db,loss_db\n1e9,20,1\n", "line 1, header", "exactly one"),
+        ("freq_hz,loss_db,u_gain_db\n1e9,1,0.1\n", "line 1, header", "u_loss_db"),
+        ("freq_hz,gain_db\n1e9,20,3\n", "line 2", "3 fields"),
+        ("# only a comment\n", "gain text", "no header"),
+        ("freq_hz,gain_db\n", "gain text", "no data rows"),
+        ("# temperature_k: hot\nfreq_hz,gain_db\n1e9,1\n", "temperature_k", "temperature in K"),
+        ("freq_hz,gain_db\nnan,1\n", "line 2, freq_hz", "finite"),
+    ],
+)
 def test_csv_problems_name_the_line_and_the_field(text, where, message):
     with pytest.raises(InputError) as info:
         GainTable.from_csv(text)
@@ -148,8 +151,9 @@ def test_touchstone_gain_is_s21_in_db_and_interpolated_in_db(tmp_path):
 
 
 def test_touchstone_with_other_port_counts_is_refused(tmp_path):
-    one_port = skrf.Network(frequency=skrf.Frequency(1, 2, 3, unit="GHz"),
-                            s=np.full((3, 1, 1), 0.1 + 0j))
+    one_port = skrf.Network(
+        frequency=skrf.Frequency(1, 2, 3, unit="GHz"), s=np.full((3, 1, 1), 0.1 + 0j)
+    )
     one_port.write_touchstone(str(tmp_path / "load"))
     with pytest.raises(InputError, match="two-port"):
         load_gain_table(tmp_path / "load.s1p")
@@ -219,6 +223,7 @@ def _connect(bench, calls):
     def connect(stage: GainStage) -> None:
         calls.append(stage)
         bench.set_path(Path(stage.value))
+
     return connect
 
 
@@ -226,12 +231,18 @@ def test_measured_gain_matches_the_simulated_path_gain_within_its_uncertainty():
     bench = SimulatedBench.from_scenario("demo-lna", seed=3, ideal=True)
     freqs = [0.5e9, 2e9, 5e9]
     calls: list[GainStage] = []
-    result = measure_gain(bench.analyzer, bench.generator, _plan(freqs_hz=freqs),
-                          _connect(bench, calls), noise_source=bench.noise_source)
+    result = measure_gain(
+        bench.analyzer,
+        bench.generator,
+        _plan(freqs_hz=freqs),
+        _connect(bench, calls),
+        noise_source=bench.noise_source,
+    )
     assert calls == [GainStage.THROUGH, GainStage.DUT]
     assert not bench.generator.output_on and not bench.noise_source.is_hot
     truth = bench.truth(np.array(freqs))
-    # the THROUGH pass omits the DUT's input cable (sims/bench.py), so the path gain is the
+    # the THROUGH pass omits the DUT's input cable (noisebench/sims/bench.py), so the path gain is
+    # the
     # DUT gain minus that cable's loss
     expected = truth["gain_db"] - truth["input_loss_db"]
     for point, want in zip(result.points, expected, strict=True):
@@ -248,9 +259,12 @@ def test_measured_gain_matches_the_simulated_path_gain_within_its_uncertainty():
 
 def test_gain_above_the_expected_value_is_flagged_near_compression():
     bench = SimulatedBench.from_scenario("demo-lna", seed=3, ideal=True)
-    result = measure_gain(bench.analyzer, bench.generator,
-                          _plan(freqs_hz=[1e9], expected_gain_db=20.0),
-                          _connect(bench, []))
+    result = measure_gain(
+        bench.analyzer,
+        bench.generator,
+        _plan(freqs_hz=[1e9], expected_gain_db=20.0),
+        _connect(bench, []),
+    )
     assert result.points[0].flags == ["output_near_compression"]  # ~27.6 dB, not 20 dB
 
 

@@ -11,11 +11,11 @@ import numpy as np
 import pytest
 import scipy.constants
 
-from noisebench.density import NoiseDensity
 from noisebench.errors import InputError, MeasurementError
-from noisebench.methods import gain_method_nf_db, gain_method_point, gain_method_te_k
-from noisebench.physics import friis_te_k, passive_loss_te_k
-from noisebench.point import Method, PointFlag
+from noisebench.science.density import NoiseDensity
+from noisebench.science.methods import gain_method_nf_db, gain_method_point, gain_method_te_k
+from noisebench.science.physics import friis_te_k, passive_loss_te_k
+from noisebench.science.point import Method, PointFlag
 
 K = scipy.constants.k
 T0 = 290.0
@@ -82,21 +82,23 @@ def test_floor_correction_and_margin_are_consistent():
     n_dut, n_sa = N_M - N_F + K * T0, N_F - K * T0
     assert r.floor_margin_db == pytest.approx(10 * math.log10(n_dut / n_sa), rel=1e-12)
     assert r.floor_correction_db == pytest.approx(
-        10 * math.log10(1 + 10 ** (-r.floor_margin_db / 10)), rel=1e-10)  # reference.md §4
+        10 * math.log10(1 + 10 ** (-r.floor_margin_db / 10)), rel=1e-10
+    )  # reference.md §4
     assert r.floor_correction_db == pytest.approx(2.3889 - 2.0000, abs=1e-4)  # reference.md §4
     assert r.notes["nf_uncorrected_db"] - r.nf_db == pytest.approx(r.floor_correction_db)
     assert PointFlag.NEAR_ANALYZER_FLOOR not in r.flags
 
 
 def test_near_floor_flag_below_the_threshold():
-    g = 10 ** 0.8  # 8 dB gain with a 12 dB analyzer NF: DUT noise near the analyzer's own
+    g = 10**0.8  # 8 dB gain with a 12 dB analyzer NF: DUT noise near the analyzer's own
     n_m = K * (g * (T0 + TE_DUT) + TE_SA)
     r = gain_method_point(density(n_m), 8.0, floor=density(N_F))
     assert r.floor_margin_db < 3.0
     assert r.nf_db == pytest.approx(2.0, abs=1e-10)  # still exact
     assert PointFlag.NEAR_ANALYZER_FLOOR in r.flags and PointFlag.LOW_GAIN in r.flags
-    relaxed = gain_method_point(density(n_m), 8.0, floor=density(N_F), floor_warning_db=-3.0,
-                                low_gain_db=5.0)
+    relaxed = gain_method_point(
+        density(n_m), 8.0, floor=density(N_F), floor_warning_db=-3.0, low_gain_db=5.0
+    )
     assert relaxed.flags == []
 
 
@@ -118,31 +120,47 @@ def test_floor_termination_at_its_own_temperature():
     ts, t_term = 296.0, 303.0  # DUT termination and analyzer termination differ
     n_m = K * (G * (ts + TE_DUT) + TE_SA)
     n_f = K * (t_term + TE_SA)
-    r = gain_method_point(density(n_m), 20.0, floor=density(n_f), source_temperature_k=ts,
-                          floor_temperature_k=t_term)
+    r = gain_method_point(
+        density(n_m), 20.0, floor=density(n_f), source_temperature_k=ts, floor_temperature_k=t_term
+    )
     assert r.te_k == pytest.approx(TE_DUT, rel=1e-12)
 
 
 def test_losses_are_deembedded():
     # physical path: input cable 0.7 dB at 300 K, DUT, output cable 1.3 dB at 305 K (Friis)
     l_in, l_out, tp_in, tp_out, ts = 10**0.07, 10**0.13, 300.0, 305.0, 297.0
-    te_path = friis_te_k([passive_loss_te_k(l_in, tp_in), TE_DUT, passive_loss_te_k(l_out, tp_out)],
-                         [1 / l_in, G, 1 / l_out])
+    te_path = friis_te_k(
+        [passive_loss_te_k(l_in, tp_in), TE_DUT, passive_loss_te_k(l_out, tp_out)],
+        [1 / l_in, G, 1 / l_out],
+    )
     g_path = G / (l_in * l_out)
     n_m = K * (g_path * (ts + te_path) + TE_SA)
     n_f = K * (ts + TE_SA)
-    r = gain_method_point(density(n_m), 10 * math.log10(g_path), floor=density(n_f),
-                          source_temperature_k=ts, input_loss_db=0.7,
-                          input_loss_temperature_k=tp_in, output_loss_db=1.3,
-                          output_loss_temperature_k=tp_out)
+    r = gain_method_point(
+        density(n_m),
+        10 * math.log10(g_path),
+        floor=density(n_f),
+        source_temperature_k=ts,
+        input_loss_db=0.7,
+        input_loss_temperature_k=tp_in,
+        output_loss_db=1.3,
+        output_loss_temperature_k=tp_out,
+    )
     assert r.te_k == pytest.approx(TE_DUT, rel=1e-11)
     assert r.gain_db == pytest.approx(20.0, abs=1e-12)
     assert r.notes["path_gain_db"] == pytest.approx(18.0)
     # the same point when the gain given is the DUT's own (cables cancelled in its measurement)
-    own = gain_method_point(density(n_m), 20.0, floor=density(n_f), source_temperature_k=ts,
-                            input_loss_db=0.7, input_loss_temperature_k=tp_in,
-                            output_loss_db=1.3, output_loss_temperature_k=tp_out,
-                            gain_includes_losses=False)
+    own = gain_method_point(
+        density(n_m),
+        20.0,
+        floor=density(n_f),
+        source_temperature_k=ts,
+        input_loss_db=0.7,
+        input_loss_temperature_k=tp_in,
+        output_loss_db=1.3,
+        output_loss_temperature_k=tp_out,
+        gain_includes_losses=False,
+    )
     assert own.te_k == pytest.approx(TE_DUT, rel=1e-11) and own.gain_db == pytest.approx(20.0)
 
 
@@ -170,7 +188,8 @@ def test_gain_uncertainty_enters_one_to_one_and_stays_out_of_the_statistical_par
     assert r.u_gain_db == 0.1
     assert r.u_nf_db == pytest.approx(math.hypot(c["dut"], c["floor"]), rel=1e-12)
     assert r.notes["u_nf_db_with_gain"] == pytest.approx(
-        math.sqrt(c["dut"] ** 2 + c["floor"] ** 2 + 0.01), rel=1e-6)
+        math.sqrt(c["dut"] ** 2 + c["floor"] ** 2 + 0.01), rel=1e-6
+    )
 
 
 def test_linear_propagation_matches_monte_carlo():
@@ -207,8 +226,9 @@ def test_negative_te_is_flagged_not_hidden():
 
 def test_no_dut_noise_after_the_floor_correction_raises_naming_the_frequency():
     with pytest.raises(MeasurementError) as info:
-        gain_method_point(density(N_F - K * T0 * 1.01, freq_hz=2.5e9), 20.0,
-                          floor=density(N_F, freq_hz=2.5e9))
+        gain_method_point(
+            density(N_F - K * T0 * 1.01, freq_hz=2.5e9), 20.0, floor=density(N_F, freq_hz=2.5e9)
+        )
     assert "no DUT noise" in str(info.value)
     assert info.value.context["freq_hz"] == 2.5e9 and "2500000000.0" in str(info.value)
 
@@ -218,16 +238,19 @@ def test_floor_without_analyzer_noise_is_refused():
         gain_method_point(density(N_M), 20.0, floor=density(K * T0 * 0.99))
 
 
-@pytest.mark.parametrize("kwargs, field", [
-    ({"gain_db": float("nan")}, "gain_db"),
-    ({"u_gain_db": -0.1}, "u_gain_db"),
-    ({"source_temperature_k": -3.0}, "source_temperature_k"),
-    ({"source_temperature_k": 0.0}, "source_temperature_k"),
-    ({"t0_k": float("inf")}, "t0_k"),
-    ({"input_loss_db": -0.5}, "input_loss_db"),
-    ({"output_loss_temperature_k": -1.0}, "output_loss_temperature_k"),
-    ({"floor_temperature_k": float("nan")}, "floor_temperature_k"),
-])
+@pytest.mark.parametrize(
+    "kwargs, field",
+    [
+        ({"gain_db": float("nan")}, "gain_db"),
+        ({"u_gain_db": -0.1}, "u_gain_db"),
+        ({"source_temperature_k": -3.0}, "source_temperature_k"),
+        ({"source_temperature_k": 0.0}, "source_temperature_k"),
+        ({"t0_k": float("inf")}, "t0_k"),
+        ({"input_loss_db": -0.5}, "input_loss_db"),
+        ({"output_loss_temperature_k": -1.0}, "output_loss_temperature_k"),
+        ({"floor_temperature_k": float("nan")}, "floor_temperature_k"),
+    ],
+)
 def test_bad_inputs_name_the_field(kwargs, field):
     args = {"gain_db": 20.0} | kwargs
     gain_db = args.pop("gain_db")
@@ -267,7 +290,8 @@ def test_vectorized_form_matches_the_point_form():
 
 
 def test_instrument_time_comes_from_the_dut_density():
-    r = gain_method_point(density(N_M, acquisition_time_s=0.25), 20.0,
-                          floor=density(N_F, acquisition_time_s=3.0))
+    r = gain_method_point(
+        density(N_M, acquisition_time_s=0.25), 20.0, floor=density(N_F, acquisition_time_s=3.0)
+    )
     assert r.instrument_time_s == 0.25  # the floor is a calibration, reused across points
     assert gain_method_point(density(N_M), 20.0).instrument_time_s is None

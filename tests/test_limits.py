@@ -15,7 +15,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from noisebench.errors import InputError
-from noisebench.limits import (
+from noisebench.science.limits import (
     DecisionRule,
     LimitBand,
     LimitMask,
@@ -24,8 +24,8 @@ from noisebench.limits import (
     decide_interval,
     judge,
 )
-from noisebench.point import Method, PointResult
-from noisebench.uncertainty import UncertaintyInputs, gain_method_budget
+from noisebench.science.point import Method, PointResult
+from noisebench.science.uncertainty import UncertaintyInputs, gain_method_budget
 
 PASS, FAIL, IND, NOT = Verdict.PASS, Verdict.FAIL, Verdict.INDETERMINATE, Verdict.NOT_JUDGED
 
@@ -38,10 +38,24 @@ def _down(x: float) -> float:
     return math.nextafter(x, -math.inf)
 
 
-def _point(freq_hz: float, nf_db: float, *, gain_db: float | None = 20.0,
-           u_nf_db: float = 0.0625, u_gain_db: float | None = 0.125) -> PointResult:
-    return PointResult(freq_hz=freq_hz, method=Method.GAIN, nf_db=nf_db, te_k=100.0,
-                       gain_db=gain_db, u_nf_db=u_nf_db, u_te_k=1.0, u_gain_db=u_gain_db)
+def _point(
+    freq_hz: float,
+    nf_db: float,
+    *,
+    gain_db: float | None = 20.0,
+    u_nf_db: float = 0.0625,
+    u_gain_db: float | None = 0.125,
+) -> PointResult:
+    return PointResult(
+        freq_hz=freq_hz,
+        method=Method.GAIN,
+        nf_db=nf_db,
+        te_k=100.0,
+        gain_db=gain_db,
+        u_nf_db=u_nf_db,
+        u_te_k=1.0,
+        u_gain_db=u_gain_db,
+    )
 
 
 def _mask(*bands: dict, **kw) -> LimitMask:
@@ -96,8 +110,13 @@ def test_interval_decisions_use_each_end():
 def test_monte_carlo_budget_interval_is_used_asymmetrically():
     mask = _mask({"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2.0})
     point = _point(1.5e9, 1.75)
-    skewed = {"freq_hz": 1.5e9, "method": "monte_carlo", "U_expanded_db": 0.25, "k": 2.0,
-              "monte_carlo": {"interval_db": [1.375, 1.875]}}
+    skewed = {
+        "freq_hz": 1.5e9,
+        "method": "monte_carlo",
+        "U_expanded_db": 0.25,
+        "k": 2.0,
+        "monte_carlo": {"interval_db": [1.375, 1.875]},
+    }
     result = judge([point], [skewed], mask)
     # symmetric 1.75 +/- 0.25 would touch 2.0 only at the edge; the interval ends at 1.875
     assert result.points[0].nf_interval_db == (1.375, 1.875)
@@ -119,8 +138,13 @@ def test_decide_refuses_bad_arguments():
         decide(1.0, 0.1, 2.0, "max", "lenient")
 
 
-@given(value=st.floats(-50, 50), u=st.floats(0, 5), limit=st.floats(-50, 50),
-       kind=st.sampled_from(["max", "min"]), extra=st.floats(0, 5))
+@given(
+    value=st.floats(-50, 50),
+    u=st.floats(0, 5),
+    limit=st.floats(-50, 50),
+    kind=st.sampled_from(["max", "min"]),
+    extra=st.floats(0, 5),
+)
 def test_guarded_rule_is_never_more_lenient_than_simple(value, u, limit, kind, extra):
     guarded = decide(value, u, limit, kind)
     simple = decide(value, u, limit, kind, "simple")
@@ -147,10 +171,11 @@ def test_points_outside_every_band_are_not_judged():
 
 
 def test_overlapping_bands_both_apply():
-    mask = _mask({"start_hz": 1e9, "stop_hz": 3e9, "nf_max_db": 3.0},
-                 {"start_hz": 2e9, "stop_hz": 4e9, "nf_max_db": 2.0, "name": "upper"})
-    result = judge([_point(1.5e9, 2.5), _point(2.5e9, 2.5), _point(3.5e9, 1.5)], [0.25] * 3,
-                   mask)
+    mask = _mask(
+        {"start_hz": 1e9, "stop_hz": 3e9, "nf_max_db": 3.0},
+        {"start_hz": 2e9, "stop_hz": 4e9, "nf_max_db": 2.0, "name": "upper"},
+    )
+    result = judge([_point(1.5e9, 2.5), _point(2.5e9, 2.5), _point(3.5e9, 1.5)], [0.25] * 3, mask)
     first, overlap, last = result.points
     assert first.verdict is PASS and len(first.checks) == 1
     assert [c.band for c in overlap.checks] == [0, 1]
@@ -186,8 +211,11 @@ def test_missing_gain_makes_a_gain_limit_indeterminate():
 
 def test_flatness_per_band():
     band = {"start_hz": 1e9, "stop_hz": 2e9, "flatness_db": 1.0}
-    pts = [_point(1e9, 1, gain_db=20.0, u_gain_db=0.15), _point(1.5e9, 1, gain_db=20.25),
-           _point(2e9, 1, gain_db=20.5, u_gain_db=0.2)]
+    pts = [
+        _point(1e9, 1, gain_db=20.0, u_gain_db=0.15),
+        _point(1.5e9, 1, gain_db=20.25),
+        _point(2e9, 1, gain_db=20.5, u_gain_db=0.2),
+    ]
     result = judge(pts, None, _mask(band))
     flat = result.bands[0].flatness
     assert flat.value == pytest.approx(0.5)
@@ -216,16 +244,26 @@ def test_unit_aggregation():
 
 
 def test_uncovered_band_and_nothing_judged():
-    mask = _mask({"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2.0},
-                 {"start_hz": 5e9, "stop_hz": 6e9, "nf_max_db": 3.0})
+    mask = _mask(
+        {"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2.0},
+        {"start_hz": 5e9, "stop_hz": 6e9, "nf_max_db": 3.0},
+    )
     result = judge([_point(1.5e9, 1.0)], [0.1], mask)
     assert result.bands[1].points == 0 and result.bands[1].verdict is IND
     assert result.unit is IND and any("holds no measured point" in n for n in result.notes)
-    relaxed = judge([_point(1.5e9, 1.0)], [0.1],
-                    _mask(*[b.model_dump() for b in mask.bands], require_coverage=False))
+    relaxed = judge(
+        [_point(1.5e9, 1.0)],
+        [0.1],
+        _mask(*[b.model_dump() for b in mask.bands], require_coverage=False),
+    )
     assert relaxed.unit is PASS and relaxed.bands[1].verdict is NOT
-    nothing = judge([_point(9e9, 1.0)], [0.1], relaxed_mask := _mask(
-        {"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2.0}, require_coverage=False))
+    nothing = judge(
+        [_point(9e9, 1.0)],
+        [0.1],
+        relaxed_mask := _mask(
+            {"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2.0}, require_coverage=False
+        ),
+    )
     assert nothing.unit is IND and "no measured point lies inside any band" in nothing.notes
     assert relaxed_mask.require_coverage is False
 
@@ -240,8 +278,9 @@ def test_uncertainty_sources():
     assert judge([point], None, mask, coverage_factor=3.0).unit is IND
     # a real Budget object
     n_dut = 1.380649e-23 * 100.0 * (290.0 + 500.0)
-    budget = gain_method_budget(freq_hz=1.5e9, dut_w_per_hz=n_dut, gain_db=20.0,
-                                u_gain_db=0.1, inputs=UncertaintyInputs())
+    budget = gain_method_budget(
+        freq_hz=1.5e9, dut_w_per_hz=n_dut, gain_db=20.0, u_gain_db=0.1, inputs=UncertaintyInputs()
+    )
     result = judge([point], [budget], mask)
     assert result.points[0].U_nf_db == pytest.approx(budget.U_expanded_db)
     assert result.points[0].verdict is IND  # 1.875 + 0.2 > 2
@@ -265,18 +304,23 @@ def test_rule_from_mask_and_override():
 
 
 def test_verdict_dict_has_the_stored_shape():
-    mask = _mask({"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2.0, "gain_min_db": 15.0},
-                 {"start_hz": 2e9, "stop_hz": 3e9, "gain_max_db": 25.0, "flatness_db": 2.0})
-    data = judge([_point(1e9, 1.5), _point(2.5e9, 1.5), _point(3e9, 1.4)], None,
-                 mask).to_dict()
+    mask = _mask(
+        {"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2.0, "gain_min_db": 15.0},
+        {"start_hz": 2e9, "stop_hz": 3e9, "gain_max_db": 25.0, "flatness_db": 2.0},
+    )
+    data = judge([_point(1e9, 1.5), _point(2.5e9, 1.5), _point(3e9, 1.4)], None, mask).to_dict()
     json.dumps(data, allow_nan=False)
     assert data["unit"] == "pass"
     assert [p["verdict"] for p in data["points"]] == ["pass", "pass", "pass"]
     assert data["points"][0]["limit"] == 2.0 and data["points"][1]["limit"] is None
     assert {"freq_hz", "verdict", "limit", "checks"} <= set(data["points"][0])
     # limit lines as the plots read them: band dicts with the limit keys
-    assert data["limits"][0] == {"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2.0,
-                                 "gain_min_db": 15.0}
+    assert data["limits"][0] == {
+        "start_hz": 1e9,
+        "stop_hz": 2e9,
+        "nf_max_db": 2.0,
+        "gain_min_db": 15.0,
+    }
     assert data["limits"][1]["gain_max_db"] == 25.0
     assert data["bands"][1]["flatness"]["value"] == pytest.approx(0.0)
 
@@ -284,20 +328,32 @@ def test_verdict_dict_has_the_stored_shape():
 # --------------------------------------------------------------------------- bad masks
 
 
-@pytest.mark.parametrize("bands, field", [
-    ([{"start_hz": 2e9, "stop_hz": 1e9, "nf_max_db": 2.0}], "limits.bands[0].stop_hz"),
-    ([{"start_hz": 1e9, "stop_hz": 1e9, "nf_max_db": 2.0}], "limits.bands[0].stop_hz"),
-    ([{"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2.0},
-      {"start_hz": 1e9, "stop_hz": 2e9}], "limits.bands[1]"),
-    ([{"start_hz": 1e9, "stop_hz": 2e9, "gain_min_db": 20.0, "gain_max_db": 10.0}],
-     "limits.bands[0].gain_max_db"),
-    ([{"start_hz": 1e9, "stop_hz": 2e9, "flatness_db": 0.0}], "limits.bands[0].flatness_db"),
-    ([{"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": float("nan")}],
-     "limits.bands[0].nf_max_db"),
-    ([{"start_hz": -1.0, "stop_hz": 2e9, "nf_max_db": 2.0}], "limits.bands[0].start_hz"),
-    ([{"start_hz": 1e9, "stop_hz": 2e9, "nf_max": 2.0}], "limits.bands[0].nf_max"),
-    ([], "limits.bands"),
-])
+@pytest.mark.parametrize(
+    "bands, field",
+    [
+        ([{"start_hz": 2e9, "stop_hz": 1e9, "nf_max_db": 2.0}], "limits.bands[0].stop_hz"),
+        ([{"start_hz": 1e9, "stop_hz": 1e9, "nf_max_db": 2.0}], "limits.bands[0].stop_hz"),
+        (
+            [
+                {"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2.0},
+                {"start_hz": 1e9, "stop_hz": 2e9},
+            ],
+            "limits.bands[1]",
+        ),
+        (
+            [{"start_hz": 1e9, "stop_hz": 2e9, "gain_min_db": 20.0, "gain_max_db": 10.0}],
+            "limits.bands[0].gain_max_db",
+        ),
+        ([{"start_hz": 1e9, "stop_hz": 2e9, "flatness_db": 0.0}], "limits.bands[0].flatness_db"),
+        (
+            [{"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": float("nan")}],
+            "limits.bands[0].nf_max_db",
+        ),
+        ([{"start_hz": -1.0, "stop_hz": 2e9, "nf_max_db": 2.0}], "limits.bands[0].start_hz"),
+        ([{"start_hz": 1e9, "stop_hz": 2e9, "nf_max": 2.0}], "limits.bands[0].nf_max"),
+        ([], "limits.bands"),
+    ],
+)
 def test_bad_masks_name_the_key(bands, field):
     with pytest.raises(InputError) as info:
         LimitMask.from_dict({"bands": bands})
@@ -306,8 +362,12 @@ def test_bad_masks_name_the_key(bands, field):
 
 def test_bad_mask_tables():
     with pytest.raises(InputError) as info:
-        LimitMask.from_dict({"bands": [{"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2}],
-                             "decision_rule": "lenient"})
+        LimitMask.from_dict(
+            {
+                "bands": [{"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2}],
+                "decision_rule": "lenient",
+            }
+        )
     assert info.value.field == "limits.decision_rule"
     with pytest.raises(InputError, match="must be a table"):
         LimitMask.from_dict([1, 2])  # type: ignore[arg-type]

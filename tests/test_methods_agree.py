@@ -16,8 +16,8 @@ import scipy.constants
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from noisebench.density import NoiseDensity
-from noisebench.methods import calibrate_point, gain_method_point, y_factor_point
+from noisebench.science.density import NoiseDensity
+from noisebench.science.methods import calibrate_point, gain_method_point, y_factor_point
 
 K = scipy.constants.k
 T0 = 290.0
@@ -28,11 +28,18 @@ def _density(n: float) -> NoiseDensity:
 
 
 @settings(max_examples=300, deadline=None)
-@given(nf_db=st.floats(0.3, 15.0), gain_db=st.floats(5.0, 40.0), enr_db=st.floats(5.0, 25.0),
-       analyzer_nf_db=st.floats(5.0, 25.0), tc_k=st.floats(280.0, 310.0),
-       input_loss_db=st.sampled_from([0.0, 0.4]), output_loss_db=st.sampled_from([0.0, 1.2]))
-def test_gain_method_and_y_factor_agree(nf_db, gain_db, enr_db, analyzer_nf_db, tc_k,
-                                        input_loss_db, output_loss_db):
+@given(
+    nf_db=st.floats(0.3, 15.0),
+    gain_db=st.floats(5.0, 40.0),
+    enr_db=st.floats(5.0, 25.0),
+    analyzer_nf_db=st.floats(5.0, 25.0),
+    tc_k=st.floats(280.0, 310.0),
+    input_loss_db=st.sampled_from([0.0, 0.4]),
+    output_loss_db=st.sampled_from([0.0, 1.2]),
+)
+def test_gain_method_and_y_factor_agree(
+    nf_db, gain_db, enr_db, analyzer_nf_db, tc_k, input_loss_db, output_loss_db
+):
     te_dut = T0 * (10 ** (nf_db / 10) - 1)
     g_dut = 10 ** (gain_db / 10)
     t_sa = T0 * (10 ** (analyzer_nf_db / 10) - 1)
@@ -48,13 +55,27 @@ def test_gain_method_and_y_factor_agree(nf_db, gain_db, enr_db, analyzer_nf_db, 
         return K * (source_k + t_sa)
 
     losses = dict(input_loss_db=input_loss_db, output_loss_db=output_loss_db)
-    gain = gain_method_point(_density(at_analyzer(tc_k)), 10 * math.log10(g_path),
-                             floor=_density(at_analyzer(tc_k, through_dut=False)),
-                             source_temperature_k=tc_k, **losses)
-    cal = calibrate_point(_density(at_analyzer(th_k, False)), _density(at_analyzer(tc_k, False)),
-                          enr_db, cold_temperature_k=tc_k)
-    yf = y_factor_point(_density(at_analyzer(th_k)), _density(at_analyzer(tc_k)), enr_db,
-                        cold_temperature_k=tc_k, calibration=cal, **losses)
+    gain = gain_method_point(
+        _density(at_analyzer(tc_k)),
+        10 * math.log10(g_path),
+        floor=_density(at_analyzer(tc_k, through_dut=False)),
+        source_temperature_k=tc_k,
+        **losses,
+    )
+    cal = calibrate_point(
+        _density(at_analyzer(th_k, False)),
+        _density(at_analyzer(tc_k, False)),
+        enr_db,
+        cold_temperature_k=tc_k,
+    )
+    yf = y_factor_point(
+        _density(at_analyzer(th_k)),
+        _density(at_analyzer(tc_k)),
+        enr_db,
+        cold_temperature_k=tc_k,
+        calibration=cal,
+        **losses,
+    )
 
     assert gain.nf_db == pytest.approx(nf_db, abs=1e-8)
     assert yf.nf_db == pytest.approx(nf_db, abs=1e-8)

@@ -1,4 +1,4 @@
-"""noisebench.physics: thermal noise, conversions, Friis, losses, SSB/DSB, Planck factor.
+"""noisebench.science.physics: thermal noise, conversions, Friis, losses, SSB/DSB, Planck factor.
 
 Reference values are recomputed from the named formula or library; the rounded figures of
 /work/shared/reference.md are checked to the digits it prints.
@@ -15,8 +15,8 @@ import scipy.constants
 from hypothesis import given
 from hypothesis import strategies as st
 
-from noisebench import physics as ph
 from noisebench.errors import InputError
+from noisebench.science import physics as ph
 
 K = scipy.constants.k
 
@@ -46,8 +46,9 @@ def test_kt0b_over_bandwidths():
     expected = 10 * np.log10(scipy.constants.k * 290 * bandwidths / 1e-3)  # scipy.constants
     np.testing.assert_allclose(got, expected, rtol=0, atol=1e-12)
     # reference.md §1 table
-    np.testing.assert_allclose(got, [-173.9752, -163.9752, -143.9752, -133.9752, -113.9752],
-                               atol=5e-5)
+    np.testing.assert_allclose(
+        got, [-173.9752, -163.9752, -143.9752, -133.9752, -113.9752], atol=5e-5
+    )
 
 
 def test_kt_refuses_negative_temperature():
@@ -65,11 +66,12 @@ def test_nf_te_table():
     # Te = T0 (F - 1), F = 10^(NF/10) (IRE/IEEE Std 161; reference.md §2)
     np.testing.assert_allclose(te, 290.0 * (10 ** (NF_TABLE_DB / 10) - 1), rtol=1e-14)
     # reference.md §2 table, 3 decimals
-    np.testing.assert_allclose(te, [35.385, 75.088, 169.619, 288.626, 864.511, 2610.000],
-                               atol=5e-4)
-    np.testing.assert_allclose(ph.nf_db_to_factor(NF_TABLE_DB),
-                               [1.122018, 1.258925, 1.584893, 1.995262, 3.981072, 10.0],
-                               atol=5e-7)
+    np.testing.assert_allclose(te, [35.385, 75.088, 169.619, 288.626, 864.511, 2610.000], atol=5e-4)
+    np.testing.assert_allclose(
+        ph.nf_db_to_factor(NF_TABLE_DB),
+        [1.122018, 1.258925, 1.584893, 1.995262, 3.981072, 10.0],
+        atol=5e-7,
+    )
     np.testing.assert_allclose(ph.te_k_to_nf_db(te), NF_TABLE_DB, atol=1e-12)
 
 
@@ -86,7 +88,8 @@ def test_negative_noise_temperature_policy():
     with pytest.raises(InputError, match="te_k"):
         ph.te_k_to_nf_db(-5.0)
     assert ph.te_k_to_nf_db(-5.0, allow_negative=True) == pytest.approx(
-        10 * math.log10(1 - 5 / 290))
+        10 * math.log10(1 - 5 / 290)
+    )
     with pytest.raises(InputError, match="nf_db"):
         ph.nf_db_to_te_k(-0.1)
     # a noise factor <= 0 has no dB value, whatever the policy
@@ -96,11 +99,18 @@ def test_negative_noise_temperature_policy():
         ph.factor_to_nf_db(0.0, allow_negative=True)
 
 
-@pytest.mark.parametrize("func, arg", [
-    (ph.linear_to_db, 0.0), (ph.linear_to_db, -1.0), (ph.w_to_dbm, 0.0),
-    (ph.w_per_hz_to_dbm_per_hz, -1e-20), (ph.linear_to_db, float("nan")),
-    (ph.db_to_linear, float("inf")), (ph.dbm_to_w, float("nan")),
-])
+@pytest.mark.parametrize(
+    "func, arg",
+    [
+        (ph.linear_to_db, 0.0),
+        (ph.linear_to_db, -1.0),
+        (ph.w_to_dbm, 0.0),
+        (ph.w_per_hz_to_dbm_per_hz, -1e-20),
+        (ph.linear_to_db, float("nan")),
+        (ph.db_to_linear, float("inf")),
+        (ph.dbm_to_w, float("nan")),
+    ],
+)
 def test_conversions_refuse_bad_values(func, arg):
     with pytest.raises(InputError) as info:
         func(arg)
@@ -186,8 +196,8 @@ def test_friis_agrees_with_scikit_rf_noisy_cascade():
         a = _skrf_amplifier(freq, 20.0, 1.5)
         b = _skrf_amplifier(freq, 10.0, 8.0)
         c = _skrf_amplifier(freq, 15.0, 18.0)
-        f_skrf_2 = (a ** b).nf(50.0)  # scikit-rf returns the LINEAR noise factor
-        f_skrf_3 = (a ** b ** c).nf(50.0)
+        f_skrf_2 = (a**b).nf(50.0)  # scikit-rf returns the LINEAR noise factor
+        f_skrf_3 = (a**b**c).nf(50.0)
     ours_2 = ph.friis_noise_factor([10**0.15, 10**0.8], [100.0])
     ours_3 = ph.friis_noise_factor([10**0.15, 10**0.8, 10**1.8], [100.0, 10.0])
     # scikit-rf noisy two-port cascade; ecosystem.md: 1.66025318 dB for the 2-stage case
@@ -215,7 +225,8 @@ def test_input_loss_deembedding_example():
     # reference.md §3: F_DUT = 1 + (F_meas - F_L)/L gives 2.0000 dB at 290 K, 1.9897 dB at 300 K
     assert ph.factor_to_nf_db(ph.deembed_input_loss(f_meas, loss)) == pytest.approx(2.0, abs=5e-5)
     assert ph.factor_to_nf_db(ph.deembed_input_loss(f_meas, loss, 300.0)) == pytest.approx(
-        1.9897, abs=5e-5)
+        1.9897, abs=5e-5
+    )
     te = ph.deembed_input_loss_te_k(ph.factor_to_te_k(f_meas), loss, 300.0)
     assert te == pytest.approx(ph.factor_to_te_k(ph.deembed_input_loss(f_meas, loss, 300.0)))
 
@@ -230,7 +241,8 @@ def test_deembedding_inverts_the_cascade():
     assert ph.deembed_output_loss(f_out, g_dut, loss, tp) == pytest.approx(f_dut, rel=1e-14)
     te_out = ph.friis_te_k([ph.factor_to_te_k(f_dut), ph.passive_loss_te_k(loss, tp)], [g_dut])
     assert ph.deembed_output_loss_te_k(te_out, g_dut, loss, tp) == pytest.approx(
-        ph.factor_to_te_k(f_dut), rel=1e-13)
+        ph.factor_to_te_k(f_dut), rel=1e-13
+    )
     assert ph.deembed_gain(g_dut / loss / 10**0.1, loss, 10**0.1) == pytest.approx(g_dut)
 
 
@@ -285,7 +297,8 @@ def test_round_trip_db_linear(db):
 def test_round_trip_dbm(dbm):
     assert ph.w_to_dbm(ph.dbm_to_w(dbm)) == pytest.approx(dbm, abs=1e-11)
     assert ph.w_per_hz_to_dbm_per_hz(ph.dbm_per_hz_to_w_per_hz(dbm)) == pytest.approx(
-        dbm, abs=1e-11)
+        dbm, abs=1e-11
+    )
     assert ph.dbm_to_w(dbm) == pytest.approx(ph.dbm_per_hz_to_w_per_hz(dbm), rel=1e-15)
 
 
@@ -305,8 +318,7 @@ def test_round_trip_ssb_dsb(f, ratio):
     assert ph.dsb_from_ssb_te_k(ph.ssb_from_dsb_te_k(f, ratio), ratio) == pytest.approx(f)
 
 
-@given(st.lists(st.tuples(nf_db, st.floats(min_value=-10, max_value=40)), min_size=1,
-                max_size=6))
+@given(st.lists(st.tuples(nf_db, st.floats(min_value=-10, max_value=40)), min_size=1, max_size=6))
 def test_friis_factor_and_temperature_forms_agree(stages):
     factors = [10 ** (nf / 10) for nf, _ in stages]
     gains = [10 ** (g / 10) for _, g in stages]
@@ -315,8 +327,12 @@ def test_friis_factor_and_temperature_forms_agree(stages):
     assert te == pytest.approx(290 * (f - 1), rel=1e-9, abs=1e-9)
 
 
-@given(st.floats(min_value=1.0, max_value=10.0), st.floats(min_value=0.0, max_value=6.0),
-       temps, st.floats(min_value=-10, max_value=50))
+@given(
+    st.floats(min_value=1.0, max_value=10.0),
+    st.floats(min_value=0.0, max_value=6.0),
+    temps,
+    st.floats(min_value=-10, max_value=50),
+)
 def test_loss_deembedding_round_trip(f_dut, loss_db, tp, g_db):
     loss, g = 10 ** (loss_db / 10), 10 ** (g_db / 10)
     f_in = ph.friis_noise_factor([ph.passive_loss_factor(loss, tp), f_dut], [1 / loss])

@@ -8,21 +8,24 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from noisebench.acquisition import AveragingScale, Detector
+from noisebench.bench.acquisition import AveragingScale, Detector
 from noisebench.errors import InputError
-from noisebench.plan import (
+from noisebench.running.plan import (
     PlanError,
     load_plan,
     parse_plan,
     parse_sim_address,
     validate_plan_file,
 )
-from noisebench.point import Method
+from noisebench.science.point import Method
 
 
 def _base(**sections) -> dict:
-    plan = {"method": "y_factor", "bench": {"analyzer": "sim://demo-lna?seed=1"},
-            "sweep": {"freqs_hz": [1e9, 2e9]}}
+    plan = {
+        "method": "y_factor",
+        "bench": {"analyzer": "sim://demo-lna?seed=1"},
+        "sweep": {"freqs_hz": [1e9, 2e9]},
+    }
     plan.update(sections)
     return plan
 
@@ -43,12 +46,17 @@ def _write(tmp_path: Path, text: str, name: str = "plan.toml") -> Path:
 
 
 def test_several_problems_reported_at_once_with_key_paths():
-    data = _base(sweep={"segments": [
-        {"start_hz": 1e9, "stop_hz": 2e9, "points": 3},
-        {"freqs_hz": [1.5e9, -2.0]},
-        {"start_hz": 3e9, "stop_hz": 4e9, "points": 3, "rbw_hz": -1.0},
-        {"start_hz": 5e9},
-    ]}, corrections={"source_temperature_k": "hot"})
+    data = _base(
+        sweep={
+            "segments": [
+                {"start_hz": 1e9, "stop_hz": 2e9, "points": 3},
+                {"freqs_hz": [1.5e9, -2.0]},
+                {"start_hz": 3e9, "stop_hz": 4e9, "points": 3, "rbw_hz": -1.0},
+                {"start_hz": 5e9},
+            ]
+        },
+        corrections={"source_temperature_k": "hot"},
+    )
     data["bench"]["bogus"] = 1
     problems = _problems(data)
     assert problems == [
@@ -61,13 +69,17 @@ def test_several_problems_reported_at_once_with_key_paths():
 
 
 def test_nested_section_messages_carry_no_pydantic_prefix():
-    data = _base(uncertainty={"enr_db": {"expanded": 0.2}},
-                 limits={"bands": [{"start_hz": 1e9, "stop_hz": 0.5e9, "nf_max_db": 2.0}]})
+    data = _base(
+        uncertainty={"enr_db": {"expanded": 0.2}},
+        limits={"bands": [{"start_hz": 1e9, "stop_hz": 0.5e9, "nf_max_db": 2.0}]},
+    )
     problems = _problems(data)
-    assert any(p.startswith("uncertainty.enr_db: 'expanded' and 'k' go together")
-               for p in problems), problems
-    assert any(p.startswith("limits.bands[0].stop_hz: must be above start_hz")
-               for p in problems), problems
+    assert any(
+        p.startswith("uncertainty.enr_db: 'expanded' and 'k' go together") for p in problems
+    ), problems
+    assert any(p.startswith("limits.bands[0].stop_hz: must be above start_hz") for p in problems), (
+        problems
+    )
     assert not any("value error" in p.lower() for p in problems)
 
 
@@ -82,9 +94,15 @@ def test_plan_error_is_an_input_error_listing_every_problem():
 
 
 def test_cross_field_problems_after_schema_checks():
-    data = _base(sweep={"freqs_hz": [1e9, 2e9], "segments": [
-        {"start_hz": 1e9, "stop_hz": 2e9, "points": 2, "span_hz": 1e3},
-        {"freqs_hz": [3e9], "min_averages": 50_000}]})
+    data = _base(
+        sweep={
+            "freqs_hz": [1e9, 2e9],
+            "segments": [
+                {"start_hz": 1e9, "stop_hz": 2e9, "points": 2, "span_hz": 1e3},
+                {"freqs_hz": [3e9], "min_averages": 50_000},
+            ],
+        }
+    )
     data["method"] = "gain"
     assert _problems(data) == [
         "sweep.segments[0].span_hz: 1000 Hz is narrower than rbw_hz 1e+06 Hz "
@@ -106,38 +124,46 @@ def test_peak_detector_refused_for_noise():
 
 def test_gain_measure_needs_a_generator_and_y_factor_needs_a_source():
     (line,) = _problems(_base(method="gain", gain={"source": "measure"}))
-    assert line == ('gain.max_gain_db: is required with source = "measure" (it sets the '
-                    "generator level) (give the DUT's datasheet value)")
-    data = _base(method="gain", gain={"source": "measure", "max_gain_db": 30.0,
-                                      "dut_p1db_out_dbm": 10.0})
+    assert line == (
+        'gain.max_gain_db: is required with source = "measure" (it sets the '
+        "generator level) (give the DUT's datasheet value)"
+    )
+    data = _base(
+        method="gain", gain={"source": "measure", "max_gain_db": 30.0, "dut_p1db_out_dbm": 10.0}
+    )
     assert _problems(data) == [
         'bench.generator: gain source "measure" needs a generator (or use source = "file" '
-        '/ "constant")']
+        '/ "constant")'
+    ]
     data = _base(bench={"analyzer": "sim://demo-lna", "noise_source": {"drive": "none"}})
     (line,) = _problems(data)
     assert line.startswith("bench.noise_source.drive: the Y-factor method needs a noise source")
 
 
 def test_simulated_and_real_instruments_cannot_be_mixed():
-    data = _base(bench={"analyzer": "sim://demo-lna?seed=1",
-                        "generator": "TCPIP0::10.0.0.7::5025::SOCKET"})
+    data = _base(
+        bench={"analyzer": "sim://demo-lna?seed=1", "generator": "TCPIP0::10.0.0.7::5025::SOCKET"}
+    )
     (line,) = _problems(data)
-    assert line.startswith("bench.generator.resource: 'TCPIP0::10.0.0.7::5025::SOCKET' "
-                           "cannot be mixed")
+    assert line.startswith(
+        "bench.generator.resource: 'TCPIP0::10.0.0.7::5025::SOCKET' cannot be mixed"
+    )
 
 
 def test_bad_sim_address_named():
     data = _base(bench={"analyzer": "sim://demo-lna?seed=x"})
     assert _problems(data) == [
         "bench.analyzer.resource: seed 'x' in 'sim://demo-lna?seed=x' is not an integer "
-        "(e.g. sim://demo-lna?seed=1)"]
+        "(e.g. sim://demo-lna?seed=1)"
+    ]
 
 
 def test_real_bench_y_factor_needs_an_enr_table(tmp_path):
     data = _base(bench={"analyzer": "TCPIP0::127.0.0.1::5025::SOCKET"})
     assert _problems(data, base_dir=tmp_path) == [
         "enr.table: the Y-factor method needs the noise source's ENR table "
-        '(e.g. table = "enr_ns1234.csv")']
+        '(e.g. table = "enr_ns1234.csv")'
+    ]
     data["enr"] = {"table": "missing.csv"}
     (line,) = _problems(data, base_dir=tmp_path)
     assert line == f"enr.table: file {str(tmp_path / 'missing.csv')!r} not found"
@@ -147,8 +173,10 @@ def test_enr_table_must_cover_the_sweep(tmp_path):
     (tmp_path / "enr.csv").write_text("freq_hz,enr_db\n1e9,15.2\n1.5e9,15.1\n", encoding="utf-8")
     data = _base(enr={"table": "enr.csv"})
     (line,) = _problems(data, base_dir=tmp_path)
-    assert line == ("enr.table: enr.csv covers 1e+09-1.5e+09 Hz but the sweep has 1 point(s) "
-                    'outside it (first 2e+09 Hz); narrow the sweep or allow extrapolate = "clamp"')
+    assert line == (
+        "enr.table: enr.csv covers 1e+09-1.5e+09 Hz but the sweep has 1 point(s) "
+        'outside it (first 2e+09 Hz); narrow the sweep or allow extrapolate = "clamp"'
+    )
     data["enr"]["extrapolate"] = "clamp"
     assert parse_plan(data, base_dir=tmp_path).enr.extrapolate == "clamp"
 
@@ -156,11 +184,14 @@ def test_enr_table_must_cover_the_sweep(tmp_path):
 def test_loss_file_must_exist_and_losses_be_positive(tmp_path):
     data = _base(corrections={"input_loss": "cable.s2p", "output_loss": -0.5})
     problems = _problems(data, base_dir=tmp_path)
-    assert problems == ["corrections.output_loss: must be a finite loss >= 0 dB (got -0.5) "
-                        "(a loss is positive dB; an amplifier is not a loss)"]
+    assert problems == [
+        "corrections.output_loss: must be a finite loss >= 0 dB (got -0.5) "
+        "(a loss is positive dB; an amplifier is not a loss)"
+    ]
     data["corrections"]["output_loss"] = 0.5
     assert _problems(data, base_dir=tmp_path) == [
-        f"corrections.input_loss: file {str(tmp_path / 'cable.s2p')!r} not found"]
+        f"corrections.input_loss: file {str(tmp_path / 'cable.s2p')!r} not found"
+    ]
 
 
 def test_toml_syntax_error_is_one_line(tmp_path):
@@ -170,8 +201,9 @@ def test_toml_syntax_error_is_one_line(tmp_path):
     (line,) = info.value.problems
     assert line.startswith("not valid TOML:")
     assert validate_plan_file(path) == info.value.problems
-    assert validate_plan_file(tmp_path / "absent.toml")[0].endswith("cannot read (No such "
-                                                                    "file or directory)")
+    assert validate_plan_file(tmp_path / "absent.toml")[0].endswith(
+        "cannot read (No such file or directory)"
+    )
 
 
 # --------------------------------------------------------------------------- points
@@ -179,18 +211,28 @@ def test_toml_syntax_error_is_one_line(tmp_path):
 
 def test_linear_log_and_step_ranges():
     # a real analyzer (its range is not known to the plan), so the sweep may reach 50 GHz
-    data = _base(method="gain", gain={"source": "constant", "value_db": 20.0},
-                 bench={"analyzer": "TCPIP0::127.0.0.1::5025::SOCKET",
-                        "noise_source": {"drive": "none"}},
-                 sweep={"segments": [
-        {"start_hz": 1e9, "stop_hz": 2e9, "points": 5},
-        {"start_hz": 3e9, "stop_hz": 30e9, "points": 3, "spacing": "log"},
-        {"start_hz": 40e9, "stop_hz": 40.3e9, "step_hz": 0.1e9},
-        {"freqs_hz": [50e9, 45e9]},
-    ]})
+    data = _base(
+        method="gain",
+        gain={"source": "constant", "value_db": 20.0},
+        bench={"analyzer": "TCPIP0::127.0.0.1::5025::SOCKET", "noise_source": {"drive": "none"}},
+        sweep={
+            "segments": [
+                {"start_hz": 1e9, "stop_hz": 2e9, "points": 5},
+                {"start_hz": 3e9, "stop_hz": 30e9, "points": 3, "spacing": "log"},
+                {"start_hz": 40e9, "stop_hz": 40.3e9, "step_hz": 0.1e9},
+                {"freqs_hz": [50e9, 45e9]},
+            ]
+        },
+    )
     freqs = parse_plan(data).freqs_hz()
-    expected = np.concatenate([np.linspace(1e9, 2e9, 5), np.geomspace(3e9, 30e9, 3),
-                               40e9 + 0.1e9 * np.arange(4), [45e9, 50e9]])
+    expected = np.concatenate(
+        [
+            np.linspace(1e9, 2e9, 5),
+            np.geomspace(3e9, 30e9, 3),
+            40e9 + 0.1e9 * np.arange(4),
+            [45e9, 50e9],
+        ]
+    )
     np.testing.assert_allclose(freqs, expected, rtol=1e-15)
     assert np.all(np.diff(freqs) > 0)
     # log spacing: constant ratio
@@ -198,10 +240,23 @@ def test_linear_log_and_step_ranges():
 
 
 def test_segment_overrides_merge_with_plan_defaults():
-    data = _base(acquisition={"rbw_hz": 3e6, "span_hz": 20e6, "target_u_nf_db": 0.1},
-                 sweep={"freqs_hz": [0.5e9], "segments": [
-                     {"start_hz": 1e9, "stop_hz": 2e9, "points": 2, "rbw_hz": 1e6,
-                      "span_hz": 5e6, "detector": "sample", "averaging_scale": "log_power"}]})
+    data = _base(
+        acquisition={"rbw_hz": 3e6, "span_hz": 20e6, "target_u_nf_db": 0.1},
+        sweep={
+            "freqs_hz": [0.5e9],
+            "segments": [
+                {
+                    "start_hz": 1e9,
+                    "stop_hz": 2e9,
+                    "points": 2,
+                    "rbw_hz": 1e6,
+                    "span_hz": 5e6,
+                    "detector": "sample",
+                    "averaging_scale": "log_power",
+                }
+            ],
+        },
+    )
     points = parse_plan(data).points()
     assert [p.segment for p in points] == [None, 0, 0]
     plain, seg = points[0].policy, points[1].policy
@@ -212,24 +267,32 @@ def test_segment_overrides_merge_with_plan_defaults():
 
 
 def test_range_forms_are_exclusive():
-    problems = _problems(_base(sweep={"segments": [
-        {"freqs_hz": [1e9], "start_hz": 1e9, "stop_hz": 2e9, "points": 2},
-        {"start_hz": 1e9, "stop_hz": 2e9},
-        {"start_hz": 2e9, "stop_hz": 1e9, "points": 3},
-        {"start_hz": 1e9, "stop_hz": 2e9, "step_hz": 1e8, "spacing": "log"},
-    ]}))
+    problems = _problems(
+        _base(
+            sweep={
+                "segments": [
+                    {"freqs_hz": [1e9], "start_hz": 1e9, "stop_hz": 2e9, "points": 2},
+                    {"start_hz": 1e9, "stop_hz": 2e9},
+                    {"start_hz": 2e9, "stop_hz": 1e9, "points": 3},
+                    {"start_hz": 1e9, "stop_hz": 2e9, "step_hz": 1e8, "spacing": "log"},
+                ]
+            }
+        )
+    )
     assert problems == [
         "sweep.segments[0].freqs_hz: give either freqs_hz or start_hz/stop_hz, not both",
         "sweep.segments[1].points: a range needs points or step_hz (e.g. points = 51)",
         "sweep.segments[2].stop_hz: 1e+09 Hz is below start_hz 2e+09 Hz (swap them)",
-        'sweep.segments[3].step_hz: a fixed step needs linear spacing (use points with '
+        "sweep.segments[3].step_hz: a fixed step needs linear spacing (use points with "
         'spacing = "log")',
     ]
 
 
 def test_full_plan_file_round_trip(tmp_path):
     (tmp_path / "enr.csv").write_text("freq_hz,enr_db\n1e8,15.0\n1e10,14.0\n", encoding="utf-8")
-    path = _write(tmp_path, """
+    path = _write(
+        tmp_path,
+        """
         method = "y_factor"
         operator = "R. Example"
         [dut]
@@ -244,7 +307,8 @@ def test_full_plan_file_round_trip(tmp_path):
         [corrections]
         source_temperature_k = 296.5
         input_loss = 0.3
-    """)
+    """,
+    )
     plan = load_plan(path)
     assert plan.method is Method.Y_FACTOR
     assert plan.dut.id == "LNA-0007"
@@ -272,11 +336,15 @@ def test_examples_validate():
 
 
 def test_points_outside_the_simulated_analyzer_range_are_refused_before_the_run():
-    # demo-lna's analyzer tunes 9 kHz .. 7.5 GHz (sims/scenarios/demo-lna.toml)
+    # demo-lna's analyzer tunes 9 kHz .. 7.5 GHz (noisebench/sims/scenarios/demo-lna.toml)
     data = _base(sweep={"freqs_hz": [1e9, 7.6e9, 10e9]})
     problems = _problems(data)
-    assert any(p.startswith("sweep: 2 point(s) (7.6e+09, 1e+10 Hz) with their span fall "
-                            "outside the simulated analyzer's range 9000..7.5e+09 Hz")
-               for p in problems), problems
+    assert any(
+        p.startswith(
+            "sweep: 2 point(s) (7.6e+09, 1e+10 Hz) with their span fall "
+            "outside the simulated analyzer's range 9000..7.5e+09 Hz"
+        )
+        for p in problems
+    ), problems
     edge = _base(sweep={"freqs_hz": [7.5e9 - 4e6]}, acquisition={"span_hz": 10e6})
     assert any("outside the simulated analyzer's range" in p for p in _problems(edge))

@@ -20,7 +20,7 @@ import pytest
 import scipy.constants
 
 from noisebench.errors import InputError
-from noisebench.plots import (
+from noisebench.results.plots import (
     DEFAULT_DPI,
     DENSE_SWEEP_POINTS,
     DENSITY_STYLE,
@@ -47,8 +47,7 @@ from noisebench.plots import (
     to_png,
     use_log_axis,
 )
-from noisebench.point import Method, PointFlag, PointResult
-from noisebench.report import (
+from noisebench.results.report import (
     DETAIL_ROWS_MAX,
     SAFETY_NOTE,
     label,
@@ -57,7 +56,8 @@ from noisebench.report import (
     verdict_html,
     write_report,
 )
-from noisebench.results import FLAG_DESCRIPTIONS, RunInfo, RunRecord, RunWriter, load_run
+from noisebench.results.store import FLAG_DESCRIPTIONS, RunInfo, RunRecord, RunWriter, load_run
+from noisebench.science.point import Method, PointFlag, PointResult
 
 T0_K = 290.0
 KT0_W_PER_HZ = scipy.constants.k * T0_K  # reference.md §1 (scipy.constants)
@@ -66,51 +66,134 @@ NASTY = '<script>alert("x")</script> & co'
 CONTRIBUTION_NAMES = ("ENR", "jitter <hot>")
 
 
-def make_record(n: int = 12, *, start_hz: float = 10e6, stop_hz: float = 6e9,
-                budgets: bool = True, verdict: bool = True, gain: bool = True,
-                dut_id: str = "LNA-7", contributions: int = 2) -> RunRecord:
+def make_record(
+    n: int = 12,
+    *,
+    start_hz: float = 10e6,
+    stop_hz: float = 6e9,
+    budgets: bool = True,
+    verdict: bool = True,
+    gain: bool = True,
+    dut_id: str = "LNA-7",
+    contributions: int = 2,
+) -> RunRecord:
     freqs = np.geomspace(start_hz, stop_hz, n)
     points, budget_list, verdicts = [], [], []
     for i, freq in enumerate(freqs):
         nf_db = 1.0 + 0.1 * i
-        points.append(PointResult(
-            freq_hz=float(freq), method=Method.Y_FACTOR, nf_db=nf_db,
-            te_k=T0_K * (10 ** (nf_db / 10) - 1), u_nf_db=0.03 + 0.001 * i, u_te_k=2.0,
-            gain_db=(20.0 - 0.1 * i) if gain else None, u_gain_db=0.04 if gain else None,
-            y_db=12.0, enr_db=15.0, floor_margin_db=16.0, floor_correction_db=0.12,
-            averages=32, instrument_time_s=0.1,
-            densities_w_per_hz={"hot": KT0_W_PER_HZ * 3000, "cold": KT0_W_PER_HZ},
-            flags=[PointFlag.EXCESS_SCATTER] if i == 3 else []))
+        points.append(
+            PointResult(
+                freq_hz=float(freq),
+                method=Method.Y_FACTOR,
+                nf_db=nf_db,
+                te_k=T0_K * (10 ** (nf_db / 10) - 1),
+                u_nf_db=0.03 + 0.001 * i,
+                u_te_k=2.0,
+                gain_db=(20.0 - 0.1 * i) if gain else None,
+                u_gain_db=0.04 if gain else None,
+                y_db=12.0,
+                enr_db=15.0,
+                floor_margin_db=16.0,
+                floor_correction_db=0.12,
+                averages=32,
+                instrument_time_s=0.1,
+                densities_w_per_hz={"hot": KT0_W_PER_HZ * 3000, "cold": KT0_W_PER_HZ},
+                flags=[PointFlag.EXCESS_SCATTER] if i == 3 else [],
+            )
+        )
         U = 0.2 + 0.01 * i
-        lines = [{"name": "ENR", "u": 0.1, "unit": "dB", "sensitivity": 0.99,
-                  "contribution_db": 0.099, "distribution": "normal"},
-                 {"name": "jitter <hot>", "u": 0.01, "unit": "1", "sensitivity": -4.6,
-                  "contribution_db": -0.046, "distribution": "normal"}]
-        lines += [{"name": f"small term {j}", "u": 0.01, "unit": "dB", "sensitivity": 1.0,
-                   "contribution_db": 0.002 * (j + 1) * (1 + 0.01 * i),
-                   "distribution": "rectangular"} for j in range(contributions - 2)]
-        budget_list.append({"freq_hz": float(freq), "contributions": lines,
-                            "u_combined_db": U / 2, "k": 2.0, "U_expanded_db": U,
-                            "method": "gum"})
+        lines = [
+            {
+                "name": "ENR",
+                "u": 0.1,
+                "unit": "dB",
+                "sensitivity": 0.99,
+                "contribution_db": 0.099,
+                "distribution": "normal",
+            },
+            {
+                "name": "jitter <hot>",
+                "u": 0.01,
+                "unit": "1",
+                "sensitivity": -4.6,
+                "contribution_db": -0.046,
+                "distribution": "normal",
+            },
+        ]
+        lines += [
+            {
+                "name": f"small term {j}",
+                "u": 0.01,
+                "unit": "dB",
+                "sensitivity": 1.0,
+                "contribution_db": 0.002 * (j + 1) * (1 + 0.01 * i),
+                "distribution": "rectangular",
+            }
+            for j in range(contributions - 2)
+        ]
+        budget_list.append(
+            {
+                "freq_hz": float(freq),
+                "contributions": lines,
+                "u_combined_db": U / 2,
+                "k": 2.0,
+                "U_expanded_db": U,
+                "method": "gum",
+            }
+        )
         word = "fail" if nf_db - U > 1.6 else ("pass" if nf_db + U <= 1.6 else "indeterminate")
-        verdicts.append({"freq_hz": float(freq), "verdict": word, "limit": 1.6,
-                         "U_gain_db": 0.08 if gain else None,
-                         "checks": [{"quantity": "nf_db", "kind": "max", "limit": 1.6,
-                                     "value": nf_db, "U": U, "verdict": word, "band": 0,
-                                     "margin_db": 1.6 - nf_db, "note": None}]})
-    info = RunInfo(run_id="run-42", method=Method.Y_FACTOR, dut_id=dut_id, operator="kim & lee",
-                   identities={"analyzer": "Example,SA<1>,0001,1.0"},
-                   versions={"noisebench": "0.1.0", "numpy": np.__version__},
-                   calibration={"measured_at": "2025-01-01T00:00:00Z",
-                                "settings": {"rbw_hz": 1e6, "detector": "rms"},
-                                "points": [{"freq_hz": 1e9, "te2_k": 4306.19}]},
-                   applied_settings=[{"rbw_hz": 1e6, "detector": "rms", "averages": 32}],
-                   plan={"dut": {"id": dut_id}}, notes={"fixture": "<b>bold</b>"})
+        verdicts.append(
+            {
+                "freq_hz": float(freq),
+                "verdict": word,
+                "limit": 1.6,
+                "U_gain_db": 0.08 if gain else None,
+                "checks": [
+                    {
+                        "quantity": "nf_db",
+                        "kind": "max",
+                        "limit": 1.6,
+                        "value": nf_db,
+                        "U": U,
+                        "verdict": word,
+                        "band": 0,
+                        "margin_db": 1.6 - nf_db,
+                        "note": None,
+                    }
+                ],
+            }
+        )
+    info = RunInfo(
+        run_id="run-42",
+        method=Method.Y_FACTOR,
+        dut_id=dut_id,
+        operator="kim & lee",
+        identities={"analyzer": "Example,SA<1>,0001,1.0"},
+        versions={"noisebench": "0.1.0", "numpy": np.__version__},
+        calibration={
+            "measured_at": "2025-01-01T00:00:00Z",
+            "settings": {"rbw_hz": 1e6, "detector": "rms"},
+            "points": [{"freq_hz": 1e9, "te2_k": 4306.19}],
+        },
+        applied_settings=[{"rbw_hz": 1e6, "detector": "rms", "averages": 32}],
+        plan={"dut": {"id": dut_id}},
+        notes={"fixture": "<b>bold</b>"},
+    )
     return RunRecord(
-        info=info, points=points, budgets=budget_list if budgets else [],
-        verdict={"unit": "fail", "rule": "guarded", "points": verdicts,
-                 "limits": [{"start_hz": start_hz, "stop_hz": stop_hz, "nf_max_db": 1.6,
-                             "gain_min_db": 18.0}]} if verdict else None)
+        info=info,
+        points=points,
+        budgets=budget_list if budgets else [],
+        verdict={
+            "unit": "fail",
+            "rule": "guarded",
+            "points": verdicts,
+            "limits": [
+                {"start_hz": start_hz, "stop_hz": stop_hz, "nf_max_db": 1.6, "gain_min_db": 18.0}
+            ],
+        }
+        if verdict
+        else None,
+    )
 
 
 def png_size(data: bytes) -> tuple[int, int]:
@@ -133,8 +216,9 @@ def tick_labels(axes, which: str = "major") -> list[str]:
     to_png(axes.figure, dpi=30)
     low, high = sorted(axes.get_xlim())
     ticks = axes.xaxis.get_major_ticks() if which == "major" else axes.xaxis.get_minor_ticks()
-    return [t.label1.get_text() for t in ticks
-            if low <= t.get_loc() <= high and t.label1.get_visible()]
+    return [
+        t.label1.get_text() for t in ticks if low <= t.get_loc() <= high and t.label1.get_visible()
+    ]
 
 
 @pytest.fixture(scope="module")
@@ -151,8 +235,12 @@ def plot_files(record, tmp_path_factory) -> list[Path]:
 
 
 def test_plot_run_writes_valid_pngs_of_sensible_size(plot_files):
-    assert [p.name for p in plot_files] == ["noise_figure.png", "gain.png", "densities.png",
-                                            "uncertainty.png"]
+    assert [p.name for p in plot_files] == [
+        "noise_figure.png",
+        "gain.png",
+        "densities.png",
+        "uncertainty.png",
+    ]
     sizes = [s * DEFAULT_DPI for s in FIGURE_SIZE_IN]
     for path in plot_files:
         data = path.read_bytes()
@@ -163,14 +251,21 @@ def test_plot_run_writes_valid_pngs_of_sensible_size(plot_files):
             assert got in (math.floor(want), math.ceil(want)), (got, want)
         assert 10_000 < len(data) < 1_000_000
         import matplotlib.image
+
         pixels = matplotlib.image.imread(path)
         assert pixels[..., :3].std() > 0.05  # something drawn, not a blank canvas
 
 
 def test_all_figures_share_one_axes_frame_so_frequency_axes_line_up(record):
-    frames = {tuple(np.round(figure.axes[0].get_position().bounds, 6))
-              for figure in (nf_figure(record), gain_figure(record), densities_figure(record),
-                             budget_figure(record))}
+    frames = {
+        tuple(np.round(figure.axes[0].get_position().bounds, 6))
+        for figure in (
+            nf_figure(record),
+            gain_figure(record),
+            densities_figure(record),
+            budget_figure(record),
+        )
+    }
     assert len(frames) == 1
 
 
@@ -178,8 +273,9 @@ def test_nf_plot_shows_limit_lines_and_verdict_markers_only_when_present(plot_fi
     assert colour_pixels(plot_files[0].read_bytes(), VERDICT_STYLE["fail"][0]) > 50
     axes = nf_figure(record).axes[0]
     (limit,) = [c for c in axes.collections if c.get_label() == "NF limit (max)"]
-    assert np.allclose(limit.get_colors()[0][:3], [int(LIMIT[i:i + 2], 16) / 255
-                                                   for i in (1, 3, 5)])
+    assert np.allclose(
+        limit.get_colors()[0][:3], [int(LIMIT[i : i + 2], 16) / 255 for i in (1, 3, 5)]
+    )
     assert limit.get_linestyles()[0][1] is not None  # dashed, not solid
     assert "1.6 dB" in [t.get_text() for t in axes.texts]  # the value beside its line
     bare = nf_figure(make_record(verdict=False)).axes[0]
@@ -207,21 +303,37 @@ def test_verdict_markers_differ_in_shape_and_legend_counts_points(record):
 # paper's supplementary data, as also shipped by colorspacious).
 CVD_MATRICES = {
     "normal": np.eye(3),
-    "protanopia": np.array([[0.152286, 1.052583, -0.204868], [0.114503, 0.786281, 0.099216],
-                            [-0.003882, -0.048116, 1.051998]]),
-    "deuteranopia": np.array([[0.367322, 0.860646, -0.227968], [0.280085, 0.672501, 0.047413],
-                              [-0.011820, 0.042940, 0.968881]]),
-    "tritanopia": np.array([[1.255528, -0.076749, -0.178779], [-0.078411, 0.930809, 0.147602],
-                            [0.004733, 0.691367, 0.303900]]),
+    "protanopia": np.array(
+        [
+            [0.152286, 1.052583, -0.204868],
+            [0.114503, 0.786281, 0.099216],
+            [-0.003882, -0.048116, 1.051998],
+        ]
+    ),
+    "deuteranopia": np.array(
+        [
+            [0.367322, 0.860646, -0.227968],
+            [0.280085, 0.672501, 0.047413],
+            [-0.011820, 0.042940, 0.968881],
+        ]
+    ),
+    "tritanopia": np.array(
+        [
+            [1.255528, -0.076749, -0.178779],
+            [-0.078411, 0.930809, 0.147602],
+            [0.004733, 0.691367, 0.303900],
+        ]
+    ),
 }
 # IEC 61966-2-1 (sRGB): linear RGB -> CIE XYZ, D65 white
-SRGB_TO_XYZ = np.array([[0.4124, 0.3576, 0.1805], [0.2126, 0.7152, 0.0722],
-                        [0.0193, 0.1192, 0.9505]])
+SRGB_TO_XYZ = np.array(
+    [[0.4124, 0.3576, 0.1805], [0.2126, 0.7152, 0.0722], [0.0193, 0.1192, 0.9505]]
+)
 CATEGORICAL_DELTA_E = 20.0  # common practice: small marks need far more than the ~2.3 JND
 
 
 def _linear(hex_colour: str) -> np.ndarray:
-    srgb = np.array([int(hex_colour[i:i + 2], 16) / 255 for i in (1, 3, 5)])
+    srgb = np.array([int(hex_colour[i : i + 2], 16) / 255 for i in (1, 3, 5)])
     return np.where(srgb <= 0.04045, srgb / 12.92, ((srgb + 0.055) / 1.055) ** 2.4)  # IEC 61966-2-1
 
 
@@ -233,9 +345,11 @@ def _lab(linear_rgb: np.ndarray) -> np.ndarray:
 
 
 def _min_delta_e(colours: dict[str, str]) -> float:
-    return min(float(np.linalg.norm(_lab(m @ _linear(a)) - _lab(m @ _linear(b))))
-               for m in CVD_MATRICES.values()
-               for a, b in itertools.combinations(colours.values(), 2))
+    return min(
+        float(np.linalg.norm(_lab(m @ _linear(a)) - _lab(m @ _linear(b))))
+        for m in CVD_MATRICES.values()
+        for a, b in itertools.combinations(colours.values(), 2)
+    )
 
 
 def test_verdict_colours_stay_apart_for_colour_blind_readers():
@@ -293,9 +407,15 @@ def test_gain_bars_are_what_the_gain_limits_were_judged_with(record):
 
 
 def test_monte_carlo_intervals_give_asymmetric_bars(record):
-    budgets = [{**b, "method": "monte_carlo", "k": 1.9 + 0.01 * i,
-                "monte_carlo": {"interval_db": [p.nf_db - 0.1, p.nf_db + 0.3]}}
-               for i, (b, p) in enumerate(zip(record.budgets, record.points, strict=True))]
+    budgets = [
+        {
+            **b,
+            "method": "monte_carlo",
+            "k": 1.9 + 0.01 * i,
+            "monte_carlo": {"interval_db": [p.nf_db - 0.1, p.nf_db + 0.3]},
+        }
+        for i, (b, p) in enumerate(zip(record.budgets, record.points, strict=True))
+    ]
     bars, text = nf_error_bars(record.model_copy(update={"budgets": budgets}))
     assert np.allclose(bars[0], 0.1) and np.allclose(bars[1], 0.3)
     assert text == "expanded uncertainty U (k per point)"
@@ -393,9 +513,18 @@ def test_linear_axis_ticks_have_no_offset_or_exponent():
     assert len(axes.xaxis.get_minorticklocs()) > len(labels)  # minor ticks between
 
 
-@pytest.mark.parametrize(("value", "text"), [(0.5, "0.5"), (1.0, "1"), (20.0, "20"),
-                                             (5000.0, "5000"), (1e6, "1000000"),
-                                             (0.001, "0.001"), (0.30000000000000004, "0.3")])
+@pytest.mark.parametrize(
+    ("value", "text"),
+    [
+        (0.5, "0.5"),
+        (1.0, "1"),
+        (20.0, "20"),
+        (5000.0, "5000"),
+        (1e6, "1000000"),
+        (0.001, "0.001"),
+        (0.30000000000000004, "0.3"),
+    ],
+)
 def test_plain_number_never_uses_an_exponent(value, text):
     assert plain_number(value) == text
 
@@ -423,8 +552,10 @@ def test_budget_figure_draws_the_largest_terms_and_combines_the_rest():
     assert shown[:2] == list(CONTRIBUTION_NAMES) and len(shown) == 6 and len(rest) == 4
     assert set(rest) == {f"small term {j}" for j in range(4)}
     freq, rss = rss_series(series, rest)
-    expected = [np.sqrt(sum((0.002 * (j + 1) * (1 + 0.01 * i)) ** 2 for j in range(4)))
-                for i in range(len(many.points))]
+    expected = [
+        np.sqrt(sum((0.002 * (j + 1) * (1 + 0.01 * i)) ** 2 for j in range(4)))
+        for i in range(len(many.points))
+    ]
     assert np.allclose(freq, [p.freq_hz for p in many.points]) and np.allclose(rss, expected)
     axes = budget_figure(many).axes[0]
     labels = axes.get_legend_handles_labels()[1]
@@ -471,14 +602,17 @@ def _finished_run(folder: Path, record: RunRecord) -> RunRecord:
 def test_plots_false_draws_nothing_and_the_report_has_no_figures(tmp_path):
     folder = tmp_path / "run"
     _finished_run(folder, make_record(n=4))
-    code = ("import sys, json\n"
-            "from noisebench.results import load_run\n"
-            "from noisebench.sequencer import write_outputs\n"
-            f"folder = {str(folder)!r}\n"
-            "written = write_outputs(load_run(folder), folder, plots=False, report=True)\n"
-            "print(json.dumps(['matplotlib' in sys.modules, [p.name for p in written]]))\n")
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                         check=True, timeout=120)
+    code = (
+        "import sys, json\n"
+        "from noisebench.results.store import load_run\n"
+        "from noisebench.running.sequencer import write_outputs\n"
+        f"folder = {str(folder)!r}\n"
+        "written = write_outputs(load_run(folder), folder, plots=False, report=True)\n"
+        "print(json.dumps(['matplotlib' in sys.modules, [p.name for p in written]]))\n"
+    )
+    out = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=120
+    )
     imported, written = json.loads(out.stdout.strip().splitlines()[-1])
     assert imported is False and written == ["report.html"]
     assert not (folder / "plots").exists()
@@ -487,17 +621,15 @@ def test_plots_false_draws_nothing_and_the_report_has_no_figures(tmp_path):
 
 
 def test_plots_true_embeds_exactly_the_written_figures(tmp_path):
-    from noisebench.sequencer import write_outputs
+    from noisebench.running.sequencer import write_outputs
 
     folder = tmp_path / "run"
     stored = _finished_run(folder, make_record(n=4))
     written = write_outputs(stored, folder, plots=True, report=True)
     pngs = [p for p in written if p.suffix == ".png"]
     assert [p.name for p in written] == [p.name for p in pngs] + ["report.html"]
-    sources = [a["src"] for t, a in parse((folder / "report.html").read_text()).tags
-               if t == "img"]
-    assert [base64.b64decode(s.split(",", 1)[1]) for s in sources] == [p.read_bytes()
-                                                                          for p in pngs]
+    sources = [a["src"] for t, a in parse((folder / "report.html").read_text()).tags if t == "img"]
+    assert [base64.b64decode(s.split(",", 1)[1]) for s in sources] == [p.read_bytes() for p in pngs]
 
 
 # ----------------------------------------------------------------------------- report
@@ -522,9 +654,39 @@ def parse(text: str) -> TagCollector:
     return parser
 
 
-SAFE_TAGS = {"html", "head", "meta", "title", "style", "body", "header", "h1", "h2", "h3", "p",
-             "table", "thead", "tbody", "tr", "th", "td", "div", "span", "ul", "li", "strong",
-             "figure", "img", "figcaption", "details", "summary", "pre", "footer", "nav", "a"}
+SAFE_TAGS = {
+    "html",
+    "head",
+    "meta",
+    "title",
+    "style",
+    "body",
+    "header",
+    "h1",
+    "h2",
+    "h3",
+    "p",
+    "table",
+    "thead",
+    "tbody",
+    "tr",
+    "th",
+    "td",
+    "div",
+    "span",
+    "ul",
+    "li",
+    "strong",
+    "figure",
+    "img",
+    "figcaption",
+    "details",
+    "summary",
+    "pre",
+    "footer",
+    "nav",
+    "a",
+}
 
 
 def table_after(text: str, marker: str) -> list[list[str]]:
@@ -547,7 +709,7 @@ def test_report_is_one_self_contained_file(record, plot_files, tmp_path):
     for attrs, png_path in zip(images, plot_files, strict=True):
         prefix = "data:image/png;base64,"
         assert attrs["src"].startswith(prefix)
-        assert base64.b64decode(attrs["src"][len(prefix):]) == png_path.read_bytes()
+        assert base64.b64decode(attrs["src"][len(prefix) :]) == png_path.read_bytes()
     assert not any(key.startswith("on") for _, attrs in parsed.tags for key in attrs)
     links = [attrs["href"] for tag, attrs in parsed.tags if "href" in attrs]
     ids = {attrs["id"] for _, attrs in parsed.tags if "id" in attrs}
@@ -565,8 +727,9 @@ def test_report_opens_with_how_to_read_it(record):
     for word in ("pass", "fail", "indeterminate"):
         assert f"{VERDICT_SYMBOL[word]} {word}" in words
     bare = render_report(make_record(budgets=False, verdict=False), {})
-    words = html.unescape(re.sub(r"<[^>]+>", "", bare.split('<p class="howto">')[1]
-                                 .split("</p>")[0]))
+    words = html.unescape(
+        re.sub(r"<[^>]+>", "", bare.split('<p class="howto">')[1].split("</p>")[0])
+    )
     assert "no full budget" in words and "Decision rule" not in words
     partial = render_report(record.model_copy(update={"budgets": record.budgets[:-1]}), {})
     assert "The NF error bars are u stat. (k = 1): not every point has a budget." in partial
@@ -592,10 +755,10 @@ def test_report_lists_every_point_with_units_on_every_column(record):
     assert column["Frequency (MHz)"] == [f"{p.freq_hz / 1e6:.3f}" for p in record.points]
     assert column["NF (dB)"] == [f"{p.nf_db:.3f}" for p in record.points]
     assert column["Te (K)"] == [f"{p.te_k:.1f}" for p in record.points]
-    assert column["U (dB, k\u00a0=\u00a02)"] == [f"{b['U_expanded_db']:.3f}"
-                                                  for b in record.budgets]
-    assert column["u stat. (dB, k\u00a0=\u00a01)"] == [f"{p.u_nf_db:.3f}"
-                                                        for p in record.points]
+    assert column["U (dB, k\u00a0=\u00a02)"] == [
+        f"{b['U_expanded_db']:.3f}" for b in record.budgets
+    ]
+    assert column["u stat. (dB, k\u00a0=\u00a01)"] == [f"{p.u_nf_db:.3f}" for p in record.points]
     assert column["U gain (dB)"] == ["0.080"] * len(record.points)  # what the limits used
     assert column["NF margin (dB)"] == [f"{1.6 - p.nf_db:+.3f}" for p in record.points]
     assert column["2nd-stage corr. (dB)"] == ["0.120"] * len(record.points)
@@ -603,14 +766,16 @@ def test_report_lists_every_point_with_units_on_every_column(record):
 
 def _points_at(freqs_hz) -> RunRecord:
     base = make_record(n=len(freqs_hz), verdict=False, budgets=False)
-    points = [p.model_copy(update={"freq_hz": f}) for p, f in zip(base.points, freqs_hz,
-                                                                   strict=True)]
+    points = [
+        p.model_copy(update={"freq_hz": f}) for p, f in zip(base.points, freqs_hz, strict=True)
+    ]
     return base.model_copy(update={"points": points})
 
 
 def test_frequency_column_uses_one_unit_and_one_precision():
-    rows = table_after(render_report(_points_at([1.0e9, 1.25e9, 1.5e9, 2.0e9]), {}),
-                       '<table class="grid points">')
+    rows = table_after(
+        render_report(_points_at([1.0e9, 1.25e9, 1.5e9, 2.0e9]), {}), '<table class="grid points">'
+    )
     assert rows[0][0] == "Frequency (GHz)"
     assert [r[0] for r in rows[1:]] == ["1.00", "1.25", "1.50", "2.00"]
     # irrational (log-spaced) frequencies: 7 significant digits of the top one, no more
@@ -629,8 +794,9 @@ def test_verdicts_read_as_symbol_and_word(record):
     assert 'class="verdict v-fail"' in text and f"{VERDICT_SYMBOL['fail']} FAIL" in text
     rows = table_after(text, '<table class="grid points">')
     verdicts = [r[rows[0].index("Verdict")] for r in rows[1:]]
-    assert verdicts == [f"{VERDICT_SYMBOL[v['verdict']]} {v['verdict']}"
-                        for v in record.verdict["points"]]
+    assert verdicts == [
+        f"{VERDICT_SYMBOL[v['verdict']]} {v['verdict']}" for v in record.verdict["points"]
+    ]
     css_names = {"pass": "pass", "fail": "fail", "indeterminate": "indet", "not_judged": "nj"}
     for word, (colour, _) in VERDICT_STYLE.items():  # the figures' colours, not a second set
         assert f"--{css_names[word]}:{colour}" in text
@@ -641,8 +807,11 @@ def test_flags_are_explained_in_words_before_the_table(record):
     legend = text.index("Flags: what the codes")
     assert legend < text.index('<table class="grid points">')
     rows = table_after(text[legend:], "<table")
-    assert rows[1] == [PointFlag.EXCESS_SCATTER.value, "1",
-                       FLAG_DESCRIPTIONS[PointFlag.EXCESS_SCATTER]]
+    assert rows[1] == [
+        PointFlag.EXCESS_SCATTER.value,
+        "1",
+        FLAG_DESCRIPTIONS[PointFlag.EXCESS_SCATTER],
+    ]
     assert 'title="' + html.escape(FLAG_DESCRIPTIONS[PointFlag.EXCESS_SCATTER]) in text
 
 
@@ -682,7 +851,7 @@ def test_budget_section_summarises_the_sweep_and_details_the_worst_point(record)
     sweep = table_after(section, "<h3>Over the sweep</h3>")
     assert sweep[0][:2] == ["Input quantity", "Distribution"]
     assert [r[0] for r in sweep[1:]] == list(CONTRIBUTION_NAMES)  # largest first
-    shares = [100 * 0.099 ** 2 / (b["u_combined_db"]) ** 2 for b in record.budgets]
+    shares = [100 * 0.099**2 / (b["u_combined_db"]) ** 2 for b in record.budgets]
     assert sweep[1][-1] == f"{min(shares):.1f} to {max(shares):.1f}"
     worst = max(record.budgets, key=lambda b: b["U_expanded_db"])
     assert "At 6&nbsp;GHz, the point with the largest U" in section
@@ -696,12 +865,21 @@ def test_budget_section_summarises_the_sweep_and_details_the_worst_point(record)
 
 
 def test_report_budget_shows_distribution_omitted_terms_and_monte_carlo(record):
-    budgets = [{**b, "omitted": ["mismatch <no |Gamma|>"], "method": "monte_carlo",
-                "monte_carlo": {"trials": 100000, "coverage": 0.95, "gum_validated": True,
-                                "interval_db": [p.nf_db - 0.2, p.nf_db + 0.25]},
-                "contributions": [{**c, "distribution": "u_shaped"}
-                                  for c in b["contributions"]]}
-               for b, p in zip(record.budgets, record.points, strict=True)]
+    budgets = [
+        {
+            **b,
+            "omitted": ["mismatch <no |Gamma|>"],
+            "method": "monte_carlo",
+            "monte_carlo": {
+                "trials": 100000,
+                "coverage": 0.95,
+                "gum_validated": True,
+                "interval_db": [p.nf_db - 0.2, p.nf_db + 0.25],
+            },
+            "contributions": [{**c, "distribution": "u_shaped"} for c in b["contributions"]],
+        }
+        for b, p in zip(record.budgets, record.points, strict=True)
+    ]
     text = render_report(record.model_copy(update={"budgets": budgets}), {})
     assert "<th>Distribution</th>" in text and "<td>U-shaped (arcsine)</td>" in text
     assert "Not included (no data): mismatch &lt;no |Gamma|&gt;." in text
@@ -715,16 +893,35 @@ def test_report_budget_shows_distribution_omitted_terms_and_monte_carlo(record):
 def _big_record(n: int) -> RunRecord:
     """A y-factor-like run: 12 budget terms and one calibration entry per point."""
     base = make_record(n=n, contributions=12, start_hz=0.5e9, stop_hz=6e9)
-    entries = [{"kind": "system", "freqs_hz": [p.freq_hz],
-                "measured_at": f"2025-01-01T00:{i // 60 % 60:02d}:{i % 60:02d}Z",
-                "settings": {"rbw_hz": 1e6, "rbw_filter": {"kind": "gaussian"},
-                             "detector": "rms", "averaging_scale": "power",
-                             "averages": 4 + i % 7, "attenuation_db": 0.0, "preamp": False},
-                "cold_temperature_k": 296.5, "instrument_time_s": 0.25,
-                "summary": [{"freq_hz": p.freq_hz, "system_nf_db": 12.0 + 0.001 * i,
-                             "system_te_k": 4300.0 + i, "y_db": 4.7, "enr_db": 15.0,
-                             "averages": 4 + i % 7}]}
-               for i, p in enumerate(base.points)]
+    entries = [
+        {
+            "kind": "system",
+            "freqs_hz": [p.freq_hz],
+            "measured_at": f"2025-01-01T00:{i // 60 % 60:02d}:{i % 60:02d}Z",
+            "settings": {
+                "rbw_hz": 1e6,
+                "rbw_filter": {"kind": "gaussian"},
+                "detector": "rms",
+                "averaging_scale": "power",
+                "averages": 4 + i % 7,
+                "attenuation_db": 0.0,
+                "preamp": False,
+            },
+            "cold_temperature_k": 296.5,
+            "instrument_time_s": 0.25,
+            "summary": [
+                {
+                    "freq_hz": p.freq_hz,
+                    "system_nf_db": 12.0 + 0.001 * i,
+                    "system_te_k": 4300.0 + i,
+                    "y_db": 4.7,
+                    "enr_db": 15.0,
+                    "averages": 4 + i % 7,
+                }
+            ],
+        }
+        for i, p in enumerate(base.points)
+    ]
     info = base.info.model_copy(update={"calibration": {"entries": entries}})
     return base.model_copy(update={"info": info})
 
@@ -770,16 +967,34 @@ def test_report_leaves_out_sections_without_data(tmp_path):
 
 
 def test_skipped_points_simulated_bench_and_gain_measurement_are_shown(record):
-    notes = {"bench_kind": "simulated", "resources": {"analyzer": "sim://demo?seed=1"},
-             "skipped_points": [{"freq_hz": 7e9, "stage": "measurement",
-                                 "reason": "no DUT noise <left>"}],
-             "gain_measurement": {
-                 "generator_level_dbm": -43.0, "level_limited_by": "analyzer input",
-                 "rbw_hz": 1e3, "band_hz": 5e3, "plan": {"averages": 4, "freqs_hz": [1e9]},
-                 "points": [{"freq_hz": 1e9, "gain_db": 26.1, "u_gain_db": 0.02,
-                             "through_dbm": -43.2, "dut_dbm": -17.0, "snr_through_db": 80.9,
-                             "snr_dut_db": 92.9, "readings_dut_dbm": [-17.0, -17.1],
-                             "uncertainty_db": {"linearity": 0.02}, "flags": []}]}}
+    notes = {
+        "bench_kind": "simulated",
+        "resources": {"analyzer": "sim://demo?seed=1"},
+        "skipped_points": [
+            {"freq_hz": 7e9, "stage": "measurement", "reason": "no DUT noise <left>"}
+        ],
+        "gain_measurement": {
+            "generator_level_dbm": -43.0,
+            "level_limited_by": "analyzer input",
+            "rbw_hz": 1e3,
+            "band_hz": 5e3,
+            "plan": {"averages": 4, "freqs_hz": [1e9]},
+            "points": [
+                {
+                    "freq_hz": 1e9,
+                    "gain_db": 26.1,
+                    "u_gain_db": 0.02,
+                    "through_dbm": -43.2,
+                    "dut_dbm": -17.0,
+                    "snr_through_db": 80.9,
+                    "snr_dut_db": 92.9,
+                    "readings_dut_dbm": [-17.0, -17.1],
+                    "uncertainty_db": {"linearity": 0.02},
+                    "flags": [],
+                }
+            ],
+        },
+    }
     info = record.info.model_copy(update={"notes": notes})
     text = render_report(record.model_copy(update={"info": info}), {})
     assert '<span class="tag">simulated bench</span>' in text
@@ -795,8 +1010,7 @@ def test_skipped_points_simulated_bench_and_gain_measurement_are_shown(record):
 def test_report_plots_argument(record, plot_files, tmp_path):
     text = write_report(record, tmp_path / "r.html", plots=plot_files[:2]).read_text()
     assert text.count("data:image/png;base64,") == 2
-    assert write_report(record, tmp_path / "none.html", plots=[]).read_text().count(
-        "<img") == 0
+    assert write_report(record, tmp_path / "none.html", plots=[]).read_text().count("<img") == 0
     not_png = tmp_path / "x.png"
     not_png.write_text("hello")
     with pytest.raises(InputError) as err:
@@ -815,18 +1029,33 @@ def test_render_run_makes_figures_and_report_from_a_killed_run(record, tmp_path)
     path = render_run(folder)
     assert path == folder / "report.html"
     assert sorted(p.name for p in (folder / "plots").iterdir()) == [
-        "densities.png", "gain.png", "noise_figure.png", "uncertainty.png"]
+        "densities.png",
+        "gain.png",
+        "noise_figure.png",
+        "uncertainty.png",
+    ]
     text = path.read_text(encoding="utf-8")
     assert text.count("data:image/png;base64,") == 4
     assert "interrupted" in text and "rebuilt from the journal" in text
 
 
 def test_a_verdict_from_the_limits_module_is_rendered(record, tmp_path):
-    from noisebench.limits import LimitMask, judge
-    from noisebench.results import csv_rows
+    from noisebench.results.store import csv_rows
+    from noisebench.science.limits import LimitMask, judge
 
-    mask = LimitMask.from_dict({"bands": [{"start_hz": 10e6, "stop_hz": 1e9, "nf_max_db": 1.6,
-                                           "gain_min_db": 18.0, "name": "low <band>"}]})
+    mask = LimitMask.from_dict(
+        {
+            "bands": [
+                {
+                    "start_hz": 10e6,
+                    "stop_hz": 1e9,
+                    "nf_max_db": 1.6,
+                    "gain_min_db": 18.0,
+                    "name": "low <band>",
+                }
+            ]
+        }
+    )
     verdict = judge(record.points, record.budgets, mask)
     judged = record.model_copy(update={"verdict": verdict.to_dict()})
     assert judged.verdict["unit"] == verdict.unit.value
@@ -842,7 +1071,7 @@ def test_a_verdict_from_the_limits_module_is_rendered(record, tmp_path):
     rows = list(csv_rows(judged))
     inside = [r for r, p in zip(rows, judged.points, strict=True) if p.freq_hz <= 1e9]
     assert {r["limit"] for r in inside} == {"1.6"}
-    assert {r["verdict"] for r in rows[len(inside):]} == {"not_judged"}
+    assert {r["verdict"] for r in rows[len(inside) :]} == {"not_judged"}
     axes = nf_figure(judged).axes[0]
     (nf_limit,) = [c for c in axes.collections if c.get_label() == "NF limit (max)"]
     assert np.allclose(nf_limit.get_segments()[0], [[10.0, 1.6], [1000.0, 1.6]])  # MHz
@@ -850,24 +1079,42 @@ def test_a_verdict_from_the_limits_module_is_rendered(record, tmp_path):
 
 
 def test_calibration_store_entries_are_summarised(record):
-    from noisebench.acquisition import AcquisitionSettings, AveragingScale, Detector
-    from noisebench.calibration import CalibrationEntry, CalibrationKind, CalibrationStore
-    from noisebench.density import NoiseDensity
+    from noisebench.bench.acquisition import AcquisitionSettings, AveragingScale, Detector
+    from noisebench.running.calibration import CalibrationEntry, CalibrationKind, CalibrationStore
+    from noisebench.science.density import NoiseDensity
 
     freqs = [1e9, 2e9, 3e9]
-    settings_used = AcquisitionSettings(center_hz=2e9, span_hz=2e9, rbw_hz=1e6,
-                                        detector=Detector.RMS,
-                                        averaging_scale=AveragingScale.POWER, averages=16,
-                                        points=1001)
-    te2_k = 290 * (10 ** 1.2 - 1)  # analyzer NF 12 dB, reference.md §5
-    densities = {name: [NoiseDensity(freq_hz=f, density_w_per_hz=scipy.constants.k * t,
-                                     u_density_w_per_hz=1e-22, settings=settings_used)
-                        for f in freqs] for name, t in (("hot", 9460.6 + te2_k),
-                                                        ("cold", 290 + te2_k))}
-    entry = CalibrationEntry(kind=CalibrationKind.SYSTEM, settings=settings_used,
-                             freqs_hz=freqs, densities=densities, cold_temperature_k=296.5,
-                             instrument_time_s=1.25,
-                             summary=[{"freq_hz": f, "system_te_k": te2_k} for f in freqs])
+    settings_used = AcquisitionSettings(
+        center_hz=2e9,
+        span_hz=2e9,
+        rbw_hz=1e6,
+        detector=Detector.RMS,
+        averaging_scale=AveragingScale.POWER,
+        averages=16,
+        points=1001,
+    )
+    te2_k = 290 * (10**1.2 - 1)  # analyzer NF 12 dB, reference.md §5
+    densities = {
+        name: [
+            NoiseDensity(
+                freq_hz=f,
+                density_w_per_hz=scipy.constants.k * t,
+                u_density_w_per_hz=1e-22,
+                settings=settings_used,
+            )
+            for f in freqs
+        ]
+        for name, t in (("hot", 9460.6 + te2_k), ("cold", 290 + te2_k))
+    }
+    entry = CalibrationEntry(
+        kind=CalibrationKind.SYSTEM,
+        settings=settings_used,
+        freqs_hz=freqs,
+        densities=densities,
+        cold_temperature_k=296.5,
+        instrument_time_s=1.25,
+        summary=[{"freq_hz": f, "system_te_k": te2_k} for f in freqs],
+    )
     store = CalibrationStore([entry])
     info = record.info.model_copy(update={"calibration": store.to_dict()})
     text = render_report(record.model_copy(update={"info": info}), {})
@@ -881,18 +1128,28 @@ def test_calibration_store_entries_are_summarised(record):
     assert "u_density_w_per_hz" not in section  # raw densities stay in results.json
 
 
-@pytest.mark.parametrize(("key", "text"), [("system_nf_db", "System NF (dB)"),
-                                           ("u_system_te_k", "u system Te (K)"),
-                                           ("floor_dbm_per_hz", "Floor (dBm/Hz)"),
-                                           ("start_hz", "Start"), ("points", "Trace points"),
-                                           ("sweep_time_s", "Sweep time (s)")])
+@pytest.mark.parametrize(
+    ("key", "text"),
+    [
+        ("system_nf_db", "System NF (dB)"),
+        ("u_system_te_k", "u system Te (K)"),
+        ("floor_dbm_per_hz", "Floor (dBm/Hz)"),
+        ("start_hz", "Start"),
+        ("points", "Trace points"),
+        ("sweep_time_s", "Sweep time (s)"),
+    ],
+)
 def test_field_names_become_labels_with_units(key, text):
     assert label(key) == text
 
 
 def test_importing_the_store_plots_and_report_does_not_load_matplotlib():
-    code = ("import sys, noisebench.results, noisebench.plots, noisebench.report; "
-            "print('matplotlib' in sys.modules)")
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                         check=True, timeout=60)
+    code = (
+        "import sys, noisebench.results.store, noisebench.results.plots, "
+        "noisebench.results.report; "
+        "print('matplotlib' in sys.modules)"
+    )
+    out = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=60
+    )
     assert out.stdout.strip() == "False"

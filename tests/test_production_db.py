@@ -14,25 +14,31 @@ import pytest
 from _postgres import temporary_postgres
 from _production import FREQS_HZ, exact_sim, session_on, small_plan
 
-from noisebench.calibration import CalibrationStore
-from noisebench.database import ResultsDatabase
-from noisebench.dbcli import DB_ENV, register
 from noisebench.errors import InputError
-from noisebench.plan import PlanError, parse_plan
-from noisebench.point import Method, PointResult
-from noisebench.production import (
+from noisebench.frontends.dbcli import DB_ENV, register
+from noisebench.frontends.station import Station, StationSettings, UnitVariation, units_from_lines
+from noisebench.results.database import ResultsDatabase
+from noisebench.results.production import (
     INCOMPLETE_NOTE,
     apply_budgets_and_verdict,
     failing_points,
     plan_for_frequencies,
 )
-from noisebench.results import load_run
-from noisebench.sequencer import Sequencer
-from noisebench.station import Station, StationSettings, UnitVariation, units_from_lines
+from noisebench.results.store import load_run
+from noisebench.running.calibration import CalibrationStore
+from noisebench.running.plan import PlanError, parse_plan
+from noisebench.running.sequencer import Sequencer
+from noisebench.science.point import Method, PointResult
 
 VARIATION = UnitVariation(nf_sigma_db=0.2, weak_fraction=0.3, weak_nf_db=1.0)
-LOT_LINES = ["SN:PA1;LOT:LA;PN:LNA-2", "SN:PA2;LOT:LA;PN:LNA-2", "SN:PA3;LOT:LA;PN:LNA-2",
-             "SN:PB1;LOT:LB;PN:LNA-2", "SN:PB2;LOT:LB;PN:LNA-2", "SN:PA1;LOT:LA;PN:LNA-2"]
+LOT_LINES = [
+    "SN:PA1;LOT:LA;PN:LNA-2",
+    "SN:PA2;LOT:LA;PN:LNA-2",
+    "SN:PA3;LOT:LA;PN:LNA-2",
+    "SN:PB1;LOT:LB;PN:LNA-2",
+    "SN:PB2;LOT:LB;PN:LNA-2",
+    "SN:PA1;LOT:LA;PN:LNA-2",
+]
 
 
 # =========================================================================== station -> database
@@ -43,15 +49,26 @@ def bench(tmp_path_factory):
     """One simulated bench, plan and calibration store shared by the station runs below."""
     folder = tmp_path_factory.mktemp("production")
     plan = small_plan(folder)
-    return {"folder": folder, "plan": plan, "sim": (sim := exact_sim(seed=11)),
-            "session": session_on(sim, plan), "store": CalibrationStore()}
+    return {
+        "folder": folder,
+        "plan": plan,
+        "sim": (sim := exact_sim(seed=11)),
+        "session": session_on(sim, plan),
+        "store": CalibrationStore(),
+    }
 
 
 def _station_run(bench, name: str, database_url: str | None):
-    settings = StationSettings(station_id=f"st-{name}", operator="op", unit_variation=VARIATION,
-                               folder=bench["folder"] / name, database_url=database_url)
-    with Station(bench["plan"], settings, session=bench["session"],
-                 calibrations=bench["store"]) as station:
+    settings = StationSettings(
+        station_id=f"st-{name}",
+        operator="op",
+        unit_variation=VARIATION,
+        folder=bench["folder"] / name,
+        database_url=database_url,
+    )
+    with Station(
+        bench["plan"], settings, session=bench["session"], calibrations=bench["store"]
+    ) as station:
         summary = station.run(units_from_lines(LOT_LINES))
     return summary
 
@@ -80,9 +97,11 @@ def _point_rows(db: ResultsDatabase) -> dict[tuple[str, float], tuple]:
     """(run id, freq) -> (expanded U, verdict, budget terms) straight from the tables."""
     import sqlalchemy as sa
 
-    query = sa.text("SELECT r.run_id, p.freq_hz, p.expanded_u_nf_db, p.verdict, "
-                    "(SELECT COUNT(*) FROM budget_terms t WHERE t.point_fk = p.id) "
-                    "FROM points p JOIN runs r ON r.id = p.run_fk")
+    query = sa.text(
+        "SELECT r.run_id, p.freq_hz, p.expanded_u_nf_db, p.verdict, "
+        "(SELECT COUNT(*) FROM budget_terms t WHERE t.point_fk = p.id) "
+        "FROM points p JOIN runs r ON r.id = p.run_fk"
+    )
     with db.engine.connect() as con:
         return {(run, float(f)): (u, v, n) for run, f, u, v, n in con.execute(query)}
 
@@ -106,12 +125,17 @@ def _check_database(db: ResultsDatabase, summary) -> None:
         outcomes = Counter(u.outcome for u in latest if u.lot == lot)
         (row,) = db.yield_by_lot(lot)
         assert (row.units, row.passed, row.failed, row.indeterminate) == (
-            sum(outcomes.values()), outcomes["pass"], outcomes["fail"], outcomes["indeterminate"])
+            sum(outcomes.values()),
+            outcomes["pass"],
+            outcomes["fail"],
+            outcomes["indeterminate"],
+        )
     # NF statistics over the latest runs, against numpy on the same numbers
     latest_records = [records[u.run_id] for u in latest]
     for stats in db.nf_statistics():
-        nfs = np.array([p.nf_db for r in latest_records for p in r.points
-                        if p.freq_hz == stats.freq_hz])
+        nfs = np.array(
+            [p.nf_db for r in latest_records for p in r.points if p.freq_hz == stats.freq_hz]
+        )
         assert stats.count == len(nfs) == 5
         assert stats.mean_nf_db == pytest.approx(np.mean(nfs), rel=1e-12)  # numpy
         assert stats.std_nf_db == pytest.approx(np.std(nfs, ddof=1), rel=1e-9)  # numpy
@@ -176,17 +200,32 @@ def test_db_queries_print_tables_and_json(sqlite_run, monkeypatch):
     code, out = _cli("db", "yield", "--db", str(path))
     assert code == 0
     header, rule, *rows = out.splitlines()
-    assert header.split() == ["lot", "units", "pass", "fail", "indeterminate", "not", "judged",
-                              "yield"]
+    assert header.split() == [
+        "lot",
+        "units",
+        "pass",
+        "fail",
+        "indeterminate",
+        "not",
+        "judged",
+        "yield",
+    ]
     la = lots["LA"]
-    assert rows[0].split()[:6] == ["LA", "3", str(la.passed), str(la.failed),
-                                   str(la.indeterminate), "0"]
+    assert rows[0].split()[:6] == [
+        "LA",
+        "3",
+        str(la.passed),
+        str(la.failed),
+        str(la.indeterminate),
+        "0",
+    ]
     assert rows[0].endswith(f"{100 * la.yield_fraction:.1f} %")
     monkeypatch.setenv(DB_ENV, str(path))  # the environment names the database
     _, out = _cli("db", "yield", "--json", "--lot", "LB")
     (entry,) = json.loads(out)
     assert entry["lot"] == "LB" and entry["yield_fraction"] == pytest.approx(
-        lots["LB"].yield_fraction)
+        lots["LB"].yield_fraction
+    )
     _, out = _cli("db", "stats", "--json")
     assert [s["freq_hz"] for s in json.loads(out)] == [s.freq_hz for s in stats]
     _, out = _cli("db", "stats")
@@ -218,8 +257,10 @@ def test_db_import_can_judge_again_with_another_plan(sqlite_run, tmp_path, bench
     code, out = _cli("db", "import", summary.folder, "--db", str(target), "--plan", str(strict))
     assert code == 0 and out.count("verdict fail") == 6
     with ResultsDatabase(target) as db:
-        assert {y.lot: (y.units, y.failed) for y in db.yield_by_lot()} == {"LA": (3, 3),
-                                                                            "LB": (2, 2)}
+        assert {y.lot: (y.units, y.failed) for y in db.yield_by_lot()} == {
+            "LA": (3, 3),
+            "LB": (2, 2),
+        }
 
 
 def _plan_toml(*, nf_max_db: float) -> str:
@@ -254,8 +295,20 @@ def test_station_command_measures_the_units_it_is_given(tmp_path, capsys):
     plan = tmp_path / "plan.toml"
     plan.write_text(_plan_toml(nf_max_db=1.3), encoding="utf-8")
     folder = tmp_path / "station"
-    code, out = _cli("station", str(plan), "--unit", "SN:C1;LOT:LC", "--unit", "C2",
-                     "--lot", "LD", "--folder", str(folder), "--operator", "bob")
+    code, out = _cli(
+        "station",
+        str(plan),
+        "--unit",
+        "SN:C1;LOT:LC",
+        "--unit",
+        "C2",
+        "--lot",
+        "LD",
+        "--folder",
+        str(folder),
+        "--operator",
+        "bob",
+    )
     assert code == 0
     assert "station cli-station: plan" in out  # the plan's station is the default id
     assert "C1 (lot LC): " in out and "C2 (lot LD): " in out
@@ -276,8 +329,11 @@ def test_station_command_measures_the_units_it_is_given(tmp_path, capsys):
 def judged_run(tmp_path_factory):
     """A finished run whose budgets and verdict the sequencer computed."""
     folder = tmp_path_factory.mktemp("judged")
-    plan = small_plan(folder, nf_max_db=1.6, uncertainty={"enr_db": 0.05, "linearity_db": 0.01,
-                                                          "coverage_factor": 3.0})
+    plan = small_plan(
+        folder,
+        nf_max_db=1.6,
+        uncertainty={"enr_db": 0.05, "linearity_db": 0.01, "coverage_factor": 3.0},
+    )
     record = Sequencer(plan, session_on(exact_sim(seed=21), plan)).run(folder / "run")
     assert len(record.budgets) == len(FREQS_HZ) and record.verdict is not None
     return plan, record
@@ -298,8 +354,9 @@ def test_budgets_and_verdict_are_recomputed_as_the_sequencer_did(judged_run):
 def test_an_incomplete_run_never_passes(judged_run):
     plan, record = judged_run
     assert record.verdict["unit"] == "pass"
-    partial = record.model_copy(update={"points": record.points[:1], "budgets": [],
-                                        "verdict": None})
+    partial = record.model_copy(
+        update={"points": record.points[:1], "budgets": [], "verdict": None}
+    )
     judged = apply_budgets_and_verdict(partial, plan)
     assert judged.verdict["unit"] == "indeterminate"
     assert judged.verdict["points"][0]["verdict"] == "pass"  # the measured point itself passes
@@ -318,8 +375,9 @@ def test_a_run_without_any_point_is_indeterminate_not_unjudged(judged_run):
 
 def test_a_point_without_a_budget_is_judged_on_its_statistics_and_warned(judged_run):
     plan, record = judged_run
-    odd = PointResult(freq_hz=1.5e9, method=Method.Y_FACTOR, nf_db=1.0, te_k=75.1,
-                      u_nf_db=0.05, u_te_k=3.0)  # no densities: no budget can be made
+    odd = PointResult(
+        freq_hz=1.5e9, method=Method.Y_FACTOR, nf_db=1.0, te_k=75.1, u_nf_db=0.05, u_te_k=3.0
+    )  # no densities: no budget can be made
     with_odd = record.model_copy(update={"points": [*record.points, odd]})
     judged = apply_budgets_and_verdict(with_odd, plan)
     assert len(judged.budgets) == len(FREQS_HZ)
@@ -343,20 +401,30 @@ def test_failing_points_lists_only_what_did_not_pass(judged_run):
     strict = apply_budgets_and_verdict(record, small_plan(plan.base_dir, nf_max_db=0.1))
     failing = failing_points(strict)
     assert [p["freq_hz"] for p in failing] == list(FREQS_HZ)
-    assert all(c["verdict"] == "fail" and c["quantity"] == "nf_db"
-               for p in failing for c in p["checks"])
+    assert all(
+        c["verdict"] == "fail" and c["quantity"] == "nf_db" for p in failing for c in p["checks"]
+    )
 
 
 # =========================================================================== narrowed plans
 
 
 def test_a_narrowed_plan_keeps_the_settings_of_each_frequency(tmp_path):
-    plan = parse_plan({
-        "method": "y_factor", "bench": {"analyzer": "sim://demo-lna?seed=1"},
-        "acquisition": {"rbw_hz": 1e6, "span_hz": 4e6},
-        "sweep": {"freqs_hz": [0.5e9], "segments": [
-            {"start_hz": 1e9, "stop_hz": 2e9, "points": 3, "rbw_hz": 2e6, "span_hz": 8e6},
-            {"freqs_hz": [3e9], "rbw_hz": 3e5, "span_hz": 1.2e6}]}}, base_dir=tmp_path)
+    plan = parse_plan(
+        {
+            "method": "y_factor",
+            "bench": {"analyzer": "sim://demo-lna?seed=1"},
+            "acquisition": {"rbw_hz": 1e6, "span_hz": 4e6},
+            "sweep": {
+                "freqs_hz": [0.5e9],
+                "segments": [
+                    {"start_hz": 1e9, "stop_hz": 2e9, "points": 3, "rbw_hz": 2e6, "span_hz": 8e6},
+                    {"freqs_hz": [3e9], "rbw_hz": 3e5, "span_hz": 1.2e6},
+                ],
+            },
+        },
+        base_dir=tmp_path,
+    )
     narrowed = plan_for_frequencies(plan, [4e9, 3e9, 1.25e9, 0.5e9])
     rbw = {p.freq_hz: p.policy.rbw_hz for p in narrowed.points()}
     assert rbw == {0.5e9: 1e6, 1.25e9: 2e6, 3e9: 3e5, 4e9: 1e6}
@@ -367,25 +435,35 @@ def test_a_narrowed_plan_keeps_the_settings_of_each_frequency(tmp_path):
 def test_a_narrowed_plan_is_checked_like_a_loaded_one(tmp_path):
     enr = tmp_path / "enr.csv"
     enr.write_text("freq_hz,enr_db,u_enr_db\n1e9,15.2,0.1\n3e9,14.9,0.1\n", encoding="utf-8")
-    plan = parse_plan({"method": "y_factor",
-                       "bench": {"analyzer": "TCPIP0::127.0.0.1::5025::SOCKET"},
-                       "enr": {"table": "enr.csv"}, "sweep": {"freqs_hz": [1e9, 2e9]}},
-                      base_dir=tmp_path)
+    plan = parse_plan(
+        {
+            "method": "y_factor",
+            "bench": {"analyzer": "TCPIP0::127.0.0.1::5025::SOCKET"},
+            "enr": {"table": "enr.csv"},
+            "sweep": {"freqs_hz": [1e9, 2e9]},
+        },
+        base_dir=tmp_path,
+    )
     with pytest.raises(PlanError, match="enr.table: enr.csv covers 1e.09-3e.09 Hz"):
         plan_for_frequencies(plan, [2e9, 5e9])
     with pytest.raises(PlanError, match="is listed twice"):
         plan_for_frequencies(plan, [2e9, 2e9])
-    for bad, field in (([], "freqs_hz"), ([1e9, -1.0], "freqs_hz[1]"),
-                       ([float("nan")], "freqs_hz[0]"), ([True], "freqs_hz[0]")):
+    for bad, field in (
+        ([], "freqs_hz"),
+        ([1e9, -1.0], "freqs_hz[1]"),
+        ([float("nan")], "freqs_hz[0]"),
+        ([True], "freqs_hz[0]"),
+    ):
         with pytest.raises(InputError) as info:
             plan_for_frequencies(plan, bad)
         assert info.value.field == field
 
 
 def test_the_commands_run_under_the_noisebench_cli(monkeypatch, capsys, tmp_path):
-    """Hooked into noisebench.cli (as the lead will: register() on its sub-commands), errors
+    """Hooked into noisebench.frontends.cli (as the lead will: register() on its sub-commands),
+    errors
     end as one line on stderr with the CLI's exit code."""
-    from noisebench import cli
+    from noisebench.frontends import cli
 
     original = cli.build_parser
 
@@ -401,12 +479,25 @@ def test_the_commands_run_under_the_noisebench_cli(monkeypatch, capsys, tmp_path
     out = io.StringIO()
     assert cli.main(["db", "yield"], out=out) == cli.EXIT_INPUT
     err = capsys.readouterr().err.strip().splitlines()
-    assert err == [f"noisebench: error: --db: no results database given (pass --db "
-                   f"sqlite:///station.sqlite (or a path), or set {DB_ENV})"]
+    assert err == [
+        f"noisebench: error: --db: no results database given (pass --db "
+        f"sqlite:///station.sqlite (or a path), or set {DB_ENV})"
+    ]
     plan = tmp_path / "plan.toml"
     plan.write_text(_plan_toml(nf_max_db=1.3), encoding="utf-8")
-    code = cli.main(["station", str(plan), "--unit", "GOOD1", "--unit", "BAD\x1bUNIT",
-                     "--folder", str(tmp_path / "st")], out=out)
+    code = cli.main(
+        [
+            "station",
+            str(plan),
+            "--unit",
+            "GOOD1",
+            "--unit",
+            "BAD\x1bUNIT",
+            "--folder",
+            str(tmp_path / "st"),
+        ],
+        out=out,
+    )
     assert code == cli.EXIT_INPUT
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "line 2: unit: control character '\\x1b'" in err[0]

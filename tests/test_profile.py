@@ -10,7 +10,7 @@ import pytest
 from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
-from noisebench.acquisition import AveragingScale, Detector, SweepMode
+from noisebench.bench.acquisition import AveragingScale, Detector, SweepMode
 from noisebench.drivers.profile import (
     BoolSetting,
     EnumSetting,
@@ -26,8 +26,9 @@ from noisebench.drivers.profile import (
 )
 from noisebench.errors import CommunicationError, InputError
 
-GENERIC_TOML = (Path(__file__).resolve().parents[1] / "drivers" / "profiles"
-                / "generic.toml").read_text(encoding="utf-8")
+GENERIC_TOML = (
+    Path(__file__).resolve().parents[1] / "noisebench" / "drivers" / "profiles" / "generic.toml"
+).read_text(encoding="utf-8")
 
 MINIMAL_ANALYZER = """
 [profile]
@@ -91,8 +92,8 @@ def test_generic_enumerations_cover_every_value_of_the_shared_enums():
 
 
 def test_generic_commands_are_the_simulator_command_set():
-    # reference: sims/SCPI.md (the generic profile speaks exactly the simulator's set)
-    scpi_md = (Path(__file__).resolve().parents[1] / "sims" / "SCPI.md").read_text()
+    # reference: noisebench/sims/SCPI.md (the generic profile speaks exactly the simulator's set)
+    scpi_md = (Path(__file__).resolve().parents[1] / "noisebench" / "sims" / "SCPI.md").read_text()
     assert "`[SENSe:]BANDwidth[:RESolution]`" in scpi_md
     a = load_profile("generic").analyzer
     assert a.settings.rbw_hz.command(1e6) == "BAND 1000000"
@@ -199,7 +200,7 @@ def test_no_text_with_a_separator_quote_or_line_break_reaches_a_command(label):
         command = text.command(label)
     except InputError:
         return
-    body = command[len('DISP:TEXT "'):-1]
+    body = command[len('DISP:TEXT "') : -1]
     assert not re.search(r'[;"\'\n\r]', body)
     assert body == label
 
@@ -224,7 +225,7 @@ def test_unknown_keys_are_reported_with_their_path():
 
 def test_every_problem_is_reported_at_once_with_the_file_name():
     text = MINIMAL_ANALYZER.replace('set = "BAND {value:.12g}"', 'set = "BAND {val}"')
-    text = text.replace("[profile]\nname = \"mini\"", "[profile]\nname = \"mini\"\nformat = 2")
+    text = text.replace('[profile]\nname = "mini"', '[profile]\nname = "mini"\nformat = 2')
     with pytest.raises(ProfileError) as info:
         parse_profile(text, source="mine.toml")
     keys = [k for k, _ in info.value.problems]
@@ -239,15 +240,18 @@ def test_toml_syntax_error_names_the_file():
         parse_profile("[profile\nname=", source="broken.toml")
 
 
-@pytest.mark.parametrize("template, reason", [
-    ("FREQ {value:;>9}", "not allowed"),              # fill character could smuggle a ';'
-    ("FREQ {value:d}", "does not fit a float"),
-    ("FREQ {value} {value}", "exactly one"),
-    ("FREQ {value!r}", "exactly one"),
-    ("FREQ {0}", "exactly one"),
-    ("FREQ\n{value}", "one line"),
-    ("", "one line"),
-])
+@pytest.mark.parametrize(
+    "template, reason",
+    [
+        ("FREQ {value:;>9}", "not allowed"),  # fill character could smuggle a ';'
+        ("FREQ {value:d}", "does not fit a float"),
+        ("FREQ {value} {value}", "exactly one"),
+        ("FREQ {value!r}", "exactly one"),
+        ("FREQ {0}", "exactly one"),
+        ("FREQ\n{value}", "one line"),
+        ("", "one line"),
+    ],
+)
 def test_bad_set_templates_are_refused(template, reason):
     with pytest.raises(ValueError, match=reason):
         FloatSetting.model_validate({"set": template})
@@ -257,13 +261,14 @@ def test_tokens_with_separators_are_refused():
     with pytest.raises(ValueError, match="letters, digits"):
         EnumSetting.model_validate({"set": "DET {value}", "choices": {"rms": "RMS;*RST"}})
     with pytest.raises(ValueError, match="letters, digits"):
-        BoolSetting.model_validate({"set": "X {value}", "true": "ON\"", "false": "OFF"})
+        BoolSetting.model_validate({"set": "X {value}", "true": 'ON"', "false": "OFF"})
 
 
 def test_ambiguous_reply_tokens_are_refused():
     with pytest.raises(ValueError, match="would mean both"):
-        EnumSetting.model_validate({"set": "X {value}",
-                                    "choices": {"sample": "SAMPle", "rms": "SAMP"}})
+        EnumSetting.model_validate(
+            {"set": "X {value}", "choices": {"sample": "SAMPle", "rms": "SAMP"}}
+        )
 
 
 def test_query_with_braces_and_fixed_with_get_are_refused():
@@ -274,15 +279,18 @@ def test_query_with_braces_and_fixed_with_get_are_refused():
 
 
 def test_required_readback_missing_is_a_profile_error():
-    text = MINIMAL_ANALYZER.replace('set = "BAND {value:.12g}"\nget = "BAND?"',
-                                    'set = "BAND {value:.12g}"')
+    text = MINIMAL_ANALYZER.replace(
+        'set = "BAND {value:.12g}"\nget = "BAND?"', 'set = "BAND {value:.12g}"'
+    )
     with pytest.raises(ProfileError, match="rbw_hz needs a 'get' query"):
         parse_profile(text, "mini.toml")
 
 
 def test_synchronous_shape_needs_its_poles():
-    text = MINIMAL_ANALYZER.replace('[analyzer.settings.rbw_shape]\nfixed = "gaussian"',
-                                    '[analyzer.settings.rbw_shape]\nfixed = "synchronous"')
+    text = MINIMAL_ANALYZER.replace(
+        '[analyzer.settings.rbw_shape]\nfixed = "gaussian"',
+        '[analyzer.settings.rbw_shape]\nfixed = "synchronous"',
+    )
     with pytest.raises(ProfileError, match="rbw_poles"):
         parse_profile(text, "mini.toml")
     ok = parse_profile(text + "[analyzer.settings.rbw_poles]\nfixed = 4\n", "mini.toml")
@@ -290,8 +298,10 @@ def test_synchronous_shape_needs_its_poles():
 
 
 def test_enum_keys_must_be_our_values():
-    text = MINIMAL_ANALYZER.replace('choices = { rms = "RMS", sample = "SAMPle" }',
-                                    'choices = { rms = "RMS", max_hold = "MAXH" }')
+    text = MINIMAL_ANALYZER.replace(
+        'choices = { rms = "RMS", sample = "SAMPle" }',
+        'choices = { rms = "RMS", max_hold = "MAXH" }',
+    )
     with pytest.raises(ProfileError, match="max_hold"):
         parse_profile(text, "mini.toml")
 

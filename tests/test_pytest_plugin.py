@@ -1,7 +1,8 @@
 """The pytest plugin: the example user test suite runs and passes through it, its options
 and fixtures behave, and a failing verdict explains itself.
 
-The inner pytest runs load the plugin with ``-p noisebench.pytest_plugin`` and with entry-point
+The inner pytest runs load the plugin with ``-p noisebench.frontends.pytest_plugin`` and with
+entry-point
 autoloading off, so they behave the same before and after the package's ``pytest11`` entry
 point is installed (otherwise the plugin would be registered twice). They run in this process
 (pytester's in-process mode, fast); pytester forgets the modules an inner run imported, and
@@ -18,14 +19,14 @@ from pathlib import Path
 
 import pytest
 
-from noisebench.point import Method, PointResult
-from noisebench.pytest_plugin import assert_verdict
-from noisebench.results import RunInfo, RunRecord, load_run
+from noisebench.frontends.pytest_plugin import assert_verdict
+from noisebench.results.store import RunInfo, RunRecord, load_run
+from noisebench.science.point import Method, PointResult
 
 pytest_plugins = ["pytester"]
 
 EXAMPLES = Path(__file__).resolve().parents[1] / "examples" / "user_tests"
-PLUGIN = ("-p", "noisebench.pytest_plugin")
+PLUGIN = ("-p", "noisebench.frontends.pytest_plugin")
 
 
 @pytest.fixture(scope="module")
@@ -34,9 +35,9 @@ def imported(tmp_path_factory: pytest.TempPathFactory) -> None:
     from _production import exact_sim, session_on, small_plan
 
     import noisebench.drivers  # noqa: F401 - the example suite's profile test needs it
-    from noisebench.production import apply_budgets_and_verdict, save_record
-    from noisebench.report import write_report
-    from noisebench.sequencer import Sequencer
+    from noisebench.results.production import apply_budgets_and_verdict, save_record
+    from noisebench.results.report import write_report
+    from noisebench.running.sequencer import Sequencer
 
     folder = tmp_path_factory.mktemp("warm-up")
     plan = small_plan(folder)
@@ -46,8 +47,9 @@ def imported(tmp_path_factory: pytest.TempPathFactory) -> None:
 
 
 @pytest.fixture
-def inner(pytester: pytest.Pytester, monkeypatch: pytest.MonkeyPatch,
-          imported: None) -> pytest.Pytester:
+def inner(
+    pytester: pytest.Pytester, monkeypatch: pytest.MonkeyPatch, imported: None
+) -> pytest.Pytester:
     monkeypatch.setenv("PYTEST_DISABLE_PLUGIN_AUTOLOAD", "1")
     return pytester
 
@@ -66,8 +68,11 @@ def test_the_example_user_tests_pass_on_the_simulated_bench(inner: pytest.Pytest
     result.assert_outcomes(passed=6)
     result.stdout.fnmatch_lines(["noisebench: bench (plan / default sim://demo-lna?seed=1)*"])
     # every measuring test lists its run folder; the folders hold finished, judged runs
-    runs = [prop.get("value") for prop in ET.parse(report).iter("property")
-            if prop.get("name") == "nb_run"]
+    runs = [
+        prop.get("value")
+        for prop in ET.parse(report).iter("property")
+        if prop.get("name") == "nb_run"
+    ]
     assert len(runs) == 4  # two whole-plan runs, two spot points
     whole = [load_run(Path(folder)) for folder in runs if len(load_run(Path(folder)).points) == 3]
     assert len(whole) == 2
@@ -107,7 +112,7 @@ report = false
 """
 
 TIGHT_TESTS = """\
-from noisebench.pytest_plugin import assert_verdict
+from noisebench.frontends.pytest_plugin import assert_verdict
 
 
 def test_mask_too_tight(nb_run_plan):
@@ -141,20 +146,23 @@ def test_options_fixtures_and_the_failure_message(inner: pytest.Pytester):
     inner.makepyfile(test_tight=TIGHT_TESTS)
     result = _run(inner, "--nb-bench", "sim://demo-lna?seed=3")
     result.assert_outcomes(passed=4, failed=1)
-    result.stdout.fnmatch_lines([
-        "noisebench: bench sim://demo-lna?seed=3, plan *tight.toml",
-        "*unit verdict is FAIL, expected PASS: run * (DUT tight-unit, status complete), "
-        "rule guarded",
-        "*1e+09 Hz FAIL: nf_db * dB +/- * dB (U), limit <= 0.4 dB: fail",
-        "*2e+09 Hz FAIL: nf_db * dB +/- * dB (U), limit <= 0.4 dB: fail",
-    ])
+    result.stdout.fnmatch_lines(
+        [
+            "noisebench: bench sim://demo-lna?seed=3, plan *tight.toml",
+            "*unit verdict is FAIL, expected PASS: run * (DUT tight-unit, status complete), "
+            "rule guarded",
+            "*1e+09 Hz FAIL: nf_db * dB +/- * dB (U), limit <= 0.4 dB: fail",
+            "*2e+09 Hz FAIL: nf_db * dB +/- * dB (U), limit <= 0.4 dB: fail",
+        ]
+    )
     # the helper hides its own frame: the report points at the user's line only
     assert "raise AssertionError" not in result.stdout.str()
     result.stdout.fnmatch_lines(["test_tight.py:5: AssertionError"])
 
 
 def test_single_points_need_no_plan_and_a_missing_plan_is_explained(inner: pytest.Pytester):
-    inner.makepyfile(test_quick="""
+    inner.makepyfile(
+        test_quick="""
         def test_quick_point(nb_measure_point):
             point = nb_measure_point(1.5e9)
             assert point.freq_hz == 1.5e9 and point.gain_db > 20
@@ -164,68 +172,124 @@ def test_single_points_need_no_plan_and_a_missing_plan_is_explained(inner: pytes
 
         def test_bench_without_a_plan(nb_bench):
             assert nb_bench.resources["analyzer"] == "sim://demo-lna?seed=1"
-    """)
+    """
+    )
     result = _run(inner)
     result.assert_outcomes(passed=2, failed=1)
-    result.stdout.fnmatch_lines(["*noisebench: nb_run_plan() needs a plan (--nb-plan, or "
-                                 "nb_run_plan(plan)) or freqs_hz for the quick plan*"])
+    result.stdout.fnmatch_lines(
+        [
+            "*noisebench: nb_run_plan() needs a plan (--nb-plan, or "
+            "nb_run_plan(plan)) or freqs_hz for the quick plan*"
+        ]
+    )
 
 
 def test_a_bad_plan_or_bench_fails_setup_with_one_clear_message(inner: pytest.Pytester):
-    inner.makefile(".toml", broken='method = "y_factor"\n[bench]\nanalyzer = "sim://nowhere"\n'
-                                   '[sweep]\nfreqs_hz = [-1.0]\n')
-    inner.makepyfile(test_bad="""
+    inner.makefile(
+        ".toml",
+        broken='method = "y_factor"\n[bench]\nanalyzer = "sim://nowhere"\n'
+        "[sweep]\nfreqs_hz = [-1.0]\n",
+    )
+    inner.makepyfile(
+        test_bad="""
         def test_uses_the_plan(nb_plan):
             pass
-    """)
+    """
+    )
     result = _run(inner, "--nb-plan", "broken.toml")
     result.assert_outcomes(errors=1)
-    result.stdout.fnmatch_lines(["*noisebench: sweep.freqs_hz[[]0[]]: must be a finite "
-                                 "frequency > 0*"])
+    result.stdout.fnmatch_lines(
+        ["*noisebench: sweep.freqs_hz[[]0[]]: must be a finite frequency > 0*"]
+    )
     result = _run(inner)
     result.assert_outcomes(errors=1)
     result.stdout.fnmatch_lines(["*noisebench: no plan configured: pass --nb-plan PLAN.toml*"])
     # a real analyzer with the quick plan: no ENR table, refused before any I/O
-    inner.makepyfile(test_visa="""
+    inner.makepyfile(
+        test_visa="""
         def test_point_on_real_hardware(nb_measure_point):
             nb_measure_point(1.0e9)
-    """)
+    """
+    )
     result = _run(inner, "test_visa.py", "--nb-bench", "TCPIP0::127.0.0.1::9::SOCKET")
     result.assert_outcomes(failed=1)
-    result.stdout.fnmatch_lines(["*noisebench: enr.table: the Y-factor method needs the "
-                                 "noise source's ENR table*"])
+    result.stdout.fnmatch_lines(
+        ["*noisebench: enr.table: the Y-factor method needs the noise source's ENR table*"]
+    )
 
 
 # =========================================================================== assert_verdict
 
 
 def _record(verdict: dict | None) -> RunRecord:
-    point = PointResult(freq_hz=1e9, method=Method.Y_FACTOR, nf_db=1.5, te_k=119.6,
-                        u_nf_db=0.05, u_te_k=3.0)
-    info = RunInfo(run_id="r-1", method=Method.Y_FACTOR, dut_id="SN7", status="complete",
-                   started_at=datetime(2026, 1, 1, tzinfo=timezone.utc))
+    point = PointResult(
+        freq_hz=1e9, method=Method.Y_FACTOR, nf_db=1.5, te_k=119.6, u_nf_db=0.05, u_te_k=3.0
+    )
+    info = RunInfo(
+        run_id="r-1",
+        method=Method.Y_FACTOR,
+        dut_id="SN7",
+        status="complete",
+        started_at=datetime(2026, 1, 1, tzinfo=timezone.utc),
+    )
     return RunRecord(info=info, points=[point], verdict=verdict)
 
 
 def test_assert_verdict_lists_every_point_that_did_not_pass():
-    check = {"quantity": "nf_db", "kind": "max", "limit": 1.2, "value": 1.5, "U": 0.14,
-             "verdict": "fail", "band": 0, "margin_db": -0.3, "note": None}
-    gain = {"quantity": "gain_db", "kind": "min", "limit": 20.0, "value": None, "U": None,
-            "verdict": "indeterminate", "band": 0, "note": "gain not measured at this point"}
-    verdict = {"unit": "fail", "rule": "guarded", "notes": ["1 point(s) without a budget"],
-               "bands": [], "points": [
-                   {"freq_hz": 1e9, "verdict": "fail", "nf_db": 1.5, "U_nf_db": 0.14,
-                    "checks": [check, gain]},
-                   {"freq_hz": 2e9, "verdict": "pass", "nf_db": 1.0, "U_nf_db": 0.14,
-                    "checks": [{**check, "value": 1.0, "verdict": "pass"}]}]}
+    check = {
+        "quantity": "nf_db",
+        "kind": "max",
+        "limit": 1.2,
+        "value": 1.5,
+        "U": 0.14,
+        "verdict": "fail",
+        "band": 0,
+        "margin_db": -0.3,
+        "note": None,
+    }
+    gain = {
+        "quantity": "gain_db",
+        "kind": "min",
+        "limit": 20.0,
+        "value": None,
+        "U": None,
+        "verdict": "indeterminate",
+        "band": 0,
+        "note": "gain not measured at this point",
+    }
+    verdict = {
+        "unit": "fail",
+        "rule": "guarded",
+        "notes": ["1 point(s) without a budget"],
+        "bands": [],
+        "points": [
+            {
+                "freq_hz": 1e9,
+                "verdict": "fail",
+                "nf_db": 1.5,
+                "U_nf_db": 0.14,
+                "checks": [check, gain],
+            },
+            {
+                "freq_hz": 2e9,
+                "verdict": "pass",
+                "nf_db": 1.0,
+                "U_nf_db": 0.14,
+                "checks": [{**check, "value": 1.0, "verdict": "pass"}],
+            },
+        ],
+    }
     with pytest.raises(AssertionError) as info:
         assert_verdict(_record(verdict), "pass")
     lines = str(info.value).splitlines()
-    assert lines[0] == ("unit verdict is FAIL, expected PASS: run r-1 (DUT SN7, status "
-                        "complete), rule guarded")
-    assert lines[1] == ("  1e+09 Hz FAIL: nf_db 1.500 dB +/- 0.140 dB (U), limit <= 1.2 dB: "
-                        "fail; gain_db not measured, limit >= 20.0 dB: indeterminate (gain "
-                        "not measured at this point)")
+    assert lines[0] == (
+        "unit verdict is FAIL, expected PASS: run r-1 (DUT SN7, status complete), rule guarded"
+    )
+    assert lines[1] == (
+        "  1e+09 Hz FAIL: nf_db 1.500 dB +/- 0.140 dB (U), limit <= 1.2 dB: "
+        "fail; gain_db not measured, limit >= 20.0 dB: indeterminate (gain "
+        "not measured at this point)"
+    )
     assert lines[2] == "  note: 1 point(s) without a budget"
     assert len(lines) == 3  # the passing point is not listed
     assert_verdict(_record(verdict), "fail")  # expecting the failure passes

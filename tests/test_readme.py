@@ -7,8 +7,8 @@ from pathlib import Path
 
 import pytest
 
-from noisebench.density import NoiseDensity
-from noisebench.methods import calibrate_point, y_factor_point
+from noisebench.science.density import NoiseDensity
+from noisebench.science.methods import calibrate_point, y_factor_point
 
 README = Path(__file__).resolve().parents[1] / "README.md"
 
@@ -31,15 +31,24 @@ def test_readme_example_runs_and_recovers_the_simulated_truth(capsys):
     truth = bench.truth(2e9)
 
     def dens(key: str) -> NoiseDensity:
-        return NoiseDensity(freq_hz=2e9, density_w_per_hz=float(truth[key][0]),
-                            u_density_w_per_hz=0.0)
+        return NoiseDensity(
+            freq_hz=2e9, density_w_per_hz=float(truth[key][0]), u_density_w_per_hz=0.0
+        )
 
     enr_db, tc_k = ns["enr_db"], ns["tc_k"]
-    cal = calibrate_point(dens("displayed_through_hot_w_per_hz"),
-                          dens("displayed_through_cold_w_per_hz"), enr_db, cold_temperature_k=tc_k)
-    expected = y_factor_point(dens("displayed_dut_hot_w_per_hz"),
-                              dens("displayed_dut_cold_w_per_hz"), enr_db,
-                              cold_temperature_k=tc_k, calibration=cal)
+    cal = calibrate_point(
+        dens("displayed_through_hot_w_per_hz"),
+        dens("displayed_through_cold_w_per_hz"),
+        enr_db,
+        cold_temperature_k=tc_k,
+    )
+    expected = y_factor_point(
+        dens("displayed_dut_hot_w_per_hz"),
+        dens("displayed_dut_cold_w_per_hz"),
+        enr_db,
+        cold_temperature_k=tc_k,
+        calibration=cal,
+    )
     # 4.5 standard uncertainties: a false alarm about once in 150 000 runs (normal law)
     assert point.nf_db == pytest.approx(expected.nf_db, abs=4.5 * point.u_nf_db)
     assert point.gain_db == pytest.approx(expected.gain_db, abs=4.5 * point.u_gain_db)

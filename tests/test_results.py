@@ -21,8 +21,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from noisebench.errors import InputError
-from noisebench.point import Method, PointFlag, PointResult
-from noisebench.results import (
+from noisebench.results.store import (
     CSV_BUDGET_COLUMNS,
     CSV_COLUMNS,
     CSV_VERDICT_COLUMNS,
@@ -38,6 +37,7 @@ from noisebench.results import (
     load_run,
     new_run_id,
 )
+from noisebench.science.point import Method, PointFlag, PointResult
 
 T0_K = 290.0
 FREQS_HZ = [float(f) for f in np.linspace(1e9, 2e9, 6)]
@@ -46,31 +46,75 @@ FREQS_HZ = [float(f) for f in np.linspace(1e9, 2e9, 6)]
 def make_point(freq_hz: float, nf_db: float = 2.0, **extra) -> PointResult:
     """A Y-factor point whose Te follows Te = T0 (F - 1) (reference.md §2)."""
     te_k = T0_K * (10 ** (nf_db / 10) - 1)
-    fields = dict(freq_hz=freq_hz, method=Method.Y_FACTOR, nf_db=nf_db, te_k=te_k,
-                  u_nf_db=0.0679, u_te_k=3.1, gain_db=20.0, u_gain_db=0.02, y_db=12.8428,
-                  floor_margin_db=18.5, floor_correction_db=-0.3889, enr_db=15.0,
-                  source_temperature_k=296.5, averages=64, instrument_time_s=0.125,
-                  densities_w_per_hz={"hot": 1.3e-17, "cold": 6.9e-19,
-                                      "hot_cal": 1.9e-19, "cold_cal": 6.4e-20})
+    fields = dict(
+        freq_hz=freq_hz,
+        method=Method.Y_FACTOR,
+        nf_db=nf_db,
+        te_k=te_k,
+        u_nf_db=0.0679,
+        u_te_k=3.1,
+        gain_db=20.0,
+        u_gain_db=0.02,
+        y_db=12.8428,
+        floor_margin_db=18.5,
+        floor_correction_db=-0.3889,
+        enr_db=15.0,
+        source_temperature_k=296.5,
+        averages=64,
+        instrument_time_s=0.125,
+        densities_w_per_hz={
+            "hot": 1.3e-17,
+            "cold": 6.9e-19,
+            "hot_cal": 1.9e-19,
+            "cold_cal": 6.4e-20,
+        },
+    )
     fields.update(extra)
     return PointResult(**fields)
 
 
 def make_info(**extra) -> RunInfo:
-    fields = dict(run_id=new_run_id(), method=Method.Y_FACTOR, dut_id="LNA-7 <rev B>",
-                  operator="kim", station="bench 2", plan={"sweep": {"points": 6}},
-                  identities={"analyzer": "Example,SA-1,0001,1.0"},
-                  versions=collect_versions(), ambient_k=296.5, cold_temperature_k=296.5,
-                  applied_settings=[{"rbw_hz": 1e6, "detector": "rms"}])
+    fields = dict(
+        run_id=new_run_id(),
+        method=Method.Y_FACTOR,
+        dut_id="LNA-7 <rev B>",
+        operator="kim",
+        station="bench 2",
+        plan={"sweep": {"points": 6}},
+        identities={"analyzer": "Example,SA-1,0001,1.0"},
+        versions=collect_versions(),
+        ambient_k=296.5,
+        cold_temperature_k=296.5,
+        applied_settings=[{"rbw_hz": 1e6, "detector": "rms"}],
+    )
     fields.update(extra)
     return RunInfo(**fields)
 
 
 def make_budget(freq_hz: float) -> dict:
-    return {"freq_hz": freq_hz, "contributions": [
-        {"name": "ENR", "u": 0.1, "unit": "dB", "sensitivity": 0.9937, "contribution_db": 0.0994},
-        {"name": "Tc", "u": 1.0, "unit": "K", "sensitivity": -0.0094, "contribution_db": -0.0094}],
-        "u_combined_db": 0.1229, "k": 2.0, "U_expanded_db": 0.2458, "method": "gum"}
+    return {
+        "freq_hz": freq_hz,
+        "contributions": [
+            {
+                "name": "ENR",
+                "u": 0.1,
+                "unit": "dB",
+                "sensitivity": 0.9937,
+                "contribution_db": 0.0994,
+            },
+            {
+                "name": "Tc",
+                "u": 1.0,
+                "unit": "K",
+                "sensitivity": -0.0094,
+                "contribution_db": -0.0094,
+            },
+        ],
+        "u_combined_db": 0.1229,
+        "k": 2.0,
+        "U_expanded_db": 0.2458,
+        "method": "gum",
+    }
 
 
 # ----------------------------------------------------------------------------- round trip
@@ -79,8 +123,12 @@ def make_budget(freq_hz: float) -> dict:
 def test_round_trip_kill_resume_finish(tmp_path):
     folder = tmp_path / "run"
     writer = RunWriter.create(folder, make_info())
-    writer.save_calibration({"measured_at": "2025-01-01T00:00:00Z", "points": [
-        {"freq_hz": f, "te2_k": 4306.19} for f in FREQS_HZ]})
+    writer.save_calibration(
+        {
+            "measured_at": "2025-01-01T00:00:00Z",
+            "points": [{"freq_hz": f, "te2_k": 4306.19} for f in FREQS_HZ],
+        }
+    )
     for f in FREQS_HZ[:3]:
         writer.add_point(make_point(f), budget=make_budget(f))
     writer.close()  # the process "dies": no finish, no results files
@@ -132,8 +180,11 @@ def test_points_are_sorted_by_frequency_in_the_record(tmp_path):
 
 def test_numpy_values_in_notes_are_stored_as_plain_json(tmp_path):
     writer = RunWriter.create(tmp_path / "run", make_info())
-    writer.add_point(make_point(1e9, notes={"trace_db": np.array([1.5, 2.5]),
-                                            "n": np.int64(7), "x": np.float32(0.25)}))
+    writer.add_point(
+        make_point(
+            1e9, notes={"trace_db": np.array([1.5, 2.5]), "n": np.int64(7), "x": np.float32(0.25)}
+        )
+    )
     notes = writer.finish().points[0].notes
     assert notes == {"trace_db": [1.5, 2.5], "n": 7, "x": 0.25}
 
@@ -149,12 +200,17 @@ class BudgetLike:
 
 
 def test_objects_with_to_dict_models_and_numpy_are_stored_as_json(tmp_path):
-    from noisebench.acquisition import AcquisitionSettings, AveragingScale, Detector
+    from noisebench.bench.acquisition import AcquisitionSettings, AveragingScale, Detector
 
-    settings_used = AcquisitionSettings(center_hz=1e9, span_hz=0.0, rbw_hz=1e6,
-                                        detector=Detector.RMS,
-                                        averaging_scale=AveragingScale.POWER, averages=8,
-                                        points=101)
+    settings_used = AcquisitionSettings(
+        center_hz=1e9,
+        span_hz=0.0,
+        rbw_hz=1e6,
+        detector=Detector.RMS,
+        averaging_scale=AveragingScale.POWER,
+        averages=8,
+        points=101,
+    )
     info = make_info(applied_settings=[settings_used], plan={"points": np.arange(3)})
     assert info.applied_settings[0]["rbw_filter"]["kind"] == "gaussian"
     assert info.plan == {"points": [0, 1, 2]}
@@ -197,12 +253,13 @@ def test_torn_last_line_is_ignored_with_a_warning_and_repaired_on_resume(tmp_pat
         writer.add_point(make_point(f))
     writer.close()
     journal = folder / JOURNAL_FILE
-    full_line = json.dumps({"kind": "point", "point": make_point(FREQS_HZ[2]).model_dump(
-        mode="json"), "budget": None})
+    full_line = json.dumps(
+        {"kind": "point", "point": make_point(FREQS_HZ[2]).model_dump(mode="json"), "budget": None}
+    )
     with open(journal, "ab") as handle:  # a kill halfway through the third write
         handle.write(full_line[: len(full_line) // 2].encode())
 
-    with caplog.at_level(logging.WARNING, logger="noisebench.results"):
+    with caplog.at_level(logging.WARNING, logger="noisebench.results.store"):
         record = load_run(folder)
     assert [p.freq_hz for p in record.points] == FREQS_HZ[:2]
     assert any("incomplete last entry" in w for w in record.warnings)
@@ -271,8 +328,8 @@ def test_a_kill_at_any_byte_loses_at_most_the_point_being_written(cut):
 CHILD = textwrap.dedent("""
     import sys
     from pathlib import Path
-    from noisebench.point import Method, PointResult
-    from noisebench.results import RunInfo, RunWriter
+    from noisebench.science.point import Method, PointResult
+    from noisebench.results.store import RunInfo, RunWriter
     writer = RunWriter.create(Path(sys.argv[1]), RunInfo(run_id="child", method=Method.GAIN))
     i = 0
     while True:
@@ -316,11 +373,19 @@ def test_duplicate_lines_in_the_journal_keep_the_first(tmp_path, caplog):
     writer.add_point(make_point(FREQS_HZ[0], nf_db=2.0))
     writer.close()
     journal = folder / JOURNAL_FILE
-    line = json.dumps({"kind": "point", "point": make_point(FREQS_HZ[0], nf_db=9.0).model_dump(
-        mode="json"), "budget": None}) + "\n"
+    line = (
+        json.dumps(
+            {
+                "kind": "point",
+                "point": make_point(FREQS_HZ[0], nf_db=9.0).model_dump(mode="json"),
+                "budget": None,
+            }
+        )
+        + "\n"
+    )
     with open(journal, "a") as handle:
         handle.write(line)
-    with caplog.at_level(logging.WARNING, logger="noisebench.results"):
+    with caplog.at_level(logging.WARNING, logger="noisebench.results.store"):
         record = load_run(folder)
     assert [p.nf_db for p in record.points] == [2.0]
     assert any("duplicate" in w for w in record.warnings)
@@ -442,7 +507,8 @@ def test_update_info_persists_and_validates(tmp_path):
     writer = RunWriter.create(folder, make_info())
     writer.update_info(identities={"analyzer": "Example,SA-2,7,2.0"}, notes={"lot": 4})
     assert json.loads((folder / RUN_INFO_FILE).read_text())["identities"] == {
-        "analyzer": "Example,SA-2,7,2.0"}
+        "analyzer": "Example,SA-2,7,2.0"
+    }
     with pytest.raises(InputError) as err:
         writer.update_info(ambient_k=-3.0)
     assert err.value.field == "ambient_k"
@@ -462,16 +528,33 @@ def _read_csv(path: Path) -> tuple[list[str], list[dict[str, str]]]:
 
 def test_csv_columns_and_values(tmp_path):
     writer = RunWriter.create(tmp_path / "run", make_info())
-    odd = make_point(FREQS_HZ[1], nf_db=1.0 / 3.0, gain_db=None, y_db=None,
-                     flags=[PointFlag.NEAR_ANALYZER_FLOOR, PointFlag.SPURS_EXCLUDED])
+    odd = make_point(
+        FREQS_HZ[1],
+        nf_db=1.0 / 3.0,
+        gain_db=None,
+        y_db=None,
+        flags=[PointFlag.NEAR_ANALYZER_FLOOR, PointFlag.SPURS_EXCLUDED],
+    )
     writer.add_point(make_point(FREQS_HZ[0]))
     writer.add_point(odd)
     writer.finish()
     header, rows = _read_csv(tmp_path / "run" / RESULTS_CSV_FILE)
     assert header == list(CSV_COLUMNS)
-    assert header[:13] == ["freq_hz", "nf_db", "u_nf_db", "te_k", "u_te_k", "gain_db",
-                           "u_gain_db", "y_db", "floor_margin_db", "enr_db", "averages",
-                           "instrument_time_s", "flags"]
+    assert header[:13] == [
+        "freq_hz",
+        "nf_db",
+        "u_nf_db",
+        "te_k",
+        "u_te_k",
+        "gain_db",
+        "u_gain_db",
+        "y_db",
+        "floor_margin_db",
+        "enr_db",
+        "averages",
+        "instrument_time_s",
+        "flags",
+    ]
     assert float(rows[1]["nf_db"]) == 1.0 / 3.0  # repr round-trips bit-exact
     assert float(rows[1]["te_k"]) == odd.te_k
     assert rows[1]["gain_db"] == "" and rows[1]["y_db"] == ""
@@ -484,11 +567,14 @@ def test_csv_has_budget_and_verdict_columns_when_present(tmp_path):
     writer = RunWriter.create(tmp_path / "run", make_info())
     for f in FREQS_HZ[:2]:
         writer.add_point(make_point(f), budget=make_budget(f))
-    verdict = {"unit": "indeterminate", "limits": [{"start_hz": 1e9, "stop_hz": 2e9,
-                                                    "nf_max_db": 2.2}],
-               "points": [{"freq_hz": FREQS_HZ[0], "verdict": "pass", "limit": 2.25},
-                          {"freq_hz": FREQS_HZ[1], "verdict": "indeterminate",
-                           "limit": 2.2}]}
+    verdict = {
+        "unit": "indeterminate",
+        "limits": [{"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": 2.2}],
+        "points": [
+            {"freq_hz": FREQS_HZ[0], "verdict": "pass", "limit": 2.25},
+            {"freq_hz": FREQS_HZ[1], "verdict": "indeterminate", "limit": 2.2},
+        ],
+    }
     writer.finish(verdict=verdict)
     header, rows = _read_csv(tmp_path / "run" / RESULTS_CSV_FILE)
     assert header == [*CSV_COLUMNS, *CSV_BUDGET_COLUMNS, *CSV_VERDICT_COLUMNS]
@@ -504,8 +590,12 @@ def test_format_summary_reports_range_verdict_and_warnings(tmp_path):
     writer = RunWriter.create(tmp_path / "run", make_info())
     for f, nf in zip(FREQS_HZ[:3], (2.3, 1.7, 2.9), strict=True):
         writer.add_point(make_point(f, nf_db=nf, flags=[PointFlag.LOW_GAIN] if nf > 2.5 else []))
-    record = writer.finish(verdict={"unit": "fail", "points": [
-        {"freq_hz": FREQS_HZ[2], "verdict": "fail", "limit": 2.5}]})
+    record = writer.finish(
+        verdict={
+            "unit": "fail",
+            "points": [{"freq_hz": FREQS_HZ[2], "verdict": "fail", "limit": 2.5}],
+        }
+    )
     record.warnings.append("journal line 9: incomplete last entry")
     text = format_summary(record)
     assert "y-factor method, status complete" in text
@@ -519,8 +609,9 @@ def test_format_summary_reports_range_verdict_and_warnings(tmp_path):
     assert "incomplete last entry" in text
     assert "\x1b[" not in text  # plain text, no terminal escapes
     table = format_summary(record, table=True).splitlines()
-    assert any("1.4 GHz" in row and "2.900" in row and "fail" in row and "low_gain" in row
-               for row in table)
+    assert any(
+        "1.4 GHz" in row and "2.900" in row and "fail" in row and "low_gain" in row for row in table
+    )
 
 
 def test_format_summary_of_an_empty_run(tmp_path):
@@ -535,6 +626,7 @@ def test_collect_versions_and_run_id():
     assert versions["python"] == ".".join(map(str, sys.version_info[:3]))
     import numpy
     import pydantic
+
     assert versions["numpy"] == numpy.__version__ and versions["pydantic"] == pydantic.VERSION
     run_id = new_run_id()
     assert len(run_id) == len("20250101T120000Z-abcdef") and run_id[8] == "T"

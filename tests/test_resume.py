@@ -7,10 +7,10 @@ import json
 import pytest
 from _sequencer_helpers import ideal_session, make_plan
 
+from noisebench.bench.registry import Connection
 from noisebench.errors import CommunicationError, InputError
-from noisebench.registry import Connection
-from noisebench.results import JOURNAL_FILE, load_run
-from noisebench.sequencer import Sequencer
+from noisebench.results.store import JOURNAL_FILE, load_run
+from noisebench.running.sequencer import Sequencer
 
 FREQS = [1e9, 2e9, 3e9, 4e9]
 
@@ -30,8 +30,11 @@ def _interrupted_run(tmp_path, plan, after: int):
 
 def _journal_points(folder):
     lines = (folder / JOURNAL_FILE).read_text(encoding="utf-8").splitlines()
-    return [json.loads(line)["point"]["freq_hz"] for line in lines
-            if json.loads(line)["kind"] == "point"]
+    return [
+        json.loads(line)["point"]["freq_hz"]
+        for line in lines
+        if json.loads(line)["kind"] == "point"
+    ]
 
 
 def test_resume_completes_without_repeating_finished_points(tmp_path):
@@ -42,7 +45,8 @@ def test_resume_completes_without_repeating_finished_points(tmp_path):
     session = ideal_session(plan, seed=7)  # a new process: a fresh bench
     measured = []
     record = Sequencer(plan, session, on_point=lambda p: measured.append(p.freq_hz)).run(
-        tmp_path / "run", resume=True)
+        tmp_path / "run", resume=True
+    )
     assert record.info.status == "complete"
     assert [p.freq_hz for p in record.points] == FREQS
     assert measured == [3e9, 4e9]  # only the missing points were measured

@@ -9,13 +9,13 @@ import pytest
 import scipy.constants
 from _sequencer_helpers import ideal_session, make_plan, plan_dict
 
-from noisebench.corrections import resolve_corrections
-from noisebench.density import NoiseDensity
-from noisebench.enr import EnrTable
-from noisebench.methods.yfactor import calibrate_point, y_factor_point
-from noisebench.plan import parse_plan
-from noisebench.sequencer import Sequencer
-from noisebench.uncertainty import UncertaintyInputs, budget_for_point
+from noisebench.running.corrections import resolve_corrections
+from noisebench.running.plan import parse_plan
+from noisebench.running.sequencer import Sequencer
+from noisebench.science.density import NoiseDensity
+from noisebench.science.enr import EnrTable
+from noisebench.science.methods.yfactor import calibrate_point, y_factor_point
+from noisebench.science.uncertainty import UncertaintyInputs, budget_for_point
 
 K_B = scipy.constants.k  # scipy.constants
 T0 = 290.0  # reference.md §1 (IRE/IEEE Std 161)
@@ -23,17 +23,20 @@ FREQ_HZ = 2e9
 
 
 def _density(w_per_hz: float, rel_u: float = 0.01) -> NoiseDensity:
-    return NoiseDensity(freq_hz=FREQ_HZ, density_w_per_hz=w_per_hz,
-                        u_density_w_per_hz=rel_u * w_per_hz)
+    return NoiseDensity(
+        freq_hz=FREQ_HZ, density_w_per_hz=w_per_hz, u_density_w_per_hz=rel_u * w_per_hz
+    )
 
 
 def _plan_with_table(tmp_path, table: EnrTable, source_temperature_k: float):
     path = tmp_path / "enr.csv"
     table.to_csv(path)
-    plan = make_plan("y_factor", freqs_hz=[FREQ_HZ],
-                     enr={"table": str(path)},
-                     corrections={"input_loss": 0.0,
-                                  "source_temperature_k": source_temperature_k})
+    plan = make_plan(
+        "y_factor",
+        freqs_hz=[FREQ_HZ],
+        enr={"table": str(path)},
+        corrections={"input_loss": 0.0, "source_temperature_k": source_temperature_k},
+    )
     return plan, ideal_session(plan)
 
 
@@ -46,8 +49,9 @@ def test_sequencer_uses_the_enr_reference_the_table_declares(tmp_path):
     # fix the sequencer ignored the header and used Th = T0 ENR + Tc.
     tc = 300.0
     enr_db = 15.0
-    table = EnrTable(freq_hz=[1e9, 3e9], enr_db=[enr_db, enr_db],
-                     metadata={"enr_reference": "absolute"})
+    table = EnrTable(
+        freq_hz=[1e9, 3e9], enr_db=[enr_db, enr_db], metadata={"enr_reference": "absolute"}
+    )
     plan, session = _plan_with_table(tmp_path, table, tc)
     seq = Sequencer(plan, session)
     seq.corrections = resolve_corrections(plan, session)
@@ -73,14 +77,24 @@ def test_tables_without_enr_reference_keep_the_common_t0_convention(tmp_path):
 
 def _y_point(u_enr_db):
     # reference.md §5 worked example: ENR 15 dB, G1 = 20 dB, NF1 = 2 dB, NF2 = 12 dB, Tc = T0
-    enr = 10 ** 1.5
+    enr = 10**1.5
     th, g1 = T0 * enr + T0, 100.0
-    te1, te2 = T0 * (10 ** 0.2 - 1), T0 * (10 ** 1.2 - 1)
-    cal = calibrate_point(_density(K_B * (th + te2)), _density(K_B * (T0 + te2)), 15.0,
-                          cold_temperature_k=T0, u_enr_db=u_enr_db)
-    point = y_factor_point(_density(K_B * ((th + te1) * g1 + te2)),
-                           _density(K_B * ((T0 + te1) * g1 + te2)), 15.0,
-                           cold_temperature_k=T0, calibration=cal, u_enr_db=u_enr_db)
+    te1, te2 = T0 * (10**0.2 - 1), T0 * (10**1.2 - 1)
+    cal = calibrate_point(
+        _density(K_B * (th + te2)),
+        _density(K_B * (T0 + te2)),
+        15.0,
+        cold_temperature_k=T0,
+        u_enr_db=u_enr_db,
+    )
+    point = y_factor_point(
+        _density(K_B * ((th + te1) * g1 + te2)),
+        _density(K_B * ((T0 + te1) * g1 + te2)),
+        15.0,
+        cold_temperature_k=T0,
+        calibration=cal,
+        u_enr_db=u_enr_db,
+    )
     return point, cal
 
 
@@ -118,24 +132,32 @@ def test_known_enr_uncertainty_still_enters_the_budget():
 def _gain_point(dut_gain_db: float, loss_in_db: float, loss_out_db: float, **gain_kwargs):
     """Gain-method point of an ideal chain [termination 296 K, input loss, DUT, output loss,
     analyzer], both losses at 296 K; DUT NF 2 dB, gain 20 dB; analyzer NF 12 dB."""
-    from noisebench.methods.gain import gain_method_point
+    from noisebench.science.methods.gain import gain_method_point
 
-    ts, te_dut, te_sa = 296.0, T0 * (10 ** 0.2 - 1), T0 * (10 ** 1.2 - 1)
+    ts, te_dut, te_sa = 296.0, T0 * (10**0.2 - 1), T0 * (10**1.2 - 1)
     l_in, l_out, g = 10 ** (0.5 / 10), 10 ** (1.0 / 10), 100.0
     t = ts / l_in + (1 - 1 / l_in) * ts  # reference.md §3: a matched loss at Tp
     t = (t + te_dut) * g
     t = t / l_out + (1 - 1 / l_out) * ts
     dut, floor = _density(K_B * (t + te_sa)), _density(K_B * (ts + te_sa))
-    return gain_method_point(dut, dut_gain_db, floor=floor, source_temperature_k=ts,
-                             input_loss_db=loss_in_db, output_loss_db=loss_out_db,
-                             **gain_kwargs)
+    return gain_method_point(
+        dut,
+        dut_gain_db,
+        floor=floor,
+        source_temperature_k=ts,
+        input_loss_db=loss_in_db,
+        output_loss_db=loss_out_db,
+        **gain_kwargs,
+    )
 
 
 def _budget_loss_sensitivities(point):
     inputs = UncertaintyInputs(input_loss_db=0.02, output_loss_db=0.02)
     budget = budget_for_point(point, inputs)
-    return (budget.contribution("input loss").sensitivity,
-            budget.contribution("output loss").sensitivity)
+    return (
+        budget.contribution("input loss").sensitivity,
+        budget.contribution("output loss").sensitivity,
+    )
 
 
 def _method_loss_sensitivities(stated_gain_db: float, **gain_kwargs):
@@ -151,11 +173,14 @@ def _method_loss_sensitivities(stated_gain_db: float, **gain_kwargs):
     return out
 
 
-@pytest.mark.parametrize("stated_gain_db, gain_kwargs", [
-    (20.0 - 0.5 - 1.0, {}),  # path gain (termination to analyzer): both losses inside
-    (20.0, {"gain_includes_losses": False}),  # the DUT's own gain (file or constant)
-    (20.0 - 0.5, {"gain_includes_output_loss": False}),  # substitution against a THROUGH
-])
+@pytest.mark.parametrize(
+    "stated_gain_db, gain_kwargs",
+    [
+        (20.0 - 0.5 - 1.0, {}),  # path gain (termination to analyzer): both losses inside
+        (20.0, {"gain_includes_losses": False}),  # the DUT's own gain (file or constant)
+        (20.0 - 0.5, {"gain_includes_output_loss": False}),  # substitution against a THROUGH
+    ],
+)
 def test_gain_budget_loss_sensitivity_matches_the_method(stated_gain_db, gain_kwargs):
     # JCGM 100:2008 §5.1.3: c_i = df/dx_i of the model the result was computed with. Before
     # the fix the budget always held the path gain fixed, so for a DUT's own gain it gave the
@@ -186,9 +211,14 @@ def test_sequencer_records_that_a_constant_gain_is_the_duts_own(tmp_path):
 def test_sequencer_records_that_a_measured_gain_holds_the_input_cable_only(tmp_path):
     # the measured gain is DUT / THROUGH: the THROUGH path holds the output cable, so the ratio
     # holds the input cable and the DUT (noisebench.sims.bench: DUT and THROUGH paths)
-    data = plan_dict("gain", freqs_hz=[FREQ_HZ],
-                     bench={"generator": {"resource": "sim", "max_level_dbm": -10.0},
-                            "noise_source": {"drive": "none"}})
+    data = plan_dict(
+        "gain",
+        freqs_hz=[FREQ_HZ],
+        bench={
+            "generator": {"resource": "sim", "max_level_dbm": -10.0},
+            "noise_source": {"drive": "none"},
+        },
+    )
     data["gain"] = {"source": "measure", "max_gain_db": 30.0, "dut_p1db_out_dbm": 14.0}
     plan = parse_plan(data)
     session = ideal_session(plan, seed=2)

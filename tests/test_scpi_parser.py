@@ -1,4 +1,4 @@
-"""SCPI-1999 / IEEE 488.2 program-message parsing (sims/scpi_parser.py), no sockets."""
+"""SCPI-1999 / IEEE 488.2 program-message parsing (noisebench/sims/scpi_parser.py), no sockets."""
 
 from __future__ import annotations
 
@@ -35,9 +35,8 @@ def _code(fn, *args, **kwargs) -> int:
 
 
 def test_units_split_at_semicolons_outside_quotes():
-    line = "FREQ:CENT 1e9;:SYST:ERR?; *IDN? ;LAB 'a;b';LAB \"c;\"\"d\""
-    assert split_units(line) == ["FREQ:CENT 1e9", ":SYST:ERR?", "*IDN?", "LAB 'a;b'",
-                                 'LAB "c;""d"']
+    line = 'FREQ:CENT 1e9;:SYST:ERR?; *IDN? ;LAB \'a;b\';LAB "c;""d"'
+    assert split_units(line) == ["FREQ:CENT 1e9", ":SYST:ERR?", "*IDN?", "LAB 'a;b'", 'LAB "c;""d"']
 
 
 def test_empty_units_are_dropped():
@@ -74,13 +73,16 @@ def test_common_command():
     assert unit.common and unit.query and unit.mnemonics == (Mnemonic("*ESR"),)
 
 
-@pytest.mark.parametrize("text, code", [
-    ("FREQ::CENT 1", -103),  # empty node
-    ("FREQ?:CENT", -102),  # misplaced '?'
-    ("FREQ 1,,2", -103),  # empty parameter
-    ("VERYLONGMNEMONIC 1", -112),  # IEEE 488.2, from memory: at most 12 characters
-    ("*1DN?", -102),
-])
+@pytest.mark.parametrize(
+    "text, code",
+    [
+        ("FREQ::CENT 1", -103),  # empty node
+        ("FREQ?:CENT", -102),  # misplaced '?'
+        ("FREQ 1,,2", -103),  # empty parameter
+        ("VERYLONGMNEMONIC 1", -112),  # IEEE 488.2, from memory: at most 12 characters
+        ("*1DN?", -102),
+    ],
+)
 def test_malformed_units(text, code):
     assert _code(parse_unit, text) == code
 
@@ -106,10 +108,19 @@ def _resolve(tree: CommandTree[str], text: str) -> str:
     return tree.resolve(parse_unit(text)).handler
 
 
-@pytest.mark.parametrize("text", [
-    "FREQ:CENT 1", "freq:cent 1", "FREQuency:CENTer 1", "FREQUENCY:CENTER 1",
-    "SENS:FREQ:CENT 1", "sense:frequency:center 1", ":SENS:FREQ:CENT 1", "Freq:Center 1",
-])
+@pytest.mark.parametrize(
+    "text",
+    [
+        "FREQ:CENT 1",
+        "freq:cent 1",
+        "FREQuency:CENTer 1",
+        "FREQUENCY:CENTER 1",
+        "SENS:FREQ:CENT 1",
+        "sense:frequency:center 1",
+        ":SENS:FREQ:CENT 1",
+        "Freq:Center 1",
+    ],
+)
 def test_short_long_optional_and_case_forms_resolve(tree, text):
     assert _resolve(tree, text) == "center"
 
@@ -165,16 +176,19 @@ def test_relative_header_after_an_omitted_optional_leaf(tree):
     marker = t.resolve(parse_unit("CALC:MARK3:X 1e9"))
     assert t.resolve(parse_unit("Y?"), marker).suffixes == (3,)
     # both readings of the path work: received nodes, and the full header
-    assert t.resolve(parse_unit("CURR 0.1"), t.resolve(parse_unit("SOUR:VOLT 28"))).handler \
-        == "curr"
-    assert t.resolve(parse_unit("BORD SWAP"), t.resolve(parse_unit("FORM REAL"))).handler \
-        == "order"
+    assert (
+        t.resolve(parse_unit("CURR 0.1"), t.resolve(parse_unit("SOUR:VOLT 28"))).handler == "curr"
+    )
+    assert t.resolve(parse_unit("BORD SWAP"), t.resolve(parse_unit("FORM REAL"))).handler == "order"
 
 
 def test_compile_pattern_forms():
     nodes = compile_pattern("[SENSe:]BANDwidth[:RESolution]")
     assert [(n.short, n.long, n.optional) for n in nodes] == [
-        ("SENS", "SENSE", True), ("BAND", "BANDWIDTH", False), ("RES", "RESOLUTION", True)]
+        ("SENS", "SENSE", True),
+        ("BAND", "BANDWIDTH", False),
+        ("RES", "RESOLUTION", True),
+    ]
 
 
 WORD = st.text(alphabet="abcdefghijklmnopqrstuvwxyz", min_size=1, max_size=5)
@@ -194,45 +208,57 @@ def test_any_pattern_word_accepts_exactly_its_two_forms(upper, lower):
 # ----------------------------------------------------------------------------- parameters
 
 
-@pytest.mark.parametrize("token, unit, value", [
-    ("1e9", "HZ", 1e9),
-    ("1 MHZ", "HZ", 1e6),  # SCPI-1999 Vol. 1, from memory: MHZ is megahertz
-    ("1MHz", "HZ", 1e6),
-    ("2.5 GHZ", "HZ", 2.5e9),
-    ("130 kHz", "HZ", 130e3),
-    ("1 MAHZ", "HZ", 1e6),
-    ("10 MS", "S", 10e-3),  # M is milli for every other unit
-    ("10 us", "S", 10e-6),
-    ("250 MA", "A", 0.25),
-    ("28 V", "V", 28.0),
-    ("-30 DBM", "DBM", -30.0),
-    ("10 dB", "DB", 10.0),
-    ("+.5", None, 0.5),
-    ("-1.5E+3", None, -1500.0),
-    ("1e-3 S", "S", 1e-3),
-])
+@pytest.mark.parametrize(
+    "token, unit, value",
+    [
+        ("1e9", "HZ", 1e9),
+        ("1 MHZ", "HZ", 1e6),  # SCPI-1999 Vol. 1, from memory: MHZ is megahertz
+        ("1MHz", "HZ", 1e6),
+        ("2.5 GHZ", "HZ", 2.5e9),
+        ("130 kHz", "HZ", 130e3),
+        ("1 MAHZ", "HZ", 1e6),
+        ("10 MS", "S", 10e-3),  # M is milli for every other unit
+        ("10 us", "S", 10e-6),
+        ("250 MA", "A", 0.25),
+        ("28 V", "V", 28.0),
+        ("-30 DBM", "DBM", -30.0),
+        ("10 dB", "DB", 10.0),
+        ("+.5", None, 0.5),
+        ("-1.5E+3", None, -1500.0),
+        ("1e-3 S", "S", 1e-3),
+    ],
+)
 def test_numeric_with_units(token, unit, value):
     assert parse_numeric(token, unit) == pytest.approx(value, rel=1e-15)
 
 
-@pytest.mark.parametrize("token, unit, code", [
-    ("abc", "HZ", -104),
-    ("1 V", "HZ", -131),  # wrong unit
-    ("1 QHZ", "HZ", -131),  # unknown multiplier
-    ("1 KDBM", "DBM", -131),  # log units take no multiplier
-    ("1 HZ", None, -138),  # unitless parameter
-    ("1e999", None, -222),  # overflows to inf
-    ("", None, -104),
-])
+@pytest.mark.parametrize(
+    "token, unit, code",
+    [
+        ("abc", "HZ", -104),
+        ("1 V", "HZ", -131),  # wrong unit
+        ("1 QHZ", "HZ", -131),  # unknown multiplier
+        ("1 KDBM", "DBM", -131),  # log units take no multiplier
+        ("1 HZ", None, -138),  # unitless parameter
+        ("1e999", None, -222),  # overflows to inf
+        ("", None, -104),
+    ],
+)
 def test_bad_numbers(token, unit, code):
     assert _code(parse_numeric, token, unit) == code
 
 
-@pytest.mark.parametrize("token, special", [
-    ("MIN", NumericSpecial.MINIMUM), ("minimum", NumericSpecial.MINIMUM),
-    ("MAX", NumericSpecial.MAXIMUM), ("Maximum", NumericSpecial.MAXIMUM),
-    ("DEF", NumericSpecial.DEFAULT), ("default", NumericSpecial.DEFAULT),
-])
+@pytest.mark.parametrize(
+    "token, special",
+    [
+        ("MIN", NumericSpecial.MINIMUM),
+        ("minimum", NumericSpecial.MINIMUM),
+        ("MAX", NumericSpecial.MAXIMUM),
+        ("Maximum", NumericSpecial.MAXIMUM),
+        ("DEF", NumericSpecial.DEFAULT),
+        ("default", NumericSpecial.DEFAULT),
+    ],
+)
 def test_min_max_def(token, special):
     assert parse_numeric(token, "HZ") is special
     assert _code(parse_numeric, token, "HZ", allow_special=False) == -224
@@ -245,10 +271,21 @@ def test_integer_rounds_like_ieee4882():
     assert parse_integer("MAX") is NumericSpecial.MAXIMUM
 
 
-@pytest.mark.parametrize("token, value", [
-    ("ON", True), ("on", True), ("OFF", False), ("off", False), ("1", True), ("0", False),
-    ("0.4", False), ("0.6", True), ("-1", True), ("2", True),
-])
+@pytest.mark.parametrize(
+    "token, value",
+    [
+        ("ON", True),
+        ("on", True),
+        ("OFF", False),
+        ("off", False),
+        ("1", True),
+        ("0", False),
+        ("0.4", False),
+        ("0.6", True),
+        ("-1", True),
+        ("2", True),
+    ],
+)
 def test_booleans(token, value):
     # SCPI-1999 Vol. 1, from memory: numeric booleans are rounded; non-zero is ON
     assert parse_boolean(token) is value

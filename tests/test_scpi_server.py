@@ -1,4 +1,5 @@
-"""The SCPI simulator server over real loopback sockets (sims/scpi_server.py and friends)."""
+"""The SCPI simulator server over real loopback sockets (noisebench/sims/scpi_server.py and
+friends)."""
 
 from __future__ import annotations
 
@@ -21,10 +22,10 @@ TIMEOUT_S = 2.0
 class Client:
     """A bare SCPI-over-TCP client: newline-terminated lines, exact-length reads."""
 
-    def __init__(self, server: SimServer, which: str = "analyzer",
-                 timeout_s: float = TIMEOUT_S) -> None:
-        self.sock = socket.create_connection(("127.0.0.1", server.ports[which]),
-                                             timeout=timeout_s)
+    def __init__(
+        self, server: SimServer, which: str = "analyzer", timeout_s: float = TIMEOUT_S
+    ) -> None:
+        self.sock = socket.create_connection(("127.0.0.1", server.ports[which]), timeout=timeout_s)
         self.buffer = bytearray()
 
     def write(self, line: str, end: bytes = b"\n") -> None:
@@ -99,8 +100,7 @@ def connect():
     """``connect(server, which="analyzer", timeout_s=...)``: a Client closed after the test."""
     opened: list[Client] = []
 
-    def factory(server: SimServer, which: str = "analyzer",
-                timeout_s: float = TIMEOUT_S) -> Client:
+    def factory(server: SimServer, which: str = "analyzer", timeout_s: float = TIMEOUT_S) -> Client:
         opened.append(Client(server, which, timeout_s))
         return opened[-1]
 
@@ -127,8 +127,11 @@ def _sim_threads() -> list[threading.Thread]:
 
 def test_identity_of_each_instrument(sim_server, connect):
     bench = sim_server.bench
-    expected = {"analyzer": bench.analyzer.identity, "generator": bench.generator.identity,
-                "supply": bench.supply.identity}
+    expected = {
+        "analyzer": bench.analyzer.identity,
+        "generator": bench.generator.identity,
+        "supply": bench.supply.identity,
+    }
     for name in INSTRUMENTS:
         c = connect(sim_server, name)
         assert c.query("*IDN?") == expected[name]
@@ -136,7 +139,8 @@ def test_identity_of_each_instrument(sim_server, connect):
         assert c.query("*TST?") == "0"
         c.close()
     assert sim_server.resource("analyzer") == (
-        f"TCPIP0::127.0.0.1::{sim_server.ports['analyzer']}::SOCKET")
+        f"TCPIP0::127.0.0.1::{sim_server.ports['analyzer']}::SOCKET"
+    )
     assert len(set(sim_server.ports.values())) == 3
 
 
@@ -191,17 +195,20 @@ def test_analyzer_round_trip(client, command, query, reply):
     assert client.errors() == []
 
 
-@pytest.mark.parametrize("which, command, query, reply", [
-    ("generator", "FREQ 2 GHZ", "FREQ?", "2000000000"),
-    ("generator", "SOUR:FREQ:CW 1.5e9", "SOUR:FREQ?", "1500000000"),
-    ("generator", "POW -40", "POW?", "-40"),
-    ("generator", "SOUR:POW:LEV:IMM:AMPL -12.5 DBM", "POW?", "-12.5"),
-    ("generator", "OUTP ON", "OUTP:STAT?", "1"),
-    ("supply", "VOLT 28", "VOLT?", "28"),
-    ("supply", "SOUR:VOLT:LEV:IMM:AMPL 27.5 V", "VOLT?", "27.5"),
-    ("supply", "CURR 50 MA", "CURR?", "0.05"),
-    ("supply", "OUTP ON", "OUTP?", "1"),
-])
+@pytest.mark.parametrize(
+    "which, command, query, reply",
+    [
+        ("generator", "FREQ 2 GHZ", "FREQ?", "2000000000"),
+        ("generator", "SOUR:FREQ:CW 1.5e9", "SOUR:FREQ?", "1500000000"),
+        ("generator", "POW -40", "POW?", "-40"),
+        ("generator", "SOUR:POW:LEV:IMM:AMPL -12.5 DBM", "POW?", "-12.5"),
+        ("generator", "OUTP ON", "OUTP:STAT?", "1"),
+        ("supply", "VOLT 28", "VOLT?", "28"),
+        ("supply", "SOUR:VOLT:LEV:IMM:AMPL 27.5 V", "VOLT?", "27.5"),
+        ("supply", "CURR 50 MA", "CURR?", "0.05"),
+        ("supply", "OUTP ON", "OUTP?", "1"),
+    ],
+)
 def test_generator_and_supply_round_trip(sim_server, which, command, query, reply, connect):
     c = connect(sim_server, which)
     c.write(command)
@@ -223,14 +230,16 @@ def test_queries_return_applied_values(client, sim_server):
     assert float(client.query("SWE:TIME?")) == applied.sweep_time_s
     assert float(client.query("DET:SAMP?")) == applied.detector_samples
     assert float(client.query("SWE:ACQ:TIME?")) == pytest.approx(
-        sim_server.bench.analyzer.expected_acquisition_time_s())
+        sim_server.bench.analyzer.expected_acquisition_time_s()
+    )
     assert client.errors() == []
 
 
 def test_start_stop_keep_the_other_edge(client):
     client.write("FREQ:CENT 2e9;SPAN 10e6;STAR 1.99e9")
-    assert client.query("FREQ:STAR?;STOP?;CENT?;SPAN?") == "1990000000;2005000000;1997500000;" \
-                                                            "15000000"
+    assert (
+        client.query("FREQ:STAR?;STOP?;CENT?;SPAN?") == "1990000000;2005000000;1997500000;15000000"
+    )
     client.write("FREQ:STOP 2.01e9")
     assert client.query("FREQ:CENT?;SPAN?") == "2000000000;20000000"
 
@@ -295,8 +304,10 @@ def test_execution_error_does_not_stop_the_line(client):
 
 def test_rst_restores_power_on_settings(client):
     client.write("FREQ:CENT 2e9;:DET SAMP;:FORM REAL,32;:CALC:MARK:FUNC NOIS;:OUTP:NOIS ON")
-    assert client.query("*RST;:FREQ:CENT?;:DET?;:FORM?;:CALC:MARK:FUNC?;:OUTP:NOIS?") == \
-        "1000000000;RMS;ASC;OFF;0"
+    assert (
+        client.query("*RST;:FREQ:CENT?;:DET?;:FORM?;:CALC:MARK:FUNC?;:OUTP:NOIS?")
+        == "1000000000;RMS;ASC;OFF;0"
+    )
     assert client.errors() == []
 
 
@@ -313,14 +324,17 @@ def test_supply_measures_what_the_bench_delivers(sim_server, connect):
     s.close()
 
 
-@pytest.mark.parametrize("which, command, code", [
-    ("generator", "FREQ 1e12", -222),
-    ("generator", "POW 99", -222),
-    ("generator", "OUTP MAYBE", -104),
-    ("supply", "VOLT 1e3", -222),
-    ("supply", "CURR -1", -222),
-    ("supply", "MEAS:VOLT 3", -113),  # query only
-])
+@pytest.mark.parametrize(
+    "which, command, code",
+    [
+        ("generator", "FREQ 1e12", -222),
+        ("generator", "POW 99", -222),
+        ("generator", "OUTP MAYBE", -104),
+        ("supply", "VOLT 1e3", -222),
+        ("supply", "CURR -1", -222),
+        ("supply", "MEAS:VOLT 3", -113),  # query only
+    ],
+)
 def test_generator_and_supply_errors(sim_server, which, command, code, connect):
     c = connect(sim_server, which)
     c.write(command)
@@ -348,7 +362,8 @@ def test_without_wall_clock_only_instrument_time_passes(connect):
         assert bench.clock.now_s == before
         _acquire(c, points=11)
         assert bench.clock.now_s - before == pytest.approx(
-            bench.analyzer.last_trace.acquisition_time_s, rel=1e-9)
+            bench.analyzer.last_trace.acquisition_time_s, rel=1e-9
+        )
         c.close()
 
 
@@ -362,27 +377,30 @@ def test_overlong_line_is_too_much_data(client):
 # ----------------------------------------------------------------------------- errors
 
 
-@pytest.mark.parametrize("command, code", [
-    ("FOO:BAR 1", -113),
-    ("FREQ:CENTR 1e9", -113),
-    ("INIT?", -113),  # no query form
-    ("CALC:MARK9:X 1e9", -114),
-    ("FREQ:CENT 1e12", -222),  # above the scenario analyzer's range
-    ("AVER:COUN 0", -222),
-    ("*ESE 256", -222),
-    ("FREQ:CENT abc", -104),
-    ("FREQ:CENT 1 V", -131),
-    ("SWE:POIN 1 HZ", -138),
-    ("FREQ:CENT", -109),
-    ("FREQ:CENT 1,2", -108),
-    ("DET PEAKY", -224),
-    ("FORM REAL,16", -224),
-    ("TRAC? TRACE2", -224),
-    ("TRAC? TRACE1", -230),  # no acquisition yet
-    ("FREQ:CENT 1e9;SPAN 1e6;STAR 2e9", -221),  # start above stop
-    ("BAND:POL 4", -221),  # poles need the synchronous shape
-    ("FREQ:CENT 1e9\u00b5", -101),
-])
+@pytest.mark.parametrize(
+    "command, code",
+    [
+        ("FOO:BAR 1", -113),
+        ("FREQ:CENTR 1e9", -113),
+        ("INIT?", -113),  # no query form
+        ("CALC:MARK9:X 1e9", -114),
+        ("FREQ:CENT 1e12", -222),  # above the scenario analyzer's range
+        ("AVER:COUN 0", -222),
+        ("*ESE 256", -222),
+        ("FREQ:CENT abc", -104),
+        ("FREQ:CENT 1 V", -131),
+        ("SWE:POIN 1 HZ", -138),
+        ("FREQ:CENT", -109),
+        ("FREQ:CENT 1,2", -108),
+        ("DET PEAKY", -224),
+        ("FORM REAL,16", -224),
+        ("TRAC? TRACE2", -224),
+        ("TRAC? TRACE1", -230),  # no acquisition yet
+        ("FREQ:CENT 1e9;SPAN 1e6;STAR 2e9", -221),  # start above stop
+        ("BAND:POL 4", -221),  # poles need the synchronous shape
+        ("FREQ:CENT 1e9\u00b5", -101),
+    ],
+)
 def test_error_numbers(sim_server, command, code, connect):
     c = connect(sim_server)
     c.sock.sendall(command.encode("utf-8") + b"\n")
@@ -476,7 +494,7 @@ def test_normal_marker_reads_the_nearest_trace_point(client):
 
 
 def test_marker_functions_use_the_last_trace(client, sim_server):
-    from noisebench.acquisition import MarkerKind
+    from noisebench.bench.acquisition import MarkerKind
     from noisebench.sims.analyzer import marker_from_trace
 
     client.write("FREQ:CENT 1e9;SPAN 20e6;:BAND 1e6;:DET RMS;:CALC:MARK:FUNC NOIS")
@@ -524,8 +542,9 @@ def test_wai_orders_the_next_command(client):
 @pytest.fixture
 def slow_server():
     """A server whose acquisitions take a long real time (ended by ABORt or stop)."""
-    server = SimServer(SimulatedBench.from_scenario("demo-lna", seed=2),
-                       acquisition_time_scale=1e4).start()
+    server = SimServer(
+        SimulatedBench.from_scenario("demo-lna", seed=2), acquisition_time_scale=1e4
+    ).start()
     yield server
     server.stop()
 
@@ -600,8 +619,11 @@ def test_command_log_records_each_line(sim_server, connect):
     a.query("FREQ:CENT 2e9;:FREQ:CENT?")
     g.query("FREQ?")
     a.query("*IDN?")
-    assert sim_server.command_log == [("analyzer", "FREQ:CENT 2e9;:FREQ:CENT?"),
-                                      ("generator", "FREQ?"), ("analyzer", "*IDN?")]
+    assert sim_server.command_log == [
+        ("analyzer", "FREQ:CENT 2e9;:FREQ:CENT?"),
+        ("generator", "FREQ?"),
+        ("analyzer", "*IDN?"),
+    ]
     a.close()
     g.close()
 
@@ -655,16 +677,18 @@ def test_through_pyvisa_socket_resource(sim_server):
     import pyvisa
 
     rm = pyvisa.ResourceManager("@py")
-    inst = rm.open_resource(sim_server.resource("analyzer"), read_termination="\n",
-                            write_termination="\n", timeout=2000)
+    inst = rm.open_resource(
+        sim_server.resource("analyzer"), read_termination="\n", write_termination="\n", timeout=2000
+    )
     try:
         assert inst.query("*IDN?") == sim_server.bench.analyzer.identity
         inst.write("FREQ:CENT 1.5 GHZ;SPAN 5 MHZ;:SWE:POIN 1001;:AVER:COUN 2")
         assert inst.query("*OPC?;:FREQ:CENT?") == "1;1500000000"
         assert inst.query("INIT;*OPC?") == "1"
         inst.write("FORM REAL,32;BORD NORM")
-        binary = inst.query_binary_values("TRAC? TRACE1", datatype="f", is_big_endian=True,
-                                          container=np.array)
+        binary = inst.query_binary_values(
+            "TRAC? TRACE1", datatype="f", is_big_endian=True, container=np.array
+        )
         inst.write("FORM ASC")
         ascii_values = inst.query_ascii_values("TRAC? TRACE1", container=np.array)
         assert binary.size == 1001
@@ -828,8 +852,10 @@ def test_fault_stuck_noise_source_gives_y_of_one(sim_server, connect):
     c = connect(sim_server)
     # points 2 RBW apart are practically uncorrelated (Gaussian RBW), so the standard error of
     # the trace mean follows from the trace's own scatter
-    c.write("SIM:PATH THR;:FREQ:CENT 1e9;SPAN 40e6;:BAND 100e3;:SWE:POIN 201;"
-            ":DET RMS;:AVER:TYPE POW;COUN 2;:INP:ATT 0")
+    c.write(
+        "SIM:PATH THR;:FREQ:CENT 1e9;SPAN 40e6;:BAND 100e3;:SWE:POIN 201;"
+        ":DET RMS;:AVER:TYPE POW;COUN 2;:INP:ATT 0"
+    )
     y, u_y = _y_factor(c, None, settle_s)
     assert y > 1 + 10 * u_y  # working source: hot clearly above cold
     sim_server.faults.stuck_noise_source = True
@@ -857,8 +883,14 @@ def test_faults_clear_turns_everything_off(sim_server):
     f.reply_delay_s, f.drop_after_commands, f.drop_mid_block = 1.0, 3, True
     f.truncate_block = f.corrupt_block = f.stuck_noise_source = True
     f.clear()
-    assert (f.reply_delay_s, f.drop_after_commands, f.drop_mid_block, f.truncate_block,
-            f.corrupt_block, f.stuck_noise_source) == (0.0, None, False, False, False, False)
+    assert (
+        f.reply_delay_s,
+        f.drop_after_commands,
+        f.drop_mid_block,
+        f.truncate_block,
+        f.corrupt_block,
+        f.stuck_noise_source,
+    ) == (0.0, None, False, False, False, False)
     assert sim_server.bench.noise_source.stuck is False
     with pytest.raises(ValueError):
         f.reply_delay_s = -1
@@ -871,8 +903,12 @@ def test_console_entry_prints_resources_and_stops():
     out = io.StringIO()
     stop = threading.Event()
     stop.set()  # return as soon as the resources are printed
-    assert serve_main(["--scenario", "demo-lna", "--seed", "3", "--port", "0"], out=out,
-                      stop_event=stop) == 0
+    assert (
+        serve_main(
+            ["--scenario", "demo-lna", "--seed", "3", "--port", "0"], out=out, stop_event=stop
+        )
+        == 0
+    )
     text = out.getvalue()
     for name in INSTRUMENTS:
         assert f"  {name}" in text

@@ -15,21 +15,21 @@ from _sequencer_helpers import (
     plan_dict,
 )
 
-from noisebench.averaging import averages_for_target, combine_densities
-from noisebench.calibration import CalibrationStore
-from noisebench.density import NoiseDensity
+from noisebench.bench.registry import Connection, simulated_session
 from noisebench.errors import CommunicationError, SafetyError
-from noisebench.plan import parse_plan
-from noisebench.point import PointFlag
-from noisebench.registry import Connection, simulated_session
-from noisebench.results import load_run
-from noisebench.safety import (
+from noisebench.results.store import load_run
+from noisebench.running.calibration import CalibrationStore
+from noisebench.running.plan import parse_plan
+from noisebench.running.safety import (
     InputLimits,
     check_input_power,
     hot_source_temperature_k,
     total_noise_power_dbm,
 )
-from noisebench.sequencer import Sequencer, plan_groups
+from noisebench.running.sequencer import Sequencer, plan_groups
+from noisebench.science.averaging import averages_for_target, combine_densities
+from noisebench.science.density import NoiseDensity
+from noisebench.science.point import PointFlag
 
 
 def _run(plan, session, tmp_path, name="run", **kwargs):
@@ -39,8 +39,9 @@ def _run(plan, session, tmp_path, name="run", **kwargs):
 
 def _z_scores(record, sim):
     truth = sim.truth([p.freq_hz for p in record.points])
-    return np.array([(p.nf_db - nf) / p.u_nf_db for p, nf in zip(record.points, truth["nf_db"],
-                                                                 strict=True)])
+    return np.array(
+        [(p.nf_db - nf) / p.u_nf_db for p, nf in zip(record.points, truth["nf_db"], strict=True)]
+    )
 
 
 # --------------------------------------------------------------------------- accuracy
@@ -71,7 +72,8 @@ def test_gain_method_recovers_truth_within_stated_uncertainty(tmp_path):
     # the input loss is de-embedded: without it the NF would read ~0.3 dB high
     truth = session.sim.truth([p.freq_hz for p in record.points])
     assert np.mean([p.nf_db for p in record.points]) == pytest.approx(
-        np.mean(truth["nf_db"]), abs=IDEAL_INPUT_LOSS_DB / 3)
+        np.mean(truth["nf_db"]), abs=IDEAL_INPUT_LOSS_DB / 3
+    )
 
 
 def test_both_methods_agree_on_the_same_bench(tmp_path):
@@ -101,8 +103,7 @@ def test_calibration_reused_while_settings_match_then_measured_again(tmp_path):
     assert Connection.THROUGH not in session.moves[moves_before:]
     assert record.info.status == "complete"
 
-    wider = make_plan("y_factor", freqs_hz=[2e9, 3e9], acquisition={"rbw_hz": 2e6,
-                                                                     "span_hz": 20e6})
+    wider = make_plan("y_factor", freqs_hz=[2e9, 3e9], acquisition={"rbw_hz": 2e6, "span_hz": 20e6})
     third, _ = _run(wider, session, tmp_path, "c", calibrations=store)
     assert third.calibrations_measured == 2  # RBW changed: the stored calibration is invalid
     assert session.moves[-2:] == [Connection.THROUGH, Connection.DUT]
@@ -115,7 +116,8 @@ def test_calibration_expires_after_max_age(tmp_path):
     _run(plan, session, tmp_path, "a", calibrations=store)
     entry = store.entries[0]
     store.entries[0] = entry.model_copy(
-        update={"measured_at": entry.measured_at.replace(year=entry.measured_at.year - 1)})
+        update={"measured_at": entry.measured_at.replace(year=entry.measured_at.year - 1)}
+    )
     again, _ = _run(plan, session, tmp_path, "b", calibrations=store)
     assert again.calibrations_measured == 1
 
@@ -153,8 +155,9 @@ def test_adaptive_averaging_stops_at_the_target_and_scales_as_radiometer(tmp_pat
 
 
 def test_time_limit_flags_points_and_respects_the_budget(tmp_path):
-    plan = make_plan("y_factor", freqs_hz=[2e9, 4e9], target=0.005,
-                     acquisition={"time_limit_s": 0.5})
+    plan = make_plan(
+        "y_factor", freqs_hz=[2e9, 4e9], target=0.005, acquisition={"time_limit_s": 0.5}
+    )
     _, record = _run(plan, ideal_session(plan), tmp_path)
     for p in record.points:
         assert PointFlag.TIME_LIMIT in p.flags
@@ -165,8 +168,9 @@ def test_time_limit_flags_points_and_respects_the_budget(tmp_path):
 
 
 def test_max_averages_stops_without_time_flag(tmp_path):
-    plan = make_plan("gain", freqs_hz=[2e9], target=0.005,
-                     acquisition={"max_averages": 40, "min_averages": 4})
+    plan = make_plan(
+        "gain", freqs_hz=[2e9], target=0.005, acquisition={"max_averages": 40, "min_averages": 4}
+    )
     _, record = _run(plan, ideal_session(plan), tmp_path)
     (p,) = record.points
     assert p.notes["stopped_by"] == "max_averages"
@@ -187,8 +191,11 @@ def test_hot_cold_rounds_are_symmetric_and_recorded(tmp_path):
 
 
 def test_points_sharing_a_trace_are_grouped():
-    plan = make_plan("gain", freqs_hz=[2.000e9, 2.010e9, 2.020e9, 3e9],
-                     acquisition={"max_trace_span_hz": 50e6, "span_hz": 10e6})
+    plan = make_plan(
+        "gain",
+        freqs_hz=[2.000e9, 2.010e9, 2.020e9, 3e9],
+        acquisition={"max_trace_span_hz": 50e6, "span_hz": 10e6},
+    )
     groups = plan_groups(plan.points())
     assert [g.freqs_hz for g in groups] == [(2.000e9, 2.010e9, 2.020e9), (3e9,)]
     assert groups[0].span_hz == pytest.approx(20e6 + 10e6 * 1.02)
@@ -196,13 +203,15 @@ def test_points_sharing_a_trace_are_grouped():
 
 
 def test_grouped_points_measure_from_shared_traces(tmp_path):
-    plan = make_plan("gain", freqs_hz=[2.000e9, 2.010e9, 2.020e9],
-                     acquisition={"max_trace_span_hz": 50e6})
+    plan = make_plan(
+        "gain", freqs_hz=[2.000e9, 2.010e9, 2.020e9], acquisition={"max_trace_span_hz": 50e6}
+    )
     session = ideal_session(plan)
     _, record = _run(plan, session, tmp_path)
     assert {p.notes["group"] for p in record.points} == {0}
     assert sum(p.instrument_time_s for p in record.points) == pytest.approx(
-        record.points[0].instrument_time_s * 3)
+        record.points[0].instrument_time_s * 3
+    )
     assert np.all(np.abs(_z_scores(record, session.sim)) < 4.0)
 
 
@@ -210,8 +219,9 @@ def test_grouped_points_measure_from_shared_traces(tmp_path):
 
 
 def test_hot_switch_refused_when_the_analyzer_would_compress(tmp_path):
-    plan = make_plan("y_factor", freqs_hz=[2e9],
-                     safety={"dut_max_gain_db": 60.0, "dut_bandwidth_hz": 20e9})
+    plan = make_plan(
+        "y_factor", freqs_hz=[2e9], safety={"dut_max_gain_db": 60.0, "dut_bandwidth_hz": 20e9}
+    )
     session = ideal_session(plan)
     seq = Sequencer(plan, session)
     with pytest.raises(SafetyError, match="below its compression"):
@@ -235,7 +245,7 @@ def test_pre_switch_power_estimate_matches_reference_example():
     # reference.md §11: ENR 15 dB source, G = 30 dB over 10 GHz -> about -28.76 dBm
     # (a DUT with NF 2 dB, Te = 290 (10^0.2 - 1) K, recomputed here)
     th = hot_source_temperature_k(15.0, 290.0)
-    te = 290.0 * (10 ** 0.2 - 1)
+    te = 290.0 * (10**0.2 - 1)
     assert total_noise_power_dbm(th, 30.0, 10e9, dut_te_k=te) == pytest.approx(-28.77, abs=0.01)
     limits = InputLimits(max_input_dbm=20.0, compression_dbm=-10.0)
     check = check_input_power(-28.8, limits, what="test", attenuation_db=0)
@@ -279,8 +289,11 @@ def test_interrupt_during_acquisition_leaves_source_off(tmp_path, monkeypatch):
         calls["n"] += 1
         if calls.get("stopped"):
             raise AssertionError("acquired after the interrupt")
-        if calls["n"] > 5 and session.connection is Connection.DUT and \
-                session.sim.noise_source.is_hot:
+        if (
+            calls["n"] > 5
+            and session.connection is Connection.DUT
+            and session.sim.noise_source.is_hot
+        ):
             calls["stopped"] = True
             raise KeyboardInterrupt
         return real()
@@ -316,8 +329,10 @@ def test_instrument_fault_reported_with_its_frequency(tmp_path, monkeypatch):
 
 
 def test_combined_density_is_the_sample_weighted_mean():
-    parts = [NoiseDensity(freq_hz=1e9, density_w_per_hz=d, u_density_w_per_hz=u)
-             for d, u in ((1.0e-20, 0.1e-20), (1.2e-20, 0.06e-20))]
+    parts = [
+        NoiseDensity(freq_hz=1e9, density_w_per_hz=d, u_density_w_per_hz=u)
+        for d, u in ((1.0e-20, 0.1e-20), (1.2e-20, 0.06e-20))
+    ]
     c = combine_densities(parts)
     w = np.array([1 / 0.1**2, 1.2**2 / 0.06**2])  # (N/u)^2: independent samples
     expected = (w[0] * 1.0 + w[1] * 1.2) / w.sum() * 1e-20
@@ -329,8 +344,10 @@ def test_combined_density_is_the_sample_weighted_mean():
 
 
 def test_between_reading_scatter_widens_and_flags():
-    parts = [NoiseDensity(freq_hz=1e9, density_w_per_hz=d, u_density_w_per_hz=0.01e-20)
-             for d in (1.0e-20, 1.1e-20, 0.9e-20)]
+    parts = [
+        NoiseDensity(freq_hz=1e9, density_w_per_hz=d, u_density_w_per_hz=0.01e-20)
+        for d in (1.0e-20, 1.1e-20, 0.9e-20)
+    ]
     c = combine_densities(parts)
     d = np.array([1.0, 1.1, 0.9]) * 1e-20
     w = (d / 0.01e-20) ** 2
@@ -370,11 +387,16 @@ def test_point_the_physics_refuses_is_skipped_and_reported(tmp_path):
     # THROUGH calibration sees hot == cold there; 1 GHz is measured normally
     # a limit every measured point meets by far: the unit still must not pass, since a
     # planned point is missing
-    plan = make_plan("y_factor", freqs_hz=[1e9, 5e9], acquisition={"time_limit_s": 2},
-                     limits={"bands": [{"start_hz": 0.5e9, "stop_hz": 6e9, "nf_max_db": 10.0}],
-                             "require_coverage": False})
-    session = ideal_session(plan, analyzer__nf_db=[11.0, 11.0, 11.0, 11.5, 13.0, 16.0, 60.0,
-                                                   60.0])
+    plan = make_plan(
+        "y_factor",
+        freqs_hz=[1e9, 5e9],
+        acquisition={"time_limit_s": 2},
+        limits={
+            "bands": [{"start_hz": 0.5e9, "stop_hz": 6e9, "nf_max_db": 10.0}],
+            "require_coverage": False,
+        },
+    )
+    session = ideal_session(plan, analyzer__nf_db=[11.0, 11.0, 11.0, 11.5, 13.0, 16.0, 60.0, 60.0])
     seq = Sequencer(plan, session)
     record = seq.run(tmp_path / "run")
     assert record.info.status == "complete"
@@ -389,19 +411,19 @@ def test_point_the_physics_refuses_is_skipped_and_reported(tmp_path):
 
 
 def test_progress_lines_name_point_nf_and_time_left(tmp_path, caplog):
-    from noisebench.progress import LogProgress
+    from noisebench.running.progress import LogProgress
 
     plan = make_plan("gain", freqs_hz=[1e9, 2e9])
-    with caplog.at_level("INFO", logger="noisebench.progress"):
+    with caplog.at_level("INFO", logger="noisebench.running.progress"):
         Sequencer(plan, ideal_session(plan), progress=LogProgress()).run(tmp_path / "run")
-    lines = [r.getMessage() for r in caplog.records if r.name == "noisebench.progress"]
+    lines = [r.getMessage() for r in caplog.records if r.name == "noisebench.running.progress"]
     assert lines[0] == "gain TEST-LNA: 2 points to measure"
     assert lines[1].startswith("point 1/2 1 GHz: NF ") and "left" in lines[1]
     assert lines[2].startswith("point 2/2 2 GHz: NF ") and "gain 25.00 dB" in lines[2]
 
 
 def test_forecast_matches_the_measured_averaging(tmp_path):
-    from noisebench.forecast import forecast_plan
+    from noisebench.running.forecast import forecast_plan
 
     for method in ("y_factor", "gain"):
         plan = make_plan(method, freqs_hz=[1.5e9, 2e9, 2.5e9, 3e9], target=0.05)
@@ -415,24 +437,27 @@ def test_forecast_matches_the_measured_averaging(tmp_path):
 
 
 def test_real_bench_connections_prompt_the_operator():
-    from noisebench.registry import OPERATOR_INSTRUCTIONS, BenchSession, _operator_mover
+    from noisebench.bench.registry import OPERATOR_INSTRUCTIONS, BenchSession, _operator_mover
 
     prompts: list[str] = []
     bench = ideal_sim().as_bench()
-    session = BenchSession(bench=bench, kind="scpi", resources={},
-                           _move=_operator_mover(prompts.append))
+    session = BenchSession(
+        bench=bench, kind="scpi", resources={}, _move=_operator_mover(prompts.append)
+    )
     session.connect("termination")
     session.connect("termination")  # already there: no second prompt
     session.connect("dut")
-    assert prompts == [OPERATOR_INSTRUCTIONS[Connection.TERMINATION] + " Press Enter when done. ",
-                       OPERATOR_INSTRUCTIONS[Connection.DUT] + " Press Enter when done. "]
+    assert prompts == [
+        OPERATOR_INSTRUCTIONS[Connection.TERMINATION] + " Press Enter when done. ",
+        OPERATOR_INSTRUCTIONS[Connection.DUT] + " Press Enter when done. ",
+    ]
     assert session.real_hardware
 
 
 def test_live_progress_only_on_an_interactive_terminal(monkeypatch):
     import io
 
-    from noisebench.progress import LogProgress, RichProgress, make_progress
+    from noisebench.running.progress import LogProgress, RichProgress, make_progress
 
     class Terminal(io.StringIO):
         def isatty(self) -> bool:
@@ -452,18 +477,24 @@ def test_declared_gain_alone_is_no_upper_bound_of_the_hot_power():
     # 10*log10(1 + Te/Th) = 4.48 dB above the gain-only figure (reference.md §1-§2 formulas).
     import math
 
-    from noisebench.safety import InputLimits, PowerGuard, total_noise_power_dbm
+    from noisebench.running.safety import InputLimits, PowerGuard, total_noise_power_dbm
 
-    limits = InputLimits(max_input_dbm=20.0, compression_dbm=-10.0,
-                         compression_backoff_db=10.0, caution_backoff_db=20.0)
+    limits = InputLimits(
+        max_input_dbm=20.0,
+        compression_dbm=-10.0,
+        compression_backoff_db=10.0,
+        caution_backoff_db=20.0,
+    )
     kw = dict(bandwidth_hz=10e9, declared_gain_db=30.0, enr_db=6.0, cold_temperature_k=290.0)
     gain_only = PowerGuard(limits, **kw)
     assert gain_only.needs_cold_look  # no NF declared: read the DUT cold before going hot
     with_nf = PowerGuard(limits, declared_nf_db=10.0, **kw)
     assert not with_nf.needs_cold_look
-    th = 290.0 * 10 ** 0.6 + 290.0
-    te = 290.0 * (10 ** 1.0 - 1)
+    th = 290.0 * 10**0.6 + 290.0
+    te = 290.0 * (10**1.0 - 1)
     assert with_nf.expected_hot_power_dbm(through=False) == pytest.approx(
-        total_noise_power_dbm(th, 30.0, 10e9) + 10 * math.log10(1 + te / th))
-    assert with_nf.expected_hot_power_dbm(through=False) - \
-        gain_only.expected_hot_power_dbm(through=False) == pytest.approx(4.482, abs=0.001)
+        total_noise_power_dbm(th, 30.0, 10e9) + 10 * math.log10(1 + te / th)
+    )
+    assert with_nf.expected_hot_power_dbm(through=False) - gain_only.expected_hot_power_dbm(
+        through=False
+    ) == pytest.approx(4.482, abs=0.001)

@@ -12,16 +12,16 @@ import pytest
 from scipy.constants import k as K_BOLTZMANN
 from scipy.signal import get_window
 
-from noisebench.acquisition import (
+from noisebench.bench.acquisition import (
     AcquisitionRequest,
     AveragingScale,
     Detector,
     MarkerKind,
     SweepMode,
 )
+from noisebench.bench.instruments import Analyzer, Bench, Generator, NoiseSource
 from noisebench.errors import InputError
-from noisebench.filters import FilterKind, RbwFilter
-from noisebench.instruments import Analyzer, Bench, Generator, NoiseSource
+from noisebench.science.filters import FilterKind, RbwFilter
 from noisebench.sims.analyzer import round_125, round_step
 from noisebench.sims.bench import Path, SimulatedBench
 from noisebench.sims.clock import SimClock
@@ -81,8 +81,7 @@ def test_scenario_loads_from_a_path(tmp_path):
 
     text = (scenario_dir() / "attenuator-6db.toml").read_text(encoding="utf-8")
     path = tmp_path / "my-bench.toml"
-    path.write_text(text.replace('name = "attenuator-6db"', 'name = "my-bench"'),
-                    encoding="utf-8")
+    path.write_text(text.replace('name = "attenuator-6db"', 'name = "my-bench"'), encoding="utf-8")
     bench = SimulatedBench.from_scenario(str(path), seed=2)
     assert bench.scenario.name == "my-bench" and bench.seed == 2
     path.write_text("name = [", encoding="utf-8")
@@ -114,22 +113,38 @@ def test_clock_advances_and_refuses_going_back():
 # ---------------------------------------------------------------- settings ------------------
 
 
-@pytest.mark.parametrize(("asked", "applied"), [
-    (1.1e6, 1e6), (2.6e6, 3e6), (4.2e3, 5e3), (3.8e3, 3e3), (6.9e5, 5e5), (7.2e5, 1e6),
-    (1e9, 10e6), (0.1, 1.0)])
+@pytest.mark.parametrize(
+    ("asked", "applied"),
+    [
+        (1.1e6, 1e6),
+        (2.6e6, 3e6),
+        (4.2e3, 5e3),
+        (3.8e3, 3e3),
+        (6.9e5, 5e5),
+        (7.2e5, 1e6),
+        (1e9, 10e6),
+        (0.1, 1.0),
+    ],
+)
 def test_rbw_rounds_to_the_1_2_3_5_sequence_within_limits(asked, applied):
     assert round_125(asked, 1.0, 10e6) == pytest.approx(applied)
 
 
 def test_attenuation_rounds_to_2_db_steps_halves_up():
-    assert [round_step(v, 2.0, 0.0, 70.0) for v in (5.0, 6.9, 7.0, 71.0, -1.0)] == \
-        [6.0, 6.0, 8.0, 70.0, 0.0]
+    assert [round_step(v, 2.0, 0.0, 70.0) for v in (5.0, 6.9, 7.0, 71.0, -1.0)] == [
+        6.0,
+        6.0,
+        8.0,
+        70.0,
+        0.0,
+    ]
 
 
 def test_configure_reports_applied_values_and_clips():
     bench = SimulatedBench.from_scenario("demo-lna", seed=0)
-    s = bench.analyzer.configure(request(rbw_hz=2.6e6, attenuation_db=7.0, points=500_000,
-                                         averages=10**6 // 2, vbw_hz=330e3))
+    s = bench.analyzer.configure(
+        request(rbw_hz=2.6e6, attenuation_db=7.0, points=500_000, averages=10**6 // 2, vbw_hz=330e3)
+    )
     assert s.rbw_hz == 3e6 and s.vbw_hz == 300e3
     assert s.attenuation_db == 8.0
     assert s.points == 100_001 and s.averages == 100_000
@@ -169,8 +184,9 @@ def test_filter_shape_and_fft_window_are_reported():
 # ---------------------------------------------------------------- timing --------------------
 
 
-@pytest.mark.parametrize(("span", "rbw", "sweep"), [
-    (1e9, 1e6, 2.5e-3), (100e6, 100e3, 25e-3), (10e6, 1e3, 25.0)])
+@pytest.mark.parametrize(
+    ("span", "rbw", "sweep"), [(1e9, 1e6, 2.5e-3), (100e6, 100e3, 25e-3), (10e6, 1e3, 25.0)]
+)
 def test_swept_sweep_time_follows_k_span_over_rbw_squared(span, rbw, sweep):
     # common practice, reference.md §8: ST = 2.5 * span / RBW^2
     bench = SimulatedBench.from_scenario("demo-lna", seed=0)
@@ -221,11 +237,11 @@ def test_detector_samples_from_sweep_time_and_statistical_bandwidth():
     s = bench.analyzer.configure(request(span_hz=0.0, sweep_time_s=10e-3, detector=Detector.RMS))
     bstat = RbwFilter().stat_bw_hz(1e6)  # reference.md §6a: 1.505384 x B3
     assert s.detector_samples == round(bstat * 10e-3 / 101)
-    s = bench.analyzer.configure(request(span_hz=0.0, sweep_time_s=10e-3,
-                                         detector=Detector.SAMPLE))
+    s = bench.analyzer.configure(request(span_hz=0.0, sweep_time_s=10e-3, detector=Detector.SAMPLE))
     assert s.detector_samples == 1
-    s = bench.analyzer.configure(request(mode=SweepMode.FFT, rbw_hz=1e3, span_hz=1e6,
-                                         detector=Detector.RMS))
+    s = bench.analyzer.configure(
+        request(mode=SweepMode.FFT, rbw_hz=1e3, span_hz=1e6, detector=Detector.RMS)
+    )
     assert s.detector_samples == round(1e4 / s.rbw_filter.stat_bw_hz(1e3))
 
 
@@ -273,8 +289,9 @@ def test_operator_enr_table_differs_within_twice_its_uncertainty():
     assert table.metadata.serial == bench.scenario.noise_source.serial
     again = SimulatedBench.from_scenario("demo-lna", seed=3).enr_table
     assert again.enr_db == table.enr_db  # deterministic from the seed
-    assert SimulatedBench.from_scenario("demo-lna", seed=3, ideal=True).enr_table.enr_db == \
-        pytest.approx(true.tolist(), abs=1e-4)
+    assert SimulatedBench.from_scenario(
+        "demo-lna", seed=3, ideal=True
+    ).enr_table.enr_db == pytest.approx(true.tolist(), abs=1e-4)
 
 
 def test_displayed_densities_combine_by_friis():
@@ -324,13 +341,18 @@ def test_cables_cascade_by_friis_in_the_system_figure():
     t = bench.truth(f)
     l_in = 10 ** (0.20 * math.sqrt(4) / 10)  # 0.2 dB at 1 GHz scaling as sqrt(f)
     l_out = 10 ** (0.45 * math.sqrt(4) / 10)
-    assert t["input_loss_db"][0] == pytest.approx(0.4) and t["output_loss_db"][0] == \
-        pytest.approx(0.9)
+    assert t["input_loss_db"][0] == pytest.approx(0.4) and t["output_loss_db"][0] == pytest.approx(
+        0.9
+    )
     amb = bench.scenario.ambient_k
     g = 10 ** (t["gain_db"] / 10)
     # reference.md §3: Te = Te1 + Te2/G1 + Te3/(G1 G2) + ..., a loss has Te = (L - 1) Tp
-    te = ((l_in - 1) * amb + t["te_k"] * l_in + (l_out - 1) * amb * l_in / g
-          + t["analyzer_te_k"] * l_in * l_out / g)
+    te = (
+        (l_in - 1) * amb
+        + t["te_k"] * l_in
+        + (l_out - 1) * amb * l_in / g
+        + t["analyzer_te_k"] * l_in * l_out / g
+    )
     assert t["system_nf_db"] == pytest.approx(10 * np.log10(1 + te / T0))
 
 
@@ -343,8 +365,10 @@ def test_mismatch_factor_limits():
 
 
 def test_source_reflection_scales_the_excess_noise_into_a_mismatched_analyzer():
-    bench = clean_bench(noise_source__hot_reflection={"magnitude": 0.2, "angle_deg": 0.0},
-                        analyzer__input_reflection={"magnitude": 0.3, "angle_deg": 0.0})
+    bench = clean_bench(
+        noise_source__hot_reflection={"magnitude": 0.2, "angle_deg": 0.0},
+        analyzer__input_reflection={"magnitude": 0.3, "angle_deg": 0.0},
+    )
     bench.analyzer.configure(request(attenuation_db=0.0))
     t = bench.truth(2e9)
     amb = bench.scenario.ambient_k
@@ -360,7 +384,7 @@ def test_source_reflection_scales_the_excess_noise_into_a_mismatched_analyzer():
 def test_compression_gain_factor_is_1_db_at_p1db():
     p1db = 1e-2
     # the input that drives the output to P1dB gives an uncompressed output 1 dB higher
-    lin = p1db * 10 ** 0.1
+    lin = p1db * 10**0.1
     assert 10 * np.log10(compression_gain_factor(lin, p1db)) == pytest.approx(-1.0, abs=1e-9)
     assert compression_gain_factor(1e-9 * p1db, p1db) == pytest.approx(1.0, abs=1e-12)
     assert compression_gain_factor(lin, None) == 1.0
@@ -398,8 +422,11 @@ def test_set_hot_waits_the_settle_time_and_drives_the_analyzer_output():
 def test_reading_during_the_transition_is_between_cold_and_hot():
     bench = clean_bench(noise_source__transition_time_s=0.02)
     bench.noise_source.settle_time_s = 0.0  # the operator does not wait
-    s = bench.analyzer.configure(request(span_hz=0.0, points=201, sweep_time_s=0.02,
-                                         detector=Detector.RMS, attenuation_db=0.0))
+    s = bench.analyzer.configure(
+        request(
+            span_hz=0.0, points=201, sweep_time_s=0.02, detector=Detector.RMS, attenuation_db=0.0
+        )
+    )
     truth = bench.truth(2e9)
     cold = truth["displayed_dut_cold_w_per_hz"][0] * s.enbw_hz
     hot = truth["displayed_dut_hot_w_per_hz"][0] * s.enbw_hz
@@ -455,8 +482,9 @@ def test_stuck_source_never_switches():
     assert not bench.noise_source.is_hot
 
 
-def _tone_tolerance_db(noise_w_per_hz: float, enbw_hz: float, tone_w: float,
-                      looks: int = 1) -> float:
+def _tone_tolerance_db(
+    noise_w_per_hz: float, enbw_hz: float, tone_w: float, looks: int = 1
+) -> float:
     """5 sigma of a band-power reading of a tone: the tone x noise cross term scatters the
     reading by sqrt(2 N / P) relative (N the noise power in one ENBW, random relative phase)."""
     c_db = 10 / math.log(10)
@@ -468,14 +496,16 @@ def test_generator_tone_appears_at_the_path_gain():
     gen = bench.generator
     gen.set_cw(2e9, -50.0)  # far below the mixer's and the DUT's compression
     gen.set_output(True)
-    s = bench.analyzer.configure(request(span_hz=200e3, rbw_hz=10e3, points=201,
-                                         attenuation_db=10.0))
+    s = bench.analyzer.configure(
+        request(span_hz=200e3, rbw_hz=10e3, points=201, attenuation_db=10.0)
+    )
     truth = bench.truth(2e9)
     gain_db = truth["gain_db"][0]
     reading = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3)
     # band power integrates the tone: sum P_i * spacing / ENBW = P_tone
-    tol = _tone_tolerance_db(truth["displayed_dut_cold_w_per_hz"][0], s.enbw_hz,
-                             1e-8 * 10 ** (gain_db / 10))
+    tol = _tone_tolerance_db(
+        truth["displayed_dut_cold_w_per_hz"][0], s.enbw_hz, 1e-8 * 10 ** (gain_db / 10)
+    )
     assert reading.value_db == pytest.approx(-50.0 + gain_db, abs=tol)
     bench.set_path(Path.THROUGH)
     reading = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3)
@@ -492,8 +522,9 @@ def test_dut_compression_reduces_the_gain_by_1_db_at_p1db():
     gain_db = bench.truth(2e9)["gain_db"][0]
     p1db = bench.scenario.dut.output_p1db_dbm
     bench.generator.set_output(True)
-    bench.analyzer.configure(request(span_hz=200e3, rbw_hz=10e3, points=201,
-                                     attenuation_db=30.0, ref_level_dbm=20.0))
+    bench.analyzer.configure(
+        request(span_hz=200e3, rbw_hz=10e3, points=201, attenuation_db=30.0, ref_level_dbm=20.0)
+    )
     bench.generator.set_cw(2e9, p1db + 1.0 - gain_db)  # uncompressed output 1 dB above P1dB
     out = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3).value_db
     # the DUT's own noise adds to the compression drive: its total power is ~1e-4 of the tone
@@ -505,16 +536,19 @@ def test_mixer_compression_and_if_overload_read_low():
     bench.generator.set_output(True)
     bench.set_path(Path.THROUGH)
     bench.generator.set_cw(2e9, 0.0)
-    bench.analyzer.configure(request(span_hz=200e3, rbw_hz=10e3, attenuation_db=30.0,
-                                     ref_level_dbm=10.0))
+    bench.analyzer.configure(
+        request(span_hz=200e3, rbw_hz=10e3, attenuation_db=30.0, ref_level_dbm=10.0)
+    )
     fine = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3).value_db
     assert fine == pytest.approx(0.0, abs=0.01)
-    bench.analyzer.configure(request(span_hz=200e3, rbw_hz=10e3, attenuation_db=0.0,
-                                     ref_level_dbm=10.0))
+    bench.analyzer.configure(
+        request(span_hz=200e3, rbw_hz=10e3, attenuation_db=0.0, ref_level_dbm=10.0)
+    )
     mixer = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3).value_db
     assert mixer < fine - 1.0  # 0 dBm at a -3 dBm P1dB mixer
-    bench.analyzer.configure(request(span_hz=200e3, rbw_hz=10e3, attenuation_db=30.0,
-                                     ref_level_dbm=-30.0))
+    bench.analyzer.configure(
+        request(span_hz=200e3, rbw_hz=10e3, attenuation_db=30.0, ref_level_dbm=-30.0)
+    )
     clipped = bench.analyzer.read_marker(2e9, MarkerKind.BAND_POWER, band_hz=100e3).value_db
     assert clipped < fine - 10.0  # 30 dB above the reference level overloads the IF
 
@@ -541,8 +575,16 @@ def test_input_power_above_the_rating_is_recorded():
 def test_interference_lines_are_present_in_every_path():
     bench = SimulatedBench.from_scenario("demo-lna", seed=0)
     f_line, band = 1.80025e9, 150e3
-    s = bench.analyzer.configure(request(center_hz=f_line, span_hz=2e6, rbw_hz=30e3,
-                                         points=401, averages=100, attenuation_db=10.0))
+    s = bench.analyzer.configure(
+        request(
+            center_hz=f_line,
+            span_hz=2e6,
+            rbw_hz=30e3,
+            points=401,
+            averages=100,
+            attenuation_db=10.0,
+        )
+    )
     sc = bench.scenario
     # the -80 dBm line, its mains sidebands (-30 dBc at +/-50 Hz, -36 dBc at +/-100 Hz), the
     # analyzer's level error
@@ -556,16 +598,26 @@ def test_interference_lines_are_present_in_every_path():
         line_read = dbm_to_w(reading.value_db) - density * band  # remove the band's noise
         # scatter: the noise part over band / B_stat cells x 100 sweeps, and the cross term
         cells = band / s.rbw_filter.stat_bw_hz(s.rbw_hz) * s.averages
-        sigma = math.hypot(density * band / math.sqrt(cells),
-                           math.sqrt(2 * density * s.enbw_hz * line_w / s.averages))
+        sigma = math.hypot(
+            density * band / math.sqrt(cells),
+            math.sqrt(2 * density * s.enbw_hz * line_w / s.averages),
+        )
         assert line_read == pytest.approx(line_w, abs=5 * sigma)
 
 
 def test_noise_density_marker_reads_the_true_density_with_any_averaging():
     bench = clean_bench()
     bench.set_path(Path.TERMINATION)
-    s = bench.analyzer.configure(request(span_hz=20e6, rbw_hz=100e3, points=1001, averages=400,
-                                         attenuation_db=0.0, detector=Detector.RMS))
+    s = bench.analyzer.configure(
+        request(
+            span_hz=20e6,
+            rbw_hz=100e3,
+            points=1001,
+            averages=400,
+            attenuation_db=0.0,
+            detector=Detector.RMS,
+        )
+    )
     r = bench.analyzer.read_marker(2e9, MarkerKind.NOISE_DENSITY, band_hz=10e6)
     expected = 10 * np.log10(bench.truth(2e9)["displayed_termination_cold_w_per_hz"][0] / 1e-3)
     assert r.instrument_corrected and r.kind is MarkerKind.NOISE_DENSITY
@@ -573,9 +625,17 @@ def test_noise_density_marker_reads_the_true_density_with_any_averaging():
     looks = 10e6 / s.rbw_filter.stat_bw_hz(s.rbw_hz) * s.averages
     c_db = 10 / np.log(10)
     assert r.value_db == pytest.approx(expected, abs=5 * c_db / np.sqrt(looks))
-    bench.analyzer.configure(request(span_hz=20e6, rbw_hz=100e3, points=1001, averages=400,
-                                     attenuation_db=0.0, detector=Detector.SAMPLE,
-                                     averaging_scale=AveragingScale.LOG_POWER))
+    bench.analyzer.configure(
+        request(
+            span_hz=20e6,
+            rbw_hz=100e3,
+            points=1001,
+            averages=400,
+            attenuation_db=0.0,
+            detector=Detector.SAMPLE,
+            averaging_scale=AveragingScale.LOG_POWER,
+        )
+    )
     r = bench.analyzer.read_marker(2e9, MarkerKind.NOISE_DENSITY, band_hz=10e6)
     # a noise marker removes the detector bias it knows (reference.md §6b: log averaging reads
     # 10 log10(e) gamma = 2.51 dB low) and says so; log samples scatter pi / sqrt(6)
@@ -592,20 +652,29 @@ NOISE_MARKER_CASES = {
     "sample-log": dict(detector=Detector.SAMPLE, averaging_scale=AveragingScale.LOG_POWER),
     "sample-voltage": dict(detector=Detector.SAMPLE, averaging_scale=AveragingScale.VOLTAGE),
     "average-log": dict(detector=Detector.AVERAGE, averaging_scale=AveragingScale.LOG_POWER),
-    "sample-log-narrow-vbw": dict(detector=Detector.SAMPLE, vbw_hz=10e3,
-                                  averaging_scale=AveragingScale.LOG_POWER),
+    "sample-log-narrow-vbw": dict(
+        detector=Detector.SAMPLE, vbw_hz=10e3, averaging_scale=AveragingScale.LOG_POWER
+    ),
 }
 
 
 @pytest.mark.parametrize("case", list(NOISE_MARKER_CASES))
 def test_noise_density_marker_agrees_exactly_with_the_trace_estimate(case):
-    from noisebench.estimator import density_from_marker, estimate_density
+    from noisebench.science.estimator import density_from_marker, estimate_density
     from noisebench.sims.analyzer import marker_from_trace
 
     bench = clean_bench(seed=4)
     bench.set_path(Path.TERMINATION)
-    s = bench.analyzer.configure(request(span_hz=10e6, rbw_hz=100e3, points=201, averages=10,
-                                         attenuation_db=0.0, **NOISE_MARKER_CASES[case]))
+    s = bench.analyzer.configure(
+        request(
+            span_hz=10e6,
+            rbw_hz=100e3,
+            points=201,
+            averages=10,
+            attenuation_db=0.0,
+            **NOISE_MARKER_CASES[case],
+        )
+    )
     if case in ("average-log", "sample-log-narrow-vbw"):
         assert s.detector_samples > 1  # the cases that need the sample count
     trace = bench.analyzer.acquire_trace()
@@ -627,8 +696,9 @@ def test_noise_density_marker_of_a_peak_detector_is_raw_and_says_so():
 
     bench = clean_bench()
     bench.set_path(Path.TERMINATION)
-    s = bench.analyzer.configure(request(span_hz=10e6, rbw_hz=100e3, points=201,
-                                         detector=Detector.PEAK, attenuation_db=0.0))
+    s = bench.analyzer.configure(
+        request(span_hz=10e6, rbw_hz=100e3, points=201, detector=Detector.PEAK, attenuation_db=0.0)
+    )
     trace = bench.analyzer.acquire_trace()
     band = 21 * s.span_hz / (s.points - 1)
     reading = marker_from_trace(trace, 2e9, MarkerKind.NOISE_DENSITY, band)
@@ -640,19 +710,33 @@ def test_noise_density_marker_of_a_peak_detector_is_raw_and_says_so():
 
 
 def _flat_trace(level_dbm: float = -90.0, **kw):
-    from noisebench.acquisition import AcquisitionSettings, Trace
+    from noisebench.bench.acquisition import AcquisitionSettings, Trace
 
-    fields = dict(center_hz=2e9, span_hz=1e6, rbw_hz=30e3, detector=Detector.RMS,
-                  averaging_scale=AveragingScale.POWER, averages=1, points=101,
-                  detector_samples=1.0)
+    fields = dict(
+        center_hz=2e9,
+        span_hz=1e6,
+        rbw_hz=30e3,
+        detector=Detector.RMS,
+        averaging_scale=AveragingScale.POWER,
+        averages=1,
+        points=101,
+        detector_samples=1.0,
+    )
     fields.update(kw)
     s = AcquisitionSettings(**fields)
     return Trace(freq_hz=s.frequencies_hz(), values=np.full(s.points, level_dbm), settings=s)
 
 
-@pytest.mark.parametrize(("freq_hz", "band_hz"), [(2e9, 500e3), (2e9 + 3.3e3, 123.4e3),
-                                                  (2e9 - 0.2e6, 40e3), (2e9, 1e6 + 10e3),
-                                                  (2e9 + 1e3, 4e3)])
+@pytest.mark.parametrize(
+    ("freq_hz", "band_hz"),
+    [
+        (2e9, 500e3),
+        (2e9 + 3.3e3, 123.4e3),
+        (2e9 - 0.2e6, 40e3),
+        (2e9, 1e6 + 10e3),
+        (2e9 + 1e3, 4e3),
+    ],
+)
 def test_band_power_marker_integrates_exactly_the_band(freq_hz, band_hz):
     from noisebench.sims.analyzer import marker_from_trace
 
@@ -671,8 +755,9 @@ def test_band_power_and_noise_markers_share_one_band_definition():
 
     bench = clean_bench(seed=2)
     bench.set_path(Path.TERMINATION)
-    bench.analyzer.configure(request(span_hz=10e6, rbw_hz=100e3, points=201, averages=3,
-                                     attenuation_db=0.0))
+    bench.analyzer.configure(
+        request(span_hz=10e6, rbw_hz=100e3, points=201, averages=3, attenuation_db=0.0)
+    )
     trace = bench.analyzer.acquire_trace()
     for freq, band in [(2e9, 1e6), (2e9 + 17e3, 333e3), (1.998e9, 60e3)]:
         power = marker_from_trace(trace, freq, MarkerKind.BAND_POWER, band)
@@ -701,7 +786,7 @@ def test_marker_band_must_lie_inside_the_trace():
 
 
 def test_band_weights_integrate_the_piecewise_constant_trace():
-    from noisebench.estimator import band_weights_hz
+    from noisebench.science.estimator import band_weights_hz
 
     rng = np.random.default_rng(3)
     freq = 1e9 + np.arange(57) * 2.5e3  # cells [f - 1.25 kHz, f + 1.25 kHz]
@@ -712,13 +797,18 @@ def test_band_weights_integrate_the_piecewise_constant_trace():
     def integral(lo, hi):  # the exact integral of the step function, from its antiderivative
         return float(np.interp(hi, edges, cumulative) - np.interp(lo, edges, cumulative))
 
-    for centre, band in [(1.00007e9, 31e3), (1e9, 2.5e3), (1.0000713e9, 1.1e3),
-                         (freq.mean(), 57 * 2.5e3)]:
+    for centre, band in [
+        (1.00007e9, 31e3),
+        (1e9, 2.5e3),
+        (1.0000713e9, 1.1e3),
+        (freq.mean(), 57 * 2.5e3),
+    ]:
         w = band_weights_hz(freq, centre, band)
         assert np.sum(w) == pytest.approx(band, rel=1e-12)
         assert np.all(w >= 0) and np.all(w <= 2.5e3 * (1 + 1e-12))
-        assert float(w @ values) == pytest.approx(integral(centre - band / 2, centre + band / 2),
-                                                  rel=1e-12)
+        assert float(w @ values) == pytest.approx(
+            integral(centre - band / 2, centre + band / 2), rel=1e-12
+        )
     with pytest.raises(InputError) as err:
         band_weights_hz(freq, 1e9, 0.0)
     assert err.value.field == "band_hz"
@@ -745,14 +835,21 @@ def test_replace_dut_swaps_only_the_dut():
     clock, enr, settings = bench.clock.now_s, bench.enr_table, bench.analyzer.settings
     through = bench.truth(2e9)["displayed_through_cold_w_per_hz"][0]
     dut = bench.scenario.dut
-    other = dut.model_copy(update={"name": "unit 2", "nf_db": [v + 1.0 for v in dut.nf_db],
-                                   "gain_db": [v - 2.0 for v in dut.gain_db]})
+    other = dut.model_copy(
+        update={
+            "name": "unit 2",
+            "nf_db": [v + 1.0 for v in dut.nf_db],
+            "gain_db": [v - 2.0 for v in dut.gain_db],
+        }
+    )
     bench.replace_dut(other)
     truth = bench.truth(2e9)
     nf = np.interp(2e9, dut.freq_hz, dut.nf_db) + 1.0
     assert truth["nf_db"][0] == pytest.approx(nf, abs=1e-9)
-    assert bench.scenario.dut == other and bench.scenario.analyzer == load_scenario(
-        "demo-lna").analyzer
+    assert (
+        bench.scenario.dut == other
+        and bench.scenario.analyzer == load_scenario("demo-lna").analyzer
+    )
     # nothing else moved: time, the operator's ENR table, settings, path, the other paths
     assert bench.clock.now_s == clock and bench.enr_table == enr
     assert bench.analyzer.settings == settings and bench.path is Path.THROUGH
@@ -763,7 +860,7 @@ def test_replace_dut_swaps_only_the_dut():
 
 
 def test_station_installs_a_unit_through_replace_dut():
-    from noisebench.station import install_scenario_dut
+    from noisebench.frontends.station import install_scenario_dut
 
     bench = SimulatedBench.from_scenario("demo-lna", seed=7)
     calls = []

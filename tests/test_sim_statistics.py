@@ -12,8 +12,8 @@ import pytest
 from scipy import integrate, special
 from scipy.constants import k as K_BOLTZMANN
 
-from noisebench.acquisition import AcquisitionRequest, AveragingScale, Detector, SweepMode
-from noisebench.filters import FilterKind, RbwFilter
+from noisebench.bench.acquisition import AcquisitionRequest, AveragingScale, Detector, SweepMode
+from noisebench.science.filters import FilterKind, RbwFilter
 from noisebench.sims.bench import Path, SimulatedBench
 from noisebench.sims.models import dbm_to_w
 from noisebench.sims.noisegen import (
@@ -31,11 +31,25 @@ SYNC4 = RbwFilter(kind=FilterKind.SYNCHRONOUS, poles=4)
 HANN = RbwFilter(kind=FilterKind.FFT, window="hann")
 
 
-def draw(n_traces, n_points, looks=1, detector=Detector.SAMPLE, scale=AveragingScale.POWER,
-         kernel=None, seed=0, exact=False):
+def draw(
+    n_traces,
+    n_points,
+    looks=1,
+    detector=Detector.SAMPLE,
+    scale=AveragingScale.POWER,
+    kernel=None,
+    seed=0,
+    exact=False,
+):
     """Averaged trace (unit mean noise power per look) straight from the generator."""
-    recipe = TraceRecipe(n_traces=n_traces, n_points=n_points, looks=looks, detector=detector,
-                         averaging_scale=scale, kernel=kernel)
+    recipe = TraceRecipe(
+        n_traces=n_traces,
+        n_points=n_points,
+        looks=looks,
+        detector=detector,
+        averaging_scale=scale,
+        kernel=kernel,
+    )
     return generate_trace(np.random.default_rng(seed), recipe, np.ones(n_points), exact=exact)
 
 
@@ -50,16 +64,18 @@ def test_log_averaged_noise_reads_euler_gamma_low():
     # one log sample scatters c_dB * pi / sqrt(6) (Gumbel); n * p independent samples
     tol = 5 * C_DB * math.pi / math.sqrt(6) / math.sqrt(n * p)
     assert values_db.mean() == pytest.approx(expected, abs=tol)
-    assert values_db.std() == pytest.approx(C_DB * math.pi / math.sqrt(6) / math.sqrt(n),
-                                            rel=5 * math.sqrt(1 / p))
+    assert values_db.std() == pytest.approx(
+        C_DB * math.pi / math.sqrt(6) / math.sqrt(n), rel=5 * math.sqrt(1 / p)
+    )
 
 
 @pytest.mark.parametrize(("looks", "exact"), [(10, True), (10, False), (100, False)])
 def test_log_of_k_sample_power_means_follows_digamma(looks, exact):
     # reference.md §6b: bias c_dB (psi(k) - ln k): -0.2208 dB (k=10), -0.0218 dB (k=100)
     n, p = 16, 20_000
-    values_db = 10 * np.log10(draw(n, p, looks=looks, detector=Detector.RMS,
-                                   scale=AveragingScale.LOG_POWER, exact=exact))
+    values_db = 10 * np.log10(
+        draw(n, p, looks=looks, detector=Detector.RMS, scale=AveragingScale.LOG_POWER, exact=exact)
+    )
     expected = C_DB * (special.digamma(looks) - math.log(looks))
     sigma_one = C_DB * math.sqrt(special.polygamma(1, looks))  # Var ln Gamma(k) = trigamma(k)
     assert values_db.mean() == pytest.approx(expected, abs=5 * sigma_one / math.sqrt(n * p))
@@ -88,11 +104,18 @@ def test_voltage_averaging_reads_pi_over_4_plus_finite_n_term(n):
     assert values.mean() == pytest.approx(mean, abs=5 * math.sqrt(var / p))
 
 
-@pytest.mark.parametrize(("n", "looks", "detector", "exact"), [
-    (1, 1, Detector.SAMPLE, False), (10, 1, Detector.SAMPLE, False),
-    (100, 1, Detector.SAMPLE, False), (100, 1, Detector.SAMPLE, True),
-    (1000, 1, Detector.SAMPLE, False), (4, 8, Detector.RMS, False),
-    (3, 40, Detector.RMS, False)])
+@pytest.mark.parametrize(
+    ("n", "looks", "detector", "exact"),
+    [
+        (1, 1, Detector.SAMPLE, False),
+        (10, 1, Detector.SAMPLE, False),
+        (100, 1, Detector.SAMPLE, False),
+        (100, 1, Detector.SAMPLE, True),
+        (1000, 1, Detector.SAMPLE, False),
+        (4, 8, Detector.RMS, False),
+        (3, 40, Detector.RMS, False),
+    ],
+)
 def test_power_averaged_scatter_follows_one_over_sqrt_n(n, looks, detector, exact):
     # reference.md §6c: linear averaging of M independent power samples: relative std 1/sqrt(M)
     p = 20_000
@@ -185,8 +208,12 @@ def test_far_spaced_points_are_independent():
 
 
 def flat_bench(seed=0, **kw) -> SimulatedBench:
-    over = {"input_cable": {"loss_db": [0.0]}, "output_cable": {"loss_db": [0.0]},
-            "dut__gain_ripple_db": 0.0, **kw}
+    over = {
+        "input_cable": {"loss_db": [0.0]},
+        "output_cable": {"loss_db": [0.0]},
+        "dut__gain_ripple_db": 0.0,
+        **kw,
+    }
     return SimulatedBench.from_scenario("demo-lna", seed=seed, ideal=True, **over)
 
 
@@ -195,16 +222,26 @@ def _quad_enbw(filt: RbwFilter) -> float:
     return _integrate(filt.power_response(_X, 1.0))
 
 
-@pytest.mark.parametrize(("shape", "mode"), [("gaussian", SweepMode.SWEPT),
-                                             ("synchronous", SweepMode.SWEPT),
-                                             ("gaussian", SweepMode.FFT)])
+@pytest.mark.parametrize(
+    ("shape", "mode"),
+    [("gaussian", SweepMode.SWEPT), ("synchronous", SweepMode.SWEPT), ("gaussian", SweepMode.FFT)],
+)
 def test_simulated_noise_power_per_point_is_density_times_enbw(shape, mode):
     bench = flat_bench()
     bench.set_path(Path.TERMINATION)
     bench.analyzer.set_filter_shape(shape, poles=4)
-    s = bench.analyzer.configure(AcquisitionRequest(
-        center_hz=2e9, span_hz=20e6, rbw_hz=30e3, points=201, averages=200,
-        attenuation_db=0.0, detector=Detector.SAMPLE, mode=mode))
+    s = bench.analyzer.configure(
+        AcquisitionRequest(
+            center_hz=2e9,
+            span_hz=20e6,
+            rbw_hz=30e3,
+            points=201,
+            averages=200,
+            attenuation_db=0.0,
+            detector=Detector.SAMPLE,
+            mode=mode,
+        )
+    )
     trace = bench.analyzer.acquire_trace()
     density = bench.truth(trace.freq_hz)["displayed_termination_cold_w_per_hz"]
     ratio = dbm_to_w(trace.values) / (density * s.rbw_hz)
@@ -214,16 +251,26 @@ def test_simulated_noise_power_per_point_is_density_times_enbw(shape, mode):
     assert s.enbw_hz / s.rbw_hz == pytest.approx(expected, rel=1e-4)
 
 
-@pytest.mark.parametrize(("shape", "mode"), [("gaussian", SweepMode.SWEPT),
-                                             ("synchronous", SweepMode.SWEPT),
-                                             ("gaussian", SweepMode.FFT)])
+@pytest.mark.parametrize(
+    ("shape", "mode"),
+    [("gaussian", SweepMode.SWEPT), ("synchronous", SweepMode.SWEPT), ("gaussian", SweepMode.FFT)],
+)
 def test_cw_tone_swept_across_the_filter_integrates_to_the_enbw(shape, mode):
     bench = flat_bench(interference={"tones": [{"freq_hz": 2.0000137e9, "level_dbm": -30.0}]})
     bench.set_path(Path.TERMINATION)
     bench.analyzer.set_filter_shape(shape, poles=4)
-    s = bench.analyzer.configure(AcquisitionRequest(
-        center_hz=2e9, span_hz=400e3, rbw_hz=10e3, points=4001, averages=1,
-        attenuation_db=10.0, detector=Detector.SAMPLE, mode=mode))
+    s = bench.analyzer.configure(
+        AcquisitionRequest(
+            center_hz=2e9,
+            span_hz=400e3,
+            rbw_hz=10e3,
+            points=4001,
+            averages=1,
+            attenuation_db=10.0,
+            detector=Detector.SAMPLE,
+            mode=mode,
+        )
+    )
     p = dbm_to_w(bench.analyzer.acquire_trace().values)
     spacing = s.span_hz / (s.points - 1)
     enbw_measured = float(np.sum(p)) * spacing / 1e-6  # tone: -30 dBm = 1e-6 W at the peak
@@ -236,8 +283,15 @@ def test_cw_tone_swept_across_the_filter_integrates_to_the_enbw(shape, mode):
 def test_dut_noise_plus_analyzer_floor_combine_as_friis_says():
     bench = flat_bench(seed=3)
     an = bench.scenario.analyzer
-    req = dict(center_hz=3e9, span_hz=20e6, rbw_hz=100e3, points=101, averages=2000,
-               attenuation_db=0.0, detector=Detector.SAMPLE)
+    req = dict(
+        center_hz=3e9,
+        span_hz=20e6,
+        rbw_hz=100e3,
+        points=101,
+        averages=2000,
+        attenuation_db=0.0,
+        detector=Detector.SAMPLE,
+    )
     s = bench.analyzer.configure(AcquisitionRequest(**req))
     n_meas = dbm_to_w(bench.analyzer.acquire_trace().values).mean() / s.enbw_hz
     bench.set_path(Path.TERMINATION)
@@ -260,9 +314,18 @@ def test_dut_noise_plus_analyzer_floor_combine_as_friis_says():
 def test_reported_detector_samples_match_the_scatter():
     bench = flat_bench()
     bench.set_path(Path.TERMINATION)
-    s = bench.analyzer.configure(AcquisitionRequest(
-        center_hz=2e9, span_hz=0.0, rbw_hz=1e6, points=2001, sweep_time_s=20e-3,
-        averages=1, detector=Detector.RMS, attenuation_db=0.0))
+    s = bench.analyzer.configure(
+        AcquisitionRequest(
+            center_hz=2e9,
+            span_hz=0.0,
+            rbw_hz=1e6,
+            points=2001,
+            sweep_time_s=20e-3,
+            averages=1,
+            detector=Detector.RMS,
+            attenuation_db=0.0,
+        )
+    )
     k = s.detector_samples
     assert k == round(s.rbw_filter.stat_bw_hz(1e6) * 20e-3 / 2001)  # 15
     p = dbm_to_w(bench.analyzer.acquire_trace().values)
@@ -279,17 +342,32 @@ def _geometric_mean_moments(m: float) -> tuple[float, float]:
     return mean, special.gamma(1 + 2 / m) ** m / mean**2 - 1
 
 
-@pytest.mark.parametrize(("scale", "vbw_hz"), [(AveragingScale.LOG_POWER, 1e3),
-                                               (AveragingScale.LOG_POWER, 300.0),
-                                               (AveragingScale.VOLTAGE, 1e3)])
+@pytest.mark.parametrize(
+    ("scale", "vbw_hz"),
+    [
+        (AveragingScale.LOG_POWER, 1e3),
+        (AveragingScale.LOG_POWER, 300.0),
+        (AveragingScale.VOLTAGE, 1e3),
+    ],
+)
 def test_sample_detector_behind_a_narrow_video_filter_is_estimated_without_bias(scale, vbw_hz):
     # A video filter on a log (or linear-voltage) display averages the detected signal on that
     # scale: k video samples per point, N sweeps -> the scale average of N k single samples.
     bench = flat_bench(seed=11)
     bench.set_path(Path.TERMINATION)
-    s = bench.analyzer.configure(AcquisitionRequest(
-        center_hz=2e9, span_hz=20e6, rbw_hz=30e3, vbw_hz=vbw_hz, points=201, averages=4,
-        attenuation_db=0.0, detector=Detector.SAMPLE, averaging_scale=scale))
+    s = bench.analyzer.configure(
+        AcquisitionRequest(
+            center_hz=2e9,
+            span_hz=20e6,
+            rbw_hz=30e3,
+            vbw_hz=vbw_hz,
+            points=201,
+            averages=4,
+            attenuation_db=0.0,
+            detector=Detector.SAMPLE,
+            averaging_scale=scale,
+        )
+    )
     k = s.detector_samples
     assert k == round(s.rbw_filter.stat_bw_hz(s.rbw_hz) / (math.pi * vbw_hz))  # 14 or 48
     trace = bench.analyzer.acquire_trace()
@@ -314,8 +392,8 @@ def test_sample_detector_behind_a_narrow_video_filter_is_estimated_without_bias(
 
 # ---------------------------------------------------------------- both methods on the bench -
 
-from noisebench.estimator import estimate_density  # noqa: E402
-from noisebench.methods import calibrate_point, gain_method_point, y_factor_point  # noqa: E402
+from noisebench.science.estimator import estimate_density  # noqa: E402
+from noisebench.science.methods import calibrate_point, gain_method_point, y_factor_point  # noqa: E402
 
 SEEDS_PER_CASE = 16
 
@@ -330,9 +408,18 @@ class Readings:
 
     def __init__(self, bench: SimulatedBench, freq_hz: float, averages: int) -> None:
         self.bench, self.freq_hz = bench, freq_hz
-        bench.analyzer.configure(AcquisitionRequest(
-            center_hz=freq_hz, span_hz=4e6, rbw_hz=100e3, points=401, averages=averages,
-            attenuation_db=0.0, preamp=True, detector=Detector.RMS))
+        bench.analyzer.configure(
+            AcquisitionRequest(
+                center_hz=freq_hz,
+                span_hz=4e6,
+                rbw_hz=100e3,
+                points=401,
+                averages=averages,
+                attenuation_db=0.0,
+                preamp=True,
+                detector=Detector.RMS,
+            )
+        )
         bench.set_path(Path.THROUGH)
         self.hot_cal, self.cold_cal = self._hot_cold()
         bench.set_path(Path.DUT)
@@ -355,19 +442,30 @@ class Readings:
         t, tc = self.truth, self.bench.noise_source.cold_temperature_k
         enr = float(self.bench.enr_table.at(self.freq_hz).enr_db)
         cal = calibrate_point(self.hot_cal, self.cold_cal, enr, cold_temperature_k=tc)
-        return y_factor_point(self.hot, self.cold, enr, cold_temperature_k=tc, calibration=cal,
-                              input_loss_db=t["input_loss_db"],
-                              input_loss_temperature_k=t["ambient_k"])
+        return y_factor_point(
+            self.hot,
+            self.cold,
+            enr,
+            cold_temperature_k=tc,
+            calibration=cal,
+            input_loss_db=t["input_loss_db"],
+            input_loss_temperature_k=t["ambient_k"],
+        )
 
     def gain_method(self):
         t = self.truth
         path_gain_db = t["gain_db"] - t["input_loss_db"] - t["output_loss_db"]
         return gain_method_point(
-            self.cold, path_gain_db, floor=self.floor,
+            self.cold,
+            path_gain_db,
+            floor=self.floor,
             source_temperature_k=self.bench.noise_source.cold_temperature_k,
-            floor_temperature_k=t["ambient_k"], input_loss_db=t["input_loss_db"],
-            output_loss_db=t["output_loss_db"], input_loss_temperature_k=t["ambient_k"],
-            output_loss_temperature_k=t["ambient_k"])
+            floor_temperature_k=t["ambient_k"],
+            input_loss_db=t["input_loss_db"],
+            output_loss_db=t["output_loss_db"],
+            input_loss_temperature_k=t["ambient_k"],
+            output_loss_temperature_k=t["ambient_k"],
+        )
 
 
 def _assert_covered(z: np.ndarray) -> None:
@@ -383,14 +481,18 @@ def _assert_covered(z: np.ndarray) -> None:
     assert lo < float(np.sum(z**2)) < hi, z
 
 
-@pytest.mark.parametrize(("case", "scenario", "freq_hz", "methods"), [
-    (0, "demo-lna", 2e9, ("y_factor", "gain")),
-    (1, "demo-lna", 5.5e9, ("y_factor", "gain")),
-    (2, "high-nf", 1e9, ("y_factor", "gain")),
-    (3, "attenuator-6db", 3e9, ("y_factor",)),
-])
-def test_methods_recover_the_true_nf_within_their_stated_uncertainty(case, scenario, freq_hz,
-                                                                      methods):
+@pytest.mark.parametrize(
+    ("case", "scenario", "freq_hz", "methods"),
+    [
+        (0, "demo-lna", 2e9, ("y_factor", "gain")),
+        (1, "demo-lna", 5.5e9, ("y_factor", "gain")),
+        (2, "high-nf", 1e9, ("y_factor", "gain")),
+        (3, "attenuator-6db", 3e9, ("y_factor",)),
+    ],
+)
+def test_methods_recover_the_true_nf_within_their_stated_uncertainty(
+    case, scenario, freq_hz, methods
+):
     z = {m: [] for m in methods}
     z_gain = []
     for seed in seeds_for(case):
@@ -411,8 +513,9 @@ def test_absolute_level_error_enters_the_gain_method_only():
     error_db = 0.5
     gain_err, y_err, u_gain, u_y = [], [], [], []
     for seed in seeds_for(4)[:8]:
-        bench = SimulatedBench.from_scenario("demo-lna", seed=seed, ideal=True,
-                                             analyzer__amplitude_error_db=error_db)
+        bench = SimulatedBench.from_scenario(
+            "demo-lna", seed=seed, ideal=True, analyzer__amplitude_error_db=error_db
+        )
         r = Readings(bench, 2e9, 100)
         g, y = r.gain_method(), r.y_factor()
         gain_err.append(g.nf_db - r.truth["nf_db"])

@@ -16,10 +16,8 @@ from hypothesis import given
 from hypothesis import strategies as st
 from pydantic import ValidationError
 
-from noisebench.calibration import CalibrationStore
 from noisebench.errors import CommunicationError, InputError, MeasurementError
-from noisebench.results import load_run
-from noisebench.station import (
+from noisebench.frontends.station import (
     SUMMARY_FILE,
     Station,
     StationSettings,
@@ -33,23 +31,29 @@ from noisebench.station import (
     units_from_lines,
     units_from_prompt,
 )
+from noisebench.results.store import load_run
+from noisebench.running.calibration import CalibrationStore
 
 # a wide spread so that a short lot holds clear passes and clear failures
-SPREAD = UnitVariation(nf_sigma_db=0.2, nf_tilt_sigma_db=0.05, gain_sigma_db=0.4,
-                       weak_fraction=0.25, weak_nf_db=1.0)
+SPREAD = UnitVariation(
+    nf_sigma_db=0.2, nf_tilt_sigma_db=0.05, gain_sigma_db=0.4, weak_fraction=0.25, weak_nf_db=1.0
+)
 
 
 # =========================================================================== unit lines
 
 
-@pytest.mark.parametrize("line, unit", [
-    ("ABC123", UnitId("ABC123")),
-    ("ABC123\n", UnitId("ABC123")),
-    ("ABC123\r\n", UnitId("ABC123")),
-    ("  ABC-12.3_x  ", UnitId("ABC-12.3_x")),
-    ("SN:ABC123;LOT:L24-07", UnitId("ABC123", lot="L24-07")),
-    ("lot:L24-07; sn:ABC123 ;PN:LNA-2", UnitId("ABC123", lot="L24-07", part_number="LNA-2")),
-])
+@pytest.mark.parametrize(
+    "line, unit",
+    [
+        ("ABC123", UnitId("ABC123")),
+        ("ABC123\n", UnitId("ABC123")),
+        ("ABC123\r\n", UnitId("ABC123")),
+        ("  ABC-12.3_x  ", UnitId("ABC-12.3_x")),
+        ("SN:ABC123;LOT:L24-07", UnitId("ABC123", lot="L24-07")),
+        ("lot:L24-07; sn:ABC123 ;PN:LNA-2", UnitId("ABC123", lot="L24-07", part_number="LNA-2")),
+    ],
+)
 def test_unit_lines_that_are_accepted(line, unit):
     assert parse_unit_line(line) == unit
 
@@ -64,24 +68,27 @@ def test_empty_line_and_q_end_the_input(line):
     assert parse_unit_line(line) is None
 
 
-@pytest.mark.parametrize("line, words", [
-    ("AB\tC", "control character '\\t'"),
-    ("\x1b[2JABC", "control character '\\x1b'"),
-    ("ABC\x00", "control character '\\x00'"),
-    ("SN:A1\x1dLOT:L1", "control character '\\x1d'"),   # group separator of some scanners
-    ("ABC\u200b", "control character '\\u200b'"),        # zero-width space (format char)
-    ("ABC\r\n\n", "control character '\\r'"),            # only ONE line ending is removed
-    ("AB C", "not a valid serial"),
-    ("-ABC", "not a valid serial"),
-    ("ABCé", "not a valid serial"),
-    ("A" * 65, "not a valid serial"),
-    ("SN:ABC;LOT:", "not a valid lot"),
-    ("SN:ABC;", "is not KEY:VALUE"),
-    ("SN:ABC;XX:1", "unknown key 'XX'"),
-    ("SN:ABC;SN:DEF", "appears twice"),
-    ("LOT:L1", "has no SN field"),
-    ("SN:AB/C", "not a valid serial"),
-])
+@pytest.mark.parametrize(
+    "line, words",
+    [
+        ("AB\tC", "control character '\\t'"),
+        ("\x1b[2JABC", "control character '\\x1b'"),
+        ("ABC\x00", "control character '\\x00'"),
+        ("SN:A1\x1dLOT:L1", "control character '\\x1d'"),  # group separator of some scanners
+        ("ABC\u200b", "control character '\\u200b'"),  # zero-width space (format char)
+        ("ABC\r\n\n", "control character '\\r'"),  # only ONE line ending is removed
+        ("AB C", "not a valid serial"),
+        ("-ABC", "not a valid serial"),
+        ("ABCé", "not a valid serial"),
+        ("A" * 65, "not a valid serial"),
+        ("SN:ABC;LOT:", "not a valid lot"),
+        ("SN:ABC;", "is not KEY:VALUE"),
+        ("SN:ABC;XX:1", "unknown key 'XX'"),
+        ("SN:ABC;SN:DEF", "appears twice"),
+        ("LOT:L1", "has no SN field"),
+        ("SN:AB/C", "not a valid serial"),
+    ],
+)
 def test_unit_lines_that_are_refused_name_the_problem(line, words):
     with pytest.raises(InputError) as info:
         parse_unit_line(line)
@@ -91,17 +98,27 @@ def test_unit_lines_that_are_refused_name_the_problem(line, words):
 _NAME_CHARS = st.sampled_from("ABCXYZabcz0189._-")
 
 
-@given(serial=st.text(_NAME_CHARS, min_size=1, max_size=63), lot=st.text(_NAME_CHARS,
-                                                                         min_size=1, max_size=63))
+@given(
+    serial=st.text(_NAME_CHARS, min_size=1, max_size=63),
+    lot=st.text(_NAME_CHARS, min_size=1, max_size=63),
+)
 def test_any_valid_serial_and_lot_round_trip(serial, lot):
     serial, lot = "S" + serial, "L" + lot  # first character a letter
     assert parse_unit_line(f"SN:{serial};LOT:{lot}") == UnitId(serial, lot)
     assert parse_unit_line(serial) == UnitId(serial)
 
 
-@given(head=st.text(_NAME_CHARS, max_size=10), tail=st.text(_NAME_CHARS, max_size=10),
-       code=st.one_of(st.integers(0, 9), st.integers(11, 12), st.integers(14, 31),
-                      st.just(127), st.integers(0x80, 0x9F)))
+@given(
+    head=st.text(_NAME_CHARS, max_size=10),
+    tail=st.text(_NAME_CHARS, max_size=10),
+    code=st.one_of(
+        st.integers(0, 9),
+        st.integers(11, 12),
+        st.integers(14, 31),
+        st.just(127),
+        st.integers(0x80, 0x9F),
+    ),
+)
 def test_any_control_character_inside_a_line_is_refused(head, tail, code):
     with pytest.raises(InputError, match="control character"):
         parse_unit_line("A" + head + chr(code) + tail)
@@ -161,11 +178,19 @@ def test_unit_offsets_are_deterministic_and_differ_between_serials():
 
 def test_unit_offsets_do_not_depend_on_the_python_process():
     """SHA-256 seeding, not Python's randomised hash: another process, same offsets."""
-    code = ("from noisebench.station import UnitVariation as V; "
-            "o = V().offsets('U001'); print(repr((o.nf_offset_db, o.gain_offset_db, o.weak)))")
+    code = (
+        "from noisebench.frontends.station import UnitVariation as V; "
+        "o = V().offsets('U001'); print(repr((o.nf_offset_db, o.gain_offset_db, o.weak)))"
+    )
     env = {"PYTHONHASHSEED": "12345", "PATH": "/usr/bin:/bin"}
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                         env=env, timeout=60, check=True).stdout.strip()
+    out = subprocess.run(
+        [sys.executable, "-c", code],
+        capture_output=True,
+        text=True,
+        env=env,
+        timeout=60,
+        check=True,
+    ).stdout.strip()
     here = UnitVariation().offsets("U001")
     assert out == repr((here.nf_offset_db, here.gain_offset_db, here.weak))
 
@@ -200,10 +225,12 @@ def test_a_simulated_unit_changes_only_the_dut_and_is_not_cumulative():
     band = (base.dut.freq_hz[0], base.dut.freq_hz[-1])
     # tables are interpolated linearly in dB versus frequency, so a change that is linear
     # in frequency between table points is exact everywhere in the band
-    np.testing.assert_allclose(after["nf_db"] - before["nf_db"],
-                               offsets.nf_change_db(f, band), atol=1e-9)
-    np.testing.assert_allclose(after["gain_db"] - before["gain_db"], offsets.gain_offset_db,
-                               atol=1e-9)
+    np.testing.assert_allclose(
+        after["nf_db"] - before["nf_db"], offsets.nf_change_db(f, band), atol=1e-9
+    )
+    np.testing.assert_allclose(
+        after["gain_db"] - before["gain_db"], offsets.gain_offset_db, atol=1e-9
+    )
     for key in ("enr_table_db", "input_loss_db", "analyzer_nf_db", "cold_k"):
         np.testing.assert_array_equal(after[key], before[key])
 
@@ -212,8 +239,12 @@ def test_a_simulated_unit_changes_only_the_dut_and_is_not_cumulative():
 
 
 def _settings(tmp_path: Path, **extra) -> StationSettings:
-    values = {"station_id": "bench-3", "operator": "ann", "folder": tmp_path / "station",
-              "unit_variation": SPREAD}
+    values = {
+        "station_id": "bench-3",
+        "operator": "ann",
+        "folder": tmp_path / "station",
+        "unit_variation": SPREAD,
+    }
     values.update(extra)
     return StationSettings(**values)
 
@@ -252,8 +283,16 @@ def lot_run(tmp_path_factory):
     lines = [f"SN:{s};LOT:L24-07" for s in serials] + [below[0]]  # re-test, lot from default
     with station:
         summary = station.run(units_from_lines(lines, lot="L24-07"))
-    return {"summary": summary, "said": said, "truths": _truth_of(serials), "below": below,
-            "above": above, "serials": serials, "folder": tmp_path / "station", "sim": sim}
+    return {
+        "summary": summary,
+        "said": said,
+        "truths": _truth_of(serials),
+        "below": below,
+        "above": above,
+        "serials": serials,
+        "folder": tmp_path / "station",
+        "sim": sim,
+    }
 
 
 def test_each_unit_gets_its_run_folder_verdict_and_report(lot_run):
@@ -280,8 +319,9 @@ def test_verdicts_agree_with_the_simulated_truth(lot_run):
     certain = 0
     for unit in summary.units:
         record = load_run(Path(unit.folder))
-        for point, budget, nf_true in zip(record.points, record.budgets,
-                                          truths[unit.serial], strict=True):
+        for point, budget, nf_true in zip(
+            record.points, record.budgets, truths[unit.serial], strict=True
+        ):
             band = budget["U_expanded_db"] + 5 * point.u_nf_db
             verdict = record.verdict_at(point.freq_hz)["verdict"]
             if nf_true < NF_LIMIT_DB - band:
@@ -300,8 +340,7 @@ def test_failing_units_name_their_failing_points(lot_run):
     failed = [u for u in lot_run["summary"].units if u.verdict == "fail"]
     assert failed
     for unit in failed:
-        assert unit.failing and all(p["verdict"] in ("fail", "indeterminate")
-                                    for p in unit.failing)
+        assert unit.failing and all(p["verdict"] in ("fail", "indeterminate") for p in unit.failing)
         line = unit.line()
         assert "FAIL" in line and "nf_db" in line and f"vs max {NF_LIMIT_DB}" in line
 
@@ -323,7 +362,8 @@ def test_summary_counts_latest_attempt_and_yield(lot_run):
     assert "stopped: end of input" in text
     assert lot_run["said"][-1] == text  # the operator sees the summary last
     stored = StationSummary.model_validate_json(
-        (lot_run["folder"] / SUMMARY_FILE).read_text(encoding="utf-8"))
+        (lot_run["folder"] / SUMMARY_FILE).read_text(encoding="utf-8")
+    )
     assert stored.counts() == counts and stored.ended_at is not None
 
 
@@ -355,12 +395,16 @@ def test_expired_and_changed_calibrations_are_measured_again(tmp_path):
     with Station(plan, expiring, session=session, calibrations=store) as station:
         summary = station.run([UnitId("E1"), UnitId("E2"), UnitId("E3")])
     assert [u.calibration_reason for u in summary.units] == [
-        "first calibration", "expired", "expired"]
+        "first calibration",
+        "expired",
+        "expired",
+    ]
     assert summary.calibrations == 3 and len(store.entries) == 3 * len(FREQS_HZ)
     # a new plan with another RBW: the stored (still young) calibration does not apply
     wider = small_plan(tmp_path, limits=False, uncertainty=False, rbw_hz=2e6)
-    with Station(wider, _settings(tmp_path, store=False), session=session,
-                 calibrations=store) as station:
+    with Station(
+        wider, _settings(tmp_path, store=False), session=session, calibrations=store
+    ) as station:
         summary = station.run([UnitId("E4"), UnitId("E5")])
     assert [u.calibration_reason for u in summary.units] == ["settings changed", None]
     assert [u.outcome for u in summary.units] == ["not_judged", "not_judged"]
@@ -440,8 +484,9 @@ def test_a_bench_fault_stops_the_station(tmp_path):
     sim = exact_sim(seed=6)
     plan = small_plan(tmp_path)
     hook = _RaiseOnPoint(len(FREQS_HZ) + 1, CommunicationError("analyzer stopped answering"))
-    station = Station(plan, _settings(tmp_path, store=False), session=session_on(sim, plan),
-                      on_point=hook)
+    station = Station(
+        plan, _settings(tmp_path, store=False), session=session_on(sim, plan), on_point=hook
+    )
     with station:
         summary = station.run([UnitId("F1"), UnitId("F2"), UnitId("F3")])
     assert [u.serial for u in summary.units] == ["F1", "F2"]
@@ -462,14 +507,13 @@ def test_a_database_failure_keeps_the_run_and_says_so(tmp_path):
 
 
 def _refuse_store(record, **kwargs):
-    from noisebench.database import DatabaseError
+    from noisebench.results.database import DatabaseError
 
     raise DatabaseError("server closed the connection")
 
 
 def test_unit_result_outcomes():
-    base = {"serial": "X", "started_at": "2026-01-01T00:00:00Z", "duration_s": 1.0,
-            "points": 2}
+    base = {"serial": "X", "started_at": "2026-01-01T00:00:00Z", "duration_s": 1.0, "points": 2}
     assert UnitResult(status="complete", verdict="pass", **base).outcome == "pass"
     assert UnitResult(status="complete", **base).outcome == "not_judged"
     assert UnitResult(status="interrupted", verdict="fail", **base).outcome == "error"

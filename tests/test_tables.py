@@ -4,15 +4,16 @@ from __future__ import annotations
 
 import pytest
 
-from noisebench.enr import EnrTable
 from noisebench.errors import InputError
-from noisebench.gain_files import load_gain_table
-from noisebench.tables import read_table_text
+from noisebench.science.enr import EnrTable
+from noisebench.science.gain_files import load_gain_table
+from noisebench.science.tables import read_table_text
 
 
 def test_text_with_a_line_break_is_the_table_itself():
-    assert read_table_text("freq_hz,enr_db\n1e9,15\n", None, what="ENR table file",
-                           text_label="ENR text") == ("freq_hz,enr_db\n1e9,15\n", "ENR text")
+    assert read_table_text(
+        "freq_hz,enr_db\n1e9,15\n", None, what="ENR table file", text_label="ENR text"
+    ) == ("freq_hz,enr_db\n1e9,15\n", "ENR text")
 
 
 def test_missing_file_folder_and_binary_are_named(tmp_path):

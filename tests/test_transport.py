@@ -156,8 +156,9 @@ def test_definite_block_round_trip_and_header_checks():
     payload = split_definite_block(raw)
     assert np.array_equal(decode_block_values(payload), values.astype(float))
     little = ieee_block(values, big_endian=False)
-    assert np.array_equal(decode_block_values(split_definite_block(little), big_endian=False),
-                          values.astype(float))
+    assert np.array_equal(
+        decode_block_values(split_definite_block(little), big_endian=False), values.astype(float)
+    )
     with pytest.raises(BlockError, match="6 of the 12"):
         split_definite_block(raw[:10])
     with pytest.raises(BlockError, match="longer"):
@@ -173,9 +174,15 @@ def test_definite_block_round_trip_and_header_checks():
 
 
 @settings(max_examples=100, deadline=None)
-@given(arrays(np.dtype(">f4"), st.integers(0, 300),
-              elements=st.floats(width=32, allow_nan=False, allow_infinity=False)),
-       st.booleans(), st.sampled_from(["f", "d"]))
+@given(
+    arrays(
+        np.dtype(">f4"),
+        st.integers(0, 300),
+        elements=st.floats(width=32, allow_nan=False, allow_infinity=False),
+    ),
+    st.booleans(),
+    st.sampled_from(["f", "d"]),
+)
 def test_any_block_decodes_bit_identically(values, big_endian, datatype):
     raw = ieee_block(values, datatype=datatype, big_endian=big_endian)
     decoded = decode_block_values(split_definite_block(raw), datatype, big_endian)

@@ -6,7 +6,7 @@ from pathlib import Path
 
 import pytest
 
-from noisebench.pytest_plugin import configured_plan_path
+from noisebench.frontends.pytest_plugin import configured_plan_path
 
 HERE = Path(__file__).resolve().parent
 

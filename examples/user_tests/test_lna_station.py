@@ -1,7 +1,7 @@
 """Example: the production checks of an LNA written as ordinary pytest tests.
 
 Run (the plugin loads by its entry point once noisebench is installed; before that add
-``-p noisebench.pytest_plugin``)::
+``-p noisebench.frontends.pytest_plugin``)::
 
     pytest examples/user_tests                                  # invented simulated bench
     pytest examples/user_tests --nb-bench "sim://demo-lna?seed=7"
@@ -19,8 +19,8 @@ from pathlib import Path
 import pytest
 
 from noisebench.drivers import ScpiGenerator
-from noisebench.point import PointFlag
-from noisebench.pytest_plugin import assert_verdict, expected_protocol
+from noisebench.frontends.pytest_plugin import assert_verdict, expected_protocol
+from noisebench.science.point import PointFlag
 
 HERE = Path(__file__).resolve().parent
 NF_MAX_DB = 1.6  # the plan's mask, repeated for the spot checks below
@@ -58,25 +58,27 @@ def test_spot_noise_figure_and_gain(nb_measure_point, freq_hz):
     point = nb_measure_point(freq_hz)
     assert point.freq_hz == freq_hz
     assert point.nf_db + 2 * point.u_nf_db < NF_MAX_DB
-    assert point.gain_db is not None and point.gain_db - 2 * (point.u_gain_db or 0.0) \
-        > GAIN_MIN_DB
+    assert point.gain_db is not None and point.gain_db - 2 * (point.u_gain_db or 0.0) > GAIN_MIN_DB
 
 
 def test_my_generator_profile_dialogue():
     """Our own generator profile sends exactly these commands (no hardware needed)."""
     profile = HERE / "my_generator.toml"
-    with expected_protocol(lambda transport: ScpiGenerator(transport, profile), [
-        ("*IDN?", "ACME,SG-9,1234,1.0"),
-        ("*CLS", None),
-        ("OUTPut:STATe?", "0"),
-        ("SOURce:FREQuency:CW 1500000000", None),
-        ("SYSTem:ERRor?", '0,"No error"'),
-        ("SOURce:POWer:LEVel -30.00", None),
-        ("SYSTem:ERRor?", '0,"No error"'),
-        ("SOURce:FREQuency:CW?", "1500000000"),
-        ("SOURce:POWer:LEVel?", "-30.00"),
-        ("SYSTem:ERRor?", '0,"No error"'),
-    ]) as generator:
+    with expected_protocol(
+        lambda transport: ScpiGenerator(transport, profile),
+        [
+            ("*IDN?", "ACME,SG-9,1234,1.0"),
+            ("*CLS", None),
+            ("OUTPut:STATe?", "0"),
+            ("SOURce:FREQuency:CW 1500000000", None),
+            ("SYSTem:ERRor?", '0,"No error"'),
+            ("SOURce:POWer:LEVel -30.00", None),
+            ("SYSTem:ERRor?", '0,"No error"'),
+            ("SOURce:FREQuency:CW?", "1500000000"),
+            ("SOURce:POWer:LEVel?", "-30.00"),
+            ("SYSTem:ERRor?", '0,"No error"'),
+        ],
+    ) as generator:
         generator.set_cw(1.5e9, -30.0)
     assert generator.frequency_hz == 1.5e9
     assert generator.level_dbm == -30.0

@@ -1,0 +1,1 @@
+"""The bench: abstract instrument interfaces, acquisition models and the address registry."""

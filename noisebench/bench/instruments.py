@@ -1,0 +1,154 @@
+"""The abstract bench: what the sequencer needs from an analyzer, a noise source, a generator.
+
+Concrete back ends live in ``noisebench.drivers`` (SCPI over pyvisa) and ``noisebench.sims``
+(simulated). The core never imports either; :mod:`noisebench.bench.registry` picks one by address.
+"""
+
+from __future__ import annotations
+
+import threading
+from abc import ABC, abstractmethod
+from dataclasses import dataclass, field
+
+from noisebench.bench.acquisition import (
+    AcquisitionRequest,
+    AcquisitionSettings,
+    MarkerKind,
+    MarkerReading,
+    Trace,
+)
+
+
+class Instrument(ABC):
+    """Anything on the bench. Owns a lock; ``close`` must leave it in a safe state."""
+
+    def __init__(self) -> None:
+        self.lock = threading.RLock()
+
+    @property
+    @abstractmethod
+    def identity(self) -> str:
+        """Identification string (``*IDN?`` reply or a simulator's equivalent)."""
+
+    @abstractmethod
+    def close(self) -> None:
+        """Put the instrument in its safe state and release the connection. Idempotent."""
+
+    def __enter__(self):  # noqa: D105
+        return self
+
+    def __exit__(self, *exc) -> None:  # noqa: D105
+        self.close()
+
+
+class Analyzer(Instrument):
+    """A spectrum analyzer that acquires averaged noise traces and marker readings."""
+
+    @abstractmethod
+    def configure(self, request: AcquisitionRequest) -> AcquisitionSettings:
+        """Apply ``request`` and return the settings the instrument really applied."""
+
+    @property
+    @abstractmethod
+    def settings(self) -> AcquisitionSettings | None:
+        """The settings last applied (``None`` before the first ``configure``)."""
+
+    @abstractmethod
+    def acquire_trace(self) -> Trace:
+        """Run one complete (averaged) acquisition with the applied settings; return the trace."""
+
+    @abstractmethod
+    def read_marker(
+        self, freq_hz: float, kind: MarkerKind, band_hz: float | None = None
+    ) -> MarkerReading:
+        """Acquire and read a marker at ``freq_hz`` (band power over ``band_hz``, or density)."""
+
+    @abstractmethod
+    def expected_acquisition_time_s(self) -> float:
+        """Instrument time one ``acquire_trace`` takes with the applied settings, seconds."""
+
+    @property
+    def max_input_power_dbm(self) -> float | None:
+        """Rated maximum total RF input power, dBm, when known (None: unknown)."""
+        return None
+
+
+class NoiseSource(Instrument):
+    """A switchable noise source (hot = drive on, cold = drive off)."""
+
+    @abstractmethod
+    def set_hot(self, hot: bool) -> None:
+        """Switch the drive on (hot) or off (cold) and wait ``settle_time_s``."""
+
+    @property
+    @abstractmethod
+    def is_hot(self) -> bool:
+        """True while the drive is on."""
+
+    @property
+    @abstractmethod
+    def settle_time_s(self) -> float:
+        """Time allowed after each switch before measuring, seconds."""
+
+    @property
+    def cold_temperature_k(self) -> float | None:
+        """Physical temperature of the source when it is read from the bench (None: unknown)."""
+        return None
+
+
+class Generator(Instrument):
+    """A CW signal generator for gain measurements."""
+
+    @abstractmethod
+    def set_cw(self, freq_hz: float, level_dbm: float) -> None:
+        """Set the CW frequency (Hz) and level (dBm)."""
+
+    @abstractmethod
+    def set_output(self, on: bool) -> None:
+        """Switch the RF output on or off."""
+
+    @property
+    @abstractmethod
+    def output_on(self) -> bool:
+        """True while the RF output is on."""
+
+
+@dataclass
+class Bench:
+    """The instruments of one measurement. ``ambient_k`` is the room / termination temperature."""
+
+    analyzer: Analyzer
+    noise_source: NoiseSource | None = None
+    generator: Generator | None = None
+    ambient_k: float | None = None
+    extras: dict = field(default_factory=dict)
+
+    def identities(self) -> dict[str, str]:
+        out = {"analyzer": self.analyzer.identity}
+        if self.noise_source is not None:
+            out["noise_source"] = self.noise_source.identity
+        if self.generator is not None:
+            out["generator"] = self.generator.identity
+        return out
+
+    def safe_state(self) -> None:
+        """Noise source off, generator output off. Never raises."""
+        for action in (
+            (lambda: self.noise_source.set_hot(False)) if self.noise_source else None,
+            (lambda: self.generator.set_output(False)) if self.generator else None,
+        ):
+            if action is None:
+                continue
+            try:
+                action()
+            except Exception:  # noqa: BLE001 - safe state is best effort
+                pass
+
+    def close(self) -> None:
+        self.safe_state()
+        for inst in (self.noise_source, self.generator, self.analyzer):
+            if inst is not None:
+                try:
+                    inst.close()
+                except Exception:  # noqa: BLE001
+                    pass

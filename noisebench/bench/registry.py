@@ -1,0 +1,263 @@
+"""Address strings -> instrument back ends, in one place.
+
+``sim://<scenario>?seed=N``    the in-process simulated bench (noisebench.sims)
+``TCPIP0::host::port::SOCKET`` (any VISA resource string) the SCPI drivers (noisebench.drivers)
+
+:func:`open_bench` turns a plan's ``[bench]`` section into a :class:`BenchSession`: the
+:class:`~noisebench.bench.instruments.Bench` the sequencer drives, plus a ``connect`` callback that
+puts the analyzer input on the DUT, on the noise source directly (THROUGH, system calibration)
+or on a matched termination (floor). On the in-process simulator ``connect`` moves the simulated
+path; on the SCPI simulator it sends the profile's simulator path command; on a real bench it
+asks the operator to move the cables. The drivers and the simulator are imported only when an
+address asks for them, so the core never depends on either.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from enum import Enum
+from typing import Any
+
+from noisebench.bench.instruments import Bench
+from noisebench.errors import InputError, NoisebenchError
+from noisebench.running.plan import BenchSection, parse_sim_address
+
+logger = logging.getLogger(__name__)
+
+Prompt = Callable[[str], Any]
+
+
+class Connection(str, Enum):
+    """What the analyzer input sees."""
+
+    DUT = "dut"  # noise source (or termination) -> DUT -> analyzer
+    THROUGH = "through"  # noise source -> analyzer (Y-factor system calibration, gain reference)
+    TERMINATION = "termination"  # matched load at ambient -> analyzer (gain-method floor)
+
+
+OPERATOR_INSTRUCTIONS: dict[Connection, str] = {
+    Connection.DUT: "Connect the DUT: noise source (or termination) -> DUT input, DUT output "
+    "-> analyzer input. Power the DUT.",
+    Connection.THROUGH: "Remove the DUT: connect the noise source straight to the analyzer "
+    "input (through the same cables and adapters).",
+    Connection.TERMINATION: "Terminate the analyzer input with a matched load at room "
+    "temperature (no DUT, no noise source).",
+}
+
+
+def is_simulated(resource: str) -> bool:
+    return resource.startswith("sim://")
+
+
+@dataclass
+class BenchSession:
+    """An opened bench with its connection callback.
+
+    ``sim`` is the simulated bench when the analyzer address is ``sim://`` (truth for tests
+    and benchmarks); ``kind`` is ``"simulated"`` or ``"scpi"``.
+    """
+
+    bench: Bench
+    kind: str
+    resources: dict[str, str]
+    _move: Callable[[Connection], None]
+    sim: Any = None
+    scpi_simulator: bool = False
+    connection: Connection | None = None
+    moves: list[Connection] = field(default_factory=list)
+
+    def connect(self, target: Connection | str) -> None:
+        """Put the analyzer input on ``target`` (no-op when it is already there)."""
+        target = Connection(target)
+        if target is self.connection:
+            return
+        self.bench.safe_state()  # never move cables with the source hot or the tone on
+        self._move(target)
+        self.connection = target
+        self.moves.append(target)
+        logger.info("bench connected: %s", target.value)
+
+    @property
+    def real_hardware(self) -> bool:
+        """True unless every instrument is simulated (in process or over SCPI)."""
+        return self.kind != "simulated" and not self.scpi_simulator
+
+    def instrument_time_s(self) -> float | None:
+        """Simulated instrument clock (None on real instruments: use wall time)."""
+        return float(self.sim.clock.now_s) if self.sim is not None else None
+
+    def close(self) -> None:
+        """Safe state, then close every instrument. Idempotent; never raises."""
+        try:
+            self.bench.close()
+        except Exception:  # noqa: BLE001 - closing is best effort
+            logger.warning("closing the bench failed", exc_info=True)
+
+
+def open_bench(
+    section: BenchSection, *, prompt: Prompt = input, enr_drive_v: float | None = None
+) -> BenchSession:
+    """Open the instruments named by a plan's bench section."""
+    resource = section.analyzer.resource
+    if is_simulated(resource):
+        return _open_simulated(section)
+    return _open_scpi(section, prompt=prompt, enr_drive_v=enr_drive_v)
+
+
+# --------------------------------------------------------------------------- simulated
+
+
+def _open_simulated(section: BenchSection) -> BenchSession:
+    from noisebench.sims.bench import SimulatedBench
+
+    address = parse_sim_address(section.analyzer.resource)
+    sim = SimulatedBench.from_scenario(address.scenario, seed=address.seed)
+    return simulated_session(sim, section, resource=section.analyzer.resource)
+
+
+def simulated_session(
+    sim: Any, section: BenchSection | None = None, *, resource: str = "sim://custom"
+) -> BenchSession:
+    """A session on an already built :class:`noisebench.sims.bench.SimulatedBench`.
+
+    For tests and benchmarks that build the simulator with scenario overrides. Without a
+    ``section`` the noise source and the generator are both kept.
+    """
+    from noisebench.sims.bench import Path as SimPath
+
+    bench = sim.as_bench()
+    if section is not None:
+        if section.noise_source.drive == "none":
+            bench.noise_source = None
+        if section.generator is None:
+            bench.generator = None
+        if section.ambient_k is not None:
+            bench.ambient_k = section.ambient_k
+    paths = {
+        Connection.DUT: SimPath.DUT,
+        Connection.THROUGH: SimPath.THROUGH,
+        Connection.TERMINATION: SimPath.TERMINATION,
+    }
+    resources = {"analyzer": resource}
+    if bench.generator is not None:
+        resources["generator"] = resource
+    return BenchSession(
+        bench=bench,
+        kind="simulated",
+        resources=resources,
+        _move=lambda target: sim.set_path(paths[target]),
+        sim=sim,
+    )
+
+
+# --------------------------------------------------------------------------- SCPI
+
+
+def _open_scpi(section: BenchSection, *, prompt: Prompt, enr_drive_v: float | None) -> BenchSession:
+    from noisebench import drivers
+
+    opened: list[Any] = []
+    try:
+        analyzer = drivers.open_analyzer(
+            section.analyzer.resource,
+            profile=section.analyzer.profile,
+            timeout_s=section.analyzer.timeout_s,
+        )
+        opened.append(analyzer)
+        source = _open_noise_source(section, analyzer, prompt, enr_drive_v)
+        if source is not None:
+            opened.append(source)
+        generator = None
+        if section.generator is not None:
+            generator = drivers.open_generator(
+                section.generator.resource,
+                profile=section.generator.profile,
+                timeout_s=section.generator.timeout_s,
+            )
+            opened.append(generator)
+    except BaseException:
+        for inst in reversed(opened):
+            _close_quietly(inst)
+        raise
+    bench = Bench(
+        analyzer=analyzer, noise_source=source, generator=generator, ambient_k=section.ambient_k
+    )
+    resources = {"analyzer": section.analyzer.resource}
+    if section.noise_source.resource:
+        resources["noise_source"] = section.noise_source.resource
+    if section.generator is not None:
+        resources["generator"] = section.generator.resource
+    sim_path = section.connect == "auto" and _supports_sim_path(analyzer)
+    move = _scpi_sim_mover(analyzer) if sim_path else _operator_mover(prompt)
+    return BenchSession(
+        bench=bench, kind="scpi", resources=resources, _move=move, scpi_simulator=sim_path
+    )
+
+
+def _open_noise_source(
+    section: BenchSection, analyzer: Any, prompt: Prompt, enr_drive_v: float | None
+) -> Any:
+    from noisebench import drivers
+
+    cfg = section.noise_source
+    drive = "analyzer" if cfg.drive == "auto" else cfg.drive
+    if drive == "none":
+        return None
+    if drive == "analyzer":
+        return drivers.AnalyzerDriveNoiseSource(analyzer, settle_time_s=cfg.settle_time_s)
+    if drive == "operator":
+        return drivers.OperatorNoiseSource(prompt=prompt, settle_time_s=cfg.settle_time_s)
+    drive_v = cfg.drive_v or enr_drive_v
+    if drive_v is None:
+        raise InputError(
+            "bench.noise_source.drive_v",
+            "the supply voltage is not known",
+            fix="set drive_v, or give nominal_drive_v in the ENR table",
+        )
+    return drivers.open_supply_noise_source(
+        cfg.resource,
+        drive_v=drive_v,
+        current_limit_a=cfg.current_limit_a,
+        max_drive_v=cfg.max_drive_v,
+        settle_time_s=cfg.settle_time_s,
+        profile=cfg.profile,
+    )
+
+
+SIMULATOR_MAKER = "noisebench"
+"""Manufacturer field of the simulated instruments' ``*IDN?`` reply."""
+
+
+def _supports_sim_path(analyzer: Any) -> bool:
+    """True for the SCPI simulator: its profile has the path command AND it says it is one.
+
+    Both are required so a profile copied from the generic one never sends simulator-only
+    commands to real hardware."""
+    spec = getattr(analyzer, "spec", None)
+    if getattr(spec, "sim_path", None) is None:
+        return False
+    maker = str(analyzer.identity).split(",", 1)[0].strip().lower()
+    return maker == SIMULATOR_MAKER
+
+
+def _scpi_sim_mover(analyzer: Any) -> Callable[[Connection], None]:
+    def move(target: Connection) -> None:
+        analyzer.set_sim_path(target.value)
+
+    return move
+
+
+def _operator_mover(prompt: Prompt) -> Callable[[Connection], None]:
+    def move(target: Connection) -> None:
+        prompt(f"{OPERATOR_INSTRUCTIONS[target]} Press Enter when done. ")
+
+    return move
+
+
+def _close_quietly(inst: Any) -> None:
+    try:
+        inst.close()
+    except (NoisebenchError, OSError):
+        logger.warning("closing %r failed", inst, exc_info=True)

@@ -1,0 +1,698 @@
+"""``ScpiAnalyzer``: a spectrum analyzer driven by the SCPI strings of a profile.
+
+``configure`` sends every requested setting in the profile's ``apply_order``, then READS BACK
+every setting (instruments round RBW, points, averages; the physics must use the applied
+values) and returns them as :class:`~noisebench.bench.acquisition.AcquisitionSettings`, with the
+filter shape (poles / FFT window), sweep time and detector samples the instrument reports.
+``acquire_trace`` starts one complete averaged acquisition, waits for it with a timeout sized
+from the expected acquisition time (``*OPC?``, or status polling for long acquisitions),
+transfers the trace (binary block, or ASCII) and checks the error queue. Every operation runs
+under the instrument lock with the retry/recovery policy of
+:class:`~noisebench.drivers.scpi_channel.ScpiChannel`; after a reconnect the settings are read
+back, compared with the last applied ones (a difference means the instrument lost them, e.g.
+after a reboot: recorded in ``settings_changes``) and re-applied.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import time
+from collections.abc import Callable
+from enum import Enum
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from pydantic import ValidationError
+
+from noisebench.bench.acquisition import (
+    AcquisitionRequest,
+    AcquisitionSettings,
+    AveragingScale,
+    Detector,
+    MarkerKind,
+    MarkerReading,
+    SweepMode,
+    Trace,
+)
+from noisebench.bench.instruments import Analyzer
+from noisebench.errors import (
+    CommunicationError,
+    InputError,
+    InstrumentTimeout,
+    MeasurementError,
+    NoisebenchError,
+)
+from noisebench.science.filters import FilterKind, RbwFilter
+
+from .profile import (
+    AnalyzerProfile,
+    InstrumentProfile,
+    ReplyError,
+    load_profile,
+)
+from .scpi_channel import ScpiChannel
+from .transport import BlockError, Transport, parse_ascii_values
+
+logger = logging.getLogger(__name__)
+
+__all__ = ["ScpiAnalyzer", "settings_differences"]
+
+_ESR_ERROR_BITS = 4 | 8 | 16 | 32  # query, device-dependent, execution, command error
+_TRACE_FORMATS = ("binary", "ascii")
+
+
+def settings_differences(
+    before: AcquisitionSettings, after: AcquisitionSettings, *, rel_tol: float = 1e-9
+) -> dict[str, tuple[Any, Any]]:
+    """Fields whose values differ between two applied settings: ``{name: (before, after)}``."""
+    out: dict[str, tuple[Any, Any]] = {}
+    a, b = before.model_dump(), after.model_dump()
+    for name, old in a.items():
+        new = b.get(name)
+        if isinstance(old, float) and isinstance(new, float):
+            if not math.isclose(old, new, rel_tol=rel_tol, abs_tol=1e-12):
+                out[name] = (old, new)
+        elif old != new:
+            out[name] = (old, new)
+    return out
+
+
+class ScpiAnalyzer(Analyzer):
+    """A spectrum analyzer over a :class:`~noisebench.drivers.transport.Transport`.
+
+    ``profile`` is an :class:`InstrumentProfile`, a packaged profile name or a ``.toml`` path.
+    ``retries`` bounds the recoveries per operation. Construction talks to the instrument
+    (``*IDN?``, ``*CLS``); use :func:`noisebench.drivers.open_analyzer` to open by address.
+    """
+
+    def __init__(
+        self,
+        transport: Transport,
+        profile: InstrumentProfile | str | Path = "generic",
+        *,
+        retries: int = 2,
+        sleep: Callable[[float], None] = time.sleep,
+    ) -> None:
+        super().__init__()
+        self.profile = load_profile(profile)
+        self.spec: AnalyzerProfile = self.profile.section("analyzer")
+        self.transport = transport
+        self.settings_changes: list[dict[str, tuple[Any, Any]]] = []
+        self.trace_transfer: str = self.spec.trace.transfer
+        self._sleep = sleep
+        self._settings: AcquisitionSettings | None = None
+        self._request: AcquisitionRequest | None = None
+        self._format_sent: str | None = None
+        self._noise_drive: bool | None = None
+        self._sim_path: str | None = None
+        self._block_failures = 0
+        self._closed = False
+        self._channel = ScpiChannel(
+            transport,
+            self.profile.common,
+            kind="analyzer",
+            lock=self.lock,
+            retries=retries,
+            restore=self._restore,
+        )
+        self._channel.connect()
+
+    # -- identity and state -------------------------------------------------------------
+
+    @property
+    def identity(self) -> str:
+        return self._channel.identity
+
+    @property
+    def settings(self) -> AcquisitionSettings | None:
+        return self._settings
+
+    @property
+    def max_input_power_dbm(self) -> float | None:
+        return self.spec.max_input_power_dbm
+
+    @property
+    def recovery_log(self) -> list[str]:
+        """One line per recovery from a communication fault."""
+        return self._channel.recovery_log
+
+    def __repr__(self) -> str:
+        return (
+            f"<ScpiAnalyzer {self.transport.resource!r} profile={self.profile.name!r}"
+            f"{' closed' if self._closed else ''}>"
+        )
+
+    # -- configure ----------------------------------------------------------------------
+
+    def configure(self, request: AcquisitionRequest) -> AcquisitionSettings:
+        """Send ``request``, read every setting back, return what the instrument applied."""
+        if not isinstance(request, AcquisitionRequest):
+            raise InputError(
+                "request", f"must be an AcquisitionRequest (got {type(request).__name__})"
+            )
+        commands = self._commands_for(request)  # validates everything before any I/O
+        with self.lock:
+            self._settings = None
+            settings = self._channel.run("configure", lambda: self._apply(commands, request))
+            self._request, self._settings = request, settings
+            return settings
+
+    def _requested_values(self, request: AcquisitionRequest) -> dict[str, Any]:
+        s = self.spec.settings
+        values: dict[str, Any] = {
+            "continuous": False,
+            "mode": request.mode,
+            "rbw_hz": request.rbw_hz,
+            "points": request.points,
+            "detector": request.detector,
+            "averaging_scale": request.averaging_scale,
+            "averages": request.averages,
+            "ref_level_dbm": request.ref_level_dbm,
+            "attenuation_db": request.attenuation_db,
+            "preamp": request.preamp,
+        }
+        if (
+            s.center_hz is not None
+            and s.center_hz.writable
+            and s.span_hz is not None
+            and s.span_hz.writable
+        ):
+            values.update(center_hz=request.center_hz, span_hz=request.span_hz)
+        else:
+            values.update(start_hz=request.start_hz, stop_hz=request.stop_hz)
+        values.update(self._auto_or_value("vbw", request.vbw_hz))
+        values.update(self._auto_or_value("sweep_time", request.sweep_time_s))
+        return values
+
+    def _auto_or_value(self, stem: str, value: float | None) -> dict[str, Any]:
+        auto = getattr(self.spec.settings, f"{stem}_auto")
+        if value is None:
+            return {f"{stem}_auto": True} if auto is not None and auto.writable else {}
+        return {f"{stem}_hz" if stem == "vbw" else f"{stem}_s": value}
+
+    def _commands_for(self, request: AcquisitionRequest) -> list[str]:
+        """Validate ``request`` against the profile and format its commands (no I/O)."""
+        values = self._requested_values(request)
+        commands = []
+        for name in self.spec.apply_order:
+            value = values.get(name)
+            if value is None:
+                continue
+            setting = getattr(self.spec.settings, name)
+            if setting is None or not setting.writable:
+                if self._can_skip(name, value, setting):
+                    continue
+                raise InputError(
+                    f"request.{name}",
+                    f"profile {self.profile.name} cannot set {name} (requested {_plain(value)!r})",
+                    fix=f"leave {name} unset or add a 'set' template for it",
+                )
+            commands.append(setting.command(value))
+        missing = [
+            n
+            for n in values
+            if n not in self.spec.apply_order
+            and values[n] is not None
+            and getattr(self.spec.settings, n) is not None
+        ]
+        if missing:
+            raise InputError(
+                "analyzer.apply_order",
+                f"does not list {missing}",
+                fix=f"add {missing} to apply_order in {self.profile.source}",
+            )
+        return commands
+
+    def _can_skip(self, name: str, value: Any, setting: Any) -> bool:
+        """Requests the profile may ignore: those that ask for what it has anyway."""
+        if name == "continuous":
+            return True
+        if name == "mode":
+            return value is SweepMode.SWEPT
+        if name == "sweep_time_s":
+            logger.warning(
+                "profile %s cannot set the sweep time; using the instrument's", self.profile.name
+            )
+            return True
+        if setting is not None and setting.readable:  # a fixed value that matches
+            return _plain(value) == _plain(setting.parse(""))
+        return False
+
+    def _apply(self, commands: list[str], request: AcquisitionRequest) -> AcquisitionSettings:
+        for command in commands:
+            self._channel.write(command)
+        settings = self._read_settings()
+        self._channel.check_errors("configure")
+        _log_adjustments(request, settings)
+        return settings
+
+    # -- read back ----------------------------------------------------------------------
+
+    def read_settings(self) -> AcquisitionSettings:
+        """Query every setting the profile can report; return them as applied settings."""
+        return self._channel.run("read settings", self._read_settings)
+
+    def _read_settings(self) -> AcquisitionSettings:
+        with self.lock:
+            s = self.spec.settings
+            get = self._channel.get
+            if (
+                s.center_hz is not None
+                and s.span_hz is not None
+                and s.center_hz.readable
+                and s.span_hz.readable
+            ):
+                center, span = get(s.center_hz), get(s.span_hz)
+            else:
+                start, stop = get(s.start_hz), get(s.stop_hz)
+                center, span = (start + stop) / 2.0, stop - start
+            mode = SweepMode(get(s.mode)) if _readable(s.mode) else SweepMode.SWEPT
+            values = dict(
+                center_hz=center,
+                span_hz=span,
+                rbw_hz=get(s.rbw_hz),
+                rbw_filter=self._read_filter(mode),
+                mode=mode,
+                vbw_hz=get(s.vbw_hz) if _readable(s.vbw_hz) else None,
+                detector=Detector(get(s.detector)),
+                averaging_scale=AveragingScale(get(s.averaging_scale)),
+                averages=get(s.averages),
+                points=get(s.points),
+                ref_level_dbm=get(s.ref_level_dbm) if _readable(s.ref_level_dbm) else None,
+                attenuation_db=get(s.attenuation_db) if _readable(s.attenuation_db) else None,
+                preamp=get(s.preamp) if _readable(s.preamp) else None,
+                sweep_time_s=get(s.sweep_time_s) if _readable(s.sweep_time_s) else None,
+                detector_samples=get(s.detector_samples) if _readable(s.detector_samples) else None,
+            )
+            try:
+                return AcquisitionSettings(**values)
+            except (ValidationError, InputError) as exc:
+                raise ReplyError(
+                    f"the analyzer reports settings noisebench cannot use: {exc}",
+                    profile=self.profile.name,
+                ) from None
+
+    def _read_filter(self, mode: SweepMode) -> RbwFilter:
+        s = self.spec.settings
+        get = self._channel.get
+        if mode is SweepMode.FFT:
+            return RbwFilter(kind=FilterKind.FFT, window=str(get(s.fft_window)).lower())
+        shape = get(s.rbw_shape)
+        if shape == "synchronous":
+            return RbwFilter(kind=FilterKind.SYNCHRONOUS, poles=get(s.rbw_poles))
+        return RbwFilter(kind=FilterKind.GAUSSIAN)
+
+    def verify_settings(self) -> dict[str, tuple[Any, Any]]:
+        """Read the settings back and return how they differ from the last applied ones."""
+        applied = self._require_settings()
+        return self._channel.run(
+            "verify settings", lambda: settings_differences(applied, self._read_settings())
+        )
+
+    def _restore(self) -> None:
+        """After a reconnect: detect lost settings, re-apply them and the output states."""
+        self._format_sent = None
+        if self._request is not None and self._settings is not None:
+            found = settings_differences(self._settings, self._read_settings())
+            if found:
+                self.settings_changes.append(found)
+                logger.warning(
+                    "analyzer settings changed while disconnected (instrument "
+                    "reboot?): %s; re-applying",
+                    _describe(found),
+                )
+            applied = self._apply(self._commands_for(self._request), self._request)
+            still = settings_differences(self._settings, applied)
+            if still:
+                raise MeasurementError(
+                    f"re-applied settings differ from those applied before: {_describe(still)}",
+                    instrument="analyzer",
+                )
+        if self._noise_drive is not None and self.spec.noise_drive is not None:
+            self._channel.set(self.spec.noise_drive, self._noise_drive)
+        if self._sim_path is not None and self.spec.sim_path is not None:
+            self._channel.set(self.spec.sim_path, self._sim_path)
+
+    # -- acquisition --------------------------------------------------------------------
+
+    def expected_acquisition_time_s(self) -> float:
+        """Instrument time of one averaged acquisition with the applied settings, seconds.
+
+        Uses the sweep time the instrument reports; without one, ``k*span/(RBW*min(RBW,
+        VBW))`` with the profile's ``sweep_time_factor`` k (common practice, k ~ 2.5), or
+        10/RBW for zero span and FFT mode (a rough settling allowance)."""
+        s = self._require_settings()
+        acq = self.spec.acquisition
+        sweep = s.sweep_time_s
+        if sweep is None:
+            if s.span_hz > 0 and s.mode is SweepMode.SWEPT:
+                sweep = (
+                    acq.sweep_time_factor
+                    * s.span_hz
+                    / (s.rbw_hz * min(s.rbw_hz, s.vbw_hz or s.rbw_hz))
+                )
+            else:
+                sweep = 10.0 / s.rbw_hz
+        return s.averages * (sweep + acq.sweep_overhead_s)
+
+    def acquisition_timeout_s(self) -> float:
+        """Timeout for one acquisition: expected time x factor + allowance, seconds."""
+        acq = self.spec.acquisition
+        return max(
+            self._channel.base_timeout_s,
+            self.expected_acquisition_time_s() * acq.timeout_factor + acq.timeout_extra_s,
+        )
+
+    def acquire_trace(self) -> Trace:
+        """One complete averaged acquisition with the applied settings, then the trace."""
+        self._require_settings()
+        return self._channel.run("acquire trace", self._acquire_trace_once)
+
+    def _acquire_trace_once(self) -> Trace:
+        settings = self._require_settings()
+        elapsed = self._run_acquisition()
+        values = self._fetch_trace(settings)
+        self._channel.check_errors(self.spec.trace.query)
+        return Trace(
+            freq_hz=settings.frequencies_hz(),
+            values=values,
+            unit=self.spec.trace.unit,
+            settings=settings,
+            instrument=self.identity,
+            acquisition_time_s=max(elapsed, self.expected_acquisition_time_s()),
+        )
+
+    def _run_acquisition(self) -> float:
+        """Start one acquisition and wait for it; returns the wall time it took, seconds."""
+        acq = self.spec.acquisition
+        limit = self.acquisition_timeout_s()
+        started = time.monotonic()
+        try:
+            if acq.poll_start and self.expected_acquisition_time_s() > acq.poll_above_s:
+                self._wait_by_polling(limit)
+            else:
+                self._channel.write(acq.start, check=False)
+                with self.transport.timeout(limit):
+                    reply = self._channel.query(self.profile.common.operation_complete)
+                if reply.strip().lstrip("+") != "1":
+                    raise ReplyError(
+                        f"reply {reply!r} to {self.profile.common.operation_complete!r} is not 1"
+                    )
+        except InstrumentTimeout as exc:
+            exc.add_context(timeout_s=round(limit, 3))
+            self._abort_quietly()
+            raise
+        self._channel.check_errors(acq.start)
+        return time.monotonic() - started
+
+    def _wait_by_polling(self, limit_s: float) -> None:
+        acq = self.spec.acquisition
+        self._channel.query(acq.poll_query)  # reading the event register clears it
+        self._channel.write(acq.poll_start, check=False)
+        deadline = time.monotonic() + limit_s
+        while True:
+            status = int(float(self._channel.query(acq.poll_query)))
+            if status & _ESR_ERROR_BITS:
+                self._channel.check_errors(acq.poll_start)
+            if status & acq.poll_mask:
+                return
+            remaining = deadline - time.monotonic()
+            if remaining <= 0:
+                raise InstrumentTimeout(
+                    f"acquisition not complete after {limit_s:.3g} s "
+                    f"(status polling with {acq.poll_query!r})",
+                    command=acq.poll_start,
+                )
+            self._sleep(min(acq.poll_interval_s, remaining))
+
+    def _abort_quietly(self) -> None:
+        if self.spec.acquisition.abort is None:
+            return
+        try:
+            self.transport.write(self.spec.acquisition.abort)
+        except NoisebenchError as exc:
+            logger.debug("abort after a timeout failed: %s", exc)
+
+    def abort(self) -> None:
+        """Stop a running acquisition (profile ``abort`` command)."""
+        if self.spec.acquisition.abort is None:
+            raise InputError("abort", f"profile {self.profile.name} has no abort command")
+        self._channel.run("abort", lambda: self._channel.write(self.spec.acquisition.abort))
+
+    # -- trace transfer -----------------------------------------------------------------
+
+    def _fetch_trace(self, settings: AcquisitionSettings) -> np.ndarray:
+        tr = self.spec.trace
+        use = self.trace_transfer
+        if use == "binary" and self._block_failures >= 2 and tr.ascii_format is not None:
+            logger.warning("two binary transfers failed in a row; this trace goes as ASCII")
+            use = "ascii"
+        size = settings.points * (4 if tr.datatype == "f" else 8) * (1 if use == "binary" else 4)
+        timeout = self._channel.base_timeout_s + size / tr.transfer_rate_bytes_per_s
+        self._select_format(use)
+        try:
+            with self.transport.timeout(timeout):
+                if use == "binary":
+                    values = self.transport.query_binary(
+                        tr.query, datatype=tr.datatype, big_endian=tr.big_endian
+                    )
+                else:
+                    values = parse_ascii_values(self._channel.query(tr.query), tr.query)
+        except BlockError:
+            self._block_failures += 1
+            raise
+        self._block_failures = 0
+        return _checked_values(values, settings.points, tr.query)
+
+    def _select_format(self, use: str) -> None:
+        if self._format_sent == use:
+            return
+        tr = self.spec.trace
+        commands = [tr.binary_format, tr.byte_order] if use == "binary" else [tr.ascii_format]
+        self._format_sent = None
+        for command in commands:
+            if command is not None:
+                self._channel.write(command)
+        self._format_sent = use
+
+    def set_trace_transfer(self, transfer: str) -> None:
+        """Choose ``"binary"`` (IEEE 488.2 block) or ``"ascii"`` trace transfer."""
+        if transfer not in _TRACE_FORMATS:
+            raise InputError(
+                "trace_transfer",
+                f"must be one of {_TRACE_FORMATS} (got {transfer!r})",
+                value=transfer,
+            )
+        tr = self.spec.trace
+        if (tr.binary_format if transfer == "binary" else tr.ascii_format) is None:
+            raise InputError(
+                "trace_transfer", f"profile {self.profile.name} has no {transfer} format command"
+            )
+        self.trace_transfer = transfer
+
+    # -- markers ------------------------------------------------------------------------
+
+    def read_marker(
+        self, freq_hz: float, kind: MarkerKind, band_hz: float | None = None
+    ) -> MarkerReading:
+        """Acquire, then read a band-power (dBm over ``band_hz``, default 5 RBW) or
+        noise-density (dBm/Hz) marker at ``freq_hz``."""
+        settings = self._require_settings()
+        marker = self.spec.marker
+        if marker is None:
+            raise InputError(
+                "marker",
+                f"profile {self.profile.name} has no marker commands",
+                fix="add an [analyzer.marker] section",
+            )
+        kind = MarkerKind(kind)
+        _check_marker_frequency(freq_hz, settings)
+        if kind is MarkerKind.BAND_POWER and band_hz is None:
+            band_hz = 5.0 * settings.rbw_hz
+        commands = [marker.function.command(kind.value), marker.frequency.command(freq_hz)]
+        if band_hz is not None:
+            if marker.band is None:
+                raise InputError(
+                    "band_hz",
+                    f"profile {self.profile.name} cannot set a marker band",
+                    fix="leave band_hz unset",
+                )
+            commands.append(marker.band.command(band_hz))
+        return self._channel.run(
+            "read marker", lambda: self._marker_once(commands, float(freq_hz), kind, band_hz)
+        )
+
+    def _marker_once(
+        self, commands: list[str], freq_hz: float, kind: MarkerKind, band_hz: float | None
+    ) -> MarkerReading:
+        marker = self.spec.marker
+        settings = self._require_settings()
+        for command in commands:
+            self._channel.write(command)
+        elapsed = self._run_acquisition()
+        reply = self._channel.query(marker.value)
+        value = _parse_finite(reply, marker.value)
+        freq = self._channel.get(marker.frequency) if marker.frequency.readable else freq_hz
+        corrected = bool(self._channel.get(marker.corrected))
+        self._channel.check_errors(marker.value)
+        return MarkerReading(
+            freq_hz=freq,
+            kind=kind,
+            value_db=value,
+            band_hz=band_hz,
+            settings=settings,
+            acquisition_time_s=max(elapsed, self.expected_acquisition_time_s()),
+            instrument=self.identity,
+            instrument_corrected=corrected,
+        )
+
+    # -- noise-source drive and simulator path -------------------------------------------
+
+    @property
+    def has_noise_drive(self) -> bool:
+        """True when the profile defines the analyzer's noise-source drive output."""
+        return self.spec.noise_drive is not None
+
+    def set_noise_drive(self, on: bool) -> None:
+        """Switch the analyzer's noise-source drive output and verify the read-back."""
+        setting = self.spec.noise_drive
+        if setting is None:
+            raise InputError(
+                "noise_drive",
+                f"profile {self.profile.name} has no noise-source drive commands",
+                fix="drive the source from a DC supply or a relay instead",
+            )
+        command = setting.command(bool(on))
+        self._channel.run("noise drive", lambda: self._set_verified(setting, command, bool(on)))
+        self._noise_drive = bool(on)
+
+    def read_noise_drive(self) -> bool:
+        """The drive state the instrument reports."""
+        setting = self.spec.noise_drive
+        if setting is None:
+            raise InputError(
+                "noise_drive", f"profile {self.profile.name} has no noise-source drive commands"
+            )
+        return bool(self._channel.run("noise drive", lambda: self._channel.get(setting)))
+
+    def set_sim_path(self, path: str | Enum) -> None:
+        """Simulator only: what the analyzer input sees (``dut``/``through``/``termination``)."""
+        setting = self.spec.sim_path
+        if setting is None:
+            raise InputError(
+                "sim_path",
+                f"profile {self.profile.name} defines no simulator "
+                "path command (real instruments have none)",
+                fix="connect the DUT by hand, or use the simulator's profile",
+            )
+        value = path.value if isinstance(path, Enum) else str(path).lower()
+        command = setting.command(value)
+        self._channel.run("set path", lambda: self._set_verified(setting, command, value))
+        self._sim_path = value
+
+    def _set_verified(self, setting: Any, command: str, wanted: Any) -> None:
+        self._channel.write(command)
+        if setting.get_cmd is not None:
+            got = self._channel.get(setting)
+            if got != wanted:
+                raise MeasurementError(
+                    f"{setting.name}: the instrument reports {got!r} after {command!r}",
+                    instrument="analyzer",
+                )
+
+    # -- lifecycle ----------------------------------------------------------------------
+
+    def close(self) -> None:
+        """Noise drive off (when the profile has it), then release the session. Idempotent."""
+        with self.lock:
+            if self._closed:
+                return
+            self._closed = True
+            if self.spec.noise_drive is not None:
+                self._channel.write_safe_state(self.spec.noise_drive, False)
+            self._channel.close()
+
+    def _require_settings(self) -> AcquisitionSettings:
+        if self._settings is None:
+            raise InputError(
+                "analyzer.settings", "the analyzer is not configured", fix="call configure() first"
+            )
+        return self._settings
+
+
+# ----------------------------------------------------------------------------- helpers
+
+
+def _readable(setting: Any) -> bool:
+    return setting is not None and setting.readable
+
+
+def _plain(value: Any) -> Any:
+    return value.value if isinstance(value, Enum) else value
+
+
+def _parse_finite(reply: str, command: str) -> float:
+    try:
+        value = float(reply.strip().strip('"'))
+    except ValueError:
+        raise ReplyError(
+            f"reply {reply!r} to {command!r} is not a number", command=command
+        ) from None
+    if not math.isfinite(value) or abs(value) >= 9.9e37:
+        raise ReplyError(
+            f"reply {reply!r} to {command!r} is not a finite number (SCPI NaN/infinity)",
+            command=command,
+        )
+    return value
+
+
+def _checked_values(values: np.ndarray, points: int, command: str) -> np.ndarray:
+    if values.size != points:
+        raise BlockError(
+            f"trace from {command!r} has {values.size} values, the analyzer "
+            f"reports {points} points",
+            command=command,
+        )
+    if not np.all(np.isfinite(values)):
+        raise CommunicationError(f"trace from {command!r} holds non-finite values", command=command)
+    return values
+
+
+def _check_marker_frequency(freq_hz: float, s: AcquisitionSettings) -> None:
+    try:
+        freq = float(freq_hz)
+    except (TypeError, ValueError):
+        raise InputError("marker.freq_hz", f"must be a number (got {freq_hz!r})") from None
+    if not math.isfinite(freq) or freq <= 0:
+        raise InputError("marker.freq_hz", f"must be finite and > 0 (got {freq_hz!r})")
+    if s.span_hz > 0:
+        spacing = s.span_hz / max(s.points - 1, 1)
+        if not s.start_hz - spacing / 2 <= freq <= s.stop_hz + spacing / 2:
+            raise InputError(
+                "marker.freq_hz",
+                f"{freq:.6g} Hz is outside the trace {s.start_hz:.6g}..{s.stop_hz:.6g} Hz",
+                fix="move the marker inside the span or retune the analyzer",
+            )
+
+
+def _describe(diffs: dict[str, tuple[Any, Any]]) -> str:
+    return ", ".join(
+        f"{k}: {a!r} -> {b!r}" for k, a, b in ((k, v[0], v[1]) for k, v in diffs.items())
+    )
+
+
+def _log_adjustments(request: AcquisitionRequest, settings: AcquisitionSettings) -> None:
+    for name in ("rbw_hz", "points", "averages", "span_hz", "attenuation_db"):
+        wanted, got = getattr(request, name), getattr(settings, name)
+        if wanted is not None and got != wanted:
+            logger.info("analyzer applied %s = %r (requested %r)", name, got, wanted)
+    for name in ("detector", "averaging_scale", "mode"):
+        if getattr(request, name) != getattr(settings, name):
+            logger.warning(
+                "analyzer applied %s = %s (requested %s)",
+                name,
+                getattr(settings, name).value,
+                getattr(request, name).value,
+            )

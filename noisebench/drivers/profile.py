@@ -1,0 +1,886 @@
+"""Instrument profiles: every SCPI string of a driver in one TOML file, next to its validator.
+
+A profile is a data file (``noisebench/drivers/profiles/<name>.toml``, or any path) with up to three
+instrument sections, ``[analyzer]``, ``[generator]`` and ``[supply]``, plus the shared
+``[connection]``, ``[common]`` and ``[errors]`` tables. Each *setting* declares how it is set
+(``set``: a template with exactly one ``{value}`` field and an optional number format),
+how it is read back (``get``), and what values are valid (``min``/``max`` for numbers, a
+``choices`` map from our values to instrument tokens for enumerations; ``replies`` maps extra
+reply tokens back). A setting the instrument cannot report may declare ``fixed`` instead
+(e.g. the documented filter shape). Supporting a new instrument is a new profile, not new
+Python.
+
+Safety of the command strings: templates come from the profile and are checked when it is
+loaded (one line, printable ASCII, one ``{value}`` field, a number format limited to digits,
+precision and type). The value spliced in is always a validated number, a profile token or,
+for free text (labels), a string restricted to letters, digits, space and ``_ . + - /``:
+nothing a user types can add a ``;``, a quote or a newline to a command.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+import string
+import sys
+from enum import Enum
+from importlib import resources
+from pathlib import Path
+from typing import Any, ClassVar
+
+from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, model_validator
+
+from noisebench.bench.acquisition import AveragingScale, Detector, SweepMode, TraceUnit
+from noisebench.errors import CommunicationError, InputError
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover - Python 3.10
+    import tomli as tomllib
+
+__all__ = [
+    "AnalyzerProfile",
+    "BoolSetting",
+    "EnumSetting",
+    "FloatSetting",
+    "GeneratorProfile",
+    "InstrumentProfile",
+    "IntSetting",
+    "ProfileError",
+    "ReplyError",
+    "SupplyProfile",
+    "TextSetting",
+    "available_profiles",
+    "load_profile",
+    "parse_profile",
+    "safe_text",
+]
+
+_PRINTABLE = re.compile(r"^[\x20-\x7e]+$")
+_TOKEN = re.compile(r"^[A-Za-z0-9*][A-Za-z0-9_.+\-,]*$")
+_TEXT = re.compile(r"^[A-Za-z0-9 _.+\-/]*$")
+# fill restricted to '0' or ' ', so a format spec cannot smuggle characters into a command
+_FORMAT_SPEC = re.compile(r"^(?:[0 ]?[<>=^])?[+\- ]?#?0?\d*[,_]?(?:\.\d+)?[eEfFgGd]?$")
+_NAN_SCPI = 9.91e37  # SCPI-1999 representation of NaN (9.9e37 is +infinity)
+
+
+class ReplyError(CommunicationError):
+    """An instrument reply that the profile cannot parse (wrong profile, or a desynchronised
+    session answering an earlier query)."""
+
+
+class ProfileError(InputError):
+    """A profile file failed validation. ``problems`` lists ``(key path, message)`` pairs."""
+
+    def __init__(self, source: str, problems: list[tuple[str, str]]) -> None:
+        self.source = source
+        self.problems = problems
+        text = "; ".join(f"{key}: {msg}" if key else msg for key, msg in problems)
+        first = problems[0][0] if problems else ""
+        super().__init__(
+            f"profile {source}" + (f" [{first}]" if first else ""),
+            text,
+            fix="edit the profile: compare with noisebench/drivers/profiles/generic.toml and "
+            "its documentation at the top of that file",
+        )
+
+
+# ----------------------------------------------------------------------------- checks
+
+
+def _check_command(text: str, what: str) -> str:
+    if not text or not _PRINTABLE.fullmatch(text):
+        raise ValueError(f"{what} must be one line of printable ASCII (got {text!r})")
+    return text
+
+
+def _template_fields(template: str) -> list[tuple[str, str]]:
+    """(field name, format spec) of every replacement field; a conversion counts as a bad name."""
+    try:
+        parsed = list(string.Formatter().parse(template))
+    except ValueError as exc:
+        raise ValueError(f"template {template!r} is not a valid format string: {exc}") from None
+    return [
+        (name if not conv else f"{name}!{conv}", spec or "")
+        for _, name, spec, conv in parsed
+        if name is not None
+    ]
+
+
+def _check_template(template: str, sample: Any) -> str:
+    _check_command(template, "set template")
+    fields = _template_fields(template)
+    if [f for f, _ in fields] != ["value"]:
+        raise ValueError(
+            f"set template {template!r} must contain exactly one '{{value}}' field "
+            "(e.g. 'FREQ:CENT {value:.12g}')"
+        )
+    spec = fields[0][1]
+    if not _FORMAT_SPEC.fullmatch(spec):
+        raise ValueError(
+            f"format spec {spec!r} in {template!r} is not allowed (use digits, "
+            "precision and a type such as '.12g', '.3f' or 'd')"
+        )
+    try:
+        template.format(value=sample)
+    except (ValueError, TypeError) as exc:
+        raise ValueError(
+            f"format spec {spec!r} in {template!r} does not fit a "
+            f"{type(sample).__name__} value: {exc}"
+        ) from None
+    return template
+
+
+def _check_query(query: str) -> str:
+    _check_command(query, "query")
+    if "{" in query or "}" in query:
+        raise ValueError(f"query {query!r} must not contain braces")
+    return query
+
+
+def _check_token(token: str, what: str) -> str:
+    if not _TOKEN.fullmatch(token):
+        raise ValueError(f"{what} {token!r} must be letters, digits and '_ . + - ,' only")
+    return token
+
+
+def safe_text(field: str, value: str, *, max_length: int = 32) -> str:
+    """Return ``value`` if it is safe inside a SCPI string argument, else raise InputError."""
+    if not isinstance(value, str):
+        raise InputError(field, f"must be text (got {type(value).__name__})", value=value)
+    if len(value) > max_length or not _TEXT.fullmatch(value):
+        raise InputError(
+            field,
+            f"{value!r} cannot be sent to the instrument",
+            value=value,
+            fix=f"use at most {max_length} letters, digits, spaces or '_ . + - /' "
+            "(no ';', quotes or line breaks)",
+        )
+    return value
+
+
+def _unquote(reply: str) -> str:
+    text = reply.strip()
+    if len(text) >= 2 and text[0] == text[-1] and text[0] in "\"'":
+        text = text[1:-1]
+    return text.strip()
+
+
+def _short_form(token: str) -> str:
+    """SCPI short form of a mixed-case mnemonic: 'SAMPle' -> 'SAMP' (all-caps: unchanged)."""
+    short = "".join(ch for ch in token if not ch.islower())
+    return short if short else token.upper()
+
+
+# ----------------------------------------------------------------------------- settings
+
+
+class _Setting(BaseModel):
+    """One instrument setting: how to set it, read it back, and which values are valid."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+    set_cmd: str | None = Field(default=None, alias="set")
+    get_cmd: str | None = Field(default=None, alias="get")
+    unit: str | None = None
+    _name: str = PrivateAttr(default="setting")
+    _profile: str = PrivateAttr(default="profile")
+    _SAMPLE: ClassVar[Any] = "X"  # value used to try the set template when loading
+
+    @model_validator(mode="after")
+    def _check_commands(self) -> _Setting:
+        if self.set_cmd is not None:
+            _check_template(self.set_cmd, self._SAMPLE)
+        if self.get_cmd is not None:
+            _check_query(self.get_cmd)
+        fixed = getattr(self, "fixed", None)
+        if fixed is not None and (self.set_cmd or self.get_cmd):
+            raise ValueError(
+                "'fixed' declares a value the instrument cannot report: "
+                "do not combine it with 'set' or 'get'"
+            )
+        return self
+
+    def _bind(self, name: str, profile: str) -> None:
+        self._name = name
+        self._profile = profile
+
+    @property
+    def name(self) -> str:
+        """The setting's key in the profile (e.g. ``rbw_hz``)."""
+        return self._name
+
+    @property
+    def writable(self) -> bool:
+        return self.set_cmd is not None
+
+    @property
+    def readable(self) -> bool:
+        return self.get_cmd is not None or getattr(self, "fixed", None) is not None
+
+    def command(self, value: Any) -> str:
+        """The set command for ``value`` (validated and formatted); InputError if invalid."""
+        if self.set_cmd is None:
+            raise InputError(
+                self._name,
+                f"profile {self._profile} cannot set it",
+                value=value,
+                fix=f"add a 'set' template for {self._name}",
+            )
+        return self.set_cmd.format(value=self._render(value))
+
+    def query(self) -> str:
+        """The read-back query; InputError when the profile has none."""
+        if self.get_cmd is None:
+            raise InputError(
+                self._name,
+                f"profile {self._profile} cannot read it back",
+                fix=f"add a 'get' query for {self._name}",
+            )
+        return self.get_cmd
+
+    def parse(self, reply: str) -> Any:
+        """Convert an instrument reply to our value; ReplyError if it does not parse."""
+        raise NotImplementedError
+
+    def _render(self, value: Any) -> Any:
+        raise NotImplementedError
+
+    def _reply_error(self, reply: str, expected: str) -> ReplyError:
+        return ReplyError(
+            f"reply {reply!r} to {self.get_cmd!r} is not {expected}",
+            setting=self._name,
+            profile=self._profile,
+        )
+
+
+class FloatSetting(_Setting):
+    """A real-valued setting in SI units (Hz, s, dB, dBm, V, A)."""
+
+    min: float | None = None
+    max: float | None = None
+    fixed: float | None = None
+    _SAMPLE: ClassVar[Any] = 1.5
+
+    @model_validator(mode="after")
+    def _check_range(self) -> FloatSetting:
+        for bound in (self.min, self.max):
+            if bound is not None and not math.isfinite(bound):
+                raise ValueError("min and max must be finite")
+        if self.min is not None and self.max is not None and self.min > self.max:
+            raise ValueError(f"min {self.min} is above max {self.max}")
+        return self
+
+    def validate_value(self, value: Any) -> float:
+        try:
+            number = float(value)
+        except (TypeError, ValueError):
+            raise InputError(self._name, f"must be a number (got {value!r})", value=value) from None
+        if not math.isfinite(number):
+            raise InputError(self._name, f"must be finite (got {value!r})", value=value)
+        if (self.min is not None and number < self.min) or (
+            self.max is not None and number > self.max
+        ):
+            low = "-inf" if self.min is None else f"{self.min:g}"
+            high = "inf" if self.max is None else f"{self.max:g}"
+            unit = f" {self.unit}" if self.unit else ""
+            raise InputError(
+                self._name,
+                f"{number:g}{unit} is outside the range [{low}, "
+                f"{high}]{unit} of profile {self._profile}",
+                value=value,
+                fix="choose a value inside the instrument's range",
+            )
+        return number
+
+    def _render(self, value: Any) -> float:
+        return self.validate_value(value)
+
+    def parse(self, reply: str) -> float:
+        if self.fixed is not None and self.get_cmd is None:
+            return float(self.fixed)
+        text = _unquote(reply)
+        try:
+            number = float(text)
+        except ValueError:
+            raise self._reply_error(reply, "a number") from None
+        if not math.isfinite(number) or abs(number) >= 9.9e37:
+            raise self._reply_error(reply, "a finite number (SCPI NaN/infinity)")
+        return number
+
+
+class IntSetting(_Setting):
+    """An integer setting (points, averages, poles)."""
+
+    min: int | None = None
+    max: int | None = None
+    fixed: int | None = None
+    _SAMPLE: ClassVar[Any] = 7
+
+    def validate_value(self, value: Any) -> int:
+        if (
+            isinstance(value, bool)
+            or not isinstance(value, (int, float))
+            or (isinstance(value, float) and not value.is_integer())
+        ):
+            raise InputError(self._name, f"must be an integer (got {value!r})", value=value)
+        number = int(value)
+        if (self.min is not None and number < self.min) or (
+            self.max is not None and number > self.max
+        ):
+            raise InputError(
+                self._name,
+                f"{number} is outside the range [{self.min}, "
+                f"{self.max}] of profile {self._profile}",
+                value=value,
+                fix="choose a value inside the instrument's range",
+            )
+        return number
+
+    def _render(self, value: Any) -> int:
+        return self.validate_value(value)
+
+    def parse(self, reply: str) -> int:
+        if self.fixed is not None and self.get_cmd is None:
+            return int(self.fixed)
+        text = _unquote(reply)
+        try:
+            number = float(text)
+        except ValueError:
+            raise self._reply_error(reply, "an integer") from None
+        if not math.isfinite(number) or not number.is_integer():
+            raise self._reply_error(reply, "an integer")
+        return int(number)
+
+
+class BoolSetting(_Setting):
+    """An ON/OFF setting. Replies ``1``/``0`` and the profile's tokens are understood."""
+
+    true: str = "ON"
+    false: str = "OFF"
+    fixed: bool | None = None
+
+    @model_validator(mode="after")
+    def _check_tokens(self) -> BoolSetting:
+        _check_token(self.true, "true token")
+        _check_token(self.false, "false token")
+        if self.true.upper() == self.false.upper():
+            raise ValueError("true and false tokens must differ")
+        return self
+
+    def _render(self, value: Any) -> str:
+        if not isinstance(value, bool):
+            raise InputError(self._name, f"must be true or false (got {value!r})", value=value)
+        return self.true if value else self.false
+
+    def parse(self, reply: str) -> bool:
+        if self.fixed is not None and self.get_cmd is None:
+            return bool(self.fixed)
+        text = _unquote(reply).upper()
+        trues = {"1", "ON", self.true.upper(), _short_form(self.true)}
+        falses = {"0", "OFF", self.false.upper(), _short_form(self.false)}
+        if text in trues:
+            return True
+        if text in falses:
+            return False
+        raise self._reply_error(reply, f"one of {sorted(trues | falses)}")
+
+
+class EnumSetting(_Setting):
+    """A choice among named values. ``choices`` maps our value to the instrument token (SCPI
+    mixed case such as ``SAMPle`` is understood in replies in both short and long form);
+    ``replies`` maps further reply tokens to our values."""
+
+    choices: dict[str, str] = Field(default_factory=dict)
+    replies: dict[str, str] = Field(default_factory=dict)
+    fixed: str | None = None
+
+    @model_validator(mode="after")
+    def _check_choices(self) -> EnumSetting:
+        if not self.choices and self.fixed is None:
+            raise ValueError("an enumerated setting needs 'choices' (or 'fixed')")
+        seen: dict[str, str] = {}
+        for ours, token in self.choices.items():
+            _check_token(token, f"token for {ours!r}")
+            for form in {token.upper(), _short_form(token)}:
+                if form in seen and seen[form] != ours:
+                    raise ValueError(
+                        f"reply token {form!r} would mean both {seen[form]!r} and {ours!r}"
+                    )
+                seen[form] = ours
+        for token, ours in self.replies.items():
+            _check_token(token, "reply token")
+            if ours not in self.choices:
+                raise ValueError(f"reply {token!r} maps to {ours!r}, which is not in choices")
+        return self
+
+    def _render(self, value: Any) -> str:
+        key = value.value if isinstance(value, Enum) else value
+        if key not in self.choices:
+            raise InputError(
+                self._name,
+                f"{key!r} is not available in profile {self._profile}",
+                value=value,
+                fix=f"use one of {sorted(self.choices)}",
+            )
+        return self.choices[key]
+
+    def parse(self, reply: str) -> str:
+        if self.fixed is not None and self.get_cmd is None:
+            return self.fixed
+        text = _unquote(reply).upper()
+        for token, ours in self.replies.items():
+            if token.upper() == text:
+                return ours
+        for ours, token in self.choices.items():
+            if text in (token.upper(), _short_form(token)):
+                return ours
+        raise self._reply_error(reply, f"one of the tokens {sorted(self.choices.values())}")
+
+
+class TextSetting(_Setting):
+    """Free text (a window name read back, a label shown on the instrument's screen). Values
+    sent are restricted by :func:`safe_text`; put quotes in the template if the instrument
+    wants a string argument."""
+
+    fixed: str | None = None
+    max_length: int = Field(default=32, ge=1, le=200)
+
+    def _render(self, value: Any) -> str:
+        return safe_text(self._name, value, max_length=self.max_length)
+
+    def parse(self, reply: str) -> str:
+        if self.fixed is not None and self.get_cmd is None:
+            return self.fixed
+        return _unquote(reply)
+
+
+def _bind_settings(model: BaseModel, profile: str, prefix: str = "") -> None:
+    for name in type(model).model_fields:
+        value = getattr(model, name)
+        if isinstance(value, _Setting):
+            value._bind(prefix + name, profile)
+
+
+def _require_enum_keys(setting: EnumSetting | None, allowed: set[str], where: str) -> None:
+    if setting is None:
+        return
+    keys = set(setting.choices) | ({setting.fixed} if setting.fixed else set())
+    unknown = keys - allowed
+    if unknown:
+        raise ValueError(f"{where}: unknown value(s) {sorted(unknown)}; allowed: {sorted(allowed)}")
+
+
+def _enum_values(cls: type[Enum]) -> set[str]:
+    return {member.value for member in cls}
+
+
+# ----------------------------------------------------------------------------- sections
+
+
+class _Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class ConnectionProfile(_Section):
+    """Terminations and default timeout of every instrument in the file."""
+
+    read_termination: str = "\n"
+    write_termination: str = "\n"
+    timeout_s: float = Field(default=5.0, gt=0, le=3600)
+    binary_reader: str = Field(
+        default="fast",
+        pattern="^(fast|pyvisa)$",
+        description="'fast': header then exact payload read; "
+        "'pyvisa': pyvisa's query_binary_values",
+    )
+    baud_rate: int | None = Field(
+        default=None, ge=50, le=10_000_000, description="serial (ASRL) resources only"
+    )
+
+    @model_validator(mode="after")
+    def _check(self) -> ConnectionProfile:
+        for term in (self.read_termination, self.write_termination):
+            if term not in ("\n", "\r\n", "\r"):
+                raise ValueError(f"terminations must be '\\n', '\\r\\n' or '\\r' (got {term!r})")
+        return self
+
+
+class CommonProfile(_Section):
+    """IEEE 488.2 common commands and the SCPI error queue."""
+
+    identify: str = "*IDN?"
+    clear_status: str | None = "*CLS"
+    operation_complete: str = "*OPC?"
+    error_query: str = "SYST:ERR?"
+    error_check: str = Field(
+        default="each",
+        pattern="^(each|step)$",
+        description="'each': read the error queue after every command "
+        "(names the culprit); 'step': after each step",
+    )
+    max_error_entries: int = Field(default=32, ge=1, le=1000)
+
+    @model_validator(mode="after")
+    def _check(self) -> CommonProfile:
+        for key in ("identify", "operation_complete", "error_query"):
+            _check_query(getattr(self, key))
+        if self.clear_status is not None:
+            _check_query(self.clear_status)
+        return self
+
+
+class AnalyzerSettings(_Section):
+    """What the analyzer can set and report. Keys are fixed; unused ones are omitted."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    continuous: BoolSetting | None = None
+    mode: EnumSetting | None = None
+    center_hz: FloatSetting | None = None
+    span_hz: FloatSetting | None = None
+    start_hz: FloatSetting | None = None
+    stop_hz: FloatSetting | None = None
+    rbw_shape: EnumSetting | None = None
+    rbw_poles: IntSetting | None = None
+    fft_window: TextSetting | None = None
+    rbw_hz: FloatSetting
+    vbw_hz: FloatSetting | None = None
+    vbw_auto: BoolSetting | None = None
+    points: IntSetting
+    detector: EnumSetting
+    detector_samples: FloatSetting | None = None
+    averaging_scale: EnumSetting
+    averages: IntSetting
+    ref_level_dbm: FloatSetting | None = None
+    attenuation_db: FloatSetting | None = None
+    preamp: BoolSetting | None = None
+    sweep_time_s: FloatSetting | None = None
+    sweep_time_auto: BoolSetting | None = None
+
+    @model_validator(mode="after")
+    def _check(self) -> AnalyzerSettings:
+        _require_enum_keys(self.mode, _enum_values(SweepMode), "mode")
+        _require_enum_keys(self.rbw_shape, {"gaussian", "synchronous"}, "rbw_shape")
+        _require_enum_keys(self.detector, _enum_values(Detector), "detector")
+        _require_enum_keys(self.averaging_scale, _enum_values(AveragingScale), "averaging_scale")
+        centre = self.center_hz is not None and self.span_hz is not None
+        edges = self.start_hz is not None and self.stop_hz is not None
+        if not (centre or edges):
+            raise ValueError("declare center_hz and span_hz, or start_hz and stop_hz")
+        for name in ("rbw_hz", "points", "detector", "averaging_scale", "averages"):
+            if not getattr(self, name).readable:
+                raise ValueError(
+                    f"{name} needs a 'get' query (or 'fixed'): the physics uses "
+                    "the value the instrument applied"
+                )
+        if self.rbw_shape is None or not self.rbw_shape.readable:
+            raise ValueError(
+                "rbw_shape needs a 'get' query or a 'fixed' shape: the noise "
+                "bandwidth depends on it"
+            )
+        if "synchronous" in set(self.rbw_shape.choices) | {self.rbw_shape.fixed}:
+            if self.rbw_poles is None or not self.rbw_poles.readable:
+                raise ValueError("a synchronous rbw_shape needs rbw_poles ('get' or 'fixed')")
+        if self.mode is not None and "fft" in self.mode.choices:
+            if self.fft_window is None or not self.fft_window.readable:
+                raise ValueError("FFT mode needs fft_window ('get' or 'fixed')")
+        return self
+
+
+class AcquisitionProfile(_Section):
+    """How one complete (averaged) acquisition is started and awaited."""
+
+    start: str = "INIT:IMM"
+    abort: str | None = "ABOR"
+    poll_start: str | None = Field(
+        default=None,
+        description="start command that sets the operation-complete event "
+        "bit, e.g. 'INIT:IMM;*OPC' (enables status polling)",
+    )
+    poll_query: str = "*ESR?"
+    poll_mask: int = Field(default=1, ge=1, le=255)
+    poll_above_s: float = Field(
+        default=30.0,
+        ge=0,
+        description="poll the status instead of a blocking *OPC? "
+        "when one acquisition takes longer than this",
+    )
+    poll_interval_s: float = Field(default=0.2, gt=0, le=60)
+    timeout_factor: float = Field(default=1.5, ge=1.0, le=100)
+    timeout_extra_s: float = Field(default=2.0, ge=0, le=3600)
+    sweep_overhead_s: float = Field(
+        default=0.0, ge=0, le=60, description="per-sweep time beyond the reported sweep time"
+    )
+    sweep_time_factor: float = Field(
+        default=2.5,
+        gt=0,
+        le=100,
+        description="k in ST = k*span/RBW^2 when the instrument "
+        "cannot report its sweep time (common practice)",
+    )
+
+    @model_validator(mode="after")
+    def _check(self) -> AcquisitionProfile:
+        _check_command(self.start, "start")
+        for cmd in (self.abort, self.poll_start):
+            if cmd is not None:
+                _check_command(cmd, "command")
+        _check_query(self.poll_query)
+        return self
+
+
+class TraceProfile(_Section):
+    """Trace transfer: binary (IEEE 488.2 definite-length block) or ASCII."""
+
+    query: str = "TRAC? TRACE1"
+    transfer: str = Field(default="binary", pattern="^(binary|ascii)$")
+    binary_format: str | None = "FORM REAL,32"
+    byte_order: str | None = "FORM:BORD NORM"
+    datatype: str = Field(default="f", pattern="^(f|d)$", description="f: float32, d: float64")
+    big_endian: bool = True
+    ascii_format: str | None = "FORM ASC"
+    unit: TraceUnit = TraceUnit.DBM
+    transfer_rate_bytes_per_s: float = Field(
+        default=1e6, gt=0, description="conservative rate used to size the transfer timeout"
+    )
+
+    @model_validator(mode="after")
+    def _check(self) -> TraceProfile:
+        _check_query(self.query)
+        for cmd in (self.binary_format, self.byte_order, self.ascii_format):
+            if cmd is not None:
+                _check_command(cmd, "format command")
+        if self.transfer == "binary" and self.binary_format is None:
+            raise ValueError("binary transfer needs binary_format")
+        if self.transfer == "ascii" and self.ascii_format is None:
+            raise ValueError("ascii transfer needs ascii_format")
+        return self
+
+
+class MarkerProfile(_Section):
+    """Marker commands: position, function (band power / noise density), band, value."""
+
+    frequency: FloatSetting
+    function: EnumSetting
+    band: FloatSetting | None = None
+    value: str = "CALC:MARK:Y?"
+    corrected: BoolSetting | None = Field(
+        default=None,
+        description="whether the reading already has the detector and noise-"
+        "bandwidth corrections applied ('get' or 'fixed')",
+    )
+
+    @model_validator(mode="after")
+    def _check(self) -> MarkerProfile:
+        _check_query(self.value)
+        _require_enum_keys(self.function, {"off", "band_power", "noise_density"}, "function")
+        if self.corrected is None or not self.corrected.readable:
+            raise ValueError(
+                "marker.corrected needs a 'get' query or 'fixed': the estimator "
+                "must know whether the instrument already corrected the reading"
+            )
+        return self
+
+
+class AnalyzerProfile(_Section):
+    """The ``[analyzer]`` section."""
+
+    settings: AnalyzerSettings
+    apply_order: list[str] = Field(default_factory=lambda: list(DEFAULT_APPLY_ORDER))
+    acquisition: AcquisitionProfile = Field(default_factory=AcquisitionProfile)
+    trace: TraceProfile = Field(default_factory=TraceProfile)
+    marker: MarkerProfile | None = None
+    noise_drive: BoolSetting | None = None
+    sim_path: EnumSetting | None = None
+    max_input_power_dbm: float | None = None
+
+    @model_validator(mode="after")
+    def _check(self) -> AnalyzerProfile:
+        known = set(AnalyzerSettings.model_fields)
+        unknown = [n for n in self.apply_order if n not in known]
+        if unknown:
+            raise ValueError(f"apply_order names unknown settings {unknown}")
+        if len(set(self.apply_order)) != len(self.apply_order):
+            raise ValueError("apply_order lists a setting twice")
+        _require_enum_keys(self.sim_path, {"dut", "through", "termination"}, "sim_path")
+        return self
+
+
+class GeneratorSettings(_Section):
+    frequency_hz: FloatSetting
+    level_dbm: FloatSetting
+    output: BoolSetting
+
+
+class GeneratorProfile(_Section):
+    """The ``[generator]`` section."""
+
+    settings: GeneratorSettings
+
+
+class SupplySettings(_Section):
+    voltage_v: FloatSetting
+    current_limit_a: FloatSetting
+    output: BoolSetting
+
+
+class SupplyProfile(_Section):
+    """The ``[supply]`` section (DC supply that drives a noise source)."""
+
+    settings: SupplySettings
+    measure_voltage: str | None = None
+    measure_current: str | None = None
+    voltage_tolerance_v: float = Field(default=0.5, gt=0)
+
+    @model_validator(mode="after")
+    def _check(self) -> SupplyProfile:
+        for cmd in (self.measure_voltage, self.measure_current):
+            if cmd is not None:
+                _check_query(cmd)
+        return self
+
+
+class ProfileMeta(_Section):
+    name: str = Field(pattern=r"^[A-Za-z0-9_\-]+$")
+    description: str = ""
+    format: int = Field(default=1, ge=1, le=1)
+
+
+class InstrumentProfile(_Section):
+    """A validated profile file. Use :func:`load_profile` to read one."""
+
+    profile: ProfileMeta
+    connection: ConnectionProfile = Field(default_factory=ConnectionProfile)
+    common: CommonProfile = Field(default_factory=CommonProfile)
+    analyzer: AnalyzerProfile | None = None
+    generator: GeneratorProfile | None = None
+    supply: SupplyProfile | None = None
+    _source: str = PrivateAttr(default="<memory>")
+
+    @model_validator(mode="after")
+    def _check(self) -> InstrumentProfile:
+        if self.analyzer is None and self.generator is None and self.supply is None:
+            raise ValueError("a profile needs at least one of [analyzer], [generator], [supply]")
+        return self
+
+    @property
+    def name(self) -> str:
+        return self.profile.name
+
+    @property
+    def source(self) -> str:
+        """Where the profile was read from (file path or '<memory>')."""
+        return self._source
+
+    def section(self, kind: str) -> Any:
+        """The ``analyzer``/``generator``/``supply`` section; ProfileError if absent."""
+        value = getattr(self, kind, None)
+        if value is None:
+            raise ProfileError(self._source, [(kind, f"this profile has no [{kind}] section")])
+        return value
+
+    def _bind(self, source: str) -> None:
+        self._source = source
+        name = self.profile.name
+        if self.analyzer is not None:
+            _bind_settings(self.analyzer.settings, name)
+            if self.analyzer.marker is not None:
+                _bind_settings(self.analyzer.marker, name, "marker.")
+            _bind_settings(self.analyzer, name)
+        if self.generator is not None:
+            _bind_settings(self.generator.settings, name)
+        if self.supply is not None:
+            _bind_settings(self.supply.settings, name)
+
+
+DEFAULT_APPLY_ORDER: tuple[str, ...] = (
+    "continuous",
+    "mode",
+    "center_hz",
+    "span_hz",
+    "start_hz",
+    "stop_hz",
+    "rbw_hz",
+    "vbw_auto",
+    "vbw_hz",
+    "points",
+    "detector",
+    "averaging_scale",
+    "averages",
+    "ref_level_dbm",
+    "attenuation_db",
+    "preamp",
+    "sweep_time_auto",
+    "sweep_time_s",
+)
+
+
+# ----------------------------------------------------------------------------- loading
+
+
+def _problems(exc: ValidationError) -> list[tuple[str, str]]:
+    out = []
+    for err in exc.errors():
+        loc = ".".join(str(p) for p in err["loc"] if not str(p).startswith("function-"))
+        msg = err["msg"]
+        if msg.startswith("Value error, "):
+            msg = msg[len("Value error, ") :]
+        if err["type"] == "extra_forbidden":
+            msg = "unknown key (check the spelling against generic.toml)"
+        out.append((loc, msg))
+    return out
+
+
+def parse_profile(text: str, source: str = "<memory>") -> InstrumentProfile:
+    """Parse and validate profile TOML ``text``; ProfileError lists every problem with its key."""
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ProfileError(source, [("", f"not valid TOML: {exc}")]) from None
+    try:
+        profile = InstrumentProfile.model_validate(data)
+    except ValidationError as exc:
+        raise ProfileError(source, _problems(exc)) from None
+    profile._bind(source)
+    return profile
+
+
+def _packaged(name: str) -> Path | None:
+    path = resources.files("noisebench.drivers").joinpath("profiles", f"{name}.toml")
+    return Path(str(path)) if path.is_file() else None
+
+
+def available_profiles() -> list[str]:
+    """Names of the profiles shipped with noisebench."""
+    folder = resources.files("noisebench.drivers").joinpath("profiles")
+    return sorted(p.name[:-5] for p in folder.iterdir() if p.name.endswith(".toml"))
+
+
+def load_profile(profile: str | Path | InstrumentProfile = "generic") -> InstrumentProfile:
+    """Load a profile by packaged name (``"generic"``) or by path to a ``.toml`` file."""
+    if isinstance(profile, InstrumentProfile):
+        return profile
+    path = Path(profile)
+    if not path.is_file():
+        packaged = (
+            _packaged(str(profile)) if re.fullmatch(r"[A-Za-z0-9_\-]+", str(profile)) else None
+        )
+        if packaged is None:
+            raise InputError(
+                "profile",
+                f"no profile file or packaged profile {str(profile)!r}",
+                value=str(profile),
+                fix=f"give a path to a .toml file or one of {available_profiles()}",
+            )
+        path = packaged
+    try:
+        text = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(
+            "profile",
+            f"cannot read {path}: {exc}",
+            value=str(path),
+            fix="check the path and that the file is UTF-8 text",
+        ) from None
+    return parse_profile(text, source=str(path))

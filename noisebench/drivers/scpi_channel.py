@@ -1,0 +1,301 @@
+"""What every SCPI instrument driver shares: identity, settings I/O, error queue, recovery.
+
+A :class:`ScpiChannel` wraps one :class:`~noisebench.drivers.transport.Transport` and the
+``[common]`` table of a profile. Drivers (analyzer, generator, DC supply) own one and run
+every operation through :meth:`ScpiChannel.run`, which gives the retry policy:
+
+1. an :class:`~noisebench.errors.InstrumentError` (the instrument said no) is never retried;
+2. a :class:`~noisebench.errors.CommunicationError` (timeout, dropped connection, bad block)
+   triggers recovery - ``Transport.recover()`` (a reconnect on sockets), an ``*IDN?``
+   liveness probe that must return the same identity, and a read of the error queue (an
+   entry there explains the failure and is raised as ``InstrumentError`` naming the
+   command) - then, after a reconnect, the driver's ``restore`` callback re-applies its
+   settings, and the operation is retried, at most ``retries`` times;
+3. when recovery itself fails, the original error is raised and recovery is tried again at
+   the start of the next operation, so a session that timed out stays usable.
+"""
+
+from __future__ import annotations
+
+import logging
+import re
+import threading
+import time
+from collections.abc import Callable
+from typing import Any, TypeVar
+
+from noisebench.errors import (
+    CommunicationError,
+    InputError,
+    InstrumentError,
+    NoisebenchError,
+)
+
+from .profile import CommonProfile, ReplyError, load_profile
+from .transport import Transport
+
+logger = logging.getLogger(__name__)
+
+__all__ = ["ScpiChannel", "parse_error_entry"]
+
+T = TypeVar("T")
+_ERROR_ENTRY = re.compile(r'^\s*([+-]?\d+)\s*(?:,\s*"?(.*?)"?)?\s*$', re.DOTALL)
+
+
+def parse_error_entry(reply: str) -> tuple[int, str]:
+    """``-222,"Data out of range"`` -> ``(-222, "Data out of range")``."""
+    match = _ERROR_ENTRY.match(reply)
+    if not match:
+        raise ReplyError(f"error-queue reply {reply!r} is not '<code>,\"<text>\"'")
+    return int(match.group(1)), (match.group(2) or "").strip()
+
+
+class ScpiChannel:
+    """Identity, error queue and retry/recovery around one transport (see module doc)."""
+
+    def __init__(
+        self,
+        transport: Transport,
+        common: CommonProfile,
+        *,
+        kind: str,
+        lock: threading.RLock,
+        retries: int = 2,
+        restore: Callable[[], None] | None = None,
+    ) -> None:
+        if not isinstance(retries, int) or isinstance(retries, bool) or not 0 <= retries <= 10:
+            raise InputError(
+                "retries", f"must be an integer 0..10 (got {retries!r})", value=retries
+            )
+        self.transport = transport
+        self.common = common
+        self.kind = kind
+        self.lock = lock
+        self.retries = retries
+        self.restore = restore
+        self.identity = ""
+        self.base_timeout_s = transport.timeout_s
+        self.recovery_log: list[str] = []  # one line per recovery, for logs and tests
+        self.needs_recovery = False
+        self._unchecked: list[str] = []  # commands sent since the error queue was last read
+
+    # -- connection --------------------------------------------------------------------
+
+    def connect(self) -> str:
+        """``*IDN?`` (liveness and identity), then ``*CLS``. Returns the identity."""
+        with self.lock:
+            reply = self.transport.query(self.common.identify)
+            if not reply:
+                raise CommunicationError(
+                    f"empty reply to {self.common.identify!r}", resource=self.transport.resource
+                )
+            self.identity = reply
+            if self.common.clear_status:
+                self.transport.write(self.common.clear_status)
+            logger.info("%s %s: %s", self.kind, self.transport.resource, reply)
+            return reply
+
+    def close(self) -> None:
+        self.transport.close()
+
+    def write_safe_state(self, setting: Any, value: Any) -> bool:
+        """Best effort for a safe state (drive off, output off): bring a broken stream back
+        without restoring any settings, send the setting and read it back (which also makes
+        sure the instrument processed it before the connection closes). Never raises; True
+        when the instrument confirms the value."""
+        with self.lock:
+            command = setting.command(value)
+            try:
+                if self.needs_recovery or getattr(self.transport, "stale", False):
+                    self.transport.recover()
+                self.transport.write(command)
+                if setting.get_cmd is None:
+                    self.transport.query(self.common.operation_complete)
+                    return True
+                if self.get(setting) == value:
+                    return True
+                logger.error("%s: %r not confirmed by the read-back", self.kind, command)
+            except NoisebenchError as exc:
+                logger.error(
+                    "%s: could not send %r for the safe state: %s", self.kind, command, exc
+                )
+            return False
+
+    # -- plain I/O ---------------------------------------------------------------------
+
+    def write(self, command: str, *, check: bool = True) -> None:
+        """Send ``command``; with ``error_check = "each"`` read the error queue right after
+        (``check=False`` for overlapped commands such as starting an acquisition)."""
+        self.transport.write(command)
+        self._unchecked.append(command)
+        if check and self.common.error_check == "each":
+            self.check_errors(command)
+
+    def query(self, command: str) -> str:
+        return self.transport.query(command)
+
+    def set(self, setting: Any, value: Any) -> None:
+        """Validate, format and send one setting (InputError before any I/O if invalid)."""
+        self.write(setting.command(value))
+
+    def get(self, setting: Any) -> Any:
+        """Read one setting back (or its profile ``fixed`` value) and parse it."""
+        if setting.get_cmd is None:
+            if getattr(setting, "fixed", None) is None:
+                setting.query()  # raises InputError naming the setting
+            return setting.parse("")
+        return setting.parse(self.transport.query(setting.query()))
+
+    # -- error queue -------------------------------------------------------------------
+
+    def read_error_queue(self) -> list[tuple[int, str]]:
+        """Read the SCPI error queue until it reports no error; return the entries."""
+        entries: list[tuple[int, str]] = []
+        for _ in range(self.common.max_error_entries):
+            code, text = parse_error_entry(self.transport.query(self.common.error_query))
+            if code == 0:
+                return entries
+            entries.append((code, text))
+        raise InstrumentError(
+            entries[-1][0],
+            entries[-1][1],
+            command=self.common.error_query,
+            instrument=self.kind,
+            note=f"error queue not empty after {self.common.max_error_entries} reads",
+        )
+
+    def check_errors(self, after: str) -> None:
+        """Drain the error queue; raise the first entry as InstrumentError naming ``after``."""
+        sent, self._unchecked = self._unchecked, []
+        entries = self.read_error_queue()
+        if not entries:
+            return
+        code, text = entries[0]
+        more = "; ".join(f"{c},{t!r}" for c, t in entries[1:]) or None
+        recent = ", ".join(sent[-6:]) if len(sent) > 1 else None
+        logger.error("%s: instrument error %d %r after %r", self.kind, code, text, after)
+        raise InstrumentError(
+            code,
+            text,
+            command=after,
+            instrument=self.kind,
+            identity=self.identity or None,
+            more_errors=more,
+            commands_since_last_check=recent,
+        )
+
+    # -- retry and recovery ------------------------------------------------------------
+
+    def run(self, what: str, operation: Callable[[], T]) -> T:
+        """Run ``operation`` under the instrument lock with the retry policy (module doc)."""
+        with self.lock:
+            if self.needs_recovery:
+                self._recover(None, what)
+            attempt = 0
+            while True:
+                try:
+                    return operation()
+                except InstrumentError as exc:
+                    raise exc.add_context(instrument=self.kind, operation=what) from None
+                except CommunicationError as exc:
+                    exc.add_context(instrument=self.kind, operation=what)
+                    self.needs_recovery = True
+                    if attempt >= self.retries:
+                        raise
+                    attempt += 1
+                    logger.warning(
+                        "%s: %s failed (%s); recovering, attempt %d of %d",
+                        self.kind,
+                        what,
+                        exc,
+                        attempt,
+                        self.retries,
+                    )
+                    try:
+                        self._recover(exc, what)
+                    except InstrumentError:
+                        raise
+                    except CommunicationError as failure:
+                        raise exc.add_context(recovery_failed=failure.message) from failure
+
+    def _recover(self, cause: CommunicationError | None, what: str) -> None:
+        started = time.monotonic()
+        self._unchecked = []
+        reconnected = self.transport.recover()
+        with self.transport.timeout(min(self.transport.timeout_s, self.base_timeout_s)):
+            self._probe()
+            entries = self.read_error_queue()
+        note = (
+            f"{what}: {'reconnected' if reconnected else 'cleared'} after "
+            f"{cause.message if cause else 'an earlier failure'}"
+        )
+        self.recovery_log.append(note)
+        logger.warning("%s: %s (%.3f s)", self.kind, note, time.monotonic() - started)
+        if entries:
+            self.needs_recovery = reconnected  # settings still to restore at the next call
+            code, text = entries[0]
+            command = cause.context.get("command") if cause else None
+            error = InstrumentError(
+                code,
+                text,
+                command=command or what,
+                instrument=self.kind,
+                identity=self.identity or None,
+            )
+            if cause is not None:
+                raise error from cause
+            raise error
+        if reconnected and self.restore is not None:
+            self.restore()
+        self.needs_recovery = False
+
+    def _probe(self) -> None:
+        reply = self.transport.query(self.common.identify)
+        if self.identity and reply != self.identity:
+            raise CommunicationError(
+                f"liveness probe {self.common.identify!r} answered {reply!r}, expected "
+                f"{self.identity!r}",
+                resource=self.transport.resource,
+            )
+
+
+class SwitchedOutputInstrument:
+    """Shared set-up of a SCPI instrument with one switched output (generator, DC supply).
+
+    Put it before the instrument's ABC in the bases; the class provides ``lock`` (from
+    :class:`noisebench.bench.instruments.Instrument`) and ``_restore`` (what to send after a
+    reconnect)."""
+
+    lock: Any
+
+    def _connect_output(
+        self, transport: Transport, profile: Any, section: str, *, retries: int
+    ) -> None:
+        """Load the profile section, connect, and read the output state back."""
+        self.profile = load_profile(profile)
+        self.spec = self.profile.section(section)
+        self.transport = transport
+        self._output = False
+        self._closed = False
+        self._channel = ScpiChannel(
+            transport,
+            self.profile.common,
+            kind=section,
+            lock=self.lock,
+            retries=retries,
+            restore=self._restore,
+        )  # type: ignore[attr-defined]
+        self._channel.connect()
+        self._output = bool(self._channel.get(self.spec.settings.output))
+
+    @property
+    def identity(self) -> str:
+        return self._channel.identity
+
+    @property
+    def output_on(self) -> bool:
+        return self._output
+
+    @property
+    def recovery_log(self) -> list[str]:
+        return self._channel.recovery_log

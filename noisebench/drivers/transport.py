@@ -1,0 +1,662 @@
+"""The transport seam: one message-based session to one instrument.
+
+:class:`Transport` is what every SCPI driver talks to: ``write``, ``query``, ``query_binary``
+(an IEEE 488.2 definite-length block decoded to numbers), scoped timeouts in seconds,
+``recover`` after an error and ``close``. :class:`VisaSession` implements it over pyvisa
+(pyvisa-py by default: TCPIP SOCKET, VXI-11 INSTR, HiSLIP, USBTMC, serial);
+:class:`noisebench.drivers.protocol.FakeTransport` implements it in memory for tests.
+
+What VisaSession does about pyvisa-py's known behaviour on sockets (see DEVELOPERS.md):
+
+- terminations are always set explicitly (socket resources default to none, so a read would
+  end only at the timeout);
+- binary blocks are read as header, then exactly the announced payload with the termination
+  character switched off, then the message terminator: with the termination character on,
+  pyvisa-py returns at every 0x0A byte inside the payload, which makes pyvisa's own block
+  codec several times slower (``binary_reader="pyvisa"`` selects that codec anyway);
+- pyvisa-py does not notice a peer that closed the connection (a read waits for the full
+  timeout). Before each exchange the socket is peeked without blocking, so a dropped
+  connection is reported at once as :class:`ConnectionLost`;
+- ``recover`` on a socket always reconnects: replies still in flight from a timed-out query go
+  to the old connection instead of being mistaken for the next answer. Other interfaces get a
+  device clear (and a reconnect if that fails). pyvisa-py's ``clear()`` on a socket at
+  end-of-file never returns, so it is never used on sockets;
+- ``pyvisa.errors.VisaIOError`` and ``OSError`` become :class:`~noisebench.errors.InstrumentTimeout`
+  or :class:`~noisebench.errors.CommunicationError`, keeping the VISA code.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import select
+import socket
+import threading
+from abc import ABC, abstractmethod
+from collections.abc import Iterator
+from contextlib import contextmanager
+
+import numpy as np
+
+from noisebench.errors import CommunicationError, InputError, InstrumentTimeout
+
+logger = logging.getLogger(__name__)
+
+__all__ = [
+    "BlockError",
+    "ConnectionLost",
+    "Transport",
+    "VisaSession",
+    "decode_block_values",
+    "parse_ascii_values",
+    "seconds_to_ms",
+    "split_definite_block",
+]
+
+_TERMINATIONS = ("\n", "\r\n", "\r")
+_DTYPES = {"f": 4, "d": 8}
+
+
+class ConnectionLost(CommunicationError):
+    """The connection to the instrument is gone (peer closed, broken pipe, refused)."""
+
+
+class BlockError(CommunicationError):
+    """A binary block was malformed, shorter or longer than its header announced."""
+
+
+# ----------------------------------------------------------------------------- helpers
+
+
+def seconds_to_ms(seconds: float) -> int:
+    """The one place where a timeout in seconds becomes pyvisa's integer milliseconds."""
+    try:
+        value = float(seconds)
+    except (TypeError, ValueError):
+        raise InputError(
+            "timeout_s", f"must be a number of seconds (got {seconds!r})", value=seconds
+        ) from None
+    if not math.isfinite(value) or value <= 0:
+        raise InputError(
+            "timeout_s",
+            f"must be a finite number of seconds > 0 (got {seconds!r})",
+            value=seconds,
+            fix="e.g. 5.0",
+        )
+    return max(1, int(math.ceil(value * 1000.0)))
+
+
+def _header_length(raw: bytes, command: str) -> tuple[int, int]:
+    """(offset of the payload, payload length) of a definite-length block ``#N<len>``."""
+    if len(raw) < 2 or raw[:1] != b"#" or not raw[1:2].isdigit():
+        raise BlockError(
+            f"reply to {command!r} is not a binary block (starts {raw[:12]!r})", command=command
+        )
+    ndigits = int(raw[1:2])
+    if ndigits == 0:
+        raise BlockError(
+            f"reply to {command!r} is an indefinite-length block (#0); "
+            "noisebench reads definite-length blocks",
+            command=command,
+        )
+    digits = raw[2 : 2 + ndigits]
+    if len(digits) != ndigits or not digits.isdigit():
+        raise BlockError(
+            f"malformed block header {raw[: 2 + ndigits]!r} in reply to {command!r}",
+            command=command,
+        )
+    return 2 + ndigits, int(digits)
+
+
+def split_definite_block(raw: bytes, command: str = "?") -> bytes:
+    """Payload of a complete IEEE 488.2 definite-length block (message terminator optional)."""
+    start, length = _header_length(raw, command)
+    payload = raw[start : start + length]
+    rest = raw[start + length :]
+    if len(payload) < length:
+        raise BlockError(
+            f"binary block from {command!r} has {len(payload)} of the {length} "
+            "bytes its header announced",
+            command=command,
+        )
+    if rest not in (b"", b"\n", b"\r\n"):
+        raise BlockError(
+            f"binary block from {command!r} is longer than its header announced "
+            f"({len(rest)} extra bytes)",
+            command=command,
+        )
+    return payload
+
+
+def decode_block_values(
+    payload: bytes, datatype: str = "f", big_endian: bool = True, command: str = "?"
+) -> np.ndarray:
+    """Decode a block payload of float32 (``"f"``) or float64 (``"d"``) numbers to float64."""
+    if datatype not in _DTYPES:
+        raise InputError("datatype", f"{datatype!r} is not supported", fix="use 'f' or 'd'")
+    size = _DTYPES[datatype]
+    if len(payload) % size:
+        raise BlockError(
+            f"binary block from {command!r} has {len(payload)} bytes, not a multiple of {size}",
+            command=command,
+        )
+    dtype = np.dtype((">" if big_endian else "<") + f"f{size}")
+    return np.frombuffer(payload, dtype=dtype).astype(np.float64)
+
+
+def parse_ascii_values(text: str, command: str = "?") -> np.ndarray:
+    """Comma-separated numbers (an ASCII trace) to float64."""
+    try:
+        return np.array([float(item) for item in text.strip().split(",")], dtype=np.float64)
+    except ValueError:
+        raise CommunicationError(
+            f"reply to {command!r} is not a comma-separated list of numbers (starts {text[:40]!r})",
+            command=command,
+        ) from None
+
+
+# ----------------------------------------------------------------------------- the seam
+
+
+class Transport(ABC):
+    """One message-based session to one instrument. Timeouts are in seconds."""
+
+    resource: str = "?"
+
+    @property
+    @abstractmethod
+    def timeout_s(self) -> float:
+        """The timeout in force, seconds."""
+
+    @abstractmethod
+    def _set_timeout_s(self, seconds: float) -> None:
+        """Change the timeout (seconds)."""
+
+    @contextmanager
+    def timeout(self, seconds: float) -> Iterator[None]:
+        """Scoped timeout: ``with session.timeout(12.0): ...`` restores the previous one."""
+        seconds_to_ms(seconds)  # validates
+        previous = self.timeout_s
+        self._set_timeout_s(seconds)
+        try:
+            yield
+        finally:
+            try:
+                self._set_timeout_s(previous)
+            except CommunicationError:  # the session died meanwhile; reopening restores it
+                logger.debug("%s: could not restore the timeout", self.resource)
+
+    @abstractmethod
+    def write(self, command: str) -> None:
+        """Send one command line."""
+
+    @abstractmethod
+    def query(self, command: str) -> str:
+        """Send a query and return its reply without the termination."""
+
+    @abstractmethod
+    def query_binary(
+        self, command: str, *, datatype: str = "f", big_endian: bool = True
+    ) -> np.ndarray:
+        """Send a query answered by a definite-length binary block; return the numbers."""
+
+    @abstractmethod
+    def recover(self) -> bool:
+        """Bring the stream back to a clean state after an error; True if it reconnected
+        (the instrument's settings may then have been lost and must be verified)."""
+
+    @abstractmethod
+    def close(self) -> None:
+        """Release the session. Idempotent."""
+
+    @property
+    @abstractmethod
+    def is_open(self) -> bool:
+        """True while the session is usable."""
+
+    def __repr__(self) -> str:
+        state = "open" if self.is_open else "closed"
+        return f"<{type(self).__name__} {self.resource!r} {state}>"
+
+
+# ----------------------------------------------------------------------------- pyvisa
+
+
+def _resource_manager(visa_library: str):
+    import pyvisa
+
+    try:
+        return pyvisa.ResourceManager(visa_library)
+    except (OSError, ValueError, pyvisa.errors.Error) as exc:
+        raise CommunicationError(
+            f"cannot load the VISA library {visa_library!r}: {exc}",
+            visa_library=visa_library,
+        ).add_context(
+            fix="install pyvisa-py (pip install pyvisa-py) for '@py', or give the "
+            "path of a VISA library"
+        ) from exc
+
+
+class VisaSession(Transport):
+    """A pyvisa session with explicit terminations, scoped timeouts and a fast block read.
+
+    ``resource`` is a VISA resource string (``TCPIP0::host::5025::SOCKET``,
+    ``TCPIP::host::INSTR``, ``TCPIP::host::hislip0::INSTR``, ``USB0::...::INSTR``,
+    ``ASRL/dev/ttyUSB0::INSTR``). ``visa_library`` is given to ``pyvisa.ResourceManager``
+    (``"@py"``: pyvisa-py). ``binary_reader`` is ``"fast"`` or ``"pyvisa"``.
+    """
+
+    def __init__(
+        self,
+        resource: str,
+        *,
+        visa_library: str = "@py",
+        timeout_s: float = 5.0,
+        read_termination: str = "\n",
+        write_termination: str = "\n",
+        binary_reader: str = "fast",
+        open_timeout_s: float = 5.0,
+        baud_rate: int | None = None,
+        resource_manager=None,
+    ) -> None:
+        if not isinstance(resource, str) or not resource.strip() or "\n" in resource:
+            raise InputError(
+                "resource",
+                f"not a VISA resource string: {resource!r}",
+                value=resource,
+                fix="e.g. 'TCPIP0::192.168.1.20::5025::SOCKET'",
+            )
+        for name, term in (
+            ("read_termination", read_termination),
+            ("write_termination", write_termination),
+        ):
+            if term not in _TERMINATIONS:
+                raise InputError(
+                    name, f"must be one of {_TERMINATIONS!r} (got {term!r})", value=term
+                )
+        if binary_reader not in ("fast", "pyvisa"):
+            raise InputError(
+                "binary_reader",
+                f"must be 'fast' or 'pyvisa' (got {binary_reader!r})",
+                value=binary_reader,
+            )
+        seconds_to_ms(timeout_s)
+        self.resource = resource.strip()
+        self.visa_library = visa_library
+        self.read_termination = read_termination
+        self.write_termination = write_termination
+        self.binary_reader = binary_reader
+        self.open_timeout_s = float(open_timeout_s)
+        self.baud_rate = baud_rate
+        self.reconnects = 0
+        self._timeout_s = float(timeout_s)
+        self._lock = threading.RLock()
+        self._rm = (
+            resource_manager if resource_manager is not None else _resource_manager(visa_library)
+        )
+        self._res = None
+        self._is_socket = False
+        self._stale = False
+        self._open()
+
+    # -- lifecycle ---------------------------------------------------------------------
+
+    def _open(self) -> None:
+        import pyvisa
+
+        try:
+            res = self._rm.open_resource(
+                self.resource, open_timeout=seconds_to_ms(self.open_timeout_s)
+            )
+            res.read_termination = self.read_termination
+            res.write_termination = self.write_termination
+            res.timeout = seconds_to_ms(self._timeout_s)
+            if (
+                self.baud_rate is not None
+                and res.interface_type == pyvisa.constants.InterfaceType.asrl
+            ):
+                res.baud_rate = int(self.baud_rate)
+        except (pyvisa.errors.Error, OSError, ValueError, AttributeError) as exc:
+            code = getattr(exc, "error_code", None)
+            raise CommunicationError(
+                f"cannot open {self.resource!r}: {exc}", visa_code=code, resource=self.resource
+            ).add_context(
+                fix="check the address, that the instrument is on and reachable, and for "
+                "USB/serial that pyusb/pyserial are installed"
+            ) from exc
+        except Exception as exc:  # noqa: BLE001 - pyvisa-py raises bare Exception on connect
+            raise CommunicationError(
+                f"cannot open {self.resource!r}: {exc}", resource=self.resource
+            ) from exc
+        self._res = res
+        self._is_socket = getattr(res, "resource_class", "") == "SOCKET"
+        if self._is_socket:
+            self._no_delay()
+        if self.binary_reader == "fast" and not self._termchar_switchable():
+            logger.info(
+                "%s: the termination character cannot be switched off; binary blocks "
+                "go through pyvisa's codec",
+                self.resource,
+            )
+            self.binary_reader = "pyvisa"
+        logger.info("opened %s (%s)", self.resource, self.visa_library)
+
+    def _termchar_switchable(self) -> bool:
+        """The fast block read needs VI_ATTR_TERMCHAR_EN writable (some back ends refuse)."""
+        from pyvisa import constants
+
+        try:
+            value = self._res.get_visa_attribute(constants.VI_ATTR_TERMCHAR_EN)
+            self._res.set_visa_attribute(constants.VI_ATTR_TERMCHAR_EN, value)
+            return True
+        except Exception as exc:  # noqa: BLE001 - any refusal means: use pyvisa's codec
+            logger.debug("%s: VI_ATTR_TERMCHAR_EN not writable: %s", self.resource, exc)
+            return False
+
+    def _no_delay(self) -> None:
+        """Send small commands at once. With Nagle's algorithm on, a command followed by a
+        query waits for the instrument's delayed ACK (measured ~45 ms per command on
+        loopback). pyvisa-py 0.8 cannot set VI_ATTR_TCPIP_NODELAY, so the socket is set."""
+        from pyvisa import constants
+
+        try:
+            self._res.set_visa_attribute(constants.VI_ATTR_TCPIP_NODELAY, constants.VI_TRUE)
+            return
+        except Exception as exc:  # noqa: BLE001 - pyvisa-py raises its own UnknownAttribute
+            logger.debug("%s: VI_ATTR_TCPIP_NODELAY refused (%s)", self.resource, exc)
+        sock = self._socket()
+        if sock is not None:
+            try:
+                sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+            except OSError as exc:
+                logger.debug("%s: TCP_NODELAY not set: %s", self.resource, exc)
+
+    def _close_resource(self) -> None:
+        res, self._res = self._res, None
+        if res is None:
+            return
+        try:
+            res.close()
+        except Exception as exc:  # noqa: BLE001 - closing a dead session is best effort
+            logger.debug("%s: close failed: %s", self.resource, exc)
+
+    def reconnect(self) -> None:
+        """Close and reopen the session (terminations and timeout re-applied)."""
+        with self._lock:
+            self._close_resource()
+            self._open()
+            self._stale = False
+            self.reconnects += 1
+            logger.warning("%s: reconnected (%d so far)", self.resource, self.reconnects)
+
+    def recover(self) -> bool:
+        with self._lock:
+            if self._res is None or self._is_socket:
+                self.reconnect()
+                return True
+            try:
+                with self._io("device clear"):
+                    self._res.clear()
+                self._stale = False
+                return False
+            except CommunicationError:
+                self.reconnect()
+                return True
+
+    @property
+    def stale(self) -> bool:
+        """True after a failed exchange, until :meth:`recover` or :meth:`reconnect`."""
+        return self._stale
+
+    def close(self) -> None:
+        """Close the resource. The resource manager stays open: pyvisa shares one per VISA
+        library, and closing it would close every other session of the process."""
+        with self._lock:
+            self._close_resource()
+
+    @property
+    def is_open(self) -> bool:
+        return self._res is not None
+
+    # -- timeouts ----------------------------------------------------------------------
+
+    @property
+    def timeout_s(self) -> float:
+        return self._timeout_s
+
+    def _set_timeout_s(self, seconds: float) -> None:
+        ms = seconds_to_ms(seconds)
+        with self._lock:
+            self._timeout_s = float(seconds)
+            if self._res is not None:
+                with self._io("set timeout"):
+                    self._res.timeout = ms
+
+    # -- I/O ---------------------------------------------------------------------------
+
+    @contextmanager
+    def _io(self, command: str) -> Iterator[None]:
+        """Translate pyvisa and OS errors into noisebench's, with the command and VISA code."""
+        import pyvisa
+        from pyvisa import constants
+
+        if self._res is None:
+            raise ConnectionLost(
+                f"session to {self.resource!r} is closed", command=command, resource=self.resource
+            )
+        try:
+            yield
+        except pyvisa.errors.VisaIOError as exc:
+            if exc.error_code == constants.StatusCode.error_timeout:
+                raise InstrumentTimeout(
+                    f"no reply to {command!r} within {self._timeout_s:g} s",
+                    visa_code=exc.error_code,
+                    command=command,
+                    resource=self.resource,
+                ) from exc
+            cls = (
+                ConnectionLost
+                if exc.error_code
+                in (
+                    constants.StatusCode.error_connection_lost,
+                    constants.StatusCode.error_invalid_object,
+                )
+                else CommunicationError
+            )
+            raise cls(
+                f"VISA error during {command!r}: {exc.abbreviation}",
+                visa_code=exc.error_code,
+                command=command,
+                resource=self.resource,
+            ) from exc
+        except OSError as exc:
+            raise ConnectionLost(
+                f"connection lost during {command!r}: {exc}",
+                command=command,
+                resource=self.resource,
+            ) from exc
+        except UnicodeDecodeError as exc:
+            raise CommunicationError(
+                f"reply to {command!r} is not text", command=command, resource=self.resource
+            ) from exc
+
+    def _socket(self) -> socket.socket | None:
+        """pyvisa-py's socket behind a SOCKET resource (None for other back ends)."""
+        if not self._is_socket or self._res is None:
+            return None
+        import pyvisa
+
+        try:
+            session = self._res.visalib.sessions[self._res.session]
+        except (AttributeError, KeyError, TypeError, pyvisa.errors.Error):
+            return None
+        sock = getattr(session, "interface", None)
+        return sock if isinstance(sock, socket.socket) else None
+
+    def peer_closed(self) -> bool:
+        """True when the instrument closed a socket connection (checked without blocking)."""
+        sock = self._socket()
+        if sock is None:
+            return False
+        try:
+            readable, _, _ = select.select([sock], [], [], 0)
+            if not readable:
+                return False
+            return sock.recv(1, socket.MSG_PEEK) == b""
+        except (OSError, ValueError):
+            return True
+
+    @contextmanager
+    def _exchange(self, command: str) -> Iterator[None]:
+        """One exchange under the lock. A session whose last exchange failed midway is out of
+        step (a late reply may still arrive), so it refuses I/O until :meth:`recover`."""
+        with self._lock:
+            if self._res is None or self.peer_closed():
+                self._stale = True
+                raise ConnectionLost(
+                    f"the instrument closed the connection (before {command!r})",
+                    command=command,
+                    resource=self.resource,
+                )
+            if self._stale:
+                raise CommunicationError(
+                    f"session out of step after an earlier error (before "
+                    f"{command!r}); recover() first",
+                    command=command,
+                    resource=self.resource,
+                )
+            try:
+                yield
+            except BaseException:
+                self._stale = True
+                raise
+
+    def write(self, command: str) -> None:
+        with self._exchange(command):
+            logger.debug("%s << %s", self.resource, command)
+            with self._io(command):
+                self._res.write(command)
+
+    def query(self, command: str) -> str:
+        with self._exchange(command):
+            logger.debug("%s << %s", self.resource, command)
+            with self._io(command):
+                reply = self._res.query(command)
+            logger.debug("%s >> %s", self.resource, reply[:200])
+            return reply.strip()
+
+    def query_binary(
+        self, command: str, *, datatype: str = "f", big_endian: bool = True
+    ) -> np.ndarray:
+        if datatype not in _DTYPES:
+            raise InputError("datatype", f"{datatype!r} is not supported", fix="use 'f' or 'd'")
+        with self._exchange(command):
+            logger.debug("%s << %s (binary)", self.resource, command)
+            if self.binary_reader == "pyvisa":
+                return self._query_binary_pyvisa(command, datatype, big_endian)
+            with self._io(command):
+                self._res.write(command)
+            payload = self._read_block(command)
+            return decode_block_values(payload, datatype, big_endian, command)
+
+    def _query_binary_pyvisa(self, command: str, datatype: str, big_endian: bool) -> np.ndarray:
+        with self._io(command):
+            try:
+                values = self._res.query_binary_values(
+                    command,
+                    datatype=datatype,
+                    is_big_endian=big_endian,
+                    container=np.array,
+                    expect_termination=True,
+                )
+            except (ValueError, TypeError) as exc:  # pyvisa's header/length checks
+                raise BlockError(
+                    f"bad binary block from {command!r}: {exc}",
+                    command=command,
+                    resource=self.resource,
+                ) from exc
+        return np.asarray(values, dtype=np.float64)
+
+    # -- definite-length block, read by length ------------------------------------------
+
+    @contextmanager
+    def _raw_reads(self) -> Iterator[None]:
+        """Switch the termination character (and serial END-on-termchar) off, then back on."""
+        from pyvisa import constants
+
+        res = self._res
+        changed: list[tuple[int, object]] = []
+        try:
+            for attr, off in (
+                (constants.VI_ATTR_TERMCHAR_EN, constants.VI_FALSE),
+                (constants.VI_ATTR_ASRL_END_IN, constants.VI_ASRL_END_NONE),
+            ):
+                if (
+                    attr == constants.VI_ATTR_ASRL_END_IN
+                    and res.interface_type != constants.InterfaceType.asrl
+                ):
+                    continue
+                changed.append((attr, res.get_visa_attribute(attr)))
+                res.set_visa_attribute(attr, off)
+            yield
+        finally:
+            for attr, value in reversed(changed):
+                try:
+                    res.set_visa_attribute(attr, value)
+                except Exception as exc:  # noqa: BLE001 - a dead session is reopened anyway
+                    logger.debug(
+                        "%s: could not restore attribute %#x: %s", self.resource, attr, exc
+                    )
+
+    def _read_exact(self, count: int) -> bytes:
+        return bytes(self._res.read_bytes(count, chunk_size=max(count, 1)))
+
+    def _read_block(self, command: str) -> bytes:
+        with self._io(command), self._raw_reads():
+            head = self._read_exact(2)
+            if head[:1] != b"#" or not head[1:2].isdigit():
+                raise BlockError(
+                    f"reply to {command!r} is not a binary block (starts {head!r})",
+                    command=command,
+                    resource=self.resource,
+                )
+            ndigits = int(head[1:2])
+            digits = self._read_exact(ndigits) if ndigits else b""
+            _, length = _header_length(head + digits, command)
+        payload = self._read_payload(command, length)
+        self._read_terminator(command)
+        return payload
+
+    def _read_payload(self, command: str, length: int) -> bytes:
+        try:
+            with self._io(command), self._raw_reads():
+                return self._read_exact(length) if length else b""
+        except InstrumentTimeout as exc:
+            raise BlockError(
+                f"binary block from {command!r} incomplete: the header announced {length} "
+                f"bytes, the data stopped (truncated block or dropped connection)",
+                visa_code=exc.visa_code,
+                command=command,
+                resource=self.resource,
+            ) from exc
+
+    def _read_terminator(self, command: str) -> None:
+        try:
+            with self._io(command), self._raw_reads():
+                end = self._read_exact(1)
+                if end == b"\r":
+                    end = self._read_exact(1)
+        except InstrumentTimeout as exc:
+            raise BlockError(
+                f"no message terminator after the binary block from {command!r}",
+                visa_code=exc.visa_code,
+                command=command,
+                resource=self.resource,
+            ) from exc
+        if end != b"\n":
+            raise BlockError(
+                f"binary block from {command!r} is longer than its header "
+                f"announced (next byte {end!r})",
+                command=command,
+                resource=self.resource,
+            )

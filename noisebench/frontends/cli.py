@@ -1,0 +1,436 @@
+"""The ``noisebench`` command line.
+
+Commands (ours; see ``noisebench --help`` and ``noisebench <command> --help``):
+
+``run PLAN [--resume FOLDER]``   measure a plan (TOML) and write results, plots and report
+``demo [--out DIR]``             both methods on the invented simulated bench, in seconds
+``estimate PLAN``                instrument time and expected uncertainty, no instruments
+``serve``                        the simulated bench as SCPI instruments on loopback TCP
+``render FOLDER``                plots and report again from a run folder
+``validate PLAN|ENR.csv``        check a plan or an ENR table; every problem on its own line
+``info``                         versions, VISA back ends, visible resources, profiles
+``station PLAN`` / ``db ...``    production loop and results database
+                                 (:mod:`noisebench.frontends.dbcli`)
+
+Errors end with one line on stderr and a non-zero exit code, never a traceback:
+2 bad input (plan, file, arguments), 3 refused for safety, 4 instrument or communication
+fault, 5 measurement refused by the physics, 1 anything else, 130 interrupted (Ctrl-C).
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import math
+import sys
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import TextIO
+
+from pydantic import ValidationError
+
+from noisebench import __version__
+from noisebench.errors import (
+    CommunicationError,
+    InputError,
+    InstrumentError,
+    MeasurementError,
+    NoisebenchError,
+    SafetyError,
+)
+from noisebench.running.safety import cautions_text
+
+logger = logging.getLogger("noisebench.frontends.cli")
+
+EXIT_OK = 0
+EXIT_FAILED = 1
+EXIT_INPUT = 2
+EXIT_SAFETY = 3
+EXIT_INSTRUMENT = 4
+EXIT_MEASUREMENT = 5
+EXIT_INTERRUPTED = 130
+
+EPILOG = f"""\
+exit codes: 0 ok, 2 bad input, 3 refused for safety, 4 instrument/communication fault,
+5 measurement refused by the physics, 1 other failure, 130 interrupted.
+
+Safety cautions (read before connecting real instruments):
+{cautions_text()}
+"""
+
+
+# --------------------------------------------------------------------------- commands
+
+
+def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
+    from noisebench.bench.registry import open_bench
+    from noisebench.results.store import format_summary
+    from noisebench.running.plan import load_plan
+    from noisebench.running.progress import make_progress
+    from noisebench.running.sequencer import run_plan
+
+    plan = load_plan(args.plan)
+    if args.resume and args.out:
+        raise InputError(
+            "--out",
+            "cannot be combined with --resume (the run stays in its folder)",
+            fix="drop --out",
+        )
+    if args.resume:
+        from noisebench.results.store import check_resumable
+
+        check_resumable(args.resume)  # a wrong folder is refused before any instrument
+    session = open_bench(plan.bench, prompt=input)
+    try:
+        if session.real_hardware:
+            print("Safety cautions:\n" + cautions_text(), file=sys.stderr)
+        folder = Path(args.resume) if args.resume else (Path(args.out) if args.out else None)
+        record, folder = run_plan(
+            plan, folder=folder, resume=bool(args.resume), session=session, progress=make_progress()
+        )
+    finally:
+        session.close()
+    print(format_summary(record), file=out)
+    print(f"results in {folder}", file=out)
+    if record.info.status == "interrupted":
+        print(
+            f"interrupted: continue with `noisebench run {args.plan} --resume {folder}`",
+            file=sys.stderr,
+        )
+        return EXIT_INTERRUPTED
+    skipped = record.info.notes.get("skipped_points") or []
+    if skipped:
+        first = skipped[0]
+        print(
+            f"noisebench: error: {len(skipped)} point(s) not measured, first at "
+            f"{first['freq_hz']:.6g} Hz ({first['stage']}): {_one_line(first['reason'])} "
+            f"(once fixed, `noisebench run {args.plan} --resume {folder}` measures them)",
+            file=sys.stderr,
+        )
+        return EXIT_MEASUREMENT
+    return EXIT_OK
+
+
+def cmd_demo(args: argparse.Namespace, out: TextIO) -> int:
+    from noisebench.frontends.demo import run_demo
+
+    summary = run_demo(Path(args.out), points=args.points, seed=args.seed, stream=out)
+    return EXIT_OK if summary.complete else EXIT_FAILED
+
+
+def cmd_estimate(args: argparse.Namespace, out: TextIO) -> int:
+    from noisebench.running.forecast import forecast_plan
+    from noisebench.running.plan import load_plan
+
+    plan = load_plan(args.plan)
+    print(
+        f"{plan.method.value.replace('_', '-')} method, {len(plan.points())} points "
+        f"(forecast from the radiometer equation; no instrument touched)",
+        file=out,
+    )
+    print(forecast_plan(plan).format(), file=out)
+    return EXIT_OK
+
+
+def cmd_serve(args: argparse.Namespace, out: TextIO) -> int:
+    from noisebench.sims.serve import main as serve_main
+
+    try:
+        return int(serve_main(list(args.serve_args), out=out))
+    except SystemExit as exc:  # the server's own --help or usage error
+        return int(exc.code or 0)
+
+
+def cmd_render(args: argparse.Namespace, out: TextIO) -> int:
+    from noisebench.results.store import format_summary, load_run
+    from noisebench.running.sequencer import write_outputs
+
+    folder = Path(args.folder)
+    record = load_run(folder)
+    written = write_outputs(record, folder, plots=not args.no_plots, report=True)
+    print(format_summary(record), file=out)
+    for path in written:
+        print(f"wrote {path}", file=out)
+    return EXIT_OK
+
+
+def cmd_validate(args: argparse.Namespace, out: TextIO) -> int:
+    path = Path(args.path)
+    if path.suffix.lower() == ".csv":
+        from noisebench.science.enr import EnrTable, validate_enr_file
+
+        problems = validate_enr_file(path)
+        if not problems:
+            table = EnrTable.from_csv(path)
+            span = table.range_hz
+            where = f"{span[0]:.6g}-{span[1]:.6g} Hz" if span else "all frequencies (flat)"
+            print(f"ok: ENR table {path.name}, {len(table.enr_db)} values, {where}", file=out)
+    else:
+        from noisebench.running.plan import load_plan, validate_plan_file
+
+        problems = validate_plan_file(path)
+        if not problems:
+            plan = load_plan(path)
+            print(
+                f"ok: {plan.method.value.replace('_', '-')} plan {path.name}, "
+                f"{len(plan.points())} points, analyzer {plan.bench.analyzer.resource}",
+                file=out,
+            )
+    name = path.name or str(path)  # "." has no name
+    for line in problems:
+        print(f"{name}: {line}", file=sys.stderr)
+    return EXIT_INPUT if problems else EXIT_OK
+
+
+def cmd_info(args: argparse.Namespace, out: TextIO) -> int:
+    from noisebench.frontends.info import collect_info, format_info
+
+    print(format_info(collect_info(scan=not args.no_scan, timeout_s=args.timeout)), file=out)
+    return EXIT_OK
+
+
+# --------------------------------------------------------------------------- parser
+
+
+def positive_seconds(text: str) -> float:
+    """argparse type: a finite duration > 0 s (``nan``, ``inf``, 0 and negatives refused)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds") from None
+    if not (math.isfinite(value) and value > 0):
+        raise argparse.ArgumentTypeError(f"must be a finite number of seconds > 0 (got {text})")
+    return value
+
+
+def non_negative_int(text: str) -> int:
+    """argparse type: an integer >= 0 (simulator seeds)."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"must be >= 0 (got {value})")
+    return value
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="noisebench",
+        description="Automated noise-figure measurement with a spectrum analyzer: gain method "
+        "and Y-factor, on SCPI instruments or on the simulated bench.",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    parser.add_argument("--version", action="version", version=f"noisebench {__version__}")
+    parser.add_argument("-v", "--verbose", action="store_true", help="debug logging")
+    parser.add_argument("-q", "--quiet", action="store_true", help="warnings and errors only")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+
+    p = sub.add_parser(
+        "run",
+        help="measure a plan",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Measure the plan (TOML) and write results, plots and the "
+        "report into a new run folder (or continue one).",
+    )
+    p.add_argument("plan", help="plan file (.toml)")
+    p.add_argument(
+        "--resume",
+        metavar="FOLDER",
+        help="continue an interrupted run in FOLDER (finished points are kept)",
+    )
+    p.add_argument("--out", metavar="FOLDER", help="run folder (default: from [output])")
+    p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser(
+        "demo",
+        help="both methods on the invented simulated bench",
+        description="Sweep the invented 'demo-lna' scenario on the simulated "
+        "bench with the Y-factor and the gain method and write "
+        "results, plots and reports.",
+    )
+    p.add_argument(
+        "--out",
+        default="noisebench-demo",
+        metavar="DIR",
+        help="output folder (default: ./noisebench-demo)",
+    )
+    p.add_argument("--points", type=int, default=56, help="frequency points (default: 56)")
+    p.add_argument("--seed", type=non_negative_int, default=1, help="simulator seed (default: 1)")
+    p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser(
+        "estimate",
+        help="forecast time and uncertainty of a plan",
+        description="Instrument time and expected NF uncertainty per point from "
+        "the radiometer equation, without touching an instrument. "
+        "Real benches need [expect] priors; sim:// benches use the "
+        "scenario's declared models.",
+    )
+    p.add_argument("plan", help="plan file (.toml)")
+    p.set_defaults(func=cmd_estimate)
+
+    p = sub.add_parser(
+        "serve",
+        help="serve the simulated bench over SCPI (loopback TCP)",
+        description="Run the SCPI simulator; every option after 'serve' goes "
+        "to it (noisebench serve --help lists them).",
+        add_help=False,
+    )
+    p.set_defaults(func=cmd_serve, serve_args=[])
+
+    p = sub.add_parser("render", help="plots and report from a saved run folder")
+    p.add_argument("folder", help="run folder")
+    p.add_argument("--no-plots", action="store_true", help="report only")
+    p.set_defaults(func=cmd_render)
+
+    p = sub.add_parser("validate", help="check a plan (.toml) or an ENR table (.csv)")
+    p.add_argument("path", help="plan .toml or ENR .csv")
+    p.set_defaults(func=cmd_validate)
+
+    p = sub.add_parser("info", help="versions, VISA back ends, resources, profiles")
+    p.add_argument("--no-scan", action="store_true", help="do not list VISA resources")
+    p.add_argument(
+        "--timeout",
+        type=positive_seconds,
+        default=5.0,
+        metavar="S",
+        help="give up listing resources after S seconds (default: 5)",
+    )
+    p.set_defaults(func=cmd_info)
+
+    from noisebench.frontends.dbcli import register as register_production
+
+    register_production(sub)  # station, db (noisebench/frontends/dbcli.py)
+    return parser
+
+
+# --------------------------------------------------------------------------- errors
+
+
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split())
+
+
+def _report(exc: BaseException) -> int:
+    """Print an error as one line per problem on stderr; return its exit code."""
+    from noisebench.running.plan import PlanError, format_validation_error
+
+    if isinstance(exc, PlanError):
+        where = f"{exc.source}: " if exc.source else ""
+        for line in exc.problems:
+            print(f"noisebench: error: {where}{_one_line(line)}", file=sys.stderr)
+        return EXIT_INPUT
+    if isinstance(exc, ValidationError):
+        for line in format_validation_error(exc):
+            print(f"noisebench: error: {_one_line(line)}", file=sys.stderr)
+        return EXIT_INPUT
+    code = _exit_code(exc)
+    text = _one_line(str(exc)) or type(exc).__name__
+    if isinstance(exc, OSError) and not isinstance(exc, NoisebenchError):
+        name = f" {exc.filename}" if getattr(exc, "filename", None) else ""
+        text = f"{exc.strerror or type(exc).__name__}{':' if name else ''}{name}"
+    print(f"noisebench: error: {text}", file=sys.stderr)
+    return code
+
+
+def _exit_code(exc: BaseException) -> int:
+    table: list[tuple[type[BaseException], int]] = [
+        (SafetyError, EXIT_SAFETY),
+        (InputError, EXIT_INPUT),
+        (CommunicationError, EXIT_INSTRUMENT),
+        (InstrumentError, EXIT_INSTRUMENT),
+        (MeasurementError, EXIT_MEASUREMENT),
+        (NoisebenchError, EXIT_FAILED),
+        (FileNotFoundError, EXIT_INPUT),
+        (IsADirectoryError, EXIT_INPUT),
+        (NotADirectoryError, EXIT_INPUT),
+        (OSError, EXIT_FAILED),
+        (ValueError, EXIT_INPUT),
+    ]
+    for kind, code in table:
+        if isinstance(exc, kind):
+            return code
+    return EXIT_FAILED
+
+
+class _CurrentStderrHandler(logging.StreamHandler):
+    """Writes to whatever ``sys.stderr`` is at emit time (a captured or replaced stderr
+    that has since been closed must not break logging)."""
+
+    def __init__(self) -> None:
+        super().__init__(sys.stderr)
+
+    @property  # type: ignore[override]
+    def stream(self) -> TextIO:
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, _value: TextIO) -> None:
+        pass
+
+
+def _configure_logging(args: argparse.Namespace) -> None:
+    level = logging.DEBUG if args.verbose else logging.WARNING if args.quiet else logging.INFO
+    root = logging.getLogger("noisebench")
+    if not any(getattr(h, "_noisebench_cli", False) for h in root.handlers):
+        handler = _CurrentStderrHandler()
+        handler.setFormatter(
+            logging.Formatter(
+                "%(levelname)s %(name)s: %(message)s" if args.verbose else "%(message)s"
+            )
+        )
+        handler._noisebench_cli = True  # type: ignore[attr-defined]
+        root.addHandler(handler)
+    root.setLevel(level)
+
+
+_GLOBAL_FLAGS = ("-v", "--verbose", "-q", "--quiet")
+
+
+def _split_serve(tokens: list[str]) -> tuple[list[str], list[str] | None]:
+    """``[globals] serve ARGS...``: every token after ``serve`` belongs to the simulator."""
+    for i, token in enumerate(tokens):
+        if token == "serve":
+            return tokens[: i + 1], tokens[i + 1 :]
+        if token not in _GLOBAL_FLAGS:
+            break
+    return tokens, None
+
+
+def main(argv: Sequence[str] | None = None, *, out: TextIO | None = None) -> int:
+    """Entry point of the ``noisebench`` console script; returns the exit code."""
+    out = out or sys.stdout
+    parser = build_parser()
+    tokens = [str(t) for t in (sys.argv[1:] if argv is None else argv)]
+    tokens, serve_args = _split_serve(tokens)
+    try:
+        args = parser.parse_args(tokens)
+    except SystemExit as exc:  # argparse: --help (0) or a usage error (2)
+        return int(exc.code or 0)
+    if serve_args is not None:
+        args.serve_args = serve_args
+    _configure_logging(args)
+    func: Callable[[argparse.Namespace, TextIO], int] = args.func
+    try:
+        return func(args, out)
+    except KeyboardInterrupt:
+        print("noisebench: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except (NoisebenchError, ValidationError, OSError, ValueError) as exc:
+        logger.debug("error detail", exc_info=True)
+        return _report(exc)
+    except Exception as exc:  # noqa: BLE001 - a CLI never shows a traceback
+        logger.debug("unexpected error", exc_info=True)
+        print(
+            f"noisebench: error: unexpected {type(exc).__name__}: {_one_line(str(exc))} "
+            "(run with -v for details and report it)",
+            file=sys.stderr,
+        )
+        return EXIT_FAILED
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,127 @@
+"""``noisebench info``: what is installed and what the VISA layer can see.
+
+The first thing to look at when an instrument will not talk: versions, the VISA back ends
+pyvisa knows, the resources the pyvisa-py back end finds (listing is bounded by a timeout and
+never raises), the packaged instrument profiles and simulator scenarios.
+"""
+
+from __future__ import annotations
+
+import logging
+import platform
+import threading
+import warnings
+from importlib import metadata, resources
+from typing import Any
+
+logger = logging.getLogger(__name__)
+
+DISTRIBUTIONS = (
+    "noisebench",
+    "numpy",
+    "scipy",
+    "pydantic",
+    "pyvisa",
+    "pyvisa-py",
+    "matplotlib",
+    "scikit-rf",
+    "rich",
+    "sqlalchemy",
+    "psycopg",
+    "pyserial",
+    "pyusb",
+)
+
+
+def versions() -> dict[str, str]:
+    """Python and package versions ('-' when a package is not installed)."""
+    out = {"python": platform.python_version()}
+    for dist in DISTRIBUTIONS:
+        try:
+            out[dist] = metadata.version(dist)
+        except metadata.PackageNotFoundError:
+            out[dist] = "-"
+    return out
+
+
+def visa_backends() -> list[str] | str:
+    """Names of the VISA back ends pyvisa can load, or the error text."""
+    try:
+        from pyvisa import highlevel
+
+        return sorted(highlevel.list_backends())
+    except Exception as exc:  # noqa: BLE001 - info must never fail
+        return f"unavailable ({type(exc).__name__}: {exc})"
+
+
+def visa_resources(timeout_s: float = 5.0, library: str = "@py") -> list[str] | str:
+    """Resources the ``library`` back end lists, or why it could not (bounded by a timeout)."""
+    result: dict[str, Any] = {}
+
+    def scan() -> None:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            try:
+                import pyvisa
+
+                manager = pyvisa.ResourceManager(library)
+                try:
+                    result["found"] = list(manager.list_resources())
+                finally:
+                    manager.close()
+            except Exception as exc:  # noqa: BLE001
+                result["error"] = f"{type(exc).__name__}: {exc}"
+        result["notes"] = [str(w.message) for w in caught]
+
+    worker = threading.Thread(target=scan, name="noisebench-info-scan", daemon=True)
+    worker.start()
+    worker.join(timeout_s)
+    if worker.is_alive():
+        return f"no answer within {timeout_s:g} s"
+    for note in result.get("notes", []):
+        logger.info("resource listing: %s", note)
+    if "error" in result:
+        return f"listing failed ({result['error']})"
+    return result.get("found", [])
+
+
+def _packaged(package: str, folder: str) -> list[str]:
+    try:
+        root = resources.files(package).joinpath(folder)
+        return sorted(p.name[:-5] for p in root.iterdir() if p.name.endswith(".toml"))
+    except Exception as exc:  # noqa: BLE001
+        return [f"unavailable ({type(exc).__name__})"]
+
+
+def collect_info(*, scan: bool = True, timeout_s: float = 5.0) -> dict[str, Any]:
+    """Everything ``noisebench info`` prints, as a dict."""
+    return {
+        "versions": versions(),
+        "platform": platform.platform(),
+        "visa_backends": visa_backends(),
+        "resources": visa_resources(timeout_s) if scan else "not scanned (--no-scan)",
+        "profiles": _packaged("noisebench.drivers", "profiles"),
+        "scenarios": _packaged("noisebench.sims", "scenarios"),
+    }
+
+
+def format_info(info: dict[str, Any]) -> str:
+    lines = ["noisebench environment", f"  platform   {info['platform']}"]
+    for name, version in info["versions"].items():
+        lines.append(f"  {name:<11}{version}")
+    for key, title in (
+        ("visa_backends", "VISA back ends"),
+        ("resources", "VISA resources (@py)"),
+        ("profiles", "instrument profiles"),
+        ("scenarios", "simulator scenarios"),
+    ):
+        value = info[key]
+        if isinstance(value, str):
+            lines.append(f"{title}: {value}")
+        else:
+            lines.append(f"{title}: " + (", ".join(value) if value else "none found"))
+    lines.append(
+        "simulated benches: sim://<scenario>?seed=N (in process), "
+        "`noisebench serve` (SCPI over TCP)"
+    )
+    return "\n".join(lines)

@@ -1,0 +1,1 @@
+"""Results: the run store, the results database, plots and the HTML report."""

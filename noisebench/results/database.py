@@ -1,0 +1,527 @@
+"""Results database: one SQLite file by default, any SQLAlchemy URL (PostgreSQL) for a fleet.
+
+Tables: ``schema_info`` (version), ``stations``, ``units`` (serial, part number, lot), ``runs``,
+``points`` and ``budget_terms`` (one row per uncertainty contribution of a point). A run is
+written in ONE transaction, so a concurrent reader never sees half a run and a crashed writer
+leaves nothing behind; stations and units are get-or-create under unique constraints, retried
+when two stations insert the same unit at the same moment.
+
+SQLAlchemy is used because the same ORM code runs on SQLite and PostgreSQL, handles connection
+pooling and transactions, and turns the yield/statistics queries into portable SQL.
+
+Typical use::
+
+    db = ResultsDatabase("sqlite:///station.sqlite")     # or "postgresql+psycopg://..."
+    db.store_run(record, lot="L24-07", station="bench-3")
+    db.yield_by_lot()                                     # -> [LotYield(...)]
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import math
+import time
+from collections.abc import Iterable, Sequence
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any
+
+from pydantic import BaseModel
+
+from noisebench.errors import InputError, NoisebenchError
+
+log = logging.getLogger(__name__)
+
+SCHEMA_VERSION = 1
+
+try:  # SQLAlchemy is an optional extra ("db"); fail with a clear message when it is missing
+    from sqlalchemy import (
+        DateTime,
+        Float,
+        ForeignKey,
+        Integer,
+        String,
+        Text,
+        UniqueConstraint,
+        create_engine,
+        event,
+        func,
+        select,
+    )
+    from sqlalchemy.exc import IntegrityError, OperationalError
+    from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column, relationship
+except ImportError as exc:  # pragma: no cover - exercised only without the extra
+    raise ImportError(
+        "the results database needs SQLAlchemy: pip install 'noisebench[db]'"
+    ) from exc
+
+
+class DatabaseError(NoisebenchError):
+    """The results database refused an operation (wrong schema version, unreachable server)."""
+
+
+class _Base(DeclarativeBase):
+    pass
+
+
+class _SchemaInfo(_Base):
+    __tablename__ = "schema_info"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    version: Mapped[int] = mapped_column(Integer, nullable=False)
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), nullable=False)
+
+
+class _Station(_Base):
+    __tablename__ = "stations"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(200), unique=True, nullable=False)
+
+
+class _Unit(_Base):
+    __tablename__ = "units"
+    __table_args__ = (UniqueConstraint("serial", "part_number", name="uq_unit_serial_part"),)
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    serial: Mapped[str] = mapped_column(String(200), nullable=False)
+    part_number: Mapped[str] = mapped_column(String(200), nullable=False, default="")
+    lot: Mapped[str | None] = mapped_column(String(200), nullable=True, index=True)
+
+
+class _Run(_Base):
+    __tablename__ = "runs"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    run_id: Mapped[str] = mapped_column(String(100), unique=True, nullable=False)
+    unit_id: Mapped[int | None] = mapped_column(ForeignKey("units.id"), index=True)
+    station_id: Mapped[int | None] = mapped_column(ForeignKey("stations.id"), index=True)
+    method: Mapped[str] = mapped_column(String(20), nullable=False)
+    operator: Mapped[str | None] = mapped_column(String(200))
+    status: Mapped[str] = mapped_column(String(20), nullable=False)
+    verdict: Mapped[str | None] = mapped_column(String(20), index=True)
+    started_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), nullable=False)
+    ended_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True))
+    info_json: Mapped[str] = mapped_column(Text, nullable=False)
+    points: Mapped[list[_Point]] = relationship(back_populates="run", cascade="all, delete-orphan")
+
+
+class _Point(_Base):
+    __tablename__ = "points"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    run_fk: Mapped[int] = mapped_column(ForeignKey("runs.id"), index=True, nullable=False)
+    freq_hz: Mapped[float] = mapped_column(Float, nullable=False, index=True)
+    nf_db: Mapped[float] = mapped_column(Float, nullable=False)
+    u_nf_db: Mapped[float] = mapped_column(Float, nullable=False)
+    te_k: Mapped[float] = mapped_column(Float, nullable=False)
+    gain_db: Mapped[float | None] = mapped_column(Float)
+    y_db: Mapped[float | None] = mapped_column(Float)
+    expanded_u_nf_db: Mapped[float | None] = mapped_column(Float)
+    verdict: Mapped[str | None] = mapped_column(String(20))
+    flags: Mapped[str] = mapped_column(String(500), nullable=False, default="")
+    run: Mapped[_Run] = relationship(back_populates="points")
+    terms: Mapped[list[_BudgetTerm]] = relationship(cascade="all, delete-orphan")
+
+
+class _BudgetTerm(_Base):
+    __tablename__ = "budget_terms"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    point_fk: Mapped[int] = mapped_column(ForeignKey("points.id"), index=True, nullable=False)
+    name: Mapped[str] = mapped_column(String(200), nullable=False)
+    standard_u: Mapped[float | None] = mapped_column(Float)
+    unit: Mapped[str | None] = mapped_column(String(40))
+    sensitivity: Mapped[float | None] = mapped_column(Float)
+    contribution_db: Mapped[float | None] = mapped_column(Float)
+
+
+# ---------------------------------------------------------------------------------------------
+# query results
+
+
+class LotYield(BaseModel):
+    """First-pass yield of a lot: units whose latest complete run passed, over units judged."""
+
+    lot: str | None
+    units: int
+    passed: int
+    failed: int
+    indeterminate: int
+    not_judged: int
+
+    @property
+    def yield_fraction(self) -> float:
+        judged = self.passed + self.failed + self.indeterminate
+        return self.passed / judged if judged else float("nan")
+
+
+class FrequencyStats(BaseModel):
+    """NF statistics at one frequency over the latest complete run of every unit (dB)."""
+
+    freq_hz: float
+    count: int
+    mean_nf_db: float
+    std_nf_db: float
+    min_nf_db: float
+    max_nf_db: float
+
+
+class UnitRun(BaseModel):
+    """One run of a unit, newest first in :meth:`ResultsDatabase.unit_history`."""
+
+    run_id: str
+    started_at: datetime
+    station: str | None
+    method: str
+    status: str
+    verdict: str | None
+    max_nf_db: float | None
+    min_gain_db: float | None
+
+
+# ---------------------------------------------------------------------------------------------
+
+
+def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:
+    cur = dbapi_connection.cursor()
+    cur.execute("PRAGMA journal_mode=WAL")
+    cur.execute("PRAGMA busy_timeout=30000")
+    cur.execute("PRAGMA foreign_keys=ON")
+    cur.close()
+
+
+def _as_url(target: str | Path) -> str:
+    text = str(target)
+    if "://" in text:
+        return text
+    return f"sqlite:///{Path(text).expanduser().resolve()}"
+
+
+def _finite_or_none(value: Any) -> float | None:
+    if value is None:
+        return None
+    value = float(value)
+    return value if math.isfinite(value) else None
+
+
+class ResultsDatabase:
+    """A results database at ``url`` (SQLAlchemy URL, or a plain path for an SQLite file)."""
+
+    def __init__(self, url: str | Path, *, create: bool = True, echo: bool = False) -> None:
+        self.url = _as_url(url)
+        kwargs: dict[str, Any] = {"echo": echo, "future": True}
+        if self.url.startswith("sqlite"):
+            kwargs["connect_args"] = {"timeout": 30}
+        else:
+            kwargs["pool_pre_ping"] = True
+        try:
+            self.engine = create_engine(self.url, **kwargs)
+        except Exception as exc:  # bad URL or missing DB driver
+            raise InputError(
+                "database.url",
+                f"cannot use {self._safe_url()!r}: {exc}",
+                fix="use sqlite:///path.sqlite or postgresql+psycopg://user@host/db",
+            ) from exc
+        if self.url.startswith("sqlite"):
+            event.listen(self.engine, "connect", _sqlite_pragmas)
+        if create:
+            self._create_or_check()
+
+    def _safe_url(self) -> str:
+        """The URL without its password, for messages."""
+        try:
+            from sqlalchemy.engine import make_url
+
+            return make_url(self.url).render_as_string(hide_password=True)
+        except Exception:  # noqa: BLE001
+            return "<database url>"
+
+    # -- schema ------------------------------------------------------------------------------
+    def _create_or_check(self) -> None:
+        try:
+            _Base.metadata.create_all(self.engine)
+            with Session(self.engine) as s, s.begin():
+                info = s.scalars(select(_SchemaInfo)).first()
+                if info is None:
+                    s.add(
+                        _SchemaInfo(
+                            id=1, version=SCHEMA_VERSION, created_at=datetime.now(timezone.utc)
+                        )
+                    )
+                elif info.version != SCHEMA_VERSION:
+                    raise DatabaseError(
+                        f"database schema version {info.version} is not the supported "
+                        f"version {SCHEMA_VERSION}; migrate it or use a new database",
+                        url=self._safe_url(),
+                    )
+        except IntegrityError:
+            pass  # another writer created the schema row at the same moment
+        except OperationalError as exc:
+            raise DatabaseError(
+                f"cannot open the results database: {exc.orig}", url=self._safe_url()
+            ) from exc
+
+    @property
+    def schema_version(self) -> int:
+        with Session(self.engine) as s:
+            return int(s.scalars(select(_SchemaInfo.version)).one())
+
+    # -- writing -----------------------------------------------------------------------------
+    def store_run(
+        self,
+        record: Any,
+        *,
+        lot: str | None = None,
+        part_number: str = "",
+        station: str | None = None,
+        retries: int = 5,
+    ) -> int:
+        """Write a finished run (a ``RunRecord``) in one transaction; returns its database id.
+
+        ``lot``/``part_number``/``station`` default to the run's info (``info.notes['lot']``,
+        ``info.notes['part_number']``, ``info.station``). Storing the same ``run_id`` twice is
+        refused with :class:`InputError` rather than silently duplicating.
+        """
+        info = record.info
+        notes = dict(getattr(info, "notes", {}) or {})
+        lot = lot if lot is not None else notes.get("lot")
+        part_number = part_number or str(notes.get("part_number") or "")
+        station = station if station is not None else getattr(info, "station", None)
+        for attempt in range(retries):
+            try:
+                return self._store_once(record, lot, part_number, station)
+            except IntegrityError as exc:
+                if self._run_exists(info.run_id):
+                    raise InputError(
+                        "run_id",
+                        f"run {info.run_id!r} is already stored",
+                        fix="store each run once",
+                    ) from exc
+                log.debug("unique-constraint race on attempt %d, retrying", attempt + 1)
+                time.sleep(0.05 * (attempt + 1))
+            except OperationalError as exc:  # e.g. SQLite 'database is locked' beyond timeout
+                log.warning("database busy (%s), retrying", exc.orig)
+                time.sleep(0.2 * (attempt + 1))
+        raise DatabaseError(
+            f"could not store run {info.run_id!r} after {retries} attempts", url=self._safe_url()
+        )
+
+    def _run_exists(self, run_id: str) -> bool:
+        with Session(self.engine) as s:
+            return s.scalars(select(_Run.id).where(_Run.run_id == run_id)).first() is not None
+
+    @staticmethod
+    def _get_or_create_station(s: Session, name: str | None) -> _Station | None:
+        if not name:
+            return None
+        row = s.scalars(select(_Station).where(_Station.name == name)).first()
+        if row is None:
+            row = _Station(name=name)
+            with s.begin_nested():
+                s.add(row)
+        return row
+
+    @staticmethod
+    def _get_or_create_unit(
+        s: Session, serial: str | None, part: str, lot: str | None
+    ) -> _Unit | None:
+        if not serial:
+            return None
+        row = s.scalars(
+            select(_Unit).where(_Unit.serial == serial, _Unit.part_number == part)
+        ).first()
+        if row is None:
+            row = _Unit(serial=serial, part_number=part, lot=lot)
+            with s.begin_nested():
+                s.add(row)
+        elif lot and row.lot != lot:
+            row.lot = lot
+        return row
+
+    def _store_once(self, record: Any, lot: str | None, part: str, station: str | None) -> int:
+        info = record.info
+        verdict = getattr(record, "verdict", None) or {}
+        point_verdicts = {round(float(p["freq_hz"]), 3): p for p in verdict.get("points", [])}
+        budgets = {
+            round(float(b["freq_hz"]), 3): b for b in (getattr(record, "budgets", None) or [])
+        }
+        with Session(self.engine) as s, s.begin():
+            st = self._get_or_create_station(s, station)
+            unit = self._get_or_create_unit(s, info.dut_id, part, lot)
+            run = _Run(
+                run_id=info.run_id,
+                unit_id=unit.id if unit else None,
+                station_id=st.id if st else None,
+                method=str(getattr(info.method, "value", info.method)),
+                operator=info.operator,
+                status=info.status,
+                verdict=verdict.get("unit"),
+                started_at=info.started_at,
+                ended_at=info.ended_at,
+                info_json=info.model_dump_json()
+                if hasattr(info, "model_dump_json")
+                else json.dumps(info, default=str),
+            )
+            for p in record.points:
+                key = round(float(p.freq_hz), 3)
+                pv = point_verdicts.get(key, {})
+                budget = budgets.get(key, {})
+                row = _Point(
+                    freq_hz=float(p.freq_hz),
+                    nf_db=float(p.nf_db),
+                    u_nf_db=float(p.u_nf_db),
+                    te_k=float(p.te_k),
+                    gain_db=_finite_or_none(p.gain_db),
+                    y_db=_finite_or_none(p.y_db),
+                    expanded_u_nf_db=_finite_or_none(budget.get("U_expanded_db")),
+                    verdict=pv.get("verdict"),
+                    flags=";".join(str(getattr(f, "value", f)) for f in p.flags),
+                )
+                for term in budget.get("contributions", []):
+                    row.terms.append(
+                        _BudgetTerm(
+                            name=str(term.get("name")),
+                            standard_u=_finite_or_none(term.get("u")),
+                            unit=term.get("unit"),
+                            sensitivity=_finite_or_none(term.get("sensitivity")),
+                            contribution_db=_finite_or_none(term.get("contribution_db")),
+                        )
+                    )
+                run.points.append(row)
+            s.add(run)
+            s.flush()
+            return int(run.id)
+
+    # -- queries -----------------------------------------------------------------------------
+    def _latest_complete_runs(self, s: Session, lot: str | None = None) -> list[_Run]:
+        """The newest complete run of every unit (optionally of one lot)."""
+        newest = (
+            select(_Run.unit_id, func.max(_Run.started_at).label("t"))
+            .where(_Run.status == "complete", _Run.unit_id.is_not(None))
+            .group_by(_Run.unit_id)
+            .subquery()
+        )
+        q = select(_Run).join(
+            newest, (_Run.unit_id == newest.c.unit_id) & (_Run.started_at == newest.c.t)
+        )
+        if lot is not None:
+            q = q.join(_Unit, _Unit.id == _Run.unit_id).where(_Unit.lot == lot)
+        return list(s.scalars(q))
+
+    def yield_by_lot(self, lot: str | None = None) -> list[LotYield]:
+        """Yield per lot from each unit's latest complete run (``lot`` to select one)."""
+        with Session(self.engine) as s:
+            runs = self._latest_complete_runs(s, lot)
+            lots: dict[str | None, dict[str, int]] = {}
+            unit_lot = dict(s.execute(select(_Unit.id, _Unit.lot)).all())
+            for r in runs:
+                counts = lots.setdefault(
+                    unit_lot.get(r.unit_id),
+                    {"units": 0, "passed": 0, "failed": 0, "indeterminate": 0, "not_judged": 0},
+                )
+                counts["units"] += 1
+                key = {"pass": "passed", "fail": "failed", "indeterminate": "indeterminate"}.get(
+                    r.verdict or "", "not_judged"
+                )
+                counts[key] += 1
+        return [LotYield(lot=k, **v) for k, v in sorted(lots.items(), key=lambda kv: str(kv[0]))]
+
+    def nf_statistics(self, *, lot: str | None = None) -> list[FrequencyStats]:
+        """NF mean, standard deviation, min and max per frequency over units' latest runs."""
+        with Session(self.engine) as s:
+            run_ids = [r.id for r in self._latest_complete_runs(s, lot)]
+            if not run_ids:
+                return []
+            rows = s.execute(
+                select(_Point.freq_hz, _Point.nf_db).where(_Point.run_fk.in_(run_ids))
+            ).all()
+        by_freq: dict[float, list[float]] = {}
+        for f, nf in rows:
+            by_freq.setdefault(round(float(f), 3), []).append(float(nf))
+        out = []
+        for f in sorted(by_freq):
+            vals = by_freq[f]
+            n = len(vals)
+            mean = sum(vals) / n
+            std = math.sqrt(sum((v - mean) ** 2 for v in vals) / (n - 1)) if n > 1 else 0.0
+            out.append(
+                FrequencyStats(
+                    freq_hz=f,
+                    count=n,
+                    mean_nf_db=mean,
+                    std_nf_db=std,
+                    min_nf_db=min(vals),
+                    max_nf_db=max(vals),
+                )
+            )
+        return out
+
+    def unit_history(self, serial: str, part_number: str | None = None) -> list[UnitRun]:
+        """Every run of unit ``serial`` (any part number unless given), newest first."""
+        with Session(self.engine) as s:
+            q = select(_Unit.id).where(_Unit.serial == serial)
+            if part_number is not None:
+                q = q.where(_Unit.part_number == part_number)
+            unit_ids = list(s.scalars(q))
+            if not unit_ids:
+                return []
+            stations = dict(s.execute(select(_Station.id, _Station.name)).all())
+            runs = s.scalars(
+                select(_Run).where(_Run.unit_id.in_(unit_ids)).order_by(_Run.started_at.desc())
+            ).all()
+            out = []
+            for r in runs:
+                nfs = [p.nf_db for p in r.points]
+                gains = [p.gain_db for p in r.points if p.gain_db is not None]
+                out.append(
+                    UnitRun(
+                        run_id=r.run_id,
+                        started_at=r.started_at,
+                        station=stations.get(r.station_id),
+                        method=r.method,
+                        status=r.status,
+                        verdict=r.verdict,
+                        max_nf_db=max(nfs) if nfs else None,
+                        min_gain_db=min(gains) if gains else None,
+                    )
+                )
+            return out
+
+    def run_ids(self) -> list[str]:
+        with Session(self.engine) as s:
+            return list(s.scalars(select(_Run.run_id).order_by(_Run.id)))
+
+    def count(self, table: str) -> int:
+        """Row count of one of the tables (for checks and the CLI)."""
+        models = {
+            "stations": _Station,
+            "units": _Unit,
+            "runs": _Run,
+            "points": _Point,
+            "budget_terms": _BudgetTerm,
+        }
+        if table not in models:
+            raise InputError("table", f"unknown table {table!r}", fix=f"one of {sorted(models)}")
+        with Session(self.engine) as s:
+            return int(s.scalar(select(func.count()).select_from(models[table])))
+
+    def close(self) -> None:
+        self.engine.dispose()
+
+    def __enter__(self) -> ResultsDatabase:
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
+
+
+def store_runs(db: ResultsDatabase, records: Iterable[Any], **kw: Any) -> list[int]:
+    """Store several runs; returns their database ids."""
+    return [db.store_run(r, **kw) for r in records]
+
+
+__all__: Sequence[str] = (
+    "ResultsDatabase",
+    "DatabaseError",
+    "LotYield",
+    "FrequencyStats",
+    "UnitRun",
+    "SCHEMA_VERSION",
+    "store_runs",
+)

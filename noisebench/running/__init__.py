@@ -1,0 +1,1 @@
+"""Running a measurement: plans, sequencer, calibration, safety checks, forecast, progress."""

@@ -1,0 +1,222 @@
+"""Stored calibrations: the analyzer floor (gain method) and the system calibration (Y-factor).
+
+How long to calibrate: a calibration is averaged until its own contribution to the NF of a
+*design DUT* is below ``target_ratio x target_u_nf_db``. The design DUT is noiseless
+(Te = 0, the worst case for the relative effect of the second stage) with the design gain:
+the DUT's known gain for the gain method (file or constant), else ``expect.dut_gain_db``, else
+10 dB (the low-gain threshold of the methods: below it points are flagged anyway). The
+calibration's contribution falls roughly as 1/G, so a DUT with more gain than the design gain
+gets a calibration that is better than needed, never worse.
+
+A calibration is measured once with given analyzer settings and kept with those settings and
+its time. It is reused while it is valid: same settings in everything that changes the
+analyzer's own noise (RBW and filter shape, VBW, detector, averaging scale, reference level,
+attenuation, preamp, sweep mode), every frequency covered, and younger than ``max_age_s``.
+Otherwise it is measured again. The store serialises to the dict kept in the run's
+``run.json`` so an interrupted run resumes with its calibration.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable
+from datetime import datetime, timezone
+from enum import Enum
+from typing import Any
+
+from pydantic import BaseModel, ConfigDict, Field
+
+from noisebench.bench.acquisition import AcquisitionSettings
+from noisebench.errors import InputError, MeasurementError
+from noisebench.science.density import NoiseDensity
+from noisebench.science.physics import BOLTZMANN_J_PER_K, DB_PER_NEPER_POWER, T0_K
+
+SETTINGS_THAT_MATTER = (
+    "rbw_hz",
+    "rbw_filter",
+    "vbw_hz",
+    "detector",
+    "averaging_scale",
+    "ref_level_dbm",
+    "attenuation_db",
+    "preamp",
+    "mode",
+)
+"""Applied settings that change the analyzer's own noise density (centre, span, points and
+averages do not)."""
+
+FREQ_REL_TOL = 1e-9
+
+
+class CalibrationKind(str, Enum):
+    FLOOR = "floor"  # analyzer input terminated: the gain method's second-stage reading
+    SYSTEM = "system"  # noise source straight into the analyzer: Y-factor second stage
+
+
+def _now() -> datetime:
+    return datetime.now(timezone.utc)
+
+
+def settings_match(a: AcquisitionSettings, b: AcquisitionSettings) -> bool:
+    """True when two applied settings give the same analyzer noise (see SETTINGS_THAT_MATTER)."""
+    return all(getattr(a, name) == getattr(b, name) for name in SETTINGS_THAT_MATTER)
+
+
+class CalibrationEntry(BaseModel):
+    """One calibration: densities per frequency measured with one set of applied settings.
+
+    ``densities`` maps a reading name to one density per frequency of ``freqs_hz``:
+    ``{"floor": [...]}`` or ``{"hot": [...], "cold": [...]}``. Temperatures in K.
+    """
+
+    model_config = ConfigDict(extra="forbid")
+
+    kind: CalibrationKind
+    settings: AcquisitionSettings
+    freqs_hz: list[float] = Field(min_length=1)
+    densities: dict[str, list[NoiseDensity]]
+    measured_at: datetime = Field(default_factory=_now)
+    cold_temperature_k: float | None = Field(default=None, gt=0)
+    instrument_time_s: float | None = Field(default=None, ge=0)
+    stopped_by: str = Field(default="target", description="target, time_limit or max_averages")
+    summary: list[dict[str, Any]] = Field(default_factory=list)
+
+    def index_of(self, freq_hz: float) -> int | None:
+        for i, f in enumerate(self.freqs_hz):
+            if math.isclose(f, freq_hz, rel_tol=FREQ_REL_TOL):
+                return i
+        return None
+
+    def covers(self, freqs_hz: Iterable[float]) -> bool:
+        return all(self.index_of(f) is not None for f in freqs_hz)
+
+    def reading(self, name: str, freq_hz: float) -> NoiseDensity:
+        """The stored density ``name`` at ``freq_hz``."""
+        i = self.index_of(freq_hz)
+        if i is None or name not in self.densities:
+            raise InputError(
+                "calibration",
+                f"no {name!r} reading at {freq_hz:.9g} Hz",
+                fix="calibrate at the frequencies you measure",
+            )
+        return self.densities[name][i]
+
+    def age_s(self, now: datetime | None = None) -> float:
+        return ((now or _now()) - self.measured_at).total_seconds()
+
+    def valid_for(
+        self,
+        kind: CalibrationKind,
+        settings: AcquisitionSettings,
+        freqs_hz: Iterable[float],
+        *,
+        max_age_s: float,
+        now: datetime | None = None,
+    ) -> bool:
+        return (
+            self.kind is kind
+            and settings_match(self.settings, settings)
+            and self.covers(freqs_hz)
+            and self.age_s(now) <= max_age_s
+        )
+
+
+class CalibrationStore:
+    """The calibrations of a bench session (shared by runs on the same bench)."""
+
+    def __init__(self, entries: Iterable[CalibrationEntry] = ()) -> None:
+        self.entries: list[CalibrationEntry] = list(entries)
+
+    def find(
+        self,
+        kind: CalibrationKind,
+        settings: AcquisitionSettings,
+        freqs_hz: Iterable[float],
+        *,
+        max_age_s: float,
+    ) -> CalibrationEntry | None:
+        """The newest valid calibration for these settings and frequencies, or None."""
+        freqs = list(freqs_hz)
+        for entry in reversed(self.entries):
+            if entry.valid_for(kind, settings, freqs, max_age_s=max_age_s):
+                return entry
+        return None
+
+    def add(self, entry: CalibrationEntry) -> None:
+        self.entries.append(entry)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-able form (for ``RunWriter.save_calibration``)."""
+        return {"entries": [e.model_dump(mode="json") for e in self.entries]}
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any] | None) -> CalibrationStore:
+        """Rebuild from :meth:`to_dict` output (None or foreign dicts give an empty store)."""
+        if not data or "entries" not in data:
+            return cls()
+        return cls(CalibrationEntry.model_validate(e) for e in data["entries"])
+
+
+# --------------------------------------------------------------------------- sizing
+
+
+DEFAULT_DESIGN_GAIN_DB = 10.0
+
+
+def floor_design_u_db(
+    floor: NoiseDensity, path_gain_db: float, *, source_temperature_k: float, t0_k: float = T0_K
+) -> float:
+    """NF uncertainty (dB) that the floor reading alone gives a noiseless DUT of this gain."""
+    from noisebench.science.methods.gain import gain_method_point
+
+    ts = source_temperature_k
+    analyzer_noise = max(floor.density_w_per_hz - BOLTZMANN_J_PER_K * ts, 0.0)
+    dut_density = BOLTZMANN_J_PER_K * ts * 10 ** (path_gain_db / 10) + analyzer_noise
+    dut = NoiseDensity(freq_hz=floor.freq_hz, density_w_per_hz=dut_density, u_density_w_per_hz=0.0)
+    try:
+        point = gain_method_point(
+            dut, path_gain_db, floor=floor, source_temperature_k=ts, t0_k=t0_k
+        )
+    except MeasurementError:
+        return floor.relative_u * DB_PER_NEPER_POWER
+    return point.u_nf_db
+
+
+def system_design_u_db(
+    hot: NoiseDensity,
+    cold: NoiseDensity,
+    enr_db: float,
+    *,
+    cold_temperature_k: float,
+    design_gain_db: float,
+    t0_k: float = T0_K,
+) -> float:
+    """NF uncertainty (dB) that the system calibration alone gives a noiseless design DUT.
+
+    With the DUT (gain G, Te = 0) the readings scale as ``G Th + Te2`` and ``G Tc + Te2``
+    in the units of the calibration readings ``Th + Te2`` and ``Tc + Te2``."""
+    from noisebench.science.methods.yfactor import (
+        calibrate_point,
+        hot_temperature_k,
+        y_factor_point,
+    )
+
+    tc = cold_temperature_k
+    try:
+        cal = calibrate_point(hot, cold, enr_db, cold_temperature_k=tc, t0_k=t0_k)
+    except MeasurementError:
+        return math.inf
+    g = 10 ** (design_gain_db / 10)
+    th = float(hot_temperature_k(10 ** (enr_db / 10), tc, t0_k))
+    scale = cold.density_w_per_hz / (tc + cal.te_k)
+    f = hot.freq_hz
+    dut_hot = NoiseDensity(
+        freq_hz=f, density_w_per_hz=scale * (g * th + cal.te_k), u_density_w_per_hz=0.0
+    )
+    dut_cold = NoiseDensity(
+        freq_hz=f, density_w_per_hz=scale * (g * tc + cal.te_k), u_density_w_per_hz=0.0
+    )
+    point = y_factor_point(
+        dut_hot, dut_cold, enr_db, cold_temperature_k=tc, calibration=cal, t0_k=t0_k
+    )
+    return point.u_nf_db

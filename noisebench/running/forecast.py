@@ -1,0 +1,448 @@
+"""Forecast a plan without touching an instrument: instrument time and expected uncertainty.
+
+For each group of points (the sequencer's grouping) the forecast
+
+1. takes the analyzer settings: on a ``sim://`` bench the simulated analyzer's own rounding and
+   sweep-time model (a model, no instrument); otherwise the plan's settings with the swept
+   sweep time ``k * span / (RBW * min(RBW, VBW))`` (``expect.sweep_time_factor``, common
+   practice k = 2.5) and ``detector_samples = B_stat * sweep_time / points``;
+2. predicts the relative variance of one trace's band-averaged density from the radiometer
+   equation in the form the estimator uses: the point model of the detector and averaging scale
+   (:mod:`noisebench.science.detection`) times the correlation sum of the points in the band
+   (:func:`noisebench.science.filters.frequency_power_correlation`); in zero span with a power
+   detector
+   it is the radiometer equation itself, ``1 / (B_stat * sweep_time)``;
+3. builds the densities the method will read from the priors (DUT NF and gain, analyzer NF,
+   ENR, temperatures: ``[expect]`` or, on the simulator, the scenario's declared models) and
+   propagates their relative uncertainty through the method itself, which gives the NF
+   uncertainty for one average per reading; ``u ~ 1/sqrt(averages)`` then gives the averages
+   that reach the target and, with the trace time, the instrument time, capped by the limits.
+
+It is a forecast: the adaptive sequencer measures what it needs; the forecast says what to
+expect and which points will hit their time limit.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from noisebench.bench.acquisition import AcquisitionSettings, Detector, SweepMode
+from noisebench.errors import InputError, MeasurementError
+from noisebench.running.plan import Plan
+from noisebench.running.sequencer import PointGroup, plan_groups
+from noisebench.science.density import NoiseDensity
+from noisebench.science.filters import GAUSSIAN, frequency_power_correlation
+from noisebench.science.physics import BOLTZMANN_J_PER_K, T0_K
+from noisebench.science.point import Method
+
+DEFAULT_ZERO_SPAN_SWEEP_S = 1e-3
+MIN_SWEEP_TIME_S = 1e-3  # common practice: analyzers rarely sweep faster than about 1 ms
+CORRELATION_FLOOR = 1e-6
+
+
+# --------------------------------------------------------------------------- radiometer
+
+
+def band_relative_variance(
+    settings: AcquisitionSettings, freq_hz: float, band_hz: float | None
+) -> float:
+    """Predicted Var/mean^2 of one trace's density estimate over ``band_hz`` around ``freq_hz``.
+
+    Uses the applied settings (averages, detector samples, filter shape, points)."""
+    from noisebench.science.detection import point_model_for
+
+    model = point_model_for(settings, field="settings")
+    rel_var_point = model.relative_variance()
+    bstat = settings.rbw_filter.stat_bw_hz(settings.rbw_hz)
+    if settings.span_hz == 0 or settings.points == 1:
+        sweep = settings.sweep_time_s or DEFAULT_ZERO_SPAN_SWEEP_S
+        if settings.detector is not Detector.SAMPLE:
+            return 1.0 / (settings.averages * max(1.0, bstat * sweep))  # radiometer equation
+        return rel_var_point * min(1.0, 1.0 / settings.points + 1.0 / (bstat * sweep))
+    freqs = settings.frequencies_hz()
+    half = (band_hz if band_hz is not None else settings.span_hz) / 2
+    n = int(np.count_nonzero(np.abs(freqs - freq_hz) <= half * (1 + 1e-9)))
+    if n < 1:
+        raise InputError("band_hz", f"the band around {freq_hz:.6g} Hz holds no trace point")
+    spacing = settings.span_hz / (settings.points - 1)
+    lags = np.arange(1, n, dtype=float)
+    rho = frequency_power_correlation(settings.rbw_filter, lags * spacing, settings.rbw_hz)
+    corr = model.correlation(rho) if lags.size else np.zeros(0)
+    s1 = n + 2.0 * float(np.sum((n - lags) * corr))
+    return rel_var_point * s1 / n**2
+
+
+def swept_time_s(span_hz: float, rbw_hz: float, vbw_hz: float | None, factor: float) -> float:
+    """Sweep time of a swept analyzer, ``k span / (RBW min(RBW, VBW))``, at least 1 ms, s."""
+    narrow = min(rbw_hz, vbw_hz) if vbw_hz else rbw_hz
+    return max(MIN_SWEEP_TIME_S, factor * span_hz / (rbw_hz * narrow))
+
+
+def nominal_settings(
+    group: PointGroup, averages: int, sweep_time_factor: float
+) -> AcquisitionSettings:
+    """Settings a generic swept analyzer would apply for ``group`` (no rounding)."""
+    p = group.policy
+    if group.span_hz == 0:
+        sweep = p.sweep_time_s or DEFAULT_ZERO_SPAN_SWEEP_S
+    else:
+        sweep = p.sweep_time_s or swept_time_s(group.span_hz, p.rbw_hz, p.vbw_hz, sweep_time_factor)
+    samples = None
+    if p.detector is not Detector.SAMPLE:
+        samples = max(1.0, round(GAUSSIAN.stat_bw_hz(p.rbw_hz) * sweep / group.trace_points))
+    return AcquisitionSettings(
+        center_hz=group.center_hz,
+        span_hz=group.span_hz,
+        rbw_hz=p.rbw_hz,
+        vbw_hz=p.vbw_hz,
+        detector=p.detector,
+        averaging_scale=p.averaging_scale,
+        averages=averages,
+        points=group.trace_points,
+        attenuation_db=p.attenuation_db,
+        preamp=p.preamp,
+        mode=SweepMode.SWEPT,
+        sweep_time_s=sweep,
+        detector_samples=samples,
+    )
+
+
+# --------------------------------------------------------------------------- priors
+
+
+@dataclass(frozen=True)
+class Priors:
+    """What is expected at one frequency: densities at the analyzer, W/Hz (relative scale)."""
+
+    readings: dict[str, float]  # dut/floor or hot/cold/hot_cal/cold_cal
+    enr_db: float | None
+    gain_db: float
+    source_temperature_k: float
+    t0_k: float
+
+
+def _declared_priors(plan: Plan, freq_hz: float, source_k: float) -> Priors:
+    e = plan.expect
+    missing = [
+        name
+        for name, value in (
+            ("dut_nf_db", e.dut_nf_db),
+            ("dut_gain_db", e.dut_gain_db),
+            ("analyzer_nf_db", e.analyzer_nf_db),
+        )
+        if value is None
+    ]
+    if plan.method is Method.Y_FACTOR and e.enr_db is None and plan.enr.table is None:
+        missing.append("enr_db")
+    if missing:
+        raise InputError(
+            f"expect.{missing[0]}",
+            "is needed to forecast a plan on real instruments",
+            fix=f"declare {', '.join(missing)} in [expect]",
+        )
+    t0 = plan.corrections.t0_k
+    te1 = t0 * (10 ** (e.dut_nf_db / 10) - 1)  # type: ignore[operator]
+    te_sa = t0 * (10 ** (e.analyzer_nf_db / 10) - 1)  # type: ignore[operator]
+    g = 10 ** (e.dut_gain_db / 10)  # type: ignore[operator]
+    enr_db = e.enr_db
+    if plan.method is Method.Y_FACTOR and enr_db is None:
+        from noisebench.science.enr import EnrTable
+
+        table = EnrTable.from_csv(plan.resolve_path(str(plan.enr.table)))
+        enr_db = float(table.at(freq_hz, extrapolate="clamp").enr_db)
+    k = BOLTZMANN_J_PER_K
+    ts = source_k
+    if plan.method is Method.GAIN:
+        readings = {"dut": k * (g * (ts + te1) + te_sa), "floor": k * (ts + te_sa)}
+    else:
+        th = t0 * 10 ** (enr_db / 10) + ts  # type: ignore[operator]
+        readings = {
+            "hot": k * (g * (th + te1) + te_sa),
+            "cold": k * (g * (ts + te1) + te_sa),
+            "hot_cal": k * (th + te_sa),
+            "cold_cal": k * (ts + te_sa),
+        }
+    return Priors(readings, enr_db, float(e.dut_gain_db), ts, t0)  # type: ignore[arg-type]
+
+
+def _simulated_priors(plan: Plan, sim: Any, freq_hz: float) -> Priors:
+    truth = sim.truth(freq_hz)
+
+    def get(name: str) -> float:
+        return float(np.asarray(truth[name]).ravel()[0])
+
+    if plan.method is Method.GAIN:
+        readings = {
+            "dut": get("displayed_dut_cold_w_per_hz"),
+            "floor": get("displayed_termination_cold_w_per_hz"),
+        }
+        ts = get("ambient_k")
+        enr = None
+    else:
+        readings = {
+            "hot": get("displayed_dut_hot_w_per_hz"),
+            "cold": get("displayed_dut_cold_w_per_hz"),
+            "hot_cal": get("displayed_through_hot_w_per_hz"),
+            "cold_cal": get("displayed_through_cold_w_per_hz"),
+        }
+        ts = get("cold_k")
+        enr = get("enr_table_db")
+    gain = get("gain_db") - get("input_loss_db") - get("output_loss_db")
+    return Priors(readings, enr, gain, ts, plan.corrections.t0_k)
+
+
+# --------------------------------------------------------------------------- one point
+
+
+def _density(freq_hz: float, value: float, rel_u: float) -> NoiseDensity:
+    return NoiseDensity(freq_hz=freq_hz, density_w_per_hz=value, u_density_w_per_hz=value * rel_u)
+
+
+def point_uncertainty_db(
+    method: Method, freq_hz: float, priors: Priors, rel_u: dict[str, float]
+) -> float:
+    """NF standard uncertainty (dB) for readings with relative uncertainties ``rel_u``."""
+    r = priors.readings
+    if method is Method.GAIN:
+        from noisebench.science.methods.gain import gain_method_point
+
+        point = gain_method_point(
+            _density(freq_hz, r["dut"], rel_u.get("dut", 0.0)),
+            priors.gain_db,
+            floor=_density(freq_hz, r["floor"], rel_u.get("floor", 0.0)),
+            source_temperature_k=priors.source_temperature_k,
+            t0_k=priors.t0_k,
+        )
+        return point.u_nf_db
+    from noisebench.science.methods.yfactor import calibrate_point, y_factor_point
+
+    cal = calibrate_point(
+        _density(freq_hz, r["hot_cal"], rel_u.get("hot_cal", 0.0)),
+        _density(freq_hz, r["cold_cal"], rel_u.get("cold_cal", 0.0)),
+        float(priors.enr_db),
+        cold_temperature_k=priors.source_temperature_k,
+        t0_k=priors.t0_k,
+    )
+    point = y_factor_point(
+        _density(freq_hz, r["hot"], rel_u.get("hot", 0.0)),
+        _density(freq_hz, r["cold"], rel_u.get("cold", 0.0)),
+        float(priors.enr_db),
+        cold_temperature_k=priors.source_temperature_k,
+        calibration=cal,
+        t0_k=priors.t0_k,
+    )
+    return point.u_nf_db
+
+
+@dataclass(frozen=True)
+class PointForecast:
+    """Forecast for one frequency: averages per reading, instrument time (s), u (dB)."""
+
+    freq_hz: float
+    averages: int
+    calibration_averages: int
+    time_s: float
+    calibration_time_s: float
+    u_nf_db: float
+    target_u_nf_db: float
+    limited_by: str | None  # None, "time_limit", "max_averages", "calibration"
+
+
+@dataclass
+class PlanForecast:
+    points: list[PointForecast]
+
+    @property
+    def measurement_time_s(self) -> float:
+        return sum(p.time_s for p in self.points)
+
+    @property
+    def calibration_time_s(self) -> float:
+        return sum(p.calibration_time_s for p in self.points)
+
+    @property
+    def total_time_s(self) -> float:
+        return self.measurement_time_s + self.calibration_time_s
+
+    def format(self) -> str:
+        from noisebench.running.progress import format_duration, format_freq
+
+        lines = [
+            f"{'freq':>12} {'averages':>9} {'cal avg':>8} {'time':>10} "
+            f"{'u NF dB':>8} {'target':>7}  note"
+        ]
+        for p in self.points:
+            lines.append(
+                f"{format_freq(p.freq_hz):>12} {p.averages:>9d} "
+                f"{p.calibration_averages:>8d} {format_duration(p.time_s):>10} "
+                f"{p.u_nf_db:>8.4f} {p.target_u_nf_db:>7.3f}  {p.limited_by or ''}"
+            )
+        limited = sum(1 for p in self.points if p.limited_by)
+        lines.append(
+            f"{len(self.points)} points: measurement "
+            f"{format_duration(self.measurement_time_s)}, calibration "
+            f"{format_duration(self.calibration_time_s)}, total "
+            f"{format_duration(self.total_time_s)} of instrument time"
+            + (f"; {limited} point(s) will not reach the target" if limited else "")
+        )
+        return "\n".join(lines)
+
+
+def _group_settings(plan: Plan, group: PointGroup, sim: Any) -> tuple[AcquisitionSettings, float]:
+    """(applied settings for 1 average, instrument seconds per trace average)."""
+    if sim is not None:
+        analyzer = sim.analyzer
+        one = analyzer.configure(group.request(1))
+        t1 = analyzer.expected_acquisition_time_s()
+        analyzer.configure(group.request(11))
+        t11 = analyzer.expected_acquisition_time_s()
+        per_average = (t11 - t1) / 10.0
+        return one, per_average + max(t1 - per_average, 0.0) / 8.0
+    settings = nominal_settings(group, 1, plan.expect.sweep_time_factor)
+    return settings, float(settings.sweep_time_s) + plan.expect.overhead_s / 8.0
+
+
+def forecast_plan(plan: Plan, *, sim: Any = None) -> PlanForecast:
+    """Forecast every point of ``plan``. ``sim``: a SimulatedBench for ``sim://`` plans."""
+    if sim is None and plan.is_simulated:
+        from noisebench.running.plan import parse_sim_address
+        from noisebench.sims.bench import SimulatedBench
+
+        address = parse_sim_address(plan.bench.analyzer.resource)
+        sim = SimulatedBench.from_scenario(address.scenario, seed=address.seed)
+    source_k = _source_temperature(plan, sim)
+    settle_s = (
+        sim.noise_source.settle_time_s if sim is not None else plan.bench.noise_source.settle_time_s
+    )
+    out: list[PointForecast] = []
+    for group in plan_groups(plan.points()):
+        settings, per_average_s = _group_settings(plan, group, sim)
+        for f in group.freqs_hz:
+            priors = (
+                _simulated_priors(plan, sim, f)
+                if sim is not None
+                else _declared_priors(plan, f, source_k)
+            )
+            rel = math.sqrt(band_relative_variance(settings, f, group.band_hz))
+            out.append(
+                _forecast_point(
+                    plan, group, f, priors, rel, per_average_s, len(group.freqs_hz), settle_s
+                )
+            )
+    return PlanForecast(out)
+
+
+def _source_temperature(plan: Plan, sim: Any) -> float:
+    value = plan.corrections.source_temperature_k
+    if value != "bench":
+        return float(value)
+    if sim is not None:
+        return float(
+            sim.noise_source.cold_temperature_k if plan.method is Method.Y_FACTOR else sim.ambient_k
+        )
+    return plan.bench.ambient_k or T0_K
+
+
+def _design_gain_db(plan: Plan, priors: Priors) -> float:
+    """The gain the sequencer sizes calibrations for (see noisebench.running.calibration)."""
+    from noisebench.running.calibration import DEFAULT_DESIGN_GAIN_DB
+
+    if plan.method is Method.GAIN and plan.gain is not None:
+        if plan.gain.source == "constant":
+            return float(plan.gain.value_db)  # type: ignore[arg-type]
+        if plan.gain.source == "file":
+            return priors.gain_db
+    if plan.expect.dut_gain_db is not None:
+        return plan.expect.dut_gain_db
+    return DEFAULT_DESIGN_GAIN_DB
+
+
+def _calibration_design_u1(plan: Plan, freq_hz: float, priors: Priors, rel1: float) -> float:
+    """Design-DUT NF uncertainty of a calibration with one average per reading, dB."""
+    from noisebench.running.calibration import floor_design_u_db, system_design_u_db
+
+    r = priors.readings
+    if plan.method is Method.GAIN:
+        return floor_design_u_db(
+            _density(freq_hz, r["floor"], rel1),
+            _design_gain_db(plan, priors),
+            source_temperature_k=priors.source_temperature_k,
+            t0_k=priors.t0_k,
+        )
+    return system_design_u_db(
+        _density(freq_hz, r["hot_cal"], rel1),
+        _density(freq_hz, r["cold_cal"], rel1),
+        float(priors.enr_db),
+        cold_temperature_k=priors.source_temperature_k,
+        design_gain_db=_design_gain_db(plan, priors),
+        t0_k=priors.t0_k,
+    )
+
+
+def _switching_s(plan: Plan, n: int, policy: Any, settle_s: float) -> float:
+    """Noise-source settling of hot-cold-cold-hot rounds: a pilot round and one top-up."""
+    if plan.method is not Method.Y_FACTOR:
+        return 0.0
+    rounds = 1 if n <= policy.min_averages else 2
+    return (2 * rounds + 1) * settle_s
+
+
+def _forecast_point(
+    plan: Plan,
+    group: PointGroup,
+    freq_hz: float,
+    priors: Priors,
+    rel1: float,
+    per_average_s: float,
+    share: int,
+    settle_s: float,
+) -> PointForecast:
+    policy = group.policy
+    target = policy.target_u_nf_db
+    meas, cal = (
+        (("hot", "cold"), ("hot_cal", "cold_cal"))
+        if plan.method is Method.Y_FACTOR
+        else (("dut",), ("floor",))
+    )
+    try:
+        u_meas1 = point_uncertainty_db(plan.method, freq_hz, priors, dict.fromkeys(meas, rel1))
+        u_design1 = _calibration_design_u1(plan, freq_hz, priors, rel1)
+    except MeasurementError:
+        return PointForecast(freq_hz, 0, 0, 0.0, 0.0, math.inf, target, "no signal")
+    n_cal = _clip(math.ceil((u_design1 / (plan.calibration.target_ratio * target)) ** 2), policy)
+    n_cal = min(
+        n_cal, max(1, int((policy.time_limit_s * share - settle_s) / (len(cal) * per_average_s)))
+    )
+    cal_time = (
+        n_cal * len(cal) * per_average_s + _switching_s(plan, n_cal, policy, settle_s)
+    ) / share
+    u_fix = point_uncertainty_db(
+        plan.method, freq_hz, priors, dict.fromkeys(cal, rel1 / math.sqrt(n_cal))
+    )
+    room = target**2 - u_fix**2
+    limited = None
+    if room <= 0:
+        n, limited = policy.max_averages, "calibration"
+    else:
+        n = _clip(math.ceil(u_meas1**2 / room), policy)
+        if n == policy.max_averages and u_meas1**2 / n > room:
+            limited = "max_averages"
+    time_s = (n * len(meas) * per_average_s + _switching_s(plan, n, policy, settle_s)) / share
+    if time_s > policy.time_limit_s:
+        n = max(1, int((policy.time_limit_s * share - 5 * settle_s) / (len(meas) * per_average_s)))
+        time_s = (n * len(meas) * per_average_s + _switching_s(plan, n, policy, settle_s)) / share
+        limited = limited or "time_limit"
+    u = math.sqrt(u_meas1**2 / n + u_fix**2)
+    if u <= target * (1 + 1e-9):
+        limited = None
+    return PointForecast(
+        freq_hz, n * len(meas), n_cal * len(cal), time_s, cal_time, u, target, limited
+    )
+
+
+def _clip(n: int, policy: Any) -> int:
+    return int(min(max(n, policy.min_averages), policy.max_averages))

@@ -1,0 +1,1145 @@
+"""Measurement plans: one TOML file that says what to measure, how, and on which bench.
+
+A plan is validated completely before any instrument is touched. Every problem is reported on
+its own line with the key path that holds it (``sweep.segments[2].rbw_hz: must be > 0``), the
+schema checks (pydantic, ``extra="forbid"``) and the cross-field checks (ENR table covers the
+sweep, gain source complete for the gain method, ...) together, so one edit fixes them all.
+
+Units: Hz, s, K, dB, dBm, as the field names say. Relative file paths in a plan are relative to
+the folder of the plan file.
+
+Layout (all sections but ``bench`` and ``sweep`` optional)::
+
+    method = "y_factor"                 # or "gain"
+    operator = "..."; station = "..."
+    [dut]          id, description
+    [bench]        analyzer, noise_source, generator, connect, ambient_k
+    [acquisition]  rbw_hz, span_hz, detector, averaging_scale, target_u_nf_db, time_limit_s, ...
+    [sweep]        freqs_hz = [...]  and/or  [[sweep.segments]] (ranges with their own settings)
+    [enr]          table, extrapolate
+    [corrections]  input_loss, output_loss, source_temperature_k, t0_k
+    [gain]         source = "measure" | "file" | "constant"  (gain method)
+    [calibration]  max_age_s, averages policy
+    [safety]       DUT bandwidth / gain bounds, analyzer input limits
+    [expect]       prior NF / gain / analyzer noise for `noisebench estimate`
+    [output]       folder, plots, report
+    [uncertainty]  budget inputs (noisebench.science.uncertainty)
+    [limits]       pass/fail mask (noisebench.science.limits)
+"""
+
+from __future__ import annotations
+
+import math
+import re
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Literal
+
+import numpy as np
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    PrivateAttr,
+    ValidationError,
+    ValidationInfo,
+    field_validator,
+    model_validator,
+)
+
+from noisebench.bench.acquisition import AveragingScale, Detector, SweepMode
+from noisebench.errors import InputError
+from noisebench.science.point import Method
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover - exercised on Python 3.10 only
+    import tomli as tomllib
+
+try:  # budget inputs and limit masks belong to their own modules; accept plain tables until then
+    from noisebench.science.uncertainty import UncertaintyInputs as _UncertaintySection
+except ImportError:  # pragma: no cover - depends on the tree's state
+    _UncertaintySection = dict[str, Any]  # type: ignore[misc,assignment]
+try:
+    from noisebench.science.limits import LimitMask as _LimitsSection
+except ImportError:  # pragma: no cover
+    _LimitsSection = dict[str, Any]  # type: ignore[misc,assignment]
+
+T0_DEFAULT_K = 290.0
+
+_STRICT = ConfigDict(extra="forbid", validate_default=True, allow_inf_nan=False)
+#: the most frequency points one segment may hold (a typo in step_hz must not exhaust memory)
+MAX_SEGMENT_POINTS = 100_000
+#: the largest constant loss a plan accepts, dB (beyond it the noise figure is unmeasurable)
+MAX_LOSS_DB = 100.0
+#: the smallest statistical target, dB: 1e-3 dB needs >= 2 (4.343 / 1e-3)^2 ~ 4e7 independent
+#: samples by the radiometer equation (far beyond max_averages); smaller is a typo
+MIN_TARGET_U_NF_DB = 1e-3
+
+
+class PlanError(InputError):
+    """A plan with one or more problems; ``problems`` holds one line per problem."""
+
+    def __init__(self, problems: list[str], *, source: str | None = None) -> None:
+        self.problems = list(problems)
+        self.source = source
+        where = f"{source}: " if source else ""
+        head = f"{where}{len(self.problems)} problem(s) in the plan"
+        super().__init__(
+            "plan", head + ": " + "; ".join(self.problems), fix="correct each key named above"
+        )
+
+
+# --------------------------------------------------------------------------- sections
+
+
+class DutSection(BaseModel):
+    """Identity of the device under test."""
+
+    model_config = _STRICT
+    id: str | None = Field(default=None, max_length=200)
+    description: str | None = Field(default=None, max_length=2000)
+
+
+class AnalyzerSection(BaseModel):
+    """Spectrum analyzer: a resource string (VISA or ``sim://<scenario>?seed=N``)."""
+
+    model_config = _STRICT
+    resource: str = Field(min_length=1)
+    profile: str = "generic"
+    timeout_s: float = Field(default=10.0, gt=0)
+    max_input_dbm: float | None = Field(
+        default=None, description="rated maximum total RF input, dBm (overrides the driver's)"
+    )
+    compression_dbm: float | None = Field(
+        default=None, description="total input power for 1 dB compression at 0 dB attenuation"
+    )
+
+
+class NoiseSourceSection(BaseModel):
+    """How the noise source is switched.
+
+    ``drive``: ``auto`` (the simulated bench's source, else the analyzer's drive output),
+    ``analyzer`` (analyzer's noise-source drive output), ``supply`` (a SCPI DC supply at
+    ``resource``), ``operator`` (prompt the operator), ``none`` (gain method without a source).
+    """
+
+    model_config = _STRICT
+    drive: Literal["auto", "analyzer", "supply", "operator", "none"] = "auto"
+    resource: str | None = None
+    profile: str = "generic"
+    drive_v: float | None = Field(default=None, gt=0, le=60)
+    current_limit_a: float = Field(default=0.06, gt=0, le=5)
+    max_drive_v: float = Field(default=30.0, gt=0, le=60)
+    settle_time_s: float = Field(default=0.05, ge=0, le=60)
+
+    @model_validator(mode="after")
+    def _check(self) -> NoiseSourceSection:
+        if self.drive == "supply" and not self.resource:
+            raise InputError(
+                "resource",
+                "a supply-driven noise source needs the supply's resource string",
+                fix='e.g. resource = "TCPIP0::10.0.0.5::5025::SOCKET"',
+            )
+        if self.drive_v is not None and self.drive_v > self.max_drive_v:
+            raise InputError(
+                "drive_v",
+                f"{self.drive_v} V exceeds max_drive_v {self.max_drive_v} V",
+                fix="lower drive_v or raise max_drive_v",
+            )
+        return self
+
+
+class GeneratorSection(BaseModel):
+    """CW signal generator for measured DUT gain."""
+
+    model_config = _STRICT
+    resource: str = Field(min_length=1)
+    profile: str = "generic"
+    timeout_s: float = Field(default=10.0, gt=0)
+    max_level_dbm: float = Field(
+        default=0.0, le=30.0, description="highest level the sequencer may ever set, dBm"
+    )
+
+
+class BenchSection(BaseModel):
+    """The instruments. A plain string for an instrument is shorthand for its resource."""
+
+    model_config = _STRICT
+    analyzer: AnalyzerSection
+    noise_source: NoiseSourceSection = Field(default_factory=NoiseSourceSection)
+    generator: GeneratorSection | None = None
+    connect: Literal["auto", "operator"] = Field(
+        default="auto",
+        description="auto: the simulator moves the paths itself; "
+        "operator: always prompt to move cables",
+    )
+    ambient_k: float | None = Field(default=None, gt=0, le=400)
+
+    @field_validator("analyzer", "generator", mode="before")
+    @classmethod
+    def _resource_shorthand(cls, value: Any) -> Any:
+        return {"resource": value} if isinstance(value, str) else value
+
+
+class AcquisitionPolicy(BaseModel):
+    """How each frequency point is acquired; segments may override any field.
+
+    ``span_hz`` is the band integrated around each point (0 = zero span at the point).
+    ``target_u_nf_db`` is the standard uncertainty (statistical part) to reach per point;
+    averaging stops there, or at ``max_averages``, or when ``time_limit_s`` of instrument time
+    per point is used up (flag ``time_limit``).
+    """
+
+    model_config = _STRICT
+    rbw_hz: float = Field(default=1e6, gt=0)
+    vbw_hz: float | None = Field(default=None, gt=0)
+    span_hz: float = Field(default=10e6, ge=0)
+    trace_points: int | None = Field(
+        default=None, ge=3, le=100_001, description="points per trace (None: about 2 per RBW)"
+    )
+    detector: Detector = Detector.RMS
+    averaging_scale: AveragingScale = AveragingScale.POWER
+    mode: SweepMode = SweepMode.SWEPT
+    sweep_time_s: float | None = Field(default=None, gt=0)
+    attenuation_db: float | None = Field(default=None, ge=0, le=100)
+    preamp: bool | None = None
+    ref_level_dbm: float | None = None
+    min_averages: int = Field(default=4, ge=1, le=1_000_000)
+    max_averages: int = Field(default=20_000, ge=1, le=1_000_000)
+    target_u_nf_db: float = Field(default=0.05, ge=MIN_TARGET_U_NF_DB, le=10)
+    time_limit_s: float = Field(default=30.0, gt=0)
+    max_trace_span_hz: float = Field(
+        default=0.0, ge=0, description="points whose bands fit in one trace this wide share it"
+    )
+    min_band_fill: float = Field(
+        default=0.5, gt=0, le=1, description="share of a shared trace that must lie in bands"
+    )
+
+    @field_validator("detector", mode="after")
+    @classmethod
+    def _noise_detector(cls, value: Detector) -> Detector:
+        if value in (Detector.PEAK, Detector.NEGATIVE_PEAK):
+            raise InputError(
+                "detector",
+                f"{value.value!r} is biased for noise by an amount that depends on the sweep",
+                fix='use "rms" or "sample"',
+            )
+        return value
+
+    @model_validator(mode="after")
+    def _check(self) -> AcquisitionPolicy:
+        if self.min_averages > self.max_averages:
+            raise InputError(
+                "min_averages",
+                f"{self.min_averages} exceeds max_averages {self.max_averages}",
+                fix="make min_averages <= max_averages",
+            )
+        if 0 < self.span_hz < self.rbw_hz:
+            raise InputError(
+                "span_hz",
+                f"{self.span_hz:g} Hz is narrower than rbw_hz {self.rbw_hz:g} Hz",
+                fix="use span_hz >= rbw_hz, or 0 for zero span",
+            )
+        return self
+
+
+_POLICY_FIELDS = tuple(AcquisitionPolicy.model_fields)
+
+
+class Segment(BaseModel):
+    """Frequencies (a list, or a linear/log range) with optional acquisition overrides."""
+
+    model_config = _STRICT
+    freqs_hz: list[float] | None = None
+    start_hz: float | None = Field(default=None, gt=0)
+    stop_hz: float | None = Field(default=None, gt=0)
+    points: int | None = Field(default=None, ge=1, le=MAX_SEGMENT_POINTS)
+    step_hz: float | None = Field(default=None, gt=0)
+    spacing: Literal["linear", "log"] = "linear"
+    # acquisition overrides (None: the plan's [acquisition] value)
+    rbw_hz: float | None = Field(default=None, gt=0)
+    vbw_hz: float | None = Field(default=None, gt=0)
+    span_hz: float | None = Field(default=None, ge=0)
+    trace_points: int | None = Field(default=None, ge=3, le=100_001)
+    detector: Detector | None = None
+    averaging_scale: AveragingScale | None = None
+    mode: SweepMode | None = None
+    sweep_time_s: float | None = Field(default=None, gt=0)
+    attenuation_db: float | None = Field(default=None, ge=0, le=100)
+    preamp: bool | None = None
+    ref_level_dbm: float | None = None
+    min_averages: int | None = Field(default=None, ge=1, le=1_000_000)
+    max_averages: int | None = Field(default=None, ge=1, le=1_000_000)
+    target_u_nf_db: float | None = Field(default=None, ge=MIN_TARGET_U_NF_DB, le=10)
+    time_limit_s: float | None = Field(default=None, gt=0)
+    max_trace_span_hz: float | None = Field(default=None, ge=0)
+    min_band_fill: float | None = Field(default=None, gt=0, le=1)
+
+    @field_validator("freqs_hz", mode="after")
+    @classmethod
+    def _positive_freqs(cls, value: list[float] | None) -> list[float] | None:
+        if value is None:
+            return value
+        if not value:
+            raise InputError("freqs_hz", "is empty", fix="list at least one frequency")
+        for i, f in enumerate(value):
+            if not math.isfinite(f) or f <= 0:
+                raise InputError(f"freqs_hz[{i}]", f"must be a finite frequency > 0 (got {f!r})")
+        return value
+
+    @model_validator(mode="after")
+    def _one_form(self) -> Segment:
+        has_list = self.freqs_hz is not None
+        has_range = self.start_hz is not None or self.stop_hz is not None
+        if has_list and has_range:
+            raise InputError("freqs_hz", "give either freqs_hz or start_hz/stop_hz, not both")
+        if not has_list and not has_range:
+            raise InputError(
+                "start_hz",
+                "a segment needs freqs_hz or start_hz and stop_hz",
+                fix="e.g. start_hz = 1e9, stop_hz = 2e9, points = 11",
+            )
+        if has_range:
+            self._check_range()
+        return self
+
+    def _check_range(self) -> None:
+        if self.start_hz is None or self.stop_hz is None:
+            missing = "stop_hz" if self.start_hz is not None else "start_hz"
+            raise InputError(missing, "is missing: a range needs start_hz and stop_hz")
+        if self.points is not None and self.step_hz is not None:
+            raise InputError("step_hz", "give either points or step_hz, not both")
+        if self.points is None and self.step_hz is None:
+            raise InputError("points", "a range needs points or step_hz", fix="e.g. points = 51")
+        if self.stop_hz < self.start_hz:
+            raise InputError(
+                "stop_hz",
+                f"{self.stop_hz:g} Hz is below start_hz {self.start_hz:g} Hz",
+                fix="swap them",
+            )
+        if self.stop_hz == self.start_hz and (self.points or 1) > 1:
+            raise InputError(
+                "stop_hz", "equals start_hz but points > 1", fix="use points = 1 or a wider range"
+            )
+        if self.step_hz is not None and self.spacing == "log":
+            raise InputError(
+                "step_hz",
+                "a fixed step needs linear spacing",
+                fix='use points with spacing = "log"',
+            )
+        if (
+            self.step_hz is not None
+            and (self.stop_hz - self.start_hz) / self.step_hz >= MAX_SEGMENT_POINTS
+        ):
+            raise InputError(
+                "step_hz",
+                f"{self.step_hz:g} Hz makes more than "
+                f"{MAX_SEGMENT_POINTS} points between {self.start_hz:g} and "
+                f"{self.stop_hz:g} Hz",
+                fix="use a larger step (step_hz is in Hz)",
+            )
+
+    def frequencies_hz(self) -> np.ndarray:
+        """The segment's frequencies, Hz, ascending."""
+        if self.freqs_hz is not None:
+            return np.array(sorted(self.freqs_hz), dtype=float)
+        start, stop = float(self.start_hz), float(self.stop_hz)  # type: ignore[arg-type]
+        if self.step_hz is not None:
+            n = int(math.floor((stop - start) / self.step_hz * (1 + 1e-12))) + 1
+            return start + self.step_hz * np.arange(n)
+        n = int(self.points)  # type: ignore[arg-type]
+        if n == 1:
+            return np.array([start])
+        if self.spacing == "log":
+            return np.geomspace(start, stop, n)
+        return np.linspace(start, stop, n)
+
+    def overrides(self) -> dict[str, Any]:
+        """Acquisition fields this segment sets."""
+        return {
+            name: getattr(self, name) for name in _POLICY_FIELDS if getattr(self, name) is not None
+        }
+
+
+class SweepSection(BaseModel):
+    """Frequency points: ``freqs_hz`` (plan-wide settings) and/or ``segments``."""
+
+    model_config = _STRICT
+    freqs_hz: list[float] | None = None
+    segments: list[Segment] = Field(default_factory=list)
+
+    @field_validator("freqs_hz", mode="after")
+    @classmethod
+    def _positive(cls, value: list[float] | None) -> list[float] | None:
+        return Segment._positive_freqs(value)
+
+    @model_validator(mode="after")
+    def _not_empty(self) -> SweepSection:
+        if self.freqs_hz is None and not self.segments:
+            raise InputError(
+                "sweep",
+                "has no frequency points",
+                fix="add freqs_hz = [...] or a [[sweep.segments]] table",
+            )
+        return self
+
+
+class EnrSection(BaseModel):
+    """The noise source's ENR table (our CSV format, see noisebench.science.enr)."""
+
+    model_config = _STRICT
+    table: str | None = Field(default=None, description="CSV path; None: the simulator's table")
+    extrapolate: Literal["refuse", "clamp"] = "refuse"
+
+
+LossValue = float | str
+
+
+class CorrectionsSection(BaseModel):
+    """Losses around the DUT and temperatures.
+
+    ``input_loss`` / ``output_loss``: a constant in dB (>= 0), or a file: our CSV
+    (``freq_hz,gain_db``: a cable's gain is minus its loss) or Touchstone ``.s2p`` (|S21|).
+    ``source_temperature_k``: the physical temperature of the termination / cold noise source,
+    K, or ``"bench"`` to read it from the bench.
+    """
+
+    model_config = _STRICT
+    input_loss: LossValue = 0.0
+    output_loss: LossValue = 0.0
+    input_loss_temperature_k: float | None = Field(default=None, gt=0, le=400)
+    output_loss_temperature_k: float | None = Field(default=None, gt=0, le=400)
+    source_temperature_k: float | Literal["bench"] = "bench"
+    t0_k: float = Field(
+        default=T0_DEFAULT_K,
+        ge=200,
+        le=400,
+        description="reference temperature of the noise figure, K",
+    )
+
+    @field_validator("input_loss", "output_loss", mode="after")
+    @classmethod
+    def _loss(cls, value: LossValue, info: ValidationInfo) -> LossValue:
+        if isinstance(value, str):
+            if not value.strip():
+                raise InputError(
+                    info.field_name,
+                    "is an empty file name",
+                    fix="give a dB value or a CSV/.s2p path",
+                )
+            return value
+        if not math.isfinite(value) or value < 0:
+            raise InputError(
+                info.field_name,
+                f"must be a finite loss >= 0 dB (got {value!r})",
+                fix="a loss is positive dB; an amplifier is not a loss",
+            )
+        if value > MAX_LOSS_DB:
+            raise InputError(
+                info.field_name,
+                f"{value:g} dB is not a plausible loss (at most {MAX_LOSS_DB:g} dB)",
+                fix="give the loss in dB, not linear",
+            )
+        return value
+
+    @field_validator("source_temperature_k", mode="after")
+    @classmethod
+    def _temperature(cls, value: float | str) -> float | str:
+        if isinstance(value, float) and not (0 < value <= 400):
+            raise InputError(
+                "source_temperature_k",
+                f"{value!r} K is not a plausible bench temperature",
+                fix='give kelvin (e.g. 296.5) or "bench"',
+            )
+        return value
+
+
+class GainSection(BaseModel):
+    """DUT gain for the gain method: measured with the generator, from a file, or constant.
+
+    ``file`` / ``value_db`` give the DUT's own gain. ``measure`` uses the substitution method
+    (noisebench.running.gain_measurement): a THROUGH pass then a DUT pass, so what it measures is
+    the
+    gain between the THROUGH reference planes (the input loss and the DUT); the sequencer
+    accounts for that. ``max_gain_db`` (largest gain expected) and ``dut_p1db_out_dbm`` set
+    the generator level, kept well below compression.
+    """
+
+    model_config = _STRICT
+    source: Literal["measure", "file", "constant"]
+    value_db: float | None = Field(default=None, ge=-50, le=100)
+    u_gain_db: float = Field(
+        default=0.0, ge=0, le=10, description="standard uncertainty of a file/constant gain, dB"
+    )
+    file: str | None = None
+    max_gain_db: float | None = Field(default=None, ge=-50, le=100)
+    dut_p1db_out_dbm: float | None = Field(default=None, ge=-100, le=60)
+    rbw_hz: float = Field(default=1e3, gt=0, description="RBW of the tone measurement")
+    readings: int = Field(default=3, ge=2, le=100)
+    averages: int = Field(default=4, ge=1, le=10_000)
+    linearity_u_db: float = Field(default=0.02, ge=0, le=5)
+
+    @model_validator(mode="after")
+    def _complete(self) -> GainSection:
+        needs = {
+            "constant": ("value_db", "e.g. value_db = 20.0"),
+            "file": ("file", 'e.g. file = "dut_gain.s2p"'),
+        }
+        if self.source in needs and getattr(self, needs[self.source][0]) is None:
+            name, fix = needs[self.source]
+            raise InputError(name, f'is required with source = "{self.source}"', fix=fix)
+        if self.source == "measure":
+            for name in ("max_gain_db", "dut_p1db_out_dbm"):
+                if getattr(self, name) is None:
+                    raise InputError(
+                        name,
+                        'is required with source = "measure" (it sets the generator level)',
+                        fix="give the DUT's datasheet value",
+                    )
+        for name, used_by in (("value_db", "constant"), ("file", "file")):
+            if self.source != used_by and getattr(self, name) is not None:
+                raise InputError(
+                    name,
+                    f'is only used with source = "{used_by}" (source is "{self.source}")',
+                    fix=f"remove {name}",
+                )
+        return self
+
+
+class CalibrationSection(BaseModel):
+    """When a stored calibration (floor or system) may be reused."""
+
+    model_config = _STRICT
+    max_age_s: float = Field(
+        default=3600.0, gt=0, description="older calibrations are measured again"
+    )
+    target_ratio: float = Field(
+        default=0.5,
+        gt=0,
+        le=10,
+        description="calibration densities aim at this fraction of the point target",
+    )
+
+
+class SafetySection(BaseModel):
+    """Bounds for the pre-switch power checks (see noisebench.running.safety)."""
+
+    model_config = _STRICT
+    dut_bandwidth_hz: float | None = Field(
+        default=None, gt=0, description="band over which the DUT has gain (None: 2 x top freq)"
+    )
+    dut_max_gain_db: float | None = Field(default=None, ge=-50, le=100)
+    dut_max_input_dbm: float | None = None
+    compression_backoff_db: float = Field(default=10.0, ge=0, le=60)
+    caution_backoff_db: float = Field(default=20.0, ge=0, le=80)
+
+
+class ExpectSection(BaseModel):
+    """Prior knowledge for ``noisebench estimate`` (the simulator supplies what is missing)."""
+
+    model_config = _STRICT
+    dut_nf_db: float | None = Field(default=None, ge=0, le=40)
+    dut_gain_db: float | None = Field(default=None, ge=-30, le=80)
+    analyzer_nf_db: float | None = Field(default=None, ge=0, le=60)
+    enr_db: float | None = Field(default=None, ge=0, le=45)
+    sweep_time_factor: float = Field(
+        default=2.5, gt=0, le=100, description="k in sweep time = k span / RBW^2"
+    )
+    overhead_s: float = Field(default=0.02, ge=0, le=60, description="per trace, s")
+
+
+class OutputSection(BaseModel):
+    """Where results go: ``folder/<date>_<dut>_<method>/``."""
+
+    model_config = _STRICT
+    folder: str = "runs"
+    plots: bool = True
+    report: bool = True
+
+
+# --------------------------------------------------------------------------- the plan
+
+
+@dataclass(frozen=True)
+class FrequencyPoint:
+    """One frequency to measure with its effective acquisition policy."""
+
+    freq_hz: float
+    segment: int | None
+    policy: AcquisitionPolicy
+
+
+class Plan(BaseModel):
+    """A complete, validated measurement plan."""
+
+    model_config = _STRICT
+    method: Method
+    name: str | None = Field(default=None, max_length=200)
+    operator: str | None = Field(default=None, max_length=200)
+    station: str | None = Field(default=None, max_length=200)
+    dut: DutSection = Field(default_factory=DutSection)
+    bench: BenchSection
+    acquisition: AcquisitionPolicy = Field(default_factory=AcquisitionPolicy)
+    sweep: SweepSection
+    enr: EnrSection = Field(default_factory=EnrSection)
+    corrections: CorrectionsSection = Field(default_factory=CorrectionsSection)
+    gain: GainSection | None = None
+    calibration: CalibrationSection = Field(default_factory=CalibrationSection)
+    safety: SafetySection = Field(default_factory=SafetySection)
+    expect: ExpectSection = Field(default_factory=ExpectSection)
+    output: OutputSection = Field(default_factory=OutputSection)
+    uncertainty: _UncertaintySection | None = None
+    limits: _LimitsSection | None = None
+
+    _base_dir: Path = PrivateAttr(default_factory=Path.cwd)
+
+    @property
+    def base_dir(self) -> Path:
+        """Folder that relative paths in the plan are relative to."""
+        return self._base_dir
+
+    def with_base_dir(self, folder: Path) -> Plan:
+        self._base_dir = Path(folder)
+        return self
+
+    def resolve_path(self, name: str) -> Path:
+        """A plan file name resolved against the plan's folder."""
+        path = Path(name).expanduser()
+        return path if path.is_absolute() else self._base_dir / path
+
+    def points(self) -> list[FrequencyPoint]:
+        """Every frequency point, ascending, with its merged acquisition policy."""
+        out: list[FrequencyPoint] = []
+        if self.sweep.freqs_hz is not None:
+            out += [
+                FrequencyPoint(float(f), None, self.acquisition)
+                for f in sorted(self.sweep.freqs_hz)
+            ]
+        for i, seg in enumerate(self.sweep.segments):
+            policy = self.segment_policy(i)
+            out += [FrequencyPoint(float(f), i, policy) for f in seg.frequencies_hz()]
+        return sorted(out, key=lambda p: p.freq_hz)
+
+    def segment_policy(self, index: int) -> AcquisitionPolicy:
+        """The acquisition policy of segment ``index`` (plan defaults + its overrides)."""
+        merged = self.acquisition.model_dump()
+        merged.update(self.sweep.segments[index].overrides())
+        return AcquisitionPolicy.model_validate(merged)
+
+    def freqs_hz(self) -> np.ndarray:
+        return np.array([p.freq_hz for p in self.points()])
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-able dump (stored with the results)."""
+        return self.model_dump(mode="json", exclude_none=True)
+
+    @property
+    def is_simulated(self) -> bool:
+        return self.bench.analyzer.resource.startswith("sim://")
+
+
+# --------------------------------------------------------------------------- loading
+
+
+_TYPE_TAGS = {"float", "int", "str", "bool", "none", "list", "dict"}
+
+
+def _is_branch_tag(part: Any) -> bool:
+    """pydantic adds the union member (``float``, ``literal['bench']``) to an error's location."""
+    return isinstance(part, str) and ("[" in part or part in _TYPE_TAGS)
+
+
+def format_location(loc: tuple[Any, ...]) -> str:
+    """('sweep', 'segments', 2, 'rbw_hz') -> 'sweep.segments[2].rbw_hz'."""
+    text = ""
+    for part in loc:
+        if isinstance(part, int):
+            text += f"[{part}]"
+        elif not _is_branch_tag(part):
+            text += ("." if text else "") + str(part)
+    return text or "plan"
+
+
+def _join_field(path: str, field: str) -> str:
+    """Attach an InputError's own field to the location pydantic reported."""
+    if path == "plan":
+        return field
+    last = re.split(r"[.\[]", path.rsplit(".", 1)[-1])[0]
+    if field == last or field.startswith(last + "["):
+        head = path.rsplit(".", 1)[0] if "." in path else ""
+        return f"{head}.{field}" if head else field
+    return f"{path}.{field}"
+
+
+def format_validation_error(exc: ValidationError) -> list[str]:
+    """One line per problem: ``<key path>: <message>``."""
+    lines: list[str] = []
+    branches: dict[str, list[str]] = {}
+    for err in exc.errors(include_url=False):
+        loc = tuple(err.get("loc", ()))
+        path = format_location(loc)
+        cause = (err.get("ctx") or {}).get("error")
+        if isinstance(cause, InputError):
+            text = cause.message
+            prefix = f"{cause.field}: "
+            text = text[len(prefix) :] if text.startswith(prefix) else text
+            line = f"{_join_field(path, cause.field)}: {text}"
+        elif any(_is_branch_tag(p) for p in loc):
+            tag = next(p for p in reversed(loc) if _is_branch_tag(p))
+            branches.setdefault(path, [repr(err.get("input"))]).append(_branch_name(tag))
+            line = path  # placeholder, merged below
+        else:
+            line = f"{path}: {_plain_message(err)}"
+        if line not in lines:
+            lines.append(line)
+    for path, (got, *names) in branches.items():
+        expected = " or ".join(dict.fromkeys(names))
+        lines[lines.index(path)] = f"{path}: must be {expected} (got {got})"
+    return lines
+
+
+def _branch_name(tag: str) -> str:
+    if tag.startswith("literal["):
+        return tag[len("literal[") : -1].replace(",", " or")
+    return {
+        "float": "a number",
+        "int": "an integer",
+        "str": "a text (file name)",
+        "bool": "true or false",
+    }.get(tag, tag)
+
+
+def _plain_message(err: dict[str, Any]) -> str:
+    kind = err.get("type", "")
+    ctx = err.get("ctx") or {}
+    if kind == "extra_forbidden":
+        return "unknown key (check its spelling and section)"
+    if kind == "missing":
+        return "is required"
+    if kind in ("greater_than", "greater_than_equal", "less_than", "less_than_equal"):
+        op = {
+            "greater_than": ">",
+            "greater_than_equal": ">=",
+            "less_than": "<",
+            "less_than_equal": "<=",
+        }[kind]
+        bound = next(iter(ctx.values()), "?")
+        return f"must be {op} {bound} (got {err.get('input')!r})"
+    if kind in ("literal_error", "enum"):
+        return f"must be one of {ctx.get('expected', '?')} (got {err.get('input')!r})"
+    msg = str(err.get("msg", "invalid"))
+    # pydantic prefixes a ValueError raised in a validator with "Value error, "
+    for prefix in ("Value error, ", "Assertion failed, "):
+        if msg.startswith(prefix):
+            msg = msg[len(prefix) :]
+    return msg[0].lower() + msg[1:] if msg else "invalid"
+
+
+def parse_plan(
+    data: dict[str, Any],
+    *,
+    base_dir: Path | None = None,
+    source: str | None = None,
+    check_files: bool = True,
+) -> Plan:
+    """Validate a plan table (schema and cross-field checks); raise :class:`PlanError`."""
+    try:
+        plan = Plan.model_validate(data)
+    except ValidationError as exc:
+        raise PlanError(format_validation_error(exc), source=source) from None
+    plan.with_base_dir(base_dir or Path.cwd())
+    _resolve_profiles(plan)
+    problems = cross_check(plan, check_files=check_files)
+    if problems:
+        raise PlanError(problems, source=source)
+    return plan
+
+
+def load_plan(path: str | Path, *, check_files: bool = True) -> Plan:
+    """Read and validate a TOML plan file. Raises :class:`PlanError` (all problems) or OSError."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8-sig")  # a byte-order mark (Windows editors) is ok
+    except UnicodeDecodeError as exc:
+        raise PlanError(
+            [f"not UTF-8 text (byte {exc.start}); save the plan as UTF-8"], source=str(path)
+        ) from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise PlanError([f"not valid TOML: {exc}"], source=str(path)) from None
+    return parse_plan(
+        data, base_dir=path.resolve().parent, source=str(path), check_files=check_files
+    )
+
+
+def validate_plan_file(path: str | Path) -> list[str]:
+    """Every problem of a plan file as a line (empty list: the plan is good)."""
+    try:
+        load_plan(path)
+    except PlanError as exc:
+        return exc.problems
+    except OSError as exc:
+        return [f"{path}: cannot read ({exc.strerror or exc})"]
+    return []
+
+
+# --------------------------------------------------------------------------- cross-field checks
+
+
+def cross_check(plan: Plan, *, check_files: bool = True) -> list[str]:
+    """Checks that need more than one field (and the files the plan names)."""
+    problems: list[str] = []
+    problems += _check_segment_policies(plan)
+    problems += _check_duplicates(plan)
+    problems += _check_method_needs(plan)
+    problems += _check_bench(plan)
+    if check_files:
+        problems += _check_enr(plan)
+        problems += _check_tables(plan)
+        problems += _check_profiles(plan)
+    return problems
+
+
+def _profile_sections(plan: Plan) -> list[tuple[str, Any]]:
+    """(key, section) of each instrument whose profile a real bench will load."""
+    bench = plan.bench
+    if bench.analyzer.resource.startswith("sim://"):
+        return []
+    out: list[tuple[str, Any]] = [("bench.analyzer", bench.analyzer)]
+    if bench.generator is not None:
+        out.append(("bench.generator", bench.generator))
+    if bench.noise_source.drive == "supply":
+        out.append(("bench.noise_source", bench.noise_source))
+    return out
+
+
+def _resolve_profiles(plan: Plan) -> None:
+    """A profile file next to the plan is found from any working folder (relative file names
+    are relative to the plan); packaged names and other paths are left as given."""
+    for _key, section in _profile_sections(plan):
+        candidate = plan.resolve_path(section.profile)
+        if candidate.is_file():
+            section.profile = str(candidate)
+
+
+def _check_profiles(plan: Plan) -> list[str]:
+    """Each instrument profile must load (checked here, not when the instrument is opened)."""
+    try:
+        from noisebench.drivers.profile import load_profile
+    except ImportError:  # pragma: no cover - drivers not installed
+        return []
+    problems = []
+    for key, section in _profile_sections(plan):
+        try:
+            load_profile(section.profile)
+        except InputError as exc:
+            problems.append(f"{key}.profile: {_one_line(exc.message).removeprefix('profile: ')}")
+    return problems
+
+
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split())
+
+
+def _check_segment_policies(plan: Plan) -> list[str]:
+    """Each segment's overrides merged with the plan defaults must still be consistent."""
+    problems = []
+    for i in range(len(plan.sweep.segments)):
+        try:
+            plan.segment_policy(i)
+        except ValidationError as exc:
+            problems += [f"sweep.segments[{i}].{line}" for line in format_validation_error(exc)]
+    return problems
+
+
+def _check_duplicates(plan: Plan) -> list[str]:
+    seen: dict[float, str] = {}
+    problems = []
+    for key, freqs in _frequency_sources(plan):
+        for f in freqs:
+            rounded = round(float(f), 3)
+            if rounded in seen and seen[rounded] != key:
+                problems.append(f"{key}: {f:g} Hz is also in {seen[rounded]} (each frequency once)")
+            elif rounded in seen:
+                problems.append(f"{key}: {f:g} Hz is listed twice")
+            seen[rounded] = key
+    return problems
+
+
+def _frequency_sources(plan: Plan) -> list[tuple[str, np.ndarray]]:
+    out = []
+    if plan.sweep.freqs_hz is not None:
+        out.append(("sweep.freqs_hz", np.asarray(plan.sweep.freqs_hz)))
+    for i, seg in enumerate(plan.sweep.segments):
+        out.append((f"sweep.segments[{i}]", seg.frequencies_hz()))
+    return out
+
+
+def _check_method_needs(plan: Plan) -> list[str]:
+    problems = []
+    if plan.method is Method.GAIN:
+        if plan.gain is None:
+            problems.append(
+                "gain: the gain method needs the DUT gain "
+                '([gain] source = "measure", "file" or "constant")'
+            )
+        elif plan.gain.source == "measure" and plan.bench.generator is None:
+            problems.append(
+                'bench.generator: gain source "measure" needs a generator '
+                '(or use source = "file" / "constant")'
+            )
+    if plan.method is Method.Y_FACTOR and plan.bench.noise_source.drive == "none":
+        problems.append(
+            "bench.noise_source.drive: the Y-factor method needs a noise source "
+            '(drive = "none" is for the gain method)'
+        )
+    return problems
+
+
+def _check_bench(plan: Plan) -> list[str]:
+    problems = []
+    analyzer_sim = plan.bench.analyzer.resource.startswith("sim://")
+    if analyzer_sim:
+        try:
+            address = parse_sim_address(plan.bench.analyzer.resource)
+        except InputError as exc:
+            problems.append(f"bench.analyzer.resource: {exc.message.split(': ', 1)[-1]}")
+        else:
+            scenario_problems = _check_scenario(address.scenario)
+            problems += scenario_problems or _check_sim_range(plan, address.scenario)
+    others = [
+        (
+            "bench.generator.resource",
+            plan.bench.generator.resource if plan.bench.generator else None,
+        ),
+        ("bench.noise_source.resource", plan.bench.noise_source.resource),
+    ]
+    for key, res in others:
+        if res is None or res == "sim":
+            if res == "sim" and not analyzer_sim:
+                problems.append(
+                    f'{key}: "sim" means the simulated bench, but the analyzer is '
+                    f"{plan.bench.analyzer.resource!r}"
+                )
+            continue
+        if analyzer_sim != res.startswith("sim://"):
+            problems.append(
+                f"{key}: {res!r} cannot be mixed with the analyzer "
+                f"{plan.bench.analyzer.resource!r} (one bench, simulated or real)"
+            )
+    return problems
+
+
+def _check_scenario(name: str) -> list[str]:
+    """A ``sim://`` scenario must exist (packaged name or .toml path), as the run will need."""
+    try:
+        from noisebench.sims.scenario import SCENARIO_SUFFIX, available_scenarios
+    except ImportError:  # pragma: no cover - simulator not installed
+        return []
+    names = available_scenarios()
+    if name in names or (Path(name).suffix == SCENARIO_SUFFIX and Path(name).is_file()):
+        return []
+    return [
+        f"bench.analyzer.resource: no scenario {name!r} (use one of {names} "
+        f"or a path to a {SCENARIO_SUFFIX} file)"
+    ]
+
+
+def _check_sim_range(plan: Plan, scenario: str) -> list[str]:
+    """Every point's span must lie within the simulated analyzer's frequency range, so a
+    point the analyzer cannot tune to is refused now, not after earlier points were measured."""
+    try:
+        from noisebench.sims.scenario import load_scenario
+
+        spec = load_scenario(scenario).analyzer
+    except (ImportError, InputError):  # reported by _check_scenario / at run time
+        return []
+    lo, hi = spec.min_freq_hz, spec.max_freq_hz
+    try:
+        points = plan.points()
+    except (ValidationError, InputError):  # a bad segment policy: reported by its own check
+        return []
+    bad = [
+        p.freq_hz
+        for p in points
+        if p.freq_hz - p.policy.span_hz / 2 < lo or p.freq_hz + p.policy.span_hz / 2 > hi
+    ]
+    if not bad:
+        return []
+    shown = ", ".join(f"{f:.6g}" for f in bad[:3]) + (" ..." if len(bad) > 3 else "")
+    return [
+        f"sweep: {len(bad)} point(s) ({shown} Hz) with their span fall outside the "
+        f"simulated analyzer's range {lo:.6g}..{hi:.6g} Hz (move them inside or narrow "
+        "span_hz)"
+    ]
+
+
+def _missing_file(key: str, path: Path) -> str:
+    if path.is_dir():
+        return f"{key}: {str(path)!r} is a folder, not a file (name the file itself)"
+    return f"{key}: file {str(path)!r} not found"
+
+
+def _check_enr(plan: Plan) -> list[str]:
+    if plan.method is not Method.Y_FACTOR:
+        return []
+    if plan.enr.table is None:
+        if plan.is_simulated:
+            return []
+        return [
+            "enr.table: the Y-factor method needs the noise source's ENR table "
+            '(e.g. table = "enr_ns1234.csv")'
+        ]
+    path = plan.resolve_path(plan.enr.table)
+    if not path.is_file():
+        return [_missing_file("enr.table", path)]
+    try:
+        from noisebench.science.enr import EnrTable
+
+        table = EnrTable.from_csv(path)
+    except ImportError:  # pragma: no cover - ENR module not yet in the tree
+        return []
+    except InputError as exc:
+        return [f"enr.table: {exc.message}"]
+    if table.range_hz is None:  # a flat table covers every frequency
+        return []
+    return _coverage_problems(
+        "enr.table",
+        path.name,
+        np.asarray(table.freq_hz, float),
+        plan,
+        allow_clamp=plan.enr.extrapolate == "clamp",
+    )
+
+
+def _coverage_problems(
+    key: str, name: str, table_freq_hz: np.ndarray, plan: Plan, *, allow_clamp: bool
+) -> list[str]:
+    freqs = plan.freqs_hz()
+    lo, hi = float(np.min(table_freq_hz)), float(np.max(table_freq_hz))
+    outside = freqs[(freqs < lo * (1 - 1e-12)) | (freqs > hi * (1 + 1e-12))]
+    if outside.size == 0 or allow_clamp:
+        return []
+    fix = (
+        'narrow the sweep or allow extrapolate = "clamp"'
+        if key == "enr.table"
+        else "narrow the sweep or extend the table"
+    )
+    return [
+        f"{key}: {name} covers {lo:g}-{hi:g} Hz but the sweep has {outside.size} point(s) "
+        f"outside it (first {outside[0]:g} Hz){_unit_hint(freqs, lo, hi)}; {fix}"
+    ]
+
+
+def _unit_hint(freqs_hz: np.ndarray, lo_hz: float, hi_hz: float) -> str:
+    """A hint when the sweep or the table would fit if one of them were read in kHz/MHz/GHz."""
+
+    def inside(values: np.ndarray, low: float, high: float) -> bool:
+        return bool(np.all((values >= low * (1 - 1e-9)) & (values <= high * (1 + 1e-9))))
+
+    for unit, scale in (("kHz", 1e3), ("MHz", 1e6), ("GHz", 1e9)):
+        if inside(freqs_hz * scale, lo_hz, hi_hz):
+            return f" (the sweep looks like {unit}: plan frequencies are in Hz)"
+        if inside(freqs_hz, lo_hz * scale, hi_hz * scale):
+            return f" (the table looks like {unit}: name its column freq_{unit.lower()})"
+    return ""
+
+
+def _check_tables(plan: Plan) -> list[str]:
+    problems = []
+    items = [
+        ("corrections.input_loss", plan.corrections.input_loss),
+        ("corrections.output_loss", plan.corrections.output_loss),
+    ]
+    if plan.gain is not None and plan.gain.source == "file" and plan.gain.file:
+        items.append(("gain.file", plan.gain.file))
+    for key, value in items:
+        if not isinstance(value, str):
+            continue
+        path = plan.resolve_path(value)
+        if not path.is_file():
+            problems.append(_missing_file(key, path))
+            continue
+        try:
+            from noisebench.science.gain_files import load_gain_table
+
+            table = load_gain_table(path)
+        except ImportError:  # pragma: no cover
+            continue
+        except (InputError, OSError, ValueError) as exc:
+            problems.append(f"{key}: {getattr(exc, 'message', exc)}")
+            continue
+        coverage = (
+            []
+            if table.range_hz is None
+            else _coverage_problems(
+                key, path.name, np.asarray(table.freq_hz, float), plan, allow_clamp=False
+            )
+        )
+        problems += coverage
+        if key.startswith("corrections.") and not coverage:
+            problems += _gain_in_loss_table(key, value, table, plan)
+    return problems
+
+
+def _gain_in_loss_table(key: str, name: str, table: Any, plan: Plan) -> list[str]:
+    """A loss table must not give gain at a sweep frequency (the run would refuse it there;
+    the same 1e-3 dB tolerance as :mod:`noisebench.running.corrections`)."""
+    freqs = plan.freqs_hz()
+    loss_db = np.asarray(table.at(freqs).loss_db, dtype=float) * np.ones_like(freqs)
+    bad = np.flatnonzero(loss_db < -1e-3)
+    if bad.size == 0:
+        return []
+    i = int(bad[0])
+    return [
+        f"{key}: {name} gives a gain of {-loss_db[i]:.3f} dB at {freqs[i]:.6g} Hz, not a "
+        "loss (give loss_db >= 0, or a cable's |S21| (<= 0 dB))"
+    ]
+
+
+# --------------------------------------------------------------------------- addresses
+
+
+@dataclass(frozen=True)
+class SimAddress:
+    """A parsed ``sim://<scenario>?seed=N`` address."""
+
+    scenario: str
+    seed: int = 0
+
+
+def parse_sim_address(resource: str) -> SimAddress:
+    """Parse ``sim://<scenario>[?seed=N]``; raise InputError naming what is wrong."""
+    from urllib.parse import parse_qs, urlsplit
+
+    parts = urlsplit(resource)
+    if parts.scheme != "sim":
+        raise InputError("resource", f"{resource!r} is not a sim:// address")
+    scenario = (parts.netloc + parts.path).strip("/")
+    if not scenario:
+        raise InputError(
+            "resource", f"{resource!r} names no scenario", fix="e.g. sim://demo-lna?seed=1"
+        )
+    query = parse_qs(parts.query, keep_blank_values=True)
+    unknown = sorted(set(query) - {"seed"})
+    if unknown:
+        raise InputError(
+            "resource",
+            f"unknown option {unknown[0]!r} in {resource!r}",
+            fix="the only option is seed=N",
+        )
+    seed_text = query.get("seed", ["0"])[-1]
+    try:
+        seed = int(seed_text)
+    except ValueError:
+        raise InputError(
+            "resource",
+            f"seed {seed_text!r} in {resource!r} is not an integer",
+            fix="e.g. sim://demo-lna?seed=1",
+        ) from None
+    if seed < 0:
+        raise InputError("resource", f"seed {seed} must be >= 0")
+    return SimAddress(scenario, seed)

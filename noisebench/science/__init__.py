@@ -1,0 +1,2 @@
+"""Measurement science: physics, filters, detection, estimator, ENR, methods, uncertainty,
+limits."""

@@ -1,0 +1,685 @@
+"""Noise density from analyzer traces and marker readings: trace -> :class:`NoiseDensity`.
+
+Per trace (:func:`estimate_density`, or :func:`estimate_densities` for many frequency points
+covered by one trace):
+
+1. convert every point to linear power (W per RBW, or W/Hz for density traces);
+2. divide by the exact detector / trace-averaging bias of the applied settings
+   (:mod:`noisebench.science.detection`), so each point is an unbiased estimate of the mean power;
+3. find narrowband spurs: a point is a spur if it exceeds a running-median noise baseline by more
+   than the known sampling distribution of a noise point allows at ``spur_threshold_sigma``
+   (one-sided Gaussian tail probability, converted through the point's own distribution). The
+   neighbourhood where the line's skirt, seen through the RBW filter's power response, still
+   exceeds a small fraction of the statistical resolution is excluded as well;
+4. average the remaining points of the band in linear power and divide by the ENBW -> W/Hz.
+
+Uncertainty (type A, JCGM 100:2008 §4.2 with the statistics known a priori): every point has the
+relative variance ``r`` of its detector/averaging model; neighbouring points are correlated by
+``rho(lag)`` (filter-bank model in :mod:`noisebench.science.filters`, transformed to the averaging
+scale
+by :meth:`PointModel.correlation`). For ``n`` used points, ``S = sum_ij rho(|i-j|)`` and
+
+    u_rel^2 = r * S / n^2,   independent bins = n^2 / S,   independent samples = (n^2 / S) / r,
+
+i.e. ``independent_samples`` is the number of independent exponential power samples that would
+give the same variance (``u_rel = 1 / sqrt(independent_samples)``). Dense points give
+``n^2 / S -> band / (correlation bandwidth)`` (B_stat for a Gaussian RBW); sparse points give
+``n``. In zero span the points lie on a time axis ``dt = sweep_time / points`` apart and
+correlate through the filter's time response ``C(tau)`` (``integral C = 1/B_stat``, so a long
+trace holds ``averages * sweep_time * B_stat`` independent samples: the radiometer equation). A
+SAMPLE point is an instant (``rho = C(j dt)``); an RMS/AVERAGE point averages its whole window
+(``rho_j = integral C(u) max(0, dt - |u - j dt|) du`` normalised), used when ``dt * B_stat > 1``.
+A zero-span trace needs its ``sweep_time_s``; it has no spur search (a line inside the RBW
+looks like noise there).
+
+Cross-check: the scatter of the used points about a straight line (a gain slope is not noise)
+is compared with its expectation ``r * m^2 * (n - tr(P C))`` (``P`` the projection on the line,
+``C`` the correlation matrix). ``scatter_ratio`` = observed / predicted standard deviation. When
+it exceeds its own 99 % sampling quantile (chi-square with Satterthwaite degrees of freedom,
+widened for the points' kurtosis) the prediction is contradicted by the data and the uncertainty
+is widened by the ratio. When the detector's sample count is unknown (power scale only), the
+uncertainty comes from this observed scatter alone.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage, signal, special, stats
+
+from noisebench.bench.acquisition import (
+    AcquisitionSettings,
+    Detector,
+    MarkerKind,
+    MarkerReading,
+    SweepMode,
+    Trace,
+    TraceUnit,
+)
+from noisebench.errors import InputError, MeasurementError
+from noisebench.science.density import NoiseDensity
+from noisebench.science.detection import PointModel, point_model_for, statistic_for_scale
+from noisebench.science.filters import (
+    frequency_power_correlation,
+    response_halfwidth_ratio,
+    time_power_correlation,
+)
+
+logger = logging.getLogger(__name__)
+
+#: default spur threshold, as a one-sided Gaussian tail (5 sigma: 2.9e-7 false alarms per point)
+DEFAULT_SPUR_THRESHOLD_SIGMA = 5.0
+#: a spur's skirt is excluded down to this fraction of the band's relative resolution
+SPUR_SKIRT_FRACTION = 0.1
+#: quantile of the scatter ratio above which the observed scatter replaces the prediction
+SCATTER_WIDEN_QUANTILE = 0.99
+#: correlations below this are treated as zero (sets the kernel length)
+CORRELATION_FLOOR = 1e-7
+MAX_KERNEL_LAGS = 20_000
+MIN_SPUR_SEARCH_POINTS = 8
+#: independent bins in the running-median window of the spur search
+SPUR_BASELINE_BINS = 100
+
+
+# --- public API -------------------------------------------------------------------------------
+
+
+def estimate_density(
+    trace: Trace,
+    *,
+    freq_hz: float | None = None,
+    band_hz: float | None = None,
+    reject_spurs: bool = True,
+    spur_threshold_sigma: float = DEFAULT_SPUR_THRESHOLD_SIGMA,
+    min_points: int = 3,
+) -> NoiseDensity:
+    """Noise density (W/Hz) at ``freq_hz`` from the points of ``trace`` within ``band_hz``.
+
+    Defaults: the whole trace, reported at its centre. With ``freq_hz`` and ``band_hz`` the band
+    ``freq_hz +/- band_hz/2`` is used; it must lie inside the trace and hold ``min_points``.
+    In zero span all points are at the centre frequency and ``band_hz`` is not used.
+    """
+    prepared = _prepare(trace, reject_spurs=reject_spurs, threshold_sigma=spur_threshold_sigma)
+    return _estimate_band(prepared, freq_hz, band_hz, min_points=min_points)
+
+
+def estimate_densities(
+    trace: Trace,
+    freqs_hz: Sequence[float] | np.ndarray,
+    band_hz: float | Sequence[float] | np.ndarray,
+    *,
+    reject_spurs: bool = True,
+    spur_threshold_sigma: float = DEFAULT_SPUR_THRESHOLD_SIGMA,
+    min_points: int = 3,
+) -> list[NoiseDensity]:
+    """One :class:`NoiseDensity` per frequency in ``freqs_hz``, each over its own band.
+
+    Conversion, bias correction and spur search run once over the whole trace (vectorised);
+    each band then costs only its own sums. ``band_hz`` is one value or one per frequency.
+    """
+    freqs = np.atleast_1d(np.asarray(freqs_hz, dtype=float))
+    if freqs.ndim != 1 or freqs.size == 0:
+        raise InputError(
+            "freqs_hz",
+            "must be a non-empty list of frequencies",
+            fix="pass the frequency points this trace covers",
+        )
+    bands = np.asarray(band_hz, dtype=float)
+    if bands.ndim > 1 or bands.size not in (1, freqs.size):
+        raise InputError(
+            "band_hz",
+            f"has {bands.size} values for {freqs.size} frequencies",
+            fix="pass one band or one per frequency",
+        )
+    bands = np.broadcast_to(bands.ravel(), freqs.shape)
+    prepared = _prepare(trace, reject_spurs=reject_spurs, threshold_sigma=spur_threshold_sigma)
+    out = []
+    for i, (f, b) in enumerate(zip(freqs, bands, strict=True)):
+        try:
+            out.append(_estimate_band(prepared, float(f), float(b), min_points=min_points))
+        except (InputError, MeasurementError) as exc:
+            exc.add_context(freq_hz=float(f), index=i)
+            raise
+    return out
+
+
+def band_weights_hz(freq_hz: np.ndarray, center_hz: float, band_hz: float) -> np.ndarray:
+    """Hz of the band ``center_hz +/- band_hz/2`` that each point of a uniform axis stands for.
+
+    Point ``i`` stands for its cell ``f_i +/- spacing/2``; its weight is the overlap of that cell
+    with the band. ``sum(w * P) / ENBW`` is then the trace integrated over exactly the band
+    (``P`` the point powers in W), and ``sum(w) == band_hz`` whenever the band lies inside the
+    trace's cells (``f_0 - spacing/2 .. f_last + spacing/2``); outside it the band is cut.
+    This is the band-power definition of the markers (:func:`density_from_marker`).
+    """
+    f = np.asarray(freq_hz, dtype=float)
+    if f.ndim != 1 or f.size < 2:
+        raise InputError(
+            "freq_hz",
+            "must hold two or more trace frequencies",
+            fix="pass the trace's frequency axis",
+        )
+    spacing = _uniform_spacing(f)
+    center, band = float(center_hz), float(band_hz)
+    if not math.isfinite(center):
+        raise InputError("center_hz", f"must be finite (got {center_hz!r})")
+    if not math.isfinite(band) or band <= 0:
+        raise InputError(
+            "band_hz",
+            f"must be a finite bandwidth > 0 (got {band_hz!r})",
+            fix="give the marker band in Hz",
+        )
+    # cell edges relative to the band centre, on the ideal grid (no cancellation at GHz)
+    edges = (f[0] - center) + (np.arange(f.size + 1) - 0.5) * spacing
+    lo, hi = -band / 2.0, band / 2.0
+    return np.maximum(np.minimum(edges[1:], hi) - np.maximum(edges[:-1], lo), 0.0)
+
+
+def density_from_marker(reading: MarkerReading) -> NoiseDensity:
+    """Noise density (W/Hz) from a band-power or noise-density marker reading.
+
+    What the instrument did is stated by ``reading.instrument_corrected``; this function applies
+    exactly what is missing (and nothing twice):
+
+    * ``True``: the value is already an unbiased noise measure, detector / averaging bias
+      removed and, for NOISE_DENSITY, divided by the RBW filter's noise bandwidth (ENBW).
+    * ``False``: the value comes from the displayed (biased) trace. BAND_POWER: the trace
+      integrated over ``band_hz`` (``sum(w P) / ENBW``, :func:`band_weights_hz`), which carries
+      the ENBW already, so it is divided by the detector bias only. NOISE_DENSITY: the mean
+      displayed point power over the band divided by the *nominal* RBW, so it is multiplied
+      by RBW/ENBW and divided by the detector bias.
+
+    BAND_POWER density = band power / ``band_hz`` (the band is integrated, so no ENBW).
+    Uncertainty from the settings: averages x detector samples x the points of the band with
+    their band weights and correlations (one point for a noise-density marker without
+    ``band_hz``). When the sample count is unknown the variance of a single-sample detector is
+    used, an upper bound.
+    """
+    s = reading.settings
+    model = _marker_model(reading)
+    ratio = 1.0 if reading.instrument_corrected else model.mean_ratio()
+    value_lin = 10.0 ** (reading.value_db / 10.0) * 1e-3  # W or W/Hz
+    if reading.kind is MarkerKind.BAND_POWER:
+        if reading.band_hz is None:
+            raise InputError(
+                "reading.band_hz",
+                "a band-power reading needs its band",
+                fix="set band_hz to the integration band of the marker",
+            )
+        band = float(reading.band_hz)
+        density = value_lin / ratio / band
+    else:
+        band = float(reading.band_hz) if reading.band_hz is not None else s.enbw_hz
+        enbw_fix = 1.0 if reading.instrument_corrected else s.rbw_hz / s.enbw_hz
+        density = value_lin * enbw_fix / ratio
+    n_points, spread = _marker_points(reading, model)
+    rel_var = model.relative_variance() * spread
+    return NoiseDensity(
+        freq_hz=reading.freq_hz,
+        density_w_per_hz=density,
+        u_density_w_per_hz=density * math.sqrt(rel_var),
+        independent_samples=1.0 / rel_var,
+        band_hz=band,
+        bins_used=n_points,
+        excluded_freq_hz=[],
+        scatter_ratio=None,
+        bias_correction_db=0.0 if reading.instrument_corrected else model.correction_db,
+        settings=s,
+        acquisition_time_s=reading.acquisition_time_s,
+    )
+
+
+# --- preparation (once per trace) -------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Prepared:
+    trace: Trace
+    freq_hz: np.ndarray
+    power: np.ndarray  # bias-corrected linear power per point (W, or W/Hz for density traces)
+    to_density: float  # factor from ``power`` to W/Hz (1/ENBW, or 1 for density traces)
+    model: PointModel
+    rel_var: float | None  # predicted relative variance of a point (None: unknown)
+    kernel: np.ndarray  # correlation of point values at lags 0..L
+    excluded: np.ndarray  # bool mask of points excluded as spur neighbourhoods
+    spurs_hz: np.ndarray  # spur line frequencies
+    spur_halfwidth_hz: np.ndarray  # half-width excluded around each spur
+    zero_span: bool
+
+
+def _prepare(trace: Trace, *, reject_spurs: bool, threshold_sigma: float) -> _Prepared:
+    s = trace.settings
+    threshold_sigma = float(threshold_sigma)
+    if not math.isfinite(threshold_sigma) or threshold_sigma <= 0:
+        raise InputError(
+            "spur_threshold_sigma",
+            "must be a finite number > 0",
+            value=threshold_sigma,
+            fix="use e.g. 5",
+        )
+    model = point_model_for(s, field="trace.settings")
+    power, to_density = _linear_power(trace)
+    power = power / model.mean_ratio()
+    zero_span = s.span_hz == 0 or trace.freq_hz.size == 1 or np.ptp(trace.freq_hz) == 0
+    lags_power = _power_kernel(trace, zero_span)
+    rel_var = model.relative_variance() if model.variance_known else None
+    kernel = model.correlation(lags_power) if model.variance_known else lags_power
+    excluded = np.zeros(power.size, dtype=bool)
+    spurs = np.empty(0)
+    widths = np.empty(0)
+    if reject_spurs and not zero_span and power.size >= MIN_SPUR_SEARCH_POINTS:
+        search_var = rel_var if rel_var is not None else _robust_relative_variance(power)
+        excluded, spurs, widths = _find_spurs(trace, power, search_var, kernel, threshold_sigma)
+    return _Prepared(
+        trace=trace,
+        freq_hz=trace.freq_hz,
+        power=power,
+        to_density=to_density,
+        model=model,
+        rel_var=rel_var,
+        kernel=kernel,
+        excluded=excluded,
+        spurs_hz=spurs,
+        spur_halfwidth_hz=widths,
+        zero_span=zero_span,
+    )
+
+
+def _linear_power(trace: Trace) -> tuple[np.ndarray, float]:
+    """Points in W (per RBW) or W/Hz, and the factor that turns them into W/Hz."""
+    v = trace.values
+    if not np.all(np.isfinite(v)):
+        bad = int(np.flatnonzero(~np.isfinite(v))[0])
+        raise InputError(
+            "trace.values",
+            f"point {bad} is not finite ({v[bad]!r})",
+            fix="discard the trace; the instrument returned invalid data",
+        )
+    unit = trace.unit
+    if unit in (TraceUnit.DBM, TraceUnit.DBM_PER_HZ):
+        power = 10.0 ** (v / 10.0) * 1e-3
+    else:
+        if np.any(v <= 0):
+            bad = int(np.flatnonzero(v <= 0)[0])
+            raise InputError(
+                "trace.values",
+                f"point {bad} is {v[bad]!r} {unit.value}; noise power must be > 0",
+                fix="check the trace unit and the data",
+            )
+        power = v.astype(float)
+    density_unit = unit in (TraceUnit.DBM_PER_HZ, TraceUnit.W_PER_HZ)
+    return power, 1.0 if density_unit else 1.0 / trace.settings.enbw_hz
+
+
+def _power_kernel(trace: Trace, zero_span: bool) -> np.ndarray:
+    """Power correlation of two points at lags 0, 1, ... (trimmed where it becomes negligible)."""
+    s = trace.settings
+    n = trace.freq_hz.size
+    if n == 1:
+        return np.ones(1)
+    max_lag = min(n - 1, MAX_KERNEL_LAGS)
+    lags = np.arange(max_lag + 1, dtype=float)
+    if zero_span:
+        if s.mode is SweepMode.FFT:
+            raise InputError(
+                "trace.settings.mode",
+                "a zero-span trace in FFT mode has no defined time axis",
+                fix="use swept mode for zero span",
+            )
+        if s.sweep_time_s is None:
+            raise InputError(
+                "trace.settings.sweep_time_s",
+                "is unknown, so the correlation of "
+                "the zero-span points (their time spacing) is unknown",
+                fix="read the sweep time back from the instrument",
+            )
+        dt = s.sweep_time_s / n
+        windowed = s.detector is not Detector.SAMPLE and dt * s.rbw_filter.stat_bw_hz(s.rbw_hz) > 1
+        rho = (
+            _window_time_kernel(s, dt, max_lag)
+            if windowed
+            else time_power_correlation(s.rbw_filter, lags * dt, s.rbw_hz)
+        )
+    else:
+        spacing = _uniform_spacing(trace.freq_hz)
+        rho = frequency_power_correlation(s.rbw_filter, lags * spacing, s.rbw_hz)
+    rho[0] = 1.0
+    keep = np.flatnonzero(rho >= CORRELATION_FLOOR)
+    return rho[: int(keep[-1]) + 1]
+
+
+def _uniform_spacing(freq_hz: np.ndarray) -> float:
+    d = np.diff(freq_hz)
+    spacing = float(np.mean(d))
+    if spacing <= 0 or np.max(np.abs(d - spacing)) > 0.01 * abs(spacing):
+        raise InputError(
+            "trace.freq_hz",
+            "must be increasing and uniformly spaced",
+            fix="pass the trace's own frequency axis (linear sweep)",
+        )
+    return spacing
+
+
+def _window_time_kernel(s: AcquisitionSettings, dt: float, max_lag: int) -> np.ndarray:
+    """Correlation of point averages over consecutive windows of ``dt`` (RMS/AVERAGE, zero span).
+
+    Cov(j) = integral C(u) max(0, dt - |u - j dt|) du, C the power correlation in time
+    (trapezoidal rule on a grid fine against both dt and the correlation time).
+    """
+    corr_time = 1.0 / s.rbw_filter.stat_bw_hz(s.rbw_hz)
+    reach = min(60.0 * corr_time, (max_lag + 1) * dt)  # C is negligible beyond 60 / B_stat
+    step = min(dt, corr_time) / 64.0
+    u = np.linspace(0.0, reach, int(math.ceil(reach / step)) + 1)
+    c = time_power_correlation(s.rbw_filter, u, s.rbw_hz)
+    lags = np.arange(0, min(max_lag, int(reach / dt) + 1) + 1)
+    weight = np.maximum(0.0, dt - np.abs(u[None, :] - lags[:, None] * dt))
+    cov = np.trapezoid(c[None, :] * weight, u, axis=1)
+    cov[0] *= 2.0  # the window overlaps itself on both sides of u = 0
+    out = cov / cov[0]
+    return np.append(out, 0.0)
+
+
+# --- spur search ------------------------------------------------------------------------------
+
+
+def _gamma_shape(rel_var: float) -> float:
+    return 1.0 / rel_var
+
+
+def _robust_relative_variance(power: np.ndarray) -> float:
+    """Relative variance of the points from their median absolute deviation (spur-robust)."""
+    med = float(np.median(power))
+    mad = float(np.median(np.abs(power - med)))
+    return max((1.4826 * mad / med) ** 2, 1e-12)
+
+
+def _find_spurs(
+    trace: Trace, power: np.ndarray, rel_var: float, kernel: np.ndarray, threshold_sigma: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Exclusion mask, spur frequencies and their excluded half-widths (Hz)."""
+    s = trace.settings
+    f = trace.freq_hz
+    n = power.size
+    spacing = _uniform_spacing(f)
+    a = _gamma_shape(rel_var)
+    median_ratio = float(special.gammaincinv(a, 0.5) / a)
+    tail_ratio = float(special.gammainccinv(a, stats.norm.sf(threshold_sigma)) / a)
+    # running-median window: ~SPUR_BASELINE_BINS independent bins, so the baseline itself is
+    # quiet (its relative noise ~ 1.25 sigma / sqrt(bins)); narrower only for long traces
+    corr_points = max(1.0, 2.0 * float(np.sum(kernel)) - 1.0)
+    window = int(min(n, max(101, SPUR_BASELINE_BINS * corr_points)))
+    window += (window + 1) % 2  # odd
+    # residual skirt allowed per point: a fraction of the relative resolution of the full trace
+    skirt_level = SPUR_SKIRT_FRACTION * math.sqrt(rel_var / n)
+    excluded = np.zeros(n, dtype=bool)
+    spurs: list[float] = []
+    widths: list[float] = []
+    baseline = np.full(n, float(np.median(power)) / median_ratio)
+    for _ in range(50):
+        work = np.where(excluded, baseline * median_ratio, power)
+        if window >= n:
+            baseline = np.full(
+                n, float(np.median(work[~excluded] if np.any(~excluded) else work)) / median_ratio
+            )
+        else:
+            baseline = ndimage.median_filter(work, size=window, mode="mirror") / median_ratio
+        hits = (power > tail_ratio * baseline) & ~excluded
+        if not np.any(hits):
+            break
+        labels, count = ndimage.label(hits)
+        for lab in range(1, count + 1):
+            idx = np.flatnonzero(labels == lab)
+            peak = int(idx[np.argmax(power[idx] / baseline[idx])])
+            excess = max(power[peak] - baseline[peak], 0.0)
+            # the line may sit half a point away from the peak point: size it for that worst case
+            edge = float(s.rbw_filter.power_response(np.array([spacing / 2]), s.rbw_hz)[0])
+            line = excess / max(edge, 1e-300)
+            level = skirt_level * baseline[peak] / line
+            half = response_halfwidth_ratio(s.rbw_filter, level) * s.rbw_hz + spacing / 2
+            excluded |= np.abs(f - f[peak]) <= half
+            spurs.append(float(f[peak]))
+            widths.append(half)
+    if spurs:
+        logger.debug("excluded %d spur(s) at %s Hz", len(spurs), spurs)
+    order = np.argsort(spurs)
+    return excluded, np.asarray(spurs)[order], np.asarray(widths)[order]
+
+
+# --- per-band estimate ------------------------------------------------------------------------
+
+
+def _select_band(
+    p: _Prepared, freq_hz: float | None, band_hz: float | None, min_points: int
+) -> tuple[float, slice, int]:
+    """(reported frequency, slice of the trace points inside the band, points required).
+
+    A requested band must hold ``min_points``; the whole trace (no band) needs fewer when it
+    has fewer points.
+    """
+    f = p.freq_hz
+    s = p.trace.settings
+    if freq_hz is not None and (not math.isfinite(freq_hz) or freq_hz <= 0):
+        raise InputError("freq_hz", f"must be a finite frequency > 0 (got {freq_hz!r})")
+    if band_hz is not None and (not math.isfinite(band_hz) or band_hz <= 0):
+        raise InputError(
+            "band_hz",
+            f"must be a finite bandwidth > 0 (got {band_hz!r})",
+            fix="omit it to use the whole trace",
+        )
+    if min_points < 1:
+        raise InputError("min_points", "must be >= 1", value=min_points)
+    lo, hi = float(f[0]), float(f[-1])
+    whole = slice(0, f.size)
+    if p.zero_span:
+        if freq_hz is not None and abs(freq_hz - lo) > s.enbw_hz / 2:
+            raise InputError(
+                "freq_hz",
+                f"{freq_hz:g} Hz is not within the RBW of the zero-span trace at {lo:g} Hz",
+                fix="estimate at the trace's centre",
+            )
+        report, band = (lo if freq_hz is None else freq_hz), whole
+    else:
+        spacing = (hi - lo) / (f.size - 1)
+        report = 0.5 * (lo + hi) if freq_hz is None else freq_hz
+        if band_hz is None:
+            if freq_hz is not None and not lo - spacing / 2 <= freq_hz <= hi + spacing / 2:
+                raise InputError(
+                    "freq_hz",
+                    f"{freq_hz:g} Hz is outside the trace ({lo:g}..{hi:g} Hz)",
+                    fix="use a trace that covers it",
+                )
+            band = whole
+        else:
+            half = band_hz / 2
+            if report - half < lo - spacing / 2 or report + half > hi + spacing / 2:
+                raise InputError(
+                    "band_hz",
+                    f"{report:g} +/- {half:g} Hz extends beyond the trace ({lo:g}..{hi:g} Hz)",
+                    fix="narrow the band or widen the span",
+                )
+            tol = half * 1e-12 + 1e-9 * spacing
+            band = slice(
+                int(np.searchsorted(f, report - half - tol, side="left")),
+                int(np.searchsorted(f, report + half + tol, side="right")),
+            )
+    count = band.stop - band.start
+    required = min_points if band is not whole else min(min_points, f.size)
+    if count < required:
+        raise InputError(
+            "band_hz",
+            f"holds {count} trace point(s), fewer than {required}",
+            fix="widen the band or acquire more trace points",
+        )
+    return report, band, required
+
+
+def _estimate_band(
+    p: _Prepared, freq_hz: float | None, band_hz: float | None, *, min_points: int
+) -> NoiseDensity:
+    report_hz, sl, required = _select_band(p, freq_hz, band_hz, min_points)
+    used = ~p.excluded[sl]
+    n = int(used.sum())
+    if n < max(required, 1):
+        raise MeasurementError(
+            f"only {n} of {used.size} points in the band are free of spurs "
+            f"(spurs at {np.round(p.spurs_hz, 1).tolist()} Hz)",
+            freq_hz=report_hz,
+        )
+    values = p.power[sl]
+    mean = float(np.mean(values[used]))  # > 0: every point is a positive power
+    stats_ = _band_statistics(values, used, p.kernel)
+    rel_var, scatter_ratio = _relative_variance(p, stats_, mean)
+    rel_u = math.sqrt(rel_var * stats_.s1) / n
+    if scatter_ratio is not None and p.rel_var is not None:
+        if scatter_ratio > _widen_limit(stats_, p.model):
+            logger.debug(
+                "scatter %.2fx the prediction at %.6g Hz: uncertainty widened",
+                scatter_ratio,
+                report_hz,
+            )
+            rel_u *= scatter_ratio
+    density = mean * p.to_density
+    f_used = p.freq_hz[sl][used]
+    enbw = p.trace.settings.enbw_hz
+    spurs = _spurs_touching(p, float(p.freq_hz[sl][0]), float(p.freq_hz[sl][-1]))
+    return NoiseDensity(
+        freq_hz=report_hz,
+        density_w_per_hz=density,
+        u_density_w_per_hz=density * rel_u,
+        independent_samples=n**2 / stats_.s1 / rel_var,
+        band_hz=float(np.ptp(f_used)) + enbw,
+        bins_used=n,
+        excluded_freq_hz=spurs,
+        scatter_ratio=scatter_ratio,
+        bias_correction_db=p.model.correction_db,
+        settings=p.trace.settings,
+        acquisition_time_s=_acquisition_time(p.trace),
+    )
+
+
+@dataclass(frozen=True)
+class _BandStats:
+    n: int
+    s1: float  # sum_ij rho_ij over used points
+    s2: float  # sum_ij rho_ij^2 over used points
+    rss: float  # residual sum of squares about a straight line
+    expected_rss_factor: float  # n - tr(P C): E[rss] = r m^2 * this
+
+
+def _band_statistics(values: np.ndarray, used: np.ndarray, kernel: np.ndarray) -> _BandStats:
+    mask = used.astype(float)
+    n = int(used.sum())
+    sym = np.concatenate([kernel[:0:-1], kernel])
+
+    def corr_apply(x: np.ndarray) -> np.ndarray:  # (C x) restricted to used points
+        if kernel.size == 1:
+            return x * mask
+        return signal.oaconvolve(x * mask, sym, mode="same") * mask
+
+    c_mask = corr_apply(mask)
+    s1 = float(np.sum(c_mask))
+    s2 = float(
+        np.sum((signal.oaconvolve(mask, sym**2, mode="same") if kernel.size > 1 else mask) * mask)
+    )
+    if n < 3:
+        return _BandStats(n=n, s1=s1, s2=s2, rss=0.0, expected_rss_factor=0.0)
+    idx = np.arange(values.size, dtype=float)
+    t = (idx - idx[used].mean()) / max(float(np.ptp(idx[used])), 1.0)
+    x = np.stack([mask, t * mask])  # design columns, zero outside the used points
+    xtx = x @ x.T
+    beta = np.linalg.solve(xtx, x @ (values * mask))
+    resid = (values - beta[0] - beta[1] * t) * mask
+    rss = float(resid @ resid)
+    cx = np.stack([c_mask, corr_apply(x[1])])
+    tr_pc = float(np.trace(np.linalg.solve(xtx, x @ cx.T)))
+    return _BandStats(n=n, s1=s1, s2=s2, rss=rss, expected_rss_factor=n - tr_pc)
+
+
+def _relative_variance(p: _Prepared, st: _BandStats, mean: float) -> tuple[float, float | None]:
+    """(relative variance of one point, scatter ratio) — predicted, or observed when unknown."""
+    observed = (
+        st.rss / (mean**2 * st.expected_rss_factor) if st.expected_rss_factor >= 1.0 else None
+    )
+    if p.rel_var is not None:
+        ratio = None if observed is None else math.sqrt(observed / p.rel_var)
+        return p.rel_var, ratio
+    if observed is None or st.expected_rss_factor < 2.0:
+        raise InputError(
+            "trace.settings.detector_samples",
+            "is unknown and the band holds too few "
+            "independent points to measure the noise scatter instead",
+            fix="read the detector's sample count back from the instrument, or widen the band",
+        )
+    return observed, None
+
+
+def _widen_limit(st: _BandStats, model: PointModel) -> float:
+    """99 % quantile of the scatter ratio of clean noise (chi-square, Satterthwaite dof)."""
+    dof = st.n**2 / st.s2 - 2.0
+    dof = max(dof / (1.0 + model.excess_kurtosis / 2.0), 1.0)
+    return math.sqrt(stats.chi2.ppf(SCATTER_WIDEN_QUANTILE, dof) / dof)
+
+
+def _spurs_touching(p: _Prepared, lo_hz: float, hi_hz: float) -> list[float]:
+    if p.spurs_hz.size == 0:
+        return []
+    touch = (p.spurs_hz + p.spur_halfwidth_hz >= lo_hz) & (
+        p.spurs_hz - p.spur_halfwidth_hz <= hi_hz
+    )
+    return [float(x) for x in p.spurs_hz[touch]]
+
+
+def _acquisition_time(trace: Trace) -> float | None:
+    if trace.acquisition_time_s is not None:
+        return trace.acquisition_time_s
+    s = trace.settings
+    return None if s.sweep_time_s is None else s.sweep_time_s * s.averages
+
+
+# --- markers ----------------------------------------------------------------------------------
+
+
+def _marker_model(reading: MarkerReading) -> PointModel:
+    """Point model of the reading; with unknown sample count the single-sample variance bound."""
+    s = reading.settings
+    try:
+        model = point_model_for(s, field="reading.settings")
+    except InputError as exc:
+        if not (reading.instrument_corrected and exc.field.endswith("detector_samples")):
+            raise
+        model = None
+    if model is None or not model.variance_known:
+        stat = model.statistic if model is not None else statistic_for_scale(s.averaging_scale)
+        model = PointModel(statistic=stat, count=float(s.averages), shape=1.0)
+    return model
+
+
+def _marker_points(reading: MarkerReading, model: PointModel) -> tuple[int, float]:
+    """(points in the marker band, ``w^T R w / (sum w)^2``) from the settings.
+
+    ``w`` are the band weights of :func:`band_weights_hz` and ``R`` the correlation of the
+    point values, so the relative variance of the reading is the point's times the second.
+    """
+    s = reading.settings
+    if reading.band_hz is None or s.span_hz == 0 or s.points < 2:
+        return 1, 1.0
+    weights = band_weights_hz(s.frequencies_hz(), reading.freq_hz, reading.band_hz)
+    touched = np.flatnonzero(weights > 0)
+    if touched.size == 0:  # the band misses the trace: a single point is the honest bound
+        return 1, 1.0
+    w = weights[touched[0] : touched[-1] + 1]
+    spacing = s.span_hz / (s.points - 1)
+    lags = np.arange(min(w.size, MAX_KERNEL_LAGS + 1), dtype=float)
+    rho = frequency_power_correlation(s.rbw_filter, lags * spacing, s.rbw_hz)
+    rho[0] = 1.0
+    rho = model.correlation(rho[: int(np.flatnonzero(rho >= CORRELATION_FLOOR)[-1]) + 1])
+    if rho.size == 1:
+        quad = float(w @ w)
+    else:
+        sym = np.concatenate([rho[:0:-1], rho])
+        quad = float(w @ signal.oaconvolve(w, sym, mode="same"))
+    return int(touched.size), quad / float(np.sum(w)) ** 2

@@ -1,0 +1,179 @@
+"""Input checks, loss de-embedding and density-derived flags shared by the two methods."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable
+
+import numpy as np
+
+from noisebench.errors import InputError
+from noisebench.science.density import NoiseDensity
+from noisebench.science.physics import T0_K
+from noisebench.science.point import PointFlag
+
+DEFAULT_SCATTER_LIMIT = 1.5
+"""Observed/predicted scatter above which a density is flagged EXCESS_SCATTER.
+
+The estimator's ``scatter_ratio`` is ~1 for clean Gaussian noise and its own sampling spread is
+a few percent for the hundreds of bins a band holds; 1.5 is far outside that spread and means
+drift, interference or a wrong statistical model, not bad luck.
+"""
+
+DEFAULT_LOW_GAIN_DB = 10.0
+"""DUT gain below which a point is flagged LOW_GAIN.
+
+Below 10 dB the second-stage term (F2 - 1)/G1 is more than a tenth of the analyzer's excess
+noise factor; with the 10-25 dB NF of an analyzer it rivals or exceeds the DUT's own excess
+noise, so the result leans on the correction and on the gain value (common practice: the
+analyzer-based methods suit DUTs with gain well above the analyzer's noise figure).
+"""
+
+DEFAULT_FLOOR_WARNING_DB = 3.0
+"""Margin (DUT noise over the analyzer's own noise) below which NEAR_ANALYZER_FLOOR is set.
+
+At a 3 dB margin the second-stage correction is 1.76 dB, the density jitter is amplified by
+sqrt(1 + r^2)/(1 - r) = 2.24 (r = 10^(-margin/10), reference.md §4) and a floor error enters the
+NF at about half its size.
+"""
+
+FREQ_REL_TOL = 1e-6
+"""Two densities belong to the same point when their frequencies agree to 1 ppm."""
+
+
+def check_number(field: str, value: float) -> float:
+    """A finite float, or InputError naming ``field``."""
+    try:
+        x = float(value)
+    except (TypeError, ValueError) as exc:
+        raise InputError(field, f"must be a number (got {value!r})") from exc
+    if not math.isfinite(x):
+        raise InputError(
+            field, f"must be finite (got {x!r})", fix="check the reading or the table it came from"
+        )
+    return x
+
+
+def check_temperature(field: str, value: float) -> float:
+    """A physical temperature in K (> 0), or InputError naming ``field``."""
+    t = check_number(field, value)
+    if t <= 0:
+        raise InputError(
+            field,
+            f"must be > 0 K (got {t!r})",
+            fix="give an absolute temperature in kelvin (K = degC + 273.15)",
+        )
+    return t
+
+
+def check_non_negative(field: str, value: float, fix: str) -> float:
+    x = check_number(field, value)
+    if x < 0:
+        raise InputError(field, f"must be >= 0 (got {x!r})", fix=fix)
+    return x
+
+
+def check_loss_db(field: str, value: float) -> float:
+    return check_non_negative(
+        field, value, "give a loss as a positive number of dB (0.5 for a 0.5 dB cable)"
+    )
+
+
+def check_losses(
+    input_loss_db: float,
+    output_loss_db: float,
+    input_loss_temperature_k: float | None,
+    output_loss_temperature_k: float | None,
+    default_temperature_k: float,
+) -> tuple[float, float, float, float]:
+    """``(L_in, L_out, Tp_in, Tp_out)``: linear losses (>= 1) and their physical temperatures
+    in K, a missing temperature taking ``default_temperature_k``."""
+    lin = 10.0 ** (check_loss_db("input_loss_db", input_loss_db) / 10.0)
+    lout = 10.0 ** (check_loss_db("output_loss_db", output_loss_db) / 10.0)
+    tp_in = (
+        default_temperature_k
+        if input_loss_temperature_k is None
+        else check_temperature("input_loss_temperature_k", input_loss_temperature_k)
+    )
+    tp_out = (
+        default_temperature_k
+        if output_loss_temperature_k is None
+        else check_temperature("output_loss_temperature_k", output_loss_temperature_k)
+    )
+    return lin, lout, tp_in, tp_out
+
+
+def check_density(field: str, density: object) -> NoiseDensity:
+    if not isinstance(density, NoiseDensity):
+        raise InputError(
+            field,
+            f"must be a NoiseDensity (got {type(density).__name__})",
+            fix="build it with noisebench.science.estimator or NoiseDensity(...)",
+        )
+    return density
+
+
+def check_same_frequency(reference: NoiseDensity, others: dict[str, NoiseDensity]) -> float:
+    """Common frequency of the densities of one point, Hz; InputError on a mismatch."""
+    f0 = reference.freq_hz
+    for name, d in others.items():
+        if not math.isclose(d.freq_hz, f0, rel_tol=FREQ_REL_TOL):
+            raise InputError(
+                f"{name}.freq_hz",
+                f"is {d.freq_hz:.9g} Hz but the point is at {f0:.9g} Hz",
+                fix="combine densities measured at the same frequency",
+            )
+    return f0
+
+
+def deembed_path_te_k(
+    te_path_k: np.ndarray,
+    path_gain_lin: np.ndarray,
+    input_loss_lin: float,
+    input_loss_temperature_k: float | np.ndarray,
+    output_loss_lin: float,
+    output_loss_temperature_k: float | np.ndarray,
+) -> tuple[np.ndarray, np.ndarray]:
+    """(Te_DUT, G_DUT) from a measured path [input loss, DUT, output loss] (Friis).
+
+    Te_path = (L_in - 1) Tp_in + L_in (Te_DUT + (L_out - 1) Tp_out / G_DUT), with
+    G_DUT = G_path L_in L_out. Inputs are already validated (this runs inside the models);
+    see physics.deembed_input_loss_te_k / deembed_output_loss_te_k for the checked forms.
+    """
+    dut_gain = np.asarray(path_gain_lin) * input_loss_lin * output_loss_lin
+    te_after_input = (
+        np.asarray(te_path_k) - (input_loss_lin - 1.0) * input_loss_temperature_k
+    ) / input_loss_lin
+    te_dut = te_after_input - (output_loss_lin - 1.0) * output_loss_temperature_k / dut_gain
+    return te_dut, dut_gain
+
+
+def density_flags(densities: Iterable[NoiseDensity], scatter_limit: float) -> list[PointFlag]:
+    """SPURS_EXCLUDED / EXCESS_SCATTER when any of the point's densities carries them."""
+    flags: list[PointFlag] = []
+    ds = list(densities)
+    if any(d.excluded_freq_hz for d in ds):
+        flags.append(PointFlag.SPURS_EXCLUDED)
+    if any(d.scatter_ratio is not None and d.scatter_ratio > scatter_limit for d in ds):
+        flags.append(PointFlag.EXCESS_SCATTER)
+    return flags
+
+
+def instrument_time_s(densities: Iterable[NoiseDensity]) -> float | None:
+    """Total acquisition time of the point's own densities, or None if any is unknown."""
+    times = [d.acquisition_time_s for d in densities]
+    if not times or any(t is None for t in times):
+        return None
+    return float(sum(times))  # type: ignore[arg-type]
+
+
+def nf_db_from_te(te_k: float, t0_k: float = T0_K) -> float:
+    """NF in dB of a (possibly slightly negative) Te; caller guarantees Te > -T0."""
+    return 10.0 * math.log10(1.0 + te_k / t0_k)
+
+
+def margin_db(dut_noise: float, analyzer_noise: float) -> float | None:
+    """10 log10(DUT noise / analyzer's own noise); None when the analyzer noise is not > 0."""
+    if analyzer_noise <= 0 or dut_noise <= 0:
+        return None
+    return 10.0 * math.log10(dut_noise / analyzer_noise)

@@ -1,0 +1,64 @@
+"""The result of one frequency point, whatever the method."""
+
+from __future__ import annotations
+
+from enum import Enum
+from typing import Any
+
+from pydantic import BaseModel, ConfigDict, Field
+
+
+class Method(str, Enum):
+    GAIN = "gain"
+    Y_FACTOR = "y_factor"
+
+
+class PointFlag(str, Enum):
+    """Qualifiers attached to a point result. Each one means 'read this point with care'."""
+
+    Y_TOO_SMALL = "y_too_small"  # Y close to 1: NF very sensitive to jitter
+    NEAR_ANALYZER_FLOOR = "near_analyzer_floor"  # DUT noise within a few dB of the floor
+    ENR_EXTRAPOLATED = "enr_extrapolated"  # ENR clamped outside the table's range
+    SPURS_EXCLUDED = "spurs_excluded"  # narrowband lines removed from the band
+    TIME_LIMIT = "time_limit"  # target uncertainty not reached within the time limit
+    EXCESS_SCATTER = "excess_scatter"  # trace scatter well above the statistics' prediction
+    LOW_GAIN = "low_gain"  # DUT gain low: second-stage correction large
+    COMPRESSION_RISK = "compression_risk"  # total power near the analyzer's limit
+    NEGATIVE_TE = "negative_te"  # corrected Te below zero: physically implausible reading
+
+
+class PointResult(BaseModel):
+    """NF, noise temperature and gain at one frequency, with uncertainty and flags.
+
+    ``u_nf_db`` is the standard uncertainty of the statistical part (jitter of the densities),
+    propagated through the method; the full budget lives in :mod:`noisebench.science.uncertainty`.
+    ``floor_margin_db`` is how far the DUT's output noise sits above the analyzer's own noise;
+    ``floor_correction_db`` is how much the second-stage correction changed the NF.
+    ``densities_w_per_hz`` keeps the raw inputs (e.g. ``dut``/``floor`` or
+    ``hot``/``cold``/``hot_cal``/``cold_cal``) for plots and re-analysis.
+    """
+
+    model_config = ConfigDict(extra="forbid")
+
+    freq_hz: float = Field(gt=0)
+    method: Method
+    nf_db: float
+    te_k: float
+    gain_db: float | None = None
+    y_db: float | None = None
+    u_nf_db: float = Field(ge=0)
+    u_te_k: float = Field(ge=0)
+    u_gain_db: float | None = Field(default=None, ge=0)
+    floor_margin_db: float | None = None
+    floor_correction_db: float | None = None
+    enr_db: float | None = None
+    source_temperature_k: float | None = None
+    densities_w_per_hz: dict[str, float] = Field(default_factory=dict)
+    flags: list[PointFlag] = Field(default_factory=list)
+    averages: int | None = None
+    instrument_time_s: float | None = None
+    notes: dict[str, Any] = Field(default_factory=dict)
+
+    @property
+    def noise_factor(self) -> float:
+        return 10.0 ** (self.nf_db / 10.0)

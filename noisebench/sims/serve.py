@@ -1,0 +1,136 @@
+"""Console entry: serve a simulated bench over SCPI/TCP until Ctrl-C.
+
+    python -m noisebench.sims --scenario demo-lna --seed 1 --host 127.0.0.1 --port 5025
+
+prints one VISA resource string per instrument (analyzer on PORT, generator on PORT+1, DC
+supply on PORT+2; ``--port 0`` picks free ports) and serves until interrupted.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+import threading
+from collections.abc import Callable, Sequence
+from typing import Any, TextIO
+
+from noisebench.errors import NoisebenchError
+
+from .scpi_server import INSTRUMENTS, SimServer
+
+logger = logging.getLogger(__name__)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="python -m noisebench.sims",
+        description="Serve a simulated noise-figure bench (analyzer, generator, DC supply) "
+        "over SCPI on raw TCP sockets.",
+    )
+    parser.add_argument(
+        "--scenario",
+        default="demo-lna",
+        help="scenario name or path to a scenario TOML file (default: demo-lna)",
+    )
+    parser.add_argument("--seed", type=int, default=0, help="random seed (default: 0)")
+    parser.add_argument(
+        "--host",
+        default="127.0.0.1",
+        help="address to listen on (default: 127.0.0.1, loopback only)",
+    )
+    parser.add_argument(
+        "--port",
+        type=int,
+        default=5025,
+        help="analyzer port; generator PORT+1, supply PORT+2; 0 = free ports (default: 5025)",
+    )
+    parser.add_argument(
+        "--time-scale",
+        type=float,
+        default=0.0,
+        metavar="FRACTION",
+        help="real seconds slept per simulated second of acquisition "
+        "(default: 0 = as fast as computed)",
+    )
+    parser.add_argument(
+        "--duration",
+        type=float,
+        default=None,
+        metavar="SECONDS",
+        help="stop after this many seconds (default: run until Ctrl-C)",
+    )
+    parser.add_argument(
+        "--log-commands",
+        action="store_true",
+        help="log every received command line (debug level of the server's logger)",
+    )
+    parser.add_argument("-v", "--verbose", action="store_true", help="debug logging")
+    return parser
+
+
+def _default_bench_factory(scenario: str, seed: int) -> Any:
+    from noisebench.sims.bench import SimulatedBench
+
+    return SimulatedBench.from_scenario(scenario, seed=seed)
+
+
+def main(
+    argv: Sequence[str] | None = None,
+    *,
+    out: TextIO | None = None,
+    stop_event: threading.Event | None = None,
+    bench_factory: Callable[[str, int], Any] | None = None,
+) -> int:
+    """Run the simulator; returns the exit code (0 ok, 2 bad input, 1 could not start)."""
+    out = out or sys.stdout
+    args = build_parser().parse_args(argv)
+    logging.basicConfig(
+        level=logging.DEBUG if args.verbose else logging.INFO,
+        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
+    )
+    if args.time_scale < 0:
+        print("error: --time-scale must be >= 0", file=sys.stderr)
+        return 2
+    if not 0 <= args.port <= 65533:
+        print("error: --port must be 0..65533 (three consecutive ports are used)", file=sys.stderr)
+        return 2
+    try:
+        bench = (bench_factory or _default_bench_factory)(args.scenario, args.seed)
+    except NoisebenchError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    server = SimServer(
+        bench,
+        host=args.host,
+        port=args.port,
+        log_commands=False,
+        acquisition_time_scale=args.time_scale,
+    )
+    if args.log_commands:
+        logging.getLogger("noisebench.sims.scpi_server").setLevel(logging.DEBUG)
+    try:
+        server.start()
+    except OSError as exc:
+        print(
+            f"error: cannot listen on {args.host}:{args.port}: {exc.strerror or exc}",
+            file=sys.stderr,
+        )
+        return 1
+    stop = stop_event or threading.Event()
+    try:
+        print(f"simulated bench '{args.scenario}' (seed {args.seed}):", file=out)
+        for name in INSTRUMENTS:
+            print(f"  {name:<10} {server.resource(name)}", file=out)
+        print("Ctrl-C to stop.", file=out, flush=True)
+        stop.wait(args.duration)
+    except KeyboardInterrupt:
+        pass
+    finally:
+        server.stop()
+        print("stopped.", file=out, flush=True)
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
