@@ -64,12 +64,12 @@ from noisebench.bench.acquisition import (
 from noisebench.errors import InputError, MeasurementError
 from noisebench.science.density import NoiseDensity
 from noisebench.science.detection import PointModel, point_model_for, statistic_for_scale
-from noisebench.science.plausibility import check_trace_values
 from noisebench.science.filters import (
     frequency_power_correlation,
     response_halfwidth_ratio,
     time_power_correlation,
 )
+from noisebench.science.plausibility import check_trace_values
 
 logger = logging.getLogger(__name__)
 

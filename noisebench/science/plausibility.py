@@ -4,7 +4,8 @@ A trace can be wrong in ways no setting describes: the instrument marks a point 
 for with the SCPI not-a-number code, a profile announces one byte order while the instrument
 sends the other (the numbers decode to garbage spanning 1e-45..1e38), or a reading is a linear
 value where dBm was promised. Each of these gets an :class:`~noisebench.errors.InputError`
-(field ``trace.values``) that names the cause and the fix, instead of an overflow and a message about something else.
+(field ``trace.values``) that names the cause and the fix, instead of an overflow and a
+message about something else.
 The scatter checks (a frozen trace, averaging in a state the settings do not describe) live in
 the estimator, which knows the statistics.
 """
