@@ -117,6 +117,21 @@ def check_row_count(rows: int, *, field: str, what: str) -> None:
         )
 
 
+def safe_path_component(text: str | None, *, default: str = "unit", max_length: int = 64) -> str:
+    """``text`` made safe as ONE file-name component (DUT id, serial, test name in a folder name).
+
+    Every character that is not an ASCII letter, digit, ``-``, ``_`` or ``.`` becomes ``_``
+    (so ``/``, ``\\``, NUL, control characters and spaces never reach a path), a run of dots is
+    never left on its own (``..`` cannot name a parent folder), and the result is cut to
+    ``max_length`` characters so that a long name never exceeds the file system's limit.
+    """
+    cleaned = "".join(
+        ch if ch.isascii() and (ch.isalnum() or ch in "-_.") else "_" for ch in text or ""
+    )
+    cleaned = cleaned[:max_length].strip(".")
+    return cleaned or default
+
+
 def list_problems(problems: list[str], limit: int = MAX_PROBLEMS_LISTED) -> list[str]:
     """The first ``limit`` problems, then one line counting the rest."""
     if len(problems) <= limit:
@@ -138,4 +153,5 @@ __all__ = [
     "check_row_count",
     "list_problems",
     "read_user_text",
+    "safe_path_component",
 ]

@@ -18,6 +18,7 @@ switches, a reboot). Block faults are one-shot; see ``noisebench/sims/SCPI.md``.
 
 from __future__ import annotations
 
+import ipaddress
 import logging
 import selectors
 import socket
@@ -25,6 +26,7 @@ import threading
 from typing import Any
 
 from noisebench import __version__
+from noisebench.errors import InputError
 
 from .scpi_analyzer import AnalyzerScpi
 from .scpi_instruments import (
@@ -171,6 +173,16 @@ class _Client:
         self.sock.close()
 
 
+def is_loopback(host: str) -> bool:
+    """True if ``host`` is a loopback address (127.0.0.0/8, ::1) or ``localhost``."""
+    if host.strip().lower() == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host.strip().strip("[]")).is_loopback
+    except ValueError:
+        return False  # a host name or a wildcard ("", "0.0.0.0" is not loopback either)
+
+
 class SimServer:
     """SCPI-over-TCP front end of a simulated bench (analyzer, generator, DC supply).
 
@@ -192,9 +204,16 @@ class SimServer:
         acquisition_time_scale: float = 0.0,
         wall_clock: bool = True,
         command_log_limit: int = 100_000,
+        allow_remote: bool = False,
     ) -> None:
         if acquisition_time_scale < 0:
             raise ValueError("acquisition_time_scale must be >= 0")
+        if not is_loopback(host) and not allow_remote:
+            raise InputError(
+                "host",
+                f"{host!r} is not a loopback address; the simulator has no authentication",
+                fix="listen on 127.0.0.1, or pass allow_remote=True (--allow-remote) on purpose",
+            )
         self.bench = bench
         self.host = host
         self.port = int(port)
