@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import io
 import json
-import socket
 import sqlite3
 import threading
 from pathlib import Path
