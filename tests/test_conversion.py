@@ -6,7 +6,8 @@ Measuring Noise in Linear Twoports, Proc. IRE 48 (1960); IEEE Std 161 definition
 factor for multiple-response transducers; see docs/references.md) and the expected SSB and DSB
 noise figures come straight from that definition:
 
-    F_SSB = [T0 (G_s + G_i) + N_a/k] / (T0 G_s),   F_DSB = [T0 (G_s + G_i) + N_a/k] / (T0 (G_s + G_i)).
+    F_SSB = [T0 (G_s + G_i) + N_a/k] / (T0 G_s),
+    F_DSB = [T0 (G_s + G_i) + N_a/k] / (T0 (G_s + G_i)).
 
 Nothing below uses the code under test to build its inputs or its expected values.
 """
