@@ -55,6 +55,8 @@ class Faults:
     """Fault switches of one server; all off by default, settable at any time.
 
     - ``reply_delay_s``: wait this long before every reply.
+    - ``hold_replies``: keep every reply back until it is switched off again (tests of
+      timeouts use it so that a reply can never arrive early, however loaded the machine).
     - ``drop_after_commands``: the next N received lines are processed, then the connection
       that received the N-th is closed (0: the next line is not processed, its connection is
       closed). Fires once, then resets to ``None``.
@@ -71,6 +73,7 @@ class Faults:
 
     _SWITCHES = (
         "reply_delay_s",
+        "hold_replies",
         "drop_after_commands",
         "drop_mid_block",
         "truncate_block",
@@ -82,6 +85,7 @@ class Faults:
         self._server: SimServer | None = None
         self._lock = threading.Lock()
         self.reply_delay_s: float = 0.0
+        self.hold_replies = False
         self.drop_after_commands: int | None = None
         self.drop_mid_block = False
         self.truncate_block = False
@@ -111,6 +115,7 @@ class Faults:
     def clear(self) -> None:
         """Every switch off."""
         self.reply_delay_s = 0.0
+        self.hold_replies = False
         self.drop_after_commands = None
         self.drop_mid_block = False
         self.truncate_block = False
@@ -463,6 +468,9 @@ class SimServer:
         delay = float(self.faults.reply_delay_s)
         if delay > 0 and (client.closed.wait(delay) or self._stop.is_set()):
             return
+        while self.faults.hold_replies:  # held until the test lets it go
+            if client.closed.wait(0.01) or self._stop.is_set():
+                return
         chunks: list[bytes] = []
         for index, response in enumerate(responses):
             if index:
