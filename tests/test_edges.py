@@ -378,3 +378,45 @@ def test_median_threshold_ratio_matches_monte_carlo():
         med = np.median(rng.gamma(shape, 1 / shape, (200_000, bins)), axis=1)
         rate = np.mean(rng.gamma(shape, 1 / shape, 200_000) > t * med)
         assert rate == pytest.approx(1e-3, abs=5 * math.sqrt(1e-3 / 200_000))
+
+
+# --- 8. connection failures in words ------------------------------------------------------------
+
+
+def test_refused_connection_is_named_at_open():
+    # reported: a refused TCP connection printed "opened ..." and then "the instrument closed
+    # the connection (before '*IDN?')"
+    import socket
+
+    from noisebench.drivers.transport import VisaSession
+    from noisebench.errors import CommunicationError
+
+    free = socket.create_server(("127.0.0.1", 0))
+    port = free.getsockname()[1]
+    free.close()
+    with pytest.raises(CommunicationError) as info:
+        VisaSession(f"TCPIP0::127.0.0.1::{port}::SOCKET", timeout_s=1.0, open_timeout_s=2.0)
+    text = str(info.value)
+    assert "connection refused" in text and "nothing listens on that port" in text
+    assert "closed the connection" not in text
+
+
+def test_unreachable_host_is_named_in_words():
+    # reported: an unreachable host gave the raw VISA code -1073807339 (VI_ERROR_TMO)
+    import pyvisa
+
+    from noisebench.drivers.transport import VisaSession
+    from noisebench.errors import CommunicationError
+
+    class Unreachable:
+        def open_resource(self, resource, open_timeout=None):
+            raise pyvisa.errors.VisaIOError(pyvisa.constants.StatusCode.error_timeout)
+
+    with pytest.raises(CommunicationError) as info:
+        VisaSession(
+            "TCPIP0::192.0.2.1::5025::SOCKET", resource_manager=Unreachable(), open_timeout_s=3
+        )
+    message = info.value.message
+    assert "no connection within 3 s" in message and "check the IP address" in message
+    assert "-1073807339" not in message and "VI_ERROR_TMO" not in message
+    assert info.value.visa_code == -1073807339  # kept for the log, not as the message
