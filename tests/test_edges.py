@@ -420,3 +420,86 @@ def test_unreachable_host_is_named_in_words():
     assert "no connection within 3 s" in message and "check the IP address" in message
     assert "-1073807339" not in message and "VI_ERROR_TMO" not in message
     assert info.value.visa_code == -1073807339  # kept for the log, not as the message
+
+
+# --- 2. unit slips in tables, caught by validate on the table alone -----------------------------
+
+
+def test_enr_table_in_mhz_under_a_freq_hz_header_is_refused_alone(tmp_path):
+    # reported: only caught when a plan used the table, not by `validate` on the table
+    from noisebench.science.enr import validate_enr_file
+
+    path = tmp_path / "enr.csv"
+    path.write_text("freq_hz,enr_db\n10,15.2\n1000,15.1\n18000,14.6\n", encoding="utf-8")
+    problems = validate_enr_file(path)
+    assert len(problems) == 1
+    assert "enr.csv line 2, freq_hz" in problems[0] and "look like MHz" in problems[0]
+    assert "highest 18000 Hz" in problems[0]
+
+
+@pytest.mark.parametrize(
+    "line, expected",
+    [
+        ("# nominal_drive_v: inf", "nominal_drive_v: Input should be a finite number"),
+        ("# nominal_drive_v: 280", "280 V is above the plausible 60 V"),
+        ("# calibration_temperature_k: 23", "looks like degrees Celsius"),
+    ],
+)
+def test_enr_table_header_values_get_their_ranges(tmp_path, line, expected):
+    from noisebench.science.enr import validate_enr_file
+
+    path = tmp_path / "enr.csv"
+    path.write_text(f"{line}\nfreq_hz,enr_db\n1e9,15.2\n2e9,15.1\n", encoding="utf-8")
+    problems = validate_enr_file(path)
+    assert len(problems) == 1 and expected in problems[0], problems
+    assert "enr.csv line 1" in problems[0]
+
+
+def test_loss_table_temperature_refuses_celsius_and_allows_a_stated_cryogenic_cable():
+    from noisebench.science.gain_files import GainTable
+
+    with pytest.raises(InputError, match="looks like degrees Celsius"):
+        GainTable.from_csv("# temperature_k: 23\nfreq_hz,loss_db\n1e9,0.5\n2e9,0.7\n")
+    with pytest.raises(InputError, match="cryogenic: true"):
+        GainTable.from_csv("# temperature_k: 77\nfreq_hz,loss_db\n1e9,0.5\n2e9,0.7\n")
+    cold = GainTable.from_csv(
+        "# temperature_k: 77\n# cryogenic: true\nfreq_hz,loss_db\n1e9,0.5\n2e9,0.7\n"
+    )
+    assert cold.temperature_k == 77.0
+
+
+def test_gain_table_in_mhz_is_refused_and_khz_states_a_low_table_on_purpose():
+    from noisebench.science.gain_files import GainTable
+
+    with pytest.raises(InputError, match="look like MHz"):
+        GainTable.from_csv("freq_hz,gain_db\n500,20\n2500,19\n")
+    low = GainTable.from_csv("freq_khz,gain_db\n50,20\n250,19\n")
+    assert low.range_hz == (50e3, 250e3)
+
+
+def test_range_table_is_complete_and_sourced():
+    from noisebench.science.ranges import RANGES, check_range, describe_ranges
+
+    for key, spec in RANGES.items():
+        assert spec.source, key
+        if spec.refuse_below is not None and spec.usual_low is not None:
+            assert spec.refuse_below <= spec.usual_low, key
+        if spec.refuse_above is not None and spec.usual_high is not None:
+            assert spec.usual_high <= spec.refuse_above, key
+    assert len(describe_ranges()) == len(RANGES)
+    # the liquid-nitrogen cold load: refused as a typo, accepted when stated on purpose
+    with pytest.raises(InputError, match="cryogenic = true"):
+        check_range("physical_temperature_k", "cold_temperature_k", 77.0)
+    assert check_range("physical_temperature_k", "cold_temperature_k", 77.0, on_purpose=True) == 77
+    with pytest.raises(InputError, match="below the plausible 1 K"):
+        check_range("physical_temperature_k", "cold_temperature_k", 0.5, on_purpose=True)
+
+
+def test_unusual_values_warn_once(caplog):
+    from noisebench.science.ranges import check_range
+
+    with caplog.at_level("WARNING", logger="noisebench.science.ranges"):
+        for _ in range(3):
+            check_range("dut_gain_db", "expect.dut_gain_db", -6.0)
+    warnings = [r for r in caplog.records if "expect.dut_gain_db" in r.getMessage()]
+    assert len(warnings) == 1 and "legal but unusual" in warnings[0].getMessage()

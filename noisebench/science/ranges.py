@@ -272,6 +272,21 @@ def _refusal(
     return f"{text} ({spec.source})"
 
 
+def frequency_column_problem(freqs_hz: list[float], column: str) -> str | None:
+    """A ``freq_hz`` column whose highest frequency is below 1 MHz almost surely holds MHz
+    (or GHz) numbers: the message, or None. A table really below 1 MHz states it on purpose
+    by naming its column ``freq_khz``."""
+    finite = [f for f in freqs_hz if math.isfinite(f) and f > 0]
+    usual = RANGES["frequency_hz"].usual_low
+    if column != "freq_hz" or not finite or usual is None or max(finite) >= usual:
+        return None
+    return (
+        f"every frequency is below {usual:g} Hz (highest {max(finite):g} Hz): the numbers look "
+        "like MHz or GHz under a freq_hz header; name the column freq_mhz or freq_ghz (or "
+        "freq_khz for a table that really lies below 1 MHz)"
+    )
+
+
 def describe_ranges() -> list[tuple[str, str, str, str]]:
     """(key, refused outside, usual, source) rows for documentation and ``noisebench info``."""
     return [
