@@ -109,7 +109,8 @@ def test_expanded_uncertainty_column_is_divided_by_its_coverage_factor():
         ),
         (
             "freq_hz,enr_db\n1,15\n2,15\n26.5,14\n",
-            "enr.csv line 2, freq_hz: every frequency is below 1e+06 Hz (highest 26.5 Hz): the numbers look like MHz or GHz",
+            "enr.csv line 2, freq_hz: every frequency is below 1e+06 Hz (highest 26.5 Hz): "
+            "the numbers look like MHz or GHz",
         ),
         ("enr_db\n15\n14\n", "enr.csv, freq_hz: is missing"),
     ],
