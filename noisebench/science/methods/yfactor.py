@@ -207,7 +207,8 @@ def _te_of_pair(hot, cold, enr_db, tc, t0, ref, freq_hz, what: str):
     if np.any(mask):
         raise MeasurementError(
             f"{what} at {_where(freq_hz, mask)}: hot reading is not above the cold one; check "
-            "that the noise source switches, is connected and has settled"
+            "that the noise source switches, is connected and has settled, and that the DUT is "
+            "powered and connected (an unpowered DUT passes no source noise)"
         )
     th = np.asarray(hot_temperature_k(10.0 ** (enr_db / 10.0), tc, t0, ref))
     if np.any(th <= tc):
