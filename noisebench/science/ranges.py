@@ -78,7 +78,7 @@ RANGES: dict[str, PhysicalRange] = {
         refuse_above=400.0,
         usual_low=290.0,
         usual_high=290.0,
-        source="IEEE Std 161 / IRE definition of noise figure: T0 = 290 K",
+        source="the IRE/IEEE definition of noise figure fixes T0 = 290 K (from memory)",
         low_hint=TEMPERATURE_HINT_C,
     ),
     "frequency_hz": PhysicalRange(
