@@ -366,10 +366,12 @@ class PlanRunner:
         return chosen if freqs_hz is None else plan_for_frequencies(chosen, freqs_hz)
 
     def _folder(self) -> Path:
+        from noisebench.user_files import safe_path_component
+
         self.state.runs += 1
         out = _option_path(self.request.config, "nb_out")
         name = f"{self.request.node.name}-run{self.state.runs}"
-        name = "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in name)[:120]
+        name = safe_path_component(name, default="run", max_length=120)
         if out is not None:
             return out / name
         return self.request.getfixturevalue("tmp_path") / name

@@ -21,6 +21,7 @@ from noisebench.science.propagation import (
     Distribution,
     standard_uncertainty_from_half_width,
 )
+from noisebench.user_files import MAX_TOUCHSTONE_BYTES, check_file_size
 
 logger = logging.getLogger(__name__)
 
@@ -118,6 +119,7 @@ def load_reflection_file(path: str | Path, port: int = 1) -> tuple[np.ndarray, n
             value=str(path),
             fix="check the path (relative to the plan)",
         ) from None
+    check_file_size(path, MAX_TOUCHSTONE_BYTES, field="touchstone", what="Touchstone file")
     freq, mag = _load_reflection_cached(str(path.resolve()), stat.st_mtime_ns, port)
     return freq.copy(), mag.copy()
 
