@@ -147,3 +147,53 @@ def test_pytest_plugin_never_passes_a_dead_dut(pytester: pytest.Pytester, monkey
     )
     result.assert_outcomes(passed=1, failed=1)
     result.stdout.fnmatch_lines(["*unit verdict is *, expected PASS*"])
+
+
+def test_calibration_flags_reach_the_csv_the_report_and_the_database(tmp_path, capsys):
+    """Reported: a calibration that hit its time limit only printed a warning; the points
+    measured with it did not say so. Now results.csv, report.html and the database carry
+    ``cal_time_limit`` on every point that used it."""
+    import csv
+    import sqlite3
+
+    from noisebench.results.database import ResultsDatabase
+
+    plan = tmp_path / "plan.toml"
+    plan.write_text(
+        "\n".join(
+            [
+                'method = "y_factor"',
+                "[dut]",
+                'id = "CALTL-1"',
+                "[bench]",
+                'analyzer = { resource = "sim://demo-lna?seed=1", compression_dbm = -3.0 }',
+                "[acquisition]",
+                "rbw_hz = 1e6",
+                "span_hz = 6e6",
+                "attenuation_db = 0",
+                "target_u_nf_db = 0.01",  # far below what 0.5 s can reach
+                "time_limit_s = 0.5",
+                "[sweep]",
+                "freqs_hz = [1e9, 2e9]",
+                "[enr]",
+                f'table = "{ENR_CSV.as_posix()}"',
+                "[output]",
+                "plots = false",
+            ]
+        ),
+        encoding="utf-8",
+    )
+    folder = tmp_path / "run"
+    assert cli.main(["-q", "run", str(plan), "--out", str(folder)]) == cli.EXIT_OK
+    capsys.readouterr()
+    with open(folder / "results.csv", encoding="utf-8", newline="") as handle:
+        rows = list(csv.DictReader(handle))
+    assert len(rows) == 2
+    assert all("cal_time_limit" in row["flags"].split(";") for row in rows)
+    assert "cal_time_limit" in (folder / "report.html").read_text(encoding="utf-8")
+    url = tmp_path / "results.sqlite"
+    with ResultsDatabase(url) as db:
+        db.store_run(load_run(folder))
+    with sqlite3.connect(url) as con:
+        flags = [row[0] for row in con.execute("SELECT flags FROM points ORDER BY freq_hz")]
+    assert len(flags) == 2 and all("cal_time_limit" in f.split(";") for f in flags)

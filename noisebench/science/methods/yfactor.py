@@ -544,13 +544,6 @@ def y_factor_point(
         raise _y_too_close_to_one(freq_hz, "Y-factor measurement", float(result.y)) from None
 
     te_k = float(result.te_dut_k)
-    if te_k <= -t0:
-        raise MeasurementError(
-            f"Y-factor at {freq_hz:.6g} Hz: noise factor <= 0 (Te = {te_k:.1f} K); Y is larger "
-            "than the source's Th/Tc allows: check the ENR, the cold temperature and the "
-            "calibration",
-            freq_hz=freq_hz,
-        )
     check_te_plausible(
         te_k,
         float(props["te"].u()),
@@ -560,6 +553,13 @@ def y_factor_point(
         "right frequency, enr_reference), cold_temperature_k, that the DUT is powered and the "
         "calibration was made on this path",
     )
+    if te_k <= -t0:
+        raise MeasurementError(
+            f"Y-factor at {freq_hz:.6g} Hz: noise factor <= 0 (Te = {te_k:.1f} K); Y is larger "
+            "than the source's Th/Tc allows: check the ENR, the cold temperature and the "
+            "calibration",
+            freq_hz=freq_hz,
+        )
     nf_db = nf_db_from_te(te_k, t0)
     dnf_dte = DB_PER_NEPER_POWER / (t0 + te_k)
     names = {
