@@ -503,3 +503,127 @@ def test_unusual_values_warn_once(caplog):
             check_range("dut_gain_db", "expect.dut_gain_db", -6.0)
     warnings = [r for r in caplog.records if "expect.dut_gain_db" in r.getMessage()]
     assert len(warnings) == 1 and "legal but unusual" in warnings[0].getMessage()
+
+
+# --- 2. unit slips and implausible settings in plans (one range mechanism) ---------------------
+
+
+def _plan_problems(**sections) -> list[str]:
+    from noisebench.running.plan import PlanError, parse_plan
+
+    data = {
+        "method": "y_factor",
+        "bench": {"analyzer": "sim://demo-lna?seed=1"},
+        "sweep": {"freqs_hz": [1e9, 2e9]},
+    }
+    for key, value in sections.items():
+        data[key] = {**data.get(key, {}), **value} if isinstance(value, dict) else value
+    try:
+        parse_plan(data, check_files=False)
+    except PlanError as exc:
+        return exc.problems
+    return []
+
+
+@pytest.mark.parametrize(
+    "sections, expected",
+    [
+        # reported: source_temperature_k = 23 (meant 23 degC) ran silently, NF 2.5 dB off
+        (
+            {"corrections": {"source_temperature_k": 23.0}},
+            "corrections.source_temperature_k: 23 K is below the plausible 200 K: a value this "
+            "low looks like degrees Celsius",
+        ),
+        ({"corrections": {"input_loss_temperature_k": 25.0}}, "23 degC is 296.15 K"),
+        ({"bench": {"analyzer": "sim://demo-lna?seed=1", "ambient_k": 21.5}}, "bench.ambient_k"),
+        ({"corrections": {"source_temperature_k": 77.0}}, "say cryogenic = true"),
+        ({"sweep": {"freqs_hz": [2000.0]}}, "sweep.freqs_hz[0]: 2000 Hz is below the plausible"),
+        ({"acquisition": {"rbw_hz": 0.001}}, "looks like kHz or MHz given where Hz is asked"),
+        # issue 14's list: values no bench can have
+        (
+            {"bench": {"analyzer": {"resource": "sim://demo-lna?seed=1", "max_input_dbm": -1e308}}},
+            "bench.analyzer.max_input_dbm: -1e+308 dBm is below the plausible -30 dBm",
+        ),
+        (
+            {
+                "bench": {
+                    "analyzer": {
+                        "resource": "sim://demo-lna?seed=1",
+                        "max_input_dbm": 20.0,
+                        "compression_dbm": 20.0,
+                    }
+                }
+            },
+            "compression_dbm: 20 dBm is not below max_input_dbm 20 dBm",
+        ),
+        (
+            {
+                "bench": {
+                    "analyzer": "sim://demo-lna?seed=1",
+                    "generator": {"resource": "sim", "max_level_dbm": -1e308},
+                }
+            },
+            "bench.generator.max_level_dbm: -1e+308 dBm is below the plausible -150 dBm",
+        ),
+        ({"expect": {"dut_gain_db": -75.0}}, "expect.dut_gain_db: -75 dB is below"),
+        (
+            {"limits": {"bands": [{"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": -1.0}]}},
+            "nf_max_db: -1 dB is below the plausible 0 dB",
+        ),
+    ],
+)
+def test_implausible_plan_values_are_refused_with_the_likely_slip(sections, expected):
+    problems = _plan_problems(**sections)
+    assert any(expected in p for p in problems), problems
+
+
+def test_a_cryogenic_cold_load_stated_on_purpose_stays_possible():
+    assert _plan_problems(corrections={"source_temperature_k": 77.0, "cryogenic": True}) == []
+
+
+@pytest.mark.parametrize(
+    "sections, label",
+    [
+        # issue 14's list: legal but unusual values warn once (attenuators stay possible)
+        (
+            {"bench": {"analyzer": {"resource": "sim://demo-lna?seed=1", "max_input_dbm": -1.0}}},
+            "bench.analyzer.max_input_dbm",
+        ),
+        ({"expect": {"dut_gain_db": 0.0}}, "expect.dut_gain_db"),
+        ({"expect": {"dut_gain_db": -1.0}}, "expect.dut_gain_db"),
+        (
+            {"limits": {"bands": [{"start_hz": 1e9, "stop_hz": 2e9, "gain_min_db": 0.0}]}},
+            "limits.bands[].gain_min_db",
+        ),
+        (
+            {
+                "method": "gain",
+                "bench": {"analyzer": "sim://demo-lna?seed=1", "generator": "sim"},
+                "gain": {"source": "measure", "max_gain_db": 30.0, "dut_p1db_out_dbm": -1.0},
+            },
+            "gain.dut_p1db_out_dbm",
+        ),
+        ({"acquisition": {"rbw_hz": 1.0}}, "acquisition.rbw_hz"),
+    ],
+)
+def test_unusual_plan_values_warn_once(sections, label, caplog):
+    from noisebench.science import ranges
+
+    ranges._warned.clear()
+    with caplog.at_level("WARNING", logger="noisebench.science.ranges"):
+        assert _plan_problems(**sections) == []
+        _plan_problems(**sections)  # the same value again: no second warning
+    lines = [r.getMessage() for r in caplog.records if label in r.getMessage()]
+    assert len(lines) == 1 and "legal but unusual" in lines[0], caplog.text
+
+
+@settings(max_examples=60, deadline=None, derandomize=True)
+@given(
+    field=st.sampled_from(
+        ["source_temperature_k", "input_loss_temperature_k", "output_loss_temperature_k"]
+    ),
+    kelvin=st.one_of(st.floats(0.01, 199.9), st.floats(500.1, 1e6)),
+)
+def test_random_out_of_range_temperatures_never_run_silently(field, kelvin):
+    problems = _plan_problems(corrections={field: kelvin})
+    assert any(f"corrections.{field}" in p and "plausible" in p for p in problems), problems
