@@ -32,6 +32,7 @@ from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError,
 
 from noisebench.bench.acquisition import AveragingScale, Detector, SweepMode, TraceUnit
 from noisebench.errors import CommunicationError, InputError
+from noisebench.user_files import MAX_PROFILE_BYTES, read_user_text
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -874,13 +875,5 @@ def load_profile(profile: str | Path | InstrumentProfile = "generic") -> Instrum
                 fix=f"give a path to a .toml file or one of {available_profiles()}",
             )
         path = packaged
-    try:
-        text = path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(
-            "profile",
-            f"cannot read {path}: {exc}",
-            value=str(path),
-            fix="check the path and that the file is UTF-8 text",
-        ) from None
+    text = read_user_text(path, MAX_PROFILE_BYTES, field=f"profile {path}", what="profile")
     return parse_profile(text, source=str(path))
