@@ -101,4 +101,30 @@ def read_model(path: Path, model: type[M], *, fix: str) -> M:
         raise RunFileError(path, f"is damaged: {key}: {first['msg']}{more}", fix=fix) from None
 
 
-__all__ = ["MAX_RUN_FILE_BYTES", "RunFileError", "read_bytes", "read_model", "read_text"]
+def describe_damage(exc: BaseException) -> str:
+    """What is wrong with one journal line, in words (no Python exception names)."""
+    if isinstance(exc, UnicodeDecodeError):
+        return f"not UTF-8 text (byte {exc.start} of the line)"
+    if isinstance(exc, UnicodeEncodeError):
+        return "holds a text escape that is not a character (a lone surrogate)"
+    if isinstance(exc, RecursionError):
+        return "nested too deeply to be ours"
+    if isinstance(exc, ValueError) and type(exc).__name__ == "JSONDecodeError":
+        return f"not valid JSON ({getattr(exc, 'msg', exc)} at column {getattr(exc, 'colno', '?')})"
+    if isinstance(exc, ValidationError):
+        first = exc.errors()[0]
+        key = ".".join(str(p) for p in first["loc"]) or "entry"
+        return f"{key}: {first['msg']}"
+    if isinstance(exc, KeyError):
+        return f"the entry has no {exc.args[0]!r}"
+    return str(exc) or "unreadable"
+
+
+__all__ = [
+    "describe_damage",
+    "MAX_RUN_FILE_BYTES",
+    "RunFileError",
+    "read_bytes",
+    "read_model",
+    "read_text",
+]

@@ -56,6 +56,7 @@ import logging
 import math
 import os
 import platform
+import re
 import secrets
 import tempfile
 import threading
@@ -69,6 +70,7 @@ from typing import Any, Literal, TypeVar
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, ValidationInfo, field_validator
 
 from noisebench.errors import InputError
+from noisebench.results.run_files import RunFileError, describe_damage, read_model
 from noisebench.science.point import Method, PointFlag, PointResult
 
 logger = logging.getLogger(__name__)
@@ -349,6 +351,9 @@ def _sorted_budgets(budgets: Iterable[dict[str, Any]]) -> list[dict[str, Any]]:
 # ----------------------------------------------------------------------------- journal
 
 
+_SURROGATE_ESCAPE = re.compile(rb"\\u[dD][89a-fA-F]")
+
+
 class _Journal:
     """What a journal holds, parsed tolerantly. ``valid_bytes`` ends after the last good line."""
 
@@ -363,7 +368,9 @@ class _Journal:
 
 
 def _parse_entry(line: bytes, where: str, journal: _Journal) -> None:
-    entry = json.loads(line)
+    entry = json.loads(line.decode("utf-8"))  # strict: no encoded surrogates
+    if _SURROGATE_ESCAPE.search(line):  # "\ud800" escapes give text that cannot be written
+        json.dumps(entry, ensure_ascii=False).encode("utf-8")  # UnicodeEncodeError: damaged
     kind = entry.get("kind") if isinstance(entry, dict) else None
     if kind == "point":
         point = _clean_point(PointResult.model_validate(entry["point"]))  # finite, as written
@@ -400,14 +407,17 @@ def _read_journal(path: Path) -> _Journal:
         where = f"{path.name} line {index + 1}"
         try:
             _parse_entry(piece, where, journal)
-        except (ValueError, KeyError, TypeError, ValidationError) as exc:
+        except (ValueError, KeyError, TypeError, ValidationError, RecursionError) as exc:
             if index == last:
                 text = (
                     f"{where}: incomplete last entry ({len(piece)} bytes) ignored; "
                     "the run was probably killed while writing it"
                 )
             else:
-                text = f"{where}: unreadable entry skipped ({type(exc).__name__}: {exc})"
+                text = (
+                    f"{where}: damaged entry skipped ({describe_damage(exc)}); the line is kept "
+                    "in the file as it is"
+                )
             logger.warning(text)
             journal.warnings.append(text)
             if index == last:
@@ -810,34 +820,51 @@ def _read_info(folder: Path) -> RunInfo:
             f"{folder} holds no {RUN_INFO_FILE}",
             fix="pass a run folder written by noisebench",
         )
-    try:
-        return RunInfo.model_validate_json(path.read_text(encoding="utf-8"))
-    except ValidationError as exc:
-        raise InputError(
-            f"{RUN_INFO_FILE}",
-            f"is not a valid run description "
-            f"({exc.error_count()} problems, first: {exc.errors()[0]['msg']})",
-            fix="restore the file from a backup",
-        ) from None
+    return read_model(
+        path,
+        RunInfo,
+        fix=f"restore {RUN_INFO_FILE} from a backup; the journal {JOURNAL_FILE} was not touched",
+    )
 
 
 def load_run(folder: Path) -> RunRecord:
     """Load a run: from ``results.json`` when finished, else rebuilt from the journal.
 
     A run rebuilt from the journal reports status ``running`` if a live process still holds
-    the folder, otherwise ``interrupted``; ``record.warnings`` says so.
+    the folder, otherwise ``interrupted``; ``record.warnings`` says so. A damaged file is
+    worked around where an intact one holds the same data (``run.json`` by ``results.json``,
+    ``results.json`` by the journal), with a warning naming the file, line and damage; the
+    damaged file is left as it is.
     """
     folder = Path(folder)
-    info = _read_info(folder)
+    try:
+        info = _read_info(folder)
+    except RunFileError as damaged:
+        return _record_without_info(folder, damaged)
     results = folder / RESULTS_JSON_FILE
     if info.status != "running" and results.exists():
         try:
-            return RunRecord.model_validate_json(results.read_text(encoding="utf-8"))
-        except ValidationError as exc:
-            logger.warning(
-                "%s unreadable (%s); rebuilding from the journal", results, exc.errors()[0]["msg"]
-            )
+            return read_model(results, RunRecord, fix="rebuilt from the journal")
+        except RunFileError as exc:
+            warning = f"{exc}; the points were read from the journal {JOURNAL_FILE} instead"
+            logger.warning(warning)
+            record = _record_from_journal(folder, info)
+            return record.model_copy(update={"warnings": [warning, *record.warnings]})
     return _record_from_journal(folder, info)
+
+
+def _record_without_info(folder: Path, damaged: RunFileError) -> RunRecord:
+    """A run whose ``run.json`` is damaged: from ``results.json`` if that is intact."""
+    results = folder / RESULTS_JSON_FILE
+    if not results.exists():
+        raise damaged
+    try:
+        record = read_model(results, RunRecord, fix="restore it from a backup")
+    except RunFileError:
+        raise damaged from None
+    warning = f"{damaged}; the run description was taken from {RESULTS_JSON_FILE}"
+    logger.warning(warning)
+    return record.model_copy(update={"warnings": [warning, *record.warnings]})
 
 
 def _record_from_journal(folder: Path, info: RunInfo) -> RunRecord:
