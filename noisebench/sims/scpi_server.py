@@ -29,6 +29,7 @@ from noisebench import __version__
 from noisebench.errors import InputError
 
 from .scpi_analyzer import AnalyzerScpi
+from .scpi_compact import CompactAnalyzerScpi
 from .scpi_instruments import (
     Block,
     GeneratorScpi,
@@ -43,6 +44,9 @@ from .scpi_parser import ScpiError
 logger = logging.getLogger(__name__)
 
 __all__ = ["INSTRUMENTS", "Faults", "SimServer"]
+
+#: Analyzer command sets: the generic one (SCPI.md) and a second dialect (scpi_compact.py).
+ANALYZER_DIALECTS = {"generic": AnalyzerScpi, "compact": CompactAnalyzerScpi}
 
 #: Instrument names, in port order (analyzer on PORT, generator on PORT+1, supply on PORT+2).
 INSTRUMENTS = ("analyzer", "generator", "supply")
@@ -209,10 +213,14 @@ class SimServer:
         acquisition_time_scale: float = 0.0,
         wall_clock: bool = True,
         command_log_limit: int = 100_000,
+        dialect: str = "generic",
         allow_remote: bool = False,
     ) -> None:
         if acquisition_time_scale < 0:
             raise ValueError("acquisition_time_scale must be >= 0")
+        if dialect not in ANALYZER_DIALECTS:
+            raise ValueError(f"dialect must be one of {sorted(ANALYZER_DIALECTS)}")
+        self.dialect = dialect
         if not is_loopback(host) and not allow_remote:
             raise InputError(
                 "host",
@@ -239,7 +247,7 @@ class SimServer:
         self._wake_w: socket.socket | None = None
         common = (bench, self._bench_lock, self.faults, self._stop)
         self.instruments: dict[str, ScpiInstrument] = {
-            "analyzer": AnalyzerScpi(
+            "analyzer": ANALYZER_DIALECTS[dialect](
                 *common, _identity(bench, "analyzer"), time_scale=acquisition_time_scale
             ),
             "generator": GeneratorScpi(*common, _identity(bench, "generator")),

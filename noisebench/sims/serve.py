@@ -72,6 +72,13 @@ def build_parser() -> argparse.ArgumentParser:
         action="store_true",
         help="log every received command line (debug level of the server's logger)",
     )
+    parser.add_argument(
+        "--dialect",
+        choices=("generic", "compact"),
+        default="generic",
+        help="the analyzer's command set: generic (profile 'generic') or compact "
+        "(profile 'sim_compact': MHz units, switch marker, no abort; default: generic)",
+    )
     parser.add_argument("-v", "--verbose", action="store_true", help="debug logging")
     return parser
 
@@ -127,6 +134,7 @@ def main(
         log_commands=False,
         allow_remote=args.allow_remote,
         acquisition_time_scale=args.time_scale,
+        dialect=args.dialect,
     )
     if args.log_commands:
         logging.getLogger("noisebench.sims.scpi_server").setLevel(logging.DEBUG)
@@ -140,7 +148,11 @@ def main(
         return 1
     stop = stop_event or threading.Event()
     try:
-        print(f"simulated bench '{args.scenario}' (seed {args.seed}):", file=out)
+        print(
+            f"simulated bench '{args.scenario}' (seed {args.seed}, analyzer dialect "
+            f"{args.dialect}):",
+            file=out,
+        )
         for name in INSTRUMENTS:
             print(f"  {name:<10} {server.resource(name)}", file=out)
         print("Ctrl-C to stop.", file=out, flush=True)
