@@ -22,6 +22,7 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from noisebench.errors import InputError
+from noisebench.user_files import MAX_SCENARIO_BYTES, read_user_text
 
 try:  # Python 3.11+
     import tomllib
@@ -385,7 +386,8 @@ def _scenario_data(path: FsPath, seen: tuple[str, ...]) -> dict[str, Any]:
     """The TOML of a scenario; ``based_on = "other"`` starts from another scenario's data and
     changes only what this file states (e.g. the demo LNA switched off)."""
     try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
+        text = read_user_text(path, MAX_SCENARIO_BYTES, field="scenario", what="scenario")
+        data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise InputError("scenario", f"{path.name}: {exc}", fix="fix the TOML syntax") from None
     base = data.pop("based_on", None)
