@@ -319,9 +319,6 @@ class Segment(BaseModel):
     max_trace_span_hz: float | None = Field(default=None, ge=0)
     min_band_fill: float | None = Field(default=None, gt=0, le=1)
 
-    _rbw_range = _ranged("rbw_hz", "sweep.segments", "rbw_hz")
-    _freq_range = _ranged("frequency_hz", "sweep.segments", "start_hz", "stop_hz")
-
     @field_validator("freqs_hz", mode="after")
     @classmethod
     def _positive_freqs(cls, value: list[float] | None) -> list[float] | None:
@@ -333,6 +330,11 @@ class Segment(BaseModel):
             if not math.isfinite(f) or f <= 0:
                 raise InputError(f"freqs_hz[{i}]", f"must be a finite frequency > 0 (got {f!r})")
         return value
+
+    _rbw_range = _ranged("rbw_hz", "sweep.segments", "rbw_hz")
+    _freq_range = _ranged(  # after the sign check
+        "frequency_hz", "sweep.segments", "start_hz", "stop_hz", "freqs_hz"
+    )
 
     @model_validator(mode="after")
     def _one_form(self) -> Segment:
@@ -414,12 +416,13 @@ class SweepSection(BaseModel):
     model_config = _STRICT
     freqs_hz: list[float] | None = None
     segments: list[Segment] = Field(default_factory=list)
-    _freq_range = _ranged("frequency_hz", "sweep", "freqs_hz")
 
     @field_validator("freqs_hz", mode="after")
     @classmethod
     def _positive(cls, value: list[float] | None) -> list[float] | None:
         return Segment._positive_freqs(value)
+
+    _freq_range = _ranged("frequency_hz", "sweep", "freqs_hz")  # after the sign check
 
     @model_validator(mode="after")
     def _not_empty(self) -> SweepSection:
