@@ -603,7 +603,7 @@ def test_a_cryogenic_cold_load_stated_on_purpose_stays_possible():
             },
             "gain.dut_p1db_out_dbm",
         ),
-        ({"acquisition": {"rbw_hz": 1.0}}, "acquisition.rbw_hz"),
+        ({"acquisition": {"rbw_hz": 300.0}}, "acquisition.rbw_hz"),
     ],
 )
 def test_unusual_plan_values_warn_once(sections, label, caplog):
