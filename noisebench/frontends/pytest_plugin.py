@@ -244,7 +244,8 @@ def _fail_setup(exc: BaseException) -> None:
 
 def _with_bench(plan: Any, address: str | None) -> Any:
     """``plan`` with its analyzer at ``address`` (checked like a loaded plan)."""
-    from noisebench.running.plan import PlanError, cross_check
+    from noisebench.running.plan import PlanError
+    from noisebench.running.plan_checks import cross_check
 
     if address is None or address == plan.bench.analyzer.resource:
         return plan
