@@ -126,7 +126,7 @@ def test_noise_marker_is_corrected_for_log_averaging_on_every_back_end(backend):
     )
     reading = sa.read_marker(1.5e9, MarkerKind.NOISE_DENSITY, 5e6)
     # the instrument removed the log-average bias and divided by the ENBW, and says so
-    # (CALC:MARK:FUNC:CORR? on the SCPI back end)
+    # (CALC:MARK:QUAN:CORR? on the SCPI back end)
     assert reading.instrument_corrected is True
     density = density_from_marker(reading)
     assert density.bias_correction_db == 0.0

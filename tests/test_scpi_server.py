@@ -176,10 +176,10 @@ EXACT_ROUND_TRIPS = [
     ("FORM:DATA ASCii", "FORM?", "ASC"),
     ("FORM:BORD SWAP", "FORM:BORD?", "SWAP"),
     ("CALC:MARK:X 1.001 GHZ", "CALC:MARK:X?", "1001000000"),
-    ("CALC:MARK2:FUNC BPOW", "CALC:MARK2:FUNC?", "BPOW"),
-    ("CALC:MARK3:FUNC NOISe", "CALC:MARK3:FUNC?", "NOIS"),
-    ("CALC:MARK:FUNC:BAND 2 MHZ", "CALC:MARK:FUNC:BAND?", "2000000"),
-    ("CALC:MARK:FUNC:BAND 2 MHZ", "CALC:MARK:FUNC:BAND:AUTO?", "0"),
+    ("CALC:MARK2:QUAN INT", "CALC:MARK2:QUAN?", "INT"),
+    ("CALC:MARK3:QUAN DENSity", "CALC:MARK3:QUAN?", "DENS"),
+    ("CALC:MARK:QUAN:WIDT 2 MHZ", "CALC:MARK:QUAN:WIDT?", "2000000"),
+    ("CALC:MARK:QUAN:WIDT 2 MHZ", "CALC:MARK:QUAN:WIDT:AUTO?", "0"),
     ("OUTP:NOIS ON", "OUTP:NOIS?", "1"),
     ("SIM:PATH THR", "SIM:PATH?", "THR"),
     ("SIM:PATH TERMination", "SIM:PATH?", "TERM"),
@@ -303,9 +303,9 @@ def test_execution_error_does_not_stop_the_line(client):
 
 
 def test_rst_restores_power_on_settings(client):
-    client.write("FREQ:CENT 2e9;:DET SAMP;:FORM REAL,32;:CALC:MARK:FUNC NOIS;:OUTP:NOIS ON")
+    client.write("FREQ:CENT 2e9;:DET SAMP;:FORM REAL,32;:CALC:MARK:QUAN DENS;:OUTP:NOIS ON")
     assert (
-        client.query("*RST;:FREQ:CENT?;:DET?;:FORM?;:CALC:MARK:FUNC?;:OUTP:NOIS?")
+        client.query("*RST;:FREQ:CENT?;:DET?;:FORM?;:CALC:MARK:QUAN?;:OUTP:NOIS?")
         == "1000000000;RMS;ASC;OFF;0"
     )
     assert client.errors() == []
@@ -490,23 +490,23 @@ def test_normal_marker_reads_the_nearest_trace_point(client):
     values = [float(v) for v in client.query("TRAC?").split(",")]
     client.write("CALC:MARK:X 1.0002e9")  # nearest point: 1.0002 GHz (index 7)
     assert float(client.query("CALC:MARK:Y?")) == values[7]
-    assert client.query("CALC:MARK:FUNC:CORR?") == "0"
+    assert client.query("CALC:MARK:QUAN:CORR?") == "0"
 
 
 def test_marker_functions_use_the_last_trace(client, sim_server):
     from noisebench.bench.acquisition import MarkerKind
     from noisebench.sims.analyzer import marker_from_trace
 
-    client.write("FREQ:CENT 1e9;SPAN 20e6;:BAND 1e6;:DET RMS;:CALC:MARK:FUNC NOIS")
+    client.write("FREQ:CENT 1e9;SPAN 20e6;:BAND 1e6;:DET RMS;:CALC:MARK:QUAN DENS")
     _acquire(client, points=201, averages=2)
     clock_before = sim_server.bench.clock.now_s
     density = float(client.query("CALC:MARK:Y?"))
     trace = sim_server.bench.analyzer.last_trace
     expected = marker_from_trace(trace, 1e9, MarkerKind.NOISE_DENSITY)
     assert density == pytest.approx(expected.value_db, abs=1e-4)  # float32 trace memory
-    assert client.query("CALC:MARK:FUNC:CORR?") == "1"  # RMS detector: corrected density
-    assert float(client.query("CALC:MARK:FUNC:BAND?")) == expected.band_hz
-    client.write("CALC:MARK:FUNC BPOW;FUNC:BAND 5e6")
+    assert client.query("CALC:MARK:QUAN:CORR?") == "1"  # RMS detector: corrected density
+    assert float(client.query("CALC:MARK:QUAN:WIDT?")) == expected.band_hz
+    client.write("CALC:MARK:QUAN INT;QUAN:WIDT 5e6")
     band_power = float(client.query("CALC:MARK:Y?"))
     expected = marker_from_trace(trace, 1e9, MarkerKind.BAND_POWER, 5e6)
     assert band_power == pytest.approx(expected.value_db, abs=1e-4)

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from enum import Enum
-from typing import Any
+from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
@@ -25,6 +25,36 @@ class PointFlag(str, Enum):
     LOW_GAIN = "low_gain"  # DUT gain low: second-stage correction large
     COMPRESSION_RISK = "compression_risk"  # total power near the analyzer's limit
     NEGATIVE_TE = "negative_te"  # corrected Te below zero: physically implausible reading
+
+
+class ConversionInfo(BaseModel):
+    """Frequency plan and SSB/DSB results of one point of a frequency-converting DUT.
+
+    Frequencies in Hz (``image_hz = 2 lo_hz - rf_hz``); ``sideband``: ``"upper"`` when the RF
+    lies above the LO. ``nf_type`` says which of the SSB/DSB values the point's ``nf_db`` and
+    ``te_k`` hold. ``image_rejection_db``: the converter's image response below its signal
+    response (None: no image response). ``image_correction_db = nf_ssb_db - nf_dsb_db =
+    10 log10(1 + G_i/G_s)``. ``enr_image_db``: the ENR used for the image band's share;
+    ``cal_if_enr_db``: the ENR at the IF used to calibrate the analyzer.
+    """
+
+    model_config = ConfigDict(extra="forbid")
+
+    rf_hz: float = Field(gt=0)
+    lo_hz: float = Field(gt=0)
+    if_hz: float = Field(gt=0)
+    image_hz: float = Field(gt=0)
+    sideband: Literal["lower", "upper"]
+    nf_type: Literal["ssb", "dsb"]
+    nf_ssb_db: float
+    nf_dsb_db: float
+    te_ssb_k: float
+    te_dsb_k: float
+    image_rejection_db: float | None = None
+    image_correction_db: float = Field(ge=0)
+    enr_image_db: float | None = None
+    cal_if_enr_db: float | None = None
+    lo_level_dbm: float | None = None
 
 
 class PointResult(BaseModel):
@@ -58,6 +88,7 @@ class PointResult(BaseModel):
     averages: int | None = None
     instrument_time_s: float | None = None
     notes: dict[str, Any] = Field(default_factory=dict)
+    conversion: ConversionInfo | None = None  # frequency-converting DUTs only; freq_hz is RF
 
     @property
     def noise_factor(self) -> float:
