@@ -41,7 +41,7 @@ class Backend:
 def backend(request):
     if request.param == "scpi":
         server = request.getfixturevalue("sim_server")
-        analyzer = open_analyzer(server.resource("analyzer"), timeout_s=2.0)
+        analyzer = open_analyzer(server.resource("analyzer"), timeout_s=30.0)
         source = AnalyzerDriveNoiseSource(analyzer, settle_time_s=0.1)  # real-time settling
         yield Backend("scpi", analyzer, source, server.bench)
         source.close()
@@ -157,7 +157,7 @@ def test_both_back_ends_see_the_same_noise_level():
     local.analyzer.configure(REQUEST)
     densities.append(estimate_density(local.analyzer.acquire_trace()))
     with SimServer(SimulatedBench.from_scenario("demo-lna", seed=2)) as server:
-        sa = open_analyzer(server.resource("analyzer"), timeout_s=2.0)
+        sa = open_analyzer(server.resource("analyzer"), timeout_s=30.0)
         try:
             sa.configure(REQUEST)
             densities.append(estimate_density(sa.acquire_trace()))
