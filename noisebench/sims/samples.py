@@ -215,3 +215,96 @@ class SimSampleReceiver:
             step = 2.0 ** (1 - bits)
             out = np.round(out / step) * step
         return out
+
+
+# --------------------------------------------------------------------------- recording
+
+
+def calibrate_tone_scale(
+    receiver: SimSampleReceiver, freq_hz: float, level_dbm: float, samples: int = 1 << 18
+):
+    """Measure the receiver's scale with the bench generator, as an operator would: the tone goes
+    through the THROUGH path, and its power at the receiver input is the generator level less
+    the output cable's loss (the bench's own value, as an operator reads it from the cable's
+    data). Returns a :class:`~noisebench.sampled.scale.ScaleCalibration`."""
+    from noisebench.sampled.scale import scale_from_tone
+    from noisebench.sims.bench import Path as SimPath
+
+    bench = receiver.bench
+    previous = bench.path
+    bench.set_path(SimPath.THROUGH)
+    bench.noise_source.set_hot(False)
+    offset = 0.1 * receiver.spec.sample_rate_hz
+    try:
+        bench.generator.set_cw(freq_hz, level_dbm)
+        bench.generator.set_output(True)
+        block = receiver.capture(
+            CaptureRequest(freq_hz - offset, 0.0, receiver.spec.sample_rate_hz, samples)
+        )
+    finally:
+        bench.generator.set_output(False)
+        bench.set_path(previous)
+    loss_db = float(bench.truth(freq_hz)["output_loss_db"][0])
+    cal = scale_from_tone(
+        block,
+        freq_hz,
+        level_dbm - loss_db,
+        reference=f"generator {level_dbm:g} dBm at {freq_hz:.9g} Hz less {loss_db:.3f} dB cable",
+    )
+    return cal.model_copy(update={"source_identity": receiver.info.identity})
+
+
+def record_sigmf(
+    receiver: SimSampleReceiver,
+    folder,
+    centers_hz,
+    *,
+    samples_per_state: int,
+    connections=("through", "dut", "termination"),
+    datatype: str = "cf32_le",
+    scale=None,
+    settle_s: float | None = None,
+) -> list:
+    """Write one SigMF recording per centre frequency into ``folder``: for each connection the
+    noise source cold then hot (termination: once), ``samples_per_state`` settled samples each,
+    annotated with noisebench's connection / state keys (see :mod:`noisebench.sampled.sigmf_io`).
+    The bench clock runs past each switch's settling before a capture starts, as a recorder
+    that annotates only settled samples would. Returns the meta file paths."""
+    from pathlib import Path as FsPath
+
+    from noisebench.sampled.sigmf_io import write_recording
+    from noisebench.sims.bench import Path as SimPath
+
+    bench = receiver.bench
+    out_dir = FsPath(folder)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    source = bench.noise_source
+    wait = settle_s if settle_s is not None else source.settle_time_s + source.spec.transition_time_s
+    written = []
+    fs = receiver.spec.sample_rate_hz
+    for center in centers_hz:
+        blocks = []
+        for connection in connections:
+            bench.set_path(SimPath(connection))
+            states = ("cold",) if connection == "termination" else ("cold", "hot")
+            for state in states:
+                source.set_hot(state == "hot")
+                bench.clock.advance(wait)
+                block = receiver.capture(CaptureRequest(float(center), 0.0, fs, samples_per_state))
+                blocks.append((block, connection, state))
+        source.set_hot(False)
+        name = out_dir / f"{bench.scenario.name}_{center / 1e6:.6f}MHz"
+        written.append(
+            write_recording(
+                name,
+                blocks,
+                datatype=datatype,
+                scale=scale,
+                cold_temperature_k=source.cold_temperature_k,
+                usable_fraction=receiver.spec.usable_fraction,
+                description=f"simulated hot/cold recording of scenario {bench.scenario.name!r} "
+                f"(seed {bench.seed}) at {center:.9g} Hz",
+            )
+        )
+    bench.set_path(SimPath.DUT)
+    return written
