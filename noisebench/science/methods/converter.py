@@ -1,0 +1,839 @@
+"""Y-factor and gain method for frequency-converting DUTs (mixers, downconverters, receivers).
+
+The physics (eqs. 1-6) is derived in :mod:`noisebench.science.conversion`. Readings are IF
+densities (their ``freq_hz`` is the IF); results are reported at the RF with the frequency plan,
+both SSB and DSB values and the image correction in :class:`~noisebench.science.point.
+ConversionInfo`.
+
+- Y-factor: ENR(RF) and ENR(image) give the hot temperatures of the two bands the broadband
+  noise source drives; the analyzer is calibrated at the IF with ENR(IF)
+  (:func:`~noisebench.science.methods.yfactor.calibrate_point` at the IF); conversion gain from
+  hot/cold (eq. 5); second-stage correction at the IF.
+- Gain method: conversion gain (file, constant or measured RF -> IF) and the IF floor.
+
+Input losses are evaluated at the RF and at the image (two values, the same cable); the output
+loss at the IF. The image response is stated as the image rejection in dB (``None`` or
+``math.inf``: no image response). ``u_nf_db`` is the statistical part only; the ENR terms (three
+separate variables: RF, image and IF are different frequencies of the table) and the image
+rejection's uncertainty are reported beside it in ``notes`` like the amplifier methods do.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Literal, NamedTuple
+
+import numpy as np
+
+from noisebench.errors import InputError, MeasurementError
+from noisebench.science.conversion import Sideband, image_ratio_from_rejection_db
+from noisebench.science.density import NoiseDensity
+from noisebench.science.methods._common import (
+    DEFAULT_FLOOR_WARNING_DB,
+    DEFAULT_LOW_GAIN_DB,
+    DEFAULT_SCATTER_LIMIT,
+    FREQ_REL_TOL,
+    check_density,
+    check_loss_db,
+    check_non_negative,
+    check_number,
+    check_same_frequency,
+    check_temperature,
+    density_flags,
+    instrument_time_s,
+    margin_db,
+)
+from noisebench.science.methods._propagation import propagate
+from noisebench.science.methods.yfactor import (
+    DEFAULT_Y_MIN_DB,
+    CalibrationPoint,
+    EnrReference,
+    hot_temperature_k,
+)
+from noisebench.science.physics import BOLTZMANN_J_PER_K, DB_PER_NEPER_POWER, T0_K, ArrayLike
+from noisebench.science.point import ConversionInfo, Method, PointFlag, PointResult
+
+__all__ = [
+    "ConverterSweep",
+    "NfType",
+    "converter_y_factor_sweep",
+    "converter_gain_method_sweep",
+    "converter_y_factor_point",
+    "converter_gain_method_point",
+]
+
+NfType = Literal["ssb", "dsb"]
+
+
+class ConverterSweep(NamedTuple):
+    """Array results of the converter sweep functions (one element per point)."""
+
+    nf_ssb_db: np.ndarray
+    nf_dsb_db: np.ndarray
+    te_ssb_k: np.ndarray
+    te_dsb_k: np.ndarray
+    gain_db: np.ndarray | None  # DUT conversion gain (signal band), dB
+    y_db: np.ndarray | None  # Y-factor only
+    nf_ssb_uncorrected_db: np.ndarray | None  # before the second-stage correction
+
+
+# --------------------------------------------------------------------------- shared checks
+
+
+def _rejection(image_rejection_db: float | None) -> tuple[float | None, float]:
+    """(image rejection in dB or None, linear r)."""
+    if image_rejection_db is None or image_rejection_db == math.inf:
+        return None, 0.0
+    x = check_number("image_rejection_db", image_rejection_db)
+    return x, float(image_ratio_from_rejection_db(x))
+
+
+def _through(t, loss, tp):
+    """Temperature delivered through a matched loss (linear, >= 1) at Tp."""
+    return t / loss + tp * (1.0 - 1.0 / loss)
+
+
+def _factor_checks(te_ssb: np.ndarray, r, t0: float, what: str, freq_hz=None) -> None:
+    bad = np.asarray(1.0 + r + te_ssb / t0) <= 0
+    if np.any(bad):
+        where = f" at {freq_hz:.6g} Hz" if freq_hz is not None else ""
+        raise MeasurementError(
+            f"{what}{where}: noise factor <= 0; the reading is below what the source "
+            "terminations alone deliver: check the ENR, the image rejection and the temperatures"
+        )
+
+
+def _to_sweep(te_ssb, r, t0, gain_lin, y, te_unc) -> ConverterSweep:
+    f_ssb = 1.0 + r + te_ssb / t0
+    return ConverterSweep(
+        nf_ssb_db=10.0 * np.log10(f_ssb),
+        nf_dsb_db=10.0 * np.log10(f_ssb / (1.0 + r)),
+        te_ssb_k=te_ssb,
+        te_dsb_k=te_ssb / (1.0 + r),
+        gain_db=None if gain_lin is None else 10.0 * np.log10(gain_lin),
+        y_db=None if y is None else 10.0 * np.log10(y),
+        nf_ssb_uncorrected_db=None if te_unc is None else 10.0 * np.log10(1.0 + r + te_unc / t0),
+    )
+
+
+# --------------------------------------------------------------------------- Y-factor core
+
+
+def _y_core(
+    hot,
+    cold,
+    enr_rf_db,
+    enr_image_db,
+    tc,
+    r,
+    t0,
+    ref,
+    lin_s,
+    lin_i,
+    tp_in,
+    lout,
+    tp_out,
+    cal=None,  # (hot_cal, cold_cal, enr_if_db, tc_cal) or None
+):
+    """(Te_SSB of the DUT, DUT conversion gain or None, Y, Te_SSB before the second-stage
+    correction or None), all arrays; eqs. 4 and 5 with losses applied to the temperatures."""
+    if np.any(hot <= cold):
+        raise MeasurementError(
+            "converter Y-factor: hot reading is not above the cold one; check that the noise "
+            "source switches, is connected to the RF port and the LO is on"
+        )
+    th_s = hot_temperature_k(10.0 ** (enr_rf_db / 10.0), tc, t0, ref)
+    th_i = hot_temperature_k(10.0 ** (enr_image_db / 10.0), tc, t0, ref)
+    hs, cs = _through(th_s, lin_s, tp_in), _through(tc, lin_s, tp_in)
+    hi, ci = _through(th_i, lin_i, tp_in), _through(tc, lin_i, tp_in)
+    y = hot / cold
+    te12 = (hs + r * hi - y * (cs + r * ci)) / (y - 1.0)
+    if cal is None:
+        return te12, None, y, None
+    hc, cc, enr_if_db, tc_cal = cal
+    if np.any(hc <= cc):
+        raise MeasurementError(
+            "converter Y-factor calibration at the IF: hot reading is not above the cold one"
+        )
+    th_if = hot_temperature_k(10.0 ** (enr_if_db / 10.0), tc_cal, t0, ref)
+    y2 = hc / cc
+    te2 = (th_if - y2 * tc_cal) / (y2 - 1.0)
+    g_path = ((hot - cold) / ((hs - cs) + r * (hi - ci))) / ((hc - cc) / (th_if - tc_cal))
+    te1 = te12 - te2 / g_path
+    g_dut = g_path * lout
+    te_dut = te1 - (lout - 1.0) * tp_out / g_dut
+    te_unc = te12 - (lout - 1.0) * tp_out / g_dut
+    return te_dut, g_dut, y, te_unc
+
+
+def converter_y_factor_sweep(
+    hot_w_per_hz: ArrayLike,
+    cold_w_per_hz: ArrayLike,
+    enr_rf_db: ArrayLike,
+    enr_image_db: ArrayLike,
+    *,
+    cold_temperature_k: ArrayLike,
+    image_rejection_db: float | None,
+    hot_cal_w_per_hz: ArrayLike | None = None,
+    cold_cal_w_per_hz: ArrayLike | None = None,
+    cal_if_enr_db: ArrayLike | None = None,
+    cal_cold_temperature_k: ArrayLike | None = None,
+    t0_k: float = T0_K,
+    enr_reference: EnrReference = "t0",
+    input_loss_db: float = 0.0,
+    input_loss_image_db: float | None = None,
+    input_loss_temperature_k: float | None = None,
+    output_loss_db: float = 0.0,
+    output_loss_temperature_k: float | None = None,
+) -> ConverterSweep:
+    """Converter NF (SSB and DSB), Te and conversion gain by the Y-factor, over arrays.
+
+    ``hot``/``cold``: IF densities with the noise source on the RF port; ``enr_rf_db`` /
+    ``enr_image_db``: the source's ENR at the RF and at the image; ``cal_*``: the IF
+    calibration (source straight into the analyzer at the IF, ENR(IF)), which enables the
+    second-stage correction and the gain. Losses in dB; ``input_loss_image_db`` defaults to
+    ``input_loss_db``; temperatures default to the cold temperature.
+    """
+    hot = np.asarray(hot_w_per_hz, dtype=float)
+    cold = np.asarray(cold_w_per_hz, dtype=float)
+    for name, arr in (("hot_w_per_hz", hot), ("cold_w_per_hz", cold)):
+        if not np.all(np.isfinite(arr)) or np.any(arr <= 0):
+            raise InputError(name, "must be finite densities > 0 W/Hz", fix="pass linear W/Hz")
+    tc = np.asarray(cold_temperature_k, dtype=float)
+    if np.any(tc <= 0):
+        raise InputError("cold_temperature_k", "must be > 0 K", fix="give kelvin")
+    _, r = _rejection(image_rejection_db)
+    t0 = check_temperature("t0_k", t0_k)
+    lin_s, lin_i, lout, tp_in, tp_out = _losses(
+        input_loss_db,
+        input_loss_image_db,
+        output_loss_db,
+        input_loss_temperature_k,
+        output_loss_temperature_k,
+        tc,
+    )
+    cal = None
+    if (hot_cal_w_per_hz is None) != (cold_cal_w_per_hz is None) or (
+        hot_cal_w_per_hz is not None and cal_if_enr_db is None
+    ):
+        raise InputError(
+            "hot_cal_w_per_hz",
+            "cold_cal_w_per_hz and cal_if_enr_db go together",
+            fix="pass the IF calibration's hot and cold densities and ENR(IF), or none of them",
+        )
+    if hot_cal_w_per_hz is not None:
+        cal = (
+            np.asarray(hot_cal_w_per_hz, dtype=float),
+            np.asarray(cold_cal_w_per_hz, dtype=float),
+            np.asarray(cal_if_enr_db, dtype=float),
+            tc if cal_cold_temperature_k is None else np.asarray(cal_cold_temperature_k, float),
+        )
+    elif lout != 1.0:
+        raise InputError(
+            "output_loss_db",
+            "needs the conversion gain, which only an IF calibration gives",
+            fix="calibrate at the IF first, or leave the output loss inside the calibration path",
+        )
+    te, g, y, te_unc = _y_core(
+        hot,
+        cold,
+        np.asarray(enr_rf_db, float),
+        np.asarray(enr_image_db, float),
+        tc,
+        r,
+        t0,
+        enr_reference,
+        lin_s,
+        lin_i,
+        tp_in,
+        lout,
+        tp_out,
+        cal,
+    )
+    _factor_checks(te, r, t0, "converter Y-factor")
+    return _to_sweep(te, r, t0, g, y, te_unc)
+
+
+def _losses(in_db, in_image_db, out_db, tp_in, tp_out, default_tp):
+    lin_s = 10.0 ** (check_loss_db("input_loss_db", in_db) / 10.0)
+    lin_i = (
+        lin_s
+        if in_image_db is None
+        else 10.0 ** (check_loss_db("input_loss_image_db", in_image_db) / 10.0)
+    )
+    lout = 10.0 ** (check_loss_db("output_loss_db", out_db) / 10.0)
+    tpi = default_tp if tp_in is None else check_temperature("input_loss_temperature_k", tp_in)
+    tpo = default_tp if tp_out is None else check_temperature("output_loss_temperature_k", tp_out)
+    return lin_s, lin_i, lout, tpi, tpo
+
+
+# --------------------------------------------------------------------------- gain-method core
+
+
+def _gain_core(n_meas, n_floor, g_db, ts, r, lin_s, lin_i, tp_in, lout, tp_out, t_term):
+    """(Te_SSB of the DUT, DUT conversion gain). ``g_db``: the DUT's own conversion gain."""
+    g_dut = 10.0 ** (g_db / 10.0)
+    g_path = g_dut / lout  # converter input -> analyzer
+    n = n_meas if n_floor is None else n_meas - n_floor + BOLTZMANN_J_PER_K * t_term
+    if np.any(n <= 0):
+        raise MeasurementError(
+            "converter gain method: no DUT noise is left after the floor correction; check that "
+            "the converter is powered, the LO is on and the floor used the same settings"
+        )
+    t_s = _through(ts, lin_s, tp_in)
+    t_i = _through(ts, lin_i, tp_in)
+    te_path = n / (BOLTZMANN_J_PER_K * g_path) - (t_s + r * t_i)
+    return te_path - (lout - 1.0) * tp_out / g_dut, g_dut
+
+
+def converter_gain_method_sweep(
+    n_meas_w_per_hz: ArrayLike,
+    conversion_gain_db: ArrayLike,
+    *,
+    image_rejection_db: float | None,
+    n_floor_w_per_hz: ArrayLike | None = None,
+    source_temperature_k: float = T0_K,
+    floor_temperature_k: float | None = None,
+    t0_k: float = T0_K,
+    input_loss_db: float = 0.0,
+    input_loss_image_db: float | None = None,
+    input_loss_temperature_k: float | None = None,
+    output_loss_db: float = 0.0,
+    output_loss_temperature_k: float | None = None,
+) -> ConverterSweep:
+    """Converter NF (SSB and DSB) and Te by the gain method, over arrays (eq. 6).
+
+    ``n_meas_w_per_hz``: IF density with the RF input terminated at ``source_temperature_k``;
+    ``conversion_gain_db``: the converter's own signal-band conversion gain (losses not
+    included); ``n_floor_w_per_hz``: the analyzer floor at the IF with a load at
+    ``floor_temperature_k`` (default: the source temperature).
+    """
+    n = np.asarray(n_meas_w_per_hz, dtype=float)
+    if not np.all(np.isfinite(n)) or np.any(n <= 0):
+        raise InputError("n_meas_w_per_hz", "must be finite densities > 0 W/Hz", fix="W/Hz")
+    ts = check_temperature("source_temperature_k", source_temperature_k)
+    t_term = (
+        ts
+        if floor_temperature_k is None
+        else check_temperature("floor_temperature_k", floor_temperature_k)
+    )
+    t0 = check_temperature("t0_k", t0_k)
+    _, r = _rejection(image_rejection_db)
+    lin_s, lin_i, lout, tp_in, tp_out = _losses(
+        input_loss_db,
+        input_loss_image_db,
+        output_loss_db,
+        input_loss_temperature_k,
+        output_loss_temperature_k,
+        ts,
+    )
+    floor = None if n_floor_w_per_hz is None else np.asarray(n_floor_w_per_hz, dtype=float)
+    g_db = np.asarray(conversion_gain_db, dtype=float)
+    te, g = _gain_core(n, floor, g_db, ts, r, lin_s, lin_i, tp_in, lout, tp_out, t_term)
+    _factor_checks(te, r, t0, "converter gain method")
+    te_unc = None
+    if floor is not None:
+        te_unc = _gain_core(n, None, g_db, ts, r, lin_s, lin_i, tp_in, lout, tp_out, t_term)[0]
+    return _to_sweep(te, r, t0, g, None, te_unc)
+
+
+# --------------------------------------------------------------------------- point functions
+
+
+def _plan_point(rf_hz: float, lo_hz: float, if_hz: float) -> tuple[float, float, float, Sideband]:
+    """(RF, LO, image, sideband) checked against the IF the densities were read at."""
+    rf = check_number("rf_hz", rf_hz)
+    lo = check_number("lo_hz", lo_hz)
+    if rf <= 0 or lo <= 0:
+        raise InputError("rf_hz", "RF and LO must be > 0 Hz", fix="give Hz")
+    if not math.isclose(abs(rf - lo), if_hz, rel_tol=FREQ_REL_TOL, abs_tol=1e-3):
+        raise InputError(
+            "rf_hz",
+            f"|RF - LO| = {abs(rf - lo):.9g} Hz but the densities were read at {if_hz:.9g} Hz",
+            fix="read the IF densities at |RF - LO|",
+        )
+    image = 2.0 * lo - rf
+    if image <= 0:
+        raise InputError("lo_hz", "puts the image at <= 0 Hz (LO below the IF)", fix="raise the LO")
+    return rf, lo, image, Sideband.UPPER if rf > lo else Sideband.LOWER
+
+
+def _check_nf_type(nf_type: str) -> NfType:
+    if nf_type not in ("ssb", "dsb"):
+        raise InputError(
+            "nf_type", f"must be 'ssb' or 'dsb' (got {nf_type!r})", fix="ssb: signal band only"
+        )
+    return nf_type  # type: ignore[return-value]
+
+
+def _u_optional(field: str, value: float | None) -> float | None:
+    if value is None:
+        return None
+    return check_non_negative(field, value, "give a standard uncertainty in dB")
+
+
+def _conversion_info(
+    rf, lo, if_hz, image, sideband, nf_type, te_ssb, r, t0, rejection, enr_image, cal_enr, lo_dbm
+) -> ConversionInfo:
+    f_ssb = 1.0 + r + te_ssb / t0
+    return ConversionInfo(
+        rf_hz=rf,
+        lo_hz=lo,
+        if_hz=if_hz,
+        image_hz=image,
+        sideband=sideband.value,
+        nf_type=nf_type,
+        nf_ssb_db=10.0 * math.log10(f_ssb),
+        nf_dsb_db=10.0 * math.log10(f_ssb / (1.0 + r)),
+        te_ssb_k=te_ssb,
+        te_dsb_k=te_ssb / (1.0 + r),
+        image_rejection_db=rejection,
+        image_correction_db=10.0 * math.log10(1.0 + r),
+        enr_image_db=enr_image,
+        cal_if_enr_db=cal_enr,
+        lo_level_dbm=lo_dbm,
+    )
+
+
+def _nf_and_slope(
+    te_ssb: float, r: float, t0: float, nf_type: NfType
+) -> tuple[float, float, float]:
+    """(NF in dB of the requested type, its Te, dNF_dB/dTe_SSB)."""
+    f_ssb = 1.0 + r + te_ssb / t0
+    if nf_type == "ssb":
+        return 10.0 * math.log10(f_ssb), te_ssb, DB_PER_NEPER_POWER / (t0 * f_ssb)
+    return (
+        10.0 * math.log10(f_ssb / (1.0 + r)),
+        te_ssb / (1.0 + r),
+        DB_PER_NEPER_POWER / (t0 * f_ssb),
+    )
+
+
+def converter_y_factor_point(
+    hot: NoiseDensity,
+    cold: NoiseDensity,
+    *,
+    rf_hz: float,
+    lo_hz: float,
+    enr_rf_db: float,
+    enr_image_db: float | None,
+    cold_temperature_k: float,
+    image_rejection_db: float | None,
+    nf_type: NfType = "ssb",
+    calibration: CalibrationPoint | None = None,
+    u_enr_rf_db: float | None = 0.0,
+    u_enr_image_db: float | None = 0.0,
+    u_image_rejection_db: float = 0.0,
+    t0_k: float = T0_K,
+    enr_reference: EnrReference = "t0",
+    input_loss_db: float = 0.0,
+    input_loss_image_db: float | None = None,
+    input_loss_temperature_k: float | None = None,
+    output_loss_db: float = 0.0,
+    output_loss_temperature_k: float | None = None,
+    lo_level_dbm: float | None = None,
+    y_min_db: float = DEFAULT_Y_MIN_DB,
+    enr_extrapolated: bool = False,
+    floor_warning_db: float = DEFAULT_FLOOR_WARNING_DB,
+    low_gain_db: float = DEFAULT_LOW_GAIN_DB,
+    scatter_limit: float = DEFAULT_SCATTER_LIMIT,
+) -> PointResult:
+    """NF (SSB and DSB), Te and conversion gain of a converter at one point by the Y-factor.
+
+    ``hot``/``cold``: IF densities (read at ``|rf_hz - lo_hz|``) with the noise source on the
+    RF port on/off. ``enr_rf_db``/``enr_image_db``: ENR at the RF and at the image (the image
+    ENR may be None only when ``image_rejection_db`` is None, i.e. no image response).
+    ``calibration``: the analyzer calibrated at the IF with ENR(IF) (``calibrate_point`` at the
+    IF); it enables the second-stage correction and the conversion gain. ``nf_type`` picks which
+    of SSB/DSB goes into ``nf_db``/``te_k``; both are in ``result.conversion``. Losses in dB:
+    input loss at the RF and at the image (default: the same), output loss at the IF.
+    """
+    hot = check_density("hot", hot)
+    cold = check_density("cold", cold)
+    densities = {"hot": hot, "cold": cold}
+    if calibration is not None:
+        if not isinstance(calibration, CalibrationPoint):
+            raise InputError(
+                "calibration", "must be a CalibrationPoint", fix="calibrate_point() at the IF"
+            )
+        densities.update(hot_cal=calibration.hot, cold_cal=calibration.cold)
+    if_hz = check_same_frequency(hot, {k: v for k, v in densities.items() if k != "hot"})
+    rf, lo, image, sideband = _plan_point(rf_hz, lo_hz, if_hz)
+    nf_type = _check_nf_type(nf_type)
+    rejection, r = _rejection(image_rejection_db)
+    enr_rf = check_number("enr_rf_db", enr_rf_db)
+    if enr_image_db is None:
+        if r > 0:
+            raise InputError(
+                "enr_image_db",
+                f"is needed: the converter responds at the image ({image:.6g} Hz)",
+                fix="extend the ENR table to the image, or declare the image rejection",
+            )
+        enr_img = enr_rf  # weighted by r = 0: no effect
+    else:
+        enr_img = check_number("enr_image_db", enr_image_db)
+    u_rf = _u_optional("u_enr_rf_db", u_enr_rf_db)
+    u_img = _u_optional("u_enr_image_db", u_enr_image_db)
+    u_rej = check_non_negative("u_image_rejection_db", u_image_rejection_db, "dB")
+    tc = check_temperature("cold_temperature_k", cold_temperature_k)
+    t0 = check_temperature("t0_k", t0_k)
+    if enr_reference not in ("t0", "absolute"):
+        raise InputError("enr_reference", "must be 't0' or 'absolute'")
+    if calibration is not None and (
+        calibration.enr_reference != enr_reference or calibration.t0_k != t0
+    ):
+        raise InputError(
+            "calibration",
+            "was made with another ENR convention or T0",
+            fix="calibrate and measure with the same enr_reference and t0_k",
+        )
+    lin_s, lin_i, lout, tp_in, tp_out = _losses(
+        input_loss_db,
+        input_loss_image_db,
+        output_loss_db,
+        input_loss_temperature_k,
+        output_loss_temperature_k,
+        tc,
+    )
+    if calibration is None and lout != 1.0:
+        raise InputError(
+            "output_loss_db",
+            "needs the conversion gain, which only an IF calibration gives",
+            fix="calibrate at the IF first",
+        )
+
+    def model(h, c, hc, cc, enr_rf, enr_img, enr_if, rej_db):
+        rr = 0.0 if rejection is None else 10.0 ** (-rej_db / 10.0)
+        cal = None
+        if calibration is not None:
+            cal = (hc, cc, enr_if, calibration.cold_temperature_k)
+        te, g, y, te_unc = _y_core(
+            h, c, enr_rf, enr_img, tc, rr, t0, enr_reference, lin_s, lin_i, tp_in, lout, tp_out, cal
+        )
+        f_ssb = 1.0 + rr + te / t0
+        nf = 10.0 * np.log10(f_ssb if nf_type == "ssb" else f_ssb / (1.0 + rr))
+        out = {"te_ssb": te, "nf_db": nf}
+        if g is not None:
+            out["gain_db"] = 10.0 * np.log10(g)
+            out["te_unc"] = te_unc
+        return out
+
+    values = {
+        "h": hot.density_w_per_hz,
+        "c": cold.density_w_per_hz,
+        "hc": calibration.hot.density_w_per_hz if calibration else 1.0,
+        "cc": calibration.cold.density_w_per_hz if calibration else 1.0,
+        "enr_rf": enr_rf,
+        "enr_img": enr_img,
+        "enr_if": calibration.enr_db if calibration else 0.0,
+        "rej_db": 0.0 if rejection is None else rejection,
+    }
+    u_stat = {"h": hot.u_density_w_per_hz, "c": cold.u_density_w_per_hz}
+    if calibration is not None:
+        u_stat.update(hc=calibration.hot.u_density_w_per_hz, cc=calibration.cold.u_density_w_per_hz)
+    u_sys = {"enr_rf": u_rf or 0.0}
+    if r > 0:
+        u_sys.update(enr_img=u_img or 0.0, rej_db=u_rej)
+    if calibration is not None:
+        u_sys["enr_if"] = calibration.u_enr_db or 0.0
+    try:
+        props = propagate(model, values, u_stat | u_sys)
+    except MeasurementError as exc:
+        raise exc.add_context(freq_hz=rf, method="y_factor") from None
+    te_ssb = float(props["te_ssb"].value)
+    if 1.0 + r + te_ssb / t0 <= 0:
+        raise MeasurementError(
+            f"converter Y-factor at RF {rf:.6g} Hz: noise factor <= 0 (Te_SSB = {te_ssb:.1f} K); "
+            "check the ENR at RF and image, the image rejection and the cold temperature",
+            freq_hz=rf,
+        )
+    nf_db, te_k, _ = _nf_and_slope(te_ssb, r, t0, nf_type)
+    nf_prop = props["nf_db"]
+    u_nf = float(nf_prop.u(u_stat))
+    names = {
+        "h": "hot",
+        "c": "cold",
+        "hc": "hot_cal",
+        "cc": "cold_cal",
+        "enr_rf": "enr",
+        "enr_img": "enr_image",
+        "enr_if": "enr_cal",
+        "rej_db": "image_rejection",
+    }
+    contributions = {names[k]: float(v) for k, v in nf_prop.contributions.items()}
+    y = hot.density_w_per_hz / cold.density_w_per_hz
+    y_db = 10.0 * math.log10(y)
+    flags = density_flags(densities.values(), scatter_limit)
+    if y_db < y_min_db:
+        flags.append(PointFlag.Y_TOO_SMALL)
+    if enr_extrapolated or (calibration is not None and calibration.enr_extrapolated):
+        flags.append(PointFlag.ENR_EXTRAPOLATED)
+    gain_db = u_gain_db = margin = correction = nf_unc = None
+    if calibration is not None:
+        gain_db = float(props["gain_db"].value)
+        u_gain_db = float(props["gain_db"].u(u_stat))
+        g_path = 10.0 ** (gain_db / 10.0) / lout
+        t_in_cold = _through(tc, lin_s, tp_in) + r * _through(tc, lin_i, tp_in)
+        te1 = te_ssb + (lout - 1.0) * tp_out / (g_path * lout)
+        margin = margin_db((t_in_cold + te1) * g_path, calibration.te_k)
+        nf_unc = _nf_and_slope(float(props["te_unc"].value), r, t0, nf_type)[0]
+        correction = nf_unc - nf_db
+        if margin is not None and margin < floor_warning_db:
+            flags.append(PointFlag.NEAR_ANALYZER_FLOOR)
+        if gain_db < low_gain_db:
+            flags.append(PointFlag.LOW_GAIN)
+    if te_ssb < 0:
+        flags.append(PointFlag.NEGATIVE_TE)
+    u_te_k = u_nf * (t0 * (1.0 + r + te_ssb / t0)) / DB_PER_NEPER_POWER
+    if nf_type == "dsb":
+        u_te_k /= 1.0 + r
+    return PointResult(
+        freq_hz=rf,
+        method=Method.Y_FACTOR,
+        nf_db=nf_db,
+        te_k=te_k,
+        gain_db=gain_db,
+        y_db=y_db,
+        u_nf_db=u_nf,
+        u_te_k=u_te_k,
+        u_gain_db=u_gain_db,
+        floor_margin_db=margin,
+        floor_correction_db=correction,
+        enr_db=enr_rf,
+        source_temperature_k=tc,
+        densities_w_per_hz={k: d.density_w_per_hz for k, d in densities.items()},
+        flags=flags,
+        instrument_time_s=instrument_time_s([hot, cold]),
+        conversion=_conversion_info(
+            rf,
+            lo,
+            if_hz,
+            image,
+            sideband,
+            nf_type,
+            te_ssb,
+            r,
+            t0,
+            rejection,
+            enr_img if r > 0 else None,
+            calibration.enr_db if calibration else None,
+            lo_level_dbm,
+        ),
+        notes={
+            "u_densities_w_per_hz": {k: d.u_density_w_per_hz for k, d in densities.items()},
+            "u_nf_db_contributions": contributions,
+            "u_nf_db_with_enr": math.sqrt(sum(c**2 for c in contributions.values())),
+            "u_enr_db": u_rf,
+            "u_enr_image_db": u_img if r > 0 else None,
+            "u_image_rejection_db": u_rej if r > 0 else None,
+            "enr_correlated": False,
+            "enr_reference": enr_reference,
+            "cal_enr_db": calibration.enr_db if calibration else None,
+            "cal_cold_temperature_k": calibration.cold_temperature_k if calibration else None,
+            "system_te_k": calibration.te_k if calibration else None,
+            "system_nf_db": calibration.nf_db if calibration else None,
+            "cal_y_db": calibration.y_db if calibration else None,
+            "nf_uncorrected_db": nf_unc,
+            "input_loss_db": input_loss_db,
+            "input_loss_image_db": input_loss_image_db
+            if input_loss_image_db is not None
+            else input_loss_db,
+            "input_loss_temperature_k": tp_in,
+            "output_loss_db": output_loss_db,
+            "output_loss_temperature_k": tp_out,
+            "t0_k": t0,
+        },
+    )
+
+
+def converter_gain_method_point(
+    dut: NoiseDensity,
+    conversion_gain_db: float,
+    *,
+    rf_hz: float,
+    lo_hz: float,
+    image_rejection_db: float | None,
+    nf_type: NfType = "ssb",
+    floor: NoiseDensity | None = None,
+    u_gain_db: float = 0.0,
+    u_image_rejection_db: float = 0.0,
+    source_temperature_k: float = T0_K,
+    floor_temperature_k: float | None = None,
+    t0_k: float = T0_K,
+    input_loss_db: float = 0.0,
+    input_loss_image_db: float | None = None,
+    input_loss_temperature_k: float | None = None,
+    output_loss_db: float = 0.0,
+    output_loss_temperature_k: float | None = None,
+    gain_includes_input_loss: bool = False,
+    gain_includes_output_loss: bool = False,
+    lo_level_dbm: float | None = None,
+    floor_warning_db: float = DEFAULT_FLOOR_WARNING_DB,
+    low_gain_db: float = DEFAULT_LOW_GAIN_DB,
+    scatter_limit: float = DEFAULT_SCATTER_LIMIT,
+) -> PointResult:
+    """NF (SSB and DSB) and Te of a converter at one point by the gain method.
+
+    ``dut``: IF density (read at ``|rf_hz - lo_hz|``) with the RF port terminated at
+    ``source_temperature_k``; ``conversion_gain_db``: signal-band conversion gain RF -> IF, by
+    default the converter's own (``gain_includes_input_loss``/``_output_loss`` say that it was
+    measured through the cables); ``floor``: the analyzer at the IF with a load at
+    ``floor_temperature_k`` on its input. ``u_gain_db`` is reported as a contribution.
+    """
+    dut = check_density("dut", dut)
+    densities = {"dut": dut}
+    if floor is not None:
+        densities["floor"] = check_density("floor", floor)
+    if_hz = check_same_frequency(dut, {k: v for k, v in densities.items() if k != "dut"})
+    rf, lo, image, sideband = _plan_point(rf_hz, lo_hz, if_hz)
+    nf_type = _check_nf_type(nf_type)
+    rejection, r = _rejection(image_rejection_db)
+    gain_db = check_number("conversion_gain_db", conversion_gain_db)
+    u_gain = check_non_negative("u_gain_db", u_gain_db, "give a standard uncertainty in dB")
+    u_rej = check_non_negative("u_image_rejection_db", u_image_rejection_db, "dB")
+    ts = check_temperature("source_temperature_k", source_temperature_k)
+    t_term = (
+        ts
+        if floor_temperature_k is None
+        else check_temperature("floor_temperature_k", floor_temperature_k)
+    )
+    t0 = check_temperature("t0_k", t0_k)
+    lin_s, lin_i, lout, tp_in, tp_out = _losses(
+        input_loss_db,
+        input_loss_image_db,
+        output_loss_db,
+        input_loss_temperature_k,
+        output_loss_temperature_k,
+        ts,
+    )
+    dut_gain_db = (
+        gain_db
+        + (10.0 * math.log10(lin_s) if gain_includes_input_loss else 0.0)
+        + (10.0 * math.log10(lout) if gain_includes_output_loss else 0.0)
+    )
+
+    def model(n_meas, n_floor, g_db, rej_db, with_floor=floor is not None):
+        rr = 0.0 if rejection is None else 10.0 ** (-rej_db / 10.0)
+        te, _ = _gain_core(
+            n_meas,
+            n_floor if with_floor else None,
+            g_db,
+            ts,
+            rr,
+            lin_s,
+            lin_i,
+            tp_in,
+            lout,
+            tp_out,
+            t_term,
+        )
+        f_ssb = 1.0 + rr + te / t0
+        return {
+            "te_ssb": te,
+            "nf_db": 10.0 * np.log10(f_ssb if nf_type == "ssb" else f_ssb / (1 + rr)),
+        }
+
+    n_f = floor.density_w_per_hz if floor is not None else 1.0
+    values = {
+        "n_meas": dut.density_w_per_hz,
+        "n_floor": n_f,
+        "g_db": dut_gain_db,
+        "rej_db": 0.0 if rejection is None else rejection,
+    }
+    u_stat = {"n_meas": dut.u_density_w_per_hz}
+    if floor is not None:
+        u_stat["n_floor"] = floor.u_density_w_per_hz
+    u_sys = {"g_db": u_gain}
+    if r > 0:
+        u_sys["rej_db"] = u_rej
+    try:
+        props = propagate(model, values, u_stat | u_sys)
+    except MeasurementError as exc:
+        raise exc.add_context(freq_hz=rf, method="gain") from None
+    te_ssb = float(props["te_ssb"].value)
+    if 1.0 + r + te_ssb / t0 <= 0:
+        raise MeasurementError(
+            f"converter gain method at RF {rf:.6g} Hz: noise factor <= 0 (Te_SSB = "
+            f"{te_ssb:.1f} K); check the conversion gain, the image rejection and the "
+            "temperatures",
+            freq_hz=rf,
+        )
+    nf_db, te_k, _ = _nf_and_slope(te_ssb, r, t0, nf_type)
+    u_nf = float(props["nf_db"].u(u_stat))
+    names = {"n_meas": "dut", "n_floor": "floor", "g_db": "gain", "rej_db": "image_rejection"}
+    contributions = {names[k]: float(v) for k, v in props["nf_db"].contributions.items()}
+    flags = density_flags(densities.values(), scatter_limit)
+    margin = correction = nf_unc = None
+    if floor is not None:
+        analyzer_noise = n_f - BOLTZMANN_J_PER_K * t_term
+        if analyzer_noise <= 0:
+            raise MeasurementError(
+                f"converter gain method at RF {rf:.6g} Hz: the IF floor reading holds no "
+                "analyzer noise above the termination's kT; check floor_temperature_k",
+                freq_hz=rf,
+            )
+        margin = margin_db(dut.density_w_per_hz - analyzer_noise, analyzer_noise)
+        te_unc = float(
+            model(dut.density_w_per_hz, n_f, dut_gain_db, values["rej_db"], False)["te_ssb"]
+        )
+        nf_unc = _nf_and_slope(te_unc, r, t0, nf_type)[0]
+        correction = nf_unc - nf_db
+        if margin is not None and margin < floor_warning_db:
+            flags.append(PointFlag.NEAR_ANALYZER_FLOOR)
+    if dut_gain_db < low_gain_db:
+        flags.append(PointFlag.LOW_GAIN)
+    if te_ssb < 0:
+        flags.append(PointFlag.NEGATIVE_TE)
+    u_te_k = u_nf * (t0 * (1.0 + r + te_ssb / t0)) / DB_PER_NEPER_POWER
+    if nf_type == "dsb":
+        u_te_k /= 1.0 + r
+    return PointResult(
+        freq_hz=rf,
+        method=Method.GAIN,
+        nf_db=nf_db,
+        te_k=te_k,
+        gain_db=dut_gain_db,
+        u_nf_db=u_nf,
+        u_te_k=u_te_k,
+        u_gain_db=u_gain,
+        floor_margin_db=margin,
+        floor_correction_db=correction,
+        source_temperature_k=ts,
+        densities_w_per_hz={k: d.density_w_per_hz for k, d in densities.items()},
+        flags=flags,
+        instrument_time_s=instrument_time_s([dut]),
+        conversion=_conversion_info(
+            rf,
+            lo,
+            if_hz,
+            image,
+            sideband,
+            nf_type,
+            te_ssb,
+            r,
+            t0,
+            rejection,
+            None,
+            None,
+            lo_level_dbm,
+        ),
+        notes={
+            "u_densities_w_per_hz": {k: d.u_density_w_per_hz for k, d in densities.items()},
+            "u_nf_db_contributions": contributions,
+            "u_nf_db_with_gain": math.sqrt(sum(c**2 for c in contributions.values())),
+            "u_image_rejection_db": u_rej if r > 0 else None,
+            "path_gain_db": gain_db,
+            "gain_includes_input_loss": bool(gain_includes_input_loss),
+            "gain_includes_output_loss": bool(gain_includes_output_loss),
+            "input_loss_db": input_loss_db,
+            "input_loss_image_db": input_loss_image_db
+            if input_loss_image_db is not None
+            else input_loss_db,
+            "input_loss_temperature_k": tp_in,
+            "output_loss_db": output_loss_db,
+            "output_loss_temperature_k": tp_out,
+            "floor_temperature_k": t_term if floor is not None else None,
+            "nf_uncorrected_db": nf_unc,
+            "t0_k": t0,
+        },
+    )
