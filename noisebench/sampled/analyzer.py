@@ -20,7 +20,7 @@ reports them like a spur. What was found is kept per capture in :attr:`SampledAn
 The absolute scale (W per full-scale unit squared) comes from the receiver's scale calibration
 (:mod:`noisebench.sampled.scale`) or from the source; without one the trace is on an arbitrary
 scale (0 dBFS read as 0 dBm): the Y-factor method needs only ratios, the gain method needs the
-absolute scale, and refuses to run without it (:attr:`SampledAnalyzer.absolute_scale`).
+absolute scale, and refuses to run without it (:attr:`SampledAnalyzer.absolute_level`).
 """
 
 from __future__ import annotations
@@ -60,6 +60,14 @@ LEAKAGE_LEVEL = 1e-4
 """Minimum guard around the centre of a complex capture: where the window's response to a line
 at the centre has fallen to 1e-4 (-40 dB)."""
 TUNING_MARGIN_BINS = 2
+MAX_CAPTURE_SAMPLES = 1 << 22
+"""Longest capture taken at once (64 MiB of complex samples); more segments are taken as
+several captures and their Welch averages combined."""
+LEVEL_NOTE = (
+    "The Y-factor method needs only ratios of densities read with one receiver scale; the gain "
+    "method needs the receiver's absolute scale (a scale calibration with a known tone or two "
+    "known noise levels)."
+)
 
 
 @runtime_checkable
@@ -172,9 +180,12 @@ class SampledAnalyzer(Analyzer):
         return f"noisebench,sampled analyzer,{self.source.info.identity},{self.window}"
 
     @property
-    def absolute_scale(self) -> bool:
+    def absolute_level(self) -> bool:
         """True when traces are in absolute W/Hz (a scale calibration or a source that knows)."""
         return self.scale is not None or self.source.info.scale_known
+
+    def run_notes(self) -> dict:
+        return {"sampled_receiver": {**self.summary(), "level_note": LEVEL_NOTE}}
 
     @property
     def replays_recordings(self) -> bool:
@@ -192,6 +203,14 @@ class SampledAnalyzer(Analyzer):
     @property
     def max_input_power_dbm(self) -> float | None:
         return self._max_input_dbm
+
+    @property
+    def full_scale_dbm(self) -> float | None:
+        """Power of a tone at the converter's full scale (mean |x|^2 = 1), dBm, when the scale
+        is known."""
+        if self.scale is not None:
+            return self.scale.full_scale_dbm
+        return self.source.info.full_scale_dbm
 
     @property
     def settings(self) -> AcquisitionSettings | None:
@@ -279,8 +298,14 @@ class SampledAnalyzer(Analyzer):
         )
         return _Geometry(plan, cc, complex_capture, index, rf[index], excluded, guard)
 
-    def _settings_for(self, g: _Geometry, segments: int) -> AcquisitionSettings:
+    def _settings_for(
+        self, g: _Geometry, segments: int, k_eff: float | None = None
+    ) -> AcquisitionSettings:
+        """Applied settings for ``segments`` segments holding ``k_eff`` independent samples
+        per bin (None: one capture, Welch's value)."""
         plan = g.plan.with_segments(segments)
+        if k_eff is None:
+            k_eff = plan.equivalent_samples
         f = g.freq_hz
         return AcquisitionSettings(
             center_hz=float(0.5 * (f[0] + f[-1])),
@@ -294,7 +319,7 @@ class SampledAnalyzer(Analyzer):
             points=int(f.size),
             mode=SweepMode.FFT,
             sweep_time_s=plan.duration_s,
-            detector_samples=plan.equivalent_samples / segments,
+            detector_samples=k_eff / segments,
         )
 
     def expected_acquisition_time_s(self) -> float:
@@ -304,15 +329,13 @@ class SampledAnalyzer(Analyzer):
 
     # ------------------------------------------------------------------ acquisition
 
-    def _capture(self) -> tuple[_Geometry, SampleBlock]:
-        g = self._geometry
-        if g is None or self._request is None:
-            raise InputError("analyzer", "acquire before configure", fix="call configure first")
+    def _capture(self, g: _Geometry, segments: int) -> SampleBlock:
+        assert self._request is not None
         request = CaptureRequest(
             center_hz=g.capture_center_hz,
             span_hz=self._request.span_hz,
             sample_rate_hz=g.plan.sample_rate_hz,
-            samples=g.plan.samples,
+            samples=g.plan.with_segments(segments).samples,
         )
         try:
             block = self.source.capture(request)
@@ -320,10 +343,11 @@ class SampledAnalyzer(Analyzer):
             raise MeasurementError(
                 f"the recording has {exc.left} samples left, fewer than one segment of "
                 f"{g.plan.length} at {g.capture_center_hz:.9g} Hz",
-                fix="record longer, or lower max_averages / raise target_u_nf_db",
+                fix="record longer (at least time_limit_s per state), or lower max_averages / "
+                "raise target_u_nf_db",
             ) from None
         self._check_block(block, g)
-        return g, block
+        return block
 
     def _check_block(self, block: SampleBlock, g: _Geometry) -> None:
         fs = g.plan.sample_rate_hz
@@ -346,40 +370,72 @@ class SampledAnalyzer(Analyzer):
             )
 
     def acquire_trace(self) -> Trace:
+        """One trace of the configured segments; captures longer than
+        :data:`MAX_CAPTURE_SAMPLES` are taken as several captures whose Welch averages are
+        combined by their segment counts (independent captures: their K_eff add)."""
+        g = self._geometry
+        if g is None or self._request is None:
+            raise InputError("analyzer", "acquire before configure", fix="call configure first")
         with self.lock:
-            g, block = self._capture()
-            x = block.samples
-            clipped = artefacts.clipped_fraction(x, block.full_scale)
-            if clipped > artefacts.MAX_CLIPPED_FRACTION:
-                raise MeasurementError(
-                    f"{clipped:.2e} of the samples are at full scale (clipped) in the capture "
-                    f"at {g.capture_center_hz:.9g} Hz",
-                    fix="lower the receiver gain or add attenuation, then recalibrate the scale",
-                )
-            dc_dbfs = None
-            estimate = artefacts.ImageEstimate(0j)
-            corrected = False
-            if g.complex_capture:
-                x, dc = artefacts.remove_dc(x)
-                dc_dbfs = 10 * math.log10(max(abs(dc) ** 2, 1e-30) / block.full_scale**2)
-                estimate = artefacts.image_ratio(x)
-                if (
-                    self.iq_correction
-                    and estimate.significant
-                    and estimate.image_rejection_db < artefacts.IQ_CORRECTION_ABOVE_DB
-                ):
-                    x = artefacts.correct_image(x, estimate)
-                    corrected = True
-            _, psd, used = welch_density(x, g.plan)
-            scale = self._scale_w_per_fs2(block)
-            values = psd[g.index] * scale
-            settings = self._settings_for(g, used)
+            per_capture = max(1, g.plan.segments_in(MAX_CAPTURE_SAMPLES))
+            wanted = g.plan.segments
+            total = np.zeros(g.index.size)
+            segments = 0
+            k_eff = 0.0
+            seconds = 0.0
+            while segments < wanted:
+                block = self._capture(g, min(per_capture, wanted - segments))
+                psd, used = self._process(g, block)
+                total += psd[g.index] * used * self._scale_w_per_fs2(block)
+                segments += used
+                k_eff += g.plan.with_segments(used).equivalent_samples
+                seconds += block.duration_s
+                if used < min(per_capture, wanted - segments + used):
+                    break  # a finite source ran short: the trace says what it holds
+            settings = self._settings_for(g, segments, k_eff)
             excluded = g.excluded if np.any(g.excluded) else None
-            entry = CaptureLog(
+            return Trace(
+                freq_hz=g.freq_hz,
+                values=np.maximum(total / segments, np.finfo(float).tiny),
+                unit=TraceUnit.W_PER_HZ,
+                settings=settings,
+                acquisition_time_s=seconds,
+                instrument=self.identity,
+                excluded=excluded,
+            )
+
+    def _process(self, g: _Geometry, block: SampleBlock) -> tuple[np.ndarray, int]:
+        """Artefact checks and corrections, then Welch: (density full-scale^2/Hz, segments)."""
+        x = block.samples
+        clipped = artefacts.clipped_fraction(x, block.full_scale)
+        if clipped > artefacts.MAX_CLIPPED_FRACTION:
+            raise MeasurementError(
+                f"{clipped:.2e} of the samples are at full scale (clipped) in the capture "
+                f"at {g.capture_center_hz:.9g} Hz",
+                fix="lower the receiver gain or add attenuation, then recalibrate the scale",
+            )
+        dc_dbfs = None
+        estimate = artefacts.ImageEstimate(0j)
+        corrected = False
+        if g.complex_capture:
+            x, dc = artefacts.remove_dc(x)
+            dc_dbfs = 10 * math.log10(max(abs(dc) ** 2, 1e-30) / block.full_scale**2)
+            estimate = artefacts.image_ratio(x)
+            if (
+                self.iq_correction
+                and estimate.significant
+                and estimate.image_rejection_db < artefacts.IQ_CORRECTION_ABOVE_DB
+            ):
+                x = artefacts.correct_image(x, estimate)
+                corrected = True
+        _, psd, used = welch_density(x, g.plan)
+        guarded = bool(np.any(g.excluded))
+        self.log.append(
+            CaptureLog(
                 capture_center_hz=g.capture_center_hz,
                 samples=int(x.size),
                 segments=used,
-                equivalent_samples=float(settings.detector_samples or 0) * used,
+                equivalent_samples=g.plan.with_segments(used).equivalent_samples,
                 dc_offset_dbfs=None if dc_dbfs is None else round(dc_dbfs, 2),
                 image_rejection_db=(
                     round(estimate.image_rejection_db, 2) if estimate.significant else None
@@ -388,21 +444,13 @@ class SampledAnalyzer(Analyzer):
                 clipped_fraction=clipped,
                 excluded_hz=(
                     [(g.capture_center_hz - g.guard_hz, g.capture_center_hz + g.guard_hz)]
-                    if excluded is not None
+                    if guarded
                     else []
                 ),
                 label=block.label,
             )
-            self.log.append(entry)
-            return Trace(
-                freq_hz=g.freq_hz,
-                values=np.maximum(values, np.finfo(float).tiny),
-                unit=TraceUnit.W_PER_HZ,
-                settings=settings,
-                acquisition_time_s=block.duration_s,
-                instrument=self.identity,
-                excluded=excluded,
-            )
+        )
+        return psd, used
 
     def _scale_w_per_fs2(self, block: SampleBlock) -> float:
         if self.scale is not None:
@@ -451,7 +499,7 @@ class SampledAnalyzer(Analyzer):
             "source": self.source.info.identity,
             "window": self.window,
             "scale": self.scale_status,
-            "absolute_scale": self.absolute_scale,
+            "absolute_scale": self.absolute_level,
             "captures": len(logs),
             "samples": int(sum(e.samples for e in logs)),
             "worst_image_rejection_db": min(irr) if irr else None,

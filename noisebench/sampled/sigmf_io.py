@@ -160,9 +160,7 @@ class SigmfRecordings:
             for key in globals_:
                 if key in info:
                     value = info[key]
-                    globals_[key].add(
-                        _freeze(value) if isinstance(value, dict) else float(value)
-                    )
+                    globals_[key].add(_freeze(value) if isinstance(value, dict) else float(value))
                 elif key == KEY_SCALE:
                     globals_[key].add(None)
             guard.add(float(info.get(KEY_DC_GUARD, 0.0)))
@@ -253,7 +251,9 @@ class SigmfRecordings:
             usable = [r for r in candidates if r.left > 0]
             if not usable:
                 raise RecordingsExhausted(0)
-            rng = max(usable, key=lambda r: r.left) if usable[0].left < request.samples else usable[0]
+            rng = (
+                max(usable, key=lambda r: r.left) if usable[0].left < request.samples else usable[0]
+            )
             n = min(int(request.samples), rng.left)
             x = rng.handle.read_samples(rng.start + rng.read, n)
             rng.read += n
@@ -326,9 +326,7 @@ def _ranges_of(meta: Path, handle: Any) -> list[RecordedRange]:
             raise InputError(
                 "core:frequency", f"{meta.name}: capture {idx} has no centre frequency"
             )
-        out.append(
-            RecordedRange(meta, start, count, float(freq), connection, state, handle=handle)
-        )
+        out.append(RecordedRange(meta, start, count, float(freq), connection, state, handle=handle))
     return out
 
 
@@ -393,7 +391,9 @@ def write_recording(
         if block.sample_rate_hz != rate:
             raise InputError("blocks", "all blocks of one recording need one sample rate")
         if connection not in CONNECTIONS or state not in STATES:
-            raise InputError("connection", f"{connection!r}/{state!r} not in {CONNECTIONS}/{STATES}")
+            raise InputError(
+                "connection", f"{connection!r}/{state!r} not in {CONNECTIONS}/{STATES}"
+            )
         chunks.append(_encode(block.samples, datatype))
     with open(data_path, "wb") as fh:
         for chunk in chunks:
@@ -418,9 +418,7 @@ def write_recording(
         for block, connection, state in items:
             n = block.samples.size
             meta.add_capture(start, metadata={"core:frequency": float(block.center_hz)})
-            meta.add_annotation(
-                start, n, metadata={KEY_CONNECTION: connection, KEY_STATE: state}
-            )
+            meta.add_annotation(start, n, metadata={KEY_CONNECTION: connection, KEY_STATE: state})
             start += n
         meta_path = base.with_name(base.name + META_SUFFIX)
         meta.tofile(str(meta_path), overwrite=True)
@@ -438,4 +436,6 @@ def _encode(samples: np.ndarray, datatype: str) -> np.ndarray:
         if np.iscomplexobj(x):
             raise InputError("datatype", "rf32_le holds real samples; the blocks are complex")
         return x.astype("<f4")
-    raise InputError("datatype", f"{datatype!r} is not written here", fix="use cf32_le, ci16_le or rf32_le")
+    raise InputError(
+        "datatype", f"{datatype!r} is not written here", fix="use cf32_le, ci16_le or rf32_le"
+    )

@@ -112,7 +112,8 @@ class SourceInfo:
     ``tunable``: it can retune to the centre the analyzer asks for (a live receiver); a
     recording is not (it then implements ``center_for``). ``sample_rate_hz``: its rate.
     ``complex_samples``: complex baseband (else real samples). ``scale_known``: every block
-    carries a calibrated ``scale_w_per_fs2``. ``usable_fraction``:
+    carries a calibrated ``scale_w_per_fs2``; ``full_scale_dbm`` is then the power of a tone at
+    full scale, dBm. ``usable_fraction``:
     share of the sample rate inside the anti-alias filter's flat passband (band edges beyond it
     are never used). ``dc_guard_hz``: half-width around the centre of a complex capture left out
     for LO leakage and its phase-noise skirt (at least the window's main lobe is always left
@@ -124,6 +125,7 @@ class SourceInfo:
     tunable: bool = False
     complex_samples: bool = True
     scale_known: bool = False
+    full_scale_dbm: float | None = None
     usable_fraction: float = 0.8
     dc_guard_hz: float = 0.0
     finite: bool = False

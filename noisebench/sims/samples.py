@@ -95,6 +95,7 @@ class SimSampleReceiver:
             tunable=True,
             complex_samples=self.spec.complex_samples,
             scale_known=True,
+            full_scale_dbm=self.spec.full_scale_dbm,
             usable_fraction=self.spec.usable_fraction,
         )
 
@@ -279,7 +280,9 @@ def record_sigmf(
     out_dir = FsPath(folder)
     out_dir.mkdir(parents=True, exist_ok=True)
     source = bench.noise_source
-    wait = settle_s if settle_s is not None else source.settle_time_s + source.spec.transition_time_s
+    wait = (
+        settle_s if settle_s is not None else source.settle_time_s + source.spec.transition_time_s
+    )
     written = []
     fs = receiver.spec.sample_rate_hz
     for center in centers_hz:
