@@ -62,6 +62,9 @@ _DTYPES = {"f": 4, "d": 8}
 WATCH_SLICE_S = 0.5
 
 
+_DONT_WAIT = getattr(socket, "MSG_DONTWAIT", 0)  # POSIX; elsewhere every receive waits first
+
+
 class ConnectionLost(CommunicationError):
     """The connection to the instrument is gone (peer closed, broken pipe, refused)."""
 
@@ -146,7 +149,8 @@ def decode_block_values(
             command=command,
         )
     dtype = np.dtype((">" if big_endian else "<") + f"f{size}")
-    return np.frombuffer(payload, dtype=dtype).astype(np.float64)
+    with np.errstate(invalid="ignore", over="ignore"):  # garbage is judged by the caller
+        return np.frombuffer(payload, dtype=dtype).astype(np.float64)
 
 
 def parse_ascii_values(text: str, command: str = "?") -> np.ndarray:
@@ -331,7 +335,9 @@ class VisaSession(Transport):
         except (pyvisa.errors.Error, OSError, ValueError, AttributeError) as exc:
             code = getattr(exc, "error_code", None)
             raise CommunicationError(
-                f"cannot open {self.resource!r}: {exc}", visa_code=code, resource=self.resource
+                f"cannot open {self.resource!r}: {_open_failure_words(exc, self.open_timeout_s)}",
+                visa_code=code,
+                resource=self.resource,
             ).add_context(
                 fix="check the address, that the instrument is on and reachable, and for "
                 "USB/serial that pyusb/pyserial are installed"
@@ -343,6 +349,7 @@ class VisaSession(Transport):
         self._res = res
         self._is_socket = getattr(res, "resource_class", "") == "SOCKET"
         if self._is_socket:
+            self._require_connected()
             self._no_delay()
         if self.binary_reader == "fast" and not self._termchar_switchable():
             logger.info(
@@ -352,6 +359,34 @@ class VisaSession(Transport):
             )
             self.binary_reader = "pyvisa"
         logger.info("opened %s (%s)", self.resource, self.visa_library)
+
+    def _require_connected(self) -> None:
+        """pyvisa-py returns a SOCKET resource whose connect failed (refused, unreachable)
+        without an error; ask the socket itself, so the failure is named at open, not as a
+        'closed connection' at the first command."""
+        sock = self._socket()
+        if sock is None:
+            return
+        error = 0
+        try:
+            sock.getpeername()
+            return
+        except OSError:
+            try:
+                error = sock.getsockopt(socket.SOL_SOCKET, socket.SO_ERROR)
+                if error == 0:  # still connecting: wait for the outcome
+                    select.select([], [sock], [], self.open_timeout_s)
+                    error = sock.getsockopt(socket.SOL_SOCKET, socket.SO_ERROR)
+                    if error == 0:
+                        sock.getpeername()
+                        return
+            except OSError as exc:
+                error = exc.errno or 0
+        self.close()
+        raise CommunicationError(
+            f"cannot connect to {self.resource!r}: {_socket_error_words(error)}",
+            resource=self.resource,
+        )
 
     def _termchar_switchable(self) -> bool:
         """The fast block read needs VI_ATTR_TERMCHAR_EN writable (some back ends refuse)."""
@@ -605,6 +640,12 @@ class VisaSession(Transport):
             logger.debug("%s << %s (binary)", self.resource, command)
             if self.binary_reader == "pyvisa":
                 return self._query_binary_pyvisa(command, datatype, big_endian)
+            direct = self._direct_socket()
+            if direct is not None:
+                with self._io(command):
+                    direct[0].sendall((command + self.write_termination).encode("ascii"))
+                dtype = np.dtype((">" if big_endian else "<") + f"f{_DTYPES[datatype]}")
+                return self._read_block_direct(command, *direct, dtype)
             with self._io(command):
                 self._res.write(command)
             payload = self._read_block(command)
@@ -659,6 +700,127 @@ class VisaSession(Transport):
                         "%s: could not restore attribute %#x: %s", self.resource, attr, exc
                     )
 
+    # -- definite-length block straight from the socket ------------------------------------
+
+    def _direct_socket(self) -> tuple[socket.socket, bytearray] | None:
+        """pyvisa-py's socket and its buffer of bytes already received, for reading a block
+        without pyvisa-py's 4 kB receive loop and its copies; None for any other back end."""
+        sock = self._socket()
+        if sock is None:
+            return None
+        session = self._res.visalib.sessions[self._res.session]
+        pending = getattr(session, "_pending_buffer", None)
+        return (sock, pending) if isinstance(pending, bytearray) else None
+
+    def _read_block_direct(
+        self, command: str, sock: socket.socket, pending: bytearray, dtype: np.dtype
+    ) -> np.ndarray:
+        """Header, then payload and terminator received into one buffer, the values decoded
+        to float64 chunk by chunk while the rest is still arriving; the same checks and
+        errors as :meth:`_read_block` and :func:`decode_block_values`."""
+        deadline = time.monotonic() + self._timeout_s
+        head = bytearray(2)
+        self._recv_into(sock, pending, memoryview(head), deadline, command, "header")
+        if head[:1] != b"#" or not head[1:2].isdigit():
+            raise BlockError(
+                f"reply to {command!r} is not a binary block (starts {bytes(head)!r})",
+                command=command,
+                resource=self.resource,
+            )
+        digits = bytearray(int(head[1:2]))
+        self._recv_into(sock, pending, memoryview(digits), deadline, command, "header")
+        _, length = _header_length(bytes(head + digits), command)
+        if length % dtype.itemsize:
+            raise BlockError(
+                f"binary block from {command!r} has {length} bytes, not a multiple of "
+                f"{dtype.itemsize}",
+                command=command,
+                resource=self.resource,
+            )
+        buffer = bytearray(length + 1)  # payload and the terminator
+        view = memoryview(buffer)
+        values = np.empty(length // dtype.itemsize)
+        decoded = 0  # values decoded so far
+
+        def decode(received: int) -> None:
+            nonlocal decoded
+            upto = min(received, length) // dtype.itemsize
+            if upto > decoded:
+                chunk = view[decoded * dtype.itemsize : upto * dtype.itemsize]
+                values[decoded:upto] = np.frombuffer(chunk, dtype=dtype)
+                decoded = upto
+
+        self._recv_into(sock, pending, view, deadline, command, "payload", length, decode)
+        if buffer[length] == 0x0D:  # CR LF
+            self._recv_into(sock, pending, view[length:], deadline, command, "terminator")
+        if buffer[length] != 0x0A:
+            raise BlockError(
+                f"binary block from {command!r} is longer than its header "
+                f"announced (next byte {bytes(buffer[length : length + 1])!r})",
+                command=command,
+                resource=self.resource,
+            )
+        decode(length)
+        return values
+
+    def _recv_into(
+        self,
+        sock: socket.socket,
+        pending: bytearray,
+        out: memoryview,
+        deadline: float,
+        command: str,
+        part: str,
+        payload_bytes: int | None = None,
+        progress=None,
+    ) -> None:
+        """Fill ``out`` from pyvisa-py's pending bytes, then from the socket, by ``deadline``;
+        ``progress(bytes_so_far)`` runs while waiting for more. Data already queued is taken
+        without a ``select`` call."""
+        filled = min(len(pending), len(out))
+        if filled:
+            out[:filled] = pending[:filled]
+            del pending[:filled]
+        while filled < len(out):
+            try:
+                got = sock.recv_into(out[filled:], 0, _DONT_WAIT) if _DONT_WAIT else None
+            except BlockingIOError:
+                got = None
+            if got is None:  # nothing queued: use the wait for decoding, then block
+                if progress is not None:
+                    progress(filled)
+                remaining = deadline - time.monotonic()
+                ready = remaining > 0 and select.select([sock], [], [], remaining)[0]
+                got = sock.recv_into(out[filled:]) if ready else None
+                if got is None:
+                    self._raise_short_read(command, part, filled, payload_bytes, closed=False)
+            if got == 0:
+                self._raise_short_read(command, part, filled, payload_bytes, closed=True)
+            filled += got
+
+    def _raise_short_read(
+        self, command: str, part: str, filled: int, payload_bytes: int | None, *, closed: bool
+    ) -> None:
+        if part == "payload" and payload_bytes is not None and filled < payload_bytes:
+            message = (
+                f"binary block from {command!r} incomplete: the header announced "
+                f"{payload_bytes} bytes, the data stopped after {filled} (truncated block or "
+                f"dropped connection)"
+            )
+        elif part in ("payload", "terminator"):
+            message = f"no message terminator after the binary block from {command!r}"
+        elif closed:
+            raise ConnectionLost(
+                f"connection lost during {command!r}", command=command, resource=self.resource
+            )
+        else:
+            raise InstrumentTimeout(
+                f"no reply to {command!r} within {self._timeout_s:g} s",
+                command=command,
+                resource=self.resource,
+            )
+        raise BlockError(message, command=command, resource=self.resource)
+
     def _read_exact(self, count: int) -> bytes:
         return bytes(self._res.read_bytes(count, chunk_size=max(count, 1)))
 
@@ -711,3 +873,41 @@ class VisaSession(Transport):
                 command=command,
                 resource=self.resource,
             )
+
+
+def _socket_error_words(errno_code: int) -> str:
+    """What a failed TCP connect means on a bench, in words, with what to check."""
+    import errno
+    import os
+
+    if errno_code == errno.ECONNREFUSED:
+        return (
+            "connection refused: the host answered but nothing listens on that port; check the "
+            "port number (5025 is the usual SCPI socket port), that the instrument's SCPI "
+            "socket server is enabled and that no other program holds its only connection"
+        )
+    if errno_code in (errno.EHOSTUNREACH, errno.ENETUNREACH, errno.ETIMEDOUT, 0):
+        return (
+            "the host does not answer (unreachable or timed out); check the IP address, the "
+            "network cable and subnet, that the instrument is on, and firewalls"
+        )
+    return f"{os.strerror(errno_code)}; check the address and that the instrument is on"
+
+
+def _open_failure_words(exc: BaseException, open_timeout_s: float) -> str:
+    """A VISA open failure in words; the numeric VISA code stays in the error's context."""
+    from pyvisa import constants
+
+    code = getattr(exc, "error_code", None)
+    if code == constants.StatusCode.error_timeout:
+        return (
+            f"no connection within {open_timeout_s:g} s: the host is unreachable or does not "
+            "answer on that port; check the IP address, the network cable and subnet, that the "
+            "instrument is on, and firewalls"
+        )
+    if code == constants.StatusCode.error_resource_not_found:
+        return "no such resource: check the address string and that the instrument is connected"
+    if code == constants.StatusCode.error_resource_busy:
+        return "the resource is busy: another program holds the instrument; close it first"
+    abbreviation = getattr(exc, "description", None)
+    return str(abbreviation or exc)
