@@ -134,7 +134,10 @@ def cmd_estimate(args: argparse.Namespace, out: TextIO) -> int:
         f"(forecast from the radiometer equation; no instrument touched)",
         file=out,
     )
-    print(forecast_plan(plan).format(), file=out)
+    from noisebench.running.profile_check import applied_plan
+
+    _print_profile_warnings(plan)
+    print(forecast_plan(applied_plan(plan)).format(), file=out)  # RBWs as the profile rounds
     return EXIT_OK
 
 

@@ -21,7 +21,13 @@ from typing import Any
 
 from noisebench.errors import InputError
 
-__all__ = ["ProfileFinding", "check_plan_against_profile", "profile_errors", "profile_warnings"]
+__all__ = [
+    "ProfileFinding",
+    "applied_plan",
+    "check_plan_against_profile",
+    "profile_errors",
+    "profile_warnings",
+]
 
 
 @dataclass(frozen=True)
@@ -197,3 +203,38 @@ def _check_frequencies(plan: Any, profile: Any) -> list[ProfileFinding]:
             "points, or correct min/max in the profile)",
         )
     ]
+
+
+# ----------------------------------------------------------------------------- applied plan
+
+_ROUNDED = (("rbw_hz", "rbw_hz"), ("vbw_hz", "vbw_hz"), ("trace_points", "points"))
+
+
+def applied_plan(plan: Any) -> Any:
+    """``plan`` with every RBW, VBW and trace length as the analyzer's profile says the
+    instrument applies them (for ``estimate``: the forecast then uses what will be measured).
+    Unchanged for ``sim://`` benches and for settings the profile cannot set."""
+    profile = _profile_of(plan)
+    if profile is None or profile.analyzer is None:
+        return plan
+    s = profile.analyzer.settings
+
+    def rounded(values: dict[str, Any]) -> dict[str, Any]:
+        changes = {}
+        for key, setting_name in _ROUNDED:
+            wanted = values.get(key)
+            setting = getattr(s, setting_name, None)
+            if wanted is None or setting is None or not setting.writable:
+                continue
+            try:
+                applied = setting.applied(wanted)
+            except InputError:
+                continue  # refused: validate reports it
+            if applied != wanted:
+                changes[key] = applied
+        return changes
+
+    acquisition = plan.acquisition.model_copy(update=rounded(plan.acquisition.model_dump()))
+    segments = [seg.model_copy(update=rounded(seg.model_dump())) for seg in plan.sweep.segments]
+    sweep = plan.sweep.model_copy(update={"segments": segments})
+    return plan.model_copy(update={"acquisition": acquisition, "sweep": sweep})
