@@ -69,7 +69,7 @@ def fuzzing(cases: int) -> None:
         start = time.perf_counter()
         tally = _fuzz.fuzz(pristine, Path(tmp) / "work", cases, seed=1)
         elapsed = time.perf_counter() - start
-        accepted, refused = _fuzz.impossible_values_accepted(Path(tmp))
+        accepted, refused, warned = _fuzz.impossible_values_accepted(Path(tmp))
     logging.disable(logging.NOTSET)
     counts = tally.counts()
     print(
@@ -81,9 +81,11 @@ def fuzzing(cases: int) -> None:
         print(f"  {target:<12} {dict(c)}")
     for outcome in tally.failures()[:5]:
         print(f"  ! {outcome.target} [{outcome.mutation}] {outcome.kind}: {outcome.detail}")
+    total = len(accepted) + len(refused) + len(warned)
     print(
-        f"impossible: {len(accepted)} of {len(accepted) + len(refused)} impossible settings "
-        f"accepted{': ' + '; '.join(accepted) if accepted else ''}"
+        f"implausible: {len(accepted)} of {total} implausible settings accepted silently, "
+        f"{len(refused)} refused, {len(warned)} accepted with a warning"
+        f"{': ' + '; '.join(accepted) if accepted else ''}"
     )
 
 
