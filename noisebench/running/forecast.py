@@ -298,10 +298,45 @@ class PlanForecast:
         return "\n".join(lines)
 
 
-def _group_settings(plan: Plan, group: PointGroup, sim: Any) -> tuple[AcquisitionSettings, float]:
+def _settings_analyzer(plan: Plan, sim: Any) -> Any:
+    """The analyzer whose applied settings and timing the forecast uses, without acquiring:
+    the simulated analyzer, or a sampled analyzer (simulated receiver, or SigMF recordings read
+    for their metadata only); None for a real instrument (nominal swept-analyzer model)."""
+    from urllib.parse import urlsplit
+
+    resource = plan.bench.analyzer.resource
+    scheme = urlsplit(resource).scheme
+    if scheme == "sim" and sim is not None:
+        from noisebench.sims.address import parse_sim_address
+
+        address = parse_sim_address(resource)
+        if address.receiver != "sampled":
+            return sim.analyzer
+        from noisebench.sampled.analyzer import SampledAnalyzer
+        from noisebench.sims.samples import SimSampleReceiver
+
+        options = address.sampled
+        return SampledAnalyzer(
+            SimSampleReceiver(sim), window=options.window, overlap=options.overlap
+        )
+    if scheme == "sigmf":
+        from noisebench.sampled.address import parse_sampled_address
+        from noisebench.sampled.analyzer import SampledAnalyzer
+        from noisebench.sampled.sigmf_io import SigmfRecordings
+
+        address = parse_sampled_address(resource)
+        options = address.options
+        return SampledAnalyzer(
+            SigmfRecordings(address.target), window=options.window, overlap=options.overlap
+        )
+    return sim.analyzer if sim is not None else None
+
+
+def _group_settings(
+    plan: Plan, group: PointGroup, analyzer: Any
+) -> tuple[AcquisitionSettings, float]:
     """(applied settings for 1 average, instrument seconds per trace average)."""
-    if sim is not None:
-        analyzer = sim.analyzer
+    if analyzer is not None:
         one = analyzer.configure(group.request(1))
         t1 = analyzer.expected_acquisition_time_s()
         analyzer.configure(group.request(11))
@@ -325,8 +360,9 @@ def forecast_plan(plan: Plan, *, sim: Any = None) -> PlanForecast:
         sim.noise_source.settle_time_s if sim is not None else plan.bench.noise_source.settle_time_s
     )
     out: list[PointForecast] = []
+    analyzer = _settings_analyzer(plan, sim)
     for group in plan_groups(plan.points()):
-        settings, per_average_s = _group_settings(plan, group, sim)
+        settings, per_average_s = _group_settings(plan, group, analyzer)
         for f in group.freqs_hz:
             priors = (
                 _simulated_priors(plan, sim, f)
