@@ -31,7 +31,12 @@ def cross_check(plan: Plan, *, check_files: bool = True) -> list[str]:
     if check_files:
         problems += _check_enr(plan)
         problems += _check_tables(plan)
-        problems += _check_profiles(plan)
+        profile_problems = _check_profiles(plan)
+        problems += profile_problems
+        if not profile_problems:
+            from noisebench.running.profile_check import profile_errors
+
+            problems += profile_errors(plan)  # the plan against the analyzer's profile
     return problems
 
 

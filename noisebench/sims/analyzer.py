@@ -143,6 +143,11 @@ class SimAnalyzer(Analyzer):
         return self.spec.max_input_power_dbm
 
     @property
+    def max_averages_per_trace(self) -> int:
+        """The scenario's ``max_averages``: more in one trace are clamped to it."""
+        return int(self.spec.max_averages)
+
+    @property
     def settings(self) -> AcquisitionSettings | None:
         return self._settings
 
