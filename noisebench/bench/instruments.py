@@ -122,6 +122,7 @@ class Bench:
     generator: Generator | None = None
     ambient_k: float | None = None
     extras: dict = field(default_factory=dict)
+    lo_generator: Generator | None = None  # the LO of a frequency-converting DUT
 
     def identities(self) -> dict[str, str]:
         out = {"analyzer": self.analyzer.identity}
@@ -129,13 +130,16 @@ class Bench:
             out["noise_source"] = self.noise_source.identity
         if self.generator is not None:
             out["generator"] = self.generator.identity
+        if self.lo_generator is not None:
+            out["lo_generator"] = self.lo_generator.identity
         return out
 
     def safe_state(self) -> None:
-        """Noise source off, generator output off. Never raises."""
+        """Noise source off, generator and LO outputs off. Never raises."""
         for action in (
             (lambda: self.noise_source.set_hot(False)) if self.noise_source else None,
             (lambda: self.generator.set_output(False)) if self.generator else None,
+            (lambda: self.lo_generator.set_output(False)) if self.lo_generator else None,
         ):
             if action is None:
                 continue
@@ -146,7 +150,7 @@ class Bench:
 
     def close(self) -> None:
         self.safe_state()
-        for inst in (self.noise_source, self.generator, self.analyzer):
+        for inst in (self.noise_source, self.generator, self.lo_generator, self.analyzer):
             if inst is not None:
                 try:
                     inst.close()

@@ -16,7 +16,7 @@ from __future__ import annotations
 import copy
 from importlib import resources
 from pathlib import Path as FsPath
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
@@ -88,6 +88,47 @@ class Comb(_Model):
     level_dbm: float
 
 
+class ConversionSpec(_Model):
+    """What makes the DUT a frequency converter (difference mixing, IF = |f_in - LO|).
+
+    With it, the DUT's ``freq_hz``/``gain_db`` table is the conversion gain versus the INPUT
+    frequency (a preselector's skirts included: the image response follows from it), and
+    ``nf_db`` is the noise each response adds, referred to its own input frequency (a noisy
+    front end ahead of an ideal mixer); SSB and DSB figures follow from both responses.
+    """
+
+    if_min_hz: float = Field(gt=0, description="lower edge of the IF passband")
+    if_max_hz: float = Field(gt=0, description="upper edge of the IF passband")
+    rejected_sideband: Literal["lower", "upper"] | None = Field(
+        default=None,
+        description="an image-reject mixer: inputs on this side of the LO are suppressed by "
+        "sideband_rejection_db",
+    )
+    sideband_rejection_db: float = Field(default=0.0, ge=0.0)
+    lo_nominal_dbm: float = Field(default=7.0, description="LO drive the tables hold for")
+    lo_min_dbm: float = Field(
+        default=3.0, description="below this LO drive the conversion gain drops dB for dB"
+    )
+    lo_leakage_dbm: float = Field(
+        default=-40.0, description="LO line at the IF port at the nominal LO drive"
+    )
+    lo_harmonics_dbc: list[float] = Field(
+        default_factory=list, description="LO harmonics 2, 3, ... at the IF port, dB re LO line"
+    )
+    external_lo_hz: float | None = Field(
+        default=None, gt=0, description="a fixed LO inside the DUT (no LO generator needed)"
+    )
+    external_lo_dbm: float | None = None
+
+    @model_validator(mode="after")
+    def _check(self) -> ConversionSpec:
+        if self.if_max_hz <= self.if_min_hz:
+            raise InputError("dut.conversion.if_max_hz", "must be above if_min_hz")
+        if self.lo_min_dbm > self.lo_nominal_dbm:
+            raise InputError("dut.conversion.lo_min_dbm", "must be <= lo_nominal_dbm")
+        return self
+
+
 class DutSpec(_Model):
     """The device under test: available gain and noise figure versus frequency."""
 
@@ -109,6 +150,9 @@ class DutSpec(_Model):
     output_reflection: Reflection = Reflection()
     spurs: list[Tone] = Field(
         default_factory=list, description="lines at the DUT output (oscillation, spurs)"
+    )
+    conversion: ConversionSpec | None = Field(
+        default=None, description="a frequency-converting DUT (mixer, downconverter)"
     )
 
     @model_validator(mode="after")
@@ -292,6 +336,9 @@ class Scenario(_Model):
     input_cable: CableSpec = CableSpec()
     output_cable: CableSpec = CableSpec()
     generator: GeneratorSpec = GeneratorSpec()
+    lo_generator: GeneratorSpec = GeneratorSpec(
+        identity="noisebench,simulated LO generator,SIM-SG-0002,0.1", max_freq_hz=20e9
+    )
     supply: SupplySpec = SupplySpec()
     interference: InterferenceSpec = InterferenceSpec()
 

@@ -3,7 +3,8 @@
     python -m noisebench.sims --scenario demo-lna --seed 1 --host 127.0.0.1 --port 5025
 
 prints one VISA resource string per instrument (analyzer on PORT, generator on PORT+1, DC
-supply on PORT+2; ``--port 0`` picks free ports) and serves until interrupted.
+supply on PORT+2, LO generator on PORT+3; ``--port 0`` picks free ports) and serves until
+interrupted.
 """
 
 from __future__ import annotations
@@ -25,8 +26,8 @@ logger = logging.getLogger(__name__)
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="python -m noisebench.sims",
-        description="Serve a simulated noise-figure bench (analyzer, generator, DC supply) "
-        "over SCPI on raw TCP sockets.",
+        description="Serve a simulated noise-figure bench (analyzer, generator, DC supply, "
+        "LO generator) over SCPI on raw TCP sockets.",
     )
     parser.add_argument(
         "--scenario",
@@ -43,7 +44,8 @@ def build_parser() -> argparse.ArgumentParser:
         "--port",
         type=int,
         default=5025,
-        help="analyzer port; generator PORT+1, supply PORT+2; 0 = free ports (default: 5025)",
+        help="analyzer port; generator PORT+1, supply PORT+2, LO PORT+3; 0 = free ports "
+        "(default: 5025)",
     )
     parser.add_argument(
         "--time-scale",
@@ -92,8 +94,8 @@ def main(
     if args.time_scale < 0:
         print("error: --time-scale must be >= 0", file=sys.stderr)
         return 2
-    if not 0 <= args.port <= 65533:
-        print("error: --port must be 0..65533 (three consecutive ports are used)", file=sys.stderr)
+    if not 0 <= args.port <= 65532:
+        print("error: --port must be 0..65532 (four consecutive ports are used)", file=sys.stderr)
         return 2
     try:
         bench = (bench_factory or _default_bench_factory)(args.scenario, args.seed)
