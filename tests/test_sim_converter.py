@@ -196,3 +196,28 @@ def test_scpi_simulator_serves_the_lo_generator():
     assert bench.lo_generator.freq_hz == 2.1e9
     assert bench.lo_generator.level_dbm == 9.5
     assert not bench.generator.output_on
+
+
+def test_known_lo_lines_are_excluded_even_below_the_spur_threshold():
+    # A line 5 dB below the noise in one RBW is too weak for the spur search (its peak is
+    # ~30 % above the noise, under the 5-sigma threshold of 64 looks) but biases the band mean.
+    from test_estimator import D_TRUE, F0, synthetic_traces
+
+    from noisebench.bench.acquisition import Detector
+    from noisebench.science.estimator import estimate_density as est
+
+    m = 60
+    line = (F0 + 0.2e6, 0.3 * D_TRUE * 1e5)
+    kw = dict(detector=Detector.RMS, looks=4, averages=16, points=201, span_hz=2e6)
+    traces = synthetic_traces(seed=21, n_traces=m, spurs=[line], **kw)
+    plain = [est(t) for t in traces]
+    known = [est(t, known_lines_hz=[line[0]]) for t in traces]
+    assert all(d.excluded_freq_hz == [] for d in plain)  # the search alone misses it
+    assert all(d.excluded_freq_hz == [line[0]] and d.bins_used < 201 for d in known)
+    v = np.array([d.density_w_per_hz for d in known])
+    u = math.sqrt(np.mean([d.u_density_w_per_hz**2 for d in known]) / m)
+    assert abs(v.mean() - D_TRUE) < 4 * u  # unbiased with the line excluded
+    diff = np.array([p.density_w_per_hz for p in plain]) - v
+    # reference: the line adds its whole power to the band, 0.3 RBW-noise over 20 RBW = 1.5 %
+    assert diff.mean() > 4 * diff.std(ddof=1) / math.sqrt(m)
+    assert diff.mean() / D_TRUE == pytest.approx(0.015, abs=0.006)
