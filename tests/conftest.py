@@ -2,7 +2,16 @@
 
 from __future__ import annotations
 
+import os
+
 import pytest
+from hypothesis import settings
+
+# In CI (CI=true) property tests draw the same examples every run, so a red run can be
+# reproduced locally with CI=true pytest ...; deadline off: a loaded machine is not a bug.
+settings.register_profile("ci", derandomize=True, deadline=None, print_blob=True)
+settings.register_profile("dev", deadline=None)
+settings.load_profile("ci" if os.environ.get("CI", "").lower() in {"1", "true", "yes"} else "dev")
 
 
 @pytest.fixture

@@ -41,7 +41,7 @@ class Backend:
 def backend(request):
     if request.param == "scpi":
         server = request.getfixturevalue("sim_server")
-        analyzer = open_analyzer(server.resource("analyzer"), timeout_s=2.0)
+        analyzer = open_analyzer(server.resource("analyzer"), timeout_s=30.0)
         source = AnalyzerDriveNoiseSource(analyzer, settle_time_s=0.1)  # real-time settling
         yield Backend("scpi", analyzer, source, server.bench)
         source.close()
@@ -126,7 +126,7 @@ def test_noise_marker_is_corrected_for_log_averaging_on_every_back_end(backend):
     )
     reading = sa.read_marker(1.5e9, MarkerKind.NOISE_DENSITY, 5e6)
     # the instrument removed the log-average bias and divided by the ENBW, and says so
-    # (CALC:MARK:FUNC:CORR? on the SCPI back end)
+    # (CALC:MARK:QUAN:CORR? on the SCPI back end)
     assert reading.instrument_corrected is True
     density = density_from_marker(reading)
     assert density.bias_correction_db == 0.0
@@ -157,7 +157,7 @@ def test_both_back_ends_see_the_same_noise_level():
     local.analyzer.configure(REQUEST)
     densities.append(estimate_density(local.analyzer.acquire_trace()))
     with SimServer(SimulatedBench.from_scenario("demo-lna", seed=2)) as server:
-        sa = open_analyzer(server.resource("analyzer"), timeout_s=2.0)
+        sa = open_analyzer(server.resource("analyzer"), timeout_s=30.0)
         try:
             sa.configure(REQUEST)
             densities.append(estimate_density(sa.acquire_trace()))

@@ -30,8 +30,8 @@ from noisebench.drivers.protocol import (
     RECOVER,
     FakeTransport,
     ProtocolError,
-    expected_protocol,
     ieee_block,
+    replay_dialogue,
 )
 from noisebench.drivers.transport import BlockError
 from noisebench.errors import (
@@ -141,19 +141,19 @@ def analyzer(transport, **kwargs):
 
 def test_helper_fails_on_an_unexpected_command():
     with pytest.raises(ProtocolError, match="expected '\\*IDN', the driver sent '\\*IDN\\?'"):
-        with expected_protocol(analyzer, [("*IDN", IDN)]):
+        with replay_dialogue([("*IDN", IDN)], analyzer):
             pass
 
 
 def test_helper_fails_on_a_missing_exchange():
     with pytest.raises(ProtocolError, match="never happened.*SYST:ERR"):
-        with expected_protocol(analyzer, connect() + [("SYST:ERR?", OK)]):
+        with replay_dialogue(connect() + [("SYST:ERR?", OK)], analyzer):
             pass
 
 
 def test_helper_fails_when_a_scripted_reply_is_not_read():
     with pytest.raises(ProtocolError, match="expects it to read the reply"):
-        with expected_protocol(analyzer, [("*IDN?", IDN), ("*CLS", "1")]):
+        with replay_dialogue([("*IDN?", IDN), ("*CLS", "1")], analyzer):
             pass
 
 
@@ -167,14 +167,14 @@ def test_helper_fails_when_a_reply_is_read_that_was_not_scripted():
 
 
 def test_connect_identifies_and_clears_status_and_repr_does_no_io():
-    with expected_protocol(analyzer, connect()) as sa:
+    with replay_dialogue(connect(), analyzer) as sa:
         assert sa.identity == IDN
         assert "profile='generic'" in repr(sa)
         assert sa.settings is None
 
 
 def test_configure_sets_everything_then_reports_the_read_back_values():
-    with expected_protocol(analyzer, configured()) as sa:
+    with replay_dialogue(configured(), analyzer) as sa:
         applied = sa.configure(REQUEST)
     assert applied.rbw_hz == 100e3  # the instrument rounded 110 kHz; the driver reports it
     assert applied.rbw_filter.kind is FilterKind.GAUSSIAN
@@ -185,7 +185,7 @@ def test_configure_sets_everything_then_reports_the_read_back_values():
 
 
 def test_synchronous_filter_reports_its_poles_and_fft_mode_its_window():
-    with expected_protocol(analyzer, configured(shape="SYNC")) as sa:
+    with replay_dialogue(configured(shape="SYNC"), analyzer) as sa:
         assert sa.configure(REQUEST).rbw_filter.poles == 4
     request = REQUEST.model_copy(update={"mode": SweepMode.FFT})
     dialogue = (
@@ -194,7 +194,7 @@ def test_synchronous_filter_reports_its_poles_and_fft_mode_its_window():
         + readback(mode="FFT")
         + [("SYST:ERR?", OK)]
     )
-    with expected_protocol(analyzer, dialogue) as sa:
+    with replay_dialogue(dialogue, analyzer) as sa:
         applied = sa.configure(request)
     assert applied.mode is SweepMode.FFT
     assert applied.rbw_filter.kind is FilterKind.FFT and applied.rbw_filter.window == "hann"
@@ -213,7 +213,7 @@ def test_optional_settings_are_sent_only_when_requested():
         + readback(ref="-20", att="0", preamp="1", vbw="1.0E+04")
         + [("SYST:ERR?", OK)]
     )
-    with expected_protocol(analyzer, dialogue) as sa:
+    with replay_dialogue(dialogue, analyzer) as sa:
         applied = sa.configure(request)
     assert applied.preamp is True and applied.vbw_hz == 1e4 and applied.ref_level_dbm == -20
 
@@ -236,7 +236,7 @@ def test_profile_with_start_and_stop_only_sets_the_edges():
         + replies
         + [("SYST:ERR?", OK)]
     )
-    with expected_protocol(lambda t: ScpiAnalyzer(t, edges), dialogue) as sa:
+    with replay_dialogue(dialogue, lambda t: ScpiAnalyzer(t, edges)) as sa:
         applied = sa.configure(REQUEST)
     assert applied.center_hz == 1e9 and applied.span_hz == 10e6
 
@@ -249,7 +249,7 @@ def test_request_the_profile_cannot_apply_is_refused_before_any_io():
         "",
     )
     no_fft = parse_profile(text, "no_fft.toml")
-    with expected_protocol(lambda t: ScpiAnalyzer(t, no_fft), connect()) as sa:
+    with replay_dialogue(connect(), lambda t: ScpiAnalyzer(t, no_fft)) as sa:
         with pytest.raises(InputError, match="cannot set mode"):
             sa.configure(REQUEST.model_copy(update={"mode": SweepMode.FFT}))
         with pytest.raises(InputError) as info:
@@ -269,7 +269,7 @@ def test_error_queue_entry_is_raised_naming_the_command():
             ("SYST:ERR?", OK),
         ]
     )
-    with expected_protocol(analyzer, dialogue) as sa:
+    with replay_dialogue(dialogue, analyzer) as sa:
         with pytest.raises(InstrumentError) as info:
             sa.configure(REQUEST)
         assert sa.settings is None
@@ -288,7 +288,7 @@ def test_step_mode_reads_the_queue_once_per_step_and_lists_the_commands():
         + readback()
         + [("SYST:ERR?", '-221,"Settings conflict"'), ("SYST:ERR?", OK)]
     )
-    with expected_protocol(lambda t: ScpiAnalyzer(t, step), dialogue) as sa:
+    with replay_dialogue(dialogue, lambda t: ScpiAnalyzer(t, step)) as sa:
         with pytest.raises(InstrumentError) as info:
             sa.configure(REQUEST)
     assert info.value.command == "configure"
@@ -305,7 +305,7 @@ def test_acquire_trace_binary_with_a_timeout_sized_from_the_acquisition_time():
         + acquisition()
         + [("TRAC? TRACE1", ieee_block(values)), ("SYST:ERR?", OK)]
     )  # format not sent again
-    with expected_protocol(analyzer, dialogue) as sa:
+    with replay_dialogue(dialogue, analyzer) as sa:
         sa.configure(REQUEST)
         trace = sa.acquire_trace()
         assert sa.acquire_trace().values.size == 401
@@ -338,7 +338,7 @@ def test_long_acquisition_is_awaited_by_status_polling():
         + sets("FORM REAL,32", "FORM:BORD NORM")
         + [("TRAC? TRACE1", ieee_block(np.zeros(401))), ("SYST:ERR?", OK)]
     )
-    with expected_protocol(analyzer, dialogue, sleep=slept.append) as sa:
+    with replay_dialogue(dialogue, analyzer, sleep=slept.append) as sa:
         sa.configure(REQUEST)
         assert sa.expected_acquisition_time_s() == pytest.approx(200.0)
         assert sa.acquisition_timeout_s() == pytest.approx(302.0)
@@ -355,7 +355,7 @@ def test_ascii_transfer_and_a_wrong_point_count_is_refused():
         + acquisition()
         + [("TRAC? TRACE1", "-85.5,-85.5")]
     )
-    with expected_protocol(analyzer, dialogue, retries=0) as sa:
+    with replay_dialogue(dialogue, analyzer, retries=0) as sa:
         sa.configure(REQUEST)
         sa.set_trace_transfer("ascii")
         assert np.all(sa.acquire_trace().values == -85.5)
@@ -364,7 +364,7 @@ def test_ascii_transfer_and_a_wrong_point_count_is_refused():
 
 
 def test_acquire_before_configure_is_an_input_error():
-    with expected_protocol(analyzer, connect()) as sa:
+    with replay_dialogue(connect(), analyzer) as sa:
         with pytest.raises(InputError, match="configure"):
             sa.acquire_trace()
         with pytest.raises(InputError):
@@ -387,7 +387,7 @@ def test_broken_block_recovers_detects_lost_settings_and_reapplies_them():
         + sets("FORM REAL,32", "FORM:BORD NORM")
         + [("TRAC? TRACE1", ieee_block(values)), ("SYST:ERR?", OK)]
     )
-    with expected_protocol(analyzer, dialogue) as sa:
+    with replay_dialogue(dialogue, analyzer) as sa:
         sa.configure(REQUEST)
         trace = sa.acquire_trace()
     assert np.all(trace.values == -88.0)
@@ -406,7 +406,7 @@ def test_timeout_explained_by_the_error_queue_becomes_an_instrument_error():
             ("SYST:ERR?", OK),
         ]
     )
-    with expected_protocol(analyzer, dialogue) as sa:
+    with replay_dialogue(dialogue, analyzer) as sa:
         with pytest.raises(InstrumentError) as info:
             sa.read_settings()
     assert info.value.code == -113 and info.value.command == "FREQ:CENT?"
@@ -420,7 +420,7 @@ def test_when_retries_run_out_the_error_is_raised_and_recovery_waits_for_the_nex
         + [(RECOVER, "reconnect"), ("*IDN?", IDN), ("SYST:ERR?", OK)]
         + readback()
     )
-    with expected_protocol(analyzer, dialogue, retries=0) as sa:
+    with replay_dialogue(dialogue, analyzer, retries=0) as sa:
         with pytest.raises(InstrumentTimeout):
             sa.read_settings()
         assert sa.read_settings().rbw_hz == 100e3
@@ -432,7 +432,7 @@ def test_recovery_refuses_a_different_instrument_on_the_same_address():
         + [("FREQ:CENT?", InstrumentTimeout("no reply"))]
         + [(RECOVER, "reconnect"), ("*IDN?", "other,maker,1,1")]
     )
-    with expected_protocol(analyzer, dialogue, retries=1) as sa:
+    with replay_dialogue(dialogue, analyzer, retries=1) as sa:
         with pytest.raises(InstrumentTimeout) as info:
             sa.read_settings()
     assert "expected" in info.value.context["recovery_failed"]
@@ -441,16 +441,16 @@ def test_recovery_refuses_a_different_instrument_on_the_same_address():
 def test_band_power_marker_reads_value_position_and_correction_state():
     dialogue = (
         configured()
-        + sets("CALC:MARK:FUNC BPOWer", "CALC:MARK:X 1001000000", "CALC:MARK:FUNC:BAND 500000")
+        + sets("CALC:MARK:QUAN INTegral", "CALC:MARK:X 1001000000", "CALC:MARK:QUAN:WIDT 500000")
         + acquisition()
         + [
             ("CALC:MARK:Y?", "-50.25"),
             ("CALC:MARK:X?", "1.001E+09"),
-            ("CALC:MARK:FUNC:CORR?", "1"),
+            ("CALC:MARK:QUAN:CORR?", "1"),
             ("SYST:ERR?", OK),
         ]
     )
-    with expected_protocol(analyzer, dialogue) as sa:
+    with replay_dialogue(dialogue, analyzer) as sa:
         sa.configure(REQUEST)
         reading = sa.read_marker(1.001e9, MarkerKind.BAND_POWER)
         with pytest.raises(InputError, match="outside the trace"):
@@ -469,7 +469,7 @@ def test_noise_drive_is_verified_and_switched_off_on_close():
         + [("OUTP:NOIS?", "1")]
         + [("OUTP:NOIS OFF", None), ("OUTP:NOIS?", "0")]
     )  # close: off, confirmed
-    with expected_protocol(analyzer, dialogue) as sa:
+    with replay_dialogue(dialogue, analyzer) as sa:
         sa.set_noise_drive(True)
         with pytest.raises(MeasurementError, match="reports True"):
             sa.set_noise_drive(False)
@@ -478,14 +478,14 @@ def test_noise_drive_is_verified_and_switched_off_on_close():
 
 
 def test_sim_path_only_when_the_profile_defines_it():
-    with expected_protocol(
-        analyzer, connect() + sets("SIM:PATH THRough") + [("SIM:PATH?", "THR")]
+    with replay_dialogue(
+        connect() + sets("SIM:PATH THRough") + [("SIM:PATH?", "THR")], analyzer
     ) as sa:
         sa.set_sim_path("through")
     text = open(GENERIC.source).read()
     cut = text[text.index("# simulator only") : text.index("# ---", text.index("# simulator"))]
     real = parse_profile(text.replace(cut, ""), "real.toml")
-    with expected_protocol(lambda t: ScpiAnalyzer(t, real), connect()) as sa:
+    with replay_dialogue(connect(), lambda t: ScpiAnalyzer(t, real)) as sa:
         with pytest.raises(InputError, match="no simulator path"):
             sa.set_sim_path("dut")
 
@@ -506,7 +506,7 @@ def test_generator_sets_and_reads_back_and_switches_off_on_close():
         + sets("OUTP ON")
         + [("OUTP?", "1"), ("OUTP OFF", None), ("OUTP?", "0")]
     )
-    with expected_protocol(generator, dialogue, max_level_dbm=0.0) as gen:
+    with replay_dialogue(dialogue, generator, max_level_dbm=0.0) as gen:
         with pytest.raises(SafetyError, match="no level"):
             gen.set_output(True)
         with pytest.raises(SafetyError, match="above the limit"):
@@ -551,7 +551,7 @@ def test_supply_source_sets_limit_and_voltage_before_the_output_and_verifies_the
         + sets("OUTP OFF")
         + [("OUTP?", "0"), ("OUTP OFF", None), ("OUTP?", "0")]
     )
-    with expected_protocol(ScpiSupply, dialogue, profile=GENERIC) as supply:
+    with replay_dialogue(dialogue, ScpiSupply, profile=GENERIC) as supply:
         source = SupplyNoiseSource(
             supply,
             current_limit_a=0.05,
@@ -578,7 +578,7 @@ def test_supply_source_open_drive_lead_is_detected_and_the_output_switched_off()
         + sets("OUTP OFF")
         + [("OUTP?", "0")]
     )
-    with expected_protocol(ScpiSupply, dialogue, profile=GENERIC) as supply:
+    with replay_dialogue(dialogue, ScpiSupply, profile=GENERIC) as supply:
         source = SupplyNoiseSource(
             supply,
             drive_v=28.0,
@@ -593,8 +593,8 @@ def test_supply_source_open_drive_lead_is_detected_and_the_output_switched_off()
 
 
 def test_supply_source_refuses_an_overvoltage_before_touching_the_supply():
-    with expected_protocol(
-        ScpiSupply, connect("psu,x,1,1") + [("OUTP?", "0")], profile=GENERIC
+    with replay_dialogue(
+        connect("psu,x,1,1") + [("OUTP?", "0")], ScpiSupply, profile=GENERIC
     ) as supply:
         with pytest.raises(SafetyError, match="above the configured maximum"):
             SupplyNoiseSource(
@@ -620,7 +620,7 @@ def test_supply_reporting_a_higher_voltage_than_programmed_keeps_the_output_off(
         + sets("OUTP OFF")
         + [("OUTP?", "0")]
     )
-    with expected_protocol(ScpiSupply, dialogue, profile=GENERIC) as supply:
+    with replay_dialogue(dialogue, ScpiSupply, profile=GENERIC) as supply:
         with pytest.raises(SafetyError, match="reports 40 V"):
             SupplyNoiseSource(
                 supply, drive_v=28.0, current_limit_a=0.05, max_drive_v=32.0, settle_time_s=0.0
@@ -693,11 +693,14 @@ class _StubAnalyzer:
         self.source_ref, self.hot_dbm, self.cold_dbm = source_ref, hot_dbm, cold_dbm
 
     def acquire_trace(self):
+        """Noise with the scatter of 100 averages (points 5 RBW apart, so independent); the
+        same draw for hot and cold, so Y is exactly the level difference."""
         level = self.hot_dbm if self.source_ref[0].is_hot else self.cold_dbm
+        scatter_db = 10 * np.log10(np.random.default_rng(5).gamma(100.0, 1 / 100.0, 201))
         settings = AcquisitionSettings(
             center_hz=1e9,
             span_hz=1e6,
-            rbw_hz=1e4,
+            rbw_hz=1e3,
             detector=Detector.RMS,
             detector_samples=1.0,
             averaging_scale=AveragingScale.POWER,
@@ -705,7 +708,7 @@ class _StubAnalyzer:
             points=201,
         )
         return Trace(
-            freq_hz=settings.frequencies_hz(), values=np.full(201, level), settings=settings
+            freq_hz=settings.frequencies_hz(), values=level + scatter_db, settings=settings
         )
 
 

@@ -357,7 +357,7 @@ def hold_while_source_hot(
     proc: subprocess.Popen, run: Path, server: SimServer, min_points: int
 ) -> None:
     """Return once ``proc`` has journalled ``min_points`` and is stopped with the noise source
-    hot: every reply held back (``reply_delay_s``), so its next query cannot complete and
+    hot: every reply held back (``hold_replies``), so its next query cannot complete and
     it cannot switch the source cold (the ``OUTP OFF`` write comes after replies it is still
     waiting for). The source is checked again after the hold began, so it was hot while
     held; if it went cold just before, the hold is lifted until the next hot phase."""
@@ -368,11 +368,11 @@ def hold_while_source_hot(
             len(journal_points(read_journal(run))) >= min_points
             and server.bench.noise_source.is_hot
         ):
-            server.faults.reply_delay_s = CHILD_TIMEOUT_S
+            server.faults.hold_replies = True
             time.sleep(0.05)
             if server.bench.noise_source.is_hot:
                 return
-            server.faults.reply_delay_s = 0.0  # it switched cold just before: next hot phase
+            server.faults.hold_replies = False  # it switched cold just before: next hot phase
         time.sleep(0.002)
     raise AssertionError("the run never reached a hot phase after its first points")
 
@@ -409,7 +409,7 @@ def test_sigkill_mid_run_then_resume_loses_nothing(tmp_path, ideal_server, child
     assert load_run(run).info.status == "interrupted"  # its lock died with it: not live
     assert server.bench.noise_source.is_hot  # as on a real bench, SIGKILL left the source on
 
-    server.faults.reply_delay_s = 0.0
+    server.faults.hold_replies = False
     first_resumed_command = len(server.command_log)
     resumed = subprocess.run(
         [
@@ -468,7 +468,7 @@ def test_ctrl_c_mid_run_leaves_the_source_off_and_exits_130(
     child_processes.append(proc)
     hold_while_source_hot(proc, run, server, min_points=1)
     proc.send_signal(signal.SIGINT)  # arrives while the child waits for a held reply
-    server.faults.reply_delay_s = 0.0
+    server.faults.hold_replies = False
     assert proc.wait(timeout=CHILD_TIMEOUT_S) == cli.EXIT_INTERRUPTED
 
     stderr = (tmp_path / "child.err").read_text(encoding="utf-8")

@@ -105,7 +105,7 @@ def test_generic_commands_are_the_simulator_command_set():
     assert a.noise_drive.command(False) == "OUTP:NOIS OFF"
     assert a.sim_path.command("through") == "SIM:PATH THRough"
     assert a.trace.query == "TRAC? TRACE1"
-    assert a.marker.function.command("noise_density") == "CALC:MARK:FUNC NOISe"
+    assert a.marker.function.command("noise_density") == "CALC:MARK:QUAN DENSity"
 
 
 def test_reply_tokens_are_understood_in_short_and_long_form_any_case():

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import subprocess
 import sys
 from pathlib import Path
@@ -182,7 +183,7 @@ def test_unit_offsets_do_not_depend_on_the_python_process():
         "from noisebench.frontends.station import UnitVariation as V; "
         "o = V().offsets('U001'); print(repr((o.nf_offset_db, o.gain_offset_db, o.weak)))"
     )
-    env = {"PYTHONHASHSEED": "12345", "PATH": "/usr/bin:/bin"}
+    env = dict(os.environ, PYTHONHASHSEED="12345")  # inherit the rest (venv, PATH, locale)
     out = subprocess.run(
         [sys.executable, "-c", code],
         capture_output=True,

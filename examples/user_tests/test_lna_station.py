@@ -19,7 +19,7 @@ from pathlib import Path
 import pytest
 
 from noisebench.drivers import ScpiGenerator
-from noisebench.frontends.pytest_plugin import assert_verdict, expected_protocol
+from noisebench.frontends.pytest_plugin import assert_verdict, replay_dialogue
 from noisebench.science.point import PointFlag
 
 HERE = Path(__file__).resolve().parent
@@ -64,8 +64,7 @@ def test_spot_noise_figure_and_gain(nb_measure_point, freq_hz):
 def test_my_generator_profile_dialogue():
     """Our own generator profile sends exactly these commands (no hardware needed)."""
     profile = HERE / "my_generator.toml"
-    with expected_protocol(
-        lambda transport: ScpiGenerator(transport, profile),
+    with replay_dialogue(
         [
             ("*IDN?", "ACME,SG-9,1234,1.0"),
             ("*CLS", None),
@@ -78,6 +77,7 @@ def test_my_generator_profile_dialogue():
             ("SOURce:POWer:LEVel?", "-30.00"),
             ("SYSTem:ERRor?", '0,"No error"'),
         ],
+        lambda transport: ScpiGenerator(transport, profile),
     ) as generator:
         generator.set_cw(1.5e9, -30.0)
     assert generator.frequency_hz == 1.5e9

@@ -13,7 +13,7 @@ Layers: :mod:`~noisebench.drivers.transport` (the VISA session), :mod:`~noiseben
 profile` (profiles), :mod:`~noisebench.drivers.scpi_channel` (error queue, retries,
 recovery), then the instruments: :class:`ScpiAnalyzer`, :class:`ScpiGenerator`,
 :class:`ScpiSupply` and the noise-source controls. :mod:`~noisebench.drivers.protocol` has
-``expected_protocol`` for testing a profile without hardware.
+``replay_dialogue`` for testing a profile without hardware.
 """
 
 from __future__ import annotations
@@ -36,7 +36,7 @@ from .profile import (
     available_profiles,
     load_profile,
 )
-from .protocol import expected_protocol
+from .protocol import replay_dialogue
 from .transport import Transport, VisaSession
 
 __all__ = [
@@ -53,7 +53,7 @@ __all__ = [
     "VisaSession",
     "available_profiles",
     "check_source_switching",
-    "expected_protocol",
+    "replay_dialogue",
     "load_profile",
     "open_analyzer",
     "open_generator",

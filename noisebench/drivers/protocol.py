@@ -1,18 +1,19 @@
 """Protocol tests for drivers and profiles: a scripted, in-memory transport.
 
-``expected_protocol(factory, exchanges)`` builds an instrument on a :class:`FakeTransport`
-that holds the exact dialogue the driver must have, in order::
+``replay_dialogue(script, build)`` builds an instrument with ``build(transport)`` on a
+:class:`FakeTransport` that holds the exact dialogue the driver must have, in order::
 
     from noisebench.drivers import ScpiGenerator, load_profile
-    from noisebench.drivers.protocol import expected_protocol
+    from noisebench.drivers.protocol import replay_dialogue
 
-    with expected_protocol(lambda t: ScpiGenerator(t, load_profile("mine.toml")), [
+    script = [
         ("*IDN?", "ACME,SG-1,42,1.0"),       # a query and its reply
         ("*CLS", None),                       # a command without reply
         ("SYST:ERR?", '0,"No error"'),
         ...
-    ]) as generator:
-        generator.set_output(False)
+    ]
+    with replay_dialogue(script, lambda t: ScpiGenerator(t, load_profile("mine.toml"))) as gen:
+        gen.set_output(False)
 
 The test FAILS (``ProtocolError``, an ``AssertionError``) when the driver sends a command that
 is not the next one in the script, when it writes a command whose scripted reply it never
@@ -39,7 +40,7 @@ from .transport import (
     split_definite_block,
 )
 
-__all__ = ["RECOVER", "FakeTransport", "ProtocolError", "expected_protocol", "ieee_block"]
+__all__ = ["RECOVER", "FakeTransport", "ProtocolError", "ieee_block", "replay_dialogue"]
 
 RECOVER = "<recover>"
 Reply = str | bytes | BaseException | None
@@ -187,15 +188,16 @@ class FakeTransport(Transport):
 
 
 @contextmanager
-def expected_protocol(
-    factory: Callable[..., T], exchanges: Sequence[tuple[str, Reply]], **kwargs: Any
+def replay_dialogue(
+    script: Sequence[tuple[str, Reply]], build: Callable[..., T], **kwargs: Any
 ) -> Iterator[T]:
-    """Build ``factory(transport, **kwargs)`` on a scripted transport and check the dialogue.
+    """Build ``build(transport, **kwargs)`` on a transport that plays ``script``; check the
+    dialogue.
 
     Fails on an unexpected command, an unread or unscripted reply, or (when the block ends
     without an exception) a scripted exchange that never happened.
     """
-    transport = FakeTransport(exchanges)
-    instrument = factory(transport, **kwargs)
+    transport = FakeTransport(script)
+    instrument = build(transport, **kwargs)
     yield instrument
     transport.assert_done()

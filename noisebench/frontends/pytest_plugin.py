@@ -16,7 +16,7 @@ Fixtures::
                                  put in its safe state after every test, closed at the end
     nb_run_plan       (function) nb_run_plan(plan=None, *, freqs_hz=None, dut_id=None) -> RunRecord
     nb_measure_point  (function) nb_measure_point(freq_hz, plan=None) -> PointResult
-    nb_expected_protocol         noisebench.drivers.protocol.expected_protocol
+    nb_dialogue                  noisebench.drivers.protocol.replay_dialogue
 
 ``nb_run_plan`` runs the plan (default: ``nb_plan``; a Plan or a path also), optionally only at
 ``freqs_hz`` (each frequency keeps the settings of the segment it lies in), completes budgets
@@ -28,7 +28,7 @@ for the whole session and reused while valid (:mod:`noisebench.running.calibrati
 
 Helpers to import: :func:`assert_verdict` (``assert_verdict(record, "pass")`` fails with every
 point that did not pass, its value, expanded uncertainty and limit), :func:`failing_points`
-and :func:`expected_protocol` for testing your own instrument profiles without hardware.
+and :func:`replay_dialogue` for testing your own instrument profiles without hardware.
 Operator prompts (moving cables on a real bench) suspend pytest's output capture.
 
 Until the package's ``pytest11`` entry point is installed, load the plugin with
@@ -53,8 +53,8 @@ __all__ = [
     "assert_verdict",
     "configured_bench_address",
     "configured_plan_path",
-    "expected_protocol",
     "failing_points",
+    "replay_dialogue",
 ]
 
 DEFAULT_BENCH = "sim://demo-lna?seed=1"
@@ -82,17 +82,17 @@ _STATE_KEY = pytest.StashKey["_BenchState"]()
 # modules load only when a test uses them)
 
 
-def expected_protocol(
-    factory: Callable[..., Any], exchanges: Sequence[tuple[str, Any]], **kwargs: Any
+def replay_dialogue(
+    script: Sequence[tuple[str, Any]], build: Callable[..., Any], **kwargs: Any
 ) -> Any:
-    """:func:`noisebench.drivers.protocol.expected_protocol`: test a driver on a script.
+    """:func:`noisebench.drivers.protocol.replay_dialogue`: test a driver on a script.
 
-    ``with expected_protocol(lambda t: ScpiGenerator(t, "mine.toml"), [("*IDN?", "..."),
-    ...]) as generator:`` fails on an unexpected, missing or unread exchange.
+    ``with replay_dialogue([("*IDN?", "..."), ...], lambda t: ScpiGenerator(t, "mine.toml"))
+    as generator:`` fails on an unexpected, missing or unread exchange.
     """
-    from noisebench.drivers.protocol import expected_protocol as scripted
+    from noisebench.drivers.protocol import replay_dialogue as replay
 
-    return scripted(factory, exchanges, **kwargs)
+    return replay(script, build, **kwargs)
 
 
 def failing_points(record: Any) -> list[dict[str, Any]]:
@@ -244,7 +244,8 @@ def _fail_setup(exc: BaseException) -> None:
 
 def _with_bench(plan: Any, address: str | None) -> Any:
     """``plan`` with its analyzer at ``address`` (checked like a loaded plan)."""
-    from noisebench.running.plan import PlanError, cross_check
+    from noisebench.running.plan import PlanError
+    from noisebench.running.plan_checks import cross_check
 
     if address is None or address == plan.bench.analyzer.resource:
         return plan
@@ -365,10 +366,12 @@ class PlanRunner:
         return chosen if freqs_hz is None else plan_for_frequencies(chosen, freqs_hz)
 
     def _folder(self) -> Path:
+        from noisebench.user_files import safe_path_component
+
         self.state.runs += 1
         out = _option_path(self.request.config, "nb_out")
         name = f"{self.request.node.name}-run{self.state.runs}"
-        name = "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in name)[:120]
+        name = safe_path_component(name, default="run", max_length=120)
         if out is not None:
             return out / name
         return self.request.getfixturevalue("tmp_path") / name
@@ -428,9 +431,9 @@ def nb_measure_point(nb_run_plan: PlanRunner) -> Callable[..., Any]:
 
 
 @pytest.fixture
-def nb_expected_protocol() -> Callable[..., Any]:
-    """:func:`noisebench.drivers.protocol.expected_protocol`, for profile tests."""
-    return expected_protocol
+def nb_dialogue() -> Callable[..., Any]:
+    """:func:`noisebench.drivers.protocol.replay_dialogue`, for profile tests."""
+    return replay_dialogue
 
 
 # =========================================================================== assertions

@@ -94,8 +94,8 @@ _MARKER_KIND = {
 }
 _MARKER_FUNCTIONS = {
     "OFF": MarkerFunction.OFF,
-    "BPOWer": MarkerFunction.BAND_POWER,
-    "NOISe": MarkerFunction.NOISE,
+    "INTegral": MarkerFunction.BAND_POWER,
+    "DENSity": MarkerFunction.NOISE,
 }
 
 
@@ -626,18 +626,18 @@ class AnalyzerScpi(ScpiInstrument):
         n = N_MARKERS
         self.add(f"{base}:X", self._set_marker_x, self._get_marker_x, suffix_max=n)
         self.add(
-            f"{base}:FUNCtion", self._set_marker_function, self._get_marker_function, suffix_max=n
+            f"{base}:QUANtity", self._set_marker_function, self._get_marker_function, suffix_max=n
         )
         self.add(
-            f"{base}:FUNCtion:BAND", self._set_marker_band, self._get_marker_band, suffix_max=n
+            f"{base}:QUANtity:WIDTh", self._set_marker_band, self._get_marker_band, suffix_max=n
         )
         self.add(
-            f"{base}:FUNCtion:BAND:AUTO",
+            f"{base}:QUANtity:WIDTh:AUTO",
             self._set_marker_band_auto,
             self._get_marker_band_auto,
             suffix_max=n,
         )
-        self.add(f"{base}:FUNCtion:CORRected", None, self._get_marker_corrected, suffix_max=n)
+        self.add(f"{base}:QUANtity:CORRected", None, self._get_marker_corrected, suffix_max=n)
         self.add(f"{base}:Y", None, self._get_marker_y, suffix_max=n)
 
     def _marker(self, call: Call) -> MarkerState:
@@ -684,7 +684,7 @@ class AnalyzerScpi(ScpiInstrument):
         if marker.band_hz is not None:
             return format_number(marker.band_hz)
         if marker.function is MarkerFunction.OFF:
-            raise ScpiError(-221, "the automatic band is defined for BPOWer and NOISe")
+            raise ScpiError(-221, "the automatic width is defined for INTegral and DENSity")
         reading = self._marker_reading(marker)
         return format_number(float(reading.band_hz or 0.0))
 

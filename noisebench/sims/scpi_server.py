@@ -18,6 +18,7 @@ switches, a reboot). Block faults are one-shot; see ``noisebench/sims/SCPI.md``.
 
 from __future__ import annotations
 
+import ipaddress
 import logging
 import selectors
 import socket
@@ -25,8 +26,10 @@ import threading
 from typing import Any
 
 from noisebench import __version__
+from noisebench.errors import InputError
 
 from .scpi_analyzer import AnalyzerScpi
+from .scpi_compact import CompactAnalyzerScpi
 from .scpi_instruments import (
     Block,
     GeneratorScpi,
@@ -43,6 +46,9 @@ logger = logging.getLogger(__name__)
 
 __all__ = ["INSTRUMENTS", "Faults", "SimServer"]
 
+#: Analyzer command sets: the generic one (SCPI.md) and a second dialect (scpi_compact.py).
+ANALYZER_DIALECTS = {"generic": AnalyzerScpi, "compact": CompactAnalyzerScpi}
+
 #: Instrument names, in port order (analyzer on PORT, generator on PORT+1, supply on PORT+2,
 #: the LO generator of a frequency-converting DUT on PORT+3).
 INSTRUMENTS = ("analyzer", "generator", "supply", "lo")
@@ -55,6 +61,8 @@ class Faults:
     """Fault switches of one server; all off by default, settable at any time.
 
     - ``reply_delay_s``: wait this long before every reply.
+    - ``hold_replies``: keep every reply back until it is switched off again (tests of
+      timeouts use it so that a reply can never arrive early, however loaded the machine).
     - ``drop_after_commands``: the next N received lines are processed, then the connection
       that received the N-th is closed (0: the next line is not processed, its connection is
       closed). Fires once, then resets to ``None``.
@@ -71,6 +79,7 @@ class Faults:
 
     _SWITCHES = (
         "reply_delay_s",
+        "hold_replies",
         "drop_after_commands",
         "drop_mid_block",
         "truncate_block",
@@ -82,6 +91,7 @@ class Faults:
         self._server: SimServer | None = None
         self._lock = threading.Lock()
         self.reply_delay_s: float = 0.0
+        self.hold_replies = False
         self.drop_after_commands: int | None = None
         self.drop_mid_block = False
         self.truncate_block = False
@@ -111,6 +121,7 @@ class Faults:
     def clear(self) -> None:
         """Every switch off."""
         self.reply_delay_s = 0.0
+        self.hold_replies = False
         self.drop_after_commands = None
         self.drop_mid_block = False
         self.truncate_block = False
@@ -173,6 +184,16 @@ class _Client:
         self.sock.close()
 
 
+def is_loopback(host: str) -> bool:
+    """True if ``host`` is a loopback address (127.0.0.0/8, ::1) or ``localhost``."""
+    if host.strip().lower() == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host.strip().strip("[]")).is_loopback
+    except ValueError:
+        return False  # a host name or a wildcard ("", "0.0.0.0" is not loopback either)
+
+
 class SimServer:
     """SCPI-over-TCP front end of a simulated bench (analyzer, generator, DC supply, LO).
 
@@ -194,9 +215,20 @@ class SimServer:
         acquisition_time_scale: float = 0.0,
         wall_clock: bool = True,
         command_log_limit: int = 100_000,
+        dialect: str = "generic",
+        allow_remote: bool = False,
     ) -> None:
         if acquisition_time_scale < 0:
             raise ValueError("acquisition_time_scale must be >= 0")
+        if dialect not in ANALYZER_DIALECTS:
+            raise ValueError(f"dialect must be one of {sorted(ANALYZER_DIALECTS)}")
+        self.dialect = dialect
+        if not is_loopback(host) and not allow_remote:
+            raise InputError(
+                "host",
+                f"{host!r} is not a loopback address; the simulator has no authentication",
+                fix="listen on 127.0.0.1, or pass allow_remote=True (--allow-remote) on purpose",
+            )
         self.bench = bench
         self.host = host
         self.port = int(port)
@@ -217,7 +249,7 @@ class SimServer:
         self._wake_w: socket.socket | None = None
         common = (bench, self._bench_lock, self.faults, self._stop)
         self.instruments: dict[str, ScpiInstrument] = {
-            "analyzer": AnalyzerScpi(
+            "analyzer": ANALYZER_DIALECTS[dialect](
                 *common, _identity(bench, "analyzer"), time_scale=acquisition_time_scale
             ),
             "generator": GeneratorScpi(*common, _identity(bench, "generator")),
@@ -447,6 +479,9 @@ class SimServer:
         delay = float(self.faults.reply_delay_s)
         if delay > 0 and (client.closed.wait(delay) or self._stop.is_set()):
             return
+        while self.faults.hold_replies:  # held until the test lets it go
+            if client.closed.wait(0.01) or self._stop.is_set():
+                return
         chunks: list[bytes] = []
         for index, response in enumerate(responses):
             if index:

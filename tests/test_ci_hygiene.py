@@ -1,0 +1,54 @@
+"""The test suite's own hygiene: reproducible property tests in CI, an inherited environment in
+subprocesses, and no short timeouts on normal exchanges (a loaded CI machine is not a fault)."""
+
+from __future__ import annotations
+
+import os
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+TESTS = Path(__file__).parent
+
+
+def _profile_in_a_child(ci_value: str | None) -> str:
+    env = dict(os.environ)
+    env.pop("CI", None)
+    if ci_value is not None:
+        env["CI"] = ci_value
+    code = (
+        "import sys; sys.path.insert(0, 'tests'); import conftest; "
+        "from hypothesis import settings; s = settings.default; "
+        "print(s.derandomize, s.deadline)"
+    )
+    return subprocess.run(
+        [sys.executable, "-c", code],
+        capture_output=True,
+        text=True,
+        env=env,
+        cwd=TESTS.parent,
+        timeout=120,
+        check=True,
+    ).stdout.strip()
+
+
+def test_ci_loads_the_derandomized_hypothesis_profile():
+    assert _profile_in_a_child("true") == "True None"  # same examples every CI run
+    assert _profile_in_a_child(None) == "False None"  # developers explore new examples
+
+
+def test_no_test_uses_a_sub_second_timeout_outside_a_deliberate_fault():
+    """A sub-second timeout is allowed only where no reply can come in time (held, never sent,
+    nothing listening): everywhere else it races a busy machine. Each allowed one says why in
+    a ``# short timeout: ...`` comment on the line before."""
+    short = re.compile(r"timeout(_s)?\s*=\s*0\.\d+|settimeout\(0\.\d+\)")
+    offenders = []
+    for path in sorted(TESTS.glob("test_*.py")):
+        lines = path.read_text(encoding="utf-8").splitlines()
+        for number, line in enumerate(lines, start=1):
+            if not short.search(line):
+                continue
+            if "# short timeout:" not in lines[number - 2] + line:
+                offenders.append(f"{path.name}:{number}: {line.strip()}")
+    assert offenders == []
