@@ -144,6 +144,8 @@ def simulated_session(
     resources = {"analyzer": resource}
     if bench.generator is not None:
         resources["generator"] = resource
+    if bench.lo_generator is not None:
+        resources["lo"] = resource
     return BenchSession(
         bench=bench,
         kind="simulated",
@@ -178,18 +180,33 @@ def _open_scpi(section: BenchSection, *, prompt: Prompt, enr_drive_v: float | No
                 timeout_s=section.generator.timeout_s,
             )
             opened.append(generator)
+        lo_generator = None
+        if section.lo is not None:
+            lo_generator = drivers.open_generator(
+                section.lo.resource,
+                profile=section.lo.profile,
+                timeout_s=section.lo.timeout_s,
+                max_level_dbm=section.lo.max_level_dbm,
+            )
+            opened.append(lo_generator)
     except BaseException:
         for inst in reversed(opened):
             _close_quietly(inst)
         raise
     bench = Bench(
-        analyzer=analyzer, noise_source=source, generator=generator, ambient_k=section.ambient_k
+        analyzer=analyzer,
+        noise_source=source,
+        generator=generator,
+        ambient_k=section.ambient_k,
+        lo_generator=lo_generator,
     )
     resources = {"analyzer": section.analyzer.resource}
     if section.noise_source.resource:
         resources["noise_source"] = section.noise_source.resource
     if section.generator is not None:
         resources["generator"] = section.generator.resource
+    if section.lo is not None:
+        resources["lo"] = section.lo.resource
     sim_path = section.connect == "auto" and _supports_sim_path(analyzer)
     move = _scpi_sim_mover(analyzer) if sim_path else _operator_mover(prompt)
     return BenchSession(

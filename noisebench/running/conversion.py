@@ -122,11 +122,15 @@ class ConversionSection(BaseModel):
                         f"conversion.triples[{i}]",
                         f"must be [rf_hz, lo_hz, if_hz], three frequencies > 0 (got {t!r})",
                     )
-        if isinstance(self.image_rejection_db, float) and self.image_rejection_db < 0:
+        rejection = self.image_rejection_db
+        if isinstance(rejection, str) and rejection in ("none", "equal"):
+            pass
+        elif isinstance(rejection, float) and not -30.0 <= rejection <= 200.0:
             raise InputError(
                 "conversion.image_rejection_db",
-                "must be >= 0 dB (the image response below the signal response)",
-                fix='use "equal" for equal responses',
+                f"must be -30..200 dB (got {rejection:g}; negative: the image response is the "
+                "stronger one)",
+                fix='use "none" for no image response, "equal" for equal responses',
             )
         return self
 
@@ -239,8 +243,8 @@ def _read_rejection_csv(path: Path, label: str) -> tuple[np.ndarray, np.ndarray]
             f, r = (float(c) for c in row)
         except ValueError:
             raise InputError(field, f"{name} row {i}: two numbers expected (got {row!r})") from None
-        if not (math.isfinite(f) and f > 0 and math.isfinite(r) and r >= 0):
-            raise InputError(field, f"{name} row {i}: need freq_hz > 0 and a rejection >= 0 dB")
+        if not (math.isfinite(f) and f > 0 and math.isfinite(r) and -30.0 <= r <= 200.0):
+            raise InputError(field, f"{name} row {i}: need freq_hz > 0 and -30..200 dB")
         if freq and f <= freq[-1]:
             raise InputError(field, f"{name} row {i}: frequencies must rise")
         freq.append(f)

@@ -13,7 +13,7 @@ Layout (all sections but ``bench`` and ``sweep`` optional)::
     method = "y_factor"                 # or "gain"
     operator = "..."; station = "..."
     [dut]          id, description
-    [bench]        analyzer, noise_source, generator, connect, ambient_k
+    [bench]        analyzer, noise_source, generator, lo, connect, ambient_k
     [acquisition]  rbw_hz, span_hz, detector, averaging_scale, target_u_nf_db, time_limit_s, ...
     [sweep]        freqs_hz = [...]  and/or  [[sweep.segments]] (ranges with their own settings)
     [enr]          table, extrapolate
@@ -25,6 +25,8 @@ Layout (all sections but ``bench`` and ``sweep`` optional)::
     [output]       folder, plots, report
     [uncertainty]  budget inputs (noisebench.science.uncertainty)
     [limits]       pass/fail mask (noisebench.science.limits)
+    [conversion]   frequency-converting DUT: LO/IF plan, sideband, image response, LO
+                   (noisebench.running.conversion)
 
 This module is the schema (one pydantic model per section, kept together so that the whole plan
 reads in one place, hence its length) and the loader; the cross-field checks are in
@@ -54,6 +56,7 @@ from pydantic import (
 
 from noisebench.bench.acquisition import AveragingScale, Detector, SweepMode
 from noisebench.errors import InputError
+from noisebench.running.conversion import ConversionSection
 from noisebench.running.plan_errors import PlanError, format_validation_error
 from noisebench.science.point import Method
 
@@ -162,6 +165,9 @@ class BenchSection(BaseModel):
     analyzer: AnalyzerSection
     noise_source: NoiseSourceSection = Field(default_factory=NoiseSourceSection)
     generator: GeneratorSection | None = None
+    lo: GeneratorSection | None = Field(
+        default=None, description="the LO generator of a frequency-converting DUT"
+    )
     connect: Literal["auto", "operator"] = Field(
         default="auto",
         description="auto: the simulator moves the paths itself; "
@@ -169,7 +175,7 @@ class BenchSection(BaseModel):
     )
     ambient_k: float | None = Field(default=None, gt=0, le=400)
 
-    @field_validator("analyzer", "generator", mode="before")
+    @field_validator("analyzer", "generator", "lo", mode="before")
     @classmethod
     def _resource_shorthand(cls, value: Any) -> Any:
         return {"resource": value} if isinstance(value, str) else value
@@ -556,11 +562,22 @@ class OutputSection(BaseModel):
 
 @dataclass(frozen=True)
 class FrequencyPoint:
-    """One frequency to measure with its effective acquisition policy."""
+    """One frequency to measure with its effective acquisition policy.
+
+    ``freq_hz`` is where the analyzer reads. For a frequency-converting DUT that is the IF;
+    ``rf_hz``/``lo_hz`` then name the point (results are reported at the RF).
+    """
 
     freq_hz: float
     segment: int | None
     policy: AcquisitionPolicy
+    rf_hz: float | None = None
+    lo_hz: float | None = None
+
+    @property
+    def report_hz(self) -> float:
+        """The frequency the result is stored at: the RF of a converter, else ``freq_hz``."""
+        return self.rf_hz if self.rf_hz is not None else self.freq_hz
 
 
 class Plan(BaseModel):
@@ -584,8 +601,29 @@ class Plan(BaseModel):
     output: OutputSection = Field(default_factory=OutputSection)
     uncertainty: _UncertaintySection | None = None
     limits: _LimitsSection | None = None
+    conversion: ConversionSection | None = None
 
     _base_dir: Path = PrivateAttr(default_factory=Path.cwd)
+
+    @model_validator(mode="before")
+    @classmethod
+    def _triples_make_the_sweep(cls, data: Any) -> Any:
+        """In ``triples`` mode the triples list the RF points: the sweep is made from them."""
+        if not isinstance(data, dict):
+            return data
+        conv = data.get("conversion")
+        if isinstance(conv, dict) and conv.get("mode") == "triples":
+            if "sweep" in data:
+                raise InputError(
+                    "sweep",
+                    "is not used in conversion mode 'triples' (the triples list the RF)",
+                    fix="delete the [sweep] section, or use mode fixed_lo / fixed_if",
+                )
+            triples = conv.get("triples")
+            if isinstance(triples, list) and triples:
+                rf = [t[0] for t in triples if isinstance(t, list) and t]
+                data = {**data, "sweep": {"freqs_hz": rf}}
+        return data
 
     @property
     def base_dir(self) -> Path:
@@ -602,7 +640,41 @@ class Plan(BaseModel):
         return path if path.is_absolute() else self._base_dir / path
 
     def points(self) -> list[FrequencyPoint]:
-        """Every frequency point, ascending, with its merged acquisition policy."""
+        """Every frequency point, ascending, with its merged acquisition policy.
+
+        With a ``[conversion]`` section the points are read at their IF (``freq_hz``) and
+        carry their RF and LO; they are ordered by RF."""
+        if self.conversion is not None:
+            return self._conversion_points()
+        return self._sweep_points()
+
+    def _conversion_points(self) -> list[FrequencyPoint]:
+        from noisebench.running.conversion import frequency_plan
+
+        section = self.conversion
+        assert section is not None
+        rf_points = self._sweep_points() if section.mode != "triples" else []
+        fp = frequency_plan(section, [p.freq_hz for p in rf_points])
+        policies = [p.policy for p in rf_points] or [self.acquisition] * len(fp.rf_hz)
+        segments = [p.segment for p in rf_points] or [None] * len(fp.rf_hz)
+        out = [
+            FrequencyPoint(float(i), seg, pol, float(r), float(lo))
+            for i, r, lo, pol, seg in zip(
+                fp.if_hz, fp.rf_hz, fp.lo_hz, policies, segments, strict=True
+            )
+        ]
+        return sorted(out, key=lambda p: p.report_hz)
+
+    def frequency_plan(self):
+        """The conversion's :class:`~noisebench.science.conversion.FrequencyPlan` (or None)."""
+        if self.conversion is None:
+            return None
+        from noisebench.running.conversion import frequency_plan
+
+        rf = [] if self.conversion.mode == "triples" else [p.freq_hz for p in self._sweep_points()]
+        return frequency_plan(self.conversion, rf)
+
+    def _sweep_points(self) -> list[FrequencyPoint]:
         out: list[FrequencyPoint] = []
         if self.sweep.freqs_hz is not None:
             out += [

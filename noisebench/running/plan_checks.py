@@ -31,6 +31,86 @@ def cross_check(plan: Plan, *, check_files: bool = True) -> list[str]:
         problems += _check_enr(plan)
         problems += _check_tables(plan)
         problems += _check_profiles(plan)
+    if plan.conversion is not None:
+        problems += _check_conversion(plan, check_files=check_files)
+    return problems
+
+
+def _check_conversion(plan: Plan, *, check_files: bool) -> list[str]:
+    """A converter plan: frequency plan, IF in the analyzer's range, RF/IF/image in the ENR
+    table, IF bands and image clear of the LO leakage, the LO generator's range."""
+    from noisebench.running.conversion import ImageRejection, conversion_problems
+
+    section = plan.conversion
+    assert section is not None
+    problems = []
+    try:
+        fp = plan.frequency_plan()
+        points = plan.points()
+    except (InputError, ValidationError) as exc:
+        return [str(exc) if isinstance(exc, InputError) else "sweep: invalid"]
+    if section.lo.source == "generator" and plan.bench.lo is None and not plan.is_simulated:
+        problems.append(
+            'bench.lo: the LO comes from a generator (conversion.lo.source = "generator"); '
+            'name it: lo = { resource = "TCPIP0::...::SOCKET" } (or source = "external")'
+        )
+    lo_bench = plan.bench.lo
+    level = section.lo.level_dbm
+    if section.lo.source == "generator" and lo_bench is not None and level is not None:
+        if level > lo_bench.max_level_dbm:
+            problems.append(
+                f"conversion.lo.level_dbm: {level:g} dBm is above bench.lo.max_level_dbm "
+                f"{lo_bench.max_level_dbm:g} dBm (raise max_level_dbm if the converter is rated "
+                "for it)"
+            )
+    if section.lo.source == "external" and section.lo_leakage_dbm is None:
+        problems.append(
+            "conversion.lo_leakage_dbm: needed with an external LO, the power guard counts the "
+            "LO line at the IF port (give the data-sheet LO leakage, dBm)"
+        )
+    image = None
+    if (
+        check_files
+        or not isinstance(section.image_rejection_db, str)
+        or (section.image_rejection_db in ("none", "equal"))
+    ):
+        try:
+            image = ImageRejection(section, plan.resolve_path)
+        except InputError as exc:
+            problems.append(str(exc))
+    analyzer_range = enr_range = lo_range = None
+    if plan.is_simulated:
+        try:
+            from noisebench.sims.scenario import load_scenario
+
+            scenario = load_scenario(parse_sim_address(plan.bench.analyzer.resource).scenario)
+            analyzer_range = (scenario.analyzer.min_freq_hz, scenario.analyzer.max_freq_hz)
+            lo_range = (scenario.lo_generator.min_freq_hz, scenario.lo_generator.max_freq_hz)
+            if plan.enr.table is None:
+                enr_range = (scenario.noise_source.freq_hz[0], scenario.noise_source.freq_hz[-1])
+        except (ImportError, InputError):
+            pass
+    if plan.enr.table is not None and check_files and plan.enr.extrapolate != "clamp":
+        try:
+            from noisebench.science.enr import EnrTable
+
+            table = EnrTable.from_csv(plan.resolve_path(plan.enr.table))
+            enr_range = table.range_hz
+        except (ImportError, InputError, OSError):
+            pass  # reported by _check_enr
+    by_rf = {p.report_hz: p for p in points}
+    ordered = [by_rf[float(f)] for f in fp.rf_hz]
+    problems += conversion_problems(
+        section,
+        fp,
+        band_hz=[p.policy.span_hz for p in ordered],
+        rbw_hz=[p.policy.rbw_hz for p in ordered],
+        analyzer_range_hz=analyzer_range,
+        enr_range_hz=enr_range,
+        lo_range_hz=lo_range,
+        image_rejection=image,
+        y_factor=plan.method is Method.Y_FACTOR,
+    )
     return problems
 
 
@@ -42,6 +122,8 @@ def _profile_sections(plan: Plan) -> list[tuple[str, Any]]:
     out: list[tuple[str, Any]] = [("bench.analyzer", bench.analyzer)]
     if bench.generator is not None:
         out.append(("bench.generator", bench.generator))
+    if bench.lo is not None:
+        out.append(("bench.lo", bench.lo))
     if bench.noise_source.drive == "supply":
         out.append(("bench.noise_source", bench.noise_source))
     return out
@@ -147,6 +229,7 @@ def _check_bench(plan: Plan) -> list[str]:
             plan.bench.generator.resource if plan.bench.generator else None,
         ),
         ("bench.noise_source.resource", plan.bench.noise_source.resource),
+        ("bench.lo.resource", plan.bench.lo.resource if plan.bench.lo else None),
     ]
     for key, res in others:
         if res is None or res == "sim":
@@ -235,8 +318,8 @@ def _check_enr(plan: Plan) -> list[str]:
         return []
     except InputError as exc:
         return [f"enr.table: {exc.message}"]
-    if table.range_hz is None:  # a flat table covers every frequency
-        return []
+    if table.range_hz is None or plan.conversion is not None:
+        return []  # flat table; a converter's RF, image and IF are checked by _check_conversion
     return _coverage_problems(
         "enr.table",
         path.name,
@@ -246,10 +329,21 @@ def _check_enr(plan: Plan) -> list[str]:
     )
 
 
+def _table_freqs_hz(plan: Plan, key: str) -> np.ndarray:
+    """Where a table is read: the analyzer frequencies, or for a converter the RF and image
+    (input loss, DUT gain) or the IF (output loss)."""
+    fp = plan.frequency_plan() if plan.conversion is not None else None
+    if fp is None or key == "corrections.output_loss":
+        return plan.freqs_hz()
+    if key == "corrections.input_loss":
+        return np.concatenate([fp.rf_hz, fp.image_hz])
+    return np.asarray(fp.rf_hz)
+
+
 def _coverage_problems(
     key: str, name: str, table_freq_hz: np.ndarray, plan: Plan, *, allow_clamp: bool
 ) -> list[str]:
-    freqs = plan.freqs_hz()
+    freqs = _table_freqs_hz(plan, key)
     lo, hi = float(np.min(table_freq_hz)), float(np.max(table_freq_hz))
     outside = freqs[(freqs < lo * (1 - 1e-12)) | (freqs > hi * (1 + 1e-12))]
     if outside.size == 0 or allow_clamp:
@@ -319,7 +413,7 @@ def _check_tables(plan: Plan) -> list[str]:
 def _gain_in_loss_table(key: str, name: str, table: Any, plan: Plan) -> list[str]:
     """A loss table must not give gain at a sweep frequency (the run would refuse it there;
     the same 1e-3 dB tolerance as :mod:`noisebench.running.corrections`)."""
-    freqs = plan.freqs_hz()
+    freqs = _table_freqs_hz(plan, key)
     loss_db = np.asarray(table.at(freqs).loss_db, dtype=float) * np.ones_like(freqs)
     bad = np.flatnonzero(loss_db < -1e-3)
     if bad.size == 0:

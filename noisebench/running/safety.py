@@ -221,7 +221,9 @@ class PowerGuard:
     the highest cold density read with the DUT in (:func:`hot_power_from_cold_density_dbm`
     plus :data:`GAIN_PEAKING_MARGIN_DB`); the larger bound is used. On the THROUGH path the
     source feeds the analyzer directly (0 dB gain). ``bandwidth_hz`` is the band over which
-    the source's noise (and the DUT's gain) reaches the analyzer.
+    the source's noise (and the DUT's gain) reaches the analyzer. ``dut_lines_dbm``: lines the
+    DUT itself puts on its output whatever the source does (a converter's LO leakage and its
+    harmonics, total power), added on the DUT path.
     """
 
     def __init__(
@@ -234,8 +236,10 @@ class PowerGuard:
         cold_temperature_k: float,
         t0_k: float = T0_K,
         declared_nf_db: float | None = None,
+        dut_lines_dbm: float | None = None,
     ) -> None:
         require_positive("bandwidth_hz", bandwidth_hz)
+        self.dut_lines_dbm = dut_lines_dbm
         self.limits = limits
         self.bandwidth_hz = bandwidth_hz
         self.declared_gain_db = declared_gain_db
@@ -293,7 +297,11 @@ class PowerGuard:
                 "is unknown before the first hot switch",
                 fix="read the DUT cold first, or declare safety.dut_max_gain_db",
             )
-        return max(estimates)
+        if self.dut_lines_dbm is None:
+            return max(estimates)
+        return 10.0 * math.log10(
+            10.0 ** (max(estimates) / 10.0) + 10.0 ** (self.dut_lines_dbm / 10.0)
+        )
 
     def before_hot(
         self,

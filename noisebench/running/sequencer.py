@@ -97,7 +97,19 @@ def power_guard_for(plan: Plan, session: BenchSession, corrections: Corrections)
         cold_temperature_k=corrections.source_temperature_k,
         t0_k=corrections.t0_k,
         declared_nf_db=plan.expect.dut_nf_db,
+        dut_lines_dbm=_lo_lines_dbm(plan),
     )
+
+
+def _lo_lines_dbm(plan: Plan) -> float | None:
+    """A converter's LO power at its IF port as the power guard counts it: the declared LO
+    leakage, else the LO drive itself (no isolation assumed: the safe side), dBm."""
+    conv = plan.conversion
+    if conv is None:
+        return None
+    if conv.lo_leakage_dbm is not None:
+        return conv.lo_leakage_dbm
+    return conv.lo.level_dbm
 
 
 # --------------------------------------------------------------------------- the sequencer
@@ -183,7 +195,7 @@ class Sequencer(MeasurementSteps, GainStep, VerdictStep):
                 )
 
     def _run_with(self, writer):
-        todo = [p for p in self.plan.points() if p.freq_hz not in writer.done_freqs_hz]
+        todo = [p for p in self.plan.points() if p.report_hz not in writer.done_freqs_hz]
         total = len(self.plan.points())
         self.progress.start(
             total,
@@ -212,9 +224,51 @@ class Sequencer(MeasurementSteps, GainStep, VerdictStep):
     def _prepare(self, writer) -> None:
         self.corrections = resolve_corrections(self.plan, self.session)
         self.guard = power_guard_for(self.plan, self.session, self.corrections)
+        if self.plan.conversion is not None:
+            self._prepare_conversion(writer)
         writer.update_info(
             cold_temperature_k=self.corrections.source_temperature_k,
             identities=self.session.bench.identities(),
+        )
+
+    def _prepare_conversion(self, writer) -> None:
+        """The LO control and the image response of a frequency-converting DUT; the frequency
+        plan goes into the run's notes (report, database)."""
+        from noisebench.running.conversion import ImageRejection, LoControl
+
+        conv = self.plan.conversion
+        assert conv is not None
+        sim = self.session.sim
+        wait = sim.clock.advance if sim is not None else None
+        kwargs = {"wait": wait} if wait is not None else {}
+        self.lo = LoControl(conv.lo, self.session.bench.lo_generator, **kwargs)
+        self.image_rejection = ImageRejection(conv, self.plan.resolve_path)
+        fp = self.plan.frequency_plan()
+        writer.update_info(
+            notes={
+                **writer.info.notes,
+                "conversion": {
+                    "mode": conv.mode,
+                    "nf_type": conv.nf_type,
+                    "lo_source": conv.lo.source,
+                    "lo_level_dbm": conv.lo.level_dbm,
+                    "image_rejection": self.image_rejection.description,
+                    "u_image_rejection_db": conv.u_image_rejection_db,
+                    "lo_harmonics_excluded": conv.lo_harmonics,
+                    "points": [
+                        {
+                            "rf_hz": float(r),
+                            "lo_hz": float(lo),
+                            "if_hz": float(i),
+                            "image_hz": float(im),
+                            "sideband": sb.value,
+                        }
+                        for r, lo, i, im, sb in zip(
+                            fp.rf_hz, fp.lo_hz, fp.if_hz, fp.image_hz, fp.sideband, strict=True
+                        )
+                    ],
+                },
+            }
         )
 
     def _finish(self, writer, status: str):

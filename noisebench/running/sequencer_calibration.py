@@ -55,6 +55,15 @@ class CalibrationSteps(AveragingRounds):
         connection = Connection.TERMINATION if kind is CalibrationKind.FLOOR else Connection.THROUGH
         self.session.connect(connection)
         for group in needed:
+            settings = self._configure(group, group.policy.min_averages)
+            if (
+                group.lo_hz is not None
+                and self.calibrations.find(
+                    kind, settings, group.freqs_hz, max_age_s=self.plan.calibration.max_age_s
+                )
+                is not None
+            ):
+                continue  # a converter: another LO's group at the same IF was just calibrated
             try:
                 entry = self._with_context(group, lambda g=group: self._calibrate_group(g, kind))
             except MeasurementError as exc:
@@ -139,14 +148,27 @@ class CalibrationSteps(AveragingRounds):
     def _design_gain_db(self, freq_hz: float) -> float:
         corr = self.corrections
         if corr is not None and corr.gain is not None:
+            if self.plan.conversion is not None:
+                # one IF serves several RF points: design for the lowest conversion gain
+                return min(corr.gain(p.report_hz)[0] for p in self.plan.points())
             return corr.gain(freq_hz)[0]
         expect = self.plan.expect.dut_gain_db
         return expect if expect is not None else DEFAULT_DESIGN_GAIN_DB
 
+    def _design_input_loss_db(self, freq_hz: float) -> float:
+        """The input loss in front of the design DUT: at the point, or for a converter the
+        largest at any RF (the calibration at one IF serves them all)."""
+        corr = self.corrections
+        if self.plan.conversion is not None:
+            return max(corr.input_loss(p.report_hz) for p in self.plan.points())
+        return corr.input_loss(freq_hz)
+
     def _floor_design_u(self, freq_hz: float, floor: NoiseDensity) -> float:
         corr = self.corrections
         path_gain_db = (
-            self._design_gain_db(freq_hz) - corr.input_loss(freq_hz) - corr.output_loss(freq_hz)
+            self._design_gain_db(freq_hz)
+            - self._design_input_loss_db(freq_hz)
+            - corr.output_loss(freq_hz)
         )
         return floor_design_u_db(
             floor, path_gain_db, source_temperature_k=corr.source_temperature_k, t0_k=corr.t0_k

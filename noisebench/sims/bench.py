@@ -288,7 +288,7 @@ class SimulatedBench:
             noise_source=self.noise_source,
             generator=self.generator,
             ambient_k=self.ambient_k,
-            lo_generator=self.lo_generator,
+            lo_generator=self.lo_generator if self.converter_model is not None else None,
             extras={"supply": self.supply, "sim": self},
         )
 
