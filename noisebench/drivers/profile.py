@@ -41,6 +41,7 @@ from pydantic import (
 
 from noisebench.bench.acquisition import AveragingScale, Detector, SweepMode, TraceUnit
 from noisebench.errors import CommunicationError, InputError
+from noisebench.user_files import MAX_PROFILE_BYTES, read_user_text
 
 from .quantize import decade_sequence, parse_sequence, quantized, reply_unit_scale, unit_scale
 
@@ -1133,13 +1134,5 @@ def load_profile(profile: str | Path | InstrumentProfile = "generic") -> Instrum
                 fix=f"give a path to a .toml file or one of {available_profiles()}",
             )
         path = packaged
-    try:
-        text = path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(
-            "profile",
-            f"cannot read {path}: {exc}",
-            value=str(path),
-            fix="check the path and that the file is UTF-8 text",
-        ) from None
+    text = read_user_text(path, MAX_PROFILE_BYTES, field=f"profile {path}", what="profile")
     return parse_profile(text, source=str(path))

@@ -7,6 +7,7 @@ import contextlib
 import json
 import logging
 import os
+import re
 import tempfile
 from pathlib import Path
 from typing import Any
@@ -15,6 +16,7 @@ from pydantic import ValidationError
 
 from noisebench.errors import InputError
 from noisebench.results.records import _clean_point
+from noisebench.results.run_files import describe_damage
 from noisebench.science.point import PointResult
 
 logger = logging.getLogger(__name__)
@@ -55,6 +57,9 @@ def write_atomic(path: Path, data: str) -> None:
 # ----------------------------------------------------------------------------- journal
 
 
+_SURROGATE_ESCAPE = re.compile(rb"\\u[dD][89a-fA-F]")
+
+
 class _Journal:
     """What a journal holds, parsed tolerantly. ``valid_bytes`` ends after the last good line."""
 
@@ -69,7 +74,9 @@ class _Journal:
 
 
 def _parse_entry(line: bytes, where: str, journal: _Journal) -> None:
-    entry = json.loads(line)
+    entry = json.loads(line.decode("utf-8"))  # strict: no encoded surrogates
+    if _SURROGATE_ESCAPE.search(line):  # "\ud800" escapes give text that cannot be written
+        json.dumps(entry, ensure_ascii=False).encode("utf-8")  # UnicodeEncodeError: damaged
     kind = entry.get("kind") if isinstance(entry, dict) else None
     if kind == "point":
         point = _clean_point(PointResult.model_validate(entry["point"]))  # finite, as written
@@ -106,14 +113,17 @@ def _read_journal(path: Path) -> _Journal:
         where = f"{path.name} line {index + 1}"
         try:
             _parse_entry(piece, where, journal)
-        except (ValueError, KeyError, TypeError, ValidationError) as exc:
+        except (ValueError, KeyError, TypeError, ValidationError, RecursionError) as exc:
             if index == last:
                 text = (
                     f"{where}: incomplete last entry ({len(piece)} bytes) ignored; "
                     "the run was probably killed while writing it"
                 )
             else:
-                text = f"{where}: unreadable entry skipped ({type(exc).__name__}: {exc})"
+                text = (
+                    f"{where}: damaged entry skipped ({describe_damage(exc)}); the line is kept "
+                    "in the file as it is"
+                )
             logger.warning(text)
             journal.warnings.append(text)
             if index == last:

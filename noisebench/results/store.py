@@ -94,6 +94,7 @@ from noisebench.results.records import (
     _sorted_points,
     _utc_now,
 )
+from noisebench.results.run_files import RunFileError, read_model
 from noisebench.results.summary import format_summary, nf_extremes
 from noisebench.science.point import PointResult
 
@@ -429,34 +430,51 @@ def _read_info(folder: Path) -> RunInfo:
             f"{folder} holds no {RUN_INFO_FILE}",
             fix="pass a run folder written by noisebench",
         )
-    try:
-        return RunInfo.model_validate_json(path.read_text(encoding="utf-8"))
-    except ValidationError as exc:
-        raise InputError(
-            f"{RUN_INFO_FILE}",
-            f"is not a valid run description "
-            f"({exc.error_count()} problems, first: {exc.errors()[0]['msg']})",
-            fix="restore the file from a backup",
-        ) from None
+    return read_model(
+        path,
+        RunInfo,
+        fix=f"restore {RUN_INFO_FILE} from a backup; the journal {JOURNAL_FILE} was not touched",
+    )
 
 
 def load_run(folder: Path) -> RunRecord:
     """Load a run: from ``results.json`` when finished, else rebuilt from the journal.
 
     A run rebuilt from the journal reports status ``running`` if a live process still holds
-    the folder, otherwise ``interrupted``; ``record.warnings`` says so.
+    the folder, otherwise ``interrupted``; ``record.warnings`` says so. A damaged file is
+    worked around where an intact one holds the same data (``run.json`` by ``results.json``,
+    ``results.json`` by the journal), with a warning naming the file, line and damage; the
+    damaged file is left as it is.
     """
     folder = Path(folder)
-    info = _read_info(folder)
+    try:
+        info = _read_info(folder)
+    except RunFileError as damaged:
+        return _record_without_info(folder, damaged)
     results = folder / RESULTS_JSON_FILE
     if info.status != "running" and results.exists():
         try:
-            return RunRecord.model_validate_json(results.read_text(encoding="utf-8"))
-        except ValidationError as exc:
-            logger.warning(
-                "%s unreadable (%s); rebuilding from the journal", results, exc.errors()[0]["msg"]
-            )
+            return read_model(results, RunRecord, fix="rebuilt from the journal")
+        except RunFileError as exc:
+            warning = f"{exc}; the points were read from the journal {JOURNAL_FILE} instead"
+            logger.warning(warning)
+            record = _record_from_journal(folder, info)
+            return record.model_copy(update={"warnings": [warning, *record.warnings]})
     return _record_from_journal(folder, info)
+
+
+def _record_without_info(folder: Path, damaged: RunFileError) -> RunRecord:
+    """A run whose ``run.json`` is damaged: from ``results.json`` if that is intact."""
+    results = folder / RESULTS_JSON_FILE
+    if not results.exists():
+        raise damaged
+    try:
+        record = read_model(results, RunRecord, fix="restore it from a backup")
+    except RunFileError:
+        raise damaged from None
+    warning = f"{damaged}; the run description was taken from {RESULTS_JSON_FILE}"
+    logger.warning(warning)
+    return record.model_copy(update={"warnings": [warning, *record.warnings]})
 
 
 def _record_from_journal(folder: Path, info: RunInfo) -> RunRecord:
