@@ -48,7 +48,8 @@ def test_serve_defaults_to_loopback_and_prints_loopback_resources():
     code = serve.main(["--port", "0"], out=out, stop_event=stop)
     assert code == 0
     resources = [line.split()[-1] for line in out.getvalue().splitlines() if "::SOCKET" in line]
-    assert len(resources) == 3 and all("::127.0.0.1::" in r for r in resources)
+    # analyzer, generator, supply and the LO generator of a frequency-converting DUT
+    assert len(resources) == 4 and all("::127.0.0.1::" in r for r in resources)
 
 
 @pytest.mark.parametrize("host", ["0.0.0.0", "", "192.0.2.10", "example.org", "::"])

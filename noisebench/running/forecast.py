@@ -170,6 +170,12 @@ def _declared_priors(plan: Plan, freq_hz: float, source_k: float) -> Priors:
 
 
 def _simulated_priors(plan: Plan, sim: Any, freq_hz: float) -> Priors:
+    if plan.conversion is not None:
+        raise InputError(
+            "conversion",
+            "noisebench estimate does not forecast frequency-converting DUTs yet",
+            fix="run the plan on the simulated bench to see its averages and times",
+        )
     truth = sim.truth(freq_hz)
 
     def get(name: str) -> float:

@@ -54,6 +54,18 @@ def _check_conversion(plan: Plan, *, check_files: bool) -> list[str]:
             'bench.lo: the LO comes from a generator (conversion.lo.source = "generator"); '
             'name it: lo = { resource = "TCPIP0::...::SOCKET" } (or source = "external")'
         )
+    if plan.method is Method.GAIN and plan.gain is not None and plan.gain.source == "measure":
+        problems.append(
+            'gain.source: "measure" is not available for a frequency-converting DUT yet (the '
+            "generator at the RF and the analyzer at the IF); give the conversion gain over RF "
+            'with source = "file" or "constant"'
+        )
+    if plan.uncertainty is not None:
+        problems.append(
+            "uncertainty: full budgets are not available for a frequency-converting DUT yet; "
+            "delete the section (each point keeps its statistical u and the ENR and "
+            "image-rejection contributions in its notes)"
+        )
     lo_bench = plan.bench.lo
     level = section.lo.level_dbm
     if section.lo.source == "generator" and lo_bench is not None and level is not None:
