@@ -121,7 +121,8 @@ class DutSection(BaseModel):
 
 
 class AnalyzerSection(BaseModel):
-    """Spectrum analyzer: a resource string (VISA or ``sim://<scenario>?seed=N``)."""
+    """Spectrum analyzer: a resource string (VISA, ``sim://<scenario>?seed=N``, or a sampled
+    receiver: ``sigmf://<folder>``, ``samples://<name>``, ``sim://...&receiver=sampled``)."""
 
     model_config = _STRICT
     resource: str = Field(min_length=1)
@@ -800,10 +801,15 @@ def parse_plan(
         plan = Plan.model_validate(data)
     except ValidationError as exc:
         raise PlanError(format_validation_error(exc), source=source) from None
-    from noisebench.running.plan_checks import _resolve_profiles, cross_check
+    from noisebench.running.plan_checks import (
+        _resolve_profiles,
+        _resolve_sampled,
+        cross_check,
+    )
 
     plan.with_base_dir(base_dir or Path.cwd())
     _resolve_profiles(plan)
+    _resolve_sampled(plan)
     problems = cross_check(plan, check_files=check_files)
     if problems:
         raise PlanError(problems, source=source)

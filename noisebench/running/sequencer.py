@@ -222,6 +222,15 @@ class Sequencer(MeasurementSteps, GainStep, VerdictStep):
         return self._finish(writer, "complete")
 
     def _prepare(self, writer) -> None:
+        analyzer = self.session.bench.analyzer
+        if self.plan.method is Method.GAIN and not analyzer.absolute_level:
+            raise InputError(
+                "bench.analyzer",
+                "the gain method reads absolute noise densities, but this receiver's scale is "
+                "not calibrated (the Y-factor method needs only ratios)",
+                fix="calibrate the receiver scale with a known tone or two known noise levels "
+                "and name it with ?scale=<file> on the resource, or use the Y-factor method",
+            )
         self.corrections = resolve_corrections(self.plan, self.session)
         self.guard = power_guard_for(self.plan, self.session, self.corrections)
         if self.plan.conversion is not None:
@@ -274,6 +283,9 @@ class Sequencer(MeasurementSteps, GainStep, VerdictStep):
     def _finish(self, writer, status: str):
         if self._applied:  # the frequencies each set of settings served, complete
             writer.update_info(applied_settings=self._applied)
+        instrument_notes = self.session.bench.analyzer.run_notes()
+        if instrument_notes:
+            writer.update_info(notes={**writer.info.notes, **instrument_notes})
         try:
             verdict = self._verdict(writer)
         except NoisebenchError as exc:  # a verdict problem must not lose the run
