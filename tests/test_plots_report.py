@@ -18,6 +18,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import scipy.constants
+from markupsafe import escape
 
 from noisebench.errors import InputError
 from noisebench.results.plots import (
@@ -812,7 +813,7 @@ def test_flags_are_explained_in_words_before_the_table(record):
         "1",
         FLAG_DESCRIPTIONS[PointFlag.EXCESS_SCATTER],
     ]
-    assert 'title="' + html.escape(FLAG_DESCRIPTIONS[PointFlag.EXCESS_SCATTER]) in text
+    assert 'title="' + str(escape(FLAG_DESCRIPTIONS[PointFlag.EXCESS_SCATTER])) in text
 
 
 def test_report_escapes_every_string(tmp_path):
@@ -820,7 +821,7 @@ def test_report_escapes_every_string(tmp_path):
     nasty.warnings.append("line 3: <incomplete>")
     text = render_report(nasty, {})
     assert "<script>" not in text and "<b>bold</b>" not in text and "<incomplete>" not in text
-    assert html.escape(NASTY) in text
+    assert str(escape(NASTY)) in text  # the template engine's own escaping
     assert "kim &amp; lee" in text and "Example,SA&lt;1&gt;,0001,1.0" in text
     assert "jitter &lt;hot&gt;" in text and "&lt;b&gt;bold&lt;/b&gt;" in text
     assert {tag for tag, _ in parse(text).tags} <= SAFE_TAGS
@@ -834,7 +835,7 @@ def test_report_summary_verdict_flags_budget_calibration_and_safety(record):
     lowest, highest = record.points[0], record.points[-1]
     assert f"min {lowest.nf_db:.3f} dB" in body and f"max {highest.nf_db:.3f} dB" in body
     margins = [1.6 - p.nf_db for p in record.points]
-    assert f"{min(margins):+.3f} dB at 6&nbsp;GHz" in text  # smallest NF margin, signed
+    assert f"{min(margins):+.3f} dB at 6\u00a0GHz" in text  # smallest NF margin, signed
     assert "Flagged points" in body and "1 of 12" in body
     U = [b["U_expanded_db"] for b in record.budgets]
     assert f"{min(U):.3f} to {max(U):.3f} dB" in body
@@ -842,7 +843,7 @@ def test_report_summary_verdict_flags_budget_calibration_and_safety(record):
     assert "Calibration" in body and "4306.19" in body
     assert "numpy" in body and np.__version__ in body
     for line in SAFETY_NOTE:
-        assert html.escape(line) in text
+        assert str(escape(line)) in text
 
 
 def test_budget_section_summarises_the_sweep_and_details_the_worst_point(record):
@@ -854,7 +855,7 @@ def test_budget_section_summarises_the_sweep_and_details_the_worst_point(record)
     shares = [100 * 0.099**2 / (b["u_combined_db"]) ** 2 for b in record.budgets]
     assert sweep[1][-1] == f"{min(shares):.1f} to {max(shares):.1f}"
     worst = max(record.budgets, key=lambda b: b["U_expanded_db"])
-    assert "At 6&nbsp;GHz, the point with the largest U" in section
+    assert "At 6\u00a0GHz, the point with the largest U" in section
     at = table_after(section, "the point with the largest U")
     assert at[1][:3] == ["ENR", "normal", "0.1"] and at[1][-2] == "+0.0990"
     assert at[-2][0] == "combined standard uncertainty u_c"
@@ -1120,9 +1121,9 @@ def test_calibration_store_entries_are_summarised(record):
     text = render_report(record.model_copy(update={"info": info}), {})
     section = text.split('<h2 id="calibration">Calibration</h2>')[1].split("<h2")[0]
     assert "<td>system</td>" in section and "<td>gaussian</td>" in section
-    assert "3: 1&nbsp;GHz to 3&nbsp;GHz" in section
+    assert "3: 1\u00a0GHz to 3\u00a0GHz" in section
     assert "296.50" in section and "1.250" in section
-    assert '<td class="num">1&nbsp;MHz</td>' in section  # rbw_hz shown as a frequency
+    assert '<td class="num">1\u00a0MHz</td>' in section  # rbw_hz shown as a frequency
     assert ["System Te (K)", f"{te2_k:.1f}"] in table_after(section, "over the sweep")
     assert f"<td>{te2_k:.1f}</td>" in section and "Per-frequency calibration results (3" in section
     assert "u_density_w_per_hz" not in section  # raw densities stay in results.json
@@ -1153,3 +1154,20 @@ def test_importing_the_store_plots_and_report_does_not_load_matplotlib():
         [sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=60
     )
     assert out.stdout.strip() == "False"
+
+
+def test_report_html_comes_from_autoescaped_templates_only():
+    """The markup lives in the packaged templates; the module only gathers facts."""
+    import inspect
+
+    from noisebench.results import report
+
+    env = report.environment()
+    for name in ("report.html", "macros.html", "report.css"):
+        assert env.is_async is False and env.get_template(name)  # packaged and found
+        assert env.autoescape is True or env.autoescape(name)  # escaping on for every file
+    source = inspect.getsource(report)
+    assert not re.search(r"<(table|tr|td|th|span|p|div|h[1-6]|strong|img)\b", source)
+    cell = report.render_value({"name": "<b>x</b>", "freqs_hz": [1e9, 2.5e9]})
+    assert "&lt;b&gt;x&lt;/b&gt;" in cell and "<b>" not in cell
+    assert "2.5\u00a0GHz" in cell  # a frequency under a *_hz key keeps its unit
