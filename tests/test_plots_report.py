@@ -31,6 +31,7 @@ from noisebench.results.plots import (
     VERDICT_SYMBOL,
     budget_figure,
     budget_series,
+    coincident_with,
     densities_figure,
     density_series,
     frequency_scale,
@@ -1171,3 +1172,54 @@ def test_report_html_comes_from_autoescaped_templates_only():
     cell = report.render_value({"name": "<b>x</b>", "freqs_hz": [1e9, 2.5e9]})
     assert "&lt;b&gt;x&lt;/b&gt;" in cell and "<b>" not in cell
     assert "2.5\u00a0GHz" in cell  # a frequency under a *_hz key keeps its unit
+
+
+def test_flagged_points_are_marked_on_the_nf_figure_and_explained(record):
+    flagged = [p for p in record.points if p.flags]
+    assert flagged  # the shared record has one EXCESS_SCATTER point
+    axes = nf_figure(record).axes[0]
+    handles, labels = axes.get_legend_handles_labels()
+    (mark,) = [h for h, t in zip(handles, labels, strict=True) if t.startswith("flagged")]
+    assert labels[handles.index(mark)].endswith(f": {len(flagged)} point")
+    scale, _ = frequency_scale([p.freq_hz for p in record.points])
+    offsets = mark.get_offsets()
+    assert np.allclose(offsets[:, 0], [p.freq_hz / scale for p in flagged])
+    assert np.all(offsets[:, 1] > [p.nf_db for p in flagged])  # above the point, not on it
+    words = html.unescape(render_report(record, {}))
+    assert "open triangle (\u25bd) above the point marks a flagged point" in words
+    clean = record.model_copy(
+        update={"points": [p.model_copy(update={"flags": []}) for p in record.points]}
+    )
+    labels = nf_figure(clean).axes[0].get_legend_handles_labels()[1]
+    assert not [t for t in labels if t.startswith("flagged")]
+
+
+def test_equal_budget_contributions_both_stay_visible():
+    twins = make_record(contributions=2)
+    budgets = [
+        {**b, "contributions": [*b["contributions"], {**b["contributions"][0], "name": "twin"}]}
+        for b in twins.budgets
+    ]
+    twins = twins.model_copy(update={"budgets": budgets})
+    series = budget_series(twins)
+    assert coincident_with(series, ["ENR"], "twin") == "ENR"
+    assert coincident_with(series, ["jitter <hot>"], "twin") is None
+    lines = {line.get_label(): line for line in budget_figure(twins).axes[0].get_lines()}
+    twin = lines["twin (equal to ENR)"]
+    assert twin.get_linestyle() == "--" and twin.get_markerfacecolor() == "none"
+    assert lines["ENR"].get_linestyle() == "-"
+
+
+def test_series_colours_are_the_cited_okabe_ito_palette():
+    """The source named beside SERIES: Okabe & Ito (2008), as matplotlib ships it."""
+    import matplotlib
+    from matplotlib.colors import to_hex
+
+    from noisebench.results.plots import SERIES
+
+    sequences = matplotlib.color_sequences
+    if "okabe_ito" not in sequences:  # matplotlib < 3.10: the palette's published values
+        published = {"#e69f00", "#56b4e9", "#009e73", "#f0e442", "#0072b2", "#d55e00", "#cc79a7"}
+    else:
+        published = {to_hex(c) for c in sequences["okabe_ito"]}
+    assert set(SERIES) <= published

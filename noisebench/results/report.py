@@ -39,6 +39,7 @@ import jinja2
 
 from noisebench.errors import InputError
 from noisebench.results.plots import (
+    FLAG_MARK_WORDS,
     VERDICT_STYLE,
     VERDICT_SYMBOL,
     coverage_text,
@@ -65,7 +66,8 @@ DEFAULT_T0_K = 290.0
 
 FIGURE_CAPTIONS = {
     "noise_figure.png": "Noise figure of the DUT versus frequency, with its uncertainty, the "
-    "NF limit and each point's verdict (marker shape and colour).",
+    "NF limit, each point's verdict (marker shape and colour) and the flagged points (open "
+    "triangle above the point).",
     "gain.png": "Available gain of the DUT versus frequency, with its uncertainty and the gain "
     "limits.",
     "densities.png": "The raw noise densities behind each point, as measured at the analyzer "
@@ -557,6 +559,8 @@ def _how_to_read(record: RunRecord) -> list[str]:
                 else "no full budget was computed for this run."
             )
         )
+    if any(p.flags for p in record.points):
+        parts.append(f"In the NF figure, {FLAG_MARK_WORDS} marks a flagged point.")
     if record.verdict:
         rule = str(record.verdict.get("rule") or "")
         symbols = ", ".join(f"{VERDICT_SYMBOL[w]} {w}" for w in ("pass", "fail", "indeterminate"))
