@@ -37,8 +37,9 @@ from noisebench.running.forecast import (
     band_relative_variance,
     point_uncertainty_db,
 )
+from noisebench.running.groups import plan_groups
 from noisebench.running.plan import parse_plan
-from noisebench.running.sequencer import Sequencer, plan_groups
+from noisebench.running.sequencer import Sequencer
 from noisebench.sims.bench import SimulatedBench
 
 T0 = 290.0

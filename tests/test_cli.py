@@ -163,7 +163,8 @@ def test_validate_plan_and_enr_table(tmp_path, capsys):
 def test_estimate_without_instruments(tmp_path, capsys):
     plan = _write(
         tmp_path / "p.toml",
-        SIM_PLAN.format(method="gain") + '[gain]\nsource = "constant"\nvalue_db = 25.0\n',
+        SIM_PLAN.format(method="gain")
+        + '[gain]\nsource = "constant"\nvalue_db = 23.0\n',  # below the path gain
     )
     code, out, _ = _run(["estimate", plan], capsys)
     assert code == 0
@@ -229,7 +230,8 @@ def test_run_writes_results_and_resume_continues(tmp_path, capsys, monkeypatch):
 def test_render_rewrites_report(tmp_path, capsys):
     plan = _write(
         tmp_path / "p.toml",
-        SIM_PLAN.format(method="gain") + '[gain]\nsource = "constant"\nvalue_db = 25.0\n',
+        SIM_PLAN.format(method="gain")
+        + '[gain]\nsource = "constant"\nvalue_db = 23.0\n',  # below the path gain
     )
     folder = tmp_path / "run"
     assert _run(["-q", "run", plan, "--out", folder], capsys)[0] == 0

@@ -316,7 +316,7 @@ def test_a_journal_point_edited_to_nan_is_skipped_with_a_warning_not_shown(tmp_p
     assert code == cli.EXIT_OK
     (nf_line,) = [line for line in out.splitlines() if line.strip().startswith("NF ")]
     assert "nan" not in nf_line  # before: "NF min nan dB at 1 GHz, max nan dB at 1 GHz"
-    assert f"points.jsonl line {index + 1}: unreadable entry skipped" in err
+    assert f"points.jsonl line {index + 1}: damaged entry skipped" in err
     assert len(load_run(folder).points) == 1
 
 

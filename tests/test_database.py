@@ -226,3 +226,28 @@ def test_postgresql_store_and_queries(pg_url):
 
 def test_postgresql_concurrent_writers_lose_nothing(pg_url):
     _concurrent(_fresh_pg(pg_url, "nb_concurrent"))
+
+
+# -- several processes opening one FRESH database at the same moment (a line switched on together)
+OPEN_WORKERS = 6
+OPEN_ROUNDS = 2
+
+
+def _opens_together(url_for_round) -> None:
+    from _concurrent_open import open_together
+
+    for round_no in range(OPEN_ROUNDS):
+        url = url_for_round(round_no)
+        failures = open_together(url, OPEN_WORKERS)
+        assert failures == [], f"round {round_no}: {len(failures)} failed opens:\n{failures[0]}"
+        with ResultsDatabase(url) as db:
+            assert db.schema_version == SCHEMA_VERSION
+            assert db.count("runs") == OPEN_WORKERS  # every worker stored its run
+
+
+def test_sqlite_fresh_database_opened_by_several_processes_at_once(tmp_path):
+    _opens_together(lambda n: f"sqlite:///{tmp_path / f'fresh-{n}.sqlite'}")
+
+
+def test_postgresql_fresh_database_opened_by_several_processes_at_once(pg_url):
+    _opens_together(lambda n: _fresh_pg(pg_url, f"nb_fresh_{n}"))

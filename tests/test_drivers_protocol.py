@@ -693,11 +693,14 @@ class _StubAnalyzer:
         self.source_ref, self.hot_dbm, self.cold_dbm = source_ref, hot_dbm, cold_dbm
 
     def acquire_trace(self):
+        """Noise with the scatter of 100 averages (points 5 RBW apart, so independent); the
+        same draw for hot and cold, so Y is exactly the level difference."""
         level = self.hot_dbm if self.source_ref[0].is_hot else self.cold_dbm
+        scatter_db = 10 * np.log10(np.random.default_rng(5).gamma(100.0, 1 / 100.0, 201))
         settings = AcquisitionSettings(
             center_hz=1e9,
             span_hz=1e6,
-            rbw_hz=1e4,
+            rbw_hz=1e3,
             detector=Detector.RMS,
             detector_samples=1.0,
             averaging_scale=AveragingScale.POWER,
@@ -705,7 +708,7 @@ class _StubAnalyzer:
             points=201,
         )
         return Trace(
-            freq_hz=settings.frequencies_hz(), values=np.full(201, level), settings=settings
+            freq_hz=settings.frequencies_hz(), values=level + scatter_db, settings=settings
         )
 
 

@@ -14,10 +14,10 @@ from noisebench.running.plan import (
     PlanError,
     load_plan,
     parse_plan,
-    parse_sim_address,
     validate_plan_file,
 )
 from noisebench.science.point import Method
+from noisebench.sims.address import parse_sim_address
 
 
 def _base(**sections) -> dict:

@@ -400,7 +400,7 @@ def test_an_unreadable_middle_line_is_skipped_not_fatal(tmp_path):
     writer.close()
     record = load_run(folder)
     assert [p.freq_hz for p in record.points] == FREQS_HZ[:2]
-    assert any("line 2" in w and "unreadable" in w for w in record.warnings)
+    assert any("line 2: damaged entry skipped (not valid JSON" in w for w in record.warnings)
 
 
 # ----------------------------------------------------------------------------- refusals

@@ -19,6 +19,7 @@ from noisebench.bench.registry import Connection, simulated_session
 from noisebench.errors import CommunicationError, SafetyError
 from noisebench.results.store import load_run
 from noisebench.running.calibration import CalibrationStore
+from noisebench.running.groups import plan_groups
 from noisebench.running.plan import parse_plan
 from noisebench.running.safety import (
     InputLimits,
@@ -26,7 +27,7 @@ from noisebench.running.safety import (
     hot_source_temperature_k,
     total_noise_power_dbm,
 )
-from noisebench.running.sequencer import Sequencer, plan_groups
+from noisebench.running.sequencer import Sequencer
 from noisebench.science.averaging import averages_for_target, combine_densities
 from noisebench.science.density import NoiseDensity
 from noisebench.science.point import PointFlag

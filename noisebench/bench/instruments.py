@@ -72,6 +72,18 @@ class Analyzer(Instrument):
         """Rated maximum total RF input power, dBm, when known (None: unknown)."""
         return None
 
+    @property
+    def max_averages_per_trace(self) -> int | None:
+        """Most trace averages one acquisition can do (None: no known limit). Above it the
+        sequencer takes several traces and combines them
+        (:func:`noisebench.science.trace_combine.combine_traces`)."""
+        return None
+
+    def predict(self, request: AcquisitionRequest) -> AcquisitionRequest:
+        """``request`` as the instrument will apply it (RBW rounded, points clamped, ...), without
+        touching the instrument. The default assumes it applies what it is asked."""
+        return request
+
 
 class NoiseSource(Instrument):
     """A switchable noise source (hot = drive on, cold = drive off)."""

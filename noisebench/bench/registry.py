@@ -22,7 +22,8 @@ from typing import Any
 
 from noisebench.bench.instruments import Bench
 from noisebench.errors import InputError, NoisebenchError
-from noisebench.running.plan import BenchSection, parse_sim_address
+from noisebench.running.plan import BenchSection
+from noisebench.sims.address import parse_sim_address
 
 logger = logging.getLogger(__name__)
 

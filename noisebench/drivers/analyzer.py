@@ -116,6 +116,7 @@ class ScpiAnalyzer(Analyzer):
             lock=self.lock,
             retries=retries,
             restore=self._restore,
+            init=self.spec.init,
         )
         self._channel.connect()
 
@@ -137,6 +138,16 @@ class ScpiAnalyzer(Analyzer):
     def recovery_log(self) -> list[str]:
         """One line per recovery from a communication fault."""
         return self._channel.recovery_log
+
+    @property
+    def max_averages_per_trace(self) -> int | None:
+        """The profile's ``averages.max`` (None when it declares none)."""
+        return self.spec.settings.averages.max
+
+    def predict(self, request: AcquisitionRequest) -> AcquisitionRequest:
+        """``request`` with RBW, VBW, points, averages, attenuation, reference level and sweep
+        time as the profile's quantisation rules say the instrument applies them."""
+        return predict_request(self.spec, request)
 
     def __repr__(self) -> str:
         return (
@@ -163,6 +174,7 @@ class ScpiAnalyzer(Analyzer):
         s = self.spec.settings
         values: dict[str, Any] = {
             "continuous": False,
+            "averaging_on": True,  # an analyzer left with averaging off must not stay so
             "mode": request.mode,
             "rbw_hz": request.rbw_hz,
             "points": request.points,
@@ -227,7 +239,7 @@ class ScpiAnalyzer(Analyzer):
 
     def _can_skip(self, name: str, value: Any, setting: Any) -> bool:
         """Requests the profile may ignore: those that ask for what it has anyway."""
-        if name == "continuous":
+        if name in ("continuous", "averaging_on"):
             return True
         if name == "mode":
             return value is SweepMode.SWEPT
@@ -269,7 +281,7 @@ class ScpiAnalyzer(Analyzer):
                 start, stop = get(s.start_hz), get(s.stop_hz)
                 center, span = (start + stop) / 2.0, stop - start
             mode = SweepMode(get(s.mode)) if _readable(s.mode) else SweepMode.SWEPT
-            values = dict(
+            values: dict[str, Any] = dict(
                 center_hz=center,
                 span_hz=span,
                 rbw_hz=get(s.rbw_hz),
@@ -284,8 +296,13 @@ class ScpiAnalyzer(Analyzer):
                 attenuation_db=get(s.attenuation_db) if _readable(s.attenuation_db) else None,
                 preamp=get(s.preamp) if _readable(s.preamp) else None,
                 sweep_time_s=get(s.sweep_time_s) if _readable(s.sweep_time_s) else None,
-                detector_samples=get(s.detector_samples) if _readable(s.detector_samples) else None,
             )
+            context = {"detector": values["detector"].value, "mode": mode.value}
+            values["detector_samples"] = (
+                get(s.detector_samples, context) if _readable(s.detector_samples) else None
+            )
+            if _readable(s.averaging_on) and not get(s.averaging_on):
+                values["averages"] = 1  # the count is kept, but the instrument does not average
             try:
                 return AcquisitionSettings(**values)
             except (ValidationError, InputError) as exc:
@@ -509,9 +526,20 @@ class ScpiAnalyzer(Analyzer):
             )
         kind = MarkerKind(kind)
         _check_marker_frequency(freq_hz, settings)
+        if kind.value not in marker.kinds:
+            raise InputError(
+                "marker.kind",
+                f"profile {self.profile.name} has no {kind.value} marker (it offers "
+                f"{', '.join(marker.kinds)})",
+                fix="use the trace method (no marker) or another marker kind",
+            )
         if kind is MarkerKind.BAND_POWER and band_hz is None:
             band_hz = 5.0 * settings.rbw_hz
-        commands = [marker.function.command(kind.value), marker.frequency.command(freq_hz)]
+        if marker.function is not None:
+            commands = [marker.function.command(kind.value)]
+        else:
+            commands = [marker.noise.command(True)]
+        commands.append(marker.frequency.command(freq_hz))
         if band_hz is not None:
             if marker.band is None:
                 raise InputError(
@@ -535,7 +563,7 @@ class ScpiAnalyzer(Analyzer):
         reply = self._channel.query(marker.value)
         value = _parse_finite(reply, marker.value)
         freq = self._channel.get(marker.frequency) if marker.frequency.readable else freq_hz
-        corrected = bool(self._channel.get(marker.corrected))
+        corrected = bool(self._channel.get(marker.corrected, {"function": kind.value}))
         self._channel.check_errors(marker.value)
         return MarkerReading(
             freq_hz=freq,
@@ -623,6 +651,31 @@ class ScpiAnalyzer(Analyzer):
 
 
 # ----------------------------------------------------------------------------- helpers
+
+
+_PREDICTED = (
+    "rbw_hz",
+    "vbw_hz",
+    "points",
+    "averages",
+    "attenuation_db",
+    "ref_level_dbm",
+    "sweep_time_s",
+)
+
+
+def predict_request(spec: AnalyzerProfile, request: AcquisitionRequest) -> AcquisitionRequest:
+    """``request`` as an analyzer with profile section ``spec`` applies it (no I/O)."""
+    changes: dict[str, Any] = {}
+    for name in _PREDICTED:
+        value = getattr(request, name)
+        setting = getattr(spec.settings, name)
+        if value is None or setting is None or not setting.writable:
+            continue
+        applied = setting.applied(value)
+        if applied != value:
+            changes[name] = applied
+    return request.model_copy(update=changes) if changes else request
 
 
 def _readable(setting: Any) -> bool:

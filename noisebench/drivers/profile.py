@@ -23,15 +23,27 @@ import math
 import re
 import string
 import sys
+from collections.abc import Mapping
 from enum import Enum
 from importlib import resources
 from pathlib import Path
-from typing import Any, ClassVar
+from typing import Any, ClassVar, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    PrivateAttr,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
 
 from noisebench.bench.acquisition import AveragingScale, Detector, SweepMode, TraceUnit
 from noisebench.errors import CommunicationError, InputError
+from noisebench.user_files import MAX_PROFILE_BYTES, read_user_text
+
+from .quantize import decade_sequence, parse_sequence, quantized, reply_unit_scale, unit_scale
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -42,6 +54,7 @@ __all__ = [
     "AnalyzerProfile",
     "BoolSetting",
     "EnumSetting",
+    "FixedBy",
     "FloatSetting",
     "GeneratorProfile",
     "InstrumentProfile",
@@ -175,6 +188,33 @@ def _short_form(token: str) -> str:
 # ----------------------------------------------------------------------------- settings
 
 
+class FixedBy(BaseModel):
+    """A value the instrument cannot report that depends on another setting's choice:
+    ``fixed = { by = "detector", values = { sample = 1, rms = 32 } }`` (``"*"``: any other)."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    by: str = Field(pattern=r"^[a-z_]+$")
+    values: dict[str, Any]
+
+    @model_validator(mode="after")
+    def _check(self) -> FixedBy:
+        if not self.values:
+            raise ValueError("fixed.values needs at least one entry")
+        return self
+
+    def pick(self, choice: str, name: str, profile: str) -> Any:
+        if choice in self.values:
+            return self.values[choice]
+        if "*" in self.values:
+            return self.values["*"]
+        raise InputError(
+            name,
+            f"profile {profile} gives no fixed value for {self.by} = {choice!r}",
+            fix=f"add {choice} = ... (or '*' = ...) to fixed.values of {name}",
+        )
+
+
 class _Setting(BaseModel):
     """One instrument setting: how to set it, read it back, and which values are valid."""
 
@@ -186,6 +226,12 @@ class _Setting(BaseModel):
     _name: str = PrivateAttr(default="setting")
     _profile: str = PrivateAttr(default="profile")
     _SAMPLE: ClassVar[Any] = "X"  # value used to try the set template when loading
+
+    @field_validator("unit")
+    @classmethod
+    def _known_unit(cls, value: str | None) -> str | None:
+        unit_scale(value)  # ValueError names the known units
+        return value
 
     @model_validator(mode="after")
     def _check_commands(self) -> _Setting:
@@ -218,6 +264,33 @@ class _Setting(BaseModel):
     def readable(self) -> bool:
         return self.get_cmd is not None or getattr(self, "fixed", None) is not None
 
+    @property
+    def depends_on(self) -> str | None:
+        """The setting a ``fixed = { by = ... }`` value depends on, else None."""
+        fixed = getattr(self, "fixed", None)
+        return fixed.by if isinstance(fixed, FixedBy) else None
+
+    def fixed_value(self, context: Mapping[str, Any] | None = None) -> Any:
+        """The profile's ``fixed`` value; for ``fixed = { by = ... }`` the entry for the other
+        setting's current choice in ``context`` (``{name: our value}``)."""
+        fixed = getattr(self, "fixed", None)
+        if isinstance(fixed, FixedBy):
+            if context is None or fixed.by not in context:
+                raise InputError(
+                    self._name,
+                    f"depends on {fixed.by}, whose value is not known here",
+                    fix=f"read {fixed.by} before {self._name}",
+                )
+            choice = context[fixed.by]
+            choice = choice.value if isinstance(choice, Enum) else choice
+            if isinstance(choice, bool):
+                choice = "on" if choice else "off"
+            return self._coerce_fixed(fixed.pick(str(choice), self._name, self._profile))
+        return fixed
+
+    def _coerce_fixed(self, value: Any) -> Any:
+        return value
+
     def command(self, value: Any) -> str:
         """The set command for ``value`` (validated and formatted); InputError if invalid."""
         if self.set_cmd is None:
@@ -239,8 +312,9 @@ class _Setting(BaseModel):
             )
         return self.get_cmd
 
-    def parse(self, reply: str) -> Any:
-        """Convert an instrument reply to our value; ReplyError if it does not parse."""
+    def parse(self, reply: str, context: Mapping[str, Any] | None = None) -> Any:
+        """Convert an instrument reply to our value; ReplyError if it does not parse.
+        ``context`` holds the values of other settings a ``fixed = { by = ... }`` needs."""
         raise NotImplementedError
 
     def _render(self, value: Any) -> Any:
@@ -254,22 +328,122 @@ class _Setting(BaseModel):
         )
 
 
-class FloatSetting(_Setting):
-    """A real-valued setting in SI units (Hz, s, dB, dBm, V, A)."""
+class _Numeric(_Setting):
+    """Range, quantisation and unit shared by real and integer settings (see
+    :mod:`noisebench.drivers.quantize`)."""
+
+    allowed: list[float] | None = None
+    sequence: str | None = None
+    step: float | None = Field(default=None, gt=0)
+    rounding: Literal["nearest", "up", "down"] = "nearest"
+    out_of_range: Literal["refuse", "clamp"] = "refuse"
+
+    @model_validator(mode="after")
+    def _check_range(self) -> _Numeric:
+        lo, hi = self.min, self.max
+        for bound in (lo, hi):
+            if bound is not None and not math.isfinite(bound):
+                raise ValueError("min and max must be finite")
+        if lo is not None and hi is not None and lo > hi:
+            raise ValueError(f"min {lo} is above max {hi}")
+        rules = [n for n in ("allowed", "sequence", "step") if getattr(self, n) is not None]
+        if len(rules) > 1:
+            raise ValueError(f"declare one quantisation rule, not {rules}")
+        if self.allowed is not None:
+            if not self.allowed or not all(math.isfinite(v) for v in self.allowed):
+                raise ValueError("allowed must list finite values")
+        if self.sequence is not None:
+            parse_sequence(self.sequence)
+            if lo is None or hi is None or lo <= 0:
+                raise ValueError(f"sequence {self.sequence!r} needs min > 0 and max")
+        if self.out_of_range == "clamp" and (lo is None or hi is None):
+            raise ValueError("out_of_range = 'clamp' needs min and max")
+        return self
+
+    @property
+    def scale(self) -> float:
+        """Our SI value = instrument value x scale (``unit = "MHz"``: 1e6)."""
+        return unit_scale(self.unit)
+
+    @property
+    def quantised(self) -> bool:
+        """True when the profile declares how the instrument rounds this setting."""
+        return any(getattr(self, n) is not None for n in ("allowed", "sequence", "step")) or (
+            self.out_of_range == "clamp"
+        )
+
+    def allowed_values(self) -> list[float] | None:
+        """The values the instrument accepts (list or sequence), else None."""
+        if self.allowed is not None:
+            return sorted(float(v) for v in self.allowed)
+        if self.sequence is not None:
+            return decade_sequence(parse_sequence(self.sequence), self.min, self.max)
+        return None
+
+    def applied(self, value: Any) -> Any:
+        """The value the instrument will apply for ``value`` (clamped/rounded by the profile's
+        rules); InputError when the profile refuses it."""
+        number = self.validate_value(value)
+        result = quantized(
+            number,
+            allowed=self.allowed_values(),
+            step=self.step,
+            rounding=self.rounding,
+            low=self.min,
+            high=self.max,
+            clamp=self.out_of_range == "clamp",
+        )
+        return self._number_type(result)
+
+    def describe_rule(self) -> str:
+        """The profile's quantisation rule in words (for messages)."""
+        if self.sequence is not None:
+            return f"sequence {self.sequence}"
+        if self.allowed is not None:
+            return f"allowed values {self.allowed}"
+        if self.step is not None:
+            return f"steps of {self.step:g}"
+        return "clamped to its range" if self.out_of_range == "clamp" else "as sent"
+
+    def _number_type(self, value: float) -> Any:
+        return value
+
+    def _out_of_range(self, number: float, value: Any) -> bool:
+        lo, hi = self.min, self.max
+        if self.out_of_range == "clamp":
+            return False
+        return (lo is not None and number < lo) or (hi is not None and number > hi)
+
+    def _parse_number(self, reply: str, expected: str) -> float:
+        text = _unquote(reply)
+        match = _NUMBER_WITH_UNIT.fullmatch(text)
+        if not match:
+            raise self._reply_error(reply, expected)
+        number = float(match.group(1))
+        if not math.isfinite(number) or abs(number) >= 9.9e37:
+            raise self._reply_error(reply, "a finite number (SCPI NaN/infinity)")
+        if match.group(2):
+            try:
+                return number * reply_unit_scale(match.group(2), self.unit)
+            except ValueError as exc:
+                expected = f"a number in {self.unit or 'its unit'} ({exc})"
+                raise self._reply_error(reply, expected) from None
+        return number * self.scale
+
+
+_NUMBER_WITH_UNIT = re.compile(r"^([+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)\s*([A-Za-z]+)?$")
+
+
+class FloatSetting(_Numeric):
+    """A real-valued setting in SI units (Hz, s, dB, dBm, V, A); ``unit`` is the instrument's."""
 
     min: float | None = None
     max: float | None = None
-    fixed: float | None = None
+    fixed: float | FixedBy | None = None
     _SAMPLE: ClassVar[Any] = 1.5
 
-    @model_validator(mode="after")
-    def _check_range(self) -> FloatSetting:
-        for bound in (self.min, self.max):
-            if bound is not None and not math.isfinite(bound):
-                raise ValueError("min and max must be finite")
-        if self.min is not None and self.max is not None and self.min > self.max:
-            raise ValueError(f"min {self.min} is above max {self.max}")
-        return self
+    def _coerce_fixed(self, value: Any) -> float:
+        return float(value)
 
     def validate_value(self, value: Any) -> float:
         try:
@@ -278,9 +452,7 @@ class FloatSetting(_Setting):
             raise InputError(self._name, f"must be a number (got {value!r})", value=value) from None
         if not math.isfinite(number):
             raise InputError(self._name, f"must be finite (got {value!r})", value=value)
-        if (self.min is not None and number < self.min) or (
-            self.max is not None and number > self.max
-        ):
+        if self._out_of_range(number, value):
             low = "-inf" if self.min is None else f"{self.min:g}"
             high = "inf" if self.max is None else f"{self.max:g}"
             unit = f" {self.unit}" if self.unit else ""
@@ -294,28 +466,27 @@ class FloatSetting(_Setting):
         return number
 
     def _render(self, value: Any) -> float:
-        return self.validate_value(value)
+        return self.applied(value) / self.scale
 
-    def parse(self, reply: str) -> float:
+    def parse(self, reply: str, context: Mapping[str, Any] | None = None) -> float:
         if self.fixed is not None and self.get_cmd is None:
-            return float(self.fixed)
-        text = _unquote(reply)
-        try:
-            number = float(text)
-        except ValueError:
-            raise self._reply_error(reply, "a number") from None
-        if not math.isfinite(number) or abs(number) >= 9.9e37:
-            raise self._reply_error(reply, "a finite number (SCPI NaN/infinity)")
-        return number
+            return float(self.fixed_value(context))
+        return self._parse_number(reply, "a number")
 
 
-class IntSetting(_Setting):
+class IntSetting(_Numeric):
     """An integer setting (points, averages, poles)."""
 
     min: int | None = None
     max: int | None = None
-    fixed: int | None = None
+    fixed: int | FixedBy | None = None
     _SAMPLE: ClassVar[Any] = 7
+
+    def _coerce_fixed(self, value: Any) -> int:
+        return int(value)
+
+    def _number_type(self, value: float) -> int:
+        return int(round(value))
 
     def validate_value(self, value: Any) -> int:
         if (
@@ -325,9 +496,7 @@ class IntSetting(_Setting):
         ):
             raise InputError(self._name, f"must be an integer (got {value!r})", value=value)
         number = int(value)
-        if (self.min is not None and number < self.min) or (
-            self.max is not None and number > self.max
-        ):
+        if self._out_of_range(number, value):
             raise InputError(
                 self._name,
                 f"{number} is outside the range [{self.min}, "
@@ -338,17 +507,13 @@ class IntSetting(_Setting):
         return number
 
     def _render(self, value: Any) -> int:
-        return self.validate_value(value)
+        return self.applied(value)
 
-    def parse(self, reply: str) -> int:
+    def parse(self, reply: str, context: Mapping[str, Any] | None = None) -> int:
         if self.fixed is not None and self.get_cmd is None:
-            return int(self.fixed)
-        text = _unquote(reply)
-        try:
-            number = float(text)
-        except ValueError:
-            raise self._reply_error(reply, "an integer") from None
-        if not math.isfinite(number) or not number.is_integer():
+            return int(self.fixed_value(context))
+        number = self._parse_number(reply, "an integer")
+        if not number.is_integer():
             raise self._reply_error(reply, "an integer")
         return int(number)
 
@@ -358,7 +523,12 @@ class BoolSetting(_Setting):
 
     true: str = "ON"
     false: str = "OFF"
-    fixed: bool | None = None
+    fixed: bool | FixedBy | None = None
+
+    def _coerce_fixed(self, value: Any) -> bool:
+        if not isinstance(value, bool):
+            raise InputError(self._name, f"fixed value {value!r} must be true or false")
+        return value
 
     @model_validator(mode="after")
     def _check_tokens(self) -> BoolSetting:
@@ -373,9 +543,9 @@ class BoolSetting(_Setting):
             raise InputError(self._name, f"must be true or false (got {value!r})", value=value)
         return self.true if value else self.false
 
-    def parse(self, reply: str) -> bool:
+    def parse(self, reply: str, context: Mapping[str, Any] | None = None) -> bool:
         if self.fixed is not None and self.get_cmd is None:
-            return bool(self.fixed)
+            return bool(self.fixed_value(context))
         text = _unquote(reply).upper()
         trues = {"1", "ON", self.true.upper(), _short_form(self.true)}
         falses = {"0", "OFF", self.false.upper(), _short_form(self.false)}
@@ -425,7 +595,7 @@ class EnumSetting(_Setting):
             )
         return self.choices[key]
 
-    def parse(self, reply: str) -> str:
+    def parse(self, reply: str, context: Mapping[str, Any] | None = None) -> str:
         if self.fixed is not None and self.get_cmd is None:
             return self.fixed
         text = _unquote(reply).upper()
@@ -449,7 +619,7 @@ class TextSetting(_Setting):
     def _render(self, value: Any) -> str:
         return safe_text(self._name, value, max_length=self.max_length)
 
-    def parse(self, reply: str) -> str:
+    def parse(self, reply: str, context: Mapping[str, Any] | None = None) -> str:
         if self.fixed is not None and self.get_cmd is None:
             return self.fixed
         return _unquote(reply)
@@ -480,6 +650,44 @@ def _enum_values(cls: type[Enum]) -> set[str]:
 
 class _Section(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+def _not_available(value: Any) -> Any:
+    """``false`` in a profile means "this instrument has no such command" (stored as None);
+    ``true`` is refused (it names no command)."""
+    if value is False:
+        return None
+    if value is True:
+        raise ValueError("use false for 'not available', or the command text")
+    return value
+
+
+def _check_init(commands: list[str]) -> list[str]:
+    for command in commands:
+        _check_command(command, "init command")
+    return commands
+
+
+def _check_dependencies(section: BaseModel, choices_of: Mapping[str, set[str]]) -> None:
+    """Every ``fixed = { by = ... }`` names a known enumerated setting and its choices."""
+    for name in type(section).model_fields:
+        setting = getattr(section, name)
+        fixed = getattr(setting, "fixed", None)
+        if not isinstance(fixed, FixedBy):
+            continue
+        if fixed.by not in choices_of:
+            raise ValueError(
+                f"{name}.fixed.by = {fixed.by!r} is not an enumerated setting of this "
+                f"section (one of {sorted(choices_of)})"
+            )
+        unknown = set(fixed.values) - choices_of[fixed.by] - {"*"}
+        if unknown:
+            raise ValueError(
+                f"{name}.fixed.values: {sorted(unknown)} are not choices of {fixed.by} "
+                f"({sorted(choices_of[fixed.by])})"
+            )
+        for value in fixed.values.values():
+            setting._coerce_fixed(value)
 
 
 class ConnectionProfile(_Section):
@@ -521,6 +729,8 @@ class CommonProfile(_Section):
     )
     max_error_entries: int = Field(default=32, ge=1, le=1000)
 
+    _optional = field_validator("clear_status", mode="before")(_not_available)
+
     @model_validator(mode="after")
     def _check(self) -> CommonProfile:
         for key in ("identify", "operation_complete", "error_query"):
@@ -550,6 +760,7 @@ class AnalyzerSettings(_Section):
     points: IntSetting
     detector: EnumSetting
     detector_samples: FloatSetting | None = None
+    averaging_on: BoolSetting | None = None
     averaging_scale: EnumSetting
     averages: IntSetting
     ref_level_dbm: FloatSetting | None = None
@@ -557,6 +768,11 @@ class AnalyzerSettings(_Section):
     preamp: BoolSetting | None = None
     sweep_time_s: FloatSetting | None = None
     sweep_time_auto: BoolSetting | None = None
+
+    @field_validator("*", mode="before")
+    @classmethod
+    def _optional(cls, value: Any) -> Any:
+        return _not_available(value)
 
     @model_validator(mode="after")
     def _check(self) -> AnalyzerSettings:
@@ -585,6 +801,12 @@ class AnalyzerSettings(_Section):
         if self.mode is not None and "fft" in self.mode.choices:
             if self.fft_window is None or not self.fft_window.readable:
                 raise ValueError("FFT mode needs fft_window ('get' or 'fixed')")
+        enums = {
+            n: set(s.choices) | ({s.fixed} if s.fixed else set())
+            for n in type(self).model_fields
+            if isinstance(s := getattr(self, n), EnumSetting)
+        }
+        _check_dependencies(self, enums)
         return self
 
 
@@ -620,6 +842,8 @@ class AcquisitionProfile(_Section):
         "cannot report its sweep time (common practice)",
     )
 
+    _optional = field_validator("abort", "poll_start", mode="before")(_not_available)
+
     @model_validator(mode="after")
     def _check(self) -> AcquisitionProfile:
         _check_command(self.start, "start")
@@ -645,6 +869,10 @@ class TraceProfile(_Section):
         default=1e6, gt=0, description="conservative rate used to size the transfer timeout"
     )
 
+    _optional = field_validator("binary_format", "byte_order", "ascii_format", mode="before")(
+        _not_available
+    )
+
     @model_validator(mode="after")
     def _check(self) -> TraceProfile:
         _check_query(self.query)
@@ -659,10 +887,14 @@ class TraceProfile(_Section):
 
 
 class MarkerProfile(_Section):
-    """Marker commands: position, function (band power / noise density), band, value."""
+    """Marker commands: position, function (band power / noise density) - or an on/off
+    ``noise`` switch for instruments whose noise marker is a switch - band, value."""
 
     frequency: FloatSetting
-    function: EnumSetting
+    function: EnumSetting | None = None
+    noise: BoolSetting | None = Field(
+        default=None, description="on/off noise-density marker (instead of 'function')"
+    )
     band: FloatSetting | None = None
     value: str = "CALC:MARK:Y?"
     corrected: BoolSetting | None = Field(
@@ -671,16 +903,32 @@ class MarkerProfile(_Section):
         "bandwidth corrections applied ('get' or 'fixed')",
     )
 
+    _optional = field_validator("band", "corrected", "noise", "function", mode="before")(
+        _not_available
+    )
+
     @model_validator(mode="after")
     def _check(self) -> MarkerProfile:
         _check_query(self.value)
+        if (self.function is None) == (self.noise is None):
+            raise ValueError("declare the marker's 'function' or its on/off 'noise' switch")
+        if self.noise is not None and not self.noise.writable:
+            raise ValueError("marker.noise needs a 'set' template")
         _require_enum_keys(self.function, {"off", "band_power", "noise_density"}, "function")
+        _check_dependencies(self, {"function": set(self.kinds) | {"off"}})
         if self.corrected is None or not self.corrected.readable:
             raise ValueError(
                 "marker.corrected needs a 'get' query or 'fixed': the estimator "
                 "must know whether the instrument already corrected the reading"
             )
         return self
+
+    @property
+    def kinds(self) -> tuple[str, ...]:
+        """Marker kinds this instrument offers (``band_power``, ``noise_density``)."""
+        if self.function is not None:
+            return tuple(k for k in ("band_power", "noise_density") if k in self.function.choices)
+        return ("noise_density",)
 
 
 class AnalyzerProfile(_Section):
@@ -694,6 +942,13 @@ class AnalyzerProfile(_Section):
     noise_drive: BoolSetting | None = None
     sim_path: EnumSetting | None = None
     max_input_power_dbm: float | None = None
+    init: list[str] = Field(
+        default_factory=list,
+        description="commands sent once after connecting and after every reconnect",
+    )
+
+    _optional = field_validator("marker", "noise_drive", "sim_path", mode="before")(_not_available)
+    _init = field_validator("init")(_check_init)
 
     @model_validator(mode="after")
     def _check(self) -> AnalyzerProfile:
@@ -717,6 +972,8 @@ class GeneratorProfile(_Section):
     """The ``[generator]`` section."""
 
     settings: GeneratorSettings
+    init: list[str] = Field(default_factory=list)
+    _init = field_validator("init")(_check_init)
 
 
 class SupplySettings(_Section):
@@ -729,6 +986,8 @@ class SupplyProfile(_Section):
     """The ``[supply]`` section (DC supply that drives a noise source)."""
 
     settings: SupplySettings
+    init: list[str] = Field(default_factory=list)
+    _init = field_validator("init")(_check_init)
     measure_voltage: str | None = None
     measure_current: str | None = None
     voltage_tolerance_v: float = Field(default=0.5, gt=0)
@@ -806,6 +1065,7 @@ DEFAULT_APPLY_ORDER: tuple[str, ...] = (
     "vbw_hz",
     "points",
     "detector",
+    "averaging_on",
     "averaging_scale",
     "averages",
     "ref_level_dbm",
@@ -874,13 +1134,5 @@ def load_profile(profile: str | Path | InstrumentProfile = "generic") -> Instrum
                 fix=f"give a path to a .toml file or one of {available_profiles()}",
             )
         path = packaged
-    try:
-        text = path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(
-            "profile",
-            f"cannot read {path}: {exc}",
-            value=str(path),
-            fix="check the path and that the file is UTF-8 text",
-        ) from None
+    text = read_user_text(path, MAX_PROFILE_BYTES, field=f"profile {path}", what="profile")
     return parse_profile(text, source=str(path))

@@ -21,7 +21,7 @@ import logging
 import re
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import Any, TypeVar
 
 from noisebench.errors import (
@@ -62,6 +62,7 @@ class ScpiChannel:
         lock: threading.RLock,
         retries: int = 2,
         restore: Callable[[], None] | None = None,
+        init: Sequence[str] = (),
     ) -> None:
         if not isinstance(retries, int) or isinstance(retries, bool) or not 0 <= retries <= 10:
             raise InputError(
@@ -73,6 +74,7 @@ class ScpiChannel:
         self.lock = lock
         self.retries = retries
         self.restore = restore
+        self.init = tuple(init)
         self.identity = ""
         self.base_timeout_s = transport.timeout_s
         self.recovery_log: list[str] = []  # one line per recovery, for logs and tests
@@ -93,7 +95,16 @@ class ScpiChannel:
             if self.common.clear_status:
                 self.transport.write(self.common.clear_status)
             logger.info("%s %s: %s", self.kind, self.transport.resource, reply)
+            self.run_init()
             return reply
+
+    def run_init(self) -> None:
+        """The profile's ``init`` commands (after connecting and after a reconnect), each
+        followed by an error-queue check that names it."""
+        for command in self.init:
+            self.transport.write(command)
+            self._unchecked.append(command)
+            self.check_errors(command)
 
     def close(self) -> None:
         self.transport.close()
@@ -138,13 +149,14 @@ class ScpiChannel:
         """Validate, format and send one setting (InputError before any I/O if invalid)."""
         self.write(setting.command(value))
 
-    def get(self, setting: Any) -> Any:
-        """Read one setting back (or its profile ``fixed`` value) and parse it."""
+    def get(self, setting: Any, context: dict[str, Any] | None = None) -> Any:
+        """Read one setting back (or its profile ``fixed`` value) and parse it; ``context``
+        gives other settings' values for a ``fixed = { by = ... }``."""
         if setting.get_cmd is None:
             if getattr(setting, "fixed", None) is None:
                 setting.query()  # raises InputError naming the setting
-            return setting.parse("")
-        return setting.parse(self.transport.query(setting.query()))
+            return setting.parse("", context)
+        return setting.parse(self.transport.query(setting.query()), context)
 
     # -- error queue -------------------------------------------------------------------
 
@@ -245,6 +257,8 @@ class ScpiChannel:
             if cause is not None:
                 raise error from cause
             raise error
+        if reconnected:
+            self.run_init()
         if reconnected and self.restore is not None:
             self.restore()
         self.needs_recovery = False
@@ -284,6 +298,7 @@ class SwitchedOutputInstrument:
             lock=self.lock,
             retries=retries,
             restore=self._restore,
+            init=self.spec.init,
         )  # type: ignore[attr-defined]
         self._channel.connect()
         self._output = bool(self._channel.get(self.spec.settings.output))

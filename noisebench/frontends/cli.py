@@ -79,6 +79,10 @@ def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
     if args.resume:
         from noisebench.results.store import check_resumable
 
+        _require_started_run(Path(args.resume), args.plan)
+        finished = _finish_complete_run(Path(args.resume), plan, out)
+        if finished is not None:
+            return finished
         check_resumable(args.resume)  # a wrong folder is refused before any instrument
     session = open_bench(plan.bench, prompt=input)
     try:
@@ -139,6 +143,69 @@ def cmd_serve(args: argparse.Namespace, out: TextIO) -> int:
         return int(serve_main(list(args.serve_args), out=out))
     except SystemExit as exc:  # the server's own --help or usage error
         return int(exc.code or 0)
+
+
+def _require_started_run(folder: Path, plan_path: str) -> None:
+    """InputError in plain words when no run was ever started in ``folder`` (the process was
+    killed before it wrote its run description, or the path is wrong)."""
+    from noisebench.results.store import RUN_INFO_FILE
+
+    if folder.is_dir() and (folder / RUN_INFO_FILE).exists():
+        return
+    if folder.exists() and not folder.is_dir():
+        raise InputError("--resume", f"{folder} is a file, not a run folder", fix="pass the folder")
+    state = "does not exist" if not folder.exists() else f"holds no {RUN_INFO_FILE}"
+    raise InputError(
+        "--resume",
+        f"no run was started in {folder} ({state}; a run killed before it began leaves nothing "
+        "to resume)",
+        fix=f"start it with `noisebench run {plan_path} --out {folder}`",
+    )
+
+
+def _missing_outputs(folder: Path, plots: bool, report: bool) -> list[str]:
+    """Output files of a complete run that are absent (the run was killed while writing them)."""
+    from noisebench.results.store import (
+        PLOTS_DIR,
+        REPORT_FILE,
+        RESULTS_CSV_FILE,
+        RESULTS_JSON_FILE,
+    )
+
+    wanted = [RESULTS_JSON_FILE, RESULTS_CSV_FILE] + ([REPORT_FILE] if report else [])
+    missing = [name for name in wanted if not (folder / name).is_file()]
+    if plots and not any((folder / PLOTS_DIR).glob("*.png")):
+        missing.append(f"{PLOTS_DIR}/")
+    return missing
+
+
+def _finish_complete_run(folder: Path, plan, out: TextIO) -> int | None:
+    """``--resume`` of a run whose points are all measured: write the outputs a kill left
+    missing (exit 0), or say that nothing is left to do. None: the run is not complete."""
+    from noisebench.results.store import format_summary, load_run, write_results
+    from noisebench.running.sequencer import write_outputs
+
+    record = load_run(folder)
+    if record.info.status != "complete" or record.info.notes.get("skipped_points"):
+        return None
+    wants_plots, wants_report = bool(plan.output.plots), bool(plan.output.report)
+    missing = _missing_outputs(folder, wants_plots, wants_report)
+    if not missing:
+        raise InputError(
+            "folder",
+            f"run {record.info.run_id} in {folder} is already complete with all its outputs",
+            fix=f"start a new run to measure again; `noisebench render {folder}` draws plots "
+            "and report again",
+        )
+    write_results(record, folder)
+    write_outputs(record, folder, plots=wants_plots, report=wants_report)
+    print(format_summary(record), file=out)
+    print(
+        f"run {record.info.run_id} was already complete; wrote what was missing "
+        f"({', '.join(missing)}) in {folder}",
+        file=out,
+    )
+    return EXIT_OK
 
 
 def cmd_render(args: argparse.Namespace, out: TextIO) -> int:

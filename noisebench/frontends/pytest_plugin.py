@@ -244,7 +244,8 @@ def _fail_setup(exc: BaseException) -> None:
 
 def _with_bench(plan: Any, address: str | None) -> Any:
     """``plan`` with its analyzer at ``address`` (checked like a loaded plan)."""
-    from noisebench.running.plan import PlanError, cross_check
+    from noisebench.running.plan import PlanError
+    from noisebench.running.plan_checks import cross_check
 
     if address is None or address == plan.bench.analyzer.resource:
         return plan
@@ -365,10 +366,12 @@ class PlanRunner:
         return chosen if freqs_hz is None else plan_for_frequencies(chosen, freqs_hz)
 
     def _folder(self) -> Path:
+        from noisebench.user_files import safe_path_component
+
         self.state.runs += 1
         out = _option_path(self.request.config, "nb_out")
         name = f"{self.request.node.name}-run{self.state.runs}"
-        name = "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in name)[:120]
+        name = safe_path_component(name, default="run", max_length=120)
         if out is not None:
             return out / name
         return self.request.getfixturevalue("tmp_path") / name

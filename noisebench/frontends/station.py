@@ -55,19 +55,14 @@ the mean time per unit (wall clock, station overhead included).
 
 from __future__ import annotations
 
-import hashlib
 import logging
 import math
-import re
 import time
-import unicodedata
 from collections.abc import Callable, Iterable, Iterator
-from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any
 
-import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
 from noisebench.errors import (
@@ -76,7 +71,24 @@ from noisebench.errors import (
     NoisebenchError,
     SafetyError,
 )
+from noisebench.frontends.station_summary import StationSummary, UnitResult
+from noisebench.frontends.units import (
+    END_WORDS,
+    UnitId,
+    _checked_name,
+    _refuse_control_characters,
+    parse_unit_line,
+    units_from_file,
+    units_from_lines,
+    units_from_prompt,
+)
 from noisebench.running.plan import Plan
+from noisebench.sims.unit_variation import (
+    UnitOffsets,
+    UnitVariation,
+    apply_simulated_unit,
+    install_scenario_dut,
+)
 
 logger = logging.getLogger(__name__)
 
@@ -100,283 +112,6 @@ __all__ = [
 
 SUMMARY_FILE = "station_summary.json"
 DEFAULT_DATABASE_FILE = "station.sqlite"
-END_WORDS = frozenset({"", "q", "Q"})
-_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}")
-_KEYS = {"SN": "serial", "LOT": "lot", "PN": "part_number"}
-_LINE_ENDINGS = ("\r\n", "\n", "\r")
-
-
-# =========================================================================== unit names
-
-
-@dataclass(frozen=True)
-class UnitId:
-    """One unit: its serial number, and the lot and part number when known."""
-
-    serial: str
-    lot: str | None = None
-    part_number: str | None = None
-
-
-def _refuse_control_characters(line: str) -> None:
-    for index, ch in enumerate(line):
-        if unicodedata.category(ch) in ("Cc", "Cf", "Zl", "Zp"):
-            raise InputError(
-                "unit",
-                f"control character {ch!r} at position {index} in {line!r}",
-                value=line,
-                fix="type the serial again; set the scanner to send plain text",
-            )
-
-
-def _checked_name(field: str, value: str, line: str) -> str:
-    if not _NAME.fullmatch(value):
-        raise InputError(
-            field,
-            f"{value!r} (in {line!r}) is not a valid {field.replace('_', ' ')}",
-            value=value,
-            fix="1-64 letters, digits, '.', '_' or '-', starting with a letter or digit",
-        )
-    return value
-
-
-def _parse_fields(text: str, line: str) -> dict[str, str]:
-    fields: dict[str, str] = {}
-    for part in text.split(";"):
-        key, sep, value = part.partition(":")
-        key, value = key.strip().upper(), value.strip()
-        if not sep or not key:
-            raise InputError(
-                "unit",
-                f"field {part!r} of {line!r} is not KEY:VALUE",
-                value=line,
-                fix="write SN:<serial>;LOT:<lot>;PN:<part number>",
-            )
-        if key not in _KEYS:
-            raise InputError(
-                "unit",
-                f"unknown key {key!r} in {line!r}",
-                value=line,
-                fix="keys are SN, LOT and PN",
-            )
-        name = _KEYS[key]
-        if name in fields:
-            raise InputError("unit", f"key {key!r} appears twice in {line!r}", value=line)
-        fields[name] = _checked_name(name, value, line)
-    if "serial" not in fields:
-        raise InputError(
-            "serial", f"{line!r} has no SN field", value=line, fix="start the line with SN:<serial>"
-        )
-    return fields
-
-
-def parse_unit_line(
-    line: str, *, lot: str | None = None, part_number: str | None = None
-) -> UnitId | None:
-    """A unit from one input line, or None for the end of input (empty line or ``q``).
-
-    ``lot`` / ``part_number`` apply when the line does not give them. Raises
-    :class:`InputError` (naming the problem) for anything that is not a clean serial or
-    ``SN:..;LOT:..;PN:..`` line.
-    """
-    if not isinstance(line, str):
-        raise InputError("unit", f"must be text (got {type(line).__name__})")
-    for ending in _LINE_ENDINGS:
-        if line.endswith(ending):
-            line = line[: -len(ending)]
-            break
-    _refuse_control_characters(line)
-    text = line.strip()
-    if text in END_WORDS:
-        return None
-    if ":" in text or ";" in text:
-        fields = _parse_fields(text, line)
-    else:
-        fields = {"serial": _checked_name("serial", text, line)}
-    return UnitId(
-        serial=fields["serial"],
-        lot=fields.get("lot", lot),
-        part_number=fields.get("part_number", part_number),
-    )
-
-
-def units_from_prompt(
-    read_line: Callable[[str], str] = input,
-    *,
-    prompt: str = "unit serial or barcode (empty or q ends): ",
-    on_refused: Callable[[str], Any] | None = None,
-    lot: str | None = None,
-    part_number: str | None = None,
-) -> Iterator[UnitId]:
-    """Units typed or scanned at a prompt, until an empty line, ``q`` or end of input.
-
-    A refused line is reported through ``on_refused`` (default: the log) and asked again.
-    """
-    report = on_refused or (lambda text: logger.warning("%s", text))
-    while True:
-        try:
-            line = read_line(prompt)
-        except EOFError:
-            return
-        try:
-            unit = parse_unit_line(line, lot=lot, part_number=part_number)
-        except InputError as exc:
-            report(f"refused: {exc}")
-            continue
-        if unit is None:
-            return
-        yield unit
-
-
-def units_from_lines(
-    lines: Iterable[str],
-    *,
-    lot: str | None = None,
-    part_number: str | None = None,
-    source: str = "list",
-) -> list[UnitId]:
-    """Units of a list (a file's lines): all checked before any is measured.
-
-    Blank lines and lines starting with ``#`` are skipped; a ``q`` line ends the list. Every
-    bad line is reported in one :class:`InputError` with its line number.
-    """
-    units: list[UnitId] = []
-    problems: list[str] = []
-    for number, line in enumerate(lines, start=1):
-        if not line.strip() or line.lstrip().startswith("#"):
-            continue
-        try:
-            unit = parse_unit_line(line, lot=lot, part_number=part_number)
-        except InputError as exc:
-            problems.append(f"line {number}: {exc}")
-            continue
-        if unit is None:
-            break
-        units.append(unit)
-    if problems:
-        raise InputError(
-            "units", f"{source}: " + "; ".join(problems), fix="correct the lines named above"
-        )
-    return units
-
-
-def units_from_file(
-    path: str | Path, *, lot: str | None = None, part_number: str | None = None
-) -> list[UnitId]:
-    """Units listed in a text file, one serial or barcode line per line."""
-    path = Path(path)
-    with path.open(encoding="utf-8-sig", newline="") as handle:  # a byte-order mark is fine
-        return units_from_lines(
-            handle.read().splitlines(), lot=lot, part_number=part_number, source=path.name
-        )
-
-
-# =========================================================================== simulated units
-
-
-class UnitVariation(BaseModel):
-    """Invented unit-to-unit spread of a simulated DUT (dB), seeded from each serial.
-
-    For each unit: an NF offset ~ N(0, ``nf_sigma_db``), an NF tilt ~ N(0,
-    ``nf_tilt_sigma_db``) (the change at the band edges, opposite signs, zero at the centre),
-    a gain offset ~ N(0, ``gain_sigma_db``), and with probability ``weak_fraction`` an extra
-    ``weak_nf_db`` of NF (a weak input stage). ``seed`` selects another population from the
-    same serials. Passive DUTs get the gain (loss) offset only.
-    """
-
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-    nf_sigma_db: float = Field(default=0.10, ge=0, le=5)
-    nf_tilt_sigma_db: float = Field(default=0.05, ge=0, le=5)
-    gain_sigma_db: float = Field(default=0.40, ge=0, le=10)
-    weak_fraction: float = Field(default=0.15, ge=0, le=1)
-    weak_nf_db: float = Field(default=0.6, ge=0, le=20)
-    seed: int = Field(default=0, ge=0)
-
-    def offsets(self, serial: str) -> UnitOffsets:
-        """The deterministic offsets of unit ``serial``."""
-        digest = hashlib.sha256(serial.encode("utf-8")).digest()
-        words = [int.from_bytes(digest[i : i + 4], "big") for i in range(0, 16, 4)]
-        rng = np.random.default_rng(np.random.SeedSequence([self.seed, *words]))
-        z_nf, z_tilt, z_gain = rng.standard_normal(3)
-        weak = bool(rng.random() < self.weak_fraction)
-        return UnitOffsets(
-            serial=serial,
-            nf_offset_db=float(z_nf * self.nf_sigma_db),
-            nf_tilt_db=float(z_tilt * self.nf_tilt_sigma_db),
-            gain_offset_db=float(z_gain * self.gain_sigma_db),
-            weak=weak,
-            weak_nf_db=self.weak_nf_db if weak else 0.0,
-        )
-
-
-@dataclass(frozen=True)
-class UnitOffsets:
-    """The changes (dB) one simulated unit makes to the scenario's DUT tables."""
-
-    serial: str
-    nf_offset_db: float
-    nf_tilt_db: float
-    gain_offset_db: float
-    weak: bool
-    weak_nf_db: float
-
-    def nf_change_db(self, freq_hz: np.ndarray, band_hz: tuple[float, float]) -> np.ndarray:
-        """NF change (dB) at ``freq_hz``: offset + weak excess + tilt (-1 .. +1 across band)."""
-        f = np.asarray(freq_hz, dtype=float)
-        lo, hi = band_hz
-        x = (2.0 * (f - lo) / (hi - lo) - 1.0) if hi > lo else np.zeros_like(f)
-        return self.nf_offset_db + self.weak_nf_db + self.nf_tilt_db * x
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "serial": self.serial,
-            "nf_offset_db": self.nf_offset_db,
-            "nf_tilt_db": self.nf_tilt_db,
-            "gain_offset_db": self.gain_offset_db,
-            "weak": self.weak,
-            "weak_nf_db": self.weak_nf_db,
-        }
-
-
-MIN_SIMULATED_NF_DB = 0.05
-
-
-def unit_dut_table(dut: Any, offsets: UnitOffsets) -> dict[str, Any]:
-    """The ``[dut]`` overrides of one unit for a scenario's DUT spec (``sims.scenario``)."""
-    freq = np.asarray(dut.freq_hz, dtype=float)
-    gain = np.asarray(dut.gain_db, dtype=float) + offsets.gain_offset_db
-    table: dict[str, Any] = {"name": f"{dut.name} #{offsets.serial}"}
-    if dut.nf_db is not None:
-        band = (float(freq[0]), float(freq[-1]))
-        nf = np.asarray(dut.nf_db, dtype=float) + offsets.nf_change_db(freq, band)
-        table["nf_db"] = [float(v) for v in np.maximum(nf, MIN_SIMULATED_NF_DB)]
-    else:
-        gain = np.minimum(gain, 0.0)  # a passive DUT never gains
-    table["gain_db"] = [float(v) for v in gain]
-    return table
-
-
-def apply_simulated_unit(sim: Any, base_scenario: Any, offsets: UnitOffsets) -> Any:
-    """Install unit ``offsets`` (relative to ``base_scenario``) in the running simulator.
-
-    The unit's scenario is built through the simulator's validated scenario overrides; its
-    DUT model replaces the bench's (``SimulatedBench.replace_dut``). Returns
-    the unit's scenario.
-    """
-    from noisebench.sims.scenario import scenario_from_dict
-
-    data = base_scenario.model_dump()
-    data["dut"] = {**data["dut"], **unit_dut_table(base_scenario.dut, offsets)}
-    scenario = scenario_from_dict(data, source=f"unit {offsets.serial}")
-    install_scenario_dut(sim, scenario)
-    logger.debug("simulated unit %s installed: %s", offsets.serial, offsets)
-    return scenario
-
-
-def install_scenario_dut(sim: Any, scenario: Any) -> None:
-    """Make the running simulator's DUT the one of ``scenario`` (nothing else changes)."""
-    sim.replace_dut(scenario.dut)
 
 
 # =========================================================================== settings, results
@@ -433,190 +168,6 @@ class StationSettings(BaseModel):
             return value
         _refuse_control_characters(value)
         return _checked_name(info.field_name, value, value)
-
-
-UnitStatus = Literal["complete", "interrupted", "failed", "not_started"]
-
-
-class UnitResult(BaseModel):
-    """What the station did with one unit."""
-
-    serial: str
-    lot: str | None = None
-    part_number: str | None = None
-    attempt: int = 1
-    run_id: str | None = None
-    folder: str | None = None
-    status: UnitStatus
-    verdict: str | None = None  # pass / fail / indeterminate; None: not judged or not measured
-    failing: list[dict[str, Any]] = Field(default_factory=list)
-    points: int = 0
-    skipped_points: list[dict[str, Any]] = Field(default_factory=list)
-    max_nf_db: float | None = None
-    min_gain_db: float | None = None
-    started_at: datetime
-    duration_s: float = Field(ge=0)
-    instrument_time_s: float | None = None
-    calibrated_groups: int = 0
-    calibration_reason: str | None = None
-    database_id: int | None = None
-    store_error: str | None = None
-    error: str | None = None
-    simulated_unit: dict[str, Any] | None = None
-
-    @property
-    def outcome(self) -> str:
-        """``pass``/``fail``/``indeterminate``, ``not_judged`` (no limits), or ``error``.
-
-        ``error``: the run did not complete (refused, failed, interrupted), whatever its
-        points say; as in the results database, only complete runs are judged units. A
-        complete run is counted by its verdict (a unit whose points were all skipped is
-        ``indeterminate``: nothing was verified), or without limits ``not_judged`` -
-        ``error`` when it measured no point at all.
-        """
-        if self.error is not None or self.status != "complete":
-            return "error"
-        if self.verdict:
-            return self.verdict
-        return "error" if self.points == 0 else "not_judged"
-
-    def line(self) -> str:
-        """One line for the operator."""
-        who = self.serial + (f" (lot {self.lot})" if self.lot else "")
-        text = f"{who}: {self.outcome.upper().replace('_', ' ')}"
-        if self.max_nf_db is not None:
-            text += f"  NF max {self.max_nf_db:.3f} dB"
-        if self.min_gain_db is not None:
-            text += f"  gain min {self.min_gain_db:.2f} dB"
-        text += f"  {self.duration_s:.1f} s"
-        if self.calibration_reason:
-            text += f"  [calibrated: {self.calibration_reason}]"
-        if self.status != "complete":
-            text += f"  [run {self.status}]"
-        for point in self.failing[:5]:
-            text += "\n    " + _failing_text(point)
-        if len(self.failing) > 5:
-            text += f"\n    ... {len(self.failing) - 5} more point(s)"
-        for skipped in self.skipped_points[:3]:
-            text += (
-                f"\n    not measured: {skipped.get('freq_hz', 0.0) / 1e9:.6g} GHz "
-                f"({skipped.get('stage')}): {skipped.get('reason')}"
-            )
-        if len(self.skipped_points) > 3:
-            text += f"\n    ... {len(self.skipped_points) - 3} more point(s) not measured"
-        if self.error:
-            text += f"\n    error: {self.error}"
-        if self.store_error:
-            text += f"\n    NOT STORED in the database: {self.store_error}"
-        return text
-
-
-def _failing_text(point: dict[str, Any]) -> str:
-    checks = "; ".join(
-        f"{c.get('quantity')} {c.get('value') if c.get('value') is None else round(c['value'], 3)}"
-        f" vs {c.get('kind')} {c.get('limit')} (U {_fmt(c.get('U'))}): {c.get('verdict')}"
-        for c in point.get("checks") or []
-    )
-    return f"{point.get('freq_hz', 0.0) / 1e9:.6g} GHz {point.get('verdict')}: {checks}"
-
-
-def _fmt(value: Any, digits: int = 3) -> str:
-    return "-" if not isinstance(value, (int, float)) else f"{value:.{digits}f}"
-
-
-OUTCOMES = ("pass", "fail", "indeterminate", "not_judged", "error")
-
-
-class StationSummary(BaseModel):
-    """The tally of a station run (see the module docstring for the counting rules)."""
-
-    station_id: str
-    operator: str | None = None
-    plan_name: str | None = None
-    folder: str
-    database: str | None = None
-    started_at: datetime
-    ended_at: datetime | None = None
-    stopped_by: str | None = None
-    units: list[UnitResult] = Field(default_factory=list)
-
-    def latest(self) -> list[UnitResult]:
-        """The latest attempt of every serial, in first-seen order."""
-        last: dict[str, UnitResult] = {}
-        for result in self.units:
-            last[result.serial] = result
-        return list(last.values())
-
-    def counts(self) -> dict[str, int]:
-        """Units (latest attempt per serial) by outcome."""
-        out = dict.fromkeys(OUTCOMES, 0)
-        for result in self.latest():
-            out[result.outcome] += 1
-        return out
-
-    @property
-    def judged(self) -> int:
-        c = self.counts()
-        return c["pass"] + c["fail"] + c["indeterminate"]
-
-    @property
-    def yield_fraction(self) -> float | None:
-        """Passed / judged units; None when no unit was judged."""
-        return self.counts()["pass"] / self.judged if self.judged else None
-
-    @property
-    def mean_time_per_unit_s(self) -> float | None:
-        """Mean wall-clock time per measured unit (every attempt), s."""
-        times = [u.duration_s for u in self.units]
-        return sum(times) / len(times) if times else None
-
-    @property
-    def calibrations(self) -> int:
-        """Units that triggered a calibration."""
-        return sum(1 for u in self.units if u.calibrated_groups)
-
-    @property
-    def retests(self) -> int:
-        return len(self.units) - len(self.latest())
-
-    def not_stored(self) -> list[str]:
-        return [u.serial for u in self.units if u.store_error]
-
-    def format(self) -> str:
-        """The end-of-run summary for the operator (plain text)."""
-        c = self.counts()
-        head = f"Station {self.station_id}" + (
-            f", operator {self.operator}" if self.operator else ""
-        )
-        lines = [
-            f"{head}: {len(self.latest())} unit(s), {len(self.units)} run(s)"
-            + (f" ({self.retests} re-test(s))" if self.retests else ""),
-            "  " + ", ".join(f"{k.replace('_', ' ')} {c[k]}" for k in OUTCOMES),
-        ]
-        if self.yield_fraction is not None:
-            lines.append(
-                f"  yield {100 * self.yield_fraction:.1f} % ({c['pass']} of {self.judged} judged)"
-            )
-        else:
-            lines.append("  yield - (no unit judged)")
-        if self.mean_time_per_unit_s is not None:
-            lines.append(f"  mean time per unit {self.mean_time_per_unit_s:.1f} s")
-        reasons = [u.calibration_reason for u in self.units if u.calibrated_groups]
-        detail = ", ".join(f"{reasons.count(r)} {r}" for r in dict.fromkeys(reasons))
-        lines.append(f"  calibrations {self.calibrations}" + (f" ({detail})" if detail else ""))
-        failed = [u.serial for u in self.latest() if u.outcome in ("fail", "error")]
-        if failed:
-            lines.append("  fail/error: " + ", ".join(failed))
-        if self.database:
-            missing = self.not_stored()
-            lines.append(
-                f"  database {self.database}"
-                + (f"; NOT STORED: {', '.join(missing)}" if missing else "")
-            )
-        lines.append(f"  results in {self.folder}")
-        if self.stopped_by:
-            lines.append(f"  stopped: {self.stopped_by}")
-        return "\n".join(lines)
 
 
 # =========================================================================== the station

@@ -34,6 +34,15 @@ from noisebench.errors import InputError, NoisebenchError
 log = logging.getLogger(__name__)
 
 SCHEMA_VERSION = 1
+_SCHEMA_ATTEMPTS = 20  # bounded retries of schema creation on engines without a schema lock
+_SCHEMA_LOCK_KEY = 0x6E6F6973  # PostgreSQL advisory-lock key of noisebench's schema step
+
+
+def _is_creation_race(exc: Exception) -> bool:
+    """True if ``exc`` is another process creating the same table or row at the same moment."""
+    message = str(getattr(exc, "orig", exc)).lower()
+    return isinstance(exc, IntegrityError) or "already exists" in message or "locked" in message
+
 
 try:  # SQLAlchemy is an optional extra ("db"); fail with a clear message when it is missing
     from sqlalchemy import (
@@ -48,8 +57,9 @@ try:  # SQLAlchemy is an optional extra ("db"); fail with a clear message when i
         event,
         func,
         select,
+        text,
     )
-    from sqlalchemy.exc import IntegrityError, OperationalError
+    from sqlalchemy.exc import IntegrityError, OperationalError, ProgrammingError
     from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column, relationship
 except ImportError as exc:  # pragma: no cover - exercised only without the extra
     raise ImportError(
@@ -234,28 +244,52 @@ class ResultsDatabase:
 
     # -- schema ------------------------------------------------------------------------------
     def _create_or_check(self) -> None:
-        try:
-            _Base.metadata.create_all(self.engine)
-            with Session(self.engine) as s, s.begin():
-                info = s.scalars(select(_SchemaInfo)).first()
-                if info is None:
-                    s.add(
-                        _SchemaInfo(
-                            id=1, version=SCHEMA_VERSION, created_at=datetime.now(timezone.utc)
+        """Create the schema if absent, then check its version: safe when many open at once.
+
+        The whole step runs in ONE transaction that first takes a database-wide write lock
+        (SQLite ``BEGIN IMMEDIATE``; a PostgreSQL transaction-level advisory lock), so the
+        processes of a line switched on together create the tables one after the other: the
+        first creates them, the others find them and only check the version. Engines without
+        such a lock retry once the winner has finished.
+        """
+        for attempt in range(_SCHEMA_ATTEMPTS):
+            try:
+                with self.engine.connect() as conn:
+                    self._lock_schema(conn)
+                    _Base.metadata.create_all(conn)
+                    info = conn.execute(select(_SchemaInfo.version)).first()
+                    if info is None:
+                        conn.execute(
+                            _SchemaInfo.__table__.insert().values(
+                                id=1, version=SCHEMA_VERSION, created_at=datetime.now(timezone.utc)
+                            )
                         )
-                    )
-                elif info.version != SCHEMA_VERSION:
+                    conn.commit()
+                break
+            except (IntegrityError, ProgrammingError, OperationalError) as exc:
+                # without a lock (another engine) a concurrent creator may win the race; once
+                # it has committed, the next attempt finds the tables
+                if attempt + 1 == _SCHEMA_ATTEMPTS or not _is_creation_race(exc):
                     raise DatabaseError(
-                        f"database schema version {info.version} is not the supported "
-                        f"version {SCHEMA_VERSION}; migrate it or use a new database",
+                        f"cannot open the results database: {getattr(exc, 'orig', exc)}",
                         url=self._safe_url(),
-                    )
-        except IntegrityError:
-            pass  # another writer created the schema row at the same moment
-        except OperationalError as exc:
+                    ) from exc
+                time.sleep(0.05 * (attempt + 1))
+        version = self.schema_version
+        if version != SCHEMA_VERSION:
             raise DatabaseError(
-                f"cannot open the results database: {exc.orig}", url=self._safe_url()
-            ) from exc
+                f"database schema version {version} is not the supported "
+                f"version {SCHEMA_VERSION}; migrate it or use a new database",
+                url=self._safe_url(),
+            )
+
+    def _lock_schema(self, conn: Any) -> None:
+        """Take the database-wide lock that serialises schema creation (see above)."""
+        dialect = conn.dialect.name
+        if dialect == "sqlite":
+            conn.exec_driver_sql("BEGIN IMMEDIATE")  # waits up to the busy timeout
+        elif dialect == "postgresql":
+            conn.execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": _SCHEMA_LOCK_KEY})
 
     @property
     def schema_version(self) -> int:

@@ -238,7 +238,8 @@ def plan_for_frequencies(plan: Plan, freqs_hz: Any) -> Plan:
     the plan-wide ``[acquisition]``. The narrowed plan is checked like a loaded one
     (:class:`~noisebench.running.plan.PlanError` naming every problem, e.g. outside the ENR table).
     """
-    from noisebench.running.plan import PlanError, Segment, SweepSection, cross_check
+    from noisebench.running.plan import PlanError, Segment, SweepSection
+    from noisebench.running.plan_checks import cross_check
 
     values = [freqs_hz] if isinstance(freqs_hz, (int, float)) else list(freqs_hz)
     if not values:

@@ -48,175 +48,58 @@ back bit-exact):
 from __future__ import annotations
 
 import contextlib
-import csv
 import functools
-import io
 import json
 import logging
-import math
 import os
 import platform
 import secrets
-import tempfile
 import threading
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Callable
 from datetime import datetime, timezone
-from enum import Enum
 from importlib import metadata
 from pathlib import Path
-from typing import Any, Literal, TypeVar
+from typing import Any, TypeVar
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, ValidationInfo, field_validator
+from pydantic import ValidationError
 
 from noisebench.errors import InputError
-from noisebench.science.point import Method, PointFlag, PointResult
+from noisebench.results.exports import csv_columns, csv_rows, results_csv_text, write_results
+from noisebench.results.journal import (
+    _APPEND_FLAGS,
+    LOCK_FILE,
+    _FolderLock,
+    _Journal,
+    _read_journal,
+    _repair_journal,
+    write_atomic,
+)
+from noisebench.results.records import (
+    CSV_BUDGET_COLUMNS,
+    CSV_COLUMNS,
+    CSV_VERDICT_COLUMNS,
+    FINAL_STATUSES,
+    FLAG_DESCRIPTIONS,
+    JOURNAL_FILE,
+    PLOTS_DIR,
+    REPORT_FILE,
+    RESULTS_CSV_FILE,
+    RESULTS_JSON_FILE,
+    RUN_INFO_FILE,
+    RunInfo,
+    RunRecord,
+    _clean_point,
+    _jsonable,
+    _sorted_budgets,
+    _sorted_points,
+    _utc_now,
+)
+from noisebench.results.run_files import RunFileError, read_model
+from noisebench.results.summary import format_summary, nf_extremes
+from noisebench.science.point import PointResult
 
 logger = logging.getLogger(__name__)
 T = TypeVar("T")
-
-RUN_INFO_FILE = "run.json"
-JOURNAL_FILE = "points.jsonl"
-RESULTS_JSON_FILE = "results.json"
-RESULTS_CSV_FILE = "results.csv"
-PLOTS_DIR = "plots"
-REPORT_FILE = "report.html"
-
-RunStatus = Literal["running", "complete", "interrupted", "failed"]
-FINAL_STATUSES: tuple[str, ...] = ("complete", "interrupted", "failed")
-
-#: The fixed CSV columns, in order. Optional columns follow when budgets or a verdict exist.
-CSV_COLUMNS: tuple[str, ...] = (
-    "freq_hz",
-    "nf_db",
-    "u_nf_db",
-    "te_k",
-    "u_te_k",
-    "gain_db",
-    "u_gain_db",
-    "y_db",
-    "floor_margin_db",
-    "enr_db",
-    "averages",
-    "instrument_time_s",
-    "flags",
-    "floor_correction_db",
-    "source_temperature_k",
-)
-CSV_BUDGET_COLUMNS: tuple[str, ...] = ("U_nf_db", "coverage_k", "budget_method")
-CSV_VERDICT_COLUMNS: tuple[str, ...] = ("verdict", "limit")
-
-#: What each point flag means, in words (for reports and summaries).
-FLAG_DESCRIPTIONS: dict[PointFlag, str] = {
-    PointFlag.Y_TOO_SMALL: "Y-factor close to 1: the noise figure is very sensitive to jitter; "
-    "use a higher-ENR source or more averages.",
-    PointFlag.NEAR_ANALYZER_FLOOR: "DUT noise only a few dB above the analyzer's own noise: "
-    "the floor correction is large and adds uncertainty.",
-    PointFlag.ENR_EXTRAPOLATED: "Frequency outside the ENR table: the ENR was clamped to the "
-    "nearest table value.",
-    PointFlag.SPURS_EXCLUDED: "Narrowband lines were found in the band and left out of the "
-    "noise estimate.",
-    PointFlag.TIME_LIMIT: "The time limit was reached before the target uncertainty.",
-    PointFlag.EXCESS_SCATTER: "The trace scattered more than noise statistics predict "
-    "(drift, interference or an unstable DUT).",
-    PointFlag.LOW_GAIN: "Low DUT gain: the second-stage correction is large.",
-    PointFlag.COMPRESSION_RISK: "Total noise power is near the analyzer's input limit: "
-    "check linearity (e.g. add 3 dB attenuation).",
-    PointFlag.NEGATIVE_TE: "The corrected noise temperature came out below zero, which is "
-    "physically implausible: check calibration and losses.",
-}
-
-
-# ----------------------------------------------------------------------------- models
-
-
-def _utc_now() -> datetime:
-    return datetime.now(timezone.utc)
-
-
-class RunInfo(BaseModel):
-    """Everything about a run except the points: identity, provenance, settings, calibration.
-
-    Temperatures in K. ``plan`` is the validated plan as a JSON-able dict; ``identities`` the
-    instruments' identification strings by role; ``applied_settings`` the
-    ``AcquisitionSettings`` dumps really used (per segment/group); ``calibration`` the latest
-    calibration saved (see :attr:`RunRecord.calibrations` for all of them).
-    """
-
-    model_config = ConfigDict(extra="forbid")
-
-    run_id: str = Field(min_length=1)
-    method: Method
-    dut_id: str | None = None
-    operator: str | None = None
-    station: str | None = None
-    plan: dict[str, Any] = Field(default_factory=dict)
-    identities: dict[str, str] = Field(default_factory=dict)
-    versions: dict[str, str] = Field(default_factory=dict)
-    started_at: datetime = Field(default_factory=_utc_now)
-    ended_at: datetime | None = None
-    status: RunStatus = "running"
-    ambient_k: float | None = Field(default=None, gt=0)
-    cold_temperature_k: float | None = Field(default=None, gt=0)
-    applied_settings: list[dict[str, Any]] = Field(default_factory=list)
-    calibration: dict[str, Any] | None = None
-    notes: dict[str, Any] = Field(default_factory=dict)
-    resumed_at: list[datetime] = Field(default_factory=list)
-    format_version: int = 1
-
-    @field_validator("plan", "applied_settings", "calibration", "notes", mode="before")
-    @classmethod
-    def _plain_json(cls, value: Any, info: ValidationInfo) -> Any:
-        """Accept models, numpy values and enums; store plain JSON types."""
-        return _jsonable(value, info.field_name or "info")
-
-
-class RunRecord(BaseModel):
-    """A whole run: info, points (sorted by frequency), budgets, verdict.
-
-    ``budgets`` are the uncertainty engineer's dicts (one per frequency, with ``freq_hz``);
-    ``verdict`` the limits engineer's dict (``unit``, ``points``, ``limits``).
-    ``calibrations`` holds every calibration saved during the run, oldest first.
-    ``warnings`` lists what loading had to work around (torn journal line, duplicates, ...).
-    """
-
-    model_config = ConfigDict(extra="forbid")
-
-    info: RunInfo
-    points: list[PointResult]
-    budgets: list[dict[str, Any]] = Field(default_factory=list)
-    verdict: dict[str, Any] | None = None
-    calibrations: list[dict[str, Any]] = Field(default_factory=list)
-    warnings: list[str] = Field(default_factory=list)
-
-    @field_validator("budgets", "verdict", "calibrations", mode="before")
-    @classmethod
-    def _plain_json(cls, value: Any, info: ValidationInfo) -> Any:
-        """Accept budget/verdict objects (``to_dict``), models and numpy values."""
-        return _jsonable(value, info.field_name or "record")
-
-    def budgets_by_freq(self) -> dict[float, dict[str, Any]]:
-        """The budgets keyed by their ``freq_hz`` (first one wins)."""
-        out: dict[float, dict[str, Any]] = {}
-        for budget in self.budgets:
-            out.setdefault(budget.get("freq_hz"), budget)
-        return out
-
-    def verdicts_by_freq(self) -> dict[float, dict[str, Any]]:
-        """The per-point verdict entries keyed by ``freq_hz`` (empty without a verdict)."""
-        out: dict[float, dict[str, Any]] = {}
-        for entry in (self.verdict or {}).get("points") or []:
-            if isinstance(entry, dict):
-                out.setdefault(entry.get("freq_hz"), entry)
-        return out
-
-    def budget_at(self, freq_hz: float) -> dict[str, Any] | None:
-        """The budget stored for ``freq_hz`` (exact match), or ``None``."""
-        return self.budgets_by_freq().get(freq_hz)
-
-    def verdict_at(self, freq_hz: float) -> dict[str, Any] | None:
-        """The verdict entry for ``freq_hz`` (exact match), or ``None``."""
-        return self.verdicts_by_freq().get(freq_hz)
-
 
 # ----------------------------------------------------------------------------- helpers
 
@@ -236,247 +119,6 @@ def collect_versions() -> dict[str, str]:
         except metadata.PackageNotFoundError:
             versions[dist] = "not installed"
     return versions
-
-
-def _jsonable(value: Any, where: str) -> Any:
-    """Plain JSON types from numpy scalars/arrays, enums, paths, datetimes and models.
-
-    Non-finite floats become ``None`` with a warning (JSON has no NaN).
-    """
-    to_dict = getattr(value, "to_dict", None)
-    if callable(to_dict):  # e.g. uncertainty budgets and verdicts: their documented shape
-        return _jsonable(to_dict(), where)
-    if isinstance(value, BaseModel):
-        return _jsonable(value.model_dump(mode="python"), where)
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v, f"{where}.{k}") for k, v in value.items()}
-    if isinstance(value, (list, tuple, set, frozenset)):
-        return [_jsonable(v, f"{where}[{i}]") for i, v in enumerate(value)]
-    if isinstance(value, Enum):
-        return value.value
-    if isinstance(value, (datetime, Path)):
-        return value.isoformat() if isinstance(value, datetime) else str(value)
-    if hasattr(value, "tolist") and not isinstance(value, (str, bytes)):  # numpy
-        return _jsonable(value.tolist(), where)
-    if isinstance(value, bool) or value is None or isinstance(value, (str, int)):
-        return value
-    if isinstance(value, float):
-        if math.isfinite(value):
-            return value
-        logger.warning("%s is %r: stored as null (JSON has no NaN/inf)", where, value)
-        return None
-    raise InputError(
-        where,
-        f"cannot be stored as JSON (type {type(value).__name__})",
-        fix="store numbers, strings, lists or dicts",
-    )
-
-
-def _clean_point(point: PointResult) -> PointResult:
-    """Refuse non-finite numbers in a point; return a copy with JSON-able notes."""
-    if not isinstance(point, PointResult):
-        raise InputError("point", f"must be a PointResult (got {type(point).__name__})")
-    numbers = {
-        name: getattr(point, name)
-        for name in (
-            "freq_hz",
-            "nf_db",
-            "te_k",
-            "gain_db",
-            "y_db",
-            "u_nf_db",
-            "u_te_k",
-            "u_gain_db",
-            "floor_margin_db",
-            "floor_correction_db",
-            "enr_db",
-            "source_temperature_k",
-            "instrument_time_s",
-        )
-    }
-    numbers.update({f"densities_w_per_hz.{k}": v for k, v in point.densities_w_per_hz.items()})
-    for name, value in numbers.items():
-        if value is not None and not math.isfinite(value):
-            raise InputError(
-                f"point.{name}",
-                f"is {value!r} at {point.freq_hz!r} Hz",
-                fix="store only finite results; flag or skip the point instead",
-            )
-    notes = _jsonable(point.notes, "point.notes")
-    return point.model_copy(update={"notes": notes})
-
-
-def _fsync_dir(folder: Path) -> None:
-    """Make a rename durable (POSIX); a no-op where directories cannot be opened."""
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
-
-
-def write_atomic(path: Path, data: str) -> None:
-    """Write ``data`` (UTF-8) so that ``path`` holds either the old or the new content."""
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as handle:
-            handle.write(data)
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.chmod(tmp, 0o644)  # mkstemp makes 0600; results are meant to be shared
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(OSError):
-            os.unlink(tmp)
-        raise
-    _fsync_dir(path.parent)
-
-
-def _sorted_points(points: Iterable[PointResult]) -> list[PointResult]:
-    return sorted(points, key=lambda p: p.freq_hz)
-
-
-def _sorted_budgets(budgets: Iterable[dict[str, Any]]) -> list[dict[str, Any]]:
-    return sorted(budgets, key=lambda b: b.get("freq_hz", math.inf))
-
-
-# ----------------------------------------------------------------------------- journal
-
-
-class _Journal:
-    """What a journal holds, parsed tolerantly. ``valid_bytes`` ends after the last good line."""
-
-    def __init__(self) -> None:
-        self.points: list[PointResult] = []
-        self.budgets: list[dict[str, Any]] = []
-        self.calibrations: list[dict[str, Any]] = []
-        self.warnings: list[str] = []
-        self.done_freqs_hz: set[float] = set()
-        self.valid_bytes = 0
-        self.needs_newline = False
-
-
-def _parse_entry(line: bytes, where: str, journal: _Journal) -> None:
-    entry = json.loads(line)
-    kind = entry.get("kind") if isinstance(entry, dict) else None
-    if kind == "point":
-        point = _clean_point(PointResult.model_validate(entry["point"]))  # finite, as written
-        if point.freq_hz in journal.done_freqs_hz:
-            text = f"{where}: duplicate point at {point.freq_hz!r} Hz ignored (first one kept)"
-            logger.warning(text)
-            journal.warnings.append(text)
-            return
-        journal.points.append(point)
-        journal.done_freqs_hz.add(point.freq_hz)
-        if entry.get("budget") is not None:
-            journal.budgets.append(entry["budget"])
-    elif kind == "calibration":
-        journal.calibrations.append(entry["calibration"])
-    else:
-        raise ValueError(f"unknown journal entry kind {kind!r}")
-
-
-def _read_journal(path: Path) -> _Journal:
-    """Parse ``points.jsonl``. A torn last line is ignored with a warning, never raised.
-
-    Appends are single writes ending in a newline, so only the unterminated final piece of the
-    file can be torn; an unreadable line elsewhere is skipped with a warning and kept on disk.
-    """
-    journal = _Journal()
-    if not path.exists():
-        return journal
-    data = path.read_bytes()
-    pieces = data.split(b"\n")
-    last = len(pieces) - 1
-    for index, piece in enumerate(pieces):
-        if not piece.strip():
-            continue
-        where = f"{path.name} line {index + 1}"
-        try:
-            _parse_entry(piece, where, journal)
-        except (ValueError, KeyError, TypeError, ValidationError) as exc:
-            if index == last:
-                text = (
-                    f"{where}: incomplete last entry ({len(piece)} bytes) ignored; "
-                    "the run was probably killed while writing it"
-                )
-            else:
-                text = f"{where}: unreadable entry skipped ({type(exc).__name__}: {exc})"
-            logger.warning(text)
-            journal.warnings.append(text)
-            if index == last:
-                journal.valid_bytes = len(data) - len(piece)
-                return journal
-            continue
-        journal.needs_newline = index == last  # complete JSON whose newline never reached disk
-    journal.valid_bytes = len(data)
-    return journal
-
-
-# ----------------------------------------------------------------------------- locking
-
-
-class _FolderLock:
-    """Advisory, process-wide lock on a run folder (POSIX ``flock``; none elsewhere).
-
-    The OS releases it when the process dies, so a killed run never stays locked.
-    """
-
-    def __init__(self, path: Path) -> None:
-        self.path = path
-        self._fd: int | None = None
-
-    def acquire(self) -> None:
-        try:
-            import fcntl
-        except ImportError:  # pragma: no cover - Windows: no advisory lock
-            return
-        fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except OSError:
-            os.close(fd)
-            busy = InputError(
-                "folder",
-                f"{self.path.parent} is in use by another running measurement",
-                fix="wait for it to end, or pick another folder",
-            )
-            raise busy from None
-        self._fd = fd
-
-    def release(self) -> None:
-        if self._fd is not None:
-            os.close(self._fd)
-            self._fd = None
-
-    @staticmethod
-    def is_held(path: Path) -> bool:
-        """True when a live process holds the lock on ``path``."""
-        try:
-            import fcntl
-        except ImportError:  # pragma: no cover
-            return False
-        if not path.exists():
-            return False
-        fd = os.open(path, os.O_RDONLY)
-        try:
-            fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
-        except OSError:
-            return True
-        finally:
-            os.close(fd)
-        return False
-
-
-LOCK_FILE = ".lock"
-# O_BINARY (Windows only) keeps newlines as written; O_APPEND makes each write land at the end.
-_APPEND_FLAGS = os.O_WRONLY | os.O_APPEND | os.O_CREAT | getattr(os, "O_BINARY", 0)
 
 
 # ----------------------------------------------------------------------------- writer
@@ -759,28 +401,6 @@ class RunWriter:
             self._close_files()
 
 
-def _repair_journal(path: Path, journal: _Journal) -> None:
-    """Before appending again: cut a torn last line off, or end a complete one with a newline."""
-    if not path.exists():
-        return
-    size = path.stat().st_size
-    if size > journal.valid_bytes:
-        logger.warning(
-            "%s: removing %d bytes of an incomplete last entry before resuming",
-            path.name,
-            size - journal.valid_bytes,
-        )
-        with open(path, "r+b") as handle:
-            handle.truncate(journal.valid_bytes)
-            handle.flush()
-            os.fsync(handle.fileno())
-    elif journal.needs_newline:
-        with open(path, "ab") as handle:
-            handle.write(b"\n")
-            handle.flush()
-            os.fsync(handle.fileno())
-
-
 # ----------------------------------------------------------------------------- reading
 
 
@@ -810,34 +430,51 @@ def _read_info(folder: Path) -> RunInfo:
             f"{folder} holds no {RUN_INFO_FILE}",
             fix="pass a run folder written by noisebench",
         )
-    try:
-        return RunInfo.model_validate_json(path.read_text(encoding="utf-8"))
-    except ValidationError as exc:
-        raise InputError(
-            f"{RUN_INFO_FILE}",
-            f"is not a valid run description "
-            f"({exc.error_count()} problems, first: {exc.errors()[0]['msg']})",
-            fix="restore the file from a backup",
-        ) from None
+    return read_model(
+        path,
+        RunInfo,
+        fix=f"restore {RUN_INFO_FILE} from a backup; the journal {JOURNAL_FILE} was not touched",
+    )
 
 
 def load_run(folder: Path) -> RunRecord:
     """Load a run: from ``results.json`` when finished, else rebuilt from the journal.
 
     A run rebuilt from the journal reports status ``running`` if a live process still holds
-    the folder, otherwise ``interrupted``; ``record.warnings`` says so.
+    the folder, otherwise ``interrupted``; ``record.warnings`` says so. A damaged file is
+    worked around where an intact one holds the same data (``run.json`` by ``results.json``,
+    ``results.json`` by the journal), with a warning naming the file, line and damage; the
+    damaged file is left as it is.
     """
     folder = Path(folder)
-    info = _read_info(folder)
+    try:
+        info = _read_info(folder)
+    except RunFileError as damaged:
+        return _record_without_info(folder, damaged)
     results = folder / RESULTS_JSON_FILE
     if info.status != "running" and results.exists():
         try:
-            return RunRecord.model_validate_json(results.read_text(encoding="utf-8"))
-        except ValidationError as exc:
-            logger.warning(
-                "%s unreadable (%s); rebuilding from the journal", results, exc.errors()[0]["msg"]
-            )
+            return read_model(results, RunRecord, fix="rebuilt from the journal")
+        except RunFileError as exc:
+            warning = f"{exc}; the points were read from the journal {JOURNAL_FILE} instead"
+            logger.warning(warning)
+            record = _record_from_journal(folder, info)
+            return record.model_copy(update={"warnings": [warning, *record.warnings]})
     return _record_from_journal(folder, info)
+
+
+def _record_without_info(folder: Path, damaged: RunFileError) -> RunRecord:
+    """A run whose ``run.json`` is damaged: from ``results.json`` if that is intact."""
+    results = folder / RESULTS_JSON_FILE
+    if not results.exists():
+        raise damaged
+    try:
+        record = read_model(results, RunRecord, fix="restore it from a backup")
+    except RunFileError:
+        raise damaged from None
+    warning = f"{damaged}; the run description was taken from {RESULTS_JSON_FILE}"
+    logger.warning(warning)
+    return record.model_copy(update={"warnings": [warning, *record.warnings]})
 
 
 def _record_from_journal(folder: Path, info: RunInfo) -> RunRecord:
@@ -861,168 +498,6 @@ def _record_from_journal(folder: Path, info: RunInfo) -> RunRecord:
         calibrations=journal.calibrations,
         warnings=warnings,
     )
-
-
-# ----------------------------------------------------------------------------- outputs
-
-
-def write_results(record: RunRecord, folder: Path) -> tuple[Path, Path]:
-    """Write ``results.json`` (pydantic) and ``results.csv`` (csv module) atomically."""
-    folder = Path(folder)
-    json_path, csv_path = folder / RESULTS_JSON_FILE, folder / RESULTS_CSV_FILE
-    write_atomic(json_path, record.model_dump_json(indent=2))
-    write_atomic(csv_path, results_csv_text(record))
-    return json_path, csv_path
-
-
-def _cell(value: Any) -> str:
-    if value is None:
-        return ""
-    if isinstance(value, float):
-        return repr(value)
-    return str(value)
-
-
-def csv_columns(record: RunRecord) -> list[str]:
-    """The columns ``results.csv`` will have for ``record``."""
-    columns = list(CSV_COLUMNS)
-    if record.budgets:
-        columns += CSV_BUDGET_COLUMNS
-    if record.verdict and record.verdict.get("points"):
-        columns += CSV_VERDICT_COLUMNS
-    return columns
-
-
-def csv_rows(record: RunRecord) -> Iterator[dict[str, str]]:
-    """One dict of formatted cells per point, keys as :func:`csv_columns`."""
-    columns = csv_columns(record)
-    budgets, verdicts = record.budgets_by_freq(), record.verdicts_by_freq()
-    for point in _sorted_points(record.points):
-        row: dict[str, Any] = {name: getattr(point, name, None) for name in CSV_COLUMNS}
-        row["flags"] = ";".join(flag.value for flag in point.flags)
-        budget = budgets.get(point.freq_hz) or {}
-        row["U_nf_db"] = budget.get("U_expanded_db")
-        row["coverage_k"] = budget.get("k")
-        row["budget_method"] = budget.get("method")
-        verdict = verdicts.get(point.freq_hz) or {}
-        row["verdict"] = verdict.get("verdict")
-        limit = verdict.get("limit")
-        row["limit"] = json.dumps(limit) if isinstance(limit, (dict, list)) else limit
-        yield {name: _cell(row.get(name)) for name in columns}
-
-
-def results_csv_text(record: RunRecord) -> str:
-    """The content of ``results.csv``."""
-    buffer = io.StringIO()
-    writer = csv.DictWriter(buffer, fieldnames=csv_columns(record), lineterminator="\n")
-    writer.writeheader()
-    writer.writerows(csv_rows(record))
-    return buffer.getvalue()
-
-
-# ----------------------------------------------------------------------------- summary
-
-
-def _fmt(value: float | None, digits: int = 3, unit: str = "") -> str:
-    if value is None:
-        return "-"
-    return f"{value:.{digits}f}{unit}"
-
-
-def _fmt_freq(freq_hz: float) -> str:
-    for scale, unit in ((1e9, "GHz"), (1e6, "MHz"), (1e3, "kHz")):
-        if abs(freq_hz) >= scale:
-            return f"{freq_hz / scale:.6g} {unit}"
-    return f"{freq_hz:.6g} Hz"
-
-
-def nf_extremes(record: RunRecord) -> tuple[PointResult, PointResult] | None:
-    """The points with the lowest and highest NF, or ``None`` without points."""
-    if not record.points:
-        return None
-    return (min(record.points, key=lambda p: p.nf_db), max(record.points, key=lambda p: p.nf_db))
-
-
-def format_summary(record: RunRecord, *, table: bool = False) -> str:
-    """A plain-text summary of a run for terminals and logs (no colour, no Rich).
-
-    With ``table=True`` a per-point table follows the summary.
-    """
-    info = record.info
-    rows: list[tuple[str, str]] = [
-        (
-            "DUT",
-            f"{info.dut_id or '-'}    operator {info.operator or '-'}    "
-            f"station {info.station or '-'}",
-        ),
-        (
-            "started",
-            info.started_at.isoformat(timespec="seconds")
-            + (f"    ended {info.ended_at.isoformat(timespec='seconds')}" if info.ended_at else ""),
-        ),
-    ]
-    rows += [
-        (role.replace("_", " "), identity) for role, identity in sorted(info.identities.items())
-    ]
-    rows.append(
-        (
-            "points",
-            f"{len(record.points)}"
-            + (
-                f" ({_fmt_freq(record.points[0].freq_hz)}"
-                f" to {_fmt_freq(record.points[-1].freq_hz)})"
-                if record.points
-                else ""
-            ),
-        )
-    )
-    extremes = nf_extremes(record)
-    if extremes:
-        low, high = extremes
-        rows.append(
-            (
-                "NF",
-                f"min {low.nf_db:.3f} dB at {_fmt_freq(low.freq_hz)}, "
-                f"max {high.nf_db:.3f} dB at {_fmt_freq(high.freq_hz)}",
-            )
-        )
-        gains = [p.gain_db for p in record.points if p.gain_db is not None]
-        if gains:
-            rows.append(("gain", f"{min(gains):.3f} to {max(gains):.3f} dB"))
-        flagged = sum(1 for p in record.points if p.flags)
-        if flagged:
-            rows.append(("flagged", f"{flagged} of {len(record.points)} points"))
-    if record.verdict:
-        rows.append(("verdict", str(record.verdict.get("unit", "-")).upper()))
-    rows += [("warning", warning) for warning in record.warnings]
-    width = max(len(label) for label, _ in rows) + 2
-    lines = [
-        f"Run {info.run_id}: {info.method.value.replace('_', '-')} method, status {info.status}"
-    ]
-    lines += [f"  {label:<{width}}{text}" for label, text in rows]
-    if table and record.points:
-        lines.append("")
-        lines.extend(_summary_table(record))
-    return "\n".join(lines)
-
-
-def _summary_table(record: RunRecord) -> list[str]:
-    header = (
-        f"{'freq':>14} {'NF dB':>8} {'u dB':>7} {'U dB':>7} {'Te K':>9} "
-        f"{'gain dB':>8} {'verdict':>13}  flags"
-    )
-    rows = [header, "-" * len(header)]
-    budgets, verdicts = record.budgets_by_freq(), record.verdicts_by_freq()
-    for point in record.points:
-        budget = budgets.get(point.freq_hz) or {}
-        verdict = verdicts.get(point.freq_hz) or {}
-        rows.append(
-            f"{_fmt_freq(point.freq_hz):>14} {point.nf_db:>8.3f} {point.u_nf_db:>7.3f} "
-            f"{_fmt(budget.get('U_expanded_db')):>7} {point.te_k:>9.1f} "
-            f"{_fmt(point.gain_db):>8} {str(verdict.get('verdict', '-')):>13}  "
-            + ",".join(f.value for f in point.flags)
-        )
-    return rows
 
 
 __all__ = [

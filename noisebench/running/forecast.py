@@ -32,8 +32,8 @@ import numpy as np
 
 from noisebench.bench.acquisition import AcquisitionSettings, Detector, SweepMode
 from noisebench.errors import InputError, MeasurementError
+from noisebench.running.groups import PointGroup, plan_groups
 from noisebench.running.plan import Plan
-from noisebench.running.sequencer import PointGroup, plan_groups
 from noisebench.science.density import NoiseDensity
 from noisebench.science.filters import GAUSSIAN, frequency_power_correlation
 from noisebench.science.physics import BOLTZMANN_J_PER_K, T0_K
@@ -309,7 +309,7 @@ def _group_settings(plan: Plan, group: PointGroup, sim: Any) -> tuple[Acquisitio
 def forecast_plan(plan: Plan, *, sim: Any = None) -> PlanForecast:
     """Forecast every point of ``plan``. ``sim``: a SimulatedBench for ``sim://`` plans."""
     if sim is None and plan.is_simulated:
-        from noisebench.running.plan import parse_sim_address
+        from noisebench.sims.address import parse_sim_address
         from noisebench.sims.bench import SimulatedBench
 
         address = parse_sim_address(plan.bench.analyzer.resource)

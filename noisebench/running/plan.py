@@ -25,12 +25,16 @@ Layout (all sections but ``bench`` and ``sweep`` optional)::
     [output]       folder, plots, report
     [uncertainty]  budget inputs (noisebench.science.uncertainty)
     [limits]       pass/fail mask (noisebench.science.limits)
+
+This module is the schema (one pydantic model per section, kept together so that the whole plan
+reads in one place, hence its length) and the loader; the cross-field checks are in
+:mod:`noisebench.running.plan_checks`, the one-line problem texts in
+:mod:`noisebench.running.plan_errors`.
 """
 
 from __future__ import annotations
 
 import math
-import re
 import sys
 from dataclasses import dataclass
 from pathlib import Path
@@ -50,6 +54,7 @@ from pydantic import (
 
 from noisebench.bench.acquisition import AveragingScale, Detector, SweepMode
 from noisebench.errors import InputError
+from noisebench.running.plan_errors import PlanError, format_validation_error
 from noisebench.science.point import Method
 
 if sys.version_info >= (3, 11):
@@ -76,19 +81,6 @@ MAX_LOSS_DB = 100.0
 #: the smallest statistical target, dB: 1e-3 dB needs >= 2 (4.343 / 1e-3)^2 ~ 4e7 independent
 #: samples by the radiometer equation (far beyond max_averages); smaller is a typo
 MIN_TARGET_U_NF_DB = 1e-3
-
-
-class PlanError(InputError):
-    """A plan with one or more problems; ``problems`` holds one line per problem."""
-
-    def __init__(self, problems: list[str], *, source: str | None = None) -> None:
-        self.problems = list(problems)
-        self.source = source
-        where = f"{source}: " if source else ""
-        head = f"{where}{len(self.problems)} problem(s) in the plan"
-        super().__init__(
-            "plan", head + ": " + "; ".join(self.problems), fix="correct each key named above"
-        )
 
 
 # --------------------------------------------------------------------------- sections
@@ -643,100 +635,6 @@ class Plan(BaseModel):
 # --------------------------------------------------------------------------- loading
 
 
-_TYPE_TAGS = {"float", "int", "str", "bool", "none", "list", "dict"}
-
-
-def _is_branch_tag(part: Any) -> bool:
-    """pydantic adds the union member (``float``, ``literal['bench']``) to an error's location."""
-    return isinstance(part, str) and ("[" in part or part in _TYPE_TAGS)
-
-
-def format_location(loc: tuple[Any, ...]) -> str:
-    """('sweep', 'segments', 2, 'rbw_hz') -> 'sweep.segments[2].rbw_hz'."""
-    text = ""
-    for part in loc:
-        if isinstance(part, int):
-            text += f"[{part}]"
-        elif not _is_branch_tag(part):
-            text += ("." if text else "") + str(part)
-    return text or "plan"
-
-
-def _join_field(path: str, field: str) -> str:
-    """Attach an InputError's own field to the location pydantic reported."""
-    if path == "plan":
-        return field
-    last = re.split(r"[.\[]", path.rsplit(".", 1)[-1])[0]
-    if field == last or field.startswith(last + "["):
-        head = path.rsplit(".", 1)[0] if "." in path else ""
-        return f"{head}.{field}" if head else field
-    return f"{path}.{field}"
-
-
-def format_validation_error(exc: ValidationError) -> list[str]:
-    """One line per problem: ``<key path>: <message>``."""
-    lines: list[str] = []
-    branches: dict[str, list[str]] = {}
-    for err in exc.errors(include_url=False):
-        loc = tuple(err.get("loc", ()))
-        path = format_location(loc)
-        cause = (err.get("ctx") or {}).get("error")
-        if isinstance(cause, InputError):
-            text = cause.message
-            prefix = f"{cause.field}: "
-            text = text[len(prefix) :] if text.startswith(prefix) else text
-            line = f"{_join_field(path, cause.field)}: {text}"
-        elif any(_is_branch_tag(p) for p in loc):
-            tag = next(p for p in reversed(loc) if _is_branch_tag(p))
-            branches.setdefault(path, [repr(err.get("input"))]).append(_branch_name(tag))
-            line = path  # placeholder, merged below
-        else:
-            line = f"{path}: {_plain_message(err)}"
-        if line not in lines:
-            lines.append(line)
-    for path, (got, *names) in branches.items():
-        expected = " or ".join(dict.fromkeys(names))
-        lines[lines.index(path)] = f"{path}: must be {expected} (got {got})"
-    return lines
-
-
-def _branch_name(tag: str) -> str:
-    if tag.startswith("literal["):
-        return tag[len("literal[") : -1].replace(",", " or")
-    return {
-        "float": "a number",
-        "int": "an integer",
-        "str": "a text (file name)",
-        "bool": "true or false",
-    }.get(tag, tag)
-
-
-def _plain_message(err: dict[str, Any]) -> str:
-    kind = err.get("type", "")
-    ctx = err.get("ctx") or {}
-    if kind == "extra_forbidden":
-        return "unknown key (check its spelling and section)"
-    if kind == "missing":
-        return "is required"
-    if kind in ("greater_than", "greater_than_equal", "less_than", "less_than_equal"):
-        op = {
-            "greater_than": ">",
-            "greater_than_equal": ">=",
-            "less_than": "<",
-            "less_than_equal": "<=",
-        }[kind]
-        bound = next(iter(ctx.values()), "?")
-        return f"must be {op} {bound} (got {err.get('input')!r})"
-    if kind in ("literal_error", "enum"):
-        return f"must be one of {ctx.get('expected', '?')} (got {err.get('input')!r})"
-    msg = str(err.get("msg", "invalid"))
-    # pydantic prefixes a ValueError raised in a validator with "Value error, "
-    for prefix in ("Value error, ", "Assertion failed, "):
-        if msg.startswith(prefix):
-            msg = msg[len(prefix) :]
-    return msg[0].lower() + msg[1:] if msg else "invalid"
-
-
 def parse_plan(
     data: dict[str, Any],
     *,
@@ -749,6 +647,8 @@ def parse_plan(
         plan = Plan.model_validate(data)
     except ValidationError as exc:
         raise PlanError(format_validation_error(exc), source=source) from None
+    from noisebench.running.plan_checks import _resolve_profiles, cross_check
+
     plan.with_base_dir(base_dir or Path.cwd())
     _resolve_profiles(plan)
     problems = cross_check(plan, check_files=check_files)
@@ -784,362 +684,3 @@ def validate_plan_file(path: str | Path) -> list[str]:
     except OSError as exc:
         return [f"{path}: cannot read ({exc.strerror or exc})"]
     return []
-
-
-# --------------------------------------------------------------------------- cross-field checks
-
-
-def cross_check(plan: Plan, *, check_files: bool = True) -> list[str]:
-    """Checks that need more than one field (and the files the plan names)."""
-    problems: list[str] = []
-    problems += _check_segment_policies(plan)
-    problems += _check_duplicates(plan)
-    problems += _check_method_needs(plan)
-    problems += _check_bench(plan)
-    if check_files:
-        problems += _check_enr(plan)
-        problems += _check_tables(plan)
-        problems += _check_profiles(plan)
-    return problems
-
-
-def _profile_sections(plan: Plan) -> list[tuple[str, Any]]:
-    """(key, section) of each instrument whose profile a real bench will load."""
-    bench = plan.bench
-    if bench.analyzer.resource.startswith("sim://"):
-        return []
-    out: list[tuple[str, Any]] = [("bench.analyzer", bench.analyzer)]
-    if bench.generator is not None:
-        out.append(("bench.generator", bench.generator))
-    if bench.noise_source.drive == "supply":
-        out.append(("bench.noise_source", bench.noise_source))
-    return out
-
-
-def _resolve_profiles(plan: Plan) -> None:
-    """A profile file next to the plan is found from any working folder (relative file names
-    are relative to the plan); packaged names and other paths are left as given."""
-    for _key, section in _profile_sections(plan):
-        candidate = plan.resolve_path(section.profile)
-        if candidate.is_file():
-            section.profile = str(candidate)
-
-
-def _check_profiles(plan: Plan) -> list[str]:
-    """Each instrument profile must load (checked here, not when the instrument is opened)."""
-    try:
-        from noisebench.drivers.profile import load_profile
-    except ImportError:  # pragma: no cover - drivers not installed
-        return []
-    problems = []
-    for key, section in _profile_sections(plan):
-        try:
-            load_profile(section.profile)
-        except InputError as exc:
-            problems.append(f"{key}.profile: {_one_line(exc.message).removeprefix('profile: ')}")
-    return problems
-
-
-def _one_line(text: str) -> str:
-    return " ".join(str(text).split())
-
-
-def _check_segment_policies(plan: Plan) -> list[str]:
-    """Each segment's overrides merged with the plan defaults must still be consistent."""
-    problems = []
-    for i in range(len(plan.sweep.segments)):
-        try:
-            plan.segment_policy(i)
-        except ValidationError as exc:
-            problems += [f"sweep.segments[{i}].{line}" for line in format_validation_error(exc)]
-    return problems
-
-
-def _check_duplicates(plan: Plan) -> list[str]:
-    seen: dict[float, str] = {}
-    problems = []
-    for key, freqs in _frequency_sources(plan):
-        for f in freqs:
-            rounded = round(float(f), 3)
-            if rounded in seen and seen[rounded] != key:
-                problems.append(f"{key}: {f:g} Hz is also in {seen[rounded]} (each frequency once)")
-            elif rounded in seen:
-                problems.append(f"{key}: {f:g} Hz is listed twice")
-            seen[rounded] = key
-    return problems
-
-
-def _frequency_sources(plan: Plan) -> list[tuple[str, np.ndarray]]:
-    out = []
-    if plan.sweep.freqs_hz is not None:
-        out.append(("sweep.freqs_hz", np.asarray(plan.sweep.freqs_hz)))
-    for i, seg in enumerate(plan.sweep.segments):
-        out.append((f"sweep.segments[{i}]", seg.frequencies_hz()))
-    return out
-
-
-def _check_method_needs(plan: Plan) -> list[str]:
-    problems = []
-    if plan.method is Method.GAIN:
-        if plan.gain is None:
-            problems.append(
-                "gain: the gain method needs the DUT gain "
-                '([gain] source = "measure", "file" or "constant")'
-            )
-        elif plan.gain.source == "measure" and plan.bench.generator is None:
-            problems.append(
-                'bench.generator: gain source "measure" needs a generator '
-                '(or use source = "file" / "constant")'
-            )
-    if plan.method is Method.Y_FACTOR and plan.bench.noise_source.drive == "none":
-        problems.append(
-            "bench.noise_source.drive: the Y-factor method needs a noise source "
-            '(drive = "none" is for the gain method)'
-        )
-    return problems
-
-
-def _check_bench(plan: Plan) -> list[str]:
-    problems = []
-    analyzer_sim = plan.bench.analyzer.resource.startswith("sim://")
-    if analyzer_sim:
-        try:
-            address = parse_sim_address(plan.bench.analyzer.resource)
-        except InputError as exc:
-            problems.append(f"bench.analyzer.resource: {exc.message.split(': ', 1)[-1]}")
-        else:
-            scenario_problems = _check_scenario(address.scenario)
-            problems += scenario_problems or _check_sim_range(plan, address.scenario)
-    others = [
-        (
-            "bench.generator.resource",
-            plan.bench.generator.resource if plan.bench.generator else None,
-        ),
-        ("bench.noise_source.resource", plan.bench.noise_source.resource),
-    ]
-    for key, res in others:
-        if res is None or res == "sim":
-            if res == "sim" and not analyzer_sim:
-                problems.append(
-                    f'{key}: "sim" means the simulated bench, but the analyzer is '
-                    f"{plan.bench.analyzer.resource!r}"
-                )
-            continue
-        if analyzer_sim != res.startswith("sim://"):
-            problems.append(
-                f"{key}: {res!r} cannot be mixed with the analyzer "
-                f"{plan.bench.analyzer.resource!r} (one bench, simulated or real)"
-            )
-    return problems
-
-
-def _check_scenario(name: str) -> list[str]:
-    """A ``sim://`` scenario must exist (packaged name or .toml path), as the run will need."""
-    try:
-        from noisebench.sims.scenario import SCENARIO_SUFFIX, available_scenarios
-    except ImportError:  # pragma: no cover - simulator not installed
-        return []
-    names = available_scenarios()
-    if name in names or (Path(name).suffix == SCENARIO_SUFFIX and Path(name).is_file()):
-        return []
-    return [
-        f"bench.analyzer.resource: no scenario {name!r} (use one of {names} "
-        f"or a path to a {SCENARIO_SUFFIX} file)"
-    ]
-
-
-def _check_sim_range(plan: Plan, scenario: str) -> list[str]:
-    """Every point's span must lie within the simulated analyzer's frequency range, so a
-    point the analyzer cannot tune to is refused now, not after earlier points were measured."""
-    try:
-        from noisebench.sims.scenario import load_scenario
-
-        spec = load_scenario(scenario).analyzer
-    except (ImportError, InputError):  # reported by _check_scenario / at run time
-        return []
-    lo, hi = spec.min_freq_hz, spec.max_freq_hz
-    try:
-        points = plan.points()
-    except (ValidationError, InputError):  # a bad segment policy: reported by its own check
-        return []
-    bad = [
-        p.freq_hz
-        for p in points
-        if p.freq_hz - p.policy.span_hz / 2 < lo or p.freq_hz + p.policy.span_hz / 2 > hi
-    ]
-    if not bad:
-        return []
-    shown = ", ".join(f"{f:.6g}" for f in bad[:3]) + (" ..." if len(bad) > 3 else "")
-    return [
-        f"sweep: {len(bad)} point(s) ({shown} Hz) with their span fall outside the "
-        f"simulated analyzer's range {lo:.6g}..{hi:.6g} Hz (move them inside or narrow "
-        "span_hz)"
-    ]
-
-
-def _missing_file(key: str, path: Path) -> str:
-    if path.is_dir():
-        return f"{key}: {str(path)!r} is a folder, not a file (name the file itself)"
-    return f"{key}: file {str(path)!r} not found"
-
-
-def _check_enr(plan: Plan) -> list[str]:
-    if plan.method is not Method.Y_FACTOR:
-        return []
-    if plan.enr.table is None:
-        if plan.is_simulated:
-            return []
-        return [
-            "enr.table: the Y-factor method needs the noise source's ENR table "
-            '(e.g. table = "enr_ns1234.csv")'
-        ]
-    path = plan.resolve_path(plan.enr.table)
-    if not path.is_file():
-        return [_missing_file("enr.table", path)]
-    try:
-        from noisebench.science.enr import EnrTable
-
-        table = EnrTable.from_csv(path)
-    except ImportError:  # pragma: no cover - ENR module not yet in the tree
-        return []
-    except InputError as exc:
-        return [f"enr.table: {exc.message}"]
-    if table.range_hz is None:  # a flat table covers every frequency
-        return []
-    return _coverage_problems(
-        "enr.table",
-        path.name,
-        np.asarray(table.freq_hz, float),
-        plan,
-        allow_clamp=plan.enr.extrapolate == "clamp",
-    )
-
-
-def _coverage_problems(
-    key: str, name: str, table_freq_hz: np.ndarray, plan: Plan, *, allow_clamp: bool
-) -> list[str]:
-    freqs = plan.freqs_hz()
-    lo, hi = float(np.min(table_freq_hz)), float(np.max(table_freq_hz))
-    outside = freqs[(freqs < lo * (1 - 1e-12)) | (freqs > hi * (1 + 1e-12))]
-    if outside.size == 0 or allow_clamp:
-        return []
-    fix = (
-        'narrow the sweep or allow extrapolate = "clamp"'
-        if key == "enr.table"
-        else "narrow the sweep or extend the table"
-    )
-    return [
-        f"{key}: {name} covers {lo:g}-{hi:g} Hz but the sweep has {outside.size} point(s) "
-        f"outside it (first {outside[0]:g} Hz){_unit_hint(freqs, lo, hi)}; {fix}"
-    ]
-
-
-def _unit_hint(freqs_hz: np.ndarray, lo_hz: float, hi_hz: float) -> str:
-    """A hint when the sweep or the table would fit if one of them were read in kHz/MHz/GHz."""
-
-    def inside(values: np.ndarray, low: float, high: float) -> bool:
-        return bool(np.all((values >= low * (1 - 1e-9)) & (values <= high * (1 + 1e-9))))
-
-    for unit, scale in (("kHz", 1e3), ("MHz", 1e6), ("GHz", 1e9)):
-        if inside(freqs_hz * scale, lo_hz, hi_hz):
-            return f" (the sweep looks like {unit}: plan frequencies are in Hz)"
-        if inside(freqs_hz, lo_hz * scale, hi_hz * scale):
-            return f" (the table looks like {unit}: name its column freq_{unit.lower()})"
-    return ""
-
-
-def _check_tables(plan: Plan) -> list[str]:
-    problems = []
-    items = [
-        ("corrections.input_loss", plan.corrections.input_loss),
-        ("corrections.output_loss", plan.corrections.output_loss),
-    ]
-    if plan.gain is not None and plan.gain.source == "file" and plan.gain.file:
-        items.append(("gain.file", plan.gain.file))
-    for key, value in items:
-        if not isinstance(value, str):
-            continue
-        path = plan.resolve_path(value)
-        if not path.is_file():
-            problems.append(_missing_file(key, path))
-            continue
-        try:
-            from noisebench.science.gain_files import load_gain_table
-
-            table = load_gain_table(path)
-        except ImportError:  # pragma: no cover
-            continue
-        except (InputError, OSError, ValueError) as exc:
-            problems.append(f"{key}: {getattr(exc, 'message', exc)}")
-            continue
-        coverage = (
-            []
-            if table.range_hz is None
-            else _coverage_problems(
-                key, path.name, np.asarray(table.freq_hz, float), plan, allow_clamp=False
-            )
-        )
-        problems += coverage
-        if key.startswith("corrections.") and not coverage:
-            problems += _gain_in_loss_table(key, value, table, plan)
-    return problems
-
-
-def _gain_in_loss_table(key: str, name: str, table: Any, plan: Plan) -> list[str]:
-    """A loss table must not give gain at a sweep frequency (the run would refuse it there;
-    the same 1e-3 dB tolerance as :mod:`noisebench.running.corrections`)."""
-    freqs = plan.freqs_hz()
-    loss_db = np.asarray(table.at(freqs).loss_db, dtype=float) * np.ones_like(freqs)
-    bad = np.flatnonzero(loss_db < -1e-3)
-    if bad.size == 0:
-        return []
-    i = int(bad[0])
-    return [
-        f"{key}: {name} gives a gain of {-loss_db[i]:.3f} dB at {freqs[i]:.6g} Hz, not a "
-        "loss (give loss_db >= 0, or a cable's |S21| (<= 0 dB))"
-    ]
-
-
-# --------------------------------------------------------------------------- addresses
-
-
-@dataclass(frozen=True)
-class SimAddress:
-    """A parsed ``sim://<scenario>?seed=N`` address."""
-
-    scenario: str
-    seed: int = 0
-
-
-def parse_sim_address(resource: str) -> SimAddress:
-    """Parse ``sim://<scenario>[?seed=N]``; raise InputError naming what is wrong."""
-    from urllib.parse import parse_qs, urlsplit
-
-    parts = urlsplit(resource)
-    if parts.scheme != "sim":
-        raise InputError("resource", f"{resource!r} is not a sim:// address")
-    scenario = (parts.netloc + parts.path).strip("/")
-    if not scenario:
-        raise InputError(
-            "resource", f"{resource!r} names no scenario", fix="e.g. sim://demo-lna?seed=1"
-        )
-    query = parse_qs(parts.query, keep_blank_values=True)
-    unknown = sorted(set(query) - {"seed"})
-    if unknown:
-        raise InputError(
-            "resource",
-            f"unknown option {unknown[0]!r} in {resource!r}",
-            fix="the only option is seed=N",
-        )
-    seed_text = query.get("seed", ["0"])[-1]
-    try:
-        seed = int(seed_text)
-    except ValueError:
-        raise InputError(
-            "resource",
-            f"seed {seed_text!r} in {resource!r} is not an integer",
-            fix="e.g. sim://demo-lna?seed=1",
-        ) from None
-    if seed < 0:
-        raise InputError("resource", f"seed {seed} must be >= 0")
-    return SimAddress(scenario, seed)

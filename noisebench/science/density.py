@@ -14,9 +14,10 @@ class NoiseDensity(BaseModel):
     ``independent_samples`` is the effective number of independent power samples behind it.
     ``scatter_ratio`` is the observed scatter in the trace over the scatter the statistics
     predict (about 1 for clean Gaussian noise; well above 1 means drift or interference).
+    Every number must be finite (the one non-finite guard for both methods).
     """
 
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(extra="forbid", allow_inf_nan=False)
 
     freq_hz: float = Field(gt=0)
     density_w_per_hz: float = Field(gt=0)

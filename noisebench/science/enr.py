@@ -55,6 +55,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_valida
 from noisebench.errors import InputError
 from noisebench.science.physics import FloatOrArray
 from noisebench.science.tables import read_table_text
+from noisebench.user_files import MAX_TABLE_ROWS, list_problems
 
 logger = logging.getLogger(__name__)
 
@@ -401,6 +402,14 @@ def _parse(text: str, label: str) -> tuple[EnrTable | None, list[tuple[str, str]
             header_line = line_no
             problems += header_problems
             continue
+        if len(rows) >= MAX_TABLE_ROWS:
+            return None, [
+                (
+                    f"{label} line {line_no}",
+                    f"the table has more than {MAX_TABLE_ROWS} rows, the limit for an ENR "
+                    "table (thin it out: an ENR table needs far fewer points)",
+                )
+            ]
         fields = [c.strip() for c in line.split(",")]
         if len(fields) != len(header):
             problems.append(
@@ -461,10 +470,12 @@ def _table_from_rows(
                 "column freq_mhz or freq_ghz",
             )
         )
+    reported = {p[0] for p in problems}  # a set: linear in the number of rows
     for i, fld, msg in _column_problems(freq, enr, u):
         where = f"{label} line {line_of[i]}, {fld}" if i >= 0 else f"{label}, {fld}"
-        if not any(p[0] == where for p in problems):  # NaN cells were reported already
+        if where not in reported:  # NaN cells were reported already
             problems.append((where, msg))
+            reported.add(where)
     if problems:
         return None
     if u is not None:
@@ -484,4 +495,4 @@ def validate_enr_file(path: str | Path) -> list[str]:
     except InputError as exc:
         return [str(exc)]
     _, problems = _parse(text, label)
-    return [f"{field}: {message}" for field, message in problems]
+    return list_problems([f"{field}: {message}" for field, message in problems])

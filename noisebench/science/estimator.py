@@ -43,13 +43,14 @@ uncertainty comes from this observed scatter alone.
 
 from __future__ import annotations
 
+import functools
 import logging
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage, signal, special, stats
+from scipy import ndimage, optimize, signal, special, stats
 
 from noisebench.bench.acquisition import (
     AcquisitionSettings,
@@ -68,6 +69,7 @@ from noisebench.science.filters import (
     response_halfwidth_ratio,
     time_power_correlation,
 )
+from noisebench.science.plausibility import check_trace_values
 
 logger = logging.getLogger(__name__)
 
@@ -271,6 +273,8 @@ def _prepare(trace: Trace, *, reject_spurs: bool, threshold_sigma: float) -> _Pr
     excluded = np.zeros(power.size, dtype=bool)
     spurs = np.empty(0)
     widths = np.empty(0)
+    if rel_var is not None:
+        _check_scatter_state(trace, power, rel_var, kernel, model)
     if reject_spurs and not zero_span and power.size >= MIN_SPUR_SEARCH_POINTS:
         search_var = rel_var if rel_var is not None else _robust_relative_variance(power)
         excluded, spurs, widths = _find_spurs(trace, power, search_var, kernel, threshold_sigma)
@@ -292,24 +296,12 @@ def _prepare(trace: Trace, *, reject_spurs: bool, threshold_sigma: float) -> _Pr
 def _linear_power(trace: Trace) -> tuple[np.ndarray, float]:
     """Points in W (per RBW) or W/Hz, and the factor that turns them into W/Hz."""
     v = trace.values
-    if not np.all(np.isfinite(v)):
-        bad = int(np.flatnonzero(~np.isfinite(v))[0])
-        raise InputError(
-            "trace.values",
-            f"point {bad} is not finite ({v[bad]!r})",
-            fix="discard the trace; the instrument returned invalid data",
-        )
     unit = trace.unit
-    if unit in (TraceUnit.DBM, TraceUnit.DBM_PER_HZ):
+    logarithmic = unit in (TraceUnit.DBM, TraceUnit.DBM_PER_HZ)
+    check_trace_values(v, logarithmic=logarithmic, freq_hz=trace.freq_hz)
+    if logarithmic:
         power = 10.0 ** (v / 10.0) * 1e-3
     else:
-        if np.any(v <= 0):
-            bad = int(np.flatnonzero(v <= 0)[0])
-            raise InputError(
-                "trace.values",
-                f"point {bad} is {v[bad]!r} {unit.value}; noise power must be > 0",
-                fix="check the trace unit and the data",
-            )
         power = v.astype(float)
     density_unit = unit in (TraceUnit.DBM_PER_HZ, TraceUnit.W_PER_HZ)
     return power, 1.0 if density_unit else 1.0 / trace.settings.enbw_hz
@@ -383,6 +375,99 @@ def _window_time_kernel(s: AcquisitionSettings, dt: float, max_lag: int) -> np.n
     return np.append(out, 0.0)
 
 
+# --- scatter state: does the trace scatter as its settings say? -------------------------------
+
+#: false-alarm probability of each scatter-state test on clean noise (per trace)
+SCATTER_STATE_FALSE_ALARM = 1e-6
+#: the scatter-state tests need this many independent differences to say anything
+SCATTER_STATE_MIN_DOF = 3.0
+#: a trace scattering more than this many times (standard deviation) what its averages predict
+#: is refused even when its statistics would allow a smaller factor (robust scale, spurs kept)
+SCATTER_STATE_MAX_RATIO = 3.0
+
+
+@dataclass(frozen=True)
+class ScatterState:
+    """Observed over predicted point scatter of a whole trace, from differences at one lag.
+
+    ``ratio``: root-mean-square ratio (1 for clean noise); ``robust_ratio``: the same from the
+    median absolute difference (insensitive to spurs; reads about 0.73 for single-sample
+    exponential points and 1 for Gaussian ones); ``dof``: effective degrees of freedom of
+    ``ratio``; ``low_limit``: the ratio below which clean noise falls with probability
+    ``SCATTER_STATE_FALSE_ALARM``; ``high_limit`` likewise for ``robust_ratio`` (at least
+    ``SCATTER_STATE_MAX_RATIO``).
+    """
+
+    ratio: float
+    robust_ratio: float
+    dof: float
+    low_limit: float
+    high_limit: float
+
+
+def scatter_state(
+    power: np.ndarray, rel_var: float, kernel: np.ndarray, excess_kurtosis: float
+) -> ScatterState | None:
+    """Scatter of a trace's points about their neighbours against the prediction ``rel_var``.
+
+    Differences ``d_i = p_(i+L) - p_i`` at the first lag ``L`` where the point correlation
+    ``rho`` falls to 0.5 or below remove any slope or ripple slower than ``L`` points (a DUT's
+    gain slope is not noise) and have ``E[d^2] = 2 (1 - rho_L) r m^2`` (``r`` the relative
+    variance of a point, ``m`` the mean level; a slope only raises the ratio, so the
+    too-little test stays safe). Degrees of freedom: ``2 N / (k + 3)`` for ``N`` independent
+    bins (``n / (2 sum(rho) - 1)``) and the points' excess kurtosis ``k`` (successive
+    differences share a point; derived from the fourth moments). None when the trace is too
+    short to tell.
+    """
+    n = power.size
+    below = np.flatnonzero(kernel <= 0.5)
+    lag = int(below[0]) if below.size else int(kernel.size)
+    if lag >= n - 1:
+        return None
+    rho = float(kernel[lag]) if lag < kernel.size else 0.0
+    d = (power[lag:] - power[:-lag]) / float(np.mean(power))
+    expected = 2.0 * (1.0 - rho) * rel_var
+    corr_points = max(1.0, 2.0 * float(np.sum(kernel)) - 1.0)
+    independent = (n - lag) / max(corr_points, float(lag))
+    # sum of squared successive differences of N independent points with excess kurtosis k:
+    # relative variance (k + 3)/N (neighbouring differences share a point), so 2N/(k + 3) dof
+    dof = 2.0 * independent / (max(excess_kurtosis, 0.0) + 3.0)
+    if dof < SCATTER_STATE_MIN_DOF:
+        return None
+    ratio = math.sqrt(float(np.mean(d**2)) / expected)
+    mad = float(np.median(np.abs(d - np.median(d))))
+    robust = 1.4826 * mad / math.sqrt(expected)
+    low = math.sqrt(stats.chi2.ppf(SCATTER_STATE_FALSE_ALARM, dof) / dof)
+    high = max(SCATTER_STATE_MAX_RATIO, 1.0 + 8.0 / math.sqrt(dof))
+    return ScatterState(ratio=ratio, robust_ratio=robust, dof=dof, low_limit=low, high_limit=high)
+
+
+def _check_scatter_state(
+    trace: Trace, power: np.ndarray, rel_var: float, kernel: np.ndarray, model: PointModel
+) -> None:
+    """Refuse a trace whose scatter contradicts its settings, naming the likely cause."""
+    state = scatter_state(power, rel_var, kernel, model.excess_kurtosis)
+    if state is None:
+        return
+    s = trace.settings
+    said = f"averages={s.averages}, detector={s.detector.value}"
+    if state.ratio < state.low_limit:
+        raise MeasurementError(
+            f"the trace scatters only {state.ratio:.3g}x what its settings ({said}) predict for "
+            f"noise (clean noise stays above {state.low_limit:.2g}x): a frozen or held display, "
+            "a clipped or overranged input, or more averaging than the analyzer reported; check "
+            "that the trace is updating (clear/write), the reference level and attenuation, and "
+            "that the analyzer's averaging count matches the settings"
+        )
+    if state.robust_ratio > state.high_limit:
+        raise MeasurementError(
+            f"the trace scatters {state.robust_ratio:.3g}x more than its settings ({said}) "
+            "predict: the analyzer is probably not averaging as reported (trace averaging left "
+            "off or reset by a previous user, or a different average type); check the "
+            "averaging state and count on the instrument and in the profile"
+        )
+
+
 # --- spur search ------------------------------------------------------------------------------
 
 
@@ -397,6 +482,35 @@ def _robust_relative_variance(power: np.ndarray) -> float:
     return max((1.4826 * mad / med) ** 2, 1e-12)
 
 
+@functools.lru_cache(maxsize=256)
+def median_threshold_ratio(shape: float, bins: int, false_alarm: float) -> float:
+    """``t`` with P(X > t M) = ``false_alarm``: X a gamma(``shape``) point, M the median of
+    ``bins`` independent such points (the spur search's baseline).
+
+    The sample median's CDF value is Beta(k, bins + 1 - k) distributed with k = (bins + 1)/2
+    (order statistics; non-integer k interpolates for even counts), so
+    P(X > t M) = E_U[Q(a, a t F^-1(U))], integrated by Gauss-Legendre quadrature on the beta
+    quantiles and solved for t. Large ``bins`` gives the plain gamma quantile over the median.
+    """
+    a = float(shape)
+    k = (bins + 1) / 2.0
+    nodes, weights = np.polynomial.legendre.leggauss(96)
+    u = 0.5 * (nodes + 1.0)
+    median_cdf = stats.beta.ppf(u, k, bins + 1.0 - k)  # CDF value of the sample median
+    m = special.gammaincinv(a, median_cdf) / a  # the median itself, mean-1 units
+    w = 0.5 * weights
+
+    def excess(log_t: float) -> float:
+        return float(np.sum(w * special.gammaincc(a, a * math.exp(log_t) * m))) - false_alarm
+
+    median_1 = float(special.gammaincinv(a, 0.5) / a)
+    t_plain = float(special.gammainccinv(a, false_alarm) / a) / median_1
+    lo, hi = math.log(t_plain) - 1e-9, math.log(t_plain) + 1.0
+    while excess(hi) > 0:
+        hi += 1.0
+    return math.exp(optimize.brentq(excess, lo, hi, xtol=1e-10))
+
+
 def _find_spurs(
     trace: Trace, power: np.ndarray, rel_var: float, kernel: np.ndarray, threshold_sigma: float
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -407,12 +521,16 @@ def _find_spurs(
     spacing = _uniform_spacing(f)
     a = _gamma_shape(rel_var)
     median_ratio = float(special.gammaincinv(a, 0.5) / a)
-    tail_ratio = float(special.gammainccinv(a, stats.norm.sf(threshold_sigma)) / a)
     # running-median window: ~SPUR_BASELINE_BINS independent bins, so the baseline itself is
     # quiet (its relative noise ~ 1.25 sigma / sqrt(bins)); narrower only for long traces
     corr_points = max(1.0, 2.0 * float(np.sum(kernel)) - 1.0)
     window = int(min(n, max(101, SPUR_BASELINE_BINS * corr_points)))
     window += (window + 1) % 2  # odd
+    short = window >= n
+    # the threshold over the sample median that clean noise crosses with the design probability,
+    # the median's own scatter included (its window holds this many independent bins)
+    bins = max(1, round(min(window, n) / corr_points))
+    tail_ratio = median_ratio * median_threshold_ratio(a, bins, stats.norm.sf(threshold_sigma))
     # residual skirt allowed per point: a fraction of the relative resolution of the full trace
     skirt_level = SPUR_SKIRT_FRACTION * math.sqrt(rel_var / n)
     excluded = np.zeros(n, dtype=bool)
@@ -421,10 +539,10 @@ def _find_spurs(
     baseline = np.full(n, float(np.median(power)) / median_ratio)
     for _ in range(50):
         work = np.where(excluded, baseline * median_ratio, power)
-        if window >= n:
-            baseline = np.full(
-                n, float(np.median(work[~excluded] if np.any(~excluded) else work)) / median_ratio
-            )
+        if short:
+            # one median of all points, spurs included: a line moves it by one rank at most,
+            # while dropping excluded points would lower it and let the next noise peak cross
+            baseline = np.full(n, float(np.median(power)) / median_ratio)
         else:
             baseline = ndimage.median_filter(work, size=window, mode="mirror") / median_ratio
         hits = (power > tail_ratio * baseline) & ~excluded

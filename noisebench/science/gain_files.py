@@ -45,6 +45,7 @@ from pydantic import BaseModel, ConfigDict, Field, field_serializer, field_valid
 
 from noisebench.errors import InputError
 from noisebench.science.tables import read_table_text
+from noisebench.user_files import MAX_TOUCHSTONE_BYTES, check_file_size, check_row_count
 
 logger = logging.getLogger(__name__)
 
@@ -313,6 +314,7 @@ def _parse_csv(text: str, label: str) -> GainTable:
         if header is None:
             header, value_col, sign = _parse_header(line, where)
             continue
+        check_row_count(len(rows) + 1, field=where, what="gain/loss table")
         cells = [c.strip() for c in line.split(",")]
         if len(cells) != len(header):
             raise InputError(where, f"has {len(cells)} fields, the header has {len(header)}")
@@ -428,6 +430,7 @@ def _read_touchstone(path: Path, u_gain_db: float | None) -> GainTable:
         ) from None
     if not path.is_file():
         raise InputError(str(path), "Touchstone file not found", fix="check the path")
+    check_file_size(path, MAX_TOUCHSTONE_BYTES, field=str(path), what="Touchstone file")
     try:
         with warnings.catch_warnings():  # its warnings would reach the user as raw text
             warnings.simplefilter("ignore")

@@ -44,7 +44,7 @@ from typing import Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from noisebench.errors import InputError, input_error_from_validation
-from noisebench.science.point import PointResult
+from noisebench.science.point import VERDICT_BLOCKING_FLAGS, PointResult
 
 __all__ = [
     "BandVerdict",
@@ -474,7 +474,27 @@ def _point_checks(
         for kind, limit in (("min", band.gain_min_db), ("max", band.gain_max_db)):
             if limit is not None:
                 checks.append(_gain_check(point, u_gain, kind, limit, i, rule))
-    return checks
+    return _withhold_pass(point, checks)
+
+
+def _withhold_pass(point: PointResult, checks: list[Check]) -> list[Check]:
+    """A check that would pass becomes INDETERMINATE when the point carries a flag that says
+    its number cannot be trusted (``VERDICT_BLOCKING_FLAGS``, the flag policy)."""
+    blocking = [f.value for f in point.flags if f in VERDICT_BLOCKING_FLAGS]
+    if not blocking:
+        return checks
+    note = f"pass withheld: the point is flagged {', '.join(blocking)}"
+    return [
+        c.model_copy(
+            update={
+                "verdict": Verdict.INDETERMINATE,
+                "note": note if c.note is None else f"{c.note}; {note}",
+            }
+        )
+        if c.verdict is Verdict.PASS
+        else c
+        for c in checks
+    ]
 
 
 def _gain_check(

@@ -25,6 +25,46 @@ class PointFlag(str, Enum):
     LOW_GAIN = "low_gain"  # DUT gain low: second-stage correction large
     COMPRESSION_RISK = "compression_risk"  # total power near the analyzer's limit
     NEGATIVE_TE = "negative_te"  # corrected Te below zero: physically implausible reading
+    # the calibration this point was computed with carried a flag of its own
+    CAL_Y_TOO_SMALL = "cal_y_too_small"  # system calibration Y close to 1
+    CAL_TIME_LIMIT = "cal_time_limit"  # calibration stopped by its time limit before its target
+    CAL_EXCESS_SCATTER = "cal_excess_scatter"  # a calibration reading scattered too much
+    CAL_SPURS_EXCLUDED = "cal_spurs_excluded"  # lines removed from a calibration reading
+    CAL_NEAR_ANALYZER_FLOOR = "cal_near_analyzer_floor"  # calibration close to the floor
+
+
+VERDICT_BLOCKING_FLAGS: frozenset[PointFlag] = frozenset(
+    {PointFlag.NEGATIVE_TE, PointFlag.ENR_EXTRAPOLATED}
+)
+"""Flags that say the number itself cannot be defended: a point carrying one is never PASS
+(a check that would pass becomes INDETERMINATE; FAIL stays FAIL). NEGATIVE_TE: the reading is
+below what the source termination alone gives, which no working DUT does (a DUT at the analyzer
+floor reads like this). ENR_EXTRAPOLATED: the ENR was clamped outside its calibrated range, so
+its error is unknown and in no budget. Every other flag annotates: its effect on the number is
+inside the stated uncertainty (Y_TOO_SMALL, NEAR_ANALYZER_FLOOR, LOW_GAIN, EXCESS_SCATTER,
+TIME_LIMIT, SPURS_EXCLUDED, the CAL_* flags) or is a caution with a 20 dB margin
+(COMPRESSION_RISK)."""
+
+_CALIBRATION_FLAG_FOR = {
+    "y_too_small": PointFlag.CAL_Y_TOO_SMALL,
+    "time_limit": PointFlag.CAL_TIME_LIMIT,
+    "excess_scatter": PointFlag.CAL_EXCESS_SCATTER,
+    "spurs_excluded": PointFlag.CAL_SPURS_EXCLUDED,
+    "near_analyzer_floor": PointFlag.CAL_NEAR_ANALYZER_FLOOR,
+    "enr_extrapolated": PointFlag.ENR_EXTRAPOLATED,
+}
+
+
+def calibration_point_flags(calibration_flags: list[str] | list[PointFlag]) -> list[PointFlag]:
+    """The point flags that carry a calibration's own flags (``time_limit`` becomes
+    ``cal_time_limit``; ENR_EXTRAPOLATED stays itself: the same ENR table was used)."""
+    out: list[PointFlag] = []
+    for flag in calibration_flags:
+        name = flag.value if isinstance(flag, PointFlag) else str(flag)
+        mapped = _CALIBRATION_FLAG_FOR.get(name)
+        if mapped is not None and mapped not in out:
+            out.append(mapped)
+    return out
 
 
 class ConversionInfo(BaseModel):

@@ -22,6 +22,7 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from noisebench.errors import InputError
+from noisebench.user_files import MAX_SCENARIO_BYTES, read_user_text
 
 try:  # Python 3.11+
     import tomllib
@@ -366,7 +367,8 @@ def load_scenario(name_or_path: str | FsPath, **overrides: Any) -> Scenario:
     """Load a packaged scenario by name (or a TOML path) and apply ``overrides``."""
     path = _resolve(name_or_path)
     try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
+        text = read_user_text(path, MAX_SCENARIO_BYTES, field="scenario", what="scenario")
+        data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise InputError("scenario", f"{path.name}: {exc}", fix="fix the TOML syntax") from None
     data = deep_merge(data, nest_overrides(overrides))

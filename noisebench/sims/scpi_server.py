@@ -18,6 +18,7 @@ switches, a reboot). Block faults are one-shot; see ``noisebench/sims/SCPI.md``.
 
 from __future__ import annotations
 
+import ipaddress
 import logging
 import selectors
 import socket
@@ -25,8 +26,10 @@ import threading
 from typing import Any
 
 from noisebench import __version__
+from noisebench.errors import InputError
 
 from .scpi_analyzer import AnalyzerScpi
+from .scpi_compact import CompactAnalyzerScpi
 from .scpi_instruments import (
     Block,
     GeneratorScpi,
@@ -41,6 +44,9 @@ from .scpi_parser import ScpiError
 logger = logging.getLogger(__name__)
 
 __all__ = ["INSTRUMENTS", "Faults", "SimServer"]
+
+#: Analyzer command sets: the generic one (SCPI.md) and a second dialect (scpi_compact.py).
+ANALYZER_DIALECTS = {"generic": AnalyzerScpi, "compact": CompactAnalyzerScpi}
 
 #: Instrument names, in port order (analyzer on PORT, generator on PORT+1, supply on PORT+2).
 INSTRUMENTS = ("analyzer", "generator", "supply")
@@ -176,6 +182,16 @@ class _Client:
         self.sock.close()
 
 
+def is_loopback(host: str) -> bool:
+    """True if ``host`` is a loopback address (127.0.0.0/8, ::1) or ``localhost``."""
+    if host.strip().lower() == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host.strip().strip("[]")).is_loopback
+    except ValueError:
+        return False  # a host name or a wildcard ("", "0.0.0.0" is not loopback either)
+
+
 class SimServer:
     """SCPI-over-TCP front end of a simulated bench (analyzer, generator, DC supply).
 
@@ -197,9 +213,20 @@ class SimServer:
         acquisition_time_scale: float = 0.0,
         wall_clock: bool = True,
         command_log_limit: int = 100_000,
+        dialect: str = "generic",
+        allow_remote: bool = False,
     ) -> None:
         if acquisition_time_scale < 0:
             raise ValueError("acquisition_time_scale must be >= 0")
+        if dialect not in ANALYZER_DIALECTS:
+            raise ValueError(f"dialect must be one of {sorted(ANALYZER_DIALECTS)}")
+        self.dialect = dialect
+        if not is_loopback(host) and not allow_remote:
+            raise InputError(
+                "host",
+                f"{host!r} is not a loopback address; the simulator has no authentication",
+                fix="listen on 127.0.0.1, or pass allow_remote=True (--allow-remote) on purpose",
+            )
         self.bench = bench
         self.host = host
         self.port = int(port)
@@ -220,7 +247,7 @@ class SimServer:
         self._wake_w: socket.socket | None = None
         common = (bench, self._bench_lock, self.faults, self._stop)
         self.instruments: dict[str, ScpiInstrument] = {
-            "analyzer": AnalyzerScpi(
+            "analyzer": ANALYZER_DIALECTS[dialect](
                 *common, _identity(bench, "analyzer"), time_scale=acquisition_time_scale
             ),
             "generator": GeneratorScpi(*common, _identity(bench, "generator")),

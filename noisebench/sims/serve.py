@@ -17,7 +17,7 @@ from typing import Any, TextIO
 
 from noisebench.errors import NoisebenchError
 
-from .scpi_server import INSTRUMENTS, SimServer
+from .scpi_server import INSTRUMENTS, SimServer, is_loopback
 
 logger = logging.getLogger(__name__)
 
@@ -37,7 +37,14 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument(
         "--host",
         default="127.0.0.1",
-        help="address to listen on (default: 127.0.0.1, loopback only)",
+        help="address to listen on (default: 127.0.0.1, loopback only; any other address "
+        "also needs --allow-remote)",
+    )
+    parser.add_argument(
+        "--allow-remote",
+        action="store_true",
+        help="allow --host to be a non-loopback address: anyone who can reach it can drive "
+        "the simulator (no authentication)",
     )
     parser.add_argument(
         "--port",
@@ -64,6 +71,13 @@ def build_parser() -> argparse.ArgumentParser:
         "--log-commands",
         action="store_true",
         help="log every received command line (debug level of the server's logger)",
+    )
+    parser.add_argument(
+        "--dialect",
+        choices=("generic", "compact"),
+        default="generic",
+        help="the analyzer's command set: generic (profile 'generic') or compact "
+        "(profile 'sim_compact': MHz units, switch marker, no abort; default: generic)",
     )
     parser.add_argument("-v", "--verbose", action="store_true", help="debug logging")
     return parser
@@ -95,6 +109,19 @@ def main(
     if not 0 <= args.port <= 65533:
         print("error: --port must be 0..65533 (three consecutive ports are used)", file=sys.stderr)
         return 2
+    if not is_loopback(args.host):
+        if not args.allow_remote:
+            print(
+                f"error: --host {args.host} is not a loopback address; the simulator has no "
+                "authentication (add --allow-remote to listen there on purpose)",
+                file=sys.stderr,
+            )
+            return 2
+        print(
+            f"warning: listening on {args.host}, not on loopback: anyone who can reach this "
+            "address can drive the simulated bench; there is no authentication",
+            file=sys.stderr,
+        )
     try:
         bench = (bench_factory or _default_bench_factory)(args.scenario, args.seed)
     except NoisebenchError as exc:
@@ -105,7 +132,9 @@ def main(
         host=args.host,
         port=args.port,
         log_commands=False,
+        allow_remote=args.allow_remote,
         acquisition_time_scale=args.time_scale,
+        dialect=args.dialect,
     )
     if args.log_commands:
         logging.getLogger("noisebench.sims.scpi_server").setLevel(logging.DEBUG)
@@ -119,7 +148,11 @@ def main(
         return 1
     stop = stop_event or threading.Event()
     try:
-        print(f"simulated bench '{args.scenario}' (seed {args.seed}):", file=out)
+        print(
+            f"simulated bench '{args.scenario}' (seed {args.seed}, analyzer dialect "
+            f"{args.dialect}):",
+            file=out,
+        )
         for name in INSTRUMENTS:
             print(f"  {name:<10} {server.resource(name)}", file=out)
         print("Ctrl-C to stop.", file=out, flush=True)

@@ -7,7 +7,7 @@ from collections.abc import Iterable
 
 import numpy as np
 
-from noisebench.errors import InputError
+from noisebench.errors import InputError, MeasurementError
 from noisebench.science.density import NoiseDensity
 from noisebench.science.physics import T0_K
 from noisebench.science.point import PointFlag
@@ -35,6 +35,17 @@ DEFAULT_FLOOR_WARNING_DB = 3.0
 At a 3 dB margin the second-stage correction is 1.76 dB, the density jitter is amplified by
 sqrt(1 + r^2)/(1 - r) = 2.24 (r = 10^(-margin/10), reference.md §4) and a floor error enters the
 NF at about half its size.
+"""
+
+NEGATIVE_TE_REFUSE_SIGMAS = 4.0
+"""A Te below zero by more than this many of its own standard uncertainties is refused.
+
+A noise temperature cannot be negative: a reading below what the source termination alone
+gives means the DUT is off, the wrong path is connected or the gain/ENR is wrong. A Te slightly
+below zero from scatter (a very quiet DUT) stays possible: a true Te >= 0 reads below
+-4 u with probability 3.2e-5 (one-sided normal tail), so refusing there almost never rejects a
+good point, while a dead DUT reads hundreds of u below zero. Kept negative points are flagged
+NEGATIVE_TE, which keeps them from passing a limit (see the flag policy in DEVELOPERS.md).
 """
 
 FREQ_REL_TOL = 1e-6
@@ -165,6 +176,20 @@ def instrument_time_s(densities: Iterable[NoiseDensity]) -> float | None:
     if not times or any(t is None for t in times):
         return None
     return float(sum(times))  # type: ignore[arg-type]
+
+
+def check_te_plausible(
+    te_k: float, u_te_k: float, freq_hz: float, method: str, causes: str
+) -> None:
+    """MeasurementError when Te is below zero by more than NEGATIVE_TE_REFUSE_SIGMAS * u."""
+    if te_k < 0 and te_k < -NEGATIVE_TE_REFUSE_SIGMAS * u_te_k:
+        sigmas = -te_k / u_te_k if u_te_k > 0 else math.inf
+        raise MeasurementError(
+            f"{method} at {freq_hz:.6g} Hz: the DUT's noise temperature came out {te_k:.1f} K, "
+            f"{sigmas:.3g} standard uncertainties below zero (u = {u_te_k:.3g} K); a noise "
+            f"temperature cannot be negative, so the reading is a fault: {causes}",
+            freq_hz=freq_hz,
+        )
 
 
 def nf_db_from_te(te_k: float, t0_k: float = T0_K) -> float:

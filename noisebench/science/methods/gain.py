@@ -37,6 +37,7 @@ from noisebench.science.methods._common import (
     check_non_negative,
     check_number,
     check_same_frequency,
+    check_te_plausible,
     check_temperature,
     deembed_path_te_k,
     density_flags,
@@ -237,9 +238,18 @@ def gain_method_point(
             "reading is below the termination's own noise: check gain_db and the temperatures",
             freq_hz=freq_hz,
         )
+    u_te_k = float(stat.u(u_stat))
+    check_te_plausible(
+        te_k,
+        float(stat.u()),
+        freq_hz,
+        "gain method",
+        "the DUT reads at the analyzer floor (DUT unpowered or not connected), the wrong path "
+        "is switched, or gain_db is larger than the DUT's real gain; check the DUT supply and "
+        "connections, the path and the gain source",
+    )
     nf_db = nf_db_from_te(te_k, t0)
     dnf_dte = DB_PER_NEPER_POWER / (t0 + te_k)  # dNF_dB / dTe
-    u_te_k = float(stat.u(u_stat))
     names = {"n_meas": "dut", "n_floor": "floor", "g_db": "gain"}
     contributions = {names[n]: float(c) * dnf_dte for n, c in stat.contributions.items()}
     dut_gain_db = path_gain_db + 10.0 * math.log10(lin * lout)

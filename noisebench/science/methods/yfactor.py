@@ -47,6 +47,7 @@ from noisebench.science.methods._common import (
     check_non_negative,
     check_number,
     check_same_frequency,
+    check_te_plausible,
     check_temperature,
     deembed_path_te_k,
     density_flags,
@@ -63,7 +64,7 @@ from noisebench.science.physics import (
     checked_array,
     scalar_or_array,
 )
-from noisebench.science.point import Method, PointFlag, PointResult
+from noisebench.science.point import Method, PointFlag, PointResult, calibration_point_flags
 
 __all__ = [
     "DEFAULT_Y_MIN_DB",
@@ -242,6 +243,17 @@ def _core(
     return _Core(y, te12, te2, g1, te1, np.asarray(te_dut), np.asarray(te_unc), g_dut)
 
 
+def _y_too_close_to_one(freq_hz: float, what: str, y: float) -> MeasurementError:
+    """Hot is above cold, but by so little that the model cannot be evaluated around it."""
+    return MeasurementError(
+        f"{what} at {freq_hz:.6g} Hz: Y - 1 = {y - 1.0:.2g}, the hot reading is above the cold "
+        "one by too little to give a noise figure; the source's excess noise is barely reaching "
+        "the analyzer: check that the noise source is driven and connected, that its ENR "
+        "suits the DUT, and that the DUT is powered",
+        freq_hz=freq_hz,
+    )
+
+
 # --------------------------------------------------------------------------- calibration
 
 
@@ -376,11 +388,16 @@ def calibrate_point(
             1
         ]
 
-    prop = propagate(
-        lambda h, c: {"te2": te2_model(h, c)},
-        {"h": hot.density_w_per_hz, "c": cold.density_w_per_hz},
-        {"h": hot.u_density_w_per_hz, "c": cold.u_density_w_per_hz},
-    )["te2"]
+    te2_model(np.asarray(hot.density_w_per_hz), np.asarray(cold.density_w_per_hz))
+    try:
+        prop = propagate(
+            lambda h, c: {"te2": te2_model(h, c)},
+            {"h": hot.density_w_per_hz, "c": cold.density_w_per_hz},
+            {"h": hot.u_density_w_per_hz, "c": cold.u_density_w_per_hz},
+        )["te2"]
+    except MeasurementError:
+        y = hot.density_w_per_hz / cold.density_w_per_hz
+        raise _y_too_close_to_one(freq_hz, "Y-factor calibration", y) from None
     te2 = float(prop.value)
     if te2 <= 0:
         raise MeasurementError(
@@ -518,9 +535,12 @@ def y_factor_point(
 
     try:
         result = core(**{k: np.asarray(v) for k, v in values.items()})
-        props = propagate(outputs, values, u_stat | u_enr)
     except MeasurementError as exc:
         raise exc.add_context(freq_hz=freq_hz, method="y_factor") from None
+    try:
+        props = propagate(outputs, values, u_stat | u_enr)
+    except MeasurementError:
+        raise _y_too_close_to_one(freq_hz, "Y-factor measurement", float(result.y)) from None
 
     te_k = float(result.te_dut_k)
     if te_k <= -t0:
@@ -530,6 +550,15 @@ def y_factor_point(
             "calibration",
             freq_hz=freq_hz,
         )
+    check_te_plausible(
+        te_k,
+        float(props["te"].u()),
+        freq_hz,
+        "Y-factor",
+        "Y is larger than the noise source's Th/Tc allows; check the ENR table (right source, "
+        "right frequency, enr_reference), cold_temperature_k, that the DUT is powered and the "
+        "calibration was made on this path",
+    )
     nf_db = nf_db_from_te(te_k, t0)
     dnf_dte = DB_PER_NEPER_POWER / (t0 + te_k)
     names = {
@@ -550,6 +579,8 @@ def y_factor_point(
         flags.append(PointFlag.Y_TOO_SMALL)
     if enr_extrapolated or (calibration is not None and calibration.enr_extrapolated):
         flags.append(PointFlag.ENR_EXTRAPOLATED)
+    if calibration is not None:  # the calibration's own flags travel with the point
+        flags += [f for f in calibration_point_flags(calibration.flags) if f not in flags]
 
     gain_db = u_gain_db = margin = correction = nf_uncorrected = None
     if calibration is not None:

@@ -1,0 +1,237 @@
+"""The calibration step of a run: the analyzer floor (gain method) or the system (Y-factor),
+averaged to a design target, with a per-frequency summary."""
+
+from __future__ import annotations
+
+import logging
+import math
+from datetime import datetime
+from typing import Any
+
+from noisebench.bench.acquisition import AcquisitionSettings
+from noisebench.bench.registry import Connection
+from noisebench.errors import MeasurementError
+from noisebench.running.calibration import (
+    DEFAULT_DESIGN_GAIN_DB,
+    CalibrationEntry,
+    CalibrationKind,
+    floor_design_u_db,
+    system_design_u_db,
+)
+from noisebench.running.groups import PointGroup
+from noisebench.running.sequencer_core import _Readings
+from noisebench.running.sequencer_rounds import AveragingRounds
+from noisebench.science.averaging import (
+    TimeBudget,
+    averages_for_target,
+)
+from noisebench.science.density import NoiseDensity
+from noisebench.science.point import Method
+
+logger = logging.getLogger(__name__)
+
+
+class CalibrationSteps(AveragingRounds):
+    """Calibrate every group that has no valid stored calibration."""
+
+    def _calibration_kind(self) -> CalibrationKind:
+        return CalibrationKind.FLOOR if self.plan.method is Method.GAIN else CalibrationKind.SYSTEM
+
+    def _calibrate_all(self, groups: list[PointGroup], writer) -> None:
+        kind = self._calibration_kind()
+        needed = []
+        for group in groups:
+            settings = self._configure(group, group.policy.min_averages)
+            if (
+                self.calibrations.find(
+                    kind, settings, group.freqs_hz, max_age_s=self.plan.calibration.max_age_s
+                )
+                is None
+            ):
+                needed.append(group)
+        if not needed:
+            logger.info("stored %s calibration still valid: reused", kind.value)
+            return
+        connection = Connection.TERMINATION if kind is CalibrationKind.FLOOR else Connection.THROUGH
+        self.session.connect(connection)
+        for group in needed:
+            try:
+                entry = self._with_context(group, lambda g=group: self._calibrate_group(g, kind))
+            except MeasurementError as exc:
+                self._set_source_cold(TimeBudget(0.0))
+                self._skip(group, exc, "calibration", writer)
+                continue
+            self.calibrations.add(entry)
+            self.calibrations_measured += 1
+        writer.save_calibration(self.calibrations.to_dict())
+
+    def _calibrate_group(self, group: PointGroup, kind: CalibrationKind) -> CalibrationEntry:
+        policy = group.policy
+        budget = TimeBudget(policy.time_limit_s * len(group.freqs_hz))
+        names = ("floor",) if kind is CalibrationKind.FLOOR else ("hot", "cold")
+        readings = _Readings(names, group.freqs_hz)
+        connection = Connection.TERMINATION if kind is CalibrationKind.FLOOR else Connection.THROUGH
+        target = self.plan.calibration.target_ratio * policy.target_u_nf_db
+        per_trace = self._first_round_averages(
+            policy, len(names), self._prior.get(kind.value), budget
+        )
+        stopped_by = "target"
+        while True:
+            self._round(group, readings, per_trace, budget, connection)
+            u_worst, settings = self._calibration_u(group, kind, readings)
+            if u_worst <= target:
+                break
+            done = readings.averages(names[0])
+            need = (
+                averages_for_target(done, u_worst, 0.0, target)
+                if math.isfinite(u_worst)
+                else 2 * done
+            )
+            per_trace = self._next_round_averages(policy, done, need, len(names), budget)
+            if per_trace == 0:
+                stopped_by = "max_averages" if done >= policy.max_averages else "time_limit"
+                logger.warning(
+                    "%s: calibration stopped by its %s at %d averages (u %.4f dB > "
+                    "%.4f dB design target)",
+                    group.describe(),
+                    stopped_by.replace("_", " "),
+                    done,
+                    u_worst,
+                    target,
+                )
+                break
+        self._set_source_cold(budget)
+        self._rate_s = budget.seconds_per_average(self._rate_s or 0.0)
+        if stopped_by == "target" and math.isfinite(u_worst):
+            done = readings.averages(names[0])
+            self._prior[kind.value] = max(1, math.ceil(done * (u_worst / target) ** 2))
+        return CalibrationEntry(
+            kind=kind,
+            settings=settings,
+            freqs_hz=list(group.freqs_hz),
+            densities={
+                n: [readings.get(f, n).combined().density for f in group.freqs_hz] for n in names
+            },
+            cold_temperature_k=self.corrections.source_temperature_k,  # type: ignore[union-attr]
+            instrument_time_s=budget.used_s,
+            stopped_by=stopped_by,
+            summary=self._calibration_summary(group, kind, readings),
+        )
+
+    def _calibration_u(
+        self, group: PointGroup, kind: CalibrationKind, readings: _Readings
+    ) -> tuple[float, AcquisitionSettings]:
+        """Worst contribution of the calibration to the NF of a design DUT, dB."""
+        worst, settings = 0.0, None
+        for f in group.freqs_hz:
+            if kind is CalibrationKind.FLOOR:
+                floor = readings.get(f, "floor").combined().density
+                u = self._floor_design_u(f, floor)
+                settings = floor.settings
+            else:
+                hot = readings.get(f, "hot").combined().density
+                cold = readings.get(f, "cold").combined().density
+                u = self._system_design_u(f, hot, cold)
+                settings = hot.settings
+            worst = max(worst, u)
+        return worst, settings  # type: ignore[return-value]
+
+    def _design_gain_db(self, freq_hz: float) -> float:
+        corr = self.corrections
+        if corr is not None and corr.gain is not None:
+            return corr.gain(freq_hz)[0]
+        expect = self.plan.expect.dut_gain_db
+        return expect if expect is not None else DEFAULT_DESIGN_GAIN_DB
+
+    def _floor_design_u(self, freq_hz: float, floor: NoiseDensity) -> float:
+        corr = self.corrections
+        path_gain_db = (
+            self._design_gain_db(freq_hz) - corr.input_loss(freq_hz) - corr.output_loss(freq_hz)
+        )
+        return floor_design_u_db(
+            floor, path_gain_db, source_temperature_k=corr.source_temperature_k, t0_k=corr.t0_k
+        )
+
+    def _system_design_u(self, freq_hz: float, hot: NoiseDensity, cold: NoiseDensity) -> float:
+        corr = self.corrections
+        return system_design_u_db(
+            hot,
+            cold,
+            corr.enr_at(freq_hz)[0],
+            cold_temperature_k=corr.source_temperature_k,
+            design_gain_db=self._design_gain_db(freq_hz),
+            t0_k=corr.t0_k,
+        )
+
+    def _calibration_summary(
+        self, group: PointGroup, kind: CalibrationKind, readings: _Readings
+    ) -> list[dict[str, Any]]:
+        from noisebench.science.physics import BOLTZMANN_J_PER_K
+
+        out = []
+        for f in group.freqs_hz:
+            if kind is CalibrationKind.FLOOR:
+                floor = readings.get(f, "floor").combined().density
+                te_sa = floor.density_w_per_hz / BOLTZMANN_J_PER_K
+                out.append(
+                    {
+                        "freq_hz": f,
+                        "floor_w_per_hz": floor.density_w_per_hz,
+                        "floor_dbm_per_hz": floor.density_dbm_per_hz,
+                        "averages": readings.averages("floor"),
+                        "floor_noise_temperature_k": te_sa,
+                    }
+                )
+            else:
+                cal = self._system_point(
+                    f,
+                    readings.get(f, "hot").combined().density,
+                    readings.get(f, "cold").combined().density,
+                )
+                out.append(
+                    {
+                        "freq_hz": f,
+                        "system_nf_db": cal.nf_db,
+                        "system_te_k": cal.te_k,
+                        "u_system_te_k": cal.u_te_k,
+                        "y_db": cal.y_db,
+                        "enr_db": cal.enr_db,
+                        "averages": readings.averages("hot"),
+                    }
+                )
+        return out
+
+    def _system_point(
+        self,
+        freq_hz: float,
+        hot: NoiseDensity,
+        cold: NoiseDensity,
+        measured_at: datetime | None = None,
+    ):
+        from noisebench.science.methods.yfactor import calibrate_point
+
+        corr = self.corrections
+        enr_db, u_enr_db, extrapolated = corr.enr_at(freq_hz)
+        return calibrate_point(
+            hot,
+            cold,
+            enr_db,
+            cold_temperature_k=corr.source_temperature_k,
+            u_enr_db=u_enr_db,
+            t0_k=corr.t0_k,
+            enr_reference=corr.enr_reference,
+            enr_extrapolated=extrapolated,
+            calibrated_at=measured_at,
+        )
+
+    def _calibration_for(self, group: PointGroup) -> CalibrationEntry:
+        settings = self._configure(group, group.policy.min_averages)
+        entry = self.calibrations.find(
+            self._calibration_kind(),
+            settings,
+            group.freqs_hz,
+            max_age_s=self.plan.calibration.max_age_s,
+        )
+        if entry is None:  # pragma: no cover - _calibrate_all ran first
+            raise MeasurementError(f"no valid calibration for {group.describe()}")
+        return entry

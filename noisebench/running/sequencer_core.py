@@ -1,0 +1,164 @@
+"""The sequencer's state and its bench steps: configure the analyzer, acquire densities, switch
+the noise source behind the power guard, record skipped groups."""
+
+from __future__ import annotations
+
+import logging
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+from noisebench.bench.acquisition import AcquisitionRequest, AcquisitionSettings, Trace
+from noisebench.bench.registry import BenchSession, Connection
+from noisebench.errors import InputError, MeasurementError, NoisebenchError
+from noisebench.running.calibration import (
+    CalibrationStore,
+)
+from noisebench.running.corrections import Corrections
+from noisebench.running.groups import PointGroup
+from noisebench.running.plan import Plan
+from noisebench.running.progress import NullProgress, RunProgress
+from noisebench.running.safety import (
+    PowerCheck,
+    PowerGuard,
+)
+from noisebench.science.averaging import (
+    DensitySeries,
+    TimeBudget,
+)
+from noisebench.science.density import NoiseDensity
+from noisebench.science.point import PointResult
+
+logger = logging.getLogger(__name__)
+
+
+PointHook = Callable[[PointResult], None]
+
+
+@dataclass
+class _GroupOutcome:
+    points: list[PointResult]
+    settings: AcquisitionSettings | None
+    time_s: float
+
+
+@dataclass
+class _Readings:
+    """Per-frequency series of each reading (``hot``/``cold`` or ``dut``/``floor``)."""
+
+    names: tuple[str, ...]
+    freqs_hz: tuple[float, ...]
+    series: dict[tuple[float, str], DensitySeries] = field(default_factory=dict)
+
+    def add(self, name: str, densities: Sequence[NoiseDensity]) -> None:
+        for f, d in zip(self.freqs_hz, densities, strict=True):
+            self.series.setdefault((f, name), DensitySeries()).add(d)
+
+    def get(self, f: float, name: str) -> DensitySeries:
+        return self.series.setdefault((f, name), DensitySeries())
+
+    def averages(self, name: str) -> int:
+        return self.get(self.freqs_hz[0], name).averages
+
+
+class SequencerCore:
+    """State shared by the sequencer's steps and the bench operations they all use."""
+
+    def __init__(
+        self,
+        plan: Plan,
+        session: BenchSession,
+        *,
+        calibrations: CalibrationStore | None = None,
+        progress: RunProgress | None = None,
+        on_point: PointHook | None = None,
+    ) -> None:
+        self.plan = plan
+        self.session = session
+        self.calibrations = calibrations if calibrations is not None else CalibrationStore()
+        self.progress = progress or NullProgress()
+        self.on_point = on_point
+        self.corrections: Corrections | None = None
+        self.guard: PowerGuard | None = None
+        self._last_request: AcquisitionRequest | None = None
+        self._applied: list[dict[str, Any]] = []
+        self._measured_gain: dict[float, tuple[float, float]] = {}
+        self._prior: dict[str, int] = {}  # averages per reading the last group needed
+        self._unmeasurable: set[int] = set()
+        self._rate_s: float | None = None  # instrument seconds per trace average, last group
+        self.skipped: list[dict[str, Any]] = []  # points the physics refused, with the reason
+        self.calibrations_measured = 0
+
+    def _with_context(self, group: PointGroup, work: Callable[[], Any]) -> Any:
+        try:
+            return work()
+        except NoisebenchError as exc:
+            raise exc.add_context(freq_hz=group.freqs_hz[0], group=group.describe()) from None
+
+    def _skip(self, group: PointGroup, exc: MeasurementError, stage: str, writer) -> None:
+        """The physics refuses this group's points: record why and go on with the others."""
+        self._unmeasurable.add(group.index)
+        for f in group.freqs_hz:
+            self.skipped.append({"freq_hz": f, "stage": stage, "reason": exc.message})
+        logger.warning("%s not measured (%s): %s", group.describe(), stage, exc.message)
+        writer.update_info(notes={**writer.info.notes, "skipped_points": self.skipped})
+
+    def _guard(self) -> PowerGuard:
+        if self.guard is None:  # pragma: no cover - _prepare runs first
+            raise MeasurementError("the power checks are not set up")
+        return self.guard
+
+    def _configure(self, group: PointGroup, averages: int) -> AcquisitionSettings:
+        request = group.request(averages)
+        analyzer = self.session.bench.analyzer
+        if request != self._last_request or analyzer.settings is None:
+            analyzer.configure(request)
+            self._last_request = request
+        return analyzer.settings  # type: ignore[return-value]
+
+    def _acquire(self, group: PointGroup, averages: int, budget: TimeBudget) -> list[NoiseDensity]:
+        from noisebench.science.estimator import estimate_densities, estimate_density
+
+        self._configure(group, averages)
+        started = time.monotonic()
+        trace: Trace = self.session.bench.analyzer.acquire_trace()
+        seconds = trace.acquisition_time_s
+        if seconds is None:
+            seconds = time.monotonic() - started
+        budget.charge_trace(seconds, trace.settings.averages)
+        if group.band_hz is None:
+            density = estimate_density(trace)
+            return [density.model_copy(update={"freq_hz": group.freqs_hz[0]})]
+        return list(estimate_densities(trace, list(group.freqs_hz), group.band_hz))
+
+    def _set_hot(
+        self, hot: bool, budget: TimeBudget, connection: Connection, group: PointGroup
+    ) -> PowerCheck | None:
+        source = self.session.bench.noise_source
+        if source is None:
+            raise InputError("bench.noise_source", "this step needs a noise source")
+        if source.is_hot == hot:
+            return None
+        check = None
+        if hot:
+            settings = self.session.bench.analyzer.settings
+            check = self._guard().before_hot(
+                through=connection is Connection.THROUGH,
+                attenuation_db=settings.attenuation_db if settings else None,
+                preamp=settings.preamp if settings else None,
+                freq_hz=group.freqs_hz[0],
+            )
+        source.set_hot(hot)
+        budget.charge(source.settle_time_s)
+        return check
+
+    def _set_source_cold(self, budget: TimeBudget) -> None:
+        source = self.session.bench.noise_source
+        if source is not None and source.is_hot:
+            source.set_hot(False)
+            budget.charge(source.settle_time_s)
+
+    def _settle_s(self) -> float:
+        source = self.session.bench.noise_source
+        return source.settle_time_s if source is not None else 0.0

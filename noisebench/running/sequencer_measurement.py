@@ -1,0 +1,183 @@
+"""The measurement step of a run: a group's readings with the DUT in, until the target
+uncertainty, the average limit or the time limit, and the point results with their flags."""
+
+from __future__ import annotations
+
+from noisebench.bench.registry import Connection
+from noisebench.errors import MeasurementError
+from noisebench.running.calibration import (
+    CalibrationEntry,
+)
+from noisebench.running.groups import PointGroup
+from noisebench.running.safety import (
+    PowerCheck,
+)
+from noisebench.running.sequencer_calibration import CalibrationSteps
+from noisebench.running.sequencer_core import _GroupOutcome, _Readings
+from noisebench.science.averaging import (
+    TimeBudget,
+)
+from noisebench.science.point import Method, PointFlag, PointResult
+
+
+class MeasurementSteps(CalibrationSteps):
+    """Measure a group of points with the DUT in and build their results."""
+
+    def _measure_group(self, group: PointGroup) -> _GroupOutcome:
+        policy = group.policy
+        budget = TimeBudget(policy.time_limit_s * len(group.freqs_hz))
+        y_factor = self.plan.method is Method.Y_FACTOR
+        names = ("hot", "cold") if y_factor else ("dut",)
+        readings = _Readings(names, group.freqs_hz)
+        calibration = self._calibration_for(group)
+        checks: list[PowerCheck] = []
+        if y_factor and self._guard().needs_cold_look:
+            self._set_source_cold(budget)
+            look = self._acquire(group, self._first_round_averages(policy, 2), budget)
+            readings.add("cold", look)
+            self._guard().observe_cold([d.density_w_per_hz for d in look])
+        per_trace = self._first_round_averages(policy, len(names), self._prior.get("dut"), budget)
+        while True:
+            checks += self._round(group, readings, per_trace, budget, Connection.DUT)
+            points = [self._point(f, readings, calibration) for f in group.freqs_hz]
+            done = readings.averages(names[0])
+            if all(p.u_nf_db <= policy.target_u_nf_db for p in points):
+                stop = "target"
+                break
+            need = self._averages_needed(points, done, policy.target_u_nf_db)
+            per_trace = self._next_round_averages(policy, done, need, len(names), budget)
+            if per_trace == 0:
+                stop = (
+                    "calibration"
+                    if need is None
+                    else "max_averages"
+                    if done >= policy.max_averages
+                    else "time_limit"
+                )
+                break
+        self._set_source_cold(budget)
+        self._rate_s = budget.seconds_per_average(self._rate_s or 0.0)
+        prior = self._averages_at_target(points, readings.averages(names[0]), policy.target_u_nf_db)
+        if prior is not None:
+            self._prior["dut"] = prior
+        settings = self.session.bench.analyzer.settings
+        points = [
+            self._finish_point(p, readings, budget, group, checks, stop, calibration)
+            for p in points
+        ]
+        return _GroupOutcome(points, settings, budget.used_s)
+
+    def _point(
+        self, freq_hz: float, readings: _Readings, calibration: CalibrationEntry
+    ) -> PointResult:
+        corr = self.corrections
+        assert corr is not None
+        if self.plan.method is Method.Y_FACTOR:
+            from noisebench.science.methods.yfactor import y_factor_point
+
+            enr_db, u_enr_db, extrapolated = corr.enr_at(freq_hz)
+            cal = self._system_point(
+                freq_hz,
+                calibration.reading("hot", freq_hz),
+                calibration.reading("cold", freq_hz),
+                calibration.measured_at,
+            )
+            return y_factor_point(
+                readings.get(freq_hz, "hot").combined().density,
+                readings.get(freq_hz, "cold").combined().density,
+                enr_db,
+                cold_temperature_k=corr.source_temperature_k,
+                calibration=cal,
+                u_enr_db=u_enr_db,
+                t0_k=corr.t0_k,
+                enr_reference=corr.enr_reference,
+                enr_extrapolated=extrapolated,
+                input_loss_db=corr.input_loss(freq_hz),
+                input_loss_temperature_k=corr.input_loss_temperature_k,
+                output_loss_db=corr.output_loss(freq_hz),
+                output_loss_temperature_k=corr.output_loss_temperature_k,
+            )
+        from noisebench.science.methods.gain import gain_method_point
+
+        gain_db, u_gain_db, holds_input_loss = self._stated_gain(freq_hz)
+        loss_in, loss_out = corr.input_loss(freq_hz), corr.output_loss(freq_hz)
+        return gain_method_point(
+            readings.get(freq_hz, "dut").combined().density,
+            gain_db,
+            floor=calibration.reading("floor", freq_hz),
+            u_gain_db=u_gain_db,
+            source_temperature_k=corr.source_temperature_k,
+            t0_k=corr.t0_k,
+            input_loss_db=loss_in,
+            input_loss_temperature_k=corr.input_loss_temperature_k,
+            output_loss_db=loss_out,
+            output_loss_temperature_k=corr.output_loss_temperature_k,
+            floor_temperature_k=calibration.cold_temperature_k,
+            gain_includes_losses=holds_input_loss,
+            gain_includes_output_loss=False,
+        )
+
+    def _stated_gain(self, freq_hz: float) -> tuple[float, float, bool]:
+        """The DUT gain as known, dB, its uncertainty, dB, and whether it holds the input loss.
+
+        A file/constant gain is the DUT's own (neither loss). A measured gain is between the
+        THROUGH planes (input loss and DUT, not the output loss). The gain method turns it into
+        the path gain (source termination to analyzer) and records which losses it held, so
+        that budgets move the path gain with a loss's error where the loss was subtracted."""
+        corr = self.corrections
+        assert corr is not None
+        if corr.gain is not None:
+            gain_db, u = corr.gain(freq_hz)
+            return gain_db, u, False
+        if freq_hz in self._measured_gain:
+            gain_db, u = self._measured_gain[freq_hz]
+            return gain_db, u, True
+        raise MeasurementError(f"no DUT gain at {freq_hz:.6g} Hz")  # pragma: no cover
+
+    def _finish_point(
+        self,
+        point: PointResult,
+        readings: _Readings,
+        budget: TimeBudget,
+        group: PointGroup,
+        checks: list[PowerCheck],
+        stop: str,
+        calibration: CalibrationEntry,
+    ) -> PointResult:
+        f = point.freq_hz
+        flags = list(point.flags)
+        combined = [readings.get(f, n).combined() for n in readings.names]
+        if any(c.excess_scatter for c in combined) and PointFlag.EXCESS_SCATTER not in flags:
+            flags.append(PointFlag.EXCESS_SCATTER)
+        reached = point.u_nf_db <= group.policy.target_u_nf_db
+        if not reached and (stop == "time_limit" or calibration.stopped_by == "time_limit"):
+            flags.append(PointFlag.TIME_LIMIT)
+        if any(c.caution for c in checks) and PointFlag.COMPRESSION_RISK not in flags:
+            flags.append(PointFlag.COMPRESSION_RISK)
+        share = len(group.freqs_hz)
+        by_name = list(zip(readings.names, combined, strict=True))
+        notes = dict(point.notes)
+        notes.update(
+            {
+                "target_u_nf_db": group.policy.target_u_nf_db,
+                "stopped_by": "target" if reached else stop,
+                "group": group.index,
+                "group_points": share,
+                "readings": {n: c.readings for n, c in by_name},
+                "averages_per_reading": {n: c.averages for n, c in by_name},
+                "birge_ratio": {n: c.birge_ratio for n, c in by_name},
+                "calibration_measured_at": calibration.measured_at.isoformat(),
+                "calibration_time_s": (calibration.instrument_time_s or 0.0) / share,
+            }
+        )
+        if checks:
+            notes["hot_power_dbm"] = max(c.power_dbm for c in checks)
+            notes["compression_backoff_db"] = min(c.backoff_db for c in checks)
+        return point.model_copy(
+            update={
+                "flags": flags,
+                "notes": notes,
+                "averages": sum(c.averages for c in combined),
+                "instrument_time_s": budget.used_s / share,
+            }
+        )

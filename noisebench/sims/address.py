@@ -1,0 +1,49 @@
+"""Simulated-bench addresses: ``sim://<scenario>[?seed=N]``."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from noisebench.errors import InputError
+
+
+@dataclass(frozen=True)
+class SimAddress:
+    """A parsed ``sim://<scenario>?seed=N`` address."""
+
+    scenario: str
+    seed: int = 0
+
+
+def parse_sim_address(resource: str) -> SimAddress:
+    """Parse ``sim://<scenario>[?seed=N]``; raise InputError naming what is wrong."""
+    from urllib.parse import parse_qs, urlsplit
+
+    parts = urlsplit(resource)
+    if parts.scheme != "sim":
+        raise InputError("resource", f"{resource!r} is not a sim:// address")
+    scenario = (parts.netloc + parts.path).strip("/")
+    if not scenario:
+        raise InputError(
+            "resource", f"{resource!r} names no scenario", fix="e.g. sim://demo-lna?seed=1"
+        )
+    query = parse_qs(parts.query, keep_blank_values=True)
+    unknown = sorted(set(query) - {"seed"})
+    if unknown:
+        raise InputError(
+            "resource",
+            f"unknown option {unknown[0]!r} in {resource!r}",
+            fix="the only option is seed=N",
+        )
+    seed_text = query.get("seed", ["0"])[-1]
+    try:
+        seed = int(seed_text)
+    except ValueError:
+        raise InputError(
+            "resource",
+            f"seed {seed_text!r} in {resource!r} is not an integer",
+            fix="e.g. sim://demo-lna?seed=1",
+        ) from None
+    if seed < 0:
+        raise InputError("resource", f"seed {seed} must be >= 0")
+    return SimAddress(scenario, seed)
