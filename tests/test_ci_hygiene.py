@@ -52,3 +52,15 @@ def test_no_test_uses_a_sub_second_timeout_outside_a_deliberate_fault():
             if "# short timeout:" not in lines[number - 2] + line:
                 offenders.append(f"{path.name}:{number}: {line.strip()}")
     assert offenders == []
+
+
+def test_example_identities_use_an_obviously_invented_maker():
+    """Examples and docstrings never borrow a maker's name, real or cartoon."""
+    root = TESTS.parent
+    files = [*root.glob("noisebench/**/*.py"), *root.glob("examples/**/*"), root / "README.md"]
+    hits = [
+        f"{path.relative_to(root)}"
+        for path in files
+        if path.is_file() and re.search(r"\bACME\b", path.read_text(encoding="utf-8"), re.I)
+    ]
+    assert hits == []

@@ -256,6 +256,17 @@ def test_demo_end_to_end(tmp_path, capsys):
         assert (out_dir / f"demo_{method}.toml").is_file()
     assert out.count("vs truth") == 2
     assert (out_dir / "enr.csv").is_file() and (out_dir / "input_cable.csv").is_file()
+    first = {m: (out_dir / m / "results.json").read_bytes() for m in ("y_factor", "gain")}
+    # again in the same folder: new run folders beside the first ones, which stay untouched
+    code, out, _ = _run(["-q", "demo", "--out", out_dir, "--points", "4"], capsys)
+    assert code == 0
+    for method in ("y_factor", "gain"):
+        assert load_run(out_dir / f"{method}-2").info.status == "complete"
+        assert (out_dir / method / "results.json").read_bytes() == first[method]
+        assert f"{out_dir / f'{method}-2'}" in out
+    (out_dir / "file").write_text("x")
+    code, _, err = _run(["-q", "demo", "--out", out_dir / "file"], capsys)
+    assert code == cli.EXIT_INPUT and "is a file" in err
 
 
 def test_demo_default_is_at_least_51_points():
