@@ -7,6 +7,7 @@ import json
 import subprocess
 import sys
 import textwrap
+import threading
 from pathlib import Path
 
 import pytest
@@ -280,10 +281,45 @@ def test_info_never_fails(capsys):
     assert "pyvisa" in out and "VISA back ends" in out and "demo-lna" in out
 
 
+def test_info_scans_the_network_only_when_asked(capsys, monkeypatch):
+    from noisebench.frontends import info
+
+    scans = []
+    monkeypatch.setattr(info, "visa_resources", lambda *a, **k: scans.append(1) or ["X::1"])
+    code, out, _ = _run(["info"], capsys)
+    assert code == 0 and scans == [] and "not scanned" in out and "--scan" in out
+    code, out, _ = _run(["info", "--scan"], capsys)
+    assert code == 0 and scans == [1] and "X::1" in out
+
+
 def test_serve_passes_its_options_to_the_simulator(capsys):
     code, out, _ = _run(["serve", "--help"], capsys)
     assert code == 0
     assert "--scenario" in out
+    assert out.startswith("usage: noisebench serve")  # the command the user typed
+
+
+def test_serve_logs_each_line_once_under_the_cli(capsys):
+    import logging
+
+    from noisebench.frontends.cli import _configure_logging
+    from noisebench.sims import serve
+
+    _configure_logging(cli.build_parser().parse_args(["info"]))
+    assert serve._logging_configured()  # so serve adds no second handler
+    before = len(logging.getLogger().handlers)
+    stop = threading.Event()
+    stop.set()
+    assert serve.main(["--port", "0", "--duration", "0"], stop_event=stop) == 0
+    assert len(logging.getLogger().handlers) == before
+
+
+def test_station_help_shows_the_safety_cautions(capsys):
+    from noisebench.running.safety import CAUTIONS
+
+    code, out, _ = _run(["station", "--help"], capsys)
+    flat = " ".join(out.split())
+    assert code == 0 and all(" ".join(line.split()) in flat for line in CAUTIONS)
 
 
 # --------------------------------------------------------------------------- SCPI simulator

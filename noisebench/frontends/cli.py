@@ -140,7 +140,7 @@ def cmd_serve(args: argparse.Namespace, out: TextIO) -> int:
     from noisebench.sims.serve import main as serve_main
 
     try:
-        return int(serve_main(list(args.serve_args), out=out))
+        return int(serve_main(list(args.serve_args), out=out, prog="noisebench serve"))
     except SystemExit as exc:  # the server's own --help or usage error
         return int(exc.code or 0)
 
@@ -252,7 +252,7 @@ def cmd_validate(args: argparse.Namespace, out: TextIO) -> int:
 def cmd_info(args: argparse.Namespace, out: TextIO) -> int:
     from noisebench.frontends.info import collect_info, format_info
 
-    print(format_info(collect_info(scan=not args.no_scan, timeout_s=args.timeout)), file=out)
+    print(format_info(collect_info(scan=args.scan, timeout_s=args.timeout)), file=out)
     return EXIT_OK
 
 
@@ -357,8 +357,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("path", help="plan .toml or ENR .csv")
     p.set_defaults(func=cmd_validate)
 
-    p = sub.add_parser("info", help="versions, VISA back ends, resources, profiles")
-    p.add_argument("--no-scan", action="store_true", help="do not list VISA resources")
+    p = sub.add_parser("info", help="versions, VISA back ends, profiles (--scan: resources)")
+    scan = p.add_mutually_exclusive_group()
+    scan.add_argument(
+        "--scan",
+        action="store_true",
+        help="also list VISA resources (pyvisa-py's discovery broadcasts on the local network)",
+    )
+    scan.add_argument(
+        "--no-scan", dest="scan", action="store_false", help="do not list resources (default)"
+    )
     p.add_argument(
         "--timeout",
         type=positive_seconds,
