@@ -150,8 +150,10 @@ class MeasurementSteps(CalibrationSteps):
         if any(c.excess_scatter for c in combined) and PointFlag.EXCESS_SCATTER not in flags:
             flags.append(PointFlag.EXCESS_SCATTER)
         reached = point.u_nf_db <= group.policy.target_u_nf_db
-        if not reached and (stop == "time_limit" or calibration.stopped_by == "time_limit"):
+        if not reached and stop == "time_limit":
             flags.append(PointFlag.TIME_LIMIT)
+        if calibration.stopped_by == "time_limit" and PointFlag.CAL_TIME_LIMIT not in flags:
+            flags.append(PointFlag.CAL_TIME_LIMIT)  # the calibration's quality travels along
         if any(c.caution for c in checks) and PointFlag.COMPRESSION_RISK not in flags:
             flags.append(PointFlag.COMPRESSION_RISK)
         share = len(group.freqs_hz)

@@ -232,13 +232,6 @@ def gain_method_point(
     except MeasurementError as exc:
         raise exc.add_context(freq_hz=freq_hz, method="gain") from None
     te_k = float(stat.value)
-    if te_k <= -t0:
-        raise MeasurementError(
-            f"gain method at {freq_hz:.6g} Hz: noise factor <= 0 (Te = {te_k:.1f} K); the DUT "
-            "reading is below the termination's own noise: check gain_db and the temperatures",
-            freq_hz=freq_hz,
-        )
-    u_te_k = float(stat.u(u_stat))
     check_te_plausible(
         te_k,
         float(stat.u()),
@@ -248,6 +241,13 @@ def gain_method_point(
         "is switched, or gain_db is larger than the DUT's real gain; check the DUT supply and "
         "connections, the path and the gain source",
     )
+    if te_k <= -t0:
+        raise MeasurementError(
+            f"gain method at {freq_hz:.6g} Hz: noise factor <= 0 (Te = {te_k:.1f} K); the DUT "
+            "reading is below the termination's own noise: check gain_db and the temperatures",
+            freq_hz=freq_hz,
+        )
+    u_te_k = float(stat.u(u_stat))
     nf_db = nf_db_from_te(te_k, t0)
     dnf_dte = DB_PER_NEPER_POWER / (t0 + te_k)  # dNF_dB / dTe
     names = {"n_meas": "dut", "n_floor": "floor", "g_db": "gain"}

@@ -207,7 +207,8 @@ def _te_of_pair(hot, cold, enr_db, tc, t0, ref, freq_hz, what: str):
     if np.any(mask):
         raise MeasurementError(
             f"{what} at {_where(freq_hz, mask)}: hot reading is not above the cold one; check "
-            "that the noise source switches, is connected and has settled"
+            "that the noise source switches, is connected and has settled, and that the DUT is "
+            "powered and connected (an unpowered DUT passes no source noise)"
         )
     th = np.asarray(hot_temperature_k(10.0 ** (enr_db / 10.0), tc, t0, ref))
     if np.any(th <= tc):
@@ -543,13 +544,6 @@ def y_factor_point(
         raise _y_too_close_to_one(freq_hz, "Y-factor measurement", float(result.y)) from None
 
     te_k = float(result.te_dut_k)
-    if te_k <= -t0:
-        raise MeasurementError(
-            f"Y-factor at {freq_hz:.6g} Hz: noise factor <= 0 (Te = {te_k:.1f} K); Y is larger "
-            "than the source's Th/Tc allows: check the ENR, the cold temperature and the "
-            "calibration",
-            freq_hz=freq_hz,
-        )
     check_te_plausible(
         te_k,
         float(props["te"].u()),
@@ -559,6 +553,13 @@ def y_factor_point(
         "right frequency, enr_reference), cold_temperature_k, that the DUT is powered and the "
         "calibration was made on this path",
     )
+    if te_k <= -t0:
+        raise MeasurementError(
+            f"Y-factor at {freq_hz:.6g} Hz: noise factor <= 0 (Te = {te_k:.1f} K); Y is larger "
+            "than the source's Th/Tc allows: check the ENR, the cold temperature and the "
+            "calibration",
+            freq_hz=freq_hz,
+        )
     nf_db = nf_db_from_te(te_k, t0)
     dnf_dte = DB_PER_NEPER_POWER / (t0 + te_k)
     names = {
