@@ -237,9 +237,21 @@ def test_render_rewrites_report(tmp_path, capsys):
     folder = tmp_path / "run"
     assert _run(["-q", "run", plan, "--out", folder], capsys)[0] == 0
     (folder / "report.html").unlink()
+    pngs = sorted((folder / "plots").glob("*.png"))
+    assert pngs
     code, out, _ = _run(["render", folder, "--no-plots"], capsys)
     assert code == 0 and (folder / "report.html").is_file()
-    assert "wrote" in out
+    assert "wrote" in out and f"embedded {len(pngs)} existing figures" in out
+    text = (folder / "report.html").read_text(encoding="utf-8")
+    assert text.count("data:image/png;base64,") == len(pngs)  # what exists is embedded
+    # a figure older than the run's data is stale: left out rather than shown
+    import os
+
+    stale = folder / "plots" / "gain.png"
+    os.utime(stale, (1.0, 1.0))
+    code, out, _ = _run(["render", folder, "--no-plots"], capsys)
+    text = (folder / "report.html").read_text(encoding="utf-8")
+    assert code == 0 and text.count("data:image/png;base64,") == len(pngs) - 1
     code, _, err = _run(["render", tmp_path / "empty"], capsys)
     assert code == cli.EXIT_INPUT and "is not a folder" in err
 

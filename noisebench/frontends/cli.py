@@ -214,7 +214,15 @@ def cmd_render(args: argparse.Namespace, out: TextIO) -> int:
 
     folder = Path(args.folder)
     record = load_run(folder)
-    written = write_outputs(record, folder, plots=not args.no_plots, report=True)
+    if args.no_plots:  # draw nothing, but embed the figures an earlier run or render left
+        from noisebench.results.report import existing_figures, write_report
+
+        figures = existing_figures(folder)
+        written = [write_report(record, folder / "report.html", plots=figures)]
+        if figures:
+            print(f"embedded {len(figures)} existing figures from {figures[0].parent}", file=out)
+    else:
+        written = write_outputs(record, folder, plots=True, report=True)
     print(format_summary(record), file=out)
     for path in written:
         print(f"wrote {path}", file=out)
@@ -350,7 +358,11 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("render", help="plots and report from a saved run folder")
     p.add_argument("folder", help="run folder")
-    p.add_argument("--no-plots", action="store_true", help="report only")
+    p.add_argument(
+        "--no-plots",
+        action="store_true",
+        help="draw no figures (the report embeds those already in FOLDER/plots)",
+    )
     p.set_defaults(func=cmd_render)
 
     p = sub.add_parser("validate", help="check a plan (.toml) or an ENR table (.csv)")

@@ -1600,6 +1600,24 @@ def _load_images(plots: Sequence[Path | str] | None, record: RunRecord) -> dict[
     return images
 
 
+def existing_figures(folder: Path) -> list[Path]:
+    """The figures already in ``<folder>/plots`` that are not older than the run's data (the
+    journal and ``results.json``), in report order: what ``render --no-plots`` embeds."""
+    from noisebench.results.store import JOURNAL_FILE, PLOTS_DIR, RESULTS_JSON_FILE
+
+    folder = Path(folder)
+    data = [folder / JOURNAL_FILE, folder / RESULTS_JSON_FILE]
+    newest_data = max((p.stat().st_mtime for p in data if p.is_file()), default=0.0)
+    found = []
+    for name in FIGURE_CAPTIONS:
+        png = folder / PLOTS_DIR / name
+        if png.is_file() and png.stat().st_mtime >= newest_data:
+            found.append(png)
+        elif png.is_file():
+            logger.warning("%s is older than the run's data: left out of the report", png)
+    return found
+
+
 def write_report(record: RunRecord, path: Path, plots: Sequence[Path] | None = None) -> Path:
     """Write the self-contained HTML report; returns its path.
 
@@ -1651,6 +1669,7 @@ def render_run(folder: Path) -> Path:
 __all__ = [
     "SAFETY_NOTE",
     "environment",
+    "existing_figures",
     "label",
     "render_report",
     "report_context",
