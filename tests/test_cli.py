@@ -326,10 +326,11 @@ def test_serve_logs_each_line_once_under_the_cli(capsys):
     assert len(logging.getLogger().handlers) == before
 
 
-def test_station_help_shows_the_safety_cautions(capsys):
+@pytest.mark.parametrize("command", ["run", "station", "probe"])
+def test_commands_that_drive_hardware_show_the_safety_cautions(capsys, command):
     from noisebench.running.safety import CAUTIONS
 
-    code, out, _ = _run(["station", "--help"], capsys)
+    code, out, _ = _run([command, "--help"], capsys)
     flat = " ".join(out.split())
     assert code == 0 and all(" ".join(line.split()) in flat for line in CAUTIONS)
 

@@ -414,8 +414,7 @@ class ScpiAnalyzer(Analyzer):
                 self._wait_by_polling(limit)
             else:
                 self._channel.write(acq.start, check=False)
-                with self.transport.timeout(limit):
-                    reply = self._channel.query(self.profile.common.operation_complete)
+                reply = self.transport.query_watched(self.profile.common.operation_complete, limit)
                 if reply.strip().lstrip("+") != "1":
                     raise ReplyError(
                         f"reply {reply!r} to {self.profile.common.operation_complete!r} is not 1"

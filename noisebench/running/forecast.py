@@ -36,7 +36,13 @@ from noisebench.running.groups import PointGroup, plan_groups
 from noisebench.running.plan import Plan
 from noisebench.science.density import NoiseDensity
 from noisebench.science.filters import GAUSSIAN, frequency_power_correlation
-from noisebench.science.physics import BOLTZMANN_J_PER_K, T0_K
+from noisebench.science.physics import (
+    BOLTZMANN_J_PER_K,
+    T0_K,
+    ratio_from_db,
+    source_hot_temperature_k,
+    te_k_from_nf_db,
+)
 from noisebench.science.point import Method
 
 DEFAULT_ZERO_SPAN_SWEEP_S = 1e-3
@@ -145,9 +151,9 @@ def _declared_priors(plan: Plan, freq_hz: float, source_k: float) -> Priors:
             fix=f"declare {', '.join(missing)} in [expect]",
         )
     t0 = plan.corrections.t0_k
-    te1 = t0 * (10 ** (e.dut_nf_db / 10) - 1)  # type: ignore[operator]
-    te_sa = t0 * (10 ** (e.analyzer_nf_db / 10) - 1)  # type: ignore[operator]
-    g = 10 ** (e.dut_gain_db / 10)  # type: ignore[operator]
+    te1 = float(te_k_from_nf_db(e.dut_nf_db, t0))  # type: ignore[arg-type]
+    te_sa = float(te_k_from_nf_db(e.analyzer_nf_db, t0))  # type: ignore[arg-type]
+    g = float(ratio_from_db(e.dut_gain_db))  # type: ignore[arg-type]
     enr_db = e.enr_db
     if plan.method is Method.Y_FACTOR and enr_db is None:
         from noisebench.science.enr import EnrTable
@@ -159,7 +165,7 @@ def _declared_priors(plan: Plan, freq_hz: float, source_k: float) -> Priors:
     if plan.method is Method.GAIN:
         readings = {"dut": k * (g * (ts + te1) + te_sa), "floor": k * (ts + te_sa)}
     else:
-        th = t0 * 10 ** (enr_db / 10) + ts  # type: ignore[operator]
+        th = float(source_hot_temperature_k(ratio_from_db(enr_db), ts, t0))  # type: ignore[arg-type]
         readings = {
             "hot": k * (g * (th + te1) + te_sa),
             "cold": k * (g * (ts + te1) + te_sa),
@@ -292,10 +298,45 @@ class PlanForecast:
         return "\n".join(lines)
 
 
-def _group_settings(plan: Plan, group: PointGroup, sim: Any) -> tuple[AcquisitionSettings, float]:
+def _settings_analyzer(plan: Plan, sim: Any) -> Any:
+    """The analyzer whose applied settings and timing the forecast uses, without acquiring:
+    the simulated analyzer, or a sampled analyzer (simulated receiver, or SigMF recordings read
+    for their metadata only); None for a real instrument (nominal swept-analyzer model)."""
+    from urllib.parse import urlsplit
+
+    resource = plan.bench.analyzer.resource
+    scheme = urlsplit(resource).scheme
+    if scheme == "sim" and sim is not None:
+        from noisebench.sims.address import parse_sim_address
+
+        address = parse_sim_address(resource)
+        if address.receiver != "sampled":
+            return sim.analyzer
+        from noisebench.sampled.analyzer import SampledAnalyzer
+        from noisebench.sims.samples import SimSampleReceiver
+
+        options = address.sampled
+        return SampledAnalyzer(
+            SimSampleReceiver(sim), window=options.window, overlap=options.overlap
+        )
+    if scheme == "sigmf":
+        from noisebench.sampled.address import parse_sampled_address
+        from noisebench.sampled.analyzer import SampledAnalyzer
+        from noisebench.sampled.sigmf_io import SigmfRecordings
+
+        address = parse_sampled_address(resource)
+        options = address.options
+        return SampledAnalyzer(
+            SigmfRecordings(address.target), window=options.window, overlap=options.overlap
+        )
+    return sim.analyzer if sim is not None else None
+
+
+def _group_settings(
+    plan: Plan, group: PointGroup, analyzer: Any
+) -> tuple[AcquisitionSettings, float]:
     """(applied settings for 1 average, instrument seconds per trace average)."""
-    if sim is not None:
-        analyzer = sim.analyzer
+    if analyzer is not None:
         one = analyzer.configure(group.request(1))
         t1 = analyzer.expected_acquisition_time_s()
         analyzer.configure(group.request(11))
@@ -319,8 +360,9 @@ def forecast_plan(plan: Plan, *, sim: Any = None) -> PlanForecast:
         sim.noise_source.settle_time_s if sim is not None else plan.bench.noise_source.settle_time_s
     )
     out: list[PointForecast] = []
+    analyzer = _settings_analyzer(plan, sim)
     for group in plan_groups(plan.points()):
-        settings, per_average_s = _group_settings(plan, group, sim)
+        settings, per_average_s = _group_settings(plan, group, analyzer)
         for f in group.freqs_hz:
             priors = (
                 _simulated_priors(plan, sim, f)

@@ -57,6 +57,7 @@ from noisebench.errors import InputError
 from noisebench.running.plan_errors import PlanError, format_validation_error
 from noisebench.science.point import Method
 from noisebench.science.ranges import check_range, warn_unusual
+from noisebench.user_files import MAX_PLAN_BYTES, check_file_size
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -118,7 +119,8 @@ class DutSection(BaseModel):
 
 
 class AnalyzerSection(BaseModel):
-    """Spectrum analyzer: a resource string (VISA or ``sim://<scenario>?seed=N``)."""
+    """Spectrum analyzer: a resource string (VISA, ``sim://<scenario>?seed=N``, or a sampled
+    receiver: ``sigmf://<folder>``, ``samples://<name>``, ``sim://...&receiver=sampled``)."""
 
     model_config = _STRICT
     resource: str = Field(min_length=1)
@@ -728,10 +730,15 @@ def parse_plan(
         plan = Plan.model_validate(data)
     except ValidationError as exc:
         raise PlanError(format_validation_error(exc), source=source) from None
-    from noisebench.running.plan_checks import _resolve_profiles, cross_check
+    from noisebench.running.plan_checks import (
+        _resolve_profiles,
+        _resolve_sampled,
+        cross_check,
+    )
 
     plan.with_base_dir(base_dir or Path.cwd())
     _resolve_profiles(plan)
+    _resolve_sampled(plan)
     problems = cross_check(plan, check_files=check_files)
     if problems:
         raise PlanError(problems, source=source)
@@ -741,6 +748,10 @@ def parse_plan(
 def load_plan(path: str | Path, *, check_files: bool = True) -> Plan:
     """Read and validate a TOML plan file. Raises :class:`PlanError` (all problems) or OSError."""
     path = Path(path)
+    try:
+        check_file_size(path, MAX_PLAN_BYTES, field="plan", what="plan")
+    except InputError as exc:
+        raise PlanError([str(exc)], source=str(path)) from None
     try:
         text = path.read_text(encoding="utf-8-sig")  # a byte-order mark (Windows editors) is ok
     except UnicodeDecodeError as exc:

@@ -31,7 +31,8 @@ class MeasurementSteps(CalibrationSteps):
         readings = _Readings(names, group.freqs_hz)
         calibration = self._calibration_for(group)
         checks: list[PowerCheck] = []
-        if y_factor and self._guard().needs_cold_look:
+        replay = self.session.bench.analyzer.replays_recordings
+        if y_factor and self._guard().needs_cold_look and not replay:
             self._set_source_cold(budget)
             look = self._acquire(group, self._first_round_averages(policy, 2), budget)
             readings.add("cold", look)
