@@ -229,6 +229,45 @@ def bench_model(section: BenchSection) -> Any:
     return SimulatedBenchModel(SimulatedBench.from_scenario(address.scenario, seed=address.seed))
 
 
+def settings_analyzer(section: BenchSection, model: Any) -> Any:
+    """The analyzer whose applied settings and timing a forecast uses, without acquiring: the
+    model's (simulated) analyzer, or a sampled analyzer (the simulated receiver, or SigMF
+    recordings read for their metadata only); None for a real instrument (the forecast then
+    uses a nominal swept-analyzer model)."""
+    from urllib.parse import urlsplit
+
+    resource = section.analyzer.resource
+    scheme = urlsplit(resource).scheme
+    if is_simulated(resource):
+        from noisebench.sims.address import parse_sim_address
+        from noisebench.sims.forecast_model import SimulatedBenchModel
+
+        address = parse_sim_address(resource)
+        if not isinstance(model, SimulatedBenchModel):
+            return None
+        if address.receiver != "sampled":
+            return model.analyzer
+        from noisebench.sampled.analyzer import SampledAnalyzer
+        from noisebench.sims.samples import SimSampleReceiver
+
+        options = address.sampled
+        return SampledAnalyzer(
+            SimSampleReceiver(model.sim), window=options.window, overlap=options.overlap
+        )
+    if scheme == "sigmf":
+        from noisebench.sampled.address import parse_sampled_address
+        from noisebench.sampled.analyzer import SampledAnalyzer
+        from noisebench.sampled.sigmf_io import SigmfRecordings
+
+        sampled = parse_sampled_address(resource)
+        return SampledAnalyzer(
+            SigmfRecordings(sampled.target),
+            window=sampled.options.window,
+            overlap=sampled.options.overlap,
+        )
+    return model.analyzer if model is not None else None
+
+
 # --------------------------------------------------------------------------- sampled
 
 

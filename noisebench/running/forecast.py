@@ -300,11 +300,10 @@ class PlanForecast:
 
 
 def _group_settings(
-    plan: Plan, group: PointGroup, model: BenchModel | None
+    plan: Plan, group: PointGroup, analyzer: Any
 ) -> tuple[AcquisitionSettings, float]:
     """(applied settings for 1 average, instrument seconds per trace average)."""
-    if model is not None:
-        analyzer = model.analyzer
+    if analyzer is not None:
         one = analyzer.configure(group.request(1))
         t1 = analyzer.expected_acquisition_time_s()
         analyzer.configure(group.request(11))
@@ -327,8 +326,11 @@ def forecast_plan(plan: Plan, *, model: BenchModel | None = None) -> PlanForecas
     source_k = _source_temperature(plan, model)
     settle_s = model.settle_time_s if model is not None else plan.bench.noise_source.settle_time_s
     out: list[PointForecast] = []
+    from noisebench.bench.registry import settings_analyzer
+
+    analyzer = settings_analyzer(plan.bench, model)
     for group in plan_groups(plan.points()):
-        settings, per_average_s = _group_settings(plan, group, model)
+        settings, per_average_s = _group_settings(plan, group, analyzer)
         for f in group.freqs_hz:
             priors = (
                 _model_priors(plan, model, f)

@@ -58,6 +58,7 @@ from noisebench.errors import InputError
 from noisebench.running.plan_errors import PlanError, format_validation_error
 from noisebench.science.point import Method
 from noisebench.science.ranges import check_range, warn_unusual
+from noisebench.user_files import MAX_PLAN_BYTES, check_file_size
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -748,6 +749,10 @@ def parse_plan(
 def load_plan(path: str | Path, *, check_files: bool = True) -> Plan:
     """Read and validate a TOML plan file. Raises :class:`PlanError` (all problems) or OSError."""
     path = Path(path)
+    try:
+        check_file_size(path, MAX_PLAN_BYTES, field="plan", what="plan")
+    except InputError as exc:
+        raise PlanError([str(exc)], source=str(path)) from None
     try:
         text = path.read_text(encoding="utf-8-sig")  # a byte-order mark (Windows editors) is ok
     except UnicodeDecodeError as exc:

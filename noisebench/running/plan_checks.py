@@ -31,7 +31,12 @@ def cross_check(plan: Plan, *, check_files: bool = True) -> list[str]:
     if check_files:
         problems += _check_enr(plan)
         problems += _check_tables(plan)
-        problems += _check_profiles(plan)
+        profile_problems = _check_profiles(plan)
+        problems += profile_problems
+        if not profile_problems:
+            from noisebench.running.profile_check import profile_errors
+
+            problems += profile_errors(plan)  # the plan against the analyzer's profile
     return problems
 
 
@@ -111,6 +116,8 @@ def _check_sampled(plan: Plan) -> list[str]:
     if address is not None and address.scheme == "sigmf":
         if not Path(address.target).is_dir():
             problems.append(f"{key}: no recordings folder {address.target!r}")
+        else:
+            problems += _check_recorded_time(plan, address.target)
         if plan.bench.generator is not None:
             problems.append(
                 'bench.generator: recordings cannot drive a generator (use [gain] source = "file" '
@@ -126,6 +133,42 @@ def _check_sampled(plan: Plan) -> list[str]:
             problems.append(
                 "bench.noise_source.drive: a sampled receiver has no noise-source drive output "
                 '(use "supply", "operator" or "none")'
+            )
+    return problems
+
+
+def _check_recorded_time(plan: Plan, folder: str) -> list[str]:
+    """Every state the method reads must hold the time the plan may spend on it: a point's
+    time limit bounds what its hot and cold readings (or its floor / DUT readings) consume, so
+    ``time_limit_s`` (times the points one recording serves) seconds per state never run out."""
+    from noisebench.sampled.sigmf_io import SigmfRecordings
+
+    try:
+        recordings = SigmfRecordings(folder)
+    except InputError as exc:
+        return [f"bench.analyzer.resource: {exc.message.split(': ', 1)[-1]}"]
+    if plan.method is Method.Y_FACTOR:
+        needs = [("through", "hot"), ("through", "cold"), ("dut", "hot"), ("dut", "cold")]
+    else:
+        needs = [("termination", "cold"), ("dut", "cold")]
+    demand: dict[float, float] = {}
+    for point in plan.points():
+        span = point.policy.span_hz
+        try:
+            center = recordings.center_for(point.freq_hz, span)
+        except InputError as exc:
+            return [f"sweep: {exc.message.split(': ', 1)[-1]}"]
+        demand[center] = demand.get(center, 0.0) + point.policy.time_limit_s
+    problems = []
+    rate = recordings.sample_rate_hz
+    for center, seconds in sorted(demand.items()):
+        held = {(c, st): recordings.remaining_samples(center, c, st) / rate for c, st in needs}
+        (connection, state), have = min(held.items(), key=lambda item: item[1])
+        if have < seconds:
+            problems.append(
+                f"acquisition.time_limit_s: the points at {center:.9g} Hz may read {seconds:g} s "
+                f"of each state, the recordings hold {have:.3g} s of {connection} {state} "
+                "(lower time_limit_s or record longer)"
             )
     return problems
 
