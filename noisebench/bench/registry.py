@@ -62,6 +62,19 @@ def address_problems(resource: str, spans_hz: list[tuple[float, float]] | None) 
     return []
 
 
+def analyzer_profile(section: BenchSection) -> Any:
+    """The analyzer profile a real bench would load; None for the simulated bench or a profile
+    that does not load (:func:`profile_problem` reports that)."""
+    if is_simulated(section.analyzer.resource):
+        return None
+    from noisebench.drivers.profile import load_profile
+
+    try:
+        return load_profile(section.analyzer.profile)
+    except InputError:
+        return None
+
+
 def profile_problem(profile: str) -> str | None:
     """Why an instrument profile (packaged name or file) does not load; None when it does."""
     from noisebench.drivers.profile import load_profile
