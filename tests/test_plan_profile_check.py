@@ -134,3 +134,59 @@ def test_a_y_factor_run_on_the_second_dialect_needs_no_workaround(tmp_path, caps
     for point, nf_db in zip(record.points, truth["nf_db"], strict=True):
         u = float(point.notes.get("u_nf_db_with_gain", point.u_nf_db))
         assert abs(point.nf_db - nf_db) <= z * u, (point.freq_hz, point.nf_db, nf_db, u)
+
+
+def test_a_gain_method_run_on_the_second_dialect_needs_no_workaround(tmp_path, capsys):
+    """The gain method measures the DUT gain with tones read as band power: the compact
+    dialect has no band-power marker, so the driver integrates a trace over the band."""
+    bench = SimulatedBench.from_scenario(
+        "demo-lna",
+        seed=6,
+        ideal=True,
+        **IDEAL_OVERRIDES,
+        ambient_k=BENCH_TEMPERATURE_K,
+        noise_source__physical_temperature_k=BENCH_TEMPERATURE_K,
+    )
+    with SimServer(bench, dialect="compact") as server:
+        plan = tmp_path / "gain.toml"
+        plan.write_text(
+            f"""\
+method = "gain"
+[dut]
+id = "GAIN-COMPACT"
+[bench]
+analyzer = {{ resource = "{server.resource("analyzer")}", profile = "sim_compact" }}
+generator = {{ resource = "{server.resource("generator")}", profile = "sim_compact", \
+max_level_dbm = -10.0 }}
+noise_source = {{ drive = "none" }}
+[acquisition]
+rbw_hz = 1e6
+target_u_nf_db = 0.1
+time_limit_s = 20
+[sweep]
+freqs_hz = [1.0e9, 1.5e9]
+[gain]
+source = "measure"
+max_gain_db = 30.0
+dut_p1db_out_dbm = 14.0
+[corrections]
+input_loss = 0.3
+output_loss = 0.5
+source_temperature_k = {BENCH_TEMPERATURE_K}
+[expect]
+dut_gain_db = 20.0
+[output]
+plots = false
+report = false
+""",
+            encoding="utf-8",
+        )
+        code, _, err = run_cli(["run", str(plan), "--out", str(tmp_path / "run")], capsys)
+        truth = bench.truth([1.0e9, 1.5e9])
+    assert code == 0, err
+    record = load_run(tmp_path / "run")
+    z = float(norm.isf(0.01 / (2 * 4)))
+    for point, nf_db, gain_db in zip(record.points, truth["nf_db"], truth["gain_db"], strict=True):
+        u = float(point.notes.get("u_nf_db_with_gain", point.u_nf_db))
+        assert abs(point.nf_db - nf_db) <= z * u, (point.freq_hz, point.nf_db, nf_db, u)
+        assert abs(point.gain_db - gain_db) <= z * point.u_gain_db, (point.gain_db, gain_db)
