@@ -37,6 +37,7 @@ from noisebench.bench.acquisition import (
     Trace,
     TraceUnit,
 )
+from noisebench.bench.capabilities import NoiseDriveOutput, PathSwitch
 from noisebench.bench.instruments import Analyzer
 from noisebench.errors import (
     CommunicationError,
@@ -58,6 +59,9 @@ from .scpi_channel import ScpiChannel
 from .transport import BlockError, Transport, parse_ascii_values
 
 logger = logging.getLogger(__name__)
+
+SIMULATOR_MAKER = "noisebench"
+"""Manufacturer field of the simulated instruments' ``*IDN?`` reply."""
 
 __all__ = ["ScpiAnalyzer", "settings_differences"]
 
@@ -81,7 +85,7 @@ def settings_differences(
     return out
 
 
-class ScpiAnalyzer(Analyzer):
+class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
     """A spectrum analyzer over a :class:`~noisebench.drivers.transport.Transport`.
 
     ``profile`` is an :class:`InstrumentProfile`, a packaged profile name or a ``.toml`` path.
@@ -670,6 +674,21 @@ class ScpiAnalyzer(Analyzer):
                 "noise_drive", f"profile {self.profile.name} has no noise-source drive commands"
             )
         return bool(self._channel.run("noise drive", lambda: self._channel.get(setting)))
+
+    @property
+    def has_path_switch(self) -> bool:
+        """True for the SCPI simulator: its profile has the path command AND it says it is one.
+
+        Both are required so a profile copied from the generic one never sends simulator-only
+        commands to real hardware."""
+        if self.spec.sim_path is None:
+            return False
+        maker = str(self.identity).split(",", 1)[0].strip().lower()
+        return maker == SIMULATOR_MAKER
+
+    def set_path(self, path: str) -> None:
+        """The :class:`~noisebench.bench.capabilities.PathSwitch` form of :meth:`set_sim_path`."""
+        self.set_sim_path(path)
 
     def set_sim_path(self, path: str | Enum) -> None:
         """Simulator only: what the analyzer input sees (``dut``/``through``/``termination``)."""

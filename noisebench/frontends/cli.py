@@ -145,7 +145,7 @@ def cmd_serve(args: argparse.Namespace, out: TextIO) -> int:
     from noisebench.sims.serve import main as serve_main
 
     try:
-        return int(serve_main(list(args.serve_args), out=out))
+        return int(serve_main(list(args.serve_args), out=out, prog="noisebench serve"))
     except SystemExit as exc:  # the server's own --help or usage error
         return int(exc.code or 0)
 
@@ -219,7 +219,15 @@ def cmd_render(args: argparse.Namespace, out: TextIO) -> int:
 
     folder = Path(args.folder)
     record = load_run(folder)
-    written = write_outputs(record, folder, plots=not args.no_plots, report=True)
+    if args.no_plots:  # draw nothing, but embed the figures an earlier run or render left
+        from noisebench.results.report import existing_figures, write_report
+
+        figures = existing_figures(folder)
+        written = [write_report(record, folder / "report.html", plots=figures)]
+        if figures:
+            print(f"embedded {len(figures)} existing figures from {figures[0].parent}", file=out)
+    else:
+        written = write_outputs(record, folder, plots=True, report=True)
     print(format_summary(record), file=out)
     for path in written:
         print(f"wrote {path}", file=out)
@@ -282,7 +290,7 @@ def cmd_probe(args: argparse.Namespace, out: TextIO) -> int:
 def cmd_info(args: argparse.Namespace, out: TextIO) -> int:
     from noisebench.frontends.info import collect_info, format_info
 
-    print(format_info(collect_info(scan=not args.no_scan, timeout_s=args.timeout)), file=out)
+    print(format_info(collect_info(scan=args.scan, timeout_s=args.timeout)), file=out)
     return EXIT_OK
 
 
@@ -380,7 +388,11 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("render", help="plots and report from a saved run folder")
     p.add_argument("folder", help="run folder")
-    p.add_argument("--no-plots", action="store_true", help="report only")
+    p.add_argument(
+        "--no-plots",
+        action="store_true",
+        help="draw no figures (the report embeds those already in FOLDER/plots)",
+    )
     p.set_defaults(func=cmd_render)
 
     p = sub.add_parser("validate", help="check a plan (.toml) or an ENR table (.csv)")
@@ -395,6 +407,8 @@ def build_parser() -> argparse.ArgumentParser:
         "the marker, time one acquisition; print what works and the profile lines to change. "
         "No noise source or generator is switched on. Exit 0: all ok, 1: some checks failed, "
         "4: no connection.",
+        epilog=EPILOG,  # it drives a real analyzer: the same cautions as `run`
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("resource", help="VISA resource string, e.g. TCPIP0::127.0.0.1::5025::SOCKET")
     p.add_argument("--profile", default="generic", help="profile name or .toml path")
@@ -407,8 +421,16 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.set_defaults(func=cmd_probe)
 
-    p = sub.add_parser("info", help="versions, VISA back ends, resources, profiles")
-    p.add_argument("--no-scan", action="store_true", help="do not list VISA resources")
+    p = sub.add_parser("info", help="versions, VISA back ends, profiles (--scan: resources)")
+    scan = p.add_mutually_exclusive_group()
+    scan.add_argument(
+        "--scan",
+        action="store_true",
+        help="also list VISA resources (pyvisa-py's discovery broadcasts on the local network)",
+    )
+    scan.add_argument(
+        "--no-scan", dest="scan", action="store_false", help="do not list resources (default)"
+    )
     p.add_argument(
         "--timeout",
         type=positive_seconds,
