@@ -287,3 +287,21 @@ def test_estimator_leaves_out_points_the_instrument_marks():
             settings=settings,
             excluded=[True, False, True],
         )
+
+
+def test_module_factory_address(tmp_path, monkeypatch):
+    (tmp_path / "lab_rx_for_test.py").write_text(
+        "from noisebench.sampled import SourceInfo\n"
+        "class Rx:\n"
+        "    info = SourceInfo(identity='lab', sample_rate_hz=1e6, tunable=True)\n"
+        "    def capture(self, request):\n"
+        "        raise RuntimeError\n"
+        "    def close(self):\n"
+        "        pass\n"
+    )
+    monkeypatch.syspath_prepend(str(tmp_path))
+    assert open_registered("lab_rx_for_test:Rx").info.identity == "lab"
+    with pytest.raises(InputError, match="has no callable 'Nope'"):
+        open_registered("lab_rx_for_test:Nope")
+    with pytest.raises(InputError, match="cannot import 'no_such_module_xyz'"):
+        open_registered("no_such_module_xyz:Rx")

@@ -146,7 +146,7 @@ analyzer = {{ resource = "sigmf://recs" }}
 rbw_hz = 10e3
 span_hz = 400e3
 target_u_nf_db = 0.1
-time_limit_s = 0.5
+time_limit_s = 0.3
 min_averages = 20
 [sweep]
 freqs_hz = [1e9, 2e9, 3e9]
@@ -170,7 +170,7 @@ analyzer = {{ resource = "sigmf://recs{query}" }}
 rbw_hz = 10e3
 span_hz = 400e3
 target_u_nf_db = 0.1
-time_limit_s = 0.5
+time_limit_s = 0.3
 min_averages = 20
 [sweep]
 freqs_hz = [1e9, 2e9, 3e9]
@@ -258,8 +258,10 @@ def test_gain_method_refused_without_an_absolute_scale(recordings, tmp_path, cap
                 )
         write_recording(unscaled / "r", blocks, cold_temperature_k=recs.cold_temperature_k)
     text = RECORDED_GAIN.format(out=tmp_path / "runs", query="")
-    text = text.replace("sigmf://recs", "sigmf://unscaled").replace(
-        "freqs_hz = [1e9, 2e9, 3e9]", "freqs_hz = [2e9]"
+    text = (
+        text.replace("sigmf://recs", "sigmf://unscaled")
+        .replace("freqs_hz = [1e9, 2e9, 3e9]", "freqs_hz = [2e9]")
+        .replace("time_limit_s = 0.3", "time_limit_s = 0.02")
     )
     plan = _write_plan(folder / "gain_unscaled.toml", text)
     assert _run_cli(["run", plan]) != 0
@@ -289,3 +291,16 @@ def test_plan_checks_for_sampled_addresses(tmp_path):
     sim = _plan("y_factor", {"resource": "sim://demo-lna?seed=1&receiver=sdr"}, None)
     with pytest.raises(Exception, match="receiver='sdr'"):
         parse_plan(sim, base_dir=tmp_path, check_files=False)
+
+
+def test_plan_refuses_a_time_limit_the_recordings_cannot_hold(recordings):
+    folder, _ = recordings
+    text = RECORDED_YF.format(out=folder / "runs").replace("time_limit_s = 0.3", "time_limit_s = 2")
+    plan = _write_plan(folder / "long.toml", text)
+    from noisebench.running.plan import load_plan
+
+    with pytest.raises(Exception) as info:
+        load_plan(plan)
+    lines = str(info.value)
+    assert "acquisition.time_limit_s: the points at 1e+09 Hz may read 2 s of each state" in lines
+    assert "the recordings hold 0.3 s" in lines and "record longer" in lines

@@ -27,11 +27,13 @@ What VisaSession does about pyvisa-py's known behaviour on sockets (see DEVELOPE
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import math
 import select
 import socket
 import threading
+import time
 from abc import ABC, abstractmethod
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -55,6 +57,12 @@ __all__ = [
 
 _TERMINATIONS = ("\n", "\r\n", "\r")
 _DTYPES = {"f": 4, "d": 8}
+
+#: a long reply (``*OPC?``) is awaited in slices this long, checking for a closed peer between
+WATCH_SLICE_S = 0.5
+
+
+_DONT_WAIT = getattr(socket, "MSG_DONTWAIT", 0)  # POSIX; elsewhere every receive waits first
 
 
 class ConnectionLost(CommunicationError):
@@ -200,6 +208,13 @@ class Transport(ABC):
         self, command: str, *, datatype: str = "f", big_endian: bool = True
     ) -> np.ndarray:
         """Send a query answered by a definite-length binary block; return the numbers."""
+
+    def query_watched(self, command: str, limit_s: float) -> str:
+        """A query whose reply may take up to ``limit_s`` (``*OPC?`` after a long acquisition).
+        Back ends that can see the peer close the connection fail over at once instead of
+        waiting out the limit; this default simply waits."""
+        with self.timeout(limit_s):
+            return self.query(command)
 
     @abstractmethod
     def recover(self) -> bool:
@@ -419,7 +434,9 @@ class VisaSession(Transport):
             self._open()
             self._stale = False
             self.reconnects += 1
-            logger.warning("%s: reconnected (%d so far)", self.resource, self.reconnects)
+            # not "reconnected": opening a socket session succeeds even when nothing listens;
+            # the driver says so once the instrument answers
+            logger.info("%s: session reopened (%d so far)", self.resource, self.reconnects)
 
     def recover(self) -> bool:
         with self._lock:
@@ -577,6 +594,43 @@ class VisaSession(Transport):
             logger.debug("%s >> %s", self.resource, reply[:200])
             return reply.strip()
 
+    def query_watched(self, command: str, limit_s: float) -> str:
+        """Wait for the reply in slices of at most :data:`WATCH_SLICE_S`, checking between
+        slices whether the instrument closed the socket: a dropped connection then fails at
+        once (ConnectionLost) instead of after the whole limit."""
+        if self._socket() is None:
+            return super().query_watched(command, limit_s)
+        deadline = time.monotonic() + limit_s
+        with self._exchange(command):
+            logger.debug("%s << %s (watched, %.3g s)", self.resource, command, limit_s)
+            with self._io(command):
+                self._res.write(command)
+            previous = self._timeout_s
+            try:
+                while True:
+                    left = deadline - time.monotonic()
+                    self._set_timeout_s(max(0.001, min(WATCH_SLICE_S, left)))
+                    try:
+                        with self._io(command):
+                            reply = self._res.read()
+                        return reply.strip()
+                    except InstrumentTimeout:
+                        if self.peer_closed():
+                            raise ConnectionLost(
+                                f"the instrument closed the connection while {command!r} waited",
+                                command=command,
+                                resource=self.resource,
+                            ) from None
+                        if deadline - time.monotonic() <= 0:
+                            raise InstrumentTimeout(
+                                f"no reply to {command!r} within {limit_s:g} s",
+                                command=command,
+                                resource=self.resource,
+                            ) from None
+            finally:
+                with contextlib.suppress(CommunicationError):
+                    self._set_timeout_s(previous)
+
     def query_binary(
         self, command: str, *, datatype: str = "f", big_endian: bool = True
     ) -> np.ndarray:
@@ -586,6 +640,12 @@ class VisaSession(Transport):
             logger.debug("%s << %s (binary)", self.resource, command)
             if self.binary_reader == "pyvisa":
                 return self._query_binary_pyvisa(command, datatype, big_endian)
+            direct = self._direct_socket()
+            if direct is not None:
+                with self._io(command):
+                    direct[0].sendall((command + self.write_termination).encode("ascii"))
+                dtype = np.dtype((">" if big_endian else "<") + f"f{_DTYPES[datatype]}")
+                return self._read_block_direct(command, *direct, dtype)
             with self._io(command):
                 self._res.write(command)
             payload = self._read_block(command)
@@ -639,6 +699,127 @@ class VisaSession(Transport):
                     logger.debug(
                         "%s: could not restore attribute %#x: %s", self.resource, attr, exc
                     )
+
+    # -- definite-length block straight from the socket ------------------------------------
+
+    def _direct_socket(self) -> tuple[socket.socket, bytearray] | None:
+        """pyvisa-py's socket and its buffer of bytes already received, for reading a block
+        without pyvisa-py's 4 kB receive loop and its copies; None for any other back end."""
+        sock = self._socket()
+        if sock is None:
+            return None
+        session = self._res.visalib.sessions[self._res.session]
+        pending = getattr(session, "_pending_buffer", None)
+        return (sock, pending) if isinstance(pending, bytearray) else None
+
+    def _read_block_direct(
+        self, command: str, sock: socket.socket, pending: bytearray, dtype: np.dtype
+    ) -> np.ndarray:
+        """Header, then payload and terminator received into one buffer, the values decoded
+        to float64 chunk by chunk while the rest is still arriving; the same checks and
+        errors as :meth:`_read_block` and :func:`decode_block_values`."""
+        deadline = time.monotonic() + self._timeout_s
+        head = bytearray(2)
+        self._recv_into(sock, pending, memoryview(head), deadline, command, "header")
+        if head[:1] != b"#" or not head[1:2].isdigit():
+            raise BlockError(
+                f"reply to {command!r} is not a binary block (starts {bytes(head)!r})",
+                command=command,
+                resource=self.resource,
+            )
+        digits = bytearray(int(head[1:2]))
+        self._recv_into(sock, pending, memoryview(digits), deadline, command, "header")
+        _, length = _header_length(bytes(head + digits), command)
+        if length % dtype.itemsize:
+            raise BlockError(
+                f"binary block from {command!r} has {length} bytes, not a multiple of "
+                f"{dtype.itemsize}",
+                command=command,
+                resource=self.resource,
+            )
+        buffer = bytearray(length + 1)  # payload and the terminator
+        view = memoryview(buffer)
+        values = np.empty(length // dtype.itemsize)
+        decoded = 0  # values decoded so far
+
+        def decode(received: int) -> None:
+            nonlocal decoded
+            upto = min(received, length) // dtype.itemsize
+            if upto > decoded:
+                chunk = view[decoded * dtype.itemsize : upto * dtype.itemsize]
+                values[decoded:upto] = np.frombuffer(chunk, dtype=dtype)
+                decoded = upto
+
+        self._recv_into(sock, pending, view, deadline, command, "payload", length, decode)
+        if buffer[length] == 0x0D:  # CR LF
+            self._recv_into(sock, pending, view[length:], deadline, command, "terminator")
+        if buffer[length] != 0x0A:
+            raise BlockError(
+                f"binary block from {command!r} is longer than its header "
+                f"announced (next byte {bytes(buffer[length : length + 1])!r})",
+                command=command,
+                resource=self.resource,
+            )
+        decode(length)
+        return values
+
+    def _recv_into(
+        self,
+        sock: socket.socket,
+        pending: bytearray,
+        out: memoryview,
+        deadline: float,
+        command: str,
+        part: str,
+        payload_bytes: int | None = None,
+        progress=None,
+    ) -> None:
+        """Fill ``out`` from pyvisa-py's pending bytes, then from the socket, by ``deadline``;
+        ``progress(bytes_so_far)`` runs while waiting for more. Data already queued is taken
+        without a ``select`` call."""
+        filled = min(len(pending), len(out))
+        if filled:
+            out[:filled] = pending[:filled]
+            del pending[:filled]
+        while filled < len(out):
+            try:
+                got = sock.recv_into(out[filled:], 0, _DONT_WAIT) if _DONT_WAIT else None
+            except BlockingIOError:
+                got = None
+            if got is None:  # nothing queued: use the wait for decoding, then block
+                if progress is not None:
+                    progress(filled)
+                remaining = deadline - time.monotonic()
+                ready = remaining > 0 and select.select([sock], [], [], remaining)[0]
+                got = sock.recv_into(out[filled:]) if ready else None
+                if got is None:
+                    self._raise_short_read(command, part, filled, payload_bytes, closed=False)
+            if got == 0:
+                self._raise_short_read(command, part, filled, payload_bytes, closed=True)
+            filled += got
+
+    def _raise_short_read(
+        self, command: str, part: str, filled: int, payload_bytes: int | None, *, closed: bool
+    ) -> None:
+        if part == "payload" and payload_bytes is not None and filled < payload_bytes:
+            message = (
+                f"binary block from {command!r} incomplete: the header announced "
+                f"{payload_bytes} bytes, the data stopped after {filled} (truncated block or "
+                f"dropped connection)"
+            )
+        elif part in ("payload", "terminator"):
+            message = f"no message terminator after the binary block from {command!r}"
+        elif closed:
+            raise ConnectionLost(
+                f"connection lost during {command!r}", command=command, resource=self.resource
+            )
+        else:
+            raise InstrumentTimeout(
+                f"no reply to {command!r} within {self._timeout_s:g} s",
+                command=command,
+                resource=self.resource,
+            )
+        raise BlockError(message, command=command, resource=self.resource)
 
     def _read_exact(self, count: int) -> bytes:
         return bytes(self._res.read_bytes(count, chunk_size=max(count, 1)))

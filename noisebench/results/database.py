@@ -49,6 +49,7 @@ try:  # SQLAlchemy is an optional extra ("db"); fail with a clear message when i
         DateTime,
         Float,
         ForeignKey,
+        Index,
         Integer,
         String,
         Text,
@@ -99,6 +100,8 @@ class _Unit(_Base):
 
 class _Run(_Base):
     __tablename__ = "runs"
+    # the latest complete run of every unit: one index range per unit
+    __table_args__ = (Index("ix_runs_unit_status_started", "unit_id", "status", "started_at"),)
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     run_id: Mapped[str] = mapped_column(String(100), unique=True, nullable=False)
     unit_id: Mapped[int | None] = mapped_column(ForeignKey("units.id"), index=True)
@@ -257,6 +260,7 @@ class ResultsDatabase:
                 with self.engine.connect() as conn:
                     self._lock_schema(conn)
                     _Base.metadata.create_all(conn)
+                    self._add_missing_indexes(conn)
                     info = conn.execute(select(_SchemaInfo.version)).first()
                     if info is None:
                         conn.execute(
@@ -290,6 +294,14 @@ class ResultsDatabase:
             conn.exec_driver_sql("BEGIN IMMEDIATE")  # waits up to the busy timeout
         elif dialect == "postgresql":
             conn.execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": _SCHEMA_LOCK_KEY})
+
+    @staticmethod
+    def _add_missing_indexes(conn: Any) -> None:
+        """Indexes added after a database was created (query speed only, same schema
+        version): created when missing, so an older file gets them on its next open."""
+        for table in _Base.metadata.sorted_tables:
+            for index in table.indexes:
+                index.create(conn, checkfirst=True)
 
     @property
     def schema_version(self) -> int:
@@ -423,65 +435,111 @@ class ResultsDatabase:
             return int(run.id)
 
     # -- queries -----------------------------------------------------------------------------
-    def _latest_complete_runs(self, s: Session, lot: str | None = None) -> list[_Run]:
-        """The newest complete run of every unit (optionally of one lot)."""
+    @staticmethod
+    def _latest_complete_run_ids(lot: str | None = None):
+        """Subquery of (run id, unit id) of the newest complete run of every unit (optionally
+        of one lot). Only keys are read: no run's JSON is loaded for an aggregate."""
         newest = (
             select(_Run.unit_id, func.max(_Run.started_at).label("t"))
             .where(_Run.status == "complete", _Run.unit_id.is_not(None))
             .group_by(_Run.unit_id)
             .subquery()
         )
-        q = select(_Run).join(
+        q = select(_Run.id.label("run_id"), _Run.unit_id.label("unit_id")).join(
             newest, (_Run.unit_id == newest.c.unit_id) & (_Run.started_at == newest.c.t)
         )
         if lot is not None:
             q = q.join(_Unit, _Unit.id == _Run.unit_id).where(_Unit.lot == lot)
-        return list(s.scalars(q))
+        return q.subquery()
 
     def yield_by_lot(self, lot: str | None = None) -> list[LotYield]:
-        """Yield per lot from each unit's latest complete run (``lot`` to select one)."""
+        """Yield per lot from each unit's latest complete run (``lot`` to select one); the
+        counting is one grouped query in the database."""
+        latest = self._latest_complete_run_ids(lot)
+        q = (
+            select(_Unit.lot, _Run.verdict, func.count())
+            .select_from(latest)
+            .join(_Run, _Run.id == latest.c.run_id)
+            .join(_Unit, _Unit.id == latest.c.unit_id)
+            .group_by(_Unit.lot, _Run.verdict)
+        )
         with Session(self.engine) as s:
-            runs = self._latest_complete_runs(s, lot)
-            lots: dict[str | None, dict[str, int]] = {}
-            unit_lot = dict(s.execute(select(_Unit.id, _Unit.lot)).all())
-            for r in runs:
-                counts = lots.setdefault(
-                    unit_lot.get(r.unit_id),
-                    {"units": 0, "passed": 0, "failed": 0, "indeterminate": 0, "not_judged": 0},
-                )
-                counts["units"] += 1
-                key = {"pass": "passed", "fail": "failed", "indeterminate": "indeterminate"}.get(
-                    r.verdict or "", "not_judged"
-                )
-                counts[key] += 1
+            rows = s.execute(q).all()
+        lots: dict[str | None, dict[str, int]] = {}
+        for unit_lot, verdict, count in rows:
+            counts = lots.setdefault(
+                unit_lot,
+                {"units": 0, "passed": 0, "failed": 0, "indeterminate": 0, "not_judged": 0},
+            )
+            counts["units"] += int(count)
+            key = {"pass": "passed", "fail": "failed", "indeterminate": "indeterminate"}.get(
+                verdict or "", "not_judged"
+            )
+            counts[key] += int(count)
         return [LotYield(lot=k, **v) for k, v in sorted(lots.items(), key=lambda kv: str(kv[0]))]
 
     def nf_statistics(self, *, lot: str | None = None) -> list[FrequencyStats]:
-        """NF mean, standard deviation, min and max per frequency over units' latest runs."""
+        """NF mean, standard deviation, min and max per frequency over units' latest runs.
+
+        Aggregated in the database per stored frequency in one grouped pass (count, min, max
+        and the first two sums of deviations from the overall mean, so the variance suffers no
+        cancellation); frequencies equal to the millihertz are then merged with the pairwise
+        update of Chan, Golub & LeVeque (1983)."""
+        latest = self._latest_complete_run_ids(lot)
+        in_latest = (
+            select(_Point.freq_hz.label("f"), _Point.nf_db.label("nf"))
+            .join(latest, _Point.run_fk == latest.c.run_id)
+            .subquery()
+        )
         with Session(self.engine) as s:
-            run_ids = [r.id for r in self._latest_complete_runs(s, lot)]
-            if not run_ids:
+            shift = s.scalar(select(func.avg(in_latest.c.nf)))
+            if shift is None:
                 return []
+            dev = in_latest.c.nf - float(shift)
             rows = s.execute(
-                select(_Point.freq_hz, _Point.nf_db).where(_Point.run_fk.in_(run_ids))
+                select(
+                    in_latest.c.f,
+                    func.count(),
+                    func.sum(dev),
+                    func.sum(dev * dev),
+                    func.min(in_latest.c.nf),
+                    func.max(in_latest.c.nf),
+                ).group_by(in_latest.c.f)
             ).all()
-        by_freq: dict[float, list[float]] = {}
-        for f, nf in rows:
-            by_freq.setdefault(round(float(f), 3), []).append(float(nf))
+        moments = []
+        for f, n, s1, s2, lo, hi in rows:
+            n, s1, s2 = int(n), float(s1), float(s2)
+            mean_dev = s1 / n
+            # sums of deviations from a shift near the mean: no cancellation to speak of
+            moments.append((f, n, float(shift) + mean_dev, s2 - s1 * mean_dev, lo, hi))
+        merged: dict[float, list[float]] = {}
+        for f, n, mean, m2, lo, hi in moments:
+            key = round(float(f), 3)
+            if key not in merged:
+                merged[key] = [n, mean, m2, float(lo), float(hi)]
+                continue
+            na, mean_a, m2_a, lo_a, hi_a = merged[key]
+            total = na + n
+            delta = mean - mean_a
+            merged[key] = [
+                total,
+                mean_a + delta * n / total,
+                m2_a + m2 + delta * delta * na * n / total,
+                min(lo_a, float(lo)),
+                max(hi_a, float(hi)),
+            ]
         out = []
-        for f in sorted(by_freq):
-            vals = by_freq[f]
-            n = len(vals)
-            mean = sum(vals) / n
-            std = math.sqrt(sum((v - mean) ** 2 for v in vals) / (n - 1)) if n > 1 else 0.0
+        for f in sorted(merged):
+            n, mean, m2, lo, hi = merged[f]
+            n = int(n)
             out.append(
                 FrequencyStats(
                     freq_hz=f,
                     count=n,
                     mean_nf_db=mean,
-                    std_nf_db=std,
-                    min_nf_db=min(vals),
-                    max_nf_db=max(vals),
+                    std_nf_db=math.sqrt(max(m2, 0.0) / (n - 1)) if n > 1 else 0.0,
+                    min_nf_db=lo,
+                    max_nf_db=hi,
                 )
             )
         return out

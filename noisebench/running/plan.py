@@ -55,11 +55,13 @@ from pydantic import (
 )
 
 from noisebench.bench.acquisition import AveragingScale, Detector, SweepMode
+from noisebench.bench.addresses import is_simulated
 from noisebench.errors import InputError
 from noisebench.running.conversion import ConversionSection
 from noisebench.running.plan_errors import PlanError, format_validation_error
 from noisebench.science.point import Method
 from noisebench.science.ranges import check_range, warn_unusual
+from noisebench.user_files import MAX_PLAN_BYTES, check_file_size
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -783,7 +785,7 @@ class Plan(BaseModel):
 
     @property
     def is_simulated(self) -> bool:
-        return self.bench.analyzer.resource.startswith("sim://")
+        return is_simulated(self.bench.analyzer.resource)
 
 
 # --------------------------------------------------------------------------- loading
@@ -819,6 +821,10 @@ def parse_plan(
 def load_plan(path: str | Path, *, check_files: bool = True) -> Plan:
     """Read and validate a TOML plan file. Raises :class:`PlanError` (all problems) or OSError."""
     path = Path(path)
+    try:
+        check_file_size(path, MAX_PLAN_BYTES, field="plan", what="plan")
+    except InputError as exc:
+        raise PlanError([str(exc)], source=str(path)) from None
     try:
         text = path.read_text(encoding="utf-8-sig")  # a byte-order mark (Windows editors) is ok
     except UnicodeDecodeError as exc:

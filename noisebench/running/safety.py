@@ -23,7 +23,13 @@ import math
 from dataclasses import dataclass
 
 from noisebench.errors import InputError, SafetyError, require_positive
-from noisebench.science.physics import BOLTZMANN_J_PER_K, T0_K, w_to_dbm
+from noisebench.science.physics import (
+    T0_K,
+    ratio_from_db,
+    te_k_from_nf_db,
+    thermal_density_w_per_hz,
+    w_to_dbm,
+)
 
 #: Used when neither the driver nor the plan states the rated maximum input: a conservative
 #: value for general-purpose analyzers [common practice]. Put the real rating in the plan.
@@ -36,22 +42,25 @@ DEFAULT_COMPRESSION_DBM = -10.0
 PREAMP_GAIN_DB = 20.0
 
 CAUTIONS: tuple[str, ...] = (
-    "Never exceed the analyzer's rated maximum RF or DC input; it is lowest with 0 dB "
-    "attenuation and the preamplifier on.",
-    "Broadband noise adds up: total noise power, not the power in the RBW, drives the "
-    "analyzer into compression.",
-    "Use a DC block where amplifier ports may carry bias; keep its loss in the calibration "
-    "path or in the corrections.",
-    "Drive the noise source only from its rated switched supply (commonly +28 V), never into "
-    "an RF port; allow warm-up and settling.",
+    "Analyzer input: never exceed the analyzer's rated maximum RF or DC input; the damage "
+    "level is lowest with 0 dB attenuation and the preamplifier on.",
+    "Total broadband noise power, not the power in the RBW, drives the analyzer into "
+    "compression: an amplifier after a hot noise source can deliver surprisingly much.",
+    "DC on RF lines: use a DC block where amplifier ports may carry bias; keep its loss in "
+    "the calibration path or in the corrections.",
+    "Noise-source drive: only from its rated switched supply (commonly +28 V), never into an "
+    "RF port; set the supply's current limit before enabling its output; allow warm-up and "
+    "settling.",
     "ESD: wrist strap and grounded bench; discharge cables before connecting; GaAs, GaN and "
     "SiGe LNAs are sensitive. Sequence FET bias (gate first on, drain first off).",
-    "Power the DUT from a current-limited supply; check it for oscillation with a wide span "
-    "first; shield against interference; torque and clean connectors; terminate the "
-    "analyzer input when idle.",
+    "DUT: power it from a current-limited supply; check it for oscillation with a wide span "
+    "first; keep interference out (in-band spurs read as noise).",
+    "Connectors: torque and clean them; terminate the analyzer input when idle.",
     "These cautions do not replace the instrument manuals, local codes and licensed "
     "practice: where they differ, those win.",
 )
+"""The one list of bench-safety cautions: README, ``--help`` of every command that drives
+hardware, real-hardware runs, the pytest plugin and the report all show exactly these."""
 
 
 def cautions_text(*, prefix: str = "  - ", width: int = 92) -> str:
@@ -59,7 +68,13 @@ def cautions_text(*, prefix: str = "  - ", width: int = 92) -> str:
     import textwrap
 
     return "\n".join(
-        textwrap.fill(line, width, initial_indent=prefix, subsequent_indent=" " * len(prefix))
+        textwrap.fill(
+            line,
+            width,
+            initial_indent=prefix,
+            subsequent_indent=" " * len(prefix),
+            break_on_hyphens=False,  # "current-limited" stays one word
+        )
         for line in CAUTIONS
     )
 
@@ -76,7 +91,7 @@ def hot_source_temperature_k(enr_db: float, cold_temperature_k: float, t0_k: flo
     """
     from noisebench.science.methods.yfactor import hot_temperature_k
 
-    return float(hot_temperature_k(10.0 ** (enr_db / 10.0), cold_temperature_k, t0_k))
+    return float(hot_temperature_k(ratio_from_db(enr_db), cold_temperature_k, t0_k))
 
 
 def total_noise_power_dbm(
@@ -87,8 +102,9 @@ def total_noise_power_dbm(
     require_positive("source_temperature_k", source_temperature_k)
     if dut_te_k < 0:
         raise InputError("dut_te_k", f"must be >= 0 (got {dut_te_k!r})")
-    gain_lin = 10.0 ** (gain_db / 10.0)
-    return w_to_dbm(BOLTZMANN_J_PER_K * (source_temperature_k + dut_te_k) * gain_lin * bandwidth_hz)
+    gain_lin = float(ratio_from_db(gain_db))
+    density = thermal_density_w_per_hz(source_temperature_k + dut_te_k) * gain_lin
+    return w_to_dbm(float(density) * bandwidth_hz)
 
 
 def hot_power_from_cold_density_dbm(
@@ -275,7 +291,7 @@ class PowerGuard:
             te = (
                 0.0
                 if self.declared_nf_db is None
-                else self.t0_k * (10.0 ** (self.declared_nf_db / 10.0) - 1.0)
+                else float(te_k_from_nf_db(self.declared_nf_db, self.t0_k))
             )
             estimates.append(
                 total_noise_power_dbm(th, self.declared_gain_db, self.bandwidth_hz, dut_te_k=te)

@@ -155,11 +155,12 @@ class Sequencer(MeasurementSteps, GainStep, VerdictStep):
         return self._run_with(writer)
 
     def default_folder(self) -> Path:
-        """``<output.folder>/<UTC time>_<dut id>_<method>`` under the plan's folder."""
+        """``<output.folder>/<UTC time>_<dut id>_<method>`` under the plan's folder (the DUT id
+        made safe as one file-name component: no ``/``, ``..`` or control characters)."""
+        from noisebench.user_files import safe_path_component
+
         stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
-        dut = "".join(
-            ch if ch.isalnum() or ch in "-_." else "_" for ch in (self.plan.dut.id or "dut")
-        )
+        dut = safe_path_component(self.plan.dut.id, default="dut")
         return (
             self.plan.resolve_path(self.plan.output.folder)
             / f"{stamp}_{dut}_{self.plan.method.value}"

@@ -48,6 +48,7 @@ from noisebench.bench.acquisition import (
     Trace,
     TraceUnit,
 )
+from noisebench.bench.capabilities import NoiseDriveOutput
 from noisebench.bench.instruments import Analyzer
 from noisebench.errors import InputError
 from noisebench.science.detection import point_model_for
@@ -107,7 +108,7 @@ def round_step(value: float, step: float, lo: float, hi: float) -> float:
     return float(min(max(math.floor(float(value) / step + 0.5) * step, lo), hi))
 
 
-class SimAnalyzer(Analyzer):
+class SimAnalyzer(Analyzer, NoiseDriveOutput):
     """A spectrum analyzer on the simulated bench (see module docstring for the physics)."""
 
     def __init__(
@@ -141,6 +142,11 @@ class SimAnalyzer(Analyzer):
     @property
     def max_input_power_dbm(self) -> float:
         return self.spec.max_input_power_dbm
+
+    @property
+    def max_averages_per_trace(self) -> int:
+        """The scenario's ``max_averages``: more in one trace are clamped to it."""
+        return int(self.spec.max_averages)
 
     @property
     def settings(self) -> AcquisitionSettings | None:
@@ -497,10 +503,18 @@ class SimAnalyzer(Analyzer):
         near = [(f, p) for f, p in tones if lo <= f <= hi and p > 0]
         if not near:
             return None
-        tf = np.array([f for f, _ in near])
-        tp = np.array([p for _, p in near])
-        resp = s.rbw_filter.power_response(freq[None, :] - tf[:, None], s.rbw_hz)
-        return tp[:, None] * resp
+        out = np.zeros((len(near), freq.size))
+        ascending = freq.size < 2 or bool(freq[-1] >= freq[0])
+        for row, (f, p) in enumerate(near):
+            # only the points within the filter's reach: the response is zero beyond it
+            if ascending:
+                lo_i = int(np.searchsorted(freq, f - reach, side="left"))
+                hi_i = int(np.searchsorted(freq, f + reach, side="right"))
+            else:
+                lo_i, hi_i = 0, freq.size
+            if hi_i > lo_i:
+                out[row, lo_i:hi_i] = p * s.rbw_filter.power_response(freq[lo_i:hi_i] - f, s.rbw_hz)
+        return out
 
     # ------------------------------------------------------------ markers -------------------
 

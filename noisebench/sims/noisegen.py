@@ -18,7 +18,12 @@ power means by the Wilson-Hilferty cube-root normal form of the gamma distributi
 voltage means by the central limit theorem, extremes by the exact order-statistic quantiles -
 each driven by a Gaussian field with the filter's power correlation. Averages of power over many
 traces of a steady input are drawn in one step the same way (the mean of M independent looks).
-``tests/test_sim_statistics.py`` checks both forms against the exact moments.
+An average of ``AGGREGATE_MIN_TRACES`` or more traces of a steady input, on any scale and for
+any detector, is drawn from the exact distribution of the average itself
+(``noisebench/sims/averaged.py``: exact cumulants, Cornish-Fisher, a Gaussian field with the
+average's own neighbour correlation); points a tone reaches are still drawn look by look.
+``tests/test_sim_statistics.py`` and ``tests/test_sim_averaged.py`` check these forms against
+the exact moments and against drawing every look (``exact=True``), which stays for the tests.
 
 Modelling choices: a swept trace uses the quasi-static (frequency-domain) picture, i.e. the
 correlation an FFT analyzer or an infinitely slow sweep gives; a real sweep decorrelates
@@ -39,6 +44,12 @@ from scipy.special import ndtr
 from noisebench.bench.acquisition import AveragingScale, Detector
 from noisebench.errors import InputError
 from noisebench.science.filters import FilterKind, RbwFilter
+from noisebench.sims.averaged import (
+    averaged_cumulants,
+    cornish_fisher,
+    finish,
+    scale_correlation,
+)
 
 EXACT_LOOKS = 16  # up to this many looks per value are drawn one by one
 INDEPENDENT_POWER_CORRELATION = 1e-3  # neighbours less correlated than this are drawn independent
@@ -52,6 +63,8 @@ KERNEL_ENERGY_TAIL = 1e-6  # truncated kernel energy
 MAX_KERNEL_HALF_WIDTH = 64.0  # in correlation units (RBW or 1/RBW)
 CHUNK_SAMPLES = 2_000_000  # complex samples per generated chunk
 DIRECT_CONVOLUTION_TAPS = 48  # longer kernels are applied by FFT
+AGGREGATE_MIN_TRACES = 8  # from this many averaged traces, draw the average's distribution
+TONE_NEGLIGIBLE = 1e-6  # tone power below this fraction of the noise: its mean is added
 
 
 class Axis:
@@ -309,17 +322,33 @@ def correlated_normals(
     """Real standard normal fields whose correlation between points is the power correlation."""
     if kernel is None:
         return rng.standard_normal((n_rows, n_points))
-    c = kernel.power_correlation
+    return normals_with_correlation(rng, n_rows, n_points, kernel.power_correlation)
+
+
+def normals_with_correlation(
+    rng: np.random.Generator, n_rows: int, n_points: int, c: np.ndarray
+) -> np.ndarray:
+    """Real standard normal fields with correlation ``c[lag]`` (circulant embedding)."""
+    amplitude = _circulant_amplitude(c.tobytes(), n_points)
+    size = amplitude.size
+    n_pairs = (n_rows + 1) // 2
+    w = rng.standard_normal((n_pairs, size)) + 1j * rng.standard_normal((n_pairs, size))
+    x = np.fft.fft(amplitude * w, axis=-1)[:, :n_points]
+    return np.concatenate([x.real, x.imag], axis=0)[:n_rows]
+
+
+@lru_cache(maxsize=64)
+def _circulant_amplitude(c_bytes: bytes, n_points: int) -> np.ndarray:
+    """sqrt(eigenvalues / size) of the circulant embedding of the correlation ``c``."""
+    c = np.frombuffer(c_bytes, dtype=float)
     lag_max = c.size - 1
     size = 1 << int(math.ceil(math.log2(2 * (n_points + lag_max))))
     row = np.zeros(size)
     row[: c.size] = c
-    row[size - lag_max :] = c[1:][::-1]
+    if lag_max:
+        row[size - lag_max :] = c[1:][::-1]
     lam = np.maximum(np.fft.fft(row).real, 0.0)
-    n_pairs = (n_rows + 1) // 2
-    w = rng.standard_normal((n_pairs, size)) + 1j * rng.standard_normal((n_pairs, size))
-    x = np.fft.fft(np.sqrt(lam / size) * w, axis=-1)[:, :n_points]
-    return np.concatenate([x.real, x.imag], axis=0)[:n_rows]
+    return np.sqrt(lam / size)
 
 
 # ----------------------------------------------------------------- detection ---------------
@@ -426,14 +455,11 @@ def generate_trace(
         and r.averaging_scale is AveragingScale.POWER
     )
     total_looks = r.looks * r.n_traces
-    if (
-        not exact
-        and steady
-        and power_scale
-        and total_looks > EXACT_LOOKS
-        and not _may_clip(noise_w, tone_w, r.full_scale_w)
-    ):
+    fast = not exact and steady and not _may_clip(noise_w, tone_w, r.full_scale_w)
+    if fast and power_scale and total_looks > EXACT_LOOKS:
         return _aggregate_power(rng, r, noise_w, tone_w, total_looks)
+    if fast and r.n_traces >= AGGREGATE_MIN_TRACES:
+        return _aggregate_on_scale(rng, r, noise_w, tone_w)
     return _trace_by_trace(rng, r, noise_w, tone_w, tone_scale, exact)
 
 
@@ -462,9 +488,74 @@ def _aggregate_power(
     return out
 
 
+def _aggregate_on_scale(
+    rng: np.random.Generator, r: TraceRecipe, noise_w: np.ndarray, tone_w: np.ndarray | None
+) -> np.ndarray:
+    """Averaged trace drawn from the exact distribution of the average (``sims/averaged.py``);
+    the points a tone reaches are drawn look by look (tone x noise statistics), in windows."""
+    cumulants = averaged_cumulants(r.detector, r.averaging_scale, r.looks, r.n_traces)
+    z = _scale_correlated_normals(rng, r)
+    out = noise_w * finish(cornish_fisher(z, cumulants), r.averaging_scale)
+    if tone_w is None or not tone_w.size:
+        return out
+    tone_total = tone_w.sum(axis=0)
+    out += tone_total  # below the threshold: the tone's mean power, far below the scatter
+    reached = tone_total > TONE_NEGLIGIBLE * np.maximum(noise_w, 1e-300)
+    if not np.any(reached):
+        return out
+    pad = _kernel_reach_points(r.kernel)
+    for lo, hi in _windows(np.flatnonzero(reached), pad, r.n_points):
+        sub = TraceRecipe(
+            n_traces=r.n_traces,
+            n_points=hi - lo,
+            looks=r.looks,
+            detector=r.detector,
+            averaging_scale=r.averaging_scale,
+            kernel=r.kernel,
+            full_scale_w=r.full_scale_w,
+        )
+        out[lo:hi] = _trace_by_trace(rng, sub, noise_w[lo:hi], tone_w[:, lo:hi], None, False)
+    return out
+
+
+def _kernel_reach_points(kernel: FieldKernel | None) -> int:
+    if kernel is None:
+        return 0
+    lo, hi = kernel.support
+    return int(math.ceil((hi - lo) / kernel.spacing))
+
+
+def _windows(cols: np.ndarray, pad: int, n_points: int) -> list[tuple[int, int]]:
+    """Merged index windows [lo, hi) covering ``cols`` widened by ``pad`` on each side."""
+    out: list[tuple[int, int]] = []
+    for c in cols:
+        lo, hi = max(0, int(c) - pad), min(n_points, int(c) + pad + 1)
+        if out and lo <= out[-1][1]:
+            out[-1] = (out[-1][0], max(out[-1][1], hi))
+        else:
+            out.append((lo, hi))
+    return out
+
+
+def _scale_correlated_normals(rng: np.random.Generator, r: TraceRecipe) -> np.ndarray:
+    """One standard normal field correlated as ``g(D)`` is between points."""
+    if r.kernel is None:
+        return rng.standard_normal(r.n_points)
+    corr = _scale_correlation_cached(r.kernel, r.detector, r.averaging_scale, r.looks)
+    return normals_with_correlation(rng, 1, r.n_points, corr)[0]
+
+
+@lru_cache(maxsize=128)
+def _scale_correlation_cached(
+    kernel: FieldKernel, detector: Detector, scale: AveragingScale, looks: int
+) -> np.ndarray:
+    return scale_correlation(kernel.power_correlation, detector, scale, looks)
+
+
 def _tone_amplitudes(rng: np.random.Generator, tone_w: np.ndarray, n_looks: int) -> np.ndarray:
     phases = np.exp(2j * math.pi * rng.random((n_looks, tone_w.shape[0])))
-    return phases @ np.sqrt(tone_w)
+    # an explicit sum: a BLAS call for these small shapes costs more than the arithmetic
+    return np.einsum("lt,tp->lp", phases, np.sqrt(tone_w).astype(complex))
 
 
 def _trace_by_trace(
