@@ -35,10 +35,10 @@ class Instrument(ABC):
     def close(self) -> None:
         """Put the instrument in its safe state and release the connection. Idempotent."""
 
-    def __enter__(self):  # noqa: D105
+    def __enter__(self):
         return self
 
-    def __exit__(self, *exc) -> None:  # noqa: D105
+    def __exit__(self, *exc) -> None:
         self.close()
 
 

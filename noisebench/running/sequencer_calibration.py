@@ -112,7 +112,7 @@ class CalibrationSteps(AveragingRounds):
             densities={
                 n: [readings.get(f, n).combined().density for f in group.freqs_hz] for n in names
             },
-            cold_temperature_k=self.corrections.source_temperature_k,  # type: ignore[union-attr]
+            cold_temperature_k=self._corr().source_temperature_k,
             instrument_time_s=budget.used_s,
             stopped_by=stopped_by,
             summary=self._calibration_summary(group, kind, readings),
@@ -144,7 +144,7 @@ class CalibrationSteps(AveragingRounds):
         return expect if expect is not None else DEFAULT_DESIGN_GAIN_DB
 
     def _floor_design_u(self, freq_hz: float, floor: NoiseDensity) -> float:
-        corr = self.corrections
+        corr = self._corr()
         path_gain_db = (
             self._design_gain_db(freq_hz) - corr.input_loss(freq_hz) - corr.output_loss(freq_hz)
         )
@@ -153,7 +153,7 @@ class CalibrationSteps(AveragingRounds):
         )
 
     def _system_design_u(self, freq_hz: float, hot: NoiseDensity, cold: NoiseDensity) -> float:
-        corr = self.corrections
+        corr = self._corr()
         return system_design_u_db(
             hot,
             cold,
@@ -211,7 +211,7 @@ class CalibrationSteps(AveragingRounds):
     ):
         from noisebench.science.methods.yfactor import calibrate_point
 
-        corr = self.corrections
+        corr = self._corr()
         enr_db, u_enr_db, extrapolated = corr.enr_at(freq_hz)
         return calibrate_point(
             hot,

@@ -71,8 +71,7 @@ class MeasurementSteps(CalibrationSteps):
     def _point(
         self, freq_hz: float, readings: _Readings, calibration: CalibrationEntry
     ) -> PointResult:
-        corr = self.corrections
-        assert corr is not None
+        corr = self._corr()
         if self.plan.method is Method.Y_FACTOR:
             from noisebench.science.methods.yfactor import y_factor_point
 
@@ -125,8 +124,7 @@ class MeasurementSteps(CalibrationSteps):
         THROUGH planes (input loss and DUT, not the output loss). The gain method turns it into
         the path gain (source termination to analyzer) and records which losses it held, so
         that budgets move the path gain with a loss's error where the loss was subtracted."""
-        corr = self.corrections
-        assert corr is not None
+        corr = self._corr()
         if corr.gain is not None:
             gain_db, u = corr.gain(freq_hz)
             return gain_db, u, False

@@ -137,7 +137,7 @@ def _load_reflection_cached(path: str, mtime_ns: int, port: int) -> tuple[np.nda
     logger.debug("reading reflections from %s (port %d)", path, port)
     try:
         net = skrf.Network(path)
-    except Exception as exc:  # scikit-rf raises assorted types for bad files
+    except Exception as exc:  # noqa: BLE001 - scikit-rf raises assorted types for bad files
         raise InputError(
             "touchstone",
             f"{path}: not a readable Touchstone file ({exc})",
