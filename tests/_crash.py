@@ -30,7 +30,7 @@ id = "CRASH-TEST"
 analyzer = {{ resource = "sim://demo-lna?seed={seed}", compression_dbm = -3.0 }}
 [acquisition]
 attenuation_db = 0
-target_u_nf_db = 0.2
+target_u_nf_db = 0.1
 time_limit_s = 20
 [[sweep.segments]]
 start_hz = 1e9
@@ -126,11 +126,16 @@ def crash_and_resume(work: Path, *, kills: int, seed: int, points: int = 12) -> 
     plan = write_plan(work, points=points)
     folder = work / "run"
     report = CrashReport(points_expected=points)
-    for _ in range(kills):
-        moment = rng.choice(["start", "point", "point", "point", "point", "complete"])
-        after = rng.randint(0, points)
-        delay_s = rng.choice([0.0, 0.0, rng.uniform(0, 0.3)])
-        if _is_complete(folder) and moment != "start":
+    for kill in range(kills):
+        done = _journal_points(folder)
+        moment = rng.choice(["start", "point", "point", "point", "point"])
+        if kill == kills - 1 and rng.random() < 0.5:
+            moment = "complete"  # while results, plots and report are written
+        after = done + rng.randint(1, max(1, (points - done) // 2))  # progress each time
+        delay_s = rng.choice([0.0, rng.uniform(0, 0.08)])  # mid-point or mid-write
+        if moment == "start":
+            delay_s = rng.uniform(0, 1.5)  # before the folder exists, or during calibration
+        if _is_complete(folder) or done >= points - 1:
             moment = "start"  # nothing is left to reach; kill a resume that finishes outputs
         proc = _start(plan, folder)
         report.kills.append(_kill_at(proc, folder, moment, after, delay_s))

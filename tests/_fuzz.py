@@ -436,20 +436,41 @@ def _impossible_plans() -> dict[str, dict]:
     }
 
 
-def impossible_values_accepted(folder: Path) -> tuple[list[str], list[str]]:
-    """(accepted, refused) names of the impossible settings, each tried through validation."""
+def impossible_values_accepted(folder: Path) -> tuple[list[str], list[str], list[str]]:
+    """(accepted silently, refused, accepted with a plausibility warning) names of the
+    implausible settings, each tried through validation. Legal but unusual values are warned
+    once (noisebench.science.ranges); impossible ones are refused."""
+    import logging
+
     from noisebench.errors import NoisebenchError
     from noisebench.running.plan import PlanError, parse_plan
+    from noisebench.science import ranges
     from noisebench.science.enr import EnrTable
 
-    accepted, refused = [], []
-    for name, data in _impossible_plans().items():
-        try:
-            parse_plan(data, base_dir=folder)
-        except (PlanError, NoisebenchError, ValueError):
-            refused.append(name)
-        else:
-            accepted.append(name)
+    class _Catch(logging.Handler):
+        def __init__(self) -> None:
+            super().__init__(logging.WARNING)
+            self.count = 0
+
+        def emit(self, record: logging.LogRecord) -> None:
+            self.count += 1
+
+    catch = _Catch()
+    range_logger = logging.getLogger(ranges.__name__)
+    range_logger.addHandler(catch)
+    accepted, refused, warned = [], [], []
+    try:
+        for name, data in _impossible_plans().items():
+            ranges._warned.clear()  # each case may warn afresh
+            before = catch.count
+            try:
+                parse_plan(data, base_dir=folder)
+            except (PlanError, NoisebenchError, ValueError):
+                refused.append(name)
+            else:
+                (warned if catch.count > before else accepted).append(name)
+    finally:
+        range_logger.removeHandler(catch)
     table = "# nominal_drive_v: inf\n" + _PLAN_ENR
     try:
         EnrTable.from_csv(table)
@@ -457,4 +478,4 @@ def impossible_values_accepted(folder: Path) -> tuple[list[str], list[str]]:
         refused.append("ENR header nominal_drive_v: inf")
     else:
         accepted.append("ENR header nominal_drive_v: inf")
-    return accepted, refused
+    return accepted, refused, warned

@@ -726,3 +726,42 @@ def test_source_switching_check_measures_y_and_catches_a_stuck_source():
     assert check_source_switching(_StubAnalyzer(ref, -89.0, -90.0), source) == pytest.approx(1.0)
     with pytest.raises(MeasurementError):
         check_source_switching(_StubAnalyzer(ref, -89.0, -90.0), source, min_y_db=2.0)
+
+
+def test_wrong_byte_order_names_the_profile_setting():
+    """The instrument sends little-endian numbers while the profile decodes big-endian: the
+    error names the byte-order command and big_endian, not an overflow or a level problem."""
+    rng = np.random.default_rng(3)
+    values = (-90.0 + rng.normal(0.0, 0.2, 401)).astype(np.float32)
+    # keep the values whose swapped bytes still decode to finite numbers (a NaN pattern is a
+    # transfer error, retried, which this one-exchange dialogue does not script)
+    values[~np.isfinite(values.astype(">f4").view("<f4"))] = np.float32(-90.0)
+    dialogue = (
+        configured()
+        + acquisition()
+        + sets("FORM REAL,32", "FORM:BORD NORM")
+        + [("TRAC? TRACE1", ieee_block(values, big_endian=False)), ("SYST:ERR?", OK)]
+    )
+    with replay_dialogue(dialogue, analyzer) as sa:
+        sa.configure(REQUEST)
+        with np.errstate(all="raise"), pytest.raises(InputError) as info:
+            sa.acquire_trace()
+    text = str(info.value)
+    assert info.value.field == "trace.values"
+    assert "'FORM:BORD NORM'" in text and "big-endian" in text and "mis-decoded" in text
+
+
+def test_scpi_not_a_number_in_a_trace_names_the_point():
+    """SCPI-1999 sends NaN as 9.91E+37: the driver says the instrument had no data there."""
+    values = np.full(401, -90.0)
+    values[123] = 9.91e37
+    dialogue = (
+        configured()
+        + acquisition()
+        + sets("FORM REAL,32", "FORM:BORD NORM")
+        + [("TRAC? TRACE1", ieee_block(values)), ("SYST:ERR?", OK)]
+    )
+    with replay_dialogue(dialogue, analyzer) as sa:
+        sa.configure(REQUEST)
+        with pytest.raises(InputError, match="no data at point 123 .*not-a-number"):
+            sa.acquire_trace()

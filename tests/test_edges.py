@@ -378,3 +378,252 @@ def test_median_threshold_ratio_matches_monte_carlo():
         med = np.median(rng.gamma(shape, 1 / shape, (200_000, bins)), axis=1)
         rate = np.mean(rng.gamma(shape, 1 / shape, 200_000) > t * med)
         assert rate == pytest.approx(1e-3, abs=5 * math.sqrt(1e-3 / 200_000))
+
+
+# --- 8. connection failures in words ------------------------------------------------------------
+
+
+def test_refused_connection_is_named_at_open():
+    # reported: a refused TCP connection printed "opened ..." and then "the instrument closed
+    # the connection (before '*IDN?')"
+    import socket
+
+    from noisebench.drivers.transport import VisaSession
+    from noisebench.errors import CommunicationError
+
+    free = socket.create_server(("127.0.0.1", 0))
+    port = free.getsockname()[1]
+    free.close()
+    with pytest.raises(CommunicationError) as info:
+        VisaSession(f"TCPIP0::127.0.0.1::{port}::SOCKET", timeout_s=1.0, open_timeout_s=2.0)
+    text = str(info.value)
+    assert "connection refused" in text and "nothing listens on that port" in text
+    assert "closed the connection" not in text
+
+
+def test_unreachable_host_is_named_in_words():
+    # reported: an unreachable host gave the raw VISA code -1073807339 (VI_ERROR_TMO)
+    import pyvisa
+
+    from noisebench.drivers.transport import VisaSession
+    from noisebench.errors import CommunicationError
+
+    class Unreachable:
+        def open_resource(self, resource, open_timeout=None):
+            raise pyvisa.errors.VisaIOError(pyvisa.constants.StatusCode.error_timeout)
+
+    with pytest.raises(CommunicationError) as info:
+        VisaSession(
+            "TCPIP0::192.0.2.1::5025::SOCKET", resource_manager=Unreachable(), open_timeout_s=3
+        )
+    message = info.value.message
+    assert "no connection within 3 s" in message and "check the IP address" in message
+    assert "-1073807339" not in message and "VI_ERROR_TMO" not in message
+    assert info.value.visa_code == -1073807339  # kept for the log, not as the message
+
+
+# --- 2. unit slips in tables, caught by validate on the table alone -----------------------------
+
+
+def test_enr_table_in_mhz_under_a_freq_hz_header_is_refused_alone(tmp_path):
+    # reported: only caught when a plan used the table, not by `validate` on the table
+    from noisebench.science.enr import validate_enr_file
+
+    path = tmp_path / "enr.csv"
+    path.write_text("freq_hz,enr_db\n10,15.2\n1000,15.1\n18000,14.6\n", encoding="utf-8")
+    problems = validate_enr_file(path)
+    assert len(problems) == 1
+    assert "enr.csv line 2, freq_hz" in problems[0] and "look like MHz" in problems[0]
+    assert "highest 18000 Hz" in problems[0]
+
+
+@pytest.mark.parametrize(
+    "line, expected",
+    [
+        ("# nominal_drive_v: inf", "nominal_drive_v: Input should be a finite number"),
+        ("# nominal_drive_v: 280", "280 V is above the plausible 60 V"),
+        ("# calibration_temperature_k: 23", "looks like degrees Celsius"),
+    ],
+)
+def test_enr_table_header_values_get_their_ranges(tmp_path, line, expected):
+    from noisebench.science.enr import validate_enr_file
+
+    path = tmp_path / "enr.csv"
+    path.write_text(f"{line}\nfreq_hz,enr_db\n1e9,15.2\n2e9,15.1\n", encoding="utf-8")
+    problems = validate_enr_file(path)
+    assert len(problems) == 1 and expected in problems[0], problems
+    assert "enr.csv line 1" in problems[0]
+
+
+def test_loss_table_temperature_refuses_celsius_and_allows_a_stated_cryogenic_cable():
+    from noisebench.science.gain_files import GainTable
+
+    with pytest.raises(InputError, match="looks like degrees Celsius"):
+        GainTable.from_csv("# temperature_k: 23\nfreq_hz,loss_db\n1e9,0.5\n2e9,0.7\n")
+    with pytest.raises(InputError, match="cryogenic: true"):
+        GainTable.from_csv("# temperature_k: 77\nfreq_hz,loss_db\n1e9,0.5\n2e9,0.7\n")
+    cold = GainTable.from_csv(
+        "# temperature_k: 77\n# cryogenic: true\nfreq_hz,loss_db\n1e9,0.5\n2e9,0.7\n"
+    )
+    assert cold.temperature_k == 77.0
+
+
+def test_gain_table_in_mhz_is_refused_and_khz_states_a_low_table_on_purpose():
+    from noisebench.science.gain_files import GainTable
+
+    with pytest.raises(InputError, match="look like MHz"):
+        GainTable.from_csv("freq_hz,gain_db\n500,20\n2500,19\n")
+    low = GainTable.from_csv("freq_khz,gain_db\n50,20\n250,19\n")
+    assert low.range_hz == (50e3, 250e3)
+
+
+def test_range_table_is_complete_and_sourced():
+    from noisebench.science.ranges import RANGES, check_range, describe_ranges
+
+    for key, spec in RANGES.items():
+        assert spec.source, key
+        if spec.refuse_below is not None and spec.usual_low is not None:
+            assert spec.refuse_below <= spec.usual_low, key
+        if spec.refuse_above is not None and spec.usual_high is not None:
+            assert spec.usual_high <= spec.refuse_above, key
+    assert len(describe_ranges()) == len(RANGES)
+    # the liquid-nitrogen cold load: refused as a typo, accepted when stated on purpose
+    with pytest.raises(InputError, match="cryogenic = true"):
+        check_range("physical_temperature_k", "cold_temperature_k", 77.0)
+    assert check_range("physical_temperature_k", "cold_temperature_k", 77.0, on_purpose=True) == 77
+    with pytest.raises(InputError, match="below the plausible 1 K"):
+        check_range("physical_temperature_k", "cold_temperature_k", 0.5, on_purpose=True)
+
+
+def test_unusual_values_warn_once(caplog):
+    from noisebench.science.ranges import check_range
+
+    with caplog.at_level("WARNING", logger="noisebench.science.ranges"):
+        for _ in range(3):
+            check_range("dut_gain_db", "expect.dut_gain_db", -6.0)
+    warnings = [r for r in caplog.records if "expect.dut_gain_db" in r.getMessage()]
+    assert len(warnings) == 1 and "legal but unusual" in warnings[0].getMessage()
+
+
+# --- 2. unit slips and implausible settings in plans (one range mechanism) ---------------------
+
+
+def _plan_problems(**sections) -> list[str]:
+    from noisebench.running.plan import PlanError, parse_plan
+
+    data = {
+        "method": "y_factor",
+        "bench": {"analyzer": "sim://demo-lna?seed=1"},
+        "sweep": {"freqs_hz": [1e9, 2e9]},
+    }
+    for key, value in sections.items():
+        data[key] = {**data.get(key, {}), **value} if isinstance(value, dict) else value
+    try:
+        parse_plan(data, check_files=False)
+    except PlanError as exc:
+        return exc.problems
+    return []
+
+
+@pytest.mark.parametrize(
+    "sections, expected",
+    [
+        # reported: source_temperature_k = 23 (meant 23 degC) ran silently, NF 2.5 dB off
+        (
+            {"corrections": {"source_temperature_k": 23.0}},
+            "corrections.source_temperature_k: 23 K is below the plausible 200 K: a value this "
+            "low looks like degrees Celsius",
+        ),
+        ({"corrections": {"input_loss_temperature_k": 25.0}}, "23 degC is 296.15 K"),
+        ({"bench": {"analyzer": "sim://demo-lna?seed=1", "ambient_k": 21.5}}, "bench.ambient_k"),
+        ({"corrections": {"source_temperature_k": 77.0}}, "say cryogenic = true"),
+        ({"sweep": {"freqs_hz": [2000.0]}}, "sweep.freqs_hz[0]: 2000 Hz is below the plausible"),
+        ({"acquisition": {"rbw_hz": 0.001}}, "looks like kHz or MHz given where Hz is asked"),
+        # issue 14's list: values no bench can have
+        (
+            {"bench": {"analyzer": {"resource": "sim://demo-lna?seed=1", "max_input_dbm": -1e308}}},
+            "bench.analyzer.max_input_dbm: -1e+308 dBm is below the plausible -30 dBm",
+        ),
+        (
+            {
+                "bench": {
+                    "analyzer": {
+                        "resource": "sim://demo-lna?seed=1",
+                        "max_input_dbm": 20.0,
+                        "compression_dbm": 20.0,
+                    }
+                }
+            },
+            "compression_dbm: 20 dBm is not below max_input_dbm 20 dBm",
+        ),
+        (
+            {
+                "bench": {
+                    "analyzer": "sim://demo-lna?seed=1",
+                    "generator": {"resource": "sim", "max_level_dbm": -1e308},
+                }
+            },
+            "bench.generator.max_level_dbm: -1e+308 dBm is below the plausible -150 dBm",
+        ),
+        ({"expect": {"dut_gain_db": -75.0}}, "expect.dut_gain_db: -75 dB is below"),
+        (
+            {"limits": {"bands": [{"start_hz": 1e9, "stop_hz": 2e9, "nf_max_db": -1.0}]}},
+            "nf_max_db: -1 dB is below the plausible 0 dB",
+        ),
+    ],
+)
+def test_implausible_plan_values_are_refused_with_the_likely_slip(sections, expected):
+    problems = _plan_problems(**sections)
+    assert any(expected in p for p in problems), problems
+
+
+def test_a_cryogenic_cold_load_stated_on_purpose_stays_possible():
+    assert _plan_problems(corrections={"source_temperature_k": 77.0, "cryogenic": True}) == []
+
+
+@pytest.mark.parametrize(
+    "sections, label",
+    [
+        # issue 14's list: legal but unusual values warn once (attenuators stay possible)
+        (
+            {"bench": {"analyzer": {"resource": "sim://demo-lna?seed=1", "max_input_dbm": -1.0}}},
+            "bench.analyzer.max_input_dbm",
+        ),
+        ({"expect": {"dut_gain_db": 0.0}}, "expect.dut_gain_db"),
+        ({"expect": {"dut_gain_db": -1.0}}, "expect.dut_gain_db"),
+        (
+            {"limits": {"bands": [{"start_hz": 1e9, "stop_hz": 2e9, "gain_min_db": 0.0}]}},
+            "limits.bands[].gain_min_db",
+        ),
+        (
+            {
+                "method": "gain",
+                "bench": {"analyzer": "sim://demo-lna?seed=1", "generator": "sim"},
+                "gain": {"source": "measure", "max_gain_db": 30.0, "dut_p1db_out_dbm": -1.0},
+            },
+            "gain.dut_p1db_out_dbm",
+        ),
+        ({"acquisition": {"rbw_hz": 1.0}}, "acquisition.rbw_hz"),
+    ],
+)
+def test_unusual_plan_values_warn_once(sections, label, caplog):
+    from noisebench.science import ranges
+
+    ranges._warned.clear()
+    with caplog.at_level("WARNING", logger="noisebench.science.ranges"):
+        assert _plan_problems(**sections) == []
+        _plan_problems(**sections)  # the same value again: no second warning
+    lines = [r.getMessage() for r in caplog.records if label in r.getMessage()]
+    assert len(lines) == 1 and "legal but unusual" in lines[0], caplog.text
+
+
+@settings(max_examples=60, deadline=None, derandomize=True)
+@given(
+    field=st.sampled_from(
+        ["source_temperature_k", "input_loss_temperature_k", "output_loss_temperature_k"]
+    ),
+    kelvin=st.one_of(st.floats(0.01, 199.9), st.floats(500.1, 1e6)),
+)
+def test_random_out_of_range_temperatures_never_run_silently(field, kelvin):
+    problems = _plan_problems(corrections={field: kelvin})
+    assert any(f"corrections.{field}" in p and "plausible" in p for p in problems), problems

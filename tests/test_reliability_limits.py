@@ -96,3 +96,29 @@ def test_the_reader_names_the_line_of_bad_utf8(tmp_path):
     path.write_bytes(b'name = "a"\nid = "b"\nbad = "\xff\xfe"\n')
     with pytest.raises(InputError, match=r"not UTF-8 text \(line 3, byte 27\)"):
         read_user_text(path, 1000, field="plan.toml", what="plan")
+
+
+def test_a_plan_above_the_byte_limit_is_refused_by_validate(tmp_path):
+    from noisebench.running.plan import validate_plan_file
+    from noisebench.user_files import MAX_PLAN_BYTES
+
+    path = tmp_path / "plan.toml"
+    path.write_text('method = "y_factor"\n' + "# padding\n" * (MAX_PLAN_BYTES // 10 + 1))
+    (problem,) = validate_plan_file(path)
+    assert "above the 1.0 MiB limit for a plan" in problem
+
+
+def test_a_unit_list_that_is_not_text_or_too_big_is_refused(tmp_path):
+    from noisebench.frontends.units import units_from_file
+    from noisebench.user_files import MAX_UNIT_LIST_BYTES
+
+    path = tmp_path / "units.txt"
+    path.write_bytes(b"SN-1\nSN-2\n\xff\xfeSN-3\n")
+    with pytest.raises(InputError, match=r"units: is not UTF-8 text \(line 3"):
+        units_from_file(path)
+    with open(path, "wb") as handle:
+        handle.truncate(MAX_UNIT_LIST_BYTES + 1)
+    with pytest.raises(InputError, match=r"16\.0 MiB limit for a unit list"):
+        units_from_file(path)
+    path.write_text("\ufeffSN-1\nSN-2\n", encoding="utf-8")  # a byte-order mark is fine
+    assert [u.serial for u in units_from_file(path)] == ["SN-1", "SN-2"]

@@ -149,6 +149,11 @@ class Trace(BaseModel):
     )
     timestamp: datetime = Field(default_factory=_now)
     instrument: str | None = None
+    excluded: np.ndarray | None = Field(
+        default=None,
+        description="points the instrument marks unusable (a sampled receiver's LO leakage); "
+        "the estimator leaves them out and reports them like spurs",
+    )
 
     @field_validator("freq_hz", "values", mode="before")
     @classmethod
@@ -156,6 +161,16 @@ class Trace(BaseModel):
         arr = np.asarray(v, dtype=float)
         if arr.ndim != 1:
             raise InputError("trace", f"must be one-dimensional (got shape {arr.shape})")
+        return arr
+
+    @field_validator("excluded", mode="before")
+    @classmethod
+    def _as_mask(cls, v: Any) -> np.ndarray | None:
+        if v is None:
+            return None
+        arr = np.asarray(v, dtype=bool)
+        if arr.ndim != 1:
+            raise InputError("trace.excluded", f"must be one-dimensional (got shape {arr.shape})")
         return arr
 
     @model_validator(mode="after")
@@ -168,6 +183,12 @@ class Trace(BaseModel):
             )
         if self.values.size == 0:
             raise InputError("trace.values", "is empty")
+        if self.excluded is not None and self.excluded.shape != self.values.shape:
+            raise InputError(
+                "trace.excluded",
+                f"has {self.excluded.size} flags for {self.values.size} points",
+                fix="pass one flag per point (or None)",
+            )
         if not np.all(np.isfinite(self.freq_hz)):
             raise InputError("trace.freq_hz", "must be finite")
         return self
@@ -175,6 +196,10 @@ class Trace(BaseModel):
     @field_serializer("freq_hz", "values")
     def _ser(self, v: np.ndarray) -> list[float]:
         return v.tolist()
+
+    @field_serializer("excluded")
+    def _ser_mask(self, v: np.ndarray | None) -> list[bool] | None:
+        return None if v is None else v.tolist()
 
 
 class MarkerKind(str, Enum):

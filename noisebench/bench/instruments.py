@@ -79,6 +79,30 @@ class Analyzer(Instrument):
         (:func:`noisebench.science.trace_combine.combine_traces`)."""
         return None
 
+    @property
+    def full_scale_dbm(self) -> float | None:
+        """Highest input power read without clipping (a sampled receiver's converter full
+        scale for a tone), dBm; None when the instrument has no such hard limit or it is not
+        known."""
+        return None
+
+    @property
+    def absolute_level(self) -> bool:
+        """True when trace levels are absolute densities at the input (W/Hz). A sampled receiver
+        without a scale calibration reads ratios only: enough for the Y-factor method, refused
+        by the gain method."""
+        return True
+
+    @property
+    def replays_recordings(self) -> bool:
+        """True when the data were recorded earlier (nothing is switched live, so the
+        pre-switch power checks do not apply)."""
+        return False
+
+    def run_notes(self) -> dict:
+        """What the instrument wants recorded with the run (shown under the report's notes)."""
+        return {}
+
     def predict(self, request: AcquisitionRequest) -> AcquisitionRequest:
         """``request`` as the instrument will apply it (RBW rounded, points clamped, ...), without
         touching the instrument. The default assumes it applies what it is asked."""

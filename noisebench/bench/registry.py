@@ -1,6 +1,9 @@
 """Address strings -> instrument back ends, in one place.
 
-``sim://<scenario>?seed=N``    the in-process simulated bench (noisebench.sims)
+``sim://<scenario>?seed=N``    the in-process simulated bench (noisebench.sims); with
+                               ``&receiver=sampled`` its sampled receiver instead of the analyzer
+``sigmf://<folder>``           a folder of SigMF hot/cold recordings (noisebench.sampled)
+``samples://<name>``           a sample source registered from Python, or ``module:factory``
 ``TCPIP0::host::port::SOCKET`` (any VISA resource string) the SCPI drivers (noisebench.drivers)
 
 :func:`open_bench` turns a plan's ``[bench]`` section into a :class:`BenchSession`: the
@@ -57,7 +60,8 @@ class BenchSession:
     """An opened bench with its connection callback.
 
     ``sim`` is the simulated bench when the analyzer address is ``sim://`` (truth for tests
-    and benchmarks); ``kind`` is ``"simulated"`` or ``"scpi"``.
+    and benchmarks); ``kind`` is ``"simulated"``, ``"scpi"``, ``"sampled"`` (a live sample
+    source) or ``"recorded"`` (SigMF recordings: nothing is driven).
     """
 
     bench: Bench
@@ -83,7 +87,7 @@ class BenchSession:
     @property
     def real_hardware(self) -> bool:
         """True unless every instrument is simulated (in process or over SCPI)."""
-        return self.kind != "simulated" and not self.scpi_simulator
+        return self.kind not in ("simulated", "recorded") and not self.scpi_simulator
 
     def instrument_time_s(self) -> float | None:
         """Simulated instrument clock (None on real instruments: use wall time)."""
@@ -104,6 +108,10 @@ def open_bench(
     resource = section.analyzer.resource
     if is_simulated(resource):
         return _open_simulated(section)
+    from noisebench.sampled.address import is_sampled
+
+    if is_sampled(resource):
+        return _open_sampled(section, prompt=prompt, enr_drive_v=enr_drive_v)
     return _open_scpi(section, prompt=prompt, enr_drive_v=enr_drive_v)
 
 
@@ -115,11 +123,24 @@ def _open_simulated(section: BenchSection) -> BenchSession:
 
     address = parse_sim_address(section.analyzer.resource)
     sim = SimulatedBench.from_scenario(address.scenario, seed=address.seed)
-    return simulated_session(sim, section, resource=section.analyzer.resource)
+    analyzer = None
+    if address.receiver == "sampled":
+        from noisebench.sims.samples import SimSampleReceiver
+
+        analyzer = _sampled_analyzer(
+            SimSampleReceiver(sim, seed=address.seed),
+            address.sampled,
+            section,
+        )
+    return simulated_session(sim, section, resource=section.analyzer.resource, analyzer=analyzer)
 
 
 def simulated_session(
-    sim: Any, section: BenchSection | None = None, *, resource: str = "sim://custom"
+    sim: Any,
+    section: BenchSection | None = None,
+    *,
+    resource: str = "sim://custom",
+    analyzer: Any = None,
 ) -> BenchSession:
     """A session on an already built :class:`noisebench.sims.bench.SimulatedBench`.
 
@@ -129,6 +150,8 @@ def simulated_session(
     from noisebench.sims.bench import Path as SimPath
 
     bench = sim.as_bench()
+    if analyzer is not None:  # the simulated sampled receiver in place of the analyzer
+        bench.analyzer = analyzer
     if section is not None:
         if section.noise_source.drive == "none":
             bench.noise_source = None
@@ -150,6 +173,106 @@ def simulated_session(
         resources=resources,
         _move=lambda target: sim.set_path(paths[target]),
         sim=sim,
+    )
+
+
+# --------------------------------------------------------------------------- sampled
+
+
+def _sampled_analyzer(
+    source: Any, options: Any, section: BenchSection | None, recorded_scale: Any = None
+) -> Any:
+    """The analyzer on ``source``; a ``scale=`` file wins over a scale stored with recordings."""
+    from noisebench.sampled.analyzer import SampledAnalyzer
+    from noisebench.sampled.scale import load_scale
+
+    scale = load_scale(options.scale) if options.scale else recorded_scale
+    return SampledAnalyzer(
+        source,
+        window=options.window,
+        overlap=options.overlap,
+        iq_correction=options.iq_correction,
+        scale=scale,
+        max_input_power_dbm=section.analyzer.max_input_dbm if section is not None else None,
+        resource=section.analyzer.resource if section is not None else "",
+    )
+
+
+def _open_sampled(
+    section: BenchSection, *, prompt: Prompt, enr_drive_v: float | None
+) -> BenchSession:
+    """``sigmf://`` recordings (connections and the noise source select annotated ranges) or
+    a ``samples://`` source driven live (noise source and generator as on any bench)."""
+    from noisebench.sampled.address import parse_sampled_address
+
+    address = parse_sampled_address(section.analyzer.resource)
+    resources = {"analyzer": section.analyzer.resource}
+    if address.scheme == "sigmf":
+        from noisebench.sampled.sigmf_io import BenchState, RecordedNoiseSource, SigmfRecordings
+
+        if section.generator is not None:
+            raise InputError(
+                "bench.generator",
+                "recordings cannot drive a generator",
+                fix='remove it; use [gain] source = "file" or "constant"',
+            )
+        if section.noise_source.drive not in ("auto", "none"):
+            raise InputError(
+                "bench.noise_source.drive",
+                f"{section.noise_source.drive!r}: with recordings the noise source is the "
+                "recorded state",
+                fix='use drive = "auto" (or "none" for the gain method)',
+            )
+        state = BenchState()
+        recordings = SigmfRecordings(address.target, state=state)
+        analyzer = _sampled_analyzer(recordings, address.options, section, recordings.scale)
+        source = None
+        if section.noise_source.drive == "auto":
+            source = RecordedNoiseSource(
+                state, recordings.cold_temperature_k, f"sigmf://{address.target}"
+            )
+        bench = Bench(analyzer=analyzer, noise_source=source, ambient_k=section.ambient_k)
+
+        def select(target: Connection) -> None:
+            state.connection = target.value
+
+        return BenchSession(bench=bench, kind="recorded", resources=resources, _move=select)
+    from noisebench.sampled.source import open_registered
+
+    if section.noise_source.drive in ("auto", "analyzer"):
+        raise InputError(
+            "bench.noise_source.drive",
+            "a sampled receiver has no noise-source drive output",
+            fix='use drive = "supply" (with its resource), "operator" or "none"',
+        )
+    opened: list[Any] = []
+    try:
+        analyzer = _sampled_analyzer(open_registered(address.target), address.options, section)
+        opened.append(analyzer)
+        source = _open_noise_source(section, analyzer, prompt, enr_drive_v)
+        if source is not None:
+            opened.append(source)
+        generator = None
+        if section.generator is not None:
+            from noisebench import drivers
+
+            generator = drivers.open_generator(
+                section.generator.resource,
+                profile=section.generator.profile,
+                timeout_s=section.generator.timeout_s,
+            )
+            resources["generator"] = section.generator.resource
+    except BaseException:
+        for inst in reversed(opened):
+            _close_quietly(inst)
+        raise
+    if section.noise_source.resource:
+        resources["noise_source"] = section.noise_source.resource
+    bench = Bench(
+        analyzer=analyzer, noise_source=source, generator=generator, ambient_k=section.ambient_k
+    )
+    return BenchSession(
+        bench=bench, kind="sampled", resources=resources, _move=_operator_mover(prompt)
     )
 
 

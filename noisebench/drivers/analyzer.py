@@ -35,6 +35,7 @@ from noisebench.bench.acquisition import (
     MarkerReading,
     SweepMode,
     Trace,
+    TraceUnit,
 )
 from noisebench.bench.instruments import Analyzer
 from noisebench.errors import (
@@ -45,6 +46,7 @@ from noisebench.errors import (
     NoisebenchError,
 )
 from noisebench.science.filters import FilterKind, RbwFilter
+from noisebench.science.plausibility import check_trace_values
 
 from .profile import (
     AnalyzerProfile,
@@ -445,6 +447,7 @@ class ScpiAnalyzer(Analyzer):
         elapsed = self._run_acquisition()
         values = self._fetch_trace(settings)
         self._channel.check_errors(self.spec.trace.query)
+        self._check_plausible(values, settings)
         return Trace(
             freq_hz=settings.frequencies_hz(),
             values=values,
@@ -534,7 +537,29 @@ class ScpiAnalyzer(Analyzer):
             self._block_failures += 1
             raise
         self._block_failures = 0
+        self._last_transfer = use
         return _checked_values(values, settings.points, tr.query)
+
+    def _check_plausible(self, values: np.ndarray, settings: AcquisitionSettings) -> None:
+        """SCPI not-a-number codes and levels no analyzer displays, named with what to check
+        in this profile (the byte order for binary transfers)."""
+        tr = self.spec.trace
+        if getattr(self, "_last_transfer", "binary") == "binary":
+            order = "big" if tr.big_endian else "little"
+            fix = (
+                f"the values look mis-decoded: profile {self.profile.name!r} sends "
+                f"{tr.byte_order!r} and decodes {order}-endian {tr.datatype!r} numbers; the "
+                "byte-order command and big_endian must describe the same order (or use the "
+                "ASCII transfer)"
+            )
+        else:
+            fix = "check the trace format and unit commands of the profile"
+        check_trace_values(
+            values,
+            logarithmic=tr.unit in (TraceUnit.DBM, TraceUnit.DBM_PER_HZ),
+            freq_hz=settings.frequencies_hz(),
+            decode_fix=fix,
+        )
 
     def _select_format(self, use: str) -> None:
         if self._format_sent == use:
@@ -762,7 +787,13 @@ def _checked_values(values: np.ndarray, points: int, command: str) -> np.ndarray
             command=command,
         )
     if not np.all(np.isfinite(values)):
-        raise CommunicationError(f"trace from {command!r} holds non-finite values", command=command)
+        bad = int(np.count_nonzero(~np.isfinite(values)))
+        raise CommunicationError(
+            f"trace from {command!r} holds {bad} non-finite value(s) of {values.size}: a "
+            "transfer error, or mis-decoded data if it repeats (check the byte-order command "
+            "and big_endian in the profile)",
+            command=command,
+        )
     return values
 
 

@@ -145,7 +145,8 @@ def decode_block_values(
             command=command,
         )
     dtype = np.dtype((">" if big_endian else "<") + f"f{size}")
-    return np.frombuffer(payload, dtype=dtype).astype(np.float64)
+    with np.errstate(invalid="ignore", over="ignore"):  # garbage is judged by the caller
+        return np.frombuffer(payload, dtype=dtype).astype(np.float64)
 
 
 def parse_ascii_values(text: str, command: str = "?") -> np.ndarray:
@@ -323,7 +324,9 @@ class VisaSession(Transport):
         except (pyvisa.errors.Error, OSError, ValueError, AttributeError) as exc:
             code = getattr(exc, "error_code", None)
             raise CommunicationError(
-                f"cannot open {self.resource!r}: {exc}", visa_code=code, resource=self.resource
+                f"cannot open {self.resource!r}: {_open_failure_words(exc, self.open_timeout_s)}",
+                visa_code=code,
+                resource=self.resource,
             ).add_context(
                 fix="check the address, that the instrument is on and reachable, and for "
                 "USB/serial that pyusb/pyserial are installed"
@@ -335,6 +338,7 @@ class VisaSession(Transport):
         self._res = res
         self._is_socket = getattr(res, "resource_class", "") == "SOCKET"
         if self._is_socket:
+            self._require_connected()
             self._no_delay()
         if self.binary_reader == "fast" and not self._termchar_switchable():
             logger.info(
@@ -344,6 +348,34 @@ class VisaSession(Transport):
             )
             self.binary_reader = "pyvisa"
         logger.info("opened %s (%s)", self.resource, self.visa_library)
+
+    def _require_connected(self) -> None:
+        """pyvisa-py returns a SOCKET resource whose connect failed (refused, unreachable)
+        without an error; ask the socket itself, so the failure is named at open, not as a
+        'closed connection' at the first command."""
+        sock = self._socket()
+        if sock is None:
+            return
+        error = 0
+        try:
+            sock.getpeername()
+            return
+        except OSError:
+            try:
+                error = sock.getsockopt(socket.SOL_SOCKET, socket.SO_ERROR)
+                if error == 0:  # still connecting: wait for the outcome
+                    select.select([], [sock], [], self.open_timeout_s)
+                    error = sock.getsockopt(socket.SOL_SOCKET, socket.SO_ERROR)
+                    if error == 0:
+                        sock.getpeername()
+                        return
+            except OSError as exc:
+                error = exc.errno or 0
+        self.close()
+        raise CommunicationError(
+            f"cannot connect to {self.resource!r}: {_socket_error_words(error)}",
+            resource=self.resource,
+        )
 
     def _termchar_switchable(self) -> bool:
         """The fast block read needs VI_ATTR_TERMCHAR_EN writable (some back ends refuse)."""
@@ -791,3 +823,41 @@ class VisaSession(Transport):
                 command=command,
                 resource=self.resource,
             )
+
+
+def _socket_error_words(errno_code: int) -> str:
+    """What a failed TCP connect means on a bench, in words, with what to check."""
+    import errno
+    import os
+
+    if errno_code == errno.ECONNREFUSED:
+        return (
+            "connection refused: the host answered but nothing listens on that port; check the "
+            "port number (5025 is the usual SCPI socket port), that the instrument's SCPI "
+            "socket server is enabled and that no other program holds its only connection"
+        )
+    if errno_code in (errno.EHOSTUNREACH, errno.ENETUNREACH, errno.ETIMEDOUT, 0):
+        return (
+            "the host does not answer (unreachable or timed out); check the IP address, the "
+            "network cable and subnet, that the instrument is on, and firewalls"
+        )
+    return f"{os.strerror(errno_code)}; check the address and that the instrument is on"
+
+
+def _open_failure_words(exc: BaseException, open_timeout_s: float) -> str:
+    """A VISA open failure in words; the numeric VISA code stays in the error's context."""
+    from pyvisa import constants
+
+    code = getattr(exc, "error_code", None)
+    if code == constants.StatusCode.error_timeout:
+        return (
+            f"no connection within {open_timeout_s:g} s: the host is unreachable or does not "
+            "answer on that port; check the IP address, the network cable and subnet, that the "
+            "instrument is on, and firewalls"
+        )
+    if code == constants.StatusCode.error_resource_not_found:
+        return "no such resource: check the address string and that the instrument is connected"
+    if code == constants.StatusCode.error_resource_busy:
+        return "the resource is busy: another program holds the instrument; close it first"
+    abbreviation = getattr(exc, "description", None)
+    return str(abbreviation or exc)

@@ -421,9 +421,11 @@ def nb_measure_point(nb_run_plan: PlanRunner) -> Callable[..., Any]:
     def measure(freq_hz: float, plan: Any = None) -> Any:
         record = nb_run_plan(plan, freqs_hz=[freq_hz])
         if not record.points:
+            skipped = record.info.notes.get("skipped_points") or []
+            why = f": {skipped[0].get('reason')}" if skipped else ""
             raise AssertionError(
                 f"no point measured at {freq_hz:.9g} Hz "
-                f"(run {record.info.run_id} {record.info.status})"
+                f"(run {record.info.run_id} {record.info.status}){why}"
             )
         return record.points[0]
 

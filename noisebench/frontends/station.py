@@ -188,7 +188,9 @@ def safe_url(url: str) -> str:
 
 
 def _folder_safe(text: str) -> str:
-    return "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in text)
+    from noisebench.user_files import safe_path_component
+
+    return safe_path_component(text, default="unit")
 
 
 class Station:

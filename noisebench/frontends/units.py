@@ -14,6 +14,7 @@ from typing import Any
 from noisebench.errors import (
     InputError,
 )
+from noisebench.user_files import MAX_UNIT_LIST_BYTES, read_user_text
 
 logger = logging.getLogger(__name__)
 
@@ -182,7 +183,5 @@ def units_from_file(
 ) -> list[UnitId]:
     """Units listed in a text file, one serial or barcode line per line."""
     path = Path(path)
-    with path.open(encoding="utf-8-sig", newline="") as handle:  # a byte-order mark is fine
-        return units_from_lines(
-            handle.read().splitlines(), lot=lot, part_number=part_number, source=path.name
-        )
+    text = read_user_text(path, MAX_UNIT_LIST_BYTES, field="units", what="unit list")
+    return units_from_lines(text.splitlines(), lot=lot, part_number=part_number, source=path.name)

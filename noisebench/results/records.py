@@ -55,8 +55,8 @@ FLAG_DESCRIPTIONS: dict[PointFlag, str] = {
     "use a higher-ENR source or more averages.",
     PointFlag.NEAR_ANALYZER_FLOOR: "DUT noise only a few dB above the analyzer's own noise: "
     "the floor correction is large and adds uncertainty.",
-    PointFlag.ENR_EXTRAPOLATED: "Frequency outside the ENR table: the ENR was clamped to the "
-    "nearest table value.",
+    PointFlag.ENR_EXTRAPOLATED: "Frequency outside the ENR table (the point never passes): the "
+    "ENR was clamped to the nearest table value.",
     PointFlag.SPURS_EXCLUDED: "Narrowband lines were found in the band and left out of the "
     "noise estimate.",
     PointFlag.TIME_LIMIT: "The time limit was reached before the target uncertainty.",
@@ -65,8 +65,18 @@ FLAG_DESCRIPTIONS: dict[PointFlag, str] = {
     PointFlag.LOW_GAIN: "Low DUT gain: the second-stage correction is large.",
     PointFlag.COMPRESSION_RISK: "Total noise power is near the analyzer's input limit: "
     "check linearity (e.g. add 3 dB attenuation).",
-    PointFlag.NEGATIVE_TE: "The corrected noise temperature came out below zero, which is "
-    "physically implausible: check calibration and losses.",
+    PointFlag.NEGATIVE_TE: "The corrected noise temperature came out below zero (within "
+    "4 u; further below is refused), which no working DUT does: the point never passes; "
+    "check calibration, losses and the DUT supply.",
+    PointFlag.CAL_Y_TOO_SMALL: "The system calibration used here had a Y-factor close to 1: "
+    "its second-stage correction is noisy; use a higher-ENR source.",
+    PointFlag.CAL_TIME_LIMIT: "The calibration used here stopped at its time limit before its "
+    "target uncertainty.",
+    PointFlag.CAL_EXCESS_SCATTER: "A calibration reading used here scattered more than noise "
+    "statistics predict.",
+    PointFlag.CAL_SPURS_EXCLUDED: "Narrowband lines were removed from a calibration reading "
+    "used here.",
+    PointFlag.CAL_NEAR_ANALYZER_FLOOR: "The calibration used here was close to the analyzer floor.",
 }
 
 

@@ -29,7 +29,7 @@ from pydantic import BaseModel, ConfigDict, Field
 from noisebench.bench.acquisition import AcquisitionSettings
 from noisebench.errors import InputError, MeasurementError
 from noisebench.science.density import NoiseDensity
-from noisebench.science.physics import BOLTZMANN_J_PER_K, DB_PER_NEPER_POWER, T0_K
+from noisebench.science.physics import BOLTZMANN_J_PER_K, DB_PER_NEPER_POWER, T0_K, ratio_from_db
 
 SETTINGS_THAT_MATTER = (
     "rbw_hz",
@@ -171,7 +171,7 @@ def floor_design_u_db(
 
     ts = source_temperature_k
     analyzer_noise = max(floor.density_w_per_hz - BOLTZMANN_J_PER_K * ts, 0.0)
-    dut_density = BOLTZMANN_J_PER_K * ts * 10 ** (path_gain_db / 10) + analyzer_noise
+    dut_density = BOLTZMANN_J_PER_K * ts * float(ratio_from_db(path_gain_db)) + analyzer_noise
     dut = NoiseDensity(freq_hz=floor.freq_hz, density_w_per_hz=dut_density, u_density_w_per_hz=0.0)
     try:
         point = gain_method_point(
@@ -206,8 +206,8 @@ def system_design_u_db(
         cal = calibrate_point(hot, cold, enr_db, cold_temperature_k=tc, t0_k=t0_k)
     except MeasurementError:
         return math.inf
-    g = 10 ** (design_gain_db / 10)
-    th = float(hot_temperature_k(10 ** (enr_db / 10), tc, t0_k))
+    g = float(ratio_from_db(design_gain_db))
+    th = float(hot_temperature_k(ratio_from_db(enr_db), tc, t0_k))
     scale = cold.density_w_per_hz / (tc + cal.te_k)
     f = hot.freq_hz
     dut_hot = NoiseDensity(

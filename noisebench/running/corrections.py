@@ -23,6 +23,7 @@ from noisebench.bench.registry import BenchSession
 from noisebench.errors import InputError
 from noisebench.running.plan import Plan
 from noisebench.science.point import Method
+from noisebench.science.ranges import check_range
 
 
 @dataclass
@@ -125,6 +126,12 @@ def resolve_corrections(plan: Plan, session: BenchSession) -> Corrections:
                 "the bench cannot report the source temperature",
                 fix="give it in kelvin, e.g. 296.5",
             )
+        check_range(  # a bench that reports degrees Celsius, or a broken sensor
+            "physical_temperature_k",
+            "corrections.source_temperature_k",
+            ts,
+            on_purpose=c.cryogenic,
+        )
     else:
         ts = float(c.source_temperature_k)
     enr_table = None

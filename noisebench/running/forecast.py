@@ -36,7 +36,13 @@ from noisebench.running.groups import PointGroup, plan_groups
 from noisebench.running.plan import Plan
 from noisebench.science.density import NoiseDensity
 from noisebench.science.filters import GAUSSIAN, frequency_power_correlation
-from noisebench.science.physics import BOLTZMANN_J_PER_K, T0_K
+from noisebench.science.physics import (
+    BOLTZMANN_J_PER_K,
+    T0_K,
+    ratio_from_db,
+    source_hot_temperature_k,
+    te_k_from_nf_db,
+)
 from noisebench.science.point import Method
 
 DEFAULT_ZERO_SPAN_SWEEP_S = 1e-3
@@ -145,9 +151,9 @@ def _declared_priors(plan: Plan, freq_hz: float, source_k: float) -> Priors:
             fix=f"declare {', '.join(missing)} in [expect]",
         )
     t0 = plan.corrections.t0_k
-    te1 = t0 * (10 ** (e.dut_nf_db / 10) - 1)  # type: ignore[operator]
-    te_sa = t0 * (10 ** (e.analyzer_nf_db / 10) - 1)  # type: ignore[operator]
-    g = 10 ** (e.dut_gain_db / 10)  # type: ignore[operator]
+    te1 = float(te_k_from_nf_db(e.dut_nf_db, t0))  # type: ignore[arg-type]
+    te_sa = float(te_k_from_nf_db(e.analyzer_nf_db, t0))  # type: ignore[arg-type]
+    g = float(ratio_from_db(e.dut_gain_db))  # type: ignore[arg-type]
     enr_db = e.enr_db
     if plan.method is Method.Y_FACTOR and enr_db is None:
         from noisebench.science.enr import EnrTable
@@ -159,7 +165,7 @@ def _declared_priors(plan: Plan, freq_hz: float, source_k: float) -> Priors:
     if plan.method is Method.GAIN:
         readings = {"dut": k * (g * (ts + te1) + te_sa), "floor": k * (ts + te_sa)}
     else:
-        th = t0 * 10 ** (enr_db / 10) + ts  # type: ignore[operator]
+        th = float(source_hot_temperature_k(ratio_from_db(enr_db), ts, t0))  # type: ignore[arg-type]
         readings = {
             "hot": k * (g * (th + te1) + te_sa),
             "cold": k * (g * (ts + te1) + te_sa),

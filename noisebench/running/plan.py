@@ -56,6 +56,8 @@ from noisebench.bench.acquisition import AveragingScale, Detector, SweepMode
 from noisebench.errors import InputError
 from noisebench.running.plan_errors import PlanError, format_validation_error
 from noisebench.science.point import Method
+from noisebench.science.ranges import check_range, warn_unusual
+from noisebench.user_files import MAX_PLAN_BYTES, check_file_size
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -74,6 +76,28 @@ except ImportError:  # pragma: no cover
 T0_DEFAULT_K = 290.0
 
 _STRICT = ConfigDict(extra="forbid", validate_default=True, allow_inf_nan=False)
+
+
+def _ranged(key: str, section: str, *fields: str, purpose: str | None = None) -> Any:
+    """A field validator checking ``fields`` (numbers or lists of numbers) against the
+    plausible range ``RANGES[key]`` (noisebench.science.ranges): impossible values are refused
+    with the likely slip, unusual ones warned once as ``<section>.<field>``. ``purpose`` names
+    a boolean field declared earlier in the model that states an unusual value on purpose."""
+
+    def check(cls: type, value: Any, info: ValidationInfo) -> Any:
+        if value is None or isinstance(value, (str, bool)):
+            return value
+        on_purpose = bool(purpose and info.data.get(purpose))
+        items = value if isinstance(value, list) else [value]
+        for i, item in enumerate(items):
+            name = info.field_name if not isinstance(value, list) else f"{info.field_name}[{i}]"
+            check_range(key, name, item, on_purpose=on_purpose, warn=False)
+            warn_unusual(key, f"{section}.{name}", item)
+        return value
+
+    return field_validator(*fields, mode="after")(check)
+
+
 #: the most frequency points one segment may hold (a typo in step_hz must not exhaust memory)
 MAX_SEGMENT_POINTS = 100_000
 #: the largest constant loss a plan accepts, dB (beyond it the noise figure is unmeasurable)
@@ -95,7 +119,8 @@ class DutSection(BaseModel):
 
 
 class AnalyzerSection(BaseModel):
-    """Spectrum analyzer: a resource string (VISA or ``sim://<scenario>?seed=N``)."""
+    """Spectrum analyzer: a resource string (VISA, ``sim://<scenario>?seed=N``, or a sampled
+    receiver: ``sigmf://<folder>``, ``samples://<name>``, ``sim://...&receiver=sampled``)."""
 
     model_config = _STRICT
     resource: str = Field(min_length=1)
@@ -107,6 +132,26 @@ class AnalyzerSection(BaseModel):
     compression_dbm: float | None = Field(
         default=None, description="total input power for 1 dB compression at 0 dB attenuation"
     )
+
+    _max_input_range = _ranged("analyzer_max_input_dbm", "bench.analyzer", "max_input_dbm")
+    _compression_range = _ranged("analyzer_compression_dbm", "bench.analyzer", "compression_dbm")
+
+    @model_validator(mode="after")
+    def _compression_below_damage(self) -> AnalyzerSection:
+        if (
+            self.max_input_dbm is not None
+            and self.compression_dbm is not None
+            and self.compression_dbm >= self.max_input_dbm
+        ):
+            raise InputError(
+                "compression_dbm",
+                f"{self.compression_dbm:g} dBm is not below max_input_dbm "
+                f"{self.max_input_dbm:g} dBm: a mixer compresses well before its input is "
+                "damaged (common practice: 20-30 dB apart)",
+                fix="give the 1 dB compression level at 0 dB attenuation and the rated "
+                "maximum input from the analyzer's manual",
+            )
+        return self
 
 
 class NoiseSourceSection(BaseModel):
@@ -125,6 +170,8 @@ class NoiseSourceSection(BaseModel):
     current_limit_a: float = Field(default=0.06, gt=0, le=5)
     max_drive_v: float = Field(default=30.0, gt=0, le=60)
     settle_time_s: float = Field(default=0.05, ge=0, le=60)
+
+    _drive_range = _ranged("drive_v", "bench.noise_source", "drive_v", "max_drive_v")
 
     @model_validator(mode="after")
     def _check(self) -> NoiseSourceSection:
@@ -154,6 +201,8 @@ class GeneratorSection(BaseModel):
         default=0.0, le=30.0, description="highest level the sequencer may ever set, dBm"
     )
 
+    _level_range = _ranged("generator_level_dbm", "bench.generator", "max_level_dbm")
+
 
 class BenchSection(BaseModel):
     """The instruments. A plain string for an instrument is shorthand for its resource."""
@@ -167,7 +216,9 @@ class BenchSection(BaseModel):
         description="auto: the simulator moves the paths itself; "
         "operator: always prompt to move cables",
     )
-    ambient_k: float | None = Field(default=None, gt=0, le=400)
+    ambient_k: float | None = Field(default=None, gt=0)
+
+    _ambient_range = _ranged("physical_temperature_k", "bench", "ambient_k")
 
     @field_validator("analyzer", "generator", mode="before")
     @classmethod
@@ -202,6 +253,7 @@ class AcquisitionPolicy(BaseModel):
     max_averages: int = Field(default=20_000, ge=1, le=1_000_000)
     target_u_nf_db: float = Field(default=0.05, ge=MIN_TARGET_U_NF_DB, le=10)
     time_limit_s: float = Field(default=30.0, gt=0)
+    _rbw_range = _ranged("rbw_hz", "acquisition", "rbw_hz")
     max_trace_span_hz: float = Field(
         default=0.0, ge=0, description="points whose bands fit in one trace this wide share it"
     )
@@ -280,6 +332,11 @@ class Segment(BaseModel):
             if not math.isfinite(f) or f <= 0:
                 raise InputError(f"freqs_hz[{i}]", f"must be a finite frequency > 0 (got {f!r})")
         return value
+
+    _rbw_range = _ranged("rbw_hz", "sweep.segments", "rbw_hz")
+    _freq_range = _ranged(  # after the sign check
+        "frequency_hz", "sweep.segments", "start_hz", "stop_hz", "freqs_hz"
+    )
 
     @model_validator(mode="after")
     def _one_form(self) -> Segment:
@@ -367,6 +424,8 @@ class SweepSection(BaseModel):
     def _positive(cls, value: list[float] | None) -> list[float] | None:
         return Segment._positive_freqs(value)
 
+    _freq_range = _ranged("frequency_hz", "sweep", "freqs_hz")  # after the sign check
+
     @model_validator(mode="after")
     def _not_empty(self) -> SweepSection:
         if self.freqs_hz is None and not self.segments:
@@ -399,10 +458,15 @@ class CorrectionsSection(BaseModel):
     """
 
     model_config = _STRICT
+    cryogenic: bool = Field(
+        default=False,
+        description="true: a termination, cold load or loss below 200 K is meant (e.g. a cold "
+        "load in liquid nitrogen, 77 K); otherwise such a value is refused as a typo",
+    )
     input_loss: LossValue = 0.0
     output_loss: LossValue = 0.0
-    input_loss_temperature_k: float | None = Field(default=None, gt=0, le=400)
-    output_loss_temperature_k: float | None = Field(default=None, gt=0, le=400)
+    input_loss_temperature_k: float | None = Field(default=None, gt=0)
+    output_loss_temperature_k: float | None = Field(default=None, gt=0)
     source_temperature_k: float | Literal["bench"] = "bench"
     t0_k: float = Field(
         default=T0_DEFAULT_K,
@@ -410,6 +474,16 @@ class CorrectionsSection(BaseModel):
         le=400,
         description="reference temperature of the noise figure, K",
     )
+
+    _temperature_range = _ranged(
+        "physical_temperature_k",
+        "corrections",
+        "input_loss_temperature_k",
+        "output_loss_temperature_k",
+        "source_temperature_k",
+        purpose="cryogenic",
+    )
+    _t0_range = _ranged("reference_temperature_k", "corrections", "t0_k")
 
     @field_validator("input_loss", "output_loss", mode="after")
     @classmethod
@@ -439,7 +513,7 @@ class CorrectionsSection(BaseModel):
     @field_validator("source_temperature_k", mode="after")
     @classmethod
     def _temperature(cls, value: float | str) -> float | str:
-        if isinstance(value, float) and not (0 < value <= 400):
+        if isinstance(value, float) and not (0 < value <= 500):
             raise InputError(
                 "source_temperature_k",
                 f"{value!r} K is not a plausible bench temperature",
@@ -461,17 +535,20 @@ class GainSection(BaseModel):
 
     model_config = _STRICT
     source: Literal["measure", "file", "constant"]
-    value_db: float | None = Field(default=None, ge=-50, le=100)
+    value_db: float | None = None
     u_gain_db: float = Field(
         default=0.0, ge=0, le=10, description="standard uncertainty of a file/constant gain, dB"
     )
     file: str | None = None
-    max_gain_db: float | None = Field(default=None, ge=-50, le=100)
-    dut_p1db_out_dbm: float | None = Field(default=None, ge=-100, le=60)
+    max_gain_db: float | None = None
+    dut_p1db_out_dbm: float | None = None
     rbw_hz: float = Field(default=1e3, gt=0, description="RBW of the tone measurement")
     readings: int = Field(default=3, ge=2, le=100)
     averages: int = Field(default=4, ge=1, le=10_000)
     linearity_u_db: float = Field(default=0.02, ge=0, le=5)
+
+    _gain_range = _ranged("dut_gain_db", "gain", "value_db", "max_gain_db")
+    _p1db_range = _ranged("dut_p1db_dbm", "gain", "dut_p1db_out_dbm")
 
     @model_validator(mode="after")
     def _complete(self) -> GainSection:
@@ -522,24 +599,30 @@ class SafetySection(BaseModel):
     dut_bandwidth_hz: float | None = Field(
         default=None, gt=0, description="band over which the DUT has gain (None: 2 x top freq)"
     )
-    dut_max_gain_db: float | None = Field(default=None, ge=-50, le=100)
+    dut_max_gain_db: float | None = None
     dut_max_input_dbm: float | None = None
     compression_backoff_db: float = Field(default=10.0, ge=0, le=60)
     caution_backoff_db: float = Field(default=20.0, ge=0, le=80)
+
+    _gain_range = _ranged("dut_gain_db", "safety", "dut_max_gain_db")
 
 
 class ExpectSection(BaseModel):
     """Prior knowledge for ``noisebench estimate`` (the simulator supplies what is missing)."""
 
     model_config = _STRICT
-    dut_nf_db: float | None = Field(default=None, ge=0, le=40)
-    dut_gain_db: float | None = Field(default=None, ge=-30, le=80)
-    analyzer_nf_db: float | None = Field(default=None, ge=0, le=60)
-    enr_db: float | None = Field(default=None, ge=0, le=45)
+    dut_nf_db: float | None = None
+    dut_gain_db: float | None = None
+    analyzer_nf_db: float | None = None
+    enr_db: float | None = None
     sweep_time_factor: float = Field(
         default=2.5, gt=0, le=100, description="k in sweep time = k span / RBW^2"
     )
     overhead_s: float = Field(default=0.02, ge=0, le=60, description="per trace, s")
+
+    _gain_range = _ranged("dut_gain_db", "expect", "dut_gain_db")
+    _nf_range = _ranged("nf_db", "expect", "dut_nf_db", "analyzer_nf_db")
+    _enr_range = _ranged("enr_db", "expect", "enr_db")
 
 
 class OutputSection(BaseModel):
@@ -668,10 +751,15 @@ def parse_plan(
         plan = Plan.model_validate(data)
     except ValidationError as exc:
         raise PlanError(format_validation_error(exc), source=source) from None
-    from noisebench.running.plan_checks import _resolve_profiles, cross_check
+    from noisebench.running.plan_checks import (
+        _resolve_profiles,
+        _resolve_sampled,
+        cross_check,
+    )
 
     plan.with_base_dir(base_dir or Path.cwd())
     _resolve_profiles(plan)
+    _resolve_sampled(plan)
     problems = cross_check(plan, check_files=check_files)
     if problems:
         raise PlanError(problems, source=source)
@@ -681,6 +769,10 @@ def parse_plan(
 def load_plan(path: str | Path, *, check_files: bool = True) -> Plan:
     """Read and validate a TOML plan file. Raises :class:`PlanError` (all problems) or OSError."""
     path = Path(path)
+    try:
+        check_file_size(path, MAX_PLAN_BYTES, field="plan", what="plan")
+    except InputError as exc:
+        raise PlanError([str(exc)], source=str(path)) from None
     try:
         text = path.read_text(encoding="utf-8-sig")  # a byte-order mark (Windows editors) is ok
     except UnicodeDecodeError as exc:

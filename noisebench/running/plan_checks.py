@@ -27,6 +27,7 @@ def cross_check(plan: Plan, *, check_files: bool = True) -> list[str]:
     problems += _check_duplicates(plan)
     problems += _check_method_needs(plan)
     problems += _check_bench(plan)
+    problems += _check_sampled(plan)
     if check_files:
         problems += _check_enr(plan)
         problems += _check_tables(plan)
@@ -39,7 +40,11 @@ def _profile_sections(plan: Plan) -> list[tuple[str, Any]]:
     bench = plan.bench
     if bench.analyzer.resource.startswith("sim://"):
         return []
-    out: list[tuple[str, Any]] = [("bench.analyzer", bench.analyzer)]
+    from noisebench.sampled.address import is_sampled
+
+    out: list[tuple[str, Any]] = []
+    if not is_sampled(bench.analyzer.resource):  # a sampled receiver has no SCPI profile
+        out.append(("bench.analyzer", bench.analyzer))
     if bench.generator is not None:
         out.append(("bench.generator", bench.generator))
     if bench.noise_source.drive == "supply":
@@ -54,6 +59,81 @@ def _resolve_profiles(plan: Plan) -> None:
         candidate = plan.resolve_path(section.profile)
         if candidate.is_file():
             section.profile = str(candidate)
+
+
+def _resolve_sampled(plan: Plan) -> None:
+    """A ``sigmf://`` folder and a ``scale=`` file relative to the plan are found from any
+    working folder (relative names are relative to the plan)."""
+    from urllib.parse import parse_qs, urlencode, urlsplit
+
+    from noisebench.sampled.address import is_sampled
+
+    section = plan.bench.analyzer
+    resource = section.resource
+    parts = urlsplit(resource)
+    if not (is_sampled(resource) or parts.scheme == "sim"):
+        return
+    query = parse_qs(parts.query, keep_blank_values=True)
+    if parts.scheme != "sigmf" and "scale" not in query:
+        return
+    if "scale" in query:
+        query["scale"] = [str(plan.resolve_path(query["scale"][-1]))]
+    target = parts.netloc + parts.path
+    if parts.scheme == "sigmf" and target:
+        target = str(plan.resolve_path(target))
+    text = f"{parts.scheme}://{target}"
+    if query:
+        text += "?" + urlencode({k: v[-1] for k, v in query.items()}, safe="/:")
+    section.resource = text
+
+
+def _check_sampled(plan: Plan) -> list[str]:
+    """A sampled receiver's address, its recordings folder and scale file, and what recordings
+    cannot do (drive a generator or a noise source)."""
+    from noisebench.sampled.address import is_sampled, parse_sampled_address
+    from noisebench.sims.address import parse_sim_address
+
+    resource = plan.bench.analyzer.resource
+    key = "bench.analyzer.resource"
+    try:
+        if is_sampled(resource):
+            address = parse_sampled_address(resource)
+            options = address.options
+        elif resource.startswith("sim://"):
+            try:
+                sim = parse_sim_address(resource)
+            except InputError:
+                return []  # reported by _check_bench
+            if sim.receiver != "sampled":
+                return []
+            address, options = None, sim.sampled
+        else:
+            return []
+    except InputError as exc:
+        return [f"{key}: {exc.message.split(': ', 1)[-1]}"]
+    problems = []
+    if options.scale and not Path(options.scale).is_file():
+        problems.append(f"{key}: scale file {options.scale!r} not found (check the path)")
+    if address is not None and address.scheme == "sigmf":
+        if not Path(address.target).is_dir():
+            problems.append(f"{key}: no recordings folder {address.target!r}")
+        if plan.bench.generator is not None:
+            problems.append(
+                'bench.generator: recordings cannot drive a generator (use [gain] source = "file" '
+                'or "constant")'
+            )
+        if plan.bench.noise_source.drive not in ("auto", "none"):
+            problems.append(
+                "bench.noise_source.drive: with recordings the noise source is the recorded "
+                'state (use "auto", or "none" for the gain method)'
+            )
+    if address is not None and address.scheme == "samples":
+        if plan.bench.noise_source.drive in ("auto", "analyzer"):
+            problems.append(
+                "bench.noise_source.drive: a sampled receiver has no noise-source drive output "
+                '(use "supply", "operator" or "none")'
+            )
+    return problems
 
 
 def _check_profiles(plan: Plan) -> list[str]:

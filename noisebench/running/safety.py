@@ -23,7 +23,13 @@ import math
 from dataclasses import dataclass
 
 from noisebench.errors import InputError, SafetyError, require_positive
-from noisebench.science.physics import BOLTZMANN_J_PER_K, T0_K, w_to_dbm
+from noisebench.science.physics import (
+    T0_K,
+    ratio_from_db,
+    te_k_from_nf_db,
+    thermal_density_w_per_hz,
+    w_to_dbm,
+)
 
 #: Used when neither the driver nor the plan states the rated maximum input: a conservative
 #: value for general-purpose analyzers [common practice]. Put the real rating in the plan.
@@ -76,7 +82,7 @@ def hot_source_temperature_k(enr_db: float, cold_temperature_k: float, t0_k: flo
     """
     from noisebench.science.methods.yfactor import hot_temperature_k
 
-    return float(hot_temperature_k(10.0 ** (enr_db / 10.0), cold_temperature_k, t0_k))
+    return float(hot_temperature_k(ratio_from_db(enr_db), cold_temperature_k, t0_k))
 
 
 def total_noise_power_dbm(
@@ -87,8 +93,9 @@ def total_noise_power_dbm(
     require_positive("source_temperature_k", source_temperature_k)
     if dut_te_k < 0:
         raise InputError("dut_te_k", f"must be >= 0 (got {dut_te_k!r})")
-    gain_lin = 10.0 ** (gain_db / 10.0)
-    return w_to_dbm(BOLTZMANN_J_PER_K * (source_temperature_k + dut_te_k) * gain_lin * bandwidth_hz)
+    gain_lin = float(ratio_from_db(gain_db))
+    density = thermal_density_w_per_hz(source_temperature_k + dut_te_k) * gain_lin
+    return w_to_dbm(float(density) * bandwidth_hz)
 
 
 def hot_power_from_cold_density_dbm(
@@ -271,7 +278,7 @@ class PowerGuard:
             te = (
                 0.0
                 if self.declared_nf_db is None
-                else self.t0_k * (10.0 ** (self.declared_nf_db / 10.0) - 1.0)
+                else float(te_k_from_nf_db(self.declared_nf_db, self.t0_k))
             )
             estimates.append(
                 total_noise_power_dbm(th, self.declared_gain_db, self.bandwidth_hz, dut_te_k=te)

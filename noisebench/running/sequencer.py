@@ -143,11 +143,12 @@ class Sequencer(SwitchedSweep, GainStep, VerdictStep):
         return self._run_with(writer)
 
     def default_folder(self) -> Path:
-        """``<output.folder>/<UTC time>_<dut id>_<method>`` under the plan's folder."""
+        """``<output.folder>/<UTC time>_<dut id>_<method>`` under the plan's folder (the DUT id
+        made safe as one file-name component: no ``/``, ``..`` or control characters)."""
+        from noisebench.user_files import safe_path_component
+
         stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
-        dut = "".join(
-            ch if ch.isalnum() or ch in "-_." else "_" for ch in (self.plan.dut.id or "dut")
-        )
+        dut = safe_path_component(self.plan.dut.id, default="dut")
         return (
             self.plan.resolve_path(self.plan.output.folder)
             / f"{stamp}_{dut}_{self.plan.method.value}"
@@ -210,6 +211,15 @@ class Sequencer(SwitchedSweep, GainStep, VerdictStep):
         return self._finish(writer, "complete")
 
     def _prepare(self, writer) -> None:
+        analyzer = self.session.bench.analyzer
+        if self.plan.method is Method.GAIN and not analyzer.absolute_level:
+            raise InputError(
+                "bench.analyzer",
+                "the gain method reads absolute noise densities, but this receiver's scale is "
+                "not calibrated (the Y-factor method needs only ratios)",
+                fix="calibrate the receiver scale with a known tone or two known noise levels "
+                "and name it with ?scale=<file> on the resource, or use the Y-factor method",
+            )
         self.corrections = resolve_corrections(self.plan, self.session)
         self.guard = power_guard_for(self.plan, self.session, self.corrections)
         writer.update_info(
@@ -220,6 +230,9 @@ class Sequencer(SwitchedSweep, GainStep, VerdictStep):
     def _finish(self, writer, status: str):
         if self._applied:  # the frequencies each set of settings served, complete
             writer.update_info(applied_settings=self._applied)
+        instrument_notes = self.session.bench.analyzer.run_notes()
+        if instrument_notes:
+            writer.update_info(notes={**writer.info.notes, **instrument_notes})
         try:
             verdict = self._verdict(writer)
         except NoisebenchError as exc:  # a verdict problem must not lose the run

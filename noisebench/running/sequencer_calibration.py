@@ -207,6 +207,7 @@ class CalibrationSteps(AveragingRounds):
                         "y_db": cal.y_db,
                         "enr_db": cal.enr_db,
                         "averages": readings.averages("hot"),
+                        "flags": [flag.value for flag in cal.flags],
                     }
                 )
         return out

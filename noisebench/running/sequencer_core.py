@@ -141,7 +141,7 @@ class SequencerCore:
         if source.is_hot == hot:
             return None
         check = None
-        if hot:
+        if hot and not self.session.bench.analyzer.replays_recordings:
             settings = self.session.bench.analyzer.settings
             check = self._guard().before_hot(
                 through=connection is Connection.THROUGH,

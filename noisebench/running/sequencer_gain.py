@@ -31,6 +31,9 @@ class GainStep(SequencerCore):
             limits.max_input_dbm,
             limits.compression_at(policy.attenuation_db, False) - limits.compression_backoff_db,
         )
+        full_scale = bench.analyzer.full_scale_dbm  # a converter clips hard at full scale
+        if full_scale is not None:
+            analyzer_max = min(analyzer_max, full_scale - limits.compression_backoff_db)
         gm_plan = GainMeasurementPlan(
             freqs_hz=sorted(f for g in groups for f in g.freqs_hz),
             expected_gain_db=spec.max_gain_db,

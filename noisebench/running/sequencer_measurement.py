@@ -31,7 +31,8 @@ class MeasurementSteps(CalibrationSteps):
         readings = _Readings(names, group.freqs_hz)
         calibration = self._calibration_for(group)
         checks: list[PowerCheck] = []
-        if y_factor and self._guard().needs_cold_look:
+        replay = self.session.bench.analyzer.replays_recordings
+        if y_factor and self._guard().needs_cold_look and not replay:
             self._set_source_cold(budget)
             look = self._acquire(group, self._first_round_averages(policy, 2), budget)
             readings.add("cold", look)
@@ -150,8 +151,10 @@ class MeasurementSteps(CalibrationSteps):
         if any(c.excess_scatter for c in combined) and PointFlag.EXCESS_SCATTER not in flags:
             flags.append(PointFlag.EXCESS_SCATTER)
         reached = point.u_nf_db <= group.policy.target_u_nf_db
-        if not reached and (stop == "time_limit" or calibration.stopped_by == "time_limit"):
+        if not reached and stop == "time_limit":
             flags.append(PointFlag.TIME_LIMIT)
+        if calibration.stopped_by == "time_limit" and PointFlag.CAL_TIME_LIMIT not in flags:
+            flags.append(PointFlag.CAL_TIME_LIMIT)  # the calibration's quality travels along
         if any(c.caution for c in checks) and PointFlag.COMPRESSION_RISK not in flags:
             flags.append(PointFlag.COMPRESSION_RISK)
         share = len(group.freqs_hz)

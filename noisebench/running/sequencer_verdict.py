@@ -21,8 +21,8 @@ class VerdictStep(SequencerCore):
     def _verdict(self, writer) -> dict | None:
         """Pass/fail against the plan's [limits] with the stored budgets' expanded U."""
         mask = self.plan.limits
-        if mask is None or isinstance(mask, dict) or not writer.points:
-            return None
+        if mask is None or isinstance(mask, dict):
+            return None  # no point measured: judged below as INDETERMINATE, never unjudged
         from noisebench.results.store import load_run
         from noisebench.science.limits import judge
 

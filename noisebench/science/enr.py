@@ -50,10 +50,11 @@ from pathlib import Path
 from typing import Any, Literal, NamedTuple
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from noisebench.errors import InputError
 from noisebench.science.physics import FloatOrArray
+from noisebench.science.ranges import check_range, frequency_column_problem
 from noisebench.science.tables import read_table_text
 from noisebench.user_files import MAX_TABLE_ROWS, list_problems
 
@@ -85,7 +86,7 @@ class EnrValue(NamedTuple):
 class EnrMetadata(BaseModel):
     """What the table's ``# key: value`` lines say about the source and its calibration."""
 
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(extra="forbid", allow_inf_nan=False)
 
     serial: str | None = None
     description: str | None = None
@@ -95,6 +96,18 @@ class EnrMetadata(BaseModel):
     nominal_drive_v: float | None = Field(default=None, gt=0)
     enr_reference: Literal["t0", "absolute"] | None = None
     extra: dict[str, str] = Field(default_factory=dict)
+
+    @field_validator("calibration_temperature_k")
+    @classmethod
+    def _plausible_temperature(cls, v: float | None) -> float | None:
+        if v is None:
+            return v
+        return check_range("physical_temperature_k", "calibration_temperature_k", v)
+
+    @field_validator("nominal_drive_v")
+    @classmethod
+    def _plausible_drive(cls, v: float | None) -> float | None:
+        return v if v is None else check_range("drive_v", "nominal_drive_v", v)
 
 
 def _unwrap(exc: ValidationError) -> InputError | None:
@@ -324,7 +337,11 @@ def _parse_metadata(
     except ValidationError as exc:
         for err in exc.errors():
             key = str(err["loc"][0])
-            problems.append((f"{label} line {items[key][0]}, {key}", err["msg"]))
+            inner = (err.get("ctx") or {}).get("error")
+            msg = (
+                str(inner).removeprefix(f"{key}: ") if isinstance(inner, InputError) else err["msg"]
+            )
+            problems.append((f"{label} line {items[key][0]}, {key}", msg))
         return None, coverage_k, problems
 
 
@@ -462,14 +479,9 @@ def _table_from_rows(
     freq = [r[col[freq_col]] * scale for _, r in rows] if freq_col else []
     enr = [r[col["enr_db"]] for _, r in rows]
     u = [r[col["u_enr_db"]] for _, r in rows] if "u_enr_db" in col else None
-    if freq_col == "freq_hz" and freq and all(0 < f < 1e3 for f in freq):
-        problems.append(
-            (
-                f"{label} line {line_of[0]}, freq_hz",
-                "every frequency is below 1 kHz: are the numbers MHz or GHz? name the "
-                "column freq_mhz or freq_ghz",
-            )
-        )
+    unit_slip = frequency_column_problem(freq, freq_col or "")
+    if unit_slip is not None:
+        problems.append((f"{label} line {line_of[0]}, freq_hz", unit_slip))
     reported = {p[0] for p in problems}  # a set: linear in the number of rows
     for i, fld, msg in _column_problems(freq, enr, u):
         where = f"{label} line {line_of[i]}, {fld}" if i >= 0 else f"{label}, {fld}"

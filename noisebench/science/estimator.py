@@ -277,7 +277,12 @@ def _prepare(trace: Trace, *, reject_spurs: bool, threshold_sigma: float) -> _Pr
         _check_scatter_state(trace, power, rel_var, kernel, model)
     if reject_spurs and not zero_span and power.size >= MIN_SPUR_SEARCH_POINTS:
         search_var = rel_var if rel_var is not None else _robust_relative_variance(power)
-        excluded, spurs, widths = _find_spurs(trace, power, search_var, kernel, threshold_sigma)
+        excluded, spurs, widths = _find_spurs(
+            trace, power, search_var, kernel, threshold_sigma, marked=trace.excluded
+        )
+    elif trace.excluded is not None:
+        excluded, marked_hz, marked_widths = _marked_regions(trace.freq_hz, trace.excluded)
+        spurs, widths = np.asarray(marked_hz), np.asarray(marked_widths)
     return _Prepared(
         trace=trace,
         freq_hz=trace.freq_hz,
@@ -482,6 +487,25 @@ def _robust_relative_variance(power: np.ndarray) -> float:
     return max((1.4826 * mad / med) ** 2, 1e-12)
 
 
+def _marked_regions(
+    freq_hz: np.ndarray, marked: np.ndarray
+) -> tuple[np.ndarray, list[float], list[float]]:
+    """Points the instrument marked unusable: (mask, centre of each run, its half-width Hz)."""
+    mask = np.asarray(marked, dtype=bool).copy()
+    centres: list[float] = []
+    widths: list[float] = []
+    if not np.any(mask):
+        return mask, centres, widths
+    spacing = _uniform_spacing(freq_hz) if freq_hz.size > 1 else 0.0
+    labels, count = ndimage.label(mask)
+    for lab in range(1, count + 1):
+        idx = np.flatnonzero(labels == lab)
+        lo, hi = float(freq_hz[idx[0]]), float(freq_hz[idx[-1]])
+        centres.append(0.5 * (lo + hi))
+        widths.append(0.5 * (hi - lo) + spacing / 2)
+    return mask, centres, widths
+
+
 @functools.lru_cache(maxsize=256)
 def median_threshold_ratio(shape: float, bins: int, false_alarm: float) -> float:
     """``t`` with P(X > t M) = ``false_alarm``: X a gamma(``shape``) point, M the median of
@@ -512,9 +536,17 @@ def median_threshold_ratio(shape: float, bins: int, false_alarm: float) -> float
 
 
 def _find_spurs(
-    trace: Trace, power: np.ndarray, rel_var: float, kernel: np.ndarray, threshold_sigma: float
+    trace: Trace,
+    power: np.ndarray,
+    rel_var: float,
+    kernel: np.ndarray,
+    threshold_sigma: float,
+    marked: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Exclusion mask, spur frequencies and their excluded half-widths (Hz)."""
+    """Exclusion mask, spur frequencies and their excluded half-widths (Hz).
+
+    ``marked``: points the instrument already marked unusable; they start excluded and are
+    reported as lines (centre and half-width of each marked run)."""
     s = trace.settings
     f = trace.freq_hz
     n = power.size
@@ -536,13 +568,18 @@ def _find_spurs(
     excluded = np.zeros(n, dtype=bool)
     spurs: list[float] = []
     widths: list[float] = []
-    baseline = np.full(n, float(np.median(power)) / median_ratio)
+    noise_points = power
+    if marked is not None:
+        excluded, spurs, widths = _marked_regions(f, marked)
+        if np.any(~excluded):
+            noise_points = power[~excluded]  # marked points are no noise sample at all
+    baseline = np.full(n, float(np.median(noise_points)) / median_ratio)
     for _ in range(50):
         work = np.where(excluded, baseline * median_ratio, power)
         if short:
             # one median of all points, spurs included: a line moves it by one rank at most,
             # while dropping excluded points would lower it and let the next noise peak cross
-            baseline = np.full(n, float(np.median(power)) / median_ratio)
+            baseline = np.full(n, float(np.median(noise_points)) / median_ratio)
         else:
             baseline = ndimage.median_filter(work, size=window, mode="mirror") / median_ratio
         hits = (power > tail_ratio * baseline) & ~excluded

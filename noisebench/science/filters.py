@@ -161,6 +161,11 @@ def _window_response(window: str, x: np.ndarray) -> np.ndarray:
     return np.interp(np.asarray(x) * b3_bins, bins, spec, left=0.0, right=0.0)
 
 
+def window_b3_bins(window: str) -> float:
+    """-3 dB bandwidth of an FFT window's bin response, in bins (the RBW of one bin)."""
+    return _window_ratios(window)[2]
+
+
 def window_enbw_bins(window: str, n: int = 1024) -> float:
     """ENBW of an FFT window in bins: N * sum(w^2) / sum(w)^2 (Harris 1978)."""
     from scipy.signal import get_window

@@ -44,6 +44,7 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_serializer, field_validator
 
 from noisebench.errors import InputError
+from noisebench.science.ranges import check_range, frequency_column_problem
 from noisebench.science.tables import read_table_text
 from noisebench.user_files import MAX_TOUCHSTONE_BYTES, check_file_size, check_row_count
 
@@ -344,11 +345,21 @@ def _check_temperature(metadata: dict[str, str], label: str) -> None:
         value = float(metadata["temperature_k"])
     except ValueError:
         value = math.nan
-    if not (math.isfinite(value) and 0 < value < 1000):
+    if not (math.isfinite(value) and value > 0):
         raise InputError(
             f"{label}, temperature_k",
-            f"must be a temperature in K (0..1000), got {metadata['temperature_k']!r}",
+            f"must be a temperature in K (> 0), got {metadata['temperature_k']!r}",
         )
+    cryogenic = metadata.get("cryogenic", "").strip().lower() in ("true", "yes", "1")
+    try:
+        check_range("physical_temperature_k", "temperature_k", value, on_purpose=cryogenic)
+    except InputError as exc:
+        raise InputError(
+            f"{label}, temperature_k",
+            exc.message.removeprefix("temperature_k: ").replace(
+                "say cryogenic = true in [corrections]", "add a '# cryogenic: true' line"
+            ),
+        ) from None
 
 
 def _table_from_rows(
@@ -370,6 +381,9 @@ def _table_from_rows(
             fix="add a freq_hz column",
         )
     freq = [r[col[freq_col]] * _FREQ_COLUMNS[freq_col] for _, r in rows] if freq_col else []
+    unit_slip = frequency_column_problem(freq, freq_col or "")
+    if unit_slip is not None:
+        raise InputError(f"{label} line {lines[0]}, freq_hz", unit_slip)
     gain = [sign * r[col[value_col]] for _, r in rows]
     u = [r[col[u_col]] for _, r in rows] if u_col in col else None
     problems = _column_problems(freq, gain, u, loss=sign < 0)

@@ -45,6 +45,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from noisebench.errors import InputError, input_error_from_validation
 from noisebench.science.point import VERDICT_BLOCKING_FLAGS, PointResult
+from noisebench.science.ranges import check_range, warn_unusual
 
 __all__ = [
     "BandVerdict",
@@ -183,6 +184,16 @@ class LimitBand(BaseModel):
         if start is not None and not stop > start:
             raise ValueError(f"must be above start_hz ({start!r} Hz)")
         return stop
+
+    @field_validator("nf_max_db", "gain_min_db", "gain_max_db")
+    @classmethod
+    def _plausible(cls, value: float | None, info: Any) -> float | None:
+        if value is None:
+            return value
+        key = "limit_nf_db" if info.field_name == "nf_max_db" else "limit_gain_db"
+        check_range(key, info.field_name, value, warn=False)
+        warn_unusual(key, f"limits.bands[].{info.field_name}", value)
+        return value
 
     @field_validator("gain_max_db")
     @classmethod

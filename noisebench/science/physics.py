@@ -12,7 +12,7 @@ refuse it with :class:`~noisebench.errors.InputError` by default. Measurements o
 devices can legitimately scatter below zero, so the methods pass ``allow_negative=True`` and flag
 the point instead. A noise factor <= 0 (Te <= -T0) has no dB value and is always refused.
 
-References: reference.md §1-§3 and §10 (Friis 1944; IRE/IEEE Std 161; Kerr & Randa 2010).
+References: docs/references.md §1-§5 and §10 (Friis 1944; IRE/IEEE Std 161; Kerr & Randa 2010).
 """
 
 from __future__ import annotations
@@ -36,6 +36,147 @@ DB_PER_NEPER_POWER: float = 10.0 / math.log(10.0)
 
 FloatOrArray = float | np.ndarray
 ArrayLike = float | int | Sequence[float] | np.ndarray
+
+
+# --------------------------------------------------------------------------- array kernels
+#
+# The formulas themselves, once: numpy arrays (or floats) in, arrays out, SI units, no input
+# checks (callers validate; inside propagation models the inputs are perturbed copies of checked
+# values). The checked public functions below, the methods, the uncertainty models and the
+# simulator's component models all evaluate these, so the checks against the outside world in
+# tests/test_physics.py and tests/test_reference_cascade.py exercise the code a measurement runs.
+
+
+def ratio_from_db(db: ArrayLike) -> np.ndarray:
+    """Power ratio from dB: ``10**(db/10)``."""
+    return 10.0 ** (np.asarray(db, dtype=float) / 10.0)
+
+
+def db_from_ratio(ratio: ArrayLike) -> np.ndarray:
+    """dB from a power ratio: ``10*log10(ratio)`` (NaN/-inf for ratios <= 0)."""
+    return 10.0 * np.log10(np.asarray(ratio, dtype=float))
+
+
+def thermal_density_w_per_hz(temperature_k: ArrayLike) -> np.ndarray:
+    """Available noise density of a matched load, ``k*T``, W/Hz (docs/references.md §1)."""
+    return BOLTZMANN_J_PER_K * np.asarray(temperature_k, dtype=float)
+
+
+def nf_db_from_te_k(te_k: ArrayLike, t0_k: float = T0_K) -> np.ndarray:
+    """``NF = 10*log10(1 + Te/T0)``, dB (docs/references.md §2)."""
+    return 10.0 * np.log10(1.0 + np.asarray(te_k, dtype=float) / t0_k)
+
+
+def te_k_from_nf_db(nf_db: ArrayLike, t0_k: float = T0_K) -> np.ndarray:
+    """``Te = T0*(10**(NF/10) - 1)``, K (docs/references.md §2)."""
+    return t0_k * (10.0 ** (np.asarray(nf_db, dtype=float) / 10.0) - 1.0)
+
+
+def source_hot_temperature_k(
+    enr_lin: ArrayLike, tc_k: ArrayLike, t0_k: float = T0_K, enr_reference: str = "t0"
+) -> np.ndarray:
+    """Hot noise temperature of a noise source from its linear ENR, K (docs/references.md §5).
+
+    ``"t0"``: ``T0*ENR + Tc`` (the excess noise does not change with the physical temperature
+    Tc, common practice); ``"absolute"``: ``T0*(ENR + 1)`` whatever Tc.
+    """
+    enr = np.asarray(enr_lin, dtype=float)
+    if enr_reference == "t0":
+        return t0_k * enr + np.asarray(tc_k, dtype=float)
+    return t0_k * (enr + 1.0) + 0.0 * np.asarray(tc_k, dtype=float)  # broadcast like "t0"
+
+
+def te_k_from_y(y: ArrayLike, th_k: ArrayLike, tc_k: ArrayLike) -> np.ndarray:
+    """``Te = (Th - Y*Tc)/(Y - 1)``, K, exact for any Th, Tc (docs/references.md §5)."""
+    yy = np.asarray(y, dtype=float)
+    return (np.asarray(th_k) - yy * np.asarray(tc_k)) / (yy - 1.0)
+
+
+def gain_from_hot_cold(
+    n_hot: ArrayLike,
+    n_cold: ArrayLike,
+    th_k: ArrayLike,
+    tc_k: ArrayLike,
+    n_hot_ref: ArrayLike,
+    n_cold_ref: ArrayLike,
+    th_ref_k: ArrayLike,
+    tc_ref_k: ArrayLike,
+) -> np.ndarray:
+    """Gain between two hot/cold pairs: ``[(Nh - Nc)/(Th - Tc)] / [(Nh,ref - Nc,ref)/(Th,ref -
+    Tc,ref)]`` (linear; the DUT's gain in the Y-factor method, docs/references.md §5)."""
+    return ((np.asarray(n_hot) - n_cold) / (np.asarray(th_k) - tc_k)) / (
+        (np.asarray(n_hot_ref) - n_cold_ref) / (np.asarray(th_ref_k) - tc_ref_k)
+    )
+
+
+def second_stage_corrected_te_k(
+    te_total_k: ArrayLike, te_second_k: ArrayLike, first_gain_lin: ArrayLike
+) -> np.ndarray:
+    """First stage's Te from the cascade's: ``Te1 = Te12 - Te2/G1``, K (Friis 1944, §3)."""
+    return np.asarray(te_total_k) - np.asarray(te_second_k) / np.asarray(first_gain_lin)
+
+
+def floor_corrected_density_w_per_hz(
+    n_meas_w_per_hz: ArrayLike, n_floor_w_per_hz: ArrayLike, floor_termination_k: ArrayLike
+) -> np.ndarray:
+    """The DUT's part of a reading: ``N_m - N_f + k*T_term``, W/Hz (docs/references.md §4)."""
+    return (
+        np.asarray(n_meas_w_per_hz)
+        - np.asarray(n_floor_w_per_hz)
+        + BOLTZMANN_J_PER_K * np.asarray(floor_termination_k)
+    )
+
+
+def te_k_from_output_density(
+    n_w_per_hz: ArrayLike, gain_lin: ArrayLike, source_temperature_k: ArrayLike
+) -> np.ndarray:
+    """Te of a two-port from its output density: ``N/(k*G) - Ts``, K (docs/references.md §4)."""
+    return np.asarray(n_w_per_hz) / (BOLTZMANN_J_PER_K * np.asarray(gain_lin)) - np.asarray(
+        source_temperature_k
+    )
+
+
+def loss_te_k(loss_lin: ArrayLike, physical_temperature_k: ArrayLike) -> np.ndarray:
+    """Noise temperature of a matched passive loss: ``(L - 1)*Tp``, K (docs/references.md §3)."""
+    return (np.asarray(loss_lin, dtype=float) - 1.0) * np.asarray(physical_temperature_k)
+
+
+def deembed_path_te_k(
+    te_path_k: ArrayLike,
+    path_gain_lin: ArrayLike,
+    input_loss_lin: ArrayLike,
+    input_loss_temperature_k: ArrayLike,
+    output_loss_lin: ArrayLike,
+    output_loss_temperature_k: ArrayLike,
+) -> tuple[np.ndarray, np.ndarray]:
+    """(Te_DUT, G_DUT) from a measured path [input loss, DUT, output loss] (Friis, §3).
+
+    ``Te_path = (L_in - 1) Tp_in + L_in (Te_DUT + (L_out - 1) Tp_out / G_DUT)`` with
+    ``G_DUT = G_path L_in L_out``.
+    """
+    dut_gain = np.asarray(path_gain_lin) * input_loss_lin * output_loss_lin
+    te_after_input = (
+        np.asarray(te_path_k) - (np.asarray(input_loss_lin) - 1.0) * input_loss_temperature_k
+    ) / input_loss_lin
+    te_dut = (
+        te_after_input - (np.asarray(output_loss_lin) - 1.0) * output_loss_temperature_k / dut_gain
+    )
+    return te_dut, dut_gain
+
+
+def two_port_output_temperature_k(
+    t_in_k: ArrayLike, gain_lin: ArrayLike, te_k: ArrayLike
+) -> np.ndarray:
+    """Output noise temperature of a two-port: ``(T_in + Te)*G``, K (Friis 1944, §3)."""
+    return (np.asarray(t_in_k) + np.asarray(te_k)) * np.asarray(gain_lin)
+
+
+def loss_output_temperature_k(
+    t_in_k: ArrayLike, loss_lin: ArrayLike, physical_temperature_k: ArrayLike
+) -> np.ndarray:
+    """Output noise temperature of a matched loss ``L`` at ``Tp``: ``T/L + Tp*(1 - 1/L)``, K."""
+    loss = np.asarray(loss_lin, dtype=float)
+    return np.asarray(t_in_k) / loss + np.asarray(physical_temperature_k) * (1.0 - 1.0 / loss)
 
 
 # --------------------------------------------------------------------------- helpers
@@ -83,19 +224,19 @@ def _temperature(field: str, value: ArrayLike, *, allow_zero: bool = True) -> np
 
 def kt_w_per_hz(temperature_k: ArrayLike) -> FloatOrArray:
     """Available thermal noise density k*T of a matched load at ``temperature_k``, W/Hz."""
-    return scalar_or_array(BOLTZMANN_J_PER_K * _temperature("temperature_k", temperature_k))
+    return scalar_or_array(thermal_density_w_per_hz(_temperature("temperature_k", temperature_k)))
 
 
 def db_to_linear(db: ArrayLike) -> FloatOrArray:
     """Power ratio from dB: 10**(db/10)."""
-    return scalar_or_array(10.0 ** (checked_array("db", db) / 10.0))
+    return scalar_or_array(ratio_from_db(checked_array("db", db)))
 
 
 def linear_to_db(lin: ArrayLike) -> FloatOrArray:
     """dB from a power ratio: 10*log10(lin). Refuses ratios <= 0."""
     arr = checked_array("lin", lin)
     _require("lin", arr, arr > 0, "> 0 (a power ratio)", "a ratio <= 0 has no dB value")
-    return scalar_or_array(10.0 * np.log10(arr))
+    return scalar_or_array(db_from_ratio(arr))
 
 
 def dbm_to_w(dbm: ArrayLike) -> FloatOrArray:
@@ -198,9 +339,9 @@ def nf_db_to_te_k(
 ) -> FloatOrArray:
     """Effective noise temperature in K from noise figure in dB."""
     t0 = _check_t0(t0_k)
-    f = 10.0 ** (checked_array("nf_db", nf_db) / 10.0)
-    _check_factor("nf_db", f, allow_negative)
-    return scalar_or_array(t0 * (f - 1.0))
+    nf = checked_array("nf_db", nf_db)
+    _check_factor("nf_db", ratio_from_db(nf), allow_negative)
+    return scalar_or_array(te_k_from_nf_db(nf, t0))
 
 
 def te_k_to_nf_db(
@@ -210,7 +351,7 @@ def te_k_to_nf_db(
     t0 = _check_t0(t0_k)
     te = checked_array("te_k", te_k)
     _check_te("te_k", te, t0, allow_negative)
-    return scalar_or_array(10.0 * np.log10(1.0 + te / t0))
+    return scalar_or_array(nf_db_from_te_k(te, t0))
 
 
 # --------------------------------------------------------------------------- Friis cascade
@@ -316,7 +457,7 @@ def passive_loss_te_k(
     """Noise temperature of a matched passive loss L at physical temperature Tp: (L-1)*Tp, K."""
     loss = _loss("loss_lin", loss_lin)
     tp = _temperature("physical_temperature_k", physical_temperature_k)
-    return scalar_or_array((loss - 1.0) * tp)
+    return scalar_or_array(loss_te_k(loss, tp))
 
 
 def passive_loss_factor(
@@ -338,8 +479,8 @@ def deembed_input_loss_te_k(
     """
     te = checked_array("te_meas_k", te_meas_k)
     loss = _loss("loss_lin", loss_lin)
-    te_loss = np.asarray(passive_loss_te_k(loss, physical_temperature_k))
-    return scalar_or_array((te - te_loss) / loss)
+    tp = _temperature("physical_temperature_k", physical_temperature_k)
+    return scalar_or_array(deembed_path_te_k(te, 1.0, loss, tp, 1.0, 0.0)[0])
 
 
 def deembed_input_loss(
@@ -370,8 +511,10 @@ def deembed_output_loss_te_k(
     te = checked_array("te_meas_k", te_meas_k)
     gain = checked_array("dut_gain_lin", dut_gain_lin)
     _require("dut_gain_lin", gain, gain > 0, "> 0 (linear gain)", "convert dB with db_to_linear")
-    te_loss = np.asarray(passive_loss_te_k(loss_lin, physical_temperature_k))
-    return scalar_or_array(te - te_loss / gain)
+    loss = _loss("loss_lin", loss_lin)
+    tp = _temperature("physical_temperature_k", physical_temperature_k)
+    # the path gain G_DUT / L_out makes the kernel's G_DUT the DUT's own gain
+    return scalar_or_array(deembed_path_te_k(te, gain / loss, 1.0, 0.0, loss, tp)[0])
 
 
 def deembed_output_loss(

@@ -78,17 +78,17 @@ RANGES: dict[str, PhysicalRange] = {
         refuse_above=400.0,
         usual_low=290.0,
         usual_high=290.0,
-        source="IEEE Std 161 / IRE definition of noise figure: T0 = 290 K",
+        source="the IRE/IEEE definition of noise figure fixes T0 = 290 K (from memory)",
         low_hint=TEMPERATURE_HINT_C,
     ),
     "frequency_hz": PhysicalRange(
         unit="Hz",
-        refuse_below=1e3,
+        refuse_below=9e3,
         refuse_above=1.1e12,
         usual_low=1e6,
         usual_high=110e9,
-        source="common practice: swept analyzers start at a few Hz to 9 kHz, noise sources at "
-        "about 10 MHz; noisebench measures from 1 kHz to 1.1 THz",
+        source="common practice: RF spectrum analyzers start at 9 kHz, noise sources at about "
+        "10 MHz; noisebench measures from 9 kHz to 1.1 THz",
         low_hint="looks like MHz or GHz given where Hz is asked (2 GHz is 2e9)",
         high_hint="looks like a value in mHz, or an extra factor 1e3/1e6",
     ),
@@ -169,7 +169,7 @@ RANGES: dict[str, PhysicalRange] = {
         unit="dBm",
         refuse_below=-60.0,
         refuse_above=70.0,
-        usual_low=-10.0,
+        usual_low=0.0,
         usual_high=50.0,
         source="common practice: output P1dB of LNAs about 0 to +20 dBm, power amplifiers to "
         "+50 dBm",
@@ -234,15 +234,20 @@ def check_range(
         raise InputError(field, _refusal(spec, x, low, spec.low_hint, on_purpose))
     if spec.refuse_above is not None and x > spec.refuse_above:
         raise InputError(field, _refusal(spec, x, spec.refuse_above, spec.high_hint, on_purpose))
-    if warn and not (
-        (spec.usual_low is None or x >= spec.usual_low)
-        and (spec.usual_high is None or x <= spec.usual_high)
-    ):
-        token = (key, field, x)
-        if token not in _warned:
-            _warned.add(token)
-            logger.warning("%s", unusual_message(key, field, x))
+    if warn:
+        warn_unusual(key, field, x)
     return x
+
+
+def warn_unusual(key: str, label: str, value: float) -> bool:
+    """Log once per (key, label, value) when ``value`` is legal but unusual; True if unusual."""
+    if not is_unusual(key, value):
+        return False
+    token = (key, label, float(value))
+    if token not in _warned:
+        _warned.add(token)
+        logger.warning("%s", unusual_message(key, label, float(value)))
+    return True
 
 
 def is_unusual(key: str, value: float) -> bool:
@@ -267,9 +272,26 @@ def _refusal(
     text = f"{x:g} {spec.unit} is {side} the plausible {limit:g} {spec.unit}"
     if hint:
         text += f": {hint}"
+        if hint == TEMPERATURE_HINT_C and -100.0 < x < 100.0:
+            text += f"; {x:g} degC would be {x + 273.15:g} K"
     if spec.purpose_hint and not on_purpose and x < limit and spec.purpose_below is not None:
         text += f"; {spec.purpose_hint}"
     return f"{text} ({spec.source})"
+
+
+def frequency_column_problem(freqs_hz: list[float], column: str) -> str | None:
+    """A ``freq_hz`` column whose highest frequency is below 1 MHz almost surely holds MHz
+    (or GHz) numbers: the message, or None. A table really below 1 MHz states it on purpose
+    by naming its column ``freq_khz``."""
+    finite = [f for f in freqs_hz if math.isfinite(f) and f > 0]
+    usual = RANGES["frequency_hz"].usual_low
+    if column != "freq_hz" or not finite or usual is None or max(finite) >= usual:
+        return None
+    return (
+        f"every frequency is below {usual:g} Hz (highest {max(finite):g} Hz): the numbers look "
+        "like MHz or GHz under a freq_hz header; name the column freq_mhz or freq_ghz (or "
+        "freq_khz for a table that really lies below 1 MHz)"
+    )
 
 
 def describe_ranges() -> list[tuple[str, str, str, str]]:

@@ -9,7 +9,12 @@ import numpy as np
 
 from noisebench.errors import MeasurementError
 from noisebench.science.mismatch import Reflections
-from noisebench.science.physics import BOLTZMANN_J_PER_K, T0_K
+from noisebench.science.physics import (
+    BOLTZMANN_J_PER_K,
+    T0_K,
+    floor_corrected_density_w_per_hz,
+    te_k_from_output_density,
+)
 from noisebench.science.propagation import (
     InputQuantity,
     Model,
@@ -57,7 +62,6 @@ def _gain_model(
     d: _GainData, losses: _Losses, t0_k: float, extras: list[tuple[InputQuantity, float]]
 ) -> Model:
     """The gain-method measurement model (deviation form; see the module docstring)."""
-    k_b = BOLTZMANN_J_PER_K
 
     def model(**x: Any) -> np.ndarray:
         scale = _lin(x.get("d_abs_db", 0.0))
@@ -80,10 +84,10 @@ def _gain_model(
         if d.floor is not None:
             t_term = (d.floor_tk if d.floor_tk is not None else d.ts_k) + d_t
             n_floor = d.floor * (1.0 + x.get("j_floor", 0.0) / 100.0) * scale
-            n_src = n_dut - n_floor + k_b * t_term
-            te = np.where(n_src > 0, n_src, np.nan) / (k_b * gain) - ts
+            n_src = floor_corrected_density_w_per_hz(n_dut, n_floor, t_term)
+            te = te_k_from_output_density(np.where(n_src > 0, n_src, np.nan), gain, ts)
         else:
-            te = n_dut / (k_b * gain) - ts
+            te = te_k_from_output_density(n_dut, gain, ts)
         return _nf_db(_deembed_te(te, gain, losses, x), t0_k, x, extras)
 
     return model

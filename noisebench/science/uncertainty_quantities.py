@@ -12,7 +12,7 @@ import numpy as np
 
 from noisebench.errors import InputError
 from noisebench.science.mismatch import mismatch_standard_uncertainty_db
-from noisebench.science.physics import T0_K
+from noisebench.science.physics import T0_K, deembed_path_te_k, nf_db_from_te_k, ratio_from_db
 from noisebench.science.propagation import (
     Distribution,
     InputQuantity,
@@ -145,25 +145,25 @@ def _finite(field: str, value: float) -> float:
     return float(value)
 
 
-def _lin(db: Any) -> Any:
-    return 10.0 ** (np.asarray(db) / 10.0)
+_lin = ratio_from_db
 
 
 def _deembed_te(te_path_k: Any, path_gain_lin: Any, losses: _Losses, x: Mapping[str, Any]) -> Any:
     """Te of the DUT inside [input loss, DUT, output loss] (Friis; as the methods do)."""
     l_in = _lin(losses.input_db + x.get("d_loss_in_db", 0.0))
     l_out = _lin(losses.output_db + x.get("d_loss_out_db", 0.0))
-    te_after_input = (te_path_k - (l_in - 1.0) * losses.input_tp_k) / l_in
-    dut_gain = path_gain_lin * l_in * l_out
-    return te_after_input - (l_out - 1.0) * losses.output_tp_k / dut_gain
+    te_dut, _ = deembed_path_te_k(
+        te_path_k, path_gain_lin, l_in, losses.input_tp_k, l_out, losses.output_tp_k
+    )
+    return te_dut
 
 
 def _nf_db(
     te_k: Any, t0_k: float, x: Mapping[str, Any], extras: list[tuple[InputQuantity, float]]
 ) -> Any:
     """NF in dB from Te (NaN where F <= 0) plus the extra terms."""
-    factor = 1.0 + te_k / t0_k
-    nf = 10.0 * np.log10(np.where(factor > 0, factor, np.nan))
+    te = np.asarray(te_k)
+    nf = nf_db_from_te_k(np.where(1.0 + te / t0_k > 0, te, np.nan), t0_k)
     for q, sensitivity in extras:
         nf = nf + sensitivity * x.get(q.key, 0.0)
     return nf

@@ -10,7 +10,13 @@ import numpy as np
 
 from noisebench.errors import InputError, MeasurementError
 from noisebench.science.mismatch import Reflections
-from noisebench.science.physics import T0_K
+from noisebench.science.physics import (
+    T0_K,
+    gain_from_hot_cold,
+    second_stage_corrected_te_k,
+    source_hot_temperature_k,
+    te_k_from_y,
+)
 from noisebench.science.propagation import (
     Distribution,
     InputQuantity,
@@ -45,16 +51,14 @@ EnrReference = Literal["t0", "absolute"]
 
 
 def _hot_temperature(enr_db: Any, tc_k: Any, t0_k: float, enr_reference: str) -> Any:
-    """Th from ENR: ``T0*ENR + Tc`` ("t0", common practice) or ``T0*(ENR + 1)`` ("absolute")."""
-    enr = _lin(enr_db)
-    if enr_reference == "t0":
-        return t0_k * enr + tc_k
-    return t0_k * (enr + 1.0) + 0.0 * tc_k
+    """Th from ENR in dB (docs/references.md §5), as the methods compute it."""
+    return source_hot_temperature_k(_lin(enr_db), tc_k, t0_k, enr_reference)
 
 
 def _te_from_y(y: Any, th_k: Any, tc_k: Any) -> Any:
-    """Te = (Th - Y*Tc)/(Y - 1) (reference §5); NaN where Y <= 1."""
-    return (th_k - y * tc_k) / np.where(y > 1.0, y - 1.0, np.nan)
+    """Te = (Th - Y*Tc)/(Y - 1) (docs/references.md §5); NaN where Y <= 1."""
+    yy = np.asarray(y)
+    return te_k_from_y(np.where(yy > 1.0, yy, np.nan), th_k, tc_k)
 
 
 @dataclass(frozen=True)
@@ -113,13 +117,12 @@ def _y_model(
         n_cold_cal = d.cold_cal * (1.0 + x.get("j_cold_cal", 0.0) / 100.0)
         y2 = n_hot_cal / n_cold_cal * _lin(x.get("d_lin_cal_db", 0.0))
         te2 = _te_from_y(y2, th_cal, tc_cal)
-        g1 = (
-            ((n_hot - n_cold) / (th - tc))
-            / ((n_hot_cal - n_cold_cal) / (th_cal - tc_cal))
-            * _lin(x.get("d_mm_out_db", 0.0))
-        )
+        g1 = gain_from_hot_cold(
+            n_hot, n_cold, th, tc, n_hot_cal, n_cold_cal, th_cal, tc_cal
+        ) * _lin(x.get("d_mm_out_db", 0.0))
         g1 = np.where(g1 > 0, g1, np.nan)
-        return _nf_db(_deembed_te(te12 - te2 / g1, g1, losses, x), t0_k, x, extras)
+        te1 = second_stage_corrected_te_k(te12, te2, g1)
+        return _nf_db(_deembed_te(te1, g1, losses, x), t0_k, x, extras)
 
     return model
 

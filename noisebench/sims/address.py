@@ -1,4 +1,8 @@
-"""Simulated-bench addresses: ``sim://<scenario>[?seed=N]``."""
+"""Simulated-bench addresses: ``sim://<scenario>[?seed=N][&receiver=sampled&...]``.
+
+``receiver=sampled`` puts the simulated sampled receiver (:mod:`noisebench.sims.samples`) in
+place of the simulated spectrum analyzer; the options of
+:mod:`noisebench.sampled.address` (window, overlap, scale, iq_correction) then apply."""
 
 from __future__ import annotations
 
@@ -13,6 +17,8 @@ class SimAddress:
 
     scenario: str
     seed: int = 0
+    receiver: str = "analyzer"  # or "sampled"
+    sampled: object = None  # noisebench.sampled.address.SampledOptions when receiver=sampled
 
 
 def parse_sim_address(resource: str) -> SimAddress:
@@ -28,12 +34,27 @@ def parse_sim_address(resource: str) -> SimAddress:
             "resource", f"{resource!r} names no scenario", fix="e.g. sim://demo-lna?seed=1"
         )
     query = parse_qs(parts.query, keep_blank_values=True)
-    unknown = sorted(set(query) - {"seed"})
+    receiver = query.get("receiver", ["analyzer"])[-1]
+    if receiver not in ("analyzer", "sampled"):
+        raise InputError(
+            "resource",
+            f"receiver={receiver!r} in {resource!r}",
+            fix="use receiver=analyzer (default) or receiver=sampled",
+        )
+    allowed = {"seed", "receiver"}
+    sampled = None
+    if receiver == "sampled":
+        from noisebench.sampled.address import OPTIONS, parse_options
+
+        allowed |= set(OPTIONS)
+        sampled = parse_options(query, resource)
+    unknown = sorted(set(query) - allowed)
     if unknown:
         raise InputError(
             "resource",
             f"unknown option {unknown[0]!r} in {resource!r}",
-            fix="the only option is seed=N",
+            fix="options are seed=N and receiver=sampled (then window, overlap, scale, "
+            "iq_correction)",
         )
     seed_text = query.get("seed", ["0"])[-1]
     try:
@@ -46,4 +67,4 @@ def parse_sim_address(resource: str) -> SimAddress:
         ) from None
     if seed < 0:
         raise InputError("resource", f"seed {seed} must be >= 0")
-    return SimAddress(scenario, seed)
+    return SimAddress(scenario, seed, receiver, sampled)

@@ -116,8 +116,21 @@ def _expand_lines(scenario: Scenario) -> list[tuple[float, float]]:
     return lines
 
 
-def _dut_model(d: DutSpec) -> DutModel:
-    """The DUT's physics model from its scenario spec (tables, ripple, P1dB, reflections)."""
+def _dut_model(d: DutSpec, ambient_k: float) -> DutModel:
+    """The DUT's physics model from its scenario spec (tables, ripple, P1dB, reflections).
+
+    A DUT with ``powered = false`` is a passive network at ambient with its isolation as gain
+    (an unpowered amplifier only attenuates), keeping its reflections and dropping its lines.
+    """
+    if not d.powered:
+        return DutModel(
+            freq_hz=np.asarray(d.freq_hz, dtype=float),
+            gain_table_db=np.full(len(d.freq_hz), float(d.unpowered_gain_db)),
+            nf_table_db=None,
+            passive_temperature_k=ambient_k,
+            input_gamma=d.input_reflection.complex,
+            output_gamma=d.output_reflection.complex,
+        )
     return DutModel(
         freq_hz=np.asarray(d.freq_hz, dtype=float),
         gain_table_db=np.asarray(d.gain_db, dtype=float),
@@ -196,7 +209,7 @@ class SimulatedBench:
 
     def _build_models(self, sc: Scenario) -> None:
         ns, an = sc.noise_source, sc.analyzer
-        self.dut_model = _dut_model(sc.dut)
+        self.dut_model = _dut_model(sc.dut, sc.ambient_k)
         self.input_cable = _cable(sc.input_cable, sc.ambient_k)
         self.output_cable = _cable(sc.output_cable, sc.ambient_k)
         self.source_model = NoiseSourceModel(
@@ -247,7 +260,7 @@ class SimulatedBench:
                 f"must be a DUT spec of a scenario (got {type(spec).__name__})",
                 fix="pass Scenario.dut, e.g. load_scenario(name, dut__...).dut",
             )
-        model = _dut_model(spec)
+        model = _dut_model(spec, self.scenario.ambient_k)
         self.scenario = self.scenario.model_copy(update={"dut": spec})
         self.dut_model = model
         logger.debug("DUT replaced by %r", spec.name)

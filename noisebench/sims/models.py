@@ -7,9 +7,9 @@ mismatch is involved, delivered) noise power density there is ``k * T`` W/Hz.
 Conventions (documented physics, not shortcuts):
 
 * A two-port with available gain ``G`` and effective input noise temperature ``Te`` turns an input
-  temperature ``T_in`` into ``(T_in + Te) * G`` at its output (Friis 1944; reference.md §2-3).
+  temperature ``T_in`` into ``(T_in + Te) * G`` at its output (Friis 1944; docs/references.md §2-3).
 * A passive loss ``L`` (linear >= 1) at physical temperature ``Tp`` turns ``T_in`` into
-  ``T_in / L + Tp * (1 - 1/L)``, i.e. ``Te = (L - 1) Tp`` (reference.md §3).
+  ``T_in / L + Tp * (1 - 1/L)``, i.e. ``Te = (L - 1) Tp`` (docs/references.md §3).
 * Reflections at an interface between a port with reflection ``Ga`` (looking back) and a port
   with ``Gb`` (looking forward) scale the power that crosses it by ``1 / |1 - Ga Gb|^2`` relative
   to a matched interface; the gains and the ENR table are defined for matched (Z0) ports. Only the
@@ -20,6 +20,12 @@ Conventions (documented physics, not shortcuts):
   ends (common practice).
 * Compression follows a smooth limiter on power (Rapp-style, smoothness 2) parameterised by the
   1 dB compression point.
+
+The noise formulas are the forward forms in :mod:`noisebench.science.physics` (``k T``, Friis
+output temperature, passive loss, ``Th = T0 ENR + Tc``), the same kernels whose checked forms are
+tested against published values and scikit-rf; the methods use the inverse forms. The simulator
+cannot hide an error in them: tests/test_reference_cascade.py checks the methods against
+scikit-rf's noisy-network cascade with no simulator involved.
 """
 
 from __future__ import annotations
@@ -28,22 +34,22 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.constants import k as BOLTZMANN_J_PER_K
 
 from noisebench.errors import InputError
+from noisebench.science.physics import (
+    BOLTZMANN_J_PER_K,
+    T0_K,
+    loss_output_temperature_k,
+    loss_te_k,
+    nf_db_from_te_k,
+    source_hot_temperature_k,
+    te_k_from_nf_db,
+    two_port_output_temperature_k,
+)
+from noisebench.science.physics import db_from_ratio as lin_to_db
+from noisebench.science.physics import ratio_from_db as db_to_lin
 
-T0_K = 290.0
 RAPP_SMOOTHNESS = 2.0
-
-
-def db_to_lin(db: np.ndarray | float) -> np.ndarray:
-    """Power ratio from dB."""
-    return np.power(10.0, np.asarray(db, dtype=float) / 10.0)
-
-
-def lin_to_db(lin: np.ndarray | float) -> np.ndarray:
-    """dB from a positive power ratio."""
-    return 10.0 * np.log10(np.asarray(lin, dtype=float))
 
 
 def dbm_to_w(dbm: np.ndarray | float) -> np.ndarray:
@@ -73,15 +79,14 @@ def amplifier_output_temperature_k(
     t_in_k: np.ndarray, gain_lin: np.ndarray, te_k: np.ndarray
 ) -> np.ndarray:
     """Output noise temperature of a two-port: ``(T_in + Te) * G`` (Friis 1944)."""
-    return (np.asarray(t_in_k) + np.asarray(te_k)) * np.asarray(gain_lin)
+    return two_port_output_temperature_k(t_in_k, gain_lin, te_k)
 
 
 def passive_output_temperature_k(
     t_in_k: np.ndarray, loss_lin: np.ndarray, physical_temperature_k: float | np.ndarray
 ) -> np.ndarray:
     """Output noise temperature of a matched loss ``L >= 1`` at ``Tp``: ``T/L + Tp(1 - 1/L)``."""
-    loss = np.asarray(loss_lin, dtype=float)
-    return np.asarray(t_in_k) / loss + np.asarray(physical_temperature_k) * (1.0 - 1.0 / loss)
+    return loss_output_temperature_k(t_in_k, loss_lin, physical_temperature_k)
 
 
 def mismatch_factor(gamma_a: np.ndarray | complex, gamma_b: np.ndarray | complex) -> np.ndarray:
@@ -183,14 +188,13 @@ class DutModel:
     def te_k(self, freq_hz: np.ndarray | float) -> np.ndarray:
         """Effective input noise temperature, K."""
         if self.passive_temperature_k is not None:
-            loss = 1.0 / self.gain_lin(freq_hz)
-            return (loss - 1.0) * self.passive_temperature_k
+            return loss_te_k(1.0 / self.gain_lin(freq_hz), self.passive_temperature_k)
         nf = interp_table_db(freq_hz, self.freq_hz, self.nf_table_db)
-        return self.t0_k * (db_to_lin(nf) - 1.0)
+        return te_k_from_nf_db(nf, self.t0_k)
 
     def nf_db(self, freq_hz: np.ndarray | float) -> np.ndarray:
         """Noise figure in dB (referred to T0)."""
-        return lin_to_db(1.0 + self.te_k(freq_hz) / self.t0_k)
+        return nf_db_from_te_k(self.te_k(freq_hz), self.t0_k)
 
 
 @dataclass(frozen=True)
@@ -198,7 +202,7 @@ class NoiseSourceModel:
     """A diode noise source: true ENR table, physical temperature, reflections, drive window.
 
     Hot temperature follows the common assumption that the excess noise does not depend on the
-    source's physical temperature: ``Th = T0 * ENR + Tc`` (reference.md §5).
+    source's physical temperature: ``Th = T0 * ENR + Tc`` (docs/references.md §5).
     """
 
     freq_hz: np.ndarray
@@ -222,7 +226,7 @@ class NoiseSourceModel:
     ) -> np.ndarray:
         """Hot noise temperature ``T0 * ENR + Tc``, K."""
         enr_lin = db_to_lin(self.true_enr_db(freq_hz, drive_v))
-        return self.t0_k * enr_lin + self.physical_temperature_k
+        return source_hot_temperature_k(enr_lin, self.physical_temperature_k, self.t0_k, "t0")
 
     def temperature_k(
         self, freq_hz: np.ndarray | float, hot_fraction: float, drive_v: float | None = None
@@ -257,19 +261,19 @@ class AnalyzerFrontEnd:
 
     def te_k(self, freq_hz: np.ndarray | float, attenuation_db: float, preamp: bool) -> np.ndarray:
         """Effective input noise temperature of the whole analyzer at these settings, K."""
-        te_mixer = self.t0_k * (
-            db_to_lin(interp_table_db(freq_hz, self.freq_hz, self.nf_table_db)) - 1.0
+        te_mixer = te_k_from_nf_db(
+            interp_table_db(freq_hz, self.freq_hz, self.nf_table_db), self.t0_k
         )
         loss = float(db_to_lin(attenuation_db))
-        te_att = (loss - 1.0) * self.internal_temperature_k
+        te_att = float(loss_te_k(loss, self.internal_temperature_k))
         if preamp:
-            te_pre = self.t0_k * (float(db_to_lin(self.preamp_nf_db)) - 1.0)
+            te_pre = float(te_k_from_nf_db(self.preamp_nf_db, self.t0_k))
             return te_att + loss * (te_pre + te_mixer / float(db_to_lin(self.preamp_gain_db)))
         return te_att + loss * te_mixer
 
     def nf_db(self, freq_hz: np.ndarray | float, attenuation_db: float, preamp: bool) -> np.ndarray:
         """Noise figure of the analyzer at these settings, dB."""
-        return lin_to_db(1.0 + self.te_k(freq_hz, attenuation_db, preamp) / self.t0_k)
+        return nf_db_from_te_k(self.te_k(freq_hz, attenuation_db, preamp), self.t0_k)
 
     def mixer_gain_factor(self, input_power_w: float, attenuation_db: float, preamp: bool) -> float:
         """Gain factor (<= 1) from mixer compression for a total input power, W."""

@@ -111,6 +111,17 @@ class DutSpec(_Model):
     spurs: list[Tone] = Field(
         default_factory=list, description="lines at the DUT output (oscillation, spurs)"
     )
+    powered: bool = Field(
+        default=True,
+        description="false: the DUT is switched off (or its supply is not connected); it then "
+        "acts as a passive network at ambient with unpowered_gain_db",
+    )
+    unpowered_gain_db: float = Field(
+        default=-40.0,
+        le=0.0,
+        description="forward gain of the switched-off DUT (common practice: an unpowered "
+        "amplifier isolates about 20-50 dB)",
+    )
 
     @model_validator(mode="after")
     def _check(self) -> DutSpec:
@@ -381,10 +392,28 @@ def scenario_from_dict(data: dict[str, Any], *, source: str = "scenario") -> Sce
 def load_scenario(name_or_path: str | FsPath, **overrides: Any) -> Scenario:
     """Load a packaged scenario by name (or a TOML path) and apply ``overrides``."""
     path = _resolve(name_or_path)
+    data = _scenario_data(path, seen=())
+    data = deep_merge(data, nest_overrides(overrides))
+    return scenario_from_dict(data, source=path.name)
+
+
+def _scenario_data(path: FsPath, seen: tuple[str, ...]) -> dict[str, Any]:
+    """The TOML of a scenario; ``based_on = "other"`` starts from another scenario's data and
+    changes only what this file states (e.g. the demo LNA switched off)."""
     try:
         text = read_user_text(path, MAX_SCENARIO_BYTES, field="scenario", what="scenario")
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise InputError("scenario", f"{path.name}: {exc}", fix="fix the TOML syntax") from None
-    data = deep_merge(data, nest_overrides(overrides))
-    return scenario_from_dict(data, source=path.name)
+    base = data.pop("based_on", None)
+    if base is None:
+        return data
+    if not isinstance(base, str) or base in seen or len(seen) > 8:
+        raise InputError(
+            "scenario",
+            f"{path.name}: based_on = {base!r} is not a scenario name or forms a cycle",
+            fix="name a packaged scenario or a .toml path that does not lead back here",
+        )
+    beside = path.parent / base
+    base_path = beside if beside.suffix == SCENARIO_SUFFIX and beside.exists() else _resolve(base)
+    return deep_merge(_scenario_data(base_path, (*seen, path.stem)), data)

@@ -1,15 +1,14 @@
-"""Input checks, loss de-embedding and density-derived flags shared by the two methods."""
+"""Input checks and density-derived flags shared by the methods (their physics is in
+:mod:`noisebench.science.physics`)."""
 
 from __future__ import annotations
 
 import math
 from collections.abc import Iterable
 
-import numpy as np
-
 from noisebench.errors import InputError, MeasurementError
 from noisebench.science.density import NoiseDensity
-from noisebench.science.physics import T0_K
+from noisebench.science.physics import T0_K, nf_db_from_te_k, ratio_from_db
 from noisebench.science.point import PointFlag
 
 DEFAULT_SCATTER_LIMIT = 1.5
@@ -99,8 +98,8 @@ def check_losses(
 ) -> tuple[float, float, float, float]:
     """``(L_in, L_out, Tp_in, Tp_out)``: linear losses (>= 1) and their physical temperatures
     in K, a missing temperature taking ``default_temperature_k``."""
-    lin = 10.0 ** (check_loss_db("input_loss_db", input_loss_db) / 10.0)
-    lout = 10.0 ** (check_loss_db("output_loss_db", output_loss_db) / 10.0)
+    lin = float(ratio_from_db(check_loss_db("input_loss_db", input_loss_db)))
+    lout = float(ratio_from_db(check_loss_db("output_loss_db", output_loss_db)))
     tp_in = (
         default_temperature_k
         if input_loss_temperature_k is None
@@ -135,28 +134,6 @@ def check_same_frequency(reference: NoiseDensity, others: dict[str, NoiseDensity
                 fix="combine densities measured at the same frequency",
             )
     return f0
-
-
-def deembed_path_te_k(
-    te_path_k: np.ndarray,
-    path_gain_lin: np.ndarray,
-    input_loss_lin: float,
-    input_loss_temperature_k: float | np.ndarray,
-    output_loss_lin: float,
-    output_loss_temperature_k: float | np.ndarray,
-) -> tuple[np.ndarray, np.ndarray]:
-    """(Te_DUT, G_DUT) from a measured path [input loss, DUT, output loss] (Friis).
-
-    Te_path = (L_in - 1) Tp_in + L_in (Te_DUT + (L_out - 1) Tp_out / G_DUT), with
-    G_DUT = G_path L_in L_out. Inputs are already validated (this runs inside the models);
-    see physics.deembed_input_loss_te_k / deembed_output_loss_te_k for the checked forms.
-    """
-    dut_gain = np.asarray(path_gain_lin) * input_loss_lin * output_loss_lin
-    te_after_input = (
-        np.asarray(te_path_k) - (input_loss_lin - 1.0) * input_loss_temperature_k
-    ) / input_loss_lin
-    te_dut = te_after_input - (output_loss_lin - 1.0) * output_loss_temperature_k / dut_gain
-    return te_dut, dut_gain
 
 
 def density_flags(densities: Iterable[NoiseDensity], scatter_limit: float) -> list[PointFlag]:
@@ -194,7 +171,7 @@ def check_te_plausible(
 
 def nf_db_from_te(te_k: float, t0_k: float = T0_K) -> float:
     """NF in dB of a (possibly slightly negative) Te; caller guarantees Te > -T0."""
-    return 10.0 * math.log10(1.0 + te_k / t0_k)
+    return float(nf_db_from_te_k(te_k, t0_k))
 
 
 def margin_db(dut_noise: float, analyzer_noise: float) -> float | None:

@@ -39,7 +39,6 @@ from noisebench.science.methods._common import (
     check_same_frequency,
     check_te_plausible,
     check_temperature,
-    deembed_path_te_k,
     density_flags,
     instrument_time_s,
     margin_db,
@@ -53,7 +52,12 @@ from noisebench.science.physics import (
     ArrayLike,
     FloatOrArray,
     checked_array,
+    deembed_path_te_k,
+    floor_corrected_density_w_per_hz,
+    nf_db_from_te_k,
+    ratio_from_db,
     scalar_or_array,
+    te_k_from_output_density,
 )
 from noisebench.science.point import Method, PointFlag, PointResult
 
@@ -97,7 +101,7 @@ def gain_method_te_k(
             if floor_temperature_k is None
             else _positive("floor_temperature_k", floor_temperature_k, kelvin)
         )
-        n_dut = n_meas - n_floor + BOLTZMANN_J_PER_K * t_term
+        n_dut = floor_corrected_density_w_per_hz(n_meas, n_floor, t_term)
         if np.any(n_dut <= 0):
             idx = int(np.flatnonzero(np.ravel(n_dut <= 0))[0])
             raise MeasurementError(
@@ -107,7 +111,7 @@ def gain_method_te_k(
                 "same settings",
                 element=idx,
             )
-    return scalar_or_array(n_dut / (BOLTZMANN_J_PER_K * gain) - ts)
+    return scalar_or_array(te_k_from_output_density(n_dut, gain, ts))
 
 
 def gain_method_nf_db(
@@ -138,7 +142,7 @@ def gain_method_nf_db(
             "gain-method noise factor <= 0: the reading is below the "
             "source termination's own noise; check gain and temperatures"
         )
-    return scalar_or_array(10.0 * np.log10(1.0 + te / t0))
+    return scalar_or_array(nf_db_from_te_k(te, t0))
 
 
 def gain_method_point(
@@ -209,7 +213,7 @@ def gain_method_point(
     )
 
     def te_dut_model(n_meas, n_floor, g_db, with_floor=floor is not None):
-        g_path = 10.0 ** (g_db / 10.0)
+        g_path = ratio_from_db(g_db)
         te_path = gain_method_te_k(
             n_meas,
             g_path,
@@ -232,13 +236,6 @@ def gain_method_point(
     except MeasurementError as exc:
         raise exc.add_context(freq_hz=freq_hz, method="gain") from None
     te_k = float(stat.value)
-    if te_k <= -t0:
-        raise MeasurementError(
-            f"gain method at {freq_hz:.6g} Hz: noise factor <= 0 (Te = {te_k:.1f} K); the DUT "
-            "reading is below the termination's own noise: check gain_db and the temperatures",
-            freq_hz=freq_hz,
-        )
-    u_te_k = float(stat.u(u_stat))
     check_te_plausible(
         te_k,
         float(stat.u()),
@@ -248,6 +245,13 @@ def gain_method_point(
         "is switched, or gain_db is larger than the DUT's real gain; check the DUT supply and "
         "connections, the path and the gain source",
     )
+    if te_k <= -t0:
+        raise MeasurementError(
+            f"gain method at {freq_hz:.6g} Hz: noise factor <= 0 (Te = {te_k:.1f} K); the DUT "
+            "reading is below the termination's own noise: check gain_db and the temperatures",
+            freq_hz=freq_hz,
+        )
+    u_te_k = float(stat.u(u_stat))
     nf_db = nf_db_from_te(te_k, t0)
     dnf_dte = DB_PER_NEPER_POWER / (t0 + te_k)  # dNF_dB / dTe
     names = {"n_meas": "dut", "n_floor": "floor", "g_db": "gain"}

@@ -49,7 +49,6 @@ from noisebench.science.methods._common import (
     check_same_frequency,
     check_te_plausible,
     check_temperature,
-    deembed_path_te_k,
     density_flags,
     instrument_time_s,
     margin_db,
@@ -62,7 +61,15 @@ from noisebench.science.physics import (
     ArrayLike,
     FloatOrArray,
     checked_array,
+    db_from_ratio,
+    deembed_path_te_k,
+    gain_from_hot_cold,
+    nf_db_from_te_k,
+    ratio_from_db,
     scalar_or_array,
+    second_stage_corrected_te_k,
+    source_hot_temperature_k,
+    te_k_from_y,
 )
 from noisebench.science.point import Method, PointFlag, PointResult, calibration_point_flags
 
@@ -149,9 +156,7 @@ def hot_temperature_k(
     enr = _positive("enr_lin", enr_lin, "pass the linear ENR, 10**(enr_db/10)")
     tc = _positive("tc_k", tc_k, _KELVIN_FIX)
     t0 = float(_positive("t0_k", t0_k, _KELVIN_FIX))
-    if _check_reference(enr_reference) == "t0":
-        return scalar_or_array(t0 * enr + tc)
-    return scalar_or_array(t0 * (enr + 1.0) + 0.0 * tc)  # broadcast like the 't0' form
+    return scalar_or_array(source_hot_temperature_k(enr, tc, t0, _check_reference(enr_reference)))
 
 
 def te_from_y_k(y: ArrayLike, th_k: ArrayLike, tc_k: ArrayLike) -> FloatOrArray:
@@ -165,7 +170,7 @@ def te_from_y_k(y: ArrayLike, th_k: ArrayLike, tc_k: ArrayLike) -> FloatOrArray:
             "the cold one; check that the noise source switches and is "
             "connected"
         )
-    return scalar_or_array((th - yy * tc) / (yy - 1.0))
+    return scalar_or_array(te_k_from_y(yy, th, tc))
 
 
 def noise_factor_from_y(
@@ -207,9 +212,10 @@ def _te_of_pair(hot, cold, enr_db, tc, t0, ref, freq_hz, what: str):
     if np.any(mask):
         raise MeasurementError(
             f"{what} at {_where(freq_hz, mask)}: hot reading is not above the cold one; check "
-            "that the noise source switches, is connected and has settled"
+            "that the noise source switches, is connected and has settled, and that the DUT is "
+            "powered and connected (an unpowered DUT passes no source noise)"
         )
-    th = np.asarray(hot_temperature_k(10.0 ** (enr_db / 10.0), tc, t0, ref))
+    th = np.asarray(hot_temperature_k(ratio_from_db(enr_db), tc, t0, ref))
     if np.any(th <= tc):
         raise InputError(
             "enr_db",
@@ -217,7 +223,7 @@ def _te_of_pair(hot, cold, enr_db, tc, t0, ref, freq_hz, what: str):
             fix="check enr_db, cold_temperature_k and enr_reference",
         )
     y = hot / cold
-    return y, (th - y * tc) / (y - 1.0), th
+    return y, te_k_from_y(y, th, tc), th
 
 
 def _core(
@@ -236,8 +242,8 @@ def _core(
     y2, te2, th_cal = _te_of_pair(
         cal.hot, cal.cold, cal.enr_db, cal.tc_k, t0, ref, freq_hz, "Y-factor calibration"
     )
-    g1 = ((hot - cold) / (th - tc)) / ((cal.hot - cal.cold) / (th_cal - cal.tc_k))
-    te1 = te12 - te2 / g1
+    g1 = gain_from_hot_cold(hot, cold, th, tc, cal.hot, cal.cold, th_cal, cal.tc_k)
+    te1 = second_stage_corrected_te_k(te12, te2, g1)
     te_dut, g_dut = deembed_path_te_k(te1, g1, lin, tp_in, lout, tp_out)
     te_unc = deembed_path_te_k(te12, g1, lin, tp_in, lout, tp_out)[0]
     return _Core(y, te12, te2, g1, te1, np.asarray(te_dut), np.asarray(te_unc), g_dut)
@@ -543,13 +549,6 @@ def y_factor_point(
         raise _y_too_close_to_one(freq_hz, "Y-factor measurement", float(result.y)) from None
 
     te_k = float(result.te_dut_k)
-    if te_k <= -t0:
-        raise MeasurementError(
-            f"Y-factor at {freq_hz:.6g} Hz: noise factor <= 0 (Te = {te_k:.1f} K); Y is larger "
-            "than the source's Th/Tc allows: check the ENR, the cold temperature and the "
-            "calibration",
-            freq_hz=freq_hz,
-        )
     check_te_plausible(
         te_k,
         float(props["te"].u()),
@@ -559,6 +558,13 @@ def y_factor_point(
         "right frequency, enr_reference), cold_temperature_k, that the DUT is powered and the "
         "calibration was made on this path",
     )
+    if te_k <= -t0:
+        raise MeasurementError(
+            f"Y-factor at {freq_hz:.6g} Hz: noise factor <= 0 (Te = {te_k:.1f} K); Y is larger "
+            "than the source's Th/Tc allows: check the ENR, the cold temperature and the "
+            "calibration",
+            freq_hz=freq_hz,
+        )
     nf_db = nf_db_from_te(te_k, t0)
     dnf_dte = DB_PER_NEPER_POWER / (t0 + te_k)
     names = {
@@ -707,13 +713,13 @@ def y_factor_sweep(
             "calibration"
         )
     return YFactorSweep(
-        nf_db=10.0 * np.log10(1.0 + r.te_dut_k / t0),
+        nf_db=nf_db_from_te_k(r.te_dut_k, t0),
         te_k=r.te_dut_k,
-        y_db=10.0 * np.log10(r.y),
-        gain_db=None if r.gain_dut_lin is None else 10.0 * np.log10(r.gain_dut_lin),
+        y_db=db_from_ratio(r.y),
+        gain_db=None if r.gain_dut_lin is None else db_from_ratio(r.gain_dut_lin),
         nf_uncorrected_db=None
         if r.te_dut_uncorrected_k is None
-        else 10.0 * np.log10(1.0 + r.te_dut_uncorrected_k / t0),
+        else nf_db_from_te_k(r.te_dut_uncorrected_k, t0),
     )
 
 
