@@ -69,6 +69,7 @@ class _GroupRun:
     checks: list[PowerCheck] = field(default_factory=list)
     log: list[tuple[float, str, list[NoiseDensity]]] = field(default_factory=list)
     settings: AcquisitionSettings | None = None
+    failed: MeasurementError | None = None  # the physics refused a reading of this group
 
 
 class SwitchedSweep(MeasurementSteps):
@@ -158,14 +159,21 @@ class SwitchedSweep(MeasurementSteps):
                 self._guard().observe_cold([d.density_w_per_hz for d in densities])
 
     def _run_block(self, block: list[_GroupRun], connection: Connection) -> None:
+        """The four passes over ``block``. A group whose reading the physics refuses is left
+        out of the rest of the block and skipped afterwards, as in the per-group order."""
         forward, backward = block, block[::-1]
         for hot, order in ((True, forward), (False, backward), (False, forward), (True, backward)):
             self._switch_block(hot, block, connection)
             for run in order:
-                self._with_context(
-                    run.group,
-                    lambda r=run, h=hot: self._read(r, "hot" if h else "cold", connection),
-                )
+                if run.failed is not None:
+                    continue
+                try:
+                    self._with_context(
+                        run.group,
+                        lambda r=run, h=hot: self._read(r, "hot" if h else "cold", connection),
+                    )
+                except MeasurementError as exc:
+                    run.failed = exc
 
     def _hold_lucky(self, active: list[_GroupRun], decisions: dict[int, tuple]) -> None:
         """Keep a group that claims its target on far fewer averages than the sweep's other
@@ -248,6 +256,9 @@ class SwitchedSweep(MeasurementSteps):
                 self._run_block(block, Connection.THROUGH)
             decisions = {}
             for run in active:
+                if run.failed is not None:
+                    self._skip(run.group, run.failed, "calibration", writer)
+                    continue
                 policy = run.group.policy
                 target = self.plan.calibration.target_ratio * policy.target_u_nf_db
                 try:
@@ -357,6 +368,9 @@ class SwitchedSweep(MeasurementSteps):
                 self._run_block(block, Connection.DUT)
             decisions = {}
             for run in active:
+                if run.failed is not None:
+                    self._skip(run.group, run.failed, "measurement", writer)
+                    continue
                 decided = self._decide(run, calibrations[run.group.index], writer)
                 if decided is not None:
                     decisions[run.group.index] = decided
