@@ -95,3 +95,18 @@ def test_drift_check_fits_lines_and_follows_chi_square_without_drift():
     curved = drift_check(t, states, d, rel * d)
     assert curved.flagged
     assert drift_check(t[:3], states[:3], d[:3], rel * d[:3]) is None
+
+
+def test_groups_the_physics_refuses_are_skipped_and_the_run_goes_on(tmp_path):
+    plan = make_plan("y_factor", freqs_hz=FREQS[:4], target=0.08, switching={"mode": "per_sweep"})
+    sim = ideal_sim(5)
+    sim.noise_source.stuck = True  # a dead source: every system calibration is refused
+    record = Sequencer(plan, simulated_session(sim, plan.bench)).run(tmp_path / "dead")
+    assert record.info.status == "complete"
+    skipped = record.info.notes["skipped_points"]
+    # noise alone can put a dead source's hot reading a hair above its cold one at a point
+    # (then the measurement refuses it, or it reads an absurd NF)
+    assert len(skipped) >= 2 and len(skipped) + len(record.points) == 4
+    assert all("hot reading is not above the cold one" in s["reason"] for s in skipped)
+    assert {s["stage"] for s in skipped} <= {"calibration", "measurement"}
+    assert all(p.nf_db > 20 for p in record.points)
