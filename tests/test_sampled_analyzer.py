@@ -354,3 +354,35 @@ def test_image_of_a_tone_is_removed_by_the_correction():
     # 1e-4 / fs = 1e-10 /Hz: about 120x
     assert levels[False] > 60
     assert levels[True] < 2.0  # noise only (a bin's maximum of five stays below 2x the median)
+
+
+def test_tone_scale_calibration_recovers_the_receiver_scale(sim_rx):
+    from noisebench.sims.samples import calibrate_tone_scale
+
+    _, rx = sim_rx
+    cal = calibrate_tone_scale(rx, 1.5e9, -60.0, u_level_db=0.1)
+    # the simulated receiver's true scale (its spec); the noise part of u is tiny at 58 dB SNR
+    assert cal.scale_w_per_fs2 == pytest.approx(rx.spec.scale_w_per_fs2, rel=5 * cal.u_rel)
+    assert cal.u_db == pytest.approx(math.hypot(4.3429 * cal.u_rel, 0.1), rel=1e-3)
+    analyzer = SampledAnalyzer(rx, scale=cal)
+    assert analyzer.level_uncertainty_db == cal.u_db
+    assert analyzer.full_scale_dbm == pytest.approx(-45.0, abs=0.01)
+
+
+def test_noise_pair_scale_calibration(sim_rx):
+    from noisebench.sampled import scale_from_noise_pair
+    from noisebench.sampled.source import CaptureRequest
+
+    sim, rx = sim_rx
+    sim.set_path(Path.THROUGH)
+    truth = sim.truth(F_HZ)
+    blocks = {}
+    for hot in (False, True):
+        sim.noise_source.set_hot(hot)
+        sim.clock.advance(1.0)
+        blocks[hot] = rx.capture(CaptureRequest(F_HZ, 0.0, rx.spec.sample_rate_hz, 1 << 20))
+    t_hot = truth["density_through_hot_w_per_hz"][0] / BOLTZMANN
+    t_cold = truth["density_through_cold_w_per_hz"][0] / BOLTZMANN
+    cal = scale_from_noise_pair(blocks[True], blocks[False], t_hot, t_cold, usable_fraction=0.7)
+    assert cal.scale_w_per_fs2 == pytest.approx(rx.spec.scale_w_per_fs2, rel=5 * cal.u_rel)
+    assert cal.u_db is None  # the temperatures' uncertainty was not given: unknown, not zero
