@@ -1,7 +1,8 @@
 """The abstract bench: what the sequencer needs from an analyzer, a noise source, a generator.
 
-Concrete back ends live in ``noisebench.drivers`` (SCPI over pyvisa) and ``noisebench.sims``
-(simulated). The core never imports either; :mod:`noisebench.bench.registry` picks one by address.
+Concrete back ends live in ``noisebench.drivers`` (SCPI over pyvisa) and in the simulated
+bench's package. The core never imports either; :mod:`noisebench.bench.registry` picks one
+by address.
 """
 
 from __future__ import annotations
