@@ -33,7 +33,7 @@ import numpy as np
 
 from noisebench.bench.registry import simulated_session
 from noisebench.running.forecast import (
-    _simulated_priors,  # noqa: PLC2701 - same model, no instrument
+    Priors,
     band_relative_variance,
     point_uncertainty_db,
 )
@@ -41,6 +41,7 @@ from noisebench.running.groups import plan_groups
 from noisebench.running.plan import parse_plan
 from noisebench.running.sequencer import Sequencer
 from noisebench.sims.bench import SimulatedBench
+from noisebench.sims.forecast_model import SimulatedBenchModel
 
 T0 = 290.0
 AMBIENT_K = 296.0
@@ -158,7 +159,10 @@ def radiometer_minimum(
         sim.analyzer.configure(group.request(101))
         per_average = (sim.analyzer.expected_acquisition_time_s() - t1) / 100
         for f in group.freqs_hz:
-            priors = _simulated_priors(plan, sim, f)
+            readings, enr, gain, ts = SimulatedBenchModel(sim).expected_readings(
+                f, method == "y_factor"
+            )
+            priors = Priors(readings, enr, gain, ts, plan.corrections.t0_k)
             rel1 = math.sqrt(band_relative_variance(one, f, group.band_hz))
             names = ("hot", "cold") if method == "y_factor" else ("dut",)
             u1 = point_uncertainty_db(plan.method, f, priors, dict.fromkeys(names, rel1))

@@ -8,12 +8,13 @@ Prints ratios measured in this run (no thresholds):
      sample rate (how much faster than real time the host keeps up);
   2. the same Welch average done naively, one periodogram per segment in a Python loop, vs
      scipy.signal.welch as used;
-  3. host time per point for the windows offered (the flat top needs the longest segments).
+  3. accuracy over seeds on ideal simulated benches (Y-factor and gain method, live simulated
+     sampled receiver, target 0.05 dB): bias, scatter against the stated u, share within 2 u.
 
 Samples come from a fixed array (the source's own synthesis is not part of the analyzer's host
 time; its cost is printed separately).
 
-Run:  python scripts/bench_sampled.py
+Run:  python scripts/bench_sampled.py [--seeds N]   (section 3 takes about 5 s per seed)
 """
 
 from __future__ import annotations
@@ -124,5 +125,72 @@ def main() -> None:
     )
 
 
+def accuracy(seeds: int) -> None:
+    import sys
+    from pathlib import Path
+    from tempfile import TemporaryDirectory
+
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
+    from _sequencer_helpers import (  # the tests' ideal bench
+        IDEAL_INPUT_LOSS_DB,
+        IDEAL_OUTPUT_LOSS_DB,
+        ideal_sim,
+    )
+
+    from noisebench.bench.registry import simulated_session
+    from noisebench.running.plan import parse_plan
+    from noisebench.running.sequencer import run_plan
+    from noisebench.sims.samples import SimSampleReceiver
+
+    freqs = [1e9, 2e9, 3e9, 4e9]
+    print(f"\n3. accuracy over {seeds} seeds x {len(freqs)} points, ideal bench, target 0.05 dB")
+    for method in ("y_factor", "gain"):
+        data = {
+            "method": method,
+            "bench": {"analyzer": {"resource": "sim://demo-lna?receiver=sampled"}},
+            "acquisition": {"rbw_hz": 10e3, "span_hz": 400e3, "target_u_nf_db": 0.05},
+            "sweep": {"freqs_hz": freqs},
+            "corrections": {"input_loss": IDEAL_INPUT_LOSS_DB, "source_temperature_k": 296.0},
+            "expect": {"dut_gain_db": 20.0},
+            "output": {"plots": False, "report": False},
+        }
+        if method == "gain":
+            data["corrections"]["output_loss"] = IDEAL_OUTPUT_LOSS_DB
+            data["bench"]["generator"] = {"resource": "sim", "max_level_dbm": -10.0}
+            data["bench"]["noise_source"] = {"drive": "none"}
+            data["gain"] = {"source": "measure", "max_gain_db": 30.0, "dut_p1db_out_dbm": 14.0}
+        plan = parse_plan(data)
+        err, u = [], []
+        host = 0.0
+        with TemporaryDirectory() as tmp:
+            for seed in range(1, seeds + 1):
+                sim = ideal_sim(seed, ambient_k=296.0, noise_source__physical_temperature_k=296.0)
+                analyzer = SampledAnalyzer(SimSampleReceiver(sim, seed=seed))
+                session = simulated_session(sim, plan.bench, analyzer=analyzer)
+                t = time.process_time()
+                record, _ = run_plan(
+                    plan, folder=Path(tmp) / f"{method}{seed}", outputs=False, session=session
+                )
+                host += time.process_time() - t
+                truth = sim.truth(freqs)["nf_db"]
+                for p, nf in zip(record.points, truth, strict=True):
+                    err.append(p.nf_db - nf)
+                    u.append(float(p.notes.get("u_nf_db_with_gain", p.u_nf_db)))
+        e, uu = np.asarray(err), np.asarray(u)
+        u_bias = e.std(ddof=1) / np.sqrt(e.size)
+        print(
+            f"   {method:8s} bias {e.mean():+.4f} dB (its own u {u_bias:.4f}),"
+            f" scatter {e.std(ddof=1):.4f} dB vs stated u {np.sqrt(np.mean(uu**2)):.4f} dB,"
+            f" {100 * np.mean(np.abs(e) <= 2 * uu):.1f} % within 2 u;"
+            f" host CPU {host / e.size:.2f} s per point"
+        )
+
+
 if __name__ == "__main__":
+    import argparse
+
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--seeds", type=int, default=10)
+    args = parser.parse_args()
     main()
+    accuracy(args.seeds)

@@ -21,6 +21,7 @@ from noisebench.drivers import (
     open_generator,
     open_supply_noise_source,
 )
+from noisebench.drivers.profile import load_profile, parse_profile
 from noisebench.drivers.transport import BlockError
 from noisebench.errors import (
     CommunicationError,
@@ -163,7 +164,10 @@ def test_markers_match_the_trace_they_were_read_from(analyzer, kind):
 
 
 def test_timeout_raises_instrument_timeout_and_the_session_stays_usable(sim_server):
-    sa = open_analyzer(sim_server.resource("analyzer"), timeout_s=1.0, retries=1)
+    # a retry window of 0: one recovery attempt, no backoff (tests/test_recovery.py has those)
+    text = open(load_profile("generic").source, encoding="utf-8").read()
+    once = parse_profile(text.replace("max_error_entries = 32", "retry_window_s = 0"))
+    sa = open_analyzer(sim_server.resource("analyzer"), once, timeout_s=1.0, retries=1)
     try:
         sim_server.faults.hold_replies = True  # no reply can beat the timeout, however busy
         with pytest.raises(InstrumentTimeout) as info:

@@ -207,8 +207,23 @@ def test_compact_dialect_runs_from_its_profile_alone(compact_server):
         reading = sa.read_marker(1.5e9, MarkerKind.NOISE_DENSITY)
         assert reading.instrument_corrected is True  # fixed by the marker function
         assert -180 < reading.value_db < -120
-        with pytest.raises(InputError, match="no band_power marker"):
-            sa.read_marker(1.5e9, MarkerKind.BAND_POWER)
+        # no band-power marker: integrated from a trace, by the markers' own definition; on
+        # noise it equals the density times the band (RMS detector: no detector bias)
+        sa.configure(
+            request.model_copy(
+                update={
+                    "points": 401,
+                    "detector": Detector.RMS,
+                    "averaging_scale": AveragingScale.POWER,
+                }
+            )
+        )
+        density = sa.read_marker(1.5e9, MarkerKind.NOISE_DENSITY)
+        band = sa.read_marker(1.5e9, MarkerKind.BAND_POWER, 1.5e6)
+        assert band.kind is MarkerKind.BAND_POWER and band.band_hz == 1.5e6
+        assert band.instrument_corrected is True  # RMS detector, power scale: no bias
+        expected = density.value_db + 10 * np.log10(1.5e6)
+        assert band.value_db == pytest.approx(expected, abs=0.5)
     finally:
         sa.close()
     sent = [line for who, line in compact_server.command_log if who == "analyzer"]

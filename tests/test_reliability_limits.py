@@ -122,3 +122,17 @@ def test_a_unit_list_that_is_not_text_or_too_big_is_refused(tmp_path):
         units_from_file(path)
     path.write_text("\ufeffSN-1\nSN-2\n", encoding="utf-8")  # a byte-order mark is fine
     assert [u.serial for u in units_from_file(path)] == ["SN-1", "SN-2"]
+
+
+def test_a_touchstone_file_above_the_row_limit_is_refused(tmp_path, monkeypatch):
+    pytest.importorskip("skrf")
+    import noisebench.user_files as limits
+
+    monkeypatch.setattr(limits, "MAX_TABLE_ROWS", 3)  # the same check, on a small file
+    path = tmp_path / "dut.s2p"
+    rows = "".join(f"{f} 0.1 0 10 0 0.01 0 0.2 0\n" for f in (1e9, 2e9, 3e9, 4e9))
+    path.write_text("# HZ S MA R 50\n" + rows, encoding="utf-8")
+    with pytest.raises(InputError, match="more than 3 rows, the limit for a Touchstone gain"):
+        load_gain_table(path)
+    monkeypatch.setattr(limits, "MAX_TABLE_ROWS", 4)
+    assert len(load_gain_table(path).gain_db) == 4

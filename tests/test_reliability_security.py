@@ -15,6 +15,7 @@ from pathlib import Path
 
 import pytest
 from _production import exact_sim, session_on, small_plan
+from markupsafe import escape
 
 from noisebench.errors import InputError, NoisebenchError
 from noisebench.frontends import cli
@@ -125,7 +126,7 @@ def test_a_plan_with_hostile_names_writes_only_inside_its_output_folder(tmp_path
     assert outside == [tmp_path / "work", work, path]  # nothing escaped
     html = (folder / "report.html").read_text(encoding="utf-8")
     assert "<script>" not in html  # escaped, never live
-    assert "&lt;script&gt;alert(&#x27;nb&#x27;)&lt;/script&gt;" in html
+    assert str(escape(SCRIPT)) in html  # as the report's template engine escapes it
     info = json.loads((folder / "run.json").read_text(encoding="utf-8"))
     assert info["dut_id"] == f"{CLIMB}/{SCRIPT}"  # the data keep the name exactly
 
@@ -188,15 +189,32 @@ def test_a_station_unit_with_a_hostile_serial_stays_in_the_station_folder(tmp_pa
     assert {"runs", "units", "points"} <= tables and lots == ["", SQL]
 
 
-def test_the_database_code_never_formats_sql_text():
-    """Bound parameters only: no f-string or %-formatting reaches ``text()``/``execute``."""
-    import inspect
+PACKAGE = Path(__file__).resolve().parent.parent / "noisebench"
+
+
+def test_no_module_formats_sql_text():
+    """Bound parameters only: no f-string or %-formatting reaches ``text()``/``execute`` in any
+    module that talks to a database."""
     import re
 
-    from noisebench.results import database
+    talking = [
+        p for p in PACKAGE.rglob("*.py") if re.search(r"sqlalchemy|sqlite3|psycopg", p.read_text())
+    ]
+    assert any(p.name == "database.py" for p in talking)
+    for path in talking:
+        source = path.read_text(encoding="utf-8")
+        for pattern in (r"text\(\s*f[\"']", r"exec_driver_sql\(\s*f[\"']", r"execute\(\s*f[\"']"):
+            assert not re.search(pattern, source), f"{path.name}: formatted SQL ({pattern})"
+        assert not re.search(r"(SELECT|INSERT|UPDATE|DELETE)[^\n]*[\"']\s*%\s*[(\w]", source)
 
-    source = inspect.getsource(database)
-    assert not re.search(r"text\(\s*f[\"']", source)
-    assert not re.search(r"exec_driver_sql\(\s*f[\"']", source)
-    assert not re.search(r"execute\(\s*f[\"']", source)
-    assert not re.search(r"[\"']\s*%\s*\(", source)
+
+def test_every_listener_is_the_reviewed_loopback_one():
+    """A new socket listener must default to loopback and get a test here: this lists them."""
+    import re
+
+    listeners = sorted(
+        str(p.relative_to(PACKAGE))
+        for p in PACKAGE.rglob("*.py")
+        if re.search(r"\.bind\(\(|HTTPServer|create_server\(|socketserver", p.read_text())
+    )
+    assert listeners == ["sims/scpi_server.py"]

@@ -146,7 +146,7 @@ analyzer = {{ resource = "sigmf://recs" }}
 rbw_hz = 10e3
 span_hz = 400e3
 target_u_nf_db = 0.1
-time_limit_s = 0.5
+time_limit_s = 0.3
 min_averages = 20
 [sweep]
 freqs_hz = [1e9, 2e9, 3e9]
@@ -170,7 +170,7 @@ analyzer = {{ resource = "sigmf://recs{query}" }}
 rbw_hz = 10e3
 span_hz = 400e3
 target_u_nf_db = 0.1
-time_limit_s = 0.5
+time_limit_s = 0.3
 min_averages = 20
 [sweep]
 freqs_hz = [1e9, 2e9, 3e9]
@@ -182,6 +182,8 @@ source_temperature_k = "bench"
 output_loss = "output_loss.csv"
 [expect]
 dut_gain_db = 20.0
+[uncertainty]
+linearity_db = 0.02
 [output]
 folder = "{out}"
 """
@@ -224,6 +226,11 @@ def test_recordings_gain_method_and_database_rows(recordings, tmp_path):
     plan = _write_plan(folder / "gain.toml", RECORDED_GAIN.format(out=tmp_path / "runs", query=""))
     assert _run_cli(["run", plan]) == 0
     run = _only_run(tmp_path / "runs")
+    # the budget takes the receiver scale's own uncertainty as the absolute-level term
+    results = json.loads((run / "results.json").read_text())
+    for budget in results["budgets"]:
+        names = [c["name"] for c in budget["contributions"]]
+        assert "absolute amplitude" in names, names
     db = tmp_path / "nb.sqlite"
     assert _run_cli(["db", "import", run, "--db", f"sqlite:///{db}"]) == 0
     with sqlite3.connect(db) as con:
@@ -258,8 +265,10 @@ def test_gain_method_refused_without_an_absolute_scale(recordings, tmp_path, cap
                 )
         write_recording(unscaled / "r", blocks, cold_temperature_k=recs.cold_temperature_k)
     text = RECORDED_GAIN.format(out=tmp_path / "runs", query="")
-    text = text.replace("sigmf://recs", "sigmf://unscaled").replace(
-        "freqs_hz = [1e9, 2e9, 3e9]", "freqs_hz = [2e9]"
+    text = (
+        text.replace("sigmf://recs", "sigmf://unscaled")
+        .replace("freqs_hz = [1e9, 2e9, 3e9]", "freqs_hz = [2e9]")
+        .replace("time_limit_s = 0.3", "time_limit_s = 0.02")
     )
     plan = _write_plan(folder / "gain_unscaled.toml", text)
     assert _run_cli(["run", plan]) != 0
@@ -289,3 +298,16 @@ def test_plan_checks_for_sampled_addresses(tmp_path):
     sim = _plan("y_factor", {"resource": "sim://demo-lna?seed=1&receiver=sdr"}, None)
     with pytest.raises(Exception, match="receiver='sdr'"):
         parse_plan(sim, base_dir=tmp_path, check_files=False)
+
+
+def test_plan_refuses_a_time_limit_the_recordings_cannot_hold(recordings):
+    folder, _ = recordings
+    text = RECORDED_YF.format(out=folder / "runs").replace("time_limit_s = 0.3", "time_limit_s = 2")
+    plan = _write_plan(folder / "long.toml", text)
+    from noisebench.running.plan import load_plan
+
+    with pytest.raises(Exception) as info:
+        load_plan(plan)
+    lines = str(info.value)
+    assert "acquisition.time_limit_s: the points at 1e+09 Hz may read 2 s of each state" in lines
+    assert "the recordings hold 0.3 s" in lines and "record longer" in lines

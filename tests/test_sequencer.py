@@ -425,10 +425,11 @@ def test_progress_lines_name_point_nf_and_time_left(tmp_path, caplog):
 
 def test_forecast_matches_the_measured_averaging(tmp_path):
     from noisebench.running.forecast import forecast_plan
+    from noisebench.sims.forecast_model import SimulatedBenchModel
 
     for method in ("y_factor", "gain"):
         plan = make_plan(method, freqs_hz=[1.5e9, 2e9, 2.5e9, 3e9], target=0.05)
-        forecast = forecast_plan(plan, sim=ideal_sim(seed=21))
+        forecast = forecast_plan(plan, model=SimulatedBenchModel(ideal_sim(seed=21)))
         _, record = _run(plan, ideal_session(plan, seed=21), tmp_path, method)
         for f, p in zip(forecast.points, record.points, strict=True):
             assert 0.045 < f.u_nf_db <= 0.05 and f.limited_by is None  # averages are whole

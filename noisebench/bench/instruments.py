@@ -1,7 +1,8 @@
 """The abstract bench: what the sequencer needs from an analyzer, a noise source, a generator.
 
-Concrete back ends live in ``noisebench.drivers`` (SCPI over pyvisa) and ``noisebench.sims``
-(simulated). The core never imports either; :mod:`noisebench.bench.registry` picks one by address.
+Concrete back ends live in ``noisebench.drivers`` (SCPI over pyvisa) and in the simulated
+bench's package. The core never imports either; :mod:`noisebench.bench.registry` picks one
+by address.
 """
 
 from __future__ import annotations
@@ -84,6 +85,13 @@ class Analyzer(Instrument):
         """Highest input power read without clipping (a sampled receiver's converter full
         scale for a tone), dBm; None when the instrument has no such hard limit or it is not
         known."""
+        return None
+
+    @property
+    def level_uncertainty_db(self) -> float | None:
+        """Standard uncertainty of absolute levels when the instrument knows it (a sampled
+        receiver's scale calibration), dB; None: not known here (the plan's
+        ``uncertainty.absolute_amplitude_db`` applies)."""
         return None
 
     @property

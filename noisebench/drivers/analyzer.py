@@ -37,6 +37,7 @@ from noisebench.bench.acquisition import (
     Trace,
     TraceUnit,
 )
+from noisebench.bench.capabilities import NoiseDriveOutput, PathSwitch
 from noisebench.bench.instruments import Analyzer
 from noisebench.errors import (
     CommunicationError,
@@ -58,6 +59,9 @@ from .scpi_channel import ScpiChannel
 from .transport import BlockError, Transport, parse_ascii_values
 
 logger = logging.getLogger(__name__)
+
+SIMULATOR_MAKER = "noisebench"
+"""Manufacturer field of the simulated instruments' ``*IDN?`` reply."""
 
 __all__ = ["ScpiAnalyzer", "settings_differences"]
 
@@ -86,7 +90,7 @@ PARTIAL_READBACK = frozenset({"center_hz", "averages"})
 read back (retuning between point groups, a new average count)."""
 
 
-class ScpiAnalyzer(Analyzer):
+class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
     """A spectrum analyzer over a :class:`~noisebench.drivers.transport.Transport`.
 
     ``profile`` is an :class:`InstrumentProfile`, a packaged profile name or a ``.toml`` path.
@@ -467,8 +471,7 @@ class ScpiAnalyzer(Analyzer):
                 self._wait_by_polling(limit)
             else:
                 self._channel.write(acq.start, check=False)
-                with self.transport.timeout(limit):
-                    reply = self._channel.query(self.profile.common.operation_complete)
+                reply = self.transport.query_watched(self.profile.common.operation_complete, limit)
                 if reply.strip().lstrip("+") != "1":
                     raise ReplyError(
                         f"reply {reply!r} to {self.profile.common.operation_complete!r} is not 1"
@@ -596,13 +599,15 @@ class ScpiAnalyzer(Analyzer):
         noise-density (dBm/Hz) marker at ``freq_hz``."""
         settings = self._require_settings()
         marker = self.spec.marker
+        kind = MarkerKind(kind)
+        if kind is MarkerKind.BAND_POWER and (marker is None or "band_power" not in marker.kinds):
+            return self._band_power_from_trace(freq_hz, band_hz)
         if marker is None:
             raise InputError(
                 "marker",
                 f"profile {self.profile.name} has no marker commands",
                 fix="add an [analyzer.marker] section",
             )
-        kind = MarkerKind(kind)
         _check_marker_frequency(freq_hz, settings)
         if kind.value not in marker.kinds:
             raise InputError(
@@ -628,6 +633,46 @@ class ScpiAnalyzer(Analyzer):
             commands.append(marker.band.command(band_hz))
         return self._channel.run(
             "read marker", lambda: self._marker_once(commands, float(freq_hz), kind, band_hz)
+        )
+
+    def _band_power_from_trace(self, freq_hz: float, band_hz: float | None) -> MarkerReading:
+        """A band-power reading for an instrument without that marker: one trace, integrated
+        over exactly the band (``sum(w P) / ENBW``, the markers' own definition,
+        :func:`noisebench.science.estimator.band_weights_hz`)."""
+        from noisebench.science.estimator import band_weights_hz
+
+        settings = self._require_settings()
+        _check_marker_frequency(freq_hz, settings)
+        if settings.span_hz <= 0 or settings.points < 2:
+            raise InputError(
+                "marker",
+                f"profile {self.profile.name} has no band-power marker and a zero-span trace "
+                "cannot be integrated over a band",
+                fix="use a span of several RBW",
+            )
+        band = 5.0 * settings.rbw_hz if band_hz is None else float(band_hz)
+        trace = self.acquire_trace()
+        weights = band_weights_hz(trace.freq_hz, float(freq_hz), band)
+        if weights.sum() < band * (1 - 1e-9):
+            raise InputError(
+                "band_hz",
+                f"{band:.6g} Hz around {float(freq_hz):.6g} Hz is not inside the trace",
+                fix="narrow the band or widen the span",
+            )
+        power_w = 10.0 ** (np.asarray(trace.values, dtype=float) / 10.0) * 1e-3
+        value_w = float(np.sum(weights * power_w)) / settings.enbw_hz
+        unbiased = (
+            settings.detector is Detector.RMS or settings.averaging_scale is AveragingScale.POWER
+        )
+        return MarkerReading(
+            freq_hz=float(freq_hz),
+            kind=MarkerKind.BAND_POWER,
+            value_db=10.0 * math.log10(value_w / 1e-3),
+            band_hz=band,
+            settings=settings,
+            acquisition_time_s=trace.acquisition_time_s,
+            instrument=self.identity,
+            instrument_corrected=unbiased,
         )
 
     def _marker_once(
@@ -682,6 +727,21 @@ class ScpiAnalyzer(Analyzer):
                 "noise_drive", f"profile {self.profile.name} has no noise-source drive commands"
             )
         return bool(self._channel.run("noise drive", lambda: self._channel.get(setting)))
+
+    @property
+    def has_path_switch(self) -> bool:
+        """True for the SCPI simulator: its profile has the path command AND it says it is one.
+
+        Both are required so a profile copied from the generic one never sends simulator-only
+        commands to real hardware."""
+        if self.spec.sim_path is None:
+            return False
+        maker = str(self.identity).split(",", 1)[0].strip().lower()
+        return maker == SIMULATOR_MAKER
+
+    def set_path(self, path: str) -> None:
+        """The :class:`~noisebench.bench.capabilities.PathSwitch` form of :meth:`set_sim_path`."""
+        self.set_sim_path(path)
 
     def set_sim_path(self, path: str | Enum) -> None:
         """Simulator only: what the analyzer input sees (``dut``/``through``/``termination``)."""

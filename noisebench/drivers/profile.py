@@ -728,6 +728,15 @@ class CommonProfile(_Section):
         "(names the culprit); 'step': after each step",
     )
     max_error_entries: int = Field(default=32, ge=1, le=1000)
+    retry_window_s: float = Field(
+        default=60.0,
+        ge=0,
+        le=3600,
+        description="how long recovery keeps trying to reach an instrument that stopped "
+        "answering (a reboot takes tens of seconds)",
+    )
+    first_backoff_s: float = Field(default=0.5, gt=0, le=600)
+    max_backoff_s: float = Field(default=8.0, gt=0, le=600)
 
     _optional = field_validator("clear_status", mode="before")(_not_available)
 

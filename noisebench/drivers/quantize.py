@@ -51,7 +51,8 @@ UNIT_SCALES: dict[str, float] = {
     "mA": 1e-3,
 }
 
-# SCPI-1999 unit suffixes in replies (case-insensitive; MHZ is mega hertz, MA milli ampere)
+# SCPI-1999 unit suffixes in replies (case-insensitive; MHZ is mega hertz, MA milli ampere;
+# from memory)
 _REPLY_SUFFIXES: dict[str, tuple[str, float]] = {
     "HZ": ("Hz", 1.0),
     "KHZ": ("Hz", 1e3),

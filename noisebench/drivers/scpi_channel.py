@@ -9,10 +9,17 @@ every operation through :meth:`ScpiChannel.run`, which gives the retry policy:
    triggers recovery - ``Transport.recover()`` (a reconnect on sockets), an ``*IDN?``
    liveness probe that must return the same identity, and a read of the error queue (an
    entry there explains the failure and is raised as ``InstrumentError`` naming the
-   command) - then, after a reconnect, the driver's ``restore`` callback re-applies its
-   settings, and the operation is retried, at most ``retries`` times;
-3. when recovery itself fails, the original error is raised and recovery is tried again at
-   the start of the next operation, so a session that timed out stays usable.
+   command) - then, after a reconnect, the profile's ``init`` commands and the driver's
+   ``restore`` callback (re-apply and verify its settings), and the operation is retried, at
+   most ``retries`` times;
+3. a recovery that fails (nothing answers: the instrument reboots, a cable is out) is tried
+   again with exponential backoff - ``first_backoff_s`` doubling up to ``max_backoff_s`` - for
+   the profile's ``retry_window_s`` (a reboot takes tens of seconds); "reconnected" is logged
+   only after the instrument answered the liveness probe;
+4. when the window is used up the original error is raised (the run ends with exit 4 and is
+   resumable) and recovery is tried again at the start of the next operation.
+
+Waiting uses :data:`TIMING` (``sleep`` and ``monotonic``), which tests replace with a fake clock.
 """
 
 from __future__ import annotations
@@ -22,6 +29,7 @@ import re
 import threading
 import time
 from collections.abc import Callable, Sequence
+from dataclasses import dataclass
 from typing import Any, TypeVar
 
 from noisebench.errors import (
@@ -36,9 +44,24 @@ from .transport import Transport
 
 logger = logging.getLogger(__name__)
 
-__all__ = ["ScpiChannel", "parse_error_entry"]
+__all__ = ["TIMING", "RecoveryTiming", "ScpiChannel", "parse_error_entry"]
 
 T = TypeVar("T")
+
+
+class OtherInstrument(CommunicationError):
+    """The address answers, but with another identity: never retried."""
+
+
+@dataclass
+class RecoveryTiming:
+    """The clock recovery waits on; tests swap in a fake one (no real waiting, no races)."""
+
+    sleep: Callable[[float], None] = time.sleep
+    monotonic: Callable[[], float] = time.monotonic
+
+
+TIMING = RecoveryTiming()
 _ERROR_ENTRY = re.compile(r'^\s*([+-]?\d+)\s*(?:,\s*"?(.*?)"?)?\s*$', re.DOTALL)
 
 
@@ -216,19 +239,61 @@ class ScpiChannel:
                         raise
                     attempt += 1
                     logger.warning(
-                        "%s: %s failed (%s); recovering, attempt %d of %d",
+                        "%s: %s failed (%s); recovering for up to %g s, then retry %d of %d",
                         self.kind,
                         what,
                         exc,
+                        self.common.retry_window_s,
                         attempt,
                         self.retries,
                     )
                     try:
-                        self._recover(exc, what)
+                        self._recover_with_backoff(exc, what)
                     except InstrumentError:
                         raise
                     except CommunicationError as failure:
                         raise exc.add_context(recovery_failed=failure.message) from failure
+
+    def _recover_with_backoff(self, cause: CommunicationError, what: str) -> None:
+        """:meth:`_recover` until it works or ``retry_window_s`` is used up (module doc)."""
+        started = TIMING.monotonic()
+        delay = self.common.first_backoff_s
+        tries = 0
+        while True:
+            tries += 1
+            try:
+                self._recover(cause, what)
+                return
+            except (InstrumentError, OtherInstrument):
+                raise  # waiting does not help: the instrument said no, or is another one
+            except CommunicationError as failure:
+                waited = TIMING.monotonic() - started
+                left = self.common.retry_window_s - waited
+                if left <= 0:
+                    logger.error(
+                        "%s: no answer after %d recovery attempt(s) over %.1f s: %s",
+                        self.kind,
+                        tries,
+                        waited,
+                        failure,
+                    )
+                    self.recovery_log.append(
+                        f"{what}: gave up after {tries} attempt(s) over {waited:.1f} s"
+                    )
+                    raise
+                pause = min(delay, left)
+                logger.warning(
+                    "%s: not answering (%s); attempt %d failed, next in %.1f s "
+                    "(%.0f s of the %g s retry window left)",
+                    self.kind,
+                    failure.message,
+                    tries,
+                    pause,
+                    left,
+                    self.common.retry_window_s,
+                )
+                TIMING.sleep(pause)
+                delay = min(2.0 * delay, self.common.max_backoff_s)
 
     def _recover(self, cause: CommunicationError | None, what: str) -> None:
         started = time.monotonic()
@@ -237,9 +302,9 @@ class ScpiChannel:
         with self.transport.timeout(min(self.transport.timeout_s, self.base_timeout_s)):
             self._probe()
             entries = self.read_error_queue()
-        note = (
-            f"{what}: {'reconnected' if reconnected else 'cleared'} after "
-            f"{cause.message if cause else 'an earlier failure'}"
+        note = (  # only now, after the instrument answered, is it "reconnected"
+            f"{what}: {'reconnected' if reconnected else 'cleared'} (the instrument answered "
+            f"{self.common.identify}) after {cause.message if cause else 'an earlier failure'}"
         )
         self.recovery_log.append(note)
         logger.warning("%s: %s (%.3f s)", self.kind, note, time.monotonic() - started)
@@ -266,7 +331,7 @@ class ScpiChannel:
     def _probe(self) -> None:
         reply = self.transport.query(self.common.identify)
         if self.identity and reply != self.identity:
-            raise CommunicationError(
+            raise OtherInstrument(
                 f"liveness probe {self.common.identify!r} answered {reply!r}, expected "
                 f"{self.identity!r}",
                 resource=self.transport.resource,

@@ -27,6 +27,7 @@ What VisaSession does about pyvisa-py's known behaviour on sockets (see DEVELOPE
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import math
 import select
@@ -56,6 +57,9 @@ __all__ = [
 
 _TERMINATIONS = ("\n", "\r\n", "\r")
 _DTYPES = {"f": 4, "d": 8}
+
+#: a long reply (``*OPC?``) is awaited in slices this long, checking for a closed peer between
+WATCH_SLICE_S = 0.5
 
 
 _DONT_WAIT = getattr(socket, "MSG_DONTWAIT", 0)  # POSIX; elsewhere every receive waits first
@@ -204,6 +208,13 @@ class Transport(ABC):
         self, command: str, *, datatype: str = "f", big_endian: bool = True
     ) -> np.ndarray:
         """Send a query answered by a definite-length binary block; return the numbers."""
+
+    def query_watched(self, command: str, limit_s: float) -> str:
+        """A query whose reply may take up to ``limit_s`` (``*OPC?`` after a long acquisition).
+        Back ends that can see the peer close the connection fail over at once instead of
+        waiting out the limit; this default simply waits."""
+        with self.timeout(limit_s):
+            return self.query(command)
 
     @abstractmethod
     def recover(self) -> bool:
@@ -423,7 +434,9 @@ class VisaSession(Transport):
             self._open()
             self._stale = False
             self.reconnects += 1
-            logger.warning("%s: reconnected (%d so far)", self.resource, self.reconnects)
+            # not "reconnected": opening a socket session succeeds even when nothing listens;
+            # the driver says so once the instrument answers
+            logger.info("%s: session reopened (%d so far)", self.resource, self.reconnects)
 
     def recover(self) -> bool:
         with self._lock:
@@ -580,6 +593,43 @@ class VisaSession(Transport):
                 reply = self._res.query(command)
             logger.debug("%s >> %s", self.resource, reply[:200])
             return reply.strip()
+
+    def query_watched(self, command: str, limit_s: float) -> str:
+        """Wait for the reply in slices of at most :data:`WATCH_SLICE_S`, checking between
+        slices whether the instrument closed the socket: a dropped connection then fails at
+        once (ConnectionLost) instead of after the whole limit."""
+        if self._socket() is None:
+            return super().query_watched(command, limit_s)
+        deadline = time.monotonic() + limit_s
+        with self._exchange(command):
+            logger.debug("%s << %s (watched, %.3g s)", self.resource, command, limit_s)
+            with self._io(command):
+                self._res.write(command)
+            previous = self._timeout_s
+            try:
+                while True:
+                    left = deadline - time.monotonic()
+                    self._set_timeout_s(max(0.001, min(WATCH_SLICE_S, left)))
+                    try:
+                        with self._io(command):
+                            reply = self._res.read()
+                        return reply.strip()
+                    except InstrumentTimeout:
+                        if self.peer_closed():
+                            raise ConnectionLost(
+                                f"the instrument closed the connection while {command!r} waited",
+                                command=command,
+                                resource=self.resource,
+                            ) from None
+                        if deadline - time.monotonic() <= 0:
+                            raise InstrumentTimeout(
+                                f"no reply to {command!r} within {limit_s:g} s",
+                                command=command,
+                                resource=self.resource,
+                            ) from None
+            finally:
+                with contextlib.suppress(CommunicationError):
+                    self._set_timeout_s(previous)
 
     def query_binary(
         self, command: str, *, datatype: str = "f", big_endian: bool = True

@@ -141,7 +141,10 @@ def _read_journal(path: Path) -> _Journal:
 class _FolderLock:
     """Advisory, process-wide lock on a run folder (POSIX ``flock``; none elsewhere).
 
-    The OS releases it when the process dies, so a killed run never stays locked.
+    The OS releases it when the process dies, so a killed run never stays locked. ``release``
+    deletes the lock file (no empty ``.lock`` is left in a finished folder); a process that
+    opened the file just before it was deleted sees that its locked file is no longer the one
+    at the path and refuses, as if the folder were busy.
     """
 
     def __init__(self, path: Path) -> None:
@@ -164,10 +167,25 @@ class _FolderLock:
                 fix="wait for it to end, or pick another folder",
             )
             raise busy from None
+        try:
+            same = os.path.samestat(os.fstat(fd), os.stat(self.path))
+        except OSError:
+            same = False
+        if not same:  # the holder released and deleted it between our open and flock
+            os.close(fd)
+            raise InputError(
+                "folder",
+                f"{self.path.parent} was just released by another measurement",
+                fix="try again",
+            )
         self._fd = fd
 
     def release(self) -> None:
         if self._fd is not None:
+            try:
+                self.path.unlink()  # while still holding the lock (see the class doc)
+            except OSError:
+                pass
             os.close(self._fd)
             self._fd = None
 

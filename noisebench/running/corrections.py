@@ -140,8 +140,8 @@ def resolve_corrections(plan: Plan, session: BenchSession) -> Corrections:
             from noisebench.science.enr import EnrTable
 
             enr_table = EnrTable.from_csv(plan.resolve_path(plan.enr.table))
-        elif session.sim is not None:
-            enr_table = session.sim.enr_table
+        elif session.enr_table is not None:  # the bench knows its source's table
+            enr_table = session.enr_table
         else:
             raise InputError("enr.table", "the Y-factor method needs the ENR table")
     return Corrections(

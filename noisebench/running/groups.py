@@ -60,7 +60,7 @@ class PointGroup:
         return f"{lo:.6g} Hz" if lo == hi else f"{lo:.6g}..{hi:.6g} Hz"
 
 
-def _auto_points(span_hz: float, rbw_hz: float) -> int:
+def auto_points(span_hz: float, rbw_hz: float) -> int:
     return min(
         100_001, max(MIN_AUTO_POINTS, int(math.ceil(AUTO_POINTS_PER_RBW * span_hz / rbw_hz)) + 1)
     )
@@ -112,5 +112,5 @@ def _make_group(index: int, run: list[FrequencyPoint]) -> PointGroup:
         points = policy.trace_points or ZERO_SPAN_POINTS
         return PointGroup(index, freqs, policy, freqs[0], 0.0, None, points)
     span = (freqs[-1] - freqs[0]) + band * (1.0 + BAND_EDGE_MARGIN)
-    points = policy.trace_points or _auto_points(span, policy.rbw_hz)
+    points = policy.trace_points or auto_points(span, policy.rbw_hz)
     return PointGroup(index, freqs, policy, (freqs[0] + freqs[-1]) / 2, span, band, points)

@@ -53,6 +53,7 @@ from pydantic import (
 )
 
 from noisebench.bench.acquisition import AveragingScale, Detector, SweepMode
+from noisebench.bench.addresses import is_simulated
 from noisebench.errors import InputError
 from noisebench.running.plan_errors import PlanError, format_validation_error
 from noisebench.science.point import Method
@@ -733,7 +734,7 @@ class Plan(BaseModel):
 
     @property
     def is_simulated(self) -> bool:
-        return self.bench.analyzer.resource.startswith("sim://")
+        return is_simulated(self.bench.analyzer.resource)
 
 
 # --------------------------------------------------------------------------- loading

@@ -11,11 +11,11 @@ from pydantic import (
     ValidationError,
 )
 
+from noisebench.bench.addresses import is_simulated
 from noisebench.errors import InputError
 from noisebench.running.plan import Plan
 from noisebench.running.plan_errors import format_validation_error
 from noisebench.science.point import Method
-from noisebench.sims.address import parse_sim_address
 
 # --------------------------------------------------------------------------- cross-field checks
 
@@ -31,14 +31,19 @@ def cross_check(plan: Plan, *, check_files: bool = True) -> list[str]:
     if check_files:
         problems += _check_enr(plan)
         problems += _check_tables(plan)
-        problems += _check_profiles(plan)
+        profile_problems = _check_profiles(plan)
+        problems += profile_problems
+        if not profile_problems:
+            from noisebench.running.profile_check import profile_errors
+
+            problems += profile_errors(plan)  # the plan against the analyzer's profile
     return problems
 
 
 def _profile_sections(plan: Plan) -> list[tuple[str, Any]]:
     """(key, section) of each instrument whose profile a real bench will load."""
     bench = plan.bench
-    if bench.analyzer.resource.startswith("sim://"):
+    if is_simulated(bench.analyzer.resource):
         return []
     from noisebench.sampled.address import is_sampled
 
@@ -90,8 +95,8 @@ def _resolve_sampled(plan: Plan) -> None:
 def _check_sampled(plan: Plan) -> list[str]:
     """A sampled receiver's address, its recordings folder and scale file, and what recordings
     cannot do (drive a generator or a noise source)."""
+    from noisebench.bench.registry import simulated_receiver_options
     from noisebench.sampled.address import is_sampled, parse_sampled_address
-    from noisebench.sims.address import parse_sim_address
 
     resource = plan.bench.analyzer.resource
     key = "bench.analyzer.resource"
@@ -99,14 +104,8 @@ def _check_sampled(plan: Plan) -> list[str]:
         if is_sampled(resource):
             address = parse_sampled_address(resource)
             options = address.options
-        elif resource.startswith("sim://"):
-            try:
-                sim = parse_sim_address(resource)
-            except InputError:
-                return []  # reported by _check_bench
-            if sim.receiver != "sampled":
-                return []
-            address, options = None, sim.sampled
+        elif (sampled := simulated_receiver_options(resource)) is not None:
+            address, options = None, sampled
         else:
             return []
     except InputError as exc:
@@ -117,6 +116,8 @@ def _check_sampled(plan: Plan) -> list[str]:
     if address is not None and address.scheme == "sigmf":
         if not Path(address.target).is_dir():
             problems.append(f"{key}: no recordings folder {address.target!r}")
+        else:
+            problems += _check_recorded_time(plan, address.target)
         if plan.bench.generator is not None:
             problems.append(
                 'bench.generator: recordings cannot drive a generator (use [gain] source = "file" '
@@ -136,18 +137,51 @@ def _check_sampled(plan: Plan) -> list[str]:
     return problems
 
 
+def _check_recorded_time(plan: Plan, folder: str) -> list[str]:
+    """Every state the method reads must hold the time the plan may spend on it: a point's
+    time limit bounds what its hot and cold readings (or its floor / DUT readings) consume, so
+    ``time_limit_s`` (times the points one recording serves) seconds per state never run out."""
+    from noisebench.sampled.sigmf_io import SigmfRecordings
+
+    try:
+        recordings = SigmfRecordings(folder)
+    except InputError as exc:
+        return [f"bench.analyzer.resource: {exc.message.split(': ', 1)[-1]}"]
+    if plan.method is Method.Y_FACTOR:
+        needs = [("through", "hot"), ("through", "cold"), ("dut", "hot"), ("dut", "cold")]
+    else:
+        needs = [("termination", "cold"), ("dut", "cold")]
+    demand: dict[float, float] = {}
+    for point in plan.points():
+        span = point.policy.span_hz
+        try:
+            center = recordings.center_for(point.freq_hz, span)
+        except InputError as exc:
+            return [f"sweep: {exc.message.split(': ', 1)[-1]}"]
+        demand[center] = demand.get(center, 0.0) + point.policy.time_limit_s
+    problems = []
+    rate = recordings.sample_rate_hz
+    for center, seconds in sorted(demand.items()):
+        held = {(c, st): recordings.remaining_samples(center, c, st) / rate for c, st in needs}
+        (connection, state), have = min(held.items(), key=lambda item: item[1])
+        if have < seconds:
+            problems.append(
+                f"acquisition.time_limit_s: the points at {center:.9g} Hz may read {seconds:g} s "
+                f"of each state, the recordings hold {have:.3g} s of {connection} {state} "
+                "(lower time_limit_s or record longer)"
+            )
+    return problems
+
+
 def _check_profiles(plan: Plan) -> list[str]:
     """Each instrument profile must load (checked here, not when the instrument is opened)."""
-    try:
-        from noisebench.drivers.profile import load_profile
-    except ImportError:  # pragma: no cover - drivers not installed
-        return []
+    from noisebench.bench.registry import profile_problem
+
     problems = []
     for key, section in _profile_sections(plan):
-        try:
-            load_profile(section.profile)
-        except InputError as exc:
-            problems.append(f"{key}.profile: {_one_line(exc.message).removeprefix('profile: ')}")
+        problem = profile_problem(section.profile)
+        if problem is not None:
+            problems.append(f"{key}.profile: {_one_line(problem).removeprefix('profile: ')}")
     return problems
 
 
@@ -212,15 +246,17 @@ def _check_method_needs(plan: Plan) -> list[str]:
 
 def _check_bench(plan: Plan) -> list[str]:
     problems = []
-    analyzer_sim = plan.bench.analyzer.resource.startswith("sim://")
-    if analyzer_sim:
-        try:
-            address = parse_sim_address(plan.bench.analyzer.resource)
-        except InputError as exc:
-            problems.append(f"bench.analyzer.resource: {exc.message.split(': ', 1)[-1]}")
-        else:
-            scenario_problems = _check_scenario(address.scenario)
-            problems += scenario_problems or _check_sim_range(plan, address.scenario)
+    from noisebench.bench.registry import address_problems
+
+    analyzer_sim = is_simulated(plan.bench.analyzer.resource)
+    try:
+        spans = [
+            (p.freq_hz - p.policy.span_hz / 2, p.freq_hz + p.policy.span_hz / 2)
+            for p in plan.points()
+        ]
+    except (ValidationError, InputError):  # a bad segment policy: reported by its own check
+        spans = None
+    problems += address_problems(plan.bench.analyzer.resource, spans)
     others = [
         (
             "bench.generator.resource",
@@ -236,56 +272,12 @@ def _check_bench(plan: Plan) -> list[str]:
                     f"{plan.bench.analyzer.resource!r}"
                 )
             continue
-        if analyzer_sim != res.startswith("sim://"):
+        if analyzer_sim != is_simulated(res):
             problems.append(
                 f"{key}: {res!r} cannot be mixed with the analyzer "
                 f"{plan.bench.analyzer.resource!r} (one bench, simulated or real)"
             )
     return problems
-
-
-def _check_scenario(name: str) -> list[str]:
-    """A ``sim://`` scenario must exist (packaged name or .toml path), as the run will need."""
-    try:
-        from noisebench.sims.scenario import SCENARIO_SUFFIX, available_scenarios
-    except ImportError:  # pragma: no cover - simulator not installed
-        return []
-    names = available_scenarios()
-    if name in names or (Path(name).suffix == SCENARIO_SUFFIX and Path(name).is_file()):
-        return []
-    return [
-        f"bench.analyzer.resource: no scenario {name!r} (use one of {names} "
-        f"or a path to a {SCENARIO_SUFFIX} file)"
-    ]
-
-
-def _check_sim_range(plan: Plan, scenario: str) -> list[str]:
-    """Every point's span must lie within the simulated analyzer's frequency range, so a
-    point the analyzer cannot tune to is refused now, not after earlier points were measured."""
-    try:
-        from noisebench.sims.scenario import load_scenario
-
-        spec = load_scenario(scenario).analyzer
-    except (ImportError, InputError):  # reported by _check_scenario / at run time
-        return []
-    lo, hi = spec.min_freq_hz, spec.max_freq_hz
-    try:
-        points = plan.points()
-    except (ValidationError, InputError):  # a bad segment policy: reported by its own check
-        return []
-    bad = [
-        p.freq_hz
-        for p in points
-        if p.freq_hz - p.policy.span_hz / 2 < lo or p.freq_hz + p.policy.span_hz / 2 > hi
-    ]
-    if not bad:
-        return []
-    shown = ", ".join(f"{f:.6g}" for f in bad[:3]) + (" ..." if len(bad) > 3 else "")
-    return [
-        f"sweep: {len(bad)} point(s) ({shown} Hz) with their span fall outside the "
-        f"simulated analyzer's range {lo:.6g}..{hi:.6g} Hz (move them inside or narrow "
-        "span_hz)"
-    ]
 
 
 def _missing_file(key: str, path: Path) -> str:

@@ -16,7 +16,7 @@ from noisebench.running.calibration import (
     CalibrationStore,
 )
 from noisebench.running.corrections import Corrections
-from noisebench.running.groups import PointGroup
+from noisebench.running.groups import PointGroup, auto_points
 from noisebench.running.plan import Plan
 from noisebench.running.progress import NullProgress, RunProgress
 from noisebench.running.safety import (
@@ -29,6 +29,7 @@ from noisebench.science.averaging import (
 )
 from noisebench.science.density import NoiseDensity
 from noisebench.science.point import PointResult
+from noisebench.science.trace_combine import combine_traces, split_averages
 
 logger = logging.getLogger(__name__)
 
@@ -109,8 +110,22 @@ class SequencerCore:
             raise MeasurementError("the power checks are not set up")
         return self.guard
 
+    def _request(self, group: PointGroup, averages: int) -> AcquisitionRequest:
+        """The group's request as the analyzer will apply it (its profile's rounding): an RBW
+        it rounds also sets the automatic trace length, so the points per RBW stay as planned."""
+        analyzer = self.session.bench.analyzer
+        request = analyzer.predict(group.request(averages))
+        if (
+            group.policy.trace_points is None
+            and request.span_hz > 0
+            and request.rbw_hz != group.policy.rbw_hz
+        ):
+            points = auto_points(request.span_hz, request.rbw_hz)
+            request = analyzer.predict(request.model_copy(update={"points": points}))
+        return request
+
     def _configure(self, group: PointGroup, averages: int) -> AcquisitionSettings:
-        request = group.request(averages)
+        request = self._request(group, averages)
         analyzer = self.session.bench.analyzer
         if request != self._last_request or analyzer.settings is None:
             analyzer.configure(request)
@@ -120,13 +135,20 @@ class SequencerCore:
     def _acquire(self, group: PointGroup, averages: int, budget: TimeBudget) -> list[NoiseDensity]:
         from noisebench.science.estimator import estimate_densities, estimate_density
 
-        self._configure(group, averages)
-        started = time.monotonic()
-        trace: Trace = self.session.bench.analyzer.acquire_trace()
-        seconds = trace.acquisition_time_s
-        if seconds is None:
-            seconds = time.monotonic() - started
-        budget.charge_trace(seconds, trace.settings.averages)
+        analyzer = self.session.bench.analyzer
+        traces: list[Trace] = []
+        for count in split_averages(averages, analyzer.max_averages_per_trace):
+            self._configure(group, count)
+            started = time.monotonic()
+            part: Trace = analyzer.acquire_trace()
+            seconds = part.acquisition_time_s
+            if seconds is None:
+                seconds = time.monotonic() - started
+            budget.charge_trace(seconds, part.settings.averages)
+            traces.append(part)
+        # more averages than one trace can hold: combined on the averaging scale, exactly as
+        # one longer average (noisebench.science.trace_combine)
+        trace = combine_traces(traces)
         if group.band_hz is None:
             density = estimate_density(trace)
             return [density.model_copy(update={"freq_hz": group.freqs_hz[0]})]

@@ -191,10 +191,13 @@ def registered_sources() -> list[str]:
 
 
 def open_registered(name: str) -> SampleSource:
-    """The source registered as ``name``; InputError listing the registered names otherwise."""
+    """The source registered as ``name``, or made by ``module:factory`` (importable, called with
+    no arguments); InputError listing the registered names otherwise."""
     with _REGISTRY_LOCK:
         factory = _REGISTRY.get(name)
         names = sorted(_REGISTRY)
+    if factory is None and ":" in name:
+        factory = _import_factory(name)
     if factory is None:
         raise InputError(
             "bench.analyzer.resource",
@@ -210,3 +213,25 @@ def open_registered(name: str) -> SampleSource:
             fix="return an object with an info attribute and a capture(request) method",
         )
     return source
+
+
+def _import_factory(target: str) -> Callable[[], SampleSource]:
+    import importlib
+
+    module_name, _, attr = target.partition(":")
+    try:
+        module = importlib.import_module(module_name)
+    except ImportError as exc:
+        raise InputError(
+            "bench.analyzer.resource",
+            f"cannot import {module_name!r} for samples://{target} ({exc})",
+            fix="put the module on PYTHONPATH, or register the source by name",
+        ) from None
+    factory = getattr(module, attr, None)  # a user-named attribute, looked up once
+    if not callable(factory):
+        raise InputError(
+            "bench.analyzer.resource",
+            f"{module_name!r} has no callable {attr!r} for samples://{target}",
+            fix="name a function or class returning a sample source",
+        )
+    return factory

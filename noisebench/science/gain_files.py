@@ -457,6 +457,7 @@ def _read_touchstone(path: Path, u_gain_db: float | None) -> GainTable:
         ) from None
     if network.nports != 2:
         raise InputError(str(path), f"has {network.nports} ports; gain needs a two-port")
+    check_row_count(len(network.f), field=str(path), what="Touchstone gain table")
     magnitude = np.abs(network.s[:, 1, 0])
     if np.any(magnitude <= 0):
         bad = float(network.f[np.argmax(magnitude <= 0)])

@@ -21,7 +21,7 @@ from noisebench.science.propagation import (
     Distribution,
     standard_uncertainty_from_half_width,
 )
-from noisebench.user_files import MAX_TOUCHSTONE_BYTES, check_file_size
+from noisebench.user_files import MAX_TOUCHSTONE_BYTES, check_file_size, check_row_count
 
 logger = logging.getLogger(__name__)
 
@@ -144,6 +144,7 @@ def _load_reflection_cached(path: str, mtime_ns: int, port: int) -> tuple[np.nda
             value=path,
             fix="export the file as .s1p/.s2p",
         ) from None
+    check_row_count(len(net.f), field="touchstone", what="Touchstone reflection table")
     if port < 1 or port > net.nports:
         raise InputError(
             "touchstone",

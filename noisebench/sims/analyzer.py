@@ -48,6 +48,7 @@ from noisebench.bench.acquisition import (
     Trace,
     TraceUnit,
 )
+from noisebench.bench.capabilities import NoiseDriveOutput
 from noisebench.bench.instruments import Analyzer
 from noisebench.errors import InputError
 from noisebench.science.detection import point_model_for
@@ -107,7 +108,7 @@ def round_step(value: float, step: float, lo: float, hi: float) -> float:
     return float(min(max(math.floor(float(value) / step + 0.5) * step, lo), hi))
 
 
-class SimAnalyzer(Analyzer):
+class SimAnalyzer(Analyzer, NoiseDriveOutput):
     """A spectrum analyzer on the simulated bench (see module docstring for the physics)."""
 
     def __init__(
@@ -141,6 +142,11 @@ class SimAnalyzer(Analyzer):
     @property
     def max_input_power_dbm(self) -> float:
         return self.spec.max_input_power_dbm
+
+    @property
+    def max_averages_per_trace(self) -> int:
+        """The scenario's ``max_averages``: more in one trace are clamped to it."""
+        return int(self.spec.max_averages)
 
     @property
     def settings(self) -> AcquisitionSettings | None:

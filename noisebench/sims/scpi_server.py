@@ -22,6 +22,7 @@ import ipaddress
 import logging
 import selectors
 import socket
+import struct
 import threading
 from typing import Any
 
@@ -72,6 +73,10 @@ class Faults:
       source never switches (a dead diode: the supply still measures its normal load current,
       only Y = 1 gives it away). Clearing it lets the source follow its drives again.
 
+    - ``offline``: the instruments are unreachable (switched off, rebooting, cable out): open
+      connections are dropped and new ones are reset as soon as they are accepted. Combine
+      with :meth:`reboot` for an instrument that comes back with power-on settings.
+
     Block switches are one-shot: they fire on the next binary block and turn themselves off.
     """
 
@@ -83,6 +88,7 @@ class Faults:
         "truncate_block",
         "corrupt_block",
         "stuck_noise_source",
+        "offline",
     )
 
     def __init__(self) -> None:
@@ -95,6 +101,7 @@ class Faults:
         self.truncate_block = False
         self.corrupt_block = False
         self.stuck_noise_source = False
+        self.offline = False
 
     def __setattr__(self, name: str, value: Any) -> None:
         if name == "reply_delay_s" and (value is None or float(value) < 0):
@@ -125,6 +132,7 @@ class Faults:
         self.truncate_block = False
         self.corrupt_block = False
         self.stuck_noise_source = False
+        self.offline = False
 
     def _take_drop(self) -> tuple[bool, bool]:
         """(close before processing, close after processing) for one received line."""
@@ -367,6 +375,9 @@ class SimServer:
                 instrument.power_on()
 
     def _fault_changed(self, name: str) -> None:
+        if name == "offline" and self.faults.offline:
+            for client in self._take_clients():
+                client.close()
         for instrument in self.instruments.values():
             instrument.fault_changed(name)
 
@@ -390,6 +401,10 @@ class SimServer:
         try:
             sock, address = listener.accept()
         except OSError:
+            return
+        if self.faults.offline:  # unreachable: reset the connection at once
+            sock.setsockopt(socket.SOL_SOCKET, socket.SO_LINGER, struct.pack("ii", 1, 0))
+            sock.close()
             return
         sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
         client = _Client(sock, address, name)

@@ -1,0 +1,111 @@
+"""A point that needs more averages than the analyzer can do in one trace: several traces,
+combined on the averaging scale, reach the target; coverage of the stated uncertainty checked
+over seeds against the simulator's truth; the SCPI path no longer sends a refused count."""
+
+from __future__ import annotations
+
+import math
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import pytest
+from _sequencer_helpers import ideal_sim as make_sim
+from _sequencer_helpers import make_plan
+from scipy.stats import chi2
+
+from noisebench.bench.registry import simulated_session
+from noisebench.drivers.profile import load_profile
+from noisebench.running.sequencer import run_plan
+from noisebench.sims.scpi_server import SimServer
+
+MAX_PER_TRACE = 60
+TARGET_U_NF_DB = 0.03  # needs about 230 averages per reading here: ~4x the maximum
+SEEDS = range(40)
+FREQ_HZ = 2e9
+
+
+def run_seed(seed: int, scale: str = "power"):
+    plan = make_plan(
+        "y_factor",
+        freqs_hz=(FREQ_HZ,),
+        target=TARGET_U_NF_DB,
+        acquisition={"rbw_hz": 1e6, "max_averages": 100_000, "averaging_scale": scale},
+    )
+    sim = make_sim(seed, analyzer__max_averages=MAX_PER_TRACE)
+    with tempfile.TemporaryDirectory() as folder:
+        record, _ = run_plan(
+            plan,
+            folder=Path(folder) / "run",
+            outputs=False,
+            session=simulated_session(sim, plan.bench),
+        )
+    return record.points[0], float(sim.truth([FREQ_HZ])["nf_db"][0])
+
+
+def test_the_simulated_analyzer_declares_its_maximum():
+    sim = make_sim(1, analyzer__max_averages=MAX_PER_TRACE)
+    assert sim.analyzer.max_averages_per_trace == MAX_PER_TRACE
+
+
+@pytest.mark.parametrize("scale", ["power", "log_power"])
+def test_target_reached_and_coverage_over_seeds(scale):
+    """40 seeds: every point reaches the target with several traces per reading, and the
+    normalised errors z = (NF - truth)/u behave like N(0, 1): sum z^2 inside the chi-square
+    99.9 % interval with 40 degrees of freedom, and at least 34 of 40 inside +-2u (binomial
+    with p = 0.954: P(X < 34) = 0.3 %)."""
+    z = []
+    for seed in SEEDS:
+        point, truth = run_seed(seed, scale)
+        per_reading = point.notes["averages_per_reading"]
+        assert min(per_reading.values()) >= 3 * MAX_PER_TRACE, per_reading
+        assert point.u_nf_db <= TARGET_U_NF_DB * 1.001
+        z.append((point.nf_db - truth) / point.u_nf_db)
+    z = np.asarray(z)
+    low, high = chi2.ppf(0.0005, len(z)), chi2.ppf(0.9995, len(z))
+    assert low < float(np.sum(z**2)) < high, (np.sum(z**2), low, high)
+    assert int(np.sum(np.abs(z) <= 2.0)) >= 34
+    assert abs(float(np.mean(z))) < 4 / math.sqrt(len(z))  # no bias from the combination
+
+
+def test_scpi_run_with_a_small_maximum_splits_instead_of_failing(tmp_path):
+    """The profile says 60 averages per trace and the instrument refuses more: before, the
+    run ended with 'outside the range [1, 60]'; now each reading takes several traces."""
+    text = open(load_profile("generic").source, encoding="utf-8").read()
+    text = text.replace(
+        'set = "AVER:COUN {value:d}"\nget = "AVER:COUN?"\nmin = 1\nmax = 100000',
+        'set = "AVER:COUN {value:d}"\nget = "AVER:COUN?"\nmin = 1\nmax = 60',
+    )
+    profile = tmp_path / "small.toml"
+    profile.write_text(text.replace('name = "generic"', 'name = "small"'), encoding="utf-8")
+    sim = make_sim(7, analyzer__max_averages=MAX_PER_TRACE)
+    with SimServer(sim) as server:
+        from _sequencer_helpers import plan_dict
+
+        from noisebench.running.plan import parse_plan
+
+        sim.enr_table.to_csv(tmp_path / "enr.csv")
+        data = plan_dict("y_factor", freqs_hz=(FREQ_HZ,), target=TARGET_U_NF_DB)
+        data["bench"] = {
+            "analyzer": {"resource": server.resource("analyzer"), "profile": str(profile)},
+            "noise_source": {
+                "drive": "supply",
+                "resource": server.resource("supply"),
+                "drive_v": 28.0,
+                "settle_time_s": 0.02,
+            },
+        }
+        data["acquisition"] = {**data["acquisition"], "rbw_hz": 1e6, "max_averages": 100_000}
+        data["enr"] = {"table": str(tmp_path / "enr.csv")}
+        data["corrections"] = {**data["corrections"], "source_temperature_k": 296.0}
+        data["output"] = {"plots": False, "report": False}
+        plan = parse_plan(data)
+        record, _ = run_plan(plan, folder=tmp_path / "run")
+        counts = [
+            int(line.split()[-1])
+            for who, line in server.command_log
+            if who == "analyzer" and line.startswith("AVER:COUN ")
+        ]
+    assert record.info.status == "complete"
+    assert max(counts) <= MAX_PER_TRACE
+    assert min(record.points[0].notes["averages_per_reading"].values()) >= 3 * MAX_PER_TRACE
