@@ -179,14 +179,21 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         with self.lock:
             if request == self._request and self._settings is not None and self._sent:
                 return self._settings  # nothing changed: no I/O at all
-            changed = [(n, c) for n, c in named if self._sent.get(n) != c]
             previous, self._settings = self._settings, None
-            commands = [c for _, c in changed]
-            names = {n for n, _ in changed}
-            try:
-                settings = self._channel.run(
-                    "configure", lambda: self._apply(commands, request, previous, names)
+
+            def attempt() -> AcquisitionSettings:
+                # computed per attempt: a reconnect in between clears the cache (the
+                # instrument may have rebooted), and then everything is sent and read back
+                changed = [(n, c) for n, c in named if self._sent.get(n) != c]
+                return self._apply(
+                    [c for _, c in changed],
+                    request,
+                    previous if self._sent else None,
+                    {n for n, _ in changed},
                 )
+
+            try:
+                settings = self._channel.run("configure", attempt)
             except BaseException:
                 self._sent.clear()  # state unknown: the next configure sends everything
                 raise
