@@ -88,6 +88,13 @@ class Analyzer(Instrument):
         return None
 
     @property
+    def level_uncertainty_db(self) -> float | None:
+        """Standard uncertainty of absolute levels when the instrument knows it (a sampled
+        receiver's scale calibration), dB; None: not known here (the plan's
+        ``uncertainty.absolute_amplitude_db`` applies)."""
+        return None
+
+    @property
     def absolute_level(self) -> bool:
         """True when trace levels are absolute densities at the input (W/Hz). A sampled receiver
         without a scale calibration reads ratios only: enough for the Y-factor method, refused

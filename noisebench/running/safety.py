@@ -42,22 +42,25 @@ DEFAULT_COMPRESSION_DBM = -10.0
 PREAMP_GAIN_DB = 20.0
 
 CAUTIONS: tuple[str, ...] = (
-    "Never exceed the analyzer's rated maximum RF or DC input; it is lowest with 0 dB "
-    "attenuation and the preamplifier on.",
-    "Broadband noise adds up: total noise power, not the power in the RBW, drives the "
-    "analyzer into compression.",
-    "Use a DC block where amplifier ports may carry bias; keep its loss in the calibration "
-    "path or in the corrections.",
-    "Drive the noise source only from its rated switched supply (commonly +28 V), never into "
-    "an RF port; allow warm-up and settling.",
+    "Analyzer input: never exceed the analyzer's rated maximum RF or DC input; the damage "
+    "level is lowest with 0 dB attenuation and the preamplifier on.",
+    "Total broadband noise power, not the power in the RBW, drives the analyzer into "
+    "compression: an amplifier after a hot noise source can deliver surprisingly much.",
+    "DC on RF lines: use a DC block where amplifier ports may carry bias; keep its loss in "
+    "the calibration path or in the corrections.",
+    "Noise-source drive: only from its rated switched supply (commonly +28 V), never into an "
+    "RF port; set the supply's current limit before enabling its output; allow warm-up and "
+    "settling.",
     "ESD: wrist strap and grounded bench; discharge cables before connecting; GaAs, GaN and "
     "SiGe LNAs are sensitive. Sequence FET bias (gate first on, drain first off).",
-    "Power the DUT from a current-limited supply; check it for oscillation with a wide span "
-    "first; shield against interference; torque and clean connectors; terminate the "
-    "analyzer input when idle.",
+    "DUT: power it from a current-limited supply; check it for oscillation with a wide span "
+    "first; keep interference out (in-band spurs read as noise).",
+    "Connectors: torque and clean them; terminate the analyzer input when idle.",
     "These cautions do not replace the instrument manuals, local codes and licensed "
     "practice: where they differ, those win.",
 )
+"""The one list of bench-safety cautions: README, ``--help`` of every command that drives
+hardware, real-hardware runs, the pytest plugin and the report all show exactly these."""
 
 
 def cautions_text(*, prefix: str = "  - ", width: int = 92) -> str:
@@ -65,7 +68,13 @@ def cautions_text(*, prefix: str = "  - ", width: int = 92) -> str:
     import textwrap
 
     return "\n".join(
-        textwrap.fill(line, width, initial_indent=prefix, subsequent_indent=" " * len(prefix))
+        textwrap.fill(
+            line,
+            width,
+            initial_indent=prefix,
+            subsequent_indent=" " * len(prefix),
+            break_on_hyphens=False,  # "current-limited" stays one word
+        )
         for line in CAUTIONS
     )
 

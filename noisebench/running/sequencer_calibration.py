@@ -34,6 +34,13 @@ logger = logging.getLogger(__name__)
 class CalibrationSteps(AveragingRounds):
     """Calibrate every group that has no valid stored calibration."""
 
+    def _switched(self, groups: list[PointGroup]) -> bool:
+        """Whether Y-factor readings run in sweep-level blocks (the switched sweep's rule)."""
+        return False
+
+    def _calibrate_switched(self, groups: list[PointGroup], writer) -> None:
+        raise NotImplementedError  # pragma: no cover - provided by SwitchedSweep
+
     def _calibration_kind(self) -> CalibrationKind:
         return CalibrationKind.FLOOR if self.plan.method is Method.GAIN else CalibrationKind.SYSTEM
 
@@ -51,6 +58,9 @@ class CalibrationSteps(AveragingRounds):
                 needed.append(group)
         if not needed:
             logger.info("stored %s calibration still valid: reused", kind.value)
+            return
+        if kind is CalibrationKind.SYSTEM and self._switched(needed):
+            self._calibrate_switched(needed, writer)
             return
         connection = Connection.TERMINATION if kind is CalibrationKind.FLOOR else Connection.THROUGH
         self.session.connect(connection)

@@ -22,9 +22,9 @@ from .scpi_server import INSTRUMENTS, SimServer, is_loopback
 logger = logging.getLogger(__name__)
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(prog: str = "python -m noisebench.sims") -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
-        prog="python -m noisebench.sims",
+        prog=prog,
         description="Serve a simulated noise-figure bench (analyzer, generator, DC supply) "
         "over SCPI on raw TCP sockets.",
     )
@@ -83,6 +83,12 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _logging_configured() -> bool:
+    """True when a handler already shows noisebench's log lines (each line then once only)."""
+    package = logging.getLogger("noisebench")
+    return bool(package.handlers or logging.getLogger().handlers)
+
+
 def _default_bench_factory(scenario: str, seed: int) -> Any:
     from noisebench.sims.bench import SimulatedBench
 
@@ -95,14 +101,20 @@ def main(
     out: TextIO | None = None,
     stop_event: threading.Event | None = None,
     bench_factory: Callable[[str, int], Any] | None = None,
+    prog: str = "python -m noisebench.sims",
 ) -> int:
-    """Run the simulator; returns the exit code (0 ok, 2 bad input, 1 could not start)."""
+    """Run the simulator; returns the exit code (0 ok, 2 bad input, 1 could not start).
+
+    ``prog`` names the command in usage lines (``noisebench serve`` from the CLI)."""
     out = out or sys.stdout
-    args = build_parser().parse_args(argv)
-    logging.basicConfig(
-        level=logging.DEBUG if args.verbose else logging.INFO,
-        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
-    )
+    args = build_parser(prog).parse_args(argv)
+    if not _logging_configured():  # under `noisebench serve` the CLI's handler shows them
+        logging.basicConfig(
+            level=logging.DEBUG if args.verbose else logging.INFO,
+            format="%(asctime)s %(levelname)s %(name)s: %(message)s",
+        )
+    elif args.verbose:
+        logging.getLogger("noisebench").setLevel(logging.DEBUG)
     if args.time_scale < 0:
         print("error: --time-scale must be >= 0", file=sys.stderr)
         return 2
