@@ -74,7 +74,7 @@ def test_readme_sweep_runs_as_written_and_agrees_with_the_simulated_truth(
     assert len(lines) == len(record.points[::11]) >= 5
     for line in lines:
         assert re.fullmatch(r"\d\.\d\d GHz  NF \d+\.\d\d ± \d+\.\d\d dB  G \d+\.\d", line)
-    assert record.info.status == "complete" and len(record.points) == 56
+    assert record.info.status == "complete" and 50 <= len(record.points) <= 56
     assert (folder / "results.csv").is_file() and (folder / "report.html").is_file()
     # the simulator's true DUT NF: every point within 4 combined standard uncertainties of its
     # budget (4 u: a false alarm about once in 16 000 points, normal law)
