@@ -154,7 +154,7 @@ def test_validate_plan_and_enr_table(tmp_path, capsys):
     assert code == 0 and out.startswith("ok: y-factor plan p.toml, 3 points")
     good = _write(tmp_path / "enr.csv", "freq_hz,enr_db\n1e9,15.1\n2e9,15.0\n")
     code, out, _ = _run(["validate", good], capsys)
-    assert code == 0 and "2 values, 1e+09-2e+09 Hz" in out
+    assert code == 0 and "2 values, 1 GHz to 2 GHz" in out  # engineering units, no 1e+09
     bad = _write(tmp_path / "bad.csv", "freq_hz,enr_db\n2e9,15.1\n1e9,15.0\n")
     code, _, err = _run(["validate", bad], capsys)
     assert code == cli.EXIT_INPUT

@@ -62,7 +62,7 @@ from noisebench.results.store import FLAG_DESCRIPTIONS, RunInfo, RunRecord, RunW
 from noisebench.science.point import Method, PointFlag, PointResult
 
 T0_K = 290.0
-KT0_W_PER_HZ = scipy.constants.k * T0_K  # reference.md §1 (scipy.constants)
+KT0_W_PER_HZ = scipy.constants.k * T0_K  # docs/references.md §1 (scipy.constants)
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 NASTY = '<script>alert("x")</script> & co'
 CONTRIBUTION_NAMES = ("ENR", "jitter <hot>")
@@ -535,7 +535,7 @@ def test_densities_are_plotted_in_dbm_per_hz_and_named_in_words(record):
     series = density_series(record)
     assert list(series) == ["hot", "cold"]
     freq, cold_dbm_per_hz = series["cold"]
-    # reference.md §1: kT0 = -173.9752 dBm/Hz, recomputed from scipy.constants
+    # docs/references.md §1: kT0 = -173.9752 dBm/Hz, recomputed from scipy.constants
     assert np.allclose(cold_dbm_per_hz, 10 * np.log10(KT0_W_PER_HZ / 1e-3), atol=1e-12)
     assert np.isclose(cold_dbm_per_hz[0], -173.9752, atol=5e-5)
     assert np.allclose(series["hot"][1] - cold_dbm_per_hz, 10 * np.log10(3000))
@@ -1095,7 +1095,7 @@ def test_calibration_store_entries_are_summarised(record):
         averages=16,
         points=1001,
     )
-    te2_k = 290 * (10**1.2 - 1)  # analyzer NF 12 dB, reference.md §5
+    te2_k = 290 * (10**1.2 - 1)  # analyzer NF 12 dB, docs/references.md §5
     densities = {
         name: [
             NoiseDensity(

@@ -243,7 +243,7 @@ def test_generator_refused_above_the_dut_input_limit(tmp_path):
 
 
 def test_pre_switch_power_estimate_matches_reference_example():
-    # reference.md §11: ENR 15 dB source, G = 30 dB over 10 GHz -> about -28.76 dBm
+    # docs/references.md §11: ENR 15 dB source, G = 30 dB over 10 GHz -> about -28.76 dBm
     # (a DUT with NF 2 dB, Te = 290 (10^0.2 - 1) K, recomputed here)
     th = hot_source_temperature_k(15.0, 290.0)
     te = 290.0 * (10**0.2 - 1)
@@ -476,7 +476,7 @@ def test_live_progress_only_on_an_interactive_terminal(monkeypatch):
 
 def test_declared_gain_alone_is_no_upper_bound_of_the_hot_power():
     # A DUT adds k*Te*G*B of its own: with NF 10 dB behind an ENR 6 dB source the hot power is
-    # 10*log10(1 + Te/Th) = 4.48 dB above the gain-only figure (reference.md §1-§2 formulas).
+    # 10*log10(1 + Te/Th) = 4.48 dB above the gain-only figure (docs/references.md §1-§2 formulas).
     import math
 
     from noisebench.running.safety import InputLimits, PowerGuard, total_noise_power_dbm

@@ -35,10 +35,10 @@ class Instrument(ABC):
     def close(self) -> None:
         """Put the instrument in its safe state and release the connection. Idempotent."""
 
-    def __enter__(self):  # noqa: D105
+    def __enter__(self):
         return self
 
-    def __exit__(self, *exc) -> None:  # noqa: D105
+    def __exit__(self, *exc) -> None:
         self.close()
 
 
@@ -85,6 +85,13 @@ class Analyzer(Instrument):
         """Highest input power read without clipping (a sampled receiver's converter full
         scale for a tone), dBm; None when the instrument has no such hard limit or it is not
         known."""
+        return None
+
+    @property
+    def level_uncertainty_db(self) -> float | None:
+        """Standard uncertainty of absolute levels when the instrument knows it (a sampled
+        receiver's scale calibration), dB; None: not known here (the plan's
+        ``uncertainty.absolute_amplitude_db`` applies)."""
         return None
 
     @property

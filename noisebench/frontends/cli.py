@@ -40,6 +40,7 @@ from noisebench.errors import (
     SafetyError,
 )
 from noisebench.running.safety import cautions_text
+from noisebench.units import format_frequency
 
 logger = logging.getLogger("noisebench.frontends.cli")
 
@@ -109,7 +110,8 @@ def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
         first = skipped[0]
         print(
             f"noisebench: error: {len(skipped)} point(s) not measured, first at "
-            f"{first['freq_hz']:.6g} Hz ({first['stage']}): {_one_line(first['reason'])} "
+            f"{format_frequency(first['freq_hz'])} ({first['stage']}): "
+            f"{_one_line(first['reason'])} "
             f"(once fixed, `noisebench run {args.plan} --resume {folder}` measures them)",
             file=sys.stderr,
         )
@@ -235,29 +237,17 @@ def cmd_render(args: argparse.Namespace, out: TextIO) -> int:
 
 
 def cmd_validate(args: argparse.Namespace, out: TextIO) -> int:
+    from noisebench.frontends.validate import validate_file
+
     path = Path(args.path)
-    if path.suffix.lower() == ".csv":
-        from noisebench.science.enr import EnrTable, validate_enr_file
-
-        problems = validate_enr_file(path)
-        if not problems:
-            table = EnrTable.from_csv(path)
-            span = table.range_hz
-            where = f"{span[0]:.6g}-{span[1]:.6g} Hz" if span else "all frequencies (flat)"
-            print(f"ok: ENR table {path.name}, {len(table.enr_db)} values, {where}", file=out)
-    else:
-        from noisebench.running.plan import load_plan, validate_plan_file
-
-        problems = validate_plan_file(path)
-        if not problems:
-            plan = load_plan(path)
-            _print_profile_warnings(plan)
-            print(
-                f"ok: {plan.method.value.replace('_', '-')} plan {path.name}, "
-                f"{len(plan.points())} points, analyzer {plan.bench.analyzer.resource}",
-                file=out,
-            )
+    kind, summary, problems = validate_file(path)
     name = path.name or str(path)  # "." has no name
+    if not problems:
+        if kind == "plan":
+            from noisebench.running.plan import load_plan
+
+            _print_profile_warnings(load_plan(path))
+        print(f"ok: {summary}", file=out)
     for line in problems:
         print(f"{name}: {line}", file=sys.stderr)
     return EXIT_INPUT if problems else EXIT_OK
@@ -395,8 +385,13 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.set_defaults(func=cmd_render)
 
-    p = sub.add_parser("validate", help="check a plan (.toml) or an ENR table (.csv)")
-    p.add_argument("path", help="plan .toml or ENR .csv")
+    p = sub.add_parser(
+        "validate",
+        help="check a plan, ENR/gain/loss table, instrument profile or scenario",
+        description="Recognise the file by its content (plan, ENR table, gain or loss table, "
+        "instrument profile, simulator scenario) and check it as that.",
+    )
+    p.add_argument("path", help="the file to check (.toml, .csv, .s2p)")
     p.set_defaults(func=cmd_validate)
 
     p = sub.add_parser(

@@ -55,6 +55,7 @@ from noisebench.results.store import (
 )
 from noisebench.running.safety import CAUTIONS as SAFETY_NOTE
 from noisebench.science.point import PointFlag, PointResult
+from noisebench.units import format_frequency
 
 logger = logging.getLogger(__name__)
 
@@ -260,10 +261,7 @@ def _sig(value: Any) -> str:
 
 def _freq(freq_hz: float) -> str:
     """A frequency with its own unit, kept on one line, e.g. ``1.5 GHz`` (no-break space)."""
-    for scale, unit in ((1e9, "GHz"), (1e6, "MHz"), (1e3, "kHz")):
-        if abs(freq_hz) >= scale:
-            return f"{freq_hz / scale:.6g}\u00a0{unit}"
-    return f"{freq_hz:.6g}\u00a0Hz"
+    return format_frequency(freq_hz, space="\u00a0")
 
 
 def _range(values: Sequence[float], digits: int = 3, unit: str = "") -> str:

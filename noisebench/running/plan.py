@@ -664,6 +664,26 @@ class FrequencyPoint:
         return self.rf_hz if self.rf_hz is not None else self.freq_hz
 
 
+class SwitchingSection(BaseModel):
+    """How the noise source's hot and cold readings are ordered (Y-factor).
+
+    ``per_sweep``: the whole sweep (or a block of groups) is read in four passes, hot forward,
+    cold backward, cold forward, hot backward: every point's hot and cold readings are
+    symmetric in time, so a linear drift cancels, with three switches per block instead of
+    three or four per point. ``per_group``: hot-cold-cold-hot at each group. ``auto`` takes
+    ``per_sweep`` when there are several groups and the source needs settling time. A block
+    lasts at most ``max_block_s`` of instrument time: common practice takes a warmed-up
+    receiver's gain drift as close to linear over a minute; with a drift model
+    (``drift_curvature_db_per_s2``, the t^2 coefficient of the gain in dB) the block is kept
+    short enough that the curvature's residual stays below a tenth of the target.
+    """
+
+    model_config = _STRICT
+    mode: Literal["auto", "per_sweep", "per_group"] = "auto"
+    max_block_s: float = Field(default=60.0, gt=0)
+    drift_curvature_db_per_s2: float | None = Field(default=None, gt=0)
+
+
 class Plan(BaseModel):
     """A complete, validated measurement plan."""
 
@@ -680,6 +700,7 @@ class Plan(BaseModel):
     corrections: CorrectionsSection = Field(default_factory=CorrectionsSection)
     gain: GainSection | None = None
     calibration: CalibrationSection = Field(default_factory=CalibrationSection)
+    switching: SwitchingSection = Field(default_factory=SwitchingSection)
     safety: SafetySection = Field(default_factory=SafetySection)
     expect: ExpectSection = Field(default_factory=ExpectSection)
     output: OutputSection = Field(default_factory=OutputSection)

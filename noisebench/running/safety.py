@@ -1,6 +1,6 @@
 """Bench safety: the operator cautions and the power checks made before anything is switched on.
 
-Two checks guard the analyzer input (reference.md §11):
+Two checks guard the analyzer input (docs/references.md §11):
 
 * before the noise source goes hot, the expected **total** noise power into the analyzer
   (broadband noise of the source, amplified by the DUT over its whole bandwidth) must stay
@@ -86,7 +86,7 @@ def hot_source_temperature_k(enr_db: float, cold_temperature_k: float, t0_k: flo
     """Hot noise temperature of a source with ``enr_db`` at ``cold_temperature_k``, K.
 
     Common assumption: the ENR is referred to T0 and the excess noise does not depend on the
-    source's physical temperature, so ``Th = T0 * ENR + Tc`` (reference.md §5; the Y-factor
+    source's physical temperature, so ``Th = T0 * ENR + Tc`` (docs/references.md §5; the Y-factor
     method's own :func:`~noisebench.science.methods.yfactor.hot_temperature_k`).
     """
     from noisebench.science.methods.yfactor import hot_temperature_k

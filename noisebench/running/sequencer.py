@@ -68,7 +68,7 @@ from noisebench.running.safety import (
 )
 from noisebench.running.sequencer_core import PointHook
 from noisebench.running.sequencer_gain import GainStep
-from noisebench.running.sequencer_measurement import MeasurementSteps
+from noisebench.running.sequencer_switched import SwitchedSweep
 from noisebench.running.sequencer_verdict import VerdictStep
 from noisebench.science.point import Method
 
@@ -115,7 +115,7 @@ def _lo_lines_dbm(plan: Plan) -> float | None:
 # --------------------------------------------------------------------------- the sequencer
 
 
-class Sequencer(MeasurementSteps, GainStep, VerdictStep):
+class Sequencer(SwitchedSweep, GainStep, VerdictStep):
     """Runs a plan on an opened bench; see the module docstring for the order of work.
 
     ``calibrations`` is shared between runs on the same bench (pass the same store to reuse
@@ -307,6 +307,9 @@ class Sequencer(MeasurementSteps, GainStep, VerdictStep):
         if self.plan.method is Method.GAIN and self.corrections.gain is None:  # type: ignore
             self._measure_gain(groups, writer)
         self.session.connect(Connection.DUT)
+        if self._switched(groups):
+            self._measure_switched(groups, writer)
+            return
         for group in groups:
             if group.index in self._unmeasurable:
                 continue
@@ -315,12 +318,7 @@ class Sequencer(MeasurementSteps, GainStep, VerdictStep):
             except MeasurementError as exc:
                 self._skip(group, exc, "measurement", writer)
                 continue
-            self._record_settings(outcome.settings, group, writer)
-            for point in outcome.points:
-                writer.add_point(point, self._budget(point))
-                self.progress.point_done(point)
-                if self.on_point is not None:
-                    self.on_point(point)
+            self._store_outcome(group, outcome, writer)
 
     def _record_settings(
         self, settings: AcquisitionSettings | None, group: PointGroup, writer

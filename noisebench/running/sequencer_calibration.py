@@ -34,6 +34,13 @@ logger = logging.getLogger(__name__)
 class CalibrationSteps(AveragingRounds):
     """Calibrate every group that has no valid stored calibration."""
 
+    def _switched(self, groups: list[PointGroup]) -> bool:
+        """Whether Y-factor readings run in sweep-level blocks (the switched sweep's rule)."""
+        return False
+
+    def _calibrate_switched(self, groups: list[PointGroup], writer) -> None:
+        raise NotImplementedError  # pragma: no cover - provided by SwitchedSweep
+
     def _calibration_kind(self) -> CalibrationKind:
         return CalibrationKind.FLOOR if self.plan.method is Method.GAIN else CalibrationKind.SYSTEM
 
@@ -51,6 +58,9 @@ class CalibrationSteps(AveragingRounds):
                 needed.append(group)
         if not needed:
             logger.info("stored %s calibration still valid: reused", kind.value)
+            return
+        if kind is CalibrationKind.SYSTEM and self._switched(needed):
+            self._calibrate_switched(needed, writer)
             return
         connection = Connection.TERMINATION if kind is CalibrationKind.FLOOR else Connection.THROUGH
         self.session.connect(connection)
@@ -121,7 +131,7 @@ class CalibrationSteps(AveragingRounds):
             densities={
                 n: [readings.get(f, n).combined().density for f in group.freqs_hz] for n in names
             },
-            cold_temperature_k=self.corrections.source_temperature_k,  # type: ignore[union-attr]
+            cold_temperature_k=self._corr().source_temperature_k,
             instrument_time_s=budget.used_s,
             stopped_by=stopped_by,
             summary=self._calibration_summary(group, kind, readings),
@@ -164,7 +174,7 @@ class CalibrationSteps(AveragingRounds):
         return corr.input_loss(freq_hz)
 
     def _floor_design_u(self, freq_hz: float, floor: NoiseDensity) -> float:
-        corr = self.corrections
+        corr = self._corr()
         path_gain_db = (
             self._design_gain_db(freq_hz)
             - self._design_input_loss_db(freq_hz)
@@ -175,7 +185,7 @@ class CalibrationSteps(AveragingRounds):
         )
 
     def _system_design_u(self, freq_hz: float, hot: NoiseDensity, cold: NoiseDensity) -> float:
-        corr = self.corrections
+        corr = self._corr()
         return system_design_u_db(
             hot,
             cold,
@@ -233,7 +243,7 @@ class CalibrationSteps(AveragingRounds):
     ):
         from noisebench.science.methods.yfactor import calibrate_point
 
-        corr = self.corrections
+        corr = self._corr()
         enr_db, u_enr_db, extrapolated = corr.enr_at(freq_hz)
         return calibrate_point(
             hot,

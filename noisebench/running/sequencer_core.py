@@ -110,6 +110,12 @@ class SequencerCore:
         logger.warning("%s not measured (%s): %s", group.describe(), stage, exc.message)
         writer.update_info(notes={**writer.info.notes, "skipped_points": self.skipped})
 
+    def _corr(self) -> Corrections:
+        """The run's corrections (resolved when the run starts)."""
+        if self.corrections is None:  # pragma: no cover - _prepare runs first
+            raise MeasurementError("the corrections are not resolved")
+        return self.corrections
+
     def _guard(self) -> PowerGuard:
         if self.guard is None:  # pragma: no cover - _prepare runs first
             raise MeasurementError("the power checks are not set up")

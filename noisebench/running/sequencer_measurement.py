@@ -76,8 +76,7 @@ class MeasurementSteps(CalibrationSteps):
         calibration: CalibrationEntry,
         group: PointGroup | None = None,
     ) -> PointResult:
-        corr = self.corrections
-        assert corr is not None
+        corr = self._corr()
         if group is not None and group.lo_hz is not None:
             return self._converter_point(freq_hz, readings, calibration, group)
         if self.plan.method is Method.Y_FACTOR:
@@ -199,8 +198,7 @@ class MeasurementSteps(CalibrationSteps):
         THROUGH planes (input loss and DUT, not the output loss). The gain method turns it into
         the path gain (source termination to analyzer) and records which losses it held, so
         that budgets move the path gain with a loss's error where the loss was subtracted."""
-        corr = self.corrections
-        assert corr is not None
+        corr = self._corr()
         if corr.gain is not None:
             gain_db, u = corr.gain(freq_hz)
             return gain_db, u, False

@@ -386,6 +386,9 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
             spectrum = self.source.spectrum(freq)
             hot = self._hot_fraction(s, t0, period, t_end)
             noise_w, gain = self._displayed_noise_w(s, freq, spectrum, hot)
+            drift = self.gain_drift_factor(0.5 * (t0 + t_end))
+            if drift != 1.0:
+                noise_w, gain = noise_w * drift, gain * drift
             tone_w = self._tone_power_w(s, freq, spectrum.tones)
             tone_scale = None
             if tone_w is not None:
@@ -410,6 +413,12 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
             )
             self.last_trace = trace
             return trace
+
+    def gain_drift_factor(self, t_s: float) -> float:
+        """Receiver gain drift (linear factor) at simulated time ``t_s``; for the slow drifts
+        modelled, the mean over one acquisition is its value at the middle."""
+        db = self.spec.gain_drift_db_per_s * t_s + self.spec.gain_drift_db_per_s2 * t_s**2
+        return float(10.0 ** (db / 10.0))
 
     def _recipe(self, s: AcquisitionSettings) -> TraceRecipe:
         kernel = None

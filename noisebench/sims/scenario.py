@@ -232,6 +232,11 @@ class NoiseSourceSpec(_Model):
     )
     drive_load_ohm: float = Field(default=2800.0, gt=0)
     enr_drive_coefficient_db_per_v: float = 0.01
+    output_drift_db_per_s: float = Field(
+        default=0.0,
+        description="the excess noise output drifts linearly in dB with simulated time "
+        "(0: stable); a symmetric hot/cold schedule cancels it to first order",
+    )
 
     @model_validator(mode="after")
     def _check(self) -> NoiseSourceSpec:
@@ -262,6 +267,16 @@ class AnalyzerSpec(_Model):
     preamp_nf_db: float = 9.0
     preamp_gain_db: float = 20.0
     amplitude_error_db: float = Field(default=0.0, description="displayed minus true level")
+    gain_drift_db_per_s: float = Field(
+        default=0.0,
+        description="receiver gain drift, dB per second of simulated time (linear: a "
+        "schedule symmetric in time cancels it)",
+    )
+    gain_drift_db_per_s2: float = Field(
+        default=0.0,
+        description="curvature of the receiver gain drift, dB/s^2 (t^2 term: no hot/cold "
+        "schedule of two readings each cancels it; the sequencer detects and flags it)",
+    )
     internal_temperature_k: float | None = Field(default=None, gt=0, description="None: ambient")
     min_freq_hz: float = Field(default=9e3, gt=0)
     max_freq_hz: float = Field(default=7.5e9, gt=0)
