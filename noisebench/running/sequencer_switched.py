@@ -81,6 +81,8 @@ class SwitchedSweep(MeasurementSteps):
         """Whether the Y-factor readings run in sweep-level blocks (see the module doc)."""
         if self.plan.method is not Method.Y_FACTOR:
             return False
+        if self.plan.conversion is not None:
+            return False  # a converter's groups each need their own LO setting
         mode = self.plan.switching.mode
         if mode != "auto":
             return mode == "per_sweep"
