@@ -500,3 +500,21 @@ def _close_quietly(inst: Any) -> None:
         inst.close()
     except (NoisebenchError, OSError):
         logger.warning("closing %r failed", inst, exc_info=True)
+
+
+def simulated_ranges(resource: str) -> dict[str, tuple[float, float]] | None:
+    """Frequency ranges (Hz) of a ``sim://`` bench for plan checks: the analyzer's input, the LO
+    generator's and the noise source's ENR table; None when the scenario cannot be loaded."""
+    try:
+        from noisebench.sims.address import parse_sim_address
+        from noisebench.sims.scenario import load_scenario
+
+        scenario = load_scenario(parse_sim_address(resource).scenario)
+    except (ImportError, NoisebenchError):
+        return None
+    ns = scenario.noise_source
+    return {
+        "analyzer": (scenario.analyzer.min_freq_hz, scenario.analyzer.max_freq_hz),
+        "lo": (scenario.lo_generator.min_freq_hz, scenario.lo_generator.max_freq_hz),
+        "enr": (float(ns.freq_hz[0]), float(ns.freq_hz[-1])),
+    }

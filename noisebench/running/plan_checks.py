@@ -98,17 +98,13 @@ def _check_conversion(plan: Plan, *, check_files: bool) -> list[str]:
             problems.append(str(exc))
     analyzer_range = enr_range = lo_range = None
     if plan.is_simulated:
-        try:
-            from noisebench.sims.address import parse_sim_address
-            from noisebench.sims.scenario import load_scenario
+        from noisebench.bench.registry import simulated_ranges
 
-            scenario = load_scenario(parse_sim_address(plan.bench.analyzer.resource).scenario)
-            analyzer_range = (scenario.analyzer.min_freq_hz, scenario.analyzer.max_freq_hz)
-            lo_range = (scenario.lo_generator.min_freq_hz, scenario.lo_generator.max_freq_hz)
+        ranges = simulated_ranges(plan.bench.analyzer.resource)
+        if ranges is not None:
+            analyzer_range, lo_range = ranges["analyzer"], ranges["lo"]
             if plan.enr.table is None:
-                enr_range = (scenario.noise_source.freq_hz[0], scenario.noise_source.freq_hz[-1])
-        except (ImportError, InputError):
-            pass
+                enr_range = ranges["enr"]
     if plan.enr.table is not None and check_files and plan.enr.extrapolate != "clamp":
         try:
             from noisebench.science.enr import EnrTable
