@@ -248,10 +248,7 @@ class Sequencer(SwitchedSweep, GainStep, VerdictStep):
 
         conv = self.plan.conversion
         assert conv is not None
-        sim = self.session.sim
-        wait = sim.clock.advance if sim is not None else None
-        kwargs = {"wait": wait} if wait is not None else {}
-        self.lo = LoControl(conv.lo, self.session.bench.lo_generator, **kwargs)
+        self.lo = LoControl(conv.lo, self.session.bench.lo_generator)
         self.image_rejection = ImageRejection(conv, self.plan.resolve_path)
         fp = self.plan.frequency_plan()
         writer.update_info(
