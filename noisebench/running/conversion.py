@@ -237,7 +237,8 @@ def _read_rejection_csv(path: Path, label: str) -> tuple[np.ndarray, np.ndarray]
             f"{name}: the header must be freq_hz,image_rejection_db",
             fix="one RF frequency (Hz) and the image rejection (dB) per row",
         )
-    freq, rej = [], []
+    freq: list[float] = []
+    rej: list[float] = []
     for i, row in enumerate(rows[1:], start=2):
         try:
             f, r = (float(c) for c in row)
@@ -344,7 +345,7 @@ def conversion_problems(
     if_hit = np.abs(fp.if_hz[:, None] - lines) <= reach
     first(
         "conversion",
-        if_hit.any(axis=1),
+        np.asarray(if_hit.any(axis=1)),
         lambda i: (
             f"the IF band {fp.if_hz[i]:.6g} Hz +/- {bands[i] / 2:.3g} Hz (RF "
             f"{fp.rf_hz[i]:.6g} Hz) overlaps LO leakage at "
@@ -355,7 +356,7 @@ def conversion_problems(
     image_hit = np.abs(fp.image_hz[:, None] - lines) <= reach
     first(
         "conversion",
-        image_hit.any(axis=1),
+        np.asarray(image_hit.any(axis=1)),
         lambda i: (
             f"the image {fp.image_hz[i]:.6g} Hz (RF {fp.rf_hz[i]:.6g} Hz) overlaps LO "
             f"leakage at {lines[i][image_hit[i]][0]:.6g} Hz (move the LO or the IF)"
