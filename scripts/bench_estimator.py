@@ -6,7 +6,7 @@ Prints ratios measured in this run (no thresholds):
   2. host time per trace for 1 001 / 10 001 / 100 001 points (spur search included);
   3. variance of the density from log-averaged vs power-averaged traces with the same number of
      averages (sample detector), measured over seeds, against the model's prediction
-     (pi^2/6 = 1.645 asymptotically, reference.md §6c).
+     (pi^2/6 = 1.645 asymptotically, docs/references.md §6c).
 
 Run:  python scripts/bench_estimator.py
 """

@@ -150,7 +150,7 @@ def naive_comparison(repeat: int) -> None:
         t_naive = timed(
             lambda lg=log: naive_average(rng, 100, 10_001, spacing, lg), max(1, repeat // 2)
         )
-        how = "every sample drawn" if log else "mean of 100 looks drawn in one step"
+        how = "exact distribution of the average" if log else "mean of 100 looks in one step"
         print(
             f"  {scale.value:<9s} ({how:<35s}) vectorised {t_vec * 1e3:7.1f} ms   "
             f"naive {t_naive * 1e3:7.1f} ms   ratio {t_naive / t_vec:6.1f}x"

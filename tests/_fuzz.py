@@ -247,7 +247,7 @@ class Tally:
 
 @contextlib.contextmanager
 def _time_bound(seconds: float):
-    def on_alarm(signum, frame):  # noqa: ARG001
+    def on_alarm(signum, frame):
         raise CaseTimeout
 
     previous = signal.signal(signal.SIGALRM, on_alarm)

@@ -80,7 +80,7 @@ def expected_nf_db(sim: Any, freq_hz: Any) -> np.ndarray:
 
     The input cable is not de-embedded by the plan, so it is part of what is measured:
     F = F_cable + L (F_dut - 1) with F_cable = 1 + (L - 1) T_cable / T0
-    (reference: Friis 1944 and the passive-loss noise factor, reference.md §3).
+    (reference: Friis 1944 and the passive-loss noise factor, docs/references.md §3).
     """
     truth = sim.truth(np.atleast_1d(freq_hz))
     loss = 10 ** (truth["input_loss_db"] / 10)

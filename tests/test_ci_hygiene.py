@@ -52,3 +52,39 @@ def test_no_test_uses_a_sub_second_timeout_outside_a_deliberate_fault():
             if "# short timeout:" not in lines[number - 2] + line:
                 offenders.append(f"{path.name}:{number}: {line.strip()}")
     assert offenders == []
+
+
+def test_example_identities_use_an_obviously_invented_maker():
+    """Examples and docstrings never borrow a maker's name, real or cartoon."""
+    root = TESTS.parent
+    files = [*root.glob("noisebench/**/*.py"), *root.glob("examples/**/*"), root / "README.md"]
+    hits = [
+        f"{path.relative_to(root)}"
+        for path in files
+        if path.is_file()
+        # errors="ignore": generated example data (SigMF .sigmf-data recordings) is binary
+        and re.search(r"\bACME\b", path.read_text(encoding="utf-8", errors="ignore"), re.I)
+    ]
+    assert hits == []
+
+
+def test_readme_lists_exactly_the_cautions_the_tool_prints():
+    """One list of bench-safety cautions (noisebench.running.safety.CAUTIONS) everywhere."""
+    from noisebench.running.safety import CAUTIONS
+
+    readme = (TESTS.parent / "README.md").read_text(encoding="utf-8")
+    section = readme.split("## Safety first", 1)[1].split("\n## ", 1)[0]
+    bullets: list[str] = []
+    for line in section.splitlines():
+        if line.startswith("- "):
+            bullets.append(line[2:])
+        elif line.startswith("  ") and bullets:
+            bullets[-1] += " " + line.strip()
+    assert [" ".join(b.split()) for b in bullets] == [" ".join(c.split()) for c in CAUTIONS]
+
+
+def test_examples_that_can_drive_hardware_point_to_the_cautions():
+    root = TESTS.parent
+    for name in ("examples/gain_real_bench.toml", "examples/user_tests/conftest.py"):
+        text = (root / name).read_text(encoding="utf-8")
+        assert "SAFETY" in text and "Safety first" in text and "manuals" in text, name

@@ -7,6 +7,7 @@ import json
 import subprocess
 import sys
 import textwrap
+import threading
 from pathlib import Path
 
 import pytest
@@ -153,7 +154,7 @@ def test_validate_plan_and_enr_table(tmp_path, capsys):
     assert code == 0 and out.startswith("ok: y-factor plan p.toml, 3 points")
     good = _write(tmp_path / "enr.csv", "freq_hz,enr_db\n1e9,15.1\n2e9,15.0\n")
     code, out, _ = _run(["validate", good], capsys)
-    assert code == 0 and "2 values, 1e+09-2e+09 Hz" in out
+    assert code == 0 and "2 values, 1 GHz to 2 GHz" in out  # engineering units, no 1e+09
     bad = _write(tmp_path / "bad.csv", "freq_hz,enr_db\n2e9,15.1\n1e9,15.0\n")
     code, _, err = _run(["validate", bad], capsys)
     assert code == cli.EXIT_INPUT
@@ -236,9 +237,21 @@ def test_render_rewrites_report(tmp_path, capsys):
     folder = tmp_path / "run"
     assert _run(["-q", "run", plan, "--out", folder], capsys)[0] == 0
     (folder / "report.html").unlink()
+    pngs = sorted((folder / "plots").glob("*.png"))
+    assert pngs
     code, out, _ = _run(["render", folder, "--no-plots"], capsys)
     assert code == 0 and (folder / "report.html").is_file()
-    assert "wrote" in out
+    assert "wrote" in out and f"embedded {len(pngs)} existing figures" in out
+    text = (folder / "report.html").read_text(encoding="utf-8")
+    assert text.count("data:image/png;base64,") == len(pngs)  # what exists is embedded
+    # a figure older than the run's data is stale: left out rather than shown
+    import os
+
+    stale = folder / "plots" / "gain.png"
+    os.utime(stale, (1.0, 1.0))
+    code, out, _ = _run(["render", folder, "--no-plots"], capsys)
+    text = (folder / "report.html").read_text(encoding="utf-8")
+    assert code == 0 and text.count("data:image/png;base64,") == len(pngs) - 1
     code, _, err = _run(["render", tmp_path / "empty"], capsys)
     assert code == cli.EXIT_INPUT and "is not a folder" in err
 
@@ -256,6 +269,17 @@ def test_demo_end_to_end(tmp_path, capsys):
         assert (out_dir / f"demo_{method}.toml").is_file()
     assert out.count("vs truth") == 2
     assert (out_dir / "enr.csv").is_file() and (out_dir / "input_cable.csv").is_file()
+    first = {m: (out_dir / m / "results.json").read_bytes() for m in ("y_factor", "gain")}
+    # again in the same folder: new run folders beside the first ones, which stay untouched
+    code, out, _ = _run(["-q", "demo", "--out", out_dir, "--points", "4"], capsys)
+    assert code == 0
+    for method in ("y_factor", "gain"):
+        assert load_run(out_dir / f"{method}-2").info.status == "complete"
+        assert (out_dir / method / "results.json").read_bytes() == first[method]
+        assert f"{out_dir / f'{method}-2'}" in out
+    (out_dir / "file").write_text("x")
+    code, _, err = _run(["-q", "demo", "--out", out_dir / "file"], capsys)
+    assert code == cli.EXIT_INPUT and "is a file" in err
 
 
 def test_demo_default_is_at_least_51_points():
@@ -269,10 +293,46 @@ def test_info_never_fails(capsys):
     assert "pyvisa" in out and "VISA back ends" in out and "demo-lna" in out
 
 
+def test_info_scans_the_network_only_when_asked(capsys, monkeypatch):
+    from noisebench.frontends import info
+
+    scans = []
+    monkeypatch.setattr(info, "visa_resources", lambda *a, **k: scans.append(1) or ["X::1"])
+    code, out, _ = _run(["info"], capsys)
+    assert code == 0 and scans == [] and "not scanned" in out and "--scan" in out
+    code, out, _ = _run(["info", "--scan"], capsys)
+    assert code == 0 and scans == [1] and "X::1" in out
+
+
 def test_serve_passes_its_options_to_the_simulator(capsys):
     code, out, _ = _run(["serve", "--help"], capsys)
     assert code == 0
     assert "--scenario" in out
+    assert out.startswith("usage: noisebench serve")  # the command the user typed
+
+
+def test_serve_logs_each_line_once_under_the_cli(capsys):
+    import logging
+
+    from noisebench.frontends.cli import _configure_logging
+    from noisebench.sims import serve
+
+    _configure_logging(cli.build_parser().parse_args(["info"]))
+    assert serve._logging_configured()  # so serve adds no second handler
+    before = len(logging.getLogger().handlers)
+    stop = threading.Event()
+    stop.set()
+    assert serve.main(["--port", "0", "--duration", "0"], stop_event=stop) == 0
+    assert len(logging.getLogger().handlers) == before
+
+
+@pytest.mark.parametrize("command", ["run", "station", "probe"])
+def test_commands_that_drive_hardware_show_the_safety_cautions(capsys, command):
+    from noisebench.running.safety import CAUTIONS
+
+    code, out, _ = _run([command, "--help"], capsys)
+    flat = " ".join(out.split())
+    assert code == 0 and all(" ".join(line.split()) in flat for line in CAUTIONS)
 
 
 # --------------------------------------------------------------------------- SCPI simulator

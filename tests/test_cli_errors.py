@@ -232,8 +232,9 @@ def test_a_units_file_with_a_byte_order_mark_is_read(tmp_path):
 
 
 def _run_with_a_stuck_source(folder: Path):
-    """A run whose noise source sticks after the first point: the rest is skipped."""
-    plan = make_plan("y_factor", freqs_hz=[1e9, 2e9, 3e9])
+    """A run whose noise source sticks after the first point: the rest is skipped (per-group
+    order, so that the points after the first are still to be read when it sticks)."""
+    plan = make_plan("y_factor", freqs_hz=[1e9, 2e9, 3e9], switching={"mode": "per_group"})
     sim = ideal_sim()
     session = simulated_session(sim, plan.bench)
     stick = lambda _point: setattr(sim.noise_source, "stuck", True)  # noqa: E731

@@ -105,7 +105,7 @@ def test_markers_of_both_kinds(backend):
     assert density.kind is MarkerKind.NOISE_DENSITY
     # noise: the power in the band is the density times the band, both integrated over exactly
     # that band; allowed: 5 sigma of two independent readings, each of averages x band / B_stat
-    # independent samples (reference: radiometer equation, reference.md section 7)
+    # independent samples (reference: radiometer equation, docs/references.md section 7)
     n_independent = settings.averages * band / settings.rbw_filter.stat_bw_hz(settings.rbw_hz)
     sigma_db = 10 / math.log(10) * math.sqrt(2.0 / n_independent)
     assert abs(power.value_db - density.value_db - 10 * math.log10(band)) < 5 * sigma_db

@@ -69,7 +69,7 @@ def _batch_se(values: np.ndarray, stat, batches: int = 50) -> float:
 
 
 def test_log_average_bias_closed_form():
-    # reference: reference.md §6b, 10 log10(e) * Euler gamma = 2.506816 dB
+    # reference: docs/references.md §6b, 10 log10(e) * Euler gamma = 2.506816 dB
     assert log_average_bias_db() == pytest.approx(
         -10 * math.log10(math.e) * np.euler_gamma, rel=1e-13
     )
@@ -79,7 +79,8 @@ def test_log_average_bias_closed_form():
 
 
 def test_log_average_bias_monte_carlo():
-    # exponential power samples; one dB reading has std c_dB pi/sqrt(6) (Gumbel, reference §6c)
+    # exponential power samples; one dB reading has std c_dB pi/sqrt(6) (Gumbel, docs/references.md
+    # §6c)
     rng = np.random.default_rng(20240601)
     m = 2_000_000
     x = rng.exponential(1.0, m)
@@ -90,7 +91,7 @@ def test_log_average_bias_monte_carlo():
 
 @pytest.mark.parametrize("k, table_db", [(2, -1.1742), (10, -0.2208), (100, -0.0218)])
 def test_log_bias_of_k_sample_means(k, table_db):
-    # reference: reference.md §6b, c_dB (psi(k) - ln k) via scipy.special.digamma
+    # reference: docs/references.md §6b, c_dB (psi(k) - ln k) via scipy.special.digamma
     expected = C_DB * (special.digamma(k) - math.log(k))
     assert log_average_bias_db(k) == pytest.approx(expected, rel=1e-13)
     assert log_average_bias_db(k) == pytest.approx(table_db, abs=5e-5)
@@ -120,7 +121,8 @@ def test_geometric_mean_of_n_exponentials_exact(n):
 
 
 def test_log_averaging_converges_to_the_asymptotic_bias_and_efficiency():
-    # N -> inf: E[G] -> exp(-gamma), i.e. -2.5068 dB; variance -> (pi^2/6)/N (reference §6c)
+    # N -> inf: E[G] -> exp(-gamma), i.e. -2.5068 dB; variance -> (pi^2/6)/N (docs/references.md
+    # §6c)
     model = trace_average_model(AveragingScale.LOG_POWER, 1e6)
     assert model.bias_db == pytest.approx(log_average_bias_db(), abs=1e-5)
     assert model.correction_db == pytest.approx(-model.bias_db)
@@ -151,7 +153,7 @@ def test_geometric_mean_of_gamma_powers(k, n):
 
 
 def test_envelope_bias_closed_form_and_rayleigh_monte_carlo():
-    # reference: reference.md §6b, 10 log10(pi/4) = -1.049101 dB for a Rayleigh envelope
+    # reference: docs/references.md §6b, 10 log10(pi/4) = -1.049101 dB for a Rayleigh envelope
     assert envelope_average_bias_db() == pytest.approx(10 * math.log10(math.pi / 4), rel=1e-13)
     rng = np.random.default_rng(11)
     m = 2_000_000
@@ -209,7 +211,7 @@ def test_squared_voltage_mean_of_gamma_powers(k, n):
 
 
 def test_power_averaging_unbiased_with_1_over_n_variance():
-    # reference: reference.md §6c, linear power averaging: relative std 1/sqrt(N k)
+    # reference: docs/references.md §6c, linear power averaging: relative std 1/sqrt(N k)
     assert trace_average_mean_ratio(AveragingScale.POWER, 37, 3) == 1.0
     assert trace_average_relative_variance(AveragingScale.POWER, 37, 3) == pytest.approx(1 / 111)
     rng = np.random.default_rng(17)

@@ -14,6 +14,7 @@ from noisebench.bench.acquisition import (
     SweepMode,
     Trace,
 )
+from noisebench.bench.capabilities import NoiseDriveOutput
 from noisebench.drivers import (
     AnalyzerDriveNoiseSource,
     CallableNoiseSource,
@@ -630,7 +631,7 @@ def test_supply_reporting_a_higher_voltage_than_programmed_keeps_the_output_off(
 # ----------------------------------------------------------------------------- other sources
 
 
-class _DriveRecorder:
+class _DriveRecorder(NoiseDriveOutput):
     identity = "recording analyzer"
 
     def __init__(self):
@@ -649,9 +650,21 @@ def test_analyzer_drive_source_settles_after_every_switch_and_is_off_after_close
     assert sa.calls == [True, True, False] and slept == [0.5, 0.5]
     assert not source.is_hot and "recording analyzer" in source.identity
     with pytest.raises(InputError):
-        AnalyzerDriveNoiseSource(object(), settle_time_s=0.1)
+        AnalyzerDriveNoiseSource(object(), settle_time_s=0.1)  # declares no drive output
     with pytest.raises(InputError, match="closed"):
         source.set_hot(True)
+
+
+def test_analyzer_drive_source_refuses_a_declared_but_missing_drive_output():
+    # e.g. an SCPI analyzer whose profile names no noise-drive commands: refused when the
+    # source is made, not at the first switch in the middle of a calibration
+    class NoDrive(_DriveRecorder):
+        @property
+        def has_noise_drive(self) -> bool:
+            return False
+
+    with pytest.raises(InputError, match="no noise-source drive output"):
+        AnalyzerDriveNoiseSource(NoDrive(), settle_time_s=0.1)
 
 
 def test_callable_source_wraps_callback_failures():

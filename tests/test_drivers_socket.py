@@ -231,11 +231,37 @@ def test_drop_after_commands_is_recovered(analyzer, sim_server):
 def test_pushed_error_queue_entry_names_the_command(analyzer, sim_server):
     analyzer.configure(REQUEST)
     sim_server.faults.push_error(-222, "Data out of range")
+    wider = REQUEST.model_copy(update={"rbw_hz": 220e3})
     with pytest.raises(InstrumentError) as info:
-        analyzer.configure(REQUEST)
+        analyzer.configure(wider)
     assert info.value.code == -222 and "Data out of range" in info.value.text
-    assert info.value.command == "INIT:CONT OFF"  # the first command after the push
+    # the first command after the push: only the changed setting is sent (settings cache)
+    assert info.value.command == "BAND 220000"
+    # after the failure the cache is dropped: everything is sent again
+    before = len(sim_server.command_log)
     assert analyzer.configure(REQUEST).rbw_hz == 100e3
+    sent = [line for _, line in sim_server.command_log[before:]]
+    assert "INIT:CONT OFF" in sent and "BAND 110000" in sent
+
+
+def test_settings_cache_sends_only_what_changed_and_everything_after_a_reconnect(
+    analyzer, sim_server
+):
+    applied = analyzer.configure(REQUEST)
+    start = len(sim_server.command_log)
+    assert analyzer.configure(REQUEST) == applied  # the same request: no I/O at all
+    assert len(sim_server.command_log) == start
+    moved = REQUEST.model_copy(update={"center_hz": 1.2e9})
+    settings = analyzer.configure(moved)
+    assert settings.center_hz == pytest.approx(1.2e9)
+    sent = [line for _, line in sim_server.command_log[start:] if not line.endswith("?")]
+    assert len(sent) == 1 and sent[0].startswith("FREQ:CENT")  # one setting written
+    sim_server.faults.drop_after_commands = 1  # the connection drops: a reconnect follows
+    assert analyzer.acquire_trace().values.size == 401
+    after = len(sim_server.command_log)
+    analyzer.configure(REQUEST)
+    resent = [line for _, line in sim_server.command_log[after:] if not line.endswith("?")]
+    assert "BAND 110000" in resent and "INIT:CONT OFF" in resent  # the cache was dropped
 
 
 def test_reboot_is_detected_by_read_back_and_the_settings_reapplied(analyzer, sim_server):

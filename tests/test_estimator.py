@@ -187,7 +187,8 @@ def _two_sided_chi2_bounds(dof: int, p: float = 1e-3) -> tuple[float, float]:
 
 
 def _gaussian_corr_sum(n: int, spacing_rbw: float) -> float:
-    """sum_ij rho(|i-j| spacing) for the Gaussian RBW, rho = exp(-2 ln2 x^2) [reference §6a]."""
+    """sum_ij rho(|i-j| spacing) for the Gaussian RBW, rho = exp(-2 ln2 x^2) [docs/references.md
+    §6a]."""
     lags = np.arange(n)
     rho = np.exp(-2 * math.log(2) * (lags * spacing_rbw) ** 2)
     return float(n * rho[0] + 2 * np.sum((n - lags[1:]) * rho[1:]))
@@ -250,7 +251,7 @@ def test_independent_samples_sparse_points_are_all_independent():
 
 
 def test_independent_samples_dense_points_follow_the_radiometer_equation():
-    # 20 points per RBW over 100 RBW: independent bins -> band / B_stat (reference.md §7)
+    # 20 points per RBW over 100 RBW: independent bins -> band / B_stat (docs/references.md §7)
     trace = synthetic_traces(seed=4, span_hz=10e6, points=2001, looks=3, averages=4)[0]
     d = estimate_density(trace)
     spacing_rbw = 10e6 / 2000 / 1e5
@@ -277,7 +278,7 @@ def test_uncorrected_log_average_would_read_low():
     good, bad = estimate_density(trace), estimate_density(naive)
     ratio_db = 10 * math.log10(bad.density_w_per_hz / good.density_w_per_hz)
     assert ratio_db == pytest.approx(10 * math.log10(special.gamma(1 + 1 / 64) ** 64), abs=1e-9)
-    assert ratio_db < -2.4  # reference.md §6b: ~ -2.5 dB
+    assert ratio_db < -2.4  # docs/references.md §6b: ~ -2.5 dB
 
 
 # --- zero span ---------------------------------------------------------------------------------
@@ -295,7 +296,7 @@ def test_zero_span_uncertainty_matches_scatter(detector, dt_periods, sub):
     assert abs(v.mean() - D_TRUE) < Z * math.sqrt(u2 / m)
     lo, hi = _two_sided_chi2_bounds(m - 1)
     assert lo < np.var(v, ddof=1) / u2 < hi
-    # radiometer equation (reference.md §7): independent samples ~ averages x T x B_stat
+    # radiometer equation (docs/references.md §7): independent samples ~ averages x T x B_stat
     s = traces[0].settings
     radiometer = s.averages * s.sweep_time_s * GAUSSIAN.stat_bw_hz(s.rbw_hz)
     assert est[0].independent_samples == pytest.approx(radiometer, rel=0.05)
@@ -537,7 +538,7 @@ def _dbm(w: float) -> float:
 
 
 def _gaussian_corr_matrix(n: int, spacing_rbw: float) -> np.ndarray:
-    """rho(|i-j| spacing) for the Gaussian RBW, rho = exp(-2 ln2 x^2) [reference §6a]."""
+    """rho(|i-j| spacing) for the Gaussian RBW, rho = exp(-2 ln2 x^2) [docs/references.md §6a]."""
     lags = np.subtract.outer(np.arange(n), np.arange(n))
     return np.exp(-2 * math.log(2) * (lags * spacing_rbw) ** 2)
 
@@ -562,7 +563,7 @@ def test_band_power_marker():
     w[[0, -1]] = 0.5
     rel_u = math.sqrt(w @ _gaussian_corr_matrix(n, 0.1) @ w / 40) / w.sum()
     assert d.bins_used == n and d.relative_u == pytest.approx(rel_u, rel=1e-6)
-    # radiometer equation: averages x samples x band / B_stat (reference.md §7), edge effect
+    # radiometer equation: averages x samples x band / B_stat (docs/references.md §7), edge effect
     assert d.independent_samples == pytest.approx(40 * 1e6 / GAUSSIAN.stat_bw_hz(1e5), rel=0.1)
 
 
@@ -672,7 +673,7 @@ def test_marker_refusals_and_variance_bound():
 
 
 def test_single_point_trace_uses_its_averages():
-    # one point, N k samples: relative u = 1 / sqrt(N k) (reference.md §6c); no scatter check
+    # one point, N k samples: relative u = 1 / sqrt(N k) (docs/references.md §6c); no scatter check
     s = AcquisitionSettings(
         center_hz=F0,
         span_hz=0.0,

@@ -44,7 +44,8 @@ def _integral(fun, half_span: float = np.inf) -> float:
 
 
 def test_gaussian_enbw_and_stat_bw_by_integration():
-    # reference: reference.md §6a (ENBW = sqrt(pi/(4 ln2)) B3) and §7 (B_stat = (int G)^2/int G^2)
+    # reference: docs/references.md §6a (ENBW = sqrt(pi/(4 ln2)) B3) and §7 (B_stat = (int G)^2/int
+    # G^2)
     resp = lambda f: float(GAUSSIAN.power_response(np.array([f]), 1.0)[0])  # noqa: E731
     enbw = _integral(resp)
     bstat = enbw**2 / _integral(lambda f: resp(f) ** 2)
@@ -52,14 +53,14 @@ def test_gaussian_enbw_and_stat_bw_by_integration():
     assert GAUSSIAN.enbw_ratio == pytest.approx(enbw, rel=1e-10)
     assert gaussian_enbw_ratio() == pytest.approx(enbw, rel=1e-10)
     assert GAUSSIAN.stat_bw_ratio == pytest.approx(bstat, rel=1e-10)
-    assert bstat == pytest.approx(math.sqrt(2) * enbw, rel=1e-10)  # reference.md §6a table
-    # reference: reference.md §4, 1 MHz Gaussian RBW -> ENBW 60.2713 dB-Hz
+    assert bstat == pytest.approx(math.sqrt(2) * enbw, rel=1e-10)  # docs/references.md §6a table
+    # reference: docs/references.md §4, 1 MHz Gaussian RBW -> ENBW 60.2713 dB-Hz
     assert 10 * math.log10(GAUSSIAN.enbw_hz(1e6)) == pytest.approx(60.2713, abs=5e-5)
 
 
 @pytest.mark.parametrize("poles", [1, 2, 3, 4, 5, 8])
 def test_synchronous_filters_by_integration(poles):
-    # reference: reference.md §6a, n synchronously tuned stages (narrow-band model), by quad
+    # reference: docs/references.md §6a, n synchronously tuned stages (narrow-band model), by quad
     f = RbwFilter(kind=FilterKind.SYNCHRONOUS, poles=poles)
     resp = lambda x: float(f.power_response(np.array([x]), 1.0)[0])  # noqa: E731
     assert resp(0.5) == pytest.approx(0.5, rel=1e-12)  # -3 dB at +/- B3/2 by construction
@@ -70,7 +71,7 @@ def test_synchronous_filters_by_integration(poles):
 
 
 def test_synchronous_table_values():
-    # reference: reference.md §6a table (computed there with numpy/scipy)
+    # reference: docs/references.md §6a table (computed there with numpy/scipy)
     table = {
         1: (1.570796, 3.1416),
         2: (1.220331, 1.9525),
@@ -94,7 +95,7 @@ def test_synchronous_table_values():
     [("boxcar", 1.0), ("hann", 1.5), ("blackmanharris", 2.0044), ("flattop", 3.7702)],
 )
 def test_fft_window_enbw_in_bins(window, expected_bins):
-    # reference: Harris 1978, Proc. IEEE 66(1) (table of window ENBW); reference.md §8;
+    # reference: Harris 1978, Proc. IEEE 66(1) (table of window ENBW); docs/references.md §8;
     # recomputed from scipy.signal.get_window as N sum(w^2) / sum(w)^2
     w = get_window(window, 4096, fftbins=True)
     direct = len(w) * np.sum(w**2) / np.sum(w) ** 2
@@ -121,7 +122,7 @@ def test_frequency_correlation_gaussian_closed_form_and_integral():
         assert frequency_power_correlation(GAUSSIAN, np.array([d]), 1.0)[0] == pytest.approx(
             (num / norm) ** 2, rel=1e-9
         )
-    # the correlation bandwidth of a Gaussian RBW equals its B_stat (reference.md §7)
+    # the correlation bandwidth of a Gaussian RBW equals its B_stat (docs/references.md §7)
     area = _integral(lambda d: float(frequency_power_correlation(GAUSSIAN, np.array([d]), 1.0)[0]))
     assert area == pytest.approx(GAUSSIAN.stat_bw_ratio, rel=1e-9)
     assert correlation_bw_ratio(GAUSSIAN) == pytest.approx(area, rel=1e-12)
@@ -172,7 +173,8 @@ def test_fft_bin_correlation_bounds_the_exact_window_value():
 
 @pytest.mark.parametrize("filt", [GAUSSIAN, SYNC4, RbwFilter(kind=FilterKind.SYNCHRONOUS, poles=2)])
 def test_time_correlation_integrates_to_one_over_bstat(filt):
-    # radiometer equation (Dicke 1946, from memory; reference.md §7): int |r(tau)|^2 = 1/B_stat
+    # radiometer equation (Dicke 1946, from memory; docs/references.md §7): int |r(tau)|^2 =
+    # 1/B_stat
     fun = lambda t: float(time_power_correlation(filt, np.array([t]), 1.0)[0])  # noqa: E731
     assert fun(0.0) == pytest.approx(1.0)
     area = 2 * quad(fun, 0, 40, limit=400, epsabs=1e-12)[0]

@@ -59,7 +59,7 @@ def test_settings_frequencies_and_enbw():
     s = _settings()
     f = s.frequencies_hz()
     assert f[0] == pytest.approx(999e6) and f[-1] == pytest.approx(1001e6) and f.size == 21
-    # Gaussian ENBW = sqrt(pi / (4 ln 2)) * B3 (reference.md section 6a)
+    # Gaussian ENBW = sqrt(pi / (4 ln 2)) * B3 (docs/references.md section 6a)
     assert s.enbw_hz == pytest.approx(np.sqrt(np.pi / (4 * np.log(2))) * 1e5)
     zero = _settings(span_hz=0.0, points=5)
     assert np.all(zero.frequencies_hz() == 1e9)

@@ -145,7 +145,7 @@ def test_touchstone_gain_is_s21_in_db_and_interpolated_in_db(tmp_path):
     assert mid.gain_db == pytest.approx((20.0 + 20.5) / 2)
     assert mid.u_gain_db == 0.05
     # scikit-rf's default (complex) interpolation between the same points dips: the reason
-    # for interpolating dB (reference: ecosystem.md, scikit-rf 2.2 measurement)
+    # for interpolating dB (scikit-rf 2.2 Network.interpolate, measured here)
     complex_mid = reread.interpolate(skrf.Frequency(1.25, 1.25, 1, unit="GHz"))
     assert complex_mid.s_db[0, 1, 0] < mid.gain_db - 1.0  # about 3 dB low here
 

@@ -1,6 +1,6 @@
 """Gain method: exact floor correction, source temperature, losses, uncertainty, flags.
 
-Worked examples from /work/shared/reference.md §4 and §7, recomputed from their formulas.
+Worked examples from docs/references.md §4 and §7, recomputed from their formulas.
 """
 
 from __future__ import annotations
@@ -21,7 +21,7 @@ K = scipy.constants.k
 T0 = 290.0
 C_DB = 10 / math.log(10)
 
-# reference.md §4 worked example: G = 20 dB, NF = 2 dB, analyzer NF = 12 dB, Ts = T0
+# docs/references.md §4 worked example: G = 20 dB, NF = 2 dB, analyzer NF = 12 dB, Ts = T0
 G = 100.0
 TE_DUT = T0 * (10**0.2 - 1)
 TE_SA = T0 * (10**1.2 - 1)
@@ -38,7 +38,7 @@ def dbm_per_hz(w: float) -> float:
 
 
 def test_worked_example_inputs():
-    assert TE_DUT == pytest.approx(169.619, abs=5e-4)  # reference.md §4
+    assert TE_DUT == pytest.approx(169.619, abs=5e-4)  # docs/references.md §4
     assert TE_SA == pytest.approx(4306.190, abs=5e-4)
     assert dbm_per_hz(N_M) == pytest.approx(-151.5862, abs=5e-5)
     assert dbm_per_hz(N_F) == pytest.approx(-161.9752, abs=5e-5)
@@ -46,7 +46,7 @@ def test_worked_example_inputs():
 
 def test_exact_floor_correction_gives_the_true_nf():
     r = gain_method_point(density(N_M), 20.0, floor=density(N_F))
-    # reference.md §4: exact correction N_DUT = N_m - N_f + kTs -> 2.0000 dB
+    # docs/references.md §4: exact correction N_DUT = N_m - N_f + kTs -> 2.0000 dB
     assert r.nf_db == pytest.approx(2.0, abs=1e-12)
     assert r.te_k == pytest.approx(TE_DUT, rel=1e-12)
     assert r.method is Method.GAIN and r.gain_db == pytest.approx(20.0)
@@ -57,11 +57,11 @@ def test_exact_floor_correction_gives_the_true_nf():
 
 def test_plain_subtraction_and_no_correction_read_wrong():
     plain = 10 * math.log10((N_M - N_F) / (K * T0 * G))  # the wrong formula
-    assert plain == pytest.approx(1.9725, abs=5e-5)  # reference.md §4
+    assert plain == pytest.approx(1.9725, abs=5e-5)  # docs/references.md §4
     uncorrected = gain_method_point(density(N_M), 20.0)
-    assert uncorrected.nf_db == pytest.approx(2.3889, abs=5e-5)  # reference.md §4
+    assert uncorrected.nf_db == pytest.approx(2.3889, abs=5e-5)  # docs/references.md §4
     assert uncorrected.floor_margin_db is None and uncorrected.floor_correction_db is None
-    # plain subtraction under-reads F by exactly 1/G (reference.md §4)
+    # plain subtraction under-reads F by exactly 1/G (docs/references.md §4)
     exact = gain_method_point(density(N_M), 20.0, floor=density(N_F))
     assert 10 ** (exact.nf_db / 10) - 10 ** (plain / 10) == pytest.approx(1 / G, rel=1e-12)
 
@@ -73,7 +73,7 @@ def test_plain_subtraction_error_table(gain_db, error_db):
     exact = float(gain_method_nf_db(n_m, g, n_floor_w_per_hz=n_f))
     plain = 10 * math.log10((n_m - n_f) / (K * T0 * g))
     assert exact == pytest.approx(2.0, abs=1e-12)
-    assert plain - exact == pytest.approx(error_db, abs=6e-4)  # reference.md §4 (3 digits)
+    assert plain - exact == pytest.approx(error_db, abs=6e-4)  # docs/references.md §4 (3 digits)
 
 
 def test_floor_correction_and_margin_are_consistent():
@@ -83,8 +83,10 @@ def test_floor_correction_and_margin_are_consistent():
     assert r.floor_margin_db == pytest.approx(10 * math.log10(n_dut / n_sa), rel=1e-12)
     assert r.floor_correction_db == pytest.approx(
         10 * math.log10(1 + 10 ** (-r.floor_margin_db / 10)), rel=1e-10
-    )  # reference.md §4
-    assert r.floor_correction_db == pytest.approx(2.3889 - 2.0000, abs=1e-4)  # reference.md §4
+    )  # docs/references.md §4
+    assert r.floor_correction_db == pytest.approx(
+        2.3889 - 2.0000, abs=1e-4
+    )  # docs/references.md §4
     assert r.notes["nf_uncorrected_db"] - r.nf_db == pytest.approx(r.floor_correction_db)
     assert PointFlag.NEAR_ANALYZER_FLOOR not in r.flags
 
@@ -107,11 +109,11 @@ def test_termination_not_at_t0():
     for nf, offset in [(0.5, 0.1315), (2.0, 0.0935), (3.0, 0.0744)]:
         te = T0 * (10 ** (nf / 10) - 1)
         n_m = K * G * (ts + te)  # no analyzer noise: a DUT-only reading
-        # reference.md §4: Te = N_DUT/(kG) - Ts is exact
+        # docs/references.md §4: Te = N_DUT/(kG) - Ts is exact
         r = gain_method_point(density(n_m), 20.0, source_temperature_k=ts)
         assert r.nf_db == pytest.approx(nf, abs=1e-12)
         assert r.source_temperature_k == ts
-        # treating the 300 K termination as 290 K reads high (reference.md §4)
+        # treating the 300 K termination as 290 K reads high (docs/references.md §4)
         wrong = gain_method_point(density(n_m), 20.0, source_temperature_k=T0)
         assert wrong.nf_db - nf == pytest.approx(offset, abs=5e-5)
 
@@ -168,7 +170,7 @@ def test_losses_are_deembedded():
 
 
 def test_statistical_uncertainty_of_the_worked_example():
-    # reference.md §7: 1 % on each density -> 0.0434 dB without floor, 0.0477 dB with it
+    # docs/references.md §7: 1 % on each density -> 0.0434 dB without floor, 0.0477 dB with it
     alone = gain_method_point(density(N_M), 20.0)
     assert alone.u_nf_db == pytest.approx(C_DB * 0.01, rel=1e-6)
     assert alone.u_nf_db == pytest.approx(0.0434, abs=5e-5)
@@ -183,7 +185,7 @@ def test_statistical_uncertainty_of_the_worked_example():
 def test_gain_uncertainty_enters_one_to_one_and_stays_out_of_the_statistical_part():
     r = gain_method_point(density(N_M), 20.0, floor=density(N_F), u_gain_db=0.1)
     c = r.notes["u_nf_db_contributions"]
-    # errors in G(dB) pass into NF(dB) 1:1 (reference.md §4) when Ts = T0
+    # errors in G(dB) pass into NF(dB) 1:1 (docs/references.md §4) when Ts = T0
     assert c["gain"] == pytest.approx(-0.1, rel=1e-6)
     assert r.u_gain_db == 0.1
     assert r.u_nf_db == pytest.approx(math.hypot(c["dut"], c["floor"]), rel=1e-12)

@@ -1,7 +1,8 @@
 """Property: the gain method and the Y-factor method agree on the same DUT.
 
 Synthetic available noise densities are built from the physics both methods rest on (Friis,
-reference.md §3-§5): a DUT of noise temperature Te and gain G between the source and an analyzer
+docs/references.md §3-§5): a DUT of noise temperature Te and gain G between the source and an
+analyzer
 of noise temperature T_SA, a noise source whose excess noise T0*ENR adds to its physical (cold)
 temperature Tc, and an ambient termination at Tc for the gain method. Both methods must return
 the DUT's own NF (and the Y-factor its gain), whatever the mix of parameters.
@@ -47,7 +48,7 @@ def test_gain_method_and_y_factor_agree(
     # path [input loss, DUT, output loss] at ambient Tc (Friis in noise temperatures)
     te_path = (l_in - 1) * tc_k + l_in * (te_dut + (l_out - 1) * tc_k / g_dut)
     g_path = g_dut / (l_in * l_out)
-    th_k = T0 * 10 ** (enr_db / 10) + tc_k  # ENR referred to T0 (reference.md §5)
+    th_k = T0 * 10 ** (enr_db / 10) + tc_k  # ENR referred to T0 (docs/references.md §5)
 
     def at_analyzer(source_k: float, through_dut: bool = True) -> float:
         if through_dut:

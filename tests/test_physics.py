@@ -1,7 +1,7 @@
 """noisebench.science.physics: thermal noise, conversions, Friis, losses, SSB/DSB, Planck factor.
 
 Reference values are recomputed from the named formula or library; the rounded figures of
-/work/shared/reference.md are checked to the digits it prints.
+docs/references.md are checked to the digits it prints.
 """
 
 from __future__ import annotations
@@ -27,16 +27,16 @@ K = scipy.constants.k
 def test_boltzmann_is_the_exact_si_value():
     # scipy.constants; SI Brochure 9th ed. (2019): k = 1.380649e-23 J/K exactly (from memory)
     assert ph.BOLTZMANN_J_PER_K == scipy.constants.k == 1.380649e-23
-    assert ph.T0_K == 290.0  # IRE/IEEE Std 161 reference temperature (reference.md §1)
+    assert ph.T0_K == 290.0  # IRE/IEEE Std 161 reference temperature (docs/references.md §1)
 
 
 def test_kt0_in_dbm_per_hz():
     kt0 = ph.kt_w_per_hz(290.0)
     assert kt0 == pytest.approx(scipy.constants.k * 290.0, rel=1e-15)  # scipy.constants
-    # reference.md §1: kT0 = 4.003882e-21 W/Hz = -173.9752 dBm/Hz
+    # docs/references.md §1: kT0 = 4.003882e-21 W/Hz = -173.9752 dBm/Hz
     assert kt0 == pytest.approx(4.003882e-21, rel=2e-7)
     assert ph.w_per_hz_to_dbm_per_hz(kt0) == pytest.approx(-173.9752, abs=5e-5)
-    # reference.md §1: kT at 300 K = -173.8280 dBm/Hz
+    # docs/references.md §1: kT at 300 K = -173.8280 dBm/Hz
     assert ph.w_per_hz_to_dbm_per_hz(ph.kt_w_per_hz(300.0)) == pytest.approx(-173.8280, abs=5e-5)
 
 
@@ -45,7 +45,7 @@ def test_kt0b_over_bandwidths():
     got = ph.w_to_dbm(np.asarray(ph.kt_w_per_hz(290.0)) * bandwidths)
     expected = 10 * np.log10(scipy.constants.k * 290 * bandwidths / 1e-3)  # scipy.constants
     np.testing.assert_allclose(got, expected, rtol=0, atol=1e-12)
-    # reference.md §1 table
+    # docs/references.md §1 table
     np.testing.assert_allclose(
         got, [-173.9752, -163.9752, -143.9752, -133.9752, -113.9752], atol=5e-5
     )
@@ -63,9 +63,9 @@ NF_TABLE_DB = np.array([0.5, 1.0, 2.0, 3.0, 6.0, 10.0])
 
 def test_nf_te_table():
     te = ph.nf_db_to_te_k(NF_TABLE_DB)
-    # Te = T0 (F - 1), F = 10^(NF/10) (IRE/IEEE Std 161; reference.md §2)
+    # Te = T0 (F - 1), F = 10^(NF/10) (IRE/IEEE Std 161; docs/references.md §2)
     np.testing.assert_allclose(te, 290.0 * (10 ** (NF_TABLE_DB / 10) - 1), rtol=1e-14)
-    # reference.md §2 table, 3 decimals
+    # docs/references.md §2 table, 3 decimals
     np.testing.assert_allclose(te, [35.385, 75.088, 169.619, 288.626, 864.511, 2610.000], atol=5e-4)
     np.testing.assert_allclose(
         ph.nf_db_to_factor(NF_TABLE_DB),
@@ -132,27 +132,27 @@ def test_scalars_in_floats_out_arrays_keep_their_shape():
 
 # --------------------------------------------------------------------------- §3 Friis
 
-F1, G1, F2 = 10**0.1, 10**1.5, 10**0.8  # reference.md §3: NF1 1 dB, G1 15 dB, NF2 8 dB
+F1, G1, F2 = 10**0.1, 10**1.5, 10**0.8  # docs/references.md §3: NF1 1 dB, G1 15 dB, NF2 8 dB
 F3, G2 = 10**1.5, 10**2.0  # third stage NF 15 dB after G2 20 dB
 
 
 def test_friis_two_stage_example():
     f = ph.friis_noise_factor([F1, F2], [G1])
-    assert f == pytest.approx(F1 + (F2 - 1) / G1, rel=1e-15)  # Friis 1944, reference.md §3
-    assert f == pytest.approx(1.426829, abs=5e-7)  # reference.md §3
+    assert f == pytest.approx(F1 + (F2 - 1) / G1, rel=1e-15)  # Friis 1944, docs/references.md §3
+    assert f == pytest.approx(1.426829, abs=5e-7)  # docs/references.md §3
     assert ph.factor_to_nf_db(f) == pytest.approx(1.5437, abs=5e-5)
     te = ph.friis_te_k(ph.factor_to_te_k(np.array([F1, F2])), [G1])
-    assert te == pytest.approx(123.780, abs=5e-4)  # reference.md §3
+    assert te == pytest.approx(123.780, abs=5e-4)  # docs/references.md §3
     assert te == pytest.approx(ph.factor_to_te_k(f), rel=1e-13)  # the two forms agree
 
 
 def test_friis_three_stage_example():
     f = ph.friis_noise_factor([F1, F2, F3], [G1, G2])
     assert f == pytest.approx(F1 + (F2 - 1) / G1 + (F3 - 1) / (G1 * G2), rel=1e-15)
-    assert f == pytest.approx(1.436513, abs=5e-7)  # reference.md §3
+    assert f == pytest.approx(1.436513, abs=5e-7)  # docs/references.md §3
     assert ph.factor_to_nf_db(f) == pytest.approx(1.5731, abs=5e-5)
     te = ph.friis_te_k(ph.factor_to_te_k(np.array([F1, F2, F3])), [G1, G2, 1e3])
-    assert te == pytest.approx(126.589, abs=5e-4)  # reference.md §3 (last gain is ignored)
+    assert te == pytest.approx(126.589, abs=5e-4)  # docs/references.md §3 (last gain is ignored)
 
 
 def test_friis_stage_by_frequency_arrays():
@@ -200,7 +200,8 @@ def test_friis_agrees_with_scikit_rf_noisy_cascade():
         f_skrf_3 = (a**b**c).nf(50.0)
     ours_2 = ph.friis_noise_factor([10**0.15, 10**0.8], [100.0])
     ours_3 = ph.friis_noise_factor([10**0.15, 10**0.8, 10**1.8], [100.0, 10.0])
-    # scikit-rf noisy two-port cascade; ecosystem.md: 1.66025318 dB for the 2-stage case
+    # scikit-rf noisy two-port cascade (Hillbrand & Russer 1976; docs/references.md §15):
+    # 1.66025318 dB for the 2-stage case, computed with scikit-rf 2.2
     np.testing.assert_allclose(10 * np.log10(f_skrf_2), ph.factor_to_nf_db(ours_2), atol=1e-12)
     assert ph.factor_to_nf_db(ours_2) == pytest.approx(1.66025318, abs=5e-9)
     np.testing.assert_allclose(f_skrf_3, ours_3, rtol=1e-12)
@@ -211,7 +212,7 @@ def test_friis_agrees_with_scikit_rf_noisy_cascade():
 
 def test_passive_loss_noise():
     loss = 10**0.3  # 3 dB
-    # textbook (Pozar, noise chapter, from memory; reference.md §3): F = 1 + (L-1) Tp/T0
+    # textbook (Pozar, noise chapter, from memory; docs/references.md §3): F = 1 + (L-1) Tp/T0
     assert ph.passive_loss_factor(loss) == pytest.approx(loss, rel=1e-15)  # F = L at T0
     assert ph.passive_loss_factor(loss, 300.0) == pytest.approx(1 + (loss - 1) * 300 / 290)
     assert ph.passive_loss_te_k(loss, 77.0) == pytest.approx((loss - 1) * 77.0)
@@ -222,7 +223,8 @@ def test_passive_loss_noise():
 def test_input_loss_deembedding_example():
     loss = 10**0.05  # 0.5 dB cable
     f_meas = 10**0.25  # measured 2.5 dB
-    # reference.md §3: F_DUT = 1 + (F_meas - F_L)/L gives 2.0000 dB at 290 K, 1.9897 dB at 300 K
+    # docs/references.md §3: F_DUT = 1 + (F_meas - F_L)/L gives 2.0000 dB at 290 K, 1.9897 dB at
+    # 300 K
     assert ph.factor_to_nf_db(ph.deembed_input_loss(f_meas, loss)) == pytest.approx(2.0, abs=5e-5)
     assert ph.factor_to_nf_db(ph.deembed_input_loss(f_meas, loss, 300.0)) == pytest.approx(
         1.9897, abs=5e-5
@@ -250,7 +252,7 @@ def test_deembedding_inverts_the_cascade():
 
 
 def test_ssb_dsb_equal_sidebands():
-    # reference.md §10: F_SSB = F_DSB (1 + Gi/Gs); equal sidebands +10 log10 2 = +3.0103 dB
+    # docs/references.md §10: F_SSB = F_DSB (1 + Gi/Gs); equal sidebands +10 log10 2 = +3.0103 dB
     f_dsb = ph.nf_db_to_factor(6.0)
     nf_ssb = ph.factor_to_nf_db(ph.ssb_from_dsb_factor(f_dsb))
     assert nf_ssb - 6.0 == pytest.approx(10 * math.log10(2), rel=1e-12)
@@ -268,16 +270,16 @@ def test_ssb_dsb_equal_sidebands():
 
 
 def test_planck_correction_values():
-    def expected_db(f, t):  # reference.md §1: x/(e^x - 1), x = h f / (k T); scipy.constants
+    def expected_db(f, t):  # docs/references.md §1: x/(e^x - 1), x = h f / (k T); scipy.constants
         x = scipy.constants.h * f / (scipy.constants.k * t)
         return 10 * np.log10(x / np.expm1(x))
 
     freqs = np.array([10e9, 50e9, 110e9])
     got = 10 * np.log10(ph.planck_correction(freqs, 290.0))
     np.testing.assert_allclose(got, expected_db(freqs, 290.0), rtol=1e-12)
-    np.testing.assert_allclose(got, [-0.0036, -0.0180, -0.0396], atol=5e-5)  # reference.md §1
+    np.testing.assert_allclose(got, [-0.0036, -0.0180, -0.0396], atol=5e-5)  # docs/references.md §1
     cold = 10 * np.log10(ph.planck_correction(np.array([10e9, 110e9]), 77.0))
-    np.testing.assert_allclose(cold, [-0.0135, -0.150], atol=5e-4)  # reference.md §1
+    np.testing.assert_allclose(cold, [-0.0135, -0.150], atol=5e-4)  # docs/references.md §1
     assert ph.planck_correction(0.0, 290.0) == 1.0
 
 

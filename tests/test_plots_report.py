@@ -18,6 +18,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import scipy.constants
+from markupsafe import escape
 
 from noisebench.errors import InputError
 from noisebench.results.plots import (
@@ -30,6 +31,7 @@ from noisebench.results.plots import (
     VERDICT_SYMBOL,
     budget_figure,
     budget_series,
+    coincident_with,
     densities_figure,
     density_series,
     frequency_scale,
@@ -60,7 +62,7 @@ from noisebench.results.store import FLAG_DESCRIPTIONS, RunInfo, RunRecord, RunW
 from noisebench.science.point import Method, PointFlag, PointResult
 
 T0_K = 290.0
-KT0_W_PER_HZ = scipy.constants.k * T0_K  # reference.md §1 (scipy.constants)
+KT0_W_PER_HZ = scipy.constants.k * T0_K  # docs/references.md §1 (scipy.constants)
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 NASTY = '<script>alert("x")</script> & co'
 CONTRIBUTION_NAMES = ("ENR", "jitter <hot>")
@@ -533,7 +535,7 @@ def test_densities_are_plotted_in_dbm_per_hz_and_named_in_words(record):
     series = density_series(record)
     assert list(series) == ["hot", "cold"]
     freq, cold_dbm_per_hz = series["cold"]
-    # reference.md §1: kT0 = -173.9752 dBm/Hz, recomputed from scipy.constants
+    # docs/references.md §1: kT0 = -173.9752 dBm/Hz, recomputed from scipy.constants
     assert np.allclose(cold_dbm_per_hz, 10 * np.log10(KT0_W_PER_HZ / 1e-3), atol=1e-12)
     assert np.isclose(cold_dbm_per_hz[0], -173.9752, atol=5e-5)
     assert np.allclose(series["hot"][1] - cold_dbm_per_hz, 10 * np.log10(3000))
@@ -812,7 +814,7 @@ def test_flags_are_explained_in_words_before_the_table(record):
         "1",
         FLAG_DESCRIPTIONS[PointFlag.EXCESS_SCATTER],
     ]
-    assert 'title="' + html.escape(FLAG_DESCRIPTIONS[PointFlag.EXCESS_SCATTER]) in text
+    assert 'title="' + str(escape(FLAG_DESCRIPTIONS[PointFlag.EXCESS_SCATTER])) in text
 
 
 def test_report_escapes_every_string(tmp_path):
@@ -820,7 +822,7 @@ def test_report_escapes_every_string(tmp_path):
     nasty.warnings.append("line 3: <incomplete>")
     text = render_report(nasty, {})
     assert "<script>" not in text and "<b>bold</b>" not in text and "<incomplete>" not in text
-    assert html.escape(NASTY) in text
+    assert str(escape(NASTY)) in text  # the template engine's own escaping
     assert "kim &amp; lee" in text and "Example,SA&lt;1&gt;,0001,1.0" in text
     assert "jitter &lt;hot&gt;" in text and "&lt;b&gt;bold&lt;/b&gt;" in text
     assert {tag for tag, _ in parse(text).tags} <= SAFE_TAGS
@@ -834,7 +836,7 @@ def test_report_summary_verdict_flags_budget_calibration_and_safety(record):
     lowest, highest = record.points[0], record.points[-1]
     assert f"min {lowest.nf_db:.3f} dB" in body and f"max {highest.nf_db:.3f} dB" in body
     margins = [1.6 - p.nf_db for p in record.points]
-    assert f"{min(margins):+.3f} dB at 6&nbsp;GHz" in text  # smallest NF margin, signed
+    assert f"{min(margins):+.3f} dB at 6\u00a0GHz" in text  # smallest NF margin, signed
     assert "Flagged points" in body and "1 of 12" in body
     U = [b["U_expanded_db"] for b in record.budgets]
     assert f"{min(U):.3f} to {max(U):.3f} dB" in body
@@ -842,7 +844,7 @@ def test_report_summary_verdict_flags_budget_calibration_and_safety(record):
     assert "Calibration" in body and "4306.19" in body
     assert "numpy" in body and np.__version__ in body
     for line in SAFETY_NOTE:
-        assert html.escape(line) in text
+        assert str(escape(line)) in text
 
 
 def test_budget_section_summarises_the_sweep_and_details_the_worst_point(record):
@@ -854,7 +856,7 @@ def test_budget_section_summarises_the_sweep_and_details_the_worst_point(record)
     shares = [100 * 0.099**2 / (b["u_combined_db"]) ** 2 for b in record.budgets]
     assert sweep[1][-1] == f"{min(shares):.1f} to {max(shares):.1f}"
     worst = max(record.budgets, key=lambda b: b["U_expanded_db"])
-    assert "At 6&nbsp;GHz, the point with the largest U" in section
+    assert "At 6\u00a0GHz, the point with the largest U" in section
     at = table_after(section, "the point with the largest U")
     assert at[1][:3] == ["ENR", "normal", "0.1"] and at[1][-2] == "+0.0990"
     assert at[-2][0] == "combined standard uncertainty u_c"
@@ -1093,7 +1095,7 @@ def test_calibration_store_entries_are_summarised(record):
         averages=16,
         points=1001,
     )
-    te2_k = 290 * (10**1.2 - 1)  # analyzer NF 12 dB, reference.md §5
+    te2_k = 290 * (10**1.2 - 1)  # analyzer NF 12 dB, docs/references.md §5
     densities = {
         name: [
             NoiseDensity(
@@ -1120,9 +1122,9 @@ def test_calibration_store_entries_are_summarised(record):
     text = render_report(record.model_copy(update={"info": info}), {})
     section = text.split('<h2 id="calibration">Calibration</h2>')[1].split("<h2")[0]
     assert "<td>system</td>" in section and "<td>gaussian</td>" in section
-    assert "3: 1&nbsp;GHz to 3&nbsp;GHz" in section
+    assert "3: 1\u00a0GHz to 3\u00a0GHz" in section
     assert "296.50" in section and "1.250" in section
-    assert '<td class="num">1&nbsp;MHz</td>' in section  # rbw_hz shown as a frequency
+    assert '<td class="num">1\u00a0MHz</td>' in section  # rbw_hz shown as a frequency
     assert ["System Te (K)", f"{te2_k:.1f}"] in table_after(section, "over the sweep")
     assert f"<td>{te2_k:.1f}</td>" in section and "Per-frequency calibration results (3" in section
     assert "u_density_w_per_hz" not in section  # raw densities stay in results.json
@@ -1153,3 +1155,71 @@ def test_importing_the_store_plots_and_report_does_not_load_matplotlib():
         [sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=60
     )
     assert out.stdout.strip() == "False"
+
+
+def test_report_html_comes_from_autoescaped_templates_only():
+    """The markup lives in the packaged templates; the module only gathers facts."""
+    import inspect
+
+    from noisebench.results import report
+
+    env = report.environment()
+    for name in ("report.html", "macros.html", "report.css"):
+        assert env.is_async is False and env.get_template(name)  # packaged and found
+        assert env.autoescape is True or env.autoescape(name)  # escaping on for every file
+    source = inspect.getsource(report)
+    assert not re.search(r"<(table|tr|td|th|span|p|div|h[1-6]|strong|img)\b", source)
+    cell = report.render_value({"name": "<b>x</b>", "freqs_hz": [1e9, 2.5e9]})
+    assert "&lt;b&gt;x&lt;/b&gt;" in cell and "<b>" not in cell
+    assert "2.5\u00a0GHz" in cell  # a frequency under a *_hz key keeps its unit
+
+
+def test_flagged_points_are_marked_on_the_nf_figure_and_explained(record):
+    flagged = [p for p in record.points if p.flags]
+    assert flagged  # the shared record has one EXCESS_SCATTER point
+    axes = nf_figure(record).axes[0]
+    handles, labels = axes.get_legend_handles_labels()
+    (mark,) = [h for h, t in zip(handles, labels, strict=True) if t.startswith("flagged")]
+    assert labels[handles.index(mark)].endswith(f": {len(flagged)} point")
+    scale, _ = frequency_scale([p.freq_hz for p in record.points])
+    offsets = mark.get_offsets()
+    assert np.allclose(offsets[:, 0], [p.freq_hz / scale for p in flagged])
+    assert np.all(offsets[:, 1] > [p.nf_db for p in flagged])  # above the point, not on it
+    words = html.unescape(render_report(record, {}))
+    assert "open triangle (\u25bd) above the point marks a flagged point" in words
+    clean = record.model_copy(
+        update={"points": [p.model_copy(update={"flags": []}) for p in record.points]}
+    )
+    labels = nf_figure(clean).axes[0].get_legend_handles_labels()[1]
+    assert not [t for t in labels if t.startswith("flagged")]
+
+
+def test_equal_budget_contributions_both_stay_visible():
+    twins = make_record(contributions=2)
+    budgets = [
+        {**b, "contributions": [*b["contributions"], {**b["contributions"][0], "name": "twin"}]}
+        for b in twins.budgets
+    ]
+    twins = twins.model_copy(update={"budgets": budgets})
+    series = budget_series(twins)
+    assert coincident_with(series, ["ENR"], "twin") == "ENR"
+    assert coincident_with(series, ["jitter <hot>"], "twin") is None
+    lines = {line.get_label(): line for line in budget_figure(twins).axes[0].get_lines()}
+    twin = lines["twin (equal to ENR)"]
+    assert twin.get_linestyle() == "--" and twin.get_markerfacecolor() == "none"
+    assert lines["ENR"].get_linestyle() == "-"
+
+
+def test_series_colours_are_the_cited_okabe_ito_palette():
+    """The source named beside SERIES: Okabe & Ito (2008), as matplotlib ships it."""
+    import matplotlib
+    from matplotlib.colors import to_hex
+
+    from noisebench.results.plots import SERIES
+
+    sequences = matplotlib.color_sequences
+    if "okabe_ito" not in sequences:  # matplotlib < 3.10: the palette's published values
+        published = {"#e69f00", "#56b4e9", "#009e73", "#f0e442", "#0072b2", "#d55e00", "#cc79a7"}
+    else:
+        published = {to_hex(c) for c in sequences["okabe_ito"]}
+    assert set(SERIES) <= published

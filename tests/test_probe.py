@@ -42,6 +42,8 @@ def test_probe_with_the_right_profile_is_all_ok(server):
         assert "OFF at connect" in checks["averaging on/off"].detail
         assert checks["abort"].status == "note" and "abort = false" in checks["abort"].detail
         assert "offers noise_density" in checks["marker"].detail
+        assert checks["averages max"].detail.startswith("10000 per trace (10001 refused)")
+        assert "big-endian" in checks["trace format"].detail
 
 
 def test_probe_names_the_profile_lines_to_change():

@@ -165,7 +165,7 @@ def test_init_sequence_after_connect_and_after_a_reconnect():
         sa.set_sim_path("dut")
 
 
-def ConnectionError_():  # noqa: N802 - reads like the exception it makes
+def ConnectionError_():  # reads like the exception it makes
     from noisebench.drivers.transport import ConnectionLost
 
     return ConnectionLost("peer closed", command="SIM:PATH DUT")

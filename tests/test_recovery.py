@@ -123,6 +123,9 @@ freqs_hz = [1.0e9, 1.5e9, 2.0e9]
 table = "enr.csv"
 [corrections]
 source_temperature_k = 296.0
+[switching]
+# per-group order: the outage after the first point finds the others still to be read
+mode = "per_group"
 [output]
 plots = false
 report = false

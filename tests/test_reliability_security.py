@@ -15,6 +15,7 @@ from pathlib import Path
 
 import pytest
 from _production import exact_sim, session_on, small_plan
+from markupsafe import escape
 
 from noisebench.errors import InputError, NoisebenchError
 from noisebench.frontends import cli
@@ -48,7 +49,8 @@ def test_serve_defaults_to_loopback_and_prints_loopback_resources():
     code = serve.main(["--port", "0"], out=out, stop_event=stop)
     assert code == 0
     resources = [line.split()[-1] for line in out.getvalue().splitlines() if "::SOCKET" in line]
-    assert len(resources) == 3 and all("::127.0.0.1::" in r for r in resources)
+    # analyzer, generator, supply and the LO generator of a frequency-converting DUT
+    assert len(resources) == 4 and all("::127.0.0.1::" in r for r in resources)
 
 
 @pytest.mark.parametrize("host", ["0.0.0.0", "", "192.0.2.10", "example.org", "::"])
@@ -125,7 +127,7 @@ def test_a_plan_with_hostile_names_writes_only_inside_its_output_folder(tmp_path
     assert outside == [tmp_path / "work", work, path]  # nothing escaped
     html = (folder / "report.html").read_text(encoding="utf-8")
     assert "<script>" not in html  # escaped, never live
-    assert "&lt;script&gt;alert(&#x27;nb&#x27;)&lt;/script&gt;" in html
+    assert str(escape(SCRIPT)) in html  # as the report's template engine escapes it
     info = json.loads((folder / "run.json").read_text(encoding="utf-8"))
     assert info["dut_id"] == f"{CLIMB}/{SCRIPT}"  # the data keep the name exactly
 

@@ -44,7 +44,7 @@ FREQS_HZ = [float(f) for f in np.linspace(1e9, 2e9, 6)]
 
 
 def make_point(freq_hz: float, nf_db: float = 2.0, **extra) -> PointResult:
-    """A Y-factor point whose Te follows Te = T0 (F - 1) (reference.md §2)."""
+    """A Y-factor point whose Te follows Te = T0 (F - 1) (docs/references.md §2)."""
     te_k = T0_K * (10 ** (nf_db / 10) - 1)
     fields = dict(
         freq_hz=freq_hz,

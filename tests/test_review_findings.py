@@ -18,7 +18,7 @@ from noisebench.science.methods.yfactor import calibrate_point, y_factor_point
 from noisebench.science.uncertainty import UncertaintyInputs, budget_for_point
 
 K_B = scipy.constants.k  # scipy.constants
-T0 = 290.0  # reference.md §1 (IRE/IEEE Std 161)
+T0 = 290.0  # docs/references.md §1 (IRE/IEEE Std 161)
 FREQ_HZ = 2e9
 
 
@@ -45,7 +45,7 @@ def _plan_with_table(tmp_path, table: EnrTable, source_temperature_k: float):
 
 def test_sequencer_uses_the_enr_reference_the_table_declares(tmp_path):
     # An ENR table whose header says "# enr_reference: absolute" defines Th = T0 (ENR + 1)
-    # whatever the source's physical temperature (reference.md §5, general form). Before the
+    # whatever the source's physical temperature (docs/references.md §5, general form). Before the
     # fix the sequencer ignored the header and used Th = T0 ENR + Tc.
     tc = 300.0
     enr_db = 15.0
@@ -57,12 +57,12 @@ def test_sequencer_uses_the_enr_reference_the_table_declares(tmp_path):
     seq.corrections = resolve_corrections(plan, session)
     assert seq.corrections.enr_reference == "absolute"
 
-    th = T0 * (10 ** (enr_db / 10) + 1.0)  # reference.md §5: ENR = (Th - T0)/T0
+    th = T0 * (10 ** (enr_db / 10) + 1.0)  # docs/references.md §5: ENR = (Th - T0)/T0
     te2 = 4306.19  # any system noise temperature
     hot, cold = _density(K_B * (th + te2)), _density(K_B * (tc + te2))
     cal = seq._system_point(FREQ_HZ, hot, cold)
     assert cal.enr_reference == "absolute"
-    # reference.md §5: Te = (Th - Y Tc)/(Y - 1), exact for any Th, Tc
+    # docs/references.md §5: Te = (Th - Y Tc)/(Y - 1), exact for any Th, Tc
     assert cal.te_k == pytest.approx(te2, rel=1e-9)
 
 
@@ -76,7 +76,7 @@ def test_tables_without_enr_reference_keep_the_common_t0_convention(tmp_path):
 
 
 def _y_point(u_enr_db):
-    # reference.md §5 worked example: ENR 15 dB, G1 = 20 dB, NF1 = 2 dB, NF2 = 12 dB, Tc = T0
+    # docs/references.md §5 worked example: ENR 15 dB, G1 = 20 dB, NF1 = 2 dB, NF2 = 12 dB, Tc = T0
     enr = 10**1.5
     th, g1 = T0 * enr + T0, 100.0
     te1, te2 = T0 * (10**0.2 - 1), T0 * (10**1.2 - 1)
@@ -108,7 +108,7 @@ def test_enr_table_without_uncertainty_gives_none_not_zero(tmp_path):
 
 def test_unknown_enr_uncertainty_is_listed_as_omitted_in_the_budget():
     point, cal = _y_point(None)
-    assert point.nf_db == pytest.approx(2.0, abs=1e-9)  # reference.md §5
+    assert point.nf_db == pytest.approx(2.0, abs=1e-9)  # docs/references.md §5
     assert point.notes["u_enr_db"] is None
     budget = budget_for_point(point, UncertaintyInputs(), calibration=cal)
     names = [c.name for c in budget.contributions]
@@ -120,7 +120,7 @@ def test_known_enr_uncertainty_still_enters_the_budget():
     point, cal = _y_point(0.10)
     budget = budget_for_point(point, UncertaintyInputs(), calibration=cal)
     enr = budget.contribution("ENR")
-    # reference.md §9: dNF/dENR = 0.9937 dB/dB for the §5 example (same source, correlated)
+    # docs/references.md §9: dNF/dENR = 0.9937 dB/dB for the §5 example (same source, correlated)
     assert enr.contribution_db == pytest.approx(0.0994, abs=5e-5)
     assert not any(o.startswith("ENR") for o in budget.omitted)
     assert math.isclose(point.notes["u_enr_db"], 0.10)
@@ -136,7 +136,7 @@ def _gain_point(dut_gain_db: float, loss_in_db: float, loss_out_db: float, **gai
 
     ts, te_dut, te_sa = 296.0, T0 * (10**0.2 - 1), T0 * (10**1.2 - 1)
     l_in, l_out, g = 10 ** (0.5 / 10), 10 ** (1.0 / 10), 100.0
-    t = ts / l_in + (1 - 1 / l_in) * ts  # reference.md §3: a matched loss at Tp
+    t = ts / l_in + (1 - 1 / l_in) * ts  # docs/references.md §3: a matched loss at Tp
     t = (t + te_dut) * g
     t = t / l_out + (1 - 1 / l_out) * ts
     dut, floor = _density(K_B * (t + te_sa)), _density(K_B * (ts + te_sa))

@@ -305,3 +305,84 @@ def test_module_factory_address(tmp_path, monkeypatch):
         open_registered("lab_rx_for_test:Nope")
     with pytest.raises(InputError, match="cannot import 'no_such_module_xyz'"):
         open_registered("no_such_module_xyz:Rx")
+
+
+def test_real_sampling_receiver_matches_the_bench_truth():
+    sim = SimulatedBench.from_scenario("demo-lna", seed=3, ideal=True)
+    rx = SimSampleReceiver(sim, ReceiverSpec(complex_samples=False, sample_rate_hz=4e6), seed=3)
+    analyzer = SampledAnalyzer(rx)
+    analyzer.configure(_request(averages=400))
+    sim.set_path(Path.THROUGH)
+    for hot in (False, True):
+        sim.noise_source.set_hot(hot)
+        sim.clock.advance(1.0)
+        d = estimate_densities(analyzer.acquire_trace(), [F_HZ], 390e3)[0]
+        name = "hot" if hot else "cold"
+        expected = sim.truth(F_HZ)[f"density_through_{name}_w_per_hz"][0]
+        expected += BOLTZMANN * rx.spec.te_k()
+        assert abs(d.density_w_per_hz - expected) < 4.5 * d.u_density_w_per_hz
+        assert d.excluded_freq_hz == []  # a real capture has no LO line in its band
+
+
+def test_image_of_a_tone_is_removed_by_the_correction():
+    # a tone at +100 kHz through a receiver with 26 dB image rejection: its image at -100 kHz
+    # stands far above the noise before the correction and is gone after it
+    rng = np.random.default_rng(9)
+    fs, n = 1e6, 1 << 18
+    t = np.arange(n) / fs
+    nu = 0.05 * np.exp(0.3j)
+    s = (rng.standard_normal(n) + 1j * rng.standard_normal(n)) * math.sqrt(1e-4 / 2)
+    s = s + 0.1 * np.exp(2j * np.pi * 100e3 * t)  # tone at -20 dBFS
+    x = s + nu * np.conj(s)
+
+    class Src(_Fixed):
+        def capture(self, request):
+            return SampleBlock(
+                samples=x[: request.samples], sample_rate_hz=fs, center_hz=50e6, scale_w_per_fs2=1.0
+            )
+
+    image_hz = 50e6 - 100e3
+    levels = {}
+    for corrected in (False, True):
+        analyzer = SampledAnalyzer(Src(), iq_correction=corrected)
+        analyzer.configure(_request(span=500e3, rbw=2e3, averages=300, center=50e6))
+        trace = analyzer.acquire_trace()
+        k = int(np.argmin(np.abs(trace.freq_hz - image_hz)))
+        floor = float(np.median(trace.values))
+        levels[corrected] = trace.values[k - 2 : k + 3].max() / floor
+    # the image line: |nu|^2 0.1^2 / (ENBW 1.5 bins * 1377 Hz) = 1.2e-8 /Hz over a floor of
+    # 1e-4 / fs = 1e-10 /Hz: about 120x
+    assert levels[False] > 60
+    assert levels[True] < 2.0  # noise only (a bin's maximum of five stays below 2x the median)
+
+
+def test_tone_scale_calibration_recovers_the_receiver_scale(sim_rx):
+    from noisebench.sims.samples import calibrate_tone_scale
+
+    _, rx = sim_rx
+    cal = calibrate_tone_scale(rx, 1.5e9, -60.0, u_level_db=0.1)
+    # the simulated receiver's true scale (its spec); the noise part of u is tiny at 58 dB SNR
+    assert cal.scale_w_per_fs2 == pytest.approx(rx.spec.scale_w_per_fs2, rel=5 * cal.u_rel)
+    assert cal.u_db == pytest.approx(math.hypot(4.3429 * cal.u_rel, 0.1), rel=1e-3)
+    analyzer = SampledAnalyzer(rx, scale=cal)
+    assert analyzer.level_uncertainty_db == cal.u_db
+    assert analyzer.full_scale_dbm == pytest.approx(-45.0, abs=0.01)
+
+
+def test_noise_pair_scale_calibration(sim_rx):
+    from noisebench.sampled import scale_from_noise_pair
+    from noisebench.sampled.source import CaptureRequest
+
+    sim, rx = sim_rx
+    sim.set_path(Path.THROUGH)
+    truth = sim.truth(F_HZ)
+    blocks = {}
+    for hot in (False, True):
+        sim.noise_source.set_hot(hot)
+        sim.clock.advance(1.0)
+        blocks[hot] = rx.capture(CaptureRequest(F_HZ, 0.0, rx.spec.sample_rate_hz, 1 << 20))
+    t_hot = truth["density_through_hot_w_per_hz"][0] / BOLTZMANN
+    t_cold = truth["density_through_cold_w_per_hz"][0] / BOLTZMANN
+    cal = scale_from_noise_pair(blocks[True], blocks[False], t_hot, t_cold, usable_fraction=0.7)
+    assert cal.scale_w_per_fs2 == pytest.approx(rx.spec.scale_w_per_fs2, rel=5 * cal.u_rel)
+    assert cal.u_db is None  # the temperatures' uncertainty was not given: unknown, not zero

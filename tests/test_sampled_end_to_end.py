@@ -182,6 +182,8 @@ source_temperature_k = "bench"
 output_loss = "output_loss.csv"
 [expect]
 dut_gain_db = 20.0
+[uncertainty]
+linearity_db = 0.02
 [output]
 folder = "{out}"
 """
@@ -224,6 +226,11 @@ def test_recordings_gain_method_and_database_rows(recordings, tmp_path):
     plan = _write_plan(folder / "gain.toml", RECORDED_GAIN.format(out=tmp_path / "runs", query=""))
     assert _run_cli(["run", plan]) == 0
     run = _only_run(tmp_path / "runs")
+    # the budget takes the receiver scale's own uncertainty as the absolute-level term
+    results = json.loads((run / "results.json").read_text())
+    for budget in results["budgets"]:
+        names = [c["name"] for c in budget["contributions"]]
+        assert "absolute amplitude" in names, names
     db = tmp_path / "nb.sqlite"
     assert _run_cli(["db", "import", run, "--db", f"sqlite:///{db}"]) == 0
     with sqlite3.connect(db) as con:

@@ -133,6 +133,7 @@ def test_identity_of_each_instrument(sim_server, connect):
         "analyzer": bench.analyzer.identity,
         "generator": bench.generator.identity,
         "supply": bench.supply.identity,
+        "lo": bench.lo_generator.identity,
     }
     for name in INSTRUMENTS:
         c = connect(sim_server, name)
@@ -143,7 +144,7 @@ def test_identity_of_each_instrument(sim_server, connect):
     assert sim_server.resource("analyzer") == (
         f"TCPIP0::127.0.0.1::{sim_server.ports['analyzer']}::SOCKET"
     )
-    assert len(set(sim_server.ports.values())) == 3
+    assert len(set(sim_server.ports.values())) == 4
 
 
 def test_crlf_and_blank_lines_are_accepted(client):
@@ -667,9 +668,14 @@ def test_fixed_ports_are_consecutive():
             break
         except OSError:
             continue
-    assert server is not None, "no three consecutive free ports found in 20 tries"
+    assert server is not None, "no four consecutive free ports found in 20 tries"
     try:
-        assert server.ports == {"analyzer": base, "generator": base + 1, "supply": base + 2}
+        assert server.ports == {
+            "analyzer": base,
+            "generator": base + 1,
+            "supply": base + 2,
+            "lo": base + 3,
+        }
     finally:
         server.stop()
 
@@ -822,7 +828,7 @@ def test_fault_push_error(sim_server, connect):
 
 
 def test_fault_reboot_resets_settings_and_drops_connections(sim_server, connect):
-    a, g, s = (connect(sim_server, n) for n in INSTRUMENTS)
+    a, g, s = (connect(sim_server, n) for n in INSTRUMENTS[:3])
     a.write("FREQ:CENT 2e9;:FORM REAL,32;:SIM:PATH THR;:FOO")
     _acquire(a, points=11)
     g.write("OUTP ON")
@@ -830,7 +836,7 @@ def test_fault_reboot_resets_settings_and_drops_connections(sim_server, connect)
     assert a.query("*OPC?") == g.query("*OPC?") == s.query("*OPC?") == "1"
     sim_server.faults.reboot()
     assert a.sees_eof() and g.sees_eof() and s.sees_eof()
-    a, g, s = (connect(sim_server, n) for n in INSTRUMENTS)
+    a, g, s = (connect(sim_server, n) for n in INSTRUMENTS[:3])
     # settings back to power-on; the cables (simulated path) stay where the operator put them
     assert a.query("FREQ:CENT?;:FORM?;:SIM:PATH?") == "1000000000;ASC;THR"
     assert a.query("*ESR?") == "128"  # power-on bit, and nothing else
@@ -932,7 +938,7 @@ def test_console_entry_prints_resources_and_stops():
     text = out.getvalue()
     for name in INSTRUMENTS:
         assert f"  {name}" in text
-    assert text.count("TCPIP0::127.0.0.1::") == 3
+    assert text.count("TCPIP0::127.0.0.1::") == 4
     assert "stopped." in text
     assert _sim_threads() == []
 

@@ -243,7 +243,7 @@ def test_generator_refused_above_the_dut_input_limit(tmp_path):
 
 
 def test_pre_switch_power_estimate_matches_reference_example():
-    # reference.md §11: ENR 15 dB source, G = 30 dB over 10 GHz -> about -28.76 dBm
+    # docs/references.md §11: ENR 15 dB source, G = 30 dB over 10 GHz -> about -28.76 dBm
     # (a DUT with NF 2 dB, Te = 290 (10^0.2 - 1) K, recomputed here)
     th = hot_source_temperature_k(15.0, 290.0)
     te = 290.0 * (10**0.2 - 1)
@@ -425,10 +425,11 @@ def test_progress_lines_name_point_nf_and_time_left(tmp_path, caplog):
 
 def test_forecast_matches_the_measured_averaging(tmp_path):
     from noisebench.running.forecast import forecast_plan
+    from noisebench.sims.forecast_model import SimulatedBenchModel
 
     for method in ("y_factor", "gain"):
         plan = make_plan(method, freqs_hz=[1.5e9, 2e9, 2.5e9, 3e9], target=0.05)
-        forecast = forecast_plan(plan, sim=ideal_sim(seed=21))
+        forecast = forecast_plan(plan, model=SimulatedBenchModel(ideal_sim(seed=21)))
         _, record = _run(plan, ideal_session(plan, seed=21), tmp_path, method)
         for f, p in zip(forecast.points, record.points, strict=True):
             assert 0.045 < f.u_nf_db <= 0.05 and f.limited_by is None  # averages are whole
@@ -475,7 +476,7 @@ def test_live_progress_only_on_an_interactive_terminal(monkeypatch):
 
 def test_declared_gain_alone_is_no_upper_bound_of_the_hot_power():
     # A DUT adds k*Te*G*B of its own: with NF 10 dB behind an ENR 6 dB source the hot power is
-    # 10*log10(1 + Te/Th) = 4.48 dB above the gain-only figure (reference.md §1-§2 formulas).
+    # 10*log10(1 + Te/Th) = 4.48 dB above the gain-only figure (docs/references.md §1-§2 formulas).
     import math
 
     from noisebench.running.safety import InputLimits, PowerGuard, total_noise_power_dbm

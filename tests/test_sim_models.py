@@ -171,7 +171,7 @@ def test_filter_shape_and_fft_window_are_reported():
     bench.analyzer.set_filter_shape("synchronous", poles=4)
     s = bench.analyzer.configure(request())
     assert s.rbw_filter == RbwFilter(kind=FilterKind.SYNCHRONOUS, poles=4)
-    # reference.md §6a: 4 synchronously tuned poles have ENBW = 1.128499 x B3
+    # docs/references.md §6a: 4 synchronously tuned poles have ENBW = 1.128499 x B3
     assert s.enbw_hz == pytest.approx(1.128499e6, rel=1e-6)
     s = bench.analyzer.configure(request(mode=SweepMode.FFT, rbw_hz=1e3))
     assert s.rbw_filter.kind is FilterKind.FFT and s.rbw_filter.window == "hann"
@@ -188,7 +188,7 @@ def test_filter_shape_and_fft_window_are_reported():
     ("span", "rbw", "sweep"), [(1e9, 1e6, 2.5e-3), (100e6, 100e3, 25e-3), (10e6, 1e3, 25.0)]
 )
 def test_swept_sweep_time_follows_k_span_over_rbw_squared(span, rbw, sweep):
-    # common practice, reference.md §8: ST = 2.5 * span / RBW^2
+    # common practice, docs/references.md §8: ST = 2.5 * span / RBW^2
     bench = SimulatedBench.from_scenario("demo-lna", seed=0)
     s = bench.analyzer.configure(request(span_hz=span, rbw_hz=rbw))
     assert s.sweep_time_s == pytest.approx(sweep)
@@ -197,7 +197,7 @@ def test_swept_sweep_time_follows_k_span_over_rbw_squared(span, rbw, sweep):
 def test_sweep_time_vbw_minimum_and_requested():
     bench = SimulatedBench.from_scenario("demo-lna", seed=0)
     s = bench.analyzer.configure(request(span_hz=100e6, rbw_hz=100e3, vbw_hz=10e3))
-    assert s.sweep_time_s == pytest.approx(2.5 * 100e6 / (100e3 * 10e3))  # reference.md §8
+    assert s.sweep_time_s == pytest.approx(2.5 * 100e6 / (100e3 * 10e3))  # docs/references.md §8
     s = bench.analyzer.configure(request(span_hz=1e6, rbw_hz=1e6))
     assert s.sweep_time_s == pytest.approx(1e-3)  # the analyzer's shortest sweep
     s = bench.analyzer.configure(request(span_hz=1e6, rbw_hz=1e6, sweep_time_s=0.2))
@@ -235,7 +235,7 @@ def test_acquisition_advances_the_clock_by_the_expected_time():
 def test_detector_samples_from_sweep_time_and_statistical_bandwidth():
     bench = SimulatedBench.from_scenario("demo-lna", seed=0)
     s = bench.analyzer.configure(request(span_hz=0.0, sweep_time_s=10e-3, detector=Detector.RMS))
-    bstat = RbwFilter().stat_bw_hz(1e6)  # reference.md §6a: 1.505384 x B3
+    bstat = RbwFilter().stat_bw_hz(1e6)  # docs/references.md §6a: 1.505384 x B3
     assert s.detector_samples == round(bstat * 10e-3 / 101)
     s = bench.analyzer.configure(request(span_hz=0.0, sweep_time_s=10e-3, detector=Detector.SAMPLE))
     assert s.detector_samples == 1
@@ -255,7 +255,7 @@ def test_truth_of_the_dut_follows_its_tables():
     t = bench.truth(f)
     assert t["nf_db"][0] == pytest.approx(spec.nf_db[2])
     assert t["nf_db"][1] == pytest.approx((spec.nf_db[2] + spec.nf_db[3]) / 2)  # linear in dB
-    assert t["te_k"] == pytest.approx(T0 * (10 ** (t["nf_db"] / 10) - 1))  # reference.md §2
+    assert t["te_k"] == pytest.approx(T0 * (10 ** (t["nf_db"] / 10) - 1))  # docs/references.md §2
     assert t["gain_db"][0] == pytest.approx(spec.gain_db[2])
     with pytest.raises(InputError) as err:
         bench.truth(10e9)
@@ -266,14 +266,15 @@ def test_passive_dut_noise_figure_follows_its_loss_and_temperature():
     bench = SimulatedBench.from_scenario("attenuator-6db", seed=0)
     t = bench.truth(np.array([1e9, 3e9]))
     loss = 10 ** (-t["gain_db"] / 10)
-    # reference.md §3: F = 1 + (L - 1) Tp / T0
+    # docs/references.md §3: F = 1 + (L - 1) Tp / T0
     assert t["nf_db"] == pytest.approx(10 * np.log10(1 + (loss - 1) * 296.0 / T0))
 
 
 def test_hot_temperature_uses_enr_over_t0_plus_physical_temperature():
     bench = clean_bench()
     t = bench.truth(2e9)
-    # reference.md §5 (common assumption): Th = T0 * ENR + Tc, with Tc the physical temperature
+    # docs/references.md §5 (common assumption): Th = T0 * ENR + Tc, with Tc the physical
+    # temperature
     assert t["cold_k"][0] == 296.5
     assert t["hot_k"][0] == pytest.approx(T0 * 10 ** (t["enr_db"][0] / 10) + 296.5)
     assert t["enr_db"][0] == pytest.approx(15.06)
@@ -301,10 +302,10 @@ def test_displayed_densities_combine_by_friis():
     t = bench.truth(f)
     an = bench.scenario.analyzer
     f_sa = 10 ** (np.interp(f, an.freq_hz, an.nf_db) / 10)
-    te_sa = T0 * (f_sa - 1)  # reference.md §2
+    te_sa = T0 * (f_sa - 1)  # docs/references.md §2
     g = 10 ** (t["gain_db"] / 10)
     tc, te, amb = 296.5, t["te_k"], bench.scenario.ambient_k
-    # reference.md §3/§4: DUT output k (Tc + Te) G, plus the analyzer's own k Te_sa
+    # docs/references.md §3/§4: DUT output k (Tc + Te) G, plus the analyzer's own k Te_sa
     assert t["density_dut_cold_w_per_hz"] == pytest.approx(K_BOLTZMANN * (tc + te) * g)
     assert t["displayed_dut_cold_w_per_hz"] == pytest.approx(K_BOLTZMANN * ((tc + te) * g + te_sa))
     assert t["displayed_termination_cold_w_per_hz"] == pytest.approx(K_BOLTZMANN * (amb + te_sa))
@@ -322,7 +323,8 @@ def test_attenuation_raises_the_floor_db_for_db_and_preamp_lowers_it():
     for att, pre in ((0.0, False), (10.0, False), (20.0, False), (0.0, True)):
         bench.analyzer.configure(request(center_hz=3e9, attenuation_db=att, preamp=pre))
         nf[(att, pre)] = bench.truth(f)["analyzer_nf_db"][0]
-    # Friis (reference.md §3): attenuator L at ambient, then the mixer; preamp before the mixer
+    # Friis (docs/references.md §3): attenuator L at ambient, then the mixer; preamp before the
+    # mixer
     amb = bench.scenario.ambient_k
     for att in (10.0, 20.0):
         loss = 10 ** (att / 10)
@@ -346,7 +348,7 @@ def test_cables_cascade_by_friis_in_the_system_figure():
     )
     amb = bench.scenario.ambient_k
     g = 10 ** (t["gain_db"] / 10)
-    # reference.md §3: Te = Te1 + Te2/G1 + Te3/(G1 G2) + ..., a loss has Te = (L - 1) Tp
+    # docs/references.md §3: Te = Te1 + Te2/G1 + Te3/(G1 G2) + ..., a loss has Te = (L - 1) Tp
     te = (
         (l_in - 1) * amb
         + t["te_k"] * l_in
@@ -357,7 +359,7 @@ def test_cables_cascade_by_friis_in_the_system_figure():
 
 
 def test_mismatch_factor_limits():
-    # reference.md §9: limits 20 log10(1 +/- |Gs||Gl|) on the transferred power
+    # docs/references.md §9: limits 20 log10(1 +/- |Gs||Gl|) on the transferred power
     ga, gb = 0.1 * np.exp(1j * np.linspace(0, 2 * np.pi, 721)), 0.2
     m_db = 10 * np.log10(mismatch_factor(ga, gb))
     assert m_db.max() == pytest.approx(-20 * np.log10(1 - 0.02), abs=1e-4)
@@ -373,7 +375,7 @@ def test_source_reflection_scales_the_excess_noise_into_a_mismatched_analyzer():
     t = bench.truth(2e9)
     amb = bench.scenario.ambient_k
     # delivered excess relative to a matched interface: 1 / |1 - Gs Gl|^2, here 1 / 0.94^2,
-    # inside the limits 1 / (1 -/+ |Gs||Gl|)^2 (reference.md §9)
+    # inside the limits 1 / (1 -/+ |Gs||Gl|)^2 (docs/references.md §9)
     expected = amb + (t["hot_k"][0] - amb) / (1 - 0.2 * 0.3) ** 2
     assert t["density_through_hot_w_per_hz"][0] == pytest.approx(K_BOLTZMANN * expected)
     cold = bench.truth(2e9)["density_through_cold_w_per_hz"][0]
@@ -621,7 +623,7 @@ def test_noise_density_marker_reads_the_true_density_with_any_averaging():
     r = bench.analyzer.read_marker(2e9, MarkerKind.NOISE_DENSITY, band_hz=10e6)
     expected = 10 * np.log10(bench.truth(2e9)["displayed_termination_cold_w_per_hz"][0] / 1e-3)
     assert r.instrument_corrected and r.kind is MarkerKind.NOISE_DENSITY
-    # radiometer equation (reference.md §7): band / B_stat independent cells per sweep
+    # radiometer equation (docs/references.md §7): band / B_stat independent cells per sweep
     looks = 10e6 / s.rbw_filter.stat_bw_hz(s.rbw_hz) * s.averages
     c_db = 10 / np.log(10)
     assert r.value_db == pytest.approx(expected, abs=5 * c_db / np.sqrt(looks))
@@ -637,7 +639,7 @@ def test_noise_density_marker_reads_the_true_density_with_any_averaging():
         )
     )
     r = bench.analyzer.read_marker(2e9, MarkerKind.NOISE_DENSITY, band_hz=10e6)
-    # a noise marker removes the detector bias it knows (reference.md §6b: log averaging reads
+    # a noise marker removes the detector bias it knows (docs/references.md §6b: log averaging reads
     # 10 log10(e) gamma = 2.51 dB low) and says so; log samples scatter pi / sqrt(6)
     assert r.instrument_corrected
     tol = 5 * c_db * (np.pi / np.sqrt(6)) / np.sqrt(looks)

@@ -25,7 +25,7 @@ from noisebench.sims.noisegen import (
     generate_trace,
 )
 
-C_DB = 10.0 / math.log(10.0)  # reference.md: c_dB = 10 / ln 10
+C_DB = 10.0 / math.log(10.0)  # docs/references.md: c_dB = 10 / ln 10
 GAUSS = RbwFilter(kind=FilterKind.GAUSSIAN)
 SYNC4 = RbwFilter(kind=FilterKind.SYNCHRONOUS, poles=4)
 HANN = RbwFilter(kind=FilterKind.FFT, window="hann")
@@ -57,7 +57,7 @@ def draw(
 
 
 def test_log_averaged_noise_reads_euler_gamma_low():
-    # reference.md §6b: E[10 log10 X] = 10 log10(mu) - 10 log10(e) * gamma for exponential X
+    # docs/references.md §6b: E[10 log10 X] = 10 log10(mu) - 10 log10(e) * gamma for exponential X
     n, p = 64, 20_000
     values_db = 10 * np.log10(draw(n, p, scale=AveragingScale.LOG_POWER))
     expected = -10 * np.log10(np.e) * np.euler_gamma  # -2.5068 dB
@@ -71,7 +71,7 @@ def test_log_averaged_noise_reads_euler_gamma_low():
 
 @pytest.mark.parametrize(("looks", "exact"), [(10, True), (10, False), (100, False)])
 def test_log_of_k_sample_power_means_follows_digamma(looks, exact):
-    # reference.md §6b: bias c_dB (psi(k) - ln k): -0.2208 dB (k=10), -0.0218 dB (k=100)
+    # docs/references.md §6b: bias c_dB (psi(k) - ln k): -0.2208 dB (k=10), -0.0218 dB (k=100)
     n, p = 16, 20_000
     values_db = 10 * np.log10(
         draw(n, p, looks=looks, detector=Detector.RMS, scale=AveragingScale.LOG_POWER, exact=exact)
@@ -95,7 +95,8 @@ def _squared_mean_moments(n: int) -> tuple[float, float]:
 
 @pytest.mark.parametrize("n", [4, 64])
 def test_voltage_averaging_reads_pi_over_4_plus_finite_n_term(n):
-    # reference.md §6b: envelope averaging reads 10 log10(pi/4) = -1.0491 dB for many averages;
+    # docs/references.md §6b: envelope averaging reads 10 log10(pi/4) = -1.0491 dB for many
+    # averages;
     # for n averages E[(mean V)^2] = P (pi/4 + (1 - pi/4)/n)
     p = 40_000
     values = draw(n, p, scale=AveragingScale.VOLTAGE)
@@ -117,7 +118,8 @@ def test_voltage_averaging_reads_pi_over_4_plus_finite_n_term(n):
     ],
 )
 def test_power_averaged_scatter_follows_one_over_sqrt_n(n, looks, detector, exact):
-    # reference.md §6c: linear averaging of M independent power samples: relative std 1/sqrt(M)
+    # docs/references.md §6c: linear averaging of M independent power samples: relative std
+    # 1/sqrt(M)
     p = 20_000
     values = draw(n, p, looks=looks, detector=detector, exact=exact)
     m = n * looks
@@ -245,7 +247,7 @@ def test_simulated_noise_power_per_point_is_density_times_enbw(shape, mode):
     trace = bench.analyzer.acquire_trace()
     density = bench.truth(trace.freq_hz)["displayed_termination_cold_w_per_hz"]
     ratio = dbm_to_w(trace.values) / (density * s.rbw_hz)
-    expected = _quad_enbw(s.rbw_filter)  # reference.md §6a: 1.064467 / 1.128499 / Hann
+    expected = _quad_enbw(s.rbw_filter)  # docs/references.md §6a: 1.064467 / 1.128499 / Hann
     # independent points (spacing 3.3 RBW): 201 * 200 exponential samples
     assert ratio.mean() == pytest.approx(expected, rel=5 / math.sqrt(201 * 200))
     assert s.enbw_hz / s.rbw_hz == pytest.approx(expected, rel=1e-4)
@@ -274,7 +276,8 @@ def test_cw_tone_swept_across_the_filter_integrates_to_the_enbw(shape, mode):
     p = dbm_to_w(bench.analyzer.acquire_trace().values)
     spacing = s.span_hz / (s.points - 1)
     enbw_measured = float(np.sum(p)) * spacing / 1e-6  # tone: -30 dBm = 1e-6 W at the peak
-    # the filter shape traced by the tone integrates to ENBW (reference.md §6a); the noise adds
+    # the filter shape traced by the tone integrates to ENBW (docs/references.md §6a); the noise
+    # adds
     # density * ENBW per point, ~1e-11 of the tone here
     assert enbw_measured / s.rbw_hz == pytest.approx(_quad_enbw(s.rbw_filter), rel=2e-3)
     assert p.max() == pytest.approx(1e-6, rel=0.01)
@@ -301,11 +304,11 @@ def test_dut_noise_plus_analyzer_floor_combine_as_friis_says():
     te = 290 * (10 ** (np.interp(3e9, dut.freq_hz, dut.nf_db) / 10) - 1)
     te_sa = 290 * (10 ** (np.interp(3e9, an.freq_hz, an.nf_db) / 10) - 1)
     tc, amb = 296.5, bench.scenario.ambient_k
-    # reference.md §3/§4: N_m = k ((Tc + Te) G + Te_SA), N_f = k (T_amb + Te_SA)
+    # docs/references.md §3/§4: N_m = k ((Tc + Te) G + Te_SA), N_f = k (T_amb + Te_SA)
     rel = 5 / math.sqrt(101 * 2000)
     assert n_meas == pytest.approx(K_BOLTZMANN * ((tc + te) * g + te_sa), rel=rel)
     assert n_floor == pytest.approx(K_BOLTZMANN * (amb + te_sa), rel=rel)
-    # exact floor correction (reference.md §4): N_m - N_f + k T_amb = k (Tc + Te) G
+    # exact floor correction (docs/references.md §4): N_m - N_f + k T_amb = k (Tc + Te) G
     n_dut = n_meas - n_floor + K_BOLTZMANN * amb
     u = math.hypot(n_meas, n_floor) / math.sqrt(101 * 2000)
     assert n_dut == pytest.approx(K_BOLTZMANN * (tc + te) * g, abs=5 * u)
@@ -337,7 +340,7 @@ def test_reported_detector_samples_match_the_scatter():
 
 def _geometric_mean_moments(m: float) -> tuple[float, float]:
     """Mean and relative variance of the geometric mean of m unit-mean exponentials, exactly:
-    E[X^s] = Gamma(1 + s) for an exponential X (reference.md §6b)."""
+    E[X^s] = Gamma(1 + s) for an exponential X (docs/references.md §6b)."""
     mean = special.gamma(1 + 1 / m) ** m
     return mean, special.gamma(1 + 2 / m) ** m / mean**2 - 1
 
@@ -508,7 +511,7 @@ def test_methods_recover_the_true_nf_within_their_stated_uncertainty(
 
 
 def test_absolute_level_error_enters_the_gain_method_only():
-    # reference.md §4: an absolute level error passes 1:1 into the gain method's NF; the
+    # docs/references.md §4: an absolute level error passes 1:1 into the gain method's NF; the
     # Y-factor method works on ratios and does not see it
     error_db = 0.5
     gain_err, y_err, u_gain, u_y = [], [], [], []

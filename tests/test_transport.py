@@ -208,7 +208,7 @@ def test_ascii_values_parse_and_garbage_is_refused():
 
 
 def test_terminations_are_explicit_and_nagle_is_off(session):
-    # reference: ecosystem.md - pyvisa-py socket resources default to no read termination
+    # pyvisa-py documentation: socket resources default to no read termination
     assert session._res.read_termination == "\n"
     assert session._res.write_termination == "\n"
     assert session.query("*IDN?") == "test,peer,0,1"

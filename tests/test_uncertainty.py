@@ -1,6 +1,6 @@
 """Uncertainty budgets: GUM propagation, Monte Carlo, type-B conversions, mismatch, points.
 
-Reference values come from /work/shared/reference.md (§5 worked example, §7 jitter, §9 budget and
+Reference values come from docs/references.md (§5 worked example, §7 jitter, §9 budget and
 mismatch), the ``uncertainties`` package (linear propagation, independent implementation), the
 methods' own propagation (noisebench.science.methods) and closed-form statistics. Statistical
 tolerances
@@ -48,7 +48,7 @@ from noisebench.science.uncertainty import (
 )
 
 T0 = 290.0
-C_DB = 10.0 / math.log(10.0)  # dB per neper of power, reference.md intro
+C_DB = 10.0 / math.log(10.0)  # dB per neper of power, docs/references.md intro
 FREQ = 1e9
 
 
@@ -61,13 +61,13 @@ def _sd_of_sample_std(sigma: float, m: int, kurtosis: float) -> float:
 
 
 def _section5_densities(tc_k: float = T0) -> dict[str, float]:
-    """The four densities (W/Hz) of the reference.md §5 worked example, from the formulas.
+    """The four densities (W/Hz) of the docs/references.md §5 worked example, from the formulas.
 
     ENR 15 dB, Th = T0*ENR + Tc, DUT G1 = 20 dB and NF1 = 2 dB, analyzer NF2 = 12 dB.
     """
     th = T0 * 10**1.5 + tc_k
     g1 = 10**2.0
-    te1 = T0 * (10**0.2 - 1.0)  # reference.md §2
+    te1 = T0 * (10**0.2 - 1.0)  # docs/references.md §2
     te2 = T0 * (10**1.2 - 1.0)
     return {
         "hot_cal": BOLTZMANN * (th + te2),
@@ -101,7 +101,7 @@ SECTION9_INPUTS = dict(enr_db=0.10, cold_temperature_k=1.0, linearity_db=0.02)
 
 def test_section9_worked_budget_line_by_line():
     budget = _section9_budget(UncertaintyInputs(**SECTION9_INPUTS))
-    # reference.md §9 illustrative Y-factor budget (ENR fully correlated, same source)
+    # docs/references.md §9 illustrative Y-factor budget (ENR fully correlated, same source)
     expected = {
         "ENR": 0.0994,
         "cold temperature": -0.0094,
@@ -117,8 +117,8 @@ def test_section9_worked_budget_line_by_line():
     for name, value in expected.items():
         assert got[name] == pytest.approx(value, abs=5e-5), name  # table is rounded to 1e-4
     assert budget.contribution("ENR").sensitivity == pytest.approx(0.9937, abs=5e-5)
-    assert budget.nf_db == pytest.approx(2.0, abs=1e-9)  # reference.md §5: NF1 = 2.0000 dB
-    assert budget.u_combined_db == pytest.approx(0.1229, abs=5e-5)  # reference.md §9
+    assert budget.nf_db == pytest.approx(2.0, abs=1e-9)  # docs/references.md §5: NF1 = 2.0000 dB
+    assert budget.u_combined_db == pytest.approx(0.1229, abs=5e-5)  # docs/references.md §9
     assert budget.U_expanded_db == pytest.approx(0.2458, abs=1e-4)
     assert budget.k == 2.0 and budget.method == "gum"
     # JCGM 100:2008 §5.1.2 (uncorrelated): u_c is the root-sum-square of the lines
@@ -129,7 +129,7 @@ def test_section9_worked_budget_line_by_line():
 
 def test_section9_jitter_part_matches_section7():
     budget = _section9_budget(UncertaintyInputs())
-    # reference.md §7: 4 readings at 1 % with second-stage correction -> 0.0679 dB
+    # docs/references.md §7: 4 readings at 1 % with second-stage correction -> 0.0679 dB
     assert budget.u_combined_db == pytest.approx(0.0679, abs=5e-5)
     assert any("ENR" in o for o in budget.omitted)
 
@@ -145,7 +145,7 @@ def test_section9_monte_carlo_against_reference_run():
     budget = _section9_budget(inputs)
     mc = budget.monte_carlo
     assert mc is not None and mc.trials == 100_000
-    # reference.md §9: M = 1e6 (normal inputs): mean 1.99994, std 0.12301, [1.7585, 2.2413]
+    # docs/references.md §9: M = 1e6 (normal inputs): mean 1.99994, std 0.12301, [1.7585, 2.2413]
     ref_m, ref_std = 1_000_000, 0.12301
     sd_std = math.hypot(
         _sd_of_sample_std(ref_std, mc.trials, 3.0), _sd_of_sample_std(ref_std, ref_m, 3.0)
@@ -209,7 +209,7 @@ def test_gum_agrees_with_uncertainties_package():
     ref = _uncertainties_nf(15.0, 0.1, 12.0, 0.02)
     assert budget.nf_db == pytest.approx(ref.nominal_value, abs=1e-12)
     assert budget.u_combined_db == pytest.approx(ref.std_dev, rel=1e-8)  # uncertainties
-    # ecosystem.md: 3.283048 +/- 0.102253 dB
+    # the uncertainties package (linear propagation): 3.283048 +/- 0.102253 dB
     assert budget.nf_db == pytest.approx(3.283048, abs=5e-7)
     assert budget.u_combined_db == pytest.approx(0.102253, abs=5e-7)
     assert budget.model == "y_factor_uncorrected"
@@ -306,7 +306,7 @@ def test_uncorrected_jitter_matches_closed_form(enr_db, y_db, r_hot, r_cold):
         u_cold_w_per_hz=r_cold * cold,
         inputs=UncertaintyInputs(),
     )
-    # reference.md §7: sigma_F/F = Y/(Y-1) * sigma_Y/Y, Tc = T0
+    # docs/references.md §7: sigma_F/F = Y/(Y-1) * sigma_Y/Y, Tc = T0
     expected = C_DB * y / (y - 1) * math.hypot(r_hot, r_cold)
     assert b.u_combined_db == pytest.approx(expected, rel=1e-6, abs=1e-12)
     assert b.nf_db == pytest.approx(enr_db - 10 * math.log10(y - 1), abs=1e-9)  # §5
@@ -316,7 +316,7 @@ def test_uncorrected_jitter_matches_closed_form(enr_db, y_db, r_hot, r_cold):
 
 
 def _gain_example():
-    """reference.md §4 worked example: G = 20 dB, NF = 2 dB, analyzer NF 12 dB, Ts = T0."""
+    """docs/references.md §4 worked example: G = 20 dB, NF = 2 dB, analyzer NF 12 dB, Ts = T0."""
     g = 100.0
     te1 = T0 * (10**0.2 - 1)
     t_sa = T0 * (10**1.2 - 1)
@@ -335,9 +335,11 @@ def test_gain_method_jitter_matches_section7():
         gain_db=20.0,
         inputs=inputs,
     )
-    assert with_floor.nf_db == pytest.approx(2.0, abs=1e-9)  # reference.md §4 exact correction
-    assert with_floor.u_combined_db == pytest.approx(0.0477, abs=5e-5)  # reference.md §7
-    # gain method without floor: DUT-only density (reference.md §7: 0.0434 dB)
+    assert with_floor.nf_db == pytest.approx(
+        2.0, abs=1e-9
+    )  # docs/references.md §4 exact correction
+    assert with_floor.u_combined_db == pytest.approx(0.0477, abs=5e-5)  # docs/references.md §7
+    # gain method without floor: DUT-only density (docs/references.md §7: 0.0434 dB)
     n_dut = BOLTZMANN * 100.0 * (T0 + T0 * (10**0.2 - 1))
     alone = gain_method_budget(
         freq_hz=FREQ, dut_w_per_hz=n_dut, u_dut_w_per_hz=0.01 * n_dut, gain_db=20.0, inputs=inputs
@@ -354,7 +356,7 @@ def test_gain_and_absolute_level_pass_one_to_one():
         u_gain_db=0.15,
         inputs=UncertaintyInputs(absolute_amplitude_db=0.3),
     )
-    # reference.md §4: errors in G(dB) and absolute level pass into NF(dB) 1:1 (Ts = T0)
+    # docs/references.md §4: errors in G(dB) and absolute level pass into NF(dB) 1:1 (Ts = T0)
     assert b.contribution("DUT gain").sensitivity == pytest.approx(-1.0, abs=1e-7)
     assert b.contribution("absolute amplitude").sensitivity == pytest.approx(1.0, abs=1e-7)
     assert b.contribution("absolute amplitude").distribution is Distribution.RECTANGULAR
@@ -528,7 +530,8 @@ def test_type_b_conversions():
 
 
 def test_vswr_and_gamma():
-    # reference.md §9: |Gamma| = (VSWR-1)/(VSWR+1): 1.2 -> 0.09091, 1.5 -> 0.2000, 2.0 -> 0.3333
+    # docs/references.md §9: |Gamma| = (VSWR-1)/(VSWR+1): 1.2 -> 0.09091, 1.5 -> 0.2000, 2.0 ->
+    # 0.3333
     for vswr, gamma in ((1.2, 0.09091), (1.5, 0.2000), (2.0, 0.3333)):
         assert gamma_from_vswr(vswr) == pytest.approx(gamma, abs=5e-5)
         assert vswr_from_gamma(gamma_from_vswr(vswr)) == pytest.approx(vswr, rel=1e-12)
@@ -543,12 +546,12 @@ def test_vswr_and_gamma():
 
 
 def test_mismatch_limits_and_standard_uncertainty():
-    # reference.md §9 (Harris & Warner 1981): limits 20log10(1 +/- |Gs||Gl|)
+    # docs/references.md §9 (Harris & Warner 1981): limits 20log10(1 +/- |Gs||Gl|)
     up, down = mismatch_limits_db(0.1, 0.2)
     assert (up, down) == (pytest.approx(0.1720, abs=5e-5), pytest.approx(-0.1755, abs=5e-5))
     up, down = mismatch_limits_db(0.05, 0.1)
     assert (up, down) == (pytest.approx(0.0433, abs=5e-5), pytest.approx(-0.0435, abs=5e-5))
-    # std in dB: 0.1228 and 0.0307 (reference.md §9 table), ~ c_dB*sqrt(2)*rho
+    # std in dB: 0.1228 and 0.0307 (docs/references.md §9 table), ~ c_dB*sqrt(2)*rho
     assert mismatch_standard_uncertainty_db(0.1, 0.2) == pytest.approx(0.1228, abs=1e-4)
     assert mismatch_standard_uncertainty_db(0.05, 0.1) == pytest.approx(0.0307, abs=1e-4)
     assert mismatch_power_ratio_std(0.1, 0.2) == pytest.approx(math.sqrt(2) * 0.02)
@@ -569,7 +572,7 @@ def test_mismatch_monte_carlo_draws():
     )
     db = sample_input(q, np.random.default_rng(5), m)
     ratio = 10 ** (db / 10)  # |1 + rho e^{j phi}|^2 = 1 + rho^2 + 2 rho cos(phi): arcsine
-    sigma = math.sqrt(2) * rho  # reference.md §9: std sqrt(2)|Gs||Gl| (MC check 0.02827)
+    sigma = math.sqrt(2) * rho  # docs/references.md §9: std sqrt(2)|Gs||Gl| (MC check 0.02827)
     assert abs(np.std(ratio, ddof=1) - sigma) < 5 * _sd_of_sample_std(sigma, m, 1.5)
     up, down = mismatch_limits_db(0.1, 0.2)
     assert db.max() <= up + 1e-12 and db.min() >= down - 1e-12
@@ -832,7 +835,7 @@ def test_extra_terms_and_input_loss():
     rep = b.contribution("connector repeatability")
     assert rep.u == pytest.approx(0.03 / math.sqrt(3)) and rep.sensitivity == pytest.approx(1.0)
     assert b.contribution("drift").contribution_db == pytest.approx(0.005, rel=1e-6)
-    # reference.md §3: at Tp = T0 the de-embedded NF falls 1:1 with the assumed loss
+    # docs/references.md §3: at Tp = T0 the de-embedded NF falls 1:1 with the assumed loss
     assert b.contribution("input loss").sensitivity == pytest.approx(-1.0, abs=1e-6)
 
 

@@ -1,6 +1,6 @@
 """Y-factor method: Y, Te, cold temperature, second-stage correction, losses, uncertainty, flags.
 
-Worked examples from /work/shared/reference.md §5, §7 and §9, recomputed from their formulas.
+Worked examples from docs/references.md §5, §7 and §9, recomputed from their formulas.
 """
 
 from __future__ import annotations
@@ -33,7 +33,7 @@ K = scipy.constants.k
 T0 = 290.0
 C_DB = 10 / math.log(10)
 
-# reference.md §5 worked example: ENR 15 dB, Tc = T0, DUT 20 dB / 2 dB, analyzer NF 12 dB
+# docs/references.md §5 worked example: ENR 15 dB, Tc = T0, DUT 20 dB / 2 dB, analyzer NF 12 dB
 ENR = 10**1.5
 TH = T0 * ENR + T0
 G1 = 100.0
@@ -61,10 +61,10 @@ def dbm_in_1mhz(w_per_hz: float) -> float:
 
 
 def test_pure_y_factor_functions():
-    assert TH == pytest.approx(9460.605, abs=5e-4)  # reference.md §5
+    assert TH == pytest.approx(9460.605, abs=5e-4)  # docs/references.md §5
     assert y_factor(4.0, 2.0) == 2.0
     assert te_from_y_k(2.0, 1000.0, 300.0) == pytest.approx((1000 - 2 * 300) / 1.0)
-    # ENR referred to T0 (reference.md §5): Th = T0 ENR + Tc, or Th = T0 (ENR + 1)
+    # ENR referred to T0 (docs/references.md §5): Th = T0 ENR + Tc, or Th = T0 (ENR + 1)
     assert hot_temperature_k(ENR, 300.0) == pytest.approx(T0 * ENR + 300.0)
     assert hot_temperature_k(ENR, 300.0, enr_reference="absolute") == pytest.approx(T0 * (ENR + 1))
     np.testing.assert_allclose(
@@ -80,11 +80,11 @@ def test_pure_y_factor_functions():
 
 def test_general_noise_factor_formula():
     y, tc = 12.0, 310.0
-    # reference.md §5 general form, ENR defined at the actual Th: F = [ENR - Y(Tc/T0-1)]/(Y-1)
+    # docs/references.md §5 general form, ENR defined at the actual Th: F = [ENR - Y(Tc/T0-1)]/(Y-1)
     assert noise_factor_from_y(y, ENR, tc, enr_reference="absolute") == pytest.approx(
         (ENR - y * (tc / T0 - 1)) / (y - 1), rel=1e-14
     )
-    # reference.md §5 common assumption: F = ENR/(Y-1) - (Tc - T0)/T0
+    # docs/references.md §5 common assumption: F = ENR/(Y-1) - (Tc - T0)/T0
     assert noise_factor_from_y(y, ENR, tc) == pytest.approx(
         ENR / (y - 1) - (tc - T0) / T0, rel=1e-14
     )
@@ -104,7 +104,7 @@ def test_worked_example_readings():
 
 def test_calibration_gives_the_system_noise():
     cal = calibration()
-    assert 10 ** (cal.y_db / 10) == pytest.approx(2.995262, abs=5e-7)  # reference.md §5: Y2
+    assert 10 ** (cal.y_db / 10) == pytest.approx(2.995262, abs=5e-7)  # docs/references.md §5: Y2
     assert cal.noise_factor == pytest.approx(15.84893, abs=5e-6)  # F2
     assert cal.nf_db == pytest.approx(12.0, abs=1e-12) and cal.te_k == pytest.approx(TE2)
     assert cal.freq_hz == 1e9 and cal.cold_temperature_k == T0 and cal.enr_db == 15.0
@@ -116,7 +116,7 @@ def test_second_stage_correction_gives_the_dut_alone():
         density(NH), density(NC), 15.0, cold_temperature_k=T0, calibration=calibration()
     )
     assert r.method is Method.Y_FACTOR
-    assert 10 ** (r.y_db / 10) == pytest.approx(19.243392, abs=5e-7)  # reference.md §5: Y12
+    assert 10 ** (r.y_db / 10) == pytest.approx(19.243392, abs=5e-7)  # docs/references.md §5: Y12
     assert r.notes["nf_uncorrected_db"] == pytest.approx(2.3889, abs=5e-5)  # F12 = 1.733383
     assert 10 ** (r.notes["nf_uncorrected_db"] / 10) == pytest.approx(1.733383, abs=5e-7)
     assert r.gain_db == pytest.approx(20.0, abs=1e-12)  # G1 = 100.0000
@@ -132,7 +132,7 @@ def test_dut_alone_without_second_stage():
     r = y_factor_point(
         density(K * (TH + TE1)), density(K * (T0 + TE1)), 15.0, cold_temperature_k=T0
     )
-    assert 10 ** (r.y_db / 10) == pytest.approx(20.95262, abs=5e-6)  # reference.md §5
+    assert 10 ** (r.y_db / 10) == pytest.approx(20.95262, abs=5e-6)  # docs/references.md §5
     assert r.nf_db == pytest.approx(15 - 10 * math.log10(10 ** (r.y_db / 10) - 1), abs=1e-12)
     assert r.nf_db == pytest.approx(2.0, abs=1e-12)
     assert r.gain_db is None and r.floor_margin_db is None
@@ -140,12 +140,12 @@ def test_dut_alone_without_second_stage():
 
 def test_cold_source_not_at_t0():
     tc = 300.0
-    th = T0 * ENR + tc  # common assumption (reference.md §5)
+    th = T0 * ENR + tc  # common assumption (docs/references.md §5)
     hot, cold = K * (th + TE1), K * (tc + TE1)
     y = hot / cold
-    assert y == pytest.approx(20.527755, abs=5e-6)  # reference.md §5
+    assert y == pytest.approx(20.527755, abs=5e-6)  # docs/references.md §5
     naive = 15.0 - 10 * math.log10(y - 1)  # ENR/(Y-1), as if Tc were T0
-    assert naive == pytest.approx(2.0935, abs=5e-5)  # reference.md §5
+    assert naive == pytest.approx(2.0935, abs=5e-5)  # docs/references.md §5
     r = y_factor_point(density(hot), density(cold), 15.0, cold_temperature_k=tc)
     assert r.nf_db == pytest.approx(2.0, abs=1e-12)
 
@@ -230,7 +230,7 @@ def test_statistical_uncertainty_dut_alone():
         density(K * (TH + TE1)), density(K * (T0 + TE1)), 15.0, cold_temperature_k=T0
     )
     y = 10 ** (r.y_db / 10)
-    # reference.md §7: sigma_F/F = Y/(Y-1) sigma_Y/Y, sigma_Y/Y = sqrt(2) x 1 %
+    # docs/references.md §7: sigma_F/F = Y/(Y-1) sigma_Y/Y, sigma_Y/Y = sqrt(2) x 1 %
     assert r.u_nf_db == pytest.approx(C_DB * y / (y - 1) * math.sqrt(2) * 0.01, rel=1e-6)
     assert r.u_nf_db == pytest.approx(0.0645, abs=5e-5)
 
@@ -245,15 +245,15 @@ def test_uncertainty_of_the_full_example_and_its_budget_terms():
         u_enr_db=0.1,
     )
     c = r.notes["u_nf_db_contributions"]
-    # reference.md §9 budget (1 % jitter each; ENR 0.10 dB, same source in cal and meas)
+    # docs/references.md §9 budget (1 % jitter each; ENR 0.10 dB, same source in cal and meas)
     assert c["hot_cal"] == pytest.approx(+0.0004, abs=5e-5)
     assert c["cold_cal"] == pytest.approx(-0.0045, abs=5e-5)
     assert c["hot"] == pytest.approx(-0.0458, abs=5e-5)
     assert c["cold"] == pytest.approx(+0.0499, abs=5e-5)
     assert c["enr"] == pytest.approx(+0.0994, abs=5e-5)
-    assert c["enr"] / 0.1 == pytest.approx(0.9937, abs=5e-5)  # dNF/dENR (reference.md §9)
+    assert c["enr"] / 0.1 == pytest.approx(0.9937, abs=5e-5)  # dNF/dENR (docs/references.md §9)
     assert r.notes["enr_correlated"] is True and "enr_cal" not in c
-    # reference.md §7: the four readings alone give 0.0679 dB; ENR stays out of u_nf_db
+    # docs/references.md §7: the four readings alone give 0.0679 dB; ENR stays out of u_nf_db
     assert r.u_nf_db == pytest.approx(0.0679, abs=5e-5)
     assert r.u_nf_db == pytest.approx(
         math.sqrt(sum(c[k] ** 2 for k in ("hot", "cold", "hot_cal", "cold_cal"))), rel=1e-12
@@ -294,7 +294,7 @@ def test_uncorrelated_enr_splits_into_two_terms_that_add_to_the_correlated_one()
 def test_linear_propagation_agrees_with_the_uncertainties_package():
     from uncertainties import ufloat, umath
 
-    # ecosystem.md: NF = 10 log10(ENR/(Y-1)), ENR 15.0 +/- 0.1 dB, Y 12.0 +/- 0.02 dB
+    # uncertainties package check: NF = 10 log10(ENR/(Y-1)), ENR 15.0 +/- 0.1 dB, Y 12.0 +/- 0.02 dB
     enr_db, y_db = ufloat(15.0, 0.1), ufloat(12.0, 0.02)
     nf = 10 * umath.log10(10 ** (enr_db / 10) / (10 ** (y_db / 10) - 1))
     assert nf.n == pytest.approx(3.283048, abs=5e-7) and nf.s == pytest.approx(0.102253, abs=5e-7)

@@ -1,4 +1,9 @@
-"""Fixtures of the example LNA tests: this folder's plan unless --nb-plan names another."""
+"""Fixtures of the example LNA tests: this folder's plan unless --nb-plan names another.
+
+SAFETY: on real instruments (``--nb-bench TCPIP0::...``) read the bench-safety cautions first
+(README "Safety first", or ``noisebench run --help``); the plugin prints them when it opens real
+instruments. They do not replace the instrument manuals, local codes and licensed practice.
+"""
 
 from __future__ import annotations
 

@@ -66,7 +66,7 @@ def test_my_generator_profile_dialogue():
     profile = HERE / "my_generator.toml"
     with replay_dialogue(
         [
-            ("*IDN?", "ACME,SG-9,1234,1.0"),
+            ("*IDN?", "Fictional Labs,SG-9,1234,1.0"),
             ("*CLS", None),
             ("OUTPut:STATe?", "0"),
             ("SOURce:FREQuency:CW 1500000000", None),

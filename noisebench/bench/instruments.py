@@ -1,7 +1,8 @@
 """The abstract bench: what the sequencer needs from an analyzer, a noise source, a generator.
 
-Concrete back ends live in ``noisebench.drivers`` (SCPI over pyvisa) and ``noisebench.sims``
-(simulated). The core never imports either; :mod:`noisebench.bench.registry` picks one by address.
+Concrete back ends live in ``noisebench.drivers`` (SCPI over pyvisa) and in the simulated
+bench's package. The core never imports either; :mod:`noisebench.bench.registry` picks one
+by address.
 """
 
 from __future__ import annotations
@@ -34,10 +35,10 @@ class Instrument(ABC):
     def close(self) -> None:
         """Put the instrument in its safe state and release the connection. Idempotent."""
 
-    def __enter__(self):  # noqa: D105
+    def __enter__(self):
         return self
 
-    def __exit__(self, *exc) -> None:  # noqa: D105
+    def __exit__(self, *exc) -> None:
         self.close()
 
 
@@ -84,6 +85,13 @@ class Analyzer(Instrument):
         """Highest input power read without clipping (a sampled receiver's converter full
         scale for a tone), dBm; None when the instrument has no such hard limit or it is not
         known."""
+        return None
+
+    @property
+    def level_uncertainty_db(self) -> float | None:
+        """Standard uncertainty of absolute levels when the instrument knows it (a sampled
+        receiver's scale calibration), dB; None: not known here (the plan's
+        ``uncertainty.absolute_amplitude_db`` applies)."""
         return None
 
     @property
@@ -158,6 +166,7 @@ class Bench:
     generator: Generator | None = None
     ambient_k: float | None = None
     extras: dict = field(default_factory=dict)
+    lo_generator: Generator | None = None  # the LO of a frequency-converting DUT
 
     def identities(self) -> dict[str, str]:
         out = {"analyzer": self.analyzer.identity}
@@ -165,13 +174,16 @@ class Bench:
             out["noise_source"] = self.noise_source.identity
         if self.generator is not None:
             out["generator"] = self.generator.identity
+        if self.lo_generator is not None:
+            out["lo_generator"] = self.lo_generator.identity
         return out
 
     def safe_state(self) -> None:
-        """Noise source off, generator output off. Never raises."""
+        """Noise source off, generator and LO outputs off. Never raises."""
         for action in (
             (lambda: self.noise_source.set_hot(False)) if self.noise_source else None,
             (lambda: self.generator.set_output(False)) if self.generator else None,
+            (lambda: self.lo_generator.set_output(False)) if self.lo_generator else None,
         ):
             if action is None:
                 continue
@@ -182,7 +194,7 @@ class Bench:
 
     def close(self) -> None:
         self.safe_state()
-        for inst in (self.noise_source, self.generator, self.analyzer):
+        for inst in (self.noise_source, self.generator, self.lo_generator, self.analyzer):
             if inst is not None:
                 try:
                     inst.close()

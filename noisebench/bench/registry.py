@@ -23,10 +23,11 @@ from dataclasses import dataclass, field
 from enum import Enum
 from typing import Any
 
+from noisebench.bench.addresses import is_simulated
+from noisebench.bench.capabilities import NoiseDriveOutput, PathSwitch
 from noisebench.bench.instruments import Bench
 from noisebench.errors import InputError, NoisebenchError
 from noisebench.running.plan import BenchSection
-from noisebench.sims.address import parse_sim_address
 
 logger = logging.getLogger(__name__)
 
@@ -51,23 +52,72 @@ OPERATOR_INSTRUCTIONS: dict[Connection, str] = {
 }
 
 
-def is_simulated(resource: str) -> bool:
-    return resource.startswith("sim://")
+def address_problems(resource: str, spans_hz: list[tuple[float, float]] | None) -> list[str]:
+    """Plan-time problems of an analyzer address that only its back end can judge (a
+    simulated bench's scenario and frequency range), one line each; [] for other addresses."""
+    if is_simulated(resource):
+        from noisebench.sims.address import simulated_bench_problems
+
+        return simulated_bench_problems(resource, spans_hz)
+    return []
+
+
+def analyzer_profile(section: BenchSection) -> Any:
+    """The analyzer profile a real bench would load; None for the simulated bench or a profile
+    that does not load (:func:`profile_problem` reports that)."""
+    if is_simulated(section.analyzer.resource):
+        return None
+    from noisebench.drivers.profile import load_profile
+
+    try:
+        return load_profile(section.analyzer.profile)
+    except InputError:
+        return None
+
+
+def profile_problem(profile: str) -> str | None:
+    """Why an instrument profile (packaged name or file) does not load; None when it does."""
+    from noisebench.drivers.profile import load_profile
+
+    try:
+        load_profile(profile)
+    except InputError as exc:
+        return exc.message
+    return None
+
+
+def simulated_receiver_options(resource: str) -> Any:
+    """The sampled-receiver options of a ``sim://...&receiver=sampled`` address; None for any
+    other address, or an invalid one (:func:`address_problems` reports that)."""
+    if not is_simulated(resource):
+        return None
+    from noisebench.sims.address import parse_sim_address
+
+    try:
+        address = parse_sim_address(resource)
+    except InputError:
+        return None
+    return address.sampled if address.receiver == "sampled" else None
 
 
 @dataclass
 class BenchSession:
     """An opened bench with its connection callback.
 
-    ``sim`` is the simulated bench when the analyzer address is ``sim://`` (truth for tests
-    and benchmarks); ``kind`` is ``"simulated"``, ``"scpi"``, ``"sampled"`` (a live sample
-    source) or ``"recorded"`` (SigMF recordings: nothing is driven).
+    ``kind`` is ``"simulated"``, ``"scpi"``, ``"sampled"`` (a live sample source) or
+    ``"recorded"`` (SigMF recordings: nothing is driven). What a back end supplies besides the
+    instruments is explicit: ``enr_table``, the noise source's own ENR table when the bench
+    knows it (used when the plan names none); ``clock``, the instrument time in seconds when the
+    bench keeps one (None: wall time). ``sim`` is the simulator object itself, for the front
+    ends and tests that compare with its truth; the core never reads it.
     """
 
     bench: Bench
     kind: str
     resources: dict[str, str]
     _move: Callable[[Connection], None]
+    enr_table: Any = None
+    clock: Callable[[], float] | None = None
     sim: Any = None
     scpi_simulator: bool = False
     connection: Connection | None = None
@@ -91,7 +141,7 @@ class BenchSession:
 
     def instrument_time_s(self) -> float | None:
         """Simulated instrument clock (None on real instruments: use wall time)."""
-        return float(self.sim.clock.now_s) if self.sim is not None else None
+        return float(self.clock()) if self.clock is not None else None
 
     def close(self) -> None:
         """Safe state, then close every instrument. Idempotent; never raises."""
@@ -119,6 +169,7 @@ def open_bench(
 
 
 def _open_simulated(section: BenchSection) -> BenchSession:
+    from noisebench.sims.address import parse_sim_address
     from noisebench.sims.bench import SimulatedBench
 
     address = parse_sim_address(section.analyzer.resource)
@@ -167,13 +218,69 @@ def simulated_session(
     resources = {"analyzer": resource}
     if bench.generator is not None:
         resources["generator"] = resource
+    if bench.lo_generator is not None:
+        resources["lo"] = resource
     return BenchSession(
         bench=bench,
         kind="simulated",
         resources=resources,
         _move=lambda target: sim.set_path(paths[target]),
+        enr_table=sim.enr_table,
+        clock=lambda: sim.clock.now_s,
         sim=sim,
     )
+
+
+def bench_model(section: BenchSection) -> Any:
+    """A model of the bench for forecasts, when the address offers one (the simulated bench:
+    :class:`noisebench.sims.forecast_model.SimulatedBenchModel`); None otherwise."""
+    if not is_simulated(section.analyzer.resource):
+        return None
+    from noisebench.sims.address import parse_sim_address
+    from noisebench.sims.bench import SimulatedBench
+    from noisebench.sims.forecast_model import SimulatedBenchModel
+
+    address = parse_sim_address(section.analyzer.resource)
+    return SimulatedBenchModel(SimulatedBench.from_scenario(address.scenario, seed=address.seed))
+
+
+def settings_analyzer(section: BenchSection, model: Any) -> Any:
+    """The analyzer whose applied settings and timing a forecast uses, without acquiring: the
+    model's (simulated) analyzer, or a sampled analyzer (the simulated receiver, or SigMF
+    recordings read for their metadata only); None for a real instrument (the forecast then
+    uses a nominal swept-analyzer model)."""
+    from urllib.parse import urlsplit
+
+    resource = section.analyzer.resource
+    scheme = urlsplit(resource).scheme
+    if is_simulated(resource):
+        from noisebench.sims.address import parse_sim_address
+        from noisebench.sims.forecast_model import SimulatedBenchModel
+
+        address = parse_sim_address(resource)
+        if not isinstance(model, SimulatedBenchModel):
+            return None
+        if address.receiver != "sampled":
+            return model.analyzer
+        from noisebench.sampled.analyzer import SampledAnalyzer
+        from noisebench.sims.samples import SimSampleReceiver
+
+        options = address.sampled
+        return SampledAnalyzer(
+            SimSampleReceiver(model.sim), window=options.window, overlap=options.overlap
+        )
+    if scheme == "sigmf":
+        from noisebench.sampled.address import parse_sampled_address
+        from noisebench.sampled.analyzer import SampledAnalyzer
+        from noisebench.sampled.sigmf_io import SigmfRecordings
+
+        sampled = parse_sampled_address(resource)
+        return SampledAnalyzer(
+            SigmfRecordings(sampled.target),
+            window=sampled.options.window,
+            overlap=sampled.options.overlap,
+        )
+    return model.analyzer if model is not None else None
 
 
 # --------------------------------------------------------------------------- sampled
@@ -301,20 +408,36 @@ def _open_scpi(section: BenchSection, *, prompt: Prompt, enr_drive_v: float | No
                 timeout_s=section.generator.timeout_s,
             )
             opened.append(generator)
+        lo_generator = None
+        if section.lo is not None:
+            lo_generator = drivers.open_generator(
+                section.lo.resource,
+                profile=section.lo.profile,
+                timeout_s=section.lo.timeout_s,
+                max_level_dbm=section.lo.max_level_dbm,
+            )
+            opened.append(lo_generator)
     except BaseException:
         for inst in reversed(opened):
             _close_quietly(inst)
         raise
     bench = Bench(
-        analyzer=analyzer, noise_source=source, generator=generator, ambient_k=section.ambient_k
+        analyzer=analyzer,
+        noise_source=source,
+        generator=generator,
+        ambient_k=section.ambient_k,
+        lo_generator=lo_generator,
     )
     resources = {"analyzer": section.analyzer.resource}
     if section.noise_source.resource:
         resources["noise_source"] = section.noise_source.resource
     if section.generator is not None:
         resources["generator"] = section.generator.resource
-    sim_path = section.connect == "auto" and _supports_sim_path(analyzer)
-    move = _scpi_sim_mover(analyzer) if sim_path else _operator_mover(prompt)
+    if section.lo is not None:
+        resources["lo"] = section.lo.resource
+    switch = analyzer if isinstance(analyzer, PathSwitch) and analyzer.has_path_switch else None
+    sim_path = section.connect == "auto" and switch is not None
+    move = _path_mover(switch) if switch is not None and sim_path else _operator_mover(prompt)
     return BenchSession(
         bench=bench, kind="scpi", resources=resources, _move=move, scpi_simulator=sim_path
     )
@@ -330,6 +453,14 @@ def _open_noise_source(
     if drive == "none":
         return None
     if drive == "analyzer":
+        if not (isinstance(analyzer, NoiseDriveOutput) and analyzer.has_noise_drive):
+            raise InputError(
+                "bench.noise_source.drive",
+                f"{cfg.drive!r}: the analyzer {analyzer.identity!r} has no noise-source drive "
+                "output (its profile names no noise_drive commands)",
+                fix='use drive = "supply" (with its resource), "operator" or "none", or a '
+                "profile with noise_drive",
+            )
         return drivers.AnalyzerDriveNoiseSource(analyzer, settle_time_s=cfg.settle_time_s)
     if drive == "operator":
         return drivers.OperatorNoiseSource(prompt=prompt, settle_time_s=cfg.settle_time_s)
@@ -350,25 +481,9 @@ def _open_noise_source(
     )
 
 
-SIMULATOR_MAKER = "noisebench"
-"""Manufacturer field of the simulated instruments' ``*IDN?`` reply."""
-
-
-def _supports_sim_path(analyzer: Any) -> bool:
-    """True for the SCPI simulator: its profile has the path command AND it says it is one.
-
-    Both are required so a profile copied from the generic one never sends simulator-only
-    commands to real hardware."""
-    spec = getattr(analyzer, "spec", None)
-    if getattr(spec, "sim_path", None) is None:
-        return False
-    maker = str(analyzer.identity).split(",", 1)[0].strip().lower()
-    return maker == SIMULATOR_MAKER
-
-
-def _scpi_sim_mover(analyzer: Any) -> Callable[[Connection], None]:
+def _path_mover(analyzer: PathSwitch) -> Callable[[Connection], None]:
     def move(target: Connection) -> None:
-        analyzer.set_sim_path(target.value)
+        analyzer.set_path(target.value)
 
     return move
 
@@ -385,3 +500,21 @@ def _close_quietly(inst: Any) -> None:
         inst.close()
     except (NoisebenchError, OSError):
         logger.warning("closing %r failed", inst, exc_info=True)
+
+
+def simulated_ranges(resource: str) -> dict[str, tuple[float, float]] | None:
+    """Frequency ranges (Hz) of a ``sim://`` bench for plan checks: the analyzer's input, the LO
+    generator's and the noise source's ENR table; None when the scenario cannot be loaded."""
+    try:
+        from noisebench.sims.address import parse_sim_address
+        from noisebench.sims.scenario import load_scenario
+
+        scenario = load_scenario(parse_sim_address(resource).scenario)
+    except (ImportError, NoisebenchError):
+        return None
+    ns = scenario.noise_source
+    return {
+        "analyzer": (scenario.analyzer.min_freq_hz, scenario.analyzer.max_freq_hz),
+        "lo": (scenario.lo_generator.min_freq_hz, scenario.lo_generator.max_freq_hz),
+        "enr": (float(ns.freq_hz[0]), float(ns.freq_hz[-1])),
+    }

@@ -37,6 +37,7 @@ from noisebench.bench.acquisition import (
     Trace,
     TraceUnit,
 )
+from noisebench.bench.capabilities import NoiseDriveOutput, PathSwitch
 from noisebench.bench.instruments import Analyzer
 from noisebench.errors import (
     CommunicationError,
@@ -58,6 +59,9 @@ from .scpi_channel import ScpiChannel
 from .transport import BlockError, Transport, parse_ascii_values
 
 logger = logging.getLogger(__name__)
+
+SIMULATOR_MAKER = "noisebench"
+"""Manufacturer field of the simulated instruments' ``*IDN?`` reply."""
 
 __all__ = ["ScpiAnalyzer", "settings_differences"]
 
@@ -81,7 +85,12 @@ def settings_differences(
     return out
 
 
-class ScpiAnalyzer(Analyzer):
+PARTIAL_READBACK = frozenset({"center_hz", "averages"})
+"""Settings whose change moves no other setting: after sending only these, only these are
+read back (retuning between point groups, a new average count)."""
+
+
+class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
     """A spectrum analyzer over a :class:`~noisebench.drivers.transport.Transport`.
 
     ``profile`` is an :class:`InstrumentProfile`, a packaged profile name or a ``.toml`` path.
@@ -107,6 +116,7 @@ class ScpiAnalyzer(Analyzer):
         self._settings: AcquisitionSettings | None = None
         self._request: AcquisitionRequest | None = None
         self._format_sent: str | None = None
+        self._sent: dict[str, str] = {}  # setting name -> last command applied (the cache)
         self._noise_drive: bool | None = None
         self._sim_path: str | None = None
         self._block_failures = 0
@@ -165,12 +175,53 @@ class ScpiAnalyzer(Analyzer):
             raise InputError(
                 "request", f"must be an AcquisitionRequest (got {type(request).__name__})"
             )
-        commands = self._commands_for(request)  # validates everything before any I/O
+        named = self._named_commands_for(request)  # validates everything before any I/O
         with self.lock:
-            self._settings = None
-            settings = self._channel.run("configure", lambda: self._apply(commands, request))
+            if request == self._request and self._settings is not None and self._sent:
+                return self._settings  # nothing changed: no I/O at all
+            previous, self._settings = self._settings, None
+
+            def attempt() -> AcquisitionSettings:
+                # computed per attempt: a reconnect in between clears the cache (the
+                # instrument may have rebooted), and then everything is sent and read back
+                changed = [(n, c) for n, c in named if self._sent.get(n) != c]
+                return self._apply(
+                    [c for _, c in changed],
+                    request,
+                    previous if self._sent else None,
+                    {n for n, _ in changed},
+                )
+
+            try:
+                settings = self._channel.run("configure", attempt)
+            except BaseException:
+                self._sent.clear()  # state unknown: the next configure sends everything
+                raise
+            self._sent.update(named)
             self._request, self._settings = request, settings
             return settings
+
+    def _read_changed(
+        self, previous: AcquisitionSettings | None, names: set[str]
+    ) -> AcquisitionSettings | None:
+        """Read back only what was sent, when that cannot move any other setting: a new
+        centre (retuning between point groups) or a new average count. None: read all."""
+        s = self.spec.settings
+        if previous is None or not names or not names <= PARTIAL_READBACK:
+            return None
+        if "center_hz" in names and not _readable(s.center_hz):
+            return None
+        get = self._channel.get
+        update: dict[str, Any] = {}
+        if "center_hz" in names:
+            update["center_hz"] = get(s.center_hz)
+            if _readable(s.span_hz):  # an analyzer may narrow the span near its band edge
+                update["span_hz"] = get(s.span_hz)
+        if "averages" in names:
+            update["averages"] = get(s.averages)
+            if _readable(s.averaging_on) and not get(s.averaging_on):
+                update["averages"] = 1
+        return previous.model_copy(update=update)
 
     def _requested_values(self, request: AcquisitionRequest) -> dict[str, Any]:
         s = self.spec.settings
@@ -208,8 +259,12 @@ class ScpiAnalyzer(Analyzer):
 
     def _commands_for(self, request: AcquisitionRequest) -> list[str]:
         """Validate ``request`` against the profile and format its commands (no I/O)."""
+        return [command for _, command in self._named_commands_for(request)]
+
+    def _named_commands_for(self, request: AcquisitionRequest) -> list[tuple[str, str]]:
+        """(setting name, command) for ``request``, in the profile's order (no I/O)."""
         values = self._requested_values(request)
-        commands = []
+        commands: list[tuple[str, str]] = []
         for name in self.spec.apply_order:
             value = values.get(name)
             if value is None:
@@ -223,7 +278,7 @@ class ScpiAnalyzer(Analyzer):
                     f"profile {self.profile.name} cannot set {name} (requested {_plain(value)!r})",
                     fix=f"leave {name} unset or add a 'set' template for it",
                 )
-            commands.append(setting.command(value))
+            commands.append((name, setting.command(value)))
         missing = [
             n
             for n in values
@@ -254,10 +309,18 @@ class ScpiAnalyzer(Analyzer):
             return _plain(value) == _plain(setting.parse(""))
         return False
 
-    def _apply(self, commands: list[str], request: AcquisitionRequest) -> AcquisitionSettings:
+    def _apply(
+        self,
+        commands: list[str],
+        request: AcquisitionRequest,
+        previous: AcquisitionSettings | None = None,
+        changed: set[str] | None = None,
+    ) -> AcquisitionSettings:
+        """Send ``commands``, read back (only the ``changed`` settings where that is safe,
+        see :meth:`_read_changed`), check the error queue once."""
         for command in commands:
             self._channel.write(command)
-        settings = self._read_settings()
+        settings = self._read_changed(previous, changed or set()) or self._read_settings()
         self._channel.check_errors("configure")
         _log_adjustments(request, settings)
         return settings
@@ -333,6 +396,7 @@ class ScpiAnalyzer(Analyzer):
     def _restore(self) -> None:
         """After a reconnect: detect lost settings, re-apply them and the output states."""
         self._format_sent = None
+        self._sent.clear()  # the instrument may have lost them: re-apply everything
         if self._request is not None and self._settings is not None:
             found = settings_differences(self._settings, self._read_settings())
             if found:
@@ -670,6 +734,21 @@ class ScpiAnalyzer(Analyzer):
                 "noise_drive", f"profile {self.profile.name} has no noise-source drive commands"
             )
         return bool(self._channel.run("noise drive", lambda: self._channel.get(setting)))
+
+    @property
+    def has_path_switch(self) -> bool:
+        """True for the SCPI simulator: its profile has the path command AND it says it is one.
+
+        Both are required so a profile copied from the generic one never sends simulator-only
+        commands to real hardware."""
+        if self.spec.sim_path is None:
+            return False
+        maker = str(self.identity).split(",", 1)[0].strip().lower()
+        return maker == SIMULATOR_MAKER
+
+    def set_path(self, path: str) -> None:
+        """The :class:`~noisebench.bench.capabilities.PathSwitch` form of :meth:`set_sim_path`."""
+        self.set_sim_path(path)
 
     def set_sim_path(self, path: str | Enum) -> None:
         """Simulator only: what the analyzer input sees (``dut``/``through``/``termination``)."""

@@ -26,6 +26,7 @@ from typing import Any
 
 import numpy as np
 
+from noisebench.bench.capabilities import NoiseDriveOutput
 from noisebench.bench.instruments import Analyzer, Instrument, NoiseSource
 from noisebench.errors import (
     CommunicationError,
@@ -137,8 +138,9 @@ class _SwitchedSource(NoiseSource):
 
 
 class AnalyzerDriveNoiseSource(_SwitchedSource):
-    """The noise source on the analyzer's drive output (any analyzer with
-    ``set_noise_drive(on)``, e.g. :class:`~noisebench.drivers.analyzer.ScpiAnalyzer`).
+    """The noise source on the analyzer's drive output (an analyzer that declares
+    :class:`~noisebench.bench.capabilities.NoiseDriveOutput` and has it, e.g.
+    :class:`~noisebench.drivers.analyzer.ScpiAnalyzer` with a profile naming the commands).
     Closing the source switches the drive off but leaves the analyzer open."""
 
     def __init__(
@@ -149,7 +151,7 @@ class AnalyzerDriveNoiseSource(_SwitchedSource):
         sleep: Callable[[float], None] = time.sleep,
         cold_temperature_k: float | None = None,
     ) -> None:
-        if not callable(getattr(analyzer, "set_noise_drive", None)):
+        if not (isinstance(analyzer, NoiseDriveOutput) and analyzer.has_noise_drive):
             raise InputError(
                 "analyzer",
                 f"{type(analyzer).__name__} has no noise-source drive output",
@@ -157,13 +159,14 @@ class AnalyzerDriveNoiseSource(_SwitchedSource):
             )
         super().__init__(settle_time_s, sleep=sleep, cold_temperature_k=cold_temperature_k)
         self.analyzer = analyzer
+        self._drive: NoiseDriveOutput = analyzer
 
     @property
     def identity(self) -> str:
         return f"noise drive of {self.analyzer.identity}"
 
     def _switch(self, hot: bool) -> None:
-        self.analyzer.set_noise_drive(hot)
+        self._drive.set_noise_drive(hot)
 
 
 # ----------------------------------------------------------------------------- DC supply

@@ -218,6 +218,43 @@ class _Probe:
         else:
             self.add(key, "ok", f"{', '.join(setting.choices)} set and read back")
 
+    def averages_limit(self) -> None:
+        """The profile's ``averages.max`` against the instrument: the maximum is accepted and
+        one more is refused (or clamped); above it the run combines several traces."""
+        setting = self.spec.settings.averages
+        if setting.max is None or not setting.writable:
+            self.add("averages max", "note", "no maximum declared: one trace per reading")
+            return
+        transport = self.sa._channel.transport
+        transport.write(setting.set_cmd.format(value=int(setting.max)))
+        at_max = self._errors()
+        transport.write(setting.set_cmd.format(value=int(setting.max) + 1))
+        above = self._errors()
+        got = self.sa._channel.get(setting) if setting.readable else None
+        section = "[analyzer.settings.averages]"
+        if at_max:
+            self.add(
+                "averages max",
+                "FAIL",
+                f"{setting.max} refused ({at_max[0][0]},{at_max[0][1]!r})",
+                f"{section} max = (lower: the instrument's own maximum)",
+            )
+        elif not above and got is not None and got > setting.max:
+            self.add(
+                "averages max",
+                "FAIL",
+                f"{setting.max + 1} accepted and applied ({got})",
+                f"{section} max = (higher: the instrument allows more)",
+            )
+        else:
+            how = "refused" if above else f"clamped to {got}"
+            self.add(
+                "averages max",
+                "ok",
+                f"{setting.max} per trace ({setting.max + 1} {how}); more are taken as several "
+                "traces",
+            )
+
     def abort(self) -> None:
         abort = self.spec.acquisition.abort
         if abort is None:
@@ -424,6 +461,7 @@ def probe_analyzer(
         probe.numeric("attenuation_db", 10.0, "dB")
         for key in ("detector", "averaging_scale", "mode"):
             probe.choices(key)
+        probe.averages_limit()
         probe.abort()
         probe.trace(request)
         probe.marker(request.center_hz)

@@ -7,7 +7,7 @@
     from noisebench.drivers.protocol import replay_dialogue
 
     script = [
-        ("*IDN?", "ACME,SG-1,42,1.0"),       # a query and its reply
+        ("*IDN?", "Fictional Labs,SG-1,42,1.0"),       # a query and its reply
         ("*CLS", None),                       # a command without reply
         ("SYST:ERR?", '0,"No error"'),
         ...

@@ -40,6 +40,7 @@ from noisebench.errors import (
     SafetyError,
 )
 from noisebench.running.safety import cautions_text
+from noisebench.units import format_frequency
 
 logger = logging.getLogger("noisebench.frontends.cli")
 
@@ -109,7 +110,8 @@ def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
         first = skipped[0]
         print(
             f"noisebench: error: {len(skipped)} point(s) not measured, first at "
-            f"{first['freq_hz']:.6g} Hz ({first['stage']}): {_one_line(first['reason'])} "
+            f"{format_frequency(first['freq_hz'])} ({first['stage']}): "
+            f"{_one_line(first['reason'])} "
             f"(once fixed, `noisebench run {args.plan} --resume {folder}` measures them)",
             file=sys.stderr,
         )
@@ -145,7 +147,7 @@ def cmd_serve(args: argparse.Namespace, out: TextIO) -> int:
     from noisebench.sims.serve import main as serve_main
 
     try:
-        return int(serve_main(list(args.serve_args), out=out))
+        return int(serve_main(list(args.serve_args), out=out, prog="noisebench serve"))
     except SystemExit as exc:  # the server's own --help or usage error
         return int(exc.code or 0)
 
@@ -219,7 +221,15 @@ def cmd_render(args: argparse.Namespace, out: TextIO) -> int:
 
     folder = Path(args.folder)
     record = load_run(folder)
-    written = write_outputs(record, folder, plots=not args.no_plots, report=True)
+    if args.no_plots:  # draw nothing, but embed the figures an earlier run or render left
+        from noisebench.results.report import existing_figures, write_report
+
+        figures = existing_figures(folder)
+        written = [write_report(record, folder / "report.html", plots=figures)]
+        if figures:
+            print(f"embedded {len(figures)} existing figures from {figures[0].parent}", file=out)
+    else:
+        written = write_outputs(record, folder, plots=True, report=True)
     print(format_summary(record), file=out)
     for path in written:
         print(f"wrote {path}", file=out)
@@ -227,29 +237,17 @@ def cmd_render(args: argparse.Namespace, out: TextIO) -> int:
 
 
 def cmd_validate(args: argparse.Namespace, out: TextIO) -> int:
+    from noisebench.frontends.validate import validate_file
+
     path = Path(args.path)
-    if path.suffix.lower() == ".csv":
-        from noisebench.science.enr import EnrTable, validate_enr_file
-
-        problems = validate_enr_file(path)
-        if not problems:
-            table = EnrTable.from_csv(path)
-            span = table.range_hz
-            where = f"{span[0]:.6g}-{span[1]:.6g} Hz" if span else "all frequencies (flat)"
-            print(f"ok: ENR table {path.name}, {len(table.enr_db)} values, {where}", file=out)
-    else:
-        from noisebench.running.plan import load_plan, validate_plan_file
-
-        problems = validate_plan_file(path)
-        if not problems:
-            plan = load_plan(path)
-            _print_profile_warnings(plan)
-            print(
-                f"ok: {plan.method.value.replace('_', '-')} plan {path.name}, "
-                f"{len(plan.points())} points, analyzer {plan.bench.analyzer.resource}",
-                file=out,
-            )
+    kind, summary, problems = validate_file(path)
     name = path.name or str(path)  # "." has no name
+    if not problems:
+        if kind == "plan":
+            from noisebench.running.plan import load_plan
+
+            _print_profile_warnings(load_plan(path))
+        print(f"ok: {summary}", file=out)
     for line in problems:
         print(f"{name}: {line}", file=sys.stderr)
     return EXIT_INPUT if problems else EXIT_OK
@@ -282,7 +280,7 @@ def cmd_probe(args: argparse.Namespace, out: TextIO) -> int:
 def cmd_info(args: argparse.Namespace, out: TextIO) -> int:
     from noisebench.frontends.info import collect_info, format_info
 
-    print(format_info(collect_info(scan=not args.no_scan, timeout_s=args.timeout)), file=out)
+    print(format_info(collect_info(scan=args.scan, timeout_s=args.timeout)), file=out)
     return EXIT_OK
 
 
@@ -380,11 +378,20 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("render", help="plots and report from a saved run folder")
     p.add_argument("folder", help="run folder")
-    p.add_argument("--no-plots", action="store_true", help="report only")
+    p.add_argument(
+        "--no-plots",
+        action="store_true",
+        help="draw no figures (the report embeds those already in FOLDER/plots)",
+    )
     p.set_defaults(func=cmd_render)
 
-    p = sub.add_parser("validate", help="check a plan (.toml) or an ENR table (.csv)")
-    p.add_argument("path", help="plan .toml or ENR .csv")
+    p = sub.add_parser(
+        "validate",
+        help="check a plan, ENR/gain/loss table, instrument profile or scenario",
+        description="Recognise the file by its content (plan, ENR table, gain or loss table, "
+        "instrument profile, simulator scenario) and check it as that.",
+    )
+    p.add_argument("path", help="the file to check (.toml, .csv, .s2p)")
     p.set_defaults(func=cmd_validate)
 
     p = sub.add_parser(
@@ -395,6 +402,8 @@ def build_parser() -> argparse.ArgumentParser:
         "the marker, time one acquisition; print what works and the profile lines to change. "
         "No noise source or generator is switched on. Exit 0: all ok, 1: some checks failed, "
         "4: no connection.",
+        epilog=EPILOG,  # it drives a real analyzer: the same cautions as `run`
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("resource", help="VISA resource string, e.g. TCPIP0::127.0.0.1::5025::SOCKET")
     p.add_argument("--profile", default="generic", help="profile name or .toml path")
@@ -407,8 +416,16 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.set_defaults(func=cmd_probe)
 
-    p = sub.add_parser("info", help="versions, VISA back ends, resources, profiles")
-    p.add_argument("--no-scan", action="store_true", help="do not list VISA resources")
+    p = sub.add_parser("info", help="versions, VISA back ends, profiles (--scan: resources)")
+    scan = p.add_mutually_exclusive_group()
+    scan.add_argument(
+        "--scan",
+        action="store_true",
+        help="also list VISA resources (pyvisa-py's discovery broadcasts on the local network)",
+    )
+    scan.add_argument(
+        "--no-scan", dest="scan", action="store_false", help="do not list resources (default)"
+    )
     p.add_argument(
         "--timeout",
         type=positive_seconds,

@@ -397,11 +397,13 @@ def _add_db_option(p: argparse.ArgumentParser) -> None:
 
 
 def _register_station(sub: Any) -> None:
-    from noisebench.frontends.cli import positive_seconds  # cli imports this module only lazily
+    from noisebench.frontends.cli import EPILOG, positive_seconds  # cli imports us lazily
 
     p = sub.add_parser(
         "station",
         help="production: measure a lot unit by unit",
+        epilog=EPILOG,  # exit codes and the safety cautions, as for `run`
+        formatter_class=argparse.RawDescriptionHelpFormatter,
         description="Measure PLAN on unit after unit: serials (or barcode lines "
         "SN:<serial>;LOT:<lot>;PN:<part>) from --units/--unit or typed at the "
         "prompt until an empty line or q. Each unit gets its run folder, verdict, "

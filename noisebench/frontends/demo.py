@@ -166,6 +166,16 @@ def write_demo_files(folder: Path, *, points: int, seed: int) -> dict[str, Path]
     return plans
 
 
+def fresh_run_folder(out: Path, method: str) -> Path:
+    """``out/<method>``, or ``out/<method>-2``, ``-3``, ... when that already holds files: a
+    demo run again in the same folder keeps the earlier runs and never needs resuming."""
+    candidate, number = out / method, 1
+    while candidate.exists() and (not candidate.is_dir() or any(candidate.iterdir())):
+        number += 1
+        candidate = out / f"{method}-{number}"
+    return candidate
+
+
 def _compare(record: Any, session_truth: Any) -> tuple[list[float], list[float]]:
     freqs = [p.freq_hz for p in record.points]
     if not freqs:
@@ -192,13 +202,16 @@ def run_demo(
     if points < MIN_POINTS:
         raise InputError("--points", f"must be >= {MIN_POINTS} (got {points})")
     out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise InputError("--out", f"{out} is a file", fix="name a folder for the demo")
+    folders = {method: fresh_run_folder(out, method) for method in ("y_factor", "gain")}
     plans = write_demo_files(out, points=points, seed=seed)
     outcomes = []
     for method, plan_path in plans.items():
         plan = load_plan(plan_path)
         session = open_bench(plan.bench)
         try:
-            record, folder = run_plan(plan, folder=out / method, session=session)
+            record, folder = run_plan(plan, folder=folders[method], session=session)
             errors, z = _compare(record, session.sim.truth)
         finally:
             session.close()

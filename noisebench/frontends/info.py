@@ -93,13 +93,17 @@ def _packaged(package: str, folder: str) -> list[str]:
         return [f"unavailable ({type(exc).__name__})"]
 
 
-def collect_info(*, scan: bool = True, timeout_s: float = 5.0) -> dict[str, Any]:
+def collect_info(*, scan: bool = False, timeout_s: float = 5.0) -> dict[str, Any]:
     """Everything ``noisebench info`` prints, as a dict."""
     return {
         "versions": versions(),
         "platform": platform.platform(),
         "visa_backends": visa_backends(),
-        "resources": visa_resources(timeout_s) if scan else "not scanned (--no-scan)",
+        "resources": visa_resources(timeout_s)
+        if scan
+        else (
+            "not scanned (noisebench info --scan lists them; it broadcasts on the local network)"
+        ),
         "profiles": _packaged("noisebench.drivers", "profiles"),
         "scenarios": _packaged("noisebench.sims", "scenarios"),
     }

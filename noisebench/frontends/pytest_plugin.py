@@ -39,6 +39,7 @@ from __future__ import annotations
 
 import copy
 import logging
+import sys
 from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import Any
@@ -161,9 +162,13 @@ def configured_bench_address(config: pytest.Config) -> str | None:
     return config.getoption("nb_bench") or config.getini("nb_bench") or None
 
 
-def pytest_report_header(config: pytest.Config) -> str:
+def pytest_report_header(config: pytest.Config) -> str | None:
+    """One header line, only in a run that configures the plugin (``--nb-*`` or ``nb_*`` ini
+    keys): every pytest run of any project installed beside noisebench loads it."""
     bench = configured_bench_address(config)
     plan = configured_plan_path(config)
+    if not (bench or plan):
+        return None
     return (
         f"noisebench: bench {bench or '(plan / default ' + DEFAULT_BENCH + ')'}, plan {plan or '-'}"
     )
@@ -200,9 +205,24 @@ class _BenchState:
 
         key = section.model_dump_json()
         if key not in self.sessions:
-            self.sessions[key] = open_bench(section, prompt=_capture_free_prompt(self.config))
+            session = open_bench(section, prompt=_capture_free_prompt(self.config))
+            if session.real_hardware:
+                self._show_cautions()
+            self.sessions[key] = session
             self.calibrations[key] = CalibrationStore()
         return self.sessions[key]
+
+    def _show_cautions(self) -> None:
+        """The bench-safety cautions, once per session, past pytest's output capture."""
+        from noisebench.running.safety import cautions_text
+
+        text = "noisebench: real instruments. Safety cautions:\n" + cautions_text()
+        capman = self.config.pluginmanager.getplugin("capturemanager")
+        if capman is None:
+            print(text, file=sys.stderr)
+            return
+        with capman.global_and_fixture_disabled():
+            print(text, file=sys.stderr)
 
     def calibrations_for(self, section: Any) -> Any:
         self.session_for(section)

@@ -13,6 +13,7 @@ from noisebench.results.journal import write_atomic
 from noisebench.results.records import (
     CSV_BUDGET_COLUMNS,
     CSV_COLUMNS,
+    CSV_CONVERSION_COLUMNS,
     CSV_VERDICT_COLUMNS,
     RESULTS_CSV_FILE,
     RESULTS_JSON_FILE,
@@ -43,6 +44,8 @@ def _cell(value: Any) -> str:
 def csv_columns(record: RunRecord) -> list[str]:
     """The columns ``results.csv`` will have for ``record``."""
     columns = list(CSV_COLUMNS)
+    if any(p.conversion is not None for p in record.points):
+        columns += CSV_CONVERSION_COLUMNS
     if record.budgets:
         columns += CSV_BUDGET_COLUMNS
     if record.verdict and record.verdict.get("points"):
@@ -57,6 +60,8 @@ def csv_rows(record: RunRecord) -> Iterator[dict[str, str]]:
     for point in _sorted_points(record.points):
         row: dict[str, Any] = {name: getattr(point, name, None) for name in CSV_COLUMNS}
         row["flags"] = ";".join(flag.value for flag in point.flags)
+        if point.conversion is not None:
+            row.update(point.conversion.model_dump(include=set(CSV_CONVERSION_COLUMNS)))
         budget = budgets.get(point.freq_hz) or {}
         row["U_nf_db"] = budget.get("U_expanded_db")
         row["coverage_k"] = budget.get("k")

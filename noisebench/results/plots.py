@@ -63,8 +63,12 @@ BUDGET_LINES = 6  # contributions drawn one by one; the rest are combined (RSS)
 LOG_AXIS_DECADES = 1.0  # a sweep spanning more than this many decades gets a log axis
 DENSE_TICK_DECADES = 3.0  # up to this many decades the major ticks are 1-2-5, beyond: decades
 
-# A quiet palette of our own. Verdict colours: blue, red, amber (stay apart for colour-blind
-# readers, tested with simulated colour-vision deficiency); shapes carry the verdict as well.
+# Series colours: the colour-blind-safe palette of M. Okabe and K. Ito, "Color Universal
+# Design (CUD): how to make figures and presentations that are friendly to colorblind people"
+# (2008, published on the J*Fly site; year and site from memory). matplotlib >= 3.10 ships the
+# same colours as its "okabe_ito" colour sequence. Verdict colours: blue, red, amber (stay
+# apart for colour-blind readers, tested with simulated colour-vision deficiency); shapes
+# carry the verdict as well.
 INK = "#1f3b57"
 GRID = "#d9dde3"
 GRID_MINOR = "#eef0f3"
@@ -88,6 +92,11 @@ VERDICT_SYMBOL = {
     "not_judged": "\u25a1",
 }
 HOLLOW_VERDICTS = ("pass", "not_judged")
+#: Flagged points on the NF figure: an open black triangle just above the point's upper bar.
+FLAG_MARKER = "v"
+FLAG_MARK_WORDS = "an open triangle (\u25bd) above the point"
+#: Line styles of budget contributions that coincide with one drawn before them.
+COINCIDENT_STYLE = (0, (4, 3))
 
 #: Keys of a limit band (``verdict["limits"]`` entries) drawn on each plot, with legend text.
 LIMIT_LABELS = {
@@ -260,9 +269,11 @@ def _legend(axes, title: str | None = None) -> None:
 
 
 def _legend_rank(label: str) -> int:
-    """Legend order: data first, then limit lines, then verdict markers."""
+    """Legend order: data first, then limit lines, verdict markers, the flagged mark."""
     if label in LIMIT_LABELS.values():
         return 1
+    if label.startswith("flagged"):
+        return 3
     return 2 if label.split(":", 1)[0].replace(" ", "_") in VERDICT_STYLE else 0
 
 
@@ -467,8 +478,30 @@ def nf_figure(record: RunRecord):
     _draw_limits(axes, limit_segments(record, NF_LIMIT_KEYS), scale)
     if record.verdict:
         _draw_verdicts(axes, record, freq, nf)
+    _draw_flagged(axes, record, freq, nf + bars[1])
     _legend(axes)
     return figure
+
+
+def _draw_flagged(axes, record: RunRecord, freq: np.ndarray, tops: np.ndarray) -> None:
+    """Mark flagged points (any flag) above their upper bar; the legend counts them."""
+    flagged = np.array([bool(p.flags) for p in record.points], dtype=bool)
+    count = int(flagged.sum())
+    if not count:
+        return
+    low, high = axes.get_ylim()
+    lift = 0.035 * (high - low)
+    axes.scatter(
+        freq[flagged],
+        tops[flagged] + lift,
+        s=34,
+        marker=FLAG_MARKER,
+        facecolors="none",
+        edgecolors=EDGE,
+        linewidths=1.0,
+        zorder=5,
+        label=f"flagged (see the points table): {count} point{'s' * (count != 1)}",
+    )
 
 
 def gain_figure(record: RunRecord):
@@ -579,6 +612,20 @@ def largest_contributions(
     return names[:keep], names[keep:]
 
 
+def coincident_with(
+    series: dict[str, tuple[np.ndarray, np.ndarray]], earlier: Sequence[str], name: str
+) -> str | None:
+    """The first of ``earlier`` whose line lies on ``name``'s (same points, values within
+    0.1 % of the larger), so the later one is drawn dashed and hollow and says so."""
+    freq, value = series[name]
+    for other in earlier:
+        other_freq, other_value = series[other]
+        if other_freq.shape == freq.shape and np.allclose(other_freq, freq):
+            if np.allclose(other_value, value, rtol=1e-3, atol=0):
+                return other
+    return None
+
+
 def rss_series(
     series: dict[str, tuple[np.ndarray, np.ndarray]], names: Sequence[str]
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -604,15 +651,18 @@ def budget_figure(record: RunRecord):
     dense = len(freq_hz) > DENSE_SWEEP_POINTS
     for index, name in enumerate(shown):
         freq, value = series[name]
+        same = coincident_with(series, shown[:index], name)
+        label = plain_text(name) + (f" (equal to {plain_text(same)})" if same else "")
         axes.plot(
             freq / scale,
             value,
             color=SERIES[index % len(SERIES)],
-            linewidth=1.1,
-            linestyle="-" if index < len(SERIES) else ":",
+            linewidth=1.1 if not same else 1.6,
+            linestyle=COINCIDENT_STYLE if same else "-" if index < len(SERIES) else ":",
             marker="" if dense else SERIES_MARKERS[index % len(SERIES_MARKERS)],
-            markersize=3.5,
-            label=plain_text(name),
+            markersize=3.5 if not same else 6.0,
+            markerfacecolor="none" if same else None,
+            label=label,
         )
     if rest:
         freq, value = rss_series(series, rest)

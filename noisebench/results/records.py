@@ -46,6 +46,21 @@ CSV_COLUMNS: tuple[str, ...] = (
     "floor_correction_db",
     "source_temperature_k",
 )
+
+CSV_CONVERSION_COLUMNS: tuple[str, ...] = (
+    "rf_hz",
+    "lo_hz",
+    "if_hz",
+    "image_hz",
+    "sideband",
+    "nf_type",
+    "nf_ssb_db",
+    "nf_dsb_db",
+    "image_rejection_db",
+    "image_correction_db",
+)
+"""Columns of a frequency-converting DUT's run (``freq_hz`` is then the RF): the frequency plan,
+which figure ``nf_db`` holds, both figures and the image correction applied (NF_SSB - NF_DSB)."""
 CSV_BUDGET_COLUMNS: tuple[str, ...] = ("U_nf_db", "coverage_k", "budget_method")
 CSV_VERDICT_COLUMNS: tuple[str, ...] = ("verdict", "limit")
 

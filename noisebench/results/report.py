@@ -2,8 +2,13 @@
 
 The file needs nothing else to be read, archived or mailed: the style sheet is inline and the
 figures are PNGs embedded as base64 ``data:`` URIs; there is no script and no external link
-(the only links are the contents list's in-page anchors). Every piece of text taken from the
-record goes through :func:`html.escape`.
+(the only links are the contents list's in-page anchors).
+
+The HTML lives in Jinja2 templates (``noisebench/results/templates/``: ``report.html``, its
+building blocks in ``macros.html`` and the style sheet ``report.css``) with autoescaping on,
+so every piece of text taken from the record is escaped by the template engine. This module
+only gathers the facts: plain strings, and a few small node types (:class:`VerdictTag`,
+:class:`Table`, ...) that the macros render.
 
 Sections, in reading order: a "how to read this report" line and the contents; summary (DUT,
 method, bench, dates, instruments, versions, NF and U range, worst margin, verdict); figures;
@@ -21,7 +26,6 @@ of a 1001-point run small.
 from __future__ import annotations
 
 import base64
-import html
 import json
 import logging
 import math
@@ -31,8 +35,11 @@ from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import Any
 
+import jinja2
+
 from noisebench.errors import InputError
 from noisebench.results.plots import (
+    FLAG_MARK_WORDS,
     VERDICT_STYLE,
     VERDICT_SYMBOL,
     coverage_text,
@@ -48,6 +55,7 @@ from noisebench.results.store import (
 )
 from noisebench.running.safety import CAUTIONS as SAFETY_NOTE
 from noisebench.science.point import PointFlag, PointResult
+from noisebench.units import format_frequency
 
 logger = logging.getLogger(__name__)
 
@@ -57,73 +65,10 @@ FAILED_CHECKS_SHOWN = 25  # the worst checks not passed, by margin; the points t
 SCROLL_ROWS = 100  # tables longer than this scroll inside a box with a fixed header
 DEFAULT_T0_K = 290.0
 
-STYLE = """
-:root { --ink:#1f2a36; --muted:#5b6773; --line:#d9dde3; --band:#f4f5f7; --accent:#1f3b57;
-        --pass:%(pass)s; --fail:%(fail)s; --indet:%(indeterminate)s; --nj:%(not_judged)s; }
-* { box-sizing: border-box; }
-body { margin: 0 auto; max-width: 84rem; padding: 2rem clamp(1rem, 3vw, 2.5rem);
-       color: var(--ink); background: #fff;
-       font: 15px/1.5 system-ui, -apple-system, "Segoe UI", Roboto, "Helvetica Neue", sans-serif; }
-header { border-bottom: 3px solid var(--accent); padding-bottom: .6rem; margin-bottom: 1rem; }
-header h1 { font-size: 1.5rem; margin: 0; font-weight: 600; }
-header p { margin: .2rem 0 0; color: var(--muted); }
-.tag { display: inline-block; border: 1px solid var(--muted); border-radius: 3px;
-       padding: 0 .4rem; font-size: .8rem; margin-left: .4rem; color: var(--ink); }
-.howto { background: var(--band); border-left: 4px solid var(--accent); padding: .5rem .9rem;
-         font-size: .9rem; margin: 0 0 .8rem; }
-nav { font-size: .85rem; color: var(--muted); margin-bottom: 1rem; }
-nav a { color: var(--accent); margin-right: .8rem; text-decoration: none; }
-h2 { font-size: 1.15rem; margin: 2rem 0 .6rem; color: var(--accent); font-weight: 600;
-     border-bottom: 1px solid var(--line); padding-bottom: .2rem; }
-h3 { font-size: 1rem; margin: 1.2rem 0 .4rem; }
-p.lead { margin: .3rem 0 .6rem; max-width: 62rem; }
-table { border-collapse: collapse; margin: .4rem 0 1rem; font-size: .86rem; }
-th, td { padding: .25rem .5rem; border-bottom: 1px solid var(--line); text-align: left;
-         vertical-align: top; }
-th { background: var(--band); font-weight: 600; vertical-align: bottom; }
-td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; }
-td.num { white-space: nowrap; }
-table.grid td { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
-table.grid th { text-align: right; }
-table.grid td.t, table.grid th.t { text-align: left; white-space: normal; }
-table.grid { font-size: .8rem; } table.grid th, table.grid td { padding: .2rem .4rem; }
-table.grid tbody tr:nth-child(even) { background: #fafbfc; }
-table.kv th { width: 14rem; background: none; color: var(--muted); font-weight: 500;
-              vertical-align: top; }
-.wrap { overflow-x: auto; max-width: 100%%; }
-.scroll { max-height: 40rem; overflow: auto; border: 1px solid var(--line); margin: .4rem 0 1rem; }
-.scroll table { margin: 0; } .scroll thead th { position: sticky; top: 0; z-index: 1; }
-.verdict { display: inline-block; padding: .3rem .9rem; border-radius: 4px;
-           font-weight: 700; letter-spacing: .06em; }
-.vt { display: inline-block; white-space: nowrap; border-radius: 3px; padding: 0 .3rem;
-      font-weight: 600; }
-.v-pass { color: var(--pass); } .v-not_judged { color: var(--nj); }
-.v-fail { color: #fff; background: var(--fail); }
-.v-indeterminate { color: #1f2a36; background: var(--indet); }
-.verdict.v-pass { color: #fff; background: var(--pass); }
-.verdict.v-other, .verdict.v-not_judged { color: #fff; background: var(--muted); }
-.flag { font-family: ui-monospace, Menlo, Consolas, monospace; font-size: .78rem;
-        background: var(--band); padding: 0 .3rem; border-radius: 3px; white-space: nowrap; }
-.warn { border-left: 4px solid var(--indet); background: #fbf6ec; padding: .5rem .8rem;
-        margin: .6rem 0; }
-.warn ul { margin: .3rem 0; }
-figure { margin: 1rem 0; } figure img { max-width: 100%%; height: auto;
-         border: 1px solid var(--line); }
-figcaption { color: var(--muted); font-size: .85rem; max-width: 62rem; }
-details { margin: .3rem 0 .8rem; } summary { cursor: pointer; color: var(--accent); }
-pre { background: var(--band); padding: .7rem; overflow-x: auto; font-size: .8rem; }
-.safety { border: 1px solid var(--line); background: var(--band); padding: .4rem 1rem;
-          font-size: .88rem; }
-.muted { color: var(--muted); }
-footer { margin-top: 2.5rem; color: var(--muted); font-size: .8rem; }
-@media print { body { padding: 0; max-width: none; }
-               .scroll { max-height: none; overflow: visible; }
-               figure, tr { break-inside: avoid; } nav { display: none; } }
-""" % {key: colour for key, (colour, _marker) in VERDICT_STYLE.items()}
-
 FIGURE_CAPTIONS = {
     "noise_figure.png": "Noise figure of the DUT versus frequency, with its uncertainty, the "
-    "NF limit and each point's verdict (marker shape and colour).",
+    "NF limit, each point's verdict (marker shape and colour) and the flagged points (open "
+    "triangle above the point).",
     "gain.png": "Available gain of the DUT versus frequency, with its uncertainty and the gain "
     "limits.",
     "densities.png": "The raw noise densities behind each point, as measured at the analyzer "
@@ -197,12 +142,101 @@ LABEL_UNITS = (
 )
 
 
+# ----------------------------------------------------------------------------- nodes
+
+
+@dataclass(frozen=True)
+class VerdictTag:
+    """A verdict as symbol + word in its colour class (``macros.verdict``)."""
+
+    css: str
+    text: str
+    kind: str = "verdict"
+
+
+@dataclass(frozen=True)
+class FlagTags:
+    """Flag codes with their meaning as hover text (``macros.flags``)."""
+
+    items: tuple[tuple[str, str], ...]
+    kind: str = "flags"
+
+
+@dataclass(frozen=True)
+class Strong:
+    text: str
+    kind: str = "strong"
+
+
+@dataclass(frozen=True)
+class Seq:
+    """Cells shown one after the other (text and tags)."""
+
+    items: tuple[Any, ...]
+    kind: str = "seq"
+
+
+@dataclass(frozen=True)
+class KeyValues:
+    """A two-column table of labels and values."""
+
+    rows: tuple[tuple[str, Any], ...]
+    kind: str = "kv"
+
+
+@dataclass(frozen=True)
+class Pre:
+    text: str
+    kind: str = "pre"
+
+
+@dataclass(frozen=True)
+class Header:
+    """A column header: label, hover text, numeric (plain tables) or text (grid tables)."""
+
+    label: str
+    numeric: bool = False
+    title: str = ""
+    text: bool = False
+
+
+@dataclass(frozen=True)
+class Table:
+    """Headers and rows of cells. ``grid``: compact, numbers aligned by the table's class;
+    ``box``: "wrap" scrolls sideways, "scroll" also scrolls down under a fixed header."""
+
+    headers: tuple[Header, ...]
+    rows: tuple[tuple[Any, ...], ...]
+    css: str = ""
+    grid: bool = False
+    box: str = "wrap"
+    kind: str = "table"
+
+
+# ----------------------------------------------------------------------------- templates
+
+_ENVIRONMENT: jinja2.Environment | None = None
+
+
+def environment() -> jinja2.Environment:
+    """The report's Jinja2 environment: package templates, autoescape always on, strict."""
+    global _ENVIRONMENT
+    if _ENVIRONMENT is None:
+        _ENVIRONMENT = jinja2.Environment(
+            loader=jinja2.PackageLoader("noisebench.results", "templates"),
+            autoescape=True,  # every template, whatever its file name (report.css included)
+            undefined=jinja2.StrictUndefined,
+            trim_blocks=False,
+            keep_trailing_newline=True,
+        )
+    return _ENVIRONMENT
+
+
+def _macro(name: str) -> Callable[..., str]:
+    return getattr(environment().get_template("macros.html").module, name)
+
+
 # ----------------------------------------------------------------------------- formatting
-
-
-def _e(value: Any) -> str:
-    """Escaped text of anything."""
-    return html.escape(str(value), quote=True)
 
 
 def _is_number(value: Any) -> bool:
@@ -210,27 +244,24 @@ def _is_number(value: Any) -> bool:
 
 
 def _num(value: Any, digits: int = 3) -> str:
-    """A number with ``digits`` decimals (``-`` for missing), escaped."""
+    """A number with ``digits`` decimals (``-`` for missing)."""
     if value is None or isinstance(value, bool) or not isinstance(value, (int, float)):
-        return "-" if value is None else _e(value)
+        return "-" if value is None else str(value)
     if isinstance(value, float) and not math.isfinite(value):
-        return _e(value)
+        return str(value)
     return f"{value:.{digits}f}" if isinstance(value, float) else str(value)
 
 
 def _sig(value: Any) -> str:
-    """A number in 6 significant digits, other values escaped."""
+    """A number in 6 significant digits, other values as text."""
     if isinstance(value, float):
         return f"{value:.6g}"
-    return "-" if value is None else _e(value)
+    return "-" if value is None else str(value)
 
 
 def _freq(freq_hz: float) -> str:
-    """A frequency with its own unit, e.g. ``1.5&nbsp;GHz``."""
-    for scale, unit in ((1e9, "GHz"), (1e6, "MHz"), (1e3, "kHz")):
-        if abs(freq_hz) >= scale:
-            return f"{freq_hz / scale:.6g}&nbsp;{unit}"
-    return f"{freq_hz:.6g}&nbsp;Hz"
+    """A frequency with its own unit, kept on one line, e.g. ``1.5 GHz`` (no-break space)."""
+    return format_frequency(freq_hz, space="\u00a0")
 
 
 def _range(values: Sequence[float], digits: int = 3, unit: str = "") -> str:
@@ -286,8 +317,8 @@ def _when(value: datetime | None) -> str:
     if value is None:
         return "-"
     if value.utcoffset() == timedelta(0):
-        return _e(value.strftime("%Y-%m-%d %H:%M:%S") + " UTC")
-    return _e(value.isoformat(sep=" ", timespec="seconds"))
+        return value.strftime("%Y-%m-%d %H:%M:%S") + " UTC"
+    return value.isoformat(sep=" ", timespec="seconds")
 
 
 def _parse_time(text: Any) -> datetime | None:
@@ -333,45 +364,32 @@ def _verdict_class(verdict: Any) -> str:
     return f"v-{word}" if word in VERDICT_STYLE else "v-other"
 
 
-def verdict_html(verdict: Any) -> str:
+def verdict_tag(verdict: Any) -> VerdictTag:
     """A verdict as symbol + word in its colour, e.g. ``✕ fail`` (readable without colour)."""
     word = _verdict_word(verdict)
     symbol = VERDICT_SYMBOL.get(word, "")
-    text = f"{symbol} {word.replace('_', ' ')}".strip()
-    return f'<span class="vt {_verdict_class(word)}">{_e(text)}</span>'
+    return VerdictTag(_verdict_class(word), f"{symbol} {word.replace('_', ' ')}".strip())
 
 
-def _kv_table(rows: Iterable[tuple[str, str]]) -> str:
-    body = "".join(
-        f"<tr><th>{_e(_keep_together(key))}</th><td>{value}</td></tr>" for key, value in rows
-    )
-    return f'<table class="kv">{body}</table>'
+def verdict_html(verdict: Any) -> str:
+    """:func:`verdict_tag` as HTML, rendered by the report's own macro."""
+    return str(_macro("verdict")(verdict_tag(verdict)))
 
 
-def _td(cell: str | tuple[str, str], numeric: bool) -> str:
-    """One cell: escaped HTML, or (escaped HTML, css class)."""
-    content, css = cell if isinstance(cell, tuple) else (cell, "")
-    css = " ".join(c for c in (css, "num" if numeric else "") if c)
-    return f'<td class="{css}">{content}</td>' if css else f"<td>{content}</td>"
+def _keep_together(text: str) -> str:
+    """Header text that never wraps inside ``k = 2``."""
+    return text.replace("k = ", "k\u00a0=\u00a0")
 
 
-def _table(
-    headers: Sequence[tuple[str, bool]], rows: Iterable[Sequence[Any]], css: str = ""
-) -> str:
-    """A table; ``headers`` are (label, numeric); cells are already-escaped HTML."""
-    head = "".join(
-        f'<th class="num">{_e(_keep_together(h))}</th>'
-        if num
-        else f"<th>{_e(_keep_together(h))}</th>"
-        for h, num in headers
-    )
-    body = "".join(
-        "<tr>" + "".join(_td(c, num) for c, (_, num) in zip(row, headers, strict=True)) + "</tr>"
-        for row in rows
-    )
-    return (
-        f'<div class="wrap"><table class="{css}"><thead><tr>{head}</tr></thead>'
-        f"<tbody>{body}</tbody></table></div>"
+def _kv(rows: Iterable[tuple[str, Any]]) -> KeyValues:
+    return KeyValues(tuple((_keep_together(key), value) for key, value in rows))
+
+
+def _table(headers: Sequence[tuple[str, bool]], rows: Iterable[Sequence[Any]]) -> Table:
+    """A plain table; ``headers`` are (label, numeric); numeric cells are right-aligned."""
+    return Table(
+        tuple(Header(_keep_together(h), numeric=num) for h, num in headers),
+        tuple(tuple(row) for row in rows),
     )
 
 
@@ -380,42 +398,23 @@ class Column:
     """A column of a compact grid table: header, hover text, cell function, text or number."""
 
     header: str
-    cell: Callable[..., str]
+    cell: Callable[..., Any]
     title: str = ""
     text: bool = False
 
 
-def _keep_together(text: str) -> str:
-    """Header text that never wraps inside ``k = 2``."""
-    return text.replace("k = ", "k\u00a0=\u00a0")
-
-
-def _grid_header(column: Column) -> str:
-    css = ' class="t"' if column.text else ""
-    title = f' title="{_e(column.title)}"' if column.title else ""
-    return f"<th{css}{title}>{_e(_keep_together(column.header))}</th>"
-
-
-def _grid(columns: Sequence[Column], rows: Sequence[Sequence[Any]], css: str = "") -> str:
+def _grid(columns: Sequence[Column], rows: Sequence[Sequence[Any]], css: str = "") -> Table:
     """A compact table (numbers right-aligned by the table's class, not per cell).
 
     Each row holds the arguments of every column's ``cell``; a table longer than
     ``SCROLL_ROWS`` rows scrolls inside a box under a fixed header.
     """
-    head = "".join(_grid_header(c) for c in columns)
-    body = "".join(
-        "<tr>"
-        + "".join(
-            f'<td class="t">{c.cell(*args)}</td>' if c.text else f"<td>{c.cell(*args)}</td>"
-            for c in columns
-        )
-        + "</tr>"
-        for args in rows
-    )
-    box = "scroll" if len(rows) > SCROLL_ROWS else "wrap"
-    return (
-        f'<div class="{box}"><table class="grid {css}"><thead><tr>{head}</tr></thead>'
-        f"<tbody>{body}</tbody></table></div>"
+    return Table(
+        tuple(Header(_keep_together(c.header), title=c.title, text=c.text) for c in columns),
+        tuple(tuple(c.cell(*args) for c in columns) for args in rows),
+        css=" ".join(("grid", css)).strip(),
+        grid=True,
+        box="scroll" if len(rows) > SCROLL_ROWS else "wrap",
     )
 
 
@@ -428,8 +427,8 @@ def _switch(key: str, value: bool) -> str:
     return "yes" if value else "no"
 
 
-def render_value(value: Any, depth: int = 0, key: str = "") -> str:
-    """Any JSON-like value as escaped HTML: tables for mappings and lists of mappings.
+def value_node(value: Any, depth: int = 0, key: str = "") -> Any:
+    """Any JSON-like value as a cell: tables for mappings and lists of mappings.
 
     Numbers under a key ending in ``_hz`` are shown as frequencies (kHz/MHz/GHz).
     """
@@ -437,13 +436,19 @@ def render_value(value: Any, depth: int = 0, key: str = "") -> str:
         if not value:
             return "-"
         if depth >= 3:
-            return f"<pre>{_e(json.dumps(value, indent=1, default=str))}</pre>"
-        return _kv_table((str(k), render_value(v, depth + 1, str(k))) for k, v in value.items())
+            return Pre(json.dumps(value, indent=1, default=str))
+        return _kv((str(k), value_node(v, depth + 1, str(k))) for k, v in value.items())
     if isinstance(value, (list, tuple)):
         if value and all(isinstance(v, Mapping) for v in value):
             return _records_table(value, depth)
-        shown = ", ".join(render_value(v, depth + 1, key) for v in value[:20])
-        return shown + (f" … ({len(value)} values)" if len(value) > 20 else "")
+        shown: list[Any] = []
+        for index, item in enumerate(value[:20]):
+            if index:
+                shown.append(", ")
+            shown.append(value_node(item, depth + 1, key))
+        if len(value) > 20:
+            shown.append(f" … ({len(value)} values)")
+        return Seq(tuple(shown))
     if key.endswith("_hz") and _is_number(value):
         return _freq(value)
     if isinstance(value, bool):
@@ -451,14 +456,19 @@ def render_value(value: Any, depth: int = 0, key: str = "") -> str:
     return _sig(value)
 
 
-def _records_table(records: Sequence[Mapping[str, Any]], depth: int) -> str:
+def render_value(value: Any, depth: int = 0, key: str = "") -> str:
+    """Any JSON-like value as escaped HTML (see :func:`value_node`)."""
+    return str(_macro("cell")(value_node(value, depth, key)))
+
+
+def _records_table(records: Sequence[Mapping[str, Any]], depth: int) -> Table:
     """A list of mappings as one table with readable headers (field names -> labels)."""
     keys: list[str] = []
     for item in records:
         keys += [str(k) for k in item if str(k) not in keys]
     numeric = {k: all(_is_number(r.get(k)) or r.get(k) is None for r in records) for k in keys}
     rows = (
-        [render_value(r.get(k), depth + 1, k) if r.get(k) is not None else "-" for k in keys]
+        [value_node(r.get(k), depth + 1, k) if r.get(k) is not None else "-" for k in keys]
         for r in records
     )
     return _table([(label(k), numeric[k]) for k in keys], rows)
@@ -511,19 +521,18 @@ def _budget_list(record: RunRecord) -> list[Mapping[str, Any]]:
 # ----------------------------------------------------------------------------- sections
 
 
-def _header(record: RunRecord) -> str:
+def _header(record: RunRecord) -> dict[str, Any]:
     info = record.info
-    title = f"Noise-figure report: {info.dut_id or info.run_id}"
-    bench = info.notes.get("bench_kind")
-    tag = ' <span class="tag">simulated bench</span>' if bench == "simulated" else ""
-    return (
-        f"<header><h1>{_e(title)}</h1><p>{_e(info.method.value.replace('_', '-'))} method"
-        f" · run {_e(info.run_id)} · {_when(info.started_at)}{tag}</p></header>"
-    )
+    return {
+        "method": info.method.value.replace("_", "-"),
+        "run_id": info.run_id,
+        "started": _when(info.started_at),
+        "simulated": info.notes.get("bench_kind") == "simulated",
+    }
 
 
-def _how_to_read(record: RunRecord) -> str:
-    """One short paragraph on what the numbers, bars, verdicts and flags mean."""
+def _how_to_read(record: RunRecord) -> list[str]:
+    """Short sentences on what the numbers, bars, verdicts and flags mean."""
     t0 = _t0_k(record)
     parts = [
         f"NF is the DUT's noise figure referred to T0 = {t0:g} K, corrected for the "
@@ -548,68 +557,70 @@ def _how_to_read(record: RunRecord) -> str:
                 else "no full budget was computed for this run."
             )
         )
+    if any(p.flags for p in record.points):
+        parts.append(f"In the NF figure, {FLAG_MARK_WORDS} marks a flagged point.")
     if record.verdict:
         rule = str(record.verdict.get("rule") or "")
         symbols = ", ".join(f"{VERDICT_SYMBOL[w]} {w}" for w in ("pass", "fail", "indeterminate"))
         parts.append(
-            f"Decision rule {_e(RULE_TEXT.get(rule, rule or 'not stated'))}. "
-            f"Verdicts are shown by symbol and colour: {_e(symbols)}."
+            f"Decision rule {RULE_TEXT.get(rule, rule or 'not stated')}. "
+            f"Verdicts are shown by symbol and colour: {symbols}."
         )
     parts.append(
         "Flags mark points to read with care; they are explained in words above the "
         "points table. Full-precision values are in results.csv and results.json."
     )
-    return f'<p class="howto"><strong>How to read this report.</strong> {" ".join(parts)}</p>'
+    return parts
 
 
-def _contents(sections: Sequence[tuple[str, str]]) -> str:
-    links = "".join(f'<a href="#{anchor}">{_e(title)}</a>' for anchor, title in sections)
-    return f"<nav>Contents: {links}</nav>"
-
-
-def _summary(record: RunRecord) -> str:
+def _summary(record: RunRecord) -> dict[str, Any]:
     info = record.info
     dut = info.plan.get("dut") if isinstance(info.plan.get("dut"), Mapping) else {}
-    rows = [
+    rows: list[tuple[str, Any]] = [
         (
             "DUT",
-            _e(info.dut_id or "-")
-            + (f" — {_e(dut['description'])}" if dut.get("description") else ""),
+            (info.dut_id or "-") + (f" — {dut['description']}" if dut.get("description") else ""),
         )
     ]
-    method = _e(info.method.value.replace("_", "-")) + " method"
+    method = info.method.value.replace("_", "-") + " method"
     if info.plan.get("name"):
-        method += f" (plan “{_e(info.plan['name'])}”)"
+        method += f" (plan “{info.plan['name']}”)"
     rows += [
         ("Method", method),
         ("Bench", _bench_text(record)),
-        ("Status", _e(info.status)),
+        ("Status", str(info.status)),
         ("Started", _when(info.started_at)),
         ("Ended", _when(info.ended_at)),
     ]
     if info.ended_at and info.started_at:
         rows.append(("Duration", _duration((info.ended_at - info.started_at).total_seconds())))
     rows += [
-        ("Run id", _e(info.run_id)),
-        ("Operator", _e(info.operator or "-")),
-        ("Station", _e(info.station or "-")),
+        ("Run id", info.run_id),
+        ("Operator", info.operator or "-"),
+        ("Station", info.station or "-"),
     ]
     rows += _result_rows(record)
     rows += _temperature_rows(record)
     if info.resumed_at:
         rows.append(("Resumed", ", ".join(_when(t) for t in info.resumed_at)))
     for role, identity in sorted(info.identities.items()):
-        rows.append((f"Instrument: {role.replace('_', ' ')}", _e(identity)))
+        rows.append((f"Instrument: {role.replace('_', ' ')}", str(identity)))
     if info.versions:
-        rows.append(
-            ("Software", ", ".join(f"{_e(k)} {_e(v)}" for k, v in sorted(info.versions.items())))
-        )
-    return (
-        '<h2 id="summary">Summary</h2>'
-        + _verdict_banner(record)
-        + _kv_table(rows)
-        + _warnings(record)
-    )
+        rows.append(("Software", ", ".join(f"{k} {v}" for k, v in sorted(info.versions.items()))))
+    skipped = [
+        {
+            "freq": _freq(s["freq_hz"]) if _is_number(s.get("freq_hz")) else "-",
+            "stage": str(s.get("stage", "-")),
+            "reason": str(s.get("reason", "-")),
+        }
+        for s in _skipped(record)
+    ]
+    return {
+        "banner": _verdict_banner(record),
+        "facts": _kv(rows),
+        "warnings": [str(w) for w in record.warnings],
+        "skipped": skipped,
+    }
 
 
 def _bench_text(record: RunRecord) -> str:
@@ -622,7 +633,7 @@ def _bench_text(record: RunRecord) -> str:
     resources = notes.get("resources")
     if isinstance(resources, Mapping) and resources:
         words += " · " + ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in resources.items())
-    return _e(words)
+    return words
 
 
 def _result_rows(record: RunRecord) -> list[tuple[str, str]]:
@@ -685,64 +696,39 @@ def _temperature_rows(record: RunRecord) -> list[tuple[str, str]]:
     return rows
 
 
-def _verdict_banner(record: RunRecord) -> str:
+def _verdict_banner(record: RunRecord) -> dict[str, Any] | None:
     if not record.verdict:
-        return ""
+        return None
     unit = _verdict_word(record.verdict.get("unit", "-"))
     counts = _judged_by_verdict(record)
-    detail = ", ".join(f"{n} {verdict_html(k)}" for k, n in sorted(counts.items()))
     symbol = VERDICT_SYMBOL.get(unit, "")
-    return (
-        f'<p><span class="verdict {_verdict_class(unit)}">'
-        f"{_e((symbol + ' ' + unit.replace('_', ' ')).strip().upper())}</span>"
-        + (f" &nbsp; points: {detail}" if detail else "")
-        + "</p>"
-    )
+    return {
+        "css": _verdict_class(unit),
+        "text": (symbol + " " + unit.replace("_", " ")).strip().upper(),
+        "counts": [(n, verdict_tag(k)) for k, n in sorted(counts.items())],
+    }
 
 
-def _warnings(record: RunRecord) -> str:
-    parts = []
-    if record.warnings:
-        items = "".join(f"<li>{_e(w)}</li>" for w in record.warnings)
-        parts.append(f'<div class="warn"><strong>Read with care</strong><ul>{items}</ul></div>')
-    skipped = _skipped(record)
-    if skipped:
-        items = "".join(
-            f"<li>{_freq(s['freq_hz']) if _is_number(s.get('freq_hz')) else '-'} "
-            f"({_e(s.get('stage', '-'))}): {_e(s.get('reason', '-'))}</li>"
-            for s in skipped
-        )
-        parts.append(
-            f'<div class="warn"><strong>{len(skipped)} point'
-            f"{'s' if len(skipped) != 1 else ''} not measured</strong> (refused by "
-            f"the physics; the run went on)<ul>{items}</ul></div>"
-        )
-    return "".join(parts)
+def _figures(images: Mapping[str, bytes]) -> list[dict[str, str]]:
+    return [
+        {
+            "src": "data:image/png;base64," + base64.b64encode(png).decode("ascii"),
+            "caption": FIGURE_CAPTIONS.get(name, name),
+        }
+        for name, png in images.items()
+    ]
 
 
-def _figures(images: Mapping[str, bytes]) -> str:
-    if not images:
-        return ""
-    parts = ['<h2 id="figures">Figures</h2>']
-    for name, png in images.items():
-        data = base64.b64encode(png).decode("ascii")
-        caption = FIGURE_CAPTIONS.get(name, name)
-        parts.append(
-            f'<figure><img alt="{_e(caption)}" src="data:image/png;base64,{data}">'
-            f"<figcaption>{_e(caption)}</figcaption></figure>"
-        )
-    return "".join(parts)
-
-
-def _flags_html(point: PointResult) -> str:
-    return " ".join(
-        f'<span class="flag" title="{_e(FLAG_DESCRIPTIONS.get(f, f.value))}">{_e(f.value)}</span>'
-        for f in point.flags
-    )
+def _flag_tags(point: PointResult) -> FlagTags:
+    return FlagTags(tuple((f.value, FLAG_DESCRIPTIONS.get(f, f.value)) for f in point.flags))
 
 
 def _point_columns(record: RunRecord, freq: FrequencyColumn) -> list[Column]:
-    """The per-point table's columns: only those the record has data for."""
+    """The per-point table's columns: only those the record has data for.
+
+    A new column (e.g. a frequency-plan quantity) is one more ``Column`` here: a header with
+    its unit, a cell function of (point, budget, verdict entry) returning text, a hover text.
+    """
     points = record.points
     has = {
         name: any(getattr(p, name) is not None for p in points)
@@ -847,9 +833,9 @@ def _point_columns(record: RunRecord, freq: FrequencyColumn) -> list[Column]:
                 lambda p, b, v: _margin_cell(v),
                 "NF limit minus NF; negative: NF above the limit",
             ),
-            Column("Verdict", lambda p, b, v: verdict_html(v.get("verdict")), text=True),
+            Column("Verdict", lambda p, b, v: verdict_tag(v.get("verdict")), text=True),
         ]
-    columns.append(Column("Flags", lambda p, b, v: _flags_html(p), text=True))
+    columns.append(Column("Flags", lambda p, b, v: _flag_tags(p), text=True))
     return columns
 
 
@@ -858,54 +844,55 @@ def _margin_cell(entry: Mapping[str, Any]) -> str:
     return "-" if margin is None else f"{margin:+.3f}"
 
 
-def _points(record: RunRecord) -> str:
+def _points(record: RunRecord) -> dict[str, Any] | None:
     if not record.points:
-        return '<h2 id="points">Points</h2><p>No point was measured.</p>'
+        return None
     freq = FrequencyColumn.of([p.freq_hz for p in record.points])
     columns = _point_columns(record, freq)
     budgets, verdicts = record.budgets_by_freq(), record.verdicts_by_freq()
     rows = [(p, budgets.get(p.freq_hz) or {}, verdicts.get(p.freq_hz) or {}) for p in record.points]
-    table = _grid(columns, rows, css="points")
-    return '<h2 id="points">Points</h2>' + _flag_legend(record) + table
+    return {"flag_legend": _flag_legend(record), "table": _grid(columns, rows, css="points")}
 
 
-def _flag_legend(record: RunRecord) -> str:
+def _flag_legend(record: RunRecord) -> Table | None:
     used: dict[PointFlag, int] = {}
     for point in record.points:
         for flag in point.flags:
             used[flag] = used.get(flag, 0) + 1
     if not used:
-        return '<p class="lead">No point carries a flag.</p>'
+        return None
     rows = (
-        (f'<span class="flag">{_e(f.value)}</span>', str(n), _e(FLAG_DESCRIPTIONS.get(f, f.value)))
+        (
+            FlagTags(((f.value, FLAG_DESCRIPTIONS.get(f, f.value)),)),
+            str(n),
+            FLAG_DESCRIPTIONS.get(f, f.value),
+        )
         for f, n in used.items()
     )
-    return "<h3>Flags: what the codes in the last column mean</h3>" + _table(
-        [("Flag", False), ("Points", True), ("Meaning", False)], rows
-    )
+    return _table([("Flag", False), ("Points", True), ("Meaning", False)], rows)
 
 
-def _verdict_section(record: RunRecord) -> str:
+def _verdict_section(record: RunRecord) -> dict[str, Any] | None:
     verdict = record.verdict
     if not verdict:
-        return ""
-    rows = [("Unit verdict", verdict_html(verdict.get("unit", "-")))]
+        return None
+    rows: list[tuple[str, Any]] = [("Unit verdict", verdict_tag(verdict.get("unit", "-")))]
     if verdict.get("rule"):
-        rows.append(("Decision rule", _e(RULE_TEXT.get(str(verdict["rule"]), verdict["rule"]))))
+        rule = str(verdict["rule"])
+        rows.append(("Decision rule", RULE_TEXT.get(rule, rule)))
     for note in verdict.get("notes") or []:
-        rows.append(("Note", _e(note)))
-    parts = ['<h2 id="verdict">Limits and verdict</h2>', _kv_table(rows)]
+        rows.append(("Note", str(note)))
     limits = [b for b in verdict.get("limits") or [] if isinstance(b, Mapping)]
-    if limits:
-        parts += ["<h3>Limit bands</h3>", _records_table(limits, depth=1)]
     bands = [b for b in verdict.get("bands") or [] if isinstance(b, Mapping)]
-    if bands:
-        parts += ["<h3>Per band</h3>", _band_table(bands)]
-    parts.append(_failed_checks(verdict))
-    return "".join(parts)
+    return {
+        "facts": _kv(rows),
+        "limits": _records_table(limits, depth=1) if limits else None,
+        "bands": _band_table(bands) if bands else None,
+        "failed": _failed_checks(verdict),
+    }
 
 
-def _band_table(bands: Sequence[Mapping[str, Any]]) -> str:
+def _band_table(bands: Sequence[Mapping[str, Any]]) -> Table:
     headers = [
         ("Band", True),
         ("Name", False),
@@ -918,30 +905,30 @@ def _band_table(bands: Sequence[Mapping[str, Any]]) -> str:
     rows = [
         [
             _sig(b.get("band")),
-            _e(b.get("name") or "-"),
+            str(b.get("name") or "-"),
             _freq(b["start_hz"]) if _is_number(b.get("start_hz")) else "-",
             _freq(b["stop_hz"]) if _is_number(b.get("stop_hz")) else "-",
             _sig(b.get("points")),
-            verdict_html(b.get("verdict")),
-            _check_text(b["flatness"]) if isinstance(b.get("flatness"), Mapping) else "-",
+            verdict_tag(b.get("verdict")),
+            _check_cell(b["flatness"]) if isinstance(b.get("flatness"), Mapping) else "-",
         ]
         for b in bands
     ]
     return _table(headers, rows)
 
 
-def _check_text(check: Mapping[str, Any]) -> str:
+def _check_cell(check: Mapping[str, Any]) -> Seq:
     value, limit, u = check.get("value"), check.get("limit"), check.get("U")
-    text = f"{_num(value)} dB vs {_e(check.get('kind', ''))} {_num(limit)} dB"
+    text = f"{_num(value)} dB vs {check.get('kind', '')} {_num(limit)} dB"
     if _is_number(u):
         text += f" (U {_num(u)} dB)"
-    return f"{text}: {verdict_html(check.get('verdict', '-'))}"
+    return Seq((f"{text}: ", verdict_tag(check.get("verdict", "-"))))
 
 
 QUANTITY_WORDS = {"nf_db": "NF", "gain_db": "gain", "flatness_db": "gain flatness"}
 
 
-def _failed_checks(verdict: Mapping[str, Any]) -> str:
+def _failed_checks(verdict: Mapping[str, Any]) -> dict[str, Any] | None:
     """The checks that did not pass, worst margin first (at most ``FAILED_CHECKS_SHOWN``)."""
     failed = [
         (entry, check)
@@ -950,6 +937,8 @@ def _failed_checks(verdict: Mapping[str, Any]) -> str:
         for check in _checks(entry)
         if check.get("verdict") in ("fail", "indeterminate")
     ]
+    if not failed:
+        return None
     failed.sort(
         key=lambda pair: pair[1]["margin_db"] if _is_number(pair[1].get("margin_db")) else math.inf
     )
@@ -961,18 +950,16 @@ def _failed_checks(verdict: Mapping[str, Any]) -> str:
         rows.append(
             [
                 freq.cell(entry.get("freq_hz")),
-                _e(QUANTITY_WORDS.get(quantity, quantity)),
-                _e(check.get("kind", "-")),
+                QUANTITY_WORDS.get(quantity, quantity),
+                str(check.get("kind", "-")),
                 _num(check.get("limit")),
                 _num(check.get("value")),
                 _num(check.get("U")),
                 f"{margin:+.3f}" if _is_number(margin) else "-",
-                verdict_html(check["verdict"]),
-                _e(check.get("note") or ""),
+                verdict_tag(check["verdict"]),
+                str(check.get("note") or ""),
             ]
         )
-    if not rows:
-        return ""
     headers = [
         (freq.header, True),
         ("Quantity", False),
@@ -989,10 +976,7 @@ def _failed_checks(verdict: Mapping[str, Any]) -> str:
         if len(failed) <= FAILED_CHECKS_SHOWN
         else f"the {FAILED_CHECKS_SHOWN} worst of {len(failed)}; every point is in the points table"
     )
-    return (
-        f'<h3>Checks not passed ({shown})</h3><p class="lead">Worst first. Margin: how '
-        "far the value is inside its limit (negative: outside).</p>" + _table(headers, rows)
-    )
+    return {"shown": shown, "table": _table(headers, rows)}
 
 
 # ----------------------------------------------------------------------------- budget
@@ -1011,7 +995,7 @@ def _largest(budget: Mapping[str, Any]) -> str:
     if not items:
         return "-"
     top = max(items, key=lambda c: abs(c["contribution_db"]))
-    return f"{_e(top.get('name', '?'))} ({top['contribution_db']:+.4f} dB)"
+    return f"{top.get('name', '?')} ({top['contribution_db']:+.4f} dB)"
 
 
 def _share(contribution_db: float, u_c: Any) -> str:
@@ -1046,7 +1030,7 @@ def _distribution(name: Any) -> str:
     return DISTRIBUTION_WORDS.get(str(name), str(name))
 
 
-def _sweep_contributions(budgets: Sequence[Mapping[str, Any]]) -> str:
+def _sweep_contributions(budgets: Sequence[Mapping[str, Any]]) -> Table:
     """One row per input: its distribution, u, and the range of its contribution over the sweep."""
     lines: dict[str, list[Mapping[str, Any]]] = {}
     shares: dict[str, list[float]] = {}
@@ -1068,12 +1052,12 @@ def _sweep_contributions(budgets: Sequence[Mapping[str, Any]]) -> str:
         dists = {str(c.get("distribution", "-")) for c in items}
         rows.append(
             [
-                _e(name),
-                _e(", ".join(sorted(_distribution(d) for d in dists))),
-                _e(_range(us, 4) if us else "-"),
-                _e(", ".join(sorted(units))),
-                _e(_range([abs(c["contribution_db"]) for c in items], 4)),
-                _e(_range(shares.get(name, []), 1)),
+                name,
+                ", ".join(sorted(_distribution(d) for d in dists)),
+                _range(us, 4) if us else "-",
+                ", ".join(sorted(units)),
+                _range([abs(c["contribution_db"]) for c in items], 4),
+                _range(shares.get(name, []), 1),
             ]
         )
     headers = [
@@ -1087,7 +1071,7 @@ def _sweep_contributions(budgets: Sequence[Mapping[str, Any]]) -> str:
     return _table(headers, rows)
 
 
-def _budget_at(budget: Mapping[str, Any]) -> str:
+def _budget_at(budget: Mapping[str, Any]) -> Table:
     """The classic budget table at one frequency."""
     lines = sorted(_contributions(budget), key=lambda c: abs(c["contribution_db"]), reverse=True)
     u_c = budget.get("u_combined_db")
@@ -1100,12 +1084,12 @@ def _budget_at(budget: Mapping[str, Any]) -> str:
         ("cᵢ·u(xᵢ) (dB)", True),
         ("Share of u_c² (%)", True),
     ]
-    rows = [
+    rows: list[list[Any]] = [
         [
-            _e(c.get("name", "?")),
-            _e(_distribution(c.get("distribution", "-"))),
+            str(c.get("name", "?")),
+            _distribution(c.get("distribution", "-")),
             _sig(c.get("u")),
-            _e(c.get("unit", "")),
+            str(c.get("unit", "")),
             _sig(c.get("sensitivity")),
             f"{c['contribution_db']:+.4f}",
             _share(c["contribution_db"], u_c),
@@ -1114,58 +1098,48 @@ def _budget_at(budget: Mapping[str, Any]) -> str:
     ]
     rows.append(
         [
-            "<strong>combined standard uncertainty u_c</strong>",
+            Strong("combined standard uncertainty u_c"),
             "",
             "",
             "",
             "",
-            f"<strong>{_num(u_c, 4)}</strong>",
+            Strong(_num(u_c, 4)),
             "100.0" if _is_number(u_c) else "-",
         ]
     )
     rows.append(
         [
-            f"<strong>expanded uncertainty U (k = {_sig(budget.get('k'))})</strong>",
+            Strong(f"expanded uncertainty U (k = {_sig(budget.get('k'))})"),
             "",
             "",
             "",
             "",
-            f"<strong>{_num(budget.get('U_expanded_db'), 4)}</strong>",
+            Strong(_num(budget.get("U_expanded_db"), 4)),
             "",
         ]
     )
+    return _table(headers, rows)
+
+
+def _monte_carlo_facts(budget: Mapping[str, Any]) -> list[tuple[str, Any]]:
     mc = budget.get("monte_carlo")
-    tail = ""
-    if isinstance(mc, Mapping):
-        tail = (
-            '<p class="lead">Monte Carlo: '
-            + ", ".join(
-                f"{_e(label(str(k)))} {render_value(v, 3, str(k))}"
-                for k, v in mc.items()
-                if v is not None
-            )
-            + ".</p>"
-        )
-    return _table(headers, rows) + tail
+    if not isinstance(mc, Mapping):
+        return []
+    return [(label(str(k)), value_node(v, 3, str(k))) for k, v in mc.items() if v is not None]
 
 
-def _omitted_note(budgets: Sequence[Mapping[str, Any]]) -> str:
+def _omitted(budgets: Sequence[Mapping[str, Any]]) -> list[str]:
     omitted: list[str] = []
     for budget in budgets:
         omitted += [str(o) for o in budget.get("omitted") or [] if str(o) not in omitted]
-    if not omitted:
-        return ""
-    return f"<p>Not included (no data): {', '.join(_e(o) for o in omitted)}.</p>"
+    return omitted
 
 
-def _budget_matrix(budgets: Sequence[Mapping[str, Any]]) -> str:
-    """Per frequency: u_c, k, U and every signed contribution (dB), collapsed."""
-    freq = FrequencyColumn.of([b["freq_hz"] for b in budgets])
+def _budget_matrix(budgets: Sequence[Mapping[str, Any]]) -> Table | None:
+    """Per frequency: u_c, k, U and every signed contribution (dB); None above the limit."""
     if len(budgets) > DETAIL_ROWS_MAX:
-        return (
-            f'<p class="muted">Per-frequency budgets of {len(budgets)} points are in '
-            "results.json (not repeated here).</p>"
-        )
+        return None
+    freq = FrequencyColumn.of([b["freq_hz"] for b in budgets])
     names: list[str] = []
     for budget in budgets:
         names += [
@@ -1191,7 +1165,7 @@ def _budget_matrix(budgets: Sequence[Mapping[str, Any]]) -> str:
 
     columns = [
         Column(freq.header, lambda b: freq.cell(b["freq_hz"])),
-        Column("Method", lambda b: _e(b.get("method", "-")), text=True),
+        Column("Method", lambda b: str(b.get("method", "-")), text=True),
         Column("u_c (dB)", lambda b: _num(b.get("u_combined_db"), 4)),
         Column("k", lambda b: _sig(b.get("k"))),
         Column("U (dB)", lambda b: _num(b.get("U_expanded_db"), 4)),
@@ -1200,11 +1174,7 @@ def _budget_matrix(budgets: Sequence[Mapping[str, Any]]) -> str:
         columns.append(Column("MC interval (dB)", _mc_interval, text=True))
     columns += [Column(f"{name} (dB)", contribution(name)) for name in names]
     columns.append(Column("Largest contribution", _largest, text=True))
-    return (
-        f"<details><summary>Contributions cᵢ·u(xᵢ) per frequency ({len(budgets)} "
-        f"frequencies, signed, dB)</summary>{_grid(columns, [(b,) for b in budgets])}"
-        "</details>"
-    )
+    return _grid(columns, [(b,) for b in budgets])
 
 
 def _mc_interval(budget: Mapping[str, Any]) -> str:
@@ -1218,31 +1188,26 @@ def _mc_interval(budget: Mapping[str, Any]) -> str:
     return "-"
 
 
-def _budgets(record: RunRecord) -> str:
+def _budgets(record: RunRecord) -> dict[str, Any] | None:
     budgets = _budget_list(record)
     if not budgets:
-        return ""
+        return None
     worst = max(
         budgets,
         key=lambda b: b.get("U_expanded_db") if _is_number(b.get("U_expanded_db")) else -math.inf,
     )
-    lead = (
-        f'<p class="lead">{_e(_method_text(budgets))}; expanded uncertainty U '
-        f"({_e(coverage_text(budgets))}) from "
-        f"{_e(_range([b.get('U_expanded_db') for b in budgets], 3, 'dB'))} over "
-        f"{len(budgets)} frequencies. Contributions cᵢ·u(xᵢ) are standard uncertainties "
-        "(k = 1) in dB of NF; their squares add up to u_c².</p>"
-    )
-    return (
-        '<h2 id="budget">Uncertainty budget</h2>'
-        + lead
-        + "<h3>Over the sweep</h3>"
-        + _sweep_contributions(budgets)
-        + f"<h3>At {_freq(worst['freq_hz'])}, the point with the largest U</h3>"
-        + _budget_at(worst)
-        + _omitted_note(budgets)
-        + _budget_matrix(budgets)
-    )
+    return {
+        "methods": _method_text(budgets),
+        "coverage": coverage_text(budgets),
+        "u_range": _range([b.get("U_expanded_db") for b in budgets], 3, "dB"),
+        "count": len(budgets),
+        "sweep": _sweep_contributions(budgets),
+        "worst_freq": _freq(worst["freq_hz"]),
+        "worst": _budget_at(worst),
+        "monte_carlo": _monte_carlo_facts(worst),
+        "omitted": _omitted(budgets),
+        "matrix": _budget_matrix(budgets),
+    }
 
 
 # ----------------------------------------------------------------------------- calibration
@@ -1291,8 +1256,8 @@ def _calibration_groups(entries: Sequence[Mapping[str, Any]]) -> list[list[Mappi
     return list(groups.values())
 
 
-def _calibration_entries(entries: Sequence[Mapping[str, Any]]) -> str:
-    """One row per group of calibrations with the same settings, then per-frequency results."""
+def _calibration_table(entries: Sequence[Mapping[str, Any]]) -> Table:
+    """One row per group of calibrations with the same settings."""
     headers = [
         ("Kind", False),
         ("Calibrations", True),
@@ -1308,7 +1273,7 @@ def _calibration_entries(entries: Sequence[Mapping[str, Any]]) -> str:
         ("Cold / termination T (K)", True),
         ("Time (s)", True),
     ]
-    rows, summary = [], []
+    rows = []
     for group in _calibration_groups(entries):
         first = group[0]
         settings = first.get("settings") if isinstance(first.get("settings"), Mapping) else {}
@@ -1323,30 +1288,22 @@ def _calibration_entries(entries: Sequence[Mapping[str, Any]]) -> str:
         rbw = settings.get("rbw_hz")
         rows.append(
             [
-                _e(first.get("kind", "-")),
+                str(first.get("kind", "-")),
                 str(len(group)),
                 _span_text(freqs),
                 _time_span(times),
                 _freq(rbw) if _is_number(rbw) else "-",
-                _e(_filter_text(settings.get("rbw_filter"))),
-                _e(settings.get("detector", "-")),
-                _e(settings.get("averaging_scale", "-")),
-                _e(_range(averages, 0)) if averages else "-",
+                _filter_text(settings.get("rbw_filter")),
+                str(settings.get("detector", "-")),
+                str(settings.get("averaging_scale", "-")),
+                _range(averages, 0) if averages else "-",
                 _sig(settings.get("attenuation_db")),
-                render_value(settings.get("preamp"), key="preamp"),
+                value_node(settings.get("preamp"), key="preamp"),
                 _num(first.get("cold_temperature_k"), 2),
                 _num(math.fsum(seconds), 3) if seconds else "-",
             ]
         )
-    for number, entry in enumerate(entries, start=1):
-        summary += [
-            {"calibration": number, **r}
-            for r in entry.get("summary") or []
-            if isinstance(r, Mapping)
-        ]
-    kinds = sorted({str(e.get("kind")) for e in entries if e.get("kind") in CALIBRATION_TEXT})
-    intro = "".join(f'<p class="lead">{_e(CALIBRATION_TEXT[k])}</p>' for k in kinds)
-    return intro + _table(headers, rows) + _calibration_results(summary)
+    return _table(headers, rows)
 
 
 def _time_span(times: Sequence[datetime]) -> str:
@@ -1354,9 +1311,9 @@ def _time_span(times: Sequence[datetime]) -> str:
         return "-"
     first, last = times[0], times[-1]
     if first == last:
-        return _e(first.strftime("%Y-%m-%d %H:%M:%S"))
+        return first.strftime("%Y-%m-%d %H:%M:%S")
     same_day = first.date() == last.date()
-    return _e(
+    return (
         f"{first:%Y-%m-%d %H:%M:%S} to {last:%H:%M:%S}"
         if same_day
         else f"{first:%Y-%m-%d %H:%M:%S} to {last:%Y-%m-%d %H:%M:%S}"
@@ -1366,32 +1323,23 @@ def _time_span(times: Sequence[datetime]) -> str:
 CALIBRATION_SUMMARY_SKIP = ("calibration", "freq_hz", "floor_w_per_hz")
 
 
-def _calibration_results(summary: list[dict[str, Any]]) -> str:
+def _calibration_results(summary: list[dict[str, Any]]) -> dict[str, Any]:
     """Ranges of the per-frequency calibration results, and the values per frequency."""
     if not summary:
-        return ""
+        return {"ranges": None, "detail": None, "frequencies": 0}
     keys: list[str] = []
     for row in summary:
         keys += [k for k in row if k not in keys and k not in CALIBRATION_SUMMARY_SKIP]
     numeric = [k for k in keys if any(_is_number(r.get(k)) for r in summary)]
-    ranges = _kv_table(
-        (label(k), _e(_range([r.get(k) for r in summary], _digits_for(k)))) for k in numeric
-    )
+    ranges = _kv((label(k), _range([r.get(k) for r in summary], _digits_for(k))) for k in numeric)
     summary.sort(key=lambda r: r.get("freq_hz") if _is_number(r.get("freq_hz")) else math.inf)
-    if len(summary) > DETAIL_ROWS_MAX:
-        detail = (
-            f'<p class="muted">Per-frequency calibration results of {len(summary)} '
-            "frequencies are in results.json (not repeated here).</p>"
-        )
-    else:
+    detail = None
+    if len(summary) <= DETAIL_ROWS_MAX:
         freq = FrequencyColumn.of([r["freq_hz"] for r in summary if _is_number(r.get("freq_hz"))])
         columns = [Column(freq.header, lambda r: freq.cell(r.get("freq_hz")))]
         columns += [Column(label(k), _calibration_cell(k)) for k in numeric]
-        detail = (
-            f"<details><summary>Per-frequency calibration results ({len(summary)} "
-            f"frequencies)</summary>{_grid(columns, [(r,) for r in summary])}</details>"
-        )
-    return "<h3>Calibration results over the sweep</h3>" + ranges + detail
+        detail = _grid(columns, [(r,) for r in summary])
+    return {"ranges": ranges, "detail": detail, "frequencies": len(summary)}
 
 
 def _digits_for(key: str) -> int:
@@ -1407,56 +1355,57 @@ def _calibration_cell(key: str) -> Callable[[Mapping[str, Any]], str]:
     )
 
 
-def _calibration(record: RunRecord) -> str:
+def _calibration(record: RunRecord) -> dict[str, Any] | None:
     latest = record.info.calibration or (record.calibrations[-1] if record.calibrations else None)
     if not latest:
-        return ""
-    count = len(record.calibrations)
-    intro = (
-        f"<p>Calibration data saved {count} time{'s' if count != 1 else ''} during the "
-        "run; the latest is shown.</p>"
-        if count > 1
-        else ""
-    )
+        return None
+    section: dict[str, Any] = {"saved": len(record.calibrations), "raw": None, "groups": None}
     entries = latest.get("entries")
-    if isinstance(entries, list) and all(isinstance(e, Mapping) for e in entries):
-        body = _calibration_entries(entries) if entries else "<p>No calibration entry.</p>"
-    else:
-        body = render_value(latest)
-    return '<h2 id="calibration">Calibration</h2>' + intro + body
+    if not (isinstance(entries, list) and all(isinstance(e, Mapping) for e in entries)):
+        section["raw"] = value_node(latest)
+        return section
+    if not entries:
+        return section
+    summary = [
+        {"calibration": number, **r}
+        for number, entry in enumerate(entries, start=1)
+        for r in entry.get("summary") or []
+        if isinstance(r, Mapping)
+    ]
+    kinds = sorted({str(e.get("kind")) for e in entries if e.get("kind") in CALIBRATION_TEXT})
+    section.update(
+        intros=[CALIBRATION_TEXT[k] for k in kinds],
+        groups=_calibration_table(entries),
+        **_calibration_results(summary),
+    )
+    return section
 
 
 GAIN_POINT_KEYS = ("gain_db", "u_gain_db", "through_dbm", "dut_dbm", "snr_through_db", "snr_dut_db")
 
 
-def _gain_measurement(record: RunRecord) -> str:
+def _gain_measurement(record: RunRecord) -> dict[str, Any] | None:
     """The measured-gain pass (generator + analyzer): level, ranges, per-frequency values."""
     result = record.info.notes.get("gain_measurement")
     if not isinstance(result, Mapping):
-        return ""
+        return None
     points = [
         p
         for p in result.get("points") or []
         if isinstance(p, Mapping) and _is_number(p.get("freq_hz"))
     ]
     level = result.get("generator_level_dbm")
-    lead = (
-        "The DUT's gain was measured with the signal generator: a THROUGH pass (cable "
-        "only), then a DUT pass, the tone read in a marker band with the noise removed. "
-        "These are path gains from the generator to the analyzer (the DUT with its input "
-        "cable); the points table shows the DUT's own gain after the loss corrections"
-    )
+    conditions = ""
     if _is_number(level):
-        lead += f"; generator level {level:.2f} dBm"
+        conditions += f"; generator level {level:.2f} dBm"
     if result.get("level_limited_by"):
-        lead += f" (set by the {_e(result['level_limited_by'])})"
+        conditions += f" (set by the {result['level_limited_by']})"
     if _is_number(result.get("rbw_hz")):
-        lead += f", RBW {_freq(result['rbw_hz'])}"
+        conditions += f", RBW {_freq(result['rbw_hz'])}"
     if _is_number(result.get("band_hz")):
-        lead += f", marker band {_freq(result['band_hz'])}"
-    parts = ['<h2 id="gain">Gain measurement</h2>', f'<p class="lead">{lead}.</p>']
-    ranges = [
-        (label(k), _e(_range([p.get(k) for p in points], 3, "")))
+        conditions += f", marker band {_freq(result['band_hz'])}"
+    ranges: list[tuple[str, Any]] = [
+        (label(k), _range([p.get(k) for p in points], 3, ""))
         for k in GAIN_POINT_KEYS
         if any(_is_number(p.get(k)) for p in points)
     ]
@@ -1471,46 +1420,44 @@ def _gain_measurement(record: RunRecord) -> str:
     ranges += [
         (
             f"u gain: {t} (dB)",
-            _e(
-                _range(
-                    [
-                        p["uncertainty_db"].get(t)
-                        for p in points
-                        if isinstance(p.get("uncertainty_db"), Mapping)
-                    ],
-                    4,
-                )
+            _range(
+                [
+                    p["uncertainty_db"].get(t)
+                    for p in points
+                    if isinstance(p.get("uncertainty_db"), Mapping)
+                ],
+                4,
             ),
         )
         for t in terms
     ]
-    parts.append(_kv_table(ranges))
+    detail = None
     if points and len(points) <= DETAIL_ROWS_MAX:
         freq = FrequencyColumn.of([p["freq_hz"] for p in points])
         columns = [Column(freq.header, lambda p: freq.cell(p["freq_hz"]))]
         columns += [Column(label(k), _calibration_cell(k)) for k in GAIN_POINT_KEYS]
         columns.append(
-            Column("Flags", lambda p: _e(", ".join(map(str, p.get("flags") or []))), text=True)
+            Column("Flags", lambda p: ", ".join(map(str, p.get("flags") or [])), text=True)
         )
-        parts.append(
-            f"<details><summary>Per-frequency gain measurement ({len(points)} "
-            f"frequencies)</summary>{_grid(columns, [(p,) for p in points])}"
-            "</details>"
-        )
+        detail = _grid(columns, [(p,) for p in points])
     settings = result.get("plan")
-    if isinstance(settings, Mapping):
-        shown = {k: v for k, v in settings.items() if k != "freqs_hz"}
-        parts.append(
-            "<details><summary>Gain-measurement settings</summary>"
-            f"{render_value(shown, 1)}</details>"
-        )
-    return "".join(parts)
+    return {
+        "conditions": conditions,
+        "ranges": _kv(ranges),
+        "detail": detail,
+        "frequencies": len(points),
+        "settings": (
+            value_node({k: v for k, v in settings.items() if k != "freqs_hz"}, 1)
+            if isinstance(settings, Mapping)
+            else None
+        ),
+    }
 
 
-def _settings(record: RunRecord) -> str:
+def _settings(record: RunRecord) -> Table | None:
     groups = [g for g in record.info.applied_settings if isinstance(g, Mapping)]
     if not groups:
-        return ""
+        return None
     rows = []
     for group in groups:
         settings = group.get("settings") if isinstance(group.get("settings"), Mapping) else group
@@ -1537,7 +1484,7 @@ def _settings(record: RunRecord) -> str:
             (
                 r[k]
                 if k == "frequencies" and r.get(k)
-                else render_value(r.get(k), 2, k)
+                else value_node(r.get(k), 2, k)
                 if r.get(k) is not None
                 else "-"
             )
@@ -1545,41 +1492,21 @@ def _settings(record: RunRecord) -> str:
         ]
         for r in rows
     ]
-    return (
-        '<h2 id="settings">Acquisition settings applied</h2><p class="lead">What the '
-        "analyzer reported it applied (after its own rounding), per group of points.</p>"
-        + _table(headers, cells)
-    )
+    return _table(headers, cells)
 
 
 NOTES_SHOWN_ELSEWHERE = ("resources", "bench_kind", "skipped_points", "gain_measurement")
 
 
-def _plan_and_notes(record: RunRecord) -> str:
-    parts = []
+def _notes(record: RunRecord) -> dict[str, Any] | None:
     notes = {k: v for k, v in record.info.notes.items() if k not in NOTES_SHOWN_ELSEWHERE}
     skipped = _skipped(record)
-    if notes or skipped:
-        body = render_value(notes) if notes else ""
-        if skipped:
-            body += "<h3>Points not measured</h3>" + _records_table(skipped, depth=1)
-        parts.append('<h2 id="notes">Notes</h2>' + body)
-    if record.info.plan:
-        text = json.dumps(record.info.plan, indent=2, default=str)
-        parts.append(
-            '<h2 id="plan">Plan</h2><details><summary>The validated plan of this '
-            f"run</summary><pre>{_e(text)}</pre></details>"
-        )
-    return "".join(parts)
-
-
-def _safety() -> str:
-    items = "".join(f"<li>{_e(line)}</li>" for line in SAFETY_NOTE)
-    return (
-        '<h2 id="safety">Bench safety</h2><p class="lead">General cautions for anyone '
-        f'repeating this measurement on real instruments:</p><div class="safety"><ul>'
-        f"{items}</ul></div>"
-    )
+    if not (notes or skipped):
+        return None
+    return {
+        "shown": value_node(notes) if notes else None,
+        "skipped": _records_table(skipped, depth=1) if skipped else None,
+    }
 
 
 # ----------------------------------------------------------------------------- entry points
@@ -1608,6 +1535,31 @@ def _sections(record: RunRecord, images: Mapping[str, bytes]) -> list[tuple[str,
     return [(anchor, title) for anchor, title, shown in present if shown]
 
 
+def report_context(record: RunRecord, images: Mapping[str, bytes]) -> dict[str, Any]:
+    """Everything ``report.html`` shows, as plain values and nodes (no HTML)."""
+    info = record.info
+    return {
+        "title": f"Noise-figure report: {info.dut_id or info.run_id}",
+        "colours": {key: colour for key, (colour, _marker) in VERDICT_STYLE.items()},
+        "header": _header(record),
+        "howto": _how_to_read(record),
+        "contents": _sections(record, images),
+        "summary": _summary(record),
+        "figures": _figures(images),
+        "points": _points(record),
+        "verdict": _verdict_section(record),
+        "budget": _budgets(record),
+        "calibration": _calibration(record),
+        "gain": _gain_measurement(record),
+        "settings": _settings(record),
+        "notes": _notes(record),
+        "plan_json": json.dumps(info.plan, indent=2, default=str) if info.plan else "",
+        "cautions": list(SAFETY_NOTE),
+        "version": info.versions.get("noisebench", ""),
+        "generated": _when(datetime.now().astimezone()),
+    }
+
+
 def render_report(record: RunRecord, images: Mapping[str, bytes] | None = None) -> str:
     """The report as one HTML string; ``images`` maps figure file names to PNG bytes."""
     if not isinstance(record, RunRecord):
@@ -1616,35 +1568,8 @@ def render_report(record: RunRecord, images: Mapping[str, bytes] | None = None) 
             f"must be a RunRecord (got {type(record).__name__})",
             fix="load it with noisebench.results.store.load_run",
         )
-    images = images or {}
-    info = record.info
-    version = info.versions.get("noisebench", "")
-    generated = datetime.now().astimezone()
-    title = f"Noise-figure report: {info.dut_id or info.run_id}"
-    body = "".join(
-        [
-            _header(record),
-            _how_to_read(record),
-            _contents(_sections(record, images)),
-            _summary(record),
-            _figures(images),
-            _points(record),
-            _verdict_section(record),
-            _budgets(record),
-            _calibration(record),
-            _gain_measurement(record),
-            _settings(record),
-            _plan_and_notes(record),
-            _safety(),
-            f"<footer>Generated by noisebench {_e(version)} on {_when(generated)}.</footer>",
-        ]
-    )
-    return (
-        '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
-        '<meta name="viewport" content="width=device-width, initial-scale=1">'
-        f"<title>{_e(title)}</title><style>{STYLE}</style></head>"
-        f"<body>{body}</body></html>\n"
-    )
+    template = environment().get_template("report.html")
+    return template.render(report_context(record, images or {}))
 
 
 def _load_images(plots: Sequence[Path | str] | None, record: RunRecord) -> dict[str, bytes]:
@@ -1671,6 +1596,24 @@ def _load_images(plots: Sequence[Path | str] | None, record: RunRecord) -> dict[
             raise InputError("plots", f"{path} is not a PNG file", fix="pass PNG files")
         images[path.name] = data
     return images
+
+
+def existing_figures(folder: Path) -> list[Path]:
+    """The figures already in ``<folder>/plots`` that are not older than the run's data (the
+    journal and ``results.json``), in report order: what ``render --no-plots`` embeds."""
+    from noisebench.results.store import JOURNAL_FILE, PLOTS_DIR, RESULTS_JSON_FILE
+
+    folder = Path(folder)
+    data = [folder / JOURNAL_FILE, folder / RESULTS_JSON_FILE]
+    newest_data = max((p.stat().st_mtime for p in data if p.is_file()), default=0.0)
+    found = []
+    for name in FIGURE_CAPTIONS:
+        png = folder / PLOTS_DIR / name
+        if png.is_file() and png.stat().st_mtime >= newest_data:
+            found.append(png)
+        elif png.is_file():
+            logger.warning("%s is older than the run's data: left out of the report", png)
+    return found
 
 
 def write_report(record: RunRecord, path: Path, plots: Sequence[Path] | None = None) -> Path:
@@ -1723,10 +1666,15 @@ def render_run(folder: Path) -> Path:
 
 __all__ = [
     "SAFETY_NOTE",
+    "environment",
+    "existing_figures",
     "label",
     "render_report",
+    "report_context",
     "render_run",
     "render_value",
+    "value_node",
     "verdict_html",
+    "verdict_tag",
     "write_report",
 ]

@@ -15,10 +15,9 @@ def _fmt(value: float | None, digits: int = 3, unit: str = "") -> str:
 
 
 def _fmt_freq(freq_hz: float) -> str:
-    for scale, unit in ((1e9, "GHz"), (1e6, "MHz"), (1e3, "kHz")):
-        if abs(freq_hz) >= scale:
-            return f"{freq_hz / scale:.6g} {unit}"
-    return f"{freq_hz:.6g} Hz"
+    from noisebench.units import format_frequency
+
+    return format_frequency(freq_hz)
 
 
 def nf_extremes(record: RunRecord) -> tuple[PointResult, PointResult] | None:

@@ -22,6 +22,7 @@ from typing import Any
 from noisebench.bench.registry import BenchSession
 from noisebench.errors import InputError
 from noisebench.running.plan import Plan
+from noisebench.science.methods.yfactor import EnrReference
 from noisebench.science.point import Method
 from noisebench.science.ranges import check_range
 
@@ -52,12 +53,13 @@ class Corrections:
         return float(value.enr_db), u, bool(value.extrapolated)
 
     @property
-    def enr_reference(self) -> str:
+    def enr_reference(self) -> EnrReference:
         """How the ENR table turns into a hot temperature: its ``enr_reference`` header
         (``"t0"`` or ``"absolute"``, see :mod:`noisebench.science.methods.yfactor`), else
         ``"t0"``."""
         metadata = getattr(self.enr_table, "metadata", None)
-        return getattr(metadata, "enr_reference", None) or "t0"
+        reference = getattr(metadata, "enr_reference", None) or "t0"
+        return "absolute" if reference == "absolute" else "t0"
 
     def max_enr_db(self) -> float:
         return float(max(self.enr_table.enr_db)) if self.enr_table is not None else 0.0
@@ -140,8 +142,8 @@ def resolve_corrections(plan: Plan, session: BenchSession) -> Corrections:
             from noisebench.science.enr import EnrTable
 
             enr_table = EnrTable.from_csv(plan.resolve_path(plan.enr.table))
-        elif session.sim is not None:
-            enr_table = session.sim.enr_table
+        elif session.enr_table is not None:  # the bench knows its source's table
+            enr_table = session.enr_table
         else:
             raise InputError("enr.table", "the Y-factor method needs the ENR table")
     return Corrections(

@@ -26,11 +26,12 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 
 from noisebench.bench.acquisition import AcquisitionSettings, Detector, SweepMode
+from noisebench.bench.instruments import Analyzer
 from noisebench.errors import InputError, MeasurementError
 from noisebench.running.groups import PointGroup, plan_groups
 from noisebench.running.plan import Plan
@@ -131,6 +132,27 @@ class Priors:
     t0_k: float
 
 
+class BenchModel(Protocol):
+    """A model of the bench a forecast can ask (a back end may supply one through
+    :func:`noisebench.bench.registry.bench_model`; the simulated bench does)."""
+
+    @property
+    def analyzer(self) -> Analyzer:
+        """An analyzer to configure: its applied settings and acquisition times."""
+
+    @property
+    def settle_time_s(self) -> float:
+        """The noise source's settling time, s."""
+
+    def source_temperature_k(self, y_factor: bool) -> float:
+        """The source's (Y-factor) or termination's (gain method) temperature, K."""
+
+    def expected_readings(
+        self, freq_hz: float, y_factor: bool
+    ) -> tuple[dict[str, float], float | None, float, float]:
+        """(densities W/Hz by reading, ENR dB or None, DUT path gain dB, source temperature K)."""
+
+
 def _declared_priors(plan: Plan, freq_hz: float, source_k: float) -> Priors:
     e = plan.expect
     missing = [
@@ -175,29 +197,14 @@ def _declared_priors(plan: Plan, freq_hz: float, source_k: float) -> Priors:
     return Priors(readings, enr_db, float(e.dut_gain_db), ts, t0)  # type: ignore[arg-type]
 
 
-def _simulated_priors(plan: Plan, sim: Any, freq_hz: float) -> Priors:
-    truth = sim.truth(freq_hz)
-
-    def get(name: str) -> float:
-        return float(np.asarray(truth[name]).ravel()[0])
-
-    if plan.method is Method.GAIN:
-        readings = {
-            "dut": get("displayed_dut_cold_w_per_hz"),
-            "floor": get("displayed_termination_cold_w_per_hz"),
-        }
-        ts = get("ambient_k")
-        enr = None
-    else:
-        readings = {
-            "hot": get("displayed_dut_hot_w_per_hz"),
-            "cold": get("displayed_dut_cold_w_per_hz"),
-            "hot_cal": get("displayed_through_hot_w_per_hz"),
-            "cold_cal": get("displayed_through_cold_w_per_hz"),
-        }
-        ts = get("cold_k")
-        enr = get("enr_table_db")
-    gain = get("gain_db") - get("input_loss_db") - get("output_loss_db")
+def _model_priors(plan: Plan, model: BenchModel, freq_hz: float) -> Priors:
+    if plan.conversion is not None:
+        raise InputError(
+            "conversion",
+            "noisebench estimate does not forecast frequency-converting DUTs yet",
+            fix="run the plan on the simulated bench to see its averages and times",
+        )
+    readings, enr, gain, ts = model.expected_readings(freq_hz, plan.method is Method.Y_FACTOR)
     return Priors(readings, enr, gain, ts, plan.corrections.t0_k)
 
 
@@ -298,40 +305,6 @@ class PlanForecast:
         return "\n".join(lines)
 
 
-def _settings_analyzer(plan: Plan, sim: Any) -> Any:
-    """The analyzer whose applied settings and timing the forecast uses, without acquiring:
-    the simulated analyzer, or a sampled analyzer (simulated receiver, or SigMF recordings read
-    for their metadata only); None for a real instrument (nominal swept-analyzer model)."""
-    from urllib.parse import urlsplit
-
-    resource = plan.bench.analyzer.resource
-    scheme = urlsplit(resource).scheme
-    if scheme == "sim" and sim is not None:
-        from noisebench.sims.address import parse_sim_address
-
-        address = parse_sim_address(resource)
-        if address.receiver != "sampled":
-            return sim.analyzer
-        from noisebench.sampled.analyzer import SampledAnalyzer
-        from noisebench.sims.samples import SimSampleReceiver
-
-        options = address.sampled
-        return SampledAnalyzer(
-            SimSampleReceiver(sim), window=options.window, overlap=options.overlap
-        )
-    if scheme == "sigmf":
-        from noisebench.sampled.address import parse_sampled_address
-        from noisebench.sampled.analyzer import SampledAnalyzer
-        from noisebench.sampled.sigmf_io import SigmfRecordings
-
-        address = parse_sampled_address(resource)
-        options = address.options
-        return SampledAnalyzer(
-            SigmfRecordings(address.target), window=options.window, overlap=options.overlap
-        )
-    return sim.analyzer if sim is not None else None
-
-
 def _group_settings(
     plan: Plan, group: PointGroup, analyzer: Any
 ) -> tuple[AcquisitionSettings, float]:
@@ -347,26 +320,27 @@ def _group_settings(
     return settings, float(settings.sweep_time_s) + plan.expect.overhead_s / 8.0
 
 
-def forecast_plan(plan: Plan, *, sim: Any = None) -> PlanForecast:
-    """Forecast every point of ``plan``. ``sim``: a SimulatedBench for ``sim://`` plans."""
-    if sim is None and plan.is_simulated:
-        from noisebench.sims.address import parse_sim_address
-        from noisebench.sims.bench import SimulatedBench
+def forecast_plan(plan: Plan, *, model: BenchModel | None = None) -> PlanForecast:
+    """Forecast every point of ``plan``.
 
-        address = parse_sim_address(plan.bench.analyzer.resource)
-        sim = SimulatedBench.from_scenario(address.scenario, seed=address.seed)
-    source_k = _source_temperature(plan, sim)
-    settle_s = (
-        sim.noise_source.settle_time_s if sim is not None else plan.bench.noise_source.settle_time_s
-    )
+    ``model``: a model of the bench (None: the one the plan's bench address offers, e.g. the
+    simulated bench's, else the plan's ``[expect]`` priors)."""
+    if model is None:
+        from noisebench.bench.registry import bench_model
+
+        model = bench_model(plan.bench)
+    source_k = _source_temperature(plan, model)
+    settle_s = model.settle_time_s if model is not None else plan.bench.noise_source.settle_time_s
     out: list[PointForecast] = []
-    analyzer = _settings_analyzer(plan, sim)
+    from noisebench.bench.registry import settings_analyzer
+
+    analyzer = settings_analyzer(plan.bench, model)
     for group in plan_groups(plan.points()):
         settings, per_average_s = _group_settings(plan, group, analyzer)
         for f in group.freqs_hz:
             priors = (
-                _simulated_priors(plan, sim, f)
-                if sim is not None
+                _model_priors(plan, model, f)
+                if model is not None
                 else _declared_priors(plan, f, source_k)
             )
             rel = math.sqrt(band_relative_variance(settings, f, group.band_hz))
@@ -378,14 +352,12 @@ def forecast_plan(plan: Plan, *, sim: Any = None) -> PlanForecast:
     return PlanForecast(out)
 
 
-def _source_temperature(plan: Plan, sim: Any) -> float:
+def _source_temperature(plan: Plan, model: BenchModel | None) -> float:
     value = plan.corrections.source_temperature_k
     if value != "bench":
         return float(value)
-    if sim is not None:
-        return float(
-            sim.noise_source.cold_temperature_k if plan.method is Method.Y_FACTOR else sim.ambient_k
-        )
+    if model is not None:
+        return model.source_temperature_k(plan.method is Method.Y_FACTOR)
     return plan.bench.ambient_k or T0_K
 
 

@@ -36,6 +36,14 @@ class PointGroup:
     span_hz: float
     band_hz: float | None  # band integrated around each point; None: whole (zero-span) trace
     trace_points: int
+    lo_hz: float | None = None  # a converter's LO for this group (one LO per trace)
+    rf_hz: tuple[float, ...] | None = None  # a converter's RF of each point (freqs_hz: IF)
+
+    def rf_of(self, freq_hz: float) -> float:
+        """The RF of the point read at ``freq_hz`` (a converter), else ``freq_hz`` itself."""
+        if self.rf_hz is None:
+            return freq_hz
+        return self.rf_hz[self.freqs_hz.index(freq_hz)]
 
     def request(self, averages: int) -> AcquisitionRequest:
         p = self.policy
@@ -57,7 +65,12 @@ class PointGroup:
 
     def describe(self) -> str:
         lo, hi = self.freqs_hz[0], self.freqs_hz[-1]
-        return f"{lo:.6g} Hz" if lo == hi else f"{lo:.6g}..{hi:.6g} Hz"
+        text = f"{lo:.6g} Hz" if lo == hi else f"{lo:.6g}..{hi:.6g} Hz"
+        if self.rf_hz is not None:
+            rf_lo, rf_hi = min(self.rf_hz), max(self.rf_hz)
+            rf = f"{rf_lo:.6g} Hz" if rf_lo == rf_hi else f"{rf_lo:.6g}..{rf_hi:.6g} Hz"
+            text = f"RF {rf} (IF {text}, LO {self.lo_hz:.6g} Hz)"
+        return text
 
 
 def auto_points(span_hz: float, rbw_hz: float) -> int:
@@ -90,12 +103,14 @@ def plan_groups(points: Sequence[FrequencyPoint]) -> list[PointGroup]:
     least ``min_band_fill`` of it must lie inside the points' bands (a swept trace spends time
     in proportion to its span, so gaps between bands are wasted instrument time).
     """
-    ordered = sorted(points, key=lambda p: p.freq_hz)
+    ordered = sorted(points, key=lambda p: (p.lo_hz or 0.0, p.freq_hz))
     runs: list[list[FrequencyPoint]] = []
     for point in ordered:
         if (
             runs
             and runs[-1][-1].policy == point.policy
+            and runs[-1][-1].lo_hz == point.lo_hz  # a converter: one LO per trace
+            and runs[-1][-1].freq_hz != point.freq_hz
             and _fits([p.freq_hz for p in runs[-1]] + [point.freq_hz], point.policy)
         ):
             runs[-1].append(point)
@@ -108,9 +123,11 @@ def _make_group(index: int, run: list[FrequencyPoint]) -> PointGroup:
     policy = run[0].policy
     freqs = tuple(p.freq_hz for p in run)
     band = policy.span_hz
+    lo = run[0].lo_hz
+    rf = tuple(p.report_hz for p in run) if lo is not None else None
     if band == 0:
         points = policy.trace_points or ZERO_SPAN_POINTS
-        return PointGroup(index, freqs, policy, freqs[0], 0.0, None, points)
+        return PointGroup(index, freqs, policy, freqs[0], 0.0, None, points, lo, rf)
     span = (freqs[-1] - freqs[0]) + band * (1.0 + BAND_EDGE_MARGIN)
     points = policy.trace_points or auto_points(span, policy.rbw_hz)
-    return PointGroup(index, freqs, policy, (freqs[0] + freqs[-1]) / 2, span, band, points)
+    return PointGroup(index, freqs, policy, (freqs[0] + freqs[-1]) / 2, span, band, points, lo, rf)

@@ -13,7 +13,7 @@ Layout (all sections but ``bench`` and ``sweep`` optional)::
     method = "y_factor"                 # or "gain"
     operator = "..."; station = "..."
     [dut]          id, description
-    [bench]        analyzer, noise_source, generator, connect, ambient_k
+    [bench]        analyzer, noise_source, generator, lo, connect, ambient_k
     [acquisition]  rbw_hz, span_hz, detector, averaging_scale, target_u_nf_db, time_limit_s, ...
     [sweep]        freqs_hz = [...]  and/or  [[sweep.segments]] (ranges with their own settings)
     [enr]          table, extrapolate
@@ -25,6 +25,8 @@ Layout (all sections but ``bench`` and ``sweep`` optional)::
     [output]       folder, plots, report
     [uncertainty]  budget inputs (noisebench.science.uncertainty)
     [limits]       pass/fail mask (noisebench.science.limits)
+    [conversion]   frequency-converting DUT: LO/IF plan, sideband, image response, LO
+                   (noisebench.running.conversion)
 
 This module is the schema (one pydantic model per section, kept together so that the whole plan
 reads in one place, hence its length) and the loader; the cross-field checks are in
@@ -53,7 +55,9 @@ from pydantic import (
 )
 
 from noisebench.bench.acquisition import AveragingScale, Detector, SweepMode
+from noisebench.bench.addresses import is_simulated
 from noisebench.errors import InputError
+from noisebench.running.conversion import ConversionSection
 from noisebench.running.plan_errors import PlanError, format_validation_error
 from noisebench.science.point import Method
 from noisebench.science.ranges import check_range, warn_unusual
@@ -215,6 +219,9 @@ class BenchSection(BaseModel):
     analyzer: AnalyzerSection
     noise_source: NoiseSourceSection = Field(default_factory=NoiseSourceSection)
     generator: GeneratorSection | None = None
+    lo: GeneratorSection | None = Field(
+        default=None, description="the LO generator of a frequency-converting DUT"
+    )
     connect: Literal["auto", "operator"] = Field(
         default="auto",
         description="auto: the simulator moves the paths itself; "
@@ -224,7 +231,7 @@ class BenchSection(BaseModel):
 
     _ambient_range = _ranged("physical_temperature_k", "bench", "ambient_k")
 
-    @field_validator("analyzer", "generator", mode="before")
+    @field_validator("analyzer", "generator", "lo", mode="before")
     @classmethod
     def _resource_shorthand(cls, value: Any) -> Any:
         return {"resource": value} if isinstance(value, str) else value
@@ -652,11 +659,42 @@ class OutputSection(BaseModel):
 
 @dataclass(frozen=True)
 class FrequencyPoint:
-    """One frequency to measure with its effective acquisition policy."""
+    """One frequency to measure with its effective acquisition policy.
+
+    ``freq_hz`` is where the analyzer reads. For a frequency-converting DUT that is the IF;
+    ``rf_hz``/``lo_hz`` then name the point (results are reported at the RF).
+    """
 
     freq_hz: float
     segment: int | None
     policy: AcquisitionPolicy
+    rf_hz: float | None = None
+    lo_hz: float | None = None
+
+    @property
+    def report_hz(self) -> float:
+        """The frequency the result is stored at: the RF of a converter, else ``freq_hz``."""
+        return self.rf_hz if self.rf_hz is not None else self.freq_hz
+
+
+class SwitchingSection(BaseModel):
+    """How the noise source's hot and cold readings are ordered (Y-factor).
+
+    ``per_sweep``: the whole sweep (or a block of groups) is read in four passes, hot forward,
+    cold backward, cold forward, hot backward: every point's hot and cold readings are
+    symmetric in time, so a linear drift cancels, with three switches per block instead of
+    three or four per point. ``per_group``: hot-cold-cold-hot at each group. ``auto`` takes
+    ``per_sweep`` when there are several groups and the source needs settling time. A block
+    lasts at most ``max_block_s`` of instrument time: common practice takes a warmed-up
+    receiver's gain drift as close to linear over a minute; with a drift model
+    (``drift_curvature_db_per_s2``, the t^2 coefficient of the gain in dB) the block is kept
+    short enough that the curvature's residual stays below a tenth of the target.
+    """
+
+    model_config = _STRICT
+    mode: Literal["auto", "per_sweep", "per_group"] = "auto"
+    max_block_s: float = Field(default=60.0, gt=0)
+    drift_curvature_db_per_s2: float | None = Field(default=None, gt=0)
 
 
 class Plan(BaseModel):
@@ -675,13 +713,35 @@ class Plan(BaseModel):
     corrections: CorrectionsSection = Field(default_factory=CorrectionsSection)
     gain: GainSection | None = None
     calibration: CalibrationSection = Field(default_factory=CalibrationSection)
+    switching: SwitchingSection = Field(default_factory=SwitchingSection)
     safety: SafetySection = Field(default_factory=SafetySection)
     expect: ExpectSection = Field(default_factory=ExpectSection)
     output: OutputSection = Field(default_factory=OutputSection)
     uncertainty: _UncertaintySection | None = None
     limits: _LimitsSection | None = None
+    conversion: ConversionSection | None = None
 
     _base_dir: Path = PrivateAttr(default_factory=Path.cwd)
+
+    @model_validator(mode="before")
+    @classmethod
+    def _triples_make_the_sweep(cls, data: Any) -> Any:
+        """In ``triples`` mode the triples list the RF points: the sweep is made from them."""
+        if not isinstance(data, dict):
+            return data
+        conv = data.get("conversion")
+        if isinstance(conv, dict) and conv.get("mode") == "triples":
+            if "sweep" in data:
+                raise InputError(
+                    "sweep",
+                    "is not used in conversion mode 'triples' (the triples list the RF)",
+                    fix="delete the [sweep] section, or use mode fixed_lo / fixed_if",
+                )
+            triples = conv.get("triples")
+            if isinstance(triples, list) and triples:
+                rf = [t[0] for t in triples if isinstance(t, list) and t]
+                data = {**data, "sweep": {"freqs_hz": rf}}
+        return data
 
     @property
     def base_dir(self) -> Path:
@@ -698,7 +758,41 @@ class Plan(BaseModel):
         return path if path.is_absolute() else self._base_dir / path
 
     def points(self) -> list[FrequencyPoint]:
-        """Every frequency point, ascending, with its merged acquisition policy."""
+        """Every frequency point, ascending, with its merged acquisition policy.
+
+        With a ``[conversion]`` section the points are read at their IF (``freq_hz``) and
+        carry their RF and LO; they are ordered by RF."""
+        if self.conversion is not None:
+            return self._conversion_points()
+        return self._sweep_points()
+
+    def _conversion_points(self) -> list[FrequencyPoint]:
+        from noisebench.running.conversion import frequency_plan
+
+        section = self.conversion
+        assert section is not None
+        rf_points = self._sweep_points() if section.mode != "triples" else []
+        fp = frequency_plan(section, [p.freq_hz for p in rf_points])
+        policies = [p.policy for p in rf_points] or [self.acquisition] * len(fp.rf_hz)
+        segments = [p.segment for p in rf_points] or [None] * len(fp.rf_hz)
+        out = [
+            FrequencyPoint(float(i), seg, pol, float(r), float(lo))
+            for i, r, lo, pol, seg in zip(
+                fp.if_hz, fp.rf_hz, fp.lo_hz, policies, segments, strict=True
+            )
+        ]
+        return sorted(out, key=lambda p: p.report_hz)
+
+    def frequency_plan(self):
+        """The conversion's :class:`~noisebench.science.conversion.FrequencyPlan` (or None)."""
+        if self.conversion is None:
+            return None
+        from noisebench.running.conversion import frequency_plan
+
+        rf = [] if self.conversion.mode == "triples" else [p.freq_hz for p in self._sweep_points()]
+        return frequency_plan(self.conversion, rf)
+
+    def _sweep_points(self) -> list[FrequencyPoint]:
         out: list[FrequencyPoint] = []
         if self.sweep.freqs_hz is not None:
             out += [
@@ -725,7 +819,7 @@ class Plan(BaseModel):
 
     @property
     def is_simulated(self) -> bool:
-        return self.bench.analyzer.resource.startswith("sim://")
+        return is_simulated(self.bench.analyzer.resource)
 
 
 # --------------------------------------------------------------------------- loading

@@ -11,11 +11,11 @@ from pydantic import (
     ValidationError,
 )
 
+from noisebench.bench.addresses import is_simulated
 from noisebench.errors import InputError
 from noisebench.running.plan import Plan
 from noisebench.running.plan_errors import format_validation_error
 from noisebench.science.point import Method
-from noisebench.sims.address import parse_sim_address
 
 # --------------------------------------------------------------------------- cross-field checks
 
@@ -37,13 +37,102 @@ def cross_check(plan: Plan, *, check_files: bool = True) -> list[str]:
             from noisebench.running.profile_check import profile_errors
 
             problems += profile_errors(plan)  # the plan against the analyzer's profile
+    if plan.conversion is not None:
+        problems += _check_conversion(plan, check_files=check_files)
+    return problems
+
+
+def _check_conversion(plan: Plan, *, check_files: bool) -> list[str]:
+    """A converter plan: frequency plan, IF in the analyzer's range, RF/IF/image in the ENR
+    table, IF bands and image clear of the LO leakage, the LO generator's range."""
+    from noisebench.running.conversion import ImageRejection, conversion_problems
+
+    section = plan.conversion
+    assert section is not None
+    problems = []
+    try:
+        fp = plan.frequency_plan()
+        points = plan.points()
+    except (InputError, ValidationError) as exc:
+        return [str(exc) if isinstance(exc, InputError) else "sweep: invalid"]
+    if section.lo.source == "generator" and plan.bench.lo is None and not plan.is_simulated:
+        problems.append(
+            'bench.lo: the LO comes from a generator (conversion.lo.source = "generator"); '
+            'name it: lo = { resource = "TCPIP0::...::SOCKET" } (or source = "external")'
+        )
+    if plan.method is Method.GAIN and plan.gain is not None and plan.gain.source == "measure":
+        problems.append(
+            'gain.source: "measure" is not available for a frequency-converting DUT yet (the '
+            "generator at the RF and the analyzer at the IF); give the conversion gain over RF "
+            'with source = "file" or "constant"'
+        )
+    if plan.uncertainty is not None:
+        problems.append(
+            "uncertainty: full budgets are not available for a frequency-converting DUT yet; "
+            "delete the section (each point keeps its statistical u and the ENR and "
+            "image-rejection contributions in its notes)"
+        )
+    lo_bench = plan.bench.lo
+    level = section.lo.level_dbm
+    if section.lo.source == "generator" and lo_bench is not None and level is not None:
+        if level > lo_bench.max_level_dbm:
+            problems.append(
+                f"conversion.lo.level_dbm: {level:g} dBm is above bench.lo.max_level_dbm "
+                f"{lo_bench.max_level_dbm:g} dBm (raise max_level_dbm if the converter is rated "
+                "for it)"
+            )
+    if section.lo.source == "external" and section.lo_leakage_dbm is None:
+        problems.append(
+            "conversion.lo_leakage_dbm: needed with an external LO, the power guard counts the "
+            "LO line at the IF port (give the data-sheet LO leakage, dBm)"
+        )
+    image = None
+    if (
+        check_files
+        or not isinstance(section.image_rejection_db, str)
+        or (section.image_rejection_db in ("none", "equal"))
+    ):
+        try:
+            image = ImageRejection(section, plan.resolve_path)
+        except InputError as exc:
+            problems.append(str(exc))
+    analyzer_range = enr_range = lo_range = None
+    if plan.is_simulated:
+        from noisebench.bench.registry import simulated_ranges
+
+        ranges = simulated_ranges(plan.bench.analyzer.resource)
+        if ranges is not None:
+            analyzer_range, lo_range = ranges["analyzer"], ranges["lo"]
+            if plan.enr.table is None:
+                enr_range = ranges["enr"]
+    if plan.enr.table is not None and check_files and plan.enr.extrapolate != "clamp":
+        try:
+            from noisebench.science.enr import EnrTable
+
+            table = EnrTable.from_csv(plan.resolve_path(plan.enr.table))
+            enr_range = table.range_hz
+        except (ImportError, InputError, OSError):
+            pass  # reported by _check_enr
+    by_rf = {p.report_hz: p for p in points}
+    ordered = [by_rf[float(f)] for f in fp.rf_hz]
+    problems += conversion_problems(
+        section,
+        fp,
+        band_hz=[p.policy.span_hz for p in ordered],
+        rbw_hz=[p.policy.rbw_hz for p in ordered],
+        analyzer_range_hz=analyzer_range,
+        enr_range_hz=enr_range,
+        lo_range_hz=lo_range,
+        image_rejection=image,
+        y_factor=plan.method is Method.Y_FACTOR,
+    )
     return problems
 
 
 def _profile_sections(plan: Plan) -> list[tuple[str, Any]]:
     """(key, section) of each instrument whose profile a real bench will load."""
     bench = plan.bench
-    if bench.analyzer.resource.startswith("sim://"):
+    if is_simulated(bench.analyzer.resource):
         return []
     from noisebench.sampled.address import is_sampled
 
@@ -52,6 +141,8 @@ def _profile_sections(plan: Plan) -> list[tuple[str, Any]]:
         out.append(("bench.analyzer", bench.analyzer))
     if bench.generator is not None:
         out.append(("bench.generator", bench.generator))
+    if bench.lo is not None:
+        out.append(("bench.lo", bench.lo))
     if bench.noise_source.drive == "supply":
         out.append(("bench.noise_source", bench.noise_source))
     return out
@@ -95,8 +186,8 @@ def _resolve_sampled(plan: Plan) -> None:
 def _check_sampled(plan: Plan) -> list[str]:
     """A sampled receiver's address, its recordings folder and scale file, and what recordings
     cannot do (drive a generator or a noise source)."""
+    from noisebench.bench.registry import simulated_receiver_options
     from noisebench.sampled.address import is_sampled, parse_sampled_address
-    from noisebench.sims.address import parse_sim_address
 
     resource = plan.bench.analyzer.resource
     key = "bench.analyzer.resource"
@@ -104,14 +195,8 @@ def _check_sampled(plan: Plan) -> list[str]:
         if is_sampled(resource):
             address = parse_sampled_address(resource)
             options = address.options
-        elif resource.startswith("sim://"):
-            try:
-                sim = parse_sim_address(resource)
-            except InputError:
-                return []  # reported by _check_bench
-            if sim.receiver != "sampled":
-                return []
-            address, options = None, sim.sampled
+        elif (sampled := simulated_receiver_options(resource)) is not None:
+            address, options = None, sampled
         else:
             return []
     except InputError as exc:
@@ -181,16 +266,13 @@ def _check_recorded_time(plan: Plan, folder: str) -> list[str]:
 
 def _check_profiles(plan: Plan) -> list[str]:
     """Each instrument profile must load (checked here, not when the instrument is opened)."""
-    try:
-        from noisebench.drivers.profile import load_profile
-    except ImportError:  # pragma: no cover - drivers not installed
-        return []
+    from noisebench.bench.registry import profile_problem
+
     problems = []
     for key, section in _profile_sections(plan):
-        try:
-            load_profile(section.profile)
-        except InputError as exc:
-            problems.append(f"{key}.profile: {_one_line(exc.message).removeprefix('profile: ')}")
+        problem = profile_problem(section.profile)
+        if problem is not None:
+            problems.append(f"{key}.profile: {_one_line(problem).removeprefix('profile: ')}")
     return problems
 
 
@@ -255,21 +337,24 @@ def _check_method_needs(plan: Plan) -> list[str]:
 
 def _check_bench(plan: Plan) -> list[str]:
     problems = []
-    analyzer_sim = plan.bench.analyzer.resource.startswith("sim://")
-    if analyzer_sim:
-        try:
-            address = parse_sim_address(plan.bench.analyzer.resource)
-        except InputError as exc:
-            problems.append(f"bench.analyzer.resource: {exc.message.split(': ', 1)[-1]}")
-        else:
-            scenario_problems = _check_scenario(address.scenario)
-            problems += scenario_problems or _check_sim_range(plan, address.scenario)
+    from noisebench.bench.registry import address_problems
+
+    analyzer_sim = is_simulated(plan.bench.analyzer.resource)
+    try:
+        spans = [
+            (p.freq_hz - p.policy.span_hz / 2, p.freq_hz + p.policy.span_hz / 2)
+            for p in plan.points()
+        ]
+    except (ValidationError, InputError):  # a bad segment policy: reported by its own check
+        spans = None
+    problems += address_problems(plan.bench.analyzer.resource, spans)
     others = [
         (
             "bench.generator.resource",
             plan.bench.generator.resource if plan.bench.generator else None,
         ),
         ("bench.noise_source.resource", plan.bench.noise_source.resource),
+        ("bench.lo.resource", plan.bench.lo.resource if plan.bench.lo else None),
     ]
     for key, res in others:
         if res is None or res == "sim":
@@ -279,56 +364,12 @@ def _check_bench(plan: Plan) -> list[str]:
                     f"{plan.bench.analyzer.resource!r}"
                 )
             continue
-        if analyzer_sim != res.startswith("sim://"):
+        if analyzer_sim != is_simulated(res):
             problems.append(
                 f"{key}: {res!r} cannot be mixed with the analyzer "
                 f"{plan.bench.analyzer.resource!r} (one bench, simulated or real)"
             )
     return problems
-
-
-def _check_scenario(name: str) -> list[str]:
-    """A ``sim://`` scenario must exist (packaged name or .toml path), as the run will need."""
-    try:
-        from noisebench.sims.scenario import SCENARIO_SUFFIX, available_scenarios
-    except ImportError:  # pragma: no cover - simulator not installed
-        return []
-    names = available_scenarios()
-    if name in names or (Path(name).suffix == SCENARIO_SUFFIX and Path(name).is_file()):
-        return []
-    return [
-        f"bench.analyzer.resource: no scenario {name!r} (use one of {names} "
-        f"or a path to a {SCENARIO_SUFFIX} file)"
-    ]
-
-
-def _check_sim_range(plan: Plan, scenario: str) -> list[str]:
-    """Every point's span must lie within the simulated analyzer's frequency range, so a
-    point the analyzer cannot tune to is refused now, not after earlier points were measured."""
-    try:
-        from noisebench.sims.scenario import load_scenario
-
-        spec = load_scenario(scenario).analyzer
-    except (ImportError, InputError):  # reported by _check_scenario / at run time
-        return []
-    lo, hi = spec.min_freq_hz, spec.max_freq_hz
-    try:
-        points = plan.points()
-    except (ValidationError, InputError):  # a bad segment policy: reported by its own check
-        return []
-    bad = [
-        p.freq_hz
-        for p in points
-        if p.freq_hz - p.policy.span_hz / 2 < lo or p.freq_hz + p.policy.span_hz / 2 > hi
-    ]
-    if not bad:
-        return []
-    shown = ", ".join(f"{f:.6g}" for f in bad[:3]) + (" ..." if len(bad) > 3 else "")
-    return [
-        f"sweep: {len(bad)} point(s) ({shown} Hz) with their span fall outside the "
-        f"simulated analyzer's range {lo:.6g}..{hi:.6g} Hz (move them inside or narrow "
-        "span_hz)"
-    ]
 
 
 def _missing_file(key: str, path: Path) -> str:
@@ -358,8 +399,8 @@ def _check_enr(plan: Plan) -> list[str]:
         return []
     except InputError as exc:
         return [f"enr.table: {exc.message}"]
-    if table.range_hz is None:  # a flat table covers every frequency
-        return []
+    if table.range_hz is None or plan.conversion is not None:
+        return []  # flat table; a converter's RF, image and IF are checked by _check_conversion
     return _coverage_problems(
         "enr.table",
         path.name,
@@ -369,10 +410,21 @@ def _check_enr(plan: Plan) -> list[str]:
     )
 
 
+def _table_freqs_hz(plan: Plan, key: str) -> np.ndarray:
+    """Where a table is read: the analyzer frequencies, or for a converter the RF and image
+    (input loss, DUT gain) or the IF (output loss)."""
+    fp = plan.frequency_plan() if plan.conversion is not None else None
+    if fp is None or key == "corrections.output_loss":
+        return plan.freqs_hz()
+    if key == "corrections.input_loss":
+        return np.concatenate([fp.rf_hz, fp.image_hz])
+    return np.asarray(fp.rf_hz)
+
+
 def _coverage_problems(
     key: str, name: str, table_freq_hz: np.ndarray, plan: Plan, *, allow_clamp: bool
 ) -> list[str]:
-    freqs = plan.freqs_hz()
+    freqs = _table_freqs_hz(plan, key)
     lo, hi = float(np.min(table_freq_hz)), float(np.max(table_freq_hz))
     outside = freqs[(freqs < lo * (1 - 1e-12)) | (freqs > hi * (1 + 1e-12))]
     if outside.size == 0 or allow_clamp:
@@ -442,7 +494,7 @@ def _check_tables(plan: Plan) -> list[str]:
 def _gain_in_loss_table(key: str, name: str, table: Any, plan: Plan) -> list[str]:
     """A loss table must not give gain at a sweep frequency (the run would refuse it there;
     the same 1e-3 dB tolerance as :mod:`noisebench.running.corrections`)."""
-    freqs = plan.freqs_hz()
+    freqs = _table_freqs_hz(plan, key)
     loss_db = np.asarray(table.at(freqs).loss_db, dtype=float) * np.ones_like(freqs)
     bad = np.flatnonzero(loss_db < -1e-3)
     if bad.size == 0:

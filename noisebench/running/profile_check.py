@@ -51,15 +51,9 @@ def _fmt(value: Any, unit: str = "") -> str:
 def _profile_of(plan: Any) -> Any | None:
     """The analyzer profile a real bench would load, or None (``sim://`` or unloadable: the
     plan's own profile check reports the latter)."""
-    analyzer = plan.bench.analyzer
-    if analyzer.resource.startswith("sim://"):
-        return None
-    from noisebench.drivers.profile import load_profile
+    from noisebench.bench.registry import analyzer_profile
 
-    try:
-        return load_profile(analyzer.profile)
-    except InputError:
-        return None
+    return analyzer_profile(plan.bench)
 
 
 def check_plan_against_profile(plan: Any) -> list[ProfileFinding]:

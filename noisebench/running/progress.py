@@ -30,11 +30,10 @@ class RunProgress(Protocol):
 
 
 def format_freq(freq_hz: float) -> str:
-    """Frequency with an SI prefix, e.g. ``1.25 GHz``."""
-    for scale, unit in ((1e9, "GHz"), (1e6, "MHz"), (1e3, "kHz")):
-        if abs(freq_hz) >= scale:
-            return f"{freq_hz / scale:.6g} {unit}"
-    return f"{freq_hz:.6g} Hz"
+    """Frequency with an SI prefix, e.g. ``1.25 GHz`` (``noisebench.units``)."""
+    from noisebench.units import format_frequency
+
+    return format_frequency(freq_hz)
 
 
 def format_duration(seconds: float) -> str:

@@ -1,6 +1,6 @@
 """Bench safety: the operator cautions and the power checks made before anything is switched on.
 
-Two checks guard the analyzer input (reference.md §11):
+Two checks guard the analyzer input (docs/references.md §11):
 
 * before the noise source goes hot, the expected **total** noise power into the analyzer
   (broadband noise of the source, amplified by the DUT over its whole bandwidth) must stay
@@ -42,22 +42,25 @@ DEFAULT_COMPRESSION_DBM = -10.0
 PREAMP_GAIN_DB = 20.0
 
 CAUTIONS: tuple[str, ...] = (
-    "Never exceed the analyzer's rated maximum RF or DC input; it is lowest with 0 dB "
-    "attenuation and the preamplifier on.",
-    "Broadband noise adds up: total noise power, not the power in the RBW, drives the "
-    "analyzer into compression.",
-    "Use a DC block where amplifier ports may carry bias; keep its loss in the calibration "
-    "path or in the corrections.",
-    "Drive the noise source only from its rated switched supply (commonly +28 V), never into "
-    "an RF port; allow warm-up and settling.",
+    "Analyzer input: never exceed the analyzer's rated maximum RF or DC input; the damage "
+    "level is lowest with 0 dB attenuation and the preamplifier on.",
+    "Total broadband noise power, not the power in the RBW, drives the analyzer into "
+    "compression: an amplifier after a hot noise source can deliver surprisingly much.",
+    "DC on RF lines: use a DC block where amplifier ports may carry bias; keep its loss in "
+    "the calibration path or in the corrections.",
+    "Noise-source drive: only from its rated switched supply (commonly +28 V), never into an "
+    "RF port; set the supply's current limit before enabling its output; allow warm-up and "
+    "settling.",
     "ESD: wrist strap and grounded bench; discharge cables before connecting; GaAs, GaN and "
     "SiGe LNAs are sensitive. Sequence FET bias (gate first on, drain first off).",
-    "Power the DUT from a current-limited supply; check it for oscillation with a wide span "
-    "first; shield against interference; torque and clean connectors; terminate the "
-    "analyzer input when idle.",
+    "DUT: power it from a current-limited supply; check it for oscillation with a wide span "
+    "first; keep interference out (in-band spurs read as noise).",
+    "Connectors: torque and clean them; terminate the analyzer input when idle.",
     "These cautions do not replace the instrument manuals, local codes and licensed "
     "practice: where they differ, those win.",
 )
+"""The one list of bench-safety cautions: README, ``--help`` of every command that drives
+hardware, real-hardware runs, the pytest plugin and the report all show exactly these."""
 
 
 def cautions_text(*, prefix: str = "  - ", width: int = 92) -> str:
@@ -65,7 +68,13 @@ def cautions_text(*, prefix: str = "  - ", width: int = 92) -> str:
     import textwrap
 
     return "\n".join(
-        textwrap.fill(line, width, initial_indent=prefix, subsequent_indent=" " * len(prefix))
+        textwrap.fill(
+            line,
+            width,
+            initial_indent=prefix,
+            subsequent_indent=" " * len(prefix),
+            break_on_hyphens=False,  # "current-limited" stays one word
+        )
         for line in CAUTIONS
     )
 
@@ -77,7 +86,7 @@ def hot_source_temperature_k(enr_db: float, cold_temperature_k: float, t0_k: flo
     """Hot noise temperature of a source with ``enr_db`` at ``cold_temperature_k``, K.
 
     Common assumption: the ENR is referred to T0 and the excess noise does not depend on the
-    source's physical temperature, so ``Th = T0 * ENR + Tc`` (reference.md §5; the Y-factor
+    source's physical temperature, so ``Th = T0 * ENR + Tc`` (docs/references.md §5; the Y-factor
     method's own :func:`~noisebench.science.methods.yfactor.hot_temperature_k`).
     """
     from noisebench.science.methods.yfactor import hot_temperature_k
@@ -228,7 +237,9 @@ class PowerGuard:
     the highest cold density read with the DUT in (:func:`hot_power_from_cold_density_dbm`
     plus :data:`GAIN_PEAKING_MARGIN_DB`); the larger bound is used. On the THROUGH path the
     source feeds the analyzer directly (0 dB gain). ``bandwidth_hz`` is the band over which
-    the source's noise (and the DUT's gain) reaches the analyzer.
+    the source's noise (and the DUT's gain) reaches the analyzer. ``dut_lines_dbm``: lines the
+    DUT itself puts on its output whatever the source does (a converter's LO leakage and its
+    harmonics, total power), added on the DUT path.
     """
 
     def __init__(
@@ -241,8 +252,10 @@ class PowerGuard:
         cold_temperature_k: float,
         t0_k: float = T0_K,
         declared_nf_db: float | None = None,
+        dut_lines_dbm: float | None = None,
     ) -> None:
         require_positive("bandwidth_hz", bandwidth_hz)
+        self.dut_lines_dbm = dut_lines_dbm
         self.limits = limits
         self.bandwidth_hz = bandwidth_hz
         self.declared_gain_db = declared_gain_db
@@ -300,7 +313,11 @@ class PowerGuard:
                 "is unknown before the first hot switch",
                 fix="read the DUT cold first, or declare safety.dut_max_gain_db",
             )
-        return max(estimates)
+        if self.dut_lines_dbm is None:
+            return max(estimates)
+        return 10.0 * math.log10(
+            10.0 ** (max(estimates) / 10.0) + 10.0 ** (self.dut_lines_dbm / 10.0)
+        )
 
     def before_hot(
         self,

@@ -68,7 +68,7 @@ from noisebench.running.safety import (
 )
 from noisebench.running.sequencer_core import PointHook
 from noisebench.running.sequencer_gain import GainStep
-from noisebench.running.sequencer_measurement import MeasurementSteps
+from noisebench.running.sequencer_switched import SwitchedSweep
 from noisebench.running.sequencer_verdict import VerdictStep
 from noisebench.science.point import Method
 
@@ -97,13 +97,25 @@ def power_guard_for(plan: Plan, session: BenchSession, corrections: Corrections)
         cold_temperature_k=corrections.source_temperature_k,
         t0_k=corrections.t0_k,
         declared_nf_db=plan.expect.dut_nf_db,
+        dut_lines_dbm=_lo_lines_dbm(plan),
     )
+
+
+def _lo_lines_dbm(plan: Plan) -> float | None:
+    """A converter's LO power at its IF port as the power guard counts it: the declared LO
+    leakage, else the LO drive itself (no isolation assumed: the safe side), dBm."""
+    conv = plan.conversion
+    if conv is None:
+        return None
+    if conv.lo_leakage_dbm is not None:
+        return conv.lo_leakage_dbm
+    return conv.lo.level_dbm
 
 
 # --------------------------------------------------------------------------- the sequencer
 
 
-class Sequencer(MeasurementSteps, GainStep, VerdictStep):
+class Sequencer(SwitchedSweep, GainStep, VerdictStep):
     """Runs a plan on an opened bench; see the module docstring for the order of work.
 
     ``calibrations`` is shared between runs on the same bench (pass the same store to reuse
@@ -184,7 +196,7 @@ class Sequencer(MeasurementSteps, GainStep, VerdictStep):
                 )
 
     def _run_with(self, writer):
-        todo = [p for p in self.plan.points() if p.freq_hz not in writer.done_freqs_hz]
+        todo = [p for p in self.plan.points() if p.report_hz not in writer.done_freqs_hz]
         total = len(self.plan.points())
         self.progress.start(
             total,
@@ -222,9 +234,48 @@ class Sequencer(MeasurementSteps, GainStep, VerdictStep):
             )
         self.corrections = resolve_corrections(self.plan, self.session)
         self.guard = power_guard_for(self.plan, self.session, self.corrections)
+        if self.plan.conversion is not None:
+            self._prepare_conversion(writer)
         writer.update_info(
             cold_temperature_k=self.corrections.source_temperature_k,
             identities=self.session.bench.identities(),
+        )
+
+    def _prepare_conversion(self, writer) -> None:
+        """The LO control and the image response of a frequency-converting DUT; the frequency
+        plan goes into the run's notes (report, database)."""
+        from noisebench.running.conversion import ImageRejection, LoControl
+
+        conv = self.plan.conversion
+        assert conv is not None
+        self.lo = LoControl(conv.lo, self.session.bench.lo_generator)
+        self.image_rejection = ImageRejection(conv, self.plan.resolve_path)
+        fp = self.plan.frequency_plan()
+        writer.update_info(
+            notes={
+                **writer.info.notes,
+                "conversion": {
+                    "mode": conv.mode,
+                    "nf_type": conv.nf_type,
+                    "lo_source": conv.lo.source,
+                    "lo_level_dbm": conv.lo.level_dbm,
+                    "image_rejection": self.image_rejection.description,
+                    "u_image_rejection_db": conv.u_image_rejection_db,
+                    "lo_harmonics_excluded": conv.lo_harmonics,
+                    "points": [
+                        {
+                            "rf_hz": float(r),
+                            "lo_hz": float(lo),
+                            "if_hz": float(i),
+                            "image_hz": float(im),
+                            "sideband": sb.value,
+                        }
+                        for r, lo, i, im, sb in zip(
+                            fp.rf_hz, fp.lo_hz, fp.if_hz, fp.image_hz, fp.sideband, strict=True
+                        )
+                    ],
+                },
+            }
         )
 
     def _finish(self, writer, status: str):
@@ -253,6 +304,9 @@ class Sequencer(MeasurementSteps, GainStep, VerdictStep):
         if self.plan.method is Method.GAIN and self.corrections.gain is None:  # type: ignore
             self._measure_gain(groups, writer)
         self.session.connect(Connection.DUT)
+        if self._switched(groups):
+            self._measure_switched(groups, writer)
+            return
         for group in groups:
             if group.index in self._unmeasurable:
                 continue
@@ -261,12 +315,7 @@ class Sequencer(MeasurementSteps, GainStep, VerdictStep):
             except MeasurementError as exc:
                 self._skip(group, exc, "measurement", writer)
                 continue
-            self._record_settings(outcome.settings, group, writer)
-            for point in outcome.points:
-                writer.add_point(point, self._budget(point))
-                self.progress.point_done(point)
-                if self.on_point is not None:
-                    self.on_point(point)
+            self._store_outcome(group, outcome, writer)
 
     def _record_settings(
         self, settings: AcquisitionSettings | None, group: PointGroup, writer

@@ -34,6 +34,13 @@ logger = logging.getLogger(__name__)
 class CalibrationSteps(AveragingRounds):
     """Calibrate every group that has no valid stored calibration."""
 
+    def _switched(self, groups: list[PointGroup]) -> bool:
+        """Whether Y-factor readings run in sweep-level blocks (the switched sweep's rule)."""
+        return False
+
+    def _calibrate_switched(self, groups: list[PointGroup], writer) -> None:
+        raise NotImplementedError  # pragma: no cover - provided by SwitchedSweep
+
     def _calibration_kind(self) -> CalibrationKind:
         return CalibrationKind.FLOOR if self.plan.method is Method.GAIN else CalibrationKind.SYSTEM
 
@@ -52,9 +59,21 @@ class CalibrationSteps(AveragingRounds):
         if not needed:
             logger.info("stored %s calibration still valid: reused", kind.value)
             return
+        if kind is CalibrationKind.SYSTEM and self._switched(needed):
+            self._calibrate_switched(needed, writer)
+            return
         connection = Connection.TERMINATION if kind is CalibrationKind.FLOOR else Connection.THROUGH
         self.session.connect(connection)
         for group in needed:
+            settings = self._configure(group, group.policy.min_averages)
+            if (
+                group.lo_hz is not None
+                and self.calibrations.find(
+                    kind, settings, group.freqs_hz, max_age_s=self.plan.calibration.max_age_s
+                )
+                is not None
+            ):
+                continue  # a converter: another LO's group at the same IF was just calibrated
             try:
                 entry = self._with_context(group, lambda g=group: self._calibrate_group(g, kind))
             except MeasurementError as exc:
@@ -112,7 +131,7 @@ class CalibrationSteps(AveragingRounds):
             densities={
                 n: [readings.get(f, n).combined().density for f in group.freqs_hz] for n in names
             },
-            cold_temperature_k=self.corrections.source_temperature_k,  # type: ignore[union-attr]
+            cold_temperature_k=self._corr().source_temperature_k,
             instrument_time_s=budget.used_s,
             stopped_by=stopped_by,
             summary=self._calibration_summary(group, kind, readings),
@@ -139,21 +158,34 @@ class CalibrationSteps(AveragingRounds):
     def _design_gain_db(self, freq_hz: float) -> float:
         corr = self.corrections
         if corr is not None and corr.gain is not None:
+            if self.plan.conversion is not None:
+                # one IF serves several RF points: design for the lowest conversion gain
+                return min(corr.gain(p.report_hz)[0] for p in self.plan.points())
             return corr.gain(freq_hz)[0]
         expect = self.plan.expect.dut_gain_db
         return expect if expect is not None else DEFAULT_DESIGN_GAIN_DB
 
-    def _floor_design_u(self, freq_hz: float, floor: NoiseDensity) -> float:
+    def _design_input_loss_db(self, freq_hz: float) -> float:
+        """The input loss in front of the design DUT: at the point, or for a converter the
+        largest at any RF (the calibration at one IF serves them all)."""
         corr = self.corrections
+        if self.plan.conversion is not None:
+            return max(corr.input_loss(p.report_hz) for p in self.plan.points())
+        return corr.input_loss(freq_hz)
+
+    def _floor_design_u(self, freq_hz: float, floor: NoiseDensity) -> float:
+        corr = self._corr()
         path_gain_db = (
-            self._design_gain_db(freq_hz) - corr.input_loss(freq_hz) - corr.output_loss(freq_hz)
+            self._design_gain_db(freq_hz)
+            - self._design_input_loss_db(freq_hz)
+            - corr.output_loss(freq_hz)
         )
         return floor_design_u_db(
             floor, path_gain_db, source_temperature_k=corr.source_temperature_k, t0_k=corr.t0_k
         )
 
     def _system_design_u(self, freq_hz: float, hot: NoiseDensity, cold: NoiseDensity) -> float:
-        corr = self.corrections
+        corr = self._corr()
         return system_design_u_db(
             hot,
             cold,
@@ -211,7 +243,7 @@ class CalibrationSteps(AveragingRounds):
     ):
         from noisebench.science.methods.yfactor import calibrate_point
 
-        corr = self.corrections
+        corr = self._corr()
         enr_db, u_enr_db, extrapolated = corr.enr_at(freq_hz)
         return calibrate_point(
             hot,

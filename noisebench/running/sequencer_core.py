@@ -90,6 +90,8 @@ class SequencerCore:
         self._rate_s: float | None = None  # instrument seconds per trace average, last group
         self.skipped: list[dict[str, Any]] = []  # points the physics refused, with the reason
         self.calibrations_measured = 0
+        self.lo: Any = None  # conversion.LoControl of a frequency-converting DUT
+        self.image_rejection: Any = None  # conversion.ImageRejection
 
     def _with_context(self, group: PointGroup, work: Callable[[], Any]) -> Any:
         try:
@@ -101,9 +103,18 @@ class SequencerCore:
         """The physics refuses this group's points: record why and go on with the others."""
         self._unmeasurable.add(group.index)
         for f in group.freqs_hz:
-            self.skipped.append({"freq_hz": f, "stage": stage, "reason": exc.message})
+            entry = {"freq_hz": group.rf_of(f), "stage": stage, "reason": exc.message}
+            if group.lo_hz is not None:
+                entry.update(if_hz=f, lo_hz=group.lo_hz)
+            self.skipped.append(entry)
         logger.warning("%s not measured (%s): %s", group.describe(), stage, exc.message)
         writer.update_info(notes={**writer.info.notes, "skipped_points": self.skipped})
+
+    def _corr(self) -> Corrections:
+        """The run's corrections (resolved when the run starts)."""
+        if self.corrections is None:  # pragma: no cover - _prepare runs first
+            raise MeasurementError("the corrections are not resolved")
+        return self.corrections
 
     def _guard(self) -> PowerGuard:
         if self.guard is None:  # pragma: no cover - _prepare runs first
@@ -149,10 +160,28 @@ class SequencerCore:
         # more averages than one trace can hold: combined on the averaging scale, exactly as
         # one longer average (noisebench.science.trace_combine)
         trace = combine_traces(traces)
+        lines = self._known_lines_hz(group)
         if group.band_hz is None:
-            density = estimate_density(trace)
+            density = estimate_density(trace, known_lines_hz=lines)
             return [density.model_copy(update={"freq_hz": group.freqs_hz[0]})]
-        return list(estimate_densities(trace, list(group.freqs_hz), group.band_hz))
+        return list(
+            estimate_densities(trace, list(group.freqs_hz), group.band_hz, known_lines_hz=lines)
+        )
+
+    def _known_lines_hz(self, group: PointGroup) -> list[float]:
+        """Lines known to be in the trace: a converter's LO leakage and its harmonics."""
+        conv = self.plan.conversion
+        if conv is None or group.lo_hz is None:
+            return []
+        from noisebench.running.conversion import leakage_lines_hz
+
+        return leakage_lines_hz(group.lo_hz, conv.lo_harmonics)
+
+    def _set_lo(self, group: PointGroup, budget: TimeBudget) -> None:
+        """Tune a converter's LO for this group (level and settling from the plan)."""
+        if self.lo is None or group.lo_hz is None:
+            return
+        budget.charge(self.lo.set(group.lo_hz))
 
     def _set_hot(
         self, hot: bool, budget: TimeBudget, connection: Connection, group: PointGroup

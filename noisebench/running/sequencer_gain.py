@@ -23,8 +23,11 @@ class GainStep(SequencerCore):
         )
 
         spec, bench = self.plan.gain, self.session.bench
-        if bench.generator is None:
+        generator_section = self.plan.bench.generator
+        if bench.generator is None or generator_section is None:
             raise InputError("bench.generator", "measuring the DUT gain needs a generator")
+        if spec is None or spec.max_gain_db is None or spec.dut_p1db_out_dbm is None:
+            raise InputError("gain", 'source = "measure" needs max_gain_db and dut_p1db_out_dbm')
         policy = groups[0].policy
         limits = self._guard().limits
         analyzer_max = min(
@@ -44,13 +47,13 @@ class GainStep(SequencerCore):
             averages=spec.averages,
             attenuation_db=policy.attenuation_db,
             preamp=False,
-            generator_max_dbm=self.plan.bench.generator.max_level_dbm,
+            generator_max_dbm=generator_section.max_level_dbm,
             linearity_u_db=spec.linearity_u_db,
         )
         level, _ = choose_level_dbm(gm_plan)
         check_generator_level(
             level,
-            max_level_dbm=self.plan.bench.generator.max_level_dbm,
+            max_level_dbm=generator_section.max_level_dbm,
             dut_gain_db=spec.max_gain_db,
             limits=limits,
             dut_max_input_dbm=self.plan.safety.dut_max_input_dbm,

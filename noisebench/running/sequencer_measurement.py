@@ -30,6 +30,7 @@ class MeasurementSteps(CalibrationSteps):
         names = ("hot", "cold") if y_factor else ("dut",)
         readings = _Readings(names, group.freqs_hz)
         calibration = self._calibration_for(group)
+        self._set_lo(group, budget)
         checks: list[PowerCheck] = []
         replay = self.session.bench.analyzer.replays_recordings
         if y_factor and self._guard().needs_cold_look and not replay:
@@ -40,7 +41,7 @@ class MeasurementSteps(CalibrationSteps):
         per_trace = self._first_round_averages(policy, len(names), self._prior.get("dut"), budget)
         while True:
             checks += self._round(group, readings, per_trace, budget, Connection.DUT)
-            points = [self._point(f, readings, calibration) for f in group.freqs_hz]
+            points = [self._point(f, readings, calibration, group) for f in group.freqs_hz]
             done = readings.averages(names[0])
             if all(p.u_nf_db <= policy.target_u_nf_db for p in points):
                 stop = "target"
@@ -69,10 +70,15 @@ class MeasurementSteps(CalibrationSteps):
         return _GroupOutcome(points, settings, budget.used_s)
 
     def _point(
-        self, freq_hz: float, readings: _Readings, calibration: CalibrationEntry
+        self,
+        freq_hz: float,
+        readings: _Readings,
+        calibration: CalibrationEntry,
+        group: PointGroup | None = None,
     ) -> PointResult:
-        corr = self.corrections
-        assert corr is not None
+        corr = self._corr()
+        if group is not None and group.lo_hz is not None:
+            return self._converter_point(freq_hz, readings, calibration, group)
         if self.plan.method is Method.Y_FACTOR:
             from noisebench.science.methods.yfactor import y_factor_point
 
@@ -118,6 +124,73 @@ class MeasurementSteps(CalibrationSteps):
             gain_includes_output_loss=False,
         )
 
+    def _converter_point(
+        self, if_hz: float, readings: _Readings, calibration: CalibrationEntry, group: PointGroup
+    ) -> PointResult:
+        """A frequency-converting DUT's point: read at the IF, reported at the RF, with ENR at
+        the RF and the image, the analyzer calibrated at the IF, losses at RF/image/IF."""
+        from noisebench.science.methods.converter import (
+            converter_gain_method_point,
+            converter_y_factor_point,
+        )
+
+        corr, conv = self.corrections, self.plan.conversion
+        assert corr is not None and conv is not None and group.lo_hz is not None
+        rf, lo = group.rf_of(if_hz), group.lo_hz
+        image = 2.0 * lo - rf
+        rejection = self.image_rejection.at(rf)
+        common = dict(
+            rf_hz=rf,
+            lo_hz=lo,
+            image_rejection_db=rejection,
+            nf_type=conv.nf_type,
+            u_image_rejection_db=conv.u_image_rejection_db,
+            t0_k=corr.t0_k,
+            input_loss_db=corr.input_loss(rf),
+            input_loss_image_db=corr.input_loss(image) if rejection is not None else None,
+            input_loss_temperature_k=corr.input_loss_temperature_k,
+            output_loss_db=corr.output_loss(if_hz),
+            output_loss_temperature_k=corr.output_loss_temperature_k,
+            lo_level_dbm=self.lo.level_dbm if self.lo is not None else None,
+        )
+        if self.plan.method is Method.Y_FACTOR:
+            enr_rf, u_rf, extrapolated = corr.enr_at(rf)
+            enr_img = u_img = None
+            if rejection is not None:
+                enr_img, u_img, ext_img = corr.enr_at(image)
+                extrapolated = extrapolated or ext_img
+            cal = self._system_point(
+                if_hz,
+                calibration.reading("hot", if_hz),
+                calibration.reading("cold", if_hz),
+                calibration.measured_at,
+            )
+            return converter_y_factor_point(
+                readings.get(if_hz, "hot").combined().density,
+                readings.get(if_hz, "cold").combined().density,
+                enr_rf_db=enr_rf,
+                enr_image_db=enr_img,
+                cold_temperature_k=corr.source_temperature_k,
+                calibration=cal,
+                u_enr_rf_db=u_rf,
+                u_enr_image_db=u_img,
+                enr_reference=corr.enr_reference,
+                enr_extrapolated=extrapolated,
+                **common,
+            )
+        gain_db, u_gain_db, holds_input_loss = self._stated_gain(rf)
+        return converter_gain_method_point(
+            readings.get(if_hz, "dut").combined().density,
+            gain_db,
+            floor=calibration.reading("floor", if_hz),
+            u_gain_db=u_gain_db,
+            source_temperature_k=corr.source_temperature_k,
+            floor_temperature_k=calibration.cold_temperature_k,
+            gain_includes_input_loss=holds_input_loss,
+            gain_includes_output_loss=False,
+            **common,
+        )
+
     def _stated_gain(self, freq_hz: float) -> tuple[float, float, bool]:
         """The DUT gain as known, dB, its uncertainty, dB, and whether it holds the input loss.
 
@@ -125,8 +198,7 @@ class MeasurementSteps(CalibrationSteps):
         THROUGH planes (input loss and DUT, not the output loss). The gain method turns it into
         the path gain (source termination to analyzer) and records which losses it held, so
         that budgets move the path gain with a loss's error where the loss was subtracted."""
-        corr = self.corrections
-        assert corr is not None
+        corr = self._corr()
         if corr.gain is not None:
             gain_db, u = corr.gain(freq_hz)
             return gain_db, u, False
@@ -145,7 +217,7 @@ class MeasurementSteps(CalibrationSteps):
         stop: str,
         calibration: CalibrationEntry,
     ) -> PointResult:
-        f = point.freq_hz
+        f = point.conversion.if_hz if point.conversion is not None else point.freq_hz
         flags = list(point.flags)
         combined = [readings.get(f, n).combined() for n in readings.names]
         if any(c.excess_scatter for c in combined) and PointFlag.EXCESS_SCATTER not in flags:

@@ -14,8 +14,18 @@ class VerdictStep(SequencerCore):
         inputs = self.plan.uncertainty
         if inputs is None or isinstance(inputs, dict):
             return None
+        from noisebench.science.point import Method
         from noisebench.science.uncertainty import budget_for_point
 
+        level_u = self.session.bench.analyzer.level_uncertainty_db
+        if (
+            self.plan.method is Method.GAIN
+            and inputs.absolute_amplitude_db is None
+            and level_u is not None
+        ):  # the instrument's own absolute-level uncertainty (a receiver scale calibration)
+            inputs = type(inputs).model_validate(
+                {**inputs.model_dump(exclude_none=True), "absolute_amplitude_db": {"u": level_u}}
+            )
         return budget_for_point(point, inputs, base_dir=self.plan.base_dir).to_dict()
 
     def _verdict(self, writer) -> dict | None:

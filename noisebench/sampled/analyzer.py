@@ -188,6 +188,11 @@ class SampledAnalyzer(Analyzer):
         return {"sampled_receiver": {**self.summary(), "level_note": LEVEL_NOTE}}
 
     @property
+    def level_uncertainty_db(self) -> float | None:
+        """The scale calibration's standard uncertainty, dB (None without one)."""
+        return self.scale.u_db if self.scale is not None else None
+
+    @property
     def replays_recordings(self) -> bool:
         """True for recorded samples: nothing is switched and no input can be overdriven."""
         return self.source.info.finite

@@ -51,7 +51,14 @@ class ScaleCalibration(BaseModel):
 
     scale_w_per_fs2: float = Field(gt=0, allow_inf_nan=False)
     method: Literal["tone", "noise_pair", "declared"]
-    u_rel: float | None = Field(default=None, ge=0, description="relative standard uncertainty")
+    u_rel: float | None = Field(
+        default=None, ge=0, description="relative standard uncertainty from the capture's noise"
+    )
+    u_reference_db: float | None = Field(
+        default=None,
+        ge=0,
+        description="standard uncertainty of the reference (tone level, noise temperatures), dB",
+    )
     freq_hz: float | None = Field(default=None, gt=0)
     reference: str = ""
     source_identity: str = ""
@@ -62,8 +69,17 @@ class ScaleCalibration(BaseModel):
         """Power at the reference plane of a signal at mean |x|^2 = 1, dBm."""
         return 10.0 * math.log10(self.scale_w_per_fs2 / 1e-3)
 
+    @property
+    def u_db(self) -> float | None:
+        """Standard uncertainty of the scale, dB: the capture's noise and the reference's, RSS
+        (None when the reference's uncertainty was not given: unknown, not zero)."""
+        if self.u_reference_db is None:
+            return None
+        noise_db = 10.0 / math.log(10.0) * (self.u_rel or 0.0)
+        return math.hypot(noise_db, self.u_reference_db)
+
     def describe(self) -> str:
-        u = f", u {100 * self.u_rel:.2f} %" if self.u_rel is not None else ""
+        u = f", u {self.u_db:.3f} dB" if self.u_db is not None else ", u of the reference not given"
         return f"{self.method}, 0 dBFS = {self.full_scale_dbm:.2f} dBm{u}"
 
     def save(self, path: str | Path) -> Path:
@@ -111,8 +127,10 @@ def scale_from_tone(
     rbw_hz: float | None = None,
     window: str = DEFAULT_WINDOW,
     reference: str = "",
+    u_level_db: float | None = None,
 ) -> ScaleCalibration:
-    """Scale from a capture of a tone of known power (dBm at the reference plane)."""
+    """Scale from a capture of a tone of known power (dBm at the reference plane; its standard
+    uncertainty ``u_level_db``, e.g. the generator's level accuracy, goes with the scale)."""
     fs = block.sample_rate_hz
     rbw = rbw_hz if rbw_hz is not None else fs / 1024
     plan, rf, psd = _density(block, rbw, window)
@@ -141,6 +159,7 @@ def scale_from_tone(
         scale_w_per_fs2=p_w / tone_fs2,
         method="tone",
         u_rel=u_rel,
+        u_reference_db=u_level_db,
         freq_hz=float(tone_freq_hz),
         reference=reference or f"tone {tone_power_dbm:g} dBm at {tone_freq_hz:.9g} Hz",
     )
@@ -156,11 +175,13 @@ def scale_from_noise_pair(
     window: str = DEFAULT_WINDOW,
     usable_fraction: float = 0.8,
     reference: str = "",
+    u_temperature_k: float | None = None,
 ) -> ScaleCalibration:
     """Scale from two captures of known noise temperatures (K, available at the reference plane).
 
     ``scale = k (T_hot - T_cold) / (D_hot - D_cold)`` with ``D`` the mean Welch density over the
-    usable band (LO guard excluded), full-scale^2/Hz.
+    usable band (LO guard excluded), full-scale^2/Hz. ``u_temperature_k``: standard uncertainty
+    of the temperature difference, K (goes with the scale).
     """
     if not hot_k > cold_k:
         raise InputError("hot_k", f"must exceed cold_k ({hot_k!r} <= {cold_k!r})")
@@ -186,6 +207,11 @@ def scale_from_noise_pair(
         scale_w_per_fs2=BOLTZMANN_J_PER_K * (hot_k - cold_k) / diff,
         method="noise_pair",
         u_rel=u_abs / diff,
+        u_reference_db=(
+            None
+            if u_temperature_k is None
+            else 10.0 / math.log(10.0) * u_temperature_k / (hot_k - cold_k)
+        ),
         freq_hz=float(hot.center_hz),
         reference=reference or f"noise {hot_k:.1f} K / {cold_k:.1f} K",
     )

@@ -2,7 +2,7 @@
 
 Pure functions, no I/O. Powers are normalised to the true mean noise power in the RBW (``mu = 1``).
 
-Model (reference.md §6b/6c). Band-limited Gaussian noise gives exponentially distributed power
+Model (docs/references.md §6b/6c). Band-limited Gaussian noise gives exponentially distributed power
 samples. A detector that averages ``k`` independent samples in linear power (RMS) yields a
 gamma-distributed power with shape ``k`` and mean ``mu``. A trace point is then one of three
 statistics of ``count`` independent values, chosen by the averaging scale:
@@ -32,7 +32,7 @@ SAMPLE with ``k > 1``: a video filter narrower than the RBW smooths the *detecte
 which on a log display is the log power and on a linear display the envelope voltage, so it
 averages on the display (= averaging) scale, exactly like the AVERAGE detector (common
 practice: a narrow VBW makes noise read low on a log display by up to the full 2.51 dB of
-reference.md §6b, however many samples it averages). A point is then the scale average of
+docs/references.md §6b, however many samples it averages). A point is then the scale average of
 ``N * k`` single samples, with ``k`` the effective number of independent samples in a video
 filter's averaging time (``B_stat / (pi VBW)`` for a one-pole filter, reported by the
 instrument as ``detector_samples``). On the power scale this is the power mean of ``N * k``

@@ -98,14 +98,22 @@ def estimate_density(
     reject_spurs: bool = True,
     spur_threshold_sigma: float = DEFAULT_SPUR_THRESHOLD_SIGMA,
     min_points: int = 3,
+    known_lines_hz: Sequence[float] = (),
 ) -> NoiseDensity:
     """Noise density (W/Hz) at ``freq_hz`` from the points of ``trace`` within ``band_hz``.
 
     Defaults: the whole trace, reported at its centre. With ``freq_hz`` and ``band_hz`` the band
     ``freq_hz +/- band_hz/2`` is used; it must lie inside the trace and hold ``min_points``.
     In zero span all points are at the centre frequency and ``band_hz`` is not used.
+    ``known_lines_hz``: lines known to be there (a converter's LO leakage and its harmonics),
+    excluded with their filter skirts whether or not the spur search finds them.
     """
-    prepared = _prepare(trace, reject_spurs=reject_spurs, threshold_sigma=spur_threshold_sigma)
+    prepared = _prepare(
+        trace,
+        reject_spurs=reject_spurs,
+        threshold_sigma=spur_threshold_sigma,
+        known_lines_hz=known_lines_hz,
+    )
     return _estimate_band(prepared, freq_hz, band_hz, min_points=min_points)
 
 
@@ -117,11 +125,13 @@ def estimate_densities(
     reject_spurs: bool = True,
     spur_threshold_sigma: float = DEFAULT_SPUR_THRESHOLD_SIGMA,
     min_points: int = 3,
+    known_lines_hz: Sequence[float] = (),
 ) -> list[NoiseDensity]:
     """One :class:`NoiseDensity` per frequency in ``freqs_hz``, each over its own band.
 
     Conversion, bias correction and spur search run once over the whole trace (vectorised);
     each band then costs only its own sums. ``band_hz`` is one value or one per frequency.
+    ``known_lines_hz`` as in :func:`estimate_density`.
     """
     freqs = np.atleast_1d(np.asarray(freqs_hz, dtype=float))
     if freqs.ndim != 1 or freqs.size == 0:
@@ -138,7 +148,12 @@ def estimate_densities(
             fix="pass one band or one per frequency",
         )
     bands = np.broadcast_to(bands.ravel(), freqs.shape)
-    prepared = _prepare(trace, reject_spurs=reject_spurs, threshold_sigma=spur_threshold_sigma)
+    prepared = _prepare(
+        trace,
+        reject_spurs=reject_spurs,
+        threshold_sigma=spur_threshold_sigma,
+        known_lines_hz=known_lines_hz,
+    )
     out = []
     for i, (f, b) in enumerate(zip(freqs, bands, strict=True)):
         try:
@@ -253,7 +268,13 @@ class _Prepared:
     zero_span: bool
 
 
-def _prepare(trace: Trace, *, reject_spurs: bool, threshold_sigma: float) -> _Prepared:
+def _prepare(
+    trace: Trace,
+    *,
+    reject_spurs: bool,
+    threshold_sigma: float,
+    known_lines_hz: Sequence[float] = (),
+) -> _Prepared:
     s = trace.settings
     threshold_sigma = float(threshold_sigma)
     if not math.isfinite(threshold_sigma) or threshold_sigma <= 0:
@@ -283,6 +304,11 @@ def _prepare(trace: Trace, *, reject_spurs: bool, threshold_sigma: float) -> _Pr
     elif trace.excluded is not None:
         excluded, marked_hz, marked_widths = _marked_regions(trace.freq_hz, trace.excluded)
         spurs, widths = np.asarray(marked_hz), np.asarray(marked_widths)
+    if len(known_lines_hz) and not zero_span:
+        search_var = rel_var if rel_var is not None else _robust_relative_variance(power)
+        excluded, spurs, widths = _exclude_known_lines(
+            trace, power, search_var, excluded, spurs, widths, known_lines_hz
+        )
     return _Prepared(
         trace=trace,
         freq_hz=trace.freq_hz,
@@ -602,6 +628,48 @@ def _find_spurs(
         logger.debug("excluded %d spur(s) at %s Hz", len(spurs), spurs)
     order = np.argsort(spurs)
     return excluded, np.asarray(spurs)[order], np.asarray(widths)[order]
+
+
+def _exclude_known_lines(
+    trace: Trace,
+    power: np.ndarray,
+    rel_var: float,
+    excluded: np.ndarray,
+    spurs: np.ndarray,
+    widths: np.ndarray,
+    lines_hz: Sequence[float],
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Add known lines inside the trace to the exclusion, each sized like a found spur (its
+    skirt down to the same residual level) and at least for a line as strong as the noise."""
+    s = trace.settings
+    f = trace.freq_hz
+    spacing = _uniform_spacing(f)
+    lines = np.asarray([float(x) for x in lines_hz], dtype=float)
+    if not np.all(np.isfinite(lines)):
+        raise InputError("known_lines_hz", "must be finite frequencies", fix="pass Hz values")
+    a = _gamma_shape(rel_var)
+    median_ratio = float(special.gammaincinv(a, 0.5) / a)
+    quiet = power[~excluded] if np.any(~excluded) else power
+    base = float(np.median(quiet)) / median_ratio
+    skirt_level = SPUR_SKIRT_FRACTION * math.sqrt(rel_var / power.size)
+    edge = float(s.rbw_filter.power_response(np.array([spacing / 2]), s.rbw_hz)[0])
+    excluded = excluded.copy()
+    new_spurs, new_widths = list(spurs), list(widths)
+    for line in lines:
+        if line < f[0] - spacing or line > f[-1] + spacing:
+            continue  # outside the trace: plan validation keeps its skirt out of the bands
+        near = np.abs(f - line) <= max(spacing, 0.5 * s.rbw_hz)
+        peak = float(power[near].max()) if np.any(near) else base
+        line_power = max(peak - base, base) / max(edge, 1e-300)
+        half = (
+            response_halfwidth_ratio(s.rbw_filter, skirt_level * base / line_power) * s.rbw_hz
+            + spacing / 2
+        )
+        excluded |= np.abs(f - line) <= half
+        new_spurs.append(float(line))
+        new_widths.append(half)
+    order = np.argsort(new_spurs)
+    return excluded, np.asarray(new_spurs)[order], np.asarray(new_widths)[order]
 
 
 # --- per-band estimate ------------------------------------------------------------------------

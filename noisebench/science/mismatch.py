@@ -64,7 +64,7 @@ def _gamma_array(field: str, gamma: Any) -> np.ndarray:
 def mismatch_limits_db(gamma_source: float, gamma_load: float) -> tuple[float, float]:
     """Mismatch limits ``(20log10(1 + |Gs||Gl|), 20log10(1 - |Gs||Gl|))``, dB.
 
-    Reference: Harris & Warner 1981 (reference.md §9).
+    Reference: Harris & Warner 1981 (docs/references.md §9).
     """
     rho = float(_gamma_array("gamma_source", gamma_source) * _gamma_array("gamma_load", gamma_load))
     return 20.0 * math.log10(1.0 + rho), 20.0 * math.log10(1.0 - rho)
@@ -74,7 +74,7 @@ def mismatch_standard_uncertainty_db(gamma_source: float, gamma_load: float) -> 
     """Standard uncertainty of the mismatch term in dB: U-shaped, ``a/sqrt(2)``.
 
     ``a`` is half the width of the limits of :func:`mismatch_limits_db`; to first order this is
-    ``DB_PER_NEPER_POWER * sqrt(2) * |Gs||Gl|`` (reference.md §9).
+    ``DB_PER_NEPER_POWER * sqrt(2) * |Gs||Gl|`` (docs/references.md §9).
     """
     upper, lower = mismatch_limits_db(gamma_source, gamma_load)
     return standard_uncertainty_from_half_width((upper - lower) / 2.0, Distribution.U_SHAPED)
@@ -137,7 +137,7 @@ def _load_reflection_cached(path: str, mtime_ns: int, port: int) -> tuple[np.nda
     logger.debug("reading reflections from %s (port %d)", path, port)
     try:
         net = skrf.Network(path)
-    except Exception as exc:  # scikit-rf raises assorted types for bad files
+    except Exception as exc:  # noqa: BLE001 - scikit-rf raises assorted types for bad files
         raise InputError(
             "touchstone",
             f"{path}: not a readable Touchstone file ({exc})",

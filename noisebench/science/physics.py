@@ -491,7 +491,7 @@ def deembed_input_loss(
 ) -> FloatOrArray:
     """Noise factor of the DUT behind an input loss: F_DUT = 1 + (F_meas - F_L)/L.
 
-    ``F_L = 1 + (L-1)*Tp/T0`` is the loss's own noise factor (reference.md §3, generalised to
+    ``F_L = 1 + (L-1)*Tp/T0`` is the loss's own noise factor (docs/references.md §3, generalised to
     Tp != T0).
     """
     t0 = _check_t0(t0_k)
@@ -580,7 +580,8 @@ def dsb_from_ssb_factor(
 def ssb_from_dsb_te_k(
     te_dsb_k: ArrayLike, image_to_signal_gain_ratio: ArrayLike = 1.0
 ) -> FloatOrArray:
-    """Te_SSB = Te_DSB*(1 + G_i/G_s), K. Note F_SSB = 1 + G_i/G_s + Te_SSB/T0 (reference §10)."""
+    """Te_SSB = Te_DSB*(1 + G_i/G_s), K. Note F_SSB = 1 + G_i/G_s + Te_SSB/T0 (docs/references.md
+    §10)."""
     te = checked_array("te_dsb_k", te_dsb_k)
     return scalar_or_array(te * (1.0 + _image_ratio(image_to_signal_gain_ratio)))
 

@@ -25,6 +25,7 @@ class PointFlag(str, Enum):
     LOW_GAIN = "low_gain"  # DUT gain low: second-stage correction large
     COMPRESSION_RISK = "compression_risk"  # total power near the analyzer's limit
     NEGATIVE_TE = "negative_te"  # corrected Te below zero: physically implausible reading
+    DRIFT = "drift"  # hot/cold readings drifted in a way the symmetric schedule cannot cancel
     # the calibration this point was computed with carried a flag of its own
     CAL_Y_TOO_SMALL = "cal_y_too_small"  # system calibration Y close to 1
     CAL_TIME_LIMIT = "cal_time_limit"  # calibration stopped by its time limit before its target
@@ -42,8 +43,8 @@ below what the source termination alone gives, which no working DUT does (a DUT 
 floor reads like this). ENR_EXTRAPOLATED: the ENR was clamped outside its calibrated range, so
 its error is unknown and in no budget. Every other flag annotates: its effect on the number is
 inside the stated uncertainty (Y_TOO_SMALL, NEAR_ANALYZER_FLOOR, LOW_GAIN, EXCESS_SCATTER,
-TIME_LIMIT, SPURS_EXCLUDED, the CAL_* flags) or is a caution with a 20 dB margin
-(COMPRESSION_RISK)."""
+TIME_LIMIT, SPURS_EXCLUDED, the CAL_* flags; DRIFT asks for a repeat in a stabler setting) or
+is a caution with a 20 dB margin (COMPRESSION_RISK)."""
 
 _CALIBRATION_FLAG_FOR = {
     "y_too_small": PointFlag.CAL_Y_TOO_SMALL,

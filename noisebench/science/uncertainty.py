@@ -13,7 +13,7 @@ What it does
     optionally with the adaptive choice of M (§7.9) and the GUM validation (§8). Both live in
     :mod:`noisebench.science.propagation` and are re-exported here.
 
-Measurement models (reference.md §4, §5, §9)
+Measurement models (docs/references.md §4, §5, §9)
     Y-factor, with second-stage correction when a calibration is given (the same physics as
     :mod:`noisebench.science.methods.yfactor`)::
 
@@ -25,9 +25,10 @@ Measurement models (reference.md §4, §5, §9)
         Te1 = Te12 - Te2/G1
 
     ``dENR' = dENR`` (one quantity) when the same source serves calibration and measurement
-    (reference.md §9); the cold temperature's error is shared by both (one thermometer).
+    (docs/references.md §9); the cold temperature's error is shared by both (one thermometer).
 
-    Gain method (reference §4, exact floor correction; as :mod:`noisebench.science.methods.gain`)::
+    Gain method (docs/references.md §4, exact floor correction; as
+    :mod:`noisebench.science.methods.gain`)::
 
         Te = (A*L*M_out*N_dut - A*N_floor + k*T_term) / (k*G*M_in) - Ts
         (no floor: Te = A*M_out*N_dut / (k*G*M_in) - Ts)
@@ -49,7 +50,8 @@ Mismatch (common practice, first order)
     (DUT output / analyzer input) on the gain seen by the second stage (Y-factor) or on the
     DUT's output noise (gain method); for the gain method ``M_in`` (termination / DUT input)
     acts on the gain. The source's reflection is the larger of its hot and cold values. The
-    change of the DUT's own noise with source match needs its noise parameters (reference §9)
+    change of the DUT's own noise with source match needs its noise parameters (docs/references.md
+    §9)
     and is outside this model; add it as an ``extra`` term if known.
 
 Units: Hz, K, W/Hz inside; dB for ratios of the influence quantities; relative density jitter in

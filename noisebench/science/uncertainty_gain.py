@@ -115,7 +115,8 @@ def gain_method_budget(
     gain_includes_input_loss: bool = True,
     gain_includes_output_loss: bool = True,
 ) -> Budget:
-    """Budget of a gain-method NF (densities W/Hz, path gain dB, temperatures K) [reference §4].
+    """Budget of a gain-method NF (densities W/Hz, path gain dB, temperatures K)
+    [docs/references.md §4].
 
     Same physics as :func:`noisebench.science.methods.gain_method_point`: ``gain_db`` is the
     measured

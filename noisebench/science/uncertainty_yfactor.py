@@ -154,7 +154,7 @@ def y_factor_budget(
     reflections: Reflections | None = None,
     method: Literal["gum", "monte_carlo"] | None = None,
 ) -> Budget:
-    """Budget of a Y-factor NF (densities W/Hz, ENR dB, temperatures K) [reference.md §5, §9].
+    """Budget of a Y-factor NF (densities W/Hz, ENR dB, temperatures K) [docs/references.md §5, §9].
 
     Same physics as :func:`noisebench.science.methods.y_factor_point`. With ``hot_cal``/``cold_cal``
     the model includes the second-stage correction ``Te1 = Te12 - Te2/G1`` (the calibration's

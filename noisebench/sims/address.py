@@ -7,6 +7,7 @@ place of the simulated spectrum analyzer; the options of
 from __future__ import annotations
 
 from dataclasses import dataclass
+from pathlib import Path
 
 from noisebench.errors import InputError
 
@@ -68,3 +69,53 @@ def parse_sim_address(resource: str) -> SimAddress:
     if seed < 0:
         raise InputError("resource", f"seed {seed} must be >= 0")
     return SimAddress(scenario, seed, receiver, sampled)
+
+
+def simulated_bench_problems(
+    resource: str, spans_hz: list[tuple[float, float]] | None = None
+) -> list[str]:
+    """Plan-time problems of a ``sim://`` analyzer address, one line each: the address itself,
+    the scenario it names, and (``spans_hz``: each point's lowest and highest frequency) points
+    outside the simulated analyzer's range, so they are refused before anything is measured."""
+    key = "bench.analyzer.resource"
+    try:
+        address = parse_sim_address(resource)
+    except InputError as exc:
+        return [f"{key}: {exc.message.split(': ', 1)[-1]}"]
+    problems = _check_scenario(address.scenario)
+    if problems or spans_hz is None:
+        return problems
+    return _check_sim_range(address.scenario, spans_hz)
+
+
+def _check_scenario(name: str) -> list[str]:
+    """A ``sim://`` scenario must exist (packaged name or .toml path), as the run will need."""
+    from noisebench.sims.scenario import SCENARIO_SUFFIX, available_scenarios
+
+    names = available_scenarios()
+    if name in names or (Path(name).suffix == SCENARIO_SUFFIX and Path(name).is_file()):
+        return []
+    return [
+        f"bench.analyzer.resource: no scenario {name!r} (use one of {names} "
+        f"or a path to a {SCENARIO_SUFFIX} file)"
+    ]
+
+
+def _check_sim_range(scenario: str, spans_hz: list[tuple[float, float]]) -> list[str]:
+    """Every point's span must lie within the simulated analyzer's frequency range."""
+    from noisebench.sims.scenario import load_scenario
+
+    try:
+        spec = load_scenario(scenario).analyzer
+    except InputError:  # reported at run time with its own message
+        return []
+    lo, hi = spec.min_freq_hz, spec.max_freq_hz
+    bad = [(a + b) / 2 for a, b in spans_hz if a < lo or b > hi]
+    if not bad:
+        return []
+    shown = ", ".join(f"{f:.6g}" for f in bad[:3]) + (" ..." if len(bad) > 3 else "")
+    return [
+        f"sweep: {len(bad)} point(s) ({shown} Hz) with their span fall outside the "
+        f"simulated analyzer's range {lo:.6g}..{hi:.6g} Hz (move them inside or narrow "
+        "span_hz)"
+    ]

@@ -48,6 +48,7 @@ from noisebench.bench.acquisition import (
     Trace,
     TraceUnit,
 )
+from noisebench.bench.capabilities import NoiseDriveOutput
 from noisebench.bench.instruments import Analyzer
 from noisebench.errors import InputError
 from noisebench.science.detection import point_model_for
@@ -107,7 +108,7 @@ def round_step(value: float, step: float, lo: float, hi: float) -> float:
     return float(min(max(math.floor(float(value) / step + 0.5) * step, lo), hi))
 
 
-class SimAnalyzer(Analyzer):
+class SimAnalyzer(Analyzer, NoiseDriveOutput):
     """A spectrum analyzer on the simulated bench (see module docstring for the physics)."""
 
     def __init__(
@@ -385,6 +386,9 @@ class SimAnalyzer(Analyzer):
             spectrum = self.source.spectrum(freq)
             hot = self._hot_fraction(s, t0, period, t_end)
             noise_w, gain = self._displayed_noise_w(s, freq, spectrum, hot)
+            drift = self.gain_drift_factor(0.5 * (t0 + t_end))
+            if drift != 1.0:
+                noise_w, gain = noise_w * drift, gain * drift
             tone_w = self._tone_power_w(s, freq, spectrum.tones)
             tone_scale = None
             if tone_w is not None:
@@ -409,6 +413,12 @@ class SimAnalyzer(Analyzer):
             )
             self.last_trace = trace
             return trace
+
+    def gain_drift_factor(self, t_s: float) -> float:
+        """Receiver gain drift (linear factor) at simulated time ``t_s``; for the slow drifts
+        modelled, the mean over one acquisition is its value at the middle."""
+        db = self.spec.gain_drift_db_per_s * t_s + self.spec.gain_drift_db_per_s2 * t_s**2
+        return float(10.0 ** (db / 10.0))
 
     def _recipe(self, s: AcquisitionSettings) -> TraceRecipe:
         kernel = None

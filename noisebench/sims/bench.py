@@ -37,6 +37,7 @@ from noisebench.sims.models import (
     T0_K,
     AnalyzerFrontEnd,
     CableModel,
+    ConverterModel,
     DutModel,
     NoiseSourceModel,
     SpectrumAtInput,
@@ -146,6 +147,27 @@ def _dut_model(d: DutSpec, ambient_k: float) -> DutModel:
     )
 
 
+def _converter_model(d: DutSpec, dut: DutModel) -> ConverterModel | None:
+    """The conversion around the DUT model, when the DUT converts frequency (and is powered:
+    a switched-off converter converts nothing)."""
+    c = d.conversion
+    if c is None or not d.powered:
+        return None
+    return ConverterModel(
+        dut=dut,
+        if_min_hz=c.if_min_hz,
+        if_max_hz=c.if_max_hz,
+        rejected_sideband=c.rejected_sideband,
+        sideband_rejection_db=c.sideband_rejection_db,
+        lo_nominal_dbm=c.lo_nominal_dbm,
+        lo_min_dbm=c.lo_min_dbm,
+        lo_leakage_dbm=c.lo_leakage_dbm,
+        lo_harmonics_dbc=tuple(c.lo_harmonics_dbc),
+        external_lo_hz=c.external_lo_hz,
+        external_lo_dbm=c.external_lo_dbm,
+    )
+
+
 class _AnalyzerConnector:
     """The analyzer's view of the bench (implements ``sims.analyzer.AnalyzerInput``)."""
 
@@ -180,6 +202,7 @@ class SimulatedBench:
         self.noise_source = SimNoiseSource(ns, self.source_model, self.clock)
         self.supply = SimSupply(scenario.supply, self.noise_source)
         self.generator = SimGenerator(scenario.generator)
+        self.lo_generator = SimGenerator(scenario.lo_generator)
         self.path = Path.DUT
         self._lines = _expand_lines(scenario)
         self._calibration_error_db = self._draw_calibration_error(np.random.default_rng(cal_seq))
@@ -210,6 +233,7 @@ class SimulatedBench:
     def _build_models(self, sc: Scenario) -> None:
         ns, an = sc.noise_source, sc.analyzer
         self.dut_model = _dut_model(sc.dut, sc.ambient_k)
+        self.converter_model = _converter_model(sc.dut, self.dut_model)
         self.input_cable = _cable(sc.input_cable, sc.ambient_k)
         self.output_cable = _cable(sc.output_cable, sc.ambient_k)
         self.source_model = NoiseSourceModel(
@@ -263,6 +287,7 @@ class SimulatedBench:
         model = _dut_model(spec, self.scenario.ambient_k)
         self.scenario = self.scenario.model_copy(update={"dut": spec})
         self.dut_model = model
+        self.converter_model = _converter_model(spec, model)
         logger.debug("DUT replaced by %r", spec.name)
 
     def reset(self) -> None:
@@ -277,13 +302,15 @@ class SimulatedBench:
             noise_source=self.noise_source,
             generator=self.generator,
             ambient_k=self.ambient_k,
+            lo_generator=self.lo_generator if self.scenario.dut.conversion is not None else None,
             extras={"supply": self.supply, "sim": self},
         )
 
     def close(self) -> None:
         """Safe state on every instrument."""
-        for inst in (self.noise_source, self.generator, self.supply, self.analyzer):
+        for inst in (self.noise_source, self.generator, self.lo_generator, self.supply):
             inst.close()
+        self.analyzer.close()
 
     # ------------------------------------------------------------ noise source table --------
 
@@ -340,10 +367,58 @@ class SimulatedBench:
         temp = self.source_model.temperature_k(f, hot, self._drive_for_hot())
         return np.asarray(temp, dtype=float), self.source_model.gamma(hot), []
 
+    def lo_state(self) -> tuple[float, float | None]:
+        """The converter's LO: (frequency in Hz, delivered level in dBm or None when off)."""
+        conv = self.converter_model
+        if conv is not None and conv.external_lo_hz is not None:
+            level = conv.external_lo_dbm
+            return conv.external_lo_hz, conv.lo_nominal_dbm if level is None else level
+        lo = self.lo_generator
+        return lo.freq_hz, lo.true_level_dbm if lo.output_on else None
+
+    def _converter_input_k(self, f_in: np.ndarray, hot: float, use_generator: bool) -> np.ndarray:
+        """Noise temperature delivered to the converter's input at input frequencies ``f_in``."""
+        ts, gs, _ = self._source_plane(f_in, hot, use_generator)
+        cab = self.input_cable
+        t1 = cab.output_temperature_k(ts, f_in)
+        m1 = mismatch_factor(cab.seen_reflection(gs, f_in), self.dut_model.input_gamma)
+        return mismatched_temperature_k(t1, self.ambient_k, m1)
+
+    def _converter_output(
+        self, f: np.ndarray, hot: float, use_generator: bool, compression: float
+    ) -> tuple[np.ndarray, list[tuple[float, float]]]:
+        conv = self.converter_model
+        assert conv is not None
+        lo_hz, lo_dbm = self.lo_state()
+        t2 = conv.output_temperature_k(
+            f,
+            lo_hz,
+            lo_dbm,
+            lambda fin: self._converter_input_k(fin, hot, use_generator),
+            self.ambient_k,
+        )
+        if lo_dbm is not None:
+            t2 = np.where(conv.in_if_band(f), t2 * compression, t2)
+        _, gs, tones = self._source_plane(np.asarray([1.0]), hot, use_generator)
+        out_tones = []
+        cab = self.input_cable
+        for ft, p in tones:
+            fa = np.asarray([ft])
+            g = conv.response_gain_lin(fa, lo_hz, lo_dbm)
+            if g[0] <= 0:
+                continue
+            m = mismatch_factor(cab.seen_reflection(gs, fa), self.dut_model.input_gamma)
+            out_tones.append((abs(ft - lo_hz), float(p * g[0] / cab.loss_lin(fa)[0] * m[0])))
+        out_tones = [(ft, p * compression) for ft, p in out_tones]
+        out_tones += list(self.dut_model.spurs) + conv.leakage_lines(lo_hz, lo_dbm)
+        return t2, out_tones
+
     def _dut_output(
         self, f: np.ndarray, hot: float, use_generator: bool, compression: float = 1.0
     ) -> tuple[np.ndarray, list[tuple[float, float]]]:
         """Noise temperature at the DUT output (before the output cable) and tones there."""
+        if self.converter_model is not None:
+            return self._converter_output(f, hot, use_generator, compression)
         ts, gs, tones = self._source_plane(f, hot, use_generator)
         cab, dut = self.input_cable, self.dut_model
         t1 = cab.output_temperature_k(ts, f)
@@ -368,6 +443,8 @@ class SimulatedBench:
         if p1db is None:
             return 1.0
         lo, hi = self.dut_model.band_hz
+        if self.converter_model is not None:
+            lo, hi = self.converter_model.if_min_hz, self.converter_model.if_max_hz
         grid = np.linspace(lo, hi, BAND_GRID_POINTS)
         t2, tones = self._dut_output(grid, hot, use_generator)
         total = BOLTZMANN_J_PER_K * float(np.trapezoid(t2, grid))
@@ -408,7 +485,9 @@ class SimulatedBench:
 
     def _integration_band(self, path: Path) -> tuple[float, float]:
         an = self.scenario.analyzer
-        if path is Path.DUT:
+        if path is Path.DUT and self.converter_model is not None:
+            lo, hi = self.converter_model.if_min_hz, self.converter_model.if_max_hz
+        elif path is Path.DUT:
             lo, hi = self.dut_model.band_hz
         elif path is Path.THROUGH:
             lo, hi = self.source_model.freq_hz[0], self.source_model.freq_hz[-1]
@@ -448,6 +527,54 @@ class SimulatedBench:
         )
 
     # ------------------------------------------------------------ truth --------------------
+
+    def converter_truth(
+        self, rf_hz: float, lo_hz: float | None = None, lo_dbm: float | None = None
+    ) -> dict[str, float]:
+        """What the models say about a converter point: RF ``rf_hz`` with the LO at ``lo_hz``
+        (default: the LO now), driven at ``lo_dbm`` (default: the LO's level now, or nominal).
+
+        Keys: ``nf_ssb_db``, ``nf_dsb_db``, ``te_ssb_k``, ``gain_signal_db``, ``gain_image_db``,
+        ``image_rejection_db`` (inf: no image response), ``image_hz``, ``if_hz``,
+        ``enr_rf_db``/``enr_image_db``/``enr_if_db`` (true) and ``*_table_db`` (the operator's),
+        ``input_loss_rf_db``, ``input_loss_image_db``, ``output_loss_if_db``, ``analyzer_te_k``
+        (at the IF, applied settings), ``cold_k``, ``ambient_k``.
+        """
+        conv = self.converter_model
+        if conv is None:
+            raise InputError(
+                "dut.conversion", "this scenario's DUT does not convert frequency", fix=""
+            )
+        now_hz, now_dbm = self.lo_state()
+        lo = now_hz if lo_hz is None else float(lo_hz)
+        level = (
+            lo_dbm
+            if lo_dbm is not None
+            else (now_dbm if now_dbm is not None else conv.lo_nominal_dbm)
+        )
+        out = conv.ssb_dsb_truth(float(rf_hz), lo, level)
+        image, if_hz = out["image_hz"], abs(float(rf_hz) - lo)
+        src, drive = self.source_model, self._drive_for_hot()
+        table = src.enr_db + self._calibration_error_db
+        s = self.analyzer.settings
+        att = (
+            float(s.attenuation_db)
+            if s is not None
+            else self.scenario.analyzer.default_attenuation_db
+        )
+        pre = bool(s.preamp) if s is not None else False
+        for name, f in (("rf", float(rf_hz)), ("image", image), ("if", if_hz)):
+            fa = np.asarray([max(f, 1.0)])
+            out[f"enr_{name}_db"] = float(src.true_enr_db(fa, drive)[0])
+            out[f"enr_{name}_table_db"] = float(np.interp(fa, src.freq_hz, table)[0])
+        out["if_hz"] = if_hz
+        out["input_loss_rf_db"] = float(lin_to_db(self.input_cable.loss_lin(float(rf_hz))))
+        out["input_loss_image_db"] = float(lin_to_db(self.input_cable.loss_lin(max(image, 1.0))))
+        out["output_loss_if_db"] = float(lin_to_db(self.output_cable.loss_lin(if_hz)))
+        out["analyzer_te_k"] = float(self.front_end.te_k(np.asarray([if_hz]), att, pre)[0])
+        out["cold_k"] = float(src.physical_temperature_k)
+        out["ambient_k"] = float(self.ambient_k)
+        return out
 
     def truth(self, freq_hz: np.ndarray | float) -> dict[str, np.ndarray]:
         """What the models say at ``freq_hz`` (inside the DUT's table), arrays keyed by name.

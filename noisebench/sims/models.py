@@ -318,3 +318,111 @@ def check_freq(field_name: str, freq_hz: np.ndarray | float) -> np.ndarray:
     if not np.all(np.isfinite(f)) or np.any(f <= 0):
         raise InputError(field_name, "must be finite and > 0 Hz", value=freq_hz)
     return f
+
+
+@dataclass(frozen=True)
+class ConverterModel:
+    """A difference-frequency converter built around a :class:`DutModel` whose tables hold per
+    INPUT frequency: conversion gain (dB) and the noise each response adds (its NF).
+
+    An input at ``f_in`` reaches the IF ``|f_in - LO|`` with gain ``G(f_in)``: the table value
+    inside the table's range (zero outside: the preselector), lowered by
+    ``sideband_rejection_db`` on the rejected side of the LO and dB for dB when the LO drive is
+    below ``lo_min_dbm``; zero when the IF falls outside the IF passband. The IF port delivers
+
+        T_out(f_IF) = sum over the two inputs f_b = LO +/- f_IF of G(f_b) (T_in(f_b) + Te(f_b))
+
+    inside the IF passband with the LO on, and the ambient temperature otherwise (a matched
+    output). The LO and its harmonics leak to the IF port as lines.
+    """
+
+    dut: DutModel
+    if_min_hz: float
+    if_max_hz: float
+    rejected_sideband: str | None = None
+    sideband_rejection_db: float = 0.0
+    lo_nominal_dbm: float = 7.0
+    lo_min_dbm: float = 3.0
+    lo_leakage_dbm: float = -40.0
+    lo_harmonics_dbc: tuple[float, ...] = ()
+    external_lo_hz: float | None = None
+    external_lo_dbm: float | None = None
+
+    def in_if_band(self, f_out_hz: np.ndarray) -> np.ndarray:
+        f = np.asarray(f_out_hz, dtype=float)
+        return (f >= self.if_min_hz) & (f <= self.if_max_hz)
+
+    def response_gain_lin(
+        self, f_in_hz: np.ndarray | float, lo_hz: float, lo_dbm: float | None
+    ) -> np.ndarray:
+        """Linear conversion gain from input ``f_in_hz`` to the IF; 0 when the LO is off."""
+        f = np.asarray(f_in_hz, dtype=float)
+        if lo_dbm is None:
+            return np.zeros_like(f)
+        lo_t, hi_t = self.dut.band_hz
+        inside = (f >= lo_t * (1 - 1e-12)) & (f <= hi_t * (1 + 1e-12)) & (f > 0)
+        gain_db = self.dut.gain_db(f) - max(0.0, self.lo_min_dbm - lo_dbm)
+        if self.rejected_sideband is not None and self.sideband_rejection_db > 0:
+            rejected = f > lo_hz if self.rejected_sideband == "upper" else f < lo_hz
+            gain_db = gain_db - np.where(rejected, self.sideband_rejection_db, 0.0)
+        ok = inside & self.in_if_band(np.abs(f - lo_hz))
+        return np.where(ok, db_to_lin(gain_db), 0.0)
+
+    def output_temperature_k(
+        self,
+        f_out_hz: np.ndarray,
+        lo_hz: float,
+        lo_dbm: float | None,
+        input_temperature_k,  # callable: f_in (array) -> delivered temperature at the input, K
+        ambient_k: float,
+    ) -> np.ndarray:
+        """Noise temperature at the IF port over ``f_out_hz`` (see the class docstring)."""
+        f = np.asarray(f_out_hz, dtype=float)
+        if lo_dbm is None:
+            return np.full(f.shape, ambient_k)
+        total = np.zeros(f.shape)
+        for f_in in (lo_hz + f, lo_hz - f):
+            valid = f_in > 0
+            f_safe = np.where(valid, f_in, lo_hz)
+            g = np.where(valid, self.response_gain_lin(f_safe, lo_hz, lo_dbm), 0.0)
+            if np.any(g > 0):
+                total = total + g * (input_temperature_k(f_safe) + self.dut.te_k(f_safe))
+        return np.where(self.in_if_band(f), total, ambient_k)
+
+    def leakage_lines(self, lo_hz: float, lo_dbm: float | None) -> list[tuple[float, float]]:
+        """LO leakage and its harmonics at the IF port, (freq_hz, power_w)."""
+        if lo_dbm is None:
+            return []
+        fundamental = self.lo_leakage_dbm + (lo_dbm - self.lo_nominal_dbm)
+        lines = [(lo_hz, float(dbm_to_w(fundamental)))]
+        for n, dbc in enumerate(self.lo_harmonics_dbc, start=2):
+            lines.append((n * lo_hz, float(dbm_to_w(fundamental + dbc))))
+        return lines
+
+    def ssb_dsb_truth(
+        self, rf_hz: float, lo_hz: float, lo_dbm: float, t0_k: float = T0_K
+    ) -> dict[str, float]:
+        """SSB and DSB noise figure straight from the multiple-response definition.
+
+        Total IF noise with both inputs at T0, over the part the signal input (SSB) or both
+        inputs (DSB) produce: ``N = G_s (T0 + Te_s) + G_i (T0 + Te_i)``; ``F_SSB = N/(T0 G_s)``,
+        ``F_DSB = N/(T0 (G_s + G_i))`` (IRE/IEEE multiple-response definitions).
+        """
+        image = 2.0 * lo_hz - rf_hz
+        gs = float(self.response_gain_lin(rf_hz, lo_hz, lo_dbm))
+        gi = float(self.response_gain_lin(image, lo_hz, lo_dbm)) if image > 0 else 0.0
+        if gs <= 0:
+            raise ValueError(f"no conversion from {rf_hz:.6g} Hz with the LO at {lo_hz:.6g} Hz")
+        te_s = float(self.dut.te_k(rf_hz))
+        te_i = float(self.dut.te_k(image)) if gi > 0 else 0.0
+        n = gs * (t0_k + te_s) + gi * (t0_k + te_i)
+        f_ssb, f_dsb = n / (t0_k * gs), n / (t0_k * (gs + gi))
+        return {
+            "gain_signal_db": float(lin_to_db(gs)),
+            "gain_image_db": float(lin_to_db(gi)) if gi > 0 else float("-inf"),
+            "image_rejection_db": float(lin_to_db(gs / gi)) if gi > 0 else float("inf"),
+            "nf_ssb_db": float(lin_to_db(f_ssb)),
+            "nf_dsb_db": float(lin_to_db(f_dsb)),
+            "te_ssb_k": float(t0_k * (f_ssb - 1.0) - t0_k * gi / gs),
+            "image_hz": image,
+        }

@@ -130,16 +130,24 @@ class SimNoiseSource(NoiseSource):
         return self._from + (self._target - self._from) * ramp
 
     def hot_fraction(self, t_s: np.ndarray | float) -> np.ndarray:
-        """State between cold (0) and hot (1) at simulated times ``t_s``."""
+        """State between cold (0) and hot (1) at simulated times ``t_s``, times the output
+        drift (the excess noise is linear in this fraction)."""
+        t = np.asarray(t_s, dtype=float)
         with self._state_lock:
-            return self._fraction(np.asarray(t_s, dtype=float))
+            return self._fraction(t) * self._output_drift(t)
 
     def steady_hot_fraction(self, t_start_s: float, t_stop_s: float) -> float | None:
-        """The state if no transition overlaps [t_start_s, t_stop_s], else None."""
+        """The state if no transition overlaps [t_start_s, t_stop_s], else None (with the
+        output drift at the middle of the interval)."""
         with self._state_lock:
             if t_start_s >= self._t_switch + self.spec.transition_time_s:
-                return self._target
+                return self._target * float(self._output_drift(0.5 * (t_start_s + t_stop_s)))
             return None
+
+    def _output_drift(self, t_s: np.ndarray | float) -> np.ndarray:
+        """Factor on the excess noise output at simulated times ``t_s`` (1: no drift)."""
+        rate = self.spec.output_drift_db_per_s
+        return 10.0 ** (rate * np.asarray(t_s, dtype=float) / 10.0)
 
     @property
     def effective_drive_v(self) -> float | None:

@@ -222,12 +222,17 @@ class SimSampleReceiver:
 
 
 def calibrate_tone_scale(
-    receiver: SimSampleReceiver, freq_hz: float, level_dbm: float, samples: int = 1 << 18
+    receiver: SimSampleReceiver,
+    freq_hz: float,
+    level_dbm: float,
+    samples: int = 1 << 18,
+    u_level_db: float | None = 0.1,
 ):
     """Measure the receiver's scale with the bench generator, as an operator would: the tone goes
     through the THROUGH path, and its power at the receiver input is the generator level less
     the output cable's loss (the bench's own value, as an operator reads it from the cable's
-    data). Returns a :class:`~noisebench.sampled.scale.ScaleCalibration`."""
+    data). ``u_level_db``: the generator's level accuracy the operator states (an invented demo
+    value by default). Returns a :class:`~noisebench.sampled.scale.ScaleCalibration`."""
     from noisebench.sampled.scale import scale_from_tone
     from noisebench.sims.bench import Path as SimPath
 
@@ -250,6 +255,7 @@ def calibrate_tone_scale(
         block,
         freq_hz,
         level_dbm - loss_db,
+        u_level_db=u_level_db,
         reference=f"generator {level_dbm:g} dBm at {freq_hz:.9g} Hz less {loss_db:.3f} dB cable",
     )
     return cal.model_copy(update={"source_identity": receiver.info.identity})

@@ -16,7 +16,7 @@ from __future__ import annotations
 import copy
 from importlib import resources
 from pathlib import Path as FsPath
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
@@ -89,6 +89,47 @@ class Comb(_Model):
     level_dbm: float
 
 
+class ConversionSpec(_Model):
+    """What makes the DUT a frequency converter (difference mixing, IF = |f_in - LO|).
+
+    With it, the DUT's ``freq_hz``/``gain_db`` table is the conversion gain versus the INPUT
+    frequency (a preselector's skirts included: the image response follows from it), and
+    ``nf_db`` is the noise each response adds, referred to its own input frequency (a noisy
+    front end ahead of an ideal mixer); SSB and DSB figures follow from both responses.
+    """
+
+    if_min_hz: float = Field(gt=0, description="lower edge of the IF passband")
+    if_max_hz: float = Field(gt=0, description="upper edge of the IF passband")
+    rejected_sideband: Literal["lower", "upper"] | None = Field(
+        default=None,
+        description="an image-reject mixer: inputs on this side of the LO are suppressed by "
+        "sideband_rejection_db",
+    )
+    sideband_rejection_db: float = Field(default=0.0, ge=0.0)
+    lo_nominal_dbm: float = Field(default=7.0, description="LO drive the tables hold for")
+    lo_min_dbm: float = Field(
+        default=3.0, description="below this LO drive the conversion gain drops dB for dB"
+    )
+    lo_leakage_dbm: float = Field(
+        default=-40.0, description="LO line at the IF port at the nominal LO drive"
+    )
+    lo_harmonics_dbc: list[float] = Field(
+        default_factory=list, description="LO harmonics 2, 3, ... at the IF port, dB re LO line"
+    )
+    external_lo_hz: float | None = Field(
+        default=None, gt=0, description="a fixed LO inside the DUT (no LO generator needed)"
+    )
+    external_lo_dbm: float | None = None
+
+    @model_validator(mode="after")
+    def _check(self) -> ConversionSpec:
+        if self.if_max_hz <= self.if_min_hz:
+            raise InputError("dut.conversion.if_max_hz", "must be above if_min_hz")
+        if self.lo_min_dbm > self.lo_nominal_dbm:
+            raise InputError("dut.conversion.lo_min_dbm", "must be <= lo_nominal_dbm")
+        return self
+
+
 class DutSpec(_Model):
     """The device under test: available gain and noise figure versus frequency."""
 
@@ -110,6 +151,9 @@ class DutSpec(_Model):
     output_reflection: Reflection = Reflection()
     spurs: list[Tone] = Field(
         default_factory=list, description="lines at the DUT output (oscillation, spurs)"
+    )
+    conversion: ConversionSpec | None = Field(
+        default=None, description="a frequency-converting DUT (mixer, downconverter)"
     )
     powered: bool = Field(
         default=True,
@@ -188,6 +232,11 @@ class NoiseSourceSpec(_Model):
     )
     drive_load_ohm: float = Field(default=2800.0, gt=0)
     enr_drive_coefficient_db_per_v: float = 0.01
+    output_drift_db_per_s: float = Field(
+        default=0.0,
+        description="the excess noise output drifts linearly in dB with simulated time "
+        "(0: stable); a symmetric hot/cold schedule cancels it to first order",
+    )
 
     @model_validator(mode="after")
     def _check(self) -> NoiseSourceSpec:
@@ -218,6 +267,16 @@ class AnalyzerSpec(_Model):
     preamp_nf_db: float = 9.0
     preamp_gain_db: float = 20.0
     amplitude_error_db: float = Field(default=0.0, description="displayed minus true level")
+    gain_drift_db_per_s: float = Field(
+        default=0.0,
+        description="receiver gain drift, dB per second of simulated time (linear: a "
+        "schedule symmetric in time cancels it)",
+    )
+    gain_drift_db_per_s2: float = Field(
+        default=0.0,
+        description="curvature of the receiver gain drift, dB/s^2 (t^2 term: no hot/cold "
+        "schedule of two readings each cancels it; the sequencer detects and flags it)",
+    )
     internal_temperature_k: float | None = Field(default=None, gt=0, description="None: ambient")
     min_freq_hz: float = Field(default=9e3, gt=0)
     max_freq_hz: float = Field(default=7.5e9, gt=0)
@@ -304,6 +363,9 @@ class Scenario(_Model):
     input_cable: CableSpec = CableSpec()
     output_cable: CableSpec = CableSpec()
     generator: GeneratorSpec = GeneratorSpec()
+    lo_generator: GeneratorSpec = GeneratorSpec(
+        identity="noisebench,simulated LO generator,SIM-SG-0002,0.1", max_freq_hz=20e9
+    )
     supply: SupplySpec = SupplySpec()
     interference: InterferenceSpec = InterferenceSpec()
 

@@ -567,6 +567,17 @@ class GeneratorScpi(ScpiInstrument):
 # ----------------------------------------------------------------------------- DC supply
 
 
+class LoGeneratorScpi(GeneratorScpi):
+    """The LO generator of a frequency-converting DUT: the same command set as the generator,
+    on its own port, driving the bench's ``lo_generator``."""
+
+    kind = "lo generator"
+
+    @property
+    def generator(self) -> Any:
+        return self.bench.lo_generator
+
+
 class SupplyScpi(ScpiInstrument):
     """The simulated DC supply that drives the noise source (the bench's supply model)."""
 

@@ -35,6 +35,7 @@ from .scpi_instruments import (
     Block,
     GeneratorScpi,
     InstrumentGone,
+    LoGeneratorScpi,
     Response,
     ScpiInstrument,
     SupplyScpi,
@@ -49,8 +50,9 @@ __all__ = ["INSTRUMENTS", "Faults", "SimServer"]
 #: Analyzer command sets: the generic one (SCPI.md) and a second dialect (scpi_compact.py).
 ANALYZER_DIALECTS = {"generic": AnalyzerScpi, "compact": CompactAnalyzerScpi}
 
-#: Instrument names, in port order (analyzer on PORT, generator on PORT+1, supply on PORT+2).
-INSTRUMENTS = ("analyzer", "generator", "supply")
+#: Instrument names, in port order (analyzer on PORT, generator on PORT+1, supply on PORT+2,
+#: the LO generator of a frequency-converting DUT on PORT+3).
+INSTRUMENTS = ("analyzer", "generator", "supply", "lo")
 
 MAX_LINE_BYTES = 1 << 20
 _RECV_BYTES = 65536
@@ -201,9 +203,9 @@ def is_loopback(host: str) -> bool:
 
 
 class SimServer:
-    """SCPI-over-TCP front end of a simulated bench (analyzer, generator, DC supply).
+    """SCPI-over-TCP front end of a simulated bench (analyzer, generator, DC supply, LO).
 
-    ``port=0`` picks free ports; ``port=P`` uses P, P+1, P+2. ``acquisition_time_scale`` is
+    ``port=0`` picks free ports; ``port=P`` uses P, P+1, P+2, P+3. ``acquisition_time_scale`` is
     the real seconds slept per simulated second of acquisition (0: as fast as computed).
     ``wall_clock=True``: real time that passes between commands also passes on the bench's
     simulated clock, so a client that waits for the noise source to settle sees it settle
@@ -260,6 +262,7 @@ class SimServer:
             ),
             "generator": GeneratorScpi(*common, _identity(bench, "generator")),
             "supply": SupplyScpi(*common, _identity(bench, "supply")),
+            "lo": LoGeneratorScpi(*common, _identity(bench, "lo_generator")),
         }
         if wall_clock and hasattr(getattr(bench, "clock", None), "advance"):
             wall = WallClock(bench.clock)

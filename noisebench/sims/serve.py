@@ -3,7 +3,8 @@
     python -m noisebench.sims --scenario demo-lna --seed 1 --host 127.0.0.1 --port 5025
 
 prints one VISA resource string per instrument (analyzer on PORT, generator on PORT+1, DC
-supply on PORT+2; ``--port 0`` picks free ports) and serves until interrupted.
+supply on PORT+2, LO generator on PORT+3; ``--port 0`` picks free ports) and serves until
+interrupted.
 """
 
 from __future__ import annotations
@@ -22,11 +23,11 @@ from .scpi_server import INSTRUMENTS, SimServer, is_loopback
 logger = logging.getLogger(__name__)
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(prog: str = "python -m noisebench.sims") -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
-        prog="python -m noisebench.sims",
-        description="Serve a simulated noise-figure bench (analyzer, generator, DC supply) "
-        "over SCPI on raw TCP sockets.",
+        prog=prog,
+        description="Serve a simulated noise-figure bench (analyzer, generator, DC supply, "
+        "LO generator) over SCPI on raw TCP sockets.",
     )
     parser.add_argument(
         "--scenario",
@@ -50,7 +51,8 @@ def build_parser() -> argparse.ArgumentParser:
         "--port",
         type=int,
         default=5025,
-        help="analyzer port; generator PORT+1, supply PORT+2; 0 = free ports (default: 5025)",
+        help="analyzer port; generator PORT+1, supply PORT+2, LO PORT+3; 0 = free ports "
+        "(default: 5025)",
     )
     parser.add_argument(
         "--time-scale",
@@ -83,6 +85,12 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _logging_configured() -> bool:
+    """True when a handler already shows noisebench's log lines (each line then once only)."""
+    package = logging.getLogger("noisebench")
+    return bool(package.handlers or logging.getLogger().handlers)
+
+
 def _default_bench_factory(scenario: str, seed: int) -> Any:
     from noisebench.sims.bench import SimulatedBench
 
@@ -95,19 +103,25 @@ def main(
     out: TextIO | None = None,
     stop_event: threading.Event | None = None,
     bench_factory: Callable[[str, int], Any] | None = None,
+    prog: str = "python -m noisebench.sims",
 ) -> int:
-    """Run the simulator; returns the exit code (0 ok, 2 bad input, 1 could not start)."""
+    """Run the simulator; returns the exit code (0 ok, 2 bad input, 1 could not start).
+
+    ``prog`` names the command in usage lines (``noisebench serve`` from the CLI)."""
     out = out or sys.stdout
-    args = build_parser().parse_args(argv)
-    logging.basicConfig(
-        level=logging.DEBUG if args.verbose else logging.INFO,
-        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
-    )
+    args = build_parser(prog).parse_args(argv)
+    if not _logging_configured():  # under `noisebench serve` the CLI's handler shows them
+        logging.basicConfig(
+            level=logging.DEBUG if args.verbose else logging.INFO,
+            format="%(asctime)s %(levelname)s %(name)s: %(message)s",
+        )
+    elif args.verbose:
+        logging.getLogger("noisebench").setLevel(logging.DEBUG)
     if args.time_scale < 0:
         print("error: --time-scale must be >= 0", file=sys.stderr)
         return 2
-    if not 0 <= args.port <= 65533:
-        print("error: --port must be 0..65533 (three consecutive ports are used)", file=sys.stderr)
+    if not 0 <= args.port <= 65532:
+        print("error: --port must be 0..65532 (four consecutive ports are used)", file=sys.stderr)
         return 2
     if not is_loopback(args.host):
         if not args.allow_remote:

@@ -32,7 +32,8 @@ DEFAULT_FLOOR_WARNING_DB = 3.0
 """Margin (DUT noise over the analyzer's own noise) below which NEAR_ANALYZER_FLOOR is set.
 
 At a 3 dB margin the second-stage correction is 1.76 dB, the density jitter is amplified by
-sqrt(1 + r^2)/(1 - r) = 2.24 (r = 10^(-margin/10), reference.md §4) and a floor error enters the
+sqrt(1 + r^2)/(1 - r) = 2.24 (r = 10^(-margin/10), docs/references.md §4) and a floor error enters
+the
 NF at about half its size.
 """
 

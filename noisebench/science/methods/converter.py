@@ -511,7 +511,8 @@ def converter_y_factor_point(
             h, c, enr_rf, enr_img, tc, rr, t0, enr_reference, lin_s, lin_i, tp_in, lout, tp_out, cal
         )
         f_ssb = 1.0 + rr + te / t0
-        nf = 10.0 * np.log10(f_ssb if nf_type == "ssb" else f_ssb / (1.0 + rr))
+        with np.errstate(invalid="ignore"):  # F <= 0 is refused after the propagation
+            nf = 10.0 * np.log10(f_ssb if nf_type == "ssb" else f_ssb / (1.0 + rr))
         out = {"te_ssb": te, "nf_db": nf}
         if g is not None:
             out["gain_db"] = 10.0 * np.log10(g)
@@ -543,8 +544,10 @@ def converter_y_factor_point(
     te_ssb = float(props["te_ssb"].value)
     if 1.0 + r + te_ssb / t0 <= 0:
         raise MeasurementError(
-            f"converter Y-factor at RF {rf:.6g} Hz: noise factor <= 0 (Te_SSB = {te_ssb:.1f} K); "
-            "check the ENR at RF and image, the image rejection and the cold temperature",
+            f"converter Y-factor at RF {rf:.6g} Hz: noise factor <= 0 (Te_SSB = {te_ssb:.1f} K, "
+            f"Y = {10.0 * math.log10(hot.density_w_per_hz / cold.density_w_per_hz):.3f} dB); "
+            "check that the noise source drives the RF port and the LO is on, then the ENR at "
+            "RF and image, the image rejection and the cold temperature",
             freq_hz=rf,
         )
     nf_db, te_k, _ = _nf_and_slope(te_ssb, r, t0, nf_type)
@@ -728,10 +731,9 @@ def converter_gain_method_point(
             t_term,
         )
         f_ssb = 1.0 + rr + te / t0
-        return {
-            "te_ssb": te,
-            "nf_db": 10.0 * np.log10(f_ssb if nf_type == "ssb" else f_ssb / (1 + rr)),
-        }
+        with np.errstate(invalid="ignore"):  # F <= 0 is refused after the propagation
+            nf = 10.0 * np.log10(f_ssb if nf_type == "ssb" else f_ssb / (1 + rr))
+        return {"te_ssb": te, "nf_db": nf}
 
     n_f = floor.density_w_per_hz if floor is not None else 1.0
     values = {

@@ -1,6 +1,6 @@
 """Gain method ("cold source"): NF from one noise density with the DUT input terminated.
 
-Physics (reference.md §4): with the DUT input terminated by a matched load at physical
+Physics (docs/references.md §4): with the DUT input terminated by a matched load at physical
 temperature Ts and the DUT's available gain G known, the analyzer reads
 
     N_m = k (Ts + Te_DUT) G + N_sa                 (N_sa: the analyzer's own noise)

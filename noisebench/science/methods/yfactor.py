@@ -1,6 +1,6 @@
 """Y-factor method: NF from hot/cold noise densities with a calibrated noise source.
 
-Physics (reference.md §5): ``Y = N_hot / N_cold`` and, for hot and cold source temperatures
+Physics (docs/references.md §5): ``Y = N_hot / N_cold`` and, for hot and cold source temperatures
 Th and Tc, ``Te = (Th - Y Tc) / (Y - 1)`` exactly. ENR is referred to T0 = 290 K.
 
 How ENR becomes Th (``enr_reference``):
@@ -94,7 +94,8 @@ EnrReference = Literal["t0", "absolute"]
 DEFAULT_Y_MIN_DB = 1.0
 """Y below which a point is flagged Y_TOO_SMALL.
 
-The NF's sensitivity to errors in Y is Y/(Y-1) (reference.md §7): 4.9 at Y = 1 dB, so a 0.01 dB
+The NF's sensitivity to errors in Y is Y/(Y-1) (docs/references.md §7): 4.9 at Y = 1 dB, so a 0.01
+dB
 linearity or jitter error in Y becomes ~0.05 dB of NF, and it grows without bound as Y -> 1.
 Above 1 dB the method behaves; below it a higher-ENR source is the fix. A DUT with NF 20 dB
 measured with a 15 dB ENR source gives Y = 1.2 dB, right at the edge.
@@ -506,7 +507,7 @@ def y_factor_point(
             fix="calibrate and measure with the same ENR convention and T0",
         )
     # One ENR variable when calibration and measurement use the same value (same source and
-    # frequency): the ENR error is then fully correlated (reference.md §9).
+    # frequency): the ENR error is then fully correlated (docs/references.md §9).
     enr_shared = calibration is None or calibration.enr_db == enr_db
 
     def core(h, c, hc, cc, enr, enr_cal) -> _Core:

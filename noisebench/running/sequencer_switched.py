@@ -1,0 +1,447 @@
+"""Y-factor readings scheduled over the whole sweep: a handful of noise-source switches per
+sweep instead of several per point, and a linear drift still cancels.
+
+A block of groups is read in four passes: hot forward, cold backward, cold forward, hot
+backward. A group read for ``tau`` in every pass, starting ``s`` into a pass of length ``T``,
+has its hot readings at ``s + tau/2`` and ``4T - s - tau/2`` and its cold ones at
+``2T - s - tau/2`` and ``2T + s + tau/2``: both pairs are centred on ``2T``, so a drift linear in
+time (receiver gain, or the source's own output) moves hot and cold alike and cancels in Y, for
+every point. Three switches serve the whole block (four with the final one to cold). Each pass
+reading of 32 averages or more is taken as two acquisitions of half the averages, so every state
+has four readings at four times per block and :func:`noisebench.science.drift.drift_check` can
+test the residuals about a linear drift (curvature, steps): points it rejects are flagged
+``drift``.
+
+The block length is chosen from the settling time, the sweep time and the drift model
+(:class:`noisebench.running.plan.SwitchingSection`): groups are packed into blocks no longer
+than ``max_block_s`` of instrument time, shorter when a drift curvature is declared. Averaging
+stays adaptive per group (the same radiometer planning as the per-group rounds); a block after
+the first holds only the groups still short of their target, and each group's points are
+journalled as soon as it stops.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from noisebench.bench.acquisition import AcquisitionSettings
+from noisebench.bench.registry import Connection
+from noisebench.errors import MeasurementError
+from noisebench.running.calibration import CalibrationEntry, CalibrationKind
+from noisebench.running.groups import PointGroup
+from noisebench.running.safety import PowerCheck
+from noisebench.running.sequencer_core import _GroupOutcome, _Readings
+from noisebench.running.sequencer_measurement import MeasurementSteps
+from noisebench.science.averaging import TimeBudget, averages_for_target
+from noisebench.science.density import NoiseDensity
+from noisebench.science.drift import drift_check
+from noisebench.science.point import Method, PointFlag, PointResult
+
+logger = logging.getLogger(__name__)
+
+MIN_CHECK_AVERAGES = 16
+"""A pass reading is split in two for the drift check only when each half has this many
+averages: fewer make ln(density) too far from normal for the chi-square test (the pilot block
+is read whole)."""
+
+FIRST_GROUP_ALONE = False  # measurement: the sweep's pilot block replaces the first group
+PRIOR_SHARE = 0.5
+"""A group may stop on its target only with at least this share of the median averages the
+sweep's groups plan (see ``SwitchedSweep._hold_lucky``)."""
+
+CURVATURE_SHARE = 0.1
+"""With a declared drift curvature b (dB/s^2), a block of length T leaves at most b T^2 / 2 in
+Y; blocks are kept short enough that this stays below this share of the target."""
+
+
+@dataclass
+class _GroupRun:
+    """One group's state across the blocks of a switched sweep."""
+
+    group: PointGroup
+    readings: _Readings
+    budget: TimeBudget
+    per_trace: int
+    checks: list[PowerCheck] = field(default_factory=list)
+    log: list[tuple[float, str, list[NoiseDensity]]] = field(default_factory=list)
+    settings: AcquisitionSettings | None = None
+    failed: MeasurementError | None = None  # the physics refused a reading of this group
+
+
+class SwitchedSweep(MeasurementSteps):
+    """Calibration and measurement of the Y-factor method in sweep-level hot/cold blocks."""
+
+    _clock_s: float = 0.0  # instrument time of the switched schedule, s
+
+    def _switched(self, groups: list[PointGroup]) -> bool:
+        """Whether the Y-factor readings run in sweep-level blocks (see the module doc)."""
+        if self.plan.method is not Method.Y_FACTOR:
+            return False
+        if self.plan.conversion is not None:
+            return False  # a converter's groups each need their own LO setting
+        mode = self.plan.switching.mode
+        if mode != "auto":
+            return mode == "per_sweep"
+        return len(groups) > 1 and self._settle_s() > 0
+
+    def _block_limit_s(self) -> float:
+        sw = self.plan.switching
+        limit = sw.max_block_s
+        if sw.drift_curvature_db_per_s2:
+            target = self.plan.acquisition.target_u_nf_db
+            limit = min(
+                limit, math.sqrt(2 * CURVATURE_SHARE * target / sw.drift_curvature_db_per_s2)
+            )
+        return limit
+
+    # ----------------------------------------------------------------- blocks
+
+    def _blocks(self, runs: list[_GroupRun]) -> list[list[_GroupRun]]:
+        """Consecutive groups packed into blocks no longer than the limit (estimated at the
+        rate measured so far: four passes of each group's averages)."""
+        rate = self._rate_s
+        if not rate:
+            return [runs]
+        limit = self._block_limit_s()
+        blocks: list[list[_GroupRun]] = [[]]
+        used = 0.0
+        for run in runs:
+            need = 4 * run.per_trace * rate
+            if blocks[-1] and used + need > limit:
+                blocks.append([])
+                used = 0.0
+            blocks[-1].append(run)
+            used += need
+        return blocks
+
+    def _switch_block(self, hot: bool, block: list[_GroupRun], connection: Connection) -> None:
+        """Switch the source for the whole block; its settling is shared by the block's
+        groups. Before going hot the power guard checks every group of the block."""
+        source = self.session.bench.noise_source
+        if source is None:
+            raise MeasurementError("the Y-factor method needs a noise source")
+        if source.is_hot == hot:
+            return
+        if hot:
+            current = self.session.bench.analyzer.settings
+            for run in block:
+                settings = run.settings or current
+                run.checks.append(
+                    self._guard().before_hot(
+                        through=connection is Connection.THROUGH,
+                        attenuation_db=settings.attenuation_db if settings else None,
+                        preamp=settings.preamp if settings else None,
+                        freq_hz=run.group.freqs_hz[0],
+                    )
+                )
+        source.set_hot(hot)
+        settle = source.settle_time_s
+        self._clock_s += settle
+        for run in block:
+            run.budget.charge(settle / len(block))
+
+    def _read(self, run: _GroupRun, state: str, connection: Connection) -> None:
+        """One pass reading of a group: two acquisitions of half the averages each."""
+        n = run.per_trace
+        split = n >= 2 * MIN_CHECK_AVERAGES
+        for averages in (n // 2, n - n // 2) if split else (n,):
+            before = run.budget.used_s
+            densities = self._acquire(run.group, averages, run.budget)
+            spent = run.budget.used_s - before
+            if split:
+                run.log.append((self._clock_s + 0.5 * spent, state, densities))
+            self._clock_s += spent
+            run.readings.add(state, densities)
+            run.settings = self.session.bench.analyzer.settings
+            if state == "cold" and connection is Connection.DUT:
+                self._guard().observe_cold([d.density_w_per_hz for d in densities])
+
+    def _run_block(self, block: list[_GroupRun], connection: Connection) -> None:
+        """The four passes over ``block``. A group whose reading the physics refuses is left
+        out of the rest of the block and skipped afterwards, as in the per-group order."""
+        forward, backward = block, block[::-1]
+        for hot, order in ((True, forward), (False, backward), (False, forward), (True, backward)):
+            self._switch_block(hot, block, connection)
+            for run in order:
+                if run.failed is not None:
+                    continue
+                try:
+                    self._with_context(
+                        run.group,
+                        lambda r=run, h=hot: self._read(r, "hot" if h else "cold", connection),
+                    )
+                except MeasurementError as exc:
+                    run.failed = exc
+
+    def _hold_lucky(self, active: list[_GroupRun], decisions: dict[int, tuple]) -> None:
+        """Keep a group that claims its target on far fewer averages than the sweep's other
+        groups plan: its u was computed at a noisy estimate, and a lucky one looks finished
+        (the per-group order avoids this with the previous group's prior). It takes at least
+        ``PRIOR_SHARE`` of the median planned averages before it may stop."""
+        planned = [
+            r.readings.averages("hot") + (0 if decisions[r.group.index][0] else 2 * r.per_trace)
+            for r in active
+            if r.group.index in decisions
+        ]
+        if len(planned) < 3:
+            return
+        floor = PRIOR_SHARE * float(np.median(planned))
+        for run in active:
+            decision = decisions.get(run.group.index)
+            if decision is None or decision[0] != "target":
+                continue
+            done = run.readings.averages("hot")
+            if done >= floor:
+                continue
+            policy = run.group.policy
+            per_trace = self._next_round_averages(policy, done, math.ceil(floor), 2, run.budget)
+            if per_trace > 0:
+                run.per_trace = per_trace
+                decisions[run.group.index] = (None, *decision[1:])
+
+    def _drift_notes(self, run: _GroupRun) -> dict[float, dict]:
+        """Per frequency: the drift check of the group's readings (None: too few)."""
+        out: dict[float, dict] = {}
+        if not run.log:
+            return out
+        for i, f in enumerate(run.group.freqs_hz):
+            times = np.array([t for t, _, _ in run.log])
+            states = [s for _, s, _ in run.log]
+            dens = np.array([d[i].density_w_per_hz for _, _, d in run.log])
+            u = np.array([d[i].u_density_w_per_hz for _, _, d in run.log])
+            check = drift_check(times, states, dens, u)
+            if check is not None:
+                out[f] = {
+                    "chi2": check.chi2,
+                    "dof": check.dof,
+                    "p_value": check.p_value,
+                    "flagged": check.flagged,
+                    "slope_db_per_s": {
+                        k: 10 / math.log(10) * v for k, v in check.slopes_per_s.items()
+                    },
+                }
+        return out
+
+    # ----------------------------------------------------------------- calibration
+
+    def _calibrate_switched(self, groups: list[PointGroup], writer) -> None:
+        """System calibration (THROUGH) of ``groups`` in sweep-level blocks."""
+        kind = CalibrationKind.SYSTEM
+        self.session.connect(Connection.THROUGH)
+        if self._prior.get(kind.value) is None:
+            # the first group alone, as in the per-group order: its averages are the prior
+            # that starts every other group near its need (a sweep of pilots would not)
+            first, groups = groups[0], groups[1:]
+            try:
+                entry = self._with_context(first, lambda: self._calibrate_group(first, kind))
+                self.calibrations.add(entry)
+                self.calibrations_measured += 1
+            except MeasurementError as exc:
+                self._set_source_cold(TimeBudget(0.0))
+                self._skip(first, exc, "calibration", writer)
+        runs = [
+            _GroupRun(
+                g,
+                _Readings(("hot", "cold"), g.freqs_hz),
+                TimeBudget(g.policy.time_limit_s * len(g.freqs_hz)),
+                self._first_round_averages(g.policy, 2, self._prior.get(kind.value)),
+            )
+            for g in groups
+        ]
+        active = list(runs)
+        while active:
+            for block in self._blocks(active):
+                self._run_block(block, Connection.THROUGH)
+            decisions = {}
+            for run in active:
+                if run.failed is not None:
+                    self._skip(run.group, run.failed, "calibration", writer)
+                    continue
+                policy = run.group.policy
+                target = self.plan.calibration.target_ratio * policy.target_u_nf_db
+                try:
+                    u_worst, settings = self._calibration_u(run.group, kind, run.readings)
+                except MeasurementError as exc:
+                    self._skip(run.group, exc, "calibration", writer)
+                    continue
+                done = run.readings.averages("hot")
+                stop = None
+                if u_worst <= target:
+                    stop = "target"
+                else:
+                    need = (
+                        averages_for_target(done, u_worst, 0.0, target)
+                        if math.isfinite(u_worst)
+                        else 2 * done
+                    )
+                    run.per_trace = self._next_round_averages(policy, done, need, 2, run.budget)
+                    if run.per_trace == 0:
+                        stop = "max_averages" if done >= policy.max_averages else "time_limit"
+                decisions[run.group.index] = (stop, u_worst, settings, target)
+            self._hold_lucky(active, decisions)
+            still = []
+            for run in active:
+                if run.group.index not in decisions:
+                    continue
+                stop, u_worst, settings, target = decisions[run.group.index]
+                if stop is None:
+                    still.append(run)
+                    continue
+                done = run.readings.averages("hot")
+                if stop == "target" and math.isfinite(u_worst):
+                    self._prior[kind.value] = max(1, math.ceil(done * (u_worst / target) ** 2))
+                try:
+                    entry = self._calibration_entry(run, kind, settings, stop)
+                except MeasurementError as exc:
+                    self._skip(run.group, exc, "calibration", writer)
+                    continue
+                self.calibrations.add(entry)
+                self.calibrations_measured += 1
+            active = still
+        self._set_source_cold(TimeBudget(0.0))
+        self._rate_s = self._rate_from(runs)
+        writer.save_calibration(self.calibrations.to_dict())
+
+    def _calibration_entry(
+        self, run: _GroupRun, kind: CalibrationKind, settings, stopped_by: str
+    ) -> CalibrationEntry:
+        group, readings = run.group, run.readings
+        return CalibrationEntry(
+            kind=kind,
+            settings=settings,
+            freqs_hz=list(group.freqs_hz),
+            densities={
+                n: [readings.get(f, n).combined().density for f in group.freqs_hz]
+                for n in ("hot", "cold")
+            },
+            cold_temperature_k=self.corrections.source_temperature_k,  # type: ignore[union-attr]
+            instrument_time_s=run.budget.used_s,
+            stopped_by=stopped_by,
+            summary=self._calibration_summary(group, kind, readings),
+        )
+
+    @staticmethod
+    def _rate_from(runs: list[_GroupRun]) -> float | None:
+        rates = [r.budget.seconds_per_average(0.0) for r in runs]
+        rates = [r for r in rates if r > 0]
+        return sum(rates) / len(rates) if rates else None
+
+    # ----------------------------------------------------------------- measurement
+
+    def _measure_switched(self, groups: list[PointGroup], writer) -> None:
+        """Measure ``groups`` with the DUT in, in sweep-level blocks; each group's points are
+        stored as soon as it stops."""
+        groups = [g for g in groups if g.index not in self._unmeasurable]
+        while groups and self._prior.get("dut") is None and FIRST_GROUP_ALONE:
+            # the first group alone, as in the per-group order (see _calibrate_switched)
+            first, groups = groups[0], groups[1:]
+            try:
+                outcome = self._with_context(first, lambda g=first: self._measure_group(g))
+            except MeasurementError as exc:
+                self._skip(first, exc, "measurement", writer)
+                continue
+            self._store_outcome(first, outcome, writer)
+        runs = []
+        for g in groups:
+            runs.append(
+                _GroupRun(
+                    g,
+                    _Readings(("hot", "cold"), g.freqs_hz),
+                    TimeBudget(g.policy.time_limit_s * len(g.freqs_hz)),
+                    self._first_round_averages(g.policy, 2, self._prior.get("dut")),
+                )
+            )
+        if not runs:
+            return
+        if self._guard().needs_cold_look:
+            self._set_source_cold(TimeBudget(0.0))
+            for run in runs:
+                look = self._acquire(run.group, run.per_trace, run.budget)
+                run.readings.add("cold", look)
+                self._guard().observe_cold([d.density_w_per_hz for d in look])
+        calibrations = {r.group.index: self._calibration_for(r.group) for r in runs}
+        active = list(runs)
+        while active:
+            for block in self._blocks(active):
+                self._run_block(block, Connection.DUT)
+            decisions = {}
+            for run in active:
+                if run.failed is not None:
+                    self._skip(run.group, run.failed, "measurement", writer)
+                    continue
+                decided = self._decide(run, calibrations[run.group.index], writer)
+                if decided is not None:
+                    decisions[run.group.index] = decided
+            self._hold_lucky(active, decisions)
+            still = []
+            for run in active:
+                if run.group.index not in decisions:
+                    continue
+                stop, points = decisions[run.group.index]
+                if stop is None:
+                    still.append(run)
+                    continue
+                calibration = calibrations[run.group.index]
+                outcome = self._finish_group(run, stop, points, calibration)
+                self._store_outcome(run.group, outcome, writer)
+            active = still
+        self._set_source_cold(TimeBudget(0.0))
+        self._rate_s = self._rate_from(runs) or self._rate_s
+
+    def _decide(self, run: _GroupRun, calibration: CalibrationEntry, writer):
+        """(stop reason or None, points) after a block; None when the physics refused."""
+        group, policy = run.group, run.group.policy
+        try:
+            points = [self._point(f, run.readings, calibration) for f in group.freqs_hz]
+        except MeasurementError as exc:
+            self._skip(group, exc, "measurement", writer)
+            return None
+        done = run.readings.averages("hot")
+        if all(p.u_nf_db <= policy.target_u_nf_db for p in points):
+            return "target", points
+        need = self._averages_needed(points, done, policy.target_u_nf_db)
+        run.per_trace = self._next_round_averages(policy, done, need, 2, run.budget)
+        if run.per_trace > 0:
+            return None, points
+        if need is None:
+            return "calibration", points
+        return ("max_averages" if done >= policy.max_averages else "time_limit"), points
+
+    def _finish_group(
+        self, run: _GroupRun, stop: str, points: list[PointResult], calibration
+    ) -> _GroupOutcome:
+        group, policy = run.group, run.group.policy
+        done = run.readings.averages("hot")
+        prior = self._averages_at_target(points, done, policy.target_u_nf_db)
+        if prior is not None:
+            self._prior["dut"] = prior
+        drift = self._drift_notes(run)
+        finished = []
+        for p in points:
+            p = self._finish_point(
+                p, run.readings, run.budget, group, run.checks, stop, calibration
+            )
+            finished.append(self._with_drift(p, drift.get(p.freq_hz)))
+        return _GroupOutcome(finished, run.settings, run.budget.used_s)
+
+    @staticmethod
+    def _with_drift(point: PointResult, check: dict | None) -> PointResult:
+        notes = {**point.notes, "schedule": "per_sweep"}
+        flags = list(point.flags)
+        if check is not None:
+            notes["drift_check"] = check
+            if check["flagged"] and PointFlag.DRIFT not in flags:
+                flags.append(PointFlag.DRIFT)
+        return point.model_copy(update={"notes": notes, "flags": flags})
+
+    def _store_outcome(self, group: PointGroup, outcome: _GroupOutcome, writer) -> None:
+        self._record_settings(outcome.settings, group, writer)
+        for point in outcome.points:
+            writer.add_point(point, self._budget(point))
+            self.progress.point_done(point)
+            if self.on_point is not None:
+                self.on_point(point)

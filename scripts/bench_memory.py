@@ -1,0 +1,88 @@
+"""Peak memory of a long sweep on the simulated bench (prints what one run measured).
+
+    python scripts/bench_memory.py [--points 1001 10001]
+
+Each size runs in a fresh child process (gain method, constant gain, 1-2 GHz, points shared
+by traces up to 20 MHz wide, target 0.3 dB, no plots or report), which reports its peak
+resident set size (``resource.getrusage``, kilobytes on Linux) before and after the run. The
+script prints the peak per size, the growth of the run's own memory from the smallest to the
+largest size, and that growth per added point: flat memory means the growth per point stays
+far below what keeping every trace would cost.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import subprocess
+import sys
+import time
+
+CHILD = r"""
+import json, resource, sys, tempfile, time
+from pathlib import Path
+from noisebench.bench.registry import simulated_session
+from noisebench.running.plan import parse_plan
+from noisebench.running.sequencer import Sequencer
+from noisebench.sims.bench import SimulatedBench
+
+n = int(sys.argv[1])
+plan = parse_plan({
+    "method": "gain",
+    "bench": {"analyzer": {"resource": "sim://demo-lna", "compression_dbm": 30.0,
+                           "max_input_dbm": 40.0}},
+    "acquisition": {"rbw_hz": 30e3, "span_hz": 60e3, "target_u_nf_db": 0.3,
+                    "max_trace_span_hz": 20e6, "min_band_fill": 0.01, "time_limit_s": 5},
+    "sweep": {"segments": [{"start_hz": 1e9, "stop_hz": 2e9, "points": n}]},
+    "gain": {"source": "constant", "value_db": 20.0},
+    "expect": {"dut_gain_db": 20.0},
+    "output": {"plots": False, "report": False},
+})
+sim = SimulatedBench.from_scenario("demo-lna", seed=1)
+before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+t0 = time.perf_counter()
+with tempfile.TemporaryDirectory() as tmp:
+    record = Sequencer(plan, simulated_session(sim, plan.bench)).run(Path(tmp) / "run")
+    points = len(record.points)
+after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+print(json.dumps({"points": points, "before_kb": before, "peak_kb": after,
+                  "seconds": time.perf_counter() - t0}))
+"""
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--points", type=int, nargs="+", default=[1001, 10001])
+    args = parser.parse_args(argv)
+    rows = []
+    for n in args.points:
+        t0 = time.perf_counter()
+        out = subprocess.run(
+            [sys.executable, "-c", CHILD, str(n)], capture_output=True, text=True, check=False
+        )
+        if out.returncode != 0:
+            print(out.stderr[-2000:])
+            return 1
+        row = json.loads(out.stdout.strip().splitlines()[-1])
+        rows.append(row)
+        print(
+            f"{n:>6} points requested, {row['points']} measured in {row['seconds']:.1f} s "
+            f"({time.perf_counter() - t0:.1f} s with start-up): peak RSS "
+            f"{row['peak_kb'] / 1024:.1f} MiB (after imports {row['before_kb'] / 1024:.1f} MiB)"
+        )
+    first, last = rows[0], rows[-1]
+    run_first = first["peak_kb"] - first["before_kb"]
+    run_last = last["peak_kb"] - last["before_kb"]
+    added = max(last["points"] - first["points"], 1)
+    print(
+        f"run memory (peak minus after imports): {run_first / 1024:.1f} MiB at "
+        f"{first['points']} points, {run_last / 1024:.1f} MiB at {last['points']} points: "
+        f"{(run_last - run_first) / added:.2f} kB per added point (peak RSS ratio "
+        f"{last['peak_kb'] / first['peak_kb']:.2f}x for {last['points'] / first['points']:.0f}x "
+        f"the points)"
+    )
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,145 @@
+"""Host CPU and SCPI chatter per frequency point against the SCPI simulator in another process.
+
+    python scripts/bench_scpi.py [--points 101 11] [--target 0.1]
+
+Starts ``python -m noisebench.sims`` (scenario demo-lna, seed 1, free loopback ports) as a child
+process, then runs a Y-factor plan through the SCPI drivers in this process twice: a
+``points``-point sweep and a short one. The differences between the two runs, divided by the
+difference in points, give the cost of one more point without the fixed costs (start-up,
+identification, first calibration set-up): this process's CPU time, and the SCPI messages it
+sent (every write and query counted at the VISA session, error-queue reads included). Prints
+both against the targets (<= 30 commands and <= 5 ms CPU per point) and the commands by kind.
+"""
+
+from __future__ import annotations
+
+import argparse
+import collections
+import logging
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+from noisebench.bench.registry import open_bench
+from noisebench.drivers.transport import VisaSession
+from noisebench.running.plan import parse_plan
+from noisebench.running.sequencer import Sequencer
+from noisebench.sims.bench import SimulatedBench
+
+TARGET_COMMANDS = 30
+TARGET_CPU_MS = 5.0
+COUNTS: collections.Counter[str] = collections.Counter()
+
+
+def _counting(method):
+    def wrapped(self, command, *args, **kwargs):
+        head = command.split()[0] if command.strip() else command
+        COUNTS[head] += 1
+        return method(self, command, *args, **kwargs)
+
+    return wrapped
+
+
+def start_server() -> tuple[subprocess.Popen, dict[str, str]]:
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "noisebench.sims", "--port", "0", "--seed", "1"],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.STDOUT,
+        text=True,
+    )
+    resources: dict[str, str] = {}
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline and len(resources) < 3:
+        line = proc.stdout.readline()  # type: ignore[union-attr]
+        if not line:
+            break
+        parts = line.split()
+        if len(parts) == 2 and parts[1].startswith("TCPIP"):
+            resources[parts[0]] = parts[1]
+    if len(resources) < 3:
+        proc.kill()
+        raise SystemExit("the SCPI simulator did not start")
+    return proc, resources
+
+
+def plan_for(resources: dict[str, str], points: int, target: float, folder: Path):
+    enr = folder / "enr.csv"
+    SimulatedBench.from_scenario("demo-lna", seed=1).enr_table.to_csv(enr)
+    plan = parse_plan(
+        {
+            "method": "y_factor",
+            "dut": {"id": "SCPI-BENCH"},
+            "bench": {
+                "analyzer": {"resource": resources["analyzer"], "compression_dbm": -3.0},
+                "noise_source": {
+                    "drive": "supply",
+                    "resource": resources["supply"],
+                    "drive_v": 28.0,
+                    "settle_time_s": 0.02,
+                },
+            },
+            "acquisition": {"rbw_hz": 1e6, "attenuation_db": 0, "target_u_nf_db": target},
+            "sweep": {"segments": [{"start_hz": 1e9, "stop_hz": 3e9, "points": points}]},
+            "enr": {"table": str(enr)},
+            "corrections": {"source_temperature_k": 296.5},
+            "expect": {"dut_gain_db": 20.0},
+            "output": {"plots": False, "report": False},
+        }
+    )
+    return plan
+
+
+def run(resources: dict[str, str], points: int, target: float) -> tuple[float, int, int, dict]:
+    COUNTS.clear()
+    with tempfile.TemporaryDirectory(prefix="nb_scpi_") as tmp:
+        plan = plan_for(resources, points, target, Path(tmp))
+        cpu0 = time.process_time()
+        session = open_bench(plan.bench)
+        try:
+            record = Sequencer(plan, session).run(Path(tmp) / "run")
+        finally:
+            session.close()
+        cpu = time.process_time() - cpu0
+    return cpu, sum(COUNTS.values()), len(record.points), dict(COUNTS)
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--points", type=int, nargs=2, default=[101, 11])
+    parser.add_argument("--target", type=float, default=0.1)
+    args = parser.parse_args(argv)
+    logging.basicConfig(level=logging.ERROR)
+    for name in ("write", "query", "query_binary"):
+        setattr(VisaSession, name, _counting(getattr(VisaSession, name)))
+    proc, resources = start_server()
+    try:
+        big, small = max(args.points), min(args.points)
+        cpu_b, cmd_b, n_b, kinds_b = run(resources, big, args.target)
+        cpu_s, cmd_s, n_s, kinds_s = run(resources, small, args.target)
+    finally:
+        proc.terminate()
+        proc.wait(timeout=10)
+    extra = max(n_b - n_s, 1)
+    per_cmd = (cmd_b - cmd_s) / extra
+    per_cpu_ms = (cpu_b - cpu_s) / extra * 1e3
+    print(
+        f"Y-factor over SCPI, analyzer and supply in another process, target {args.target} dB: "
+        f"{n_b} points: {cmd_b} commands, {cpu_b:.2f} s CPU; {n_s} points: {cmd_s} commands, "
+        f"{cpu_s:.2f} s CPU"
+    )
+    ok_cmd = "met" if per_cmd <= TARGET_COMMANDS else "NOT met"
+    ok_cpu = "met" if per_cpu_ms <= TARGET_CPU_MS else "NOT met"
+    print(f"per added point: {per_cmd:.1f} SCPI commands (target <= {TARGET_COMMANDS}: {ok_cmd})")
+    print(f"per added point: {per_cpu_ms:.1f} ms host CPU (target <= {TARGET_CPU_MS:g}: {ok_cpu})")
+    kinds = sorted(
+        ((k, (kinds_b.get(k, 0) - kinds_s.get(k, 0)) / extra) for k in kinds_b),
+        key=lambda kv: -kv[1],
+    )
+    print("  per point by command: " + ", ".join(f"{k} {v:.1f}" for k, v in kinds[:12]))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
