@@ -15,6 +15,7 @@ from _backend_equivalence import assert_same_points
 
 from noisebench.frontends import cli
 from noisebench.results.store import load_run
+from noisebench.running.progress import NullProgress
 
 SIM_PLAN = """\
 method = "{method}"
@@ -195,17 +196,11 @@ def test_estimate_on_instruments_needs_priors(tmp_path, capsys):
     assert "expect.dut_nf_db: is needed to forecast" in err
 
 
-class _CtrlCAfterFirstPoint:
+class _CtrlCAfterFirstPoint(NullProgress):
     """A progress display whose operator presses Ctrl-C once the first point is shown."""
-
-    def start(self, total_points, *, done_points=0, label=""):
-        pass
 
     def point_done(self, point):
         raise KeyboardInterrupt
-
-    def stop(self):
-        pass
 
 
 def test_run_writes_results_and_resume_continues(tmp_path, capsys, monkeypatch):
@@ -270,9 +265,20 @@ def test_demo_end_to_end(tmp_path, capsys):
     assert out.count("vs truth") == 2
     assert (out_dir / "enr.csv").is_file() and (out_dir / "input_cable.csv").is_file()
     first = {m: (out_dir / m / "results.json").read_bytes() for m in ("y_factor", "gain")}
-    # again in the same folder: new run folders beside the first ones, which stay untouched
-    code, out, _ = _run(["-q", "demo", "--out", out_dir, "--points", "4"], capsys)
+    # again in the same folder: new run folders beside the first ones, which stay untouched;
+    # without -q it shows the same progress as `run` (log lines when stderr is no terminal):
+    # calibration as its own phase before the points, both methods
+    code, out, err = _run(["demo", "--out", out_dir, "--points", "4"], capsys)
     assert code == 0
+    lines = err.splitlines()
+    for label in ("y_factor DEMO-LNA-0001", "gain DEMO-LNA-0001"):
+        start = lines.index(f"{label}: 4 points to measure")
+        run = lines[start:]
+        assert run[1].startswith("calibration: 4 to do, ~"), run[:3]
+        cal_done = next(i for i, x in enumerate(run) if x.startswith("calibration 4/4"))
+        first_point = next(i for i, x in enumerate(run) if x.startswith("point 1/4 500 MHz"))
+        assert cal_done < first_point and "left" in run[first_point]
+        assert any(x.startswith("measurement: 4 to do") for x in run[cal_done:first_point])
     for method in ("y_factor", "gain"):
         assert load_run(out_dir / f"{method}-2").info.status == "complete"
         assert (out_dir / method / "results.json").read_bytes() == first[method]
@@ -302,6 +308,53 @@ def test_info_scans_the_network_only_when_asked(capsys, monkeypatch):
     assert code == 0 and scans == [] and "not scanned" in out and "--scan" in out
     code, out, _ = _run(["info", "--scan"], capsys)
     assert code == 0 and scans == [1] and "X::1" in out
+
+
+PYVISA_PY_NOTES = (
+    "TCPIP:instr resource discovery is limited to the default interface.",
+    "TCPIP::hislip resource discovery requires the zeroconf package to be installed",
+)
+
+
+@pytest.mark.parametrize("verbose", [False, True])
+def test_info_keeps_pyvisa_py_warnings_out_unless_verbose(capsys, monkeypatch, verbose):
+    """pyvisa-py warns while it loads and while it lists resources (its discovery notes, an
+    unclosed broadcast socket): without -v none of it reaches stdout, stderr or the warnings
+    machinery; with -v the notes are logged for diagnosis. A fake manager stands in for the
+    network scan (tests talk to loopback only)."""
+    import logging
+    import warnings
+
+    import pyvisa
+    from pyvisa import highlevel
+
+    def noisy_backends():
+        warnings.warn(PYVISA_PY_NOTES[1], UserWarning, stacklevel=1)
+        return ["ivi", "py"]
+
+    class NoisyManager:
+        def __init__(self, library):
+            warnings.warn("unclosed <socket.socket fd=3>", ResourceWarning, stacklevel=1)
+
+        def list_resources(self):
+            warnings.warn(PYVISA_PY_NOTES[0], UserWarning, stacklevel=1)
+            return ("TCPIP0::127.0.0.1::5025::SOCKET",)
+
+        def close(self):
+            pass
+
+    monkeypatch.setattr(highlevel, "list_backends", noisy_backends)
+    monkeypatch.setattr(pyvisa, "ResourceManager", NoisyManager)
+    monkeypatch.setattr(logging.getLogger("noisebench"), "handlers", [])  # a fresh CLI handler
+    argv = (["-v"] if verbose else []) + ["info", "--scan"]
+    with warnings.catch_warnings(record=True) as escaped:
+        warnings.simplefilter("always")
+        code, out, err = _run(argv, capsys)
+    assert code == 0 and "TCPIP0::127.0.0.1::5025::SOCKET" in out
+    assert escaped == []  # nothing left for Python to print at exit or pytest to collect
+    for note in (*PYVISA_PY_NOTES, "unclosed"):
+        assert note not in out
+        assert (note in err) is verbose, (note, err)
 
 
 def test_serve_passes_its_options_to_the_simulator(capsys):

@@ -233,4 +233,4 @@ def test_an_rbw_in_mhz_is_refused(tmp_path, capsys, replace):
     plan = _plan_with(tmp_path, replace)
     assert cli.main(["validate", str(plan)]) == cli.EXIT_INPUT
     err = capsys.readouterr().err
-    assert "rbw_hz: 1 Hz resolves the 6e+06 Hz span into 6e+06 cells" in err
+    assert "rbw_hz: 1 Hz resolves the 6 MHz span into 6e+06 cells" in err

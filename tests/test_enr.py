@@ -189,7 +189,7 @@ def test_outside_the_range_refused_or_clamped_and_flagged():
     t = EnrTable.from_csv(GOOD)
     with pytest.raises(
         InputError,
-        match=r"freq_hz: 7e\+09 Hz is outside the ENR table's range "
+        match=r"freq_hz: 7 GHz is outside the ENR table's range "
         r"1e\+07\.\.6e\+09 Hz",
     ):
         t.at(7e9)

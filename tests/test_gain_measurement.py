@@ -56,7 +56,7 @@ def test_interpolation_is_linear_in_db_not_in_power():
 
 def test_outside_the_range_is_refused_unless_clamping_is_asked():
     table = GainTable.from_csv(CABLE_CSV)
-    with pytest.raises(InputError, match="7e\\+09 Hz is outside the range") as info:
+    with pytest.raises(InputError, match="7 GHz is outside the range") as info:
         table.at(7e9)
     assert info.value.field == "freq_hz"
     clamped = table.at(np.array([50e6, 7e9]), extrapolate="clamp")
@@ -271,7 +271,7 @@ def test_gain_above_the_expected_value_is_flagged_near_compression():
 def test_too_little_snr_stops_with_the_frequency_and_leaves_the_generator_off():
     bench = SimulatedBench.from_scenario("demo-lna", seed=3, ideal=True)
     plan = _plan(freqs_hz=[1e9], rbw_hz=1e6, generator_max_dbm=-95.0)
-    with pytest.raises(MeasurementError, match="through pass at 1e\\+09 Hz"):
+    with pytest.raises(MeasurementError, match="through pass at 1 GHz"):
         measure_gain(bench.analyzer, bench.generator, plan, _connect(bench, []))
     assert not bench.generator.output_on
 

@@ -1223,3 +1223,10 @@ def test_series_colours_are_the_cited_okabe_ito_palette():
     else:
         published = {to_hex(c) for c in sequences["okabe_ito"]}
     assert set(SERIES) <= published
+    # the source is cited where a reader of the repository can find it
+    root = Path(__file__).resolve().parents[1]
+    references = (root / "docs" / "references.md").read_text(encoding="utf-8")
+    (section,) = [s for s in references.split("\n## ") if "Okabe" in s]
+    assert section.startswith("§17 ") and "Color Universal Design" in section and "2008" in section
+    plots_source = (root / "noisebench" / "results" / "plots.py").read_text(encoding="utf-8")
+    assert "docs/references.md §17" in plots_source and "our own" not in plots_source.lower()

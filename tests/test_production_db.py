@@ -444,7 +444,7 @@ def test_a_narrowed_plan_is_checked_like_a_loaded_one(tmp_path):
         },
         base_dir=tmp_path,
     )
-    with pytest.raises(PlanError, match="enr.table: enr.csv covers 1e.09-3e.09 Hz"):
+    with pytest.raises(PlanError, match="enr.table: enr.csv covers 1 GHz to 3 GHz"):
         plan_for_frequencies(plan, [2e9, 5e9])
     with pytest.raises(PlanError, match="is listed twice"):
         plan_for_frequencies(plan, [2e9, 2e9])

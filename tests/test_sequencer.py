@@ -411,18 +411,6 @@ def test_point_the_physics_refuses_is_skipped_and_reported(tmp_path):
     assert [p["verdict"] for p in record.verdict["points"]] == ["pass"]
 
 
-def test_progress_lines_name_point_nf_and_time_left(tmp_path, caplog):
-    from noisebench.running.progress import LogProgress
-
-    plan = make_plan("gain", freqs_hz=[1e9, 2e9])
-    with caplog.at_level("INFO", logger="noisebench.running.progress"):
-        Sequencer(plan, ideal_session(plan), progress=LogProgress()).run(tmp_path / "run")
-    lines = [r.getMessage() for r in caplog.records if r.name == "noisebench.running.progress"]
-    assert lines[0] == "gain TEST-LNA: 2 points to measure"
-    assert lines[1].startswith("point 1/2 1 GHz: NF ") and "left" in lines[1]
-    assert lines[2].startswith("point 2/2 2 GHz: NF ") and "gain 25.00 dB" in lines[2]
-
-
 def test_forecast_matches_the_measured_averaging(tmp_path):
     from noisebench.running.forecast import forecast_plan
     from noisebench.sims.forecast_model import SimulatedBenchModel

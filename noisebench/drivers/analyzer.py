@@ -48,6 +48,7 @@ from noisebench.errors import (
 )
 from noisebench.science.filters import FilterKind, RbwFilter
 from noisebench.science.plausibility import check_trace_values
+from noisebench.units import format_frequency, format_frequency_range
 
 from .profile import (
     AnalyzerProfile,
@@ -663,7 +664,8 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         if weights.sum() < band * (1 - 1e-9):
             raise InputError(
                 "band_hz",
-                f"{band:.6g} Hz around {float(freq_hz):.6g} Hz is not inside the trace",
+                f"{format_frequency(band)} around {format_frequency(float(freq_hz))} is not "
+                "inside the trace",
                 fix="narrow the band or widen the span",
             )
         power_w = 10.0 ** (np.asarray(trace.values, dtype=float) / 10.0) * 1e-3
@@ -876,7 +878,8 @@ def _check_marker_frequency(freq_hz: float, s: AcquisitionSettings) -> None:
         if not s.start_hz - spacing / 2 <= freq <= s.stop_hz + spacing / 2:
             raise InputError(
                 "marker.freq_hz",
-                f"{freq:.6g} Hz is outside the trace {s.start_hz:.6g}..{s.stop_hz:.6g} Hz",
+                f"{format_frequency(freq)} is outside the trace "
+                f"{format_frequency_range(s.start_hz, s.stop_hz)}",
                 fix="move the marker inside the span or retune the analyzer",
             )
 

@@ -35,6 +35,7 @@ from noisebench.bench.acquisition import (
     MarkerKind,
 )
 from noisebench.errors import InputError, NoisebenchError
+from noisebench.units import format_frequency
 
 from .analyzer import ScpiAnalyzer
 from .profile import BoolSetting, EnumSetting, InstrumentProfile, IntSetting, load_profile
@@ -278,7 +279,8 @@ class _Probe:
         self.add(
             "configure",
             "ok",
-            f"RBW {settings.rbw_hz:g} Hz, {settings.points} points, {settings.averages} "
+            f"RBW {format_frequency(settings.rbw_hz)}, {settings.points} points, "
+            f"{settings.averages} "
             f"averages, {settings.detector.value}, {settings.averaging_scale.value} scale",
         )
         started = time.monotonic()

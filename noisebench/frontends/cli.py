@@ -121,8 +121,11 @@ def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
 
 def cmd_demo(args: argparse.Namespace, out: TextIO) -> int:
     from noisebench.frontends.demo import run_demo
+    from noisebench.running.progress import make_progress
 
-    summary = run_demo(Path(args.out), points=args.points, seed=args.seed, stream=out)
+    summary = run_demo(
+        Path(args.out), points=args.points, seed=args.seed, stream=out, progress=make_progress()
+    )
     return EXIT_OK if summary.complete else EXIT_FAILED
 
 

@@ -18,6 +18,7 @@ from typing import Any, TextIO
 import numpy as np
 
 from noisebench.errors import InputError
+from noisebench.running.progress import RunProgress
 
 logger = logging.getLogger(__name__)
 
@@ -191,9 +192,16 @@ def _compare(record: Any, session_truth: Any) -> tuple[list[float], list[float]]
 
 
 def run_demo(
-    out: Path, *, points: int = 56, seed: int = 1, stream: TextIO | None = None
+    out: Path,
+    *,
+    points: int = 56,
+    seed: int = 1,
+    stream: TextIO | None = None,
+    progress: RunProgress | None = None,
 ) -> DemoSummary:
-    """Write the demo files into ``out``, run both plans, report and compare with the truth."""
+    """Write the demo files into ``out``, run both plans, report and compare with the truth.
+
+    ``progress`` shows each run's phases and points as ``noisebench run`` does."""
     from noisebench.bench.registry import open_bench
     from noisebench.results.store import format_summary
     from noisebench.running.plan import load_plan
@@ -211,7 +219,9 @@ def run_demo(
         plan = load_plan(plan_path)
         session = open_bench(plan.bench)
         try:
-            record, folder = run_plan(plan, folder=folders[method], session=session)
+            record, folder = run_plan(
+                plan, folder=folders[method], session=session, progress=progress
+            )
             errors, z = _compare(record, session.sim.truth)
         finally:
             session.close()

@@ -44,14 +44,25 @@ def versions() -> dict[str, str]:
     return out
 
 
+def _log_notes(what: str, caught: list[warnings.WarningMessage]) -> None:
+    """pyvisa-py's warnings (discovery limits, missing optional packages, an unclosed
+    broadcast socket) are diagnosis, not output: logged at DEBUG, shown with ``-v`` only."""
+    for note in caught:
+        logger.debug("%s: %s", what, note.message)
+
+
 def visa_backends() -> list[str] | str:
     """Names of the VISA back ends pyvisa can load, or the error text."""
-    try:
-        from pyvisa import highlevel
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            from pyvisa import highlevel
 
-        return sorted(highlevel.list_backends())
-    except Exception as exc:  # noqa: BLE001 - info must never fail
-        return f"unavailable ({type(exc).__name__}: {exc})"
+            found: list[str] | str = sorted(highlevel.list_backends())
+        except Exception as exc:  # noqa: BLE001 - info must never fail
+            found = f"unavailable ({type(exc).__name__}: {exc})"
+    _log_notes("VISA back ends", caught)
+    return found
 
 
 def visa_resources(timeout_s: float = 5.0, library: str = "@py") -> list[str] | str:
@@ -71,15 +82,14 @@ def visa_resources(timeout_s: float = 5.0, library: str = "@py") -> list[str] | 
                     manager.close()
             except Exception as exc:  # noqa: BLE001
                 result["error"] = f"{type(exc).__name__}: {exc}"
-        result["notes"] = [str(w.message) for w in caught]
+        result["notes"] = caught
 
     worker = threading.Thread(target=scan, name="noisebench-info-scan", daemon=True)
     worker.start()
     worker.join(timeout_s)
     if worker.is_alive():
         return f"no answer within {timeout_s:g} s"
-    for note in result.get("notes", []):
-        logger.info("resource listing: %s", note)
+    _log_notes("resource listing", result.get("notes", []))
     if "error" in result:
         return f"listing failed ({result['error']})"
     return result.get("found", [])

@@ -46,6 +46,8 @@ from typing import Any
 
 import pytest
 
+from noisebench.units import format_frequency, format_frequency_range
+
 logger = logging.getLogger(__name__)
 
 __all__ = [
@@ -444,7 +446,7 @@ def nb_measure_point(nb_run_plan: PlanRunner) -> Callable[..., Any]:
             skipped = record.info.notes.get("skipped_points") or []
             why = f": {skipped[0].get('reason')}" if skipped else ""
             raise AssertionError(
-                f"no point measured at {freq_hz:.9g} Hz "
+                f"no point measured at {format_frequency(freq_hz, 9)} "
                 f"(run {record.info.run_id} {record.info.status}){why}"
             )
         return record.points[0]
@@ -479,13 +481,15 @@ def _verdict_lines(record: Any) -> list[str]:
     lines = []
     for point in failing_points(record):
         checks = "; ".join(_describe_check(c) for c in point["checks"]) or "no check detail"
-        lines.append(f"  {point['freq_hz']:.9g} Hz {str(point['verdict']).upper()}: {checks}")
+        lines.append(
+            f"  {format_frequency(point['freq_hz'], 9)} {str(point['verdict']).upper()}: {checks}"
+        )
     for band in verdict.get("bands") or []:
         flat = band.get("flatness")
         if flat and flat.get("verdict") != "pass":
             lines.append(
                 f"  band {band.get('name') or band.get('band')} "
-                f"({band.get('start_hz'):.6g}-{band.get('stop_hz'):.6g} Hz) flatness: "
+                f"({format_frequency_range(band.get('start_hz'), band.get('stop_hz'))}) flatness: "
                 + _describe_check(flat)
             )
     lines += [f"  note: {note}" for note in verdict.get("notes") or []]

@@ -8,6 +8,8 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, Field
 
+from noisebench.units import format_frequency
+
 UnitStatus = Literal["complete", "interrupted", "failed", "not_started"]
 
 
@@ -72,7 +74,7 @@ class UnitResult(BaseModel):
             text += f"\n    ... {len(self.failing) - 5} more point(s)"
         for skipped in self.skipped_points[:3]:
             text += (
-                f"\n    not measured: {skipped.get('freq_hz', 0.0) / 1e9:.6g} GHz "
+                f"\n    not measured: {format_frequency(skipped.get('freq_hz', 0.0))} "
                 f"({skipped.get('stage')}): {skipped.get('reason')}"
             )
         if len(self.skipped_points) > 3:
@@ -90,7 +92,7 @@ def _failing_text(point: dict[str, Any]) -> str:
         f" vs {c.get('kind')} {c.get('limit')} (U {_fmt(c.get('U'))}): {c.get('verdict')}"
         for c in point.get("checks") or []
     )
-    return f"{point.get('freq_hz', 0.0) / 1e9:.6g} GHz {point.get('verdict')}: {checks}"
+    return f"{format_frequency(point.get('freq_hz', 0.0))} {point.get('verdict')}: {checks}"
 
 
 def _fmt(value: Any, digits: int = 3) -> str:

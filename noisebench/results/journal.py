@@ -18,6 +18,7 @@ from noisebench.errors import InputError
 from noisebench.results.records import _clean_point
 from noisebench.results.run_files import describe_damage
 from noisebench.science.point import PointResult
+from noisebench.units import format_frequency
 
 logger = logging.getLogger(__name__)
 
@@ -81,7 +82,10 @@ def _parse_entry(line: bytes, where: str, journal: _Journal) -> None:
     if kind == "point":
         point = _clean_point(PointResult.model_validate(entry["point"]))  # finite, as written
         if point.freq_hz in journal.done_freqs_hz:
-            text = f"{where}: duplicate point at {point.freq_hz!r} Hz ignored (first one kept)"
+            text = (
+                f"{where}: duplicate point at {format_frequency(point.freq_hz, 12)} ignored "
+                "(first one kept)"
+            )
             logger.warning(text)
             journal.warnings.append(text)
             return

@@ -63,10 +63,10 @@ BUDGET_LINES = 6  # contributions drawn one by one; the rest are combined (RSS)
 LOG_AXIS_DECADES = 1.0  # a sweep spanning more than this many decades gets a log axis
 DENSE_TICK_DECADES = 3.0  # up to this many decades the major ticks are 1-2-5, beyond: decades
 
-# Series colours: the colour-blind-safe palette of M. Okabe and K. Ito, "Color Universal
-# Design (CUD): how to make figures and presentations that are friendly to colorblind people"
-# (2008, published on the J*Fly site; year and site from memory). matplotlib >= 3.10 ships the
-# same colours as its "okabe_ito" colour sequence. Verdict colours: blue, red, amber (stay
+# Series colours: not ours - six colours of the published colour-blind-safe palette of
+# M. Okabe and K. Ito, "Color Universal Design (CUD): how to make figures and presentations
+# that are friendly to colorblind people" (2008; docs/references.md §17). matplotlib >= 3.10
+# ships the same colours as its "okabe_ito" colour sequence. Verdict colours: blue, red, amber (stay
 # apart for colour-blind readers, tested with simulated colour-vision deficiency); shapes
 # carry the verdict as well.
 INK = "#1f3b57"

@@ -34,6 +34,7 @@ from noisebench.errors import InputError, MeasurementError
 from noisebench.results.store import RUN_INFO_FILE, RunInfo, RunRecord, write_atomic, write_results
 from noisebench.running.plan import Plan
 from noisebench.science.point import PointResult
+from noisebench.units import format_frequency
 
 logger = logging.getLogger(__name__)
 
@@ -105,7 +106,7 @@ def _complete_budgets(
         try:
             budgets.append(_budget_for(point, inputs, plan))
         except (InputError, MeasurementError) as exc:
-            text = f"no uncertainty budget at {point.freq_hz:.9g} Hz: {exc}"
+            text = f"no uncertainty budget at {format_frequency(point.freq_hz, 9)}: {exc}"
             logger.warning(text)
             warnings.append(text)
     budgets.sort(key=lambda b: float(b.get("freq_hz", 0.0)))

@@ -15,6 +15,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationInfo, field_validat
 
 from noisebench.errors import InputError
 from noisebench.science.point import Method, PointFlag, PointResult
+from noisebench.units import format_frequency
 
 logger = logging.getLogger(__name__)
 
@@ -248,7 +249,7 @@ def _clean_point(point: PointResult) -> PointResult:
         if value is not None and not math.isfinite(value):
             raise InputError(
                 f"point.{name}",
-                f"is {value!r} at {point.freq_hz!r} Hz",
+                f"is {value!r} at {format_frequency(point.freq_hz, 12)}",
                 fix="store only finite results; flag or skip the point instead",
             )
     notes = _jsonable(point.notes, "point.notes")

@@ -97,6 +97,7 @@ from noisebench.results.records import (
 from noisebench.results.run_files import RunFileError, read_model
 from noisebench.results.summary import format_summary, nf_extremes
 from noisebench.science.point import PointResult
+from noisebench.units import format_frequency
 
 logger = logging.getLogger(__name__)
 T = TypeVar("T")
@@ -255,7 +256,7 @@ class RunWriter:
         if point.freq_hz in self.done_freqs_hz:
             raise InputError(
                 "point.freq_hz",
-                f"{point.freq_hz!r} Hz is already in this run",
+                f"{format_frequency(point.freq_hz, 12)} is already in this run",
                 fix="skip frequencies listed in RunWriter.done_freqs_hz",
             )
         if budget is not None:
@@ -266,7 +267,7 @@ class RunWriter:
         if budget is not None:
             self._budgets.append(budget)
         self.done_freqs_hz.add(point.freq_hz)
-        logger.debug("point %.6g Hz stored: NF %.3f dB", point.freq_hz, point.nf_db)
+        logger.debug("point %s stored: NF %.3f dB", format_frequency(point.freq_hz), point.nf_db)
 
     @_serialized
     def save_calibration(self, calibration: dict) -> None:
@@ -376,7 +377,7 @@ class RunWriter:
         if "freq_hz" in budget and budget["freq_hz"] != freq_hz:
             raise InputError(
                 "budget.freq_hz",
-                f"is {budget['freq_hz']!r} but the point is at {freq_hz!r} Hz",
+                f"is {budget['freq_hz']!r} but the point is at {format_frequency(freq_hz, 12)}",
                 fix="pass the budget computed for this point",
             )
         return {**budget, "freq_hz": freq_hz}

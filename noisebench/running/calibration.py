@@ -30,6 +30,7 @@ from noisebench.bench.acquisition import AcquisitionSettings
 from noisebench.errors import InputError, MeasurementError
 from noisebench.science.density import NoiseDensity
 from noisebench.science.physics import BOLTZMANN_J_PER_K, DB_PER_NEPER_POWER, T0_K, ratio_from_db
+from noisebench.units import format_frequency
 
 SETTINGS_THAT_MATTER = (
     "rbw_hz",
@@ -96,7 +97,7 @@ class CalibrationEntry(BaseModel):
         if i is None or name not in self.densities:
             raise InputError(
                 "calibration",
-                f"no {name!r} reading at {freq_hz:.9g} Hz",
+                f"no {name!r} reading at {format_frequency(freq_hz, 9)}",
                 fix="calibrate at the frequencies you measure",
             )
         return self.densities[name][i]

@@ -42,6 +42,7 @@ from noisebench.science.conversion import (
     plan_triples,
 )
 from noisebench.science.tables import read_table_text
+from noisebench.units import format_frequency, format_frequency_range
 
 __all__ = [
     "LoSettings",
@@ -209,7 +210,8 @@ class ImageRejection:
         if not freq[0] * (1 - 1e-9) <= rf_hz <= freq[-1] * (1 + 1e-9):
             raise InputError(
                 "conversion.image_rejection_db",
-                f"table covers {freq[0]:.6g}..{freq[-1]:.6g} Hz, not the RF {rf_hz:.6g} Hz",
+                f"table covers {format_frequency_range(freq[0], freq[-1])}, not the RF "
+                f"{format_frequency(rf_hz)}",
                 fix="extend the image-rejection table over the RF sweep",
             )
         return float(np.interp(rf_hz, freq, rej))
@@ -288,8 +290,9 @@ def conversion_problems(
             "conversion",
             (fp.if_hz < lo) | (fp.if_hz > hi),
             lambda i: (
-                f"IF {fp.if_hz[i]:.6g} Hz (RF {fp.rf_hz[i]:.6g} Hz) is outside the "
-                f"analyzer's {lo:.6g}..{hi:.6g} Hz (choose an IF the analyzer can read)"
+                f"IF {format_frequency(fp.if_hz[i])} (RF {format_frequency(fp.rf_hz[i])}) is "
+                "outside the "
+                f"analyzer's {format_frequency_range(lo, hi)} (choose an IF the analyzer can read)"
             ),
         )
     if enr_range_hz is not None and y_factor:
@@ -298,15 +301,16 @@ def conversion_problems(
             "enr.table",
             (fp.rf_hz < lo) | (fp.rf_hz > hi),
             lambda i: (
-                f"does not cover the RF {fp.rf_hz[i]:.6g} Hz "
-                f"({enr_range_hz[0]:.6g}..{enr_range_hz[1]:.6g} Hz; use a table over the RF band)"
+                f"does not cover the RF {format_frequency(fp.rf_hz[i])} "
+                f"({format_frequency_range(enr_range_hz[0], enr_range_hz[1])}; use a table over "
+                "the RF band)"
             ),
         )
         first(
             "enr.table",
             (fp.if_hz < lo) | (fp.if_hz > hi),
             lambda i: (
-                f"does not cover the IF {fp.if_hz[i]:.6g} Hz, where the analyzer is "
+                f"does not cover the IF {format_frequency(fp.if_hz[i])}, where the analyzer is "
                 "calibrated (use a source calibrated down to the IF)"
             ),
         )
@@ -316,8 +320,9 @@ def conversion_problems(
                 "enr.table",
                 has_image & ((fp.image_hz < lo) | (fp.image_hz > hi)),
                 lambda i: (
-                    f"does not cover the image {fp.image_hz[i]:.6g} Hz of RF "
-                    f"{fp.rf_hz[i]:.6g} Hz, whose share of the source's noise needs ENR(image) "
+                    f"does not cover the image {format_frequency(fp.image_hz[i])} of RF "
+                    f"{format_frequency(fp.rf_hz[i])}, whose share of the source's noise needs "
+                    "ENR(image) "
                     '(extend the table, or declare image_rejection_db = "none" behind an '
                     "image-reject filter)"
                 ),
@@ -328,8 +333,8 @@ def conversion_problems(
             "conversion.lo",
             (fp.lo_hz < lo) | (fp.lo_hz > hi),
             lambda i: (
-                f"LO {fp.lo_hz[i]:.6g} Hz is outside the LO generator's "
-                f"{lo:.6g}..{hi:.6g} Hz (use another sideband or generator)"
+                f"LO {format_frequency(fp.lo_hz[i])} is outside the LO generator's "
+                f"{format_frequency_range(lo, hi)} (use another sideband or generator)"
             ),
         )
     bands = np.broadcast_to(np.asarray(band_hz, dtype=float), fp.rf_hz.shape)
@@ -347,9 +352,10 @@ def conversion_problems(
         "conversion",
         np.asarray(if_hit.any(axis=1)),
         lambda i: (
-            f"the IF band {fp.if_hz[i]:.6g} Hz +/- {bands[i] / 2:.3g} Hz (RF "
-            f"{fp.rf_hz[i]:.6g} Hz) overlaps LO leakage at "
-            f"{lines[i][if_hit[i]][0]:.6g} Hz +/- {keep[i]:.3g} Hz "
+            f"the IF band {format_frequency(fp.if_hz[i])} +/- {format_frequency(bands[i] / 2, 3)} "
+            "(RF "
+            f"{format_frequency(fp.rf_hz[i])}) overlaps LO leakage at "
+            f"{format_frequency(lines[i][if_hit[i]][0])} +/- {format_frequency(keep[i], 3)} "
             "(move the IF or the LO, or narrow the span)"
         ),
     )
@@ -358,8 +364,9 @@ def conversion_problems(
         "conversion",
         np.asarray(image_hit.any(axis=1)),
         lambda i: (
-            f"the image {fp.image_hz[i]:.6g} Hz (RF {fp.rf_hz[i]:.6g} Hz) overlaps LO "
-            f"leakage at {lines[i][image_hit[i]][0]:.6g} Hz (move the LO or the IF)"
+            f"the image {format_frequency(fp.image_hz[i])} (RF {format_frequency(fp.rf_hz[i])}) "
+            "overlaps LO "
+            f"leakage at {format_frequency(lines[i][image_hit[i]][0])} (move the LO or the IF)"
         ),
     )
     if image_rejection is not None:

@@ -25,6 +25,7 @@ from noisebench.running.plan import Plan
 from noisebench.science.methods.yfactor import EnrReference
 from noisebench.science.point import Method
 from noisebench.science.ranges import check_range
+from noisebench.units import format_frequency
 
 
 @dataclass
@@ -78,7 +79,8 @@ def _loss_function(plan: Plan, key: str, value: float | str) -> Callable[[float]
         if loss < -1e-3:
             raise InputError(
                 key,
-                f"{value} gives a gain of {-loss:.3f} dB at {freq_hz:.6g} Hz, not a loss",
+                f"{value} gives a gain of {-loss:.3f} dB at {format_frequency(freq_hz)}, not a "
+                "loss",
                 fix="give loss_db >= 0, or a cable's |S21| (<= 0 dB)",
             )
         return max(loss, 0.0)

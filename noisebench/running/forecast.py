@@ -45,6 +45,7 @@ from noisebench.science.physics import (
     te_k_from_nf_db,
 )
 from noisebench.science.point import Method
+from noisebench.units import format_frequency
 
 DEFAULT_ZERO_SPAN_SWEEP_S = 1e-3
 MIN_SWEEP_TIME_S = 1e-3  # common practice: analyzers rarely sweep faster than about 1 ms
@@ -74,7 +75,9 @@ def band_relative_variance(
     half = (band_hz if band_hz is not None else settings.span_hz) / 2
     n = int(np.count_nonzero(np.abs(freqs - freq_hz) <= half * (1 + 1e-9)))
     if n < 1:
-        raise InputError("band_hz", f"the band around {freq_hz:.6g} Hz holds no trace point")
+        raise InputError(
+            "band_hz", f"the band around {format_frequency(freq_hz)} holds no trace point"
+        )
     spacing = settings.span_hz / (settings.points - 1)
     lags = np.arange(1, n, dtype=float)
     rho = frequency_power_correlation(settings.rbw_filter, lags * spacing, settings.rbw_hz)

@@ -52,6 +52,7 @@ from noisebench.bench.acquisition import (
 from noisebench.bench.instruments import Analyzer, Generator, NoiseSource
 from noisebench.errors import InputError, MeasurementError, SafetyError
 from noisebench.science.gain_files import GainTable
+from noisebench.units import format_frequency
 
 logger = logging.getLogger(__name__)
 
@@ -235,7 +236,7 @@ def _reduce_pass(
     noise_w = float(_dbm_to_w(noise_dbm))
     if mean_w <= noise_w:
         raise MeasurementError(
-            f"{stage} pass at {freq_hz:.6g} Hz: no tone above the noise "
+            f"{stage} pass at {format_frequency(freq_hz)}: no tone above the noise "
             f"({10 * math.log10(mean_w / 1e-3):.2f} dBm vs noise "
             f"{noise_dbm:.2f} dBm)",
             fix="check the generator output and the connections",
@@ -243,7 +244,8 @@ def _reduce_pass(
     ratio = float(snr_db(mean_w, noise_w))
     if ratio < min_snr:
         raise MeasurementError(
-            f"{stage} pass at {freq_hz:.6g} Hz: tone only {ratio:.1f} dB above the noise in "
+            f"{stage} pass at {format_frequency(freq_hz)}: tone only {ratio:.1f} dB above the "
+            "noise in "
             f"the marker band (need {min_snr:.0f} dB)",
             fix="narrow the RBW (each halving gains 3 dB), raise the level limits, or lower "
             "the analyzer attenuation",
@@ -280,9 +282,9 @@ def _combine(
     if dut.tone_dbm > planned_out + NEAR_COMPRESSION_DB:
         flags.append("output_near_compression")
         logger.warning(
-            "gain at %.6g Hz: DUT output %.2f dBm is %.1f dB above the planned "
+            "gain at %s: DUT output %.2f dBm is %.1f dB above the planned "
             "%.2f dBm (gain above expected_gain_db)",
-            freq_hz,
+            format_frequency(freq_hz),
             dut.tone_dbm,
             dut.tone_dbm - planned_out,
             planned_out,
@@ -358,9 +360,9 @@ def _measure_pass(
             _reduce_pass(readings, noise, freq_hz=freq, stage=stage.value, min_snr=plan.min_snr_db)
         )
         logger.debug(
-            "%s pass %.6g Hz: tone %.2f dBm, SNR %.1f dB",
+            "%s pass %s: tone %.2f dBm, SNR %.1f dB",
             stage.value,
-            freq,
+            format_frequency(freq),
             results[-1].tone_dbm,
             results[-1].snr_db,
         )

@@ -8,6 +8,7 @@ from dataclasses import dataclass
 
 from noisebench.bench.acquisition import AcquisitionRequest
 from noisebench.running.plan import AcquisitionPolicy, FrequencyPoint
+from noisebench.units import format_frequency, format_frequency_range
 
 AUTO_POINTS_PER_RBW = 4
 """Trace points per RBW when the plan does not set ``trace_points``: bins closer than the RBW
@@ -64,12 +65,11 @@ class PointGroup:
         )
 
     def describe(self) -> str:
-        lo, hi = self.freqs_hz[0], self.freqs_hz[-1]
-        text = f"{lo:.6g} Hz" if lo == hi else f"{lo:.6g}..{hi:.6g} Hz"
+        """The group's frequencies as a person reads them (``3.3 GHz``, ``1 GHz to 2 GHz``)."""
+        text = format_frequency_range(self.freqs_hz[0], self.freqs_hz[-1])
         if self.rf_hz is not None:
-            rf_lo, rf_hi = min(self.rf_hz), max(self.rf_hz)
-            rf = f"{rf_lo:.6g} Hz" if rf_lo == rf_hi else f"{rf_lo:.6g}..{rf_hi:.6g} Hz"
-            text = f"RF {rf} (IF {text}, LO {self.lo_hz:.6g} Hz)"
+            rf = format_frequency_range(min(self.rf_hz), max(self.rf_hz))
+            text = f"RF {rf} (IF {text}, LO {format_frequency(self.lo_hz)})"
         return text
 
 

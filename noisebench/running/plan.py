@@ -61,6 +61,7 @@ from noisebench.running.conversion import ConversionSection
 from noisebench.running.plan_errors import PlanError, format_validation_error
 from noisebench.science.point import Method
 from noisebench.science.ranges import check_range, warn_unusual
+from noisebench.units import format_frequency
 from noisebench.user_files import MAX_PLAN_BYTES, check_file_size
 
 if sys.version_info >= (3, 11):
@@ -294,13 +295,15 @@ class AcquisitionPolicy(BaseModel):
         if 0 < self.span_hz < self.rbw_hz:
             raise InputError(
                 "span_hz",
-                f"{self.span_hz:g} Hz is narrower than rbw_hz {self.rbw_hz:g} Hz",
+                f"{format_frequency(self.span_hz)} is narrower than rbw_hz "
+                f"{format_frequency(self.rbw_hz)}",
                 fix="use span_hz >= rbw_hz, or 0 for zero span",
             )
         if self.span_hz / self.rbw_hz > MAX_SPAN_OVER_RBW:
             raise InputError(
                 "rbw_hz",
-                f"{self.rbw_hz:g} Hz resolves the {self.span_hz:g} Hz span into "
+                f"{format_frequency(self.rbw_hz)} resolves the {format_frequency(self.span_hz)} "
+                "span into "
                 f"{self.span_hz / self.rbw_hz:.3g} cells, more than any analyzer's trace "
                 f"holds (at most {MAX_SPAN_OVER_RBW:g}): looks like kHz or MHz given where Hz "
                 "is asked",
@@ -385,7 +388,8 @@ class Segment(BaseModel):
         if self.stop_hz < self.start_hz:
             raise InputError(
                 "stop_hz",
-                f"{self.stop_hz:g} Hz is below start_hz {self.start_hz:g} Hz",
+                f"{format_frequency(self.stop_hz)} is below start_hz "
+                f"{format_frequency(self.start_hz)}",
                 fix="swap them",
             )
         if self.stop_hz == self.start_hz and (self.points or 1) > 1:
@@ -404,9 +408,9 @@ class Segment(BaseModel):
         ):
             raise InputError(
                 "step_hz",
-                f"{self.step_hz:g} Hz makes more than "
+                f"{format_frequency(self.step_hz)} makes more than "
                 f"{MAX_SEGMENT_POINTS} points between {self.start_hz:g} and "
-                f"{self.stop_hz:g} Hz",
+                f"{format_frequency(self.stop_hz)}",
                 fix="use a larger step (step_hz is in Hz)",
             )
 

@@ -16,6 +16,7 @@ from noisebench.errors import InputError
 from noisebench.running.plan import Plan
 from noisebench.running.plan_errors import format_validation_error
 from noisebench.science.point import Method
+from noisebench.units import format_frequency, format_frequency_range
 
 # --------------------------------------------------------------------------- cross-field checks
 
@@ -257,7 +258,8 @@ def _check_recorded_time(plan: Plan, folder: str) -> list[str]:
         (connection, state), have = min(held.items(), key=lambda item: item[1])
         if have < seconds:
             problems.append(
-                f"acquisition.time_limit_s: the points at {center:.9g} Hz may read {seconds:g} s "
+                f"acquisition.time_limit_s: the points at {format_frequency(center, 9)} may read "
+                f"{seconds:g} s "
                 f"of each state, the recordings hold {have:.3g} s of {connection} {state} "
                 "(lower time_limit_s or record longer)"
             )
@@ -298,9 +300,11 @@ def _check_duplicates(plan: Plan) -> list[str]:
         for f in freqs:
             rounded = round(float(f), 3)
             if rounded in seen and seen[rounded] != key:
-                problems.append(f"{key}: {f:g} Hz is also in {seen[rounded]} (each frequency once)")
+                problems.append(
+                    f"{key}: {format_frequency(f)} is also in {seen[rounded]} (each frequency once)"
+                )
             elif rounded in seen:
-                problems.append(f"{key}: {f:g} Hz is listed twice")
+                problems.append(f"{key}: {format_frequency(f)} is listed twice")
             seen[rounded] = key
     return problems
 
@@ -435,8 +439,9 @@ def _coverage_problems(
         else "narrow the sweep or extend the table"
     )
     return [
-        f"{key}: {name} covers {lo:g}-{hi:g} Hz but the sweep has {outside.size} point(s) "
-        f"outside it (first {outside[0]:g} Hz){_unit_hint(freqs, lo, hi)}; {fix}"
+        f"{key}: {name} covers {format_frequency_range(lo, hi)} but the sweep has {outside.size} "
+        "point(s) "
+        f"outside it (first {format_frequency(outside[0])}){_unit_hint(freqs, lo, hi)}; {fix}"
     ]
 
 
@@ -501,6 +506,7 @@ def _gain_in_loss_table(key: str, name: str, table: Any, plan: Plan) -> list[str
         return []
     i = int(bad[0])
     return [
-        f"{key}: {name} gives a gain of {-loss_db[i]:.3f} dB at {freqs[i]:.6g} Hz, not a "
+        f"{key}: {name} gives a gain of {-loss_db[i]:.3f} dB at {format_frequency(freqs[i])}, not "
+        "a "
         "loss (give loss_db >= 0, or a cable's |S21| (<= 0 dB))"
     ]

@@ -20,6 +20,7 @@ from enum import Enum
 from typing import Any
 
 from noisebench.errors import InputError
+from noisebench.units import format_frequency, format_frequency_range
 
 __all__ = [
     "ProfileFinding",
@@ -192,8 +193,9 @@ def _check_frequencies(plan: Any, profile: Any) -> list[ProfileFinding]:
     return [
         ProfileFinding(
             "error",
-            f"sweep: {len(outside)} point(s) from {min(outside):.6g} Hz lie outside profile "
-            f"{profile.name}'s range [{low:.6g}, {high:.6g}] Hz of {setting.name} (move the "
+            f"sweep: {len(outside)} point(s) from {format_frequency(min(outside))} lie outside "
+            f"profile {profile.name}'s range {format_frequency_range(low, high)} of "
+            f"{setting.name} (move the "
             "points, or correct min/max in the profile)",
         )
     ]

@@ -1,9 +1,12 @@
-"""Progress display of a run: points done, time left, current NF.
+"""Progress display of a run: phases (calibration, DUT gain, measurement), steps and points
+done, time left, current NF.
 
-Two back ends behind one small interface: a live ``rich.progress`` bar when stderr is a
-terminal (and ``rich`` is installed, and no CI variable is set), plain log lines otherwise, so
-logs in CI and files stay clean. The sequencer only calls :meth:`RunProgress.start`,
-:meth:`RunProgress.point_done` and :meth:`RunProgress.stop`.
+Two back ends behind one small interface: a live ``rich.progress`` bar per phase when stderr
+is a terminal (and ``rich`` is installed, and no CI variable is set), plain log lines
+otherwise, so logs in CI and files stay clean. The sequencer calls
+:meth:`RunProgress.start` (with a way to get the forecast), :meth:`RunProgress.phase`,
+:meth:`RunProgress.step_done`, :meth:`RunProgress.point_done` and :meth:`RunProgress.stop`;
+:class:`Eta` turns the forecast and the timings so far into the time left.
 """
 
 from __future__ import annotations
@@ -12,7 +15,9 @@ import logging
 import os
 import sys
 import time
-from typing import IO, Protocol
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import IO, Any, Protocol
 
 from noisebench.science.point import PointResult
 
@@ -20,13 +25,40 @@ logger = logging.getLogger(__name__)
 
 
 class RunProgress(Protocol):
-    """What the sequencer reports while it runs."""
+    """What the sequencer reports while it runs: the run starts, each phase (calibration,
+    DUT gain, measurement) starts with its size, steps of a phase end, points are stored."""
 
-    def start(self, total_points: int, *, done_points: int = 0, label: str = "") -> None: ...
+    def start(
+        self,
+        total_points: int,
+        *,
+        done_points: int = 0,
+        label: str = "",
+        forecast: ForecastSource | None = None,
+    ) -> None: ...
+
+    def phase(self, name: str, total: int) -> None: ...
+
+    def step_done(self, count: int = 1) -> None: ...
 
     def point_done(self, point: PointResult) -> None: ...
 
     def stop(self) -> None: ...
+
+
+@dataclass(frozen=True)
+class WorkForecast:
+    """Forecast instrument time of what is left to do (``noisebench.running.forecast``):
+    the phases in the order they run with their units (calibrated or measured frequencies)
+    and seconds per unit, and the measurement's seconds per frequency."""
+
+    units: dict[str, int]
+    seconds_per_unit: dict[str, float]
+    point_s: dict[float, float] = field(default_factory=dict)
+
+
+#: computes the forecast when a display wants one (it costs about a second)
+ForecastSource = Callable[[], "WorkForecast | None"]
 
 
 def format_freq(freq_hz: float) -> str:
@@ -57,35 +89,137 @@ def describe_point(point: PointResult) -> str:
     return text
 
 
-class _Eta:
-    """Remaining time from the mean wall time per point measured so far."""
+CALIBRATION = "calibration"
+DUT_GAIN = "DUT gain"
+MEASUREMENT = "measurement"
 
-    def __init__(self, total: int, done: int) -> None:
-        self.total, self.done, self.new = total, done, 0
-        self.t0 = time.monotonic()
 
-    def advance(self) -> None:
-        self.done += 1
-        self.new += 1
+class Eta:
+    """Time left, from the forecast until real timings exist.
+
+    Work is counted in forecast seconds of instrument time, each unit weighted by the
+    forecast (a point with a 40 s time limit weighs more than one with 20 s). The wall time
+    per forecast second is measured: from the current phase once it has finished a unit,
+    before that from the earlier phases (so the calibration's timing scales the measurement's
+    forecast); before anything is done it is 1: the first estimate is the forecast itself.
+    Without a forecast each phase uses its own mean wall time per unit, and says nothing
+    before its first unit (the calibration's time never inflates the measurement's
+    estimate)."""
+
+    def __init__(self, clock: Callable[[], float] = time.monotonic) -> None:
+        self.clock = clock
+        self.forecast: WorkForecast | None = None
+        self.phases: dict[str, list[float]] = {}  # name -> [total units, done units]
+        self.order: list[str] = []
+        self.current = ""
+        self.done_freqs: set[float] = set()
+        self.done_forecast_s = 0.0
+        self.unforecast_s = 0.0
+        self.phase_forecast_s = 0.0  # forecast seconds done in the current phase
+        self.started = clock()
+        self._phase_t0 = self.started
+
+    def plan(self, forecast: WorkForecast | None) -> None:
+        """Take the forecast and its phases (in the order they run)."""
+        self.forecast = forecast
+        self.started = self._phase_t0 = self.clock()  # computing the forecast is not run time
+        if forecast is not None:
+            self.phases = {name: [float(n), 0.0] for name, n in forecast.units.items()}
+            self.order = list(forecast.units)
+
+    def phase(self, name: str, total: int) -> None:
+        now = self.clock()
+        if self.current and not self._forecast_covers(self.current):
+            self.unforecast_s += now - self._phase_t0  # e.g. the DUT gain: not in the scale
+        self.phases.setdefault(name, [0.0, 0.0])[0] = float(total)
+        if name not in self.order:
+            self.order.append(name)
+        self.current, self._phase_t0, self.phase_forecast_s = name, now, 0.0
+
+    def _forecast_covers(self, name: str) -> bool:
+        return self._unit_s(name) > 0 or (
+            name == MEASUREMENT and self.forecast is not None and bool(self.forecast.point_s)
+        )
+
+    def advance(self, count: float = 1.0, freq_hz: float | None = None) -> None:
+        if not self.current:
+            self.phase(MEASUREMENT, int(count))
+        self.phases[self.current][1] += count
+        if freq_hz is not None:
+            self.done_freqs.add(freq_hz)
+        work = self._unit_s(self.current, freq_hz) * count
+        self.done_forecast_s += work
+        self.phase_forecast_s += work
+
+    def _unit_s(self, name: str, freq_hz: float | None = None) -> float:
+        if self.forecast is None:
+            return 0.0
+        if name == MEASUREMENT and freq_hz is not None and freq_hz in self.forecast.point_s:
+            return self.forecast.point_s[freq_hz]
+        return self.forecast.seconds_per_unit.get(name, 0.0)
+
+    def forecast_left_s(self) -> float:
+        """Forecast instrument seconds of the work not yet done."""
+        start = self.order.index(self.current) if self.current in self.order else 0
+        left = 0.0
+        for name in self.order[start:]:
+            total, done = self.phases[name]
+            if name == MEASUREMENT and self.forecast is not None and self.forecast.point_s:
+                left += sum(s for f, s in self.forecast.point_s.items() if f not in self.done_freqs)
+            else:
+                left += max(total - done, 0.0) * self._unit_s(name)
+        return left
 
     def remaining_s(self) -> float | None:
-        if self.new == 0:
+        """Wall seconds left for this run, or None while nothing can be said."""
+        now = self.clock()
+        if self.forecast is not None:
+            scale = 1.0
+            if self.phase_forecast_s > 0:  # the current phase's own pace, once it has one
+                scale = (now - self._phase_t0) / self.phase_forecast_s
+            elif self.done_forecast_s > 0:
+                busy = now - self.started - self.unforecast_s
+                if self.current and not self._forecast_covers(self.current):
+                    busy -= now - self._phase_t0
+                scale = busy / self.done_forecast_s
+            return self.forecast_left_s() * scale
+        if not self.current:
             return None
-        per_point = (time.monotonic() - self.t0) / self.new
-        return per_point * max(self.total - self.done, 0)
+        total, done = self.phases[self.current]
+        if done <= 0:
+            return None
+        return (now - self._phase_t0) / done * max(total - done, 0.0)
+
+
+def _forecast_text(eta: Eta) -> str:
+    left = eta.remaining_s()
+    return f", ~{format_duration(left)} left" if left is not None else ""
 
 
 class LogProgress:
-    """Plain log lines (one per point) through :mod:`logging`; clean in CI and in files."""
+    """Plain log lines (one per step and point) through :mod:`logging`; clean in CI and files."""
 
-    def __init__(self, log: logging.Logger | None = None) -> None:
+    def __init__(
+        self, log: logging.Logger | None = None, *, clock: Callable[[], float] = time.monotonic
+    ) -> None:
         self._log = log or logger
-        self._eta: _Eta | None = None
+        self._clock = clock
+        self._eta: Eta | None = None
         self._label = ""
+        self._total = 0
+        self._done = 0
 
-    def start(self, total_points: int, *, done_points: int = 0, label: str = "") -> None:
-        self._eta = _Eta(total_points, done_points)
-        self._label = label
+    def start(
+        self,
+        total_points: int,
+        *,
+        done_points: int = 0,
+        label: str = "",
+        forecast: ForecastSource | None = None,
+    ) -> None:
+        self._eta = Eta(self._clock)
+        self._eta.plan(forecast() if forecast else None)
+        self._label, self._total, self._done = label, total_points, done_points
         already = f", {done_points} already done" if done_points else ""
         self._log.info(
             "%s%d points to measure%s",
@@ -94,18 +228,33 @@ class LogProgress:
             already,
         )
 
-    def point_done(self, point: PointResult) -> None:
+    def _ensure(self) -> Eta:
         if self._eta is None:
             self.start(1)
         assert self._eta is not None
-        self._eta.advance()
-        left = self._eta.remaining_s()
+        return self._eta
+
+    def phase(self, name: str, total: int) -> None:
+        eta = self._ensure()
+        eta.phase(name, total)
+        self._log.info("%s: %d to do%s", name, total, _forecast_text(eta))
+
+    def step_done(self, count: int = 1) -> None:
+        eta = self._ensure()
+        eta.advance(count)
+        total, done = eta.phases[eta.current]
+        if eta.current == MEASUREMENT:
+            self._done += count
+        self._log.info("%s %d/%d%s", eta.current, done, total, _forecast_text(eta))
+
+    def point_done(self, point: PointResult) -> None:
+        eta = self._ensure()
+        if eta.current != MEASUREMENT:
+            eta.phase(MEASUREMENT, self._total - self._done)
+        eta.advance(1, point.freq_hz)
+        self._done += 1
         self._log.info(
-            "point %d/%d %s%s",
-            self._eta.done,
-            self._eta.total,
-            describe_point(point),
-            f", ~{format_duration(left)} left" if left is not None else "",
+            "point %d/%d %s%s", self._done, self._total, describe_point(point), _forecast_text(eta)
         )
 
     def stop(self) -> None:
@@ -113,50 +262,100 @@ class LogProgress:
 
 
 class RichProgress:
-    """A live ``rich.progress`` bar on a terminal: points, time left, the last NF."""
+    """A live ``rich.progress`` bar per phase on a terminal: steps, time left, the last NF."""
 
-    def __init__(self, stream: IO[str] | None = None) -> None:
+    def __init__(
+        self, stream: IO[str] | None = None, *, clock: Callable[[], float] = time.monotonic
+    ) -> None:
         from rich.console import Console
-        from rich.progress import (
-            BarColumn,
-            MofNCompleteColumn,
-            Progress,
-            TextColumn,
-            TimeRemainingColumn,
-        )
+        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 
+        self._eta = Eta(clock)
+        self._clock = clock
         self._progress = Progress(
             TextColumn("{task.description}"),
             BarColumn(),
             MofNCompleteColumn(),
-            TimeRemainingColumn(),
+            TextColumn("{task.fields[left]}"),
             TextColumn("{task.fields[last]}"),
             console=Console(file=stream or sys.stderr),
             transient=False,
         )
+        self._task: Any = None
+        self._label = ""
+        self._total = 0
+        self._done = 0
+        self._running = False
+
+    def _left(self) -> str:
+        left = self._eta.remaining_s()
+        return f"~{format_duration(left)} left" if left is not None else ""
+
+    def start(
+        self,
+        total_points: int,
+        *,
+        done_points: int = 0,
+        label: str = "",
+        forecast: ForecastSource | None = None,
+    ) -> None:
+        self._eta = Eta(self._clock)
+        self._eta.plan(forecast() if forecast else None)
+        self._label, self._total, self._done = label, total_points, done_points
+        self._progress.start()
+        self._running = True
         self._task = None
 
-    def start(self, total_points: int, *, done_points: int = 0, label: str = "") -> None:
-        self._progress.start()
+    def phase(self, name: str, total: int) -> None:
+        if not self._running:
+            self.start(total)
+        self._eta.phase(name, total)
+        completed = self._done if name == MEASUREMENT else 0
+        size = self._done + total if name == MEASUREMENT else total
+        title = f"{self._label} {name}".strip()
         self._task = self._progress.add_task(
-            label or "measuring", total=total_points, completed=done_points, last=""
+            title, total=size, completed=completed, last="", left=self._left()
         )
 
-    def point_done(self, point: PointResult) -> None:
+    def step_done(self, count: int = 1) -> None:
         if self._task is None:
-            self.start(1)
-        self._progress.update(self._task, advance=1, last=describe_point(point))
+            self.phase(MEASUREMENT, self._total - self._done)
+        self._eta.advance(count)
+        if self._eta.current == MEASUREMENT:
+            self._done += count
+        self._progress.update(self._task, advance=count, left=self._left())
+
+    def point_done(self, point: PointResult) -> None:
+        if self._task is None or self._eta.current != MEASUREMENT:
+            self.phase(MEASUREMENT, self._total - self._done)
+        self._eta.advance(1, point.freq_hz)
+        self._done += 1
+        self._progress.update(self._task, advance=1, last=describe_point(point), left=self._left())
 
     def stop(self) -> None:
-        if self._task is not None:
+        if self._running:
             self._progress.stop()
+            self._running = False
             self._task = None
 
 
 class NullProgress:
-    """Reports nothing (library use and tests)."""
+    """Reports nothing (library use and tests); never asks for the forecast."""
 
-    def start(self, total_points: int, *, done_points: int = 0, label: str = "") -> None:
+    def start(
+        self,
+        total_points: int,
+        *,
+        done_points: int = 0,
+        label: str = "",
+        forecast: ForecastSource | None = None,
+    ) -> None:
+        return None
+
+    def phase(self, name: str, total: int) -> None:
+        return None
+
+    def step_done(self, count: int = 1) -> None:
         return None
 
     def point_done(self, point: PointResult) -> None:

@@ -59,7 +59,13 @@ from noisebench.running.calibration import (
 from noisebench.running.corrections import Corrections, resolve_corrections
 from noisebench.running.groups import PointGroup, plan_groups
 from noisebench.running.plan import FrequencyPoint, Plan
-from noisebench.running.progress import RunProgress
+from noisebench.running.progress import (
+    CALIBRATION,
+    DUT_GAIN,
+    MEASUREMENT,
+    RunProgress,
+    WorkForecast,
+)
 from noisebench.running.safety import (
     DEFAULT_COMPRESSION_DBM,
     DEFAULT_MAX_INPUT_DBM,
@@ -202,6 +208,7 @@ class Sequencer(SwitchedSweep, GainStep, VerdictStep):
             total,
             done_points=total - len(todo),
             label=f"{self.plan.method.value} {self.plan.dut.id or ''}".strip(),
+            forecast=lambda: self._work_forecast(todo),
         )
         try:
             self._prepare(writer)
@@ -221,6 +228,37 @@ class Sequencer(SwitchedSweep, GainStep, VerdictStep):
             self.progress.stop()
         self._safe()
         return self._finish(writer, "complete")
+
+    def _work_forecast(self, todo: list[FrequencyPoint]) -> WorkForecast | None:
+        """What the progress display's first time-left estimate rests on: the plan's forecast
+        (``running/forecast.py``) for the points still to do; None where the plan cannot be
+        forecast (a real bench without ``[expect]`` priors, a frequency converter)."""
+        from noisebench.running.forecast import forecast_plan
+
+        if not todo:
+            return None
+        try:
+            forecast = forecast_plan(self.plan)
+        except Exception as exc:  # noqa: BLE001 - a display aid never stops a run
+            logger.debug("no forecast for the progress display: %s", exc)
+            return None
+        wanted = {p.freq_hz for p in todo}
+        points = [p for p in forecast.points if p.freq_hz in wanted]
+        if not points:
+            return None
+        units = {CALIBRATION: len(points)}
+        if (
+            self.plan.method is Method.GAIN
+            and self.plan.gain
+            and self.plan.gain.source == "measure"
+        ):
+            units[DUT_GAIN] = 1
+        units[MEASUREMENT] = len(points)
+        return WorkForecast(
+            units=units,
+            seconds_per_unit={CALIBRATION: sum(p.calibration_time_s for p in points) / len(points)},
+            point_s={p.freq_hz: p.time_s for p in points},
+        )
 
     def _prepare(self, writer) -> None:
         analyzer = self.session.bench.analyzer
@@ -302,7 +340,10 @@ class Sequencer(SwitchedSweep, GainStep, VerdictStep):
             return
         self._calibrate_all(groups, writer)
         if self.plan.method is Method.GAIN and self.corrections.gain is None:  # type: ignore
+            self.progress.phase(DUT_GAIN, 1)
             self._measure_gain(groups, writer)
+            self.progress.step_done()
+        self.progress.phase(MEASUREMENT, len(todo) - len(self.skipped))
         self.session.connect(Connection.DUT)
         if self._switched(groups):
             self._measure_switched(groups, writer)

@@ -19,6 +19,7 @@ from noisebench.running.calibration import (
     system_design_u_db,
 )
 from noisebench.running.groups import PointGroup
+from noisebench.running.progress import CALIBRATION
 from noisebench.running.sequencer_core import _Readings
 from noisebench.running.sequencer_rounds import AveragingRounds
 from noisebench.science.averaging import (
@@ -59,6 +60,7 @@ class CalibrationSteps(AveragingRounds):
         if not needed:
             logger.info("stored %s calibration still valid: reused", kind.value)
             return
+        self.progress.phase(CALIBRATION, sum(len(g.freqs_hz) for g in needed))
         if kind is CalibrationKind.SYSTEM and self._switched(needed):
             self._calibrate_switched(needed, writer)
             return
@@ -82,6 +84,7 @@ class CalibrationSteps(AveragingRounds):
                 continue
             self.calibrations.add(entry)
             self.calibrations_measured += 1
+            self.progress.step_done(len(group.freqs_hz))
         writer.save_calibration(self.calibrations.to_dict())
 
     def _calibrate_group(self, group: PointGroup, kind: CalibrationKind) -> CalibrationEntry:

@@ -108,6 +108,7 @@ class SequencerCore:
                 entry.update(if_hz=f, lo_hz=group.lo_hz)
             self.skipped.append(entry)
         logger.warning("%s not measured (%s): %s", group.describe(), stage, exc.message)
+        self.progress.step_done(len(group.freqs_hz))  # the phase's bar still reaches its end
         writer.update_info(notes={**writer.info.notes, "skipped_points": self.skipped})
 
     def _corr(self) -> Corrections:

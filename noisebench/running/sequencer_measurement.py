@@ -18,6 +18,7 @@ from noisebench.science.averaging import (
     TimeBudget,
 )
 from noisebench.science.point import Method, PointFlag, PointResult
+from noisebench.units import format_frequency
 
 
 class MeasurementSteps(CalibrationSteps):
@@ -205,7 +206,7 @@ class MeasurementSteps(CalibrationSteps):
         if freq_hz in self._measured_gain:
             gain_db, u = self._measured_gain[freq_hz]
             return gain_db, u, True
-        raise MeasurementError(f"no DUT gain at {freq_hz:.6g} Hz")  # pragma: no cover
+        raise MeasurementError(f"no DUT gain at {format_frequency(freq_hz)}")  # pragma: no cover
 
     def _finish_point(
         self,

@@ -240,6 +240,7 @@ class SwitchedSweep(MeasurementSteps):
                 entry = self._with_context(first, lambda: self._calibrate_group(first, kind))
                 self.calibrations.add(entry)
                 self.calibrations_measured += 1
+                self.progress.step_done(len(first.freqs_hz))
             except MeasurementError as exc:
                 self._set_source_cold(TimeBudget(0.0))
                 self._skip(first, exc, "calibration", writer)
@@ -301,6 +302,7 @@ class SwitchedSweep(MeasurementSteps):
                     continue
                 self.calibrations.add(entry)
                 self.calibrations_measured += 1
+                self.progress.step_done(len(run.group.freqs_hz))
             active = still
         self._set_source_cold(TimeBudget(0.0))
         self._rate_s = self._rate_from(runs)

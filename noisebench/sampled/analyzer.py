@@ -50,6 +50,7 @@ from noisebench.sampled.scale import ScaleCalibration
 from noisebench.sampled.source import CaptureRequest, RecordingsExhausted, SampleBlock, SampleSource
 from noisebench.sampled.welch import DEFAULT_WINDOW, SegmentPlan, plan_segments, welch_density
 from noisebench.science.filters import response_halfwidth_ratio
+from noisebench.units import format_frequency, format_frequency_range
 
 logger = logging.getLogger(__name__)
 
@@ -278,8 +279,10 @@ class SampledAnalyzer(Analyzer):
         if lo_band < cc + lo_use - 1e-9 * fs or hi_band > cc + hi_use + 1e-9 * fs:
             raise InputError(
                 "acquisition.span_hz",
-                f"the band {lo_band:.9g}..{hi_band:.9g} Hz reaches beyond the usable passband "
-                f"{cc + lo_use:.9g}..{cc + hi_use:.9g} Hz of the capture at {cc:.9g} Hz "
+                f"the band {format_frequency_range(lo_band, hi_band, 9)} reaches beyond the "
+                "usable passband "
+                f"{format_frequency_range(cc + lo_use, cc + hi_use, 9)} of the capture at "
+                f"{format_frequency(cc, 9)} "
                 f"({info.usable_fraction:g} of {fs:g} samples/s; the edges are the anti-alias "
                 "roll-off)",
                 fix="narrow span_hz, or capture at a higher sample rate / closer centre",
@@ -295,7 +298,7 @@ class SampledAnalyzer(Analyzer):
         if index.size < 3:
             raise InputError(
                 "acquisition.rbw_hz",
-                f"the band holds {index.size} bins at {plan.bin_hz:g} Hz per bin",
+                f"the band holds {index.size} bins at {format_frequency(plan.bin_hz)} per bin",
                 fix="lower rbw_hz or widen span_hz",
             )
         excluded = (
@@ -347,7 +350,7 @@ class SampledAnalyzer(Analyzer):
         except RecordingsExhausted as exc:
             raise MeasurementError(
                 f"the recording has {exc.left} samples left, fewer than one segment of "
-                f"{g.plan.length} at {g.capture_center_hz:.9g} Hz",
+                f"{g.plan.length} at {format_frequency(g.capture_center_hz, 9)}",
                 fix="record longer (at least time_limit_s per state), or lower max_averages / "
                 "raise target_u_nf_db",
             ) from None
@@ -363,8 +366,8 @@ class SampledAnalyzer(Analyzer):
             )
         if abs(block.center_hz - g.capture_center_hz) > 1e-6 * fs:
             raise MeasurementError(
-                f"the source returned a capture at {block.center_hz:.9g} Hz, not "
-                f"{g.capture_center_hz:.9g} Hz",
+                f"the source returned a capture at {format_frequency(block.center_hz, 9)}, not "
+                f"{format_frequency(g.capture_center_hz, 9)}",
                 source=self.source.info.identity,
             )
         if block.is_complex != g.complex_capture:
@@ -416,7 +419,7 @@ class SampledAnalyzer(Analyzer):
         if clipped > artefacts.MAX_CLIPPED_FRACTION:
             raise MeasurementError(
                 f"{clipped:.2e} of the samples are at full scale (clipped) in the capture "
-                f"at {g.capture_center_hz:.9g} Hz",
+                f"at {format_frequency(g.capture_center_hz, 9)}",
                 fix="lower the receiver gain or add attenuation, then recalibrate the scale",
             )
         dc_dbfs = None

@@ -32,6 +32,7 @@ from noisebench.errors import InputError, MeasurementError
 from noisebench.sampled import artefacts
 from noisebench.sampled.source import SampleBlock
 from noisebench.sampled.welch import DEFAULT_WINDOW, plan_segments, welch_density
+from noisebench.units import format_frequency, format_frequency_range
 
 #: a tone must stand this far above the noise in its integration band, dB
 MIN_TONE_SNR_DB = 30.0
@@ -138,7 +139,8 @@ def scale_from_tone(
     if abs(rf[k] - tone_freq_hz) > plan.bin_hz:
         raise InputError(
             "tone_freq_hz",
-            f"{tone_freq_hz:.9g} Hz is outside the capture ({rf[0]:.9g}..{rf[-1]:.9g} Hz)",
+            f"{format_frequency(tone_freq_hz, 9)} is outside the capture "
+            f"({format_frequency_range(rf[0], rf[-1], 9)})",
             fix="tune the receiver to the tone",
         )
     lo, hi = max(0, k - TONE_HALF_BINS), min(psd.size, k + TONE_HALF_BINS + 1)
@@ -148,7 +150,8 @@ def scale_from_tone(
     noise_fs2 = floor * plan.bin_hz * band.size
     if tone_fs2 <= 0 or 10 * math.log10(tone_fs2 / max(noise_fs2, 1e-300)) < MIN_TONE_SNR_DB:
         raise MeasurementError(
-            f"the tone at {tone_freq_hz:.9g} Hz is less than {MIN_TONE_SNR_DB:g} dB above the "
+            f"the tone at {format_frequency(tone_freq_hz, 9)} is less than {MIN_TONE_SNR_DB:g} dB "
+            "above the "
             "noise in its band",
             fix="raise the generator level (staying below the receiver's full scale)",
         )
@@ -161,7 +164,8 @@ def scale_from_tone(
         u_rel=u_rel,
         u_reference_db=u_level_db,
         freq_hz=float(tone_freq_hz),
-        reference=reference or f"tone {tone_power_dbm:g} dBm at {tone_freq_hz:.9g} Hz",
+        reference=reference
+        or f"tone {tone_power_dbm:g} dBm at {format_frequency(tone_freq_hz, 9)}",
     )
 
 

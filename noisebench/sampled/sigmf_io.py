@@ -45,6 +45,7 @@ from noisebench.sampled.source import (
     SampleBlock,
     SourceInfo,
 )
+from noisebench.units import format_frequency
 
 logger = logging.getLogger(__name__)
 
@@ -219,7 +220,7 @@ class SigmfRecordings:
                 "sweep",
                 f"no recording covers {center_hz - span_hz / 2:.9g}..{center_hz + span_hz / 2:.9g} "
                 f"Hz (recorded centres {[f'{c:.9g}' for c in self.centers_hz()]} Hz, usable "
-                f"+/- {half:.6g} Hz each)",
+                f"+/- {format_frequency(half)} each)",
                 fix="measure at recorded frequencies or narrow span_hz",
             )
         return min(fits, key=lambda c: abs(c - center_hz))
@@ -244,7 +245,7 @@ class SigmfRecordings:
             if not candidates:
                 raise MeasurementError(
                     f"no {state} recording on the {connection} connection at "
-                    f"{request.center_hz:.9g} Hz in sigmf://{self.folder}",
+                    f"{format_frequency(request.center_hz, 9)} in sigmf://{self.folder}",
                     fix=f"record it, annotated {KEY_CONNECTION}={connection!r} "
                     f"{KEY_STATE}={state!r}",
                 )

@@ -37,6 +37,7 @@ from scipy import signal
 
 from noisebench.errors import InputError
 from noisebench.science.filters import FilterKind, RbwFilter, window_b3_bins
+from noisebench.units import format_frequency
 
 #: windows the sampled analyzer offers, with their default segment overlap (fraction of a
 #: segment). Overlaps are common practice: about where more overlap stops adding independent
@@ -194,7 +195,7 @@ def plan_segments(
     if length > MAX_SEGMENT:
         raise InputError(
             "acquisition.rbw_hz",
-            f"{rbw:g} Hz needs segments of {length} samples at {fs:g} samples/s "
+            f"{format_frequency(rbw)} needs segments of {length} samples at {fs:g} samples/s "
             f"(at most {MAX_SEGMENT})",
             fix="raise rbw_hz",
         )

@@ -30,6 +30,7 @@ from scipy import stats
 
 from noisebench.errors import InputError
 from noisebench.science.density import NoiseDensity
+from noisebench.units import format_frequency
 
 SCATTER_ALPHA = 1e-3
 """False-alarm probability of the between-reading scatter test."""
@@ -68,7 +69,7 @@ def combine_densities(
         if not math.isclose(d.freq_hz, f0, rel_tol=1e-9):
             raise InputError(
                 "parts.freq_hz",
-                f"readings at {d.freq_hz:.9g} and {f0:.9g} Hz cannot be combined",
+                f"readings at {d.freq_hz:.9g} and {format_frequency(f0, 9)} cannot be combined",
                 fix="combine readings of one frequency",
             )
     weights = [_weight(d) for d in parts]

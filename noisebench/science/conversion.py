@@ -85,6 +85,7 @@ from noisebench.science.physics import (
     checked_array,
     scalar_or_array,
 )
+from noisebench.units import format_frequency
 
 __all__ = [
     "Sideband",
@@ -159,8 +160,9 @@ def _finish(rf: np.ndarray, lo: np.ndarray, if_: np.ndarray, field: str) -> Freq
         idx = int(np.flatnonzero(image <= 0)[0])
         raise InputError(
             field,
-            f"point {idx} (RF {rf[idx]:.6g} Hz, LO {lo[idx]:.6g} Hz) puts the image at "
-            f"{image[idx]:.6g} Hz (not > 0): the LO is below the IF",
+            f"point {idx} (RF {format_frequency(rf[idx])}, LO {format_frequency(lo[idx])}) puts "
+            "the image at "
+            f"{format_frequency(image[idx])} (not > 0): the LO is below the IF",
             fix="use an LO above the IF (LO > IF), or the other sideband",
         )
     sidebands = tuple(
@@ -178,13 +180,16 @@ def plan_fixed_lo(rf_hz: ArrayLike, lo_hz: float) -> FrequencyPlan:
     lo = np.full_like(rf, float(lo_arr[0]))
     if np.any(rf == lo):
         raise InputError(
-            "rf_hz", f"includes the LO frequency {lo[0]:.6g} Hz (IF = 0)", fix="exclude the LO"
+            "rf_hz",
+            f"includes the LO frequency {format_frequency(lo[0])} (IF = 0)",
+            fix="exclude the LO",
         )
     above = rf > lo
     if above.any() and not above.all():
         raise InputError(
             "rf_hz",
-            f"lies on both sides of the LO ({lo[0]:.6g} Hz): the sideband would change mid-sweep "
+            f"lies on both sides of the LO ({format_frequency(lo[0])}): the sideband would change "
+            "mid-sweep "
             "and the image would sweep through the signal band",
             fix="sweep RF on one side of the LO, or split the sweep into two plans",
         )
@@ -209,7 +214,8 @@ def plan_fixed_if(rf_hz: ArrayLike, if_hz: float, sideband: Sideband | str) -> F
         idx = int(np.flatnonzero(lo <= 0)[0])
         raise InputError(
             "rf_hz",
-            f"point {idx} ({rf[idx]:.6g} Hz) is not above the IF ({if_[0]:.6g} Hz), so the "
+            f"point {idx} ({format_frequency(rf[idx])}) is not above the IF "
+            f"({format_frequency(if_[0])}), so the "
             "upper-sideband LO would be <= 0",
             fix="use RF above the IF, or the lower sideband",
         )
@@ -231,8 +237,9 @@ def plan_triples(rf_hz: ArrayLike, lo_hz: ArrayLike, if_hz: ArrayLike) -> Freque
         idx = int(np.flatnonzero(bad)[0])
         raise InputError(
             f"triples[{idx}]",
-            f"IF {if_[idx]:.9g} Hz is not |RF - LO| = {diff[idx]:.9g} Hz "
-            f"(RF {rf[idx]:.9g} Hz, LO {lo[idx]:.9g} Hz)",
+            f"IF {format_frequency(if_[idx], 9)} is not |RF - LO| = "
+            f"{format_frequency(diff[idx], 9)} "
+            f"(RF {format_frequency(rf[idx], 9)}, LO {format_frequency(lo[idx], 9)})",
             fix="this tool measures difference-frequency conversion: IF = |RF - LO|",
         )
     return _finish(rf, lo, if_, "triples")

@@ -61,6 +61,7 @@ from scipy import special
 
 from noisebench.bench.acquisition import AcquisitionSettings, AveragingScale, Detector
 from noisebench.errors import InputError
+from noisebench.units import format_frequency
 
 C_DB = 10.0 / math.log(10.0)  # dB per neper of power: 10 / ln 10 = 4.342945
 
@@ -410,7 +411,7 @@ def point_model_for(settings: AcquisitionSettings, *, field: str = "settings") -
             raise InputError(
                 f"{field}.detector_samples",
                 f"is unknown while the VBW "
-                f"({settings.vbw_hz:g} Hz) smooths the detected noise on the "
+                f"({format_frequency(settings.vbw_hz)}) smooths the detected noise on the "
                 f"{settings.averaging_scale.value} scale, so its bias is not known",
                 fix=f"report detector_samples, set VBW >= {VBW_SMOOTHING_RATIO:g} x RBW, "
                 "or average on the power scale",

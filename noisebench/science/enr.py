@@ -56,6 +56,7 @@ from noisebench.errors import InputError
 from noisebench.science.physics import FloatOrArray
 from noisebench.science.ranges import check_range, frequency_column_problem
 from noisebench.science.tables import read_table_text
+from noisebench.units import format_frequency, format_frequency_range
 from noisebench.user_files import MAX_TABLE_ROWS, list_problems
 
 logger = logging.getLogger(__name__)
@@ -142,9 +143,9 @@ def _column_problems(
         if not math.isfinite(f) or f <= 0:
             problems.append((i, "freq_hz", f"must be finite and > 0 (got {f!r})"))
         elif f > FREQ_MAX_HZ:
-            problems.append((i, "freq_hz", f"{f:.6g} Hz is above 1 THz: check the unit"))
+            problems.append((i, "freq_hz", f"{format_frequency(f)} is above 1 THz: check the unit"))
         elif i and math.isfinite(freq_hz[i - 1]) and f <= freq_hz[i - 1]:
-            prev = f"{freq_hz[i - 1]:.6g} Hz"
+            prev = f"{format_frequency(freq_hz[i - 1])}"
             msg = (
                 f"repeats {prev}"
                 if f == freq_hz[i - 1]
@@ -292,7 +293,8 @@ class EnrTable(BaseModel):
                 bad = float(np.ravel(f[outside])[0])
                 raise InputError(
                     "freq_hz",
-                    f"{bad:.6g} Hz is outside the ENR table's range {lo:.6g}..{hi:.6g} Hz",
+                    f"{format_frequency(bad)} is outside the ENR table's range "
+                    f"{format_frequency_range(lo, hi)}",
                     fix="extend the table or allow extrapolate='clamp'",
                     serial=self.metadata.serial,
                 )

@@ -70,6 +70,7 @@ from noisebench.science.filters import (
     time_power_correlation,
 )
 from noisebench.science.plausibility import check_trace_values
+from noisebench.units import format_frequency, format_frequency_range
 
 logger = logging.getLogger(__name__)
 
@@ -625,7 +626,9 @@ def _find_spurs(
             spurs.append(float(f[peak]))
             widths.append(half)
     if spurs:
-        logger.debug("excluded %d spur(s) at %s Hz", len(spurs), spurs)
+        logger.debug(
+            "excluded %d spur(s) at %s", len(spurs), ", ".join(map(format_frequency, spurs))
+        )
     order = np.argsort(spurs)
     return excluded, np.asarray(spurs)[order], np.asarray(widths)[order]
 
@@ -701,7 +704,8 @@ def _select_band(
         if freq_hz is not None and abs(freq_hz - lo) > s.enbw_hz / 2:
             raise InputError(
                 "freq_hz",
-                f"{freq_hz:g} Hz is not within the RBW of the zero-span trace at {lo:g} Hz",
+                f"{format_frequency(freq_hz)} is not within the RBW of the zero-span trace at "
+                f"{format_frequency(lo)}",
                 fix="estimate at the trace's centre",
             )
         report, band = (lo if freq_hz is None else freq_hz), whole
@@ -712,7 +716,8 @@ def _select_band(
             if freq_hz is not None and not lo - spacing / 2 <= freq_hz <= hi + spacing / 2:
                 raise InputError(
                     "freq_hz",
-                    f"{freq_hz:g} Hz is outside the trace ({lo:g}..{hi:g} Hz)",
+                    f"{format_frequency(freq_hz)} is outside the trace "
+                    f"({format_frequency_range(lo, hi)})",
                     fix="use a trace that covers it",
                 )
             band = whole
@@ -721,7 +726,9 @@ def _select_band(
             if report - half < lo - spacing / 2 or report + half > hi + spacing / 2:
                 raise InputError(
                     "band_hz",
-                    f"{report:g} +/- {half:g} Hz extends beyond the trace ({lo:g}..{hi:g} Hz)",
+                    f"{format_frequency(report)} +/- {format_frequency(half)} extends beyond the "
+                    "trace "
+                    f"({format_frequency_range(lo, hi)})",
                     fix="narrow the band or widen the span",
                 )
             tol = half * 1e-12 + 1e-9 * spacing
@@ -760,9 +767,9 @@ def _estimate_band(
     if scatter_ratio is not None and p.rel_var is not None:
         if scatter_ratio > _widen_limit(stats_, p.model):
             logger.debug(
-                "scatter %.2fx the prediction at %.6g Hz: uncertainty widened",
+                "scatter %.2fx the prediction at %s: uncertainty widened",
                 scatter_ratio,
-                report_hz,
+                format_frequency(report_hz),
             )
             rel_u *= scatter_ratio
     density = mean * p.to_density

@@ -46,6 +46,7 @@ from pydantic import BaseModel, ConfigDict, Field, field_serializer, field_valid
 from noisebench.errors import InputError
 from noisebench.science.ranges import check_range, frequency_column_problem
 from noisebench.science.tables import read_table_text
+from noisebench.units import format_frequency, format_frequency_range
 from noisebench.user_files import MAX_TOUCHSTONE_BYTES, check_file_size, check_row_count
 
 logger = logging.getLogger(__name__)
@@ -191,7 +192,8 @@ class GainTable(BaseModel):
                 bad = float(f[outside][0])
                 raise InputError(
                     "freq_hz",
-                    f"{bad:.6g} Hz is outside the range {lo:.6g}..{hi:.6g} Hz of {self.source}",
+                    f"{format_frequency(bad)} is outside the range "
+                    f"{format_frequency_range(lo, hi)} of {self.source}",
                     value=bad,
                     fix="extend the table, or allow clamping at its edges",
                 )
@@ -461,7 +463,9 @@ def _read_touchstone(path: Path, u_gain_db: float | None) -> GainTable:
     magnitude = np.abs(network.s[:, 1, 0])
     if np.any(magnitude <= 0):
         bad = float(network.f[np.argmax(magnitude <= 0)])
-        raise InputError(f"{path.name}, S21", f"is zero at {bad:.6g} Hz (no transmission)")
+        raise InputError(
+            f"{path.name}, S21", f"is zero at {format_frequency(bad)} (no transmission)"
+        )
     with np.errstate(invalid="ignore"):
         gain = 20.0 * np.log10(magnitude)
     u = None if u_gain_db is None else np.full(gain.shape, float(u_gain_db))

@@ -46,6 +46,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 from noisebench.errors import InputError, input_error_from_validation
 from noisebench.science.point import VERDICT_BLOCKING_FLAGS, PointResult
 from noisebench.science.ranges import check_range, warn_unusual
+from noisebench.units import format_frequency, format_frequency_range
 
 __all__ = [
     "BandVerdict",
@@ -182,7 +183,7 @@ class LimitBand(BaseModel):
     def _after_start(cls, stop: float, info: Any) -> float:
         start = info.data.get("start_hz")
         if start is not None and not stop > start:
-            raise ValueError(f"must be above start_hz ({start!r} Hz)")
+            raise ValueError(f"must be above start_hz ({format_frequency(start, 12)})")
         return stop
 
     @field_validator("nf_max_db", "gain_min_db", "gain_max_db")
@@ -391,7 +392,7 @@ def _guard_for(point: PointResult, given: Any, k_default: float) -> _NfGuard:
     if isinstance(given, bool):
         raise InputError(
             "uncertainties",
-            f"got a bool for {point.freq_hz:.6g} Hz",
+            f"got a bool for {format_frequency(point.freq_hz)}",
             fix="pass budgets, expanded uncertainties in dB, or None",
         )
     if isinstance(given, (int, float)):
@@ -401,7 +402,7 @@ def _guard_for(point: PointResult, given: Any, k_default: float) -> _NfGuard:
     if not isinstance(data, Mapping) or "U_expanded_db" not in data:
         raise InputError(
             "uncertainties",
-            f"entry for {point.freq_hz:.6g} Hz is neither a budget nor a number",
+            f"entry for {format_frequency(point.freq_hz)} is neither a budget nor a number",
             fix="pass Budget objects or their dicts",
         )
     budget_freq = data.get("freq_hz")
@@ -410,7 +411,8 @@ def _guard_for(point: PointResult, given: Any, k_default: float) -> _NfGuard:
     ):
         raise InputError(
             "uncertainties",
-            f"budget at {budget_freq:.9g} Hz given for the point at {point.freq_hz:.9g} Hz",
+            f"budget at {format_frequency(budget_freq, 9)} given for the point at "
+            f"{format_frequency(point.freq_hz, 9)}",
             fix="keep budgets in the points' order",
         )
     u = _checked_u(point, data["U_expanded_db"])
@@ -436,7 +438,7 @@ def _checked_u(point: PointResult, value: Any) -> float:
         raise InputError(
             "uncertainties",
             f"expanded uncertainty {value!r} for "
-            f"{point.freq_hz:.6g} Hz must be a finite number >= 0 dB",
+            f"{format_frequency(point.freq_hz)} must be a finite number >= 0 dB",
         )
     return float(value)
 
@@ -662,7 +664,8 @@ def _band_verdicts(
         if not members:
             label = band.name or f"bands[{i}]"
             notes.append(
-                f"{label} ({band.start_hz:.6g}-{band.stop_hz:.6g} Hz) holds no measured point"
+                f"{label} ({format_frequency_range(band.start_hz, band.stop_hz)}) holds no "
+                "measured point"
             )
             verdict = Verdict.INDETERMINATE if mask.require_coverage else Verdict.NOT_JUDGED
         out.append(

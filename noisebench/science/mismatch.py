@@ -21,6 +21,7 @@ from noisebench.science.propagation import (
     Distribution,
     standard_uncertainty_from_half_width,
 )
+from noisebench.units import format_frequency, format_frequency_range
 from noisebench.user_files import MAX_TOUCHSTONE_BYTES, check_file_size, check_row_count
 
 logger = logging.getLogger(__name__)
@@ -164,7 +165,8 @@ def _reflection_at(path: str | Path, port: int, freq_hz: float, base_dir: Path |
     if freq_hz < freq[0] or freq_hz > freq[-1]:
         raise InputError(
             "touchstone",
-            f"{full}: {freq_hz:.6g} Hz is outside the file's range {freq[0]:.6g}-{freq[-1]:.6g} Hz",
+            f"{full}: {format_frequency(freq_hz)} is outside the file's range "
+            f"{format_frequency_range(freq[0], freq[-1])}",
             value=freq_hz,
             fix="use a file that covers the sweep, or give |Gamma| directly",
         )

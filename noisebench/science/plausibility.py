@@ -16,6 +16,7 @@ import numpy as np
 
 from noisebench.errors import InputError
 from noisebench.science.ranges import RANGES
+from noisebench.units import format_frequency
 
 SCPI_NOT_A_NUMBER = 9.91e37
 """SCPI-1999 Vol. 1 §7.2.1.5: NaN is sent as 9.91E+37; +/-infinity as +/-9.9E+37."""
@@ -87,6 +88,6 @@ def _where_fn(freq_hz: np.ndarray | None):
     def where(i: int) -> str:
         if freq_hz is None or i >= np.size(freq_hz):
             return ""
-        return f" ({float(np.asarray(freq_hz)[i]):.6g} Hz)"
+        return f" ({format_frequency(float(np.asarray(freq_hz)[i]))})"
 
     return where

@@ -20,6 +20,7 @@ import math
 from dataclasses import dataclass
 
 from noisebench.errors import InputError
+from noisebench.units import format_frequency
 
 logger = logging.getLogger(__name__)
 
@@ -285,7 +286,8 @@ def frequency_column_problem(freqs_hz: list[float], column: str) -> str | None:
     if column != "freq_hz" or not finite or usual is None or max(finite) >= usual:
         return None
     return (
-        f"every frequency is below {usual:g} Hz (highest {max(finite):g} Hz): the numbers look "
+        f"every frequency is below {format_frequency(usual)} (highest "
+        f"{format_frequency(max(finite))}): the numbers look "
         "like MHz or GHz under a freq_hz header; name the column freq_mhz or freq_ghz (or "
         "freq_khz for a table that really lies below 1 MHz)"
     )

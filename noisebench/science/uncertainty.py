@@ -101,6 +101,7 @@ from noisebench.science.uncertainty_budget import Budget, Contribution
 from noisebench.science.uncertainty_gain import gain_method_budget
 from noisebench.science.uncertainty_inputs import ExtraTerm, UncertaintyInputs
 from noisebench.science.uncertainty_yfactor import y_factor_budget
+from noisebench.units import format_frequency
 
 logger = logging.getLogger(__name__)
 
@@ -190,7 +191,7 @@ def _need(point: PointResult, dens: Mapping[str, float], keys: Sequence[str]) ->
     if missing:
         raise InputError(
             "densities_w_per_hz",
-            f"point at {point.freq_hz:.6g} Hz lacks {', '.join(missing)}",
+            f"point at {format_frequency(point.freq_hz)} lacks {', '.join(missing)}",
             fix="use a point produced by the methods",
         )
 
@@ -210,7 +211,7 @@ def _gain_point_budget(
     if gain_db is None:
         raise InputError(
             "gain_db",
-            f"gain-method point at {point.freq_hz:.6g} Hz has no gain",
+            f"gain-method point at {format_frequency(point.freq_hz)} has no gain",
             fix="the gain method needs the DUT gain",
         )
     keys = ("dut", "floor") if "floor" in dens else ("dut",)
@@ -262,7 +263,7 @@ def _y_point_budget(
     if point.enr_db is None:
         raise InputError(
             "enr_db",
-            f"Y-factor point at {point.freq_hz:.6g} Hz has no ENR",
+            f"Y-factor point at {format_frequency(point.freq_hz)} has no ENR",
             fix="use a point produced by the Y-factor method",
         )
     corrected = "hot_cal" in dens and "cold_cal" in dens
@@ -344,8 +345,8 @@ def _density_u(
     u_probe = math.sqrt(sum(c.contribution_db**2 for c in probe.contributions if c.unit == "%"))
     scale = point.u_nf_db / u_probe if u_probe > 0 else 0.0
     logger.debug(
-        "point %.6g Hz: no density u stored; inferred %.4g %% jitter from u_nf_db",
-        point.freq_hz,
+        "point %s: no density u stored; inferred %.4g %% jitter from u_nf_db",
+        format_frequency(point.freq_hz),
         scale,
     )
     return {k: v * scale for k, v in at_1pct.items()}

@@ -41,6 +41,7 @@ from noisebench.science.uncertainty_quantities import (
     _type_b_quantity,
 )
 from noisebench.science.uncertainty_yfactor import _positive_freq
+from noisebench.units import format_frequency
 
 # =========================================================================== gain method
 
@@ -150,7 +151,7 @@ def gain_method_budget(
         and (data.dut - data.floor + BOLTZMANN_J_PER_K * (data.floor_tk or ts_k)) <= 0
     ):
         raise MeasurementError(
-            f"DUT density at {freq_hz:.6g} Hz is not above the floor minus "
+            f"DUT density at {format_frequency(freq_hz)} is not above the floor minus "
             "the termination's kT: no DUT noise left",
             freq_hz=freq_hz,
         )

@@ -43,6 +43,7 @@ from noisebench.science.uncertainty_quantities import (
     _temperature_value,
     _type_b_quantity,
 )
+from noisebench.units import format_frequency
 
 # =========================================================================== Y-factor
 
@@ -355,7 +356,7 @@ def _enr_quantities(
 def _hot_above_cold(freq_hz: float, hot: float, cold: float, what: str) -> None:
     if hot <= cold:
         raise MeasurementError(
-            f"hot density <= cold density{what} at {freq_hz:.6g} Hz: "
+            f"hot density <= cold density{what} at {format_frequency(freq_hz)}: "
             "no Y-factor; check that the noise source switches",
             freq_hz=freq_hz,
         )

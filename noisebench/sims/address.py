@@ -10,6 +10,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from noisebench.errors import InputError
+from noisebench.units import format_frequency_range
 
 
 @dataclass(frozen=True)
@@ -116,6 +117,6 @@ def _check_sim_range(scenario: str, spans_hz: list[tuple[float, float]]) -> list
     shown = ", ".join(f"{f:.6g}" for f in bad[:3]) + (" ..." if len(bad) > 3 else "")
     return [
         f"sweep: {len(bad)} point(s) ({shown} Hz) with their span fall outside the "
-        f"simulated analyzer's range {lo:.6g}..{hi:.6g} Hz (move them inside or narrow "
+        f"simulated analyzer's range {format_frequency_range(lo, hi)} (move them inside or narrow "
         "span_hz)"
     ]

@@ -58,6 +58,7 @@ from noisebench.sims.clock import SimClock
 from noisebench.sims.models import AnalyzerFrontEnd, SpectrumAtInput, dbm_to_w, w_to_dbm
 from noisebench.sims.noisegen import Axis, TraceRecipe, field_kernel, generate_trace
 from noisebench.sims.scenario import AnalyzerSpec
+from noisebench.units import format_frequency, format_frequency_range
 
 logger = logging.getLogger(__name__)
 
@@ -263,8 +264,8 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
         if not sp.min_freq_hz <= req.center_hz <= sp.max_freq_hz:
             raise InputError(
                 "center_hz",
-                f"{req.center_hz:.6g} Hz is outside the analyzer's "
-                f"range {sp.min_freq_hz:.6g}..{sp.max_freq_hz:.6g} Hz",
+                f"{format_frequency(req.center_hz)} is outside the analyzer's "
+                f"range {format_frequency_range(sp.min_freq_hz, sp.max_freq_hz)}",
                 fix="choose a centre frequency inside the range",
             )
         half = min(
@@ -610,7 +611,8 @@ def _marker_band(
     if not lo <= freq_hz <= hi:
         raise InputError(
             "marker.freq_hz",
-            f"{freq_hz:.6g} Hz is outside the trace {s.start_hz:.6g}..{s.stop_hz:.6g} Hz",
+            f"{format_frequency(freq_hz)} is outside the trace "
+            f"{format_frequency_range(s.start_hz, s.stop_hz)}",
             fix="move the marker inside the span or retune the analyzer",
         )
     room = 2.0 * min(freq_hz - lo, hi - freq_hz)  # widest band centred on the marker
@@ -619,15 +621,16 @@ def _marker_band(
         if room <= 0.0:
             raise InputError(
                 "marker.freq_hz",
-                f"{freq_hz:.6g} Hz is on the edge of the trace, so no band fits around it",
+                f"{format_frequency(freq_hz)} is on the edge of the trace, so no band fits around "
+                "it",
                 fix="move the marker inside the span",
             )
         return min(default, room)
     if band_hz > room * (1.0 + 1e-9) + 1e-9 * spacing:
         raise InputError(
             "marker.band_hz",
-            f"{freq_hz:.6g} +/- {band_hz / 2:.6g} Hz extends "
-            f"beyond the trace ({lo:.6g}..{hi:.6g} Hz)",
+            f"{format_frequency(freq_hz)} +/- {format_frequency(band_hz / 2)} extends "
+            f"beyond the trace ({format_frequency_range(lo, hi)})",
             fix="narrow the band, move the marker or widen the span",
         )
     return float(band_hz)

@@ -58,6 +58,7 @@ from noisebench.sims.scenario import (
     load_scenario,
     nest_overrides,
 )
+from noisebench.units import format_frequency_range
 
 logger = logging.getLogger(__name__)
 
@@ -593,7 +594,8 @@ class SimulatedBench:
         if np.any(f < lo * (1 - 1e-12)) or np.any(f > hi * (1 + 1e-12)):
             raise InputError(
                 "freq_hz",
-                f"outside the DUT table {lo:.6g}..{hi:.6g} Hz of scenario {self.scenario.name!r}",
+                f"outside the DUT table {format_frequency_range(lo, hi)} of scenario "
+                f"{self.scenario.name!r}",
                 fix="ask inside the table",
             )
         dut, src, fe = self.dut_model, self.source_model, self.front_end

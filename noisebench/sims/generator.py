@@ -13,6 +13,7 @@ import logging
 from noisebench.bench.instruments import Generator
 from noisebench.errors import InputError
 from noisebench.sims.scenario import GeneratorSpec
+from noisebench.units import format_frequency, format_frequency_range
 
 logger = logging.getLogger(__name__)
 
@@ -37,7 +38,8 @@ class SimGenerator(Generator):
         if not sp.min_freq_hz <= float(freq_hz) <= sp.max_freq_hz:
             raise InputError(
                 "generator.freq_hz",
-                f"{freq_hz!r} Hz is outside {sp.min_freq_hz:.6g}..{sp.max_freq_hz:.6g} Hz",
+                f"{format_frequency(freq_hz, 12)} is outside "
+                f"{format_frequency_range(sp.min_freq_hz, sp.max_freq_hz)}",
                 value=freq_hz,
             )
         if not sp.min_level_dbm <= float(level_dbm) <= sp.max_level_dbm:

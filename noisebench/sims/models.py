@@ -48,6 +48,7 @@ from noisebench.science.physics import (
 )
 from noisebench.science.physics import db_from_ratio as lin_to_db
 from noisebench.science.physics import ratio_from_db as db_to_lin
+from noisebench.units import format_frequency
 
 RAPP_SMOOTHNESS = 2.0
 
@@ -412,7 +413,10 @@ class ConverterModel:
         gs = float(self.response_gain_lin(rf_hz, lo_hz, lo_dbm))
         gi = float(self.response_gain_lin(image, lo_hz, lo_dbm)) if image > 0 else 0.0
         if gs <= 0:
-            raise ValueError(f"no conversion from {rf_hz:.6g} Hz with the LO at {lo_hz:.6g} Hz")
+            raise ValueError(
+                f"no conversion from {format_frequency(rf_hz)} with the LO at "
+                f"{format_frequency(lo_hz)}"
+            )
         te_s = float(self.dut.te_k(rf_hz))
         te_i = float(self.dut.te_k(image)) if gi > 0 else 0.0
         n = gs * (t0_k + te_s) + gi * (t0_k + te_i)

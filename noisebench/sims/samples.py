@@ -27,6 +27,7 @@ from scipy.constants import k as BOLTZMANN_J_PER_K
 
 from noisebench.errors import InputError
 from noisebench.sampled.source import CaptureRequest, SampleBlock, SourceInfo
+from noisebench.units import format_frequency
 
 T0_K = 290.0
 
@@ -142,7 +143,7 @@ class SimSampleReceiver:
         if lowest <= 0:
             raise InputError(
                 "center_hz",
-                f"{request.center_hz:g} Hz is too low for {fs:g} samples/s",
+                f"{format_frequency(request.center_hz)} is too low for {fs:g} samples/s",
                 fix="tune higher",
             )
         clock = self.bench.clock
@@ -256,7 +257,10 @@ def calibrate_tone_scale(
         freq_hz,
         level_dbm - loss_db,
         u_level_db=u_level_db,
-        reference=f"generator {level_dbm:g} dBm at {freq_hz:.9g} Hz less {loss_db:.3f} dB cable",
+        reference=(
+            f"generator {level_dbm:g} dBm at {format_frequency(freq_hz, 9)} less "
+            f"{loss_db:.3f} dB cable"
+        ),
     )
     return cal.model_copy(update={"source_identity": receiver.info.identity})
 
@@ -312,7 +316,7 @@ def record_sigmf(
                 cold_temperature_k=source.cold_temperature_k,
                 usable_fraction=receiver.spec.usable_fraction,
                 description=f"simulated hot/cold recording of scenario {bench.scenario.name!r} "
-                f"(seed {bench.seed}) at {center:.9g} Hz",
+                f"(seed {bench.seed}) at {format_frequency(center, 9)}",
             )
         )
     bench.set_path(SimPath.DUT)

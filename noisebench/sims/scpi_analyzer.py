@@ -38,6 +38,7 @@ from noisebench.bench.acquisition import (
 )
 from noisebench.errors import NoisebenchError
 from noisebench.science.filters import FilterKind
+from noisebench.units import format_frequency
 
 from .analyzer import REF_LEVEL_RANGE_DBM, marker_from_trace
 from .scpi_instruments import (
@@ -653,7 +654,7 @@ class AnalyzerScpi(ScpiInstrument):
                 NumericSpecial.DEFAULT: s.center_hz,
             }[value]
         if not 0.0 < value <= MAX_FREQ_HZ:
-            raise ScpiError(-222, f"marker frequency must be in 0..{MAX_FREQ_HZ:g} Hz")
+            raise ScpiError(-222, f"marker frequency must be in 0..{format_frequency(MAX_FREQ_HZ)}")
         self._marker(call).x_hz = float(value)
 
     def _marker_x(self, marker: MarkerState) -> float:

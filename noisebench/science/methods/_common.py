@@ -10,6 +10,7 @@ from noisebench.errors import InputError, MeasurementError
 from noisebench.science.density import NoiseDensity
 from noisebench.science.physics import T0_K, nf_db_from_te_k, ratio_from_db
 from noisebench.science.point import PointFlag
+from noisebench.units import format_frequency
 
 DEFAULT_SCATTER_LIMIT = 1.5
 """Observed/predicted scatter above which a density is flagged EXCESS_SCATTER.
@@ -131,7 +132,8 @@ def check_same_frequency(reference: NoiseDensity, others: dict[str, NoiseDensity
         if not math.isclose(d.freq_hz, f0, rel_tol=FREQ_REL_TOL):
             raise InputError(
                 f"{name}.freq_hz",
-                f"is {d.freq_hz:.9g} Hz but the point is at {f0:.9g} Hz",
+                f"is {format_frequency(d.freq_hz, 9)} but the point is at "
+                f"{format_frequency(f0, 9)}",
                 fix="combine densities measured at the same frequency",
             )
     return f0
@@ -163,7 +165,8 @@ def check_te_plausible(
     if te_k < 0 and te_k < -NEGATIVE_TE_REFUSE_SIGMAS * u_te_k:
         sigmas = -te_k / u_te_k if u_te_k > 0 else math.inf
         raise MeasurementError(
-            f"{method} at {freq_hz:.6g} Hz: the DUT's noise temperature came out {te_k:.1f} K, "
+            f"{method} at {format_frequency(freq_hz)}: the DUT's noise temperature came out "
+            f"{te_k:.1f} K, "
             f"{sigmas:.3g} standard uncertainties below zero (u = {u_te_k:.3g} K); a noise "
             f"temperature cannot be negative, so the reading is a fault: {causes}",
             freq_hz=freq_hz,

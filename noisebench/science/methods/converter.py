@@ -52,6 +52,7 @@ from noisebench.science.methods.yfactor import (
 )
 from noisebench.science.physics import BOLTZMANN_J_PER_K, DB_PER_NEPER_POWER, T0_K, ArrayLike
 from noisebench.science.point import ConversionInfo, Method, PointFlag, PointResult
+from noisebench.units import format_frequency
 
 __all__ = [
     "ConverterSweep",
@@ -96,7 +97,7 @@ def _through(t, loss, tp):
 def _factor_checks(te_ssb: np.ndarray, r, t0: float, what: str, freq_hz=None) -> None:
     bad = np.asarray(1.0 + r + te_ssb / t0) <= 0
     if np.any(bad):
-        where = f" at {freq_hz:.6g} Hz" if freq_hz is not None else ""
+        where = f" at {format_frequency(freq_hz)}" if freq_hz is not None else ""
         raise MeasurementError(
             f"{what}{where}: noise factor <= 0; the reading is below what the source "
             "terminations alone deliver: check the ENR, the image rejection and the temperatures"
@@ -349,7 +350,8 @@ def _plan_point(rf_hz: float, lo_hz: float, if_hz: float) -> tuple[float, float,
     if not math.isclose(abs(rf - lo), if_hz, rel_tol=FREQ_REL_TOL, abs_tol=1e-3):
         raise InputError(
             "rf_hz",
-            f"|RF - LO| = {abs(rf - lo):.9g} Hz but the densities were read at {if_hz:.9g} Hz",
+            f"|RF - LO| = {format_frequency(abs(rf - lo), 9)} but the densities were read at "
+            f"{format_frequency(if_hz, 9)}",
             fix="read the IF densities at |RF - LO|",
         )
     image = 2.0 * lo - rf
@@ -466,7 +468,7 @@ def converter_y_factor_point(
         if r > 0:
             raise InputError(
                 "enr_image_db",
-                f"is needed: the converter responds at the image ({image:.6g} Hz)",
+                f"is needed: the converter responds at the image ({format_frequency(image)})",
                 fix="extend the ENR table to the image, or declare the image rejection",
             )
         enr_img = enr_rf  # weighted by r = 0: no effect
@@ -544,7 +546,8 @@ def converter_y_factor_point(
     te_ssb = float(props["te_ssb"].value)
     if 1.0 + r + te_ssb / t0 <= 0:
         raise MeasurementError(
-            f"converter Y-factor at RF {rf:.6g} Hz: noise factor <= 0 (Te_SSB = {te_ssb:.1f} K, "
+            f"converter Y-factor at RF {format_frequency(rf)}: noise factor <= 0 (Te_SSB = "
+            f"{te_ssb:.1f} K, "
             f"Y = {10.0 * math.log10(hot.density_w_per_hz / cold.density_w_per_hz):.3f} dB); "
             "check that the noise source drives the RF port and the LO is on, then the ENR at "
             "RF and image, the image rejection and the cold temperature",
@@ -755,7 +758,7 @@ def converter_gain_method_point(
     te_ssb = float(props["te_ssb"].value)
     if 1.0 + r + te_ssb / t0 <= 0:
         raise MeasurementError(
-            f"converter gain method at RF {rf:.6g} Hz: noise factor <= 0 (Te_SSB = "
+            f"converter gain method at RF {format_frequency(rf)}: noise factor <= 0 (Te_SSB = "
             f"{te_ssb:.1f} K); check the conversion gain, the image rejection and the "
             "temperatures",
             freq_hz=rf,
@@ -770,7 +773,8 @@ def converter_gain_method_point(
         analyzer_noise = n_f - BOLTZMANN_J_PER_K * t_term
         if analyzer_noise <= 0:
             raise MeasurementError(
-                f"converter gain method at RF {rf:.6g} Hz: the IF floor reading holds no "
+                f"converter gain method at RF {format_frequency(rf)}: the IF floor reading holds "
+                "no "
                 "analyzer noise above the termination's kT; check floor_temperature_k",
                 freq_hz=rf,
             )

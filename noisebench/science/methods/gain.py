@@ -60,6 +60,7 @@ from noisebench.science.physics import (
     te_k_from_output_density,
 )
 from noisebench.science.point import Method, PointFlag, PointResult
+from noisebench.units import format_frequency
 
 __all__ = ["gain_method_te_k", "gain_method_nf_db", "gain_method_point"]
 
@@ -247,7 +248,8 @@ def gain_method_point(
     )
     if te_k <= -t0:
         raise MeasurementError(
-            f"gain method at {freq_hz:.6g} Hz: noise factor <= 0 (Te = {te_k:.1f} K); the DUT "
+            f"gain method at {format_frequency(freq_hz)}: noise factor <= 0 (Te = {te_k:.1f} K); "
+            "the DUT "
             "reading is below the termination's own noise: check gain_db and the temperatures",
             freq_hz=freq_hz,
         )
@@ -264,7 +266,7 @@ def gain_method_point(
         analyzer_noise = n_f - BOLTZMANN_J_PER_K * t_term
         if analyzer_noise <= 0:
             raise MeasurementError(
-                f"gain method at {freq_hz:.6g} Hz: the floor reading "
+                f"gain method at {format_frequency(freq_hz)}: the floor reading "
                 f"({floor.density_dbm_per_hz:.2f} dBm/Hz) holds no analyzer noise above the "
                 "termination's kT; check floor_temperature_k and that the floor was measured "
                 "on the analyzer input with the same settings",

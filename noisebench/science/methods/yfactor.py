@@ -72,6 +72,7 @@ from noisebench.science.physics import (
     te_k_from_y,
 )
 from noisebench.science.point import Method, PointFlag, PointResult, calibration_point_flags
+from noisebench.units import format_frequency, format_frequency_range
 
 __all__ = [
     "DEFAULT_Y_MIN_DB",
@@ -140,7 +141,7 @@ def _where(freq_hz: ArrayLike | None, mask: np.ndarray) -> str:
     if freq_hz is None:
         return f"element {idx}"
     freqs = np.broadcast_to(np.asarray(freq_hz, dtype=float), np.shape(mask)).ravel()
-    return f"{freqs[idx]:.6g} Hz"
+    return f"{format_frequency(freqs[idx])}"
 
 
 def y_factor(hot: ArrayLike, cold: ArrayLike) -> FloatOrArray:
@@ -253,7 +254,8 @@ def _core(
 def _y_too_close_to_one(freq_hz: float, what: str, y: float) -> MeasurementError:
     """Hot is above cold, but by so little that the model cannot be evaluated around it."""
     return MeasurementError(
-        f"{what} at {freq_hz:.6g} Hz: Y - 1 = {y - 1.0:.2g}, the hot reading is above the cold "
+        f"{what} at {format_frequency(freq_hz)}: Y - 1 = {y - 1.0:.2g}, the hot reading is above "
+        "the cold "
         "one by too little to give a noise figure; the source's excess noise is barely reaching "
         "the analyzer: check that the noise source is driven and connected, that its ENR "
         "suits the DUT, and that the DUT is powered",
@@ -336,8 +338,8 @@ class SystemCalibration(BaseModel):
         freqs = self.frequencies_hz
         raise InputError(
             "freq_hz",
-            f"{f:.9g} Hz has no calibration point (calibrated "
-            f"{len(freqs)} points, {min(freqs):.6g}..{max(freqs):.6g} Hz)",
+            f"{format_frequency(f, 9)} has no calibration point (calibrated "
+            f"{len(freqs)} points, {format_frequency_range(min(freqs), max(freqs))})",
             fix="calibrate at the frequencies you measure",
         )
 
@@ -408,7 +410,8 @@ def calibrate_point(
     te2 = float(prop.value)
     if te2 <= 0:
         raise MeasurementError(
-            f"Y-factor calibration at {freq_hz:.6g} Hz: the system noise temperature came out "
+            f"Y-factor calibration at {format_frequency(freq_hz)}: the system noise temperature "
+            "came out "
             f"{te2:.1f} K (not > 0); check the ENR value, enr_reference and cold_temperature_k",
             freq_hz=freq_hz,
         )
@@ -561,7 +564,8 @@ def y_factor_point(
     )
     if te_k <= -t0:
         raise MeasurementError(
-            f"Y-factor at {freq_hz:.6g} Hz: noise factor <= 0 (Te = {te_k:.1f} K); Y is larger "
+            f"Y-factor at {format_frequency(freq_hz)}: noise factor <= 0 (Te = {te_k:.1f} K); Y "
+            "is larger "
             "than the source's Th/Tc allows: check the ENR, the cold temperature and the "
             "calibration",
             freq_hz=freq_hz,

@@ -1,0 +1,73 @@
+"""Every frequency a person reads goes through ``noisebench.units`` (engineering units:
+``2 GHz``, ``10 MHz to 18 GHz``), never a bare ``:.6g`` / ``%g`` number before ``Hz``
+(``2e+09 Hz``, ``3.3e+09 Hz not measured``)."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import pytest
+
+from noisebench.running.groups import PointGroup
+from noisebench.units import format_frequency
+
+PACKAGE = Path(__file__).resolve().parents[1] / "noisebench"
+
+#: a formatted number right before a frequency unit: f-string fields with a format spec or a
+#: conversion (``{f:.6g} Hz``, ``{f / 1e9:.3f} GHz``, ``{f!r} Hz``) and %-style logging
+#: (``%.6g Hz``, ``%s Hz``)
+NUMBER_BEFORE_UNIT = re.compile(
+    r"(\{[^{}]*(?::[^{}]*|![rs])\}\]?|%[-+ #0-9.]*[gefdis])\s?[kMGT]?Hz\b"
+)
+
+#: places where the text is not read as prose, with the reason
+ALLOWED = {
+    ("sims/samples.py", "{center / 1e6:.6f}MHz"): "a recording's file name, fixed width",
+}
+
+
+def offending_lines(root: Path = PACKAGE) -> list[str]:
+    found = []
+    for path in sorted(root.rglob("*.py")):
+        rel = path.relative_to(root).as_posix()
+        if rel == "units.py":
+            continue
+        for number, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
+            for match in NUMBER_BEFORE_UNIT.finditer(line):
+                if (rel, match.group(0)) not in ALLOWED:
+                    found.append(f"{rel}:{number}: {line.strip()}")
+    return found
+
+
+def test_no_bare_number_before_a_frequency_unit_in_the_package():
+    assert offending_lines() == [], "use noisebench.units.format_frequency"
+
+
+@pytest.mark.parametrize(
+    "line",
+    [
+        'f"{freq_hz:.6g} Hz is outside"',
+        'f"at {f / 1e9:.3f} GHz"',
+        'f"{point.freq_hz!r} Hz is already"',
+        '"point %.6g Hz stored"',
+        'f"range [{low:.6g}, {high:.6g}] Hz"',
+        'f"{span:g}Hz"',
+    ],
+)
+def test_the_scan_sees_each_old_form(line):
+    assert NUMBER_BEFORE_UNIT.search(line)
+
+
+def test_group_descriptions_in_skip_messages_use_engineering_units():
+    # the demo's log said "3.3e+09 Hz not measured (calibration): ..."
+    from dataclasses import replace
+
+    from noisebench.running.plan import AcquisitionPolicy
+
+    group = PointGroup(0, (3.3e9,), AcquisitionPolicy(), 3.3e9, 10e6, 10e6, 201)
+    assert group.describe() == "3.3 GHz"
+    assert replace(group, freqs_hz=(1e9, 2.05e9)).describe() == "1 GHz to 2.05 GHz"
+    converter = replace(group, freqs_hz=(4e8,), lo_hz=2.6e9, rf_hz=(3e9,))
+    assert converter.describe() == "RF 3 GHz (IF 400 MHz, LO 2.6 GHz)"
+    assert format_frequency(1.000000001e9, 10) == "1.000000001 GHz"  # digits kept on request
