@@ -15,10 +15,13 @@ FREQUENCY_UNITS: tuple[tuple[float, str], ...] = (
 )
 
 
-def format_frequency(freq_hz: float, digits: int = 6, *, space: str = " ") -> str:
+def format_frequency(freq_hz: float | None, digits: int = 6, *, space: str = " ") -> str:
     """``freq_hz`` with the largest prefix that keeps the number >= 1, in ``digits``
     significant digits, trailing zeros dropped: ``2e9`` -> ``2 GHz``, ``1.5e6`` -> ``1.5 MHz``.
-    ``space`` joins number and unit (a no-break space in HTML tables)."""
+    ``space`` joins number and unit (a no-break space in HTML tables); None (a setting the
+    instrument did not report) reads ``unknown``."""
+    if freq_hz is None:
+        return "unknown"
     value = float(freq_hz)
     if not math.isfinite(value):
         return f"{value}{space}Hz"

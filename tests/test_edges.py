@@ -434,7 +434,7 @@ def test_enr_table_in_mhz_under_a_freq_hz_header_is_refused_alone(tmp_path):
     problems = validate_enr_file(path)
     assert len(problems) == 1
     assert "enr.csv line 2, freq_hz" in problems[0] and "look like MHz" in problems[0]
-    assert "highest 18000 Hz" in problems[0]
+    assert "highest 18 kHz" in problems[0]
 
 
 @pytest.mark.parametrize(
@@ -537,7 +537,7 @@ def _plan_problems(**sections) -> list[str]:
         ({"corrections": {"input_loss_temperature_k": 25.0}}, "25 degC would be 298.15 K"),
         ({"bench": {"analyzer": "sim://demo-lna?seed=1", "ambient_k": 21.5}}, "bench.ambient_k"),
         ({"corrections": {"source_temperature_k": 77.0}}, "say cryogenic = true"),
-        ({"sweep": {"freqs_hz": [2000.0]}}, "sweep.freqs_hz[0]: 2000 Hz is below the plausible"),
+        ({"sweep": {"freqs_hz": [2000.0]}}, "sweep.freqs_hz[0]: 2 kHz is below the plausible"),
         ({"acquisition": {"rbw_hz": 0.001}}, "looks like kHz or MHz given where Hz is asked"),
         # issue 14's list: values no bench can have
         (

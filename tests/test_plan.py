@@ -105,12 +105,12 @@ def test_cross_field_problems_after_schema_checks():
     )
     data["method"] = "gain"
     assert _problems(data) == [
-        "sweep.segments[0].span_hz: 1000 Hz is narrower than rbw_hz 1e+06 Hz "
+        "sweep.segments[0].span_hz: 1 kHz is narrower than rbw_hz 1 MHz "
         "(use span_hz >= rbw_hz, or 0 for zero span)",
         "sweep.segments[1].min_averages: 50000 exceeds max_averages 20000 "
         "(make min_averages <= max_averages)",
-        "sweep.segments[0]: 1e+09 Hz is also in sweep.freqs_hz (each frequency once)",
-        "sweep.segments[0]: 2e+09 Hz is also in sweep.freqs_hz (each frequency once)",
+        "sweep.segments[0]: 1 GHz is also in sweep.freqs_hz (each frequency once)",
+        "sweep.segments[0]: 2 GHz is also in sweep.freqs_hz (each frequency once)",
         'gain: the gain method needs the DUT gain ([gain] source = "measure", "file" or '
         '"constant")',
     ]
@@ -174,8 +174,8 @@ def test_enr_table_must_cover_the_sweep(tmp_path):
     data = _base(enr={"table": "enr.csv"})
     (line,) = _problems(data, base_dir=tmp_path)
     assert line == (
-        "enr.table: enr.csv covers 1e+09-1.5e+09 Hz but the sweep has 1 point(s) "
-        'outside it (first 2e+09 Hz); narrow the sweep or allow extrapolate = "clamp"'
+        "enr.table: enr.csv covers 1 GHz to 1.5 GHz but the sweep has 1 point(s) "
+        'outside it (first 2 GHz); narrow the sweep or allow extrapolate = "clamp"'
     )
     data["enr"]["extrapolate"] = "clamp"
     assert parse_plan(data, base_dir=tmp_path).enr.extrapolate == "clamp"
@@ -282,7 +282,7 @@ def test_range_forms_are_exclusive():
     assert problems == [
         "sweep.segments[0].freqs_hz: give either freqs_hz or start_hz/stop_hz, not both",
         "sweep.segments[1].points: a range needs points or step_hz (e.g. points = 51)",
-        "sweep.segments[2].stop_hz: 1e+09 Hz is below start_hz 2e+09 Hz (swap them)",
+        "sweep.segments[2].stop_hz: 1 GHz is below start_hz 2 GHz (swap them)",
         "sweep.segments[3].step_hz: a fixed step needs linear spacing (use points with "
         'spacing = "log")',
     ]
@@ -341,8 +341,8 @@ def test_points_outside_the_simulated_analyzer_range_are_refused_before_the_run(
     problems = _problems(data)
     assert any(
         p.startswith(
-            "sweep: 2 point(s) (7.6e+09, 1e+10 Hz) with their span fall "
-            "outside the simulated analyzer's range 9000..7.5e+09 Hz"
+            "sweep: 2 point(s) (7.6 GHz, 10 GHz) with their span fall "
+            "outside the simulated analyzer's range 9 kHz to 7.5 GHz"
         )
         for p in problems
     ), problems

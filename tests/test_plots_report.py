@@ -243,14 +243,16 @@ def test_plot_run_writes_valid_pngs_of_sensible_size(plot_files):
         "densities.png",
         "uncertainty.png",
     ]
-    sizes = [s * DEFAULT_DPI for s in FIGURE_SIZE_IN]
+    width, height = (s * DEFAULT_DPI for s in FIGURE_SIZE_IN)
     for path in plot_files:
         data = path.read_bytes()
         assert path.parent.name == "plots"
         # a fractional pixel count is rounded by some matplotlib versions and truncated by
-        # others (3.10 vs 3.11): either whole number is the figure size asked for
-        for got, want in zip(png_size(data), sizes, strict=True):
-            assert got in (math.floor(want), math.ceil(want)), (got, want)
+        # others (3.10 vs 3.11): either whole number is the width asked for; the height grows
+        # by the legend below the axes (a few rows of 8-pt text)
+        got_width, got_height = png_size(data)
+        assert got_width in (math.floor(width), math.ceil(width)), (got_width, width)
+        assert height - 1 <= got_height <= 1.5 * height, (got_height, height)
         assert 10_000 < len(data) < 1_000_000
         import matplotlib.image
 
@@ -259,8 +261,16 @@ def test_plot_run_writes_valid_pngs_of_sensible_size(plot_files):
 
 
 def test_all_figures_share_one_axes_frame_so_frequency_axes_line_up(record):
+    def frame_in(figure):
+        """Axes left, width, height and distance from the top, inches: the same in every
+        figure, whatever height its legend below adds."""
+        width_in, height_in = figure.get_size_inches()
+        left, bottom, width, height = figure.axes[0].get_position().bounds
+        top = (1.0 - bottom - height) * height_in
+        return tuple(np.round([left * width_in, width * width_in, height * height_in, top], 6))
+
     frames = {
-        tuple(np.round(figure.axes[0].get_position().bounds, 6))
+        frame_in(figure)
         for figure in (
             nf_figure(record),
             gain_figure(record),
@@ -394,7 +404,11 @@ def test_nf_error_bars_are_expanded_when_budgets_exist(record):
 def test_legend_never_wraps_inside_the_coverage_factor(record):
     legend = [t.get_text() for t in nf_figure(record).axes[0].get_legend().get_texts()]
     (text,) = [t for t in legend if t.startswith("NF ±")]
-    assert "k\u00a0=\u00a02" in text and "\n" in text  # wrapped, but not between k, = and 2
+    assert "k\u00a0=\u00a02" in text  # never broken between k, = and 2
+    from noisebench.results.plots import _wrap
+
+    narrow = _wrap("NF ± expanded uncertainty U (k = 2)", 20)
+    assert "\n" in narrow and "k\u00a0=\u00a02" in narrow
 
 
 def test_gain_bars_are_what_the_gain_limits_were_judged_with(record):
@@ -1230,3 +1244,49 @@ def test_series_colours_are_the_cited_okabe_ito_palette():
     assert section.startswith("§17 ") and "Color Universal Design" in section and "2008" in section
     plots_source = (root / "noisebench" / "results" / "plots.py").read_text(encoding="utf-8")
     assert "docs/references.md §17" in plots_source and "our own" not in plots_source.lower()
+
+
+def blank_corner_fraction(png: bytes) -> tuple[float, float]:
+    """(largest rectangle of pure background anchored in the bottom-right corner, share of
+    pure-background rows at the bottom), both as fractions of the image area / height.
+
+    The legend column used to leave such a rectangle below a short legend (about a fifth of
+    the figure); rows of background at the bottom are a figure taller than what it draws."""
+    import matplotlib.image
+
+    image = matplotlib.image.imread(io.BytesIO(png), format="png")[..., :3]
+    background = np.all(np.abs(image - image[-1, -1]) < 1e-6, axis=-1)
+    height, width = background.shape
+    inked = ~background
+    # free width at the right end of each row: distance from the right edge to its last ink
+    last_ink = np.where(inked.any(axis=1), width - 1 - np.argmax(inked[:, ::-1], axis=1), -1)
+    free = width - 1 - last_ink
+    best, narrowest = 0, width
+    for rows in range(1, height + 1):  # grow the rectangle upwards from the bottom row
+        narrowest = min(narrowest, int(free[height - rows]))
+        best = max(best, rows * narrowest)
+    empty_rows = int(np.argmax(inked[::-1].any(axis=1)))
+    return best / (height * width), empty_rows / height
+
+
+#: An 8-pt legend row with its spacing is about 3 % of a figure's height. Below the axes,
+#: the blank corner is what the last, incomplete legend row leaves beside it: at most 2/3 of
+#: the width (three columns, one used) over a title and two wrapped rows (about 10 % of the
+#: height), 0.07 of the area; above 0.08 the layout wastes space. Before the legend moved
+#: below the axes the corner was 0.16-0.22 of each figure (the legend column on the right).
+MAX_BLANK_CORNER = 0.08
+MAX_BLANK_BOTTOM_ROWS = 0.03  # the savefig padding only
+
+
+def test_figures_leave_no_blank_corner_below_their_legend(record):
+    from noisebench.results.plots import FIGURES
+
+    drawn = {}
+    for name, make in FIGURES:
+        figure = make(record)
+        if figure is not None:
+            drawn[name] = blank_corner_fraction(to_png(figure))
+    assert len(drawn) == 4
+    for name, (corner, bottom) in drawn.items():
+        assert corner < MAX_BLANK_CORNER, (name, corner)
+        assert bottom < MAX_BLANK_BOTTOM_ROWS, (name, bottom)

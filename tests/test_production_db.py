@@ -381,7 +381,7 @@ def test_a_point_without_a_budget_is_judged_on_its_statistics_and_warned(judged_
     with_odd = record.model_copy(update={"points": [*record.points, odd]})
     judged = apply_budgets_and_verdict(with_odd, plan)
     assert len(judged.budgets) == len(FREQS_HZ)
-    assert any("no uncertainty budget at 1.5e+09 Hz" in w for w in judged.warnings)
+    assert any("no uncertainty budget at 1.5 GHz" in w for w in judged.warnings)
     entry = judged.verdict_at(1.5e9)
     assert entry["U_nf_db"] == pytest.approx(3.0 * 0.05)  # k * u_nf_db, k from the plan
     assert any("without a budget" in note for note in judged.verdict["notes"])

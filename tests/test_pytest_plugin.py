@@ -152,8 +152,8 @@ def test_options_fixtures_and_the_failure_message(inner: pytest.Pytester):
             "noisebench: bench sim://demo-lna?seed=3, plan *tight.toml",
             "*unit verdict is FAIL, expected PASS: run * (DUT tight-unit, status complete), "
             "rule guarded",
-            "*1e+09 Hz FAIL: nf_db * dB +/- * dB (U), limit <= 0.4 dB: fail",
-            "*2e+09 Hz FAIL: nf_db * dB +/- * dB (U), limit <= 0.4 dB: fail",
+            "*1 GHz FAIL: nf_db * dB +/- * dB (U), limit <= 0.4 dB: fail",
+            "*2 GHz FAIL: nf_db * dB +/- * dB (U), limit <= 0.4 dB: fail",
         ]
     )
     # the helper hides its own frame: the report points at the user's line only
@@ -289,7 +289,7 @@ def test_assert_verdict_lists_every_point_that_did_not_pass():
         "unit verdict is FAIL, expected PASS: run r-1 (DUT SN7, status complete), rule guarded"
     )
     assert lines[1] == (
-        "  1e+09 Hz FAIL: nf_db 1.500 dB +/- 0.140 dB (U), limit <= 1.2 dB: "
+        "  1 GHz FAIL: nf_db 1.500 dB +/- 0.140 dB (U), limit <= 1.2 dB: "
         "fail; gain_db not measured, limit >= 20.0 dB: indeterminate (gain "
         "not measured at this point)"
     )

@@ -49,7 +49,7 @@ def test_a_table_full_of_errors_is_listed_briefly_and_counted(tmp_path):
     path.write_text(_enr_rows(n, repeat=True))
     problems = validate_enr_file(path)
     assert len(problems) == MAX_PROBLEMS_LISTED + 1
-    assert problems[0].endswith("line 3, freq_hz: repeats 1e+06 Hz")
+    assert problems[0].endswith("line 3, freq_hz: repeats 1 MHz")
     assert problems[-1] == f"... and {n - 1 - MAX_PROBLEMS_LISTED} more problems of the same file"
 
 

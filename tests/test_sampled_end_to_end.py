@@ -309,5 +309,5 @@ def test_plan_refuses_a_time_limit_the_recordings_cannot_hold(recordings):
     with pytest.raises(Exception) as info:
         load_plan(plan)
     lines = str(info.value)
-    assert "acquisition.time_limit_s: the points at 1e+09 Hz may read 2 s of each state" in lines
+    assert "acquisition.time_limit_s: the points at 1 GHz may read 2 s of each state" in lines
     assert "the recordings hold 0.3 s" in lines and "record longer" in lines

@@ -52,12 +52,17 @@ from noisebench.science.physics import w_per_hz_to_dbm_per_hz
 logger = logging.getLogger(__name__)
 
 FIGURE_SIZE_IN = (9.0, 4.6)
-#: The axes frame of every figure (left, bottom, width, height as figure fractions); the
-#: legend sits in the column to its right, so the frequency axes of all figures line up.
-AXES_RECT = (0.085, 0.125, 0.645, 0.78)
+#: The axes frame of every figure before its legend is added (left, bottom, width, height as
+#: figure fractions), so the frequency axes of all figures line up. The legend goes below the
+#: axes in columns and the figure grows downwards by exactly its height (a legend column at
+#: the right left about a fifth of each figure blank below a short legend).
+AXES_RECT = (0.085, 0.125, 0.885, 0.78)
+LEGEND_GAP_IN = 0.06  # between the frequency axis label and the legend, inches
+LEGEND_PAD_IN = 0.08  # below the legend, inches
 DENSE_SWEEP_POINTS = 120  # beyond this, uncertainty is drawn as a band, not as error bars
 DEFAULT_DPI = 110
-LEGEND_WIDTH_CHARS = 30
+LEGEND_WIDTH_CHARS = 38
+LEGEND_COLUMNS = 3
 X_MARGIN = 0.02  # fraction of the frequency axis left free beyond the first and last point
 BUDGET_LINES = 6  # contributions drawn one by one; the rest are combined (RSS)
 LOG_AXIS_DECADES = 1.0  # a sweep spanning more than this many decades gets a log axis
@@ -244,28 +249,55 @@ def _new_axes(title: str, ylabel: str, freq_hz: Sequence[float]):
 
 
 def _legend(axes, title: str | None = None) -> None:
-    """The legend in the column right of the axes, long labels wrapped."""
+    """The legend below the axes, in as many columns as fit; the figure grows to hold it."""
     handles, labels = axes.get_legend_handles_labels()
     if not handles:
         return
     order = sorted(range(len(labels)), key=lambda i: _legend_rank(labels[i]))
     handles = [handles[i] for i in order]
     wrapped = [_wrap(labels[i]) for i in order]
+    columns = max(1, min(len(wrapped), LEGEND_COLUMNS))
     legend = axes.legend(
         handles,
         wrapped,
         loc="upper left",
-        bbox_to_anchor=(1.02, 1.0),
+        bbox_to_anchor=(0.0, 0.0),
         borderaxespad=0.0,
         fontsize=8,
         frameon=False,
-        labelspacing=0.7,
-        title=title and _wrap(title),
+        labelspacing=0.5,
+        columnspacing=1.6,
+        ncols=columns,
+        title=title and _wrap(title, LEGEND_WIDTH_CHARS * columns),
         title_fontsize=8,
         alignment="left",
     )
     if title:
         legend.get_title().set_color("#5b6773")
+    _place_below_axis_label(axes, legend)
+
+
+def _place_below_axis_label(axes, legend) -> None:
+    """Move the legend under the frequency axis label and grow the figure by what it needs,
+    keeping the axes' size and position in inches (so all figures' axes line up)."""
+    figure = axes.figure
+    renderer = figure._get_renderer()  # the Agg renderer; the figure has no canvas window
+    dpi = figure.dpi
+    label_bottom_px = axes.get_tightbbox(renderer).y0  # tick labels and axis label included
+    axes_bottom_px = axes.get_window_extent(renderer).y0
+    drop_px = axes_bottom_px - label_bottom_px + LEGEND_GAP_IN * dpi
+    axes_height_px = axes.get_window_extent(renderer).height
+    legend.set_bbox_to_anchor((0.0, -drop_px / axes_height_px), transform=axes.transAxes)
+    legend_px = legend.get_window_extent(renderer).height
+    width_in, height_in = figure.get_size_inches()
+    below_in = (drop_px + legend_px) / dpi + LEGEND_PAD_IN
+    left, bottom, w, h = axes.get_position().bounds
+    extra_in = max(0.0, below_in - bottom * height_in)
+    new_height_in = height_in + extra_in
+    figure.set_size_inches(width_in, new_height_in)
+    axes.set_position(
+        (left, (bottom * height_in + extra_in) / new_height_in, w, h * height_in / new_height_in)
+    )
 
 
 def _legend_rank(label: str) -> int:
@@ -277,9 +309,9 @@ def _legend_rank(label: str) -> int:
     return 2 if label.split(":", 1)[0].replace(" ", "_") in VERDICT_STYLE else 0
 
 
-def _wrap(text: str) -> str:
-    """Legend text wrapped to the legend column, never between ``k``, ``=`` and its value."""
-    return textwrap.fill(text.replace("k = ", "k\u00a0=\u00a0"), LEGEND_WIDTH_CHARS)
+def _wrap(text: str, width: int = LEGEND_WIDTH_CHARS) -> str:
+    """Legend text wrapped to a legend column, never between ``k``, ``=`` and its value."""
+    return textwrap.fill(text.replace("k = ", "k\u00a0=\u00a0"), width)
 
 
 def plain_text(text: str) -> str:

@@ -20,7 +20,7 @@ import math
 from dataclasses import dataclass
 
 from noisebench.errors import InputError
-from noisebench.units import format_frequency
+from noisebench.units import format_frequency, format_frequency_range
 
 logger = logging.getLogger(__name__)
 
@@ -46,7 +46,14 @@ class PhysicalRange:
     purpose_below: float | None = None  # with on_purpose, refuse only below this
 
 
+def _value(x: float, unit: str) -> str:
+    """A value with its unit; frequencies in engineering units (``noisebench.units``)."""
+    return format_frequency(x) if unit == "Hz" else f"{x:g} {unit}"
+
+
 def _span(low: float | None, high: float | None, unit: str) -> str:
+    if unit == "Hz" and low is not None and high is not None:
+        return format_frequency_range(low, high)
     lo = "-inf" if low is None else f"{low:g}"
     hi = "inf" if high is None else f"{high:g}"
     return f"{lo}..{hi} {unit}"
@@ -267,7 +274,7 @@ def _refusal(
     spec: PhysicalRange, x: float, limit: float, hint: str | None, on_purpose: bool
 ) -> str:
     side = "below" if x < limit else "above"
-    text = f"{x:g} {spec.unit} is {side} the plausible {limit:g} {spec.unit}"
+    text = f"{_value(x, spec.unit)} is {side} the plausible {_value(limit, spec.unit)}"
     if hint:
         text += f": {hint}"
         if hint == TEMPERATURE_HINT_C and -100.0 < x < 100.0:

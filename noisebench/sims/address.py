@@ -10,7 +10,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from noisebench.errors import InputError
-from noisebench.units import format_frequency_range
+from noisebench.units import format_frequency, format_frequency_range
 
 
 @dataclass(frozen=True)
@@ -114,9 +114,9 @@ def _check_sim_range(scenario: str, spans_hz: list[tuple[float, float]]) -> list
     bad = [(a + b) / 2 for a, b in spans_hz if a < lo or b > hi]
     if not bad:
         return []
-    shown = ", ".join(f"{f:.6g}" for f in bad[:3]) + (" ..." if len(bad) > 3 else "")
+    shown = ", ".join(format_frequency(f) for f in bad[:3]) + (" ..." if len(bad) > 3 else "")
     return [
-        f"sweep: {len(bad)} point(s) ({shown} Hz) with their span fall outside the "
+        f"sweep: {len(bad)} point(s) ({shown}) with their span fall outside the "
         f"simulated analyzer's range {format_frequency_range(lo, hi)} (move them inside or narrow "
         "span_hz)"
     ]
