@@ -66,7 +66,7 @@ conversion gain known and a floor reading ``N_f = k T_term + N_sa`` at the IF:
 
     Te_SSB = (N_m - N_f + k T_term) / (k G_s) - (T_s + r T_i).                            (6)
 
-References: docs/references.md ("Frequency-converting DUTs"). The rest is common practice.
+References: docs/references.md §10 and §17. The rest is common practice.
 """
 
 from __future__ import annotations

@@ -150,6 +150,7 @@ def _y_core(
     lout,
     tp_out,
     cal=None,  # (hot_cal, cold_cal, enr_if_db, tc_cal) or None
+    gain_scale=1.0,  # the budget's first-order output mismatch on the conversion gain
 ):
     """(Te_SSB of the DUT, DUT conversion gain or None, Y, Te_SSB before the second-stage
     correction or None), all arrays; eqs. 4 and 5 with losses applied to the temperatures."""
@@ -180,7 +181,7 @@ def _y_core(
         )
     th_if = source_hot_temperature_k(ratio_from_db(enr_if_db), tc_cal, t0, ref)
     te2 = te_k_from_y(hc / cc, th_if, tc_cal)
-    g_path = gain_from_hot_cold(hot, cold, hot_in, cold_in, hc, cc, th_if, tc_cal)
+    g_path = gain_from_hot_cold(hot, cold, hot_in, cold_in, hc, cc, th_if, tc_cal) * gain_scale
     te1 = second_stage_corrected_te_k(te12, te2, g_path)
     te_dut, g_dut = deembed_path_te_k(te1, g_path, 1.0, 0.0, lout, tp_out)
     te_unc = deembed_path_te_k(te12, g_path, 1.0, 0.0, lout, tp_out)[0]
@@ -666,6 +667,7 @@ def converter_y_factor_point(
             "enr_correlated": False,
             "enr_reference": enr_reference,
             "cal_enr_db": calibration.enr_db if calibration else None,
+            "u_cal_enr_db": calibration.u_enr_db if calibration else None,
             "cal_cold_temperature_k": calibration.cold_temperature_k if calibration else None,
             "system_te_k": calibration.te_k if calibration else None,
             "system_nf_db": calibration.nf_db if calibration else None,
