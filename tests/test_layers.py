@@ -45,3 +45,22 @@ def test_importing_the_core_and_the_package_loads_no_back_end():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert out.returncode == 0, out.stderr
     assert out.stdout.strip() == "[]"
+
+
+def test_methods_build_their_point_results_in_one_place():
+    """Every method returns its PointResult through methods/_common.build_point_result, so the
+    shared fields, notes and flags cannot drift apart between methods."""
+    builders = {}
+    for path in sorted((PACKAGE / "science" / "methods").glob("*.py")):
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+        calls = [
+            node.lineno
+            for node in ast.walk(tree)
+            if isinstance(node, ast.Call)
+            and isinstance(node.func, ast.Name)
+            and node.func.id == "PointResult"
+        ]
+        if calls:
+            builders[path.name] = calls
+    assert list(builders) == ["_common.py"], builders
+    assert len(builders["_common.py"]) == 1
