@@ -1241,9 +1241,9 @@ def test_series_colours_are_the_cited_okabe_ito_palette():
     root = Path(__file__).resolve().parents[1]
     references = (root / "docs" / "references.md").read_text(encoding="utf-8")
     (section,) = [s for s in references.split("\n## ") if "Okabe" in s]
-    assert section.startswith("§17 ") and "Color Universal Design" in section and "2008" in section
+    assert section.startswith("§18 ") and "Color Universal Design" in section and "2008" in section
     plots_source = (root / "noisebench" / "results" / "plots.py").read_text(encoding="utf-8")
-    assert "docs/references.md §17" in plots_source and "our own" not in plots_source.lower()
+    assert "docs/references.md §18" in plots_source and "our own" not in plots_source.lower()
 
 
 def blank_corner_fraction(png: bytes) -> tuple[float, float]:

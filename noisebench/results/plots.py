@@ -70,7 +70,7 @@ DENSE_TICK_DECADES = 3.0  # up to this many decades the major ticks are 1-2-5, b
 
 # Series colours: not ours - six colours of the published colour-blind-safe palette of
 # M. Okabe and K. Ito, "Color Universal Design (CUD): how to make figures and presentations
-# that are friendly to colorblind people" (2008; docs/references.md §17). matplotlib >= 3.10
+# that are friendly to colorblind people" (2008; docs/references.md §18). matplotlib >= 3.10
 # ships the same colours as its "okabe_ito" colour sequence. Verdict colours: blue, red, amber (stay
 # apart for colour-blind readers, tested with simulated colour-vision deficiency); shapes
 # carry the verdict as well.
