@@ -423,12 +423,15 @@ def test_plan_runs_against_the_scpi_simulator_through_pyvisa(sim_server, tmp_pat
         """
     scpi_bench = (
         f"noise_source = {{ {source}, settle_time_s = 0.02 }}\n        "
-        f'analyzer = {{ resource = "{sim_server.resource("analyzer")}", '
+        # the port from the command line, as the example plans take it
+        'analyzer = { resource = "TCPIP0::127.0.0.1::${NB_TEST_SCPI_PORT}::SOCKET", '
         'profile = "generic", compression_dbm = -3.0 }'
     )
     plan = _write(tmp_path / "scpi.toml", plan_text.format(bench=scpi_bench))
     folder = tmp_path / "run"
-    code, out, err = _run(["-q", "run", plan, "--out", folder], capsys)
+    port = sim_server.ports["analyzer"]
+    define = f"NB_TEST_SCPI_PORT={port}"
+    code, out, err = _run(["-q", "run", plan, "--out", folder, "--define", define], capsys)
     assert code == 0, err
     record = load_run(folder)
     assert record.info.status == "complete"

@@ -21,9 +21,11 @@ fault, 5 measurement refused by the physics, 1 anything else, 130 interrupted (C
 from __future__ import annotations
 
 import argparse
+import contextlib
 import logging
+import os
 import sys
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import TextIO
 
@@ -308,6 +310,14 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("plan", help="plan file (.toml)")
     p.add_argument(
+        "--define",
+        action="append",
+        default=[],
+        metavar="NAME=VALUE",
+        help="value of a ${NAME} placeholder in the plan's [bench] (wins over the environment; "
+        "repeatable), e.g. --define NOISEBENCH_SIM_PORT=5025",
+    )
+    p.add_argument(
         "--resume",
         metavar="FOLDER",
         help="continue an interrupted run in FOLDER (finished points are kept)",
@@ -341,6 +351,14 @@ def build_parser() -> argparse.ArgumentParser:
         "scenario's declared models.",
     )
     p.add_argument("plan", help="plan file (.toml)")
+    p.add_argument(
+        "--define",
+        action="append",
+        default=[],
+        metavar="NAME=VALUE",
+        help="value of a ${NAME} placeholder in the plan's [bench] (wins over the environment; "
+        "repeatable), e.g. --define NOISEBENCH_SIM_PORT=5025",
+    )
     p.set_defaults(func=cmd_estimate)
 
     p = sub.add_parser(
@@ -368,6 +386,14 @@ def build_parser() -> argparse.ArgumentParser:
         "instrument profile, simulator scenario) and check it as that.",
     )
     p.add_argument("path", help="the file to check (.toml, .csv, .s2p)")
+    p.add_argument(
+        "--define",
+        action="append",
+        default=[],
+        metavar="NAME=VALUE",
+        help="value of a ${NAME} placeholder in the plan's [bench] (wins over the environment; "
+        "repeatable), e.g. --define NOISEBENCH_SIM_PORT=5025",
+    )
     p.set_defaults(func=cmd_validate)
 
     p = sub.add_parser(
@@ -510,6 +536,28 @@ def _split_serve(tokens: list[str]) -> tuple[list[str], list[str] | None]:
     return tokens, None
 
 
+@contextlib.contextmanager
+def _defined(items: list[str] | None) -> Iterator[None]:
+    """``--define NAME=VALUE``: the command sees NAME=VALUE as if the environment held it (so
+    every plan it loads, also through validate and station, expands it); restored after."""
+    from noisebench.running.plan_values import parse_defines
+
+    try:
+        values = parse_defines(items)
+    except ValueError as exc:
+        raise InputError("--define", str(exc), fix="write --define NAME=VALUE") from None
+    saved = {name: os.environ.get(name) for name in values}
+    os.environ.update(values)
+    try:
+        yield
+    finally:
+        for name, old in saved.items():
+            if old is None:
+                os.environ.pop(name, None)
+            else:
+                os.environ[name] = old
+
+
 def main(argv: Sequence[str] | None = None, *, out: TextIO | None = None) -> int:
     """Entry point of the ``noisebench`` console script; returns the exit code."""
     out = out or sys.stdout
@@ -525,7 +573,8 @@ def main(argv: Sequence[str] | None = None, *, out: TextIO | None = None) -> int
     _configure_logging(args)
     func: Callable[[argparse.Namespace, TextIO], int] = args.func
     try:
-        return func(args, out)
+        with _defined(getattr(args, "define", None)):
+            return func(args, out)
     except KeyboardInterrupt:
         print("noisebench: interrupted", file=sys.stderr)
         return EXIT_INTERRUPTED

@@ -411,6 +411,14 @@ def _register_station(sub: Any) -> None:
         "report and a database row; the calibration is reused while valid.",
     )
     p.add_argument("plan", help="plan file (.toml)")
+    p.add_argument(
+        "--define",
+        action="append",
+        default=[],
+        metavar="NAME=VALUE",
+        help="value of a ${NAME} placeholder in the plan's [bench] (wins over the environment; "
+        "repeatable), e.g. --define NOISEBENCH_SIM_PORT=5025",
+    )
     p.add_argument("--units", metavar="FILE", help="file of serials / barcode lines, one a line")
     p.add_argument(
         "--unit",

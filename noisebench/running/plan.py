@@ -38,6 +38,7 @@ from __future__ import annotations
 
 import math
 import sys
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Literal
@@ -856,8 +857,13 @@ def parse_plan(
     return plan
 
 
-def load_plan(path: str | Path, *, check_files: bool = True) -> Plan:
-    """Read and validate a TOML plan file. Raises :class:`PlanError` (all problems) or OSError."""
+def load_plan(
+    path: str | Path, *, check_files: bool = True, defines: Mapping[str, str] | None = None
+) -> Plan:
+    """Read and validate a TOML plan file. Raises :class:`PlanError` (all problems) or OSError.
+
+    ``${NAME}`` placeholders in ``[bench]`` take ``defines``, else the environment
+    (:mod:`noisebench.running.plan_values`)."""
     path = Path(path)
     try:
         check_file_size(path, MAX_PLAN_BYTES, field="plan", what="plan")
@@ -873,6 +879,11 @@ def load_plan(path: str | Path, *, check_files: bool = True) -> Plan:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise PlanError([f"not valid TOML: {exc}"], source=str(path)) from None
+    from noisebench.running.plan_values import expand_placeholders
+
+    data, problems = expand_placeholders(data, defines)
+    if problems:
+        raise PlanError(problems, source=str(path))
     return parse_plan(
         data, base_dir=path.resolve().parent, source=str(path), check_files=check_files
     )

@@ -20,6 +20,15 @@ from noisebench.errors import NoisebenchError
 
 from .scpi_server import INSTRUMENTS, SimServer, is_loopback
 
+#: the placeholder names the example plans use for each instrument's port (``${NAME}`` in a
+#: plan's [bench]: noisebench.running.plan_values); ``serve`` prints them with the real ports
+PORT_VARIABLES = {
+    "analyzer": "NOISEBENCH_SIM_PORT",
+    "generator": "NOISEBENCH_SIM_GENERATOR_PORT",
+    "supply": "NOISEBENCH_SIM_SUPPLY_PORT",
+    "lo": "NOISEBENCH_SIM_LO_PORT",
+}
+
 logger = logging.getLogger(__name__)
 
 
@@ -169,6 +178,11 @@ def main(
         )
         for name in INSTRUMENTS:
             print(f"  {name:<10} {server.resource(name)}", file=out)
+        print(
+            "for the example plans (examples/*_scpi_simulator.toml): export "
+            + " ".join(f"{PORT_VARIABLES[name]}={server.ports[name]}" for name in INSTRUMENTS),
+            file=out,
+        )
         print("Ctrl-C to stop.", file=out, flush=True)
         stop.wait(args.duration)
     except KeyboardInterrupt:
