@@ -43,8 +43,10 @@ ArrayLike = float | int | Sequence[float] | np.ndarray
 # The formulas themselves, once: numpy arrays (or floats) in, arrays out, SI units, no input
 # checks (callers validate; inside propagation models the inputs are perturbed copies of checked
 # values). The checked public functions below, the methods, the uncertainty models and the
-# simulator's component models all evaluate these, so the checks against the outside world in
+# running layer all evaluate these, so the checks against the outside world in
 # tests/test_physics.py and tests/test_reference_cascade.py exercise the code a measurement runs.
+# The simulator deliberately does NOT use them (noisebench/sims/models.py has its own forms), so
+# an error here shows up against the simulator instead of cancelling.
 
 
 def ratio_from_db(db: ArrayLike) -> np.ndarray:
