@@ -4,7 +4,7 @@ names, the instrument profiles and the bench addresses."""
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from pydantic import (
@@ -13,9 +13,11 @@ from pydantic import (
 
 from noisebench.bench.addresses import is_simulated
 from noisebench.errors import InputError
-from noisebench.running.plan import Plan
 from noisebench.running.plan_errors import format_validation_error
 from noisebench.science.point import Method
+
+if TYPE_CHECKING:  # annotations only: plan.py loads this module to run the checks
+    from noisebench.running.plan import Plan
 
 # --------------------------------------------------------------------------- cross-field checks
 

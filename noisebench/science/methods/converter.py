@@ -33,6 +33,7 @@ from noisebench.science.methods._common import (
     DEFAULT_LOW_GAIN_DB,
     DEFAULT_SCATTER_LIMIT,
     FREQ_REL_TOL,
+    build_point_result,
     check_density,
     check_loss_db,
     check_non_negative,
@@ -40,7 +41,6 @@ from noisebench.science.methods._common import (
     check_same_frequency,
     check_temperature,
     density_flags,
-    instrument_time_s,
     margin_db,
 )
 from noisebench.science.methods._propagation import propagate
@@ -581,32 +581,32 @@ def converter_y_factor_point(
         margin = margin_db((t_in_cold + te1) * g_path, calibration.te_k)
         nf_unc = _nf_and_slope(float(props["te_unc"].value), r, t0, nf_type)[0]
         correction = nf_unc - nf_db
-        if margin is not None and margin < floor_warning_db:
-            flags.append(PointFlag.NEAR_ANALYZER_FLOOR)
-        if gain_db < low_gain_db:
-            flags.append(PointFlag.LOW_GAIN)
-    if te_ssb < 0:
-        flags.append(PointFlag.NEGATIVE_TE)
     u_te_k = u_nf * (t0 * (1.0 + r + te_ssb / t0)) / DB_PER_NEPER_POWER
     if nf_type == "dsb":
         u_te_k /= 1.0 + r
-    return PointResult(
+    return build_point_result(
         freq_hz=rf,
         method=Method.Y_FACTOR,
         nf_db=nf_db,
         te_k=te_k,
-        gain_db=gain_db,
-        y_db=y_db,
         u_nf_db=u_nf,
         u_te_k=u_te_k,
-        u_gain_db=u_gain_db,
+        densities=densities,
+        timed=[hot, cold],
+        flags=flags,
+        contributions=contributions,
+        contributions_total_key="u_nf_db_with_enr",
+        t0_k=t0,
+        floor_warning_db=floor_warning_db,
+        low_gain_db=low_gain_db,
+        gain_db=gain_db,
         floor_margin_db=margin,
+        negative_te_k=te_ssb,
+        y_db=y_db,
+        u_gain_db=u_gain_db,
         floor_correction_db=correction,
         enr_db=enr_rf,
         source_temperature_k=tc,
-        densities_w_per_hz={k: d.density_w_per_hz for k, d in densities.items()},
-        flags=flags,
-        instrument_time_s=instrument_time_s([hot, cold]),
         conversion=_conversion_info(
             rf,
             lo,
@@ -623,9 +623,6 @@ def converter_y_factor_point(
             lo_level_dbm,
         ),
         notes={
-            "u_densities_w_per_hz": {k: d.u_density_w_per_hz for k, d in densities.items()},
-            "u_nf_db_contributions": contributions,
-            "u_nf_db_with_enr": math.sqrt(sum(c**2 for c in contributions.values())),
             "u_enr_db": u_rf,
             "u_enr_image_db": u_img if r > 0 else None,
             "u_image_rejection_db": u_rej if r > 0 else None,
@@ -644,7 +641,6 @@ def converter_y_factor_point(
             "input_loss_temperature_k": tp_in,
             "output_loss_db": output_loss_db,
             "output_loss_temperature_k": tp_out,
-            "t0_k": t0,
         },
     )
 
@@ -780,30 +776,30 @@ def converter_gain_method_point(
         )
         nf_unc = _nf_and_slope(te_unc, r, t0, nf_type)[0]
         correction = nf_unc - nf_db
-        if margin is not None and margin < floor_warning_db:
-            flags.append(PointFlag.NEAR_ANALYZER_FLOOR)
-    if dut_gain_db < low_gain_db:
-        flags.append(PointFlag.LOW_GAIN)
-    if te_ssb < 0:
-        flags.append(PointFlag.NEGATIVE_TE)
     u_te_k = u_nf * (t0 * (1.0 + r + te_ssb / t0)) / DB_PER_NEPER_POWER
     if nf_type == "dsb":
         u_te_k /= 1.0 + r
-    return PointResult(
+    return build_point_result(
         freq_hz=rf,
         method=Method.GAIN,
         nf_db=nf_db,
         te_k=te_k,
-        gain_db=dut_gain_db,
         u_nf_db=u_nf,
         u_te_k=u_te_k,
-        u_gain_db=u_gain,
+        densities=densities,
+        timed=[dut],
+        flags=flags,
+        contributions=contributions,
+        contributions_total_key="u_nf_db_with_gain",
+        t0_k=t0,
+        floor_warning_db=floor_warning_db,
+        low_gain_db=low_gain_db,
+        gain_db=dut_gain_db,
         floor_margin_db=margin,
+        negative_te_k=te_ssb,
+        u_gain_db=u_gain,
         floor_correction_db=correction,
         source_temperature_k=ts,
-        densities_w_per_hz={k: d.density_w_per_hz for k, d in densities.items()},
-        flags=flags,
-        instrument_time_s=instrument_time_s([dut]),
         conversion=_conversion_info(
             rf,
             lo,
@@ -820,9 +816,6 @@ def converter_gain_method_point(
             lo_level_dbm,
         ),
         notes={
-            "u_densities_w_per_hz": {k: d.u_density_w_per_hz for k, d in densities.items()},
-            "u_nf_db_contributions": contributions,
-            "u_nf_db_with_gain": math.sqrt(sum(c**2 for c in contributions.values())),
             "u_image_rejection_db": u_rej if r > 0 else None,
             "path_gain_db": gain_db,
             "gain_includes_input_loss": bool(gain_includes_input_loss),
@@ -836,6 +829,5 @@ def converter_gain_method_point(
             "output_loss_temperature_k": tp_out,
             "floor_temperature_k": t_term if floor is not None else None,
             "nf_uncorrected_db": nf_unc,
-            "t0_k": t0,
         },
     )
