@@ -68,12 +68,6 @@ def _check_conversion(plan: Plan, *, check_files: bool) -> list[str]:
             "generator at the RF and the analyzer at the IF); give the conversion gain over RF "
             'with source = "file" or "constant"'
         )
-    if plan.uncertainty is not None:
-        problems.append(
-            "uncertainty: full budgets are not available for a frequency-converting DUT yet; "
-            "delete the section (each point keeps its statistical u and the ENR and "
-            "image-rejection contributions in its notes)"
-        )
     lo_bench = plan.bench.lo
     level = section.lo.level_dbm
     if section.lo.source == "generator" and lo_bench is not None and level is not None:
