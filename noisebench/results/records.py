@@ -171,15 +171,17 @@ class RunRecord(BaseModel):
         """The budgets keyed by their ``freq_hz`` (first one wins)."""
         out: dict[float, dict[str, Any]] = {}
         for budget in self.budgets:
-            out.setdefault(budget.get("freq_hz"), budget)
+            freq = budget.get("freq_hz")
+            if freq is not None:  # an entry without a frequency matches no point
+                out.setdefault(freq, budget)
         return out
 
     def verdicts_by_freq(self) -> dict[float, dict[str, Any]]:
         """The per-point verdict entries keyed by ``freq_hz`` (empty without a verdict)."""
         out: dict[float, dict[str, Any]] = {}
         for entry in (self.verdict or {}).get("points") or []:
-            if isinstance(entry, dict):
-                out.setdefault(entry.get("freq_hz"), entry)
+            if isinstance(entry, dict) and entry.get("freq_hz") is not None:
+                out.setdefault(entry["freq_hz"], entry)
         return out
 
     def budget_at(self, freq_hz: float) -> dict[str, Any] | None:

@@ -269,7 +269,7 @@ class SampledAnalyzer(Analyzer):
             cc = float(self.source.center_for(request.center_hz, span))  # type: ignore[attr-defined]
         if complex_capture:
             offsets = np.fft.fftshift(np.fft.fftfreq(plan.length, 1.0 / fs))
-            rf = cc + offsets
+            rf: np.ndarray = cc + offsets
         else:
             offsets = np.fft.rfftfreq(plan.length, 1.0 / fs) - fs / 4.0
             rf = cc + offsets

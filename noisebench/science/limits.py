@@ -41,7 +41,7 @@ import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from enum import Enum
-from typing import Any, Literal
+from typing import Any, Literal, TypeGuard
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
@@ -428,7 +428,7 @@ def _guard_for(point: PointResult, given: Any, k_default: float) -> _NfGuard:
     return _NfGuard(u, nf - u, nf + u, k)
 
 
-def _is_interval(value: Any) -> bool:
+def _is_interval(value: Any) -> TypeGuard[Sequence[float]]:
     return (
         isinstance(value, (list, tuple))
         and len(value) == 2
@@ -488,7 +488,11 @@ def _point_checks(
                     ),
                 )
             )
-        for kind, limit in (("min", band.gain_min_db), ("max", band.gain_max_db)):
+        gain_limits: tuple[tuple[Literal["max", "min"], float | None], ...] = (
+            ("min", band.gain_min_db),
+            ("max", band.gain_max_db),
+        )
+        for kind, limit in gain_limits:
             if limit is not None:
                 checks.append(_gain_check(point, u_gain, kind, limit, i, rule))
     return _withhold_pass(point, checks)
