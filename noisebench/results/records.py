@@ -83,6 +83,10 @@ FLAG_DESCRIPTIONS: dict[PointFlag, str] = {
     PointFlag.NEGATIVE_TE: "The corrected noise temperature came out below zero (within "
     "4 u; further below is refused), which no working DUT does: the point never passes; "
     "check calibration, losses and the DUT supply.",
+    PointFlag.DRIFT: "The hot/cold readings drifted in a way the symmetric schedule cannot "
+    "cancel (the point never passes): repeat after warm-up or in a stabler setting.",
+    PointFlag.GAIN_NOT_MEASURED: "The gain is the stated one (gain file or constant), not "
+    "measured on this unit: a gain limit is not judged (indeterminate).",
     PointFlag.CAL_Y_TOO_SMALL: "The system calibration used here had a Y-factor close to 1: "
     "its second-stage correction is noisy; use a higher-ENR source.",
     PointFlag.CAL_TIME_LIMIT: "The calibration used here stopped at its time limit before its "
