@@ -39,7 +39,7 @@ import io
 import logging
 import math
 import textwrap
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -298,7 +298,7 @@ def to_png(figure, dpi: int = DEFAULT_DPI) -> bytes:
 # ----------------------------------------------------------------------------- data helpers
 
 
-def coverage_text(budgets: Sequence[dict[str, Any] | None]) -> str:
+def coverage_text(budgets: Sequence[Mapping[str, Any] | None]) -> str:
     """``k = 2`` when every budget has the same coverage factor, else ``k per point``."""
     ks = {b.get("k") for b in budgets if b}
     k = ks.pop() if len(ks) == 1 else None

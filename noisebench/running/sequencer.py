@@ -302,7 +302,8 @@ class Sequencer(SwitchedSweep, GainStep, VerdictStep):
         if not groups:
             return
         self._calibrate_all(groups, writer)
-        if self.plan.method is Method.GAIN and self.corrections.gain is None:  # type: ignore
+        assert self.corrections is not None  # resolved in __init__
+        if self.plan.method is Method.GAIN and self.corrections.gain is None:
             self._measure_gain(groups, writer)
         self.session.connect(Connection.DUT)
         if self._switched(groups):
