@@ -57,6 +57,7 @@ try:  # SQLAlchemy is an optional extra ("db"); fail with a clear message when i
         create_engine,
         event,
         func,
+        insert,
         select,
         text,
     )
@@ -264,7 +265,7 @@ class ResultsDatabase:
                     info = conn.execute(select(_SchemaInfo.version)).first()
                     if info is None:
                         conn.execute(
-                            _SchemaInfo.__table__.insert().values(
+                            insert(_SchemaInfo).values(
                                 id=1, version=SCHEMA_VERSION, created_at=datetime.now(timezone.utc)
                             )
                         )
@@ -565,7 +566,7 @@ class ResultsDatabase:
                     UnitRun(
                         run_id=r.run_id,
                         started_at=r.started_at,
-                        station=stations.get(r.station_id),
+                        station=None if r.station_id is None else stations.get(r.station_id),
                         method=r.method,
                         status=r.status,
                         verdict=r.verdict,
@@ -591,7 +592,7 @@ class ResultsDatabase:
         if table not in models:
             raise InputError("table", f"unknown table {table!r}", fix=f"one of {sorted(models)}")
         with Session(self.engine) as s:
-            return int(s.scalar(select(func.count()).select_from(models[table])))
+            return int(s.execute(select(func.count()).select_from(models[table])).scalar_one())
 
     def close(self) -> None:
         self.engine.dispose()

@@ -134,6 +134,17 @@ class Priors:
     source_temperature_k: float
     t0_k: float
 
+    @property
+    def y_factor_enr_db(self) -> float:
+        """The ENR, dB, that a Y-factor forecast needs (None only for the gain method)."""
+        if self.enr_db is None:
+            raise InputError(
+                "expect.enr_db",
+                "is needed to forecast a Y-factor plan",
+                fix="declare enr_db in [expect] or an ENR table in [enr]",
+            )
+        return self.enr_db
+
 
 class BenchModel(Protocol):
     """A model of the bench a forecast can ask (a back end may supply one through
@@ -239,14 +250,14 @@ def point_uncertainty_db(
     cal = calibrate_point(
         _density(freq_hz, r["hot_cal"], rel_u.get("hot_cal", 0.0)),
         _density(freq_hz, r["cold_cal"], rel_u.get("cold_cal", 0.0)),
-        float(priors.enr_db),
+        float(priors.y_factor_enr_db),
         cold_temperature_k=priors.source_temperature_k,
         t0_k=priors.t0_k,
     )
     point = y_factor_point(
         _density(freq_hz, r["hot"], rel_u.get("hot", 0.0)),
         _density(freq_hz, r["cold"], rel_u.get("cold", 0.0)),
-        float(priors.enr_db),
+        float(priors.y_factor_enr_db),
         cold_temperature_k=priors.source_temperature_k,
         calibration=cal,
         t0_k=priors.t0_k,
@@ -320,6 +331,7 @@ def _group_settings(
         per_average = (t11 - t1) / 10.0
         return one, per_average + max(t1 - per_average, 0.0) / 8.0
     settings = nominal_settings(group, 1, plan.expect.sweep_time_factor)
+    assert settings.sweep_time_s is not None  # nominal_settings always sets it
     return settings, float(settings.sweep_time_s) + plan.expect.overhead_s / 8.0
 
 
@@ -393,7 +405,7 @@ def _calibration_design_u1(plan: Plan, freq_hz: float, priors: Priors, rel1: flo
     return system_design_u_db(
         _density(freq_hz, r["hot_cal"], rel1),
         _density(freq_hz, r["cold_cal"], rel1),
-        float(priors.enr_db),
+        float(priors.y_factor_enr_db),
         cold_temperature_k=priors.source_temperature_k,
         design_gain_db=_design_gain_db(plan, priors),
         t0_k=priors.t0_k,

@@ -17,9 +17,12 @@ import sys
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import IO, Any, Protocol
+from typing import IO, TYPE_CHECKING, Protocol
 
 from noisebench.science.point import PointResult
+
+if TYPE_CHECKING:
+    from rich.progress import TaskID
 
 logger = logging.getLogger(__name__)
 
@@ -281,7 +284,7 @@ class RichProgress:
             console=Console(file=stream or sys.stderr),
             transient=False,
         )
-        self._task: Any = None
+        self._task: TaskID | None = None
         self._label = ""
         self._total = 0
         self._done = 0
@@ -323,6 +326,7 @@ class RichProgress:
         self._eta.advance(count)
         if self._eta.current == MEASUREMENT:
             self._done += count
+        assert self._task is not None  # phase() added the task
         self._progress.update(self._task, advance=count, left=self._left())
 
     def point_done(self, point: PointResult) -> None:
@@ -330,6 +334,7 @@ class RichProgress:
             self.phase(MEASUREMENT, self._total - self._done)
         self._eta.advance(1, point.freq_hz)
         self._done += 1
+        assert self._task is not None  # phase() added the task
         self._progress.update(self._task, advance=1, last=describe_point(point), left=self._left())
 
     def stop(self) -> None:

@@ -8,9 +8,13 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from noisebench.errors import InputError
 from noisebench.units import format_frequency, format_frequency_range
+
+if TYPE_CHECKING:
+    from noisebench.sampled.address import SampledOptions
 
 
 @dataclass(frozen=True)
@@ -20,7 +24,7 @@ class SimAddress:
     scenario: str
     seed: int = 0
     receiver: str = "analyzer"  # or "sampled"
-    sampled: object = None  # noisebench.sampled.address.SampledOptions when receiver=sampled
+    sampled: SampledOptions | None = None  # set when receiver=sampled
 
 
 def parse_sim_address(resource: str) -> SimAddress:
