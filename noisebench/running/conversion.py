@@ -295,7 +295,7 @@ def _read_rejection_csv(path: Path, label: str) -> tuple[np.ndarray, np.ndarray]
             if i and not f > freq[i - 1]:
                 raise InputError(
                     f"{table.where(i)}, {table.freq_column}",
-                    f"not strictly ascending (follows {freq[i - 1]:.6g} Hz)",
+                    f"not strictly ascending (follows {format_frequency(freq[i - 1])})",
                 )
             check_rejection_db(f"{table.where(i)}, image_rejection_db", float(r))
     except InputError as exc:
