@@ -426,8 +426,8 @@ class SampledAnalyzer(Analyzer):
         if piled > artefacts.MAX_CLIPPED_FRACTION:
             raise MeasurementError(
                 f"{piled:.2e} of the samples sit at one extreme rail value in the capture at "
-                f"{format_frequency(g.capture_center_hz, 9)}: clipped below the declared full scale "
-                f"({block.full_scale:g}); noise never piles up at its largest value",
+                f"{format_frequency(g.capture_center_hz, 9)}: clipped below the declared full "
+                f"scale ({block.full_scale:g}); noise never piles up at its largest value",
                 fix="check the source's full scale (metadata) and any limiter/AGC stage; lower "
                 "the receiver gain or add attenuation, then recalibrate the scale",
             )
