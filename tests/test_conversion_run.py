@@ -347,3 +347,23 @@ def test_forecast_of_a_converter_plan_from_declared_priors(tmp_path):
     equal = forecast_plan(plan_with(conversion__image_rejection_db="equal", **common)).points[0]
     assert equal.averages < none.averages
     assert 0.0 < equal.u_nf_db <= 0.15 * (1 + 1e-9)
+
+
+# --------------------------------------------------------------------------- report
+
+
+def test_report_of_a_converter_run_has_a_frequency_plan_section(tmp_path):
+    from noisebench.results.report import render_report
+
+    _, record = _run(plan_with(), tmp_path)
+    html = render_report(record, {})
+    assert '<h2 id="frequency-plan">Frequency plan</h2>' in html
+    assert 'href="#frequency-plan"' in html
+    section = html.split('id="frequency-plan"')[1].split("<h2")[0]
+    for text in ("fixed_if", "upper", "SSB", "14 dB", "LO (GHz)", "Image (GHz)", "IF (GHz)"):
+        assert text in section, text
+    # each point's LO and image, in the table's unit (GHz): RF 2.2 GHz -> LO 1.8, image 1.4
+    for p in record.points:
+        c = p.conversion
+        assert f"<td>{c.lo_hz / 1e9:.1f}</td>" in section
+        assert f"<td>{c.image_hz / 1e9:.1f}</td>" in section
