@@ -59,6 +59,7 @@ try:  # SQLAlchemy is an optional extra ("db"); fail with a clear message when i
         create_engine,
         event,
         func,
+        insert,
         select,
         text,
     )
@@ -296,7 +297,7 @@ class ResultsDatabase:
                         self._migrate_from_1(conn)
                     if info is None:
                         conn.execute(
-                            _SchemaInfo.__table__.insert().values(
+                            insert(_SchemaInfo).values(
                                 id=1, version=SCHEMA_VERSION, created_at=datetime.now(timezone.utc)
                             )
                         )
@@ -349,12 +350,12 @@ class ResultsDatabase:
         from sqlalchemy.schema import CreateColumn
 
         present = {c["name"] for c in inspect(conn).get_columns("points")}
-        table = _Point.__table__
+        table = _Base.metadata.tables["points"]
         for name in cls.CONVERSION_COLUMNS:
             if name not in present:
                 column = CreateColumn(table.c[name]).compile(dialect=conn.dialect)
                 conn.exec_driver_sql("ALTER TABLE points ADD COLUMN " + str(column))
-        conn.execute(_SchemaInfo.__table__.update().values(version=SCHEMA_VERSION))
+        conn.execute(_Base.metadata.tables["schema_info"].update().values(version=SCHEMA_VERSION))
         log.info("results database migrated from schema 1 to %d", SCHEMA_VERSION)
 
     @staticmethod
@@ -628,7 +629,7 @@ class ResultsDatabase:
                     UnitRun(
                         run_id=r.run_id,
                         started_at=r.started_at,
-                        station=stations.get(r.station_id),
+                        station=None if r.station_id is None else stations.get(r.station_id),
                         method=r.method,
                         status=r.status,
                         verdict=r.verdict,
@@ -667,7 +668,7 @@ class ResultsDatabase:
         if table not in models:
             raise InputError("table", f"unknown table {table!r}", fix=f"one of {sorted(models)}")
         with Session(self.engine) as s:
-            return int(s.scalar(select(func.count()).select_from(models[table])))
+            return int(s.execute(select(func.count()).select_from(models[table])).scalar_one())
 
     def close(self) -> None:
         self.engine.dispose()

@@ -33,7 +33,7 @@ from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeGuard
 
 import jinja2
 
@@ -239,8 +239,18 @@ def _macro(name: str) -> Callable[..., str]:
 # ----------------------------------------------------------------------------- formatting
 
 
-def _is_number(value: Any) -> bool:
+def _is_number(value: Any) -> TypeGuard[float]:
     return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+def _number_or(value: Any, default: float) -> float:
+    """``value`` when it is a number, else ``default`` (for sort keys)."""
+    return value if _is_number(value) else default
+
+
+def _mapping(value: Any, default: Mapping[str, Any]) -> Mapping[str, Any]:
+    """``value`` when it is a mapping, else ``default``."""
+    return value if isinstance(value, Mapping) else default
 
 
 def _num(value: Any, digits: int = 3) -> str:
@@ -264,8 +274,8 @@ def _freq(freq_hz: float) -> str:
     return format_frequency(freq_hz, space="\u00a0")
 
 
-def _range(values: Sequence[float], digits: int = 3, unit: str = "") -> str:
-    """``a to b unit`` (or one value) for a list of numbers."""
+def _range(values: Sequence[Any], digits: int = 3, unit: str = "") -> str:
+    """``a to b unit`` (or one value) for a list of numbers (other entries are skipped)."""
     values = [v for v in values if _is_number(v) and math.isfinite(v)]
     if not values:
         return "-"
@@ -575,7 +585,7 @@ def _how_to_read(record: RunRecord) -> list[str]:
 
 def _summary(record: RunRecord) -> dict[str, Any]:
     info = record.info
-    dut = info.plan.get("dut") if isinstance(info.plan.get("dut"), Mapping) else {}
+    dut = _mapping(info.plan.get("dut"), {})
     rows: list[tuple[str, Any]] = [
         (
             "DUT",
@@ -1010,7 +1020,7 @@ def _method_text(budgets: Sequence[Mapping[str, Any]]) -> str:
     if "gum" in methods:
         parts.append("GUM law of propagation (JCGM 100:2008)")
     if "monte_carlo" in methods:
-        mc = [b.get("monte_carlo") for b in budgets if isinstance(b.get("monte_carlo"), Mapping)]
+        mc = [b["monte_carlo"] for b in budgets if isinstance(b.get("monte_carlo"), Mapping)]
         trials = sorted({m.get("trials") for m in mc if _is_number(m.get("trials"))})
         coverage = {m.get("coverage") for m in mc if _is_number(m.get("coverage"))}
         validated = sum(1 for m in mc if m.get("gum_validated") is True)
@@ -1194,7 +1204,7 @@ def _budgets(record: RunRecord) -> dict[str, Any] | None:
         return None
     worst = max(
         budgets,
-        key=lambda b: b.get("U_expanded_db") if _is_number(b.get("U_expanded_db")) else -math.inf,
+        key=lambda b: _number_or(b.get("U_expanded_db"), -math.inf),
     )
     return {
         "methods": _method_text(budgets),
@@ -1246,7 +1256,7 @@ def _calibration_groups(entries: Sequence[Mapping[str, Any]]) -> list[list[Mappi
     """Entries grouped by kind, analyzer settings that matter and cold temperature."""
     groups: dict[str, list[Mapping[str, Any]]] = {}
     for entry in entries:
-        settings = entry.get("settings") if isinstance(entry.get("settings"), Mapping) else {}
+        settings = _mapping(entry.get("settings"), {})
         key = json.dumps(
             [entry.get("kind"), entry.get("cold_temperature_k")]
             + [settings.get(k) for k in GROUPED_SETTINGS],
@@ -1276,7 +1286,7 @@ def _calibration_table(entries: Sequence[Mapping[str, Any]]) -> Table:
     rows = []
     for group in _calibration_groups(entries):
         first = group[0]
-        settings = first.get("settings") if isinstance(first.get("settings"), Mapping) else {}
+        settings = _mapping(first.get("settings"), {})
         freqs = sorted(f for e in group for f in e.get("freqs_hz") or [] if _is_number(f))
         times = sorted(t for e in group if (t := _parse_time(e.get("measured_at"))))
         averages = [
@@ -1332,7 +1342,7 @@ def _calibration_results(summary: list[dict[str, Any]]) -> dict[str, Any]:
         keys += [k for k in row if k not in keys and k not in CALIBRATION_SUMMARY_SKIP]
     numeric = [k for k in keys if any(_is_number(r.get(k)) for r in summary)]
     ranges = _kv((label(k), _range([r.get(k) for r in summary], _digits_for(k))) for k in numeric)
-    summary.sort(key=lambda r: r.get("freq_hz") if _is_number(r.get("freq_hz")) else math.inf)
+    summary.sort(key=lambda r: _number_or(r.get("freq_hz"), math.inf))
     detail = None
     if len(summary) <= DETAIL_ROWS_MAX:
         freq = FrequencyColumn.of([r["freq_hz"] for r in summary if _is_number(r.get("freq_hz"))])
@@ -1460,7 +1470,7 @@ def _settings(record: RunRecord) -> Table | None:
         return None
     rows = []
     for group in groups:
-        settings = group.get("settings") if isinstance(group.get("settings"), Mapping) else group
+        settings = _mapping(group.get("settings"), group)
         flat: dict[str, Any] = {}
         for key, value in settings.items():
             if key == "rbw_filter":

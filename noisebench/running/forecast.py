@@ -147,6 +147,17 @@ class Priors:
     t0_k: float
     conversion: ConverterPriors | None = None  # a converter: readings at the IF
 
+    @property
+    def y_factor_enr_db(self) -> float:
+        """The ENR, dB, that a Y-factor forecast needs (None only for the gain method)."""
+        if self.enr_db is None:
+            raise InputError(
+                "expect.enr_db",
+                "is needed to forecast a Y-factor plan",
+                fix="declare enr_db in [expect] or an ENR table in [enr]",
+            )
+        return self.enr_db
+
 
 class BenchModel(Protocol):
     """A model of the bench a forecast can ask (a back end may supply one through
@@ -238,7 +249,11 @@ def _converter_priors(
         truth = model.expected_conversion(rf, lo, conv.lo.level_dbm)
         te_ssb, gain_db = truth["te_ssb_k"], truth["gain_signal_db"]
         te_sa = truth["analyzer_te_k"]
-        enr = (truth["enr_rf_table_db"], truth["enr_image_table_db"], truth["enr_if_table_db"])
+        enr: tuple[float | None, ...] = (
+            truth["enr_rf_table_db"],
+            truth["enr_image_table_db"],
+            truth["enr_if_table_db"],
+        )
     else:
         e = plan.expect
         declared = _declared_priors(plan, if_hz, source_k)  # checks what [expect] must hold
@@ -321,14 +336,14 @@ def point_uncertainty_db(
     cal = calibrate_point(
         _density(freq_hz, r["hot_cal"], rel_u.get("hot_cal", 0.0)),
         _density(freq_hz, r["cold_cal"], rel_u.get("cold_cal", 0.0)),
-        float(priors.enr_db),
+        float(priors.y_factor_enr_db),
         cold_temperature_k=priors.source_temperature_k,
         t0_k=priors.t0_k,
     )
     point = y_factor_point(
         _density(freq_hz, r["hot"], rel_u.get("hot", 0.0)),
         _density(freq_hz, r["cold"], rel_u.get("cold", 0.0)),
-        float(priors.enr_db),
+        float(priors.y_factor_enr_db),
         cold_temperature_k=priors.source_temperature_k,
         calibration=cal,
         t0_k=priors.t0_k,
@@ -451,6 +466,7 @@ def _group_settings(
         per_average = (t11 - t1) / 10.0
         return one, per_average + max(t1 - per_average, 0.0) / 8.0
     settings = nominal_settings(group, 1, plan.expect.sweep_time_factor)
+    assert settings.sweep_time_s is not None  # nominal_settings always sets it
     return settings, float(settings.sweep_time_s) + plan.expect.overhead_s / 8.0
 
 
@@ -527,7 +543,9 @@ def _calibration_design_u1(plan: Plan, freq_hz: float, priors: Priors, rel1: flo
             source_temperature_k=priors.source_temperature_k,
             t0_k=priors.t0_k,
         )
-    cal_enr_db = priors.enr_db if priors.conversion is None else priors.conversion.enr_if_db
+    cal_enr_db = (
+        priors.y_factor_enr_db if priors.conversion is None else priors.conversion.enr_if_db
+    )
     return system_design_u_db(
         _density(freq_hz, r["hot_cal"], rel1),
         _density(freq_hz, r["cold_cal"], rel1),
