@@ -295,7 +295,7 @@ def _prepare(
     spurs = np.empty(0)
     widths = np.empty(0)
     if rel_var is not None:
-        _check_scatter_state(trace, power, rel_var, kernel, model)
+        _check_scatter_state(trace, power, rel_var, kernel, model, threshold_sigma, zero_span)
     if reject_spurs and not zero_span and power.size >= MIN_SPUR_SEARCH_POINTS:
         search_var = rel_var if rel_var is not None else _robust_relative_variance(power)
         excluded, spurs, widths = _find_spurs(
@@ -437,7 +437,11 @@ class ScatterState:
 
 
 def scatter_state(
-    power: np.ndarray, rel_var: float, kernel: np.ndarray, excess_kurtosis: float
+    power: np.ndarray,
+    rel_var: float,
+    kernel: np.ndarray,
+    excess_kurtosis: float,
+    usable: np.ndarray | None = None,
 ) -> ScatterState | None:
     """Scatter of a trace's points about their neighbours against the prediction ``rel_var``.
 
@@ -448,7 +452,8 @@ def scatter_state(
     too-little test stays safe). Degrees of freedom: ``2 N / (k + 3)`` for ``N`` independent
     bins (``n / (2 sum(rho) - 1)``) and the points' excess kurtosis ``k`` (successive
     differences share a point; derived from the fourth moments). None when the trace is too
-    short to tell.
+    short to tell. ``usable``: only differences whose two points are both usable count (the
+    points clear of spur lines).
     """
     n = power.size
     below = np.flatnonzero(kernel <= 0.5)
@@ -456,10 +461,18 @@ def scatter_state(
     if lag >= n - 1:
         return None
     rho = float(kernel[lag]) if lag < kernel.size else 0.0
-    d = (power[lag:] - power[:-lag]) / float(np.mean(power))
+    d = power[lag:] - power[:-lag]
+    mean = float(np.mean(power))
+    if usable is not None:
+        pairs = usable[lag:] & usable[:-lag]
+        if not np.any(pairs):
+            return None
+        d = d[pairs]
+        mean = float(np.mean(power[usable]))
+    d = d / mean
     expected = 2.0 * (1.0 - rho) * rel_var
     corr_points = max(1.0, 2.0 * float(np.sum(kernel)) - 1.0)
-    independent = (n - lag) / max(corr_points, float(lag))
+    independent = d.size / max(corr_points, float(lag))
     # sum of squared successive differences of N independent points with excess kurtosis k:
     # relative variance (k + 3)/N (neighbouring differences share a point), so 2N/(k + 3) dof
     dof = 2.0 * independent / (max(excess_kurtosis, 0.0) + 3.0)
@@ -473,8 +486,118 @@ def scatter_state(
     return ScatterState(ratio=ratio, robust_ratio=robust, dof=dof, low_limit=low, high_limit=high)
 
 
+def _level_scatter_limit(
+    freq_hz: np.ndarray,
+    power: np.ndarray,
+    usable: np.ndarray,
+    rel_var: float,
+    kernel: np.ndarray,
+    excess_kurtosis: float,
+) -> tuple[float, float] | None:
+    """(observed over predicted scatter of the usable points about a straight line, the ratio
+    clean noise exceeds with probability ``SCATTER_STATE_FALSE_ALARM``), for a stretch too
+    short for the difference test; a constant replaces the line below three independent bins,
+    None below two.
+
+    Degrees of freedom ``2 (B - p) / (k + 2)`` for ``B`` independent bins, ``p`` fitted
+    parameters and excess kurtosis ``k`` (the relative variance of a sum of squares is
+    ``(k + 2)/B``); correlated neighbours scatter less about their own fit than independent
+    points, so this errs on the side of not refusing."""
+    corr_points = max(1.0, 2.0 * float(np.sum(kernel)) - 1.0)
+    bins = int(usable.sum()) / corr_points
+    params = 2 if bins >= 3.0 else 1
+    if bins < 2.0:
+        return None
+    f = freq_hz[usable]
+    p = power[usable]
+    if params == 2:
+        x = (f - f.mean()) / max(float(np.ptp(f)), 1e-300)
+        slope, offset = np.polyfit(x, p, 1)
+        resid = p - (offset + slope * x)
+    else:
+        resid = p - p.mean()
+    ratio = math.sqrt(float(np.mean(resid**2)) / rel_var) / float(np.mean(p))
+    dof = 2.0 * (bins - params) / (max(excess_kurtosis, 0.0) + 2.0)
+    limit = math.sqrt(stats.chi2.isf(SCATTER_STATE_FALSE_ALARM, dof) / dof)
+    return ratio, max(SCATTER_STATE_MAX_RATIO, limit)
+
+
+def _lines_explain_scatter(
+    trace: Trace,
+    power: np.ndarray,
+    rel_var: float,
+    kernel: np.ndarray,
+    model: PointModel,
+    state: ScatterState,
+    threshold_sigma: float,
+) -> bool:
+    """True when spur lines, not missing averaging, make a trace scatter too much.
+
+    Lines covering a large share of a short trace (a comb: 1 MHz RBW lines 1.25 MHz apart over
+    10 MHz) raise even the median-based ratio. The ordinary search (claimed scatter) would
+    also take the noise peaks of an unaveraged trace for lines, so lines count only where they
+    stand out from the scatter *observed* clear of that search (from the lower half of the
+    points, which that search's cut hardly changes); each keeps the whole
+    neighbourhood the ordinary search excludes around it (a comb merges into one region). The
+    rest of the trace must then scatter as the settings say: by the difference test where it
+    holds enough points, otherwise about a straight line (chi-square limit)."""
+    if power.size < MIN_SPUR_SEARCH_POINTS:
+        return False
+    ordinary, _, _ = _find_spurs(trace, power, rel_var, kernel, threshold_sigma)
+    if not np.any(ordinary) or np.all(ordinary):
+        return False
+    observed = _lower_half_scatter_ratio(trace.freq_hz, power, ~ordinary, rel_var, kernel)
+    if observed is None:
+        observed = state.robust_ratio
+    strong, _, _ = _find_spurs(
+        trace, power, rel_var * max(observed, 1.0) ** 2, kernel, threshold_sigma
+    )
+    if not np.any(strong):
+        return False
+    labels, _ = ndimage.label(ordinary)
+    touched = np.unique(labels[strong & ordinary])
+    usable = ~(strong | np.isin(labels, touched[touched > 0]))
+    if not np.any(usable):
+        return False
+    rest = scatter_state(power, rel_var, kernel, model.excess_kurtosis, usable=usable)
+    if rest is not None:
+        return rest.robust_ratio <= rest.high_limit
+    levels = _level_scatter_limit(
+        trace.freq_hz, power, usable, rel_var, kernel, model.excess_kurtosis
+    )
+    if levels is None:
+        return True  # the lines leave too little noise to tell; the band estimate widens u
+    ratio, limit = levels
+    return ratio <= limit
+
+
+def _lower_half_scatter_ratio(
+    freq_hz: np.ndarray, power: np.ndarray, usable: np.ndarray, rel_var: float, kernel: np.ndarray
+) -> float | None:
+    """Observed over predicted scatter of the usable points from their lower half (median
+    minus lower quartile, over a straight line), so that cutting the highest points (a spur
+    search run on an unaveraged trace) hardly lowers it; None below two independent bins."""
+    corr_points = max(1.0, 2.0 * float(np.sum(kernel)) - 1.0)
+    if int(usable.sum()) / corr_points < 2.0:
+        return None
+    f = freq_hz[usable]
+    p = power[usable]
+    x = (f - f.mean()) / max(float(np.ptp(f)), 1e-300)
+    slope, offset = np.polyfit(x, p, 1)
+    resid = p - (offset + slope * x)
+    q25, q50 = np.quantile(resid, [0.25, 0.5])
+    sigma = float(q50 - q25) / float(stats.norm.ppf(0.75))
+    return sigma / (math.sqrt(rel_var) * float(np.mean(p)))
+
+
 def _check_scatter_state(
-    trace: Trace, power: np.ndarray, rel_var: float, kernel: np.ndarray, model: PointModel
+    trace: Trace,
+    power: np.ndarray,
+    rel_var: float,
+    kernel: np.ndarray,
+    model: PointModel,
+    threshold_sigma: float,
+    zero_span: bool,
 ) -> None:
     """Refuse a trace whose scatter contradicts its settings, naming the likely cause."""
     state = scatter_state(power, rel_var, kernel, model.excess_kurtosis)
@@ -490,7 +613,10 @@ def _check_scatter_state(
             "that the trace is updating (clear/write), the reference level and attenuation, and "
             "that the analyzer's averaging count matches the settings"
         )
-    if state.robust_ratio > state.high_limit:
+    if state.robust_ratio > state.high_limit and (
+        zero_span
+        or not _lines_explain_scatter(trace, power, rel_var, kernel, model, state, threshold_sigma)
+    ):
         raise MeasurementError(
             f"the trace scatters {state.robust_ratio:.3g}x more than its settings ({said}) "
             "predict: the analyzer is probably not averaging as reported (trace averaging left "
@@ -568,11 +694,14 @@ def _find_spurs(
     kernel: np.ndarray,
     threshold_sigma: float,
     marked: np.ndarray | None = None,
+    skirt_rel_var: float | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Exclusion mask, spur frequencies and their excluded half-widths (Hz).
 
     ``marked``: points the instrument already marked unusable; they start excluded and are
-    reported as lines (centre and half-width of each marked run)."""
+    reported as lines (centre and half-width of each marked run). ``skirt_rel_var``: the
+    relative variance that sizes each line's excluded skirt (default ``rel_var``, which sets
+    the detection threshold)."""
     s = trace.settings
     f = trace.freq_hz
     n = power.size
@@ -590,7 +719,8 @@ def _find_spurs(
     bins = max(1, round(min(window, n) / corr_points))
     tail_ratio = median_ratio * median_threshold_ratio(a, bins, stats.norm.sf(threshold_sigma))
     # residual skirt allowed per point: a fraction of the relative resolution of the full trace
-    skirt_level = SPUR_SKIRT_FRACTION * math.sqrt(rel_var / n)
+    skirt_var = rel_var if skirt_rel_var is None else skirt_rel_var
+    skirt_level = SPUR_SKIRT_FRACTION * math.sqrt(skirt_var / n)
     excluded = np.zeros(n, dtype=bool)
     spurs: list[float] = []
     widths: list[float] = []
