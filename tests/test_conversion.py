@@ -454,6 +454,42 @@ def test_image_rejection_uncertainty_is_reported_as_a_contribution():
     assert abs(c) > 0.01  # a real term: the SSB result leans on the stated image response
 
 
+def test_conversion_gain_states_its_enr_terms_at_rf_image_and_if():
+    # Symptom: on the demo bench the conversion gain scattered wider than u_gain_db said
+    # (2u coverage 90.7 % over 24 seeds) because ENR(RF) and ENR(IF), two table points, were
+    # left out. Derived from eq. (5) (T0-referenced ENR, lossless): G_s is proportional to
+    # ENR_IF / (ENR_s + r ENR_i), so dG_dB/dENR_IF_dB = +1, dG_dB/dENR_RF_dB = -ENR_s/(ENR_s +
+    # r ENR_i), dG_dB/dENR_image_dB = -r ENR_i/(ENR_s + r ENR_i) and dG_dB/dIRR_dB = +r ENR_i/(...)
+    hot, cold, hot_cal, cold_cal = _y_inputs()
+    u_rf, u_img, u_rej = 0.11, 0.13, 0.4
+    p = converter_y_factor_point(
+        density(hot),
+        density(cold),
+        rf_hz=RF,
+        lo_hz=LO,
+        enr_rf_db=ENR_RF,
+        enr_image_db=ENR_IMAGE,
+        cold_temperature_k=TC,
+        image_rejection_db=IRR_DB,
+        calibration=_cal(hot_cal, cold_cal),  # u(ENR_IF) = 0.1 dB
+        u_enr_rf_db=u_rf,
+        u_enr_image_db=u_img,
+        u_image_rejection_db=u_rej,
+    )
+    r = lin(-IRR_DB)
+    share_rf = lin(ENR_RF) / (lin(ENR_RF) + r * lin(ENR_IMAGE))
+    c = p.notes["u_gain_db_contributions"]
+    assert c["enr_cal"] == pytest.approx(+1.0 * 0.1, rel=1e-6)
+    assert c["enr"] == pytest.approx(-share_rf * u_rf, rel=1e-6)
+    assert c["enr_image"] == pytest.approx(-(1 - share_rf) * u_img, rel=1e-6)
+    assert c["image_rejection"] == pytest.approx((1 - share_rf) * u_rej, rel=1e-6)
+    stat = math.hypot(c["hot"], c["cold"], c["hot_cal"], c["cold_cal"])
+    assert p.u_gain_db == pytest.approx(stat, rel=1e-9)  # u_gain_db stays statistical
+    total = math.sqrt(sum(v**2 for v in c.values()))
+    assert p.notes["u_gain_db_with_enr"] == pytest.approx(total, rel=1e-12)
+    assert p.notes["u_gain_db_with_enr"] > p.u_gain_db + 0.05
+
+
 # --------------------------------------------------------------------------- gain method
 
 
@@ -620,3 +656,46 @@ def test_bad_inputs_name_the_field(kwargs, field):
     with pytest.raises(InputError) as info:
         converter_y_factor_point(density(hot), density(cold), **(base | kwargs))
     assert field in str(info.value)
+
+
+# --------------------------------------------------------------------------- one formula set
+
+
+def _inline_formulas(path) -> list[str]:
+    """``10 ** x``, ``log10(...)`` and ``k * ...`` written out in a module, as 'line: text'."""
+    import ast
+    from pathlib import Path
+
+    source = Path(path).read_text(encoding="utf-8")
+    found = []
+    for node in ast.walk(ast.parse(source)):
+        bad = (
+            isinstance(node, ast.BinOp)
+            and isinstance(node.op, ast.Pow)
+            and isinstance(node.left, ast.Constant)
+            and node.left.value == 10
+        ) or (
+            isinstance(node, ast.Call)
+            and isinstance(node.func, ast.Attribute | ast.Name)
+            and getattr(node.func, "attr", getattr(node.func, "id", "")) == "log10"
+        )
+        bad = bad or (
+            isinstance(node, ast.BinOp)
+            and isinstance(node.op, ast.Mult)
+            and "BOLTZMANN_J_PER_K" in (ast.unparse(node.left), ast.unparse(node.right))
+        )
+        if bad:
+            found.append(f"{node.lineno}: {ast.unparse(node)}")
+    return found
+
+
+@pytest.mark.parametrize("module", ["science/conversion.py", "science/methods/converter.py"])
+def test_converter_physics_comes_from_the_shared_kernels(module):
+    # DEVELOPERS.md: one set of pure physics kernels (science/physics.py) serves every method;
+    # a private copy of 10**(x/10), 10 log10 or k*T in the converter code could drift from it
+    from pathlib import Path
+
+    import noisebench
+
+    path = Path(noisebench.__file__).parent / module
+    assert _inline_formulas(path) == []

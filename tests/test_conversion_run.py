@@ -264,3 +264,22 @@ def test_resume_skips_points_stored_at_their_rf(tmp_path):
 def test_example_plan_validates_and_runs(tmp_path):
     plan = load_plan(EXAMPLES / "downconverter_simulated.toml")
     assert plan.conversion is not None and len(plan.points()) == 9
+
+
+def test_converter_run_with_an_uncertainty_section_writes_full_budgets(tmp_path):
+    # was refused at plan time ("full budgets are not available for a frequency-converting DUT")
+    plan = plan_with(
+        uncertainty={"cold_temperature_k": 0.5, "linearity_db": 0.02, "input_loss_db": 0.02}
+    )
+    _, record = _run(plan, tmp_path)
+    budgets = record.budgets_by_freq()
+    assert sorted(budgets) == [2.2e9, 2.4e9]  # keyed by the RF, like the points
+    for p in record.points:
+        b = budgets[p.freq_hz]
+        assert b["model"] == "converter_y_factor"
+        assert b["nf_db"] == pytest.approx(p.nf_db, abs=1e-9)
+        names = {c["name"] for c in b["contributions"]}
+        assert {"ENR at the RF", "ENR at the image", "ENR at the IF (calibration)"} <= names
+        assert "image rejection" not in names  # a number without u: no term
+        # the full budget holds the statistical part and more (ENR at three frequencies)
+        assert b["u_combined_db"] > p.u_nf_db

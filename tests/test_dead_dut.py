@@ -204,3 +204,37 @@ def test_calibration_flags_reach_the_csv_the_report_and_the_database(tmp_path, c
     with sqlite3.connect(url) as con:
         flags = [row[0] for row in con.execute("SELECT flags FROM points ORDER BY freq_hz")]
     assert len(flags) == 2 and all("cal_time_limit" in f.split(";") for f in flags)
+
+
+def _plan_with(tmp_path: Path, replace: tuple[str, str]) -> Path:
+    path = _plan(tmp_path, "y_factor", bench="sim://demo-lna?seed=1")
+    text = path.read_text(encoding="utf-8")
+    assert replace[0] in text
+    path.write_text(text.replace(*replace), encoding="utf-8")
+    return path
+
+
+def test_a_celsius_temperature_is_refused_by_validate_and_run(tmp_path, capsys):
+    # reported: source_temperature_k = 23 (meant 23 degC): validate ok, run exit 0, NF 2.5 dB off
+    plan = _plan_with(tmp_path, ("[expect]", "[corrections]\nsource_temperature_k = 23\n[expect]"))
+    assert cli.main(["validate", str(plan)]) == cli.EXIT_INPUT
+    err = capsys.readouterr().err
+    assert "corrections.source_temperature_k: 23 K is below the plausible 200 K" in err
+    assert "23 degC would be 296.15 K" in err
+    folder = tmp_path / "run"
+    assert cli.main(["-q", "run", str(plan), "--out", str(folder)]) == cli.EXIT_INPUT
+    assert not folder.exists()  # refused before any instrument was touched
+
+
+@pytest.mark.parametrize(
+    "replace",
+    [
+        ("rbw_hz = 1e6", "rbw_hz = 1"),  # 1 meant as 1 MHz
+        ("freqs_hz = [1e9, 2e9]", "[[sweep.segments]]\nfreqs_hz = [1e9]\nrbw_hz = 1"),
+    ],
+)
+def test_an_rbw_in_mhz_is_refused(tmp_path, capsys, replace):
+    plan = _plan_with(tmp_path, replace)
+    assert cli.main(["validate", str(plan)]) == cli.EXIT_INPUT
+    err = capsys.readouterr().err
+    assert "rbw_hz: 1 Hz resolves the 6e+06 Hz span into 6e+06 cells" in err

@@ -534,7 +534,7 @@ def _plan_problems(**sections) -> list[str]:
             "corrections.source_temperature_k: 23 K is below the plausible 200 K: a value this "
             "low looks like degrees Celsius",
         ),
-        ({"corrections": {"input_loss_temperature_k": 25.0}}, "23 degC is 296.15 K"),
+        ({"corrections": {"input_loss_temperature_k": 25.0}}, "25 degC would be 298.15 K"),
         ({"bench": {"analyzer": "sim://demo-lna?seed=1", "ambient_k": 21.5}}, "bench.ambient_k"),
         ({"corrections": {"source_temperature_k": 77.0}}, "say cryogenic = true"),
         ({"sweep": {"freqs_hz": [2000.0]}}, "sweep.freqs_hz[0]: 2000 Hz is below the plausible"),
@@ -603,7 +603,7 @@ def test_a_cryogenic_cold_load_stated_on_purpose_stays_possible():
             },
             "gain.dut_p1db_out_dbm",
         ),
-        ({"acquisition": {"rbw_hz": 1.0}}, "acquisition.rbw_hz"),
+        ({"acquisition": {"rbw_hz": 300.0}}, "acquisition.rbw_hz"),
     ],
 )
 def test_unusual_plan_values_warn_once(sections, label, caplog):
@@ -627,3 +627,33 @@ def test_unusual_plan_values_warn_once(sections, label, caplog):
 def test_random_out_of_range_temperatures_never_run_silently(field, kelvin):
     problems = _plan_problems(corrections={field: kelvin})
     assert any(f"corrections.{field}" in p and "plausible" in p for p in problems), problems
+
+
+# --- 4. end to end over TCP: a profile whose byte order disagrees with its command --------------
+
+
+def test_wrong_byte_order_in_a_profile_is_named_over_the_socket(sim_server, tmp_path):
+    """The profile sends FORM:BORD NORM (big-endian) but decodes little-endian: every trace
+    is garbage. The error names the byte order, never a level or an overflow."""
+    from importlib.resources import files
+
+    from noisebench.bench.acquisition import AcquisitionRequest
+    from noisebench.drivers import open_analyzer
+    from noisebench.errors import CommunicationError
+
+    text = (files("noisebench.drivers") / "profiles" / "generic.toml").read_text(encoding="utf-8")
+    assert text.count("big_endian = true") == 1
+    profile = tmp_path / "swapped.toml"
+    profile.write_text(text.replace("big_endian = true", "big_endian = false"), encoding="utf-8")
+    sa = open_analyzer(sim_server.resource("analyzer"), profile, timeout_s=10.0)
+    try:
+        sa.configure(
+            AcquisitionRequest(center_hz=1e9, span_hz=10e6, rbw_hz=1e6, averages=4, points=101)
+        )
+        with np.errstate(all="raise"), pytest.raises((InputError, CommunicationError)) as info:
+            sa.acquire_trace()
+    finally:
+        sa.close()
+    text = str(info.value)
+    assert "byte-order" in text and "big_endian" in text and "mis-decoded" in text, text
+    assert "must be > 0" not in text

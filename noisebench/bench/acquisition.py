@@ -27,6 +27,9 @@ from pydantic import (
 from noisebench.errors import InputError
 from noisebench.science.filters import GAUSSIAN, RbwFilter
 
+# The filter shape is part of the settings an instrument reports; back ends name it from here.
+from noisebench.science.filters import FilterKind as FilterKind
+
 
 class Detector(str, Enum):
     """How the analyzer reduces the samples that fall into one trace point."""

@@ -21,13 +21,15 @@ import logging
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from enum import Enum
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from noisebench.bench.addresses import is_simulated
 from noisebench.bench.capabilities import NoiseDriveOutput, PathSwitch
 from noisebench.bench.instruments import Bench
 from noisebench.errors import InputError, NoisebenchError
-from noisebench.running.plan import BenchSection
+
+if TYPE_CHECKING:  # annotations only: the bench layer does not import the running layer
+    from noisebench.running.plan import BenchSection
 
 logger = logging.getLogger(__name__)
 

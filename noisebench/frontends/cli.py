@@ -22,7 +22,6 @@ from __future__ import annotations
 
 import argparse
 import logging
-import math
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -39,26 +38,22 @@ from noisebench.errors import (
     NoisebenchError,
     SafetyError,
 )
+from noisebench.frontends.argtypes import (
+    EPILOG,
+    EXIT_FAILED,
+    EXIT_INPUT,
+    EXIT_INSTRUMENT,
+    EXIT_INTERRUPTED,
+    EXIT_MEASUREMENT,
+    EXIT_OK,
+    EXIT_SAFETY,
+    non_negative_int,
+    positive_seconds,
+)
 from noisebench.running.safety import cautions_text
 from noisebench.units import format_frequency
 
 logger = logging.getLogger("noisebench.frontends.cli")
-
-EXIT_OK = 0
-EXIT_FAILED = 1
-EXIT_INPUT = 2
-EXIT_SAFETY = 3
-EXIT_INSTRUMENT = 4
-EXIT_MEASUREMENT = 5
-EXIT_INTERRUPTED = 130
-
-EPILOG = f"""\
-exit codes: 0 ok, 2 bad input, 3 refused for safety, 4 instrument/communication fault,
-5 measurement refused by the physics, 1 other failure, 130 interrupted.
-
-Safety cautions (read before connecting real instruments):
-{cautions_text()}
-"""
 
 
 # --------------------------------------------------------------------------- commands
@@ -285,28 +280,6 @@ def cmd_info(args: argparse.Namespace, out: TextIO) -> int:
 
 
 # --------------------------------------------------------------------------- parser
-
-
-def positive_seconds(text: str) -> float:
-    """argparse type: a finite duration > 0 s (``nan``, ``inf``, 0 and negatives refused)."""
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds") from None
-    if not (math.isfinite(value) and value > 0):
-        raise argparse.ArgumentTypeError(f"must be a finite number of seconds > 0 (got {text})")
-    return value
-
-
-def non_negative_int(text: str) -> int:
-    """argparse type: an integer >= 0 (simulator seeds)."""
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
-    if value < 0:
-        raise argparse.ArgumentTypeError(f"must be >= 0 (got {value})")
-    return value
 
 
 def build_parser() -> argparse.ArgumentParser:

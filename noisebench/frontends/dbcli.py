@@ -35,6 +35,13 @@ from pathlib import Path
 from typing import Any, TextIO
 
 from noisebench.errors import InputError
+from noisebench.frontends.argtypes import (
+    EPILOG,
+    EXIT_INSTRUMENT,
+    EXIT_INTERRUPTED,
+    EXIT_OK,
+    positive_seconds,
+)
 
 logger = logging.getLogger(__name__)
 
@@ -51,10 +58,6 @@ __all__ = [
 ]
 
 DB_ENV = "NOISEBENCH_DB"
-# the same values as noisebench.frontends.cli (not imported: cli imports this module)
-EXIT_OK = 0
-EXIT_INSTRUMENT = 4
-EXIT_INTERRUPTED = 130
 
 
 # --------------------------------------------------------------------------- helpers
@@ -397,8 +400,6 @@ def _add_db_option(p: argparse.ArgumentParser) -> None:
 
 
 def _register_station(sub: Any) -> None:
-    from noisebench.frontends.cli import EPILOG, positive_seconds  # cli imports us lazily
-
     p = sub.add_parser(
         "station",
         help="production: measure a lot unit by unit",

@@ -23,8 +23,6 @@ inside the DUT or driven by something else: nothing is controlled, the plan only
 
 from __future__ import annotations
 
-import csv
-import io
 import math
 import time
 from collections.abc import Callable, Sequence
@@ -41,7 +39,13 @@ from noisebench.science.conversion import (
     plan_fixed_lo,
     plan_triples,
 )
-from noisebench.science.tables import read_table_text
+from noisebench.science.ranges import frequency_column_problem
+from noisebench.science.tables import (
+    FREQ_COLUMNS,
+    read_table_text,
+    scan_csv_table,
+    separator_problem,
+)
 
 __all__ = [
     "LoSettings",
@@ -225,33 +229,61 @@ class ImageRejection:
         return problems
 
 
-def _read_rejection_csv(path: Path, label: str) -> tuple[np.ndarray, np.ndarray]:
-    """Our CSV: ``# key: value`` lines, then ``freq_hz,image_rejection_db`` rows (RF, dB)."""
-    text, name = read_table_text(path, None, what="image-rejection table", text_label=label)
-    text = text.lstrip("\ufeff")
-    rows = [r for r in csv.reader(io.StringIO(text)) if r and not r[0].lstrip().startswith("#")]
-    field = "conversion.image_rejection_db"
-    if not rows or [c.strip() for c in rows[0]] != ["freq_hz", "image_rejection_db"]:
+REJECTION_RANGE_DB = (-30.0, 200.0)  # outside: a unit or column mix-up, not a converter
+
+
+def _rejection_header(line: str, where: str) -> list[str]:
+    cols = [c.strip().lower() for c in line.split(",")]
+    separator = separator_problem(line)
+    if separator is not None:
         raise InputError(
-            field,
-            f"{name}: the header must be freq_hz,image_rejection_db",
-            fix="one RF frequency (Hz) and the image rejection (dB) per row",
+            f"{where}, header",
+            f"columns are separated by {separator!r}",
+            fix="this format uses commas (and '.' as the decimal point)",
         )
-    freq: list[float] = []
-    rej: list[float] = []
-    for i, row in enumerate(rows[1:], start=2):
-        try:
-            f, r = (float(c) for c in row)
-        except ValueError:
-            raise InputError(field, f"{name} row {i}: two numbers expected (got {row!r})") from None
-        if not (math.isfinite(f) and f > 0 and math.isfinite(r) and -30.0 <= r <= 200.0):
-            raise InputError(field, f"{name} row {i}: need freq_hz > 0 and -30..200 dB")
-        if freq and f <= freq[-1]:
-            raise InputError(field, f"{name} row {i}: frequencies must rise")
-        freq.append(f)
-        rej.append(r)
-    if not freq:
-        raise InputError(field, f"{name} holds no rows", fix="add freq_hz,image_rejection_db rows")
+    freq = [c for c in cols if c in FREQ_COLUMNS]
+    if len(freq) != 1 or sorted(cols) != sorted([freq[0], "image_rejection_db"]):
+        raise InputError(
+            f"{where}, header",
+            f"must be a frequency column and image_rejection_db (got {','.join(cols)})",
+            fix="e.g. 'freq_hz,image_rejection_db': one RF frequency and its rejection per row",
+        )
+    return cols
+
+
+def _read_rejection_csv(path: Path, label: str) -> tuple[np.ndarray, np.ndarray]:
+    """Image rejection (dB) versus RF (Hz) from our table format (:func:`scan_csv_table`, the
+    reader of the gain and loss tables): ``# key: value`` lines, then a frequency column
+    (``freq_hz``/``freq_khz``/``freq_mhz``/``freq_ghz``) and ``image_rejection_db``."""
+    text, name = read_table_text(path, None, what="image-rejection table", text_label=label)
+    try:
+        table = scan_csv_table(
+            text,
+            name,
+            what="image-rejection table",
+            parse_header=_rejection_header,
+            header_example="freq_hz,image_rejection_db",
+        )
+        freq, rej = table.freq_hz(), table.column("image_rejection_db")
+        slip = frequency_column_problem(freq, table.freq_column or "")
+        if slip is not None:
+            raise InputError(f"{table.where(0)}, {table.freq_column}", slip)
+        lo, hi = REJECTION_RANGE_DB
+        for i, (f, r) in enumerate(zip(freq, rej, strict=True)):
+            if not f > 0:
+                raise InputError(f"{table.where(i)}, {table.freq_column}", "must be > 0")
+            if i and not f > freq[i - 1]:
+                raise InputError(
+                    f"{table.where(i)}, {table.freq_column}",
+                    f"not strictly ascending (follows {freq[i - 1]:.6g} Hz)",
+                )
+            if not lo <= r <= hi:
+                raise InputError(
+                    f"{table.where(i)}, image_rejection_db",
+                    f"{r:g} dB is outside {lo:g}..{hi:g} dB",
+                )
+    except InputError as exc:
+        raise InputError("conversion.image_rejection_db", str(exc)) from None
     return np.asarray(freq), np.asarray(rej)
 
 

@@ -79,6 +79,10 @@ except ImportError:  # pragma: no cover
 
 T0_DEFAULT_K = 290.0
 
+MAX_SPAN_OVER_RBW = 1e5
+"""span/RBW above this needs more trace points than analyzers have (common practice: traces
+of at most 100 001 points; a span/RBW near 1e6 is the 1e6 factor of an RBW given in MHz)."""
+
 _STRICT = ConfigDict(extra="forbid", validate_default=True, allow_inf_nan=False)
 
 
@@ -292,6 +296,15 @@ class AcquisitionPolicy(BaseModel):
                 "span_hz",
                 f"{self.span_hz:g} Hz is narrower than rbw_hz {self.rbw_hz:g} Hz",
                 fix="use span_hz >= rbw_hz, or 0 for zero span",
+            )
+        if self.span_hz / self.rbw_hz > MAX_SPAN_OVER_RBW:
+            raise InputError(
+                "rbw_hz",
+                f"{self.rbw_hz:g} Hz resolves the {self.span_hz:g} Hz span into "
+                f"{self.span_hz / self.rbw_hz:.3g} cells, more than any analyzer's trace "
+                f"holds (at most {MAX_SPAN_OVER_RBW:g}): looks like kHz or MHz given where Hz "
+                "is asked",
+                fix="give the RBW in Hz (1 MHz is 1e6), or narrow span_hz",
             )
         return self
 

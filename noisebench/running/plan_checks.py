@@ -4,7 +4,7 @@ names, the instrument profiles and the bench addresses."""
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from pydantic import (
@@ -13,9 +13,11 @@ from pydantic import (
 
 from noisebench.bench.addresses import is_simulated
 from noisebench.errors import InputError
-from noisebench.running.plan import Plan
 from noisebench.running.plan_errors import format_validation_error
 from noisebench.science.point import Method
+
+if TYPE_CHECKING:  # annotations only: plan.py loads this module to run the checks
+    from noisebench.running.plan import Plan
 
 # --------------------------------------------------------------------------- cross-field checks
 
@@ -65,12 +67,6 @@ def _check_conversion(plan: Plan, *, check_files: bool) -> list[str]:
             'gain.source: "measure" is not available for a frequency-converting DUT yet (the '
             "generator at the RF and the analyzer at the IF); give the conversion gain over RF "
             'with source = "file" or "constant"'
-        )
-    if plan.uncertainty is not None:
-        problems.append(
-            "uncertainty: full budgets are not available for a frequency-converting DUT yet; "
-            "delete the section (each point keeps its statistical u and the ENR and "
-            "image-rejection contributions in its notes)"
         )
     lo_bench = plan.bench.lo
     level = section.lo.level_dbm

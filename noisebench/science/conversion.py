@@ -66,7 +66,7 @@ conversion gain known and a floor reading ``N_f = k T_term + N_sa`` at the IF:
 
     Te_SSB = (N_m - N_f + k T_term) / (k G_s) - (T_s + r T_i).                            (6)
 
-References: docs/references.md ("Frequency-converting DUTs"). The rest is common practice.
+References: docs/references.md §10 and §17. The rest is common practice.
 """
 
 from __future__ import annotations
@@ -78,12 +78,23 @@ import numpy as np
 
 from noisebench.errors import InputError
 from noisebench.science.physics import (
-    BOLTZMANN_J_PER_K,
     T0_K,
     ArrayLike,
     FloatOrArray,
     checked_array,
+    db_from_ratio,
+    dsb_from_ssb,
+    floor_corrected_density_w_per_hz,
+    gain_from_hot_cold,
+    loss_output_temperature_k,
+    ratio_from_db,
     scalar_or_array,
+    ssb_factor_from_te_k,
+    te_k_from_output_density,
+    te_k_from_y,
+    thermal_density_w_per_hz,
+    two_port_output_temperature_k,
+    two_response_temperature_k,
 )
 
 __all__ = [
@@ -258,14 +269,14 @@ def image_ratio_from_rejection_db(rejection_db: ArrayLike) -> FloatOrArray:
             "image_rejection_db", "must be a number of dB or +inf", fix="0 dB = equal responses"
         )
     with np.errstate(over="ignore"):
-        return scalar_or_array(np.where(np.isposinf(arr), 0.0, 10.0 ** (-arr / 10.0)))
+        return scalar_or_array(np.where(np.isposinf(arr), 0.0, ratio_from_db(-arr)))
 
 
 def rejection_db_from_image_ratio(image_ratio: ArrayLike) -> FloatOrArray:
     """Image rejection in dB from r = G_i / G_s; r = 0 gives +inf."""
     r = _ratio(image_ratio)
     with np.errstate(divide="ignore"):
-        return scalar_or_array(-10.0 * np.log10(r))
+        return scalar_or_array(-db_from_ratio(r))
 
 
 def _ratio(image_ratio: ArrayLike) -> np.ndarray:
@@ -288,7 +299,7 @@ def band_temperature_k(
     if np.any(loss < 1):
         raise InputError("loss_lin", "must be >= 1 (a linear loss)", fix="10**(loss_db/10)")
     tp = checked_array("physical_temperature_k", physical_temperature_k)
-    return scalar_or_array(t / loss + tp * (1.0 - 1.0 / loss))
+    return scalar_or_array(loss_output_temperature_k(t, loss, tp))
 
 
 def converter_output_density_w_per_hz(
@@ -304,28 +315,34 @@ def converter_output_density_w_per_hz(
     ts = checked_array("signal_temperature_k", signal_temperature_k)
     ti = checked_array("image_temperature_k", image_temperature_k)
     te = checked_array("te_ssb_k", te_ssb_k)
-    return scalar_or_array(BOLTZMANN_J_PER_K * (gs * ts + gi * ti + gs * te))
+    # G_s (T_s + Te_SSB) + G_i T_i: the signal band as a two-port, the image band's share added
+    t_out = two_port_output_temperature_k(ts, gs, te) + gi * ti
+    return scalar_or_array(thermal_density_w_per_hz(t_out))
 
 
 def ssb_factor(te_ssb_k: ArrayLike, image_ratio: ArrayLike, t0_k: float = T0_K) -> FloatOrArray:
     """Single-sideband noise factor ``1 + r + Te_SSB / T0`` (eq. 3)."""
-    return scalar_or_array(1.0 + _ratio(image_ratio) + checked_array("te_ssb_k", te_ssb_k) / t0_k)
+    return scalar_or_array(
+        ssb_factor_from_te_k(checked_array("te_ssb_k", te_ssb_k), _ratio(image_ratio), t0_k)
+    )
 
 
 def dsb_factor(te_ssb_k: ArrayLike, image_ratio: ArrayLike, t0_k: float = T0_K) -> FloatOrArray:
     """Double-sideband noise factor ``(1 + r + Te_SSB / T0) / (1 + r)`` (eq. 2, 3)."""
     r = _ratio(image_ratio)
-    return scalar_or_array((1.0 + r + checked_array("te_ssb_k", te_ssb_k) / t0_k) / (1.0 + r))
+    return scalar_or_array(
+        dsb_from_ssb(ssb_factor_from_te_k(checked_array("te_ssb_k", te_ssb_k), r, t0_k), r)
+    )
 
 
 def te_dsb_from_ssb_k(te_ssb_k: ArrayLike, image_ratio: ArrayLike) -> FloatOrArray:
     """``Te_DSB = Te_SSB / (1 + r)``, K: the added noise referred to both bands (eq. 3)."""
-    return scalar_or_array(checked_array("te_ssb_k", te_ssb_k) / (1.0 + _ratio(image_ratio)))
+    return scalar_or_array(dsb_from_ssb(checked_array("te_ssb_k", te_ssb_k), _ratio(image_ratio)))
 
 
 def image_correction_db(image_ratio: ArrayLike) -> FloatOrArray:
     """``NF_SSB - NF_DSB = 10 log10(1 + r)``, dB (3.01 dB for equal responses, 0 for none)."""
-    return scalar_or_array(10.0 * np.log10(1.0 + _ratio(image_ratio)))
+    return scalar_or_array(db_from_ratio(1.0 + _ratio(image_ratio)))
 
 
 def converter_te_from_y_k(
@@ -342,13 +359,15 @@ def converter_te_from_y_k(
     """
     yy = checked_array("y", y)
     r = _ratio(image_ratio)
-    hot = checked_array("hot_signal_k", hot_signal_k) + r * checked_array(
-        "hot_image_k", hot_image_k
+    hot = two_response_temperature_k(
+        checked_array("hot_signal_k", hot_signal_k), checked_array("hot_image_k", hot_image_k), r
     )
-    cold = checked_array("cold_signal_k", cold_signal_k) + r * checked_array(
-        "cold_image_k", cold_image_k
+    cold = two_response_temperature_k(
+        checked_array("cold_signal_k", cold_signal_k),
+        checked_array("cold_image_k", cold_image_k),
+        r,
     )
-    return scalar_or_array((hot - yy * cold) / (yy - 1.0))
+    return scalar_or_array(te_k_from_y(yy, hot, cold))
 
 
 def converter_gain_from_hot_cold(
@@ -367,11 +386,19 @@ def converter_gain_from_hot_cold(
     image inputs and at the calibration plane (IF).
     """
     r = _ratio(image_ratio)
-    num = (np.asarray(hot_w_per_hz) - np.asarray(cold_w_per_hz)) / (
-        np.asarray(excess_signal_k) + r * np.asarray(excess_image_k)
+    excess = two_response_temperature_k(excess_signal_k, excess_image_k, r)
+    return scalar_or_array(
+        gain_from_hot_cold(
+            hot_w_per_hz,
+            cold_w_per_hz,
+            excess,
+            0.0,
+            hot_cal_w_per_hz,
+            cold_cal_w_per_hz,
+            np.asarray(excess_cal_k),
+            0.0,
+        )
     )
-    den = (np.asarray(hot_cal_w_per_hz) - np.asarray(cold_cal_w_per_hz)) / np.asarray(excess_cal_k)
-    return scalar_or_array(num / den)
 
 
 def converter_gain_method_te_k(
@@ -397,11 +424,11 @@ def converter_gain_method_te_k(
         raise InputError("conversion_gain_lin", "must be > 0", fix="10**(gain_db/10)")
     r = _ratio(image_ratio)
     if n_floor_w_per_hz is not None:
-        n = (
-            n
-            - checked_array("n_floor_w_per_hz", n_floor_w_per_hz)
-            + BOLTZMANN_J_PER_K * (checked_array("floor_temperature_k", floor_temperature_k))
+        n = floor_corrected_density_w_per_hz(
+            n,
+            checked_array("n_floor_w_per_hz", n_floor_w_per_hz),
+            checked_array("floor_temperature_k", floor_temperature_k),
         )
     ts = checked_array("signal_temperature_k", signal_temperature_k)
     ti = checked_array("image_temperature_k", image_temperature_k)
-    return scalar_or_array(n / (BOLTZMANN_J_PER_K * g) - (ts + r * ti))
+    return scalar_or_array(te_k_from_output_density(n, g, two_response_temperature_k(ts, ti, r)))

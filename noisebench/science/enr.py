@@ -55,7 +55,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 from noisebench.errors import InputError
 from noisebench.science.physics import FloatOrArray
 from noisebench.science.ranges import check_range, frequency_column_problem
-from noisebench.science.tables import read_table_text
+from noisebench.science.tables import FREQ_COLUMNS, META_LINE, read_table_text, separator_problem
 from noisebench.user_files import MAX_TABLE_ROWS, list_problems
 
 logger = logging.getLogger(__name__)
@@ -67,9 +67,7 @@ ENR_MAX_DB = 45.0
 FREQ_MAX_HZ = 1e12
 _EDGE_REL_TOL = 1e-9  # frequencies this close to a table edge count as inside
 
-_FREQ_COLUMNS = {"freq_hz": 1.0, "freq_khz": 1e3, "freq_mhz": 1e6, "freq_ghz": 1e9}
-_KNOWN_COLUMNS = set(_FREQ_COLUMNS) | {"enr_db", "u_enr_db"}
-_META_RE = re.compile(r"^#\s*([a-z][a-z0-9_]*)\s*:\s*(.*?)\s*$")
+_KNOWN_COLUMNS = set(FREQ_COLUMNS) | {"enr_db", "u_enr_db"}
 
 Extrapolate = Literal["refuse", "clamp"]
 
@@ -345,18 +343,11 @@ def _parse_metadata(
         return None, coverage_k, problems
 
 
-def _foreign_separator(header: str) -> str | None:
-    """';' or a tab when a header line uses it instead of commas (a spreadsheet's locale)."""
-    if "," in header:
-        return None
-    return next((sep for sep in (";", "\t") if sep in header), None)
-
-
 def _parse_header(line_no: int, line: str, label: str) -> tuple[list[str], list[tuple[str, str]]]:
     cols = [c.strip().lower() for c in line.split(",")]
     problems = []
     where = f"{label} line {line_no}, header"
-    separator = _foreign_separator(line)
+    separator = separator_problem(line)
     if separator:
         return cols, [
             (
@@ -376,7 +367,7 @@ def _parse_header(line_no: int, line: str, label: str) -> tuple[list[str], list[
             )
     if len(set(cols)) != len(cols):
         problems.append((where, "repeats a column"))
-    if sum(c in _FREQ_COLUMNS for c in cols) > 1:
+    if sum(c in FREQ_COLUMNS for c in cols) > 1:
         problems.append((where, "has more than one frequency column"))
     if "enr_db" not in cols:
         problems.append((where, "has no enr_db column"))
@@ -395,7 +386,7 @@ def _parse(text: str, label: str) -> tuple[EnrTable | None, list[tuple[str, str]
         if not line:
             continue
         if line.startswith("#"):
-            m = _META_RE.match(line)
+            m = META_LINE.match(line)
             if m and header is None:
                 key, value = m.groups()
                 if key in meta_items:
@@ -473,9 +464,9 @@ def _table_from_rows(
     problems: list[tuple[str, str]],
 ) -> EnrTable | None:
     col = {name: i for i, name in enumerate(header)}
-    freq_col = next((c for c in header if c in _FREQ_COLUMNS), None)
+    freq_col = next((c for c in header if c in FREQ_COLUMNS), None)
     line_of = [ln for ln, _ in rows]
-    scale = _FREQ_COLUMNS[freq_col] if freq_col else 1.0
+    scale = FREQ_COLUMNS[freq_col] if freq_col else 1.0
     freq = [r[col[freq_col]] * scale for _, r in rows] if freq_col else []
     enr = [r[col["enr_db"]] for _, r in rows]
     u = [r[col["u_enr_db"]] for _, r in rows] if "u_enr_db" in col else None

@@ -45,7 +45,12 @@ from pydantic import BaseModel, ConfigDict, Field, field_serializer, field_valid
 
 from noisebench.errors import InputError
 from noisebench.science.ranges import check_range, frequency_column_problem
-from noisebench.science.tables import read_table_text
+from noisebench.science.tables import (
+    FREQ_COLUMNS,
+    read_table_text,
+    scan_csv_table,
+    separator_problem,
+)
 from noisebench.user_files import MAX_TOUCHSTONE_BYTES, check_file_size, check_row_count
 
 logger = logging.getLogger(__name__)
@@ -56,9 +61,7 @@ GAIN_MIN_DB = -200.0
 GAIN_MAX_DB = 100.0
 FREQ_MAX_HZ = 1e12
 _EDGE_REL_TOL = 1e-9
-_FREQ_COLUMNS = {"freq_hz": 1.0, "freq_khz": 1e3, "freq_mhz": 1e6, "freq_ghz": 1e9}
 _VALUE_COLUMNS = {"gain_db": ("u_gain_db", 1.0), "loss_db": ("u_loss_db", -1.0)}
-_META = re.compile(r"^#\s*([a-z][a-z0-9_]*)\s*:\s*(.*?)\s*$")
 
 Extrapolate = Literal["refuse", "clamp"]
 
@@ -256,14 +259,14 @@ def _read_text(source: str | Path, name: str | None) -> tuple[str, str]:
 
 def _parse_header(line: str, where: str) -> tuple[list[str], str, float]:
     cols = [c.strip().lower() for c in line.split(",")]
-    if "," not in line and (";" in line or "\t" in line):
-        separator = ";" if ";" in line else "\t"
+    separator = separator_problem(line)
+    if separator is not None:
         raise InputError(
             f"{where}, header",
             f"columns are separated by {separator!r}",
             fix="this format uses commas (and '.' as the decimal point)",
         )
-    known = set(_FREQ_COLUMNS) | set(_VALUE_COLUMNS) | {u for u, _ in _VALUE_COLUMNS.values()}
+    known = set(FREQ_COLUMNS) | set(_VALUE_COLUMNS) | {u for u, _ in _VALUE_COLUMNS.values()}
     unknown = [c for c in cols if c not in known]
     if unknown:
         raise InputError(
@@ -274,7 +277,7 @@ def _parse_header(line: str, where: str) -> tuple[list[str], str, float]:
         )
     if len(set(cols)) != len(cols):
         raise InputError(f"{where}, header", "repeats a column")
-    if sum(c in _FREQ_COLUMNS for c in cols) > 1:
+    if sum(c in FREQ_COLUMNS for c in cols) > 1:
         raise InputError(f"{where}, header", "has more than one frequency column")
     values = [c for c in cols if c in _VALUE_COLUMNS]
     if len(values) != 1:
@@ -295,47 +298,23 @@ def _parse_header(line: str, where: str) -> tuple[list[str], str, float]:
 
 
 def _parse_csv(text: str, label: str) -> GainTable:
-    metadata: dict[str, str] = {}
-    header: list[str] | None = None
-    value_col, sign = "gain_db", 1.0
-    rows: list[tuple[int, list[float]]] = []
-    for line_no, raw in enumerate(text.splitlines(), start=1):
-        line = raw.strip()
-        where = f"{label} line {line_no}"
-        if not line:
-            continue
-        if line.startswith("#"):
-            match = _META.match(line)
-            if match and header is None:
-                key, value = match.groups()
-                if key in metadata:
-                    raise InputError(f"{where}, {key}", "repeats a metadata key")
-                metadata[key] = value
-            continue
-        if header is None:
-            header, value_col, sign = _parse_header(line, where)
-            continue
-        check_row_count(len(rows) + 1, field=where, what="gain/loss table")
-        cells = [c.strip() for c in line.split(",")]
-        if len(cells) != len(header):
-            raise InputError(where, f"has {len(cells)} fields, the header has {len(header)}")
-        rows.append((line_no, [_cell(c, col, where) for c, col in zip(cells, header, strict=True)]))
-    if header is None:
-        raise InputError(label, "has no header line", fix="e.g. 'freq_hz,gain_db,u_gain_db'")
-    if not rows:
-        raise InputError(label, "has no data rows")
-    _check_temperature(metadata, label)
-    return _table_from_rows(header, value_col, sign, rows, metadata, label)
+    chosen: list[tuple[str, float]] = []
 
+    def header(line: str, where: str) -> list[str]:
+        cols, value_col, sign = _parse_header(line, where)
+        chosen.append((value_col, sign))
+        return cols
 
-def _cell(cell: str, column: str, where: str) -> float:
-    try:
-        value = float(cell)
-    except ValueError:
-        raise InputError(f"{where}, {column}", f"not a number: {cell!r}") from None
-    if not math.isfinite(value):
-        raise InputError(f"{where}, {column}", f"must be finite (got {cell!r})")
-    return value
+    table = scan_csv_table(
+        text,
+        label,
+        what="gain/loss table",
+        parse_header=header,
+        header_example="freq_hz,gain_db,u_gain_db",
+    )
+    _check_temperature(table.metadata, label)
+    value_col, sign = chosen[0]
+    return _table_from_rows(table.header, value_col, sign, table.rows, table.metadata, label)
 
 
 def _check_temperature(metadata: dict[str, str], label: str) -> None:
@@ -371,7 +350,7 @@ def _table_from_rows(
     label: str,
 ) -> GainTable:
     col = {name: i for i, name in enumerate(header)}
-    freq_col = next((c for c in header if c in _FREQ_COLUMNS), None)
+    freq_col = next((c for c in header if c in FREQ_COLUMNS), None)
     u_col = _VALUE_COLUMNS[value_col][0]
     lines = [n for n, _ in rows]
     if freq_col is None and len(rows) != 1:
@@ -380,7 +359,7 @@ def _table_from_rows(
             "a table without a frequency column holds one row",
             fix="add a freq_hz column",
         )
-    freq = [r[col[freq_col]] * _FREQ_COLUMNS[freq_col] for _, r in rows] if freq_col else []
+    freq = [r[col[freq_col]] * FREQ_COLUMNS[freq_col] for _, r in rows] if freq_col else []
     unit_slip = frequency_column_problem(freq, freq_col or "")
     if unit_slip is not None:
         raise InputError(f"{label} line {lines[0]}, freq_hz", unit_slip)

@@ -43,8 +43,10 @@ ArrayLike = float | int | Sequence[float] | np.ndarray
 # The formulas themselves, once: numpy arrays (or floats) in, arrays out, SI units, no input
 # checks (callers validate; inside propagation models the inputs are perturbed copies of checked
 # values). The checked public functions below, the methods, the uncertainty models and the
-# simulator's component models all evaluate these, so the checks against the outside world in
+# running layer all evaluate these, so the checks against the outside world in
 # tests/test_physics.py and tests/test_reference_cascade.py exercise the code a measurement runs.
+# The simulator deliberately does NOT use them (noisebench/sims/models.py has its own forms), so
+# an error here shows up against the simulator instead of cancelling.
 
 
 def ratio_from_db(db: ArrayLike) -> np.ndarray:
@@ -177,6 +179,33 @@ def loss_output_temperature_k(
     """Output noise temperature of a matched loss ``L`` at ``Tp``: ``T/L + Tp*(1 - 1/L)``, K."""
     loss = np.asarray(loss_lin, dtype=float)
     return np.asarray(t_in_k) / loss + np.asarray(physical_temperature_k) * (1.0 - 1.0 / loss)
+
+
+# Frequency converters (two responses: signal band gain G_s, image band G_i, r = G_i / G_s;
+# docs/references.md §10 and §17). A converter's input temperatures are referred to the signal
+# band, so every single-response kernel above applies with T replaced by ``T_s + r T_i``.
+
+
+def two_response_temperature_k(
+    t_signal_k: ArrayLike, t_image_k: ArrayLike, image_ratio: ArrayLike
+) -> np.ndarray:
+    """Input temperature of a two-response converter referred to its signal band:
+    ``T_s + r T_i``, K (IF noise ``k G_s (T_s + r T_i + Te_SSB)``, docs/references.md §17)."""
+    return np.asarray(t_signal_k, dtype=float) + np.asarray(image_ratio) * np.asarray(t_image_k)
+
+
+def ssb_factor_from_te_k(
+    te_ssb_k: ArrayLike, image_ratio: ArrayLike, t0_k: float = T0_K
+) -> np.ndarray:
+    """Single-sideband noise factor ``1 + r + Te_SSB/T0`` (docs/references.md §10, §17)."""
+    return 1.0 + np.asarray(image_ratio, dtype=float) + np.asarray(te_ssb_k, dtype=float) / t0_k
+
+
+def dsb_from_ssb(value_ssb: ArrayLike, image_ratio: ArrayLike) -> np.ndarray:
+    """Double-sideband value from the single-sideband one, ``x / (1 + r)``: the noise factor
+    (``F_DSB = F_SSB/(1 + r)``) and the added temperature (``Te_DSB = Te_SSB/(1 + r)``)
+    alike (docs/references.md §10, §17)."""
+    return np.asarray(value_ssb, dtype=float) / (1.0 + np.asarray(image_ratio, dtype=float))
 
 
 # --------------------------------------------------------------------------- helpers
@@ -574,7 +603,7 @@ def dsb_from_ssb_factor(
     """Double-sideband noise factor from single-sideband: F_DSB = F_SSB/(1 + G_i/G_s)."""
     f = checked_array("f_ssb", f_ssb)
     _require("f_ssb", f, f > 0, "> 0", "noise factors are linear")
-    return scalar_or_array(f / (1.0 + _image_ratio(image_to_signal_gain_ratio)))
+    return scalar_or_array(dsb_from_ssb(f, _image_ratio(image_to_signal_gain_ratio)))
 
 
 def ssb_from_dsb_te_k(
@@ -591,7 +620,7 @@ def dsb_from_ssb_te_k(
 ) -> FloatOrArray:
     """Te_DSB = Te_SSB/(1 + G_i/G_s), K."""
     te = checked_array("te_ssb_k", te_ssb_k)
-    return scalar_or_array(te / (1.0 + _image_ratio(image_to_signal_gain_ratio)))
+    return scalar_or_array(dsb_from_ssb(te, _image_ratio(image_to_signal_gain_ratio)))
 
 
 # --------------------------------------------------------------------------- quantum correction

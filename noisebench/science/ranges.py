@@ -51,10 +51,7 @@ def _span(low: float | None, high: float | None, unit: str) -> str:
     return f"{lo}..{hi} {unit}"
 
 
-TEMPERATURE_HINT_C = (
-    "a value this low looks like degrees Celsius: give kelvin (K = degC + 273.15, so 23 degC is "
-    "296.15 K)"
-)
+TEMPERATURE_HINT_C = "a value this low looks like degrees Celsius: give kelvin (K = degC + 273.15)"
 
 RANGES: dict[str, PhysicalRange] = {
     # physical temperature of a termination, noise source (cold), cable or loss

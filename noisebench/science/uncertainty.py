@@ -171,6 +171,12 @@ def budget_for_point(
     refl = inputs.reflections_at(point.freq_hz, base_dir=base_dir)
     dens = dict(point.densities_w_per_hz)
     u_dens = dict(notes.get("u_densities_w_per_hz") or {})
+    if point.conversion is not None:
+        from noisebench.science.uncertainty_converter import converter_budget_for_point
+
+        return converter_budget_for_point(
+            point, inputs, dens, u_dens, t0, refl, method, u_enr_db=u_enr_db
+        )
     if point.method is Method.GAIN:
         return _gain_point_budget(point, inputs, dens, u_dens, t0, refl, method)
     return _y_point_budget(point, inputs, dens, u_dens, calibration, u_enr_db, t0, refl, method)

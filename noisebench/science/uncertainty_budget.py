@@ -63,7 +63,14 @@ class Budget(BaseModel):
     model_config = ConfigDict(frozen=True, populate_by_name=True)
 
     freq_hz: float
-    model: Literal["y_factor", "y_factor_uncorrected", "gain"]
+    model: Literal[
+        "y_factor",
+        "y_factor_uncorrected",
+        "gain",
+        "converter_y_factor",
+        "converter_y_factor_uncorrected",
+        "converter_gain",
+    ]
     nf_db: float
     contributions: list[Contribution]
     u_combined_db: float

@@ -19,11 +19,15 @@ A video bandwidth below the RBW smooths on the averaging scale over
 ``round(B_stat / (pi * VBW))`` samples (one-pole video filter, averaging time ``1/(pi VBW)``):
 a SAMPLE point is then the average of those samples on the averaging scale, as for AVERAGE.
 
-Markers (:func:`marker_from_trace`) integrate the trace over exactly their band
-(:func:`noisebench.science.estimator.band_weights_hz`). A noise marker also removes the detector
-bias
-of the applied settings (the instrument knows its detector) and divides by the ENBW; it says so
-with ``instrument_corrected``.
+Markers (:func:`marker_from_trace`) integrate the trace over exactly their band (each point
+weighted by the Hz of the band its cell covers). A noise marker also removes the detector bias of
+the applied settings (the instrument knows its detector) and divides by the ENBW; it says so with
+``instrument_corrected``.
+
+Independence: the filter's ENBW, statistical bandwidth and response come from
+:mod:`noisebench.sims.rbw_shapes`, the detector bias from :func:`detector_mean_ratio` and the
+marker weights from :func:`cell_weights_hz`, all derived here for the simulator and never taken
+from the estimator or ``science/`` (``tests/test_sim_independence.py``).
 """
 
 from __future__ import annotations
@@ -35,15 +39,16 @@ from typing import Protocol
 
 import numpy as np
 from pydantic import ValidationError
-from scipy.constants import k as BOLTZMANN_J_PER_K
 
 from noisebench.bench.acquisition import (
     AcquisitionRequest,
     AcquisitionSettings,
     AveragingScale,
     Detector,
+    FilterKind,
     MarkerKind,
     MarkerReading,
+    RbwFilter,
     SweepMode,
     Trace,
     TraceUnit,
@@ -51,11 +56,15 @@ from noisebench.bench.acquisition import (
 from noisebench.bench.capabilities import NoiseDriveOutput
 from noisebench.bench.instruments import Analyzer
 from noisebench.errors import InputError
-from noisebench.science.detection import point_model_for
-from noisebench.science.estimator import band_weights_hz
-from noisebench.science.filters import FilterKind, RbwFilter, window_enbw_bins
+from noisebench.sims import rbw_shapes
 from noisebench.sims.clock import SimClock
-from noisebench.sims.models import AnalyzerFrontEnd, SpectrumAtInput, dbm_to_w, w_to_dbm
+from noisebench.sims.models import (
+    BOLTZMANN_J_PER_K,
+    AnalyzerFrontEnd,
+    SpectrumAtInput,
+    dbm_to_w,
+    w_to_dbm,
+)
 from noisebench.sims.noisegen import Axis, TraceRecipe, field_kernel, generate_trace
 from noisebench.sims.scenario import AnalyzerSpec
 
@@ -330,7 +339,7 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
         sp = self.spec
         if mode is SweepMode.FFT:
             segments = max(1, math.ceil(span / sp.fft_segment_span_hz))
-            frame_s = window_enbw_bins(str(filt.window)) / filt.enbw_ratio / rbw
+            frame_s = rbw_shapes.window_b3_bins(str(filt.window)) / rbw  # one frame: N / fs
             return segments * frame_s
         if span == 0:
             minimum = MIN_ZERO_SPAN_TIME_PER_POINT_S * points
@@ -351,7 +360,7 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
         sweep_s: float,
         filt: RbwFilter,
     ) -> int:
-        bstat = filt.stat_bw_hz(rbw)
+        bstat = rbw_shapes.stat_bw_hz(filt, rbw)
         video = max(1, round(bstat / (math.pi * vbw))) if vbw < rbw else 1
         if detector is Detector.SAMPLE:
             return video
@@ -468,7 +477,8 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
             scale = np.asarray(gain)[:, None]
         else:
             scale = gain
-        noise = BOLTZMANN_J_PER_K * temp_k * s.enbw_hz * scale
+        enbw = rbw_shapes.enbw_hz(s.rbw_filter, s.rbw_hz)
+        noise = BOLTZMANN_J_PER_K * temp_k * enbw * scale
         if noise.ndim == 2 and noise.shape[1] == 1:
             noise = np.broadcast_to(noise, (noise.shape[0], freq.size))
         return noise, gain
@@ -522,7 +532,8 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
             else:
                 lo_i, hi_i = 0, freq.size
             if hi_i > lo_i:
-                out[row, lo_i:hi_i] = p * s.rbw_filter.power_response(freq[lo_i:hi_i] - f, s.rbw_hz)
+                offset = (freq[lo_i:hi_i] - f) / s.rbw_hz
+                out[row, lo_i:hi_i] = p * rbw_shapes.power_response(s.rbw_filter, offset)
         return out
 
     # ------------------------------------------------------------ markers -------------------
@@ -554,8 +565,7 @@ def marker_from_trace(
 
     Both functions integrate the displayed trace over exactly ``band_hz`` around ``freq_hz``:
     ``B = sum(w_i P_i) / ENBW`` with each point weighted by the Hz of the band its cell covers
-    (:func:`~noisebench.science.estimator.band_weights_hz`); in zero span ``B = mean(P) * band /
-    ENBW``.
+    (:func:`cell_weights_hz`); in zero span ``B = mean(P) * band / ENBW``.
     The band must lie inside the trace; the automatic band (BAND_POWER 5 RBW, NOISE_DENSITY the
     larger of one RBW and 5 point spacings) shrinks near an edge and stays centred.
 
@@ -574,18 +584,19 @@ def marker_from_trace(
     if band_hz is not None and not band_hz > 0:
         raise InputError("marker.band_hz", "must be > 0", value=band_hz)
     power_w = dbm_to_w(trace.values)
+    enbw = rbw_shapes.enbw_hz(s.rbw_filter, s.rbw_hz)
     if s.span_hz == 0 or s.points == 1:
         band = (
             band_hz
             if band_hz is not None
             else (5.0 * s.rbw_hz if kind is MarkerKind.BAND_POWER else s.rbw_hz)
         )
-        band_power_w = float(np.mean(power_w)) * band / s.enbw_hz
+        band_power_w = float(np.mean(power_w)) * band / enbw
     else:
         spacing = s.span_hz / (s.points - 1)
         band = _marker_band(s, freq_hz, kind, band_hz, spacing)
-        weights = band_weights_hz(trace.freq_hz, freq_hz, band)
-        band_power_w = float(weights @ power_w) / s.enbw_hz
+        weights = cell_weights_hz(trace.freq_hz, freq_hz, band)
+        band_power_w = float(weights @ power_w) / enbw
     if kind is MarkerKind.BAND_POWER:
         value_w, corrected = band_power_w, _unbiased_power(s)
     else:
@@ -633,10 +644,61 @@ def _marker_band(
     return float(band_hz)
 
 
+def cell_weights_hz(freq_hz: np.ndarray, center_hz: float, band_hz: float) -> np.ndarray:
+    """Hz of the band ``center_hz +/- band_hz/2`` that each trace point's cell covers.
+
+    A point's cell reaches half-way to its neighbours (the end points' cells are as wide as the
+    inner ones); the weights sum to the part of the band inside the trace.
+    """
+    f = np.asarray(freq_hz, dtype=float)
+    order = np.argsort(f)
+    fs = f[order]
+    mid = 0.5 * (fs[1:] + fs[:-1])
+    first = fs[0] - (mid[0] - fs[0]) if fs.size > 1 else fs[0]
+    last = fs[-1] + (fs[-1] - mid[-1]) if fs.size > 1 else fs[-1]
+    edges = np.concatenate(([first], mid, [last]))
+    lo, hi = center_hz - band_hz / 2.0, center_hz + band_hz / 2.0
+    covered = np.clip(np.minimum(edges[1:], hi) - np.maximum(edges[:-1], lo), 0.0, None)
+    weights = np.empty_like(covered)
+    weights[order] = covered
+    return weights
+
+
+def detector_mean_ratio(s: AcquisitionSettings) -> float | None:
+    """E[trace value] / true mean noise power for the applied settings; None for a peak detector.
+
+    Worked out for the simulator from the way it draws a point (``noisegen``): each trace holds
+    the detector's combination of ``k = detector_samples`` unit-mean exponential looks, and ``N``
+    traces are averaged on the averaging scale. Power scale (and the RMS detector averaged on
+    it): unbiased. Log scale: the point is ``exp(mean of ln D)`` over the ``N`` traces, so
+    ``E = E[D^(1/N)]^N``, with ``E[D^s] = Gamma(k + s) / (Gamma(k) k^s)`` for the power mean of
+    ``k`` looks (RMS) and ``Gamma(1 + s/k)^k`` for ``k`` looks averaged on the log scale
+    (AVERAGE, or SAMPLE behind a video filter). Voltage scale: the point is the square of a mean
+    of ``M`` values ``v``, so ``E = E[v]^2 + Var(v) / M``.
+    """
+    if s.detector in (Detector.PEAK, Detector.NEGATIVE_PEAK):
+        return None
+    k = float(s.detector_samples or 1)
+    n = float(s.averages)
+    scale = s.averaging_scale
+    if scale is AveragingScale.POWER:
+        return 1.0
+    power_mean = s.detector is Detector.RMS or k == 1.0
+    if scale is AveragingScale.LOG_POWER:
+        if power_mean:
+            moment = math.lgamma(k + 1.0 / n) - math.lgamma(k) - math.log(k) / n
+            return math.exp(n * moment)
+        return math.exp(n * k * math.lgamma(1.0 + 1.0 / (n * k)))
+    if power_mean:  # v = sqrt of a power mean of k looks, averaged over N traces
+        mean_v = math.exp(math.lgamma(k + 0.5) - math.lgamma(k) - 0.5 * math.log(k))
+        return mean_v**2 + (1.0 - mean_v**2) / n
+    mean_v = math.sqrt(math.pi) / 2.0  # v = sqrt of one exponential look, N k of them averaged
+    return mean_v**2 + (1.0 - mean_v**2) / (n * k)
+
+
 def _noise_marker_w(s: AcquisitionSettings, displayed_w_per_hz: float) -> tuple[float, bool]:
     """(noise-marker density in W/Hz, corrected?) from the displayed band power per Hz."""
-    try:
-        ratio = point_model_for(s, field="settings").mean_ratio()
-    except InputError:  # peak detectors: no known noise statistics, so no correction
-        return displayed_w_per_hz * s.enbw_hz / s.rbw_hz, False
+    ratio = detector_mean_ratio(s)
+    if ratio is None:  # peak detectors: no known noise statistics, so no correction
+        return displayed_w_per_hz * rbw_shapes.enbw_hz(s.rbw_filter, s.rbw_hz) / s.rbw_hz, False
     return displayed_w_per_hz / ratio, True

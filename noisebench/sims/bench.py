@@ -26,7 +26,6 @@ from pathlib import Path as FsPath
 from typing import Any
 
 import numpy as np
-from scipy.constants import k as BOLTZMANN_J_PER_K
 
 from noisebench.bench.instruments import Bench
 from noisebench.errors import InputError
@@ -34,6 +33,7 @@ from noisebench.sims.analyzer import SimAnalyzer
 from noisebench.sims.clock import SimClock
 from noisebench.sims.generator import SimGenerator
 from noisebench.sims.models import (
+    BOLTZMANN_J_PER_K,
     T0_K,
     AnalyzerFrontEnd,
     CableModel,

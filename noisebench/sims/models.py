@@ -21,11 +21,14 @@ Conventions (documented physics, not shortcuts):
 * Compression follows a smooth limiter on power (Rapp-style, smoothness 2) parameterised by the
   1 dB compression point.
 
-The noise formulas are the forward forms in :mod:`noisebench.science.physics` (``k T``, Friis
-output temperature, passive loss, ``Th = T0 ENR + Tc``), the same kernels whose checked forms are
-tested against published values and scikit-rf; the methods use the inverse forms. The simulator
-cannot hide an error in them: tests/test_reference_cascade.py checks the methods against
-scikit-rf's noisy-network cascade with no simulator involved.
+Independence (a project rule): the simulator is the truth the measurement code is tested
+against, so it shares NO formula with the code under test. Everything here - the constants, dB
+conversions, NF <-> Te, the Friis and passive-loss forms, the hot temperature of the source - is
+written out again from first principles and never imported from :mod:`noisebench.science`
+(``tests/test_sim_independence.py`` parses every module of ``noisebench/sims/`` and fails on such
+an import). An error in ``science/physics.py`` therefore shows up as a disagreement with the
+simulator instead of cancelling; ``physics.py`` is checked on its own against published values
+and scikit-rf (``tests/test_physics.py``, ``tests/test_reference_cascade.py``).
 """
 
 from __future__ import annotations
@@ -36,20 +39,32 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from noisebench.errors import InputError
-from noisebench.science.physics import (
-    BOLTZMANN_J_PER_K,
-    T0_K,
-    loss_output_temperature_k,
-    loss_te_k,
-    nf_db_from_te_k,
-    source_hot_temperature_k,
-    te_k_from_nf_db,
-    two_port_output_temperature_k,
-)
-from noisebench.science.physics import db_from_ratio as lin_to_db
-from noisebench.science.physics import ratio_from_db as db_to_lin
 
+# Boltzmann constant, J/K: exact since the 2019 redefinition of the SI (CODATA 2018).
+BOLTZMANN_J_PER_K = 1.380649e-23
+# Reference temperature of noise figure and ENR, K (IRE 1959 / IEEE Std 100 standard temperature).
+T0_K = 290.0
 RAPP_SMOOTHNESS = 2.0
+
+
+def db_to_lin(db: np.ndarray | float) -> np.ndarray:
+    """Power ratio from dB: ``10^(dB/10)``."""
+    return np.power(10.0, np.asarray(db, dtype=float) / 10.0)
+
+
+def lin_to_db(lin: np.ndarray | float) -> np.ndarray:
+    """dB from a positive power ratio: ``10 log10(ratio)``."""
+    return 10.0 * np.log10(np.asarray(lin, dtype=float))
+
+
+def te_from_nf_db(nf_db: np.ndarray | float, t0_k: float = T0_K) -> np.ndarray:
+    """Effective input noise temperature (K) of a noise figure (dB): ``Te = T0 (F - 1)``."""
+    return t0_k * (db_to_lin(nf_db) - 1.0)
+
+
+def nf_db_from_te(te_k: np.ndarray | float, t0_k: float = T0_K) -> np.ndarray:
+    """Noise figure (dB) of an effective input noise temperature (K): ``F = 1 + Te / T0``."""
+    return lin_to_db(1.0 + np.asarray(te_k, dtype=float) / t0_k)
 
 
 def dbm_to_w(dbm: np.ndarray | float) -> np.ndarray:
@@ -79,14 +94,15 @@ def amplifier_output_temperature_k(
     t_in_k: np.ndarray, gain_lin: np.ndarray, te_k: np.ndarray
 ) -> np.ndarray:
     """Output noise temperature of a two-port: ``(T_in + Te) * G`` (Friis 1944)."""
-    return two_port_output_temperature_k(t_in_k, gain_lin, te_k)
+    return (np.asarray(t_in_k) + np.asarray(te_k)) * np.asarray(gain_lin)
 
 
 def passive_output_temperature_k(
     t_in_k: np.ndarray, loss_lin: np.ndarray, physical_temperature_k: float | np.ndarray
 ) -> np.ndarray:
     """Output noise temperature of a matched loss ``L >= 1`` at ``Tp``: ``T/L + Tp(1 - 1/L)``."""
-    return loss_output_temperature_k(t_in_k, loss_lin, physical_temperature_k)
+    loss = np.asarray(loss_lin, dtype=float)
+    return np.asarray(t_in_k) / loss + np.asarray(physical_temperature_k) * (1.0 - 1.0 / loss)
 
 
 def mismatch_factor(gamma_a: np.ndarray | complex, gamma_b: np.ndarray | complex) -> np.ndarray:
@@ -188,13 +204,14 @@ class DutModel:
     def te_k(self, freq_hz: np.ndarray | float) -> np.ndarray:
         """Effective input noise temperature, K."""
         if self.passive_temperature_k is not None:
-            return loss_te_k(1.0 / self.gain_lin(freq_hz), self.passive_temperature_k)
+            loss = 1.0 / self.gain_lin(freq_hz)  # a matched loss L at Tp: Te = (L - 1) Tp
+            return (loss - 1.0) * self.passive_temperature_k
         nf = interp_table_db(freq_hz, self.freq_hz, self.nf_table_db)
-        return te_k_from_nf_db(nf, self.t0_k)
+        return te_from_nf_db(nf, self.t0_k)
 
     def nf_db(self, freq_hz: np.ndarray | float) -> np.ndarray:
         """Noise figure in dB (referred to T0)."""
-        return nf_db_from_te_k(self.te_k(freq_hz), self.t0_k)
+        return nf_db_from_te(self.te_k(freq_hz), self.t0_k)
 
 
 @dataclass(frozen=True)
@@ -226,7 +243,7 @@ class NoiseSourceModel:
     ) -> np.ndarray:
         """Hot noise temperature ``T0 * ENR + Tc``, K."""
         enr_lin = db_to_lin(self.true_enr_db(freq_hz, drive_v))
-        return source_hot_temperature_k(enr_lin, self.physical_temperature_k, self.t0_k, "t0")
+        return self.t0_k * enr_lin + self.physical_temperature_k
 
     def temperature_k(
         self, freq_hz: np.ndarray | float, hot_fraction: float, drive_v: float | None = None
@@ -261,19 +278,19 @@ class AnalyzerFrontEnd:
 
     def te_k(self, freq_hz: np.ndarray | float, attenuation_db: float, preamp: bool) -> np.ndarray:
         """Effective input noise temperature of the whole analyzer at these settings, K."""
-        te_mixer = te_k_from_nf_db(
+        te_mixer = te_from_nf_db(
             interp_table_db(freq_hz, self.freq_hz, self.nf_table_db), self.t0_k
         )
         loss = float(db_to_lin(attenuation_db))
-        te_att = float(loss_te_k(loss, self.internal_temperature_k))
+        te_att = (loss - 1.0) * self.internal_temperature_k  # the attenuator: a loss at Tp
         if preamp:
-            te_pre = float(te_k_from_nf_db(self.preamp_nf_db, self.t0_k))
+            te_pre = float(te_from_nf_db(self.preamp_nf_db, self.t0_k))
             return te_att + loss * (te_pre + te_mixer / float(db_to_lin(self.preamp_gain_db)))
         return te_att + loss * te_mixer
 
     def nf_db(self, freq_hz: np.ndarray | float, attenuation_db: float, preamp: bool) -> np.ndarray:
         """Noise figure of the analyzer at these settings, dB."""
-        return nf_db_from_te_k(self.te_k(freq_hz, attenuation_db, preamp), self.t0_k)
+        return nf_db_from_te(self.te_k(freq_hz, attenuation_db, preamp), self.t0_k)
 
     def mixer_gain_factor(self, input_power_w: float, attenuation_db: float, preamp: bool) -> float:
         """Gain factor (<= 1) from mixer compression for a total input power, W."""

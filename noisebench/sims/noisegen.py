@@ -41,15 +41,15 @@ from functools import lru_cache
 import numpy as np
 from scipy.special import ndtr
 
-from noisebench.bench.acquisition import AveragingScale, Detector
+from noisebench.bench.acquisition import AveragingScale, Detector, FilterKind, RbwFilter
 from noisebench.errors import InputError
-from noisebench.science.filters import FilterKind, RbwFilter
 from noisebench.sims.averaged import (
     averaged_cumulants,
     cornish_fisher,
     finish,
     scale_correlation,
 )
+from noisebench.sims.rbw_shapes import power_response
 
 EXACT_LOOKS = 16  # up to this many looks per value are drawn one by one
 INDEPENDENT_POWER_CORRELATION = 1e-3  # neighbours less correlated than this are drawn independent
@@ -77,14 +77,14 @@ class Axis:
 
 def _amplitude_response(filt: RbwFilter, x: np.ndarray) -> np.ndarray:
     """|H| at offsets ``x`` in units of the RBW (peak 1)."""
-    return np.sqrt(np.maximum(filt.power_response(x, 1.0), 0.0))
+    return np.sqrt(np.maximum(power_response(filt, x), 0.0))
 
 
 @lru_cache(maxsize=64)
 def _support_half_width(filt: RbwFilter) -> float:
     """Half width (in RBWs) holding all but ``KERNEL_ENERGY_TAIL`` of the power response."""
     x = np.linspace(0.0, MAX_KERNEL_HALF_WIDTH, 65537)
-    p = filt.power_response(x, 1.0)
+    p = power_response(filt, x)
     cum = np.cumsum(p)
     cum /= cum[-1]
     idx = int(np.searchsorted(cum, 1.0 - KERNEL_ENERGY_TAIL))
@@ -151,7 +151,7 @@ def amplitude_correlation(filt: RbwFilter, lag: np.ndarray | float, axis: str) -
         h = _amplitude_response(filt, f)
         norm = np.sum(h**2) * df
         return np.array([np.sum(h * _amplitude_response(filt, f + d)) * df for d in lag]) / norm
-    p = filt.power_response(f, 1.0)
+    p = power_response(filt, f)
     norm = np.sum(p) * df
     return (np.cos(2 * math.pi * np.outer(lag, f)) @ p) * df / norm
 

@@ -23,12 +23,10 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.constants import k as BOLTZMANN_J_PER_K
 
 from noisebench.errors import InputError
 from noisebench.sampled.source import CaptureRequest, SampleBlock, SourceInfo
-
-T0_K = 290.0
+from noisebench.sims.models import BOLTZMANN_J_PER_K, te_from_nf_db
 
 
 @dataclass(frozen=True)
@@ -62,7 +60,7 @@ class ReceiverSpec:
         return 1e-3 * 10 ** (self.full_scale_dbm / 10)
 
     def te_k(self) -> float:
-        return T0_K * (10 ** (self.nf_db / 10) - 1)
+        return float(te_from_nf_db(self.nf_db))
 
     def antialias_power(self, offset_hz: np.ndarray) -> np.ndarray:
         fc = self.antialias_cutoff * self.sample_rate_hz

@@ -31,13 +31,13 @@ from noisebench.bench.acquisition import (
     AcquisitionSettings,
     AveragingScale,
     Detector,
+    FilterKind,
     MarkerKind,
     MarkerReading,
     SweepMode,
     Trace,
 )
 from noisebench.errors import NoisebenchError
-from noisebench.science.filters import FilterKind
 
 from .analyzer import REF_LEVEL_RANGE_DBM, marker_from_trace
 from .scpi_instruments import (

@@ -34,8 +34,7 @@ from __future__ import annotations
 import math
 from typing import Any
 
-from noisebench.bench.acquisition import AveragingScale, Detector
-from noisebench.science.filters import FilterKind
+from noisebench.bench.acquisition import AveragingScale, Detector, FilterKind
 
 from .analyzer import REF_LEVEL_RANGE_DBM
 from .scpi_analyzer import MAX_FREQ_HZ, AnalyzerScpi, DataFormat, MarkerFunction

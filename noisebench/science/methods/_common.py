@@ -1,15 +1,16 @@
-"""Input checks and density-derived flags shared by the methods (their physics is in
-:mod:`noisebench.science.physics`)."""
+"""Input checks, density-derived flags and the one :class:`PointResult` builder shared by the
+methods (their physics is in :mod:`noisebench.science.physics`)."""
 
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable
+from collections.abc import Iterable, Mapping
+from typing import Any
 
 from noisebench.errors import InputError, MeasurementError
 from noisebench.science.density import NoiseDensity
 from noisebench.science.physics import T0_K, nf_db_from_te_k, ratio_from_db
-from noisebench.science.point import PointFlag
+from noisebench.science.point import ConversionInfo, Method, PointFlag, PointResult
 
 DEFAULT_SCATTER_LIMIT = 1.5
 """Observed/predicted scatter above which a density is flagged EXCESS_SCATTER.
@@ -180,3 +181,70 @@ def margin_db(dut_noise: float, analyzer_noise: float) -> float | None:
     if analyzer_noise <= 0 or dut_noise <= 0:
         return None
     return 10.0 * math.log10(dut_noise / analyzer_noise)
+
+
+def build_point_result(
+    *,
+    freq_hz: float,
+    method: Method,
+    nf_db: float,
+    te_k: float,
+    u_nf_db: float,
+    u_te_k: float,
+    densities: Mapping[str, NoiseDensity],
+    timed: Iterable[NoiseDensity],
+    flags: list[PointFlag],
+    contributions: Mapping[str, float],
+    contributions_total_key: str,
+    t0_k: float,
+    floor_warning_db: float,
+    low_gain_db: float,
+    gain_db: float | None = None,
+    floor_margin_db: float | None = None,
+    negative_te_k: float | None = None,
+    conversion: ConversionInfo | None = None,
+    notes: Mapping[str, Any] | None = None,
+    **fields: Any,
+) -> PointResult:
+    """The one place a method turns its numbers into a :class:`PointResult`.
+
+    Adds the flags every method sets the same way, after the method's own ``flags``:
+    NEAR_ANALYZER_FLOOR when ``floor_margin_db`` is below ``floor_warning_db``, LOW_GAIN when
+    ``gain_db`` (None: not known, no flag) is below ``low_gain_db``, NEGATIVE_TE when
+    ``negative_te_k`` (default ``te_k``; a converter passes its SSB Te) is below zero. Keeps the
+    raw densities and their uncertainties, the signed per-input NF contributions (dB) with their
+    root-sum-square under ``notes[contributions_total_key]``, the instrument time of ``timed``
+    (the point's own readings, not a shared calibration) and ``t0_k``. ``notes`` holds the
+    method's own notes; ``fields`` the remaining PointResult fields (``y_db``, ``u_gain_db``,
+    ``floor_correction_db``, ``enr_db``, ``source_temperature_k``).
+    """
+    flags = list(flags)
+    if floor_margin_db is not None and floor_margin_db < floor_warning_db:
+        flags.append(PointFlag.NEAR_ANALYZER_FLOOR)
+    if gain_db is not None and gain_db < low_gain_db:
+        flags.append(PointFlag.LOW_GAIN)
+    if (te_k if negative_te_k is None else negative_te_k) < 0:
+        flags.append(PointFlag.NEGATIVE_TE)
+    contributions = {name: float(value) for name, value in contributions.items()}
+    return PointResult(
+        freq_hz=freq_hz,
+        method=method,
+        nf_db=nf_db,
+        te_k=te_k,
+        gain_db=gain_db,
+        u_nf_db=u_nf_db,
+        u_te_k=u_te_k,
+        floor_margin_db=floor_margin_db,
+        densities_w_per_hz={k: d.density_w_per_hz for k, d in densities.items()},
+        flags=flags,
+        instrument_time_s=instrument_time_s(timed),
+        conversion=conversion,
+        notes={
+            "u_densities_w_per_hz": {k: d.u_density_w_per_hz for k, d in densities.items()},
+            "u_nf_db_contributions": contributions,
+            contributions_total_key: math.sqrt(sum(c**2 for c in contributions.values())),
+            **(notes or {}),
+            "t0_k": t0_k,
+        },
+        **fields,
+    )

@@ -33,6 +33,7 @@ from noisebench.science.methods._common import (
     DEFAULT_LOW_GAIN_DB,
     DEFAULT_SCATTER_LIMIT,
     FREQ_REL_TOL,
+    build_point_result,
     check_density,
     check_loss_db,
     check_non_negative,
@@ -40,17 +41,30 @@ from noisebench.science.methods._common import (
     check_same_frequency,
     check_temperature,
     density_flags,
-    instrument_time_s,
     margin_db,
 )
 from noisebench.science.methods._propagation import propagate
-from noisebench.science.methods.yfactor import (
-    DEFAULT_Y_MIN_DB,
-    CalibrationPoint,
-    EnrReference,
-    hot_temperature_k,
+from noisebench.science.methods.yfactor import DEFAULT_Y_MIN_DB, CalibrationPoint, EnrReference
+from noisebench.science.physics import (
+    DB_PER_NEPER_POWER,
+    T0_K,
+    ArrayLike,
+    db_from_ratio,
+    deembed_path_te_k,
+    dsb_from_ssb,
+    floor_corrected_density_w_per_hz,
+    gain_from_hot_cold,
+    loss_output_temperature_k,
+    loss_te_k,
+    ratio_from_db,
+    second_stage_corrected_te_k,
+    source_hot_temperature_k,
+    ssb_factor_from_te_k,
+    te_k_from_output_density,
+    te_k_from_y,
+    thermal_density_w_per_hz,
+    two_response_temperature_k,
 )
-from noisebench.science.physics import BOLTZMANN_J_PER_K, DB_PER_NEPER_POWER, T0_K, ArrayLike
 from noisebench.science.point import ConversionInfo, Method, PointFlag, PointResult
 
 __all__ = [
@@ -88,13 +102,13 @@ def _rejection(image_rejection_db: float | None) -> tuple[float | None, float]:
     return x, float(image_ratio_from_rejection_db(x))
 
 
-def _through(t, loss, tp):
-    """Temperature delivered through a matched loss (linear, >= 1) at Tp."""
-    return t / loss + tp * (1.0 - 1.0 / loss)
+def _db(ratio) -> float:
+    """10 log10 of a scalar ratio, as a float."""
+    return float(db_from_ratio(ratio))
 
 
 def _factor_checks(te_ssb: np.ndarray, r, t0: float, what: str, freq_hz=None) -> None:
-    bad = np.asarray(1.0 + r + te_ssb / t0) <= 0
+    bad = ssb_factor_from_te_k(te_ssb, r, t0) <= 0
     if np.any(bad):
         where = f" at {freq_hz:.6g} Hz" if freq_hz is not None else ""
         raise MeasurementError(
@@ -104,15 +118,17 @@ def _factor_checks(te_ssb: np.ndarray, r, t0: float, what: str, freq_hz=None) ->
 
 
 def _to_sweep(te_ssb, r, t0, gain_lin, y, te_unc) -> ConverterSweep:
-    f_ssb = 1.0 + r + te_ssb / t0
+    f_ssb = ssb_factor_from_te_k(te_ssb, r, t0)
     return ConverterSweep(
-        nf_ssb_db=10.0 * np.log10(f_ssb),
-        nf_dsb_db=10.0 * np.log10(f_ssb / (1.0 + r)),
+        nf_ssb_db=db_from_ratio(f_ssb),
+        nf_dsb_db=db_from_ratio(dsb_from_ssb(f_ssb, r)),
         te_ssb_k=te_ssb,
-        te_dsb_k=te_ssb / (1.0 + r),
-        gain_db=None if gain_lin is None else 10.0 * np.log10(gain_lin),
-        y_db=None if y is None else 10.0 * np.log10(y),
-        nf_ssb_uncorrected_db=None if te_unc is None else 10.0 * np.log10(1.0 + r + te_unc / t0),
+        te_dsb_k=dsb_from_ssb(te_ssb, r),
+        gain_db=None if gain_lin is None else db_from_ratio(gain_lin),
+        y_db=None if y is None else db_from_ratio(y),
+        nf_ssb_uncorrected_db=None
+        if te_unc is None
+        else db_from_ratio(ssb_factor_from_te_k(te_unc, r, t0)),
     )
 
 
@@ -134,6 +150,7 @@ def _y_core(
     lout,
     tp_out,
     cal=None,  # (hot_cal, cold_cal, enr_if_db, tc_cal) or None
+    gain_scale=1.0,  # the budget's first-order output mismatch on the conversion gain
 ):
     """(Te_SSB of the DUT, DUT conversion gain or None, Y, Te_SSB before the second-stage
     correction or None), all arrays; eqs. 4 and 5 with losses applied to the temperatures."""
@@ -142,12 +159,19 @@ def _y_core(
             "converter Y-factor: hot reading is not above the cold one; check that the noise "
             "source switches, is connected to the RF port and the LO is on"
         )
-    th_s = hot_temperature_k(10.0 ** (enr_rf_db / 10.0), tc, t0, ref)
-    th_i = hot_temperature_k(10.0 ** (enr_image_db / 10.0), tc, t0, ref)
-    hs, cs = _through(th_s, lin_s, tp_in), _through(tc, lin_s, tp_in)
-    hi, ci = _through(th_i, lin_i, tp_in), _through(tc, lin_i, tp_in)
+    th_s = source_hot_temperature_k(ratio_from_db(enr_rf_db), tc, t0, ref)
+    th_i = source_hot_temperature_k(ratio_from_db(enr_image_db), tc, t0, ref)
+    # both bands' source temperatures through the input loss, referred to the signal band
+    hot_in = two_response_temperature_k(
+        loss_output_temperature_k(th_s, lin_s, tp_in),
+        loss_output_temperature_k(th_i, lin_i, tp_in),
+        r,
+    )
+    cold_in = two_response_temperature_k(
+        loss_output_temperature_k(tc, lin_s, tp_in), loss_output_temperature_k(tc, lin_i, tp_in), r
+    )
     y = hot / cold
-    te12 = (hs + r * hi - y * (cs + r * ci)) / (y - 1.0)
+    te12 = te_k_from_y(y, hot_in, cold_in)
     if cal is None:
         return te12, None, y, None
     hc, cc, enr_if_db, tc_cal = cal
@@ -155,14 +179,12 @@ def _y_core(
         raise MeasurementError(
             "converter Y-factor calibration at the IF: hot reading is not above the cold one"
         )
-    th_if = hot_temperature_k(10.0 ** (enr_if_db / 10.0), tc_cal, t0, ref)
-    y2 = hc / cc
-    te2 = (th_if - y2 * tc_cal) / (y2 - 1.0)
-    g_path = ((hot - cold) / ((hs - cs) + r * (hi - ci))) / ((hc - cc) / (th_if - tc_cal))
-    te1 = te12 - te2 / g_path
-    g_dut = g_path * lout
-    te_dut = te1 - (lout - 1.0) * tp_out / g_dut
-    te_unc = te12 - (lout - 1.0) * tp_out / g_dut
+    th_if = source_hot_temperature_k(ratio_from_db(enr_if_db), tc_cal, t0, ref)
+    te2 = te_k_from_y(hc / cc, th_if, tc_cal)
+    g_path = gain_from_hot_cold(hot, cold, hot_in, cold_in, hc, cc, th_if, tc_cal) * gain_scale
+    te1 = second_stage_corrected_te_k(te12, te2, g_path)
+    te_dut, g_dut = deembed_path_te_k(te1, g_path, 1.0, 0.0, lout, tp_out)
+    te_unc = deembed_path_te_k(te12, g_path, 1.0, 0.0, lout, tp_out)[0]
     return te_dut, g_dut, y, te_unc
 
 
@@ -255,13 +277,13 @@ def converter_y_factor_sweep(
 
 
 def _losses(in_db, in_image_db, out_db, tp_in, tp_out, default_tp):
-    lin_s = 10.0 ** (check_loss_db("input_loss_db", in_db) / 10.0)
+    lin_s = float(ratio_from_db(check_loss_db("input_loss_db", in_db)))
     lin_i = (
         lin_s
         if in_image_db is None
-        else 10.0 ** (check_loss_db("input_loss_image_db", in_image_db) / 10.0)
+        else float(ratio_from_db(check_loss_db("input_loss_image_db", in_image_db)))
     )
-    lout = 10.0 ** (check_loss_db("output_loss_db", out_db) / 10.0)
+    lout = float(ratio_from_db(check_loss_db("output_loss_db", out_db)))
     tpi = default_tp if tp_in is None else check_temperature("input_loss_temperature_k", tp_in)
     tpo = default_tp if tp_out is None else check_temperature("output_loss_temperature_k", tp_out)
     return lin_s, lin_i, lout, tpi, tpo
@@ -272,18 +294,19 @@ def _losses(in_db, in_image_db, out_db, tp_in, tp_out, default_tp):
 
 def _gain_core(n_meas, n_floor, g_db, ts, r, lin_s, lin_i, tp_in, lout, tp_out, t_term):
     """(Te_SSB of the DUT, DUT conversion gain). ``g_db``: the DUT's own conversion gain."""
-    g_dut = 10.0 ** (g_db / 10.0)
+    g_dut = ratio_from_db(g_db)
     g_path = g_dut / lout  # converter input -> analyzer
-    n = n_meas if n_floor is None else n_meas - n_floor + BOLTZMANN_J_PER_K * t_term
+    n = n_meas if n_floor is None else floor_corrected_density_w_per_hz(n_meas, n_floor, t_term)
     if np.any(n <= 0):
         raise MeasurementError(
             "converter gain method: no DUT noise is left after the floor correction; check that "
             "the converter is powered, the LO is on and the floor used the same settings"
         )
-    t_s = _through(ts, lin_s, tp_in)
-    t_i = _through(ts, lin_i, tp_in)
-    te_path = n / (BOLTZMANN_J_PER_K * g_path) - (t_s + r * t_i)
-    return te_path - (lout - 1.0) * tp_out / g_dut, g_dut
+    t_in = two_response_temperature_k(
+        loss_output_temperature_k(ts, lin_s, tp_in), loss_output_temperature_k(ts, lin_i, tp_in), r
+    )
+    te_path = te_k_from_output_density(n, g_path, t_in)
+    return deembed_path_te_k(te_path, g_path, 1.0, 0.0, lout, tp_out)[0], g_dut
 
 
 def converter_gain_method_sweep(
@@ -375,7 +398,7 @@ def _u_optional(field: str, value: float | None) -> float | None:
 def _conversion_info(
     rf, lo, if_hz, image, sideband, nf_type, te_ssb, r, t0, rejection, enr_image, cal_enr, lo_dbm
 ) -> ConversionInfo:
-    f_ssb = 1.0 + r + te_ssb / t0
+    f_ssb = ssb_factor_from_te_k(te_ssb, r, t0)
     return ConversionInfo(
         rf_hz=rf,
         lo_hz=lo,
@@ -383,12 +406,12 @@ def _conversion_info(
         image_hz=image,
         sideband=sideband.value,
         nf_type=nf_type,
-        nf_ssb_db=10.0 * math.log10(f_ssb),
-        nf_dsb_db=10.0 * math.log10(f_ssb / (1.0 + r)),
+        nf_ssb_db=_db(f_ssb),
+        nf_dsb_db=_db(dsb_from_ssb(f_ssb, r)),
         te_ssb_k=te_ssb,
-        te_dsb_k=te_ssb / (1.0 + r),
+        te_dsb_k=float(dsb_from_ssb(te_ssb, r)),
         image_rejection_db=rejection,
-        image_correction_db=10.0 * math.log10(1.0 + r),
+        image_correction_db=_db(1.0 + r),
         enr_image_db=enr_image,
         cal_if_enr_db=cal_enr,
         lo_level_dbm=lo_dbm,
@@ -399,12 +422,12 @@ def _nf_and_slope(
     te_ssb: float, r: float, t0: float, nf_type: NfType
 ) -> tuple[float, float, float]:
     """(NF in dB of the requested type, its Te, dNF_dB/dTe_SSB)."""
-    f_ssb = 1.0 + r + te_ssb / t0
+    f_ssb = float(ssb_factor_from_te_k(te_ssb, r, t0))
     if nf_type == "ssb":
-        return 10.0 * math.log10(f_ssb), te_ssb, DB_PER_NEPER_POWER / (t0 * f_ssb)
+        return _db(f_ssb), te_ssb, DB_PER_NEPER_POWER / (t0 * f_ssb)
     return (
-        10.0 * math.log10(f_ssb / (1.0 + r)),
-        te_ssb / (1.0 + r),
+        _db(dsb_from_ssb(f_ssb, r)),
+        float(dsb_from_ssb(te_ssb, r)),
         DB_PER_NEPER_POWER / (t0 * f_ssb),
     )
 
@@ -503,19 +526,19 @@ def converter_y_factor_point(
         )
 
     def model(h, c, hc, cc, enr_rf, enr_img, enr_if, rej_db):
-        rr = 0.0 if rejection is None else 10.0 ** (-rej_db / 10.0)
+        rr = 0.0 if rejection is None else ratio_from_db(-rej_db)
         cal = None
         if calibration is not None:
             cal = (hc, cc, enr_if, calibration.cold_temperature_k)
         te, g, y, te_unc = _y_core(
             h, c, enr_rf, enr_img, tc, rr, t0, enr_reference, lin_s, lin_i, tp_in, lout, tp_out, cal
         )
-        f_ssb = 1.0 + rr + te / t0
+        f_ssb = ssb_factor_from_te_k(te, rr, t0)
         with np.errstate(invalid="ignore"):  # F <= 0 is refused after the propagation
-            nf = 10.0 * np.log10(f_ssb if nf_type == "ssb" else f_ssb / (1.0 + rr))
+            nf = db_from_ratio(f_ssb if nf_type == "ssb" else dsb_from_ssb(f_ssb, rr))
         out = {"te_ssb": te, "nf_db": nf}
         if g is not None:
-            out["gain_db"] = 10.0 * np.log10(g)
+            out["gain_db"] = db_from_ratio(g)
             out["te_unc"] = te_unc
         return out
 
@@ -542,10 +565,10 @@ def converter_y_factor_point(
     except MeasurementError as exc:
         raise exc.add_context(freq_hz=rf, method="y_factor") from None
     te_ssb = float(props["te_ssb"].value)
-    if 1.0 + r + te_ssb / t0 <= 0:
+    if ssb_factor_from_te_k(te_ssb, r, t0) <= 0:
         raise MeasurementError(
             f"converter Y-factor at RF {rf:.6g} Hz: noise factor <= 0 (Te_SSB = {te_ssb:.1f} K, "
-            f"Y = {10.0 * math.log10(hot.density_w_per_hz / cold.density_w_per_hz):.3f} dB); "
+            f"Y = {_db(hot.density_w_per_hz / cold.density_w_per_hz):.3f} dB); "
             "check that the noise source drives the RF port and the LO is on, then the ENR at "
             "RF and image, the image rejection and the cold temperature",
             freq_hz=rf,
@@ -565,48 +588,56 @@ def converter_y_factor_point(
     }
     contributions = {names[k]: float(v) for k, v in nf_prop.contributions.items()}
     y = hot.density_w_per_hz / cold.density_w_per_hz
-    y_db = 10.0 * math.log10(y)
+    y_db = _db(y)
     flags = density_flags(densities.values(), scatter_limit)
     if y_db < y_min_db:
         flags.append(PointFlag.Y_TOO_SMALL)
     if enr_extrapolated or (calibration is not None and calibration.enr_extrapolated):
         flags.append(PointFlag.ENR_EXTRAPOLATED)
     gain_db = u_gain_db = margin = correction = nf_unc = None
+    gain_contributions: dict[str, float] = {}
     if calibration is not None:
         gain_db = float(props["gain_db"].value)
         u_gain_db = float(props["gain_db"].u(u_stat))
-        g_path = 10.0 ** (gain_db / 10.0) / lout
-        t_in_cold = _through(tc, lin_s, tp_in) + r * _through(tc, lin_i, tp_in)
-        te1 = te_ssb + (lout - 1.0) * tp_out / (g_path * lout)
+        # the conversion gain rests on ENR(RF) (and ENR(image)) against ENR(IF): table points
+        # at different frequencies, so their errors do not cancel as an amplifier's do
+        gain_contributions = {names[k]: float(v) for k, v in props["gain_db"].contributions.items()}
+        g_path = float(ratio_from_db(gain_db)) / lout
+        t_in_cold = two_response_temperature_k(
+            loss_output_temperature_k(tc, lin_s, tp_in),
+            loss_output_temperature_k(tc, lin_i, tp_in),
+            r,
+        )
+        te1 = te_ssb + loss_te_k(lout, tp_out) / (g_path * lout)
         margin = margin_db((t_in_cold + te1) * g_path, calibration.te_k)
         nf_unc = _nf_and_slope(float(props["te_unc"].value), r, t0, nf_type)[0]
         correction = nf_unc - nf_db
-        if margin is not None and margin < floor_warning_db:
-            flags.append(PointFlag.NEAR_ANALYZER_FLOOR)
-        if gain_db < low_gain_db:
-            flags.append(PointFlag.LOW_GAIN)
-    if te_ssb < 0:
-        flags.append(PointFlag.NEGATIVE_TE)
-    u_te_k = u_nf * (t0 * (1.0 + r + te_ssb / t0)) / DB_PER_NEPER_POWER
+    u_te_k = u_nf * t0 * float(ssb_factor_from_te_k(te_ssb, r, t0)) / DB_PER_NEPER_POWER
     if nf_type == "dsb":
         u_te_k /= 1.0 + r
-    return PointResult(
+    return build_point_result(
         freq_hz=rf,
         method=Method.Y_FACTOR,
         nf_db=nf_db,
         te_k=te_k,
-        gain_db=gain_db,
-        y_db=y_db,
         u_nf_db=u_nf,
         u_te_k=u_te_k,
-        u_gain_db=u_gain_db,
+        densities=densities,
+        timed=[hot, cold],
+        flags=flags,
+        contributions=contributions,
+        contributions_total_key="u_nf_db_with_enr",
+        t0_k=t0,
+        floor_warning_db=floor_warning_db,
+        low_gain_db=low_gain_db,
+        gain_db=gain_db,
         floor_margin_db=margin,
+        negative_te_k=te_ssb,
+        y_db=y_db,
+        u_gain_db=u_gain_db,
         floor_correction_db=correction,
         enr_db=enr_rf,
         source_temperature_k=tc,
-        densities_w_per_hz={k: d.density_w_per_hz for k, d in densities.items()},
-        flags=flags,
-        instrument_time_s=instrument_time_s([hot, cold]),
         conversion=_conversion_info(
             rf,
             lo,
@@ -623,15 +654,17 @@ def converter_y_factor_point(
             lo_level_dbm,
         ),
         notes={
-            "u_densities_w_per_hz": {k: d.u_density_w_per_hz for k, d in densities.items()},
-            "u_nf_db_contributions": contributions,
-            "u_nf_db_with_enr": math.sqrt(sum(c**2 for c in contributions.values())),
+            "u_gain_db_contributions": gain_contributions or None,
+            "u_gain_db_with_enr": math.sqrt(sum(c**2 for c in gain_contributions.values()))
+            if gain_contributions
+            else None,
             "u_enr_db": u_rf,
             "u_enr_image_db": u_img if r > 0 else None,
             "u_image_rejection_db": u_rej if r > 0 else None,
             "enr_correlated": False,
             "enr_reference": enr_reference,
             "cal_enr_db": calibration.enr_db if calibration else None,
+            "u_cal_enr_db": calibration.u_enr_db if calibration else None,
             "cal_cold_temperature_k": calibration.cold_temperature_k if calibration else None,
             "system_te_k": calibration.te_k if calibration else None,
             "system_nf_db": calibration.nf_db if calibration else None,
@@ -644,7 +677,6 @@ def converter_y_factor_point(
             "input_loss_temperature_k": tp_in,
             "output_loss_db": output_loss_db,
             "output_loss_temperature_k": tp_out,
-            "t0_k": t0,
         },
     )
 
@@ -711,12 +743,12 @@ def converter_gain_method_point(
     )
     dut_gain_db = (
         gain_db
-        + (10.0 * math.log10(lin_s) if gain_includes_input_loss else 0.0)
-        + (10.0 * math.log10(lout) if gain_includes_output_loss else 0.0)
+        + (_db(lin_s) if gain_includes_input_loss else 0.0)
+        + (_db(lout) if gain_includes_output_loss else 0.0)
     )
 
     def model(n_meas, n_floor, g_db, rej_db, with_floor=floor is not None):
-        rr = 0.0 if rejection is None else 10.0 ** (-rej_db / 10.0)
+        rr = 0.0 if rejection is None else ratio_from_db(-rej_db)
         te, _ = _gain_core(
             n_meas,
             n_floor if with_floor else None,
@@ -730,9 +762,9 @@ def converter_gain_method_point(
             tp_out,
             t_term,
         )
-        f_ssb = 1.0 + rr + te / t0
+        f_ssb = ssb_factor_from_te_k(te, rr, t0)
         with np.errstate(invalid="ignore"):  # F <= 0 is refused after the propagation
-            nf = 10.0 * np.log10(f_ssb if nf_type == "ssb" else f_ssb / (1 + rr))
+            nf = db_from_ratio(f_ssb if nf_type == "ssb" else dsb_from_ssb(f_ssb, rr))
         return {"te_ssb": te, "nf_db": nf}
 
     n_f = floor.density_w_per_hz if floor is not None else 1.0
@@ -753,7 +785,7 @@ def converter_gain_method_point(
     except MeasurementError as exc:
         raise exc.add_context(freq_hz=rf, method="gain") from None
     te_ssb = float(props["te_ssb"].value)
-    if 1.0 + r + te_ssb / t0 <= 0:
+    if ssb_factor_from_te_k(te_ssb, r, t0) <= 0:
         raise MeasurementError(
             f"converter gain method at RF {rf:.6g} Hz: noise factor <= 0 (Te_SSB = "
             f"{te_ssb:.1f} K); check the conversion gain, the image rejection and the "
@@ -767,7 +799,7 @@ def converter_gain_method_point(
     flags = density_flags(densities.values(), scatter_limit)
     margin = correction = nf_unc = None
     if floor is not None:
-        analyzer_noise = n_f - BOLTZMANN_J_PER_K * t_term
+        analyzer_noise = n_f - float(thermal_density_w_per_hz(t_term))
         if analyzer_noise <= 0:
             raise MeasurementError(
                 f"converter gain method at RF {rf:.6g} Hz: the IF floor reading holds no "
@@ -780,30 +812,30 @@ def converter_gain_method_point(
         )
         nf_unc = _nf_and_slope(te_unc, r, t0, nf_type)[0]
         correction = nf_unc - nf_db
-        if margin is not None and margin < floor_warning_db:
-            flags.append(PointFlag.NEAR_ANALYZER_FLOOR)
-    if dut_gain_db < low_gain_db:
-        flags.append(PointFlag.LOW_GAIN)
-    if te_ssb < 0:
-        flags.append(PointFlag.NEGATIVE_TE)
-    u_te_k = u_nf * (t0 * (1.0 + r + te_ssb / t0)) / DB_PER_NEPER_POWER
+    u_te_k = u_nf * t0 * float(ssb_factor_from_te_k(te_ssb, r, t0)) / DB_PER_NEPER_POWER
     if nf_type == "dsb":
         u_te_k /= 1.0 + r
-    return PointResult(
+    return build_point_result(
         freq_hz=rf,
         method=Method.GAIN,
         nf_db=nf_db,
         te_k=te_k,
-        gain_db=dut_gain_db,
         u_nf_db=u_nf,
         u_te_k=u_te_k,
-        u_gain_db=u_gain,
+        densities=densities,
+        timed=[dut],
+        flags=flags,
+        contributions=contributions,
+        contributions_total_key="u_nf_db_with_gain",
+        t0_k=t0,
+        floor_warning_db=floor_warning_db,
+        low_gain_db=low_gain_db,
+        gain_db=dut_gain_db,
         floor_margin_db=margin,
+        negative_te_k=te_ssb,
+        u_gain_db=u_gain,
         floor_correction_db=correction,
         source_temperature_k=ts,
-        densities_w_per_hz={k: d.density_w_per_hz for k, d in densities.items()},
-        flags=flags,
-        instrument_time_s=instrument_time_s([dut]),
         conversion=_conversion_info(
             rf,
             lo,
@@ -820,9 +852,6 @@ def converter_gain_method_point(
             lo_level_dbm,
         ),
         notes={
-            "u_densities_w_per_hz": {k: d.u_density_w_per_hz for k, d in densities.items()},
-            "u_nf_db_contributions": contributions,
-            "u_nf_db_with_gain": math.sqrt(sum(c**2 for c in contributions.values())),
             "u_image_rejection_db": u_rej if r > 0 else None,
             "path_gain_db": gain_db,
             "gain_includes_input_loss": bool(gain_includes_input_loss),
@@ -836,6 +865,5 @@ def converter_gain_method_point(
             "output_loss_temperature_k": tp_out,
             "floor_temperature_k": t_term if floor is not None else None,
             "nf_uncorrected_db": nf_unc,
-            "t0_k": t0,
         },
     )

@@ -32,6 +32,7 @@ from noisebench.science.methods._common import (
     DEFAULT_FLOOR_WARNING_DB,
     DEFAULT_LOW_GAIN_DB,
     DEFAULT_SCATTER_LIMIT,
+    build_point_result,
     check_density,
     check_losses,
     check_non_negative,
@@ -40,7 +41,6 @@ from noisebench.science.methods._common import (
     check_te_plausible,
     check_temperature,
     density_flags,
-    instrument_time_s,
     margin_db,
     nf_db_from_te,
 )
@@ -59,7 +59,7 @@ from noisebench.science.physics import (
     scalar_or_array,
     te_k_from_output_density,
 )
-from noisebench.science.point import Method, PointFlag, PointResult
+from noisebench.science.point import Method, PointResult
 
 __all__ = ["gain_method_te_k", "gain_method_nf_db", "gain_method_point"]
 
@@ -274,32 +274,28 @@ def gain_method_point(
         te_uncorrected = float(te_dut_model(n_m, n_f, path_gain_db, with_floor=False))
         nf_uncorrected = nf_db_from_te(te_uncorrected, t0)
         correction = nf_uncorrected - nf_db
-        if margin is not None and margin < floor_warning_db:
-            flags.append(PointFlag.NEAR_ANALYZER_FLOOR)
-    if dut_gain_db < low_gain_db:
-        flags.append(PointFlag.LOW_GAIN)
-    if te_k < 0:
-        flags.append(PointFlag.NEGATIVE_TE)
 
-    return PointResult(
+    return build_point_result(
         freq_hz=freq_hz,
         method=Method.GAIN,
         nf_db=nf_db,
         te_k=te_k,
-        gain_db=dut_gain_db,
         u_nf_db=u_te_k * dnf_dte,
         u_te_k=u_te_k,
-        u_gain_db=u_gain_db,
+        densities=densities,
+        timed=[dut],
+        flags=flags,
+        contributions=contributions,
+        contributions_total_key="u_nf_db_with_gain",
+        t0_k=t0,
+        floor_warning_db=floor_warning_db,
+        low_gain_db=low_gain_db,
+        gain_db=dut_gain_db,
         floor_margin_db=margin,
+        u_gain_db=u_gain_db,
         floor_correction_db=correction,
         source_temperature_k=ts,
-        densities_w_per_hz={k: d.density_w_per_hz for k, d in densities.items()},
-        flags=flags,
-        instrument_time_s=instrument_time_s([dut]),
         notes={
-            "u_densities_w_per_hz": {k: d.u_density_w_per_hz for k, d in densities.items()},
-            "u_nf_db_contributions": contributions,
-            "u_nf_db_with_gain": math.sqrt(sum(c**2 for c in contributions.values())),
             "path_gain_db": path_gain_db,
             "gain_includes_input_loss": includes_in,
             "gain_includes_output_loss": includes_out,
@@ -309,6 +305,5 @@ def gain_method_point(
             "output_loss_temperature_k": tp_out,
             "floor_temperature_k": t_term if floor is not None else None,
             "nf_uncorrected_db": nf_uncorrected,
-            "t0_k": t0,
         },
     )

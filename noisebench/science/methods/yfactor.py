@@ -42,6 +42,7 @@ from noisebench.science.methods._common import (
     DEFAULT_LOW_GAIN_DB,
     DEFAULT_SCATTER_LIMIT,
     FREQ_REL_TOL,
+    build_point_result,
     check_density,
     check_losses,
     check_non_negative,
@@ -50,7 +51,6 @@ from noisebench.science.methods._common import (
     check_te_plausible,
     check_temperature,
     density_flags,
-    instrument_time_s,
     margin_db,
     nf_db_from_te,
 )
@@ -597,34 +597,30 @@ def y_factor_point(
         margin = margin_db((tc + te1) * g1, te2)
         nf_uncorrected = nf_db_from_te(float(result.te_dut_uncorrected_k), t0)
         correction = nf_uncorrected - nf_db
-        if margin is not None and margin < floor_warning_db:
-            flags.append(PointFlag.NEAR_ANALYZER_FLOOR)
-        if gain_db < low_gain_db:
-            flags.append(PointFlag.LOW_GAIN)
-    if te_k < 0:
-        flags.append(PointFlag.NEGATIVE_TE)
 
-    return PointResult(
+    return build_point_result(
         freq_hz=freq_hz,
         method=Method.Y_FACTOR,
         nf_db=nf_db,
         te_k=te_k,
-        gain_db=gain_db,
-        y_db=y_db,
         u_nf_db=u_te_k * dnf_dte,
         u_te_k=u_te_k,
-        u_gain_db=u_gain_db,
+        densities=densities,
+        timed=[hot, cold],
+        flags=flags,
+        contributions=contributions,
+        contributions_total_key="u_nf_db_with_enr",
+        t0_k=t0,
+        floor_warning_db=floor_warning_db,
+        low_gain_db=low_gain_db,
+        gain_db=gain_db,
         floor_margin_db=margin,
+        y_db=y_db,
+        u_gain_db=u_gain_db,
         floor_correction_db=correction,
         enr_db=enr_db,
         source_temperature_k=tc,
-        densities_w_per_hz={k: d.density_w_per_hz for k, d in densities.items()},
-        flags=flags,
-        instrument_time_s=instrument_time_s([hot, cold]),
         notes={
-            "u_densities_w_per_hz": {k: d.u_density_w_per_hz for k, d in densities.items()},
-            "u_nf_db_contributions": contributions,
-            "u_nf_db_with_enr": math.sqrt(sum(c**2 for c in contributions.values())),
             "u_enr_db": u_enr_db,
             "enr_correlated": enr_shared,
             "enr_reference": ref,
@@ -638,7 +634,6 @@ def y_factor_point(
             "input_loss_temperature_k": tp_in,
             "output_loss_db": output_loss_db,
             "output_loss_temperature_k": tp_out,
-            "t0_k": t0,
         },
     )
 
