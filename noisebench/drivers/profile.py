@@ -264,12 +264,6 @@ class _Setting(BaseModel):
     def readable(self) -> bool:
         return self.get_cmd is not None or getattr(self, "fixed", None) is not None
 
-    @property
-    def depends_on(self) -> str | None:
-        """The setting a ``fixed = { by = ... }`` value depends on, else None."""
-        fixed = getattr(self, "fixed", None)
-        return fixed.by if isinstance(fixed, FixedBy) else None
-
     def fixed_value(self, context: Mapping[str, Any] | None = None) -> Any:
         """The profile's ``fixed`` value; for ``fixed = { by = ... }`` the entry for the other
         setting's current choice in ``context`` (``{name: our value}``)."""
@@ -364,13 +358,6 @@ class _Numeric(_Setting):
     def scale(self) -> float:
         """Our SI value = instrument value x scale (``unit = "MHz"``: 1e6)."""
         return unit_scale(self.unit)
-
-    @property
-    def quantised(self) -> bool:
-        """True when the profile declares how the instrument rounds this setting."""
-        return any(getattr(self, n) is not None for n in ("allowed", "sequence", "step")) or (
-            self.out_of_range == "clamp"
-        )
 
     def allowed_values(self) -> list[float] | None:
         """The values the instrument accepts (list or sequence), else None."""

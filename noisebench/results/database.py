@@ -22,7 +22,7 @@ import json
 import logging
 import math
 import time
-from collections.abc import Iterable, Sequence
+from collections.abc import Sequence
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
@@ -603,11 +603,6 @@ class ResultsDatabase:
         self.close()
 
 
-def store_runs(db: ResultsDatabase, records: Iterable[Any], **kw: Any) -> list[int]:
-    """Store several runs; returns their database ids."""
-    return [db.store_run(r, **kw) for r in records]
-
-
 __all__: Sequence[str] = (
     "ResultsDatabase",
     "DatabaseError",
@@ -615,5 +610,4 @@ __all__: Sequence[str] = (
     "FrequencyStats",
     "UnitRun",
     "SCHEMA_VERSION",
-    "store_runs",
 )

@@ -179,11 +179,6 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
                 self._on_noise_drive(self._noise_drive)
 
     @property
-    def rbw_filter_kind(self) -> FilterKind:
-        """Filter family used in swept mode (FFT mode always uses the window)."""
-        return self._filter_kind
-
-    @property
     def filter_poles(self) -> int | None:
         return self._filter_poles if self._filter_kind is FilterKind.SYNCHRONOUS else None
 

@@ -173,10 +173,6 @@ class FieldKernel:
     grid_step: float
     support: tuple[float, float]  # kernel offsets (lo, hi) in correlation units
 
-    def matrix(self, n_points: int):
-        """Sparse (points x grid) weights and the grid size."""
-        return _kernel_matrix(self, n_points)
-
     @property
     def power_correlation(self) -> np.ndarray:
         """|rho|^2 between points 0, 1, 2, ... lags apart, as the generator produces it."""
