@@ -11,6 +11,10 @@ under the instrument lock with the retry/recovery policy of
 :class:`~noisebench.drivers.scpi_channel.ScpiChannel`; after a reconnect the settings are read
 back, compared with the last applied ones (a difference means the instrument lost them, e.g.
 after a reboot: recorded in ``settings_changes``) and re-applied.
+
+Size: one driver, the SCPI analyzer: configure with read-back, traces, markers, noise drive and
+recovery all go through the same profile look-ups and settings cache, which a split would have
+to share.
 """
 
 from __future__ import annotations

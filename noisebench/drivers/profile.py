@@ -15,6 +15,10 @@ loaded (one line, printable ASCII, one ``{value}`` field, a number format limite
 precision and type). The value spliced in is always a validated number, a profile token or,
 for free text (labels), a string restricted to letters, digits, space and ``_ . + - /``:
 nothing a user types can add a ``;``, a quote or a newline to a command.
+
+Size: one job, the profile schema: the TOML sections and their setting types must be validated
+together (cross-section dependencies, enum keys, command templates), and pydantic needs them in
+one namespace to resolve the nested models.
 """
 
 from __future__ import annotations

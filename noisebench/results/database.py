@@ -14,6 +14,9 @@ Typical use::
     db = ResultsDatabase("sqlite:///station.sqlite")     # or "postgresql+psycopg://..."
     db.store_run(record, lot="L24-07", station="bench-3")
     db.yield_by_lot()                                     # -> [LotYield(...)]
+
+Size: one job, the results database: schema, writes and the production queries share the table
+definitions and the session handling.
 """
 
 from __future__ import annotations
