@@ -31,7 +31,7 @@ from collections.abc import Mapping
 from enum import Enum
 from importlib import resources
 from pathlib import Path
-from typing import Any, ClassVar, Literal
+from typing import TYPE_CHECKING, Any, ClassVar, Literal
 
 from pydantic import (
     BaseModel,
@@ -330,6 +330,12 @@ class _Numeric(_Setting):
     """Range, quantisation and unit shared by real and integer settings (see
     :mod:`noisebench.drivers.quantize`)."""
 
+    if TYPE_CHECKING:  # declared by FloatSetting and IntSetting with their own number type
+        min: float | None
+        max: float | None
+
+        def validate_value(self, value: Any) -> float: ...
+
     allowed: list[float] | None = None
     sequence: str | None = None
     step: float | None = Field(default=None, gt=0)
@@ -368,6 +374,7 @@ class _Numeric(_Setting):
         if self.allowed is not None:
             return sorted(float(v) for v in self.allowed)
         if self.sequence is not None:
+            assert self.min is not None and self.max is not None  # checked with the sequence
             return decade_sequence(parse_sequence(self.sequence), self.min, self.max)
         return None
 
@@ -1107,7 +1114,7 @@ def parse_profile(text: str, source: str = "<memory>") -> InstrumentProfile:
 
 
 def _packaged(name: str) -> Path | None:
-    path = resources.files("noisebench.drivers").joinpath("profiles", f"{name}.toml")
+    path = resources.files("noisebench.drivers").joinpath("profiles").joinpath(f"{name}.toml")
     return Path(str(path)) if path.is_file() else None
 
 

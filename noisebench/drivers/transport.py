@@ -41,6 +41,7 @@ import time
 from abc import ABC, abstractmethod
 from collections.abc import Iterator
 from contextlib import contextmanager
+from typing import Any, NoReturn
 
 import numpy as np
 
@@ -314,7 +315,8 @@ class VisaSession(Transport):
         self._rm = (
             resource_manager if resource_manager is not None else _resource_manager(visa_library)
         )
-        self._res = None
+        # the open pyvisa resource (pyvisa is imported lazily and ships no types we rely on)
+        self._res: Any = None
         self._is_socket = False
         self._stale = False
         self._open()
@@ -804,7 +806,7 @@ class VisaSession(Transport):
 
     def _raise_short_read(
         self, command: str, part: str, filled: int, payload_bytes: int | None, *, closed: bool
-    ) -> None:
+    ) -> NoReturn:
         if part == "payload" and payload_bytes is not None and filled < payload_bytes:
             message = (
                 f"binary block from {command!r} incomplete: the header announced "

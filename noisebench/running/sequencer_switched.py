@@ -25,6 +25,8 @@ from __future__ import annotations
 import logging
 import math
 from dataclasses import dataclass, field
+from functools import partial
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -76,6 +78,14 @@ class SwitchedSweep(MeasurementSteps):
     """Calibration and measurement of the Y-factor method in sweep-level hot/cold blocks."""
 
     _clock_s: float = 0.0  # instrument time of the switched schedule, s
+
+    if TYPE_CHECKING:  # provided by the Sequencer and VerdictStep that complete the steps
+
+        def _record_settings(
+            self, settings: AcquisitionSettings | None, group: PointGroup, writer: Any
+        ) -> None: ...
+
+        def _budget(self, point: PointResult) -> dict | None: ...
 
     def _switched(self, groups: list[PointGroup]) -> bool:
         """Whether the Y-factor readings run in sweep-level blocks (see the module doc)."""
@@ -172,7 +182,7 @@ class SwitchedSweep(MeasurementSteps):
                 try:
                     self._with_context(
                         run.group,
-                        lambda r=run, h=hot: self._read(r, "hot" if h else "cold", connection),
+                        partial(self._read, run, "hot" if hot else "cold", connection),
                     )
                 except MeasurementError as exc:
                     run.failed = exc
@@ -340,7 +350,7 @@ class SwitchedSweep(MeasurementSteps):
             # the first group alone, as in the per-group order (see _calibrate_switched)
             first, groups = groups[0], groups[1:]
             try:
-                outcome = self._with_context(first, lambda g=first: self._measure_group(g))
+                outcome = self._with_context(first, partial(self._measure_group, first))
             except MeasurementError as exc:
                 self._skip(first, exc, "measurement", writer)
                 continue

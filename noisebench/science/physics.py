@@ -395,6 +395,8 @@ def _stages(field: str, values: ArrayLike) -> np.ndarray:
         arr = checked_array(field, values)
     else:
         try:
+            if isinstance(values, (int, float)):
+                raise TypeError("a scalar is not a sequence of stages")
             arr = np.stack(np.broadcast_arrays(*[np.asarray(v, dtype=float) for v in values]))
         except (TypeError, ValueError) as exc:
             raise InputError(

@@ -199,6 +199,7 @@ class DutModel:
         if self.passive_temperature_k is not None:
             loss = 1.0 / self.gain_lin(freq_hz)  # a matched loss L at Tp: Te = (L - 1) Tp
             return (loss - 1.0) * self.passive_temperature_k
+        assert self.nf_table_db is not None  # an active DUT has its NF table
         nf = interp_table_db(freq_hz, self.freq_hz, self.nf_table_db)
         return te_from_nf_db(nf, self.t0_k)
 
