@@ -26,6 +26,7 @@ from noisebench.science.estimator import estimate_density
 from noisebench.science.limits import LimitMask, Verdict, judge
 from noisebench.science.methods import calibrate_point, gain_method_point, y_factor_point
 from noisebench.science.point import (
+    GAIN_CHECK_BLOCKING_FLAGS,
     VERDICT_BLOCKING_FLAGS,
     PointFlag,
     calibration_point_flags,
@@ -99,7 +100,9 @@ def test_each_blocking_flag_withholds_a_pass(flag):
 
 @pytest.mark.parametrize(
     "flag",
-    sorted(set(PointFlag) - VERDICT_BLOCKING_FLAGS, key=lambda f: f.value),
+    sorted(
+        set(PointFlag) - VERDICT_BLOCKING_FLAGS - GAIN_CHECK_BLOCKING_FLAGS, key=lambda f: f.value
+    ),
 )
 def test_annotating_flags_leave_the_verdict_alone(flag):
     n_m = N_FLOOR + K * 100.0 * (T0 + 100.0) - K * T0

@@ -386,3 +386,41 @@ def test_noise_pair_scale_calibration(sim_rx):
     cal = scale_from_noise_pair(blocks[True], blocks[False], t_hot, t_cold, usable_fraction=0.7)
     assert cal.scale_w_per_fs2 == pytest.approx(rx.spec.scale_w_per_fs2, rel=5 * cal.u_rel)
     assert cal.u_db is None  # the temperatures' uncertainty was not given: unknown, not zero
+
+
+class _ClippedBelowFullScale(_Fixed):
+    """Noise hard-limited at 0.15 on each rail while the block declares full scale 1.0 (a
+    wrong full-scale in the metadata, or a limiter ahead of the converter)."""
+
+    def capture(self, request):
+        block = super().capture(request)
+        x = block.samples
+        limited = np.clip(x.real, -0.15, 0.15) + 1j * np.clip(x.imag, -0.15, 0.15)
+        return SampleBlock(
+            samples=limited, sample_rate_hz=1e6, center_hz=self.center, scale_w_per_fs2=1.0
+        )
+
+
+def test_a_capture_clipped_below_its_declared_full_scale_is_refused():
+    # per-rail sigma sqrt(0.005) = 0.0707: the limit at 0.15 (2.1 sigma) clips ~3.4 % of the
+    # samples on each rail and lowers the noise power by ~4 %, while nothing reaches 1.0
+    analyzer = SampledAnalyzer(_ClippedBelowFullScale(level=0.01, seed=2))
+    analyzer.configure(_request(span=300e3, rbw=5e3, averages=50, center=50e6))
+    with pytest.raises(MeasurementError, match="clipped below the declared full scale"):
+        analyzer.acquire_trace()
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_unclipped_noise_never_piles_up(seed):
+    # Gaussian noise (float, and quantised to int16 codes at 2000 codes rms): its largest rail
+    # magnitude occurs once or twice, never PILEUP_MIN_COUNT times
+    from noisebench.sampled import artefacts
+
+    r = np.random.default_rng(seed)
+    x = r.standard_normal(400_000) + 1j * r.standard_normal(400_000)
+    assert artefacts.rail_pileup_fraction(0.01 * x) == 0.0
+    assert artefacts.rail_pileup_fraction(np.round(2000 * x) / 32768) == 0.0
+    clipped = np.clip(x.real, -2.5, 2.5)
+    assert artefacts.rail_pileup_fraction(clipped) == pytest.approx(
+        np.mean(np.abs(x.real) >= 2.5), rel=1e-12
+    )

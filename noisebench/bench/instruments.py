@@ -180,10 +180,11 @@ class Bench:
 
     def safe_state(self) -> None:
         """Noise source off, generator and LO outputs off. Never raises."""
+        source, generator, lo = self.noise_source, self.generator, self.lo_generator
         for action in (
-            (lambda: self.noise_source.set_hot(False)) if self.noise_source else None,
-            (lambda: self.generator.set_output(False)) if self.generator else None,
-            (lambda: self.lo_generator.set_output(False)) if self.lo_generator else None,
+            (lambda: source.set_hot(False)) if source else None,
+            (lambda: generator.set_output(False)) if generator else None,
+            (lambda: lo.set_output(False)) if lo else None,
         ):
             if action is None:
                 continue

@@ -25,7 +25,7 @@ from typing import TYPE_CHECKING, Any
 
 from noisebench.bench.addresses import is_simulated
 from noisebench.bench.capabilities import NoiseDriveOutput, PathSwitch
-from noisebench.bench.instruments import Bench
+from noisebench.bench.instruments import Analyzer, Bench
 from noisebench.errors import InputError, NoisebenchError
 
 if TYPE_CHECKING:  # annotations only: the bench layer does not import the running layer
@@ -268,6 +268,7 @@ def settings_analyzer(section: BenchSection, model: Any) -> Any:
         from noisebench.sims.samples import SimSampleReceiver
 
         options = address.sampled
+        assert options is not None  # receiver=sampled always carries its options
         return SampledAnalyzer(
             SimSampleReceiver(model.sim), window=options.window, overlap=options.overlap
         )
@@ -446,7 +447,7 @@ def _open_scpi(section: BenchSection, *, prompt: Prompt, enr_drive_v: float | No
 
 
 def _open_noise_source(
-    section: BenchSection, analyzer: Any, prompt: Prompt, enr_drive_v: float | None
+    section: BenchSection, analyzer: Analyzer, prompt: Prompt, enr_drive_v: float | None
 ) -> Any:
     from noisebench import drivers
 
@@ -473,6 +474,7 @@ def _open_noise_source(
             "the supply voltage is not known",
             fix="set drive_v, or give nominal_drive_v in the ENR table",
         )
+    assert cfg.resource is not None  # the plan requires it for drive = "supply"
     return drivers.open_supply_noise_source(
         cfg.resource,
         drive_v=drive_v,

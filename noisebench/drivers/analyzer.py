@@ -11,6 +11,10 @@ under the instrument lock with the retry/recovery policy of
 :class:`~noisebench.drivers.scpi_channel.ScpiChannel`; after a reconnect the settings are read
 back, compared with the last applied ones (a difference means the instrument lost them, e.g.
 after a reboot: recorded in ``settings_changes``) and re-applied.
+
+Size: one driver, the SCPI analyzer: configure with read-back, traces, markers, noise drive and
+recovery all go through the same profile look-ups and settings cache, which a split would have
+to share.
 """
 
 from __future__ import annotations
@@ -475,7 +479,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         started = time.monotonic()
         try:
             if acq.poll_start and self.expected_acquisition_time_s() > acq.poll_above_s:
-                self._wait_by_polling(limit)
+                self._wait_by_polling(limit, acq.poll_start)
             else:
                 self._channel.write(acq.start, check=False)
                 reply = self.transport.query_watched(self.profile.common.operation_complete, limit)
@@ -493,15 +497,15 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         # its transfer are one step; an error names the commands since the last read)
         return time.monotonic() - started
 
-    def _wait_by_polling(self, limit_s: float) -> None:
+    def _wait_by_polling(self, limit_s: float, poll_start: str) -> None:
         acq = self.spec.acquisition
         self._channel.query(acq.poll_query)  # reading the event register clears it
-        self._channel.write(acq.poll_start, check=False)
+        self._channel.write(poll_start, check=False)
         deadline = time.monotonic() + limit_s
         while True:
             status = int(float(self._channel.query(acq.poll_query)))
             if status & _ESR_ERROR_BITS:
-                self._channel.check_errors(acq.poll_start)
+                self._channel.check_errors(poll_start)
             if status & acq.poll_mask:
                 return
             remaining = deadline - time.monotonic()
@@ -509,7 +513,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
                 raise InstrumentTimeout(
                     f"acquisition not complete after {limit_s:.3g} s "
                     f"(status polling with {acq.poll_query!r})",
-                    command=acq.poll_start,
+                    command=poll_start,
                 )
             self._sleep(min(acq.poll_interval_s, remaining))
 
@@ -523,9 +527,10 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
 
     def abort(self) -> None:
         """Stop a running acquisition (profile ``abort`` command)."""
-        if self.spec.acquisition.abort is None:
+        command = self.spec.acquisition.abort
+        if command is None:
             raise InputError("abort", f"profile {self.profile.name} has no abort command")
-        self._channel.run("abort", lambda: self._channel.write(self.spec.acquisition.abort))
+        self._channel.run("abort", lambda: self._channel.write(command))
 
     # -- trace transfer -----------------------------------------------------------------
 
@@ -631,6 +636,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         if marker.function is not None:
             commands = [marker.function.command(kind.value)]
         else:
+            assert marker.noise is not None  # the profile declares 'function' or 'noise'
             commands = [marker.noise.command(True)]
         commands.append(marker.frequency.command(freq_hz))
         if band_hz is not None:
@@ -689,6 +695,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         self, commands: list[str], freq_hz: float, kind: MarkerKind, band_hz: float | None
     ) -> MarkerReading:
         marker = self.spec.marker
+        assert marker is not None  # read_marker refused a profile without markers
         settings = self._require_settings()
         for command in commands:
             self._channel.write(command)

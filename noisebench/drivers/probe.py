@@ -95,6 +95,7 @@ class _Probe:
         if isinstance(setting, (EnumSetting, BoolSetting)):
             return setting.command(value)
         number = setting.validate_value(value) if setting.out_of_range == "refuse" else value
+        assert setting.set_cmd is not None  # only writable settings are probed
         if isinstance(setting, IntSetting):
             return setting.set_cmd.format(value=int(number))
         return setting.set_cmd.format(value=float(number) / setting.scale)
@@ -222,7 +223,7 @@ class _Probe:
         """The profile's ``averages.max`` against the instrument: the maximum is accepted and
         one more is refused (or clamped); above it the run combines several traces."""
         setting = self.spec.settings.averages
-        if setting.max is None or not setting.writable:
+        if setting.max is None or setting.set_cmd is None:  # no maximum, or not writable
             self.add("averages max", "note", "no maximum declared: one trace per reading")
             return
         transport = self.sa._channel.transport
@@ -395,8 +396,10 @@ class _Probe:
 
 
 def _test_request(profile: InstrumentProfile) -> AcquisitionRequest:
+    assert profile.analyzer is not None  # the analyzer was opened with this profile
     s = profile.analyzer.settings
     centre_setting = s.center_hz or s.start_hz
+    assert centre_setting is not None  # the profile declares center_hz or start_hz
     low = centre_setting.min or 1e6
     high = centre_setting.max or 1e10
     center = min(max(1e9, low * 10), high / 2)

@@ -15,6 +15,10 @@ loaded (one line, printable ASCII, one ``{value}`` field, a number format limite
 precision and type). The value spliced in is always a validated number, a profile token or,
 for free text (labels), a string restricted to letters, digits, space and ``_ . + - /``:
 nothing a user types can add a ``;``, a quote or a newline to a command.
+
+Size: one job, the profile schema: the TOML sections and their setting types must be validated
+together (cross-section dependencies, enum keys, command templates), and pydantic needs them in
+one namespace to resolve the nested models.
 """
 
 from __future__ import annotations
@@ -27,7 +31,7 @@ from collections.abc import Mapping
 from enum import Enum
 from importlib import resources
 from pathlib import Path
-from typing import Any, ClassVar, Literal
+from typing import TYPE_CHECKING, Any, ClassVar, Literal
 
 from pydantic import (
     BaseModel,
@@ -264,12 +268,6 @@ class _Setting(BaseModel):
     def readable(self) -> bool:
         return self.get_cmd is not None or getattr(self, "fixed", None) is not None
 
-    @property
-    def depends_on(self) -> str | None:
-        """The setting a ``fixed = { by = ... }`` value depends on, else None."""
-        fixed = getattr(self, "fixed", None)
-        return fixed.by if isinstance(fixed, FixedBy) else None
-
     def fixed_value(self, context: Mapping[str, Any] | None = None) -> Any:
         """The profile's ``fixed`` value; for ``fixed = { by = ... }`` the entry for the other
         setting's current choice in ``context`` (``{name: our value}``)."""
@@ -332,6 +330,12 @@ class _Numeric(_Setting):
     """Range, quantisation and unit shared by real and integer settings (see
     :mod:`noisebench.drivers.quantize`)."""
 
+    if TYPE_CHECKING:  # declared by FloatSetting and IntSetting with their own number type
+        min: float | None
+        max: float | None
+
+        def validate_value(self, value: Any) -> float: ...
+
     allowed: list[float] | None = None
     sequence: str | None = None
     step: float | None = Field(default=None, gt=0)
@@ -365,18 +369,12 @@ class _Numeric(_Setting):
         """Our SI value = instrument value x scale (``unit = "MHz"``: 1e6)."""
         return unit_scale(self.unit)
 
-    @property
-    def quantised(self) -> bool:
-        """True when the profile declares how the instrument rounds this setting."""
-        return any(getattr(self, n) is not None for n in ("allowed", "sequence", "step")) or (
-            self.out_of_range == "clamp"
-        )
-
     def allowed_values(self) -> list[float] | None:
         """The values the instrument accepts (list or sequence), else None."""
         if self.allowed is not None:
             return sorted(float(v) for v in self.allowed)
         if self.sequence is not None:
+            assert self.min is not None and self.max is not None  # checked with the sequence
             return decade_sequence(parse_sequence(self.sequence), self.min, self.max)
         return None
 
@@ -1116,7 +1114,7 @@ def parse_profile(text: str, source: str = "<memory>") -> InstrumentProfile:
 
 
 def _packaged(name: str) -> Path | None:
-    path = resources.files("noisebench.drivers").joinpath("profiles", f"{name}.toml")
+    path = resources.files("noisebench.drivers").joinpath("profiles").joinpath(f"{name}.toml")
     return Path(str(path)) if path.is_file() else None
 
 

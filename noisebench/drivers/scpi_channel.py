@@ -30,7 +30,7 @@ import threading
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Any, TypeVar
+from typing import TYPE_CHECKING, Any, TypeVar
 
 from noisebench.errors import (
     CommunicationError,
@@ -347,6 +347,10 @@ class SwitchedOutputInstrument:
 
     lock: Any
 
+    if TYPE_CHECKING:  # provided by each instrument class
+
+        def _restore(self) -> None: ...
+
     def _connect_output(
         self, transport: Transport, profile: Any, section: str, *, retries: int
     ) -> None:
@@ -364,7 +368,7 @@ class SwitchedOutputInstrument:
             retries=retries,
             restore=self._restore,
             init=self.spec.init,
-        )  # type: ignore[attr-defined]
+        )
         self._channel.connect()
         self._output = bool(self._channel.get(self.spec.settings.output))
 

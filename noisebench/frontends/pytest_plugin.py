@@ -336,7 +336,7 @@ def _bench_section(request: pytest.FixtureRequest) -> Any:
     if plan is not None:
         return plan.bench
     address = configured_bench_address(request.config) or DEFAULT_BENCH
-    return BenchSection(analyzer={"resource": address})
+    return BenchSection.model_validate({"analyzer": {"resource": address}})
 
 
 @pytest.fixture

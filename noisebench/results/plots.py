@@ -31,6 +31,9 @@ Conventions every figure follows:
 - Verdicts are told apart by marker shape as well as colour (:data:`VERDICT_STYLE`; the
   colours stay distinct under simulated protan-, deutan- and tritanopia), limit lines are
   black dashed lines labelled with their value.
+
+Size: one job, the figures of a run; each figure is a short function and all share the axis,
+colour and legend helpers at the top.
 """
 
 from __future__ import annotations
@@ -39,7 +42,7 @@ import io
 import logging
 import math
 import textwrap
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -298,7 +301,7 @@ def to_png(figure, dpi: int = DEFAULT_DPI) -> bytes:
 # ----------------------------------------------------------------------------- data helpers
 
 
-def coverage_text(budgets: Sequence[dict[str, Any] | None]) -> str:
+def coverage_text(budgets: Sequence[Mapping[str, Any] | None]) -> str:
     """``k = 2`` when every budget has the same coverage factor, else ``k per point``."""
     ks = {b.get("k") for b in budgets if b}
     k = ks.pop() if len(ks) == 1 else None
@@ -320,7 +323,11 @@ def nf_error_bars(record: RunRecord) -> tuple[np.ndarray, str]:
         u = np.array([p.u_nf_db for p in record.points], dtype=float)
         return np.vstack([u, u]), "standard uncertainty u (k = 1)"
     bars = np.array(
-        [_expanded_bar(p.nf_db, b) for p, b in zip(record.points, budgets, strict=True)]
+        [
+            _expanded_bar(p.nf_db, b)
+            for p, b in zip(record.points, budgets, strict=True)
+            if b is not None  # every point has one (checked above)
+        ]
     ).T
     return bars, f"expanded uncertainty U ({coverage_text(budgets)})"
 
@@ -364,7 +371,7 @@ def limit_segments(record: RunRecord, keys: Sequence[str]) -> list[tuple[float, 
         if not isinstance(band, dict):
             continue
         start, stop = band.get("start_hz"), band.get("stop_hz")
-        if not all(isinstance(v, (int, float)) for v in (start, stop)):
+        if not (isinstance(start, (int, float)) and isinstance(stop, (int, float))):
             continue
         for key in keys:
             value = band.get(key)

@@ -148,7 +148,8 @@ def apply_budgets_and_verdict(record: RunRecord, plan: Plan) -> RunRecord:
         )
     inputs = _uncertainty_inputs(plan)
     mask = _limit_mask(plan)
-    budgets, warnings = (list(record.budgets), [])
+    budgets: list[dict[str, Any]] = list(record.budgets)
+    warnings: list[str] = []
     if inputs is not None:
         budgets, warnings = _complete_budgets(record, inputs, plan)
     verdict = record.verdict

@@ -83,6 +83,10 @@ FLAG_DESCRIPTIONS: dict[PointFlag, str] = {
     PointFlag.NEGATIVE_TE: "The corrected noise temperature came out below zero (within "
     "4 u; further below is refused), which no working DUT does: the point never passes; "
     "check calibration, losses and the DUT supply.",
+    PointFlag.DRIFT: "The hot/cold readings drifted in a way the symmetric schedule cannot "
+    "cancel (the point never passes): repeat after warm-up or in a stabler setting.",
+    PointFlag.GAIN_NOT_MEASURED: "The gain is the stated one (gain file or constant), not "
+    "measured on this unit: a gain limit is not judged (indeterminate).",
     PointFlag.CAL_Y_TOO_SMALL: "The system calibration used here had a Y-factor close to 1: "
     "its second-stage correction is noisy; use a higher-ENR source.",
     PointFlag.CAL_TIME_LIMIT: "The calibration used here stopped at its time limit before its "
@@ -167,15 +171,17 @@ class RunRecord(BaseModel):
         """The budgets keyed by their ``freq_hz`` (first one wins)."""
         out: dict[float, dict[str, Any]] = {}
         for budget in self.budgets:
-            out.setdefault(budget.get("freq_hz"), budget)
+            freq = budget.get("freq_hz")
+            if freq is not None:  # an entry without a frequency matches no point
+                out.setdefault(freq, budget)
         return out
 
     def verdicts_by_freq(self) -> dict[float, dict[str, Any]]:
         """The per-point verdict entries keyed by ``freq_hz`` (empty without a verdict)."""
         out: dict[float, dict[str, Any]] = {}
         for entry in (self.verdict or {}).get("points") or []:
-            if isinstance(entry, dict):
-                out.setdefault(entry.get("freq_hz"), entry)
+            if isinstance(entry, dict) and entry.get("freq_hz") is not None:
+                out.setdefault(entry["freq_hz"], entry)
         return out
 
     def budget_at(self, freq_hz: float) -> dict[str, Any] | None:

@@ -21,6 +21,11 @@ markers, :data:`noisebench.results.plots.VERDICT_STYLE`), so they read without c
 Long per-frequency tables scroll inside their box; per-frequency budget and calibration
 details are left to ``results.json`` above ``DETAIL_ROWS_MAX`` points, which keeps the report
 of a 1001-point run small.
+
+Size: one job, the report's view model: every section of the page turned into template data (the
+HTML itself is in results/templates/); the formatting helpers and node types before it serve
+only these sections. A split would cut along the page's sections, which share the formatters and
+the record look-ups; left whole until a second output format needs them.
 """
 
 from __future__ import annotations
@@ -33,7 +38,7 @@ from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeGuard
 
 import jinja2
 
@@ -239,8 +244,18 @@ def _macro(name: str) -> Callable[..., str]:
 # ----------------------------------------------------------------------------- formatting
 
 
-def _is_number(value: Any) -> bool:
+def _is_number(value: Any) -> TypeGuard[float]:
     return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+def _number_or(value: Any, default: float) -> float:
+    """``value`` when it is a number, else ``default`` (for sort keys)."""
+    return value if _is_number(value) else default
+
+
+def _mapping(value: Any, default: Mapping[str, Any]) -> Mapping[str, Any]:
+    """``value`` when it is a mapping, else ``default``."""
+    return value if isinstance(value, Mapping) else default
 
 
 def _num(value: Any, digits: int = 3) -> str:
@@ -264,8 +279,8 @@ def _freq(freq_hz: float) -> str:
     return format_frequency(freq_hz, space="\u00a0")
 
 
-def _range(values: Sequence[float], digits: int = 3, unit: str = "") -> str:
-    """``a to b unit`` (or one value) for a list of numbers."""
+def _range(values: Sequence[Any], digits: int = 3, unit: str = "") -> str:
+    """``a to b unit`` (or one value) for a list of numbers (other entries are skipped)."""
     values = [v for v in values if _is_number(v) and math.isfinite(v)]
     if not values:
         return "-"
@@ -575,7 +590,7 @@ def _how_to_read(record: RunRecord) -> list[str]:
 
 def _summary(record: RunRecord) -> dict[str, Any]:
     info = record.info
-    dut = info.plan.get("dut") if isinstance(info.plan.get("dut"), Mapping) else {}
+    dut = _mapping(info.plan.get("dut"), {})
     rows: list[tuple[str, Any]] = [
         (
             "DUT",
@@ -1010,7 +1025,7 @@ def _method_text(budgets: Sequence[Mapping[str, Any]]) -> str:
     if "gum" in methods:
         parts.append("GUM law of propagation (JCGM 100:2008)")
     if "monte_carlo" in methods:
-        mc = [b.get("monte_carlo") for b in budgets if isinstance(b.get("monte_carlo"), Mapping)]
+        mc = [b["monte_carlo"] for b in budgets if isinstance(b.get("monte_carlo"), Mapping)]
         trials = sorted({m.get("trials") for m in mc if _is_number(m.get("trials"))})
         coverage = {m.get("coverage") for m in mc if _is_number(m.get("coverage"))}
         validated = sum(1 for m in mc if m.get("gum_validated") is True)
@@ -1194,7 +1209,7 @@ def _budgets(record: RunRecord) -> dict[str, Any] | None:
         return None
     worst = max(
         budgets,
-        key=lambda b: b.get("U_expanded_db") if _is_number(b.get("U_expanded_db")) else -math.inf,
+        key=lambda b: _number_or(b.get("U_expanded_db"), -math.inf),
     )
     return {
         "methods": _method_text(budgets),
@@ -1246,7 +1261,7 @@ def _calibration_groups(entries: Sequence[Mapping[str, Any]]) -> list[list[Mappi
     """Entries grouped by kind, analyzer settings that matter and cold temperature."""
     groups: dict[str, list[Mapping[str, Any]]] = {}
     for entry in entries:
-        settings = entry.get("settings") if isinstance(entry.get("settings"), Mapping) else {}
+        settings = _mapping(entry.get("settings"), {})
         key = json.dumps(
             [entry.get("kind"), entry.get("cold_temperature_k")]
             + [settings.get(k) for k in GROUPED_SETTINGS],
@@ -1276,7 +1291,7 @@ def _calibration_table(entries: Sequence[Mapping[str, Any]]) -> Table:
     rows = []
     for group in _calibration_groups(entries):
         first = group[0]
-        settings = first.get("settings") if isinstance(first.get("settings"), Mapping) else {}
+        settings = _mapping(first.get("settings"), {})
         freqs = sorted(f for e in group for f in e.get("freqs_hz") or [] if _is_number(f))
         times = sorted(t for e in group if (t := _parse_time(e.get("measured_at"))))
         averages = [
@@ -1332,7 +1347,7 @@ def _calibration_results(summary: list[dict[str, Any]]) -> dict[str, Any]:
         keys += [k for k in row if k not in keys and k not in CALIBRATION_SUMMARY_SKIP]
     numeric = [k for k in keys if any(_is_number(r.get(k)) for r in summary)]
     ranges = _kv((label(k), _range([r.get(k) for r in summary], _digits_for(k))) for k in numeric)
-    summary.sort(key=lambda r: r.get("freq_hz") if _is_number(r.get("freq_hz")) else math.inf)
+    summary.sort(key=lambda r: _number_or(r.get("freq_hz"), math.inf))
     detail = None
     if len(summary) <= DETAIL_ROWS_MAX:
         freq = FrequencyColumn.of([r["freq_hz"] for r in summary if _is_number(r.get("freq_hz"))])
@@ -1460,7 +1475,7 @@ def _settings(record: RunRecord) -> Table | None:
         return None
     rows = []
     for group in groups:
-        settings = group.get("settings") if isinstance(group.get("settings"), Mapping) else group
+        settings = _mapping(group.get("settings"), group)
         flat: dict[str, Any] = {}
         for key, value in settings.items():
             if key == "rbw_filter":
@@ -1512,6 +1527,81 @@ def _notes(record: RunRecord) -> dict[str, Any] | None:
 # ----------------------------------------------------------------------------- entry points
 
 
+def _frequency_plan(record: RunRecord) -> dict[str, Any] | None:
+    """A converter run's frequency plan: the [conversion] settings and RF/LO/IF/image per point."""
+    points = [p for p in record.points if p.conversion is not None]
+    if not points:
+        return None
+    section = (record.info.plan or {}).get("conversion") or {}
+    lo = section.get("lo") or {}
+    c0 = points[0].conversion
+    assert c0 is not None
+    sidebands = sorted({p.conversion.sideband for p in points if p.conversion is not None})
+    facts = [
+        ("Sweep mode", str(section.get("mode", "-"))),
+        ("Sideband", ", ".join(sidebands) + " (RF above the LO)" * (sidebands == ["upper"])),
+        ("NF type in nf_db", c0.nf_type.upper() + " (the other figure is in the table)"),
+        ("Image rejection", _rejection_text(section.get("image_rejection_db"))),
+    ]
+    if section.get("u_image_rejection_db"):
+        facts.append(("u(image rejection)", f"{section['u_image_rejection_db']:g} dB"))
+    if lo:
+        level = lo.get("level_dbm")
+        facts.append(
+            (
+                "LO",
+                f"{lo.get('source', 'generator')}"
+                + (f", {level:g} dBm" if _is_number(level) else "")
+                + (f", settling {lo['settle_time_s']:g} s" if lo.get("settle_time_s") else ""),
+            )
+        )
+    freqs = [
+        f
+        for p in points
+        if p.conversion is not None
+        for f in (p.conversion.rf_hz, p.conversion.lo_hz, p.conversion.if_hz, p.conversion.image_hz)
+    ]
+    fc = FrequencyColumn.of(freqs)
+
+    def conv(p: Any) -> Any:
+        return p.conversion
+
+    columns = [
+        Column(f"RF ({fc.unit})", lambda p: fc.cell(conv(p).rf_hz), "the converter's input"),
+        Column(f"LO ({fc.unit})", lambda p: fc.cell(conv(p).lo_hz)),
+        Column(f"IF ({fc.unit})", lambda p: fc.cell(conv(p).if_hz), "where the analyzer reads"),
+        Column(f"Image ({fc.unit})", lambda p: fc.cell(conv(p).image_hz), "2 LO - RF"),
+        Column("Sideband", lambda p: conv(p).sideband, text=True),
+        Column(
+            "Image rej. (dB)",
+            lambda p: (
+                _num(conv(p).image_rejection_db, 1)
+                if conv(p).image_rejection_db is not None
+                else "none"
+            ),
+            "signal response over image response; none: no image response",
+        ),
+        Column("NF SSB (dB)", lambda p: _num(conv(p).nf_ssb_db), "signal band only"),
+        Column("NF DSB (dB)", lambda p: _num(conv(p).nf_dsb_db), "both bands as signal"),
+        Column(
+            "SSB - DSB (dB)",
+            lambda p: _num(conv(p).image_correction_db),
+            "image correction 10 log10(1 + G_image/G_signal)",
+        ),
+    ]
+    return {"facts": _kv(facts), "table": _grid(columns, [(p,) for p in points])}
+
+
+def _rejection_text(value: Any) -> str:
+    if _is_number(value):
+        return f"{value:g} dB"
+    if value == "none":
+        return "none (no image response)"
+    if value == "equal":
+        return "equal responses (0 dB)"
+    return f"table {value}" if value else "-"
+
+
 def _sections(record: RunRecord, images: Mapping[str, bytes]) -> list[tuple[str, str]]:
     """``(anchor, title)`` of the sections this record has, in order."""
     info = record.info
@@ -1519,6 +1609,7 @@ def _sections(record: RunRecord, images: Mapping[str, bytes]) -> list[tuple[str,
         ("summary", "Summary", True),
         ("figures", "Figures", bool(images)),
         ("points", "Points", True),
+        ("frequency-plan", "Frequency plan", any(p.conversion for p in record.points)),
         ("verdict", "Limits and verdict", bool(record.verdict)),
         ("budget", "Uncertainty budget", bool(_budget_list(record))),
         ("calibration", "Calibration", bool(info.calibration or record.calibrations)),
@@ -1547,6 +1638,7 @@ def report_context(record: RunRecord, images: Mapping[str, bytes]) -> dict[str, 
         "summary": _summary(record),
         "figures": _figures(images),
         "points": _points(record),
+        "frequency_plan": _frequency_plan(record),
         "verdict": _verdict_section(record),
         "budget": _budgets(record),
         "calibration": _calibration(record),

@@ -129,13 +129,8 @@ class ConversionSection(BaseModel):
         rejection = self.image_rejection_db
         if isinstance(rejection, str) and rejection in ("none", "equal"):
             pass
-        elif isinstance(rejection, float) and not -30.0 <= rejection <= 200.0:
-            raise InputError(
-                "conversion.image_rejection_db",
-                f"must be -30..200 dB (got {rejection:g}; negative: the image response is the "
-                "stronger one)",
-                fix='use "none" for no image response, "equal" for equal responses',
-            )
+        elif isinstance(rejection, float):
+            check_rejection_db("conversion.image_rejection_db", rejection)
         return self
 
 
@@ -229,7 +224,31 @@ class ImageRejection:
         return problems
 
 
-REJECTION_RANGE_DB = (-30.0, 200.0)  # outside: a unit or column mix-up, not a converter
+REJECTION_RANGE_DB = (-3.0, 200.0)
+"""Image rejection accepted, dB: the image response BELOW the signal response. Down to -3 dB a
+double-sideband mixer's imbalance (common practice); further below, the image would be the
+stronger response, which means the sign was slipped (-20 written for 20 dB) or the plan's
+sideband is the wrong one; above 200 dB a unit or column mix-up."""
+
+
+def check_rejection_db(field: str, value: float) -> None:
+    """InputError naming ``field`` when ``value`` (dB) is outside ``REJECTION_RANGE_DB``."""
+    lo, hi = REJECTION_RANGE_DB
+    if lo <= value <= hi:
+        return
+    if value < lo:
+        raise InputError(
+            field,
+            f"{value:g} dB says the image response is {-value:g} dB ABOVE the signal response; "
+            "the image rejection is the image response in dB below the signal (positive)",
+            fix=f"give {-value:g} if the image is {-value:g} dB weaker; if the image really is "
+            'the stronger response, the plan measures the other sideband (check "sideband")',
+        )
+    raise InputError(
+        field,
+        f"{value:g} dB is outside {lo:g}..{hi:g} dB",
+        fix='use "none" for no image response, "equal" for equal responses',
+    )
 
 
 def _rejection_header(line: str, where: str) -> list[str]:
@@ -268,7 +287,6 @@ def _read_rejection_csv(path: Path, label: str) -> tuple[np.ndarray, np.ndarray]
         slip = frequency_column_problem(freq, table.freq_column or "")
         if slip is not None:
             raise InputError(f"{table.where(0)}, {table.freq_column}", slip)
-        lo, hi = REJECTION_RANGE_DB
         for i, (f, r) in enumerate(zip(freq, rej, strict=True)):
             if not f > 0:
                 raise InputError(f"{table.where(i)}, {table.freq_column}", "must be > 0")
@@ -277,11 +295,7 @@ def _read_rejection_csv(path: Path, label: str) -> tuple[np.ndarray, np.ndarray]
                     f"{table.where(i)}, {table.freq_column}",
                     f"not strictly ascending (follows {freq[i - 1]:.6g} Hz)",
                 )
-            if not lo <= r <= hi:
-                raise InputError(
-                    f"{table.where(i)}, image_rejection_db",
-                    f"{r:g} dB is outside {lo:g}..{hi:g} dB",
-                )
+            check_rejection_db(f"{table.where(i)}, image_rejection_db", float(r))
     except InputError as exc:
         raise InputError("conversion.image_rejection_db", str(exc)) from None
     return np.asarray(freq), np.asarray(rej)

@@ -162,9 +162,9 @@ class GainMeasurementResult(BaseModel):
     def to_table(self) -> GainTable:
         """The measured gain as a :class:`~noisebench.science.gain_files.GainTable`."""
         return GainTable(
-            freq_hz=[p.freq_hz for p in self.points],
-            gain_db=[p.gain_db for p in self.points],
-            u_gain_db=[p.u_gain_db for p in self.points],
+            freq_hz=np.asarray([p.freq_hz for p in self.points], dtype=float),
+            gain_db=np.asarray([p.gain_db for p in self.points], dtype=float),
+            u_gain_db=np.asarray([p.u_gain_db for p in self.points], dtype=float),
             metadata={
                 "source": "measured with generator and analyzer",
                 "measured": self.ended_at.isoformat(),
@@ -188,7 +188,7 @@ def choose_level_dbm(plan: GainMeasurementPlan) -> tuple[float, str]:
     }
     if plan.generator_max_dbm is not None:
         limits["generator maximum"] = plan.generator_max_dbm
-    reason = min(limits, key=limits.get)
+    reason = min(limits, key=lambda name: limits[name])
     level = math.floor(limits[reason] * 10.0 + 1e-9) / 10.0
     if plan.generator_min_dbm is not None and level < plan.generator_min_dbm:
         raise MeasurementError(

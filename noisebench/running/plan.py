@@ -32,6 +32,9 @@ This module is the schema (one pydantic model per section, kept together so that
 reads in one place, hence its length) and the loader; the cross-field checks are in
 :mod:`noisebench.running.plan_checks`, the one-line problem texts in
 :mod:`noisebench.running.plan_errors`.
+
+Size: one schema, the plan: the pydantic sections must live together to validate as one model;
+the cross-field checks that reach other layers are already out in plan_checks.py.
 """
 
 from __future__ import annotations
@@ -98,7 +101,8 @@ def _ranged(key: str, section: str, *fields: str, purpose: str | None = None) ->
         on_purpose = bool(purpose and info.data.get(purpose))
         items = value if isinstance(value, list) else [value]
         for i, item in enumerate(items):
-            name = info.field_name if not isinstance(value, list) else f"{info.field_name}[{i}]"
+            field = str(info.field_name)  # always set for a field validator
+            name = field if not isinstance(value, list) else f"{field}[{i}]"
             check_range(key, name, item, on_purpose=on_purpose, warn=False)
             warn_unusual(key, f"{section}.{name}", item)
         return value
@@ -508,23 +512,24 @@ class CorrectionsSection(BaseModel):
     @field_validator("input_loss", "output_loss", mode="after")
     @classmethod
     def _loss(cls, value: LossValue, info: ValidationInfo) -> LossValue:
+        field = str(info.field_name)  # always set for a field validator
         if isinstance(value, str):
             if not value.strip():
                 raise InputError(
-                    info.field_name,
+                    field,
                     "is an empty file name",
                     fix="give a dB value or a CSV/.s2p path",
                 )
             return value
         if not math.isfinite(value) or value < 0:
             raise InputError(
-                info.field_name,
+                field,
                 f"must be a finite loss >= 0 dB (got {value!r})",
                 fix="a loss is positive dB; an amplifier is not a loss",
             )
         if value > MAX_LOSS_DB:
             raise InputError(
-                info.field_name,
+                field,
                 f"{value:g} dB is not a plausible loss (at most {MAX_LOSS_DB:g} dB)",
                 fix="give the loss in dB, not linear",
             )

@@ -323,11 +323,33 @@ def _check_method_needs(plan: Plan) -> list[str]:
                 'bench.generator: gain source "measure" needs a generator '
                 '(or use source = "file" / "constant")'
             )
+        else:
+            problems += _check_stated_gain_limits(plan)
     if plan.method is Method.Y_FACTOR and plan.bench.noise_source.drive == "none":
         problems.append(
             "bench.noise_source.drive: the Y-factor method needs a noise source "
             '(drive = "none" is for the gain method)'
         )
+    return problems
+
+
+def _check_stated_gain_limits(plan: Plan) -> list[str]:
+    """A gain limit needs a measured gain: with a stated one (``[gain] source = "file"`` or
+    ``"constant"``) the gain method reports the stated value, and the limit would pass (or
+    fail) trivially whatever the unit does (flag policy: ``gain_not_measured``)."""
+    assert plan.gain is not None
+    if plan.gain.source == "measure" or plan.limits is None:
+        return []
+    problems = []
+    for i, band in enumerate(plan.limits.bands):
+        for key in ("gain_min_db", "gain_max_db", "flatness_db"):
+            if getattr(band, key) is not None:
+                problems.append(
+                    f"limits.bands[{i}].{key}: the gain is stated "
+                    f'([gain] source = "{plan.gain.source}"), not measured, so a gain limit '
+                    'could only pass trivially; set [gain] source = "measure" (with a '
+                    "generator), use the Y-factor method, or remove the gain limit"
+                )
     return problems
 
 

@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 import re
-from typing import Any
+from collections.abc import Mapping
+from typing import Any, TypeGuard
 
 from pydantic import (
     ValidationError,
@@ -28,7 +29,7 @@ class PlanError(InputError):
 _TYPE_TAGS = {"float", "int", "str", "bool", "none", "list", "dict"}
 
 
-def _is_branch_tag(part: Any) -> bool:
+def _is_branch_tag(part: Any) -> TypeGuard[str]:
     """pydantic adds the union member (``float``, ``literal['bench']``) to an error's location."""
     return isinstance(part, str) and ("[" in part or part in _TYPE_TAGS)
 
@@ -93,7 +94,7 @@ def _branch_name(tag: str) -> str:
     }.get(tag, tag)
 
 
-def _plain_message(err: dict[str, Any]) -> str:
+def _plain_message(err: Mapping[str, Any]) -> str:
     kind = err.get("type", "")
     ctx = err.get("ctx") or {}
     if kind == "extra_forbidden":

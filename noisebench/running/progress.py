@@ -12,9 +12,12 @@ import logging
 import os
 import sys
 import time
-from typing import IO, Protocol
+from typing import IO, TYPE_CHECKING, Protocol
 
 from noisebench.science.point import PointResult
+
+if TYPE_CHECKING:
+    from rich.progress import TaskID
 
 logger = logging.getLogger(__name__)
 
@@ -134,7 +137,7 @@ class RichProgress:
             console=Console(file=stream or sys.stderr),
             transient=False,
         )
-        self._task = None
+        self._task: TaskID | None = None
 
     def start(self, total_points: int, *, done_points: int = 0, label: str = "") -> None:
         self._progress.start()
@@ -145,6 +148,7 @@ class RichProgress:
     def point_done(self, point: PointResult) -> None:
         if self._task is None:
             self.start(1)
+        assert self._task is not None  # start() added the task
         self._progress.update(self._task, advance=1, last=describe_point(point))
 
     def stop(self) -> None:

@@ -104,7 +104,7 @@ def total_noise_power_dbm(
         raise InputError("dut_te_k", f"must be >= 0 (got {dut_te_k!r})")
     gain_lin = float(ratio_from_db(gain_db))
     density = thermal_density_w_per_hz(source_temperature_k + dut_te_k) * gain_lin
-    return w_to_dbm(float(density) * bandwidth_hz)
+    return float(w_to_dbm(float(density) * bandwidth_hz))
 
 
 def hot_power_from_cold_density_dbm(
@@ -124,7 +124,7 @@ def hot_power_from_cold_density_dbm(
     require_positive("cold_density_w_per_hz", cold_density_w_per_hz)
     require_positive("bandwidth_hz", bandwidth_hz)
     th = hot_source_temperature_k(enr_db, cold_temperature_k, t0_k)
-    return w_to_dbm(cold_density_w_per_hz * bandwidth_hz * th / cold_temperature_k)
+    return float(w_to_dbm(cold_density_w_per_hz * bandwidth_hz * th / cold_temperature_k))
 
 
 # --------------------------------------------------------------------------- limits and checks

@@ -47,6 +47,7 @@ from __future__ import annotations
 import logging
 from collections.abc import Callable
 from datetime import datetime, timezone
+from functools import partial
 from pathlib import Path
 from typing import Any
 
@@ -301,7 +302,8 @@ class Sequencer(SwitchedSweep, GainStep, VerdictStep):
         if not groups:
             return
         self._calibrate_all(groups, writer)
-        if self.plan.method is Method.GAIN and self.corrections.gain is None:  # type: ignore
+        assert self.corrections is not None  # resolved in __init__
+        if self.plan.method is Method.GAIN and self.corrections.gain is None:
             self._measure_gain(groups, writer)
         self.session.connect(Connection.DUT)
         if self._switched(groups):
@@ -311,7 +313,7 @@ class Sequencer(SwitchedSweep, GainStep, VerdictStep):
             if group.index in self._unmeasurable:
                 continue
             try:
-                outcome = self._with_context(group, lambda g=group: self._measure_group(g))
+                outcome = self._with_context(group, partial(self._measure_group, group))
             except MeasurementError as exc:
                 self._skip(group, exc, "measurement", writer)
                 continue
@@ -388,7 +390,8 @@ def run_plan(
     finally:
         if own:
             session.close()
-    out_folder = Path(folder) if folder is not None else target  # type: ignore[arg-type]
+    out_folder = Path(folder) if folder is not None else target
+    assert out_folder is not None  # run() refuses a resume without a folder
     if outputs and record.points:
         write_outputs(record, out_folder, plots=plan.output.plots, report=plan.output.report)
     return record, out_folder

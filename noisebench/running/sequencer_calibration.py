@@ -6,6 +6,7 @@ from __future__ import annotations
 import logging
 import math
 from datetime import datetime
+from functools import partial
 from typing import Any
 
 from noisebench.bench.acquisition import AcquisitionSettings
@@ -75,7 +76,7 @@ class CalibrationSteps(AveragingRounds):
             ):
                 continue  # a converter: another LO's group at the same IF was just calibrated
             try:
-                entry = self._with_context(group, lambda g=group: self._calibrate_group(g, kind))
+                entry = self._with_context(group, partial(self._calibrate_group, group, kind))
             except MeasurementError as exc:
                 self._set_source_cold(TimeBudget(0.0))
                 self._skip(group, exc, "calibration", writer)
@@ -169,6 +170,7 @@ class CalibrationSteps(AveragingRounds):
         """The input loss in front of the design DUT: at the point, or for a converter the
         largest at any RF (the calibration at one IF serves them all)."""
         corr = self.corrections
+        assert corr is not None  # resolved when the sequencer is made
         if self.plan.conversion is not None:
             return max(corr.input_loss(p.report_hz) for p in self.plan.points())
         return corr.input_loss(freq_hz)
@@ -200,7 +202,7 @@ class CalibrationSteps(AveragingRounds):
     ) -> list[dict[str, Any]]:
         from noisebench.science.physics import BOLTZMANN_J_PER_K
 
-        out = []
+        out: list[dict[str, Any]] = []
         for f in group.freqs_hz:
             if kind is CalibrationKind.FLOOR:
                 floor = readings.get(f, "floor").combined().density

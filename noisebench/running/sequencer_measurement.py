@@ -108,7 +108,7 @@ class MeasurementSteps(CalibrationSteps):
 
         gain_db, u_gain_db, holds_input_loss = self._stated_gain(freq_hz)
         loss_in, loss_out = corr.input_loss(freq_hz), corr.output_loss(freq_hz)
-        return gain_method_point(
+        point = gain_method_point(
             readings.get(freq_hz, "dut").combined().density,
             gain_db,
             floor=calibration.reading("floor", freq_hz),
@@ -123,6 +123,7 @@ class MeasurementSteps(CalibrationSteps):
             gain_includes_losses=holds_input_loss,
             gain_includes_output_loss=False,
         )
+        return self._mark_stated_gain(point)
 
     def _converter_point(
         self, if_hz: float, readings: _Readings, calibration: CalibrationEntry, group: PointGroup
@@ -179,7 +180,7 @@ class MeasurementSteps(CalibrationSteps):
                 **common,
             )
         gain_db, u_gain_db, holds_input_loss = self._stated_gain(rf)
-        return converter_gain_method_point(
+        point = converter_gain_method_point(
             readings.get(if_hz, "dut").combined().density,
             gain_db,
             floor=calibration.reading("floor", if_hz),
@@ -190,6 +191,14 @@ class MeasurementSteps(CalibrationSteps):
             gain_includes_output_loss=False,
             **common,
         )
+        return self._mark_stated_gain(point)
+
+    def _mark_stated_gain(self, point: PointResult) -> PointResult:
+        """Flag ``gain_not_measured`` on a point whose gain is the stated one (a file or a
+        constant): its ``gain_db`` reports what was assumed, so no gain limit may judge it."""
+        if self._corr().gain is None or PointFlag.GAIN_NOT_MEASURED in point.flags:
+            return point
+        return point.model_copy(update={"flags": [*point.flags, PointFlag.GAIN_NOT_MEASURED]})
 
     def _stated_gain(self, freq_hz: float) -> tuple[float, float, bool]:
         """The DUT gain as known, dB, its uncertainty, dB, and whether it holds the input loss.

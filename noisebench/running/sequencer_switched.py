@@ -32,6 +32,8 @@ from __future__ import annotations
 import logging
 import math
 from dataclasses import dataclass, field
+from functools import partial
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from scipy import stats
@@ -86,6 +88,14 @@ class SwitchedSweep(MeasurementSteps):
     """Calibration and measurement of the Y-factor method in sweep-level hot/cold blocks."""
 
     _clock_s: float = 0.0  # instrument time of the switched schedule, s
+
+    if TYPE_CHECKING:  # provided by the Sequencer and VerdictStep that complete the steps
+
+        def _record_settings(
+            self, settings: AcquisitionSettings | None, group: PointGroup, writer: Any
+        ) -> None: ...
+
+        def _budget(self, point: PointResult) -> dict | None: ...
 
     def _switched(self, groups: list[PointGroup]) -> bool:
         """Whether the Y-factor readings run in sweep-level blocks (see the module doc)."""
@@ -185,8 +195,8 @@ class SwitchedSweep(MeasurementSteps):
                 try:
                     self._with_context(
                         run.group,
-                        lambda r=run, h=hot: self._read(
-                            r, "hot" if h else "cold", connection, r is monitor
+                        partial(
+                            self._read, run, "hot" if hot else "cold", connection, run is monitor
                         ),
                     )
                 except MeasurementError as exc:
@@ -372,7 +382,7 @@ class SwitchedSweep(MeasurementSteps):
             # the first group alone, as in the per-group order (see _calibrate_switched)
             first, groups = groups[0], groups[1:]
             try:
-                outcome = self._with_context(first, lambda g=first: self._measure_group(g))
+                outcome = self._with_context(first, partial(self._measure_group, first))
             except MeasurementError as exc:
                 self._skip(first, exc, "measurement", writer)
                 continue

@@ -269,7 +269,7 @@ class SampledAnalyzer(Analyzer):
             cc = float(self.source.center_for(request.center_hz, span))  # type: ignore[attr-defined]
         if complex_capture:
             offsets = np.fft.fftshift(np.fft.fftfreq(plan.length, 1.0 / fs))
-            rf = cc + offsets
+            rf: np.ndarray = cc + offsets
         else:
             offsets = np.fft.rfftfreq(plan.length, 1.0 / fs) - fs / 4.0
             rf = cc + offsets
@@ -418,6 +418,15 @@ class SampledAnalyzer(Analyzer):
                 f"{clipped:.2e} of the samples are at full scale (clipped) in the capture "
                 f"at {g.capture_center_hz:.9g} Hz",
                 fix="lower the receiver gain or add attenuation, then recalibrate the scale",
+            )
+        piled = artefacts.rail_pileup_fraction(x)
+        if piled > artefacts.MAX_CLIPPED_FRACTION:
+            raise MeasurementError(
+                f"{piled:.2e} of the samples sit at one extreme rail value in the capture at "
+                f"{g.capture_center_hz:.9g} Hz: clipped below the declared full scale "
+                f"({block.full_scale:g}); noise never piles up at its largest value",
+                fix="check the source's full scale (metadata) and any limiter/AGC stage; lower "
+                "the receiver gain or add attenuation, then recalibrate the scale",
             )
         dc_dbfs = None
         estimate = artefacts.ImageEstimate(0j)

@@ -15,7 +15,13 @@ Pure functions on sample arrays (full-scale units).
   from the model in two lines, see :func:`image_ratio`). Images of strong lines that remain are
   found by the estimator's spur search.
 * **Clipping.** Samples at the converter's full scale make the spectrum wrong everywhere; a
-  capture with more than :data:`MAX_CLIPPED_FRACTION` of them is refused.
+  capture with more than :data:`MAX_CLIPPED_FRACTION` of them is refused. A capture can also
+  be clipped below the declared full scale (a wrong full-scale in the metadata, a limiter or
+  AGC stage ahead of the converter): its rails then pile up at one extreme value, which
+  Gaussian noise never does (the largest |I| or |Q| of a capture occurs once or twice, and a
+  quantised rail at 5 sigma holds a few codes' worth of a 1e-6 tail), so more than
+  :data:`PILEUP_MIN_COUNT` samples (and :data:`MAX_CLIPPED_FRACTION`) sharing the extreme value
+  of a rail is refused too (:func:`rail_pileup_fraction`).
 * **Anti-alias roll-off.** Only the declared flat share of the sample rate is used; a band
   reaching beyond it is refused with the usable range in the message.
 """
@@ -32,6 +38,9 @@ import numpy as np
 MAX_CLIPPED_FRACTION = 1e-5
 #: the rail magnitude counted as clipped, relative to full scale
 CLIP_LEVEL = 0.999
+#: samples sharing a rail's extreme magnitude above which a capture is clipped wherever its
+#: full scale is (Gaussian noise: about one; see the module docstring)
+PILEUP_MIN_COUNT = 16
 #: image rejection (dB) above which no IQ correction is applied (the image is negligible)
 IQ_CORRECTION_ABOVE_DB = 80.0
 #: the circularity |c| must exceed this many times its rms for proper noise, sqrt(2/N), before
@@ -48,6 +57,23 @@ def clipped_fraction(samples: np.ndarray, full_scale: float = 1.0) -> float:
     else:
         hit = np.abs(x) >= limit
     return float(np.count_nonzero(hit)) / max(x.size, 1)
+
+
+def rail_pileup_fraction(samples: np.ndarray) -> float:
+    """Share of samples whose I, Q (or real) magnitude equals that rail's largest magnitude in
+    the capture, 0 when no more than :data:`PILEUP_MIN_COUNT` do (noise peaks)."""
+    x = np.asarray(samples)
+    rails = [x.real, x.imag] if np.iscomplexobj(x) else [x]
+    worst = 0
+    for rail in rails:
+        magnitude = np.abs(rail)
+        top = float(magnitude.max(initial=0.0))
+        if top <= 0:
+            continue
+        worst = max(worst, int(np.count_nonzero(magnitude >= top * (1.0 - 1e-9))))
+    if worst <= PILEUP_MIN_COUNT:
+        return 0.0
+    return worst / max(x.size, 1)
 
 
 def remove_dc(samples: np.ndarray) -> tuple[np.ndarray, complex]:

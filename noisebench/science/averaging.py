@@ -122,7 +122,11 @@ def _merged(
         freq_hz=first.freq_hz,
         density_w_per_hz=mean,
         u_density_w_per_hz=u,
-        independent_samples=None if any(s is None for s in samples) else float(sum(samples)),
+        independent_samples=(
+            None
+            if any(s is None for s in samples)
+            else float(sum(s for s in samples if s is not None))
+        ),
         band_hz=first.band_hz,
         bins_used=first.bins_used,
         excluded_freq_hz=excluded,
@@ -132,7 +136,9 @@ def _merged(
         )
         / total_w,
         settings=settings,
-        acquisition_time_s=None if any(t is None for t in times) else float(sum(times)),
+        acquisition_time_s=(
+            None if any(t is None for t in times) else float(sum(t for t in times if t is not None))
+        ),
     )
 
 

@@ -331,7 +331,7 @@ def _parse_metadata(
     values = {k: v for k, (_, v) in items.items() if k in known}
     extra = {k: v for k, (_, v) in items.items() if k not in known}
     try:
-        return EnrMetadata(**values, extra=extra), coverage_k, problems
+        return EnrMetadata.model_validate({**values, "extra": extra}), coverage_k, problems
     except ValidationError as exc:
         for err in exc.errors():
             key = str(err["loc"][0])

@@ -39,6 +39,10 @@ it exceeds its own 99 % sampling quantile (chi-square with Satterthwaite degrees
 widened for the points' kurtosis) the prediction is contradicted by the data and the uncertainty
 is widened by the ratio. When the detector's sample count is unknown (power scale only), the
 uncertainty comes from this observed scatter alone.
+
+Size: one pipeline, trace -> density (preparation, scatter state, spur search, band estimate,
+markers); its steps share the prepared-trace state and are read top to bottom in the order the
+docstring lists them.
 """
 
 from __future__ import annotations

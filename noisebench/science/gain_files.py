@@ -128,8 +128,8 @@ class GainTable(BaseModel):
         """A frequency-independent gain (use a negative value, or :meth:`constant_loss`)."""
         return cls(
             freq_hz=np.empty(0),
-            gain_db=[gain_db],
-            u_gain_db=None if u_gain_db is None else [u_gain_db],
+            gain_db=np.asarray([gain_db], dtype=float),
+            u_gain_db=None if u_gain_db is None else np.asarray([u_gain_db], dtype=float),
             metadata={k: str(v) for k, v in metadata.items()},
             source=source,
         )
@@ -187,7 +187,7 @@ class GainTable(BaseModel):
             u = None if self.u_gain_db is None else np.full(f.shape, self.u_gain_db[0])
             outside = np.zeros(f.shape, dtype=bool)
         else:
-            lo, hi = self.range_hz
+            lo, hi = float(self.freq_hz[0]), float(self.freq_hz[-1])
             tol = _EDGE_REL_TOL * hi
             outside = (f < lo - tol) | (f > hi + tol)
             if np.any(outside) and extrapolate == "refuse":
@@ -207,14 +207,15 @@ class GainTable(BaseModel):
     def to_csv(self) -> str:
         """The table in our CSV format (gain columns)."""
         lines = [f"# {k}: {v}" for k, v in self.metadata.items()]
-        has_u = self.u_gain_db is not None
+        u_col = self.u_gain_db
+        has_u = u_col is not None
         if self.is_flat:
             lines.append("gain_db" + (",u_gain_db" if has_u else ""))
-            lines.append(_row([], self.gain_db[0], self.u_gain_db[0] if has_u else None))
+            lines.append(_row([], self.gain_db[0], u_col[0] if u_col is not None else None))
         else:
             lines.append("freq_hz,gain_db" + (",u_gain_db" if has_u else ""))
             for i, f in enumerate(self.freq_hz):
-                lines.append(_row([f], self.gain_db[i], self.u_gain_db[i] if has_u else None))
+                lines.append(_row([f], self.gain_db[i], u_col[i] if u_col is not None else None))
         return "\n".join(lines) + "\n"
 
 
@@ -371,7 +372,11 @@ def _table_from_rows(
         where = f"{label} line {lines[index]}" if index >= 0 else label
         raise InputError(f"{where}, {value_col if fld == 'gain_db' else fld}", msg)
     return GainTable(
-        freq_hz=np.asarray(freq), gain_db=gain, u_gain_db=u, metadata=metadata, source=label
+        freq_hz=np.asarray(freq),
+        gain_db=np.asarray(gain, dtype=float),
+        u_gain_db=None if u is None else np.asarray(u, dtype=float),
+        metadata=metadata,
+        source=label,
     )
 
 

@@ -21,6 +21,8 @@ Comparisons are exact (no tolerance): ``value + U == L`` passes, ``value - U == 
 indeterminate under the guarded rule. Flatness is judged per band with
 ``U_flatness = sqrt(U_max**2 + U_min**2)`` from the gains at the band's extreme points (their
 errors taken as independent, the conservative choice); it needs at least two measured gains.
+A gain that was stated, not measured (a point flagged ``gain_not_measured``) is no measured
+gain: its gain and flatness checks are INDETERMINATE (see ``GAIN_CHECK_BLOCKING_FLAGS``).
 
 Aggregation per unit: FAIL if any check fails; else INDETERMINATE if any check is
 indeterminate, a required quantity was not measured, or (``require_coverage``) a band holds no
@@ -31,6 +33,9 @@ uncertainty.Budget` or its dict), or a number, or else ``k * point.u_nf_db`` (st
 only, noted in the verdict's ``notes``); the gain's from ``k * point.u_gain_db``. A Monte Carlo
 budget's coverage interval is used as it is, asymmetric (:func:`decide_interval`): PASS when
 its upper end is within an upper limit, FAIL when its lower end is beyond it.
+
+Size: one job, limit masks and verdicts: the mask schema, the guard-band rule and the verdict
+per quantity share the band look-ups.
 """
 
 from __future__ import annotations
@@ -39,12 +44,16 @@ import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from enum import Enum
-from typing import Any, Literal
+from typing import Any, Literal, TypeGuard
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from noisebench.errors import InputError, input_error_from_validation
-from noisebench.science.point import VERDICT_BLOCKING_FLAGS, PointResult
+from noisebench.science.point import (
+    GAIN_CHECK_BLOCKING_FLAGS,
+    VERDICT_BLOCKING_FLAGS,
+    PointResult,
+)
 from noisebench.science.ranges import check_range, warn_unusual
 
 __all__ = [
@@ -422,7 +431,7 @@ def _guard_for(point: PointResult, given: Any, k_default: float) -> _NfGuard:
     return _NfGuard(u, nf - u, nf + u, k)
 
 
-def _is_interval(value: Any) -> bool:
+def _is_interval(value: Any) -> TypeGuard[Sequence[float]]:
     return (
         isinstance(value, (list, tuple))
         and len(value) == 2
@@ -482,7 +491,11 @@ def _point_checks(
                     ),
                 )
             )
-        for kind, limit in (("min", band.gain_min_db), ("max", band.gain_max_db)):
+        gain_limits: tuple[tuple[Literal["max", "min"], float | None], ...] = (
+            ("min", band.gain_min_db),
+            ("max", band.gain_max_db),
+        )
+        for kind, limit in gain_limits:
             if limit is not None:
                 checks.append(_gain_check(point, u_gain, kind, limit, i, rule))
     return _withhold_pass(point, checks)
@@ -527,6 +540,18 @@ def _gain_check(
             verdict=Verdict.INDETERMINATE,
             note="gain not measured at this point",
         )
+    unfit = _unfit_gain(point)
+    if unfit is not None:
+        return Check(
+            quantity="gain_db",
+            kind=kind,
+            limit=limit,
+            value=point.gain_db,
+            U=None,
+            band=band,
+            verdict=Verdict.INDETERMINATE,
+            note=unfit,
+        )
     u = u_gain if u_gain is not None else 0.0
     return Check(
         quantity="gain_db",
@@ -541,12 +566,26 @@ def _gain_check(
     )
 
 
+STATED_GAIN_NOTE = (
+    "gain stated ([gain] source = file/constant), not measured: a gain limit cannot be "
+    'checked; set [gain] source = "measure" (or use the Y-factor method) or drop the limit'
+)
+
+
+def _unfit_gain(point: PointResult) -> str | None:
+    """Why the point's gain cannot be judged against a gain limit (None: it can)."""
+    if any(f in GAIN_CHECK_BLOCKING_FLAGS for f in point.flags):
+        return STATED_GAIN_NOTE
+    return None
+
+
 def _flatness_check(
     index: int, band: LimitBand, judged: list[tuple[PointResult, float | None]], rule: DecisionRule
 ) -> Check:
     assert band.flatness_db is not None
-    gains = [(p.gain_db, u) for p, u in judged if p.gain_db is not None]
+    gains = [(p.gain_db, u) for p, u in judged if p.gain_db is not None and _unfit_gain(p) is None]
     if len(gains) < 2:
+        stated = any(_unfit_gain(p) is not None for p, _ in judged)
         return Check(
             quantity="flatness_db",
             kind="max",
@@ -555,7 +594,9 @@ def _flatness_check(
             U=None,
             band=index,
             verdict=Verdict.INDETERMINATE,
-            note=f"flatness needs >= 2 measured gains in the band (has {len(gains)})",
+            note=STATED_GAIN_NOTE
+            if stated
+            else f"flatness needs >= 2 measured gains in the band (has {len(gains)})",
         )
     high = max(gains, key=lambda g: g[0])
     low = min(gains, key=lambda g: g[0])

@@ -13,6 +13,9 @@ devices can legitimately scatter below zero, so the methods pass ``allow_negativ
 the point instead. A noise factor <= 0 (Te <= -T0) has no dB value and is always refused.
 
 References: docs/references.md §1-§5 and §10 (Friis 1944; IRE/IEEE Std 161; Kerr & Randa 2010).
+
+Size: the one formula set (array kernels and their checked public forms), kept in one module on
+purpose so every relation and its citation is found in one place.
 """
 
 from __future__ import annotations
@@ -392,6 +395,8 @@ def _stages(field: str, values: ArrayLike) -> np.ndarray:
         arr = checked_array(field, values)
     else:
         try:
+            if isinstance(values, (int, float)):
+                raise TypeError("a scalar is not a sequence of stages")
             arr = np.stack(np.broadcast_arrays(*[np.asarray(v, dtype=float) for v in values]))
         except (TypeError, ValueError) as exc:
             raise InputError(

@@ -26,6 +26,7 @@ class PointFlag(str, Enum):
     COMPRESSION_RISK = "compression_risk"  # total power near the analyzer's limit
     NEGATIVE_TE = "negative_te"  # corrected Te below zero: physically implausible reading
     DRIFT = "drift"  # hot/cold readings drifted in a way the symmetric schedule cannot cancel
+    GAIN_NOT_MEASURED = "gain_not_measured"  # gain stated (file/constant), not measured here
     # the calibration this point was computed with carried a flag of its own
     CAL_Y_TOO_SMALL = "cal_y_too_small"  # system calibration Y close to 1
     CAL_TIME_LIMIT = "cal_time_limit"  # calibration stopped by its time limit before its target
@@ -35,16 +36,26 @@ class PointFlag(str, Enum):
 
 
 VERDICT_BLOCKING_FLAGS: frozenset[PointFlag] = frozenset(
-    {PointFlag.NEGATIVE_TE, PointFlag.ENR_EXTRAPOLATED}
+    {PointFlag.NEGATIVE_TE, PointFlag.ENR_EXTRAPOLATED, PointFlag.DRIFT}
 )
 """Flags that say the number itself cannot be defended: a point carrying one is never PASS
 (a check that would pass becomes INDETERMINATE; FAIL stays FAIL). NEGATIVE_TE: the reading is
 below what the source termination alone gives, which no working DUT does (a DUT at the analyzer
 floor reads like this). ENR_EXTRAPOLATED: the ENR was clamped outside its calibrated range, so
-its error is unknown and in no budget. Every other flag annotates: its effect on the number is
-inside the stated uncertainty (Y_TOO_SMALL, NEAR_ANALYZER_FLOOR, LOW_GAIN, EXCESS_SCATTER,
-TIME_LIMIT, SPURS_EXCLUDED, the CAL_* flags; DRIFT asks for a repeat in a stabler setting) or
-is a caution with a 20 dB margin (COMPRESSION_RISK)."""
+its error is unknown and in no budget. DRIFT: the hot/cold readings drifted in a way the
+symmetric schedule cannot cancel (curvature, a step, or a linear drift so fast that its
+second-order residual is no longer small against the target), so Y carries an error that is in
+no budget. Every other flag annotates: its effect on the number is inside the stated
+uncertainty (Y_TOO_SMALL, NEAR_ANALYZER_FLOOR, LOW_GAIN, EXCESS_SCATTER, TIME_LIMIT,
+SPURS_EXCLUDED, the CAL_* flags) or is a caution with a 20 dB margin (COMPRESSION_RISK);
+GAIN_NOT_MEASURED only concerns gain checks (``GAIN_CHECK_BLOCKING_FLAGS``)."""
+
+GAIN_CHECK_BLOCKING_FLAGS: frozenset[PointFlag] = frozenset({PointFlag.GAIN_NOT_MEASURED})
+"""Flags that make a point's gain unfit for a gain limit (minimum, maximum, flatness): such a
+check is INDETERMINATE whatever the numbers, a FAIL included, because the gain was not measured
+on this unit. GAIN_NOT_MEASURED: the gain method used a stated gain (``[gain] source = "file"``
+or ``"constant"``), which is what the point's ``gain_db`` reports; judged against a gain limit
+it would pass (or fail) trivially, whatever the unit does. The NF check is unaffected."""
 
 _CALIBRATION_FLAG_FOR = {
     "y_too_small": PointFlag.CAL_Y_TOO_SMALL,

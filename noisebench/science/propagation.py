@@ -390,7 +390,7 @@ def _draw(
         columns[:, i] = sample_input(q, rng, size)
     correlated = np.flatnonzero(np.any(np.abs(r - np.eye(len(quantities))) > 0, axis=1))
     if correlated.size:
-        normal = [quantities[i].distribution is Distribution.NORMAL for i in correlated]
+        normal = [quantities[int(i)].distribution is Distribution.NORMAL for i in correlated]
         if not all(normal):
             raise InputError(
                 "correlation",
@@ -400,8 +400,8 @@ def _draw(
         sub = r[np.ix_(correlated, correlated)]
         w, v = np.linalg.eigh(sub)
         root = v * np.sqrt(np.clip(w, 0.0, None))
-        u = np.array([quantities[i].u for i in correlated])
-        nominal = np.array([quantities[i].value for i in correlated])
+        u = np.array([quantities[int(i)].u for i in correlated])
+        nominal = np.array([quantities[int(i)].value for i in correlated])
         z = (columns[:, correlated] - nominal) / np.where(u > 0, u, 1.0)
         columns[:, correlated] = nominal + (z @ root.T) * u
     return columns

@@ -101,6 +101,10 @@ def combine_traces(traces: Sequence[Trace]) -> Trace:
         update={
             "values": np.asarray(combined, dtype=float),
             "settings": first.settings.model_copy(update={"averages": int(counts.sum())}),
-            "acquisition_time_s": None if any(t is None for t in times) else float(sum(times)),
+            "acquisition_time_s": (
+                None
+                if any(t is None for t in times)
+                else float(sum(t for t in times if t is not None))
+            ),
         }
     )

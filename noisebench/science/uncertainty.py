@@ -208,7 +208,7 @@ def _gain_point_budget(
     u_dens: dict[str, float],
     t0_k: float,
     refl: Reflections,
-    method: str | None,
+    method: Literal["gum", "monte_carlo"] | None,
 ) -> Budget:
     _need(point, dens, ("dut",))
     notes = point.notes or {}
@@ -221,7 +221,7 @@ def _gain_point_budget(
         )
     keys = ("dut", "floor") if "floor" in dens else ("dut",)
 
-    def make(u: Mapping[str, float], how: str | None) -> Budget:
+    def make(u: Mapping[str, float], how: Literal["gum", "monte_carlo"] | None) -> Budget:
         return gain_method_budget(
             freq_hz=point.freq_hz,
             dut_w_per_hz=dens["dut"],
@@ -253,10 +253,10 @@ def _y_point_budget(
     u_enr_db: float | None,
     t0_k: float,
     refl: Reflections,
-    method: str | None,
+    method: Literal["gum", "monte_carlo"] | None,
 ) -> Budget:
     notes = point.notes or {}
-    cal = {
+    cal: dict[str, Any] = {
         "cal_enr_db": notes.get("cal_enr_db"),
         "cal_cold_temperature_k": notes.get("cal_cold_temperature_k"),
     }
@@ -271,12 +271,13 @@ def _y_point_budget(
             f"Y-factor point at {point.freq_hz:.6g} Hz has no ENR",
             fix="use a point produced by the Y-factor method",
         )
+    enr_db = float(point.enr_db)
     corrected = "hot_cal" in dens and "cold_cal" in dens
     keys = ("hot", "cold", "hot_cal", "cold_cal") if corrected else ("hot", "cold")
     u_enr = u_enr_db if u_enr_db is not None else notes.get("u_enr_db")
     correlated = inputs.enr_correlated and bool(notes.get("enr_correlated", True))
 
-    def make(u: Mapping[str, float], how: str | None) -> Budget:
+    def make(u: Mapping[str, float], how: Literal["gum", "monte_carlo"] | None) -> Budget:
         return y_factor_budget(
             freq_hz=point.freq_hz,
             hot_w_per_hz=dens["hot"],
@@ -287,7 +288,7 @@ def _y_point_budget(
             cold_cal_w_per_hz=dens.get("cold_cal") if corrected else None,
             u_hot_cal_w_per_hz=u.get("hot_cal", 0.0),
             u_cold_cal_w_per_hz=u.get("cold_cal", 0.0),
-            enr_db=float(point.enr_db),
+            enr_db=enr_db,
             u_enr_db=u_enr,
             enr_correlated=correlated,
             cold_temperature_k=point.source_temperature_k or t0_k,
@@ -336,7 +337,7 @@ def _density_u(
     dens: Mapping[str, float],
     u_dens: Mapping[str, Any],
     keys: Sequence[str],
-    make: Callable[[Mapping[str, float], str | None], Budget],
+    make: Callable[[Mapping[str, float], Literal["gum", "monte_carlo"] | None], Budget],
 ) -> dict[str, float]:
     """The densities' standard uncertainties (W/Hz): stored, or inferred from ``u_nf_db``.
 

@@ -129,7 +129,7 @@ class Budget(BaseModel):
 
 def _budget(
     freq_hz: float,
-    model_name: str,
+    model_name: Literal["y_factor", "y_factor_uncorrected", "gain"],
     model: Model,
     quantities: list[InputQuantity],
     inputs: UncertaintyInputs,

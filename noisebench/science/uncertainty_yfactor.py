@@ -270,7 +270,9 @@ def y_factor_budget(
     extras = _extra_quantities(inputs)
     quantities = [q for q in qs if q is not None] + [q for q, _ in extras]
     model = _y_model(data, enr_reference, losses, t0_k, extras)
-    name = "y_factor" if data.corrected else "y_factor_uncorrected"
+    name: Literal["y_factor", "y_factor_uncorrected"] = (
+        "y_factor" if data.corrected else "y_factor_uncorrected"
+    )
     try:
         return _budget(freq_hz, name, model, quantities, inputs, method, omitted)
     except MeasurementError as exc:

@@ -8,8 +8,12 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from noisebench.errors import InputError
+
+if TYPE_CHECKING:
+    from noisebench.sampled.address import SampledOptions
 
 
 @dataclass(frozen=True)
@@ -19,7 +23,7 @@ class SimAddress:
     scenario: str
     seed: int = 0
     receiver: str = "analyzer"  # or "sampled"
-    sampled: object = None  # noisebench.sampled.address.SampledOptions when receiver=sampled
+    sampled: SampledOptions | None = None  # set when receiver=sampled
 
 
 def parse_sim_address(resource: str) -> SimAddress:

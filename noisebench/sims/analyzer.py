@@ -28,6 +28,9 @@ Independence: the filter's ENBW, statistical bandwidth and response come from
 :mod:`noisebench.sims.rbw_shapes`, the detector bias from :func:`detector_mean_ratio` and the
 marker weights from :func:`cell_weights_hz`, all derived here for the simulator and never taken
 from the estimator or ``science/`` (``tests/test_sim_independence.py``).
+
+Size: one simulated instrument: setting rounding, timing, trace synthesis and the markers
+computed from its own traces.
 """
 
 from __future__ import annotations
@@ -35,7 +38,7 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Callable
-from typing import Protocol
+from typing import Any, Protocol
 
 import numpy as np
 from pydantic import ValidationError
@@ -93,7 +96,7 @@ class AnalyzerInput(Protocol):
 def make_filter(**fields: object) -> RbwFilter:
     """An :class:`RbwFilter`; a refused shape raises the validator's InputError, not pydantic's."""
     try:
-        return RbwFilter(**fields)
+        return RbwFilter.model_validate(fields)
     except ValidationError as exc:
         for err in exc.errors():
             inner = (err.get("ctx") or {}).get("error")
@@ -119,6 +122,14 @@ def round_step(value: float, step: float, lo: float, hi: float) -> float:
 
 class SimAnalyzer(Analyzer, NoiseDriveOutput):
     """A spectrum analyzer on the simulated bench (see module docstring for the physics)."""
+
+    # the power-on state (set by _apply_power_on_state, called from __init__)
+    _filter_kind: FilterKind
+    _filter_poles: int | None
+    _fft_window: str
+    _noise_drive: bool
+    _request: AcquisitionRequest
+    _settings: AcquisitionSettings | None
 
     def __init__(
         self,
@@ -177,11 +188,6 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
             self._noise_drive = bool(on)
             if self._on_noise_drive is not None:
                 self._on_noise_drive(self._noise_drive)
-
-    @property
-    def rbw_filter_kind(self) -> FilterKind:
-        """Filter family used in swept mode (FFT mode always uses the window)."""
-        return self._filter_kind
 
     @property
     def filter_poles(self) -> int | None:
@@ -264,7 +270,7 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
             logger.debug("configured %s", settings)
             return settings
 
-    def _current(self, name: str, default: object) -> object:
+    def _current(self, name: str, default: Any) -> Any:
         return getattr(self._settings, name) if self._settings is not None else default
 
     def _apply(self, req: AcquisitionRequest) -> AcquisitionSettings:
@@ -373,22 +379,39 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
 
     # ------------------------------------------------------------ timing --------------------
 
+    def _applied(self) -> AcquisitionSettings:
+        """The applied settings (the power-on state applies some, so never None)."""
+        assert self._settings is not None
+        return self._settings
+
+    @staticmethod
+    def _sweep_s(s: AcquisitionSettings) -> float:
+        """Sweep time of settings this analyzer applied, s (it always sets one)."""
+        assert s.sweep_time_s is not None
+        return s.sweep_time_s
+
+    @staticmethod
+    def _attenuation_db(s: AcquisitionSettings) -> float:
+        """Input attenuation of settings this analyzer applied, dB (it always sets one)."""
+        assert s.attenuation_db is not None
+        return s.attenuation_db
+
     def _settle_s(self, s: AcquisitionSettings) -> float:
         return self.spec.retune_settle_rbw_periods / s.rbw_hz
 
     def expected_acquisition_time_s(self) -> float:
         """Instrument time of one averaged acquisition with the applied settings, seconds."""
-        s = self._settings
-        return self._settle_s(s) + s.averages * (s.sweep_time_s + self.spec.sweep_overhead_s)
+        s = self._applied()
+        return self._settle_s(s) + s.averages * (self._sweep_s(s) + self.spec.sweep_overhead_s)
 
     # ------------------------------------------------------------ acquisition ---------------
 
     def acquire_trace(self) -> Trace:
         """One complete averaged acquisition on the simulated clock; values in dBm per point."""
         with self.lock:
-            s = self._settings
+            s = self._applied()
             freq = s.frequencies_hz()
-            period = s.sweep_time_s + self.spec.sweep_overhead_s
+            period = self._sweep_s(s) + self.spec.sweep_overhead_s
             duration = self._settle_s(s) + s.averages * period
             t0 = self.clock.now_s + self._settle_s(s)
             t_end = t0 + s.averages * period
@@ -436,8 +459,9 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
                 spacing = s.span_hz / (s.points - 1) / s.rbw_hz
                 kernel = field_kernel(s.rbw_filter, spacing, Axis.FREQUENCY)
             else:
-                spacing = s.sweep_time_s / (s.points - 1) * s.rbw_hz
+                spacing = self._sweep_s(s) / (s.points - 1) * s.rbw_hz
                 kernel = field_kernel(s.rbw_filter, spacing, Axis.TIME)
+        assert s.ref_level_dbm is not None  # this analyzer always applies a reference level
         full_scale = float(dbm_to_w(s.ref_level_dbm + self.spec.if_headroom_db))
         return TraceRecipe(
             n_traces=s.averages,
@@ -458,9 +482,9 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
         n, p = s.averages, s.points
         starts = t0 + period * np.arange(n)
         if n * p <= 4_000_000:
-            within = s.sweep_time_s * (np.arange(p) + 0.5) / p
+            within = self._sweep_s(s) * (np.arange(p) + 0.5) / p
             return self.source.hot_fraction(starts[:, None] + within[None, :])
-        return self.source.hot_fraction(starts + 0.5 * s.sweep_time_s)[:, None]
+        return self.source.hot_fraction(starts + 0.5 * self._sweep_s(s))[:, None]
 
     def _displayed_noise_w(
         self,
@@ -470,9 +494,10 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
         hot: np.ndarray | float,
     ) -> tuple[np.ndarray, np.ndarray | float]:
         """Mean noise power per point (W in the RBW) and the per-trace compression gain."""
-        own_k = self.front_end.te_k(freq, s.attenuation_db, bool(s.preamp))
+        own_k = self.front_end.te_k(freq, self._attenuation_db(s), bool(s.preamp))
         temp_k = spectrum.temperature_k(hot) + own_k
         gain = self._level_gain(s, spectrum, hot)
+        scale: np.ndarray | float
         if np.ndim(gain):
             scale = np.asarray(gain)[:, None]
         else:
@@ -494,7 +519,10 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
         totals = [spectrum.total_power_w(float(h)) for h in hot_per_trace]
         self._check_input_power(max(totals))
         factors = np.array(
-            [self.front_end.mixer_gain_factor(p, s.attenuation_db, bool(s.preamp)) for p in totals]
+            [
+                self.front_end.mixer_gain_factor(p, self._attenuation_db(s), bool(s.preamp))
+                for p in totals
+            ]
         )
         if np.ndim(hot) == 0:
             return amp * float(factors[0])

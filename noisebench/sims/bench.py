@@ -16,6 +16,9 @@ Signal chain (noise temperatures, K; reference plane = analyzer input):
 
 The source plane holds the noise source, or the generator while its output is on.
 ``truth(freq_hz)`` returns what the models say, for tests and benchmarks.
+
+Size: the bench wiring: the signal chain for each path, the instruments it exposes and the truth
+tables the tests compare with all read the same component models.
 """
 
 from __future__ import annotations
@@ -559,7 +562,7 @@ class SimulatedBench:
         s = self.analyzer.settings
         att = (
             float(s.attenuation_db)
-            if s is not None
+            if s is not None and s.attenuation_db is not None
             else self.scenario.analyzer.default_attenuation_db
         )
         pre = bool(s.preamp) if s is not None else False
@@ -598,6 +601,8 @@ class SimulatedBench:
             )
         dut, src, fe = self.dut_model, self.source_model, self.front_end
         s = self.analyzer.settings
+        # the simulated analyzer applies its power-on settings when it is made
+        assert s is not None and s.attenuation_db is not None
         att, pre = float(s.attenuation_db), bool(s.preamp)
         te_sa = fe.te_k(f, att, pre)
         l_in, l_out = self.input_cable.loss_lin(f), self.output_cable.loss_lin(f)

@@ -90,13 +90,6 @@ def interp_table_db(
     )
 
 
-def amplifier_output_temperature_k(
-    t_in_k: np.ndarray, gain_lin: np.ndarray, te_k: np.ndarray
-) -> np.ndarray:
-    """Output noise temperature of a two-port: ``(T_in + Te) * G`` (Friis 1944)."""
-    return (np.asarray(t_in_k) + np.asarray(te_k)) * np.asarray(gain_lin)
-
-
 def passive_output_temperature_k(
     t_in_k: np.ndarray, loss_lin: np.ndarray, physical_temperature_k: float | np.ndarray
 ) -> np.ndarray:
@@ -206,6 +199,7 @@ class DutModel:
         if self.passive_temperature_k is not None:
             loss = 1.0 / self.gain_lin(freq_hz)  # a matched loss L at Tp: Te = (L - 1) Tp
             return (loss - 1.0) * self.passive_temperature_k
+        assert self.nf_table_db is not None  # an active DUT has its NF table
         nf = interp_table_db(freq_hz, self.freq_hz, self.nf_table_db)
         return te_from_nf_db(nf, self.t0_k)
 

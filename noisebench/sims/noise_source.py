@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import logging
 import threading
+from collections.abc import Callable
 
 import numpy as np
 
@@ -40,7 +41,8 @@ class SimNoiseSource(NoiseSource):
         self.clock = clock
         self.stuck = False
         self.damaged = False
-        self.drive_switch = None  # callable(bool) that switches the drive (the bench's analyzer)
+        # switches the drive (the bench's analyzer); set by the bench
+        self.drive_switch: Callable[[bool], None] | None = None
         self._drives: dict[str, float] = {ANALYZER_DRIVE: 0.0, SUPPLY_DRIVE: 0.0}
         self._settle_s = float(spec.settle_time_s)
         self._state_lock = threading.Lock()
@@ -148,11 +150,6 @@ class SimNoiseSource(NoiseSource):
         """Factor on the excess noise output at simulated times ``t_s`` (1: no drift)."""
         rate = self.spec.output_drift_db_per_s
         return 10.0 ** (rate * np.asarray(t_s, dtype=float) / 10.0)
-
-    @property
-    def effective_drive_v(self) -> float | None:
-        """Drive voltage while hot (sets the real ENR), None while cold."""
-        return self.drive_v if self._target == 1.0 else None
 
 
 class SimSupply(Instrument):

@@ -5,7 +5,9 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterable, Mapping
-from typing import Any
+from typing import Any, TypeVar
+
+import numpy as np
 
 from noisebench.errors import InputError, MeasurementError
 from noisebench.science.density import NoiseDensity
@@ -91,13 +93,16 @@ def check_loss_db(field: str, value: float) -> float:
     )
 
 
+_Kelvin = TypeVar("_Kelvin", float, np.ndarray)
+
+
 def check_losses(
     input_loss_db: float,
     output_loss_db: float,
     input_loss_temperature_k: float | None,
     output_loss_temperature_k: float | None,
-    default_temperature_k: float,
-) -> tuple[float, float, float, float]:
+    default_temperature_k: _Kelvin,
+) -> tuple[float, float, float | _Kelvin, float | _Kelvin]:
     """``(L_in, L_out, Tp_in, Tp_out)``: linear losses (>= 1) and their physical temperatures
     in K, a missing temperature taking ``default_temperature_k``."""
     lin = float(ratio_from_db(check_loss_db("input_loss_db", input_loss_db)))

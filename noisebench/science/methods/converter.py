@@ -16,6 +16,10 @@ loss at the IF. The image response is stated as the image rejection in dB (``Non
 ``math.inf``: no image response). ``u_nf_db`` is the statistical part only; the ENR terms (three
 separate variables: RF, image and IF are different frequencies of the table) and the image
 rejection's uncertainty are reported beside it in ``notes`` like the amplifier methods do.
+
+Size: two methods (Y-factor and gain) for frequency-converting DUTs that share the frequency
+plan, the image-response model and the loss de-embedding of this module; the physics is in
+science/conversion.py.
 """
 
 from __future__ import annotations
@@ -39,6 +43,7 @@ from noisebench.science.methods._common import (
     check_non_negative,
     check_number,
     check_same_frequency,
+    check_te_plausible,
     check_temperature,
     density_flags,
     margin_db,
@@ -565,6 +570,16 @@ def converter_y_factor_point(
     except MeasurementError as exc:
         raise exc.add_context(freq_hz=rf, method="y_factor") from None
     te_ssb = float(props["te_ssb"].value)
+    check_te_plausible(
+        te_ssb,
+        float(props["te_ssb"].u()),
+        rf,
+        "converter Y-factor",
+        "Y is larger than the noise source's Th/Tc allows; check that the LO is on and at its "
+        "level, the ENR at the RF and the image (right source, enr_reference), the image "
+        "rejection (dB below the signal, positive), cold_temperature_k and that the "
+        "calibration was made at the IF on this path",
+    )
     if ssb_factor_from_te_k(te_ssb, r, t0) <= 0:
         raise MeasurementError(
             f"converter Y-factor at RF {rf:.6g} Hz: noise factor <= 0 (Te_SSB = {te_ssb:.1f} K, "
@@ -785,6 +800,15 @@ def converter_gain_method_point(
     except MeasurementError as exc:
         raise exc.add_context(freq_hz=rf, method="gain") from None
     te_ssb = float(props["te_ssb"].value)
+    check_te_plausible(
+        te_ssb,
+        float(props["te_ssb"].u()),
+        rf,
+        "converter gain method",
+        "the converter delivers less than its conversion gain says (LO off or too weak, a "
+        "dead mixer, the DUT unpowered or not connected) or conversion_gain_db is larger than "
+        "the real gain; check the LO level and cable, the DUT supply and path, the gain source",
+    )
     if ssb_factor_from_te_k(te_ssb, r, t0) <= 0:
         raise MeasurementError(
             f"converter gain method at RF {rf:.6g} Hz: noise factor <= 0 (Te_SSB = "

@@ -22,6 +22,10 @@ Uncertainty: ``u_nf_db`` is the statistical part (the four densities' standard u
 propagated linearly). The ENR's uncertainty does not average down; its contribution, with the
 ENR fully correlated between calibration and measurement when the same value is used (same
 source, same frequency), is reported beside it in ``notes``.
+
+Size: one method: the point function, its vectorized sweep form and the calibration step share
+one model function, which must stay in one place so the point and sweep forms cannot drift
+apart.
 """
 
 from __future__ import annotations
@@ -124,15 +128,17 @@ def _check_u_enr(u_enr_db: float | None) -> float | None:
     )
 
 
-def _check_reference(enr_reference: str) -> str:
-    if enr_reference not in ("t0", "absolute"):
-        raise InputError(
-            "enr_reference",
-            f"must be 't0' or 'absolute' (got {enr_reference!r})",
-            fix="'t0': excess noise T0*ENR added to the physical temperature; "
-            "'absolute': Th = T0*(ENR+1)",
-        )
-    return enr_reference
+def _check_reference(enr_reference: str) -> EnrReference:
+    if enr_reference == "t0":
+        return "t0"
+    if enr_reference == "absolute":
+        return "absolute"
+    raise InputError(
+        "enr_reference",
+        f"must be 't0' or 'absolute' (got {enr_reference!r})",
+        fix="'t0': excess noise T0*ENR added to the physical temperature; "
+        "'absolute': Th = T0*(ENR+1)",
+    )
 
 
 def _where(freq_hz: ArrayLike | None, mask: np.ndarray) -> str:
@@ -591,6 +597,9 @@ def y_factor_point(
 
     gain_db = u_gain_db = margin = correction = nf_uncorrected = None
     if calibration is not None:
+        # a calibration always gives the DUT gain, G1 and the uncorrected Te (see _core)
+        assert result.gain_dut_lin is not None and result.g1_lin is not None
+        assert result.te2_k is not None and result.te_dut_uncorrected_k is not None
         gain_db = 10.0 * math.log10(float(result.gain_dut_lin))
         u_gain_db = float(props["gain_db"].u(u_stat))
         g1, te1, te2 = float(result.g1_lin), float(result.te1_k), float(result.te2_k)
@@ -692,7 +701,7 @@ def y_factor_sweep(
             "and cold_cal_w_per_hz go together",
             fix="pass both calibration arrays or neither",
         )
-    if hot_cal_w_per_hz is not None:
+    if hot_cal_w_per_hz is not None and cold_cal_w_per_hz is not None:
         cal = _Cal(
             _positive("hot_cal_w_per_hz", hot_cal_w_per_hz, dens),
             _positive("cold_cal_w_per_hz", cold_cal_w_per_hz, dens),
