@@ -14,6 +14,9 @@ Typical use::
     db = ResultsDatabase("sqlite:///station.sqlite")     # or "postgresql+psycopg://..."
     db.store_run(record, lot="L24-07", station="bench-3")
     db.yield_by_lot()                                     # -> [LotYield(...)]
+
+Size: one job, the results database: schema, writes and the production queries share the table
+definitions and the session handling.
 """
 
 from __future__ import annotations
@@ -22,7 +25,7 @@ import json
 import logging
 import math
 import time
-from collections.abc import Iterable, Sequence
+from collections.abc import Sequence
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
@@ -680,11 +683,6 @@ class ResultsDatabase:
         self.close()
 
 
-def store_runs(db: ResultsDatabase, records: Iterable[Any], **kw: Any) -> list[int]:
-    """Store several runs; returns their database ids."""
-    return [db.store_run(r, **kw) for r in records]
-
-
 __all__: Sequence[str] = (
     "ResultsDatabase",
     "DatabaseError",
@@ -692,5 +690,4 @@ __all__: Sequence[str] = (
     "FrequencyStats",
     "UnitRun",
     "SCHEMA_VERSION",
-    "store_runs",
 )

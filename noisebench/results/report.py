@@ -21,6 +21,11 @@ markers, :data:`noisebench.results.plots.VERDICT_STYLE`), so they read without c
 Long per-frequency tables scroll inside their box; per-frequency budget and calibration
 details are left to ``results.json`` above ``DETAIL_ROWS_MAX`` points, which keeps the report
 of a 1001-point run small.
+
+Size: one job, the report's view model: every section of the page turned into template data (the
+HTML itself is in results/templates/); the formatting helpers and node types before it serve
+only these sections. A split would cut along the page's sections, which share the formatters and
+the record look-ups; left whole until a second output format needs them.
 """
 
 from __future__ import annotations

@@ -20,6 +20,10 @@ For each group of points (the sequencer's grouping) the forecast
 
 It is a forecast: the adaptive sequencer measures what it needs; the forecast says what to
 expect and which points will hit their time limit.
+
+Size: one job, the forecast of a plan; the priors (declared or from a bench model, amplifiers
+and converters), the per-point uncertainty and the time model share the plan look-ups, and the
+sequencer imports its sizing helpers from here.
 """
 
 from __future__ import annotations
