@@ -7,6 +7,7 @@ import re
 import textwrap
 from pathlib import Path
 
+import numpy as np
 import pytest
 from _sequencer_helpers import ideal_session, ideal_sim, make_plan
 
@@ -231,19 +232,29 @@ def test_a_units_file_with_a_byte_order_mark_is_read(tmp_path):
 # --------------------------------------------------------------------------- resume
 
 
-def _run_with_a_stuck_source(folder: Path):
-    """A run whose noise source sticks after the first point: the rest is skipped (per-group
-    order, so that the points after the first are still to be read when it sticks)."""
-    plan = make_plan("y_factor", freqs_hz=[1e9, 2e9, 3e9], switching={"mode": "per_group"})
+def _run_with_a_stuck_source(folder: Path, mode: str = "auto"):
+    """A run whose analyzer display freezes above 1.5 GHz (DUT connected, source hot): the physics
+    refuses those readings and the points are skipped, whichever order the schedule reads them
+    in (per group, or sweep-level blocks)."""
+    plan = make_plan("y_factor", freqs_hz=[1e9, 2e9, 3e9], switching={"mode": mode})
     sim = ideal_sim()
     session = simulated_session(sim, plan.bench)
-    stick = lambda _point: setattr(sim.noise_source, "stuck", True)  # noqa: E731
-    record = Sequencer(plan, session, on_point=stick).run(folder)
+    original = sim.analyzer.acquire_trace
+
+    def frozen_above_1_5_ghz():
+        trace = original()
+        if sim.path.value == "dut" and sim.noise_source.is_hot and trace.settings.center_hz > 1.5e9:
+            return trace.model_copy(update={"values": np.full_like(trace.values, -90.0)})
+        return trace
+
+    sim.analyzer.acquire_trace = frozen_above_1_5_ghz
+    record = Sequencer(plan, session).run(folder)
     return plan, record
 
 
-def test_points_the_physics_refused_can_be_measured_by_resume(tmp_path):
-    plan, first = _run_with_a_stuck_source(tmp_path / "run")
+@pytest.mark.parametrize("mode", ["per_sweep", "per_group"])
+def test_points_the_physics_refused_can_be_measured_by_resume(tmp_path, mode):
+    plan, first = _run_with_a_stuck_source(tmp_path / "run", mode)
     assert first.info.status == "complete"
     skipped = [s["freq_hz"] for s in first.info.notes["skipped_points"]]
     assert skipped == [2e9, 3e9] and [p.freq_hz for p in first.points] == [1e9]

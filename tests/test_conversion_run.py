@@ -283,3 +283,87 @@ def test_converter_run_with_an_uncertainty_section_writes_full_budgets(tmp_path)
         assert "image rejection" not in names  # a number without u: no term
         # the full budget holds the statistical part and more (ENR at three frequencies)
         assert b["u_combined_db"] > p.u_nf_db
+
+
+# --------------------------------------------------------------------------- forecasts
+
+
+@pytest.mark.parametrize("method", ["y_factor", "gain"])
+def test_forecast_of_a_converter_plan_matches_the_measured_averaging(tmp_path, method):
+    # was refused: "noisebench estimate does not forecast frequency-converting DUTs yet"
+    from noisebench.running.forecast import forecast_plan
+    from noisebench.sims.forecast_model import SimulatedBenchModel
+
+    changes: dict = {"acquisition__target_u_nf_db": 0.05}
+    if method == "gain":
+        changes |= {"method": "gain", "gain": {"source": "constant", "value_db": 21.5}}
+    plan = plan_with(**changes)
+    sim = SimulatedBench.from_scenario("demo-downconverter", seed=5, ideal=True)
+    forecast = forecast_plan(plan, model=SimulatedBenchModel(sim))
+    _, record = _run(plan, tmp_path, seed=5)
+    assert [f.freq_hz for f in forecast.points] == [400e6, 400e6]  # read at the IF
+    assert [f.rf_hz for f in forecast.points] == [2.2e9, 2.4e9]
+    # one IF, one calibration (the sequencer finds calibrations by IF)
+    assert forecast.points[0].calibration_averages > 0
+    assert forecast.points[1].calibration_averages == 0
+    assert len(record.calibrations) == 1
+    for f, p in zip(forecast.points, record.points, strict=True):
+        assert 0.045 < f.u_nf_db <= 0.05 and f.limited_by is None
+        # the same bound as the amplifier forecast (tests/test_sequencer.py): measured =
+        # forecast x planning margin, pilot rounds and the scatter of the u estimate
+        assert 0.8 < p.averages / f.averages < 2.0, (p.averages, f.averages)
+
+
+REAL_BENCH = {
+    "analyzer": {"resource": "TCPIP0::127.0.0.1::5025::SOCKET"},
+    "lo": {"resource": "TCPIP0::127.0.0.1::5028::SOCKET", "max_level_dbm": 13.0},
+}
+
+
+def test_forecast_of_a_converter_plan_from_declared_priors(tmp_path):
+    from noisebench.running.forecast import forecast_plan
+
+    table = tmp_path / "enr.csv"
+    table.write_text("freq_hz,enr_db,u_enr_db\n1e8,15.0,0.1\n5e9,15.0,0.1\n")
+    expect = {"dut_gain_db": 20.0, "dut_nf_db": 5.0, "analyzer_nf_db": 12.0, "enr_db": 15.0}
+    common = dict(
+        bench=REAL_BENCH, expect=expect, sweep={"freqs_hz": [2.2e9]}, enr={"table": str(table)}
+    )
+    none = forecast_plan(plan_with(conversion__image_rejection_db="none", **common)).points[0]
+    # no image response and one flat ENR: the converter read at the IF is an amplifier at the
+    # IF (eqs. 1-5 with r = 0), so the forecast must be the amplifier's, average for average
+    amplifier = forecast_plan(
+        plan_with(conversion=None, **(common | {"sweep": {"freqs_hz": [400e6]}}))
+    ).points[0]
+    assert none.freq_hz == amplifier.freq_hz == 400e6
+    assert (none.averages, none.calibration_averages) == (
+        amplifier.averages,
+        amplifier.calibration_averages,
+    )
+    assert none.u_nf_db == pytest.approx(amplifier.u_nf_db, rel=1e-9)
+    # the image share: at the same SSB NF, equal responses leave less added noise
+    # (Te_SSB = T0 (F - 1 - r)) and twice the source's excess at the IF: a larger Y, fewer
+    # averages to the same target
+    equal = forecast_plan(plan_with(conversion__image_rejection_db="equal", **common)).points[0]
+    assert equal.averages < none.averages
+    assert 0.0 < equal.u_nf_db <= 0.15 * (1 + 1e-9)
+
+
+# --------------------------------------------------------------------------- report
+
+
+def test_report_of_a_converter_run_has_a_frequency_plan_section(tmp_path):
+    from noisebench.results.report import render_report
+
+    _, record = _run(plan_with(), tmp_path)
+    html = render_report(record, {})
+    assert '<h2 id="frequency-plan">Frequency plan</h2>' in html
+    assert 'href="#frequency-plan"' in html
+    section = html.split('id="frequency-plan"')[1].split("<h2")[0]
+    for text in ("fixed_if", "upper", "SSB", "14 dB", "LO (GHz)", "Image (GHz)", "IF (GHz)"):
+        assert text in section, text
+    # each point's LO and image, in the table's unit (GHz): RF 2.2 GHz -> LO 1.8, image 1.4
+    for p in record.points:
+        c = p.conversion
+        assert f"<td>{c.lo_hz / 1e9:.1f}</td>" in section
+        assert f"<td>{c.image_hz / 1e9:.1f}</td>" in section

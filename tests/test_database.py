@@ -251,3 +251,81 @@ def test_sqlite_fresh_database_opened_by_several_processes_at_once(tmp_path):
 
 def test_postgresql_fresh_database_opened_by_several_processes_at_once(pg_url):
     _opens_together(lambda n: _fresh_pg(pg_url, f"nb_fresh_{n}"))
+
+
+# --------------------------------------------------------------------------- converters
+
+
+def _converter_record(run_id: str, serial: str) -> RunRecord:
+    from noisebench.science.point import ConversionInfo
+
+    record = make_record(run_id, serial, (4.0, 4.2, 4.4), minutes=50)
+    points = []
+    for i, p in enumerate(record.points):
+        rf, lo = p.freq_hz, p.freq_hz - 0.4e9
+        conv = ConversionInfo(
+            rf_hz=rf,
+            lo_hz=lo,
+            if_hz=0.4e9,
+            image_hz=2 * lo - rf,
+            sideband="upper",
+            nf_type="ssb",
+            nf_ssb_db=p.nf_db,
+            nf_dsb_db=p.nf_db - 0.1 * (i + 1),
+            te_ssb_k=p.te_k,
+            te_dsb_k=p.te_k / 1.1,
+            image_rejection_db=12.0 + i,
+            image_correction_db=0.1 * (i + 1),
+        )
+        points.append(p.model_copy(update={"conversion": conv}))
+    return record.model_copy(update={"points": points})
+
+
+def _check_converter_columns(db: ResultsDatabase) -> None:
+    db.store_run(_converter_record("c1", "DC-1"))
+    rows = db.conversion_points("c1")
+    assert [r["rf_hz"] for r in rows] == list(FREQS)
+    assert [r["lo_hz"] for r in rows] == [f - 0.4e9 for f in FREQS]
+    assert [r["image_hz"] for r in rows] == [f - 0.8e9 for f in FREQS]
+    assert {r["if_hz"] for r in rows} == {0.4e9} and {r["sideband"] for r in rows} == {"upper"}
+    assert [r["nf_dsb_db"] for r in rows] == pytest.approx([3.9, 4.0, 4.1])
+    assert [r["image_rejection_db"] for r in rows] == [12.0, 13.0, 14.0]
+    assert {r["nf_type"] for r in rows} == {"ssb"}
+    assert db.conversion_points("r1") == []  # an amplifier run has none
+
+
+def _make_version_1(db_url: str) -> None:
+    """A database as version 1 wrote it: points without the conversion columns."""
+    import sqlalchemy as sa
+
+    with ResultsDatabase(db_url) as db:
+        _fill(db)
+    engine = sa.create_engine(db_url)
+    with engine.begin() as con:
+        for column in ResultsDatabase.CONVERSION_COLUMNS:
+            con.execute(sa.text("ALTER TABLE points DROP COLUMN " + column))
+        con.execute(sa.text("UPDATE schema_info SET version = 1"))
+    engine.dispose()
+
+
+def test_sqlite_converter_columns_and_migration_of_a_version_1_file(tmp_path):
+    with ResultsDatabase(tmp_path / "new.sqlite") as db:
+        assert db.schema_version == SCHEMA_VERSION == 2
+        _check_converter_columns(db)
+    url = f"sqlite:///{tmp_path / 'old.sqlite'}"
+    _make_version_1(url)
+    with ResultsDatabase(url) as db:  # migrated on open, old runs kept
+        assert db.schema_version == 2
+        _check_queries(db)
+        _check_converter_columns(db)
+
+
+def test_postgresql_converter_columns_and_migration(pg_url):
+    with ResultsDatabase(_fresh_pg(pg_url, "nb_converter")) as db:
+        _check_converter_columns(db)
+    url = _fresh_pg(pg_url, "nb_migrate")
+    _make_version_1(url)
+    with ResultsDatabase(url) as db:
+        assert db.schema_version == 2
+        _check_queries(db)
+        _check_converter_columns(db)

@@ -47,7 +47,14 @@ from noisebench.science.filters import FilterKind
 
 IDN = "noisebench,test analyzer,0,1"
 OK = '0,"No error"'
-GENERIC = load_profile("generic")
+# these dialogues read the error queue after every command (the generic profile reads it once
+# per step; test_error_check_per_step below has that dialogue)
+GENERIC = parse_profile(
+    open(load_profile("generic").source, encoding="utf-8")
+    .read()
+    .replace('error_check = "step"', 'error_check = "each"'),
+    load_profile("generic").source,
+)
 
 
 def connect(identity: str = IDN) -> list:
@@ -220,7 +227,7 @@ def test_optional_settings_are_sent_only_when_requested():
 
 
 def test_profile_with_start_and_stop_only_sets_the_edges():
-    text = open(GENERIC.source).read()
+    text = open(GENERIC.source).read().replace('error_check = "step"', 'error_check = "each"')
     for name in ("center_hz", "span_hz"):
         block = text[text.index(f"[analyzer.settings.{name}]") :]
         block = block[: block.index("\n\n") + 2]

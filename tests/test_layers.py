@@ -182,3 +182,19 @@ def test_the_cycle_check_finds_a_cycle(tmp_path):
     assert graph["pkg.a"] == {"pkg.b"} and graph["pkg.b"] == {"pkg.a"}
     assert graph["pkg.c"] == set() and graph["pkg.d"] == {"pkg.c"}
     assert import_cycles(graph) == [["pkg.a", "pkg.b"]]
+
+
+LONG_MODULE_LINES = 600
+
+
+@pytest.mark.parametrize(
+    "path", sorted(PACKAGE.rglob("*.py")), ids=lambda p: str(p.relative_to(PACKAGE))
+)
+def test_a_long_module_says_why_at_its_top(path):
+    """A module over 600 lines is split by job, or its docstring has a ``Size:`` paragraph
+    giving the reason (DEVELOPERS.md, layout)."""
+    text = path.read_text(encoding="utf-8")
+    if text.count("\n") <= LONG_MODULE_LINES:
+        return
+    doc = ast.get_docstring(ast.parse(text)) or ""
+    assert "\nSize: " in doc, f"{path.name}: {text.count(chr(10))} lines and no 'Size:' reason"

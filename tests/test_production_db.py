@@ -17,7 +17,7 @@ from _production import FREQS_HZ, exact_sim, session_on, small_plan
 from noisebench.errors import InputError
 from noisebench.frontends.dbcli import DB_ENV, register
 from noisebench.frontends.station import Station, StationSettings, UnitVariation, units_from_lines
-from noisebench.results.database import ResultsDatabase
+from noisebench.results.database import SCHEMA_VERSION, ResultsDatabase
 from noisebench.results.production import (
     INCOMPLETE_NOTE,
     apply_budgets_and_verdict,
@@ -235,7 +235,7 @@ def test_db_queries_print_tables_and_json(sqlite_run, monkeypatch):
     _, out = _cli("db", "history", "NOPE")
     assert "no runs of unit 'NOPE'" in out
     _, out = _cli("db", "info")
-    assert "schema version 1" in out and "runs          6" in out
+    assert f"schema version {SCHEMA_VERSION}" in out and "runs          6" in out
 
 
 def test_db_commands_refuse_a_missing_database(tmp_path, monkeypatch):

@@ -141,7 +141,10 @@ def test_units_are_real_scaling_on_the_wire():
 
 
 def test_init_sequence_after_connect_and_after_a_reconnect():
-    p = generic_with(("[analyzer]\n", '[analyzer]\ninit = ["SYST:PRES", "DISP:ENAB OFF"]\n'))
+    p = generic_with(
+        ("[analyzer]\n", '[analyzer]\ninit = ["SYST:PRES", "DISP:ENAB OFF"]\n'),
+        ('error_check = "step"', 'error_check = "each"'),
+    )
     script = [
         ("*IDN?", "x,y,1,1"),
         ("*CLS", None),

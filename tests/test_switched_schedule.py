@@ -110,3 +110,43 @@ def test_groups_the_physics_refuses_are_skipped_and_the_run_goes_on(tmp_path):
     assert all("hot reading is not above the cold one" in s["reason"] for s in skipped)
     assert {s["stage"] for s in skipped} <= {"calibration", "measurement"}
     assert all(p.nf_db > 20 for p in record.points)
+
+
+def _tight_run(tmp_path, **drift: float):
+    """Averages of 32 and more per pass (target 0.03 dB), so the blocks' monitors split."""
+    plan = make_plan("y_factor", freqs_hz=FREQS, target=0.03, switching={"mode": "per_sweep"})
+    sim = ideal_sim(3, **drift)
+    reads: dict[float, list[int]] = {}
+    original = sim.analyzer.acquire_trace
+
+    def counting():
+        s = sim.analyzer.settings
+        reads.setdefault(s.center_hz, []).append(s.averages)
+        return original()
+
+    sim.analyzer.acquire_trace = counting
+    record = Sequencer(plan, simulated_session(sim, plan.bench)).run(tmp_path / "tight")
+    return record, reads
+
+
+def test_one_monitor_per_block_splits_its_readings_and_every_point_carries_its_check(tmp_path):
+    record, reads = _tight_run(tmp_path)
+    monitors = {f for p in record.points for f in p.notes["drift_check"]["monitor_hz"]}
+    assert monitors and len(monitors) < len(FREQS)
+    for p in record.points:
+        check = p.notes["drift_check"]
+        assert check["dof"] >= 4 and not check["flagged"]
+        assert PointFlag.DRIFT not in p.flags
+    # a group that never watched a block reads each pass in one acquisition (four per block),
+    # so it takes fewer acquisitions than the monitors
+    watched = [len(reads[f]) for f in FREQS if f in monitors]
+    plain = [len(reads[f]) for f in FREQS if f not in monitors]
+    assert plain and max(plain) < min(watched)
+
+
+def test_a_curvature_the_schedule_cannot_cancel_is_flagged_at_every_point(tmp_path):
+    # -0.01 dB/s^2 over a run of tens of seconds: dB of curvature, far beyond the target
+    record, _ = _tight_run(tmp_path, analyzer__gain_drift_db_per_s2=-0.01)
+    assert record.points
+    assert all(PointFlag.DRIFT in p.flags for p in record.points)
+    assert all(p.notes["drift_check"]["p_value"] < 1e-3 for p in record.points)

@@ -11,6 +11,10 @@ under the instrument lock with the retry/recovery policy of
 :class:`~noisebench.drivers.scpi_channel.ScpiChannel`; after a reconnect the settings are read
 back, compared with the last applied ones (a difference means the instrument lost them, e.g.
 after a reboot: recorded in ``settings_changes``) and re-applied.
+
+Size: one driver, the SCPI analyzer: configure with read-back, traces, markers, noise drive and
+recovery all go through the same profile look-ups and settings cache, which a split would have
+to share.
 """
 
 from __future__ import annotations
@@ -488,7 +492,10 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
             exc.add_context(timeout_s=round(limit, 3))
             self._abort_quietly()
             raise
-        self._channel.check_errors(acq.start)
+        if self.profile.common.error_check == "each":
+            self._channel.check_errors(acq.start)
+        # "step": the one read after the trace transfer covers the start (the acquisition and
+        # its transfer are one step; an error names the commands since the last read)
         return time.monotonic() - started
 
     def _wait_by_polling(self, limit_s: float, poll_start: str) -> None:

@@ -189,10 +189,6 @@ class ScpiSupply(SwitchedOutputInstrument, Instrument):
         self.spec: SupplyProfile
         self._connect_output(transport, profile, "supply", retries=retries)
 
-    @property
-    def can_measure(self) -> bool:
-        return self.spec.measure_voltage is not None
-
     def __repr__(self) -> str:
         return f"<ScpiSupply {self.transport.resource!r} profile={self.profile.name!r}>"
 
@@ -455,7 +451,6 @@ class OperatorNoiseSource(_SwitchedSource):
             raise InputError("prompt", "must be callable as prompt(text) -> str")
         super().__init__(settle_time_s, sleep=sleep, cold_temperature_k=cold_temperature_k)
         self.prompt = prompt
-        self._asked_off_on_close = False
 
     @property
     def identity(self) -> str:

@@ -15,6 +15,10 @@ loaded (one line, printable ASCII, one ``{value}`` field, a number format limite
 precision and type). The value spliced in is always a validated number, a profile token or,
 for free text (labels), a string restricted to letters, digits, space and ``_ . + - /``:
 nothing a user types can add a ``;``, a quote or a newline to a command.
+
+Size: one job, the profile schema: the TOML sections and their setting types must be validated
+together (cross-section dependencies, enum keys, command templates), and pydantic needs them in
+one namespace to resolve the nested models.
 """
 
 from __future__ import annotations
@@ -264,12 +268,6 @@ class _Setting(BaseModel):
     def readable(self) -> bool:
         return self.get_cmd is not None or getattr(self, "fixed", None) is not None
 
-    @property
-    def depends_on(self) -> str | None:
-        """The setting a ``fixed = { by = ... }`` value depends on, else None."""
-        fixed = getattr(self, "fixed", None)
-        return fixed.by if isinstance(fixed, FixedBy) else None
-
     def fixed_value(self, context: Mapping[str, Any] | None = None) -> Any:
         """The profile's ``fixed`` value; for ``fixed = { by = ... }`` the entry for the other
         setting's current choice in ``context`` (``{name: our value}``)."""
@@ -370,13 +368,6 @@ class _Numeric(_Setting):
     def scale(self) -> float:
         """Our SI value = instrument value x scale (``unit = "MHz"``: 1e6)."""
         return unit_scale(self.unit)
-
-    @property
-    def quantised(self) -> bool:
-        """True when the profile declares how the instrument rounds this setting."""
-        return any(getattr(self, n) is not None for n in ("allowed", "sequence", "step")) or (
-            self.out_of_range == "clamp"
-        )
 
     def allowed_values(self) -> list[float] | None:
         """The values the instrument accepts (list or sequence), else None."""

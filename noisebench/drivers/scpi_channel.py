@@ -207,7 +207,7 @@ class ScpiChannel:
             return
         code, text = entries[0]
         more = "; ".join(f"{c},{t!r}" for c, t in entries[1:]) or None
-        recent = ", ".join(sent[-6:]) if len(sent) > 1 else None
+        recent = ", ".join(sent[-6:]) if sent and sent != [after] else None
         logger.error("%s: instrument error %d %r after %r", self.kind, code, text, after)
         raise InstrumentError(
             code,

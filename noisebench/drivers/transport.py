@@ -23,6 +23,10 @@ What VisaSession does about pyvisa-py's known behaviour on sockets (see DEVELOPE
   end-of-file never returns, so it is never used on sockets;
 - ``pyvisa.errors.VisaIOError`` and ``OSError`` become :class:`~noisebench.errors.InstrumentTimeout`
   or :class:`~noisebench.errors.CommunicationError`, keeping the VISA code.
+
+Size: one seam with its back ends (VISA, raw socket, the fast block reader) and the IEEE 488.2
+block decoding they share; each back end is short, and keeping them beside the abstract class
+keeps the recovery and timeout rules in one place.
 """
 
 from __future__ import annotations

@@ -14,6 +14,9 @@ Typical use::
     db = ResultsDatabase("sqlite:///station.sqlite")     # or "postgresql+psycopg://..."
     db.store_run(record, lot="L24-07", station="bench-3")
     db.yield_by_lot()                                     # -> [LotYield(...)]
+
+Size: one job, the results database: schema, writes and the production queries share the table
+definitions and the session handling.
 """
 
 from __future__ import annotations
@@ -22,7 +25,7 @@ import json
 import logging
 import math
 import time
-from collections.abc import Iterable, Sequence
+from collections.abc import Sequence
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
@@ -33,7 +36,9 @@ from noisebench.errors import InputError, NoisebenchError
 
 log = logging.getLogger(__name__)
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
+"""1: the first schema; 2: per-point frequency plan of converter runs (``points.rf_hz`` ...),
+added to a version-1 database in place when it is opened (``_migrate``)."""
 _SCHEMA_ATTEMPTS = 20  # bounded retries of schema creation on engines without a schema lock
 _SCHEMA_LOCK_KEY = 0x6E6F6973  # PostgreSQL advisory-lock key of noisebench's schema step
 
@@ -130,6 +135,16 @@ class _Point(_Base):
     expanded_u_nf_db: Mapped[float | None] = mapped_column(Float)
     verdict: Mapped[str | None] = mapped_column(String(20))
     flags: Mapped[str] = mapped_column(String(500), nullable=False, default="")
+    # a frequency-converting DUT's point (schema 2; NULL for amplifiers): freq_hz is the RF
+    rf_hz: Mapped[float | None] = mapped_column(Float)
+    lo_hz: Mapped[float | None] = mapped_column(Float)
+    if_hz: Mapped[float | None] = mapped_column(Float)
+    image_hz: Mapped[float | None] = mapped_column(Float)
+    sideband: Mapped[str | None] = mapped_column(String(10))
+    nf_type: Mapped[str | None] = mapped_column(String(10))
+    nf_ssb_db: Mapped[float | None] = mapped_column(Float)
+    nf_dsb_db: Mapped[float | None] = mapped_column(Float)
+    image_rejection_db: Mapped[float | None] = mapped_column(Float)
     run: Mapped[_Run] = relationship(back_populates="points")
     terms: Mapped[list[_BudgetTerm]] = relationship(cascade="all, delete-orphan")
 
@@ -207,6 +222,24 @@ def _as_url(target: str | Path) -> str:
     return f"sqlite:///{Path(text).expanduser().resolve()}"
 
 
+def _conversion_columns(conv: Any) -> dict[str, Any]:
+    """The conversion columns of one point (all None for an amplifier)."""
+    if conv is None:
+        return {}
+    get = conv.get if isinstance(conv, dict) else lambda k: getattr(conv, k, None)
+    return {
+        "rf_hz": _finite_or_none(get("rf_hz")),
+        "lo_hz": _finite_or_none(get("lo_hz")),
+        "if_hz": _finite_or_none(get("if_hz")),
+        "image_hz": _finite_or_none(get("image_hz")),
+        "sideband": get("sideband"),
+        "nf_type": get("nf_type"),
+        "nf_ssb_db": _finite_or_none(get("nf_ssb_db")),
+        "nf_dsb_db": _finite_or_none(get("nf_dsb_db")),
+        "image_rejection_db": _finite_or_none(get("image_rejection_db")),
+    }
+
+
 def _finite_or_none(value: Any) -> float | None:
     if value is None:
         return None
@@ -263,6 +296,8 @@ class ResultsDatabase:
                     _Base.metadata.create_all(conn)
                     self._add_missing_indexes(conn)
                     info = conn.execute(select(_SchemaInfo.version)).first()
+                    if info is not None and int(info[0]) == 1:
+                        self._migrate_from_1(conn)
                     if info is None:
                         conn.execute(
                             insert(_SchemaInfo).values(
@@ -295,6 +330,36 @@ class ResultsDatabase:
             conn.exec_driver_sql("BEGIN IMMEDIATE")  # waits up to the busy timeout
         elif dialect == "postgresql":
             conn.execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": _SCHEMA_LOCK_KEY})
+
+    CONVERSION_COLUMNS: tuple[str, ...] = (
+        "rf_hz",
+        "lo_hz",
+        "if_hz",
+        "image_hz",
+        "sideband",
+        "nf_type",
+        "nf_ssb_db",
+        "nf_dsb_db",
+        "image_rejection_db",
+    )
+
+    @classmethod
+    def _migrate_from_1(cls, conn: Any) -> None:
+        """Schema 1 -> 2, inside the schema lock: add the converter columns to ``points``.
+
+        The DDL is compiled by SQLAlchemy from our own column definitions for the engine's
+        dialect (no user text in it); existing rows get NULL (amplifier points)."""
+        from sqlalchemy import inspect
+        from sqlalchemy.schema import CreateColumn
+
+        present = {c["name"] for c in inspect(conn).get_columns("points")}
+        table = _Base.metadata.tables["points"]
+        for name in cls.CONVERSION_COLUMNS:
+            if name not in present:
+                column = CreateColumn(table.c[name]).compile(dialect=conn.dialect)
+                conn.exec_driver_sql("ALTER TABLE points ADD COLUMN " + str(column))
+        conn.execute(_Base.metadata.tables["schema_info"].update().values(version=SCHEMA_VERSION))
+        log.info("results database migrated from schema 1 to %d", SCHEMA_VERSION)
 
     @staticmethod
     def _add_missing_indexes(conn: Any) -> None:
@@ -419,6 +484,7 @@ class ResultsDatabase:
                     expanded_u_nf_db=_finite_or_none(budget.get("U_expanded_db")),
                     verdict=pv.get("verdict"),
                     flags=";".join(str(getattr(f, "value", f)) for f in p.flags),
+                    **_conversion_columns(getattr(p, "conversion", None)),
                 )
                 for term in budget.get("contributions", []):
                     row.terms.append(
@@ -576,6 +642,19 @@ class ResultsDatabase:
                 )
             return out
 
+    def conversion_points(self, run_id: str) -> list[dict[str, Any]]:
+        """A converter run's frequency plan per point (RF order): the conversion columns;
+        empty for an amplifier run."""
+        columns = [getattr(_Point, name) for name in self.CONVERSION_COLUMNS]
+        with Session(self.engine) as s:
+            rows = s.execute(
+                select(*columns)
+                .join(_Run, _Point.run_fk == _Run.id)
+                .where(_Run.run_id == run_id, _Point.rf_hz.is_not(None))
+                .order_by(_Point.rf_hz)
+            ).all()
+        return [dict(zip(self.CONVERSION_COLUMNS, row, strict=True)) for row in rows]
+
     def run_ids(self) -> list[str]:
         with Session(self.engine) as s:
             return list(s.scalars(select(_Run.run_id).order_by(_Run.id)))
@@ -604,11 +683,6 @@ class ResultsDatabase:
         self.close()
 
 
-def store_runs(db: ResultsDatabase, records: Iterable[Any], **kw: Any) -> list[int]:
-    """Store several runs; returns their database ids."""
-    return [db.store_run(r, **kw) for r in records]
-
-
 __all__: Sequence[str] = (
     "ResultsDatabase",
     "DatabaseError",
@@ -616,5 +690,4 @@ __all__: Sequence[str] = (
     "FrequencyStats",
     "UnitRun",
     "SCHEMA_VERSION",
-    "store_runs",
 )

@@ -31,6 +31,9 @@ Conventions every figure follows:
 - Verdicts are told apart by marker shape as well as colour (:data:`VERDICT_STYLE`; the
   colours stay distinct under simulated protan-, deutan- and tritanopia), limit lines are
   black dashed lines labelled with their value.
+
+Size: one job, the figures of a run; each figure is a short function and all share the axis,
+colour and legend helpers at the top.
 """
 
 from __future__ import annotations

@@ -199,30 +199,58 @@ def _jsonable(value: Any, where: str) -> Any:
 
     Non-finite floats become ``None`` with a warning (JSON has no NaN).
     """
+    return _plain(value, (where,))
+
+
+_SCALARS = (str, int, bool, type(None))
+
+
+def _where(path: tuple) -> str:
+    """``a.b[2].c`` from a path of names (str) and list indices (int)."""
+    text = str(path[0])
+    for part in path[1:]:
+        text += f"[{part}]" if isinstance(part, int) else f".{part}"
+    return text
+
+
+def _plain(value: Any, path: tuple) -> Any:
+    """:func:`_jsonable` with the location kept as a path (formatted only for a message)."""
+    kind = type(value)
+    if kind is float:
+        if math.isfinite(value):
+            return value
+        logger.warning("%s is %r: stored as null (JSON has no NaN/inf)", _where(path), value)
+        return None
+    if kind in _SCALARS:
+        return value
+    if kind is dict:
+        return {str(k): _plain(v, (*path, str(k))) for k, v in value.items()}
+    if kind is list or kind is tuple:
+        return [_plain(v, (*path, i)) for i, v in enumerate(value)]
     to_dict = getattr(value, "to_dict", None)
     if callable(to_dict):  # e.g. uncertainty budgets and verdicts: their documented shape
-        return _jsonable(to_dict(), where)
+        return _plain(to_dict(), path)
     if isinstance(value, BaseModel):
-        return _jsonable(value.model_dump(mode="python"), where)
+        return _plain(value.model_dump(mode="python"), path)
     if isinstance(value, dict):
-        return {str(k): _jsonable(v, f"{where}.{k}") for k, v in value.items()}
+        return {str(k): _plain(v, (*path, str(k))) for k, v in value.items()}
     if isinstance(value, (list, tuple, set, frozenset)):
-        return [_jsonable(v, f"{where}[{i}]") for i, v in enumerate(value)]
+        return [_plain(v, (*path, i)) for i, v in enumerate(value)]
     if isinstance(value, Enum):
         return value.value
     if isinstance(value, (datetime, Path)):
         return value.isoformat() if isinstance(value, datetime) else str(value)
     if hasattr(value, "tolist") and not isinstance(value, (str, bytes)):  # numpy
-        return _jsonable(value.tolist(), where)
+        return _plain(value.tolist(), path)
     if isinstance(value, bool) or value is None or isinstance(value, (str, int)):
         return value
     if isinstance(value, float):
         if math.isfinite(value):
             return value
-        logger.warning("%s is %r: stored as null (JSON has no NaN/inf)", where, value)
+        logger.warning("%s is %r: stored as null (JSON has no NaN/inf)", _where(path), value)
         return None
     raise InputError(
-        where,
+        _where(path),
         f"cannot be stored as JSON (type {type(value).__name__})",
         fix="store numbers, strings, lists or dicts",
     )

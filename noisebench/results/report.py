@@ -21,6 +21,11 @@ markers, :data:`noisebench.results.plots.VERDICT_STYLE`), so they read without c
 Long per-frequency tables scroll inside their box; per-frequency budget and calibration
 details are left to ``results.json`` above ``DETAIL_ROWS_MAX`` points, which keeps the report
 of a 1001-point run small.
+
+Size: one job, the report's view model: every section of the page turned into template data (the
+HTML itself is in results/templates/); the formatting helpers and node types before it serve
+only these sections. A split would cut along the page's sections, which share the formatters and
+the record look-ups; left whole until a second output format needs them.
 """
 
 from __future__ import annotations
@@ -1522,6 +1527,81 @@ def _notes(record: RunRecord) -> dict[str, Any] | None:
 # ----------------------------------------------------------------------------- entry points
 
 
+def _frequency_plan(record: RunRecord) -> dict[str, Any] | None:
+    """A converter run's frequency plan: the [conversion] settings and RF/LO/IF/image per point."""
+    points = [p for p in record.points if p.conversion is not None]
+    if not points:
+        return None
+    section = (record.info.plan or {}).get("conversion") or {}
+    lo = section.get("lo") or {}
+    c0 = points[0].conversion
+    assert c0 is not None
+    sidebands = sorted({p.conversion.sideband for p in points if p.conversion is not None})
+    facts = [
+        ("Sweep mode", str(section.get("mode", "-"))),
+        ("Sideband", ", ".join(sidebands) + " (RF above the LO)" * (sidebands == ["upper"])),
+        ("NF type in nf_db", c0.nf_type.upper() + " (the other figure is in the table)"),
+        ("Image rejection", _rejection_text(section.get("image_rejection_db"))),
+    ]
+    if section.get("u_image_rejection_db"):
+        facts.append(("u(image rejection)", f"{section['u_image_rejection_db']:g} dB"))
+    if lo:
+        level = lo.get("level_dbm")
+        facts.append(
+            (
+                "LO",
+                f"{lo.get('source', 'generator')}"
+                + (f", {level:g} dBm" if _is_number(level) else "")
+                + (f", settling {lo['settle_time_s']:g} s" if lo.get("settle_time_s") else ""),
+            )
+        )
+    freqs = [
+        f
+        for p in points
+        if p.conversion is not None
+        for f in (p.conversion.rf_hz, p.conversion.lo_hz, p.conversion.if_hz, p.conversion.image_hz)
+    ]
+    fc = FrequencyColumn.of(freqs)
+
+    def conv(p: Any) -> Any:
+        return p.conversion
+
+    columns = [
+        Column(f"RF ({fc.unit})", lambda p: fc.cell(conv(p).rf_hz), "the converter's input"),
+        Column(f"LO ({fc.unit})", lambda p: fc.cell(conv(p).lo_hz)),
+        Column(f"IF ({fc.unit})", lambda p: fc.cell(conv(p).if_hz), "where the analyzer reads"),
+        Column(f"Image ({fc.unit})", lambda p: fc.cell(conv(p).image_hz), "2 LO - RF"),
+        Column("Sideband", lambda p: conv(p).sideband, text=True),
+        Column(
+            "Image rej. (dB)",
+            lambda p: (
+                _num(conv(p).image_rejection_db, 1)
+                if conv(p).image_rejection_db is not None
+                else "none"
+            ),
+            "signal response over image response; none: no image response",
+        ),
+        Column("NF SSB (dB)", lambda p: _num(conv(p).nf_ssb_db), "signal band only"),
+        Column("NF DSB (dB)", lambda p: _num(conv(p).nf_dsb_db), "both bands as signal"),
+        Column(
+            "SSB - DSB (dB)",
+            lambda p: _num(conv(p).image_correction_db),
+            "image correction 10 log10(1 + G_image/G_signal)",
+        ),
+    ]
+    return {"facts": _kv(facts), "table": _grid(columns, [(p,) for p in points])}
+
+
+def _rejection_text(value: Any) -> str:
+    if _is_number(value):
+        return f"{value:g} dB"
+    if value == "none":
+        return "none (no image response)"
+    if value == "equal":
+        return "equal responses (0 dB)"
+    return f"table {value}" if value else "-"
+
+
 def _sections(record: RunRecord, images: Mapping[str, bytes]) -> list[tuple[str, str]]:
     """``(anchor, title)`` of the sections this record has, in order."""
     info = record.info
@@ -1529,6 +1609,7 @@ def _sections(record: RunRecord, images: Mapping[str, bytes]) -> list[tuple[str,
         ("summary", "Summary", True),
         ("figures", "Figures", bool(images)),
         ("points", "Points", True),
+        ("frequency-plan", "Frequency plan", any(p.conversion for p in record.points)),
         ("verdict", "Limits and verdict", bool(record.verdict)),
         ("budget", "Uncertainty budget", bool(_budget_list(record))),
         ("calibration", "Calibration", bool(info.calibration or record.calibrations)),
@@ -1557,6 +1638,7 @@ def report_context(record: RunRecord, images: Mapping[str, bytes]) -> dict[str, 
         "summary": _summary(record),
         "figures": _figures(images),
         "points": _points(record),
+        "frequency_plan": _frequency_plan(record),
         "verdict": _verdict_section(record),
         "budget": _budgets(record),
         "calibration": _calibration(record),

@@ -20,12 +20,16 @@ For each group of points (the sequencer's grouping) the forecast
 
 It is a forecast: the adaptive sequencer measures what it needs; the forecast says what to
 expect and which points will hit their time limit.
+
+Size: one job, the forecast of a plan; the priors (declared or from a bench model, amplifiers
+and converters), the per-point uncertainty and the time model share the plan look-ups, and the
+sequencer imports its sizing helpers from here.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any, Protocol
 
 import numpy as np
@@ -43,6 +47,9 @@ from noisebench.science.physics import (
     ratio_from_db,
     source_hot_temperature_k,
     te_k_from_nf_db,
+    thermal_density_w_per_hz,
+    two_port_output_temperature_k,
+    two_response_temperature_k,
 )
 from noisebench.science.point import Method
 from noisebench.units import format_frequency
@@ -125,6 +132,18 @@ def nominal_settings(
 
 
 @dataclass(frozen=True)
+class ConverterPriors:
+    """A frequency-converting DUT's point: its plan and the ENR at the image and the IF."""
+
+    rf_hz: float
+    lo_hz: float
+    image_rejection_db: float | None  # None: no image response
+    enr_image_db: float | None
+    enr_if_db: float | None
+    nf_type: str
+
+
+@dataclass(frozen=True)
 class Priors:
     """What is expected at one frequency: densities at the analyzer, W/Hz (relative scale)."""
 
@@ -133,6 +152,7 @@ class Priors:
     gain_db: float
     source_temperature_k: float
     t0_k: float
+    conversion: ConverterPriors | None = None  # a converter: readings at the IF
 
     @property
     def y_factor_enr_db(self) -> float:
@@ -165,6 +185,13 @@ class BenchModel(Protocol):
         self, freq_hz: float, y_factor: bool
     ) -> tuple[dict[str, float], float | None, float, float]:
         """(densities W/Hz by reading, ENR dB or None, DUT path gain dB, source temperature K)."""
+
+    def expected_conversion(
+        self, rf_hz: float, lo_hz: float, lo_dbm: float | None
+    ) -> dict[str, float]:
+        """A converter DUT at (RF, LO): ``te_ssb_k``, ``gain_signal_db``,
+        ``image_rejection_db`` (inf: none), ``analyzer_te_k`` (at the IF) and the ENR table's
+        ``enr_rf_table_db``, ``enr_image_table_db``, ``enr_if_table_db``."""
 
 
 def _declared_priors(plan: Plan, freq_hz: float, source_k: float) -> Priors:
@@ -211,13 +238,77 @@ def _declared_priors(plan: Plan, freq_hz: float, source_k: float) -> Priors:
     return Priors(readings, enr_db, float(e.dut_gain_db), ts, t0)  # type: ignore[arg-type]
 
 
-def _model_priors(plan: Plan, model: BenchModel, freq_hz: float) -> Priors:
-    if plan.conversion is not None:
-        raise InputError(
-            "conversion",
-            "noisebench estimate does not forecast frequency-converting DUTs yet",
-            fix="run the plan on the simulated bench to see its averages and times",
+def _converter_priors(
+    plan: Plan, group: PointGroup, if_hz: float, source_k: float, model: BenchModel | None
+) -> Priors:
+    """Readings at the IF of a converter point (eq. 1 of science/conversion.py, losses left
+    out): the signal band and the image band's share ``r`` both carry the source's noise."""
+    from noisebench.running.conversion import ImageRejection
+
+    conv = plan.conversion
+    assert conv is not None and group.lo_hz is not None
+    rf, lo = group.rf_of(if_hz), group.lo_hz
+    image = 2.0 * lo - rf
+    rejection = ImageRejection(conv, plan.resolve_path).at(rf)
+    t0 = plan.corrections.t0_k
+    r = 0.0 if rejection is None else float(ratio_from_db(-rejection))
+    if model is not None:
+        truth = model.expected_conversion(rf, lo, conv.lo.level_dbm)
+        te_ssb, gain_db = truth["te_ssb_k"], truth["gain_signal_db"]
+        te_sa = truth["analyzer_te_k"]
+        enr: tuple[float | None, ...] = (
+            truth["enr_rf_table_db"],
+            truth["enr_image_table_db"],
+            truth["enr_if_table_db"],
         )
+    else:
+        e = plan.expect
+        declared = _declared_priors(plan, if_hz, source_k)  # checks what [expect] must hold
+        nf = float(e.dut_nf_db)  # type: ignore[arg-type]
+        f_ssb = float(ratio_from_db(nf)) * ((1.0 + r) if conv.nf_type == "dsb" else 1.0)
+        te_ssb = t0 * (f_ssb - 1.0 - r)
+        gain_db = declared.gain_db
+        te_sa = float(te_k_from_nf_db(e.analyzer_nf_db, t0))  # type: ignore[arg-type]
+        enr = tuple(_declared_enr_db(plan, f) for f in (rf, image, if_hz))
+    gs = float(ratio_from_db(gain_db))
+    ts = source_k
+
+    def at_if(t_signal: float, t_image: float) -> float:
+        t_in = two_response_temperature_k(t_signal, t_image, r)
+        return float(
+            thermal_density_w_per_hz(two_port_output_temperature_k(t_in, gs, te_ssb) + te_sa)
+        )
+
+    if plan.method is Method.GAIN:
+        readings = {"dut": at_if(ts, ts), "floor": float(thermal_density_w_per_hz(ts + te_sa))}
+        enr_rf = enr_img = enr_if = None
+    else:
+        enr_rf, enr_img, enr_if = (float(x) if x is not None else None for x in enr)
+        th_s = float(source_hot_temperature_k(ratio_from_db(enr_rf), ts, t0))  # type: ignore[arg-type]
+        th_i = float(source_hot_temperature_k(ratio_from_db(enr_img), ts, t0))  # type: ignore[arg-type]
+        th_if = float(source_hot_temperature_k(ratio_from_db(enr_if), ts, t0))  # type: ignore[arg-type]
+        readings = {
+            "hot": at_if(th_s, th_i),
+            "cold": at_if(ts, ts),
+            "hot_cal": float(thermal_density_w_per_hz(th_if + te_sa)),
+            "cold_cal": float(thermal_density_w_per_hz(ts + te_sa)),
+        }
+    conversion = ConverterPriors(rf, lo, rejection, enr_img, enr_if, conv.nf_type)
+    return Priors(readings, enr_rf, gain_db, ts, t0, conversion)
+
+
+def _declared_enr_db(plan: Plan, freq_hz: float) -> float | None:
+    if plan.method is not Method.Y_FACTOR:
+        return None
+    if plan.expect.enr_db is not None:
+        return float(plan.expect.enr_db)
+    from noisebench.science.enr import EnrTable
+
+    table = EnrTable.from_csv(plan.resolve_path(str(plan.enr.table)))
+    return float(table.at(freq_hz, extrapolate="clamp").enr_db)
+
+
+def _model_priors(plan: Plan, model: BenchModel, freq_hz: float) -> Priors:
     readings, enr, gain, ts = model.expected_readings(freq_hz, plan.method is Method.Y_FACTOR)
     return Priors(readings, enr, gain, ts, plan.corrections.t0_k)
 
@@ -234,6 +325,8 @@ def point_uncertainty_db(
 ) -> float:
     """NF standard uncertainty (dB) for readings with relative uncertainties ``rel_u``."""
     r = priors.readings
+    if priors.conversion is not None:
+        return _converter_uncertainty_db(method, freq_hz, priors, rel_u)
     if method is Method.GAIN:
         from noisebench.science.methods.gain import gain_method_point
 
@@ -265,6 +358,50 @@ def point_uncertainty_db(
     return point.u_nf_db
 
 
+def _converter_uncertainty_db(
+    method: Method, if_hz: float, priors: Priors, rel_u: dict[str, float]
+) -> float:
+    from noisebench.science.methods.converter import (
+        converter_gain_method_point,
+        converter_y_factor_point,
+    )
+    from noisebench.science.methods.yfactor import calibrate_point
+
+    c, r = priors.conversion, priors.readings
+    assert c is not None
+    common: dict[str, Any] = dict(
+        rf_hz=c.rf_hz,
+        lo_hz=c.lo_hz,
+        image_rejection_db=c.image_rejection_db,
+        nf_type=c.nf_type,
+        t0_k=priors.t0_k,
+    )
+    if method is Method.GAIN:
+        return converter_gain_method_point(
+            _density(if_hz, r["dut"], rel_u.get("dut", 0.0)),
+            priors.gain_db,
+            floor=_density(if_hz, r["floor"], rel_u.get("floor", 0.0)),
+            source_temperature_k=priors.source_temperature_k,
+            **common,
+        ).u_nf_db
+    cal = calibrate_point(
+        _density(if_hz, r["hot_cal"], rel_u.get("hot_cal", 0.0)),
+        _density(if_hz, r["cold_cal"], rel_u.get("cold_cal", 0.0)),
+        float(c.enr_if_db),  # type: ignore[arg-type]
+        cold_temperature_k=priors.source_temperature_k,
+        t0_k=priors.t0_k,
+    )
+    return converter_y_factor_point(
+        _density(if_hz, r["hot"], rel_u.get("hot", 0.0)),
+        _density(if_hz, r["cold"], rel_u.get("cold", 0.0)),
+        enr_rf_db=float(priors.enr_db),  # type: ignore[arg-type]
+        enr_image_db=c.enr_image_db,
+        cold_temperature_k=priors.source_temperature_k,
+        calibration=cal,
+        **common,
+    ).u_nf_db
+
+
 @dataclass(frozen=True)
 class PointForecast:
     """Forecast for one frequency: averages per reading, instrument time (s), u (dB)."""
@@ -277,6 +414,7 @@ class PointForecast:
     u_nf_db: float
     target_u_nf_db: float
     limited_by: str | None  # None, "time_limit", "max_averages", "calibration"
+    rf_hz: float | None = None  # a converter's RF (freq_hz is then the IF the analyzer reads)
 
 
 @dataclass
@@ -298,13 +436,17 @@ class PlanForecast:
     def format(self) -> str:
         from noisebench.running.progress import format_duration, format_freq
 
+        converter = any(p.rf_hz is not None for p in self.points)
         lines = [
-            f"{'freq':>12} {'averages':>9} {'cal avg':>8} {'time':>10} "
-            f"{'u NF dB':>8} {'target':>7}  note"
+            (f"{'RF':>12} {'IF':>12} " if converter else f"{'freq':>12} ")
+            + f"{'averages':>9} {'cal avg':>8} {'time':>10} {'u NF dB':>8} {'target':>7}  note"
         ]
         for p in self.points:
+            where = format_freq(p.freq_hz)
+            if converter:
+                where = f"{format_freq(p.rf_hz or p.freq_hz):>12} {where:>12}"
             lines.append(
-                f"{format_freq(p.freq_hz):>12} {p.averages:>9d} "
+                f"{where:>12} {p.averages:>9d} "
                 f"{p.calibration_averages:>8d} {format_duration(p.time_s):>10} "
                 f"{p.u_nf_db:>8.4f} {p.target_u_nf_db:>7.3f}  {p.limited_by or ''}"
             )
@@ -350,20 +492,26 @@ def forecast_plan(plan: Plan, *, model: BenchModel | None = None) -> PlanForecas
     from noisebench.bench.registry import settings_analyzer
 
     analyzer = settings_analyzer(plan.bench, model)
+    calibrated_ifs: set[float] = set()
     for group in plan_groups(plan.points()):
         settings, per_average_s = _group_settings(plan, group, analyzer)
         for f in group.freqs_hz:
-            priors = (
-                _model_priors(plan, model, f)
-                if model is not None
-                else _declared_priors(plan, f, source_k)
-            )
+            if plan.conversion is not None:
+                priors = _converter_priors(plan, group, f, source_k, model)
+            elif model is not None:
+                priors = _model_priors(plan, model, f)
+            else:
+                priors = _declared_priors(plan, f, source_k)
             rel = math.sqrt(band_relative_variance(settings, f, group.band_hz))
-            out.append(
-                _forecast_point(
-                    plan, group, f, priors, rel, per_average_s, len(group.freqs_hz), settle_s
-                )
+            point = _forecast_point(
+                plan, group, f, priors, rel, per_average_s, len(group.freqs_hz), settle_s
             )
+            if plan.conversion is not None:
+                # calibrations are found by IF: a fixed-IF sweep calibrates once
+                if f in calibrated_ifs:
+                    point = replace(point, calibration_averages=0, calibration_time_s=0.0)
+                calibrated_ifs.add(f)
+            out.append(point)
     return PlanForecast(out)
 
 
@@ -402,10 +550,13 @@ def _calibration_design_u1(plan: Plan, freq_hz: float, priors: Priors, rel1: flo
             source_temperature_k=priors.source_temperature_k,
             t0_k=priors.t0_k,
         )
+    cal_enr_db = (
+        priors.y_factor_enr_db if priors.conversion is None else priors.conversion.enr_if_db
+    )
     return system_design_u_db(
         _density(freq_hz, r["hot_cal"], rel1),
         _density(freq_hz, r["cold_cal"], rel1),
-        float(priors.y_factor_enr_db),
+        float(cal_enr_db),  # type: ignore[arg-type]
         cold_temperature_k=priors.source_temperature_k,
         design_gain_db=_design_gain_db(plan, priors),
         t0_k=priors.t0_k,
@@ -468,8 +619,9 @@ def _forecast_point(
     u = math.sqrt(u_meas1**2 / n + u_fix**2)
     if u <= target * (1 + 1e-9):
         limited = None
+    rf = priors.conversion.rf_hz if priors.conversion is not None else None
     return PointForecast(
-        freq_hz, n * len(meas), n_cal * len(cal), time_s, cal_time, u, target, limited
+        freq_hz, n * len(meas), n_cal * len(cal), time_s, cal_time, u, target, limited, rf
     )
 
 

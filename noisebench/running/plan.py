@@ -32,6 +32,9 @@ This module is the schema (one pydantic model per section, kept together so that
 reads in one place, hence its length) and the loader; the cross-field checks are in
 :mod:`noisebench.running.plan_checks`, the one-line problem texts in
 :mod:`noisebench.running.plan_errors`.
+
+Size: one schema, the plan: the pydantic sections must live together to validate as one model;
+the cross-field checks that reach other layers are already out in plan_checks.py.
 """
 
 from __future__ import annotations

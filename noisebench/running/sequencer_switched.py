@@ -6,11 +6,18 @@ backward. A group read for ``tau`` in every pass, starting ``s`` into a pass of 
 has its hot readings at ``s + tau/2`` and ``4T - s - tau/2`` and its cold ones at
 ``2T - s - tau/2`` and ``2T + s + tau/2``: both pairs are centred on ``2T``, so a drift linear in
 time (receiver gain, or the source's own output) moves hot and cold alike and cancels in Y, for
-every point. Three switches serve the whole block (four with the final one to cold). Each pass
-reading of 32 averages or more is taken as two acquisitions of half the averages, so every state
-has four readings at four times per block and :func:`noisebench.science.drift.drift_check` can
-test the residuals about a linear drift (curvature, steps): points it rejects are flagged
-``drift``.
+every point. Three switches serve the whole block (four with the final one to cold).
+
+Drift the schedule cannot cancel (curvature, steps) is a property of the bench - the receiver
+gain, the source's output - seen alike at every frequency, so one group per block watches it:
+the block's *monitor* (the group with the most averages per pass) takes each pass reading of 32
+averages or more as two acquisitions of half the averages, which gives every state four readings
+at four times, and :func:`noisebench.science.drift.drift_check` tests the residuals about a
+linear drift. Every point of the block carries the monitor's result (chi-square and degrees of
+freedom summed over the blocks that read it) and is flagged ``drift`` when it fails. The other
+groups read each pass once: four acquisitions per block instead of eight. A drift local to one
+frequency (a wandering spur) is not this check's business: the spur search and the estimator's
+scatter check see it.
 
 The block length is chosen from the settling time, the sweep time and the drift model
 (:class:`noisebench.running.plan.SwitchingSection`): groups are packed into blocks no longer
@@ -29,6 +36,7 @@ from functools import partial
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from scipy import stats
 
 from noisebench.bench.acquisition import AcquisitionSettings
 from noisebench.bench.registry import Connection
@@ -40,7 +48,7 @@ from noisebench.running.sequencer_core import _GroupOutcome, _Readings
 from noisebench.running.sequencer_measurement import MeasurementSteps
 from noisebench.science.averaging import TimeBudget, averages_for_target
 from noisebench.science.density import NoiseDensity
-from noisebench.science.drift import drift_check
+from noisebench.science.drift import DRIFT_ALPHA, DriftCheck, drift_check
 from noisebench.science.point import Method, PointFlag, PointResult
 
 logger = logging.getLogger(__name__)
@@ -72,6 +80,8 @@ class _GroupRun:
     log: list[tuple[float, str, list[NoiseDensity]]] = field(default_factory=list)
     settings: AcquisitionSettings | None = None
     failed: MeasurementError | None = None  # the physics refused a reading of this group
+    drift_checks: list[DriftCheck] = field(default_factory=list)  # monitors of its blocks
+    monitor_hz: list[float] = field(default_factory=list)
 
 
 class SwitchedSweep(MeasurementSteps):
@@ -154,10 +164,11 @@ class SwitchedSweep(MeasurementSteps):
         for run in block:
             run.budget.charge(settle / len(block))
 
-    def _read(self, run: _GroupRun, state: str, connection: Connection) -> None:
-        """One pass reading of a group: two acquisitions of half the averages each."""
+    def _read(self, run: _GroupRun, state: str, connection: Connection, monitor: bool) -> None:
+        """One pass reading of a group; the block's drift monitor takes it as two acquisitions
+        of half the averages each."""
         n = run.per_trace
-        split = n >= 2 * MIN_CHECK_AVERAGES
+        split = monitor and n >= 2 * MIN_CHECK_AVERAGES
         for averages in (n // 2, n - n // 2) if split else (n,):
             before = run.budget.used_s
             densities = self._acquire(run.group, averages, run.budget)
@@ -174,6 +185,8 @@ class SwitchedSweep(MeasurementSteps):
         """The four passes over ``block``. A group whose reading the physics refuses is left
         out of the rest of the block and skipped afterwards, as in the per-group order."""
         forward, backward = block, block[::-1]
+        monitor = max(block, key=lambda r: r.per_trace)
+        monitor.log.clear()  # the monitor's check covers this block only
         for hot, order in ((True, forward), (False, backward), (False, forward), (True, backward)):
             self._switch_block(hot, block, connection)
             for run in order:
@@ -182,10 +195,33 @@ class SwitchedSweep(MeasurementSteps):
                 try:
                     self._with_context(
                         run.group,
-                        partial(self._read, run, "hot" if hot else "cold", connection),
+                        partial(
+                            self._read, run, "hot" if hot else "cold", connection, run is monitor
+                        ),
                     )
                 except MeasurementError as exc:
                     run.failed = exc
+        check = self._monitor_check(monitor)
+        if check is not None:
+            for run in block:
+                run.drift_checks.append(check)
+                run.monitor_hz.append(monitor.group.freqs_hz[0])
+
+    @staticmethod
+    def _monitor_check(monitor: _GroupRun) -> DriftCheck | None:
+        """The drift check of the monitor's readings in one block: the worst of its points."""
+        if monitor.failed is not None or not monitor.log:
+            return None
+        times = np.array([t for t, _, _ in monitor.log])
+        states = [s for _, s, _ in monitor.log]
+        worst: DriftCheck | None = None
+        for i in range(len(monitor.group.freqs_hz)):
+            dens = np.array([d[i].density_w_per_hz for _, _, d in monitor.log])
+            u = np.array([d[i].u_density_w_per_hz for _, _, d in monitor.log])
+            check = drift_check(times, states, dens, u)
+            if check is not None and (worst is None or check.p_value < worst.p_value):
+                worst = check
+        return worst
 
     def _hold_lucky(self, active: list[_GroupRun], decisions: dict[int, tuple]) -> None:
         """Keep a group that claims its target on far fewer averages than the sweep's other
@@ -213,28 +249,24 @@ class SwitchedSweep(MeasurementSteps):
                 run.per_trace = per_trace
                 decisions[run.group.index] = (None, *decision[1:])
 
-    def _drift_notes(self, run: _GroupRun) -> dict[float, dict]:
-        """Per frequency: the drift check of the group's readings (None: too few)."""
-        out: dict[float, dict] = {}
-        if not run.log:
-            return out
-        for i, f in enumerate(run.group.freqs_hz):
-            times = np.array([t for t, _, _ in run.log])
-            states = [s for _, s, _ in run.log]
-            dens = np.array([d[i].density_w_per_hz for _, _, d in run.log])
-            u = np.array([d[i].u_density_w_per_hz for _, _, d in run.log])
-            check = drift_check(times, states, dens, u)
-            if check is not None:
-                out[f] = {
-                    "chi2": check.chi2,
-                    "dof": check.dof,
-                    "p_value": check.p_value,
-                    "flagged": check.flagged,
-                    "slope_db_per_s": {
-                        k: 10 / math.log(10) * v for k, v in check.slopes_per_s.items()
-                    },
-                }
-        return out
+    @staticmethod
+    def _drift_note(run: _GroupRun) -> dict | None:
+        """The drift monitors' result for a group's points: chi-square and degrees of freedom
+        summed over the blocks that read it (None: no block had a monitor check)."""
+        if not run.drift_checks:
+            return None
+        chi2 = float(sum(c.chi2 for c in run.drift_checks))
+        dof = int(sum(c.dof for c in run.drift_checks))
+        p_value = float(stats.chi2.sf(chi2, dof))
+        last = run.drift_checks[-1]
+        return {
+            "chi2": chi2,
+            "dof": dof,
+            "p_value": p_value,
+            "flagged": p_value < DRIFT_ALPHA,
+            "slope_db_per_s": {k: 10 / math.log(10) * v for k, v in last.slopes_per_s.items()},
+            "monitor_hz": run.monitor_hz,
+        }
 
     # ----------------------------------------------------------------- calibration
 
@@ -431,13 +463,13 @@ class SwitchedSweep(MeasurementSteps):
         prior = self._averages_at_target(points, done, policy.target_u_nf_db)
         if prior is not None:
             self._prior["dut"] = prior
-        drift = self._drift_notes(run)
+        drift = self._drift_note(run)
         finished = []
         for p in points:
             p = self._finish_point(
                 p, run.readings, run.budget, group, run.checks, stop, calibration
             )
-            finished.append(self._with_drift(p, drift.get(p.freq_hz)))
+            finished.append(self._with_drift(p, drift))
         return _GroupOutcome(finished, run.settings, run.budget.used_s)
 
     @staticmethod

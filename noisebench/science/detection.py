@@ -285,16 +285,6 @@ class PointModel:
     def _gamma_shape(self) -> float:
         return 1.0 / self.relative_variance()
 
-    def quantile_ratio(self, q: float) -> float:
-        """q-quantile of point / E[point] (two-moment gamma approximation; exact for MEAN)."""
-        a = self._gamma_shape()
-        return float(special.gammaincinv(a, q) / a)
-
-    def upper_tail_ratio(self, probability: float) -> float:
-        """Value of point / E[point] exceeded with ``probability`` (gamma approximation)."""
-        a = self._gamma_shape()
-        return float(special.gammainccinv(a, probability) / a)
-
     @property
     def excess_kurtosis(self) -> float:
         """Excess kurtosis of a point (gamma approximation: 6 * relative variance)."""

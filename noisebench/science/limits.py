@@ -33,6 +33,9 @@ uncertainty.Budget` or its dict), or a number, or else ``k * point.u_nf_db`` (st
 only, noted in the verdict's ``notes``); the gain's from ``k * point.u_gain_db``. A Monte Carlo
 budget's coverage interval is used as it is, asymmetric (:func:`decide_interval`): PASS when
 its upper end is within an upper limit, FAIL when its lower end is beyond it.
+
+Size: one job, limit masks and verdicts: the mask schema, the guard-band rule and the verdict
+per quantity share the band look-ups.
 """
 
 from __future__ import annotations

@@ -13,6 +13,9 @@ devices can legitimately scatter below zero, so the methods pass ``allow_negativ
 the point instead. A noise factor <= 0 (Te <= -T0) has no dB value and is always refused.
 
 References: docs/references.md §1-§5 and §10 (Friis 1944; IRE/IEEE Std 161; Kerr & Randa 2010).
+
+Size: the one formula set (array kernels and their checked public forms), kept in one module on
+purpose so every relation and its citation is found in one place.
 """
 
 from __future__ import annotations

@@ -28,6 +28,9 @@ Independence: the filter's ENBW, statistical bandwidth and response come from
 :mod:`noisebench.sims.rbw_shapes`, the detector bias from :func:`detector_mean_ratio` and the
 marker weights from :func:`cell_weights_hz`, all derived here for the simulator and never taken
 from the estimator or ``science/`` (``tests/test_sim_independence.py``).
+
+Size: one simulated instrument: setting rounding, timing, trace synthesis and the markers
+computed from its own traces.
 """
 
 from __future__ import annotations
@@ -186,11 +189,6 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
             self._noise_drive = bool(on)
             if self._on_noise_drive is not None:
                 self._on_noise_drive(self._noise_drive)
-
-    @property
-    def rbw_filter_kind(self) -> FilterKind:
-        """Filter family used in swept mode (FFT mode always uses the window)."""
-        return self._filter_kind
 
     @property
     def filter_poles(self) -> int | None:

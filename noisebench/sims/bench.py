@@ -16,6 +16,9 @@ Signal chain (noise temperatures, K; reference plane = analyzer input):
 
 The source plane holds the noise source, or the generator while its output is on.
 ``truth(freq_hz)`` returns what the models say, for tests and benchmarks.
+
+Size: the bench wiring: the signal chain for each path, the instruments it exposes and the truth
+tables the tests compare with all read the same component models.
 """
 
 from __future__ import annotations

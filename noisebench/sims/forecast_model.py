@@ -57,3 +57,10 @@ class SimulatedBenchModel:
             ts, enr = get("cold_k"), get("enr_table_db")
         gain = get("gain_db") - get("input_loss_db") - get("output_loss_db")
         return readings, enr, gain, ts
+
+    def expected_conversion(
+        self, rf_hz: float, lo_hz: float, lo_dbm: float | None
+    ) -> dict[str, float]:
+        """The simulator's converter truth at (RF, LO): Te_SSB, conversion gain, image
+        rejection, the analyzer's Te at the IF and the ENR table at RF, image and IF."""
+        return dict(self.sim.converter_truth(rf_hz, lo_hz, lo_dbm))

@@ -91,13 +91,6 @@ def interp_table_db(
     )
 
 
-def amplifier_output_temperature_k(
-    t_in_k: np.ndarray, gain_lin: np.ndarray, te_k: np.ndarray
-) -> np.ndarray:
-    """Output noise temperature of a two-port: ``(T_in + Te) * G`` (Friis 1944)."""
-    return (np.asarray(t_in_k) + np.asarray(te_k)) * np.asarray(gain_lin)
-
-
 def passive_output_temperature_k(
     t_in_k: np.ndarray, loss_lin: np.ndarray, physical_temperature_k: float | np.ndarray
 ) -> np.ndarray:

@@ -151,11 +151,6 @@ class SimNoiseSource(NoiseSource):
         rate = self.spec.output_drift_db_per_s
         return 10.0 ** (rate * np.asarray(t_s, dtype=float) / 10.0)
 
-    @property
-    def effective_drive_v(self) -> float | None:
-        """Drive voltage while hot (sets the real ENR), None while cold."""
-        return self.drive_v if self._target == 1.0 else None
-
 
 class SimSupply(Instrument):
     """A DC supply (voltage, current limit, output) whose load is the noise source's drive.

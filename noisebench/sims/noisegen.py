@@ -30,6 +30,9 @@ correlation an FFT analyzer or an infinitely slow sweep gives; a real sweep deco
 neighbours further through the time between them, so the simulator shows the upper bound.
 Tones add a complex amplitude with a random phase per look (noise x tone cross terms included);
 in the large-sample forms their power is added to the detected noise.
+
+Size: one job, random trace synthesis: filter kernels, correlated fields and the detector forms
+share the kernel cache.
 """
 
 from __future__ import annotations
@@ -172,10 +175,6 @@ class FieldKernel:
     spacing: float
     grid_step: float
     support: tuple[float, float]  # kernel offsets (lo, hi) in correlation units
-
-    def matrix(self, n_points: int):
-        """Sparse (points x grid) weights and the grid size."""
-        return _kernel_matrix(self, n_points)
 
     @property
     def power_correlation(self) -> np.ndarray:

@@ -13,6 +13,9 @@ command in IEEE 488.2 terms): ``*OPC?``/``*WAI`` wait for it, ``*OPC`` sets the 
 seconds are also slept per simulated second (default 0). The completed trace is kept as
 float32 (the trace memory): ASCII, ``REAL,32`` and ``REAL,64`` transfers all carry exactly
 these values.
+
+Size: the simulated analyzer's whole SCPI command set; the commands share the request-editing
+helpers, and SCPI.md lists them in the same order.
 """
 
 from __future__ import annotations

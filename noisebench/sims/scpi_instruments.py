@@ -9,6 +9,9 @@ character data, query, event). Physics lives in the simulated bench
 :mod:`noisebench.sims.scpi_server`; the command set is documented in ``noisebench/sims/SCPI.md``.
 
 A failing query returns nothing and queues its error, like a real instrument.
+
+Size: the common SCPI instrument base (IEEE 488.2 status, error queue) with the two small
+instruments built on it (generator, supply).
 """
 
 from __future__ import annotations

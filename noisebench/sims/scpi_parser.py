@@ -309,9 +309,6 @@ class CommandTree(Generic[H]):
     def add(self, pattern: str, handler: H, *, suffix_max: int = 1) -> None:
         self.entries.append(_Entry(pattern, compile_pattern(pattern, suffix_max), handler))
 
-    def patterns(self) -> list[str]:
-        return [entry.pattern for entry in self.entries]
-
     def resolve(self, unit: ProgramUnit, previous: Resolved[H] | None = None) -> Resolved[H]:
         """Resolve ``unit``'s header; a relative header continues from ``previous``'s paths.
 

@@ -16,6 +16,10 @@ loss at the IF. The image response is stated as the image rejection in dB (``Non
 ``math.inf``: no image response). ``u_nf_db`` is the statistical part only; the ENR terms (three
 separate variables: RF, image and IF are different frequencies of the table) and the image
 rejection's uncertainty are reported beside it in ``notes`` like the amplifier methods do.
+
+Size: two methods (Y-factor and gain) for frequency-converting DUTs that share the frequency
+plan, the image-response model and the loss de-embedding of this module; the physics is in
+science/conversion.py.
 """
 
 from __future__ import annotations

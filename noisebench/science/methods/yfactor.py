@@ -22,6 +22,10 @@ Uncertainty: ``u_nf_db`` is the statistical part (the four densities' standard u
 propagated linearly). The ENR's uncertainty does not average down; its contribution, with the
 ENR fully correlated between calibration and measurement when the same value is used (same
 source, same frequency), is reported beside it in ``notes``.
+
+Size: one method: the point function, its vectorized sweep form and the calibration step share
+one model function, which must stay in one place so the point and sweep forms cannot drift
+apart.
 """
 
 from __future__ import annotations
