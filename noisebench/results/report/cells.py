@@ -73,6 +73,7 @@ LABEL_UNITS = (
     ("_v", "V"),
 )
 
+
 @dataclass(frozen=True)
 class VerdictTag:
     """A verdict as symbol + word in its colour class (``macros.verdict``)."""
