@@ -89,6 +89,24 @@ def profile_problem(profile: str) -> str | None:
     return None
 
 
+def generator_range_hz(profile: str) -> tuple[float, float] | None:
+    """The frequency range (Hz) a generator profile declares (``frequency_hz`` min and max);
+    None when it declares no range or does not load (reported by the profile check)."""
+    from noisebench.drivers.profile import load_profile
+
+    try:
+        loaded = load_profile(profile)
+    except InputError:
+        return None
+    section = loaded.generator
+    if section is None:
+        return None
+    setting = section.settings.frequency_hz
+    if setting.min is None or setting.max is None:
+        return None
+    return float(setting.min) * setting.scale, float(setting.max) * setting.scale
+
+
 def simulated_receiver_options(resource: str) -> Any:
     """The sampled-receiver options of a ``sim://...&receiver=sampled`` address; None for any
     other address, or an invalid one (:func:`address_problems` reports that)."""
@@ -534,5 +552,6 @@ def simulated_ranges(resource: str) -> dict[str, tuple[float, float]] | None:
     return {
         "analyzer": (scenario.analyzer.min_freq_hz, scenario.analyzer.max_freq_hz),
         "lo": (scenario.lo_generator.min_freq_hz, scenario.lo_generator.max_freq_hz),
+        "generator": (scenario.generator.min_freq_hz, scenario.generator.max_freq_hz),
         "enr": (float(ns.freq_hz[0]), float(ns.freq_hz[-1])),
     }
