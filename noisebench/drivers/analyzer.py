@@ -25,7 +25,7 @@ import time
 from collections.abc import Callable
 from enum import Enum
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeVar
 
 import numpy as np
 from pydantic import ValidationError
@@ -46,6 +46,7 @@ from noisebench.bench.instruments import Analyzer
 from noisebench.errors import (
     CommunicationError,
     InputError,
+    InstrumentError,
     InstrumentTimeout,
     MeasurementError,
     NoisebenchError,
@@ -60,10 +61,11 @@ from .profile import (
     ReplyError,
     load_profile,
 )
-from .scpi_channel import ScpiChannel
+from .scpi_channel import ScpiChannel, compound_line
 from .transport import BlockError, Transport, parse_ascii_values
 
 logger = logging.getLogger(__name__)
+T = TypeVar("T")
 
 SIMULATOR_MAKER = "noisebench"
 """Manufacturer field of the simulated instruments' ``*IDN?`` reply."""
@@ -92,7 +94,12 @@ def settings_differences(
 
 PARTIAL_READBACK = frozenset({"center_hz", "averages"})
 """Settings whose change moves no other setting: after sending only these, only these are
-read back (retuning between point groups, a new average count)."""
+read back (retuning between point groups, a new average count), and only once per value:
+what the instrument applied for a command is kept (``_verified``) until the next full
+read-back, error or reconnect, so a sweep revisiting its groups reads each centre back once."""
+
+_READ_WITH = {"center_hz": ("center_hz", "span_hz"), "averages": ("averages",)}
+"""The applied fields a partial read-back of each setting reports."""
 
 
 class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
@@ -122,6 +129,10 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         self._request: AcquisitionRequest | None = None
         self._format_sent: str | None = None
         self._sent: dict[str, str] = {}  # setting name -> last command applied (the cache)
+        # (setting name, command) -> the applied fields read back after it (PARTIAL_READBACK)
+        self._verified: dict[tuple[str, str], dict[str, Any]] = {}
+        self._deferred_names: set[str] = set()  # settings held for the next compound line
+        self._started = False  # an acquisition start was accepted alone since connecting
         self._noise_drive: bool | None = None
         self._sim_path: str | None = None
         self._block_failures = 0
@@ -190,43 +201,101 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
                 # computed per attempt: a reconnect in between clears the cache (the
                 # instrument may have rebooted), and then everything is sent and read back
                 changed = [(n, c) for n, c in named if self._sent.get(n) != c]
+                known = self._known_settings(previous if self._sent else None, changed)
+                if known is not None and self._channel.compound:
+                    # applied values known: the commands ride with the acquisition start
+                    self._channel.defer([c for _, c in changed])
+                    self._deferred_names.update(n for n, _ in changed)
+                    return known
                 return self._apply(
                     [c for _, c in changed],
                     request,
                     previous if self._sent else None,
-                    {n for n, _ in changed},
+                    changed,
                 )
 
             try:
-                settings = self._channel.run("configure", attempt)
+                settings = self._run("configure", attempt)
             except BaseException:
-                self._sent.clear()  # state unknown: the next configure sends everything
+                self._forget_state()  # state unknown: the next configure sends everything
                 raise
             self._sent.update(named)
             self._request, self._settings = request, settings
             return settings
 
-    def _read_changed(
-        self, previous: AcquisitionSettings | None, names: set[str]
+    def _run(self, what: str, operation: Callable[[], T]) -> T:
+        """:meth:`ScpiChannel.run`; an instrument error (a held setting refused, or the
+        operation itself) leaves the instrument's state unknown: forget the caches."""
+        try:
+            return self._channel.run(what, operation)
+        except InstrumentError:
+            self._forget_state()
+            raise
+
+    def _forget_state(self) -> None:
+        """After a failure the instrument's state is unknown: the next configure sends every
+        setting and reads every one back."""
+        self._sent.clear()
+        self._verified.clear()
+        self._deferred_names.clear()
+        self._channel.take_deferred()
+
+    def _known_settings(
+        self, previous: AcquisitionSettings | None, changed: list[tuple[str, str]]
     ) -> AcquisitionSettings | None:
+        """The applied settings after ``changed``, when every changed command is one whose
+        read-back is already known (``_verified``); None: it must be sent and read back."""
+        if previous is None:
+            return None
+        update: dict[str, Any] = {}
+        for name, command in changed:
+            known = self._verified.get((name, command))
+            if known is None:
+                return None
+            update.update(known)
+        return previous.model_copy(update=update) if update else previous
+
+    def _read_changed(
+        self, previous: AcquisitionSettings | None, changed: list[tuple[str, str]]
+    ) -> tuple[AcquisitionSettings, dict[tuple[str, str], dict[str, Any]]] | None:
         """Read back only what was sent, when that cannot move any other setting: a new
-        centre (retuning between point groups) or a new average count. None: read all."""
+        centre (retuning between point groups) or a new average count, each once per value
+        (``_verified``). Returns the settings and the new read-backs to keep once the error
+        queue is clear; None: read all."""
         s = self.spec.settings
+        names = {n for n, _ in changed}
         if previous is None or not names or not names <= PARTIAL_READBACK:
             return None
         if "center_hz" in names and not _readable(s.center_hz):
             return None
         get = self._channel.get
         update: dict[str, Any] = {}
-        if "center_hz" in names:
-            update["center_hz"] = get(s.center_hz)
-            if _readable(s.span_hz):  # an analyzer may narrow the span near its band edge
-                update["span_hz"] = get(s.span_hz)
-        if "averages" in names:
-            update["averages"] = get(s.averages)
-            if _readable(s.averaging_on) and not get(s.averaging_on):
-                update["averages"] = 1
-        return previous.model_copy(update=update)
+        fresh: dict[tuple[str, str], dict[str, Any]] = {}
+        for name, command in changed:
+            known = self._verified.get((name, command))
+            if known is None:
+                known = {}
+                if name == "center_hz":
+                    known["center_hz"] = get(s.center_hz)
+                    if _readable(s.span_hz):  # an analyzer may narrow the span at its band edge
+                        known["span_hz"] = get(s.span_hz)
+                else:
+                    known["averages"] = get(s.averages)
+                    if _readable(s.averaging_on) and not get(s.averaging_on):
+                        known["averages"] = 1
+                fresh[(name, command)] = known
+            update.update(known)
+        return previous.model_copy(update=update), fresh
+
+    def _seed_verified(self, named: list[tuple[str, str]], settings: AcquisitionSettings) -> None:
+        """After a full read-back: what each partial setting's command applied, so that
+        returning to it later needs no read-back."""
+        self._verified.clear()
+        for name, command in named:
+            if name in _READ_WITH:
+                self._verified[(name, command)] = {
+                    field: getattr(settings, field) for field in _READ_WITH[name]
+                }
 
     def _requested_values(self, request: AcquisitionRequest) -> dict[str, Any]:
         s = self.spec.settings
@@ -319,14 +388,19 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         commands: list[str],
         request: AcquisitionRequest,
         previous: AcquisitionSettings | None = None,
-        changed: set[str] | None = None,
+        changed: list[tuple[str, str]] | None = None,
     ) -> AcquisitionSettings:
         """Send ``commands``, read back (only the ``changed`` settings where that is safe,
         see :meth:`_read_changed`), check the error queue once."""
         for command in commands:
             self._channel.write(command)
-        settings = self._read_changed(previous, changed or set()) or self._read_settings()
+        partial = self._read_changed(previous, changed or [])
+        settings = partial[0] if partial is not None else self._read_settings()
         self._channel.check_errors("configure")
+        if partial is not None:
+            self._verified.update(partial[1])
+        else:
+            self._seed_verified(self._named_commands_for(request), settings)
         _log_adjustments(request, settings)
         return settings
 
@@ -334,7 +408,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
 
     def read_settings(self) -> AcquisitionSettings:
         """Query every setting the profile can report; return them as applied settings."""
-        return self._channel.run("read settings", self._read_settings)
+        return self._run("read settings", self._read_settings)
 
     def _read_settings(self) -> AcquisitionSettings:
         with self.lock:
@@ -394,7 +468,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
     def verify_settings(self) -> dict[str, tuple[Any, Any]]:
         """Read the settings back and return how they differ from the last applied ones."""
         applied = self._require_settings()
-        return self._channel.run(
+        return self._run(
             "verify settings", lambda: settings_differences(applied, self._read_settings())
         )
 
@@ -402,8 +476,14 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         """After a reconnect: detect lost settings, re-apply them and the output states."""
         self._format_sent = None
         self._sent.clear()  # the instrument may have lost them: re-apply everything
+        self._verified.clear()
+        self._started = False
+        held, self._deferred_names = self._deferred_names, set()
         if self._request is not None and self._settings is not None:
             found = settings_differences(self._settings, self._read_settings())
+            for name in held:  # sent in a compound line, or not yet: not a lost setting
+                for field in _READ_WITH.get(name, (name,)):
+                    found.pop(field, None)
             if found:
                 self.settings_changes.append(found)
                 logger.warning(
@@ -456,13 +536,14 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
     def acquire_trace(self) -> Trace:
         """One complete averaged acquisition with the applied settings, then the trace."""
         self._require_settings()
-        return self._channel.run("acquire trace", self._acquire_trace_once)
+        return self._run("acquire trace", self._acquire_trace_once)
 
     def _acquire_trace_once(self) -> Trace:
         settings = self._require_settings()
         elapsed = self._run_acquisition()
         values = self._fetch_trace(settings)
         self._channel.check_errors(self.spec.trace.query)
+        self._deferred_names.clear()  # the settings that rode along were accepted
         self._check_plausible(values, settings)
         return Trace(
             freq_hz=settings.frequencies_hz(),
@@ -481,9 +562,19 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         try:
             if acq.poll_start and self.expected_acquisition_time_s() > acq.poll_above_s:
                 self._wait_by_polling(limit, acq.poll_start)
+            elif self._channel.compound and self._started:
+                # held settings, the start and the completion query in one line: one
+                # exchange; the step's error read after the transfer covers all of it
+                held = self._channel.take_deferred()
+                line = compound_line([*held, acq.start, self.profile.common.operation_complete])
+                self._channel.sent_compound(line, held)
+                reply = self.transport.query_watched(line, limit)
+                if reply.strip().split(";")[-1].strip().lstrip("+") != "1":
+                    raise ReplyError(f"reply {reply!r} to {line!r} does not end in 1")
             else:
                 self._channel.write(acq.start, check=False)
                 reply = self.transport.query_watched(self.profile.common.operation_complete, limit)
+                self._started = True
                 if reply.strip().lstrip("+") != "1":
                     raise ReplyError(
                         f"reply {reply!r} to {self.profile.common.operation_complete!r} is not 1"
@@ -531,7 +622,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         command = self.spec.acquisition.abort
         if command is None:
             raise InputError("abort", f"profile {self.profile.name} has no abort command")
-        self._channel.run("abort", lambda: self._channel.write(command))
+        self._run("abort", lambda: self._channel.write(command))
 
     # -- trace transfer -----------------------------------------------------------------
 
@@ -648,7 +739,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
                     fix="leave band_hz unset",
                 )
             commands.append(marker.band.command(band_hz))
-        return self._channel.run(
+        return self._run(
             "read marker", lambda: self._marker_once(commands, float(freq_hz), kind, band_hz)
         )
 
@@ -735,7 +826,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
                 fix="drive the source from a DC supply or a relay instead",
             )
         command = setting.command(bool(on))
-        self._channel.run("noise drive", lambda: self._set_verified(setting, command, bool(on)))
+        self._run("noise drive", lambda: self._set_verified(setting, command, bool(on)))
         self._noise_drive = bool(on)
 
     def read_noise_drive(self) -> bool:
@@ -745,7 +836,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
             raise InputError(
                 "noise_drive", f"profile {self.profile.name} has no noise-source drive commands"
             )
-        return bool(self._channel.run("noise drive", lambda: self._channel.get(setting)))
+        return bool(self._run("noise drive", lambda: self._channel.get(setting)))
 
     @property
     def has_path_switch(self) -> bool:
@@ -774,7 +865,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
             )
         value = path.value if isinstance(path, Enum) else str(path).lower()
         command = setting.command(value)
-        self._channel.run("set path", lambda: self._set_verified(setting, command, value))
+        self._run("set path", lambda: self._set_verified(setting, command, value))
         self._sim_path = value
 
     def _set_verified(self, setting: Any, command: str, wanted: Any) -> None:
