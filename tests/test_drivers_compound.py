@@ -91,6 +91,25 @@ def test_a_centre_read_back_once_rides_with_the_start_when_the_sweep_returns_to_
     assert trace.settings.center_hz == 1e9 and trace.settings.span_hz == 1e7
 
 
+def test_settings_held_twice_before_an_acquisition_go_out_once_with_the_last_value():
+    more = REQUEST.model_copy(update={"averages": 20})
+    dialogue = (
+        warm()
+        + [("AVER:COUN 20", None), ("AVER:COUN?", "20"), ("SYST:ERR?", OK)]  # at 2 GHz
+        + compound_acquisition("FREQ:CENT 1000000000", "AVER:COUN 10")
+    )
+    with replay_dialogue(dialogue, analyzer) as sa:
+        sa.configure(REQUEST)
+        sa.acquire_trace()
+        sa.configure(AT_2G)
+        sa.acquire_trace()
+        sa.configure(AT_2G.model_copy(update={"averages": 20}))
+        sa.configure(more)  # held: the centre
+        sa.configure(AT_2G)  # the centre again, and the count back to 10
+        sa.configure(REQUEST)  # the centre back to 1 GHz: one command for it
+        assert sa.acquire_trace().settings.averages == 10
+
+
 def test_a_new_average_count_is_read_back_once_then_known():
     more = REQUEST.model_copy(update={"averages": 20})
     dialogue = (

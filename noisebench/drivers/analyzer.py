@@ -133,6 +133,8 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         self._verified: dict[tuple[str, str], dict[str, Any]] = {}
         self._deferred_names: set[str] = set()  # settings held for the next compound line
         self._started = False  # an acquisition start was accepted alone since connecting
+        self._named: dict[tuple, list[tuple[str, str]]] = {}  # request -> its commands
+        self._predicted: dict[tuple, AcquisitionRequest] = {}  # request -> as applied
         self._noise_drive: bool | None = None
         self._sim_path: str | None = None
         self._block_failures = 0
@@ -175,7 +177,12 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
     def predict(self, request: AcquisitionRequest) -> AcquisitionRequest:
         """``request`` with RBW, VBW, points, averages, attenuation, reference level and sweep
         time as the profile's quantisation rules say the instrument applies them."""
-        return predict_request(self.spec, request)
+        key = _request_key(request)
+        predicted = self._predicted.get(key)
+        if predicted is None:
+            predicted = predict_request(self.spec, request)
+            _remember(self._predicted, key, predicted)
+        return predicted
 
     def __repr__(self) -> str:
         return (
@@ -204,7 +211,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
                 known = self._known_settings(previous if self._sent else None, changed)
                 if known is not None and self._channel.compound:
                     # applied values known: the commands ride with the acquisition start
-                    self._channel.defer([c for _, c in changed])
+                    self._channel.defer(changed)
                     self._deferred_names.update(n for n, _ in changed)
                     return known
                 return self._apply(
@@ -336,7 +343,16 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         return [command for _, command in self._named_commands_for(request)]
 
     def _named_commands_for(self, request: AcquisitionRequest) -> list[tuple[str, str]]:
-        """(setting name, command) for ``request``, in the profile's order (no I/O)."""
+        """(setting name, command) for ``request``, in the profile's order (no I/O); kept per
+        request, as a sweep asks for the same few requests over and over."""
+        key = _request_key(request)
+        named = self._named.get(key)
+        if named is None:
+            named = self._format_commands(request)
+            _remember(self._named, key, named)
+        return list(named)
+
+    def _format_commands(self, request: AcquisitionRequest) -> list[tuple[str, str]]:
         values = self._requested_values(request)
         commands: list[tuple[str, str]] = []
         for name in self.spec.apply_order:
@@ -636,12 +652,12 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         timeout = self._channel.base_timeout_s + size / tr.transfer_rate_bytes_per_s
         self._select_format(use)
         try:
-            with self.transport.timeout(timeout):
-                if use == "binary":
-                    values = self.transport.query_binary(
-                        tr.query, datatype=tr.datatype, big_endian=tr.big_endian
-                    )
-                else:
+            if use == "binary":
+                values = self.transport.query_binary(
+                    tr.query, datatype=tr.datatype, big_endian=tr.big_endian, timeout_s=timeout
+                )
+            else:
+                with self.transport.timeout(timeout):
                     values = parse_ascii_values(self._channel.query(tr.query), tr.query)
         except BlockError:
             self._block_failures += 1
@@ -924,6 +940,20 @@ def predict_request(spec: AnalyzerProfile, request: AcquisitionRequest) -> Acqui
         if applied != value:
             changes[name] = applied
     return request.model_copy(update=changes) if changes else request
+
+
+_MEMO_SIZE = 4096
+
+
+def _request_key(request: AcquisitionRequest) -> tuple:
+    """A request's field values, a dictionary key (the model itself is not hashable)."""
+    return tuple(request.__dict__.values())
+
+
+def _remember(memo: dict, key: tuple, value: Any) -> None:
+    if len(memo) >= _MEMO_SIZE:  # a sweep uses a few hundred; never grow without bound
+        memo.clear()
+    memo[key] = value
 
 
 def _readable(setting: Any) -> bool:

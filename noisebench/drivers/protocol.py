@@ -122,8 +122,16 @@ class FakeTransport(Transport):
         return reply.strip()
 
     def query_binary(
-        self, command: str, *, datatype: str = "f", big_endian: bool = True
+        self,
+        command: str,
+        *,
+        datatype: str = "f",
+        big_endian: bool = True,
+        timeout_s: float | None = None,
     ) -> np.ndarray:
+        if timeout_s is not None:
+            seconds_to_ms(timeout_s)
+            self.timeouts_s.append(float(timeout_s))  # the block's own limit
         reply = self._next(command, "binary query")
         if isinstance(reply, bytes):
             return decode_block_values(

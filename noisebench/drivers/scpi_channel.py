@@ -111,7 +111,7 @@ class ScpiChannel:
         self.recovery_log: list[str] = []  # one line per recovery, for logs and tests
         self.needs_recovery = False
         self._unchecked: list[str] = []  # commands sent since the error queue was last read
-        self._deferred: list[str] = []  # settings waiting to ride in the next compound line
+        self._deferred: dict[str, str] = {}  # setting -> command held for the next compound
         self._in_compound: list[str] = []  # settings sent in compound lines since the last read
 
     # -- connection --------------------------------------------------------------------
@@ -149,7 +149,7 @@ class ScpiChannel:
         when the instrument confirms the value."""
         with self.lock:
             command = setting.command(value)
-            self._deferred = []  # settings for an acquisition that will not come
+            self._deferred = {}  # settings for an acquisition that will not come
             try:
                 if self.needs_recovery or getattr(self.transport, "stale", False):
                     self.transport.recover()
@@ -176,20 +176,18 @@ class ScpiChannel:
         with ``error_check = "step"``)."""
         return bool(self.common.compound) and self.common.error_check == "step"
 
-    def defer(self, commands: Sequence[str]) -> None:
-        """Hold setting commands for the next compound line (:meth:`take_deferred`); any
-        other I/O sends them first (:meth:`flush`). Only for settings the instrument already
-        accepted alone since the connection was made, so a compound line never meets a
-        command error that would make the instrument discard the rest of it."""
-        self._deferred.extend(commands)
-
-    @property
-    def deferred(self) -> tuple[str, ...]:
-        return tuple(self._deferred)
+    def defer(self, named: Sequence[tuple[str, str]]) -> None:
+        """Hold ``(setting, command)`` pairs for the next compound line
+        (:meth:`take_deferred`); a later command for the same setting replaces the held one,
+        and any other I/O sends them first (:meth:`flush`). Only for settings the instrument
+        already accepted alone since the connection was made, so a compound line never meets
+        a command error that would make the instrument discard the rest of it."""
+        for name, command in named:
+            self._deferred[name] = command  # keeps its first place: the profile's order
 
     def take_deferred(self) -> list[str]:
-        """The held settings, now the caller's to send (:meth:`sent_compound`)."""
-        taken, self._deferred = self._deferred, []
+        """The held settings' commands, now the caller's to send (:meth:`sent_compound`)."""
+        taken, self._deferred = list(self._deferred.values()), {}
         return taken
 
     def sent_compound(self, line: str, settings: Sequence[str]) -> None:
@@ -372,7 +370,7 @@ class ScpiChannel:
     def _recover(self, cause: CommunicationError | None, what: str) -> None:
         started = time.monotonic()
         self._unchecked = []
-        self._deferred, self._in_compound = [], []  # the restore callback re-sends settings
+        self._deferred, self._in_compound = {}, []  # the restore callback re-sends settings
         reconnected = self.transport.recover()
         with self.transport.timeout(min(self.transport.timeout_s, self.base_timeout_s)):
             self._probe()
