@@ -49,11 +49,18 @@ def first_acquisition() -> list:
     ]
 
 
+def block_then(text: str) -> bytes:
+    """The reply to ``TRAC? TRACE1;:SYST:ERR?``: the block, ``;``, the error entry."""
+    return ieee_block(VALUES)[:-1] + b";" + text.encode() + b"\n"
+
+
+TRACE_AND_ERRORS = compound_line(["TRAC? TRACE1", "SYST:ERR?"])
+
+
 def compound_acquisition(*held: str) -> list:
     return [
         (compound_line([*held, "INIT:IMM", "*OPC?"]), "1"),
-        ("TRAC? TRACE1", ieee_block(VALUES)),
-        ("SYST:ERR?", OK),
+        (TRACE_AND_ERRORS, block_then(OK)),
     ]
 
 
@@ -143,7 +150,7 @@ def test_after_a_reconnect_a_known_setting_is_sent_and_read_back_again():
         warm()
         + [
             (compound_line(["FREQ:CENT 1000000000", "INIT:IMM", "*OPC?"]), "1"),
-            ("TRAC? TRACE1", BlockError("block incomplete")),
+            (TRACE_AND_ERRORS, BlockError("block incomplete")),
             (RECOVER, "reconnect"),
             ("*IDN?", IDN),
             ("SYST:ERR?", OK),
@@ -181,9 +188,8 @@ def test_an_error_in_a_compound_line_names_the_failing_setting():
         warm()
         + [
             (line, "1"),
-            ("TRAC? TRACE1", ieee_block(VALUES)),
-            ("SYST:ERR?", '-222,"Data out of range"'),
-            ("SYST:ERR?", OK),
+            (TRACE_AND_ERRORS, block_then('-222,"Data out of range"')),
+            ("SYST:ERR?", OK),  # the rest of the queue
             # each setting of the line alone, the queue read after it
             ("FREQ:CENT 1000000000", None),
             ("SYST:ERR?", '-222,"Data out of range"'),
@@ -207,6 +213,7 @@ def test_an_error_in_a_compound_line_names_the_failing_setting():
     assert error.code == -222 and error.command == "FREQ:CENT 1000000000"
     assert error.context["in_compound"] == "TRAC? TRACE1"
     assert line in error.context["commands_since_last_check"]
+    assert TRACE_AND_ERRORS in error.context["commands_since_last_check"]
     assert "FREQ:CENT 1000000000" in str(error)
 
 
@@ -214,8 +221,7 @@ def test_an_error_no_setting_repeats_names_the_step_and_lists_the_compound_line(
     line = compound_line(["FREQ:CENT 1000000000", "INIT:IMM", "*OPC?"])
     dialogue = warm() + [
         (line, "1"),
-        ("TRAC? TRACE1", ieee_block(VALUES)),
-        ("SYST:ERR?", '-230,"Data corrupt or stale"'),
+        (TRACE_AND_ERRORS, block_then('-230,"Data corrupt or stale"')),
         ("SYST:ERR?", OK),
         ("FREQ:CENT 1000000000", None),
         ("SYST:ERR?", OK),
@@ -231,6 +237,23 @@ def test_an_error_no_setting_repeats_names_the_step_and_lists_the_compound_line(
     assert info.value.code == -230 and info.value.command == "TRAC? TRACE1"
     assert line in info.value.context["commands_since_last_check"]
     assert "in_compound" not in info.value.context
+
+
+def test_a_failed_trace_query_answers_only_the_error_entry_and_is_named():
+    # a query that fails sends no reply unit (IEEE 488.2), so the line's reply is the entry
+    dialogue = warm() + [
+        (compound_line(["INIT:IMM", "*OPC?"]), "1"),
+        (TRACE_AND_ERRORS, '-221,"Settings conflict"'),
+        ("SYST:ERR?", OK),
+    ]
+    with replay_dialogue(dialogue, analyzer) as sa:
+        sa.configure(REQUEST)
+        sa.acquire_trace()
+        sa.configure(AT_2G)
+        sa.acquire_trace()
+        with pytest.raises(InstrumentError) as info:
+            sa.acquire_trace()
+    assert info.value.code == -221 and info.value.command == "TRAC? TRACE1"
 
 
 def test_held_settings_are_sent_and_checked_before_any_other_exchange():

@@ -241,7 +241,8 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
 
     def _forget_state(self) -> None:
         """After a failure the instrument's state is unknown: the next configure sends every
-        setting and reads every one back."""
+        setting and reads every one back, and the next acquisition sends its parts alone."""
+        self._started = False
         self._sent.clear()
         self._verified.clear()
         self._deferred_names.clear()
@@ -556,9 +557,13 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
 
     def _acquire_trace_once(self) -> Trace:
         settings = self._require_settings()
+        # the trace query and the step's error read in one line once both headers were
+        # accepted alone (the first acquisition after connecting sends them apart)
+        combined = self._channel.compound and self._started and self.transport.reads_block_then_text
         elapsed = self._run_acquisition()
-        values = self._fetch_trace(settings)
-        self._channel.check_errors(self.spec.trace.query)
+        values = self._fetch_trace(settings, with_errors=combined)
+        if not combined:
+            self._channel.check_errors(self.spec.trace.query)
         self._deferred_names.clear()  # the settings that rode along were accepted
         self._check_plausible(values, settings)
         return Trace(
@@ -642,7 +647,11 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
 
     # -- trace transfer -----------------------------------------------------------------
 
-    def _fetch_trace(self, settings: AcquisitionSettings) -> np.ndarray:
+    def _fetch_trace(
+        self, settings: AcquisitionSettings, *, with_errors: bool = False
+    ) -> np.ndarray:
+        """The trace; ``with_errors``: a binary trace query and the error query go in one
+        line and the step's error check happens here (an ASCII trace reads them apart)."""
         tr = self.spec.trace
         use = self.trace_transfer
         if use == "binary" and self._block_failures >= 2 and tr.ascii_format is not None:
@@ -652,7 +661,20 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         timeout = self._channel.base_timeout_s + size / tr.transfer_rate_bytes_per_s
         self._select_format(use)
         try:
-            if use == "binary":
+            if use == "binary" and with_errors:
+                line = compound_line([tr.query, self.profile.common.error_query])
+                self._channel.sent_compound(line, [])
+                got, reply = self.transport.query_block_then_text(
+                    line, datatype=tr.datatype, big_endian=tr.big_endian, timeout_s=timeout
+                )
+                self._channel.check_errors(tr.query, first_reply=reply)
+                if got is None:
+                    raise BlockError(
+                        f"reply to {line!r} holds no binary block (only {reply!r})",
+                        command=tr.query,
+                    )
+                values = got
+            elif use == "binary":
                 values = self.transport.query_binary(
                     tr.query, datatype=tr.datatype, big_endian=tr.big_endian, timeout_s=timeout
                 )
@@ -664,6 +686,8 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
             raise
         self._block_failures = 0
         self._last_transfer = use
+        if with_errors and use != "binary":  # the ASCII fallback read the trace alone
+            self._channel.check_errors(tr.query)
         return _checked_values(values, settings.points, tr.query)
 
     def _check_plausible(self, values: np.ndarray, settings: AcquisitionSettings) -> None:

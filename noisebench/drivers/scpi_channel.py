@@ -252,11 +252,17 @@ class ScpiChannel:
             note=f"error queue not empty after {self.common.max_error_entries} reads",
         )
 
-    def check_errors(self, after: str) -> None:
-        """Drain the error queue; raise the first entry as InstrumentError naming ``after``."""
+    def check_errors(self, after: str, first_reply: str | None = None) -> None:
+        """Drain the error queue; raise the first entry as InstrumentError naming ``after``.
+        ``first_reply``: the reply to an error query that rode in a compound line (the
+        queue is read on only when it holds an error)."""
         sent, self._unchecked = self._unchecked, []
         carried, self._in_compound = self._in_compound, []
-        entries = self.read_error_queue()
+        if first_reply is None:
+            entries = self.read_error_queue()
+        else:
+            code, text = parse_error_entry(first_reply)
+            entries = [(code, text), *self.read_error_queue()] if code else []
         if not entries:
             return
         code, text = entries[0]

@@ -220,6 +220,25 @@ class Transport(ABC):
         """Send a query answered by a definite-length binary block; return the numbers.
         ``timeout_s`` (default: the session's) bounds the whole block."""
 
+    @property
+    def reads_block_then_text(self) -> bool:
+        """True when :meth:`query_block_then_text` is available."""
+        return False
+
+    def query_block_then_text(
+        self,
+        command: str,
+        *,
+        datatype: str = "f",
+        big_endian: bool = True,
+        timeout_s: float | None = None,
+    ) -> tuple[np.ndarray | None, str]:
+        """``command`` is a compound line whose first unit answers with a definite-length
+        block and whose second with text (``TRAC?;:SYST:ERR?``): the block's numbers and the
+        text after the ``;``. When the first unit sent no block (it failed, and a failed
+        query has no reply unit) the numbers are None and the text is the whole reply."""
+        raise NotImplementedError(f"{type(self).__name__} cannot read a block then text")
+
     def query_watched(self, command: str, limit_s: float) -> str:
         """A query whose reply may take up to ``limit_s`` (``*OPC?`` after a long acquisition).
         Back ends that can see the peer close the connection fail over at once instead of
@@ -671,7 +690,9 @@ class VisaSession(Transport):
                     direct[0].sendall((command + self.write_termination).encode("ascii"))
                 dtype = np.dtype((">" if big_endian else "<") + f"f{_DTYPES[datatype]}")
                 limit = self._timeout_s if timeout_s is None else timeout_s
-                return self._read_block_direct(command, *direct, dtype, limit)
+                values, _ = self._read_block_direct(command, *direct, dtype, limit)
+                assert values is not None  # without then_text a missing block raises
+                return values
         scope = self.timeout(timeout_s) if timeout_s is not None else contextlib.nullcontext()
         with scope, self._exchange(command):
             logger.debug("%s << %s (binary)", self.resource, command)
@@ -681,6 +702,32 @@ class VisaSession(Transport):
                 self._res.write(command)
             payload = self._read_block(command)
             return decode_block_values(payload, datatype, big_endian, command)
+
+    @property
+    def reads_block_then_text(self) -> bool:
+        """The direct socket reader can (pyvisa's block reader cannot)."""
+        return self.binary_reader != "pyvisa" and self._direct_socket() is not None
+
+    def query_block_then_text(
+        self,
+        command: str,
+        *,
+        datatype: str = "f",
+        big_endian: bool = True,
+        timeout_s: float | None = None,
+    ) -> tuple[np.ndarray | None, str]:
+        if datatype not in _DTYPES:
+            raise InputError("datatype", f"{datatype!r} is not supported", fix="use 'f' or 'd'")
+        direct = self._direct_socket() if self.binary_reader != "pyvisa" else None
+        if direct is None:
+            return super().query_block_then_text(command)
+        with self._exchange(command):
+            logger.debug("%s << %s (binary, then text)", self.resource, command)
+            with self._io(command):
+                direct[0].sendall((command + self.write_termination).encode("ascii"))
+            dtype = np.dtype((">" if big_endian else "<") + f"f{_DTYPES[datatype]}")
+            limit = self._timeout_s if timeout_s is None else timeout_s
+            return self._read_block_direct(command, *direct, dtype, limit, then_text=True)
 
     def _query_binary_pyvisa(self, command: str, datatype: str, big_endian: bool) -> np.ndarray:
         with self._io(command):
@@ -750,16 +797,24 @@ class VisaSession(Transport):
         pending: bytearray,
         dtype: np.dtype,
         limit_s: float | None = None,
-    ) -> np.ndarray:
+        *,
+        then_text: bool = False,
+    ) -> tuple[np.ndarray | None, str]:
         """Header, then payload and terminator received into one buffer, the values decoded
         to float64 chunk by chunk while the rest is still arriving; the same checks and
         errors as :meth:`_read_block` and :func:`decode_block_values`. ``limit_s`` (default
-        the session timeout) bounds the whole block."""
+        the session timeout) bounds the whole block. ``then_text``: a ``;`` and a text reply
+        unit follow the block (see :meth:`query_block_then_text`); returns (values, text)."""
         limit = self._timeout_s if limit_s is None else limit_s
         self._read_limit_s = limit  # for the timeout message
         deadline = time.monotonic() + limit
         head = bytearray(2)
         self._recv_into(sock, pending, memoryview(head), deadline, command, "header")
+        if then_text and head[:1] != b"#":  # no block: the text is the whole reply
+            line = head + (
+                b"" if b"\n" in head else self._recv_line(sock, pending, deadline, command)
+            )
+            return None, line.decode("ascii", "replace").strip()
         if head[:1] != b"#" or not head[1:2].isdigit():
             raise BlockError(
                 f"reply to {command!r} is not a binary block (starts {bytes(head)!r})",
@@ -790,6 +845,10 @@ class VisaSession(Transport):
                 decoded = upto
 
         self._recv_into(sock, pending, view, deadline, command, "payload", length, decode)
+        if then_text and buffer[length] == 0x3B:  # ';' then the text unit
+            decode(length)
+            text = self._recv_line(sock, pending, deadline, command)
+            return values, text.decode("ascii", "replace").strip()
         if buffer[length] == 0x0D:  # CR LF
             self._recv_into(sock, pending, view[length:], deadline, command, "terminator")
         if buffer[length] != 0x0A:
@@ -800,7 +859,37 @@ class VisaSession(Transport):
                 resource=self.resource,
             )
         decode(length)
-        return values
+        if then_text:
+            raise BlockError(
+                f"no second reply unit after the binary block from {command!r}",
+                command=command,
+                resource=self.resource,
+            )
+        return values, ""
+
+    def _recv_line(
+        self, sock: socket.socket, pending: bytearray, deadline: float, command: str
+    ) -> bytes:
+        """Bytes up to and including the message terminator (a short text reply)."""
+        line = bytearray()
+        one = bytearray(1)
+        while True:
+            cut = pending.find(b"\n")
+            if cut >= 0:
+                line += pending[: cut + 1]
+                del pending[: cut + 1]
+                return bytes(line)
+            line += pending
+            pending.clear()
+            self._recv_into(sock, pending, memoryview(one), deadline, command, "terminator")
+            line += one
+            if one == b"\n":
+                return bytes(line)
+            if _DONT_WAIT:  # take the rest already queued in one call
+                try:
+                    pending += sock.recv(4096, _DONT_WAIT)
+                except OSError:  # nothing queued (or a broken socket: the next read says)
+                    pass
 
     def _recv_into(
         self,
