@@ -134,7 +134,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--target", type=float, default=0.1)
     args = parser.parse_args(argv)
     logging.basicConfig(level=logging.ERROR)
-    for name in ("write", "query", "query_binary", "query_watched"):
+    for name in ("write", "query", "query_binary", "query_watched", "query_block_then_text"):
         setattr(VisaSession, name, _counting(getattr(VisaSession, name)))
     proc, resources = start_server()
     try:
