@@ -65,12 +65,10 @@ def compound_acquisition(*held: str) -> list:
 
 
 def retune_read_back(center: str = "2000000000", reply: str = "2.0E+09") -> list:
-    return [
-        (f"FREQ:CENT {center}", None),
-        ("FREQ:CENT?", reply),
-        ("FREQ:SPAN?", "1.0E+07"),
-        ("SYST:ERR?", OK),
-    ]
+    """A centre not read back yet: the command, its read-back and the error query in one
+    line (all three headers accepted alone by the first configure)."""
+    line = compound_line([f"FREQ:CENT {center}", "FREQ:CENT?", "FREQ:SPAN?", "SYST:ERR?"])
+    return [(line, f"{reply};1.0E+07;{OK}")]
 
 
 def warm() -> list:
@@ -102,7 +100,7 @@ def test_settings_held_twice_before_an_acquisition_go_out_once_with_the_last_val
     more = REQUEST.model_copy(update={"averages": 20})
     dialogue = (
         warm()
-        + [("AVER:COUN 20", None), ("AVER:COUN?", "20"), ("SYST:ERR?", OK)]  # at 2 GHz
+        + [(compound_line(["AVER:COUN 20", "AVER:COUN?", "SYST:ERR?"]), f"20;{OK}")]  # 2 GHz
         + compound_acquisition("FREQ:CENT 1000000000", "AVER:COUN 10")
     )
     with replay_dialogue(dialogue, analyzer) as sa:
@@ -122,10 +120,10 @@ def test_a_new_average_count_is_read_back_once_then_known():
     dialogue = (
         warm()
         + [
-            ("FREQ:CENT 1000000000", None),
-            ("AVER:COUN 20", None),
-            ("AVER:COUN?", "20"),
-            ("SYST:ERR?", OK),
+            (
+                compound_line(["FREQ:CENT 1000000000", "AVER:COUN 20", "AVER:COUN?", "SYST:ERR?"]),
+                f"20;{OK}",
+            )
         ]
         + compound_acquisition()
         # each setting's read-back is known per value: 2 GHz with the new count needs none
@@ -254,6 +252,30 @@ def test_a_failed_trace_query_answers_only_the_error_entry_and_is_named():
         with pytest.raises(InstrumentError) as info:
             sa.acquire_trace()
     assert info.value.code == -221 and info.value.command == "TRAC? TRACE1"
+
+
+def test_a_refused_setting_in_a_read_back_line_is_named():
+    line = compound_line(["FREQ:CENT 2000000000", "FREQ:CENT?", "FREQ:SPAN?", "SYST:ERR?"])
+    dialogue = (
+        configured()
+        + first_acquisition()
+        + [
+            # the queries still answer (the old centre); the entry tells the set failed
+            (line, '1.0E+09;1.0E+07;-222,"Data out of range;centre"'),
+            ("SYST:ERR?", OK),
+            ("FREQ:CENT 2000000000", None),
+            ("SYST:ERR?", '-222,"Data out of range;centre"'),
+            ("SYST:ERR?", OK),
+        ]
+    )
+    with replay_dialogue(dialogue, analyzer) as sa:
+        sa.configure(REQUEST)
+        sa.acquire_trace()
+        with pytest.raises(InstrumentError) as info:
+            sa.configure(AT_2G)
+        assert sa.settings is None
+    assert info.value.code == -222 and info.value.command == "FREQ:CENT 2000000000"
+    assert info.value.text == "Data out of range;centre"  # the ';' inside quotes kept
 
 
 def test_held_settings_are_sent_and_checked_before_any_other_exchange():

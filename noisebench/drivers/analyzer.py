@@ -264,36 +264,64 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         return previous.model_copy(update=update) if update else previous
 
     def _read_changed(
-        self, previous: AcquisitionSettings | None, changed: list[tuple[str, str]]
+        self,
+        previous: AcquisitionSettings | None,
+        changed: list[tuple[str, str]],
+        commands_pending: list[str],
     ) -> tuple[AcquisitionSettings, dict[tuple[str, str], dict[str, Any]]] | None:
-        """Read back only what was sent, when that cannot move any other setting: a new
-        centre (retuning between point groups) or a new average count, each once per value
-        (``_verified``). Returns the settings and the new read-backs to keep once the error
-        queue is clear; None: read all."""
+        """Send ``commands_pending`` and read back only what was sent, when that cannot move
+        any other setting: a new centre (retuning between point groups) or a new average
+        count, each once per value (``_verified``); with compound lines the commands, the
+        queries and the error query go in one line. Returns the settings and the new
+        read-backs to keep once the error queue is clear; None: nothing sent, read all."""
         s = self.spec.settings
         names = {n for n, _ in changed}
         if previous is None or not names or not names <= PARTIAL_READBACK:
             return None
         if "center_hz" in names and not _readable(s.center_hz):
             return None
-        get = self._channel.get
+        unknown = [(n, c) for n, c in changed if (n, c) not in self._verified]
+        asked = [
+            (name, field, setting) for name, _ in unknown for field, setting in self._asks(name)
+        ]
+        if self._channel.compound and commands_pending:
+            # the commands, their read-back queries and the error query in one line; the
+            # headers were all accepted alone by the full configure since connecting
+            replies = self._channel.send_and_read_back(
+                commands_pending, [setting for _, _, setting in asked]
+            )
+        else:
+            for command in commands_pending:
+                self._channel.write(command)
+            replies = [self._channel.get(setting) for _, _, setting in asked]
+        read: dict[str, dict[str, Any]] = {}
+        for (name, field, _), value in zip(asked, replies, strict=True):
+            read.setdefault(name, {})[field] = value
         update: dict[str, Any] = {}
         fresh: dict[tuple[str, str], dict[str, Any]] = {}
         for name, command in changed:
             known = self._verified.get((name, command))
             if known is None:
-                known = {}
-                if name == "center_hz":
-                    known["center_hz"] = get(s.center_hz)
-                    if _readable(s.span_hz):  # an analyzer may narrow the span at its band edge
-                        known["span_hz"] = get(s.span_hz)
-                else:
-                    known["averages"] = get(s.averages)
-                    if _readable(s.averaging_on) and not get(s.averaging_on):
-                        known["averages"] = 1
-                fresh[(name, command)] = known
+                got = read[name]
+                if name == "averages" and got.pop("averaging_on", True) is False:
+                    got["averages"] = 1  # the count is kept, but the instrument does not average
+                known = fresh[(name, command)] = got
             update.update(known)
         return previous.model_copy(update=update), fresh
+
+    def _asks(self, name: str) -> list[tuple[str, Any]]:
+        """(field, setting) read back after a partial change of ``name``."""
+        s = self.spec.settings
+        asks: list[tuple[str, Any]]
+        if name == "center_hz":
+            asks = [("center_hz", s.center_hz)]
+            if _readable(s.span_hz):  # an analyzer may narrow the span at its band edge
+                asks.append(("span_hz", s.span_hz))
+            return asks
+        asks = [("averages", s.averages)]
+        if _readable(s.averaging_on):
+            asks.append(("averaging_on", s.averaging_on))
+        return asks
 
     def _seed_verified(self, named: list[tuple[str, str]], settings: AcquisitionSettings) -> None:
         """After a full read-back: what each partial setting's command applied, so that
@@ -409,11 +437,13 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
     ) -> AcquisitionSettings:
         """Send ``commands``, read back (only the ``changed`` settings where that is safe,
         see :meth:`_read_changed`), check the error queue once."""
-        for command in commands:
-            self._channel.write(command)
-        partial = self._read_changed(previous, changed or [])
+        partial = self._read_changed(previous, changed or [], commands)
+        if partial is None:
+            for command in commands:
+                self._channel.write(command)
         settings = partial[0] if partial is not None else self._read_settings()
-        self._channel.check_errors("configure")
+        if partial is None or not self._channel.compound or not commands:
+            self._channel.check_errors("configure")  # (a compound line read it already)
         if partial is not None:
             self._verified.update(partial[1])
         else:

@@ -81,6 +81,23 @@ def compound_line(commands: Sequence[str]) -> str:
     return ";".join([units[0], *(u if u.startswith((":", "*")) else ":" + u for u in units[1:])])
 
 
+def split_reply_units(reply: str) -> list[str]:
+    """The response message units of one reply line (``;`` outside double quotes)."""
+    units: list[str] = []
+    current: list[str] = []
+    quoted = False
+    for char in reply:
+        if char == '"':
+            quoted = not quoted
+        elif char == ";" and not quoted:
+            units.append("".join(current).strip())
+            current = []
+            continue
+        current.append(char)
+    units.append("".join(current).strip())
+    return units
+
+
 class ScpiChannel:
     """Identity, error queue and retry/recovery around one transport (see module doc)."""
 
@@ -206,6 +223,21 @@ class ScpiChannel:
         self.transport.write(line)
         self.sent_compound(line, settings)
         self.check_errors(line)
+
+    def send_and_read_back(self, commands: Sequence[str], settings: Sequence[Any]) -> list[Any]:
+        """``commands``, each setting's read-back query and the error query in one compound
+        line (one exchange); returns the settings' parsed values. An error in the line is
+        raised naming the failing command (:meth:`check_errors`)."""
+        self.flush()
+        units = [*commands, *(s.query() for s in settings), self.common.error_query]
+        line = compound_line(units)
+        self.sent_compound(line, commands)
+        parts = split_reply_units(self.transport.query(line))
+        answers, entry = parts[:-1], parts[-1] if parts else ""
+        self.check_errors("configure", first_reply=entry)
+        if len(answers) != len(settings):
+            raise ReplyError(f"{len(answers)} replies to the {len(settings)} queries of {line!r}")
+        return [s.parse(a) for s, a in zip(settings, answers, strict=True)]
 
     def write(self, command: str, *, check: bool = True) -> None:
         """Send ``command``; with ``error_check = "each"`` read the error queue right after
