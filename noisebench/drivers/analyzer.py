@@ -23,6 +23,7 @@ import logging
 import math
 import time
 from collections.abc import Callable
+from datetime import datetime, timezone
 from enum import Enum
 from pathlib import Path
 from typing import Any, TypeVar
@@ -595,14 +596,19 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         if not combined:
             self._channel.check_errors(self.spec.trace.query)
         self._deferred_names.clear()  # the settings that rode along were accepted
-        self._check_plausible(values, settings)
-        return Trace(
-            freq_hz=settings.frequencies_hz(),
+        freq_hz = settings.frequencies_hz()
+        self._check_plausible(values, settings, freq_hz)
+        # every field is checked already (values: count and finiteness; frequencies from
+        # validated settings): no second validation per trace
+        return Trace.model_construct(
+            freq_hz=freq_hz,
             values=values,
             unit=self.spec.trace.unit,
             settings=settings,
             instrument=self.identity,
             acquisition_time_s=max(elapsed, self.expected_acquisition_time_s()),
+            timestamp=datetime.now(timezone.utc),
+            excluded=None,
         )
 
     def _run_acquisition(self) -> float:
@@ -720,7 +726,12 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
             self._channel.check_errors(tr.query)
         return _checked_values(values, settings.points, tr.query)
 
-    def _check_plausible(self, values: np.ndarray, settings: AcquisitionSettings) -> None:
+    def _check_plausible(
+        self,
+        values: np.ndarray,
+        settings: AcquisitionSettings,
+        freq_hz: np.ndarray | None = None,
+    ) -> None:
         """SCPI not-a-number codes and levels no analyzer displays, named with what to check
         in this profile (the byte order for binary transfers)."""
         tr = self.spec.trace
@@ -737,7 +748,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         check_trace_values(
             values,
             logarithmic=tr.unit in (TraceUnit.DBM, TraceUnit.DBM_PER_HZ),
-            freq_hz=settings.frequencies_hz(),
+            freq_hz=settings.frequencies_hz() if freq_hz is None else freq_hz,
             decode_fix=fix,
         )
 
