@@ -1,7 +1,7 @@
 """Numerical first-order propagation: the independent check of the analytic sensitivities.
 
 The point functions once differentiated their models this way (central differences, step 1e-6
-of each input's magnitude); they now chain the hand-derived partials of docs/references.md §19.
+of each input's magnitude); they now chain the hand-derived partials of docs/references.md §20.
 This keeps the numerical form in the tests, where it differentiates the PUBLIC array forms
 (``y_factor_sweep``, ``converter_*_sweep``, the gain-method kernels) that share no derivative
 code with the point functions. Truncation error of the central difference ~ step^2 (1e-12

@@ -1,4 +1,4 @@
-"""Analytic sensitivities of the point functions (docs/references.md §19), checked three ways.
+"""Analytic sensitivities of the point functions (docs/references.md §20), checked three ways.
 
 1. Every ``physics.*_partials`` kernel against central differences of its own kernel, over
    hypothesis-generated arguments; the tolerance is the central difference's own error bound
@@ -179,7 +179,7 @@ def test_partials_kernels_take_arrays_like_their_kernels():
         te, 100.0, 1.5, 290.0, 1.2, 290.0
     )
     assert np.shape(d_lin) == (3,)  # the one partial that depends on Te_path
-    np.testing.assert_allclose(d_te, 1 / 1.5)  # Te_DUT = Te_path / L_in - ... (§19)
+    np.testing.assert_allclose(d_te, 1 / 1.5)  # Te_DUT = Te_path / L_in - ... (§20)
     np.testing.assert_allclose(d_lin, -(te + 290.0) / 1.5**2 + 0.2 * 290.0 / (100 * 1.5**2 * 1.2))
     th_partials = ph.source_hot_temperature_partials(np.array([10.0, 20.0]), 296.0, T0, "t0")
     np.testing.assert_array_equal(th_partials[0], [T0, T0])

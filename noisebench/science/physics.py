@@ -213,7 +213,7 @@ def dsb_from_ssb(value_ssb: ArrayLike, image_ratio: ArrayLike) -> np.ndarray:
 
 # --------------------------------------------------------------------------- sensitivity kernels
 #
-# First partial derivatives of the array kernels above, derived by hand (docs/references.md §19),
+# First partial derivatives of the array kernels above, derived by hand (docs/references.md §20),
 # for the first-order (GUM) propagation in the point functions: each ``*_partials`` returns one
 # partial per argument of its kernel, in the kernel's argument order (T0 and the ENR convention
 # are constants, not inputs). Same rules as the kernels: arrays or floats in, no input checks.

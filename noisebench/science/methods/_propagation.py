@@ -3,7 +3,7 @@
 The point functions evaluate their model once at the measured values and carry, beside each
 intermediate quantity, its partial derivatives with respect to the named inputs (forward-mode
 chain rule): :func:`chain` combines them through the partials of the physics kernels
-(``physics.*_partials``, derived in docs/references.md §19). :func:`linear_propagation` turns
+(``physics.*_partials``, derived in docs/references.md §20). :func:`linear_propagation` turns
 the output's sensitivities into signed contributions ``c_i u_i``. Inputs are treated as
 uncorrelated; a fully correlated pair is one input name used in both places (JCGM 100:2008, 5.1
 and 5.2). The numerical central-difference propagation these replaced is kept in the tests

@@ -16,7 +16,7 @@ loss at the IF. The image response is stated as the image rejection in dB (``Non
 ``math.inf``: no image response). ``u_nf_db`` is the statistical part only; the ENR terms (three
 separate variables: RF, image and IF are different frequencies of the table) and the image
 rejection's uncertainty are reported beside it in ``notes`` like the amplifier methods do.
-Sensitivities are analytic (docs/references.md §19), chained through the kernels' partials.
+Sensitivities are analytic (docs/references.md §20), chained through the kernels' partials.
 
 Size: two methods (Y-factor and gain) for frequency-converting DUTs that share the frequency
 plan, the image-response model and the loss de-embedding of this module; the physics is in
@@ -399,7 +399,7 @@ def converter_gain_method_sweep(
 # --------------------------------------------------------------------------- sensitivities
 #
 # First partial derivatives of the point models above with respect to their named inputs, by the
-# chain rule through the kernels' partials (docs/references.md §19); the point functions
+# chain rule through the kernels' partials (docs/references.md §20); the point functions
 # evaluate the model once and propagate with these.
 
 

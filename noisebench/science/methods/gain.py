@@ -16,7 +16,7 @@ path gain from the source plane (the termination) to the analyzer plane; input a
 named by the caller are de-embedded so the result is the DUT's own NF and gain.
 
 Uncertainty: ``u_nf_db`` is the statistical part, the densities' standard uncertainties
-propagated linearly (first-order GUM) with analytic sensitivities (docs/references.md §19).
+propagated linearly (first-order GUM) with analytic sensitivities (docs/references.md §20).
 The gain's own uncertainty ``u_gain_db`` does not average down, so it is reported beside it as
 a contribution in ``notes`` (and enters 1:1 in dB).
 """
@@ -171,7 +171,7 @@ def _te_and_sensitivities(
 ) -> tuple[float, Sensitivities]:
     """Te_DUT (K) of the gain method's model (the kernels of :func:`gain_method_te_k` and the
     loss de-embedding, on checked scalars) and dTe_DUT/d(n_meas, n_floor, g_db) by the chain
-    floor correction -> Te from the output density -> de-embedding (docs/references.md §19).
+    floor correction -> Te from the output density -> de-embedding (docs/references.md §20).
     ``n_f`` None: no floor correction."""
     g_path = ratio_from_db(g_db)
     n_dut = n_m if n_f is None else floor_corrected_density_w_per_hz(n_m, n_f, t_term)

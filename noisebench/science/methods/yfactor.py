@@ -19,7 +19,7 @@ both) and ``Te1 = Te12 - Te2/G1`` (Friis). Losses between the noise source and t
 de-embedded so the result is the DUT's own NF and gain.
 
 Uncertainty: ``u_nf_db`` is the statistical part (the four densities' standard uncertainties,
-propagated linearly with analytic sensitivities, docs/references.md §19). The ENR's
+propagated linearly with analytic sensitivities, docs/references.md §20). The ENR's
 uncertainty does not average down; its contribution, with the ENR fully correlated between
 calibration and measurement when the same value is used (same source, same frequency), is
 reported beside it in ``notes``.
@@ -290,7 +290,7 @@ def _pair_sensitivities(
 ) -> tuple[Sensitivities, float]:
     """(dTe/d(hot, cold, ENR_dB) under ``names``, dTh/dENR_dB) of one hot/cold pair:
     ``Te = (Th - Y Tc)/(Y - 1)``, ``Y = hot/cold`` (dY/dhot = 1/cold, dY/dcold = -Y/cold),
-    ``Th`` from the ENR (docs/references.md §19)."""
+    ``Th`` from the ENR (docs/references.md §20)."""
     y = hot / cold
     d_y, d_th = (float(x) for x in te_k_from_y_partials(y, th, tc)[:2])
     d_th_d_enr_lin = source_hot_temperature_partials(ratio_from_db(enr_db), tc, t0, ref)[0]
@@ -315,7 +315,7 @@ def _core_sensitivities(
     """Sensitivities of the DUT's Te (K) and, with a calibration, of its gain (dB) to the
     inputs named in ``values`` (h, c, hc, cc, enr, and ``enr_cal_name`` for the calibration's
     ENR: "enr" when one ENR serves both), by the chain rule through the kernels of
-    :func:`_core` (docs/references.md §19)."""
+    :func:`_core` (docs/references.md §20)."""
     h, c, th = values["h"], values["c"], float(r.th_k)
     d_te12, d_th = _pair_sensitivities(h, c, th, tc, values["enr"], t0, ref, ("h", "c", "enr"))
     if r.g1_lin is None or r.te2_k is None or r.th_cal_k is None or tc_cal is None:
