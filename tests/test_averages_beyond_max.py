@@ -101,10 +101,12 @@ def test_scpi_run_with_a_small_maximum_splits_instead_of_failing(tmp_path):
         data["output"] = {"plots": False, "report": False}
         plan = parse_plan(data)
         record, _ = run_plan(plan, folder=tmp_path / "run")
-        counts = [
-            int(line.split()[-1])
+        counts = [  # program message units: a compound line holds several
+            int(unit.split()[-1])
             for who, line in server.command_log
-            if who == "analyzer" and line.startswith("AVER:COUN ")
+            if who == "analyzer"
+            for unit in (u.strip().lstrip(":") for u in line.split(";"))
+            if unit.startswith("AVER:COUN ")
         ]
     assert record.info.status == "complete"
     assert max(counts) <= MAX_PER_TRACE
