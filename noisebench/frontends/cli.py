@@ -499,7 +499,7 @@ class _CurrentStderrHandler(logging.StreamHandler):
     def __init__(self) -> None:
         super().__init__(sys.stderr)
 
-    @property  # type: ignore[override]
+    @property
     def stream(self) -> TextIO:
         return sys.stderr
 
