@@ -13,6 +13,7 @@ from pathlib import Path
 import pytest
 from _backend_equivalence import assert_same_points
 
+from noisebench.bench.registry import simulated_enr_table
 from noisebench.frontends import cli
 from noisebench.results.store import load_run
 from noisebench.running.progress import NullProgress
@@ -393,7 +394,7 @@ def test_commands_that_drive_hardware_show_the_safety_cautions(capsys, command):
 
 @pytest.mark.parametrize("drive", ["analyzer", "supply"])
 def test_plan_runs_against_the_scpi_simulator_through_pyvisa(sim_server, tmp_path, capsys, drive):
-    sim_server.bench.enr_table.to_csv(tmp_path / "enr.csv")
+    simulated_enr_table(sim_server.bench).to_csv(tmp_path / "enr.csv")
     source = (
         'drive = "analyzer"'
         if drive == "analyzer"
