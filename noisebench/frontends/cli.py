@@ -8,7 +8,8 @@ Commands (ours; see ``noisebench --help`` and ``noisebench <command> --help``):
 ``serve``                        the simulated bench as SCPI instruments on loopback TCP
 ``render FOLDER``                plots and report again from a run folder
 ``validate PLAN|ENR.csv``        check a plan or an ENR table; every problem on its own line
-``info``                         versions, VISA back ends, visible resources, profiles
+``info``                         versions, VISA back ends, visible resources, profiles,
+                                 plausibility ranges (``--ranges``)
 ``probe RESOURCE --profile P``   live check of one analyzer against one profile
 ``station PLAN`` / ``db ...``    production loop and results database
                                  (:mod:`noisebench.frontends.dbcli`)
@@ -280,7 +281,8 @@ def cmd_probe(args: argparse.Namespace, out: TextIO) -> int:
 def cmd_info(args: argparse.Namespace, out: TextIO) -> int:
     from noisebench.frontends.info import collect_info, format_info
 
-    print(format_info(collect_info(scan=args.scan, timeout_s=args.timeout)), file=out)
+    info = collect_info(scan=args.scan, timeout_s=args.timeout, ranges=args.ranges)
+    print(format_info(info), file=out)
     return EXIT_OK
 
 
@@ -434,6 +436,11 @@ def build_parser() -> argparse.ArgumentParser:
         default=5.0,
         metavar="S",
         help="give up listing resources after S seconds (default: 5)",
+    )
+    p.add_argument(
+        "--ranges",
+        action="store_true",
+        help="also print the plausibility ranges plan values are checked against, with sources",
     )
     p.set_defaults(func=cmd_info)
 
