@@ -84,7 +84,12 @@ def _sections(record: RunRecord, images: Mapping[str, bytes]) -> list[tuple[str,
         ("verdict", "Limits and verdict", bool(record.verdict)),
         ("budget", "Uncertainty budget", bool(_budget_list(record))),
         ("calibration", "Calibration", bool(info.calibration or record.calibrations)),
-        ("gain", "Gain measurement", isinstance(info.notes.get("gain_measurement"), Mapping)),
+        (
+            "gain",
+            "Gain measurement",
+            isinstance(info.notes.get("gain_measurement"), Mapping)
+            or isinstance(info.notes.get("conversion_gain_measurement"), Mapping),
+        ),
         ("settings", "Settings", bool(info.applied_settings)),
         (
             "notes",

@@ -214,17 +214,34 @@ def _calibration(record: RunRecord) -> dict[str, Any] | None:
 
 
 GAIN_POINT_KEYS = ("gain_db", "u_gain_db", "through_dbm", "dut_dbm", "snr_through_db", "snr_dut_db")
+CONVERSION_GAIN_POINT_KEYS = (
+    "gain_db",
+    "u_gain_db",
+    "gain_if_reference_db",
+    "gain_rf_reference_db",
+    "through_rf_dbm",
+    "through_if_dbm",
+    "dut_dbm",
+    "snr_dut_db",
+)
+"""A converter's measured conversion gain (generator at the RF, analyzer at the IF): the blend,
+each reference's value and the tone levels (noisebench.running.conversion_gain)."""
 
 
 def _gain_measurement(record: RunRecord) -> dict[str, Any] | None:
-    """The measured-gain pass (generator + analyzer): level, ranges, per-frequency values."""
-    result = record.info.notes.get("gain_measurement")
+    """The measured-gain pass (generator + analyzer): level, ranges, per-frequency values; for
+    a converter the conversion gain per RF, with the IF it was read at."""
+    notes = record.info.notes
+    converter = isinstance(notes.get("conversion_gain_measurement"), Mapping)
+    result = notes.get("conversion_gain_measurement" if converter else "gain_measurement")
     if not isinstance(result, Mapping):
         return None
+    freq_key = "rf_hz" if converter else "freq_hz"
+    point_keys = CONVERSION_GAIN_POINT_KEYS if converter else GAIN_POINT_KEYS
     points = [
         p
         for p in result.get("points") or []
-        if isinstance(p, Mapping) and _is_number(p.get("freq_hz"))
+        if isinstance(p, Mapping) and _is_number(p.get(freq_key))
     ]
     level = result.get("generator_level_dbm")
     conditions = ""
@@ -236,9 +253,15 @@ def _gain_measurement(record: RunRecord) -> dict[str, Any] | None:
         conditions += f", RBW {_freq(result['rbw_hz'])}"
     if _is_number(result.get("band_hz")):
         conditions += f", marker band {_freq(result['band_hz'])}"
+    if converter:
+        conditions += (
+            "; conversion gain: generator at the RF, analyzer at the IF, against THROUGH "
+            "references at the RF (cancels the generator) and at the IF (cancels the analyzer "
+            "and output cable), blended by the declared flatness"
+        )
     ranges: list[tuple[str, Any]] = [
         (label(k), _range([p.get(k) for p in points], 3, ""))
-        for k in GAIN_POINT_KEYS
+        for k in point_keys
         if any(_is_number(p.get(k)) for p in points)
     ]
     terms = sorted(
@@ -265,14 +288,28 @@ def _gain_measurement(record: RunRecord) -> dict[str, Any] | None:
     ]
     detail = None
     if points and len(points) <= DETAIL_ROWS_MAX:
-        freq = FrequencyColumn.of([p["freq_hz"] for p in points])
-        columns = [Column(freq.header, lambda p: freq.cell(p["freq_hz"]))]
-        columns += [Column(label(k), _calibration_cell(k)) for k in GAIN_POINT_KEYS]
+        freq = FrequencyColumn.of([p[freq_key] for p in points])
+        columns = [Column(freq.header, lambda p: freq.cell(p[freq_key]))]
+        if converter:
+            columns[0] = Column(f"RF ({freq.unit})", lambda p: freq.cell(p["rf_hz"]))
+            iff = FrequencyColumn.of([p["if_hz"] for p in points if _is_number(p.get("if_hz"))])
+            columns.append(Column(f"IF ({iff.unit})", lambda p: iff.cell(p.get("if_hz"))))
+        columns += [Column(label(k), _calibration_cell(k)) for k in point_keys]
         columns.append(
             Column("Flags", lambda p: ", ".join(map(str, p.get("flags") or [])), text=True)
         )
         detail = _grid(columns, [(p,) for p in points])
     settings = result.get("plan")
+    if converter and isinstance(settings, Mapping):  # the tone settings, the points are above
+        tone = settings.get("tone")
+        settings = {
+            **(tone if isinstance(tone, Mapping) else {}),
+            **{
+                k: v
+                for k, v in settings.items()
+                if k in ("u_generator_flatness_db", "u_analyzer_flatness_db")
+            },
+        }
     return {
         "conditions": conditions,
         "ranges": _kv(ranges),
@@ -327,7 +364,13 @@ def _settings(record: RunRecord) -> Table | None:
     return _table(headers, cells)
 
 
-NOTES_SHOWN_ELSEWHERE = ("resources", "bench_kind", "skipped_points", "gain_measurement")
+NOTES_SHOWN_ELSEWHERE = (
+    "resources",
+    "bench_kind",
+    "skipped_points",
+    "gain_measurement",
+    "conversion_gain_measurement",
+)
 
 
 def _notes(record: RunRecord) -> dict[str, Any] | None:

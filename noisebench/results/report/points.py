@@ -362,6 +362,31 @@ def _frequency_plan(record: RunRecord) -> dict[str, Any] | None:
             "image correction 10 log10(1 + G_image/G_signal)",
         ),
     ]
+    if any(p.conversion.gain_source for p in points if p.conversion is not None):
+        columns += [
+            Column(
+                "Gain source",
+                lambda p: conv(p).gain_source or "-",
+                "measured: generator at the RF, analyzer at the IF; file/constant: stated",
+                text=True,
+            ),
+            Column(
+                "Measured gain (dB)",
+                lambda p: (
+                    _num(conv(p).measured_gain_db) if conv(p).measured_gain_db is not None else "-"
+                ),
+                "between the THROUGH planes (input cable and converter)",
+            ),
+            Column(
+                "u (dB)",
+                lambda p: (
+                    _num(conv(p).u_measured_gain_db)
+                    if conv(p).u_measured_gain_db is not None
+                    else "-"
+                ),
+                "standard uncertainty of the measured conversion gain",
+            ),
+        ]
     return {"facts": _kv(facts), "table": _grid(columns, [(p,) for p in points])}
 
 
