@@ -42,7 +42,9 @@ def cross_check(plan: Plan, *, check_files: bool = True) -> list[str]:
             problems += profile_errors(plan)  # the plan against the analyzer's profile
     if plan.conversion is not None:
         problems += _check_conversion(plan, check_files=check_files)
-        problems += _check_limit_nf_type(plan)
+        from noisebench.running.conversion import limit_nf_type_problems
+
+        problems += limit_nf_type_problems(plan.conversion.nf_type, plan.limits)
     elif plan.gain is not None:
         for name in ("u_generator_flatness_db", "u_analyzer_flatness_db"):
             if getattr(plan.gain, name) is not None:
@@ -51,29 +53,6 @@ def cross_check(plan: Plan, *, check_files: bool = True) -> list[str]:
                     "analyzer at different frequencies); remove it"
                 )
     return problems
-
-
-def _check_limit_nf_type(plan: Plan) -> list[str]:
-    """A converter's NF limit must say which figure it bounds (SSB or DSB: up to 3 dB apart),
-    and the plan must measure that one; otherwise no verdict could be defended."""
-    assert plan.conversion is not None
-    limits = plan.limits
-    if limits is None or all(band.nf_max_db is None for band in limits.bands):
-        return []
-    held = plan.conversion.nf_type
-    if limits.nf_type is None:
-        return [
-            "limits.nf_type: a frequency-converting DUT has an SSB and a DSB noise figure (up "
-            'to 3 dB apart); say which one the NF limit bounds: nf_type = "ssb" or "dsb" '
-            f'(the plan measures conversion.nf_type = "{held}")'
-        ]
-    if limits.nf_type != held:
-        return [
-            f"limits.nf_type: the limit bounds the {limits.nf_type.upper()} figure but the "
-            f"plan measures the {held.upper()} one; set conversion.nf_type = "
-            f'"{limits.nf_type}" (both figures are stored, nf_db holds that one)'
-        ]
-    return []
 
 
 def _check_conversion(plan: Plan, *, check_files: bool) -> list[str]:
