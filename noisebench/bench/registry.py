@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import logging
 import time
+import uuid
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from enum import Enum
@@ -143,6 +144,7 @@ class BenchSession:
     _move: Callable[[Connection], None]
     enr_table: EnrTable | None = None
     clock: Callable[[], float] | None = None
+    clock_id: str = field(default_factory=lambda: uuid.uuid4().hex)
     wait: Callable[[float], Any] | None = None
     sim: Any = None
     scpi_simulator: bool = False
@@ -164,6 +166,13 @@ class BenchSession:
     def real_hardware(self) -> bool:
         """True unless every instrument is simulated (in process or over SCPI)."""
         return self.kind not in ("simulated", "recorded") and not self.scpi_simulator
+
+    def clock_reading(self) -> tuple[str, float] | None:
+        """(this session's clock id, instrument time) when the bench keeps a clock: a time
+        from another session's clock is not comparable (a new simulated bench starts at 0)."""
+        if self.clock is None:
+            return None
+        return (self.clock_id, float(self.clock()))
 
     def instrument_time_s(self) -> float | None:
         """Simulated instrument clock (None on real instruments: use wall time)."""
