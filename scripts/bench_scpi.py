@@ -27,7 +27,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from noisebench.bench.registry import open_bench
+from noisebench.bench.registry import open_bench, simulated_enr_table
 from noisebench.drivers.transport import VisaSession
 from noisebench.running.plan import parse_plan
 from noisebench.running.sequencer import Sequencer
@@ -90,7 +90,7 @@ def start_server() -> tuple[subprocess.Popen, dict[str, str]]:
 
 def plan_for(resources: dict[str, str], points: int, target: float, folder: Path):
     enr = folder / "enr.csv"
-    SimulatedBench.from_scenario("demo-lna", seed=1).enr_table.to_csv(enr)
+    simulated_enr_table(SimulatedBench.from_scenario("demo-lna", seed=1)).to_csv(enr)
     plan = parse_plan(
         {
             "method": "y_factor",

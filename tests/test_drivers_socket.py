@@ -13,6 +13,7 @@ from noisebench.bench.acquisition import (
     SweepMode,
     Trace,
 )
+from noisebench.bench.registry import simulated_enr_table
 from noisebench.drivers import (
     AnalyzerDriveNoiseSource,
     VisaSession,
@@ -304,7 +305,7 @@ def test_supply_driven_source_switches_and_a_stuck_one_is_caught(analyzer, sim_s
         current_limit_a=0.05,
         max_drive_v=32.0,
         settle_time_s=0.1,
-        enr_table=sim_server.bench.enr_table,
+        enr_table=simulated_enr_table(sim_server.bench),
         min_current_a=0.001,
         timeout_s=TIMEOUT_S,
     )
