@@ -5,7 +5,8 @@ request other than the file itself, no sideways page overflow, every figure with
 screen's width (scaled down on a phone, its drawn size on a desktop), every table's last
 column reachable (its box scrolls, with a visible cue at phone width). The browser is the
 system one (``chromium`` on PATH, or ``NOISEBENCH_TEST_CHROMIUM``); playwright downloads none.
-Where neither playwright nor a chromium can be had, the tests are skipped with that reason (``.ci/run`` installs both).
+Where neither playwright nor a chromium can be had, the tests are skipped with that reason
+(``.ci/run`` installs both).
 """
 
 from __future__ import annotations
