@@ -1,5 +1,7 @@
 """The test suite's own hygiene: reproducible property tests in CI, an inherited environment in
-subprocesses, and no short timeouts on normal exchanges (a loaded CI machine is not a fault)."""
+subprocesses, and no short timeouts on normal exchanges (a loaded CI machine is not a fault).
+
+Behaviour tests of the suite itself: no outside reference is involved."""
 
 from __future__ import annotations
 
