@@ -310,9 +310,9 @@ def test_one_acquisition_is_one_line_whose_deadline_covers_acquisition_and_trans
 
 def test_a_profile_without_a_wait_command_starts_and_fetches_in_two_lines(tmp_path):
     text = open(STEP.source, encoding="utf-8").read()
-    assert "\ncompound = true\n" in text
+    assert '\nwait = "*WAI"\n' in text
     path = tmp_path / "no_wait.toml"
-    path.write_text(text.replace("\ncompound = true\n", "\ncompound = true\nwait = false\n"))
+    path.write_text(text.replace('\nwait = "*WAI"\n', "\nwait = false\n"))
     profile = load_profile(path)
     assert profile.common.wait is None
     first = [item for item in first_acquisition() if item[0] != "*WAI"]
