@@ -670,6 +670,14 @@ def _marked_regions(
 
 
 @functools.lru_cache(maxsize=256)
+@functools.lru_cache(maxsize=1)
+def _gauss_legendre_96() -> tuple[np.ndarray, np.ndarray]:
+    """96-point Gauss-Legendre nodes and weights on [-1, 1] (an eigenvalue problem: computed
+    once, not per trace)."""
+    return np.polynomial.legendre.leggauss(96)
+
+
+@functools.lru_cache(maxsize=256)
 def median_threshold_ratio(shape: float, bins: int, false_alarm: float) -> float:
     """``t`` with P(X > t M) = ``false_alarm``: X a gamma(``shape``) point, M the median of
     ``bins`` independent such points (the spur search's baseline).
@@ -678,10 +686,12 @@ def median_threshold_ratio(shape: float, bins: int, false_alarm: float) -> float
     (order statistics; non-integer k interpolates for even counts), so
     P(X > t M) = E_U[Q(a, a t F^-1(U))], integrated by Gauss-Legendre quadrature on the beta
     quantiles and solved for t. Large ``bins`` gives the plain gamma quantile over the median.
+    A pure function of its three numbers, so it is cached (the same settings give the same
+    shape and window on every trace of a run).
     """
     a = float(shape)
     k = (bins + 1) / 2.0
-    nodes, weights = np.polynomial.legendre.leggauss(96)
+    nodes, weights = _gauss_legendre_96()
     u = 0.5 * (nodes + 1.0)
     median_cdf = stats.beta.ppf(u, k, bins + 1.0 - k)  # CDF value of the sample median
     m = special.gammaincinv(a, median_cdf) / a  # the median itself, mean-1 units
