@@ -58,6 +58,13 @@ class MeasurementError(NoisebenchError):
     """The measured data cannot give a trustworthy result (e.g. hot <= cold)."""
 
 
+class YNotSignificantError(MeasurementError):
+    """Hot minus cold is within a few standard uncertainties of zero: no usable Y-factor.
+
+    A dead or disconnected noise source; more averages can only help when the source is
+    alive but weak, so an adaptive loop may average on and refuse when it has to stop."""
+
+
 class CommunicationError(NoisebenchError):
     """Transport-level failure. ``visa_code`` keeps pyvisa's error code when there is one."""
 

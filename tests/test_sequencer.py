@@ -413,7 +413,7 @@ def test_point_the_physics_refuses_is_skipped_and_reported(tmp_path):
     assert [p.freq_hz for p in record.points] == [1e9]
     (skipped,) = record.info.notes["skipped_points"]
     assert skipped["freq_hz"] == 5e9 and skipped["stage"] == "calibration"
-    assert "hot reading is not above the cold" in skipped["reason"]
+    assert "no usable Y-factor" in skipped["reason"]
     assert not session.sim.noise_source.is_hot
     assert record.verdict["unit"] == "indeterminate"
     assert any("1 of 2 planned points were not measured" in n for n in record.verdict["notes"])

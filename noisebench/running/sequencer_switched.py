@@ -41,12 +41,13 @@ import numpy as np
 
 from noisebench.bench.acquisition import AcquisitionSettings
 from noisebench.bench.registry import Connection
-from noisebench.errors import MeasurementError
+from noisebench.errors import MeasurementError, YNotSignificantError
 from noisebench.running.calibration import CalibrationEntry, CalibrationKind
 from noisebench.running.groups import PointGroup
 from noisebench.running.safety import PowerCheck
 from noisebench.running.sequencer_core import _GroupOutcome, _Readings
 from noisebench.running.sequencer_measurement import MeasurementSteps
+from noisebench.running.sequencer_rounds import MAX_ROUND_GROWTH
 from noisebench.science.averaging import TimeBudget, averages_for_target
 from noisebench.science.density import NoiseDensity
 from noisebench.science.drift import DRIFT_ALPHA, DriftCheck, combined_check, drift_check
@@ -460,12 +461,21 @@ class SwitchedSweep(MeasurementSteps):
     def _decide(self, run: _GroupRun, calibration: CalibrationEntry, writer):
         """(stop reason or None, points) after a block; None when the physics refused."""
         group, policy = run.group, run.group.policy
+        done = run.readings.averages("hot")
         try:
             points = [self._point(f, run.readings, calibration) for f in group.freqs_hz]
+        except YNotSignificantError as exc:
+            # a weak source may become significant with more averages (see _measure_group)
+            run.per_trace = self._next_round_averages(
+                policy, done, MAX_ROUND_GROWTH * done, 2, run.budget
+            )
+            if run.per_trace > 0:
+                return None, []
+            self._skip(group, exc, "measurement", writer)
+            return None
         except MeasurementError as exc:
             self._skip(group, exc, "measurement", writer)
             return None
-        done = run.readings.averages("hot")
         if all(p.u_nf_db <= policy.target_u_nf_db for p in points):
             return "target", points
         need = self._averages_needed(points, done, policy.target_u_nf_db)

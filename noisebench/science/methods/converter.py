@@ -46,6 +46,7 @@ from noisebench.science.methods._common import (
     check_same_frequency,
     check_te_plausible,
     check_temperature,
+    check_y_significant,
     density_flags,
     margin_db,
 )
@@ -733,6 +734,11 @@ def converter_y_factor_point(
     cal = None
     if calibration is not None:
         cal = (values["hc"], values["cc"], values["enr_if"], calibration.cold_temperature_k)
+    check_y_significant(hot, cold, rf, "converter Y-factor", "the converter's RF port")
+    if calibration is not None:
+        check_y_significant(
+            calibration.hot, calibration.cold, if_hz, "converter IF calibration", "the IF input"
+        )
     parts: dict[str, np.ndarray] = {}
     try:
         te_value, g_value, _, te_unc_value = _y_core(

@@ -55,6 +55,7 @@ from noisebench.science.methods._common import (
     check_same_frequency,
     check_te_plausible,
     check_temperature,
+    check_y_significant,
     density_flags,
     margin_db,
     nf_db_from_te,
@@ -494,6 +495,7 @@ def calibrate_point(
     t0 = check_temperature("t0_k", t0_k)
     ref = _check_reference(enr_reference)
 
+    check_y_significant(hot, cold, freq_hz, "Y-factor calibration", "the system input")
     h, c = hot.density_w_per_hz, cold.density_w_per_hz
     y_arr, te2_arr, th = _te_of_pair(
         h, c, np.asarray(enr_db), tc, t0, ref, freq_hz, "Y-factor calibration"
@@ -609,6 +611,12 @@ def y_factor_point(
     # One ENR variable when calibration and measurement use the same value (same source and
     # frequency): the ENR error is then fully correlated (docs/references.md §9).
     enr_shared = calibration is None or calibration.enr_db == enr_db
+
+    check_y_significant(hot, cold, freq_hz, "Y-factor measurement", "the DUT input")
+    if calibration is not None:
+        check_y_significant(
+            calibration.hot, calibration.cold, freq_hz, "Y-factor calibration", "the system input"
+        )
 
     def core(h, c, hc, cc, enr, enr_cal) -> _Core:
         cal = None
