@@ -234,7 +234,12 @@ def system_design_u_db(
 
     tc = cold_temperature_k
     try:
-        cal = calibrate_point(hot, cold, enr_db, cold_temperature_k=tc, t0_k=t0_k)
+        # the u a weak pair would have, to plan the next round; the significance of the pair
+        # is the loop's own stop condition (sequencer_calibration), and is checked again when
+        # the calibration is used
+        cal = calibrate_point(
+            hot, cold, enr_db, cold_temperature_k=tc, t0_k=t0_k, require_significant_y=False
+        )
     except MeasurementError:
         return math.inf
     g = float(ratio_from_db(design_gain_db))
@@ -248,6 +253,12 @@ def system_design_u_db(
         freq_hz=f, density_w_per_hz=scale * (g * tc + cal.te_k), u_density_w_per_hz=0.0
     )
     point = y_factor_point(
-        dut_hot, dut_cold, enr_db, cold_temperature_k=tc, calibration=cal, t0_k=t0_k
+        dut_hot,
+        dut_cold,
+        enr_db,
+        cold_temperature_k=tc,
+        calibration=cal,
+        t0_k=t0_k,
+        require_significant_y=False,
     )
     return point.u_nf_db

@@ -14,10 +14,10 @@ from noisebench.running.safety import (
 )
 from noisebench.running.sequencer_calibration import CalibrationSteps
 from noisebench.running.sequencer_core import _GroupOutcome, _Readings
-from noisebench.running.sequencer_rounds import MAX_ROUND_GROWTH
 from noisebench.science.averaging import (
     TimeBudget,
 )
+from noisebench.science.methods._common import averages_for_significance
 from noisebench.science.point import Method, PointFlag, PointResult
 from noisebench.units import format_frequency
 
@@ -46,11 +46,15 @@ class MeasurementSteps(CalibrationSteps):
             done = readings.averages(names[0])
             try:
                 points = [self._point(f, readings, calibration, group) for f in group.freqs_hz]
-            except YNotSignificantError:
+            except YNotSignificantError as exc:
                 # a weak source may become significant with more averages; a dead one is
                 # refused when the averaging has to stop
                 per_trace = self._next_round_averages(
-                    policy, done, MAX_ROUND_GROWTH * done, len(names), budget
+                    policy,
+                    done,
+                    averages_for_significance(done, exc.significance),
+                    len(names),
+                    budget,
                 )
                 if per_trace == 0:
                     raise

@@ -47,10 +47,10 @@ from noisebench.running.groups import PointGroup
 from noisebench.running.safety import PowerCheck
 from noisebench.running.sequencer_core import _GroupOutcome, _Readings
 from noisebench.running.sequencer_measurement import MeasurementSteps
-from noisebench.running.sequencer_rounds import MAX_ROUND_GROWTH
 from noisebench.science.averaging import TimeBudget, averages_for_target
 from noisebench.science.density import NoiseDensity
 from noisebench.science.drift import DRIFT_ALPHA, DriftCheck, combined_check, drift_check
+from noisebench.science.methods._common import averages_for_significance
 from noisebench.science.point import Method, PointFlag, PointResult
 
 logger = logging.getLogger(__name__)
@@ -332,8 +332,9 @@ class SwitchedSweep(MeasurementSteps):
                     self._skip(run.group, exc, "calibration", writer)
                     continue
                 done = run.readings.averages("hot")
+                weak = self._significance_need(run.group, kind, run.readings, done)
                 stop = None
-                if u_worst <= target:
+                if u_worst <= target and weak is None:
                     stop = "target"
                 else:
                     need = (
@@ -341,6 +342,8 @@ class SwitchedSweep(MeasurementSteps):
                         if math.isfinite(u_worst)
                         else 2 * done
                     )
+                    if weak is not None:
+                        need = weak if need is None else max(need, weak)
                     run.per_trace = self._next_round_averages(policy, done, need, 2, run.budget)
                     if run.per_trace == 0:
                         stop = "max_averages" if done >= policy.max_averages else "time_limit"
@@ -467,7 +470,7 @@ class SwitchedSweep(MeasurementSteps):
         except YNotSignificantError as exc:
             # a weak source may become significant with more averages (see _measure_group)
             run.per_trace = self._next_round_averages(
-                policy, done, MAX_ROUND_GROWTH * done, 2, run.budget
+                policy, done, averages_for_significance(done, exc.significance), 2, run.budget
             )
             if run.per_trace > 0:
                 return None, []

@@ -39,7 +39,7 @@ class SimNoiseSource(NoiseSource):
         self.spec = spec
         self.model = model
         self.clock = clock
-        self.stuck = False
+        self.stuck = bool(spec.stuck)
         self.damaged = False
         # switches the drive (the bench's analyzer); set by the bench
         self.drive_switch: Callable[[bool], None] | None = None

@@ -206,15 +206,28 @@ def y_significance(hot: NoiseDensity, cold: NoiseDensity) -> float:
 
 
 def check_y_significant(
-    hot: NoiseDensity, cold: NoiseDensity, freq_hz: float, what: str, source_plane: str
+    hot: NoiseDensity,
+    cold: NoiseDensity,
+    freq_hz: float,
+    what: str,
+    source_plane: str,
+    causes: str = "",
 ) -> None:
     """YNotSignificantError when hot - cold is not Y_SIGNIFICANCE_SIGMAS standard
     uncertainties above zero: the one rule every Y-factor path (point, calibration, converter)
-    applies before using a Y. ``source_plane`` names where the source should be connected."""
+    applies before using a Y. ``source_plane`` names where the source should be connected;
+    ``causes`` adds the path's own likely causes (a converter's LO)."""
     z = y_significance(hot, cold)
     if z >= Y_SIGNIFICANCE_SIGMAS:
         return
     y = hot.density_w_per_hz / cold.density_w_per_hz
+    if y <= 1.0:
+        what_happened = f"hot reading is not above the cold one (Y - 1 = {y - 1.0:.2g})"
+    else:
+        what_happened = (
+            f"hot reading is above the cold one by only {z:.2g} standard uncertainties "
+            f"(Y - 1 = {y - 1.0:.2g}; a usable Y needs {Y_SIGNIFICANCE_SIGMAS:g})"
+        )
     ratios = [d.scatter_ratio for d in (hot, cold) if d.scatter_ratio is not None]
     if ratios and max(ratios) > DEFAULT_SCATTER_LIMIT:
         cause = (
@@ -226,13 +239,24 @@ def check_y_significant(
     else:
         cause = "the noise source's output does not reach the analyzer: check that the source is "
     raise YNotSignificantError(
-        f"{what} at {format_frequency(freq_hz)}: no usable Y-factor, hot - cold is "
-        f"{z:.2g} standard uncertainties (Y - 1 = {y - 1.0:.2g}, needs "
-        f"{Y_SIGNIFICANCE_SIGMAS:g}); {cause}"
+        f"{what} at {format_frequency(freq_hz)}: no usable Y-factor, {what_happened}; {cause}"
         f"powered (supply on, drive cable), connected to {source_plane}, the switch path is "
-        "right, the DUT is powered and connected, and the ENR table is this source's",
+        f"right, {causes}the DUT is powered and connected, and the ENR table is this source's",
+        significance=z,
         freq_hz=freq_hz,
     )
+
+
+def averages_for_significance(done: int, significance: float) -> int:
+    """Averages per reading at which a pair now ``significance`` standard uncertainties above
+    zero (at ``done`` averages) is expected at twice the refusal threshold: (Y - 1)/u(Y) grows
+    as the square root of the averages (radiometer equation), and at 2 x 4 u the next look
+    refuses a live source with probability norm.sf(4) = 3.2e-5. A pair at or below zero (a dead
+    source, or a live one drowned in noise) asks for 16 times more; the caller caps the
+    growth of a round and stops at its average or time limit."""
+    if not math.isfinite(significance) or significance <= 0.25:
+        return 16 * max(1, done)
+    return max(done + 1, math.ceil(done * (2 * Y_SIGNIFICANCE_SIGMAS / significance) ** 2))
 
 
 def nf_db_from_te(te_k: float, t0_k: float = T0_K) -> float:
