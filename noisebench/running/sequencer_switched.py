@@ -87,8 +87,8 @@ from Y (through Y/(Y - 1)), not from the readings' scatter, so the u a round wil
 known to about a percent; the margin only has to cover that, while every 1 % of margin costs
 1 % of the measurement. Measured with ``scripts/bench_accuracy.py``'s bench over 12 seeds:
 margins 1.1, 1.05 and 1.02 needed the same switches (8 or 10 per sweep), and the whole run
-took 1.30x, 1.25x and 1.22x its radiometer minimum on average (1.03: 1.23x, 1.17-1.50x). A round the scatter test
-widens (excess scatter) still takes its extra round, as it must."""
+took 1.30x, 1.25x and 1.22x its radiometer minimum on average (1.03: 1.23x, 1.17-1.50x).
+A round the scatter test widens (excess scatter) still takes its extra round, as it must."""
 
 CURVATURE_SHARE = 0.1
 """With a declared drift curvature b (dB/s^2), a block of length T leaves at most b T^2 / 2 in
