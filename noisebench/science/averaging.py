@@ -70,7 +70,8 @@ def combine_densities(
         if not math.isclose(d.freq_hz, f0, rel_tol=1e-9):
             raise InputError(
                 "parts.freq_hz",
-                f"readings at {d.freq_hz:.9g} and {format_frequency(f0, 9)} cannot be combined",
+                f"readings at {format_frequency(d.freq_hz, 9)} and "
+                f"{format_frequency(f0, 9)} cannot be combined",
                 fix="combine readings of one frequency",
             )
     weights = [_weight(d) for d in parts]
