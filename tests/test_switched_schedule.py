@@ -291,3 +291,15 @@ def test_the_simulated_source_waits_only_when_its_state_changes():
     assert clock.now_s == pytest.approx(t0 + 2 * settle) and not source.is_hot
     sim.as_bench().safe_state()
     assert clock.now_s == pytest.approx(t0 + 2 * settle)
+
+
+def test_a_sweep_at_an_ordinary_target_carries_a_drift_check_on_every_point(tmp_path):
+    # at 0.08 dB the monitors' passes hold a few tens of averages: split from 2 averages per
+    # half (MIN_CHECK_AVERAGES), every point carries the block's check; at 16, the rule before,
+    # such sweeps carried none
+    record, _, _ = _run(tmp_path, "per_sweep")
+    assert len(record.points) == len(FREQS)
+    for p in record.points:
+        check = p.notes["drift_check"]
+        assert check["dof"] > 0 and 0.0 <= check["p_value"] <= 1.0
+    assert min(p.averages for p in record.points) < 2 * 2 * 16  # passes below the old rule
