@@ -23,6 +23,7 @@ import json, resource, sys, tempfile, time
 from pathlib import Path
 from noisebench.bench.registry import simulated_session
 from noisebench.running.plan import parse_plan
+from noisebench.results.store import RunWriter
 from noisebench.running.sequencer import Sequencer
 from noisebench.sims.bench import SimulatedBench
 
@@ -40,14 +41,28 @@ plan = parse_plan({
 })
 sim = SimulatedBench.from_scenario("demo-lna", seed=1)
 before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+marks = {}
+finish = RunWriter.finish
+
+def timed_finish(self, *args, **kwargs):  # the peak while measuring, before the files
+    marks["measured_kb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    marks["journal_bytes"] = (self.folder / "points.jsonl").stat().st_size
+    return finish(self, *args, **kwargs)
+
+RunWriter.finish = timed_finish
 t0 = time.perf_counter()
 with tempfile.TemporaryDirectory() as tmp:
     record = Sequencer(plan, simulated_session(sim, plan.bench)).run(Path(tmp) / "run")
     points = len(record.points)
 after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
 print(json.dumps({"points": points, "before_kb": before, "peak_kb": after,
-                  "seconds": time.perf_counter() - t0}))
+                  "seconds": time.perf_counter() - t0, **marks}))
 """
+
+TARGET_KB_PER_POINT = 1.0
+"""Flat memory: the run's peak grows by at most 1 kB per added point (a point's own journal
+line is about 2.3 kB and its share of the calibration about 1 kB; holding either per point
+is not flat)."""
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -74,12 +89,26 @@ def main(argv: list[str] | None = None) -> int:
     run_first = first["peak_kb"] - first["before_kb"]
     run_last = last["peak_kb"] - last["before_kb"]
     added = max(last["points"] - first["points"], 1)
+    per_point = (run_last - run_first) / added
+    measuring = (
+        (last["measured_kb"] - last["before_kb"]) - (first["measured_kb"] - first["before_kb"])
+    ) / added
+    journal = last["journal_bytes"] / 1024 / last["points"]
     print(
         f"run memory (peak minus after imports): {run_first / 1024:.1f} MiB at "
         f"{first['points']} points, {run_last / 1024:.1f} MiB at {last['points']} points: "
-        f"{(run_last - run_first) / added:.2f} kB per added point (peak RSS ratio "
+        f"{per_point:.2f} kB per added point (peak RSS ratio "
         f"{last['peak_kb'] / first['peak_kb']:.2f}x for {last['points'] / first['points']:.0f}x "
         f"the points)"
+    )
+    print(
+        f"  while measuring (peak before results.json is written): {measuring:.2f} kB per "
+        f"added point; the journal holds {journal:.2f} kB per point"
+    )
+    verdict = "met" if per_point <= TARGET_KB_PER_POINT else "NOT met"
+    print(
+        f"growth per added point: {per_point:.2f} kB = {per_point / TARGET_KB_PER_POINT:.1f}x "
+        f"the flat-memory target of {TARGET_KB_PER_POINT:g} kB ({verdict})"
     )
     return 0
 

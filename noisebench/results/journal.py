@@ -9,6 +9,7 @@ import logging
 import os
 import re
 import tempfile
+from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
@@ -37,13 +38,18 @@ def _fsync_dir(folder: Path) -> None:
         os.close(fd)
 
 
-def write_atomic(path: Path, data: str) -> None:
-    """Write ``data`` (UTF-8) so that ``path`` holds either the old or the new content."""
+def write_atomic(path: Path, data: str | Iterable[str]) -> None:
+    """Write ``data`` (UTF-8) so that ``path`` holds either the old or the new content.
+
+    ``data`` may be an iterable of text pieces, written as they come (a large file is then
+    never held whole in memory)."""
     path = Path(path)
+    pieces = [data] if isinstance(data, str) else data
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     try:
         with os.fdopen(fd, "w", encoding="utf-8", newline="") as handle:
-            handle.write(data)
+            for piece in pieces:
+                handle.write(piece)
             handle.flush()
             os.fsync(handle.fileno())
         os.chmod(tmp, 0o644)  # mkstemp makes 0600; results are meant to be shared
@@ -58,6 +64,7 @@ def write_atomic(path: Path, data: str) -> None:
 # ----------------------------------------------------------------------------- journal
 
 
+_CALIBRATION_LINE = b'{"kind":"calibration"'  # how RunWriter starts a calibration line
 _SURROGATE_ESCAPE = re.compile(rb"\\u[dD][89a-fA-F]")
 
 
@@ -99,43 +106,47 @@ def _parse_entry(line: bytes, where: str, journal: _Journal) -> None:
         raise ValueError(f"unknown journal entry kind {kind!r}")
 
 
-def _read_journal(path: Path) -> _Journal:
+def _read_journal(path: Path, *, calibrations: bool = True) -> _Journal:
     """Parse ``points.jsonl``. A torn last line is ignored with a warning, never raised.
 
     Appends are single writes ending in a newline, so only the unterminated final piece of the
     file can be torn; an unreadable line elsewhere is skipped with a warning and kept on disk.
+    Read line by line: the file is never held whole in memory. ``calibrations=False`` skips
+    the calibration lines this process wrote itself (the writer keeps those it saved).
     """
     journal = _Journal()
     if not path.exists():
         return journal
-    data = path.read_bytes()
-    pieces = data.split(b"\n")
-    last = len(pieces) - 1
-    for index, piece in enumerate(pieces):
-        if not piece.strip():
-            continue
-        where = f"{path.name} line {index + 1}"
-        try:
-            _parse_entry(piece, where, journal)
-        except (ValueError, KeyError, TypeError, ValidationError, RecursionError) as exc:
-            if index == last:
-                text = (
-                    f"{where}: incomplete last entry ({len(piece)} bytes) ignored; "
-                    "the run was probably killed while writing it"
-                )
-            else:
-                text = (
-                    f"{where}: damaged entry skipped ({describe_damage(exc)}); the line is kept "
-                    "in the file as it is"
-                )
-            logger.warning(text)
-            journal.warnings.append(text)
-            if index == last:
-                journal.valid_bytes = len(data) - len(piece)
-                return journal
-            continue
-        journal.needs_newline = index == last  # complete JSON whose newline never reached disk
-    journal.valid_bytes = len(data)
+    offset = 0
+    with open(path, "rb") as handle:
+        for index, piece in enumerate(handle):
+            start, offset = offset, offset + len(piece)
+            last = not piece.endswith(b"\n")  # only the file's final piece lacks one
+            piece = piece.rstrip(b"\n")
+            if not piece.strip() or (not calibrations and piece.startswith(_CALIBRATION_LINE)):
+                continue
+            where = f"{path.name} line {index + 1}"
+            try:
+                _parse_entry(piece, where, journal)
+            except (ValueError, KeyError, TypeError, ValidationError, RecursionError) as exc:
+                if last:
+                    text = (
+                        f"{where}: incomplete last entry ({len(piece)} bytes) ignored; "
+                        "the run was probably killed while writing it"
+                    )
+                else:
+                    text = (
+                        f"{where}: damaged entry skipped ({describe_damage(exc)}); the line is "
+                        "kept in the file as it is"
+                    )
+                logger.warning(text)
+                journal.warnings.append(text)
+                if last:
+                    journal.valid_bytes = start
+                    return journal
+                continue
+            journal.needs_newline = last  # complete JSON whose newline never reached disk
+    journal.valid_bytes = offset
     return journal
 
 

@@ -3,6 +3,7 @@ of a run; file names, CSV columns and the meaning of each point flag."""
 
 from __future__ import annotations
 
+import itertools
 import logging
 import math
 from collections.abc import Iterable
@@ -197,7 +198,9 @@ class RunRecord(BaseModel):
 def _jsonable(value: Any, where: str) -> Any:
     """Plain JSON types from numpy scalars/arrays, enums, paths, datetimes and models.
 
-    Non-finite floats become ``None`` with a warning (JSON has no NaN).
+    Non-finite floats become ``None`` with a warning (JSON has no NaN). Dicts and lists that
+    are already plain JSON are returned as they are, not copied (a long run's calibration
+    would otherwise be copied at every step); treat the result as shared.
     """
     return _plain(value, (where,))
 
@@ -223,9 +226,28 @@ def _plain(value: Any, path: tuple) -> Any:
         return None
     if kind in _SCALARS:
         return value
-    if kind is dict:
-        return {str(k): _plain(v, (*path, str(k))) for k, v in value.items()}
-    if kind is list or kind is tuple:
+    if kind is dict:  # copied only where something changes: a plain tree is returned as is
+        copy: dict[str, Any] | None = None
+        for index, (k, v) in enumerate(value.items()):
+            key = k if type(k) is str else str(k)
+            new = _plain(v, (*path, key))
+            if copy is None:
+                if new is v and key is k:
+                    continue
+                copy = {str(kk): vv for kk, vv in itertools.islice(value.items(), index)}
+            copy[key] = new
+        return value if copy is None else copy
+    if kind is list:
+        items: list[Any] | None = None
+        for index, v in enumerate(value):
+            new = _plain(v, (*path, index))
+            if items is None:
+                if new is v:
+                    continue
+                items = value[:index]
+            items.append(new)
+        return value if items is None else items
+    if kind is tuple:
         return [_plain(v, (*path, i)) for i, v in enumerate(value)]
     to_dict = getattr(value, "to_dict", None)
     if callable(to_dict):  # e.g. uncertainty budgets and verdicts: their documented shape

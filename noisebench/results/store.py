@@ -48,6 +48,7 @@ back bit-exact):
 from __future__ import annotations
 
 import contextlib
+import copy
 import functools
 import json
 import logging
@@ -64,7 +65,13 @@ from typing import Any, TypeVar
 from pydantic import ValidationError
 
 from noisebench.errors import InputError
-from noisebench.results.exports import csv_columns, csv_rows, results_csv_text, write_results
+from noisebench.results.exports import (
+    csv_columns,
+    csv_rows,
+    model_json_pieces,
+    results_csv_text,
+    write_results,
+)
 from noisebench.results.journal import (
     _APPEND_FLAGS,
     LOCK_FILE,
@@ -152,8 +159,9 @@ class RunWriter:
         self.folder = folder
         self.info = info
         self.done_freqs_hz: set[float] = set(journal.done_freqs_hz)
-        self._points = list(journal.points)
-        self._budgets = list(journal.budgets)
+        # Points and budgets live in the journal only (memory stays flat over a long sweep);
+        # ``finish`` and ``points`` read them back from it. The calibrations are kept: the
+        # latest is ``info.calibration`` (the same object, so no second copy).
         self._calibrations = list(journal.calibrations)
         self._warnings = list(journal.warnings)
         self._lock = lock
@@ -187,7 +195,7 @@ class RunWriter:
                 )
             info = info.model_copy(update={"status": "running", "ended_at": None})
             info = RunInfo.model_validate(_jsonable(info, "info"))
-            write_atomic(folder / RUN_INFO_FILE, info.model_dump_json(indent=2))
+            write_atomic(folder / RUN_INFO_FILE, model_json_pieces(info))
             writer = cls(folder, info, _Journal(), lock)
         except BaseException:
             lock.release()
@@ -223,7 +231,7 @@ class RunWriter:
             for stale in (RESULTS_JSON_FILE, RESULTS_CSV_FILE):
                 with contextlib.suppress(FileNotFoundError):
                     os.unlink(folder / stale)
-            write_atomic(folder / RUN_INFO_FILE, info.model_dump_json(indent=2))
+            write_atomic(folder / RUN_INFO_FILE, model_json_pieces(info))
             writer = cls(folder, info, journal, lock)
         except BaseException:
             lock.release()
@@ -240,8 +248,9 @@ class RunWriter:
 
     @property
     def points(self) -> list[PointResult]:
-        """Points written so far, in the order they were added."""
-        return list(self._points)
+        """Points written so far, in the order they were added (read from the journal)."""
+        with self._mutex:
+            return _read_journal(self.folder / JOURNAL_FILE).points
 
     @_serialized
     def add_point(self, point: PointResult, budget: dict | None = None) -> None:
@@ -263,9 +272,6 @@ class RunWriter:
             budget = self._clean_budget(point.freq_hz, budget)
         entry = {"kind": "point", "point": point.model_dump(mode="json"), "budget": budget}
         self._append(entry)
-        self._points.append(point)
-        if budget is not None:
-            self._budgets.append(budget)
         self.done_freqs_hz.add(point.freq_hz)
         logger.debug("point %s stored: NF %.3f dB", format_frequency(point.freq_hz), point.nf_db)
 
@@ -283,7 +289,7 @@ class RunWriter:
         self._append({"kind": "calibration", "calibration": calibration})
         self._calibrations.append(calibration)
         self.info = self.info.model_copy(update={"calibration": calibration})
-        write_atomic(self.folder / RUN_INFO_FILE, self.info.model_dump_json(indent=2))
+        write_atomic(self.folder / RUN_INFO_FILE, model_json_pieces(self.info))
 
     @_serialized
     def update_info(self, **fields: Any) -> None:
@@ -294,14 +300,17 @@ class RunWriter:
                 raise InputError(
                     name, "is managed by the run store", fix="use create/resume/finish"
                 )
-        merged = {**self.info.model_dump(mode="json"), **_jsonable(fields, "info")}
+        # the current fields as they are (a dump would copy the whole calibration each time);
+        # the new ones copied, so the caller's objects stay the caller's
+        current = {name: getattr(self.info, name) for name in type(self.info).model_fields}
+        merged = {**current, **_jsonable(copy.deepcopy(fields), "info")}
         try:
             self.info = RunInfo.model_validate(merged)
         except ValidationError as exc:
             err = exc.errors()[0]
             field = ".".join(str(p) for p in err["loc"]) or "info"
             raise InputError(field, err["msg"]) from None
-        write_atomic(self.folder / RUN_INFO_FILE, self.info.model_dump_json(indent=2))
+        write_atomic(self.folder / RUN_INFO_FILE, model_json_pieces(self.info))
 
     @_serialized
     def finish(self, status: str = "complete", verdict: dict | None = None) -> RunRecord:
@@ -319,16 +328,18 @@ class RunWriter:
                 fix="pass UnitVerdict.to_dict() or the verdict object",
             )
         info = self.info.model_copy(update={"status": status, "ended_at": _utc_now()})
+        journal = _read_journal(self.folder / JOURNAL_FILE, calibrations=False)
         record = RunRecord(
             info=info,
-            points=_sorted_points(self._points),
-            budgets=_sorted_budgets(self._budgets),
+            points=_sorted_points(journal.points),
+            budgets=_sorted_budgets(journal.budgets),
             verdict=verdict,
             calibrations=self._calibrations,
             warnings=self._warnings,
         )
+        del journal
         write_results(record, self.folder)
-        write_atomic(self.folder / RUN_INFO_FILE, info.model_dump_json(indent=2))
+        write_atomic(self.folder / RUN_INFO_FILE, model_json_pieces(info))
         self.info = info
         self._close_files()
         logger.info(

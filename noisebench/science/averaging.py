@@ -25,9 +25,11 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 from scipy import stats
 
+from noisebench.bench.acquisition import AcquisitionSettings
 from noisebench.errors import InputError
 from noisebench.science.density import NoiseDensity
 from noisebench.units import format_frequency
@@ -97,6 +99,21 @@ def _scatter_test(
     return chi2, birge, bool(chi2 > stats.chi2.isf(alpha, dof))
 
 
+_LAST_COPY: list[Any] = [None, 0, None]  # (settings, averages, copy) of the latest call
+
+
+def _with_averages(settings: AcquisitionSettings, averages: int) -> AcquisitionSettings:
+    """``settings`` with ``averages``; the points of one group share one copy (the settings
+    are frozen), so a long sweep's calibration holds one settings object per group, not one
+    per point and reading."""
+    source, count, copy = _LAST_COPY
+    if source is settings and count == averages:
+        return copy
+    copy = settings.model_copy(update={"averages": averages})
+    _LAST_COPY[:] = [settings, averages, copy]
+    return copy
+
+
 def _merged(
     parts: Sequence[NoiseDensity],
     weights: Sequence[float],
@@ -114,11 +131,7 @@ def _merged(
     samples = [d.independent_samples for d in parts]
     times = [d.acquisition_time_s for d in parts]
     excluded = sorted({f for d in parts for f in d.excluded_freq_hz})
-    settings = (
-        first.settings.model_copy(update={"averages": averages})
-        if first.settings is not None
-        else None
-    )
+    settings = _with_averages(first.settings, averages) if first.settings is not None else None
     return NoiseDensity(
         freq_hz=first.freq_hz,
         density_w_per_hz=mean,
