@@ -276,6 +276,9 @@ def _converter_record(run_id: str, serial: str) -> RunRecord:
             te_dsb_k=p.te_k / 1.1,
             image_rejection_db=12.0 + i,
             image_correction_db=0.1 * (i + 1),
+            gain_source="measured",
+            measured_gain_db=20.0 + i,
+            u_measured_gain_db=0.2,
         )
         points.append(p.model_copy(update={"conversion": conv}))
     return record.model_copy(update={"points": points})
@@ -291,31 +294,48 @@ def _check_converter_columns(db: ResultsDatabase) -> None:
     assert [r["nf_dsb_db"] for r in rows] == pytest.approx([3.9, 4.0, 4.1])
     assert [r["image_rejection_db"] for r in rows] == [12.0, 13.0, 14.0]
     assert {r["nf_type"] for r in rows} == {"ssb"}
+    assert {r["gain_source"] for r in rows} == {"measured"}
+    assert [r["measured_gain_db"] for r in rows] == [20.0, 21.0, 22.0]
+    assert {r["u_measured_gain_db"] for r in rows} == {0.2}
     assert db.conversion_points("r1") == []  # an amplifier run has none
 
 
-def _make_version_1(db_url: str) -> None:
-    """A database as version 1 wrote it: points without the conversion columns."""
+#: the columns each schema version added to ``points``
+_ADDED_IN = {
+    2: ResultsDatabase.CONVERSION_COLUMNS[:9],
+    3: ("gain_source", "measured_gain_db", "u_measured_gain_db"),
+}
+
+
+def _make_version(db_url: str, version: int = 1) -> None:
+    """A database as ``version`` wrote it: points without the columns later versions added."""
     import sqlalchemy as sa
 
     with ResultsDatabase(db_url) as db:
         _fill(db)
     engine = sa.create_engine(db_url)
     with engine.begin() as con:
-        for column in ResultsDatabase.CONVERSION_COLUMNS:
-            con.execute(sa.text("ALTER TABLE points DROP COLUMN " + column))
-        con.execute(sa.text("UPDATE schema_info SET version = 1"))
+        for later in range(version + 1, SCHEMA_VERSION + 1):
+            for column in _ADDED_IN[later]:
+                con.execute(sa.text("ALTER TABLE points DROP COLUMN " + column))
+        con.execute(sa.text(f"UPDATE schema_info SET version = {int(version)}"))
     engine.dispose()
 
 
-def test_sqlite_converter_columns_and_migration_of_a_version_1_file(tmp_path):
+def _make_version_1(db_url: str) -> None:
+    _make_version(db_url, 1)
+
+
+@pytest.mark.parametrize("old_version", [1, 2])
+def test_sqlite_converter_columns_and_migration_of_an_older_file(tmp_path, old_version):
+    assert set(ResultsDatabase.CONVERSION_COLUMNS) == {c for v in _ADDED_IN.values() for c in v}
     with ResultsDatabase(tmp_path / "new.sqlite") as db:
-        assert db.schema_version == SCHEMA_VERSION == 2
+        assert db.schema_version == SCHEMA_VERSION == 3
         _check_converter_columns(db)
     url = f"sqlite:///{tmp_path / 'old.sqlite'}"
-    _make_version_1(url)
+    _make_version(url, old_version)
     with ResultsDatabase(url) as db:  # migrated on open, old runs kept
-        assert db.schema_version == 2
+        assert db.schema_version == 3
         _check_queries(db)
         _check_converter_columns(db)
 
@@ -326,6 +346,6 @@ def test_postgresql_converter_columns_and_migration(pg_url):
     url = _fresh_pg(pg_url, "nb_migrate")
     _make_version_1(url)
     with ResultsDatabase(url) as db:
-        assert db.schema_version == 2
+        assert db.schema_version == 3
         _check_queries(db)
         _check_converter_columns(db)

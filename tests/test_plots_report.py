@@ -379,7 +379,7 @@ def test_verdict_text_colours_have_readable_contrast():
         high, low = sorted((luminance(a), luminance(b)), reverse=True)
         return (high + 0.05) / (low + 0.05)
 
-    # report.py: pass / not judged as coloured text on white, fail as white on red,
+    # report: pass / not judged as coloured text on white, fail as white on red,
     # indeterminate as dark ink on amber; WCAG 2.1 AA asks >= 4.5 for normal text
     assert contrast(VERDICT_STYLE["pass"][0], "#ffffff") >= 4.5
     assert contrast(VERDICT_STYLE["not_judged"][0], "#ffffff") >= 4.5
@@ -1173,16 +1173,17 @@ def test_importing_the_store_plots_and_report_does_not_load_matplotlib():
 
 def test_report_html_comes_from_autoescaped_templates_only():
     """The markup lives in the packaged templates; the module only gathers facts."""
-    import inspect
-
     from noisebench.results import report
 
     env = report.environment()
     for name in ("report.html", "macros.html", "report.css"):
         assert env.is_async is False and env.get_template(name)  # packaged and found
         assert env.autoescape is True or env.autoescape(name)  # escaping on for every file
-    source = inspect.getsource(report)
-    assert not re.search(r"<(table|tr|td|th|span|p|div|h[1-6]|strong|img)\b", source)
+    modules = sorted(Path(report.__file__).parent.glob("*.py"))
+    assert len(modules) >= 5  # the package and its section modules
+    for module in modules:
+        source = module.read_text(encoding="utf-8")
+        assert not re.search(r"<(table|tr|td|th|span|p|div|h[1-6]|strong|img)\b", source), module
     cell = report.render_value({"name": "<b>x</b>", "freqs_hz": [1e9, 2.5e9]})
     assert "&lt;b&gt;x&lt;/b&gt;" in cell and "<b>" not in cell
     assert "2.5\u00a0GHz" in cell  # a frequency under a *_hz key keeps its unit

@@ -18,6 +18,7 @@ address asks for them, so the core never depends on either.
 from __future__ import annotations
 
 import logging
+import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from enum import Enum
@@ -88,6 +89,24 @@ def profile_problem(profile: str) -> str | None:
     return None
 
 
+def generator_range_hz(profile: str) -> tuple[float, float] | None:
+    """The frequency range (Hz) a generator profile declares (``frequency_hz`` min and max);
+    None when it declares no range or does not load (reported by the profile check)."""
+    from noisebench.drivers.profile import load_profile
+
+    try:
+        loaded = load_profile(profile)
+    except InputError:
+        return None
+    section = loaded.generator
+    if section is None:
+        return None
+    setting = section.settings.frequency_hz
+    if setting.min is None or setting.max is None:
+        return None
+    return float(setting.min) * setting.scale, float(setting.max) * setting.scale
+
+
 def simulated_receiver_options(resource: str) -> Any:
     """The sampled-receiver options of a ``sim://...&receiver=sampled`` address; None for any
     other address, or an invalid one (:func:`address_problems` reports that)."""
@@ -110,7 +129,8 @@ class BenchSession:
     ``"recorded"`` (SigMF recordings: nothing is driven). What a back end supplies besides the
     instruments is explicit: ``enr_table``, the noise source's own ENR table when the bench
     knows it (used when the plan names none); ``clock``, the instrument time in seconds when the
-    bench keeps one (None: wall time). ``sim`` is the simulator object itself, for the front
+    bench keeps one (None: wall time); ``wait``, how a settling wait passes (the simulated bench
+    advances its clock; None: a real sleep). ``sim`` is the simulator object itself, for the front
     ends and tests that compare with its truth; the core never reads it.
     """
 
@@ -120,6 +140,7 @@ class BenchSession:
     _move: Callable[[Connection], None]
     enr_table: Any = None
     clock: Callable[[], float] | None = None
+    wait: Callable[[float], Any] | None = None
     sim: Any = None
     scpi_simulator: bool = False
     connection: Connection | None = None
@@ -144,6 +165,16 @@ class BenchSession:
     def instrument_time_s(self) -> float | None:
         """Simulated instrument clock (None on real instruments: use wall time)."""
         return float(self.clock()) if self.clock is not None else None
+
+    def settle(self, seconds: float) -> None:
+        """Let ``seconds`` of settling pass: on the bench's own clock when it keeps one (a
+        simulated bench: no wall time passes and runs repeat exactly), else in real time."""
+        if seconds <= 0:
+            return
+        if self.wait is not None:
+            self.wait(seconds)
+        else:
+            time.sleep(seconds)
 
     def close(self) -> None:
         """Safe state, then close every instrument. Idempotent; never raises."""
@@ -229,6 +260,7 @@ def simulated_session(
         _move=lambda target: sim.set_path(paths[target]),
         enr_table=sim.enr_table,
         clock=lambda: sim.clock.now_s,
+        wait=sim.clock.advance,
         sim=sim,
     )
 
@@ -520,5 +552,6 @@ def simulated_ranges(resource: str) -> dict[str, tuple[float, float]] | None:
     return {
         "analyzer": (scenario.analyzer.min_freq_hz, scenario.analyzer.max_freq_hz),
         "lo": (scenario.lo_generator.min_freq_hz, scenario.lo_generator.max_freq_hz),
+        "generator": (scenario.generator.min_freq_hz, scenario.generator.max_freq_hz),
         "enr": (float(ns.freq_hz[0]), float(ns.freq_hz[-1])),
     }

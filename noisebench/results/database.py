@@ -36,7 +36,7 @@ from noisebench.errors import InputError, NoisebenchError
 
 log = logging.getLogger(__name__)
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 """1: the first schema; 2: per-point frequency plan of converter runs (``points.rf_hz`` ...),
 added to a version-1 database in place when it is opened (``_migrate``)."""
 _SCHEMA_ATTEMPTS = 20  # bounded retries of schema creation on engines without a schema lock
@@ -145,6 +145,10 @@ class _Point(_Base):
     nf_ssb_db: Mapped[float | None] = mapped_column(Float)
     nf_dsb_db: Mapped[float | None] = mapped_column(Float)
     image_rejection_db: Mapped[float | None] = mapped_column(Float)
+    # where a converter's conversion gain came from (schema 3): measured / file / constant
+    gain_source: Mapped[str | None] = mapped_column(String(10))
+    measured_gain_db: Mapped[float | None] = mapped_column(Float)
+    u_measured_gain_db: Mapped[float | None] = mapped_column(Float)
     run: Mapped[_Run] = relationship(back_populates="points")
     terms: Mapped[list[_BudgetTerm]] = relationship(cascade="all, delete-orphan")
 
@@ -237,6 +241,9 @@ def _conversion_columns(conv: Any) -> dict[str, Any]:
         "nf_ssb_db": _finite_or_none(get("nf_ssb_db")),
         "nf_dsb_db": _finite_or_none(get("nf_dsb_db")),
         "image_rejection_db": _finite_or_none(get("image_rejection_db")),
+        "gain_source": get("gain_source"),
+        "measured_gain_db": _finite_or_none(get("measured_gain_db")),
+        "u_measured_gain_db": _finite_or_none(get("u_measured_gain_db")),
     }
 
 
@@ -296,8 +303,8 @@ class ResultsDatabase:
                     _Base.metadata.create_all(conn)
                     self._add_missing_indexes(conn)
                     info = conn.execute(select(_SchemaInfo.version)).first()
-                    if info is not None and int(info[0]) == 1:
-                        self._migrate_from_1(conn)
+                    if info is not None and int(info[0]) in (1, 2):
+                        self._migrate(conn, int(info[0]))
                     if info is None:
                         conn.execute(
                             insert(_SchemaInfo).values(
@@ -341,14 +348,20 @@ class ResultsDatabase:
         "nf_ssb_db",
         "nf_dsb_db",
         "image_rejection_db",
+        "gain_source",
+        "measured_gain_db",
+        "u_measured_gain_db",
     )
 
     @classmethod
-    def _migrate_from_1(cls, conn: Any) -> None:
-        """Schema 1 -> 2, inside the schema lock: add the converter columns to ``points``.
+    def _migrate(cls, conn: Any, version: int) -> None:
+        """Schema 1 or 2 -> 3, inside the schema lock: add the converter columns ``points``
+        lacks (2 added the frequency plan and both figures, 3 the conversion gain's source
+        and measured value).
 
         The DDL is compiled by SQLAlchemy from our own column definitions for the engine's
-        dialect (no user text in it); existing rows get NULL (amplifier points)."""
+        dialect (no user text in it); existing rows get NULL (amplifier points, or converter
+        points stored before the column existed)."""
         from sqlalchemy import inspect
         from sqlalchemy.schema import CreateColumn
 
@@ -359,7 +372,7 @@ class ResultsDatabase:
                 column = CreateColumn(table.c[name]).compile(dialect=conn.dialect)
                 conn.exec_driver_sql("ALTER TABLE points ADD COLUMN " + str(column))
         conn.execute(_Base.metadata.tables["schema_info"].update().values(version=SCHEMA_VERSION))
-        log.info("results database migrated from schema 1 to %d", SCHEMA_VERSION)
+        log.info("results database migrated from schema %d to %d", version, SCHEMA_VERSION)
 
     @staticmethod
     def _add_missing_indexes(conn: Any) -> None:

@@ -60,9 +60,14 @@ CSV_CONVERSION_COLUMNS: tuple[str, ...] = (
     "nf_dsb_db",
     "image_rejection_db",
     "image_correction_db",
+    "gain_source",
+    "measured_gain_db",
+    "u_measured_gain_db",
 )
 """Columns of a frequency-converting DUT's run (``freq_hz`` is then the RF): the frequency plan,
-which figure ``nf_db`` holds, both figures and the image correction applied (NF_SSB - NF_DSB)."""
+which figure ``nf_db`` holds, both figures and the image correction applied (NF_SSB - NF_DSB);
+gain method: where the conversion gain came from and, measured, its value between the THROUGH
+planes with its u."""
 CSV_BUDGET_COLUMNS: tuple[str, ...] = ("U_nf_db", "coverage_k", "budget_method")
 CSV_VERDICT_COLUMNS: tuple[str, ...] = ("verdict", "limit")
 

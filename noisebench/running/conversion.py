@@ -56,6 +56,7 @@ __all__ = [
     "conversion_problems",
     "LoControl",
     "leakage_lines_hz",
+    "tone_leakage_problems",
 ]
 
 DEFAULT_KEEPOUT_RBW = 5.0
@@ -418,6 +419,32 @@ def conversion_problems(
     if image_rejection is not None:
         problems += image_rejection.covers([float(f) for f in fp.rf_hz])
     return problems
+
+
+def tone_leakage_problems(
+    section: ConversionSection, fp: FrequencyPlan, *, band_rbw: float, rbw_hz: float
+) -> list[str]:
+    """The measured conversion gain's tone at the IF: its marker band (``band_rbw`` x
+    ``rbw_hz``) plus the keep-out (``leakage_keepout_hz``, else 5 of the tone's RBW) must not
+    reach an LO leakage line ``n LO``; one ``key: message (fix)`` line for the first point."""
+    half = band_rbw * rbw_hz / 2.0
+    keep = (
+        section.leakage_keepout_hz
+        if section.leakage_keepout_hz is not None
+        else DEFAULT_KEEPOUT_RBW * rbw_hz
+    )
+    n = np.arange(1, section.lo_harmonics + 1)
+    lines = fp.lo_hz[:, None] * n[None, :]
+    hit = np.abs(fp.if_hz[:, None] - lines) <= half + keep
+    if not np.any(hit):
+        return []
+    i = int(np.flatnonzero(hit.any(axis=1))[0])
+    return [
+        f"gain.rbw_hz: the conversion-gain tone at the IF {format_frequency(fp.if_hz[i])} "
+        f"(RF {format_frequency(fp.rf_hz[i])}, band +/- {format_frequency(half, 3)}) overlaps "
+        f"LO leakage at {format_frequency(lines[i][hit[i]][0])} +/- {format_frequency(keep, 3)} "
+        "(move the IF or the LO, or narrow gain.rbw_hz)"
+    ]
 
 
 # --------------------------------------------------------------------------- LO control

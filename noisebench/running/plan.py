@@ -552,6 +552,12 @@ class CorrectionsSection(BaseModel):
         return value
 
 
+DEFAULT_FLATNESS_U_DB = 0.3
+"""Standard u of a generator's level, or an analyzer's response, at two frequencies relative to
+each other, when the plan states none (common practice: level-accuracy and frequency-response
+figures of +/-0.5 dB read as rectangular half-widths, 0.5/sqrt(3) = 0.29 dB)."""
+
+
 class GainSection(BaseModel):
     """DUT gain for the gain method: measured with the generator, from a file, or constant.
 
@@ -560,7 +566,11 @@ class GainSection(BaseModel):
     the
     gain between the THROUGH reference planes (the input loss and the DUT); the sequencer
     accounts for that. ``max_gain_db`` (largest gain expected) and ``dut_p1db_out_dbm`` set
-    the generator level, kept well below compression.
+    the generator level, kept well below compression. For a frequency-converting DUT
+    ``measure`` measures the conversion gain, the generator at the RF and the analyzer at the IF,
+    against THROUGH references at both (noisebench.running.conversion_gain); ``max_gain_db`` is
+    then the largest conversion gain and ``dut_p1db_out_dbm`` the IF output's P1dB, and
+    ``u_generator_flatness_db`` / ``u_analyzer_flatness_db`` weight the two references.
     """
 
     model_config = _STRICT
@@ -576,8 +586,29 @@ class GainSection(BaseModel):
     readings: int = Field(default=3, ge=2, le=100)
     averages: int = Field(default=4, ge=1, le=10_000)
     linearity_u_db: float = Field(default=0.02, ge=0, le=5)
+    u_generator_flatness_db: float | None = Field(
+        default=None,
+        ge=0,
+        le=10,
+        description="frequency-converting DUT: the generator's level difference between RF "
+        "and IF, standard u, dB",
+    )
+    u_analyzer_flatness_db: float | None = Field(
+        default=None,
+        ge=0,
+        le=10,
+        description="frequency-converting DUT: the analyzer's response difference between IF "
+        "and RF, standard u, dB",
+    )
 
     _gain_range = _ranged("dut_gain_db", "gain", "value_db", "max_gain_db")
+
+    def flatness_u_db(self, instrument: Literal["generator", "analyzer"]) -> float:
+        """The declared flatness u of ``instrument`` (a converter's measured gain), dB; else
+        :data:`DEFAULT_FLATNESS_U_DB`."""
+        value = getattr(self, f"u_{instrument}_flatness_db")
+        return DEFAULT_FLATNESS_U_DB if value is None else float(value)
+
     _p1db_range = _ranged("dut_p1db_dbm", "gain", "dut_p1db_out_dbm")
 
     @model_validator(mode="after")
@@ -596,6 +627,14 @@ class GainSection(BaseModel):
                         name,
                         'is required with source = "measure" (it sets the generator level)',
                         fix="give the DUT's datasheet value",
+                    )
+        if self.source != "measure":
+            for name in ("u_generator_flatness_db", "u_analyzer_flatness_db"):
+                if getattr(self, name) is not None:
+                    raise InputError(
+                        name,
+                        f'is only used with source = "measure" (source is "{self.source}")',
+                        fix=f"remove {name}",
                     )
         for name, used_by in (("value_db", "constant"), ("file", "file")):
             if self.source != used_by and getattr(self, name) is not None:

@@ -42,6 +42,13 @@ def cross_check(plan: Plan, *, check_files: bool = True) -> list[str]:
             problems += profile_errors(plan)  # the plan against the analyzer's profile
     if plan.conversion is not None:
         problems += _check_conversion(plan, check_files=check_files)
+    elif plan.gain is not None:
+        for name in ("u_generator_flatness_db", "u_analyzer_flatness_db"):
+            if getattr(plan.gain, name) is not None:
+                problems.append(
+                    f"gain.{name}: only used for a frequency-converting DUT (generator and "
+                    "analyzer at different frequencies); remove it"
+                )
     return problems
 
 
@@ -62,12 +69,6 @@ def _check_conversion(plan: Plan, *, check_files: bool) -> list[str]:
         problems.append(
             'bench.lo: the LO comes from a generator (conversion.lo.source = "generator"); '
             'name it: lo = { resource = "TCPIP0::...::SOCKET" } (or source = "external")'
-        )
-    if plan.method is Method.GAIN and plan.gain is not None and plan.gain.source == "measure":
-        problems.append(
-            'gain.source: "measure" is not available for a frequency-converting DUT yet (the '
-            "generator at the RF and the analyzer at the IF); give the conversion gain over RF "
-            'with source = "file" or "constant"'
         )
     lo_bench = plan.bench.lo
     level = section.lo.level_dbm
@@ -93,15 +94,23 @@ def _check_conversion(plan: Plan, *, check_files: bool) -> list[str]:
             image = ImageRejection(section, plan.resolve_path)
         except InputError as exc:
             problems.append(str(exc))
-    analyzer_range = enr_range = lo_range = None
+    analyzer_range = enr_range = lo_range = generator_range = None
     if plan.is_simulated:
         from noisebench.bench.registry import simulated_ranges
 
         ranges = simulated_ranges(plan.bench.analyzer.resource)
         if ranges is not None:
             analyzer_range, lo_range = ranges["analyzer"], ranges["lo"]
+            generator_range = ranges["generator"]
             if plan.enr.table is None:
                 enr_range = ranges["enr"]
+    measured_gain = (
+        plan.method is Method.GAIN and plan.gain is not None and plan.gain.source == "measure"
+    )
+    if measured_gain and plan.bench.generator is not None and not plan.is_simulated:
+        from noisebench.bench.registry import generator_range_hz
+
+        generator_range = generator_range_hz(plan.bench.generator.profile)
     if plan.enr.table is not None and check_files and plan.enr.extrapolate != "clamp":
         try:
             from noisebench.science.enr import EnrTable
@@ -122,6 +131,48 @@ def _check_conversion(plan: Plan, *, check_files: bool) -> list[str]:
         lo_range_hz=lo_range,
         image_rejection=image,
         y_factor=plan.method is Method.Y_FACTOR,
+    )
+    if measured_gain:
+        problems += _check_measured_conversion_gain(plan, fp, analyzer_range, generator_range)
+    return problems
+
+
+def _check_measured_conversion_gain(
+    plan: Plan,
+    fp: Any,
+    analyzer_range: tuple[float, float] | None,
+    generator_range: tuple[float, float] | None,
+) -> list[str]:
+    """A conversion gain measured with the generator at the RF and the analyzer at the IF:
+    the THROUGH references need the generator at the RF and the IF, the analyzer at the IF and
+    the RF; the tone's marker band at the IF must stay clear of the LO leakage."""
+    from noisebench.running.conversion import tone_leakage_problems
+    from noisebench.running.gain_measurement import GainMeasurementPlan
+
+    section, gain = plan.conversion, plan.gain
+    assert section is not None and gain is not None
+    problems = []
+    for name, rng, fix in (
+        ("bench.generator", generator_range, "use a generator that reaches both"),
+        ("bench.analyzer", analyzer_range, "use an analyzer that reads both"),
+    ):
+        if rng is None:
+            continue
+        lo, hi = rng
+        for label, freqs in (("RF", fp.rf_hz), ("IF", fp.if_hz)):
+            bad = [float(f) for f in freqs if not lo <= f <= hi]
+            if bad:
+                problems.append(
+                    f"{name}: the {label} {format_frequency(bad[0])} is outside its "
+                    f"{format_frequency_range(lo, hi)}; the measured conversion gain needs the "
+                    f"generator and the analyzer at the RF and at the IF (THROUGH references) "
+                    f'({fix}, or give the gain with source = "file")'
+                )
+    problems += tone_leakage_problems(
+        section,
+        fp,
+        band_rbw=GainMeasurementPlan.model_fields["band_rbw"].default,
+        rbw_hz=gain.rbw_hz,
     )
     return problems
 

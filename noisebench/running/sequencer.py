@@ -287,7 +287,7 @@ class Sequencer(SwitchedSweep, GainStep, VerdictStep):
 
         conv = self.plan.conversion
         assert conv is not None
-        self.lo = LoControl(conv.lo, self.session.bench.lo_generator)
+        self.lo = LoControl(conv.lo, self.session.bench.lo_generator, wait=self.session.settle)
         self.image_rejection = ImageRejection(conv, self.plan.resolve_path)
         fp = self.plan.frequency_plan()
         writer.update_info(

@@ -151,11 +151,11 @@ class SequencerCore:
         traces: list[Trace] = []
         for count in split_averages(averages, analyzer.max_averages_per_trace):
             self._configure(group, count)
-            started = time.monotonic()
+            started = self._now_s()
             part: Trace = analyzer.acquire_trace()
             seconds = part.acquisition_time_s
             if seconds is None:
-                seconds = time.monotonic() - started
+                seconds = self._now_s() - started
             budget.charge_trace(seconds, part.settings.averages)
             traces.append(part)
         # more averages than one trace can hold: combined on the averaging scale, exactly as
@@ -168,6 +168,12 @@ class SequencerCore:
         return list(
             estimate_densities(trace, list(group.freqs_hz), group.band_hz, known_lines_hz=lines)
         )
+
+    def _now_s(self) -> float:
+        """Instrument time: the bench's own clock when it keeps one (a simulated bench, so a
+        seeded run repeats exactly), else the wall clock."""
+        clock = self.session.instrument_time_s()
+        return time.monotonic() if clock is None else clock
 
     def _known_lines_hz(self, group: PointGroup) -> list[float]:
         """Lines known to be in the trace: a converter's LO leakage and its harmonics."""

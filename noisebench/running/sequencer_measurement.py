@@ -192,7 +192,17 @@ class MeasurementSteps(CalibrationSteps):
             gain_includes_output_loss=False,
             **common,
         )
-        return self._mark_stated_gain(point)
+        assert point.conversion is not None  # a converter method's point
+        spec = self.plan.gain
+        source = "measured" if holds_input_loss else (spec.source if spec is not None else None)
+        info = point.conversion.model_copy(
+            update={
+                "gain_source": source,
+                "measured_gain_db": gain_db if holds_input_loss else None,
+                "u_measured_gain_db": u_gain_db if holds_input_loss else None,
+            }
+        )
+        return self._mark_stated_gain(point.model_copy(update={"conversion": info}))
 
     def _mark_stated_gain(self, point: PointResult) -> PointResult:
         """Flag ``gain_not_measured`` on a point whose gain is the stated one (a file or a

@@ -87,7 +87,11 @@ class ConversionInfo(BaseModel):
     ``te_k`` hold. ``image_rejection_db``: the converter's image response below its signal
     response (None: no image response). ``image_correction_db = nf_ssb_db - nf_dsb_db =
     10 log10(1 + G_i/G_s)``. ``enr_image_db``: the ENR used for the image band's share;
-    ``cal_if_enr_db``: the ENR at the IF used to calibrate the analyzer.
+    ``cal_if_enr_db``: the ENR at the IF used to calibrate the analyzer. Gain method:
+    ``gain_source`` says where the conversion gain came from (``measured`` with the generator at
+    the RF and the analyzer at the IF, or the plan's ``file``/``constant``); a measured one is
+    ``measured_gain_db`` (between the THROUGH planes: input cable and converter) with its
+    standard uncertainty ``u_measured_gain_db``; ``gain_db`` adds the input loss back.
     """
 
     model_config = ConfigDict(extra="forbid")
@@ -107,6 +111,9 @@ class ConversionInfo(BaseModel):
     enr_image_db: float | None = None
     cal_if_enr_db: float | None = None
     lo_level_dbm: float | None = None
+    gain_source: Literal["measured", "file", "constant"] | None = None
+    measured_gain_db: float | None = None
+    u_measured_gain_db: float | None = Field(default=None, ge=0)
 
 
 class PointResult(BaseModel):

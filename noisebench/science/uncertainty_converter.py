@@ -294,10 +294,14 @@ def _gain_model(point, dens, u_dens, notes, qs, inputs, refl, omitted):
     ts = float(point.source_temperature_k)
     t_term = float(notes.get("floor_temperature_k") or ts)
     g_db = float(point.gain_db) if point.gain_db is not None else 0.0
+    holds_in = bool(notes.get("gain_includes_input_loss", False))
+    holds_out = bool(notes.get("gain_includes_output_loss", False))
     spec = inputs.spec("dut_gain_db")
     if spec is None and point.u_gain_db is not None:
         spec = (float(point.u_gain_db), Distribution.NORMAL)
-    qs.append(_quantity("d_gain_db", "conversion gain", spec))
+    measured = point.conversion is not None and point.conversion.gain_source == "measured"
+    name = "conversion gain (measured)" if measured else "conversion gain"
+    qs.append(_quantity("d_gain_db", name, spec))
     for key in ("dut",) + (("floor",) if with_floor else ()):
         qs.append(
             _jitter(f"j_{key}", f"N_{key} jitter", _percent(key, dens[key], u_dens.get(key, 0.0)))
@@ -342,7 +346,13 @@ def _gain_model(point, dens, u_dens, notes, qs, inputs, refl, omitted):
         if with_floor:
             floor = dens["floor"] * (1.0 + x.get("j_floor", 0.0) / 100.0) * scale
             n = floor + (n - floor) * ratio_from_db(x.get("d_lin_db", 0.0))
+        # a gain measured through a loss had that loss added back (the converter's own gain =
+        # the measured one + the loss), so the loss's error moves it dB for dB
         g = g_db + x.get("d_gain_db", 0.0) + x.get("d_mm_out_db", 0.0)
+        if holds_in:
+            g = g + x.get("d_loss_in_db", 0.0)
+        if holds_out:
+            g = g + x.get("d_loss_out_db", 0.0)
         tsx = ts + x.get("d_tc_k", 0.0)
         te, _ = _gain_core(
             n, floor, g, tsx, r, lin_s, lin_i, tp_in, lout, tp_out, t_term + x.get("d_tc_k", 0.0)

@@ -80,6 +80,7 @@ IDEAL_OVERRIDES: dict[str, Any] = {
     "analyzer__amplitude_error_db": 0.0,
     "analyzer__input_reflection": {"magnitude": 0.0},
     "generator__level_error_db": 0.0,
+    "generator__level_slope_db_per_ghz": 0.0,
     "interference": {"tones": [], "combs": [], "mains_sideband_dbc": None},
 }
 """Overrides that remove every systematic error a method cannot know about (ENR calibration

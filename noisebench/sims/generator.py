@@ -70,8 +70,10 @@ class SimGenerator(Generator):
 
     @property
     def true_level_dbm(self) -> float:
-        """The level really delivered (set level plus the generator's level error), dBm."""
-        return self._level_dbm + self.spec.level_error_db
+        """The level really delivered (set level plus the generator's level error and its
+        flatness, ``level_slope_db_per_ghz`` per GHz from 1 GHz), dBm."""
+        slope = self.spec.level_slope_db_per_ghz * (self._freq_hz / 1e9 - 1.0)
+        return self._level_dbm + self.spec.level_error_db + slope
 
     def close(self) -> None:
         """Output off (safe state). Idempotent."""

@@ -330,6 +330,12 @@ class GeneratorSpec(_Model):
     max_level_dbm: float = 20.0
     noise_floor_dbc_per_hz: float = -150.0
     level_error_db: float = 0.0
+    level_slope_db_per_ghz: float = Field(
+        default=0.0,
+        ge=-10,
+        le=10,
+        description="flatness: the level error grows by this much per GHz above 1 GHz",
+    )
 
 
 class SupplySpec(_Model):
