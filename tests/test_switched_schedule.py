@@ -119,10 +119,9 @@ def _tight_run(tmp_path, **drift: float):
     reads: dict[float, list[int]] = {}
     original = sim.analyzer.acquire_trace
 
-    def counting():  # the measurement's acquisitions (DUT in); the calibration has its own
+    def counting():
         s = sim.analyzer.settings
-        if sim.path.value == "dut":
-            reads.setdefault(s.center_hz, []).append(s.averages)
+        reads.setdefault(s.center_hz, []).append(s.averages)
         return original()
 
     sim.analyzer.acquire_trace = counting

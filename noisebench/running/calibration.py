@@ -147,8 +147,28 @@ class CalibrationStore:
         self.entries.append(entry)
 
     def to_dict(self) -> dict[str, Any]:
-        """JSON-able form (for ``RunWriter.save_calibration``)."""
-        return {"entries": [e.model_dump(mode="json") for e in self.entries]}
+        """JSON-able form (for ``RunWriter.save_calibration``): ``model_dump(mode="json")`` of
+        each entry, except that densities sharing one settings object share one settings
+        dict (the same JSON; a long sweep's calibration then holds one per group, not one per
+        reading)."""
+        shared: dict[int, Any] = {}
+
+        def density(d: NoiseDensity) -> dict[str, Any]:
+            out = d.model_dump(mode="json", exclude={"settings"})
+            if d.settings is None:
+                settings = None
+            else:
+                settings = shared.get(id(d.settings))
+                if settings is None:
+                    settings = shared[id(d.settings)] = d.settings.model_dump(mode="json")
+            return {k: settings if k == "settings" else out[k] for k in type(d).model_fields}
+
+        entries = []
+        for e in self.entries:
+            out = e.model_dump(mode="json", exclude={"densities"})
+            out["densities"] = {n: [density(d) for d in ds] for n, ds in e.densities.items()}
+            entries.append({k: out[k] for k in type(e).model_fields})
+        return {"entries": entries}
 
     @classmethod
     def from_dict(cls, data: dict[str, Any] | None) -> CalibrationStore:

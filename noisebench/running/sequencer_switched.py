@@ -58,7 +58,7 @@ MIN_CHECK_AVERAGES = 16
 averages: fewer make ln(density) too far from normal for the chi-square test (the pilot block
 is read whole)."""
 
-FIRST_GROUP_ALONE = False  # the sweep's pilot block replaces the first group (both phases)
+FIRST_GROUP_ALONE = False  # measurement: the sweep's pilot block replaces the first group
 PRIOR_SHARE = 0.5
 """A group may stop on its target only with at least this share of the median averages the
 sweep's groups plan (see ``SwitchedSweep._hold_lucky``)."""
@@ -274,11 +274,9 @@ class SwitchedSweep(MeasurementSteps):
         """System calibration (THROUGH) of ``groups`` in sweep-level blocks."""
         kind = CalibrationKind.SYSTEM
         self.session.connect(Connection.THROUGH)
-        if self._prior.get(kind.value) is None and FIRST_GROUP_ALONE:
+        if self._prior.get(kind.value) is None:
             # the first group alone, as in the per-group order: its averages are the prior
-            # that starts every other group near its need. Off: a pilot block of all groups
-            # costs three switches, the group alone four more (seven settling times where
-            # three do; measured in scripts/bench_accuracy.py)
+            # that starts every other group near its need (a sweep of pilots would not)
             first, groups = groups[0], groups[1:]
             try:
                 entry = self._with_context(first, lambda: self._calibrate_group(first, kind))
