@@ -419,7 +419,7 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
             spectrum = self.source.spectrum(freq)
             hot = self._hot_fraction(s, t0, period, t_end)
             noise_w, gain = self._displayed_noise_w(s, freq, spectrum, hot)
-            drift = self.gain_drift_factor(0.5 * (t0 + t_end))
+            drift = self.gain_drift_factor(0.5 * (t0 + t_end)) * self._step_factor(t0, t_end)
             if drift != 1.0:
                 noise_w, gain = noise_w * drift, gain * drift
             tone_w = self._tone_power_w(s, freq, spectrum.tones)
@@ -452,6 +452,19 @@ class SimAnalyzer(Analyzer, NoiseDriveOutput):
         modelled, the mean over one acquisition is its value at the middle."""
         db = self.spec.gain_drift_db_per_s * t_s + self.spec.gain_drift_db_per_s2 * t_s**2
         return float(10.0 ** (db / 10.0))
+
+    def _step_factor(self, t0_s: float, t_end_s: float) -> float:
+        """Mean factor of the receiver gain step over [t0_s, t_end_s]: the share of the
+        acquisition after the step sees the stepped gain (power averages are linear in it)."""
+        step_db = self.spec.gain_step_db
+        if step_db == 0.0:
+            return 1.0
+        at = self.spec.gain_step_at_s
+        if t_end_s <= t0_s:
+            after = 1.0 if t0_s >= at else 0.0
+        else:
+            after = min(max((t_end_s - at) / (t_end_s - t0_s), 0.0), 1.0)
+        return 1.0 + (10.0 ** (step_db / 10.0) - 1.0) * after
 
     def _recipe(self, s: AcquisitionSettings) -> TraceRecipe:
         kernel = None

@@ -148,8 +148,9 @@ class SimNoiseSource(NoiseSource):
 
     def _output_drift(self, t_s: np.ndarray | float) -> np.ndarray:
         """Factor on the excess noise output at simulated times ``t_s`` (1: no drift)."""
-        rate = self.spec.output_drift_db_per_s
-        return 10.0 ** (rate * np.asarray(t_s, dtype=float) / 10.0)
+        t = np.asarray(t_s, dtype=float)
+        db = self.spec.output_drift_db_per_s * t + self.spec.output_drift_db_per_s2 * t**2
+        return 10.0 ** (db / 10.0)
 
 
 class SimSupply(Instrument):

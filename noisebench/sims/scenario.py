@@ -237,6 +237,11 @@ class NoiseSourceSpec(_Model):
         description="the excess noise output drifts linearly in dB with simulated time "
         "(0: stable); a symmetric hot/cold schedule cancels it to first order",
     )
+    output_drift_db_per_s2: float = Field(
+        default=0.0,
+        description="curvature of the output drift, dB/s^2 (t^2 term: a warming diode; no "
+        "hot/cold schedule cancels it, the sequencer detects and flags it)",
+    )
 
     @model_validator(mode="after")
     def _check(self) -> NoiseSourceSpec:
@@ -277,6 +282,12 @@ class AnalyzerSpec(_Model):
         description="curvature of the receiver gain drift, dB/s^2 (t^2 term: no hot/cold "
         "schedule of two readings each cancels it; the sequencer detects and flags it)",
     )
+    gain_step_db: float = Field(
+        default=0.0,
+        description="a step of the receiver gain at gain_step_at_s (a relay, a connector "
+        "touched, a thermal jump): no schedule cancels it; the sequencer detects and flags it",
+    )
+    gain_step_at_s: float = Field(default=0.0, ge=0, description="simulated time of the step")
     internal_temperature_k: float | None = Field(default=None, gt=0, description="None: ambient")
     min_freq_hz: float = Field(default=9e3, gt=0)
     max_freq_hz: float = Field(default=7.5e9, gt=0)
