@@ -1,7 +1,7 @@
 """Reliability figures: concurrent first opens, fuzzed inputs, kill -9 and resume, table parsing.
 
     python scripts/bench_reliability.py [--rounds 8] [--workers 4] [--fuzz 3400] [--kills 9]
-                                        [--no-postgres]
+                                        [--no-postgres] [--only-crashes]
 
 Prints what one run measured (the numbers in DEVELOPERS.md, "Reliability, measured"):
 
@@ -10,7 +10,8 @@ Prints what one run measured (the numbers in DEVELOPERS.md, "Reliability, measur
 - tracebacks, hangs and lost journal lines among ``--fuzz`` damaged plans, profiles, tables and
   run folders (``tests/_fuzz.py``), and how many impossible settings are still accepted;
 - points lost, duplicated or torn after ``--kills`` SIGKILLs at seeded moments of a 24-point run
-  and a resume (``tests/_crash.py``);
+  and a resume (``tests/_crash.py``), the phases the kills landed in (moments from the measured
+  phases of an uninterrupted run), and the final NF against that run;
 - the time to load a legitimate 10 001-point gain file against a naive baseline (``numpy.loadtxt``
   of the same numbers, which checks nothing), and the time to refuse a 200 000-row ENR table
   (above the row limit) against parsing it whole.
@@ -91,12 +92,18 @@ def fuzzing(cases: int) -> None:
 
 
 def crashes(kills: int) -> None:
-    from _crash import crash_and_resume
+    from collections import Counter
+
+    from _crash import compare_with_reference, crash_and_resume, reference_run
 
     with tempfile.TemporaryDirectory() as tmp:
+        reference = reference_run(Path(tmp) / "reference", points=24)
         start = time.perf_counter()
-        report = crash_and_resume(Path(tmp), kills=kills, seed=2026, points=24)
+        report = crash_and_resume(
+            Path(tmp) / "crash", kills=kills, seed=2026, points=24, timeline=reference
+        )
         elapsed = time.perf_counter() - start
+        agreements = compare_with_reference(report, reference.folder)
     hangs = report.kills.count("hang")
     print(
         f"kill -9:    {kills} kills at seeded moments + resume in {elapsed:.0f} s: "
@@ -104,6 +111,21 @@ def crashes(kills: int) -> None:
         f"{report.torn_lines} torn lines, {hangs} hangs, status {report.status}, "
         f"report {'written' if report.report_written else 'MISSING'}, "
         f"lock {'released' if report.lock_released else 'HELD'}"
+    )
+    phases = Counter(report.phases)
+    print(
+        "  moments from the uninterrupted run's phases ("
+        + ", ".join(f"{k} {v:.2f} s" for k, v in reference.phase_durations_s().items())
+        + "); kills landed in: "
+        + ", ".join(f"{name} {phases[name]}" for name in sorted(phases))
+    )
+    exact = [a for a in agreements if a.from_starter]
+    resumed = [a for a in agreements if not a.from_starter]
+    same = sum(1 for a in exact if (a.nf_db, a.u_nf_db) == (a.nf_ref_db, a.u_ref_db))
+    worst = max((abs(a.z) for a in resumed), default=0.0)
+    print(
+        f"  NF vs the uninterrupted run of the same seed: {same} of {len(exact)} first-process "
+        f"points identical; {len(resumed)} resumed points, largest |z| {worst:.2f}"
     )
     for line in report.kills:
         print(f"  {line}")
@@ -157,7 +179,11 @@ def main() -> None:
     parser.add_argument("--fuzz", type=int, default=3400)
     parser.add_argument("--kills", type=int, default=9)
     parser.add_argument("--no-postgres", action="store_true")
+    parser.add_argument("--only-crashes", action="store_true", help="the kill -9 part only")
     args = parser.parse_args()
+    if args.only_crashes:
+        crashes(args.kills)
+        return
     concurrent_opens(args.rounds, args.workers, not args.no_postgres)
     fuzzing(args.fuzz)
     crashes(args.kills)

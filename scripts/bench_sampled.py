@@ -14,7 +14,8 @@ Prints ratios measured in this run (no thresholds):
 Samples come from a fixed array (the source's own synthesis is not part of the analyzer's host
 time; its cost is printed separately).
 
-Run:  python scripts/bench_sampled.py [--seeds N]   (section 3 takes about 5 s per seed)
+Run:  python scripts/bench_sampled.py [--seeds N] [--first-seed S] [--accuracy-only]
+      (section 3 takes about 5 s per seed)
 """
 
 from __future__ import annotations
@@ -125,7 +126,7 @@ def main() -> None:
     )
 
 
-def accuracy(seeds: int) -> None:
+def accuracy(seeds: int, first_seed: int = 1) -> None:
     import sys
     from pathlib import Path
     from tempfile import TemporaryDirectory
@@ -143,7 +144,10 @@ def accuracy(seeds: int) -> None:
     from noisebench.sims.samples import SimSampleReceiver
 
     freqs = [1e9, 2e9, 3e9, 4e9]
-    print(f"\n3. accuracy over {seeds} seeds x {len(freqs)} points, ideal bench, target 0.05 dB")
+    print(
+        f"\n3. accuracy over {seeds} seeds ({first_seed}..{first_seed + seeds - 1}) x "
+        f"{len(freqs)} points, ideal bench, target 0.05 dB"
+    )
     for method in ("y_factor", "gain"):
         data = {
             "method": method,
@@ -163,7 +167,7 @@ def accuracy(seeds: int) -> None:
         err, u = [], []
         host = 0.0
         with TemporaryDirectory() as tmp:
-            for seed in range(1, seeds + 1):
+            for seed in range(first_seed, first_seed + seeds):
                 sim = ideal_sim(seed, ambient_k=296.0, noise_source__physical_temperature_k=296.0)
                 analyzer = SampledAnalyzer(SimSampleReceiver(sim, seed=seed))
                 session = simulated_session(sim, plan.bench, analyzer=analyzer)
@@ -191,6 +195,9 @@ if __name__ == "__main__":
 
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seeds", type=int, default=10)
+    parser.add_argument("--first-seed", type=int, default=1)
+    parser.add_argument("--accuracy-only", action="store_true", help="skip sections 1 and 2")
     args = parser.parse_args()
-    main()
-    accuracy(args.seeds)
+    if not args.accuracy_only:
+        main()
+    accuracy(args.seeds, args.first_seed)

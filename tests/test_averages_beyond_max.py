@@ -109,3 +109,56 @@ def test_scpi_run_with_a_small_maximum_splits_instead_of_failing(tmp_path):
     assert record.info.status == "complete"
     assert max(counts) <= MAX_PER_TRACE
     assert min(record.points[0].notes["averages_per_reading"].values()) >= 3 * MAX_PER_TRACE
+
+
+def test_forecast_charges_every_split_trace_its_overhead():
+    """The forecast counts the traces a reading takes: hot-cold-cold-hot rounds (two traces
+    per state per round: a pilot of min_averages, then one top-up with the rest) and, above
+    the analyzer's maximum, each trace split into ceil(averages / maximum) traces; every trace
+    pays the analyzer's per-trace time (here the simulated analyzer's settling, 5000 RBW
+    periods = 5 ms at 1 MHz). Same plan and bench, maximum 60 vs none: the same averages, and
+    the forecast time differs by exactly the extra traces x the per-trace time."""
+    from noisebench.running.forecast import forecast_plan
+    from noisebench.sims.forecast_model import SimulatedBenchModel
+
+    plan = make_plan(
+        "y_factor",
+        freqs_hz=(FREQ_HZ,),
+        target=TARGET_U_NF_DB,
+        acquisition={"rbw_hz": 1e6, "max_averages": 100_000, "min_averages": 4},
+    )
+    settle = {"analyzer__retune_settle_rbw_periods": 5000.0}
+    one = forecast_plan(plan, model=SimulatedBenchModel(make_sim(1, **settle))).points[0]
+    split = forecast_plan(
+        plan,
+        model=SimulatedBenchModel(make_sim(1, analyzer__max_averages=MAX_PER_TRACE, **settle)),
+    ).points[0]
+    assert split.averages == one.averages and split.limited_by is None
+    per_state = one.averages // 2  # hot and cold readings
+    top_up_trace = math.ceil((per_state - 4) / 2)  # the top-up's two traces per state
+    assert top_up_trace > MAX_PER_TRACE  # the case: the top-up's traces are split
+    extra_traces = 2 * 2 * (math.ceil(top_up_trace / MAX_PER_TRACE) - 1)  # 2 states x 2 traces
+    per_trace_s = 5000.0 / 1e6
+    assert split.time_s - one.time_s == pytest.approx(extra_traces * per_trace_s, rel=1e-9)
+    assert extra_traces >= 4
+
+
+def test_forecast_takes_the_maximum_from_the_profile_for_real_instruments(tmp_path):
+    """Without a bench model (a real analyzer) the maximum comes from the plan's profile."""
+    from noisebench.running.forecast import _max_per_trace
+
+    text = open(load_profile("generic").source, encoding="utf-8").read()
+    profile = tmp_path / "small.toml"
+    profile.write_text(
+        text.replace("min = 1\nmax = 100000", "min = 1\nmax = 60").replace(
+            'name = "generic"', 'name = "small"'
+        ),
+        encoding="utf-8",
+    )
+    bench = {"analyzer": {"resource": "TCPIP0::127.0.0.1::5025::SOCKET", "profile": str(profile)}}
+    from _sequencer_helpers import plan_dict
+
+    from noisebench.running.plan import parse_plan
+
+    plan = parse_plan(plan_dict("y_factor", bench=bench), check_files=False)
+    assert _max_per_trace(plan, None) == 60

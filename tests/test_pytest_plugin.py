@@ -221,6 +221,74 @@ def test_a_bad_plan_or_bench_fails_setup_with_one_clear_message(inner: pytest.Py
     )
 
 
+DIALOGUE_TESTS = """
+import pytest
+
+from noisebench.drivers import ScpiGenerator
+
+PROFILE = {profile!r}
+GOOD = [
+    ("*IDN?", "Fictional Labs,SG-9,1234,1.0"),
+    ("*CLS", None),
+    ("OUTPut:STATe?", "0"),
+    ("SOURce:FREQuency:CW 1500000000", None),
+    ("SYSTem:ERRor?", '0,"No error"'),
+    ("SOURce:POWer:LEVel {{level}}", None),
+    ("SYSTem:ERRor?", '0,"No error"'),
+    ("SOURce:FREQuency:CW?", "1500000000"),
+    ("SOURce:POWer:LEVel?", "-30.00"),
+    ("SYSTem:ERRor?", '0,"No error"'),
+]
+
+
+def script(level="-30.00", extra=()):
+    return [(c.replace("{{level}}", level), r) for c, r in GOOD] + list(extra)
+
+
+def build(transport):
+    return ScpiGenerator(transport, PROFILE)
+
+
+def test_good_dialogue(nb_dialogue):
+    with nb_dialogue(script(), build) as generator:
+        generator.set_cw(1.5e9, -30.0)
+    assert generator.level_dbm == -30.0
+
+
+def test_wrong_command(nb_dialogue):
+    with nb_dialogue(script(level="-31.00"), build) as generator:
+        generator.set_cw(1.5e9, -30.0)
+
+
+def test_exchange_never_sent(nb_dialogue):
+    with nb_dialogue(script(extra=[("OUTPut:STATe 1", None)]), build) as generator:
+        generator.set_cw(1.5e9, -30.0)
+"""
+
+
+def test_nb_dialogue_passes_a_right_dialogue_and_explains_a_wrong_one(inner: pytest.Pytester):
+    """A user's profile test through the ``nb_dialogue`` fixture (examples/user_tests'
+    generator profile): the scripted exchanges pass; a command the driver does not send and a
+    scripted exchange it never reaches each fail, naming the exchange."""
+    profile = EXAMPLES / "my_generator.toml"
+    inner.makepyfile(test_dialogue=DIALOGUE_TESTS.format(profile=str(profile)))
+    result = _run(inner, "-v")
+    result.assert_outcomes(passed=1, failed=2)
+    result.stdout.fnmatch_lines(
+        [
+            "*test_good_dialogue PASSED*",
+            "*ProtocolError: exchange 5: expected 'SOURce:POWer:LEVel -31.00', the driver "
+            "sent 'SOURce:POWer:LEVel -30.00' (write)*",
+        ]
+    )
+    result.stdout.fnmatch_lines(
+        [
+            "*ProtocolError: 1 scripted exchange(s) never happened, starting at 10: "
+            "'OUTPut:STATe 1'*",
+        ]
+    )
+
+
 # =========================================================================== assert_verdict
 
 

@@ -461,20 +461,63 @@ class PlanForecast:
         return "\n".join(lines)
 
 
+@dataclass(frozen=True)
+class TraceTiming:
+    """Instrument time of a group's traces: ``per_average_s`` per trace average,
+    ``per_trace_s`` once per trace (settling, set-up, read-out), and the most averages one
+    trace can hold (None: no limit; more are taken as several traces,
+    :func:`noisebench.science.trace_combine.split_averages`, each paying ``per_trace_s``)."""
+
+    per_average_s: float
+    per_trace_s: float
+    max_per_trace: int | None = None
+
+    def traces(self, rounds: list[int], traces_per_round: int) -> int:
+        """Traces one reading takes: rounds of ``rounds[i]`` averages, each round
+        ``traces_per_round`` traces sharing them, every trace split at ``max_per_trace``."""
+        from noisebench.science.trace_combine import split_averages
+
+        count = 0
+        for averages in rounds:
+            per_trace = max(1, math.ceil(averages / traces_per_round))
+            count += traces_per_round * len(split_averages(per_trace, self.max_per_trace))
+        return count
+
+    def reading_s(self, rounds: list[int], traces_per_round: int) -> float:
+        """Instrument seconds of one reading (one state) taken in ``rounds``."""
+        traces = self.traces(rounds, traces_per_round)
+        return sum(rounds) * self.per_average_s + traces * self.per_trace_s
+
+
+def _max_per_trace(plan: Plan, analyzer: Any) -> int | None:
+    """Most averages per trace: the analyzer's, else the plan's analyzer profile's."""
+    if analyzer is not None:
+        value = analyzer.max_averages_per_trace
+        return None if value is None else int(value)
+    from noisebench.running.profile_check import _profile_of
+
+    profile = _profile_of(plan)
+    if profile is None or profile.analyzer is None:
+        return None
+    value = profile.analyzer.settings.averages.max
+    return None if value is None else int(value)
+
+
 def _group_settings(
     plan: Plan, group: PointGroup, analyzer: Any
-) -> tuple[AcquisitionSettings, float]:
-    """(applied settings for 1 average, instrument seconds per trace average)."""
+) -> tuple[AcquisitionSettings, TraceTiming]:
+    """(applied settings for 1 average, trace timing)."""
+    most = _max_per_trace(plan, analyzer)
     if analyzer is not None:
         one = analyzer.configure(group.request(1))
         t1 = analyzer.expected_acquisition_time_s()
         analyzer.configure(group.request(11))
         t11 = analyzer.expected_acquisition_time_s()
         per_average = (t11 - t1) / 10.0
-        return one, per_average + max(t1 - per_average, 0.0) / 8.0
+        return one, TraceTiming(per_average, max(t1 - per_average, 0.0), most)
     settings = nominal_settings(group, 1, plan.expect.sweep_time_factor)
     assert settings.sweep_time_s is not None  # nominal_settings always sets it
-    return settings, float(settings.sweep_time_s) + plan.expect.overhead_s / 8.0
+    return settings, TraceTiming(float(settings.sweep_time_s), plan.expect.overhead_s, most)
 
 
 def forecast_plan(plan: Plan, *, model: BenchModel | None = None) -> PlanForecast:
@@ -494,7 +537,7 @@ def forecast_plan(plan: Plan, *, model: BenchModel | None = None) -> PlanForecas
     analyzer = settings_analyzer(plan.bench, model)
     calibrated_ifs: set[float] = set()
     for group in plan_groups(plan.points()):
-        settings, per_average_s = _group_settings(plan, group, analyzer)
+        settings, timing = _group_settings(plan, group, analyzer)
         for f in group.freqs_hz:
             if plan.conversion is not None:
                 priors = _converter_priors(plan, group, f, source_k, model)
@@ -504,7 +547,7 @@ def forecast_plan(plan: Plan, *, model: BenchModel | None = None) -> PlanForecas
                 priors = _declared_priors(plan, f, source_k)
             rel = math.sqrt(band_relative_variance(settings, f, group.band_hz))
             point = _forecast_point(
-                plan, group, f, priors, rel, per_average_s, len(group.freqs_hz), settle_s
+                plan, group, f, priors, rel, timing, len(group.freqs_hz), settle_s
             )
             if plan.conversion is not None:
                 # calibrations are found by IF: a fixed-IF sweep calibrates once
@@ -563,12 +606,46 @@ def _calibration_design_u1(plan: Plan, freq_hz: float, priors: Priors, rel1: flo
     )
 
 
+def _rounds(n: int, policy: Any) -> list[int]:
+    """Averages of each round of readings the sequencer takes: a pilot round of
+    ``min_averages`` and, above it, one top-up round with the rest."""
+    pilot = min(n, int(policy.min_averages))
+    return [pilot] if n <= pilot else [pilot, n - pilot]
+
+
 def _switching_s(plan: Plan, n: int, policy: Any, settle_s: float) -> float:
     """Noise-source settling of hot-cold-cold-hot rounds: a pilot round and one top-up."""
     if plan.method is not Method.Y_FACTOR:
         return 0.0
-    rounds = 1 if n <= policy.min_averages else 2
-    return (2 * rounds + 1) * settle_s
+    return (2 * len(_rounds(n, policy)) + 1) * settle_s
+
+
+def _readings_s(
+    plan: Plan, n: int, states: int, policy: Any, timing: TraceTiming, settle_s: float
+) -> float:
+    """Instrument seconds of ``states`` readings of ``n`` averages each: their averages, one
+    ``per_trace_s`` per trace (hot-cold-cold-hot rounds take two traces per state per round;
+    a trace beyond the analyzer's maximum averages is split into several), and the
+    noise-source settling."""
+    per_round = 2 if plan.method is Method.Y_FACTOR else 1
+    reading = timing.reading_s(_rounds(n, policy), per_round)
+    return states * reading + _switching_s(plan, n, policy, settle_s)
+
+
+def _averages_within(
+    plan: Plan, seconds: float, states: int, policy: Any, timing: TraceTiming, settle_s: float
+) -> int:
+    """Most averages per reading whose readings fit in ``seconds`` (at least 1)."""
+    lo, hi = 1, max(1, int(policy.max_averages))
+    if _readings_s(plan, hi, states, policy, timing, settle_s) <= seconds:
+        return hi
+    while hi - lo > 1:  # time grows with the averages: bisect
+        mid = (lo + hi) // 2
+        if _readings_s(plan, mid, states, policy, timing, settle_s) <= seconds:
+            lo = mid
+        else:
+            hi = mid
+    return lo
 
 
 def _forecast_point(
@@ -577,7 +654,7 @@ def _forecast_point(
     freq_hz: float,
     priors: Priors,
     rel1: float,
-    per_average_s: float,
+    timing: TraceTiming,
     share: int,
     settle_s: float,
 ) -> PointForecast:
@@ -595,11 +672,13 @@ def _forecast_point(
         return PointForecast(freq_hz, 0, 0, 0.0, 0.0, math.inf, target, "no signal")
     n_cal = _clip(math.ceil((u_design1 / (plan.calibration.target_ratio * target)) ** 2), policy)
     n_cal = min(
-        n_cal, max(1, int((policy.time_limit_s * share - settle_s) / (len(cal) * per_average_s)))
+        n_cal,
+        # the calibration's readings within the time limit less one settling
+        _averages_within(
+            plan, policy.time_limit_s * share - settle_s, len(cal), policy, timing, 0.0
+        ),
     )
-    cal_time = (
-        n_cal * len(cal) * per_average_s + _switching_s(plan, n_cal, policy, settle_s)
-    ) / share
+    cal_time = _readings_s(plan, n_cal, len(cal), policy, timing, settle_s) / share
     u_fix = point_uncertainty_db(
         plan.method, freq_hz, priors, dict.fromkeys(cal, rel1 / math.sqrt(n_cal))
     )
@@ -611,10 +690,10 @@ def _forecast_point(
         n = _clip(math.ceil(u_meas1**2 / room), policy)
         if n == policy.max_averages and u_meas1**2 / n > room:
             limited = "max_averages"
-    time_s = (n * len(meas) * per_average_s + _switching_s(plan, n, policy, settle_s)) / share
+    time_s = _readings_s(plan, n, len(meas), policy, timing, settle_s) / share
     if time_s > policy.time_limit_s:
-        n = max(1, int((policy.time_limit_s * share - 5 * settle_s) / (len(meas) * per_average_s)))
-        time_s = (n * len(meas) * per_average_s + _switching_s(plan, n, policy, settle_s)) / share
+        n = _averages_within(plan, policy.time_limit_s * share, len(meas), policy, timing, settle_s)
+        time_s = _readings_s(plan, n, len(meas), policy, timing, settle_s) / share
         limited = limited or "time_limit"
     u = math.sqrt(u_meas1**2 / n + u_fix**2)
     if u <= target * (1 + 1e-9):
