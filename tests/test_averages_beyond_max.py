@@ -14,7 +14,7 @@ from _sequencer_helpers import ideal_sim as make_sim
 from _sequencer_helpers import make_plan
 from scipy.stats import chi2
 
-from noisebench.bench.registry import simulated_session
+from noisebench.bench.registry import simulated_enr_table, simulated_session
 from noisebench.drivers.profile import load_profile
 from noisebench.running.sequencer import run_plan
 from noisebench.sims.scpi_server import SimServer
@@ -84,7 +84,7 @@ def test_scpi_run_with_a_small_maximum_splits_instead_of_failing(tmp_path):
 
         from noisebench.running.plan import parse_plan
 
-        sim.enr_table.to_csv(tmp_path / "enr.csv")
+        simulated_enr_table(sim).to_csv(tmp_path / "enr.csv")
         data = plan_dict("y_factor", freqs_hz=(FREQ_HZ,), target=TARGET_U_NF_DB)
         data["bench"] = {
             "analyzer": {"resource": server.resource("analyzer"), "profile": str(profile)},
@@ -101,10 +101,12 @@ def test_scpi_run_with_a_small_maximum_splits_instead_of_failing(tmp_path):
         data["output"] = {"plots": False, "report": False}
         plan = parse_plan(data)
         record, _ = run_plan(plan, folder=tmp_path / "run")
-        counts = [
-            int(line.split()[-1])
+        counts = [  # program message units: a compound line holds several
+            int(unit.split()[-1])
             for who, line in server.command_log
-            if who == "analyzer" and line.startswith("AVER:COUN ")
+            if who == "analyzer"
+            for unit in (u.strip().lstrip(":") for u in line.split(";"))
+            if unit.startswith("AVER:COUN ")
         ]
     assert record.info.status == "complete"
     assert max(counts) <= MAX_PER_TRACE

@@ -13,6 +13,7 @@ from pathlib import Path
 import pytest
 from _backend_equivalence import assert_same_points
 
+from noisebench.bench.registry import simulated_enr_table
 from noisebench.frontends import cli
 from noisebench.results.store import load_run
 from noisebench.running.progress import NullProgress
@@ -299,6 +300,29 @@ def test_info_never_fails(capsys):
     assert "pyvisa" in out and "VISA back ends" in out and "demo-lna" in out
 
 
+def test_info_prints_the_plausibility_ranges_with_their_sources_when_asked(capsys):
+    from noisebench.science.ranges import RANGES
+
+    code, out, _ = _run(["info", "--no-scan"], capsys)
+    assert code == 0 and "noisebench info --ranges" in out and "physical_temperature_k" not in out
+    code, out, _ = _run(["info", "--no-scan", "--ranges"], capsys)
+    assert code == 0
+    section = out[out.index("plausibility ranges:") :]
+    for key in RANGES:  # every range the plan checks use, once each
+        assert section.count(f"  {key}: plausible ") == 1, key
+    # the values of science/ranges.py as a reader sees them (frequencies in engineering units,
+    # a fixed value once), each with its source and, where one exists, the on-purpose way out
+    assert "physical_temperature_k: plausible 200..500 K; usual 273..330 K" in section
+    assert "frequency_hz: plausible 9 kHz to 1.1 THz; usual 1 MHz to 110 GHz" in section
+    assert "reference_temperature_k: plausible 200..400 K; usual 290 K" in section
+    assert "source: the IRE/IEEE definition of noise figure fixes T0 = 290 K" in section
+    flat = " ".join(section.split())
+    assert "on purpose: for a cryogenic cold load say cryogenic = true in [corrections] " in flat
+    assert "(then refused only below 1 K)" in flat
+    assert flat.count("source: ") == len(RANGES) and flat.count("on purpose: ") == 1
+    assert max(len(line) for line in section.splitlines()) <= 100
+
+
 def test_info_scans_the_network_only_when_asked(capsys, monkeypatch):
     from noisebench.frontends import info
 
@@ -393,7 +417,7 @@ def test_commands_that_drive_hardware_show_the_safety_cautions(capsys, command):
 
 @pytest.mark.parametrize("drive", ["analyzer", "supply"])
 def test_plan_runs_against_the_scpi_simulator_through_pyvisa(sim_server, tmp_path, capsys, drive):
-    sim_server.bench.enr_table.to_csv(tmp_path / "enr.csv")
+    simulated_enr_table(sim_server.bench).to_csv(tmp_path / "enr.csv")
     source = (
         'drive = "analyzer"'
         if drive == "analyzer"

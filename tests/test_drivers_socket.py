@@ -13,6 +13,7 @@ from noisebench.bench.acquisition import (
     SweepMode,
     Trace,
 )
+from noisebench.bench.registry import simulated_enr_table
 from noisebench.drivers import (
     AnalyzerDriveNoiseSource,
     VisaSession,
@@ -246,6 +247,13 @@ def test_pushed_error_queue_entry_names_the_command(analyzer, sim_server):
     assert "INIT:CONT OFF" in sent and "BAND 110000" in sent
 
 
+def _settings_sent(log) -> list[str]:
+    """The non-query program message units of the logged lines (a compound line
+    ``FREQ:CENT 1.2E9;:FREQ:CENT?;:SYST:ERR?`` holds one setting and two queries)."""
+    units = (unit.strip().lstrip(":") for _, line in log for unit in line.split(";"))
+    return [unit for unit in units if unit and not unit.endswith("?")]
+
+
 def test_settings_cache_sends_only_what_changed_and_everything_after_a_reconnect(
     analyzer, sim_server
 ):
@@ -256,13 +264,13 @@ def test_settings_cache_sends_only_what_changed_and_everything_after_a_reconnect
     moved = REQUEST.model_copy(update={"center_hz": 1.2e9})
     settings = analyzer.configure(moved)
     assert settings.center_hz == pytest.approx(1.2e9)
-    sent = [line for _, line in sim_server.command_log[start:] if not line.endswith("?")]
+    sent = _settings_sent(sim_server.command_log[start:])
     assert len(sent) == 1 and sent[0].startswith("FREQ:CENT")  # one setting written
     sim_server.faults.drop_after_commands = 1  # the connection drops: a reconnect follows
     assert analyzer.acquire_trace().values.size == 401
     after = len(sim_server.command_log)
     analyzer.configure(REQUEST)
-    resent = [line for _, line in sim_server.command_log[after:] if not line.endswith("?")]
+    resent = _settings_sent(sim_server.command_log[after:])
     assert "BAND 110000" in resent and "INIT:CONT OFF" in resent  # the cache was dropped
 
 
@@ -297,7 +305,7 @@ def test_supply_driven_source_switches_and_a_stuck_one_is_caught(analyzer, sim_s
         current_limit_a=0.05,
         max_drive_v=32.0,
         settle_time_s=0.1,
-        enr_table=sim_server.bench.enr_table,
+        enr_table=simulated_enr_table(sim_server.bench),
         min_current_a=0.001,
         timeout_s=TIMEOUT_S,
     )

@@ -489,7 +489,9 @@ def test_range_table_is_complete_and_sourced():
             assert spec.refuse_below <= spec.usual_low, key
         if spec.refuse_above is not None and spec.usual_high is not None:
             assert spec.usual_high <= spec.refuse_above, key
-    assert len(describe_ranges()) == len(RANGES)
+    rows = describe_ranges()
+    assert [row[0] for row in rows] == list(RANGES)
+    assert ("reference_temperature_k", "200..400 K", "290 K") == rows[1][:3]
     # the liquid-nitrogen cold load: refused as a typo, accepted when stated on purpose
     with pytest.raises(InputError, match="cryogenic = true"):
         check_range("physical_temperature_k", "cold_temperature_k", 77.0)

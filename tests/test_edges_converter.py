@@ -130,3 +130,82 @@ def test_a_plausible_image_rejection_is_accepted(value):
     plan = parse_plan(data)
     assert plan.conversion is not None
     assert math.isclose(float(plan.conversion.image_rejection_db), value)
+
+
+# ----------------------------------------------------------------- SSB / DSB limits, ENR(IF)
+
+
+def _converter_point():
+    """A working converter (Te_SSB 600 K) read by the gain method: an SSB figure."""
+    ts = 296.0
+    n_sa = K * 1900.0
+    gs = 10 ** (GS_DB / 10)
+    return converter_gain_method_point(
+        density(K * gs * (ts + 600.0) + n_sa, 0.002),
+        GS_DB,
+        rf_hz=RF,
+        lo_hz=LO,
+        image_rejection_db=None,
+        floor=density(K * ts + n_sa, 0.002),
+        source_temperature_k=ts,
+        floor_temperature_k=ts,
+    )
+
+
+def _converter_plan(tmp_path, **changes):
+    from test_conversion_run import BASE
+
+    data = copy.deepcopy(BASE)
+    data.update(changes)
+    return parse_plan(data, base_dir=tmp_path)
+
+
+def test_a_converters_nf_limit_must_say_ssb_or_dsb(tmp_path):
+    # a DSB figure is up to 3.01 dB below the SSB one (10 log10 2, IRE/IEEE multiple-response
+    # definitions, docs/references.md): judged against a limit meant for the other, a unit
+    # passes or fails by the definition, not by its noise
+    band = {"start_hz": 2e9, "stop_hz": 3e9, "nf_max_db": 12.0}
+    with pytest.raises(InputError) as info:
+        _converter_plan(tmp_path, limits={"bands": [band]})
+    assert "limits.nf_type" in str(info.value) and 'nf_type = "ssb" or "dsb"' in str(info.value)
+    with pytest.raises(InputError) as info:
+        _converter_plan(tmp_path, limits={"bands": [band], "nf_type": "dsb"})
+    text = str(info.value)
+    assert "limits.nf_type: the limit bounds the DSB figure but the plan measures the SSB" in text
+    assert 'conversion.nf_type = "dsb"' in text
+    plan = _converter_plan(tmp_path, limits={"bands": [band], "nf_type": "ssb"})
+    assert plan.limits is not None and plan.limits.nf_type == "ssb"
+    # a gain-only mask needs no nf_type; an amplifier's mask may carry one (one response)
+    _converter_plan(tmp_path, limits={"bands": [{**band, "nf_max_db": None, "gain_min_db": 5}]})
+
+
+def test_a_converter_point_is_never_judged_against_a_limit_of_the_other_figure():
+    from noisebench.science.limits import LimitMask, Verdict
+
+    point = _converter_point()  # SSB figure
+    assert point.conversion is not None and point.conversion.nf_type == "ssb"
+    band = {"start_hz": 5e9, "stop_hz": 7e9}
+    for nf_type, expected_note in ((None, "does not say SSB or DSB"), ("dsb", "bounds the DSB")):
+        for limit in (point.nf_db + 10.0, 0.5):  # a clear pass, a clear fail
+            mask = LimitMask(bands=[{**band, "nf_max_db": limit}], nf_type=nf_type)
+            verdict = mask.judge([point])
+            (check,) = verdict.points[0].checks
+            assert check.verdict is Verdict.INDETERMINATE
+            assert expected_note in (check.note or "")
+            assert verdict.unit is Verdict.INDETERMINATE
+    passing = LimitMask(bands=[{**band, "nf_max_db": point.nf_db + 10.0}], nf_type="ssb")
+    assert passing.judge([point]).unit is Verdict.PASS
+
+
+def test_the_enr_table_must_cover_the_if_where_the_analyzer_is_calibrated(tmp_path):
+    # the converter's analyzer is calibrated at the IF with ENR(IF); a table over the RF
+    # and the image only would leave ENR(IF) to extrapolation
+    table = tmp_path / "enr_rf_only.csv"
+    table.write_text(
+        "freq_hz,enr_db,u_enr_db\n1.0e9,15.2,0.1\n2.0e9,15.1,0.1\n3.0e9,15.0,0.1\n",
+        encoding="utf-8",
+    )
+    with pytest.raises(InputError) as info:
+        _converter_plan(tmp_path, enr={"table": str(table)})
+    text = str(info.value)
+    assert "enr.table: does not cover the IF 400 MHz, where the analyzer is calibrated" in text

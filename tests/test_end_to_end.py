@@ -31,7 +31,7 @@ from _backend_equivalence import assert_same_points
 from _sequencer_helpers import IDEAL_OVERRIDES
 from scipy.stats import norm
 
-from noisebench.bench.registry import simulated_session
+from noisebench.bench.registry import simulated_enr_table, simulated_session
 from noisebench.frontends import cli
 from noisebench.results.store import (
     JOURNAL_FILE,
@@ -184,7 +184,8 @@ def runs(request, tmp_path_factory) -> BackEndRuns:
     method = request.param
     folder = tmp_path_factory.mktemp(f"e2e_{method}")
     enr_csv = folder / "enr.csv"
-    ideal_bench(0).enr_table.to_csv(enr_csv)  # no calibration error: the same for every seed
+    # no calibration error: the same table for every seed
+    simulated_enr_table(ideal_bench(0)).to_csv(enr_csv)
     local = parse_plan(plan_data(method, in_process_bench_section(method), enr_csv))
     records = []
     for seed in (SEED_IN_PROCESS, SEED_SCPI):
@@ -290,7 +291,7 @@ no KeyboardInterrupt handler (Python docs, signal module)."""
 def write_scpi_plan(folder: Path, server: SimServer, freqs_hz, target: float) -> Path:
     """A Y-factor plan (TOML, as a user writes it) on the SCPI simulator's instruments."""
     enr_csv = folder / "enr.csv"
-    server.bench.enr_table.to_csv(enr_csv)
+    simulated_enr_table(server.bench).to_csv(enr_csv)
     plan = folder / "plan.toml"
     plan.write_text(
         f"""\

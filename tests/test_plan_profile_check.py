@@ -9,6 +9,7 @@ from pathlib import Path
 from _sequencer_helpers import IDEAL_OVERRIDES
 from scipy.stats import norm
 
+from noisebench.bench.registry import simulated_enr_table
 from noisebench.frontends.cli import main
 from noisebench.results.store import load_run
 from noisebench.sims.bench import SimulatedBench
@@ -121,7 +122,7 @@ def test_a_y_factor_run_on_the_second_dialect_needs_no_workaround(tmp_path, caps
             extra=f"[corrections]\ninput_loss = 0.3\nsource_temperature_k = "
             f"{BENCH_TEMPERATURE_K}\n[expect]\ndut_gain_db = 20.0\n",
         )
-        bench.enr_table.to_csv(tmp_path / "enr.csv")
+        simulated_enr_table(bench).to_csv(tmp_path / "enr.csv")
         code, out, err = run_cli(["run", str(plan), "--out", str(tmp_path / "run")], capsys)
         sent = [line for who, line in server.command_log if who == "analyzer"]
         truth = bench.truth([1.0e9, 1.5e9])

@@ -11,6 +11,7 @@ from pathlib import Path
 import pytest
 
 from noisebench.bench.acquisition import AcquisitionRequest
+from noisebench.bench.registry import simulated_enr_table
 from noisebench.drivers import open_analyzer, scpi_channel
 from noisebench.errors import CommunicationError
 from noisebench.frontends import cli
@@ -103,7 +104,7 @@ def test_outage_longer_than_the_window_raises_after_the_window(server, monkeypat
 
 
 def write_plan(folder: Path, server: SimServer) -> Path:
-    server.bench.enr_table.to_csv(folder / "enr.csv")
+    simulated_enr_table(server.bench).to_csv(folder / "enr.csv")
     plan = folder / "plan.toml"
     plan.write_text(
         f"""\

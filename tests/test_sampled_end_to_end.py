@@ -21,7 +21,7 @@ pytest.importorskip("sigmf")
 
 from _sequencer_helpers import IDEAL_INPUT_LOSS_DB, IDEAL_OUTPUT_LOSS_DB, ideal_sim  # noqa: E402
 
-from noisebench.bench.registry import simulated_session  # noqa: E402
+from noisebench.bench.registry import simulated_enr_table, simulated_session  # noqa: E402
 from noisebench.running.plan import parse_plan  # noqa: E402
 from noisebench.running.sequencer import run_plan  # noqa: E402
 from noisebench.sampled.analyzer import SampledAnalyzer  # noqa: E402
@@ -160,7 +160,7 @@ def recordings(tmp_path_factory):
     rx = SimSampleReceiver(sim, seed=1)
     scale = calibrate_tone_scale(rx, 1.5e9, -60.0)
     record_sigmf(rx, folder / "recs", FREQS_HZ, samples_per_state=600_000, scale=scale)
-    sim.enr_table.to_csv(folder / "enr.csv")
+    simulated_enr_table(sim).to_csv(folder / "enr.csv")
     scale.save(folder / "scale.json")
     # the DUT gain and output cable loss as a network analyzer would have measured them
     truth = sim.truth(list(FREQS_HZ))

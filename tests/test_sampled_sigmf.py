@@ -152,3 +152,53 @@ def test_band_outside_the_recordings_is_refused(tmp_path):
         analyzer.configure(
             AcquisitionRequest(center_hz=2e9, span_hz=200e3, rbw_hz=10e3, averages=5)
         )
+
+
+def _stamp_captures(folder, seconds_apart: float | None, rate: float | None = None):
+    """Give the recording's captures core:datetime stamps (SigMF core) and optionally another
+    core:sample_rate; returns the meta file."""
+    (meta,) = folder.glob("*.sigmf-meta")
+    data = json.loads(meta.read_text())
+    if seconds_apart is not None:
+        for i, capture in enumerate(data["captures"]):
+            capture["core:datetime"] = f"2026-12-05T09:00:{i * seconds_apart:09.6f}Z"
+    if rate is not None:
+        data["global"]["core:sample_rate"] = rate
+    meta.write_text(json.dumps(data))
+    return meta
+
+
+def test_a_sample_rate_the_capture_times_contradict_is_refused(tmp_path):
+    # two captures of 5000 samples at a declared 1 MS/s last 5 ms each; stamped 2.5 ms apart
+    # the receiver really ran at 2 MS/s (at the declared rate every frequency would read
+    # half its value and the noise density twice its value: a wrong number, not a refusal)
+    blocks = [(_block(n=5000, center=c), "through", "cold") for c in (1e9, 1.001e9)]
+    write_recording(tmp_path / "r", blocks)
+    _stamp_captures(tmp_path, 0.0025)
+    with pytest.raises(InputError) as info:
+        SigmfRecordings(tmp_path)
+    text = str(info.value)
+    assert text.startswith("core:sample_rate: ")
+    assert "capture 0 would last 0.005 s, but the next one starts 0.0025 s later" in text
+    # stamped 10 ms apart (a retuning gap): consistent, accepted
+    _stamp_captures(tmp_path, 0.010)
+    assert SigmfRecordings(tmp_path).sample_rate_hz == 1e6
+
+
+@pytest.mark.parametrize("rate", [1.0, 1e12])
+def test_a_sample_rate_in_the_wrong_unit_is_refused(tmp_path, rate):
+    write_recording(tmp_path / "r", [(_block(), "through", "cold")])
+    _stamp_captures(tmp_path, None, rate=rate)
+    with pytest.raises(InputError, match=r"core:sample_rate: .* outside the 1000\.\.1e\+11"):
+        SigmfRecordings(tmp_path)
+
+
+def test_a_capture_shorter_than_one_segment_names_the_minimum(tmp_path):
+    # 1 kHz RBW at 1 MS/s needs a Hann segment of about 1.5 x 1000 samples (ENBW 1.5 bins,
+    # Harris 1978); a 300-sample recording cannot hold one and says how many it needs
+    write_recording(tmp_path / "r", [(_block(n=300), "through", "cold")])
+    rec = SigmfRecordings(tmp_path, state=BenchState(connection="through", hot=False))
+    analyzer = SampledAnalyzer(rec)
+    analyzer.configure(AcquisitionRequest(center_hz=1e9, span_hz=200e3, rbw_hz=1e3, averages=5))
+    with pytest.raises(InputError, match=r"300 samples are fewer than one segment of 14\d\d"):
+        analyzer.acquire_trace()

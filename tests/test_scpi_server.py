@@ -574,7 +574,12 @@ def test_other_clients_are_served_while_one_waits(slow_server, connect):
     waiting, other = connect(slow_server), connect(slow_server)
     waiting.write("SWE:POIN 11;:INIT;*OPC?")  # blocks until the acquisition ends
     assert other.query("*IDN?").startswith("noisebench,")
-    assert other.query("STAT:OPER:COND?") == "16"
+    # the two connections are served by separate threads: wait (generously) until the server
+    # has taken the first client's INIT, instead of racing it
+    deadline = time.monotonic() + TIMEOUT_S
+    while other.query("STAT:OPER:COND?") != "16":
+        assert time.monotonic() < deadline, "the first client's INIT was never taken"
+        time.sleep(0.01)
     # short timeout: the reply waits for a 1e4x-slowed acquisition, so it cannot come early
     waiting.sock.settimeout(0.05)
     with pytest.raises(TimeoutError):  # still waiting for *OPC?

@@ -116,10 +116,19 @@ def test_calibration_expires_after_max_age(tmp_path):
     session = ideal_session(plan)
     _run(plan, session, tmp_path, "a", calibrations=store)
     entry = store.entries[0]
+    # on the same simulated bench the age is counted on its clock: an hour and a second of
+    # simulated time since the calibration
+    assert entry.measured_at_clock is not None
+    clock_id, at_s = entry.measured_at_clock
+    store.entries[0] = entry.model_copy(update={"measured_at_clock": (clock_id, at_s - 3601)})
+    again, _ = _run(plan, session, tmp_path, "b", calibrations=store)
+    assert again.calibrations_measured == 1
+    # on another bench session (another clock) the wall time counts: a year ago
+    store = CalibrationStore([entry])
     store.entries[0] = entry.model_copy(
         update={"measured_at": entry.measured_at.replace(year=entry.measured_at.year - 1)}
     )
-    again, _ = _run(plan, session, tmp_path, "b", calibrations=store)
+    again, _ = _run(plan, ideal_session(plan), tmp_path, "c", calibrations=store)
     assert again.calibrations_measured == 1
 
 

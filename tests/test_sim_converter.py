@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 
 from noisebench.bench.acquisition import AcquisitionRequest
+from noisebench.bench.registry import simulated_enr_table
 from noisebench.science.estimator import estimate_density
 from noisebench.science.methods import calibrate_point
 from noisebench.science.methods.converter import (
@@ -136,7 +137,7 @@ def test_both_methods_measure_the_simulated_converter_within_their_uncertainty()
         AcquisitionRequest(center_hz=IF, span_hz=20e6, rbw_hz=1e6, averages=400, attenuation_db=0)
     )
     tr = bench.converter_truth(RF)
-    table = bench.enr_table
+    table = simulated_enr_table(bench)
     bench.set_path("through")
     cal = calibrate_point(
         *_hot_cold(bench, IF), float(table.at(IF).enr_db), cold_temperature_k=tr["cold_k"]

@@ -45,11 +45,6 @@ FORBIDDEN = (
 
 # (simulator module, imported module) -> why the import cannot make an error cancel.
 ALLOWED = {
-    ("bench.py", "noisebench.science.enr"): (
-        "the bench hands its noise source's calibration table to the core in the core's own "
-        "data type (BenchSession.enr_table); the simulator never evaluates an EnrTable: its true "
-        "ENR comes from models.NoiseSourceModel"
-    ),
     ("samples.py", "noisebench.sampled.source"): (
         "the sampled back end's interface: the capture request and sample-block data types the "
         "simulated receiver must accept and return"

@@ -282,17 +282,35 @@ def test_hot_temperature_uses_enr_over_t0_plus_physical_temperature():
 
 def test_operator_enr_table_differs_within_twice_its_uncertainty():
     bench = SimulatedBench.from_scenario("demo-lna", seed=3)
-    table = bench.enr_table
+    sheet = bench.enr_calibration
     true = np.asarray(bench.scenario.noise_source.enr_db)
-    err = np.asarray(table.enr_db) - true
-    u = np.asarray(table.u_enr_db)
+    err = np.asarray(sheet.enr_db) - true
+    u = np.asarray(sheet.u_enr_db)
     assert np.all(np.abs(err) <= 2 * u + 1e-4) and np.any(np.abs(err) > 0.01)
-    assert table.metadata.serial == bench.scenario.noise_source.serial
-    again = SimulatedBench.from_scenario("demo-lna", seed=3).enr_table
-    assert again.enr_db == table.enr_db  # deterministic from the seed
+    assert sheet.serial == bench.scenario.noise_source.serial
+    again = SimulatedBench.from_scenario("demo-lna", seed=3).enr_calibration
+    assert again.enr_db == sheet.enr_db  # deterministic from the seed
     assert SimulatedBench.from_scenario(
         "demo-lna", seed=3, ideal=True
-    ).enr_table.enr_db == pytest.approx(true.tolist(), abs=1e-4)
+    ).enr_calibration.enr_db == pytest.approx(true.tolist(), abs=1e-4)
+
+
+def test_the_composition_root_turns_the_calibration_sheet_into_the_cores_enr_table():
+    """The simulator hands plain numbers; bench/registry.py builds the core's EnrTable from
+    them, and the session of a simulated bench carries that table (nothing else reads it
+    from the simulator)."""
+    from noisebench.bench.registry import simulated_enr_table, simulated_session
+
+    bench = SimulatedBench.from_scenario("demo-lna", seed=3)
+    sheet, table = bench.enr_calibration, simulated_enr_table(bench)
+    assert table.freq_hz == list(sheet.freq_hz) and table.enr_db == list(sheet.enr_db)
+    assert table.u_enr_db == list(sheet.u_enr_db)
+    assert table.metadata.serial == sheet.serial == bench.scenario.noise_source.serial
+    assert table.metadata.enr_reference == "t0"
+    assert "demo-lna" in (table.metadata.description or "")
+    f = sheet.freq_hz[1]
+    assert float(table.at(f).enr_db) == pytest.approx(sheet.enr_db[1], abs=1e-12)
+    assert simulated_session(bench).enr_table == table
 
 
 def test_displayed_densities_combine_by_friis():
@@ -834,7 +852,7 @@ def test_replace_dut_swaps_only_the_dut():
     bench.analyzer.configure(request(averages=2))
     bench.set_path(Path.THROUGH)
     bench.analyzer.acquire_trace()
-    clock, enr, settings = bench.clock.now_s, bench.enr_table, bench.analyzer.settings
+    clock, enr, settings = bench.clock.now_s, bench.enr_calibration, bench.analyzer.settings
     through = bench.truth(2e9)["displayed_through_cold_w_per_hz"][0]
     dut = bench.scenario.dut
     other = dut.model_copy(
@@ -853,7 +871,7 @@ def test_replace_dut_swaps_only_the_dut():
         and bench.scenario.analyzer == load_scenario("demo-lna").analyzer
     )
     # nothing else moved: time, the operator's ENR table, settings, path, the other paths
-    assert bench.clock.now_s == clock and bench.enr_table == enr
+    assert bench.clock.now_s == clock and bench.enr_calibration == enr
     assert bench.analyzer.settings == settings and bench.path is Path.THROUGH
     assert truth["displayed_through_cold_w_per_hz"][0] == through
     with pytest.raises(InputError) as err:

@@ -395,6 +395,7 @@ def test_sample_detector_behind_a_narrow_video_filter_is_estimated_without_bias(
 
 # ---------------------------------------------------------------- both methods on the bench -
 
+from noisebench.bench.registry import simulated_enr_table  # noqa: E402
 from noisebench.science.estimator import estimate_density  # noqa: E402
 from noisebench.science.methods import calibrate_point, gain_method_point, y_factor_point  # noqa: E402
 
@@ -443,7 +444,7 @@ class Readings:
 
     def y_factor(self):
         t, tc = self.truth, self.bench.noise_source.cold_temperature_k
-        enr = float(self.bench.enr_table.at(self.freq_hz).enr_db)
+        enr = float(simulated_enr_table(self.bench).at(self.freq_hz).enr_db)
         cal = calibrate_point(self.hot_cal, self.cold_cal, enr, cold_temperature_k=tc)
         return y_factor_point(
             self.hot,

@@ -119,6 +119,10 @@ def _instrument(line: str):
         return ieee_block(NEWLINE_VALUES)[:-1] + b"\x00\x00\n"
     if line == "BAD?":
         return b"#X123456\n"
+    if line == "TRAC?;:SYST:ERR?":  # a compound line: the block, ';', the error entry
+        return ieee_block(NEWLINE_VALUES)[:-1] + b';-221,"Settings conflict"\n'
+    if line == "FAIL?;:SYST:ERR?":  # the failed query sent no reply unit: only the entry
+        return b'-230,"Data corrupt or stale"\n'
     if line == "SILENT?":
         return None
     if line == "BYE":
@@ -256,6 +260,17 @@ def test_truncated_block_is_a_block_error_and_session_recovers(session):
         session.query_binary("SHORT?")
     session.recover()
     assert np.array_equal(session.query_binary("TRAC?"), NEWLINE_VALUES.astype(float))
+
+
+def test_block_then_text_reads_both_reply_units_of_a_compound_line(session):
+    assert session.reads_block_then_text
+    values, text = session.query_block_then_text("TRAC?;:SYST:ERR?", timeout_s=5.0)
+    assert values is not None and np.array_equal(values, NEWLINE_VALUES.astype(float))
+    assert text == '-221,"Settings conflict"'
+    values, text = session.query_block_then_text("FAIL?;:SYST:ERR?")
+    assert values is None and text == '-230,"Data corrupt or stale"'
+    assert session.query("*IDN?") == "test,peer,0,1"  # nothing left over in the stream
+    assert session.timeout_s == SESSION_TIMEOUT_S  # the block's limit changed no VISA timeout
 
 
 def test_block_longer_than_header_and_malformed_header_are_block_errors(session):

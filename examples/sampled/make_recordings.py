@@ -15,6 +15,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from noisebench.bench.registry import simulated_enr_table
 from noisebench.sims.bench import SimulatedBench
 from noisebench.sims.samples import SimSampleReceiver, calibrate_tone_scale, record_sigmf
 
@@ -37,7 +38,7 @@ def main() -> None:
         scale=scale,
         datatype="ci16_le",
     )
-    sim.enr_table.to_csv(HERE / "enr.csv")
+    simulated_enr_table(sim).to_csv(HERE / "enr.csv")
     truth = sim.truth(FREQS_HZ)
     rows = [f"{f:.6g},{g:.4f},0.05" for f, g in zip(FREQS_HZ, truth["gain_db"], strict=True)]
     (HERE / "dut_gain.csv").write_text(

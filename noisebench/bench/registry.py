@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import logging
 import time
+import uuid
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from enum import Enum
@@ -31,6 +32,7 @@ from noisebench.errors import InputError, NoisebenchError
 
 if TYPE_CHECKING:  # annotations only: the bench layer does not import the running layer
     from noisebench.running.plan import BenchSection
+    from noisebench.science.enr import EnrTable
 
 logger = logging.getLogger(__name__)
 
@@ -128,18 +130,21 @@ class BenchSession:
     ``kind`` is ``"simulated"``, ``"scpi"``, ``"sampled"`` (a live sample source) or
     ``"recorded"`` (SigMF recordings: nothing is driven). What a back end supplies besides the
     instruments is explicit: ``enr_table``, the noise source's own ENR table when the bench
-    knows it (used when the plan names none); ``clock``, the instrument time in seconds when the
-    bench keeps one (None: wall time); ``wait``, how a settling wait passes (the simulated bench
-    advances its clock; None: a real sleep). ``sim`` is the simulator object itself, for the front
-    ends and tests that compare with its truth; the core never reads it.
+    knows it (used when the plan names none; for the simulated bench this module builds it
+    from the simulator's plain numbers, :func:`simulated_enr_table`); ``clock``, the
+    instrument time in seconds when the bench keeps one (None: wall time); ``wait``, how a
+    settling wait passes (the simulated bench advances its clock; None: a real sleep). ``sim``
+    is the simulator object itself, for the front ends and tests that compare with its truth;
+    the core never reads it.
     """
 
     bench: Bench
     kind: str
     resources: dict[str, str]
     _move: Callable[[Connection], None]
-    enr_table: Any = None
+    enr_table: EnrTable | None = None
     clock: Callable[[], float] | None = None
+    clock_id: str = field(default_factory=lambda: uuid.uuid4().hex)
     wait: Callable[[float], Any] | None = None
     sim: Any = None
     scpi_simulator: bool = False
@@ -161,6 +166,13 @@ class BenchSession:
     def real_hardware(self) -> bool:
         """True unless every instrument is simulated (in process or over SCPI)."""
         return self.kind not in ("simulated", "recorded") and not self.scpi_simulator
+
+    def clock_reading(self) -> tuple[str, float] | None:
+        """(this session's clock id, instrument time) when the bench keeps a clock: a time
+        from another session's clock is not comparable (a new simulated bench starts at 0)."""
+        if self.clock is None:
+            return None
+        return (self.clock_id, float(self.clock()))
 
     def instrument_time_s(self) -> float | None:
         """Simulated instrument clock (None on real instruments: use wall time)."""
@@ -258,10 +270,31 @@ def simulated_session(
         kind="simulated",
         resources=resources,
         _move=lambda target: sim.set_path(paths[target]),
-        enr_table=sim.enr_table,
+        enr_table=simulated_enr_table(sim),
         clock=lambda: sim.clock.now_s,
         wait=sim.clock.advance,
         sim=sim,
+    )
+
+
+def simulated_enr_table(sim: Any) -> EnrTable:
+    """The simulated noise source's calibration sheet (``sim.enr_calibration``, plain numbers)
+    as the core's :class:`~noisebench.science.enr.EnrTable`: what an operator would load from
+    the source's CSV. Built here, in the composition root, so the simulator imports no
+    measurement code (``tests/test_sim_independence.py``)."""
+    from noisebench.science.enr import EnrMetadata, EnrTable
+
+    cal = sim.enr_calibration
+    return EnrTable(
+        freq_hz=list(cal.freq_hz),
+        enr_db=list(cal.enr_db),
+        u_enr_db=None if cal.u_enr_db is None else list(cal.u_enr_db),
+        metadata=EnrMetadata(
+            serial=cal.serial,
+            nominal_drive_v=cal.nominal_drive_v,
+            enr_reference=cal.enr_reference,
+            description=cal.description,
+        ),
     )
 
 

@@ -23,9 +23,10 @@ import logging
 import math
 import time
 from collections.abc import Callable
+from datetime import datetime, timezone
 from enum import Enum
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeVar
 
 import numpy as np
 from pydantic import ValidationError
@@ -46,6 +47,7 @@ from noisebench.bench.instruments import Analyzer
 from noisebench.errors import (
     CommunicationError,
     InputError,
+    InstrumentError,
     InstrumentTimeout,
     MeasurementError,
     NoisebenchError,
@@ -60,10 +62,11 @@ from .profile import (
     ReplyError,
     load_profile,
 )
-from .scpi_channel import ScpiChannel
+from .scpi_channel import ScpiChannel, compound_line
 from .transport import BlockError, Transport, parse_ascii_values
 
 logger = logging.getLogger(__name__)
+T = TypeVar("T")
 
 SIMULATOR_MAKER = "noisebench"
 """Manufacturer field of the simulated instruments' ``*IDN?`` reply."""
@@ -92,7 +95,12 @@ def settings_differences(
 
 PARTIAL_READBACK = frozenset({"center_hz", "averages"})
 """Settings whose change moves no other setting: after sending only these, only these are
-read back (retuning between point groups, a new average count)."""
+read back (retuning between point groups, a new average count), and only once per value:
+what the instrument applied for a command is kept (``_verified``) until the next full
+read-back, error or reconnect, so a sweep revisiting its groups reads each centre back once."""
+
+_READ_WITH = {"center_hz": ("center_hz", "span_hz"), "averages": ("averages",)}
+"""The applied fields a partial read-back of each setting reports."""
 
 
 class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
@@ -122,6 +130,12 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         self._request: AcquisitionRequest | None = None
         self._format_sent: str | None = None
         self._sent: dict[str, str] = {}  # setting name -> last command applied (the cache)
+        # (setting name, command) -> the applied fields read back after it (PARTIAL_READBACK)
+        self._verified: dict[tuple[str, str], dict[str, Any]] = {}
+        self._deferred_names: set[str] = set()  # settings held for the next compound line
+        self._started = False  # an acquisition start was accepted alone since connecting
+        self._named: dict[tuple, list[tuple[str, str]]] = {}  # request -> its commands
+        self._predicted: dict[tuple, AcquisitionRequest] = {}  # request -> as applied
         self._noise_drive: bool | None = None
         self._sim_path: str | None = None
         self._block_failures = 0
@@ -164,7 +178,12 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
     def predict(self, request: AcquisitionRequest) -> AcquisitionRequest:
         """``request`` with RBW, VBW, points, averages, attenuation, reference level and sweep
         time as the profile's quantisation rules say the instrument applies them."""
-        return predict_request(self.spec, request)
+        key = _request_key(request)
+        predicted = self._predicted.get(key)
+        if predicted is None:
+            predicted = predict_request(self.spec, request)
+            _remember(self._predicted, key, predicted)
+        return predicted
 
     def __repr__(self) -> str:
         return (
@@ -190,43 +209,130 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
                 # computed per attempt: a reconnect in between clears the cache (the
                 # instrument may have rebooted), and then everything is sent and read back
                 changed = [(n, c) for n, c in named if self._sent.get(n) != c]
+                known = self._known_settings(previous if self._sent else None, changed)
+                if known is not None and self._channel.compound:
+                    # applied values known: the commands ride with the acquisition start
+                    self._channel.defer(changed)
+                    self._deferred_names.update(n for n, _ in changed)
+                    return known
                 return self._apply(
                     [c for _, c in changed],
                     request,
                     previous if self._sent else None,
-                    {n for n, _ in changed},
+                    changed,
                 )
 
             try:
-                settings = self._channel.run("configure", attempt)
+                settings = self._run("configure", attempt)
             except BaseException:
-                self._sent.clear()  # state unknown: the next configure sends everything
+                self._forget_state()  # state unknown: the next configure sends everything
                 raise
             self._sent.update(named)
             self._request, self._settings = request, settings
             return settings
 
-    def _read_changed(
-        self, previous: AcquisitionSettings | None, names: set[str]
+    def _run(self, what: str, operation: Callable[[], T]) -> T:
+        """:meth:`ScpiChannel.run`; an instrument error (a held setting refused, or the
+        operation itself) leaves the instrument's state unknown: forget the caches."""
+        try:
+            return self._channel.run(what, operation)
+        except InstrumentError:
+            self._forget_state()
+            raise
+
+    def _forget_state(self) -> None:
+        """After a failure the instrument's state is unknown: the next configure sends every
+        setting and reads every one back, and the next acquisition sends its parts alone."""
+        self._started = False
+        self._sent.clear()
+        self._verified.clear()
+        self._deferred_names.clear()
+        self._channel.take_deferred()
+
+    def _known_settings(
+        self, previous: AcquisitionSettings | None, changed: list[tuple[str, str]]
     ) -> AcquisitionSettings | None:
-        """Read back only what was sent, when that cannot move any other setting: a new
-        centre (retuning between point groups) or a new average count. None: read all."""
+        """The applied settings after ``changed``, when every changed command is one whose
+        read-back is already known (``_verified``); None: it must be sent and read back."""
+        if previous is None:
+            return None
+        update: dict[str, Any] = {}
+        for name, command in changed:
+            known = self._verified.get((name, command))
+            if known is None:
+                return None
+            update.update(known)
+        return previous.model_copy(update=update) if update else previous
+
+    def _read_changed(
+        self,
+        previous: AcquisitionSettings | None,
+        changed: list[tuple[str, str]],
+        commands_pending: list[str],
+    ) -> tuple[AcquisitionSettings, dict[tuple[str, str], dict[str, Any]]] | None:
+        """Send ``commands_pending`` and read back only what was sent, when that cannot move
+        any other setting: a new centre (retuning between point groups) or a new average
+        count, each once per value (``_verified``); with compound lines the commands, the
+        queries and the error query go in one line. Returns the settings and the new
+        read-backs to keep once the error queue is clear; None: nothing sent, read all."""
         s = self.spec.settings
+        names = {n for n, _ in changed}
         if previous is None or not names or not names <= PARTIAL_READBACK:
             return None
         if "center_hz" in names and not _readable(s.center_hz):
             return None
-        get = self._channel.get
+        unknown = [(n, c) for n, c in changed if (n, c) not in self._verified]
+        asked = [
+            (name, field, setting) for name, _ in unknown for field, setting in self._asks(name)
+        ]
+        if self._channel.compound and commands_pending:
+            # the commands, their read-back queries and the error query in one line; the
+            # headers were all accepted alone by the full configure since connecting
+            replies = self._channel.send_and_read_back(
+                commands_pending, [setting for _, _, setting in asked]
+            )
+        else:
+            for command in commands_pending:
+                self._channel.write(command)
+            replies = [self._channel.get(setting) for _, _, setting in asked]
+        read: dict[str, dict[str, Any]] = {}
+        for (name, field, _), value in zip(asked, replies, strict=True):
+            read.setdefault(name, {})[field] = value
         update: dict[str, Any] = {}
-        if "center_hz" in names:
-            update["center_hz"] = get(s.center_hz)
-            if _readable(s.span_hz):  # an analyzer may narrow the span near its band edge
-                update["span_hz"] = get(s.span_hz)
-        if "averages" in names:
-            update["averages"] = get(s.averages)
-            if _readable(s.averaging_on) and not get(s.averaging_on):
-                update["averages"] = 1
-        return previous.model_copy(update=update)
+        fresh: dict[tuple[str, str], dict[str, Any]] = {}
+        for name, command in changed:
+            known = self._verified.get((name, command))
+            if known is None:
+                got = read[name]
+                if name == "averages" and got.pop("averaging_on", True) is False:
+                    got["averages"] = 1  # the count is kept, but the instrument does not average
+                known = fresh[(name, command)] = got
+            update.update(known)
+        return previous.model_copy(update=update), fresh
+
+    def _asks(self, name: str) -> list[tuple[str, Any]]:
+        """(field, setting) read back after a partial change of ``name``."""
+        s = self.spec.settings
+        asks: list[tuple[str, Any]]
+        if name == "center_hz":
+            asks = [("center_hz", s.center_hz)]
+            if _readable(s.span_hz):  # an analyzer may narrow the span at its band edge
+                asks.append(("span_hz", s.span_hz))
+            return asks
+        asks = [("averages", s.averages)]
+        if _readable(s.averaging_on):
+            asks.append(("averaging_on", s.averaging_on))
+        return asks
+
+    def _seed_verified(self, named: list[tuple[str, str]], settings: AcquisitionSettings) -> None:
+        """After a full read-back: what each partial setting's command applied, so that
+        returning to it later needs no read-back."""
+        self._verified.clear()
+        for name, command in named:
+            if name in _READ_WITH:
+                self._verified[(name, command)] = {
+                    field: getattr(settings, field) for field in _READ_WITH[name]
+                }
 
     def _requested_values(self, request: AcquisitionRequest) -> dict[str, Any]:
         s = self.spec.settings
@@ -267,7 +373,16 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         return [command for _, command in self._named_commands_for(request)]
 
     def _named_commands_for(self, request: AcquisitionRequest) -> list[tuple[str, str]]:
-        """(setting name, command) for ``request``, in the profile's order (no I/O)."""
+        """(setting name, command) for ``request``, in the profile's order (no I/O); kept per
+        request, as a sweep asks for the same few requests over and over."""
+        key = _request_key(request)
+        named = self._named.get(key)
+        if named is None:
+            named = self._format_commands(request)
+            _remember(self._named, key, named)
+        return list(named)
+
+    def _format_commands(self, request: AcquisitionRequest) -> list[tuple[str, str]]:
         values = self._requested_values(request)
         commands: list[tuple[str, str]] = []
         for name in self.spec.apply_order:
@@ -319,14 +434,21 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         commands: list[str],
         request: AcquisitionRequest,
         previous: AcquisitionSettings | None = None,
-        changed: set[str] | None = None,
+        changed: list[tuple[str, str]] | None = None,
     ) -> AcquisitionSettings:
         """Send ``commands``, read back (only the ``changed`` settings where that is safe,
         see :meth:`_read_changed`), check the error queue once."""
-        for command in commands:
-            self._channel.write(command)
-        settings = self._read_changed(previous, changed or set()) or self._read_settings()
-        self._channel.check_errors("configure")
+        partial = self._read_changed(previous, changed or [], commands)
+        if partial is None:
+            for command in commands:
+                self._channel.write(command)
+        settings = partial[0] if partial is not None else self._read_settings()
+        if partial is None or not self._channel.compound or not commands:
+            self._channel.check_errors("configure")  # (a compound line read it already)
+        if partial is not None:
+            self._verified.update(partial[1])
+        else:
+            self._seed_verified(self._named_commands_for(request), settings)
         _log_adjustments(request, settings)
         return settings
 
@@ -334,7 +456,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
 
     def read_settings(self) -> AcquisitionSettings:
         """Query every setting the profile can report; return them as applied settings."""
-        return self._channel.run("read settings", self._read_settings)
+        return self._run("read settings", self._read_settings)
 
     def _read_settings(self) -> AcquisitionSettings:
         with self.lock:
@@ -394,7 +516,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
     def verify_settings(self) -> dict[str, tuple[Any, Any]]:
         """Read the settings back and return how they differ from the last applied ones."""
         applied = self._require_settings()
-        return self._channel.run(
+        return self._run(
             "verify settings", lambda: settings_differences(applied, self._read_settings())
         )
 
@@ -402,8 +524,14 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         """After a reconnect: detect lost settings, re-apply them and the output states."""
         self._format_sent = None
         self._sent.clear()  # the instrument may have lost them: re-apply everything
+        self._verified.clear()
+        self._started = False
+        held, self._deferred_names = self._deferred_names, set()
         if self._request is not None and self._settings is not None:
             found = settings_differences(self._settings, self._read_settings())
+            for name in held:  # sent in a compound line, or not yet: not a lost setting
+                for field in _READ_WITH.get(name, (name,)):
+                    found.pop(field, None)
             if found:
                 self.settings_changes.append(found)
                 logger.warning(
@@ -456,21 +584,31 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
     def acquire_trace(self) -> Trace:
         """One complete averaged acquisition with the applied settings, then the trace."""
         self._require_settings()
-        return self._channel.run("acquire trace", self._acquire_trace_once)
+        return self._run("acquire trace", self._acquire_trace_once)
 
     def _acquire_trace_once(self) -> Trace:
         settings = self._require_settings()
+        # the trace query and the step's error read in one line once both headers were
+        # accepted alone (the first acquisition after connecting sends them apart)
+        combined = self._channel.compound and self._started and self.transport.reads_block_then_text
         elapsed = self._run_acquisition()
-        values = self._fetch_trace(settings)
-        self._channel.check_errors(self.spec.trace.query)
-        self._check_plausible(values, settings)
-        return Trace(
-            freq_hz=settings.frequencies_hz(),
+        values = self._fetch_trace(settings, with_errors=combined)
+        if not combined:
+            self._channel.check_errors(self.spec.trace.query)
+        self._deferred_names.clear()  # the settings that rode along were accepted
+        freq_hz = settings.frequencies_hz()
+        self._check_plausible(values, settings, freq_hz)
+        # every field is checked already (values: count and finiteness; frequencies from
+        # validated settings): no second validation per trace
+        return Trace.model_construct(
+            freq_hz=freq_hz,
             values=values,
             unit=self.spec.trace.unit,
             settings=settings,
             instrument=self.identity,
             acquisition_time_s=max(elapsed, self.expected_acquisition_time_s()),
+            timestamp=datetime.now(timezone.utc),
+            excluded=None,
         )
 
     def _run_acquisition(self) -> float:
@@ -481,9 +619,19 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         try:
             if acq.poll_start and self.expected_acquisition_time_s() > acq.poll_above_s:
                 self._wait_by_polling(limit, acq.poll_start)
+            elif self._channel.compound and self._started:
+                # held settings, the start and the completion query in one line: one
+                # exchange; the step's error read after the transfer covers all of it
+                held = self._channel.take_deferred()
+                line = compound_line([*held, acq.start, self.profile.common.operation_complete])
+                self._channel.sent_compound(line, held)
+                reply = self.transport.query_watched(line, limit)
+                if reply.strip().split(";")[-1].strip().lstrip("+") != "1":
+                    raise ReplyError(f"reply {reply!r} to {line!r} does not end in 1")
             else:
                 self._channel.write(acq.start, check=False)
                 reply = self.transport.query_watched(self.profile.common.operation_complete, limit)
+                self._started = True
                 if reply.strip().lstrip("+") != "1":
                     raise ReplyError(
                         f"reply {reply!r} to {self.profile.common.operation_complete!r} is not 1"
@@ -531,11 +679,15 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         command = self.spec.acquisition.abort
         if command is None:
             raise InputError("abort", f"profile {self.profile.name} has no abort command")
-        self._channel.run("abort", lambda: self._channel.write(command))
+        self._run("abort", lambda: self._channel.write(command))
 
     # -- trace transfer -----------------------------------------------------------------
 
-    def _fetch_trace(self, settings: AcquisitionSettings) -> np.ndarray:
+    def _fetch_trace(
+        self, settings: AcquisitionSettings, *, with_errors: bool = False
+    ) -> np.ndarray:
+        """The trace; ``with_errors``: a binary trace query and the error query go in one
+        line and the step's error check happens here (an ASCII trace reads them apart)."""
         tr = self.spec.trace
         use = self.trace_transfer
         if use == "binary" and self._block_failures >= 2 and tr.ascii_format is not None:
@@ -545,21 +697,41 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         timeout = self._channel.base_timeout_s + size / tr.transfer_rate_bytes_per_s
         self._select_format(use)
         try:
-            with self.transport.timeout(timeout):
-                if use == "binary":
-                    values = self.transport.query_binary(
-                        tr.query, datatype=tr.datatype, big_endian=tr.big_endian
+            if use == "binary" and with_errors:
+                line = compound_line([tr.query, self.profile.common.error_query])
+                self._channel.sent_compound(line, [])
+                got, reply = self.transport.query_block_then_text(
+                    line, datatype=tr.datatype, big_endian=tr.big_endian, timeout_s=timeout
+                )
+                self._channel.check_errors(tr.query, first_reply=reply)
+                if got is None:
+                    raise BlockError(
+                        f"reply to {line!r} holds no binary block (only {reply!r})",
+                        command=tr.query,
                     )
-                else:
+                values = got
+            elif use == "binary":
+                values = self.transport.query_binary(
+                    tr.query, datatype=tr.datatype, big_endian=tr.big_endian, timeout_s=timeout
+                )
+            else:
+                with self.transport.timeout(timeout):
                     values = parse_ascii_values(self._channel.query(tr.query), tr.query)
         except BlockError:
             self._block_failures += 1
             raise
         self._block_failures = 0
         self._last_transfer = use
+        if with_errors and use != "binary":  # the ASCII fallback read the trace alone
+            self._channel.check_errors(tr.query)
         return _checked_values(values, settings.points, tr.query)
 
-    def _check_plausible(self, values: np.ndarray, settings: AcquisitionSettings) -> None:
+    def _check_plausible(
+        self,
+        values: np.ndarray,
+        settings: AcquisitionSettings,
+        freq_hz: np.ndarray | None = None,
+    ) -> None:
         """SCPI not-a-number codes and levels no analyzer displays, named with what to check
         in this profile (the byte order for binary transfers)."""
         tr = self.spec.trace
@@ -576,7 +748,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         check_trace_values(
             values,
             logarithmic=tr.unit in (TraceUnit.DBM, TraceUnit.DBM_PER_HZ),
-            freq_hz=settings.frequencies_hz(),
+            freq_hz=settings.frequencies_hz() if freq_hz is None else freq_hz,
             decode_fix=fix,
         )
 
@@ -648,7 +820,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
                     fix="leave band_hz unset",
                 )
             commands.append(marker.band.command(band_hz))
-        return self._channel.run(
+        return self._run(
             "read marker", lambda: self._marker_once(commands, float(freq_hz), kind, band_hz)
         )
 
@@ -735,7 +907,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
                 fix="drive the source from a DC supply or a relay instead",
             )
         command = setting.command(bool(on))
-        self._channel.run("noise drive", lambda: self._set_verified(setting, command, bool(on)))
+        self._run("noise drive", lambda: self._set_verified(setting, command, bool(on)))
         self._noise_drive = bool(on)
 
     def read_noise_drive(self) -> bool:
@@ -745,7 +917,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
             raise InputError(
                 "noise_drive", f"profile {self.profile.name} has no noise-source drive commands"
             )
-        return bool(self._channel.run("noise drive", lambda: self._channel.get(setting)))
+        return bool(self._run("noise drive", lambda: self._channel.get(setting)))
 
     @property
     def has_path_switch(self) -> bool:
@@ -774,7 +946,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
             )
         value = path.value if isinstance(path, Enum) else str(path).lower()
         command = setting.command(value)
-        self._channel.run("set path", lambda: self._set_verified(setting, command, value))
+        self._run("set path", lambda: self._set_verified(setting, command, value))
         self._sim_path = value
 
     def _set_verified(self, setting: Any, command: str, wanted: Any) -> None:
@@ -833,6 +1005,20 @@ def predict_request(spec: AnalyzerProfile, request: AcquisitionRequest) -> Acqui
         if applied != value:
             changes[name] = applied
     return request.model_copy(update=changes) if changes else request
+
+
+_MEMO_SIZE = 4096
+
+
+def _request_key(request: AcquisitionRequest) -> tuple:
+    """A request's field values, a dictionary key (the model itself is not hashable)."""
+    return tuple(request.__dict__.values())
+
+
+def _remember(memo: dict, key: tuple, value: Any) -> None:
+    if len(memo) >= _MEMO_SIZE:  # a sweep uses a few hundred; never grow without bound
+        memo.clear()
+    memo[key] = value
 
 
 def _readable(setting: Any) -> bool:

@@ -726,6 +726,13 @@ class CommonProfile(_Section):
         "(names the culprit); 'step': after each step",
     )
     max_error_entries: int = Field(default=32, ge=1, le=1000)
+    compound: bool = Field(
+        default=False,
+        description="with error_check = 'step': settings whose read-back is already known "
+        "go out in one compound line with the acquisition start (SCPI-1999 ';' program "
+        "message units); an error in it is traced to its command by re-sending each alone. "
+        "Ignored with 'each' (bringing up an instrument checks every command alone)",
+    )
     retry_window_s: float = Field(
         default=60.0,
         ge=0,

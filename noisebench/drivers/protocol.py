@@ -34,6 +34,7 @@ import numpy as np
 
 from .transport import (
     Transport,
+    _header_length,
     decode_block_values,
     parse_ascii_values,
     seconds_to_ms,
@@ -122,8 +123,16 @@ class FakeTransport(Transport):
         return reply.strip()
 
     def query_binary(
-        self, command: str, *, datatype: str = "f", big_endian: bool = True
+        self,
+        command: str,
+        *,
+        datatype: str = "f",
+        big_endian: bool = True,
+        timeout_s: float | None = None,
     ) -> np.ndarray:
+        if timeout_s is not None:
+            seconds_to_ms(timeout_s)
+            self.timeouts_s.append(float(timeout_s))  # the block's own limit
         reply = self._next(command, "binary query")
         if isinstance(reply, bytes):
             return decode_block_values(
@@ -135,6 +144,39 @@ class FakeTransport(Transport):
             self._where(command) + f"the driver read {command!r} as a binary "
             f"block but the script's reply is {type(reply).__name__}"
         )
+
+    @property
+    def reads_block_then_text(self) -> bool:
+        return True
+
+    def query_block_then_text(
+        self,
+        command: str,
+        *,
+        datatype: str = "f",
+        big_endian: bool = True,
+        timeout_s: float | None = None,
+    ) -> tuple[np.ndarray | None, str]:
+        """The scripted reply is ``bytes``: a block, ``;`` and the text unit (``ieee_block(v)
+        + b'...'`` with the block's terminator replaced), or text alone (no block)."""
+        if timeout_s is not None:
+            seconds_to_ms(timeout_s)
+            self.timeouts_s.append(float(timeout_s))
+        reply = self._next(command, "binary-then-text query")
+        if isinstance(reply, str):
+            return None, reply.strip()
+        if not isinstance(reply, bytes):
+            raise ProtocolError(
+                self._where(command) + f"the driver read {command!r} as a block then text "
+                f"but the script's reply is {type(reply).__name__}"
+            )
+        start, length = _header_length(reply, command)
+        rest = reply[start + length :]
+        if not rest.startswith(b";"):
+            raise ProtocolError(self._where(command) + "scripted reply has no ';' after the block")
+        payload = reply[start : start + length]
+        values = decode_block_values(payload, datatype, big_endian, command)
+        return values, rest[1:].decode("ascii").strip()
 
     def recover(self) -> bool:
         reply = self._next(RECOVER, "recover")

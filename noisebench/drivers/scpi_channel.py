@@ -44,7 +44,7 @@ from .transport import Transport
 
 logger = logging.getLogger(__name__)
 
-__all__ = ["TIMING", "RecoveryTiming", "ScpiChannel", "parse_error_entry"]
+__all__ = ["TIMING", "RecoveryTiming", "ScpiChannel", "compound_line", "parse_error_entry"]
 
 T = TypeVar("T")
 
@@ -71,6 +71,31 @@ def parse_error_entry(reply: str) -> tuple[int, str]:
     if not match:
         raise ReplyError(f"error-queue reply {reply!r} is not '<code>,\"<text>\"'")
     return int(match.group(1)), (match.group(2) or "").strip()
+
+
+def compound_line(commands: Sequence[str]) -> str:
+    """One program message of several units (SCPI-1999: ``;`` between units; a unit after
+    ``;`` is relative to the previous header's path unless it starts at the root ``:`` or
+    is a common command ``*``), e.g. ``FREQ:CENT 1E9;:INIT:IMM;*OPC?``."""
+    units = [c.strip() for c in commands]
+    return ";".join([units[0], *(u if u.startswith((":", "*")) else ":" + u for u in units[1:])])
+
+
+def split_reply_units(reply: str) -> list[str]:
+    """The response message units of one reply line (``;`` outside double quotes)."""
+    units: list[str] = []
+    current: list[str] = []
+    quoted = False
+    for char in reply:
+        if char == '"':
+            quoted = not quoted
+        elif char == ";" and not quoted:
+            units.append("".join(current).strip())
+            current = []
+            continue
+        current.append(char)
+    units.append("".join(current).strip())
+    return units
 
 
 class ScpiChannel:
@@ -103,6 +128,8 @@ class ScpiChannel:
         self.recovery_log: list[str] = []  # one line per recovery, for logs and tests
         self.needs_recovery = False
         self._unchecked: list[str] = []  # commands sent since the error queue was last read
+        self._deferred: dict[str, str] = {}  # setting -> command held for the next compound
+        self._in_compound: list[str] = []  # settings sent in compound lines since the last read
 
     # -- connection --------------------------------------------------------------------
 
@@ -139,6 +166,7 @@ class ScpiChannel:
         when the instrument confirms the value."""
         with self.lock:
             command = setting.command(value)
+            self._deferred = {}  # settings for an acquisition that will not come
             try:
                 if self.needs_recovery or getattr(self.transport, "stale", False):
                     self.transport.recover()
@@ -157,15 +185,71 @@ class ScpiChannel:
 
     # -- plain I/O ---------------------------------------------------------------------
 
+    # -- compound lines ------------------------------------------------------------------
+
+    @property
+    def compound(self) -> bool:
+        """True when the profile lets settings ride in compound lines (``compound = true``
+        with ``error_check = "step"``)."""
+        return bool(self.common.compound) and self.common.error_check == "step"
+
+    def defer(self, named: Sequence[tuple[str, str]]) -> None:
+        """Hold ``(setting, command)`` pairs for the next compound line
+        (:meth:`take_deferred`); a later command for the same setting replaces the held one,
+        and any other I/O sends them first (:meth:`flush`). Only for settings the instrument
+        already accepted alone since the connection was made, so a compound line never meets
+        a command error that would make the instrument discard the rest of it."""
+        for name, command in named:
+            self._deferred[name] = command  # keeps its first place: the profile's order
+
+    def take_deferred(self) -> list[str]:
+        """The held settings' commands, now the caller's to send (:meth:`sent_compound`)."""
+        taken, self._deferred = list(self._deferred.values()), {}
+        return taken
+
+    def sent_compound(self, line: str, settings: Sequence[str]) -> None:
+        """Record a compound line sent by the caller and the settings it carried, so the
+        next error-queue read can name the failing one."""
+        self._unchecked.append(line)
+        self._in_compound.extend(settings)
+
+    def flush(self) -> None:
+        """Send held settings as one line and read the error queue (the step they belong to
+        ends here when no acquisition follows)."""
+        if not self._deferred:
+            return
+        settings = self.take_deferred()
+        line = compound_line(settings)
+        self.transport.write(line)
+        self.sent_compound(line, settings)
+        self.check_errors(line)
+
+    def send_and_read_back(self, commands: Sequence[str], settings: Sequence[Any]) -> list[Any]:
+        """``commands``, each setting's read-back query and the error query in one compound
+        line (one exchange); returns the settings' parsed values. An error in the line is
+        raised naming the failing command (:meth:`check_errors`)."""
+        self.flush()
+        units = [*commands, *(s.query() for s in settings), self.common.error_query]
+        line = compound_line(units)
+        self.sent_compound(line, commands)
+        parts = split_reply_units(self.transport.query(line))
+        answers, entry = parts[:-1], parts[-1] if parts else ""
+        self.check_errors("configure", first_reply=entry)
+        if len(answers) != len(settings):
+            raise ReplyError(f"{len(answers)} replies to the {len(settings)} queries of {line!r}")
+        return [s.parse(a) for s, a in zip(settings, answers, strict=True)]
+
     def write(self, command: str, *, check: bool = True) -> None:
         """Send ``command``; with ``error_check = "each"`` read the error queue right after
         (``check=False`` for overlapped commands such as starting an acquisition)."""
+        self.flush()
         self.transport.write(command)
         self._unchecked.append(command)
         if check and self.common.error_check == "each":
             self.check_errors(command)
 
     def query(self, command: str) -> str:
+        self.flush()
         return self.transport.query(command)
 
     def set(self, setting: Any, value: Any) -> None:
@@ -179,6 +263,7 @@ class ScpiChannel:
             if getattr(setting, "fixed", None) is None:
                 setting.query()  # raises InputError naming the setting
             return setting.parse("", context)
+        self.flush()
         return setting.parse(self.transport.query(setting.query()), context)
 
     # -- error queue -------------------------------------------------------------------
@@ -199,15 +284,27 @@ class ScpiChannel:
             note=f"error queue not empty after {self.common.max_error_entries} reads",
         )
 
-    def check_errors(self, after: str) -> None:
-        """Drain the error queue; raise the first entry as InstrumentError naming ``after``."""
+    def check_errors(self, after: str, first_reply: str | None = None) -> None:
+        """Drain the error queue; raise the first entry as InstrumentError naming ``after``.
+        ``first_reply``: the reply to an error query that rode in a compound line (the
+        queue is read on only when it holds an error)."""
         sent, self._unchecked = self._unchecked, []
-        entries = self.read_error_queue()
+        carried, self._in_compound = self._in_compound, []
+        if first_reply is None:
+            entries = self.read_error_queue()
+        else:
+            code, text = parse_error_entry(first_reply)
+            entries = [(code, text), *self.read_error_queue()] if code else []
         if not entries:
             return
         code, text = entries[0]
         more = "; ".join(f"{c},{t!r}" for c, t in entries[1:]) or None
         recent = ", ".join(sent[-6:]) if sent and sent != [after] else None
+        extra: dict[str, Any] = {}
+        culprit = self._culprit(carried) if carried else None
+        if culprit is not None:
+            extra = {"in_compound": after, "found_by": "re-sending each setting alone"}
+            after = culprit
         logger.error("%s: instrument error %d %r after %r", self.kind, code, text, after)
         raise InstrumentError(
             code,
@@ -217,7 +314,20 @@ class ScpiChannel:
             identity=self.identity or None,
             more_errors=more,
             commands_since_last_check=recent,
+            **extra,
         )
+
+    def _culprit(self, settings: Sequence[str]) -> str | None:
+        """After an error in a step that carried ``settings`` in compound lines: send each
+        setting alone and read the queue after it; the first one the instrument refuses
+        again is the failing command (None: none does, e.g. the acquisition failed). The
+        instrument's state is unknown after an error anyway; the driver re-sends its
+        settings at the next configure."""
+        for command in settings:
+            self.transport.write(command)
+            if self.read_error_queue():
+                return command
+        return None
 
     # -- retry and recovery ------------------------------------------------------------
 
@@ -298,6 +408,7 @@ class ScpiChannel:
     def _recover(self, cause: CommunicationError | None, what: str) -> None:
         started = time.monotonic()
         self._unchecked = []
+        self._deferred, self._in_compound = {}, []  # the restore callback re-sends settings
         reconnected = self.transport.recover()
         with self.transport.timeout(min(self.transport.timeout_s, self.base_timeout_s)):
             self._probe()

@@ -210,9 +210,34 @@ class Transport(ABC):
 
     @abstractmethod
     def query_binary(
-        self, command: str, *, datatype: str = "f", big_endian: bool = True
+        self,
+        command: str,
+        *,
+        datatype: str = "f",
+        big_endian: bool = True,
+        timeout_s: float | None = None,
     ) -> np.ndarray:
-        """Send a query answered by a definite-length binary block; return the numbers."""
+        """Send a query answered by a definite-length binary block; return the numbers.
+        ``timeout_s`` (default: the session's) bounds the whole block."""
+
+    @property
+    def reads_block_then_text(self) -> bool:
+        """True when :meth:`query_block_then_text` is available."""
+        return False
+
+    def query_block_then_text(
+        self,
+        command: str,
+        *,
+        datatype: str = "f",
+        big_endian: bool = True,
+        timeout_s: float | None = None,
+    ) -> tuple[np.ndarray | None, str]:
+        """``command`` is a compound line whose first unit answers with a definite-length
+        block and whose second with text (``TRAC?;:SYST:ERR?``): the block's numbers and the
+        text after the ``;``. When the first unit sent no block (it failed, and a failed
+        query has no reply unit) the numbers are None and the text is the whole reply."""
+        raise NotImplementedError(f"{type(self).__name__} cannot read a block then text")
 
     def query_watched(self, command: str, limit_s: float) -> str:
         """A query whose reply may take up to ``limit_s`` (``*OPC?`` after a long acquisition).
@@ -311,6 +336,7 @@ class VisaSession(Transport):
         self.baud_rate = baud_rate
         self.reconnects = 0
         self._timeout_s = float(timeout_s)
+        self._read_limit_s = self._timeout_s  # the limit of the block read in progress
         self._lock = threading.RLock()
         self._rm = (
             resource_manager if resource_manager is not None else _resource_manager(visa_library)
@@ -601,61 +627,107 @@ class VisaSession(Transport):
             return reply.strip()
 
     def query_watched(self, command: str, limit_s: float) -> str:
-        """Wait for the reply in slices of at most :data:`WATCH_SLICE_S`, checking between
-        slices whether the instrument closed the socket: a dropped connection then fails at
-        once (ConnectionLost) instead of after the whole limit."""
-        if self._socket() is None:
+        """Wait for the reply in slices of at most :data:`WATCH_SLICE_S` (``select`` on the
+        socket, no VISA timeout changes), checking between slices whether the instrument
+        closed the socket: a dropped connection then fails at once (ConnectionLost) instead
+        of after the whole limit. Once the reply starts arriving it is read with the
+        session's timeout."""
+        sock = self._socket()
+        if sock is None:
             return super().query_watched(command, limit_s)
         deadline = time.monotonic() + limit_s
         with self._exchange(command):
             logger.debug("%s << %s (watched, %.3g s)", self.resource, command, limit_s)
             with self._io(command):
                 self._res.write(command)
-            previous = self._timeout_s
-            try:
-                while True:
-                    left = deadline - time.monotonic()
-                    self._set_timeout_s(max(0.001, min(WATCH_SLICE_S, left)))
-                    try:
-                        with self._io(command):
-                            reply = self._res.read()
-                        return reply.strip()
-                    except InstrumentTimeout:
-                        if self.peer_closed():
-                            raise ConnectionLost(
-                                f"the instrument closed the connection while {command!r} waited",
-                                command=command,
-                                resource=self.resource,
-                            ) from None
-                        if deadline - time.monotonic() <= 0:
-                            raise InstrumentTimeout(
-                                f"no reply to {command!r} within {limit_s:g} s",
-                                command=command,
-                                resource=self.resource,
-                            ) from None
-            finally:
-                with contextlib.suppress(CommunicationError):
-                    self._set_timeout_s(previous)
+            while not self._reply_pending(sock):
+                left = deadline - time.monotonic()
+                if left <= 0:
+                    raise InstrumentTimeout(
+                        f"no reply to {command!r} within {limit_s:g} s",
+                        command=command,
+                        resource=self.resource,
+                    )
+                try:
+                    ready = select.select([sock], [], [], min(WATCH_SLICE_S, left))[0]
+                except (OSError, ValueError):
+                    ready = [sock]  # let the peer check below decide
+                if ready and self.peer_closed():
+                    raise ConnectionLost(
+                        f"the instrument closed the connection while {command!r} waited",
+                        command=command,
+                        resource=self.resource,
+                    )
+            with self._io(command):
+                reply = self._res.read()
+            return reply.strip()
+
+    def _reply_pending(self, sock: socket.socket) -> bool:
+        """True when reply bytes are buffered by pyvisa-py or waiting on the socket."""
+        session = self._res.visalib.sessions.get(self._res.session)
+        if getattr(session, "_pending_buffer", None):
+            return True
+        try:
+            return bool(select.select([sock], [], [], 0)[0]) and not self.peer_closed()
+        except (OSError, ValueError):
+            return False
 
     def query_binary(
-        self, command: str, *, datatype: str = "f", big_endian: bool = True
+        self,
+        command: str,
+        *,
+        datatype: str = "f",
+        big_endian: bool = True,
+        timeout_s: float | None = None,
     ) -> np.ndarray:
         if datatype not in _DTYPES:
             raise InputError("datatype", f"{datatype!r} is not supported", fix="use 'f' or 'd'")
-        with self._exchange(command):
-            logger.debug("%s << %s (binary)", self.resource, command)
-            if self.binary_reader == "pyvisa":
-                return self._query_binary_pyvisa(command, datatype, big_endian)
-            direct = self._direct_socket()
-            if direct is not None:
+        direct = self._direct_socket() if self.binary_reader != "pyvisa" else None
+        if direct is not None:  # the deadline is ours: no VISA timeout to change
+            with self._exchange(command):
+                logger.debug("%s << %s (binary)", self.resource, command)
                 with self._io(command):
                     direct[0].sendall((command + self.write_termination).encode("ascii"))
                 dtype = np.dtype((">" if big_endian else "<") + f"f{_DTYPES[datatype]}")
-                return self._read_block_direct(command, *direct, dtype)
+                limit = self._timeout_s if timeout_s is None else timeout_s
+                values, _ = self._read_block_direct(command, *direct, dtype, limit)
+                assert values is not None  # without then_text a missing block raises
+                return values
+        scope = self.timeout(timeout_s) if timeout_s is not None else contextlib.nullcontext()
+        with scope, self._exchange(command):
+            logger.debug("%s << %s (binary)", self.resource, command)
+            if self.binary_reader == "pyvisa":
+                return self._query_binary_pyvisa(command, datatype, big_endian)
             with self._io(command):
                 self._res.write(command)
             payload = self._read_block(command)
             return decode_block_values(payload, datatype, big_endian, command)
+
+    @property
+    def reads_block_then_text(self) -> bool:
+        """The direct socket reader can (pyvisa's block reader cannot)."""
+        return self.binary_reader != "pyvisa" and self._direct_socket() is not None
+
+    def query_block_then_text(
+        self,
+        command: str,
+        *,
+        datatype: str = "f",
+        big_endian: bool = True,
+        timeout_s: float | None = None,
+    ) -> tuple[np.ndarray | None, str]:
+        if datatype not in _DTYPES:
+            raise InputError("datatype", f"{datatype!r} is not supported", fix="use 'f' or 'd'")
+        direct = self._direct_socket() if self.binary_reader != "pyvisa" else None
+        if direct is None:
+            return super().query_block_then_text(command)
+        with self._exchange(command):
+            logger.debug("%s << %s (binary, then text)", self.resource, command)
+            with self._io(command):
+                direct[0].sendall((command + self.write_termination).encode("ascii"))
+            dtype = np.dtype((">" if big_endian else "<") + f"f{_DTYPES[datatype]}")
+            limit = self._timeout_s if timeout_s is None else timeout_s
+            return self._read_block_direct(command, *direct, dtype, limit, then_text=True)
 
     def _query_binary_pyvisa(self, command: str, datatype: str, big_endian: bool) -> np.ndarray:
         with self._io(command):
@@ -719,14 +791,30 @@ class VisaSession(Transport):
         return (sock, pending) if isinstance(pending, bytearray) else None
 
     def _read_block_direct(
-        self, command: str, sock: socket.socket, pending: bytearray, dtype: np.dtype
-    ) -> np.ndarray:
+        self,
+        command: str,
+        sock: socket.socket,
+        pending: bytearray,
+        dtype: np.dtype,
+        limit_s: float | None = None,
+        *,
+        then_text: bool = False,
+    ) -> tuple[np.ndarray | None, str]:
         """Header, then payload and terminator received into one buffer, the values decoded
         to float64 chunk by chunk while the rest is still arriving; the same checks and
-        errors as :meth:`_read_block` and :func:`decode_block_values`."""
-        deadline = time.monotonic() + self._timeout_s
+        errors as :meth:`_read_block` and :func:`decode_block_values`. ``limit_s`` (default
+        the session timeout) bounds the whole block. ``then_text``: a ``;`` and a text reply
+        unit follow the block (see :meth:`query_block_then_text`); returns (values, text)."""
+        limit = self._timeout_s if limit_s is None else limit_s
+        self._read_limit_s = limit  # for the timeout message
+        deadline = time.monotonic() + limit
         head = bytearray(2)
         self._recv_into(sock, pending, memoryview(head), deadline, command, "header")
+        if then_text and head[:1] != b"#":  # no block: the text is the whole reply
+            line = head + (
+                b"" if b"\n" in head else self._recv_line(sock, pending, deadline, command)
+            )
+            return None, line.decode("ascii", "replace").strip()
         if head[:1] != b"#" or not head[1:2].isdigit():
             raise BlockError(
                 f"reply to {command!r} is not a binary block (starts {bytes(head)!r})",
@@ -757,6 +845,10 @@ class VisaSession(Transport):
                 decoded = upto
 
         self._recv_into(sock, pending, view, deadline, command, "payload", length, decode)
+        if then_text and buffer[length] == 0x3B:  # ';' then the text unit
+            decode(length)
+            text = self._recv_line(sock, pending, deadline, command)
+            return values, text.decode("ascii", "replace").strip()
         if buffer[length] == 0x0D:  # CR LF
             self._recv_into(sock, pending, view[length:], deadline, command, "terminator")
         if buffer[length] != 0x0A:
@@ -767,7 +859,37 @@ class VisaSession(Transport):
                 resource=self.resource,
             )
         decode(length)
-        return values
+        if then_text:
+            raise BlockError(
+                f"no second reply unit after the binary block from {command!r}",
+                command=command,
+                resource=self.resource,
+            )
+        return values, ""
+
+    def _recv_line(
+        self, sock: socket.socket, pending: bytearray, deadline: float, command: str
+    ) -> bytes:
+        """Bytes up to and including the message terminator (a short text reply)."""
+        line = bytearray()
+        one = bytearray(1)
+        while True:
+            cut = pending.find(b"\n")
+            if cut >= 0:
+                line += pending[: cut + 1]
+                del pending[: cut + 1]
+                return bytes(line)
+            line += pending
+            pending.clear()
+            self._recv_into(sock, pending, memoryview(one), deadline, command, "terminator")
+            line += one
+            if one == b"\n":
+                return bytes(line)
+            if _DONT_WAIT:  # take the rest already queued in one call
+                try:
+                    pending += sock.recv(4096, _DONT_WAIT)
+                except OSError:  # nothing queued (or a broken socket: the next read says)
+                    pass
 
     def _recv_into(
         self,
@@ -821,7 +943,7 @@ class VisaSession(Transport):
             )
         else:
             raise InstrumentTimeout(
-                f"no reply to {command!r} within {self._timeout_s:g} s",
+                f"no reply to {command!r} within {self._read_limit_s:g} s",
                 command=command,
                 resource=self.resource,
             )

@@ -1,5 +1,5 @@
-"""Pieces shared by the command-line parsers (``cli`` and ``dbcli``): exit codes, the epilog
-with the safety cautions, and argparse types.
+"""Pieces shared by the command-line front ends (``cli``, ``commands`` and ``dbcli``): exit
+codes, the epilog with the safety cautions, argparse types and one-line messages.
 
 Both front ends import these from here, so neither imports the other for them (``cli`` loads
 ``dbcli`` to register its subcommands; ``tests/test_layers.py`` checks the package has no
@@ -50,3 +50,8 @@ def non_negative_int(text: str) -> int:
     if value < 0:
         raise argparse.ArgumentTypeError(f"must be >= 0 (got {value})")
     return value
+
+
+def one_line(text: str) -> str:
+    """``text`` on one line (a CLI message never spans lines)."""
+    return " ".join(str(text).split())

@@ -140,11 +140,12 @@ output_loss = "output_cable.csv"
 
 def write_demo_files(folder: Path, *, points: int, seed: int) -> dict[str, Path]:
     """ENR table, cable loss tables and the two plans of the demo, written into ``folder``."""
+    from noisebench.bench.registry import simulated_enr_table
     from noisebench.sims.bench import SimulatedBench
 
     folder.mkdir(parents=True, exist_ok=True)
     sim = SimulatedBench.from_scenario(SCENARIO, seed=seed)
-    sim.enr_table.to_csv(folder / "enr.csv")
+    simulated_enr_table(sim).to_csv(folder / "enr.csv")
     grid = np.linspace(0.4e9, 6.5e9, 62)
     truth = sim.truth(grid)
     _write_loss_table(

@@ -2,13 +2,16 @@
 
 The first thing to look at when an instrument will not talk: versions, the VISA back ends
 pyvisa knows, the resources the pyvisa-py back end finds (listing is bounded by a timeout and
-never raises), the packaged instrument profiles and simulator scenarios.
+never raises), the packaged instrument profiles and simulator scenarios. With ``--ranges``, the
+plausibility ranges plans, tables and readings are checked against
+(:mod:`noisebench.science.ranges`), each with its source.
 """
 
 from __future__ import annotations
 
 import logging
 import platform
+import textwrap
 import threading
 import warnings
 from importlib import metadata, resources
@@ -103,8 +106,13 @@ def _packaged(package: str, folder: str) -> list[str]:
         return [f"unavailable ({type(exc).__name__})"]
 
 
-def collect_info(*, scan: bool = False, timeout_s: float = 5.0) -> dict[str, Any]:
-    """Everything ``noisebench info`` prints, as a dict."""
+def collect_info(
+    *, scan: bool = False, timeout_s: float = 5.0, ranges: bool = False
+) -> dict[str, Any]:
+    """Everything ``noisebench info`` prints, as a dict (``ranges``: with the rows of
+    :func:`noisebench.science.ranges.describe_ranges`)."""
+    from noisebench.science.ranges import describe_ranges
+
     return {
         "versions": versions(),
         "platform": platform.platform(),
@@ -116,6 +124,7 @@ def collect_info(*, scan: bool = False, timeout_s: float = 5.0) -> dict[str, Any
         ),
         "profiles": _packaged("noisebench.drivers", "profiles"),
         "scenarios": _packaged("noisebench.sims", "scenarios"),
+        "ranges": describe_ranges() if ranges else None,
     }
 
 
@@ -138,4 +147,31 @@ def format_info(info: dict[str, Any]) -> str:
         "simulated benches: sim://<scenario>?seed=N (in process), "
         "`noisebench serve` (SCPI over TCP)"
     )
+    if info.get("ranges"):
+        lines.append(format_ranges(info["ranges"]))
+    else:
+        lines.append("plausibility ranges of plan values: noisebench info --ranges")
+    return "\n".join(lines)
+
+
+RANGES_INTRO = (
+    "plausibility ranges: a plan, ENR/gain/loss table or reading outside the plausible span is "
+    "refused (the error names the field and the likely slip); outside the usual span it is "
+    "accepted with one warning"
+)
+
+
+def format_ranges(rows: list[tuple[str, str, str, str, str]], width: int = 100) -> str:
+    """The rows of :func:`noisebench.science.ranges.describe_ranges` as text: one block per
+    quantity, its source and, where one exists, how to state an unusual value on purpose."""
+    lines = textwrap.wrap(RANGES_INTRO, width)
+    for key, refused, usual, source, purpose in rows:
+        lines.append(f"  {key}: plausible {refused}; usual {usual}")
+        lines += textwrap.wrap(
+            f"source: {source}", width, initial_indent=" " * 6, subsequent_indent=" " * 8
+        )
+        if purpose:
+            lines += textwrap.wrap(
+                f"on purpose: {purpose}", width, initial_indent=" " * 6, subsequent_indent=" " * 8
+            )
     return "\n".join(lines)

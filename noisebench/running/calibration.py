@@ -11,7 +11,8 @@ gets a calibration that is better than needed, never worse.
 A calibration is measured once with given analyzer settings and kept with those settings and
 its time. It is reused while it is valid: same settings in everything that changes the
 analyzer's own noise (RBW and filter shape, VBW, detector, averaging scale, reference level,
-attenuation, preamp, sweep mode), every frequency covered, and younger than ``max_age_s``.
+attenuation, preamp, sweep mode), every frequency covered, and younger than ``max_age_s``
+(on the bench's own clock when it keeps one, see :meth:`CalibrationEntry.age_s`).
 Otherwise it is measured again. The store serialises to the dict kept in the run's
 ``run.json`` so an interrupted run resumes with its calibration.
 """
@@ -77,6 +78,11 @@ class CalibrationEntry(BaseModel):
     freqs_hz: list[float] = Field(min_length=1)
     densities: dict[str, list[NoiseDensity]]
     measured_at: datetime = Field(default_factory=_now)
+    measured_at_clock: tuple[str, float] | None = Field(
+        default=None,
+        description="(clock id, seconds): the bench's instrument clock when measured (a "
+        "simulated bench); the id tells this bench's clock from another session's",
+    )
     cold_temperature_k: float | None = Field(default=None, gt=0)
     instrument_time_s: float | None = Field(default=None, ge=0)
     stopped_by: str = Field(default="target", description="target, time_limit or max_averages")
@@ -102,7 +108,14 @@ class CalibrationEntry(BaseModel):
             )
         return self.densities[name][i]
 
-    def age_s(self, now: datetime | None = None) -> float:
+    def age_s(self, now: datetime | None = None, clock: tuple[str, float] | None = None) -> float:
+        """Age in seconds: the bench's instrument time when both this entry and the caller
+        read the same clock (a simulated bench keeps its own time: a run of simulated hours
+        ages its calibration by hours, and the decision repeats exactly); else wall time (real
+        benches, and a calibration made in another session)."""
+        mine = self.measured_at_clock
+        if clock is not None and mine is not None and clock[0] == mine[0]:
+            return clock[1] - mine[1]
         return ((now or _now()) - self.measured_at).total_seconds()
 
     def valid_for(
@@ -113,12 +126,13 @@ class CalibrationEntry(BaseModel):
         *,
         max_age_s: float,
         now: datetime | None = None,
+        clock: tuple[str, float] | None = None,
     ) -> bool:
         return (
             self.kind is kind
             and settings_match(self.settings, settings)
             and self.covers(freqs_hz)
-            and self.age_s(now) <= max_age_s
+            and self.age_s(now, clock) <= max_age_s
         )
 
 
@@ -135,11 +149,27 @@ class CalibrationStore:
         freqs_hz: Iterable[float],
         *,
         max_age_s: float,
+        clock: tuple[str, float] | None = None,
     ) -> CalibrationEntry | None:
         """The newest valid calibration for these settings and frequencies, or None."""
         freqs = list(freqs_hz)
         for entry in reversed(self.entries):
-            if entry.valid_for(kind, settings, freqs, max_age_s=max_age_s):
+            if entry.valid_for(kind, settings, freqs, max_age_s=max_age_s, clock=clock):
+                return entry
+        return None
+
+    def expired(
+        self,
+        kind: CalibrationKind,
+        settings: AcquisitionSettings,
+        freqs_hz: Iterable[float],
+        *,
+        clock: tuple[str, float] | None = None,
+    ) -> CalibrationEntry | None:
+        """The newest calibration that would fit but for its age (None: there is none)."""
+        freqs = list(freqs_hz)
+        for entry in reversed(self.entries):
+            if entry.valid_for(kind, settings, freqs, max_age_s=math.inf, clock=clock):
                 return entry
         return None
 

@@ -505,3 +505,23 @@ class LoControl:
         except Exception:  # noqa: BLE001 - safe state is best effort
             pass
         self.lo_hz = None
+
+
+def limit_nf_type_problems(held: str, limits: Any) -> list[str]:
+    """A converter's NF limit must say which figure it bounds (SSB or DSB: up to 3 dB apart),
+    and the plan must measure that one; otherwise no verdict could be defended."""
+    if limits is None or all(band.nf_max_db is None for band in limits.bands):
+        return []
+    if limits.nf_type is None:
+        return [
+            "limits.nf_type: a frequency-converting DUT has an SSB and a DSB noise figure (up "
+            'to 3 dB apart); say which one the NF limit bounds: nf_type = "ssb" or "dsb" '
+            f'(the plan measures conversion.nf_type = "{held}")'
+        ]
+    if limits.nf_type != held:
+        return [
+            f"limits.nf_type: the limit bounds the {limits.nf_type.upper()} figure but the "
+            f"plan measures the {held.upper()} one; set conversion.nf_type = "
+            f'"{limits.nf_type}" (both figures are stored, nf_db holds that one)'
+        ]
+    return []

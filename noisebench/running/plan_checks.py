@@ -42,6 +42,9 @@ def cross_check(plan: Plan, *, check_files: bool = True) -> list[str]:
             problems += profile_errors(plan)  # the plan against the analyzer's profile
     if plan.conversion is not None:
         problems += _check_conversion(plan, check_files=check_files)
+        from noisebench.running.conversion import limit_nf_type_problems
+
+        problems += limit_nf_type_problems(plan.conversion.nf_type, plan.limits)
     elif plan.gain is not None:
         for name in ("u_generator_flatness_db", "u_analyzer_flatness_db"):
             if getattr(plan.gain, name) is not None:

@@ -53,7 +53,11 @@ class CalibrationSteps(AveragingRounds):
             settings = self._configure(group, group.policy.min_averages)
             if (
                 self.calibrations.find(
-                    kind, settings, group.freqs_hz, max_age_s=self.plan.calibration.max_age_s
+                    kind,
+                    settings,
+                    group.freqs_hz,
+                    max_age_s=self.plan.calibration.max_age_s,
+                    clock=self.session.clock_reading(),
                 )
                 is None
             ):
@@ -72,7 +76,11 @@ class CalibrationSteps(AveragingRounds):
             if (
                 group.lo_hz is not None
                 and self.calibrations.find(
-                    kind, settings, group.freqs_hz, max_age_s=self.plan.calibration.max_age_s
+                    kind,
+                    settings,
+                    group.freqs_hz,
+                    max_age_s=self.plan.calibration.max_age_s,
+                    clock=self.session.clock_reading(),
                 )
                 is not None
             ):
@@ -131,6 +139,7 @@ class CalibrationSteps(AveragingRounds):
         return CalibrationEntry(
             kind=kind,
             settings=settings,
+            measured_at_clock=self.session.clock_reading(),
             freqs_hz=list(group.freqs_hz),
             densities={
                 n: [readings.get(f, n).combined().density for f in group.freqs_hz] for n in names
@@ -269,7 +278,23 @@ class CalibrationSteps(AveragingRounds):
             settings,
             group.freqs_hz,
             max_age_s=self.plan.calibration.max_age_s,
+            clock=self.session.clock_reading(),
         )
-        if entry is None:  # pragma: no cover - _calibrate_all ran first
+        if entry is not None:
+            return entry
+        old = self.calibrations.expired(
+            self._calibration_kind(),
+            settings,
+            group.freqs_hz,
+            clock=self.session.clock_reading(),
+        )
+        if old is None:  # pragma: no cover - _calibrate_all ran first
             raise MeasurementError(f"no valid calibration for {group.describe()}")
-        return entry
+        limit = self.plan.calibration.max_age_s
+        age = old.age_s(clock=self.session.clock_reading())
+        raise MeasurementError(
+            f"the calibration is {age:.4g} s old, beyond calibration.max_age_s = {limit:g} s: "
+            "the analyzer's gain and noise may have moved since, an error no budget holds; "
+            "resume the run (--resume) to calibrate again and measure the remaining points, or "
+            "raise calibration.max_age_s if the bench is known to be stable that long"
+        )

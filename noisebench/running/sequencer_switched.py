@@ -368,6 +368,7 @@ class SwitchedSweep(MeasurementSteps):
         return CalibrationEntry(
             kind=kind,
             settings=settings,
+            measured_at_clock=self.session.clock_reading(),
             freqs_hz=list(group.freqs_hz),
             densities={
                 n: [readings.get(f, n).combined().density for f in group.freqs_hz]

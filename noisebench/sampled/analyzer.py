@@ -236,7 +236,7 @@ class SampledAnalyzer(Analyzer):
             )
         info = self.source.info
         plan = plan_segments(
-            float(info.sample_rate_hz),  # type: ignore[arg-type]
+            float(info.sample_rate_hz),
             request.rbw_hz,
             request.averages,
             window=self.window,

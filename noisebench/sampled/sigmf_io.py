@@ -156,6 +156,7 @@ class SigmfRecordings:
                 raise InputError(
                     "core:sample_rate", f"{meta.name}: missing or not > 0", fix="add the rate"
                 )
+            _check_rate(meta, handle, float(rate))
             rates.add(float(rate))
             kinds.add(datatype.startswith("c"))
             for key in globals_:
@@ -295,6 +296,55 @@ def _one_value(values: set, key: str, folder: Path) -> float | None:
     if len(values) > 1:
         raise InputError(key, f"sigmf://{folder}: recordings disagree ({sorted(values)})")
     return float(next(iter(values)))
+
+
+RATE_RANGE_HZ = (1e3, 1e11)
+"""Sample rates a receiver recording can have (common practice: audio-rate SDRs start near
+1 kS/s, the fastest converters sample tens of GS/s); outside, the rate is in the wrong unit."""
+
+
+def _check_rate(meta: Path, handle: Any, rate: float) -> None:
+    """Refuse a sample rate no receiver has, or one the recording's own capture times
+    contradict: consecutive captures stamped with ``core:datetime`` (SigMF core) cannot hold
+    more samples than the rate fills in the time between their stamps (gaps for retuning are
+    allowed, so only a rate too low is seen; a 2x error, samples/s given as complex pairs or
+    the decimated rate, shows at once)."""
+    lo, hi = RATE_RANGE_HZ
+    if not lo <= rate <= hi:
+        raise InputError(
+            "core:sample_rate",
+            f"{meta.name}: {rate:g} samples/s is outside the {lo:g}..{hi:g} a receiver records at",
+            fix="give the rate in samples per second (Hz)",
+        )
+    from datetime import datetime
+
+    captures = handle.get_captures()
+    stamps = []
+    for capture in captures:
+        text = capture.get("core:datetime")
+        if not isinstance(text, str):
+            return
+        try:
+            stamps.append(datetime.fromisoformat(text.replace("Z", "+00:00")))
+        except ValueError:
+            raise InputError(
+                "core:datetime",
+                f"{meta.name}: {text!r} is not an ISO 8601 time",
+                fix="write e.g. 2026-12-05T09:00:00.000Z",
+            ) from None
+    starts = [int(c.get("core:sample_start", 0)) for c in captures]
+    for i in range(len(captures) - 1):
+        between_s = (stamps[i + 1] - stamps[i]).total_seconds()
+        held_s = (starts[i + 1] - starts[i]) / rate
+        if held_s > between_s * (1 + 1e-6) + 1e-3:  # 1 ms: stamps are often rounded to it
+            raise InputError(
+                "core:sample_rate",
+                f"{meta.name}: at {rate:g} samples/s capture {i} would last {held_s:.6g} s, but "
+                f"the next one starts {between_s:.6g} s later (core:datetime): the rate is too "
+                "low for the recording's length",
+                fix="check the rate the receiver really ran at (e.g. complex pairs vs "
+                "real samples, the rate before decimation)",
+            )
 
 
 def _ranges_of(meta: Path, handle: Any) -> list[RecordedRange]:

@@ -146,7 +146,7 @@ class FrequencyPlan(NamedTuple):
     image_hz: np.ndarray
     sideband: tuple[Sideband, ...]
 
-    def __len__(self) -> int:  # type: ignore[override]
+    def __len__(self) -> int:
         return int(self.rf_hz.size)
 
 

@@ -237,6 +237,12 @@ class LimitMask(BaseModel):
     bands: list[LimitBand] = Field(min_length=1)
     decision_rule: DecisionRule = DecisionRule.GUARDED
     require_coverage: bool = True
+    nf_type: Literal["ssb", "dsb"] | None = Field(
+        default=None,
+        description="which noise figure of a frequency-converting DUT the NF limits bound "
+        "(single or double sideband: they differ by up to 3 dB); required for a converter, "
+        "whose points are judged only against a limit of their own nf_type",
+    )
 
     @classmethod
     def from_dict(cls, data: Mapping[str, Any]) -> LimitMask:
@@ -479,6 +485,7 @@ def _point_checks(
         if not band.contains(point.freq_hz):
             continue
         if band.nf_max_db is not None:
+            unfit = _unfit_nf_type(point, mask)
             checks.append(
                 Check(
                     quantity="nf_db",
@@ -488,9 +495,12 @@ def _point_checks(
                     U=guard.expanded,
                     band=i,
                     margin_db=_margin(point.nf_db, band.nf_max_db, "max"),
-                    verdict=decide_interval(
+                    verdict=Verdict.INDETERMINATE
+                    if unfit
+                    else decide_interval(
                         point.nf_db, guard.low, guard.high, band.nf_max_db, "max", rule
                     ),
+                    note=unfit,
                 )
             )
         gain_limits: tuple[tuple[Literal["max", "min"], float | None], ...] = (
@@ -501,6 +511,26 @@ def _point_checks(
             if limit is not None:
                 checks.append(_gain_check(point, u_gain, kind, limit, i, rule))
     return _withhold_pass(point, checks)
+
+
+def _unfit_nf_type(point: PointResult, mask: LimitMask) -> str | None:
+    """Why a converter's NF cannot be judged against this mask (None: it can). Its SSB and
+    DSB figures differ by up to 3 dB, so a limit that does not say which it bounds, or bounds
+    the other one, decides nothing - PASS and FAIL alike."""
+    if point.conversion is None:
+        return None  # one response: the SSB and DSB figures are the same number
+    held = point.conversion.nf_type
+    if mask.nf_type is None:
+        return (
+            f"the NF limit does not say SSB or DSB; the point holds the {held.upper()} figure "
+            f'(set limits.nf_type = "{held}" if that is what the limit bounds)'
+        )
+    if mask.nf_type != held:
+        return (
+            f"the NF limit bounds the {mask.nf_type.upper()} figure; the point holds the "
+            f'{held.upper()} one (measure with conversion.nf_type = "{mask.nf_type}")'
+        )
+    return None
 
 
 def _withhold_pass(point: PointResult, checks: list[Check]) -> list[Check]:

@@ -44,8 +44,8 @@ ArrayLike = float | int | Sequence[float] | np.ndarray
 # --------------------------------------------------------------------------- array kernels
 #
 # The formulas themselves, once: numpy arrays (or floats) in, arrays out, SI units, no input
-# checks (callers validate; inside propagation models the inputs are perturbed copies of checked
-# values). The checked public functions below, the methods, the uncertainty models and the
+# checks (callers validate; the budgets' propagation models run them on perturbed copies of
+# checked values). The checked public functions below, the methods, the uncertainty models and the
 # running layer all evaluate these, so the checks against the outside world in
 # tests/test_physics.py and tests/test_reference_cascade.py exercise the code a measurement runs.
 # The simulator deliberately does NOT use them (noisebench/sims/models.py has its own forms), so
@@ -209,6 +209,154 @@ def dsb_from_ssb(value_ssb: ArrayLike, image_ratio: ArrayLike) -> np.ndarray:
     (``F_DSB = F_SSB/(1 + r)``) and the added temperature (``Te_DSB = Te_SSB/(1 + r)``)
     alike (docs/references.md §10, §17)."""
     return np.asarray(value_ssb, dtype=float) / (1.0 + np.asarray(image_ratio, dtype=float))
+
+
+# --------------------------------------------------------------------------- sensitivity kernels
+#
+# First partial derivatives of the array kernels above, derived by hand (docs/references.md §20),
+# for the first-order (GUM) propagation in the point functions: each ``*_partials`` returns one
+# partial per argument of its kernel, in the kernel's argument order (T0 and the ENR convention
+# are constants, not inputs). Same rules as the kernels: arrays or floats in, no input checks.
+# tests/test_sensitivities.py checks every one against central differences of its kernel.
+
+
+def ratio_from_db_slope(db: ArrayLike) -> np.ndarray:
+    """``d(10**(db/10))/d(db) = 10**(db/10) / DB_PER_NEPER_POWER``, per dB."""
+    return ratio_from_db(db) / DB_PER_NEPER_POWER
+
+
+def db_from_ratio_slope(ratio: ArrayLike) -> np.ndarray:
+    """``d(10 log10 x)/dx = DB_PER_NEPER_POWER / x``, dB per unit ratio."""
+    return DB_PER_NEPER_POWER / np.asarray(ratio, dtype=float)
+
+
+def nf_db_from_te_k_slope(te_k: ArrayLike, t0_k: float = T0_K) -> np.ndarray:
+    """``dNF_dB/dTe = DB_PER_NEPER_POWER / (T0 + Te)``, dB/K."""
+    return DB_PER_NEPER_POWER / (t0_k + np.asarray(te_k, dtype=float))
+
+
+def source_hot_temperature_partials(
+    enr_lin: ArrayLike, tc_k: ArrayLike, t0_k: float = T0_K, enr_reference: str = "t0"
+) -> tuple[np.ndarray, np.ndarray]:
+    """(dTh/dENR_lin, dTh/dTc): ``(T0, 1)`` for ``"t0"``, ``(T0, 0)`` for ``"absolute"``."""
+    zero = 0.0 * np.asarray(enr_lin, dtype=float) * np.asarray(tc_k)  # the broadcast shape
+    return zero + t0_k, zero + (1.0 if enr_reference == "t0" else 0.0)
+
+
+def te_k_from_y_partials(
+    y: ArrayLike, th_k: ArrayLike, tc_k: ArrayLike
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(dTe/dY, dTe/dTh, dTe/dTc) of ``Te = (Th - Y Tc)/(Y - 1)``:
+    ``((Tc - Th)/(Y - 1)^2, 1/(Y - 1), -Y/(Y - 1))``."""
+    yy = np.asarray(y, dtype=float)
+    inv = 1.0 / (yy - 1.0)
+    return (np.asarray(tc_k) - np.asarray(th_k)) * inv * inv, inv, -yy * inv
+
+
+def gain_from_hot_cold_partials(
+    n_hot: ArrayLike,
+    n_cold: ArrayLike,
+    th_k: ArrayLike,
+    tc_k: ArrayLike,
+    n_hot_ref: ArrayLike,
+    n_cold_ref: ArrayLike,
+    th_ref_k: ArrayLike,
+    tc_ref_k: ArrayLike,
+) -> tuple[np.ndarray, ...]:
+    """The eight partials of ``G = [(Nh - Nc)/(Th - Tc)] / [(Nh,ref - Nc,ref)/(Th,ref - Tc,ref)]``:
+    with ``a = G/(Nh - Nc)``, ``b = G/(Th - Tc)``, ``c = G/(Nh,ref - Nc,ref)``,
+    ``d = G/(Th,ref - Tc,ref)`` they are ``(a, -a, -b, b, -c, c, d, -d)``."""
+    g = gain_from_hot_cold(n_hot, n_cold, th_k, tc_k, n_hot_ref, n_cold_ref, th_ref_k, tc_ref_k)
+    a = g / (np.asarray(n_hot) - n_cold)
+    b = g / (np.asarray(th_k) - tc_k)
+    c = g / (np.asarray(n_hot_ref) - n_cold_ref)
+    d = g / (np.asarray(th_ref_k) - tc_ref_k)
+    return a, -a, -b, b, -c, c, d, -d
+
+
+def second_stage_corrected_te_k_partials(
+    te_total_k: ArrayLike, te_second_k: ArrayLike, first_gain_lin: ArrayLike
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(d/dTe12, d/dTe2, d/dG1) of ``Te1 = Te12 - Te2/G1``: ``(1, -1/G1, Te2/G1^2)``."""
+    inv = 1.0 / np.asarray(first_gain_lin, dtype=float)
+    return np.ones_like(np.asarray(te_total_k, dtype=float) * inv), -inv, te_second_k * inv * inv
+
+
+def floor_corrected_density_partials(
+    n_meas_w_per_hz: ArrayLike, n_floor_w_per_hz: ArrayLike, floor_termination_k: ArrayLike
+) -> tuple[float, float, float]:
+    """(d/dN_m, d/dN_f, d/dT_term) of ``N_m - N_f + k T_term``: ``(1, -1, k)``."""
+    return 1.0, -1.0, BOLTZMANN_J_PER_K
+
+
+def te_k_from_output_density_partials(
+    n_w_per_hz: ArrayLike, gain_lin: ArrayLike, source_temperature_k: ArrayLike
+) -> tuple[np.ndarray, np.ndarray, float]:
+    """(d/dN, d/dG, d/dTs) of ``Te = N/(k G) - Ts``: ``(1/(k G), -N/(k G^2), -1)``."""
+    per_n = 1.0 / (BOLTZMANN_J_PER_K * np.asarray(gain_lin, dtype=float))
+    return per_n, -np.asarray(n_w_per_hz) * per_n / gain_lin, -1.0
+
+
+def deembed_path_te_k_partials(
+    te_path_k: ArrayLike,
+    path_gain_lin: ArrayLike,
+    input_loss_lin: ArrayLike,
+    input_loss_temperature_k: ArrayLike,
+    output_loss_lin: ArrayLike,
+    output_loss_temperature_k: ArrayLike,
+) -> tuple[np.ndarray, ...]:
+    """Partials of Te_DUT from :func:`deembed_path_te_k` with respect to (Te_path, G_path, L_in,
+    Tp_in, L_out, Tp_out). With ``x = (L_out - 1) Tp_out / (G_path L_in L_out)``:
+    ``(1/L_in, x/G_path, (x - (Te_path + Tp_in)/L_in)/L_in, -(L_in - 1)/L_in,
+    -Tp_out/(G_path L_in L_out^2), -(L_out - 1)/(G_path L_in L_out))``. (The DUT gain
+    ``G_path L_in L_out`` is linear in each of its factors.)"""
+    g = np.asarray(path_gain_lin, dtype=float)
+    lin = np.asarray(input_loss_lin, dtype=float)
+    lout = np.asarray(output_loss_lin, dtype=float)
+    dut_gain = g * lin * lout
+    x = (lout - 1.0) * output_loss_temperature_k / dut_gain
+    return (
+        1.0 / lin + 0.0 * g,
+        x / g,
+        (x - (np.asarray(te_path_k) + input_loss_temperature_k) / lin) / lin,
+        -(lin - 1.0) / lin,
+        -np.asarray(output_loss_temperature_k) / (dut_gain * lout),
+        -(lout - 1.0) / dut_gain,
+    )
+
+
+def loss_output_temperature_partials(
+    t_in_k: ArrayLike, loss_lin: ArrayLike, physical_temperature_k: ArrayLike
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(d/dT, d/dL, d/dTp) of ``T/L + Tp (1 - 1/L)``: ``(1/L, (Tp - T)/L^2, 1 - 1/L)``."""
+    inv = 1.0 / np.asarray(loss_lin, dtype=float)
+    return (
+        inv + 0.0 * np.asarray(t_in_k),
+        (np.asarray(physical_temperature_k) - t_in_k) * inv * inv,
+        1.0 - inv,
+    )
+
+
+def two_response_temperature_partials(
+    t_signal_k: ArrayLike, t_image_k: ArrayLike, image_ratio: ArrayLike
+) -> tuple[float, np.ndarray, np.ndarray]:
+    """(d/dT_s, d/dT_i, d/dr) of ``T_s + r T_i``: ``(1, r, T_i)``."""
+    return 1.0, np.asarray(image_ratio, dtype=float), np.asarray(t_image_k, dtype=float)
+
+
+def ssb_factor_from_te_k_partials(
+    te_ssb_k: ArrayLike, image_ratio: ArrayLike, t0_k: float = T0_K
+) -> tuple[float, float]:
+    """(d/dTe_SSB, d/dr) of ``1 + r + Te_SSB/T0``: ``(1/T0, 1)``."""
+    return 1.0 / t0_k, 1.0
+
+
+def dsb_from_ssb_partials(
+    value_ssb: ArrayLike, image_ratio: ArrayLike
+) -> tuple[np.ndarray, np.ndarray]:
+    """(d/dx, d/dr) of ``x/(1 + r)``: ``(1/(1 + r), -x/(1 + r)^2)``."""
+    inv = 1.0 / (1.0 + np.asarray(image_ratio, dtype=float))
+    return inv, -np.asarray(value_ssb, dtype=float) * inv * inv
 
 
 # --------------------------------------------------------------------------- helpers

@@ -52,6 +52,8 @@ def _value(x: float, unit: str) -> str:
 
 
 def _span(low: float | None, high: float | None, unit: str) -> str:
+    if low is not None and low == high:
+        return _value(low, unit)
     if unit == "Hz" and low is not None and high is not None:
         return format_frequency_range(low, high)
     lo = "-inf" if low is None else f"{low:g}"
@@ -300,14 +302,23 @@ def frequency_column_problem(freqs_hz: list[float], column: str) -> str | None:
     )
 
 
-def describe_ranges() -> list[tuple[str, str, str, str]]:
-    """(key, refused outside, usual, source) rows for documentation and ``noisebench info``."""
-    return [
-        (
-            key,
-            _span(r.refuse_below, r.refuse_above, r.unit),
-            _span(r.usual_low, r.usual_high, r.unit),
-            r.source,
+def describe_ranges() -> list[tuple[str, str, str, str, str]]:
+    """(key, refused outside, usual, source, how to state it on purpose or "") rows, for
+    ``noisebench info --ranges``."""
+    rows = []
+    for key, r in RANGES.items():
+        purpose = ""
+        if r.purpose_hint:
+            purpose = r.purpose_hint
+            if r.purpose_below is not None:
+                purpose += f" (then refused only below {_value(r.purpose_below, r.unit)})"
+        rows.append(
+            (
+                key,
+                _span(r.refuse_below, r.refuse_above, r.unit),
+                _span(r.usual_low, r.usual_high, r.unit),
+                r.source,
+                purpose,
+            )
         )
-        for key, r in RANGES.items()
-    ]
+    return rows

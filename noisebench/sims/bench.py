@@ -24,9 +24,10 @@ tables the tests compare with all read the same component models.
 from __future__ import annotations
 
 import logging
+from dataclasses import dataclass
 from enum import Enum
 from pathlib import Path as FsPath
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 
@@ -193,6 +194,22 @@ class _AnalyzerConnector:
         return self._bench.noise_source.steady_hot_fraction(t_start_s, t_stop_s)
 
 
+@dataclass(frozen=True)
+class EnrCalibration:
+    """The simulated noise source's calibration sheet, as plain numbers: ENR (dB, relative to
+    T0) and its standard uncertainty per frequency. The core's ENR table type is built from it
+    by the composition root (:func:`noisebench.bench.registry.simulated_enr_table`), so the
+    simulator needs none of the measurement code."""
+
+    freq_hz: tuple[float, ...]
+    enr_db: tuple[float, ...]
+    u_enr_db: tuple[float, ...] | None
+    serial: str | None
+    nominal_drive_v: float | None
+    description: str
+    enr_reference: Literal["t0", "absolute"] = "t0"
+
+
 class SimulatedBench:
     """A complete simulated bench built from a :class:`~noisebench.sims.scenario.Scenario`."""
 
@@ -333,23 +350,17 @@ class SimulatedBench:
         return np.asarray(ns.u_enr_db) * z * ns.calibration_error_scale
 
     @property
-    def enr_table(self):  # -> noisebench.science.enr.EnrTable
+    def enr_calibration(self) -> EnrCalibration:
         """The ENR table the operator holds: the true ENR plus a calibration error."""
-        from noisebench.science.enr import EnrMetadata, EnrTable
-
         ns = self.scenario.noise_source
         enr = np.asarray(ns.enr_db, dtype=float) + self._calibration_error_db
-        return EnrTable(
-            freq_hz=[float(f) for f in ns.freq_hz],
-            enr_db=[round(float(e), 4) for e in enr],
-            u_enr_db=None if ns.u_enr_db is None else [float(u) for u in ns.u_enr_db],
-            metadata=EnrMetadata(
-                serial=ns.serial,
-                nominal_drive_v=ns.nominal_drive_v,
-                enr_reference="t0",
-                description=f"simulated source of scenario "
-                f"{self.scenario.name!r} (seed {self.seed})",
-            ),
+        return EnrCalibration(
+            freq_hz=tuple(float(f) for f in ns.freq_hz),
+            enr_db=tuple(round(float(e), 4) for e in enr),
+            u_enr_db=None if ns.u_enr_db is None else tuple(float(u) for u in ns.u_enr_db),
+            serial=ns.serial,
+            nominal_drive_v=ns.nominal_drive_v,
+            description=f"simulated source of scenario {self.scenario.name!r} (seed {self.seed})",
         )
 
     # ------------------------------------------------------------ signal chain --------------

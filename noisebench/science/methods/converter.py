@@ -16,6 +16,7 @@ loss at the IF. The image response is stated as the image rejection in dB (``Non
 ``math.inf``: no image response). ``u_nf_db`` is the statistical part only; the ENR terms (three
 separate variables: RF, image and IF are different frequencies of the table) and the image
 rejection's uncertainty are reported beside it in ``notes`` like the amplifier methods do.
+Sensitivities are analytic (docs/references.md §20), chained through the kernels' partials.
 
 Size: two methods (Y-factor and gain) for frequency-converting DUTs that share the frequency
 plan, the image-response model and the loss de-embedding of this module; the physics is in
@@ -48,27 +49,51 @@ from noisebench.science.methods._common import (
     density_flags,
     margin_db,
 )
-from noisebench.science.methods._propagation import propagate
-from noisebench.science.methods.yfactor import DEFAULT_Y_MIN_DB, CalibrationPoint, EnrReference
+from noisebench.science.methods._propagation import (
+    Sensitivities,
+    chain,
+    linear_propagation,
+)
+from noisebench.science.methods.yfactor import (
+    DEFAULT_Y_MIN_DB,
+    Y_MINUS_ONE_MIN,
+    CalibrationPoint,
+    EnrReference,
+    _pair_sensitivities,
+    _y_too_close_to_one,
+)
 from noisebench.science.physics import (
     DB_PER_NEPER_POWER,
     T0_K,
     ArrayLike,
     db_from_ratio,
+    db_from_ratio_slope,
     deembed_path_te_k,
+    deembed_path_te_k_partials,
     dsb_from_ssb,
+    dsb_from_ssb_partials,
+    floor_corrected_density_partials,
     floor_corrected_density_w_per_hz,
     gain_from_hot_cold,
+    gain_from_hot_cold_partials,
     loss_output_temperature_k,
+    loss_output_temperature_partials,
     loss_te_k,
     ratio_from_db,
+    ratio_from_db_slope,
     second_stage_corrected_te_k,
+    second_stage_corrected_te_k_partials,
     source_hot_temperature_k,
+    source_hot_temperature_partials,
     ssb_factor_from_te_k,
+    ssb_factor_from_te_k_partials,
     te_k_from_output_density,
+    te_k_from_output_density_partials,
     te_k_from_y,
+    te_k_from_y_partials,
     thermal_density_w_per_hz,
     two_response_temperature_k,
+    two_response_temperature_partials,
 )
 from noisebench.science.point import ConversionInfo, Method, PointFlag, PointResult
 from noisebench.units import format_frequency
@@ -105,7 +130,9 @@ def _rejection(image_rejection_db: float | None) -> tuple[float | None, float]:
     if image_rejection_db is None or image_rejection_db == math.inf:
         return None, 0.0
     x = check_number("image_rejection_db", image_rejection_db)
-    return x, float(image_ratio_from_rejection_db(x))
+    if x < -300.0:  # an image response 1e30 times the signal's: let the checked form decide
+        return x, float(image_ratio_from_rejection_db(x))
+    return x, float(ratio_from_db(-x))  # what image_ratio_from_rejection_db gives, faster
 
 
 def _db(ratio) -> float:
@@ -157,9 +184,11 @@ def _y_core(
     tp_out,
     cal=None,  # (hot_cal, cold_cal, enr_if_db, tc_cal) or None
     gain_scale=1.0,  # the budget's first-order output mismatch on the conversion gain
+    parts: dict[str, np.ndarray] | None = None,
 ):
     """(Te_SSB of the DUT, DUT conversion gain or None, Y, Te_SSB before the second-stage
-    correction or None), all arrays; eqs. 4 and 5 with losses applied to the temperatures."""
+    correction or None), all arrays; eqs. 4 and 5 with losses applied to the temperatures.
+    ``parts``, when given, receives the intermediate quantities (for the sensitivities)."""
     if np.any(hot <= cold):
         raise MeasurementError(
             "converter Y-factor: hot reading is not above the cold one; check that the noise "
@@ -168,16 +197,15 @@ def _y_core(
     th_s = source_hot_temperature_k(ratio_from_db(enr_rf_db), tc, t0, ref)
     th_i = source_hot_temperature_k(ratio_from_db(enr_image_db), tc, t0, ref)
     # both bands' source temperatures through the input loss, referred to the signal band
-    hot_in = two_response_temperature_k(
-        loss_output_temperature_k(th_s, lin_s, tp_in),
-        loss_output_temperature_k(th_i, lin_i, tp_in),
-        r,
-    )
-    cold_in = two_response_temperature_k(
-        loss_output_temperature_k(tc, lin_s, tp_in), loss_output_temperature_k(tc, lin_i, tp_in), r
-    )
+    hot_i = loss_output_temperature_k(th_i, lin_i, tp_in)
+    cold_i = loss_output_temperature_k(tc, lin_i, tp_in)
+    hot_in = two_response_temperature_k(loss_output_temperature_k(th_s, lin_s, tp_in), hot_i, r)
+    cold_in = two_response_temperature_k(loss_output_temperature_k(tc, lin_s, tp_in), cold_i, r)
     y = hot / cold
     te12 = te_k_from_y(y, hot_in, cold_in)
+    if parts is not None:
+        parts.update(th_s=th_s, th_i=th_i, hot_i=hot_i, cold_i=cold_i, te12=te12)
+        parts.update(hot_in=hot_in, cold_in=cold_in)
     if cal is None:
         return te12, None, y, None
     hc, cc, enr_if_db, tc_cal = cal
@@ -189,6 +217,8 @@ def _y_core(
     te2 = te_k_from_y(hc / cc, th_if, tc_cal)
     g_path = gain_from_hot_cold(hot, cold, hot_in, cold_in, hc, cc, th_if, tc_cal) * gain_scale
     te1 = second_stage_corrected_te_k(te12, te2, g_path)
+    if parts is not None:
+        parts.update(th_if=th_if, te2=te2, g_path=g_path, te1=te1)
     te_dut, g_dut = deembed_path_te_k(te1, g_path, 1.0, 0.0, lout, tp_out)
     te_unc = deembed_path_te_k(te12, g_path, 1.0, 0.0, lout, tp_out)[0]
     return te_dut, g_dut, y, te_unc
@@ -366,6 +396,156 @@ def converter_gain_method_sweep(
     return _to_sweep(te, r, t0, g, None, te_unc)
 
 
+# --------------------------------------------------------------------------- sensitivities
+#
+# First partial derivatives of the point models above with respect to their named inputs, by the
+# chain rule through the kernels' partials (docs/references.md §20); the point functions
+# evaluate the model once and propagate with these.
+
+
+def _rejection_sensitivities(rejection: float | None, r: float) -> Sensitivities:
+    """dr/d(image rejection in dB): ``r = 10**(-IRR/10)`` gives ``-r/(10/ln 10)``; none when
+    the converter has no image response."""
+    if rejection is None:
+        return {}
+    return {"rej_db": -float(ratio_from_db_slope(-rejection))}
+
+
+def _input_temperature_sensitivities(
+    t_s: float,
+    d_t_s: Sensitivities,
+    t_i: float,
+    d_t_i: Sensitivities,
+    t_i_out: float,
+    r: float,
+    d_r: Sensitivities,
+    lin_s: float,
+    lin_i: float,
+    tp_in: float,
+) -> Sensitivities:
+    """Sensitivities of ``T_s' + r T_i'`` (each band's source temperature through the input
+    loss, referred to the signal band; ``t_i_out`` = T_i') from those of T_s, T_i and r."""
+    a_s = loss_output_temperature_partials(t_s, lin_s, tp_in)[0]
+    a_i = loss_output_temperature_partials(t_i, lin_i, tp_in)[0]
+    w_s, w_i, w_r = two_response_temperature_partials(0.0, t_i_out, r)
+    return chain((w_s * a_s, d_t_s), (w_i * a_i, d_t_i), (w_r, d_r))
+
+
+def _nf_sensitivities(
+    te_ssb: float, d_te: Sensitivities, r: float, d_r: Sensitivities, t0: float, nf_type: NfType
+) -> Sensitivities:
+    """Sensitivities of the NF (dB) of ``nf_type`` from those of Te_SSB and r."""
+    f_ssb = float(ssb_factor_from_te_k(te_ssb, r, t0))
+    p_te, p_r = ssb_factor_from_te_k_partials(te_ssb, r, t0)
+    d_f = chain((p_te, d_te), (p_r, d_r))
+    if nf_type == "ssb":
+        return chain((db_from_ratio_slope(f_ssb), d_f))
+    q_f, q_r = dsb_from_ssb_partials(f_ssb, r)
+    return chain((db_from_ratio_slope(dsb_from_ssb(f_ssb, r)), chain((q_f, d_f), (q_r, d_r))))
+
+
+def _y_sensitivities(
+    values: dict[str, float],
+    parts: dict[str, np.ndarray],
+    tc: float,
+    tc_cal: float | None,
+    r: float,
+    d_r: Sensitivities,
+    t0: float,
+    ref: str,
+    lin_s: float,
+    lin_i: float,
+    tp_in: float,
+    lout: float,
+    tp_out: float,
+) -> tuple[Sensitivities, Sensitivities | None]:
+    """(dTe_SSB, dG_dB or None) of :func:`_y_core` (its intermediate quantities in ``parts``)
+    with respect to h, c, hc, cc, enr_rf, enr_img, enr_if and rej_db."""
+    h, c = values["h"], values["c"]
+    y = h / c
+    p = {k: float(v) for k, v in parts.items()}
+    d_th = {}
+    for key in ("enr_rf", "enr_img"):
+        slope = source_hot_temperature_partials(ratio_from_db(values[key]), tc, t0, ref)[0]
+        d_th[key] = {key: float(slope) * float(ratio_from_db_slope(values[key]))}
+    d_hot_in = _input_temperature_sensitivities(
+        p["th_s"],
+        d_th["enr_rf"],
+        p["th_i"],
+        d_th["enr_img"],
+        p["hot_i"],
+        r,
+        d_r,
+        lin_s,
+        lin_i,
+        tp_in,
+    )
+    d_cold_in = _input_temperature_sensitivities(
+        tc, {}, tc, {}, p["cold_i"], r, d_r, lin_s, lin_i, tp_in
+    )
+    hot_in, cold_in = p["hot_in"], p["cold_in"]
+    p_y, p_th, p_tc = (float(x) for x in te_k_from_y_partials(y, hot_in, cold_in))
+    d_te12 = chain(
+        (p_y / c, {"h": 1.0}), (-p_y * y / c, {"c": 1.0}), (p_th, d_hot_in), (p_tc, d_cold_in)
+    )
+    if tc_cal is None:
+        return d_te12, None
+    hc, cc, th_if, g_path = values["hc"], values["cc"], p["th_if"], p["g_path"]
+    d_te2, d_th_if = _pair_sensitivities(
+        hc, cc, th_if, tc_cal, values["enr_if"], t0, ref, ("hc", "cc", "enr_if")
+    )
+    g_h, g_c, g_hot, g_cold, g_hc, g_cc, g_th, _ = (
+        float(x) for x in gain_from_hot_cold_partials(h, c, hot_in, cold_in, hc, cc, th_if, tc_cal)
+    )
+    d_g = chain(
+        (g_h, {"h": 1.0}),
+        (g_c, {"c": 1.0}),
+        (g_hot, d_hot_in),
+        (g_cold, d_cold_in),
+        (g_hc, {"hc": 1.0}),
+        (g_cc, {"cc": 1.0}),
+        (g_th * d_th_if, {"enr_if": 1.0}),
+    )
+    s_12, s_2, s_g = second_stage_corrected_te_k_partials(p["te12"], p["te2"], g_path)
+    d_te1 = chain((s_12, d_te12), (s_2, d_te2), (s_g, d_g))
+    q_te, q_g = deembed_path_te_k_partials(p["te1"], g_path, 1.0, 0.0, lout, tp_out)[:2]
+    # G_DUT = G_path L_out with a constant loss: dG_DUT_dB/dG_path = (10/ln 10)/G_path
+    return chain((q_te, d_te1), (q_g, d_g)), chain((db_from_ratio_slope(g_path), d_g))
+
+
+def _gain_sensitivities(
+    n_meas: float,
+    n_floor: float | None,
+    g_db: float,
+    ts: float,
+    r: float,
+    d_r: Sensitivities,
+    lin_s: float,
+    lin_i: float,
+    tp_in: float,
+    lout: float,
+    tp_out: float,
+    t_term: float,
+) -> Sensitivities:
+    """dTe_SSB of :func:`_gain_core` with respect to n_meas, n_floor, g_db and rej_db."""
+    g_path = float(ratio_from_db(g_db)) / lout
+    d_g = {"g_db": float(ratio_from_db_slope(g_db)) / lout}
+    if n_floor is None:
+        n, d_n = n_meas, {"n_meas": 1.0}
+    else:
+        n = float(floor_corrected_density_w_per_hz(n_meas, n_floor, t_term))
+        p_m, p_f, _ = floor_corrected_density_partials(n_meas, n_floor, t_term)
+        d_n = {"n_meas": p_m, "n_floor": p_f}
+    t_i = float(loss_output_temperature_k(ts, lin_i, tp_in))
+    t_in = float(two_response_temperature_k(loss_output_temperature_k(ts, lin_s, tp_in), t_i, r))
+    d_t_in = _input_temperature_sensitivities(ts, {}, ts, {}, t_i, r, d_r, lin_s, lin_i, tp_in)
+    te_path = float(te_k_from_output_density(n, g_path, t_in))
+    p_n, p_g, p_t = te_k_from_output_density_partials(n, g_path, t_in)
+    d_te_path = chain((p_n, d_n), (p_g, d_g), (p_t, d_t_in))
+    q_te, q_g = deembed_path_te_k_partials(te_path, g_path, 1.0, 0.0, lout, tp_out)[:2]
+    return chain((q_te, d_te_path), (q_g, d_g))
+
+
 # --------------------------------------------------------------------------- point functions
 
 
@@ -532,23 +712,6 @@ def converter_y_factor_point(
             fix="calibrate at the IF first",
         )
 
-    def model(h, c, hc, cc, enr_rf, enr_img, enr_if, rej_db):
-        rr = 0.0 if rejection is None else ratio_from_db(-rej_db)
-        cal = None
-        if calibration is not None:
-            cal = (hc, cc, enr_if, calibration.cold_temperature_k)
-        te, g, y, te_unc = _y_core(
-            h, c, enr_rf, enr_img, tc, rr, t0, enr_reference, lin_s, lin_i, tp_in, lout, tp_out, cal
-        )
-        f_ssb = ssb_factor_from_te_k(te, rr, t0)
-        with np.errstate(invalid="ignore"):  # F <= 0 is refused after the propagation
-            nf = db_from_ratio(f_ssb if nf_type == "ssb" else dsb_from_ssb(f_ssb, rr))
-        out = {"te_ssb": te, "nf_db": nf}
-        if g is not None:
-            out["gain_db"] = db_from_ratio(g)
-            out["te_unc"] = te_unc
-        return out
-
     values = {
         "h": hot.density_w_per_hz,
         "c": cold.density_w_per_hz,
@@ -567,10 +730,55 @@ def converter_y_factor_point(
         u_sys.update(enr_img=u_img or 0.0, rej_db=u_rej)
     if calibration is not None:
         u_sys["enr_if"] = calibration.u_enr_db or 0.0
+    cal = None
+    if calibration is not None:
+        cal = (values["hc"], values["cc"], values["enr_if"], calibration.cold_temperature_k)
+    parts: dict[str, np.ndarray] = {}
     try:
-        props = propagate(model, values, u_stat | u_sys)
+        te_value, g_value, _, te_unc_value = _y_core(
+            values["h"],
+            values["c"],
+            enr_rf,
+            enr_img,
+            tc,
+            r,
+            t0,
+            enr_reference,
+            lin_s,
+            lin_i,
+            tp_in,
+            lout,
+            tp_out,
+            cal,
+            parts=parts,
+        )
     except MeasurementError as exc:
         raise exc.add_context(freq_hz=rf, method="y_factor") from None
+    closest = values["h"] / values["c"]
+    if calibration is not None:
+        closest = min(closest, values["hc"] / values["cc"])
+    if closest - 1.0 <= Y_MINUS_ONE_MIN:
+        raise _y_too_close_to_one(rf, "converter Y-factor", closest)
+    d_r = _rejection_sensitivities(rejection, r)
+    d_te, d_gain = _y_sensitivities(
+        values,
+        parts,
+        tc,
+        calibration.cold_temperature_k if calibration else None,
+        r,
+        d_r,
+        t0,
+        enr_reference,
+        lin_s,
+        lin_i,
+        tp_in,
+        lout,
+        tp_out,
+    )
+    props = {"te_ssb": linear_propagation(float(te_value), d_te, u_stat | u_sys)}
+    if d_gain is not None:
+        assert g_value is not None and te_unc_value is not None  # a calibration gives both
+        props["gain_db"] = linear_propagation(_db(g_value), d_gain, u_stat | u_sys)
     te_ssb = float(props["te_ssb"].value)
     check_te_plausible(
         te_ssb,
@@ -592,7 +800,9 @@ def converter_y_factor_point(
             freq_hz=rf,
         )
     nf_db, te_k, _ = _nf_and_slope(te_ssb, r, t0, nf_type)
-    nf_prop = props["nf_db"]
+    nf_prop = linear_propagation(
+        nf_db, _nf_sensitivities(te_ssb, d_te, r, d_r, t0, nf_type), u_stat | u_sys
+    )
     u_nf = float(nf_prop.u(u_stat))
     names = {
         "h": "hot",
@@ -621,14 +831,10 @@ def converter_y_factor_point(
         # at different frequencies, so their errors do not cancel as an amplifier's do
         gain_contributions = {names[k]: float(v) for k, v in props["gain_db"].contributions.items()}
         g_path = float(ratio_from_db(gain_db)) / lout
-        t_in_cold = two_response_temperature_k(
-            loss_output_temperature_k(tc, lin_s, tp_in),
-            loss_output_temperature_k(tc, lin_i, tp_in),
-            r,
-        )
+        t_in_cold = parts["cold_in"]  # both bands' cold source through the input loss
         te1 = te_ssb + loss_te_k(lout, tp_out) / (g_path * lout)
         margin = margin_db((t_in_cold + te1) * g_path, calibration.te_k)
-        nf_unc = _nf_and_slope(float(props["te_unc"].value), r, t0, nf_type)[0]
+        nf_unc = _nf_and_slope(float(te_unc_value), r, t0, nf_type)[0]
         correction = nf_unc - nf_db
     u_te_k = u_nf * t0 * float(ssb_factor_from_te_k(te_ssb, r, t0)) / DB_PER_NEPER_POWER
     if nf_type == "dsb":
@@ -765,14 +971,13 @@ def converter_gain_method_point(
         + (_db(lout) if gain_includes_output_loss else 0.0)
     )
 
-    def model(n_meas, n_floor, g_db, rej_db, with_floor=floor is not None):
-        rr = 0.0 if rejection is None else ratio_from_db(-rej_db)
+    def te_ssb_of(with_floor: bool) -> float:
         te, _ = _gain_core(
-            n_meas,
-            n_floor if with_floor else None,
-            g_db,
+            dut.density_w_per_hz,
+            n_f if with_floor else None,
+            dut_gain_db,
             ts,
-            rr,
+            r,
             lin_s,
             lin_i,
             tp_in,
@@ -780,10 +985,7 @@ def converter_gain_method_point(
             tp_out,
             t_term,
         )
-        f_ssb = ssb_factor_from_te_k(te, rr, t0)
-        with np.errstate(invalid="ignore"):  # F <= 0 is refused after the propagation
-            nf = db_from_ratio(f_ssb if nf_type == "ssb" else dsb_from_ssb(f_ssb, rr))
-        return {"te_ssb": te, "nf_db": nf}
+        return float(te)
 
     n_f = floor.density_w_per_hz if floor is not None else 1.0
     values = {
@@ -799,13 +1001,27 @@ def converter_gain_method_point(
     if r > 0:
         u_sys["rej_db"] = u_rej
     try:
-        props = propagate(model, values, u_stat | u_sys)
+        te_ssb = te_ssb_of(floor is not None)
     except MeasurementError as exc:
         raise exc.add_context(freq_hz=rf, method="gain") from None
-    te_ssb = float(props["te_ssb"].value)
+    d_r = _rejection_sensitivities(rejection, r)
+    d_te = _gain_sensitivities(
+        values["n_meas"],
+        n_f if floor is not None else None,
+        dut_gain_db,
+        ts,
+        r,
+        d_r,
+        lin_s,
+        lin_i,
+        tp_in,
+        lout,
+        tp_out,
+        t_term,
+    )
     check_te_plausible(
         te_ssb,
-        float(props["te_ssb"].u()),
+        linear_propagation(te_ssb, d_te, u_stat | u_sys).u(),
         rf,
         "converter gain method",
         "the converter delivers less than its conversion gain says (LO off or too weak, a "
@@ -820,9 +1036,12 @@ def converter_gain_method_point(
             freq_hz=rf,
         )
     nf_db, te_k, _ = _nf_and_slope(te_ssb, r, t0, nf_type)
-    u_nf = float(props["nf_db"].u(u_stat))
+    nf_prop = linear_propagation(
+        nf_db, _nf_sensitivities(te_ssb, d_te, r, d_r, t0, nf_type), u_stat | u_sys
+    )
+    u_nf = float(nf_prop.u(u_stat))
     names = {"n_meas": "dut", "n_floor": "floor", "g_db": "gain", "rej_db": "image_rejection"}
-    contributions = {names[k]: float(v) for k, v in props["nf_db"].contributions.items()}
+    contributions = {names[k]: float(v) for k, v in nf_prop.contributions.items()}
     flags = density_flags(densities.values(), scatter_limit)
     margin = correction = nf_unc = None
     if floor is not None:
@@ -835,9 +1054,7 @@ def converter_gain_method_point(
                 freq_hz=rf,
             )
         margin = margin_db(dut.density_w_per_hz - analyzer_noise, analyzer_noise)
-        te_unc = float(
-            model(dut.density_w_per_hz, n_f, dut_gain_db, values["rej_db"], False)["te_ssb"]
-        )
+        te_unc = te_ssb_of(with_floor=False)
         nf_unc = _nf_and_slope(te_unc, r, t0, nf_type)[0]
         correction = nf_unc - nf_db
     u_te_k = u_nf * t0 * float(ssb_factor_from_te_k(te_ssb, r, t0)) / DB_PER_NEPER_POWER

@@ -16,8 +16,9 @@ path gain from the source plane (the termination) to the analyzer plane; input a
 named by the caller are de-embedded so the result is the DUT's own NF and gain.
 
 Uncertainty: ``u_nf_db`` is the statistical part, the densities' standard uncertainties
-propagated linearly (first-order GUM). The gain's own uncertainty ``u_gain_db`` does not average
-down, so it is reported beside it as a contribution in ``notes`` (and enters 1:1 in dB).
+propagated linearly (first-order GUM) with analytic sensitivities (docs/references.md §20).
+The gain's own uncertainty ``u_gain_db`` does not average down, so it is reported beside it as
+a contribution in ``notes`` (and enters 1:1 in dB).
 """
 
 from __future__ import annotations
@@ -44,7 +45,11 @@ from noisebench.science.methods._common import (
     margin_db,
     nf_db_from_te,
 )
-from noisebench.science.methods._propagation import propagate
+from noisebench.science.methods._propagation import (
+    Sensitivities,
+    chain,
+    linear_propagation,
+)
 from noisebench.science.physics import (
     BOLTZMANN_J_PER_K,
     DB_PER_NEPER_POWER,
@@ -53,11 +58,15 @@ from noisebench.science.physics import (
     FloatOrArray,
     checked_array,
     deembed_path_te_k,
+    deembed_path_te_k_partials,
+    floor_corrected_density_partials,
     floor_corrected_density_w_per_hz,
     nf_db_from_te_k,
     ratio_from_db,
+    ratio_from_db_slope,
     scalar_or_array,
     te_k_from_output_density,
+    te_k_from_output_density_partials,
 )
 from noisebench.science.point import Method, PointResult
 from noisebench.units import format_frequency
@@ -70,6 +79,16 @@ def _positive(field: str, value: ArrayLike, fix: str) -> np.ndarray:
     if np.any(arr <= 0):
         raise InputError(field, f"must be > 0 (got {float(np.ravel(arr[arr <= 0])[0])!r})", fix=fix)
     return arr
+
+
+def _no_dut_noise(idx: int) -> MeasurementError:
+    return MeasurementError(
+        "DUT reading is not above the floor reading minus the termination's kT "
+        f"(element {idx}): no DUT noise is left after the floor correction; check that "
+        "the DUT is connected and powered, and that the floor was measured with the "
+        "same settings",
+        element=idx,
+    )
 
 
 def gain_method_te_k(
@@ -104,14 +123,7 @@ def gain_method_te_k(
         )
         n_dut = floor_corrected_density_w_per_hz(n_meas, n_floor, t_term)
         if np.any(n_dut <= 0):
-            idx = int(np.flatnonzero(np.ravel(n_dut <= 0))[0])
-            raise MeasurementError(
-                "DUT reading is not above the floor reading minus the termination's kT "
-                f"(element {idx}): no DUT noise is left after the floor correction; check that "
-                "the DUT is connected and powered, and that the floor was measured with the "
-                "same settings",
-                element=idx,
-            )
+            raise _no_dut_noise(int(np.flatnonzero(np.ravel(n_dut <= 0))[0]))
     return scalar_or_array(te_k_from_output_density(n_dut, gain, ts))
 
 
@@ -144,6 +156,38 @@ def gain_method_nf_db(
             "source termination's own noise; check gain and temperatures"
         )
     return scalar_or_array(nf_db_from_te_k(te, t0))
+
+
+def _te_and_sensitivities(
+    n_m: float,
+    n_f: float | None,
+    g_db: float,
+    ts: float,
+    t_term: float,
+    lin: float,
+    tp_in: float,
+    lout: float,
+    tp_out: float,
+) -> tuple[float, Sensitivities]:
+    """Te_DUT (K) of the gain method's model (the kernels of :func:`gain_method_te_k` and the
+    loss de-embedding, on checked scalars) and dTe_DUT/d(n_meas, n_floor, g_db) by the chain
+    floor correction -> Te from the output density -> de-embedding (docs/references.md §20).
+    ``n_f`` None: no floor correction."""
+    g_path = ratio_from_db(g_db)
+    n_dut = n_m if n_f is None else floor_corrected_density_w_per_hz(n_m, n_f, t_term)
+    if n_dut <= 0:
+        raise _no_dut_noise(0)
+    d_n_dut = {"n_meas": 1.0}
+    if n_f is not None:
+        d_m, d_f, _ = floor_corrected_density_partials(n_m, n_f, t_term)
+        d_n_dut = {"n_meas": d_m, "n_floor": d_f}
+    d_g_path = {"g_db": float(ratio_from_db_slope(g_db))}
+    te_path = te_k_from_output_density(n_dut, g_path, ts)
+    p_n, p_g, _ = te_k_from_output_density_partials(n_dut, g_path, ts)
+    d_te_path = chain((p_n, d_n_dut), (p_g, d_g_path))
+    te_dut = deembed_path_te_k(te_path, g_path, lin, tp_in, lout, tp_out)[0]
+    q_te, q_g = deembed_path_te_k_partials(te_path, g_path, lin, tp_in, lout, tp_out)[:2]
+    return float(te_dut), chain((q_te, d_te_path), (q_g, d_g_path))
 
 
 def gain_method_point(
@@ -213,27 +257,18 @@ def gain_method_point(
         - (0.0 if includes_out else 10.0 * math.log10(lout))
     )
 
-    def te_dut_model(n_meas, n_floor, g_db, with_floor=floor is not None):
-        g_path = ratio_from_db(g_db)
-        te_path = gain_method_te_k(
-            n_meas,
-            g_path,
-            n_floor_w_per_hz=n_floor if with_floor else None,
-            source_temperature_k=ts,
-            floor_temperature_k=t_term,
+    def te_dut(with_floor: bool) -> tuple[float, Sensitivities]:
+        return _te_and_sensitivities(
+            n_m, n_f if with_floor else None, path_gain_db, ts, t_term, lin, tp_in, lout, tp_out
         )
-        return deembed_path_te_k(np.asarray(te_path), g_path, lin, tp_in, lout, tp_out)[0]
 
     n_m = dut.density_w_per_hz
     n_f = floor.density_w_per_hz if floor is not None else 1.0  # placeholder, unused w/o floor
-    values = {"n_meas": n_m, "n_floor": n_f, "g_db": path_gain_db}
     u_stat = {"n_meas": dut.u_density_w_per_hz}
     if floor is not None:
         u_stat["n_floor"] = floor.u_density_w_per_hz
     try:
-        stat = propagate(
-            lambda **kw: {"te": te_dut_model(**kw)}, values, u_stat | {"g_db": u_gain_db}
-        )["te"]
+        stat = linear_propagation(*te_dut(floor is not None), u_stat | {"g_db": u_gain_db})
     except MeasurementError as exc:
         raise exc.add_context(freq_hz=freq_hz, method="gain") from None
     te_k = float(stat.value)
@@ -273,7 +308,7 @@ def gain_method_point(
                 freq_hz=freq_hz,
             )
         margin = margin_db(n_m - analyzer_noise, analyzer_noise)
-        te_uncorrected = float(te_dut_model(n_m, n_f, path_gain_db, with_floor=False))
+        te_uncorrected = te_dut(with_floor=False)[0]
         nf_uncorrected = nf_db_from_te(te_uncorrected, t0)
         correction = nf_uncorrected - nf_db
 

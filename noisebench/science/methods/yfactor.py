@@ -19,9 +19,10 @@ both) and ``Te1 = Te12 - Te2/G1`` (Friis). Losses between the noise source and t
 de-embedded so the result is the DUT's own NF and gain.
 
 Uncertainty: ``u_nf_db`` is the statistical part (the four densities' standard uncertainties,
-propagated linearly). The ENR's uncertainty does not average down; its contribution, with the
-ENR fully correlated between calibration and measurement when the same value is used (same
-source, same frequency), is reported beside it in ``notes``.
+propagated linearly with analytic sensitivities, docs/references.md §20). The ENR's
+uncertainty does not average down; its contribution, with the ENR fully correlated between
+calibration and measurement when the same value is used (same source, same frequency), is
+reported beside it in ``notes``.
 
 Size: one method: the point function, its vectorized sweep form and the calibration step share
 one model function, which must stay in one place so the point and sweep forms cannot drift
@@ -58,7 +59,11 @@ from noisebench.science.methods._common import (
     margin_db,
     nf_db_from_te,
 )
-from noisebench.science.methods._propagation import propagate
+from noisebench.science.methods._propagation import (
+    Sensitivities,
+    chain,
+    linear_propagation,
+)
 from noisebench.science.physics import (
     DB_PER_NEPER_POWER,
     T0_K,
@@ -66,14 +71,21 @@ from noisebench.science.physics import (
     FloatOrArray,
     checked_array,
     db_from_ratio,
+    db_from_ratio_slope,
     deembed_path_te_k,
+    deembed_path_te_k_partials,
     gain_from_hot_cold,
+    gain_from_hot_cold_partials,
     nf_db_from_te_k,
     ratio_from_db,
+    ratio_from_db_slope,
     scalar_or_array,
     second_stage_corrected_te_k,
+    second_stage_corrected_te_k_partials,
     source_hot_temperature_k,
+    source_hot_temperature_partials,
     te_k_from_y,
+    te_k_from_y_partials,
 )
 from noisebench.science.point import Method, PointFlag, PointResult, calibration_point_flags
 from noisebench.units import format_frequency, format_frequency_range
@@ -213,18 +225,27 @@ class _Core(NamedTuple):
     te_dut_k: np.ndarray
     te_dut_uncorrected_k: np.ndarray | None
     gain_dut_lin: np.ndarray | None
+    th_k: np.ndarray  # hot temperature of the measurement's source
+    th_cal_k: np.ndarray | None  # and of the calibration's
 
 
 def _te_of_pair(hot, cold, enr_db, tc, t0, ref, freq_hz, what: str):
-    mask = hot <= cold
-    if np.any(mask):
+    mask = np.asarray(hot <= cold)
+    if mask.any():
         raise MeasurementError(
             f"{what} at {_where(freq_hz, mask)}: hot reading is not above the cold one; check "
             "that the noise source switches, is connected and has settled, and that the DUT is "
             "powered and connected (an unpowered DUT passes no source noise)"
         )
-    th = np.asarray(hot_temperature_k(ratio_from_db(enr_db), tc, t0, ref))
-    if np.any(th <= tc):
+    # the callers checked enr_db (finite), tc (> 0), t0 and ref; only the ENR's range is left
+    th = np.asarray(source_hot_temperature_k(ratio_from_db(enr_db), tc, t0, ref))
+    if not np.isfinite(th).all():
+        raise InputError(
+            "enr_db",
+            f"gives a hot temperature that is not finite ({_where(freq_hz, ~np.isfinite(th))})",
+            fix="give the ENR in dB (e.g. 15.0), not as a linear ratio",
+        )
+    if (th <= tc).any():
         raise InputError(
             "enr_db",
             f"gives a hot temperature not above the cold temperature ({_where(freq_hz, th <= tc)})",
@@ -246,7 +267,7 @@ def _core(
                 fix="calibrate first, or leave the output loss inside the calibration path",
             )
         te_dut = np.asarray(deembed_path_te_k(te12, 1.0, lin, tp_in, 1.0, tp_out)[0])
-        return _Core(y, te12, None, None, te12, te_dut, None, None)
+        return _Core(y, te12, None, None, te12, te_dut, None, None, th, None)
     y2, te2, th_cal = _te_of_pair(
         cal.hot, cal.cold, cal.enr_db, cal.tc_k, t0, ref, freq_hz, "Y-factor calibration"
     )
@@ -254,7 +275,82 @@ def _core(
     te1 = second_stage_corrected_te_k(te12, te2, g1)
     te_dut, g_dut = deembed_path_te_k(te1, g1, lin, tp_in, lout, tp_out)
     te_unc = deembed_path_te_k(te12, g1, lin, tp_in, lout, tp_out)[0]
-    return _Core(y, te12, te2, g1, te1, np.asarray(te_dut), np.asarray(te_unc), g_dut)
+    return _Core(y, te12, te2, g1, te1, np.asarray(te_dut), np.asarray(te_unc), g_dut, th, th_cal)
+
+
+def _pair_sensitivities(
+    hot: float,
+    cold: float,
+    th: float,
+    tc: float,
+    enr_db: float,
+    t0: float,
+    ref: str,
+    names: tuple[str, str, str],
+) -> tuple[Sensitivities, float]:
+    """(dTe/d(hot, cold, ENR_dB) under ``names``, dTh/dENR_dB) of one hot/cold pair:
+    ``Te = (Th - Y Tc)/(Y - 1)``, ``Y = hot/cold`` (dY/dhot = 1/cold, dY/dcold = -Y/cold),
+    ``Th`` from the ENR (docs/references.md §20)."""
+    y = hot / cold
+    d_y, d_th = (float(x) for x in te_k_from_y_partials(y, th, tc)[:2])
+    d_th_d_enr_lin = source_hot_temperature_partials(ratio_from_db(enr_db), tc, t0, ref)[0]
+    d_th_d_enr = float(d_th_d_enr_lin) * float(ratio_from_db_slope(enr_db))
+    h_name, c_name, enr_name = names
+    return {h_name: d_y / cold, c_name: -d_y * y / cold, enr_name: d_th * d_th_d_enr}, d_th_d_enr
+
+
+def _core_sensitivities(
+    values: dict[str, float],
+    enr_cal_name: str,
+    tc: float,
+    tc_cal: float | None,
+    t0: float,
+    ref: str,
+    lin: float,
+    tp_in: float,
+    lout: float,
+    tp_out: float,
+    r: _Core,
+) -> tuple[Sensitivities, Sensitivities | None]:
+    """Sensitivities of the DUT's Te (K) and, with a calibration, of its gain (dB) to the
+    inputs named in ``values`` (h, c, hc, cc, enr, and ``enr_cal_name`` for the calibration's
+    ENR: "enr" when one ENR serves both), by the chain rule through the kernels of
+    :func:`_core` (docs/references.md §20)."""
+    h, c, th = values["h"], values["c"], float(r.th_k)
+    d_te12, d_th = _pair_sensitivities(h, c, th, tc, values["enr"], t0, ref, ("h", "c", "enr"))
+    if r.g1_lin is None or r.te2_k is None or r.th_cal_k is None or tc_cal is None:
+        q_te = deembed_path_te_k_partials(r.te12_k, 1.0, lin, tp_in, 1.0, tp_out)[0]
+        return chain((q_te, d_te12)), None
+    hc, cc, th_cal = values["hc"], values["cc"], float(r.th_cal_k)
+    d_te2, d_th_cal = _pair_sensitivities(
+        hc, cc, th_cal, tc_cal, values["enr_cal"], t0, ref, ("hc", "cc", enr_cal_name)
+    )
+    g_h, g_c, g_th, _, g_hc, g_cc, g_thc, _ = gain_from_hot_cold_partials(
+        h, c, th, tc, hc, cc, th_cal, tc_cal
+    )
+    d_g1 = chain(
+        (g_h, {"h": 1.0}),
+        (g_c, {"c": 1.0}),
+        (g_hc, {"hc": 1.0}),
+        (g_cc, {"cc": 1.0}),
+        (g_th * d_th, {"enr": 1.0}),
+        (g_thc * d_th_cal, {enr_cal_name: 1.0}),
+    )
+    s_12, s_2, s_g = second_stage_corrected_te_k_partials(r.te12_k, r.te2_k, r.g1_lin)
+    d_te1 = chain((s_12, d_te12), (s_2, d_te2), (s_g, d_g1))
+    q_te, q_g = deembed_path_te_k_partials(r.te1_k, r.g1_lin, lin, tp_in, lout, tp_out)[:2]
+    # G_DUT = G1 L_in L_out with constant losses: dG_DUT_dB/dG1 = (10/ln 10)/G1
+    return chain((q_te, d_te1), (q_g, d_g1)), chain((db_from_ratio_slope(r.g1_lin), d_g1))
+
+
+Y_MINUS_ONE_MIN = 1e-6
+"""Y - 1 below which a pair is refused as too close to 1 to evaluate.
+
+Hot and cold then agree to six digits: the sensitivity to Y grows as 1/(Y - 1)^2 and a
+first-order uncertainty means nothing; no noise source reaching the analyzer gives this. (The
+numerical propagation this replaced failed at the same place, its 1e-6 relative step crossing
+Y = 1.)
+"""
 
 
 def _y_too_close_to_one(freq_hz: float, what: str, y: float) -> MeasurementError:
@@ -398,22 +494,18 @@ def calibrate_point(
     t0 = check_temperature("t0_k", t0_k)
     ref = _check_reference(enr_reference)
 
-    def te2_model(h, c):
-        return _te_of_pair(h, c, np.asarray(enr_db), tc, t0, ref, freq_hz, "Y-factor calibration")[
-            1
-        ]
-
-    te2_model(np.asarray(hot.density_w_per_hz), np.asarray(cold.density_w_per_hz))
-    try:
-        prop = propagate(
-            lambda h, c: {"te2": te2_model(h, c)},
-            {"h": hot.density_w_per_hz, "c": cold.density_w_per_hz},
-            {"h": hot.u_density_w_per_hz, "c": cold.u_density_w_per_hz},
-        )["te2"]
-    except MeasurementError:
-        y = hot.density_w_per_hz / cold.density_w_per_hz
-        raise _y_too_close_to_one(freq_hz, "Y-factor calibration", y) from None
-    te2 = float(prop.value)
+    h, c = hot.density_w_per_hz, cold.density_w_per_hz
+    y_arr, te2_arr, th = _te_of_pair(
+        h, c, np.asarray(enr_db), tc, t0, ref, freq_hz, "Y-factor calibration"
+    )
+    te2, y = float(te2_arr), float(y_arr)
+    if y - 1.0 <= Y_MINUS_ONE_MIN:
+        raise _y_too_close_to_one(freq_hz, "Y-factor calibration", y)
+    prop = linear_propagation(
+        te2,
+        _pair_sensitivities(h, c, float(th), tc, enr_db, t0, ref, ("h", "c", "enr"))[0],
+        {"h": hot.u_density_w_per_hz, "c": cold.u_density_w_per_hz},
+    )
     if te2 <= 0:
         raise MeasurementError(
             f"Y-factor calibration at {format_frequency(freq_hz)}: the system noise temperature "
@@ -421,7 +513,6 @@ def calibrate_point(
             f"{te2:.1f} K (not > 0); check the ENR value, enr_reference and cold_temperature_k",
             freq_hz=freq_hz,
         )
-    y = hot.density_w_per_hz / cold.density_w_per_hz
     flags = density_flags([hot, cold], DEFAULT_SCATTER_LIMIT)
     if 10.0 * math.log10(y) < y_min_db:
         flags.append(PointFlag.Y_TOO_SMALL)
@@ -542,21 +633,34 @@ def y_factor_point(
     if not enr_shared:
         u_enr["enr_cal"] = calibration.u_enr_db or 0.0  # type: ignore[union-attr]
 
-    def outputs(**kw) -> dict[str, np.ndarray]:
-        r = core(**kw)
-        out = {"te": r.te_dut_k}
-        if r.gain_dut_lin is not None:
-            out["gain_db"] = 10.0 * np.log10(r.gain_dut_lin)
-        return out
-
     try:
         result = core(**{k: np.asarray(v) for k, v in values.items()})
     except MeasurementError as exc:
         raise exc.add_context(freq_hz=freq_hz, method="y_factor") from None
-    try:
-        props = propagate(outputs, values, u_stat | u_enr)
-    except MeasurementError:
-        raise _y_too_close_to_one(freq_hz, "Y-factor measurement", float(result.y)) from None
+    closest = values["h"] / values["c"]
+    if calibration is not None:
+        closest = min(closest, values["hc"] / values["cc"])
+    if closest - 1.0 <= Y_MINUS_ONE_MIN:
+        raise _y_too_close_to_one(freq_hz, "Y-factor measurement", float(result.y))
+    sens_te, sens_gain = _core_sensitivities(
+        values,
+        "enr" if enr_shared else "enr_cal",
+        tc,
+        calibration.cold_temperature_k if calibration else None,
+        t0,
+        ref,
+        lin,
+        tp_in,
+        lout,
+        tp_out,
+        result,
+    )
+    props = {"te": linear_propagation(float(result.te_dut_k), sens_te, u_stat | u_enr)}
+    if sens_gain is not None:
+        assert result.gain_dut_lin is not None  # a calibration gives the gain (see _core)
+        props["gain_db"] = linear_propagation(
+            float(db_from_ratio(result.gain_dut_lin)), sens_gain, u_stat | u_enr
+        )
 
     te_k = float(result.te_dut_k)
     check_te_plausible(
