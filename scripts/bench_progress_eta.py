@@ -57,6 +57,12 @@ class Recording:
         self.points += 1
         self._note("point")
 
+    def round_start(self, readings, units):
+        pass
+
+    def reading_done(self, count=1):
+        pass
+
     def stop(self):
         self.log.append(("stop", time.monotonic(), 0.0))
 

@@ -1,7 +1,10 @@
 """Drift between the calibration and the measurement: what cannot be seen in the readings is
 bounded by a calibration age limit (``[calibration] max_age_s``) that is checked when each
 group is measured, on the bench's own clock when it keeps one (a simulated bench: the decision
-repeats exactly), and a point measured on an expired calibration is refused with the fix."""
+repeats exactly), and a point measured on an expired calibration is refused with the fix.
+
+Behaviour tests only: no outside value is checked here; an age limit on a calibration is
+common practice, its length is the plan's."""
 
 from __future__ import annotations
 

@@ -1,5 +1,7 @@
 """The test suite's own hygiene: reproducible property tests in CI, an inherited environment in
-subprocesses, and no short timeouts on normal exchanges (a loaded CI machine is not a fault)."""
+subprocesses, and no short timeouts on normal exchanges (a loaded CI machine is not a fault).
+
+Behaviour tests of the suite itself: no outside reference is involved."""
 
 from __future__ import annotations
 
@@ -88,3 +90,16 @@ def test_examples_that_can_drive_hardware_point_to_the_cautions():
     for name in ("examples/gain_real_bench.toml", "examples/user_tests/conftest.py"):
         text = (root / name).read_text(encoding="utf-8")
         assert "SAFETY" in text and "Safety first" in text and "manuals" in text, name
+
+
+def test_helper_modules_are_imported_the_way_ci_collects_them():
+    """CI runs the bare ``pytest`` command, which puts ``tests/`` (rootdir-relative conftest
+    folder) on the path but not the project root: ``from tests._helper import ...`` works
+    only under ``python -m pytest`` or a PYTHONPATH and fails collection in CI."""
+    package_import = re.compile(r"^\s*(from|import)\s+tests(\.|\s|$)")
+    offenders = []
+    for path in sorted(TESTS.glob("*.py")):
+        for number, line in enumerate(path.read_text(encoding="utf-8").splitlines(), start=1):
+            if package_import.match(line):
+                offenders.append(f"{path.name}:{number}: {line.strip()}")
+    assert offenders == []

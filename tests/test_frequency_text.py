@@ -1,6 +1,10 @@
 """Every frequency a person reads goes through ``noisebench.units`` (engineering units:
 ``2 GHz``, ``10 MHz to 18 GHz``), never a bare ``:.6g`` / ``%g`` number before ``Hz``
-(``2e+09 Hz``, ``3.3e+09 Hz not measured``)."""
+(``2e+09 Hz``, ``3.3e+09 Hz not measured``).
+
+Prefixes (k, M, G) and a space between the number and the unit follow BIPM, *The
+International System of Units*, 9th ed., 2019 (prefix table and the rule for writing a
+quantity; section numbers not given, from memory: §3 and §5.4.3)."""
 
 from __future__ import annotations
 

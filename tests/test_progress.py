@@ -3,6 +3,8 @@ the plan's forecast until real timings exist (fake clocks; no timing races)."""
 
 from __future__ import annotations
 
+import io
+
 import pytest
 from _sequencer_helpers import ideal_session, make_plan
 
@@ -10,8 +12,11 @@ from noisebench.running.progress import (
     CALIBRATION,
     DUT_GAIN,
     MEASUREMENT,
+    ROUND_SHARE,
     Eta,
     LogProgress,
+    RichProgress,
+    RoundFill,
     WorkForecast,
 )
 from noisebench.running.sequencer import Sequencer
@@ -94,6 +99,12 @@ class Recorder:
     def point_done(self, point):
         self.events.append(("point", point.freq_hz))
 
+    def round_start(self, readings, units):
+        self.events.append(("round", readings, units))
+
+    def reading_done(self, count=1):
+        self.events.append(("reading", count))
+
     def stop(self):
         self.events.append(("stop",))
 
@@ -129,3 +140,56 @@ def test_log_lines_show_the_phases_and_time_left(tmp_path, caplog):
     points = [x for x in lines if x.startswith("point ")]
     assert points[0].startswith("point 1/2 1 GHz: NF ") and "left" in points[0]
     assert points[1].startswith("point 2/2 2 GHz: NF ") and "gain 25.00 dB" in points[1]
+
+
+def test_round_fill_moves_through_a_round_and_never_back():
+    # fake events: 4 points in a sweep-level round of 8 readings, a second round of 8 for the
+    # two that missed their target, then the last two finish
+    fill = RoundFill(0, 4)
+    shown = [fill.shown]
+    fill.round_start(8, 4)
+    for _ in range(8):
+        fill.reading_done()
+        shown.append(fill.shown)
+    assert shown[1:] == sorted(shown[1:]) and len(set(shown)) == 9  # each reading moves it
+    assert shown[-1] == pytest.approx(ROUND_SHARE * 4)  # a share of the room, no point yet
+    fill.finish(2)
+    assert fill.shown == pytest.approx(2.0)
+    fill.round_start(8, 2)
+    for _ in range(8):
+        before = fill.shown
+        fill.reading_done()
+        assert before < fill.shown < 4  # never a point shown done before it is
+    fill.finish(2)
+    assert (fill.shown, fill.finished) == (4.0, 4)
+    assert fill.round_text() == "round 2: 8/8 readings"
+
+
+class _Watched(RichProgress):
+    """The live bar on a string, writing down what it shows after every event."""
+
+    def __init__(self, clock: FakeClock) -> None:
+        super().__init__(io.StringIO(), clock=clock)
+        self.seen: list[tuple[str, str, float, int, int]] = []
+
+    def _show(self, last: str | None = None) -> None:
+        super()._show(last)
+        self.seen.append((self._eta.current, self._fill.round_text(), *self.shown))
+
+
+def test_sweep_level_rounds_move_the_bar_before_any_point_ends(tmp_path):
+    freqs = (1.0e9, 1.5e9, 2.0e9, 2.5e9, 3.0e9, 3.5e9)
+    plan = make_plan("y_factor", freqs_hz=freqs, target=0.08, switching={"mode": "per_sweep"})
+    progress = _Watched(FakeClock())  # a clock that never moves: no timing in the test
+    Sequencer(plan, ideal_session(plan), progress=progress).run(tmp_path / "run")
+    measuring = [s for s in progress.seen if s[0] == MEASUREMENT]
+    shown = [s[2] for s in measuring]
+    assert shown == sorted(shown)  # never goes back
+    assert measuring[-1][2:] == (6.0, 6, 6)  # ends at N/N
+    # the sweep-level rounds: the bar moves while no point has finished yet
+    moving = [s for s in measuring if s[3] == 0 and s[2] > 0]
+    assert len(moving) >= 4 * (len(freqs) - 1) - 1
+    # the bar's fraction is never ahead of the points that can still finish in a round
+    assert all(s[2] <= s[4] for s in measuring)
+    rounds = {s[1].split(":")[0] for s in measuring if s[1]}
+    assert len(rounds) >= 2  # the adaptive averaging took more than one round

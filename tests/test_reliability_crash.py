@@ -1,7 +1,11 @@
 """Crash moments: kill -9 at seeded moments spread over a real run, resume, lose nothing and
 end with the noise figures of an uninterrupted run of the same seed; and the two moments that
 used to leave the user stuck (killed before the run existed, killed while the outputs of a
-complete run were written)."""
+complete run were written).
+
+Resumed points are compared with the uninterrupted run within z * sqrt(u^2 + u_ref^2), z the
+standard normal quantile for a 1e-4 false-alarm rate over the points (scipy.stats.norm; the
+two runs' measurement parts are independent, JCGM 100:2008 §5.1 for the sum in quadrature)."""
 
 from __future__ import annotations
 

@@ -3,6 +3,9 @@
 CI runs :data:`_fuzz.DEFAULT_CASES` cases per seed; ``NOISEBENCH_FUZZ_CASES=5000`` makes a
 nightly-size run. Every damaged input must be accepted or refused with a clean one-line error:
 no traceback, no hang, and no intact journal line lost.
+
+Behaviour tests: no outside reference is involved (seeded random mutation of inputs is common
+practice).
 """
 
 from __future__ import annotations

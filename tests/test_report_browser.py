@@ -1,11 +1,12 @@
 """The HTML report in a real headless browser (Debian's chromium, driven by playwright).
 
 What a reader on a phone (390 px) and on a desktop (1280 px) gets: no console error, no
-request other than the file itself, no sideways page overflow, every figure drawn at a
-readable size, every table's last column reachable (its box scrolls, with a visible cue at
-phone width). The browser is the system one (``chromium`` on PATH, or
-``NOISEBENCH_TEST_CHROMIUM``); playwright downloads none. Where neither playwright nor a
-chromium can be had, the tests are skipped with that reason (``.ci/run`` installs both).
+request other than the file itself, no sideways page overflow, every figure within the
+screen's width (scaled down on a phone, its drawn size on a desktop), every table's last
+column reachable (its box scrolls, with a visible cue at phone width). The browser is the
+system one (``chromium`` on PATH, or ``NOISEBENCH_TEST_CHROMIUM``); playwright downloads none.
+Where neither playwright nor a chromium can be had, the tests are skipped with that reason
+(``.ci/run`` installs both).
 """
 
 from __future__ import annotations
@@ -21,9 +22,8 @@ from noisebench.results.plots import FIGURE_SIZE_IN, render_figures
 from noisebench.results.report import write_report
 
 WIDTHS_PX = (390, 1280)
-#: The smallest share of a figure's drawn size it may be shown at: its 8-10 pt text then
-#: stays at least ~9 px high (figures are drawn at DEFAULT_DPI; below this, unreadable).
-MIN_FIGURE_SCALE = 0.7
+#: the page's side padding at most (report.css: clamp(.75rem, 3vw, 2.5rem) at 15 px)
+MAX_SIDE_PADDING_PX = 2.5 * 15
 PAGE_TIMEOUT_MS = 120_000  # generous: the machine may be busy; nothing here is about speed
 
 
@@ -106,7 +106,7 @@ def test_page_never_overflows_sideways(browser, report_file, width):
             """w => [...document.querySelectorAll('body *')]
                  .filter(e => { const r = e.getBoundingClientRect();
                                 return r.width > 0 && r.right > w + 0.5
-                                  && !e.closest('.wrap, .scroll, .figbox'); })
+                                  && !e.closest('.wrap, .scroll'); })
                  .map(e => e.tagName + '.' + e.className)""",
             width,
         )
@@ -116,12 +116,14 @@ def test_page_never_overflows_sideways(browser, report_file, width):
 
 
 @pytest.mark.parametrize("width", WIDTHS_PX)
-def test_figures_are_drawn_at_a_readable_size(browser, report_file, width):
+def test_figures_fit_the_screen_and_keep_their_shape(browser, report_file, width):
     context, page, _ = _open(browser, report_file, width)
     try:
         images = page.evaluate(
             """() => [...document.querySelectorAll('figure img')].map(i => ({
-                 complete: i.complete, natural: i.naturalWidth,
+                 complete: i.complete, natural: i.naturalWidth, naturalH: i.naturalHeight,
+                 content: i.clientWidth, contentH: i.clientHeight,
+                 left: i.getBoundingClientRect().left, right: i.getBoundingClientRect().right,
                  shown: i.getBoundingClientRect().width,
                  height: i.getBoundingClientRect().height }))"""
         )
@@ -130,7 +132,17 @@ def test_figures_are_drawn_at_a_readable_size(browser, report_file, width):
         for image in images:
             assert image["complete"] and image["natural"] > 100 * drawn_px  # decoded
             assert image["height"] > 0
-            assert image["shown"] >= MIN_FIGURE_SCALE * image["natural"], image
+            # on the screen whole: no figure wider than the viewport, none cut at an edge
+            assert image["shown"] <= width and image["left"] >= 0, image
+            assert image["right"] <= width + 0.5, image
+            # never blown up past its drawn size (blurry), and at 1280 px shown at that size
+            # (the content box: the 1 px border is outside the picture)
+            assert image["content"] <= image["natural"], image
+            if width >= image["natural"] + 2 * MAX_SIDE_PADDING_PX:
+                assert image["content"] == image["natural"]
+            # the aspect ratio is kept (height: auto): 1 px of rounding at most
+            ratio = image["naturalH"] / image["natural"]
+            assert image["contentH"] == pytest.approx(image["content"] * ratio, abs=1.0), image
     finally:
         context.close()
 

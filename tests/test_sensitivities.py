@@ -41,7 +41,7 @@ from noisebench.science.methods.converter import (
     converter_y_factor_sweep,
 )
 from noisebench.science.point import Method, PointResult
-from tests._numeric_propagation import contributions, numeric_sensitivities
+from _numeric_propagation import contributions, numeric_sensitivities
 
 K = scipy.constants.k  # exact SI value (scipy.constants)
 T0 = 290.0

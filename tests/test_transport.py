@@ -298,8 +298,8 @@ def test_port_without_listener_fails_with_a_communication_error():
     port = free.getsockname()[1]
     free.close()
     try:
-        # short timeout: nothing listens, so no reply can be missed
-        session = VisaSession(f"TCPIP0::127.0.0.1::{port}::SOCKET", timeout_s=0.3)
+        # generous timeout: nothing listens, so the failure comes from the refused connection
+        session = VisaSession(f"TCPIP0::127.0.0.1::{port}::SOCKET", timeout_s=SESSION_TIMEOUT_S)
     except CommunicationError:
         return  # some systems refuse at open
     try:
@@ -317,13 +317,13 @@ def test_bad_arguments_are_input_errors():
     with pytest.raises(InputError):
         VisaSession("TCPIP0::127.0.0.1::1::SOCKET", binary_reader="quick")
     with pytest.raises(CommunicationError, match="cannot open"):
-        # short timeout: the address is refused before any exchange
-        VisaSession("NOT::A::RESOURCE", timeout_s=0.3)
+        # the address is refused before any exchange, whatever the timeout
+        VisaSession("NOT::A::RESOURCE", timeout_s=SESSION_TIMEOUT_S)
 
 
 def test_repr_does_no_io_and_close_is_idempotent(peer):
-    # short timeout: this test does no exchange at all
-    session = VisaSession(peer.resource, timeout_s=0.3)
+    # this test does no exchange at all, so the timeout never runs
+    session = VisaSession(peer.resource, timeout_s=SESSION_TIMEOUT_S)
     peer.stop()
     assert repr(session) == f"<VisaSession {peer.resource!r} open>"
     session.close()

@@ -43,7 +43,6 @@ from datetime import datetime, timezone
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
-from noisebench.bench.acquisition import MarkerKind
 from noisebench.bench.instruments import Analyzer, Generator, NoiseSource
 from noisebench.errors import InputError
 from noisebench.running.gain_measurement import (
@@ -53,9 +52,8 @@ from noisebench.running.gain_measurement import (
     _check_safety,
     _measure_pass,
     _PassResult,
-    _reduce_pass,
-    _request,
     choose_level_dbm,
+    tone_pass,
 )
 from noisebench.units import format_frequency
 
@@ -162,18 +160,10 @@ def _dut_pass(
     if_hz: float,
 ) -> _PassResult:
     """One DUT-pass point: the analyzer at the IF, the generator at the RF."""
-    settings = analyzer.configure(_request(tone, if_hz))
-    band = tone.band_rbw * settings.rbw_hz
-    generator.set_output(False)
-    noise = analyzer.read_marker(if_hz, MarkerKind.BAND_POWER, band).value_db
-    generator.set_cw(rf_hz, level_dbm)
-    generator.set_output(True)
-    readings = [
-        analyzer.read_marker(if_hz, MarkerKind.BAND_POWER, band).value_db
-        for _ in range(tone.readings)
-    ]
-    generator.set_output(False)
-    return _reduce_pass(readings, noise, freq_hz=rf_hz, stage="DUT", min_snr=tone.min_snr_db)
+    result, _, _ = tone_pass(
+        analyzer, generator, tone, level_dbm, tone_hz=rf_hz, read_hz=if_hz, stage="DUT"
+    )
+    return result
 
 
 def _combine(

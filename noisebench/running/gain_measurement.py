@@ -335,6 +335,35 @@ def _check_safety(analyzer: Analyzer, plan: GainMeasurementPlan, level_dbm: floa
         )
 
 
+def tone_pass(
+    analyzer: Analyzer,
+    generator: Generator,
+    plan: GainMeasurementPlan,
+    level_dbm: float,
+    *,
+    tone_hz: float,
+    read_hz: float,
+    stage: str,
+) -> tuple[_PassResult, float, float]:
+    """One pass point: the band power at ``read_hz`` with the generator off (noise), then
+    ``plan.readings`` times with the generator on at ``tone_hz`` and ``level_dbm``; the
+    generator is off again on return. Returns the reduced pass, the applied RBW and the
+    marker band (Hz). ``tone_hz`` differs from ``read_hz`` through a frequency converter."""
+    settings = analyzer.configure(_request(plan, read_hz))
+    band = plan.band_rbw * settings.rbw_hz
+    generator.set_output(False)
+    noise = analyzer.read_marker(read_hz, MarkerKind.BAND_POWER, band).value_db
+    generator.set_cw(tone_hz, level_dbm)
+    generator.set_output(True)
+    readings = [
+        analyzer.read_marker(read_hz, MarkerKind.BAND_POWER, band).value_db
+        for _ in range(plan.readings)
+    ]
+    generator.set_output(False)
+    result = _reduce_pass(readings, noise, freq_hz=tone_hz, stage=stage, min_snr=plan.min_snr_db)
+    return result, settings.rbw_hz, band
+
+
 def _measure_pass(
     analyzer: Analyzer,
     generator: Generator,
@@ -345,20 +374,10 @@ def _measure_pass(
     results = []
     rbw = band = 0.0
     for freq in plan.freqs_hz:
-        settings = analyzer.configure(_request(plan, freq))
-        rbw, band = settings.rbw_hz, plan.band_rbw * settings.rbw_hz
-        generator.set_output(False)
-        noise = analyzer.read_marker(freq, MarkerKind.BAND_POWER, band).value_db
-        generator.set_cw(freq, level_dbm)
-        generator.set_output(True)
-        readings = [
-            analyzer.read_marker(freq, MarkerKind.BAND_POWER, band).value_db
-            for _ in range(plan.readings)
-        ]
-        generator.set_output(False)
-        results.append(
-            _reduce_pass(readings, noise, freq_hz=freq, stage=stage.value, min_snr=plan.min_snr_db)
+        result, rbw, band = tone_pass(
+            analyzer, generator, plan, level_dbm, tone_hz=freq, read_hz=freq, stage=stage.value
         )
+        results.append(result)
         logger.debug(
             "%s pass %s: tone %.2f dBm, SNR %.1f dB",
             stage.value,

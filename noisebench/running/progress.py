@@ -7,6 +7,11 @@ otherwise, so logs in CI and files stay clean. The sequencer calls
 :meth:`RunProgress.start` (with a way to get the forecast), :meth:`RunProgress.phase`,
 :meth:`RunProgress.step_done`, :meth:`RunProgress.point_done` and :meth:`RunProgress.stop`;
 :class:`Eta` turns the forecast and the timings so far into the time left.
+
+Inside a phase the sequencer also reports its rounds (:meth:`RunProgress.round_start` with the
+readings it plans and the units -- frequencies -- they serve, then
+:meth:`RunProgress.reading_done` per reading): with sweep-level Y-factor blocks no point ends
+before the end of a round, and :class:`RoundFill` moves the bar through the round instead.
 """
 
 from __future__ import annotations
@@ -45,6 +50,10 @@ class RunProgress(Protocol):
     def step_done(self, count: int = 1) -> None: ...
 
     def point_done(self, point: PointResult) -> None: ...
+
+    def round_start(self, readings: int, units: int) -> None: ...
+
+    def reading_done(self, count: int = 1) -> None: ...
 
     def stop(self) -> None: ...
 
@@ -194,6 +203,57 @@ class Eta:
         return (now - self._phase_t0) / done * max(total - done, 0.0)
 
 
+#: share of the room left to a round's units that the round fills while it reads; the rest
+#: is filled when its units finish (a round planned as the last may be followed by another,
+#: so the bar never runs ahead of the units not finished: a display choice, common practice)
+ROUND_SHARE = 0.5
+
+
+class RoundFill:
+    """How far a phase's bar is: units finished plus the readings of the current round.
+
+    ``shown`` (in the phase's units) never goes back: a round starts where the bar is and fills
+    :data:`ROUND_SHARE` of the room up to ``finished + units`` in proportion to its readings
+    done; finished units lift the bar to at least ``finished``. The bar reaches its total when
+    every unit has finished, and never shows a unit done before it is (the room is shared by
+    the round's own units)."""
+
+    def __init__(self, finished: int = 0, total: int | None = None) -> None:
+        self.finished = finished
+        self.total = total
+        self.shown = float(finished)
+        self.round = 0
+        self.planned = 0
+        self.read = 0
+        self._base = self.shown
+        self._span = 0.0
+
+    def round_start(self, readings: int, units: int) -> None:
+        self.round += 1
+        self.planned, self.read = max(readings, 0), 0
+        self._base = self.shown
+        ceiling = self.finished + units
+        if self.total is not None:
+            ceiling = min(ceiling, self.total)
+        room = max(ceiling - self._base, 0.0)
+        self._span = ROUND_SHARE * room
+
+    def reading_done(self, count: int = 1) -> None:
+        self.read += count
+        if self.planned > 0:
+            part = min(self.read / self.planned, 1.0)
+            self.shown = max(self.shown, self._base + self._span * part)
+
+    def finish(self, count: int = 1) -> None:
+        self.finished += count
+        self.shown = max(self.shown, float(self.finished))
+
+    def round_text(self) -> str:
+        if not self.round:
+            return ""
+        return f"round {self.round}: {min(self.read, self.planned)}/{self.planned} readings"
+
+
 def _forecast_text(eta: Eta) -> str:
     left = eta.remaining_s()
     return f", ~{format_duration(left)} left" if left is not None else ""
@@ -260,6 +320,13 @@ class LogProgress:
             "point %d/%d %s%s", self._done, self._total, describe_point(point), _forecast_text(eta)
         )
 
+    def round_start(self, readings: int, units: int) -> None:
+        eta = self._ensure()
+        self._log.debug("%s round: %d readings for %d units", eta.current, readings, units)
+
+    def reading_done(self, count: int = 1) -> None:
+        return None  # one line per reading would drown the log; the points' lines stay
+
     def stop(self) -> None:
         self._eta = None
 
@@ -271,20 +338,23 @@ class RichProgress:
         self, stream: IO[str] | None = None, *, clock: Callable[[], float] = time.monotonic
     ) -> None:
         from rich.console import Console
-        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
+        from rich.progress import BarColumn, Progress, TextColumn
 
         self._eta = Eta(clock)
         self._clock = clock
         self._progress = Progress(
             TextColumn("{task.description}"),
             BarColumn(),
-            MofNCompleteColumn(),
+            TextColumn("{task.fields[count]}"),
+            TextColumn("{task.fields[round]}"),
             TextColumn("{task.fields[left]}"),
             TextColumn("{task.fields[last]}"),
             console=Console(file=stream or sys.stderr),
             transient=False,
         )
         self._task: TaskID | None = None
+        self._fill = RoundFill()
+        self._size = 0
         self._label = ""
         self._total = 0
         self._done = 0
@@ -316,9 +386,35 @@ class RichProgress:
         completed = self._done if name == MEASUREMENT else 0
         size = self._done + total if name == MEASUREMENT else total
         title = f"{self._label} {name}".strip()
+        self._fill, self._size = RoundFill(completed, size), size
+        counts = self._counts()
         self._task = self._progress.add_task(
-            title, total=size, completed=completed, last="", left=self._left()
+            title,
+            total=size,
+            completed=completed,
+            last="",
+            left=self._left(),
+            count=counts["count"],
+            round=counts["round"],
         )
+
+    def _counts(self) -> dict[str, str]:
+        unit = "points" if self._eta.current == MEASUREMENT else "done"
+        count = f"{self._fill.finished}/{self._size} {unit}"
+        return {"count": count, "round": self._fill.round_text()}
+
+    def _show(self, last: str | None = None) -> None:
+        assert self._task is not None  # phase() added the task
+        counts = self._counts()
+        self._progress.update(
+            self._task,
+            completed=self._fill.shown,
+            left=self._left(),
+            count=counts["count"],
+            round=counts["round"],
+        )
+        if last is not None:
+            self._progress.update(self._task, last=last)
 
     def step_done(self, count: int = 1) -> None:
         if self._task is None:
@@ -326,16 +422,33 @@ class RichProgress:
         self._eta.advance(count)
         if self._eta.current == MEASUREMENT:
             self._done += count
-        assert self._task is not None  # phase() added the task
-        self._progress.update(self._task, advance=count, left=self._left())
+        self._fill.finish(count)
+        self._show()
 
     def point_done(self, point: PointResult) -> None:
         if self._task is None or self._eta.current != MEASUREMENT:
             self.phase(MEASUREMENT, self._total - self._done)
         self._eta.advance(1, point.freq_hz)
         self._done += 1
-        assert self._task is not None  # phase() added the task
-        self._progress.update(self._task, advance=1, last=describe_point(point), left=self._left())
+        self._fill.finish(1)
+        self._show(last=describe_point(point))
+
+    def round_start(self, readings: int, units: int) -> None:
+        if self._task is None:
+            self.phase(MEASUREMENT, self._total - self._done)
+        self._fill.round_start(readings, units)
+        self._show()
+
+    def reading_done(self, count: int = 1) -> None:
+        if self._task is None:
+            return
+        self._fill.reading_done(count)
+        self._show()
+
+    @property
+    def shown(self) -> tuple[float, int, int]:
+        """What the bar shows now: (completed, units finished, total) of the current phase."""
+        return self._fill.shown, self._fill.finished, self._size
 
     def stop(self) -> None:
         if self._running:
@@ -364,6 +477,12 @@ class NullProgress:
         return None
 
     def point_done(self, point: PointResult) -> None:
+        return None
+
+    def round_start(self, readings: int, units: int) -> None:
+        return None
+
+    def reading_done(self, count: int = 1) -> None:
         return None
 
     def stop(self) -> None:

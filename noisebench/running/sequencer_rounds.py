@@ -114,15 +114,19 @@ class AveragingRounds(SequencerCore):
     ) -> list[PowerCheck]:
         """One round: ``floor``/``dut`` once, or hot-cold-cold-hot."""
         if readings.names in (("floor",), ("dut",)):
+            self.progress.round_start(1, len(group.freqs_hz))
             readings.add(readings.names[0], self._acquire(group, per_trace, budget))
+            self.progress.reading_done()
             return []
         checks = []
+        self.progress.round_start(4, len(group.freqs_hz))
         for hot in (True, False, False, True):
             check = self._set_hot(hot, budget, connection, group)
             if check is not None:
                 checks.append(check)
             densities = self._acquire(group, per_trace, budget)
             readings.add("hot" if hot else "cold", densities)
+            self.progress.reading_done()
             if not hot and connection is Connection.DUT:
                 self._guard().observe_cold([d.density_w_per_hz for d in densities])
         return checks

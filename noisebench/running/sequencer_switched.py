@@ -211,6 +211,8 @@ class SwitchedSweep(MeasurementSteps):
                     )
                 except MeasurementError as exc:
                     run.failed = exc
+                else:
+                    self.progress.reading_done()
         if monitor is None:
             return
         check = self._monitor_check(monitor)
@@ -218,6 +220,11 @@ class SwitchedSweep(MeasurementSteps):
             for run in block:
                 run.drift_checks.append(check)
                 run.monitor_hz.append(monitor.group.freqs_hz[0])
+
+    def _round_progress(self, active: list[_GroupRun]) -> None:
+        """Tell the progress display a sweep-level round starts: four readings per group,
+        for the groups' frequencies (no point ends before the round does)."""
+        self.progress.round_start(4 * len(active), sum(len(r.group.freqs_hz) for r in active))
 
     @staticmethod
     def _monitor_check(monitor: _GroupRun) -> DriftCheck | None:
@@ -308,6 +315,7 @@ class SwitchedSweep(MeasurementSteps):
         ]
         active = list(runs)
         while active:
+            self._round_progress(active)
             for block in self._blocks(active):
                 self._run_block(block, Connection.THROUGH)
             decisions = {}
@@ -422,6 +430,7 @@ class SwitchedSweep(MeasurementSteps):
         calibrations = {r.group.index: self._calibration_for(r.group) for r in runs}
         active = list(runs)
         while active:
+            self._round_progress(active)
             for block in self._blocks(active):
                 self._run_block(block, Connection.DUT)
             decisions = {}
