@@ -20,6 +20,7 @@ import math
 import numpy as np
 import pytest
 import scipy.constants
+from _numeric_propagation import contributions, numeric_sensitivities
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from uncertainties import ufloat, umath
@@ -41,7 +42,6 @@ from noisebench.science.methods.converter import (
     converter_y_factor_sweep,
 )
 from noisebench.science.point import Method, PointResult
-from _numeric_propagation import contributions, numeric_sensitivities
 
 K = scipy.constants.k  # exact SI value (scipy.constants)
 T0 = 290.0
