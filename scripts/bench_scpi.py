@@ -10,10 +10,12 @@ identification, first calibration set-up): this process's CPU time, and the SCPI
 sent, counted at the VISA session: *messages* (every write and query, the ``*OPC?`` wait and
 error-queue reads included; a compound line ``A;:B`` is one message) and *commands* (the
 program message units in them, a compound counted once per unit). Prints both against the
-target (<= 30 per point) with the ratio, the CPU against <= 5 ms per point, and the commands by
-kind. With ``--repeat N`` both runs are made N times and the CPU per point is the smallest of
-the N differences (CPU time on a shared machine is inflated by other load, never deflated:
-the timeit module's advice); the counts are the same every time (fixed seed).
+target (<= 30 per point) with the ratio, the CPU against <= 5 ms per point, and the commands per
+point by kind (settings sent, read-back queries, acquisition start and wait, trace fetch, error
+queue, noise-source switching: see ``kind_of``) and by header. With ``--repeat N`` both runs
+are made N times and the CPU per point is the smallest of the N differences (CPU time on a
+shared machine is inflated by other load, never deflated: the timeit module's advice); the
+counts are the same every time (fixed seed).
 """
 
 from __future__ import annotations
@@ -36,11 +38,16 @@ from noisebench.sims.bench import SimulatedBench
 TARGET_COMMANDS = 30
 TARGET_CPU_MS = 5.0
 COUNTS: collections.Counter[str] = collections.Counter()  # commands by header
+KINDS: collections.Counter[str] = collections.Counter()  # commands by kind (see kind_of)
 MESSAGES = [0]  # program messages (lines) sent
+SWITCHING: set[str] = set()  # resources that switch the noise source (the DC supply)
+KIND_ORDER = ("settings", "read-back", "acquisition", "fetch", "error queue", "switching", "other")
 
 
 def units(message: str) -> list[str]:
     """The program message units of one line (split at ``;`` outside quoted strings)."""
+    if "'" not in message and '"' not in message:  # the common case, cheap: the counting's
+        return [u.strip() for u in message.split(";") if u.strip()]  # CPU is this process's
     out, current, quote = [], "", ""
     for char in message:
         if quote:
@@ -56,11 +63,32 @@ def units(message: str) -> list[str]:
     return [u.strip() for u in out if u.strip()]
 
 
+def kind_of(header: str, resource: str) -> str:
+    """What a command is for: *switching* (anything sent to the noise source's supply, the
+    analyzer's noise drive and the simulator's path), the *error queue*, the *acquisition*
+    (start, completion wait or poll, abort), the trace *fetch* (trace query and its format),
+    a *read-back* query of a setting, or a *settings* command."""
+    h = header.upper().lstrip(":")
+    if resource in SWITCHING or h.startswith(("OUTP:NOIS", "SIM")):
+        return "switching"
+    if h.startswith("SYST:ERR"):
+        return "error queue"
+    if h.startswith(("INIT:IMM", "*OPC", "*WAI", "*ESR", "ABOR")):
+        return "acquisition"
+    if h.startswith(("TRAC", "FORM")):
+        return "fetch"
+    if h.startswith("*"):
+        return "other"
+    return "read-back" if h.endswith("?") else "settings"
+
+
 def _counting(method):
     def wrapped(self, command, *args, **kwargs):
         MESSAGES[0] += 1
         for unit in units(command):
-            COUNTS[unit.split()[0].lstrip(":")] += 1
+            header = unit.split()[0].lstrip(":")
+            COUNTS[header] += 1
+            KINDS[kind_of(header, self.resource)] += 1
         return method(self, command, *args, **kwargs)
 
     return wrapped
@@ -85,6 +113,7 @@ def start_server() -> tuple[subprocess.Popen, dict[str, str]]:
     if len(resources) < 3:
         proc.kill()
         raise SystemExit("the SCPI simulator did not start")
+    SWITCHING.add(resources["supply"])
     return proc, resources
 
 
@@ -115,8 +144,11 @@ def plan_for(resources: dict[str, str], points: int, target: float, folder: Path
     return plan
 
 
-def run(resources: dict[str, str], points: int, target: float) -> tuple[float, int, int, int, dict]:
+def run(
+    resources: dict[str, str], points: int, target: float
+) -> tuple[float, int, int, int, dict, dict]:
     COUNTS.clear()
+    KINDS.clear()
     MESSAGES[0] = 0
     with tempfile.TemporaryDirectory(prefix="nb_scpi_") as tmp:
         plan = plan_for(resources, points, target, Path(tmp))
@@ -127,7 +159,7 @@ def run(resources: dict[str, str], points: int, target: float) -> tuple[float, i
         finally:
             session.close()
         cpu = time.process_time() - cpu0
-    return cpu, MESSAGES[0], sum(COUNTS.values()), len(record.points), dict(COUNTS)
+    return cpu, MESSAGES[0], sum(COUNTS.values()), len(record.points), dict(COUNTS), dict(KINDS)
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -144,8 +176,8 @@ def main(argv: list[str] | None = None) -> int:
         big, small = max(args.points), min(args.points)
         per_cpu: list[float] = []
         for _ in range(max(1, args.repeat)):
-            cpu_b, msg_b, cmd_b, n_b, kinds_b = run(resources, big, args.target)
-            cpu_s, msg_s, cmd_s, n_s, kinds_s = run(resources, small, args.target)
+            cpu_b, msg_b, cmd_b, n_b, heads_b, kinds_b = run(resources, big, args.target)
+            cpu_s, msg_s, cmd_s, n_s, heads_s, kinds_s = run(resources, small, args.target)
             per_cpu.append((cpu_b - cpu_s) / max(n_b - n_s, 1) * 1e3)
     finally:
         proc.terminate()
@@ -171,11 +203,16 @@ def main(argv: list[str] | None = None) -> int:
             f"per added point: {value:.1f}{unit} {what} (target <= {target:g}{unit}: "
             f"{value / target:.2f} x target, {verdict})"
         )
-    kinds = sorted(
-        ((k, (kinds_b.get(k, 0) - kinds_s.get(k, 0)) / extra) for k in kinds_b),
+    per_kind = [(k, (kinds_b.get(k, 0) - kinds_s.get(k, 0)) / extra) for k in KIND_ORDER]
+    print(
+        "  commands per point by kind: "
+        + ", ".join(f"{k} {v:.1f}" for k, v in per_kind if k in kinds_b or k in kinds_s)
+    )
+    heads = sorted(
+        ((k, (heads_b.get(k, 0) - heads_s.get(k, 0)) / extra) for k in heads_b),
         key=lambda kv: -kv[1],
     )
-    print("  per point by command: " + ", ".join(f"{k} {v:.1f}" for k, v in kinds[:12]))
+    print("  commands per point by header: " + ", ".join(f"{k} {v:.1f}" for k, v in heads[:12]))
     return 0
 
 

@@ -41,6 +41,7 @@ def first_acquisition() -> list:
     """The first start after connecting goes alone (its header not yet accepted)."""
     return [
         ("INIT:IMM", None),
+        ("*WAI", None),  # accepted alone once before it rides in one-line acquisitions
         ("*OPC?", "1"),
         ("FORM REAL,32", None),
         ("FORM:BORD NORM", None),
@@ -57,11 +58,14 @@ def block_then(text: str) -> bytes:
 TRACE_AND_ERRORS = compound_line(["TRAC? TRACE1", "SYST:ERR?"])
 
 
+def one_line(*held: str) -> str:
+    """One acquisition, one program message: held settings, the start, the IEEE 488.2 wait,
+    the trace query and the step's error query."""
+    return compound_line([*held, "INIT:IMM", "*WAI", "TRAC? TRACE1", "SYST:ERR?"])
+
+
 def compound_acquisition(*held: str) -> list:
-    return [
-        (compound_line([*held, "INIT:IMM", "*OPC?"]), "1"),
-        (TRACE_AND_ERRORS, block_then(OK)),
-    ]
+    return [(one_line(*held), block_then(OK))]
 
 
 def retune_read_back(center: str = "2000000000", reply: str = "2.0E+09") -> list:
@@ -147,8 +151,7 @@ def test_after_a_reconnect_a_known_setting_is_sent_and_read_back_again():
     dialogue = (
         warm()
         + [
-            (compound_line(["FREQ:CENT 1000000000", "INIT:IMM", "*OPC?"]), "1"),
-            (TRACE_AND_ERRORS, BlockError("block incomplete")),
+            (one_line("FREQ:CENT 1000000000"), BlockError("block incomplete")),
             (RECOVER, "reconnect"),
             ("*IDN?", IDN),
             ("SYST:ERR?", OK),
@@ -181,12 +184,11 @@ def test_after_a_reconnect_a_known_setting_is_sent_and_read_back_again():
 
 
 def test_an_error_in_a_compound_line_names_the_failing_setting():
-    line = compound_line(["FREQ:CENT 1000000000", "INIT:IMM", "*OPC?"])
+    line = one_line("FREQ:CENT 1000000000")
     dialogue = (
         warm()
         + [
-            (line, "1"),
-            (TRACE_AND_ERRORS, block_then('-222,"Data out of range"')),
+            (line, block_then('-222,"Data out of range"')),
             ("SYST:ERR?", OK),  # the rest of the queue
             # each setting of the line alone, the queue read after it
             ("FREQ:CENT 1000000000", None),
@@ -211,15 +213,13 @@ def test_an_error_in_a_compound_line_names_the_failing_setting():
     assert error.code == -222 and error.command == "FREQ:CENT 1000000000"
     assert error.context["in_compound"] == "TRAC? TRACE1"
     assert line in error.context["commands_since_last_check"]
-    assert TRACE_AND_ERRORS in error.context["commands_since_last_check"]
     assert "FREQ:CENT 1000000000" in str(error)
 
 
 def test_an_error_no_setting_repeats_names_the_step_and_lists_the_compound_line():
-    line = compound_line(["FREQ:CENT 1000000000", "INIT:IMM", "*OPC?"])
+    line = one_line("FREQ:CENT 1000000000")
     dialogue = warm() + [
-        (line, "1"),
-        (TRACE_AND_ERRORS, block_then('-230,"Data corrupt or stale"')),
+        (line, block_then('-230,"Data corrupt or stale"')),
         ("SYST:ERR?", OK),
         ("FREQ:CENT 1000000000", None),
         ("SYST:ERR?", OK),
@@ -240,8 +240,7 @@ def test_an_error_no_setting_repeats_names_the_step_and_lists_the_compound_line(
 def test_a_failed_trace_query_answers_only_the_error_entry_and_is_named():
     # a query that fails sends no reply unit (IEEE 488.2), so the line's reply is the entry
     dialogue = warm() + [
-        (compound_line(["INIT:IMM", "*OPC?"]), "1"),
-        (TRACE_AND_ERRORS, '-221,"Settings conflict"'),
+        (one_line(), '-221,"Settings conflict"'),
         ("SYST:ERR?", OK),
     ]
     with replay_dialogue(dialogue, analyzer) as sa:
@@ -287,3 +286,44 @@ def test_held_settings_are_sent_and_checked_before_any_other_exchange():
         sa.acquire_trace()
         sa.configure(REQUEST)  # held
         assert sa.verify_settings() == {}  # the read-back sees the held centre applied
+
+
+def test_one_acquisition_is_one_line_whose_deadline_covers_acquisition_and_transfer():
+    # IEEE 488.2 *WAI (mandatory common command, §10.39, from memory): the units after it
+    # run once the acquisition completed, so the trace and the error entry follow in the
+    # same reply; the block's deadline is the acquisition's timeout plus the transfer's
+    dialogue = warm() + compound_acquisition("FREQ:CENT 1000000000")
+    with replay_dialogue(dialogue, analyzer) as sa:
+        sa.configure(REQUEST)
+        sa.acquire_trace()
+        sa.configure(AT_2G)
+        sa.acquire_trace()
+        sa.configure(REQUEST)
+        trace = sa.acquire_trace()
+        limit = sa.acquisition_timeout_s()
+        deadlines = list(sa.transport.timeouts_s)
+    assert np.array_equal(trace.values, VALUES.astype(float))
+    transfer = STEP.connection.timeout_s + VALUES.size * 4 / 1.0e6  # generic: 1 MB/s
+    assert deadlines[-1] == pytest.approx(limit + transfer)
+    assert limit >= STEP.connection.timeout_s
+
+
+def test_a_profile_without_a_wait_command_starts_and_fetches_in_two_lines(tmp_path):
+    text = open(STEP.source, encoding="utf-8").read()
+    assert '\nwait = "*WAI"\n' in text
+    path = tmp_path / "no_wait.toml"
+    path.write_text(text.replace('\nwait = "*WAI"\n', "\nwait = false\n"))
+    profile = load_profile(path)
+    assert profile.common.wait is None
+    first = [item for item in first_acquisition() if item[0] != "*WAI"]
+    dialogue = (
+        configured()
+        + first
+        + retune_read_back()
+        + [(compound_line(["INIT:IMM", "*OPC?"]), "1"), (TRACE_AND_ERRORS, block_then(OK))]
+    )
+    with replay_dialogue(dialogue, lambda t: ScpiAnalyzer(t, profile)) as sa:
+        sa.configure(REQUEST)
+        sa.acquire_trace()
+        sa.configure(AT_2G)
+        assert np.array_equal(sa.acquire_trace().values, VALUES.astype(float))

@@ -393,8 +393,12 @@ def test_session_connect_is_idempotent_and_safe():
 
 
 def test_point_the_physics_refuses_is_skipped_and_reported(tmp_path):
-    # analyzer NF 60 dB at 5 GHz: the 15 dB ENR source cannot raise the system's noise, so the
-    # THROUGH calibration sees hot == cold there; 1 GHz is measured normally
+    # the source's calibration sheet is 10 dB low at 5 GHz (its only entry there): the hot
+    # temperature taken from it is about 1 200 K instead of about 9 100 K, so the DUT's noise
+    # temperature comes out about -250 K, hundreds of standard uncertainties below zero at any
+    # noise draw and in any reading order - a refusal of the physics, certain by construction
+    # (an analyzer too noisy for the source, the earlier scenario, left hot - cold to a coin
+    # flip); 1 GHz reads its own, correct entry and is measured normally
     # a limit every measured point meets by far: the unit still must not pass, since a
     # planned point is missing
     plan = make_plan(
@@ -406,14 +410,17 @@ def test_point_the_physics_refuses_is_skipped_and_reported(tmp_path):
             "require_coverage": False,
         },
     )
-    session = ideal_session(plan, analyzer__nf_db=[11.0, 11.0, 11.0, 11.5, 13.0, 16.0, 60.0, 60.0])
+    sheet_error_db = [0.0] * 16
+    sheet_error_db[7] = -10.0  # demo-lna's source table: index 7 is 5 GHz
+    session = ideal_session(plan, noise_source__calibration_error_db=sheet_error_db)
+    assert session.sim.scenario.noise_source.freq_hz[7] == 5e9
     seq = Sequencer(plan, session)
     record = seq.run(tmp_path / "run")
     assert record.info.status == "complete"
     assert [p.freq_hz for p in record.points] == [1e9]
     (skipped,) = record.info.notes["skipped_points"]
-    assert skipped["freq_hz"] == 5e9 and skipped["stage"] == "calibration"
-    assert "hot reading is not above the cold" in skipped["reason"]
+    assert skipped["freq_hz"] == 5e9 and skipped["stage"] == "measurement"
+    assert "standard uncertainties below zero" in skipped["reason"]
     assert not session.sim.noise_source.is_hot
     assert record.verdict["unit"] == "indeterminate"
     assert any("1 of 2 planned points were not measured" in n for n in record.verdict["notes"])

@@ -5,8 +5,9 @@ every setting (instruments round RBW, points, averages; the physics must use the
 values) and returns them as :class:`~noisebench.bench.acquisition.AcquisitionSettings`, with the
 filter shape (poles / FFT window), sweep time and detector samples the instrument reports.
 ``acquire_trace`` starts one complete averaged acquisition, waits for it with a timeout sized
-from the expected acquisition time (``*OPC?``, or status polling for long acquisitions),
-transfers the trace (binary block, or ASCII) and checks the error queue. Every operation runs
+from the expected acquisition time (``*OPC?``, ``*WAI`` in one line with the trace query on a
+compound profile, or status polling for long acquisitions), transfers the trace (binary
+block, or ASCII) and checks the error queue. Every operation runs
 under the instrument lock with the retry/recovery policy of
 :class:`~noisebench.drivers.scpi_channel.ScpiChannel`; after a reconnect the settings are read
 back, compared with the last applied ones (a difference means the instrument lost them, e.g.
@@ -591,8 +592,11 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         # the trace query and the step's error read in one line once both headers were
         # accepted alone (the first acquisition after connecting sends them apart)
         combined = self._channel.compound and self._started and self.transport.reads_block_then_text
-        elapsed = self._run_acquisition()
-        values = self._fetch_trace(settings, with_errors=combined)
+        if combined and self._one_line(settings):
+            elapsed, values = self._acquire_in_one_line(settings)
+        else:
+            elapsed = self._run_acquisition()
+            values = self._fetch_trace(settings, with_errors=combined)
         if not combined:
             self._channel.check_errors(self.spec.trace.query)
         self._deferred_names.clear()  # the settings that rode along were accepted
@@ -610,6 +614,59 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
             timestamp=datetime.now(timezone.utc),
             excluded=None,
         )
+
+    def _one_line(self, settings: AcquisitionSettings) -> bool:
+        """Whether this acquisition goes as one line (see :meth:`_acquire_in_one_line`): the
+        profile names a wait command, the trace goes as a binary block, and the acquisition
+        is short enough to wait for without status polling."""
+        acq = self.spec.acquisition
+        return (
+            self.profile.common.wait is not None
+            and self.trace_transfer == "binary"
+            and self._block_failures < 2
+            and not (acq.poll_start and self.expected_acquisition_time_s() > acq.poll_above_s)
+        )
+
+    def _acquire_in_one_line(self, settings: AcquisitionSettings) -> tuple[float, np.ndarray]:
+        """Held settings, the start, the wait (IEEE 488.2 ``*WAI``: the next unit runs once
+        the acquisition completed), the trace query and the step's error query in one
+        program message: one exchange per acquisition. The reply is the block, ``;`` and
+        the error entry; its deadline covers the acquisition and the transfer. Returns the
+        wall time and the values."""
+        tr = self.spec.trace
+        wait = self.profile.common.wait
+        assert wait is not None  # _one_line checked it
+        limit = self.acquisition_timeout_s()
+        size = settings.points * (4 if tr.datatype == "f" else 8)
+        limit += self._channel.base_timeout_s + size / tr.transfer_rate_bytes_per_s
+        self._select_format("binary")
+        held = self._channel.take_deferred()
+        line = compound_line(
+            [*held, self.spec.acquisition.start, wait, tr.query, self.profile.common.error_query]
+        )
+        self._channel.sent_compound(line, held)
+        started = time.monotonic()
+        try:
+            got, reply = self.transport.query_block_then_text(
+                line, datatype=tr.datatype, big_endian=tr.big_endian, timeout_s=limit
+            )
+        except InstrumentTimeout as exc:
+            exc.add_context(timeout_s=round(limit, 3))
+            self._abort_quietly()
+            raise
+        except BlockError:
+            self._block_failures += 1
+            raise
+        elapsed = time.monotonic() - started
+        self._channel.check_errors(tr.query, first_reply=reply)
+        if got is None:
+            self._block_failures += 1
+            raise BlockError(
+                f"reply to {line!r} holds no binary block (only {reply!r})", command=tr.query
+            )
+        self._block_failures = 0
+        self._last_transfer = "binary"
+        return elapsed, _checked_values(got, settings.points, tr.query)
 
     def _run_acquisition(self) -> float:
         """Start one acquisition and wait for it; returns the wall time it took, seconds."""
@@ -630,6 +687,10 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
                     raise ReplyError(f"reply {reply!r} to {line!r} does not end in 1")
             else:
                 self._channel.write(acq.start, check=False)
+                wait = self.profile.common.wait
+                if self._channel.compound and wait is not None:
+                    # accepted alone once before it rides in one-line acquisitions
+                    self._channel.write(wait, check=False)
                 reply = self.transport.query_watched(self.profile.common.operation_complete, limit)
                 self._started = True
                 if reply.strip().lstrip("+") != "1":

@@ -718,6 +718,12 @@ class CommonProfile(_Section):
     identify: str = "*IDN?"
     clear_status: str | None = "*CLS"
     operation_complete: str = "*OPC?"
+    wait: str | None = Field(
+        default="*WAI",
+        description="IEEE 488.2 wait-to-continue (mandatory there): with compound lines one "
+        "acquisition is one line, held settings, start, this, the trace query and the error "
+        "query; false: the start and *OPC? go in one line and the trace in another",
+    )
     error_query: str = "SYST:ERR?"
     error_check: str = Field(
         default="each",
@@ -743,14 +749,15 @@ class CommonProfile(_Section):
     first_backoff_s: float = Field(default=0.5, gt=0, le=600)
     max_backoff_s: float = Field(default=8.0, gt=0, le=600)
 
-    _optional = field_validator("clear_status", mode="before")(_not_available)
+    _optional = field_validator("clear_status", "wait", mode="before")(_not_available)
 
     @model_validator(mode="after")
     def _check(self) -> CommonProfile:
         for key in ("identify", "operation_complete", "error_query"):
             _check_query(getattr(self, key))
-        if self.clear_status is not None:
-            _check_query(self.clear_status)
+        for key in ("clear_status", "wait"):
+            if getattr(self, key) is not None:
+                _check_query(getattr(self, key))
         return self
 
 

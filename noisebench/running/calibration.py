@@ -19,6 +19,7 @@ Otherwise it is measured again. The store serialises to the dict kept in the run
 
 from __future__ import annotations
 
+import bisect
 import math
 from collections.abc import Iterable
 from datetime import datetime, timezone
@@ -137,10 +138,37 @@ class CalibrationEntry(BaseModel):
 
 
 class CalibrationStore:
-    """The calibrations of a bench session (shared by runs on the same bench)."""
+    """The calibrations of a bench session (shared by runs on the same bench).
+
+    Look-ups go through an index of every entry's frequencies (sorted, searched by bisection):
+    only the entries holding the first asked frequency are checked, newest first, so a sweep
+    that looks up each of its N groups costs N log N instead of N^2 entry checks. The index is
+    rebuilt whenever ``entries`` changed (it is a public list: a resumed run prepends the
+    stored calibrations)."""
 
     def __init__(self, entries: Iterable[CalibrationEntry] = ()) -> None:
         self.entries: list[CalibrationEntry] = list(entries)
+        self._index_of: list[int] = []  # id() of each entry when the index was built
+        self._freqs: list[float] = []  # every entry's frequencies, sorted
+        self._owners: list[int] = []  # position in ``entries`` of each of ``_freqs``
+
+    def _candidates(self, freqs: list[float]) -> list[CalibrationEntry]:
+        """Entries holding ``freqs[0]`` (within the match tolerance), newest first; every
+        entry when ``freqs`` is empty."""
+        if not freqs:
+            return list(reversed(self.entries))
+        ids = [id(e) for e in self.entries]
+        if ids != self._index_of:
+            pairs = sorted((f, i) for i, e in enumerate(self.entries) for f in e.freqs_hz)
+            self._freqs = [f for f, _ in pairs]
+            self._owners = [i for _, i in pairs]
+            self._index_of = ids
+        f = freqs[0]
+        slack = 2 * FREQ_REL_TOL * abs(f)  # wider than math.isclose's: valid_for decides
+        lo = bisect.bisect_left(self._freqs, f - slack)
+        hi = bisect.bisect_right(self._freqs, f + slack)
+        positions = sorted(set(self._owners[lo:hi]), reverse=True)
+        return [self.entries[i] for i in positions]
 
     def find(
         self,
@@ -153,7 +181,7 @@ class CalibrationStore:
     ) -> CalibrationEntry | None:
         """The newest valid calibration for these settings and frequencies, or None."""
         freqs = list(freqs_hz)
-        for entry in reversed(self.entries):
+        for entry in self._candidates(freqs):
             if entry.valid_for(kind, settings, freqs, max_age_s=max_age_s, clock=clock):
                 return entry
         return None
@@ -168,7 +196,7 @@ class CalibrationStore:
     ) -> CalibrationEntry | None:
         """The newest calibration that would fit but for its age (None: there is none)."""
         freqs = list(freqs_hz)
-        for entry in reversed(self.entries):
+        for entry in self._candidates(freqs):
             if entry.valid_for(kind, settings, freqs, max_age_s=math.inf, clock=clock):
                 return entry
         return None

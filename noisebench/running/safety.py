@@ -264,6 +264,7 @@ class PowerGuard:
         self.cold_temperature_k = cold_temperature_k
         self.t0_k = t0_k
         self.max_cold_density_w_per_hz: float | None = None
+        self._expected: tuple[tuple, float] | None = None  # (inputs, bound) of the last call
 
     def observe_cold(self, densities_w_per_hz: list[float]) -> None:
         """Remember the highest cold density (W/Hz) read with the DUT in."""
@@ -282,7 +283,27 @@ class PowerGuard:
         return not declared and self.max_cold_density_w_per_hz is None
 
     def expected_hot_power_dbm(self, through: bool) -> float:
-        """Upper bound of the total power into the analyzer with the source hot, dBm."""
+        """Upper bound of the total power into the analyzer with the source hot, dBm (the
+        last bound is kept with its inputs: a sweep-level block checks every group before
+        one switch, all with the same bound)."""
+        inputs = (
+            through,
+            self.enr_db,
+            self.cold_temperature_k,
+            self.t0_k,
+            self.bandwidth_hz,
+            self.declared_gain_db,
+            self.declared_nf_db,
+            self.max_cold_density_w_per_hz,
+            self.dut_lines_dbm,
+        )
+        if self._expected is not None and self._expected[0] == inputs:
+            return self._expected[1]
+        bound = self._expected_hot_power_dbm(through)
+        self._expected = (inputs, bound)
+        return bound
+
+    def _expected_hot_power_dbm(self, through: bool) -> float:
         th = hot_source_temperature_k(self.enr_db, self.cold_temperature_k, self.t0_k)
         if through:
             return total_noise_power_dbm(th, 0.0, self.bandwidth_hz)

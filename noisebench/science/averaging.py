@@ -22,6 +22,7 @@ calibration) stays. :func:`averages_for_target` solves for the averages that rea
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -96,7 +97,14 @@ def _scatter_test(
         return None, 1.0, False
     chi2 = sum(((d.density_w_per_hz - mean) / d.u_density_w_per_hz) ** 2 for d in usable)
     birge = math.sqrt(chi2 / dof)
-    return chi2, birge, bool(chi2 > stats.chi2.isf(alpha, dof))
+    return chi2, birge, bool(chi2 > _chi2_isf(alpha, dof))
+
+
+@functools.lru_cache(maxsize=1024)
+def _chi2_isf(alpha: float, dof: int) -> float:
+    """The chi-square upper quantile (scipy; a handful of (alpha, dof) pairs per run, each
+    called for every combined reading, so it is kept)."""
+    return float(stats.chi2.isf(alpha, dof))
 
 
 _LAST_COPY: list[Any] = [None, 0, None]  # (settings, averages, copy) of the latest call

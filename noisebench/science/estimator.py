@@ -50,8 +50,9 @@ from __future__ import annotations
 import functools
 import logging
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import Any, TypeVar
 
 import numpy as np
 from scipy import ndimage, optimize, signal, special, stats
@@ -77,6 +78,7 @@ from noisebench.science.plausibility import check_trace_values
 from noisebench.units import format_frequency, format_frequency_range
 
 logger = logging.getLogger(__name__)
+T = TypeVar("T")
 
 #: default spur threshold, as a one-sided Gaussian tail (5 sigma: 2.9e-7 false alarms per point)
 DEFAULT_SPUR_THRESHOLD_SIGMA = 5.0
@@ -289,13 +291,13 @@ def _prepare(
             value=threshold_sigma,
             fix="use e.g. 5",
         )
-    model = point_model_for(s, field="trace.settings")
+    key = s.model_copy(update={"center_hz": 1.0})  # what the statistics depend on
+    model = _cached(("model", key), lambda: point_model_for(s, field="trace.settings"))
     power, to_density = _linear_power(trace)
     power = power / model.mean_ratio()
     zero_span = s.span_hz == 0 or trace.freq_hz.size == 1 or np.ptp(trace.freq_hz) == 0
-    lags_power = _power_kernel(trace, zero_span)
-    rel_var = model.relative_variance() if model.variance_known else None
-    kernel = model.correlation(lags_power) if model.variance_known else lags_power
+    spacing = 0.0 if zero_span else _uniform_spacing(trace.freq_hz)
+    rel_var, kernel = _kernel_of(trace, key, model, zero_span, spacing)
     excluded = np.zeros(power.size, dtype=bool)
     spurs = np.empty(0)
     widths = np.empty(0)
@@ -304,7 +306,13 @@ def _prepare(
     if reject_spurs and not zero_span and power.size >= MIN_SPUR_SEARCH_POINTS:
         search_var = rel_var if rel_var is not None else _robust_relative_variance(power)
         excluded, spurs, widths = _find_spurs(
-            trace, power, search_var, kernel, threshold_sigma, marked=trace.excluded
+            trace,
+            power,
+            search_var,
+            kernel,
+            threshold_sigma,
+            marked=trace.excluded,
+            spacing=spacing,
         )
     elif trace.excluded is not None:
         excluded, marked_hz, marked_widths = _marked_regions(trace.freq_hz, trace.excluded)
@@ -327,6 +335,44 @@ def _prepare(
         spur_halfwidth_hz=widths,
         zero_span=zero_span,
     )
+
+
+_STATISTICS_CACHE: dict[tuple, Any] = {}
+_STATISTICS_CACHE_SIZE = 512
+
+
+def _cached(key: tuple, compute: Callable[[], T]) -> T:
+    """``compute()``, kept under ``key``: the point model and the correlation kernel are
+    functions of the applied settings other than the centre (and of the point spacing), so a
+    sweep computes them once per setting instead of once per trace. Every number is what a
+    fresh computation gives, so results never depend on the cache; errors are not kept."""
+    found = _STATISTICS_CACHE.get(key, _MISSING)
+    if found is _MISSING:
+        found = compute()
+        if len(_STATISTICS_CACHE) >= _STATISTICS_CACHE_SIZE:
+            _STATISTICS_CACHE.clear()
+        _STATISTICS_CACHE[key] = found
+    return found
+
+
+_MISSING = object()
+
+
+def _kernel_of(
+    trace: Trace, key: AcquisitionSettings, model: PointModel, zero_span: bool, spacing: float
+) -> tuple[float | None, np.ndarray]:
+    """(predicted relative variance of a point or None, correlation kernel of the point
+    values), kept per (settings without the centre, points, exact point spacing)."""
+    n = trace.freq_hz.size
+
+    def compute() -> tuple[float | None, np.ndarray]:
+        lags_power = _power_kernel(trace, zero_span)
+        rel_var = model.relative_variance() if model.variance_known else None
+        kernel = model.correlation(lags_power) if model.variance_known else lags_power
+        kernel.flags.writeable = False  # kept in the cache: nobody may change it
+        return rel_var, kernel
+
+    return _cached(("kernel", key, n, zero_span, spacing), compute)
 
 
 def _linear_power(trace: Trace) -> tuple[np.ndarray, float]:
@@ -380,9 +426,25 @@ def _power_kernel(trace: Trace, zero_span: bool) -> np.ndarray:
     return rho[: int(keep[-1]) + 1]
 
 
+def _mean(x: np.ndarray) -> float:
+    """``float(np.mean(x))`` of a non-empty 1-D float array, bit for bit (the same pairwise
+    sum, divided by the count) without ``np.mean``'s dispatch, which costs more than the sum
+    on the few dozen points of a trace."""
+    return float(np.add.reduce(x)) / x.size
+
+
+def _median(x: np.ndarray) -> float:
+    """``float(np.median(x))`` of a non-empty 1-D array of finite values, bit for bit (the
+    middle value, or the mean of the two middle ones: ``0.5 (a + b)`` is exactly
+    ``(a + b) / 2``), from one sort instead of ``np.median``'s partition and dispatch."""
+    s = np.sort(x)
+    m = s.size // 2
+    return float(s[m]) if s.size % 2 else 0.5 * (float(s[m - 1]) + float(s[m]))
+
+
 def _uniform_spacing(freq_hz: np.ndarray) -> float:
     d = np.diff(freq_hz)
-    spacing = float(np.mean(d))
+    spacing = _mean(d)
     if spacing <= 0 or np.max(np.abs(d - spacing)) > 0.01 * abs(spacing):
         raise InputError(
             "trace.freq_hz",
@@ -467,13 +529,13 @@ def scatter_state(
         return None
     rho = float(kernel[lag]) if lag < kernel.size else 0.0
     d = power[lag:] - power[:-lag]
-    mean = float(np.mean(power))
+    mean = _mean(power)
     if usable is not None:
         pairs = usable[lag:] & usable[:-lag]
         if not np.any(pairs):
             return None
         d = d[pairs]
-        mean = float(np.mean(power[usable]))
+        mean = _mean(power[usable])
     d = d / mean
     expected = 2.0 * (1.0 - rho) * rel_var
     corr_points = max(1.0, 2.0 * float(np.sum(kernel)) - 1.0)
@@ -483,8 +545,8 @@ def scatter_state(
     dof = 2.0 * independent / (max(excess_kurtosis, 0.0) + 3.0)
     if dof < SCATTER_STATE_MIN_DOF:
         return None
-    ratio = math.sqrt(float(np.mean(d**2)) / expected)
-    mad = float(np.median(np.abs(d - np.median(d))))
+    ratio = math.sqrt(_mean(d**2) / expected)
+    mad = _median(np.abs(d - _median(d)))
     robust = 1.4826 * mad / math.sqrt(expected)
     low = _chi2_low_limit(dof)
     high = max(SCATTER_STATE_MAX_RATIO, 1.0 + 8.0 / math.sqrt(dof))
@@ -645,8 +707,8 @@ def _gamma_shape(rel_var: float) -> float:
 
 def _robust_relative_variance(power: np.ndarray) -> float:
     """Relative variance of the points from their median absolute deviation (spur-robust)."""
-    med = float(np.median(power))
-    mad = float(np.median(np.abs(power - med)))
+    med = _median(power)
+    mad = _median(np.abs(power - med))
     return max((1.4826 * mad / med) ** 2, 1e-12)
 
 
@@ -667,6 +729,18 @@ def _marked_regions(
         centres.append(0.5 * (lo + hi))
         widths.append(0.5 * (hi - lo) + spacing / 2)
     return mask, centres, widths
+
+
+@functools.lru_cache(maxsize=256)
+def _median_ratio(shape: float) -> float:
+    """Median over mean of a gamma(``shape``) point (cached: a sweep repeats its shape)."""
+    return float(special.gammaincinv(shape, 0.5) / shape)
+
+
+@functools.lru_cache(maxsize=64)
+def _normal_tail(sigma: float) -> float:
+    """P(Z > sigma) of a standard normal (cached)."""
+    return float(special.ndtr(-sigma))
 
 
 @functools.lru_cache(maxsize=256)
@@ -706,19 +780,20 @@ def _find_spurs(
     threshold_sigma: float,
     marked: np.ndarray | None = None,
     skirt_rel_var: float | None = None,
+    spacing: float | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Exclusion mask, spur frequencies and their excluded half-widths (Hz).
 
     ``marked``: points the instrument already marked unusable; they start excluded and are
     reported as lines (centre and half-width of each marked run). ``skirt_rel_var``: the
     relative variance that sizes each line's excluded skirt (default ``rel_var``, which sets
-    the detection threshold)."""
+    the detection threshold). ``spacing``: the trace's point spacing when the caller has it."""
     s = trace.settings
     f = trace.freq_hz
     n = power.size
-    spacing = _uniform_spacing(f)
+    spacing = _uniform_spacing(f) if spacing is None else spacing
     a = _gamma_shape(rel_var)
-    median_ratio = float(special.gammaincinv(a, 0.5) / a)
+    median_ratio = _median_ratio(a)
     # running-median window: ~SPUR_BASELINE_BINS independent bins, so the baseline itself is
     # quiet (its relative noise ~ 1.25 sigma / sqrt(bins)); narrower only for long traces
     corr_points = max(1.0, 2.0 * float(np.sum(kernel)) - 1.0)
@@ -728,9 +803,7 @@ def _find_spurs(
     # the threshold over the sample median that clean noise crosses with the design probability,
     # the median's own scatter included (its window holds this many independent bins)
     bins = max(1, round(min(window, n) / corr_points))
-    tail_ratio = median_ratio * median_threshold_ratio(
-        a, bins, float(special.ndtr(-threshold_sigma))
-    )
+    tail_ratio = median_ratio * median_threshold_ratio(a, bins, _normal_tail(threshold_sigma))
     # residual skirt allowed per point: a fraction of the relative resolution of the full trace
     skirt_var = rel_var if skirt_rel_var is None else skirt_rel_var
     skirt_level = SPUR_SKIRT_FRACTION * math.sqrt(skirt_var / n)
@@ -742,13 +815,13 @@ def _find_spurs(
         excluded, spurs, widths = _marked_regions(f, marked)
         if np.any(~excluded):
             noise_points = power[~excluded]  # marked points are no noise sample at all
-    baseline = np.full(n, float(np.median(noise_points)) / median_ratio)
+    baseline = np.full(n, _median(noise_points) / median_ratio)
     for _ in range(50):
         work = np.where(excluded, baseline * median_ratio, power)
         if short:
             # one median of all points, spurs included: a line moves it by one rank at most,
             # while dropping excluded points would lower it and let the next noise peak cross
-            baseline = np.full(n, float(np.median(noise_points)) / median_ratio)
+            baseline = np.full(n, _median(noise_points) / median_ratio)
         else:
             baseline = ndimage.median_filter(work, size=window, mode="mirror") / median_ratio
         hits = (power > tail_ratio * baseline) & ~excluded
@@ -795,7 +868,7 @@ def _exclude_known_lines(
     a = _gamma_shape(rel_var)
     median_ratio = float(special.gammaincinv(a, 0.5) / a)
     quiet = power[~excluded] if np.any(~excluded) else power
-    base = float(np.median(quiet)) / median_ratio
+    base = _median(quiet) / median_ratio
     skirt_level = SPUR_SKIRT_FRACTION * math.sqrt(rel_var / power.size)
     edge = float(s.rbw_filter.power_response(np.array([spacing / 2]), s.rbw_hz)[0])
     excluded = excluded.copy()
@@ -902,7 +975,7 @@ def _estimate_band(
             freq_hz=report_hz,
         )
     values = p.power[sl]
-    mean = float(np.mean(values[used]))  # > 0: every point is a positive power
+    mean = _mean(values[used])  # > 0: every point is a positive power
     stats_ = _band_statistics(values, used, p.kernel)
     rel_var, scatter_ratio = _relative_variance(p, stats_, mean)
     rel_u = math.sqrt(rel_var * stats_.s1) / n
@@ -957,7 +1030,39 @@ def _convolve_same(x: np.ndarray, sym: np.ndarray) -> np.ndarray:
     return np.convolve(x, sym)[half : half + x.size]
 
 
-def _band_statistics(values: np.ndarray, used: np.ndarray, kernel: np.ndarray) -> _BandStats:
+@dataclass(frozen=True)
+class _BandGeometry:
+    """What a band's statistics need besides its values: the used points and the kernel
+    only (the same for every trace of a sweep with the same settings and no spur)."""
+
+    n: int
+    s1: float
+    s2: float
+    mask: np.ndarray
+    t: np.ndarray | None  # centred, scaled point index (None: fewer than 3 points)
+    x: np.ndarray | None  # design columns, zero outside the used points
+    xtx: np.ndarray | None
+    tr_pc: float
+
+
+_GEOMETRY_CACHE: dict[tuple[bytes, bytes], _BandGeometry] = {}
+_GEOMETRY_CACHE_SIZE = 256
+
+
+def _band_geometry(used: np.ndarray, kernel: np.ndarray) -> _BandGeometry:
+    """:class:`_BandGeometry` of ``used`` and ``kernel``, kept per (kernel, used) pair: every
+    number is computed exactly as it would be afresh, so results do not depend on the cache."""
+    key = (kernel.tobytes(), used.tobytes())
+    geometry = _GEOMETRY_CACHE.get(key)
+    if geometry is None:
+        geometry = _compute_band_geometry(used, kernel)
+        if len(_GEOMETRY_CACHE) >= _GEOMETRY_CACHE_SIZE:
+            _GEOMETRY_CACHE.clear()
+        _GEOMETRY_CACHE[key] = geometry
+    return geometry
+
+
+def _compute_band_geometry(used: np.ndarray, kernel: np.ndarray) -> _BandGeometry:
     mask = used.astype(float)
     n = int(used.sum())
     sym = np.concatenate([kernel[:0:-1], kernel])
@@ -971,17 +1076,26 @@ def _band_statistics(values: np.ndarray, used: np.ndarray, kernel: np.ndarray) -
     s1 = float(np.sum(c_mask))
     s2 = float(np.sum((_convolve_same(mask, sym**2) if kernel.size > 1 else mask) * mask))
     if n < 3:
-        return _BandStats(n=n, s1=s1, s2=s2, rss=0.0, expected_rss_factor=0.0)
-    idx = np.arange(values.size, dtype=float)
+        return _BandGeometry(n, s1, s2, mask, None, None, None, 0.0)
+    idx = np.arange(used.size, dtype=float)
     t = (idx - idx[used].mean()) / max(float(np.ptp(idx[used])), 1.0)
-    x = np.stack([mask, t * mask])  # design columns, zero outside the used points
+    x = np.stack([mask, t * mask])
     xtx = x @ x.T
-    beta = np.linalg.solve(xtx, x @ (values * mask))
-    resid = (values - beta[0] - beta[1] * t) * mask
-    rss = float(resid @ resid)
     cx = np.stack([c_mask, corr_apply(x[1])])
     tr_pc = float(np.trace(np.linalg.solve(xtx, x @ cx.T)))
-    return _BandStats(n=n, s1=s1, s2=s2, rss=rss, expected_rss_factor=n - tr_pc)
+    for shared in (mask, t, x, xtx):  # kept in the cache: nobody may change them
+        shared.flags.writeable = False
+    return _BandGeometry(n, s1, s2, mask, t, x, xtx, tr_pc)
+
+
+def _band_statistics(values: np.ndarray, used: np.ndarray, kernel: np.ndarray) -> _BandStats:
+    g = _band_geometry(used, kernel)
+    if g.t is None or g.x is None or g.xtx is None:
+        return _BandStats(n=g.n, s1=g.s1, s2=g.s2, rss=0.0, expected_rss_factor=0.0)
+    beta = np.linalg.solve(g.xtx, g.x @ (values * g.mask))
+    resid = (values - beta[0] - beta[1] * g.t) * g.mask
+    rss = float(resid @ resid)
+    return _BandStats(n=g.n, s1=g.s1, s2=g.s2, rss=rss, expected_rss_factor=g.n - g.tr_pc)
 
 
 def _relative_variance(p: _Prepared, st: _BandStats, mean: float) -> tuple[float, float | None]:
