@@ -502,9 +502,8 @@ def test_marker_functions_use_the_last_trace(client, sim_server):
 
     client.write("FREQ:CENT 1e9;SPAN 20e6;:BAND 1e6;:DET RMS;:CALC:MARK:QUAN DENS")
     _acquire(client, points=201, averages=2)
-    clock_before = sim_server.bench.clock.now_s
-    density = float(client.query("CALC:MARK:Y?"))
     trace = sim_server.bench.analyzer.last_trace
+    density = float(client.query("CALC:MARK:Y?"))
     expected = marker_from_trace(trace, 1e9, MarkerKind.NOISE_DENSITY)
     assert density == pytest.approx(expected.value_db, abs=1e-4)  # float32 trace memory
     assert client.query("CALC:MARK:QUAN:CORR?") == "1"  # RMS detector: corrected density
@@ -513,8 +512,9 @@ def test_marker_functions_use_the_last_trace(client, sim_server):
     band_power = float(client.query("CALC:MARK:Y?"))
     expected = marker_from_trace(trace, 1e9, MarkerKind.BAND_POWER, 5e6)
     assert band_power == pytest.approx(expected.value_db, abs=1e-4)
-    # no new acquisition for a marker read (only wall time passed on the clock)
-    assert sim_server.bench.clock.now_s - clock_before < 1.0
+    # no new acquisition for a marker read: the trace is still the one acquired above (an
+    # identity check; the clock also follows wall time, which a loaded machine stretches)
+    assert trace is not None and sim_server.bench.analyzer.last_trace is trace
     assert client.errors() == []
 
 

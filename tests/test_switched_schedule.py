@@ -86,6 +86,8 @@ def test_drift_check_fits_lines_and_follows_chi_square_without_drift():
         p_values.append(check.p_value)
     p_values = np.array(p_values)
     assert check.dof == 5  # 8 readings, two levels and one common slope
+    # reference: scipy.stats.chi2.sf, the tail probability of the chi-square distribution
+    assert check.p_value == pytest.approx(stats.chi2.sf(check.chi2, check.dof), rel=1e-12)
     # uniform p-values: the share below 0.1 is binomial(2000, 0.1)
     share = np.mean(p_values < 0.1)
     assert share == pytest.approx(0.1, abs=5 * math.sqrt(0.1 * 0.9 / 2000))
