@@ -20,6 +20,7 @@ from noisebench.results.records import (
     RESULTS_CSV_FILE,
     RESULTS_JSON_FILE,
     RunRecord,
+    StoredSequence,
     _sorted_points,
 )
 
@@ -59,7 +60,9 @@ def model_json_pieces(model: BaseModel, pad: str = "") -> Iterator[str]:
             yield from model_json_pieces(value, pad + "  ")
         elif name in _PLAIN_FIELDS:
             yield from _plain_pieces(value, pad + "  ")
-        elif isinstance(value, list) and value and isinstance(value[0], BaseModel):
+        elif (
+            isinstance(value, (list, StoredSequence)) and value and isinstance(value[0], BaseModel)
+        ):
             inner = f"\n{pad}    "
             for item_index, item in enumerate(value):
                 text = item.model_dump_json(indent=2).replace("\n", inner)
@@ -74,13 +77,15 @@ def model_json_pieces(model: BaseModel, pad: str = "") -> Iterator[str]:
 def _plain_pieces(value: Any, pad: str) -> Iterator[str]:
     """Plain JSON, indented like pydantic's ``indent=2``; containers of containers are
     written child by child, anything else in one piece."""
+    if isinstance(value, StoredSequence) and not (value and isinstance(value[0], (dict, list))):
+        value = list(value)  # written item by item below only when its items are containers
     if isinstance(value, dict) and value:
         yield "{"
         for index, (key, item) in enumerate(value.items()):
             yield ("," if index else "") + f"\n{pad}  {json.dumps(key, ensure_ascii=False)}: "
             yield from _plain_pieces(item, pad + "  ")
         yield f"\n{pad}}}"
-    elif isinstance(value, list) and value and isinstance(value[0], (dict, list)):
+    elif isinstance(value, (list, StoredSequence)) and value and isinstance(value[0], (dict, list)):
         for index, item in enumerate(value):
             yield ("[" if index == 0 else ",") + f"\n{pad}  "
             yield from _plain_pieces(item, pad + "  ")
@@ -113,8 +118,9 @@ def csv_columns(record: RunRecord) -> list[str]:
 def csv_rows(record: RunRecord) -> Iterator[dict[str, str]]:
     """One dict of formatted cells per point, keys as :func:`csv_columns`."""
     columns = csv_columns(record)
-    budgets, verdicts = record.budgets_by_freq(), record.verdicts_by_freq()
-    for point in _sorted_points(record.points):
+    budgets, verdicts = _budget_lookup(record), record.verdicts_by_freq()
+    points = record.points  # a run's stored points come sorted, and are read one at a time
+    for point in points if isinstance(points, StoredSequence) else _sorted_points(points):
         row: dict[str, Any] = {name: getattr(point, name, None) for name in CSV_COLUMNS}
         row["flags"] = ";".join(flag.value for flag in point.flags)
         if point.conversion is not None:
@@ -128,6 +134,29 @@ def csv_rows(record: RunRecord) -> Iterator[dict[str, str]]:
         limit = verdict.get("limit")
         row["limit"] = json.dumps(limit) if isinstance(limit, (dict, list)) else limit
         yield {name: _cell(row.get(name)) for name in columns}
+
+
+class _SortedLookup:
+    """``record.budgets_by_freq()`` for stored budgets asked in rising frequency (a run's stored
+    points and budgets are both sorted): one pass over the budgets, one held at a time."""
+
+    def __init__(self, budgets: StoredSequence[dict[str, Any]]) -> None:
+        self._budgets = iter(budgets)
+        self._next = next(self._budgets, None)
+
+    def get(self, freq_hz: float) -> dict[str, Any] | None:
+        while self._next is not None:
+            key = self._next.get("freq_hz")
+            if key is not None and key >= freq_hz:
+                return self._next if key == freq_hz else None
+            self._next = next(self._budgets, None)  # below this point, or no frequency
+        return None
+
+
+def _budget_lookup(record: RunRecord) -> dict[float, dict[str, Any]] | _SortedLookup:
+    if isinstance(record.budgets, StoredSequence) and isinstance(record.points, StoredSequence):
+        return _SortedLookup(record.budgets)
+    return record.budgets_by_freq()
 
 
 def results_csv_pieces(record: RunRecord) -> Iterator[str]:

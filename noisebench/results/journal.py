@@ -18,6 +18,7 @@ from pydantic import ValidationError
 from noisebench.errors import InputError
 from noisebench.results.records import _clean_point
 from noisebench.results.run_files import describe_damage
+from noisebench.results.stored import JournalIndex
 from noisebench.science.point import PointResult
 from noisebench.units import format_frequency
 
@@ -71,7 +72,8 @@ _SURROGATE_ESCAPE = re.compile(rb"\\u[dD][89a-fA-F]")
 class _Journal:
     """What a journal holds, parsed tolerantly. ``valid_bytes`` ends after the last good line."""
 
-    def __init__(self) -> None:
+    def __init__(self, index: JournalIndex | None = None) -> None:
+        self.index = index  # where the points lie, when they are indexed instead of loaded
         self.points: list[PointResult] = []
         self.budgets: list[dict[str, Any]] = []
         self.calibrations: list[dict[str, Any]] = []
@@ -81,7 +83,7 @@ class _Journal:
         self.needs_newline = False
 
 
-def _parse_entry(line: bytes, where: str, journal: _Journal) -> None:
+def _parse_entry(line: bytes, where: str, journal: _Journal, offset: int = 0) -> None:
     entry = json.loads(line.decode("utf-8"))  # strict: no encoded surrogates
     if _SURROGATE_ESCAPE.search(line):  # "\ud800" escapes give text that cannot be written
         json.dumps(entry, ensure_ascii=False).encode("utf-8")  # UnicodeEncodeError: damaged
@@ -96,38 +98,45 @@ def _parse_entry(line: bytes, where: str, journal: _Journal) -> None:
             logger.warning(text)
             journal.warnings.append(text)
             return
-        journal.points.append(point)
+        if journal.index is not None:
+            journal.index.add(offset, len(line), point.freq_hz, entry.get("budget"))
+        else:
+            journal.points.append(point)
+            if entry.get("budget") is not None:
+                journal.budgets.append(entry["budget"])
         journal.done_freqs_hz.add(point.freq_hz)
-        if entry.get("budget") is not None:
-            journal.budgets.append(entry["budget"])
     elif kind == "calibration":
         journal.calibrations.append(entry["calibration"])
     else:
         raise ValueError(f"unknown journal entry kind {kind!r}")
 
 
-def _read_journal(path: Path, *, calibrations: bool = True) -> _Journal:
+def _read_journal(
+    path: Path, *, calibrations: bool = True, index: JournalIndex | None = None
+) -> _Journal:
     """Parse ``points.jsonl``. A torn last line is ignored with a warning, never raised.
 
     Appends are single writes ending in a newline, so only the unterminated final piece of the
     file can be torn; an unreadable line elsewhere is skipped with a warning and kept on disk.
     Read line by line: the file is never held whole in memory. ``calibrations=False`` skips
-    the calibration lines this process wrote itself (the writer keeps those it saved).
+    the calibration lines this process wrote itself (the writer keeps those it saved). With an
+    ``index`` the points are not kept: the index records where each kept point line lies
+    (:mod:`noisebench.results.stored` reads them on demand).
     """
-    journal = _Journal()
+    journal = _Journal(index)
     if not path.exists():
         return journal
     offset = 0
     with open(path, "rb") as handle:
-        for index, piece in enumerate(handle):
+        for number, piece in enumerate(handle, start=1):
             start, offset = offset, offset + len(piece)
             last = not piece.endswith(b"\n")  # only the file's final piece lacks one
             piece = piece.rstrip(b"\n")
             if not piece.strip() or (not calibrations and piece.startswith(_CALIBRATION_LINE)):
                 continue
-            where = f"{path.name} line {index + 1}"
+            where = f"{path.name} line {number}"
             try:
-                _parse_entry(piece, where, journal)
+                _parse_entry(piece, where, journal, start)
             except (ValueError, KeyError, TypeError, ValidationError, RecursionError) as exc:
                 if last:
                     text = (

@@ -102,12 +102,14 @@ from noisebench.results.records import (
     _utc_now,
 )
 from noisebench.results.run_files import RunFileError, read_model
+from noisebench.results.stored import JournalIndex, stored_views
 from noisebench.results.summary import format_summary, nf_extremes
 from noisebench.science.point import PointResult
 from noisebench.units import format_frequency
 
 logger = logging.getLogger(__name__)
 T = TypeVar("T")
+_APPEND_PIECE_CHARS = 1 << 16  # a large journal line is written in pieces of about this size
 
 # ----------------------------------------------------------------------------- helpers
 
@@ -286,7 +288,7 @@ class RunWriter:
                 f"must be a dict (got {type(calibration).__name__})",
                 fix="pass the calibration as a JSON-able dict or a model",
             )
-        self._append({"kind": "calibration", "calibration": calibration})
+        self._append({"kind": "calibration", "calibration": calibration}, large=True)
         self._calibrations.append(calibration)
         self.info = self.info.model_copy(update={"calibration": calibration})
         write_atomic(self.folder / RUN_INFO_FILE, model_json_pieces(self.info))
@@ -328,16 +330,20 @@ class RunWriter:
                 fix="pass UnitVerdict.to_dict() or the verdict object",
             )
         info = self.info.model_copy(update={"status": status, "ended_at": _utc_now()})
-        journal = _read_journal(self.folder / JOURNAL_FILE, calibrations=False)
+        # the points and budgets stay in the journal: the record reads them when asked
+        path = self.folder / JOURNAL_FILE
+        index = _read_journal(path, calibrations=False, index=JournalIndex()).index
+        assert index is not None  # asked for
+        points, budgets = stored_views(path, index)
+        del index
         record = RunRecord(
             info=info,
-            points=_sorted_points(journal.points),
-            budgets=_sorted_budgets(journal.budgets),
+            points=points,
+            budgets=budgets,
             verdict=verdict,
             calibrations=self._calibrations,
             warnings=self._warnings,
         )
-        del journal
         write_results(record, self.folder)
         write_atomic(self.folder / RUN_INFO_FILE, model_json_pieces(info))
         self.info = info
@@ -393,14 +399,33 @@ class RunWriter:
             )
         return {**budget, "freq_hz": freq_hz}
 
-    def _append(self, entry: dict[str, Any]) -> None:
-        line = (json.dumps(entry, allow_nan=False, separators=(",", ":")) + "\n").encode()
+    def _append(self, entry: dict[str, Any], *, large: bool = False) -> None:
+        """One journal line, fsync'ed. A ``large`` entry (a long sweep's calibration) is
+        encoded and written in pieces of about 64 kB, never held whole: a process killed
+        between the pieces leaves an incomplete last line, which the reader ignores and
+        ``resume`` cuts off, as for a torn single write."""
         assert self._fd is not None
-        view = memoryview(line)
+        if large:
+            encoder = json.JSONEncoder(allow_nan=False, separators=(",", ":"))
+            pending: list[str] = []
+            size = 0
+            for piece in encoder.iterencode(entry):
+                pending.append(piece)
+                size += len(piece)
+                if size >= _APPEND_PIECE_CHARS:
+                    self._write("".join(pending).encode())
+                    pending, size = [], 0
+            self._write(("".join(pending) + "\n").encode())
+        else:
+            self._write((json.dumps(entry, allow_nan=False, separators=(",", ":")) + "\n").encode())
+        os.fsync(self._fd)
+
+    def _write(self, data: bytes) -> None:
+        assert self._fd is not None
+        view = memoryview(data)
         while view:
             written = os.write(self._fd, view)
             view = view[written:]
-        os.fsync(self._fd)
 
     def _close_files(self) -> None:
         if self._fd is not None:
