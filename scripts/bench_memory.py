@@ -4,10 +4,11 @@
 
 Each size runs in a fresh child process (gain method, constant gain, 1-2 GHz, points shared
 by traces up to 20 MHz wide, target 0.3 dB, no plots or report; the calibration never ages out,
-so every point is measured at every size: with the default hour, a 1 001-point sweep's first
-groups outlived their floor calibration and 28 % of the points were skipped), which reports its
-peak resident set size (``resource.getrusage``, kilobytes on Linux) before and after the run. The
-script prints the peak per size, the growth of the run's own memory from the smallest to the
+so no point is skipped for a stale floor: with the default hour, a 1 001-point sweep's first
+groups outlived their floor calibration and 28 % of the points were skipped; the demo's spur
+at 1.8 GHz still refuses one group of 200 at 10 001 points, and growth is counted per point
+measured), which reports its peak resident set size (``resource.getrusage``, kilobytes on
+Linux) before and after the run. The script prints the peak per size, the growth of the run's own memory from the smallest to the
 largest size, and that growth per added point: flat memory means the growth per point stays
 far below what keeping every trace would cost.
 """
@@ -39,7 +40,7 @@ plan = parse_plan({
     "sweep": {"segments": [{"start_hz": 1e9, "stop_hz": 2e9, "points": n}]},
     "gain": {"source": "constant", "value_db": 20.0},
     "expect": {"dut_gain_db": 20.0},
-    "calibration": {"max_age_s": 1e9},  # every point measured: none skipped for a stale floor
+    "calibration": {"max_age_s": 1e9},  # no point skipped for a stale floor
     "output": {"plots": False, "report": False},
 })
 sim = SimulatedBench.from_scenario("demo-lna", seed=1)
@@ -82,9 +83,6 @@ def main(argv: list[str] | None = None) -> int:
             print(out.stderr[-2000:])
             return 1
         row = json.loads(out.stdout.strip().splitlines()[-1])
-        if row["points"] != n:  # growth per point is only meaningful for whole sweeps
-            print(f"{n} points requested but {row['points']} measured: no comparison")
-            return 1
         rows.append(row)
         print(
             f"{n:>6} points requested, {row['points']} measured in {row['seconds']:.1f} s "
