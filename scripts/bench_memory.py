@@ -8,9 +8,10 @@ so no point is skipped for a stale floor: with the default hour, a 1 001-point s
 groups outlived their floor calibration and 28 % of the points were skipped; the demo's spur
 at 1.8 GHz still refuses one group of 200 at 10 001 points, and growth is counted per point
 measured), which reports its peak resident set size (``resource.getrusage``, kilobytes on
-Linux) before and after the run. The script prints the peak per size, the growth of the run's own memory from the smallest to the
-largest size, and that growth per added point: flat memory means the growth per point stays
-far below what keeping every trace would cost.
+Linux) before and after the run. The script prints the peak per size, the growth of the run's
+own memory from the smallest to the largest size, and that growth per added point next to the
+flat-memory target: flat memory means the growth per point stays far below what keeping
+every trace would cost.
 """
 
 from __future__ import annotations
