@@ -13,8 +13,10 @@ import pytest
 from test_results import FREQS_HZ, make_budget, make_info, make_point
 
 from noisebench.results.exports import record_json_pieces, results_csv_text
+from noisebench.results.journal import _read_journal
 from noisebench.results.records import RunRecord, StoredSequence
 from noisebench.results.store import JOURNAL_FILE, RunWriter, load_run
+from noisebench.results.stored import JournalIndex
 
 # a resumed run, in journal order: out of frequency order, with a duplicate and a gap
 ORDER_HZ = [FREQS_HZ[3], FREQS_HZ[0], FREQS_HZ[5], FREQS_HZ[1], FREQS_HZ[4]]
@@ -104,3 +106,25 @@ def test_an_empty_run_has_empty_stored_sequences(tmp_path):
     assert list(record.points) == [] and record.points == []
     text = (tmp_path / "run" / "results.json").read_text(encoding="utf-8")
     assert json.loads(text)["points"] == [] and json.loads(text)["budgets"] == []
+
+
+def test_skipping_a_long_calibration_line_keeps_every_point_and_offset(tmp_path):
+    # the helper's calibration line is longer than one skip chunk (64 kB)
+    writer = _finished(tmp_path / "run", damage=True)
+    writer.close()
+    path = tmp_path / "run" / JOURNAL_FILE
+    with open(path, "ab") as handle:  # a torn last line
+        handle.write(b'{"kind":"point","po')
+    whole = _read_journal(path)
+    skipped = _read_journal(path, calibrations=False)
+    indexed = _read_journal(path, calibrations=False, index=JournalIndex())
+    assert len(whole.calibrations) == 1 and not skipped.calibrations
+    assert skipped.points == whole.points and len(whole.points) == 5
+    assert skipped.warnings == whole.warnings and len(whole.warnings) == 3
+    assert skipped.valid_bytes == whole.valid_bytes == path.stat().st_size - 19
+    assert indexed.index is not None and not indexed.points
+    data = path.read_bytes()
+    lines = [
+        data[o : o + n] for o, n in zip(indexed.index.offsets, indexed.index.lengths, strict=True)
+    ]
+    assert [json.loads(line)["point"]["nf_db"] for line in lines] == [2.0, 3.0, 4.0, 5.0, 6.0]

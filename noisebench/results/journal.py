@@ -9,9 +9,9 @@ import logging
 import os
 import re
 import tempfile
-from collections.abc import Iterable
+from collections.abc import Iterable, Iterator
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 from pydantic import ValidationError
 
@@ -111,13 +111,39 @@ def _parse_entry(line: bytes, where: str, journal: _Journal, offset: int = 0) ->
         raise ValueError(f"unknown journal entry kind {kind!r}")
 
 
+_SKIP_CHUNK = 1 << 16
+
+
+def _journal_lines(handle: BinaryIO, skip: bytes | None) -> Iterator[tuple[int, bytes | None]]:
+    """Each line of ``handle`` with its newline, and its size in bytes; a line starting with
+    ``skip`` is read past in pieces and given as ``None`` (a long sweep's calibration line is
+    megabytes that a caller skipping it need never hold)."""
+    while True:
+        head = handle.readline(len(skip)) if skip else handle.readline()
+        if not head:
+            return
+        if skip is None or head.endswith(b"\n") or len(head) < len(skip):
+            yield len(head), head
+        elif head == skip:
+            size = len(head)
+            while True:
+                rest = handle.readline(_SKIP_CHUNK)
+                size += len(rest)
+                if not rest or rest.endswith(b"\n"):
+                    break
+            yield size, None
+        else:
+            line = head + handle.readline()
+            yield len(line), line
+
+
 def _read_journal(
     path: Path, *, calibrations: bool = True, index: JournalIndex | None = None
 ) -> _Journal:
     """Parse ``points.jsonl``. A torn last line is ignored with a warning, never raised.
 
-    Appends are single writes ending in a newline, so only the unterminated final piece of the
-    file can be torn; an unreadable line elsewhere is skipped with a warning and kept on disk.
+    Every append ends in a newline, so only the unterminated final piece of the file can be
+    torn; an unreadable line elsewhere is skipped with a warning and kept on disk.
     Read line by line: the file is never held whole in memory. ``calibrations=False`` skips
     the calibration lines this process wrote itself (the writer keeps those it saved). With an
     ``index`` the points are not kept: the index records where each kept point line lies
@@ -128,11 +154,14 @@ def _read_journal(
         return journal
     offset = 0
     with open(path, "rb") as handle:
-        for number, piece in enumerate(handle, start=1):
-            start, offset = offset, offset + len(piece)
+        skip = None if calibrations else _CALIBRATION_LINE
+        for number, (size, piece) in enumerate(_journal_lines(handle, skip), start=1):
+            start, offset = offset, offset + size
+            if piece is None:  # a skipped line, passed over without being held
+                continue
             last = not piece.endswith(b"\n")  # only the file's final piece lacks one
             piece = piece.rstrip(b"\n")
-            if not piece.strip() or (not calibrations and piece.startswith(_CALIBRATION_LINE)):
+            if not piece.strip():
                 continue
             where = f"{path.name} line {number}"
             try:
