@@ -12,7 +12,7 @@ import shutil
 import pytest
 from test_results import FREQS_HZ, make_budget, make_info, make_point
 
-from noisebench.results.exports import record_json_pieces, results_csv_text
+from noisebench.results.exports import model_json_pieces, record_json_pieces, results_csv_text
 from noisebench.results.journal import _read_journal
 from noisebench.results.records import RunRecord, StoredSequence
 from noisebench.results.store import JOURNAL_FILE, RunWriter, load_run
@@ -128,3 +128,14 @@ def test_skipping_a_long_calibration_line_keeps_every_point_and_offset(tmp_path)
         data[o : o + n] for o, n in zip(indexed.index.offsets, indexed.index.lengths, strict=True)
     ]
     assert [json.loads(line)["point"]["nf_db"] for line in lines] == [2.0, 3.0, 4.0, 5.0, 6.0]
+
+
+def test_pieces_of_a_long_calibration_are_pydantics_indented_json():
+    # lists longer and shorter than the piecewise threshold, nested, with non-ASCII text
+    density = {"freq_hz": 1e9, "u": 1.5e-22, "excluded": [], "settings": {"rbw_hz": 3e4}}
+    entries = [
+        {"freqs_hz": [1e9 + i] * (i % 50), "densities": {"floor": [density] * (i % 45)}}
+        for i in range(40)
+    ]
+    info = make_info(calibration={"entries": entries, "note": "µ"}, notes={"long": [{}] * 40})
+    assert "".join(model_json_pieces(info)) == info.model_dump_json(indent=2)

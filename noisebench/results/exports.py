@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import Any
 
 from pydantic import BaseModel
+from pydantic_core import to_json
 
 from noisebench.results.journal import write_atomic
 from noisebench.results.records import (
@@ -74,12 +75,32 @@ def model_json_pieces(model: BaseModel, pad: str = "") -> Iterator[str]:
     yield f"\n{pad}}}"
 
 
+_LONG_LIST = 32  # a list longer than this is written item by item (see _plain_pieces)
+
+
+def _large(value: Any) -> bool:
+    """Whether ``value`` holds a list longer than ``_LONG_LIST`` (checked no further than
+    needed: a long list answers at once)."""
+    if isinstance(value, list):
+        return len(value) > _LONG_LIST or any(
+            _large(v) for v in value if isinstance(v, (dict, list))
+        )
+    if isinstance(value, dict):
+        return any(_large(v) for v in value.values() if isinstance(v, (dict, list)))
+    return isinstance(value, StoredSequence)
+
+
 def _plain_pieces(value: Any, pad: str) -> Iterator[str]:
-    """Plain JSON, indented like pydantic's ``indent=2``; containers of containers are
-    written child by child, anything else in one piece."""
+    """Plain JSON, indented like pydantic's ``indent=2``. Containers that hold a long list
+    are written child by child, anything else in one ``pydantic_core.to_json`` (the same text:
+    a long sweep's calibration is never one string, and its thousands of small dicts are not
+    written leaf by leaf either). Values are finite (``_jsonable`` made them so)."""
     if isinstance(value, StoredSequence) and not (value and isinstance(value[0], (dict, list))):
         value = list(value)  # written item by item below only when its items are containers
-    if isinstance(value, dict) and value:
+    if not _large(value):
+        text = to_json(value, indent=2).decode()  # pydantic's own encoder, as in a dump
+        yield text.replace("\n", "\n" + pad) if pad else text
+    elif isinstance(value, dict) and value:
         yield "{"
         for index, (key, item) in enumerate(value.items()):
             yield ("," if index else "") + f"\n{pad}  {json.dumps(key, ensure_ascii=False)}: "
@@ -91,7 +112,7 @@ def _plain_pieces(value: Any, pad: str) -> Iterator[str]:
             yield from _plain_pieces(item, pad + "  ")
         yield f"\n{pad}]"
     else:
-        text = json.dumps(value, indent=2, ensure_ascii=False, allow_nan=False)
+        text = to_json(value, indent=2).decode()  # pydantic's own encoder, as in a dump
         yield text.replace("\n", "\n" + pad) if pad else text
 
 
