@@ -79,6 +79,7 @@ def test_a_tiny_step_is_refused_not_a_memory_error(tmp_path, capsys):
     assert code == cli.EXIT_INPUT
     _assert_clean_error(err)
     assert "sweep.segments[0].step_hz: 0.001 Hz makes more than 100000 points" in err
+    assert "points between 1 GHz and 2 GHz" in err  # engineering units, not 1e+09
 
 
 def test_an_infinite_time_limit_is_refused_by_validate_and_estimate(tmp_path, capsys):

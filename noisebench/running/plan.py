@@ -414,7 +414,7 @@ class Segment(BaseModel):
             raise InputError(
                 "step_hz",
                 f"{format_frequency(self.step_hz)} makes more than "
-                f"{MAX_SEGMENT_POINTS} points between {self.start_hz:g} and "
+                f"{MAX_SEGMENT_POINTS} points between {format_frequency(self.start_hz)} and "
                 f"{format_frequency(self.stop_hz)}",
                 fix="use a larger step (step_hz is in Hz)",
             )

@@ -72,7 +72,8 @@ def combine_densities(
         if not math.isclose(d.freq_hz, f0, rel_tol=1e-9):
             raise InputError(
                 "parts.freq_hz",
-                f"readings at {d.freq_hz:.9g} and {format_frequency(f0, 9)} cannot be combined",
+                f"readings at {format_frequency(d.freq_hz, 9)} and "
+                f"{format_frequency(f0, 9)} cannot be combined",
                 fix="combine readings of one frequency",
             )
     weights = [_weight(d) for d in parts]
@@ -169,6 +170,7 @@ class DensitySeries:
 
     def __init__(self) -> None:
         self.parts: list[NoiseDensity] = []
+        self._combined: tuple[tuple[int, ...], CombinedDensity] | None = None
 
     def add(self, density: NoiseDensity) -> None:
         self.parts.append(density)
@@ -182,7 +184,12 @@ class DensitySeries:
         return sum(d.settings.averages if d.settings is not None else 1 for d in self.parts)
 
     def combined(self) -> CombinedDensity:
-        return combine_densities(self.parts)
+        """:func:`combine_densities` of the parts; kept until the parts change (a sweep asks
+        for the same combination at every decision, entry and summary of a round)."""
+        key = tuple(map(id, self.parts))  # the list holds the parts: ids stay theirs
+        if self._combined is None or self._combined[0] != key:
+            self._combined = (key, combine_densities(self.parts))
+        return self._combined[1]
 
 
 def averages_at_target(
