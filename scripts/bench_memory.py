@@ -1,17 +1,17 @@
 """Peak memory of a long sweep on the simulated bench (prints what one run measured).
 
-    python scripts/bench_memory.py [--points 1001 10001]
+    python scripts/bench_memory.py [--points 1001 10001] [--method gain|y_factor]
 
-Each size runs in a fresh child process (gain method, constant gain, 1-2 GHz, points shared
-by traces up to 20 MHz wide, target 0.3 dB, no plots or report; the calibration never ages out,
-so no point is skipped for a stale floor: with the default hour, a 1 001-point sweep's first
-groups outlived their floor calibration and 28 % of the points were skipped; the demo's spur
-at 1.8 GHz still refuses one group of 200 at 10 001 points, and growth is counted per point
-measured), which reports its peak resident set size (``resource.getrusage``, kilobytes on
-Linux) before and after the run. The script prints the peak per size, the growth of the run's
-own memory from the smallest to the largest size, and that growth per added point next to the
-flat-memory target: flat memory means the growth per point stays far below what keeping
-every trace would cost.
+Each size runs in a fresh child process (gain method with a constant gain, or Y-factor with
+``--method y_factor``; 1-2 GHz, points shared by traces up to 20 MHz wide, target 0.3 dB, no
+plots or report; the calibration never ages out, so no point is skipped for a stale floor: with
+the default hour, a 1 001-point sweep's first groups outlived their floor calibration and 28 %
+of the points were skipped; the demo's spur at 1.8 GHz still refuses one group of 200 at 10 001
+points, and growth is counted per point measured), which reports its peak resident set size
+(``resource.getrusage``, kilobytes on Linux) before and after the run. The script prints the
+peak per size, the growth of the run's own memory from the smallest to the largest size, and
+that growth per added point next to the flat-memory target: flat memory means the growth per
+point stays far below what keeping every trace would cost.
 """
 
 from __future__ import annotations
@@ -31,15 +31,15 @@ from noisebench.results.store import RunWriter
 from noisebench.running.sequencer import Sequencer
 from noisebench.sims.bench import SimulatedBench
 
-n = int(sys.argv[1])
+n, method = int(sys.argv[1]), sys.argv[2]
 plan = parse_plan({
-    "method": "gain",
+    "method": method,
     "bench": {"analyzer": {"resource": "sim://demo-lna", "compression_dbm": 30.0,
                            "max_input_dbm": 40.0}},
     "acquisition": {"rbw_hz": 30e3, "span_hz": 60e3, "target_u_nf_db": 0.3,
                     "max_trace_span_hz": 20e6, "min_band_fill": 0.01, "time_limit_s": 5},
     "sweep": {"segments": [{"start_hz": 1e9, "stop_hz": 2e9, "points": n}]},
-    "gain": {"source": "constant", "value_db": 20.0},
+    **({"gain": {"source": "constant", "value_db": 20.0}} if method == "gain" else {}),
     "expect": {"dut_gain_db": 20.0},
     "calibration": {"max_age_s": 1e9},  # no point skipped for a stale floor
     "output": {"plots": False, "report": False},
@@ -73,12 +73,21 @@ is not flat)."""
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--points", type=int, nargs="+", default=[1001, 10001])
+    parser.add_argument(
+        "--method",
+        choices=["gain", "y_factor"],
+        default="gain",
+        help="y_factor: the sweep-level hot/cold schedule (its readings span the sweep)",
+    )
     args = parser.parse_args(argv)
     rows = []
     for n in args.points:
         t0 = time.perf_counter()
         out = subprocess.run(
-            [sys.executable, "-c", CHILD, str(n)], capture_output=True, text=True, check=False
+            [sys.executable, "-c", CHILD, str(n), args.method],
+            capture_output=True,
+            text=True,
+            check=False,
         )
         if out.returncode != 0:
             print(out.stderr[-2000:])
