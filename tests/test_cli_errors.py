@@ -268,8 +268,11 @@ def test_points_the_physics_refused_can_be_measured_by_resume(tmp_path, mode):
 def test_cli_names_the_resume_fix_for_skipped_points_and_resume_measures_them(
     tmp_path, capsys, monkeypatch
 ):
-    dead = ideal_sim()
-    dead.noise_source.stuck = True  # a dead source from the start: nothing can be measured
+    # a source sheet 10 dB low at every frequency: each point's Te comes out about -250 K,
+    # hundreds of u below zero, so the physics refuses every point at any noise draw and in
+    # any reading order (a stuck source left hot - cold to a coin flip, and an absurd number
+    # got through when the schedule's order of draws changed)
+    dead = ideal_sim(noise_source__calibration_error_db=[-10.0] * 16)
     monkeypatch.setattr(
         "noisebench.bench.registry.open_bench",
         lambda section, **_: simulated_session(dead, section),

@@ -729,9 +729,9 @@ class FrequencyPoint:
 class SwitchingSection(BaseModel):
     """How the noise source's hot and cold readings are ordered (Y-factor).
 
-    ``per_sweep``: the whole sweep (or a block of groups) is read in four passes, hot forward,
-    cold backward, cold forward, hot backward: every point's hot and cold readings are
-    symmetric in time, so a linear drift cancels, with three switches per block instead of
+    ``per_sweep``: the whole sweep (or a block of groups) is read in four passes, cold forward,
+    hot backward, hot forward, cold backward: every point's hot and cold readings are
+    symmetric in time, so a linear drift cancels, with two switches per block instead of
     three or four per point. ``per_group``: hot-cold-cold-hot at each group. ``auto`` takes
     ``per_sweep`` when there are several groups and the source needs settling time. A block
     lasts at most ``max_block_s`` of instrument time: common practice takes a warmed-up
