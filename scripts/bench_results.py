@@ -5,7 +5,8 @@
 Measures, on this machine and file system: the cost of one durable journal append
 (write + fsync) compared with a buffered append without fsync, the time to rebuild a killed run
 from its journal, to finish (results.json + results.csv), to draw the figures and to write the
-report, and the sizes of the files. Ratios are from this one run.
+report (wide and narrow figures apart, CPU time), and the sizes of the files. Ratios are from
+this one run.
 """
 
 from __future__ import annotations
@@ -18,7 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
-from noisebench.results.plots import plot_run
+from noisebench.results.plots import NARROW, WIDE, plot_run, render_figures
 from noisebench.results.report import write_report
 from noisebench.results.store import RunInfo, RunWriter, collect_versions, load_run
 from noisebench.science.point import Method, PointResult
@@ -80,6 +81,13 @@ def buffered_append_s(lines: list[bytes], folder: Path) -> float:
     return time.perf_counter() - start
 
 
+def _cpu_s(work) -> float:
+    """CPU seconds of this process for ``work()`` (steadier than wall time on a busy machine)."""
+    start = time.process_time()
+    work()
+    return time.process_time() - start
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--points", type=int, default=1001)
@@ -124,7 +132,15 @@ def main() -> None:
     )
     print(f"rebuild from journal: {1e3 * load_s:.1f} ms ({1e3 * load_s / n:.3f} ms/point)")
     print(f"finish (results.json + results.csv): {1e3 * finish_s:.1f} ms")
-    print(f"figures ({len(plots)}): {plots_s:.2f} s; report: {report_s:.2f} s")
+    print(f"figures ({len(plots)}, wide and narrow): {plots_s:.2f} s; report: {report_s:.2f} s")
+    wide_cpu_s, narrow_cpu_s = (
+        min(_cpu_s(lambda layout=layout: render_figures(record, layout=layout)) for _ in range(3))
+        for layout in (WIDE, NARROW)
+    )
+    print(
+        f"figures, CPU (best of 3): wide {wide_cpu_s:.2f} s, narrow {narrow_cpu_s:.2f} s; both "
+        f"{(wide_cpu_s + narrow_cpu_s) / wide_cpu_s:.2f}x the wide alone"
+    )
     for name in ("points.jsonl", "results.json", "results.csv"):
         print(f"{name}: {os.path.getsize(folder / name) / 1024:.0f} kB")
     print(

@@ -238,8 +238,11 @@ def test_render_rewrites_report(tmp_path, capsys):
     code, out, _ = _run(["render", folder, "--no-plots"], capsys)
     assert code == 0 and (folder / "report.html").is_file()
     assert "wrote" in out and f"embedded {len(pngs)} existing figures" in out
+    assert f"({len(pngs)} with a narrow rendering for phones)" in out
     text = (folder / "report.html").read_text(encoding="utf-8")
-    assert text.count("data:image/png;base64,") == len(pngs)  # what exists is embedded
+    # what exists is embedded: each figure and its narrow rendering (plots/narrow/)
+    assert text.count("data:image/png;base64,") == 2 * len(pngs)
+    assert text.count("<source media=") == len(pngs)
     # a figure older than the run's data is stale: left out rather than shown
     import os
 
@@ -247,7 +250,14 @@ def test_render_rewrites_report(tmp_path, capsys):
     os.utime(stale, (1.0, 1.0))
     code, out, _ = _run(["render", folder, "--no-plots"], capsys)
     text = (folder / "report.html").read_text(encoding="utf-8")
-    assert code == 0 and text.count("data:image/png;base64,") == len(pngs) - 1
+    # its narrow rendering goes with it, though that file is fresh
+    assert code == 0 and text.count("data:image/png;base64,") == 2 * (len(pngs) - 1)
+    # a stale narrow rendering alone is left out: the wide figure is then shown everywhere
+    os.utime(folder / "plots" / "narrow" / "noise_figure.png", (1.0, 1.0))
+    code, out, _ = _run(["render", folder, "--no-plots"], capsys)
+    text = (folder / "report.html").read_text(encoding="utf-8")
+    assert code == 0 and text.count("<img ") == len(pngs) - 1
+    assert text.count("<source media=") == len(pngs) - 2
     code, _, err = _run(["render", tmp_path / "empty"], capsys)
     assert code == cli.EXIT_INPUT and "is not a folder" in err
 

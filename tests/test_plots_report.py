@@ -26,9 +26,14 @@ from noisebench.results.plots import (
     DENSE_SWEEP_POINTS,
     DENSITY_STYLE,
     FIGURE_SIZE_IN,
+    FIGURES,
+    LAYOUTS,
     LIMIT,
+    NARROW,
+    NARROW_DIR,
     VERDICT_STYLE,
     VERDICT_SYMBOL,
+    WIDE,
     budget_figure,
     budget_series,
     coincident_with,
@@ -48,6 +53,7 @@ from noisebench.results.plots import (
     rss_series,
     to_png,
     use_log_axis,
+    wrap_title,
 )
 from noisebench.results.report import (
     DETAIL_ROWS_MAX,
@@ -237,23 +243,22 @@ def plot_files(record, tmp_path_factory) -> list[Path]:
 
 
 def test_plot_run_writes_valid_pngs_of_sensible_size(plot_files):
-    assert [p.name for p in plot_files] == [
-        "noise_figure.png",
-        "gain.png",
-        "densities.png",
-        "uncertainty.png",
-    ]
-    width, height = (s * DEFAULT_DPI for s in FIGURE_SIZE_IN)
+    names = ["noise_figure.png", "gain.png", "densities.png", "uncertainty.png"]
+    assert [p.name for p in plot_files] == names + names  # the wide ones, then the narrow
+    assert [p.parent.name for p in plot_files] == ["plots"] * 4 + [NARROW_DIR] * 4
+    assert plot_files[4].parent.parent.name == "plots"
+    assert WIDE.size_in == FIGURE_SIZE_IN and WIDE.dpi == DEFAULT_DPI
     for path in plot_files:
         data = path.read_bytes()
-        assert path.parent.name == "plots"
+        layout = NARROW if path.parent.name == NARROW_DIR else WIDE
+        width, height = (s * layout.dpi for s in layout.size_in)
         # a fractional pixel count is rounded by some matplotlib versions and truncated by
         # others (3.10 vs 3.11): either whole number is the width asked for; the height grows
-        # by the legend below the axes (a few rows of 8-pt text)
+        # by the legend below the axes (a few rows of 8-pt text; one column of them, narrow)
         got_width, got_height = png_size(data)
         assert got_width in (math.floor(width), math.ceil(width)), (got_width, width)
-        assert height - 1 <= got_height <= 1.5 * height, (got_height, height)
-        assert 10_000 < len(data) < 1_000_000
+        assert height - 1 <= got_height <= 2.0 * height, (got_height, height)
+        assert 5_000 < len(data) < 1_000_000
         import matplotlib.image
 
         pixels = matplotlib.image.imread(path)
@@ -644,7 +649,10 @@ def test_plots_true_embeds_exactly_the_written_figures(tmp_path):
     written = write_outputs(stored, folder, plots=True, report=True)
     pngs = [p for p in written if p.suffix == ".png"]
     assert [p.name for p in written] == [p.name for p in pngs] + ["report.html"]
-    sources = [a["src"] for t, a in parse((folder / "report.html").read_text()).tags if t == "img"]
+    tags = parse((folder / "report.html").read_text()).tags
+    sources = [a["src"] for t, a in tags if t == "img"] + [
+        a["srcset"] for t, a in tags if t == "source"
+    ]
     assert [base64.b64decode(s.split(",", 1)[1]) for s in sources] == [p.read_bytes() for p in pngs]
 
 
@@ -671,6 +679,8 @@ def parse(text: str) -> TagCollector:
 
 
 SAFE_TAGS = {
+    "picture",
+    "source",
     "html",
     "head",
     "meta",
@@ -720,12 +730,13 @@ def test_report_is_one_self_contained_file(record, plot_files, tmp_path):
     text = path.read_text(encoding="utf-8")
     parsed = parse(text)
     assert {tag for tag, _ in parsed.tags} <= SAFE_TAGS  # no script, link, iframe, object
-    images = [attrs for tag, attrs in parsed.tags if tag == "img"]
-    assert len(images) == len(plot_files)
-    for attrs, png_path in zip(images, plot_files, strict=True):
+    images = [attrs["src"] for tag, attrs in parsed.tags if tag == "img"]
+    narrow = [attrs["srcset"] for tag, attrs in parsed.tags if tag == "source"]
+    assert len(images) == len(narrow) == len(plot_files) // 2  # each figure in two renderings
+    for uri, png_path in zip(images + narrow, plot_files, strict=True):
         prefix = "data:image/png;base64,"
-        assert attrs["src"].startswith(prefix)
-        assert base64.b64decode(attrs["src"][len(prefix) :]) == png_path.read_bytes()
+        assert uri.startswith(prefix)
+        assert base64.b64decode(uri[len(prefix) :]) == png_path.read_bytes()
     assert not any(key.startswith("on") for _, attrs in parsed.tags for key in attrs)
     links = [attrs["href"] for tag, attrs in parsed.tags if "href" in attrs]
     ids = {attrs["id"] for _, attrs in parsed.tags if "id" in attrs}
@@ -1044,14 +1055,11 @@ def test_render_run_makes_figures_and_report_from_a_killed_run(record, tmp_path)
     writer.close()  # never finished
     path = render_run(folder)
     assert path == folder / "report.html"
-    assert sorted(p.name for p in (folder / "plots").iterdir()) == [
-        "densities.png",
-        "gain.png",
-        "noise_figure.png",
-        "uncertainty.png",
-    ]
+    figures = ["densities.png", "gain.png", "noise_figure.png", "uncertainty.png"]
+    assert sorted(p.name for p in (folder / "plots").iterdir()) == sorted([*figures, NARROW_DIR])
+    assert sorted(p.name for p in (folder / "plots" / NARROW_DIR).iterdir()) == figures
     text = path.read_text(encoding="utf-8")
-    assert text.count("data:image/png;base64,") == 4
+    assert text.count("data:image/png;base64,") == 8  # each figure wide and narrow
     assert "interrupted" in text and "rebuilt from the journal" in text
 
 
@@ -1189,13 +1197,16 @@ def test_report_html_comes_from_autoescaped_templates_only():
     assert "2.5\u00a0GHz" in cell  # a frequency under a *_hz key keeps its unit
 
 
-def test_flagged_points_are_marked_on_the_nf_figure_and_explained(record):
+@pytest.mark.parametrize("layout", LAYOUTS, ids=lambda layout: layout.name)
+def test_flagged_points_are_marked_on_the_nf_figure_and_explained(record, layout):
     flagged = [p for p in record.points if p.flags]
     assert flagged  # the shared record has one EXCESS_SCATTER point
-    axes = nf_figure(record).axes[0]
+    axes = nf_figure(record, layout).axes[0]
     handles, labels = axes.get_legend_handles_labels()
     (mark,) = [h for h, t in zip(handles, labels, strict=True) if t.startswith("flagged")]
     assert labels[handles.index(mark)].endswith(f": {len(flagged)} point")
+    shown = [t.get_text().replace("\n", " ") for t in axes.get_legend().get_texts()]
+    assert f"flagged (see the points table): {len(flagged)} point" in shown  # in the legend
     scale, _ = frequency_scale([p.freq_hz for p in record.points])
     offsets = mark.get_offsets()
     assert np.allclose(offsets[:, 0], [p.freq_hz / scale for p in flagged])
@@ -1209,7 +1220,8 @@ def test_flagged_points_are_marked_on_the_nf_figure_and_explained(record):
     assert not [t for t in labels if t.startswith("flagged")]
 
 
-def test_equal_budget_contributions_both_stay_visible():
+@pytest.mark.parametrize("layout", LAYOUTS, ids=lambda layout: layout.name)
+def test_equal_budget_contributions_both_stay_visible(layout):
     twins = make_record(contributions=2)
     budgets = [
         {**b, "contributions": [*b["contributions"], {**b["contributions"][0], "name": "twin"}]}
@@ -1219,7 +1231,7 @@ def test_equal_budget_contributions_both_stay_visible():
     series = budget_series(twins)
     assert coincident_with(series, ["ENR"], "twin") == "ENR"
     assert coincident_with(series, ["jitter <hot>"], "twin") is None
-    lines = {line.get_label(): line for line in budget_figure(twins).axes[0].get_lines()}
+    lines = {line.get_label(): line for line in budget_figure(twins, layout).axes[0].get_lines()}
     twin = lines["twin (equal to ENR)"]
     assert twin.get_linestyle() == "--" and twin.get_markerfacecolor() == "none"
     assert lines["ENR"].get_linestyle() == "-"
@@ -1291,3 +1303,132 @@ def test_figures_leave_no_blank_corner_below_their_legend(record):
     for name, (corner, bottom) in drawn.items():
         assert corner < MAX_BLANK_CORNER, (name, corner)
         assert bottom < MAX_BLANK_BOTTOM_ROWS, (name, bottom)
+
+
+# ----------------------------------------------------------------------------- narrow figures
+
+
+def _texts(figure) -> list:
+    """The visible, non-empty text artists of a drawn figure (titles, labels, ticks inside
+    the view, legend, notes)."""
+    axes = figure.axes[0]
+    low, high = sorted(axes.get_xlim())
+    hidden = {
+        id(tick.label1)
+        for tick in axes.xaxis.get_major_ticks() + axes.xaxis.get_minor_ticks()
+        if not low <= tick.get_loc() <= high
+    }
+    return [
+        t
+        for t in figure.findobj(lambda a: hasattr(a, "get_fontsize") and hasattr(a, "get_text"))
+        if t.get_visible() and t.get_text().strip() and id(t) not in hidden
+    ]
+
+
+def _all_figures(record, layout):
+    return [f for f in (make(record, layout) for _, make in FIGURES) if f is not None]
+
+
+@pytest.mark.parametrize("layout", LAYOUTS, ids=lambda layout: layout.name)
+@pytest.mark.parametrize("dut_id", ["LNA-7", "a long device name, rev B, serial 0042-77-31"])
+def test_every_text_is_inside_the_figure_and_the_legend_below_the_axis_label(layout, dut_id):
+    """A narrow figure must not lose its title, tick labels or legend over an edge (a wrapped
+    title grows the figure at the top), nor draw the legend over the frequency axis label."""
+    record = make_record(n=56, contributions=8, dut_id=dut_id)
+    for figure in _all_figures(record, layout):
+        to_png(figure)  # at the layout's dpi, as the report draws it
+        renderer = figure._get_renderer()
+        frame = figure.bbox
+        slack = 1.0  # px: a text's box includes a pixel of the glyphs' side bearing
+        for text in _texts(figure):
+            box = text.get_window_extent(renderer)
+            assert box.x0 >= frame.x0 - slack and box.x1 <= frame.x1 + slack, text.get_text()
+            assert box.y0 >= frame.y0 - slack and box.y1 <= frame.y1 + slack, text.get_text()
+        axes = figure.axes[0]
+        legend = axes.get_legend().get_window_extent(renderer)
+        assert legend.y1 <= axes.xaxis.get_tightbbox(renderer).y0 + slack
+        # and no wasted band between them: the gap is LEGEND_GAP_IN (0.06 in)
+        assert axes.xaxis.get_tightbbox(renderer).y0 - legend.y1 < 0.1 * figure.dpi
+
+
+@pytest.mark.parametrize(
+    ("start_hz", "stop_hz"),
+    [(10e6, 6e9), (0.5e9, 6e9), (1e9, 18e9), (100e3, 6e9), (1e9, 2e9), (2.000e9, 2.004e9)],
+)
+def test_narrow_frequency_tick_labels_do_not_run_into_each_other(start_hz, stop_hz):
+    """Fewer ticks on the narrow figures: at least 2 labels, 1.5 characters apart at least."""
+    figure = nf_figure(make_record(n=12, start_hz=start_hz, stop_hz=stop_hz), NARROW)
+    labels = tick_labels(figure.axes[0])
+    assert len(labels) >= 2, labels
+    renderer = figure._get_renderer()
+    axes = figure.axes[0]
+    low, high = sorted(axes.get_xlim())
+    boxes = sorted(
+        t.label1.get_window_extent(renderer).x0
+        for t in axes.xaxis.get_major_ticks()
+        if low <= t.get_loc() <= high and t.label1.get_text()
+    )
+    ends = sorted(
+        t.label1.get_window_extent(renderer).x1
+        for t in axes.xaxis.get_major_ticks()
+        if low <= t.get_loc() <= high and t.label1.get_text()
+    )
+    gap_px = 1.5 * NARROW.text_pt * 0.6 / 72 * figure.dpi  # 1.5 average character widths
+    assert all(b - a >= gap_px for a, b in zip(ends[:-1], boxes[1:], strict=True)), labels
+
+
+def test_narrow_figures_are_portrait_with_larger_text_and_one_legend_column(record):
+    assert NARROW.smallest_pt >= 9.0 > WIDE.smallest_pt
+    for wide, narrow in zip(_all_figures(record, WIDE), _all_figures(record, NARROW), strict=True):
+        width_in, height_in = narrow.get_size_inches()
+        assert width_in == NARROW.size_in[0] < wide.get_size_inches()[0] / 2
+        assert height_in > width_in  # portrait: the legend stacked below
+        assert narrow.axes[0].get_legend()._ncols == 1
+        to_png(narrow, dpi=30)
+        assert min(t.get_fontsize() for t in _texts(narrow)) >= NARROW.smallest_pt
+    # what the browser test reads from the layouts is the figures' real smallest text
+    for layout in LAYOUTS:
+        figures = _all_figures(record, layout)
+        for figure in figures:
+            to_png(figure, dpi=30)
+        assert min(t.get_fontsize() for f in figures for t in _texts(f)) == layout.smallest_pt
+    # the narrow figures' axes line up with each other as the wide ones do
+    frames = {
+        tuple(
+            np.round(np.array(f.axes[0].get_position().bounds)[[0, 2]] * f.get_size_inches()[0], 6)
+        )
+        for f in _all_figures(record, NARROW)
+    }
+    assert len(frames) == 1
+
+
+def test_titles_wrap_between_their_parts():
+    title = "Uncertainty budget \u00b7 LNA-7 \u00b7 y-factor method"
+    assert wrap_title(title, 42) == "Uncertainty budget \u00b7 LNA-7\ny-factor method"
+    assert wrap_title(title, 100) == title
+    long = wrap_title("Gain \u00b7 " + "x" * 10 + " word" * 12, 20)
+    assert all(len(line) <= 20 for line in long.splitlines())
+
+
+def test_figure_pngs_keep_their_colours_exactly_in_a_palette(record):
+    """The palette PNG (a third of the bytes) against matplotlib's full-colour rendering:
+    the figure's own colours are kept exactly, only rare edge pixels move."""
+    import matplotlib.image
+    from PIL import Image
+
+    for layout in LAYOUTS:
+        figure = nf_figure(record, layout)
+        png = to_png(figure)
+        assert Image.open(io.BytesIO(png)).mode == "P"
+        full = io.BytesIO()
+        figure.savefig(full, format="png", dpi=layout.dpi)
+        exact = matplotlib.image.imread(io.BytesIO(full.getvalue()), format="png")[..., :3]
+        ours = matplotlib.image.imread(io.BytesIO(png), format="png")[..., :3]
+        assert ours.shape == exact.shape
+        off = np.abs(ours - exact).max(axis=-1)
+        assert (off > 1e-6).mean() < 0.02, (off > 1e-6).mean()  # 0.8 % measured
+        for colour in (VERDICT_STYLE["fail"][0], VERDICT_STYLE["pass"][0], LIMIT, "#ffffff"):
+            rgb = np.array([int(colour[i : i + 2], 16) for i in (1, 3, 5)]) / 255
+            drawn = np.all(np.abs(exact - rgb) < 1e-6, axis=-1)  # pixels of exactly it
+            assert drawn.sum() > 0 and np.all(np.abs(ours[drawn] - rgb) < 1e-6), colour
+        assert len(png) < 0.6 * len(full.getvalue())

@@ -18,8 +18,9 @@ from pathlib import Path
 import pytest
 from test_plots_report import make_record
 
-from noisebench.results.plots import FIGURE_SIZE_IN, render_figures
+from noisebench.results.plots import NARROW, WIDE, render_figures
 from noisebench.results.report import write_report
+from noisebench.results.report.summary import MIN_FIGURE_TEXT_PX, narrow_figure_media
 
 WIDTHS_PX = (390, 1280)
 #: the page's side padding at most (report.css: clamp(.75rem, 3vw, 2.5rem) at 15 px)
@@ -128,9 +129,9 @@ def test_figures_fit_the_screen_and_keep_their_shape(browser, report_file, width
                  height: i.getBoundingClientRect().height }))"""
         )
         assert len(images) == 4
-        drawn_px = FIGURE_SIZE_IN[0]  # inches; the PNG's pixel width depends on its dpi
         for image in images:
-            assert image["complete"] and image["natural"] > 100 * drawn_px  # decoded
+            # decoded (the narrow rendering is 4.4 in at 150 dpi, the wide 9 in at 110 dpi)
+            assert image["complete"] and image["natural"] > 100 * NARROW.size_in[0]
             assert image["height"] > 0
             # on the screen whole: no figure wider than the viewport, none cut at an edge
             assert image["shown"] <= width and image["left"] >= 0, image
@@ -197,7 +198,9 @@ def test_phone_width_says_that_wide_tables_scroll(browser, report_file):
 def test_figures_embedded_are_those_the_figure_code_draws(report_file):
     """The browser tests look at the real figures, not stand-ins."""
     text = report_file.read_text(encoding="utf-8")
-    assert text.count("data:image/png;base64,") == len(render_figures(make_record(n=56))) == 4
+    record = make_record(n=56, contributions=8)
+    assert text.count("data:image/png;base64,") == 2 * len(render_figures(record)) == 8
+    assert text.count(f'<source media="{narrow_figure_media()}" srcset="data:image/png') == 4
 
 
 def test_points_table_keeps_its_frequency_column_in_view_when_scrolled(browser, report_file):
@@ -210,5 +213,41 @@ def test_points_table_keeps_its_frequency_column_in_view_when_scrolled(browser, 
         after = first.bounding_box()
         assert box.evaluate("b => b.scrollLeft") > 100  # it did scroll
         assert abs(after["x"] - before["x"]) < 1  # the frequency stayed where it was
+    finally:
+        context.close()
+
+
+#: Just above the switch to the narrow figures: the wide ones at their smallest.
+SWITCH_PX = int(narrow_figure_media().split(":")[1].strip(" px)"))
+
+
+@pytest.mark.parametrize("width", [390, SWITCH_PX, SWITCH_PX + 1, 1280])
+def test_figure_text_is_at_least_9_css_px_on_the_screen(browser, report_file, width):
+    """The smallest text of each figure as the reader sees it: its size in points (the
+    figure's layout) x dpi / 72 x the shown width / the PNG's own width (measured in the
+    browser). Below the switch the browser must pick the narrow rendering (<picture>), above
+    it the wide one. The wide figure at 390 px would give 7.5 x 366 / 648 = 4.2 px."""
+    context, page, _ = _open(browser, report_file, width)
+    try:
+        images = page.evaluate(
+            """() => [...document.querySelectorAll('figure picture')].map(p => {
+                 const i = p.querySelector('img'), s = p.querySelector('source');
+                 return { current: i.currentSrc, wide: i.src, narrow: s && s.srcset,
+                          natural: i.naturalWidth, shown: i.clientWidth }; })"""
+        )
+        assert len(images) == 4
+        for image in images:
+            narrow = image["current"] == image["narrow"]
+            assert narrow or image["current"] == image["wide"]
+            assert narrow == (width <= SWITCH_PX), (width, image["natural"])
+            layout = NARROW if narrow else WIDE
+            # the PNG is the layout's drawing: its width in pixels is width_in x dpi
+            assert abs(image["natural"] - layout.size_in[0] * layout.dpi) <= 1
+            text_px = layout.smallest_pt / 72 * layout.dpi * image["shown"] / image["natural"]
+            assert text_px >= MIN_FIGURE_TEXT_PX, (width, layout.name, text_px)
+            if width == 1280:  # the desktop rendering at its drawn size
+                assert image["shown"] == image["natural"]
+            if width == 390:
+                print(f"390 px: figure text {text_px:.1f} CSS px, shown {image['shown']} px")
     finally:
         context.close()

@@ -44,10 +44,11 @@ def test_sweep_level_schedule_switches_a_handful_of_times_and_stays_unbiased(tmp
     _, _, per_group = _run(tmp_path, "per_group")
     assert len(record.points) == len(FREQS)
     assert all(p.notes["schedule"] == "per_sweep" for p in record.points)
-    # the calibration's first group alone (a round or two of hot-cold-cold-hot), then both
-    # phases in a few blocks of three switches each; per group it is three or four per round
-    # and group in both phases
-    assert switches <= 8 + 2 * 3 * 3
+    # both phases in a few sweep-level rounds (one block each here), every block
+    # cold-hot-hot-cold: two switches, ending cold, so no switch between blocks and none at
+    # the end (here 10: the calibration and the measurement in two or three rounds each);
+    # per group it is three or four per round and group in both phases
+    assert switches % 2 == 0 and switches <= 2 * 3 * 2
     assert per_group >= 2 * 3 * len(FREQS)
     assert switches < per_group / 2
     u = np.array([p.u_nf_db for p in record.points])
@@ -219,7 +220,9 @@ def test_drift_check_false_alarm_rate_is_the_design_rate_for_averaged_power_read
 
 def _last_cold_switch_of_the_measurement(folder, seed: int) -> float:
     """Simulated time at which the last measurement block switches the source cold (the
-    monitored block of this short sweep: its passes are long enough to be split)."""
+    monitored block of this short sweep: its passes are long enough to be split). A block
+    starts cold (cold-hot-hot-cold), so its one switch to cold lies between its hot passes
+    and its last cold pass; the run ends cold and needs no further switch."""
     plan = make_plan("y_factor", freqs_hz=FREQS, target=0.03, switching={"mode": "per_sweep"})
     sim = ideal_sim(seed)
     on_dut = []
@@ -237,7 +240,7 @@ def _last_cold_switch_of_the_measurement(folder, seed: int) -> float:
 
     sim.set_path, sim.noise_source.set_hot = path, hot
     Sequencer(plan, simulated_session(sim, plan.bench)).run(folder)
-    return colds[-2]  # the last one is the safe state at the end
+    return colds[-1]
 
 
 @pytest.mark.parametrize(
@@ -250,8 +253,8 @@ def _last_cold_switch_of_the_measurement(folder, seed: int) -> float:
 )
 def test_drift_the_schedule_cannot_cancel_is_flagged(tmp_path, drift):
     if "analyzer__gain_step_db" in drift:
-        # the step as the monitored measurement block goes cold: its first hot pass before
-        # the step, both cold passes and the last hot pass after it, so Y is off by half the
+        # the step as the monitored measurement block goes cold: its first cold pass and both
+        # hot passes before the step, its last cold pass after it, so Y is off by half the
         # step (the run repeats exactly up to the step: the same seed, the same readings)
         at = _last_cold_switch_of_the_measurement(tmp_path / "base", 3)
         drift = {**drift, "analyzer__gain_step_at_s": at}
@@ -260,3 +263,22 @@ def test_drift_the_schedule_cannot_cancel_is_flagged(tmp_path, drift):
     assert len(record.points) == len(FREQS) and sum(flagged) >= 1
     for p, f in zip(record.points, flagged, strict=True):
         assert f == (p.notes["drift_check"]["p_value"] < 1e-3)
+
+
+def test_the_simulated_source_waits_only_when_its_state_changes():
+    # a safe state commands a cold source cold: no transition starts, so nothing to wait for
+    # (before, every connection change cost the run one settling time)
+    sim = ideal_sim(3)
+    source, clock = sim.noise_source, sim.clock
+    settle = source.settle_time_s
+    t0 = clock.now_s
+    source.set_hot(False)
+    assert clock.now_s == t0 and not source.is_hot
+    source.set_hot(True)
+    assert clock.now_s == pytest.approx(t0 + settle) and source.is_hot
+    source.set_hot(True)
+    assert clock.now_s == pytest.approx(t0 + settle)
+    sim.as_bench().safe_state()
+    assert clock.now_s == pytest.approx(t0 + 2 * settle) and not source.is_hot
+    sim.as_bench().safe_state()
+    assert clock.now_s == pytest.approx(t0 + 2 * settle)

@@ -189,12 +189,18 @@ def cmd_render(args: argparse.Namespace, out: TextIO) -> int:
     folder = Path(args.folder)
     record = load_run(folder)
     if args.no_plots:  # draw nothing, but embed the figures an earlier run or render left
+        from noisebench.results.plots import NARROW_DIR
         from noisebench.results.report import existing_figures, write_report
 
         figures = existing_figures(folder)
         written = [write_report(record, folder / "report.html", plots=figures)]
+        narrow = sum(1 for f in figures if f.parent.name == NARROW_DIR)
         if figures:
-            print(f"embedded {len(figures)} existing figures from {figures[0].parent}", file=out)
+            print(
+                f"embedded {len(figures) - narrow} existing figures from {figures[0].parent}"
+                f" ({narrow} with a narrow rendering for phones)",
+                file=out,
+            )
     else:
         written = write_outputs(record, folder, plots=True, report=True)
     print(format_summary(record), file=out)

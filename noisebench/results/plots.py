@@ -43,6 +43,7 @@ import logging
 import math
 import textwrap
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -125,6 +126,85 @@ DENSITY_STYLE: dict[str, tuple[str, str, str, str]] = {
     "floor": ("analyzer floor, analyzer input terminated", "#8c8c8c", "--", "s"),
 }
 
+
+@dataclass(frozen=True)
+class FigureLayout:
+    """How the figures are drawn for one kind of screen: size, text sizes, legend, ticks.
+
+    Text on a screen is ``pt / 72 * shown_px / width_in`` CSS px high (the dpi cancels):
+    a figure shrunk to a phone's column needs a narrower drawing, not a smaller dpi.
+    """
+
+    name: str
+    size_in: tuple[float, float]  # before the legend below the axes adds its height
+    axes_rect: tuple[float, float, float, float]  # figure fractions of ``size_in``
+    dpi: int
+    title_pt: float
+    text_pt: float  # tick labels and axis labels
+    legend_pt: float
+    note_pt: float  # the value written beside a limit line; the smallest text
+    legend_columns: int
+    legend_chars: int  # legend text is wrapped to this many characters per column
+    title_chars: int  # the title is wrapped to this many characters per line
+    dense_tick_decades: float  # up to this many decades log-axis majors are 1-2-5
+    linear_ticks: int | None  # at most this many major ticks on a linear frequency axis
+
+    @property
+    def smallest_pt(self) -> float:
+        """The smallest text size in the figures."""
+        return min(self.title_pt, self.text_pt, self.legend_pt, self.note_pt)
+
+
+#: The desktop figures: 9 in wide (990 px at 110 dpi), legend in up to three columns.
+WIDE = FigureLayout(
+    name="wide",
+    size_in=FIGURE_SIZE_IN,
+    axes_rect=AXES_RECT,
+    dpi=DEFAULT_DPI,
+    title_pt=11.0,
+    text_pt=10.0,
+    legend_pt=8.0,
+    note_pt=7.5,
+    legend_columns=LEGEND_COLUMNS,
+    legend_chars=LEGEND_WIDTH_CHARS,
+    title_chars=100,
+    dense_tick_decades=DENSE_TICK_DECADES,
+    linear_ticks=None,
+)
+NARROW_WIDTH_IN = 4.4
+NARROW_HEIGHT_IN = 4.1
+#: axes margins of the narrow figures, inches: left (y tick labels and label), right, bottom
+#: (x tick labels and label), top (a one-line title)
+NARROW_MARGINS_IN = (0.8, 0.16, 0.56, 0.42)
+#: The phone figures: 4.4 in wide and portrait, text of at least 9 pt, the legend stacked in
+#: one column below, fewer frequency ticks. On a 390 px phone the figure is shown about 366 px
+#: wide, so 9 pt reads 9 / 72 * 366 / 4.4 = 10.4 CSS px (the wide figure's 7.5 pt: 4.2 px).
+#: 150 dpi (660 px) keeps it sharp on the phone's denser pixels.
+NARROW = FigureLayout(
+    name="narrow",
+    size_in=(NARROW_WIDTH_IN, NARROW_HEIGHT_IN),
+    axes_rect=(
+        NARROW_MARGINS_IN[0] / NARROW_WIDTH_IN,
+        NARROW_MARGINS_IN[2] / NARROW_HEIGHT_IN,
+        1.0 - (NARROW_MARGINS_IN[0] + NARROW_MARGINS_IN[1]) / NARROW_WIDTH_IN,
+        1.0 - (NARROW_MARGINS_IN[2] + NARROW_MARGINS_IN[3]) / NARROW_HEIGHT_IN,
+    ),
+    dpi=150,
+    title_pt=11.0,
+    text_pt=10.0,
+    legend_pt=9.5,
+    note_pt=9.0,
+    legend_columns=1,
+    legend_chars=44,
+    title_chars=42,
+    dense_tick_decades=1.5,
+    linear_ticks=4,
+)
+LAYOUTS = (WIDE, NARROW)
+#: The narrow figures' sub-folder of ``plots/`` and prefix of their names in a figure mapping.
+NARROW_DIR = "narrow"
+TITLE_PAD_IN = 0.08  # above a title that needs more than the top margin, inches
+
 FREQUENCY_UNITS = ((1e9, "GHz"), (1e6, "MHz"), (1e3, "kHz"), (1.0, "Hz"))
 MAX_TICK_VALUE = 1e5  # a unit is not stepped down so far that tick labels need 6+ digits
 
@@ -179,23 +259,48 @@ def plain_number(value: float) -> str:
     return "0" if text in ("-0", "0.") else text
 
 
-def log_tick_subs(low: float, high: float) -> tuple[tuple[float, ...], tuple[float, ...]]:
+def log_tick_subs(
+    low: float, high: float, dense_decades: float = DENSE_TICK_DECADES
+) -> tuple[tuple[float, ...], tuple[float, ...]]:
     """Major and minor tick multipliers per decade for a log axis from ``low`` to ``high``.
 
-    1-2-5 majors (labelled) up to ``DENSE_TICK_DECADES`` decades, decades only beyond; every
+    1-2-5 majors (labelled) up to ``dense_decades`` decades, decades only beyond; every
     other integer multiple is a minor tick (unlabelled).
     """
     decades = math.log10(high / low) if low > 0 and high > low else 0.0
-    major = (1.0, 2.0, 5.0) if decades <= DENSE_TICK_DECADES else (1.0,)
+    major = (1.0, 2.0, 5.0) if decades <= dense_decades else (1.0,)
     minor = tuple(float(s) for s in range(1, 10) if float(s) not in major)
     return major, minor
 
 
-def _format_frequency_axis(axes, freq: np.ndarray, log: bool) -> None:
+def _in_view(locator):
+    """``locator`` giving only the ticks inside the axis' view: matplotlib builds a tick
+    object (two lines, two texts) for every location a locator returns, and a log locator
+    returns a decade beyond each end; those ticks were half of a figure's drawing time."""
+    from matplotlib.ticker import Locator
+
+    class InView(Locator):
+        def set_axis(self, axis) -> None:
+            super().set_axis(axis)
+            locator.set_axis(axis)
+
+        def __call__(self):
+            low, high = sorted(self.axis.get_view_interval())
+            return [t for t in locator() if low <= t <= high]
+
+        def tick_values(self, vmin, vmax):
+            low, high = sorted((vmin, vmax))
+            return [t for t in locator.tick_values(vmin, vmax) if low <= t <= high]
+
+    return InView()
+
+
+def _format_frequency_axis(axes, freq: np.ndarray, log: bool, layout: FigureLayout) -> None:
     from matplotlib.ticker import (
         AutoMinorLocator,
         FuncFormatter,
         LogLocator,
+        MaxNLocator,
         NullFormatter,
         ScalarFormatter,
     )
@@ -203,14 +308,18 @@ def _format_frequency_axis(axes, freq: np.ndarray, log: bool) -> None:
     axis = axes.xaxis
     if log:
         axes.set_xscale("log")
-        major, minor = log_tick_subs(float(freq.min()), float(freq.max()))
-        axis.set_major_locator(LogLocator(base=10.0, subs=major, numticks=200))
-        axis.set_minor_locator(LogLocator(base=10.0, subs=minor, numticks=200))
+        major, minor = log_tick_subs(
+            float(freq.min()), float(freq.max()), layout.dense_tick_decades
+        )
+        axis.set_major_locator(_in_view(LogLocator(base=10.0, subs=major, numticks=200)))
+        axis.set_minor_locator(_in_view(LogLocator(base=10.0, subs=minor, numticks=200)))
         axis.set_major_formatter(FuncFormatter(lambda value, _pos: plain_number(value)))
         axis.set_minor_formatter(NullFormatter())
         return
     formatter = ScalarFormatter(useOffset=False)
     formatter.set_scientific(False)
+    if layout.linear_ticks:
+        axis.set_major_locator(MaxNLocator(nbins=layout.linear_ticks, steps=[1, 2, 2.5, 5, 10]))
     axis.set_major_formatter(formatter)
     axis.set_minor_locator(AutoMinorLocator())
 
@@ -231,17 +340,21 @@ def _fix_frequency_limits(axes, freq: np.ndarray, log: bool) -> None:
         axes.set_xlim(lo - pad, hi + pad)
 
 
-def _new_axes(title: str, ylabel: str, freq_hz: Sequence[float]):
-    figure = _matplotlib()(figsize=FIGURE_SIZE_IN)
-    axes = figure.add_axes(AXES_RECT)
+def _new_axes(title: str, ylabel: str, freq_hz: Sequence[float], layout: FigureLayout = WIDE):
+    figure = _matplotlib()(figsize=layout.size_in, dpi=layout.dpi)
+    axes = figure.add_axes(layout.axes_rect)
     scale, unit = frequency_scale(freq_hz)
     freq = np.asarray(freq_hz, dtype=float) / scale
-    _format_frequency_axis(axes, freq if freq.size else np.array([1.0]), use_log_axis(freq_hz))
+    log = use_log_axis(freq_hz)
+    _format_frequency_axis(axes, freq if freq.size else np.array([1.0]), log, layout)
     axes.margins(x=X_MARGIN)  # the frequency axis ends just past the sweep's ends
-    _fix_frequency_limits(axes, freq, use_log_axis(freq_hz))
-    axes.set_title(title, loc="left", fontsize=11, color=INK)
-    axes.set_xlabel(f"Frequency ({unit})")
-    axes.set_ylabel(ylabel)
+    _fix_frequency_limits(axes, freq, log)
+    axes.set_title(
+        wrap_title(title, layout.title_chars), loc="left", fontsize=layout.title_pt, color=INK
+    )
+    axes.set_xlabel(f"Frequency ({unit})", fontsize=layout.text_pt)
+    axes.set_ylabel(ylabel, fontsize=layout.text_pt)
+    axes.tick_params(labelsize=layout.text_pt)
     axes.yaxis.get_major_formatter().set_useOffset(False)
     axes.grid(True, which="major", color=GRID, linewidth=0.7)
     axes.grid(True, which="minor", color=GRID_MINOR, linewidth=0.5)
@@ -251,33 +364,66 @@ def _new_axes(title: str, ylabel: str, freq_hz: Sequence[float]):
     return figure, axes, scale
 
 
-def _legend(axes, title: str | None = None) -> None:
-    """The legend below the axes, in as many columns as fit; the figure grows to hold it."""
+def wrap_title(title: str, width: int) -> str:
+    """A figure title in lines of at most ``width`` characters, broken between its
+    `` · ``-separated parts where it can (a part longer than a line is wrapped by words)."""
+    lines: list[str] = []
+    for part in title.split(" \u00b7 "):
+        if lines and len(lines[-1]) + 3 + len(part) <= width:
+            lines[-1] += " \u00b7 " + part
+        else:
+            lines += textwrap.wrap(part, width) or [""]
+    return "\n".join(lines)
+
+
+def _legend(axes, layout: FigureLayout = WIDE, title: str | None = None) -> None:
+    """The legend below the axes, in as many columns as fit; the figure grows to hold it
+    (and at the top, to hold a title that wrapped)."""
     handles, labels = axes.get_legend_handles_labels()
     if not handles:
+        _fit_title(axes)
         return
     order = sorted(range(len(labels)), key=lambda i: _legend_rank(labels[i]))
     handles = [handles[i] for i in order]
-    wrapped = [_wrap(labels[i]) for i in order]
-    columns = max(1, min(len(wrapped), LEGEND_COLUMNS))
+    wrapped = [_wrap(labels[i], layout.legend_chars) for i in order]
+    columns = max(1, min(len(wrapped), layout.legend_columns))
     legend = axes.legend(
         handles,
         wrapped,
         loc="upper left",
         bbox_to_anchor=(0.0, 0.0),
         borderaxespad=0.0,
-        fontsize=8,
+        fontsize=layout.legend_pt,
         frameon=False,
         labelspacing=0.5,
         columnspacing=1.6,
         ncols=columns,
-        title=title and _wrap(title, LEGEND_WIDTH_CHARS * columns),
-        title_fontsize=8,
+        title=title and _wrap(title, layout.legend_chars * columns),
+        title_fontsize=layout.legend_pt,
         alignment="left",
     )
     if title:
         legend.get_title().set_color("#5b6773")
+    _fit_title(axes)
     _place_below_axis_label(axes, legend)
+
+
+def _fit_title(axes) -> None:
+    """Grow the figure at the top when the title (wrapped to more lines than the top margin
+    holds) would be cut, keeping the axes' size in inches."""
+    figure = axes.figure
+    renderer = figure._get_renderer()
+    dpi = figure.dpi
+    width_in, height_in = figure.get_size_inches()
+    title = axes._left_title  # set_title(loc='left'); ``axes.title`` is the centred one
+    title_top_in = title.get_window_extent(renderer).y1 / dpi
+    extra_in = title_top_in + TITLE_PAD_IN - height_in
+    if extra_in <= 0:
+        return
+    left, bottom, w, h = axes.get_position().bounds
+    new_height_in = height_in + extra_in
+    figure.set_size_inches(width_in, new_height_in)
+    axes.set_position((left, bottom * height_in / new_height_in, w, h * height_in / new_height_in))
 
 
 def _place_below_axis_label(axes, legend) -> None:
@@ -286,7 +432,9 @@ def _place_below_axis_label(axes, legend) -> None:
     figure = axes.figure
     renderer = figure._get_renderer()  # the Agg renderer; the figure has no canvas window
     dpi = figure.dpi
-    label_bottom_px = axes.get_tightbbox(renderer).y0  # tick labels and axis label included
+    # the frequency axis' tick labels and label (the y axis and the legend, a child of the
+    # axes, are not below it; laying out only this axis halves the cost of this step)
+    label_bottom_px = axes.xaxis.get_tightbbox(renderer).y0
     axes_bottom_px = axes.get_window_extent(renderer).y0
     drop_px = axes_bottom_px - label_bottom_px + LEGEND_GAP_IN * dpi
     axes_height_px = axes.get_window_extent(renderer).height
@@ -323,10 +471,47 @@ def plain_text(text: str) -> str:
     return f" {text}" if text.startswith("_") else text  # '_x' labels are skipped by legends
 
 
-def to_png(figure, dpi: int = DEFAULT_DPI) -> bytes:
-    """PNG bytes of a matplotlib figure."""
+#: Colours of a figure's PNG: the most frequent ones, exactly. A figure has a few dozen
+#: colours (background, grid, series, text) that cover nearly all of its pixels, plus
+#: anti-aliased blends; a pixel whose colour is not among them takes the nearest that is
+#: (measured on the report's figures: 0.8 % of the pixels, all on edges, by up to 72/255). About a
+#: third of the bytes of full colour, so a report with each figure in two renderings is
+#: smaller than one with a single full-colour rendering.
+PNG_COLOURS = 256
+_LUT_CHUNK = 4096  # colours compared with the palette at a time (4096 x 256 distances)
+
+
+def to_png(figure, dpi: int | None = None) -> bytes:
+    """PNG bytes of a matplotlib figure at ``dpi`` (default: the figure's), with a palette of
+    its :data:`PNG_COLOURS` most frequent colours."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from PIL import Image, PngImagePlugin
+
+    canvas = FigureCanvasAgg(figure)
+    drawn_dpi = figure.dpi
+    if dpi:
+        figure.set_dpi(dpi)
+    try:
+        canvas.draw()
+        rgb = np.asarray(canvas.buffer_rgba())[..., :3].astype(np.int32)
+    finally:
+        figure.set_dpi(drawn_dpi)
+    height, width, _ = rgb.shape
+    packed = (rgb[..., 0] << 16 | rgb[..., 1] << 8 | rgb[..., 2]).ravel()
+    colours, inverse, counts = np.unique(packed, return_inverse=True, return_counts=True)
+    unpacked = np.stack([colours >> 16, (colours >> 8) & 255, colours & 255], axis=-1)
+    palette = unpacked[np.argsort(-counts, kind="stable")[:PNG_COLOURS]]
+    lookup = np.empty(len(colours), dtype=np.uint8)  # each colour's nearest palette entry
+    for start in range(0, len(colours), _LUT_CHUNK):
+        chunk = unpacked[start : start + _LUT_CHUNK]
+        distance = ((chunk[:, None, :] - palette[None, :, :]) ** 2).sum(axis=-1)
+        lookup[start : start + _LUT_CHUNK] = distance.argmin(axis=1)
+    image = Image.fromarray(lookup[inverse.ravel()].reshape(height, width))
+    image.putpalette(palette.astype(np.uint8).tobytes())
+    info = PngImagePlugin.PngInfo()
+    info.add_text("Software", "noisebench")
     buffer = io.BytesIO()
-    figure.savefig(buffer, format="png", dpi=dpi, metadata={"Software": "noisebench"})
+    image.save(buffer, format="png", pnginfo=info)
     return buffer.getvalue()
 
 
@@ -412,7 +597,7 @@ def limit_segments(record: RunRecord, keys: Sequence[str]) -> list[tuple[float, 
     return segments
 
 
-def _draw_limits(axes, segments, scale: float) -> None:
+def _draw_limits(axes, segments, scale: float, layout: FigureLayout = WIDE) -> None:
     """Black dashed limit lines over their bands, each labelled with its value at its end."""
     labelled: set[str] = set()
     for start, stop, value, key in segments:
@@ -435,7 +620,7 @@ def _draw_limits(axes, segments, scale: float) -> None:
             textcoords="offset points",
             ha="right",
             va="bottom",
-            fontsize=7.5,
+            fontsize=layout.note_pt,
             color=LIMIT,
         )
 
@@ -506,19 +691,21 @@ def _draw_verdicts(axes, record: RunRecord, freq: np.ndarray, values: np.ndarray
 # ----------------------------------------------------------------------------- figures
 
 
-def nf_figure(record: RunRecord):
+def nf_figure(record: RunRecord, layout: FigureLayout = WIDE):
     """Figure of NF vs frequency with error bars, limit lines and verdict markers."""
     freq_hz = [p.freq_hz for p in record.points]
-    figure, axes, scale = _new_axes(_title(record, "Noise figure"), "Noise figure (dB)", freq_hz)
+    figure, axes, scale = _new_axes(
+        _title(record, "Noise figure"), "Noise figure (dB)", freq_hz, layout
+    )
     freq = np.array(freq_hz) / scale
     nf = np.array([p.nf_db for p in record.points])
     bars, bar_label = nf_error_bars(record)
     _draw_with_uncertainty(axes, freq, nf, bars, f"NF ± {bar_label}")
-    _draw_limits(axes, limit_segments(record, NF_LIMIT_KEYS), scale)
+    _draw_limits(axes, limit_segments(record, NF_LIMIT_KEYS), scale, layout)
     if record.verdict:
         _draw_verdicts(axes, record, freq, nf)
     _draw_flagged(axes, record, freq, nf + bars[1])
-    _legend(axes)
+    _legend(axes, layout)
     return figure
 
 
@@ -543,13 +730,13 @@ def _draw_flagged(axes, record: RunRecord, freq: np.ndarray, tops: np.ndarray) -
     )
 
 
-def gain_figure(record: RunRecord):
+def gain_figure(record: RunRecord, layout: FigureLayout = WIDE):
     """Figure of DUT gain vs frequency with uncertainty bars and gain limits, or None."""
     points = [p for p in record.points if p.gain_db is not None]
     if not points:
         return None
     freq_hz = [p.freq_hz for p in points]
-    figure, axes, scale = _new_axes(_title(record, "Gain"), "Gain (dB)", freq_hz)
+    figure, axes, scale = _new_axes(_title(record, "Gain"), "Gain (dB)", freq_hz, layout)
     freq = np.array(freq_hz) / scale
     gain = np.array([p.gain_db for p in points], dtype=float)
     bars, bar_label = gain_error_bars(record)
@@ -557,8 +744,8 @@ def gain_figure(record: RunRecord):
         _draw_with_uncertainty(axes, freq, gain, bars, f"gain ± {bar_label}")
     else:
         axes.plot(freq, gain, color=INK, marker=".", markersize=5, linewidth=1.2, label="gain")
-    _draw_limits(axes, limit_segments(record, GAIN_LIMIT_KEYS), scale)
-    _legend(axes)
+    _draw_limits(axes, limit_segments(record, GAIN_LIMIT_KEYS), scale, layout)
+    _legend(axes, layout)
     return figure
 
 
@@ -586,14 +773,17 @@ def density_label(name: str) -> str:
     return style[0] if style else plain_text(name.replace("_", " "))
 
 
-def densities_figure(record: RunRecord):
+def densities_figure(record: RunRecord, layout: FigureLayout = WIDE):
     """Figure of the raw noise densities (dBm/Hz) vs frequency, or None without densities."""
     series = density_series(record)
     if not series:
         return None
     freq_hz = [p.freq_hz for p in record.points]
     figure, axes, scale = _new_axes(
-        _title(record, "Noise densities at the analyzer"), "Noise density (dBm/Hz)", freq_hz
+        _title(record, "Noise densities at the analyzer"),
+        "Noise density (dBm/Hz)",
+        freq_hz,
+        layout,
     )
     dense = len(record.points) > DENSE_SWEEP_POINTS
     for index, (name, (freq, dbm_per_hz)) in enumerate(series.items()):
@@ -610,7 +800,7 @@ def densities_figure(record: RunRecord):
             markersize=3.5,
             label=density_label(name),
         )
-    _legend(axes)
+    _legend(axes, layout)
     return figure
 
 
@@ -677,14 +867,14 @@ def rss_series(
     return freq, np.sqrt([squares[f] for f in freq])
 
 
-def budget_figure(record: RunRecord):
+def budget_figure(record: RunRecord, layout: FigureLayout = WIDE):
     """Figure of the uncertainty contributions vs frequency, or None without budgets."""
     series = budget_series(record)
     if not series:
         return None
     freq_hz = [b["freq_hz"] for b in record.budgets if isinstance(b.get("freq_hz"), (int, float))]
     figure, axes, scale = _new_axes(
-        _title(record, "Uncertainty budget"), "Uncertainty of NF (dB)", freq_hz
+        _title(record, "Uncertainty budget"), "Uncertainty of NF (dB)", freq_hz, layout
     )
     shown, rest = largest_contributions(series)
     dense = len(freq_hz) > DENSE_SWEEP_POINTS
@@ -722,7 +912,7 @@ def budget_figure(record: RunRecord):
             freq, value = series[name]
             axes.plot(freq / scale, value, color=EDGE, linewidth=2.0, linestyle=style, label=label)
     axes.set_ylim(bottom=0)
-    _legend(axes, title=r"contributions $|c_i\,u(x_i)|$ are standard uncertainties (k = 1)")
+    _legend(axes, layout, title=r"contributions $|c_i\,u(x_i)|$ are standard uncertainties (k = 1)")
     return figure
 
 
@@ -741,23 +931,43 @@ FIGURES = (
 )
 
 
-def render_figures(record: RunRecord, dpi: int = DEFAULT_DPI) -> dict[str, bytes]:
-    """All figures that apply to ``record`` as PNG bytes, keyed by file name (in memory)."""
+def render_figures(
+    record: RunRecord, dpi: int | None = None, *, layout: FigureLayout = WIDE
+) -> dict[str, bytes]:
+    """All figures that apply to ``record`` as PNG bytes, keyed by file name (in memory),
+    drawn for ``layout`` at ``dpi`` (default: the layout's)."""
     if not record.points:
         logger.info("run %s has no points: no figures", record.info.run_id)
         return {}
     figures = {}
     for name, make in FIGURES:
-        figure = make(record)
+        figure = make(record, layout)
         if figure is not None:
-            figures[name] = to_png(figure, dpi)
+            figures[name] = to_png(figure, dpi or layout.dpi)
+    return figures
+
+
+def narrow_name(name: str) -> str:
+    """The key (and path below ``plots/``) of a figure's narrow rendering."""
+    return f"{NARROW_DIR}/{name}"
+
+
+def render_report_figures(record: RunRecord, dpi: int | None = None) -> dict[str, bytes]:
+    """The figures of the report: the wide ones (at ``dpi``, default the layout's), then
+    their narrow renderings keyed ``narrow/<name>``."""
+    figures = render_figures(record, dpi)
+    if figures:
+        narrow = render_figures(record, layout=NARROW)
+        figures.update({narrow_name(name): png for name, png in narrow.items()})
     return figures
 
 
 def plot_run(record: RunRecord, folder: Path, *, dpi: int = DEFAULT_DPI) -> list[Path]:
-    """Write the run's figures to ``<folder>/plots/*.png`` (``folder`` is the run folder).
+    """Write the run's figures to ``<folder>/plots/*.png`` (``folder`` is the run folder), and
+    their phone renderings (:data:`NARROW`) to ``<folder>/plots/narrow/*.png``.
 
-    Returns the written paths (none when the run has no points).
+    ``dpi`` is the wide figures'. Returns the written paths, the wide figures first (none when
+    the run has no points).
     """
     if not isinstance(record, RunRecord):
         raise InputError(
@@ -772,8 +982,18 @@ def plot_run(record: RunRecord, folder: Path, *, dpi: int = DEFAULT_DPI) -> list
         raise InputError(
             "folder", f"cannot create {out}: {exc.strerror or exc}", fix="choose a writable folder"
         ) from exc
+    figures = render_report_figures(record, dpi)
+    if figures:
+        try:
+            (out / NARROW_DIR).mkdir(exist_ok=True)
+        except OSError as exc:
+            raise InputError(
+                "folder",
+                f"cannot create {out / NARROW_DIR}: {exc.strerror or exc}",
+                fix="choose a writable folder",
+            ) from exc
     paths = []
-    for name, png in render_figures(record, dpi).items():
+    for name, png in figures.items():
         path = out / name
         path.write_bytes(png)
         paths.append(path)
@@ -782,7 +1002,12 @@ def plot_run(record: RunRecord, folder: Path, *, dpi: int = DEFAULT_DPI) -> list
 
 
 __all__ = [
+    "LAYOUTS",
+    "NARROW",
+    "NARROW_DIR",
     "VERDICT_STYLE",
+    "WIDE",
+    "FigureLayout",
     "VERDICT_SYMBOL",
     "budget_figure",
     "coverage_text",
@@ -795,14 +1020,17 @@ __all__ = [
     "largest_contributions",
     "limit_segments",
     "log_tick_subs",
+    "narrow_name",
     "nf_error_bars",
     "nf_figure",
     "plain_number",
     "plain_text",
     "plot_run",
     "render_figures",
+    "render_report_figures",
     "rss_series",
     "to_png",
     "use_log_axis",
     "verdict_words",
+    "wrap_title",
 ]

@@ -38,7 +38,7 @@ from pathlib import Path
 from typing import Any
 
 from noisebench.errors import InputError
-from noisebench.results.plots import VERDICT_STYLE
+from noisebench.results.plots import NARROW_DIR, VERDICT_STYLE
 from noisebench.results.report.budgets import _budgets
 from noisebench.results.report.cells import (
     DETAIL_ROWS_MAX,
@@ -66,6 +66,7 @@ from noisebench.results.report.summary import (
     _header,
     _how_to_read,
     _summary,
+    narrow_figure_media,
 )
 from noisebench.results.store import REPORT_FILE, RunRecord, write_atomic
 from noisebench.running.safety import CAUTIONS as SAFETY_NOTE
@@ -113,6 +114,7 @@ def report_context(record: RunRecord, images: Mapping[str, bytes]) -> dict[str, 
         "contents": _sections(record, images),
         "summary": _summary(record),
         "figures": _figures(images),
+        "narrow_media": narrow_figure_media(),
         "points": _points(record),
         "frequency_plan": _frequency_plan(record),
         "verdict": _verdict_section(record),
@@ -141,11 +143,13 @@ def render_report(record: RunRecord, images: Mapping[str, bytes] | None = None) 
 
 
 def _load_images(plots: Sequence[Path | str] | None, record: RunRecord) -> dict[str, bytes]:
+    """Figure name -> PNG bytes; a PNG in a ``narrow/`` folder is the phone rendering of the
+    figure of its name (key ``narrow/<name>``)."""
     if plots is None:
         try:
-            from noisebench.results.plots import render_figures
+            from noisebench.results.plots import render_report_figures
 
-            return render_figures(record)
+            return render_report_figures(record)
         except InputError as exc:  # matplotlib missing: a report without figures
             logger.warning("report without figures: %s", exc)
             return {}
@@ -162,26 +166,34 @@ def _load_images(plots: Sequence[Path | str] | None, record: RunRecord) -> dict[
             ) from exc
         if not data.startswith(b"\x89PNG\r\n\x1a\n"):
             raise InputError("plots", f"{path} is not a PNG file", fix="pass PNG files")
-        images[path.name] = data
+        narrow = path.parent.name == NARROW_DIR
+        images[f"{NARROW_DIR}/{path.name}" if narrow else path.name] = data
     return images
 
 
 def existing_figures(folder: Path) -> list[Path]:
     """The figures already in ``<folder>/plots`` that are not older than the run's data (the
-    journal and ``results.json``), in report order: what ``render --no-plots`` embeds."""
+    journal and ``results.json``), in report order, then the phone renderings (``narrow/``)
+    of those: what ``render --no-plots`` embeds. A narrow rendering comes only with its
+    figure, and a stale one is left out (the report then shows the wide one on a phone too).
+    """
     from noisebench.results.store import JOURNAL_FILE, PLOTS_DIR, RESULTS_JSON_FILE
 
     folder = Path(folder)
     data = [folder / JOURNAL_FILE, folder / RESULTS_JSON_FILE]
     newest_data = max((p.stat().st_mtime for p in data if p.is_file()), default=0.0)
-    found = []
-    for name in FIGURE_CAPTIONS:
-        png = folder / PLOTS_DIR / name
+
+    def fresh(png: Path) -> bool:
         if png.is_file() and png.stat().st_mtime >= newest_data:
-            found.append(png)
-        elif png.is_file():
+            return True
+        if png.is_file():
             logger.warning("%s is older than the run's data: left out of the report", png)
-    return found
+        return False
+
+    found = [folder / PLOTS_DIR / name for name in FIGURE_CAPTIONS]
+    found = [png for png in found if fresh(png)]
+    narrow = [png.parent / NARROW_DIR / png.name for png in found]
+    return found + [png for png in narrow if fresh(png)]
 
 
 def write_report(record: RunRecord, path: Path, plots: Sequence[Path] | None = None) -> Path:

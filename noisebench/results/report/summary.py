@@ -4,12 +4,15 @@ banner, and the figures (PNG bytes as ``data:`` URIs with their captions)."""
 from __future__ import annotations
 
 import base64
+import math
 from collections.abc import Mapping
 from typing import Any
 
 from noisebench.results.plots import (
     FLAG_MARK_WORDS,
+    NARROW_DIR,
     VERDICT_SYMBOL,
+    WIDE,
     coverage_text,
     nf_error_bars,
 )
@@ -243,11 +246,38 @@ def _verdict_banner(record: RunRecord) -> dict[str, Any] | None:
     }
 
 
+#: The smallest figure text a reader should get without zooming, CSS px (common practice:
+#: 9 px is about the smallest type that reads on a screen at arm's length).
+MIN_FIGURE_TEXT_PX = 9.0
+#: The page's side padding at most, CSS px (report.css: ``clamp(.75rem, 3vw, 2.5rem)``, rem
+#: 16 px).
+MAX_SIDE_PADDING_PX = 2.5 * 16
+
+
+def narrow_figure_media() -> str:
+    """The media query under which the browser shows the narrow figures instead of the wide.
+
+    The wide figure shown ``w`` px wide has text ``smallest_pt / 72 * w / width_in`` px high;
+    it is shown wherever that reaches :data:`MIN_FIGURE_TEXT_PX` (9 px: 778 px of figure, an
+    858 px window with the widest padding), the narrow one up to it."""
+    shown_px = MIN_FIGURE_TEXT_PX * 72.0 * WIDE.size_in[0] / WIDE.smallest_pt
+    return f"(max-width: {math.ceil(shown_px + 2 * MAX_SIDE_PADDING_PX)}px)"
+
+
 def _figures(images: Mapping[str, bytes]) -> list[dict[str, str]]:
+    """Each figure as a ``data:`` URI with its caption, and its narrow rendering (``narrow``,
+    empty when there is none) for the browser to show on narrow screens."""
+
+    def uri(png: bytes) -> str:
+        return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
+
+    prefix = f"{NARROW_DIR}/"
     return [
         {
-            "src": "data:image/png;base64," + base64.b64encode(png).decode("ascii"),
+            "src": uri(png),
+            "narrow": uri(images[prefix + name]) if prefix + name in images else "",
             "caption": FIGURE_CAPTIONS.get(name, name),
         }
         for name, png in images.items()
+        if not name.startswith(prefix)
     ]
