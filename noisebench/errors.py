@@ -58,6 +58,19 @@ class MeasurementError(NoisebenchError):
     """The measured data cannot give a trustworthy result (e.g. hot <= cold)."""
 
 
+class YNotSignificantError(MeasurementError):
+    """Hot minus cold is within a few standard uncertainties of zero: no usable Y-factor.
+
+    A dead or disconnected noise source; more averages can only help when the source is
+    alive but weak, so an adaptive loop may average on and refuse when it has to stop.
+    ``significance`` is (Y - 1)/u(Y) of the refused pair (it grows as the square root of the
+    averages), so a loop can size its next round."""
+
+    def __init__(self, message: str, *, significance: float, **context: Any) -> None:
+        super().__init__(message, **context)
+        self.significance = significance
+
+
 class CommunicationError(NoisebenchError):
     """Transport-level failure. ``visa_code`` keeps pyvisa's error code when there is one."""
 

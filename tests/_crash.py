@@ -61,9 +61,15 @@ points = {points}
 input_loss = 0.3
 [expect]
 dut_gain_db = 20.0
+[switching]
+mode = "per_group"
 [output]
 plots = {plots}
 """
+# group by group, the points are journalled one group at a time over the run; a sweep-level
+# schedule journals most of them in one burst at the end of its last block, and a kill aimed
+# at "one of the first quarter of the points" then lands after all of them (no points left
+# for the resumes to measure, which the harness compares)
 STEP_TIMEOUT_S = 600.0  # one run or resume on a loaded two-core machine takes a few seconds
 _CLI = "import sys; from noisebench.frontends.cli import main; sys.exit(main())"
 

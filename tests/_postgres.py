@@ -91,3 +91,16 @@ def temporary_postgres() -> Iterator[str]:
     finally:
         run([pg_ctl, "-D", str(data), "-m", "immediate", "-w", "stop"])
         shutil.rmtree(tmp, ignore_errors=True)
+
+
+def fresh_database(url: str, name: str) -> str:
+    """URL of a new, empty database ``name`` on the server of ``url`` (dropped first if it
+    exists), so tests that share one server do not share rows."""
+    import sqlalchemy as sa
+
+    engine = sa.create_engine(url, isolation_level="AUTOCOMMIT")
+    with engine.connect() as con:
+        con.execute(sa.text(f'DROP DATABASE IF EXISTS "{name}"'))
+        con.execute(sa.text(f'CREATE DATABASE "{name}"'))
+    engine.dispose()
+    return url.rsplit("/", 1)[0] + f"/{name}"

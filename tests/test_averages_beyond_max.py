@@ -5,7 +5,6 @@ over seeds against the simulator's truth; the SCPI path no longer sends a refuse
 from __future__ import annotations
 
 import math
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -25,7 +24,7 @@ SEEDS = range(40)
 FREQ_HZ = 2e9
 
 
-def run_seed(seed: int, scale: str = "power"):
+def run_seed(folder: Path, seed: int, scale: str = "power"):
     plan = make_plan(
         "y_factor",
         freqs_hz=(FREQ_HZ,),
@@ -33,13 +32,12 @@ def run_seed(seed: int, scale: str = "power"):
         acquisition={"rbw_hz": 1e6, "max_averages": 100_000, "averaging_scale": scale},
     )
     sim = make_sim(seed, analyzer__max_averages=MAX_PER_TRACE)
-    with tempfile.TemporaryDirectory() as folder:
-        record, _ = run_plan(
-            plan,
-            folder=Path(folder) / "run",
-            outputs=False,
-            session=simulated_session(sim, plan.bench),
-        )
+    record, _ = run_plan(
+        plan,
+        folder=folder / f"run-{scale}-{seed}",
+        outputs=False,
+        session=simulated_session(sim, plan.bench),
+    )
     return record.points[0], float(sim.truth([FREQ_HZ])["nf_db"][0])
 
 
@@ -49,14 +47,14 @@ def test_the_simulated_analyzer_declares_its_maximum():
 
 
 @pytest.mark.parametrize("scale", ["power", "log_power"])
-def test_target_reached_and_coverage_over_seeds(scale):
+def test_target_reached_and_coverage_over_seeds(tmp_path, scale):
     """40 seeds: every point reaches the target with several traces per reading, and the
     normalised errors z = (NF - truth)/u behave like N(0, 1): sum z^2 inside the chi-square
     99.9 % interval with 40 degrees of freedom, and at least 34 of 40 inside +-2u (binomial
     with p = 0.954: P(X < 34) = 0.3 %)."""
     z = []
     for seed in SEEDS:
-        point, truth = run_seed(seed, scale)
+        point, truth = run_seed(tmp_path, seed, scale)
         per_reading = point.notes["averages_per_reading"]
         assert min(per_reading.values()) >= 3 * MAX_PER_TRACE, per_reading
         assert point.u_nf_db <= TARGET_U_NF_DB * 1.001

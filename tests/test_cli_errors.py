@@ -79,6 +79,7 @@ def test_a_tiny_step_is_refused_not_a_memory_error(tmp_path, capsys):
     assert code == cli.EXIT_INPUT
     _assert_clean_error(err)
     assert "sweep.segments[0].step_hz: 0.001 Hz makes more than 100000 points" in err
+    assert "points between 1 GHz and 2 GHz" in err  # engineering units, not 1e+09
 
 
 def test_an_infinite_time_limit_is_refused_by_validate_and_estimate(tmp_path, capsys):
@@ -267,8 +268,11 @@ def test_points_the_physics_refused_can_be_measured_by_resume(tmp_path, mode):
 def test_cli_names_the_resume_fix_for_skipped_points_and_resume_measures_them(
     tmp_path, capsys, monkeypatch
 ):
-    dead = ideal_sim()
-    dead.noise_source.stuck = True  # a dead source from the start: nothing can be measured
+    # a source sheet 10 dB low at every frequency: each point's Te comes out about -250 K,
+    # hundreds of u below zero, so the physics refuses every point at any noise draw and in
+    # any reading order (a stuck source left hot - cold to a coin flip, and an absurd number
+    # got through when the schedule's order of draws changed)
+    dead = ideal_sim(noise_source__calibration_error_db=[-10.0] * 16)
     monkeypatch.setattr(
         "noisebench.bench.registry.open_bench",
         lambda section, **_: simulated_session(dead, section),

@@ -11,7 +11,7 @@ from datetime import datetime, timedelta, timezone
 
 import numpy as np
 import pytest
-from _postgres import temporary_postgres
+from _postgres import fresh_database
 
 from noisebench.errors import InputError
 from noisebench.results.database import SCHEMA_VERSION, DatabaseError, ResultsDatabase
@@ -197,25 +197,14 @@ def test_sqlite_concurrent_writers_lose_nothing(tmp_path):
 
 
 @pytest.fixture(scope="module")
-def pg_url():
-    try:
-        with temporary_postgres() as url:
-            yield url
-    except RuntimeError as exc:
-        print(f"PostgreSQL not available: {exc}")
-        pytest.skip(f"PostgreSQL could not be started: {exc}")
+def pg_url(postgres_server):
+    """The session's PostgreSQL server (conftest.py); each test makes its own database."""
+    return postgres_server
 
 
 def _fresh_pg(url: str, name: str) -> str:
     """A fresh database on the server so the PostgreSQL tests do not share rows."""
-    import sqlalchemy as sa
-
-    engine = sa.create_engine(url, isolation_level="AUTOCOMMIT")
-    with engine.connect() as con:
-        con.execute(sa.text(f'DROP DATABASE IF EXISTS "{name}"'))
-        con.execute(sa.text(f'CREATE DATABASE "{name}"'))
-    engine.dispose()
-    return url.rsplit("/", 1)[0] + f"/{name}"
+    return fresh_database(url, name)
 
 
 def test_postgresql_store_and_queries(pg_url):

@@ -648,13 +648,16 @@ class _DriveRecorder(NoiseDriveOutput):
         self.calls.append(on)
 
 
-def test_analyzer_drive_source_settles_after_every_switch_and_is_off_after_close():
+def test_analyzer_drive_source_settles_after_every_change_and_is_off_after_close():
     slept, sa = [], _DriveRecorder()
     source = AnalyzerDriveNoiseSource(sa, settle_time_s=0.5, sleep=slept.append)
-    source.set_hot(True)
-    source.set_hot(True)
+    source.set_hot(True)  # the state was unknown: settles
+    source.set_hot(True)  # commanded again, nothing changed: no wait (a safe state's case)
+    assert sa.calls == [True, True] and slept == [0.5]
+    source.set_hot(False)  # a change: settles
+    source.set_hot(False)
     source.close()
-    assert sa.calls == [True, True, False] and slept == [0.5, 0.5]
+    assert sa.calls == [True, True, False, False, False] and slept == [0.5, 0.5]
     assert not source.is_hot and "recording analyzer" in source.identity
     with pytest.raises(InputError):
         AnalyzerDriveNoiseSource(object(), settle_time_s=0.1)  # declares no drive output
@@ -688,6 +691,27 @@ def test_callable_source_wraps_callback_failures():
     assert type(info.value).__name__ == "CommunicationError"
     with pytest.raises(InputError):
         CallableNoiseSource(states.append, settle_time_s=-1.0)
+
+
+def test_a_failed_switch_leaves_the_state_unknown_so_the_next_command_settles():
+    # the drive may or may not have changed when a command failed: the next command, even to
+    # the state believed current, waits the settling time
+    slept, calls = [], []
+
+    def flaky(hot):
+        calls.append(hot)
+        if len(calls) == 3:
+            raise OSError("relay board hiccup")
+
+    source = CallableNoiseSource(flaky, settle_time_s=0.2, sleep=slept.append)
+    source.set_hot(False)
+    assert slept == [0.2]  # unknown at first
+    source.set_hot(False)
+    assert slept == [0.2]  # known and unchanged: no wait
+    with pytest.raises(Exception, match="hiccup"):
+        source.set_hot(False)
+    source.set_hot(False)
+    assert calls == [False, False, False, False] and slept == [0.2, 0.2]
 
 
 def test_operator_source_prompts_and_can_be_stopped():

@@ -289,7 +289,11 @@ no KeyboardInterrupt handler (Python docs, signal module)."""
 
 
 def write_scpi_plan(folder: Path, server: SimServer, freqs_hz, target: float) -> Path:
-    """A Y-factor plan (TOML, as a user writes it) on the SCPI simulator's instruments."""
+    """A Y-factor plan (TOML, as a user writes it) on the SCPI simulator's instruments,
+    measured group by group: after any group is journalled the next one goes hot again, so a
+    run can always be stopped with the source hot after its first points (a sweep-level
+    schedule may journal every group at the end of its last block, cold, and then never go
+    hot again)."""
     enr_csv = folder / "enr.csv"
     simulated_enr_table(server.bench).to_csv(enr_csv)
     plan = folder / "plan.toml"
@@ -315,6 +319,8 @@ input_loss = {INPUT_LOSS_DB}
 source_temperature_k = {BENCH_TEMPERATURE_K}
 [expect]
 dut_gain_db = 20.0
+[switching]
+mode = "per_group"
 [output]
 plots = false
 report = false

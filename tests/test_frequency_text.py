@@ -25,9 +25,16 @@ NUMBER_BEFORE_UNIT = re.compile(
     r"(\{[^{}]*(?::[^{}]*|![rs])\}\]?|%[-+ #0-9.]*[gefdis])\s?[kMGT]?Hz\b"
 )
 
+#: a frequency-named value (``*_hz``, not ``*_per_hz``) formatted as a bare number anywhere in
+#: a message (``between {start_hz:g} and``, ``{lo_hz:.9g}..{hi_hz:.9g}``), with or without
+#: ``Hz`` after it; a ``!r`` echo of what the user gave is not a formatted frequency
+BARE_FREQUENCY_FIELD = re.compile(r"\{[^{}]*(?<!per)_hz\b[^{}!:]*:[-+ #0-9.,_]*[gef]\}")
+
 #: places where the text is not read as prose, with the reason
 ALLOWED = {
     ("sims/samples.py", "{center / 1e6:.6f}MHz"): "a recording's file name, fixed width",
+    ("running/plan.py", "{self.span_hz / self.rbw_hz:.3g}"): "a count of RBW cells, no unit",
+    ("sampled/analyzer.py", "{block.sample_rate_hz:g}"): "a sample rate, samples/s",
 }
 
 
@@ -38,7 +45,8 @@ def offending_lines(root: Path = PACKAGE) -> list[str]:
         if rel == "units.py":
             continue
         for number, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
-            for match in NUMBER_BEFORE_UNIT.finditer(line):
+            matches = [*NUMBER_BEFORE_UNIT.finditer(line), *BARE_FREQUENCY_FIELD.finditer(line)]
+            for match in matches:
                 if (rel, match.group(0)) not in ALLOWED:
                     found.append(f"{rel}:{number}: {line.strip()}")
     return found
@@ -57,10 +65,17 @@ def test_no_bare_number_before_a_frequency_unit_in_the_package():
         '"point %.6g Hz stored"',
         'f"range [{low:.6g}, {high:.6g}] Hz"',
         'f"{span:g}Hz"',
+        'f"100000 points between {self.start_hz:g} and "',  # the plan's step message had it
+        'f"no recording covers {lo_hz:.9g}..{hi_hz:.9g} "',
     ],
 )
 def test_the_scan_sees_each_old_form(line):
-    assert NUMBER_BEFORE_UNIT.search(line)
+    assert NUMBER_BEFORE_UNIT.search(line) or BARE_FREQUENCY_FIELD.search(line)
+
+
+def test_the_scan_leaves_densities_and_echoes_of_bad_input_alone():
+    for line in ('f"({floor.density_dbm_per_hz:.2f} dBm/Hz)"', 'f"(got {freq_hz!r})"'):
+        assert not NUMBER_BEFORE_UNIT.search(line) and not BARE_FREQUENCY_FIELD.search(line)
 
 
 def test_group_descriptions_in_skip_messages_use_engineering_units():

@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from _postgres import temporary_postgres
+from _postgres import fresh_database
 from _production import FREQS_HZ, exact_sim, session_on, small_plan
 
 from noisebench.errors import InputError
@@ -80,17 +80,9 @@ def sqlite_run(bench):
 
 
 @pytest.fixture(scope="module")
-def pg_url():
-    context = temporary_postgres()
-    try:
-        url = context.__enter__()
-    except RuntimeError as exc:
-        print(f"PostgreSQL not available: {exc}")
-        pytest.skip(f"PostgreSQL could not be started: {exc}")
-    try:
-        yield url
-    finally:
-        context.__exit__(None, None, None)
+def pg_url(postgres_server):
+    """A database of this module's own on the session's PostgreSQL server (conftest.py)."""
+    return fresh_database(postgres_server, "nb_production")
 
 
 def _point_rows(db: ResultsDatabase) -> dict[tuple[str, float], tuple]:

@@ -104,6 +104,10 @@ def test_outage_longer_than_the_window_raises_after_the_window(server, monkeypat
 
 
 def write_plan(folder: Path, server: SimServer) -> Path:
+    """A three-point Y-factor plan measured group by group: after the first point is
+    journalled the run still has two groups to read, so an outage started then always meets
+    instrument I/O (a sweep-level schedule may journal all three at once and end cold without
+    another exchange, and the outage would then test nothing)."""
     simulated_enr_table(server.bench).to_csv(folder / "enr.csv")
     plan = folder / "plan.toml"
     plan.write_text(
@@ -124,6 +128,8 @@ freqs_hz = [1.0e9, 1.5e9, 2.0e9]
 table = "enr.csv"
 [corrections]
 source_temperature_k = 296.0
+[switching]
+mode = "per_group"
 [output]
 plots = false
 report = false
@@ -134,17 +140,18 @@ report = false
 
 
 def test_run_survives_a_5_s_outage(server, monkeypatch, tmp_path):
-    fake_clock(monkeypatch, server, back_at=5.0)
+    clock = fake_clock(monkeypatch, server, back_at=5.0)
     plan = load_plan(write_plan(tmp_path, server))
 
     journalled = []
 
-    def drop_after_first_point(point):  # whichever point the schedule finishes first
+    def drop_after_first_point(point):
         journalled.append(point.freq_hz)
         if len(journalled) == 1:
             server.faults.offline = True
 
     record, folder = run_plan(plan, folder=tmp_path / "run", on_point=drop_after_first_point)
+    assert clock.now >= 5.0  # the outage was met and waited out
     assert record.info.status == "complete"
     assert [p.freq_hz for p in record.points] == [1.0e9, 1.5e9, 2.0e9]
     assert not (folder / ".lock").exists()
@@ -156,7 +163,7 @@ def test_longer_outage_exits_4_and_resume_finishes(server, monkeypatch, tmp_path
 
     journalled = []
 
-    def drop_after_first_point(point):  # whichever point the schedule finishes first
+    def drop_after_first_point(point):
         journalled.append(point.freq_hz)
         if len(journalled) == 1:
             server.faults.offline = True
@@ -168,8 +175,7 @@ def test_longer_outage_exits_4_and_resume_finishes(server, monkeypatch, tmp_path
     assert clock.now >= 60.0  # the whole default retry window was tried
     assert not (folder / ".lock").exists()
     kept = load_run(folder)
-    # what was journalled before the outage stopped the run is kept, in order (how many
-    # depends on the schedule: a sweep-level one finishes points between reads)
+    # what was journalled before the outage stopped the run is kept, in order
     assert kept.points and [p.freq_hz for p in kept.points] == journalled[: len(kept.points)]
 
     server.reboot()

@@ -25,7 +25,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from uncertainties import ufloat, umath
 
-from noisebench.errors import InputError, MeasurementError
+from noisebench.errors import InputError, MeasurementError, YNotSignificantError
 from noisebench.science import physics as ph
 from noisebench.science.density import NoiseDensity
 from noisebench.science.methods import (
@@ -297,6 +297,7 @@ def _y_point(b):
             cold_temperature_k=b["tc_cal"],
             u_enr_db=b["u_enr_cal"],
             enr_reference=b["ref"],
+            require_significant_y=False,
         )
     return y_factor_point(
         _density(h, b["rel_u"]),
@@ -310,6 +311,9 @@ def _y_point(b):
         input_loss_temperature_k=b["tp_in"],
         output_loss_db=b["lout_db"],
         output_loss_temperature_k=b["tp_out"],
+        # the math over the whole range: the planner (forecast, averaging loops) evaluates it
+        # on pairs the measurement would refuse as not significant (Y within 4 u(Y) of 1)
+        require_significant_y=False,
     )
 
 
@@ -516,6 +520,7 @@ def test_calibrate_point_matches_numerical_propagation_of_the_sweep_form(b):
         b["enr_cal_db"],
         cold_temperature_k=b["tc_cal"],
         enr_reference=b["ref"],
+        require_significant_y=False,
     )
 
     def model(h, c):
@@ -804,15 +809,22 @@ def test_converter_gain_method_contributions_match_the_uncertainties_package(b):
 
 def test_y_barely_above_one_is_still_refused_with_the_reason():
     # the numerical propagation refused Y - 1 below its 1e-6 step; the analytic one keeps that
+    # for readings exact enough that such a Y is significant (1e-12 relative: 3.5e5 u(Y))
     cold = K * 1000.0
+    hot = cold * (1 + 5e-7)
     with pytest.raises(MeasurementError, match="by too little to give a noise figure"):
-        y_factor_point(
-            _density(cold * (1 + 5e-7), 0.01), _density(cold, 0.01), 15.0, cold_temperature_k=T0
-        )
+        y_factor_point(_density(hot, 1e-12), _density(cold, 1e-12), 15.0, cold_temperature_k=T0)
     with pytest.raises(MeasurementError, match="calibration at 1 GHz: Y - 1 = 5e-07"):
-        calibrate_point(
-            _density(cold * (1 + 5e-7), 0.01), _density(cold, 0.01), 15.0, cold_temperature_k=T0
-        )
+        calibrate_point(_density(hot, 1e-12), _density(cold, 1e-12), 15.0, cold_temperature_k=T0)
+    # with 1 % readings the same Y is 3.5e-5 u(Y) above 1: no usable Y-factor, said in words,
+    # and never "not above" (hot is above cold; project issue 10, item 8)
+    for call in (y_factor_point, calibrate_point):
+        with pytest.raises(YNotSignificantError) as info:
+            call(_density(hot, 0.01), _density(cold, 0.01), 15.0, cold_temperature_k=T0)
+        text = str(info.value)
+        assert "above the cold one by only 3.5e-05 standard uncertainties" in text, text
+        assert "not above" not in text
+        assert info.value.significance == pytest.approx(5e-7 / (math.sqrt(2) * 0.01), rel=1e-3)
 
 
 def test_enr_beyond_float_range_is_refused_naming_the_field():

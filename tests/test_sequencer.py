@@ -50,7 +50,11 @@ def _z_scores(record, sim):
 
 def test_y_factor_recovers_truth_within_stated_uncertainty(tmp_path):
     plan = make_plan("y_factor", freqs_hz=[1e9, 2e9, 3e9, 4e9, 5e9])
-    session = ideal_session(plan, seed=3)
+    # seed 5: seed 3's calibration at 5 GHz reads the gain 4.2 u low with the drift monitor's
+    # split readings (a tail draw shared by every measurement after it). Over seeds 10-29
+    # (100 points, monitors split from 2 averages) the gain z-scores have sd 1.02, largest
+    # |z| 2.7; the NF z-scores sd 0.96, largest |z| 2.6.
+    session = ideal_session(plan, seed=5)
     _, record = _run(plan, session, tmp_path)
     assert record.info.status == "complete"
     z = _z_scores(record, session.sim)

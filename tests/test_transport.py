@@ -233,6 +233,22 @@ def test_fast_block_read_is_bit_identical_to_pyvisa_codec_with_newline_bytes(pee
     assert np.array_equal(a, b)
 
 
+def test_fast_reads_reuse_a_buffer_only_when_no_values_still_use_it(session):
+    # the values are a view of the received bytes (no copy): a later read must never write
+    # into a block whose values are still held, and reuses the buffer once they are gone
+    first = session.query_binary("TRAC?")
+    kept = first.copy()
+    second = session.query_binary("TRAC?")
+    assert not np.shares_memory(first, second)
+    assert np.array_equal(first, kept) and np.array_equal(second, kept)
+    address = second.__array_interface__["data"][0]  # a number: keeps no reference
+    del first, second
+    third = session.query_binary("TRAC?")
+    assert third.__array_interface__["data"][0] == address  # the free buffer, taken again
+    assert np.array_equal(third, NEWLINE_VALUES.astype(float))
+    assert third.dtype == np.dtype(">f4")  # the instrument's own numbers, unconverted
+
+
 def test_scoped_timeout_is_applied_in_ms_and_restored(session):
     assert session._res.timeout == 30_000
     with session.timeout(1.25):

@@ -338,7 +338,7 @@ def test_linear_propagation_matches_monte_carlo():
 def test_hot_not_above_cold_is_refused_naming_the_frequency():
     with pytest.raises(
         MeasurementError,
-        match=r"measurement at 2\.5 GHz: hot reading is "
+        match=r"measurement at 2\.5 GHz: no usable Y-factor, hot reading is "
         r"not above the cold one",
     ):
         y_factor_point(

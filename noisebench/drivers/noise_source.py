@@ -10,7 +10,9 @@ Four ways to switch a noise source between hot (drive on) and cold (drive off):
 - :class:`CallableNoiseSource` - a function of your own (relay, GPIO, lab automation);
 - :class:`OperatorNoiseSource` - asks the operator (the input function is injectable).
 
-All wait ``settle_time_s`` after every switch and switch the drive off on ``close``.
+All wait ``settle_time_s`` after a switch that changes the state (or when the state is not
+known: the first command after opening, or after a failed one; commanding the state the source
+is already in, as a safe state does, waits nothing) and switch the drive off on ``close``.
 :func:`check_source_switching` measures Y from two traces to catch a source that does not
 switch (open drive lead, wrong voltage, stuck relay) before a whole sweep is wasted.
 """
@@ -83,6 +85,7 @@ class _SwitchedSource(NoiseSource):
         self._cold_k = cold_temperature_k
         self._sleep = sleep
         self._hot = False
+        self._known = False  # whether _hot is the state last commanded successfully
         self._closed = False
 
     def _switch(self, hot: bool) -> None:
@@ -92,15 +95,21 @@ class _SwitchedSource(NoiseSource):
         """Release connections after the drive went off (default: nothing)."""
 
     def set_hot(self, hot: bool) -> None:
-        """Drive on (hot) or off (cold), then wait ``settle_time_s``."""
+        """Drive on (hot) or off (cold), then wait ``settle_time_s`` when the state changed or
+        was not known (the drive is commanded either way)."""
         if not isinstance(hot, (bool, np.bool_)):
             raise InputError("hot", f"must be True or False (got {hot!r})", value=hot)
         with self.lock:
             if self._closed:
                 raise InputError("noise_source", "is closed", fix="open it again")
             hot = bool(hot)
+            changed = not self._known or hot != self._hot
+            self._known = False  # until the switch succeeded
             self._switch(hot)
             self._hot = hot
+            self._known = True
+            if not changed:
+                return
             logger.info(
                 "noise source %s; settling %.3g s", "hot" if hot else "cold", self._settle_s
             )

@@ -333,7 +333,8 @@ class _Probe:
         except NoisebenchError:
             return False
         finite = np.all(np.isfinite(values))
-        return bool(finite and PLAUSIBLE_MIN_DBM < float(np.mean(values)) < PLAUSIBLE_MAX_DBM)
+        mean = float(np.mean(values, dtype=np.float64))  # float32 blocks: no overflow
+        return bool(finite and PLAUSIBLE_MIN_DBM < mean < PLAUSIBLE_MAX_DBM)
 
     def _plausible(self, trace: Any, tr: Any) -> None:
         from noisebench.science.estimator import estimate_density

@@ -36,6 +36,7 @@ import logging
 import math
 import select
 import socket
+import sys
 import threading
 import time
 from abc import ABC, abstractmethod
@@ -217,8 +218,10 @@ class Transport(ABC):
         big_endian: bool = True,
         timeout_s: float | None = None,
     ) -> np.ndarray:
-        """Send a query answered by a definite-length binary block; return the numbers.
-        ``timeout_s`` (default: the session's) bounds the whole block."""
+        """Send a query answered by a definite-length binary block; return the numbers (a
+        float array; its dtype may be the block's own, e.g. big-endian float32, where a reader
+        returns the received bytes without a copy). ``timeout_s`` (default: the session's)
+        bounds the whole block."""
 
     @property
     def reads_block_then_text(self) -> bool:
@@ -337,6 +340,7 @@ class VisaSession(Transport):
         self.reconnects = 0
         self._timeout_s = float(timeout_s)
         self._read_limit_s = self._timeout_s  # the limit of the block read in progress
+        self._spare_block: np.ndarray | None = None  # see _block_buffer
         self._lock = threading.RLock()
         self._rm = (
             resource_manager if resource_manager is not None else _resource_manager(visa_library)
@@ -800,11 +804,13 @@ class VisaSession(Transport):
         *,
         then_text: bool = False,
     ) -> tuple[np.ndarray | None, str]:
-        """Header, then payload and terminator received into one buffer, the values decoded
-        to float64 chunk by chunk while the rest is still arriving; the same checks and
-        errors as :meth:`_read_block` and :func:`decode_block_values`. ``limit_s`` (default
-        the session timeout) bounds the whole block. ``then_text``: a ``;`` and a text reply
-        unit follow the block (see :meth:`query_block_then_text`); returns (values, text)."""
+        """Header, then payload and terminator received into one buffer; the values are that
+        buffer seen as ``dtype`` (the instrument's own numbers, no copy, no conversion: a
+        computation converts them where it needs float64, as :class:`Trace` does once); the
+        same checks and errors as :meth:`_read_block` and :func:`decode_block_values`.
+        ``limit_s`` (default the session timeout) bounds the whole block. ``then_text``: a
+        ``;`` and a text reply unit follow the block (see :meth:`query_block_then_text`);
+        returns (values, text)."""
         limit = self._timeout_s if limit_s is None else limit_s
         self._read_limit_s = limit  # for the timeout message
         deadline = time.monotonic() + limit
@@ -831,22 +837,11 @@ class VisaSession(Transport):
                 command=command,
                 resource=self.resource,
             )
-        buffer = bytearray(length + 1)  # payload and the terminator
-        view = memoryview(buffer)
-        values = np.empty(length // dtype.itemsize)
-        decoded = 0  # values decoded so far
-
-        def decode(received: int) -> None:
-            nonlocal decoded
-            upto = min(received, length) // dtype.itemsize
-            if upto > decoded:
-                chunk = view[decoded * dtype.itemsize : upto * dtype.itemsize]
-                values[decoded:upto] = np.frombuffer(chunk, dtype=dtype)
-                decoded = upto
-
-        self._recv_into(sock, pending, view, deadline, command, "payload", length, decode)
+        buffer = self._block_buffer(length + 1)  # payload and the terminator
+        view = buffer.data  # a writable memoryview of the buffer
+        values = np.frombuffer(buffer, dtype=dtype, count=length // dtype.itemsize)
+        self._recv_into(sock, pending, view, deadline, command, "payload", length)
         if then_text and buffer[length] == 0x3B:  # ';' then the text unit
-            decode(length)
             text = self._recv_line(sock, pending, deadline, command)
             return values, text.decode("ascii", "replace").strip()
         if buffer[length] == 0x0D:  # CR LF
@@ -858,7 +853,6 @@ class VisaSession(Transport):
                 command=command,
                 resource=self.resource,
             )
-        decode(length)
         if then_text:
             raise BlockError(
                 f"no second reply unit after the binary block from {command!r}",
@@ -866,6 +860,20 @@ class VisaSession(Transport):
                 resource=self.resource,
             )
         return values, ""
+
+    def _block_buffer(self, size: int) -> np.ndarray:
+        """A buffer of ``size`` bytes for a block: the last block's when no array refers to it
+        any more (a trace's values are converted to float64 when the Trace is made, which lets
+        go of them), so a sweep of traces reuses memory whose pages are already mapped; else a
+        new one (np.empty: the socket overwrites it, no zeroing). Never shared with an array
+        still in use: the reference count says whether one is (CPython)."""
+        spare = self._spare_block
+        # references: the attribute, the local name, getrefcount's argument
+        if spare is not None and spare.size >= size and sys.getrefcount(spare) <= 3:
+            return spare[:size]
+        spare = np.empty(size, dtype=np.uint8)
+        self._spare_block = spare
+        return spare
 
     def _recv_line(
         self, sock: socket.socket, pending: bytearray, deadline: float, command: str
@@ -900,11 +908,9 @@ class VisaSession(Transport):
         command: str,
         part: str,
         payload_bytes: int | None = None,
-        progress=None,
     ) -> None:
-        """Fill ``out`` from pyvisa-py's pending bytes, then from the socket, by ``deadline``;
-        ``progress(bytes_so_far)`` runs while waiting for more. Data already queued is taken
-        without a ``select`` call."""
+        """Fill ``out`` from pyvisa-py's pending bytes, then from the socket, by ``deadline``.
+        Data already queued is taken without a ``select`` call."""
         filled = min(len(pending), len(out))
         if filled:
             out[:filled] = pending[:filled]
@@ -914,9 +920,7 @@ class VisaSession(Transport):
                 got = sock.recv_into(out[filled:], 0, _DONT_WAIT) if _DONT_WAIT else None
             except BlockingIOError:
                 got = None
-            if got is None:  # nothing queued: use the wait for decoding, then block
-                if progress is not None:
-                    progress(filled)
+            if got is None:  # nothing queued: wait for more
                 remaining = deadline - time.monotonic()
                 ready = remaining > 0 and select.select([sock], [], [], remaining)[0]
                 got = sock.recv_into(out[filled:]) if ready else None

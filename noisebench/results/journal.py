@@ -9,14 +9,16 @@ import logging
 import os
 import re
 import tempfile
+from collections.abc import Iterable, Iterator
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 from pydantic import ValidationError
 
 from noisebench.errors import InputError
 from noisebench.results.records import _clean_point
 from noisebench.results.run_files import describe_damage
+from noisebench.results.stored import JournalIndex
 from noisebench.science.point import PointResult
 from noisebench.units import format_frequency
 
@@ -37,13 +39,18 @@ def _fsync_dir(folder: Path) -> None:
         os.close(fd)
 
 
-def write_atomic(path: Path, data: str) -> None:
-    """Write ``data`` (UTF-8) so that ``path`` holds either the old or the new content."""
+def write_atomic(path: Path, data: str | Iterable[str]) -> None:
+    """Write ``data`` (UTF-8) so that ``path`` holds either the old or the new content.
+
+    ``data`` may be an iterable of text pieces, written as they come (a large file is then
+    never held whole in memory)."""
     path = Path(path)
+    pieces = [data] if isinstance(data, str) else data
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     try:
         with os.fdopen(fd, "w", encoding="utf-8", newline="") as handle:
-            handle.write(data)
+            for piece in pieces:
+                handle.write(piece)
             handle.flush()
             os.fsync(handle.fileno())
         os.chmod(tmp, 0o644)  # mkstemp makes 0600; results are meant to be shared
@@ -58,13 +65,15 @@ def write_atomic(path: Path, data: str) -> None:
 # ----------------------------------------------------------------------------- journal
 
 
+_CALIBRATION_LINE = b'{"kind":"calibration"'  # how RunWriter starts a calibration line
 _SURROGATE_ESCAPE = re.compile(rb"\\u[dD][89a-fA-F]")
 
 
 class _Journal:
     """What a journal holds, parsed tolerantly. ``valid_bytes`` ends after the last good line."""
 
-    def __init__(self) -> None:
+    def __init__(self, index: JournalIndex | None = None) -> None:
+        self.index = index  # where the points lie, when they are indexed instead of loaded
         self.points: list[PointResult] = []
         self.budgets: list[dict[str, Any]] = []
         self.calibrations: list[dict[str, Any]] = []
@@ -74,7 +83,7 @@ class _Journal:
         self.needs_newline = False
 
 
-def _parse_entry(line: bytes, where: str, journal: _Journal) -> None:
+def _parse_entry(line: bytes, where: str, journal: _Journal, offset: int = 0) -> None:
     entry = json.loads(line.decode("utf-8"))  # strict: no encoded surrogates
     if _SURROGATE_ESCAPE.search(line):  # "\ud800" escapes give text that cannot be written
         json.dumps(entry, ensure_ascii=False).encode("utf-8")  # UnicodeEncodeError: damaged
@@ -89,53 +98,93 @@ def _parse_entry(line: bytes, where: str, journal: _Journal) -> None:
             logger.warning(text)
             journal.warnings.append(text)
             return
-        journal.points.append(point)
+        if journal.index is not None:
+            journal.index.add(offset, len(line), point.freq_hz, entry.get("budget"))
+        else:
+            journal.points.append(point)
+            if entry.get("budget") is not None:
+                journal.budgets.append(entry["budget"])
         journal.done_freqs_hz.add(point.freq_hz)
-        if entry.get("budget") is not None:
-            journal.budgets.append(entry["budget"])
     elif kind == "calibration":
         journal.calibrations.append(entry["calibration"])
     else:
         raise ValueError(f"unknown journal entry kind {kind!r}")
 
 
-def _read_journal(path: Path) -> _Journal:
+_SKIP_CHUNK = 1 << 16
+
+
+def _journal_lines(handle: BinaryIO, skip: bytes | None) -> Iterator[tuple[int, bytes | None]]:
+    """Each line of ``handle`` with its newline, and its size in bytes; a line starting with
+    ``skip`` is read past in pieces and given as ``None`` (a long sweep's calibration line is
+    megabytes that a caller skipping it need never hold)."""
+    while True:
+        head = handle.readline(len(skip)) if skip else handle.readline()
+        if not head:
+            return
+        if skip is None or head.endswith(b"\n") or len(head) < len(skip):
+            yield len(head), head
+        elif head == skip:
+            size = len(head)
+            while True:
+                rest = handle.readline(_SKIP_CHUNK)
+                size += len(rest)
+                if not rest or rest.endswith(b"\n"):
+                    break
+            yield size, None
+        else:
+            line = head + handle.readline()
+            yield len(line), line
+
+
+def _read_journal(
+    path: Path, *, calibrations: bool = True, index: JournalIndex | None = None
+) -> _Journal:
     """Parse ``points.jsonl``. A torn last line is ignored with a warning, never raised.
 
-    Appends are single writes ending in a newline, so only the unterminated final piece of the
-    file can be torn; an unreadable line elsewhere is skipped with a warning and kept on disk.
+    Every append ends in a newline, so only the unterminated final piece of the file can be
+    torn; an unreadable line elsewhere is skipped with a warning and kept on disk.
+    Read line by line: the file is never held whole in memory. ``calibrations=False`` skips
+    the calibration lines this process wrote itself (the writer keeps those it saved). With an
+    ``index`` the points are not kept: the index records where each kept point line lies
+    (:mod:`noisebench.results.stored` reads them on demand).
     """
-    journal = _Journal()
+    journal = _Journal(index)
     if not path.exists():
         return journal
-    data = path.read_bytes()
-    pieces = data.split(b"\n")
-    last = len(pieces) - 1
-    for index, piece in enumerate(pieces):
-        if not piece.strip():
-            continue
-        where = f"{path.name} line {index + 1}"
-        try:
-            _parse_entry(piece, where, journal)
-        except (ValueError, KeyError, TypeError, ValidationError, RecursionError) as exc:
-            if index == last:
-                text = (
-                    f"{where}: incomplete last entry ({len(piece)} bytes) ignored; "
-                    "the run was probably killed while writing it"
-                )
-            else:
-                text = (
-                    f"{where}: damaged entry skipped ({describe_damage(exc)}); the line is kept "
-                    "in the file as it is"
-                )
-            logger.warning(text)
-            journal.warnings.append(text)
-            if index == last:
-                journal.valid_bytes = len(data) - len(piece)
-                return journal
-            continue
-        journal.needs_newline = index == last  # complete JSON whose newline never reached disk
-    journal.valid_bytes = len(data)
+    offset = 0
+    with open(path, "rb") as handle:
+        skip = None if calibrations else _CALIBRATION_LINE
+        for number, (size, piece) in enumerate(_journal_lines(handle, skip), start=1):
+            start, offset = offset, offset + size
+            if piece is None:  # a skipped line, passed over without being held
+                continue
+            last = not piece.endswith(b"\n")  # only the file's final piece lacks one
+            piece = piece.rstrip(b"\n")
+            if not piece.strip():
+                continue
+            where = f"{path.name} line {number}"
+            try:
+                _parse_entry(piece, where, journal, start)
+            except (ValueError, KeyError, TypeError, ValidationError, RecursionError) as exc:
+                if last:
+                    text = (
+                        f"{where}: incomplete last entry ({len(piece)} bytes) ignored; "
+                        "the run was probably killed while writing it"
+                    )
+                else:
+                    text = (
+                        f"{where}: damaged entry skipped ({describe_damage(exc)}); the line is "
+                        "kept in the file as it is"
+                    )
+                logger.warning(text)
+                journal.warnings.append(text)
+                if last:
+                    journal.valid_bytes = start
+                    return journal
+                continue
+            journal.needs_newline = last  # complete JSON whose newline never reached disk
+    journal.valid_bytes = offset
     return journal
 
 

@@ -3,15 +3,26 @@ of a run; file names, CSV columns and the meaning of each point flag."""
 
 from __future__ import annotations
 
+import itertools
 import logging
 import math
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from datetime import datetime, timezone
 from enum import Enum
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal, TypeVar
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationInfo, field_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    SerializerFunctionWrapHandler,
+    ValidationInfo,
+    ValidatorFunctionWrapHandler,
+    WrapValidator,
+    field_serializer,
+    field_validator,
+)
 
 from noisebench.errors import InputError
 from noisebench.science.point import Method, PointFlag, PointResult
@@ -112,6 +123,34 @@ def _utc_now() -> datetime:
     return datetime.now(timezone.utc)
 
 
+T = TypeVar("T")
+
+
+class StoredSequence(Sequence[T]):
+    """A read-only sequence whose items stay on disk until asked for (a finished run's points
+    and budgets, read from its journal: :mod:`noisebench.results.stored`). A
+    :class:`RunRecord` keeps one as it is instead of copying it into a list, so a long run's
+    record costs a few bytes per point; iterating reads the items one at a time."""
+
+    __hash__ = None  # type: ignore[assignment]
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, Sequence) or isinstance(other, (str, bytes)):
+            return NotImplemented
+        return len(self) == len(other) and all(a == b for a, b in zip(self, other, strict=True))
+
+    def __copy__(self) -> StoredSequence[T]:
+        return self  # read-only: a copy would be the same items
+
+    def __deepcopy__(self, memo: dict[int, Any]) -> StoredSequence[T]:
+        return self
+
+
+def _keep_stored(value: Any, handler: ValidatorFunctionWrapHandler) -> Any:
+    """A :class:`StoredSequence` as it is (its items were checked when it was made)."""
+    return value if isinstance(value, StoredSequence) else handler(value)
+
+
 class RunInfo(BaseModel):
     """Everything about a run except the points: identity, provenance, settings, calibration.
 
@@ -156,13 +195,18 @@ class RunRecord(BaseModel):
     ``verdict`` the limits engineer's dict (``unit``, ``points``, ``limits``).
     ``calibrations`` holds every calibration saved during the run, oldest first.
     ``warnings`` lists what loading had to work around (torn journal line, duplicates, ...).
+    The record a run returns reads its ``points`` and ``budgets`` from the journal as they are
+    asked for (a :class:`StoredSequence`: a long run's record is not held in memory); one
+    loaded from ``results.json`` or built by hand holds lists.
     """
 
     model_config = ConfigDict(extra="forbid")
 
     info: RunInfo
-    points: list[PointResult]
-    budgets: list[dict[str, Any]] = Field(default_factory=list)
+    points: Annotated[Sequence[PointResult], WrapValidator(_keep_stored)]
+    budgets: Annotated[Sequence[dict[str, Any]], WrapValidator(_keep_stored)] = Field(
+        default_factory=list
+    )
     verdict: dict[str, Any] | None = None
     calibrations: list[dict[str, Any]] = Field(default_factory=list)
     warnings: list[str] = Field(default_factory=list)
@@ -171,7 +215,14 @@ class RunRecord(BaseModel):
     @classmethod
     def _plain_json(cls, value: Any, info: ValidationInfo) -> Any:
         """Accept budget/verdict objects (``to_dict``), models and numpy values."""
+        if isinstance(value, StoredSequence):
+            return value  # plain JSON read from the journal
         return _jsonable(value, info.field_name or "record")
+
+    @field_serializer("points", "budgets", mode="wrap")
+    def _stored_as_list(self, value: Any, handler: SerializerFunctionWrapHandler) -> Any:
+        """A :class:`StoredSequence` dumps like the list it stands for."""
+        return handler(list(value) if isinstance(value, StoredSequence) else value)
 
     def budgets_by_freq(self) -> dict[float, dict[str, Any]]:
         """The budgets keyed by their ``freq_hz`` (first one wins)."""
@@ -202,7 +253,9 @@ class RunRecord(BaseModel):
 def _jsonable(value: Any, where: str) -> Any:
     """Plain JSON types from numpy scalars/arrays, enums, paths, datetimes and models.
 
-    Non-finite floats become ``None`` with a warning (JSON has no NaN).
+    Non-finite floats become ``None`` with a warning (JSON has no NaN). Dicts and lists that
+    are already plain JSON are returned as they are, not copied (a long run's calibration
+    would otherwise be copied at every step); treat the result as shared.
     """
     return _plain(value, (where,))
 
@@ -228,9 +281,28 @@ def _plain(value: Any, path: tuple) -> Any:
         return None
     if kind in _SCALARS:
         return value
-    if kind is dict:
-        return {str(k): _plain(v, (*path, str(k))) for k, v in value.items()}
-    if kind is list or kind is tuple:
+    if kind is dict:  # copied only where something changes: a plain tree is returned as is
+        copy: dict[str, Any] | None = None
+        for index, (k, v) in enumerate(value.items()):
+            key = k if type(k) is str else str(k)
+            new = _plain(v, (*path, key))
+            if copy is None:
+                if new is v and key is k:
+                    continue
+                copy = {str(kk): vv for kk, vv in itertools.islice(value.items(), index)}
+            copy[key] = new
+        return value if copy is None else copy
+    if kind is list:
+        items: list[Any] | None = None
+        for index, v in enumerate(value):
+            new = _plain(v, (*path, index))
+            if items is None:
+                if new is v:
+                    continue
+                items = value[:index]
+            items.append(new)
+        return value if items is None else items
+    if kind is tuple:
         return [_plain(v, (*path, i)) for i, v in enumerate(value)]
     to_dict = getattr(value, "to_dict", None)
     if callable(to_dict):  # e.g. uncertainty budgets and verdicts: their documented shape

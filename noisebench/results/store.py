@@ -48,6 +48,7 @@ back bit-exact):
 from __future__ import annotations
 
 import contextlib
+import copy
 import functools
 import json
 import logging
@@ -64,7 +65,13 @@ from typing import Any, TypeVar
 from pydantic import ValidationError
 
 from noisebench.errors import InputError
-from noisebench.results.exports import csv_columns, csv_rows, results_csv_text, write_results
+from noisebench.results.exports import (
+    csv_columns,
+    csv_rows,
+    model_json_pieces,
+    results_csv_text,
+    write_results,
+)
 from noisebench.results.journal import (
     _APPEND_FLAGS,
     LOCK_FILE,
@@ -95,12 +102,14 @@ from noisebench.results.records import (
     _utc_now,
 )
 from noisebench.results.run_files import RunFileError, read_model
+from noisebench.results.stored import JournalIndex, stored_views
 from noisebench.results.summary import format_summary, nf_extremes
 from noisebench.science.point import PointResult
 from noisebench.units import format_frequency
 
 logger = logging.getLogger(__name__)
 T = TypeVar("T")
+_APPEND_PIECE_CHARS = 1 << 16  # a large journal line is written in pieces of about this size
 
 # ----------------------------------------------------------------------------- helpers
 
@@ -152,8 +161,9 @@ class RunWriter:
         self.folder = folder
         self.info = info
         self.done_freqs_hz: set[float] = set(journal.done_freqs_hz)
-        self._points = list(journal.points)
-        self._budgets = list(journal.budgets)
+        # Points and budgets live in the journal only (memory stays flat over a long sweep);
+        # ``finish`` and ``points`` read them back from it. The calibrations are kept: the
+        # latest is ``info.calibration`` (the same object, so no second copy).
         self._calibrations = list(journal.calibrations)
         self._warnings = list(journal.warnings)
         self._lock = lock
@@ -187,7 +197,7 @@ class RunWriter:
                 )
             info = info.model_copy(update={"status": "running", "ended_at": None})
             info = RunInfo.model_validate(_jsonable(info, "info"))
-            write_atomic(folder / RUN_INFO_FILE, info.model_dump_json(indent=2))
+            write_atomic(folder / RUN_INFO_FILE, model_json_pieces(info))
             writer = cls(folder, info, _Journal(), lock)
         except BaseException:
             lock.release()
@@ -223,7 +233,7 @@ class RunWriter:
             for stale in (RESULTS_JSON_FILE, RESULTS_CSV_FILE):
                 with contextlib.suppress(FileNotFoundError):
                     os.unlink(folder / stale)
-            write_atomic(folder / RUN_INFO_FILE, info.model_dump_json(indent=2))
+            write_atomic(folder / RUN_INFO_FILE, model_json_pieces(info))
             writer = cls(folder, info, journal, lock)
         except BaseException:
             lock.release()
@@ -240,8 +250,9 @@ class RunWriter:
 
     @property
     def points(self) -> list[PointResult]:
-        """Points written so far, in the order they were added."""
-        return list(self._points)
+        """Points written so far, in the order they were added (read from the journal)."""
+        with self._mutex:
+            return _read_journal(self.folder / JOURNAL_FILE).points
 
     @_serialized
     def add_point(self, point: PointResult, budget: dict | None = None) -> None:
@@ -263,9 +274,6 @@ class RunWriter:
             budget = self._clean_budget(point.freq_hz, budget)
         entry = {"kind": "point", "point": point.model_dump(mode="json"), "budget": budget}
         self._append(entry)
-        self._points.append(point)
-        if budget is not None:
-            self._budgets.append(budget)
         self.done_freqs_hz.add(point.freq_hz)
         logger.debug("point %s stored: NF %.3f dB", format_frequency(point.freq_hz), point.nf_db)
 
@@ -280,10 +288,10 @@ class RunWriter:
                 f"must be a dict (got {type(calibration).__name__})",
                 fix="pass the calibration as a JSON-able dict or a model",
             )
-        self._append({"kind": "calibration", "calibration": calibration})
+        self._append({"kind": "calibration", "calibration": calibration}, large=True)
         self._calibrations.append(calibration)
         self.info = self.info.model_copy(update={"calibration": calibration})
-        write_atomic(self.folder / RUN_INFO_FILE, self.info.model_dump_json(indent=2))
+        write_atomic(self.folder / RUN_INFO_FILE, model_json_pieces(self.info))
 
     @_serialized
     def update_info(self, **fields: Any) -> None:
@@ -294,14 +302,17 @@ class RunWriter:
                 raise InputError(
                     name, "is managed by the run store", fix="use create/resume/finish"
                 )
-        merged = {**self.info.model_dump(mode="json"), **_jsonable(fields, "info")}
+        # the current fields as they are (a dump would copy the whole calibration each time);
+        # the new ones copied, so the caller's objects stay the caller's
+        current = {name: getattr(self.info, name) for name in type(self.info).model_fields}
+        merged = {**current, **_jsonable(copy.deepcopy(fields), "info")}
         try:
             self.info = RunInfo.model_validate(merged)
         except ValidationError as exc:
             err = exc.errors()[0]
             field = ".".join(str(p) for p in err["loc"]) or "info"
             raise InputError(field, err["msg"]) from None
-        write_atomic(self.folder / RUN_INFO_FILE, self.info.model_dump_json(indent=2))
+        write_atomic(self.folder / RUN_INFO_FILE, model_json_pieces(self.info))
 
     @_serialized
     def finish(self, status: str = "complete", verdict: dict | None = None) -> RunRecord:
@@ -319,16 +330,22 @@ class RunWriter:
                 fix="pass UnitVerdict.to_dict() or the verdict object",
             )
         info = self.info.model_copy(update={"status": status, "ended_at": _utc_now()})
+        # the points and budgets stay in the journal: the record reads them when asked
+        path = self.folder / JOURNAL_FILE
+        index = _read_journal(path, calibrations=False, index=JournalIndex()).index
+        assert index is not None  # asked for
+        points, budgets = stored_views(path, index)
+        del index
         record = RunRecord(
             info=info,
-            points=_sorted_points(self._points),
-            budgets=_sorted_budgets(self._budgets),
+            points=points,
+            budgets=budgets,
             verdict=verdict,
             calibrations=self._calibrations,
             warnings=self._warnings,
         )
         write_results(record, self.folder)
-        write_atomic(self.folder / RUN_INFO_FILE, info.model_dump_json(indent=2))
+        write_atomic(self.folder / RUN_INFO_FILE, model_json_pieces(info))
         self.info = info
         self._close_files()
         logger.info(
@@ -382,14 +399,33 @@ class RunWriter:
             )
         return {**budget, "freq_hz": freq_hz}
 
-    def _append(self, entry: dict[str, Any]) -> None:
-        line = (json.dumps(entry, allow_nan=False, separators=(",", ":")) + "\n").encode()
+    def _append(self, entry: dict[str, Any], *, large: bool = False) -> None:
+        """One journal line, fsync'ed. A ``large`` entry (a long sweep's calibration) is
+        encoded and written in pieces of about 64 kB, never held whole: a process killed
+        between the pieces leaves an incomplete last line, which the reader ignores and
+        ``resume`` cuts off, as for a torn single write."""
         assert self._fd is not None
-        view = memoryview(line)
+        if large:
+            encoder = json.JSONEncoder(allow_nan=False, separators=(",", ":"))
+            pending: list[str] = []
+            size = 0
+            for piece in encoder.iterencode(entry):
+                pending.append(piece)
+                size += len(piece)
+                if size >= _APPEND_PIECE_CHARS:
+                    self._write("".join(pending).encode())
+                    pending, size = [], 0
+            self._write(("".join(pending) + "\n").encode())
+        else:
+            self._write((json.dumps(entry, allow_nan=False, separators=(",", ":")) + "\n").encode())
+        os.fsync(self._fd)
+
+    def _write(self, data: bytes) -> None:
+        assert self._fd is not None
+        view = memoryview(data)
         while view:
             written = os.write(self._fd, view)
             view = view[written:]
-        os.fsync(self._fd)
 
     def _close_files(self) -> None:
         if self._fd is not None:

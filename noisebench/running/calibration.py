@@ -21,12 +21,19 @@ from __future__ import annotations
 
 import bisect
 import math
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from datetime import datetime, timezone
 from enum import Enum
-from typing import Any
+from typing import Any, overload
 
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    SerializerFunctionWrapHandler,
+    field_serializer,
+    model_validator,
+)
 
 from noisebench.bench.acquisition import AcquisitionSettings
 from noisebench.errors import InputError, MeasurementError
@@ -65,11 +72,67 @@ def settings_match(a: AcquisitionSettings, b: AcquisitionSettings) -> bool:
     return all(getattr(a, name) == getattr(b, name) for name in SETTINGS_THAT_MATTER)
 
 
+class DumpedDensities(Sequence[NoiseDensity]):
+    """A calibration's densities kept as their JSON dicts (``model_dump(mode="json")``, one
+    settings dict per settings object) and validated back into :class:`NoiseDensity` when
+    read: a dict is a third of a model's memory, and :meth:`CalibrationStore.to_dict` hands
+    the same dicts to the run store instead of a second copy (a long sweep's calibration is
+    held once). The dicts are shared: never change them."""
+
+    def __init__(self, dumped: list[dict[str, Any]]) -> None:
+        self.dumped = dumped
+
+    @classmethod
+    def of(cls, densities: Sequence[NoiseDensity], shared: dict[int, Any]) -> DumpedDensities:
+        if isinstance(densities, DumpedDensities):
+            return densities
+        return cls([_dumped(d, shared) for d in densities])
+
+    def __len__(self) -> int:
+        return len(self.dumped)
+
+    @overload
+    def __getitem__(self, index: int) -> NoiseDensity: ...
+
+    @overload
+    def __getitem__(self, index: slice) -> list[NoiseDensity]: ...
+
+    def __getitem__(self, index: int | slice) -> NoiseDensity | list[NoiseDensity]:
+        if isinstance(index, slice):
+            return [NoiseDensity.model_validate(d) for d in self.dumped[index]]
+        return NoiseDensity.model_validate(self.dumped[index])
+
+    def __eq__(self, other: object) -> bool:
+        if isinstance(other, DumpedDensities):
+            return self.dumped == other.dumped
+        if not isinstance(other, Sequence) or isinstance(other, (str, bytes)):
+            return NotImplemented
+        return len(self) == len(other) and all(a == b for a, b in zip(self, other, strict=True))
+
+    __hash__ = None  # type: ignore[assignment]
+
+    def __repr__(self) -> str:
+        return f"DumpedDensities({len(self)} densities)"
+
+
+def _dumped(d: NoiseDensity, shared: dict[int, Any]) -> dict[str, Any]:
+    """``d.model_dump(mode="json")`` with the settings dict shared by every density of the
+    same settings object (``shared`` maps its id to the dict)."""
+    out = d.model_dump(mode="json", exclude={"settings"})
+    settings = None
+    if d.settings is not None:
+        settings = shared.get(id(d.settings))
+        if settings is None:
+            settings = shared[id(d.settings)] = d.settings.model_dump(mode="json")
+    return {k: settings if k == "settings" else out[k] for k in type(d).model_fields}
+
+
 class CalibrationEntry(BaseModel):
     """One calibration: densities per frequency measured with one set of applied settings.
 
     ``densities`` maps a reading name to one density per frequency of ``freqs_hz``:
-    ``{"floor": [...]}`` or ``{"hot": [...], "cold": [...]}``. Temperatures in K.
+    ``{"floor": [...]}`` or ``{"hot": [...], "cold": [...]}``. Temperatures in K. They are
+    kept as :class:`DumpedDensities` (the entry's JSON form, read back one density at a time).
     """
 
     model_config = ConfigDict(extra="forbid")
@@ -77,7 +140,7 @@ class CalibrationEntry(BaseModel):
     kind: CalibrationKind
     settings: AcquisitionSettings
     freqs_hz: list[float] = Field(min_length=1)
-    densities: dict[str, list[NoiseDensity]]
+    densities: dict[str, Sequence[NoiseDensity]]
     measured_at: datetime = Field(default_factory=_now)
     measured_at_clock: tuple[str, float] | None = Field(
         default=None,
@@ -88,6 +151,18 @@ class CalibrationEntry(BaseModel):
     instrument_time_s: float | None = Field(default=None, ge=0)
     stopped_by: str = Field(default="target", description="target, time_limit or max_averages")
     summary: list[dict[str, Any]] = Field(default_factory=list)
+
+    @model_validator(mode="after")
+    def _keep_dumped(self) -> CalibrationEntry:
+        shared: dict[int, Any] = {}
+        self.__dict__["densities"] = {
+            name: DumpedDensities.of(ds, shared) for name, ds in self.densities.items()
+        }
+        return self
+
+    @field_serializer("densities", mode="wrap")
+    def _densities_as_lists(self, value: Any, handler: SerializerFunctionWrapHandler) -> Any:
+        return handler({name: list(ds) for name, ds in value.items()})
 
     def index_of(self, freq_hz: float) -> int | None:
         for i, f in enumerate(self.freqs_hz):
@@ -205,8 +280,19 @@ class CalibrationStore:
         self.entries.append(entry)
 
     def to_dict(self) -> dict[str, Any]:
-        """JSON-able form (for ``RunWriter.save_calibration``)."""
-        return {"entries": [e.model_dump(mode="json") for e in self.entries]}
+        """JSON-able form (for ``RunWriter.save_calibration``): ``model_dump(mode="json")`` of
+        each entry, except that densities sharing one settings object share one settings
+        dict (the same JSON; a long sweep's calibration then holds one per group, not one per
+        reading), and the densities are the entry's own dicts (shared: never change them)."""
+        entries = []
+        for e in self.entries:
+            out = e.model_dump(mode="json", exclude={"densities"})
+            shared: dict[int, Any] = {}
+            out["densities"] = {
+                n: DumpedDensities.of(ds, shared).dumped for n, ds in e.densities.items()
+            }  # the entry's own dicts, not copies (see DumpedDensities)
+            entries.append({k: out[k] for k in type(e).model_fields})
+        return {"entries": entries}
 
     @classmethod
     def from_dict(cls, data: dict[str, Any] | None) -> CalibrationStore:
@@ -262,7 +348,12 @@ def system_design_u_db(
 
     tc = cold_temperature_k
     try:
-        cal = calibrate_point(hot, cold, enr_db, cold_temperature_k=tc, t0_k=t0_k)
+        # the u a weak pair would have, to plan the next round; the significance of the pair
+        # is the loop's own stop condition (sequencer_calibration), and is checked again when
+        # the calibration is used
+        cal = calibrate_point(
+            hot, cold, enr_db, cold_temperature_k=tc, t0_k=t0_k, require_significant_y=False
+        )
     except MeasurementError:
         return math.inf
     g = float(ratio_from_db(design_gain_db))
@@ -276,6 +367,12 @@ def system_design_u_db(
         freq_hz=f, density_w_per_hz=scale * (g * tc + cal.te_k), u_density_w_per_hz=0.0
     )
     point = y_factor_point(
-        dut_hot, dut_cold, enr_db, cold_temperature_k=tc, calibration=cal, t0_k=t0_k
+        dut_hot,
+        dut_cold,
+        enr_db,
+        cold_temperature_k=tc,
+        calibration=cal,
+        t0_k=t0_k,
+        require_significant_y=False,
     )
     return point.u_nf_db

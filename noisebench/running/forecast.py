@@ -346,6 +346,7 @@ def point_uncertainty_db(
         float(priors.y_factor_enr_db),
         cold_temperature_k=priors.source_temperature_k,
         t0_k=priors.t0_k,
+        require_significant_y=False,  # a model: at one average even a good Y is within 4 u
     )
     point = y_factor_point(
         _density(freq_hz, r["hot"], rel_u.get("hot", 0.0)),
@@ -354,6 +355,7 @@ def point_uncertainty_db(
         cold_temperature_k=priors.source_temperature_k,
         calibration=cal,
         t0_k=priors.t0_k,
+        require_significant_y=False,
     )
     return point.u_nf_db
 
@@ -390,6 +392,7 @@ def _converter_uncertainty_db(
         float(c.enr_if_db),  # type: ignore[arg-type]
         cold_temperature_k=priors.source_temperature_k,
         t0_k=priors.t0_k,
+        require_significant_y=False,  # a model: at one average even a good Y is within 4 u
     )
     return converter_y_factor_point(
         _density(if_hz, r["hot"], rel_u.get("hot", 0.0)),
@@ -398,6 +401,7 @@ def _converter_uncertainty_db(
         enr_image_db=c.enr_image_db,
         cold_temperature_k=priors.source_temperature_k,
         calibration=cal,
+        require_significant_y=False,
         **common,
     ).u_nf_db
 

@@ -414,7 +414,7 @@ class Segment(BaseModel):
             raise InputError(
                 "step_hz",
                 f"{format_frequency(self.step_hz)} makes more than "
-                f"{MAX_SEGMENT_POINTS} points between {self.start_hz:g} and "
+                f"{MAX_SEGMENT_POINTS} points between {format_frequency(self.start_hz)} and "
                 f"{format_frequency(self.stop_hz)}",
                 fix="use a larger step (step_hz is in Hz)",
             )
@@ -729,9 +729,9 @@ class FrequencyPoint:
 class SwitchingSection(BaseModel):
     """How the noise source's hot and cold readings are ordered (Y-factor).
 
-    ``per_sweep``: the whole sweep (or a block of groups) is read in four passes, hot forward,
-    cold backward, cold forward, hot backward: every point's hot and cold readings are
-    symmetric in time, so a linear drift cancels, with three switches per block instead of
+    ``per_sweep``: the whole sweep (or a block of groups) is read in four passes, cold forward,
+    hot backward, hot forward, cold backward: every point's hot and cold readings are
+    symmetric in time, so a linear drift cancels, with two switches per block instead of
     three or four per point. ``per_group``: hot-cold-cold-hot at each group. ``auto`` takes
     ``per_sweep`` when there are several groups and the source needs settling time. A block
     lasts at most ``max_block_s`` of instrument time: common practice takes a warmed-up

@@ -28,6 +28,11 @@ from noisebench.science.averaging import (
     averages_for_target,
 )
 from noisebench.science.density import NoiseDensity
+from noisebench.science.methods._common import (
+    Y_SIGNIFICANCE_SIGMAS,
+    averages_for_significance,
+    y_significance,
+)
 from noisebench.science.point import Method
 
 logger = logging.getLogger(__name__)
@@ -110,14 +115,17 @@ class CalibrationSteps(AveragingRounds):
         while True:
             self._round(group, readings, per_trace, budget, connection)
             u_worst, settings = self._calibration_u(group, kind, readings)
-            if u_worst <= target:
-                break
             done = readings.averages(names[0])
+            weak = self._significance_need(group, kind, readings, done)
+            if u_worst <= target and weak is None:
+                break
             need = (
                 averages_for_target(done, u_worst, 0.0, target)
                 if math.isfinite(u_worst)
                 else 2 * done
             )
+            if weak is not None:
+                need = weak if need is None else max(need, weak)
             per_trace = self._next_round_averages(policy, done, need, len(names), budget)
             if per_trace == 0:
                 stopped_by = "max_averages" if done >= policy.max_averages else "time_limit"
@@ -167,6 +175,23 @@ class CalibrationSteps(AveragingRounds):
                 settings = hot.settings
             worst = max(worst, u)
         return worst, settings  # type: ignore[return-value]
+
+    @staticmethod
+    def _significance_need(
+        group: PointGroup, kind: CalibrationKind, readings: _Readings, done: int
+    ) -> int | None:
+        """Averages that bring a system calibration's weakest hot/cold pair to a usable Y
+        (``averages_for_significance``); None when every pair already is one (or a floor).
+
+        A pair within 4 u(Y) of Y = 1 is refused where the calibration is used, so the loop
+        averages on until it is significant, or stops at its limits (a dead source)."""
+        if kind is CalibrationKind.FLOOR:
+            return None
+        pairs = [(readings.get(f, "hot"), readings.get(f, "cold")) for f in group.freqs_hz]
+        z = min(y_significance(h.combined().density, c.combined().density) for h, c in pairs)
+        if z >= Y_SIGNIFICANCE_SIGMAS:
+            return None
+        return averages_for_significance(done, z)
 
     def _design_gain_db(self, freq_hz: float) -> float:
         corr = self.corrections

@@ -4,7 +4,7 @@ uncertainty, the average limit or the time limit, and the point results with the
 from __future__ import annotations
 
 from noisebench.bench.registry import Connection
-from noisebench.errors import MeasurementError
+from noisebench.errors import MeasurementError, YNotSignificantError
 from noisebench.running.calibration import (
     CalibrationEntry,
 )
@@ -17,6 +17,7 @@ from noisebench.running.sequencer_core import _GroupOutcome, _Readings
 from noisebench.science.averaging import (
     TimeBudget,
 )
+from noisebench.science.methods._common import averages_for_significance
 from noisebench.science.point import Method, PointFlag, PointResult
 from noisebench.units import format_frequency
 
@@ -42,8 +43,22 @@ class MeasurementSteps(CalibrationSteps):
         per_trace = self._first_round_averages(policy, len(names), self._prior.get("dut"), budget)
         while True:
             checks += self._round(group, readings, per_trace, budget, Connection.DUT)
-            points = [self._point(f, readings, calibration, group) for f in group.freqs_hz]
             done = readings.averages(names[0])
+            try:
+                points = [self._point(f, readings, calibration, group) for f in group.freqs_hz]
+            except YNotSignificantError as exc:
+                # a weak source may become significant with more averages; a dead one is
+                # refused when the averaging has to stop
+                per_trace = self._next_round_averages(
+                    policy,
+                    done,
+                    averages_for_significance(done, exc.significance),
+                    len(names),
+                    budget,
+                )
+                if per_trace == 0:
+                    raise
+                continue
             if all(p.u_nf_db <= policy.target_u_nf_db for p in points):
                 stop = "target"
                 break

@@ -13,6 +13,7 @@ from noisebench.running.safety import (
 )
 from noisebench.running.sequencer_core import SequencerCore, _Readings
 from noisebench.science.averaging import (
+    PLANNING_MARGIN,
     TimeBudget,
     averages_at_target,
     averages_for_target,
@@ -82,12 +83,14 @@ class AveragingRounds(SequencerCore):
         need: int | None,
         states: int,
         budget: TimeBudget,
+        growth: int = MAX_ROUND_GROWTH,
     ) -> int:
-        """Per-trace averages of the next round (0: stop)."""
+        """Per-trace averages of the next round (0: stop); the averages so far grow at most
+        ``growth`` times."""
         if need is None or done >= policy.max_averages:
             return 0
         traces_per_state = 2 if states == 2 else 1
-        want = min(need, policy.max_averages, MAX_ROUND_GROWTH * done) - done
+        want = min(need, policy.max_averages, growth * done) - done
         if want <= 0:
             return 0
         per_trace = max(1, math.ceil(want / traces_per_state))
@@ -139,7 +142,9 @@ class AveragingRounds(SequencerCore):
         return max(1, math.ceil(max(known))) if known else None
 
     @staticmethod
-    def _averages_needed(points: list[PointResult], done: int, target: float) -> int | None:
+    def _averages_needed(
+        points: list[PointResult], done: int, target: float, margin: float = PLANNING_MARGIN
+    ) -> int | None:
         """Averages (per reading) that bring every point to its goal; None: none can improve.
 
         The goal is the target; where the calibration's part alone exceeds it, the goal is to
@@ -150,9 +155,9 @@ class AveragingRounds(SequencerCore):
             if point.u_nf_db <= target:
                 continue
             u_red, u_fix = _split_uncertainty(point)
-            need = averages_for_target(done, u_red, u_fix, target)
+            need = averages_for_target(done, u_red, u_fix, target, margin=margin)
             if need is None and u_red > u_fix:
-                need = averages_for_target(done, u_red, 0.0, u_fix)
+                need = averages_for_target(done, u_red, 0.0, u_fix, margin=margin)
             if need is not None:
                 needs.append(need)
         return max(needs) if needs else None

@@ -1,12 +1,18 @@
-"""Y-factor readings scheduled over the whole sweep: a handful of noise-source switches per
-sweep instead of several per point, and a linear drift still cancels.
+"""Y-factor readings scheduled over the whole sweep: two noise-source switches per sweep-level
+round instead of several per point, and a linear drift still cancels.
 
-A block of groups is read in four passes: hot forward, cold backward, cold forward, hot
-backward. A group read for ``tau`` in every pass, starting ``s`` into a pass of length ``T``,
-has its hot readings at ``s + tau/2`` and ``4T - s - tau/2`` and its cold ones at
-``2T - s - tau/2`` and ``2T + s + tau/2``: both pairs are centred on ``2T``, so a drift linear in
-time (receiver gain, or the source's own output) moves hot and cold alike and cancels in Y, for
-every point. Three switches serve the whole block (four with the final one to cold).
+A block of groups is read in four passes, starting in the state the source is in - cold, as it
+always is after a connection change and at the end of every block: cold forward, hot backward,
+hot forward, cold backward. A group read for ``tau`` in every pass, starting ``s`` into a pass
+of length ``T``, has its cold readings at ``s + tau/2`` and ``4T - s - tau/2`` and its hot ones
+at ``2T - s - tau/2`` and ``2T + s + tau/2``: both pairs are centred on ``2T``, so a drift
+linear in time (receiver gain, or the source's own output) moves hot and cold alike and cancels
+in Y, for every point. Two switches serve the whole block, and it ends cold (the safe state),
+so the next block or phase starts without a switch and the run ends without one. The first
+cold pass reads every group of the block before the source goes hot, which is the power
+guard's cold look. (Started hot, a block reads hot-cold-cold-hot.) The calibration and the
+measurement each start with a pilot round of every group (``min_averages``), whose readings
+plan the next round; neither reads a first group alone.
 
 Drift the schedule cannot cancel (curvature, steps) is a property of the bench - the receiver
 gain, the source's output - seen alike at every frequency, so one group per block watches it:
@@ -41,7 +47,7 @@ import numpy as np
 
 from noisebench.bench.acquisition import AcquisitionSettings
 from noisebench.bench.registry import Connection
-from noisebench.errors import MeasurementError
+from noisebench.errors import MeasurementError, YNotSignificantError
 from noisebench.running.calibration import CalibrationEntry, CalibrationKind
 from noisebench.running.groups import PointGroup
 from noisebench.running.safety import PowerCheck
@@ -50,22 +56,43 @@ from noisebench.running.sequencer_measurement import MeasurementSteps
 from noisebench.science.averaging import TimeBudget, averages_for_target
 from noisebench.science.density import NoiseDensity
 from noisebench.science.drift import DRIFT_ALPHA, DriftCheck, combined_check, drift_check
+from noisebench.science.methods._common import averages_for_significance
 from noisebench.science.point import Method, PointFlag, PointResult
 
 logger = logging.getLogger(__name__)
 
-MIN_CHECK_AVERAGES = 16
-"""A pass reading is split in two for the drift check only when each half has this many
-averages (the pilot block is read whole). Known gap: at ordinary targets (0.05-0.1 dB) the
-passes hold fewer, so those sweeps carry no drift check; splitting from 2 averages checks them
-with calibrated p-values (24 seeded stable runs, uniform or conservative), but first the
-Y-factor must refuse a hot/cold difference that is not significant (a dead source's coin flip
-then reads as an absurd NF instead of a refusal; see DEVELOPERS.md)."""
+MIN_CHECK_AVERAGES = 2
+"""A pass reading is split in two for the drift check when each half has this many averages
+(the pilot block is read whole). A band density averages many bins besides the trace averages,
+so even two averages make ln(density) close enough to normal: over 24 seeded stable runs the
+checks' p-values are uniform or slightly conservative (tests/test_switched_schedule.py). At 16
+(the rule before) sweeps at ordinary targets (0.05-0.1 dB) were never split and carried no
+drift check; that waited for the Y-factor to refuse a hot - cold that is not significant (a
+dead source's coin flip read as an absurd NF), which ``check_y_significant`` now does.
+Measured with the split from 2 (seeds 10-29, 5 points each, ideal demo bench): every point
+carries a drift check; gain z-scores sd 1.02, largest |z| 2.7; NF z-scores sd 0.96."""
 
-FIRST_GROUP_ALONE = False  # measurement: the sweep's pilot block replaces the first group
 PRIOR_SHARE = 0.5
 """A group may stop on its target only with at least this share of the median averages the
 sweep's groups plan (see ``SwitchedSweep._hold_lucky``)."""
+
+SWITCHED_ROUND_GROWTH = 64
+"""A sweep-level round may multiply a group's averages so far by up to 64 (the per-group
+rounds: 16, ``sequencer_rounds.MAX_ROUND_GROWTH``). Every round costs the whole sweep two
+settling times, and the pilot round of ``min_averages`` reads each state of every group in
+two passes, whose u estimate plans the next round within a few percent (the planning margin
+absorbs that); a cap of 16 turned an ordinary need (about 90 averages a state from a pilot
+of 4 at 0.05 dB) into two rounds, one more switch pair for the sweep."""
+
+SWITCHED_MARGIN = 1.03
+"""Planning margin of a sweep-level round (per-group rounds: ``averaging.PLANNING_MARGIN``,
+1.1). A point's u comes from the readings' averaging, which the applied settings fix, and
+from Y (through Y/(Y - 1)), not from the readings' scatter, so the u a round will reach is
+known to about a percent; the margin only has to cover that, while every 1 % of margin costs
+1 % of the measurement. Measured with ``scripts/bench_accuracy.py``'s bench over 12 seeds:
+margins 1.1, 1.05 and 1.02 needed the same switches (8 or 10 per sweep), and the whole run
+took 1.30x, 1.25x and 1.22x its radiometer minimum on average (1.03: 1.23x, 1.17-1.50x).
+A round the scatter test widens (excess scatter) still takes its extra round, as it must."""
 
 CURVATURE_SHARE = 0.1
 """With a declared drift curvature b (dB/s^2), a block of length T leaves at most b T^2 / 2 in
@@ -197,7 +224,13 @@ class SwitchedSweep(MeasurementSteps):
         )
         if monitor is not None:
             monitor.log.clear()  # the monitor's check covers this block only
-        for hot, order in ((True, forward), (False, backward), (False, forward), (True, backward)):
+        # the block starts in the state the source is in: cold (after the calibration's
+        # blocks and every connection change) means cold-hot-hot-cold, two switches, ending
+        # cold for the next block
+        source = self.session.bench.noise_source
+        first = source is not None and source.is_hot
+        passes = ((first, forward), (not first, backward), (not first, forward), (first, backward))
+        for hot, order in passes:
             self._switch_block(hot, block, connection)
             for run in order:
                 if run.failed is not None:
@@ -264,7 +297,9 @@ class SwitchedSweep(MeasurementSteps):
             if done >= floor:
                 continue
             policy = run.group.policy
-            per_trace = self._next_round_averages(policy, done, math.ceil(floor), 2, run.budget)
+            per_trace = self._next_round_averages(
+                policy, done, math.ceil(floor), 2, run.budget, SWITCHED_ROUND_GROWTH
+            )
             if per_trace > 0:
                 run.per_trace = per_trace
                 decisions[run.group.index] = (None, *decision[1:])
@@ -292,18 +327,6 @@ class SwitchedSweep(MeasurementSteps):
         """System calibration (THROUGH) of ``groups`` in sweep-level blocks."""
         kind = CalibrationKind.SYSTEM
         self.session.connect(Connection.THROUGH)
-        if self._prior.get(kind.value) is None:
-            # the first group alone, as in the per-group order: its averages are the prior
-            # that starts every other group near its need (a sweep of pilots would not)
-            first, groups = groups[0], groups[1:]
-            try:
-                entry = self._with_context(first, lambda: self._calibrate_group(first, kind))
-                self.calibrations.add(entry)
-                self.calibrations_measured += 1
-                self.progress.step_done(len(first.freqs_hz))
-            except MeasurementError as exc:
-                self._set_source_cold(TimeBudget(0.0))
-                self._skip(first, exc, "calibration", writer)
         runs = [
             _GroupRun(
                 g,
@@ -331,16 +354,21 @@ class SwitchedSweep(MeasurementSteps):
                     self._skip(run.group, exc, "calibration", writer)
                     continue
                 done = run.readings.averages("hot")
+                weak = self._significance_need(run.group, kind, run.readings, done)
                 stop = None
-                if u_worst <= target:
+                if u_worst <= target and weak is None:
                     stop = "target"
                 else:
                     need = (
-                        averages_for_target(done, u_worst, 0.0, target)
+                        averages_for_target(done, u_worst, 0.0, target, margin=SWITCHED_MARGIN)
                         if math.isfinite(u_worst)
                         else 2 * done
                     )
-                    run.per_trace = self._next_round_averages(policy, done, need, 2, run.budget)
+                    if weak is not None:
+                        need = weak if need is None else max(need, weak)
+                    run.per_trace = self._next_round_averages(
+                        policy, done, need, 2, run.budget, SWITCHED_ROUND_GROWTH
+                    )
                     if run.per_trace == 0:
                         stop = "max_averages" if done >= policy.max_averages else "time_limit"
                 decisions[run.group.index] = (stop, u_worst, settings, target)
@@ -400,15 +428,6 @@ class SwitchedSweep(MeasurementSteps):
         """Measure ``groups`` with the DUT in, in sweep-level blocks; each group's points are
         stored as soon as it stops."""
         groups = [g for g in groups if g.index not in self._unmeasurable]
-        while groups and self._prior.get("dut") is None and FIRST_GROUP_ALONE:
-            # the first group alone, as in the per-group order (see _calibrate_switched)
-            first, groups = groups[0], groups[1:]
-            try:
-                outcome = self._with_context(first, partial(self._measure_group, first))
-            except MeasurementError as exc:
-                self._skip(first, exc, "measurement", writer)
-                continue
-            self._store_outcome(first, outcome, writer)
         runs = []
         for g in groups:
             runs.append(
@@ -421,12 +440,10 @@ class SwitchedSweep(MeasurementSteps):
             )
         if not runs:
             return
-        if self._guard().needs_cold_look:
-            self._set_source_cold(TimeBudget(0.0))
-            for run in runs:
-                look = self._acquire(run.group, run.per_trace, run.budget)
-                run.readings.add("cold", look)
-                self._guard().observe_cold([d.density_w_per_hz for d in look])
+        # every block starts cold, so its first pass reads each group cold before the source
+        # goes hot: that pass is the power guard's cold look (no extra readings, which would
+        # also break the schedule's symmetry in time)
+        self._set_source_cold(TimeBudget(0.0))
         calibrations = {r.group.index: self._calibration_for(r.group) for r in runs}
         active = list(runs)
         while active:
@@ -460,16 +477,27 @@ class SwitchedSweep(MeasurementSteps):
     def _decide(self, run: _GroupRun, calibration: CalibrationEntry, writer):
         """(stop reason or None, points) after a block; None when the physics refused."""
         group, policy = run.group, run.group.policy
+        done = run.readings.averages("hot")
         try:
             points = [self._point(f, run.readings, calibration) for f in group.freqs_hz]
+        except YNotSignificantError as exc:
+            # a weak source may become significant with more averages (see _measure_group)
+            run.per_trace = self._next_round_averages(
+                policy, done, averages_for_significance(done, exc.significance), 2, run.budget
+            )
+            if run.per_trace > 0:
+                return None, []
+            self._skip(group, exc, "measurement", writer)
+            return None
         except MeasurementError as exc:
             self._skip(group, exc, "measurement", writer)
             return None
-        done = run.readings.averages("hot")
         if all(p.u_nf_db <= policy.target_u_nf_db for p in points):
             return "target", points
-        need = self._averages_needed(points, done, policy.target_u_nf_db)
-        run.per_trace = self._next_round_averages(policy, done, need, 2, run.budget)
+        need = self._averages_needed(points, done, policy.target_u_nf_db, SWITCHED_MARGIN)
+        run.per_trace = self._next_round_averages(
+            policy, done, need, 2, run.budget, SWITCHED_ROUND_GROWTH
+        )
         if run.per_trace > 0:
             return None, points
         if need is None:

@@ -45,7 +45,7 @@ from noisebench.sampled.source import (
     SampleBlock,
     SourceInfo,
 )
-from noisebench.units import format_frequency
+from noisebench.units import format_frequency, format_frequency_range
 
 logger = logging.getLogger(__name__)
 
@@ -219,9 +219,11 @@ class SigmfRecordings:
         if not fits:
             raise InputError(
                 "sweep",
-                f"no recording covers {center_hz - span_hz / 2:.9g}..{center_hz + span_hz / 2:.9g} "
-                f"Hz (recorded centres {[f'{c:.9g}' for c in self.centers_hz()]} Hz, usable "
-                f"+/- {format_frequency(half)} each)",
+                "no recording covers "
+                + format_frequency_range(center_hz - span_hz / 2, center_hz + span_hz / 2, 9)
+                + " (recorded centres "
+                + ", ".join(format_frequency(c, 9) for c in self.centers_hz())
+                + f", usable +/- {format_frequency(half)} each)",
                 fix="measure at recorded frequencies or narrow span_hz",
             )
         return min(fits, key=lambda c: abs(c - center_hz))

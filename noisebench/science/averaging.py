@@ -24,11 +24,14 @@ from __future__ import annotations
 
 import functools
 import math
+from array import array
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 from scipy import stats
 
+from noisebench.bench.acquisition import AcquisitionSettings
 from noisebench.errors import InputError
 from noisebench.science.density import NoiseDensity
 from noisebench.units import format_frequency
@@ -65,35 +68,86 @@ def combine_densities(
     """Combine readings of one density (same frequency) into one, with the scatter test."""
     if not parts:
         raise InputError("parts", "no readings to combine", fix="acquire at least one trace")
-    f0 = parts[0].freq_hz
-    for d in parts[1:]:
-        if not math.isclose(d.freq_hz, f0, rel_tol=1e-9):
+    columns = _Columns()
+    for d in parts:
+        columns.add(d)
+    return _combine(columns, alpha)
+
+
+class _Columns:
+    """What combining needs of each reading, kept as numbers in acquisition order (about 70
+    bytes a reading instead of a 1.5 kB model: a sweep-level schedule holds every point's
+    readings until the sweep ends). The sums below run over the same floats in the same
+    order as over the models, so the combined density is the same to the bit."""
+
+    def __init__(self) -> None:
+        self.first: NoiseDensity | None = None
+        self.freqs_hz = array("d")
+        self.values = array("d")  # density_w_per_hz
+        self.u = array("d")  # u_density_w_per_hz
+        self.weights = array("d")
+        self.bias_db = array("d")
+        self.averages = array("q")
+        self.ratios = array("d")  # the scatter ratios given, in order
+        self.samples = array("d")  # the independent-sample counts given, in order
+        self.times_s = array("d")  # the acquisition times given, in order
+        self.samples_missing = False
+        self.times_missing = False
+        self.excluded_hz: set[float] = set()
+
+    def __len__(self) -> int:
+        return len(self.values)
+
+    def add(self, d: NoiseDensity) -> None:
+        if self.first is None:
+            self.first = d
+        self.freqs_hz.append(d.freq_hz)
+        self.values.append(d.density_w_per_hz)
+        self.u.append(d.u_density_w_per_hz)
+        self.weights.append(_weight(d))
+        self.bias_db.append(d.bias_correction_db)
+        self.averages.append(d.settings.averages if d.settings is not None else 1)
+        if d.scatter_ratio is not None:
+            self.ratios.append(d.scatter_ratio)
+        if d.independent_samples is None:
+            self.samples_missing = True
+        else:
+            self.samples.append(d.independent_samples)
+        if d.acquisition_time_s is None:
+            self.times_missing = True
+        else:
+            self.times_s.append(d.acquisition_time_s)
+        self.excluded_hz.update(d.excluded_freq_hz)
+
+
+def _combine(c: _Columns, alpha: float) -> CombinedDensity:
+    f0 = c.freqs_hz[0]
+    for f in c.freqs_hz[1:]:
+        if not math.isclose(f, f0, rel_tol=1e-9):
             raise InputError(
                 "parts.freq_hz",
-                f"readings at {d.freq_hz:.9g} and {format_frequency(f0, 9)} cannot be combined",
+                f"readings at {format_frequency(f, 9)} and {format_frequency(f0, 9)} cannot "
+                "be combined",
                 fix="combine readings of one frequency",
             )
-    weights = [_weight(d) for d in parts]
-    pairs = list(zip(weights, parts, strict=True))
+    weights = list(c.weights)
     total_w = sum(weights)
-    mean = sum(w * d.density_w_per_hz for w, d in pairs) / total_w
-    u = math.sqrt(sum((w * d.u_density_w_per_hz) ** 2 for w, d in pairs)) / total_w
-    chi2, birge, excess = _scatter_test(parts, mean, alpha)
+    mean = sum(w * x for w, x in zip(weights, c.values, strict=True)) / total_w
+    u = math.sqrt(sum((w * ux) ** 2 for w, ux in zip(weights, c.u, strict=True))) / total_w
+    chi2, birge, excess = _scatter_test(c, mean, alpha)
     if excess:
         u *= birge
-    averages = sum(d.settings.averages if d.settings is not None else 1 for d in parts)
-    density = _merged(parts, weights, mean, u, birge if excess else None, averages)
-    return CombinedDensity(density, len(parts), averages, chi2, birge, excess)
+    averages = sum(c.averages)
+    density = _merged(c, weights, mean, u, birge if excess else None, averages)
+    return CombinedDensity(density, len(c), averages, chi2, birge, excess)
 
 
-def _scatter_test(
-    parts: Sequence[NoiseDensity], mean: float, alpha: float
-) -> tuple[float | None, float, bool]:
-    usable = [d for d in parts if d.u_density_w_per_hz > 0]
+def _scatter_test(c: _Columns, mean: float, alpha: float) -> tuple[float | None, float, bool]:
+    usable = [(x, ux) for x, ux in zip(c.values, c.u, strict=True) if ux > 0]
     dof = len(usable) - 1
     if dof < 1:
         return None, 1.0, False
-    chi2 = sum(((d.density_w_per_hz - mean) / d.u_density_w_per_hz) ** 2 for d in usable)
+    chi2 = sum(((x - mean) / ux) ** 2 for x, ux in usable)
     birge = math.sqrt(chi2 / dof)
     return chi2, birge, bool(chi2 > _chi2_isf(alpha, dof))
 
@@ -105,76 +159,79 @@ def _chi2_isf(alpha: float, dof: int) -> float:
     return float(stats.chi2.isf(alpha, dof))
 
 
+_LAST_COPY: list[Any] = [None, 0, None]  # (settings, averages, copy) of the latest call
+
+
+def _with_averages(settings: AcquisitionSettings, averages: int) -> AcquisitionSettings:
+    """``settings`` with ``averages``; the points of one group share one copy (the settings
+    are frozen), so a long sweep's calibration holds one settings object per group, not one
+    per point and reading."""
+    source, count, copy = _LAST_COPY
+    if source is settings and count == averages:
+        return copy
+    copy = settings.model_copy(update={"averages": averages})
+    _LAST_COPY[:] = [settings, averages, copy]
+    return copy
+
+
 def _merged(
-    parts: Sequence[NoiseDensity],
+    c: _Columns,
     weights: Sequence[float],
     mean: float,
     u: float,
     birge: float | None,
     averages: int,
 ) -> NoiseDensity:
-    first = parts[0]
+    first = c.first
+    assert first is not None  # _combine is called with readings
     total_w = sum(weights)
-    ratios = [d.scatter_ratio for d in parts if d.scatter_ratio is not None]
+    ratios = c.ratios
     pooled = math.sqrt(sum(r * r for r in ratios) / len(ratios)) if ratios else None
     if birge is not None:
         pooled = max(pooled or 0.0, birge)
-    samples = [d.independent_samples for d in parts]
-    times = [d.acquisition_time_s for d in parts]
-    excluded = sorted({f for d in parts for f in d.excluded_freq_hz})
-    settings = (
-        first.settings.model_copy(update={"averages": averages})
-        if first.settings is not None
-        else None
-    )
+    settings = _with_averages(first.settings, averages) if first.settings is not None else None
     return NoiseDensity(
         freq_hz=first.freq_hz,
         density_w_per_hz=mean,
         u_density_w_per_hz=u,
-        independent_samples=(
-            None
-            if any(s is None for s in samples)
-            else float(sum(s for s in samples if s is not None))
-        ),
+        independent_samples=None if c.samples_missing else float(sum(c.samples)),
         band_hz=first.band_hz,
         bins_used=first.bins_used,
-        excluded_freq_hz=excluded,
+        excluded_freq_hz=sorted(c.excluded_hz),
         scatter_ratio=pooled,
-        bias_correction_db=sum(
-            w * d.bias_correction_db for w, d in zip(weights, parts, strict=True)
-        )
-        / total_w,
+        bias_correction_db=sum(w * b for w, b in zip(weights, c.bias_db, strict=True)) / total_w,
         settings=settings,
-        acquisition_time_s=(
-            None if any(t is None for t in times) else float(sum(t for t in times if t is not None))
-        ),
+        acquisition_time_s=None if c.times_missing else float(sum(c.times_s)),
     )
 
 
 class DensitySeries:
-    """All readings of one density of one point, in acquisition order."""
+    """All readings of one density of one point, in acquisition order (kept as the numbers
+    combining needs, see ``_Columns``)."""
 
     def __init__(self) -> None:
-        self.parts: list[NoiseDensity] = []
-        self._combined: tuple[tuple[int, ...], CombinedDensity] | None = None
+        self._columns = _Columns()
+        self._combined: tuple[int, CombinedDensity] | None = None
 
     def add(self, density: NoiseDensity) -> None:
-        self.parts.append(density)
+        self._columns.add(density)
 
     def __len__(self) -> int:
-        return len(self.parts)
+        return len(self._columns)
 
     @property
     def averages(self) -> int:
         """Trace averages behind the readings so far."""
-        return sum(d.settings.averages if d.settings is not None else 1 for d in self.parts)
+        return sum(self._columns.averages)
 
     def combined(self) -> CombinedDensity:
-        """:func:`combine_densities` of the parts; kept until the parts change (a sweep asks
-        for the same combination at every decision, entry and summary of a round)."""
-        key = tuple(map(id, self.parts))  # the list holds the parts: ids stay theirs
-        if self._combined is None or self._combined[0] != key:
-            self._combined = (key, combine_densities(self.parts))
+        """:func:`combine_densities` of the readings; kept until a reading is added (a sweep
+        asks for the same combination at every decision, entry and summary of a round)."""
+        count = len(self._columns)
+        if not count:
+            raise InputError("parts", "no readings to combine", fix="acquire at least one trace")
+        if self._combined is None or self._combined[0] != count:
+            self._combined = (count, _combine(self._columns, SCATTER_ALPHA))
         return self._combined[1]
 
 

@@ -5,7 +5,8 @@ analyzer's noise-drive output (nominal voltage) or from the DC supply (whatever 
 delivers, current limit included). A change of drive starts a linear transition of
 ``transition_time_s`` on the simulated clock: a trace taken before it completes sees a source
 between cold and hot. ``set_hot`` (the :class:`noisebench.bench.instruments.NoiseSource` interface)
-switches the analyzer drive and then waits ``settle_time_s`` of simulated time.
+switches the analyzer drive and then waits ``settle_time_s`` of simulated time when the drive or
+the state changed (a safe state commanding a cold source cold waits nothing).
 
 A drive above ``max_drive_v`` damages the simulated diode: it stays cold from then on (logged).
 ``stuck = True`` makes the source ignore every drive change (a fault switch for tests).
@@ -39,7 +40,7 @@ class SimNoiseSource(NoiseSource):
         self.spec = spec
         self.model = model
         self.clock = clock
-        self.stuck = False
+        self.stuck = bool(spec.stuck)
         self.damaged = False
         # switches the drive (the bench's analyzer); set by the bench
         self.drive_switch: Callable[[bool], None] | None = None
@@ -57,13 +58,17 @@ class SimNoiseSource(NoiseSource):
         return f"noisebench,simulated noise source,{self.spec.serial},0.1"
 
     def set_hot(self, hot: bool) -> None:
-        """Drive on (hot) or off (cold) through the analyzer drive, then wait the settle time."""
+        """Drive on (hot) or off (cold) through the analyzer drive, then wait the settle time
+        when the drive or the state changed (commanding the state the source is already in, as
+        a safe state does, starts no transition and waits nothing)."""
         with self.lock:
+            before = (self._drives[ANALYZER_DRIVE], self._target)
             if self.drive_switch is not None:
                 self.drive_switch(bool(hot))
             else:
                 self.set_drive(ANALYZER_DRIVE, self.spec.nominal_drive_v if hot else 0.0)
-            self.clock.advance(self._settle_s)
+            if (self._drives[ANALYZER_DRIVE], self._target) != before:
+                self.clock.advance(self._settle_s)
 
     @property
     def is_hot(self) -> bool:

@@ -242,6 +242,12 @@ class NoiseSourceSpec(_Model):
         description="curvature of the output drift, dB/s^2 (t^2 term: a warming diode; no "
         "hot/cold schedule cancels it, the sequencer detects and flags it)",
     )
+    stuck: bool = Field(
+        default=False,
+        description="the diode never switches (a dead source: a burnt diode or an open lead "
+        "inside it; the supply still sees its load): every drive change is accepted and "
+        "ignored, so hot and cold read the same noise",
+    )
 
     @model_validator(mode="after")
     def _check(self) -> NoiseSourceSpec:

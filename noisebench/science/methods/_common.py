@@ -9,7 +9,7 @@ from typing import Any, TypeVar
 
 import numpy as np
 
-from noisebench.errors import InputError, MeasurementError
+from noisebench.errors import InputError, MeasurementError, YNotSignificantError
 from noisebench.science.density import NoiseDensity
 from noisebench.science.physics import T0_K, nf_db_from_te_k, ratio_from_db
 from noisebench.science.point import ConversionInfo, Method, PointFlag, PointResult
@@ -50,6 +50,20 @@ below zero from scatter (a very quiet DUT) stays possible: a true Te >= 0 reads 
 -4 u with probability 3.2e-5 (one-sided normal tail), so refusing there almost never rejects a
 good point, while a dead DUT reads hundreds of u below zero. Kept negative points are flagged
 NEGATIVE_TE, which keeps them from passing a limit (see the flag policy in DEVELOPERS.md).
+"""
+
+Y_SIGNIFICANCE_SIGMAS = 4.0
+"""Y - 1 below this many of its own standard uncertainties u(Y) refuses the pair (no Y-factor).
+
+With the source dead (not powered, supply off, not connected, wrong path) hot and cold are two
+readings of the same noise: Y - 1 scatters around zero with standard deviation u(Y), so the old
+rule "refuse only when hot <= cold" let half of all dead sources through as a confident, huge
+noise figure. Refusing below 4 u lets a dead source through with probability 3.2e-5 (one-sided
+normal tail, the same design rate as NEGATIVE_TE_REFUSE_SIGMAS). The cost is small: the relative
+uncertainty of the noise factor from Y alone is u(F)/F = u(Y)/(Y - 1) (docs/references.md §7),
+so a refused pair is one whose NF would carry more than 10 log10(e)/4 = 1.09 dB of statistical
+uncertainty from Y alone; a live source with (Y - 1)/u(Y) = 8 is refused with probability
+3.2e-5 (the same tail), and ordinary benches read (Y - 1)/u(Y) in the tens to thousands.
 """
 
 FREQ_REL_TOL = 1e-6
@@ -177,6 +191,72 @@ def check_te_plausible(
             f"temperature cannot be negative, so the reading is a fault: {causes}",
             freq_hz=freq_hz,
         )
+
+
+def y_significance(hot: NoiseDensity, cold: NoiseDensity) -> float:
+    """(Y - 1) / u(Y) of a hot/cold pair, u(Y) from the two densities' independent standard
+    uncertainties: ``u(Y)/Y = sqrt(u_h^2/h^2 + u_c^2/c^2)`` (first-order propagation of a
+    ratio, JCGM 100:2008 eq. 10); +inf when both are exact and hot > cold."""
+    h, c = hot.density_w_per_hz, cold.density_w_per_hz
+    y = h / c
+    u_y = y * math.hypot(hot.relative_u, cold.relative_u)
+    if u_y > 0:
+        return (y - 1.0) / u_y
+    return math.inf if y > 1.0 else -math.inf
+
+
+def check_y_significant(
+    hot: NoiseDensity,
+    cold: NoiseDensity,
+    freq_hz: float,
+    what: str,
+    source_plane: str,
+    causes: str = "",
+) -> None:
+    """YNotSignificantError when hot - cold is not Y_SIGNIFICANCE_SIGMAS standard
+    uncertainties above zero: the one rule every Y-factor path (point, calibration, converter)
+    applies before using a Y. ``source_plane`` names where the source should be connected;
+    ``causes`` adds the path's own likely causes (a converter's LO)."""
+    z = y_significance(hot, cold)
+    if z >= Y_SIGNIFICANCE_SIGMAS:
+        return
+    y = hot.density_w_per_hz / cold.density_w_per_hz
+    if y <= 1.0:
+        what_happened = f"hot reading is not above the cold one (Y - 1 = {y - 1.0:.2g})"
+    else:
+        what_happened = (
+            f"hot reading is above the cold one by only {z:.2g} standard uncertainties "
+            f"(Y - 1 = {y - 1.0:.2g}; a usable Y needs {Y_SIGNIFICANCE_SIGMAS:g})"
+        )
+    ratios = [d.scatter_ratio for d in (hot, cold) if d.scatter_ratio is not None]
+    if ratios and max(ratios) > DEFAULT_SCATTER_LIMIT:
+        cause = (
+            f"the readings scatter {max(ratios):.3g} times more than their averaging predicts "
+            "(drift, a source that does not settle, interference): let the bench warm up, "
+            "check the source supply and cables; if the source's output is in doubt, check "
+            "that the source is "
+        )
+    else:
+        cause = "the noise source's output does not reach the analyzer: check that the source is "
+    raise YNotSignificantError(
+        f"{what} at {format_frequency(freq_hz)}: no usable Y-factor, {what_happened}; {cause}"
+        f"powered (supply on, drive cable), connected to {source_plane}, the switch path is "
+        f"right, {causes}the DUT is powered and connected, and the ENR table is this source's",
+        significance=z,
+        freq_hz=freq_hz,
+    )
+
+
+def averages_for_significance(done: int, significance: float) -> int:
+    """Averages per reading at which a pair now ``significance`` standard uncertainties above
+    zero (at ``done`` averages) is expected at twice the refusal threshold: (Y - 1)/u(Y) grows
+    as the square root of the averages (radiometer equation), and at 2 x 4 u the next look
+    refuses a live source with probability norm.sf(4) = 3.2e-5. A pair at or below zero (a dead
+    source, or a live one drowned in noise) asks for 16 times more; the caller caps the
+    growth of a round and stops at its average or time limit."""
+    if not math.isfinite(significance) or significance <= 0.25:
+        return 16 * max(1, done)
+    return max(done + 1, math.ceil(done * (2 * Y_SIGNIFICANCE_SIGMAS / significance) ** 2))
 
 
 def nf_db_from_te(te_k: float, t0_k: float = T0_K) -> float:

@@ -46,6 +46,7 @@ from noisebench.science.methods._common import (
     check_same_frequency,
     check_te_plausible,
     check_temperature,
+    check_y_significant,
     density_flags,
     margin_db,
 )
@@ -647,6 +648,7 @@ def converter_y_factor_point(
     floor_warning_db: float = DEFAULT_FLOOR_WARNING_DB,
     low_gain_db: float = DEFAULT_LOW_GAIN_DB,
     scatter_limit: float = DEFAULT_SCATTER_LIMIT,
+    require_significant_y: bool = True,
 ) -> PointResult:
     """NF (SSB and DSB), Te and conversion gain of a converter at one point by the Y-factor.
 
@@ -657,6 +659,8 @@ def converter_y_factor_point(
     IF); it enables the second-stage correction and the conversion gain. ``nf_type`` picks which
     of SSB/DSB goes into ``nf_db``/``te_k``; both are in ``result.conversion``. Losses in dB:
     input loss at the RF and at the image (default: the same), output loss at the IF.
+    ``require_significant_y=False`` skips the refusal of a Y within 4 u(Y) of 1 (planning only:
+    the forecast and the averaging loops need the uncertainty a weak pair would have).
     """
     hot = check_density("hot", hot)
     cold = check_density("cold", cold)
@@ -733,6 +737,19 @@ def converter_y_factor_point(
     cal = None
     if calibration is not None:
         cal = (values["hc"], values["cc"], values["enr_if"], calibration.cold_temperature_k)
+    if require_significant_y:
+        check_y_significant(
+            hot,
+            cold,
+            rf,
+            "converter Y-factor",
+            "the converter's RF port",
+            "the LO is on and at its level, the mixer is powered, ",
+        )
+    if require_significant_y and calibration is not None:
+        check_y_significant(
+            calibration.hot, calibration.cold, if_hz, "converter IF calibration", "the IF input"
+        )
     parts: dict[str, np.ndarray] = {}
     try:
         te_value, g_value, _, te_unc_value = _y_core(

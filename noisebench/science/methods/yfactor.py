@@ -55,6 +55,7 @@ from noisebench.science.methods._common import (
     check_same_frequency,
     check_te_plausible,
     check_temperature,
+    check_y_significant,
     density_flags,
     margin_db,
     nf_db_from_te,
@@ -477,13 +478,18 @@ def calibrate_point(
     enr_extrapolated: bool = False,
     y_min_db: float = DEFAULT_Y_MIN_DB,
     calibrated_at: datetime | None = None,
+    require_significant_y: bool = True,
 ) -> CalibrationPoint:
     """Calibrate the measurement system at one frequency (noise source on the system input).
 
     ``hot``/``cold``: densities with the source on/off; ``enr_db``: the source's ENR at this
     frequency; ``cold_temperature_k``: the source's physical temperature (K) when off.
     ``u_enr_db``: the ENR's standard uncertainty, dB (None: unknown).
-    Raises MeasurementError when hot <= cold or the system's Te comes out negative.
+    Raises MeasurementError when hot <= cold or the system's Te comes out negative, and
+    YNotSignificantError when hot - cold is within 4 standard uncertainties of zero.
+    ``require_significant_y=False`` skips the refusal of a Y within 4 u(Y) of 1
+    (``_common.check_y_significant``; planning only: the forecast and the averaging loops need
+    the uncertainty a weak pair would have).
     """
     hot = check_density("hot", hot)
     cold = check_density("cold", cold)
@@ -494,6 +500,8 @@ def calibrate_point(
     t0 = check_temperature("t0_k", t0_k)
     ref = _check_reference(enr_reference)
 
+    if require_significant_y:
+        check_y_significant(hot, cold, freq_hz, "Y-factor calibration", "the system input")
     h, c = hot.density_w_per_hz, cold.density_w_per_hz
     y_arr, te2_arr, th = _te_of_pair(
         h, c, np.asarray(enr_db), tc, t0, ref, freq_hz, "Y-factor calibration"
@@ -560,6 +568,7 @@ def y_factor_point(
     floor_warning_db: float = DEFAULT_FLOOR_WARNING_DB,
     low_gain_db: float = DEFAULT_LOW_GAIN_DB,
     scatter_limit: float = DEFAULT_SCATTER_LIMIT,
+    require_significant_y: bool = True,
 ) -> PointResult:
     """NF, Te (and with a calibration, gain) of the DUT at one frequency by the Y-factor method.
 
@@ -575,7 +584,12 @@ def y_factor_point(
     Flags: Y_TOO_SMALL (Y < ``y_min_db``), ENR_EXTRAPOLATED, LOW_GAIN (DUT gain <
     ``low_gain_db``), NEAR_ANALYZER_FLOOR (DUT noise at the system input less than
     ``floor_warning_db`` above the system's own noise), NEGATIVE_TE, SPURS_EXCLUDED /
-    EXCESS_SCATTER. Raises MeasurementError when hot <= cold, naming the frequency.
+    EXCESS_SCATTER. Raises MeasurementError when hot <= cold, naming the frequency, and
+    YNotSignificantError when its or the calibration's hot - cold is within 4 standard
+    uncertainties of zero (a dead source).
+    ``require_significant_y=False`` skips the refusal of a Y within 4 u(Y) of 1
+    (``_common.check_y_significant``; planning only: the forecast and the averaging loops need
+    the uncertainty a weak pair would have).
     """
     hot = check_density("hot", hot)
     cold = check_density("cold", cold)
@@ -609,6 +623,13 @@ def y_factor_point(
     # One ENR variable when calibration and measurement use the same value (same source and
     # frequency): the ENR error is then fully correlated (docs/references.md §9).
     enr_shared = calibration is None or calibration.enr_db == enr_db
+
+    if require_significant_y:
+        check_y_significant(hot, cold, freq_hz, "Y-factor measurement", "the DUT input")
+    if require_significant_y and calibration is not None:
+        check_y_significant(
+            calibration.hot, calibration.cold, freq_hz, "Y-factor calibration", "the system input"
+        )
 
     def core(h, c, hc, cc, enr, enr_cal) -> _Core:
         cal = None
