@@ -145,7 +145,9 @@ def test_station_writes_verdicts_and_budgets_into_sqlite(sqlite_run):
         _check_database(db, summary)
 
 
-def test_station_writes_verdicts_and_budgets_into_postgresql(bench, pg_url):
+def test_station_writes_verdicts_and_budgets_into_postgresql(bench, pg_url, sqlite_run):
+    """The SQLite station run (``sqlite_run``) calibrates the shared bench first, so this run
+    reuses that calibration whichever order the tests are selected in."""
     summary = _station_run(bench, "postgres", pg_url)
     assert summary.database.startswith("postgresql+psycopg://")
     assert not summary.not_stored()
