@@ -188,6 +188,44 @@ def test_longer_outage_exits_4_and_resume_finishes(server, monkeypatch, tmp_path
     assert record.points[0].nf_db == kept.points[0].nf_db  # the first point was not redone
 
 
+def test_a_connection_dropped_during_a_one_line_acquisition_fails_at_once(server):
+    """A later acquisition is one line (start, *WAI, trace query, error query): the drop while
+    *WAI holds the line makes the block read fail at once (the socket reads end of file)
+    instead of waiting out the acquisition's deadline. The drop is made by the server exactly
+    when *WAI is processed (no timer, no race)."""
+    import time
+
+    from noisebench.drivers.transport import ConnectionLost
+    from noisebench.sims.scpi_instruments import InstrumentGone
+
+    sim = server.instruments["analyzer"]
+    waits: list[str] = []
+
+    def drop_while_waiting():
+        waits.append("dropped")
+        server.faults.offline = True  # closes the client's socket
+        raise InstrumentGone("dropped during *WAI")
+
+    sa = open_analyzer(server.resource("analyzer"), "generic", retries=0)
+    try:
+        sa.configure(REQUEST)
+        sa.acquire_trace()  # the first after connecting goes unit by unit (a short one)
+        sa.configure(REQUEST.model_copy(update={"rbw_hz": 1e3, "averages": 2}))
+        limit = sa.acquisition_timeout_s()
+        assert limit >= 10.0  # 2 sweeps of 10 s
+        sim.wait_complete = drop_while_waiting
+        started = time.monotonic()
+        with pytest.raises(ConnectionLost, match="connection lost"):
+            sa.acquire_trace()
+        elapsed = time.monotonic() - started
+        assert waits == ["dropped"]  # the one line reached *WAI
+        assert elapsed < limit / 4, (elapsed, limit)
+    finally:
+        del sim.wait_complete
+        server.faults.offline = False
+        sa.close()
+
+
 def test_a_connection_dropped_during_opc_fails_over_at_once(server):
     """The instrument drops the connection while *OPC? waits for a long acquisition: the
     driver sees the closed socket between wait slices and fails at once instead of waiting
