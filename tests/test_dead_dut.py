@@ -72,6 +72,20 @@ def _plan(folder: Path, method: str, bench: str = DEAD) -> Path:
     return path
 
 
+def station_outcomes(plan: Path, folder: Path, serials: tuple[str, ...], capsys) -> list[str]:
+    """Run ``noisebench station`` on ``plan`` for units ``serials`` (lot LX, no database) and
+    return each unit's outcome from the station summary."""
+    units = [arg for serial in serials for arg in ("--unit", f"SN:{serial};LOT:LX")]
+    code = cli.main(
+        ["station", str(plan), *units, "--no-db", "--folder", str(folder)]
+        + ["--station-id", "bench-9"]
+    )
+    capsys.readouterr()
+    assert code in (cli.EXIT_OK, cli.EXIT_MEASUREMENT)
+    summary = json.loads((folder / "station_summary.json").read_text(encoding="utf-8"))
+    return [u.get("outcome") or u.get("verdict") for u in summary["units"]]
+
+
 def test_the_unpowered_scenario_only_attenuates():
     dead = SimulatedBench.from_scenario("demo-lna-unpowered", seed=1)
     alive = SimulatedBench.from_scenario("demo-lna", seed=1)
@@ -97,25 +111,7 @@ def test_run_never_passes_a_dead_dut(tmp_path, method, capsys):
 
 def test_station_never_passes_a_dead_dut(tmp_path, capsys):
     folder = tmp_path / "station"
-    code = cli.main(
-        [
-            "station",
-            str(_plan(tmp_path, "gain_stated")),
-            "--unit",
-            "SN:D1;LOT:LX",
-            "--unit",
-            "SN:D2;LOT:LX",
-            "--no-db",
-            "--folder",
-            str(folder),
-            "--station-id",
-            "bench-9",
-        ]
-    )
-    capsys.readouterr()
-    assert code in (cli.EXIT_OK, cli.EXIT_MEASUREMENT)
-    summary = json.loads((folder / "station_summary.json").read_text(encoding="utf-8"))
-    outcomes = [u.get("outcome") or u.get("verdict") for u in summary["units"]]
+    outcomes = station_outcomes(_plan(tmp_path, "gain_stated"), folder, ("D1", "D2"), capsys)
     assert len(outcomes) == 2 and "pass" not in outcomes
 
 

@@ -9,7 +9,6 @@ JCGM 100:2008 eq. 10). A dead source reads Y - 1 ~ N(0, u(Y)): it passes with pr
 
 from __future__ import annotations
 
-import json
 import math
 
 import numpy as np
@@ -17,7 +16,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import binom, norm
-from test_dead_dut import _plan
+from test_dead_dut import _plan, station_outcomes
 
 from noisebench.bench.acquisition import AcquisitionRequest
 from noisebench.errors import YNotSignificantError
@@ -142,25 +141,8 @@ def test_the_gain_method_does_not_need_the_source_to_switch(tmp_path, capsys, me
 
 def test_station_never_passes_with_a_dead_noise_source(tmp_path, capsys):
     folder = tmp_path / "station"
-    code = cli.main(
-        [
-            "station",
-            str(_plan(tmp_path, "y_factor", bench=DEAD_SOURCE)),
-            "--unit",
-            "SN:S1;LOT:LX",
-            "--unit",
-            "SN:S2;LOT:LX",
-            "--no-db",
-            "--folder",
-            str(folder),
-            "--station-id",
-            "bench-9",
-        ]
-    )
-    capsys.readouterr()
-    assert code in (cli.EXIT_OK, cli.EXIT_MEASUREMENT)
-    summary = json.loads((folder / "station_summary.json").read_text(encoding="utf-8"))
-    outcomes = [u.get("outcome") or u.get("verdict") for u in summary["units"]]
+    plan = _plan(tmp_path, "y_factor", bench=DEAD_SOURCE)
+    outcomes = station_outcomes(plan, folder, ("S1", "S2"), capsys)
     assert len(outcomes) == 2 and "pass" not in outcomes, outcomes
 
 
