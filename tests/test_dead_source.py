@@ -260,3 +260,23 @@ def test_a_weak_live_source_averages_on_and_is_never_refused(tmp_path, monkeypat
         assert len(record.points) == 3
         assert all(p.nf_db == pytest.approx(20.0, abs=5 * p.u_nf_db) for p in record.points)
     assert len(refused_looks) >= 10  # the averaging-on path was taken
+
+
+def test_a_weak_live_source_is_told_apart_in_words_from_one_that_is_not_above_cold():
+    """At few averages a live source whose excess noise is small against the system's own
+    noise (an analyzer without a preamplifier: Y - 1 about 0.1) reads like a dead one; the
+    refusal names both, with the fix for each. A hot reading not above the cold one gets
+    only the dead-source causes. Behaviour of our messages: no outside reference."""
+    weak_hot, weak_cold = _d(1.09e-17, 0.03), _d(1.0e-17, 0.03)
+    assert 0 < y_significance(weak_hot, weak_cold) < Y_SIGNIFICANCE_SIGMAS
+    with pytest.raises(YNotSignificantError) as weak:
+        calibrate_point(weak_hot, weak_cold, 15.0, cold_temperature_k=TC)
+    text = str(weak.value)
+    # (Y - 1)/u(Y) = 0.09 / (1.09 * hypot(0.03, 0.03)) = 1.946
+    assert "by only 1.9 standard uncertainties" in text
+    assert "raise time_limit_s or max_averages" in text and "preamplifier" in text
+    assert "powered (supply on, drive cable)" in text
+    with pytest.raises(YNotSignificantError) as dead:
+        calibrate_point(_d(0.99e-17, 0.03), weak_cold, 15.0, cold_temperature_k=TC)
+    assert "not above the cold one" in str(dead.value)
+    assert "preamplifier" not in str(dead.value) and "powered" in str(dead.value)

@@ -238,6 +238,14 @@ def check_y_significant(
         )
     else:
         cause = "the noise source's output does not reach the analyzer: check that the source is "
+    if y > 1.0:
+        # a live source whose excess noise is small against the system's own noise reads
+        # the same at few averages as a dead one: say both, the user knows the bench
+        cause = (
+            "either the source is alive but its excess noise is small against the system's "
+            "own noise (more averages: raise time_limit_s or max_averages; or a lower-noise "
+            "system: a preamplifier before the analyzer, a higher-ENR source), or " + cause
+        )
     raise YNotSignificantError(
         f"{what} at {format_frequency(freq_hz)}: no usable Y-factor, {what_happened}; {cause}"
         f"powered (supply on, drive cable), connected to {source_plane}, the switch path is "
