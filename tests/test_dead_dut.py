@@ -86,6 +86,23 @@ def station_outcomes(plan: Path, folder: Path, serials: tuple[str, ...], capsys)
     return [u.get("outcome") or u.get("verdict") for u in summary["units"]]
 
 
+def run_plugin(pytester: pytest.Pytester, plan: Path, test_unit: str, *options: str):
+    """Run ``test_unit`` (a user's test file) under the noisebench pytest plugin with ``plan``
+    as ``--nb-plan`` and any further ``options``; the plugin is loaded explicitly, nothing
+    else autoloads."""
+    plan.rename(pytester.path / "plan.toml")
+    pytester.makepyfile(test_unit=test_unit)
+    return pytester.runpytest(
+        "-p",
+        "noisebench.frontends.pytest_plugin",
+        "-p",
+        "no:cacheprovider",
+        "--nb-plan",
+        "plan.toml",
+        *options,
+    )
+
+
 def test_the_unpowered_scenario_only_attenuates():
     dead = SimulatedBench.from_scenario("demo-lna-unpowered", seed=1)
     alive = SimulatedBench.from_scenario("demo-lna", seed=1)
@@ -118,9 +135,7 @@ def test_station_never_passes_a_dead_dut(tmp_path, capsys):
 def test_pytest_plugin_never_passes_a_dead_dut(pytester: pytest.Pytester, monkeypatch):
     monkeypatch.setenv("PYTEST_DISABLE_PLUGIN_AUTOLOAD", "1")
     plan = _plan(pytester.path, "y_factor", bench="sim://demo-lna?seed=1")
-    plan.rename(pytester.path / "plan.toml")
-    pytester.makepyfile(
-        test_unit="""
+    unit = """
         import pytest
         from noisebench.frontends.pytest_plugin import assert_verdict
 
@@ -144,17 +159,7 @@ def test_pytest_plugin_never_passes_a_dead_dut(pytester: pytest.Pytester, monkey
             assert "y_too_small" in flags
             assert point.nf_db > 20.0 or "negative_te" in flags
         """
-    )
-    result = pytester.runpytest(
-        "-p",
-        "noisebench.frontends.pytest_plugin",
-        "-p",
-        "no:cacheprovider",
-        "--nb-plan",
-        "plan.toml",
-        "--nb-bench",
-        DEAD,
-    )
+    result = run_plugin(pytester, plan, unit, "--nb-bench", DEAD)
     result.assert_outcomes(passed=1, failed=1)
     result.stdout.fnmatch_lines(["*unit verdict is *, expected PASS*"])
 

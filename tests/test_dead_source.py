@@ -16,7 +16,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import binom, norm
-from test_dead_dut import _plan, station_outcomes
+from test_dead_dut import _plan, run_plugin, station_outcomes
 
 from noisebench.bench.acquisition import AcquisitionRequest
 from noisebench.errors import YNotSignificantError
@@ -152,9 +152,7 @@ pytest_plugins = ["pytester"]
 def test_pytest_plugin_never_passes_with_a_dead_noise_source(pytester, monkeypatch):
     monkeypatch.setenv("PYTEST_DISABLE_PLUGIN_AUTOLOAD", "1")
     plan = _plan(pytester.path, "y_factor", bench=DEAD_SOURCE)
-    plan.rename(pytester.path / "plan.toml")
-    pytester.makepyfile(
-        test_unit="""
+    unit = """
         from noisebench.frontends.pytest_plugin import assert_verdict
 
         def test_whole_plan(nb_run_plan):
@@ -163,15 +161,7 @@ def test_pytest_plugin_never_passes_with_a_dead_noise_source(pytester, monkeypat
         def test_one_point(nb_measure_point):
             nb_measure_point(1.0e9)
         """
-    )
-    result = pytester.runpytest(
-        "-p",
-        "noisebench.frontends.pytest_plugin",
-        "-p",
-        "no:cacheprovider",
-        "--nb-plan",
-        "plan.toml",
-    )
+    result = run_plugin(pytester, plan, unit)
     result.assert_outcomes(failed=2)
     result.stdout.fnmatch_lines(["*no usable Y-factor*"])
 

@@ -1,6 +1,8 @@
 """Damaged run folders: every file is read through one reader that names the file, the line and
 the damage; render shows what is intact and says what it skipped; the journal is never changed
-by reading it."""
+by reading it.
+
+Behaviour tests of our run-folder reader: no outside reference is involved."""
 
 from __future__ import annotations
 
