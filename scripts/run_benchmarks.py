@@ -77,7 +77,9 @@ def _demo_seconds() -> str:
         )
         seconds = time.perf_counter() - started
     verdicts = [
-        line.strip() for line in done.stdout.splitlines() if "PASS" in line or "FAIL" in line
+        line.strip()
+        for line in done.stdout.splitlines()
+        if line.lstrip().startswith(("Run ", "verdict", "flagged", "vs truth"))
     ]
     return (
         f"noisebench demo (both methods): {seconds:.1f} s wall (target 20 s: "
