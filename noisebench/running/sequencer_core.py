@@ -3,10 +3,12 @@ the noise source behind the power guard, record skipped groups."""
 
 from __future__ import annotations
 
+import itertools
 import logging
 import time
+from collections import OrderedDict
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 from noisebench.bench.acquisition import AcquisitionRequest, AcquisitionSettings, Trace
@@ -25,6 +27,7 @@ from noisebench.running.safety import (
 )
 from noisebench.science.averaging import (
     DensitySeries,
+    ReadingTable,
     TimeBudget,
 )
 from noisebench.science.density import NoiseDensity
@@ -44,23 +47,64 @@ class _GroupOutcome:
     time_s: float
 
 
-@dataclass
 class _Readings:
-    """Per-frequency series of each reading (``hot``/``cold`` or ``dut``/``floor``)."""
+    """Per-frequency readings of each name (``hot``/``cold`` or ``dut``/``floor``) of one group,
+    one :class:`ReadingTable` per name (a few dozen bytes per frequency and reading). A series
+    asked for is made from the table; the latest combinations are kept in a small cache shared
+    by all groups (``_COMBINED``), so a group's decision, entry and summary combine each
+    series once, and a sweep that holds every group's readings keeps no combination per
+    point."""
 
-    names: tuple[str, ...]
-    freqs_hz: tuple[float, ...]
-    series: dict[tuple[float, str], DensitySeries] = field(default_factory=dict)
+    _tokens = itertools.count()
+
+    def __init__(self, names: tuple[str, ...], freqs_hz: Sequence[float]) -> None:
+        self.names = names
+        self.freqs_hz = tuple(freqs_hz)
+        self._token = next(self._tokens)
+        self._tables: dict[str, ReadingTable] = {}
+        self._index: dict[float, int] | None = None
 
     def add(self, name: str, densities: Sequence[NoiseDensity]) -> None:
-        for f, d in zip(self.freqs_hz, densities, strict=True):
-            self.series.setdefault((f, name), DensitySeries()).add(d)
+        if len(densities) != len(self.freqs_hz):
+            raise ValueError(f"{len(densities)} densities for {len(self.freqs_hz)} frequencies")
+        table = self._tables.get(name)
+        if table is None:
+            table = self._tables[name] = ReadingTable(len(self.freqs_hz))
+        table.add(densities)
 
     def get(self, f: float, name: str) -> DensitySeries:
-        return self.series.setdefault((f, name), DensitySeries())
+        if self._index is None:
+            self._index = {}
+            for k, freq in enumerate(self.freqs_hz):
+                self._index.setdefault(freq, k)
+        i = self._index.get(f)
+        table = self._tables.get(name)
+        if i is None or table is None:
+            return DensitySeries()
+        key = (self._token, name, i, len(table))
+        series = _COMBINED.get(key)
+        if series is None:
+            series = _COMBINED[key] = table.series(i)
+            if len(_COMBINED) > COMBINED_KEPT:
+                _COMBINED.popitem(last=False)
+        else:
+            _COMBINED.move_to_end(key)
+        return series
 
     def averages(self, name: str) -> int:
-        return self.get(self.freqs_hz[0], name).averages
+        table = self._tables.get(name)
+        return table.averages(0) if table is not None and self.freqs_hz else 0
+
+    def release(self) -> None:
+        """Forget every reading (a finished group: its points are stored)."""
+        self._tables = {}
+
+
+COMBINED_KEPT = 512
+"""Series (and their combinations) kept by ``_Readings.get``: a group's frequencies times its
+reading names, with room (a combination costs about 1.3 kB)."""
+
+_COMBINED: OrderedDict[tuple[int, str, int, int], DensitySeries] = OrderedDict()
 
 
 class SequencerCore:

@@ -114,6 +114,17 @@ class _GroupRun:
     drift_checks: list[DriftCheck] = field(default_factory=list)  # monitors of its blocks
     monitor_hz: list[float] = field(default_factory=list)
 
+    def release(self) -> None:
+        """Drop what the group read once it has stopped (its points or calibration entry are
+        made, or the physics refused it): a sweep's finished groups keep only their time
+        budget (the rate of the next phase). Lists are replaced, not cleared: points and
+        notes made from them may still refer to them."""
+        self.readings.release()
+        self.log = []
+        self.checks = []
+        self.drift_checks = []
+        self.monitor_hz = []
+
 
 class SwitchedSweep(MeasurementSteps):
     """Calibration and measurement of the Y-factor method in sweep-level hot/cold blocks."""
@@ -249,6 +260,7 @@ class SwitchedSweep(MeasurementSteps):
         if monitor is None:
             return
         check = self._monitor_check(monitor)
+        monitor.log = []  # the check is made: a long sweep's monitors keep none of their readings
         if check is not None:
             for run in block:
                 run.drift_checks.append(check)
@@ -345,6 +357,7 @@ class SwitchedSweep(MeasurementSteps):
             for run in active:
                 if run.failed is not None:
                     self._skip(run.group, run.failed, "calibration", writer)
+                    run.release()
                     continue
                 policy = run.group.policy
                 target = self.plan.calibration.target_ratio * policy.target_u_nf_db
@@ -352,6 +365,7 @@ class SwitchedSweep(MeasurementSteps):
                     u_worst, settings = self._calibration_u(run.group, kind, run.readings)
                 except MeasurementError as exc:
                     self._skip(run.group, exc, "calibration", writer)
+                    run.release()
                     continue
                 done = run.readings.averages("hot")
                 weak = self._significance_need(run.group, kind, run.readings, done)
@@ -389,6 +403,8 @@ class SwitchedSweep(MeasurementSteps):
                 except MeasurementError as exc:
                     self._skip(run.group, exc, "calibration", writer)
                     continue
+                finally:
+                    run.release()
                 self.calibrations.add(entry)
                 self.calibrations_measured += 1
                 self.progress.step_done(len(run.group.freqs_hz))
@@ -454,9 +470,12 @@ class SwitchedSweep(MeasurementSteps):
             for run in active:
                 if run.failed is not None:
                     self._skip(run.group, run.failed, "measurement", writer)
+                    run.release()
                     continue
                 decided = self._decide(run, calibrations[run.group.index], writer)
-                if decided is not None:
+                if decided is None:
+                    run.release()  # refused by the physics
+                else:
                     decisions[run.group.index] = decided
             self._hold_lucky(active, decisions)
             still = []
@@ -469,6 +488,7 @@ class SwitchedSweep(MeasurementSteps):
                     continue
                 calibration = calibrations[run.group.index]
                 outcome = self._finish_group(run, stop, points, calibration)
+                run.release()
                 self._store_outcome(run.group, outcome, writer)
             active = still
         self._set_source_cold(TimeBudget(0.0))

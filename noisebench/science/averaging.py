@@ -27,7 +27,7 @@ import math
 from array import array
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 from scipy import stats
 
@@ -74,6 +74,15 @@ def combine_densities(
     return _combine(columns, alpha)
 
 
+class _First(NamedTuple):
+    """What the combined density takes from the first reading."""
+
+    freq_hz: float
+    band_hz: float | None
+    bins_used: int | None
+    settings: AcquisitionSettings | None
+
+
 class _Columns:
     """What combining needs of each reading, kept as numbers in acquisition order (about 70
     bytes a reading instead of a 1.5 kB model: a sweep-level schedule holds every point's
@@ -81,7 +90,7 @@ class _Columns:
     order as over the models, so the combined density is the same to the bit."""
 
     def __init__(self) -> None:
-        self.first: NoiseDensity | None = None
+        self.first: _First | None = None
         self.freqs_hz = array("d")
         self.values = array("d")  # density_w_per_hz
         self.u = array("d")  # u_density_w_per_hz
@@ -100,7 +109,7 @@ class _Columns:
 
     def add(self, d: NoiseDensity) -> None:
         if self.first is None:
-            self.first = d
+            self.first = _First(d.freq_hz, d.band_hz, d.bins_used, d.settings)
         self.freqs_hz.append(d.freq_hz)
         self.values.append(d.density_w_per_hz)
         self.u.append(d.u_density_w_per_hz)
@@ -209,8 +218,8 @@ class DensitySeries:
     """All readings of one density of one point, in acquisition order (kept as the numbers
     combining needs, see ``_Columns``)."""
 
-    def __init__(self) -> None:
-        self._columns = _Columns()
+    def __init__(self, columns: _Columns | None = None) -> None:
+        self._columns = columns if columns is not None else _Columns()
         self._combined: tuple[int, CombinedDensity] | None = None
 
     def add(self, density: NoiseDensity) -> None:
@@ -233,6 +242,100 @@ class DensitySeries:
         if self._combined is None or self._combined[0] != count:
             self._combined = (count, _combine(self._columns, SCATTER_ALPHA))
         return self._combined[1]
+
+
+_ROW = 9  # numbers per frequency and reading in ReadingTable
+_NONE = math.nan  # an optional field not given (the fields it stands for are never NaN)
+
+
+class ReadingTable:
+    """Every reading of one density (e.g. ``hot``) at each frequency one trace serves, in
+    acquisition order, as 9 numbers per frequency and reading (72 bytes) in one array, plus
+    what the first reading gives the combined density (band, bins, settings): a sweep-level
+    schedule holds all its groups' readings at once, and a :class:`DensitySeries` per
+    frequency (its own arrays, first reading and cached combination) costs about 2.5 kB.
+    :meth:`series` rebuilds frequency ``i``'s series from the same floats in the same order,
+    so its combination is the same to the bit."""
+
+    __slots__ = ("_bands", "_bins", "_excluded", "_rows", "_settings", "width")
+
+    def __init__(self, width: int) -> None:
+        self.width = width  # frequencies per reading
+        self._rows = array("d")
+        self._bands = array("d")
+        self._bins = array("q")
+        self._settings: list[AcquisitionSettings | None] = []
+        self._excluded: dict[int, set[float]] = {}
+
+    def __len__(self) -> int:
+        """Readings so far."""
+        return len(self._rows) // (_ROW * self.width) if self.width else 0
+
+    def add(self, densities: Sequence[NoiseDensity]) -> None:
+        if len(densities) != self.width:
+            raise ValueError(f"{len(densities)} densities for {self.width} frequencies")
+        first = not self._rows
+        for i, d in enumerate(densities):
+            self._rows.extend(
+                (
+                    d.freq_hz,
+                    d.density_w_per_hz,
+                    d.u_density_w_per_hz,
+                    _weight(d),
+                    d.bias_correction_db,
+                    d.settings.averages if d.settings is not None else 1,
+                    _NONE if d.scatter_ratio is None else d.scatter_ratio,
+                    _NONE if d.independent_samples is None else d.independent_samples,
+                    _NONE if d.acquisition_time_s is None else d.acquisition_time_s,
+                )
+            )
+            if first:
+                self._bands.append(_NONE if d.band_hz is None else d.band_hz)
+                self._bins.append(-1 if d.bins_used is None else d.bins_used)
+                self._settings.append(d.settings)
+            if d.excluded_freq_hz:
+                self._excluded.setdefault(i, set()).update(d.excluded_freq_hz)
+
+    def averages(self, i: int) -> int:
+        """Trace averages behind frequency ``i``'s readings."""
+        rows = self._rows
+        step = _ROW * self.width
+        return sum(int(rows[k]) for k in range(_ROW * i + 5, len(rows), step))
+
+    def series(self, i: int) -> DensitySeries:
+        """Frequency ``i``'s readings as a :class:`DensitySeries` (made on each call)."""
+        c = _Columns()
+        rows = self._rows
+        step = _ROW * self.width
+        for k in range(_ROW * i, len(rows), step):
+            f, x, u, w, b, n, ratio, samples, seconds = rows[k : k + _ROW]
+            c.freqs_hz.append(f)
+            c.values.append(x)
+            c.u.append(u)
+            c.weights.append(w)
+            c.bias_db.append(b)
+            c.averages.append(int(n))
+            if not math.isnan(ratio):
+                c.ratios.append(ratio)
+            if math.isnan(samples):
+                c.samples_missing = True
+            else:
+                c.samples.append(samples)
+            if math.isnan(seconds):
+                c.times_missing = True
+            else:
+                c.times_s.append(seconds)
+        if len(c):
+            band = self._bands[i]
+            bins = self._bins[i]
+            c.first = _First(
+                c.freqs_hz[0],
+                None if math.isnan(band) else band,
+                None if bins < 0 else bins,
+                self._settings[i],
+            )
+            c.excluded_hz = set(self._excluded.get(i, ()))
+        return DensitySeries(c)
 
 
 def averages_at_target(
