@@ -11,8 +11,14 @@ in Y, for every point. Two switches serve the whole block, and it ends cold (the
 so the next block or phase starts without a switch and the run ends without one. The first
 cold pass reads every group of the block before the source goes hot, which is the power
 guard's cold look. (Started hot, a block reads hot-cold-cold-hot.) The calibration and the
-measurement each start with a pilot round of every group (``min_averages``), whose readings
-plan the next round; neither reads a first group alone.
+measurement each start with a pilot round (``min_averages``) of a spread of the groups: all of
+a segment's groups when it has at most ``PILOT_ALL``, else about the square root of their number,
+both ends included (``_pilot_indices``). The pilots' readings plan their own next round; the
+other groups are planned from them (the averages the pilots needed exactly, smoothed by a
+running median of three and interpolated in frequency, ``_plan_from_pilots``) and first read
+in the main round, so most points take four acquisitions a phase instead of eight, each
+round still a whole cold-hot-hot-cold block for every group it reads. Neither phase reads a
+first group alone.
 
 Drift the schedule cannot cancel (curvature, steps) is a property of the bench - the receiver
 gain, the source's output - seen alike at every frequency, so one group per block watches it:
