@@ -1,6 +1,6 @@
 """Host CPU and SCPI chatter per frequency point against the SCPI simulator in another process.
 
-    python scripts/bench_scpi.py [--points 101 11] [--target 0.1] [--repeat 1]
+    python scripts/bench_scpi.py [--points 101 11] [--target 0.1] [--repeat 1] [--error-batch N]
 
 Starts ``python -m noisebench.sims`` (scenario demo-lna, seed 1, free loopback ports) as a child
 process, then runs a Y-factor plan through the SCPI drivers in this process twice: a
@@ -12,7 +12,11 @@ error-queue reads included; a compound line ``A;:B`` is one message) and *comman
 program message units in them, a compound counted once per unit). Prints both against the
 target (<= 30 per point) with the ratio, the CPU against <= 5 ms per point, and the commands per
 point by kind (settings sent, read-back queries, acquisition start and wait, trace fetch, error
-queue, noise-source switching: see ``kind_of``) and by header. With ``--repeat N`` both runs
+queue, noise-source switching: see ``kind_of``) and by header. The analyzer uses the generic
+profile, which reads the error queue once per pass of a sweep-level block (``[common]
+error_batch = 16``; the configure read-back lines carry their own read); ``--error-batch 1``
+runs a copy of it that reads the queue in every acquisition's line, as before, for
+comparison (same seed: same results). With ``--repeat N`` both runs
 are made N times and the CPU per point is the smallest of the N differences (CPU time on a
 shared machine is inflated by other load, never deflated: the timeit module's advice); the
 counts are the same every time the script runs (fixed seed), but move a little between
@@ -129,15 +133,29 @@ def start_server() -> tuple[subprocess.Popen, dict[str, str]]:
     return proc, resources
 
 
-def plan_for(resources: dict[str, str], points: int, target: float, folder: Path):
+def plan_for(
+    resources: dict[str, str], points: int, target: float, folder: Path, batch: int | None = None
+):
     enr = folder / "enr.csv"
+    profile = "generic"
+    if batch is not None:  # a copy of the generic profile with another error_batch
+        from noisebench.drivers import load_profile
+
+        text = Path(load_profile("generic").source).read_text(encoding="utf-8")
+        path = folder / "generic_batch.toml"
+        path.write_text(text.replace("\nerror_batch = 16\n", f"\nerror_batch = {batch}\n"))
+        profile = str(path)
     simulated_enr_table(SimulatedBench.from_scenario("demo-lna", seed=1)).to_csv(enr)
     plan = parse_plan(
         {
             "method": "y_factor",
             "dut": {"id": "SCPI-BENCH"},
             "bench": {
-                "analyzer": {"resource": resources["analyzer"], "compression_dbm": -3.0},
+                "analyzer": {
+                    "resource": resources["analyzer"],
+                    "profile": profile,
+                    "compression_dbm": -3.0,
+                },
                 "noise_source": {
                     "drive": "supply",
                     "resource": resources["supply"],
@@ -160,6 +178,7 @@ def run(
     resources: dict[str, str],
     points: int,
     target: float,
+    batch: int | None = None,
     calibrations: CalibrationStore | None = None,
 ) -> tuple[float, int, int, int, dict, dict]:
     """One run; with ``calibrations`` the sequencer uses (and fills) that store, so a second
@@ -168,7 +187,7 @@ def run(
     KINDS.clear()
     MESSAGES[0] = 0
     with tempfile.TemporaryDirectory(prefix="nb_scpi_") as tmp:
-        plan = plan_for(resources, points, target, Path(tmp))
+        plan = plan_for(resources, points, target, Path(tmp), batch)
         cpu0 = time.process_time()
         session = open_bench(plan.bench)
         try:
@@ -189,6 +208,12 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--points", type=int, nargs=2, default=[101, 11])
     parser.add_argument("--target", type=float, default=0.1)
     parser.add_argument("--repeat", type=int, default=1)
+    parser.add_argument(
+        "--error-batch",
+        type=int,
+        default=None,
+        help="the generic profile's error_batch replaced by this (1: a read per acquisition)",
+    )
     args = parser.parse_args(argv)
     logging.basicConfig(level=logging.ERROR)
     for name in ("write", "query", "query_binary", "query_watched", "query_block_then_text"):
@@ -200,15 +225,19 @@ def main(argv: list[str] | None = None) -> int:
         per_cmds: list[float] = []
         for _ in range(max(1, args.repeat)):
             store = CalibrationStore()  # the long sweep's calibration covers the short one
-            cpu_b, msg_b, cmd_b, n_b, heads_b, kinds_b = run(resources, big, args.target, store)
-            cpu_s, msg_s, cmd_s, n_s, heads_s, kinds_s = run(resources, small, args.target)
+            cpu_b, msg_b, cmd_b, n_b, heads_b, kinds_b = run(
+                resources, big, args.target, args.error_batch, store
+            )
+            cpu_s, msg_s, cmd_s, n_s, heads_s, kinds_s = run(
+                resources, small, args.target, args.error_batch
+            )
             per_cpu.append((cpu_b - cpu_s) / max(n_b - n_s, 1) * 1e3)
             per_cmds.append((cmd_b - cmd_s) / max(n_b - n_s, 1))
         # a station calibrates once and measures many units: the same two sweeps again,
         # reusing the long sweep's still-valid calibration (none measured, checked below)
-        reuse_b = run(resources, big, args.target, store)
+        reuse_b = run(resources, big, args.target, args.error_batch, store)
         calibrated = LAST_CALIBRATED[0]
-        reuse_s = run(resources, small, args.target, store)
+        reuse_s = run(resources, small, args.target, args.error_batch, store)
         calibrated += LAST_CALIBRATED[0]
     finally:
         proc.terminate()

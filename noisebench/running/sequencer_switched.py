@@ -57,7 +57,7 @@ from noisebench.errors import MeasurementError, YNotSignificantError
 from noisebench.running.calibration import CalibrationEntry, CalibrationKind
 from noisebench.running.groups import PointGroup
 from noisebench.running.safety import PowerCheck
-from noisebench.running.sequencer_core import _GroupOutcome, _Readings
+from noisebench.running.sequencer_core import Commit, _GroupOutcome, _Readings
 from noisebench.running.sequencer_measurement import MeasurementSteps
 from noisebench.science.averaging import TimeBudget, averages_for_target
 from noisebench.science.density import NoiseDensity
@@ -231,23 +231,60 @@ class SwitchedSweep(MeasurementSteps):
         for run in block:
             run.budget.charge(settle / len(block))
 
-    def _read(self, run: _GroupRun, state: str, connection: Connection, monitor: bool) -> None:
+    def _read(self, run: _GroupRun, state: str, connection: Connection, monitor: bool) -> Commit:
         """One pass reading of a group; the block's drift monitor takes it as two acquisitions
-        of half the averages each."""
+        of half the averages each. Returns what accepting the reading does (the pass's error
+        check comes first, see ``_checked_step``); the time is charged at once."""
         n = run.per_trace
         split = monitor and n >= 2 * MIN_CHECK_AVERAGES
+        taken: list[tuple[float | None, list[NoiseDensity]]] = []
         for averages in (n // 2, n - n // 2) if split else (n,):
             before = run.budget.used_s
             started = self._now_s()
             densities = self._acquire(run.group, averages, run.budget)
             spent = run.budget.used_s - before
-            if split:  # the reading's middle on the bench's clock (drift lives in real time)
-                run.log.append((0.5 * (started + self._now_s()), state, densities))
+            # the reading's middle on the bench's clock (drift lives in real time)
+            taken.append((0.5 * (started + self._now_s()) if split else None, densities))
             self._clock_s += spent
-            run.readings.add(state, densities)
             run.settings = self.session.bench.analyzer.settings
-            if state == "cold" and connection is Connection.DUT:
-                self._guard().observe_cold([d.density_w_per_hz for d in densities])
+
+        def accept() -> None:
+            for middle, densities in taken:
+                if middle is not None:
+                    run.log.append((middle, state, densities))
+                run.readings.add(state, densities)
+                if state == "cold" and connection is Connection.DUT:
+                    self._guard().observe_cold([d.density_w_per_hz for d in densities])
+            self.progress.reading_done()
+
+        return accept
+
+    def _pass(
+        self,
+        order: list[_GroupRun],
+        state: str,
+        connection: Connection,
+        monitor: _GroupRun | None,
+    ) -> None:
+        """One pass over ``order`` as one analyzer step: its readings are accepted together
+        after the step's error check (``_checked_step``; a profile's ``error_batch``)."""
+
+        def read() -> list[Commit]:
+            commits: list[Commit] = []
+            for run in order:
+                if run.failed is not None:
+                    continue
+                try:
+                    commits.append(
+                        self._with_context(
+                            run.group, partial(self._read, run, state, connection, run is monitor)
+                        )
+                    )
+                except MeasurementError as exc:
+                    commits.append(partial(setattr, run, "failed", exc))
+            return commits
+
+        self._checked_step(read)
 
     def _run_block(self, block: list[_GroupRun], connection: Connection) -> None:
         """The four passes over ``block``. A group whose reading the physics refuses is left
@@ -268,20 +305,7 @@ class SwitchedSweep(MeasurementSteps):
         passes = ((first, forward), (not first, backward), (not first, forward), (first, backward))
         for hot, order in passes:
             self._switch_block(hot, block, connection)
-            for run in order:
-                if run.failed is not None:
-                    continue
-                try:
-                    self._with_context(
-                        run.group,
-                        partial(
-                            self._read, run, "hot" if hot else "cold", connection, run is monitor
-                        ),
-                    )
-                except MeasurementError as exc:
-                    run.failed = exc
-                else:
-                    self.progress.reading_done()
+            self._pass(order, "hot" if hot else "cold", connection, monitor)
         if monitor is None:
             return
         check = self._monitor_check(monitor)
