@@ -39,6 +39,10 @@ than ``max_block_s`` of instrument time, shorter when a drift curvature is decla
 stays adaptive per group (the same radiometer planning as the per-group rounds); a block after
 the first holds only the groups still short of their target, and each group's points are
 journalled as soon as it stops.
+
+Size: one schedule - the blocks, the drift monitor, the pilots and the plans drawn from them
+serve the calibration and the measurement alike, and splitting them would spread one
+round's bookkeeping (``_GroupRun``) over several modules.
 """
 
 from __future__ import annotations
