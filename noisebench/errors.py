@@ -83,6 +83,13 @@ class InstrumentTimeout(CommunicationError):
     """The instrument did not answer within the timeout."""
 
 
+class UnverifiedStep(CommunicationError):
+    """A step's acquisitions whose error-queue read never came: the connection was remade in
+    the middle of a step that reads the queue once at its end (``[common] error_batch``), and
+    an instrument that rebooted lost the entries. The step's readings are discarded and the
+    step is read again (the sequencer retries it)."""
+
+
 class InstrumentError(NoisebenchError):
     """The instrument reported an error-queue entry (``code``, ``text``) after ``command``."""
 

@@ -1,6 +1,6 @@
 """Host CPU and SCPI chatter per frequency point against the SCPI simulator in another process.
 
-    python scripts/bench_scpi.py [--points 101 11] [--target 0.1] [--repeat 1]
+    python scripts/bench_scpi.py [--points 101 11] [--target 0.1] [--repeat 1] [--error-batch N]
 
 Starts ``python -m noisebench.sims`` (scenario demo-lna, seed 1, free loopback ports) as a child
 process, then runs a Y-factor plan through the SCPI drivers in this process twice: a
@@ -12,11 +12,23 @@ error-queue reads included; a compound line ``A;:B`` is one message) and *comman
 program message units in them, a compound counted once per unit). Prints both against the
 target (<= 30 per point) with the ratio, the CPU against <= 5 ms per point, and the commands per
 point by kind (settings sent, read-back queries, acquisition start and wait, trace fetch, error
-queue, noise-source switching: see ``kind_of``) and by header. With ``--repeat N`` both runs
+queue, noise-source switching: see ``kind_of``) and by header. The analyzer uses the generic
+profile, which reads the error queue once per pass of a sweep-level block (``[common]
+error_batch = 16``; the configure read-back lines carry their own read); ``--error-batch 1``
+runs a copy of it that reads the queue in every acquisition's line, as before, for
+comparison (same seed: same results). With ``--repeat N`` both runs
 are made N times and the CPU per point is the smallest of the N differences (CPU time on a
 shared machine is inflated by other load, never deflated: the timeit module's advice); the
 counts are the same every time the script runs (fixed seed), but move a little between
 repeats (the server's random stream runs on), so each repeat's commands are printed too.
+
+Both figures above include each point's share of the calibration (measured in the same run).
+A production station calibrates once and measures many units while the calibration stays
+valid (``Sequencer(..., calibrations=store)``, as ``station.py`` does), so the two sweeps are
+then run once more with the long sweep's calibration store (it covers the short sweep's
+frequencies): the second line gives commands, acquisitions and CPU per point with the
+calibration reused, and says if any calibration was measured after all. The acquisitions
+(``INIT:IMM``) per point with the calibration included are printed too.
 """
 
 from __future__ import annotations
@@ -33,6 +45,7 @@ from pathlib import Path
 
 from noisebench.bench.registry import open_bench, simulated_enr_table
 from noisebench.drivers.transport import VisaSession
+from noisebench.running.calibration import CalibrationStore
 from noisebench.running.plan import parse_plan
 from noisebench.running.sequencer import Sequencer
 from noisebench.sims.bench import SimulatedBench
@@ -120,15 +133,29 @@ def start_server() -> tuple[subprocess.Popen, dict[str, str]]:
     return proc, resources
 
 
-def plan_for(resources: dict[str, str], points: int, target: float, folder: Path):
+def plan_for(
+    resources: dict[str, str], points: int, target: float, folder: Path, batch: int | None = None
+):
     enr = folder / "enr.csv"
+    profile = "generic"
+    if batch is not None:  # a copy of the generic profile with another error_batch
+        from noisebench.drivers import load_profile
+
+        text = Path(load_profile("generic").source).read_text(encoding="utf-8")
+        path = folder / "generic_batch.toml"
+        path.write_text(text.replace("\nerror_batch = 16\n", f"\nerror_batch = {batch}\n"))
+        profile = str(path)
     simulated_enr_table(SimulatedBench.from_scenario("demo-lna", seed=1)).to_csv(enr)
     plan = parse_plan(
         {
             "method": "y_factor",
             "dut": {"id": "SCPI-BENCH"},
             "bench": {
-                "analyzer": {"resource": resources["analyzer"], "compression_dbm": -3.0},
+                "analyzer": {
+                    "resource": resources["analyzer"],
+                    "profile": profile,
+                    "compression_dbm": -3.0,
+                },
                 "noise_source": {
                     "drive": "supply",
                     "resource": resources["supply"],
@@ -148,21 +175,32 @@ def plan_for(resources: dict[str, str], points: int, target: float, folder: Path
 
 
 def run(
-    resources: dict[str, str], points: int, target: float
+    resources: dict[str, str],
+    points: int,
+    target: float,
+    batch: int | None = None,
+    calibrations: CalibrationStore | None = None,
 ) -> tuple[float, int, int, int, dict, dict]:
+    """One run; with ``calibrations`` the sequencer uses (and fills) that store, so a second
+    run of the same sweep reuses the still-valid calibration as a production station does."""
     COUNTS.clear()
     KINDS.clear()
     MESSAGES[0] = 0
     with tempfile.TemporaryDirectory(prefix="nb_scpi_") as tmp:
-        plan = plan_for(resources, points, target, Path(tmp))
+        plan = plan_for(resources, points, target, Path(tmp), batch)
         cpu0 = time.process_time()
         session = open_bench(plan.bench)
         try:
-            record = Sequencer(plan, session).run(Path(tmp) / "run")
+            sequencer = Sequencer(plan, session, calibrations=calibrations)
+            record = sequencer.run(Path(tmp) / "run")
         finally:
             session.close()
         cpu = time.process_time() - cpu0
+    LAST_CALIBRATED[0] = sequencer.calibrations_measured
     return cpu, MESSAGES[0], sum(COUNTS.values()), len(record.points), dict(COUNTS), dict(KINDS)
+
+
+LAST_CALIBRATED = [0]  # calibration entries the last run measured (0: it reused them all)
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -170,6 +208,12 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--points", type=int, nargs=2, default=[101, 11])
     parser.add_argument("--target", type=float, default=0.1)
     parser.add_argument("--repeat", type=int, default=1)
+    parser.add_argument(
+        "--error-batch",
+        type=int,
+        default=None,
+        help="the generic profile's error_batch replaced by this (1: a read per acquisition)",
+    )
     args = parser.parse_args(argv)
     logging.basicConfig(level=logging.ERROR)
     for name in ("write", "query", "query_binary", "query_watched", "query_block_then_text"):
@@ -180,10 +224,21 @@ def main(argv: list[str] | None = None) -> int:
         per_cpu: list[float] = []
         per_cmds: list[float] = []
         for _ in range(max(1, args.repeat)):
-            cpu_b, msg_b, cmd_b, n_b, heads_b, kinds_b = run(resources, big, args.target)
-            cpu_s, msg_s, cmd_s, n_s, heads_s, kinds_s = run(resources, small, args.target)
+            store = CalibrationStore()  # the long sweep's calibration covers the short one
+            cpu_b, msg_b, cmd_b, n_b, heads_b, kinds_b = run(
+                resources, big, args.target, args.error_batch, store
+            )
+            cpu_s, msg_s, cmd_s, n_s, heads_s, kinds_s = run(
+                resources, small, args.target, args.error_batch
+            )
             per_cpu.append((cpu_b - cpu_s) / max(n_b - n_s, 1) * 1e3)
             per_cmds.append((cmd_b - cmd_s) / max(n_b - n_s, 1))
+        # a station calibrates once and measures many units: the same two sweeps again,
+        # reusing the long sweep's still-valid calibration (none measured, checked below)
+        reuse_b = run(resources, big, args.target, args.error_batch, store)
+        calibrated = LAST_CALIBRATED[0]
+        reuse_s = run(resources, small, args.target, args.error_batch, store)
+        calibrated += LAST_CALIBRATED[0]
     finally:
         proc.terminate()
         proc.wait(timeout=10)
@@ -204,7 +259,7 @@ def main(argv: list[str] | None = None) -> int:
         f"{msg_s} messages, {cmd_s} commands, {cpu_s:.2f} s CPU"
     )
     for what, value, target, unit in (
-        ("SCPI commands", per_cmd, TARGET_COMMANDS, ""),
+        ("SCPI commands (calibration included)", per_cmd, TARGET_COMMANDS, ""),
         ("SCPI messages", per_msg, TARGET_COMMANDS, ""),
         ("host CPU", per_cpu_ms, TARGET_CPU_MS, " ms"),
     ):
@@ -213,6 +268,20 @@ def main(argv: list[str] | None = None) -> int:
             f"per added point: {value:.1f}{unit} {what} (target <= {target:g}{unit}: "
             f"{value / target:.2f} x target, {verdict})"
         )
+    reuse_extra = max(reuse_b[3] - reuse_s[3], 1)
+    reuse_cmd = (reuse_b[2] - reuse_s[2]) / reuse_extra
+    reuse_cpu_ms = (reuse_b[0] - reuse_s[0]) / reuse_extra * 1e3
+    reuse_init = (reuse_b[4].get("INIT:IMM", 0) - reuse_s[4].get("INIT:IMM", 0)) / reuse_extra
+    verdict = "met" if reuse_cmd <= TARGET_COMMANDS else "NOT met"
+    print(
+        f"per added point, calibration reused (a station measuring its next unit; "
+        f"{'no calibration measured' if not calibrated else f'{calibrated} entries measured!'}"
+        f"): {reuse_cmd:.1f} SCPI commands (target <= {TARGET_COMMANDS}: "
+        f"{reuse_cmd / TARGET_COMMANDS:.2f} x target, {verdict}), {reuse_init:.1f} acquisitions, "
+        f"{reuse_cpu_ms:.1f} ms host CPU (one run, not the smallest of repeats)"
+    )
+    init = (heads_b.get("INIT:IMM", 0) - heads_s.get("INIT:IMM", 0)) / extra
+    print(f"  acquisitions (INIT:IMM) per added point, calibration included: {init:.1f}")
     per_kind = [(k, (kinds_b.get(k, 0) - kinds_s.get(k, 0)) / extra) for k in KIND_ORDER]
     print(
         "  commands per point by kind: "

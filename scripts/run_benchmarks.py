@@ -35,6 +35,7 @@ RUNS: dict[str, list[str]] = {
     "memory-y_factor": ["scripts/bench_memory.py", "--method", "y_factor"],
     "database": ["scripts/bench_database.py"],
     "progress_eta": ["scripts/bench_progress_eta.py"],
+    "forecast": ["scripts/bench_forecast_schedule.py"],
 }
 
 

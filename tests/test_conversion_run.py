@@ -343,9 +343,12 @@ def test_forecast_of_a_converter_plan_from_declared_priors(tmp_path):
     assert none.u_nf_db == pytest.approx(amplifier.u_nf_db, rel=1e-9)
     # the image share: at the same SSB NF, equal responses leave less added noise
     # (Te_SSB = T0 (F - 1 - r)) and twice the source's excess at the IF: a larger Y, fewer
-    # averages to the same target
+    # averages to the same target (the forecast plays the sequencer's rounds, whose whole
+    # averages may come out equal: then the same averages reach a lower u)
     equal = forecast_plan(plan_with(conversion__image_rejection_db="equal", **common)).points[0]
-    assert equal.averages < none.averages
+    assert equal.averages < none.averages or (
+        equal.averages == none.averages and equal.u_nf_db < none.u_nf_db
+    )
     assert 0.0 < equal.u_nf_db <= 0.15 * (1 + 1e-9)
 
 

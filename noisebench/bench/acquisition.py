@@ -10,6 +10,7 @@ Units: Hz, seconds, dB, dBm; trace values in the unit named by ``Trace.unit``.
 
 from __future__ import annotations
 
+import functools
 from datetime import datetime, timezone
 from enum import Enum
 from typing import Any
@@ -131,7 +132,16 @@ class AcquisitionSettings(BaseModel):
         """Frequency of every trace point, Hz (zero span: all at the centre)."""
         if self.points == 1 or self.span_hz == 0:
             return np.full(self.points, self.center_hz)
-        return np.linspace(self.start_hz, self.stop_hz, self.points)
+        # a copy of the kept axis: the same numbers as a fresh np.linspace, without its cost
+        # on every trace of a group
+        return _linear_axis(self.start_hz, self.stop_hz, self.points).copy()
+
+
+@functools.lru_cache(maxsize=256)
+def _linear_axis(start_hz: float, stop_hz: float, points: int) -> np.ndarray:
+    axis = np.linspace(start_hz, stop_hz, points)
+    axis.flags.writeable = False  # kept: callers get copies
+    return axis
 
 
 def _now() -> datetime:

@@ -116,6 +116,18 @@ class Analyzer(Instrument):
         touching the instrument. The default assumes it applies what it is asked."""
         return request
 
+    def begin_step(self) -> None:
+        """A step of several acquisitions starts: the sequencer holds their traces and accepts
+        them only after :meth:`end_step` returned. An instrument that checks for errors once
+        per step (a SCPI profile's ``error_batch``) may leave the check to the step's end;
+        the default checks every acquisition itself and needs nothing here."""
+
+    def end_step(self, *, check: bool = True) -> None:
+        """The step ends: with ``check``, confirm that nothing sent for its acquisitions failed
+        (raises :class:`~noisebench.errors.InstrumentError` naming the command, or
+        :class:`~noisebench.errors.UnverifiedStep` when the check was lost to a reconnect);
+        ``check=False`` abandons the step (its traces are discarded). Default: nothing to do."""
+
 
 class NoiseSource(Instrument):
     """A switchable noise source (hot = drive on, cold = drive off)."""

@@ -52,6 +52,7 @@ from noisebench.errors import (
     InstrumentTimeout,
     MeasurementError,
     NoisebenchError,
+    UnverifiedStep,
 )
 from noisebench.science.filters import FilterKind, RbwFilter
 from noisebench.science.plausibility import check_trace_values
@@ -135,6 +136,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         self._verified: dict[tuple[str, str], dict[str, Any]] = {}
         self._deferred_names: set[str] = set()  # settings held for the next compound line
         self._started = False  # an acquisition start was accepted alone since connecting
+        self._step_open = False  # in a sequencer step whose error read may wait (error_batch)
         self._named: dict[tuple, list[tuple[str, str]]] = {}  # request -> its commands
         self._predicted: dict[tuple, AcquisitionRequest] = {}  # request -> as applied
         self._noise_drive: bool | None = None
@@ -593,7 +595,12 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         # accepted alone (the first acquisition after connecting sends them apart)
         combined = self._channel.compound and self._started and self.transport.reads_block_then_text
         if combined and self._one_line(settings):
-            elapsed, values = self._acquire_in_one_line(settings)
+            # in a step (error_batch): the queue is read in every error_batch-th line and at
+            # the step's end; the sequencer accepts the traces only after that read
+            read = not self._step_open or (
+                self._channel.unchecked_acquisitions + 1 >= self.profile.common.error_batch
+            )
+            elapsed, values = self._acquire_in_one_line(settings, read_errors=read)
         else:
             elapsed = self._run_acquisition()
             values = self._fetch_trace(settings, with_errors=combined)
@@ -627,12 +634,17 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
             and not (acq.poll_start and self.expected_acquisition_time_s() > acq.poll_above_s)
         )
 
-    def _acquire_in_one_line(self, settings: AcquisitionSettings) -> tuple[float, np.ndarray]:
+    def _acquire_in_one_line(
+        self, settings: AcquisitionSettings, *, read_errors: bool = True
+    ) -> tuple[float, np.ndarray]:
         """Held settings, the start, the wait (IEEE 488.2 ``*WAI``: the next unit runs once
         the acquisition completed), the trace query and the step's error query in one
         program message: one exchange per acquisition. The reply is the block, ``;`` and
         the error entry; its deadline covers the acquisition and the transfer. Returns the
-        wall time and the values."""
+        wall time and the values. ``read_errors=False`` (inside a step, ``error_batch``):
+        no error query; the reply is the block alone and the step's read covers it (a trace
+        query that fails sends no reply: the block read times out, and recovery reads the
+        queue and names it)."""
         tr = self.spec.trace
         wait = self.profile.common.wait
         assert wait is not None  # _one_line checked it
@@ -641,15 +653,22 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         limit += self._channel.base_timeout_s + size / tr.transfer_rate_bytes_per_s
         self._select_format("binary")
         held = self._channel.take_deferred()
-        line = compound_line(
-            [*held, self.spec.acquisition.start, wait, tr.query, self.profile.common.error_query]
-        )
+        units = [*held, self.spec.acquisition.start, wait, tr.query]
+        line = compound_line([*units, self.profile.common.error_query] if read_errors else units)
         self._channel.sent_compound(line, held)
         started = time.monotonic()
         try:
-            got, reply = self.transport.query_block_then_text(
-                line, datatype=tr.datatype, big_endian=tr.big_endian, timeout_s=limit
-            )
+            if read_errors:
+                got, reply = self.transport.query_block_then_text(
+                    line, datatype=tr.datatype, big_endian=tr.big_endian, timeout_s=limit
+                )
+            else:
+                got, reply = (
+                    self.transport.query_binary(
+                        line, datatype=tr.datatype, big_endian=tr.big_endian, timeout_s=limit
+                    ),
+                    "",
+                )
         except InstrumentTimeout as exc:
             exc.add_context(timeout_s=round(limit, 3))
             self._abort_quietly()
@@ -658,7 +677,10 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
             self._block_failures += 1
             raise
         elapsed = time.monotonic() - started
-        self._channel.check_errors(tr.query, first_reply=reply)
+        if self._step_open:
+            self._channel.unchecked_acquisitions += 1
+        if read_errors:
+            self._channel.check_errors(tr.query, first_reply=reply)
         if got is None:
             self._block_failures += 1
             raise BlockError(
@@ -667,6 +689,40 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         self._block_failures = 0
         self._last_transfer = "binary"
         return elapsed, _checked_values(got, settings.points, tr.query)
+
+    # -- steps (error_batch) ---------------------------------------------------------------
+
+    def begin_step(self) -> None:
+        """A sequencer step starts: with ``[common] error_batch`` > 1 its one-line
+        acquisitions leave out the error query, at most ``error_batch`` in a row, and
+        :meth:`end_step` reads the queue once for them (see :class:`Analyzer`)."""
+        with self.lock:
+            self._step_open = self.profile.common.error_batch > 1 and self._channel.compound
+            self._channel.step_lost = False
+
+    def end_step(self, *, check: bool = True) -> None:
+        """The step ends: read the error queue when acquisitions of it went without a read
+        (an error names the failing command: held settings are re-sent alone); a reconnect
+        in the middle of the step lost that read: :class:`UnverifiedStep`, and the
+        sequencer reads the step again. ``check=False``: the step is abandoned, its traces
+        discarded; the next read covers what it sent."""
+        with self.lock:
+            self._step_open = False
+            if not check:
+                return
+            if self._channel.unchecked_acquisitions:  # named errors come first
+                self._run(
+                    "check the step's errors",
+                    lambda: self._channel.check_errors(self.spec.trace.query),
+                )
+            if self._channel.step_lost:
+                self._channel.step_lost = False
+                raise UnverifiedStep(
+                    "the connection was remade before the error queue was read for this "
+                    "step's acquisitions (a rebooted instrument empties it): the step's "
+                    "traces are discarded and it is read again",
+                    instrument="analyzer",
+                )
 
     def _run_acquisition(self) -> float:
         """Start one acquisition and wait for it; returns the wall time it took, seconds."""

@@ -739,6 +739,16 @@ class CommonProfile(_Section):
         "message units); an error in it is traced to its command by re-sending each alone. "
         "Ignored with 'each' (bringing up an instrument checks every command alone)",
     )
+    error_batch: int = Field(
+        default=1,
+        ge=1,
+        le=1000,
+        description="with compound = true (and error_check = 'step'): the most acquisitions "
+        "of one sequencer step (a pass of a sweep-level block) taken before the error queue "
+        "is read; the traces are accepted only after a clean read covering them. 1: every "
+        "acquisition reads it. At most the instrument's error-queue depth and "
+        "max_error_entries. Ignored without compound lines, like compound itself",
+    )
     retry_window_s: float = Field(
         default=60.0,
         ge=0,
@@ -758,6 +768,11 @@ class CommonProfile(_Section):
         for key in ("clear_status", "wait"):
             if getattr(self, key) is not None:
                 _check_query(getattr(self, key))
+        if self.error_batch > self.max_error_entries:
+            raise ValueError(
+                f"error_batch {self.error_batch} exceeds max_error_entries "
+                f"{self.max_error_entries}: keep it within the error-queue depth"
+            )
         return self
 
 

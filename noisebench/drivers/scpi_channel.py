@@ -130,6 +130,10 @@ class ScpiChannel:
         self._unchecked: list[str] = []  # commands sent since the error queue was last read
         self._deferred: dict[str, str] = {}  # setting -> command held for the next compound
         self._in_compound: list[str] = []  # settings sent in compound lines since the last read
+        # acquisitions sent without an error read since the last one (error_batch); a
+        # reconnect before their read marks the step lost (the queue may have been emptied)
+        self.unchecked_acquisitions = 0
+        self.step_lost = False
 
     # -- connection --------------------------------------------------------------------
 
@@ -290,6 +294,7 @@ class ScpiChannel:
         queue is read on only when it holds an error)."""
         sent, self._unchecked = self._unchecked, []
         carried, self._in_compound = self._in_compound, []
+        batched, self.unchecked_acquisitions = self.unchecked_acquisitions, 0
         if first_reply is None:
             entries = self.read_error_queue()
         else:
@@ -299,11 +304,15 @@ class ScpiChannel:
             return
         code, text = entries[0]
         more = "; ".join(f"{c},{t!r}" for c, t in entries[1:]) or None
-        recent = ", ".join(sent[-6:]) if sent and sent != [after] else None
+        distinct = list(dict.fromkeys(sent))  # a batched step repeats its lines
+        recent = ", ".join(distinct[-6:]) if sent and sent != [after] else None
         extra: dict[str, Any] = {}
-        culprit = self._culprit(carried) if carried else None
+        if batched > 1:
+            # one read covered several acquisitions of a step (error_batch): say how many
+            extra["in_step"] = f"{batched} acquisitions covered by one error-queue read"
+        culprit = self._culprit(list(dict.fromkeys(carried))) if carried else None
         if culprit is not None:
-            extra = {"in_compound": after, "found_by": "re-sending each setting alone"}
+            extra.update(in_compound=after, found_by="re-sending each setting alone")
             after = culprit
         logger.error("%s: instrument error %d %r after %r", self.kind, code, text, after)
         raise InstrumentError(
@@ -410,6 +419,9 @@ class ScpiChannel:
         self._unchecked = []
         self._deferred, self._in_compound = {}, []  # the restore callback re-sends settings
         reconnected = self.transport.recover()
+        if reconnected and self.unchecked_acquisitions:
+            self.step_lost = True  # a rebooted instrument has emptied its error queue
+        self.unchecked_acquisitions = 0  # (without a reconnect the read below covers them)
         with self.transport.timeout(min(self.transport.timeout_s, self.base_timeout_s)):
             self._probe()
             entries = self.read_error_queue()

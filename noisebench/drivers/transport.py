@@ -69,6 +69,8 @@ WATCH_SLICE_S = 0.5
 
 
 _DONT_WAIT = getattr(socket, "MSG_DONTWAIT", 0)  # POSIX; elsewhere every receive waits first
+#: the first read of a binary reply takes up to this many bytes at once (a 1 001-point trace)
+_START_READ_BYTES = 4096
 
 
 class ConnectionLost(CommunicationError):
@@ -347,6 +349,7 @@ class VisaSession(Transport):
         )
         # the open pyvisa resource (pyvisa is imported lazily and ships no types we rely on)
         self._res: Any = None
+        self._kept_session: tuple[Any, Any] | None = None  # see _visa_session
         self._is_socket = False
         self._stale = False
         self._open()
@@ -567,16 +570,28 @@ class VisaSession(Transport):
 
     def _socket(self) -> socket.socket | None:
         """pyvisa-py's socket behind a SOCKET resource (None for other back ends)."""
-        if not self._is_socket or self._res is None:
+        session = self._visa_session()
+        sock = getattr(session, "interface", None)
+        return sock if isinstance(sock, socket.socket) else None
+
+    def _visa_session(self) -> Any:
+        """pyvisa-py's session object behind a SOCKET resource (None for other back ends),
+        looked up once per opened resource: every exchange asks for it (the closed-peer
+        check, the direct block reader), and a new resource (reconnect) is looked up anew."""
+        res = self._res
+        if not self._is_socket or res is None:
             return None
+        kept = self._kept_session
+        if kept is not None and kept[0] is res:
+            return kept[1]
         import pyvisa
 
         try:
-            session = self._res.visalib.sessions[self._res.session]
+            session = res.visalib.sessions[res.session]
         except (AttributeError, KeyError, TypeError, pyvisa.errors.Error):
             return None
-        sock = getattr(session, "interface", None)
-        return sock if isinstance(sock, socket.socket) else None
+        self._kept_session = (res, session)
+        return session
 
     def peer_closed(self) -> bool:
         """True when the instrument closed a socket connection (checked without blocking)."""
@@ -787,11 +802,11 @@ class VisaSession(Transport):
     def _direct_socket(self) -> tuple[socket.socket, bytearray] | None:
         """pyvisa-py's socket and its buffer of bytes already received, for reading a block
         without pyvisa-py's 4 kB receive loop and its copies; None for any other back end."""
-        sock = self._socket()
-        if sock is None:
+        session = self._visa_session()
+        sock = getattr(session, "interface", None)
+        if not isinstance(sock, socket.socket):
             return None
-        session = self._res.visalib.sessions[self._res.session]
-        pending = getattr(session, "_pending_buffer", None)
+        pending = getattr(session, "_pending_buffer", None)  # pyvisa-py replaces it: read anew
         return (sock, pending) if isinstance(pending, bytearray) else None
 
     def _read_block_direct(
@@ -814,6 +829,8 @@ class VisaSession(Transport):
         limit = self._timeout_s if limit_s is None else limit_s
         self._read_limit_s = limit  # for the timeout message
         deadline = time.monotonic() + limit
+        if not pending:  # the reply's start: one wait, then what is queued in one call
+            self._recv_start(sock, pending, deadline, command)
         head = bytearray(2)
         self._recv_into(sock, pending, memoryview(head), deadline, command, "header")
         if then_text and head[:1] != b"#":  # no block: the text is the whole reply
@@ -898,6 +915,22 @@ class VisaSession(Transport):
                     pending += sock.recv(4096, _DONT_WAIT)
                 except OSError:  # nothing queued (or a broken socket: the next read says)
                     pass
+
+    def _recv_start(
+        self, sock: socket.socket, pending: bytearray, deadline: float, command: str
+    ) -> None:
+        """Wait for the start of a reply and append what has arrived (up to
+        :data:`_START_READ_BYTES`) to ``pending``: a short trace, its terminator and the text
+        after it come in one call instead of one per part (header, length digits, payload,
+        text). Longer payloads go on straight into their buffer (:meth:`_recv_into`)."""
+        remaining = deadline - time.monotonic()
+        ready = remaining > 0 and select.select([sock], [], [], remaining)[0]
+        if not ready:
+            self._raise_short_read(command, "header", 0, None, closed=False)
+        got = sock.recv(_START_READ_BYTES)
+        if not got:
+            self._raise_short_read(command, "header", 0, None, closed=True)
+        pending += got
 
     def _recv_into(
         self,

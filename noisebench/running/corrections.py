@@ -16,7 +16,7 @@ the DUT, see :meth:`noisebench.running.sequencer.Sequencer._stated_gain`.
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from noisebench.bench.registry import BenchSession
@@ -41,6 +41,10 @@ class Corrections:
     enr_table: Any = None
     enr_extrapolate: str = "refuse"
     gain: Callable[[float], tuple[float, float]] | None = None
+    # enr_at's answers per (table, rule, frequency); the table itself kept to check identity
+    _enr_cache: dict[tuple[int, str, float], tuple[Any, tuple[float, float | None, bool]]] = field(
+        default_factory=dict, repr=False, compare=False
+    )
 
     def enr_at(self, freq_hz: float) -> tuple[float, float | None, bool]:
         """(ENR dB, its standard uncertainty dB, extrapolated?) at ``freq_hz``.
@@ -49,9 +53,20 @@ class Corrections:
         so that budgets list the ENR term as omitted instead of showing it as exact."""
         if self.enr_table is None:
             raise InputError("enr.table", "no ENR table", fix="name the ENR table in the plan")
+        # a point asks for its ENR several times (calibration sizing, summary, decisions,
+        # result): kept per frequency for this table and rule (refusals are not kept)
+        key = (id(self.enr_table), self.enr_extrapolate, freq_hz)
+        cache = self._enr_cache
+        found = cache.get(key)
+        if found is not None and found[0] is self.enr_table:
+            return found[1]
         value = self.enr_table.at(freq_hz, extrapolate=self.enr_extrapolate)
         u = None if value.u_enr_db is None else float(value.u_enr_db)
-        return float(value.enr_db), u, bool(value.extrapolated)
+        result = (float(value.enr_db), u, bool(value.extrapolated))
+        if len(cache) >= 4096:
+            cache.clear()
+        cache[key] = (self.enr_table, result)
+        return result
 
     @property
     def enr_reference(self) -> EnrReference:

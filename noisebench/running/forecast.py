@@ -15,8 +15,14 @@ For each group of points (the sequencer's grouping) the forecast
 3. builds the densities the method will read from the priors (DUT NF and gain, analyzer NF,
    ENR, temperatures: ``[expect]`` or, on the simulator, the scenario's declared models) and
    propagates their relative uncertainty through the method itself, which gives the NF
-   uncertainty for one average per reading; ``u ~ 1/sqrt(averages)`` then gives the averages
-   that reach the target and, with the trace time, the instrument time, capped by the limits.
+   uncertainty for one average per reading (and the Y significance (Y - 1)/u(Y));
+4. plays the schedule the sequencer will run through with those uncertainties
+   (:mod:`noisebench.running.forecast_schedule`): sweep-level Y-factor blocks (a pilot round
+   of every group, two noise-source switches per block) or group-by-group rounds, each round
+   planned as the sequencer plans it from ``u ~ 1/sqrt(averages)``, capped by the limits. That
+   gives the averages, acquisitions, switches and instrument time, and the groups whose
+   calibration Y will not be significant within the time limit (refused by the run: the
+   forecast warns, with the time limit that would do).
 
 It is a forecast: the adaptive sequencer measures what it needs; the forecast says what to
 expect and which points will hit their time limit.
@@ -29,7 +35,7 @@ sequencer imports its sizing helpers from here.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 import numpy as np
@@ -37,10 +43,12 @@ import numpy as np
 from noisebench.bench.acquisition import AcquisitionSettings, Detector, SweepMode
 from noisebench.bench.instruments import Analyzer
 from noisebench.errors import InputError, MeasurementError
+from noisebench.running.forecast_schedule import Timing
 from noisebench.running.groups import PointGroup, plan_groups
 from noisebench.running.plan import Plan
 from noisebench.science.density import NoiseDensity
 from noisebench.science.filters import GAUSSIAN, frequency_power_correlation
+from noisebench.science.methods._common import Y_SIGNIFICANCE_SIGMAS
 from noisebench.science.physics import (
     BOLTZMANN_J_PER_K,
     T0_K,
@@ -408,7 +416,7 @@ def _converter_uncertainty_db(
 
 @dataclass(frozen=True)
 class PointForecast:
-    """Forecast for one frequency: averages per reading, instrument time (s), u (dB)."""
+    """Forecast for one frequency: averages (all readings), instrument time (s), u (dB)."""
 
     freq_hz: float
     averages: int
@@ -417,13 +425,26 @@ class PointForecast:
     calibration_time_s: float
     u_nf_db: float
     target_u_nf_db: float
-    limited_by: str | None  # None, "time_limit", "max_averages", "calibration"
+    # None, "time_limit", "max_averages", "calibration", "no signal", "weak Y" (the sequencer
+    # will refuse the point: its Y is not significant within the time limit)
+    limited_by: str | None
     rf_hz: float | None = None  # a converter's RF (freq_hz is then the IF the analyzer reads)
 
 
 @dataclass
 class PlanForecast:
+    """The points' forecasts and the schedule's totals: ``schedule`` (``per_sweep`` or
+    ``per_group``), noise-source ``switches`` and their ``settle_time_s``, analyzer
+    acquisitions (``traces``) and their ``trace_averages``; ``warnings``: one line each with
+    the fix (e.g. a time limit too tight for a weak Y)."""
+
     points: list[PointForecast]
+    schedule: str = "per_group"
+    switches: int = 0
+    settle_time_s: float = 0.0
+    traces: int = 0
+    trace_averages: int = 0
+    warnings: list[str] = field(default_factory=list)
 
     @property
     def measurement_time_s(self) -> float:
@@ -462,35 +483,13 @@ class PlanForecast:
             f"{format_duration(self.total_time_s)} of instrument time"
             + (f"; {limited} point(s) will not reach the target" if limited else "")
         )
+        schedule = "sweep-level blocks" if self.schedule == "per_sweep" else "group by group"
+        lines.append(
+            f"schedule: {schedule}; {self.switches} noise-source switches "
+            f"({format_duration(self.settle_time_s)} settling), {self.traces} acquisitions"
+        )
+        lines += [f"warning: {w}" for w in self.warnings]
         return "\n".join(lines)
-
-
-@dataclass(frozen=True)
-class TraceTiming:
-    """Instrument time of a group's traces: ``per_average_s`` per trace average,
-    ``per_trace_s`` once per trace (settling, set-up, read-out), and the most averages one
-    trace can hold (None: no limit; more are taken as several traces,
-    :func:`noisebench.science.trace_combine.split_averages`, each paying ``per_trace_s``)."""
-
-    per_average_s: float
-    per_trace_s: float
-    max_per_trace: int | None = None
-
-    def traces(self, rounds: list[int], traces_per_round: int) -> int:
-        """Traces one reading takes: rounds of ``rounds[i]`` averages, each round
-        ``traces_per_round`` traces sharing them, every trace split at ``max_per_trace``."""
-        from noisebench.science.trace_combine import split_averages
-
-        count = 0
-        for averages in rounds:
-            per_trace = max(1, math.ceil(averages / traces_per_round))
-            count += traces_per_round * len(split_averages(per_trace, self.max_per_trace))
-        return count
-
-    def reading_s(self, rounds: list[int], traces_per_round: int) -> float:
-        """Instrument seconds of one reading (one state) taken in ``rounds``."""
-        traces = self.traces(rounds, traces_per_round)
-        return sum(rounds) * self.per_average_s + traces * self.per_trace_s
 
 
 def _max_per_trace(plan: Plan, analyzer: Any) -> int | None:
@@ -509,7 +508,7 @@ def _max_per_trace(plan: Plan, analyzer: Any) -> int | None:
 
 def _group_settings(
     plan: Plan, group: PointGroup, analyzer: Any
-) -> tuple[AcquisitionSettings, TraceTiming]:
+) -> tuple[AcquisitionSettings, Timing]:
     """(applied settings for 1 average, trace timing)."""
     most = _max_per_trace(plan, analyzer)
     if analyzer is not None:
@@ -518,30 +517,71 @@ def _group_settings(
         analyzer.configure(group.request(11))
         t11 = analyzer.expected_acquisition_time_s()
         per_average = (t11 - t1) / 10.0
-        return one, TraceTiming(per_average, max(t1 - per_average, 0.0), most)
+        return one, Timing(per_average, max(t1 - per_average, 0.0), most)
     settings = nominal_settings(group, 1, plan.expect.sweep_time_factor)
     assert settings.sweep_time_s is not None  # nominal_settings always sets it
-    return settings, TraceTiming(float(settings.sweep_time_s), plan.expect.overhead_s, most)
+    return settings, Timing(float(settings.sweep_time_s), plan.expect.overhead_s, most)
+
+
+def _switched(plan: Plan, groups: int, settle_s: float) -> bool:
+    """``SwitchedSweep._switched``: whether the run reads Y-factor in sweep-level blocks."""
+    if plan.method is not Method.Y_FACTOR or plan.conversion is not None:
+        return False
+    mode = plan.switching.mode
+    if mode != "auto":
+        return mode == "per_sweep"
+    return groups > 1 and settle_s > 0
+
+
+def _block_limit_s(plan: Plan) -> float:
+    """``SwitchedSweep._block_limit_s``."""
+    from noisebench.running.sequencer_switched import CURVATURE_SHARE
+
+    sw = plan.switching
+    limit = sw.max_block_s
+    if sw.drift_curvature_db_per_s2:
+        target = plan.acquisition.target_u_nf_db
+        limit = min(limit, math.sqrt(2 * CURVATURE_SHARE * target / sw.drift_curvature_db_per_s2))
+    return limit
+
+
+@dataclass
+class _PointNeed:
+    freq_hz: float
+    rf_hz: float | None
+    target: float
+    meas_u1: float = math.inf  # inf: no signal
+    fix_u1: float = 0.0
+    cal_u1: float = 0.0
+    cal_z1: float = math.inf
+    meas_z1: float = math.inf
 
 
 def forecast_plan(plan: Plan, *, model: BenchModel | None = None) -> PlanForecast:
-    """Forecast every point of ``plan``.
+    """Forecast every point of ``plan``: the schedule the sequencer will run (sweep-level
+    blocks or group by group, :mod:`noisebench.running.forecast_schedule`) played through
+    with the uncertainties the radiometer equation predicts.
 
     ``model``: a model of the bench (None: the one the plan's bench address offers, e.g. the
     simulated bench's, else the plan's ``[expect]`` priors)."""
+    from noisebench.running.forecast_schedule import GroupNeed, play_per_group, play_per_sweep
+
     if model is None:
         from noisebench.bench.registry import bench_model
 
         model = bench_model(plan.bench)
     source_k = _source_temperature(plan, model)
     settle_s = model.settle_time_s if model is not None else plan.bench.noise_source.settle_time_s
-    out: list[PointForecast] = []
     from noisebench.bench.registry import settings_analyzer
 
     analyzer = settings_analyzer(plan.bench, model)
+    y_factor = plan.method is Method.Y_FACTOR
     calibrated_ifs: set[float] = set()
+    needs: list[tuple[PointGroup, list[_PointNeed]]] = []
+    groups: list[GroupNeed] = []
     for group in plan_groups(plan.points()):
         settings, timing = _group_settings(plan, group, analyzer)
+        points = []
         for f in group.freqs_hz:
             if plan.conversion is not None:
                 priors = _converter_priors(plan, group, f, source_k, model)
@@ -550,16 +590,166 @@ def forecast_plan(plan: Plan, *, model: BenchModel | None = None) -> PlanForecas
             else:
                 priors = _declared_priors(plan, f, source_k)
             rel = math.sqrt(band_relative_variance(settings, f, group.band_hz))
-            point = _forecast_point(
-                plan, group, f, priors, rel, timing, len(group.freqs_hz), settle_s
+            points.append(_point_need(plan, group, f, priors, rel))
+        needs.append((group, points))
+        live = [p for p in points if math.isfinite(p.meas_u1)]
+        if not live:
+            continue
+        calibrate = True
+        if plan.conversion is not None:  # calibrations are found by IF: a fixed IF once
+            calibrate = not set(group.freqs_hz) <= calibrated_ifs
+            calibrated_ifs.update(group.freqs_hz)
+        groups.append(
+            GroupNeed(
+                index=group.index,
+                share=len(group.freqs_hz),
+                policy=group.policy,
+                timing=timing,
+                y_factor=y_factor,
+                cal_u1=max(p.cal_u1 for p in live),
+                cal_target=plan.calibration.target_ratio * group.policy.target_u_nf_db,
+                meas_u1=[p.meas_u1 for p in live],
+                fix_u1=[p.fix_u1 for p in live],
+                cal_z1=min(p.cal_z1 for p in live),
+                meas_z1=min(p.meas_z1 for p in live),
+                calibrate=calibrate,
             )
-            if plan.conversion is not None:
-                # calibrations are found by IF: a fixed-IF sweep calibrates once
-                if f in calibrated_ifs:
-                    point = replace(point, calibration_averages=0, calibration_time_s=0.0)
-                calibrated_ifs.add(f)
-            out.append(point)
-    return PlanForecast(out)
+        )
+    if _switched(plan, len(groups), settle_s):
+        played = play_per_sweep(groups, settle_s, _block_limit_s(plan))
+    else:
+        guard = plan.safety.dut_max_gain_db is None or plan.expect.dut_nf_db is None
+        played = play_per_group(groups, settle_s, cold_look=y_factor and guard)
+    return _assemble(plan, needs, played)
+
+
+def _point_need(
+    plan: Plan, group: PointGroup, freq_hz: float, priors: Priors, rel1: float
+) -> _PointNeed:
+    """The point's uncertainties and Y significance at one average per reading."""
+    meas, cal = (
+        (("hot", "cold"), ("hot_cal", "cold_cal"))
+        if plan.method is Method.Y_FACTOR
+        else (("dut",), ("floor",))
+    )
+    rf = priors.conversion.rf_hz if priors.conversion is not None else None
+    need = _PointNeed(freq_hz, rf, group.policy.target_u_nf_db)
+    try:
+        need.meas_u1 = point_uncertainty_db(plan.method, freq_hz, priors, dict.fromkeys(meas, rel1))
+        need.cal_u1 = _calibration_design_u1(plan, freq_hz, priors, rel1)
+        need.fix_u1 = point_uncertainty_db(plan.method, freq_hz, priors, dict.fromkeys(cal, rel1))
+    except MeasurementError:
+        need.meas_u1 = math.inf
+        return need
+    if plan.method is Method.Y_FACTOR:
+        r = priors.readings
+        need.cal_z1 = _significance1(r["hot_cal"], r["cold_cal"], rel1)
+        need.meas_z1 = _significance1(r["hot"], r["cold"], rel1)
+    return need
+
+
+def _significance1(hot: float, cold: float, rel1: float) -> float:
+    """(Y - 1)/u(Y) of a pair read with one average each (``y_significance``: u(Y)/Y is the
+    two readings' relative uncertainties added in quadrature)."""
+    y = hot / cold
+    return (y - 1.0) / (y * math.sqrt(2.0) * rel1) if rel1 > 0 else math.inf
+
+
+def _assemble(plan: Plan, needs: list, played: Any) -> PlanForecast:
+    """Per point: the played group's averages and time (shared by its points), the u they give
+    and what limits it; the plan's totals and warnings."""
+    from noisebench.running.forecast_schedule import PhaseRun
+
+    states = 2 if plan.method is Method.Y_FACTOR else 1
+    out: list[PointForecast] = []
+    weak: list[tuple[PointGroup, PhaseRun, float]] = []
+    last_cal = PhaseRun(done=1, stop="target")
+    for group, points in needs:
+        share = len(group.freqs_hz)
+        cal = played.calibration.get(group.index)
+        if cal is not None:
+            last_cal = cal
+        cal_used = cal if cal is not None else last_cal  # a converter's shared IF calibration
+        meas = played.measurement.get(group.index)
+        for p in points:
+            if not math.isfinite(p.meas_u1):
+                out.append(
+                    PointForecast(
+                        p.freq_hz, 0, 0, 0.0, 0.0, math.inf, p.target, "no signal", p.rf_hz
+                    )
+                )
+                continue
+            cal_time = cal.time_s / share if cal is not None else 0.0
+            cal_avg = cal.done * states if cal is not None else 0
+            if meas is None:  # refused: the calibration's Y is not significant
+                out.append(
+                    PointForecast(
+                        p.freq_hz, 0, cal_avg, 0.0, cal_time, math.inf, p.target, "weak Y", p.rf_hz
+                    )
+                )
+                continue
+            n_cal = max(cal_used.done, 1)
+            u = math.sqrt(p.meas_u1**2 / meas.done + p.fix_u1**2 / n_cal)
+            limited = None
+            if u > p.target * (1 + 1e-9):
+                limited = meas.stop if meas.stop != "target" else None
+            if meas.stop == "weak_y":
+                limited = "weak Y"
+            out.append(
+                PointForecast(
+                    p.freq_hz,
+                    meas.done * states,
+                    cal_avg,
+                    meas.time_s / share,
+                    cal_time,
+                    u,
+                    p.target,
+                    limited,
+                    p.rf_hz,
+                )
+            )
+        if cal is not None and cal.stop == "weak_y":
+            z1 = min(p.cal_z1 for p in points if math.isfinite(p.meas_u1))
+            weak.append((group, cal, z1))
+    runs = [*played.calibration.values(), *played.measurement.values()]
+    forecast = PlanForecast(
+        out,
+        schedule=played.schedule,
+        switches=played.switches,
+        settle_time_s=played.settle_s,
+        traces=sum(r.traces for r in runs),
+        trace_averages=sum(r.trace_averages for r in runs),
+    )
+    if weak:
+        forecast.warnings.append(_weak_warning(plan, weak))
+    return forecast
+
+
+def _weak_warning(plan: Plan, weak: list) -> str:
+    """The refused groups and the time limit that lets the weakest reach a usable Y: the
+    averages at which (Y - 1)/u(Y) reaches twice the refusal threshold (what the sequencer
+    asks for, ``averages_for_significance``) at the time per average its calibration used."""
+    from noisebench.running.progress import format_duration
+
+    points = sum(len(g.freqs_hz) for g, _, _ in weak)
+    wanted = 0.0
+    for group, run, z1 in weak:
+        n = (2 * Y_SIGNIFICANCE_SIGMAS / z1) ** 2 if z1 > 0 else math.inf
+        wanted = max(wanted, run.time_s / max(run.done, 1) * n / len(group.freqs_hz))
+    limit = plan.acquisition.time_limit_s
+    first = weak[0][0]
+    fix = (
+        f"raise acquisition.time_limit_s to about {format_duration(wanted)}, or add a "
+        "preamplifier (a larger Y)"
+        if math.isfinite(wanted)
+        else "the source's excess noise does not reach the analyzer: add a preamplifier or "
+        "take out attenuation"
+    )
+    return (
+        f"{points} point(s) (first {first.describe()}) will be refused: the system "
+        f"calibration's Y - 1 is not {Y_SIGNIFICANCE_SIGMAS:g} u above zero within "
+        f"time_limit_s = {limit:g} s per point; {fix}"
+    )
 
 
 def _source_temperature(plan: Plan, model: BenchModel | None) -> float:
@@ -608,105 +798,3 @@ def _calibration_design_u1(plan: Plan, freq_hz: float, priors: Priors, rel1: flo
         design_gain_db=_design_gain_db(plan, priors),
         t0_k=priors.t0_k,
     )
-
-
-def _rounds(n: int, policy: Any) -> list[int]:
-    """Averages of each round of readings the sequencer takes: a pilot round of
-    ``min_averages`` and, above it, one top-up round with the rest."""
-    pilot = min(n, int(policy.min_averages))
-    return [pilot] if n <= pilot else [pilot, n - pilot]
-
-
-def _switching_s(plan: Plan, n: int, policy: Any, settle_s: float) -> float:
-    """Noise-source settling of hot-cold-cold-hot rounds: a pilot round and one top-up."""
-    if plan.method is not Method.Y_FACTOR:
-        return 0.0
-    return (2 * len(_rounds(n, policy)) + 1) * settle_s
-
-
-def _readings_s(
-    plan: Plan, n: int, states: int, policy: Any, timing: TraceTiming, settle_s: float
-) -> float:
-    """Instrument seconds of ``states`` readings of ``n`` averages each: their averages, one
-    ``per_trace_s`` per trace (hot-cold-cold-hot rounds take two traces per state per round;
-    a trace beyond the analyzer's maximum averages is split into several), and the
-    noise-source settling."""
-    per_round = 2 if plan.method is Method.Y_FACTOR else 1
-    reading = timing.reading_s(_rounds(n, policy), per_round)
-    return states * reading + _switching_s(plan, n, policy, settle_s)
-
-
-def _averages_within(
-    plan: Plan, seconds: float, states: int, policy: Any, timing: TraceTiming, settle_s: float
-) -> int:
-    """Most averages per reading whose readings fit in ``seconds`` (at least 1)."""
-    lo, hi = 1, max(1, int(policy.max_averages))
-    if _readings_s(plan, hi, states, policy, timing, settle_s) <= seconds:
-        return hi
-    while hi - lo > 1:  # time grows with the averages: bisect
-        mid = (lo + hi) // 2
-        if _readings_s(plan, mid, states, policy, timing, settle_s) <= seconds:
-            lo = mid
-        else:
-            hi = mid
-    return lo
-
-
-def _forecast_point(
-    plan: Plan,
-    group: PointGroup,
-    freq_hz: float,
-    priors: Priors,
-    rel1: float,
-    timing: TraceTiming,
-    share: int,
-    settle_s: float,
-) -> PointForecast:
-    policy = group.policy
-    target = policy.target_u_nf_db
-    meas, cal = (
-        (("hot", "cold"), ("hot_cal", "cold_cal"))
-        if plan.method is Method.Y_FACTOR
-        else (("dut",), ("floor",))
-    )
-    try:
-        u_meas1 = point_uncertainty_db(plan.method, freq_hz, priors, dict.fromkeys(meas, rel1))
-        u_design1 = _calibration_design_u1(plan, freq_hz, priors, rel1)
-    except MeasurementError:
-        return PointForecast(freq_hz, 0, 0, 0.0, 0.0, math.inf, target, "no signal")
-    n_cal = _clip(math.ceil((u_design1 / (plan.calibration.target_ratio * target)) ** 2), policy)
-    n_cal = min(
-        n_cal,
-        # the calibration's readings within the time limit less one settling
-        _averages_within(
-            plan, policy.time_limit_s * share - settle_s, len(cal), policy, timing, 0.0
-        ),
-    )
-    cal_time = _readings_s(plan, n_cal, len(cal), policy, timing, settle_s) / share
-    u_fix = point_uncertainty_db(
-        plan.method, freq_hz, priors, dict.fromkeys(cal, rel1 / math.sqrt(n_cal))
-    )
-    room = target**2 - u_fix**2
-    limited = None
-    if room <= 0:
-        n, limited = policy.max_averages, "calibration"
-    else:
-        n = _clip(math.ceil(u_meas1**2 / room), policy)
-        if n == policy.max_averages and u_meas1**2 / n > room:
-            limited = "max_averages"
-    time_s = _readings_s(plan, n, len(meas), policy, timing, settle_s) / share
-    if time_s > policy.time_limit_s:
-        n = _averages_within(plan, policy.time_limit_s * share, len(meas), policy, timing, settle_s)
-        time_s = _readings_s(plan, n, len(meas), policy, timing, settle_s) / share
-        limited = limited or "time_limit"
-    u = math.sqrt(u_meas1**2 / n + u_fix**2)
-    if u <= target * (1 + 1e-9):
-        limited = None
-    rf = priors.conversion.rf_hz if priors.conversion is not None else None
-    return PointForecast(
-        freq_hz, n * len(meas), n_cal * len(cal), time_s, cal_time, u, target, limited, rf
-    )
-
-
-def _clip(n: int, policy: Any) -> int:
-    return int(min(max(n, policy.min_averages), policy.max_averages))

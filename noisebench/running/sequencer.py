@@ -243,6 +243,8 @@ class Sequencer(SwitchedSweep, GainStep, VerdictStep):
         except Exception as exc:  # noqa: BLE001 - a display aid never stops a run
             logger.debug("no forecast for the progress display: %s", exc)
             return None
+        for warning in forecast.warnings:  # e.g. calibrations the time limit will refuse
+            logger.warning("forecast: %s", warning)
         wanted = {p.freq_hz for p in todo}
         points = [p for p in forecast.points if p.freq_hz in wanted]
         if not points:

@@ -13,7 +13,7 @@ from typing import Any
 
 from noisebench.bench.acquisition import AcquisitionRequest, AcquisitionSettings, Trace
 from noisebench.bench.registry import BenchSession, Connection
-from noisebench.errors import InputError, MeasurementError, NoisebenchError
+from noisebench.errors import InputError, MeasurementError, NoisebenchError, UnverifiedStep
 from noisebench.running.calibration import (
     CalibrationStore,
 )
@@ -38,6 +38,12 @@ logger = logging.getLogger(__name__)
 
 
 PointHook = Callable[[PointResult], None]
+
+STEP_RETRIES = 2
+"""A step whose error-queue read was lost to a reconnect (:class:`UnverifiedStep`) is read
+again at most this many times (the drivers' own retries per operation: 2)."""
+
+Commit = Callable[[], None]
 
 
 @dataclass
@@ -154,6 +160,33 @@ class SequencerCore:
         logger.warning("%s not measured (%s): %s", group.describe(), stage, exc.message)
         self.progress.step_done(len(group.freqs_hz))  # the phase's bar still reaches its end
         writer.update_info(notes={**writer.info.notes, "skipped_points": self.skipped})
+
+    def _checked_step(self, read: Callable[[], list[Commit]]) -> None:
+        """Run ``read`` (acquisitions; it returns what accepting each reading does, nothing
+        accepted yet) as one step of the analyzer (``Analyzer.begin_step``/``end_step``),
+        then accept the readings once the step's error check came back clean. An error
+        discards them all and propagates as before; a check lost to a reconnect
+        (:class:`UnverifiedStep`) reads the step again, at most ``STEP_RETRIES`` times. The
+        instrument time spent stays charged (it was spent)."""
+        analyzer = self.session.bench.analyzer
+        for attempt in range(STEP_RETRIES + 1):
+            analyzer.begin_step()
+            try:
+                commits = read()
+                analyzer.end_step()
+            except UnverifiedStep as exc:
+                if attempt == STEP_RETRIES:
+                    raise
+                logger.warning(
+                    "%s; reading the step again (%d of %d)", exc, attempt + 1, STEP_RETRIES
+                )
+                continue
+            except BaseException:
+                analyzer.end_step(check=False)
+                raise
+            for commit in commits:
+                commit()
+            return
 
     def _corr(self) -> Corrections:
         """The run's corrections (resolved when the run starts)."""

@@ -11,8 +11,14 @@ in Y, for every point. Two switches serve the whole block, and it ends cold (the
 so the next block or phase starts without a switch and the run ends without one. The first
 cold pass reads every group of the block before the source goes hot, which is the power
 guard's cold look. (Started hot, a block reads hot-cold-cold-hot.) The calibration and the
-measurement each start with a pilot round of every group (``min_averages``), whose readings
-plan the next round; neither reads a first group alone.
+measurement each start with a pilot round (``min_averages``) of a spread of the groups: all of
+a segment's groups when it has at most ``PILOT_ALL``, else about the square root of their number,
+both ends included (``_pilot_indices``). The pilots' readings plan their own next round; the
+other groups are planned from them (the averages the pilots needed exactly, smoothed by a
+running median of three and interpolated in frequency, ``_plan_from_pilots``) and first read
+in the main round, so most points take four acquisitions a phase instead of eight, each
+round still a whole cold-hot-hot-cold block for every group it reads. Neither phase reads a
+first group alone.
 
 Drift the schedule cannot cancel (curvature, steps) is a property of the bench - the receiver
 gain, the source's output - seen alike at every frequency, so one group per block watches it:
@@ -33,6 +39,10 @@ than ``max_block_s`` of instrument time, shorter when a drift curvature is decla
 stays adaptive per group (the same radiometer planning as the per-group rounds); a block after
 the first holds only the groups still short of their target, and each group's points are
 journalled as soon as it stops.
+
+Size: one schedule - the blocks, the drift monitor, the pilots and the plans drawn from them
+serve the calibration and the measurement alike, and splitting them would spread one
+round's bookkeeping (``_GroupRun``) over several modules.
 """
 
 from __future__ import annotations
@@ -51,7 +61,7 @@ from noisebench.errors import MeasurementError, YNotSignificantError
 from noisebench.running.calibration import CalibrationEntry, CalibrationKind
 from noisebench.running.groups import PointGroup
 from noisebench.running.safety import PowerCheck
-from noisebench.running.sequencer_core import _GroupOutcome, _Readings
+from noisebench.running.sequencer_core import Commit, _GroupOutcome, _Readings
 from noisebench.running.sequencer_measurement import MeasurementSteps
 from noisebench.science.averaging import TimeBudget, averages_for_target
 from noisebench.science.density import NoiseDensity
@@ -94,9 +104,39 @@ margins 1.1, 1.05 and 1.02 needed the same switches (8 or 10 per sweep), and the
 took 1.30x, 1.25x and 1.22x its radiometer minimum on average (1.03: 1.23x, 1.17-1.50x).
 A round the scatter test widens (excess scatter) still takes its extra round, as it must."""
 
+PILOT_ALL = 4
+"""A policy's groups up to this many all read the pilot round; of more, ``max(PILOT_ALL,
+ceil(sqrt(n)))`` spread evenly over them (both ends included) do, see ``_pilot_indices``."""
+
+CALIBRATION_EXTRA_SHARE = 0.5
+"""A calibration group planned from its neighbours' pilots takes up to this share of its
+interpolated need on top of the planning margin (the measurement's: none). The through path's
+Y is large, so the calibration needs few averages (4-7 a state at 0.05 dB on
+``scripts/bench_accuracy.py``'s bench), and a pilot's estimate of that need from
+``min_averages`` scatters by tens of percent (3-7 over nine groups of a flat band, where the
+measurement's pilots agreed within 82-86): with the margin alone, one group in nine fell short
+and cost the sweep a round (two settling times) in most seeds. The extra is capped at what it
+insures against, one round's settling shared by the planned groups (``_plan_from_pilots``)."""
+
 CURVATURE_SHARE = 0.1
 """With a declared drift curvature b (dB/s^2), a block of length T leaves at most b T^2 / 2 in
 Y; blocks are kept short enough that this stays below this share of the target."""
+
+
+def _median3(values: tuple[float, ...]) -> tuple[float, ...]:
+    """Running median of three with Tukey's end-point rule (the end value, its neighbour's,
+    and the straight line through the two next ones, extrapolated: Tukey, *Exploratory Data
+    Analysis*, 1977, ch. 7): one pilot's outlying estimate does not move its neighbours' plans,
+    while a monotone trend passes unchanged."""
+    n = len(values)
+    if n < 3:
+        return tuple(values)
+    out = [float(np.median(values[i - 1 : i + 2])) for i in range(1, n - 1)]
+    first = float(np.median([values[0], out[0], 3 * out[0] - 2 * out[1] if n > 3 else values[0]]))
+    last = float(
+        np.median([values[-1], out[-1], 3 * out[-1] - 2 * out[-2] if n > 3 else values[-1]])
+    )
+    return (first, *out, last)
 
 
 @dataclass
@@ -206,23 +246,60 @@ class SwitchedSweep(MeasurementSteps):
         for run in block:
             run.budget.charge(settle / len(block))
 
-    def _read(self, run: _GroupRun, state: str, connection: Connection, monitor: bool) -> None:
+    def _read(self, run: _GroupRun, state: str, connection: Connection, monitor: bool) -> Commit:
         """One pass reading of a group; the block's drift monitor takes it as two acquisitions
-        of half the averages each."""
+        of half the averages each. Returns what accepting the reading does (the pass's error
+        check comes first, see ``_checked_step``); the time is charged at once."""
         n = run.per_trace
         split = monitor and n >= 2 * MIN_CHECK_AVERAGES
+        taken: list[tuple[float | None, list[NoiseDensity]]] = []
         for averages in (n // 2, n - n // 2) if split else (n,):
             before = run.budget.used_s
             started = self._now_s()
             densities = self._acquire(run.group, averages, run.budget)
             spent = run.budget.used_s - before
-            if split:  # the reading's middle on the bench's clock (drift lives in real time)
-                run.log.append((0.5 * (started + self._now_s()), state, densities))
+            # the reading's middle on the bench's clock (drift lives in real time)
+            taken.append((0.5 * (started + self._now_s()) if split else None, densities))
             self._clock_s += spent
-            run.readings.add(state, densities)
             run.settings = self.session.bench.analyzer.settings
-            if state == "cold" and connection is Connection.DUT:
-                self._guard().observe_cold([d.density_w_per_hz for d in densities])
+
+        def accept() -> None:
+            for middle, densities in taken:
+                if middle is not None:
+                    run.log.append((middle, state, densities))
+                run.readings.add(state, densities)
+                if state == "cold" and connection is Connection.DUT:
+                    self._guard().observe_cold([d.density_w_per_hz for d in densities])
+            self.progress.reading_done()
+
+        return accept
+
+    def _pass(
+        self,
+        order: list[_GroupRun],
+        state: str,
+        connection: Connection,
+        monitor: _GroupRun | None,
+    ) -> None:
+        """One pass over ``order`` as one analyzer step: its readings are accepted together
+        after the step's error check (``_checked_step``; a profile's ``error_batch``)."""
+
+        def read() -> list[Commit]:
+            commits: list[Commit] = []
+            for run in order:
+                if run.failed is not None:
+                    continue
+                try:
+                    commits.append(
+                        self._with_context(
+                            run.group, partial(self._read, run, state, connection, run is monitor)
+                        )
+                    )
+                except MeasurementError as exc:
+                    commits.append(partial(setattr, run, "failed", exc))
+            return commits
+
+        self._checked_step(read)
 
     def _run_block(self, block: list[_GroupRun], connection: Connection) -> None:
         """The four passes over ``block``. A group whose reading the physics refuses is left
@@ -243,20 +320,7 @@ class SwitchedSweep(MeasurementSteps):
         passes = ((first, forward), (not first, backward), (not first, forward), (first, backward))
         for hot, order in passes:
             self._switch_block(hot, block, connection)
-            for run in order:
-                if run.failed is not None:
-                    continue
-                try:
-                    self._with_context(
-                        run.group,
-                        partial(
-                            self._read, run, "hot" if hot else "cold", connection, run is monitor
-                        ),
-                    )
-                except MeasurementError as exc:
-                    run.failed = exc
-                else:
-                    self.progress.reading_done()
+            self._pass(order, "hot" if hot else "cold", connection, monitor)
         if monitor is None:
             return
         check = self._monitor_check(monitor)
@@ -317,6 +381,98 @@ class SwitchedSweep(MeasurementSteps):
                 decisions[run.group.index] = (None, *decision[1:])
 
     @staticmethod
+    def _pilot_indices(runs: list[_GroupRun]) -> set[int]:
+        """The groups (indices) that read the pilot round: of each policy's groups (a
+        segment's), all when there are at most ``PILOT_ALL``, else ``max(PILOT_ALL,
+        ceil(sqrt(n)))`` spread evenly over them, both ends included. The rest are planned
+        from the pilots on either side (``_plan_from_pilots``) and read first in the main
+        round: four acquisitions each instead of eight, while the pilots' share of a long
+        sweep falls as 1/sqrt(n) and their spacing still shrinks as the sweep gets denser."""
+        by_policy: list[tuple[Any, list[_GroupRun]]] = []
+        for run in runs:
+            for policy, members in by_policy:
+                if run.group.policy is policy or run.group.policy == policy:
+                    members.append(run)
+                    break
+            else:
+                by_policy.append((run.group.policy, [run]))
+        chosen: set[int] = set()
+        for _, members in by_policy:
+            n = len(members)
+            k = n if n <= PILOT_ALL else max(PILOT_ALL, math.ceil(math.sqrt(n)))
+            picks = {0} if k == 1 else {round(i * (n - 1) / (k - 1)) for i in range(k)}
+            chosen.update(members[i].group.index for i in picks)
+        return chosen
+
+    def _plan_from_pilots(
+        self,
+        pending: list[_GroupRun],
+        pilots: list[_GroupRun],
+        exact: dict[int, float],
+        extra_share: float = 0.0,
+    ) -> None:
+        """Per-trace averages of groups that skipped the pilot round: the averages the pilots
+        of the same policy needed exactly (``exact``, per state), smoothed over the pilots by a
+        running median of three (one pilot's unlucky estimate - its u widened by a scatter
+        test at ``min_averages`` - does not move its neighbours' plans) and interpolated
+        linearly in frequency on a log scale, times ``SWITCHED_MARGIN``, plus ``extra_share``
+        of it, at most the averages one round's settling would buy the planned groups (the
+        calibration's, see ``CALIBRATION_EXTRA_SHARE``); within the group's limits and time
+        budget. A group with no usable pilot of its policy (all refused, or none could
+        improve) keeps its pilot averages: its first round is then a pilot of its own."""
+        rate = self._rate_s or self._rate_from(pilots)
+        cap = self._settle_s() / (len(pending) * rate) if rate else math.inf
+        models: dict[int, tuple[tuple[float, ...], tuple[float, ...]] | None] = {}
+        for run in pending:
+            policy = run.group.policy
+            if id(policy) not in models:
+                models[id(policy)] = self._pilot_model(policy, pilots, exact)
+            model = models[id(policy)]
+            if model is None:
+                continue
+            need = math.exp(float(np.interp(run.group.center_hz, *model)))
+            planned = need * SWITCHED_MARGIN + min(extra_share * need, cap)
+            total = min(max(math.ceil(planned), policy.min_averages), policy.max_averages)
+            per_trace = max(1, math.ceil(total / 2))
+            if rate:
+                fits = run.budget.averages_that_fit(4, 4 * self._settle_s(), rate)
+                per_trace = max(1, min(per_trace, fits))
+            run.per_trace = per_trace
+
+    @staticmethod
+    def _pilot_model(
+        policy: Any, pilots: list[_GroupRun], exact: dict[int, float]
+    ) -> tuple[tuple[float, ...], tuple[float, ...]] | None:
+        """(pilot frequencies, log of their exact needs smoothed by ``_median3``) of one
+        policy's pilots (see ``_plan_from_pilots``); None without a usable pilot."""
+        known = sorted(
+            (p.group.center_hz, math.log(exact[p.group.index]))
+            for p in pilots
+            if p.group.index in exact
+            and exact[p.group.index] > 0
+            and (p.group.policy is policy or p.group.policy == policy)
+        )
+        if not known:
+            return None
+        xs, raw = zip(*known, strict=True)
+        return xs, _median3(raw)
+
+    def _after_pilots(
+        self,
+        still: list[_GroupRun],
+        pending: list[_GroupRun],
+        pilots: list[_GroupRun],
+        exact: dict[int, float],
+        extra_share: float = 0.0,
+    ) -> list[_GroupRun]:
+        """The next round's groups: those still short of their target and, after the pilot
+        round, the groups planned from it, in sweep order (blocks pack consecutive groups)."""
+        if not pending:
+            return still
+        self._plan_from_pilots(pending, pilots, exact, extra_share)
+        return sorted(still + pending, key=lambda r: r.group.index)
+
+    @staticmethod
     def _drift_note(run: _GroupRun) -> dict | None:
         """The drift monitors' result for a group's points: chi-square and degrees of freedom
         summed over the blocks that read it (None: no block had a monitor check)."""
@@ -348,7 +504,10 @@ class SwitchedSweep(MeasurementSteps):
             )
             for g in groups
         ]
-        active = list(runs)
+        pilots = self._pilot_indices(runs)
+        active = [r for r in runs if r.group.index in pilots]
+        pending = [r for r in runs if r.group.index not in pilots]
+        exact: dict[int, float] = {}  # averages per state each pilot needed exactly
         while active:
             self._round_progress(active)
             for block in self._blocks(active):
@@ -369,6 +528,8 @@ class SwitchedSweep(MeasurementSteps):
                     continue
                 done = run.readings.averages("hot")
                 weak = self._significance_need(run.group, kind, run.readings, done)
+                if pending and math.isfinite(u_worst):
+                    exact[run.group.index] = max(done * (u_worst / target) ** 2, weak or 0)
                 stop = None
                 if u_worst <= target and weak is None:
                     stop = "target"
@@ -408,7 +569,8 @@ class SwitchedSweep(MeasurementSteps):
                 self.calibrations.add(entry)
                 self.calibrations_measured += 1
                 self.progress.step_done(len(run.group.freqs_hz))
-            active = still
+            active = self._after_pilots(still, pending, active, exact, CALIBRATION_EXTRA_SHARE)
+            pending = []
         self._set_source_cold(TimeBudget(0.0))
         self._rate_s = self._rate_from(runs)
         writer.save_calibration(self.calibrations.to_dict())
@@ -461,7 +623,10 @@ class SwitchedSweep(MeasurementSteps):
         # also break the schedule's symmetry in time)
         self._set_source_cold(TimeBudget(0.0))
         calibrations = {r.group.index: self._calibration_for(r.group) for r in runs}
-        active = list(runs)
+        pilots = self._pilot_indices(runs)
+        active = [r for r in runs if r.group.index in pilots]
+        pending = [r for r in runs if r.group.index not in pilots]
+        exact: dict[int, float] = {}  # averages per state each pilot needed exactly
         while active:
             self._round_progress(active)
             for block in self._blocks(active):
@@ -477,6 +642,11 @@ class SwitchedSweep(MeasurementSteps):
                     run.release()  # refused by the physics
                 else:
                     decisions[run.group.index] = decided
+                    need = self._averages_at_target(
+                        decided[1], run.readings.averages("hot"), run.group.policy.target_u_nf_db
+                    )
+                    if pending and need is not None:
+                        exact[run.group.index] = need
             self._hold_lucky(active, decisions)
             still = []
             for run in active:
@@ -490,7 +660,8 @@ class SwitchedSweep(MeasurementSteps):
                 outcome = self._finish_group(run, stop, points, calibration)
                 run.release()
                 self._store_outcome(run.group, outcome, writer)
-            active = still
+            active = self._after_pilots(still, pending, active, exact)
+            pending = []
         self._set_source_cold(TimeBudget(0.0))
         self._rate_s = self._rate_from(runs) or self._rate_s
 

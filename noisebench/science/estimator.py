@@ -154,7 +154,10 @@ def estimate_densities(
             f"has {bands.size} values for {freqs.size} frequencies",
             fix="pass one band or one per frequency",
         )
-    bands = np.broadcast_to(bands.ravel(), freqs.shape)
+    # one band for every frequency, or one each (plain floats: no broadcast view per trace)
+    band_list = bands.ravel().tolist()
+    if len(band_list) == 1:
+        band_list *= freqs.size
     prepared = _prepare(
         trace,
         reject_spurs=reject_spurs,
@@ -162,9 +165,9 @@ def estimate_densities(
         known_lines_hz=known_lines_hz,
     )
     out = []
-    for i, (f, b) in enumerate(zip(freqs, bands, strict=True)):
+    for i, (f, b) in enumerate(zip(freqs.tolist(), band_list, strict=True)):
         try:
-            out.append(_estimate_band(prepared, float(f), float(b), min_points=min_points))
+            out.append(_estimate_band(prepared, f, b, min_points=min_points))
         except (InputError, MeasurementError) as exc:
             exc.add_context(freq_hz=float(f), index=i)
             raise
@@ -295,8 +298,12 @@ def _prepare(
     model = _cached(("model", key), lambda: point_model_for(s, field="trace.settings"))
     power, to_density = _linear_power(trace)
     power = power / model.mean_ratio()
-    zero_span = s.span_hz == 0 or trace.freq_hz.size == 1 or np.ptp(trace.freq_hz) == 0
-    spacing = 0.0 if zero_span else _uniform_spacing(trace.freq_hz)
+    f = trace.freq_hz
+    # zero span: all points at one frequency (no differences but zeros, as np.ptp(f) == 0);
+    # the differences then give the spacing too
+    steps = np.diff(f) if s.span_hz != 0 and f.size > 1 else None
+    zero_span = steps is None or not steps.any()
+    spacing = 0.0 if zero_span else _uniform_spacing(f, steps)
     rel_var, kernel = _kernel_of(trace, key, model, zero_span, spacing)
     excluded = np.zeros(power.size, dtype=bool)
     spurs = np.empty(0)
@@ -442,8 +449,9 @@ def _median(x: np.ndarray) -> float:
     return float(s[m]) if s.size % 2 else 0.5 * (float(s[m - 1]) + float(s[m]))
 
 
-def _uniform_spacing(freq_hz: np.ndarray) -> float:
-    d = np.diff(freq_hz)
+def _uniform_spacing(freq_hz: np.ndarray, steps: np.ndarray | None = None) -> float:
+    """The spacing of a uniform axis (``steps``: its ``np.diff`` when the caller has it)."""
+    d = np.diff(freq_hz) if steps is None else steps
     spacing = _mean(d)
     if spacing <= 0 or np.max(np.abs(d - spacing)) > 0.01 * abs(spacing):
         raise InputError(
@@ -817,12 +825,11 @@ def _find_spurs(
             noise_points = power[~excluded]  # marked points are no noise sample at all
     baseline = np.full(n, _median(noise_points) / median_ratio)
     for _ in range(50):
-        work = np.where(excluded, baseline * median_ratio, power)
-        if short:
-            # one median of all points, spurs included: a line moves it by one rank at most,
-            # while dropping excluded points would lower it and let the next noise peak cross
-            baseline = np.full(n, _median(noise_points) / median_ratio)
-        else:
+        # short: one median of all points, spurs included (the baseline above, the same in
+        # every pass): a line moves it by one rank at most, while dropping excluded points
+        # would lower it and let the next noise peak cross
+        if not short:
+            work = np.where(excluded, baseline * median_ratio, power)
             baseline = ndimage.median_filter(work, size=window, mode="mirror") / median_ratio
         hits = (power > tail_ratio * baseline) & ~excluded
         if not np.any(hits):
@@ -840,10 +847,9 @@ def _find_spurs(
             excluded |= np.abs(f - f[peak]) <= half
             spurs.append(float(f[peak]))
             widths.append(half)
-    if spurs:
-        logger.debug(
-            "excluded %d spur(s) at %s", len(spurs), ", ".join(map(format_frequency, spurs))
-        )
+    if not spurs:  # the common case: no line (empty float arrays, as below)
+        return excluded, np.empty(0), np.empty(0)
+    logger.debug("excluded %d spur(s) at %s", len(spurs), ", ".join(map(format_frequency, spurs)))
     order = np.argsort(spurs)
     return excluded, np.asarray(spurs)[order], np.asarray(widths)[order]
 
@@ -989,6 +995,8 @@ def _estimate_band(
             rel_u *= scatter_ratio
     density = mean * p.to_density
     f_used = p.freq_hz[sl][used]
+    # np.ptp(f_used); off zero span the axis is ascending (_uniform_spacing checked it)
+    width = float(np.ptp(f_used)) if p.zero_span else float(f_used[-1] - f_used[0])
     enbw = p.trace.settings.enbw_hz
     spurs = _spurs_touching(p, float(p.freq_hz[sl][0]), float(p.freq_hz[sl][-1]))
     return NoiseDensity(
@@ -996,7 +1004,7 @@ def _estimate_band(
         density_w_per_hz=density,
         u_density_w_per_hz=density * rel_u,
         independent_samples=n**2 / stats_.s1 / rel_var,
-        band_hz=float(np.ptp(f_used)) + enbw,
+        band_hz=width + enbw,
         bins_used=n,
         excluded_freq_hz=spurs,
         scatter_ratio=scatter_ratio,

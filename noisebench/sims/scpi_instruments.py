@@ -318,6 +318,9 @@ class ScpiInstrument:
         command = resolved.handler
         handler = command.getter if query else command.setter
         header = text.split(maxsplit=1)[0] if text.split() else text
+        refused = getattr(self.faults, "refuse_header", None)
+        if refused and not query and header.lstrip(":").upper() == refused.upper():
+            raise ScpiError(-221, f"{header} refused (fault switch)")
         if handler is None:
             form = "query form" if query else "set form"
             raise ScpiError(-113, f"{header} has no {form}")

@@ -75,6 +75,10 @@ class Faults:
       source never switches (a dead diode: the supply still measures its normal load current,
       only Y = 1 gives it away). Clearing it lets the source follow its drives again.
 
+    - ``refuse_header``: every set command whose header is this one (short form as sent, e.g.
+      ``FREQ:CENT``) is refused with -221 "Settings conflict" and not applied, the rest of
+      its line runs (an execution error, IEEE 488.2); ``None`` (default): off.
+
     - ``offline``: the instruments are unreachable (switched off, rebooting, cable out): open
       connections are dropped and new ones are reset as soon as they are accepted. Combine
       with :meth:`reboot` for an instrument that comes back with power-on settings.
@@ -90,6 +94,7 @@ class Faults:
         "truncate_block",
         "corrupt_block",
         "stuck_noise_source",
+        "refuse_header",
         "offline",
     )
 
@@ -103,6 +108,7 @@ class Faults:
         self.truncate_block = False
         self.corrupt_block = False
         self.stuck_noise_source = False
+        self.refuse_header: str | None = None
         self.offline = False
 
     def __setattr__(self, name: str, value: Any) -> None:
@@ -134,6 +140,7 @@ class Faults:
         self.truncate_block = False
         self.corrupt_block = False
         self.stuck_noise_source = False
+        self.refuse_header = None
         self.offline = False
 
     def _take_drop(self) -> tuple[bool, bool]:
