@@ -41,14 +41,18 @@ def _actual(plan, sim, folder):
 
 
 @pytest.mark.parametrize(
-    ("mode", "settle_s"), [("per_sweep", 0.3), ("per_group", 0.3)], ids=["sweep", "group"]
+    ("method", "mode", "settle_s"),
+    [("y_factor", "per_sweep", 0.3), ("y_factor", "per_group", 0.3), ("gain", "auto", 0.3)],
+    ids=["sweep", "group", "gain"],
 )
-def test_forecast_counts_the_switches_and_time_the_run_uses(tmp_path, mode, settle_s):
-    plan = make_plan("y_factor", freqs_hz=FREQS, target=0.1, switching={"mode": mode})
+def test_forecast_counts_the_switches_and_time_the_run_uses(tmp_path, method, mode, settle_s):
+    plan = make_plan(method, freqs_hz=FREQS, target=0.1, switching={"mode": mode})
     overrides = {"noise_source__settle_time_s": settle_s}
     forecast = forecast_plan(plan, model=SimulatedBenchModel(ideal_sim(4, **overrides)))
     seconds, switches, traces = _actual(plan, ideal_sim(4, **overrides), tmp_path / mode)
-    assert forecast.schedule == mode
+    assert forecast.schedule == ("per_group" if method == "gain" else mode)
+    if method == "gain":  # the source stays cold: group by group, no switch
+        assert forecast.switches == switches == 0 and forecast.settle_time_s == 0.0
     # per sweep: two switches per block, a pilot round and one planned round per phase, one
     # block each (4 groups far below max_block_s): 8; per group: each group's calibration and
     # measurement switch 3 times in the first round, 2 in each further one, once at the end

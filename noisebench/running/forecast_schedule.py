@@ -15,9 +15,11 @@ rounds the sequencer plans from its measured u can be played through with the ex
   at most 16x; Y-factor rounds are hot-cold-cold-hot (two traces per state): three switches
   in the first round, two in each further one, one back to cold at the end; a measurement
   without a bound of the DUT's output power first takes a cold look;
-- **per sweep** (``sequencer_switched.py``): every phase starts with a pilot round of every
-  group (``min_averages``, half per pass), each round is read in blocks of four passes with two
-  switches per block, the next round planned with margin 1.03 and growth at most 64x. The
+- **per sweep** (``sequencer_switched.py``): every phase starts with a pilot round of a
+  spread of the groups (``_pilot_indices``; ``min_averages``, half per pass), the others
+  planned from their expected need and read first in the main round; each round is read
+  in blocks of four passes with two switches per block, the next round planned with
+  margin 1.03 and growth at most 64x. The
   calibration's rounds are one block each (no rate is known yet); the measurement's are packed
   into blocks of at most ``max_block_s`` at the calibration's rate; the block's monitor (the
   group with most averages) reads each pass of 4 averages or more as two acquisitions.
@@ -39,7 +41,9 @@ from noisebench.running.sequencer_rounds import (
     PILOT_FRACTION_SWITCHED,
 )
 from noisebench.running.sequencer_switched import (
+    CALIBRATION_EXTRA_SHARE,
     MIN_CHECK_AVERAGES,
+    PILOT_ALL,
     SWITCHED_MARGIN,
     SWITCHED_ROUND_GROWTH,
 )
@@ -374,12 +378,18 @@ def _play_sweep_phase(
 ) -> None:
     for g in groups:
         runs[g.index].per_trace = max(1, math.ceil(g.policy.min_averages / 2))
-    active = list(groups)
+    pilots = _pilot_indices(groups)
+    active = [g for g in groups if g.index in pilots]
+    pending = [g for g in groups if g.index not in pilots]
     planned_stops: list[GroupNeed] = []  # groups that reached the target in a planned round
     rounds = 0
     while active:
         _play_blocks(active, runs, settle_s, packing, result, calibration)
         rounds += 1
+        if rounds == 1 and pending:
+            rate = packing[0] if packing is not None and packing[0] else None
+            rate = rate or _mean_rate([runs[g.index] for g in active])
+            _plan_pending(pending, runs, n_cal, calibration, settle_s, rate)
         still = []
         for g in active:
             run = runs[g.index]
@@ -404,7 +414,7 @@ def _play_sweep_phase(
                 )
                 continue
             still.append(g)
-        active = still
+        active = sorted(still + pending, key=lambda g: g.index) if rounds == 1 else still
     stragglers = round(STRAGGLER_SHARE * len(planned_stops))
     if stragglers:
         late = planned_stops[:stragglers]
@@ -412,6 +422,72 @@ def _play_sweep_phase(
             run = runs[g.index]
             run.per_trace = max(1, math.ceil(STRAGGLER_TOP_UP * run.done / 2))
         _play_blocks(late, runs, settle_s, packing, result, calibration)
+
+
+def _pilot_indices(groups: list[GroupNeed]) -> set[int]:
+    """``SwitchedSweep._pilot_indices``: of each policy's groups all up to ``PILOT_ALL``,
+    else ``max(PILOT_ALL, ceil(sqrt(n)))`` spread evenly, both ends included."""
+    by_policy: list[tuple[Any, list[GroupNeed]]] = []
+    for g in groups:
+        for policy, members in by_policy:
+            if g.policy is policy or g.policy == policy:
+                members.append(g)
+                break
+        else:
+            by_policy.append((g.policy, [g]))
+    chosen: set[int] = set()
+    for _, members in by_policy:
+        n = len(members)
+        k = n if n <= PILOT_ALL else max(PILOT_ALL, math.ceil(math.sqrt(n)))
+        picks = {0} if k == 1 else {round(i * (n - 1) / (k - 1)) for i in range(k)}
+        chosen.update(members[i].index for i in picks)
+    return chosen
+
+
+def _mean_rate(runs: list[PhaseRun]) -> float | None:
+    rates = [r.rate() for r in runs if r.rate() > 0]
+    return sum(rates) / len(rates) if rates else None
+
+
+def _exact_need(g: GroupNeed, n_cal: int, calibration: bool) -> float:
+    """Averages per reading at which the group's worst u equals its target exactly (what a
+    pilot measures and its neighbours are planned from)."""
+    if calibration:
+        return (g.cal_u1 / g.cal_target) ** 2
+    target = g.policy.target_u_nf_db
+    n_cal = max(n_cal, 1)
+    needs = [
+        r**2 / (target**2 - f**2 / n_cal)
+        for r, f in zip(g.meas_u1, g.fix_u1, strict=True)
+        if target**2 > f**2 / n_cal
+    ]
+    return max(needs) if needs else math.inf
+
+
+def _plan_pending(
+    pending: list[GroupNeed],
+    runs: dict[int, PhaseRun],
+    n_cal: dict[int, int],
+    calibration: bool,
+    settle_s: float,
+    rate: float | None,
+) -> None:
+    """``SwitchedSweep._plan_from_pilots`` with the expected needs (the pilots' interpolated
+    needs are, in expectation, the group's own): the exact need times the margin, plus the
+    calibration's extra share capped at one round's settling, within the limits."""
+    extra = CALIBRATION_EXTRA_SHARE if calibration else 0.0
+    cap = settle_s / (len(pending) * rate) if rate else math.inf
+    for g in pending:
+        need = _exact_need(g, n_cal.get(g.index, 0), calibration)
+        if not math.isfinite(need) or need <= 0:
+            continue  # no usable plan: its first round is a pilot of its own
+        planned = need * SWITCHED_MARGIN + min(extra * need, cap)
+        total = min(max(math.ceil(planned), g.policy.min_averages), g.policy.max_averages)
+        per_trace = max(1, math.ceil(total / 2))
+        if rate:
+            room = g.policy.time_limit_s * g.share - 4 * settle_s
+            per_trace = max(1, min(per_trace, max(0, int(room / (4 * rate)))))
+        runs[g.index].per_trace = per_trace
 
 
 def _play_blocks(
