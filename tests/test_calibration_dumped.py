@@ -8,6 +8,8 @@ from __future__ import annotations
 
 import json
 
+import numpy as np
+
 from noisebench.bench.acquisition import AcquisitionSettings
 from noisebench.running.calibration import (
     CalibrationEntry,
@@ -82,3 +84,17 @@ def test_store_dict_is_the_entries_json_and_shares_their_dicts():
     again = CalibrationStore.from_dict(json.loads(json.dumps(data)))
     assert again.entries[0] == entry
     assert again.entries[0].reading("cold", 1.0002e9) == densities["cold"][2]
+
+
+def test_store_dict_shares_plain_frequencies_and_summary_but_dumps_the_rest():
+    entry, _ = _entry()
+    entry.summary = [{"freq_hz": 1e9, "y_db": 4.12, "averages": 80, "flags": ["x"]}]
+    stored = CalibrationStore([entry]).to_dict()["entries"][0]
+    assert stored["freqs_hz"] is entry.freqs_hz and stored["summary"] is entry.summary
+    assert stored == json.loads(entry.model_dump_json())  # the same JSON as before
+    odd, _ = _entry()
+    odd.summary = [{"freq_hz": 1e9, "y_db": np.float64(4.12), "kind": CalibrationKind.SYSTEM}]
+    dumped = CalibrationStore([odd]).to_dict()["entries"][0]["summary"]
+    assert dumped is not odd.summary  # not plain JSON: dumped as pydantic does
+    assert dumped == [{"freq_hz": 1e9, "y_db": 4.12, "kind": "system"}]
+    assert type(dumped[0]["y_db"]) is float and type(dumped[0]["kind"]) is str

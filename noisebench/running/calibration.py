@@ -212,6 +212,22 @@ class CalibrationEntry(BaseModel):
         )
 
 
+def _plain_json(value: Any) -> bool:
+    """True when ``value`` is already what ``model_dump(mode="json")`` gives for it: plain
+    dicts with string keys, lists, strings, booleans, ints and finite floats (no subclasses:
+    a numpy float or an enum is dumped as something else)."""
+    kind = type(value)
+    if kind is float:
+        return math.isfinite(value)
+    if kind in (str, int, bool) or value is None:
+        return True
+    if kind is list:
+        return all(_plain_json(v) for v in value)
+    if kind is dict:
+        return all(type(k) is str and _plain_json(v) for k, v in value.items())
+    return False
+
+
 class CalibrationStore:
     """The calibrations of a bench session (shared by runs on the same bench).
 
@@ -283,7 +299,9 @@ class CalibrationStore:
         """JSON-able form (for ``RunWriter.save_calibration``): ``model_dump(mode="json")`` of
         each entry, except that densities sharing one settings object share one settings
         dict (the same JSON; a long sweep's calibration then holds one per group, not one per
-        reading), and the densities are the entry's own dicts (shared: never change them)."""
+        reading), and the densities, frequencies and summary are the entry's own dicts and
+        lists (shared: never change them; a frequency or summary that is not plain JSON, e.g.
+        a numpy float, is dumped as before)."""
         entries = []
         for e in self.entries:
             out = e.model_dump(mode="json", exclude={"densities"})
@@ -291,6 +309,10 @@ class CalibrationStore:
             out["densities"] = {
                 n: DumpedDensities.of(ds, shared).dumped for n, ds in e.densities.items()
             }  # the entry's own dicts, not copies (see DumpedDensities)
+            for name in ("freqs_hz", "summary"):  # the entry's own lists when already JSON
+                own = getattr(e, name)
+                if _plain_json(own) and own == out[name]:
+                    out[name] = own
             entries.append({k: out[k] for k in type(e).model_fields})
         return {"entries": entries}
 
