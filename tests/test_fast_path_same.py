@@ -9,6 +9,8 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import numpy as np
+
 from _sequencer_helpers import ideal_sim, make_plan
 
 import noisebench.results.store as store
@@ -36,6 +38,8 @@ def _run(folder: Path) -> tuple[bytes, list[dict], list[dict]]:
     assert sequencer.calibrations_measured == len(FREQS_HZ)  # the calibration path ran
     entries = [_unstamped(e) for e in record.info.calibration["entries"]]  # type: ignore[index]
     points = [_unstamped(p.model_dump(mode="json")) for p in record.points]
+    assert record.info.applied_settings  # the settings each frequency was measured with
+    entries.append({"applied_settings": record.info.applied_settings})
     return (folder / "results.csv").read_bytes(), points, entries
 
 
@@ -63,6 +67,19 @@ def _reference_pieces(value):
     return json.JSONEncoder(allow_nan=False, separators=(",", ":")).iterencode(value)
 
 
+def _reference_record_settings(self, settings, group, writer):
+    # the applied settings as recorded before: a dump per point, compared with every entry
+    if settings is None:
+        return
+    dump = settings.model_dump(mode="json", exclude={"center_hz", "averages"})
+    for entry in self._applied:
+        if entry["settings"] == dump:
+            entry["freqs_hz"].extend(group.freqs_hz)
+            return
+    self._applied.append({"settings": dump, "freqs_hz": list(group.freqs_hz)})
+    writer.update_info(applied_settings=self._applied)
+
+
 def test_calibrated_sweep_is_the_same_with_the_shortcuts_replaced(tmp_path, monkeypatch):
     fast = _run(tmp_path / "fast")
     with monkeypatch.context() as m:
@@ -70,6 +87,7 @@ def test_calibrated_sweep_is_the_same_with_the_shortcuts_replaced(tmp_path, monk
         m.setattr(estimator, "_settings_key", _reference_key)
         m.setattr(estimator, "_STATISTICS_CACHE", {})  # nothing kept under the other keys
         m.setattr(store, "_line_pieces", _reference_pieces)
+        m.setattr(Sequencer, "_record_settings", _reference_record_settings)
         reference = _run(tmp_path / "reference")
     assert fast[0].count(b"\n") == len(FREQS_HZ) + 1  # header and the points
     assert fast[0] == reference[0]  # results.csv byte for byte
@@ -115,3 +133,12 @@ def test_kept_request_is_the_same_object_and_equals_a_fresh_one(tmp_path):
     other = sequencer._request(groups[1], 4)
     assert other.center_hz != first.center_hz  # another group: its own request
     assert sequencer._request(groups[0], 8).averages == 8  # another count: its own
+
+
+def test_estimator_sum_is_numpy_sum_bit_for_bit():
+    # the estimator's undispatched sum of a kernel: np.sum's own pairwise add.reduce
+    rng = np.random.default_rng(17)
+    for n in (1, 2, 7, 8, 9, 15, 16, 17, 60, 129, 1000):
+        x = rng.random(n) * 10.0 ** rng.integers(-20, 3)
+        assert estimator._sum(x) == float(np.sum(x))
+        assert estimator._sum(x) == float(np.sum(x.tolist()))  # and of a list

@@ -141,6 +141,7 @@ class SequencerCore:
         # (group, averages, analyzer) ids -> (group, analyzer, predicted request): _request
         self._requests: dict[tuple[int, int, int], tuple[Any, Any, AcquisitionRequest]] = {}
         self._applied: list[dict[str, Any]] = []
+        self._applied_by_key: dict[tuple, dict[str, Any]] = {}  # settings values -> entry
         self._measured_gain: dict[float, tuple[float, float]] = {}
         self._prior: dict[str, int] = {}  # averages per reading the last group needed
         self._unmeasurable: set[int] = set()
