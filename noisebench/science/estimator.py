@@ -294,7 +294,7 @@ def _prepare(
             value=threshold_sigma,
             fix="use e.g. 5",
         )
-    key = s.model_copy(update={"center_hz": 1.0})  # what the statistics depend on
+    key = _settings_key(s)  # what the statistics depend on
     model = _cached(("model", key), lambda: point_model_for(s, field="trace.settings"))
     power, to_density = _linear_power(trace)
     power = power / model.mean_ratio()
@@ -344,6 +344,16 @@ def _prepare(
     )
 
 
+def _settings_key(s: AcquisitionSettings) -> tuple:
+    """The applied settings but the centre, as a key of the kept statistics: the field values
+    in a tuple (the model is frozen; its own hash and equality compare the same values, at
+    several times the cost of a tuple's on every trace)."""
+    return (type(s), tuple(s.__dict__.values())[1:])
+
+
+assert next(iter(AcquisitionSettings.model_fields)) == "center_hz"  # what _settings_key drops
+
+
 _STATISTICS_CACHE: dict[tuple, Any] = {}
 _STATISTICS_CACHE_SIZE = 512
 
@@ -366,7 +376,7 @@ _MISSING = object()
 
 
 def _kernel_of(
-    trace: Trace, key: AcquisitionSettings, model: PointModel, zero_span: bool, spacing: float
+    trace: Trace, key: tuple, model: PointModel, zero_span: bool, spacing: float
 ) -> tuple[float | None, np.ndarray]:
     """(predicted relative variance of a point or None, correlation kernel of the point
     values), kept per (settings without the centre, points, exact point spacing)."""
