@@ -29,7 +29,7 @@ from test_drivers_compound import (
     retune_read_back,
     warm_read,
 )
-from test_drivers_protocol import IDN
+from test_drivers_protocol import IDN, REQUEST_COMMANDS, readback, sets
 
 from noisebench.drivers import ScpiAnalyzer, load_profile
 from noisebench.drivers.profile import ProfileError, parse_profile
@@ -192,6 +192,26 @@ def test_after_an_instrument_error_the_read_goes_alone_again():
         with pytest.raises(InstrumentError):
             sa.acquire_trace()
         sa.configure(REQUEST)
+        assert np.array_equal(sa.acquire_trace().values, VALUES.astype(float))
+
+
+def test_with_an_error_read_after_every_command_each_read_goes_alone():
+    # error_check = "each" (bringing up an instrument): no compound lines, so every READ?
+    # goes alone with its own error read: 2 units per acquisition instead of INIT:IMM, its
+    # error read, *OPC?, the trace query and its error read
+    each = parse_profile(GENERIC_TEXT.replace('error_check = "step"', 'error_check = "each"'))
+    assert each.analyzer.acquisition.read == "READ?"
+    dialogue = (
+        [("*IDN?", IDN), ("*CLS", None)]
+        + sets(*REQUEST_COMMANDS)
+        + readback()
+        + [("SYST:ERR?", OK)]
+        + sets("FORM REAL,32", "FORM:BORD NORM")
+        + [("READ?", ieee_block(VALUES)), ("SYST:ERR?", OK)] * 2
+    )
+    with replay_dialogue(dialogue, lambda t: ScpiAnalyzer(t, each)) as sa:
+        sa.configure(REQUEST)
+        sa.acquire_trace()
         assert np.array_equal(sa.acquire_trace().values, VALUES.astype(float))
 
 

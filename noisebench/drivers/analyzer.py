@@ -599,11 +599,13 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         # accepted alone (the first acquisition after connecting sends them apart)
         compound = self._channel.compound and self.transport.reads_block_then_text
         combined = compound and self._started
-        one_line = compound and self._one_line(settings)
-        single = self.spec.acquisition.read if one_line else None
-        if single is not None and not self._read_started:
-            # the profile's read query (start, wait and trace in one) goes alone once
-            # after connecting, its error read apart, before it rides in compound lines
+        usable = self._one_line(settings)
+        one_line = compound and usable
+        single = self.spec.acquisition.read if usable else None
+        if single is not None and not (compound and self._read_started):
+            # the profile's read query (start, wait and trace in one) goes alone, its error
+            # read apart: once after connecting before it rides in compound lines, and
+            # always without compound lines (error_check = "each")
             elapsed, values = self._acquire_in_one_line(settings, alone=True)
         elif one_line and (single is not None or combined):
             # in a step (error_batch): the queue is read in every error_batch-th line and at

@@ -861,7 +861,8 @@ class AcquisitionProfile(_Section):
         description="one query that starts an acquisition, waits for it and returns its "
         "trace (SCPI-1999 measurement instruction READ? = ABORt;INITiate;FETCh?), e.g. "
         "'READ?'; with compound lines one acquisition is held settings, this and the error "
-        "query; false (the default): not available, start, wait and trace query are sent",
+        "query (with error_check 'each' it goes alone, then the error query); false (the "
+        "default): not available, start, wait and trace query are sent",
     )
     poll_query: str = "*ESR?"
     poll_mask: int = Field(default=1, ge=1, le=255)
