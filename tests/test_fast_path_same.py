@@ -10,7 +10,6 @@ import json
 from pathlib import Path
 
 import numpy as np
-
 from _sequencer_helpers import ideal_sim, make_plan
 
 import noisebench.results.store as store
