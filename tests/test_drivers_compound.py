@@ -13,12 +13,17 @@ import pytest
 from test_drivers_protocol import IDN, OK, REQUEST, REQUEST_COMMANDS, connect, readback
 
 from noisebench.drivers import ScpiAnalyzer, load_profile
+from noisebench.drivers.profile import parse_profile
 from noisebench.drivers.protocol import RECOVER, ieee_block, replay_dialogue
 from noisebench.drivers.scpi_channel import compound_line
 from noisebench.drivers.transport import BlockError
 from noisebench.errors import InstrumentError
 
-STEP = load_profile("generic")
+GENERIC_TEXT = open(load_profile("generic").source, encoding="utf-8").read()
+READ_LINE = '\nread = "READ?"\n'
+# the start, wait and trace-query path: the generic profile without its single read query
+# (tests/test_drivers_read_query.py covers the generic profile's READ? path)
+STEP = parse_profile(GENERIC_TEXT.replace(READ_LINE, "\nread = false\n"), "generic_no_read.toml")
 VALUES = np.linspace(-90.0, -80.0, 401, dtype=np.float32)
 AT_2G = REQUEST.model_copy(update={"center_hz": 2e9})
 
@@ -78,6 +83,36 @@ def retune_read_back(center: str = "2000000000", reply: str = "2.0E+09") -> list
 def warm() -> list:
     """Both centres verified, the start accepted, the analyzer left at 2 GHz."""
     return configured() + first_acquisition() + retune_read_back() + compound_acquisition()
+
+
+# the generic profile's single query that starts, waits and fetches (SCPI-1999 READ?)
+GENERIC = load_profile("generic")
+
+
+def first_read() -> list:
+    """With ``read = "READ?"`` the first acquisition after connecting sends it alone, its
+    error read apart (a command error cannot hide in a compound line)."""
+    return [
+        ("FORM REAL,32", None),
+        ("FORM:BORD NORM", None),
+        ("READ?", ieee_block(VALUES)),
+        ("SYST:ERR?", OK),
+    ]
+
+
+def read_line(*held: str, errors: bool = True) -> str:
+    """One acquisition with READ?: held settings, the read query and the step's error query
+    (``errors=False``: inside a step, left to the step's read)."""
+    return compound_line([*held, "READ?", *(["SYST:ERR?"] if errors else [])])
+
+
+def read_acquisition(*held: str) -> list:
+    return [(read_line(*held), block_then(OK))]
+
+
+def warm_read() -> list:
+    """As :func:`warm`, with the generic profile's READ?."""
+    return configured() + first_read() + retune_read_back() + read_acquisition()
 
 
 def test_compound_line_roots_every_unit_after_the_first():
@@ -309,7 +344,7 @@ def test_one_acquisition_is_one_line_whose_deadline_covers_acquisition_and_trans
 
 
 def test_a_profile_without_a_wait_command_starts_and_fetches_in_two_lines(tmp_path):
-    text = open(STEP.source, encoding="utf-8").read()
+    text = GENERIC_TEXT.replace(READ_LINE, "\nread = false\n")
     assert '\nwait = "*WAI"\n' in text
     path = tmp_path / "no_wait.toml"
     path.write_text(text.replace('\nwait = "*WAI"\n', "\nwait = false\n"))

@@ -48,11 +48,13 @@ from noisebench.science.filters import FilterKind
 IDN = "noisebench,test analyzer,0,1"
 OK = '0,"No error"'
 # these dialogues read the error queue after every command (the generic profile reads it once
-# per step; test_error_check_per_step below has that dialogue)
+# per step; test_error_check_per_step below has that dialogue) and start, wait for and fetch
+# each trace apart (read = false; tests/test_drivers_read_query.py has the READ? dialogues)
 GENERIC = parse_profile(
     open(load_profile("generic").source, encoding="utf-8")
     .read()
-    .replace('error_check = "step"', 'error_check = "each"'),
+    .replace('error_check = "step"', 'error_check = "each"')
+    .replace('\nread = "READ?"\n', "\nread = false\n"),
     load_profile("generic").source,
 )
 

@@ -22,14 +22,15 @@ from test_drivers_compound import (
     REQUEST,
     VALUES,
     block_then,
-    compound_line,
-    warm,
+    read_line,
+    warm_read,
 )
 
 from noisebench.bench.registry import open_bench, simulated_enr_table
 from noisebench.drivers import ScpiAnalyzer, load_profile
 from noisebench.drivers.profile import ProfileError
 from noisebench.drivers.protocol import ieee_block, replay_dialogue
+from noisebench.drivers.scpi_channel import split_reply_units
 from noisebench.errors import InstrumentError, UnverifiedStep
 from noisebench.running import sequencer_core
 from noisebench.running.plan import parse_plan
@@ -50,15 +51,14 @@ def profile_with(tmp_path: Path, batch: int) -> Path:
 
 
 def batched(*held: str) -> tuple[str, bytes]:
-    """One acquisition of a step, its error read left to the step: no error query, and the
-    reply is the block alone."""
-    return (compound_line([*held, "INIT:IMM", "*WAI", "TRAC? TRACE1"]), ieee_block(VALUES))
+    """One acquisition of a step (the generic profile's READ?), its error read left to the
+    step: no error query, and the reply is the block alone."""
+    return (read_line(*held, errors=False), ieee_block(VALUES))
 
 
 def read_in_line(*held: str) -> tuple[str, bytes]:
     """The acquisition that carries the step's error read (the batch is full)."""
-    line = compound_line([*held, "INIT:IMM", "*WAI", "TRAC? TRACE1", "SYST:ERR?"])
-    return (line, block_then(OK))
+    return (read_line(*held), block_then(OK))
 
 
 # --------------------------------------------------------------------------- the dialogue
@@ -79,7 +79,7 @@ def test_a_batch_larger_than_the_error_reads_allowed_is_refused(tmp_path):
 
 
 def test_a_step_reads_the_error_queue_once_for_its_acquisitions():
-    dialogue = warm() + [
+    dialogue = warm_read() + [
         batched("FREQ:CENT 1000000000"),
         batched("FREQ:CENT 2000000000"),
         ("SYST:ERR?", OK),  # the step's end
@@ -100,7 +100,7 @@ def test_a_step_reads_the_error_queue_once_for_its_acquisitions():
 
 def test_the_batch_is_bounded_by_error_batch(tmp_path):
     profile = load_profile(profile_with(tmp_path, 2))
-    dialogue = warm() + [
+    dialogue = warm_read() + [
         batched("FREQ:CENT 1000000000"),
         read_in_line("FREQ:CENT 2000000000"),  # the second of a batch of 2 reads the queue
         batched("FREQ:CENT 1000000000"),
@@ -120,7 +120,7 @@ def test_the_batch_is_bounded_by_error_batch(tmp_path):
 
 def test_a_clean_step_whose_last_acquisition_read_the_queue_needs_no_read_at_its_end(tmp_path):
     profile = load_profile(profile_with(tmp_path, 1))  # every acquisition reads the queue
-    dialogue = warm() + [read_in_line("FREQ:CENT 1000000000")]
+    dialogue = warm_read() + [read_in_line("FREQ:CENT 1000000000")]
     with replay_dialogue(dialogue, lambda t: ScpiAnalyzer(t, profile)) as sa:
         sa.configure(REQUEST)
         sa.acquire_trace()
@@ -134,7 +134,7 @@ def test_a_clean_step_whose_last_acquisition_read_the_queue_needs_no_read_at_its
 
 def test_an_error_found_at_the_step_end_names_the_refused_setting():
     conflict = '-221,"Settings conflict"'
-    dialogue = warm() + [
+    dialogue = warm_read() + [
         batched("FREQ:CENT 1000000000"),
         batched("FREQ:CENT 2000000000"),
         ("SYST:ERR?", conflict),  # the step's read: something in it failed
@@ -161,7 +161,7 @@ def test_an_error_found_at_the_step_end_names_the_refused_setting():
         assert sa._sent == {}  # the state is unknown: the next configure sends everything
     assert info.value.code == -221 and info.value.command == "FREQ:CENT 2000000000"
     assert info.value.context["in_step"] == "2 acquisitions covered by one error-queue read"
-    assert info.value.context["in_compound"] == "TRAC? TRACE1"
+    assert info.value.context["in_compound"] == "READ?"
 
 
 # --------------------------------------------------------------------------- the sequencer
@@ -207,20 +207,35 @@ def _run(profile: str | Path, folder: Path):
             record = Sequencer(plan, session).run(folder / "run")
         finally:
             session.close()
-        reads = sum(
-            line.count("SYST:ERR?") for which, line in server.command_log if which == "analyzer"
-        )
-    return record, reads
+        lines = [line for which, line in server.command_log if which == "analyzer"]
+    return record, sum(line.count("SYST:ERR?") for line in lines), lines
 
 
 def test_a_clean_sweep_gives_identical_results_with_batching_on_and_off(tmp_path):
-    on, reads_on = _run("generic", tmp_path / "on")
-    off, reads_off = _run(profile_with(tmp_path, 1), tmp_path / "off")
+    """The generic profile (error_batch 16 and the single read query READ?) against a copy
+    that reads the queue in every acquisition's line and starts, waits and fetches with
+    INIT:IMM;*WAI;:TRAC? (read = false): the same acquisitions in the same order from the
+    same seed, so the same numbers, with fewer error reads and two units per acquisition."""
+    plain = tmp_path / "plain.toml"
+    text = Path(profile_with(tmp_path, 1)).read_text(encoding="utf-8")
+    assert '\nread = "READ?"\n' in text
+    plain.write_text(text.replace('\nread = "READ?"\n', "\nread = false\n"))
+    on, reads_on, lines = _run("generic", tmp_path / "on")
+    off, reads_off, plain_lines = _run(plain, tmp_path / "off")
     assert on.info.notes.get("skipped_points") is None and len(on.points) == 4
     assert [p.nf_db for p in on.points] == [p.nf_db for p in off.points]
     assert [p.gain_db for p in on.points] == [p.gain_db for p in off.points]
     assert [p.u_nf_db for p in on.points] == [p.u_nf_db for p in off.points]
     assert reads_on < reads_off / 2  # one read per pass instead of one per acquisition
+    # SCPI-1999 READ? = ABORt; INITiate; FETCh? (from memory): one query per acquisition
+    acquisitions = [line for line in lines if "READ?" in line]
+    assert len(acquisitions) == sum(line.count("INIT:IMM") for line in plain_lines) > 8
+    assert acquisitions[0] == "READ?"  # the first after connecting goes alone
+    assert not any(unit in line for line in lines for unit in ("INIT:IMM", "*WAI", "TRAC?"))
+    for line in acquisitions[1:]:  # held settings (centre, count), READ?, maybe the error read
+        units = [u.strip(":").split()[0] for u in split_reply_units(line)]
+        assert units.count("READ?") == 1
+        assert set(units) <= {"FREQ:CENT", "AVER:COUN", "READ?", "SYST:ERR?"}
 
 
 def test_a_setting_refused_mid_step_is_named_and_no_reading_of_that_step_is_accepted(

@@ -34,6 +34,8 @@ def test_probe_with_the_right_profile_is_all_ok(server):
         checks
     )
     assert "big-endian" in checks["trace format"].detail
+    # the generic profile's single read query (SCPI-1999 READ?) was tried; compact has none
+    assert ("read query" in checks) == (server.dialect == "generic")
     # nothing but the analyzer was touched, and its noise drive was never switched
     assert server.bench.noise_source.is_hot is False
     assert not any(line == "OUTP:NOIS ON" for _, line in server.command_log)

@@ -188,11 +188,23 @@ def test_longer_outage_exits_4_and_resume_finishes(server, monkeypatch, tmp_path
     assert record.points[0].nf_db == kept.points[0].nf_db  # the first point was not redone
 
 
-def test_a_connection_dropped_during_a_one_line_acquisition_fails_at_once(server):
-    """A later acquisition is one line (start, *WAI, trace query, error query): the drop while
-    *WAI holds the line makes the block read fail at once (the socket reads end of file)
-    instead of waiting out the acquisition's deadline. The drop is made by the server exactly
-    when *WAI is processed (no timer, no race)."""
+def _without_read_query():
+    """The generic profile without its READ? (start, *WAI and trace query in one line)."""
+    from noisebench.drivers import load_profile
+    from noisebench.drivers.profile import parse_profile
+
+    text = open(load_profile("generic").source, encoding="utf-8").read()
+    assert '\nread = "READ?"\n' in text
+    return parse_profile(text.replace('\nread = "READ?"\n', "\nread = false\n"), "no_read")
+
+
+@pytest.mark.parametrize("single_query", [True, False], ids=["READ?", "INIT;*WAI;TRAC?"])
+def test_a_connection_dropped_during_a_one_line_acquisition_fails_at_once(server, single_query):
+    """A later acquisition is one line (READ? and the error query, or without READ? start,
+    *WAI, trace query, error query): the drop while READ? or *WAI waits for the acquisition
+    makes the block read fail at once (the socket reads end of file) instead of waiting out
+    the acquisition's deadline. The drop is made by the server exactly when the wait runs
+    (no timer, no race)."""
     import time
 
     from noisebench.drivers.transport import ConnectionLost
@@ -206,7 +218,8 @@ def test_a_connection_dropped_during_a_one_line_acquisition_fails_at_once(server
         server.faults.offline = True  # closes the client's socket
         raise InstrumentGone("dropped during *WAI")
 
-    sa = open_analyzer(server.resource("analyzer"), "generic", retries=0)
+    profile = "generic" if single_query else _without_read_query()
+    sa = open_analyzer(server.resource("analyzer"), profile, retries=0)
     try:
         sa.configure(REQUEST)
         sa.acquire_trace()  # the first after connecting goes unit by unit (a short one)
@@ -242,7 +255,8 @@ def test_a_connection_dropped_during_opc_fails_over_at_once(server):
         server.faults.offline = True  # closes the client's socket
         raise InstrumentGone("dropped during *OPC?")
 
-    sa = open_analyzer(server.resource("analyzer"), "generic", retries=0)
+    # without READ? (the generic profile's first acquisition would send READ? alone)
+    sa = open_analyzer(server.resource("analyzer"), _without_read_query(), retries=0)
     try:
         sa.configure(REQUEST.model_copy(update={"rbw_hz": 1e3, "averages": 2}))
         limit = sa.acquisition_timeout_s()

@@ -543,6 +543,44 @@ def test_wai_orders_the_next_command(client):
     assert len(client.query("TRAC?").split(",")) == 31
 
 
+def test_read_starts_waits_and_answers_a_fresh_trace_and_fetch_repeats_it(client, sim_server):
+    # SCPI-1999 measurement instructions (Vol. 1 ch. 3, from memory): READ? = ABORt;
+    # INITiate; FETCh?; FETCh? answers the last measurement without starting one
+    client.write("SWE:POIN 51;:AVER:COUN 2;:FORM REAL,32;:READ?")
+    first = np.frombuffer(client.read_block(), dtype=">f4")
+    bench_trace = sim_server.bench.analyzer.last_trace
+    np.testing.assert_array_equal(first, bench_trace.values.astype(np.float32))
+    client.write("READ?")
+    second = np.frombuffer(client.read_block(), dtype=">f4")
+    assert second.size == 51 and not np.array_equal(second, first)  # a new acquisition
+    assert sim_server.bench.analyzer.last_trace is not bench_trace
+    client.write("FETC?")
+    np.testing.assert_array_equal(np.frombuffer(client.read_block(), dtype=">f4"), second)
+    client.write("TRAC? TRACE1")  # the same last trace
+    np.testing.assert_array_equal(np.frombuffer(client.read_block(), dtype=">f4"), second)
+    client.write("FORM ASC")
+    assert len(client.query("READ?").split(",")) == 51  # the trace format applies
+    assert client.errors() == []
+
+
+def test_read_never_answers_a_stale_trace(client, sim_server, monkeypatch):
+    from noisebench.errors import MeasurementError
+
+    client.write("SWE:POIN 21;:READ?")
+    client.read_line()
+    client.write("INIT:CONT ON")
+    assert client.query("READ?;*OPC?") == "1"  # no reply unit from the failed READ?
+    assert client.codes() == [-213]  # as INITiate in continuous mode
+    client.write("INIT:CONT OFF")
+
+    def broken():
+        raise MeasurementError("simulated acquisition failure")
+
+    monkeypatch.setattr(sim_server.bench.analyzer, "acquire_trace", broken)
+    assert client.query("READ?;*OPC?") == "1"  # the previous trace is not answered
+    assert client.codes() == [-200, -230]  # the acquisition's error, then READ?'s
+
+
 @pytest.fixture
 def slow_server():
     """A server whose acquisitions take a long real time (ended by ABORt or stop)."""

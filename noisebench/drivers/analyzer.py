@@ -136,6 +136,8 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         self._verified: dict[tuple[str, str], dict[str, Any]] = {}
         self._deferred_names: set[str] = set()  # settings held for the next compound line
         self._started = False  # an acquisition start was accepted alone since connecting
+        self._read_started = False  # the profile's read query was accepted alone since then
+        self._fetched_by = self.spec.trace.query  # what the last acquisition fetched with
         self._step_open = False  # in a sequencer step whose error read may wait (error_batch)
         self._named: dict[tuple, list[tuple[str, str]]] = {}  # request -> its commands
         self._predicted: dict[tuple, AcquisitionRequest] = {}  # request -> as applied
@@ -247,6 +249,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         """After a failure the instrument's state is unknown: the next configure sends every
         setting and reads every one back, and the next acquisition sends its parts alone."""
         self._started = False
+        self._read_started = False
         self._sent.clear()
         self._verified.clear()
         self._deferred_names.clear()
@@ -529,6 +532,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         self._sent.clear()  # the instrument may have lost them: re-apply everything
         self._verified.clear()
         self._started = False
+        self._read_started = False
         held, self._deferred_names = self._deferred_names, set()
         if self._request is not None and self._settings is not None:
             found = settings_differences(self._settings, self._read_settings())
@@ -593,8 +597,17 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         settings = self._require_settings()
         # the trace query and the step's error read in one line once both headers were
         # accepted alone (the first acquisition after connecting sends them apart)
-        combined = self._channel.compound and self._started and self.transport.reads_block_then_text
-        if combined and self._one_line(settings):
+        compound = self._channel.compound and self.transport.reads_block_then_text
+        combined = compound and self._started
+        usable = self._one_line(settings)
+        one_line = compound and usable
+        single = self.spec.acquisition.read if usable else None
+        if single is not None and not (compound and self._read_started):
+            # the profile's read query (start, wait and trace in one) goes alone, its error
+            # read apart: once after connecting before it rides in compound lines, and
+            # always without compound lines (error_check = "each")
+            elapsed, values = self._acquire_in_one_line(settings, alone=True)
+        elif one_line and (single is not None or combined):
             # in a step (error_batch): the queue is read in every error_batch-th line and at
             # the step's end; the sequencer accepts the traces only after that read
             read = not self._step_open or (
@@ -602,10 +615,11 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
             )
             elapsed, values = self._acquire_in_one_line(settings, read_errors=read)
         else:
+            self._fetched_by = self.spec.trace.query
             elapsed = self._run_acquisition()
             values = self._fetch_trace(settings, with_errors=combined)
-        if not combined:
-            self._channel.check_errors(self.spec.trace.query)
+            if not combined:
+                self._channel.check_errors(self.spec.trace.query)
         self._deferred_names.clear()  # the settings that rode along were accepted
         freq_hz = settings.frequencies_hz()
         self._check_plausible(values, settings, freq_hz)
@@ -628,32 +642,45 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
         is short enough to wait for without status polling."""
         acq = self.spec.acquisition
         return (
-            self.profile.common.wait is not None
+            (self.profile.common.wait is not None or acq.read is not None)
             and self.trace_transfer == "binary"
             and self._block_failures < 2
             and not (acq.poll_start and self.expected_acquisition_time_s() > acq.poll_above_s)
         )
 
     def _acquire_in_one_line(
-        self, settings: AcquisitionSettings, *, read_errors: bool = True
+        self, settings: AcquisitionSettings, *, read_errors: bool = True, alone: bool = False
     ) -> tuple[float, np.ndarray]:
         """Held settings, the start, the wait (IEEE 488.2 ``*WAI``: the next unit runs once
         the acquisition completed), the trace query and the step's error query in one
-        program message: one exchange per acquisition. The reply is the block, ``;`` and
-        the error entry; its deadline covers the acquisition and the transfer. Returns the
-        wall time and the values. ``read_errors=False`` (inside a step, ``error_batch``):
-        no error query; the reply is the block alone and the step's read covers it (a trace
-        query that fails sends no reply: the block read times out, and recovery reads the
-        queue and names it)."""
+        program message: one exchange per acquisition. With ``[analyzer.acquisition] read``
+        (SCPI-1999 ``READ?`` = ABORt; INITiate; FETCh?) that query replaces the start, the
+        wait and the trace query. The reply is the block, ``;`` and the error entry; its
+        deadline covers the acquisition and the transfer. Returns the wall time and the
+        values. ``read_errors=False`` (inside a step, ``error_batch``): no error query; the
+        reply is the block alone and the step's read covers it (a trace or read query that
+        fails sends no reply: the block read times out, and recovery reads the queue and
+        names it). ``alone``: the read query by itself (held settings sent before it), its
+        error read apart, the first time after connecting."""
         tr = self.spec.trace
+        single = self.spec.acquisition.read
         wait = self.profile.common.wait
-        assert wait is not None  # _one_line checked it
+        assert single is not None or wait is not None  # _one_line checked it
         limit = self.acquisition_timeout_s()
         size = settings.points * (4 if tr.datatype == "f" else 8)
         limit += self._channel.base_timeout_s + size / tr.transfer_rate_bytes_per_s
         self._select_format("binary")
+        if alone:
+            assert single is not None
+            self._channel.flush()  # held settings alone, with their error read
+            read_errors = False
         held = self._channel.take_deferred()
-        units = [*held, self.spec.acquisition.start, wait, tr.query]
+        if single is not None:
+            fetch, units = single, [*held, single]
+        else:
+            assert wait is not None
+            fetch, units = tr.query, [*held, self.spec.acquisition.start, wait, tr.query]
+        self._fetched_by = fetch
         line = compound_line([*units, self.profile.common.error_query] if read_errors else units)
         self._channel.sent_compound(line, held)
         started = time.monotonic()
@@ -677,18 +704,21 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
             self._block_failures += 1
             raise
         elapsed = time.monotonic() - started
-        if self._step_open:
+        if self._step_open and not alone:
             self._channel.unchecked_acquisitions += 1
         if read_errors:
-            self._channel.check_errors(tr.query, first_reply=reply)
+            self._channel.check_errors(fetch, first_reply=reply)
+        elif alone:
+            self._channel.check_errors(fetch)
+            self._read_started = True
         if got is None:
             self._block_failures += 1
             raise BlockError(
-                f"reply to {line!r} holds no binary block (only {reply!r})", command=tr.query
+                f"reply to {line!r} holds no binary block (only {reply!r})", command=fetch
             )
         self._block_failures = 0
         self._last_transfer = "binary"
-        return elapsed, _checked_values(got, settings.points, tr.query)
+        return elapsed, _checked_values(got, settings.points, fetch)
 
     # -- steps (error_batch) ---------------------------------------------------------------
 
@@ -713,7 +743,7 @@ class ScpiAnalyzer(Analyzer, NoiseDriveOutput, PathSwitch):
             if self._channel.unchecked_acquisitions:  # named errors come first
                 self._run(
                     "check the step's errors",
-                    lambda: self._channel.check_errors(self.spec.trace.query),
+                    lambda: self._channel.check_errors(self._fetched_by),
                 )
             if self._channel.step_lost:
                 self._channel.step_lost = False

@@ -276,6 +276,7 @@ class _Probe:
 
     def trace(self, request: AcquisitionRequest) -> None:
         sa, tr = self.sa, self.spec.trace
+        read = self.spec.acquisition.read
         settings = sa.configure(request)
         self.add(
             "configure",
@@ -296,10 +297,22 @@ class _Probe:
                     f"{exc.message}; read with the other byte order the values are plausible",
                     f"[analyzer.trace] big_endian = {flipped}",
                 )
+            elif read is not None and read in (
+                getattr(exc, "command", None),
+                exc.context.get("command"),
+            ):
+                self.add(
+                    "trace",
+                    "FAIL",
+                    f"{exc.message} (the single read query {read!r})",
+                    "[analyzer.acquisition] read = false (if it has no such query)",
+                )
             else:
                 self.add("trace", "FAIL", exc.message, "[analyzer.trace] query / datatype")
             return
         elapsed = time.monotonic() - started
+        if read is not None and sa._fetched_by == read:  # (binary, no status polling)
+            self.add("read query", "ok", f"{read!r} started, waited and answered the trace")
         values = np.asarray(trace.values, dtype=float)
         self._plausible(trace, tr)
         expected = sa.expected_acquisition_time_s()

@@ -856,6 +856,14 @@ class AcquisitionProfile(_Section):
         description="start command that sets the operation-complete event "
         "bit, e.g. 'INIT:IMM;*OPC' (enables status polling)",
     )
+    read: str | None = Field(
+        default=None,
+        description="one query that starts an acquisition, waits for it and returns its "
+        "trace (SCPI-1999 measurement instruction READ? = ABORt;INITiate;FETCh?), e.g. "
+        "'READ?'; with compound lines one acquisition is held settings, this and the error "
+        "query (with error_check 'each' it goes alone, then the error query); false (the "
+        "default): not available, start, wait and trace query are sent",
+    )
     poll_query: str = "*ESR?"
     poll_mask: int = Field(default=1, ge=1, le=255)
     poll_above_s: float = Field(
@@ -878,7 +886,7 @@ class AcquisitionProfile(_Section):
         "cannot report its sweep time (common practice)",
     )
 
-    _optional = field_validator("abort", "poll_start", mode="before")(_not_available)
+    _optional = field_validator("abort", "poll_start", "read", mode="before")(_not_available)
 
     @model_validator(mode="after")
     def _check(self) -> AcquisitionProfile:
@@ -887,6 +895,13 @@ class AcquisitionProfile(_Section):
             if cmd is not None:
                 _check_command(cmd, "command")
         _check_query(self.poll_query)
+        if self.read is not None:
+            _check_query(self.read)
+            if ";" in self.read or not self.read.split()[0].endswith("?"):
+                raise ValueError(
+                    f"read must be one query whose header ends in '?', e.g. 'READ?' "
+                    f"(got {self.read!r}); false if the instrument has none"
+                )
         return self
 
 

@@ -370,13 +370,24 @@ class Sequencer(SwitchedSweep, GainStep, VerdictStep):
         appears."""
         if settings is None:
             return
-        dump = settings.model_dump(mode="json", exclude={"center_hz", "averages"})
-        for entry in self._applied:
-            if entry["settings"] == dump:
-                entry["freqs_hz"].extend(group.freqs_hz)
+        # the entry found for these values before (the settings model is frozen, and equal
+        # values dump equally): no dump and no comparison of dumps per point
+        key = tuple(v for k, v in settings.__dict__.items() if k not in _VARY_PER_GROUP)
+        entry = self._applied_by_key.get(key)
+        if entry is None:
+            dump = settings.model_dump(mode="json", exclude=set(_VARY_PER_GROUP))
+            entry = next((e for e in self._applied if e["settings"] == dump), None)
+            if entry is None:
+                entry = {"settings": dump, "freqs_hz": list(group.freqs_hz)}
+                self._applied.append(entry)
+                self._applied_by_key[key] = entry
+                writer.update_info(applied_settings=self._applied)
                 return
-        self._applied.append({"settings": dump, "freqs_hz": list(group.freqs_hz)})
-        writer.update_info(applied_settings=self._applied)
+            self._applied_by_key[key] = entry
+        entry["freqs_hz"].extend(group.freqs_hz)
+
+
+_VARY_PER_GROUP = ("center_hz", "averages")  # settings fields left out of applied_settings
 
 
 # --------------------------------------------------------------------------- convenience

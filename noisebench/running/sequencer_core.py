@@ -113,6 +113,11 @@ reading names, with room (a combination costs about 1.3 kB)."""
 _COMBINED: OrderedDict[tuple[int, str, int, int], DensitySeries] = OrderedDict()
 
 
+REQUESTS_KEPT = 4096
+"""Predicted requests kept by ``SequencerCore._request`` (a sweep's groups times their few
+average counts; cleared when full, so a long sweep's memory stays flat)."""
+
+
 class SequencerCore:
     """State shared by the sequencer's steps and the bench operations they all use."""
 
@@ -133,7 +138,10 @@ class SequencerCore:
         self.corrections: Corrections | None = None
         self.guard: PowerGuard | None = None
         self._last_request: AcquisitionRequest | None = None
+        # (group, averages, analyzer) ids -> (group, analyzer, predicted request): _request
+        self._requests: dict[tuple[int, int, int], tuple[Any, Any, AcquisitionRequest]] = {}
         self._applied: list[dict[str, Any]] = []
+        self._applied_by_key: dict[tuple, dict[str, Any]] = {}  # settings values -> entry
         self._measured_gain: dict[float, tuple[float, float]] = {}
         self._prior: dict[str, int] = {}  # averages per reading the last group needed
         self._unmeasurable: set[int] = set()
@@ -201,7 +209,22 @@ class SequencerCore:
 
     def _request(self, group: PointGroup, averages: int) -> AcquisitionRequest:
         """The group's request as the analyzer will apply it (its profile's rounding): an RBW
-        it rounds also sets the automatic trace length, so the points per RBW stay as planned."""
+        it rounds also sets the automatic trace length, so the points per RBW stay as planned.
+        Kept per (group, averages, analyzer): a switched sweep asks for the same few requests
+        at every pass, and each costs model validation and the profile's rounding (the same
+        request object every time, nobody changes it: ``_configure`` compares identity first)."""
+        analyzer = self.session.bench.analyzer
+        key = (id(group), int(averages), id(analyzer))
+        kept = self._requests.get(key)
+        if kept is not None and kept[0] is group and kept[1] is analyzer:
+            return kept[2]
+        request = self._new_request(group, averages)
+        if len(self._requests) >= REQUESTS_KEPT:
+            self._requests.clear()
+        self._requests[key] = (group, analyzer, request)  # the objects keep their ids taken
+        return request
+
+    def _new_request(self, group: PointGroup, averages: int) -> AcquisitionRequest:
         analyzer = self.session.bench.analyzer
         request = analyzer.predict(group.request(averages))
         if (
@@ -216,7 +239,9 @@ class SequencerCore:
     def _configure(self, group: PointGroup, averages: int) -> AcquisitionSettings:
         request = self._request(group, averages)
         analyzer = self.session.bench.analyzer
-        if request != self._last_request or analyzer.settings is None:
+        if (
+            request is not self._last_request and request != self._last_request
+        ) or analyzer.settings is None:
             analyzer.configure(request)
             self._last_request = request
         return analyzer.settings  # type: ignore[return-value]

@@ -294,14 +294,14 @@ def _prepare(
             value=threshold_sigma,
             fix="use e.g. 5",
         )
-    key = s.model_copy(update={"center_hz": 1.0})  # what the statistics depend on
+    key = _settings_key(s)  # what the statistics depend on
     model = _cached(("model", key), lambda: point_model_for(s, field="trace.settings"))
     power, to_density = _linear_power(trace)
     power = power / model.mean_ratio()
     f = trace.freq_hz
     # zero span: all points at one frequency (no differences but zeros, as np.ptp(f) == 0);
     # the differences then give the spacing too
-    steps = np.diff(f) if s.span_hz != 0 and f.size > 1 else None
+    steps = f[1:] - f[:-1] if s.span_hz != 0 and f.size > 1 else None  # np.diff, undispatched
     zero_span = steps is None or not steps.any()
     spacing = 0.0 if zero_span else _uniform_spacing(f, steps)
     rel_var, kernel = _kernel_of(trace, key, model, zero_span, spacing)
@@ -344,6 +344,16 @@ def _prepare(
     )
 
 
+def _settings_key(s: AcquisitionSettings) -> tuple:
+    """The applied settings but the centre, as a key of the kept statistics: the field values
+    in a tuple (the model is frozen; its own hash and equality compare the same values, at
+    several times the cost of a tuple's on every trace)."""
+    return (type(s), tuple(s.__dict__.values())[1:])
+
+
+assert next(iter(AcquisitionSettings.model_fields)) == "center_hz"  # what _settings_key drops
+
+
 _STATISTICS_CACHE: dict[tuple, Any] = {}
 _STATISTICS_CACHE_SIZE = 512
 
@@ -366,7 +376,7 @@ _MISSING = object()
 
 
 def _kernel_of(
-    trace: Trace, key: AcquisitionSettings, model: PointModel, zero_span: bool, spacing: float
+    trace: Trace, key: tuple, model: PointModel, zero_span: bool, spacing: float
 ) -> tuple[float | None, np.ndarray]:
     """(predicted relative variance of a point or None, correlation kernel of the point
     values), kept per (settings without the centre, points, exact point spacing)."""
@@ -440,6 +450,12 @@ def _mean(x: np.ndarray) -> float:
     return float(np.add.reduce(x)) / x.size
 
 
+def _sum(x: np.ndarray) -> float:
+    """``float(np.sum(x))`` of a 1-D float array, bit for bit (``np.sum`` is ``np.add.reduce``
+    behind its dispatch, which costs more than the sum of a short kernel)."""
+    return float(np.add.reduce(x))
+
+
 def _median(x: np.ndarray) -> float:
     """``float(np.median(x))`` of a non-empty 1-D array of finite values, bit for bit (the
     middle value, or the mean of the two middle ones: ``0.5 (a + b)`` is exactly
@@ -453,7 +469,7 @@ def _uniform_spacing(freq_hz: np.ndarray, steps: np.ndarray | None = None) -> fl
     """The spacing of a uniform axis (``steps``: its ``np.diff`` when the caller has it)."""
     d = np.diff(freq_hz) if steps is None else steps
     spacing = _mean(d)
-    if spacing <= 0 or np.max(np.abs(d - spacing)) > 0.01 * abs(spacing):
+    if spacing <= 0 or np.abs(d - spacing).max() > 0.01 * abs(spacing):
         raise InputError(
             "trace.freq_hz",
             "must be increasing and uniformly spaced",
@@ -546,7 +562,7 @@ def scatter_state(
         mean = _mean(power[usable])
     d = d / mean
     expected = 2.0 * (1.0 - rho) * rel_var
-    corr_points = max(1.0, 2.0 * float(np.sum(kernel)) - 1.0)
+    corr_points = max(1.0, 2.0 * _sum(kernel) - 1.0)
     independent = d.size / max(corr_points, float(lag))
     # sum of squared successive differences of N independent points with excess kurtosis k:
     # relative variance (k + 3)/N (neighbouring differences share a point), so 2N/(k + 3) dof
@@ -578,7 +594,7 @@ def _level_scatter_limit(
     parameters and excess kurtosis ``k`` (the relative variance of a sum of squares is
     ``(k + 2)/B``); correlated neighbours scatter less about their own fit than independent
     points, so this errs on the side of not refusing."""
-    corr_points = max(1.0, 2.0 * float(np.sum(kernel)) - 1.0)
+    corr_points = max(1.0, 2.0 * _sum(kernel) - 1.0)
     bins = int(usable.sum()) / corr_points
     params = 2 if bins >= 3.0 else 1
     if bins < 2.0:
@@ -652,7 +668,7 @@ def _lower_half_scatter_ratio(
     """Observed over predicted scatter of the usable points from their lower half (median
     minus lower quartile, over a straight line), so that cutting the highest points (a spur
     search run on an unaveraged trace) hardly lowers it; None below two independent bins."""
-    corr_points = max(1.0, 2.0 * float(np.sum(kernel)) - 1.0)
+    corr_points = max(1.0, 2.0 * _sum(kernel) - 1.0)
     if int(usable.sum()) / corr_points < 2.0:
         return None
     f = freq_hz[usable]
@@ -804,7 +820,7 @@ def _find_spurs(
     median_ratio = _median_ratio(a)
     # running-median window: ~SPUR_BASELINE_BINS independent bins, so the baseline itself is
     # quiet (its relative noise ~ 1.25 sigma / sqrt(bins)); narrower only for long traces
-    corr_points = max(1.0, 2.0 * float(np.sum(kernel)) - 1.0)
+    corr_points = max(1.0, 2.0 * _sum(kernel) - 1.0)
     window = int(min(n, max(101, SPUR_BASELINE_BINS * corr_points)))
     window += (window + 1) % 2  # odd
     short = window >= n
@@ -832,7 +848,7 @@ def _find_spurs(
             work = np.where(excluded, baseline * median_ratio, power)
             baseline = ndimage.median_filter(work, size=window, mode="mirror") / median_ratio
         hits = (power > tail_ratio * baseline) & ~excluded
-        if not np.any(hits):
+        if not hits.any():
             break
         labels, count = ndimage.label(hits)
         for lab in range(1, count + 1):
@@ -954,8 +970,8 @@ def _select_band(
                 )
             tol = half * 1e-12 + 1e-9 * spacing
             band = slice(
-                int(np.searchsorted(f, report - half - tol, side="left")),
-                int(np.searchsorted(f, report + half + tol, side="right")),
+                int(f.searchsorted(report - half - tol, side="left")),
+                int(f.searchsorted(report + half + tol, side="right")),
             )
     count = band.stop - band.start
     required = min_points if band is not whole else min(min_points, f.size)

@@ -9,7 +9,9 @@ APPLIED value (RBW rounded to 1-2-3-5, attenuation to its steps, ...).
 ``INITiate`` starts one complete averaged acquisition in a worker thread (an overlapped
 command in IEEE 488.2 terms): ``*OPC?``/``*WAI`` wait for it, ``*OPC`` sets the OPC bit of
 ``*ESR`` when it ends, ``ABORt`` cancels it, and ``STATus:OPERation:CONDition?`` shows bit 4
-(measuring) while it runs. The acquisition runs on the simulated clock; ``time_scale`` real
+(measuring) while it runs. ``READ?`` (SCPI-1999: ABORt; INITiate; FETCh?) starts one, waits
+for it and answers its trace in one query; ``FETCh?`` answers the last trace. The acquisition
+runs on the simulated clock; ``time_scale`` real
 seconds are also slept per simulated second (default 0). The completed trace is kept as
 float32 (the trace memory): ASCII, ``REAL,32`` and ``REAL,64`` transfers all carry exactly
 these values.
@@ -446,6 +448,10 @@ class AnalyzerScpi(ScpiInstrument):
             put=lambda v: setattr(self, "swapped", v),
         )
         self.add("TRACe[:DATA]", None, self._trace_data)
+        # SCPI-1999 measurement instructions (Vol. 1 ch. 3): FETCh? = the last measurement,
+        # READ? = ABORt; INITiate; FETCh? in one query (it waits, so it runs unlocked)
+        self.add("FETCh", None, self._fetch)
+        self.add("READ", None, self._read, locked=False)
 
     # ------------------------------------------------------------------ bandwidth details
     def _vbw(self) -> float:
@@ -617,7 +623,30 @@ class AnalyzerScpi(ScpiInstrument):
         token = call.optional()
         if token is not None and token.strip().upper() not in ("TRACE1", "TRAC1"):
             raise ScpiError(-224, f"{token}; this analyzer has one trace, TRACE1")
-        values = self._current_memory().values
+        return self._formatted(self._current_memory().values)
+
+    def _fetch(self, call: Call) -> Response:
+        """``FETCh?``: the last acquisition's trace, as ``TRACe? TRACE1`` gives it."""
+        call.none()
+        return self._formatted(self._current_memory().values)
+
+    def _read(self, call: Call) -> Response:
+        """``READ?`` (SCPI-1999: ABORt; INITiate; FETCh?): abort a running acquisition,
+        start one, wait for it and answer its trace; an acquisition that fails or is
+        aborted meanwhile leaves an error in the queue and gives -230 (no reply unit),
+        never the previous trace."""
+        call.none()
+        with self.lock:
+            self._abort_running()
+            before = self.memory
+            self._initiate()
+        self.wait_complete()
+        with self.lock:
+            if self.memory is before or self.memory is None:
+                raise ScpiError(-230, "READ? acquisition did not complete; no new data")
+            return self._formatted(self.memory.values)
+
+    def _formatted(self, values: np.ndarray) -> Response:
         if self.data_format is DataFormat.ASCII:
             return ",".join(map(repr, values.astype(np.float64).tolist()))
         order = "<" if self.swapped else ">"
