@@ -18,7 +18,7 @@ from noisebench.bench.registry import simulated_session
 from noisebench.running import sequencer_switched
 from noisebench.running.sequencer import Sequencer
 from noisebench.running.sequencer_core import _Readings
-from noisebench.science.averaging import DensitySeries, ReadingTable
+from noisebench.science.averaging import DensitySeries, PackedReading, ReadingTable
 from noisebench.science.density import NoiseDensity
 
 
@@ -75,6 +75,33 @@ def test_a_reading_table_combines_to_the_bit_as_the_per_point_series():
         assert table.averages(i) == series[i].averages == sum(range(2, 7))
     with pytest.raises(ValueError):
         table.add(_densities(rng, freqs[:2], averages=1, settings=settings))
+
+
+def test_a_packed_reading_adds_the_same_floats_as_its_densities():
+    # a sweep-level pass packs each group's reading as it is read (the pass holds them all
+    # until its error check); the table it fills must equal one filled from the densities
+    rng = np.random.default_rng(6)
+    settings = AcquisitionSettings(
+        center_hz=1e9, span_hz=1e6, rbw_hz=3e4, vbw_hz=3e5, points=101,
+        detector="rms", averaging_scale="power", averages=1,
+    )  # fmt: skip
+    freqs = [1.0e9, 1.1e9, 1.2e9, 1.3e9]
+    direct, packed = ReadingTable(len(freqs)), ReadingTable(len(freqs))
+    for k in range(4):
+        densities = _densities(rng, freqs, averages=3 + k, settings=settings)
+        reading = PackedReading(densities)
+        assert len(reading) == len(freqs)
+        assert reading.densities_w_per_hz() == [d.density_w_per_hz for d in densities]
+        direct.add(densities)
+        packed.add(reading)
+    for slot in ReadingTable.__slots__:  # arrays by their bytes: NaN marks a field not given
+        a, b = getattr(packed, slot), getattr(direct, slot)
+        assert (a.tobytes() == b.tobytes()) if hasattr(a, "tobytes") else a == b, slot
+    for i in range(len(freqs)):
+        got, expected = packed.series(i).combined(), direct.series(i).combined()
+        assert got.density.model_dump() == expected.density.model_dump()
+    with pytest.raises(ValueError):
+        packed.add(PackedReading(_densities(rng, freqs[:2], averages=1, settings=settings)))
 
 
 def test_group_readings_without_readings_are_empty_and_release_forgets_them():

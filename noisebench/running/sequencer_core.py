@@ -27,6 +27,7 @@ from noisebench.running.safety import (
 )
 from noisebench.science.averaging import (
     DensitySeries,
+    PackedReading,
     ReadingTable,
     TimeBudget,
 )
@@ -70,7 +71,7 @@ class _Readings:
         self._tables: dict[str, ReadingTable] = {}
         self._index: dict[float, int] | None = None
 
-    def add(self, name: str, densities: Sequence[NoiseDensity]) -> None:
+    def add(self, name: str, densities: Sequence[NoiseDensity] | PackedReading) -> None:
         if len(densities) != len(self.freqs_hz):
             raise ValueError(f"{len(densities)} densities for {len(self.freqs_hz)} frequencies")
         table = self._tables.get(name)

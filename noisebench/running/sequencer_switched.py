@@ -63,7 +63,7 @@ from noisebench.running.groups import PointGroup
 from noisebench.running.safety import PowerCheck
 from noisebench.running.sequencer_core import Commit, _GroupOutcome, _Readings
 from noisebench.running.sequencer_measurement import MeasurementSteps
-from noisebench.science.averaging import TimeBudget, averages_for_target
+from noisebench.science.averaging import PackedReading, TimeBudget, averages_for_target
 from noisebench.science.density import NoiseDensity
 from noisebench.science.drift import DRIFT_ALPHA, DriftCheck, combined_check, drift_check
 from noisebench.science.methods._common import averages_for_significance
@@ -252,24 +252,27 @@ class SwitchedSweep(MeasurementSteps):
         check comes first, see ``_checked_step``); the time is charged at once."""
         n = run.per_trace
         split = monitor and n >= 2 * MIN_CHECK_AVERAGES
-        taken: list[tuple[float | None, list[NoiseDensity]]] = []
+        # packed as read: a pass holds every group's reading until its error check
+        taken: list[tuple[float | None, list[NoiseDensity] | None, PackedReading]] = []
         for averages in (n // 2, n - n // 2) if split else (n,):
             before = run.budget.used_s
             started = self._now_s()
             densities = self._acquire(run.group, averages, run.budget)
             spent = run.budget.used_s - before
             # the reading's middle on the bench's clock (drift lives in real time)
-            taken.append((0.5 * (started + self._now_s()) if split else None, densities))
+            middle = 0.5 * (started + self._now_s()) if split else None
+            taken.append((middle, densities if split else None, PackedReading(densities)))
+            del densities
             self._clock_s += spent
             run.settings = self.session.bench.analyzer.settings
 
         def accept() -> None:
-            for middle, densities in taken:
-                if middle is not None:
+            for middle, densities, packed in taken:
+                if middle is not None and densities is not None:
                     run.log.append((middle, state, densities))
-                run.readings.add(state, densities)
+                run.readings.add(state, packed)
                 if state == "cold" and connection is Connection.DUT:
-                    self._guard().observe_cold([d.density_w_per_hz for d in densities])
+                    self._guard().observe_cold(packed.densities_w_per_hz())
             self.progress.reading_done()
 
         return accept
