@@ -158,3 +158,28 @@ def test_the_switched_sweep_drops_each_group_s_readings_when_it_stops(tmp_path, 
         assert run.readings.averages("hot") == 0 and run.readings.averages("cold") == 0
         assert not run.log and not run.drift_checks
         assert run.budget.used_s > 0  # the budget stays: the next phase's rate comes from it
+
+
+def test_the_switched_sweep_holds_no_point_results_while_it_reads(tmp_path, monkeypatch):
+    # a round's points are made for its decisions; the groups reading on drop theirs and the
+    # stopping groups' are journalled, so no PointResult lives while the next round reads
+    import gc
+
+    from noisebench.bench.registry import Connection
+    from noisebench.science.point import PointResult
+
+    alive: list[int] = []
+    original = sequencer_switched.SwitchedSweep._run_block
+
+    def run_block(self, block, connection):
+        if connection is Connection.DUT:
+            alive.append(sum(isinstance(o, PointResult) for o in gc.get_objects()))
+        original(self, block, connection)
+
+    monkeypatch.setattr(sequencer_switched.SwitchedSweep, "_run_block", run_block)
+    freqs = (1.0e9, 1.5e9, 2.0e9, 2.5e9, 3.0e9)
+    plan = make_plan("y_factor", freqs_hz=freqs, target=0.1, switching={"mode": "per_sweep"})
+    record = Sequencer(plan, simulated_session(ideal_sim(4), plan.bench)).run(tmp_path / "run")
+    assert len(record.points) == len(freqs)
+    assert len(alive) >= 2  # a pilot round and at least one more
+    assert alive == [0] * len(alive)

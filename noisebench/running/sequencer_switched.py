@@ -644,18 +644,21 @@ class SwitchedSweep(MeasurementSteps):
                 if decided is None:
                     run.release()  # refused by the physics
                 else:
-                    decisions[run.group.index] = decided
                     need = self._averages_at_target(
                         decided[1], run.readings.averages("hot"), run.group.policy.target_u_nf_db
                     )
                     if pending and need is not None:
                         exact[run.group.index] = need
+                    # a group reading on drops its points (the next round makes new ones):
+                    # only the stopping groups' points wait for the sweep's decisions
+                    decisions[run.group.index] = decided if decided[0] is not None else (None, [])
+                decided = None
             self._hold_lucky(active, decisions)
             still = []
             for run in active:
                 if run.group.index not in decisions:
                     continue
-                stop, points = decisions[run.group.index]
+                stop, points = decisions.pop(run.group.index)  # stored points are let go
                 if stop is None:
                     still.append(run)
                     continue
@@ -663,6 +666,7 @@ class SwitchedSweep(MeasurementSteps):
                 outcome = self._finish_group(run, stop, points, calibration)
                 run.release()
                 self._store_outcome(run.group, outcome, writer)
+                del outcome, points  # journalled: not held through the next round
             active = self._after_pilots(still, pending, active, exact)
             pending = []
         self._set_source_cold(TimeBudget(0.0))
