@@ -98,6 +98,16 @@ def test_the_first_read_after_connecting_goes_alone_with_its_own_error_read():
         warmed(sa)
 
 
+def refused_acquisition(dialogue):
+    """Replay ``dialogue`` through a warmed, configured analyzer; the acquisition's error."""
+    with replay_dialogue(dialogue, analyzer) as sa:
+        warmed(sa)
+        sa.configure(REQUEST)
+        with pytest.raises(InstrumentError) as info:
+            sa.acquire_trace()
+    return info
+
+
 def test_an_error_raised_by_the_read_query_is_named_and_not_retried():
     # a query that fails sends no reply unit (IEEE 488.2): the reply is the entry alone; an
     # instrument error is never retried (the script ends: a retry would fail the replay)
@@ -107,11 +117,7 @@ def test_an_error_raised_by_the_read_query_is_named_and_not_retried():
         ("FREQ:CENT 1000000000", None),  # the held centre alone: not the culprit
         ("SYST:ERR?", OK),
     ]
-    with replay_dialogue(dialogue, analyzer) as sa:
-        warmed(sa)
-        sa.configure(REQUEST)
-        with pytest.raises(InstrumentError) as info:
-            sa.acquire_trace()
+    info = refused_acquisition(dialogue)
     assert info.value.code == -230 and info.value.command == "READ?"
     assert read_line("FREQ:CENT 1000000000") in info.value.context["commands_since_last_check"]
 
@@ -125,11 +131,7 @@ def test_a_setting_refused_in_a_read_line_is_named():
         ("SYST:ERR?", refused),
         ("SYST:ERR?", OK),
     ]
-    with replay_dialogue(dialogue, analyzer) as sa:
-        warmed(sa)
-        sa.configure(REQUEST)
-        with pytest.raises(InstrumentError) as info:
-            sa.acquire_trace()
+    info = refused_acquisition(dialogue)
     assert info.value.code == -222 and info.value.command == "FREQ:CENT 1000000000"
     assert info.value.context["in_compound"] == "READ?"
 

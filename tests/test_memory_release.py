@@ -3,6 +3,9 @@ exactly as the per-point series did, and the sweep-level Y-factor schedule drops
 readings as soon as the group stops (its points or calibration entry made), so a sweep holds
 only its active groups' readings. ``scripts/bench_memory.py`` measures the growth per point;
 these tests check the behaviour it relies on, cheaply.
+
+Behaviour tests only: the reference is the same sweep kept the old way; no outside value is
+checked.
 """
 
 from __future__ import annotations

@@ -4,6 +4,8 @@ CI runs :data:`_fuzz.DEFAULT_CASES` cases per seed; ``NOISEBENCH_FUZZ_CASES=5000
 nightly-size run. Every damaged input must be accepted or refused with a clean one-line error:
 no traceback, no hang, and no intact journal line lost.
 
+Behaviour tests only: no outside reference is involved.
+
 Behaviour tests: no outside reference is involved (seeded random mutation of inputs is common
 practice).
 """
